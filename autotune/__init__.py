@@ -1,0 +1,36 @@
+"""autotune: closed-loop calibration of a Ramsey-cavity single-photon QND detector.
+
+The plugin sends set-points (selected atomic velocity, atom-cavity detuning) to a rig over a
+ZeroMQ bus, reads back detection counts, estimates the fringe inversion between the empty and the
+one-photon field with its uncertainty, and searches for the best setting with Bayesian
+optimisation.
+"""
+
+from __future__ import annotations
+
+from autotune.errors import (
+    AutotuneError,
+    ConfigError,
+    EstimationError,
+    JournalError,
+    LimitError,
+    ProtocolError,
+    RigError,
+    RigRefused,
+    RigTimeout,
+)
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "__version__",
+    "AutotuneError",
+    "ConfigError",
+    "EstimationError",
+    "JournalError",
+    "LimitError",
+    "ProtocolError",
+    "RigError",
+    "RigRefused",
+    "RigTimeout",
+]

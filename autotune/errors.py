@@ -1,0 +1,101 @@
+"""The one exception tree of autotune.
+
+::
+
+    AutotuneError                  everything autotune raises on purpose
+    ├── ConfigError                a configuration file or value is wrong (file, key, expected, got)
+    ├── LimitError                 a set-point was refused before it left this process
+    │                              (outside the configured or described limits, or too large a step)
+    ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
+    ├── JournalError               a run folder or journal cannot be written, read or resumed
+    └── RigError                   the rig, or the bus to it, failed
+        ├── RigTimeout             no reply within the bound, after the capped retries
+        ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
+        └── ProtocolError          a reply (or request) does not follow the wire protocol
+
+Library exceptions (zmq, json, tomllib, OSError) are translated at the module boundary
+where they occur and chained with ``raise ... from exc``.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "AutotuneError",
+    "ConfigError",
+    "LimitError",
+    "EstimationError",
+    "JournalError",
+    "RigError",
+    "RigTimeout",
+    "RigRefused",
+    "ProtocolError",
+]
+
+
+class AutotuneError(Exception):
+    """Base of every error autotune raises on purpose."""
+
+
+class ConfigError(AutotuneError):
+    """A configuration file or value is wrong.
+
+    Parameters
+    ----------
+    file : str
+        The file that was read (or ``"<memory>"``).
+    key : str
+        Dotted key path of the offending value (``"search.shots_per_phase"``).
+    expected : str
+        What was expected, in words.
+    got : object
+        What was found.
+    """
+
+    def __init__(self, file: str, key: str, expected: str, got: object) -> None:
+        self.file = str(file)
+        self.key = key
+        self.expected = expected
+        self.got = got
+        super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}")
+
+
+class LimitError(AutotuneError):
+    """A set-point was refused locally: outside its limits, or a step larger than allowed."""
+
+
+class EstimationError(AutotuneError, ValueError):
+    """Counts cannot give a fringe estimate (shapes differ, negative counts, too few phases)."""
+
+
+class JournalError(AutotuneError):
+    """A run folder or its journal cannot be written, read or resumed."""
+
+
+class RigError(AutotuneError):
+    """The rig, or the bus to it, failed."""
+
+
+class RigTimeout(RigError):
+    """No reply arrived within the configured bound, after the capped number of retries."""
+
+
+class RigRefused(RigError):
+    """The rig answered with an error reply.
+
+    Parameters
+    ----------
+    kind : str
+        The protocol's error kind (``bad_request``, ``unknown_op``, ``out_of_range``,
+        ``busy``, ``interlock``, ``internal``, ...).
+    detail : str
+        The rig's own explanation.
+    """
+
+    def __init__(self, kind: str, detail: str) -> None:
+        self.kind = kind
+        self.detail = detail
+        super().__init__(f"rig refused ({kind}): {detail}")
+
+
+class ProtocolError(RigError):
+    """A message does not follow the wire protocol (bad JSON, wrong version, missing key)."""

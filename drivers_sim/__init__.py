@@ -1,0 +1,1 @@
+"""The bundled simulated rig: physics, state and a server speaking ``autotune.protocol``."""
