@@ -1,0 +1,930 @@
+"""The wire protocol between autotune and a rig (version 1).
+
+This module is the protocol's specification and its only implementation in this project: the
+client (:mod:`autotune.bus`) and the bundled simulated rig's server both import it. A
+control-system team can implement a rig from this text alone.
+
+Transport
+---------
+ZeroMQ over TCP, loopback (``tcp://127.0.0.1:PORT``) unless the operator says otherwise. The
+client uses a REQ socket; the rig should use a ROUTER socket (a REP socket also works, but a
+ROUTER does not wedge when a reply is lost). Each message is **one frame** of UTF-8 JSON
+(RFC 8259) holding one JSON object. No pickle, no binary payloads. Messages larger than
+:data:`MAX_MESSAGE_BYTES` are invalid. ``NaN``, ``Infinity`` and numbers that overflow a double
+are invalid, as are duplicate keys in an object. Optional CURVE encryption and client
+authentication (ZeroMQ's CurveZMQ) wrap the same messages.
+
+Request::
+
+    {"proto": 1, "msg_id": "<hex>", "op": "<op>", "args": {...}}
+
+Reply, success::
+
+    {"proto": 1, "msg_id": "<same>", "ok": true, "result": {...}}
+
+Reply, failure::
+
+    {"proto": 1, "msg_id": "<same>", "ok": false, "error": {"kind": "<kind>", "detail": "<text>"}}
+
+All four request keys are required and no other key is allowed. ``proto`` is the integer 1; a
+request with another integer gets an ``unsupported_version`` error. ``msg_id`` is 1 to 64
+lower-case hexadecimal characters, unique per logical request (autotune sends 32, from a
+cryptographic random source). When the rig cannot read a request's ``msg_id`` it answers with
+``"msg_id": ""``.
+
+Idempotency: a client that gets no reply resends the **same bytes with the same msg_id**. A rig
+must answer a repeated ``msg_id`` with the reply it gave the first time, without executing the
+request again (so an acquisition is never counted twice). The bundled rig keeps the last 1024
+replies. A ``msg_id`` reused with a different request is answered with ``bad_request``.
+
+Error kinds (``error.kind``), see :class:`ErrorKind`:
+
+===================== ==========================================================================
+bad_request           the message is not valid JSON, not an object, misses a key, has a wrong
+                      type, an unknown key, or a value the rig cannot take
+unknown_op            ``op`` is not one of the ops below
+out_of_range          a set-point is outside its limits, or the step from the value in force is
+                      larger than ``max_step``; the detail names set-point, limit and value
+busy                  the rig cannot take the request now; retry later
+interlock             a hardware interlock is set; nothing was changed
+internal              the rig failed while executing the request
+unsupported_version   ``proto`` is not 1
+===================== ==========================================================================
+
+``error.detail`` is human-readable text naming what was wrong, what was expected and what was
+received.
+
+Set-points
+----------
+A set-point dict maps a name to a finite number. Names of this version: ``velocity`` (m/s, the
+selected atomic velocity class) and ``detuning`` (Hz, atom-cavity detuning set-point,
+``(f_eg - f_cavity)``). A rig describes which names it has.
+
+Ops
+---
+Times (``clock``, ``t_start``, ``t_end``) are seconds on the rig's own clock (a virtual clock on
+a simulated rig); phases are radians; frequencies are Hz; counts and shots are integers.
+
+``describe``, args ``{}``, result::
+
+    {"rig": str, "proto": 1, "simulated": bool,
+     "setpoints": {NAME: {"unit": str, "min": float, "max": float, "max_step": float}},
+     "fields": ["empty", "one_photon"], "repetition_rate_hz": float,
+     "safe_setpoints": {NAME: float}}
+
+    ``min``/``max`` bound each set-point, ``max_step`` (> 0) bounds one change of it;
+    ``repetition_rate_hz`` is the number of shots (samples) per second.
+
+``apply``, args ``{"setpoints": {NAME: float, ...}}`` (one or more names; the others keep their
+value), result ``{"setpoints": {NAME: float, ...all in force}, "clock": float}``.
+
+``acquire``, args ``{"field": "empty" | "one_photon", "ramsey_phase": float, "shots": int}``
+(``ramsey_phase`` in rad; ``1 <= shots <=`` :data:`MAX_SHOTS`), result::
+
+    {"counts": {"e": int, "g": int, "i": int}, "shots": int,
+     "t_start": float, "t_end": float, "setpoints": {NAME: float, ...in force}}
+
+    ``counts`` are detected atoms per detected state; ``t_end - t_start`` is the rig time spent.
+
+``status``, args ``{}``, result::
+
+    {"clock": float, "busy": bool, "interlock": null | str,
+     "setpoints": {NAME: float, ...in force}, "shots_total": int}
+
+    ``shots_total`` counts every shot acquired since the rig started.
+
+``safe``, args ``{}``: move every set-point to its safe value; result
+``{"setpoints": {NAME: float, ...the safe ones, now in force}}``.
+
+Simulated rig only (a real rig answers ``unknown_op``):
+
+``truth``, args ``{}`` or ``{"setpoints": {NAME: float}}``: the model's exact fringes and figures
+of merit at the given set-points (default: those in force); result is an object, see the
+simulated rig's documentation. ``advance``, args ``{"seconds": float >= 0}``: move the virtual
+clock on, result ``{"clock": float}``. ``thermal_step``, args ``{"shift_hz": float}``: a sudden
+cavity frequency step, result ``{"clock": float, "cavity_offset_hz": float}``.
+"""
+
+from __future__ import annotations
+
+import enum
+import json
+import math
+import re
+import secrets
+import types
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from autotune.errors import ProtocolError, RigRefused
+
+__all__ = [
+    "PROTO_VERSION",
+    "MAX_MESSAGE_BYTES",
+    "MAX_SHOTS",
+    "Op",
+    "ErrorKind",
+    "Field",
+    "Request",
+    "RequestRejected",
+    "SetpointLimit",
+    "Description",
+    "Applied",
+    "Counts",
+    "Acquisition",
+    "Status",
+    "new_msg_id",
+    "encode_request",
+    "encode_result",
+    "encode_error",
+    "decode_request",
+    "decode_reply",
+    "validate_args",
+    "parse_description",
+    "parse_applied",
+    "parse_acquisition",
+    "parse_status",
+    "parse_safe",
+    "parse_truth",
+    "parse_advance",
+    "parse_thermal_step",
+]
+
+PROTO_VERSION = 1
+"""The protocol version this module speaks."""
+
+MAX_MESSAGE_BYTES = 1 << 20
+"""Largest valid message, bytes of UTF-8 JSON (1 MiB)."""
+
+MAX_SHOTS = 10_000_000
+"""Largest number of shots one ``acquire`` may ask for."""
+
+_MSG_ID_RE = re.compile(r"[0-9a-f]{1,64}")
+
+
+class Op(str, enum.Enum):
+    """The operations of the protocol."""
+
+    DESCRIBE = "describe"
+    APPLY = "apply"
+    ACQUIRE = "acquire"
+    STATUS = "status"
+    SAFE = "safe"
+    TRUTH = "truth"
+    ADVANCE = "advance"
+    THERMAL_STEP = "thermal_step"
+
+
+class ErrorKind(str, enum.Enum):
+    """The kinds of error reply (``error.kind``)."""
+
+    BAD_REQUEST = "bad_request"
+    UNKNOWN_OP = "unknown_op"
+    OUT_OF_RANGE = "out_of_range"
+    BUSY = "busy"
+    INTERLOCK = "interlock"
+    INTERNAL = "internal"
+    UNSUPPORTED_VERSION = "unsupported_version"
+
+
+class Field(str, enum.Enum):
+    """The field states an acquisition can prepare in the cavity."""
+
+    EMPTY = "empty"
+    ONE_PHOTON = "one_photon"
+
+
+class RequestRejected(Exception):
+    """A request cannot be executed; the server answers it with an error reply.
+
+    Parameters
+    ----------
+    kind : ErrorKind
+        The error kind to report.
+    detail : str
+        What was wrong, expected and got.
+    msg_id : str
+        The request's ``msg_id`` when it could be read, else ``""``.
+    """
+
+    def __init__(self, kind: ErrorKind, detail: str, msg_id: str = "") -> None:
+        self.kind = kind
+        self.detail = detail
+        self.msg_id = msg_id
+        super().__init__(f"{kind.value}: {detail}")
+
+
+@dataclass(frozen=True)
+class Request:
+    """A validated request.
+
+    Attributes
+    ----------
+    msg_id : str
+        The client's message id (hex).
+    op : Op
+        The operation.
+    args : Mapping[str, Any]
+        The arguments, validated and normalised by :func:`validate_args` (floats as ``float``).
+    """
+
+    msg_id: str
+    op: Op
+    args: Mapping[str, Any]
+
+
+# --------------------------------------------------------------------------- JSON boundary
+
+
+class _Invalid(ValueError):
+    """Internal: a JSON document breaks one of the protocol's strictness rules."""
+
+
+def _reject_constant(name: str) -> Any:
+    raise _Invalid(f"non-finite number {name} is not valid JSON")
+
+
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise _Invalid(f"number {text[:40]} overflows a double")
+    return value
+
+
+def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    result: dict[str, Any] = {}
+    for key, value in pairs:
+        if key in result:
+            raise _Invalid(f"duplicate key {key!r}")
+        result[key] = value
+    return result
+
+
+def _loads(data: bytes) -> dict[str, Any]:
+    """Decode one message; raise ``_Invalid`` with a reason on any breach of the rules."""
+    if not isinstance(data, (bytes, bytearray, memoryview)):
+        raise _Invalid(f"expected bytes, got {type(data).__name__}")
+    if len(data) > MAX_MESSAGE_BYTES:
+        raise _Invalid(f"expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
+    try:
+        text = bytes(data).decode("utf-8")
+        value = json.loads(
+            text,
+            parse_constant=_reject_constant,
+            parse_float=_finite_float,
+            object_pairs_hook=_unique_keys,
+        )
+    except _Invalid:
+        raise
+    except UnicodeDecodeError as exc:
+        raise _Invalid(f"expected UTF-8 text, got undecodable byte at {exc.start}") from exc
+    except (ValueError, RecursionError) as exc:
+        # json.JSONDecodeError is a ValueError; so are over-long integer literals.
+        raise _Invalid(f"expected JSON, got {str(exc)[:200]}") from exc
+    if not isinstance(value, dict):
+        raise _Invalid(f"expected a JSON object, got {_json_type(value)}")
+    return value
+
+
+def _dumps(message: Mapping[str, Any]) -> bytes:
+    return json.dumps(message, allow_nan=False, separators=(",", ":"), ensure_ascii=False).encode()
+
+
+def _json_type(value: object) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "boolean"
+    if isinstance(value, (int, float)):
+        return "number"
+    if isinstance(value, str):
+        return "string"
+    if isinstance(value, list):
+        return "array"
+    if isinstance(value, dict):
+        return "object"
+    return type(value).__name__
+
+
+def _show(value: object) -> str:
+    """A short rendering of a received value for an error detail."""
+    text = repr(value)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+# --------------------------------------------------------------------------- ids and encoding
+
+
+def new_msg_id() -> str:
+    """Return a fresh message id: 32 lower-case hex characters from a cryptographic source."""
+    return secrets.token_hex(16)
+
+
+def encode_request(op: Op, args: Mapping[str, Any], msg_id: str) -> bytes:
+    """Build the bytes of a request, validating ``args`` first.
+
+    Parameters
+    ----------
+    op : Op
+        The operation.
+    args : Mapping[str, Any]
+        Its arguments (see the module docstring).
+    msg_id : str
+        A message id from :func:`new_msg_id`.
+
+    Returns
+    -------
+    bytes
+        One UTF-8 JSON frame.
+
+    Raises
+    ------
+    ProtocolError
+        If the arguments do not follow the protocol (the caller's mistake).
+    """
+    op = Op(op)
+    if not isinstance(msg_id, str) or _MSG_ID_RE.fullmatch(msg_id) is None:
+        raise ProtocolError(f"msg_id: expected 1-64 lower-case hex characters, got {_show(msg_id)}")
+    try:
+        clean = validate_args(op, args)
+    except RequestRejected as exc:
+        raise ProtocolError(f"{op.value} request: {exc.detail}") from exc
+    data = _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "op": op.value, "args": clean})
+    if len(data) > MAX_MESSAGE_BYTES:
+        raise ProtocolError(f"{op.value} request: expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
+    return data
+
+
+def encode_result(msg_id: str, result: Mapping[str, Any]) -> bytes:
+    """Build the bytes of a success reply.
+
+    Raises
+    ------
+    ValueError
+        If ``result`` is not JSON-ready (non-finite number, foreign type) or the reply is too
+        large; the server then answers ``internal`` instead.
+    """
+    if not isinstance(result, Mapping):
+        raise ValueError(f"result: expected a mapping, got {type(result).__name__}")
+    try:
+        data = _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "ok": True, "result": dict(result)})
+    except (TypeError, ValueError, RecursionError) as exc:
+        raise ValueError(f"result is not JSON-ready: {exc}") from exc
+    if len(data) > MAX_MESSAGE_BYTES:
+        raise ValueError(f"reply: expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
+    return data
+
+
+def encode_error(msg_id: str, kind: ErrorKind, detail: str) -> bytes:
+    """Build the bytes of an error reply (the detail is cut to 2000 characters)."""
+    kind = ErrorKind(kind)
+    error = {"kind": kind.value, "detail": str(detail)[:2000]}
+    return _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "ok": False, "error": error})
+
+
+# --------------------------------------------------------------------------- server side
+
+
+def decode_request(data: bytes) -> Request:
+    """Read and validate one request.
+
+    Parameters
+    ----------
+    data : bytes
+        The received frame.
+
+    Returns
+    -------
+    Request
+        The validated request.
+
+    Raises
+    ------
+    RequestRejected
+        For any invalid input, with the error kind to answer and the ``msg_id`` if readable.
+        Nothing else is raised, whatever ``data`` holds.
+    """
+    try:
+        message = _loads(data)
+    except _Invalid as exc:
+        raise RequestRejected(ErrorKind.BAD_REQUEST, f"request: {exc}") from exc
+
+    raw_id = message.get("msg_id")
+    msg_id = raw_id if isinstance(raw_id, str) and _MSG_ID_RE.fullmatch(raw_id) else ""
+
+    def reject(kind: ErrorKind, detail: str) -> RequestRejected:
+        return RequestRejected(kind, detail, msg_id)
+
+    if "proto" not in message:
+        raise reject(ErrorKind.BAD_REQUEST, "request: missing key 'proto' (expected the integer 1)")
+    proto = message["proto"]
+    if not _is_int(proto):
+        raise reject(ErrorKind.BAD_REQUEST, f"proto: expected the integer {PROTO_VERSION}, got {_show(proto)}")
+    if proto != PROTO_VERSION:
+        raise reject(
+            ErrorKind.UNSUPPORTED_VERSION, f"proto: expected {PROTO_VERSION}, got {proto}"
+        )
+    if not msg_id:
+        raise reject(
+            ErrorKind.BAD_REQUEST, f"msg_id: expected 1-64 lower-case hex characters, got {_show(raw_id)}"
+        )
+    _check_keys("request", message, required=("proto", "msg_id", "op", "args"), optional=(), fail=reject)
+    raw_op = message["op"]
+    if not isinstance(raw_op, str):
+        raise reject(ErrorKind.BAD_REQUEST, f"op: expected a string, got {_show(raw_op)}")
+    try:
+        op = Op(raw_op)
+    except ValueError:
+        known = ", ".join(o.value for o in Op)
+        raise reject(ErrorKind.UNKNOWN_OP, f"op: expected one of {known}, got {_show(raw_op)}") from None
+    try:
+        args = validate_args(op, message["args"])
+    except RequestRejected as exc:
+        raise reject(exc.kind, exc.detail) from None
+    return Request(msg_id=msg_id, op=op, args=types.MappingProxyType(args))
+
+
+def _is_int(value: object) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
+def _is_number(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _check_keys(where: str, obj: Mapping[str, Any], *, required: tuple[str, ...],
+                optional: tuple[str, ...], fail: Any) -> None:
+    for key in required:
+        if key not in obj:
+            raise fail(ErrorKind.BAD_REQUEST, f"{where}: missing key {key!r}")
+    allowed = set(required) | set(optional)
+    extra = sorted(str(k) for k in obj if k not in allowed)
+    if extra:
+        expected = ", ".join(sorted(allowed)) or "no keys"
+        raise fail(ErrorKind.BAD_REQUEST, f"{where}: unknown key {extra[0]!r} (expected {expected})")
+
+
+def _bad(kind: ErrorKind, detail: str) -> RequestRejected:
+    return RequestRejected(kind, detail)
+
+
+def _arg_number(where: str, value: object) -> float:
+    if not _is_number(value):
+        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except OverflowError:
+        number = math.inf
+    if not math.isfinite(number):
+        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
+    return number
+
+
+def _arg_setpoints(where: str, value: object) -> dict[str, float]:
+    if not isinstance(value, Mapping):
+        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object of name: number, got {_show(value)}")
+    if not value:
+        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected at least one set-point, got {{}}")
+    clean: dict[str, float] = {}
+    for name, number in value.items():
+        if not isinstance(name, str) or not name:
+            raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected non-empty names, got {_show(name)}")
+        clean[name] = _arg_number(f"{where}.{name}", number)
+    return clean
+
+
+def validate_args(op: Op, args: object) -> dict[str, Any]:
+    """Check the arguments of one op and return them normalised.
+
+    Parameters
+    ----------
+    op : Op
+        The operation.
+    args : object
+        The received ``args`` value.
+
+    Returns
+    -------
+    dict
+        A new dict: set-point values and phases as ``float``, ``shots`` as ``int``, ``field`` as
+        its string value.
+
+    Raises
+    ------
+    RequestRejected
+        With kind ``bad_request`` and a detail naming the argument, expected and got.
+    """
+    op = Op(op)
+    where = "args"
+    if not isinstance(args, Mapping):
+        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object, got {_show(args)}")
+    if op in (Op.DESCRIBE, Op.STATUS, Op.SAFE):
+        _check_keys(where, args, required=(), optional=(), fail=_bad)
+        return {}
+    if op is Op.APPLY:
+        _check_keys(where, args, required=("setpoints",), optional=(), fail=_bad)
+        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
+    if op is Op.ACQUIRE:
+        _check_keys(where, args, required=("field", "ramsey_phase", "shots"), optional=(), fail=_bad)
+        field = args["field"]
+        if not isinstance(field, str) or field not in {f.value for f in Field}:
+            expected = " or ".join(repr(f.value) for f in Field)
+            raise _bad(ErrorKind.BAD_REQUEST, f"args.field: expected {expected}, got {_show(field)}")
+        phase = _arg_number("args.ramsey_phase", args["ramsey_phase"])
+        shots = args["shots"]
+        if not _is_int(shots) or not 1 <= shots <= MAX_SHOTS:
+            raise _bad(
+                ErrorKind.BAD_REQUEST, f"args.shots: expected an integer in [1, {MAX_SHOTS}], got {_show(shots)}"
+            )
+        return {"field": field, "ramsey_phase": phase, "shots": int(shots)}
+    if op is Op.TRUTH:
+        _check_keys(where, args, required=(), optional=("setpoints",), fail=_bad)
+        if args.get("setpoints") is None:
+            return {}
+        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
+    if op is Op.ADVANCE:
+        _check_keys(where, args, required=("seconds",), optional=(), fail=_bad)
+        seconds = _arg_number("args.seconds", args["seconds"])
+        if seconds < 0:
+            raise _bad(ErrorKind.BAD_REQUEST, f"args.seconds: expected a number >= 0, got {_show(args['seconds'])}")
+        return {"seconds": seconds}
+    if op is Op.THERMAL_STEP:
+        _check_keys(where, args, required=("shift_hz",), optional=(), fail=_bad)
+        return {"shift_hz": _arg_number("args.shift_hz", args["shift_hz"])}
+    raise AssertionError(f"unhandled op {op}")  # pragma: no cover - every Op is handled above
+
+
+# --------------------------------------------------------------------------- client side
+
+
+def decode_reply(data: bytes, msg_id: str) -> dict[str, Any]:
+    """Read one reply and return its ``result`` object.
+
+    Parameters
+    ----------
+    data : bytes
+        The received frame.
+    msg_id : str
+        The ``msg_id`` of the request this reply must answer.
+
+    Returns
+    -------
+    dict
+        The ``result`` object of a success reply.
+
+    Raises
+    ------
+    RigRefused
+        For a well-formed error reply (``kind``, ``detail``).
+    ProtocolError
+        For anything malformed, another version or another ``msg_id``.
+    """
+    try:
+        message = _loads(data)
+    except _Invalid as exc:
+        raise ProtocolError(f"reply: {exc}") from exc
+    proto = message.get("proto")
+    if not _is_int(proto) or proto != PROTO_VERSION:
+        raise ProtocolError(f"reply proto: expected {PROTO_VERSION}, got {_show(proto)}")
+    got_id = message.get("msg_id")
+    ok = message.get("ok")
+    if not isinstance(ok, bool):
+        raise ProtocolError(f"reply ok: expected true or false, got {_show(ok)}")
+    required = ("proto", "msg_id", "ok", "result" if ok else "error")
+    for key in required:
+        if key not in message:
+            raise ProtocolError(f"reply: missing key {key!r}")
+    extra = sorted(str(k) for k in message if k not in required)
+    if extra:
+        raise ProtocolError(f"reply: unknown key {extra[0]!r} (expected {', '.join(required)})")
+    if not ok:
+        error = message["error"]
+        if not isinstance(error, dict):
+            raise ProtocolError(f"reply error: expected an object, got {_show(error)}")
+        kind, detail = error.get("kind"), error.get("detail")
+        if not isinstance(kind, str) or kind not in {k.value for k in ErrorKind}:
+            raise ProtocolError(f"reply error.kind: expected a known error kind, got {_show(kind)}")
+        if not isinstance(detail, str):
+            raise ProtocolError(f"reply error.detail: expected a string, got {_show(detail)}")
+        # An error answering an unreadable msg_id comes back with "", so it is accepted here.
+        if got_id not in (msg_id, ""):
+            raise ProtocolError(f"reply msg_id: expected {msg_id!r}, got {_show(got_id)}")
+        raise RigRefused(kind, detail)
+    if got_id != msg_id:
+        raise ProtocolError(f"reply msg_id: expected {msg_id!r}, got {_show(got_id)}")
+    result = message["result"]
+    if not isinstance(result, dict):
+        raise ProtocolError(f"reply result: expected an object, got {_show(result)}")
+    return result
+
+
+def _need(obj: Mapping[str, Any], key: str, where: str) -> Any:
+    if not isinstance(obj, Mapping):
+        raise ProtocolError(f"{where}: expected an object, got {_show(obj)}")
+    if key not in obj:
+        raise ProtocolError(f"{where}: missing key {key!r}")
+    return obj[key]
+
+
+def _float(obj: Mapping[str, Any], key: str, where: str) -> float:
+    value = _need(obj, key, where)
+    if not _is_number(value) or not math.isfinite(float(value)):
+        raise ProtocolError(f"{where}.{key}: expected a finite number, got {_show(value)}")
+    return float(value)
+
+
+def _int(obj: Mapping[str, Any], key: str, where: str, *, minimum: int = 0) -> int:
+    value = _need(obj, key, where)
+    if not _is_int(value) or value < minimum:
+        raise ProtocolError(f"{where}.{key}: expected an integer >= {minimum}, got {_show(value)}")
+    return int(value)
+
+
+def _str(obj: Mapping[str, Any], key: str, where: str) -> str:
+    value = _need(obj, key, where)
+    if not isinstance(value, str):
+        raise ProtocolError(f"{where}.{key}: expected a string, got {_show(value)}")
+    return value
+
+
+def _bool(obj: Mapping[str, Any], key: str, where: str) -> bool:
+    value = _need(obj, key, where)
+    if not isinstance(value, bool):
+        raise ProtocolError(f"{where}.{key}: expected true or false, got {_show(value)}")
+    return value
+
+
+def _setpoint_values(obj: Mapping[str, Any], key: str, where: str) -> Mapping[str, float]:
+    value = _need(obj, key, where)
+    if not isinstance(value, Mapping):
+        raise ProtocolError(f"{where}.{key}: expected an object of name: number, got {_show(value)}")
+    return types.MappingProxyType({str(name): _float(value, name, f"{where}.{key}") for name in value})
+
+
+@dataclass(frozen=True)
+class SetpointLimit:
+    """Limits of one set-point.
+
+    Attributes
+    ----------
+    unit : str
+        The SI unit of the set-point (``"m/s"``, ``"Hz"``).
+    min, max : float
+        Inclusive bounds, in ``unit``.
+    max_step : float
+        Largest allowed change in one ``apply``, in ``unit`` (> 0).
+    """
+
+    unit: str
+    min: float
+    max: float
+    max_step: float
+
+    def __post_init__(self) -> None:
+        for name in ("min", "max", "max_step"):
+            value = getattr(self, name)
+            if not _is_number(value) or not math.isfinite(value):
+                raise ValueError(f"SetpointLimit.{name}: expected a finite number, got {value!r}")
+        if not isinstance(self.unit, str):
+            raise ValueError(f"SetpointLimit.unit: expected a string, got {self.unit!r}")
+        if self.min > self.max:
+            raise ValueError(f"SetpointLimit: expected min <= max, got min={self.min!r}, max={self.max!r}")
+        if self.max_step <= 0:
+            raise ValueError(f"SetpointLimit.max_step: expected a number > 0, got {self.max_step!r}")
+
+    def tighter(self, other: SetpointLimit) -> SetpointLimit:
+        """Return the intersection of two limits (the tighter bound of each).
+
+        Raises
+        ------
+        ValueError
+            If the units differ or the ranges do not overlap.
+        """
+        if self.unit != other.unit:
+            raise ValueError(f"units differ: {self.unit!r} and {other.unit!r}")
+        low, high = max(self.min, other.min), min(self.max, other.max)
+        if low > high:
+            raise ValueError(
+                f"ranges [{self.min}, {self.max}] and [{other.min}, {other.max}] do not overlap"
+            )
+        return SetpointLimit(self.unit, low, high, min(self.max_step, other.max_step))
+
+
+def _parse_limit(obj: object, where: str) -> SetpointLimit:
+    if not isinstance(obj, Mapping):
+        raise ProtocolError(f"{where}: expected an object, got {_show(obj)}")
+    unit = _str(obj, "unit", where)
+    low, high, step = _float(obj, "min", where), _float(obj, "max", where), _float(obj, "max_step", where)
+    try:
+        return SetpointLimit(unit, low, high, step)
+    except ValueError as exc:
+        raise ProtocolError(f"{where}: {exc}") from exc
+
+
+@dataclass(frozen=True)
+class Description:
+    """What a rig says about itself (result of ``describe``).
+
+    Attributes
+    ----------
+    rig : str
+        The rig's name.
+    proto : int
+        Protocol version it speaks.
+    simulated : bool
+        True for a simulated rig.
+    setpoints : Mapping[str, SetpointLimit]
+        Limits per set-point name.
+    fields : tuple of str
+        Field states it can prepare.
+    repetition_rate_hz : float
+        Shots per second, Hz.
+    safe_setpoints : Mapping[str, float]
+        The values ``safe`` moves to, in each set-point's unit.
+    """
+
+    rig: str
+    proto: int
+    simulated: bool
+    setpoints: Mapping[str, SetpointLimit]
+    fields: tuple[str, ...]
+    repetition_rate_hz: float
+    safe_setpoints: Mapping[str, float]
+
+
+def parse_description(result: Mapping[str, Any]) -> Description:
+    """Turn a ``describe`` result into a :class:`Description` (raises ProtocolError)."""
+    where = "describe result"
+    proto = _int(result, "proto", where)
+    if proto != PROTO_VERSION:
+        raise ProtocolError(f"{where}.proto: expected {PROTO_VERSION}, got {proto}")
+    raw_limits = _need(result, "setpoints", where)
+    if not isinstance(raw_limits, Mapping):
+        raise ProtocolError(f"{where}.setpoints: expected an object, got {_show(raw_limits)}")
+    limits = {str(n): _parse_limit(v, f"{where}.setpoints.{n}") for n, v in raw_limits.items()}
+    fields = _need(result, "fields", where)
+    if not isinstance(fields, list) or not all(isinstance(f, str) for f in fields):
+        raise ProtocolError(f"{where}.fields: expected an array of strings, got {_show(fields)}")
+    rate = _float(result, "repetition_rate_hz", where)
+    if rate <= 0:
+        raise ProtocolError(f"{where}.repetition_rate_hz: expected a number > 0, got {rate!r}")
+    safe = _setpoint_values(result, "safe_setpoints", where)
+    return Description(
+        rig=_str(result, "rig", where),
+        proto=proto,
+        simulated=_bool(result, "simulated", where),
+        setpoints=types.MappingProxyType(limits),
+        fields=tuple(fields),
+        repetition_rate_hz=rate,
+        safe_setpoints=safe,
+    )
+
+
+@dataclass(frozen=True)
+class Applied:
+    """Set-points in force after ``apply`` or ``safe``.
+
+    Attributes
+    ----------
+    setpoints : Mapping[str, float]
+        Every set-point in force, in its unit.
+    clock : float or None
+        Rig clock after the change, s; ``None`` for ``safe``, whose reply has no clock.
+    """
+
+    setpoints: Mapping[str, float]
+    clock: float | None
+
+
+def parse_applied(result: Mapping[str, Any]) -> Applied:
+    """Turn an ``apply`` result into :class:`Applied` (raises ProtocolError)."""
+    where = "apply result"
+    return Applied(_setpoint_values(result, "setpoints", where), _float(result, "clock", where))
+
+
+def parse_safe(result: Mapping[str, Any]) -> Applied:
+    """Turn a ``safe`` result into :class:`Applied` with ``clock=None`` (raises ProtocolError)."""
+    return Applied(_setpoint_values(result, "setpoints", "safe result"), None)
+
+
+@dataclass(frozen=True)
+class Counts:
+    """Detected atoms per state.
+
+    Attributes
+    ----------
+    e, g, i : int
+        Atoms assigned to the upper, lower and reference level.
+    """
+
+    e: int
+    g: int
+    i: int
+
+    @property
+    def detected(self) -> int:
+        """Total detected atoms."""
+        return self.e + self.g + self.i
+
+
+@dataclass(frozen=True)
+class Acquisition:
+    """Result of ``acquire``.
+
+    Attributes
+    ----------
+    counts : Counts
+        Detected atoms per state.
+    shots : int
+        Shots (samples) taken.
+    t_start, t_end : float
+        Rig clock at start and end, s.
+    setpoints : Mapping[str, float]
+        Set-points in force during the acquisition.
+    """
+
+    counts: Counts
+    shots: int
+    t_start: float
+    t_end: float
+    setpoints: Mapping[str, float]
+
+
+def parse_acquisition(result: Mapping[str, Any]) -> Acquisition:
+    """Turn an ``acquire`` result into :class:`Acquisition` (raises ProtocolError)."""
+    where = "acquire result"
+    raw = _need(result, "counts", where)
+    counts = Counts(*(_int(raw, k, f"{where}.counts") for k in ("e", "g", "i")))
+    t_start, t_end = _float(result, "t_start", where), _float(result, "t_end", where)
+    if t_end < t_start:
+        raise ProtocolError(f"{where}: expected t_end >= t_start, got {t_start!r} and {t_end!r}")
+    return Acquisition(
+        counts=counts,
+        shots=_int(result, "shots", where, minimum=1),
+        t_start=t_start,
+        t_end=t_end,
+        setpoints=_setpoint_values(result, "setpoints", where),
+    )
+
+
+@dataclass(frozen=True)
+class Status:
+    """Result of ``status``.
+
+    Attributes
+    ----------
+    clock : float
+        Rig clock, s.
+    busy : bool
+        True while the rig cannot take requests.
+    interlock : str or None
+        The interlock set, if any.
+    setpoints : Mapping[str, float]
+        Set-points in force.
+    shots_total : int
+        Shots acquired since the rig started.
+    """
+
+    clock: float
+    busy: bool
+    interlock: str | None
+    setpoints: Mapping[str, float]
+    shots_total: int
+
+
+def parse_status(result: Mapping[str, Any]) -> Status:
+    """Turn a ``status`` result into :class:`Status` (raises ProtocolError)."""
+    where = "status result"
+    interlock = _need(result, "interlock", where)
+    if interlock is not None and not isinstance(interlock, str):
+        raise ProtocolError(f"{where}.interlock: expected null or a string, got {_show(interlock)}")
+    return Status(
+        clock=_float(result, "clock", where),
+        busy=_bool(result, "busy", where),
+        interlock=interlock,
+        setpoints=_setpoint_values(result, "setpoints", where),
+        shots_total=_int(result, "shots_total", where),
+    )
+
+
+def parse_truth(result: Mapping[str, Any]) -> dict[str, Any]:
+    """Check a ``truth`` result's outline (set-points, clock) and return it as a dict."""
+    where = "truth result"
+    _setpoint_values(result, "setpoints", where)
+    _float(result, "clock", where)
+    return dict(result)
+
+
+def parse_advance(result: Mapping[str, Any]) -> dict[str, Any]:
+    """Check an ``advance`` result (``clock``) and return it as a dict."""
+    _float(result, "clock", "advance result")
+    return dict(result)
+
+
+def parse_thermal_step(result: Mapping[str, Any]) -> dict[str, Any]:
+    """Check a ``thermal_step`` result (``clock``, ``cavity_offset_hz``) and return it as a dict."""
+    where = "thermal_step result"
+    _float(result, "clock", where)
+    _float(result, "cavity_offset_hz", where)
+    return dict(result)
