@@ -8,6 +8,7 @@
     │                              (outside the configured or described limits, or too large a step)
     ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
     ├── JournalError               a run folder or journal cannot be written, read or resumed
+    ├── Interrupted                the run was stopped by a signal (SIGINT/SIGTERM) and made safe
     └── RigError                   the rig, or the bus to it, failed
         ├── RigTimeout             no reply within the bound, after the capped retries
         ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
@@ -25,6 +26,7 @@ __all__ = [
     "LimitError",
     "EstimationError",
     "JournalError",
+    "Interrupted",
     "RigError",
     "RigTimeout",
     "RigRefused",
@@ -69,6 +71,10 @@ class EstimationError(AutotuneError, ValueError):
 
 class JournalError(AutotuneError):
     """A run folder or its journal cannot be written, read or resumed."""
+
+
+class Interrupted(AutotuneError):
+    """The run was stopped by SIGINT/SIGTERM; the rig was sent to its safe set-points."""
 
 
 class RigError(AutotuneError):

@@ -1,0 +1,440 @@
+"""Run configuration: TOML -> frozen dataclasses, checked once at the boundary.
+
+Every value is checked here and nowhere else. A wrong value raises
+:class:`autotune.errors.ConfigError` naming the file, the dotted key, what was expected and what
+was found; unknown keys are refused so that a typo never silently falls back to a default.
+
+The file layout (see ``configs/calibrate.toml`` for a commented example)::
+
+    [bus]            endpoint, timeout_s, retries, backoff_s, optional [bus.curve] key files
+    [setpoints.NAME] one table per searched set-point: unit, search_min, search_max,
+                     limit_min, limit_max, max_step (in the set-point's unit)
+    [measurement]    shots_per_phase, ramsey_phases, confidence, resamples, verification_shots_per_phase
+    [search]         strategy, seed, budgets, convergence thresholds, hand-strategy settings
+    [nominal]        coupling_hz, waist_m (the first design's 2*pi velocity; not the rig's truth)
+    [acceptance]     min_inversion
+    [calibration]    store (where the last good calibration is kept)
+    [retune]         still_good_fraction, half widths of the narrowed box, budgets
+    [recovery]       retries of a failed step, interlock waits
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal, get_args
+
+from autotune.errors import ConfigError
+
+__all__ = [
+    "BusConfig",
+    "CurveConfig",
+    "SetpointConfig",
+    "MeasurementConfig",
+    "SearchConfig",
+    "NominalConfig",
+    "RetuneConfig",
+    "RecoveryConfig",
+    "RunConfig",
+    "StrategyKind",
+    "load_config",
+    "config_from_dict",
+    "nominal_two_pi_velocity",
+]
+
+StrategyKind = Literal["bayesian", "grid", "coordinate", "random"]
+
+
+def nominal_two_pi_velocity(coupling_hz: float, waist_m: float) -> float:
+    """Velocity (m/s) at which one photon gives a resonant 2*pi vacuum Rabi rotation.
+
+    For the Gaussian mode the pulse area is ``A = Omega_0 sqrt(pi) w / v``; ``A = 2 pi`` gives
+    ``v = Omega_0 w / (2 sqrt(pi))`` with ``Omega_0 = 2 pi coupling_hz``.
+
+    Parameters
+    ----------
+    coupling_hz : float
+        Vacuum Rabi frequency Omega_0 / 2pi at the mode centre (Hz).
+    waist_m : float
+        Mode waist w (m).
+    """
+    return 2.0 * math.pi * coupling_hz * waist_m / (2.0 * math.sqrt(math.pi))
+
+
+@dataclass(frozen=True)
+class CurveConfig:
+    """CURVE key files of the client: its own secret key and the rig server's public key."""
+
+    client_secret_key_file: Path
+    server_public_key_file: Path
+
+
+@dataclass(frozen=True)
+class BusConfig:
+    """Where the rig listens and how long to wait for it."""
+
+    endpoint: str
+    timeout_s: float
+    retries: int
+    backoff_s: float
+    curve: CurveConfig | None = None
+
+
+@dataclass(frozen=True)
+class SetpointConfig:
+    """One searched set-point: its search box and its hard limits, in the rig's unit."""
+
+    name: str
+    unit: str
+    search_min: float
+    search_max: float
+    limit_min: float
+    limit_max: float
+    max_step: float
+
+
+@dataclass(frozen=True)
+class MeasurementConfig:
+    """How one point is measured: a fringe of each field state."""
+
+    shots_per_phase: int
+    ramsey_phases: int
+    confidence: float
+    resamples: int
+    verification_shots_per_phase: int
+
+
+@dataclass(frozen=True)
+class SearchConfig:
+    """The search strategy and when it stops."""
+
+    strategy: StrategyKind
+    seed: int
+    max_points: int
+    max_shots: int
+    max_rig_time_s: float
+    n_initial_points: int
+    min_points: int
+    grid_points_per_dimension: int
+    coordinate_points_per_dimension: int
+    coordinate_rounds: int
+
+
+@dataclass(frozen=True)
+class NominalConfig:
+    """Nominal physics of the apparatus, used only for the first design."""
+
+    coupling_hz: float
+    waist_m: float
+
+    @property
+    def two_pi_velocity(self) -> float:
+        """The nominal 2*pi velocity (m/s)."""
+        return nominal_two_pi_velocity(self.coupling_hz, self.waist_m)
+
+
+@dataclass(frozen=True)
+class RetuneConfig:
+    """How a retune decides and how far it looks."""
+
+    still_good_fraction: float
+    half_widths: Mapping[str, float]
+    max_points: int
+    max_shots: int
+    n_initial_points: int
+
+
+@dataclass(frozen=True)
+class RecoveryConfig:
+    """Bounded recovery from rig faults."""
+
+    step_retries: int
+    retry_wait_s: float
+    interlock_poll_s: float
+    interlock_max_wait_s: float
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """A whole calibrate/retune configuration, checked."""
+
+    source: str
+    bus: BusConfig
+    setpoints: tuple[SetpointConfig, ...]
+    measurement: MeasurementConfig
+    search: SearchConfig
+    nominal: NominalConfig
+    min_inversion: float
+    calibration_store: Path
+    retune: RetuneConfig
+    recovery: RecoveryConfig
+    raw: Mapping[str, Any] = field(repr=False, compare=False, default_factory=dict)
+
+    def setpoint(self, name: str) -> SetpointConfig:
+        """The set-point table called ``name``."""
+        for sp in self.setpoints:
+            if sp.name == name:
+                return sp
+        raise KeyError(name)
+
+
+class _Table:
+    """A TOML table being read: typed getters that name the key on error, and a leftover check."""
+
+    def __init__(self, source: str, path: str, data: object) -> None:
+        if not isinstance(data, Mapping):
+            raise ConfigError(source, path or "<top>", "a table", data)
+        self.source = source
+        self.path = path
+        self.data = data
+        self.used: set[str] = set()
+
+    def _key(self, name: str) -> str:
+        return f"{self.path}.{name}" if self.path else name
+
+    def _raw(self, name: str, default: object) -> object:
+        self.used.add(name)
+        if name in self.data:
+            return self.data[name]
+        if default is _REQUIRED:
+            raise ConfigError(self.source, self._key(name), "a value (key is missing)", None)
+        return default
+
+    def table(self, name: str, *, required: bool = True) -> _Table | None:
+        self.used.add(name)
+        if name not in self.data:
+            if required:
+                raise ConfigError(self.source, self._key(name), "a table (missing)", None)
+            return None
+        return _Table(self.source, self._key(name), self.data[name])
+
+    def number(
+        self,
+        name: str,
+        default: object = None,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+    ) -> float:
+        if default is None:
+            default = _REQUIRED
+        value = self._raw(name, default)
+        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+            raise ConfigError(self.source, self._key(name), "a finite number", value)
+        value = float(value)
+        _check_range(self.source, self._key(name), value, low, high, low_open)
+        return value
+
+    def integer(self, name: str, default: object = None, *, low: int | None = None,
+                high: int | None = None) -> int:
+        if default is None:
+            default = _REQUIRED
+        value = self._raw(name, default)
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(self.source, self._key(name), "an integer", value)
+        _check_range(self.source, self._key(name), value, low, high, False)
+        return value
+
+    def string(self, name: str, default: object = None, *, choices: tuple[str, ...] = ()) -> str:
+        if default is None:
+            default = _REQUIRED
+        value = self._raw(name, default)
+        if not isinstance(value, str) or not value:
+            raise ConfigError(self.source, self._key(name), "a non-empty string", value)
+        if choices and value not in choices:
+            raise ConfigError(self.source, self._key(name), f"one of {', '.join(choices)}", value)
+        return value
+
+    def finish(self) -> None:
+        unknown = sorted(set(self.data) - self.used)
+        if unknown:
+            raise ConfigError(
+                self.source, self._key(unknown[0]), "no such key (known: "
+                + ", ".join(sorted(self.used)) + ")", self.data[unknown[0]]
+            )
+
+
+_REQUIRED = object()
+
+
+def _check_range(source: str, key: str, value: float, low: float | None, high: float | None,
+                 low_open: bool) -> None:
+    if low is not None and (value <= low if low_open else value < low):
+        raise ConfigError(source, key, f"a value {'>' if low_open else '>='} {low:g}", value)
+    if high is not None and value > high:
+        raise ConfigError(source, key, f"a value <= {high:g}", value)
+
+
+def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
+    unit = table.string("unit")
+    limit_min = table.number("limit_min")
+    limit_max = table.number("limit_max")
+    if limit_max <= limit_min:
+        raise ConfigError(table.source, f"{table.path}.limit_max", f"a value > limit_min = {limit_min:g}",
+                          limit_max)
+    search_min = table.number("search_min", low=limit_min, high=limit_max)
+    search_max = table.number("search_max", low=limit_min, high=limit_max)
+    if search_max <= search_min:
+        raise ConfigError(table.source, f"{table.path}.search_max",
+                          f"a value > search_min = {search_min:g}", search_max)
+    max_step = table.number("max_step", low=0.0, low_open=True)
+    table.finish()
+    return SetpointConfig(name, unit, search_min, search_max, limit_min, limit_max, max_step)
+
+
+def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
+                     base_dir: Path | None = None) -> RunConfig:
+    """Check a parsed configuration and turn it into a :class:`RunConfig`.
+
+    Parameters
+    ----------
+    data : Mapping
+        The parsed TOML document.
+    source : str
+        Name of the file it came from, for error messages.
+    base_dir : Path, optional
+        Folder against which relative paths in the file are resolved (the file's folder).
+    """
+    base = base_dir if base_dir is not None else Path.cwd()
+    top = _Table(source, "", data)
+
+    bus_t = top.table("bus")
+    endpoint = bus_t.string("endpoint")
+    if not endpoint.startswith(("tcp://", "ipc://", "inproc://")):
+        raise ConfigError(source, "bus.endpoint", "a ZeroMQ endpoint such as tcp://127.0.0.1:5560",
+                          endpoint)
+    curve_t = bus_t.table("curve", required=False)
+    curve = None
+    if curve_t is not None:
+        curve = CurveConfig(
+            base / curve_t.string("client_secret_key_file"),
+            base / curve_t.string("server_public_key_file"),
+        )
+        curve_t.finish()
+    bus = BusConfig(
+        endpoint=endpoint,
+        timeout_s=bus_t.number("timeout_s", low=0.0, high=600.0, low_open=True),
+        retries=bus_t.integer("retries", low=0, high=100),
+        backoff_s=bus_t.number("backoff_s", low=0.0, high=60.0),
+        curve=curve,
+    )
+    bus_t.finish()
+
+    sp_t = top.table("setpoints")
+    setpoints = []
+    for name in sorted(sp_t.data, key=lambda n: (n != "velocity", n != "detuning", n)):
+        sub = sp_t.table(name)
+        setpoints.append(_read_setpoint(sub, name))
+    for needed in ("velocity", "detuning"):
+        if needed not in sp_t.data:
+            raise ConfigError(source, f"setpoints.{needed}", "a table (missing)", None)
+    sp_t.finish()
+
+    m_t = top.table("measurement")
+    measurement = MeasurementConfig(
+        shots_per_phase=m_t.integer("shots_per_phase", low=1, high=10_000_000),
+        ramsey_phases=m_t.integer("ramsey_phases", low=3, high=256),
+        confidence=m_t.number("confidence", 0.95, low=0.5, high=0.999),
+        resamples=m_t.integer("resamples", 2000, low=100, high=100_000),
+        verification_shots_per_phase=m_t.integer("verification_shots_per_phase", low=1,
+                                                 high=100_000_000),
+    )
+    m_t.finish()
+
+    s_t = top.table("search")
+    strategy = s_t.string("strategy", "bayesian", choices=get_args(StrategyKind))
+    search = SearchConfig(
+        strategy=strategy,  # type: ignore[arg-type]
+        seed=s_t.integer("seed", 0, low=0, high=2**32 - 1),
+        max_points=s_t.integer("max_points", low=1, high=10_000),
+        max_shots=s_t.integer("max_shots", low=1),
+        max_rig_time_s=s_t.number("max_rig_time_s", low=0.0, low_open=True),
+        n_initial_points=s_t.integer("n_initial_points", 8, low=1, high=1000),
+        min_points=s_t.integer("min_points", 12, low=1, high=10_000),
+        grid_points_per_dimension=s_t.integer("grid_points_per_dimension", 9, low=2, high=200),
+        coordinate_points_per_dimension=s_t.integer("coordinate_points_per_dimension", 9, low=3,
+                                                    high=200),
+        coordinate_rounds=s_t.integer("coordinate_rounds", 3, low=1, high=50),
+    )
+    s_t.finish()
+
+    n_t = top.table("nominal")
+    nominal = NominalConfig(
+        coupling_hz=n_t.number("coupling_hz", low=0.0, high=1e9, low_open=True),
+        waist_m=n_t.number("waist_m", low=0.0, high=1.0, low_open=True),
+    )
+    n_t.finish()
+
+    a_t = top.table("acceptance")
+    min_inversion = a_t.number("min_inversion", low=-1.0, high=1.0)
+    a_t.finish()
+
+    c_t = top.table("calibration")
+    store = base / c_t.string("store")
+    c_t.finish()
+
+    r_t = top.table("retune")
+    hw_t = r_t.table("half_widths")
+    half_widths = {}
+    for sp in setpoints:
+        half_widths[sp.name] = hw_t.number(sp.name, low=0.0, low_open=True)
+    hw_t.finish()
+    retune = RetuneConfig(
+        still_good_fraction=r_t.number("still_good_fraction", low=0.0, high=1.0, low_open=True),
+        half_widths=half_widths,
+        max_points=r_t.integer("max_points", low=1, high=10_000),
+        max_shots=r_t.integer("max_shots", low=1),
+        n_initial_points=r_t.integer("n_initial_points", 4, low=1, high=1000),
+    )
+    r_t.finish()
+
+    rec_t = top.table("recovery", required=False)
+    if rec_t is None:
+        rec_t = _Table(source, "recovery", {})
+    recovery = RecoveryConfig(
+        step_retries=rec_t.integer("step_retries", 3, low=0, high=100),
+        retry_wait_s=rec_t.number("retry_wait_s", 1.0, low=0.0, high=3600.0),
+        interlock_poll_s=rec_t.number("interlock_poll_s", 5.0, low=0.0, high=3600.0, low_open=True),
+        interlock_max_wait_s=rec_t.number("interlock_max_wait_s", 600.0, low=0.0, high=86400.0),
+    )
+    rec_t.finish()
+    top.finish()
+
+    return RunConfig(
+        source=source,
+        bus=bus,
+        setpoints=tuple(setpoints),
+        measurement=measurement,
+        search=search,
+        nominal=nominal,
+        min_inversion=min_inversion,
+        calibration_store=store,
+        retune=retune,
+        recovery=recovery,
+        raw=dict(data),
+    )
+
+
+def load_config(path: str | Path) -> RunConfig:
+    """Read and check a calibrate/retune TOML file.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing, is not TOML, or holds a wrong, missing or unknown value.
+    """
+    path = Path(path)
+    try:
+        with path.open("rb") as handle:
+            data = tomllib.load(handle)
+    except FileNotFoundError as exc:
+        raise ConfigError(str(path), "<file>", "an existing TOML file", "no such file") from exc
+    except OSError as exc:
+        raise ConfigError(str(path), "<file>", "a readable file", str(exc)) from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(str(path), "<file>", "valid TOML", str(exc)) from exc
+    return config_from_dict(data, source=str(path), base_dir=path.parent)

@@ -1,0 +1,227 @@
+"""The run folder: manifest, append-only JSON Lines journal, result file.
+
+One folder per run::
+
+    RUN_DIR/
+      manifest.json    written once at the start: run id, command, full config, seed,
+                       versions, the rig's describe reply
+      journal.jsonl    one JSON object per line, appended and flushed to disk (fsync) at every
+                       record: proposals, moves, acquisitions, estimates, decisions, the end
+      log.jsonl        structlog's JSON log of the run (configured by the CLI)
+      result.json      written once at the end (atomically): chosen set-points, inversion with
+                       interval, phase shift, absorption, contrasts, shots and rig time used
+
+Every journal record has ``seq`` (0, 1, 2, ... without gaps), ``type`` and ``t_wall`` (UTC ISO
+8601). A run killed mid-write can leave a partial last line; :func:`open_for_resume` keeps
+that fragment in ``journal.jsonl.partial`` and truncates the journal to its last complete
+record before appending again, so a resumed journal is always valid JSON Lines.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Iterator, Mapping
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from autotune.errors import JournalError
+
+__all__ = [
+    "Journal",
+    "JOURNAL_NAME",
+    "MANIFEST_NAME",
+    "RESULT_NAME",
+    "LOG_NAME",
+    "read_journal",
+    "read_json",
+    "write_json_atomic",
+    "utc_now",
+]
+
+JOURNAL_NAME = "journal.jsonl"
+MANIFEST_NAME = "manifest.json"
+RESULT_NAME = "result.json"
+LOG_NAME = "log.jsonl"
+
+#: End statuses after which a run may be continued with ``--resume`` (it did not finish).
+RESUMABLE = frozenset({"interrupted", "aborted", "failed"})
+
+
+def utc_now() -> str:
+    """The current UTC time as ISO 8601 with a ``Z``-free ``+00:00`` offset."""
+    return datetime.now(UTC).isoformat(timespec="milliseconds")
+
+
+def _to_json(obj: Any) -> str:
+    # allow_nan=False: a NaN in a record is a bug upstream and must not be written silently.
+    try:
+        return json.dumps(obj, allow_nan=False, separators=(",", ":"), default=_json_default)
+    except ValueError as exc:
+        raise JournalError(f"record is not finite JSON: {exc}") from exc
+
+
+def _json_default(obj: Any) -> Any:
+    # numpy scalars and arrays reach the journal from the analysis; Paths from the config.
+    if hasattr(obj, "tolist"):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"cannot write {type(obj).__name__} to the journal")
+
+
+def write_json_atomic(path: Path, obj: Any) -> None:
+    """Write ``obj`` as indented JSON to ``path`` through a temporary file and a rename."""
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    try:
+        text = json.dumps(obj, allow_nan=False, indent=2, default=_json_default)
+        with tmp.open("w", encoding="utf-8") as handle:
+            handle.write(text + "\n")
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except (OSError, ValueError, TypeError) as exc:
+        raise JournalError(f"cannot write {path}: {exc}") from exc
+
+
+def read_json(path: Path) -> Any:
+    """Read a JSON file, raising :class:`JournalError` with the path on failure."""
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        raise JournalError(f"{path}: no such file") from exc
+    except (OSError, ValueError) as exc:
+        raise JournalError(f"{path}: not readable JSON ({exc})") from exc
+
+
+def _iter_lines(path: Path) -> Iterator[tuple[int, bytes]]:
+    with path.open("rb") as handle:
+        offset = 0
+        for line in handle:
+            yield offset, line
+            offset += len(line)
+
+
+def read_journal(path: Path) -> list[dict[str, Any]]:
+    """All complete records of a journal, in order.
+
+    A last line without its newline (a write cut by a kill) is ignored; any other line that is
+    not a JSON object, or a gap in ``seq``, raises :class:`JournalError`.
+    """
+    path = Path(path)
+    records: list[dict[str, Any]] = []
+    try:
+        for number, (_, line) in enumerate(_iter_lines(path), start=1):
+            if not line.endswith(b"\n"):
+                break
+            try:
+                record = json.loads(line)
+            except ValueError as exc:
+                raise JournalError(f"{path}:{number}: not JSON ({exc})") from exc
+            if not isinstance(record, dict) or record.get("seq") != len(records):
+                raise JournalError(f"{path}:{number}: expected record seq {len(records)}, "
+                                   f"got {str(line[:80])}")
+            records.append(record)
+    except FileNotFoundError as exc:
+        raise JournalError(f"{path}: no such journal") from exc
+    return records
+
+
+class Journal:
+    """An open, append-only journal in a run folder.
+
+    Use :meth:`create` for a new run and :meth:`open_for_resume` to continue one.
+    """
+
+    def __init__(self, run_dir: Path, next_seq: int) -> None:
+        self.run_dir = Path(run_dir)
+        self.path = self.run_dir / JOURNAL_NAME
+        self._seq = next_seq
+        try:
+            self._handle = self.path.open("a", encoding="utf-8")
+        except OSError as exc:
+            raise JournalError(f"cannot open {self.path} for appending: {exc}") from exc
+
+    @classmethod
+    def create(cls, run_dir: Path, manifest: Mapping[str, Any]) -> Journal:
+        """Make a new run folder with its manifest and an empty journal.
+
+        Raises
+        ------
+        JournalError
+            The folder already holds a journal (never overwrite a run) or cannot be written.
+        """
+        run_dir = Path(run_dir)
+        if (run_dir / JOURNAL_NAME).exists():
+            raise JournalError(f"{run_dir} already holds a run; use --resume or another folder")
+        try:
+            run_dir.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise JournalError(f"cannot create run folder {run_dir}: {exc}") from exc
+        write_json_atomic(run_dir / MANIFEST_NAME, dict(manifest))
+        return cls(run_dir, 0)
+
+    @classmethod
+    def open_for_resume(cls, run_dir: Path) -> tuple[Journal, dict[str, Any], list[dict[str, Any]]]:
+        """Reopen a run folder: its manifest, its complete records, and a journal to append to.
+
+        Raises
+        ------
+        JournalError
+            No manifest or journal, a damaged record, or the run already finished (an end
+            record whose status is not in :data:`RESUMABLE`).
+        """
+        run_dir = Path(run_dir)
+        manifest = read_json(run_dir / MANIFEST_NAME)
+        path = run_dir / JOURNAL_NAME
+        records = read_journal(path)
+        if records and records[-1].get("type") == "end" and \
+                records[-1].get("status") not in RESUMABLE:
+            raise JournalError(f"{run_dir}: the run already ended "
+                               f"({records[-1].get('status')}); nothing to resume")
+        complete = sum(len(line) for _, line in _iter_lines(path)
+                       if line.endswith(b"\n"))
+        size = path.stat().st_size
+        if size > complete:
+            with path.open("rb") as handle:
+                handle.seek(complete)
+                fragment = handle.read()
+            with (run_dir / (JOURNAL_NAME + ".partial")).open("ab") as keep:
+                keep.write(fragment + b"\n")
+            with path.open("r+b") as handle:
+                handle.truncate(complete)
+        return cls(run_dir, len(records)), manifest, records
+
+    @property
+    def next_seq(self) -> int:
+        """Sequence number the next record will get."""
+        return self._seq
+
+    def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
+        """Append one record and flush it to disk before returning it."""
+        if self._handle.closed:
+            raise JournalError(f"{self.path} is closed")
+        record = {"seq": self._seq, "type": record_type, "t_wall": utc_now(), **fields}
+        line = _to_json(record)
+        try:
+            self._handle.write(line + "\n")
+            self._handle.flush()
+            os.fsync(self._handle.fileno())
+        except OSError as exc:
+            raise JournalError(f"cannot append to {self.path}: {exc}") from exc
+        self._seq += 1
+        return record
+
+    def close(self) -> None:
+        """Close the file (records already written stay on disk)."""
+        if not self._handle.closed:
+            self._handle.close()
+
+    def __enter__(self) -> Journal:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
