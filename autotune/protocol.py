@@ -686,6 +686,7 @@ class SetpointLimit:
             value = getattr(self, name)
             if not _is_number(value) or not math.isfinite(value):
                 raise ValueError(f"SetpointLimit.{name}: expected a finite number, got {value!r}")
+            object.__setattr__(self, name, float(value))
         if not isinstance(self.unit, str):
             raise ValueError(f"SetpointLimit.unit: expected a string, got {self.unit!r}")
         if self.min > self.max:

@@ -1,0 +1,419 @@
+"""The ZeroMQ client of a rig: bounded waits, retries with the same msg_id, reconnects, CURVE keys.
+
+:class:`BusClient` speaks :mod:`autotune.protocol` over a REQ socket. Every call waits at most
+``timeout_s`` per attempt and makes at most ``1 + retries`` attempts, so a call never takes
+longer than :attr:`BusClient.max_wait_s`. A missed reply closes the socket (linger 0), opens a
+new one and resends the same bytes with the same ``msg_id``; the rig answers a repeated
+``msg_id`` from its cache, so nothing is executed twice.
+
+Before an ``apply`` leaves this process, every set-point is checked against the limits the rig
+described and the configured ones (the tighter of both wins) and against ``max_step`` from the
+value in force; a breach raises :class:`~autotune.errors.LimitError` and nothing is sent.
+
+A client is not thread-safe: use one per thread.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import time
+import types
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import structlog
+import zmq
+import zmq.auth
+
+from autotune import protocol
+from autotune.errors import ConfigError, LimitError, ProtocolError, RigError, RigTimeout
+from autotune.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
+
+__all__ = ["BusClient", "CurveClientKeys"]
+
+_log = structlog.get_logger(__name__)
+
+_BACKOFF_CAP_S = 2.0
+"""Longest single pause between attempts, s (the backoff doubles up to this)."""
+
+# Float round-off in a caller's step arithmetic must not refuse a step of exactly max_step.
+_STEP_TOLERANCE = 1e-9
+
+
+@dataclass(frozen=True)
+class CurveClientKeys:
+    """CURVE keys of a client: its own pair and the server's public key (Z85 bytes).
+
+    Attributes
+    ----------
+    public, secret : bytes
+        The client's key pair.
+    server_public : bytes
+        The server's public key.
+    """
+
+    public: bytes
+    secret: bytes
+    server_public: bytes
+
+    def __repr__(self) -> str:
+        return f"CurveClientKeys(public={self.public!r}, secret=<hidden>, server_public={self.server_public!r})"
+
+    @classmethod
+    def load(cls, client_secret_file: str | Path, server_public_file: str | Path) -> CurveClientKeys:
+        """Load keys from certificate files written by ``zmq.auth.create_certificates``.
+
+        Parameters
+        ----------
+        client_secret_file : str or Path
+            The client's ``.key_secret`` file (holds both of its keys).
+        server_public_file : str or Path
+            The server's ``.key`` (public) file.
+
+        Raises
+        ------
+        ConfigError
+            If a file is missing, unreadable, or lacks the key it must hold. There is no
+            fallback to plain text.
+        """
+        public, secret = _load_certificate(client_secret_file, "curve.client_secret_file")
+        if secret is None:
+            raise ConfigError(str(client_secret_file), "curve.client_secret_file",
+                              "a certificate with a secret key", "a public-only certificate")
+        server_public, _ = _load_certificate(server_public_file, "curve.server_public_file")
+        return cls(public=public, secret=secret, server_public=server_public)
+
+
+def _load_certificate(path: str | Path, key: str) -> tuple[bytes, bytes | None]:
+    try:
+        return zmq.auth.load_certificate(path)
+    except (OSError, ValueError) as exc:
+        raise ConfigError(str(path), key, "a readable ZeroMQ certificate file", f"{type(exc).__name__}: {exc}") from exc
+
+
+@contextlib.contextmanager
+def _zmq_errors(endpoint: str, op: str) -> Iterator[None]:
+    """The one place where zmq exceptions become autotune ones."""
+    try:
+        yield
+    except zmq.ZMQError as exc:
+        raise RigError(f"bus to {endpoint}: {op}: {exc}") from exc
+
+
+class BusClient:
+    """A rig reached over ZeroMQ.
+
+    Parameters
+    ----------
+    endpoint : str
+        ZeroMQ endpoint of the rig, e.g. ``"tcp://127.0.0.1:5560"``.
+    timeout_s : float
+        Longest wait for one reply, s (> 0).
+    retries : int
+        Further attempts after the first (>= 0).
+    backoff_s : float
+        Pause before the first retry, s (>= 0); it doubles each retry, capped at 2 s.
+    curve : CurveClientKeys, optional
+        Encrypt and authenticate with CURVE; the rig must know the client's public key.
+    limits : Mapping[str, SetpointLimit], optional
+        Configured limits; where the rig also describes a limit, the tighter one wins.
+    context : zmq.Context, optional
+        Context to create sockets in; by default the client owns a new one.
+
+    Raises
+    ------
+    ConfigError
+        For a bad argument (names the argument, expected and got).
+
+    Examples
+    --------
+    >>> with BusClient("tcp://127.0.0.1:5560", timeout_s=1.0, retries=3, backoff_s=0.1) as rig:
+    ...     rig.describe()
+    ...     rig.apply({"detuning": 2.0e3})
+    """
+
+    def __init__(
+        self,
+        endpoint: str,
+        *,
+        timeout_s: float,
+        retries: int,
+        backoff_s: float,
+        curve: CurveClientKeys | None = None,
+        limits: Mapping[str, SetpointLimit] | None = None,
+        context: zmq.Context | None = None,
+    ) -> None:
+        def bad(key: str, expected: str, got: object) -> ConfigError:
+            return ConfigError("<BusClient>", key, expected, got)
+
+        if not isinstance(endpoint, str) or "://" not in endpoint:
+            raise bad("endpoint", "a ZeroMQ endpoint such as 'tcp://127.0.0.1:5560'", endpoint)
+        if isinstance(timeout_s, bool) or not isinstance(timeout_s, (int, float)) or not (
+            math.isfinite(timeout_s) and timeout_s > 0
+        ):
+            raise bad("timeout_s", "a finite number > 0", timeout_s)
+        if isinstance(retries, bool) or not isinstance(retries, int) or retries < 0:
+            raise bad("retries", "an integer >= 0", retries)
+        if isinstance(backoff_s, bool) or not isinstance(backoff_s, (int, float)) or not (
+            math.isfinite(backoff_s) and backoff_s >= 0
+        ):
+            raise bad("backoff_s", "a finite number >= 0", backoff_s)
+        if curve is not None and not isinstance(curve, CurveClientKeys):
+            raise bad("curve", "CurveClientKeys or None", type(curve).__name__)
+        configured: dict[str, SetpointLimit] = {}
+        for name, limit in (limits or {}).items():
+            if not isinstance(limit, SetpointLimit):
+                raise bad(f"limits.{name}", "a SetpointLimit", limit)
+            configured[str(name)] = limit
+
+        self._endpoint = endpoint
+        self._timeout_ms = max(1, int(round(timeout_s * 1000)))
+        self._timeout_s = float(timeout_s)
+        self._retries = retries
+        self._backoff_s = float(backoff_s)
+        self._curve = curve
+        self._configured = types.MappingProxyType(configured)
+        self._described: Mapping[str, SetpointLimit] = types.MappingProxyType({})
+        self._limits: Mapping[str, SetpointLimit] = self._configured
+        self._in_force: dict[str, float] = {}
+        self._own_context = context is None
+        self._context = zmq.Context() if context is None else context
+        self._socket: zmq.Socket | None = None
+        self._log = _log.bind(endpoint=endpoint)
+        try:
+            self._open()
+        except ConfigError:
+            self.close()
+            raise
+
+    # ------------------------------------------------------------------ lifecycle
+
+    def __enter__(self) -> BusClient:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the socket (and the context if the client created it). Safe to call twice."""
+        self._close_socket()
+        if self._own_context and self._context is not None and not self._context.closed:
+            self._context.term()
+
+    def _open(self) -> None:
+        socket = self._context.socket(zmq.REQ)
+        socket.setsockopt(zmq.LINGER, 0)
+        # Guard against a runaway peer; the decoder then rejects anything above the protocol limit.
+        socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
+        if self._curve is not None:
+            socket.curve_publickey = self._curve.public
+            socket.curve_secretkey = self._curve.secret
+            socket.curve_serverkey = self._curve.server_public
+        try:
+            socket.connect(self._endpoint)
+        except zmq.ZMQError as exc:
+            socket.close(linger=0)
+            raise ConfigError("<BusClient>", "endpoint", "a connectable ZeroMQ endpoint", f"{self._endpoint} ({exc})") from exc
+        self._socket = socket
+
+    def _close_socket(self) -> None:
+        if self._socket is not None:
+            self._socket.close(linger=0)
+            self._socket = None
+
+    # ------------------------------------------------------------------ properties
+
+    @property
+    def endpoint(self) -> str:
+        """The rig's endpoint."""
+        return self._endpoint
+
+    @property
+    def max_wait_s(self) -> float:
+        """Upper bound of one call's duration before RigTimeout, s (waits plus backoffs)."""
+        pauses = sum(self._pause_s(attempt) for attempt in range(1, self._retries + 1))
+        return (self._retries + 1) * self._timeout_s + pauses
+
+    @property
+    def limits(self) -> Mapping[str, SetpointLimit]:
+        """Effective limits: the tighter of described and configured, per set-point."""
+        return self._limits
+
+    @property
+    def setpoints(self) -> Mapping[str, float]:
+        """Set-points in force as last reported by the rig (empty until a reply told them)."""
+        return types.MappingProxyType(dict(self._in_force))
+
+    # ------------------------------------------------------------------ the ops
+
+    def describe(self) -> Description:
+        """Ask the rig to describe itself; its limits then join the effective limits.
+
+        Raises
+        ------
+        ConfigError
+            If a configured limit has another unit than the rig's or does not overlap it.
+        """
+        description = protocol.parse_description(self._call(Op.DESCRIBE, {}))
+        merged = dict(description.setpoints)
+        for name, configured in self._configured.items():
+            if name in merged:
+                try:
+                    merged[name] = merged[name].tighter(configured)
+                except ValueError as exc:
+                    raise ConfigError("<BusClient>", f"limits.{name}", f"a limit compatible with the rig's {merged[name]}", f"{configured} ({exc})") from exc
+            else:
+                merged[name] = configured
+        self._described = description.setpoints
+        self._limits = types.MappingProxyType(merged)
+        return description
+
+    def apply(self, setpoints: Mapping[str, float]) -> Applied:
+        """Change set-points (partial allowed), after checking limits and steps locally.
+
+        Parameters
+        ----------
+        setpoints : Mapping[str, float]
+            New values in each set-point's unit (``velocity`` m/s, ``detuning`` Hz).
+
+        Returns
+        -------
+        Applied
+            All set-points in force and the rig clock.
+
+        Raises
+        ------
+        LimitError
+            If a value is outside the effective limits, the step from the value in force is
+            larger than ``max_step``, or no limit is known for a name (call :meth:`describe`).
+        """
+        wanted = self._check_setpoints(setpoints)
+        applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted}))
+        self._in_force = dict(applied.setpoints)
+        return applied
+
+    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Acquisition:
+        """Take ``shots`` samples with the given field state and Ramsey phase (rad)."""
+        acquisition = protocol.parse_acquisition(
+            self._call(Op.ACQUIRE, {"field": field, "ramsey_phase": ramsey_phase, "shots": shots})
+        )
+        self._in_force = dict(acquisition.setpoints)
+        return acquisition
+
+    def status(self) -> Status:
+        """Ask for the rig's clock, interlock, set-points in force and shot total."""
+        status = protocol.parse_status(self._call(Op.STATUS, {}))
+        self._in_force = dict(status.setpoints)
+        return status
+
+    def safe(self) -> Applied:
+        """Move the rig to its safe set-points (the rig's own procedure; ``clock`` is None)."""
+        applied = protocol.parse_safe(self._call(Op.SAFE, {}))
+        self._in_force.update(applied.setpoints)
+        return applied
+
+    def truth(self, setpoints: Mapping[str, float] | None = None) -> dict[str, Any]:
+        """Simulated rig only: the model's exact figures at ``setpoints`` (default: in force)."""
+        args = {} if setpoints is None else {"setpoints": dict(setpoints)}
+        return protocol.parse_truth(self._call(Op.TRUTH, args))
+
+    def advance(self, seconds: float) -> dict[str, Any]:
+        """Simulated rig only: move the virtual clock on by ``seconds`` (s)."""
+        return protocol.parse_advance(self._call(Op.ADVANCE, {"seconds": seconds}))
+
+    def thermal_step(self, shift_hz: float) -> dict[str, Any]:
+        """Simulated rig only: a sudden cavity frequency step of ``shift_hz`` (Hz)."""
+        return protocol.parse_thermal_step(self._call(Op.THERMAL_STEP, {"shift_hz": shift_hz}))
+
+    # ------------------------------------------------------------------ guards
+
+    def _check_setpoints(self, setpoints: Mapping[str, float]) -> dict[str, float]:
+        if not isinstance(setpoints, Mapping) or not setpoints:
+            raise LimitError(f"apply: expected a non-empty mapping of set-point: value, got {setpoints!r}")
+        unknown_force = [n for n in setpoints if n not in self._in_force]
+        if unknown_force and all(n in self._limits for n in setpoints):
+            # The step check needs the values in force; ask once rather than guess.
+            self.status()
+        wanted: dict[str, float] = {}
+        for name, value in setpoints.items():
+            limit = self._limits.get(name)
+            if limit is None:
+                known = ", ".join(sorted(self._limits)) or "none (call describe() first)"
+                raise LimitError(f"set-point {name!r}: no limit known (known: {known}); refused {value!r}")
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+                raise LimitError(f"set-point {name!r}: expected a finite number, got {value!r}")
+            value = float(value)
+            if not limit.min <= value <= limit.max:
+                raise LimitError(
+                    f"set-point {name!r}: {value!r} {limit.unit} is outside the limit "
+                    f"[{limit.min!r}, {limit.max!r}] {limit.unit}"
+                )
+            current = self._in_force.get(name)
+            if current is None:
+                raise LimitError(f"set-point {name!r}: the value in force is unknown, so the step cannot be checked")
+            step = abs(value - current)
+            if step > limit.max_step * (1 + _STEP_TOLERANCE):
+                raise LimitError(
+                    f"set-point {name!r}: step {step!r} {limit.unit} from {current!r} to {value!r} "
+                    f"exceeds the limit max_step {limit.max_step!r} {limit.unit}"
+                )
+            wanted[name] = value
+        return wanted
+
+    # ------------------------------------------------------------------ transport
+
+    def _pause_s(self, attempt: int) -> float:
+        return min(self._backoff_s * 2 ** (attempt - 1), _BACKOFF_CAP_S) if attempt > 0 else 0.0
+
+    def _call(self, op: Op, args: Mapping[str, Any]) -> dict[str, Any]:
+        msg_id = protocol.new_msg_id()
+        data = protocol.encode_request(op, args, msg_id)
+        log = self._log.bind(op=op.value, msg_id=msg_id)
+        last_problem: ProtocolError | None = None
+        for attempt in range(self._retries + 1):
+            if attempt > 0:
+                pause = self._pause_s(attempt)
+                log.warning("bus_retry", attempt=attempt, of=self._retries, pause_s=pause,
+                            reason="malformed reply" if last_problem else "no reply")
+                time.sleep(pause)
+            if self._socket is None:
+                self._open()
+                log.info("bus_reconnect", attempt=attempt)
+            frames = self._exchange(data, op)
+            if frames is None:
+                last_problem = None
+                # A REQ socket that missed its reply cannot send again: start a fresh one.
+                self._close_socket()
+                continue
+            try:
+                if len(frames) != 1:
+                    raise ProtocolError(f"reply: expected one frame, got {len(frames)}")
+                return protocol.decode_reply(frames[0], msg_id)
+            except ProtocolError as exc:
+                last_problem = exc
+                log.warning("bus_malformed_reply", attempt=attempt, error=str(exc))
+        attempts = self._retries + 1
+        if last_problem is not None:
+            raise ProtocolError(
+                f"{op.value} to {self._endpoint}: no valid reply in {attempts} attempts; last: {last_problem}"
+            ) from last_problem
+        raise RigTimeout(
+            f"{op.value} to {self._endpoint}: no reply within {self._timeout_s} s, {attempts} attempts"
+        )
+
+    def _exchange(self, data: bytes, op: Op) -> list[bytes] | None:
+        """Send one request and wait for its reply frames; ``None`` if none came within the bound."""
+        socket = self._socket
+        assert socket is not None
+        with _zmq_errors(self._endpoint, op.value):
+            deadline = time.monotonic() + self._timeout_s
+            if not socket.poll(self._timeout_ms, zmq.POLLOUT):
+                return None
+            socket.send(data, zmq.NOBLOCK)
+            remaining_ms = max(0, int((deadline - time.monotonic()) * 1000))
+            if not socket.poll(remaining_ms, zmq.POLLIN):
+                return None
+            return socket.recv_multipart(zmq.NOBLOCK)

@@ -1,0 +1,637 @@
+"""Serve a simulated rig over :mod:`autotune.protocol` on a ZeroMQ ROUTER socket.
+
+The server answers every request, valid or not, with one reply; bad input never stops it. A
+request repeated with a ``msg_id`` it has answered gets the cached reply bytes and is not
+executed again (bounded LRU cache). Faults can be injected to test clients: dropped, delayed
+and corrupted replies, and an exit after a number of messages. Optional CURVE encryption admits
+only clients whose public key is in an allowed folder; others get nothing and are logged.
+
+Run standalone with ``python -m drivers_sim.server --config configs/sim-rig.toml``; the
+``autotune rig`` command wires :func:`add_rig_arguments` and :func:`run_rig` the same way.
+Exit status: 0 after a clean stop (SIGINT, SIGTERM, or the ``exit_after_messages`` fault),
+2 for a bad configuration or key file, 1 if the socket cannot be bound.
+"""
+
+from __future__ import annotations
+
+import argparse
+import collections
+import hashlib
+import heapq
+import ipaddress
+import itertools
+import math
+import os
+import random
+import signal
+import sys
+import time
+import types
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
+
+import structlog
+import zmq
+import zmq.auth
+from zmq.auth.thread import ThreadAuthenticator
+from zmq.utils.monitor import recv_monitor_message
+
+from autotune import protocol
+from autotune.protocol import ErrorKind, Op, RequestRejected
+
+__all__ = [
+    "DEFAULT_BIND",
+    "FaultConfig",
+    "CurveServerKeys",
+    "ServerConfigError",
+    "RigServer",
+    "add_rig_arguments",
+    "run_rig",
+    "main",
+]
+
+_log = structlog.get_logger(__name__)
+
+DEFAULT_BIND = "tcp://127.0.0.1:5560"
+"""Where the server listens unless told otherwise: loopback only."""
+
+_DEFAULT_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "sim-rig.toml"
+_POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag again
+_BATCH = 64  # messages taken per wake-up before due replies are sent
+_HANDSHAKE_EVENTS = (
+    zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
+)
+
+
+class ServerConfigError(ValueError):
+    """A fault table, flag or key file for the server is wrong.
+
+    Parameters
+    ----------
+    file : str
+        The file read (or ``"<flags>"``).
+    key : str
+        The offending key or flag.
+    expected : str
+        What was expected.
+    got : object
+        What was found.
+    """
+
+    def __init__(self, file: str, key: str, expected: str, got: object) -> None:
+        self.file, self.key, self.expected, self.got = str(file), key, expected, got
+        super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}")
+
+
+# --------------------------------------------------------------------------- faults
+
+
+@dataclass(frozen=True)
+class FaultConfig:
+    """Faults the server injects into its replies, to test clients.
+
+    Attributes
+    ----------
+    drop_reply_probability : float
+        Probability that a reply is not sent (the request was executed and its reply cached).
+    delay_reply_s : float
+        Delay before a freshly executed reply is sent, s; replays from the cache go at once,
+        as from a rig that was slow to execute but has the answer when asked again.
+    corrupt_reply_probability : float
+        Probability that a reply is sent truncated and ending in an invalid UTF-8 byte, so that
+        a client always detects it.
+    exit_after_messages : int
+        Stop after this many received messages have been answered (0: never).
+    """
+
+    drop_reply_probability: float = 0.0
+    delay_reply_s: float = 0.0
+    corrupt_reply_probability: float = 0.0
+    exit_after_messages: int = 0
+
+    def __post_init__(self) -> None:
+        for key in ("drop_reply_probability", "corrupt_reply_probability"):
+            value = getattr(self, key)
+            if not _is_number(value) or not 0.0 <= value <= 1.0:
+                raise ServerConfigError("<memory>", key, "a probability in [0, 1]", value)
+        delay = self.delay_reply_s
+        if not _is_number(delay) or not (math.isfinite(delay) and delay >= 0):
+            raise ServerConfigError("<memory>", "delay_reply_s", "a finite number of seconds >= 0", delay)
+        value = self.exit_after_messages
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise ServerConfigError("<memory>", "exit_after_messages", "an integer >= 0 (0: never)", value)
+
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any] | None, *, file: str = "<memory>") -> FaultConfig:
+        """Validate a ``[faults]`` table (missing keys take the no-fault defaults).
+
+        Raises
+        ------
+        ServerConfigError
+            For an unknown key or a bad value, naming ``faults.<key>``.
+        """
+        if table is None:
+            return cls()
+        if not isinstance(table, Mapping):
+            raise ServerConfigError(file, "faults", "a table", table)
+        known = set(cls.__dataclass_fields__)
+        for key in table:
+            if key not in known:
+                raise ServerConfigError(file, f"faults.{key}", f"one of {', '.join(sorted(known))}", key)
+        try:
+            return cls(**table)
+        except ServerConfigError as exc:
+            raise ServerConfigError(file, f"faults.{exc.key}", exc.expected, exc.got) from None
+
+    def overridden(self, **values: Any) -> FaultConfig:
+        """Return a copy with the given fields replaced where the value is not None."""
+        changes = {k: v for k, v in values.items() if v is not None}
+        try:
+            return replace(self, **changes)
+        except ServerConfigError as exc:
+            raise ServerConfigError("<flags>", exc.key, exc.expected, exc.got) from exc
+
+
+def _is_number(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+# --------------------------------------------------------------------------- CURVE
+
+
+@dataclass(frozen=True, repr=False)
+class CurveServerKeys:
+    """The server's CURVE key pair and the public keys of the clients it admits (Z85 bytes)."""
+
+    public: bytes
+    secret: bytes
+    allowed: frozenset[bytes]
+
+    def __repr__(self) -> str:
+        return f"CurveServerKeys(public={self.public!r}, secret=<hidden>, allowed={len(self.allowed)} keys)"
+
+    @classmethod
+    def load(cls, secret_file: str | Path, allowed_dir: str | Path) -> CurveServerKeys:
+        """Load the server's ``.key_secret`` file and every ``*.key`` file of ``allowed_dir``.
+
+        Raises
+        ------
+        ServerConfigError
+            If a file cannot be read, lacks its secret key, or the folder holds no public key.
+            There is no fallback to plain text.
+        """
+        try:
+            public, secret = zmq.auth.load_certificate(secret_file)
+        except (OSError, ValueError) as exc:
+            raise ServerConfigError(str(secret_file), "curve_secret_key", "a readable ZeroMQ certificate", f"{type(exc).__name__}: {exc}") from exc
+        if secret is None:
+            raise ServerConfigError(str(secret_file), "curve_secret_key", "a certificate with a secret key", "a public-only certificate")
+        folder = Path(allowed_dir)
+        if not folder.is_dir():
+            raise ServerConfigError(str(folder), "curve_allowed_dir", "a folder of client public keys (*.key)", "no such folder")
+        try:
+            allowed = frozenset(zmq.auth.load_certificates(folder))
+        except (OSError, ValueError) as exc:
+            raise ServerConfigError(str(folder), "curve_allowed_dir", "readable certificates", f"{type(exc).__name__}: {exc}") from exc
+        if not allowed:
+            raise ServerConfigError(str(folder), "curve_allowed_dir", "at least one client public key (*.key)", "none")
+        return cls(public=public, secret=secret, allowed=allowed)
+
+
+class _AllowedKeys:
+    """Credentials provider for pyzmq's authenticator: admit listed keys, log the others."""
+
+    def __init__(self, allowed: frozenset[bytes], log: Any) -> None:
+        self._allowed = allowed
+        self._log = log
+
+    def callback(self, domain: str, key: bytes) -> bool:
+        if key in self._allowed:
+            return True
+        self._log.warning("curve_client_refused", reason="public key not in the allowed folder",
+                          client_key=key.decode("ascii", "replace"), domain=domain)
+        return False
+
+
+# --------------------------------------------------------------------------- the server
+
+
+class RigServer:
+    """A rig served over ZeroMQ.
+
+    Parameters
+    ----------
+    rig : object
+        The rig: methods ``describe``, ``apply``, ``acquire``, ``status``, ``safe``, ``truth``,
+        ``advance``, ``thermal_step`` returning JSON-ready result dicts.
+    bind : str
+        Endpoint to bind, e.g. ``"tcp://127.0.0.1:5560"``; port ``0`` or ``*`` picks a free one
+        (see :attr:`endpoint` after :meth:`start`).
+    faults : FaultConfig
+        Faults to inject (``FaultConfig()`` for none).
+    curve : CurveServerKeys, optional
+        Encrypt and admit only the allowed client keys.
+    cache_size : int
+        Replies kept for repeated msg_ids (LRU), >= 1.
+    fault_seed : int
+        Seed of the fault generator.
+    context : zmq.Context, optional
+        Context for the sockets; by default the server owns a new one.
+    """
+
+    def __init__(
+        self,
+        rig: Any,
+        bind: str,
+        *,
+        faults: FaultConfig,
+        curve: CurveServerKeys | None = None,
+        cache_size: int = 1024,
+        fault_seed: int = 0,
+        context: zmq.Context | None = None,
+    ) -> None:
+        if not isinstance(bind, str) or "://" not in bind:
+            raise ServerConfigError("<arguments>", "bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
+        if not isinstance(faults, FaultConfig):
+            raise ServerConfigError("<arguments>", "faults", "a FaultConfig", faults)
+        if isinstance(cache_size, bool) or not isinstance(cache_size, int) or cache_size < 1:
+            raise ServerConfigError("<arguments>", "cache_size", "an integer >= 1", cache_size)
+        self._rig = rig
+        self._bind = _wildcard_port(bind)
+        self._faults = faults
+        self._curve = curve
+        self._cache: collections.OrderedDict[str, tuple[bytes, bytes]] = collections.OrderedDict()
+        self._cache_size = cache_size
+        self._random = random.Random(fault_seed)
+        self._own_context = context is None
+        self._context = context
+        self._socket: zmq.Socket | None = None
+        self._monitor: zmq.Socket | None = None
+        self._auth: ThreadAuthenticator | None = None
+        self._endpoint: str | None = None
+        self._pending: list[tuple[float, int, list[bytes]]] = []
+        self._sequence = itertools.count()
+        self._received = 0
+        self._stopping = False
+        self._log = _log.bind(bind=bind)
+        self._dispatch = types.MappingProxyType({
+            Op.DESCRIBE: lambda a: rig.describe(),
+            Op.APPLY: lambda a: rig.apply(dict(a["setpoints"])),
+            Op.ACQUIRE: lambda a: rig.acquire(a["field"], a["ramsey_phase"], a["shots"]),
+            Op.STATUS: lambda a: rig.status(),
+            Op.SAFE: lambda a: rig.safe(),
+            Op.TRUTH: lambda a: rig.truth(dict(a["setpoints"]) if "setpoints" in a else None),
+            Op.ADVANCE: lambda a: rig.advance(a["seconds"]),
+            Op.THERMAL_STEP: lambda a: rig.thermal_step(a["shift_hz"]),
+        })
+
+    # ------------------------------------------------------------------ lifecycle
+
+    def __enter__(self) -> RigServer:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    @property
+    def endpoint(self) -> str | None:
+        """The endpoint actually bound (port resolved), or None before :meth:`start`."""
+        return self._endpoint
+
+    def start(self) -> str:
+        """Bind the socket (starting the CURVE authenticator first) and return the endpoint.
+
+        Raises
+        ------
+        zmq.ZMQError
+            If the endpoint cannot be bound (in use, not an address of this host).
+        """
+        if self._context is None:
+            self._context = zmq.Context()
+        socket = self._context.socket(zmq.ROUTER)
+        socket.setsockopt(zmq.LINGER, 0)
+        # Refuse absurd frames at the transport; anything above the protocol's limit but below
+        # this still gets a proper bad_request reply.
+        socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
+        self._socket = socket
+        if self._curve is not None:
+            # The authenticator must run before the socket binds, or clients slip past it.
+            self._auth = ThreadAuthenticator(self._context)
+            self._auth.start()
+            self._auth.configure_curve_callback(domain="*", credentials_provider=_AllowedKeys(self._curve.allowed, self._log))
+            socket.curve_secretkey = self._curve.secret
+            socket.curve_publickey = self._curve.public
+            socket.curve_server = True
+            self._monitor = socket.get_monitor_socket(_HANDSHAKE_EVENTS)
+        socket.bind(self._bind)
+        endpoint = socket.getsockopt_string(zmq.LAST_ENDPOINT)
+        self._endpoint = endpoint
+        if not _is_loopback(endpoint):
+            self._log.warning("server_not_loopback", endpoint=endpoint, reason="bound beyond loopback as asked")
+        self._log.info("server_listening", endpoint=endpoint, curve=self._curve is not None,
+                       faults={k: getattr(self._faults, k) for k in FaultConfig.__dataclass_fields__})
+        return endpoint
+
+    def stop(self) -> None:
+        """Ask :meth:`serve` to return at its next wake-up (safe from a signal handler)."""
+        self._stopping = True
+
+    def close(self) -> None:
+        """Close sockets, stop the authenticator and end an owned context. Safe to call twice."""
+        if self._monitor is not None and self._socket is not None:
+            try:
+                self._socket.disable_monitor()
+            except zmq.ZMQError:
+                pass
+        if self._monitor is not None:
+            self._monitor.close(linger=0)
+            self._monitor = None
+        if self._socket is not None:
+            self._socket.close(linger=0)
+            self._socket = None
+        if self._auth is not None:
+            self._auth.stop()
+            self._auth = None
+        if self._own_context and self._context is not None and not self._context.closed:
+            self._context.term()
+
+    # ------------------------------------------------------------------ the loop
+
+    def serve(self) -> None:
+        """Answer requests until :meth:`stop` is called or the exit fault fires."""
+        if self._socket is None:
+            raise RuntimeError("RigServer.serve: call start() first")
+        poller = zmq.Poller()
+        poller.register(self._socket, zmq.POLLIN)
+        if self._monitor is not None:
+            poller.register(self._monitor, zmq.POLLIN)
+        limit = self._faults.exit_after_messages
+        while not self._stopping:
+            timeout_ms = _POLL_MS
+            if self._pending:
+                timeout_ms = min(timeout_ms, max(0, math.ceil((self._pending[0][0] - time.monotonic()) * 1000)))
+            events = dict(poller.poll(timeout_ms))
+            if self._monitor is not None and self._monitor in events:
+                self._drain_monitor()
+            if self._socket in events:
+                for _ in range(_BATCH):
+                    if limit and self._received >= limit:
+                        break
+                    try:
+                        frames = self._socket.recv_multipart(zmq.NOBLOCK)
+                    except zmq.Again:
+                        break
+                    self._received += 1
+                    self._on_message(frames)
+            self._send_due()
+            if limit and self._received >= limit and not self._pending:
+                self._log.warning("fault_exit", messages=self._received, reason="exit_after_messages reached")
+                return
+        self._log.info("server_stopping", messages=self._received)
+
+    def _on_message(self, frames: list[bytes]) -> None:
+        try:
+            split = frames.index(b"")
+            envelope, body = frames[: split + 1], frames[split + 1 :]
+        except ValueError:
+            # A DEALER peer without the REQ delimiter: reply to its identity alone.
+            envelope, body = frames[:1], frames[1:]
+        if len(body) != 1:
+            reply = protocol.encode_error("", ErrorKind.BAD_REQUEST, f"message: expected one frame of JSON, got {len(body)}")
+            replayed = False
+        else:
+            reply, replayed = self._handle(body[0])
+        delay = 0.0 if replayed else self._faults.delay_reply_s
+        heapq.heappush(self._pending, (time.monotonic() + delay, next(self._sequence), envelope + [reply]))
+
+    def _send_due(self) -> None:
+        now = time.monotonic()
+        while self._pending and self._pending[0][0] <= now:
+            _, _, frames = heapq.heappop(self._pending)
+            if self._random.random() < self._faults.drop_reply_probability:
+                self._log.info("fault_drop_reply")
+                continue
+            if self._random.random() < self._faults.corrupt_reply_probability:
+                reply = frames[-1]
+                frames = frames[:-1] + [reply[: self._random.randrange(len(reply))] + b"\xff"]
+                self._log.info("fault_corrupt_reply")
+            try:
+                self._socket.send_multipart(frames, zmq.NOBLOCK)  # type: ignore[union-attr]
+            except zmq.ZMQError as exc:
+                # The peer is gone or full; the client will retry and get the cached reply.
+                self._log.info("reply_not_sent", error=str(exc))
+
+    def _drain_monitor(self) -> None:
+        assert self._monitor is not None
+        while True:
+            try:
+                event = recv_monitor_message(self._monitor, zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            try:
+                name = zmq.Event(event["event"]).name
+            except ValueError:
+                name = str(event["event"])
+            self._log.warning("curve_handshake_refused", event=str(name), value=event["value"],
+                              peer=event["endpoint"].decode("ascii", "replace") if isinstance(event["endpoint"], bytes) else str(event["endpoint"]))
+
+    # ------------------------------------------------------------------ requests
+
+    def handle(self, payload: bytes) -> bytes:
+        """Answer one request frame (from the cache for a repeated msg_id); never raises."""
+        return self._handle(payload)[0]
+
+    def _handle(self, payload: bytes) -> tuple[bytes, bool]:
+        try:
+            request = protocol.decode_request(payload)
+        except RequestRejected as exc:
+            self._log.info("request_rejected", kind=exc.kind.value, detail=exc.detail, msg_id=exc.msg_id)
+            reply = protocol.encode_error(exc.msg_id, exc.kind, exc.detail)
+            if exc.msg_id:
+                self._remember(exc.msg_id, payload, reply)
+            return reply, False
+        digest = hashlib.blake2b(bytes(payload), digest_size=16).digest()
+        cached = self._cache.get(request.msg_id)
+        if cached is not None:
+            if cached[0] != digest:
+                detail = f"msg_id: {request.msg_id} was already used for another request; expected a fresh msg_id"
+                return protocol.encode_error(request.msg_id, ErrorKind.BAD_REQUEST, detail), False
+            self._cache.move_to_end(request.msg_id)
+            self._log.info("request_replayed", op=request.op.value, msg_id=request.msg_id)
+            return cached[1], True
+        reply = self._execute(request)
+        self._remember(request.msg_id, payload, reply)
+        return reply, False
+
+    def _remember(self, msg_id: str, payload: bytes, reply: bytes) -> None:
+        self._cache[msg_id] = (hashlib.blake2b(bytes(payload), digest_size=16).digest(), reply)
+        if len(self._cache) > self._cache_size:
+            self._cache.popitem(last=False)
+
+    def _execute(self, request: protocol.Request) -> bytes:
+        from drivers_sim.rig import RigInterlock, SetpointError
+
+        log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
+        try:
+            result = self._dispatch[request.op](request.args)
+        except SetpointError as exc:
+            kind, detail = ErrorKind.OUT_OF_RANGE, str(exc)
+        except RigInterlock as exc:
+            kind, detail = ErrorKind.INTERLOCK, str(exc)
+        except ValueError as exc:
+            kind, detail = ErrorKind.BAD_REQUEST, str(exc)
+        except Exception as exc:  # noqa: BLE001 - the server must answer whatever the rig does
+            log.exception("rig_failed")
+            kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"
+        else:
+            try:
+                return protocol.encode_result(request.msg_id, result)
+            except ValueError as exc:
+                log.error("result_not_encodable", error=str(exc))
+                return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc))
+        log.info("request_refused", kind=kind.value, detail=detail)
+        return protocol.encode_error(request.msg_id, kind, detail)
+
+
+def _wildcard_port(bind: str) -> str:
+    """Map port 0 to ZeroMQ's ``*`` (pick a free port)."""
+    if bind.startswith("tcp://") and bind.endswith(":0"):
+        return bind[:-2] + ":*"
+    return bind
+
+
+def _is_loopback(endpoint: str) -> bool:
+    if not endpoint.startswith("tcp://"):
+        return True
+    host = urlsplit(endpoint).hostname or ""
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return host == "localhost"
+
+
+# --------------------------------------------------------------------------- the command
+
+
+def add_rig_arguments(parser: argparse.ArgumentParser, *, log_level: bool = True) -> None:
+    """Add the simulated rig server's options to ``parser``.
+
+    Parameters
+    ----------
+    parser : argparse.ArgumentParser
+        The parser (or sub-parser) to extend.
+    log_level : bool
+        Add ``--log-level`` too; pass False when the caller has its own.
+    """
+    parser.add_argument("--config", type=Path, default=_DEFAULT_CONFIG, help="simulated rig TOML (default: %(default)s)")
+    parser.add_argument("--bind", default=DEFAULT_BIND, help="endpoint to listen on; port 0 picks a free one (default: %(default)s)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the rig's noise and of the faults (default: %(default)s)")
+    parser.add_argument("--ready-file", type=Path, default=None, help="write the bound endpoint here once listening")
+    parser.add_argument("--drop-probability", type=float, default=None, help="fault: probability of dropping a reply")
+    parser.add_argument("--delay-s", type=float, default=None, help="fault: delay of each fresh reply, s")
+    parser.add_argument("--corrupt-probability", type=float, default=None, help="fault: probability of corrupting a reply")
+    parser.add_argument("--exit-after", type=int, default=None, help="fault: stop after N messages (0: never)")
+    parser.add_argument("--curve-secret-key", type=Path, default=None, help="server CURVE .key_secret file")
+    parser.add_argument("--curve-allowed-dir", type=Path, default=None, help="folder of allowed client public keys (*.key)")
+    if log_level:
+        parser.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"], help="(default: %(default)s)")
+
+
+def _write_ready_file(path: Path, endpoint: str) -> None:
+    """Write ``endpoint`` so that a reader sees either nothing or the whole line."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp.write_text(endpoint + "\n", encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def _child_seed(seed: int) -> int:
+    import numpy as np
+
+    return int(np.random.SeedSequence(seed).spawn(1)[0].generate_state(1)[0])
+
+
+def run_rig(ns: argparse.Namespace) -> int:
+    """Serve a simulated rig as ``ns`` says until SIGINT/SIGTERM; return the exit status.
+
+    Parameters
+    ----------
+    ns : argparse.Namespace
+        Parsed options of :func:`add_rig_arguments`.
+
+    Returns
+    -------
+    int
+        0 after a clean stop, 2 for a bad configuration or key file, 1 if binding failed.
+    """
+    from drivers_sim.config import load_sim_config
+    from drivers_sim.rig import SimulatedRig
+
+    log = _log.bind(bind=ns.bind)
+    try:
+        if (ns.curve_secret_key is None) != (ns.curve_allowed_dir is None):
+            raise ServerConfigError("<flags>", "--curve-secret-key/--curve-allowed-dir", "both or neither",
+                                    "only --curve-secret-key" if ns.curve_secret_key else "only --curve-allowed-dir")
+        config = load_sim_config(ns.config)
+        faults = FaultConfig.from_table(getattr(config, "faults", None), file=str(ns.config)).overridden(
+            drop_reply_probability=ns.drop_probability,
+            delay_reply_s=ns.delay_s,
+            corrupt_reply_probability=ns.corrupt_probability,
+            exit_after_messages=ns.exit_after,
+        )
+        curve = None if ns.curve_secret_key is None else CurveServerKeys.load(ns.curve_secret_key, ns.curve_allowed_dir)
+        rig = SimulatedRig(config, ns.seed)
+    except (ServerConfigError, OSError, ValueError) as exc:
+        # The rig's own configuration errors are ValueErrors too; all refuse the start.
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        return 2
+    server = RigServer(rig, ns.bind, faults=faults, curve=curve, fault_seed=_child_seed(ns.seed))
+    previous: dict[int, Any] = {}
+    try:
+        try:
+            endpoint = server.start()
+        except zmq.ZMQError as exc:
+            log.error("server_bind_failed", error=str(exc))
+            return 1
+        for number in (signal.SIGINT, signal.SIGTERM):
+            previous[number] = signal.signal(number, lambda signum, frame: server.stop())
+        if ns.ready_file is not None:
+            _write_ready_file(Path(ns.ready_file), endpoint)
+        server.serve()
+        return 0
+    finally:
+        server.close()
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+
+
+def _configure_logging(level: str) -> None:
+    import logging
+
+    structlog.configure(
+        processors=[
+            structlog.contextvars.merge_contextvars,
+            structlog.processors.add_log_level,
+            structlog.processors.TimeStamper(fmt="iso", utc=True),
+            structlog.processors.format_exc_info,
+            structlog.processors.JSONRenderer(),
+        ],
+        wrapper_class=structlog.make_filtering_bound_logger(getattr(logging, level.upper())),
+        logger_factory=structlog.PrintLoggerFactory(sys.stderr),
+        cache_logger_on_first_use=True,
+    )
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of ``python -m drivers_sim.server``: log JSON lines to stderr, serve."""
+    parser = argparse.ArgumentParser(prog="python -m drivers_sim.server", description="Serve the simulated rig.")
+    add_rig_arguments(parser)
+    ns = parser.parse_args(argv)
+    _configure_logging(ns.log_level)
+    return run_rig(ns)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
