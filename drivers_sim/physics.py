@@ -1,0 +1,643 @@
+"""Atom-cavity-Ramsey model of the simulated rig: pure, vectorised, numpy/scipy only.
+
+The model follows /work/shared/PHYSICS.md:
+
+- :func:`crossing_amplitudes` integrates the 2x2 problem {|g,n>, |e,n-1>} of one crossing of the
+  Gaussian mode for whole arrays of velocities, detunings and photon numbers at once;
+- :func:`ramsey_rotation` is the zone rotation U(theta, phi) on (g, i);
+- :func:`outcome_coefficients` averages one atom over a velocity distribution (Gauss-Hermite
+  nodes) and a photon-number distribution and returns the first-harmonic coefficients
+  ``(a, b, c)`` of every outcome, ``P_x(phi) = a + b cos(phi) + c sin(phi)``;
+- :func:`detected_coefficients` applies a confusion matrix; :func:`fringe_figures` gives the
+  inversion, phase shift, contrasts and absorption defined in CONTRACTS.md;
+- :func:`thermal_photon_number`, :func:`thermal_distribution` and
+  :func:`one_photon_distribution` describe the fields; :func:`stark_field_for_detuning`,
+  :func:`stark_detuning` the quadratic Stark tuning.
+
+Conventions. Detunings are given as ``delta / 2 pi`` in Hz, ``delta = omega_eg - omega_cavity``;
+the coupling as ``Omega_0 / 2 pi`` in Hz. Outcome axes are ordered ``(e, g, i)``, field axes
+``(empty, one_photon)``, coefficient axes ``(a, b, c)``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+
+import numpy as np
+import scipy.constants
+
+__all__ = [
+    "OUTCOMES",
+    "FIELDS",
+    "DEFAULT_CROSSING_STEPS",
+    "DEFAULT_HALF_WIDTH",
+    "AtomCavityModel",
+    "crossing_amplitudes",
+    "pulse_area",
+    "two_pi_velocity",
+    "ramsey_rotation",
+    "ramsey_phase_offset",
+    "zone_area",
+    "velocity_nodes",
+    "thermal_photon_number",
+    "thermal_distribution",
+    "one_photon_distribution",
+    "confusion_matrix",
+    "outcome_coefficients",
+    "detected_coefficients",
+    "fringe_figures",
+    "stark_field_for_detuning",
+    "stark_detuning",
+]
+
+OUTCOMES: tuple[str, str, str] = ("e", "g", "i")
+FIELDS: tuple[str, str] = ("empty", "one_photon")
+
+#: Crossing steps over the window; each step is two exact SU(2) exponentials. 256 steps keep
+#: the amplitudes within 4e-7 of a converged solution over 250..900 m/s, |delta|/2pi <= 300 kHz,
+#: n <= 4 for the demo coupling (checked against qutip in tests/sim/test_physics.py).
+DEFAULT_CROSSING_STEPS = 256
+#: Half-width of the integration window in units of w / v. The mode is exp(-x^2): at x = 4 the
+#: coupling is 1.1e-7 of its peak and the missing pulse area is erfc(4) = 1.5e-8 of the total,
+#: below 1e-6 in amplitude up to pulse areas of 60 rad; 3.5 would leave 7e-7 of the area, which
+#: is above 1e-6 in amplitude for n = 4 at slow velocities.
+DEFAULT_HALF_WIDTH = 4.0
+
+# Gauss-Legendre nodes and weights of the fourth-order commutator-free scheme
+# (two exponentials per step, each an exact SU(2) rotation of a constant 2x2 Hamiltonian).
+_GL_NODES = (0.5 - math.sqrt(3.0) / 6.0, 0.5 + math.sqrt(3.0) / 6.0)
+_CF_FIRST = (0.25 + math.sqrt(3.0) / 6.0, 0.25 - math.sqrt(3.0) / 6.0)
+_CF_SECOND = (0.25 - math.sqrt(3.0) / 6.0, 0.25 + math.sqrt(3.0) / 6.0)
+
+# Elements per chunk of the step-matrix tree: bounds memory to a few tens of MB.
+_CHUNK_ELEMENTS = 1 << 21
+
+
+# --------------------------------------------------------------------------------------------
+# The crossing
+# --------------------------------------------------------------------------------------------
+
+
+def pulse_area(velocity, *, coupling_hz, waist_m, photons=1):
+    """Resonant pulse area of one crossing of the Gaussian mode.
+
+    Parameters
+    ----------
+    velocity : array_like
+        Atomic velocity, m/s.
+    coupling_hz : float
+        Vacuum Rabi frequency at the mode centre, ``Omega_0 / 2 pi``, Hz.
+    waist_m : float
+        Mode waist ``w`` (coupling ``exp(-(v t)^2 / w^2)``), m.
+    photons : array_like, optional
+        Photon number ``n``; the coupling scales as ``sqrt(n)``.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``A = Omega_0 sqrt(n) sqrt(pi) w / v``, rad.
+    """
+    velocity = np.asarray(velocity, dtype=float)
+    return 2.0 * np.pi * coupling_hz * np.sqrt(np.asarray(photons, dtype=float)) * (
+        math.sqrt(math.pi) * waist_m / velocity
+    )
+
+
+def two_pi_velocity(*, coupling_hz, waist_m):
+    """Velocity at which one photon gives a 2 pi vacuum Rabi rotation, m/s.
+
+    Returns ``v_2pi = Omega_0 w / (2 sqrt(pi))`` with ``Omega_0 = 2 pi coupling_hz``.
+    """
+    return 2.0 * math.pi * coupling_hz * waist_m / (2.0 * math.sqrt(math.pi))
+
+
+def _su2_product(u1, v1, u2, v2):
+    """SU(2) product ``U1 @ U2`` for ``U = [[u, -conj(v)], [v, conj(u)]]``."""
+    return u1 * u2 - np.conj(v1) * v2, v1 * u2 + np.conj(u1) * v2
+
+
+def _tree_reduce(u, v):
+    """Time-ordered product of step matrices along axis 0 (later steps on the left)."""
+    while u.shape[0] > 1:
+        if u.shape[0] % 2:
+            pad_u = np.ones((1,) + u.shape[1:], dtype=u.dtype)
+            pad_v = np.zeros((1,) + v.shape[1:], dtype=v.dtype)
+            u = np.concatenate([u, pad_u])
+            v = np.concatenate([v, pad_v])
+        u, v = _su2_product(u[1::2], v[1::2], u[0::2], v[0::2])
+    return u[0], v[0]
+
+
+def crossing_amplitudes(
+    velocity,
+    detuning_hz,
+    photons,
+    *,
+    coupling_hz,
+    waist_m,
+    steps=DEFAULT_CROSSING_STEPS,
+    half_width=DEFAULT_HALF_WIDTH,
+):
+    """Amplitudes of one crossing ``|g,n> -> a_g |g,n> + a_e |e,n-1>`` of the Gaussian mode.
+
+    The Hamiltonian (rotating frame, hbar = 1) is
+    ``H = (delta/2)(|e><e| - |g><g|) + (Omega_0 sqrt(n) exp(-(v t)^2/w^2) / 2) sigma_x``,
+    integrated over ``t`` in ``[-half_width, +half_width] w / v`` with ``steps`` steps of a
+    fourth-order commutator-free scheme: each step is the product of two exact closed-form
+    SU(2) exponentials of constant 2x2 Hamiltonians built from the coupling at the two
+    Gauss-Legendre nodes of the step. All arguments broadcast against each other.
+
+    Parameters
+    ----------
+    velocity : array_like
+        Atomic velocity, m/s (> 0).
+    detuning_hz : array_like
+        Atom-cavity detuning ``delta / 2 pi``, Hz.
+    photons : array_like of int
+        Photon number ``n >= 0``; ``n = 0`` gives ``a_g = 1, a_e = 0`` exactly.
+    coupling_hz : float
+        ``Omega_0 / 2 pi`` at the mode centre, Hz.
+    waist_m : float
+        Mode waist, m.
+    steps : int, optional
+        Number of integration steps over the window.
+    half_width : float, optional
+        Half-width of the window in units of ``w / v``.
+
+    Returns
+    -------
+    a_g, a_e : numpy.ndarray of complex
+        Amplitudes in the interaction picture of ``H0 = (delta/2)(|e><e| - |g><g|)``, i.e.
+        ``a_g`` relative to the free evolution of ``|g,n>``; shape of the broadcast inputs.
+    """
+    if steps < 1:
+        raise ValueError(f"steps: expected an integer >= 1, got {steps!r}")
+    velocity, detuning_hz, photons = np.broadcast_arrays(
+        np.asarray(velocity, dtype=float),
+        np.asarray(detuning_hz, dtype=float),
+        np.asarray(photons),
+    )
+    shape = velocity.shape
+    if np.any(~np.isfinite(velocity)) or np.any(velocity <= 0.0):
+        raise ValueError("velocity: expected finite values > 0 m/s")
+    if np.any(photons < 0):
+        raise ValueError("photons: expected integers >= 0")
+    # Dimensionless time x = v t / w: detuning and coupling in rad per unit x.
+    scale = 2.0 * np.pi * waist_m / velocity.ravel()
+    alpha = detuning_hz.ravel() * scale
+    beta = coupling_hz * np.sqrt(photons.ravel().astype(float)) * scale
+    h = 2.0 * half_width / steps
+    starts = -half_width + h * np.arange(steps)
+    f1 = np.exp(-((starts + _GL_NODES[0] * h) ** 2))
+    f2 = np.exp(-((starts + _GL_NODES[1] * h) ** 2))
+    # Mode weights of the two exponentials of every step, in time order (first applied first).
+    weights = np.empty(2 * steps)
+    weights[0::2] = _CF_FIRST[0] * f1 + _CF_FIRST[1] * f2
+    weights[1::2] = _CF_SECOND[0] * f1 + _CF_SECOND[1] * f2
+    weights *= 0.5 * h
+    # Each exponential carries half a step of the constant detuning term -(alpha/2) sigma_z.
+    p = -0.25 * h * alpha
+    u_out = np.empty(alpha.size, dtype=complex)
+    v_out = np.empty(alpha.size, dtype=complex)
+    chunk = max(1, _CHUNK_ELEMENTS // weights.size)
+    for lo in range(0, alpha.size, chunk):
+        sl = slice(lo, lo + chunk)
+        q = weights[:, None] * beta[None, sl]
+        r = np.hypot(p[None, sl], q)
+        sinc = np.sinc(r / np.pi)
+        u = np.cos(r) - 1j * (p[None, sl] * sinc)
+        v = -1j * (q * sinc)
+        u_out[sl], v_out[sl] = _tree_reduce(u, v)
+    free = np.exp(-1j * alpha * half_width)
+    a_g = (u_out * free).reshape(shape)
+    a_e = v_out.reshape(shape)
+    return a_g, a_e
+
+
+# --------------------------------------------------------------------------------------------
+# Ramsey zones
+# --------------------------------------------------------------------------------------------
+
+
+def ramsey_rotation(theta, phi):
+    """Ramsey-zone rotation on the (g, i) basis.
+
+    Parameters
+    ----------
+    theta : array_like
+        Pulse area, rad.
+    phi : array_like
+        Pulse phase, rad.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``U = [[cos(theta/2), -i e^{-i phi} sin(theta/2)], [-i e^{+i phi} sin(theta/2),
+        cos(theta/2)]]``, shape ``broadcast(theta, phi).shape + (2, 2)``.
+    """
+    theta, phi = np.broadcast_arrays(np.asarray(theta, float), np.asarray(phi, float))
+    cos = np.cos(theta / 2.0)
+    sin = np.sin(theta / 2.0)
+    out = np.empty(theta.shape + (2, 2), dtype=complex)
+    out[..., 0, 0] = cos
+    out[..., 0, 1] = -1j * np.exp(-1j * phi) * sin
+    out[..., 1, 0] = -1j * np.exp(1j * phi) * sin
+    out[..., 1, 1] = cos
+    return out
+
+
+def zone_area(true_velocity, set_velocity, *, area_at_set=math.pi / 2.0):
+    """Pulse area of a Ramsey zone whose power was calibrated at the set velocity, rad.
+
+    The area scales as ``1 / v`` at fixed microwave power (longer transit, bigger area):
+    ``theta = area_at_set * set_velocity / true_velocity``.
+    """
+    return area_at_set * np.asarray(set_velocity, float) / np.asarray(true_velocity, float)
+
+
+def ramsey_phase_offset(true_velocity, *, ramsey_detuning_hz, zone_separation_m):
+    """Free-evolution phase added to the R2 phase, ``2 pi Delta_R L / v``, rad."""
+    return 2.0 * np.pi * ramsey_detuning_hz * zone_separation_m / np.asarray(true_velocity, float)
+
+
+def velocity_nodes(mean_m_per_s, spread_m_per_s, count):
+    """Gauss-Hermite nodes of a Gaussian velocity distribution.
+
+    Parameters
+    ----------
+    mean_m_per_s : array_like
+        Mean true velocity, m/s.
+    spread_m_per_s : float
+        Standard deviation, m/s (0 collapses every node on the mean).
+    count : int
+        Number of nodes.
+
+    Returns
+    -------
+    velocities : numpy.ndarray
+        Shape ``mean.shape + (count,)``, m/s.
+    weights : numpy.ndarray
+        Shape ``(count,)``, summing to 1.
+    """
+    x, w = np.polynomial.hermite.hermgauss(count)
+    mean = np.asarray(mean_m_per_s, float)
+    return mean[..., None] + math.sqrt(2.0) * spread_m_per_s * x, w / math.sqrt(math.pi)
+
+
+# --------------------------------------------------------------------------------------------
+# Fields
+# --------------------------------------------------------------------------------------------
+
+
+def thermal_photon_number(frequency_hz, temperature_k):
+    """Bose-Einstein mean photon number ``1 / (exp(h f / k_B T) - 1)``.
+
+    Parameters
+    ----------
+    frequency_hz : array_like
+        Mode frequency, Hz.
+    temperature_k : array_like
+        Temperature, K (0 gives 0).
+
+    Returns
+    -------
+    numpy.ndarray
+        Mean thermal photon number (CODATA constants from ``scipy.constants``).
+    """
+    frequency_hz = np.asarray(frequency_hz, float)
+    temperature_k = np.asarray(temperature_k, float)
+    with np.errstate(divide="ignore", over="ignore"):
+        x = scipy.constants.h * frequency_hz / (scipy.constants.k * temperature_k)
+        return np.where(x > 700.0, 0.0, 1.0 / np.expm1(np.minimum(x, 700.0)))
+
+
+def thermal_distribution(mean_photons, max_photons):
+    """Thermal photon-number distribution ``p_n = m^n / (1 + m)^(n + 1)``, n = 0..max_photons.
+
+    The tail above ``max_photons`` (``(m / (1 + m))^(max_photons + 1)``, 2e-9 for the demo
+    at n <= 4) is folded back by renormalising.
+    """
+    n = np.arange(max_photons + 1)
+    m = float(mean_photons)
+    p = (m / (1.0 + m)) ** n / (1.0 + m)
+    return p / p.sum()
+
+
+def _damping_generator(mean_photons, size):
+    """Rate matrix (per unit 1/T_c) of the photon populations of a thermally damped mode.
+
+    ``dp_n/dt = (m+1)[(n+1) p_{n+1} - n p_n] + m[n p_{n-1} - (n+1) p_n]`` (the diagonal part
+    of the standard damped-oscillator master equation at mean thermal number ``m``),
+    truncated at ``size - 1`` photons with a reflecting edge so probability is conserved.
+    """
+    n = np.arange(size, dtype=float)
+    down = (mean_photons + 1.0) * n  # n -> n-1
+    up = mean_photons * (n + 1.0)  # n -> n+1
+    up[-1] = 0.0
+    gen = np.diag(-(down + up))
+    gen[np.arange(size - 1), np.arange(1, size)] = down[1:]
+    gen[np.arange(1, size), np.arange(size - 1)] = up[:-1]
+    return gen
+
+
+def one_photon_distribution(
+    one_photon_probability, mean_photons, max_photons, delay_s, damping_time_s
+):
+    """Photon-number distribution of the imperfect one-photon field when the atom crosses.
+
+    At preparation the field holds ``|1>`` with probability ``p1`` and ``|0>`` otherwise, on
+    top of the thermal photons already in the mode (photon numbers added as independent
+    counts: a model choice). It then relaxes toward thermal equilibrium with time constant
+    ``T_c`` during ``delay_s`` (the populations' rate equation of a thermally damped mode).
+
+    Parameters
+    ----------
+    one_photon_probability : float
+        ``p1``, probability that the preparation put one photon in.
+    mean_photons : float
+        Thermal mean photon number of the mode.
+    max_photons : int
+        Highest photon number returned; the tail is folded back by renormalising.
+    delay_s : array_like
+        Time from preparation to the crossing, s (one value per velocity class).
+    damping_time_s : float
+        Energy damping time ``T_c`` of the mode, s.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape ``delay.shape + (max_photons + 1,)``, rows summing to 1.
+    """
+    size = max_photons + 8
+    thermal = thermal_distribution(mean_photons, size - 1)
+    start = (1.0 - one_photon_probability) * thermal
+    start[1:] += one_photon_probability * thermal[:-1]
+    rates, vectors, inverse = _damping_modes(float(mean_photons), size)
+    delay_s = np.asarray(delay_s, float)
+    decay = np.exp(np.multiply.outer(delay_s / damping_time_s, rates))
+    p = np.einsum("ij,...j,j->...i", vectors, decay, inverse @ start)
+    p = np.clip(p[..., : max_photons + 1], 0.0, None)
+    return p / p.sum(axis=-1, keepdims=True)
+
+
+@functools.lru_cache(maxsize=32)
+def _damping_modes(mean_photons, size):
+    """Eigen-decomposition of :func:`_damping_generator` (real, distinct rates: a birth-death
+    chain in detailed balance), so that populations at many delays cost one product each."""
+    rates, vectors = np.linalg.eig(_damping_generator(mean_photons, size))
+    rates = rates.real
+    vectors = vectors.real
+    return rates, vectors, np.linalg.inv(vectors)
+
+
+# --------------------------------------------------------------------------------------------
+# Detection
+# --------------------------------------------------------------------------------------------
+
+
+def confusion_matrix(*, e_read_as_g=0.0, g_read_as_e=0.0, g_read_as_i=0.0, i_read_as_g=0.0):
+    """Detector confusion matrix ``M[detected, true]`` over ``(e, g, i)``; columns sum to 1.
+
+    Parameters
+    ----------
+    e_read_as_g, g_read_as_e, g_read_as_i, i_read_as_g : float
+        Probability that an atom in the first level is assigned to the second.
+    """
+    m = np.zeros((3, 3))
+    m[1, 0] = e_read_as_g
+    m[0, 1] = g_read_as_e
+    m[2, 1] = g_read_as_i
+    m[1, 2] = i_read_as_g
+    m[np.diag_indices(3)] = 1.0 - m.sum(axis=0)
+    return m
+
+
+# --------------------------------------------------------------------------------------------
+# One atom through R1 - cavity - R2
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class AtomCavityModel:
+    """Physical parameters of one atom's passage, in SI units.
+
+    Attributes
+    ----------
+    coupling_hz : float
+        ``Omega_0 / 2 pi``, Hz.
+    waist_m : float
+        Mode waist, m.
+    cavity_frequency_hz : float
+        Mode frequency (for the thermal photon number), Hz.
+    temperature_k : float
+        Mode temperature, K.
+    damping_time_s : float
+        Field energy damping time ``T_c``, s.
+    one_photon_probability : float
+        ``p1`` of the one-photon preparation.
+    preparation_to_cavity_m : float
+        Distance an atom flies between the field preparation and the mode centre, m;
+        the delay is this distance over the true velocity.
+    velocity_bias_m_per_s : float
+        True minus set velocity, m/s.
+    velocity_spread_m_per_s : float
+        Standard deviation of the true velocity, m/s.
+    ramsey_detuning_hz : float
+        Ramsey detuning ``Delta_R`` from the g-i line, Hz.
+    zone_separation_m : float
+        Distance ``L`` between the Ramsey zones, m.
+    zone_area_rad : float
+        Zone pulse area at the set velocity (power calibrated there), rad.
+    confusion : tuple of tuple of float
+        ``M[detected][true]`` over ``(e, g, i)``.
+    velocity_nodes : int
+        Gauss-Hermite nodes of the velocity average.
+    max_photons : int
+        Highest photon number modelled.
+    crossing_steps : int
+        Steps of :func:`crossing_amplitudes`.
+    """
+
+    coupling_hz: float
+    waist_m: float
+    cavity_frequency_hz: float
+    temperature_k: float
+    damping_time_s: float
+    one_photon_probability: float
+    preparation_to_cavity_m: float
+    velocity_bias_m_per_s: float
+    velocity_spread_m_per_s: float
+    ramsey_detuning_hz: float = 0.0
+    zone_separation_m: float = 0.0
+    zone_area_rad: float = math.pi / 2.0
+    confusion: tuple[tuple[float, ...], ...] = ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0), (0.0, 0.0, 1.0))
+    velocity_nodes: int = 9
+    max_photons: int = 4
+    crossing_steps: int = DEFAULT_CROSSING_STEPS
+
+    @property
+    def thermal_photons(self) -> float:
+        """Thermal mean photon number of the mode."""
+        return float(thermal_photon_number(self.cavity_frequency_hz, self.temperature_k))
+
+
+def _fock_coefficients(a_g, a_e, theta, phase_v):
+    """Coefficients (a, b, c) of (e, g, i) for one Fock state; last axis of the result: 3x3."""
+    cos = np.cos(theta / 2.0)
+    sin = np.sin(theta / 2.0)
+    # After R1 (phase 0) from g: c_g = cos, c_i = -i sin.
+    c_g = cos
+    c_i = -1j * sin
+    big_a = cos * c_g * a_g
+    big_b = -1j * sin * c_i * np.exp(-1j * phase_v)
+    big_c = -1j * np.exp(1j * phase_v) * sin * c_g * a_g
+    big_d = cos * c_i
+    ab = big_a * np.conj(big_b)
+    cd = big_c * np.conj(big_d)
+    out = np.empty(np.shape(a_g) + (3, 3))
+    out[..., 0, 0] = np.abs(c_g) ** 2 * np.abs(a_e) ** 2
+    out[..., 0, 1] = 0.0
+    out[..., 0, 2] = 0.0
+    out[..., 1, 0] = np.abs(big_a) ** 2 + np.abs(big_b) ** 2
+    out[..., 1, 1] = 2.0 * ab.real
+    out[..., 1, 2] = -2.0 * ab.imag
+    out[..., 2, 0] = np.abs(big_c) ** 2 + np.abs(big_d) ** 2
+    out[..., 2, 1] = 2.0 * cd.real
+    out[..., 2, 2] = -2.0 * cd.imag
+    return out
+
+
+def outcome_coefficients(model: AtomCavityModel, set_velocity, true_detuning_hz):
+    """Fringe coefficients of one atom for both fields, before detection.
+
+    Parameters
+    ----------
+    model : AtomCavityModel
+        Physical parameters.
+    set_velocity : array_like
+        Velocity set-point, m/s; the true velocities are Gaussian around
+        ``set_velocity + velocity_bias`` with the model's spread.
+    true_detuning_hz : array_like
+        True atom-cavity detuning ``delta / 2 pi``, Hz. Broadcasts with ``set_velocity``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape ``broadcast.shape + (2, 3, 3)``: field (empty, one_photon), outcome (e, g, i),
+        coefficient (a, b, c) with ``P_x(phi) = a + b cos(phi) + c sin(phi)`` at set Ramsey
+        phase ``phi``.
+    """
+    set_velocity, true_detuning_hz = np.broadcast_arrays(
+        np.asarray(set_velocity, float), np.asarray(true_detuning_hz, float)
+    )
+    shape = set_velocity.shape
+    vset = set_velocity.ravel()
+    det = true_detuning_hz.ravel()
+    v_true, w_nodes = velocity_nodes(
+        vset + model.velocity_bias_m_per_s, model.velocity_spread_m_per_s, model.velocity_nodes
+    )  # (M, K)
+    theta = zone_area(v_true, vset[:, None], area_at_set=model.zone_area_rad)
+    phase_v = ramsey_phase_offset(
+        v_true,
+        ramsey_detuning_hz=model.ramsey_detuning_hz,
+        zone_separation_m=model.zone_separation_m,
+    )
+    n = np.arange(model.max_photons + 1)
+    a_g = np.ones(v_true.shape + (n.size,), dtype=complex)
+    a_e = np.zeros_like(a_g)
+    if n.size > 1:
+        a_g[..., 1:], a_e[..., 1:] = crossing_amplitudes(
+            v_true[..., None],
+            det[:, None, None],
+            n[None, None, 1:],
+            coupling_hz=model.coupling_hz,
+            waist_m=model.waist_m,
+            steps=model.crossing_steps,
+        )
+    fock = _fock_coefficients(a_g, a_e, theta[..., None], phase_v[..., None])  # (M,K,N,3,3)
+    mean = model.thermal_photons
+    p_empty = thermal_distribution(mean, model.max_photons)  # (N,)
+    p_one = one_photon_distribution(
+        model.one_photon_probability,
+        mean,
+        model.max_photons,
+        model.preparation_to_cavity_m / v_true,
+        model.damping_time_s,
+    )  # (M, K, N)
+    empty = np.einsum("mknxc,n,k->mxc", fock, p_empty, w_nodes)
+    one = np.einsum("mknxc,mkn,k->mxc", fock, p_one, w_nodes)
+    out = np.stack([empty, one], axis=1)
+    return out.reshape(shape + (2, 3, 3))
+
+
+def detected_coefficients(coefficients, confusion):
+    """Apply a confusion matrix ``M[detected, true]`` to outcome coefficients.
+
+    ``coefficients`` has the outcome on axis -2 and (a, b, c) on axis -1; the result gives the
+    probability that a detected atom is assigned to each outcome.
+    """
+    return np.einsum("xy,...yc->...xc", np.asarray(confusion, float), coefficients)
+
+
+def fringe_figures(detected):
+    """Inversion, phase shift, contrasts and absorption from detected coefficients.
+
+    Parameters
+    ----------
+    detected : array_like
+        Shape ``(..., 2, 3, 3)`` as returned by :func:`detected_coefficients`.
+
+    Returns
+    -------
+    dict of numpy.ndarray
+        ``inversion`` = ``(a1 - a0) + hypot(b1 - b0, c1 - c0)`` of P_g (max over phi of
+        ``P_g(phi|one_photon) - P_g(phi|empty)``); ``phase_shift`` in [0, 2 pi), rad, the
+        difference of ``atan2(c_g, b_g)``; ``contrast_empty`` and ``contrast_one_photon`` =
+        ``2 hypot(b_g, c_g)``; ``absorption`` = a-coefficient of P_e for one_photon.
+    """
+    d = np.asarray(detected, float)
+    g0 = d[..., 0, 1, :]
+    g1 = d[..., 1, 1, :]
+    inversion = (g1[..., 0] - g0[..., 0]) + np.hypot(g1[..., 1] - g0[..., 1], g1[..., 2] - g0[..., 2])
+    phi0 = np.arctan2(g0[..., 2], g0[..., 1])
+    phi1 = np.arctan2(g1[..., 2], g1[..., 1])
+    return {
+        "inversion": inversion,
+        "phase_shift": np.mod(phi1 - phi0, 2.0 * np.pi),
+        "contrast_empty": 2.0 * np.hypot(g0[..., 1], g0[..., 2]),
+        "contrast_one_photon": 2.0 * np.hypot(g1[..., 1], g1[..., 2]),
+        "absorption": d[..., 1, 0, 0],
+    }
+
+
+# --------------------------------------------------------------------------------------------
+# Stark tuning
+# --------------------------------------------------------------------------------------------
+
+
+def stark_detuning(field_v_per_m, *, coefficient_hz_m2_per_v2, bias_field_v_per_m):
+    """Detuning change from the quadratic Stark shift, relative to the bias field, Hz.
+
+    ``delta / 2 pi = k (E^2 - E_bias^2)`` with ``k`` in Hz per (V/m)^2
+    (-250 kHz per (V/cm)^2 is -25 Hz per (V/m)^2).
+    """
+    field = np.asarray(field_v_per_m, float)
+    return coefficient_hz_m2_per_v2 * (field**2 - bias_field_v_per_m**2)
+
+
+def stark_field_for_detuning(detuning_hz, *, coefficient_hz_m2_per_v2, bias_field_v_per_m):
+    """Electric field that gives a detuning change under the quadratic Stark law, V/m.
+
+    Inverse of :func:`stark_detuning` on the branch ``E >= 0``. Raises ``ValueError`` when the
+    requested detuning needs ``E^2 < 0`` (beyond the bias).
+    """
+    detuning_hz = np.asarray(detuning_hz, float)
+    square = bias_field_v_per_m**2 + detuning_hz / coefficient_hz_m2_per_v2
+    if np.any(square < 0.0):
+        raise ValueError(
+            "detuning_hz: expected a detuning reachable from the bias field "
+            f"(E^2 >= 0), got {detuning_hz!r}"
+        )
+    return np.sqrt(square)
