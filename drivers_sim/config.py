@@ -1,0 +1,601 @@
+"""Configuration of the simulated rig: TOML -> frozen dataclasses, checked once.
+
+Every value is checked here for type, range and finiteness, and unknown keys are refused; an
+error is a :class:`SimConfigError` whose message names the file, the dotted key, what was
+expected and what was received. The top-level ``[faults]`` table belongs to the server
+(``drivers_sim/server.py`` validates it) and is kept unvalidated as a plain dict.
+
+Use :func:`load_sim_config` for a file and :func:`sim_config_from_dict` for a dict (tests and
+studies that perturb a scenario; :meth:`SimRigConfig.to_dict` gives the dict back). The
+dataclasses are frozen and work with :func:`dataclasses.replace`, which does not re-check:
+round-trip through ``to_dict`` / ``sim_config_from_dict`` when the new values need checking.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+__all__ = [
+    "SETPOINT_UNITS",
+    "SimConfigError",
+    "RigSection",
+    "CavitySection",
+    "BeamSection",
+    "FieldSection",
+    "RamseySection",
+    "StarkSection",
+    "DetectionSection",
+    "DriftSection",
+    "ModelSection",
+    "SetpointLimit",
+    "SimRigConfig",
+    "load_sim_config",
+    "sim_config_from_dict",
+]
+
+#: Set-point names (CONTRACTS.md) and their SI units; the suffix of their limit keys.
+SETPOINT_UNITS: dict[str, str] = {"velocity": "m/s", "detuning": "Hz"}
+_UNIT_SUFFIX = {"velocity": "m_per_s", "detuning": "hz"}
+
+
+class SimConfigError(ValueError):
+    """A simulated-rig configuration file or value is wrong.
+
+    The message names the file, the dotted key, what was expected and what was received.
+    """
+
+
+# --------------------------------------------------------------------------------------------
+# Sections
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class RigSection:
+    """``[rig]``: identity and timing.
+
+    Attributes
+    ----------
+    name : str
+        Rig name reported by ``describe``.
+    default_seed : int
+        Seed used when none is given, >= 0.
+    repetition_rate_hz : float
+        Samples (shots) per second of rig time, Hz.
+    atoms_per_sample : float
+        Poisson mean number of atoms per sample.
+    settle_time_s : float
+        Rig time an ``apply`` takes, s.
+    max_shots_per_acquisition : int
+        Largest ``shots`` one ``acquire`` accepts.
+    """
+
+    name: str
+    default_seed: int
+    repetition_rate_hz: float
+    atoms_per_sample: float
+    settle_time_s: float
+    max_shots_per_acquisition: int
+
+
+@dataclasses.dataclass(frozen=True)
+class CavitySection:
+    """``[cavity]``: the mode (hidden truth of the simulation).
+
+    Attributes
+    ----------
+    frequency_hz : float
+        Mode frequency, Hz.
+    coupling_hz : float
+        Vacuum Rabi frequency ``Omega_0 / 2 pi`` at the mode centre, Hz.
+    waist_m : float
+        Mode waist, m.
+    damping_time_s : float
+        Energy damping time ``T_c``, s.
+    temperature_k : float
+        Mode temperature, K.
+    initial_offset_hz : float
+        Cavity drift offset at clock 0 (true minus set detuning, before Stark error), Hz.
+    """
+
+    frequency_hz: float
+    coupling_hz: float
+    waist_m: float
+    damping_time_s: float
+    temperature_k: float
+    initial_offset_hz: float
+
+
+@dataclasses.dataclass(frozen=True)
+class BeamSection:
+    """``[beam]``: velocity selection (hidden truth) and geometry.
+
+    Attributes
+    ----------
+    velocity_bias_m_per_s : float
+        True mean velocity minus the set-point, m/s.
+    velocity_spread_m_per_s : float
+        Standard deviation of the selected class, m/s.
+    preparation_to_cavity_m : float
+        Flight distance from the field preparation to the mode centre, m.
+    """
+
+    velocity_bias_m_per_s: float
+    velocity_spread_m_per_s: float
+    preparation_to_cavity_m: float
+
+
+@dataclasses.dataclass(frozen=True)
+class FieldSection:
+    """``[field]``: preparation of the one-photon field.
+
+    Attributes
+    ----------
+    one_photon_probability : float
+        Probability ``p1`` that the preparation puts one photon in.
+    """
+
+    one_photon_probability: float
+
+
+@dataclasses.dataclass(frozen=True)
+class RamseySection:
+    """``[ramsey]``: the interferometer zones.
+
+    Attributes
+    ----------
+    detuning_hz : float
+        Ramsey detuning ``Delta_R`` from the g-i line, Hz.
+    zone_separation_m : float
+        Distance ``L`` between the zones, m.
+    area_at_set_velocity_rad : float
+        Zone pulse area at the set velocity (power calibrated there), rad.
+    """
+
+    detuning_hz: float
+    zone_separation_m: float
+    area_at_set_velocity_rad: float
+
+
+@dataclasses.dataclass(frozen=True)
+class StarkSection:
+    """``[stark]``: quadratic Stark tuning of the e-g line.
+
+    Attributes
+    ----------
+    coefficient_hz_m2_per_v2 : float
+        Nominal coefficient ``k`` of ``delta/2pi = k (E^2 - E_bias^2)``, Hz per (V/m)^2.
+    coefficient_error : float
+        Hidden relative error of ``k`` (true = nominal * (1 + error)).
+    bias_field_v_per_m : float
+        Field at detuning set-point 0, V/m.
+    electrode_gap_m : float
+        Electrode gap (voltage = field * gap), m.
+    """
+
+    coefficient_hz_m2_per_v2: float
+    coefficient_error: float
+    bias_field_v_per_m: float
+    electrode_gap_m: float
+
+
+@dataclasses.dataclass(frozen=True)
+class DetectionSection:
+    """``[detection]``: detectors.
+
+    Attributes
+    ----------
+    efficiency : float
+        Probability ``eta`` that an atom is detected.
+    e_read_as_g, g_read_as_e, g_read_as_i, i_read_as_g : float
+        Confusion probabilities of a detected atom.
+    """
+
+    efficiency: float
+    e_read_as_g: float
+    g_read_as_e: float
+    g_read_as_i: float
+    i_read_as_g: float
+
+
+@dataclasses.dataclass(frozen=True)
+class DriftSection:
+    """``[drift]``: cavity-frequency drift on the rig clock.
+
+    Attributes
+    ----------
+    ramp_hz_per_s : float
+        Linear ramp of the offset, Hz/s.
+    random_walk_hz_per_sqrt_s : float
+        Random-walk strength: the offset's standard deviation grows as this times sqrt(t).
+    thermal_step_hz : float
+        Default size of a thermal step, Hz.
+    """
+
+    ramp_hz_per_s: float
+    random_walk_hz_per_sqrt_s: float
+    thermal_step_hz: float
+
+
+@dataclasses.dataclass(frozen=True)
+class ModelSection:
+    """``[model]``: numerical settings of the simulation (optional table).
+
+    Attributes
+    ----------
+    velocity_nodes : int
+        Gauss-Hermite nodes of the velocity average.
+    max_photons : int
+        Highest photon number modelled.
+    crossing_steps : int
+        Integration steps of one crossing.
+    stencil_spacing_hz : float
+        Spacing of the detuning stencil cached per set-point, Hz.
+    stencil_points : int
+        Points of that stencil (odd, >= 3).
+    """
+
+    velocity_nodes: int = 9
+    max_photons: int = 4
+    crossing_steps: int = 256
+    stencil_spacing_hz: float = 200.0
+    stencil_points: int = 5
+
+
+@dataclasses.dataclass(frozen=True)
+class SetpointLimit:
+    """Limits of one set-point (``[limits.NAME]``), in its SI unit.
+
+    Attributes
+    ----------
+    unit : str
+        SI unit of the set-point.
+    min, max : float
+        Allowed range.
+    max_step : float
+        Largest change one ``apply`` may make.
+    safe : float
+        Safe value (applied by ``safe``).
+    """
+
+    unit: str
+    min: float
+    max: float
+    max_step: float
+    safe: float
+
+
+@dataclasses.dataclass(frozen=True)
+class SimRigConfig:
+    """The whole simulated-rig configuration.
+
+    Attributes
+    ----------
+    source : str
+        Where it came from (file path or ``"<memory>"``).
+    rig, cavity, beam, field, ramsey, stark, detection, drift, model
+        The sections.
+    limits : dict of str to SetpointLimit
+        One entry per set-point name of :data:`SETPOINT_UNITS`.
+    faults : dict
+        The ``[faults]`` table, unvalidated (the server checks it).
+    """
+
+    source: str
+    rig: RigSection
+    cavity: CavitySection
+    beam: BeamSection
+    field: FieldSection
+    ramsey: RamseySection
+    stark: StarkSection
+    detection: DetectionSection
+    drift: DriftSection
+    model: ModelSection
+    limits: dict[str, SetpointLimit]
+    faults: dict[str, Any] = dataclasses.field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The configuration as the nested dict :func:`sim_config_from_dict` accepts."""
+        out: dict[str, Any] = {}
+        for name in _SECTIONS:
+            out[name] = dataclasses.asdict(getattr(self, name))
+        out["limits"] = {
+            name: {
+                f"{key}_{_UNIT_SUFFIX[name]}": getattr(limit, key)
+                for key in ("min", "max", "max_step", "safe")
+            }
+            for name, limit in self.limits.items()
+        }
+        if self.faults:
+            out["faults"] = dict(self.faults)
+        return out
+
+
+# --------------------------------------------------------------------------------------------
+# Checking
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class _Spec:
+    kind: str  # "float", "int" or "str"
+    low: float | None = None
+    high: float | None = None
+    low_open: bool = False
+    high_open: bool = False
+
+    def describe(self) -> str:
+        what = {"float": "a finite number", "int": "an integer", "str": "a non-empty string"}[
+            self.kind
+        ]
+        parts = []
+        if self.low is not None:
+            parts.append(f"{'>' if self.low_open else '>='} {self.low:g}")
+        if self.high is not None:
+            parts.append(f"{'<' if self.high_open else '<='} {self.high:g}")
+        return what + (" " + " and ".join(parts) if parts else "")
+
+
+def _f(low=None, high=None, *, low_open=False, high_open=False):
+    return _Spec("float", low, high, low_open, high_open)
+
+
+def _i(low=None, high=None):
+    return _Spec("int", low, high)
+
+
+_PROB = _f(0.0, 1.0)
+_POS = _f(0.0, low_open=True)
+
+_SECTION_SPECS: dict[str, dict[str, _Spec]] = {
+    "rig": {
+        "name": _Spec("str"),
+        "default_seed": _i(0, 2**63 - 1),
+        "repetition_rate_hz": _f(0.0, 1e7, low_open=True),
+        "atoms_per_sample": _f(0.0, 100.0),
+        "settle_time_s": _f(0.0, 3600.0),
+        "max_shots_per_acquisition": _i(1, 10**9),
+    },
+    "cavity": {
+        "frequency_hz": _f(1e6, 1e13),
+        "coupling_hz": _f(0.0, 1e8, low_open=True),
+        "waist_m": _f(0.0, 1.0, low_open=True),
+        "damping_time_s": _f(0.0, 1e6, low_open=True),
+        "temperature_k": _f(0.0, 1e4),
+        "initial_offset_hz": _f(-1e9, 1e9),
+    },
+    "beam": {
+        "velocity_bias_m_per_s": _f(-1e4, 1e4),
+        "velocity_spread_m_per_s": _f(0.0, 1e4),
+        "preparation_to_cavity_m": _f(0.0, 100.0),
+    },
+    "field": {
+        "one_photon_probability": _PROB,
+    },
+    "ramsey": {
+        "detuning_hz": _f(-1e9, 1e9),
+        "zone_separation_m": _f(0.0, 100.0),
+        "area_at_set_velocity_rad": _f(0.0, 2.0 * math.pi),
+    },
+    "stark": {
+        "coefficient_hz_m2_per_v2": _f(-1e6, 1e6),
+        "coefficient_error": _f(-0.5, 0.5),
+        "bias_field_v_per_m": _f(0.0, 1e7, low_open=True),
+        "electrode_gap_m": _POS,
+    },
+    "detection": {
+        "efficiency": _f(0.0, 1.0, low_open=True),
+        "e_read_as_g": _PROB,
+        "g_read_as_e": _PROB,
+        "g_read_as_i": _PROB,
+        "i_read_as_g": _PROB,
+    },
+    "drift": {
+        "ramp_hz_per_s": _f(-1e6, 1e6),
+        "random_walk_hz_per_sqrt_s": _f(0.0, 1e6),
+        "thermal_step_hz": _f(-1e9, 1e9),
+    },
+    "model": {
+        "velocity_nodes": _i(1, 64),
+        "max_photons": _i(1, 20),
+        "crossing_steps": _i(8, 65536),
+        "stencil_spacing_hz": _f(0.0, 1e6, low_open=True),
+        "stencil_points": _i(3, 15),
+    },
+}
+_SECTIONS = tuple(_SECTION_SPECS)
+_SECTION_TYPES = {
+    "rig": RigSection,
+    "cavity": CavitySection,
+    "beam": BeamSection,
+    "field": FieldSection,
+    "ramsey": RamseySection,
+    "stark": StarkSection,
+    "detection": DetectionSection,
+    "drift": DriftSection,
+    "model": ModelSection,
+}
+_OPTIONAL_SECTIONS = frozenset({"model"})
+
+
+class _Checker:
+    def __init__(self, source: str) -> None:
+        self.source = source
+
+    def fail(self, key: str, expected: str, got: Any) -> SimConfigError:
+        return SimConfigError(f"{self.source}: {key}: expected {expected}, got {got!r}")
+
+    def table(self, data: Any, key: str) -> Mapping[str, Any]:
+        if not isinstance(data, Mapping):
+            raise self.fail(key, "a table", data)
+        return data
+
+    def unknown(self, data: Mapping[str, Any], allowed, prefix: str) -> None:
+        for key in data:
+            if key not in allowed:
+                where = f"{prefix}.{key}" if prefix else str(key)
+                raise self.fail(where, f"one of the keys {sorted(allowed)}", "an unknown key")
+
+    def value(self, spec: _Spec, raw: Any, key: str) -> Any:
+        if spec.kind == "str":
+            if not isinstance(raw, str) or not raw.strip():
+                raise self.fail(key, spec.describe(), raw)
+            return raw
+        if spec.kind == "int":
+            if isinstance(raw, bool) or not isinstance(raw, int):
+                raise self.fail(key, spec.describe(), raw)
+            value: float | int = raw
+        else:
+            if isinstance(raw, bool) or not isinstance(raw, (int, float)):
+                raise self.fail(key, spec.describe(), raw)
+            value = float(raw)
+            if not math.isfinite(value):
+                raise self.fail(key, spec.describe(), raw)
+        if spec.low is not None and (value <= spec.low if spec.low_open else value < spec.low):
+            raise self.fail(key, spec.describe(), raw)
+        if spec.high is not None and (value >= spec.high if spec.high_open else value > spec.high):
+            raise self.fail(key, spec.describe(), raw)
+        return value
+
+    def section(self, name: str, data: Any) -> Any:
+        specs = _SECTION_SPECS[name]
+        cls = _SECTION_TYPES[name]
+        if data is None:
+            if name in _OPTIONAL_SECTIONS:
+                return cls()
+            raise self.fail(name, "a table", "nothing")
+        data = self.table(data, name)
+        self.unknown(data, specs, name)
+        defaults = {f.name: f.default for f in dataclasses.fields(cls)}
+        values = {}
+        for key, spec in specs.items():
+            dotted = f"{name}.{key}"
+            if key not in data:
+                if defaults[key] is dataclasses.MISSING:
+                    raise self.fail(dotted, spec.describe(), "nothing")
+                values[key] = defaults[key]
+                continue
+            values[key] = self.value(spec, data[key], dotted)
+        return cls(**values)
+
+    def limits(self, data: Any) -> dict[str, SetpointLimit]:
+        if data is None:
+            raise self.fail("limits", "a table", "nothing")
+        data = self.table(data, "limits")
+        self.unknown(data, SETPOINT_UNITS, "limits")
+        out = {}
+        for name, unit in SETPOINT_UNITS.items():
+            prefix = f"limits.{name}"
+            if name not in data:
+                raise self.fail(prefix, "a table", "nothing")
+            table = self.table(data[name], prefix)
+            suffix = _UNIT_SUFFIX[name]
+            keys = {f"{k}_{suffix}": k for k in ("min", "max", "max_step", "safe")}
+            self.unknown(table, keys, prefix)
+            values = {}
+            for key, field in keys.items():
+                dotted = f"{prefix}.{key}"
+                if key not in table:
+                    raise self.fail(dotted, "a finite number", "nothing")
+                spec = _f(0.0, low_open=True) if field == "max_step" else _f()
+                if name == "velocity" and field in ("min", "max", "safe"):
+                    spec = _f(0.0, low_open=True)
+                values[field] = self.value(spec, table[key], dotted)
+            if values["min"] >= values["max"]:
+                raise self.fail(
+                    f"{prefix}.max_{suffix}", f"a number > min_{suffix} = {values['min']:g}",
+                    values["max"],
+                )
+            if not values["min"] <= values["safe"] <= values["max"]:
+                raise self.fail(
+                    f"{prefix}.safe_{suffix}",
+                    f"a number in [{values['min']:g}, {values['max']:g}]",
+                    values["safe"],
+                )
+            out[name] = SetpointLimit(unit=unit, **values)
+        return out
+
+
+def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> SimRigConfig:
+    """Build and check a :class:`SimRigConfig` from a nested dict (the parsed TOML).
+
+    Parameters
+    ----------
+    data : mapping
+        Top-level tables as in ``configs/sim-rig.toml``.
+    source : str, optional
+        Name used in error messages.
+
+    Raises
+    ------
+    SimConfigError
+        On any unknown key, missing key, wrong type, non-finite or out-of-range value.
+    """
+    check = _Checker(source)
+    data = check.table(data, "<top level>")
+    allowed = set(_SECTIONS) | {"limits", "faults"}
+    check.unknown(data, allowed, "")
+    sections = {name: check.section(name, data.get(name)) for name in _SECTIONS}
+    limits = check.limits(data.get("limits"))
+    faults = data.get("faults", {})
+    faults = dict(check.table(faults, "faults"))
+    detection = sections["detection"]
+    if detection.g_read_as_e + detection.g_read_as_i > 1.0:
+        raise check.fail(
+            "detection.g_read_as_i",
+            f"a probability <= 1 - g_read_as_e = {1.0 - detection.g_read_as_e:g}",
+            detection.g_read_as_i,
+        )
+    stark = sections["stark"]
+    if stark.coefficient_hz_m2_per_v2 == 0.0:
+        raise check.fail("stark.coefficient_hz_m2_per_v2", "a non-zero number", 0.0)
+    # Every detuning set-point must map to a real electrode field (E^2 >= 0).
+    detuning = limits["detuning"]
+    for bound in ("min", "max"):
+        square = stark.bias_field_v_per_m**2 + getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2
+        if square < 0.0:
+            raise check.fail(
+                "stark.bias_field_v_per_m",
+                f"a bias field that reaches limits.detuning.{bound}_hz "
+                f"(needs >= {math.sqrt(-getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2):g})",
+                stark.bias_field_v_per_m,
+            )
+    velocity = limits["velocity"]
+    bias = sections["beam"].velocity_bias_m_per_s
+    spread = sections["beam"].velocity_spread_m_per_s
+    if velocity.min + bias - 6.0 * spread <= 0.0:
+        raise check.fail(
+            "beam.velocity_bias_m_per_s",
+            "a bias and spread that keep every true velocity > 0 at limits.velocity.min_m_per_s",
+            bias,
+        )
+    return SimRigConfig(source=source, limits=limits, faults=faults, **sections)
+
+
+def load_sim_config(path: str | Path) -> SimRigConfig:
+    """Read and check a simulated-rig TOML file.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The TOML file.
+
+    Raises
+    ------
+    SimConfigError
+        If the file cannot be read or parsed, or any value is wrong.
+    """
+    path = Path(path)
+    try:
+        with path.open("rb") as handle:
+            data = tomllib.load(handle)
+    except OSError as exc:
+        raise SimConfigError(f"{path}: expected a readable TOML file, got {exc}") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise SimConfigError(f"{path}: expected valid TOML, got {exc}") from exc
+    return sim_config_from_dict(data, source=str(path))
