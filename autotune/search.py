@@ -1,0 +1,744 @@
+"""Search strategies over the set-points: ask for a point, tell its measured value (pure, no I/O).
+
+This is the only module that imports scikit-optimize (pinned to 0.10.2, unmaintained); no
+skopt type appears in its public API, and ``tests/test_search.py`` holds the canary for an
+upstream break.
+
+Every strategy maximises the told ``value`` (the fringe inversion) and follows one
+interface, :class:`Strategy`: ``ask()`` proposes a point, ``tell(point, value, stderr)``
+records a measurement, ``recommend()`` gives the point to choose now, ``exhausted()`` says a
+finite design is finished and ``converged()`` is the strategy's own stopping test.
+
+Resuming without saved state
+----------------------------
+Strategies keep no state that is not a function of their constructor arguments and of the
+results told so far, in order. A run killed half-way is resumed by building the strategy
+again with the same arguments (same seed, same initial points, same warm start) and
+telling it the journal's results in their original order: the next ``ask()`` then carries
+on the plan (the next grid or line-scan point, the next random point, or a point proposed
+by a surrogate refitted on the same data). ``ask()`` does not advance anything by itself;
+asking twice without a tell gives the same point.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import warnings
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Literal, Protocol, runtime_checkable
+
+import numpy as np
+from scipy import special
+from scipy.stats import qmc
+
+__all__ = [
+    "Dimension",
+    "SearchSpace",
+    "Observation",
+    "Recommendation",
+    "Strategy",
+    "Convergence",
+    "BayesianSearch",
+    "GridScan",
+    "CoordinateScan",
+    "RandomSearch",
+    "StrategyKind",
+    "make_strategy",
+]
+
+StrategyKind = Literal["bayesian", "grid", "coordinate", "random"]
+
+
+# --------------------------------------------------------------------------------------------
+# Space
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Dimension:
+    """One set-point axis of the search box.
+
+    Parameters
+    ----------
+    name : str
+        Set-point name (``"velocity"``, ``"detuning"``).
+    low, high : float
+        Bounds in the set-point's SI unit (m/s, Hz), finite, ``low < high``.
+    """
+
+    name: str
+    low: float
+    high: float
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.name, str) or not self.name:
+            raise ValueError(f"Dimension.name: expected a non-empty string, got {self.name!r}")
+        for attr in ("low", "high"):
+            value = getattr(self, attr)
+            if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+                raise ValueError(f"Dimension {self.name!r}: {attr}: expected a number, got {value!r}")
+            if not math.isfinite(float(value)):
+                raise ValueError(f"Dimension {self.name!r}: {attr}: expected a finite number, got {value!r}")
+            object.__setattr__(self, attr, float(value))
+        if not self.low < self.high:
+            raise ValueError(
+                f"Dimension {self.name!r}: expected low < high, got low={self.low!r}, high={self.high!r}"
+            )
+
+    @property
+    def width(self) -> float:
+        """``high - low``, in the set-point's unit."""
+        return self.high - self.low
+
+
+@dataclass(frozen=True)
+class SearchSpace:
+    """A box of set-points: an ordered tuple of :class:`Dimension` with unique names.
+
+    Points are mappings ``{name: value}`` with exactly the space's names.
+    """
+
+    dimensions: tuple[Dimension, ...]
+
+    def __post_init__(self) -> None:
+        dims = tuple(self.dimensions)
+        if not dims:
+            raise ValueError("SearchSpace.dimensions: expected at least one Dimension, got none")
+        for dim in dims:
+            if not isinstance(dim, Dimension):
+                raise ValueError(f"SearchSpace.dimensions: expected Dimension objects, got {dim!r}")
+        names = [dim.name for dim in dims]
+        duplicates = sorted({name for name in names if names.count(name) > 1})
+        if duplicates:
+            raise ValueError(f"SearchSpace.dimensions: expected unique names, got duplicates {duplicates}")
+        object.__setattr__(self, "dimensions", dims)
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        """Dimension names, in order."""
+        return tuple(dim.name for dim in self.dimensions)
+
+    @property
+    def lows(self) -> np.ndarray:
+        """Lower bounds, in order."""
+        return np.array([dim.low for dim in self.dimensions])
+
+    @property
+    def highs(self) -> np.ndarray:
+        """Upper bounds, in order."""
+        return np.array([dim.high for dim in self.dimensions])
+
+    def to_array(self, point: Mapping[str, float]) -> np.ndarray:
+        """The point's values in dimension order; raises ValueError on missing/extra/non-finite."""
+        if not isinstance(point, Mapping):
+            raise ValueError(f"point: expected a mapping {{name: value}}, got {point!r}")
+        missing = [name for name in self.names if name not in point]
+        extra = sorted(set(point) - set(self.names))
+        if missing or extra:
+            raise ValueError(f"point: expected keys {list(self.names)}, missing {missing}, unexpected {extra}")
+        values = []
+        for name in self.names:
+            value = point[name]
+            if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+                raise ValueError(f"point[{name!r}]: expected a number, got {value!r}")
+            if not math.isfinite(float(value)):
+                raise ValueError(f"point[{name!r}]: expected a finite number, got {value!r}")
+            values.append(float(value))
+        return np.array(values)
+
+    def to_point(self, values: Iterable[float]) -> dict[str, float]:
+        """``{name: float}`` from values in dimension order."""
+        array = np.asarray(list(values), dtype=float)
+        if array.shape != (len(self.dimensions),):
+            raise ValueError(f"values: expected {len(self.dimensions)} numbers, got shape {array.shape}")
+        return {name: float(v) for name, v in zip(self.names, array)}
+
+    def contains(self, point: Mapping[str, float]) -> bool:
+        """True if every value lies within its bounds (inclusive)."""
+        values = self.to_array(point)
+        return bool(np.all(values >= self.lows) and np.all(values <= self.highs))
+
+    def clip(self, point: Mapping[str, float]) -> dict[str, float]:
+        """The nearest point of the box."""
+        return self.to_point(np.clip(self.to_array(point), self.lows, self.highs))
+
+    def to_unit(self, point: Mapping[str, float]) -> np.ndarray:
+        """Coordinates in the unit cube, ``(value - low) / (high - low)``."""
+        return (self.to_array(point) - self.lows) / (self.highs - self.lows)
+
+    def from_unit(self, unit: Iterable[float]) -> dict[str, float]:
+        """The point at unit-cube coordinates (clipped to [0, 1] first)."""
+        u = np.clip(np.asarray(list(unit), dtype=float), 0.0, 1.0)
+        return self.to_point(self.lows + u * (self.highs - self.lows))
+
+
+# --------------------------------------------------------------------------------------------
+# Interface
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Observation:
+    """One measured result: a point, its value (to maximise) and the value's standard error."""
+
+    point: Mapping[str, float]
+    value: float
+    stderr: float
+
+
+@dataclass(frozen=True)
+class Recommendation:
+    """The point a strategy would choose now, with its predicted value and standard error.
+
+    For :class:`BayesianSearch` the value is the surrogate's posterior mean and the stderr its
+    posterior standard deviation; for the other strategies the best observed result.
+    """
+
+    point: dict[str, float]
+    value: float
+    stderr: float
+
+
+@runtime_checkable
+class Strategy(Protocol):
+    """What the closed loop needs from a search strategy (values are maximised)."""
+
+    name: str
+
+    @property
+    def n_told(self) -> int:
+        """Results told through :meth:`tell` (a warm start is not counted)."""
+        ...
+
+    def ask(self) -> dict[str, float]:
+        """The next point to measure; the same point until a result is told."""
+        ...
+
+    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
+        """Record the measured ``value`` (to maximise) and its ``stderr`` at ``point``."""
+        ...
+
+    def recommend(self) -> Recommendation:
+        """The point to choose now and its predicted value."""
+        ...
+
+    def exhausted(self) -> bool:
+        """True when a finite design has no point left to ask."""
+        ...
+
+    def converged(self) -> bool:
+        """True when the strategy's own stopping test passes."""
+        ...
+
+
+class _Record:
+    """Shared bookkeeping: checks and stores told results."""
+
+    name = "base"
+
+    def __init__(self, space: SearchSpace) -> None:
+        if not isinstance(space, SearchSpace):
+            raise ValueError(f"space: expected a SearchSpace, got {type(space).__name__}")
+        self.space = space
+        self._units: list[np.ndarray] = []
+        self._values: list[float] = []
+        self._stderrs: list[float] = []
+
+    @property
+    def n_told(self) -> int:
+        """Results told through :meth:`tell`."""
+        return len(self._values)
+
+    def _check_result(self, point: Mapping[str, float], value: float, stderr: float) -> np.ndarray:
+        values = self.space.to_array(point)
+        # Set-points read back from a rig may differ from the request in the last digits.
+        slack = 1e-9 * (self.space.highs - self.space.lows)
+        if np.any(values < self.space.lows - slack) or np.any(values > self.space.highs + slack):
+            raise ValueError(
+                f"point: expected within {dict(zip(self.space.names, zip(self.space.lows, self.space.highs)))}, "
+                f"got {dict(point)}"
+            )
+        for label, number in (("value", value), ("stderr", stderr)):
+            if isinstance(number, bool) or not isinstance(number, (int, float, np.floating, np.integer)):
+                raise ValueError(f"{label}: expected a finite number, got {number!r}")
+            if not math.isfinite(float(number)):
+                raise ValueError(f"{label}: expected a finite number, got {number!r}")
+        if float(stderr) < 0.0:
+            raise ValueError(f"stderr: expected >= 0, got {stderr!r}")
+        return np.clip((values - self.space.lows) / (self.space.highs - self.space.lows), 0.0, 1.0)
+
+    def _store(self, unit: np.ndarray, value: float, stderr: float) -> None:
+        self._units.append(unit)
+        self._values.append(float(value))
+        self._stderrs.append(float(stderr))
+
+    def _best_observed(self) -> Recommendation:
+        if not self._values:
+            raise RuntimeError(f"{self.name}: nothing told yet, no recommendation")
+        best = int(np.argmax(self._values))
+        return Recommendation(self.space.from_unit(self._units[best]), self._values[best], self._stderrs[best])
+
+
+class _FixedDesign(_Record):
+    """A strategy whose k-th point depends only on the first k results."""
+
+    def _size(self) -> int:
+        raise NotImplementedError
+
+    def _point(self, index: int) -> np.ndarray:
+        raise NotImplementedError
+
+    def ask(self) -> dict[str, float]:
+        """The next design point; raises RuntimeError once :meth:`exhausted`."""
+        if self.exhausted():
+            raise RuntimeError(f"{self.name}: the design of {self._size()} points is exhausted; check exhausted()")
+        return self.space.from_unit(self._point(self.n_told))
+
+    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
+        """Record a result (value maximised)."""
+        self._store(self._check_result(point, value, stderr), value, stderr)
+
+    def recommend(self) -> Recommendation:
+        """The best observed result."""
+        return self._best_observed()
+
+    def exhausted(self) -> bool:
+        """True once every design point has been told."""
+        return self.n_told >= self._size()
+
+    def converged(self) -> bool:
+        """Same as :meth:`exhausted`: a fixed design has no other stopping test."""
+        return self.exhausted()
+
+
+def _counts_per_dimension(space: SearchSpace, points_per_dimension: int | Mapping[str, int], minimum: int) -> list[int]:
+    if isinstance(points_per_dimension, Mapping):
+        unknown = sorted(set(points_per_dimension) - set(space.names))
+        if unknown:
+            raise ValueError(f"points_per_dimension: unknown dimensions {unknown}")
+        counts = [points_per_dimension.get(name, None) for name in space.names]
+        if any(c is None for c in counts):
+            raise ValueError(f"points_per_dimension: expected a count for each of {list(space.names)}")
+    else:
+        counts = [points_per_dimension] * len(space.dimensions)
+    for name, count in zip(space.names, counts):
+        if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < minimum:
+            raise ValueError(f"points_per_dimension[{name!r}]: expected an integer >= {minimum}, got {count!r}")
+    return [int(c) for c in counts]
+
+
+def _line(count: int) -> np.ndarray:
+    return np.linspace(0.0, 1.0, count) if count > 1 else np.array([0.5])
+
+
+class GridScan(_FixedDesign):
+    """The full grid over the box (end points included), then the best observed point.
+
+    Parameters
+    ----------
+    space : SearchSpace
+    points_per_dimension : int or mapping name -> int
+        Grid points along each dimension (>= 1; one point is the centre). The last
+        dimension varies fastest.
+    """
+
+    name = "grid"
+
+    def __init__(self, space: SearchSpace, points_per_dimension: int | Mapping[str, int]) -> None:
+        super().__init__(space)
+        counts = _counts_per_dimension(space, points_per_dimension, 1)
+        self._grid = np.array(list(itertools.product(*(_line(c) for c in counts))))
+
+    def _size(self) -> int:
+        return len(self._grid)
+
+    def _point(self, index: int) -> np.ndarray:
+        return self._grid[index]
+
+
+class RandomSearch(_FixedDesign):
+    """``n_points`` points drawn uniformly in the box from ``seed``, then the best observed point."""
+
+    name = "random"
+
+    def __init__(self, space: SearchSpace, seed: int, n_points: int) -> None:
+        super().__init__(space)
+        if isinstance(n_points, bool) or not isinstance(n_points, (int, np.integer)) or n_points < 1:
+            raise ValueError(f"n_points: expected an integer >= 1, got {n_points!r}")
+        self._design = np.random.default_rng(seed).uniform(size=(int(n_points), len(space.dimensions)))
+
+    def _size(self) -> int:
+        return len(self._design)
+
+    def _point(self, index: int) -> np.ndarray:
+        return self._design[index]
+
+
+class CoordinateScan(_FixedDesign):
+    """The hand method: line scans along one dimension at a time around the best so far.
+
+    A round scans each dimension in order (velocity first, then detuning) with
+    ``points_per_dimension`` equally spaced points, the other set-points held at the current
+    point; after each line the current point moves to the best result of that line. Round
+    ``r`` (from 0) scans a window of width ``narrowing**r`` times the full range, centred on
+    the current point and shifted to stay inside the box: with the default ``narrowing=0.5``
+    the window halves every round.
+
+    Parameters
+    ----------
+    space : SearchSpace
+    points_per_dimension : int or mapping name -> int
+        Points per line scan (>= 2).
+    rounds : int
+        Rounds over all dimensions (>= 1).
+    start : mapping, optional
+        The first current point (default: the centre of the box).
+    narrowing : float
+        Window shrink factor per round, in (0, 1].
+    """
+
+    name = "coordinate"
+
+    def __init__(
+        self,
+        space: SearchSpace,
+        points_per_dimension: int | Mapping[str, int],
+        rounds: int,
+        start: Mapping[str, float] | None = None,
+        narrowing: float = 0.5,
+    ) -> None:
+        super().__init__(space)
+        self._counts = _counts_per_dimension(space, points_per_dimension, 2)
+        if isinstance(rounds, bool) or not isinstance(rounds, (int, np.integer)) or rounds < 1:
+            raise ValueError(f"rounds: expected an integer >= 1, got {rounds!r}")
+        if not (isinstance(narrowing, (int, float)) and 0.0 < float(narrowing) <= 1.0):
+            raise ValueError(f"narrowing: expected a number in (0, 1], got {narrowing!r}")
+        self._rounds = int(rounds)
+        self._narrowing = float(narrowing)
+        if start is None:
+            self._start = np.full(len(space.dimensions), 0.5)
+        else:
+            if not space.contains(start):
+                raise ValueError(f"start: expected a point inside the space, got {dict(start)}")
+            self._start = space.to_unit(start)
+        # Line l covers told indices [self._offsets[l], self._offsets[l + 1]).
+        per_round = list(self._counts)
+        self._offsets = np.concatenate([[0], np.cumsum(per_round * self._rounds)])
+        self._lines: list[np.ndarray] = []
+
+    def _size(self) -> int:
+        return int(self._offsets[-1])
+
+    def _line_points(self, line: int) -> np.ndarray:
+        while len(self._lines) <= line:
+            index = len(self._lines)
+            if index == 0:
+                centre = self._start
+            else:
+                lo, hi = int(self._offsets[index - 1]), int(self._offsets[index])
+                best = lo + int(np.argmax(self._values[lo:hi]))
+                centre = self._units[best]
+            dim = index % len(self._counts)
+            width = self._narrowing ** (index // len(self._counts))
+            low = min(max(centre[dim] - width / 2.0, 0.0), 1.0 - width)
+            points = np.repeat(centre[None, :], self._counts[dim], axis=0)
+            points[:, dim] = low + width * _line(self._counts[dim])
+            self._lines.append(points)
+        return self._lines[line]
+
+    def _point(self, index: int) -> np.ndarray:
+        line = int(np.searchsorted(self._offsets, index, side="right")) - 1
+        return self._line_points(line)[index - int(self._offsets[line])]
+
+
+# --------------------------------------------------------------------------------------------
+# Bayesian optimisation (the scikit-optimize adapter)
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Convergence:
+    """Stopping test of :class:`BayesianSearch`, on its surrogate.
+
+    Converged when all hold: at least ``min_told`` results told after the initial design;
+    the largest expected improvement over the candidate set, in the value's unit, is
+    below ``expected_improvement``; and the recommendation stayed within
+    ``stable_distance`` (unit-cube Euclidean distance) of the present one over the last
+    ``stable_tells`` tells.
+    """
+
+    expected_improvement: float = 2e-3
+    stable_tells: int = 5
+    stable_distance: float = 0.03
+    min_told: int = 10
+
+    def __post_init__(self) -> None:
+        if not (math.isfinite(self.expected_improvement) and self.expected_improvement > 0):
+            raise ValueError(f"Convergence.expected_improvement: expected > 0, got {self.expected_improvement!r}")
+        if not (isinstance(self.stable_tells, int) and self.stable_tells >= 1):
+            raise ValueError(f"Convergence.stable_tells: expected an integer >= 1, got {self.stable_tells!r}")
+        if not (math.isfinite(self.stable_distance) and self.stable_distance > 0):
+            raise ValueError(f"Convergence.stable_distance: expected > 0, got {self.stable_distance!r}")
+        if not (isinstance(self.min_told, int) and self.min_told >= 0):
+            raise ValueError(f"Convergence.min_told: expected an integer >= 0, got {self.min_told!r}")
+
+
+def _skopt():
+    """Import the pieces of scikit-optimize used here (a failure names the pinned version)."""
+    try:
+        from sklearn.gaussian_process.kernels import ConstantKernel, Matern
+        from skopt import Optimizer
+        from skopt.learning import GaussianProcessRegressor
+        from skopt.space import Real
+    except ImportError as exc:  # pragma: no cover - environment problem
+        raise ImportError("autotune.search needs scikit-optimize==0.10.2 and scikit-learn") from exc
+    return Optimizer, GaussianProcessRegressor, ConstantKernel, Matern, Real
+
+
+def _as_observation(item: Any) -> Observation:
+    if isinstance(item, Observation):
+        return item
+    if isinstance(item, Recommendation):
+        return Observation(item.point, item.value, item.stderr)
+    try:
+        point, value, stderr = item
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"warm_start: expected (point, value, stderr) items, got {item!r}") from exc
+    return Observation(point, value, stderr)
+
+
+class BayesianSearch(_Record):
+    """Bayesian optimisation with a noise-aware Gaussian-process surrogate (skopt ask/tell).
+
+    The surrogate models ``-value`` (skopt minimises) with a Matern(5/2) kernel on the unit
+    cube, a learned white-noise term for scatter beyond the stated errors, and each result's
+    own ``stderr**2`` as its fixed noise variance. Proposals maximise expected improvement
+    over a random sample of candidates (sampling, not L-BFGS, so a step stays fast at a few
+    hundred results).
+
+    The first points asked are ``initial_points`` (in order), then ``n_initial_points``
+    Latin-hypercube points (space filling, from ``seed``); the surrogate proposes after that.
+    ``warm_start`` results (earlier measurements) are told to the surrogate at construction
+    and count neither in :attr:`n_told` nor in the design.
+
+    Parameters
+    ----------
+    space : SearchSpace
+    seed : int
+        Seed of the design, the surrogate fit and the acquisition sampling.
+    initial_points : sequence of mappings
+        Points measured first (e.g. the nominal 2 pi velocity at zero detuning).
+    n_initial_points : int
+        Space-filling points after ``initial_points`` (>= 0).
+    warm_start : sequence of Observation or (point, value, stderr)
+        Earlier results to learn from before the first ask.
+    convergence : Convergence
+        The stopping test.
+    n_points : int, optional
+        Budget of told results; :meth:`exhausted` is true once reached.
+    candidates : int
+        Size of the fixed quasi-random candidate set for the recommendation and the
+        convergence test, and of the acquisition sample.
+    """
+
+    name = "bayesian"
+
+    def __init__(
+        self,
+        space: SearchSpace,
+        *,
+        seed: int,
+        initial_points: Sequence[Mapping[str, float]] = (),
+        n_initial_points: int = 8,
+        warm_start: Sequence[Observation | tuple[Mapping[str, float], float, float]] = (),
+        convergence: Convergence = Convergence(),
+        n_points: int | None = None,
+        candidates: int = 2048,
+    ) -> None:
+        super().__init__(space)
+        if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
+            raise ValueError(f"seed: expected an integer, got {seed!r}")
+        if isinstance(n_initial_points, bool) or not isinstance(n_initial_points, (int, np.integer)) or n_initial_points < 0:
+            raise ValueError(f"n_initial_points: expected an integer >= 0, got {n_initial_points!r}")
+        if n_points is not None and (isinstance(n_points, bool) or not isinstance(n_points, int) or n_points < 1):
+            raise ValueError(f"n_points: expected None or an integer >= 1, got {n_points!r}")
+        if not isinstance(convergence, Convergence):
+            raise ValueError(f"convergence: expected a Convergence, got {convergence!r}")
+        if isinstance(candidates, bool) or not isinstance(candidates, int) or candidates < 16:
+            raise ValueError(f"candidates: expected an integer >= 16, got {candidates!r}")
+        self.seed = int(seed)
+        self.convergence = convergence
+        self._budget = n_points
+        dims = len(space.dimensions)
+
+        design = []
+        for k, point in enumerate(initial_points):
+            if not space.contains(point):
+                raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
+            design.append(space.to_unit(point))
+        if n_initial_points:
+            sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(self.seed))
+            design.extend(sampler.random(int(n_initial_points)))
+        self._design = np.array(design).reshape(-1, dims)
+        warm = [_as_observation(item) for item in warm_start]
+        if not len(self._design) and not warm:
+            raise ValueError("BayesianSearch: expected initial_points, n_initial_points > 0 or a warm_start")
+        self._candidates = qmc.Sobol(d=dims, scramble=True, rng=np.random.default_rng(self.seed + 1)).random(candidates)
+
+        optimizer, regressor, constant, matern, real = _skopt()
+        kernel = constant(1.0, (1e-2, 1e2)) * matern(
+            length_scale=np.full(dims, 0.3), length_scale_bounds=(0.02, 5.0), nu=2.5
+        )
+        self._regressor = regressor(
+            kernel=kernel,
+            normalize_y=True,
+            noise="gaussian",
+            n_restarts_optimizer=2,
+            random_state=self.seed,
+        )
+        self._optimizer = optimizer(
+            # Bounds in the unit cube: skopt sees only our normalised coordinates.
+            [real(0.0, 1.0, name=name) for name in space.names],
+            base_estimator=self._regressor,
+            n_initial_points=0,
+            acq_func="EI",
+            acq_optimizer="sampling",
+            acq_optimizer_kwargs={"n_points": candidates},
+            random_state=self.seed,
+        )
+        self._all_stderrs: list[float] = []
+        self._model = None
+        self._history: list[np.ndarray] = []
+        self._warm_count = len(warm)
+        for k, item in enumerate(warm):
+            try:
+                unit = self._check_result(item.point, item.value, item.stderr)
+            except ValueError as exc:
+                raise ValueError(f"warm_start[{k}]: {exc}") from exc
+            self._feed(unit, float(item.value), float(item.stderr), fit=(k == len(warm) - 1))
+
+    # -- adapter ------------------------------------------------------------------------
+
+    def _feed(self, unit: np.ndarray, value: float, stderr: float, fit: bool) -> None:
+        self._all_stderrs.append(stderr)
+        if fit:
+            scale = float(np.std(np.array(self._optimizer.yi + [-value], dtype=float)))
+            # sklearn's normalize_y divides y by its std; alpha is added in those units.
+            scale = scale if scale > 0.0 else 1.0
+            alpha = np.array(self._all_stderrs) ** 2 / scale**2 + 1e-10
+            self._optimizer.base_estimator_.set_params(alpha=alpha)
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message="The objective has been evaluated at this point before")
+            self._optimizer.tell([float(u) for u in unit], -value, fit=fit)
+        if fit:
+            self._model = self._optimizer.models[-1]
+
+    def _in_design(self) -> bool:
+        return self.n_told < len(self._design)
+
+    def _predict(self, units: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        mean, std = self._model.predict(units, return_std=True)
+        return -np.asarray(mean, dtype=float), np.asarray(std, dtype=float)
+
+    # -- interface ----------------------------------------------------------------------
+
+    def ask(self) -> dict[str, float]:
+        """The next design point, then the surrogate's expected-improvement proposal."""
+        if self._in_design():
+            return self.space.from_unit(self._design[self.n_told])
+        with warnings.catch_warnings():
+            # Re-measuring a point is legitimate under noise.
+            warnings.filterwarnings("ignore", message="The objective has been evaluated at this point before")
+            unit = self._optimizer.ask()
+        return self.space.from_unit(unit)
+
+    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
+        """Record a result (value maximised); refits the surrogate once the design is done."""
+        unit = self._check_result(point, value, stderr)
+        self._store(unit, value, stderr)
+        self._feed(unit, float(value), float(stderr), fit=not self._in_design())
+        if self._model is not None:
+            self._history.append(self._recommend_unit()[0])
+
+    def _recommend_unit(self) -> tuple[np.ndarray, float, float]:
+        evaluated = np.array(self._optimizer.Xi, dtype=float)
+        units = np.vstack([evaluated, self._candidates])
+        mean, std = self._predict(units)
+        best = int(np.argmax(mean))
+        return units[best], float(mean[best]), float(std[best])
+
+    def recommend(self) -> Recommendation:
+        """Argmax of the surrogate's posterior mean over evaluated and candidate points.
+
+        Before the surrogate is fitted (during the initial design) the best observed result.
+        """
+        if self._model is None:
+            return self._best_observed()
+        unit, value, stderr = self._recommend_unit()
+        return Recommendation(self.space.from_unit(unit), value, stderr)
+
+    def expected_improvement(self) -> float:
+        """Largest expected improvement over the candidate set (value's unit; inf before a fit).
+
+        The incumbent is the best posterior mean at an evaluated point, not the best noisy
+        observation.
+        """
+        if self._model is None:
+            return math.inf
+        incumbent = float(np.max(self._predict(np.array(self._optimizer.Xi, dtype=float))[0]))
+        mean, std = self._predict(self._candidates)
+        std = np.maximum(std, 1e-12)
+        z = (mean - incumbent) / std
+        improvement = (mean - incumbent) * special.ndtr(z) + std * np.exp(-0.5 * z**2) / math.sqrt(2 * math.pi)
+        return float(np.max(improvement))
+
+    def exhausted(self) -> bool:
+        """True once ``n_points`` results have been told (never without a budget)."""
+        return self._budget is not None and self.n_told >= self._budget
+
+    def converged(self) -> bool:
+        """The :class:`Convergence` test on the surrogate."""
+        rule = self.convergence
+        if self._model is None or self.n_told - len(self._design) < rule.min_told:
+            return False
+        if len(self._history) < rule.stable_tells:
+            return False
+        latest = self._history[-1]
+        recent = np.array(self._history[-rule.stable_tells :])
+        if np.max(np.linalg.norm(recent - latest, axis=1)) > rule.stable_distance:
+            return False
+        return self.expected_improvement() < rule.expected_improvement
+
+
+# --------------------------------------------------------------------------------------------
+# Factory
+# --------------------------------------------------------------------------------------------
+
+
+def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settings: Any) -> Strategy:
+    """Build a strategy by kind.
+
+    Parameters
+    ----------
+    kind : {"bayesian", "grid", "coordinate", "random"}
+    space : SearchSpace
+    seed : int
+        Used by the seeded strategies (bayesian, random); ignored by grid and coordinate.
+    **settings
+        Keyword arguments of the strategy's constructor (``points_per_dimension``,
+        ``rounds``, ``n_points``, ``initial_points``, ...).
+    """
+    try:
+        if kind == "bayesian":
+            return BayesianSearch(space, seed=seed, **settings)
+        if kind == "grid":
+            return GridScan(space, **settings)
+        if kind == "coordinate":
+            return CoordinateScan(space, **settings)
+        if kind == "random":
+            return RandomSearch(space, seed, **settings)
+    except TypeError as exc:
+        raise ValueError(f"settings for {kind!r}: {exc}") from exc
+    raise ValueError(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', got {kind!r}")
