@@ -41,6 +41,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune import protocol
 from autotune.protocol import ErrorKind, Op, RequestRejected
+from drivers_sim.rig import RigInterlock, SetpointError
 
 __all__ = [
     "DEFAULT_BIND",
@@ -435,7 +436,7 @@ class RigServer:
                 name = zmq.Event(event["event"]).name
             except ValueError:
                 name = str(event["event"])
-            self._log.warning("curve_handshake_refused", event=str(name), value=event["value"],
+            self._log.warning("curve_handshake_refused", zmq_event=str(name), value=event["value"],
                               peer=event["endpoint"].decode("ascii", "replace") if isinstance(event["endpoint"], bytes) else str(event["endpoint"]))
 
     # ------------------------------------------------------------------ requests
@@ -472,8 +473,6 @@ class RigServer:
             self._cache.popitem(last=False)
 
     def _execute(self, request: protocol.Request) -> bytes:
-        from drivers_sim.rig import RigInterlock, SetpointError
-
         log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
         try:
             result = self._dispatch[request.op](request.args)
@@ -528,7 +527,7 @@ def add_rig_arguments(parser: argparse.ArgumentParser, *, log_level: bool = True
     """
     parser.add_argument("--config", type=Path, default=_DEFAULT_CONFIG, help="simulated rig TOML (default: %(default)s)")
     parser.add_argument("--bind", default=DEFAULT_BIND, help="endpoint to listen on; port 0 picks a free one (default: %(default)s)")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the rig's noise and of the faults (default: %(default)s)")
+    parser.add_argument("--seed", type=int, default=None, help="seed of the rig's noise and of the faults (default: the config's rig.default_seed)")
     parser.add_argument("--ready-file", type=Path, default=None, help="write the bound endpoint here once listening")
     parser.add_argument("--drop-probability", type=float, default=None, help="fault: probability of dropping a reply")
     parser.add_argument("--delay-s", type=float, default=None, help="fault: delay of each fresh reply, s")
@@ -570,6 +569,7 @@ def run_rig(ns: argparse.Namespace) -> int:
     from drivers_sim.rig import SimulatedRig
 
     log = _log.bind(bind=ns.bind)
+    seed = 0
     try:
         if (ns.curve_secret_key is None) != (ns.curve_allowed_dir is None):
             raise ServerConfigError("<flags>", "--curve-secret-key/--curve-allowed-dir", "both or neither",
@@ -582,12 +582,13 @@ def run_rig(ns: argparse.Namespace) -> int:
             exit_after_messages=ns.exit_after,
         )
         curve = None if ns.curve_secret_key is None else CurveServerKeys.load(ns.curve_secret_key, ns.curve_allowed_dir)
-        rig = SimulatedRig(config, ns.seed)
+        seed = ns.seed if ns.seed is not None else config.rig.default_seed
+        rig = SimulatedRig(config, seed)
     except (ServerConfigError, OSError, ValueError) as exc:
         # The rig's own configuration errors are ValueErrors too; all refuse the start.
         log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
         return 2
-    server = RigServer(rig, ns.bind, faults=faults, curve=curve, fault_seed=_child_seed(ns.seed))
+    server = RigServer(rig, ns.bind, faults=faults, curve=curve, fault_seed=_child_seed(seed))
     previous: dict[int, Any] = {}
     try:
         try:

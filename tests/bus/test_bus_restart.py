@@ -1,0 +1,57 @@
+"""A server that dies mid-run: the client reconnects to its successor, or gives up within its bound."""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import pytest
+from structlog.testing import capture_logs
+
+from autotune.errors import RigTimeout
+
+MARGIN_S = 1.0  # scheduling slack on two noisy cores
+
+
+def test_client_reconnects_to_a_restarted_server(start_server, make_client):
+    """After a hard kill, a server restarted on the same port answers the same client's next call."""
+    first = start_server(name="first")
+    client = make_client(first.endpoint, timeout_s=0.5, retries=12, backoff_s=0.05)
+    client.acquire("empty", 0.0, 30)
+    first.kill()
+    restart = threading.Thread(target=start_server, kwargs={"name": "second", "bind": first.endpoint})
+    with capture_logs() as logs:
+        restart.start()
+        status = client.status()
+    restart.join(timeout=60)
+    # The successor is a fresh rig: its total cannot include the first server's shots.
+    assert status.shots_total == 0
+    assert any(entry["event"] == "bus_retry" for entry in logs)
+
+
+def test_client_gives_up_within_its_bound_when_the_server_stays_down(start_server, make_client):
+    """With the server gone for good, the call raises RigTimeout no later than max_wait_s plus a margin."""
+    server = start_server()
+    client = make_client(server.endpoint, timeout_s=0.2, retries=2, backoff_s=0.05)
+    client.status()
+    server.kill()
+    started = time.monotonic()
+    with pytest.raises(RigTimeout, match="3 attempts"):
+        client.status()
+    elapsed = time.monotonic() - started
+    # max_wait_s = 3 * 0.2 + 0.05 + 0.1 = 0.75 s, by the documented doubling backoff.
+    assert client.max_wait_s == pytest.approx(0.75)
+    assert client.max_wait_s - 0.05 <= elapsed <= client.max_wait_s + MARGIN_S
+
+
+def test_retries_are_logged_with_endpoint_op_and_msg_id(start_server, make_client):
+    """Each retry is logged with the endpoint, the op and the one msg_id reused by every attempt."""
+    server = start_server()
+    client = make_client(server.endpoint, timeout_s=0.1, retries=2, backoff_s=0.0)
+    server.kill()
+    with capture_logs() as logs, pytest.raises(RigTimeout):
+        client.status()
+    retries = [entry for entry in logs if entry["event"] == "bus_retry"]
+    assert len(retries) == 2
+    assert {(e["endpoint"], e["op"]) for e in retries} == {(server.endpoint, "status")}
+    assert len({e["msg_id"] for e in retries}) == 1
