@@ -1,0 +1,111 @@
+"""The server's request handler in-process: error kinds, replay cache, fault table."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from autotune import protocol
+from autotune.protocol import Op
+from drivers_sim.config import load_sim_config
+from drivers_sim.rig import SimulatedRig
+from drivers_sim.server import FaultConfig, RigServer, ServerConfigError
+
+from .conftest import SEED, SIM_CONFIG
+
+
+@pytest.fixture
+def rig() -> SimulatedRig:
+    """A real simulated rig."""
+    return SimulatedRig(load_sim_config(SIM_CONFIG), SEED)
+
+
+@pytest.fixture
+def server(rig):
+    """A server around it, never bound (only its handler is used)."""
+    server = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig(), cache_size=2)
+    yield server
+    server.close()
+
+
+def _ask(server: RigServer, op: Op, args: dict, msg_id: str | None = None) -> dict:
+    return json.loads(server.handle(protocol.encode_request(op, args, msg_id or protocol.new_msg_id())))
+
+
+def test_repeated_msg_id_gets_the_same_bytes_and_runs_once(server, rig):
+    """The same request twice gets identical reply bytes and its shots are counted once."""
+    request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 25}, "ab" * 16)
+    first, second = server.handle(request), server.handle(request)
+    assert first == second
+    assert rig.status()["shots_total"] == 25
+
+
+def test_reused_msg_id_with_another_request_is_refused(server, rig):
+    """A msg_id reused for a different request is a bad_request and nothing runs."""
+    server.handle(protocol.encode_request(Op.STATUS, {}, "cd" * 16))
+    reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 25}, "cd" * 16)
+    assert reply["error"]["kind"] == "bad_request" and "msg_id" in reply["error"]["detail"]
+    assert rig.status()["shots_total"] == 0
+
+
+def test_replay_cache_is_bounded(server, rig):
+    """With a cache of 2, a request older than two others is executed again when repeated."""
+    request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 10}, "ef" * 16)
+    server.handle(request)
+    _ask(server, Op.STATUS, {})
+    _ask(server, Op.STATUS, {})
+    server.handle(request)
+    assert rig.status()["shots_total"] == 20
+
+
+def test_interlock_maps_to_interlock(server, rig):
+    """A rig interlock comes back as error kind interlock (CONTRACTS.md)."""
+    rig.set_interlock("cryostat above 1 K")
+    reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 10})
+    assert reply["error"]["kind"] == "interlock" and "cryostat above 1 K" in reply["error"]["detail"]
+
+
+def test_unknown_setpoint_name_is_out_of_range(server):
+    """A set-point the rig does not have is refused by the rig as a set-point error."""
+    reply = _ask(server, Op.APPLY, {"setpoints": {"laser_power": 1.0}})
+    assert reply["error"]["kind"] == "out_of_range" and "laser_power" in reply["error"]["detail"]
+
+
+def test_rig_value_error_maps_to_bad_request(server, rig):
+    """Shots beyond the rig's own maximum (a ValueError of the rig) come back as bad_request."""
+    too_many = load_sim_config(SIM_CONFIG).rig.max_shots_per_acquisition + 1
+    reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": too_many})
+    assert reply["error"]["kind"] == "bad_request"
+    assert rig.status()["shots_total"] == 0
+
+
+def test_unexpected_rig_failure_maps_to_internal(server, rig, monkeypatch):
+    """Any other exception of the rig comes back as internal, and the server keeps answering."""
+    def broken() -> dict:
+        raise ZeroDivisionError("broken clock")
+
+    monkeypatch.setattr(rig, "status", broken)
+    reply = _ask(server, Op.STATUS, {})
+    assert reply["error"] == {"kind": "internal", "detail": "ZeroDivisionError: broken clock"}
+    assert _ask(server, Op.DESCRIBE, {})["ok"] is True
+
+
+def test_fault_table_with_unknown_key_is_refused():
+    """A [faults] key the server does not know is refused naming file and key."""
+    with pytest.raises(ServerConfigError) as info:
+        FaultConfig.from_table({"drop_probability": 0.1}, file="sim-rig.toml")
+    assert (info.value.file, info.value.key) == ("sim-rig.toml", "faults.drop_probability")
+
+
+def test_fault_table_with_bad_probability_is_refused():
+    """A probability outside [0, 1] is refused naming the key, expected and got."""
+    with pytest.raises(ServerConfigError, match=r"faults\.corrupt_reply_probability: expected a probability in \[0, 1\], got 1.5"):
+        FaultConfig.from_table({"corrupt_reply_probability": 1.5}, file="sim-rig.toml")
+
+
+def test_fault_flags_override_the_table():
+    """Flags given replace table values; flags not given leave them."""
+    faults = FaultConfig.from_table({"drop_reply_probability": 0.1, "delay_reply_s": 0.2}).overridden(
+        drop_reply_probability=0.5, delay_reply_s=None)
+    assert (faults.drop_reply_probability, faults.delay_reply_s) == (0.5, 0.2)
