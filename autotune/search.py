@@ -462,27 +462,35 @@ class CoordinateScan(_FixedDesign):
 class Convergence:
     """Stopping test of :class:`BayesianSearch`, on its surrogate.
 
-    Converged when all hold: at least ``min_told`` results told after the initial design;
-    the largest expected improvement over the candidate set, in the value's unit, is
-    below ``expected_improvement``; and the recommendation stayed within
-    ``stable_distance`` (unit-cube Euclidean distance) of the present one over the last
-    ``stable_tells`` tells.
+    Converged when all hold:
+
+    - at least ``min_told`` results were told after the initial design;
+    - the recommendation stayed within ``stable_distance`` (unit-cube Euclidean distance)
+      of the present one over the last ``stable_tells`` tells;
+    - the largest expected improvement over the candidate set is below
+      ``expected_improvement`` (in the value's unit);
+    - no candidate's upper bound ``mean + upper_bound_sigmas * std`` exceeds the
+      recommended posterior mean by more than ``upper_bound_gap`` (value's unit): nowhere
+      unexplored could plausibly beat the recommendation, which keeps the search from
+      stopping on a lower ridge while a narrow peak is still possible.
     """
 
-    expected_improvement: float = 2e-3
+    expected_improvement: float = 1e-3
+    upper_bound_gap: float = 0.03
+    upper_bound_sigmas: float = 2.0
     stable_tells: int = 5
     stable_distance: float = 0.03
     min_told: int = 10
 
     def __post_init__(self) -> None:
-        if not (math.isfinite(self.expected_improvement) and self.expected_improvement > 0):
-            raise ValueError(f"Convergence.expected_improvement: expected > 0, got {self.expected_improvement!r}")
-        if not (isinstance(self.stable_tells, int) and self.stable_tells >= 1):
-            raise ValueError(f"Convergence.stable_tells: expected an integer >= 1, got {self.stable_tells!r}")
-        if not (math.isfinite(self.stable_distance) and self.stable_distance > 0):
-            raise ValueError(f"Convergence.stable_distance: expected > 0, got {self.stable_distance!r}")
-        if not (isinstance(self.min_told, int) and self.min_told >= 0):
-            raise ValueError(f"Convergence.min_told: expected an integer >= 0, got {self.min_told!r}")
+        for attr in ("expected_improvement", "upper_bound_gap", "upper_bound_sigmas", "stable_distance"):
+            value = getattr(self, attr)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not (math.isfinite(value) and value > 0):
+                raise ValueError(f"Convergence.{attr}: expected a finite number > 0, got {value!r}")
+        for attr, minimum in (("stable_tells", 1), ("min_told", 0)):
+            value = getattr(self, attr)
+            if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+                raise ValueError(f"Convergence.{attr}: expected an integer >= {minimum}, got {value!r}")
 
 
 def _skopt():
@@ -709,7 +717,20 @@ class BayesianSearch(_Record):
         recent = np.array(self._history[-rule.stable_tells :])
         if np.max(np.linalg.norm(recent - latest, axis=1)) > rule.stable_distance:
             return False
-        return self.expected_improvement() < rule.expected_improvement
+        if self.expected_improvement() >= rule.expected_improvement:
+            return False
+        return self.upper_bound_gap() < rule.upper_bound_gap
+
+    def upper_bound_gap(self) -> float:
+        """Largest ``mean + k std`` over candidates minus the recommended mean (inf before a fit).
+
+        ``k`` is ``convergence.upper_bound_sigmas``; value's unit.
+        """
+        if self._model is None:
+            return math.inf
+        _, value, _ = self._recommend_unit()
+        mean, std = self._predict(self._candidates)
+        return float(np.max(mean + self.convergence.upper_bound_sigmas * std) - value)
 
 
 # --------------------------------------------------------------------------------------------

@@ -1,0 +1,328 @@
+"""Tests of autotune.search: the skopt adapter on a standard function, and the scan strategies."""
+
+from __future__ import annotations
+
+import inspect
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from autotune.search import (
+    BayesianSearch,
+    Convergence,
+    CoordinateScan,
+    Dimension,
+    GridScan,
+    Observation,
+    RandomSearch,
+    Recommendation,
+    SearchSpace,
+    Strategy,
+    make_strategy,
+)
+
+BRANIN_SPACE = SearchSpace((Dimension("x", -5.0, 10.0), Dimension("y", 0.0, 15.0)))
+# Branin minimum and its three minimisers: Dixon and Szego (1978), "Towards Global
+# Optimisation 2" (from memory), as implemented in skopt.benchmarks.branin.
+BRANIN_MINIMUM = 0.397887
+BRANIN_MINIMISERS = np.array([(-math.pi, 12.275), (math.pi, 2.275), (9.42478, 2.475)])
+
+RIG_SPACE = SearchSpace((Dimension("velocity", 420.0, 600.0), Dimension("detuning", -40e3, 40e3)))
+NOMINAL = {"velocity": 504.0, "detuning": 0.0}
+PEAK = (498.0, 6e3)
+
+
+def _two_peak(velocity: float, detuning: float) -> float:
+    """A global 2 pi peak (0.83) and a lower curved ridge of slower atoms (0.63), PHYSICS.md section 2."""
+    peak = 0.75 * math.exp(-0.5 * (((velocity - PEAK[0]) / 12.0) ** 2 + ((detuning - PEAK[1]) / 5e3) ** 2))
+    ridge_detuning = -12e3 - 22e3 * ((470.0 - velocity) / 40.0) ** 2
+    ridge = 0.55 * math.exp(-0.5 * ((detuning - ridge_detuning) / 4e3) ** 2) * math.exp(-0.5 * ((velocity - 445.0) / 22.0) ** 2)
+    return 0.08 + max(peak, ridge)
+
+
+def _at_peak(point) -> bool:
+    return abs(point["velocity"] - PEAK[0]) < 6.0 and abs(point["detuning"] - PEAK[1]) < 2.5e3
+
+
+def _run(strategy, function, steps: int, noise: float = 0.0, seed: int = 0, stop_on_converged: bool = False):
+    rng = np.random.default_rng(seed)
+    told = []
+    for _ in range(steps):
+        point = strategy.ask()
+        value = function(point) + (rng.normal(0.0, noise) if noise else 0.0)
+        strategy.tell(point, value, noise)
+        told.append((point, value))
+        if stop_on_converged and strategy.converged():
+            break
+    return told
+
+
+def _branin_value(point) -> float:
+    from skopt.benchmarks import branin
+
+    return -float(branin([point["x"], point["y"]]))
+
+
+def _rig_value(point) -> float:
+    return _two_peak(point["velocity"], point["detuning"])
+
+
+# ---------------------------------------------------------------- upstream canary
+
+
+def test_skopt_optimizer_api_is_the_one_adapted():
+    """skopt's Optimizer still takes and exposes what the adapter uses (upstream-break canary)."""
+    import skopt
+    from skopt import Optimizer
+
+    assert skopt.__version__ == "0.10.2"  # the pinned version in pyproject.toml
+    parameters = inspect.signature(Optimizer.__init__).parameters
+    for name in ("dimensions", "base_estimator", "n_initial_points", "acq_func", "acq_optimizer",
+                 "acq_optimizer_kwargs", "random_state"):
+        assert name in parameters, name
+    assert "fit" in inspect.signature(Optimizer.tell).parameters
+    search = BayesianSearch(BRANIN_SPACE, seed=0, n_initial_points=4)
+    _run(search, _branin_value, 5)
+    adapter = search._optimizer
+    assert len(adapter.Xi) == len(adapter.yi) == 5 and len(adapter.models) >= 1
+    assert adapter.models[-1].predict(np.array(adapter.Xi), return_std=True)[1].shape == (5,)
+
+
+def test_bayesian_finds_branin_minimum():
+    """On Branin, 50 evaluations bring the recommendation within 0.02 of the known minimum 0.397887."""
+    search = BayesianSearch(BRANIN_SPACE, seed=0, n_initial_points=8)
+    _run(search, _branin_value, 50)
+    best = search.recommend()
+    assert -_branin_value(best.point) == pytest.approx(BRANIN_MINIMUM, abs=0.02)
+    distance = np.min(np.hypot(*(BRANIN_MINIMISERS - [best.point["x"], best.point["y"]]).T))
+    assert distance < 0.3
+
+
+# ---------------------------------------------------------------- Bayesian behaviour
+
+
+def test_bayesian_is_deterministic_for_a_seed():
+    """Two searches with one seed propose the same points; another seed differs."""
+    first = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 14)]
+    again = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 14)]
+    other = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=4), _rig_value, 14)]
+    assert first == again
+    assert first != other
+
+
+def test_bayesian_initial_design_starts_with_given_points():
+    """The first asks are the given initial points, then n_initial_points distinct space-filling points."""
+    given_points = [NOMINAL, {"velocity": 480.0, "detuning": 1e3}]
+    search = BayesianSearch(RIG_SPACE, seed=0, initial_points=given_points, n_initial_points=6)
+    asked = [p for p, _ in _run(search, _rig_value, 8)]
+    assert asked[:2] == given_points
+    units = np.array([RIG_SPACE.to_unit(p) for p in asked[2:]])
+    # Latin hypercube: one point per sixth of each axis (McKay, Beckman, Conover 1979; common practice).
+    for axis in range(2):
+        assert sorted(np.floor(units[:, axis] * 6).astype(int)) == list(range(6))
+
+
+def test_bayesian_resumes_from_retold_results():
+    """A search rebuilt with the same arguments and re-told the same results asks the same next point."""
+    original = BayesianSearch(RIG_SPACE, seed=7, initial_points=[NOMINAL])
+    told = _run(original, _rig_value, 13, noise=0.02, seed=1)
+    rebuilt = BayesianSearch(RIG_SPACE, seed=7, initial_points=[NOMINAL])
+    for point, value in told:
+        rebuilt.tell(point, value, 0.02)
+    assert rebuilt.n_told == original.n_told == 13
+    assert rebuilt.ask() == original.ask()
+    assert rebuilt.recommend() == original.recommend()
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_bayesian_recommends_global_peak_not_ridge(seed):
+    """On a noisy two-peak landscape, 40 tells from the nominal point recommend the global peak."""
+    search = BayesianSearch(RIG_SPACE, seed=seed, initial_points=[NOMINAL])
+    _run(search, _rig_value, 40, noise=0.02, seed=seed)
+    best = search.recommend()
+    assert _at_peak(best.point), best
+    # The surrogate's value is a posterior mean: near the true 0.83 within a few stderr.
+    assert best.value == pytest.approx(_rig_value(best.point), abs=max(0.05, 3 * best.stderr))
+
+
+@pytest.mark.parametrize("seed", [1, 4])
+def test_bayesian_does_not_converge_on_the_ridge(seed):
+    """Without the nominal point, converged() is never true while the recommendation is off the peak."""
+    # Seeds chosen where the search spends a long time on the ridge (seed 4 never leaves it in 60).
+    search = BayesianSearch(RIG_SPACE, seed=seed)
+    rng = np.random.default_rng(seed)
+    for _ in range(60):
+        point = search.ask()
+        search.tell(point, _rig_value(point) + rng.normal(0.0, 0.02), 0.02)
+        if search.converged():
+            assert _at_peak(search.recommend().point)
+
+
+def test_bayesian_converges_on_flat_function():
+    """On a flat noisy function the convergence test triggers within 40 tells."""
+    search = BayesianSearch(RIG_SPACE, seed=2)
+    told = _run(search, lambda p: 0.5, 40, noise=0.02, seed=2, stop_on_converged=True)
+    assert search.converged()
+    assert len(told) < 40
+    assert search.recommend().value == pytest.approx(0.5, abs=0.03)
+
+
+def test_bayesian_warm_start_informs_the_first_recommendation():
+    """Warm-start results near the peak make the first recommendation the peak, with n_told still 0."""
+    rng = np.random.default_rng(0)
+    warm = []
+    for _ in range(15):
+        point = {"velocity": float(rng.uniform(470, 530)), "detuning": float(rng.uniform(-10e3, 20e3))}
+        warm.append(Observation(point, _rig_value(point), 0.01))
+    search = BayesianSearch(RIG_SPACE, seed=0, n_initial_points=0, warm_start=warm)
+    assert search.n_told == 0
+    assert _at_peak(search.recommend().point)
+    # The first ask is the surrogate's own proposal, not a space-filling design point.
+    assert RIG_SPACE.contains(search.ask())
+
+
+def test_bayesian_without_any_start_is_refused():
+    """No initial points, no design and no warm start raise ValueError naming the cause."""
+    with pytest.raises(ValueError, match="initial_points"):
+        BayesianSearch(RIG_SPACE, seed=0, n_initial_points=0)
+
+
+def test_tell_refuses_bad_results():
+    """A point outside the box, a NaN value or a negative stderr raise ValueError naming it."""
+    search = BayesianSearch(RIG_SPACE, seed=0)
+    with pytest.raises(ValueError, match="point"):
+        search.tell({"velocity": 700.0, "detuning": 0.0}, 0.5, 0.01)
+    with pytest.raises(ValueError, match="value"):
+        search.tell(NOMINAL, math.nan, 0.01)
+    with pytest.raises(ValueError, match="stderr"):
+        search.tell(NOMINAL, 0.5, -0.01)
+    with pytest.raises(ValueError, match="missing"):
+        search.tell({"velocity": 500.0}, 0.5, 0.01)
+
+
+# ---------------------------------------------------------------- scans and space
+
+
+@st.composite
+def _boxes(draw):
+    dims = []
+    for k in range(draw(st.integers(1, 3))):
+        low = draw(st.floats(-1e5, 1e5, allow_nan=False))
+        width = draw(st.floats(1e-3, 1e5, allow_nan=False))
+        dims.append(Dimension(f"d{k}", low, low + width))
+    return SearchSpace(tuple(dims))
+
+
+def _exhaust(strategy, space):
+    rng = np.random.default_rng(0)
+    asked = []
+    while not strategy.exhausted():
+        point = strategy.ask()
+        asked.append(point)
+        strategy.tell(point, float(rng.normal()), 0.1)
+    return asked
+
+
+@settings(max_examples=25, deadline=None)
+@given(_boxes(), st.integers(2, 4))
+def test_grid_covers_box_inside_bounds(space, count):
+    """The grid proposes count**D points inside the box, including every corner."""
+    asked = _exhaust(GridScan(space, count), space)
+    assert len(asked) == count ** len(space.dimensions)
+    assert all(space.contains(p) for p in asked)
+    units = np.array([space.to_unit(p) for p in asked])
+    assert np.allclose(units.min(axis=0), 0.0) and np.allclose(units.max(axis=0), 1.0)
+
+
+@settings(max_examples=25, deadline=None)
+@given(_boxes(), st.integers(0, 1000))
+def test_random_covers_box_inside_bounds(space, seed):
+    """Random search stays inside the box and reaches both halves of every axis in 40 points."""
+    asked = _exhaust(RandomSearch(space, seed, 40), space)
+    assert all(space.contains(p) for p in asked)
+    units = np.array([space.to_unit(p) for p in asked])
+    assert np.all(units.min(axis=0) < 0.5) and np.all(units.max(axis=0) > 0.5)
+
+
+@settings(max_examples=25, deadline=None)
+@given(_boxes(), st.integers(3, 5), st.integers(1, 3))
+def test_coordinate_scan_stays_inside_and_spans_first_line(space, count, rounds):
+    """Coordinate scans stay in the box; the first line spans the full first axis at the centre."""
+    scan = CoordinateScan(space, count, rounds)
+    asked = _exhaust(scan, space)
+    assert len(asked) == count * len(space.dimensions) * rounds
+    assert all(space.contains(p) for p in asked)
+    first = np.array([space.to_unit(p) for p in asked[:count]])
+    assert np.allclose(first[:, 0], np.linspace(0, 1, count))
+    assert np.allclose(first[:, 1:], 0.5)
+
+
+def test_coordinate_scan_narrows_around_the_best():
+    """On the two-peak landscape from the nominal point, the hand method halves its window each round."""
+    scan = CoordinateScan(RIG_SPACE, 9, 3, start=NOMINAL)
+    asked = _exhaust_with(scan, _rig_value)
+    widths = [np.ptp([p["velocity"] for p in asked[k * 18 : k * 18 + 9]]) for k in range(3)]
+    assert widths == pytest.approx([180.0, 90.0, 45.0])
+    assert scan.recommend().value == max(_rig_value(p) for p in asked)
+
+
+def _exhaust_with(strategy, function):
+    asked = []
+    while not strategy.exhausted():
+        point = strategy.ask()
+        asked.append(point)
+        strategy.tell(point, function(point), 0.0)
+    return asked
+
+
+def test_exhausted_design_refuses_to_ask():
+    """Asking an exhausted grid raises RuntimeError that says to check exhausted()."""
+    grid = GridScan(RIG_SPACE, 2)
+    _exhaust_with(grid, _rig_value)
+    assert grid.converged()
+    with pytest.raises(RuntimeError, match="exhausted"):
+        grid.ask()
+
+
+def test_make_strategy_builds_each_kind_with_the_interface():
+    """Each kind builds an object satisfying the Strategy protocol; an unknown kind is refused."""
+    kinds = {
+        "bayesian": {"n_initial_points": 3},
+        "grid": {"points_per_dimension": 3},
+        "coordinate": {"points_per_dimension": 3, "rounds": 1},
+        "random": {"n_points": 5},
+    }
+    for kind, extra in kinds.items():
+        strategy = make_strategy(kind, RIG_SPACE, seed=0, **extra)
+        assert isinstance(strategy, Strategy) and strategy.name == kind
+        point = strategy.ask()
+        strategy.tell(point, 0.4, 0.01)
+        assert isinstance(strategy.recommend(), Recommendation) and strategy.n_told == 1
+    with pytest.raises(ValueError, match="kind"):
+        make_strategy("simplex", RIG_SPACE, seed=0)  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize(
+    "build, word",
+    [
+        (lambda: Dimension("velocity", 600.0, 420.0), "low < high"),
+        (lambda: Dimension("velocity", 0.0, math.inf), "finite"),
+        (lambda: SearchSpace((Dimension("v", 0, 1), Dimension("v", 0, 2))), "unique"),
+        (lambda: Convergence(stable_tells=0), "stable_tells"),
+    ],
+)
+def test_space_bad_input_names_the_problem(build, word):
+    """Invalid dimensions, spaces or settings raise ValueError naming the problem."""
+    with pytest.raises(ValueError, match=word):
+        build()
+
+
+def test_space_unit_round_trip_and_clip():
+    """to_unit/from_unit invert each other and clip moves a point onto the box."""
+    point = {"velocity": 510.0, "detuning": -2e3}
+    assert RIG_SPACE.from_unit(RIG_SPACE.to_unit(point)) == pytest.approx(point)
+    assert RIG_SPACE.clip({"velocity": 700.0, "detuning": -50e3}) == {"velocity": 600.0, "detuning": -40e3}
+    assert not RIG_SPACE.contains({"velocity": 700.0, "detuning": 0.0})
