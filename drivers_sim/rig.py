@@ -559,7 +559,6 @@ class SimulatedRig:
             or high > landscape.true_detunings[-1]
         ):
             landscape = self._landscape = self._coarse_landscape(low, high)
-            self._best = None
         best = self._best
         if best is not None and low <= best.true_detuning_hz <= high:
             inside = (landscape.true_detunings >= low) & (landscape.true_detunings <= high)
