@@ -208,6 +208,7 @@ class BusClient:
         socket.setsockopt(zmq.LINGER, 0)
         # Guard against a runaway peer; the decoder then rejects anything above the protocol limit.
         socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
+        socket.setsockopt(zmq.RCVTIMEO, self._timeout_ms)
         if self._curve is not None:
             socket.curve_publickey = self._curve.public
             socket.curve_secretkey = self._curve.secret
@@ -371,17 +372,18 @@ class BusClient:
     def _call(self, op: Op, args: Mapping[str, Any]) -> dict[str, Any]:
         msg_id = protocol.new_msg_id()
         data = protocol.encode_request(op, args, msg_id)
-        log = self._log.bind(op=op.value, msg_id=msg_id)
+        log = None  # bound on the first trouble only: the clean path stays cheap
         last_problem: ProtocolError | None = None
         for attempt in range(self._retries + 1):
             if attempt > 0:
+                log = log or self._log.bind(op=op.value, msg_id=msg_id)
                 pause = self._pause_s(attempt)
                 log.warning("bus_retry", attempt=attempt, of=self._retries, pause_s=pause,
                             reason="malformed reply" if last_problem else "no reply")
                 time.sleep(pause)
             if self._socket is None:
                 self._open()
-                log.info("bus_reconnect", attempt=attempt)
+                (log or self._log.bind(op=op.value, msg_id=msg_id)).info("bus_reconnect", attempt=attempt)
             frames = self._exchange(data, op)
             if frames is None:
                 last_problem = None
@@ -394,6 +396,7 @@ class BusClient:
                 return protocol.decode_reply(frames[0], msg_id)
             except ProtocolError as exc:
                 last_problem = exc
+                log = log or self._log.bind(op=op.value, msg_id=msg_id)
                 log.warning("bus_malformed_reply", attempt=attempt, error=str(exc))
         attempts = self._retries + 1
         if last_problem is not None:
@@ -409,11 +412,23 @@ class BusClient:
         socket = self._socket
         assert socket is not None
         with _zmq_errors(self._endpoint, op.value):
-            deadline = time.monotonic() + self._timeout_s
-            if not socket.poll(self._timeout_ms, zmq.POLLOUT):
+            try:
+                socket.send(data, zmq.NOBLOCK)
+                receive_ms = self._timeout_ms
+            except zmq.Again:
+                # No pipe to the peer yet: wait for room, within the same bound.
+                started = time.monotonic()
+                if not socket.poll(self._timeout_ms, zmq.POLLOUT):
+                    return None
+                socket.send(data, zmq.NOBLOCK)
+                receive_ms = max(1, self._timeout_ms - int((time.monotonic() - started) * 1000))
+            if receive_ms != self._timeout_ms:
+                socket.setsockopt(zmq.RCVTIMEO, receive_ms)
+            try:
+                # RCVTIMEO bounds this receive; cheaper than a poll followed by a receive.
+                return socket.recv_multipart()
+            except zmq.Again:
                 return None
-            socket.send(data, zmq.NOBLOCK)
-            remaining_ms = max(0, int((deadline - time.monotonic()) * 1000))
-            if not socket.poll(remaining_ms, zmq.POLLIN):
-                return None
-            return socket.recv_multipart(zmq.NOBLOCK)
+            finally:
+                if receive_ms != self._timeout_ms:
+                    socket.setsockopt(zmq.RCVTIMEO, self._timeout_ms)

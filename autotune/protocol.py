@@ -261,6 +261,13 @@ def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     return result
 
 
+# Built once: json.loads/dumps with options would build a new coder on every call.
+_DECODER = json.JSONDecoder(
+    parse_constant=_reject_constant, parse_float=_finite_float, object_pairs_hook=_unique_keys
+)
+_ENCODER = json.JSONEncoder(allow_nan=False, separators=(",", ":"), ensure_ascii=False)
+
+
 def _loads(data: bytes) -> dict[str, Any]:
     """Decode one message; raise ``_Invalid`` with a reason on any breach of the rules."""
     if not isinstance(data, (bytes, bytearray, memoryview)):
@@ -269,12 +276,7 @@ def _loads(data: bytes) -> dict[str, Any]:
         raise _Invalid(f"expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
     try:
         text = bytes(data).decode("utf-8")
-        value = json.loads(
-            text,
-            parse_constant=_reject_constant,
-            parse_float=_finite_float,
-            object_pairs_hook=_unique_keys,
-        )
+        value = _DECODER.decode(text)
     except _Invalid:
         raise
     except UnicodeDecodeError as exc:
@@ -288,7 +290,7 @@ def _loads(data: bytes) -> dict[str, Any]:
 
 
 def _dumps(message: Mapping[str, Any]) -> bytes:
-    return json.dumps(message, allow_nan=False, separators=(",", ":"), ensure_ascii=False).encode()
+    return _ENCODER.encode(message).encode()
 
 
 def _json_type(value: object) -> str:

@@ -317,6 +317,7 @@ class RigServer:
         # Refuse absurd frames at the transport; anything above the protocol's limit but below
         # this still gets a proper bad_request reply.
         socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
+        socket.setsockopt(zmq.RCVTIMEO, _POLL_MS)
         self._socket = socket
         if self._curve is not None:
             # The authenticator must run before the socket binds, or clients slip past it.
@@ -370,27 +371,38 @@ class RigServer:
         if self._monitor is not None:
             poller.register(self._monitor, zmq.POLLIN)
         limit = self._faults.exit_after_messages
+        socket = self._socket
         while not self._stopping:
-            timeout_ms = _POLL_MS
-            if self._pending:
-                timeout_ms = min(timeout_ms, max(0, math.ceil((self._pending[0][0] - time.monotonic()) * 1000)))
-            events = dict(poller.poll(timeout_ms))
-            if self._monitor is not None and self._monitor in events:
-                self._drain_monitor()
-            if self._socket in events:
-                for _ in range(_BATCH):
-                    if limit and self._received >= limit:
-                        break
+            if limit and self._received >= limit:
+                if not self._pending:
+                    self._log.warning("fault_exit", messages=self._received, reason="exit_after_messages reached")
+                    return
+                time.sleep(max(0.0, min(_POLL_MS / 1000, self._pending[0][0] - time.monotonic())))
+            elif self._pending or self._monitor is not None:
+                timeout_ms = _POLL_MS
+                if self._pending:
+                    timeout_ms = min(timeout_ms, max(0, math.ceil((self._pending[0][0] - time.monotonic()) * 1000)))
+                events = dict(poller.poll(timeout_ms))
+                if self._monitor is not None and self._monitor in events:
+                    self._drain_monitor()
+                for _ in range(_BATCH if socket in events else 0):
                     try:
-                        frames = self._socket.recv_multipart(zmq.NOBLOCK)
+                        frames = socket.recv_multipart(zmq.NOBLOCK)
                     except zmq.Again:
                         break
                     self._received += 1
                     self._on_message(frames)
+                    if limit and self._received >= limit:
+                        break
+            else:
+                # Nothing else to watch: a receive bounded by RCVTIMEO is the cheapest wait.
+                try:
+                    frames = socket.recv_multipart()
+                except zmq.Again:
+                    continue
+                self._received += 1
+                self._on_message(frames)
             self._send_due()
-            if limit and self._received >= limit and not self._pending:
-                self._log.warning("fault_exit", messages=self._received, reason="exit_after_messages reached")
-                return
         self._log.info("server_stopping", messages=self._received)
 
     def _on_message(self, frames: list[bytes]) -> None:
@@ -406,24 +418,30 @@ class RigServer:
         else:
             reply, replayed = self._handle(body[0])
         delay = 0.0 if replayed else self._faults.delay_reply_s
-        heapq.heappush(self._pending, (time.monotonic() + delay, next(self._sequence), envelope + [reply]))
+        if delay > 0.0:
+            heapq.heappush(self._pending, (time.monotonic() + delay, next(self._sequence), envelope + [reply]))
+        else:
+            self._send(envelope + [reply])
 
     def _send_due(self) -> None:
         now = time.monotonic()
         while self._pending and self._pending[0][0] <= now:
-            _, _, frames = heapq.heappop(self._pending)
-            if self._random.random() < self._faults.drop_reply_probability:
-                self._log.info("fault_drop_reply")
-                continue
-            if self._random.random() < self._faults.corrupt_reply_probability:
-                reply = frames[-1]
-                frames = frames[:-1] + [reply[: self._random.randrange(len(reply))] + b"\xff"]
-                self._log.info("fault_corrupt_reply")
-            try:
-                self._socket.send_multipart(frames, zmq.NOBLOCK)  # type: ignore[union-attr]
-            except zmq.ZMQError as exc:
-                # The peer is gone or full; the client will retry and get the cached reply.
-                self._log.info("reply_not_sent", error=str(exc))
+            self._send(heapq.heappop(self._pending)[2])
+
+    def _send(self, frames: list[bytes]) -> None:
+        """Send one reply, through the drop and corrupt faults."""
+        if self._random.random() < self._faults.drop_reply_probability:
+            self._log.info("fault_drop_reply")
+            return
+        if self._random.random() < self._faults.corrupt_reply_probability:
+            reply = frames[-1]
+            frames = frames[:-1] + [reply[: self._random.randrange(len(reply))] + b"\xff"]
+            self._log.info("fault_corrupt_reply")
+        try:
+            self._socket.send_multipart(frames, zmq.NOBLOCK)  # type: ignore[union-attr]
+        except zmq.ZMQError as exc:
+            # The peer is gone or full; the client will retry and get the cached reply.
+            self._log.info("reply_not_sent", error=str(exc))
 
     def _drain_monitor(self) -> None:
         assert self._monitor is not None
@@ -452,9 +470,9 @@ class RigServer:
             self._log.info("request_rejected", kind=exc.kind.value, detail=exc.detail, msg_id=exc.msg_id)
             reply = protocol.encode_error(exc.msg_id, exc.kind, exc.detail)
             if exc.msg_id:
-                self._remember(exc.msg_id, payload, reply)
+                self._remember(exc.msg_id, _digest(payload), reply)
             return reply, False
-        digest = hashlib.blake2b(bytes(payload), digest_size=16).digest()
+        digest = _digest(payload)
         cached = self._cache.get(request.msg_id)
         if cached is not None:
             if cached[0] != digest:
@@ -464,16 +482,15 @@ class RigServer:
             self._log.info("request_replayed", op=request.op.value, msg_id=request.msg_id)
             return cached[1], True
         reply = self._execute(request)
-        self._remember(request.msg_id, payload, reply)
+        self._remember(request.msg_id, digest, reply)
         return reply, False
 
-    def _remember(self, msg_id: str, payload: bytes, reply: bytes) -> None:
-        self._cache[msg_id] = (hashlib.blake2b(bytes(payload), digest_size=16).digest(), reply)
+    def _remember(self, msg_id: str, digest: bytes, reply: bytes) -> None:
+        self._cache[msg_id] = (digest, reply)
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
     def _execute(self, request: protocol.Request) -> bytes:
-        log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
         try:
             result = self._dispatch[request.op](request.args)
         except SetpointError as exc:
@@ -483,16 +500,22 @@ class RigServer:
         except ValueError as exc:
             kind, detail = ErrorKind.BAD_REQUEST, str(exc)
         except Exception as exc:  # noqa: BLE001 - the server must answer whatever the rig does
+            log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
             log.exception("rig_failed")
             kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"
         else:
             try:
                 return protocol.encode_result(request.msg_id, result)
             except ValueError as exc:
+                log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
                 log.error("result_not_encodable", error=str(exc))
                 return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc))
-        log.info("request_refused", kind=kind.value, detail=detail)
+        self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id, kind=kind.value, detail=detail)
         return protocol.encode_error(request.msg_id, kind, detail)
+
+
+def _digest(payload: bytes) -> bytes:
+    return hashlib.blake2b(payload, digest_size=16).digest()
 
 
 def _wildcard_port(bind: str) -> str:
