@@ -457,6 +457,8 @@ def _is_number(value: object) -> bool:
 
 def _check_keys(where: str, obj: Mapping[str, Any], *, required: tuple[str, ...],
                 optional: tuple[str, ...], fail: Any) -> None:
+    if len(obj) == len(required) and all(key in obj for key in required):
+        return  # the common case, exactly the required keys
     for key in required:
         if key not in obj:
             raise fail(ErrorKind.BAD_REQUEST, f"{where}: missing key {key!r}")
@@ -496,6 +498,9 @@ def _arg_setpoints(where: str, value: object) -> dict[str, float]:
     return clean
 
 
+_NO_ARGUMENTS = frozenset({Op.DESCRIBE, Op.STATUS, Op.SAFE})
+
+
 def validate_args(op: Op, args: object) -> dict[str, Any]:
     """Check the arguments of one op and return them normalised.
 
@@ -521,7 +526,7 @@ def validate_args(op: Op, args: object) -> dict[str, Any]:
     where = "args"
     if not isinstance(args, Mapping):
         raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object, got {_show(args)}")
-    if op in (Op.DESCRIBE, Op.STATUS, Op.SAFE):
+    if op in _NO_ARGUMENTS:
         _check_keys(where, args, required=(), optional=(), fail=_bad)
         return {}
     if op is Op.APPLY:
