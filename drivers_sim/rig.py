@@ -28,7 +28,7 @@ detuning (one vectorised call, a few ms) and an acquisition interpolates them wi
 Lagrange polynomial through the stencil at the present true detuning, so drift is followed
 honestly without recomputing. The stencil is rebuilt around the present detuning when drift
 moves it more than one spacing from the centre. With the defaults (5 points, 200 Hz) the
-interpolation error on any probability is below 1e-8 (measured by benchmarks/bench_sim.py,
+interpolation error on any probability is about 1e-10 (measured by benchmarks/bench_sim.py,
 which prints it), far below the counting noise of any acquisition.
 
 The truth's best set-points come from a coarse grid of a reduced model (3 velocity nodes,
