@@ -62,3 +62,12 @@ def test_server_with_missing_secret_key_refuses_to_start(start_server, curve_fil
     assert server.process.wait(timeout=30) == 2
     assert not server.ready_path.exists()
     assert server.wait_for_event("server_refused_to_start")
+
+
+def test_curve_client_never_falls_back_to_plain_text(start_server, make_client, curve_files):
+    """A client with keys gets no reply from a plain-text server instead of talking in the clear."""
+    server = start_server()
+    keys = CurveClientKeys.load(curve_files.client_secret, curve_files.server_public)
+    client = make_client(server.endpoint, timeout_s=0.3, retries=1, curve=keys)
+    with pytest.raises(RigTimeout):
+        client.status()

@@ -79,7 +79,7 @@ def test_reply_decoder_raises_only_protocol_errors(data: bytes):
     assert isinstance(result, dict)
 
 
-@FUZZ
+@settings(FUZZ, max_examples=150)
 @given(st.sampled_from([protocol.parse_description, protocol.parse_applied, protocol.parse_acquisition,
                         protocol.parse_status, protocol.parse_safe, protocol.parse_truth,
                         protocol.parse_advance, protocol.parse_thermal_step]),
