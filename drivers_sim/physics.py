@@ -686,6 +686,6 @@ def stark_field_for_detuning(detuning_hz, *, coefficient_hz_m2_per_v2, bias_fiel
     if np.any(square < 0.0):
         raise ValueError(
             "detuning_hz: expected a detuning reachable from the bias field "
-            f"(E^2 >= 0), got {detuning_hz!r}"
+            f"(E^2 >= 0), got {detuning_hz.tolist()!r}"
         )
     return np.sqrt(square)

@@ -51,7 +51,7 @@ import scipy.optimize
 import structlog
 
 from drivers_sim import physics
-from drivers_sim.config import SETPOINT_UNITS, SimRigConfig
+from drivers_sim.config import SimRigConfig
 
 __all__ = ["SimulatedRig", "SetpointError", "RigInterlock"]
 
@@ -296,11 +296,11 @@ class SimulatedRig:
                     )
             checked[name] = value
         if not check_limits:
-            if checked.get("velocity", self._setpoints["velocity"]) + (
-                self._model.velocity_bias_m_per_s - 6.0 * self._model.velocity_spread_m_per_s
-            ) <= 0.0:
+            velocity = checked.get("velocity", self._setpoints["velocity"])
+            lowest = velocity + self._model.velocity_bias_m_per_s - 6.0 * self._model.velocity_spread_m_per_s
+            if lowest <= 0.0:
                 raise SetpointError(
-                    f"velocity: expected a value whose true velocities stay > 0 m/s, got {checked['velocity']:g}"
+                    f"velocity: expected a value whose true velocities stay > 0 m/s, got {velocity:g}"
                 )
             if "detuning" in checked:
                 try:
@@ -451,8 +451,11 @@ class SimulatedRig:
 
     def advance(self, seconds: float) -> dict[str, Any]:
         """Let rig time pass (drift continues), s. Returns ``{"clock": float}``."""
-        if not _real_number(seconds) or not math.isfinite(float(seconds)) or not 0.0 <= seconds <= _MAX_ADVANCE_S:
-            raise ValueError(f"seconds: expected a finite number in [0, {_MAX_ADVANCE_S:g}] s, got {seconds!r}")
+        if not (_real_number(seconds) and math.isfinite(float(seconds))
+                and 0.0 <= seconds <= _MAX_ADVANCE_S):
+            raise ValueError(
+                f"seconds: expected a finite number in [0, {_MAX_ADVANCE_S:g}] s, got {seconds!r}"
+            )
         self._advance(float(seconds))
         return {"clock": self._clock}
 
