@@ -36,7 +36,8 @@ The truth's best set-points come from a coarse grid of a reduced model (3 veloci
 limits (plus a margin), then Nelder-Mead refinement of the three best local maxima with the
 full model. The landscape in TRUE detuning does not move with the cavity offset, so the result
 is cached and mapped to set-point detuning at each call; it is searched again only when the
-mapped best leaves the limits or the coarse grid no longer covers the reachable window.
+mapped best leaves the limits or a coarse cell better than any seen at the last search enters
+the reachable window (the coarse grid is recomputed when it no longer covers that window).
 """
 
 from __future__ import annotations
@@ -91,6 +92,7 @@ class _Best:
     velocity: float
     true_detuning_hz: float
     inversion: float
+    coarse_top: float  # best coarse-grid value inside the window searched
 
 
 @dataclasses.dataclass(frozen=True)
@@ -563,13 +565,12 @@ class SimulatedRig:
         ):
             landscape = self._landscape = self._coarse_landscape(low, high)
         best = self._best
-        if best is not None and low <= best.true_detuning_hz <= high:
-            inside = (landscape.true_detunings >= low) & (landscape.true_detunings <= high)
-            coarse_top = float(landscape.inversion[:, inside].max())
-            # A better basin may have entered the window: the coarse model is within ~1e-3.
-            if coarse_top <= best.inversion + 5e-3:
-                return best
-        best = self._best = self._search_best(landscape, low, high)
+        inside = (landscape.true_detunings >= low) & (landscape.true_detunings <= high)
+        coarse_top = float(landscape.inversion[:, inside].max())
+        # Search again if the best left the window or a better coarse cell entered it.
+        if best is not None and low <= best.true_detuning_hz <= high and coarse_top <= best.coarse_top:
+            return best
+        best = self._best = self._search_best(landscape, low, high, coarse_top)
         return best
 
     def _coarse_landscape(self, low: float, high: float) -> _Landscape:
@@ -585,7 +586,7 @@ class SimulatedRig:
         self._log.debug("truth_landscape_computed", points=int(inversion.size))
         return _Landscape(velocities, detunings, inversion)
 
-    def _search_best(self, landscape: _Landscape, low: float, high: float) -> _Best:
+    def _search_best(self, landscape: _Landscape, low: float, high: float, coarse_top: float) -> _Best:
         inside = (landscape.true_detunings >= low) & (landscape.true_detunings <= high)
         grid = np.where(inside[None, :], landscape.inversion, -np.inf)
         # Local maxima of the masked grid (3x3 neighbourhood), best first.
@@ -621,7 +622,8 @@ class SimulatedRig:
                 bounds=bounds,
                 options={"initial_simplex": simplex, "xatol": 1e-4, "fatol": 1e-9, "maxfev": 400},
             )
-            candidate = _Best(float(result.x[0] * v_scale), float(result.x[1] * d_scale), -float(result.fun))
+            candidate = _Best(float(result.x[0] * v_scale), float(result.x[1] * d_scale), -float(result.fun),
+                              coarse_top)
             if best is None or candidate.inversion > best.inversion:
                 best = candidate
         assert best is not None  # the window always holds at least one grid column
