@@ -1,0 +1,431 @@
+"""The ``autotune`` command: the only place that configures logging and exits.
+
+Commands
+--------
+rig        serve the bundled simulated rig over the bus
+calibrate  full calibration of a rig
+retune     check the last good calibration; search a narrowed box if it no longer holds
+dry-run    start the simulated rig, calibrate, thermal step, retune, compare with the truth
+report     summary and figure of a run folder
+
+Exit codes
+----------
+0    success (calibration accepted, retune accepted or still good)
+2    bad input: configuration, command line, missing or damaged files, a refused set-point
+3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set
+4    the verified inversion is below the configured acceptance threshold
+130  stopped by SIGINT/SIGTERM (the rig was sent to its safe set-points, the journal closed)
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import logging
+import signal
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import structlog
+
+from autotune import __version__
+from autotune.config import RunConfig, load_config
+from autotune.errors import (
+    AutotuneError,
+    ConfigError,
+    Interrupted,
+    JournalError,
+    LimitError,
+    RigError,
+)
+from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
+
+__all__ = ["main", "EXIT_OK", "EXIT_BAD_INPUT", "EXIT_RIG", "EXIT_BELOW_ACCEPTANCE",
+           "EXIT_INTERRUPTED"]
+
+EXIT_OK = 0
+EXIT_BAD_INPUT = 2
+EXIT_RIG = 3
+EXIT_BELOW_ACCEPTANCE = 4
+EXIT_INTERRUPTED = 130
+
+CAUTION = (
+    "CAUTION: autotune moves set-points of a real apparatus (Stark-tuning electrodes, velocity-"
+    "selection lasers, detector high voltage through the control system). It stays within the "
+    "configured limits and step sizes and sends the rig to its safe set-points on abort, but it "
+    "is no substitute for the lab's interlocks and local safety rules, which always take "
+    "precedence. Do not run it on a rig you are not authorised to operate."
+)
+
+_REPO_CONFIGS = Path(__file__).resolve().parent.parent / "configs"
+_log = structlog.get_logger("autotune.cli")
+
+
+# -- logging -----------------------------------------------------------------------------
+
+def _configure_logging(level: str) -> None:
+    """Readable lines on stderr; a JSON file handler is added per run folder."""
+    shared: list[Any] = [
+        structlog.contextvars.merge_contextvars,
+        structlog.stdlib.add_log_level,
+        structlog.stdlib.add_logger_name,
+        structlog.processors.TimeStamper(fmt="iso", utc=True),
+    ]
+    structlog.configure(
+        processors=[*shared, structlog.stdlib.ProcessorFormatter.wrap_for_formatter],
+        logger_factory=structlog.stdlib.LoggerFactory(),
+        wrapper_class=structlog.stdlib.BoundLogger,
+        cache_logger_on_first_use=False,
+    )
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(structlog.stdlib.ProcessorFormatter(
+        processors=[structlog.stdlib.ProcessorFormatter.remove_processors_meta,
+                    structlog.dev.ConsoleRenderer(colors=False)],
+        foreign_pre_chain=shared,
+    ))
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(level.upper())
+    _configure_logging.shared = shared  # type: ignore[attr-defined]
+
+
+def _log_to_run_folder(run_dir: Path) -> logging.Handler:
+    run_dir.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(run_dir / LOG_NAME, encoding="utf-8")
+    handler.setFormatter(structlog.stdlib.ProcessorFormatter(
+        processors=[structlog.stdlib.ProcessorFormatter.remove_processors_meta,
+                    structlog.processors.dict_tracebacks,
+                    structlog.processors.JSONRenderer()],
+        foreign_pre_chain=getattr(_configure_logging, "shared", []),
+    ))
+    logging.getLogger().addHandler(handler)
+    return handler
+
+
+# -- signals -----------------------------------------------------------------------------
+
+def _install_stop_handlers() -> threading.Event:
+    stop = threading.Event()
+
+    def handler(signum: int, _frame: object) -> None:
+        _log.warning("stop_requested", signal=signal.Signals(signum).name)
+        stop.set()
+
+    signal.signal(signal.SIGINT, handler)
+    signal.signal(signal.SIGTERM, handler)
+    return stop
+
+
+# -- helpers -----------------------------------------------------------------------------
+
+def _default_run_dir(command: str) -> Path:
+    stamp = datetime.now(UTC).strftime("%Y%m%dT%H%M%SZ")
+    return Path("runs") / f"{command}-{stamp}"
+
+
+def _connect(config: RunConfig) -> Any:
+    from autotune.bus import BusClient, CurveClientKeys
+    from autotune.protocol import SetpointLimit
+
+    curve = None
+    if config.bus.curve is not None:
+        curve = CurveClientKeys.load(config.bus.curve.client_secret_key_file,
+                                     config.bus.curve.server_public_key_file)
+    limits = {sp.name: SetpointLimit(unit=sp.unit, min=sp.limit_min, max=sp.limit_max,
+                                     max_step=sp.max_step) for sp in config.setpoints}
+    return BusClient(config.bus.endpoint, timeout_s=config.bus.timeout_s,
+                     retries=config.bus.retries, backoff_s=config.bus.backoff_s, curve=curve,
+                     limits=limits)
+
+
+def _format_setpoints(setpoints: dict[str, float]) -> str:
+    parts = []
+    for name, value in setpoints.items():
+        if name == "velocity":
+            parts.append(f"velocity {value:.2f} m/s")
+        elif name == "detuning":
+            parts.append(f"detuning {value / 1e3:+.2f} kHz")
+        else:
+            parts.append(f"{name} {value:g}")
+    return ", ".join(parts)
+
+
+def _summary(result: dict[str, Any]) -> str:
+    low, high = result["inversion_interval"]
+    conf = round(100 * result["confidence"])
+    return (f"{result['command']}: {result['status']} at {_format_setpoints(result['setpoints'])}: "
+            f"inversion {result['inversion']:.3f} [{low:.3f}, {high:.3f}] ({conf}% interval), "
+            f"phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi, absorption "
+            f"{result['absorption']:.3f}; {result['points']} points, {result['shots']} shots, "
+            f"rig time {result['rig_time_s'] / 60:.1f} min")
+
+
+def _exit_for_result(result: dict[str, Any]) -> int:
+    return EXIT_OK if result["accepted"] else EXIT_BELOW_ACCEPTANCE
+
+
+def _guarded(action: Callable[[], int]) -> int:
+    """Run a command body, mapping the error tree to exit codes with one clear message."""
+    try:
+        return action()
+    except Interrupted:
+        print("autotune: stopped by signal; the rig was sent to its safe set-points and the "
+              "journal closed (continue with --resume)", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except (ConfigError, LimitError, JournalError) as exc:
+        print(f"autotune: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except RigError as exc:
+        print(f"autotune: rig error: {exc}", file=sys.stderr)
+        return EXIT_RIG
+    except AutotuneError as exc:
+        print(f"autotune: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+# -- commands ----------------------------------------------------------------------------
+
+def _cmd_rig(ns: argparse.Namespace) -> int:
+    # The simulated rig is imported only by the commands that serve or start it.
+    from drivers_sim.server import add_rig_arguments, run_rig
+
+    parser = argparse.ArgumentParser(prog="autotune rig",
+                                     description="Serve the bundled simulated rig over the bus.")
+    add_rig_arguments(parser)
+    return run_rig(parser.parse_args(ns.rig_args))
+
+
+def _run_folder(ns: argparse.Namespace, command: str) -> tuple[Path, bool]:
+    if ns.resume is not None:
+        return Path(ns.resume), True
+    return (Path(ns.out) if ns.out is not None else _default_run_dir(command)), False
+
+
+def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
+    from autotune import runner
+
+    def body() -> int:
+        config = load_config(ns.config)
+        run_dir, resume = _run_folder(ns, command)
+        if not resume and (run_dir / "journal.jsonl").exists():
+            raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
+        print(CAUTION, file=sys.stderr)
+        stop = _install_stop_handlers()
+        handler = _log_to_run_folder(run_dir)
+        try:
+            with _connect(config) as rig:
+                stage = runner.calibrate if command == "calibrate" else runner.retune
+                result = stage(rig, config, run_dir, resume=resume, stop=stop)
+        finally:
+            logging.getLogger().removeHandler(handler)
+            handler.close()
+        print(_summary(result))
+        print(f"run folder: {run_dir}")
+        return _exit_for_result(result)
+
+    return _guarded(body)
+
+
+def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, timeout_s: float) -> str:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if ready.exists():
+            endpoint = ready.read_text(encoding="utf-8").strip()
+            if endpoint:
+                return endpoint
+        if process.poll() is not None:
+            err = process.stderr.read().decode(errors="replace") if process.stderr else ""
+            raise RigError(f"the simulated rig exited with code {process.returncode} before "
+                           f"listening: {err[-2000:]}")
+        time.sleep(0.05)
+    raise RigError(f"the simulated rig did not start listening within {timeout_s:g} s")
+
+
+def _truth_block(rig: Any, chosen: dict[str, float]) -> dict[str, Any]:
+    truth = rig.truth(chosen)
+    return {
+        "inversion_at_chosen": float(truth["inversion"]),
+        "best_inversion": float(truth["best"]["inversion"]),
+        "best_setpoints": {k: float(v) for k, v in truth["best"]["setpoints"].items()},
+    }
+
+
+def _cmd_dry_run(ns: argparse.Namespace) -> int:
+    from autotune import runner
+
+    def body() -> int:
+        config_path = Path(ns.config) if ns.config else _REPO_CONFIGS / "dry-run.toml"
+        rig_config = Path(ns.rig_config) if ns.rig_config else _REPO_CONFIGS / "sim-rig.toml"
+        for path, flag in ((config_path, "--config"), (rig_config, "--rig-config")):
+            if not path.is_file():
+                raise ConfigError(str(path), "<file>", f"an existing file (pass {flag})",
+                                  "no such file")
+        config = load_config(config_path)
+        if ns.seed is not None:
+            config = dataclasses.replace(
+                config, search=dataclasses.replace(config.search, seed=ns.seed))
+        out = Path(ns.out) if ns.out else _default_run_dir("dry-run")
+        if out.exists() and any(out.iterdir()):
+            raise JournalError(f"{out} is not empty; choose another --out")
+        out.mkdir(parents=True, exist_ok=True)
+        stop = _install_stop_handlers()
+        seed = config.search.seed
+        print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
+              "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
+        with tempfile.TemporaryDirectory() as tmp:
+            ready = Path(tmp) / "endpoint"
+            command = [sys.executable, "-m", "drivers_sim.server", "--config", str(rig_config),
+                       "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
+                       str(ready), "--log-level", "warning"]
+            process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
+                                       stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+            try:
+                endpoint = _wait_for_ready(process, ready, timeout_s=60.0)
+                config = dataclasses.replace(
+                    config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
+                return _dry_run_stages(ns, config, out, endpoint, stop, runner)
+            finally:
+                process.terminate()
+                try:
+                    process.wait(timeout=10)
+                except subprocess.TimeoutExpired:
+                    process.kill()
+                    process.wait(timeout=10)
+
+    return _guarded(body)
+
+
+def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoint: str,
+                    stop: threading.Event, runner: Any) -> int:
+    store = out / "last-good.json"
+    rows = []
+    exit_code = EXIT_OK
+    with _connect(config) as rig:
+        description = rig.describe()
+        print(f"simulated rig {description.rig!r} listening on {endpoint} "
+              f"(seed {config.search.seed})")
+        stages: list[tuple[str, Callable[..., dict[str, Any]]]] = [("calibrate", runner.calibrate)]
+        if not ns.no_retune:
+            stages.append(("retune", runner.retune))
+        for name, stage in stages:
+            if name == "retune":
+                step = rig.thermal_step(ns.thermal_step_hz)
+                print(f"thermal step of {ns.thermal_step_hz / 1e3:+.1f} kHz applied to the "
+                      f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
+            run_dir = out / name
+            handler = _log_to_run_folder(run_dir)
+            wall = time.monotonic()
+            try:
+                result = stage(rig, config, run_dir, stop=stop, store=store,
+                               extra={"dry_run": {"endpoint": endpoint}})
+            finally:
+                logging.getLogger().removeHandler(handler)
+                handler.close()
+            result["truth"] = _truth_block(rig, result["setpoints"])
+            write_json_atomic(run_dir / RESULT_NAME, result)
+            rows.append((name, result, time.monotonic() - wall))
+            print(_summary(result))
+            if not result["accepted"]:
+                exit_code = EXIT_BELOW_ACCEPTANCE
+    print()
+    print(_truth_table(rows))
+    print(f"\nrun folders under {out}")
+    return exit_code
+
+
+def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
+    header = (f"{'stage':<10} {'status':<17} {'measured':>9} {'true@chosen':>11} "
+              f"{'true best':>9} {'ratio':>6} {'points':>6} {'shots':>9} {'rig time':>9} "
+              f"{'wall':>7}")
+    lines = [header, "-" * len(header)]
+    for name, result, wall in rows:
+        truth = result["truth"]
+        ratio = truth["inversion_at_chosen"] / truth["best_inversion"]
+        lines.append(
+            f"{name:<10} {result['status']:<17} {result['inversion']:>9.3f} "
+            f"{truth['inversion_at_chosen']:>11.3f} {truth['best_inversion']:>9.3f} "
+            f"{ratio:>6.3f} {result['points']:>6d} {result['shots']:>9d} "
+            f"{result['rig_time_s'] / 60:>7.1f} m {wall:>6.1f}s")
+    for name, result, _ in rows:
+        best = result["truth"]["best_setpoints"]
+        lines.append(f"{name}: chosen {_format_setpoints(result['setpoints'])}; "
+                     f"true best {_format_setpoints(best)}")
+    return "\n".join(lines)
+
+
+def _cmd_report(ns: argparse.Namespace) -> int:
+    from autotune import report
+
+    def body() -> int:
+        text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot)
+        print(text)
+        return EXIT_OK
+
+    return _guarded(body)
+
+
+# -- parser ------------------------------------------------------------------------------
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="autotune",
+        description="Closed-loop calibration of a Ramsey-cavity single-photon detector. "
+                    + CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"autotune {__version__}")
+    parser.add_argument("--log-level", default="info",
+                        choices=["debug", "info", "warning", "error"], help="terminal log level")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    rig = sub.add_parser("rig", add_help=False,
+                         help="serve the bundled simulated rig over the bus "
+                              "(autotune rig --help for its options)")
+    rig.add_argument("rig_args", nargs=argparse.REMAINDER)
+    rig.set_defaults(handler=_cmd_rig)
+
+    for name, text in (("calibrate", "full calibration of a rig (acts on hardware)"),
+                       ("retune", "check the last good setting and retune if needed "
+                                  "(acts on hardware)")):
+        p = sub.add_parser(name, help=text, description=text + ". " + CAUTION)
+        p.add_argument("--config", required=True, help="calibrate/retune TOML file")
+        group = p.add_mutually_exclusive_group()
+        group.add_argument("--out", help="new run folder (default runs/<command>-<UTC time>)")
+        group.add_argument("--resume", metavar="RUN_DIR", help="continue a killed run")
+        p.set_defaults(handler=lambda ns, n=name: _cmd_stage(ns, n))
+
+    dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
+                                         "compare with its truth")
+    dry.add_argument("--config", help="calibrate/retune TOML (default configs/dry-run.toml)")
+    dry.add_argument("--rig-config", help="simulated rig TOML (default configs/sim-rig.toml)")
+    dry.add_argument("--seed", type=int, help="seed of the rig and the search")
+    dry.add_argument("--out", help="folder for the stages' run folders")
+    dry.add_argument("--thermal-step-hz", type=float, default=15e3,
+                     help="cavity frequency step before the retune (Hz, default 15000)")
+    dry.add_argument("--no-retune", action="store_true", help="stop after the calibration")
+    dry.set_defaults(handler=_cmd_dry_run)
+
+    rep = sub.add_parser("report", help="summary and figure of a run folder")
+    rep.add_argument("run_dir", help="a run folder")
+    rep.add_argument("--no-plot", action="store_true", help="text summary only")
+    rep.set_defaults(handler=_cmd_report)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``autotune`` console script; returns the exit code."""
+    parser = _parser()
+    ns = parser.parse_args(argv)
+    if getattr(ns, "command", None) != "rig":
+        _configure_logging(ns.log_level)
+    return int(ns.handler(ns))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

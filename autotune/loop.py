@@ -1,0 +1,585 @@
+"""The closed loop: propose -> guard -> apply -> acquire -> estimate -> tell -> record.
+
+A run is a sequence of *measurements*. Each measurement is one point of set-points, measured as
+a fringe of both field states: at each of K Ramsey phases ``2 pi j / K`` the loop acquires the
+empty field, then the one-photon field (interleaved, so that a slow drift biases both alike).
+Every acquisition is written to the journal as soon as its counts arrive, so a run killed at any
+moment loses no shots: :func:`run_stage` given the journal's records re-tells the finished
+points to the strategy, completes the unfinished measurement from its missing acquisitions
+only, and goes on.
+
+Measurement labels (``label`` in the journal): ``"point"`` for a search point (numbered by
+``point``), ``"check"`` for the retune's first measurement at the last good set-points,
+``"verify"`` for the final verification at the recommended set-points.
+
+Safety: no set-point reaches the rig unless it lies within the effective limits (the tighter of
+the configured limits and those the rig described); a long move is split into steps no larger
+than the largest allowed step; on an unrecoverable fault or a stop signal the rig is sent to its
+safe set-points before the error propagates.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import structlog
+
+from autotune.config import RunConfig
+from autotune.errors import (
+    ConfigError,
+    Interrupted,
+    LimitError,
+    RigError,
+    RigRefused,
+    RigTimeout,
+)
+from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
+from autotune.journal import Journal
+from autotune.rig import FIELDS, Rig
+from autotune.search import Dimension, SearchSpace, Strategy, make_strategy
+
+__all__ = [
+    "Limit",
+    "Budget",
+    "StageOutcome",
+    "effective_limits",
+    "plan_moves",
+    "ramsey_phases",
+    "child_seed",
+    "search_space",
+    "build_strategy",
+    "Session",
+    "run_stage",
+    "retune_box",
+]
+
+_log = structlog.get_logger(__name__)
+
+#: Relative slack when comparing a step with its largest allowed size (float rounding only).
+_STEP_SLACK = 1e-9
+
+
+@dataclass(frozen=True)
+class Limit:
+    """Effective limits of one set-point, in its unit."""
+
+    min: float
+    max: float
+    max_step: float
+
+    def check(self, name: str, value: float) -> None:
+        """Raise :class:`LimitError` unless ``value`` is finite and within [min, max]."""
+        if not math.isfinite(value):
+            raise LimitError(f"set-point {name}: value {value!r} is not finite")
+        if value < self.min or value > self.max:
+            raise LimitError(
+                f"set-point {name}: {value:g} is outside its limits [{self.min:g}, {self.max:g}]"
+            )
+
+
+@dataclass(frozen=True)
+class Budget:
+    """When a search must stop, whatever the strategy says."""
+
+    max_points: int
+    max_shots: int
+    max_rig_time_s: float
+    min_points: int
+
+
+@dataclass(frozen=True)
+class StageOutcome:
+    """What one stage (a calibration or a retune) ended with."""
+
+    status: str
+    setpoints: dict[str, float]
+    estimate: InversionEstimate
+    stop_reason: str
+    points: int
+    shots: int
+    rig_time_s: float
+    accepted: bool
+    check: InversionEstimate | None = None
+
+
+def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
+    """The tighter of the configured and the described limits of every searched set-point.
+
+    Raises
+    ------
+    ConfigError
+        A configured set-point is unknown to the rig, its unit differs from the rig's, or its
+        search box reaches outside the rig's limits.
+    """
+    limits: dict[str, Limit] = {}
+    for sp in config.setpoints:
+        described = description.setpoints.get(sp.name)
+        key = f"setpoints.{sp.name}"
+        if described is None:
+            raise ConfigError(config.source, key, "a set-point the rig describes ("
+                              + ", ".join(sorted(description.setpoints)) + ")", sp.name)
+        if described.unit != sp.unit:
+            raise ConfigError(config.source, f"{key}.unit", f"the rig's unit {described.unit!r}",
+                              sp.unit)
+        limit = Limit(
+            min=max(sp.limit_min, described.min),
+            max=min(sp.limit_max, described.max),
+            max_step=min(sp.max_step, described.max_step),
+        )
+        if sp.search_min < limit.min or sp.search_max > limit.max:
+            raise ConfigError(config.source, f"{key}.search_min/search_max",
+                              f"a box within the effective limits [{limit.min:g}, {limit.max:g}]",
+                              [sp.search_min, sp.search_max])
+        limits[sp.name] = limit
+    return limits
+
+
+def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
+               limits: Mapping[str, Limit]) -> list[dict[str, float]]:
+    """Split the move from ``current`` to ``target`` into steps within the largest step.
+
+    All set-points move together along a straight line, in the fewest equal steps that keep
+    every set-point's change within its ``max_step``; the last step lands exactly on
+    ``target``. Only set-points named in ``target`` move.
+
+    Raises
+    ------
+    LimitError
+        ``target`` names an unknown set-point or a value outside its limits. Nothing is planned.
+    """
+    for name, value in target.items():
+        if name not in limits:
+            raise LimitError(f"set-point {name}: not among the limited set-points "
+                             + ", ".join(sorted(limits)))
+        limits[name].check(name, float(value))
+    n_steps = 1
+    for name, value in target.items():
+        start = current.get(name)
+        if start is None:
+            raise LimitError(f"set-point {name}: its present value is unknown, cannot bound the step")
+        distance = abs(float(value) - float(start))
+        n_steps = max(n_steps, math.ceil(distance / limits[name].max_step * (1.0 - _STEP_SLACK)))
+    steps: list[dict[str, float]] = []
+    for k in range(1, n_steps + 1):
+        if k == n_steps:
+            steps.append({name: float(value) for name, value in target.items()})
+        else:
+            steps.append({
+                name: float(current[name]) + (float(value) - float(current[name])) * k / n_steps
+                for name, value in target.items()
+            })
+    return steps
+
+
+def ramsey_phases(count: int) -> tuple[float, ...]:
+    """``count`` Ramsey phases equally spaced on [0, 2 pi) (rad)."""
+    return tuple(2.0 * math.pi * j / count for j in range(count))
+
+
+def child_seed(seed: int, *path: int) -> int:
+    """A reproducible 32-bit child seed of ``seed`` for the sub-task named by ``path``."""
+    return int(np.random.SeedSequence([seed, *path]).generate_state(1)[0])
+
+
+def search_space(box: Mapping[str, tuple[float, float]]) -> SearchSpace:
+    """The search space over ``{name: (low, high)}``, in the given order."""
+    return SearchSpace(tuple(Dimension(name, lo, hi) for name, (lo, hi) in box.items()))
+
+
+def retune_box(config: RunConfig, centre: Mapping[str, float],
+               limits: Mapping[str, Limit]) -> dict[str, tuple[float, float]]:
+    """The narrowed box of a retune: the last good set-points +- half widths, within the limits."""
+    box = {}
+    for sp in config.setpoints:
+        half = config.retune.half_widths[sp.name]
+        low = max(centre[sp.name] - half, limits[sp.name].min)
+        high = min(centre[sp.name] + half, limits[sp.name].max)
+        box[sp.name] = (low, high)
+    return box
+
+
+def build_strategy(kind: str, space: SearchSpace, config: RunConfig, *, seed: int,
+                   n_initial_points: int, max_points: int,
+                   initial_points: Sequence[Mapping[str, float]] = (),
+                   warm_start: Sequence[tuple[Mapping[str, float], float, float]] = ()) -> Strategy:
+    """The configured strategy over ``space``, with the settings of ``config.search``."""
+    search = config.search
+    if kind == "bayesian":
+        return make_strategy("bayesian", space, seed=seed, initial_points=initial_points,
+                             n_initial_points=n_initial_points, warm_start=warm_start)
+    if kind == "grid":
+        return make_strategy("grid", space, seed=seed,
+                             points_per_dimension=search.grid_points_per_dimension)
+    if kind == "coordinate":
+        start = dict(initial_points[0]) if initial_points else None
+        return make_strategy("coordinate", space, seed=seed,
+                             points_per_dimension=search.coordinate_points_per_dimension,
+                             rounds=search.coordinate_rounds, start=start)
+    if kind == "random":
+        return make_strategy("random", space, seed=seed, n_points=max_points)
+    raise ConfigError(config.source, "search.strategy", "bayesian, grid, coordinate or random", kind)
+
+
+@dataclass
+class _Tally:
+    shots: int = 0
+    rig_time_s: float = 0.0
+
+
+@dataclass
+class _Measurement:
+    """Acquisitions of one measurement, keyed by (field, phase index)."""
+
+    label: str
+    point: int
+    setpoints: dict[str, float]
+    shots_per_phase: int
+    counts: dict[tuple[str, int], tuple[int, int, int]] = field(default_factory=dict)
+
+
+class Session:
+    """One stage's conversation with the rig: guarded moves, bounded retries, journaled steps.
+
+    Parameters
+    ----------
+    rig : Rig
+        The apparatus (a :class:`autotune.bus.BusClient` in every real run).
+    config : RunConfig
+        The checked configuration.
+    journal : Journal
+        Where every step is recorded before the next one starts.
+    description : Description
+        The rig's describe reply (limits, repetition rate).
+    stop : threading.Event
+        Set by the CLI's signal handler; checked between acquisitions.
+    sleep : callable
+        Wall-clock wait used between retries (injectable for tests).
+    """
+
+    def __init__(self, rig: Rig, config: RunConfig, journal: Journal, description: Any,
+                 stop: threading.Event | None = None,
+                 sleep: Callable[[float], None] = time.sleep) -> None:
+        self.rig = rig
+        self.config = config
+        self.journal = journal
+        self.description = description
+        self.limits = effective_limits(config, description)
+        self.repetition_rate_hz = float(description.repetition_rate_hz)
+        self.stop = stop if stop is not None else threading.Event()
+        self.sleep = sleep
+        self.tally = _Tally()
+        self.phases = ramsey_phases(config.measurement.ramsey_phases)
+        self.current: dict[str, float] = {}
+        self.log = _log.bind(run=journal.run_dir.name)
+
+    # -- recording -----------------------------------------------------------------------
+
+    def decide(self, what: str, reason: str, **fields: Any) -> None:
+        """Record a decision and its reason in the journal and the log."""
+        self.journal.append("decision", what=what, reason=reason, **fields)
+        self.log.info("decision", what=what, reason=reason, **fields)
+
+    # -- guarded rig calls ----------------------------------------------------------------
+
+    def _check_stop(self) -> None:
+        if self.stop.is_set():
+            raise Interrupted("stopped by signal")
+
+    def _call(self, what: str, action: Callable[[], Any]) -> Any:
+        """Run one rig call with bounded retries; an interlock waits (bounded) and retries."""
+        recovery = self.config.recovery
+        failures = 0
+        while True:
+            self._check_stop()
+            try:
+                return action()
+            except RigRefused as exc:
+                if exc.kind == "interlock":
+                    self._wait_interlock(what, exc.detail)
+                    continue
+                if exc.kind not in ("busy", "internal"):
+                    raise
+                error: RigError = exc
+            except RigTimeout as exc:
+                error = exc
+            failures += 1
+            if failures > recovery.step_retries:
+                self.decide("give_up", f"{what} failed {failures} times: {error}", op=what)
+                raise error
+            self.decide("retry", f"{what} failed: {error}", op=what, attempt=failures)
+            self.sleep(recovery.retry_wait_s)
+
+    def _wait_interlock(self, what: str, detail: str) -> None:
+        recovery = self.config.recovery
+        self.decide("pause", f"interlock during {what}: {detail}", op=what)
+        waited = 0.0
+        while waited < recovery.interlock_max_wait_s:
+            self._check_stop()
+            self.sleep(recovery.interlock_poll_s)
+            waited += recovery.interlock_poll_s
+            status = self.rig.status()
+            if status.interlock is None:
+                self.decide("resume", f"interlock cleared after {waited:g} s", op=what)
+                return
+        raise RigRefused("interlock", f"{detail} (still set after {waited:g} s)")
+
+    def learn_present(self) -> dict[str, float]:
+        """Ask the rig which set-points are in force."""
+        status = self._call("status", self.rig.status)
+        self.current = {k: float(v) for k, v in status.setpoints.items()}
+        return dict(self.current)
+
+    def move_to(self, target: Mapping[str, float], reason: str) -> None:
+        """Move to ``target`` in guarded steps, journaling each applied step."""
+        if not self.current:
+            self.learn_present()
+        steps = plan_moves(self.current, target, self.limits)
+        if len(steps) > 1:
+            self.decide("split_move", f"{reason}: move needs {len(steps)} steps within max_step",
+                        target=dict(target))
+        for step in steps:
+            self._check_stop()
+            for name, value in step.items():
+                self.limits[name].check(name, value)
+            applied = self._call("apply", lambda s=step: self.rig.apply(s))
+            self.current = {k: float(v) for k, v in applied.setpoints.items()}
+            self.journal.append("move", setpoints=step, applied=self.current, clock=applied.clock,
+                                reason=reason)
+
+    def go_safe(self, reason: str) -> None:
+        """Send the rig to its safe set-points; record it. Never raises past a rig error."""
+        try:
+            reply = self.rig.safe()
+            self.current = {k: float(v) for k, v in reply.setpoints.items()}
+            self.journal.append("safe", setpoints=self.current, reason=reason)
+            self.log.warning("safe_setpoints_applied", reason=reason, setpoints=self.current)
+        except RigError as exc:
+            self.journal.append("safe_failed", reason=reason, error=str(exc))
+            self.log.error("safe_setpoints_failed", reason=reason, error=str(exc))
+
+    # -- measurements ---------------------------------------------------------------------
+
+    def measure(self, m: _Measurement, seed: int) -> InversionEstimate:
+        """Complete measurement ``m`` (only its missing acquisitions) and estimate it."""
+        cfg = self.config.measurement
+        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in m.setpoints.items()):
+            self.move_to(m.setpoints, reason=f"{m.label} {m.point}")
+        for j, phase in enumerate(self.phases):
+            for field_state in FIELDS:
+                if (field_state, j) in m.counts:
+                    continue
+                self._check_stop()
+                acq = self._call("acquire", lambda f=field_state, p=phase: self.rig.acquire(
+                    f, p, m.shots_per_phase))
+                counts = (int(acq.counts.e), int(acq.counts.g), int(acq.counts.i))
+                m.counts[(field_state, j)] = counts
+                self.tally.shots += int(acq.shots)
+                self.tally.rig_time_s += float(acq.t_end) - float(acq.t_start)
+                self.journal.append(
+                    "acquisition", label=m.label, point=m.point, field=field_state, phase_index=j,
+                    ramsey_phase=phase, shots=int(acq.shots),
+                    counts={"e": counts[0], "g": counts[1], "i": counts[2]},
+                    t_start=float(acq.t_start), t_end=float(acq.t_end),
+                    setpoints={k: float(v) for k, v in acq.setpoints.items()},
+                )
+        estimate = estimate_inversion(
+            self.fringe(m, "empty"), self.fringe(m, "one_photon"),
+            confidence=cfg.confidence, seed=seed, resamples=cfg.resamples,
+        )
+        self.journal.append("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
+                            estimate=estimate.to_dict())
+        self.log.info("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
+                      inversion=round(estimate.inversion, 4),
+                      stderr=round(estimate.inversion_stderr, 4))
+        return estimate
+
+    def fringe(self, m: _Measurement, field_state: str) -> FringeData:
+        """The counts of one field state of ``m`` as fringe data."""
+        rows = [(self.phases[j], *m.counts[(field_state, j)]) for j in range(len(self.phases))]
+        arr = np.asarray(rows, dtype=float)
+        return FringeData.from_counts(arr[:, 0], arr[:, 1].astype(np.int64),
+                                      arr[:, 2].astype(np.int64), arr[:, 3].astype(np.int64))
+
+
+def _replay(records: Iterable[Mapping[str, Any]]) -> tuple[
+        dict[tuple[str, int], _Measurement], list[Mapping[str, Any]], dict[str, Any]]:
+    """Rebuild measurements, estimates and the stage header from journal records."""
+    measurements: dict[tuple[str, int], _Measurement] = {}
+    estimates: list[Mapping[str, Any]] = []
+    header: dict[str, Any] = {}
+    for rec in records:
+        kind = rec.get("type")
+        if kind == "stage":
+            header = dict(rec)
+        elif kind == "measurement":
+            key = (rec["label"], int(rec["point"]))
+            measurements[key] = _Measurement(rec["label"], int(rec["point"]),
+                                             dict(rec["setpoints"]), int(rec["shots_per_phase"]))
+        elif kind == "acquisition":
+            m = measurements[(rec["label"], int(rec["point"]))]
+            c = rec["counts"]
+            m.counts[(rec["field"], int(rec["phase_index"]))] = (int(c["e"]), int(c["g"]),
+                                                                   int(c["i"]))
+        elif kind == "estimate":
+            estimates.append(rec)
+    return measurements, estimates, header
+
+
+def _tally_from(records: Iterable[Mapping[str, Any]]) -> _Tally:
+    tally = _Tally()
+    for rec in records:
+        if rec.get("type") == "acquisition":
+            tally.shots += int(rec["shots"])
+            tally.rig_time_s += float(rec["t_end"]) - float(rec["t_start"])
+    return tally
+
+
+def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, float]],
+              budget: Budget, n_initial_points: int,
+              initial_points: Sequence[Mapping[str, float]] = (),
+              check_at: Mapping[str, float] | None = None,
+              still_good_above: float | None = None,
+              records: Sequence[Mapping[str, Any]] = ()) -> StageOutcome:
+    """Run (or resume) one stage: optional check, search, verification at the recommendation.
+
+    Parameters
+    ----------
+    session : Session
+        The guarded conversation with the rig.
+    stage : str
+        ``"calibrate"`` or ``"retune"`` (recorded, and part of the child seeds).
+    box : Mapping[str, (float, float)]
+        The search box, in set-point units.
+    budget : Budget
+        Hard limits on points, shots and rig time of the search.
+    n_initial_points : int
+        Size of the strategy's first design.
+    initial_points : sequence of set-point dicts
+        Points the first design must include (the nominal 2*pi point, the last good one).
+    check_at : Mapping, optional
+        Measure here first (retune). If the measured inversion's upper bound reaches
+        ``still_good_above``, stop with status ``"still_good"`` without searching.
+    still_good_above : float, optional
+        Threshold of the check (inversion units).
+    records : sequence of journal records
+        Records of an earlier, killed attempt of this same stage, to resume from.
+    """
+    config = session.config
+    seed = config.search.seed
+    stage_code = {"calibrate": 1, "retune": 2}[stage]
+    measurements, estimates, header = _replay(records)
+    session.tally = _tally_from(records)
+    if header:
+        box = {k: (float(v[0]), float(v[1])) for k, v in header["box"].items()}
+        initial_points = [dict(p) for p in header["initial_points"]]
+        session.decide("resume", f"continuing {stage} from {len(records)} journal records",
+                       estimates=len(estimates))
+    else:
+        session.journal.append("stage", stage=stage, box={k: list(v) for k, v in box.items()},
+                               initial_points=[dict(p) for p in initial_points],
+                               budget=budget.__dict__, strategy=config.search.strategy,
+                               seed=seed)
+
+    def measurement(label: str, point: int, setpoints: Mapping[str, float],
+                    shots_per_phase: int) -> _Measurement:
+        key = (label, point)
+        if key not in measurements:
+            measurements[key] = _Measurement(label, point, dict(setpoints), shots_per_phase)
+            session.journal.append("measurement", label=label, point=point,
+                                   setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
+        return measurements[key]
+
+    def estimate_of(label: str, point: int) -> InversionEstimate | None:
+        for rec in estimates:
+            if rec["label"] == label and int(rec["point"]) == point:
+                return InversionEstimate.from_dict(rec["estimate"])
+        return None
+
+    label_code = {"check": 1, "point": 2, "verify": 3}
+    shots = config.measurement.shots_per_phase
+    check_estimate: InversionEstimate | None = None
+    warm_start: list[tuple[Mapping[str, float], float, float]] = []
+    if check_at is not None:
+        check_estimate = estimate_of("check", 0)
+        if check_estimate is None:
+            m = measurement("check", 0, check_at, config.measurement.verification_shots_per_phase)
+            check_estimate = session.measure(m, child_seed(seed, stage_code, label_code["check"]))
+        warm_start.append((dict(check_at), check_estimate.inversion,
+                           check_estimate.inversion_stderr))
+        if still_good_above is not None and check_estimate.inversion_high >= still_good_above:
+            session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
+                           f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
+                           setpoints=dict(check_at))
+            return StageOutcome("still_good", dict(check_at), check_estimate, "check passed", 0,
+                                session.tally.shots, session.tally.rig_time_s, True,
+                                check_estimate)
+        session.decide("search", f"inversion {check_estimate.inversion:.3f} (upper "
+                       f"{check_estimate.inversion_high:.3f}) below {still_good_above:.3f}")
+
+    space = search_space(box)
+    kind = config.search.strategy
+    strategy = build_strategy(kind, space, config, seed=child_seed(seed, stage_code, 0),
+                              n_initial_points=n_initial_points, max_points=budget.max_points,
+                              initial_points=initial_points, warm_start=warm_start)
+    point_estimates = sorted((rec for rec in estimates if rec["label"] == "point"),
+                             key=lambda r: int(r["point"]))
+    for rec in point_estimates:
+        est = rec["estimate"]
+        strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]))
+    n_points = len(point_estimates)
+    per_point = 2 * len(session.phases) * shots
+    per_point_time = per_point / session.repetition_rate_hz
+    stop_reason = ""
+    while not stop_reason:
+        pending = measurements.get(("point", n_points))
+        if pending is None:
+            if n_points >= budget.max_points:
+                stop_reason = f"point budget of {budget.max_points} reached"
+                break
+            if session.tally.shots + per_point > budget.max_shots:
+                stop_reason = f"shot budget {budget.max_shots} would be exceeded by the next point"
+                break
+            if session.tally.rig_time_s + per_point_time > budget.max_rig_time_s:
+                stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s would be exceeded"
+                break
+            if strategy.exhausted():
+                stop_reason = "the strategy's design is finished"
+                break
+            proposal = {k: float(v) for k, v in strategy.ask().items()}
+            session.journal.append("proposal", point=n_points, setpoints=proposal,
+                                   strategy=strategy.name)
+            pending = measurement("point", n_points, proposal, shots)
+        estimate = session.measure(pending, child_seed(seed, stage_code, label_code["point"],
+                                                       n_points))
+        strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr)
+        n_points += 1
+        if n_points >= budget.min_points and strategy.converged():
+            stop_reason = "the strategy's convergence test passed"
+    session.decide("stop_search", stop_reason, points=n_points)
+
+    recommendation = strategy.recommend()
+    chosen = {k: float(v) for k, v in recommendation.point.items()}
+    session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
+                   setpoints=chosen, predicted=recommendation.value)
+    existing = measurements.get(("verify", 0))
+    if existing is not None:
+        chosen = existing.setpoints
+    verify = measurement("verify", 0, chosen, config.measurement.verification_shots_per_phase)
+    final = estimate_of("verify", 0)
+    if final is None:
+        final = session.measure(verify, child_seed(seed, stage_code, label_code["verify"]))
+    else:
+        session.move_to(chosen, reason="leave the rig at the verified set-points")
+    accepted = final.inversion >= config.min_inversion
+    status = "accepted" if accepted else "below_acceptance"
+    session.decide(status, f"verified inversion {final.inversion:.3f} vs acceptance "
+                   f"{config.min_inversion:.3f}", setpoints=chosen)
+    return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
+                        session.tally.rig_time_s, accepted, check_estimate)
+

@@ -1,0 +1,44 @@
+"""The seam between the closed loop and an apparatus.
+
+The loop talks to "a rig" only through :class:`Rig`: five operations that mirror the wire
+protocol's ops of the same names. :class:`autotune.bus.BusClient` is the implementation used
+against every real or simulated rig; tests may pass any other object with these methods.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Protocol, runtime_checkable
+
+if TYPE_CHECKING:
+    from autotune.protocol import Acquisition, Applied, Description, Status
+
+__all__ = ["Rig", "FIELDS"]
+
+#: The two field states, in the order the loop interleaves them at each Ramsey phase.
+FIELDS: tuple[str, str] = ("empty", "one_photon")
+
+
+@runtime_checkable
+class Rig(Protocol):
+    """What the loop needs of an apparatus (all quantities SI, set-points in the rig's units)."""
+
+    def describe(self) -> Description:
+        """The rig's name, set-point limits, field states and repetition rate."""
+        ...
+
+    def apply(self, setpoints: Mapping[str, float]) -> Applied:
+        """Apply set-points (each change within its largest step) and return those in force."""
+        ...
+
+    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Acquisition:
+        """Run ``shots`` samples with field state ``field`` at ``ramsey_phase`` (rad)."""
+        ...
+
+    def status(self) -> Status:
+        """The rig clock (s), busy flag, interlock (``None`` or its reason) and set-points."""
+        ...
+
+    def safe(self) -> Applied:
+        """Send the rig to its safe set-points."""
+        ...

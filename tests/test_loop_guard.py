@@ -1,0 +1,74 @@
+"""Tests of the loop's guard: no set-point outside the limits, no step above max_step."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from autotune.errors import LimitError
+from autotune.loop import Limit, plan_moves, ramsey_phases
+
+finite = st.floats(min_value=-1e6, max_value=1e6, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def boxes_and_moves(draw: st.DrawFn) -> tuple[dict, dict, dict]:
+    limits, current, target = {}, {}, {}
+    for name in ("velocity", "detuning"):
+        lo = draw(finite)
+        width = draw(st.floats(min_value=1e-3, max_value=1e6))
+        step = draw(st.floats(min_value=1e-3 * width, max_value=2 * width))
+        limits[name] = Limit(lo, lo + width, step)
+        current[name] = draw(st.floats(min_value=lo, max_value=lo + width))
+        # Targets anywhere, inside or outside the box.
+        target[name] = draw(st.floats(min_value=lo - width, max_value=lo + 2 * width))
+    return limits, current, target
+
+
+@settings(max_examples=300, deadline=None)
+@given(boxes_and_moves())
+def test_planned_steps_stay_inside_limits_and_steps(case: tuple[dict, dict, dict]) -> None:
+    """Every planned step is inside the limits and within max_step of the previous one."""
+    limits, current, target = case
+    inside = all(limits[n].min <= v <= limits[n].max for n, v in target.items())
+    if not inside:
+        with pytest.raises(LimitError, match="outside its limits"):
+            plan_moves(current, target, limits)
+        return
+    steps = plan_moves(current, target, limits)
+    assert steps[-1] == target
+    previous = dict(current)
+    for step in steps:
+        for name, value in step.items():
+            assert limits[name].min - 1e-9 * abs(limits[name].min) <= value
+            assert value <= limits[name].max + 1e-9 * abs(limits[name].max)
+            assert abs(value - previous[name]) <= limits[name].max_step * (1 + 1e-9)
+        previous = step
+
+
+def test_non_finite_target_is_refused() -> None:
+    """A NaN set-point never gets planned."""
+    limits = {"velocity": Limit(300.0, 700.0, 40.0)}
+    with pytest.raises(LimitError, match="not finite"):
+        plan_moves({"velocity": 500.0}, {"velocity": math.nan}, limits)
+
+
+def test_unknown_setpoint_is_refused() -> None:
+    """A set-point without limits cannot be moved."""
+    with pytest.raises(LimitError, match="not among the limited"):
+        plan_moves({"velocity": 500.0}, {"voltage": 1.0}, {"velocity": Limit(0, 1, 1)})
+
+
+def test_long_move_is_split_evenly() -> None:
+    """A 100 m/s move with 40 m/s steps takes three equal steps."""
+    steps = plan_moves({"velocity": 400.0}, {"velocity": 500.0},
+                       {"velocity": Limit(300.0, 700.0, 40.0)})
+    assert [s["velocity"] for s in steps] == pytest.approx([433.333333, 466.666667, 500.0])
+
+
+def test_ramsey_phases_are_equally_spaced() -> None:
+    """K phases 2 pi j / K (common practice for a fringe scan)."""
+    assert ramsey_phases(4) == pytest.approx((0.0, math.pi / 2, math.pi, 3 * math.pi / 2))
