@@ -176,7 +176,6 @@ class BusClient:
         self._backoff_s = float(backoff_s)
         self._curve = curve
         self._configured = types.MappingProxyType(configured)
-        self._described: Mapping[str, SetpointLimit] = types.MappingProxyType({})
         self._limits: Mapping[str, SetpointLimit] = self._configured
         self._in_force: dict[str, float] = {}
         self._own_context = context is None
@@ -268,7 +267,6 @@ class BusClient:
                     raise ConfigError("<BusClient>", f"limits.{name}", f"a limit compatible with the rig's {merged[name]}", f"{configured} ({exc})") from exc
             else:
                 merged[name] = configured
-        self._described = description.setpoints
         self._limits = types.MappingProxyType(merged)
         return description
 
@@ -292,7 +290,12 @@ class BusClient:
             larger than ``max_step``, or no limit is known for a name (call :meth:`describe`).
         """
         wanted = self._check_setpoints(setpoints)
-        applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted}))
+        try:
+            applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted}))
+        except RigError:
+            # It may have been applied without our hearing of it: the next step check asks first.
+            self._in_force.clear()
+            raise
         self._in_force = dict(applied.setpoints)
         return applied
 
@@ -312,7 +315,11 @@ class BusClient:
 
     def safe(self) -> Applied:
         """Move the rig to its safe set-points (the rig's own procedure; ``clock`` is None)."""
-        applied = protocol.parse_safe(self._call(Op.SAFE, {}))
+        try:
+            applied = protocol.parse_safe(self._call(Op.SAFE, {}))
+        except RigError:
+            self._in_force.clear()
+            raise
         self._in_force.update(applied.setpoints)
         return applied
 
@@ -344,9 +351,13 @@ class BusClient:
             if limit is None:
                 known = ", ".join(sorted(self._limits)) or "none (call describe() first)"
                 raise LimitError(f"set-point {name!r}: no limit known (known: {known}); refused {value!r}")
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            try:
+                number = float(value) if not isinstance(value, bool) else math.nan
+            except (TypeError, ValueError, OverflowError):
+                number = math.nan
+            if not isinstance(value, (int, float)) or not math.isfinite(number):
                 raise LimitError(f"set-point {name!r}: expected a finite number, got {value!r}")
-            value = float(value)
+            value = number
             if not limit.min <= value <= limit.max:
                 raise LimitError(
                     f"set-point {name!r}: {value!r} {limit.unit} is outside the limit "

@@ -7,12 +7,13 @@ set-point, the limit and the value.
 from __future__ import annotations
 
 import json
+import signal
 
 import pytest
 import zmq
 
 from autotune import protocol
-from autotune.errors import LimitError
+from autotune.errors import LimitError, RigTimeout
 from autotune.protocol import Op, SetpointLimit
 
 
@@ -118,3 +119,22 @@ def test_server_refuses_too_large_step_with_the_limit(served, raw_socket):
     reply = _raw_apply(raw_socket, {"velocity": target})
     assert reply["ok"] is False and reply["error"]["kind"] == "out_of_range"
     assert f"max_step {limit.max_step:g}" in reply["error"]["detail"]
+
+
+def test_timed_out_apply_forgets_the_setpoints_in_force(start_server, make_client):
+    """An apply whose reply never came may have moved the rig, so the client stops trusting its old values."""
+    server = start_server()
+    hasty = make_client(server.endpoint, timeout_s=0.3, retries=0)
+    limit = hasty.describe().setpoints["velocity"]
+    now = hasty.status().setpoints["velocity"]
+    target = now + 0.5 * limit.max_step if now + 0.5 * limit.max_step <= limit.max else now - 0.5 * limit.max_step
+    server.process.send_signal(signal.SIGSTOP)  # the rig stalls with the request on its way
+    try:
+        with pytest.raises(RigTimeout):
+            hasty.apply({"velocity": target})
+    finally:
+        server.process.send_signal(signal.SIGCONT)
+    assert dict(hasty.setpoints) == {}
+    # The stalled rig did execute it: a step check against the old value would have been wrong.
+    patient = make_client(server.endpoint, timeout_s=2.0, retries=0)
+    assert patient.status().setpoints["velocity"] == target
