@@ -121,6 +121,7 @@ class SearchConfig:
     grid_points_per_dimension: int
     coordinate_points_per_dimension: int
     coordinate_rounds: int
+    exploration: float
 
 
 @dataclass(frozen=True)
@@ -145,6 +146,7 @@ class RetuneConfig:
     max_points: int
     max_shots: int
     n_initial_points: int
+    check_shots_per_phase: int
 
 
 @dataclass(frozen=True)
@@ -359,6 +361,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         coordinate_points_per_dimension=s_t.integer("coordinate_points_per_dimension", 9, low=3,
                                                     high=200),
         coordinate_rounds=s_t.integer("coordinate_rounds", 3, low=1, high=50),
+        exploration=s_t.number("exploration", 0.01, low=0.0, high=1.0),
     )
     s_t.finish()
 
@@ -389,6 +392,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         max_points=r_t.integer("max_points", low=1, high=10_000),
         max_shots=r_t.integer("max_shots", low=1),
         n_initial_points=r_t.integer("n_initial_points", 4, low=1, high=1000),
+        check_shots_per_phase=r_t.integer("check_shots_per_phase", low=1, high=100_000_000),
     )
     r_t.finish()
 

@@ -212,7 +212,8 @@ def build_strategy(kind: str, space: SearchSpace, config: RunConfig, *, seed: in
     search = config.search
     if kind == "bayesian":
         return make_strategy("bayesian", space, seed=seed, initial_points=initial_points,
-                             n_initial_points=n_initial_points, warm_start=warm_start)
+                             n_initial_points=n_initial_points, warm_start=warm_start,
+                             exploration=search.exploration)
     if kind == "grid":
         return make_strategy("grid", space, seed=seed,
                              points_per_dimension=search.grid_points_per_dimension)
@@ -445,6 +446,8 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
               initial_points: Sequence[Mapping[str, float]] = (),
               check_at: Mapping[str, float] | None = None,
               still_good_above: float | None = None,
+              verification_shots_per_phase: int | None = None,
+              observer: Callable[[int, Strategy, Session], None] | None = None,
               records: Sequence[Mapping[str, Any]] = ()) -> StageOutcome:
     """Run (or resume) one stage: optional check, search, verification at the recommendation.
 
@@ -467,6 +470,13 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         ``still_good_above``, stop with status ``"still_good"`` without searching.
     still_good_above : float, optional
         Threshold of the check (inversion units).
+    verification_shots_per_phase : int, optional
+        Shots per field and phase of the check and the verification (default: the
+        configured ``measurement.verification_shots_per_phase``).
+    observer : callable, optional
+        Called as ``observer(points_told, strategy, session)`` after every told point
+        (benchmark studies follow the recommendation with it; it must not touch the rig's
+        set-points).
     records : sequence of journal records
         Records of an earlier, killed attempt of this same stage, to resume from.
     """
@@ -503,12 +513,13 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
 
     label_code = {"check": 1, "point": 2, "verify": 3}
     shots = config.measurement.shots_per_phase
+    long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
     check_estimate: InversionEstimate | None = None
     warm_start: list[tuple[Mapping[str, float], float, float]] = []
     if check_at is not None:
         check_estimate = estimate_of("check", 0)
         if check_estimate is None:
-            m = measurement("check", 0, check_at, config.measurement.verification_shots_per_phase)
+            m = measurement("check", 0, check_at, long_shots)
             check_estimate = session.measure(m, child_seed(seed, stage_code, label_code["check"]))
         warm_start.append((dict(check_at), check_estimate.inversion,
                            check_estimate.inversion_stderr))
@@ -559,6 +570,8 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
                                                        n_points))
         strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr)
         n_points += 1
+        if observer is not None:
+            observer(n_points, strategy, session)
         if n_points >= budget.min_points and strategy.converged():
             stop_reason = "the strategy's convergence test passed"
     session.decide("stop_search", stop_reason, points=n_points)
@@ -570,7 +583,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     existing = measurements.get(("verify", 0))
     if existing is not None:
         chosen = existing.setpoints
-    verify = measurement("verify", 0, chosen, config.measurement.verification_shots_per_phase)
+    verify = measurement("verify", 0, chosen, long_shots)
     final = estimate_of("verify", 0)
     if final is None:
         final = session.measure(verify, child_seed(seed, stage_code, label_code["verify"]))

@@ -18,7 +18,7 @@ import platform
 import threading
 import time
 import uuid
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import asdict
 from importlib import metadata
 from pathlib import Path
@@ -189,7 +189,8 @@ def _execute(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume
 
 def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
               stop: threading.Event | None = None, store: Path | None = None,
-              extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+              extra: Mapping[str, Any] | None = None,
+              observer: Callable[..., None] | None = None) -> dict[str, Any]:
     """Full calibration over the configured box; returns (and writes) the result.
 
     Parameters
@@ -208,6 +209,8 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
         Where to write the last good calibration (default: the configured store).
     extra : Mapping, optional
         More manifest entries (the dry run records its scenario here).
+    observer : callable, optional
+        Passed to :func:`autotune.loop.run_stage` (benchmark studies).
     """
     def stage_args(session: Session) -> dict[str, Any]:
         nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
@@ -219,6 +222,7 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
             "stage": "calibrate", "box": box,
             "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
             "n_initial_points": s.n_initial_points, "initial_points": [first],
+            "observer": observer,
         }
 
     return _execute("calibrate", rig, config, run_dir, resume=resume, stop=stop,
@@ -227,7 +231,8 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
 
 def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
            stop: threading.Event | None = None, store: Path | None = None,
-           extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+           extra: Mapping[str, Any] | None = None,
+           observer: Callable[..., None] | None = None) -> dict[str, Any]:
     """Check the last good set-points; search a narrowed box only if they no longer hold.
 
     Parameters are those of :func:`calibrate`; ``store`` is read first and replaced only by an
@@ -250,6 +255,8 @@ def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
             "n_initial_points": r.n_initial_points, "initial_points": [centre],
             "check_at": centre,
             "still_good_above": r.still_good_fraction * float(last_good["inversion"]),
+            "verification_shots_per_phase": r.check_shots_per_phase,
+            "observer": observer,
         }
 
     return _execute("retune", rig, config, run_dir, resume=resume, stop=stop, store=store,
