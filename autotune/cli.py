@@ -199,7 +199,10 @@ def _cmd_rig(ns: argparse.Namespace) -> int:
     parser = argparse.ArgumentParser(prog="autotune rig",
                                      description="Serve the bundled simulated rig over the bus.")
     add_rig_arguments(parser)
-    return run_rig(parser.parse_args(ns.rig_args))
+    rig_ns = parser.parse_args(ns.rig_args)
+    _configure_logging(rig_ns.log_level)
+    print("serving the SIMULATED rig: no hardware is touched", file=sys.stderr)
+    return run_rig(rig_ns)
 
 
 def _run_folder(ns: argparse.Namespace, command: str) -> tuple[Path, bool]:
@@ -233,7 +236,8 @@ def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
     return _guarded(body)
 
 
-def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, timeout_s: float) -> str:
+def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, log: Path,
+                    timeout_s: float) -> str:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         if ready.exists():
@@ -241,7 +245,7 @@ def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, timeout_s: fl
             if endpoint:
                 return endpoint
         if process.poll() is not None:
-            err = process.stderr.read().decode(errors="replace") if process.stderr else ""
+            err = log.read_text(encoding="utf-8", errors="replace")
             raise RigError(f"the simulated rig exited with code {process.returncode} before "
                            f"listening: {err[-2000:]}")
         time.sleep(0.05)
@@ -284,10 +288,12 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
             command = [sys.executable, "-m", "drivers_sim.server", "--config", str(rig_config),
                        "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
                        str(ready), "--log-level", "warning"]
+            # The rig's log goes to a file: an unread pipe could fill and stall the rig.
+            rig_log = (out / "rig.log").open("wb")
             process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
-                                       stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+                                       stdout=subprocess.DEVNULL, stderr=rig_log)
             try:
-                endpoint = _wait_for_ready(process, ready, timeout_s=60.0)
+                endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
                 config = dataclasses.replace(
                     config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
                 return _dry_run_stages(ns, config, out, endpoint, stop, runner)
@@ -298,6 +304,7 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
                 except subprocess.TimeoutExpired:
                     process.kill()
                     process.wait(timeout=10)
+                rig_log.close()
 
     return _guarded(body)
 

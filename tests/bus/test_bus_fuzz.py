@@ -12,12 +12,11 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from rig_process import SEED, SIM_CONFIG
 
 from autotune import protocol
 from autotune.errors import ProtocolError, RigRefused
 from autotune.protocol import ErrorKind, Op, RequestRejected
-
-from .conftest import SEED, SIM_CONFIG
 
 MSG_ID = "fedcba9876543210fedcba9876543210"
 FUZZ = settings(max_examples=300, deadline=None, derandomize=True,

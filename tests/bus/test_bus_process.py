@@ -6,8 +6,7 @@ import signal
 import socket as stdlib_socket
 
 import pytest
-
-from .conftest import STOP_TIMEOUT_S
+from rig_process import STOP_TIMEOUT_S
 
 
 def test_ready_file_holds_the_bound_loopback_port(start_server):

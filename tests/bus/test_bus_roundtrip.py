@@ -9,12 +9,18 @@ from __future__ import annotations
 import math
 
 import pytest
+from rig_process import SEED, SIM_CONFIG
 
-from autotune.protocol import Acquisition, Applied, Counts, Description, SetpointLimit, Status
+from autotune.protocol import (
+    Acquisition,
+    Applied,
+    Counts,
+    Description,
+    SetpointLimit,
+    Status,
+)
 from drivers_sim.config import load_sim_config
 from drivers_sim.rig import SimulatedRig
-
-from .conftest import SEED, SIM_CONFIG
 
 
 @pytest.fixture

@@ -5,14 +5,13 @@ from __future__ import annotations
 import json
 
 import pytest
+from rig_process import SEED, SIM_CONFIG
 
 from autotune import protocol
 from autotune.protocol import Op
 from drivers_sim.config import load_sim_config
 from drivers_sim.rig import SimulatedRig
 from drivers_sim.server import FaultConfig, RigServer, ServerConfigError
-
-from .conftest import SEED, SIM_CONFIG
 
 
 @pytest.fixture
