@@ -30,7 +30,9 @@ from dataclasses import dataclass, field
 from typing import Any, Literal, Protocol, runtime_checkable
 
 import numpy as np
-from scipy import special
+from sklearn.base import clone
+from sklearn.exceptions import ConvergenceWarning
+from scipy import linalg, optimize, special
 from scipy.stats import qmc
 
 __all__ = [
@@ -52,6 +54,8 @@ StrategyKind = Literal["bayesian", "grid", "coordinate", "random"]
 
 # Results after which the surrogate's hyperparameter fit starts from the previous fit.
 _WARM_HYPERPARAMETERS_AFTER = 40
+# Results (all with a rig clock) needed before a drift rate is estimated.
+_DRIFT_MIN_RESULTS = 8
 
 
 # --------------------------------------------------------------------------------------------
@@ -184,11 +188,13 @@ class SearchSpace:
 
 @dataclass(frozen=True)
 class Observation:
-    """One measured result: a point, its value (to maximise) and the value's standard error."""
+    """One measured result: a point, its value (to maximise), the value's standard error and,
+    if known, the rig clock ``clock_s`` (s) at the middle of the measurement."""
 
     point: Mapping[str, float]
     value: float
     stderr: float
+    clock_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -215,24 +221,28 @@ class Strategy(Protocol):
         """Results told through :meth:`tell` (a warm start is not counted)."""
         ...
 
-    def ask(self) -> dict[str, float]:
-        """The next point to measure; the same point until a result is told."""
+    def ask(self, *, clock_s: float | None = None) -> dict[str, float]:
+        """The next point to measure at rig clock ``clock_s`` (s); the same point until a tell."""
         ...
 
-    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
-        """Record the measured ``value`` (to maximise) and its ``stderr`` at ``point``."""
+    def tell(self, point: Mapping[str, float], value: float, stderr: float, *,
+             clock_s: float | None = None) -> None:
+        """Record the measured ``value`` (to maximise) and its ``stderr`` at ``point``.
+
+        ``clock_s`` is the rig clock (s) at the middle of that measurement, if known.
+        """
         ...
 
-    def recommend(self) -> Recommendation:
-        """The point to choose now and its predicted value."""
+    def recommend(self, *, clock_s: float | None = None) -> Recommendation:
+        """The point to choose at rig clock ``clock_s`` (s) and its predicted value."""
         ...
 
     def exhausted(self) -> bool:
         """True when a finite design has no point left to ask."""
         ...
 
-    def converged(self) -> bool:
-        """True when the strategy's own stopping test passes."""
+    def converged(self, *, clock_s: float | None = None) -> bool:
+        """True when the strategy's own stopping test passes at rig clock ``clock_s`` (s)."""
         ...
 
 
@@ -272,6 +282,15 @@ class _Record:
             raise ValueError(f"stderr: expected >= 0, got {stderr!r}")
         return np.clip((values - self.space.lows) / (self.space.highs - self.space.lows), 0.0, 1.0)
 
+    @staticmethod
+    def _check_clock(clock_s: float | None) -> float | None:
+        if clock_s is None:
+            return None
+        if isinstance(clock_s, bool) or not isinstance(clock_s, (int, float, np.floating, np.integer)) or not math.isfinite(
+                float(clock_s)):
+            raise ValueError(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
+        return float(clock_s)
+
     def _store(self, unit: np.ndarray, value: float, stderr: float) -> None:
         self._units.append(unit)
         self._values.append(float(value))
@@ -293,26 +312,31 @@ class _FixedDesign(_Record):
     def _point(self, index: int) -> np.ndarray:
         raise NotImplementedError
 
-    def ask(self) -> dict[str, float]:
-        """The next design point; raises RuntimeError once :meth:`exhausted`."""
+    def ask(self, *, clock_s: float | None = None) -> dict[str, float]:
+        """The next design point; raises RuntimeError once :meth:`exhausted` (``clock_s`` unused)."""
+        self._check_clock(clock_s)
         if self.exhausted():
             raise RuntimeError(f"{self.name}: the design of {self._size()} points is exhausted; check exhausted()")
         return self.space.from_unit(self._point(self.n_told))
 
-    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
-        """Record a result (value maximised)."""
+    def tell(self, point: Mapping[str, float], value: float, stderr: float, *,
+             clock_s: float | None = None) -> None:
+        """Record a result (value maximised); ``clock_s`` is checked, then unused."""
+        self._check_clock(clock_s)
         self._store(self._check_result(point, value, stderr), value, stderr)
 
-    def recommend(self) -> Recommendation:
-        """The best observed result."""
+    def recommend(self, *, clock_s: float | None = None) -> Recommendation:
+        """The best observed result (``clock_s`` unused)."""
+        self._check_clock(clock_s)
         return self._best_observed()
 
     def exhausted(self) -> bool:
         """True once every design point has been told."""
         return self.n_told >= self._size()
 
-    def converged(self) -> bool:
-        """Same as :meth:`exhausted`: a fixed design has no other stopping test."""
+    def converged(self, *, clock_s: float | None = None) -> bool:
+        """Same as :meth:`exhausted`: a fixed design has no other stopping test (``clock_s`` unused)."""
+        self._check_clock(clock_s)
         return self.exhausted()
 
 
@@ -508,16 +532,24 @@ def _skopt():
     return Optimizer, GaussianProcessRegressor, ConstantKernel, Matern, Real
 
 
+def _gaussian_ei():
+    from skopt.acquisition import gaussian_ei
+
+    return gaussian_ei
+
+
 def _as_observation(item: Any) -> Observation:
     if isinstance(item, Observation):
         return item
     if isinstance(item, Recommendation):
         return Observation(item.point, item.value, item.stderr)
     try:
-        point, value, stderr = item
+        point, value, stderr, *clock = item
+        if len(clock) > 1:
+            raise ValueError("too many fields")
     except (TypeError, ValueError) as exc:
-        raise ValueError(f"warm_start: expected (point, value, stderr) items, got {item!r}") from exc
-    return Observation(point, value, stderr)
+        raise ValueError(f"warm_start: expected (point, value, stderr[, clock_s]) items, got {item!r}") from exc
+    return Observation(point, value, stderr, clock[0] if clock else None)
 
 
 class BayesianSearch(_Record):
@@ -534,6 +566,29 @@ class BayesianSearch(_Record):
     ``warm_start`` results (earlier measurements) are told to the surrogate at construction
     and count neither in :attr:`n_told` nor in the design.
 
+    Drift compensation
+    ------------------
+    With ``drift_dimension`` named (e.g. ``"detuning"``) and a rig clock given with every
+    result, the rig is modelled as ``true = set-point + offset(t)`` along that dimension with
+    a linear drift ``offset(t) = offset0 + r t``. A result measured at clock ``t_i`` and
+    set-point ``x_i`` then stands, for a query at clock ``t_now``, at the set-point
+    ``x_i - r (t_now - t_i)`` (the one that now gives the same true value). The surrogate is
+    fitted on the drift-free coordinate ``x_i + r t_i`` and queried at ``x + r t_now``.
+
+    The rate ``r`` is estimated at every fit by maximising the GP log marginal likelihood over
+    ``drift_grid`` rates evenly spaced in ``[-max_drift_rate, +max_drift_rate]`` (0 is always
+    one of them, so a drift-free run keeps ``r = 0`` unless the data argue otherwise), then a
+    bounded scalar refine around the best grid rate. The kernel hyperparameters of the
+    previous fit are held fixed during that search (one Cholesky factorisation per rate);
+    they are refitted afterwards on the corrected coordinates. Until ``_DRIFT_MIN_RESULTS``
+    results carry clocks (or whenever one result lacks a clock) the search is exactly the
+    stationary one.
+
+    Proposals (drift mode) maximise skopt's ``gaussian_ei`` over a scrambled Sobol sample of
+    the box at ``t_now``, redrawn (from ``seed`` and the number of results) at every tell. The
+    recommendation is the measured point with the best lower bound (posterior mean - std),
+    each measured point taken at its shifted position at ``t_now``, clipped to the box.
+
     Parameters
     ----------
     space : SearchSpace
@@ -543,7 +598,7 @@ class BayesianSearch(_Record):
         Points measured first (e.g. the nominal 2 pi velocity at zero detuning).
     n_initial_points : int
         Space-filling points after ``initial_points`` (>= 0).
-    warm_start : sequence of Observation or (point, value, stderr)
+    warm_start : sequence of Observation or (point, value, stderr[, clock_s])
         Earlier results to learn from before the first ask.
     convergence : Convergence
         The stopping test.
@@ -555,6 +610,22 @@ class BayesianSearch(_Record):
     exploration : float
         Expected-improvement margin ``xi`` (value's unit, >= 0): a proposal must promise this
         much beyond the best posterior mean at a measured point.
+    drift_dimension : str, optional
+        The dimension whose true value drifts linearly with the rig clock (``None``: no drift
+        model, clocks ignored).
+    max_drift_rate : float
+        Largest drift rate considered, in the drift dimension's unit per second (> 0; the
+        default 3 Hz/s is 10.8 kHz per hour for ``detuning``).
+    drift_grid : int
+        Number of rates on the grid of the rate search (odd, >= 3, so that 0 is on it).
+
+    Notes
+    -----
+    Determinism and resuming: every random choice derives from ``seed`` and the number of
+    results told, and every fit is a function of the results (points, values, stderrs and
+    clocks) in their order. A search rebuilt with the same arguments and re-told the same
+    results with the same clocks, in order, asks the same next point and recommends the same
+    point for the same ``clock_s``.
     """
 
     name = "bayesian"
@@ -566,11 +637,14 @@ class BayesianSearch(_Record):
         seed: int,
         initial_points: Sequence[Mapping[str, float]] = (),
         n_initial_points: int = 8,
-        warm_start: Sequence[Observation | tuple[Mapping[str, float], float, float]] = (),
+        warm_start: Sequence[Observation | tuple[Any, ...]] = (),
         convergence: Convergence = Convergence(),
         n_points: int | None = None,
         candidates: int = 2048,
         exploration: float = 0.01,
+        drift_dimension: str | None = None,
+        max_drift_rate: float = 3.0,
+        drift_grid: int = 21,
     ) -> None:
         super().__init__(space)
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
@@ -586,10 +660,21 @@ class BayesianSearch(_Record):
         if isinstance(exploration, bool) or not isinstance(exploration, (int, float)) or not (
                 math.isfinite(exploration) and exploration >= 0):
             raise ValueError(f"exploration: expected a finite number >= 0, got {exploration!r}")
+        if drift_dimension is not None and drift_dimension not in space.names:
+            raise ValueError(f"drift_dimension: expected None or one of {list(space.names)}, got {drift_dimension!r}")
+        if isinstance(max_drift_rate, bool) or not isinstance(max_drift_rate, (int, float)) or not (
+                math.isfinite(max_drift_rate) and max_drift_rate > 0):
+            raise ValueError(f"max_drift_rate: expected a finite number > 0 (unit per second), got {max_drift_rate!r}")
+        if isinstance(drift_grid, bool) or not isinstance(drift_grid, int) or drift_grid < 3 or drift_grid % 2 == 0:
+            raise ValueError(f"drift_grid: expected an odd integer >= 3 (so that 0 is on it), got {drift_grid!r}")
         self.seed = int(seed)
         self.convergence = convergence
+        self.exploration = float(exploration)
+        self.drift_dimension = drift_dimension
+        self.max_drift_rate = float(max_drift_rate)
         self._budget = n_points
         dims = len(space.dimensions)
+        self._n_candidates = candidates
 
         design = []
         for k, point in enumerate(initial_points):
@@ -631,20 +716,43 @@ class BayesianSearch(_Record):
         )
         self._all_stderrs: list[float] = []
         self._model = None
-        self._history: list[np.ndarray] = []
+        self._history: list[tuple[np.ndarray, float | None]] = []
         self._warm_count = len(warm)
+
+        # Drift model state (all results, warm start first, in order).
+        self._axis = space.names.index(drift_dimension) if drift_dimension is not None else -1
+        self._rate_grid = np.linspace(-1.0, 1.0, drift_grid) * self.max_drift_rate
+        self._all_units: list[np.ndarray] = []
+        self._all_values: list[float] = []
+        self._all_clocks: list[float | None] = []
+        self._drift_model = None  # the GP fitted on drift-free coordinates, when in drift mode
+        self._drift_kernel = None  # its fitted kernel (without the white-noise term)
+        self._drift_noise = 0.0  # its learned white-noise level (normalised units)
+        self._rate_unit = 0.0  # estimated rate, unit-cube width per second
+        self._proposal: dict[float | None, np.ndarray] = {}
+
         for k, item in enumerate(warm):
             try:
                 unit = self._check_result(item.point, item.value, item.stderr)
+                clock = self._check_clock(item.clock_s)
             except ValueError as exc:
                 raise ValueError(f"warm_start[{k}]: {exc}") from exc
-            self._feed(unit, float(item.value), float(item.stderr), fit=(k == len(warm) - 1))
+            self._feed(unit, float(item.value), float(item.stderr), clock, fit=(k == len(warm) - 1))
 
     # -- adapter ------------------------------------------------------------------------
 
-    def _feed(self, unit: np.ndarray, value: float, stderr: float, fit: bool) -> None:
+    def _drift_ready(self) -> bool:
+        return (self._axis >= 0 and len(self._all_clocks) >= _DRIFT_MIN_RESULTS
+                and all(clock is not None for clock in self._all_clocks))
+
+    def _feed(self, unit: np.ndarray, value: float, stderr: float, clock: float | None, fit: bool) -> None:
         self._all_stderrs.append(stderr)
-        if fit:
+        self._all_units.append(unit)
+        self._all_values.append(value)
+        self._all_clocks.append(clock)
+        self._proposal.clear()
+        drift = fit and self._drift_ready()
+        if fit and not drift:
             scale = float(np.std(np.array(self._optimizer.yi + [-value], dtype=float)))
             # sklearn's normalize_y divides y by its std; alpha is added in those units.
             scale = scale if scale > 0.0 else 1.0
@@ -652,8 +760,12 @@ class BayesianSearch(_Record):
             self._optimizer.base_estimator_.set_params(alpha=alpha)
         with warnings.catch_warnings():
             warnings.filterwarnings("ignore", message="The objective has been evaluated at this point before")
-            self._optimizer.tell([float(u) for u in unit], -value, fit=fit)
-        if fit:
+            self._optimizer.tell([float(u) for u in unit], -value, fit=fit and not drift)
+        if drift:
+            self._fit_drift()
+        elif fit:
+            self._drift_model = None
+            self._rate_unit = 0.0
             self._model = self._optimizer.models[-1]
             if len(self._all_stderrs) >= _WARM_HYPERPARAMETERS_AFTER:
                 # Start the next fit from these hyperparameters with a single L-BFGS run:
@@ -662,64 +774,194 @@ class BayesianSearch(_Record):
                 signal = fitted.k1 if hasattr(fitted, "k1") and hasattr(fitted.k1, "k1") else fitted
                 self._optimizer.base_estimator_.set_params(kernel=signal, n_restarts_optimizer=0)
 
-    def _in_design(self) -> bool:
-        return self.n_told < len(self._design)
+    # -- drift model --------------------------------------------------------------------
 
-    def _predict(self, units: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        mean, std = self._model.predict(units, return_std=True)
-        return -np.asarray(mean, dtype=float), np.asarray(std, dtype=float)
+    def _elapsed(self) -> np.ndarray:
+        clocks = np.array(self._all_clocks, dtype=float)
+        return clocks - clocks[0]
+
+    def _shifted(self, units: np.ndarray, elapsed: np.ndarray, rate_unit: float) -> np.ndarray:
+        """Drift-free coordinates ``u + r (t - t_first)`` along the drift axis."""
+        shifted = np.array(units, dtype=float, copy=True)
+        shifted[:, self._axis] += rate_unit * elapsed
+        return shifted
+
+    def _fit_drift(self) -> None:
+        units = np.array(self._all_units)
+        targets = -np.array(self._all_values)
+        elapsed = self._elapsed()
+        scale = float(np.std(targets))
+        # sklearn's normalize_y divides y by its std; alpha is added in those units.
+        scale = scale if scale > 0.0 else 1.0
+        alpha = np.array(self._all_stderrs) ** 2 / scale**2 + 1e-10
+        normalised = (targets - np.mean(targets)) / scale
+        width = float(self.space.dimensions[self._axis].width)
+        if self._drift_kernel is None:
+            # First drift fit: hyperparameters from the stationary model (rate 0).
+            self._fit_gp(units, targets, alpha, warm=False)
+        rates = self._rate_grid / width
+        scores = np.array([self._log_likelihood(units, elapsed, rate, normalised, alpha) for rate in rates])
+        best = int(np.argmax(scores))
+        rate = float(rates[best])
+        step = float(rates[1] - rates[0])
+        refined = optimize.minimize_scalar(
+            lambda r: -self._log_likelihood(units, elapsed, r, normalised, alpha),
+            bounds=(max(rates[0], rate - step), min(rates[-1], rate + step)), method="bounded",
+            options={"xatol": 1e-3 * step},
+        )
+        # The refine may only improve on the grid: a flat likelihood keeps the grid's rate (0).
+        if refined.success and -refined.fun > scores[best] + 1e-9:
+            rate = float(refined.x)
+        self._rate_unit = rate
+        self._fit_gp(self._shifted(units, elapsed, rate), targets, alpha,
+                     warm=len(self._all_values) >= _WARM_HYPERPARAMETERS_AFTER)
+
+    def _fit_gp(self, coordinates: np.ndarray, targets: np.ndarray, alpha: np.ndarray, warm: bool) -> None:
+        model = clone(self._regressor).set_params(alpha=alpha)
+        if warm and self._drift_kernel is not None:
+            model.set_params(kernel=self._drift_kernel, n_restarts_optimizer=0)
+        with warnings.catch_warnings():
+            # Hyperparameters at their bounds are expected (a flat axis, a noise-free run).
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            model.fit(coordinates, targets)
+        self._drift_model = model
+        self._model = model
+        fitted = model.kernel_
+        self._drift_kernel = fitted.k1 if hasattr(fitted, "k1") and hasattr(fitted.k1, "k1") else fitted
+        self._drift_noise = float(model.noise_ or 0.0)
+
+    def _log_likelihood(self, units: np.ndarray, elapsed: np.ndarray, rate_unit: float,
+                        normalised: np.ndarray, alpha: np.ndarray) -> float:
+        """GP log marginal likelihood of the normalised targets at a drift rate (kernel held fixed)."""
+        coordinates = self._shifted(units, elapsed, rate_unit)
+        covariance = self._drift_kernel(coordinates)
+        covariance[np.diag_indices_from(covariance)] += alpha + self._drift_noise
+        try:
+            factor = linalg.cholesky(covariance, lower=True)
+        except linalg.LinAlgError:
+            return -math.inf
+        weights = linalg.cho_solve((factor, True), normalised)
+        return float(-0.5 * normalised @ weights - np.sum(np.log(np.diag(factor)))
+                     - 0.5 * len(normalised) * math.log(2 * math.pi))
+
+    @property
+    def drift_rate(self) -> float:
+        """Estimated drift rate of ``drift_dimension`` (its unit per second; 0 until estimated).
+
+        Sign convention: ``true = set-point + offset0 + drift_rate * t``.
+        """
+        if self._drift_model is None:
+            return 0.0
+        return float(self._rate_unit * self.space.dimensions[self._axis].width)
+
+    def _now(self, clock_s: float | None) -> float | None:
+        """The query clock: ``clock_s``, else the last result's clock."""
+        clock = self._check_clock(clock_s)
+        if self._drift_model is None:
+            return None
+        return clock if clock is not None else self._all_clocks[-1]
+
+    def _query(self, units: np.ndarray, now: float | None) -> np.ndarray:
+        """Model coordinates of set-points (unit cube) queried at clock ``now``."""
+        if self._drift_model is None or now is None:
+            return units
+        elapsed = np.full(len(units), now - self._all_clocks[0])
+        return self._shifted(units, elapsed, self._rate_unit)
+
+    def _measured_now(self, now: float | None) -> np.ndarray:
+        """Measured set-points moved to where they stand at clock ``now``, clipped to the box."""
+        if self._drift_model is None or now is None:
+            return np.array(self._optimizer.Xi, dtype=float)
+        units = np.array(self._all_units)
+        elapsed = now - np.array(self._all_clocks, dtype=float)
+        moved = self._shifted(units, -elapsed, self._rate_unit)
+        return np.clip(moved, 0.0, 1.0)
 
     # -- interface ----------------------------------------------------------------------
 
-    def ask(self) -> dict[str, float]:
-        """The next design point, then the surrogate's expected-improvement proposal."""
+    def _in_design(self) -> bool:
+        return self.n_told < len(self._design)
+
+    def _predict(self, units: np.ndarray, now: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+        mean, std = self._model.predict(self._query(units, now), return_std=True)
+        return -np.asarray(mean, dtype=float), np.asarray(std, dtype=float)
+
+    def ask(self, *, clock_s: float | None = None) -> dict[str, float]:
+        """The next design point, then the surrogate's expected-improvement proposal.
+
+        ``clock_s`` (s) is the rig clock at which the point will be measured (default: the last
+        result's clock); used only in drift mode.
+        """
+        now = self._now(clock_s)
         if self._in_design():
             return self.space.from_unit(self._design[self.n_told])
-        with warnings.catch_warnings():
-            # Re-measuring a point is legitimate under noise.
-            warnings.filterwarnings("ignore", message="The objective has been evaluated at this point before")
-            unit = self._optimizer.ask()
-        return self.space.from_unit(unit)
+        if self._drift_model is None:
+            with warnings.catch_warnings():
+                # Re-measuring a point is legitimate under noise.
+                warnings.filterwarnings("ignore", message="The objective has been evaluated at this point before")
+                unit = self._optimizer.ask()
+            return self.space.from_unit(unit)
+        if now not in self._proposal:
+            self._proposal[now] = self._propose(now)
+        return self.space.from_unit(self._proposal[now])
 
-    def tell(self, point: Mapping[str, float], value: float, stderr: float) -> None:
-        """Record a result (value maximised); refits the surrogate once the design is done."""
+    def _propose(self, now: float) -> np.ndarray:
+        dims = len(self.space.dimensions)
+        rng = np.random.default_rng([self.seed, 2, len(self._all_values)])
+        candidates = qmc.Sobol(d=dims, scramble=True, rng=rng).random(self._n_candidates)
+        incumbent = float(np.min(self._model.predict(self._query(self._measured_now(now), now))))
+        improvement = _gaussian_ei()(self._query(candidates, now), self._model, y_opt=incumbent, xi=self.exploration)
+        return candidates[int(np.argmax(improvement))]
+
+    def tell(self, point: Mapping[str, float], value: float, stderr: float, *,
+             clock_s: float | None = None) -> None:
+        """Record a result (value maximised); refits the surrogate once the design is done.
+
+        ``clock_s`` (s) is the rig clock at the middle of the measurement; used in drift mode.
+        """
         unit = self._check_result(point, value, stderr)
+        clock = self._check_clock(clock_s)
         self._store(unit, value, stderr)
-        self._feed(unit, float(value), float(stderr), fit=not self._in_design())
+        self._feed(unit, float(value), float(stderr), clock, fit=not self._in_design())
         if self._model is not None:
-            self._history.append(self._recommend_unit()[0])
+            now = self._now(None)
+            self._history.append((self._recommend_unit(now)[0], now))
 
-    def _recommend_unit(self) -> tuple[np.ndarray, float, float]:
+    def _recommend_unit(self, now: float | None) -> tuple[np.ndarray, float, float]:
         # Only measured points are eligible: where the landscape is flat (the velocity axis near
         # the 2*pi point) the argmax of the mean over the whole box drifts to an edge the
         # surrogate extrapolates to, and a noisy edge is the worst place to leave a rig.
         # Among them, the best lower bound (mean - std) prefers a well-surrounded point to an
         # isolated lucky one.
-        evaluated = np.array(self._optimizer.Xi, dtype=float)
-        mean, std = self._predict(evaluated)
+        evaluated = self._measured_now(now)
+        mean, std = self._predict(evaluated, now)
         best = int(np.argmax(mean - std))
         return evaluated[best], float(mean[best]), float(std[best])
 
-    def recommend(self) -> Recommendation:
+    def recommend(self, *, clock_s: float | None = None) -> Recommendation:
         """The evaluated point with the best surrogate lower bound (posterior mean - std).
 
-        Before the surrogate is fitted (during the initial design) the best observed result.
+        In drift mode each evaluated point is taken where it stands at ``clock_s`` (default:
+        the last result's clock). Before the surrogate is fitted (during the initial design)
+        the best observed result.
         """
+        now = self._now(clock_s)
         if self._model is None:
             return self._best_observed()
-        unit, value, stderr = self._recommend_unit()
+        unit, value, stderr = self._recommend_unit(now)
         return Recommendation(self.space.from_unit(unit), value, stderr)
 
-    def expected_improvement(self) -> float:
+    def expected_improvement(self, *, clock_s: float | None = None) -> float:
         """Largest expected improvement over the candidate set (value's unit; inf before a fit).
 
         The incumbent is the best posterior mean at an evaluated point, not the best noisy
         observation.
         """
+        now = self._now(clock_s)
         if self._model is None:
             return math.inf
-        incumbent = float(np.max(self._predict(np.array(self._optimizer.Xi, dtype=float))[0]))
-        mean, std = self._predict(self._candidates)
+        incumbent = float(np.max(self._predict(self._measured_now(now), now)[0]))
+        mean, std = self._predict(self._candidates, now)
         std = np.maximum(std, 1e-12)
         z = (mean - incumbent) / std
         improvement = (mean - incumbent) * special.ndtr(z) + std * np.exp(-0.5 * z**2) / math.sqrt(2 * math.pi)
@@ -729,30 +971,41 @@ class BayesianSearch(_Record):
         """True once ``n_points`` results have been told (never without a budget)."""
         return self._budget is not None and self.n_told >= self._budget
 
-    def converged(self) -> bool:
-        """The :class:`Convergence` test on the surrogate."""
+    def converged(self, *, clock_s: float | None = None) -> bool:
+        """The :class:`Convergence` test on the surrogate (at ``clock_s`` in drift mode).
+
+        In drift mode the recommendations of the last tells are moved to ``clock_s`` with the
+        present rate before their distances are compared.
+        """
+        now = self._now(clock_s)
         rule = self.convergence
         if self._model is None or self.n_told - len(self._design) < rule.min_told:
             return False
         if len(self._history) < rule.stable_tells:
             return False
-        latest = self._history[-1]
-        recent = np.array(self._history[-rule.stable_tells :])
-        if np.max(np.linalg.norm(recent - latest, axis=1)) > rule.stable_distance:
+        recent = []
+        for unit, then in self._history[-rule.stable_tells:]:
+            moved = np.array(unit, dtype=float, copy=True)
+            if now is not None and then is not None:
+                moved[self._axis] -= self._rate_unit * (now - then)
+            recent.append(moved)
+        recent = np.array(recent)
+        if np.max(np.linalg.norm(recent - recent[-1], axis=1)) > rule.stable_distance:
             return False
-        if self.expected_improvement() >= rule.expected_improvement:
+        if self.expected_improvement(clock_s=clock_s) >= rule.expected_improvement:
             return False
-        return self.upper_bound_gap() < rule.upper_bound_gap
+        return self.upper_bound_gap(clock_s=clock_s) < rule.upper_bound_gap
 
-    def upper_bound_gap(self) -> float:
+    def upper_bound_gap(self, *, clock_s: float | None = None) -> float:
         """Largest ``mean + k std`` over candidates minus the recommended mean (inf before a fit).
 
         ``k`` is ``convergence.upper_bound_sigmas``; value's unit.
         """
+        now = self._now(clock_s)
         if self._model is None:
             return math.inf
-        _, value, _ = self._recommend_unit()
-        mean, std = self._predict(self._candidates)
+        _, value, _ = self._recommend_unit(now)
+        mean, std = self._predict(self._candidates, now)
         return float(np.max(mean + self.convergence.upper_bound_sigmas * std) - value)
 
 
