@@ -7,6 +7,7 @@ calibrate  full calibration of a rig
 retune     check the last good calibration; search a narrowed box if it no longer holds
 dry-run    start the simulated rig, calibrate, thermal step, retune, compare with the truth
 report     summary and figure of a run folder
+track      retune on a schedule (overnight drift following), one run folder per cycle
 
 Exit codes
 ----------
@@ -367,6 +368,40 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
+def _cmd_track(ns: argparse.Namespace) -> int:
+    from autotune import runner
+
+    def body() -> int:
+        config = load_config(ns.config)
+        out = Path(ns.out) if ns.out else _default_run_dir("track")
+        if out.exists() and any(out.iterdir()):
+            raise JournalError(f"{out} is not empty; choose another --out")
+        print(CAUTION, file=sys.stderr)
+        stop = _install_stop_handlers()
+        exit_code = EXIT_OK
+        with _connect(config) as rig:
+            cycle = 0
+            while ns.cycles is None or cycle < ns.cycles:
+                run_dir = out / f"cycle-{cycle:04d}"
+                handler = _log_to_run_folder(run_dir)
+                try:
+                    result = runner.retune(rig, config, run_dir, stop=stop)
+                finally:
+                    logging.getLogger().removeHandler(handler)
+                    handler.close()
+                print(_summary(result), flush=True)
+                exit_code = _exit_for_result(result)
+                cycle += 1
+                if ns.cycles is not None and cycle >= ns.cycles:
+                    break
+                # Interruptible wait: a signal during the pause ends tracking at once.
+                if stop.wait(ns.interval_s):
+                    raise Interrupted("stopped by signal between cycles")
+        return exit_code
+
+    return _guarded(body)
+
+
 def _cmd_report(ns: argparse.Namespace) -> int:
     from autotune import report
 
@@ -379,6 +414,20 @@ def _cmd_report(ns: argparse.Namespace) -> int:
 
 
 # -- parser ------------------------------------------------------------------------------
+
+def _at_least_one(text: str) -> int:
+    value = int(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected an integer >= 1, got {text!r}")
+    return value
+
+
+def _non_negative_seconds(text: str) -> float:
+    value = float(text)
+    if not (value >= 0.0 and value < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a finite number of seconds >= 0, got {text!r}")
+    return value
+
 
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -417,6 +466,16 @@ def _parser() -> argparse.ArgumentParser:
                      help="cavity frequency step before the retune (Hz, default 15000)")
     dry.add_argument("--no-retune", action="store_true", help="stop after the calibration")
     dry.set_defaults(handler=_cmd_dry_run)
+
+    track = sub.add_parser("track", help="retune on a schedule, one run folder per cycle "
+                                         "(acts on hardware)")
+    track.add_argument("--config", required=True, help="calibrate/retune TOML file")
+    track.add_argument("--interval-s", type=_non_negative_seconds, default=1800.0,
+                       help="wall-clock pause between cycles (s, default 1800)")
+    track.add_argument("--cycles", type=_at_least_one, help="stop after this many cycles (default: until "
+                                                  "SIGINT/SIGTERM)")
+    track.add_argument("--out", help="folder for the cycles' run folders")
+    track.set_defaults(handler=_cmd_track)
 
     rep = sub.add_parser("report", help="summary and figure of a run folder")
     rep.add_argument("run_dir", help="a run folder")
