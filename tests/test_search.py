@@ -137,7 +137,7 @@ def test_bayesian_resumes_from_retold_results():
     assert rebuilt.recommend() == original.recommend()
 
 
-@pytest.mark.parametrize("seed", [0, 1])
+@pytest.mark.parametrize("seed", [0, pytest.param(1, marks=pytest.mark.slow)])
 def test_bayesian_recommends_global_peak_not_ridge(seed):
     """On a noisy two-peak landscape, 40 tells from the nominal point recommend the global peak."""
     search = BayesianSearch(RIG_SPACE, seed=seed, initial_points=[NOMINAL])
@@ -148,6 +148,7 @@ def test_bayesian_recommends_global_peak_not_ridge(seed):
     assert best.value == pytest.approx(_rig_value(best.point), abs=max(0.05, 3 * best.stderr))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("seed", [1, 4])
 def test_bayesian_does_not_converge_on_the_ridge(seed):
     """Without the nominal point, converged() is never true while the recommendation is off the peak."""
@@ -171,7 +172,7 @@ def test_bayesian_converges_on_flat_function():
 
 
 def test_bayesian_warm_start_informs_the_first_recommendation():
-    """Warm-start results near the peak make the first recommendation the peak, with n_told still 0."""
+    """Warm-start results make the first recommendation the warm point nearest the peak, with n_told still 0."""
     rng = np.random.default_rng(0)
     warm = []
     for _ in range(15):
@@ -179,7 +180,16 @@ def test_bayesian_warm_start_informs_the_first_recommendation():
         warm.append(Observation(point, _rig_value(point), 0.01))
     search = BayesianSearch(RIG_SPACE, seed=0, n_initial_points=0, warm_start=warm)
     assert search.n_told == 0
-    assert _at_peak(search.recommend().point)
+    best = search.recommend()
+    # Only measured points are eligible (commit 347f415): the best the warm set allows is the
+    # warm point of highest true value on the analytic landscape (here also the nearest to
+    # PEAK in units of the peak's widths).
+    truest = max(warm, key=lambda item: _rig_value(item.point))
+    assert best.point == pytest.approx(truest.point)
+    widths = np.array([12.0, 5e3])
+    distances = [np.hypot(*((np.array([o.point["velocity"], o.point["detuning"]]) - PEAK) / widths)) for o in warm]
+    assert best.point == pytest.approx(warm[int(np.argmin(distances))].point)
+    assert best.value == pytest.approx(_rig_value(best.point), abs=3 * max(best.stderr, 0.01))
     # The first ask is the surrogate's own proposal, not a space-filling design point.
     assert RIG_SPACE.contains(search.ask())
 
