@@ -18,6 +18,13 @@ telling it the journal's results in their original order: the next ``ask()`` the
 on the plan (the next grid or line-scan point, the next random point, or a point proposed
 by a surrogate refitted on the same data). ``ask()`` does not advance anything by itself;
 asking twice without a tell gives the same point.
+
+Rig clocks
+----------
+Every method takes an optional keyword ``clock_s`` (rig clock, s): on ``tell`` the middle of
+that measurement, on ``ask``/``recommend``/``converged`` "now". Only a
+:class:`BayesianSearch` with a ``drift_dimension`` uses them (the others check and ignore
+them); to resume it, re-tell the results with their original clocks.
 """
 
 from __future__ import annotations
@@ -580,9 +587,9 @@ class BayesianSearch(_Record):
     one of them, so a drift-free run keeps ``r = 0`` unless the data argue otherwise), then a
     bounded scalar refine around the best grid rate. The kernel hyperparameters of the
     previous fit are held fixed during that search (one Cholesky factorisation per rate);
-    they are refitted afterwards on the corrected coordinates. Until ``_DRIFT_MIN_RESULTS``
-    results carry clocks (or whenever one result lacks a clock) the search is exactly the
-    stationary one.
+    they are refitted afterwards on the corrected coordinates. Until 8 results (warm start
+    included) carry clocks, or whenever one result lacks a clock, the search is exactly the
+    stationary one (the skopt Optimizer path) and :attr:`drift_rate` is 0.
 
     Proposals (drift mode) maximise skopt's ``gaussian_ei`` over a scrambled Sobol sample of
     the box at ``t_now``, redrawn (from ``seed`` and the number of results) at every tell. The
