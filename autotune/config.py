@@ -122,6 +122,8 @@ class SearchConfig:
     coordinate_points_per_dimension: int
     coordinate_rounds: int
     exploration: float
+    drift_compensation: bool
+    max_drift_hz_per_s: float
 
 
 @dataclass(frozen=True)
@@ -239,6 +241,14 @@ class _Table:
         if isinstance(value, bool) or not isinstance(value, int):
             raise ConfigError(self.source, self._key(name), "an integer", value)
         _check_range(self.source, self._key(name), value, low, high, False)
+        return value
+
+    def boolean(self, name: str, default: object = None) -> bool:
+        if default is None:
+            default = _REQUIRED
+        value = self._raw(name, default)
+        if not isinstance(value, bool):
+            raise ConfigError(self.source, self._key(name), "true or false", value)
         return value
 
     def string(self, name: str, default: object = None, *, choices: tuple[str, ...] = ()) -> str:
@@ -362,6 +372,9 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
                                                     high=200),
         coordinate_rounds=s_t.integer("coordinate_rounds", 3, low=1, high=50),
         exploration=s_t.number("exploration", 0.01, low=0.0, high=1.0),
+        drift_compensation=s_t.boolean("drift_compensation", True),
+        max_drift_hz_per_s=s_t.number("max_drift_hz_per_s", 3.0, low=0.0, high=1e4,
+                                      low_open=True),
     )
     s_t.finish()
 

@@ -106,6 +106,7 @@ class StageOutcome:
     rig_time_s: float
     accepted: bool
     check: InversionEstimate | None = None
+    drift_rate_hz_per_s: float = 0.0
 
 
 def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
@@ -207,13 +208,16 @@ def retune_box(config: RunConfig, centre: Mapping[str, float],
 def build_strategy(kind: str, space: SearchSpace, config: RunConfig, *, seed: int,
                    n_initial_points: int, max_points: int,
                    initial_points: Sequence[Mapping[str, float]] = (),
-                   warm_start: Sequence[tuple[Mapping[str, float], float, float]] = ()) -> Strategy:
+                   warm_start: Sequence[tuple[Mapping[str, float], float, float, float]] = ()
+                   ) -> Strategy:
     """The configured strategy over ``space``, with the settings of ``config.search``."""
     search = config.search
     if kind == "bayesian":
+        drift = "detuning" if search.drift_compensation and "detuning" in space.names else None
         return make_strategy("bayesian", space, seed=seed, initial_points=initial_points,
                              n_initial_points=n_initial_points, warm_start=warm_start,
-                             exploration=search.exploration)
+                             exploration=search.exploration, drift_dimension=drift,
+                             max_drift_rate=search.max_drift_hz_per_s)
     if kind == "grid":
         return make_strategy("grid", space, seed=seed,
                              points_per_dimension=search.grid_points_per_dimension)
@@ -242,6 +246,20 @@ class _Measurement:
     setpoints: dict[str, float]
     shots_per_phase: int
     counts: dict[tuple[str, int], tuple[int, int, int]] = field(default_factory=dict)
+    t_first: float | None = None
+    t_last: float | None = None
+
+    def note_times(self, t_start: float, t_end: float) -> None:
+        """Widen the measurement's span on the rig clock to include one acquisition."""
+        self.t_first = t_start if self.t_first is None else min(self.t_first, t_start)
+        self.t_last = t_end if self.t_last is None else max(self.t_last, t_end)
+
+    @property
+    def clock_s(self) -> float | None:
+        """Mid-time of the measurement on the rig clock (s); the drift model dates it so."""
+        if self.t_first is None or self.t_last is None:
+            return None
+        return 0.5 * (self.t_first + self.t_last)
 
 
 class Session:
@@ -277,6 +295,7 @@ class Session:
         self.tally = _Tally()
         self.phases = ramsey_phases(config.measurement.ramsey_phases)
         self.current: dict[str, float] = {}
+        self.clock = 0.0
         self.log = _log.bind(run=journal.run_dir.name)
 
     # -- recording -----------------------------------------------------------------------
@@ -334,6 +353,7 @@ class Session:
         """Ask the rig which set-points are in force."""
         status = self._call("status", self.rig.status)
         self.current = {k: float(v) for k, v in status.setpoints.items()}
+        self.clock = float(status.clock)
         return dict(self.current)
 
     def move_to(self, target: Mapping[str, float], reason: str) -> None:
@@ -350,6 +370,7 @@ class Session:
                 self.limits[name].check(name, value)
             applied = self._call("apply", lambda s=step: self.rig.apply(s))
             self.current = {k: float(v) for k, v in applied.setpoints.items()}
+            self.clock = float(applied.clock)
             self.journal.append("move", setpoints=step, applied=self.current, clock=applied.clock,
                                 reason=reason)
 
@@ -380,6 +401,8 @@ class Session:
                     f, p, m.shots_per_phase))
                 counts = (int(acq.counts.e), int(acq.counts.g), int(acq.counts.i))
                 m.counts[(field_state, j)] = counts
+                m.note_times(float(acq.t_start), float(acq.t_end))
+                self.clock = float(acq.t_end)
                 self.tally.shots += int(acq.shots)
                 self.tally.rig_time_s += float(acq.t_end) - float(acq.t_start)
                 self.journal.append(
@@ -394,7 +417,7 @@ class Session:
             confidence=cfg.confidence, seed=seed, resamples=cfg.resamples,
         )
         self.journal.append("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
-                            estimate=estimate.to_dict())
+                            clock_s=m.clock_s, estimate=estimate.to_dict())
         self.log.info("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
                       inversion=round(estimate.inversion, 4),
                       stderr=round(estimate.inversion_stderr, 4))
@@ -427,6 +450,7 @@ def _replay(records: Iterable[Mapping[str, Any]]) -> tuple[
             c = rec["counts"]
             m.counts[(rec["field"], int(rec["phase_index"]))] = (int(c["e"]), int(c["g"]),
                                                                    int(c["i"]))
+            m.note_times(float(rec["t_start"]), float(rec["t_end"]))
         elif kind == "estimate":
             estimates.append(rec)
     return measurements, estimates, header
@@ -521,8 +545,9 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         if check_estimate is None:
             m = measurement("check", 0, check_at, long_shots)
             check_estimate = session.measure(m, child_seed(seed, stage_code, label_code["check"]))
+        check_clock = measurements[("check", 0)].clock_s if ("check", 0) in measurements else None
         warm_start.append((dict(check_at), check_estimate.inversion,
-                           check_estimate.inversion_stderr))
+                           check_estimate.inversion_stderr, check_clock))
         if still_good_above is not None and check_estimate.inversion_high >= still_good_above:
             session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
@@ -542,7 +567,8 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
                              key=lambda r: int(r["point"]))
     for rec in point_estimates:
         est = rec["estimate"]
-        strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]))
+        strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]),
+                      clock_s=rec.get("clock_s"))
     n_points = len(point_estimates)
     per_point = 2 * len(session.phases) * shots
     per_point_time = per_point / session.repetition_rate_hz
@@ -562,24 +588,27 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
             if strategy.exhausted():
                 stop_reason = "the strategy's design is finished"
                 break
-            proposal = {k: float(v) for k, v in strategy.ask().items()}
+            proposal = {k: float(v) for k, v in strategy.ask(clock_s=session.clock).items()}
             session.journal.append("proposal", point=n_points, setpoints=proposal,
                                    strategy=strategy.name)
             pending = measurement("point", n_points, proposal, shots)
         estimate = session.measure(pending, child_seed(seed, stage_code, label_code["point"],
                                                        n_points))
-        strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr)
+        strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr,
+                      clock_s=pending.clock_s)
         n_points += 1
         if observer is not None:
             observer(n_points, strategy, session)
-        if n_points >= budget.min_points and strategy.converged():
+        if n_points >= budget.min_points and strategy.converged(clock_s=session.clock):
             stop_reason = "the strategy's convergence test passed"
     session.decide("stop_search", stop_reason, points=n_points)
 
-    recommendation = strategy.recommend()
+    recommendation = strategy.recommend(clock_s=session.clock)
     chosen = {k: float(v) for k, v in recommendation.point.items()}
+    drift_rate = float(getattr(strategy, "drift_rate", 0.0))
     session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
-                   setpoints=chosen, predicted=recommendation.value)
+                   setpoints=chosen, predicted=recommendation.value,
+                   drift_rate_hz_per_s=drift_rate)
     existing = measurements.get(("verify", 0))
     if existing is not None:
         chosen = existing.setpoints
@@ -594,5 +623,5 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     session.decide(status, f"verified inversion {final.inversion:.3f} vs acceptance "
                    f"{config.min_inversion:.3f}", setpoints=chosen)
     return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
-                        session.tally.rig_time_s, accepted, check_estimate)
+                        session.tally.rig_time_s, accepted, check_estimate, drift_rate)
 

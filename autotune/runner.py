@@ -130,6 +130,7 @@ def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: flo
         "rig_clock_elapsed_s": clock_end - clock_start,
         "wall_time_s": wall_s,
         "stop_reason": outcome.stop_reason,
+        "drift_rate_hz_per_s": outcome.drift_rate_hz_per_s,
         "run_dir": str(run_dir),
         "estimate": est.to_dict(),
     }
