@@ -44,6 +44,7 @@ import multiprocessing
 import os
 import platform
 import resource
+import subprocess
 import sys
 import tempfile
 import time
@@ -102,9 +103,6 @@ THERMAL_STEP_HZ = 15e3
 
 #: Rig time between thermal steps of the long run, s.
 NIGHT_THERMAL_EVERY_S = 7200.0
-
-_log = structlog.get_logger(__name__)
-
 
 # --------------------------------------------------------------------------------------------
 # Plan
@@ -172,9 +170,9 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
     if mode == "full":
         plan = StudyPlan("full", scenarios=20, workers=workers)
     elif mode == "quick":
+        # The overhead study stops at 100 points: the steps beyond cost most of its time.
         plan = StudyPlan("quick", scenarios=4, night_steps=100,
-                         overhead_points=(10, 25, 50, 100, 150, 200), overhead_window=3,
-                         workers=workers)
+                         overhead_points=(10, 25, 50, 100), overhead_window=3, workers=workers)
     elif mode == "tiny":
         plan = StudyPlan(
             "tiny", scenarios=1, night_steps=8, overhead_points=(10, 16), overhead_window=2,
@@ -247,6 +245,7 @@ def strategy_configs(base: RunConfig, plan: StudyPlan) -> dict[str, RunConfig]:
 def _settings_of(config: RunConfig) -> dict[str, Any]:
     s, m = config.search, config.measurement
     settings: dict[str, Any] = {
+        "box": {sp.name: [sp.search_min, sp.search_max] for sp in config.setpoints},
         "shots_per_phase": m.shots_per_phase, "ramsey_phases": m.ramsey_phases,
         "verification_shots_per_phase": m.verification_shots_per_phase,
         "max_points": s.max_points, "max_shots": s.max_shots, "max_rig_time_s": s.max_rig_time_s,
@@ -309,7 +308,7 @@ def _local_rig(rig_config_path: str, perturbation: Mapping[str, Mapping[str, flo
 class _Follower:
     """Observer: the truth at the recommendation after every told point."""
 
-    def __init__(self, rig: Any, per_point_shots: int) -> None:
+    def __init__(self, rig: Any) -> None:
         self.rig = rig
         self.clock_start = rig.sim.clock
         self.reached: dict[str, float] | None = None
@@ -368,7 +367,7 @@ def _calibration_job(job: Mapping[str, Any]) -> dict[str, Any]:
     record: dict[str, Any] = {"scenario": scenario["index"], "strategy": config.search.strategy}
     with tempfile.TemporaryDirectory(prefix="autotune-bench-") as tmp:
         store = Path(tmp) / "last-good.json"
-        follower = _Follower(rig, _per_point_shots(config))
+        follower = _Follower(rig)
         clock_start, wall = rig.sim.clock, time.perf_counter()
         result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=store,
                                   observer=follower)
@@ -380,7 +379,7 @@ def _calibration_job(job: Mapping[str, Any]) -> dict[str, Any]:
             else:
                 rig.thermal_step(THERMAL_STEP_HZ)
                 before = _final_truth(rig, result["setpoints"])
-                follower = _Follower(rig, _per_point_shots(config))
+                follower = _Follower(rig)
                 clock_start, wall = rig.sim.clock, time.perf_counter()
                 result = runner.retune(rig, config, Path(tmp) / "retune", store=store,
                                        observer=follower)
@@ -718,7 +717,7 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
         retune = {
             "thermal_step_hz": THERMAL_STEP_HZ, "runs": len(bayes_runs),
             "skipped": len(bayes_runs) - len(done),
-            **{k: v for k, v in _summarise(done, "retune").items()},
+            **_summarise(done, "retune"),
             "shots_over_calibration_q": quantiles(shot_ratios),
             "ratio_after_step_q": quantiles([r["retune"]["ratio_after_step"] for r in done]),
             "still_good": sum(r["retune"]["status"] == "still_good" for r in done),
@@ -735,6 +734,9 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
         "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
                     "platform": platform.platform(), "workers": plan.workers},
         "plan": _jsonable(dataclasses.asdict(plan)),
+        "code": _provenance(),
+        "search_configs": {kind: _jsonable(dataclasses.asdict(cfg.search))
+                           for kind, cfg in configs.items()},
         "config": str(config_path), "rig_config": str(rig_config_path),
         "scenario_ranges": {f"{s}.{k}": list(v) for (s, k), v in SCENARIO_RANGES.items()},
         "scenarios": scenarios,
@@ -779,6 +781,20 @@ def _map(jobs: list[dict[str, Any]], workers: int,
     return results
 
 
+def _provenance() -> dict[str, Any]:
+    """The commit and the modified tracked files of the working tree (results depend on both)."""
+    def git(*args: str) -> str:
+        try:
+            done = subprocess.run(["git", "-C", str(REPO), *args], capture_output=True,
+                                  text=True, timeout=10, check=False)
+        except (OSError, subprocess.TimeoutExpired):
+            return ""
+        return done.stdout.rstrip() if done.returncode == 0 else ""
+    modified = [line[3:] for line in git("status", "--porcelain", "--untracked-files=no")
+                .splitlines() if line]
+    return {"commit": git("rev-parse", "HEAD") or None, "modified_files": modified}
+
+
 def _jsonable(value: Any) -> Any:
     if isinstance(value, Mapping):
         return {str(k): _jsonable(v) for k, v in value.items()}
@@ -815,6 +831,10 @@ def format_table(study: Mapping[str, Any]) -> str:
     lines.append(f"autotune benchmark ({study['mode']} mode, SIMULATED rig, {n} scenarios, "
                  f"wall {study['wall_time_s']:.0f} s, {study['machine']['workers']} workers)")
     lines.append("command: " + study["command"])
+    code = study.get("code") or {}
+    lines.append(f"code: commit {str(code.get('commit'))[:10]}" + (
+        ", with uncommitted changes to " + ", ".join(code["modified_files"])
+        if code.get("modified_files") else ""))
     lines.append("scenarios: uniform draws from the demo rig over " + ", ".join(
         f"{k} [{lo:g}, {hi:g}]" for k, (lo, hi) in study["scenario_ranges"].items()))
     lines.append("")
