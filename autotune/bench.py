@@ -400,7 +400,7 @@ def _oracle_job(job: Mapping[str, Any]) -> dict[str, Any]:
     setpoints = tuple(dataclasses.replace(sp, search_min=best[sp.name] - 1e-6,
                                           search_max=best[sp.name] + 1e-6)
                       for sp in config.setpoints)
-    search = dataclasses.replace(config.search, strategy="grid", grid_points_per_dimension=1,
+    search = dataclasses.replace(config.search, strategy="grid", grid_points_per_dimension=1, refine_points=0,
                                  max_points=1, min_points=1, seed=scenario["search_seed"])
     config = dataclasses.replace(config, setpoints=setpoints, search=search)
     with tempfile.TemporaryDirectory(prefix="autotune-bench-") as tmp:
@@ -629,7 +629,7 @@ def _night_growth(night: dict[str, Any]) -> dict[str, Any]:
     start = points[min(len(points) - 1, max(1, len(points) // 4))]
     end = points[-1]
     tail = [p for p in points if p["steps"] >= start["steps"]]
-    if len(tail) >= 2:
+    if len({p["steps"] for p in tail}) >= 2:
         slope = float(np.polyfit([p["steps"] for p in tail],
                                  [p["traced_current_mib"] * 1024.0 for p in tail], 1)[0])
     else:
