@@ -400,8 +400,12 @@ def _oracle_job(job: Mapping[str, Any]) -> dict[str, Any]:
     setpoints = tuple(dataclasses.replace(sp, search_min=best[sp.name] - 1e-6,
                                           search_max=best[sp.name] + 1e-6)
                       for sp in config.setpoints)
-    search = dataclasses.replace(config.search, strategy="grid", grid_points_per_dimension=1, refine_points=0,
-                                 max_points=1, min_points=1, seed=scenario["search_seed"])
+    changes: dict[str, Any] = {"strategy": "grid", "grid_points_per_dimension": 1,
+                               "max_points": 1, "min_points": 1, "seed": scenario["search_seed"]}
+    if "refine_points" in {f.name for f in dataclasses.fields(config.search)}:
+        # No refinement scan after the search: the oracle pays for the verification only.
+        changes["refine_points"] = 0
+    search = dataclasses.replace(config.search, **changes)
     config = dataclasses.replace(config, setpoints=setpoints, search=search)
     with tempfile.TemporaryDirectory(prefix="autotune-bench-") as tmp:
         result = runner.calibrate(rig, config, Path(tmp) / "oracle",
