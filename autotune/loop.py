@@ -57,6 +57,7 @@ __all__ = [
     "Session",
     "run_stage",
     "retune_box",
+    "quadratic_peak",
 ]
 
 _log = structlog.get_logger(__name__)
@@ -176,6 +177,27 @@ def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
                 for name, value in target.items()
             })
     return steps
+
+
+def quadratic_peak(x: Sequence[float], y: Sequence[float], stderr: Sequence[float]) -> float:
+    """The ``x`` of the peak of a weighted quadratic fit of ``y(x)``, within the scanned range.
+
+    Weights are ``1 / stderr**2``. If the fitted parabola does not open downwards, or its
+    vertex lies outside ``[min(x), max(x)]``, the ``x`` of the best ``y`` is returned instead.
+    """
+    xs = np.asarray(x, dtype=float)
+    ys = np.asarray(y, dtype=float)
+    weights = 1.0 / np.maximum(np.asarray(stderr, dtype=float), 1e-12)
+    best = float(xs[int(np.argmax(ys))])
+    if len(np.unique(xs)) < 3:
+        return best
+    centre, scale = float(np.mean(xs)), float(np.ptp(xs)) or 1.0
+    # np.polyfit weights multiply residuals, so they are 1/sigma (not 1/sigma^2).
+    curvature, slope, _ = np.polyfit((xs - centre) / scale, ys, 2, w=weights)
+    if curvature >= 0.0:
+        return best
+    vertex = centre - scale * slope / (2.0 * curvature)
+    return float(vertex) if xs.min() <= vertex <= xs.max() else best
 
 
 def ramsey_phases(count: int) -> tuple[float, ...]:
@@ -431,6 +453,33 @@ class Session:
                                       arr[:, 2].astype(np.int64), arr[:, 3].astype(np.int64))
 
 
+def _refine_detuning(session: Session, chosen: Mapping[str, float],
+                     box: Mapping[str, tuple[float, float]],
+                     measurement: Callable[..., _Measurement],
+                     estimate_of: Callable[[str, int], InversionEstimate | None],
+                     seed_of: Callable[[int], int]) -> dict[str, float]:
+    """Measure a detuning scan through ``chosen`` and return ``chosen`` moved to its peak."""
+    search = session.config.search
+    low, high = box["detuning"]
+    centre = min(max(chosen["detuning"], low + search.refine_half_width_hz),
+                 high - search.refine_half_width_hz)
+    offsets = np.linspace(-search.refine_half_width_hz, search.refine_half_width_hz,
+                          search.refine_points)
+    xs, ys, es = [], [], []
+    for k, offset in enumerate(offsets):
+        target = {**chosen, "detuning": float(min(max(centre + offset, low), high))}
+        m = measurement("refine", k, target, session.config.measurement.shots_per_phase)
+        estimate = estimate_of("refine", k) or session.measure(m, seed_of(k))
+        xs.append(m.setpoints["detuning"])
+        ys.append(estimate.inversion)
+        es.append(estimate.inversion_stderr)
+    peak = quadratic_peak(xs, ys, es)
+    session.decide("refine", f"detuning scan of {len(xs)} points through the recommendation: "
+                   f"peak at {peak / 1e3:+.2f} kHz (was {chosen['detuning'] / 1e3:+.2f} kHz)",
+                   detunings=xs, inversions=ys)
+    return {**chosen, "detuning": peak}
+
+
 def _replay(records: Iterable[Mapping[str, Any]]) -> tuple[
         dict[tuple[str, int], _Measurement], list[Mapping[str, Any]], dict[str, Any]]:
     """Rebuild measurements, estimates and the stage header from journal records."""
@@ -472,6 +521,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
               still_good_above: float | None = None,
               verification_shots_per_phase: int | None = None,
               observer: Callable[[int, Strategy, Session], None] | None = None,
+              refine: bool = False,
               records: Sequence[Mapping[str, Any]] = ()) -> StageOutcome:
     """Run (or resume) one stage: optional check, search, verification at the recommendation.
 
@@ -490,7 +540,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     initial_points : sequence of set-point dicts
         Points the first design must include (the nominal 2*pi point, the last good one).
     check_at : Mapping, optional
-        Measure here first (retune). If the measured inversion's upper bound reaches
+        Measure here first (retune). If the measured inversion reaches
         ``still_good_above``, stop with status ``"still_good"`` without searching.
     still_good_above : float, optional
         Threshold of the check (inversion units).
@@ -501,6 +551,11 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         Called as ``observer(points_told, strategy, session)`` after every told point
         (benchmark studies follow the recommendation with it; it must not touch the rig's
         set-points).
+    refine : bool
+        After the search, re-measure a short detuning scan through the recommendation
+        (``search.refine_points`` points over +- ``search.refine_half_width_hz``) and move the
+        choice to the peak of a quadratic fit of it: fresh data at one moment, so the choice
+        does not lag behind a cavity drift during a long search.
     records : sequence of journal records
         Records of an earlier, killed attempt of this same stage, to resume from.
     """
@@ -535,7 +590,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
                 return InversionEstimate.from_dict(rec["estimate"])
         return None
 
-    label_code = {"check": 1, "point": 2, "verify": 3}
+    label_code = {"check": 1, "point": 2, "verify": 3, "refine": 4}
     shots = config.measurement.shots_per_phase
     long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
     check_estimate: InversionEstimate | None = None
@@ -548,7 +603,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         check_clock = measurements[("check", 0)].clock_s if ("check", 0) in measurements else None
         warm_start.append((dict(check_at), check_estimate.inversion,
                            check_estimate.inversion_stderr, check_clock))
-        if still_good_above is not None and check_estimate.inversion_high >= still_good_above:
+        if still_good_above is not None and check_estimate.inversion >= still_good_above:
             session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
                            setpoints=dict(check_at))
@@ -609,6 +664,10 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
                    setpoints=chosen, predicted=recommendation.value,
                    drift_rate_hz_per_s=drift_rate)
+    if refine and config.search.refine_points and "detuning" in box and \
+            measurements.get(("verify", 0)) is None:
+        chosen = _refine_detuning(session, chosen, box, measurement, estimate_of,
+                                  lambda k: child_seed(seed, stage_code, label_code["refine"], k))
     existing = measurements.get(("verify", 0))
     if existing is not None:
         chosen = existing.setpoints

@@ -223,7 +223,7 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
             "stage": "calibrate", "box": box,
             "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
             "n_initial_points": s.n_initial_points, "initial_points": [first],
-            "observer": observer,
+            "observer": observer, "refine": True,
         }
 
     return _execute("calibrate", rig, config, run_dir, resume=resume, stop=stop,

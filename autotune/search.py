@@ -559,6 +559,10 @@ def _as_observation(item: Any) -> Observation:
     return Observation(point, value, stderr, clock[0] if clock else None)
 
 
+#: Fraction of the box width (per dimension) within which a point counts as at an edge.
+_EDGE_MARGIN = 0.05
+
+
 class BayesianSearch(_Record):
     """Bayesian optimisation with a noise-aware Gaussian-process surrogate (skopt ask/tell).
 
@@ -940,9 +944,17 @@ class BayesianSearch(_Record):
         # surrogate extrapolates to, and a noisy edge is the worst place to leave a rig.
         # Among them, the best lower bound (mean - std) prefers a well-surrounded point to an
         # isolated lucky one.
+        # When the best of them sits at an edge of the box and an interior point is tied with
+        # it (its mean reaches the best lower bound), the interior point is chosen: on a flat
+        # axis the surrogate cannot tell them apart, and the edge is where it extrapolates.
         evaluated = self._measured_now(now)
         mean, std = self._predict(evaluated, now)
-        best = int(np.argmax(mean - std))
+        lower = mean - std
+        best = int(np.argmax(lower))
+        margin = np.min(np.minimum(evaluated, 1.0 - evaluated), axis=1)
+        interior = (margin >= _EDGE_MARGIN) & (mean >= lower[best])
+        if margin[best] < _EDGE_MARGIN and np.any(interior):
+            best = int(np.flatnonzero(interior)[np.argmax(lower[interior])])
         return evaluated[best], float(mean[best]), float(std[best])
 
     def recommend(self, *, clock_s: float | None = None) -> Recommendation:

@@ -72,3 +72,20 @@ def test_long_move_is_split_evenly() -> None:
 def test_ramsey_phases_are_equally_spaced() -> None:
     """K phases 2 pi j / K (common practice for a fringe scan)."""
     assert ramsey_phases(4) == pytest.approx((0.0, math.pi / 2, math.pi, 3 * math.pi / 2))
+
+
+def test_quadratic_peak_finds_the_vertex_of_a_known_parabola() -> None:
+    """The vertex of y = 0.7 - 2e-9 (x + 3000)^2 is x = -3000 (elementary algebra: -b / 2a)."""
+    from autotune.loop import quadratic_peak
+
+    xs = [-9000.0, -6000.0, -3000.0, 0.0, 3000.0]
+    ys = [0.7 - 2e-9 * (x + 3000.0) ** 2 for x in xs]
+    assert quadratic_peak(xs, ys, [0.01] * 5) == pytest.approx(-3000.0, abs=1e-6)
+
+
+def test_quadratic_peak_falls_back_to_the_best_point() -> None:
+    """A parabola opening upwards, or a vertex outside the scan, gives the best measured x."""
+    from autotune.loop import quadratic_peak
+
+    assert quadratic_peak([0.0, 1.0, 2.0], [0.5, 0.4, 0.6], [0.01] * 3) == 2.0
+    assert quadratic_peak([0.0, 1.0, 2.0], [0.1, 0.2, 0.3], [0.01] * 3) == 2.0
