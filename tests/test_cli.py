@@ -72,6 +72,18 @@ def _client(endpoint: str) -> BusClient:
     return BusClient(endpoint, timeout_s=5.0, retries=2, backoff_s=0.1)
 
 
+def _start_calibration(tmp_path: Path, server: ServerProcess, output: int
+                       ) -> tuple[Path, Path, subprocess.Popen[str]]:
+    """A calibrate process against ``server`` in the background: (config, run folder, process)."""
+    config = _write_config(tmp_path / "c.toml", server.endpoint,
+                           calibration={"store": str(tmp_path / "good.json")})
+    run = tmp_path / "run"
+    process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "calibrate", "--config",
+                                str(config), "--out", str(run)], cwd=REPO,
+                               stdin=subprocess.DEVNULL, stdout=output, stderr=output, text=True)
+    return config, run, process
+
+
 def _wait_for(path: Path, kind: str, count: int, timeout_s: float = 300.0) -> None:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
@@ -133,13 +145,7 @@ def test_calibrate_killed_and_resumed_loses_and_repeats_nothing(tmp_path: Path,
                                                                 rig_server: Any) -> None:
     """SIGKILL mid-run, then --resume: a complete journal, no step repeated, a good result."""
     server = rig_server()
-    config = _write_config(tmp_path / "c.toml", server.endpoint,
-                           calibration={"store": str(tmp_path / "good.json")})
-    run = tmp_path / "run"
-    process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "calibrate", "--config",
-                                str(config), "--out", str(run)], cwd=REPO,
-                               stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                               stderr=subprocess.DEVNULL)
+    config, run, process = _start_calibration(tmp_path, server, subprocess.DEVNULL)
     try:
         _wait_for(run / JOURNAL_NAME, "estimate", 10)
         process.send_signal(signal.SIGKILL)
@@ -174,13 +180,7 @@ def test_sigterm_sends_the_rig_to_safe_setpoints_and_closes_the_journal(
         tmp_path: Path, rig_server: Any) -> None:
     """SIGTERM mid-run: exit code 130, safe set-points applied on the rig, journal ended."""
     server = rig_server()
-    config = _write_config(tmp_path / "c.toml", server.endpoint,
-                           calibration={"store": str(tmp_path / "good.json")})
-    run = tmp_path / "run"
-    process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "calibrate", "--config",
-                                str(config), "--out", str(run)], cwd=REPO,
-                               stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
-                               stderr=subprocess.PIPE, text=True)
+    config, run, process = _start_calibration(tmp_path, server, subprocess.PIPE)
     try:
         _wait_for(run / JOURNAL_NAME, "estimate", 2)
         process.send_signal(signal.SIGTERM)
