@@ -21,6 +21,7 @@ safe set-points before the error propagates.
 from __future__ import annotations
 
 import math
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -166,7 +167,19 @@ def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
         if start is None:
             raise LimitError(f"set-point {name}: its present value is unknown, cannot bound the step")
         distance = abs(float(value) - float(start))
-        n_steps = max(n_steps, math.ceil(distance / limits[name].max_step * (1.0 - _STEP_SLACK)))
+        max_step = limits[name].max_step
+        needed = math.ceil(distance / max_step * (1.0 - _STEP_SLACK))
+        if needed > 1:
+            # Intermediate steps are interpolated, so each carries the rounding of two floats
+            # of the size of the set-point: plan them that much below max_step, so that the
+            # rig's and the client's step checks never see a step above it.
+            room = max_step - 4.0 * sys.float_info.epsilon * max(abs(float(value)),
+                                                                abs(float(start)))
+            if room <= 0.0:
+                raise LimitError(f"set-point {name}: max_step {max_step!r} is below the float "
+                                 f"resolution at {float(value)!r}; cannot plan the move")
+            needed = max(needed, math.ceil(distance / room))
+        n_steps = max(n_steps, needed)
     steps: list[dict[str, float]] = []
     for k in range(1, n_steps + 1):
         if k == n_steps:
