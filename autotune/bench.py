@@ -814,8 +814,11 @@ def _jsonable(value: Any) -> Any:
 # --------------------------------------------------------------------------------------------
 
 
-def _num(value: float, digits: int = 0, scale: float = 1.0) -> str:
-    if value is None or (isinstance(value, float) and math.isnan(value)):
+def _num(value: float | str | None, digits: int = 0, scale: float = 1.0) -> str:
+    # A result read back from its file carries infinities as "inf" (see write_result).
+    if isinstance(value, str):
+        value = float(value)
+    if value is None or math.isnan(value):
         return "n/a"
     if math.isinf(value):
         return "never"
@@ -942,7 +945,17 @@ def main(argv: Sequence[str] | None = None) -> int:
                         help="calibrate/retune TOML (default configs/dry-run.toml)")
     parser.add_argument("--rig-config", type=Path, default=DEFAULT_RIG_CONFIG,
                         help="demo simulated rig TOML (default configs/sim-rig.toml)")
+    size.add_argument("--show", type=Path, metavar="RESULT_JSON",
+                      help="print the table of a result file written earlier; run nothing")
     ns = parser.parse_args(argv)
+    if ns.show is not None:
+        try:
+            study = json.loads(ns.show.read_text(encoding="utf-8"))
+            print(format_table(study))
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            print(f"error: cannot show {ns.show}: {type(exc).__name__}: {exc}", file=sys.stderr)
+            return 2
+        return 0
     # The bench is a command: it configures logging (warnings only) like autotune/cli.py.
     logging.basicConfig(level=logging.WARNING)
     _quiet_logging()

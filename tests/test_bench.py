@@ -104,3 +104,18 @@ def test_result_file_is_strict_json(study, tmp_path):
 
     data = json.loads(path.read_text(encoding="utf-8"), parse_constant=refuse)
     assert data["mode"] == "tiny"
+
+
+def test_table_reprints_from_the_result_file(study, tmp_path, capsys):
+    """``--show FILE`` prints the same table from the file as the run printed from memory."""
+    path = tmp_path / "result.json"
+    bench.write_result(study, path)
+    assert bench.main(["--show", str(path)]) == 0
+    assert capsys.readouterr().out.rstrip("\n") == bench.format_table(study)
+
+
+def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
+    """A result file that is not there is refused with its name, exit code 2."""
+    missing = tmp_path / "nope.json"
+    assert bench.main(["--show", str(missing)]) == 2
+    assert str(missing) in capsys.readouterr().err
