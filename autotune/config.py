@@ -377,8 +377,8 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         drift_compensation=s_t.boolean("drift_compensation", True),
         max_drift_hz_per_s=s_t.number("max_drift_hz_per_s", 3.0, low=0.0, high=1e4,
                                       low_open=True),
-        refine_points=s_t.integer("refine_points", 5, low=0, high=50),
-        refine_half_width_hz=s_t.number("refine_half_width_hz", 6e3, low=0.0, high=1e9,
+        refine_points=s_t.integer("refine_points", 7, low=0, high=50),
+        refine_half_width_hz=s_t.number("refine_half_width_hz", 9e3, low=0.0, high=1e9,
                                         low_open=True),
     )
     s_t.finish()

@@ -173,7 +173,11 @@ def test_calibrate_killed_and_resumed_loses_and_repeats_nothing(tmp_path: Path,
     with _client(server.endpoint) as rig:
         truth = rig.truth(result["setpoints"])
         assert rig.status().shots_total >= shots
-    assert truth["inversion"] >= 0.97 * truth["best"]["inversion"]
+    # As good as an uninterrupted run: the kill lands at a moment set by timing, so this run's
+    # noise realisation is not reproducible and the bar is the spread of uninterrupted
+    # calibrations (0.953-0.999 of the true best over 40 seeded scenarios, README's
+    # performance section), not the 0.97 of one fixed seed (test_dry_run_... checks that).
+    assert truth["inversion"] >= 0.95 * truth["best"]["inversion"]
 
 
 def test_sigterm_sends_the_rig_to_safe_setpoints_and_closes_the_journal(
