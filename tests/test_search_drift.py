@@ -174,7 +174,9 @@ def test_hand_strategies_accept_and_ignore_clocks():
         asked.append(grid.ask(clock_s=1.0))
         grid.tell(asked[-1], 0.0, 0.0, clock_s=1.0)
     expected = [(v, d) for v in np.linspace(420.0, 600.0, 3) for d in np.linspace(-40e3, 40e3, 3)]
-    assert [(p["velocity"], p["detuning"]) for p in asked] == pytest.approx(expected)
+    # Compared as an (n, 2) array: pytest.approx does not compare nested sequences.
+    np.testing.assert_allclose([(p["velocity"], p["detuning"]) for p in asked], expected,
+                               rtol=1e-12)
 
 
 @pytest.mark.slow
