@@ -39,8 +39,6 @@ _log = structlog.get_logger(__name__)
 _BACKOFF_CAP_S = 2.0
 """Longest single pause between attempts, s (the backoff doubles up to this)."""
 
-# Float round-off in a caller's step arithmetic must not refuse a step of exactly max_step.
-_STEP_TOLERANCE = 1e-9
 
 
 @dataclass(frozen=True)
@@ -367,7 +365,7 @@ class BusClient:
             if current is None:
                 raise LimitError(f"set-point {name!r}: the value in force is unknown, so the step cannot be checked")
             step = abs(value - current)
-            if step > limit.max_step * (1 + _STEP_TOLERANCE):
+            if step > limit.max_step * (1 + protocol.STEP_TOLERANCE):
                 raise LimitError(
                     f"set-point {name!r}: step {step!r} {limit.unit} from {current!r} to {value!r} "
                     f"exceeds the limit max_step {limit.max_step!r} {limit.unit}"

@@ -42,6 +42,7 @@ from autotune.errors import (
 )
 from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
+from autotune.protocol import STEP_TOLERANCE
 from autotune.rig import FIELDS, Rig
 from autotune.search import Dimension, SearchSpace, Strategy, make_strategy
 
@@ -63,8 +64,6 @@ __all__ = [
 
 _log = structlog.get_logger(__name__)
 
-#: Relative slack when comparing a step with its largest allowed size (float rounding only).
-_STEP_SLACK = 1e-9
 
 
 @dataclass(frozen=True)
@@ -168,7 +167,7 @@ def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
             raise LimitError(f"set-point {name}: its present value is unknown, cannot bound the step")
         distance = abs(float(value) - float(start))
         max_step = limits[name].max_step
-        needed = math.ceil(distance / max_step * (1.0 - _STEP_SLACK))
+        needed = math.ceil(distance / max_step * (1.0 - STEP_TOLERANCE))
         if needed > 1:
             # Intermediate steps are interpolated, so each carries the rounding of two floats
             # of the size of the set-point: plan them that much below max_step, so that the

@@ -120,6 +120,7 @@ from typing import Any
 from autotune.errors import ProtocolError, RigRefused
 
 __all__ = [
+    "STEP_TOLERANCE",
     "PROTO_VERSION",
     "MAX_MESSAGE_BYTES",
     "MAX_SHOTS",
@@ -159,6 +160,10 @@ MAX_MESSAGE_BYTES = 1 << 20
 
 MAX_SHOTS = 10_000_000
 """Largest number of shots one ``acquire`` may ask for."""
+
+STEP_TOLERANCE = 1e-9
+"""Relative slack of every ``max_step`` check: a step up to ``max_step * (1 + STEP_TOLERANCE)``
+is accepted, so that float rounding does not refuse a step of exactly ``max_step``."""
 
 _MSG_ID_RE = re.compile(r"[0-9a-f]{1,64}")
 

@@ -1,7 +1,7 @@
 """The simulated rig: set-points, virtual clock, drift, detectors and noise.
 
 :class:`SimulatedRig` holds the state of one simulated apparatus and answers the operations of
-the wire protocol (CONTRACTS.md) with JSON-ready dicts: ``describe``, ``apply``, ``acquire``,
+the wire protocol (README) with JSON-ready dicts: ``describe``, ``apply``, ``acquire``,
 ``status``, ``safe`` and, simulated rig only, ``truth``, ``advance``, ``thermal_step``.
 
 Model of the state
@@ -51,6 +51,7 @@ import numpy as np
 import scipy.optimize
 import structlog
 
+from autotune.protocol import STEP_TOLERANCE
 from drivers_sim import physics
 from drivers_sim.config import SimRigConfig
 
@@ -60,8 +61,6 @@ _log = structlog.get_logger(__name__)
 
 _FIELDS = physics.FIELDS
 _MAX_ADVANCE_S = 1.0e7
-# Forgive float rounding when a step equals max_step exactly.
-_STEP_SLACK = 1e-9
 # Coarse truth grid and its margin beyond the reachable true-detuning window.
 _COARSE_VELOCITY_STEP = 10.0
 _COARSE_DETUNING_STEP_HZ = 2.0e3
@@ -154,7 +153,7 @@ class SimulatedRig:
 
     Notes
     -----
-    Every public method returns the JSON-ready dict of CONTRACTS.md for its operation. Errors:
+    Every public method returns the JSON-ready dict of the README's wire protocol for its operation. Errors:
     :class:`SetpointError` for refused set-points, :class:`RigInterlock` while the interlock is
     set, ``ValueError`` for a bad field, phase, shot count or duration.
     """
@@ -291,7 +290,7 @@ class SimulatedRig:
                 )
             if check_steps:
                 step = value - self._setpoints[name]
-                if abs(step) > limit.max_step * (1.0 + _STEP_SLACK):
+                if abs(step) > limit.max_step * (1.0 + STEP_TOLERANCE):
                     raise SetpointError(
                         f"{name}: expected a step of at most max_step {limit.max_step:g} {limit.unit} "
                         f"from {self._setpoints[name]:g}, got {value:g} (step {step:+g})"
