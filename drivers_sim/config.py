@@ -38,7 +38,7 @@ __all__ = [
     "sim_config_from_dict",
 ]
 
-#: Set-point names (CONTRACTS.md) and their SI units; the suffix of their limit keys.
+#: Set-point names (the README's wire protocol) and their SI units; the suffix of their limit keys.
 SETPOINT_UNITS: dict[str, str] = {"velocity": "m/s", "detuning": "Hz"}
 _UNIT_SUFFIX = {"velocity": "m_per_s", "detuning": "hz"}
 

@@ -9,7 +9,7 @@ The model follows /work/shared/PHYSICS.md:
   nodes) and a photon-number distribution and returns the first-harmonic coefficients
   ``(a, b, c)`` of every outcome, ``P_x(phi) = a + b cos(phi) + c sin(phi)``;
 - :func:`detected_coefficients` applies a confusion matrix; :func:`fringe_figures` gives the
-  inversion, phase shift, contrasts and absorption defined in CONTRACTS.md;
+  inversion, phase shift, contrasts and absorption defined in PHYSICS.md section 5;
 - :func:`thermal_photon_number`, :func:`thermal_distribution` and
   :func:`one_photon_distribution` describe the fields; :func:`stark_field_for_detuning`,
   :func:`stark_detuning` the quadratic Stark tuning.

@@ -113,7 +113,7 @@ def test_server_answers_every_frame_with_a_valid_reply(in_process_server: Any, d
     reply = in_process_server.handle(data)
     assert len(reply) <= protocol.MAX_MESSAGE_BYTES
     message = json.loads(reply)
-    # Reply layout of CONTRACTS.md: proto, msg_id, ok, and result or error.
+    # Reply layout of the README's wire protocol: proto, msg_id, ok, and result or error.
     assert message["proto"] == 1 and isinstance(message["ok"], bool)
     try:
         protocol.decode_reply(reply, message["msg_id"] or MSG_ID)

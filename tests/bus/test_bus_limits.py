@@ -105,7 +105,7 @@ def test_server_refuses_value_out_of_range_with_the_limit(served, raw_socket):
     _, _, description = served
     limit = description.setpoints["velocity"]
     reply = _raw_apply(raw_socket, {"velocity": limit.max + 1.0})
-    # Error kind of CONTRACTS.md for a set-point outside its limits.
+    # Error kind of the README's wire protocol for a set-point outside its limits.
     assert reply["ok"] is False and reply["error"]["kind"] == "out_of_range"
     assert "velocity" in reply["error"]["detail"] and f"{limit.max:g}" in reply["error"]["detail"]
 

@@ -29,7 +29,7 @@ def test_request_round_trip_keeps_every_argument():
     """A request built by encode_request decodes to the same op and normalised arguments."""
     data = protocol.encode_request(Op.ACQUIRE, {"field": "one_photon", "ramsey_phase": 1, "shots": 40}, MSG_ID)
     request = protocol.decode_request(data)
-    # The request layout of CONTRACTS.md: {"proto": 1, "msg_id", "op", "args"}.
+    # The request layout of the README's wire protocol: {"proto": 1, "msg_id", "op", "args"}.
     assert json.loads(data) == {"proto": 1, "msg_id": MSG_ID, "op": "acquire",
                                 "args": {"field": "one_photon", "ramsey_phase": 1.0, "shots": 40}}
     assert (request.msg_id, request.op, dict(request.args)) == (
@@ -61,7 +61,7 @@ def test_oversize_message_is_refused_with_the_limit():
 
 
 def test_other_protocol_version_is_unsupported():
-    """A request for proto 2 gets unsupported_version, keeping its msg_id (kind from CONTRACTS.md)."""
+    """A request for proto 2 gets unsupported_version, keeping its msg_id (kind from the README's wire protocol)."""
     error = _rejected(_request(proto=2))
     assert (error.kind, error.msg_id) == (ErrorKind.UNSUPPORTED_VERSION, MSG_ID)
 
@@ -120,7 +120,7 @@ def test_reply_for_another_msg_id_is_a_protocol_error():
 
 
 def test_status_result_parses_to_typed_object():
-    """A status result in the layout of CONTRACTS.md becomes a Status with every field."""
+    """A status result in the layout of the README's wire protocol becomes a Status with every field."""
     status = protocol.parse_status({"clock": 12.5, "busy": False, "interlock": None,
                                     "setpoints": {"velocity": 500, "detuning": -1.0e3}, "shots_total": 300})
     assert (status.clock, status.busy, status.interlock, dict(status.setpoints), status.shots_total) == (

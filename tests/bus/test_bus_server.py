@@ -59,7 +59,7 @@ def test_replay_cache_is_bounded(server, rig):
 
 
 def test_interlock_maps_to_interlock(server, rig):
-    """A rig interlock comes back as error kind interlock (CONTRACTS.md)."""
+    """A rig interlock comes back as error kind interlock (the README's wire protocol)."""
     rig.set_interlock("cryostat above 1 K")
     reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 10})
     assert reply["error"]["kind"] == "interlock" and "cryostat above 1 K" in reply["error"]["detail"]

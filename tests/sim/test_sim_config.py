@@ -33,7 +33,8 @@ def test_shipped_scenario_matches_demo_values(demo_config):
 
 def test_every_key_of_shipped_file_has_unit_and_comment():
     """Every key line of the shipped TOML ends in a unit suffix or is dimensionless, with a comment."""
-    # Source: RULES.md / task brief (unit in every key name, one-line comment per key).
+    # Source: the project's configuration rules (README, Configuration: unit in every key name,
+    # one-line comment per key).
     units = ("_hz", "_m", "_s", "_k", "_rad", "_m_per_s", "_v_per_m", "_hz_per_s", "_hz_per_sqrt_s",
              "_hz_m2_per_v2")
     dimensionless = {"name", "default_seed", "atoms_per_sample", "max_shots_per_acquisition",
@@ -115,7 +116,7 @@ def _set(data, dotted, value):
 @pytest.mark.parametrize("dotted, value", BAD_VALUES)
 def test_bad_value_is_refused_naming_file_key_expected_got(demo_config, dotted, value):
     """Each bad value is a SimConfigError naming the file, a dotted key, what was expected and got."""
-    # Source: RULES.md / STYLE.md habit 5 (check input once; name key, expected, got).
+    # Source: STYLE.md habit 5 and README, Configuration (check input once; name key, expected, got).
     data = _data(demo_config)
     _set(data, dotted, value)
     with pytest.raises(SimConfigError) as caught:
@@ -143,7 +144,7 @@ def test_unknown_key_is_refused(demo_config, dotted):
 
 def test_missing_key_is_refused(demo_config):
     """A missing required key is refused, naming it and 'nothing'."""
-    # Source: RULES.md (clear error naming what was wrong).
+    # Source: README, Configuration (clear error naming what was wrong).
     data = _data(demo_config)
     del data["cavity"]["waist_m"]
     with pytest.raises(SimConfigError, match=r"cavity\.waist_m: expected .*got 'nothing'"):
@@ -168,7 +169,7 @@ def test_faults_table_is_kept_unvalidated(demo_config):
 
 def test_unreadable_and_invalid_files_are_refused(tmp_path):
     """A missing file and a broken TOML file are SimConfigErrors naming the file."""
-    # Source: RULES.md (errors name the file).
+    # Source: README, Configuration (errors name the file).
     missing = tmp_path / "absent.toml"
     with pytest.raises(SimConfigError, match="absent.toml"):
         load_sim_config(missing)
@@ -180,7 +181,7 @@ def test_unreadable_and_invalid_files_are_refused(tmp_path):
 
 def test_file_errors_name_the_file(tmp_path):
     """A bad value in a file names the file path and the dotted key."""
-    # Source: RULES.md (errors name file, key, expected, got).
+    # Source: README, Configuration (errors name file, key, expected, got).
     text = DEMO_CONFIG.read_text(encoding="utf-8").replace("waist_m = 5.8e-3", "waist_m = -5.8e-3")
     path = tmp_path / "sim.toml"
     path.write_text(text, encoding="utf-8")

@@ -245,7 +245,7 @@ def test_confusion_matrix_columns_are_distributions():
 
 def test_fringe_figures_match_contract_definitions():
     """Inversion is the maximum over phi of the fringe difference; phase shift, contrast as defined."""
-    # Source: CONTRACTS.md definitions, checked by brute force over a dense phase grid.
+    # Source: PHYSICS.md section 5 definitions, checked by brute force over a dense phase grid.
     rng = np.random.default_rng(SEED)
     detected = np.zeros((2, 3, 3))
     detected[:, 1, :] = rng.uniform(-0.2, 0.2, (2, 3)) + [0.5, 0.0, 0.0]

@@ -1,4 +1,4 @@
-"""drivers_sim.rig: counts, truth, drift, limits and the operations of CONTRACTS.md."""
+"""drivers_sim.rig: counts, truth, drift, limits and the operations of the README's wire protocol."""
 
 from __future__ import annotations
 
@@ -79,7 +79,7 @@ def test_counts_follow_noiseless_probabilities(still_config, field, phase):
 
 def test_same_seed_same_counts_and_different_seed_different_counts(demo_config):
     """Two rigs with one seed and one call sequence give identical counts; another seed does not."""
-    # Source: CONTRACTS.md / STYLE.md habit 10 (reproducible from the seed).
+    # Source: the README's wire protocol / STYLE.md habit 10 (reproducible from the seed).
     def run(seed):
         rig = SimulatedRig(demo_config, seed)
         rig.apply({"velocity": 520.0})
@@ -94,7 +94,7 @@ def test_same_seed_same_counts_and_different_seed_different_counts(demo_config):
 
 def test_acquire_takes_shots_over_repetition_rate(demo_config):
     """An acquisition advances the clock by shots / repetition_rate and counts its shots."""
-    # Source: PHYSICS.md section 4 (time) and CONTRACTS.md acquire result.
+    # Source: PHYSICS.md section 4 (time) and the README's wire protocol acquire result.
     rig = SimulatedRig(demo_config, SEED)
     before = rig.status()["clock"]
     result = rig.acquire("empty", 0.0, 1500)
@@ -109,7 +109,7 @@ def test_acquire_takes_shots_over_repetition_rate(demo_config):
                                        (("empty", 0.0, True), "shots"), (("empty", 0.0, 10**9), "shots")])
 def test_acquire_refuses_bad_arguments(demo_config, args, key):
     """A bad field, phase or shot count is a ValueError naming the argument."""
-    # Source: CONTRACTS.md (fields, shots an int) and RULES.md (errors name what was wrong).
+    # Source: the README's wire protocol (fields, shots an int) and README, Configuration (errors name what was wrong).
     rig = SimulatedRig(demo_config, SEED)
     with pytest.raises(ValueError, match=key):
         rig.acquire(*args)
@@ -238,7 +238,7 @@ def test_stark_error_makes_applied_detuning_differ(demo_config):
 
 def test_out_of_range_setpoint_is_refused_naming_limit(demo_config):
     """A velocity above max is refused naming the set-point, the limit and the value; nothing moves."""
-    # Source: CONTRACTS.md limits and PHYSICS.md section 7 (never outside the configured limits).
+    # Source: the README's wire protocol limits and PHYSICS.md section 7 (never outside the configured limits).
     rig = SimulatedRig(demo_config, SEED)
     _walk(rig, {"velocity": 700.0})
     before = rig.status()
@@ -262,7 +262,7 @@ def test_too_large_step_is_refused_naming_max_step(demo_config):
                                                  ({"velocity": True}, "velocity")])
 def test_bad_setpoint_is_refused(demo_config, setpoints, fragment):
     """Unknown names and non-numbers are refused as SetpointError naming the set-point."""
-    # Source: CONTRACTS.md set-point names; RULES.md (errors name the key, expected and got).
+    # Source: the README's wire protocol set-point names; README, Configuration (errors name the key, expected and got).
     rig = SimulatedRig(demo_config, SEED)
     with pytest.raises(SetpointError, match=fragment):
         rig.apply(setpoints)
@@ -279,7 +279,7 @@ def test_safe_returns_to_safe_setpoints_even_under_interlock(demo_config):
 
 def test_interlock_refuses_apply_and_acquire_until_cleared(demo_config):
     """While the interlock is set apply and acquire raise RigInterlock with the reason; status shows it."""
-    # Source: CONTRACTS.md (error kind interlock; status.interlock null or str).
+    # Source: the README's wire protocol (error kind interlock; status.interlock null or str).
     rig = SimulatedRig(demo_config, SEED)
     rig.set_interlock("cryostat warm")
     with pytest.raises(RigInterlock, match="cryostat warm"):
@@ -296,7 +296,7 @@ def test_interlock_refuses_apply_and_acquire_until_cleared(demo_config):
 
 def test_describe_follows_contract(demo_config):
     """describe carries the contract's keys with the configured limits and rate."""
-    # Source: CONTRACTS.md describe result; configs/sim-rig.toml values.
+    # Source: the README's wire protocol describe result; configs/sim-rig.toml values.
     description = SimulatedRig(demo_config, SEED).describe()
     assert description["rig"] == "bench-2-sim"
     assert description["proto"] == 1 and description["simulated"] is True
@@ -309,7 +309,7 @@ def test_describe_follows_contract(demo_config):
 
 def test_truth_follows_contract(demo_truth):
     """truth carries the contract's keys, three coefficients per outcome, phase shift in [0, 2 pi)."""
-    # Source: CONTRACTS.md truth result.
+    # Source: the README's wire protocol truth result.
     assert set(demo_truth) == {"setpoints", "clock", "fringes", "inversion", "phase_shift", "contrast",
                                "absorption", "best", "hidden"}
     for field in ("empty", "one_photon"):
