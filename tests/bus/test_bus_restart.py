@@ -19,7 +19,15 @@ def test_client_reconnects_to_a_restarted_server(start_server, make_client):
     client = make_client(first.endpoint, timeout_s=0.5, retries=12, backoff_s=0.05)
     client.acquire("empty", 0.0, 30)
     first.kill()
-    restart = threading.Thread(target=start_server, kwargs={"name": "second", "bind": first.endpoint})
+
+    def restart_later() -> None:
+        # Down for longer than one attempt's wait, so the first attempt surely goes unanswered
+        # and the retry path is what is tested (a successor bound within that wait would get
+        # the queued request through ZeroMQ's own reconnect, with no retry at all).
+        time.sleep(0.5 + 0.3)
+        start_server(name="second", bind=first.endpoint)
+
+    restart = threading.Thread(target=restart_later)
     with capture_logs() as logs:
         restart.start()
         status = client.status()
