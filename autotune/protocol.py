@@ -36,6 +36,13 @@ Idempotency: a client that gets no reply resends the **same bytes with the same 
 must answer a repeated ``msg_id`` with the reply it gave the first time, without executing the
 request again (so an acquisition is never counted twice). The bundled rig keeps the last 1024
 replies. A ``msg_id`` reused with a different request is answered with ``bad_request``.
+autotune keeps one ``msg_id`` for one logical operation across all of its own retries too (the
+bus client's resends and the loop's later retries after a timeout, a ``busy`` or
+``internal`` reply or an interlock), so a rig that keeps its replies makes every retry safe: a
+request it already executed is answered from its cache, never run again. Replies of kind
+``busy`` and ``interlock`` say that nothing was done: a rig must not keep them, so that the same
+request sent again once the rig is free is executed. Every other reply (results and the other
+error kinds) must be kept. The bundled rig does exactly this.
 
 Error kinds (``error.kind``), see :class:`ErrorKind`:
 
@@ -75,6 +82,11 @@ a simulated rig); phases are radians; frequencies are Hz; counts and shots are i
     ``min``/``max`` bound each set-point, ``max_step`` (> 0) bounds one change of it;
     ``repetition_rate_hz`` is the number of shots (samples) per second.
 
+    Optional keys (added in a backward-compatible way; a client must accept their absence):
+    ``"instance": str``, the rig's identity, see *Rig identity* below;
+    ``"max_shots_per_acquisition": int``, the most shots one ``acquire`` accepts (default
+    :data:`MAX_SHOTS`).
+
 ``apply``, args ``{"setpoints": {NAME: float, ...}}`` (one or more names; the others keep their
 value), result ``{"setpoints": {NAME: float, ...all in force}, "clock": float}``.
 
@@ -95,6 +107,17 @@ value), result ``{"setpoints": {NAME: float, ...all in force}, "clock": float}``
 
 ``safe``, args ``{}``: move every set-point to its safe value; result
 ``{"setpoints": {NAME: float, ...the safe ones, now in force}}``.
+
+Rig identity
+------------
+A rig should add ``"instance": str`` (1 to 64 characters of ``[0-9A-Za-z_-]``) to the results of
+``describe``, ``status``, ``apply``, ``acquire`` and ``safe``. It is drawn afresh every time the
+rig (or its server) starts and stays the same until it stops, so a client that sees it change
+knows the rig restarted: its clock, set-points in force and replay cache are gone. A rig without
+the key is still valid; the client then relies on the other checks (set-points in force and a
+clock that never goes back). autotune checks every ``acquire`` reply: the instance is the one
+it started with, the set-points in force are those it applied, and ``t_start`` is not earlier
+than the clock of the last reply. A mismatch is never filed as data.
 
 Simulated rig only (a real rig answers ``unknown_op``):
 
@@ -166,6 +189,7 @@ STEP_TOLERANCE = 1e-9
 is accepted, so that float rounding does not refuse a step of exactly ``max_step``."""
 
 _MSG_ID_RE = re.compile(r"[0-9a-f]{1,64}")
+_INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
 
 
 class Op(str, enum.Enum):
@@ -755,6 +779,10 @@ class Description:
         Shots per second, Hz.
     safe_setpoints : Mapping[str, float]
         The values ``safe`` moves to, in each set-point's unit.
+    instance : str or None
+        The rig's identity, new at every start (``None`` if the rig does not report one).
+    max_shots_per_acquisition : int
+        The most shots one ``acquire`` accepts (:data:`MAX_SHOTS` if the rig does not say).
     """
 
     rig: str
@@ -764,6 +792,8 @@ class Description:
     fields: tuple[str, ...]
     repetition_rate_hz: float
     safe_setpoints: Mapping[str, float]
+    instance: str | None = None
+    max_shots_per_acquisition: int = MAX_SHOTS
 
 
 def parse_description(result: Mapping[str, Any]) -> Description:
@@ -783,6 +813,9 @@ def parse_description(result: Mapping[str, Any]) -> Description:
     if rate <= 0:
         raise ProtocolError(f"{where}.repetition_rate_hz: expected a number > 0, got {rate!r}")
     safe = _setpoint_values(result, "safe_setpoints", where)
+    max_shots = MAX_SHOTS
+    if "max_shots_per_acquisition" in result:
+        max_shots = _int(result, "max_shots_per_acquisition", where, minimum=1)
     return Description(
         rig=_str(result, "rig", where),
         proto=proto,
@@ -791,7 +824,20 @@ def parse_description(result: Mapping[str, Any]) -> Description:
         fields=tuple(fields),
         repetition_rate_hz=rate,
         safe_setpoints=safe,
+        instance=_instance(result, where),
+        max_shots_per_acquisition=max_shots,
     )
+
+
+def _instance(result: Mapping[str, Any], where: str) -> str | None:
+    """The optional ``instance`` key of a result (the rig's identity), checked."""
+    if "instance" not in result:
+        return None
+    value = result["instance"]
+    if not isinstance(value, str) or not _INSTANCE_RE.fullmatch(value):
+        raise ProtocolError(f"{where}.instance: expected 1 to 64 characters of [0-9A-Za-z_-], "
+                            f"got {_show(value)}")
+    return value
 
 
 @dataclass(frozen=True)
@@ -804,21 +850,26 @@ class Applied:
         Every set-point in force, in its unit.
     clock : float or None
         Rig clock after the change, s; ``None`` for ``safe``, whose reply has no clock.
+    instance : str or None
+        The rig's identity, if it reports one.
     """
 
     setpoints: Mapping[str, float]
     clock: float | None
+    instance: str | None = None
 
 
 def parse_applied(result: Mapping[str, Any]) -> Applied:
     """Turn an ``apply`` result into :class:`Applied` (raises ProtocolError)."""
     where = "apply result"
-    return Applied(_setpoint_values(result, "setpoints", where), _float(result, "clock", where))
+    return Applied(_setpoint_values(result, "setpoints", where), _float(result, "clock", where),
+                   _instance(result, where))
 
 
 def parse_safe(result: Mapping[str, Any]) -> Applied:
     """Turn a ``safe`` result into :class:`Applied` with ``clock=None`` (raises ProtocolError)."""
-    return Applied(_setpoint_values(result, "setpoints", "safe result"), None)
+    where = "safe result"
+    return Applied(_setpoint_values(result, "setpoints", where), None, _instance(result, where))
 
 
 @dataclass(frozen=True)
@@ -855,6 +906,8 @@ class Acquisition:
         Rig clock at start and end, s.
     setpoints : Mapping[str, float]
         Set-points in force during the acquisition.
+    instance : str or None
+        The rig's identity, if it reports one.
     """
 
     counts: Counts
@@ -862,6 +915,7 @@ class Acquisition:
     t_start: float
     t_end: float
     setpoints: Mapping[str, float]
+    instance: str | None = None
 
 
 def parse_acquisition(result: Mapping[str, Any]) -> Acquisition:
@@ -878,6 +932,7 @@ def parse_acquisition(result: Mapping[str, Any]) -> Acquisition:
         t_start=t_start,
         t_end=t_end,
         setpoints=_setpoint_values(result, "setpoints", where),
+        instance=_instance(result, where),
     )
 
 
@@ -897,6 +952,8 @@ class Status:
         Set-points in force.
     shots_total : int
         Shots acquired since the rig started.
+    instance : str or None
+        The rig's identity, if it reports one.
     """
 
     clock: float
@@ -904,6 +961,7 @@ class Status:
     interlock: str | None
     setpoints: Mapping[str, float]
     shots_total: int
+    instance: str | None = None
 
 
 def parse_status(result: Mapping[str, Any]) -> Status:
@@ -918,6 +976,7 @@ def parse_status(result: Mapping[str, Any]) -> Status:
         interlock=interlock,
         setpoints=_setpoint_values(result, "setpoints", where),
         shots_total=_int(result, "shots_total", where),
+        instance=_instance(result, where),
     )
 
 

@@ -55,12 +55,15 @@ from autotune.protocol import STEP_TOLERANCE
 from drivers_sim import physics
 from drivers_sim.config import SimRigConfig
 
-__all__ = ["SimulatedRig", "SetpointError", "RigInterlock"]
+__all__ = ["SimulatedRig", "SetpointError", "RequestError", "RigInterlock"]
 
 _log = structlog.get_logger(__name__)
 
 _FIELDS = physics.FIELDS
-_MAX_ADVANCE_S = 1.0e7
+_MAX_ADVANCE_S = 1.0e7  # about four months of rig time in one call
+# Largest thermal step on demand: ten times the detuning limits of any sane rig; beyond it the
+# request is a typo (kHz for Hz), not a thermal event.
+_MAX_THERMAL_STEP_HZ = 1.0e6
 # Coarse truth grid and its margin beyond the reachable true-detuning window.
 _COARSE_VELOCITY_STEP = 10.0
 _COARSE_DETUNING_STEP_HZ = 2.0e3
@@ -72,6 +75,13 @@ class SetpointError(ValueError):
     """A set-point was refused: unknown name, not finite, outside its limits or too big a step.
 
     The message names the set-point, the limit and the value.
+    """
+
+
+class RequestError(ValueError):
+    """A request's value cannot be taken (unknown field, bad phase or shot count).
+
+    The server answers it with ``bad_request``; any other exception of the rig is ``internal``.
     """
 
 
@@ -335,6 +345,7 @@ class SimulatedRig:
             },
             "fields": list(_FIELDS),
             "repetition_rate_hz": float(self._config.rig.repetition_rate_hz),
+            "max_shots_per_acquisition": int(self._config.rig.max_shots_per_acquisition),
             "safe_setpoints": {name: float(limit.safe) for name, limit in self._limits.items()},
         }
 
@@ -391,12 +402,12 @@ class SimulatedRig:
             While the interlock is set.
         """
         if field not in _FIELDS:
-            raise ValueError(f"field: expected one of {list(_FIELDS)}, got {field!r}")
+            raise RequestError(f"field: expected one of {list(_FIELDS)}, got {field!r}")
         if not _real_number(ramsey_phase) or not math.isfinite(float(ramsey_phase)):
-            raise ValueError(f"ramsey_phase: expected a finite number in rad, got {ramsey_phase!r}")
+            raise RequestError(f"ramsey_phase: expected a finite number in rad, got {ramsey_phase!r}")
         limit = self._config.rig.max_shots_per_acquisition
         if isinstance(shots, bool) or not isinstance(shots, (int, np.integer)) or not 1 <= shots <= limit:
-            raise ValueError(f"shots: expected an integer in [1, {limit}], got {shots!r}")
+            raise RequestError(f"shots: expected an integer in [1, {limit}], got {shots!r}")
         self._refuse_if_interlocked("acquire")
         shots = int(shots)
         phase = float(ramsey_phase)
@@ -452,9 +463,10 @@ class SimulatedRig:
 
     def advance(self, seconds: float) -> dict[str, Any]:
         """Let rig time pass (drift continues), s. Returns ``{"clock": float}``."""
-        if not (_real_number(seconds) and math.isfinite(float(seconds))
-                and 0.0 <= seconds <= _MAX_ADVANCE_S):
-            raise ValueError(
+        if not (_real_number(seconds) and math.isfinite(float(seconds)) and seconds >= 0.0):
+            raise RequestError(f"seconds: expected a finite number >= 0 s, got {seconds!r}")
+        if seconds > _MAX_ADVANCE_S:
+            raise SetpointError(
                 f"seconds: expected a finite number in [0, {_MAX_ADVANCE_S:g}] s, got {seconds!r}"
             )
         self._advance(float(seconds))
@@ -471,7 +483,10 @@ class SimulatedRig:
         if shift_hz is None:
             shift_hz = self._config.drift.thermal_step_hz
         if not _real_number(shift_hz) or not math.isfinite(float(shift_hz)):
-            raise ValueError(f"shift_hz: expected a finite number in Hz, got {shift_hz!r}")
+            raise RequestError(f"shift_hz: expected a finite number in Hz, got {shift_hz!r}")
+        if abs(float(shift_hz)) > _MAX_THERMAL_STEP_HZ:
+            raise SetpointError(f"shift_hz: expected a step within +-{_MAX_THERMAL_STEP_HZ:g} Hz, "
+                                f"got {float(shift_hz):g} Hz")
         self._steps_hz += float(shift_hz)
         self._log.info("thermal_step", shift_hz=float(shift_hz), cavity_offset_hz=self._cavity_offset_hz())
         return {"clock": self._clock, "cavity_offset_hz": self._cavity_offset_hz()}

@@ -23,6 +23,8 @@ import itertools
 import math
 import os
 import random
+import re
+import secrets
 import signal
 import sys
 import time
@@ -41,7 +43,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune import protocol
 from autotune.protocol import ErrorKind, Op, RequestRejected
-from drivers_sim.rig import RigInterlock, SetpointError
+from drivers_sim.rig import RequestError, RigInterlock, SetpointError
 
 __all__ = [
     "DEFAULT_BIND",
@@ -62,6 +64,8 @@ DEFAULT_BIND = "tcp://127.0.0.1:5560"
 _DEFAULT_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "sim-rig.toml"
 _POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag again
 _BATCH = 64  # messages taken per wake-up before due replies are sent
+_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})  # replies never replayed
+_INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
 _HANDSHAKE_EVENTS = (
     zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
 )
@@ -241,6 +245,10 @@ class RigServer:
         Seed of the fault generator.
     context : zmq.Context, optional
         Context for the sockets; by default the server owns a new one.
+    instance : str, optional
+        The rig identity reported as ``instance`` in the results of ``describe``, ``status``,
+        ``apply``, ``acquire`` and ``safe`` (default: 16 random hex characters, new for every
+        server, so a restarted rig is recognised as such).
     """
 
     def __init__(
@@ -253,6 +261,7 @@ class RigServer:
         cache_size: int = 1024,
         fault_seed: int = 0,
         context: zmq.Context | None = None,
+        instance: str | None = None,
     ) -> None:
         if not isinstance(bind, str) or "://" not in bind:
             raise ServerConfigError("<arguments>", "bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
@@ -260,6 +269,10 @@ class RigServer:
             raise ServerConfigError("<arguments>", "faults", "a FaultConfig", faults)
         if isinstance(cache_size, bool) or not isinstance(cache_size, int) or cache_size < 1:
             raise ServerConfigError("<arguments>", "cache_size", "an integer >= 1", cache_size)
+        self._instance = instance if instance is not None else secrets.token_hex(8)
+        if not isinstance(self._instance, str) or not _INSTANCE_RE.fullmatch(self._instance):
+            raise ServerConfigError("<arguments>", "instance", "1 to 64 characters of [0-9A-Za-z_-]",
+                                    instance)
         self._rig = rig
         self._bind = _wildcard_port(bind)
         self._faults = faults
@@ -279,11 +292,11 @@ class RigServer:
         self._stopping = False
         self._log = _log.bind(bind=bind)
         self._dispatch = types.MappingProxyType({
-            Op.DESCRIBE: lambda a: rig.describe(),
-            Op.APPLY: lambda a: rig.apply(dict(a["setpoints"])),
-            Op.ACQUIRE: lambda a: rig.acquire(a["field"], a["ramsey_phase"], a["shots"]),
-            Op.STATUS: lambda a: rig.status(),
-            Op.SAFE: lambda a: rig.safe(),
+            Op.DESCRIBE: lambda a: self._identified(rig.describe()),
+            Op.APPLY: lambda a: self._identified(rig.apply(dict(a["setpoints"]))),
+            Op.ACQUIRE: lambda a: self._identified(rig.acquire(a["field"], a["ramsey_phase"], a["shots"])),
+            Op.STATUS: lambda a: self._identified(rig.status()),
+            Op.SAFE: lambda a: self._identified(rig.safe()),
             Op.TRUTH: lambda a: rig.truth(dict(a["setpoints"]) if "setpoints" in a else None),
             Op.ADVANCE: lambda a: rig.advance(a["seconds"]),
             Op.THERMAL_STEP: lambda a: rig.thermal_step(a["shift_hz"]),
@@ -296,6 +309,14 @@ class RigServer:
 
     def __exit__(self, *exc_info: object) -> None:
         self.close()
+
+    @property
+    def instance(self) -> str:
+        """The rig identity this server reports (new for every server)."""
+        return self._instance
+
+    def _identified(self, result: Mapping[str, Any]) -> dict[str, Any]:
+        return {**result, "instance": self._instance}
 
     @property
     def endpoint(self) -> str | None:
@@ -481,8 +502,10 @@ class RigServer:
             self._cache.move_to_end(request.msg_id)
             self._log.info("request_replayed", op=request.op.value, msg_id=request.msg_id)
             return cached[1], True
-        reply = self._execute(request)
-        self._remember(request.msg_id, digest, reply)
+        reply, kind = self._execute(request)
+        # busy and interlock mean nothing was done: the same request sent again is executed.
+        if kind not in _NOT_KEPT:
+            self._remember(request.msg_id, digest, reply)
         return reply, False
 
     def _remember(self, msg_id: str, digest: bytes, reply: bytes) -> None:
@@ -490,14 +513,14 @@ class RigServer:
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
-    def _execute(self, request: protocol.Request) -> bytes:
+    def _execute(self, request: protocol.Request) -> tuple[bytes, ErrorKind | None]:
         try:
             result = self._dispatch[request.op](request.args)
         except SetpointError as exc:
             kind, detail = ErrorKind.OUT_OF_RANGE, str(exc)
         except RigInterlock as exc:
             kind, detail = ErrorKind.INTERLOCK, str(exc)
-        except ValueError as exc:
+        except RequestError as exc:
             kind, detail = ErrorKind.BAD_REQUEST, str(exc)
         except Exception as exc:  # noqa: BLE001 - the server must answer whatever the rig does
             log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
@@ -505,13 +528,13 @@ class RigServer:
             kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"
         else:
             try:
-                return protocol.encode_result(request.msg_id, result)
+                return protocol.encode_result(request.msg_id, result), None
             except ValueError as exc:
                 log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
                 log.error("result_not_encodable", error=str(exc))
-                return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc))
+                return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc)), ErrorKind.INTERNAL
         self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id, kind=kind.value, detail=detail)
-        return protocol.encode_error(request.msg_id, kind, detail)
+        return protocol.encode_error(request.msg_id, kind, detail), kind
 
 
 def _digest(payload: bytes) -> bytes:

@@ -138,3 +138,18 @@ def test_negative_count_is_refused():
     result = {"counts": {"e": 0, "g": -1, "i": 0}, "shots": 10, "t_start": 0.0, "t_end": 0.1, "setpoints": {}}
     with pytest.raises(ProtocolError, match=r"counts\.g"):
         protocol.parse_acquisition(result)
+
+
+def test_status_without_instance_is_still_valid():
+    """A rig that does not report its identity stays valid (the key is optional, README)."""
+    status = protocol.parse_status({"clock": 1.0, "busy": False, "interlock": None,
+                                    "setpoints": {"velocity": 500.0}, "shots_total": 3})
+    assert status.instance is None
+
+
+@pytest.mark.parametrize("bad", ["", "a" * 65, "white space", 17, None])
+def test_malformed_instance_is_a_protocol_error(bad):
+    """An instance that is not 1-64 characters of [0-9A-Za-z_-] is refused naming the key."""
+    with pytest.raises(ProtocolError, match=r"status result\.instance"):
+        protocol.parse_status({"clock": 1.0, "busy": False, "interlock": None,
+                               "setpoints": {"velocity": 500.0}, "shots_total": 3, "instance": bad})

@@ -71,8 +71,8 @@ def test_unknown_setpoint_name_is_out_of_range(server):
     assert reply["error"]["kind"] == "out_of_range" and "laser_power" in reply["error"]["detail"]
 
 
-def test_rig_value_error_maps_to_bad_request(server, rig):
-    """Shots beyond the rig's own maximum (a ValueError of the rig) come back as bad_request."""
+def test_rig_request_error_maps_to_bad_request(server, rig):
+    """Shots beyond the rig's own maximum (a value it cannot take) come back as bad_request."""
     too_many = load_sim_config(SIM_CONFIG).rig.max_shots_per_acquisition + 1
     reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": too_many})
     assert reply["error"]["kind"] == "bad_request"
@@ -108,3 +108,66 @@ def test_fault_flags_override_the_table():
     faults = FaultConfig.from_table({"drop_reply_probability": 0.1, "delay_reply_s": 0.2}).overridden(
         drop_reply_probability=0.5, delay_reply_s=None)
     assert (faults.drop_reply_probability, faults.delay_reply_s) == (0.5, 0.2)
+
+
+def test_every_identified_result_carries_the_servers_instance(server):
+    """describe, status, apply, acquire and safe report one instance (README: rig identity)."""
+    seen = {
+        _ask(server, Op.DESCRIBE, {})["result"]["instance"],
+        _ask(server, Op.STATUS, {})["result"]["instance"],
+        _ask(server, Op.APPLY, {"setpoints": {"detuning": 1000.0}})["result"]["instance"],
+        _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 5})["result"]["instance"],
+        _ask(server, Op.SAFE, {})["result"]["instance"],
+    }
+    assert seen == {server.instance}
+    assert protocol.parse_description(_ask(server, Op.DESCRIBE, {})["result"]).instance == server.instance
+
+
+def test_two_servers_of_one_rig_report_different_instances(rig):
+    """A restarted server is recognisable: its instance is drawn afresh."""
+    first = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig())
+    second = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig())
+    assert first.instance != second.instance
+    first.close()
+    second.close()
+
+
+def test_describe_reports_the_rigs_shot_limit(server):
+    """describe's optional max_shots_per_acquisition is the rig's own limit (configs/sim-rig.toml)."""
+    reply = _ask(server, Op.DESCRIBE, {})["result"]
+    assert reply["max_shots_per_acquisition"] == load_sim_config(SIM_CONFIG).rig.max_shots_per_acquisition
+
+
+def test_interlock_reply_is_not_replayed(server, rig):
+    """A request refused under interlock runs when sent again once it cleared: nothing was done
+    the first time, so the reply is not kept (the README's idempotency rule)."""
+    request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 7}, "ab" * 16)
+    rig.set_interlock("helium transfer")
+    assert json.loads(server.handle(request))["error"]["kind"] == "interlock"
+    rig.set_interlock(None)
+    assert json.loads(server.handle(request))["ok"] is True
+    assert json.loads(server.handle(request))["ok"] is True
+    assert rig.status()["shots_total"] == 7
+
+
+@pytest.mark.parametrize(("op", "args"), [
+    (Op.THERMAL_STEP, {"shift_hz": 5e9}),
+    (Op.THERMAL_STEP, {"shift_hz": -2e6}),
+    (Op.ADVANCE, {"seconds": 1e12}),
+])
+def test_absurd_simulated_values_are_out_of_range(server, rig, op, args):
+    """A thermal step of GHz or an advance of millennia is refused as out_of_range and changes nothing."""
+    before = rig.status()["clock"]
+    reply = _ask(server, op, args)
+    assert reply["error"]["kind"] == "out_of_range"
+    assert rig.status()["clock"] == before
+
+
+def test_internal_value_error_of_the_rig_is_internal(server, rig, monkeypatch):
+    """A ValueError raised inside the rig's own code is its failure (internal), not the client's."""
+    def broken(*args: object) -> dict:
+        raise ValueError("matrix not positive definite")
+
+    monkeypatch.setattr(rig, "acquire", broken)
+    reply = _ask(server, Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 5})
+    assert reply["error"]["kind"] == "internal"
