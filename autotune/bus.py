@@ -10,6 +10,19 @@ Before an ``apply`` leaves this process, every set-point is checked against the 
 described and the configured ones (the tighter of both wins) and against ``max_step`` from the
 value in force; a breach raises :class:`~autotune.errors.LimitError` and nothing is sent.
 
+Know the rig you talk to: ``describe`` records the rig's identity (``instance``, new at every
+start of the rig) and starts a watch. Every later reply is checked against it: a changed
+``instance`` or a clock that went back raises :class:`~autotune.errors.RigRestarted` (call
+:meth:`BusClient.describe` again to accept the new rig); an ``acquire`` reply whose set-points
+in force differ from those of the last ``apply`` (or ``safe``) reply raises
+:class:`~autotune.errors.RigMismatch`. Neither is ever returned as data.
+
+The wait for an ``acquire`` reply is ``timeout_s`` plus the acquisition's own duration at the
+rig's described repetition rate, so a long acquisition never times out by construction.
+
+One logical operation keeps one ``msg_id``: pass ``msg_id=`` to repeat a request after this
+client gave up on it (the rig answers from its replay cache if it executed it already).
+
 A client is not thread-safe: use one per thread.
 """
 
@@ -29,7 +42,15 @@ import zmq
 import zmq.auth
 
 from autotune import protocol
-from autotune.errors import ConfigError, LimitError, ProtocolError, RigError, RigTimeout
+from autotune.errors import (
+    ConfigError,
+    LimitError,
+    ProtocolError,
+    RigError,
+    RigMismatch,
+    RigRestarted,
+    RigTimeout,
+)
 from autotune.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
 
 __all__ = ["BusClient", "CurveClientKeys"]
@@ -38,6 +59,9 @@ _log = structlog.get_logger(__name__)
 
 _BACKOFF_CAP_S = 2.0
 """Longest single pause between attempts, s (the backoff doubles up to this)."""
+
+_CLOCK_SLACK_S = 1e-9
+"""A clock may read this much earlier than the last one seen (float rounding only), s."""
 
 
 
@@ -90,6 +114,11 @@ def _load_certificate(path: str | Path, key: str) -> tuple[bytes, bytes | None]:
         return zmq.auth.load_certificate(path)
     except (OSError, ValueError) as exc:
         raise ConfigError(str(path), key, "a readable ZeroMQ certificate file", f"{type(exc).__name__}: {exc}") from exc
+
+
+def _same(reported: float | None, applied: float) -> bool:
+    """A reported set-point equals the applied one (to float rounding)."""
+    return reported is not None and abs(reported - applied) <= 1e-9 * max(1.0, abs(applied))
 
 
 @contextlib.contextmanager
@@ -176,6 +205,12 @@ class BusClient:
         self._configured = types.MappingProxyType(configured)
         self._limits: Mapping[str, SetpointLimit] = self._configured
         self._in_force: dict[str, float] = {}
+        # The watch on the rig's identity, started by describe().
+        self._instance: str | None = None
+        self._watching = False
+        self._applied: dict[str, float] | None = None
+        self._last_clock: float | None = None
+        self._repetition_rate_hz: float | None = None
         self._own_context = context is None
         self._context = zmq.Context() if context is None else context
         self._socket: zmq.Socket | None = None
@@ -231,9 +266,25 @@ class BusClient:
 
     @property
     def max_wait_s(self) -> float:
-        """Upper bound of one call's duration before RigTimeout, s (waits plus backoffs)."""
+        """Upper bound of one call's duration before RigTimeout, s (waits plus backoffs).
+
+        An ``acquire`` waits longer by its own duration per attempt, see
+        :meth:`acquire_timeout_s`.
+        """
         pauses = sum(self._pause_s(attempt) for attempt in range(1, self._retries + 1))
         return (self._retries + 1) * self._timeout_s + pauses
+
+    def acquire_timeout_s(self, shots: int) -> float:
+        """The wait for one ``acquire`` reply of ``shots`` shots, s: ``timeout_s`` plus the
+        acquisition's duration at the rig's repetition rate (known after :meth:`describe`)."""
+        if self._repetition_rate_hz is None:
+            return self._timeout_s
+        return self._timeout_s + float(shots) / self._repetition_rate_hz
+
+    @property
+    def instance(self) -> str | None:
+        """The rig identity seen by the last :meth:`describe` (None if the rig reports none)."""
+        return self._instance
 
     @property
     def limits(self) -> Mapping[str, SetpointLimit]:
@@ -250,12 +301,22 @@ class BusClient:
     def describe(self) -> Description:
         """Ask the rig to describe itself; its limits then join the effective limits.
 
+        It also (re)starts the watch on the rig's identity: the ``instance`` it reports is the
+        one every later reply must carry, and the clock, set-points and applied values known
+        so far are forgotten (call it again to accept a restarted rig).
+
         Raises
         ------
         ConfigError
             If a configured limit has another unit than the rig's or does not overlap it.
         """
         description = protocol.parse_description(self._call(Op.DESCRIBE, {}))
+        self._instance = description.instance
+        self._watching = True
+        self._applied = None
+        self._last_clock = None
+        self._in_force.clear()
+        self._repetition_rate_hz = float(description.repetition_rate_hz)
         merged = dict(description.setpoints)
         for name, configured in self._configured.items():
             if name in merged:
@@ -268,13 +329,16 @@ class BusClient:
         self._limits = types.MappingProxyType(merged)
         return description
 
-    def apply(self, setpoints: Mapping[str, float]) -> Applied:
+    def apply(self, setpoints: Mapping[str, float], *, msg_id: str | None = None) -> Applied:
         """Change set-points (partial allowed), after checking limits and steps locally.
 
         Parameters
         ----------
         setpoints : Mapping[str, float]
             New values in each set-point's unit (``velocity`` m/s, ``detuning`` Hz).
+
+        msg_id : str, optional
+            Repeat an earlier request with this id (default: a new one).
 
         Returns
         -------
@@ -286,39 +350,98 @@ class BusClient:
         LimitError
             If a value is outside the effective limits, the step from the value in force is
             larger than ``max_step``, or no limit is known for a name (call :meth:`describe`).
+        RigRestarted
+            The reply came from a restarted rig (see the module notes).
         """
         wanted = self._check_setpoints(setpoints)
         try:
-            applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted}))
+            applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted},
+                                                        msg_id=msg_id))
+            self._watch(applied.instance, applied.clock, "apply")
         except RigError:
             # It may have been applied without our hearing of it: the next step check asks first.
             self._in_force.clear()
+            self._applied = None
             raise
         self._in_force = dict(applied.setpoints)
+        self._applied = dict(applied.setpoints)
         return applied
 
-    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Acquisition:
-        """Take ``shots`` samples with the given field state and Ramsey phase (rad)."""
-        acquisition = protocol.parse_acquisition(
-            self._call(Op.ACQUIRE, {"field": field, "ramsey_phase": ramsey_phase, "shots": shots})
-        )
+    def acquire(self, field: str, ramsey_phase: float, shots: int, *,
+                msg_id: str | None = None, resend: bool = False) -> Acquisition:
+        """Take ``shots`` samples with the given field state and Ramsey phase (rad).
+
+        Parameters
+        ----------
+        field : {"empty", "one_photon"}
+            Field state prepared before each sample.
+        ramsey_phase : float
+            Phase of the second Ramsey zone, rad.
+        shots : int
+            Samples to take.
+        msg_id : str, optional
+            Repeat an earlier request with this id (default: a new one).
+        resend : bool
+            The request may have been executed before this client last heard from the rig
+            (a resume): its reply may come from the replay cache, with an earlier clock, so the
+            clock is not checked against the last one seen.
+
+        Raises
+        ------
+        RigRestarted
+            The reply came from a restarted rig.
+        RigMismatch
+            The set-points in force during the acquisition are not those last applied.
+        """
+        acquisition = protocol.parse_acquisition(self._call(
+            Op.ACQUIRE, {"field": field, "ramsey_phase": ramsey_phase, "shots": shots},
+            msg_id=msg_id, timeout_s=self.acquire_timeout_s(shots)))
+        try:
+            self._watch(acquisition.instance, None if resend else acquisition.t_start, "acquire")
+            self._watch(acquisition.instance, acquisition.t_end, "acquire", advance_only=resend)
+            if self._watching and self._applied is not None:
+                differ = [name for name, value in self._applied.items()
+                          if not _same(acquisition.setpoints.get(name), value)]
+                if differ:
+                    shown = ", ".join(f"{n} {acquisition.setpoints.get(n)!r} (applied "
+                                      f"{self._applied[n]!r})" for n in differ)
+                    raise RigMismatch(f"acquire at {self._endpoint}: the set-points in force "
+                                      f"were not those applied: {shown}")
+        except RigMismatch as exc:
+            # The caller accounts for the shots the rig took, without filing them as data.
+            exc.reply = acquisition
+            self._applied = None
+            raise
         self._in_force = dict(acquisition.setpoints)
         return acquisition
 
     def status(self) -> Status:
-        """Ask for the rig's clock, interlock, set-points in force and shot total."""
+        """Ask for the rig's clock, interlock, set-points in force and shot total.
+
+        Raises
+        ------
+        RigRestarted
+            The reply came from a restarted rig.
+        """
         status = protocol.parse_status(self._call(Op.STATUS, {}))
+        self._watch(status.instance, status.clock, "status")
         self._in_force = dict(status.setpoints)
         return status
 
-    def safe(self) -> Applied:
-        """Move the rig to its safe set-points (the rig's own procedure; ``clock`` is None)."""
+    def safe(self, *, msg_id: str | None = None) -> Applied:
+        """Move the rig to its safe set-points (the rig's own procedure; ``clock`` is None).
+
+        A reply from a restarted rig is accepted here (the rig is at its safe set-points either
+        way) and not raised.
+        """
         try:
-            applied = protocol.parse_safe(self._call(Op.SAFE, {}))
+            applied = protocol.parse_safe(self._call(Op.SAFE, {}, msg_id=msg_id))
         except RigError:
             self._in_force.clear()
+            self._applied = None
             raise
         self._in_force.update(applied.setpoints)
+        self._applied = dict(self._in_force)
         return applied
 
     def truth(self, setpoints: Mapping[str, float] | None = None) -> dict[str, Any]:
@@ -335,6 +458,29 @@ class BusClient:
         return protocol.parse_thermal_step(self._call(Op.THERMAL_STEP, {"shift_hz": shift_hz}))
 
     # ------------------------------------------------------------------ guards
+
+    def _watch(self, instance: str | None, clock: float | None, op: str, *,
+               advance_only: bool = False) -> None:
+        """Check a reply's identity and clock against the watch; remember the latest clock."""
+        if not self._watching:
+            return
+        if instance is not None and self._instance is not None and instance != self._instance:
+            raise RigRestarted(f"{op} at {self._endpoint}: the rig's instance changed from "
+                               f"{self._instance!r} to {instance!r}: it restarted (its clock, "
+                               f"set-points in force and replay cache are gone)")
+        if instance is not None and self._instance is None:
+            raise RigRestarted(f"{op} at {self._endpoint}: the rig now reports instance "
+                               f"{instance!r}, it reported none when described: another rig "
+                               f"or a restart")
+        if clock is None:
+            return
+        if self._last_clock is not None and clock < self._last_clock - _CLOCK_SLACK_S:
+            if advance_only:
+                return
+            raise RigRestarted(f"{op} at {self._endpoint}: the rig clock went back from "
+                               f"{self._last_clock!r} s to {clock!r} s: it restarted or "
+                               f"another client reset it")
+        self._last_clock = clock if self._last_clock is None else max(self._last_clock, clock)
 
     def _check_setpoints(self, setpoints: Mapping[str, float]) -> dict[str, float]:
         if not isinstance(setpoints, Mapping) or not setpoints:
@@ -378,9 +524,11 @@ class BusClient:
     def _pause_s(self, attempt: int) -> float:
         return min(self._backoff_s * 2 ** (attempt - 1), _BACKOFF_CAP_S) if attempt > 0 else 0.0
 
-    def _call(self, op: Op, args: Mapping[str, Any]) -> dict[str, Any]:
-        msg_id = protocol.new_msg_id()
+    def _call(self, op: Op, args: Mapping[str, Any], *, msg_id: str | None = None,
+              timeout_s: float | None = None) -> dict[str, Any]:
+        msg_id = msg_id if msg_id is not None else protocol.new_msg_id()
         data = protocol.encode_request(op, args, msg_id)
+        timeout_ms = self._timeout_ms if timeout_s is None else max(1, int(round(timeout_s * 1000)))
         log = None  # bound on the first trouble only: the clean path stays cheap
         last_problem: ProtocolError | None = None
         for attempt in range(self._retries + 1):
@@ -393,7 +541,7 @@ class BusClient:
             if self._socket is None:
                 self._open()
                 (log or self._log.bind(op=op.value, msg_id=msg_id)).info("bus_reconnect", attempt=attempt)
-            frames = self._exchange(data, op)
+            frames = self._exchange(data, op, timeout_ms)
             if frames is None:
                 last_problem = None
                 # A REQ socket that missed its reply cannot send again: start a fresh one.
@@ -413,24 +561,25 @@ class BusClient:
                 f"{op.value} to {self._endpoint}: no valid reply in {attempts} attempts; last: {last_problem}"
             ) from last_problem
         raise RigTimeout(
-            f"{op.value} to {self._endpoint}: no reply within {self._timeout_s} s, {attempts} attempts"
+            f"{op.value} to {self._endpoint}: no reply within {timeout_ms / 1000:g} s, "
+            f"{attempts} attempts (msg_id {msg_id})"
         )
 
-    def _exchange(self, data: bytes, op: Op) -> list[bytes] | None:
+    def _exchange(self, data: bytes, op: Op, timeout_ms: int) -> list[bytes] | None:
         """Send one request and wait for its reply frames; ``None`` if none came within the bound."""
         socket = self._socket
         assert socket is not None
         with _zmq_errors(self._endpoint, op.value):
             try:
                 socket.send(data, zmq.NOBLOCK)
-                receive_ms = self._timeout_ms
+                receive_ms = timeout_ms
             except zmq.Again:
                 # No pipe to the peer yet: wait for room, within the same bound.
                 started = time.monotonic()
-                if not socket.poll(self._timeout_ms, zmq.POLLOUT):
+                if not socket.poll(timeout_ms, zmq.POLLOUT):
                     return None
                 socket.send(data, zmq.NOBLOCK)
-                receive_ms = max(1, self._timeout_ms - int((time.monotonic() - started) * 1000))
+                receive_ms = max(1, timeout_ms - int((time.monotonic() - started) * 1000))
             if receive_ms != self._timeout_ms:
                 socket.setsockopt(zmq.RCVTIMEO, receive_ms)
             try:

@@ -12,10 +12,15 @@ track      retune on a schedule (overnight drift following), one run folder per 
 Exit codes
 ----------
 0    success (calibration accepted, retune accepted or still good)
-2    bad input: configuration, command line, missing or damaged files, a refused set-point
-3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set
+1    internal error (a bug of autotune): the rig was sent to its safe set-points, the journal
+     closed; the run can be resumed
+2    bad input: configuration, command line, missing or damaged files, a refused set-point,
+     a last good store that cannot be written
+3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set,
+     a rig that kept answering with other set-points than those applied
 4    the verified inversion is below the configured acceptance threshold
-130  stopped by SIGINT/SIGTERM (the rig was sent to its safe set-points, the journal closed)
+130  stopped by SIGINT/SIGTERM (the message says whether the rig confirmed its safe
+     set-points; the journal is closed and the run can be resumed)
 """
 
 from __future__ import annotations
@@ -23,6 +28,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import logging
+import shlex
 import signal
 import subprocess
 import sys
@@ -48,10 +54,11 @@ from autotune.errors import (
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
 
-__all__ = ["main", "EXIT_OK", "EXIT_BAD_INPUT", "EXIT_RIG", "EXIT_BELOW_ACCEPTANCE",
-           "EXIT_INTERRUPTED"]
+__all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
+           "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]
 
 EXIT_OK = 0
+EXIT_INTERNAL = 1
 EXIT_BAD_INPUT = 2
 EXIT_RIG = 3
 EXIT_BELOW_ACCEPTANCE = 4
@@ -172,23 +179,53 @@ def _exit_for_result(result: dict[str, Any]) -> int:
     return EXIT_OK if result["accepted"] else EXIT_BELOW_ACCEPTANCE
 
 
-def _guarded(action: Callable[[], int]) -> int:
+def _stop_message(exc: Interrupted, resume_hint: str | None) -> str:
+    """What a stop did to the rig, truthfully, and how to continue."""
+    if exc.safe is True:
+        rig = "the rig confirmed its safe set-points"
+    elif exc.safe is False:
+        rig = (f"the rig did NOT confirm its safe set-points ({exc.safe_detail}); check it "
+               f"before leaving it")
+    else:
+        rig = "no move was in progress; the rig was left at its present set-points"
+    text = f"autotune: stopped by signal; {rig}; the journal is closed."
+    if resume_hint:
+        text += f" Continue with: {resume_hint}"
+    return text
+
+
+def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = lambda: None
+             ) -> int:
     """Run a command body, mapping the error tree to exit codes with one clear message."""
     try:
         return action()
-    except Interrupted:
-        print("autotune: stopped by signal; the rig was sent to its safe set-points and the "
-              "journal closed (continue with --resume)", file=sys.stderr)
+    except Interrupted as exc:
+        print(_stop_message(exc, resume_hint()), file=sys.stderr)
         return EXIT_INTERRUPTED
     except (ConfigError, LimitError, JournalError) as exc:
         print(f"autotune: {exc}", file=sys.stderr)
+        hint = resume_hint()
+        if isinstance(exc, JournalError) and hint and "store" in str(exc):
+            print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)
+        hint = resume_hint()
+        if hint:
+            print(f"autotune: once the rig answers again, continue with: {hint}",
+                  file=sys.stderr)
         return EXIT_RIG
     except AutotuneError as exc:
         print(f"autotune: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except Exception as exc:  # noqa: BLE001 - the last line of defence prints and exits
+        _log.exception("internal_error")
+        print(f"autotune: internal error (a bug of autotune, please report it): "
+              f"{type(exc).__name__}: {exc}", file=sys.stderr)
+        hint = resume_hint()
+        if hint:
+            print(f"autotune: the run can be continued with: {hint}", file=sys.stderr)
+        return EXIT_INTERNAL
 
 
 # -- commands ----------------------------------------------------------------------------
@@ -212,29 +249,39 @@ def _run_folder(ns: argparse.Namespace, command: str) -> tuple[Path, bool]:
     return (Path(ns.out) if ns.out is not None else _default_run_dir(command)), False
 
 
+def _resume_command(command: str, config_path: str, run_dir: Path) -> str:
+    return f"autotune {command} --config {shlex.quote(str(config_path))} --resume {shlex.quote(str(run_dir))}"
+
+
 def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
     from autotune import runner
+
+    started: list[Path] = []
 
     def body() -> int:
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
-        if not resume and (run_dir / "journal.jsonl").exists():
-            raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
-        print(CAUTION, file=sys.stderr)
         stop = _install_stop_handlers()
-        handler = _log_to_run_folder(run_dir)
-        try:
-            with _connect(config) as rig:
-                stage = runner.calibrate if command == "calibrate" else runner.retune
-                result = stage(rig, config, run_dir, resume=resume, stop=stop)
-        finally:
-            logging.getLogger().removeHandler(handler)
-            handler.close()
+        with _connect(config) as rig:
+            # Everything that can be checked is checked before the folder exists or anything moves.
+            prepared = runner.prepare(command, rig, config, run_dir, resume=resume)
+            print(CAUTION, file=sys.stderr)
+            run_dir.mkdir(parents=True, exist_ok=True)
+            started.append(run_dir)
+            handler = _log_to_run_folder(run_dir)
+            try:
+                result = runner.execute(prepared, rig, stop=stop)
+            finally:
+                logging.getLogger().removeHandler(handler)
+                handler.close()
         print(_summary(result))
         print(f"run folder: {run_dir}")
         return _exit_for_result(result)
 
-    return _guarded(body)
+    def hint() -> str | None:
+        return _resume_command(command, ns.config, started[0]) if started else None
+
+    return _guarded(body, hint)
 
 
 def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, log: Path,
@@ -289,10 +336,12 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
             command = [sys.executable, "-m", "drivers_sim.server", "--config", str(rig_config),
                        "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
                        str(ready), "--log-level", "warning"]
-            # The rig's log goes to a file: an unread pipe could fill and stall the rig.
+            # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
+            # session keeps a Ctrl-C at the terminal from stopping it before our safe request.
             rig_log = (out / "rig.log").open("wb")
             process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
-                                       stdout=subprocess.DEVNULL, stderr=rig_log)
+                                       stdout=subprocess.DEVNULL, stderr=rig_log,
+                                       start_new_session=True)
             try:
                 endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
                 config = dataclasses.replace(
@@ -319,20 +368,25 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
         description = rig.describe()
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
-        stages: list[tuple[str, Callable[..., dict[str, Any]]]] = [("calibrate", runner.calibrate)]
-        if not ns.no_retune:
-            stages.append(("retune", runner.retune))
-        for name, stage in stages:
+        stages = ["calibrate"] if ns.no_retune else ["calibrate", "retune"]
+        for name in stages:
             if name == "retune":
+                if not rows[-1][1]["accepted"]:
+                    print(f"retune skipped: the calibration was not accepted (verified inversion "
+                          f"{rows[-1][1]['inversion']:.3f} below min_inversion "
+                          f"{config.min_inversion:.3f}), so there is no last good setting to "
+                          f"retune from")
+                    break
                 step = rig.thermal_step(ns.thermal_step_hz)
                 print(f"thermal step of {ns.thermal_step_hz / 1e3:+.1f} kHz applied to the "
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
-            handler = _log_to_run_folder(run_dir)
             wall = time.monotonic()
+            prepared = runner.prepare(name, rig, config, run_dir, store=store)
+            handler = _log_to_run_folder(run_dir)
             try:
-                result = stage(rig, config, run_dir, stop=stop, store=store,
-                               extra={"dry_run": {"endpoint": endpoint}})
+                result = runner.execute(prepared, rig, stop=stop,
+                                        extra={"dry_run": {"endpoint": endpoint}})
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()
@@ -368,38 +422,62 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
+def _track_cycles(out: Path) -> list[Path]:
+    return sorted(p for p in out.glob("cycle-*") if p.is_dir())
+
+
 def _cmd_track(ns: argparse.Namespace) -> int:
     from autotune import runner
+    from autotune.journal import read_journal
+
+    out = Path(ns.resume) if ns.resume else (Path(ns.out) if ns.out else
+                                             _default_run_dir("track"))
 
     def body() -> int:
         config = load_config(ns.config)
-        out = Path(ns.out) if ns.out else _default_run_dir("track")
-        if out.exists() and any(out.iterdir()):
-            raise JournalError(f"{out} is not empty; choose another --out")
-        print(CAUTION, file=sys.stderr)
+        cycles = _track_cycles(out) if ns.resume else []
+        if ns.resume and not cycles:
+            raise JournalError(f"{out}: no cycle-NNNN run folder of a track run to resume")
+        if not ns.resume and out.exists() and any(out.iterdir()):
+            raise JournalError(f"{out} is not empty; choose another --out or use --resume")
         stop = _install_stop_handlers()
         exit_code = EXIT_OK
         with _connect(config) as rig:
-            cycle = 0
-            while ns.cycles is None or cycle < ns.cycles:
+            cycle = len(cycles)
+            resume_last = bool(cycles) and runner.unfinished(
+                read_journal(cycles[-1] / "journal.jsonl"))
+            if resume_last:
+                cycle -= 1
+            done = 0
+            while ns.cycles is None or done < ns.cycles:
                 run_dir = out / f"cycle-{cycle:04d}"
+                resume = resume_last and done == 0
+                prepared = runner.prepare("retune", rig, config, run_dir, resume=resume)
+                if done == 0:
+                    print(CAUTION, file=sys.stderr)
                 handler = _log_to_run_folder(run_dir)
                 try:
-                    result = runner.retune(rig, config, run_dir, stop=stop)
+                    result = runner.execute(prepared, rig, stop=stop)
                 finally:
                     logging.getLogger().removeHandler(handler)
                     handler.close()
                 print(_summary(result), flush=True)
                 exit_code = _exit_for_result(result)
                 cycle += 1
-                if ns.cycles is not None and cycle >= ns.cycles:
+                done += 1
+                if ns.cycles is not None and done >= ns.cycles:
                     break
-                # Interruptible wait: a signal during the pause ends tracking at once.
+                # Interruptible wait: a signal during the pause ends tracking at once; no stage
+                # is running then, and the rig stays at the setting the last cycle left.
                 if stop.wait(ns.interval_s):
                     raise Interrupted("stopped by signal between cycles")
         return exit_code
 
-    return _guarded(body)
+    def hint() -> str:
+        return (f"autotune track --config {shlex.quote(str(ns.config))} "
+                f"--resume {shlex.quote(str(out))} --interval-s {ns.interval_s:g}")
+
+    return _guarded(body, hint)
 
 
 def _cmd_report(ns: argparse.Namespace) -> int:
@@ -474,7 +552,10 @@ def _parser() -> argparse.ArgumentParser:
                        help="wall-clock pause between cycles (s, default 1800)")
     track.add_argument("--cycles", type=_at_least_one, help="stop after this many cycles (default: until "
                                                   "SIGINT/SIGTERM)")
-    track.add_argument("--out", help="folder for the cycles' run folders")
+    track_out = track.add_mutually_exclusive_group()
+    track_out.add_argument("--out", help="folder for the cycles' run folders")
+    track_out.add_argument("--resume", metavar="TRACK_DIR",
+                           help="continue a stopped track run: finish its last cycle, go on")
     track.set_defaults(handler=_cmd_track)
 
     rep = sub.add_parser("report", help="summary and figure of a run folder")

@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, get_args
 
-from autotune.errors import ConfigError
+from autotune.errors import ConfigError, ConfigErrors
 
 __all__ = [
     "BusConfig",
@@ -188,34 +188,58 @@ class RunConfig:
 
 
 class _Table:
-    """A TOML table being read: typed getters that name the key on error, and a leftover check."""
+    """A TOML table being read: typed getters that name the key on error, and a leftover check.
 
-    def __init__(self, source: str, path: str, data: object) -> None:
-        if not isinstance(data, Mapping):
-            raise ConfigError(source, path or "<top>", "a table", data)
+    Problems are collected in ``problems`` (shared by every table of one file) instead of
+    raised, so that one reading reports every wrong key at once; a getter whose value is wrong
+    returns a stand-in value so that reading can go on. A table that is missing or not a table
+    is reported once and reads as empty without further reports.
+    """
+
+    def __init__(self, source: str, path: str, data: object, problems: list[ConfigError],
+                 *, absent: bool = False) -> None:
         self.source = source
         self.path = path
-        self.data = data
+        self.problems = problems
+        self.absent = absent or not isinstance(data, Mapping)
+        if not isinstance(data, Mapping) and not absent:
+            problems.append(ConfigError(source, path or "<top>", "a table", data))
+        self.data: Mapping[str, Any] = data if isinstance(data, Mapping) else {}
         self.used: set[str] = set()
 
     def _key(self, name: str) -> str:
         return f"{self.path}.{name}" if self.path else name
+
+    def problem(self, key: str, expected: str, got: object) -> None:
+        """Record a problem of ``key`` (a dotted key relative to this table)."""
+        if not self.absent:
+            self.problems.append(ConfigError(self.source, self._key(key), expected, got))
 
     def _raw(self, name: str, default: object) -> object:
         self.used.add(name)
         if name in self.data:
             return self.data[name]
         if default is _REQUIRED:
-            raise ConfigError(self.source, self._key(name), "a value (key is missing)", None)
+            self.problem(name, "a value (key is missing)", None)
+            return _MISSING
         return default
 
     def table(self, name: str, *, required: bool = True) -> _Table | None:
         self.used.add(name)
         if name not in self.data:
             if required:
-                raise ConfigError(self.source, self._key(name), "a table (missing)", None)
+                self.problem(name, "a table (missing)", None)
+                return _Table(self.source, self._key(name), {}, self.problems, absent=True)
             return None
-        return _Table(self.source, self._key(name), self.data[name])
+        return _Table(self.source, self._key(name), self.data[name], self.problems,
+                      absent=self.absent)
+
+    def _ranged(self, name: str, value: float, low: float | None, high: float | None,
+                low_open: bool) -> None:
+        if low is not None and (value <= low if low_open else value < low):
+            self.problem(name, f"a value {'>' if low_open else '>='} {low:g}", value)
+        elif high is not None and value > high:
+            self.problem(name, f"a value <= {high:g}", value)
 
     def number(
         self,
@@ -229,10 +253,15 @@ class _Table:
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
+        stand_in = float(low if low is not None else (high if high is not None else 1.0)) + (
+            1.0 if low_open else 0.0)
+        if value is _MISSING:
+            return stand_in
         if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-            raise ConfigError(self.source, self._key(name), "a finite number", value)
+            self.problem(name, "a finite number", value)
+            return stand_in
         value = float(value)
-        _check_range(self.source, self._key(name), value, low, high, low_open)
+        self._ranged(name, value, low, high, low_open)
         return value
 
     def integer(self, name: str, default: object = None, *, low: int | None = None,
@@ -240,47 +269,49 @@ class _Table:
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
+        stand_in = low if low is not None else 1
+        if value is _MISSING:
+            return stand_in
         if isinstance(value, bool) or not isinstance(value, int):
-            raise ConfigError(self.source, self._key(name), "an integer", value)
-        _check_range(self.source, self._key(name), value, low, high, False)
+            self.problem(name, "an integer", value)
+            return stand_in
+        self._ranged(name, value, low, high, False)
         return value
 
     def boolean(self, name: str, default: object = None) -> bool:
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
+        if value is _MISSING:
+            return False
         if not isinstance(value, bool):
-            raise ConfigError(self.source, self._key(name), "true or false", value)
+            self.problem(name, "true or false", value)
+            return False
         return value
 
     def string(self, name: str, default: object = None, *, choices: tuple[str, ...] = ()) -> str:
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
+        stand_in = choices[0] if choices else "-"
+        if value is _MISSING:
+            return stand_in
         if not isinstance(value, str) or not value:
-            raise ConfigError(self.source, self._key(name), "a non-empty string", value)
+            self.problem(name, "a non-empty string", value)
+            return stand_in
         if choices and value not in choices:
-            raise ConfigError(self.source, self._key(name), f"one of {', '.join(choices)}", value)
+            self.problem(name, f"one of {', '.join(choices)}", value)
+            return stand_in
         return value
 
     def finish(self) -> None:
-        unknown = sorted(set(self.data) - self.used)
-        if unknown:
-            raise ConfigError(
-                self.source, self._key(unknown[0]), "no such key (known: "
-                + ", ".join(sorted(self.used)) + ")", self.data[unknown[0]]
-            )
+        for name in sorted(set(self.data) - self.used):
+            self.problem(name, "no such key (known: " + ", ".join(sorted(self.used)) + ")",
+                         self.data[name])
 
 
 _REQUIRED = object()
-
-
-def _check_range(source: str, key: str, value: float, low: float | None, high: float | None,
-                 low_open: bool) -> None:
-    if low is not None and (value <= low if low_open else value < low):
-        raise ConfigError(source, key, f"a value {'>' if low_open else '>='} {low:g}", value)
-    if high is not None and value > high:
-        raise ConfigError(source, key, f"a value <= {high:g}", value)
+_MISSING = object()
 
 
 def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
@@ -288,13 +319,11 @@ def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
     limit_min = table.number("limit_min")
     limit_max = table.number("limit_max")
     if limit_max <= limit_min:
-        raise ConfigError(table.source, f"{table.path}.limit_max", f"a value > limit_min = {limit_min:g}",
-                          limit_max)
+        table.problem("limit_max", f"a value > limit_min = {limit_min:g}", limit_max)
     search_min = table.number("search_min", low=limit_min, high=limit_max)
     search_max = table.number("search_max", low=limit_min, high=limit_max)
     if search_max <= search_min:
-        raise ConfigError(table.source, f"{table.path}.search_max",
-                          f"a value > search_min = {search_min:g}", search_max)
+        table.problem("search_max", f"a value > search_min = {search_min:g}", search_max)
     max_step = table.number("max_step", low=0.0, low_open=True)
     table.finish()
     return SetpointConfig(name, unit, search_min, search_max, limit_min, limit_max, max_step)
@@ -314,13 +343,13 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         Folder against which relative paths in the file are resolved (the file's folder).
     """
     base = base_dir if base_dir is not None else Path.cwd()
-    top = _Table(source, "", data)
+    problems: list[ConfigError] = []
+    top = _Table(source, "", data, problems)
 
     bus_t = top.table("bus")
     endpoint = bus_t.string("endpoint")
-    if not endpoint.startswith(("tcp://", "ipc://", "inproc://")):
-        raise ConfigError(source, "bus.endpoint", "a ZeroMQ endpoint such as tcp://127.0.0.1:5560",
-                          endpoint)
+    if endpoint != "-" and not endpoint.startswith(("tcp://", "ipc://", "inproc://")):
+        bus_t.problem("endpoint", "a ZeroMQ endpoint such as tcp://127.0.0.1:5560", endpoint)
     curve_t = bus_t.table("curve", required=False)
     curve = None
     if curve_t is not None:
@@ -345,7 +374,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         setpoints.append(_read_setpoint(sub, name))
     for needed in ("velocity", "detuning"):
         if needed not in sp_t.data:
-            raise ConfigError(source, f"setpoints.{needed}", "a table (missing)", None)
+            sp_t.problem(needed, "a table (missing)", None)
     sp_t.finish()
 
     m_t = top.table("measurement")
@@ -416,7 +445,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
 
     rec_t = top.table("recovery", required=False)
     if rec_t is None:
-        rec_t = _Table(source, "recovery", {})
+        rec_t = _Table(source, "recovery", {}, problems)
     recovery = RecoveryConfig(
         step_retries=rec_t.integer("step_retries", 3, low=0, high=100),
         retry_wait_s=rec_t.number("retry_wait_s", 1.0, low=0.0, high=3600.0),
@@ -425,6 +454,19 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
     )
     rec_t.finish()
     top.finish()
+
+    # Relations between keys, checked once every key has been read.
+    if search.min_points > search.max_points:
+        s_t.problem("min_points", f"a value <= search.max_points = {search.max_points}",
+                    search.min_points)
+    if search.n_initial_points > search.max_points:
+        s_t.problem("n_initial_points", f"a value <= search.max_points = {search.max_points}",
+                    search.n_initial_points)
+    if retune.n_initial_points > retune.max_points:
+        r_t.problem("n_initial_points", f"a value <= retune.max_points = {retune.max_points}",
+                    retune.n_initial_points)
+    if problems:
+        raise ConfigErrors(problems)
 
     return RunConfig(
         source=source,

@@ -4,6 +4,7 @@
 
     AutotuneError                  everything autotune raises on purpose
     ├── ConfigError                a configuration file or value is wrong (file, key, expected, got)
+    │   └── ConfigErrors           several of them, found together before anything moved
     ├── LimitError                 a set-point was refused before it left this process
     │                              (outside the configured or described limits, or too large a step)
     ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
@@ -12,7 +13,9 @@
     └── RigError                   the rig, or the bus to it, failed
         ├── RigTimeout             no reply within the bound, after the capped retries
         ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
-        └── ProtocolError          a reply (or request) does not follow the wire protocol
+        ├── ProtocolError          a reply (or request) does not follow the wire protocol
+        └── RigMismatch            a reply does not match what this client applied or saw
+            └── RigRestarted       the rig's identity changed or its clock went back: it restarted
 
 Library exceptions (zmq, json, tomllib, OSError) are translated at the module boundary
 where they occur and chained with ``raise ... from exc``.
@@ -20,9 +23,12 @@ where they occur and chained with ``raise ... from exc``.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 __all__ = [
     "AutotuneError",
     "ConfigError",
+    "ConfigErrors",
     "LimitError",
     "EstimationError",
     "JournalError",
@@ -31,6 +37,8 @@ __all__ = [
     "RigTimeout",
     "RigRefused",
     "ProtocolError",
+    "RigMismatch",
+    "RigRestarted",
 ]
 
 
@@ -61,6 +69,27 @@ class ConfigError(AutotuneError):
         super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}")
 
 
+class ConfigErrors(ConfigError):
+    """Several configuration problems, reported together (the first one's fields are kept).
+
+    Parameters
+    ----------
+    problems : sequence of ConfigError
+        Every problem found, in the order found (at least one).
+    """
+
+    def __init__(self, problems: Sequence[ConfigError]) -> None:
+        if not problems:
+            raise ValueError("ConfigErrors: expected at least one problem")
+        self.problems = list(problems)
+        first = self.problems[0]
+        super().__init__(first.file, first.key, first.expected, first.got)
+        if len(self.problems) > 1:
+            lines = [f"{len(self.problems)} problems, nothing was sent to the rig:"]
+            lines += [f"  - {problem}" for problem in self.problems]
+            self.args = ("\n".join(lines),)
+
+
 class LimitError(AutotuneError):
     """A set-point was refused locally: outside its limits, or a step larger than allowed."""
 
@@ -74,7 +103,21 @@ class JournalError(AutotuneError):
 
 
 class Interrupted(AutotuneError):
-    """The run was stopped by SIGINT/SIGTERM; the rig was sent to its safe set-points."""
+    """The run was stopped by SIGINT/SIGTERM.
+
+    Attributes
+    ----------
+    safe : bool or None
+        True once the rig confirmed its safe set-points, False if the ``safe`` op failed, None
+        while nobody tried (for example a stop between two stages, with no move in progress).
+    safe_detail : str
+        The rig's error when ``safe`` is False, else an empty string.
+    """
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.safe: bool | None = None
+        self.safe_detail = ""
 
 
 class RigError(AutotuneError):
@@ -105,3 +148,22 @@ class RigRefused(RigError):
 
 class ProtocolError(RigError):
     """A message does not follow the wire protocol (bad JSON, wrong version, missing key)."""
+
+
+class RigMismatch(RigError):
+    """A reply contradicts what this client applied or saw: the set-points in force are not
+    those it applied, or the rig clock went back. Its data are never filed as measurements.
+
+    Attributes
+    ----------
+    reply : object or None
+        The parsed reply that did not match (an ``Acquisition`` whose shots the rig took), so
+        the caller can account for them; None when there was none.
+    """
+
+    reply: object | None = None
+
+
+class RigRestarted(RigMismatch):
+    """The rig restarted: its identity (``instance``) changed, or its clock went back to an
+    earlier time. Its set-points in force, clock and replay cache are gone."""

@@ -18,6 +18,8 @@ reported with a parametric-bootstrap interval (see :func:`estimate_inversion`).
 from __future__ import annotations
 
 import math
+import dataclasses
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -484,6 +486,40 @@ class InversionEstimate:
     identified: bool
     confidence: float
     resamples: int
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> InversionEstimate:
+        """Rebuild an estimate from :meth:`to_dict`'s mapping (a journal record).
+
+        Raises
+        ------
+        EstimationError
+            A field is missing, unknown or of the wrong type (names the field).
+        """
+        if not isinstance(data, Mapping):
+            raise EstimationError(f"estimate: expected a mapping, got {type(data).__name__}")
+        names = [f.name for f in dataclasses.fields(cls)]
+        missing = [n for n in names if n not in data]
+        unknown = sorted(set(data) - set(names))
+        if missing or unknown:
+            raise EstimationError(f"estimate: expected the fields of InversionEstimate; missing "
+                                  f"{missing}, unknown {unknown}")
+        values: dict[str, Any] = {}
+        for f in dataclasses.fields(cls):
+            value = data[f.name]
+            kind = f.type if isinstance(f.type, str) else f.type.__name__
+            if kind == "bool":
+                ok = isinstance(value, bool)
+            elif kind == "int":
+                ok = isinstance(value, int) and not isinstance(value, bool)
+            else:
+                ok = isinstance(value, int | float) and not isinstance(value, bool) and \
+                    math.isfinite(value)
+                value = float(value) if ok else value
+            if not ok:
+                raise EstimationError(f"estimate.{f.name}: expected a {kind}, got {value!r}")
+            values[f.name] = value
+        return cls(**values)
 
     def to_dict(self) -> dict[str, float | int | bool]:
         """JSON-ready mapping of every field (plain Python numbers)."""

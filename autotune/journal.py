@@ -46,7 +46,7 @@ RESULT_NAME = "result.json"
 LOG_NAME = "log.jsonl"
 
 #: End statuses after which a run may be continued with ``--resume`` (it did not finish).
-RESUMABLE = frozenset({"interrupted", "aborted", "failed"})
+RESUMABLE = frozenset({"interrupted", "aborted", "failed", "store_failed"})
 
 
 def utc_now() -> str:

@@ -35,14 +35,18 @@ from autotune.config import RunConfig
 from autotune.errors import (
     ConfigError,
     Interrupted,
+    JournalError,
     LimitError,
+    ProtocolError,
     RigError,
+    RigMismatch,
     RigRefused,
+    RigRestarted,
     RigTimeout,
 )
 from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
-from autotune.protocol import STEP_TOLERANCE
+from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
 from autotune.search import Dimension, SearchSpace, Strategy, make_strategy
 
@@ -282,6 +286,9 @@ class _Measurement:
     counts: dict[tuple[str, int], tuple[int, int, int]] = field(default_factory=dict)
     t_first: float | None = None
     t_last: float | None = None
+    # Requests written ahead in the journal whose reply never arrived: (field, phase index)
+    # -> (msg_id, shots). A resume resends them with the same msg_id first.
+    pending: dict[tuple[str, int], tuple[str, int]] = field(default_factory=dict)
 
     def note_times(self, t_start: float, t_end: float) -> None:
         """Widen the measurement's span on the rig clock to include one acquisition."""
@@ -295,9 +302,20 @@ class _Measurement:
             return None
         return 0.5 * (self.t_first + self.t_last)
 
+    @property
+    def started(self) -> bool:
+        """True once an acquisition was sent or received (its shots per phase are fixed)."""
+        return bool(self.counts or self.pending)
+
 
 class Session:
     """One stage's conversation with the rig: guarded moves, bounded retries, journaled steps.
+
+    Every logical rig operation keeps one ``msg_id`` through all of its retries (the bus
+    client's resends and this loop's own retries after a timeout, a ``busy`` or ``internal``
+    refusal or an interlock), so a rig that keeps its replies never executes it twice. An
+    acquisition is written ahead to the journal (a ``request`` record with its ``msg_id``)
+    before it is sent, so a resume can ask for its reply again instead of acquiring anew.
 
     Parameters
     ----------
@@ -345,14 +363,21 @@ class Session:
         if self.stop.is_set():
             raise Interrupted("stopped by signal")
 
-    def _call(self, what: str, action: Callable[[], Any]) -> Any:
-        """Run one rig call with bounded retries; an interlock waits (bounded) and retries."""
+    def _call(self, what: str, action: Callable[[str], Any], msg_id: str | None = None) -> Any:
+        """Run one logical rig operation with bounded retries, under one ``msg_id``.
+
+        ``action(msg_id)`` performs the call. A timeout, a malformed reply, a ``busy`` or
+        ``internal`` refusal is retried (at most ``recovery.step_retries`` times, ``retry_wait_s`` apart); an interlock
+        waits (bounded) and retries. Every retry resends the same ``msg_id``, so a rig that
+        already executed the request answers from its replay cache instead of running it again.
+        """
         recovery = self.config.recovery
+        msg_id = msg_id if msg_id is not None else new_msg_id()
         failures = 0
         while True:
             self._check_stop()
             try:
-                return action()
+                return action(msg_id)
             except RigRefused as exc:
                 if exc.kind == "interlock":
                     self._wait_interlock(what, exc.detail)
@@ -360,13 +385,16 @@ class Session:
                 if exc.kind not in ("busy", "internal"):
                     raise
                 error: RigError = exc
-            except RigTimeout as exc:
+            except (RigTimeout, ProtocolError) as exc:
+                # No valid reply: the request may or may not have run; the same msg_id is safe.
                 error = exc
             failures += 1
             if failures > recovery.step_retries:
-                self.decide("give_up", f"{what} failed {failures} times: {error}", op=what)
+                self.decide("give_up", f"{what} failed {failures} times: {error}", op=what,
+                            msg_id=msg_id)
                 raise error
-            self.decide("retry", f"{what} failed: {error}", op=what, attempt=failures)
+            self.decide("retry", f"{what} failed: {error}; resending msg_id {msg_id}", op=what,
+                        attempt=failures, msg_id=msg_id)
             self.sleep(recovery.retry_wait_s)
 
     def _wait_interlock(self, what: str, detail: str) -> None:
@@ -385,13 +413,50 @@ class Session:
 
     def learn_present(self) -> dict[str, float]:
         """Ask the rig which set-points are in force."""
-        status = self._call("status", self.rig.status)
+        status = self._call("status", lambda _id: self.rig.status())
         self.current = {k: float(v) for k, v in status.setpoints.items()}
         self.clock = float(status.clock)
         return dict(self.current)
 
+    def recover(self, error: RigMismatch, failures: int, what: str) -> None:
+        """Handle a reply that contradicts what was applied: journal it, re-learn the rig.
+
+        A restarted rig is described again (same name, its new limits); the set-points in
+        force are asked afresh, so that the next move starts from the truth. Gives up (raises
+        ``error``) after ``recovery.step_retries`` mismatches within one operation.
+        """
+        restarted = isinstance(error, RigRestarted)
+        kind = "rig_restarted" if restarted else "rig_mismatch"
+        if failures > self.config.recovery.step_retries:
+            self.decide("give_up", f"{what}: {failures} mismatched replies, last: {error}", op=what)
+            raise error
+        self.decide(kind, f"{what}: {error}; nothing of this reply is filed as data, the "
+                          f"set-points are applied again and the acquisition repeated",
+                    op=what, attempt=failures)
+        if restarted:
+            description = self._call("describe", lambda _id: self.rig.describe())
+            if description.rig != self.description.rig:
+                raise RigError(f"another rig answers at this endpoint: {description.rig!r}, "
+                               f"this run is on {self.description.rig!r}")
+            self.description = description
+            self.limits = effective_limits(self.config, description)
+            self.repetition_rate_hz = float(description.repetition_rate_hz)
+            self.journal.append("rig", instance=description.instance,
+                                reason="the rig restarted; described again")
+        self.learn_present()
+
     def move_to(self, target: Mapping[str, float], reason: str) -> None:
         """Move to ``target`` in guarded steps, journaling each applied step."""
+        failures = 0
+        while True:
+            try:
+                self._move_once(target, reason)
+                return
+            except RigMismatch as exc:
+                failures += 1
+                self.recover(exc, failures, "apply")
+
+    def _move_once(self, target: Mapping[str, float], reason: str) -> None:
         if not self.current:
             self.learn_present()
         steps = plan_moves(self.current, target, self.limits)
@@ -402,50 +467,53 @@ class Session:
             self._check_stop()
             for name, value in step.items():
                 self.limits[name].check(name, value)
-            applied = self._call("apply", lambda s=step: self.rig.apply(s))
+            msg_id = new_msg_id()
+            try:
+                applied = self._call("apply", lambda i, s=step: self.rig.apply(s, msg_id=i),
+                                     msg_id)
+            except RigError:
+                # The rig may or may not have moved: ask before planning the next step.
+                self.current = {}
+                raise
             self.current = {k: float(v) for k, v in applied.setpoints.items()}
             self.clock = float(applied.clock)
             self.journal.append("move", setpoints=step, applied=self.current, clock=applied.clock,
-                                reason=reason)
+                                reason=reason, msg_id=msg_id)
 
-    def go_safe(self, reason: str) -> None:
-        """Send the rig to its safe set-points; record it. Never raises past a rig error."""
+    def go_safe(self, reason: str) -> tuple[bool, str]:
+        """Send the rig to its safe set-points; record it. Never raises past a rig error.
+
+        Returns
+        -------
+        (bool, str)
+            Whether the rig confirmed its safe set-points, and its error if it did not.
+        """
         try:
             reply = self.rig.safe()
             self.current = {k: float(v) for k, v in reply.setpoints.items()}
             self.journal.append("safe", setpoints=self.current, reason=reason)
             self.log.warning("safe_setpoints_applied", reason=reason, setpoints=self.current)
+            return True, ""
         except RigError as exc:
             self.journal.append("safe_failed", reason=reason, error=str(exc))
             self.log.error("safe_setpoints_failed", reason=reason, error=str(exc))
+            return False, str(exc)
 
     # -- measurements ---------------------------------------------------------------------
 
     def measure(self, m: _Measurement, seed: int) -> InversionEstimate:
         """Complete measurement ``m`` (only its missing acquisitions) and estimate it."""
         cfg = self.config.measurement
-        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in m.setpoints.items()):
-            self.move_to(m.setpoints, reason=f"{m.label} {m.point}")
         for j, phase in enumerate(self.phases):
             for field_state in FIELDS:
-                if (field_state, j) in m.counts:
-                    continue
-                self._check_stop()
-                acq = self._call("acquire", lambda f=field_state, p=phase: self.rig.acquire(
-                    f, p, m.shots_per_phase))
-                counts = (int(acq.counts.e), int(acq.counts.g), int(acq.counts.i))
-                m.counts[(field_state, j)] = counts
-                m.note_times(float(acq.t_start), float(acq.t_end))
-                self.clock = float(acq.t_end)
-                self.tally.shots += int(acq.shots)
-                self.tally.rig_time_s += float(acq.t_end) - float(acq.t_start)
-                self.journal.append(
-                    "acquisition", label=m.label, point=m.point, field=field_state, phase_index=j,
-                    ramsey_phase=phase, shots=int(acq.shots),
-                    counts={"e": counts[0], "g": counts[1], "i": counts[2]},
-                    t_start=float(acq.t_start), t_end=float(acq.t_end),
-                    setpoints={k: float(v) for k, v in acq.setpoints.items()},
-                )
+                failures = 0
+                while (field_state, j) not in m.counts:
+                    self._check_stop()
+                    try:
+                        self._acquire_one(m, field_state, j, phase)
+                    except RigMismatch as exc:
+                        failures += 1
+                        self.recover(exc, failures, "acquire")
         estimate = estimate_inversion(
             self.fringe(m, "empty"), self.fringe(m, "one_photon"),
             confidence=cfg.confidence, seed=seed, resamples=cfg.resamples,
@@ -457,6 +525,59 @@ class Session:
                       stderr=round(estimate.inversion_stderr, 4))
         return estimate
 
+    def _acquire_one(self, m: _Measurement, field_state: str, j: int, phase: float) -> None:
+        """Take (or recover) one acquisition of ``m`` and journal it; never files a mismatch."""
+        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in m.setpoints.items()):
+            self.move_to(m.setpoints, reason=f"{m.label} {m.point}")
+        resend = (field_state, j) in m.pending
+        if resend:
+            msg_id, shots = m.pending[(field_state, j)]
+        else:
+            msg_id, shots = new_msg_id(), m.shots_per_phase
+            # Write-ahead: the request is on disk before it leaves, so a kill between the rig's
+            # execution and our record leaves a msg_id that a resume can ask for again.
+            self.journal.append("request", op="acquire", msg_id=msg_id, label=m.label,
+                                point=m.point, field=field_state, phase_index=j,
+                                ramsey_phase=phase, shots=shots)
+            m.pending[(field_state, j)] = (msg_id, shots)
+        try:
+            acq = self._call("acquire", lambda i: self.rig.acquire(
+                field_state, phase, shots, msg_id=i, resend=resend), msg_id)
+        except RigMismatch as exc:
+            del m.pending[(field_state, j)]
+            reply = exc.reply
+            self.journal.append(
+                "discarded", msg_id=msg_id, label=m.label, point=m.point, field=field_state,
+                phase_index=j, shots=int(reply.shots) if reply is not None else None,
+                counts=({"e": int(reply.counts.e), "g": int(reply.counts.g),
+                         "i": int(reply.counts.i)} if reply is not None else None),
+                setpoints=(dict(reply.setpoints) if reply is not None else None),
+                reason=str(exc))
+            self.current = {}
+            raise
+        except RigRefused as exc:
+            # The rig answered and did not acquire: nothing is pending any more, and a resume
+            # (perhaps with corrected shots) starts this acquisition afresh.
+            del m.pending[(field_state, j)]
+            self.journal.append("refused", op="acquire", msg_id=msg_id, label=m.label,
+                                point=m.point, field=field_state, phase_index=j, kind=exc.kind,
+                                detail=exc.detail)
+            raise
+        del m.pending[(field_state, j)]
+        counts = (int(acq.counts.e), int(acq.counts.g), int(acq.counts.i))
+        m.counts[(field_state, j)] = counts
+        m.note_times(float(acq.t_start), float(acq.t_end))
+        self.clock = max(self.clock, float(acq.t_end))
+        self.tally.shots += int(acq.shots)
+        self.tally.rig_time_s += float(acq.t_end) - float(acq.t_start)
+        self.journal.append(
+            "acquisition", label=m.label, point=m.point, field=field_state, phase_index=j,
+            ramsey_phase=phase, shots=int(acq.shots),
+            counts={"e": counts[0], "g": counts[1], "i": counts[2]},
+            t_start=float(acq.t_start), t_end=float(acq.t_end),
+            setpoints={k: float(v) for k, v in acq.setpoints.items()}, msg_id=msg_id,
+        )
+
     def fringe(self, m: _Measurement, field_state: str) -> FringeData:
         """The counts of one field state of ``m`` as fringe data."""
         rows = [(self.phases[j], *m.counts[(field_state, j)]) for j in range(len(self.phases))]
@@ -465,21 +586,111 @@ class Session:
                                       arr[:, 2].astype(np.int64), arr[:, 3].astype(np.int64))
 
 
+@dataclass
+class _Replayed:
+    """What a stage's journal records say, rebuilt for a resume."""
+
+    header: dict[str, Any] = field(default_factory=dict)
+    measurements: dict[tuple[str, int], _Measurement] = field(default_factory=dict)
+    estimates: dict[tuple[str, int], dict[str, Any]] = field(default_factory=dict)
+    estimate_order: list[tuple[str, int]] = field(default_factory=list)
+    proposals: dict[int, dict[str, float]] = field(default_factory=dict)
+    decisions: dict[str, dict[str, Any]] = field(default_factory=dict)
+
+
+def _replay(records: Iterable[Mapping[str, Any]]) -> _Replayed:
+    """Rebuild measurements, estimates, proposals and decisions from journal records.
+
+    Raises
+    ------
+    JournalError
+        A record refers to a measurement the journal never opened, or an acquisition appears
+        twice (both mean a damaged journal).
+    """
+    out = _Replayed()
+    requests: dict[str, tuple[tuple[str, int], str, int, int]] = {}
+    for rec in records:
+        kind = rec.get("type")
+        if kind == "stage":
+            out.header = dict(rec)
+        elif kind == "measurement":
+            key = (rec["label"], int(rec["point"]))
+            out.measurements[key] = _Measurement(rec["label"], int(rec["point"]),
+                                                 dict(rec["setpoints"]),
+                                                 int(rec["shots_per_phase"]))
+        elif kind == "amend":
+            out.measurements[(rec["label"], int(rec["point"]))].shots_per_phase = \
+                int(rec["shots_per_phase"])
+        elif kind == "request" and rec.get("op") == "acquire":
+            key = (rec["label"], int(rec["point"]))
+            if key not in out.measurements:
+                raise JournalError(f"journal record {rec['seq']}: a request for measurement "
+                                   f"{key} that was never opened")
+            slot = (rec["field"], int(rec["phase_index"]))
+            out.measurements[key].pending[slot] = (rec["msg_id"], int(rec["shots"]))
+            requests[rec["msg_id"]] = (key, rec["field"], int(rec["phase_index"]),
+                                       int(rec["shots"]))
+        elif kind in ("acquisition", "discarded", "refused"):
+            key = (rec["label"], int(rec["point"]))
+            m = out.measurements.get(key)
+            if m is None:
+                raise JournalError(f"journal record {rec['seq']}: an {kind} for measurement "
+                                   f"{key} that was never opened")
+            slot = (rec["field"], int(rec["phase_index"]))
+            m.pending.pop(slot, None)
+            if kind == "acquisition":
+                if slot in m.counts:
+                    raise JournalError(f"journal record {rec['seq']}: acquisition {key} {slot} "
+                                       f"appears twice")
+                c = rec["counts"]
+                m.counts[slot] = (int(c["e"]), int(c["g"]), int(c["i"]))
+                m.note_times(float(rec["t_start"]), float(rec["t_end"]))
+        elif kind == "estimate":
+            key = (rec["label"], int(rec["point"]))
+            if key not in out.estimates:
+                out.estimate_order.append(key)
+            out.estimates[key] = dict(rec)
+        elif kind == "proposal":
+            out.proposals[int(rec["point"])] = {k: float(v) for k, v in rec["setpoints"].items()}
+        elif kind == "decision":
+            out.decisions[str(rec.get("what"))] = dict(rec)
+    return out
+
+
+def _tally_from(records: Iterable[Mapping[str, Any]]) -> _Tally:
+    tally = _Tally()
+    for rec in records:
+        if rec.get("type") == "acquisition":
+            tally.shots += int(rec["shots"])
+            tally.rig_time_s += float(rec["t_end"]) - float(rec["t_start"])
+    return tally
+
+
 def _refine_detuning(session: Session, chosen: Mapping[str, float],
                      box: Mapping[str, tuple[float, float]],
                      measurement: Callable[..., _Measurement],
                      estimate_of: Callable[[str, int], InversionEstimate | None],
-                     seed_of: Callable[[int], int]) -> dict[str, float]:
-    """Measure a detuning scan through ``chosen`` and return ``chosen`` moved to its peak."""
+                     seed_of: Callable[[int], int],
+                     planned: Sequence[float] | None) -> dict[str, float]:
+    """Measure a detuning scan through ``chosen`` and return ``chosen`` moved to its peak.
+
+    The scan's detunings are journaled (a ``refine_plan`` decision) before the first of them
+    is measured; a resume passes them back as ``planned`` and finishes the same scan.
+    """
     search = session.config.search
-    low, high = box["detuning"]
-    centre = min(max(chosen["detuning"], low + search.refine_half_width_hz),
-                 high - search.refine_half_width_hz)
-    offsets = np.linspace(-search.refine_half_width_hz, search.refine_half_width_hz,
-                          search.refine_points)
+    if planned is None:
+        low, high = box["detuning"]
+        centre = min(max(chosen["detuning"], low + search.refine_half_width_hz),
+                     high - search.refine_half_width_hz)
+        offsets = np.linspace(-search.refine_half_width_hz, search.refine_half_width_hz,
+                              search.refine_points)
+        planned = [float(min(max(centre + offset, low), high)) for offset in offsets]
+        session.decide("refine_plan", f"detuning scan of {len(planned)} points from "
+                       f"{planned[0] / 1e3:+.2f} to {planned[-1] / 1e3:+.2f} kHz",
+                       detunings=planned, setpoints=dict(chosen))
     xs, ys, es = [], [], []
-    for k, offset in enumerate(offsets):
-        target = {**chosen, "detuning": float(min(max(centre + offset, low), high))}
+    for k, detuning in enumerate(planned):
+        target = {**chosen, "detuning": float(detuning)}
         m = measurement("refine", k, target, session.config.measurement.shots_per_phase)
         estimate = estimate_of("refine", k) or session.measure(m, seed_of(k))
         xs.append(m.setpoints["detuning"])
@@ -490,40 +701,6 @@ def _refine_detuning(session: Session, chosen: Mapping[str, float],
                    f"peak at {peak / 1e3:+.2f} kHz (was {chosen['detuning'] / 1e3:+.2f} kHz)",
                    detunings=xs, inversions=ys)
     return {**chosen, "detuning": peak}
-
-
-def _replay(records: Iterable[Mapping[str, Any]]) -> tuple[
-        dict[tuple[str, int], _Measurement], list[Mapping[str, Any]], dict[str, Any]]:
-    """Rebuild measurements, estimates and the stage header from journal records."""
-    measurements: dict[tuple[str, int], _Measurement] = {}
-    estimates: list[Mapping[str, Any]] = []
-    header: dict[str, Any] = {}
-    for rec in records:
-        kind = rec.get("type")
-        if kind == "stage":
-            header = dict(rec)
-        elif kind == "measurement":
-            key = (rec["label"], int(rec["point"]))
-            measurements[key] = _Measurement(rec["label"], int(rec["point"]),
-                                             dict(rec["setpoints"]), int(rec["shots_per_phase"]))
-        elif kind == "acquisition":
-            m = measurements[(rec["label"], int(rec["point"]))]
-            c = rec["counts"]
-            m.counts[(rec["field"], int(rec["phase_index"]))] = (int(c["e"]), int(c["g"]),
-                                                                   int(c["i"]))
-            m.note_times(float(rec["t_start"]), float(rec["t_end"]))
-        elif kind == "estimate":
-            estimates.append(rec)
-    return measurements, estimates, header
-
-
-def _tally_from(records: Iterable[Mapping[str, Any]]) -> _Tally:
-    tally = _Tally()
-    for rec in records:
-        if rec.get("type") == "acquisition":
-            tally.shots += int(rec["shots"])
-            tally.rig_time_s += float(rec["t_end"]) - float(rec["t_start"])
-    return tally
 
 
 def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, float]],
@@ -570,22 +747,53 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         does not lag behind a cavity drift during a long search.
     records : sequence of journal records
         Records of an earlier, killed attempt of this same stage, to resume from.
+
+    Notes
+    -----
+    Resuming: the stage record fixes the box and the first design; finished points (their
+    estimates) are told to the strategy once each, in their original order; a proposal or
+    measurement already journaled is measured as journaled (only its missing acquisitions,
+    resending any request whose reply never arrived with its own ``msg_id``); a measurement
+    not started yet takes the shots per phase of the present configuration (an ``amend``
+    record says so); a recommendation, detuning-scan plan or stop decision already journaled
+    is kept. Budgets are those of the present configuration.
     """
     config = session.config
     seed = config.search.seed
     stage_code = {"calibrate": 1, "retune": 2}[stage]
-    measurements, estimates, header = _replay(records)
+    replayed = _replay(records)
+    measurements = replayed.measurements
     session.tally = _tally_from(records)
-    if header:
+    told = sorted((key for key in replayed.estimate_order if key[0] == "point"),
+                  key=lambda k: k[1])
+    if replayed.header:
+        header = replayed.header
         box = {k: (float(v[0]), float(v[1])) for k, v in header["box"].items()}
         initial_points = [dict(p) for p in header["initial_points"]]
-        session.decide("resume", f"continuing {stage} from {len(records)} journal records",
-                       estimates=len(estimates))
+        resend = [msg_id for m in measurements.values() for msg_id, _ in m.pending.values()]
+        session.decide("resume", f"continuing {stage} from {len(records)} journal records: "
+                       f"{len(replayed.estimates)} finished measurements ({len(told)} search "
+                       f"points told to the strategy again, once each), {len(resend)} requests "
+                       f"to ask the rig for again by their msg_id",
+                       estimates=len(replayed.estimates), retold=[k[1] for k in told],
+                       resend=resend)
     else:
         session.journal.append("stage", stage=stage, box={k: list(v) for k, v in box.items()},
                                initial_points=[dict(p) for p in initial_points],
                                budget=budget.__dict__, strategy=config.search.strategy,
                                seed=seed)
+
+    shots = config.measurement.shots_per_phase
+    long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
+    wanted_shots = {"check": long_shots, "verify": long_shots}
+    for key, m in measurements.items():
+        want = wanted_shots.get(m.label, shots)
+        if key not in replayed.estimates and not m.started and m.shots_per_phase != want:
+            session.journal.append("amend", label=m.label, point=m.point, shots_per_phase=want,
+                                   reason=f"not started yet: shots per phase {m.shots_per_phase} "
+                                          f"of the journal replaced by {want} of the present "
+                                          f"configuration")
+            m.shots_per_phase = want
 
     def measurement(label: str, point: int, setpoints: Mapping[str, float],
                     shots_per_phase: int) -> _Measurement:
@@ -597,67 +805,72 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         return measurements[key]
 
     def estimate_of(label: str, point: int) -> InversionEstimate | None:
-        for rec in estimates:
-            if rec["label"] == label and int(rec["point"]) == point:
-                return InversionEstimate.from_dict(rec["estimate"])
-        return None
+        rec = replayed.estimates.get((label, point))
+        return None if rec is None else InversionEstimate.from_dict(rec["estimate"])
 
     label_code = {"check": 1, "point": 2, "verify": 3, "refine": 4}
-    shots = config.measurement.shots_per_phase
-    long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
     check_estimate: InversionEstimate | None = None
-    warm_start: list[tuple[Mapping[str, float], float, float]] = []
+    warm_start: list[tuple[Mapping[str, float], float, float, float | None]] = []
     if check_at is not None:
         check_estimate = estimate_of("check", 0)
         if check_estimate is None:
             m = measurement("check", 0, check_at, long_shots)
             check_estimate = session.measure(m, child_seed(seed, stage_code, label_code["check"]))
-        check_clock = measurements[("check", 0)].clock_s if ("check", 0) in measurements else None
-        warm_start.append((dict(check_at), check_estimate.inversion,
+        check = measurements.get(("check", 0))
+        check_setpoints = dict(check.setpoints) if check is not None else dict(check_at)
+        check_clock = check.clock_s if check is not None else None
+        warm_start.append((check_setpoints, check_estimate.inversion,
                            check_estimate.inversion_stderr, check_clock))
         if still_good_above is not None and check_estimate.inversion >= still_good_above:
             session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
-                           setpoints=dict(check_at))
-            return StageOutcome("still_good", dict(check_at), check_estimate, "check passed", 0,
+                           setpoints=check_setpoints)
+            if any(abs(session.current.get(k, math.nan) - v) > 0.0
+                   for k, v in check_setpoints.items()):
+                session.move_to(check_setpoints, reason="leave the rig at the checked set-points")
+            return StageOutcome("still_good", check_setpoints, check_estimate, "check passed", 0,
                                 session.tally.shots, session.tally.rig_time_s, True,
                                 check_estimate)
-        session.decide("search", f"inversion {check_estimate.inversion:.3f} (upper "
-                       f"{check_estimate.inversion_high:.3f}) below {still_good_above:.3f}")
+        if "search" not in replayed.decisions:
+            session.decide("search", f"inversion {check_estimate.inversion:.3f} (upper "
+                           f"{check_estimate.inversion_high:.3f}) below {still_good_above:.3f}")
 
     space = search_space(box)
     kind = config.search.strategy
     strategy = build_strategy(kind, space, config, seed=child_seed(seed, stage_code, 0),
                               n_initial_points=n_initial_points, max_points=budget.max_points,
                               initial_points=initial_points, warm_start=warm_start)
-    point_estimates = sorted((rec for rec in estimates if rec["label"] == "point"),
-                             key=lambda r: int(r["point"]))
-    for rec in point_estimates:
+    for key in told:
+        rec = replayed.estimates[key]
         est = rec["estimate"]
         strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]),
                       clock_s=rec.get("clock_s"))
-    n_points = len(point_estimates)
+    n_points = len(told)
     per_point = 2 * len(session.phases) * shots
     per_point_time = per_point / session.repetition_rate_hz
-    stop_reason = ""
+    stopped = replayed.decisions.get("stop_search")
+    stop_reason = str(stopped["reason"]) if stopped is not None else ""
     while not stop_reason:
         pending = measurements.get(("point", n_points))
         if pending is None:
-            if n_points >= budget.max_points:
-                stop_reason = f"point budget of {budget.max_points} reached"
-                break
-            if session.tally.shots + per_point > budget.max_shots:
-                stop_reason = f"shot budget {budget.max_shots} would be exceeded by the next point"
-                break
-            if session.tally.rig_time_s + per_point_time > budget.max_rig_time_s:
-                stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s would be exceeded"
-                break
-            if strategy.exhausted():
-                stop_reason = "the strategy's design is finished"
-                break
-            proposal = {k: float(v) for k, v in strategy.ask(clock_s=session.clock).items()}
-            session.journal.append("proposal", point=n_points, setpoints=proposal,
-                                   strategy=strategy.name)
+            proposal = replayed.proposals.get(n_points)
+            if proposal is None:
+                if n_points >= budget.max_points:
+                    stop_reason = f"point budget of {budget.max_points} reached"
+                    break
+                if session.tally.shots + per_point > budget.max_shots:
+                    stop_reason = (f"shot budget {budget.max_shots} would be exceeded by the "
+                                   f"next point")
+                    break
+                if session.tally.rig_time_s + per_point_time > budget.max_rig_time_s:
+                    stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s would be exceeded"
+                    break
+                if strategy.exhausted():
+                    stop_reason = "the strategy's design is finished"
+                    break
+                proposal = {k: float(v) for k, v in strategy.ask(clock_s=session.clock).items()}
+                session.journal.append("proposal", point=n_points, setpoints=proposal,
+                                       strategy=strategy.name)
             pending = measurement("point", n_points, proposal, shots)
         estimate = session.measure(pending, child_seed(seed, stage_code, label_code["point"],
                                                        n_points))
@@ -668,26 +881,35 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
             observer(n_points, strategy, session)
         if n_points >= budget.min_points and strategy.converged(clock_s=session.clock):
             stop_reason = "the strategy's convergence test passed"
-    session.decide("stop_search", stop_reason, points=n_points)
+    if stopped is None:
+        session.decide("stop_search", stop_reason, points=n_points)
 
-    recommendation = strategy.recommend(clock_s=session.clock)
-    chosen = {k: float(v) for k, v in recommendation.point.items()}
+    recommended = replayed.decisions.get("recommend")
     drift_rate = float(getattr(strategy, "drift_rate", 0.0))
-    session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
-                   setpoints=chosen, predicted=recommendation.value,
-                   drift_rate_hz_per_s=drift_rate)
+    if recommended is not None:
+        chosen = {k: float(v) for k, v in recommended["setpoints"].items()}
+        drift_rate = float(recommended.get("drift_rate_hz_per_s", drift_rate))
+    else:
+        recommendation = strategy.recommend(clock_s=session.clock)
+        chosen = {k: float(v) for k, v in recommendation.point.items()}
+        session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
+                       setpoints=chosen, predicted=recommendation.value,
+                       drift_rate_hz_per_s=drift_rate)
     if refine and config.search.refine_points and "detuning" in box and \
             measurements.get(("verify", 0)) is None:
-        chosen = _refine_detuning(session, chosen, box, measurement, estimate_of,
-                                  lambda k: child_seed(seed, stage_code, label_code["refine"], k))
+        plan = replayed.decisions.get("refine_plan")
+        chosen = _refine_detuning(
+            session, chosen, box, measurement, estimate_of,
+            lambda k: child_seed(seed, stage_code, label_code["refine"], k),
+            None if plan is None else [float(x) for x in plan["detunings"]])
     existing = measurements.get(("verify", 0))
     if existing is not None:
-        chosen = existing.setpoints
+        chosen = dict(existing.setpoints)
     verify = measurement("verify", 0, chosen, long_shots)
     final = estimate_of("verify", 0)
     if final is None:
         final = session.measure(verify, child_seed(seed, stage_code, label_code["verify"]))
-    else:
+    elif any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in chosen.items()):
         session.move_to(chosen, reason="leave the rig at the verified set-points")
     accepted = final.inversion >= config.min_inversion
     status = "accepted" if accepted else "below_acceptance"
@@ -695,4 +917,3 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
                    f"{config.min_inversion:.3f}", setpoints=chosen)
     return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
                         session.tally.rig_time_s, accepted, check_estimate, drift_rate)
-

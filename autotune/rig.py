@@ -1,7 +1,9 @@
 """The seam between the closed loop and an apparatus.
 
 The loop talks to "a rig" only through :class:`Rig`: five operations that mirror the wire
-protocol's ops of the same names. :class:`autotune.bus.BusClient` is the implementation used
+protocol's ops of the same names. An implementation checks each reply against what it applied
+(:class:`autotune.errors.RigMismatch`, :class:`autotune.errors.RigRestarted`); ``describe``
+(re)starts that watch. :class:`autotune.bus.BusClient` is the implementation used
 against every real or simulated rig; tests may pass any other object with these methods.
 """
 
@@ -27,18 +29,27 @@ class Rig(Protocol):
         """The rig's name, set-point limits, field states and repetition rate."""
         ...
 
-    def apply(self, setpoints: Mapping[str, float]) -> Applied:
-        """Apply set-points (each change within its largest step) and return those in force."""
+    def apply(self, setpoints: Mapping[str, float], *, msg_id: str | None = None) -> Applied:
+        """Apply set-points (each change within its largest step) and return those in force.
+
+        ``msg_id`` repeats an earlier request (the rig answers it from its replay cache if it
+        executed it already); by default a new one is drawn.
+        """
         ...
 
-    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Acquisition:
-        """Run ``shots`` samples with field state ``field`` at ``ramsey_phase`` (rad)."""
+    def acquire(self, field: str, ramsey_phase: float, shots: int, *,
+                msg_id: str | None = None, resend: bool = False) -> Acquisition:
+        """Run ``shots`` samples with field state ``field`` at ``ramsey_phase`` (rad).
+
+        ``resend`` says the request may have been executed before this process started (its
+        reply may come from the replay cache, with an earlier clock).
+        """
         ...
 
     def status(self) -> Status:
         """The rig clock (s), busy flag, interlock (``None`` or its reason) and set-points."""
         ...
 
-    def safe(self) -> Applied:
+    def safe(self, *, msg_id: str | None = None) -> Applied:
         """Send the rig to its safe set-points."""
         ...

@@ -1,8 +1,18 @@
-"""One stage as a run: run folder, manifest, journal, result file, last good calibration.
+"""One stage as a run: checks before the first move, run folder, manifest, result, last good.
 
-This is the imperative shell around :func:`autotune.loop.run_stage`. The CLI (and the dry run)
-call :func:`calibrate` and :func:`retune` with a connected rig; both write everything they do to
-the run folder and return the result that they also wrote to ``result.json``.
+This is the imperative shell around :func:`autotune.loop.run_stage`. A stage runs in two steps:
+
+1. :func:`prepare` talks to the rig only to ask it to describe itself and checks everything that
+   can be checked before a set-point is sent (units, limits, the search box, shots per
+   acquisition against the rig's limit, budgets, the last good calibration of a retune, the
+   store's folder, and on a resume the journal and every configuration change). It writes
+   nothing into the run folder; every problem found is reported together
+   (:class:`autotune.errors.ConfigErrors`).
+2. :func:`execute` creates (or reopens) the run folder, runs the stage and writes
+   ``result.json`` and the last good calibration.
+
+:func:`calibrate` and :func:`retune` do both in one call (studies and tests); the CLI calls the
+two steps so that a refused run leaves no run folder behind.
 
 The last good calibration (``[calibration] store``) is a small JSON file::
 
@@ -14,12 +24,14 @@ It is replaced (atomically) only by an accepted calibration or retune.
 
 from __future__ import annotations
 
+import os
 import platform
+import tempfile
 import threading
 import time
 import uuid
-from collections.abc import Callable, Mapping
-from dataclasses import asdict
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import asdict, dataclass, field
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -28,14 +40,50 @@ import structlog
 
 from autotune import __version__
 from autotune.config import RunConfig
-from autotune.errors import AutotuneError, ConfigError, Interrupted, JournalError
-from autotune.journal import RESULT_NAME, Journal, read_json, utc_now, write_json_atomic
-from autotune.loop import Budget, Session, StageOutcome, retune_box, run_stage
+from autotune.errors import (
+    AutotuneError,
+    ConfigError,
+    ConfigErrors,
+    Interrupted,
+    JournalError,
+)
+from autotune.journal import (
+    JOURNAL_NAME,
+    MANIFEST_NAME,
+    RESULT_NAME,
+    RESUMABLE,
+    Journal,
+    read_journal,
+    read_json,
+    utc_now,
+    write_json_atomic,
+)
+from autotune.loop import Budget, Limit, Session, StageOutcome, retune_box, run_stage
 from autotune.rig import Rig
 
-__all__ = ["calibrate", "retune", "read_last_good", "describe_to_dict"]
+__all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
+           "describe_to_dict", "preflight", "resume_changes", "STAGE_COMMANDS"]
 
 _log = structlog.get_logger(__name__)
+
+#: The commands that run one stage.
+STAGE_COMMANDS = ("calibrate", "retune")
+
+# Configuration keys a resume may change (dotted prefixes): budgets, shots of measurements not
+# started yet, waits and retries, decision thresholds, limits (the guards check every move
+# again), the store. Anything else would change the meaning of what was already measured.
+_RESUMABLE_CHANGES = (
+    "bus.",
+    "search.max_points", "search.max_shots", "search.max_rig_time_s", "search.min_points",
+    "measurement.shots_per_phase", "measurement.verification_shots_per_phase",
+    "measurement.confidence", "measurement.resamples",
+    "acceptance.min_inversion",
+    "calibration.store",
+    "retune.max_points", "retune.max_shots", "retune.check_shots_per_phase",
+    "retune.still_good_fraction",
+    "recovery.",
+)
+_LIMIT_KEYS = ("limit_min", "limit_max", "max_step")
 
 
 def _versions() -> dict[str, str]:
@@ -58,6 +106,8 @@ def describe_to_dict(description: Any) -> dict[str, Any]:
         "fields": list(description.fields),
         "repetition_rate_hz": description.repetition_rate_hz,
         "safe_setpoints": dict(description.safe_setpoints),
+        "instance": getattr(description, "instance", None),
+        "max_shots_per_acquisition": getattr(description, "max_shots_per_acquisition", None),
     }
 
 
@@ -75,36 +125,261 @@ def read_last_good(path: Path) -> dict[str, Any]:
         raise ConfigError(str(path), "<file>", "a last good calibration written by "
                           "'autotune calibrate'", str(exc)) from exc
     if not isinstance(data, dict) or not isinstance(data.get("setpoints"), dict) or not isinstance(
-            data.get("inversion"), int | float):
+            data.get("inversion"), int | float) or isinstance(data.get("inversion"), bool):
         raise ConfigError(str(path), "setpoints/inversion", "a last good calibration", data)
+    for name, value in data["setpoints"].items():
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ConfigError(str(path), f"setpoints.{name}", "a number", value)
     return data
 
 
-def _start(run_dir: Path, command: str, config: RunConfig, rig: Rig, resume: bool,
-           extra: Mapping[str, Any]) -> tuple[Journal, list[dict[str, Any]], Any]:
+# -- checks before the first move ---------------------------------------------------------
+
+def _check_store(store: Path, source: str) -> ConfigError | None:
+    """None if the store's folder exists (or was created) and a file can be written there."""
+    folder = Path(store).parent
+    if Path(store).is_dir():
+        return ConfigError(source, "calibration.store", "a file path, not a folder", str(store))
+    for parent in (folder, *folder.parents):
+        if parent.exists():
+            if not parent.is_dir():
+                return ConfigError(source, "calibration.store",
+                                   f"a path whose folders can exist ({parent} is a file)",
+                                   str(store))
+            break
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        handle, probe = tempfile.mkstemp(prefix=".autotune-probe-", dir=folder)
+        os.close(handle)
+        os.unlink(probe)
+    except OSError as exc:
+        return ConfigError(source, "calibration.store", "a folder this user can write",
+                           f"{folder}: {exc.strerror or exc}")
+    return None
+
+
+def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
+            ) -> dict[str, Limit]:
+    source = config.source
+    limits: dict[str, Limit] = {}
+    for sp in config.setpoints:
+        key = f"setpoints.{sp.name}"
+        described = description.setpoints.get(sp.name)
+        if described is None:
+            problems.append(ConfigError(source, key, "a set-point the rig describes ("
+                                        + ", ".join(sorted(description.setpoints)) + ")",
+                                        sp.name))
+            continue
+        if described.unit != sp.unit:
+            problems.append(ConfigError(source, f"{key}.unit",
+                                        f"the rig's unit {described.unit!r}", sp.unit))
+            continue
+        limit = Limit(min=max(sp.limit_min, described.min), max=min(sp.limit_max, described.max),
+                      max_step=min(sp.max_step, described.max_step))
+        if limit.min >= limit.max:
+            problems.append(ConfigError(
+                source, f"{key}.limit_min/limit_max",
+                f"limits that overlap the rig's [{described.min:g}, {described.max:g}] "
+                f"{sp.unit}", [sp.limit_min, sp.limit_max]))
+            continue
+        if sp.search_min < limit.min or sp.search_max > limit.max:
+            problems.append(ConfigError(
+                source, f"{key}.search_min/search_max",
+                f"a box within the effective limits [{limit.min:g}, {limit.max:g}] {sp.unit}",
+                [sp.search_min, sp.search_max]))
+        limits[sp.name] = limit
+    return limits
+
+
+def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
+              last_good: Mapping[str, Any] | None = None) -> list[ConfigError]:
+    """Everything that can be checked before the first set-point is sent, all at once.
+
+    Parameters
+    ----------
+    command : {"calibrate", "retune"}
+        The stage to run.
+    config : RunConfig
+        The checked configuration.
+    description : Description
+        The rig's describe reply.
+    store : Path
+        Where the last good calibration will be written (its folder is created if missing).
+    last_good : Mapping, optional
+        The last good calibration a retune starts from (already read).
+
+    Returns
+    -------
+    list of ConfigError
+        Every problem found (empty when the run may start).
+    """
+    source = config.source
+    problems: list[ConfigError] = []
+    limits = _limits(config, description, problems)
+    most = int(getattr(description, "max_shots_per_acquisition", 0) or 0)
+    if most:
+        shots = [("measurement.shots_per_phase", config.measurement.shots_per_phase),
+                 ("measurement.verification_shots_per_phase",
+                  config.measurement.verification_shots_per_phase)]
+        if command == "retune":
+            shots.append(("retune.check_shots_per_phase", config.retune.check_shots_per_phase))
+        for key, value in shots:
+            if value > most:
+                problems.append(ConfigError(source, key, f"at most the rig's "
+                                            f"max_shots_per_acquisition = {most}", value))
+    per_point = 2 * config.measurement.ramsey_phases * config.measurement.shots_per_phase
+    budget_key, budget = (("retune.max_shots", config.retune.max_shots) if command == "retune"
+                          else ("search.max_shots", config.search.max_shots))
+    if per_point > budget:
+        problems.append(ConfigError(source, budget_key, f"room for one point of {per_point} "
+                                    f"shots (2 fields x {config.measurement.ramsey_phases} "
+                                    f"phases x {config.measurement.shots_per_phase})", budget))
+    store_problem = _check_store(store, source)
+    if store_problem is not None:
+        problems.append(store_problem)
+    if command == "retune" and last_good is not None:
+        for sp in config.setpoints:
+            value = last_good["setpoints"].get(sp.name)
+            if value is None:
+                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                            "a value in the last good calibration", None))
+            elif sp.name in limits and not limits[sp.name].min <= value <= limits[sp.name].max:
+                limit = limits[sp.name]
+                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                            f"a value within the effective limits "
+                                            f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
+    return problems
+
+
+def _flatten(data: Any, prefix: str = "") -> Iterator[tuple[str, Any]]:
+    if isinstance(data, Mapping):
+        for key, value in data.items():
+            yield from _flatten(value, f"{prefix}{key}.")
+    else:
+        yield prefix[:-1], data
+
+
+def resume_changes(started: Mapping[str, Any], present: Mapping[str, Any], source: str
+                   ) -> tuple[list[tuple[str, Any, Any]], list[ConfigError]]:
+    """Configuration changes between the run's start and its resume, sorted into allowed ones
+    and refusals.
+
+    Allowed: budgets, shots of measurements not started yet, bus waits and retries, recovery,
+    decision thresholds, set-point limits (every move is checked again), the store. Anything
+    else (the box, units, strategy, seed, phases, nominal physics, retune widths) would change
+    the meaning of what was measured already and is refused, naming the key and both values.
+    """
+    before, after = dict(_flatten(started)), dict(_flatten(present))
+    allowed: list[tuple[str, Any, Any]] = []
+    refused: list[ConfigError] = []
+    for key in sorted(set(before) | set(after)):
+        old, new = before.get(key), after.get(key)
+        if old == new:
+            continue
+        limit_key = key.startswith("setpoints.") and key.rsplit(".", 1)[-1] in _LIMIT_KEYS
+        if limit_key or any(key == p or (p.endswith(".") and key.startswith(p))
+                            for p in _RESUMABLE_CHANGES):
+            allowed.append((key, old, new))
+        else:
+            refused.append(ConfigError(
+                source, key, f"the value the run started with ({old!r}): a resume cannot change "
+                             f"it; start a new run to use another", new))
+    return allowed, refused
+
+
+# -- the two steps -------------------------------------------------------------------------
+
+@dataclass
+class Prepared:
+    """A stage checked and ready to run (nothing written yet).
+
+    Attributes
+    ----------
+    command : str
+        ``"calibrate"`` or ``"retune"``.
+    config : RunConfig
+    description : Description
+        The rig's describe reply.
+    run_dir : Path
+    resume : bool
+    store : Path
+        Where the last good calibration is written.
+    last_good : dict or None
+        The last good calibration a retune starts from.
+    changes : list of (key, old, new)
+        Configuration changes a resume accepted.
+    """
+
+    command: str
+    config: RunConfig
+    description: Any
+    run_dir: Path
+    resume: bool
+    store: Path
+    last_good: dict[str, Any] | None = None
+    changes: list[tuple[str, Any, Any]] = field(default_factory=list)
+
+
+def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
+            store: Path | None = None) -> Prepared:
+    """Check a stage before anything moves or is written; see the module notes.
+
+    Raises
+    ------
+    ConfigErrors
+        Every configuration problem found, together (exit code 2 in the CLI).
+    ConfigError
+        The last good calibration of a retune is missing or damaged.
+    JournalError
+        A new run's folder already holds a run, or a resumed one cannot be resumed (no
+        journal, a damaged record, another command or rig, or the run already ended).
+    RigError
+        The rig does not answer its ``describe``.
+    """
+    if command not in STAGE_COMMANDS:
+        raise ValueError(f"command: expected one of {STAGE_COMMANDS}, got {command!r}")
+    run_dir = Path(run_dir)
+    store = Path(store) if store is not None else config.calibration_store
+    last_good = read_last_good(store) if command == "retune" else None
+    if not resume and (run_dir / JOURNAL_NAME).exists():
+        raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
     description = rig.describe()
+    problems = preflight(command, config, description, store=store, last_good=last_good)
+    changes: list[tuple[str, Any, Any]] = []
     if resume:
-        journal, manifest, records = Journal.open_for_resume(run_dir)
+        manifest = read_json(run_dir / MANIFEST_NAME)
+        records = read_journal(run_dir / JOURNAL_NAME)
         if manifest.get("command") != command:
-            journal.close()
-            raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not {command}")
-        if manifest.get("rig", {}).get("rig") != description.rig:
-            journal.close()
-            raise JournalError(f"{run_dir} was run on rig {manifest.get('rig', {}).get('rig')!r}, "
-                               f"this is {description.rig!r}")
-        return journal, records, description
-    manifest = {
+            raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not {command}; "
+                               f"resume it with 'autotune {manifest.get('command')} --resume'")
+        started_on = manifest.get("rig", {}).get("rig")
+        if started_on != description.rig:
+            raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
+                               f"{description.rig!r}")
+        if records and records[-1].get("type") == "end" and \
+                records[-1].get("status") not in RESUMABLE:
+            raise JournalError(f"{run_dir}: the run already ended "
+                               f"({records[-1].get('status')}); nothing to resume")
+        changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source)
+        problems.extend(refused)
+    if problems:
+        raise ConfigErrors(problems)
+    return Prepared(command, config, description, run_dir, resume, store, last_good, changes)
+
+
+def _manifest(prepared: Prepared, extra: Mapping[str, Any]) -> dict[str, Any]:
+    config = prepared.config
+    return {
         "run_id": uuid.uuid4().hex,
-        "command": command,
+        "command": prepared.command,
         "started": utc_now(),
         "config_file": config.source,
         "config": dict(config.raw),
         "seed": config.search.seed,
         "versions": _versions(),
-        "rig": describe_to_dict(description),
+        "rig": describe_to_dict(prepared.description),
         **extra,
     }
-    return Journal.create(run_dir, manifest), [], description
 
 
 def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: float,
@@ -139,53 +414,143 @@ def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: flo
     return result
 
 
-def _execute(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool,
-             stop: threading.Event | None, store: Path, stage_args: Any,
-             extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+def _stage_args(prepared: Prepared, session: Session,
+                observer: Callable[..., None] | None) -> dict[str, Any]:
+    config = prepared.config
+    if prepared.command == "calibrate":
+        nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
+        box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
+        first = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
+                 for name, (lo, hi) in box.items()}
+        s = config.search
+        return {
+            "stage": "calibrate", "box": box,
+            "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
+            "n_initial_points": s.n_initial_points, "initial_points": [first],
+            "observer": observer, "refine": True,
+        }
+    assert prepared.last_good is not None
+    centre = {sp.name: float(prepared.last_good["setpoints"][sp.name]) for sp in config.setpoints}
+    r = config.retune
+    return {
+        "stage": "retune", "box": retune_box(config, centre, session.limits),
+        "budget": Budget(r.max_points, r.max_shots, config.search.max_rig_time_s,
+                         min(config.search.min_points, r.max_points)),
+        "n_initial_points": r.n_initial_points, "initial_points": [centre],
+        "check_at": centre,
+        "still_good_above": r.still_good_fraction * float(prepared.last_good["inversion"]),
+        "verification_shots_per_phase": r.check_shots_per_phase,
+        "observer": observer,
+    }
+
+
+def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None,
+            extra: Mapping[str, Any] | None = None,
+            observer: Callable[..., None] | None = None) -> dict[str, Any]:
+    """Run a prepared stage: open the run folder, run, write the result and the last good.
+
+    On a stop signal or any error after the folder exists the rig is sent to its safe
+    set-points (the outcome is on the raised :class:`Interrupted` as ``safe``), the journal gets
+    an ``end`` record and is closed; the run can be resumed.
+
+    Raises
+    ------
+    Interrupted
+        SIGINT/SIGTERM (``safe`` says whether the rig confirmed its safe set-points).
+    JournalError
+        The run folder or the last good store could not be written; a run whose only failure is
+        the store ends ``store_failed`` with the rig left at its verified set-points.
+    RigError, LimitError
+        The rig failed past the retries, or a set-point was refused.
+    """
+    command, config, run_dir = prepared.command, prepared.config, prepared.run_dir
     wall_start = time.monotonic()
-    journal, records, description = _start(run_dir, command, config, rig, resume, extra or {})
+    extra = dict(extra or {})
+    if command == "retune":
+        extra = {"last_good": prepared.last_good, **extra}
+    if prepared.resume:
+        journal, _, records = Journal.open_for_resume(run_dir)
+    else:
+        journal, records = Journal.create(run_dir, _manifest(prepared, extra)), []
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
     try:
-        session = Session(rig, config, journal, description, stop=stop)
-        clock_start = float(records[0]["clock"]) if records and "clock" in records[0] else \
-            rig.status().clock
-        if not records:
-            journal.append("start", clock=clock_start, command=command)
+        session = Session(rig, config, journal, prepared.description, stop=stop)
+        if prepared.changes:
+            session.decide("config_changed", "resumed with a changed configuration: "
+                           + "; ".join(f"{k}: {old!r} -> {new!r}"
+                                       for k, old, new in prepared.changes),
+                           changes=[{"key": k, "old": old, "new": new}
+                                    for k, old, new in prepared.changes])
+        starts = [r for r in records if r.get("type") == "start"]
+        if starts:
+            clock_start = float(starts[0]["clock"])
+        else:
+            clock_start = float(rig.status().clock)
+            journal.append("start", clock=clock_start, command=command,
+                           instance=getattr(prepared.description, "instance", None))
     except BaseException:
         journal.append("end", status=status)
         journal.close()
         raise
     try:
         session.learn_present()
-        outcome = run_stage(session, records=records, **stage_args(session))
-        clock_end = rig.status().clock
+        outcome = run_stage(session, records=records, **_stage_args(prepared, session, observer))
+        clock_end = session.clock
         result = _result(outcome, command, run_dir, clock_start, clock_end,
                          time.monotonic() - wall_start)
-        write_json_atomic(run_dir / RESULT_NAME, result)
         if outcome.accepted and outcome.status != "still_good":
-            write_json_atomic(store, {
-                "setpoints": outcome.setpoints, "inversion": outcome.estimate.inversion,
-                "inversion_low": outcome.estimate.inversion_low,
-                "inversion_high": outcome.estimate.inversion_high,
-                "run_dir": str(run_dir), "t_wall": utc_now(), "rig": description.rig,
-            })
-            session.decide("store", f"new last good calibration written to {store}")
+            try:
+                write_json_atomic(prepared.store, {
+                    "setpoints": outcome.setpoints, "inversion": outcome.estimate.inversion,
+                    "inversion_low": outcome.estimate.inversion_low,
+                    "inversion_high": outcome.estimate.inversion_high,
+                    "run_dir": str(run_dir), "t_wall": utc_now(),
+                    "rig": prepared.description.rig,
+                })
+            except JournalError as exc:
+                # The calibration itself is good and the rig stays at it: keep the result,
+                # say what failed, and let a resume with a corrected store finish the job.
+                result["store_error"] = str(exc)
+                write_json_atomic(run_dir / RESULT_NAME, result)
+                session.decide("store_failed", f"{exc}; the result is in {RESULT_NAME} and the "
+                               f"rig stays at the verified set-points")
+                status = "store_failed"
+                raise
+            session.decide("store", f"new last good calibration written to {prepared.store}")
+        write_json_atomic(run_dir / RESULT_NAME, result)
         status = outcome.status
         return result
-    except Interrupted:
+    except Interrupted as exc:
         status = "interrupted"
-        session.go_safe("stopped by signal")
+        exc.safe, exc.safe_detail = session.go_safe("stopped by signal")
+        raise
+    except JournalError:
+        if status != "store_failed":
+            status = "aborted"
+            session.go_safe("the run folder could not be written")
         raise
     except AutotuneError as exc:
         status = "aborted"
         session.decide("abort", str(exc))
         session.go_safe(f"aborted: {exc}")
         raise
+    except Exception as exc:
+        status = "failed"
+        session.decide("abort", f"internal error: {type(exc).__name__}: {exc}")
+        session.go_safe(f"internal error: {type(exc).__name__}")
+        raise
     finally:
         journal.append("end", status=status)
         journal.close()
         log.info("run_end", status=status)
+
+
+def _run(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool,
+         stop: threading.Event | None, store: Path | None, extra: Mapping[str, Any] | None,
+         observer: Callable[..., None] | None) -> dict[str, Any]:
+    prepared = prepare(command, rig, config, run_dir, resume=resume, store=store)
+    return execute(prepared, rig, stop=stop, extra=extra, observer=observer)
 
 
 def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
@@ -213,21 +578,8 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
     observer : callable, optional
         Passed to :func:`autotune.loop.run_stage` (benchmark studies).
     """
-    def stage_args(session: Session) -> dict[str, Any]:
-        nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
-        box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
-        first = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
-                 for name, (lo, hi) in box.items()}
-        s = config.search
-        return {
-            "stage": "calibrate", "box": box,
-            "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
-            "n_initial_points": s.n_initial_points, "initial_points": [first],
-            "observer": observer, "refine": True,
-        }
-
-    return _execute("calibrate", rig, config, run_dir, resume=resume, stop=stop,
-                    store=store or config.calibration_store, stage_args=stage_args, extra=extra)
+    return _run("calibrate", rig, config, run_dir, resume=resume, stop=stop, store=store,
+                extra=extra, observer=observer)
 
 
 def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
@@ -239,26 +591,11 @@ def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
     Parameters are those of :func:`calibrate`; ``store`` is read first and replaced only by an
     accepted new setting.
     """
-    store = store or config.calibration_store
-    last_good = read_last_good(store)
-    names = [sp.name for sp in config.setpoints]
-    missing = [n for n in names if n not in last_good["setpoints"]]
-    if missing:
-        raise ConfigError(str(store), "setpoints", "values for " + ", ".join(names), missing)
-    centre = {n: float(last_good["setpoints"][n]) for n in names}
+    return _run("retune", rig, config, run_dir, resume=resume, stop=stop, store=store,
+                extra=extra, observer=observer)
 
-    def stage_args(session: Session) -> dict[str, Any]:
-        r = config.retune
-        return {
-            "stage": "retune", "box": retune_box(config, centre, session.limits),
-            "budget": Budget(r.max_points, r.max_shots, config.search.max_rig_time_s,
-                             min(config.search.min_points, r.max_points)),
-            "n_initial_points": r.n_initial_points, "initial_points": [centre],
-            "check_at": centre,
-            "still_good_above": r.still_good_fraction * float(last_good["inversion"]),
-            "verification_shots_per_phase": r.check_shots_per_phase,
-            "observer": observer,
-        }
 
-    return _execute("retune", rig, config, run_dir, resume=resume, stop=stop, store=store,
-                    stage_args=stage_args, extra={"last_good": last_good, **(extra or {})})
+def unfinished(records: Sequence[Mapping[str, Any]]) -> bool:
+    """True when a journal's records show a run that did not end, or ended resumably."""
+    return not records or records[-1].get("type") != "end" or \
+        records[-1].get("status") in RESUMABLE

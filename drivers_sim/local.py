@@ -35,8 +35,9 @@ class LocalRig:
         # Never started: only its request handler is used, so no socket is opened.
         self._server = RigServer(rig, "inproc://local-rig", faults=FaultConfig())
 
-    def _call(self, op: Op, args: Mapping[str, Any], parse: Callable[[Mapping[str, Any]], Any]) -> Any:
-        msg_id = protocol.new_msg_id()
+    def _call(self, op: Op, args: Mapping[str, Any], parse: Callable[[Mapping[str, Any]], Any],
+              msg_id: str | None = None) -> Any:
+        msg_id = msg_id or protocol.new_msg_id()
         reply = self._server.handle(protocol.encode_request(op, args, msg_id))
         return parse(protocol.decode_reply(reply, msg_id))
 
@@ -44,22 +45,27 @@ class LocalRig:
         """The rig's description."""
         return self._call(Op.DESCRIBE, {}, protocol.parse_description)
 
-    def apply(self, setpoints: Mapping[str, float]) -> Applied:
-        """Apply set-points."""
-        return self._call(Op.APPLY, {"setpoints": dict(setpoints)}, protocol.parse_applied)
+    def apply(self, setpoints: Mapping[str, float], *, msg_id: str | None = None) -> Applied:
+        """Apply set-points (``msg_id``: repeat an earlier request)."""
+        return self._call(Op.APPLY, {"setpoints": dict(setpoints)}, protocol.parse_applied,
+                          msg_id)
 
-    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Acquisition:
-        """Acquire counts of one field state at one Ramsey phase (rad)."""
+    def acquire(self, field: str, ramsey_phase: float, shots: int, *,
+                msg_id: str | None = None, resend: bool = False) -> Acquisition:
+        """Acquire counts of one field state at one Ramsey phase (rad).
+
+        In process the rig cannot restart, so ``resend`` changes nothing.
+        """
         args = {"field": field, "ramsey_phase": float(ramsey_phase), "shots": int(shots)}
-        return self._call(Op.ACQUIRE, args, protocol.parse_acquisition)
+        return self._call(Op.ACQUIRE, args, protocol.parse_acquisition, msg_id)
 
     def status(self) -> Status:
         """Clock, busy flag, interlock, set-points in force, shot total."""
         return self._call(Op.STATUS, {}, protocol.parse_status)
 
-    def safe(self) -> Applied:
+    def safe(self, *, msg_id: str | None = None) -> Applied:
         """Go to the safe set-points."""
-        return self._call(Op.SAFE, {}, protocol.parse_safe)
+        return self._call(Op.SAFE, {}, protocol.parse_safe, msg_id)
 
     def truth(self, setpoints: Mapping[str, float] | None = None) -> dict[str, Any]:
         """The noiseless truth at ``setpoints`` (default: those in force)."""

@@ -22,36 +22,10 @@ from autotune.bus import BusClient
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from rig_process import REPO, ServerProcess, spawn_server
 
-DRY_RUN = REPO / "configs" / "dry-run.toml"
-RUN_TIMEOUT_S = 600.0
-
-
-def _autotune(*args: str, timeout: float = RUN_TIMEOUT_S, cwd: Path | None = None
-              ) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "autotune.cli", *args], capture_output=True,
-                          text=True, timeout=timeout, cwd=cwd or REPO, stdin=subprocess.DEVNULL)
-
-
-def _write_config(path: Path, endpoint: str, **sections: dict[str, Any]) -> Path:
-    """The dry-run settings pointed at ``endpoint``, with some values changed, as a TOML file."""
-    data = tomllib.loads(DRY_RUN.read_text())
-    data["bus"]["endpoint"] = endpoint
-    for section, values in sections.items():
-        data[section].update(values)
-    path.write_text(_to_toml(data))
-    return path
-
-
-def _to_toml(data: dict[str, Any], prefix: str = "") -> str:
-    scalars = []
-    tables = []
-    for key, value in data.items():
-        if isinstance(value, dict):
-            tables.append(_to_toml(value, f"{prefix}{key}."))
-        else:
-            scalars.append(f"{key} = {json.dumps(value)}")
-    head = f"[{prefix[:-1]}]\n" if prefix and scalars else ""
-    return head + "\n".join(scalars) + ("\n\n" if scalars else "") + "".join(tables)
+from cli_helpers import DRY_RUN
+from cli_helpers import autotune as _autotune
+from cli_helpers import to_toml as _to_toml
+from cli_helpers import write_config as _write_config
 
 
 @pytest.fixture

@@ -178,7 +178,7 @@ class _RecordingRig:
         return Status(clock=0.0, busy=False, interlock=None, setpoints=dict(self.present),
                       shots_total=0)
 
-    def apply(self, setpoints: dict[str, float]) -> Applied:
+    def apply(self, setpoints: dict[str, float], *, msg_id: str | None = None) -> Applied:
         self.applied.append(dict(setpoints))
         self.present.update(setpoints)
         return Applied(setpoints=dict(self.present), clock=0.0)
@@ -204,6 +204,21 @@ def test_out_of_range_proposals_never_reach_the_rig(tmp_path_factory: pytest.Tem
     rig = _RecordingRig(limits, present)
     journal = Journal.create(tmp_path_factory.mktemp("guard") / "run", {})
     session = Session(rig, config, journal, rig.describe())
+    try:
+        _moves(session, rig, limits, data)
+    finally:
+        journal.close()
+    previous = dict(present)
+    for applied in rig.applied:
+        for name, value in applied.items():
+            lim = limits[name]
+            assert lim.min <= value <= lim.max
+            assert abs(value - previous[name]) <= lim.max_step * (1 + 1e-9)
+            previous[name] = value
+
+
+def _moves(session: Session, rig: _RecordingRig, limits: dict[str, SetpointLimit],
+           data: st.DataObject) -> None:
     for _ in range(3):
         target = {name: data.draw(st.floats(lim.min - (lim.max - lim.min), lim.max + (lim.max - lim.min)))
                   for name, lim in limits.items()}
@@ -212,11 +227,3 @@ def test_out_of_range_proposals_never_reach_the_rig(tmp_path_factory: pytest.Tem
             session.move_to(target, reason="property test")
         except LimitError:
             assert len(rig.applied) == before  # refused before anything moved
-    journal.close()
-    previous = dict(present)
-    for applied in rig.applied:
-        for name, value in applied.items():
-            lim = limits[name]
-            assert lim.min <= value <= lim.max
-            assert abs(value - previous[name]) <= lim.max_step * (1 + 1e-9)
-            previous[name] = value

@@ -1,0 +1,98 @@
+"""Running the ``autotune`` command in real processes, with configs written for a test."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import time
+import tomllib
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from autotune.journal import read_journal
+from rig_process import REPO
+
+DRY_RUN = REPO / "configs" / "dry-run.toml"
+RUN_TIMEOUT_S = 600.0
+
+
+def autotune(*args: str, timeout: float = RUN_TIMEOUT_S, cwd: Path | None = None
+             ) -> subprocess.CompletedProcess[str]:
+    """Run ``python -m autotune.cli ARGS`` to completion and return what it printed."""
+    return subprocess.run([sys.executable, "-m", "autotune.cli", *args], capture_output=True,
+                          text=True, timeout=timeout, cwd=cwd or REPO, stdin=subprocess.DEVNULL)
+
+
+def start_autotune(*args: str, output: Any = subprocess.PIPE, **options: Any
+                   ) -> subprocess.Popen[str]:
+    """Start ``python -m autotune.cli ARGS`` in the background."""
+    return subprocess.Popen([sys.executable, "-m", "autotune.cli", *args], cwd=REPO,
+                            stdin=subprocess.DEVNULL, stdout=output, stderr=output, text=True,
+                            **options)
+
+
+def to_toml(data: dict[str, Any], prefix: str = "") -> str:
+    """A small TOML writer for the config tables of the tests (scalars and nested tables)."""
+    scalars = []
+    tables = []
+    for key, value in data.items():
+        if isinstance(value, dict):
+            tables.append(to_toml(value, f"{prefix}{key}."))
+        else:
+            scalars.append(f"{key} = {json.dumps(value)}")
+    head = f"[{prefix[:-1]}]\n" if prefix and scalars else ""
+    return head + "\n".join(scalars) + ("\n\n" if scalars else "") + "".join(tables)
+
+
+def write_config(path: Path, endpoint: str, **sections: dict[str, Any]) -> Path:
+    """The dry-run settings pointed at ``endpoint``, with some values changed, as a TOML file."""
+    data = tomllib.loads(DRY_RUN.read_text())
+    data["bus"]["endpoint"] = endpoint
+    for section, values in sections.items():
+        for key, value in values.items():
+            if isinstance(value, dict) and isinstance(data[section].get(key), dict):
+                data[section][key].update(value)
+            else:
+                data[section][key] = value
+    path.write_text(to_toml(data))
+    return path
+
+
+#: A calibration of a few seconds: 3 points of 3 phases, a 3-point scan, small shots.
+TINY = {
+    "measurement": {"shots_per_phase": 200, "ramsey_phases": 3, "resamples": 200,
+                    "verification_shots_per_phase": 400},
+    "search": {"max_points": 3, "min_points": 3, "n_initial_points": 2, "refine_points": 3},
+    "retune": {"max_points": 2, "n_initial_points": 1, "check_shots_per_phase": 400,
+               "max_shots": 100_000},
+}
+
+
+def tiny_config(path: Path, endpoint: str, store: Path, **sections: dict[str, Any]) -> Path:
+    """:data:`TINY` settings (plus ``sections``) against ``endpoint`` with the store at ``store``."""
+    merged = {name: dict(values) for name, values in TINY.items()}
+    for name, values in sections.items():
+        merged.setdefault(name, {}).update(values)
+    merged.setdefault("calibration", {})["store"] = str(store)
+    return write_config(path, endpoint, **merged)
+
+
+def wait_for_record(journal: Path, match: Any, timeout_s: float = 300.0,
+                    process: subprocess.Popen[str] | None = None) -> dict[str, Any]:
+    """Poll a journal until a record satisfies ``match(record)``; return it (bounded wait)."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if journal.exists():
+            try:
+                for record in read_journal(journal):
+                    if match(record):
+                        return record
+            except Exception:  # noqa: BLE001 - a journal read mid-write is retried
+                pass
+        if process is not None and process.poll() is not None:
+            pytest.fail(f"the process ended ({process.returncode}) before the record appeared")
+        time.sleep(0.01)
+    pytest.fail(f"{journal} had no matching record within {timeout_s} s")
