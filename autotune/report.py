@@ -748,6 +748,13 @@ def _marker(label: str) -> str:
     return _LABEL_MARKERS.get(label, "X")
 
 
+def _errorbar(ax: Any, x: Any, y: Any, *, gid: str, **kwargs: Any) -> Any:
+    """``ax.errorbar`` with ``gid`` on the data line only (matplotlib would copy it to the bars)."""
+    container = ax.errorbar(x, y, **kwargs)
+    container.lines[0].set_gid(gid)
+    return container
+
+
 def _title(fig: Any, run: Run | None, text: str) -> None:
     fig.suptitle(f"{run.name}: {text}" if run is not None else text, fontsize=11)
 
@@ -790,7 +797,7 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
         low = np.array([c.low for c in cis])
         high = np.array([c.high for c in cis])
         x = np.mod(phase[keep], 2.0 * math.pi)
-        ax.errorbar(x, p, yerr=[p - low, high - p], fmt="o", color=colour, capsize=3, ms=5,
+        _errorbar(ax, x, p, yerr=[p - low, high - p], fmt="o", color=colour, capsize=3, ms=5,
                     label=f"{_FIELD_NAMES[fld]}: data ({_level(level)} Wilson)", gid=f"data-{fld}")
         try:
             fit = fit_fringe(FringeData.from_counts(phase, e, g, i))
@@ -848,7 +855,7 @@ def figure_progress(run: Run) -> tuple[Any, str] | None:
     final = run.final_measurement()
     if final is not None and final in done:
         k = done.index(final)
-        ax.errorbar([shots[k]], [inv[k]], yerr=[[inv[k] - low[k]], [high[k] - inv[k]]], fmt="D",
+        _errorbar(ax, [shots[k]], [inv[k]], yerr=[[inv[k] - low[k]], [high[k] - inv[k]]], fmt="D",
                     color="tab:red", capsize=4, label=f"verified ({final.name})", gid="verified")
     from matplotlib.ticker import StrMethodFormatter
 
@@ -1022,7 +1029,7 @@ def figure_scan(run: Run) -> tuple[Any, str] | None:
         y = np.array([m.value("inversion") for m in pick])
         lo = np.array([m.value("inversion_low") for m in pick])
         hi = np.array([m.value("inversion_high") for m in pick])
-        ax.errorbar(x, y, yerr=[y - lo, hi - y], fmt=_marker(label), capsize=3, ms=6,
+        _errorbar(ax, x, y, yerr=[y - lo, hi - y], fmt=_marker(label), capsize=3, ms=6,
                     label=f"{label} ({len(pick)})", gid=f"scan-{label}")
     chosen = run.chosen
     if chosen is not None and "detuning" in chosen:
@@ -1131,7 +1138,7 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         t = np.array([_when(use_clock, origin, m.clock_s, m.t_wall) for m in pick])
         y = np.array([m.value("inversion") for m in pick])
         e = np.array([m.value("inversion_stderr") for m in pick])
-        ax_inv.errorbar(t, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt=_marker(label), ms=4,
+        _errorbar(ax_inv, t, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt=_marker(label), ms=4,
                         capsize=2, lw=0.8, label=f"{label} ({len(pick)})", gid=f"inv-{label}")
     if len(runs) > 1:
         for r in runs:
