@@ -478,10 +478,12 @@ def _parser() -> argparse.ArgumentParser:
     track.add_argument("--out", help="folder for the cycles' run folders")
     track.set_defaults(handler=_cmd_track)
 
-    rep = sub.add_parser("report", help="summary and figure of a run folder")
+    rep = sub.add_parser("report", help="morning report of a run, dry-run or track folder: "
+                                        "figures, report.html and a text summary (reads only)")
     rep.add_argument("run_dir", help="a run folder, a dry run's folder or a track folder")
     rep.add_argument("--no-plot", action="store_true", help="text summary only")
-    rep.add_argument("--out", help="folder for the figures and report.html (default RUN_DIR)")
+    rep.add_argument("--out", metavar="DIR",
+                     help="folder for the figures and report.html (default RUN_DIR)")
     rep.set_defaults(handler=_cmd_report)
     return parser
 

@@ -112,6 +112,8 @@ _RUNNING = "running or killed"
 _TEXT_TABLE_MAX = 80
 # Above this many runs in a folder, the text gives one line per run instead of a section each.
 _TEXT_SECTIONS_MAX = 3
+# Above this many runs, the timeline marks where each starts but no longer names it.
+_NAMED_RUNS_MAX = 12
 _DPI = 100
 
 
@@ -216,7 +218,7 @@ class Run:
 
     @property
     def status(self) -> str:
-        """The end record's status, else the result's, else ``running or killed``."""
+        """The end record's status, or ``running or killed`` without an end record."""
         if self.ended is not None:
             return self.ended
         return _RUNNING
@@ -664,6 +666,23 @@ def _level(confidence: float) -> str:
     return f"{100 * confidence:g} %"
 
 
+def _number(mapping: Mapping[str, Any], key: str, default: float) -> float:
+    value = mapping.get(key, default)
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return float(value)
+    return default
+
+
+def _interval(result: Mapping[str, Any]) -> tuple[float, float, float] | None:
+    """The result's inversion and interval, or None if absent or not numbers."""
+    pair = result.get("inversion_interval")
+    inv = _number(result, "inversion", math.nan)
+    if not (isinstance(pair, Sequence) and len(pair) == 2 and math.isfinite(inv)):
+        return None
+    low, high = (_number({"v": v}, "v", math.nan) for v in pair)
+    return (inv, low, high) if math.isfinite(low) and math.isfinite(high) else None
+
+
 def _header(run: Run) -> list[tuple[str, str]]:
     """The run's header as (name, text) rows, for the text summary and the page."""
     result = run.result or {}
@@ -671,9 +690,10 @@ def _header(run: Run) -> list[tuple[str, str]]:
             ("started", str(run.manifest.get("started", "?"))), ("status", run.status)]
     final = run.final_measurement()
     level = _level(run.confidence)
-    if "inversion" in result and "inversion_interval" in result:
-        low, high = result["inversion_interval"]
-        rows.append(("verified inversion", f"{result['inversion']:.3f} [{low:.3f}, {high:.3f}] "
+    verified = _interval(result)
+    if verified is not None:
+        inv, low, high = verified
+        rows.append(("verified inversion", f"{inv:.3f} [{low:.3f}, {high:.3f}] "
                      f"({level} interval)"))
     elif final is not None:
         rows.append(("verified inversion", f"{final.value('inversion'):.3f} "
@@ -696,18 +716,18 @@ def _header(run: Run) -> list[tuple[str, str]]:
                      f"absorption {final.value('absorption'):.3f}; contrasts "
                      f"{final.value('contrast_empty'):.3f} (empty), "
                      f"{final.value('contrast_one_photon'):.3f} (one photon)"))
-    points = result.get("points", sum(m.label == "point" for m in run.estimated))
-    shots = int(result.get("shots", run.shots))
-    rig_time = result.get("rig_time_s", run.rig_time_s)
-    if "wall_time_s" in result:
-        wall = _duration(float(result["wall_time_s"]))
+    points = int(_number(result, "points", sum(m.label == "point" for m in run.estimated)))
+    shots = int(_number(result, "shots", run.shots))
+    rig_time = _number(result, "rig_time_s", run.rig_time_s)
+    if math.isfinite(_number(result, "wall_time_s", math.nan)):
+        wall = _duration(_number(result, "wall_time_s", math.nan))
     else:
         first = _parse_time(run.records[0].get("t_wall")) if run.records else None
         last = _parse_time(run.records[-1].get("t_wall")) if run.records else None
         wall = (_duration((last - first).total_seconds()) + " so far"
                 if first is not None and last is not None else "unknown")
     rows.append(("effort", f"{points} search points, {len(run.estimated)} measurements, "
-                 f"{shots:,} shots, rig time {_duration(float(rig_time))}, wall time {wall}"))
+                 f"{shots:,} shots, rig time {_duration(rig_time)}, wall time {wall}"))
     stop = result.get("stop_reason")
     if not stop:
         stops = [d["reason"] for d in run.decisions if d["what"] == "stop_search"]
@@ -1148,9 +1168,10 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
                 continue
             for ax in (ax_inv, ax_det, ax_cor):
                 ax.axvline(start, color="0.7", lw=0.8, ls="--", zorder=0)
-            ax_inv.annotate(r.name, (start, 1.0), xycoords=("data", "axes fraction"),
-                            xytext=(2, -2), textcoords="offset points", fontsize=7,
-                            va="top", color="0.35", rotation=90)
+            if len(runs) <= _NAMED_RUNS_MAX:
+                ax_inv.annotate(r.name, (start, 1.0), xycoords=("data", "axes fraction"),
+                                xytext=(2, -2), textcoords="offset points", fontsize=7,
+                                va="top", color="0.35", rotation=90)
     ax_inv.set_ylabel("fringe inversion (dimensionless)")
     ax_inv.grid(alpha=0.3)
     ax_inv.legend(fontsize=7, loc="best", ncol=2)
@@ -1341,7 +1362,7 @@ def _measurement_rows(run: Run) -> list[str]:
                          f"median {np.nanmedian(inv):.3f}, max {np.nanmax(inv):.3f}")
         return lines
     lines = [f"{'label':<7} {'#':>3} {'velocity m/s':>12} {'detuning kHz':>12} "
-             f"{'inversion':>9} {'interval':>15} {'phase/pi':>8} {'fit p':>7}"]
+             f"{'inversion':>9} {'interval':<14} {'phase/pi':>8} {'fit p':>7}"]
     for m in done:
         p = min((fit_p_value(m.value(f"chi2_{f}"), int(m.value(f"dof_{f}") or 0))
                  for f in _FIELDS), default=math.nan)
@@ -1355,11 +1376,8 @@ def _measurement_rows(run: Run) -> list[str]:
 
 def _overview_line(name: str, run: Run) -> str:
     result = run.result or {}
-    if "inversion" in result and "inversion_interval" in result:
-        low, high = result["inversion_interval"]
-        inv = f"{result['inversion']:.3f} [{low:.3f}, {high:.3f}]"
-    else:
-        inv = "-"
+    verified = _interval(result)
+    inv = f"{verified[0]:.3f} [{verified[1]:.3f}, {verified[2]:.3f}]" if verified else "-"
     chosen = run.chosen or {}
     ratio = "-"
     truth = run.truth
@@ -1371,8 +1389,8 @@ def _overview_line(name: str, run: Run) -> str:
     return (f"{name:<12} {run.status:<17} {inv:>22} "
             f"{chosen.get('velocity', math.nan):>8.1f} "
             f"{chosen.get('detuning', math.nan) / 1e3:>9.2f} "
-            f"{int(result.get('shots', run.shots)):>9,} "
-            f"{_duration(float(result.get('rig_time_s', run.rig_time_s))):>10} {ratio:>6}")
+            f"{int(_number(result, 'shots', run.shots)):>9,} "
+            f"{_duration(_number(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
 
 
 def format_text(report: Report) -> str:
@@ -1492,8 +1510,8 @@ def render_html(report: Report) -> str:
             rows.append("<tr>" + "".join(f"<td>{_esc(c)}</td>" for c in (
                 name, run.command, run.status, hdr.get("verified inversion", "-"),
                 hdr.get("chosen set-points", "-"),
-                f"{int((run.result or {}).get('shots', run.shots)):,}",
-                _duration(float((run.result or {}).get("rig_time_s", run.rig_time_s))))) + "</tr>")
+                f"{int(_number(run.result or {}, 'shots', run.shots)):,}",
+                _duration(_number(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
         parts.append(f"<section><h2>Runs</h2><table>{head}{''.join(rows)}</table></section>")
         parts += [_figure_html(f) for f in lead]
     for name, run in zip(names, report.runs, strict=True):
@@ -1550,7 +1568,7 @@ def _write_bytes(path: Path, data: bytes) -> None:
     try:
         path.write_bytes(data)
     except OSError as exc:
-        raise JournalError(f"cannot write {path}: {exc}") from exc
+        raise JournalError(f"cannot write {path}: {exc} (write elsewhere with --out DIR)") from exc
 
 
 def write_report(run_dir: Path, *, plot: bool = True, out: Path | None = None) -> str:
@@ -1584,7 +1602,8 @@ def write_report(run_dir: Path, *, plot: bool = True, out: Path | None = None) -
     try:
         target.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise JournalError(f"cannot create {target}: {exc}") from exc
+        raise JournalError(f"cannot create {target}: {exc} (write elsewhere with --out DIR)") \
+            from exc
     for fig in report.figures:
         fig.png = _png(fig.figure)
         stem = "-".join(s for s in ("report", _safe(fig.section), fig.key) if s)
@@ -1602,7 +1621,8 @@ def write_report(run_dir: Path, *, plot: bool = True, out: Path | None = None) -
         try:
             _overview_sheet(sheet, target / FIGURE_NAME)
         except OSError as exc:
-            raise JournalError(f"cannot write {target / FIGURE_NAME}: {exc}") from exc
+            raise JournalError(f"cannot write {target / FIGURE_NAME}: {exc} (write elsewhere "
+                               "with --out DIR)") from exc
         lines.append(f"figures: {len(report.figures)} in {target} "
                      f"({', '.join(f.file.name for f in report.figures[:6])}"
                      f"{', ...' if len(report.figures) > 6 else ''}); overview {FIGURE_NAME}")
