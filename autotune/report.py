@@ -148,6 +148,8 @@ class Measurement:
         Wall time of the estimate record.
     shots_after : int
         Shots acquired in the run up to and including this estimate.
+    order : int
+        ``seq`` of the estimate record (-1 until estimated).
     """
 
     label: str
@@ -160,6 +162,7 @@ class Measurement:
     clock_s: float | None = None
     t_wall: str | None = None
     shots_after: int = 0
+    order: int = -1
     _t_first: float | None = None
     _t_last: float | None = None
 
@@ -240,7 +243,7 @@ class Run:
     def estimated(self) -> list[Measurement]:
         """Measurements with an estimate, in the order they were estimated."""
         done = [m for m in self.measurements if m.estimate is not None]
-        return sorted(done, key=lambda m: m.shots_after)
+        return sorted(done, key=lambda m: m.order)
 
     def box(self, stage: int = -1) -> dict[str, tuple[float, float]] | None:
         """The search box of a stage record (the last one by default), or None."""
@@ -264,9 +267,13 @@ class Run:
 
     @property
     def chosen(self) -> dict[str, float] | None:
-        """Set-points the run chose: the result's, else the last recommendation's."""
+        """Set-points the run chose: the result's; before it, the last verification's (after
+        the detuning scan) or else the last recommendation's."""
         if self.result and isinstance(self.result.get("setpoints"), Mapping):
             return _setpoints(self.result["setpoints"])
+        verifying = [m for m in self.measurements if m.label == "verify"]
+        if verifying:
+            return dict(verifying[-1].setpoints)
         for d in reversed(self.decisions):
             if d.get("what") == "recommend" and isinstance(d.get("setpoints"), Mapping):
                 return _setpoints(d["setpoints"])
@@ -452,6 +459,7 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
                     m.clock_s = clock
                 m.t_wall = rec.get("t_wall")
                 m.shots_after = shots
+                m.order = int(rec.get("seq", -1))
             elif kind == "move":
                 applied = rec.get("applied") or rec.get("setpoints")
                 if isinstance(rec.get("clock"), (int, float)):
@@ -613,10 +621,11 @@ def run_flags(run: Run) -> list[Flag]:
         shift, stderr = final.value("phase_shift"), final.value("phase_shift_stderr")
         off = abs(shift - math.pi)
         if math.isfinite(off) and off > PHASE_SIGMAS * stderr and off > PHASE_MIN_RAD:
+            sigmas = f"{off / stderr:.1f}" if stderr > 0 else "infinitely many"
             flags.append(Flag("phase_shift", f"the phase shift at the chosen point ({final.name})"
                               f" is {shift / math.pi:.3f} pi +- {stderr / math.pi:.3f} pi, "
-                              f"{off / math.pi:.2f} pi from pi ({off / stderr:.1f} standard "
-                              "errors): the detuning is off the 2 pi condition"))
+                              f"{off / math.pi:.2f} pi from pi ({sigmas} standard errors): the "
+                              "setting is off the 2 pi condition"))
     poor = [(m, fits) for m in run.estimated if (fits := _poor_fits(m))]
     for m, fits in poor[:3]:
         for fld, chi2, dof, p in fits:
@@ -709,7 +718,7 @@ def _header(run: Run) -> list[tuple[str, str]]:
     chosen = run.chosen
     rows.append(("chosen set-points", _fmt_setpoints(chosen) +
                  ("" if chosen is None or run.chosen_is_verified
-                  else " (recommended, not yet verified)")))
+                  else " (not yet verified)")))
     if final is not None:
         shift, stderr = final.value("phase_shift"), final.value("phase_shift_stderr")
         rows.append(("phase shift", f"{shift / math.pi:.3f} pi +- {stderr / math.pi:.3f} pi; "
@@ -1009,7 +1018,7 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
         handles += ax.plot(chosen["velocity"], chosen["detuning"] / 1e3, marker="*", ms=18,
                            mfc="none", mec="red", mew=1.8, ls="none", gid="chosen", zorder=5,
                            label="chosen" if run.chosen_is_verified
-                           else "recommended (not verified)")
+                           else "chosen (not yet verified)")
     outside = ""
     if true_best is not None:
         handles += ax.plot(*true_best, marker="P", ms=12, color="black", mfc="white", ls="none",

@@ -590,6 +590,27 @@ def test_bad_endings_and_alarms_are_flagged(tmp_path: Path) -> None:
     assert "contrast collapsed" in flags[2].text
 
 
+def test_a_running_run_shows_the_setpoints_it_is_verifying(tmp_path: Path) -> None:
+    """Before its result, a run's chosen set-points are those of the verification it started."""
+    rng = np.random.default_rng(10)
+    run = _write_run(tmp_path / "run", [_point(rng, "point", k, 480.0 + 10 * k, 0.0)
+                                         for k in range(3)], end=None)
+    target = {"velocity": 495.0, "detuning": -2500.0}
+    journal, _, _ = Journal.open_for_resume(run)
+    with journal:
+        journal.append("decision", what="recommend", reason="surrogate's best",
+                       setpoints={"velocity": 495.0, "detuning": 0.0})
+        journal.append("measurement", label="verify", point=0, setpoints=target,
+                       shots_per_phase=4000)
+    built = report.build_report(run)
+    header = dict(built.headers["run"])
+    assert header["status"] == "running or killed"
+    assert header["chosen set-points"] == "velocity 495.0 m/s, detuning -2.50 kHz (not yet verified)"
+    assert header["verified inversion"] == "none yet"
+    fringes = next(f for f in built.figures if f.key == "fringes")
+    assert "latest measurement" in fringes.caption and "point 2" in fringes.caption
+
+
 # --------------------------------------------------------------------------------------------
 # A night in one journal, with record types and labels this report does not know
 # --------------------------------------------------------------------------------------------
