@@ -484,7 +484,8 @@ def _cmd_report(ns: argparse.Namespace) -> int:
     from autotune import report
 
     def body() -> int:
-        text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot)
+        text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot,
+                                   out=Path(ns.out) if ns.out is not None else None)
         print(text)
         return EXIT_OK
 
@@ -558,9 +559,12 @@ def _parser() -> argparse.ArgumentParser:
                            help="continue a stopped track run: finish its last cycle, go on")
     track.set_defaults(handler=_cmd_track)
 
-    rep = sub.add_parser("report", help="summary and figure of a run folder")
-    rep.add_argument("run_dir", help="a run folder")
+    rep = sub.add_parser("report", help="morning report of a run, dry-run or track folder: "
+                                        "figures, report.html and a text summary (reads only)")
+    rep.add_argument("run_dir", help="a run folder, a dry run's folder or a track folder")
     rep.add_argument("--no-plot", action="store_true", help="text summary only")
+    rep.add_argument("--out", metavar="DIR",
+                     help="folder for the figures and report.html (default RUN_DIR)")
     rep.set_defaults(handler=_cmd_report)
     return parser
 
