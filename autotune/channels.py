@@ -512,6 +512,8 @@ def _law_from(reader: _Reader, name: str, unit: str, channel_unit: str) -> Law:
     kind = reader.string("law")
     if kind not in _LAW_KEYS:
         raise reader.fail("law", "'linear' or 'stark'", kind)
+    if kind == "stark" and unit != "Hz":
+        raise reader.fail("law", "the stark law only for a detuning (unit Hz)", f"{kind} for {name} in {unit}")
     allowed = set(_COMMON_KEYS) | set(_LAW_KEYS[kind])
     unknown = sorted(str(k) for k in reader.table if k not in allowed)
     if unknown:
@@ -523,8 +525,6 @@ def _law_from(reader: _Reader, name: str, unit: str, channel_unit: str) -> Law:
         if scale == 0.0:
             raise reader.fail("scale", f"a non-zero number ({unit} per {channel_unit})", scale)
         return LinearLaw(scale, reader.number("offset") or 0.0)
-    if unit != "Hz":
-        raise reader.fail("law", "the stark law only for a detuning (unit Hz)", f"{kind} for {name} in {unit}")
     if channel_unit not in _VOLT_UNITS:
         raise reader.fail("channel_unit", f"a voltage unit for the stark law: {', '.join(_VOLT_UNITS)}",
                           channel_unit)
