@@ -332,9 +332,6 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
 
     _configure_server_logging(ns.server_log_level or ns.log_level)
     log = structlog.get_logger("autotune.serve").bind(config=str(ns.config))
-    print(CAUTION + " autotune serve hands the requests of any authorised client to this "
-          "driver; the limits and steps of its DRIVER.toml are the server's last software "
-          "guard.", file=sys.stderr)
     try:
         config = load_driver_config(ns.config)
         bind = ns.bind or config.bind
@@ -361,6 +358,13 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
         log.exception("driver_failed_to_start", error=f"{type(exc).__name__}: {exc}")
         _close_quietly(driver, log)
         return EXIT_RIG
+    if served.description.simulated:
+        print(f"serving the SIMULATED rig {served.description.rig!r}: no hardware is touched",
+              file=sys.stderr)
+    else:
+        print(CAUTION + " autotune serve hands the requests of any authorised client to this "
+              "driver; the limits and steps of its DRIVER.toml are the server's last software "
+              "guard.", file=sys.stderr)
     log.info("driver_loaded", rig=served.description.rig, driver=config.driver_class,
              simulated=served.description.simulated, setpoints=served.channel_map.summary())
     return _serve_until_stopped(served, bind, faults=FaultConfig(), curve=curve, fault_seed=0,

@@ -225,6 +225,11 @@ class _Answer:
         return "an ok reply"
 
 
+def _num(value: object) -> str:
+    """A set-point value as a person reads it (ten significant digits)."""
+    return f"{value:.10g}" if isinstance(value, float) else repr(value)
+
+
 def _short(text: str, limit: int = 120) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
@@ -323,10 +328,16 @@ class Probe:
             self._fail(rule, f"status afterwards: {answer.show()}")
             raise _Incomplete
         try:
-            return protocol.parse_status(answer.result)
+            status = protocol.parse_status(answer.result)
         except ProtocolError as exc:
             self._fail(rule, f"status afterwards: {exc}")
             raise _Incomplete from None
+        assert self.description is not None
+        missing = sorted(set(self.description.setpoints) - set(status.setpoints))
+        if missing:
+            self._fail(rule, f"status afterwards lacks set-points {missing}")
+            raise _Incomplete
+        return status
 
     def _close_enough(self, name: str, got: float, want: float) -> bool:
         assert self.description is not None
@@ -334,7 +345,7 @@ class Probe:
 
     def _unchanged(self, before: Mapping[str, float], after: Mapping[str, float]) -> str:
         """"" if every set-point is where it was, else a description of what moved."""
-        moved = [f"{name} {before[name]!r} -> {after.get(name)!r}" for name in before
+        moved = [f"{name} {_num(before[name])} -> {_num(after.get(name))}" for name in before
                  if name not in after or not self._close_enough(name, after[name], before[name])]
         return ", ".join(moved)
 
@@ -346,7 +357,7 @@ class Probe:
             return self.findings
         status = self._still_rules()
         if status is None:
-            self._skip_moving("status did not answer")
+            self._skip_moving("status did not answer as described")
         elif status.interlock is not None:
             self._skip_moving(f"an interlock is set ({status.interlock}): nothing is moved")
         elif status.busy:
@@ -403,7 +414,7 @@ class Probe:
             if safe is None:
                 problems.append(f"no safe value for {name}")
             elif not limit.min <= safe <= limit.max:
-                problems.append(f"{name} safe {safe!r} outside [{limit.min!r}, {limit.max!r}]")
+                problems.append(f"{name} safe {_num(safe)} outside [{_num(limit.min)}, {_num(limit.max)}]")
         self._fail("describe.safe", "; ".join(problems)) if problems else self._pass("describe.safe")
         missing = [f for f in ("empty", "one_photon") if f not in description.fields]
         if missing:
@@ -427,6 +438,7 @@ class Probe:
                 names = sorted(status.setpoints)
                 if names != sorted(self.description.setpoints):
                     self._fail("status", f"set-points {names}, described {sorted(self.description.setpoints)}")
+                    status = None
                 else:
                     self._pass("status")
         msg_id = protocol.new_msg_id()
@@ -494,7 +506,7 @@ class Probe:
     def _apply(self, rule: str, name: str, value: float) -> bool:
         answer = self._call("apply", {"setpoints": {name: value}})
         if answer.result is None:
-            self._fail(rule, f"{name} {value!r}: {answer.show()}")
+            self._fail(rule, f"{name} {_num(value)}: {answer.show()}")
             return False
         try:
             applied = protocol.parse_applied(answer.result)
@@ -503,11 +515,11 @@ class Probe:
             return False
         reported = applied.setpoints.get(name)
         if reported is None or not self._close_enough(name, reported, value):
-            self._fail(rule, f"{name} {value!r} sent, the reply says {reported!r}")
+            self._fail(rule, f"{name} {_num(value)} sent, the reply says {_num(reported)}")
             return False
         shown = self._in_force(rule).setpoints.get(name)
         if shown is None or not self._close_enough(name, shown, value):
-            self._fail(rule, f"{name} {value!r} applied, status says {shown!r}")
+            self._fail(rule, f"{name} {_num(value)} applied, status says {_num(shown)}")
             return False
         return True
 
@@ -518,8 +530,8 @@ class Probe:
         for name, limit in self.description.setpoints.items():
             current = start.get(name)
             if current is None or not limit.min <= current <= limit.max:
-                self._fail("apply", f"{name} in force {current!r} is outside its limits "
-                                    f"[{limit.min!r}, {limit.max!r}]; not moved")
+                self._fail("apply", f"{name} in force {_num(current)} is outside its limits "
+                                    f"[{_num(limit.min)}, {_num(limit.max)}]; not moved")
                 raise _Incomplete
             upward = current <= 0.5 * (limit.min + limit.max)
             room = (limit.max - current) if upward else (current - limit.min)
@@ -529,7 +541,7 @@ class Probe:
             target = current + step if upward else current - step
             if not self._apply("apply", name, target):
                 raise _Incomplete
-            moved.append(f"{name} {current!r} -> {target!r}")
+            moved.append(f"{name} {_num(current)} -> {_num(target)}")
         if moved:
             self._pass("apply", "; ".join(moved))
         else:
@@ -544,7 +556,7 @@ class Probe:
             value = here[name] + limit.max_step if room_up >= room_down else here[name] - limit.max_step
             if not self._apply("apply.full_step", name, value):
                 return
-            full.append(f"{name} {here[name]!r} -> {value!r}")
+            full.append(f"{name} {_num(here[name])} -> {_num(value)}")
         if full:
             self._pass("apply.full_step", "; ".join(full))
         else:
@@ -578,13 +590,13 @@ class Probe:
         after = self._in_force(rule).setpoints
         moved = self._unchanged(before, after)
         if answer.kind != "out_of_range":
-            self._fail(rule, f"{name} {value!r}: {answer.show()}" + (f"; moved {moved}" if moved else ""))
+            self._fail(rule, f"{name} {_num(value)}: {answer.show()}" + (f"; moved {moved}" if moved else ""))
         elif name not in answer.detail:
             self._fail(rule, f"out_of_range whose detail does not name {name}: {_short(answer.detail)}")
         elif moved:
             self._fail(rule, f"out_of_range, but moved {moved}")
         else:
-            self._pass(rule, f"{name} {value!r}: {_short(answer.detail, 90)}")
+            self._pass(rule, f"{name} {_num(value)}: {_short(answer.detail, 90)}")
 
     def _rule_acquire(self) -> None:
         assert self.description is not None
@@ -605,7 +617,7 @@ class Probe:
         if acquisition.shots != shots:
             problems.append(f"shots {acquisition.shots} for {shots} asked")
         if acquisition.t_start < before.clock:
-            problems.append(f"t_start {acquisition.t_start!r} before the clock {before.clock!r}")
+            problems.append(f"t_start {_num(acquisition.t_start)} before the clock {_num(before.clock)}")
         moved = self._unchanged(before.setpoints, acquisition.setpoints)
         if moved:
             problems.append(f"set-points in force differ from status: {moved}")
@@ -676,7 +688,7 @@ class Probe:
             value = next(iter(seen))
             if not isinstance(value, str) or not 1 <= len(value) <= 64 or not all(
                     c.isascii() and (c.isalnum() or c in "_-") for c in value):
-                self._fail("instance", f"malformed {value!r}")
+                self._fail("instance", f"malformed {_num(value)}")
             else:
                 self._pass("instance", value)
 

@@ -100,6 +100,30 @@ def test_no_terminal_and_no_yes_moves_nothing(serve):
     assert (dict(after.setpoints), after.shots_total) == (dict(before.setpoints), before.shots_total)
 
 
+@pytest.mark.parametrize(("answer", "code"), [("yes", 0), ("no", 5)])
+def test_probe_asks_on_a_terminal(serve, answer: str, code: int):
+    """With a terminal and no --yes the probe shows the caution and its plan and asks: 'yes' runs
+    every rule, anything else moves nothing (exit 5)."""
+    import os
+    import pty
+
+    server = serve()
+    master, terminal = pty.openpty()
+    try:
+        process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "probe", server.endpoint, "--timeout-s", "3"],
+                                   stdin=terminal, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                                   cwd=REPO)
+        os.close(terminal)
+        os.write(master, f"{answer}\n".encode())
+        out, err = process.communicate(timeout=120)
+    finally:
+        os.close(master)
+    assert process.returncode == code, out + err
+    assert "Move the rig for the probe? Type 'yes' to go on:" in out
+    assert "CAUTION" in err and "The probe will move rig 'bench-2'" in err
+    assert _outcomes(out)["apply"] == ("PASS" if answer == "yes" else "SKIP")
+
+
 @pytest.mark.parametrize(("flaw", "rules"), [
     # Without a replay cache a reused msg_id cannot be recognised either.
     ("replays_nothing", {"replay", "msg_id.reuse"}),
