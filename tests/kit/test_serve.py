@@ -57,6 +57,7 @@ def test_example_driver_served_over_the_bus(serve):
         assert refused.value.kind == "unknown_op"
     loaded = server.wait_for_event("driver_loaded")
     assert loaded and loaded[0]["setpoints"]["detuning"]["channel"] == "STARK:HV1"
+    assert "CAUTION" in server.log_path.read_text()  # a rig that is not simulated gets the caution
 
 
 def test_sigterm_stops_serve_cleanly(serve):
