@@ -11,7 +11,8 @@ of ``DRIVER.toml`` (:mod:`autotune.channels`).
 A driver is any class with these methods (no base class needed)::
 
     class MyDriver:
-        def __init__(self, **options): ...        # the [driver.options] table of DRIVER.toml
+        def __init__(self, **options): ...        # the [driver.options] table of DRIVER.toml;
+                                                  # connect here, with bounded waits
 
         def describe(self) -> dict:
             return {"rig": "bench-7",              # the rig's name
