@@ -3,7 +3,7 @@
 Run ``python -m autotune.bench`` (full study), ``--quick`` (a few minutes) or ``--tiny`` (the
 smoke test's sizes). It writes a JSON file (``--out``, default
 ``benchmarks/results/latest.json``) and prints a table. Every figure is measured on the bundled
-SIMULATED rig in this process (:class:`drivers_sim.local.LocalRig`: the real protocol's encoder,
+SIMULATED rig in this process (:class:`autotune.server.LocalRig`: the real protocol's encoder,
 server handler and parsers without a socket). This module is a study on the simulated rig, like
 the dry run, so it is one of the few places in ``autotune`` that imports ``drivers_sim``; it does
 so lazily, inside the functions that build rigs, so importing ``autotune`` never pulls it in.
@@ -289,15 +289,16 @@ def make_scenarios(count: int, seed: int) -> list[dict[str, Any]]:
 def _local_rig(rig_config_path: str, perturbation: Mapping[str, Mapping[str, float]],
                seed: int) -> Any:
     # A study on the simulated rig: drivers_sim is imported here only (see the module docstring).
+    from autotune.server import LocalRig
     from drivers_sim.config import load_sim_config, sim_config_from_dict
-    from drivers_sim.local import LocalRig
+    from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig
 
     data = load_sim_config(rig_config_path).to_dict()
     for section, values in perturbation.items():
         data[section].update(values)
     sim = sim_config_from_dict(data, source=f"<{rig_config_path} perturbed>")
-    return LocalRig(SimulatedRig(sim, seed=seed))
+    return LocalRig(SimulatedDriver(SimulatedRig(sim, seed=seed)))
 
 
 # --------------------------------------------------------------------------------------------

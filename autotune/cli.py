@@ -3,6 +3,8 @@
 Commands
 --------
 rig        serve the bundled simulated rig over the bus
+serve      serve a lab's rig driver (DRIVER.toml) over the bus
+probe      check a rig server against the wire protocol, rule by rule
 calibrate  full calibration of a rig
 retune     check the last good calibration; search a narrowed box if it no longer holds
 dry-run    start the simulated rig, calibrate, thermal step, retune, compare with the truth
@@ -21,6 +23,13 @@ Exit codes
 4    the verified inversion is below the configured acceptance threshold
 130  stopped by SIGINT/SIGTERM (the message says whether the rig confirmed its safe
      set-points; the journal is closed and the run can be resumed)
+
+``rig`` and ``serve`` exit 0 after a clean stop (SIGINT/SIGTERM), 1 if the endpoint cannot be
+bound, 2 for a bad configuration, flag, key file or driver class, and ``serve`` 3 if the driver
+fails while starting (its hardware cannot be reached). ``probe`` exits 0 when every rule passes
+(warnings allowed), 1 when a rule fails, 2 for bad input, 3 if the rig does not answer, 5 when
+no rule failed but some were not run (no consent to move the rig, an interlock, busy, or a
+range too narrow for a rule), 130 on SIGINT.
 """
 
 from __future__ import annotations
@@ -230,17 +239,263 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
 
 # -- commands ----------------------------------------------------------------------------
 
+# -- rig, serve, probe: serving rigs and checking them --------------------------------------
+
+EXIT_PROBE_FAILED = 1
+EXIT_PROBE_INCOMPLETE = 5
+_SIM_RIG_CONFIG = _REPO_CONFIGS / "sim-rig.toml"
+
+
+def _configure_server_logging(level: str) -> None:
+    """Servers log one JSON object per line on stderr (for the lab's log collector)."""
+    structlog.configure(
+        processors=[
+            structlog.contextvars.merge_contextvars,
+            structlog.processors.add_log_level,
+            structlog.processors.TimeStamper(fmt="iso", utc=True),
+            structlog.processors.format_exc_info,
+            structlog.processors.JSONRenderer(),
+        ],
+        wrapper_class=structlog.make_filtering_bound_logger(getattr(logging, level.upper())),
+        logger_factory=structlog.PrintLoggerFactory(sys.stderr),
+        cache_logger_on_first_use=False,
+    )
+
+
+def _add_server_arguments(parser: argparse.ArgumentParser, *, bind_default: str | None) -> None:
+    bind_help = "endpoint to listen on; port 0 picks a free one"
+    if bind_default is None:
+        bind_help += " (default: [server] bind of the config, else tcp://127.0.0.1:5560)"
+    else:
+        bind_help += " (default: %(default)s)"
+    parser.add_argument("--bind", default=bind_default, help=bind_help)
+    parser.add_argument("--ready-file", type=Path, default=None,
+                        help="write the bound endpoint to this file once listening")
+    parser.add_argument("--curve-secret-key", type=Path, default=None,
+                        help="server CURVE secret key file (zmq.auth .key_secret)")
+    parser.add_argument("--curve-allowed-dir", type=Path, default=None,
+                        help="folder of allowed client public keys (*.key)")
+    parser.add_argument("--log-level", dest="server_log_level", default=None,
+                        choices=["debug", "info", "warning", "error"],
+                        help="log level of the JSON lines on stderr (default: info)")
+
+
+def _curve_server_keys(secret: Path | None, allowed: Path | None, source: str) -> Any:
+    from autotune.server import CurveServerKeys
+
+    if (secret is None) != (allowed is None):
+        raise ConfigError(source, "--curve-secret-key/--curve-allowed-dir", "both or neither",
+                          "only --curve-secret-key" if secret is not None else "only --curve-allowed-dir")
+    return None if secret is None else CurveServerKeys.load(secret, allowed)
+
+
+def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fault_seed: int,
+                         ready_file: Path | None, log: Any) -> int:
+    """Bind, write the ready file, answer requests until SIGINT/SIGTERM; the exit status."""
+    import zmq
+
+    from autotune.server import RigServer, write_ready_file
+
+    try:
+        server = RigServer(served, bind, faults=faults, curve=curve, fault_seed=fault_seed)
+    except ConfigError as exc:
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        return EXIT_BAD_INPUT
+    previous: dict[int, Any] = {}
+    try:
+        try:
+            endpoint = server.start()
+        except zmq.ZMQError as exc:
+            log.error("server_bind_failed", error=str(exc))
+            return 1
+        for number in (signal.SIGINT, signal.SIGTERM):
+            previous[number] = signal.signal(number, lambda signum, frame: server.stop())
+        if ready_file is not None:
+            write_ready_file(ready_file, endpoint)
+        server.serve()
+        return EXIT_OK
+    finally:
+        server.close()
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+        close = getattr(served, "close", None)
+        if callable(close):
+            try:
+                close()
+            except Exception as exc:  # noqa: BLE001 - the driver's own shutdown; report, exit anyway
+                log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
+
+
+def _child_seed(seed: int) -> int:
+    import numpy as np
+
+    return int(np.random.SeedSequence(seed).spawn(1)[0].generate_state(1)[0])
+
+
 def _cmd_rig(ns: argparse.Namespace) -> int:
     # The simulated rig is imported only by the commands that serve or start it.
-    from drivers_sim.server import add_rig_arguments, run_rig
+    from autotune.served import ServedDriver
+    from autotune.server import FaultConfig
+    from drivers_sim.config import load_sim_config
+    from drivers_sim.driver import SimulatedDriver
+    from drivers_sim.rig import SimulatedRig
 
-    parser = argparse.ArgumentParser(prog="autotune rig",
-                                     description="Serve the bundled simulated rig over the bus.")
-    add_rig_arguments(parser)
-    rig_ns = parser.parse_args(ns.rig_args)
-    _configure_logging(rig_ns.log_level)
+    _configure_server_logging(ns.server_log_level or ns.log_level)
+    log = structlog.get_logger("autotune.rig").bind(bind=ns.bind)
     print("serving the SIMULATED rig: no hardware is touched", file=sys.stderr)
-    return run_rig(rig_ns)
+    try:
+        curve = _curve_server_keys(ns.curve_secret_key, ns.curve_allowed_dir, "<flags>")
+        config = load_sim_config(ns.config)
+        faults = FaultConfig.from_table(config.faults or None, file=str(ns.config)).overridden(
+            drop_reply_probability=ns.drop_probability,
+            delay_reply_s=ns.delay_s,
+            corrupt_reply_probability=ns.corrupt_probability,
+            exit_after_messages=ns.exit_after,
+        )
+        seed = ns.seed if ns.seed is not None else config.rig.default_seed
+        served = ServedDriver(SimulatedDriver(SimulatedRig(config, seed)), source=str(ns.config))
+    except (ConfigError, OSError, ValueError) as exc:
+        # The simulated rig's own configuration errors are ValueErrors; all refuse the start.
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        return EXIT_BAD_INPUT
+    return _serve_until_stopped(served, ns.bind, faults=faults, curve=curve,
+                                fault_seed=_child_seed(seed), ready_file=ns.ready_file, log=log)
+
+
+def _cmd_serve(ns: argparse.Namespace) -> int:
+    from autotune.driver_config import DriverStartError, build_driver, load_driver_config
+    from autotune.served import ServedDriver
+    from autotune.server import FaultConfig
+
+    _configure_server_logging(ns.server_log_level or ns.log_level)
+    log = structlog.get_logger("autotune.serve").bind(config=str(ns.config))
+    try:
+        config = load_driver_config(ns.config)
+        bind = ns.bind or config.bind
+        if ns.curve_secret_key is not None or ns.curve_allowed_dir is not None:
+            curve = _curve_server_keys(ns.curve_secret_key, ns.curve_allowed_dir, "<flags>")
+        else:
+            curve = _curve_server_keys(config.curve_secret_key_file, config.curve_allowed_dir,
+                                       str(ns.config))
+        driver = build_driver(config)
+    except ConfigError as exc:
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        return EXIT_BAD_INPUT
+    except DriverStartError as exc:
+        log.error("driver_failed_to_start", error=str(exc))
+        return EXIT_RIG
+    log = log.bind(bind=bind)
+    try:
+        served = ServedDriver(driver, config.setpoints, source=str(ns.config))
+    except ConfigError as exc:
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        _close_quietly(driver, log)
+        return EXIT_BAD_INPUT
+    except Exception as exc:  # noqa: BLE001 - the lab's driver failed while describing itself
+        log.exception("driver_failed_to_start", error=f"{type(exc).__name__}: {exc}")
+        _close_quietly(driver, log)
+        return EXIT_RIG
+    if served.description.simulated:
+        print(f"serving the SIMULATED rig {served.description.rig!r}: no hardware is touched",
+              file=sys.stderr)
+    else:
+        print(CAUTION + " autotune serve hands the requests of any authorised client to this "
+              "driver; the limits and steps of its DRIVER.toml are the server's last software "
+              "guard.", file=sys.stderr)
+    log.info("driver_loaded", rig=served.description.rig, driver=config.driver_class,
+             simulated=served.description.simulated, setpoints=served.channel_map.summary())
+    return _serve_until_stopped(served, bind, faults=FaultConfig(), curve=curve, fault_seed=0,
+                                ready_file=ns.ready_file, log=log)
+
+
+def _close_quietly(driver: Any, log: Any) -> None:
+    close = getattr(driver, "close", None)
+    if callable(close):
+        try:
+            close()
+        except Exception as exc:  # noqa: BLE001 - already failing; report and go on
+            log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
+
+
+def _probe_plan(description: Any, shots: int) -> str:
+    lines = [f"The probe will move rig {description.rig!r} (not simulated):"]
+    for name, limit in description.setpoints.items():
+        lines.append(f"  {name}: steps of half and one max_step ({limit.max_step:g} {limit.unit}) "
+                     f"within [{limit.min:g}, {limit.max:g}] {limit.unit}")
+    lines.append("  two requests a conforming rig refuses: a value 0.1 % of a step beyond the "
+                 "nearest limit and a step of 1.5 max_step (a rig that wrongly executes them moves)")
+    lines.append("  four malformed applies (NaN, infinities) that must be refused")
+    lines.append(f"  four acquisitions of {shots} shots (one request sent twice, one refused)")
+    lines.append("  and it ends with safe (the rig's safe set-points)")
+    return "\n".join(lines)
+
+
+def _cmd_probe(ns: argparse.Namespace) -> int:
+    from autotune.bus import CurveClientKeys
+    from autotune.probe import Link, Probe, summarise
+
+    if "://" not in ns.endpoint:
+        print(f"autotune: probe: ENDPOINT: expected a ZeroMQ endpoint such as "
+              f"tcp://127.0.0.1:5560, got {ns.endpoint!r}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    try:
+        if (ns.curve_client_secret_key is None) != (ns.curve_server_public_key is None):
+            raise ConfigError("<flags>", "--curve-client-secret-key/--curve-server-public-key",
+                              "both or neither", "only one")
+        curve = None
+        if ns.curve_client_secret_key is not None:
+            curve = CurveClientKeys.load(ns.curve_client_secret_key, ns.curve_server_public_key)
+    except ConfigError as exc:
+        print(f"autotune: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+    consented = False
+
+    def consent(description: Any) -> tuple[bool, str]:
+        nonlocal consented
+        if description.simulated:
+            consented = True
+            return True, "the rig describes itself as simulated"
+        print(CAUTION + "\n" + _probe_plan(description, ns.shots), file=sys.stderr)
+        if ns.yes:
+            consented = True
+            return True, "--yes"
+        if not sys.stdin.isatty():
+            print("autotune: probe: not moving the rig: no terminal to ask and no --yes",
+                  file=sys.stderr)
+            return False, "no consent to move the rig (no terminal to ask and no --yes)"
+        answer = input("Move the rig for the probe? Type 'yes' to go on: ")
+        consented = answer.strip().lower() == "yes"
+        return (True, "confirmed") if consented else (False, "no consent to move the rig (declined)")
+
+    link = Link(ns.endpoint, timeout_s=ns.timeout_s, curve=curve)
+    print(f"autotune probe {ns.endpoint} (protocol version 1, timeout {ns.timeout_s:g} s per reply)")
+    probe = Probe(link, consent=consent, report=lambda f: print(f.line(), flush=True), shots=ns.shots)
+    try:
+        findings = probe.run()
+    except KeyboardInterrupt:
+        if consented:
+            from autotune import protocol
+
+            msg_id = protocol.new_msg_id()
+            link.reset()
+            link.exchange(protocol.encode_request(protocol.Op.SAFE, {}, msg_id))
+            print("autotune: probe stopped by SIGINT; safe sent to the rig", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        link.close()
+    counts = summarise(findings)
+    if probe.unreachable:
+        code = EXIT_RIG
+    elif counts["fail"]:
+        code = EXIT_PROBE_FAILED
+    elif counts["skip"]:
+        code = EXIT_PROBE_INCOMPLETE
+    else:
+        code = EXIT_OK
+    print(f"summary: {counts['pass']} passed, {counts['fail']} failed, {counts['warn']} "
+          f"warnings, {counts['skip']} not run; exit {code}")
+    return code
 
 
 def _run_folder(ns: argparse.Namespace, command: str) -> tuple[Path, bool]:
@@ -333,7 +588,7 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
               "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
         with tempfile.TemporaryDirectory() as tmp:
             ready = Path(tmp) / "endpoint"
-            command = [sys.executable, "-m", "drivers_sim.server", "--config", str(rig_config),
+            command = [sys.executable, "-m", "autotune.cli", "rig", "--config", str(rig_config),
                        "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
                        str(ready), "--log-level", "warning"]
             # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
@@ -501,6 +756,13 @@ def _at_least_one(text: str) -> int:
     return value
 
 
+def _positive_seconds(text: str) -> float:
+    value = float(text)
+    if not (value > 0.0 and value < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a finite number of seconds > 0, got {text!r}")
+    return value
+
+
 def _non_negative_seconds(text: str) -> float:
     value = float(text)
     if not (value >= 0.0 and value < float("inf")):
@@ -519,11 +781,59 @@ def _parser() -> argparse.ArgumentParser:
                         choices=["debug", "info", "warning", "error"], help="terminal log level")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    rig = sub.add_parser("rig", add_help=False,
-                         help="serve the bundled simulated rig over the bus "
-                              "(autotune rig --help for its options)")
-    rig.add_argument("rig_args", nargs=argparse.REMAINDER)
+    rig = sub.add_parser("rig", help="serve the bundled simulated rig over the bus",
+                         description="Serve the bundled simulated rig (no hardware) over the bus "
+                                     "until SIGINT/SIGTERM. Exit 0 after a clean stop, 1 if the "
+                                     "endpoint cannot be bound, 2 for a bad configuration, flag "
+                                     "or key file.")
+    rig.add_argument("--config", type=Path, default=_SIM_RIG_CONFIG,
+                     help="simulated rig TOML (default: %(default)s)")
+    _add_server_arguments(rig, bind_default="tcp://127.0.0.1:5560")
+    rig.add_argument("--seed", type=int, default=None,
+                     help="seed of the rig's noise and of the faults (default: the config's "
+                          "rig.default_seed)")
+    faults = rig.add_argument_group("fault injection (to test clients)")
+    faults.add_argument("--drop-probability", type=float, default=None,
+                        help="probability of dropping a reply")
+    faults.add_argument("--delay-s", type=float, default=None, help="delay of each fresh reply, s")
+    faults.add_argument("--corrupt-probability", type=float, default=None,
+                        help="probability of corrupting a reply")
+    faults.add_argument("--exit-after", type=int, default=None,
+                        help="stop after N messages (0: never)")
     rig.set_defaults(handler=_cmd_rig)
+
+    serve = sub.add_parser("serve", help="serve a lab's rig driver over the bus (acts on hardware)",
+                           description="Serve the rig driver named in DRIVER.toml over the bus "
+                                       "until SIGINT/SIGTERM. " + CAUTION + " Exit 0 after a clean "
+                                       "stop, 1 if the endpoint cannot be bound, 2 for a bad "
+                                       "DRIVER.toml, flag, key file or driver class, 3 if the "
+                                       "driver fails while starting.")
+    serve.add_argument("--config", type=Path, required=True, help="the DRIVER.toml to serve")
+    _add_server_arguments(serve, bind_default=None)
+    serve.set_defaults(handler=_cmd_serve)
+
+    probe = sub.add_parser("probe", help="check a rig server against the wire protocol "
+                                         "(moves the rig, after asking)",
+                           description="Check the rig server at ENDPOINT against the wire "
+                                       "protocol, one line per rule. Moves a rig that is not "
+                                       "simulated only after asking (or with --yes); with no "
+                                       "terminal and no --yes it does not move it. " + CAUTION
+                                       + " Exit 0 when every rule passes, 1 when a rule fails, "
+                                       "2 for bad input, 3 if the rig does not answer, 5 when "
+                                       "some rules were not run, 130 on SIGINT.")
+    probe.add_argument("endpoint", metavar="ENDPOINT", help="the rig server, e.g. tcp://127.0.0.1:5560")
+    probe.add_argument("--yes", action="store_true",
+                       help="move the rig without asking (the rules that move it stay within "
+                            "the described limits and steps)")
+    probe.add_argument("--timeout-s", type=_positive_seconds, default=10.0,
+                       help="longest wait for one reply, s (default 10; an acquisition must fit)")
+    probe.add_argument("--shots", type=_at_least_one, default=20,
+                       help="shots per acquisition (default 20)")
+    probe.add_argument("--curve-client-secret-key", type=Path, default=None,
+                       help="this client's CURVE secret key file (zmq.auth .key_secret)")
+    probe.add_argument("--curve-server-public-key", type=Path, default=None,
+                       help="the rig server's CURVE public key file (.key)")
+    probe.set_defaults(handler=_cmd_probe)
 
     for name, text in (("calibrate", "full calibration of a rig (acts on hardware)"),
                        ("retune", "check the last good setting and retune if needed "
@@ -573,8 +883,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``autotune`` console script; returns the exit code."""
     parser = _parser()
     ns = parser.parse_args(argv)
-    if getattr(ns, "command", None) != "rig":
-        _configure_logging(ns.log_level)
+    if getattr(ns, "command", None) not in ("rig", "serve"):
+        _configure_logging(ns.log_level if ns.command != "probe" else "warning")
     return int(ns.handler(ns))
 
 

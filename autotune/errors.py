@@ -17,6 +17,17 @@
         └── RigMismatch            a reply does not match what this client applied or saw
             └── RigRestarted       the rig's identity changed or its clock went back: it restarted
 
+    DriverRefusal                  a rig driver refuses a request (``autotune serve`` answers it
+    │                              with the error kind below; nothing was done)
+    ├── OutOfRange                 ``out_of_range``: a channel value outside what the rig allows
+    ├── Busy                       ``busy``: the rig cannot take the request now (never replayed)
+    ├── InterlockSet               ``interlock``: a hardware interlock is set (never replayed)
+    └── BadRequest                 ``bad_request``: a value the rig cannot take
+
+A driver raising anything else is answered ``internal``. The refusals live apart from
+``AutotuneError``: they are the vocabulary of code a lab writes (see :mod:`autotune.driver`),
+not errors of this program.
+
 Library exceptions (zmq, json, tomllib, OSError) are translated at the module boundary
 where they occur and chained with ``raise ... from exc``.
 """
@@ -39,6 +50,11 @@ __all__ = [
     "ProtocolError",
     "RigMismatch",
     "RigRestarted",
+    "DriverRefusal",
+    "OutOfRange",
+    "Busy",
+    "InterlockSet",
+    "BadRequest",
 ]
 
 
@@ -167,3 +183,38 @@ class RigMismatch(RigError):
 class RigRestarted(RigMismatch):
     """The rig restarted: its identity (``instance``) changed, or its clock went back to an
     earlier time. Its set-points in force, clock and replay cache are gone."""
+
+
+class DriverRefusal(Exception):
+    """A rig driver refuses a request; the server answers it with :attr:`kind` and the message.
+
+    Raise one of the subclasses from a driver method, with a message that names what was
+    wrong, what was expected and what was received. Nothing may have been done when it is
+    raised.
+    """
+
+    kind = "internal"
+
+
+class OutOfRange(DriverRefusal):
+    """A value is outside what the rig allows (answered ``out_of_range``)."""
+
+    kind = "out_of_range"
+
+
+class Busy(DriverRefusal):
+    """The rig cannot take the request now; the client retries later (answered ``busy``)."""
+
+    kind = "busy"
+
+
+class InterlockSet(DriverRefusal):
+    """A hardware interlock is set; nothing was changed (answered ``interlock``)."""
+
+    kind = "interlock"
+
+
+class BadRequest(DriverRefusal):
+    """A value the rig cannot take, other than a limit (answered ``bad_request``)."""
+
+    kind = "bad_request"

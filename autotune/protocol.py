@@ -1,8 +1,9 @@
 """The wire protocol between autotune and a rig (version 1).
 
 This module is the protocol's specification and its only implementation in this project: the
-client (:mod:`autotune.bus`) and the bundled simulated rig's server both import it. A
-control-system team can implement a rig from this text alone.
+client (:mod:`autotune.bus`) and the rig server (:mod:`autotune.server`, behind ``autotune
+serve`` and ``autotune rig``) both import it. A control-system team can implement a rig from
+this text alone, or write a driver and let ``autotune serve`` implement it (:mod:`autotune.driver`).
 
 Transport
 ---------
@@ -34,7 +35,7 @@ cryptographic random source). When the rig cannot read a request's ``msg_id`` it
 
 Idempotency: a client that gets no reply resends the **same bytes with the same msg_id**. A rig
 must answer a repeated ``msg_id`` with the reply it gave the first time, without executing the
-request again (so an acquisition is never counted twice). The bundled rig keeps the last 1024
+request again (so an acquisition is never counted twice). autotune's server keeps the last 1024
 replies. A ``msg_id`` reused with a different request is answered with ``bad_request``.
 autotune keeps one ``msg_id`` for one logical operation across all of its own retries too (the
 bus client's resends and the loop's later retries after a timeout, a ``busy`` or
@@ -42,7 +43,7 @@ bus client's resends and the loop's later retries after a timeout, a ``busy`` or
 request it already executed is answered from its cache, never run again. Replies of kind
 ``busy`` and ``interlock`` say that nothing was done: a rig must not keep them, so that the same
 request sent again once the rig is free is executed. Every other reply (results and the other
-error kinds) must be kept. The bundled rig does exactly this.
+error kinds) must be kept. autotune's server does exactly this.
 
 Error kinds (``error.kind``), see :class:`ErrorKind`:
 

@@ -45,7 +45,7 @@ while True:
 def _start_rig_server(folder: Path) -> tuple[subprocess.Popen[bytes], str]:
     ready = folder / "rig.ready"
     process = subprocess.Popen(
-        [sys.executable, "-m", "drivers_sim.server", "--bind", "tcp://127.0.0.1:0",
+        [sys.executable, "-m", "autotune.cli", "rig", "--bind", "tcp://127.0.0.1:0",
          "--ready-file", str(ready), "--log-level", "warning"],
         cwd=REPO, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
     )

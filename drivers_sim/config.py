@@ -3,7 +3,8 @@
 Every value is checked here for type, range and finiteness, and unknown keys are refused; an
 error is a :class:`SimConfigError` whose message names the file, the dotted key, what was
 expected and what was received. The top-level ``[faults]`` table belongs to the server
-(``drivers_sim/server.py`` validates it) and is kept unvalidated as a plain dict.
+(``autotune rig`` validates it with :class:`autotune.server.FaultConfig`) and is kept
+unvalidated as a plain dict.
 
 Use :func:`load_sim_config` for a file and :func:`sim_config_from_dict` for a dict (tests and
 studies that perturb a scenario; :meth:`SimRigConfig.to_dict` gives the dict back). The

@@ -51,6 +51,7 @@ import numpy as np
 import scipy.optimize
 import structlog
 
+from autotune.driver import BadRequest, InterlockSet, OutOfRange
 from autotune.protocol import STEP_TOLERANCE
 from drivers_sim import physics
 from drivers_sim.config import SimRigConfig
@@ -71,21 +72,21 @@ _COARSE_MARGIN_HZ = 30.0e3
 _REFINE_CANDIDATES = 3
 
 
-class SetpointError(ValueError):
+class SetpointError(OutOfRange, ValueError):
     """A set-point was refused: unknown name, not finite, outside its limits or too big a step.
 
-    The message names the set-point, the limit and the value.
+    The message names the set-point, the limit and the value; a server answers ``out_of_range``.
     """
 
 
-class RequestError(ValueError):
+class RequestError(BadRequest, ValueError):
     """A request's value cannot be taken (unknown field, bad phase or shot count).
 
-    The server answers it with ``bad_request``; any other exception of the rig is ``internal``.
+    A server answers it with ``bad_request``; any other exception of the rig is ``internal``.
     """
 
 
-class RigInterlock(RuntimeError):
+class RigInterlock(InterlockSet, RuntimeError):
     """The rig's interlock is set: ``apply`` and ``acquire`` are refused until it clears."""
 
 
@@ -203,6 +204,11 @@ class SimulatedRig:
     # ----------------------------------------------------------------------------------------
     # State helpers
     # ----------------------------------------------------------------------------------------
+
+    @property
+    def config(self) -> SimRigConfig:
+        """The rig's checked configuration (hidden truth included)."""
+        return self._config
 
     @property
     def shots_total(self) -> int:
@@ -440,15 +446,30 @@ class SimulatedRig:
             "shots_total": self._shots_total,
         }
 
-    def safe(self) -> dict[str, Any]:
+    def safe(self, setpoints: Mapping[str, float] | None = None) -> dict[str, Any]:
         """Apply the safe set-points (allowed under interlock, no step limit); takes the settle time.
+
+        Parameters
+        ----------
+        setpoints : mapping of str to float, optional
+            Safe values to go to instead of the configured ones (a driver's channel map may
+            declare its own); each must be within the limits, names not given take the
+            configured safe value.
 
         Returns
         -------
         dict
             ``{"setpoints": {...the safe ones, now applied}}``.
+
+        Raises
+        ------
+        SetpointError
+            For an unknown name or a value outside the limits; nothing is applied then.
         """
-        self._setpoints = {name: float(limit.safe) for name, limit in self._limits.items()}
+        safe = {name: float(limit.safe) for name, limit in self._limits.items()}
+        if setpoints is not None:
+            safe.update(self._check_setpoints(setpoints, check_steps=False, check_limits=True))
+        self._setpoints = safe
         self._advance(self._config.rig.settle_time_s)
         self._stencil = None
         self._log.info("safe_setpoints_applied", setpoints=self._setpoints)

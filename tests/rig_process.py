@@ -1,4 +1,8 @@
-"""Simulated rig servers in real subprocesses, shared by the bus and the loop tests."""
+"""Simulated rig servers in real subprocesses, shared by the bus and the loop tests.
+
+They are started the documented way, ``autotune rig ...`` (as ``python -m autotune.cli rig`` so
+that the worktree's code is the one run).
+"""
 
 from __future__ import annotations
 
@@ -21,7 +25,7 @@ STOP_TIMEOUT_S = 5.0
 
 @dataclass
 class ServerProcess:
-    """A ``python -m drivers_sim.server`` child process and what it told us."""
+    """An ``autotune rig`` (or ``autotune serve``) child process and what it told us."""
 
     process: subprocess.Popen[bytes]
     endpoint: str
@@ -68,15 +72,18 @@ class ServerProcess:
 
 
 def spawn_server(tmp_path: Path, name: str, *flags: str, bind: str = "tcp://127.0.0.1:0",
-                 seed: int = SEED, wait: bool = True, config: Path = SIM_CONFIG) -> ServerProcess:
-    """Start a server subprocess; with ``wait``, block (bounded) until its ready file appears."""
+                 seed: int | None = SEED, wait: bool = True, config: Path = SIM_CONFIG,
+                 command: str = "rig") -> ServerProcess:
+    """Start ``autotune rig`` (or ``command``, e.g. ``serve``, with ``seed=None``) as a subprocess;
+    with ``wait``, block (bounded) until its ready file appears."""
     ready = tmp_path / f"{name}.ready"
     log_path = tmp_path / f"{name}.log"
     ready.unlink(missing_ok=True)
     log_file = open(log_path, "wb")  # noqa: SIM115 - closed by ServerProcess.stop
-    command = [sys.executable, "-m", "drivers_sim.server", "--config", str(config), "--bind", bind,
-               "--seed", str(seed), "--ready-file", str(ready), "--log-level", "info", *flags]
-    process = subprocess.Popen(command, cwd=REPO, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=log_file)
+    seed_flags = [] if seed is None else ["--seed", str(seed)]
+    argv = [sys.executable, "-m", "autotune.cli", command, "--config", str(config), "--bind", bind,
+            *seed_flags, "--ready-file", str(ready), "--log-level", "info", *flags]
+    process = subprocess.Popen(argv, cwd=REPO, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=log_file)
     server = ServerProcess(process, "", log_path, ready, log_file)
     if not wait:
         return server

@@ -21,8 +21,9 @@ from autotune.errors import LimitError, RigRefused
 from autotune.journal import JOURNAL_NAME, Journal, read_journal, write_json_atomic
 from autotune.loop import Session, _Measurement
 from autotune.protocol import Applied, Description, SetpointLimit, Status
+from autotune.server import LocalRig
 from drivers_sim.config import load_sim_config, sim_config_from_dict
-from drivers_sim.local import LocalRig
+from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
 from rig_process import REPO
 
@@ -42,7 +43,7 @@ def _sim(seed: int, *, drift: bool = True) -> LocalRig:
         data["drift"]["ramp_hz_per_s"] = 0.0
         data["drift"]["random_walk_hz_per_sqrt_s"] = 0.0
         config = sim_config_from_dict(data)
-    return LocalRig(SimulatedRig(config, seed))
+    return LocalRig(SimulatedDriver(SimulatedRig(config, seed)))
 
 
 _OPEN: list[Journal] = []

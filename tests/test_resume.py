@@ -23,7 +23,8 @@ from autotune.config import RunConfig, load_config
 from autotune.errors import ConfigErrors
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from drivers_sim.config import load_sim_config
-from drivers_sim.local import LocalRig
+from autotune.server import LocalRig
+from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
 from journal_checks import check_invariants
 from rig_process import REPO
@@ -79,7 +80,7 @@ def _cut_copy(source: Path, target: Path, keep: int, partial: bool) -> None:
 def finished_runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     """One finished calibration and one retune that searched, on one simulated rig."""
     base = tmp_path_factory.mktemp("finished")
-    rig = LocalRig(SimulatedRig(load_sim_config(SIM), 41))
+    rig = LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), 41)))
     config = small_config()
     store = base / "good.json"
     runner.calibrate(rig, config, base / "calibrate", store=store)

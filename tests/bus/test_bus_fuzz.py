@@ -97,11 +97,14 @@ def test_result_parsers_raise_only_protocol_errors(parser: Any, result: dict[str
 @pytest.fixture(scope="module")
 def in_process_server():
     """A RigServer around the real simulated rig, never bound: only its request handler is used."""
+    from autotune.served import ServedDriver
+    from autotune.server import FaultConfig, RigServer
     from drivers_sim.config import load_sim_config
+    from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig
-    from drivers_sim.server import FaultConfig, RigServer
 
-    server = RigServer(SimulatedRig(load_sim_config(SIM_CONFIG), SEED), "tcp://127.0.0.1:0", faults=FaultConfig())
+    driver = SimulatedDriver(SimulatedRig(load_sim_config(SIM_CONFIG), SEED))
+    server = RigServer(ServedDriver(driver), "tcp://127.0.0.1:0", faults=FaultConfig())
     yield server
     server.close()
 

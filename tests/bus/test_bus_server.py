@@ -1,4 +1,5 @@
-"""The server's request handler in-process: error kinds, replay cache, fault table."""
+"""The server's request handler in-process, serving the simulated rig's driver: error kinds,
+replay cache, fault table."""
 
 from __future__ import annotations
 
@@ -8,10 +9,13 @@ import pytest
 from rig_process import SEED, SIM_CONFIG
 
 from autotune import protocol
+from autotune.errors import ConfigError
 from autotune.protocol import Op
+from autotune.served import ServedDriver
+from autotune.server import FaultConfig, RigServer
 from drivers_sim.config import load_sim_config
+from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
-from drivers_sim.server import FaultConfig, RigServer, ServerConfigError
 
 
 @pytest.fixture
@@ -23,7 +27,8 @@ def rig() -> SimulatedRig:
 @pytest.fixture
 def server(rig):
     """A server around it, never bound (only its handler is used)."""
-    server = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig(), cache_size=2)
+    server = RigServer(ServedDriver(SimulatedDriver(rig)), "tcp://127.0.0.1:0", faults=FaultConfig(),
+                       cache_size=2)
     yield server
     server.close()
 
@@ -92,14 +97,14 @@ def test_unexpected_rig_failure_maps_to_internal(server, rig, monkeypatch):
 
 def test_fault_table_with_unknown_key_is_refused():
     """A [faults] key the server does not know is refused naming file and key."""
-    with pytest.raises(ServerConfigError) as info:
+    with pytest.raises(ConfigError) as info:
         FaultConfig.from_table({"drop_probability": 0.1}, file="sim-rig.toml")
     assert (info.value.file, info.value.key) == ("sim-rig.toml", "faults.drop_probability")
 
 
 def test_fault_table_with_bad_probability_is_refused():
     """A probability outside [0, 1] is refused naming the key, expected and got."""
-    with pytest.raises(ServerConfigError, match=r"faults\.corrupt_reply_probability: expected a probability in \[0, 1\], got 1.5"):
+    with pytest.raises(ConfigError, match=r"faults\.corrupt_reply_probability: expected a probability in \[0, 1\], got 1.5"):
         FaultConfig.from_table({"corrupt_reply_probability": 1.5}, file="sim-rig.toml")
 
 
@@ -125,8 +130,9 @@ def test_every_identified_result_carries_the_servers_instance(server):
 
 def test_two_servers_of_one_rig_report_different_instances(rig):
     """A restarted server is recognisable: its instance is drawn afresh."""
-    first = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig())
-    second = RigServer(rig, "tcp://127.0.0.1:0", faults=FaultConfig())
+    served = ServedDriver(SimulatedDriver(rig))
+    first = RigServer(served, "tcp://127.0.0.1:0", faults=FaultConfig())
+    second = RigServer(served, "tcp://127.0.0.1:0", faults=FaultConfig())
     assert first.instance != second.instance
     first.close()
     second.close()

@@ -1,20 +1,24 @@
-"""Serve a simulated rig over :mod:`autotune.protocol` on a ZeroMQ ROUTER socket.
+"""Serve a rig over :mod:`autotune.protocol` on a ZeroMQ ROUTER socket.
 
-The server answers every request, valid or not, with one reply; bad input never stops it. A
-request repeated with a ``msg_id`` it has answered gets the cached reply bytes and is not
-executed again (bounded LRU cache). Faults can be injected to test clients: dropped, delayed
-and corrupted replies, and an exit after a number of messages. Optional CURVE encryption admits
-only clients whose public key is in an allowed folder; others get nothing and are logged.
+:class:`RigServer` is the protocol's transport for any object with the protocol's operations,
+in practice a lab's driver behind :class:`autotune.served.ServedDriver` (``autotune serve``)
+or the bundled simulated rig's driver (``autotune rig``). It answers every request, valid or
+not, with one reply; bad input never stops it. A request repeated with a ``msg_id`` it has
+answered gets the cached reply bytes and is not executed again (bounded LRU cache); replies of
+kind ``busy`` and ``interlock`` are never kept, so the same request sent again once the rig is
+free is executed. Errors a driver raises from the vocabulary of :mod:`autotune.driver` become
+their error kinds; any other exception is ``internal``. Every result of ``describe``,
+``status``, ``apply``, ``acquire`` and ``safe`` carries the server's ``instance``, new at each
+start. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
+exit after a number of messages. Optional CURVE encryption admits only clients whose public
+key is in an allowed folder; others get nothing and are logged.
 
-Run standalone with ``python -m drivers_sim.server --config configs/sim-rig.toml``; the
-``autotune rig`` command wires :func:`add_rig_arguments` and :func:`run_rig` the same way.
-Exit status: 0 after a clean stop (SIGINT, SIGTERM, or the ``exit_after_messages`` fault),
-2 for a bad configuration or key file, 1 if the socket cannot be bound.
+:class:`LocalRig` speaks to such an object in this process through the same encoder, request
+handler and parsers, without a socket (benchmark studies).
 """
 
 from __future__ import annotations
 
-import argparse
 import collections
 import hashlib
 import heapq
@@ -25,11 +29,9 @@ import os
 import random
 import re
 import secrets
-import signal
-import sys
 import time
 import types
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -42,18 +44,16 @@ from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
 from autotune import protocol
-from autotune.protocol import ErrorKind, Op, RequestRejected
-from drivers_sim.rig import RequestError, RigInterlock, SetpointError
+from autotune.errors import ConfigError, DriverRefusal
+from autotune.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
 __all__ = [
     "DEFAULT_BIND",
     "FaultConfig",
     "CurveServerKeys",
-    "ServerConfigError",
     "RigServer",
-    "add_rig_arguments",
-    "run_rig",
-    "main",
+    "LocalRig",
+    "write_ready_file",
 ]
 
 _log = structlog.get_logger(__name__)
@@ -61,7 +61,6 @@ _log = structlog.get_logger(__name__)
 DEFAULT_BIND = "tcp://127.0.0.1:5560"
 """Where the server listens unless told otherwise: loopback only."""
 
-_DEFAULT_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "sim-rig.toml"
 _POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag again
 _BATCH = 64  # messages taken per wake-up before due replies are sent
 _NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})  # replies never replayed
@@ -69,26 +68,6 @@ _INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
 _HANDSHAKE_EVENTS = (
     zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
 )
-
-
-class ServerConfigError(ValueError):
-    """A fault table, flag or key file for the server is wrong.
-
-    Parameters
-    ----------
-    file : str
-        The file read (or ``"<flags>"``).
-    key : str
-        The offending key or flag.
-    expected : str
-        What was expected.
-    got : object
-        What was found.
-    """
-
-    def __init__(self, file: str, key: str, expected: str, got: object) -> None:
-        self.file, self.key, self.expected, self.got = str(file), key, expected, got
-        super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}")
 
 
 # --------------------------------------------------------------------------- faults
@@ -121,13 +100,13 @@ class FaultConfig:
         for key in ("drop_reply_probability", "corrupt_reply_probability"):
             value = getattr(self, key)
             if not _is_number(value) or not 0.0 <= value <= 1.0:
-                raise ServerConfigError("<memory>", key, "a probability in [0, 1]", value)
+                raise ConfigError("<memory>", key, "a probability in [0, 1]", value)
         delay = self.delay_reply_s
         if not _is_number(delay) or not (math.isfinite(delay) and delay >= 0):
-            raise ServerConfigError("<memory>", "delay_reply_s", "a finite number of seconds >= 0", delay)
+            raise ConfigError("<memory>", "delay_reply_s", "a finite number of seconds >= 0", delay)
         value = self.exit_after_messages
         if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise ServerConfigError("<memory>", "exit_after_messages", "an integer >= 0 (0: never)", value)
+            raise ConfigError("<memory>", "exit_after_messages", "an integer >= 0 (0: never)", value)
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any] | None, *, file: str = "<memory>") -> FaultConfig:
@@ -135,29 +114,29 @@ class FaultConfig:
 
         Raises
         ------
-        ServerConfigError
+        ConfigError
             For an unknown key or a bad value, naming ``faults.<key>``.
         """
         if table is None:
             return cls()
         if not isinstance(table, Mapping):
-            raise ServerConfigError(file, "faults", "a table", table)
+            raise ConfigError(file, "faults", "a table", table)
         known = set(cls.__dataclass_fields__)
         for key in table:
             if key not in known:
-                raise ServerConfigError(file, f"faults.{key}", f"one of {', '.join(sorted(known))}", key)
+                raise ConfigError(file, f"faults.{key}", f"one of {', '.join(sorted(known))}", key)
         try:
             return cls(**table)
-        except ServerConfigError as exc:
-            raise ServerConfigError(file, f"faults.{exc.key}", exc.expected, exc.got) from None
+        except ConfigError as exc:
+            raise ConfigError(file, f"faults.{exc.key}", exc.expected, exc.got) from None
 
     def overridden(self, **values: Any) -> FaultConfig:
         """Return a copy with the given fields replaced where the value is not None."""
         changes = {k: v for k, v in values.items() if v is not None}
         try:
             return replace(self, **changes)
-        except ServerConfigError as exc:
-            raise ServerConfigError("<flags>", exc.key, exc.expected, exc.got) from exc
+        except ConfigError as exc:
+            raise ConfigError("<flags>", exc.key, exc.expected, exc.got) from exc
 
 
 def _is_number(value: object) -> bool:
@@ -184,25 +163,25 @@ class CurveServerKeys:
 
         Raises
         ------
-        ServerConfigError
+        ConfigError
             If a file cannot be read, lacks its secret key, or the folder holds no public key.
             There is no fallback to plain text.
         """
         try:
             public, secret = zmq.auth.load_certificate(secret_file)
         except (OSError, ValueError) as exc:
-            raise ServerConfigError(str(secret_file), "curve_secret_key", "a readable ZeroMQ certificate", f"{type(exc).__name__}: {exc}") from exc
+            raise ConfigError(str(secret_file), "curve_secret_key", "a readable ZeroMQ certificate", f"{type(exc).__name__}: {exc}") from exc
         if secret is None:
-            raise ServerConfigError(str(secret_file), "curve_secret_key", "a certificate with a secret key", "a public-only certificate")
+            raise ConfigError(str(secret_file), "curve_secret_key", "a certificate with a secret key", "a public-only certificate")
         folder = Path(allowed_dir)
         if not folder.is_dir():
-            raise ServerConfigError(str(folder), "curve_allowed_dir", "a folder of client public keys (*.key)", "no such folder")
+            raise ConfigError(str(folder), "curve_allowed_dir", "a folder of client public keys (*.key)", "no such folder")
         try:
             allowed = frozenset(zmq.auth.load_certificates(folder))
         except (OSError, ValueError) as exc:
-            raise ServerConfigError(str(folder), "curve_allowed_dir", "readable certificates", f"{type(exc).__name__}: {exc}") from exc
+            raise ConfigError(str(folder), "curve_allowed_dir", "readable certificates", f"{type(exc).__name__}: {exc}") from exc
         if not allowed:
-            raise ServerConfigError(str(folder), "curve_allowed_dir", "at least one client public key (*.key)", "none")
+            raise ConfigError(str(folder), "curve_allowed_dir", "at least one client public key (*.key)", "none")
         return cls(public=public, secret=secret, allowed=allowed)
 
 
@@ -230,8 +209,11 @@ class RigServer:
     Parameters
     ----------
     rig : object
-        The rig: methods ``describe``, ``apply``, ``acquire``, ``status``, ``safe``, ``truth``,
-        ``advance``, ``thermal_step`` returning JSON-ready result dicts.
+        The rig: methods ``describe``, ``apply``, ``acquire``, ``status``, ``safe`` returning
+        the protocol's JSON-ready result dicts and raising the refusals of
+        :mod:`autotune.driver` (usually an :class:`autotune.served.ServedDriver`); the
+        simulated-only ``truth``, ``advance`` and ``thermal_step`` are served where it has
+        them, and answered ``unknown_op`` where it has not.
     bind : str
         Endpoint to bind, e.g. ``"tcp://127.0.0.1:5560"``; port ``0`` or ``*`` picks a free one
         (see :attr:`endpoint` after :meth:`start`).
@@ -264,14 +246,14 @@ class RigServer:
         instance: str | None = None,
     ) -> None:
         if not isinstance(bind, str) or "://" not in bind:
-            raise ServerConfigError("<arguments>", "bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
+            raise ConfigError("<arguments>", "bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
         if not isinstance(faults, FaultConfig):
-            raise ServerConfigError("<arguments>", "faults", "a FaultConfig", faults)
+            raise ConfigError("<arguments>", "faults", "a FaultConfig", faults)
         if isinstance(cache_size, bool) or not isinstance(cache_size, int) or cache_size < 1:
-            raise ServerConfigError("<arguments>", "cache_size", "an integer >= 1", cache_size)
+            raise ConfigError("<arguments>", "cache_size", "an integer >= 1", cache_size)
         self._instance = instance if instance is not None else secrets.token_hex(8)
         if not isinstance(self._instance, str) or not _INSTANCE_RE.fullmatch(self._instance):
-            raise ServerConfigError("<arguments>", "instance", "1 to 64 characters of [0-9A-Za-z_-]",
+            raise ConfigError("<arguments>", "instance", "1 to 64 characters of [0-9A-Za-z_-]",
                                     instance)
         self._rig = rig
         self._bind = _wildcard_port(bind)
@@ -291,16 +273,21 @@ class RigServer:
         self._received = 0
         self._stopping = False
         self._log = _log.bind(bind=bind)
-        self._dispatch = types.MappingProxyType({
+        dispatch: dict[Op, Callable[[Mapping[str, Any]], Mapping[str, Any]]] = {
             Op.DESCRIBE: lambda a: self._identified(rig.describe()),
             Op.APPLY: lambda a: self._identified(rig.apply(dict(a["setpoints"]))),
             Op.ACQUIRE: lambda a: self._identified(rig.acquire(a["field"], a["ramsey_phase"], a["shots"])),
             Op.STATUS: lambda a: self._identified(rig.status()),
             Op.SAFE: lambda a: self._identified(rig.safe()),
-            Op.TRUTH: lambda a: rig.truth(dict(a["setpoints"]) if "setpoints" in a else None),
-            Op.ADVANCE: lambda a: rig.advance(a["seconds"]),
-            Op.THERMAL_STEP: lambda a: rig.thermal_step(a["shift_hz"]),
-        })
+        }
+        # The simulated-only ops exist only where the rig has them; a real rig answers unknown_op.
+        if callable(getattr(rig, "truth", None)):
+            dispatch[Op.TRUTH] = lambda a: rig.truth(dict(a["setpoints"]) if "setpoints" in a else None)
+        if callable(getattr(rig, "advance", None)):
+            dispatch[Op.ADVANCE] = lambda a: rig.advance(a["seconds"])
+        if callable(getattr(rig, "thermal_step", None)):
+            dispatch[Op.THERMAL_STEP] = lambda a: rig.thermal_step(a["shift_hz"])
+        self._dispatch = types.MappingProxyType(dispatch)
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -514,14 +501,17 @@ class RigServer:
             self._cache.popitem(last=False)
 
     def _execute(self, request: protocol.Request) -> tuple[bytes, ErrorKind | None]:
+        handler = self._dispatch.get(request.op)
+        if handler is None:
+            kind = ErrorKind.UNKNOWN_OP
+            detail = (f"op: {request.op.value!r} is offered by simulated rigs only; this rig offers "
+                      f"{', '.join(op.value for op in self._dispatch)}")
+            self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id, kind=kind.value)
+            return protocol.encode_error(request.msg_id, kind, detail), kind
         try:
-            result = self._dispatch[request.op](request.args)
-        except SetpointError as exc:
-            kind, detail = ErrorKind.OUT_OF_RANGE, str(exc)
-        except RigInterlock as exc:
-            kind, detail = ErrorKind.INTERLOCK, str(exc)
-        except RequestError as exc:
-            kind, detail = ErrorKind.BAD_REQUEST, str(exc)
+            result = handler(request.args)
+        except DriverRefusal as exc:
+            kind, detail = ErrorKind(exc.kind), str(exc)
         except Exception as exc:  # noqa: BLE001 - the server must answer whatever the rig does
             log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
             log.exception("rig_failed")
@@ -558,127 +548,123 @@ def _is_loopback(endpoint: str) -> bool:
         return host == "localhost"
 
 
-# --------------------------------------------------------------------------- the command
+# --------------------------------------------------------------------------- helpers of the commands
 
 
-def add_rig_arguments(parser: argparse.ArgumentParser, *, log_level: bool = True) -> None:
-    """Add the simulated rig server's options to ``parser``.
+def write_ready_file(path: str | os.PathLike[str], endpoint: str) -> None:
+    """Write ``endpoint`` and a newline so that a reader sees either nothing or the whole line.
 
     Parameters
     ----------
-    parser : argparse.ArgumentParser
-        The parser (or sub-parser) to extend.
-    log_level : bool
-        Add ``--log-level`` too; pass False when the caller has its own.
+    path : str or PathLike
+        The ready file; its folder must exist.
+    endpoint : str
+        The endpoint the server listens on.
     """
-    parser.add_argument("--config", type=Path, default=_DEFAULT_CONFIG, help="simulated rig TOML (default: %(default)s)")
-    parser.add_argument("--bind", default=DEFAULT_BIND, help="endpoint to listen on; port 0 picks a free one (default: %(default)s)")
-    parser.add_argument("--seed", type=int, default=None, help="seed of the rig's noise and of the faults (default: the config's rig.default_seed)")
-    parser.add_argument("--ready-file", type=Path, default=None, help="write the bound endpoint here once listening")
-    parser.add_argument("--drop-probability", type=float, default=None, help="fault: probability of dropping a reply")
-    parser.add_argument("--delay-s", type=float, default=None, help="fault: delay of each fresh reply, s")
-    parser.add_argument("--corrupt-probability", type=float, default=None, help="fault: probability of corrupting a reply")
-    parser.add_argument("--exit-after", type=int, default=None, help="fault: stop after N messages (0: never)")
-    parser.add_argument("--curve-secret-key", type=Path, default=None, help="server CURVE .key_secret file")
-    parser.add_argument("--curve-allowed-dir", type=Path, default=None, help="folder of allowed client public keys (*.key)")
-    if log_level:
-        parser.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"], help="(default: %(default)s)")
-
-
-def _write_ready_file(path: Path, endpoint: str) -> None:
-    """Write ``endpoint`` so that a reader sees either nothing or the whole line."""
+    path = Path(path)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     tmp.write_text(endpoint + "\n", encoding="utf-8")
     os.replace(tmp, path)
 
 
-def _child_seed(seed: int) -> int:
-    import numpy as np
-
-    return int(np.random.SeedSequence(seed).spawn(1)[0].generate_state(1)[0])
+# --------------------------------------------------------------------------- in process
 
 
-def run_rig(ns: argparse.Namespace) -> int:
-    """Serve a simulated rig as ``ns`` says until SIGINT/SIGTERM; return the exit status.
+class LocalRig:
+    """A served rig in this process, spoken to through the wire protocol without a socket.
+
+    Offers the methods of :class:`autotune.bus.BusClient` (the ``Rig`` interface plus the
+    simulated-only ``truth``, ``advance`` and ``thermal_step``). Each call is encoded as a
+    protocol request, answered by :meth:`RigServer.handle` (validation, error kinds, replay
+    cache, instance) and decoded by the client-side parsers of :mod:`autotune.protocol`, so
+    only the ZeroMQ transport is left out. Benchmark studies that run hundreds of simulated
+    calibrations use it; integration tests and dry runs use the real bus.
 
     Parameters
     ----------
-    ns : argparse.Namespace
-        Parsed options of :func:`add_rig_arguments`.
+    driver : object
+        A rig driver (:mod:`autotune.driver`), served with :class:`autotune.served.ServedDriver`
+        (identity channel map unless ``setpoints`` is given), or an object that already has
+        the protocol's operations (pass ``served=True``).
+    setpoints : Mapping, optional
+        A DRIVER.toml ``[setpoints]`` table (channel map) for the driver.
+    served : bool
+        True if ``driver`` already speaks the protocol's operations.
 
-    Returns
-    -------
-    int
-        0 after a clean stop, 2 for a bad configuration or key file, 1 if binding failed.
+    Examples
+    --------
+    >>> from drivers_sim.driver import SimulatedDriver          # doctest: +SKIP
+    >>> rig = LocalRig(SimulatedDriver.from_file("configs/sim-rig.toml", seed=2))   # doctest: +SKIP
+    >>> rig.describe().rig                                       # doctest: +SKIP
+    'bench-2-sim'
     """
-    from drivers_sim.config import load_sim_config
-    from drivers_sim.rig import SimulatedRig
 
-    log = _log.bind(bind=ns.bind)
-    seed = 0
-    try:
-        if (ns.curve_secret_key is None) != (ns.curve_allowed_dir is None):
-            raise ServerConfigError("<flags>", "--curve-secret-key/--curve-allowed-dir", "both or neither",
-                                    "only --curve-secret-key" if ns.curve_secret_key else "only --curve-allowed-dir")
-        config = load_sim_config(ns.config)
-        faults = FaultConfig.from_table(getattr(config, "faults", None), file=str(ns.config)).overridden(
-            drop_reply_probability=ns.drop_probability,
-            delay_reply_s=ns.delay_s,
-            corrupt_reply_probability=ns.corrupt_probability,
-            exit_after_messages=ns.exit_after,
-        )
-        curve = None if ns.curve_secret_key is None else CurveServerKeys.load(ns.curve_secret_key, ns.curve_allowed_dir)
-        seed = ns.seed if ns.seed is not None else config.rig.default_seed
-        rig = SimulatedRig(config, seed)
-    except (ServerConfigError, OSError, ValueError) as exc:
-        # The rig's own configuration errors are ValueErrors too; all refuse the start.
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
-        return 2
-    server = RigServer(rig, ns.bind, faults=faults, curve=curve, fault_seed=_child_seed(seed))
-    previous: dict[int, Any] = {}
-    try:
-        try:
-            endpoint = server.start()
-        except zmq.ZMQError as exc:
-            log.error("server_bind_failed", error=str(exc))
-            return 1
-        for number in (signal.SIGINT, signal.SIGTERM):
-            previous[number] = signal.signal(number, lambda signum, frame: server.stop())
-        if ns.ready_file is not None:
-            _write_ready_file(Path(ns.ready_file), endpoint)
-        server.serve()
-        return 0
-    finally:
-        server.close()
-        for number, handler in previous.items():
-            signal.signal(number, handler)
+    def __init__(self, driver: Any, setpoints: Mapping[str, Any] | None = None, *, served: bool = False) -> None:
+        if served:
+            self.served = driver
+        else:
+            from autotune.served import ServedDriver
 
+            self.served = ServedDriver(driver, setpoints)
+        self.driver = getattr(self.served, "driver", driver)
+        # Never started: only its request handler is used, so no socket is opened.
+        self._server = RigServer(self.served, "inproc://local-rig", faults=FaultConfig())
 
-def _configure_logging(level: str) -> None:
-    import logging
+    @property
+    def sim(self) -> Any:
+        """The simulated rig behind a simulated driver (the driver's ``sim``), for studies."""
+        return self.driver.sim
 
-    structlog.configure(
-        processors=[
-            structlog.contextvars.merge_contextvars,
-            structlog.processors.add_log_level,
-            structlog.processors.TimeStamper(fmt="iso", utc=True),
-            structlog.processors.format_exc_info,
-            structlog.processors.JSONRenderer(),
-        ],
-        wrapper_class=structlog.make_filtering_bound_logger(getattr(logging, level.upper())),
-        logger_factory=structlog.PrintLoggerFactory(sys.stderr),
-        cache_logger_on_first_use=True,
-    )
+    def _call(self, op: Op, args: Mapping[str, Any], parse: Callable[[Mapping[str, Any]], Any],
+              msg_id: str | None = None) -> Any:
+        msg_id = msg_id or protocol.new_msg_id()
+        reply = self._server.handle(protocol.encode_request(op, args, msg_id))
+        return parse(protocol.decode_reply(reply, msg_id))
 
+    def describe(self) -> Description:
+        """The rig's description."""
+        return self._call(Op.DESCRIBE, {}, protocol.parse_description)
 
-def main(argv: list[str] | None = None) -> int:
-    """Entry point of ``python -m drivers_sim.server``: log JSON lines to stderr, serve."""
-    parser = argparse.ArgumentParser(prog="python -m drivers_sim.server", description="Serve the simulated rig.")
-    add_rig_arguments(parser)
-    ns = parser.parse_args(argv)
-    _configure_logging(ns.log_level)
-    return run_rig(ns)
+    def apply(self, setpoints: Mapping[str, float], *, msg_id: str | None = None) -> Applied:
+        """Apply set-points (``msg_id``: repeat an earlier request)."""
+        return self._call(Op.APPLY, {"setpoints": dict(setpoints)}, protocol.parse_applied,
+                          msg_id)
 
+    def acquire(self, field: str, ramsey_phase: float, shots: int, *,
+                msg_id: str | None = None, resend: bool = False) -> Acquisition:
+        """Acquire counts of one field state at one Ramsey phase (rad).
 
-if __name__ == "__main__":
-    sys.exit(main())
+        In process the rig cannot restart, so ``resend`` changes nothing.
+        """
+        args = {"field": field, "ramsey_phase": float(ramsey_phase), "shots": int(shots)}
+        return self._call(Op.ACQUIRE, args, protocol.parse_acquisition, msg_id)
+
+    def status(self) -> Status:
+        """Clock, busy flag, interlock, set-points in force, shot total."""
+        return self._call(Op.STATUS, {}, protocol.parse_status)
+
+    def safe(self, *, msg_id: str | None = None) -> Applied:
+        """Go to the safe set-points."""
+        return self._call(Op.SAFE, {}, protocol.parse_safe, msg_id)
+
+    def truth(self, setpoints: Mapping[str, float] | None = None) -> dict[str, Any]:
+        """The noiseless truth at ``setpoints`` (default: those in force); simulated rigs only."""
+        args = {} if setpoints is None else {"setpoints": dict(setpoints)}
+        return self._call(Op.TRUTH, args, protocol.parse_truth)
+
+    def advance(self, seconds: float) -> dict[str, Any]:
+        """Move the virtual clock on (s); simulated rigs only."""
+        return self._call(Op.ADVANCE, {"seconds": float(seconds)}, protocol.parse_advance)
+
+    def thermal_step(self, shift_hz: float) -> dict[str, Any]:
+        """Shift the cavity frequency at once (Hz); simulated rigs only."""
+        return self._call(Op.THERMAL_STEP, {"shift_hz": float(shift_hz)}, protocol.parse_thermal_step)
+
+    def close(self) -> None:
+        """Nothing to release (present for symmetry with the bus client)."""
+
+    def __enter__(self) -> LocalRig:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()

@@ -1,0 +1,201 @@
+"""DRIVER.toml: which driver ``autotune serve`` loads, where it listens, and the channel map.
+
+Layout (every key is checked; an unknown one is refused)::
+
+    [driver]
+    class = "lab_driver.driver:LabDriver"   # module:Class of the driver (autotune.driver)
+    python_path = ["."]                     # optional: folders put first on the import path,
+                                            # relative to this file
+    [driver.options]                        # optional: passed to the class (keyword arguments,
+    supply_address = "tcp://10.0.0.7:5025"  # or to its from_config(options, config_dir))
+
+    [server]                                # optional
+    bind = "tcp://127.0.0.1:5560"           # default; loopback unless you mean otherwise
+    curve_secret_key_file = "keys/server.key_secret"   # optional, both or neither,
+    curve_allowed_dir = "keys/allowed"                 # relative to this file
+
+    [setpoints.velocity]                    # the channel map, see autotune.channels
+    ...
+    [setpoints.detuning]
+    ...
+
+The ``[setpoints]`` tables are checked against the driver's own channel description once the
+driver is built (:class:`autotune.served.ServedDriver`); everything else here, at load.
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+import tomllib
+import types
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from autotune.errors import ConfigError
+
+__all__ = ["DEFAULT_BIND", "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
+
+DEFAULT_BIND = "tcp://127.0.0.1:5560"
+"""Where a server listens unless told otherwise: loopback only."""
+
+
+class DriverStartError(RuntimeError):
+    """The driver was found but failed while being built (its hardware, most often)."""
+
+
+@dataclass(frozen=True)
+class DriverConfig:
+    """A checked DRIVER.toml.
+
+    Attributes
+    ----------
+    path : Path
+        The file read.
+    driver_class : str
+        ``module:Class`` of the driver.
+    python_path : tuple of Path
+        Folders put first on the import path before the driver's module is imported.
+    options : Mapping[str, Any]
+        The ``[driver.options]`` table.
+    bind : str
+        Endpoint to listen on.
+    curve_secret_key_file, curve_allowed_dir : Path or None
+        CURVE keys of the server (both or neither).
+    setpoints : Mapping[str, Any]
+        The ``[setpoints]`` tables (the channel map), checked when the driver is known.
+    """
+
+    path: Path
+    driver_class: str
+    python_path: tuple[Path, ...]
+    options: Mapping[str, Any]
+    bind: str
+    curve_secret_key_file: Path | None
+    curve_allowed_dir: Path | None
+    setpoints: Mapping[str, Any]
+
+
+def _unknown(file: str, table: Mapping[str, Any], allowed: tuple[str, ...], prefix: str) -> None:
+    extra = sorted(str(k) for k in table if k not in allowed)
+    if extra:
+        where = f"{prefix}.{extra[0]}" if prefix else extra[0]
+        raise ConfigError(file, where, f"one of {', '.join(allowed)}", extra[0])
+
+
+def _table(file: str, data: Mapping[str, Any], key: str, prefix: str, *, required: bool) -> Mapping[str, Any]:
+    where = f"{prefix}.{key}" if prefix else key
+    if key not in data:
+        if required:
+            raise ConfigError(file, where, "a table", "nothing (the table is required)")
+        return {}
+    value = data[key]
+    if not isinstance(value, Mapping):
+        raise ConfigError(file, where, "a table", value)
+    return value
+
+
+def load_driver_config(path: str | Path) -> DriverConfig:
+    """Read and check a DRIVER.toml (all but the channel map's fit to the driver).
+
+    Raises
+    ------
+    ConfigError
+        Naming the file, the key, what was expected and what was found.
+    """
+    path = Path(path)
+    file = str(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(file, "<file>", "an existing DRIVER.toml", "no such file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(file, "<file>", "a readable UTF-8 file", f"{type(exc).__name__}: {exc}") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(file, "<file>", "valid TOML", str(exc)) from exc
+    _unknown(file, data, ("driver", "server", "setpoints"), "")
+    base = path.resolve().parent
+
+    driver = _table(file, data, "driver", "", required=True)
+    _unknown(file, driver, ("class", "python_path", "options"), "driver")
+    target = driver.get("class")
+    module, _, name = target.partition(":") if isinstance(target, str) else ("", "", "")
+    if not (module and name and all(part.isidentifier() for part in module.split(".") + name.split("."))):
+        raise ConfigError(file, "driver.class", "'module:Class', e.g. 'lab_driver.driver:LabDriver'", target)
+    raw_path = driver.get("python_path", [])
+    if not isinstance(raw_path, list) or not all(isinstance(p, str) and p for p in raw_path):
+        raise ConfigError(file, "driver.python_path", "a list of folders (strings)", raw_path)
+    python_path = tuple((base / p).resolve() for p in raw_path)
+    for folder in python_path:
+        if not folder.is_dir():
+            raise ConfigError(file, "driver.python_path", "existing folders (relative to this file)", str(folder))
+    options = _table(file, driver, "options", "driver", required=False)
+
+    server = _table(file, data, "server", "", required=False)
+    _unknown(file, server, ("bind", "curve_secret_key_file", "curve_allowed_dir"), "server")
+    bind = server.get("bind", DEFAULT_BIND)
+    if not isinstance(bind, str) or "://" not in bind:
+        raise ConfigError(file, "server.bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
+    curve: dict[str, Path | None] = {}
+    for key in ("curve_secret_key_file", "curve_allowed_dir"):
+        value = server.get(key)
+        if value is not None and (not isinstance(value, str) or not value):
+            raise ConfigError(file, f"server.{key}", "a path (relative to this file)", value)
+        curve[key] = None if value is None else base / value
+    if (curve["curve_secret_key_file"] is None) != (curve["curve_allowed_dir"] is None):
+        raise ConfigError(file, "server.curve_secret_key_file", "both curve_secret_key_file and "
+                          "curve_allowed_dir, or neither", {k: str(v) if v else None for k, v in curve.items()})
+
+    setpoints = _table(file, data, "setpoints", "", required=True)
+    return DriverConfig(path=path, driver_class=target, python_path=python_path,
+                        options=types.MappingProxyType(dict(options)), bind=bind,
+                        curve_secret_key_file=curve["curve_secret_key_file"],
+                        curve_allowed_dir=curve["curve_allowed_dir"],
+                        setpoints=types.MappingProxyType(dict(setpoints)))
+
+
+def build_driver(config: DriverConfig) -> Any:
+    """Import the driver class and build it from its options.
+
+    Returns
+    -------
+    object
+        The driver.
+
+    Raises
+    ------
+    ConfigError
+        If the module or class cannot be found, or the class refuses its options (TypeError or
+        ValueError while it is built).
+    DriverStartError
+        If building the driver fails otherwise (its hardware cannot be reached, most often);
+        the cause is chained.
+    """
+    file = str(config.path)
+    for folder in reversed(config.python_path):
+        if str(folder) not in sys.path:
+            sys.path.insert(0, str(folder))
+    module_name, _, class_name = config.driver_class.partition(":")
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as exc:
+        raise ConfigError(file, "driver.class", f"an importable module {module_name!r} (see driver.python_path)",
+                          f"{type(exc).__name__}: {exc}") from exc
+    target: Any = module
+    for part in class_name.split("."):
+        target = getattr(target, part, None)
+    if not isinstance(target, type):
+        raise ConfigError(file, "driver.class", f"a class {class_name!r} in module {module_name!r}", target)
+    options = dict(config.options)
+    try:
+        factory = getattr(target, "from_config", None)
+        if callable(factory):
+            return factory(options, config.path.resolve().parent)
+        return target(**options)
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(file, "driver.options", f"options that {config.driver_class} accepts",
+                          f"{type(exc).__name__}: {exc}") from exc
+    except Exception as exc:  # noqa: BLE001 - any failure of the lab's code while starting
+        raise DriverStartError(f"{config.driver_class} failed to start: {type(exc).__name__}: {exc}") from exc

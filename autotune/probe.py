@@ -1,0 +1,702 @@
+"""Conformance probe: check a rig server against the wire protocol, op by op.
+
+``autotune probe ENDPOINT`` runs :class:`Probe` and prints one line per rule: ``PASS``,
+``FAIL``, ``WARN`` (an optional feature missing) or ``SKIP`` (not run), with what the
+protocol expects and, where it differs, what the rig did. The rules, in the order they run:
+
+Rules that do not move the rig
+
+===================== ===========================================================================
+describe              ``describe`` answers with the protocol's keys (rig, proto 1, simulated,
+                      setpoints, fields, repetition_rate_hz, safe_setpoints)
+describe.setpoints    ``velocity`` in m/s and ``detuning`` in Hz are described, with min <= max
+                      and max_step > 0
+describe.safe         ``safe_setpoints`` names every set-point, within its limits
+describe.fields       ``fields`` holds ``empty`` and ``one_photon``
+status                ``status`` answers with clock, busy, interlock, setpoints (the described
+                      names) and shots_total
+version               ``proto: 2`` is answered ``unsupported_version``, echoing the msg_id
+unknown_op            an op the protocol lacks is answered ``unknown_op``
+bad_request.json      a frame that is not JSON is answered ``bad_request`` with ``msg_id: ""``
+bad_request.keys      a request missing ``args`` is answered ``bad_request``, echoing the msg_id
+bad_request.types     ``apply`` with set-points that are not an object is ``bad_request``
+bad_request.msg_id    a msg_id that is not lower-case hex is ``bad_request`` with ``msg_id: ""``
+bad_request.duplicate a JSON object with a duplicate key is ``bad_request``
+size_limit            a valid request padded with whitespace past 1 MiB is ``bad_request``
+msg_id.reuse          a msg_id reused for another request is ``bad_request``
+===================== ===========================================================================
+
+Rules that move the rig (only with consent; every move the probe means to make is within the
+described limits and steps; the refusal rules send requests a conforming rig refuses, chosen
+so that a rig wrongly executing them stays as close as possible to where it is)
+
+===================== ===========================================================================
+nonfinite             NaN, Infinity, -Infinity and 1e999 in ``apply`` are ``bad_request``, and
+                      nothing moves
+apply                 a step of half ``max_step`` toward the middle of each set-point's range is
+                      applied: the reply and ``status`` show it
+apply.full_step       a step of exactly ``max_step`` is accepted
+refuse.out_of_range   a value 0.1 % of a step beyond the nearest limit is ``out_of_range``, the
+                      detail names the set-point, and nothing moves
+refuse.step           a step of 1.5 ``max_step`` within the limits is ``out_of_range`` and nothing
+                      moves
+acquire               an acquisition of a few shots answers counts, the shots asked, a clock that
+                      does not go back and the set-points in force; ``shots_total`` grows by the
+                      shots
+replay                the same acquire request sent twice gets the same reply and is executed once
+                      (``shots_total`` grows once)
+acquire.field         an unknown field is ``bad_request`` and nothing is acquired
+safe                  ``safe`` answers the described safe set-points, and ``status`` shows them
+===================== ===========================================================================
+
+Last, ``instance``: the optional rig identity is in every result of describe, status, apply,
+acquire and safe and never changes (``WARN`` if the rig does not report one; ``FAIL`` if it
+changes during the probe or is malformed).
+
+Set-point values are compared to a millionth of the set-point's ``max_step``.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import zmq
+
+from autotune import protocol
+from autotune.bus import CurveClientKeys
+from autotune.errors import ProtocolError, RigRefused
+from autotune.protocol import Description
+
+__all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES", "summarise"]
+
+Outcome = Literal["pass", "fail", "warn", "skip"]
+
+#: Rules that need no motion, in the order they run.
+STILL_RULES: tuple[str, ...] = (
+    "describe", "describe.setpoints", "describe.safe", "describe.fields", "status", "version",
+    "unknown_op", "bad_request.json", "bad_request.keys", "bad_request.types", "bad_request.msg_id",
+    "bad_request.duplicate", "size_limit", "msg_id.reuse",
+)
+#: Rules that move the rig, in the order they run.
+MOVING_RULES: tuple[str, ...] = (
+    "nonfinite", "apply", "apply.full_step", "refuse.out_of_range", "refuse.step", "acquire",
+    "replay", "acquire.field", "safe",
+)
+#: Every rule, in the order they are reported.
+RULES: tuple[str, ...] = STILL_RULES + MOVING_RULES + ("instance",)
+
+_EXPECTED = {
+    "describe": "describe answers with rig, proto 1, simulated, setpoints, fields, repetition_rate_hz, safe_setpoints",
+    "describe.setpoints": "velocity in m/s and detuning in Hz described, min <= max, max_step > 0",
+    "describe.safe": "safe_setpoints names every set-point, within its limits",
+    "describe.fields": "fields holds empty and one_photon",
+    "status": "status answers clock, busy, interlock, setpoints (the described names), shots_total",
+    "version": "proto 2 answered unsupported_version, echoing the msg_id",
+    "unknown_op": "an unknown op answered unknown_op, echoing the msg_id",
+    "bad_request.json": "a frame that is not JSON answered bad_request with msg_id \"\"",
+    "bad_request.keys": "a request without args answered bad_request, echoing the msg_id",
+    "bad_request.types": "apply with setpoints that are not an object answered bad_request",
+    "bad_request.msg_id": "a msg_id that is not lower-case hex answered bad_request with msg_id \"\"",
+    "bad_request.duplicate": "a JSON object with a duplicate key answered bad_request",
+    "size_limit": f"a request longer than {protocol.MAX_MESSAGE_BYTES} bytes answered bad_request",
+    "msg_id.reuse": "a msg_id reused for another request answered bad_request",
+    "nonfinite": "NaN, Infinity, -Infinity, 1e999 in apply answered bad_request; nothing moves",
+    "apply": "a step of half max_step is applied; the reply and status show it",
+    "apply.full_step": "a step of exactly max_step is accepted",
+    "refuse.out_of_range": "a value beyond a limit answered out_of_range naming the set-point; nothing moves",
+    "refuse.step": "a step of 1.5 max_step answered out_of_range; nothing moves",
+    "acquire": "acquire answers counts e/g/i, the shots asked, a clock that does not go back, the "
+               "set-points in force; shots_total grows by the shots",
+    "replay": "a repeated msg_id answered with the first reply, executed once (shots_total grows once)",
+    "acquire.field": "an unknown field answered bad_request; nothing acquired",
+    "safe": "safe answers the described safe set-points; status shows them",
+    "instance": "the same instance in every describe/status/apply/acquire/safe result (optional)",
+}
+_IDENTIFIED = frozenset({"describe", "status", "apply", "acquire", "safe"})
+_SETPOINT_UNITS = {"velocity": "m/s", "detuning": "Hz"}
+_PROBE_OP = "no_such_op_from_the_probe"
+
+
+@dataclass(frozen=True)
+class Finding:
+    """The outcome of one rule.
+
+    Attributes
+    ----------
+    rule : str
+        The rule's name (see the module docstring).
+    outcome : {"pass", "fail", "warn", "skip"}
+        What happened.
+    expected : str
+        What the protocol asks.
+    got : str
+        What the rig did, where it matters ("" for a plain pass).
+    """
+
+    rule: str
+    outcome: Outcome
+    expected: str
+    got: str = ""
+
+    def line(self) -> str:
+        """The finding as one printed line."""
+        text = f"{self.outcome.upper():<5} {self.rule:<22} expected: {self.expected}"
+        return text + (f"; got: {self.got}" if self.got else "")
+
+
+class Link:
+    """A REQ socket to the rig with a bounded wait per exchange; reopened after a missed reply.
+
+    Parameters
+    ----------
+    endpoint : str
+        The rig's endpoint.
+    timeout_s : float
+        Longest wait for one reply, s.
+    curve : CurveClientKeys, optional
+        CURVE keys, as for :class:`autotune.bus.BusClient`.
+    """
+
+    def __init__(self, endpoint: str, *, timeout_s: float, curve: CurveClientKeys | None = None) -> None:
+        self.endpoint = endpoint
+        self.timeout_s = timeout_s
+        self._curve = curve
+        self._context = zmq.Context()
+        self._socket: zmq.Socket | None = None
+
+    def _open(self) -> zmq.Socket:
+        socket = self._context.socket(zmq.REQ)
+        socket.setsockopt(zmq.LINGER, 0)
+        socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
+        if self._curve is not None:
+            socket.curve_publickey = self._curve.public
+            socket.curve_secretkey = self._curve.secret
+            socket.curve_serverkey = self._curve.server_public
+        socket.connect(self.endpoint)
+        return socket
+
+    def exchange(self, data: bytes) -> bytes | None:
+        """Send one frame and return the reply frame, or None if none came within the bound."""
+        if self._socket is None:
+            self._socket = self._open()
+        socket = self._socket
+        timeout_ms = max(1, int(self.timeout_s * 1000))
+        if not socket.poll(timeout_ms, zmq.POLLOUT):
+            self.reset()
+            return None
+        socket.send(data, zmq.NOBLOCK)
+        if not socket.poll(timeout_ms, zmq.POLLIN):
+            self.reset()  # a REQ socket that missed its reply cannot send again
+            return None
+        frames = socket.recv_multipart()
+        return frames[0] if len(frames) == 1 else b"".join(frames)
+
+    def reset(self) -> None:
+        """Close the socket; the next exchange opens a new one."""
+        if self._socket is not None:
+            self._socket.close(linger=0)
+            self._socket = None
+
+    def close(self) -> None:
+        """Close the socket and the context. Safe to call twice."""
+        self.reset()
+        if not self._context.closed:
+            self._context.term()
+
+
+@dataclass(frozen=True)
+class _Answer:
+    """One reply, read strictly with the client's decoder."""
+
+    result: dict[str, Any] | None = None
+    kind: str | None = None
+    detail: str = ""
+    echoed: object = None
+    problem: str | None = None
+
+    def show(self) -> str:
+        if self.problem is not None:
+            return self.problem
+        if self.kind is not None:
+            return f"error {self.kind} ({_short(self.detail)})"
+        return "an ok reply"
+
+
+def _num(value: object) -> str:
+    """A set-point value as a person reads it (ten significant digits)."""
+    return f"{value:.10g}" if isinstance(value, float) else repr(value)
+
+
+def _short(text: str, limit: int = 120) -> str:
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _request(op: str, args: Any, msg_id: str, *, proto: Any = protocol.PROTO_VERSION) -> bytes:
+    return json.dumps({"proto": proto, "msg_id": msg_id, "op": op, "args": args}).encode()
+
+
+class _Incomplete(Exception):
+    """A rule cannot continue (no reply, malformed reply); its finding is already recorded."""
+
+
+class Probe:
+    """Run the rules against one rig.
+
+    Parameters
+    ----------
+    link : Link
+        The connection to the rig.
+    consent : callable
+        Called once, with the rig's description, before the first rule that moves the rig;
+        returns ``(True, note)`` to go on or ``(False, reason)`` to skip the moving rules.
+    report : callable
+        Called with each :class:`Finding` as soon as it is known.
+    shots : int
+        Shots of each acquisition (capped by the rig's ``max_shots_per_acquisition``).
+    """
+
+    def __init__(self, link: Link, *, consent: Callable[[Description], tuple[bool, str]],
+                 report: Callable[[Finding], None], shots: int = 20) -> None:
+        self._link = link
+        self._consent = consent
+        self._report = report
+        self._shots = shots
+        self.findings: list[Finding] = []
+        self.description: Description | None = None
+        self.moving_refused: str | None = None
+        self.unreachable = False
+        self._instances: list[tuple[str, object]] = []
+
+    # ------------------------------------------------------------------ recording
+
+    def _record(self, rule: str, outcome: Outcome, got: str = "") -> None:
+        finding = Finding(rule, outcome, _EXPECTED[rule], got)
+        self.findings.append(finding)
+        self._report(finding)
+
+    def _pass(self, rule: str, got: str = "") -> None:
+        self._record(rule, "pass", got)
+
+    def _fail(self, rule: str, got: str) -> None:
+        self._record(rule, "fail", got)
+
+    # ------------------------------------------------------------------ exchanges
+
+    def _send(self, data: bytes, msg_id: str, op: str | None = None) -> _Answer:
+        raw = self._link.exchange(data)
+        if raw is None:
+            return _Answer(problem=f"no reply within {self._link.timeout_s:g} s")
+        try:
+            echoed = json.loads(raw).get("msg_id")
+        except (ValueError, AttributeError, RecursionError):
+            echoed = None
+        try:
+            result = protocol.decode_reply(raw, msg_id)
+        except RigRefused as exc:
+            return _Answer(kind=exc.kind, detail=exc.detail, echoed=echoed)
+        except ProtocolError as exc:
+            return _Answer(problem=f"a malformed reply ({_short(str(exc))})", echoed=echoed)
+        if op in _IDENTIFIED:
+            self._instances.append((op, result.get("instance")))
+        return _Answer(result=result, echoed=echoed)
+
+    def _call(self, op: str, args: Mapping[str, Any] | None = None) -> _Answer:
+        msg_id = protocol.new_msg_id()
+        return self._send(_request(op, dict(args or {}), msg_id), msg_id, op)
+
+    def _expect_error(self, rule: str, data: bytes, msg_id: str, kind: str, *, echo: str | None) -> bool:
+        """Send a frame that must be refused with ``kind``; record the rule; True if it passed."""
+        answer = self._send(data, msg_id)
+        if answer.problem is not None:
+            self._fail(rule, answer.problem)
+            return False
+        if answer.kind != kind:
+            self._fail(rule, answer.show())
+            return False
+        if echo is not None and answer.echoed != echo:
+            self._fail(rule, f"error {kind} with msg_id {answer.echoed!r} instead of {echo!r}")
+            return False
+        self._pass(rule)
+        return True
+
+    def _status(self, rule: str) -> protocol.Status:
+        answer = self._call("status")
+        if answer.result is None:
+            self._fail(rule, f"status afterwards: {answer.show()}")
+            raise _Incomplete
+        try:
+            status = protocol.parse_status(answer.result)
+        except ProtocolError as exc:
+            self._fail(rule, f"status afterwards: {exc}")
+            raise _Incomplete from None
+        assert self.description is not None
+        missing = sorted(set(self.description.setpoints) - set(status.setpoints))
+        if missing:
+            self._fail(rule, f"status afterwards lacks set-points {missing}")
+            raise _Incomplete
+        return status
+
+    def _close_enough(self, name: str, got: float, want: float) -> bool:
+        assert self.description is not None
+        return abs(got - want) <= 1e-6 * self.description.setpoints[name].max_step
+
+    def _unchanged(self, before: Mapping[str, float], after: Mapping[str, float]) -> str:
+        """"" if every set-point is where it was, else a description of what moved."""
+        moved = [f"{name} {_num(before[name])} -> {_num(after.get(name))}" for name in before
+                 if name not in after or not self._close_enough(name, after[name], before[name])]
+        return ", ".join(moved)
+
+    # ------------------------------------------------------------------ the run
+
+    def run(self) -> list[Finding]:
+        """Run every rule; return the findings (also passed to ``report`` one by one)."""
+        if not self._describe():
+            return self.findings
+        status = self._still_rules()
+        if status is None:
+            self._skip_moving("status did not answer as described")
+        elif status.interlock is not None:
+            self._skip_moving(f"an interlock is set ({status.interlock}): nothing is moved")
+        elif status.busy:
+            self._skip_moving("the rig reports busy: nothing is moved")
+        else:
+            go, reason = self._consent(self.description)  # type: ignore[arg-type]
+            if not go:
+                self.moving_refused = reason
+                self._skip_moving(reason)
+            else:
+                self._moving_rules(status)
+        self._instance_rule()
+        return self.findings
+
+    def _skip_moving(self, reason: str) -> None:
+        for rule in MOVING_RULES:
+            if not any(f.rule == rule for f in self.findings):
+                self._record(rule, "skip", f"not run: {reason}")
+
+    def _describe(self) -> bool:
+        answer = self._call("describe")
+        if answer.result is None:
+            self.unreachable = answer.problem is not None and answer.problem.startswith("no reply")
+            self._fail("describe", answer.show())
+            for rule in RULES[1:]:
+                self._record(rule, "skip", "not run: describe failed")
+            return False
+        try:
+            description = protocol.parse_description(answer.result)
+        except ProtocolError as exc:
+            self._fail("describe", str(exc))
+            for rule in RULES[1:]:
+                self._record(rule, "skip", "not run: describe failed")
+            return False
+        self.description = description
+        self._pass("describe", f"rig {description.rig!r}, simulated {str(description.simulated).lower()}")
+        problems = []
+        for name, unit in _SETPOINT_UNITS.items():
+            limit = description.setpoints.get(name)
+            if limit is None:
+                problems.append(f"no {name}")
+            elif limit.unit != unit:
+                problems.append(f"{name} in {limit.unit!r}")
+        extra = sorted(set(description.setpoints) - set(_SETPOINT_UNITS))
+        if problems:
+            self._fail("describe.setpoints", ", ".join(problems))
+        elif extra:
+            self._record("describe.setpoints", "warn", f"also set-points this version does not name: {extra}")
+        else:
+            self._pass("describe.setpoints")
+        problems = []
+        for name, limit in description.setpoints.items():
+            safe = description.safe_setpoints.get(name)
+            if safe is None:
+                problems.append(f"no safe value for {name}")
+            elif not limit.min <= safe <= limit.max:
+                problems.append(f"{name} safe {_num(safe)} outside [{_num(limit.min)}, {_num(limit.max)}]")
+        self._fail("describe.safe", "; ".join(problems)) if problems else self._pass("describe.safe")
+        missing = [f for f in ("empty", "one_photon") if f not in description.fields]
+        if missing:
+            self._fail("describe.fields", f"fields {list(description.fields)}")
+        else:
+            self._pass("describe.fields")
+        return True
+
+    def _still_rules(self) -> protocol.Status | None:
+        assert self.description is not None
+        status: protocol.Status | None = None
+        answer = self._call("status")
+        if answer.result is None:
+            self._fail("status", answer.show())
+        else:
+            try:
+                status = protocol.parse_status(answer.result)
+            except ProtocolError as exc:
+                self._fail("status", str(exc))
+            else:
+                names = sorted(status.setpoints)
+                if names != sorted(self.description.setpoints):
+                    self._fail("status", f"set-points {names}, described {sorted(self.description.setpoints)}")
+                    status = None
+                else:
+                    self._pass("status")
+        msg_id = protocol.new_msg_id()
+        self._expect_error("version", _request("status", {}, msg_id, proto=2), msg_id,
+                           "unsupported_version", echo=msg_id)
+        msg_id = protocol.new_msg_id()
+        self._expect_error("unknown_op", _request(_PROBE_OP, {}, msg_id), msg_id, "unknown_op", echo=msg_id)
+        self._expect_error("bad_request.json", b"{\"proto\": 1, \"msg_id\": ", "", "bad_request", echo="")
+        msg_id = protocol.new_msg_id()
+        data = json.dumps({"proto": 1, "msg_id": msg_id, "op": "status"}).encode()
+        self._expect_error("bad_request.keys", data, msg_id, "bad_request", echo=msg_id)
+        msg_id = protocol.new_msg_id()
+        self._expect_error("bad_request.types", _request("apply", {"setpoints": "fast"}, msg_id), msg_id,
+                           "bad_request", echo=msg_id)
+        data = _request("status", {}, "NOT-HEX")
+        self._expect_error("bad_request.msg_id", data, "", "bad_request", echo="")
+        msg_id = protocol.new_msg_id()
+        data = (f'{{"proto": 1, "proto": 1, "msg_id": "{msg_id}", "op": "status", "args": {{}}}}').encode()
+        self._expect_error("bad_request.duplicate", data, msg_id, "bad_request", echo=None)
+        msg_id = protocol.new_msg_id()
+        data = _request("status", {}, msg_id) + b" " * (protocol.MAX_MESSAGE_BYTES + 16)
+        self._expect_error("size_limit", data, msg_id, "bad_request", echo=None)
+        msg_id = protocol.new_msg_id()
+        first = self._send(_request("status", {}, msg_id), msg_id, "status")
+        if first.result is None:
+            self._fail("msg_id.reuse", f"the first use: {first.show()}")
+        else:
+            self._expect_error("msg_id.reuse", _request("describe", {}, msg_id), msg_id, "bad_request",
+                               echo=None)
+        return status
+
+    # ------------------------------------------------------------------ moving rules
+
+    def _moving_rules(self, status: protocol.Status) -> None:
+        for rule in (self._rule_nonfinite, self._rule_apply, self._rule_refusals, self._rule_acquire,
+                     self._rule_safe):
+            try:
+                rule()
+            except _Incomplete:
+                pass
+        self._skip_moving("an earlier rule could not finish")
+
+    def _in_force(self, rule: str) -> protocol.Status:
+        return self._status(rule)
+
+    def _rule_nonfinite(self) -> None:
+        assert self.description is not None
+        before = self._in_force("nonfinite")
+        name = next(iter(self.description.setpoints))
+        wrong = []
+        for token in ("NaN", "Infinity", "-Infinity", "1e999"):
+            msg_id = protocol.new_msg_id()
+            data = (f'{{"proto": 1, "msg_id": "{msg_id}", "op": "apply", '
+                    f'"args": {{"setpoints": {{"{name}": {token}}}}}}}').encode()
+            answer = self._send(data, msg_id)
+            if answer.kind != "bad_request":
+                wrong.append(f"{token}: {answer.show()}")
+        after = self._in_force("nonfinite")
+        moved = self._unchanged(before.setpoints, after.setpoints)
+        if wrong or moved:
+            self._fail("nonfinite", "; ".join(wrong + ([f"moved {moved}"] if moved else [])))
+        else:
+            self._pass("nonfinite")
+
+    def _apply(self, rule: str, name: str, value: float) -> bool:
+        answer = self._call("apply", {"setpoints": {name: value}})
+        if answer.result is None:
+            self._fail(rule, f"{name} {_num(value)}: {answer.show()}")
+            return False
+        try:
+            applied = protocol.parse_applied(answer.result)
+        except ProtocolError as exc:
+            self._fail(rule, str(exc))
+            return False
+        reported = applied.setpoints.get(name)
+        if reported is None or not self._close_enough(name, reported, value):
+            self._fail(rule, f"{name} {_num(value)} sent, the reply says {_num(reported)}")
+            return False
+        shown = self._in_force(rule).setpoints.get(name)
+        if shown is None or not self._close_enough(name, shown, value):
+            self._fail(rule, f"{name} {_num(value)} applied, status says {_num(shown)}")
+            return False
+        return True
+
+    def _rule_apply(self) -> None:
+        assert self.description is not None
+        start = self._in_force("apply").setpoints
+        moved: list[str] = []
+        for name, limit in self.description.setpoints.items():
+            current = start.get(name)
+            if current is None or not limit.min <= current <= limit.max:
+                self._fail("apply", f"{name} in force {_num(current)} is outside its limits "
+                                    f"[{_num(limit.min)}, {_num(limit.max)}]; not moved")
+                raise _Incomplete
+            upward = current <= 0.5 * (limit.min + limit.max)
+            room = (limit.max - current) if upward else (current - limit.min)
+            step = min(0.5 * limit.max_step, room)
+            if step <= 0:
+                continue
+            target = current + step if upward else current - step
+            if not self._apply("apply", name, target):
+                raise _Incomplete
+            moved.append(f"{name} {_num(current)} -> {_num(target)}")
+        if moved:
+            self._pass("apply", "; ".join(moved))
+        else:
+            self._record("apply", "skip", "not run: every range is a single point")
+
+        here = self._in_force("apply.full_step").setpoints
+        full: list[str] = []
+        for name, limit in self.description.setpoints.items():
+            room_up, room_down = limit.max - here[name], here[name] - limit.min
+            if max(room_up, room_down) < limit.max_step:
+                continue
+            value = here[name] + limit.max_step if room_up >= room_down else here[name] - limit.max_step
+            if not self._apply("apply.full_step", name, value):
+                return
+            full.append(f"{name} {_num(here[name])} -> {_num(value)}")
+        if full:
+            self._pass("apply.full_step", "; ".join(full))
+        else:
+            self._record("apply.full_step", "skip", "not run: every range is narrower than max_step")
+
+    def _rule_refusals(self) -> None:
+        assert self.description is not None
+        before = self._in_force("refuse.out_of_range").setpoints
+        # The limit nearest to where the rig is, in steps: a rig wrongly executing the request
+        # then moves the least.
+        nearest = min(
+            ((min(limit.max - before[n], before[n] - limit.min) / limit.max_step, n)
+             for n, limit in self.description.setpoints.items()),
+        )[1]
+        limit = self.description.setpoints[nearest]
+        up = (limit.max - before[nearest]) <= (before[nearest] - limit.min)
+        value = limit.max + 1e-3 * limit.max_step if up else limit.min - 1e-3 * limit.max_step
+        self._refusal("refuse.out_of_range", nearest, value, before)
+
+        before = self._in_force("refuse.step").setpoints
+        for name, limit in self.description.setpoints.items():
+            current = before[name]
+            for value in (current + 1.5 * limit.max_step, current - 1.5 * limit.max_step):
+                if limit.min <= value <= limit.max:
+                    self._refusal("refuse.step", name, value, before)
+                    return
+        self._record("refuse.step", "skip", "not run: no range has room for a step of 1.5 max_step")
+
+    def _refusal(self, rule: str, name: str, value: float, before: Mapping[str, float]) -> None:
+        answer = self._call("apply", {"setpoints": {name: value}})
+        after = self._in_force(rule).setpoints
+        moved = self._unchanged(before, after)
+        if answer.kind != "out_of_range":
+            self._fail(rule, f"{name} {_num(value)}: {answer.show()}" + (f"; moved {moved}" if moved else ""))
+        elif name not in answer.detail:
+            self._fail(rule, f"out_of_range whose detail does not name {name}: {_short(answer.detail)}")
+        elif moved:
+            self._fail(rule, f"out_of_range, but moved {moved}")
+        else:
+            self._pass(rule, f"{name} {_num(value)}: {_short(answer.detail, 90)}")
+
+    def _rule_acquire(self) -> None:
+        assert self.description is not None
+        shots = max(1, min(self._shots, self.description.max_shots_per_acquisition))
+        args = {"field": "empty", "ramsey_phase": 0.0, "shots": shots}
+        before = self._in_force("acquire")
+        answer = self._call("acquire", args)
+        if answer.result is None:
+            self._fail("acquire", answer.show())
+            raise _Incomplete
+        try:
+            acquisition = protocol.parse_acquisition(answer.result)
+        except ProtocolError as exc:
+            self._fail("acquire", str(exc))
+            raise _Incomplete from None
+        after = self._in_force("acquire")
+        problems = []
+        if acquisition.shots != shots:
+            problems.append(f"shots {acquisition.shots} for {shots} asked")
+        if acquisition.t_start < before.clock:
+            problems.append(f"t_start {_num(acquisition.t_start)} before the clock {_num(before.clock)}")
+        moved = self._unchanged(before.setpoints, acquisition.setpoints)
+        if moved:
+            problems.append(f"set-points in force differ from status: {moved}")
+        if after.shots_total != before.shots_total + shots:
+            problems.append(f"shots_total {before.shots_total} -> {after.shots_total} for {shots} shots")
+        if problems:
+            self._fail("acquire", "; ".join(problems))
+        else:
+            counts = acquisition.counts
+            self._pass("acquire", f"{shots} shots: e {counts.e}, g {counts.g}, i {counts.i}")
+
+        msg_id = protocol.new_msg_id()
+        data = _request("acquire", args, msg_id)
+        first = self._send(data, msg_id, "acquire")
+        second = self._send(data, msg_id, "acquire")
+        total = self._in_force("replay").shots_total
+        grown = total - after.shots_total
+        if first.result is None or second.result is None:
+            self._fail("replay", f"first {first.show()}, second {second.show()}")
+        elif first.result != second.result:
+            self._fail("replay", f"two different replies (t_start {first.result.get('t_start')!r} and "
+                                 f"{second.result.get('t_start')!r}); shots_total grew by {grown}")
+        elif grown != shots:
+            self._fail("replay", f"shots_total grew by {grown} for one request of {shots} shots")
+        else:
+            self._pass("replay")
+
+        answer = self._call("acquire", {"field": "vacuum", "ramsey_phase": 0.0, "shots": shots})
+        grown = self._in_force("acquire.field").shots_total - total
+        if answer.kind != "bad_request" or grown:
+            self._fail("acquire.field", answer.show() + (f"; shots_total grew by {grown}" if grown else ""))
+        else:
+            self._pass("acquire.field")
+
+    def _rule_safe(self) -> None:
+        assert self.description is not None
+        answer = self._call("safe")
+        if answer.result is None:
+            self._fail("safe", answer.show())
+            return
+        try:
+            applied = protocol.parse_safe(answer.result)
+        except ProtocolError as exc:
+            self._fail("safe", str(exc))
+            return
+        want = dict(self.description.safe_setpoints)
+        moved = self._unchanged(want, dict(applied.setpoints))
+        shown = self._unchanged(want, dict(self._in_force("safe").setpoints))
+        if moved:
+            self._fail("safe", f"the reply differs from safe_setpoints: {moved}")
+        elif shown:
+            self._fail("safe", f"status differs from safe_setpoints: {shown}")
+        else:
+            self._pass("safe")
+
+    def _instance_rule(self) -> None:
+        seen = {value for _, value in self._instances}
+        if not self._instances:
+            self._record("instance", "skip", "not run: no result seen")
+        elif seen == {None}:
+            self._record("instance", "warn", "no instance key (optional; a client then cannot see a restart)")
+        elif None in seen:
+            ops = sorted({op for op, value in self._instances if value is None})
+            self._fail("instance", f"missing from {ops} but present elsewhere")
+        elif len(seen) > 1:
+            self._fail("instance", f"changed during the probe: {sorted(str(v) for v in seen)}")
+        else:
+            value = next(iter(seen))
+            if not isinstance(value, str) or not 1 <= len(value) <= 64 or not all(
+                    c.isascii() and (c.isalnum() or c in "_-") for c in value):
+                self._fail("instance", f"malformed {_num(value)}")
+            else:
+                self._pass("instance", value)
+
+
+def summarise(findings: list[Finding]) -> dict[str, int]:
+    """Count findings per outcome."""
+    counts = {"pass": 0, "fail": 0, "warn": 0, "skip": 0}
+    for finding in findings:
+        counts[finding.outcome] += 1
+    return counts
+

@@ -1,0 +1,97 @@
+"""autotune.driver_config: DRIVER.toml is checked once, and the driver class is found and built."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import pytest
+
+from autotune.driver_config import DEFAULT_BIND, DriverStartError, build_driver, load_driver_config
+from autotune.errors import ConfigError
+
+from .conftest import EXAMPLE_DRIVER_TOML
+
+MINIMAL = """
+[driver]
+class = "{target}"
+python_path = ["."]
+{options}
+[setpoints.velocity]
+unit = "m/s"
+channel = "V"
+channel_unit = "m/s"
+law = "linear"
+scale = 1.0
+"""
+
+
+@pytest.fixture(autouse=True)
+def _restore_import_path(monkeypatch: pytest.MonkeyPatch) -> None:
+    """build_driver puts python_path folders on sys.path: give each test its own copy."""
+    monkeypatch.setattr(sys, "path", list(sys.path))
+
+
+def _write(folder: Path, text: str) -> Path:
+    path = folder / "DRIVER.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_example_file_loads_with_loopback_default(tmp_path: Path):
+    """The example DRIVER.toml loads; its options and relative python_path are resolved against its folder."""
+    config = load_driver_config(EXAMPLE_DRIVER_TOML)
+    assert config.driver_class == "lab_driver.driver:LabDriver"
+    assert config.python_path == (EXAMPLE_DRIVER_TOML.parent.parent.resolve(),)
+    assert config.bind == "tcp://127.0.0.1:5560" == DEFAULT_BIND
+    assert set(config.setpoints) == {"velocity", "detuning"}
+
+
+@pytest.mark.parametrize(("text", "key"), [
+    (MINIMAL.format(target="no_colon", options=""), "driver.class"),
+    (MINIMAL.format(target="a:B", options="") + "\n[extra]\n", "extra"),
+    (MINIMAL.format(target="a:B", options="") + "\n[server]\nbind = \"127.0.0.1\"\n", "server.bind"),
+    (MINIMAL.format(target="a:B", options="")
+     + "\n[server]\ncurve_secret_key_file = \"k\"\n", "server.curve_secret_key_file"),
+    (MINIMAL.format(target="a:B", options="").replace('["."]', '["missing"]'), "driver.python_path"),
+    ("[driver]\nclass = \"a:B\"\n", "setpoints"),
+    ("[driver\n", "<file>"),
+])
+def test_bad_files_name_the_key(tmp_path: Path, text: str, key: str):
+    """Every wrong value is a ConfigError naming file and key, before anything is imported or built."""
+    with pytest.raises(ConfigError) as info:
+        load_driver_config(_write(tmp_path, text))
+    assert info.value.key == key
+
+
+def test_missing_file_is_named(tmp_path: Path):
+    """A DRIVER.toml that does not exist is a ConfigError naming it."""
+    with pytest.raises(ConfigError, match="no such file"):
+        load_driver_config(tmp_path / "absent.toml")
+
+
+def test_unimportable_module_is_a_config_error(tmp_path: Path):
+    """A module that is not on the path: ConfigError on driver.class mentioning python_path."""
+    config = load_driver_config(_write(tmp_path, MINIMAL.format(target="nowhere_module_x:Driver", options="")))
+    with pytest.raises(ConfigError, match="python_path") as info:
+        build_driver(config)
+    assert info.value.key == "driver.class"
+
+
+def test_wrong_options_are_a_config_error(tmp_path: Path):
+    """Options the class does not take (TypeError) are a ConfigError on driver.options."""
+    (tmp_path / "kit_opts_driver.py").write_text("class Driver:\n    def __init__(self, address):\n        pass\n")
+    text = MINIMAL.format(target="kit_opts_driver:Driver", options="[driver.options]\nadress = \"x\"\n")
+    with pytest.raises(ConfigError) as info:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert info.value.key == "driver.options" and "adress" in str(info.value)
+
+
+def test_driver_failing_to_connect_is_a_start_error(tmp_path: Path):
+    """A constructor that cannot reach its hardware (ConnectionRefusedError) is a DriverStartError, cause chained."""
+    (tmp_path / "kit_down_driver.py").write_text(
+        "class Driver:\n    def __init__(self):\n        raise ConnectionRefusedError('supply at 10.0.0.7 refused')\n")
+    with pytest.raises(DriverStartError, match="supply at 10.0.0.7 refused") as info:
+        build_driver(load_driver_config(_write(tmp_path, MINIMAL.format(target="kit_down_driver:Driver",
+                                                                             options=""))))
+    assert isinstance(info.value.__cause__, ConnectionRefusedError)

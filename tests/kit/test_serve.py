@@ -1,0 +1,205 @@
+"""autotune serve and autotune rig as processes: ready file, bus round trips, CURVE, refusals,
+exit codes, and the simulated rig calibrated through the Stark channel map."""
+
+from __future__ import annotations
+
+import json
+import math
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+import tomllib
+from pathlib import Path
+
+import pytest
+from rig_process import REPO, STOP_TIMEOUT_S
+
+from autotune.bus import BusClient, CurveClientKeys
+from autotune.errors import RigRefused
+
+from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML, Keys
+
+K, BIAS, GAP = -25.0, 150.0, 0.02  # Stark constants of configs/sim-driver.toml (PHYSICS.md section 4)
+
+
+def _client(endpoint: str, **options: object) -> BusClient:
+    return BusClient(endpoint, timeout_s=5.0, retries=1, backoff_s=0.1, **options)
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+def _autotune_script() -> list[str]:
+    """The installed console script, as a user types it (the module entry point if not installed)."""
+    script = shutil.which("autotune")
+    return [script] if script else [sys.executable, "-m", "autotune.cli"]
+
+
+def test_example_driver_served_over_the_bus(serve):
+    """Served by `autotune serve`, the example driver answers describe/apply/acquire/status on loopback."""
+    server = serve()
+    assert server.endpoint.startswith("tcp://127.0.0.1:")
+    with _client(server.endpoint) as client:
+        description = client.describe()
+        assert description.rig == "bench-2" and description.instance
+        applied = client.apply({"detuning": -10e3})
+        assert applied.setpoints["detuning"] == -10e3 and applied.instance == description.instance
+        acquisition = client.acquire("one_photon", 0.5, 150)
+        assert acquisition.shots == 150 and acquisition.t_end - acquisition.t_start == pytest.approx(1.0)
+        with pytest.raises(RigRefused) as refused:
+            client.truth()
+        assert refused.value.kind == "unknown_op"
+    loaded = server.wait_for_event("driver_loaded")
+    assert loaded and loaded[0]["setpoints"]["detuning"]["channel"] == "STARK:HV1"
+    assert "CAUTION" in server.log_path.read_text()  # a rig that is not simulated gets the caution
+
+
+def test_sigterm_stops_serve_cleanly(serve):
+    """SIGTERM makes `autotune serve` close its socket, release the driver and exit 0."""
+    server = serve()
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=STOP_TIMEOUT_S) == 0
+    assert server.wait_for_event("server_stopping")
+
+
+def _bad_copy(tmp_path: Path, old: str, new: str) -> Path:
+    text = EXAMPLE_DRIVER_TOML.read_text()
+    assert old in text
+    path = tmp_path / "lab_driver" / "DRIVER.toml"  # its python_path [".."] then finds the copy
+    shutil.copytree(EXAMPLE_DRIVER_TOML.parent, path.parent, ignore=shutil.ignore_patterns("__pycache__"))
+    path.write_text(text.replace(old, new))
+    return path
+
+
+@pytest.mark.parametrize(("old", "new", "key"), [
+    ('channel_unit = "V"', 'channel_unit = "kV"', "setpoints.detuning.channel_unit"),
+    ('branch = "positive"', 'branch = "upper"', "setpoints.detuning.branch"),
+    ('class = "lab_driver.driver:LabDriver"', 'class = "lab_driver.driver:NoSuchDriver"', "driver.class"),
+    ("seed = 7", "seed = 7\ncolour = 1", "driver.options"),
+    ("[server]", "[server]\nport = 1", "server.port"),
+])
+def test_bad_driver_toml_refuses_to_start_with_exit_2(serve, tmp_path: Path, old: str, new: str, key: str):
+    """A wrong DRIVER.toml stops the start with status 2, names the key, and never listens."""
+    server = serve(_bad_copy(tmp_path, old, new), wait=False)
+    assert server.process.wait(timeout=60) == 2
+    refused = server.wait_for_event("server_refused_to_start")
+    assert refused and key in refused[0]["error"], refused
+    assert not server.ready_path.exists()
+
+
+def test_driver_that_cannot_reach_its_hardware_exits_3(serve, tmp_path: Path):
+    """A driver whose constructor cannot connect stops the start with status 3 (rig unreachable)."""
+    (tmp_path / "down_driver.py").write_text(
+        "class Driver:\n    def __init__(self):\n        raise ConnectionRefusedError('sequencer refused')\n")
+    config = tmp_path / "DRIVER.toml"
+    config.write_text('[driver]\nclass = "down_driver:Driver"\npython_path = ["."]\n'
+                      '[setpoints.velocity]\nunit = "m/s"\nchannel = "v"\nchannel_unit = "m/s"\n'
+                      'law = "linear"\nscale = 1.0\n')
+    server = serve(config, wait=False)
+    assert server.process.wait(timeout=60) == 3
+    failed = server.wait_for_event("driver_failed_to_start")
+    assert failed and "sequencer refused" in failed[0]["error"]
+
+
+def test_port_in_use_exits_1(serve):
+    """A second server on a bound port exits with status 1 and logs why."""
+    first = serve()
+    second = serve(EXAMPLE_DRIVER_TOML, bind=first.endpoint, wait=False, name="second")
+    assert second.process.wait(timeout=60) == 1
+    assert second.wait_for_event("server_bind_failed")
+
+
+def test_curve_keys_from_driver_toml(serve, tmp_path: Path, keys: Keys):
+    """CURVE keys named in [server] (relative to the file) admit the allowed client only."""
+    config = _bad_copy(tmp_path, '# curve_secret_key_file = "keys/server.key_secret"',
+                       'curve_secret_key_file = "server.key_secret"\ncurve_allowed_dir = "allowed"')
+    shutil.copytree(keys.allowed_dir, config.parent / "allowed")
+    shutil.copy(keys.server_secret, config.parent / "server.key_secret")
+    server = serve(config)
+    curve = CurveClientKeys.load(keys.client_secret, keys.server_public)
+    with _client(server.endpoint, curve=curve) as client:
+        assert client.status().shots_total == 0
+    assert server.wait_for_event("server_listening")[0]["curve"] is True
+
+
+def test_simulated_rig_calibrated_through_the_stark_map(serve, tmp_path: Path):
+    """`autotune serve --config configs/sim-driver.toml` then `autotune calibrate`: every move goes
+    through the Stark law, and the simulated electrodes end at V = gap sqrt(E_bias^2 + d/k)."""
+    server = serve(SIM_DRIVER_TOML)
+    data = tomllib.loads((REPO / "configs" / "dry-run.toml").read_text())
+    data["bus"]["endpoint"] = server.endpoint
+    data["search"].update(max_points=10, n_initial_points=5, min_points=5, refine_points=3)
+    data["measurement"].update(shots_per_phase=600, verification_shots_per_phase=1500, resamples=300)
+    data["calibration"]["store"] = str(tmp_path / "good.json")
+    config = tmp_path / "calibrate.toml"
+    config.write_text(_toml(data))
+    run = tmp_path / "run"
+    done = subprocess.run([sys.executable, "-m", "autotune.cli", "calibrate", "--config", str(config), "--out",
+                           str(run)], capture_output=True, text=True, timeout=600, cwd=REPO,
+                          stdin=subprocess.DEVNULL)
+    assert done.returncode in (0, 4), done.stderr[-3000:]
+    result = json.loads((run / "result.json").read_text())
+    with _client(server.endpoint) as client:
+        described = client.describe().setpoints["detuning"]
+        in_force = client.status().setpoints["detuning"]
+        hidden = client.truth()["hidden"]
+    assert in_force == pytest.approx(result["setpoints"]["detuning"])
+    assert hidden["electrode_voltage_v"] == pytest.approx(GAP * math.sqrt(BIAS**2 + in_force / K), rel=1e-9)
+    # The described step is the 0.05 V channel step at the lowest voltage of +-150 kHz.
+    assert described.max_step == pytest.approx(0.05 * 2 * abs(K) * GAP * math.sqrt(BIAS**2 + 150e3 / K) / GAP**2)
+
+
+def _toml(data: dict, prefix: str = "") -> str:
+    scalars, tables = [], []
+    for key, value in data.items():
+        if isinstance(value, dict):
+            tables.append(_toml(value, f"{prefix}{key}."))
+        else:
+            scalars.append(f"{key} = {json.dumps(value)}")
+    head = f"[{prefix[:-1]}]\n" if prefix and scalars else ""
+    return head + "\n".join(scalars) + ("\n\n" if scalars else "") + "".join(tables)
+
+
+def test_readme_rig_command_serves_until_sigterm():
+    """The README's `autotune rig --config configs/sim-rig.toml --bind tcp://127.0.0.1:PORT`, as written."""
+    port = _free_port()
+    command = "autotune rig --config configs/sim-rig.toml --bind tcp://127.0.0.1:PORT".replace("PORT", str(port))
+    argv = _autotune_script() + command.split()[1:]
+    process = subprocess.Popen(argv, cwd=REPO, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                               stderr=subprocess.PIPE)
+    try:
+        with _client(f"tcp://127.0.0.1:{port}") as client:
+            deadline = time.monotonic() + 30
+            while True:
+                try:
+                    assert client.describe().rig == "bench-2-sim"
+                    break
+                except Exception:  # noqa: BLE001 - not listening yet
+                    assert process.poll() is None and time.monotonic() < deadline
+    finally:
+        process.send_signal(signal.SIGTERM)
+        _, err = process.communicate(timeout=STOP_TIMEOUT_S * 2)
+    assert process.returncode == 0, err.decode()[-2000:]
+    assert b"SIMULATED" in err
+
+
+@pytest.mark.parametrize(("command", "options"), [
+    ("rig", ["--config", "--bind", "--seed", "--ready-file", "--drop-probability", "--delay-s",
+             "--corrupt-probability", "--exit-after", "--curve-secret-key", "--curve-allowed-dir", "--log-level"]),
+    ("serve", ["--config", "--bind", "--ready-file", "--curve-secret-key", "--curve-allowed-dir", "--log-level"]),
+    ("probe", ["ENDPOINT", "--yes", "--timeout-s", "--shots", "--curve-client-secret-key",
+               "--curve-server-public-key"]),
+])
+def test_installed_script_shows_help(command: str, options: list[str]):
+    """`autotune rig --help` (and serve, probe) through the installed console script: exit 0, every option."""
+    done = subprocess.run(_autotune_script() + [command, "--help"], capture_output=True, text=True, timeout=60,
+                          cwd=REPO, stdin=subprocess.DEVNULL)
+    assert done.returncode == 0, done.stderr
+    for option in options:
+        assert option in done.stdout
