@@ -338,3 +338,12 @@ def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
     missing = tmp_path / "nope.json"
     assert bench.main(["--show", str(missing)]) == 2
     assert str(missing) in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("name", ["latest.json", "quick.json"])
+def test_stored_results_still_print(name, capsys):
+    """The README's `--show benchmarks/results/latest.json` prints every stored result, old or new."""
+    # Source: README, Performance (the command as written there, on the files the repo holds).
+    path = bench.REPO / "benchmarks" / "results" / name
+    assert bench.main(["--show", str(path)]) == 0
+    assert capsys.readouterr().out.startswith("autotune benchmark (")
