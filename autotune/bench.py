@@ -1145,11 +1145,31 @@ def _map(jobs: list[dict[str, Any]], plan: StudyPlan, scheduler: str | None,
             results.append(json.loads(run_job(text)))
             _note(progress, results[-1])
         return results, "serial (this process)"
-    return _map_on_cluster(texts, plan, scheduler, progress)
+    return _map_on_cluster(jobs, texts, plan, scheduler, progress)
 
 
-def _map_on_cluster(texts: list[str], plan: StudyPlan, scheduler: str | None,
-                    progress: Callable[[str], None] | None
+def _run_job_in_subprocess(job_json: str, timeout_s: float) -> str:
+    """:func:`run_job` in a fresh interpreter, for a job that traces its process's memory.
+
+    A dask worker's own bookkeeping (its event loop, logs and metrics, in other threads) is
+    traced by tracemalloc too and grows with wall time; a child process of the worker holds
+    only the job. The worker's slot stays taken while it waits, as a process pool's would.
+    """
+    code = ("import sys; from pathlib import Path; from autotune.bench import run_job; "
+            "Path(sys.argv[2]).write_text(run_job(Path(sys.argv[1]).read_text(), quiet=True))")
+    with tempfile.TemporaryDirectory(prefix="autotune-bench-job-") as tmp:
+        job_path, result_path = Path(tmp) / "job.json", Path(tmp) / "result.json"
+        job_path.write_text(job_json, encoding="utf-8")
+        done = subprocess.run([sys.executable, "-c", code, str(job_path), str(result_path)],
+                              capture_output=True, text=True, timeout=timeout_s, check=False)
+        if done.returncode != 0:
+            raise RuntimeError(f"job in a subprocess failed with exit code {done.returncode}: "
+                               f"{done.stderr[-2000:]}")
+        return result_path.read_text(encoding="utf-8")
+
+
+def _map_on_cluster(jobs: list[dict[str, Any]], texts: list[str], plan: StudyPlan,
+                    scheduler: str | None, progress: Callable[[str], None] | None
                     ) -> tuple[list[dict[str, Any]], str]:
     # dask is imported here only: `import autotune` and serial runs never pay for it.
     from distributed import Client, LocalCluster, as_completed
@@ -1175,7 +1195,11 @@ def _map_on_cluster(texts: list[str], plan: StudyPlan, scheduler: str | None,
         # on a scheduler that is gone).
         stack.callback(client.close, timeout=CLUSTER_CLOSE_TIMEOUT_S)
         client.wait_for_workers(1, timeout=CLUSTER_START_TIMEOUT_S)
-        futures = client.map(run_job, texts, quiet=True, pure=False)
+        # Submitted in order: dask runs earlier submissions first (the night job leads).
+        futures = [client.submit(_run_job_in_subprocess, text, plan.timeout_s, pure=False)
+                   if job["kind"] == "night" else
+                   client.submit(run_job, text, quiet=True, pure=False)
+                   for job, text in zip(jobs, texts)]
         position = {future.key: k for k, future in enumerate(futures)}
         results: list[dict[str, Any] | None] = [None] * len(texts)
         try:

@@ -347,3 +347,10 @@ def test_stored_results_still_print(name, capsys):
     path = bench.REPO / "benchmarks" / "results" / name
     assert bench.main(["--show", str(path)]) == 0
     assert capsys.readouterr().out.startswith("autotune benchmark (")
+
+
+def test_job_in_a_subprocess_reports_its_failure():
+    """A job run in a fresh interpreter (the night's, on a cluster) that fails raises with its error."""
+    # Source: STYLE.md habit 6 (clear errors); the child's own message is passed on.
+    with pytest.raises(RuntimeError, match="job kind: expected one of"):
+        bench._run_job_in_subprocess(json.dumps({"kind": "nap"}), timeout_s=120.0)
