@@ -354,3 +354,14 @@ def test_job_in_a_subprocess_reports_its_failure():
     # Source: STYLE.md habit 6 (clear errors); the child's own message is passed on.
     with pytest.raises(RuntimeError, match="job kind: expected one of"):
         bench._run_job_in_subprocess(json.dumps({"kind": "nap"}), timeout_s=120.0)
+
+
+def test_unreachable_scheduler_fails_within_its_bound(monkeypatch):
+    """A scheduler address where nothing listens is an OSError once the connection bound passes."""
+    # Source: STYLE.md habit 7 (every wait has a bound); port 1 on loopback has no listener
+    # (tcpmux, unused on test machines: common practice).
+    monkeypatch.setattr(bench, "CLUSTER_START_TIMEOUT_S", 2.0)
+    plan = dataclasses.replace(TINY, strategies=("grid",), families=("main",), night_steps=0,
+                               overhead_points=(), workers=2)
+    with pytest.raises(OSError, match="127.0.0.1:1"):
+        bench.run_study(plan, scheduler="tcp://127.0.0.1:1")
