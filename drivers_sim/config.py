@@ -25,6 +25,7 @@ from drivers_sim.physics import (
     SUPER_GAUSSIAN_ORDER_RANGE,
     WAIST_ASYMMETRY_RANGE,
     ModeProfile,
+    ModeProfileKind,
 )
 
 __all__ = [
@@ -127,7 +128,7 @@ class CavitySection:
     damping_time_s: float
     temperature_k: float
     initial_offset_hz: float
-    mode_profile: str = "gaussian"
+    mode_profile: ModeProfileKind = "gaussian"
     super_gaussian_order: float | None = None
     waist_asymmetry: float | None = None
 
