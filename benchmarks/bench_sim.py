@@ -8,7 +8,9 @@ Run ``python benchmarks/bench_sim.py``. It prints:
    1..4) against the same pipeline with qutip's ``sesolve`` called once per velocity class and
    photon number, the ratio of the two, and their agreement in amplitude and in probability;
 4. the error of the stencil interpolation that acquisitions use under drift, and the cost of
-   the truth's best-set-point search (first call and cached call).
+   the truth's best-set-point search (first call and cached call);
+5. the cost of the model for one set-point with each mode profile, as a ratio to the Gaussian's
+   (the other profiles integrate the crossing in two passes of half the steps each).
 
 Targets (task brief): acquisition well under 1 ms, set-point change a few tens of ms at most,
 model >= 100x faster than qutip at 1e-6 agreement.
@@ -17,6 +19,7 @@ model >= 100x faster than qutip at 1e-6 agreement.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import logging
 import statistics
 import sys
@@ -159,6 +162,17 @@ def main() -> int:
     first_s = time.perf_counter() - start
     cached_s = _median_time(fresh.truth, 10)
     print(f"truth: first call (best search)         : {first_s * 1e3:8.1f} ms; cached: {cached_s * 1e3:.2f} ms")
+
+    # 5. One set-point of the model per mode profile, side by side.
+    profiles = [physics.ModeProfile(), physics.ModeProfile("super_gaussian", order=4.0),
+                physics.ModeProfile("asymmetric", asymmetry=0.3)]
+    costs = []
+    for profile in profiles:
+        shaped = dataclasses.replace(model, mode_profile=profile)
+        costs.append(_median_time(
+            lambda shaped=shaped: physics.outcome_coefficients(shaped, velocity_set, detuning), 20))
+    print("model, one set-point, per mode profile  : " + ", ".join(
+        f"{p.kind} {c * 1e3:.3f} ms ({c / costs[0]:.2f}x)" for p, c in zip(profiles, costs)))
     return 0
 
 

@@ -21,6 +21,14 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from drivers_sim.physics import (
+    MODE_PROFILES,
+    SUPER_GAUSSIAN_ORDER_RANGE,
+    WAIST_ASYMMETRY_RANGE,
+    ModeProfile,
+    ModeProfileKind,
+)
+
 __all__ = [
     "SETPOINT_UNITS",
     "SimConfigError",
@@ -95,13 +103,24 @@ class CavitySection:
     coupling_hz : float
         Vacuum Rabi frequency ``Omega_0 / 2 pi`` at the mode centre, Hz.
     waist_m : float
-        Mode waist, m.
+        Mode waist ``w`` of the coupling ``Omega_0 f(v t / w)``, m (for the asymmetric profile
+        the mean of the waists before and after the centre).
     damping_time_s : float
         Energy damping time ``T_c``, s.
     temperature_k : float
         Mode temperature, K.
     initial_offset_hz : float
         Cavity drift offset at clock 0 (true minus set detuning, before Stark error), Hz.
+    mode_profile : {"gaussian", "super_gaussian", "asymmetric"}
+        Shape ``f`` of the coupling envelope (:class:`drivers_sim.physics.ModeProfile`);
+        optional, default ``"gaussian"``.
+    super_gaussian_order : float or None
+        Order ``p`` of ``f = exp(-|x|^p)``; required with ``mode_profile = "super_gaussian"``,
+        refused otherwise.
+    waist_asymmetry : float or None
+        ``a`` of the asymmetric mode (waists ``w (1 - a)`` before the centre and ``w (1 + a)``
+        after it, along the beam); required with ``mode_profile = "asymmetric"``, refused
+        otherwise.
     """
 
     frequency_hz: float
@@ -110,6 +129,18 @@ class CavitySection:
     damping_time_s: float
     temperature_k: float
     initial_offset_hz: float
+    mode_profile: ModeProfileKind = "gaussian"
+    super_gaussian_order: float | None = None
+    waist_asymmetry: float | None = None
+
+    @property
+    def profile(self) -> ModeProfile:
+        """The mode profile as the physics model takes it."""
+        if self.mode_profile == "super_gaussian":
+            return ModeProfile("super_gaussian", order=float(self.super_gaussian_order))
+        if self.mode_profile == "asymmetric":
+            return ModeProfile("asymmetric", asymmetry=float(self.waist_asymmetry))
+        return ModeProfile()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -177,12 +208,17 @@ class StarkSection:
         Field at detuning set-point 0, V/m.
     electrode_gap_m : float
         Electrode gap (voltage = field * gap), m.
+    bias_field_error_v_per_m : float
+        Hidden error of the electrode field: the atoms see the field commanded through the
+        nominal law plus this (a stray field along the electrodes' axis), V/m; optional,
+        default 0. The true detuning is ``k_true ((E + error)^2 - E_bias^2)``.
     """
 
     coefficient_hz_m2_per_v2: float
     coefficient_error: float
     bias_field_v_per_m: float
     electrode_gap_m: float
+    bias_field_error_v_per_m: float = 0.0
 
 
 @dataclasses.dataclass(frozen=True)
@@ -304,7 +340,9 @@ class SimRigConfig:
         """The configuration as the nested dict :func:`sim_config_from_dict` accepts."""
         out: dict[str, Any] = {}
         for name in _SECTIONS:
-            out[name] = dataclasses.asdict(getattr(self, name))
+            # Keys left unset (None: a parameter of a profile not in use) stay out of the file.
+            out[name] = {key: value for key, value in dataclasses.asdict(getattr(self, name)).items()
+                         if value is not None}
         out["limits"] = {
             name: {
                 f"{key}_{_UNIT_SUFFIX[name]}": getattr(limit, key)
@@ -324,13 +362,16 @@ class SimRigConfig:
 
 @dataclasses.dataclass(frozen=True)
 class _Spec:
-    kind: str  # "float", "int" or "str"
+    kind: str  # "float", "int", "str" or "choice"
     low: float | None = None
     high: float | None = None
     low_open: bool = False
     high_open: bool = False
+    choices: tuple[str, ...] = ()
 
     def describe(self) -> str:
+        if self.kind == "choice":
+            return "one of " + ", ".join(repr(c) for c in self.choices)
         what = {"float": "a finite number", "int": "an integer", "str": "a non-empty string"}[
             self.kind
         ]
@@ -369,6 +410,9 @@ _SECTION_SPECS: dict[str, dict[str, _Spec]] = {
         "damping_time_s": _f(0.0, 1e6, low_open=True),
         "temperature_k": _f(0.0, 1e4),
         "initial_offset_hz": _f(-1e9, 1e9),
+        "mode_profile": _Spec("choice", choices=MODE_PROFILES),
+        "super_gaussian_order": _f(*SUPER_GAUSSIAN_ORDER_RANGE),
+        "waist_asymmetry": _f(*WAIST_ASYMMETRY_RANGE),
     },
     "beam": {
         "velocity_bias_m_per_s": _f(-1e4, 1e4),
@@ -388,6 +432,7 @@ _SECTION_SPECS: dict[str, dict[str, _Spec]] = {
         "coefficient_error": _f(-0.5, 0.5),
         "bias_field_v_per_m": _f(0.0, 1e7, low_open=True),
         "electrode_gap_m": _POS,
+        "bias_field_error_v_per_m": _f(-1e7, 1e7),
     },
     "detection": {
         "efficiency": _f(0.0, 1.0, low_open=True),
@@ -443,6 +488,10 @@ class _Checker:
                 raise self.fail(where, f"one of the keys {sorted(allowed)}", "an unknown key")
 
     def value(self, spec: _Spec, raw: Any, key: str) -> Any:
+        if spec.kind == "choice":
+            if not isinstance(raw, str) or raw not in spec.choices:
+                raise self.fail(key, spec.describe(), raw)
+            return raw
         if spec.kind == "str":
             if not isinstance(raw, str) or not raw.strip():
                 raise self.fail(key, spec.describe(), raw)
@@ -552,6 +601,18 @@ def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> S
             f"a probability <= 1 - g_read_as_e = {1.0 - detection.g_read_as_e:g}",
             detection.g_read_as_i,
         )
+    cavity = sections["cavity"]
+    for key, profile in (("super_gaussian_order", "super_gaussian"),
+                         ("waist_asymmetry", "asymmetric")):
+        value = getattr(cavity, key)
+        if cavity.mode_profile == profile and value is None:
+            raise check.fail(f"cavity.{key}",
+                             f"{_SECTION_SPECS['cavity'][key].describe()} "
+                             f"(mode_profile = {profile!r} needs it)", "nothing")
+        if cavity.mode_profile != profile and value is not None:
+            raise check.fail(f"cavity.{key}",
+                             f"no value unless cavity.mode_profile = {profile!r} "
+                             f"(it is {cavity.mode_profile!r})", value)
     stark = sections["stark"]
     if stark.coefficient_hz_m2_per_v2 == 0.0:
         raise check.fail("stark.coefficient_hz_m2_per_v2", "a non-zero number", 0.0)
@@ -566,6 +627,19 @@ def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> S
                 f"(needs >= {math.sqrt(-getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2):g})",
                 stark.bias_field_v_per_m,
             )
+    # The stray field must not reverse the field the atoms see anywhere within the limits
+    # (the set-point -> detuning map would fold over and lose its inverse).
+    weakest = min(
+        math.sqrt(stark.bias_field_v_per_m**2 + getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2)
+        for bound in ("min", "max")
+    )
+    if abs(stark.bias_field_error_v_per_m) >= weakest:
+        raise check.fail(
+            "stark.bias_field_error_v_per_m",
+            f"a field error smaller in size than the weakest electrode field within "
+            f"limits.detuning ({weakest:g} V/m)",
+            stark.bias_field_error_v_per_m,
+        )
     velocity = limits["velocity"]
     bias = sections["beam"].velocity_bias_m_per_s
     spread = sections["beam"].velocity_spread_m_per_s

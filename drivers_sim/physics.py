@@ -2,8 +2,11 @@
 
 The model follows /work/shared/PHYSICS.md:
 
+- :class:`ModeProfile` is the shape ``f`` of the coupling envelope ``Omega_0 f(v t / w)``: the
+  Gaussian mode of PHYSICS.md section 2 (the default), a super-Gaussian ``exp(-|x|^p)`` or an
+  asymmetric mode (two half-Gaussians of different waists);
 - :func:`crossing_amplitudes` integrates the 2x2 problem {|g,n>, |e,n-1>} of one crossing of the
-  Gaussian mode for whole arrays of velocities, detunings and photon numbers at once;
+  mode for whole arrays of velocities, detunings and photon numbers at once;
 - :func:`ramsey_rotation` is the zone rotation U(theta, phi) on (g, i);
 - :func:`outcome_coefficients` averages one atom over a velocity distribution (Gauss-Hermite
   nodes) and a photon-number distribution and returns the first-harmonic coefficients
@@ -25,14 +28,23 @@ import dataclasses
 import functools
 import math
 
+from typing import Literal, get_args
+
 import numpy as np
 import scipy.constants
+import scipy.special
 
 __all__ = [
     "OUTCOMES",
     "FIELDS",
     "DEFAULT_CROSSING_STEPS",
     "DEFAULT_HALF_WIDTH",
+    "MODE_PROFILES",
+    "ModeProfileKind",
+    "SUPER_GAUSSIAN_ORDER_RANGE",
+    "WAIST_ASYMMETRY_RANGE",
+    "ModeProfile",
+    "GAUSSIAN_MODE",
     "AtomCavityModel",
     "two_level_evolution",
     "crossing_amplitudes",
@@ -66,6 +78,18 @@ DEFAULT_CROSSING_STEPS = 256
 #: is above 1e-6 in amplitude for n = 4 at slow velocities.
 DEFAULT_HALF_WIDTH = 4.0
 
+#: Relative pulse area left outside the integration window of every mode profile: that of the
+#: Gaussian window +-DEFAULT_HALF_WIDTH, erfc(4) = 1.5e-8.
+_TAIL_FRACTION = math.erfc(DEFAULT_HALF_WIDTH)
+
+ModeProfileKind = Literal["gaussian", "super_gaussian", "asymmetric"]
+#: Names of the mode profiles, as written in the simulated rig's ``[cavity] mode_profile``.
+MODE_PROFILES: tuple[str, ...] = get_args(ModeProfileKind)
+#: Range of super-Gaussian orders the crossing solver is checked for (tests/sim against qutip).
+SUPER_GAUSSIAN_ORDER_RANGE = (2.0, 10.0)
+#: Range of the waist asymmetry of the asymmetric profile (waists w (1 -+ a) stay >= w / 2).
+WAIST_ASYMMETRY_RANGE = (-0.5, 0.5)
+
 # Gauss-Legendre nodes and weights of the fourth-order commutator-free scheme
 # (two exponentials per step, each an exact SU(2) rotation of a constant 2x2 Hamiltonian).
 _GL_NODES = (0.5 - math.sqrt(3.0) / 6.0, 0.5 + math.sqrt(3.0) / 6.0)
@@ -77,12 +101,106 @@ _CHUNK_ELEMENTS = 1 << 21
 
 
 # --------------------------------------------------------------------------------------------
+# The mode profile
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class ModeProfile:
+    """Shape ``f`` of the coupling envelope ``Omega(t) = Omega_0 sqrt(n) f(v t / w)``.
+
+    ``x = v t / w`` is the position along the beam in units of the waist ``w``, with the mode
+    centre at ``x = 0`` and the atom moving towards ``+x``; every profile has ``f(0) = 1``, so
+    ``Omega_0`` stays the coupling at the mode centre.
+
+    Attributes
+    ----------
+    kind : {"gaussian", "super_gaussian", "asymmetric"}
+        ``"gaussian"``: ``f = exp(-x^2)`` (PHYSICS.md section 2). ``"super_gaussian"``:
+        ``f = exp(-|x|^order)``, a flatter top and steeper sides for ``order > 2``.
+        ``"asymmetric"``: ``f = exp(-x^2 / (1 - asymmetry)^2)`` before the centre (``x < 0``) and
+        ``exp(-x^2 / (1 + asymmetry)^2)`` after it: waists ``w (1 - a)`` and ``w (1 + a)``, so
+        ``w`` is their mean and the pulse area is that of the Gaussian of waist ``w``.
+    order : float
+        Order ``p`` of the super-Gaussian, in :data:`SUPER_GAUSSIAN_ORDER_RANGE` (ignored
+        otherwise; 2 is the Gaussian).
+    asymmetry : float
+        ``a`` of the asymmetric profile, in :data:`WAIST_ASYMMETRY_RANGE` (ignored otherwise).
+    """
+
+    kind: ModeProfileKind = "gaussian"
+    order: float = 2.0
+    asymmetry: float = 0.0
+
+    def __post_init__(self) -> None:
+        if self.kind not in MODE_PROFILES:
+            raise ValueError(f"kind: expected one of {list(MODE_PROFILES)}, got {self.kind!r}")
+        low, high = SUPER_GAUSSIAN_ORDER_RANGE
+        if self.kind == "super_gaussian" and not (
+                isinstance(self.order, (int, float)) and low <= self.order <= high):
+            raise ValueError(f"order: expected a number in [{low:g}, {high:g}], got {self.order!r}")
+        low, high = WAIST_ASYMMETRY_RANGE
+        if self.kind == "asymmetric" and not (
+                isinstance(self.asymmetry, (int, float)) and low <= self.asymmetry <= high):
+            raise ValueError(f"asymmetry: expected a number in [{low:g}, {high:g}], "
+                             f"got {self.asymmetry!r}")
+
+    def envelope(self, x):
+        """``f(x)`` at positions ``x`` along the beam in units of the waist (array_like)."""
+        x = np.asarray(x, dtype=float)
+        if self.kind == "gaussian":
+            return np.exp(-(x**2))
+        if self.kind == "super_gaussian":
+            return np.exp(-(np.abs(x) ** self.order))
+        waist = np.where(x < 0.0, 1.0 - self.asymmetry, 1.0 + self.asymmetry)
+        return np.exp(-((x / waist) ** 2))
+
+    @property
+    def area(self) -> float:
+        """``integral of f(x) dx`` over the whole line (the pulse area in units of Omega w / v).
+
+        Gaussian and asymmetric: ``sqrt(pi)``; super-Gaussian: ``2 Gamma(1 + 1/p)``.
+        """
+        if self.kind == "super_gaussian":
+            return 2.0 * math.gamma(1.0 + 1.0 / self.order)
+        return math.sqrt(math.pi)
+
+    def window(self) -> tuple[float, float]:
+        """Extent ``(before, after)`` of the integration window beyond the centre, in waists.
+
+        Each side leaves the same relative pulse area outside as the Gaussian window
+        +-:data:`DEFAULT_HALF_WIDTH` (``erfc(4) = 1.5e-8``): for the super-Gaussian
+        ``X^p = Q^-1(1/p, erfc(4))`` (the inverse regularised upper incomplete gamma function,
+        since the tail of ``exp(-x^p)`` beyond ``X`` is ``Gamma(1/p, X^p) / p``).
+        """
+        if self.kind == "gaussian":
+            return DEFAULT_HALF_WIDTH, DEFAULT_HALF_WIDTH
+        if self.kind == "super_gaussian":
+            edge = float(scipy.special.gammainccinv(1.0 / self.order, _TAIL_FRACTION)) ** (
+                1.0 / self.order)
+            return edge, edge
+        return DEFAULT_HALF_WIDTH * (1.0 - self.asymmetry), DEFAULT_HALF_WIDTH * (1.0 + self.asymmetry)
+
+    def to_dict(self) -> dict[str, float | str]:
+        """The profile's kind and the parameter it uses (JSON-ready)."""
+        if self.kind == "super_gaussian":
+            return {"kind": self.kind, "order": float(self.order)}
+        if self.kind == "asymmetric":
+            return {"kind": self.kind, "asymmetry": float(self.asymmetry)}
+        return {"kind": self.kind}
+
+
+#: The Gaussian mode of PHYSICS.md section 2.
+GAUSSIAN_MODE = ModeProfile()
+
+
+# --------------------------------------------------------------------------------------------
 # The crossing
 # --------------------------------------------------------------------------------------------
 
 
-def pulse_area(velocity, *, coupling_hz, waist_m, photons=1):
-    """Resonant pulse area of one crossing of the Gaussian mode.
+def pulse_area(velocity, *, coupling_hz, waist_m, photons=1, profile=GAUSSIAN_MODE):
+    """Resonant pulse area of one crossing of the mode.
 
     Parameters
     ----------
@@ -94,24 +212,30 @@ def pulse_area(velocity, *, coupling_hz, waist_m, photons=1):
         Mode waist ``w`` (coupling ``exp(-(v t)^2 / w^2)``), m.
     photons : array_like, optional
         Photon number ``n``; the coupling scales as ``sqrt(n)``.
+    profile : ModeProfile, optional
+        Shape of the envelope (default the Gaussian mode).
 
     Returns
     -------
     numpy.ndarray
-        ``A = Omega_0 sqrt(n) sqrt(pi) w / v``, rad.
+        ``A = Omega_0 sqrt(n) S w / v`` with ``S = profile.area`` (``sqrt(pi)`` for the
+        Gaussian), rad.
     """
     velocity = np.asarray(velocity, dtype=float)
     return 2.0 * np.pi * coupling_hz * np.sqrt(np.asarray(photons, dtype=float)) * (
-        math.sqrt(math.pi) * waist_m / velocity
+        profile.area * waist_m / velocity
     )
 
 
-def two_pi_velocity(*, coupling_hz, waist_m):
+def two_pi_velocity(*, coupling_hz, waist_m, profile=GAUSSIAN_MODE):
     """Velocity at which one photon gives a 2 pi vacuum Rabi rotation, m/s.
 
-    Returns ``v_2pi = Omega_0 w / (2 sqrt(pi))`` with ``Omega_0 = 2 pi coupling_hz``.
+    Returns ``v_2pi = Omega_0 w S / (2 pi)`` with ``Omega_0 = 2 pi coupling_hz`` and
+    ``S = profile.area``: ``Omega_0 w / (2 sqrt(pi))`` for the Gaussian.
     """
-    return 2.0 * math.pi * coupling_hz * waist_m / (2.0 * math.sqrt(math.pi))
+    if profile.kind == "gaussian":
+        return 2.0 * math.pi * coupling_hz * waist_m / (2.0 * math.sqrt(math.pi))
+    return coupling_hz * waist_m * profile.area
 
 
 def _su2_product(u1, v1, u2, v2):
@@ -210,13 +334,19 @@ def crossing_amplitudes(
     waist_m,
     steps=DEFAULT_CROSSING_STEPS,
     half_width=DEFAULT_HALF_WIDTH,
+    profile=GAUSSIAN_MODE,
 ):
-    """Amplitudes of one crossing ``|g,n> -> a_g |g,n> + a_e |e,n-1>`` of the Gaussian mode.
+    """Amplitudes of one crossing ``|g,n> -> a_g |g,n> + a_e |e,n-1>`` of the mode.
 
     The Hamiltonian (rotating frame, hbar = 1) is
-    ``H = (delta/2)(|e><e| - |g><g|) + (Omega_0 sqrt(n) exp(-(v t)^2/w^2) / 2) sigma_x``,
-    integrated by :func:`two_level_evolution` over ``t`` in ``[-half_width, +half_width] w / v``.
-    All arguments broadcast against each other.
+    ``H = (delta/2)(|e><e| - |g><g|) + (Omega_0 sqrt(n) f(v t / w) / 2) sigma_x`` with ``f`` the
+    mode profile, integrated by :func:`two_level_evolution`. The Gaussian is integrated over
+    ``t`` in ``[-half_width, +half_width] w / v`` in one pass. Every other profile is integrated
+    in two passes of half the steps each, from the start of its window
+    (:meth:`ModeProfile.window`) to the mode centre and from the centre to the end, so that the
+    only point where ``f`` may not be smooth (``|x|^p`` at ``x = 0``, the change of waist
+    of the asymmetric mode) falls on a step boundary; the two SU(2) evolutions are multiplied.
+    All arguments but ``steps``, ``half_width`` and ``profile`` broadcast against each other.
 
     Parameters
     ----------
@@ -231,15 +361,19 @@ def crossing_amplitudes(
     waist_m : float
         Mode waist, m.
     steps : int, optional
-        Number of integration steps over the window.
+        Number of integration steps over the window (both passes together).
     half_width : float, optional
-        Half-width of the window in units of ``w / v``.
+        Half-width of the Gaussian's window in units of ``w / v`` (other profiles use their
+        own window).
+    profile : ModeProfile, optional
+        Shape of the coupling envelope (default the Gaussian mode).
 
     Returns
     -------
     a_g, a_e : numpy.ndarray of complex
-        Amplitudes in the interaction picture of ``H0 = (delta/2)(|e><e| - |g><g|)``, i.e.
-        ``a_g`` relative to the free evolution of ``|g,n>``; shape of the broadcast inputs.
+        Amplitudes in the interaction picture of ``H0 = (delta/2)(|e><e| - |g><g|)`` taken with
+        its time origin at the mode centre, i.e. ``a_g`` relative to the free evolution of
+        ``|g,n>``; shape of the broadcast inputs.
     """
     velocity, detuning_hz, photons = np.broadcast_arrays(
         np.asarray(velocity, dtype=float),
@@ -250,18 +384,37 @@ def crossing_amplitudes(
         raise ValueError(f"velocity: expected finite values > 0 m/s, got {velocity!r}")
     if np.any(photons < 0):
         raise ValueError(f"photons: expected integers >= 0, got {photons!r}")
-    duration = 2.0 * half_width * waist_m / velocity
+    coupling = coupling_hz * np.sqrt(photons.astype(float))
+    if profile.kind == "gaussian":
+        duration = 2.0 * half_width * waist_m / velocity
 
-    def mode(s):
-        return np.exp(-((half_width * (2.0 * s - 1.0)) ** 2))
+        def mode(s):
+            return np.exp(-((half_width * (2.0 * s - 1.0)) ** 2))
 
-    c_g, c_e = two_level_evolution(
-        detuning_hz, coupling_hz * np.sqrt(photons.astype(float)), duration, profile=mode, steps=steps
-    )
-    # Free evolution of |g> over the window is exp(+i delta T / 2); the window is symmetric,
-    # so |e> needs no correction in the interaction picture.
-    a_g = c_g * np.exp(-1j * np.pi * detuning_hz * duration)
-    return a_g, c_e
+        c_g, c_e = two_level_evolution(detuning_hz, coupling, duration, profile=mode, steps=steps)
+        # Free evolution of |g> over the window is exp(+i delta T / 2); the window is symmetric,
+        # so |e> needs no correction in the interaction picture.
+        a_g = c_g * np.exp(-1j * np.pi * detuning_hz * duration)
+        return a_g, c_e
+    if isinstance(steps, bool) or not isinstance(steps, (int, np.integer)) or steps < 2:
+        raise ValueError(f"steps: expected an integer >= 2, got {steps!r}")
+    before, after = profile.window()
+    # Each side spans the same number of its own waists (the same tail), so equal steps.
+    steps_before = steps // 2
+    duration_before = before * waist_m / velocity
+    duration_after = after * waist_m / velocity
+    u_b, v_b = two_level_evolution(
+        detuning_hz, coupling, duration_before, steps=steps_before,
+        profile=lambda s: profile.envelope(before * (s - 1.0)))
+    u_a, v_a = two_level_evolution(
+        detuning_hz, coupling, duration_after, steps=steps - steps_before,
+        profile=lambda s: profile.envelope(after * s))
+    c_g, c_e = _su2_product(u_a, v_a, u_b, v_b)
+    # Interaction picture with its origin at the centre, window [-T_b, T_a]: |g> picks up
+    # exp(-i delta (T_a + T_b) / 2), |e> exp(+i delta (T_a - T_b) / 2).
+    a_g = c_g * np.exp(-1j * np.pi * detuning_hz * (duration_before + duration_after))
+    a_e = c_e * np.exp(1j * np.pi * detuning_hz * (duration_after - duration_before))
+    return a_g, a_e
 
 
 # --------------------------------------------------------------------------------------------
@@ -506,6 +659,8 @@ class AtomCavityModel:
         Highest photon number modelled.
     crossing_steps : int
         Steps of :func:`crossing_amplitudes`.
+    mode_profile : ModeProfile
+        Shape of the coupling envelope (default the Gaussian mode).
     """
 
     coupling_hz: float
@@ -524,6 +679,7 @@ class AtomCavityModel:
     velocity_nodes: int = 9
     max_photons: int = 4
     crossing_steps: int = DEFAULT_CROSSING_STEPS
+    mode_profile: ModeProfile = GAUSSIAN_MODE
 
     @property
     def thermal_photons(self) -> float:
@@ -603,6 +759,7 @@ def outcome_coefficients(model: AtomCavityModel, set_velocity, true_detuning_hz)
             coupling_hz=model.coupling_hz,
             waist_m=model.waist_m,
             steps=model.crossing_steps,
+            profile=model.mode_profile,
         )
     fock = _fock_coefficients(a_g, a_e, theta[..., None], phase_v[..., None])  # (M,K,N,3,3)
     mean = model.thermal_photons

@@ -10,7 +10,7 @@ Model of the state
   step sizes, then takes ``settle_time_s`` of rig time.
 - A virtual clock in seconds; ``acquire`` takes ``shots / repetition_rate_hz``.
 - The true detuning is the Stark-law detuning of the set-point (with the hidden coefficient
-  error) plus the cavity offset ``initial + ramp * clock + random walk + thermal steps``;
+  error and the hidden error of the electrode field) plus the cavity offset ``initial + ramp * clock + random walk + thermal steps``;
   the random walk advances with the clock (increments ``N(0, sigma^2 dt)``).
 - Counts: per shot a Poisson number of atoms (mean ``atoms_per_sample``), each detected with
   efficiency ``eta`` and assigned to e, g or i through the confusion matrix. By Poisson
@@ -136,6 +136,7 @@ def _model_from_config(config: SimRigConfig) -> physics.AtomCavityModel:
         velocity_nodes=config.model.velocity_nodes,
         max_photons=config.model.max_photons,
         crossing_steps=config.model.crossing_steps,
+        mode_profile=config.cavity.profile,
     )
 
 
@@ -230,7 +231,9 @@ class SimulatedRig:
         )
 
     def _applied_detuning_hz(self, setpoint_hz: float) -> float:
-        """Stark-law detuning that the set-point really produces (hidden coefficient error)."""
+        """Stark-law detuning that the set-point really produces (hidden coefficient error and
+        hidden field error: ``k_true ((E + error)^2 - E_bias^2)`` with ``E`` the field the
+        nominal law commands)."""
         stark = self._config.stark
         field = physics.stark_field_for_detuning(
             setpoint_hz,
@@ -239,15 +242,30 @@ class SimulatedRig:
         )
         return float(
             physics.stark_detuning(
-                field,
+                field + stark.bias_field_error_v_per_m,
                 coefficient_hz_m2_per_v2=stark.coefficient_hz_m2_per_v2 * (1.0 + stark.coefficient_error),
                 bias_field_v_per_m=stark.bias_field_v_per_m,
             )
         )
 
     def _setpoint_for_applied(self, applied_hz: float) -> float:
-        """Inverse of :meth:`_applied_detuning_hz` (both are linear in the set-point)."""
-        return applied_hz / (1.0 + self._config.stark.coefficient_error)
+        """Inverse of :meth:`_applied_detuning_hz` (on the branch ``E + error >= 0``)."""
+        stark = self._config.stark
+        if stark.bias_field_error_v_per_m == 0.0:
+            # Linear in the set-point then; this keeps the error-free numbers bit for bit.
+            return applied_hz / (1.0 + stark.coefficient_error)
+        seen = physics.stark_field_for_detuning(
+            applied_hz,
+            coefficient_hz_m2_per_v2=stark.coefficient_hz_m2_per_v2 * (1.0 + stark.coefficient_error),
+            bias_field_v_per_m=stark.bias_field_v_per_m,
+        )
+        return float(
+            physics.stark_detuning(
+                seen - stark.bias_field_error_v_per_m,
+                coefficient_hz_m2_per_v2=stark.coefficient_hz_m2_per_v2,
+                bias_field_v_per_m=stark.bias_field_v_per_m,
+            )
+        )
 
     def _true_detuning_hz(self, setpoint_hz: float) -> float:
         return self._applied_detuning_hz(setpoint_hz) + self._cavity_offset_hz()
@@ -577,6 +595,8 @@ class SimulatedRig:
                 "waist_m": self._model.waist_m,
                 "cavity_offset_hz": self._cavity_offset_hz(),
                 "stark_coefficient_error": stark.coefficient_error,
+                "stark_bias_field_error_v_per_m": stark.bias_field_error_v_per_m,
+                "mode_profile": self._model.mode_profile.to_dict(),
                 "true_detuning_hz": true_detuning,
                 "true_velocity_m_per_s": chosen["velocity"] + self._model.velocity_bias_m_per_s,
                 "electrode_voltage_v": field * stark.electrode_gap_m,

@@ -40,7 +40,8 @@ def test_every_key_of_shipped_file_has_unit_and_comment():
     dimensionless = {"name", "default_seed", "atoms_per_sample", "max_shots_per_acquisition",
                      "one_photon_probability", "coefficient_error", "efficiency", "e_read_as_g",
                      "g_read_as_e", "g_read_as_i", "i_read_as_g", "velocity_nodes", "max_photons",
-                     "crossing_steps", "stencil_points"}
+                     "crossing_steps", "stencil_points", "mode_profile", "super_gaussian_order",
+                     "waist_asymmetry"}
     for line in DEMO_CONFIG.read_text(encoding="utf-8").splitlines():
         if "=" not in line or line.lstrip().startswith(("#", "[")):
             continue
@@ -88,6 +89,14 @@ BAD_VALUES = [
     ("stark.bias_field_v_per_m", 0.0),
     ("stark.bias_field_v_per_m", 10.0),
     ("stark.electrode_gap_m", 0.0),
+    ("stark.bias_field_error_v_per_m", math.inf),
+    ("stark.bias_field_error_v_per_m", "1 V/m"),
+    ("stark.bias_field_error_v_per_m", 130.0),
+    ("stark.bias_field_error_v_per_m", -130.0),
+    ("cavity.mode_profile", "top_hat"),
+    ("cavity.mode_profile", 2),
+    ("cavity.super_gaussian_order", 4.0),
+    ("cavity.waist_asymmetry", 0.2),
     ("detection.efficiency", 0.0),
     ("detection.g_read_as_i", 1.5),
     ("detection.i_read_as_g", -0.01),
@@ -187,3 +196,56 @@ def test_file_errors_name_the_file(tmp_path):
     path.write_text(text, encoding="utf-8")
     with pytest.raises(SimConfigError, match=r"sim\.toml: cavity\.waist_m: expected a finite number > 0"):
         load_sim_config(path)
+
+
+@pytest.mark.parametrize("profile, key, value", [
+    ("super_gaussian", "super_gaussian_order", 1.5),
+    ("super_gaussian", "super_gaussian_order", 12.0),
+    ("super_gaussian", "super_gaussian_order", math.nan),
+    ("super_gaussian", "super_gaussian_order", "4"),
+    ("asymmetric", "waist_asymmetry", 0.6),
+    ("asymmetric", "waist_asymmetry", -0.7),
+    ("asymmetric", "waist_asymmetry", None),
+])
+def test_bad_profile_parameter_is_refused(demo_config, profile, key, value):
+    """A profile's parameter outside its checked range, or missing, names the key, expected, got."""
+    # Source: STYLE.md habit 5 (check input once; name key, expected, got); the ranges are those
+    # over which tests/sim/test_sim_physics.py checks the crossing against qutip.
+    data = _data(demo_config)
+    data["cavity"]["mode_profile"] = profile
+    if value is not None:
+        data["cavity"][key] = value
+    with pytest.raises(SimConfigError) as caught:
+        sim_config_from_dict(data, source="bench.toml")
+    message = str(caught.value)
+    assert message.startswith(f"bench.toml: cavity.{key}: expected ")
+    assert (repr(value) if value is not None else "'nothing'") in message
+
+
+@pytest.mark.parametrize("cavity", [
+    {"mode_profile": "super_gaussian", "super_gaussian_order": 4.0},
+    {"mode_profile": "asymmetric", "waist_asymmetry": -0.25},
+    {"mode_profile": "gaussian"},
+])
+def test_profiles_round_trip_through_dict(demo_config, cavity):
+    """Every mode profile with its parameter survives to_dict and back, and the file's keys only."""
+    # Source: drivers_sim.config documentation (round trip for perturbation studies).
+    data = _data(demo_config)
+    data["cavity"].update(cavity)
+    data["stark"]["bias_field_error_v_per_m"] = 0.8
+    config = sim_config_from_dict(data)
+    again = sim_config_from_dict(config.to_dict())
+    assert again == config
+    assert set(config.to_dict()["cavity"]) == set(demo_config.to_dict()["cavity"]) | set(cavity)
+
+
+def test_defaults_of_the_new_keys_keep_the_demo(demo_config):
+    """Without mode_profile and bias_field_error_v_per_m the rig is the Gaussian, error-free one."""
+    # Source: PHYSICS.md section 2 (the Gaussian mode is the demo's) and section 6.
+    data = _data(demo_config)
+    del data["cavity"]["mode_profile"]
+    del data["stark"]["bias_field_error_v_per_m"]
+    config = sim_config_from_dict(data)
+    assert config.cavity.mode_profile == "gaussian" and config.cavity.profile.kind == "gaussian"
+    assert config.stark.bias_field_error_v_per_m == 0.0
+    assert dataclasses.replace(config, source=demo_config.source) == demo_config

@@ -233,6 +233,68 @@ def test_stark_error_makes_applied_detuning_differ(demo_config):
     assert hidden["electrode_voltage_v"] == pytest.approx(math.sqrt(150.0**2 - 1600.0) * 0.02, rel=1e-12)
 
 
+def _stark_closed_form(setpoint_hz, *, error, field_error_v_per_m, k=-25.0, bias=150.0):
+    """delta = k_true (E_seen^2 - E_bias^2), E_seen = E + field error, E from the nominal law."""
+    # Source: quadratic Stark law of PHYSICS.md section 4, delta/2pi = k (E^2 - E_bias^2),
+    # written out by hand: the nominal law commands E = sqrt(E_bias^2 + set-point / k).
+    field = math.sqrt(bias**2 + setpoint_hz / k)
+    return k * (1.0 + error) * ((field + field_error_v_per_m) ** 2 - bias**2)
+
+
+@pytest.mark.parametrize("error, field_error", [(-0.15, 0.0), (0.15, 0.0), (0.15, 1.5),
+                                                (-0.12, -2.0)])
+def test_large_hidden_stark_errors_hold_across_the_detuning_limits(demo_config, error, field_error):
+    """With a 15 % coefficient error and a stray field the rig follows the closed-form Stark law
+    from limit to limit, and its best set-point maps back to its best true detuning."""
+    # Source: quadratic Stark law of PHYSICS.md section 4 (closed form written out above).
+    config = perturbed(demo_config, stark={"coefficient_error": error,
+                                           "bias_field_error_v_per_m": field_error},
+                       drift={"ramp_hz_per_s": 0.0, "random_walk_hz_per_sqrt_s": 0.0})
+    rig = SimulatedRig(config, SEED)
+    offset = config.cavity.initial_offset_hz
+    limit = config.limits["detuning"]
+    for setpoint in (limit.min, -60e3, 0.0, 25e3, limit.max):
+        _walk(rig, {"detuning": setpoint})
+        counts = rig.acquire("one_photon", 0.0, 1000)["counts"]
+        assert sum(counts.values()) > 0
+        hidden = rig.truth()["hidden"]
+        expected = _stark_closed_form(setpoint, error=error, field_error_v_per_m=field_error)
+        assert hidden["true_detuning_hz"] == pytest.approx(expected + offset, rel=1e-12, abs=1e-6)
+        assert hidden["stark_bias_field_error_v_per_m"] == field_error
+    truth = rig.truth()
+    best = truth["best"]["setpoints"]
+    assert limit.min <= best["detuning"] <= limit.max
+    at_best = rig.truth(best)["hidden"]["true_detuning_hz"]
+    assert at_best == pytest.approx(truth["hidden"]["best_true_detuning_hz"], abs=1e-6)
+
+
+def test_stray_field_alone_shifts_the_zero_set_point(demo_config):
+    """A stray field e moves set-point 0 to the true detuning k (1 + err)((E_b + e)^2 - E_b^2)."""
+    # Source: quadratic Stark law of PHYSICS.md section 4; arithmetic by hand for e = 1 V/m:
+    # -25 * 1.015 * (151^2 - 150^2) = -25 * 1.015 * 301 = -7637.875 Hz.
+    config = perturbed(demo_config, stark={"bias_field_error_v_per_m": 1.0})
+    rig = SimulatedRig(config, SEED)
+    hidden = rig.truth({"detuning": 0.0})["hidden"]
+    assert hidden["true_detuning_hz"] - hidden["cavity_offset_hz"] == pytest.approx(-7637.875,
+                                                                                   rel=1e-12)
+
+
+@pytest.mark.parametrize("cavity, area", [
+    ({"mode_profile": "super_gaussian", "super_gaussian_order": 4.0}, 2 * math.gamma(1.25)),
+    ({"mode_profile": "asymmetric", "waist_asymmetry": 0.3}, math.sqrt(math.pi)),
+])
+def test_rig_with_another_mode_profile_peaks_at_its_own_two_pi_velocity(demo_config, cavity, area):
+    """The truth's best velocity follows the profile's own 2 pi velocity, Omega_0 w S / (2 pi) - bias."""
+    # Source: pulse-area result (Allen & Eberly 1975): area 2 pi at v = coupling_hz * w * S with
+    # S = integral of f (2 Gamma(1 + 1/p) for exp(-|x|^p), sqrt(pi) for two half-Gaussians of
+    # mean waist w; from memory). The 2 % margin above it is that of the demo test above.
+    config = perturbed(demo_config, cavity=cavity)
+    truth = SimulatedRig(config, SEED).truth()
+    v_2pi = COUPLING_HZ * WAIST_M * area - config.beam.velocity_bias_m_per_s
+    assert v_2pi <= truth["best"]["setpoints"]["velocity"] <= v_2pi * 1.02
+    assert truth["hidden"]["mode_profile"]["kind"] == cavity["mode_profile"]
+
+
 # ---------------------------------------------------------------------------------- limits
 
 
