@@ -1370,10 +1370,15 @@ class PhaseLockSearch:
         out = []
         delta = self._lock_target(velocity, clock)[0]
         out.append(("lock", velocity, self._limit_step(delta, velocity), s.lock_shots_per_phase))
-        for factor in (1.0 - s.velocity_step_fraction, 1.0 + s.velocity_step_fraction):
+        # One and two steps either side: the curvature and the vertex of the absorption are
+        # learned fastest from its wings (the excess grows as the square of the step).
+        f = s.velocity_step_fraction
+        seen: list[float] = []
+        for factor in (1.0 - f, 1.0 + f, 1.0 - 2.0 * f, 1.0 + 2.0 * f):
             v = float(np.clip(velocity * factor, low, high))
-            if abs(v / velocity - 1.0) <= _SAME_VELOCITY:
+            if abs(v / velocity - 1.0) <= _SAME_VELOCITY or any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in seen):
                 continue
+            seen.append(v)
             out.append(("velocity", v, self._limit_step(delta, v), s.velocity_shots_per_phase))
         return out
 
