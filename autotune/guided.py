@@ -66,9 +66,13 @@ Retune::
     r = measure(p.point, check precision); lock.observe(p.point, r, purpose="check")
     v = lock.verdict(clock_s=now)        # still_good, reason, numbers
     if v.still_good: done
-    p = lock.propose()                   # purpose "correct" when the check was in range,
-                                         # else a search point: go on as in a calibration
-    (a "correct" proposal is measured at verification precision and is the verification)
+    then the calibration's loop from its first line: propose() gives
+      - "correct" at the corrected set-points when the check was in range and the stored slope
+        predicts them within the target: measured at verification precision, it IS the
+        verification (observe it as "correct", then the correction() cycle);
+      - "lock" at the corrected set-points when the prediction is not good enough: a cheap
+        step first, then the loop goes on until converged() and verifies recommend();
+      - "search" (the Gaussian process) when the check was out of the capture range.
 
 Shots: ``shots_per_phase=None`` means the loop's configured default for the purpose (search
 points: ``measurement.shots_per_phase``; ``"check"``: the check's precision; ``"correct"``:
@@ -112,6 +116,8 @@ _SAME_VELOCITY = 0.005
 _AT_VELOCITY = 0.02
 # Newton steps when the lock's cubic curve is solved for the phase at the peak.
 _NEWTON_STEPS = 8
+# The drift prior may widen by this factor when the data's marginal likelihood prefers it.
+_DRIFT_WIDENING = 4.0
 # Grid points of the posterior over the phase at the peak.
 _PHASE_GRID = 241
 # Smallest inversion scale used as the denominator of the velocity term.
@@ -301,7 +307,7 @@ _PRIOR_KEYS: dict[str, str] = {
     "inversion": "the inversion at the lock, in (0, 1]",
 }
 _PRIOR_OPTIONAL: dict[str, str] = {
-    "drift_hz_per_s": "the cavity drift rate seen during the calibration (Hz/s)",
+    "peak_drift_hz_per_s": "the rate of the peak's detuning set-point during the calibration (Hz/s)",
 }
 
 
@@ -327,8 +333,9 @@ class LockPrior:
         ``k`` of ``P_e = P_min + k (v*/v - 1)^2`` and its standard error.
     inversion : float
         The inversion scale at the lock.
-    drift_hz_per_s : float
-        Cavity drift rate seen during the calibration (Hz/s; information only).
+    peak_drift_hz_per_s : float
+        Rate of change of the peak's detuning set-point seen during the calibration (Hz/s;
+        a cavity drifting up in frequency moves it down; information only).
     """
 
     velocity_m_per_s: float
@@ -345,7 +352,7 @@ class LockPrior:
     absorption_curvature: float
     absorption_curvature_stderr: float
     inversion: float
-    drift_hz_per_s: float = 0.0
+    peak_drift_hz_per_s: float = 0.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -596,12 +603,6 @@ class _AbsorptionFit:
             return None
         return float(-self.coef[1] / (2.0 * self.coef[2]))
 
-    def bracketed(self) -> bool:
-        vertex = self.vertex()
-        if vertex is None or len(self.x_groups) < 3:
-            return self.from_prior and vertex is not None
-        return min(self.x_groups) < vertex < max(self.x_groups)
-
 
 def _solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
                     prior_mean: np.ndarray, prior_precision: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -612,6 +613,15 @@ def _solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarra
     cov = np.linalg.inv(precision)
     cov = 0.5 * (cov + cov.T)
     return cov @ rhs, cov
+
+
+def _log_evidence(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
+                  prior_mean: np.ndarray, prior_sd: np.ndarray) -> float:
+    """Log marginal likelihood of a linear-Gaussian model, ``N(y | X m, X S X^T + D)`` (no constant)."""
+    covariance = np.diag(variances) + (design * prior_sd**2) @ design.T
+    residual = values - design @ prior_mean
+    _, logdet = np.linalg.slogdet(covariance)
+    return float(-0.5 * residual @ np.linalg.solve(covariance, residual) - 0.5 * logdet)
 
 
 def _cholesky(cov: np.ndarray) -> np.ndarray:
@@ -861,19 +871,24 @@ class PhaseLockSearch:
         cubic_sd = s_set.phase_cubic_prior_fraction * slope_scale * h
         if self.prior is not None:
             cubic_sd = math.hypot(cubic_sd, self.prior.cubic_stderr_rad_per_hz3 * h**3)
-        drift_sd = slope_scale * s_set.drift_prior_hz_per_s if drift else 0.0
+        # The drift prior's width: the configured one, or four times it when the data's marginal
+        # likelihood prefers that (a cavity drifting faster than assumed would otherwise be
+        # explained away by a wrong slope).
+        widths = (s_set.drift_prior_hz_per_s, _DRIFT_WIDENING * s_set.drift_prior_hz_per_s) if drift else (0.0,)
         fit = None
         for _ in range(3):
             d = detunings - centre
             design = np.stack([np.ones(len(points)), d, (d / h) ** 3, taus], axis=1)
             mean = np.array([phase_star, slope_prior[0] if slope_prior else 0.0, cubic_prior_mean, 0.0])
-            precision = np.diag([
-                1.0 / (_TWO_PI**2),
-                1.0 / (slope_prior[1] if slope_prior else wide_slope) ** 2,
-                1.0 / max(cubic_sd, 1e-12) ** 2,
-                1.0 / max(drift_sd, 1e-15) ** 2,
-            ])
-            theta, cov = _solve_gaussian(design, phases, variances, mean, precision)
+            best = None
+            for width in widths:
+                drift_sd = slope_scale * width
+                prior_sd = np.array([_TWO_PI, slope_prior[1] if slope_prior else wide_slope,
+                                     max(cubic_sd, 1e-12), max(drift_sd, 1e-15)])
+                evidence = _log_evidence(design, phases, variances, mean, prior_sd)
+                if best is None or evidence > best[0] + 1e-9:
+                    best = (evidence, prior_sd)
+            theta, cov = _solve_gaussian(design, phases, variances, mean, np.diag(1.0 / best[1] ** 2))
             fit = _LockFit(velocity, centre, h, t_ref, theta, cov, len(points))
             if not fit.slope_known():
                 break
@@ -1105,6 +1120,9 @@ class PhaseLockSearch:
 
     def recommend(self, *, clock_s: float | None = None) -> Recommendation:
         """The set-points to choose at rig clock ``clock_s`` and the predicted inversion.
+
+        ``clock_s`` is when the set-points will be used: pass the middle of the verification
+        (now plus half its duration) so that the lock's drift term leads a drifting cavity.
 
         With a lock: the velocity of least absorption (or the lock's velocity until it is
         known) and the locked detuning there at ``clock_s``; the value is the inversion scale
@@ -1440,11 +1458,21 @@ class PhaseLockSearch:
 
     # -- after the verification -------------------------------------------------------------
 
-    def _phase_error_test(self, obs: _Obs) -> tuple[float, float, float]:
-        """(phase error mean, sd, probability that the detuning shortfall is below the target)."""
+    def _phase_error_test(self, obs: _Obs, clock: float | None) -> tuple[float, float, float]:
+        """(phase error mean, sd, probability that the detuning shortfall is within the target).
+
+        The phase error at the verified set-points at ``clock``: the lock's prediction there,
+        which the verification's own precise phase dominates, carried to ``clock`` by the drift
+        term (the verification's phase alone dates from its middle).
+        """
         star, star_sd = self._phase_star()
-        error = self._unwrapped(obs) - star
-        sd = math.hypot(obs.result.phase_shift_stderr, star_sd)
+        fit = self._lock_fit(obs.velocity)
+        if fit is not None and fit.slope_known():
+            mean, var = fit.phase(obs.detuning, clock)
+            error, sd = mean - star, math.sqrt(var + star_sd**2)
+        else:
+            error = self._unwrapped(obs) - star
+            sd = math.hypot(obs.result.phase_shift_stderr, star_sd)
         limit = 2.0 * math.acos(1.0 - self.settings.target_shortfall)
         probability = float(special.ndtr((limit - error) / sd) - special.ndtr((-limit - error) / sd))
         return error, sd, probability
@@ -1452,10 +1480,12 @@ class PhaseLockSearch:
     def correction(self, *, clock_s: float | None = None) -> Proposal | None:
         """A corrected point when the last verification's own phase shows too large a shortfall.
 
-        Looks at the last observation if its purpose is ``"verify"`` or ``"correct"``. When its
-        phase error (with the uncertainty of the phase at the peak) gives a probability below
-        ``1 - confidence`` that the detuning shortfall ``1 - cos(eps / 2)`` is within
-        ``target_shortfall``, returns the lock's detuning at ``clock_s`` (the verification
+        Looks at the last observation if its purpose is ``"verify"`` or ``"correct"``. Its phase
+        error at ``clock_s`` (the lock's prediction at the verified set-points, dominated by the
+        verification's own phase and carried to ``clock_s`` by the drift term; with the
+        uncertainty of the phase at the peak) gives the probability that the detuning shortfall
+        ``1 - cos(eps / 2)`` is within ``target_shortfall``; when it is below
+        ``1 - confidence``, returns the lock's detuning at ``clock_s`` (the verification
         included) at the verified velocity, purpose ``"correct"``, shots None (verification
         precision). Otherwise, or when the verification is out of the capture range (its phase
         says nothing then), None.
@@ -1466,7 +1496,7 @@ class PhaseLockSearch:
         last = self._obs[-1]
         if self._range_note(last.result) is not None:
             return None
-        error, sd, probability = self._phase_error_test(last)
+        error, sd, probability = self._phase_error_test(last, clock)
         if probability >= 1.0 - self.settings.confidence:
             return None
         target = self._lock_target(last.velocity, clock)
@@ -1607,7 +1637,7 @@ class PhaseLockSearch:
             phase_at_peak_rad=star, phase_at_peak_stderr_rad=star_sd,
             absorption_min=float(np.clip(minimum, 0.0, 1.0)), absorption_min_stderr=minimum_sd,
             absorption_curvature=curvature, absorption_curvature_stderr=curvature_sd,
-            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), drift_hz_per_s=drift)
+            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift)
 
     def state(self, *, clock_s: float | None = None) -> dict[str, Any]:
         """JSON-ready summary of what was learned, for the journal and the next retune.
@@ -1618,7 +1648,8 @@ class PhaseLockSearch:
         ``velocity_least_absorption_m_per_s``, ``velocity_least_absorption_stderr_m_per_s``,
         ``velocity_note``, ``absorption_fit`` (``velocity_ref_m_per_s``, ``coefficients`` of
         ``P_e = a0 + a1 x + a2 x^2`` with ``x = v_ref / v - 1``, ``covariance``),
-        ``phase_drift_rad_per_s``, ``drift_hz_per_s``, ``shortfall`` and ``prior`` (a
+        ``phase_drift_rad_per_s``, ``peak_drift_hz_per_s`` (the rate of the peak's detuning
+        set-point, ``-phase drift / slope``), ``shortfall`` and ``prior`` (a
         :class:`LockPrior` dict, or None). Unknown numbers are None.
         """
         clock = self._now(clock_s)
@@ -1629,7 +1660,7 @@ class PhaseLockSearch:
         out.update(phase_at_peak_rad=star, phase_at_peak_stderr_rad=star_sd)
         keys = ("slope_rad_per_hz", "slope_stderr_rad_per_hz", "detuning_at_peak_hz", "detuning_at_peak_stderr_hz",
                 "velocity_least_absorption_m_per_s", "velocity_least_absorption_stderr_m_per_s",
-                "phase_drift_rad_per_s", "drift_hz_per_s")
+                "phase_drift_rad_per_s", "peak_drift_hz_per_s")
         out.update({key: None for key in keys})
         out.update(absorption_fit=None, velocity_note=plan["note"], prior=None)
         if anchor is None:
@@ -1647,7 +1678,7 @@ class PhaseLockSearch:
             if lock.t_ref is not None:
                 out["phase_drift_rad_per_s"] = float(lock.theta[3])
                 if lock.slope != 0.0:
-                    out["drift_hz_per_s"] = -float(lock.theta[3]) / lock.slope
+                    out["peak_drift_hz_per_s"] = -float(lock.theta[3]) / lock.slope
         target = self._lock_target(velocity, clock)
         if target is not None:
             out["detuning_at_peak_hz"], out["detuning_at_peak_stderr_hz"] = target
