@@ -1471,37 +1471,40 @@ class PhaseLockSearch:
 
     # -- after the verification -------------------------------------------------------------
 
-    def _phase_error_test(self, obs: _Obs, clock: float | None) -> tuple[float, float, float]:
-        """(phase error mean, sd, probability that the detuning shortfall is within the target).
+    def _phase_error_test(self, obs: _Obs, clock: float | None) -> tuple[float, float, float, float]:
+        """(phase error, its sd, probability that the shortfall is within the target, local slope).
 
-        The phase error at the verified set-points at ``clock``: the lock's prediction there,
-        which the verification's own precise phase dominates, carried to ``clock`` by the drift
-        term (the verification's phase alone dates from its middle).
+        The verification's own phase error, carried from the middle of the verification to
+        ``clock`` by the lock's drift term (with that term's uncertainty), and with the
+        uncertainty of the phase at the peak.
         """
         star, star_sd = self._phase_star()
+        error = self._unwrapped(obs) - star
+        variance = obs.result.phase_shift_stderr**2 + star_sd**2
+        slope = math.nan
         fit = self._lock_fit(obs.velocity)
         if fit is not None and fit.slope_known():
-            mean, var = fit.phase(obs.detuning, clock)
-            error, sd = mean - star, math.sqrt(var + star_sd**2)
-        else:
-            error = self._unwrapped(obs) - star
-            sd = math.hypot(obs.result.phase_shift_stderr, star_sd)
+            slope = fit.slope
+            if fit.t_ref is not None and clock is not None and obs.result.clock_s is not None:
+                elapsed = clock - obs.result.clock_s
+                error += float(fit.theta[3]) * elapsed
+                variance += float(fit.cov[3, 3]) * elapsed**2
+        sd = math.sqrt(variance)
         limit = 2.0 * math.acos(1.0 - self.settings.target_shortfall)
         probability = float(special.ndtr((limit - error) / sd) - special.ndtr((-limit - error) / sd))
-        return error, sd, probability
+        return error, sd, probability, slope
 
     def correction(self, *, clock_s: float | None = None) -> Proposal | None:
         """A corrected point when the last verification's own phase shows too large a shortfall.
 
-        Looks at the last observation if its purpose is ``"verify"`` or ``"correct"``. Its phase
-        error at ``clock_s`` (the lock's prediction at the verified set-points, dominated by the
-        verification's own phase and carried to ``clock_s`` by the drift term; with the
-        uncertainty of the phase at the peak) gives the probability that the detuning shortfall
-        ``1 - cos(eps / 2)`` is within ``target_shortfall``; when it is below
-        ``1 - confidence``, returns the lock's detuning at ``clock_s`` (the verification
-        included) at the verified velocity, purpose ``"correct"``, shots None (verification
-        precision). Otherwise, or when the verification is out of the capture range (its phase
-        says nothing then), None.
+        Looks at the last observation if its purpose is ``"verify"`` or ``"correct"``. Its own
+        phase error, carried to ``clock_s`` by the lock's drift term (with the uncertainties of
+        that term and of the phase at the peak), gives the probability that the detuning
+        shortfall ``1 - cos(eps / 2)`` is within ``target_shortfall``; when it is below
+        ``1 - confidence``, returns the verified set-points with the detuning moved by
+        ``-eps / slope`` (the lock's slope there; at most ``max_lock_step_hz``), purpose
+        ``"correct"``, shots None (verification precision). Otherwise, or when the verification
+        is out of the capture range (its phase says nothing then) or no slope is known, None.
         """
         clock = self._now(clock_s)
         if not self._obs or self._obs[-1].purpose not in ("verify", "correct"):
@@ -1509,14 +1512,12 @@ class PhaseLockSearch:
         last = self._obs[-1]
         if self._range_note(last.result) is not None:
             return None
-        error, sd, probability = self._phase_error_test(last, clock)
-        if probability >= 1.0 - self.settings.confidence:
+        error, sd, probability, slope = self._phase_error_test(last, clock)
+        if probability >= 1.0 - self.settings.confidence or not math.isfinite(slope):
             return None
-        target = self._lock_target(last.velocity, clock)
-        if target is None:
-            return None
-        detuning = self._clip_detuning(float(np.clip(target[0], last.detuning - self.max_lock_step_hz,
-                                                     last.detuning + self.max_lock_step_hz)))
+        # The verification's own phase is the most precise word on where the peak is now.
+        move = float(np.clip(-error / slope, -self.max_lock_step_hz, self.max_lock_step_hz))
+        detuning = self._clip_detuning(last.detuning + move)
         return Proposal({"velocity": last.velocity, "detuning": detuning}, "correct", None,
                         f"verification's phase error {error / math.pi:+.3f} +- {sd / math.pi:.3f} pi: "
                         f"probability {probability:.1%} that its detuning shortfall is within "
