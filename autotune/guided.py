@@ -86,11 +86,12 @@ points: ``measurement.shots_per_phase``; ``"check"``: the check's precision; ``"
 the verification's). Lock and velocity steps carry ``LockSettings.lock_shots_per_phase`` and
 ``velocity_shots_per_phase``. Their default, 500 each, comes from a comparison on 20 scenarios
 of the simulated rig drawn over the benchmark's ranges (one draw, used for this choice only;
-6 Ramsey phases, a 72,000-shot verification), median search shots and the worst final true
-ratio: 300/300: 28,800, 0.9945; 400/400: 38,400, 0.9908; 500/500: 36,000, 0.9956;
-750/750: 54,000, 0.9912; 1000/1000: 60,000, 0.9930; 1500/1500: 108,000, 0.9950; 500/750 and
-400/800: ~50,000. Below 500 the points multiply (8 instead of 6) for little gain, and a rig
-with fewer atoms per shot would leave too few for a fringe.
+6 Ramsey phases, a 72,000-shot verification): median search shots, worst final true ratio,
+scenarios at >= 0.98: 300/300: 32,400, 0.979, 19; 400/400: 43,200, 0.991, 20; 500/500:
+45,000, 0.991, 20; 750/750: 63,000, 0.990, 20; 1000/1000: 78,000, 0.993, 20; 1500/1500:
+108,000, 0.997, 20; 500 lock / 1000 velocity: 60,000, 0.993, 20. Below 500 the points
+multiply (9 instead of 7.5) for little saving and the worst case slips; a rig with fewer
+atoms per shot would also leave too few for a fringe.
 
 Resuming without saved state
 ----------------------------
