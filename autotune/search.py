@@ -9,6 +9,12 @@ interface, :class:`Strategy`: ``ask()`` proposes a point, ``tell(point, value, s
 records a measurement, ``recommend()`` gives the point to choose now, ``exhausted()`` says a
 finite design is finished and ``converged()`` is the strategy's own stopping test.
 
+A strategy that learns from more than the inversion speaks through ``propose()`` (a
+:class:`Proposal`: the point, its purpose, its shots and the reason) and ``observe(point,
+result, purpose=...)`` (a :class:`PointResult`: everything the fringe pair measured). Every
+strategy has both: the ones here wrap ``ask``/``tell``; :class:`autotune.guided.PhaseLockSearch`
+(``"phase_lock"``) is built on them.
+
 Resuming without saved state
 ----------------------------
 Strategies keep no state that is not a function of their constructor arguments and of the
@@ -47,6 +53,10 @@ __all__ = [
     "SearchSpace",
     "Observation",
     "Recommendation",
+    "Purpose",
+    "PURPOSES",
+    "PointResult",
+    "Proposal",
     "Strategy",
     "Convergence",
     "BayesianSearch",
@@ -57,7 +67,21 @@ __all__ = [
     "make_strategy",
 ]
 
-StrategyKind = Literal["bayesian", "grid", "coordinate", "random"]
+StrategyKind = Literal["bayesian", "grid", "coordinate", "random", "phase_lock"]
+
+Purpose = Literal["search", "lock", "velocity", "relock", "check", "correct", "verify"]
+"""Why a point is measured (journaled with it).
+
+``"search"``: a point of a search plan (every strategy; the phase lock's Gaussian-process
+fallback); ``"lock"``: a detuning step of the phase lock; ``"velocity"``: a velocity step of
+the phase lock; ``"relock"``: the lock's detuning re-centred at the chosen velocity with fresh
+data; ``"check"``: a retune's measurement at the last good set-points; ``"correct"``: a
+corrected set-point that the loop measures at verification precision (it is a verification);
+``"verify"``: the loop's verification at the recommendation (only ever observed, never
+proposed).
+"""
+
+PURPOSES: tuple[str, ...] = ("search", "lock", "velocity", "relock", "check", "correct", "verify")
 
 # Results after which the surrogate's hyperparameter fit starts from the previous fit.
 _WARM_HYPERPARAMETERS_AFTER = 40
@@ -217,6 +241,198 @@ class Recommendation:
     stderr: float
 
 
+def _is_number(value: Any) -> bool:
+    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer))
+
+
+def _check_purpose(purpose: Any) -> str:
+    if purpose not in PURPOSES:
+        raise ValueError(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
+    return str(purpose)
+
+
+@dataclass(frozen=True)
+class PointResult:
+    """Everything one measured point (a fringe pair) says, as plain floats in SI units.
+
+    Build it from a fringe estimate with :meth:`from_estimate`. Every field is checked on
+    construction: numbers finite, standard errors >= 0, ``phase_shift`` in [0, 2 pi),
+    ``absorption`` in [0, 1], ``shots`` an integer >= 0.
+
+    Attributes
+    ----------
+    inversion, inversion_stderr : float
+        Fringe inversion (PHYSICS.md section 5) and its standard error.
+    phase_shift, phase_shift_stderr : float
+        Photon phase shift, the angle between the one-photon and the empty fringe (rad, in
+        [0, 2 pi)), and its standard error (rad).
+    absorption, absorption_stderr : float
+        P_e(one photon) and its standard error.
+    contrast_empty, contrast_empty_stderr : float
+        Peak-to-peak contrast of the empty field's fringe and its standard error.
+    contrast_one_photon, contrast_one_photon_stderr : float
+        The same for the one-photon field.
+    identified : bool
+        False when a fringe was not determined (too few phases with atoms): the phase shift
+        and contrasts then carry no information.
+    clock_s : float or None
+        Rig clock at the middle of the measurement (s), if known.
+    shots : int
+        Shots of the whole point (both fields, every Ramsey phase).
+    """
+
+    inversion: float
+    inversion_stderr: float
+    phase_shift: float
+    phase_shift_stderr: float
+    absorption: float
+    absorption_stderr: float
+    contrast_empty: float
+    contrast_empty_stderr: float
+    contrast_one_photon: float
+    contrast_one_photon_stderr: float
+    identified: bool
+    clock_s: float | None
+    shots: int
+
+    def __post_init__(self) -> None:
+        for name in ("inversion", "inversion_stderr", "phase_shift", "phase_shift_stderr",
+                     "absorption", "absorption_stderr", "contrast_empty", "contrast_empty_stderr",
+                     "contrast_one_photon", "contrast_one_photon_stderr"):
+            value = getattr(self, name)
+            if not _is_number(value) or not math.isfinite(float(value)):
+                raise ValueError(f"PointResult.{name}: expected a finite number, got {value!r}")
+            object.__setattr__(self, name, float(value))
+            if name.endswith("_stderr") and float(value) < 0.0:
+                raise ValueError(f"PointResult.{name}: expected a number >= 0, got {value!r}")
+        if not 0.0 <= self.phase_shift < 2.0 * math.pi:
+            raise ValueError(f"PointResult.phase_shift: expected rad in [0, 2 pi), got {self.phase_shift!r}")
+        if not 0.0 <= self.absorption <= 1.0:
+            raise ValueError(f"PointResult.absorption: expected a probability in [0, 1], got {self.absorption!r}")
+        if not isinstance(self.identified, (bool, np.bool_)):
+            raise ValueError(f"PointResult.identified: expected a bool, got {self.identified!r}")
+        object.__setattr__(self, "identified", bool(self.identified))
+        if self.clock_s is not None:
+            if not _is_number(self.clock_s) or not math.isfinite(float(self.clock_s)):
+                raise ValueError(f"PointResult.clock_s: expected None or a finite number of seconds, got {self.clock_s!r}")
+            object.__setattr__(self, "clock_s", float(self.clock_s))
+        if isinstance(self.shots, bool) or not isinstance(self.shots, (int, np.integer)) or self.shots < 0:
+            raise ValueError(f"PointResult.shots: expected an integer >= 0, got {self.shots!r}")
+        object.__setattr__(self, "shots", int(self.shots))
+
+    @classmethod
+    def from_estimate(cls, estimate: Any, *, clock_s: float | None, shots: int) -> PointResult:
+        """Read an :class:`autotune.fringe.InversionEstimate` (or any object with its attributes).
+
+        The absorption's standard error is the half width of its Wilson interval over ``z``,
+        ``(absorption_high - absorption_low) / (2 z)`` with ``z`` the two-sided normal quantile
+        at the estimate's ``confidence``.
+
+        Parameters
+        ----------
+        estimate : InversionEstimate-like
+            Read by attribute: ``inversion``, ``inversion_stderr``, ``phase_shift``,
+            ``phase_shift_stderr``, ``absorption``, ``absorption_low``, ``absorption_high``,
+            ``contrast_empty(_stderr)``, ``contrast_one_photon(_stderr)``, ``identified``,
+            ``confidence``.
+        clock_s : float or None
+            Rig clock at the middle of the measurement (s).
+        shots : int
+            Shots of the whole point.
+
+        Raises
+        ------
+        ValueError
+            A missing attribute or a value that :class:`PointResult` refuses.
+        """
+        names = ("inversion", "inversion_stderr", "phase_shift", "phase_shift_stderr", "absorption",
+                 "absorption_low", "absorption_high", "contrast_empty", "contrast_empty_stderr",
+                 "contrast_one_photon", "contrast_one_photon_stderr", "identified", "confidence")
+        missing = [name for name in names if not hasattr(estimate, name)]
+        if missing:
+            raise ValueError(f"estimate: expected an InversionEstimate-like object, missing attributes {missing}")
+        confidence = estimate.confidence
+        if not _is_number(confidence) or not 0.0 < float(confidence) < 1.0:
+            raise ValueError(f"estimate.confidence: expected a number in (0, 1), got {confidence!r}")
+        low, high = estimate.absorption_low, estimate.absorption_high
+        for name, value in (("absorption_low", low), ("absorption_high", high)):
+            if not _is_number(value) or not math.isfinite(float(value)):
+                raise ValueError(f"estimate.{name}: expected a finite number, got {value!r}")
+        if float(high) < float(low):
+            raise ValueError(f"estimate: expected absorption_low <= absorption_high, got {low!r} > {high!r}")
+        z = float(special.ndtri(0.5 + 0.5 * float(confidence)))
+        return cls(
+            inversion=estimate.inversion,
+            inversion_stderr=estimate.inversion_stderr,
+            phase_shift=estimate.phase_shift,
+            phase_shift_stderr=estimate.phase_shift_stderr,
+            absorption=estimate.absorption,
+            absorption_stderr=(float(high) - float(low)) / (2.0 * z),
+            contrast_empty=estimate.contrast_empty,
+            contrast_empty_stderr=estimate.contrast_empty_stderr,
+            contrast_one_photon=estimate.contrast_one_photon,
+            contrast_one_photon_stderr=estimate.contrast_one_photon_stderr,
+            identified=estimate.identified,
+            clock_s=clock_s,
+            shots=shots,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping of every field."""
+        return dict(self.__dict__)
+
+
+@dataclass(frozen=True)
+class Proposal:
+    """The next point a strategy wants measured, and why.
+
+    Attributes
+    ----------
+    point : dict
+        Set-points ``{name: value}`` in SI units (m/s, Hz).
+    purpose : Purpose
+        Why it is measured (see :data:`Purpose`).
+    shots_per_phase : int or None
+        Shots per field and Ramsey phase; ``None`` means the loop's configured default for
+        that purpose (``measurement.shots_per_phase`` for a search point, the check's
+        precision for ``"check"``, the verification's for ``"correct"``).
+    reason : str
+        A sentence with the numbers behind the choice, for the journal.
+    """
+
+    point: dict[str, float]
+    purpose: str
+    shots_per_phase: int | None
+    reason: str
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.point, Mapping) or not self.point:
+            raise ValueError(f"Proposal.point: expected a non-empty mapping {{name: value}}, got {self.point!r}")
+        point = {}
+        for name, value in self.point.items():
+            if not isinstance(name, str) or not _is_number(value) or not math.isfinite(float(value)):
+                raise ValueError(f"Proposal.point[{name!r}]: expected a finite number, got {value!r}")
+            point[name] = float(value)
+        object.__setattr__(self, "point", point)
+        try:
+            _check_purpose(self.purpose)
+        except ValueError as exc:
+            raise ValueError(f"Proposal.{exc}") from None
+        if self.shots_per_phase is not None and (
+                isinstance(self.shots_per_phase, bool) or not isinstance(self.shots_per_phase, (int, np.integer))
+                or self.shots_per_phase < 1):
+            raise ValueError(f"Proposal.shots_per_phase: expected None or an integer >= 1, got {self.shots_per_phase!r}")
+        if self.shots_per_phase is not None:
+            object.__setattr__(self, "shots_per_phase", int(self.shots_per_phase))
+        if not isinstance(self.reason, str) or not self.reason:
+            raise ValueError(f"Proposal.reason: expected a non-empty sentence, got {self.reason!r}")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping of every field."""
+        return {"point": dict(self.point), "purpose": self.purpose,
+                "shots_per_phase": self.shots_per_phase, "reason": self.reason}
+
+
 @runtime_checkable
 class Strategy(Protocol):
     """What the closed loop needs from a search strategy (values are maximised)."""
@@ -250,6 +466,18 @@ class Strategy(Protocol):
 
     def converged(self, *, clock_s: float | None = None) -> bool:
         """True when the strategy's own stopping test passes at rig clock ``clock_s`` (s)."""
+        ...
+
+    def propose(self, *, clock_s: float | None = None) -> Proposal:
+        """The next point to measure at rig clock ``clock_s`` (s), its purpose, shots and reason.
+
+        The same proposal until the next :meth:`observe`.
+        """
+        ...
+
+    def observe(self, point: Mapping[str, float], result: PointResult, *,
+                purpose: str = "search") -> None:
+        """Record everything measured at ``point`` (``purpose`` as proposed, or ``"verify"``)."""
         ...
 
 
@@ -302,6 +530,28 @@ class _Record:
         self._units.append(unit)
         self._values.append(float(value))
         self._stderrs.append(float(stderr))
+
+    def propose(self, *, clock_s: float | None = None) -> Proposal:
+        """:meth:`ask` as a :class:`Proposal`: purpose ``"search"``, the loop's default shots."""
+        point = self.ask(clock_s=clock_s)  # type: ignore[attr-defined]
+        return Proposal(point, "search", None,
+                        f"{self.name}: next point of its plan after {self.n_told} results")
+
+    def observe(self, point: Mapping[str, float], result: PointResult, *,
+                purpose: str = "search") -> None:
+        """Tell the inversion of a search point: ``tell(point, inversion, inversion_stderr)``.
+
+        These strategies learn from their own search points only: a result with any other
+        purpose (a check, a verification) is checked and then ignored, so that a fixed design
+        does not count it as its next point.
+        """
+        _check_purpose(purpose)
+        if not isinstance(result, PointResult):
+            raise ValueError(f"result: expected a PointResult, got {type(result).__name__}")
+        if purpose != "search":
+            return
+        self.tell(point, result.inversion, result.inversion_stderr,  # type: ignore[attr-defined]
+                  clock_s=result.clock_s)
 
     def _best_observed(self) -> Recommendation:
         if not self._values:
@@ -1038,14 +1288,24 @@ def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settin
 
     Parameters
     ----------
-    kind : {"bayesian", "grid", "coordinate", "random"}
+    kind : {"bayesian", "grid", "coordinate", "random", "phase_lock"}
     space : SearchSpace
     seed : int
-        Used by the seeded strategies (bayesian, random); ignored by grid and coordinate.
+        Used by the seeded strategies (bayesian, random, phase_lock); ignored by grid and
+        coordinate.
     **settings
         Keyword arguments of the strategy's constructor (``points_per_dimension``,
-        ``rounds``, ``n_points``, ``initial_points``, ...).
+        ``rounds``, ``n_points``, ``initial_points``, ...; for ``"phase_lock"``: ``start``,
+        ``settings``, ``prior``, see :class:`autotune.guided.PhaseLockSearch`).
     """
+    if kind == "phase_lock":
+        # Imported here: autotune.guided builds on this module.
+        from autotune.guided import PhaseLockSearch
+
+        try:
+            return PhaseLockSearch(space, seed=seed, **settings)
+        except TypeError as exc:
+            raise ValueError(f"settings for {kind!r}: {exc}") from exc
     try:
         if kind == "bayesian":
             return BayesianSearch(space, seed=seed, **settings)
@@ -1057,4 +1317,4 @@ def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settin
             return RandomSearch(space, seed, **settings)
     except TypeError as exc:
         raise ValueError(f"settings for {kind!r}: {exc}") from exc
-    raise ValueError(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', got {kind!r}")
+    raise ValueError(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', 'phase_lock', got {kind!r}")

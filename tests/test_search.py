@@ -336,3 +336,94 @@ def test_space_unit_round_trip_and_clip():
     assert RIG_SPACE.from_unit(RIG_SPACE.to_unit(point)) == pytest.approx(point)
     assert RIG_SPACE.clip({"velocity": 700.0, "detuning": -50e3}) == {"velocity": 600.0, "detuning": -40e3}
     assert not RIG_SPACE.contains({"velocity": 700.0, "detuning": 0.0})
+
+
+# ---------------------------------------------------------------- propose / observe
+
+
+def _point_result(**changes):
+    from autotune.search import PointResult
+
+    values = dict(inversion=0.7, inversion_stderr=0.03, phase_shift=math.pi, phase_shift_stderr=0.08,
+                  absorption=0.02, absorption_stderr=0.004, contrast_empty=0.3, contrast_empty_stderr=0.01,
+                  contrast_one_photon=0.22, contrast_one_photon_stderr=0.01, identified=True, clock_s=12.0,
+                  shots=18000)
+    values.update(changes)
+    return PointResult(**values)
+
+
+def test_point_result_from_estimate_reads_the_wilson_half_width():
+    """from_estimate's absorption stderr is the Wilson half width over z (scipy.stats.binomtest's Wilson interval)."""
+    from scipy import stats
+
+    from autotune.fringe import FringeData, estimate_inversion
+    from autotune.search import PointResult
+
+    phases = [2 * math.pi * k / 6 for k in range(6)]
+    empty = FringeData.from_counts(phases, [0] * 6, [160, 130, 70, 40, 70, 130], [40, 70, 130, 160, 130, 70])
+    one = FringeData.from_counts(phases, [3, 2, 1, 2, 1, 3], [40, 70, 128, 158, 129, 70], [157, 128, 71, 40, 70, 127])
+    estimate = estimate_inversion(empty, one, confidence=0.95, seed=0, resamples=200)
+    result = PointResult.from_estimate(estimate, clock_s=5.5, shots=2400)
+    # Wilson score interval (E. B. Wilson, JASA 22, 209 (1927)) as implemented in scipy.stats.
+    low, high = stats.binomtest(12, 1200).proportion_ci(0.95, method="wilson")
+    assert result.absorption == pytest.approx(12 / 1200)
+    assert result.absorption_stderr == pytest.approx((high - low) / (2 * stats.norm.ppf(0.975)), rel=1e-9)
+    assert result.phase_shift == estimate.phase_shift and result.inversion == estimate.inversion
+    assert result.clock_s == 5.5 and result.shots == 2400 and result.identified
+
+
+@pytest.mark.parametrize("field, value, match", [
+    ("phase_shift", 2 * math.pi, "phase_shift"),
+    ("absorption", 1.5, "absorption"),
+    ("inversion_stderr", -0.1, "inversion_stderr"),
+    ("inversion", float("nan"), "inversion"),
+    ("shots", 1.5, "shots"),
+    ("clock_s", float("inf"), "clock_s"),
+])
+def test_point_result_refuses_bad_values(field, value, match):
+    """A value out of its range raises ValueError naming the field."""
+    with pytest.raises(ValueError, match=match):
+        _point_result(**{field: value})
+
+
+def test_proposal_checks_its_fields():
+    """An unknown purpose, a bad shot count or an empty reason raise ValueError naming the field."""
+    from autotune.search import Proposal
+
+    assert Proposal({"x": 1}, "lock", 500, "why").to_dict() == {
+        "point": {"x": 1.0}, "purpose": "lock", "shots_per_phase": 500, "reason": "why"}
+    with pytest.raises(ValueError, match="purpose"):
+        Proposal({"x": 1.0}, "explore", None, "why")
+    with pytest.raises(ValueError, match="shots_per_phase"):
+        Proposal({"x": 1.0}, "search", 0, "why")
+    with pytest.raises(ValueError, match="reason"):
+        Proposal({"x": 1.0}, "search", None, "")
+
+
+def test_existing_strategies_propose_and_observe_through_ask_and_tell():
+    """propose wraps ask (purpose search, default shots); observe tells the inversion; a verification is ignored."""
+    grid = GridScan(RIG_SPACE, points_per_dimension=3)
+    reference = GridScan(RIG_SPACE, points_per_dimension=3)
+    for k in range(4):
+        proposal = grid.propose()
+        assert proposal.purpose == "search" and proposal.shots_per_phase is None and proposal.reason
+        assert proposal.point == reference.ask()
+        value = _rig_value(proposal.point)
+        grid.observe(proposal.point, _point_result(inversion=value, inversion_stderr=0.01))
+        reference.tell(proposal.point, value, 0.01, clock_s=12.0)
+        # A verification does not advance a fixed design.
+        grid.observe(proposal.point, _point_result(), purpose="verify")
+    assert grid.n_told == reference.n_told == 4
+    assert grid.recommend() == reference.recommend()
+    with pytest.raises(ValueError, match="purpose"):
+        grid.observe(NOMINAL, _point_result(), purpose="other")
+    search = BayesianSearch(RIG_SPACE, seed=1, initial_points=[NOMINAL], n_initial_points=3)
+    assert isinstance(search, Strategy) and search.propose().point == NOMINAL
+
+
+def test_make_strategy_builds_the_phase_lock():
+    """make_strategy('phase_lock', ...) returns the phase lock; a wrong setting names the strategy."""
+    strategy = make_strategy("phase_lock", RIG_SPACE, seed=0, start=NOMINAL)
+    assert strategy.name == "phase_lock" and isinstance(strategy, Strategy)
+    with pytest.raises(ValueError, match="phase_lock"):
+        make_strategy("phase_lock", RIG_SPACE, seed=0, start=NOMINAL, points_per_dimension=3)
