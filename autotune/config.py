@@ -16,6 +16,7 @@ The file layout (see ``configs/calibrate.toml`` for a commented example)::
     [calibration]    store (where the last good calibration is kept)
     [retune]         still_good_fraction, half widths of the narrowed box, budgets
     [recovery]       retries of a failed step, interlock waits
+    [lock]           the phase-lock strategy's settings (all optional)
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ __all__ = [
     "NominalConfig",
     "RetuneConfig",
     "RecoveryConfig",
+    "LockConfig",
     "RunConfig",
     "StrategyKind",
     "load_config",
@@ -45,7 +47,7 @@ __all__ = [
     "nominal_two_pi_velocity",
 ]
 
-StrategyKind = Literal["bayesian", "grid", "coordinate", "random"]
+StrategyKind = Literal["phase_lock", "bayesian", "grid", "coordinate", "random"]
 
 
 def nominal_two_pi_velocity(coupling_hz: float, waist_m: float) -> float:
@@ -154,6 +156,50 @@ class RetuneConfig:
 
 
 @dataclass(frozen=True)
+class LockConfig:
+    """Settings of the phase-lock strategy (``[lock]``), SI units.
+
+    Attributes
+    ----------
+    target_shortfall : float
+        Stop when the predicted shortfall of the recommendation below the best is below this
+        fraction at ``measurement.confidence``.
+    still_good_shortfall : float
+        A retune's check keeps the last good set-points while its predicted shortfall stays
+        below this fraction.
+    lock_shots_per_phase, velocity_shots_per_phase : int
+        Shots per field and phase of a lock step and of a velocity step.
+    capture_phase_error_rad : float
+        Largest phase error (rad) where the phase shift still steers the detuning.
+    min_contrast_ratio : float
+        Smallest one-photon contrast, relative to the empty one, where the phase is trusted.
+    bracket_step_hz : float
+        First detuning step when the slope is unknown (Hz; default: the nominal coupling / 5).
+    velocity_step_fraction : float
+        Velocity step of the absorption scan, as a fraction of the velocity.
+    phase_at_peak_rad, phase_at_peak_prior_rad : float
+        Prior of the phase shift at the peak (rad): pi, the sign flip of a 2 pi rotation.
+    drift_prior_hz_per_s : float
+        Width of the prior on the cavity's drift during a calibration (Hz/s).
+    max_corrections : int
+        Most re-verifications after a verification whose own phase shows a shortfall.
+    """
+
+    target_shortfall: float
+    still_good_shortfall: float
+    lock_shots_per_phase: int
+    velocity_shots_per_phase: int
+    capture_phase_error_rad: float
+    min_contrast_ratio: float
+    bracket_step_hz: float
+    velocity_step_fraction: float
+    phase_at_peak_rad: float
+    phase_at_peak_prior_rad: float
+    drift_prior_hz_per_s: float
+    max_corrections: int
+
+
+@dataclass(frozen=True)
 class RecoveryConfig:
     """Bounded recovery from rig faults."""
 
@@ -177,6 +223,7 @@ class RunConfig:
     calibration_store: Path
     retune: RetuneConfig
     recovery: RecoveryConfig
+    lock: LockConfig
     raw: Mapping[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     def setpoint(self, name: str) -> SetpointConfig:
@@ -389,7 +436,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
     m_t.finish()
 
     s_t = top.table("search")
-    strategy = s_t.string("strategy", "bayesian", choices=get_args(StrategyKind))
+    strategy = s_t.string("strategy", "phase_lock", choices=get_args(StrategyKind))
     search = SearchConfig(
         strategy=strategy,  # type: ignore[arg-type]
         seed=s_t.integer("seed", 0, low=0, high=2**32 - 1),
@@ -453,6 +500,32 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         interlock_max_wait_s=rec_t.number("interlock_max_wait_s", 600.0, low=0.0, high=86400.0),
     )
     rec_t.finish()
+
+    l_t = top.table("lock", required=False)
+    if l_t is None:
+        l_t = _Table(source, "lock", {}, problems)
+    lock = LockConfig(
+        target_shortfall=l_t.number("target_shortfall", 0.01, low=0.0, high=0.5, low_open=True),
+        still_good_shortfall=l_t.number("still_good_shortfall", 0.02, low=0.0, high=0.5,
+                                        low_open=True),
+        lock_shots_per_phase=l_t.integer("lock_shots_per_phase", 500, low=1, high=10_000_000),
+        velocity_shots_per_phase=l_t.integer("velocity_shots_per_phase", 500, low=1,
+                                             high=10_000_000),
+        capture_phase_error_rad=l_t.number("capture_phase_error_rad", 0.6 * math.pi, low=0.0,
+                                           high=math.pi, low_open=True),
+        min_contrast_ratio=l_t.number("min_contrast_ratio", 0.35, low=0.0, high=1.0),
+        bracket_step_hz=l_t.number("bracket_step_hz", nominal.coupling_hz / 5.0, low=0.0,
+                                   high=1e9, low_open=True),
+        velocity_step_fraction=l_t.number("velocity_step_fraction", 0.05, low=0.0, high=0.5,
+                                          low_open=True),
+        phase_at_peak_rad=l_t.number("phase_at_peak_rad", math.pi, low=0.0, high=2 * math.pi),
+        phase_at_peak_prior_rad=l_t.number("phase_at_peak_prior_rad", 0.02 * math.pi, low=0.0,
+                                           high=math.pi, low_open=True),
+        drift_prior_hz_per_s=l_t.number("drift_prior_hz_per_s", 3.0, low=0.0, high=1e4,
+                                        low_open=True),
+        max_corrections=l_t.integer("max_corrections", 2, low=0, high=20),
+    )
+    l_t.finish()
     top.finish()
 
     # Relations between keys, checked once every key has been read.
@@ -479,6 +552,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         calibration_store=store,
         retune=retune,
         recovery=recovery,
+        lock=lock,
         raw=dict(data),
     )
 

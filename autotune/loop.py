@@ -20,6 +20,7 @@ safe set-points before the error propagates.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import sys
 import threading
@@ -48,7 +49,8 @@ from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
-from autotune.search import Dimension, SearchSpace, Strategy, make_strategy
+from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
+from autotune.search import Dimension, PointResult, SearchSpace, Strategy, make_strategy
 
 __all__ = [
     "Limit",
@@ -62,6 +64,9 @@ __all__ = [
     "build_strategy",
     "Session",
     "run_stage",
+    "run_guided_stage",
+    "lock_settings",
+    "GUIDED_LABELS",
     "retune_box",
     "quadratic_peak",
 ]
@@ -112,6 +117,7 @@ class StageOutcome:
     accepted: bool
     check: InversionEstimate | None = None
     drift_rate_hz_per_s: float = 0.0
+    lock_prior: dict[str, Any] | None = None
 
 
 def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
@@ -917,3 +923,238 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
                    f"{config.min_inversion:.3f}", setpoints=chosen)
     return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
                         session.tally.rig_time_s, accepted, check_estimate, drift_rate)
+
+
+#: Measurement labels of the phase-lock stage: its proposals' purposes.
+GUIDED_LABELS = ("search", "lock", "velocity", "relock", "check", "correct", "verify")
+
+
+def lock_settings(config: RunConfig, box: Mapping[str, tuple[float, float]]) -> LockSettings:
+    """The phase lock's settings from ``[lock]`` and ``[measurement]``."""
+    lock = config.lock
+    return LockSettings(
+        target_shortfall=lock.target_shortfall,
+        confidence=config.measurement.confidence,
+        still_good_shortfall=lock.still_good_shortfall,
+        phase_at_peak_rad=lock.phase_at_peak_rad,
+        phase_at_peak_prior_rad=lock.phase_at_peak_prior_rad,
+        capture_phase_error_rad=lock.capture_phase_error_rad,
+        min_contrast_ratio=lock.min_contrast_ratio,
+        bracket_step_hz=min(lock.bracket_step_hz,
+                            0.5 * (box["detuning"][1] - box["detuning"][0])),
+        velocity_step_fraction=lock.velocity_step_fraction,
+        lock_shots_per_phase=lock.lock_shots_per_phase,
+        velocity_shots_per_phase=lock.velocity_shots_per_phase,
+        ramsey_phases=config.measurement.ramsey_phases,
+        drift_prior_hz_per_s=lock.drift_prior_hz_per_s,
+    )
+
+
+def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, float]],
+                     budget: Budget, start: Mapping[str, float],
+                     prior: Mapping[str, Any] | None = None,
+                     check_shots_per_phase: int | None = None,
+                     verification_shots_per_phase: int | None = None,
+                     observer: Callable[[int, Strategy, Session], None] | None = None,
+                     records: Sequence[Mapping[str, Any]] = ()) -> StageOutcome:
+    """Run (or resume) one stage with the phase lock (:class:`autotune.guided.PhaseLockSearch`).
+
+    Every step is one measurement of both fields, labelled by its purpose (``lock``,
+    ``velocity``, ``relock``, ``search``, ``check``, ``verify``, ``correct``) and numbered in
+    order; the strategy is told the whole estimate of each (inversion, phase shift,
+    absorption, contrasts, clock). The stage ends as the strategy decides:
+
+    - a retune measures at the last good set-points first (``check``) and ends ``still_good``
+      when the strategy's verdict, from the phase error with the stored slope and the excess
+      absorption, says so;
+    - otherwise the loop measures the strategy's proposals until its predicted shortfall is
+      below the target at the configured confidence (or a budget is spent), then verifies the
+      recommendation; a ``correct`` proposal is itself a verification;
+    - after a verification the strategy may ask for a correction, measured at the same
+      precision, at most ``[lock] max_corrections`` times.
+
+    Parameters
+    ----------
+    session : Session
+    stage : {"calibrate", "retune"}
+    box : Mapping[str, (float, float)]
+        The search box (velocity in m/s, detuning in Hz).
+    budget : Budget
+        Hard limits on the points, shots and rig time of the steps before the verification.
+    start : Mapping[str, float]
+        The first set-points (the nominal 2 pi velocity at zero detuning, or the last good).
+    prior : Mapping, optional
+        What the last calibration learned (``LockPrior.to_dict()``), for a retune.
+    check_shots_per_phase : int, optional
+        Shots per field and phase of a retune's check (default: the verification's).
+    verification_shots_per_phase : int, optional
+        Shots per field and phase of a verification and of a correction (default:
+        ``measurement.verification_shots_per_phase``).
+    observer : callable, optional
+        ``observer(steps, strategy, session)`` after every told step (studies).
+    records : sequence of journal records
+        Records of an earlier attempt of this stage, to resume from (see :func:`run_stage`).
+    """
+    config = session.config
+    seed = config.search.seed
+    stage_code = {"calibrate": 1, "retune": 2}[stage]
+    replayed = _replay(records)
+    measurements = replayed.measurements
+    session.tally = _tally_from(records)
+    verify_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
+    check_shots = check_shots_per_phase or verify_shots
+    default_shots = {"check": check_shots, "verify": verify_shots, "correct": verify_shots}
+    lock_prior = None if prior is None else LockPrior.from_dict(prior)
+    order = sorted((key for key in replayed.estimate_order if key[0] in GUIDED_LABELS),
+                   key=lambda k: k[1])
+    if replayed.header:
+        header = replayed.header
+        box = {k: (float(v[0]), float(v[1])) for k, v in header["box"].items()}
+        start = {k: float(v) for k, v in header["start"].items()}
+        lock_prior = None if header.get("prior") is None else LockPrior.from_dict(header["prior"])
+        resend = [msg_id for m in measurements.values() for msg_id, _ in m.pending.values()]
+        session.decide("resume", f"continuing {stage} from {len(records)} journal records: "
+                       f"{len(order)} finished steps told to the strategy again, once each, "
+                       f"{len(resend)} requests to ask the rig for again by their msg_id",
+                       estimates=len(replayed.estimates), retold=[],
+                       steps=[k[1] for k in order], resend=resend)
+    else:
+        session.journal.append("stage", stage=stage, box={k: list(v) for k, v in box.items()},
+                               initial_points=[dict(start)], start=dict(start),
+                               prior=None if lock_prior is None else lock_prior.to_dict(),
+                               budget=budget.__dict__, strategy="phase_lock", seed=seed)
+    lock = PhaseLockSearch(search_space(box), seed=child_seed(seed, stage_code, 0), start=start,
+                           settings=lock_settings(config, box), prior=lock_prior)
+    phases = len(session.phases)
+
+    def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
+        estimate = InversionEstimate.from_dict(rec["estimate"])
+        shots = rec.get("shots") or (2 * phases * m.shots_per_phase if m is not None else 1)
+        return PointResult.from_estimate(estimate, clock_s=rec.get("clock_s"), shots=int(shots))
+
+    steps = 0
+    searched = 0
+    final: tuple[dict[str, float], InversionEstimate] | None = None
+    check: InversionEstimate | None = None
+    verifications = 0
+    for key in order:
+        rec = replayed.estimates[key]
+        lock.observe(rec["setpoints"], result_of(rec, measurements.get(key)), purpose=key[0])
+        steps = key[1] + 1
+        estimate = InversionEstimate.from_dict(rec["estimate"])
+        if key[0] in ("verify", "correct"):
+            final = ({k: float(v) for k, v in rec["setpoints"].items()}, estimate)
+            verifications += 1
+        elif key[0] == "check":
+            check = estimate
+        else:
+            searched += 1
+
+    def run_step(label: str, setpoints: Mapping[str, float], shots_per_phase: int
+                 ) -> InversionEstimate:
+        nonlocal steps, searched, final, check, verifications
+        key = (label, steps)
+        m = measurements.get(key)
+        if m is None:
+            m = _Measurement(label, steps, dict(setpoints), shots_per_phase)
+            measurements[key] = m
+            session.journal.append("measurement", label=label, point=steps,
+                                   setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
+        estimate = session.measure(m, child_seed(seed, stage_code, 5, steps))
+        result = PointResult.from_estimate(estimate, clock_s=m.clock_s,
+                                           shots=2 * phases * m.shots_per_phase)
+        lock.observe(m.setpoints, result, purpose=label)
+        steps += 1
+        if label in ("verify", "correct"):
+            final = (dict(m.setpoints), estimate)
+            verifications += 1
+        elif label == "check":
+            check = estimate
+        else:
+            searched += 1
+            if observer is not None:
+                observer(searched, lock, session)
+        return estimate
+
+    stop_reason = str(replayed.decisions["stop_search"]["reason"]) \
+        if "stop_search" in replayed.decisions else ""
+    verdict_done = "verdict" in replayed.decisions
+    while True:
+        pending = next((m for (label, point), m in measurements.items()
+                        if point == steps and label in GUIDED_LABELS), None)
+        if pending is not None:
+            run_step(pending.label, pending.setpoints, pending.shots_per_phase)
+            continue
+        now = session.clock
+        if stage == "retune" and check is not None and not verdict_done and final is None:
+            verdict = lock.verdict(clock_s=now)
+            verdict_done = True
+            session.decide("verdict", verdict.reason, still_good=verdict.still_good,
+                           in_range=verdict.in_range, numbers=verdict.to_dict())
+            if verdict.still_good:
+                check_m = next(m for (label, _), m in measurements.items() if label == "check")
+                if any(abs(session.current.get(k, math.nan) - v) > 0.0
+                       for k, v in check_m.setpoints.items()):
+                    session.move_to(check_m.setpoints, reason="leave the rig at the checked "
+                                                              "set-points")
+                session.decide("still_good", verdict.reason, setpoints=check_m.setpoints)
+                return StageOutcome("still_good", dict(check_m.setpoints), check,
+                                    "check passed", searched, session.tally.shots,
+                                    session.tally.rig_time_s, True, check)
+            continue
+        if final is not None:
+            correction = lock.correction(clock_s=now) \
+                if verifications <= config.lock.max_corrections else None
+            if correction is None:
+                break
+            session.decide("correct", correction.reason, setpoints=correction.point,
+                           **{"from": final[0]})
+            run_step("correct", correction.point,
+                     correction.shots_per_phase or default_shots["correct"])
+            continue
+        if not stop_reason:
+            shortfall = lock.shortfall(clock_s=now)
+            if searched and lock.converged(clock_s=now):
+                stop_reason = (f"predicted shortfall {shortfall.estimate:.4f} (upper "
+                               f"{shortfall.upper:.4f} at {shortfall.confidence:.0%}) below the "
+                               f"target {config.lock.target_shortfall:g}")
+            elif searched >= budget.max_points:
+                stop_reason = f"point budget of {budget.max_points} reached"
+            elif session.tally.rig_time_s >= budget.max_rig_time_s:
+                stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s spent"
+            else:
+                proposal = lock.propose(clock_s=now)
+                shots = proposal.shots_per_phase or default_shots.get(
+                    proposal.purpose, config.measurement.shots_per_phase)
+                if session.tally.shots + 2 * phases * shots > budget.max_shots:
+                    stop_reason = (f"shot budget {budget.max_shots} would be exceeded by the "
+                                   f"next step")
+                else:
+                    session.journal.append("proposal", point=steps, setpoints=proposal.point,
+                                           strategy="phase_lock", purpose=proposal.purpose,
+                                           reason=proposal.reason, shots_per_phase=shots)
+                    run_step(proposal.purpose, proposal.point, shots)
+                    continue
+            session.decide("stop_search", stop_reason, points=searched,
+                           shortfall=shortfall.to_dict(), learned=lock.state(clock_s=now))
+        verify_duration = 2 * phases * verify_shots / session.repetition_rate_hz
+        recommendation = lock.recommend(clock_s=now + 0.5 * verify_duration)
+        chosen = {k: float(v) for k, v in recommendation.point.items()}
+        session.decide("recommend", "the phase lock's posterior: detuning where the phase "
+                       "shift is at its peak value, velocity of least absorption",
+                       setpoints=chosen, predicted=recommendation.value)
+        run_step("verify", chosen, verify_shots)
+    assert final is not None
+    chosen, estimate = final
+    if any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in chosen.items()):
+        session.move_to(chosen, reason="leave the rig at the verified set-points")
+    learned = lock.learned_prior(clock_s=session.clock)
+    accepted = estimate.inversion >= config.min_inversion
+    status = "accepted" if accepted else "below_acceptance"
+    session.decide(status, f"verified inversion {estimate.inversion:.3f} vs acceptance "
+                   f"{config.min_inversion:.3f}", setpoints=chosen,
+                   learned=None if learned is None else learned.to_dict())
+    outcome = StageOutcome(status, chosen, estimate, stop_reason or "verified after a "
+                           "correction", searched, session.tally.shots,
+                           session.tally.rig_time_s, accepted, check)
+    return dataclasses.replace(outcome, lock_prior=None if learned is None else learned.to_dict())

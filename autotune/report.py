@@ -60,6 +60,7 @@ __all__ = [
     "FIGURE_NAME",
     "HTML_NAME",
     "SCAN_LABELS",
+    "SEARCH_LABELS",
     "Measurement",
     "Run",
     "Flag",
@@ -88,6 +89,10 @@ HTML_NAME = "report.html"
 SCAN_LABELS = ("refine", "lock", "relock", "bracket")
 """Measurement labels drawn as detuning scans or lock steps (figure 4)."""
 
+SEARCH_LABELS = ("point", "search", "lock", "velocity", "relock", "bracket")
+"""Measurement labels of search steps (the Gaussian-process and hand strategies' ``point``, the
+phase lock's steps); checks, scans, verifications and corrections are not search steps."""
+
 #: An edge zone is this fraction of the box width, on each side of each axis.
 EDGE_FRACTION = 0.02
 #: Points are "piled" at an edge when more than this fraction of the search points sit in its zone.
@@ -106,7 +111,7 @@ BAD_ENDINGS = frozenset({"interrupted", "aborted", "failed"})
 _FIELDS = ("empty", "one_photon")
 _FIELD_NAMES = {"empty": "empty field", "one_photon": "one photon"}
 _LABEL_MARKERS = {"point": "o", "check": "s", "verify": "D", "refine": "^", "lock": "v",
-                  "relock": "<", "bracket": ">"}
+                  "relock": "<", "bracket": ">", "velocity": "P", "search": "o", "correct": "X"}
 _RUNNING = "running or killed"
 # Above this many measurements a text summary gives one line per label instead of a table.
 _TEXT_TABLE_MAX = 80
@@ -591,7 +596,7 @@ def run_flags(run: Run) -> list[Flag]:
 
     for index in range(len(run.stages)):
         box = run.box(index)
-        points = [m for m in run.measurements if m.label == "point" and m.stage == index]
+        points = [m for m in run.measurements if m.label in SEARCH_LABELS and m.stage == index]
         if box is None or not points:
             continue
         for name, (low, high) in box.items():
@@ -725,7 +730,7 @@ def _header(run: Run) -> list[tuple[str, str]]:
                      f"absorption {final.value('absorption'):.3f}; contrasts "
                      f"{final.value('contrast_empty'):.3f} (empty), "
                      f"{final.value('contrast_one_photon'):.3f} (one photon)"))
-    points = int(_number(result, "points", sum(m.label == "point" for m in run.estimated)))
+    points = int(_number(result, "points", sum(m.label in SEARCH_LABELS for m in run.estimated)))
     shots = int(_number(result, "shots", run.shots))
     rig_time = _number(result, "rig_time_s", run.rig_time_s)
     if math.isfinite(_number(result, "wall_time_s", math.nan)):
@@ -998,13 +1003,13 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     for label in labels:
         pick = np.array([m.label == label for m in done])
         ax.scatter(vel[pick], det[pick], c=inv[pick], cmap="viridis", vmin=vmin, vmax=vmax,
-                   marker=_marker(label), s=46 if label == "point" else 60, edgecolors="white",
+                   marker=_marker(label), s=46 if label in SEARCH_LABELS else 60, edgecolors="white",
                    linewidths=0.8, gid=f"points-{label}", zorder=3)
         # Legend entries in grey: the marker tells the label, the colour is the inversion.
         handles.append(Line2D([], [], marker=_marker(label), ls="none", color="0.45", mec="white",
                               ms=7, label=f"{label} ({int(pick.sum())})"))
     for m, v, d in zip(done, vel, det, strict=True):
-        if m.label == "point":
+        if m.label in SEARCH_LABELS:
             ax.annotate(str(m.point), (v, d), textcoords="offset points", xytext=(4, 3),
                         fontsize=6.5, color="black", zorder=4)
     if box is not None and "velocity" in box and "detuning" in box:

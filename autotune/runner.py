@@ -58,7 +58,15 @@ from autotune.journal import (
     utc_now,
     write_json_atomic,
 )
-from autotune.loop import Budget, Limit, Session, StageOutcome, retune_box, run_stage
+from autotune.loop import (
+    Budget,
+    Limit,
+    Session,
+    StageOutcome,
+    retune_box,
+    run_guided_stage,
+    run_stage,
+)
 from autotune.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
@@ -82,6 +90,7 @@ _RESUMABLE_CHANGES = (
     "retune.max_points", "retune.max_shots", "retune.check_shots_per_phase",
     "retune.still_good_fraction",
     "recovery.",
+    "lock.max_corrections", "lock.lock_shots_per_phase", "lock.velocity_shots_per_phase",
 )
 _LIMIT_KEYS = ("limit_min", "limit_max", "max_step")
 
@@ -223,6 +232,9 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
                   config.measurement.verification_shots_per_phase)]
         if command == "retune":
             shots.append(("retune.check_shots_per_phase", config.retune.check_shots_per_phase))
+        if config.search.strategy == "phase_lock":
+            shots += [("lock.lock_shots_per_phase", config.lock.lock_shots_per_phase),
+                      ("lock.velocity_shots_per_phase", config.lock.velocity_shots_per_phase)]
         for key, value in shots:
             if value > most:
                 problems.append(ConfigError(source, key, f"at most the rig's "
@@ -414,6 +426,29 @@ def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: flo
     return result
 
 
+def _guided_args(prepared: Prepared, session: Session,
+                 observer: Callable[..., None] | None) -> dict[str, Any]:
+    config = prepared.config
+    s = config.search
+    if prepared.command == "calibrate":
+        box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
+        nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
+        start = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
+                 for name, (lo, hi) in box.items()}
+        return {"stage": "calibrate", "box": box, "start": start,
+                "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
+                "observer": observer}
+    assert prepared.last_good is not None
+    centre = {sp.name: float(prepared.last_good["setpoints"][sp.name]) for sp in config.setpoints}
+    r = config.retune
+    return {"stage": "retune", "box": retune_box(config, centre, session.limits),
+            "start": centre, "prior": prepared.last_good.get("lock_prior"),
+            "budget": Budget(r.max_points, r.max_shots, s.max_rig_time_s, 1),
+            "check_shots_per_phase": r.check_shots_per_phase,
+            "verification_shots_per_phase": r.check_shots_per_phase,
+            "observer": observer}
+
+
 def _stage_args(prepared: Prepared, session: Session,
                 observer: Callable[..., None] | None) -> dict[str, Any]:
     config = prepared.config
@@ -442,6 +477,16 @@ def _stage_args(prepared: Prepared, session: Session,
         "verification_shots_per_phase": r.check_shots_per_phase,
         "observer": observer,
     }
+
+
+def _carried_prior(outcome: StageOutcome, prepared: Prepared) -> dict[str, Any] | None:
+    """The lock prior to store: this stage's, or the one it started from (a retune that only
+    corrected the detuning learned no new slope)."""
+    if outcome.lock_prior is not None:
+        return outcome.lock_prior
+    if prepared.last_good is not None:
+        return prepared.last_good.get("lock_prior")
+    return None
 
 
 def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None,
@@ -495,7 +540,12 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         raise
     try:
         session.learn_present()
-        outcome = run_stage(session, records=records, **_stage_args(prepared, session, observer))
+        if config.search.strategy == "phase_lock":
+            outcome = run_guided_stage(session, records=records,
+                                       **_guided_args(prepared, session, observer))
+        else:
+            outcome = run_stage(session, records=records,
+                                **_stage_args(prepared, session, observer))
         clock_end = session.clock
         result = _result(outcome, command, run_dir, clock_start, clock_end,
                          time.monotonic() - wall_start)
@@ -507,6 +557,9 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
                     "inversion_high": outcome.estimate.inversion_high,
                     "run_dir": str(run_dir), "t_wall": utc_now(),
                     "rig": prepared.description.rig,
+                    # What the phase lock learned (slope, phase at the peak, absorption
+                    # minimum): the next retune reads the detuning error from one check.
+                    "lock_prior": _carried_prior(outcome, prepared),
                 })
             except JournalError as exc:
                 # The calibration itself is good and the rig stays at it: keep the result,

@@ -53,6 +53,7 @@ def write_config(path: Path, endpoint: str, **sections: dict[str, Any]) -> Path:
     data["bus"]["endpoint"] = endpoint
     for section, values in sections.items():
         for key, value in values.items():
+            data.setdefault(section, {})
             if isinstance(value, dict) and isinstance(data[section].get(key), dict):
                 data[section][key].update(value)
             else:
@@ -61,13 +62,15 @@ def write_config(path: Path, endpoint: str, **sections: dict[str, Any]) -> Path:
     return path
 
 
-#: A calibration of a few seconds: 3 points of 3 phases, a 3-point scan, small shots.
+#: A calibration of a few seconds: at most 8 steps of 3 phases, small shots (the phase lock's
+#: default); other strategies get 3 points and a 3-point final scan through :func:`tiny_config`.
 TINY = {
     "measurement": {"shots_per_phase": 200, "ramsey_phases": 3, "resamples": 200,
                     "verification_shots_per_phase": 400},
-    "search": {"max_points": 3, "min_points": 3, "n_initial_points": 2, "refine_points": 3},
+    "search": {"max_points": 8, "min_points": 3, "n_initial_points": 2, "refine_points": 3},
     "retune": {"max_points": 2, "n_initial_points": 1, "check_shots_per_phase": 400,
                "max_shots": 100_000},
+    "lock": {"lock_shots_per_phase": 200, "velocity_shots_per_phase": 200},
 }
 
 
@@ -76,6 +79,9 @@ def tiny_config(path: Path, endpoint: str, store: Path, **sections: dict[str, An
     merged = {name: dict(values) for name, values in TINY.items()}
     for name, values in sections.items():
         merged.setdefault(name, {}).update(values)
+    if merged["search"].get("strategy", "phase_lock") != "phase_lock" and \
+            "max_points" not in sections.get("search", {}):
+        merged["search"]["max_points"] = 3
     merged.setdefault("calibration", {})["store"] = str(store)
     return write_config(path, endpoint, **merged)
 

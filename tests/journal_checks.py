@@ -14,6 +14,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 FINAL = {"accepted", "below_acceptance", "still_good"}
+GUIDED = {"search", "lock", "velocity", "relock", "check", "correct", "verify"}
 
 
 def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = True) -> None:
@@ -36,6 +37,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     resolved: Counter[str] = Counter()
     estimated: Counter[tuple[str, int]] = Counter()
     point_estimates: list[int] = []
+    steps: list[int] = []
     for rec in records:
         kind = rec["type"]
         if kind == "measurement":
@@ -60,10 +62,14 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
             estimated[key] += 1
             if rec["label"] == "point":
                 point_estimates.append(rec["point"])
+            elif rec["label"] in GUIDED:
+                steps.append(rec["point"])
         elif kind == "decision" and rec["what"] == "resume":
             assert sorted(rec["retold"]) == sorted(set(point_estimates)), (
                 f"resume at {rec['seq']} re-told {rec['retold']}, estimated {point_estimates}")
             assert len(rec["retold"]) == len(set(rec["retold"]))
+            if "steps" in rec:  # the phase lock re-observes every finished step, in order
+                assert rec["steps"] == sorted(steps), (rec["steps"], steps)
     twice = [k for k, n in filed.items() if n > 1]
     assert not twice, f"acquisitions filed twice: {twice}"
     assert all(n == 1 for n in resolved.values()), "a request was resolved twice"

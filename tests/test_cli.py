@@ -7,6 +7,7 @@ reference for the quality of what a run chose.
 from __future__ import annotations
 
 import json
+import re
 import signal
 import socket
 import subprocess
@@ -72,7 +73,9 @@ def _wait_for(path: Path, kind: str, count: int, timeout_s: float = 300.0) -> No
 
 
 def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(tmp_path: Path) -> None:
-    """dry-run: both stages reach >= 0.97 of the true best; retune uses <= 30% of the shots."""
+    """dry-run: both stages reach >= 0.98 of the true best; the retune costs less than the
+    calibration, and the calibration no more than twice its own verification (the oracle floor
+    of the study: verification alone at the true best)."""
     out = tmp_path / "dry"
     done = _autotune("--log-level", "warning", "dry-run", "--out", str(out))
     assert done.returncode == 0, done.stderr[-3000:]
@@ -83,12 +86,14 @@ def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(tmp_path: Path) -> N
         truth = result["truth"]
         assert set(truth) == {"inversion_at_chosen", "best_inversion", "best_setpoints"}
         # Reference: the simulated rig's noiseless truth at the end of the stage.
-        assert truth["inversion_at_chosen"] >= 0.97 * truth["best_inversion"], name
+        assert truth["inversion_at_chosen"] >= 0.98 * truth["best_inversion"], name
         # The global optimum, not the detuned ridge of slower atoms (PHYSICS.md s.2): the
         # chosen detuning sits within the few-kHz tolerance of the best one.
         assert abs(result["setpoints"]["detuning"] - truth["best_setpoints"]["detuning"]) < 6e3
         assert result["accepted"]
-    assert results["retune"]["shots"] <= 0.30 * results["calibrate"]["shots"]
+    assert results["retune"]["shots"] < results["calibrate"]["shots"]
+    floor = 2 * 6 * tomllib.loads(DRY_RUN.read_text())["measurement"]["verification_shots_per_phase"]
+    assert results["calibrate"]["shots"] <= 2 * floor
     assert "true best" in done.stdout
 
 
@@ -104,7 +109,11 @@ def test_report_summarises_a_run_folder_and_track_retunes_from_it(tmp_path: Path
     assert done.returncode == 0, done.stderr[-3000:]
     shown = _autotune("report", str(run))
     assert shown.returncode == 0, shown.stderr
-    assert shown.stdout.count("\npoint ") == 6
+    # One table line per measurement: label, step number, set-points, inversion, ...
+    table = re.findall(r"^(\w+) +(\d+) +[\d.]+ +-?[\d.]+ ", shown.stdout, flags=re.M)
+    estimates = [(r["label"], r["point"]) for r in read_journal(run / JOURNAL_NAME)
+                 if r["type"] == "estimate"]
+    assert [(label, int(n)) for label, n in table] == estimates
     png = run / "report.png"
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, ISO/IEC 15948)
     # Tracking retunes from the calibration just accepted.
@@ -121,7 +130,7 @@ def test_calibrate_killed_and_resumed_loses_and_repeats_nothing(tmp_path: Path,
     server = rig_server()
     config, run, process = _start_calibration(tmp_path, server, subprocess.DEVNULL)
     try:
-        _wait_for(run / JOURNAL_NAME, "estimate", 10)
+        _wait_for(run / JOURNAL_NAME, "estimate", 4)
         process.send_signal(signal.SIGKILL)
         process.wait(timeout=30)
     finally:
@@ -139,14 +148,15 @@ def test_calibrate_killed_and_resumed_loses_and_repeats_nothing(tmp_path: Path,
                     for r in records if r["type"] == "acquisition"]
     assert len(acquisitions) == len(set(acquisitions))
     result = json.loads((run / RESULT_NAME).read_text())
-    assert result["points"] == sum(label == "point" for label, _ in estimates)
-    # No shot lost or counted twice: the journal's shots are the result's, and the rig counted
-    # at least those (an acquisition cut by the kill is counted by the rig only).
+    assert result["points"] == sum(label not in ("check", "verify", "correct")
+                                   for label, _ in estimates)
+    # No shot lost or counted twice: the journal's shots are the result's and the rig's (an
+    # acquisition cut by the kill was written ahead and asked for again by its msg_id).
     shots = sum(r["shots"] for r in records if r["type"] == "acquisition")
     assert result["shots"] == shots
     with _client(server.endpoint) as rig:
         truth = rig.truth(result["setpoints"])
-        assert rig.status().shots_total >= shots
+        assert rig.status().shots_total == shots
     # As good as an uninterrupted run: the kill lands at a moment set by timing, so this run's
     # noise realisation is not reproducible and the bar is the spread of uninterrupted
     # calibrations (0.957-1.000 of the true best over the benchmark's 20 scenarios, 0.961-0.999

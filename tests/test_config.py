@@ -41,7 +41,7 @@ def test_two_pi_velocity_of_the_demo() -> None:
         ("measurement", "ramsey_phases", 2, ">= 3"),
         ("bus", "timeout_s", -1.0, "bus.timeout_s"),
         ("bus", "endpoint", "localhost:5560", "ZeroMQ endpoint"),
-        ("search", "strategy", "bayes", "one of bayesian, grid, coordinate, random"),
+        ("search", "strategy", "bayes", "one of phase_lock, bayesian, grid, coordinate, random"),
         ("nominal", "coupling_hz", "49 kHz", "a finite number"),
         ("acceptance", "min_inversion", 2.0, "<= 1"),
     ],

@@ -42,6 +42,8 @@ def small_config() -> RunConfig:
                                         verification_shots_per_phase=600, resamples=200),
         search=dataclasses.replace(config.search, max_points=4, min_points=4, n_initial_points=3,
                                    refine_points=3),
+        lock=dataclasses.replace(config.lock, lock_shots_per_phase=300,
+                                 velocity_shots_per_phase=300),
         retune=dataclasses.replace(config.retune, max_points=2, n_initial_points=1,
                                    check_shots_per_phase=600, still_good_fraction=1.0),
     )
@@ -76,12 +78,16 @@ def _cut_copy(source: Path, target: Path, keep: int, partial: bool) -> None:
     (target / RESULT_NAME).unlink(missing_ok=True)
 
 
-@pytest.fixture(scope="module")
-def finished_runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
-    """One finished calibration and one retune that searched, on one simulated rig."""
+@pytest.fixture(scope="module", params=["phase_lock", "bayesian"])
+def finished_runs(request: pytest.FixtureRequest,
+                  tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
+    """One finished calibration and one retune that did not stop at its check, on one
+    simulated rig, with the phase lock (the default) and with the Gaussian-process search."""
     base = tmp_path_factory.mktemp("finished")
     rig = LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), 41)))
     config = small_config()
+    config = dataclasses.replace(config, search=dataclasses.replace(config.search,
+                                                                    strategy=request.param))
     store = base / "good.json"
     runner.calibrate(rig, config, base / "calibrate", store=store)
     rig.thermal_step(15e3)

@@ -80,10 +80,11 @@ def _journals(run: Path) -> list[Path]:
 
 
 def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
-                     sig: signal.Signals) -> None:
+                     sig: signal.Signals, strategy: str = "phase_lock") -> None:
     server = servers("--delay-s", "0.01", name=f"rig-{command}")
     store = tmp_path / "good.json"
-    config = tiny_config(tmp_path / "c.toml", server.endpoint, store)
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, store,
+                         search={"strategy": strategy})
     if command in ("retune", "track"):
         done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "first"))
         assert done.returncode == 0, done.stderr[-3000:]
@@ -140,42 +141,53 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
 
 # Every record kind of each command with every signal in the slow suite; in the default one,
 # each signal at least once per command on the kinds that matter most (a write-ahead request,
-# an estimate, a plan, the verification, a retune's check, a pause between track cycles). The
-# in-process matrix of tests/test_resume.py covers every record kind in the default suite.
+# an estimate, a velocity step, the verification, a retune's check and verdict, a pause between
+# track cycles, and the other strategies' final scan). The in-process matrix of
+# tests/test_resume.py covers every record kind of both kinds of stage in the default suite.
 CASES = {
-    "calibrate": ["start", "stage", "proposal", "measurement", "request", "acquisition",
-                  "estimate", "move", "decision:stop_search", "decision:refine_plan",
-                  "measurement:verify", "estimate:verify"],
-    "retune": ["measurement:check", "request", "acquisition", "estimate:check",
-               "decision:search", "proposal", "measurement:verify"],
-    "track": ["estimate:check", "between_cycles"],
+    ("calibrate", "phase_lock"): [
+        "start", "stage", "proposal", "measurement:lock", "request", "acquisition", "estimate",
+        "move", "measurement:velocity", "decision:stop_search", "measurement:verify",
+        "estimate:verify"],
+    ("calibrate", "bayesian"): ["proposal", "estimate", "decision:refine_plan", "estimate:verify"],
+    ("retune", "phase_lock"): ["measurement:check", "request", "estimate:check",
+                               "decision:verdict", "proposal", "estimate:correct"],
+    ("retune", "bayesian"): ["estimate:check", "decision:search", "proposal"],
+    ("track", "phase_lock"): ["estimate:check", "between_cycles"],
 }
-DEFAULT = [("calibrate", "request", signal.SIGKILL), ("calibrate", "estimate", signal.SIGINT),
-           ("calibrate", "decision:refine_plan", signal.SIGTERM),
-           ("calibrate", "measurement:verify", signal.SIGKILL),
-           ("retune", "estimate:check", signal.SIGTERM), ("retune", "proposal", signal.SIGINT),
-           ("track", "estimate:check", signal.SIGKILL), ("track", "between_cycles", signal.SIGINT)]
-COMPLETE = [(command, spec, sig) for command, specs in CASES.items() for spec in specs
-            for sig in SIGNALS if (command, spec, sig) not in DEFAULT
+DEFAULT = [("calibrate", "phase_lock", "request", signal.SIGKILL),
+           ("calibrate", "phase_lock", "estimate", signal.SIGINT),
+           ("calibrate", "phase_lock", "measurement:velocity", signal.SIGTERM),
+           ("calibrate", "phase_lock", "measurement:verify", signal.SIGKILL),
+           ("calibrate", "bayesian", "decision:refine_plan", signal.SIGTERM),
+           ("retune", "phase_lock", "estimate:check", signal.SIGTERM),
+           ("retune", "phase_lock", "decision:verdict", signal.SIGINT),
+           ("track", "phase_lock", "estimate:check", signal.SIGKILL),
+           ("track", "phase_lock", "between_cycles", signal.SIGINT)]
+COMPLETE = [(command, strategy, spec, sig) for (command, strategy), specs in CASES.items()
+            for spec in specs for sig in SIGNALS
+            if (command, strategy, spec, sig) not in DEFAULT
             and not (spec == "between_cycles" and sig == signal.SIGKILL)]
 
 
-def _case_id(case: tuple[str, str, signal.Signals]) -> str:
-    return f"{case[0]}-{case[1]}-{case[2].name}"
+def _case_id(case: tuple[str, str, str, signal.Signals]) -> str:
+    return f"{case[0]}-{case[1]}-{case[2]}-{case[3].name}"
 
 
 @pytest.mark.parametrize("case", DEFAULT, ids=_case_id)
 def test_killed_after_each_record_kind_the_run_resumes(tmp_path, servers, case):
     """Stopped after a record of this kind, the run resumes with the named command, finishes,
     keeps the journal's invariants and accounts for every shot the rig counted."""
-    _kill_and_resume(tmp_path, servers, *case)
+    command, strategy, spec, sig = case
+    _kill_and_resume(tmp_path, servers, command, spec, sig, strategy)
 
 
 @pytest.mark.slow
 @pytest.mark.parametrize("case", COMPLETE, ids=_case_id)
 def test_the_rest_of_the_kill_matrix(tmp_path, servers, case):
     """The other signals for every record kind (the complete kill matrix)."""
-    _kill_and_resume(tmp_path, servers, *case)
+    command, strategy, spec, sig = case
+    _kill_and_resume(tmp_path, servers, command, spec, sig, strategy)
 
 
 def test_a_rig_restarted_mid_run_is_noticed_and_never_filed(tmp_path, servers):
@@ -190,8 +202,8 @@ def test_a_rig_restarted_mid_run_is_noticed_and_never_filed(tmp_path, servers):
     process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
     try:
         wait_for_record(run / JOURNAL_NAME,
-                        lambda r: r["type"] == "acquisition" and r["label"] == "point"
-                        and r["point"] == 1, process=process)
+                        lambda r: r["type"] == "acquisition" and r["point"] == 1,
+                        process=process)
         first.kill()
         second = servers(name="after", bind=first.endpoint)
         out, err = process.communicate(timeout=300)
