@@ -84,6 +84,7 @@ import structlog
 
 from autotune import runner
 from autotune.config import (
+    LockConfig,
     MeasurementConfig,
     RetuneConfig,
     RunConfig,
@@ -133,7 +134,7 @@ THRESHOLD = 0.98
 LOWER_THRESHOLD = 0.97
 
 #: The strategies compared; every name must be a ``[search] strategy`` the loop knows.
-STRATEGIES: tuple[str, ...] = ("bayesian", "coordinate", "grid", "random")
+STRATEGIES: tuple[str, ...] = ("phase_lock", "bayesian", "coordinate", "grid", "random")
 #: The physics-guided strategy that the issue-10 targets are about.
 GUIDED = "phase_lock"
 #: Strategies whose calibrations are followed by a thermal step and a retune (when in the run).
@@ -412,6 +413,13 @@ def _settings_of(config: RunConfig) -> dict[str, Any]:
                         rounds=s.coordinate_rounds)
     elif s.strategy == "random":
         settings["n_points"] = s.max_points
+    elif s.strategy == "phase_lock":
+        lock = config.lock
+        settings.update(target_shortfall=lock.target_shortfall,
+                        lock_shots_per_phase=lock.lock_shots_per_phase,
+                        velocity_shots_per_phase=lock.velocity_shots_per_phase,
+                        bracket_step_hz=lock.bracket_step_hz,
+                        max_corrections=lock.max_corrections)
     else:
         settings.update(n_initial_points=s.n_initial_points, min_points=s.min_points)
         if s.strategy == "bayesian":
@@ -497,14 +505,16 @@ def _config_spec(config: RunConfig) -> dict[str, Any]:
     retune["half_widths"] = dict(config.retune.half_widths)
     return {"source": config.source, "raw": _plain(config.raw),
             "search": dataclasses.asdict(config.search),
-            "measurement": dataclasses.asdict(config.measurement), "retune": retune}
+            "measurement": dataclasses.asdict(config.measurement), "retune": retune,
+            "lock": dataclasses.asdict(config.lock)}
 
 
 def _config_from_spec(spec: Mapping[str, Any]) -> RunConfig:
     config = config_from_dict(spec["raw"], source=spec["source"])
     return dataclasses.replace(config, search=SearchConfig(**spec["search"]),
                                measurement=MeasurementConfig(**spec["measurement"]),
-                               retune=RetuneConfig(**spec["retune"]))
+                               retune=RetuneConfig(**spec["retune"]),
+                               lock=LockConfig(**spec.get("lock", dataclasses.asdict(config.lock))))
 
 
 def _plain(value: Any) -> Any:
