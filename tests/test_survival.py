@@ -79,6 +79,21 @@ def _journals(run: Path) -> list[Path]:
     return sorted(run.glob("cycle-*/" + JOURNAL_NAME))
 
 
+def _stop(process: subprocess.Popen[str], before: Callable[[], None],
+          send: Callable[[], None]) -> str:
+    """Run ``before`` (waits on the journal), then ``send`` (a signal); return stderr once the
+    process ended (bounded), killing it and closing its pipes whatever happened."""
+    try:
+        before()
+        send()
+        _, err = process.communicate(timeout=120)
+        return err
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+
+
 def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
                      sig: signal.Signals, strategy: str = "phase_lock") -> None:
     server = servers("--delay-s", "0.01", name=f"rig-{command}")
@@ -311,14 +326,9 @@ def test_a_dry_run_stopped_at_the_terminal_leaves_its_rig_safe(tmp_path):
     own session, so it is still there to confirm its safe set-points, and the message says so."""
     out = tmp_path / "dry"
     process = start_autotune("dry-run", "--out", str(out), start_new_session=True)
-    try:
-        wait_for_record(out / "calibrate" / JOURNAL_NAME, _matcher("estimate"), process=process)
-        os.killpg(process.pid, signal.SIGINT)
-        _, err = process.communicate(timeout=120)
-    finally:
-        if process.poll() is None:
-            process.kill()
-            process.wait()
+    err = _stop(process, lambda: wait_for_record(out / "calibrate" / JOURNAL_NAME,
+                                                 _matcher("estimate"), process=process),
+                lambda: os.killpg(process.pid, signal.SIGINT))
     assert process.returncode == 130, err[-3000:]
     assert "the rig confirmed its safe set-points" in err
     records = read_journal(out / "calibrate" / JOURNAL_NAME)
@@ -334,16 +344,13 @@ def test_a_stop_with_the_rig_gone_says_safe_was_not_confirmed(tmp_path, servers)
                          recovery={"step_retries": 30, "retry_wait_s": 0.2})
     run = tmp_path / "run"
     process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
-    try:
+
+    def rig_dies() -> None:
         wait_for_record(run / JOURNAL_NAME, _matcher("acquisition"), process=process)
         server.kill()
         wait_for_record(run / JOURNAL_NAME, _matcher("decision:retry"), process=process)
-        process.send_signal(signal.SIGTERM)
-        _, err = process.communicate(timeout=120)
-    finally:
-        if process.poll() is None:
-            process.kill()
-            process.wait()
+
+    err = _stop(process, rig_dies, lambda: process.send_signal(signal.SIGTERM))
     assert process.returncode == 130, err[-3000:]
     assert "did NOT confirm its safe set-points" in err
     assert any(r["type"] == "safe_failed" for r in read_journal(run / JOURNAL_NAME))
