@@ -91,6 +91,7 @@ from autotune.config import (
     StrategyKind,
     config_from_dict,
     load_config,
+    packaged_config,
 )
 from autotune.loop import build_strategy, search_space
 
@@ -123,8 +124,8 @@ __all__ = [
 ]
 
 REPO = Path(__file__).resolve().parents[1]
-DEFAULT_RUN_CONFIG = REPO / "configs" / "dry-run.toml"
-DEFAULT_RIG_CONFIG = REPO / "configs" / "sim-rig.toml"
+DEFAULT_RUN_CONFIG = packaged_config("dry-run.toml")
+DEFAULT_RIG_CONFIG = packaged_config("sim-rig.toml")
 DEFAULT_OUT = REPO / "benchmarks" / "results" / "latest.json"
 
 #: Fraction of the true best inversion that counts as "calibrated".

@@ -52,7 +52,7 @@ from typing import Any
 import structlog
 
 from autotune import __version__
-from autotune.config import RunConfig, load_config
+from autotune.config import RunConfig, load_config, packaged_config
 from autotune.errors import (
     AutotuneError,
     ConfigError,
@@ -81,7 +81,6 @@ CAUTION = (
     "precedence. Do not run it on a rig you are not authorised to operate."
 )
 
-_REPO_CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 _log = structlog.get_logger("autotune.cli")
 
 
@@ -243,7 +242,7 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
 
 EXIT_PROBE_FAILED = 1
 EXIT_PROBE_INCOMPLETE = 5
-_SIM_RIG_CONFIG = _REPO_CONFIGS / "sim-rig.toml"
+_SIM_RIG_CONFIG = packaged_config("sim-rig.toml")
 
 
 def _configure_server_logging(level: str) -> None:
@@ -568,8 +567,8 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
     from autotune import runner
 
     def body() -> int:
-        config_path = Path(ns.config) if ns.config else _REPO_CONFIGS / "dry-run.toml"
-        rig_config = Path(ns.rig_config) if ns.rig_config else _REPO_CONFIGS / "sim-rig.toml"
+        config_path = Path(ns.config) if ns.config else packaged_config("dry-run.toml")
+        rig_config = Path(ns.rig_config) if ns.rig_config else packaged_config("sim-rig.toml")
         for path, flag in ((config_path, "--config"), (rig_config, "--rig-config")):
             if not path.is_file():
                 raise ConfigError(str(path), "<file>", f"an existing file (pass {flag})",
@@ -787,7 +786,8 @@ def _parser() -> argparse.ArgumentParser:
                                      "endpoint cannot be bound, 2 for a bad configuration, flag "
                                      "or key file.")
     rig.add_argument("--config", type=Path, default=_SIM_RIG_CONFIG,
-                     help="simulated rig TOML (default: %(default)s)")
+                     help="simulated rig TOML (default: the packaged copy of "
+                          "configs/sim-rig.toml)")
     _add_server_arguments(rig, bind_default="tcp://127.0.0.1:5560")
     rig.add_argument("--seed", type=int, default=None,
                      help="seed of the rig's noise and of the faults (default: the config's "
@@ -847,8 +847,10 @@ def _parser() -> argparse.ArgumentParser:
 
     dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
                                          "compare with its truth")
-    dry.add_argument("--config", help="calibrate/retune TOML (default configs/dry-run.toml)")
-    dry.add_argument("--rig-config", help="simulated rig TOML (default configs/sim-rig.toml)")
+    dry.add_argument("--config", help="calibrate/retune TOML (default: the packaged copy of "
+                                       "configs/dry-run.toml)")
+    dry.add_argument("--rig-config", help="simulated rig TOML (default: the packaged copy of "
+                                           "configs/sim-rig.toml)")
     dry.add_argument("--seed", type=int, help="seed of the rig and the search")
     dry.add_argument("--out", help="folder for the stages' run folders")
     dry.add_argument("--thermal-step-hz", type=float, default=15e3,
