@@ -317,3 +317,18 @@ def test_display_off_and_plain_rate(tmp_path: Path) -> None:
                                  ("d", "start")):
                 display(type("P", (), {"label": label, "event": event})())
     assert out.read_text() == "progress: a\nprogress: d\n"
+
+
+def test_the_library_stays_free_of_display_code() -> None:
+    """Only the commands (cli.py, bench.py) and display.py know tqdm or the display; the loop,
+    the runner and the progress data never do (STYLE.md: a functional core, a thin shell)."""
+    import ast
+
+    users = set()
+    for path in (REPO / "autotune").glob("*.py"):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            names = ([a.name for a in node.names] if isinstance(node, ast.Import) else
+                     [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if any(n.split(".")[0] == "tqdm" or n == "autotune.display" for n in names):
+                users.add(path.name)
+    assert users == {"cli.py", "bench.py", "display.py"}, users
