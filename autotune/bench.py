@@ -92,8 +92,10 @@ from autotune.config import (
     StrategyKind,
     config_from_dict,
     load_config,
+    packaged_config,
 )
 from autotune.loop import build_strategy, search_space
+from autotune.progress import format_duration
 
 __all__ = [
     "THRESHOLD",
@@ -124,8 +126,8 @@ __all__ = [
 ]
 
 REPO = Path(__file__).resolve().parents[1]
-DEFAULT_RUN_CONFIG = REPO / "configs" / "dry-run.toml"
-DEFAULT_RIG_CONFIG = REPO / "configs" / "sim-rig.toml"
+DEFAULT_RUN_CONFIG = packaged_config("dry-run.toml")
+DEFAULT_RIG_CONFIG = packaged_config("sim-rig.toml")
 DEFAULT_OUT = REPO / "benchmarks" / "results" / "latest.json"
 
 #: Fraction of the true best inversion that counts as "calibrated".
@@ -1150,9 +1152,30 @@ def _note(progress: Callable[[str], None] | None, result: Mapping[str, Any]) -> 
                  f"final {c['final_ratio']:.3f}, {c['wall_time_s']:.0f} s")
 
 
+def _counting(progress: Callable[[str], None] | None, total: int
+              ) -> Callable[[str], None] | None:
+    """``progress`` with each finished job's line led by the jobs done of ``total`` and the
+    wall time to go at the pace so far."""
+    if progress is None:
+        return None
+    started = time.perf_counter()
+    done = 0
+
+    def note(line: str) -> None:
+        nonlocal done
+        done += 1
+        elapsed = time.perf_counter() - started
+        to_go = format_duration(elapsed / done * (total - done))
+        progress(f"[{done}/{total} jobs, {format_duration(elapsed)} wall, ~{to_go} to go] "
+                 f"{line.strip()}")
+
+    return note
+
+
 def _map(jobs: list[dict[str, Any]], plan: StudyPlan, scheduler: str | None,
          progress: Callable[[str], None] | None) -> tuple[list[dict[str, Any]], str]:
     """Run the jobs; results in the order of ``jobs``, and where they ran."""
+    progress = _counting(progress, len(jobs))
     texts = [json.dumps(job, allow_nan=False) for job in jobs]
     if scheduler is None and plan.workers <= 1:
         results = []
@@ -1535,6 +1558,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                         help="calibrate/retune TOML (default configs/dry-run.toml)")
     parser.add_argument("--rig-config", type=Path, default=DEFAULT_RIG_CONFIG,
                         help="demo simulated rig TOML (default configs/sim-rig.toml)")
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress (on a terminal one line updated in place, else one "
+                             "line per finished job); the table is still printed")
     size.add_argument("--show", type=Path, metavar="RESULT_JSON",
                       help="print the table of a result file written earlier; run nothing")
     argv = list(sys.argv[1:] if argv is None else argv)
@@ -1566,11 +1592,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=logging.WARNING)
     _quiet_logging()
     os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
+    # Progress is display only (autotune.display); the study calls it with one line per job.
+    from autotune.display import ProgressDisplay, progress_mode
+
     try:
-        study = run_study(plan, config_path=ns.config, rig_config_path=ns.rig_config,
-                          progress=lambda line: print(line, file=sys.stderr, flush=True),
-                          scheduler=ns.scheduler,
-                          command=" ".join(["python -m autotune.bench", *argv]))
+        with ProgressDisplay(progress_mode(quiet=ns.quiet), str, plain_every_s=0.0) as shown:
+            study = run_study(plan, config_path=ns.config, rig_config_path=ns.rig_config,
+                              progress=shown, scheduler=ns.scheduler,
+                              command=" ".join(["python -m autotune.bench", *argv]))
     except TimeoutError as exc:
         print(f"error: the study's jobs did not finish in time ({exc}); bound: --timeout-s "
               f"{plan.timeout_s:g}, cluster start {CLUSTER_START_TIMEOUT_S:g} s", file=sys.stderr)

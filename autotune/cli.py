@@ -37,6 +37,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import logging
+import math
 import shlex
 import signal
 import subprocess
@@ -52,7 +53,7 @@ from typing import Any
 import structlog
 
 from autotune import __version__
-from autotune.config import RunConfig, load_config
+from autotune.config import RunConfig, load_config, packaged_config
 from autotune.errors import (
     AutotuneError,
     ConfigError,
@@ -62,6 +63,7 @@ from autotune.errors import (
     RigError,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
+from autotune.display import ProgressDisplay, progress_mode, stage_progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
            "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]
@@ -81,14 +83,108 @@ CAUTION = (
     "precedence. Do not run it on a rig you are not authorised to operate."
 )
 
-_REPO_CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 _log = structlog.get_logger("autotune.cli")
 
 
 # -- logging -----------------------------------------------------------------------------
 
+#: Keys whose value is a set of set-points ({name: value}), shown in the set-point's units.
+_SETPOINT_KEYS = frozenset({"setpoints", "target", "applied", "from", "best_setpoints"})
+#: Keys left out of a console line: shown elsewhere on the line, or plumbing.
+_CONSOLE_HIDDEN = frozenset({"timestamp", "level", "event", "logger", "logger_name", "run",
+                             "stage", "command", "what", "reason", "exception", "msg_id",
+                             "_record", "_from_structlog"})
+
+
+def _setpoint_text(name: str, value: Any) -> str:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return f"{name} {value}"
+    if name == "velocity":
+        return f"{name} {value:.1f} m/s"
+    if name == "detuning":
+        return f"{name} {value / 1e3:+.2f} kHz"
+    return f"{name} {value:.6g}"
+
+
+def _console_value(key: str, value: Any) -> str | None:
+    """One value in the units a physicist reads; None to leave it out of the console line."""
+    if key in _SETPOINT_KEYS and isinstance(value, dict):
+        return ", ".join(_setpoint_text(k, v) for k, v in value.items())
+    if key == "counts" and isinstance(value, dict):
+        return " ".join(f"{k} {v}" for k, v in value.items())
+    if isinstance(value, dict | list | tuple | set):
+        return None  # nested data stays in the run folder's log.jsonl
+    if isinstance(value, bool) or not isinstance(value, float):
+        return str(value)
+    if key in ("velocity",) or key.endswith("_m_per_s"):
+        return f"{value:.1f} m/s"
+    if key == "detuning" or key.endswith("_hz"):
+        return f"{value / 1e3:+.2f} kHz"
+    if key.endswith("_rad"):
+        return f"{value / math.pi:.3f} pi"
+    if key.endswith("_s"):
+        return f"{value:.1f} s"
+    if "inversion" in key or key in ("predicted", "absorption", "stderr"):
+        return f"{value:.3f}"
+    return f"{value:.4g}"
+
+
+def _console_name(key: str) -> str:
+    """A key as words, its unit suffix dropped (the value carries the unit shown)."""
+    for suffix in ("_m_per_s", "_hz", "_rad", "_s"):
+        if key.endswith(suffix) and key != suffix[1:]:
+            key = key[: -len(suffix)]
+            break
+    return key.replace("_", " ")
+
+
+def _console_line(_logger: Any, _method: str, event_dict: dict[str, Any]) -> str:
+    """A log event as one short line: time, stage, what happened and why, values in units.
+
+    Every number is rounded for reading; the run folder's ``log.jsonl`` keeps full precision
+    and the nested details left out here.
+    """
+    stamp = str(event_dict.get("timestamp", ""))
+    clock = stamp[11:19] if len(stamp) >= 19 else stamp
+    level = str(event_dict.get("level", "info"))
+    stage = event_dict.get("stage") or event_dict.get("command")
+    event = str(event_dict.get("event", ""))
+    parts = [clock]
+    if level not in ("info", "debug"):
+        parts.append(level.upper())
+    if stage:
+        parts.append(f"{stage}:")
+    if event == "decision":
+        head = f"{event_dict.get('what')}: {event_dict.get('reason')}"
+    elif event == "estimate" and "inversion" in event_dict:
+        interval = ""
+        if "inversion_low" in event_dict and "inversion_high" in event_dict:
+            interval = (f" [{event_dict['inversion_low']:.3f}, "
+                        f"{event_dict['inversion_high']:.3f}]")
+        head = (f"{event_dict.get('label')} {event_dict.get('point')}: inversion "
+                f"{event_dict['inversion']:.3f}{interval}")
+    else:
+        head = event
+    shown = {"inversion", "inversion_low", "inversion_high", "label", "point"} \
+        if event == "estimate" else set()
+    details = []
+    for key, value in event_dict.items():
+        if key in _CONSOLE_HIDDEN or key in shown:
+            continue
+        text = _console_value(key, value)
+        if text is not None:
+            details.append(text if key in _SETPOINT_KEYS else f"{_console_name(key)} {text}")
+    line = " ".join(parts + [head])
+    if details:
+        line += " (" + "; ".join(details) + ")"
+    if event_dict.get("exception"):
+        line += "\n" + str(event_dict["exception"])
+    return line
+
+
 def _configure_logging(level: str) -> None:
-    """Readable lines on stderr; a JSON file handler is added per run folder."""
+    """Short readable lines on stderr at ``level``; a JSON file handler (every level, full
+    precision) is added per run folder."""
     shared: list[Any] = [
         structlog.contextvars.merge_contextvars,
         structlog.stdlib.add_log_level,
@@ -102,14 +198,20 @@ def _configure_logging(level: str) -> None:
         cache_logger_on_first_use=False,
     )
     handler = logging.StreamHandler(sys.stderr)
+    handler.setLevel(level.upper())
     handler.setFormatter(structlog.stdlib.ProcessorFormatter(
         processors=[structlog.stdlib.ProcessorFormatter.remove_processors_meta,
-                    structlog.dev.ConsoleRenderer(colors=False)],
+                    structlog.processors.format_exc_info,
+                    _console_line],
         foreign_pre_chain=shared,
     ))
     root = logging.getLogger()
     root.handlers[:] = [handler]
-    root.setLevel(level.upper())
+    # The root passes everything of autotune on: the console handler filters by --log-level,
+    # the run folder's JSON file keeps the debug lines (moves, acquisitions) too.
+    root.setLevel(logging.DEBUG)
+    for noisy in ("matplotlib", "PIL", "asyncio", "distributed", "fsspec"):
+        logging.getLogger(noisy).setLevel(logging.WARNING)
     _configure_logging.shared = shared  # type: ignore[attr-defined]
 
 
@@ -124,6 +226,14 @@ def _log_to_run_folder(run_dir: Path) -> logging.Handler:
     ))
     logging.getLogger().addHandler(handler)
     return handler
+
+
+# -- progress ----------------------------------------------------------------------------
+
+def _progress_display(ns: argparse.Namespace) -> ProgressDisplay:
+    """The progress display of a stage, as the command's options ask (``--quiet``: none); use
+    it as a context manager and give it to the run as its progress observer."""
+    return ProgressDisplay(progress_mode(quiet=getattr(ns, "quiet", False)), stage_progress_text)
 
 
 # -- signals -----------------------------------------------------------------------------
@@ -243,7 +353,7 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
 
 EXIT_PROBE_FAILED = 1
 EXIT_PROBE_INCOMPLETE = 5
-_SIM_RIG_CONFIG = _REPO_CONFIGS / "sim-rig.toml"
+_SIM_RIG_CONFIG = packaged_config("sim-rig.toml")
 
 
 def _configure_server_logging(level: str) -> None:
@@ -340,7 +450,7 @@ def _cmd_rig(ns: argparse.Namespace) -> int:
     from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig
 
-    _configure_server_logging(ns.server_log_level or ns.log_level)
+    _configure_server_logging(ns.server_log_level or _console_level(ns))
     log = structlog.get_logger("autotune.rig").bind(bind=ns.bind)
     print("serving the SIMULATED rig: no hardware is touched", file=sys.stderr)
     try:
@@ -367,7 +477,7 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
     from autotune.served import ServedDriver
     from autotune.server import FaultConfig
 
-    _configure_server_logging(ns.server_log_level or ns.log_level)
+    _configure_server_logging(ns.server_log_level or _console_level(ns))
     log = structlog.get_logger("autotune.serve").bind(config=str(ns.config))
     try:
         config = load_driver_config(ns.config)
@@ -525,7 +635,8 @@ def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
             started.append(run_dir)
             handler = _log_to_run_folder(run_dir)
             try:
-                result = runner.execute(prepared, rig, stop=stop)
+                with _progress_display(ns) as progress:
+                    result = runner.execute(prepared, rig, stop=stop, progress=progress)
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()
@@ -568,8 +679,8 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
     from autotune import runner
 
     def body() -> int:
-        config_path = Path(ns.config) if ns.config else _REPO_CONFIGS / "dry-run.toml"
-        rig_config = Path(ns.rig_config) if ns.rig_config else _REPO_CONFIGS / "sim-rig.toml"
+        config_path = Path(ns.config) if ns.config else packaged_config("dry-run.toml")
+        rig_config = Path(ns.rig_config) if ns.rig_config else packaged_config("sim-rig.toml")
         for path, flag in ((config_path, "--config"), (rig_config, "--rig-config")):
             if not path.is_file():
                 raise ConfigError(str(path), "<file>", f"an existing file (pass {flag})",
@@ -640,8 +751,9 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
             prepared = runner.prepare(name, rig, config, run_dir, store=store)
             handler = _log_to_run_folder(run_dir)
             try:
-                result = runner.execute(prepared, rig, stop=stop,
-                                        extra={"dry_run": {"endpoint": endpoint}})
+                with _progress_display(ns) as progress:
+                    result = runner.execute(prepared, rig, stop=stop, progress=progress,
+                                            extra={"dry_run": {"endpoint": endpoint}})
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()
@@ -777,8 +889,7 @@ def _parser() -> argparse.ArgumentParser:
                     + CAUTION,
     )
     parser.add_argument("--version", action="version", version=f"autotune {__version__}")
-    parser.add_argument("--log-level", default="info",
-                        choices=["debug", "info", "warning", "error"], help="terminal log level")
+    _add_output_options(parser, log_level=True, default=None)
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     rig = sub.add_parser("rig", help="serve the bundled simulated rig over the bus",
@@ -787,7 +898,8 @@ def _parser() -> argparse.ArgumentParser:
                                      "endpoint cannot be bound, 2 for a bad configuration, flag "
                                      "or key file.")
     rig.add_argument("--config", type=Path, default=_SIM_RIG_CONFIG,
-                     help="simulated rig TOML (default: %(default)s)")
+                     help="simulated rig TOML (default: the packaged copy of "
+                          "configs/sim-rig.toml)")
     _add_server_arguments(rig, bind_default="tcp://127.0.0.1:5560")
     rig.add_argument("--seed", type=int, default=None,
                      help="seed of the rig's noise and of the faults (default: the config's "
@@ -847,8 +959,10 @@ def _parser() -> argparse.ArgumentParser:
 
     dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
                                          "compare with its truth")
-    dry.add_argument("--config", help="calibrate/retune TOML (default configs/dry-run.toml)")
-    dry.add_argument("--rig-config", help="simulated rig TOML (default configs/sim-rig.toml)")
+    dry.add_argument("--config", help="calibrate/retune TOML (default: the packaged copy of "
+                                       "configs/dry-run.toml)")
+    dry.add_argument("--rig-config", help="simulated rig TOML (default: the packaged copy of "
+                                           "configs/sim-rig.toml)")
     dry.add_argument("--seed", type=int, help="seed of the rig and the search")
     dry.add_argument("--out", help="folder for the stages' run folders")
     dry.add_argument("--thermal-step-hz", type=float, default=15e3,
@@ -876,7 +990,30 @@ def _parser() -> argparse.ArgumentParser:
     rep.add_argument("--out", metavar="DIR",
                      help="folder for the figures and report.html (default RUN_DIR)")
     rep.set_defaults(handler=_cmd_report)
+    # Accepted after the command too (`autotune calibrate --config F --quiet`); rig and serve
+    # have their own --log-level (their JSON lines).
+    for name, command in sub.choices.items():
+        _add_output_options(command, log_level=name not in ("rig", "serve"),
+                            default=argparse.SUPPRESS)
     return parser
+
+
+def _add_output_options(parser: argparse.ArgumentParser, *, log_level: bool,
+                        default: Any) -> None:
+    if log_level:
+        parser.add_argument("--log-level", default=default,
+                            choices=["debug", "info", "warning", "error"],
+                            help="terminal log level (default: info; warning with --quiet); "
+                                 "the run folder's log.jsonl keeps every level")
+    parser.add_argument("--quiet", action="store_true",
+                        default=False if default is None else default,
+                        help="no progress line, and only warnings and errors in the log; "
+                             "results are still printed")
+
+
+def _console_level(ns: argparse.Namespace) -> str:
+    """The terminal log level: --log-level if given, else warning with --quiet, else info."""
+    return ns.log_level or ("warning" if ns.quiet else "info")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -884,7 +1021,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = _parser()
     ns = parser.parse_args(argv)
     if getattr(ns, "command", None) not in ("rig", "serve"):
-        _configure_logging(ns.log_level if ns.command != "probe" else "warning")
+        _configure_logging(_console_level(ns) if ns.command != "probe" or ns.log_level
+                           else "warning")
     return int(ns.handler(ns))
 
 

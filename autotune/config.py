@@ -45,7 +45,35 @@ __all__ = [
     "load_config",
     "config_from_dict",
     "nominal_two_pi_velocity",
+    "PACKAGED_CONFIGS",
+    "packaged_config",
 ]
+
+#: The configuration files shipped inside the package (``autotune/data``): what a command reads
+#: by default, so that an installed ``autotune`` runs from any folder. The repository's
+#: ``configs/`` holds identical copies (tests/test_packaging.py keeps them so).
+PACKAGED_CONFIGS = ("dry-run.toml", "sim-rig.toml", "sim-driver.toml", "calibrate.toml")
+
+_DATA_DIR = Path(__file__).resolve().parent / "data"
+
+
+def packaged_config(name: str) -> Path:
+    """Path of a configuration file shipped with the package.
+
+    Parameters
+    ----------
+    name : str
+        One of :data:`PACKAGED_CONFIGS` (e.g. ``"dry-run.toml"``).
+
+    Raises
+    ------
+    ValueError
+        ``name`` is not a packaged configuration.
+    """
+    if name not in PACKAGED_CONFIGS:
+        raise ValueError(f"name: expected one of {', '.join(PACKAGED_CONFIGS)}, got {name!r}")
+    return _DATA_DIR / name
+
 
 StrategyKind = Literal["phase_lock", "bayesian", "grid", "coordinate", "random"]
 

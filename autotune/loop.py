@@ -50,6 +50,7 @@ from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
 from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
+from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress
 from autotune.search import Dimension, PointResult, SearchSpace, Strategy, make_strategy
 
 __all__ = [
@@ -314,6 +315,29 @@ class _Measurement:
         return bool(self.counts or self.pending)
 
 
+#: Measurement labels that do not count against the point budget of a search.
+_NOT_SEARCH_STEPS = ("check", "verify", "correct", "refine")
+
+
+@dataclass
+class _ProgressPlan:
+    """What the progress observer is told about the stage: budgets and what was measured."""
+
+    stage: str
+    budget: Budget
+    step_shots: int
+    verify_shots: int
+    refine_points: int = 0
+    steps: int = 0
+    refines: int = 0
+    best: tuple[InversionEstimate, dict[str, float]] | None = None
+
+    def note(self, estimate: InversionEstimate, setpoints: Mapping[str, float]) -> None:
+        """Keep the highest inversion measured so far."""
+        if self.best is None or estimate.inversion > self.best[0].inversion:
+            self.best = (estimate, {k: float(v) for k, v in setpoints.items()})
+
+
 class Session:
     """One stage's conversation with the rig: guarded moves, bounded retries, journaled steps.
 
@@ -337,11 +361,16 @@ class Session:
         Set by the CLI's signal handler; checked between acquisitions.
     sleep : callable
         Wall-clock wait used between retries (injectable for tests).
+    progress : callable, optional
+        A progress observer (:mod:`autotune.progress`), told a
+        :class:`~autotune.progress.StageProgress` at the stage's start, after every
+        acquisition and after every estimate; never journaled.
     """
 
     def __init__(self, rig: Rig, config: RunConfig, journal: Journal, description: Any,
                  stop: threading.Event | None = None,
-                 sleep: Callable[[float], None] = time.sleep) -> None:
+                 sleep: Callable[[float], None] = time.sleep,
+                 progress: ProgressObserver | None = None) -> None:
         self.rig = rig
         self.config = config
         self.journal = journal
@@ -355,13 +384,99 @@ class Session:
         self.current: dict[str, float] = {}
         self.clock = 0.0
         self.log = _log.bind(run=journal.run_dir.name)
+        self.progress = progress
+        self._plan: _ProgressPlan | None = None
 
     # -- recording -----------------------------------------------------------------------
 
-    def decide(self, what: str, reason: str, **fields: Any) -> None:
-        """Record a decision and its reason in the journal and the log."""
+    def decide(self, what: str, reason: str, *, level: str = "info", **fields: Any) -> None:
+        """Record a decision and its reason in the journal and the log (at ``level``)."""
         self.journal.append("decision", what=what, reason=reason, **fields)
-        self.log.info("decision", what=what, reason=reason, **fields)
+        getattr(self.log, level)("decision", what=what, reason=reason, **fields)
+
+    # -- progress (display only, never journaled) ----------------------------------------
+
+    def plan_progress(self, stage: str, budget: Budget, *, step_shots: int, verify_shots: int,
+                      refine_points: int = 0,
+                      measured: Iterable[tuple[str, Mapping[str, float], InversionEstimate]] = ()
+                      ) -> None:
+        """Tell the progress observer what this stage is (and, on a resume, what it did).
+
+        Parameters
+        ----------
+        stage : str
+            ``"calibrate"`` or ``"retune"``.
+        budget : Budget
+            The search's budget.
+        step_shots : int
+            Shots of one search step (both fields, every phase), for the time to go.
+        verify_shots : int
+            Shots of the verification (both fields, every phase).
+        refine_points : int
+            Points of a final detuning scan after the search (0: none).
+        measured : iterable of (label, set-points, estimate)
+            Measurements already estimated (a resume): the steps done and the best so far.
+        """
+        self.log = self.log.bind(stage=stage)
+        plan = _ProgressPlan(stage, budget, step_shots, verify_shots, refine_points)
+        for label, setpoints, estimate in measured:
+            plan.note(estimate, setpoints)
+            if label == "refine":
+                plan.refines += 1
+            elif label not in _NOT_SEARCH_STEPS:
+                plan.steps += 1
+        self._plan = plan
+        self._tell_progress("start", None)
+
+    def _tell_progress(self, event: str, m: _Measurement | None) -> None:
+        plan = self._plan
+        if self.progress is None or plan is None:
+            return
+        per_measurement = 2 * len(self.phases)
+        planned = per_measurement * m.shots_per_phase if m is not None else 0
+        taken = min(len(m.counts) * m.shots_per_phase, planned) if m is not None else 0
+        best = plan.best
+        try:
+            self.progress(StageProgress(
+                stage=plan.stage, event=event, label=m.label if m is not None else "",  # type: ignore[arg-type]
+                step=plan.steps, max_steps=plan.budget.max_points,
+                shots=self.tally.shots, max_shots=plan.budget.max_shots,
+                rig_time_s=self.tally.rig_time_s, max_rig_time_s=plan.budget.max_rig_time_s,
+                measurement_shots=taken, measurement_shots_planned=planned,
+                best_inversion=None if best is None else best[0].inversion,
+                best_interval=None if best is None else (best[0].inversion_low,
+                                                         best[0].inversion_high),
+                best_setpoints={} if best is None else dict(best[1]),
+                confidence=self.config.measurement.confidence,
+                remaining_s=self._remaining_shots(m, planned - taken) / self.repetition_rate_hz,
+                repetition_rate_hz=self.repetition_rate_hz, clock_s=self.clock))
+        except Exception as exc:  # noqa: BLE001 - a display must never stop a run
+            self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
+            self.progress = None
+
+    def _remaining_shots(self, m: _Measurement | None, left_here: int) -> float:
+        """Shots still to go at most: this measurement's rest, then the search budget's rest,
+        a final detuning scan and one verification while the search goes on."""
+        plan = self._plan
+        assert plan is not None
+        label = m.label if m is not None else ""
+        if label in SEARCH_DONE_LABELS:
+            return float(left_here)
+        unfinished = 1 if m is not None and left_here > 0 else 0
+        refine_left = plan.refine_points - plan.refines
+        if label == "refine":
+            search = 0.0
+            refine_left -= unfinished
+        else:
+            steps_left = plan.budget.max_points - plan.steps
+            if label not in _NOT_SEARCH_STEPS:
+                steps_left -= unfinished
+            budget = plan.budget
+            search = min(max(steps_left, 0) * plan.step_shots,
+                         max(budget.max_shots - self.tally.shots - left_here, 0),
+                         max(budget.max_rig_time_s - self.tally.rig_time_s, 0.0)
+                         * self.repetition_rate_hz)
+        return left_here + search + max(refine_left, 0) * plan.step_shots + plan.verify_shots
 
     # -- guarded rig calls ----------------------------------------------------------------
 
@@ -468,7 +583,7 @@ class Session:
         steps = plan_moves(self.current, target, self.limits)
         if len(steps) > 1:
             self.decide("split_move", f"{reason}: move needs {len(steps)} steps within max_step",
-                        target=dict(target))
+                        target=dict(target), level="debug")
         for step in steps:
             self._check_stop()
             for name, value in step.items():
@@ -485,6 +600,7 @@ class Session:
             self.clock = float(applied.clock)
             self.journal.append("move", setpoints=step, applied=self.current, clock=applied.clock,
                                 reason=reason, msg_id=msg_id)
+            self.log.debug("move", setpoints=step, reason=reason)
 
     def go_safe(self, reason: str) -> tuple[bool, str]:
         """Send the rig to its safe set-points; record it. Never raises past a rig error.
@@ -527,8 +643,16 @@ class Session:
         self.journal.append("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
                             clock_s=m.clock_s, estimate=estimate.to_dict())
         self.log.info("estimate", label=m.label, point=m.point, setpoints=m.setpoints,
-                      inversion=round(estimate.inversion, 4),
-                      stderr=round(estimate.inversion_stderr, 4))
+                      inversion=estimate.inversion, inversion_low=estimate.inversion_low,
+                      inversion_high=estimate.inversion_high,
+                      phase_shift_rad=estimate.phase_shift, absorption=estimate.absorption)
+        if self._plan is not None:
+            self._plan.note(estimate, m.setpoints)
+            if m.label == "refine":
+                self._plan.refines += 1
+            elif m.label not in _NOT_SEARCH_STEPS:
+                self._plan.steps += 1
+        self._tell_progress("estimate", m)
         return estimate
 
     def _acquire_one(self, m: _Measurement, field_state: str, j: int, phase: float) -> None:
@@ -583,6 +707,10 @@ class Session:
             t_start=float(acq.t_start), t_end=float(acq.t_end),
             setpoints={k: float(v) for k, v in acq.setpoints.items()}, msg_id=msg_id,
         )
+        self.log.debug("acquisition", label=m.label, point=m.point, field=field_state,
+                       phase_index=j, shots=int(acq.shots),
+                       counts={"e": counts[0], "g": counts[1], "i": counts[2]})
+        self._tell_progress("acquisition", m)
 
     def fringe(self, m: _Measurement, field_state: str) -> FringeData:
         """The counts of one field state of ``m`` as fringe data."""
@@ -661,6 +789,13 @@ def _replay(records: Iterable[Mapping[str, Any]]) -> _Replayed:
         elif kind == "decision":
             out.decisions[str(rec.get("what"))] = dict(rec)
     return out
+
+
+def _measured(replayed: _Replayed) -> list[tuple[str, dict[str, float], InversionEstimate]]:
+    """The estimates a journal holds, as (label, set-points, estimate), in their order."""
+    return [(key[0], dict(replayed.estimates[key]["setpoints"]),
+             InversionEstimate.from_dict(replayed.estimates[key]["estimate"]))
+            for key in replayed.estimate_order]
 
 
 def _tally_from(records: Iterable[Mapping[str, Any]]) -> _Tally:
@@ -792,6 +927,12 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     shots = config.measurement.shots_per_phase
     long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
     wanted_shots = {"check": long_shots, "verify": long_shots}
+    per_measurement = 2 * len(session.phases)
+    session.plan_progress(stage, budget, step_shots=per_measurement * shots,
+                          verify_shots=per_measurement * long_shots,
+                          refine_points=config.search.refine_points
+                          if refine and "detuning" in box else 0,
+                          measured=_measured(replayed))
     for key, m in measurements.items():
         want = wanted_shots.get(m.label, shots)
         if key not in replayed.estimates and not m.started and m.shots_per_phase != want:
@@ -1026,6 +1167,10 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     lock = PhaseLockSearch(search_space(box), seed=child_seed(seed, stage_code, 0), start=start,
                            settings=lock_settings(config, box), prior=lock_prior)
     phases = len(session.phases)
+    session.plan_progress(stage, budget,
+                          step_shots=2 * phases * max(config.lock.lock_shots_per_phase,
+                                                      config.lock.velocity_shots_per_phase),
+                          verify_shots=2 * phases * verify_shots, measured=_measured(replayed))
 
     def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
         estimate = InversionEstimate.from_dict(rec["estimate"])

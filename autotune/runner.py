@@ -67,6 +67,7 @@ from autotune.loop import (
     run_guided_stage,
     run_stage,
 )
+from autotune.progress import ProgressObserver
 from autotune.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
@@ -491,8 +492,12 @@ def _carried_prior(outcome: StageOutcome, prepared: Prepared) -> dict[str, Any] 
 
 def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None,
             extra: Mapping[str, Any] | None = None,
-            observer: Callable[..., None] | None = None) -> dict[str, Any]:
+            observer: Callable[..., None] | None = None,
+            progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Run a prepared stage: open the run folder, run, write the result and the last good.
+
+    ``progress`` is a progress observer (:mod:`autotune.progress`): told where the stage
+    stands after every acquisition and estimate, for a display; never journaled.
 
     On a stop signal or any error after the folder exists the rig is sent to its safe
     set-points (the outcome is on the raised :class:`Interrupted` as ``safe``), the journal gets
@@ -520,7 +525,8 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
     try:
-        session = Session(rig, config, journal, prepared.description, stop=stop)
+        session = Session(rig, config, journal, prepared.description, stop=stop,
+                          progress=progress)
         if prepared.changes:
             session.decide("config_changed", "resumed with a changed configuration: "
                            + "; ".join(f"{k}: {old!r} -> {new!r}"
@@ -601,15 +607,17 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
 
 def _run(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool,
          stop: threading.Event | None, store: Path | None, extra: Mapping[str, Any] | None,
-         observer: Callable[..., None] | None) -> dict[str, Any]:
+         observer: Callable[..., None] | None, progress: ProgressObserver | None
+         ) -> dict[str, Any]:
     prepared = prepare(command, rig, config, run_dir, resume=resume, store=store)
-    return execute(prepared, rig, stop=stop, extra=extra, observer=observer)
+    return execute(prepared, rig, stop=stop, extra=extra, observer=observer, progress=progress)
 
 
 def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
               stop: threading.Event | None = None, store: Path | None = None,
               extra: Mapping[str, Any] | None = None,
-              observer: Callable[..., None] | None = None) -> dict[str, Any]:
+              observer: Callable[..., None] | None = None,
+              progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Full calibration over the configured box; returns (and writes) the result.
 
     Parameters
@@ -630,22 +638,25 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
         More manifest entries (the dry run records its scenario here).
     observer : callable, optional
         Passed to :func:`autotune.loop.run_stage` (benchmark studies).
+    progress : callable, optional
+        A progress observer (:mod:`autotune.progress`), for a display; never journaled.
     """
     return _run("calibrate", rig, config, run_dir, resume=resume, stop=stop, store=store,
-                extra=extra, observer=observer)
+                extra=extra, observer=observer, progress=progress)
 
 
 def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
            stop: threading.Event | None = None, store: Path | None = None,
            extra: Mapping[str, Any] | None = None,
-           observer: Callable[..., None] | None = None) -> dict[str, Any]:
+           observer: Callable[..., None] | None = None,
+           progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Check the last good set-points; search a narrowed box only if they no longer hold.
 
     Parameters are those of :func:`calibrate`; ``store`` is read first and replaced only by an
     accepted new setting.
     """
     return _run("retune", rig, config, run_dir, resume=resume, stop=stop, store=store,
-                extra=extra, observer=observer)
+                extra=extra, observer=observer, progress=progress)
 
 
 def unfinished(records: Sequence[Mapping[str, Any]]) -> bool:

@@ -1,0 +1,104 @@
+"""Progress of a running stage as plain numbers, for whoever displays it.
+
+The loop (:class:`autotune.loop.Session`) calls a *progress observer* with a
+:class:`StageProgress` when a stage starts, after every acquisition and after every estimate.
+It is display data only: it never enters the journal, and an observer that raises is dropped
+(with one warning in the log) rather than allowed to stop a run. Rendering lives in the CLI;
+nothing here writes to a terminal.
+
+Units are SI (shots, s, inversion as a fraction); a display converts them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Literal
+
+__all__ = ["StageProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration"]
+
+#: Measurement labels that come after the search has stopped: only their own shots are left.
+SEARCH_DONE_LABELS = ("verify", "correct")
+
+
+@dataclass(frozen=True)
+class StageProgress:
+    """Where a calibration or a retune stands.
+
+    Attributes
+    ----------
+    stage : str
+        ``"calibrate"`` or ``"retune"``.
+    event : {"start", "acquisition", "estimate"}
+        What just happened: the stage began (or resumed), an acquisition's counts arrived, or
+        a measurement was estimated.
+    label : str
+        Label of the measurement in progress or just finished (``check``, ``lock``, ``point``,
+        ``refine``, ``verify``, ...), ``""`` at the start.
+    step : int
+        Search steps finished (those counted against the point budget).
+    max_steps : int
+        The point budget of the search.
+    shots : int
+        Shots this stage has taken so far (resumed runs included).
+    max_shots : int
+        The shot budget of the search.
+    rig_time_s : float
+        Rig time those shots took (s).
+    max_rig_time_s : float
+        The rig-time budget of the search (s).
+    measurement_shots : int
+        Shots taken of the measurement in progress (or just finished).
+    measurement_shots_planned : int
+        Shots that measurement takes when complete (both fields, every Ramsey phase).
+    best_inversion : float or None
+        Highest inversion measured in this stage so far.
+    best_interval : (float, float) or None
+        Its interval at the configured confidence.
+    best_setpoints : Mapping[str, float]
+        Where it was measured (m/s, Hz); empty before the first estimate.
+    confidence : float
+        Level of that interval.
+    remaining_s : float
+        Rig time still to go at most (s), at the rig's repetition rate: the rest of the
+        measurement in progress, then, while searching, the rest of the budget and one
+        verification.
+    repetition_rate_hz : float
+        The rig's samples per second.
+    clock_s : float
+        The rig's clock at the last reply (s).
+    """
+
+    stage: str
+    event: Literal["start", "acquisition", "estimate"]
+    label: str
+    step: int
+    max_steps: int
+    shots: int
+    max_shots: int
+    rig_time_s: float
+    max_rig_time_s: float
+    measurement_shots: int
+    measurement_shots_planned: int
+    best_inversion: float | None
+    best_interval: tuple[float, float] | None
+    best_setpoints: Mapping[str, float] = field(default_factory=dict)
+    confidence: float = 0.95
+    remaining_s: float = 0.0
+    repetition_rate_hz: float = 0.0
+    clock_s: float = 0.0
+
+
+#: A callable told every :class:`StageProgress` of a stage.
+ProgressObserver = Callable[[StageProgress], None]
+
+
+def format_duration(seconds: float) -> str:
+    """A duration as a person reads it: ``"45 s"``, ``"12 min"``, ``"2 h 05 min"``."""
+    seconds = max(0.0, float(seconds))
+    if seconds < 90.0:
+        return f"{seconds:.0f} s"
+    minutes = round(seconds / 60.0)
+    if minutes < 60:
+        return f"{minutes} min"
+    return f"{minutes // 60} h {minutes % 60:02d} min"
