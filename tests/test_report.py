@@ -28,6 +28,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+
+from cli_helpers import to_toml as _to_toml
 from matplotlib.contour import ContourSet
 from scipy import stats
 
@@ -46,15 +48,6 @@ def _autotune(*args: str, timeout: float = RUN_TIMEOUT_S) -> subprocess.Complete
                           text=True, timeout=timeout, cwd=REPO, stdin=subprocess.DEVNULL)
 
 
-def _to_toml(data: dict[str, Any], prefix: str = "") -> str:
-    scalars, tables = [], []
-    for key, value in data.items():
-        if isinstance(value, dict):
-            tables.append(_to_toml(value, f"{prefix}{key}."))
-        else:
-            scalars.append(f"{key} = {json.dumps(value)}")
-    head = f"[{prefix[:-1]}]\n" if prefix and scalars else ""
-    return head + "\n".join(scalars) + ("\n\n" if scalars else "") + "".join(tables)
 
 
 def _config(path: Path, endpoint: str, store: Path) -> Path:

@@ -15,6 +15,8 @@ import tomllib
 from pathlib import Path
 
 import pytest
+
+from cli_helpers import to_toml as _toml
 from rig_process import REPO, STOP_TIMEOUT_S
 
 from autotune.bus import BusClient, CurveClientKeys
@@ -155,15 +157,6 @@ def test_simulated_rig_calibrated_through_the_stark_map(serve, tmp_path: Path):
     assert described.max_step == pytest.approx(0.05 * 2 * abs(K) * GAP * math.sqrt(BIAS**2 + 150e3 / K) / GAP**2)
 
 
-def _toml(data: dict, prefix: str = "") -> str:
-    scalars, tables = [], []
-    for key, value in data.items():
-        if isinstance(value, dict):
-            tables.append(_toml(value, f"{prefix}{key}."))
-        else:
-            scalars.append(f"{key} = {json.dumps(value)}")
-    head = f"[{prefix[:-1]}]\n" if prefix and scalars else ""
-    return head + "\n".join(scalars) + ("\n\n" if scalars else "") + "".join(tables)
 
 
 def test_readme_rig_command_serves_until_sigterm():
