@@ -1099,8 +1099,7 @@ class _Night:
         result: dict[str, Any] = {
             "command": "track", "status": status, "accepted": status == "ended",
             "stop_reason": reason, "left_at": where,
-            "setpoints": dict(state.get("held") or self.session.current),
-            "points": int(counts.get("checks", 0)), **counts,
+            "setpoints": dict(state.get("held") or self.session.current), **counts,
             "shots": self.ledger.shots,
             "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s,
             "night_rig_time_s": night, "holding_beam_s": self.ledger.holding_beam_s,

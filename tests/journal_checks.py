@@ -103,8 +103,9 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
 
     - every ``hold`` record follows the estimate of its check, once per check, in order, and
       carries its action, reason, numbers and the night's state (statistics >= 0);
-    - every correction is a ``correct`` decision with ``from``/``to`` set-points, followed by the
-      moves that reach ``to`` before the next check is measured or the night stops;
+    - every correction is a ``correct`` decision with ``from``/``to`` set-points, and the rig is
+      at ``to`` (a move reaching it, or the next check filed there) before the next check is
+      measured or the night stops;
     - every alarm is followed by a stage (a ``retune`` or ``calibrate`` decision), or by the
       night's stop (its end came first);
     - every stage begun (a ``retune``/``calibrate`` decision with its index) has its records
@@ -124,9 +125,16 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
         if kind == "estimate" and rec["label"] == HOLD:
             hold_estimates[rec["point"]] = position
         elif kind == "measurement" and rec["label"] == HOLD:
-            assert pending_correction is None, (
-                f"record {rec['seq']}: check {rec['point']} measured before the correction of "
-                f"check {pending_correction['point']} reached its set-points")
+            if pending_correction is not None:
+                # The rig may have applied the correction just before a kill, with no move
+                # record: the next check is then opened (and, by the invariant above, filed)
+                # at the corrected set-points.
+                want = pending_correction["to"]
+                assert all(abs(rec["setpoints"][n] - v) <= 1e-6 * max(1.0, abs(v))
+                           for n, v in want.items()), (
+                    f"record {rec['seq']}: check {rec['point']} measured at {rec['setpoints']} "
+                    f"before the correction of check {pending_correction['point']} reached {want}")
+                pending_correction = None
         elif kind == "hold":
             point = rec["point"]
             assert point in hold_estimates, f"record {rec['seq']}: hold of a check never estimated"
