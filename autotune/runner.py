@@ -47,6 +47,7 @@ from autotune.errors import (
     Interrupted,
     JournalError,
 )
+from autotune.guided import LockPrior
 from autotune.journal import (
     JOURNAL_NAME,
     MANIFEST_NAME,
@@ -326,8 +327,6 @@ def track_preflight(config: RunConfig, description: Any, *, store: Path,
                                             f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
         prior = last_good.get("lock_prior")
         if prior is not None:
-            from autotune.guided import LockPrior
-
             try:
                 LockPrior.from_dict(prior)
             except ValueError as exc:
