@@ -65,6 +65,7 @@ from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import structlog
 
 from autotune.config import RunConfig
@@ -135,9 +136,13 @@ _NOISE_MEMORY = 24
 _RECENT = 16
 # The plan is made again after this much rig time (s).
 _REPLAN_S = 3600.0
-# Horizon over which an overspent budget is paid back by slower checks (s), and the shares of
-# the budget the checks get: half normally, never less than a quarter.
+# The checks' share of the budget: what is left of the night's budget (its end in rig time, or
+# this horizon when it has none) after the recoveries expected in the rest of it, at most a half,
+# never less than a quarter. Recoveries are expected at the night's own rate so far, starting
+# from one per four hours (a gamma-Poisson estimate, (alarms + 1) / (elapsed + 4 h)), each
+# costing the mean beam time of the night's retunes.
 _BUDGET_HORIZON_S = 4 * 3600.0
+_RECOVERY_PRIOR_S = 4 * 3600.0
 _CHECK_SHARE = 0.5
 _LEAST_CHECK_SHARE = 0.25
 # Longest single wall-clock wait on a real rig between reads of its clock (s).
@@ -357,11 +362,13 @@ class _Ledger:
     def __init__(self, journal: Journal, records: Sequence[Mapping[str, Any]]) -> None:
         self._journal = journal
         self.check_beam_s = 0.0
-        self.stage_beam_s = 0.0
+        self.stage_beam_s_total = 0.0
         self.first_stage_beam_s = 0.0
         self.shots = 0
         self.stages_begun = 0
         self.first_stage_is_calibration = False
+        self.stage_beam_s: dict[int, float] = {}
+        self.stage_kind: dict[int, str] = {}
         self.last_estimate: Mapping[str, Any] | None = None
         self.records: list[Mapping[str, Any]] = []
         for rec in records:
@@ -376,13 +383,16 @@ class _Ledger:
             if rec.get("label") == _HOLD:
                 self.check_beam_s += beam
             else:
-                self.stage_beam_s += beam
+                self.stage_beam_s_total += beam
+                index = self.stages_begun - 1
+                self.stage_beam_s[index] = self.stage_beam_s.get(index, 0.0) + beam
                 if self.stages_begun == 1:
                     self.first_stage_beam_s += beam
         elif kind == "estimate":
             self.last_estimate = rec
         elif kind == "decision" and rec.get("what") in ("retune", "calibrate") and "index" in rec:
             self.stages_begun = max(self.stages_begun, int(rec["index"]) + 1)
+            self.stage_kind[int(rec["index"])] = str(rec["what"])
             if int(rec["index"]) == 0:
                 self.first_stage_is_calibration = rec.get("what") == "calibrate"
 
@@ -390,7 +400,7 @@ class _Ledger:
     def holding_beam_s(self) -> float:
         """Beam time of holding: checks and stages, less a calibration the night began with."""
         first = self.first_stage_beam_s if self.first_stage_is_calibration else 0.0
-        return self.check_beam_s + self.stage_beam_s - first
+        return self.check_beam_s + self.stage_beam_s_total - first
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
         rec = self._journal.append(record_type, **fields)
@@ -883,13 +893,26 @@ class _Night:
 
     # -- the plan ---------------------------------------------------------------------------------
 
-    def _check_share(self) -> float:
-        """The share of beam time the checks may take now (see the module constants)."""
+    def _check_share(self) -> dict[str, float]:
+        """The share of beam time the checks may take now, with its numbers (module notes)."""
         budget = self.config.track.budget_fraction
-        elapsed = max(self.session.clock - self.start_clock, 0.0)
-        allowance = (budget * (elapsed + _BUDGET_HORIZON_S) - self.ledger.holding_beam_s) \
-            / _BUDGET_HORIZON_S
-        return min(max(allowance, _LEAST_CHECK_SHARE * budget), _CHECK_SHARE * budget)
+        ledger = self.ledger
+        now = self.session.clock
+        elapsed = max(now - self.start_clock, 0.0)
+        remaining = max(self.rig_end - now if self.rig_end is not None else _BUDGET_HORIZON_S,
+                        60.0)
+        retunes = [beam for index, beam in ledger.stage_beam_s.items()
+                   if ledger.stage_kind.get(index) == "retune"]
+        stages = list(ledger.stage_beam_s.values())
+        cost = float(np.mean(retunes)) if retunes else float(np.mean(stages)) if stages else 0.0
+        recoveries = max(ledger.stages_begun - 1, 0)
+        rate = (recoveries + 1.0) / (elapsed + _RECOVERY_PRIOR_S)
+        reserve = rate * remaining * cost
+        allowance = (budget * (elapsed + remaining) - ledger.holding_beam_s - reserve) / remaining
+        share = min(max(allowance, _LEAST_CHECK_SHARE * budget), _CHECK_SHARE * budget)
+        return {"share": share, "allowance": allowance, "remaining_s": remaining,
+                "reserve_s": reserve, "recoveries_per_h": rate * 3600.0,
+                "recovery_beam_s": cost, "holding_beam_s": ledger.holding_beam_s}
 
     def _replan(self, why: str) -> None:
         state = self.state
@@ -897,7 +920,8 @@ class _Night:
         lock = DriftLock.from_dict(state["lock"]).predict(self.session.clock)
         noise_rows = [tuple(x) for x in state["noise"]]
         noise = NoiseModel.from_estimates([(p, i, int(n)) for p, i, n in noise_rows])
-        share = self._check_share()
+        budget = self._check_share()
+        share = budget["share"]
         plan = plan_checks(self.settings, noise=noise, prior=prior, lock=lock,
                            reference_inversion=_reference(state["reference"])[0],
                            reference_stderr=_reference(state["reference"])[1],
@@ -911,9 +935,12 @@ class _Night:
                       "next": {"point": point, "due_clock": due, "recheck": False,
                                "shots_per_phase": plan.shots_per_phase},
                       "replan_clock": self.session.clock + _REPLAN_S}
-        self._snapshot("plan", reason=f"{why}: {plan.reason}", check_share_allowed=share,
-                       holding_beam_s=self.ledger.holding_beam_s,
-                       night_rig_time_s=self.session.clock - self.start_clock,
+        self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
+                       f"of the beam (budget {self.config.track.budget_fraction:.0%}, "
+                       f"{budget['holding_beam_s'] / 60:.1f} min spent, "
+                       f"{budget['reserve_s'] / 60:.1f} min kept for the recoveries expected in "
+                       f"the {budget['remaining_s'] / 3600:.1f} h to come)",
+                       budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
                        plan=plan.to_dict())
 
     # -- holding ------------------------------------------------------------------------------------
@@ -1101,7 +1128,7 @@ class _Night:
             "stop_reason": reason, "left_at": where,
             "setpoints": dict(state.get("held") or self.session.current), **counts,
             "shots": self.ledger.shots,
-            "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s,
+            "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s_total,
             "night_rig_time_s": night, "holding_beam_s": self.ledger.holding_beam_s,
             "holding_share": self.ledger.holding_beam_s / night if night > 0 else None,
             "budget_fraction": self.config.track.budget_fraction,
