@@ -343,7 +343,7 @@ def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
     assert str(missing) in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("name", ["latest.json", "quick.json"])
+@pytest.mark.parametrize("name", ["latest.json", "quick.json", "night.json"])
 def test_stored_results_still_print(name, capsys):
     """The README's `--show benchmarks/results/latest.json` prints every stored result, old or new."""
     # Source: README, Performance (the command as written there, on the files the repo holds).

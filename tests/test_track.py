@@ -14,14 +14,15 @@ import dataclasses
 import json
 import math
 import shutil
-from pathlib import Path
+import threading
+from datetime import datetime
 from typing import Any
 
 import pytest
 
 from autotune import bench, runner, track
 from autotune.config import load_config
-from autotune.errors import ConfigErrors, JournalError
+from autotune.errors import ConfigErrors, Interrupted, JournalError
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.server import LocalRig
 from drivers_sim.config import load_sim_config
@@ -188,13 +189,11 @@ def test_a_stop_signal_between_checks_can_leave_the_rig_at_the_held_setpoints(tm
                 stop.set()
             return super().advance(seconds)
 
-    import threading
-
     stop = threading.Event()
     watched = StopAfterChecks(rig, [], 60.0)
-    with pytest.raises(Exception) as info:
+    with pytest.raises(Interrupted) as info:
         track.track(watched, config, tmp_path / "night", store=store, stop=stop)
-    assert type(info.value).__name__ == "Interrupted" and info.value.safe is None
+    assert info.value.safe is None
     records = read_journal(tmp_path / "night" / JOURNAL_NAME)
     assert records[-1]["status"] == "interrupted" and not any(r["type"] == "safe" for r in records)
     held = [r for r in records if r["type"] == "hold"][-1]["state"]["held"]
@@ -271,14 +270,12 @@ def test_everything_wrong_is_refused_before_the_first_move(tmp_path):
     assert rig.status().shots_total == before.shots_total
 
 
-def test_the_end_at_a_local_time_is_the_next_one_after_the_start(tmp_path):
-    """end_at_local_time "HH:MM": the first such local time after the night began."""
-    from datetime import datetime
-
-    rig = _rig(19)
-    config = night_config(hours=0.0, end_at_local_time="07:30")
-    began = datetime(2026, 12, 2, 22, 15).timestamp()
-    prepared = track.prepare_track(rig, config, tmp_path / "night", store=tmp_path / "none.json")
-    assert math.isclose(track._Night._local_end(began, 7 * 60 + 30),
+def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
+    """end_at_local_time "HH:MM": the first such local time after the night began (the next
+    morning for a night begun in the evening, the same day for one begun after midnight)."""
+    evening = datetime(2026, 12, 2, 22, 15).timestamp()
+    assert math.isclose(track._Night._local_end(evening, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
-    del prepared
+    small_hours = datetime(2026, 12, 3, 1, 5).timestamp()
+    assert math.isclose(track._Night._local_end(small_hours, 7 * 60 + 30),
+                        datetime(2026, 12, 3, 7, 30).timestamp())
