@@ -1676,7 +1676,7 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
 
 
 def _format_night_only(study: Mapping[str, Any]) -> str:
-    lines = [f"autotune benchmark, the night study alone ({study['mode']} mode, SIMULATED rig, "
+    lines = [f"autotune benchmark (the night study alone, {study['mode']} mode, SIMULATED rig, "
              f"wall {study['wall_time_s']:.0f} s, {study['machine']['ran_on']})",
              "command: " + study["command"]]
     code = study.get("code") or {}

@@ -80,7 +80,7 @@ def _matcher(spec: str) -> Callable[[dict[str, Any]], bool]:
 
 
 def _journals(run: Path) -> list[Path]:
-    return [run / JOURNAL_NAME]
+    return [run / JOURNAL_NAME] if (run / JOURNAL_NAME).exists() else []
 
 
 #: A night of three hours of rig time at the tiny sizes (a retune's check and verification at
