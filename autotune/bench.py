@@ -90,6 +90,7 @@ from autotune.config import (
     RunConfig,
     SearchConfig,
     StrategyKind,
+    TrackConfig,
     config_from_dict,
     load_config,
     packaged_config,
@@ -218,6 +219,13 @@ THERMAL_STEP_HZ = 15e3
 #: Rig time between thermal steps of the long run, s.
 NIGHT_THERMAL_EVERY_S = 7200.0
 
+#: The night study (``--night``): hours of rig time per night, thermal steps per night, the
+#: schedules of today's retune it is compared with (s between retunes), the grid of the truth.
+NIGHT_HOURS = 8.0
+NIGHT_THERMAL_STEPS = 2
+NIGHT_SCHEDULES_S: tuple[float, ...] = (1800.0, 7200.0)
+NIGHT_GRID_S = 60.0
+
 #: Bounds of the waits on a dask cluster, s: its workers' start, a client's connection.
 CLUSTER_START_TIMEOUT_S = 120.0
 CLUSTER_CLOSE_TIMEOUT_S = 30.0
@@ -268,6 +276,16 @@ class StudyPlan:
         Overrides of ``[retune]`` (empty: the config's).
     grid_points_per_dimension, coordinate_points_per_dimension, coordinate_rounds : int
         The hand strategies' designs.
+    calibration_study : bool
+        Run sections 1 to 5 (False with ``--night``: the night study alone).
+    night_study : bool
+        Run section 6, the night study.
+    night_scenarios : int
+        Scenarios of each family in the night study.
+    night_hours : float
+        Rig hours of each night.
+    night_families : tuple of str
+        Scenario families of the night study.
     """
 
     mode: str
@@ -288,10 +306,16 @@ class StudyPlan:
     grid_points_per_dimension: int = 9
     coordinate_points_per_dimension: int = 9
     coordinate_rounds: int = 3
+    calibration_study: bool = True
+    night_study: bool = True
+    night_scenarios: int = 10
+    night_hours: float = NIGHT_HOURS
+    night_families: tuple[str, ...] = ("main", "held_out")
 
 
 def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
-             seed: int | None = None, strategies: Sequence[str] | None = None) -> StudyPlan:
+             seed: int | None = None, strategies: Sequence[str] | None = None,
+             night_only: bool = False) -> StudyPlan:
     """The plan of a named mode: ``"full"``, ``"quick"`` or ``"tiny"``.
 
     Full and quick use the demo measurement and budgets unchanged (quick has fewer scenarios, a
@@ -308,7 +332,8 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
     elif mode == "quick":
         # The overhead study stops at 100 points: the steps beyond cost most of its time.
         plan = StudyPlan("quick", scenarios=3, night_steps=100,
-                         overhead_points=(10, 25, 50, 100), overhead_window=3, workers=workers)
+                         overhead_points=(10, 25, 50, 100), overhead_window=3, workers=workers,
+                         night_scenarios=3, night_families=("main",))
     elif mode == "tiny":
         plan = StudyPlan(
             "tiny", scenarios=1, night_steps=8, overhead_points=(10, 16), overhead_window=2,
@@ -319,6 +344,7 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
             retune_settings={"max_points": 3, "n_initial_points": 2,
                              "check_shots_per_phase": 600},
             grid_points_per_dimension=3, coordinate_points_per_dimension=3, coordinate_rounds=1,
+            night_scenarios=1, night_hours=1.5, night_families=("main",),
         )
     else:
         raise ValueError(f"mode: expected 'full', 'quick' or 'tiny', got {mode!r}")
@@ -333,6 +359,10 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
         changes["seed"] = seed
     if strategies is not None:
         changes["strategies"] = tuple(strategies)
+    if night_only:
+        changes.update(calibration_study=False, night_study=True)
+        if scenarios is not None:
+            changes["night_scenarios"] = scenarios
     plan = dataclasses.replace(plan, **changes)
     check_plan(plan)
     return plan
@@ -347,11 +377,17 @@ def check_plan(plan: StudyPlan) -> None:
                              f"(autotune.config.StrategyKind), got {name!r}")
     if not plan.strategies:
         raise ValueError("strategies: expected at least one strategy, got none")
-    for name in plan.families:
+    for name in (*plan.families, *plan.night_families):
         if name not in FAMILIES:
             raise ValueError(f"families: expected names among {list(FAMILIES)}, got {name!r}")
     if not plan.families:
         raise ValueError("families: expected at least one family, got none")
+    if not (plan.calibration_study or plan.night_study):
+        raise ValueError("plan: expected the calibration study, the night study or both")
+    if plan.night_study and (plan.night_scenarios < 1 or not plan.night_hours > 0
+                             or not plan.night_families):
+        raise ValueError(f"night study: expected scenarios >= 1, hours > 0 and a family, got "
+                         f"{plan.night_scenarios}, {plan.night_hours}, {plan.night_families}")
 
 
 def _base_config(plan: StudyPlan, config_path: Path) -> RunConfig:
@@ -508,15 +544,17 @@ def _config_spec(config: RunConfig) -> dict[str, Any]:
     return {"source": config.source, "raw": _plain(config.raw),
             "search": dataclasses.asdict(config.search),
             "measurement": dataclasses.asdict(config.measurement), "retune": retune,
-            "lock": dataclasses.asdict(config.lock)}
+            "lock": dataclasses.asdict(config.lock), "track": dataclasses.asdict(config.track)}
 
 
 def _config_from_spec(spec: Mapping[str, Any]) -> RunConfig:
     config = config_from_dict(spec["raw"], source=spec["source"])
+    track = TrackConfig(**spec["track"]) if "track" in spec else config.track
     return dataclasses.replace(config, search=SearchConfig(**spec["search"]),
                                measurement=MeasurementConfig(**spec["measurement"]),
                                retune=RetuneConfig(**spec["retune"]),
-                               lock=LockConfig(**spec.get("lock", dataclasses.asdict(config.lock))))
+                               lock=LockConfig(**spec.get("lock", dataclasses.asdict(config.lock))),
+                               track=track)
 
 
 def _plain(value: Any) -> Any:
@@ -707,8 +745,205 @@ def _night_job(job: Mapping[str, Any]) -> dict[str, Any]:
             "wall_time_s": time.perf_counter() - wall, "checkpoints": checkpoints}
 
 
+class _NightRig:
+    """A simulated rig watched through a night: the truth on a fine grid of rig time, thermal
+    steps at their times.
+
+    Before every operation that lets rig time pass (``apply``, ``acquire``, ``advance``,
+    ``safe``), steps that are due are applied and the truth at the set-points in force is
+    sampled (the ``truth`` op does not advance the clock); an ``advance`` is cut into pieces of
+    at most ``grid_s`` and at the steps' times, each sampled. A sample stands for the rig time
+    until the next one, so the fractions are weighted by time.
+    """
+
+    def __init__(self, rig: Any, steps: Sequence[tuple[float, float]], grid_s: float) -> None:
+        self.rig = rig
+        self.pending = sorted((float(t), float(x)) for t, x in steps)
+        self.applied: list[dict[str, float]] = []
+        self.grid_s = float(grid_s)
+        self.samples: list[tuple[float, float]] = []
+        self.acquired_shots = 0
+        self.watching = False
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.rig, name)
+
+    def _tick(self) -> None:
+        clock = self.rig.sim.clock
+        while self.pending and self.pending[0][0] <= clock + 1e-9:
+            when, shift = self.pending.pop(0)
+            self.rig.thermal_step(shift)
+            self.applied.append({"scheduled_clock": when, "clock": clock, "shift_hz": shift})
+        if self.watching:
+            truth = self.rig.truth()
+            self.samples.append((clock, float(truth["inversion"]) / float(truth["best"]["inversion"])))
+
+    def apply(self, setpoints: Mapping[str, float], **kwargs: Any) -> Any:
+        self._tick()
+        return self.rig.apply(setpoints, **kwargs)
+
+    def acquire(self, field: str, ramsey_phase: float, shots: int, **kwargs: Any) -> Any:
+        self._tick()
+        if self.watching:
+            self.acquired_shots += int(shots)
+        return self.rig.acquire(field, ramsey_phase, shots, **kwargs)
+
+    def safe(self, **kwargs: Any) -> Any:
+        self._tick()
+        return self.rig.safe(**kwargs)
+
+    def advance(self, seconds: float) -> dict[str, Any]:
+        end = self.rig.sim.clock + float(seconds)
+        reply = {"clock": self.rig.sim.clock}
+        while self.rig.sim.clock < end - 1e-9:
+            self._tick()
+            piece = min(self.grid_s, end - self.rig.sim.clock)
+            if self.pending:
+                piece = min(piece, max(self.pending[0][0] - self.rig.sim.clock, 1e-6))
+            reply = self.rig.advance(piece)
+        return reply
+
+
+def night_steps(scenario: Mapping[str, Any], hours: float, count: int = NIGHT_THERMAL_STEPS
+                ) -> list[tuple[float, float]]:
+    """The thermal steps of a scenario's night: ``count`` uniform times (s from its start) in
+    the night but its last hour (so that each step leaves time to recover; the first half of a
+    night shorter than two hours), each of +-15 kHz with a random sign, drawn from the
+    scenario's rig seed."""
+    rng = np.random.default_rng(np.random.SeedSequence([int(scenario["rig_seed"]), 77]))
+    latest = max(hours - 1.0, 0.5 * hours) * 3600.0
+    times = np.sort(rng.uniform(0.0, latest, size=count))
+    signs = rng.choice([-1.0, 1.0], size=count)
+    return [(float(t), float(sgn * THERMAL_STEP_HZ)) for t, sgn in zip(times, signs)]
+
+
+def _fraction_at(samples: Sequence[tuple[float, float]], end: float, bar: float) -> float:
+    """Time-weighted fraction of ``[first sample, end]`` with the ratio at or above ``bar``."""
+    if not samples:
+        return math.nan
+    total = above = 0.0
+    for (t, ratio), following in zip(samples, [*samples[1:], (end, math.nan)]):
+        span = max(min(following[0], end) - t, 0.0)
+        total += span
+        above += span if ratio >= bar else 0.0
+    return above / total if total > 0 else math.nan
+
+
+def _recovery_delays(samples: Sequence[tuple[float, float]], steps: Sequence[Mapping[str, float]],
+                     bar: float) -> list[float | None]:
+    """Rig time from each step until the ratio is back at ``bar`` (0 if it never fell below;
+    None if it did not come back before the night ended)."""
+    out: list[float | None] = []
+    for step in steps:
+        after = [(t, r) for t, r in samples if t >= step["clock"] - 1e-9]
+        if not after or after[0][1] >= bar:
+            out.append(0.0)
+            continue
+        back = next((t for t, r in after if r >= bar), None)
+        out.append(None if back is None else back - step["clock"])
+    return out
+
+
+def _hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
+    """One night of a scenario: calibrate, then hold it with ``track`` or with today's schedule.
+
+    The night lasts ``hours`` of rig time after the calibration, with the scenario's drift
+    (no ramp on a quiet night) and its thermal steps (none on a quiet night).
+    """
+    from autotune import track as tracking
+
+    config = _config_from_spec(job["config"])
+    scenario = job["scenario"]
+    config = dataclasses.replace(config, search=dataclasses.replace(
+        config.search, seed=scenario["search_seed"]))
+    perturbation = copy.deepcopy(scenario["perturbation"])
+    if job["quiet"]:
+        perturbation.setdefault("drift", {})["ramp_hz_per_s"] = 0.0
+    hours = float(job["hours"])
+    rig = _local_rig(job["rig"], perturbation, scenario["rig_seed"])
+    steps = [] if job["quiet"] else [tuple(x) for x in job["steps"]]
+    wall = time.perf_counter()
+    record: dict[str, Any] = {"family": scenario["family"], "scenario": scenario["index"],
+                              "method": job["method"], "interval_s": job.get("interval_s"),
+                              "quiet": bool(job["quiet"]), "hours": hours}
+    with tempfile.TemporaryDirectory(prefix="autotune-bench-hold-") as tmp:
+        store = Path(tmp) / "last-good.json"
+        result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=store)
+        record["calibration"] = {"status": result["status"], "shots": int(result["shots"]),
+                                 "final_ratio": _final_truth(rig, result["setpoints"])["ratio"]}
+        if not result["accepted"]:
+            record["skipped"] = "calibration not accepted"
+            return record
+        start = rig.sim.clock
+        end = start + hours * 3600.0
+        watched = _NightRig(rig, [(start + t, x) for t, x in steps], NIGHT_GRID_S)
+        watched.watching = True
+        if job["method"] == "track":
+            # Left at the held set-points at the end, like the schedule (nothing to make safe
+            # in a study).
+            night = dataclasses.replace(config, track=dataclasses.replace(
+                config.track, max_rig_time_s=hours * 3600.0, on_stop="last_good"))
+            outcome = tracking.track(watched, night, Path(tmp) / "night", store=store)
+            record.update({k: outcome.get(k) for k in (
+                "status", "checks", "rechecks", "corrections", "alarms", "retunes",
+                "calibrations", "failures")})
+            record["plans"] = _night_plans(Path(tmp) / "night")
+            record["alarm_clocks"] = [c - start for c in _alarm_clocks(Path(tmp) / "night")]
+        else:
+            retunes = changed = 0
+            k = 0
+            while rig.sim.clock < end - 1e-6:
+                outcome = runner.retune(watched, config, Path(tmp) / f"retune-{k:03d}",
+                                        store=store)
+                k += 1
+                retunes += 1
+                changed += outcome["status"] != "still_good"
+                if rig.sim.clock < end:
+                    watched.advance(min(float(job["interval_s"]), end - rig.sim.clock))
+            record.update({"status": "ended", "retunes": retunes, "corrections": changed,
+                           "calibrations": 0, "alarms": None, "checks": None})
+        watched._tick()
+        watched.watching = False
+    samples = [(t, r) for t, r in watched.samples if t <= end]
+    alarms = [start + c for c in record.get("alarm_clocks") or []]
+    record["detection_s"] = [next((a - step["clock"] for a in alarms if a >= step["clock"]), None)
+                             for step in watched.applied] if job["method"] == "track" else []
+    night_s = max(rig.sim.clock, end) - start
+    rate = float(rig.describe().repetition_rate_hz)
+    record.update({
+        "night_rig_time_s": night_s,
+        "fraction_097": _fraction_at(samples, end, LOWER_THRESHOLD),
+        "fraction_098": _fraction_at(samples, end, THRESHOLD),
+        "holding_share": watched.acquired_shots / rate / night_s,
+        "steps": watched.applied,
+        "recovery_s": _recovery_delays(samples, watched.applied, LOWER_THRESHOLD),
+        "samples": len(samples), "ratio_min": min((r for _, r in samples), default=math.nan),
+        "wall_time_s": time.perf_counter() - wall})
+    return record
+
+
+def _alarm_clocks(run_dir: Path) -> list[float]:
+    """Rig clocks of the night's alarms (the middle of the check that raised each)."""
+    from autotune.journal import read_journal
+
+    records = read_journal(run_dir / "journal.jsonl")
+    clocks = {r["point"]: r["clock_s"] for r in records if r.get("type") == "hold"}
+    return [float(clocks[r["point"]]) for r in records
+            if r.get("type") == "decision" and r.get("what") == "alarm" and r["point"] in clocks]
+
+
+def _night_plans(run_dir: Path) -> list[dict[str, Any]]:
+    from autotune.journal import read_journal
+
+    return [{"interval_s": r["plan"]["interval_s"], "shots_per_phase": r["plan"]["shots_per_phase"],
+             "check_share": r["plan"]["check_share"]}
+            for r in read_journal(run_dir / "journal.jsonl")
+            if r.get("type") == "decision" and r.get("what") == "plan"]
+
+
 _JOBS: dict[str, Callable[[Mapping[str, Any]], dict[str, Any]]] = {
-    "calibration": _calibration_job, "oracle": _oracle_job, "night": _night_job}
+    "calibration": _calibration_job, "oracle": _oracle_job, "night": _night_job,
+    "hold_night": _hold_night_job}
 
 
 def run_job(job_json: str, quiet: bool = False) -> str:
@@ -735,6 +970,112 @@ def run_job(job_json: str, quiet: bool = False) -> str:
     with threadpool_limits(limits=1):
         result = _JOBS[kind](job)
     return json.dumps(_jsonable(result), allow_nan=False)
+
+
+# --------------------------------------------------------------------------------------------
+# The night study (section 6)
+# --------------------------------------------------------------------------------------------
+
+
+def _night_label(run: Mapping[str, Any]) -> str:
+    if run["method"] == "track":
+        return "track (quiet)" if run["quiet"] else "track"
+    return f"schedule {float(run['interval_s']) / 60:g} min"
+
+
+def night_labels() -> list[str]:
+    """The methods of the night study, in the order of its table."""
+    return ["track", *[f"schedule {s / 60:g} min" for s in NIGHT_SCHEDULES_S], "track (quiet)"]
+
+
+def _night_jobs(plan: StudyPlan, base: RunConfig, rig: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """Per scenario of each night family: ``track``, today's schedules, a quiet ``track``."""
+    spec = _config_spec(base)
+    jobs: list[dict[str, Any]] = []
+    for family in plan.night_families:
+        for scenario in make_scenarios(plan.night_scenarios, family_seed(plan, family),
+                                       FAMILIES[family]):
+            common = {"kind": "hold_night", "config": spec, "scenario": scenario, "rig": rig,
+                      "hours": plan.night_hours, "steps": night_steps(scenario, plan.night_hours)}
+            jobs.append({**common, "method": "track", "quiet": False})
+            for interval in NIGHT_SCHEDULES_S:
+                jobs.append({**common, "method": "schedule", "interval_s": interval,
+                             "quiet": False})
+            jobs.append({**common, "method": "track", "quiet": True})
+    return jobs
+
+
+def _summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan) -> dict[str, Any]:
+    """Figures of every method of the night study, per family."""
+    out: dict[str, Any] = {}
+    for family in plan.night_families:
+        mine = [r for r in runs if r["family"] == family]
+        out[family] = {}
+        for label in night_labels():
+            rows = [r for r in mine if _night_label(r) == label]
+            done = [r for r in rows if "skipped" not in r]
+            delays = [d for r in done for d in r["recovery_s"]]
+            detections = [d for r in done for d in r.get("detection_s") or []]
+            hours = sum(r["night_rig_time_s"] for r in done) / 3600.0
+            alarms = [r.get("alarms") for r in done if r.get("alarms") is not None]
+            out[family][label] = {
+                "nights": len(done), "skipped": len(rows) - len(done),
+                "fraction_097_q": quantiles([r["fraction_097"] for r in done]),
+                "fraction_098_q": quantiles([r["fraction_098"] for r in done]),
+                "below_095": sum(r["fraction_097"] < 0.95 for r in done),
+                "holding_share_q": quantiles([r["holding_share"] for r in done]),
+                "retunes_q": quantiles([r["retunes"] for r in done]),
+                "calibrations_total": sum(int(r["calibrations"] or 0) for r in done),
+                "alarms_per_8h_q": quantiles([a * 8.0 / plan.night_hours for a in alarms]),
+                "alarms_total": sum(alarms), "rig_hours": hours,
+                "recovery_s_q": quantiles(delays), "steps": len(delays),
+                "never_recovered": sum(d is None for d in delays),
+                "detection_s_q": quantiles(detections),
+            }
+    return out
+
+
+def _night_targets(summary: Mapping[str, Any], plan: StudyPlan) -> list[dict[str, Any]]:
+    """The issue-12 targets, per family of the night study."""
+    out = []
+    schedules = [label for label in night_labels() if label.startswith("schedule")]
+    for family in plan.night_families:
+        rows = summary[family]
+        t, quiet = rows["track"], rows["track (quiet)"]
+        f97, share = t["fraction_097_q"][1], t["holding_share_q"][1]
+        out.append(_target(
+            f"track [{family}]: night held", ">= 95% of the night at >= 0.97 of the moving best "
+            "with <= 5% of beam time on holding it (medians)",
+            f"{_num(f97, 3)} of the night, {_num(share * 100, 1)}% of beam time "
+            f"({t['below_095']} of {t['nights']} nights below 95%)",
+            bool(t["nights"]) and f97 >= 0.95 and share <= 0.05))
+        recovery = t["recovery_s_q"][1]
+        out.append(_target(
+            f"track [{family}]: recovery from a {THERMAL_STEP_HZ / 1e3:g} kHz step",
+            "within 10 min of rig time, median",
+            f"{_num(recovery / 60, 1)} min median over {t['steps']} steps "
+            f"({t['never_recovered']} never recovered)",
+            bool(t["steps"]) and recovery <= 600.0))
+        false = quiet["alarms_per_8h_q"][1]
+        out.append(_target(
+            f"track [{family}]: quiet night (no steps, no ramp)",
+            "at most one false retune per 8 h, median",
+            f"{_num(false, 2)} per 8 h median ({quiet['alarms_total']} alarms in "
+            f"{quiet['rig_hours']:.0f} h)", bool(quiet["nights"]) and false <= 1.0))
+        better = []
+        for key in ("fraction_097_q", "fraction_098_q"):
+            mine = t[key][1]
+            theirs = [rows[label][key][1] for label in schedules]
+            better.append(all(mine >= other for other in theirs) and
+                          any(mine > other for other in theirs))
+        out.append(_target(
+            f"track [{family}]: against today's schedules in this run",
+            "better than both on the fractions at >= 0.97 and >= 0.98 (medians)",
+            "; ".join(f"{label}: {_num(rows[label]['fraction_097_q'][1], 3)} / "
+                      f"{_num(rows[label]['fraction_098_q'][1], 3)}"
+                      for label in ["track", *schedules]),
+            all(better)))
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -1047,19 +1388,60 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
     retuned = [k for k in plan.strategies if plan.retune and k in plan.retune_strategies]
     jobs: list[dict[str, Any]] = []
     first = scenarios[plan.families[0]][0]
-    if plan.night_steps > 0:
+    if plan.calibration_study and plan.night_steps > 0:
         # The longest job first, so that it overlaps all the others.
         jobs.append({"kind": "night", "config": _config_spec(configs.get("bayesian", base)),
                      "scenario": first, "steps": plan.night_steps, "rig": rig})
+    if plan.night_study:
+        # Then the nights of section 6 (tens of seconds each).
+        jobs += _night_jobs(plan, base, rig)
     specs = {kind: _config_spec(cfg) for kind, cfg in configs.items()}
     base_spec = _config_spec(base)
-    for family in plan.families:
+    for family in plan.families if plan.calibration_study else ():
         for scenario in scenarios[family]:
             for kind in plan.strategies:
                 jobs.append({"kind": "calibration", "config": specs[kind], "scenario": scenario,
                              "rig": rig, "retune": kind in retuned})
             jobs.append({"kind": "oracle", "config": base_spec, "scenario": scenario, "rig": rig})
     results, where = _map(jobs, plan, scheduler, progress)
+    holds = [r for r in results if "method" in r]
+    night_study = None
+    if plan.night_study:
+        night_summary = _summarise_night(holds, plan)
+        night_study = {"hours": plan.night_hours, "thermal_steps": NIGHT_THERMAL_STEPS,
+                       "thermal_step_hz": THERMAL_STEP_HZ, "schedules_s": list(NIGHT_SCHEDULES_S),
+                       "grid_s": NIGHT_GRID_S, "families": list(plan.night_families),
+                       "scenarios": plan.night_scenarios,
+                       "track": dataclasses.asdict(base.track),
+                       "summary": night_summary, "targets": _night_targets(night_summary, plan),
+                       "runs": sorted(holds, key=lambda r: (r["family"], r["scenario"],
+                                                            _night_label(r)))}
+    try:
+        dask_version = metadata.version("distributed")
+    except metadata.PackageNotFoundError:
+        dask_version = "not installed"
+    head = {
+        "study": "autotune benchmark (issues 5, 10 and 12)", "mode": plan.mode,
+        "simulated": True, "threshold": THRESHOLD, "lower_threshold": LOWER_THRESHOLD,
+        "guided_strategy": GUIDED,
+        "command": command or "python -m autotune.bench" + {
+            "full": "", "quick": " --quick", "tiny": " --tiny"}[plan.mode]
+        + ("" if plan.calibration_study else " --night"),
+        "wall_time_s": time.perf_counter() - wall,
+        "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
+                    "platform": platform.platform(), "workers": plan.workers,
+                    "ran_on": where, "distributed": dask_version},
+        "plan": _jsonable(dataclasses.asdict(plan)),
+        "code": _provenance(),
+        "config": str(config_path), "rig_config": str(rig_config_path),
+        "calibration_study": plan.calibration_study,
+        "night_study": night_study,
+    }
+    if not plan.calibration_study:
+        return {**head, "families": {name: _family_record(plan, name)
+                                     for name in plan.night_families},
+                "scenario_ranges": {f"{s}.{k}": list(v) for (s, k), v in SCENARIO_RANGES.items()},
+                "targets": night_study["targets"]}
     night = next((r for r in results if "checkpoints" in r), None)
     calibrations = [r for r in results if "calibrate" in r]
     oracles = [r for r in results if "verification_shots" in r]
@@ -1102,25 +1484,13 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
         night = _night_growth(night)
     targets = _guided_targets(summary, retune, plan.families, GUIDED in plan.strategies)
     targets += _secondary_targets(summary.get("main", {}), oracle_shots, overhead, night)
-    try:
-        dask_version = metadata.version("distributed")
-    except metadata.PackageNotFoundError:
-        dask_version = "not installed"
+    if night_study is not None:
+        targets += night_study["targets"]
+    head["wall_time_s"] = time.perf_counter() - wall
     return {
-        "study": "autotune benchmark (issues 5 and 10)", "mode": plan.mode,
-        "simulated": True, "threshold": THRESHOLD, "lower_threshold": LOWER_THRESHOLD,
-        "guided_strategy": GUIDED,
-        "command": command or "python -m autotune.bench" + {
-            "full": "", "quick": " --quick", "tiny": " --tiny"}[plan.mode],
-        "wall_time_s": time.perf_counter() - wall,
-        "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
-                    "platform": platform.platform(), "workers": plan.workers,
-                    "ran_on": where, "distributed": dask_version},
-        "plan": _jsonable(dataclasses.asdict(plan)),
-        "code": _provenance(),
+        **head,
         "search_configs": {kind: _jsonable(dataclasses.asdict(cfg.search))
                            for kind, cfg in configs.items()},
-        "config": str(config_path), "rig_config": str(rig_config_path),
         "families": {name: _family_record(plan, name) for name in plan.families},
         "scenario_ranges": {f"{s}.{k}": list(v) for (s, k), v in SCENARIO_RANGES.items()},
         "scenarios": scenarios,
@@ -1145,6 +1515,13 @@ def _note(progress: Callable[[str], None] | None, result: Mapping[str, Any]) -> 
         return
     if "checkpoints" in result:
         progress(f"night: {result['steps']} steps in {result['wall_time_s']:.0f} s")
+    elif "method" in result and "skipped" in result:
+        progress(f"{result['family']:<8} scenario {result['scenario']:2d} "
+                 f"{_night_label(result):<16} skipped: {result['skipped']}")
+    elif "method" in result:
+        progress(f"{result['family']:<8} scenario {result['scenario']:2d} "
+                 f"{_night_label(result):<16} night at >= 0.97: {result['fraction_097']:.3f}, "
+                 f"holding {result['holding_share']:.1%}, {result['wall_time_s']:.0f} s")
     elif "calibrate" in result:
         c = result["calibrate"]
         progress(f"{result['family']:<8} scenario {result['scenario']:2d} "
@@ -1300,8 +1677,63 @@ def _ranges_text(ranges: Mapping[str, Sequence[float]]) -> str:
     return ", ".join(f"{k} [{lo:g}, {hi:g}]" for k, (lo, hi) in ranges.items())
 
 
+def _format_night(night: Mapping[str, Any]) -> list[str]:
+    """Section 6: the night study."""
+    lines = [f"6. the night: {night['hours']:g} h of rig time per night after a calibration, the "
+             f"scenario's ramp and random walk, {night['thermal_steps']} thermal steps of "
+             f"{night['thermal_step_hz'] / 1e3:g} kHz (random times and signs, at least an hour "
+             f"before the end); track against today's retune every "
+             f"{' and '.join(f'{s / 60:g}' for s in night['schedules_s'])} min; a quiet night "
+             f"(no steps, no ramp) for track's false retunes. The truth at the set-points in "
+             f"force, sampled every {night['grid_s']:g} s of rig time and at every operation, "
+             f"over the moving true best; median [quartiles]"]
+    header = (f"    {'method':<17} {'nights':>6} {'night at >=0.97':>22} {'night at >=0.98':>22} "
+              f"{'<95%':>4} {'beam on holding':>22} {'retunes':>13} {'calib.':>6} "
+              f"{'recovery (min)':>20} {'alarm delay (min)':>20} {'false/8h':>8}")
+    for family in night["families"]:
+        lines.append(f"  {family} ({night['scenarios']} scenarios)")
+        lines.append(header)
+        for label, row in night["summary"][family].items():
+            recovery = row["recovery_s_q"]
+            detection = row["detection_s_q"]
+            quiet = label == "track (quiet)"
+            lines.append(
+                f"    {label:<17} {row['nights']:>6} {_q(row['fraction_097_q'], 3):>22} "
+                f"{_q(row['fraction_098_q'], 3):>22} {row['below_095']:>4} "
+                f"{_q([x * 100 if isinstance(x, float) else x for x in row['holding_share_q']], 1) + ' %':>22} "
+                f"{_q(row['retunes_q']):>13} {row['calibrations_total']:>6} "
+                f"{'-' if quiet or not row['steps'] else _q([x / 60 if isinstance(x, float) else x for x in recovery], 1):>20} "
+                f"{'-' if not label.startswith('track') or quiet or not row['steps'] else _q([x / 60 if isinstance(x, float) else x for x in detection], 1):>20} "
+                f"{_num(row['alarms_per_8h_q'][1], 2) if quiet else '-':>8}")
+    return lines
+
+
+def _format_night_only(study: Mapping[str, Any]) -> str:
+    lines = [f"autotune benchmark (the night study alone, {study['mode']} mode, SIMULATED rig, "
+             f"wall {study['wall_time_s']:.0f} s, {study['machine']['ran_on']})",
+             "command: " + study["command"]]
+    code = study.get("code") or {}
+    lines.append(f"code: commit {str(code.get('commit'))[:10]}" + (
+        ", with uncommitted changes to " + ", ".join(code["modified_files"])
+        if code.get("modified_files") else ""))
+    lines.append("scenario families (seeded draws, never hand-picked; never used to tune track):")
+    for name, f in study["families"].items():
+        lines.append(f"  {name:<9} seed {f['seed']}: {f['summary']}; ranges "
+                     + _ranges_text(f["ranges"]))
+    lines.append("")
+    lines += _format_night(study["night_study"])
+    lines.append("")
+    lines.append("targets (from this one run):")
+    for t in study["targets"]:
+        lines.append(f"  [{t['status']}] {t['name']}: target {t['target']}; measured "
+                     f"{t['measured']}")
+    return "\n".join(lines)
+
+
 def format_table(study: Mapping[str, Any]) -> str:
     """The printed report of a study result (as returned by :func:`run_study`)."""
+    if study.get("calibration_study") is False:
+        return _format_night_only(study)
     if "families" not in study:
         return _format_legacy_table(study)
     lines = []
@@ -1418,6 +1850,9 @@ def format_table(study: Mapping[str, Any]) -> str:
                     f"{_num(r['shots_over_calibration_q'][1], 2):>8} "
                     f"{_q(r['final_ratio_q'], 3):>21} {r['below_threshold']:>5} "
                     f"{r['below_lower_threshold']:>5}")
+    if study.get("night_study"):
+        lines.append("")
+        lines += _format_night(study["night_study"])
     lines.append("")
     lines.append(f"targets (ratios from this one run; {GUIDED} is the physics-guided strategy):")
     for t in study["targets"]:
@@ -1533,10 +1968,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         prog="python -m autotune.bench",
         description="Benchmark study on the bundled SIMULATED rig: what each strategy costs to "
                     "calibrate on three scenario families, the oracle floor, optimiser overhead, "
-                    "a night's memory, retune.")
+                    "a night's memory, retune, and holding the condition through a night "
+                    "(track against today's schedules).")
     size = parser.add_mutually_exclusive_group()
     size.add_argument("--quick", action="store_true", help="fewer scenarios, shorter night")
     size.add_argument("--tiny", action="store_true", help="smoke-test sizes (seconds)")
+    parser.add_argument("--night", action="store_true",
+                        help="the night study alone (section 6: track against today's schedules)")
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT,
                         help=f"JSON result file (default {DEFAULT_OUT.relative_to(REPO)})")
     parser.add_argument("--workers", type=int, default=2,
@@ -1582,7 +2020,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         name.strip() for name in ns.strategies.split(",") if name.strip())
     try:
         plan = plan_for(mode, workers=1 if ns.serial else ns.workers, scenarios=ns.scenarios,
-                        seed=ns.seed, strategies=strategies)
+                        seed=ns.seed, strategies=strategies, night_only=ns.night)
     except ValueError as exc:
         parser.error(str(exc))
     plan = dataclasses.replace(plan, timeout_s=ns.timeout_s)

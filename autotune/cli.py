@@ -9,7 +9,7 @@ calibrate  full calibration of a rig
 retune     check the last good calibration; search a narrowed box if it no longer holds
 dry-run    start the simulated rig, calibrate, thermal step, retune, compare with the truth
 report     summary and figure of a run folder
-track      retune on a schedule (overnight drift following), one run folder per cycle
+track      hold the condition through the night: a lock, a sequential test, retunes
 
 Exit codes
 ----------
@@ -789,60 +789,57 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
-def _track_cycles(out: Path) -> list[Path]:
-    return sorted(p for p in out.glob("cycle-*") if p.is_dir())
+def _track_summary(result: dict[str, Any]) -> str:
+    share = result.get("holding_share")
+    night_h = result["night_rig_time_s"] / 3600.0
+    text = (f"track: {result['status']} ({result['stop_reason']}); held "
+            f"{_format_setpoints(result['setpoints'])}, left at {result['left_at']}: "
+            f"{result.get('checks', 0)} checks ({result.get('rechecks', 0)} repeated at once), "
+            f"{result.get('corrections', 0)} corrections, {result.get('alarms', 0)} alarms, "
+            f"{result.get('retunes', 0)} retunes, {result.get('calibrations', 0)} calibrations; "
+            f"holding took {'-' if share is None else f'{share:.1%}'} of {night_h:.2f} h of rig "
+            f"time (budget {result['budget_fraction']:.0%})")
+    if "inversion" in result:
+        low, high = result["inversion_interval"]
+        text += (f"; last measurement: inversion {result['inversion']:.3f} [{low:.3f}, "
+                 f"{high:.3f}], phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi")
+    return text
 
 
 def _cmd_track(ns: argparse.Namespace) -> int:
-    from autotune import runner
-    from autotune.journal import read_journal
+    from autotune import track as tracking
 
-    out = Path(ns.resume) if ns.resume else (Path(ns.out) if ns.out else
-                                             _default_run_dir("track"))
+    if ns.interval_s is not None or ns.cycles is not None:
+        print("autotune: track: --interval-s and --cycles were removed: track now holds the "
+              "condition all night in one run folder, with checks at a cadence it plans from the "
+              "measured drift and noise within [track] budget_fraction; end the night with "
+              "[track] max_rig_time_s, max_wall_time_s or end_at_local_time in the config, or "
+              "with SIGINT/SIGTERM (README: Holding the condition overnight)", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    started: list[Path] = []
 
     def body() -> int:
         config = load_config(ns.config)
-        cycles = _track_cycles(out) if ns.resume else []
-        if ns.resume and not cycles:
-            raise JournalError(f"{out}: no cycle-NNNN run folder of a track run to resume")
-        if not ns.resume and out.exists() and any(out.iterdir()):
-            raise JournalError(f"{out} is not empty; choose another --out or use --resume")
+        run_dir, resume = _run_folder(ns, "track")
         stop = _install_stop_handlers()
-        exit_code = EXIT_OK
         with _connect(config) as rig:
-            cycle = len(cycles)
-            resume_last = bool(cycles) and runner.unfinished(
-                read_journal(cycles[-1] / "journal.jsonl"))
-            if resume_last:
-                cycle -= 1
-            done = 0
-            while ns.cycles is None or done < ns.cycles:
-                run_dir = out / f"cycle-{cycle:04d}"
-                resume = resume_last and done == 0
-                prepared = runner.prepare("retune", rig, config, run_dir, resume=resume)
-                if done == 0:
-                    print(CAUTION, file=sys.stderr)
-                handler = _log_to_run_folder(run_dir)
-                try:
-                    result = runner.execute(prepared, rig, stop=stop)
-                finally:
-                    logging.getLogger().removeHandler(handler)
-                    handler.close()
-                print(_summary(result), flush=True)
-                exit_code = _exit_for_result(result)
-                cycle += 1
-                done += 1
-                if ns.cycles is not None and done >= ns.cycles:
-                    break
-                # Interruptible wait: a signal during the pause ends tracking at once; no stage
-                # is running then, and the rig stays at the setting the last cycle left.
-                if stop.wait(ns.interval_s):
-                    raise Interrupted("stopped by signal between cycles")
-        return exit_code
+            # Everything that can be checked is checked before the folder exists or anything moves.
+            prepared = tracking.prepare_track(rig, config, run_dir, resume=resume)
+            print(CAUTION, file=sys.stderr)
+            run_dir.mkdir(parents=True, exist_ok=True)
+            started.append(run_dir)
+            handler = _log_to_run_folder(run_dir)
+            try:
+                result = tracking.execute_track(prepared, rig, stop=stop)
+            finally:
+                logging.getLogger().removeHandler(handler)
+                handler.close()
+        print(_track_summary(result))
+        print(f"run folder: {run_dir}")
+        return EXIT_OK if result["status"] == "ended" else EXIT_BELOW_ACCEPTANCE
 
-    def hint() -> str:
-        return (f"autotune track --config {shlex.quote(str(ns.config))} "
-                f"--resume {shlex.quote(str(out))} --interval-s {ns.interval_s:g}")
+    def hint() -> str | None:
+        return _resume_command("track", ns.config, started[0]) if started else None
 
     return _guarded(body, hint)
 
@@ -970,17 +967,21 @@ def _parser() -> argparse.ArgumentParser:
     dry.add_argument("--no-retune", action="store_true", help="stop after the calibration")
     dry.set_defaults(handler=_cmd_dry_run)
 
-    track = sub.add_parser("track", help="retune on a schedule, one run folder per cycle "
-                                         "(acts on hardware)")
-    track.add_argument("--config", required=True, help="calibrate/retune TOML file")
-    track.add_argument("--interval-s", type=_non_negative_seconds, default=1800.0,
-                       help="wall-clock pause between cycles (s, default 1800)")
-    track.add_argument("--cycles", type=_at_least_one, help="stop after this many cycles (default: until "
-                                                  "SIGINT/SIGTERM)")
+    track_text = ("hold the 2π condition through the night: checks at a planned cadence, a lock "
+                  "on the photon phase shift, a sequential test for when to retune; one run "
+                  "folder for the night (acts on hardware)")
+    track = sub.add_parser("track", help=track_text, description=track_text + ". " + CAUTION +
+                           " Exit 0 when the night reached its end, 4 when it stopped after "
+                           "[track] max_consecutive_failures failed recoveries, 130 on "
+                           "SIGINT/SIGTERM (continue with the printed --resume command).")
+    track.add_argument("--config", required=True, help="calibrate/retune TOML file with [track]")
     track_out = track.add_mutually_exclusive_group()
-    track_out.add_argument("--out", help="folder for the cycles' run folders")
+    track_out.add_argument("--out", help="new run folder (default runs/track-<UTC time>)")
     track_out.add_argument("--resume", metavar="TRACK_DIR",
-                           help="continue a stopped track run: finish its last cycle, go on")
+                           help="continue a stopped night from its journal")
+    # Options of the schedule-based track this command replaced: refused with a message.
+    track.add_argument("--interval-s", default=None, help=argparse.SUPPRESS)
+    track.add_argument("--cycles", default=None, help=argparse.SUPPRESS)
     track.set_defaults(handler=_cmd_track)
 
     rep = sub.add_parser("report", help="morning report of a run, dry-run or track folder: "

@@ -17,6 +17,7 @@ The file layout (see ``configs/calibrate.toml`` for a commented example)::
     [retune]         still_good_fraction, half widths of the narrowed box, budgets
     [recovery]       retries of a failed step, interlock waits
     [lock]           the phase-lock strategy's settings (all optional)
+    [track]          holding the condition through the night (all optional)
 """
 
 from __future__ import annotations
@@ -40,6 +41,8 @@ __all__ = [
     "RetuneConfig",
     "RecoveryConfig",
     "LockConfig",
+    "TrackConfig",
+    "StopAction",
     "RunConfig",
     "StrategyKind",
     "load_config",
@@ -76,6 +79,8 @@ def packaged_config(name: str) -> Path:
 
 
 StrategyKind = Literal["phase_lock", "bayesian", "grid", "coordinate", "random"]
+#: Where ``autotune track`` leaves the rig when the night stops.
+StopAction = Literal["safe", "last_good"]
 
 
 def nominal_two_pi_velocity(coupling_hz: float, waist_m: float) -> float:
@@ -228,6 +233,71 @@ class LockConfig:
 
 
 @dataclass(frozen=True)
+class TrackConfig:
+    """Holding the 2π condition through the night (``[track]``), SI units.
+
+    Attributes
+    ----------
+    budget_fraction : float
+        Largest share of the night's beam (rig) time that holding may take: checks, retunes
+        and calibrations (half of it is planned for the checks, the rest kept for retunes).
+    floor : float
+        The condition held: the inversion at least this fraction of the best. Sets the shift
+        the sequential test is designed for.
+    false_alarm_interval_s : float
+        Mean rig time between false alarms the sequential test is designed for (s).
+    max_gain : float
+        Largest gain of the lock's correction (0, 1].
+    max_correction_hz, min_correction_hz : float
+        Largest detuning correction of one check, and the smallest one worth a move (Hz).
+    min_shots_per_phase : int
+        Fewest shots per field and Ramsey phase of a check.
+    max_interval_s : float
+        Longest rig time between checks (s).
+    walk_hz_per_sqrt_s : float
+        Random walk of the cavity the lock assumes (Hz/s^0.5).
+    inversion_drop : float
+        Drop of the inversion (fraction of its reference) the inversion watch is designed for.
+    retune_shots_per_phase : int
+        Shots per field and phase of the check and the verification of a retune in the night.
+    max_consecutive_failures : int
+        Stop after this many recoveries in a row (retune, then calibration) not accepted.
+    max_rig_time_s, max_wall_time_s : float
+        Stop this long after the night started, in rig time or wall time (0: no such end).
+    end_at_local_time : str
+        Stop at this local time of day, ``"HH:MM"`` (empty: no such end).
+    on_stop : {"safe", "last_good"}
+        Where the rig is left when the night stops: its safe set-points, or the set-points
+        held last (on a signal, only if the rig is already there; otherwise safe).
+    """
+
+    budget_fraction: float = 0.05
+    floor: float = 0.97
+    false_alarm_interval_s: float = 288_000.0
+    max_gain: float = 0.7
+    max_correction_hz: float = 5000.0
+    min_correction_hz: float = 100.0
+    min_shots_per_phase: int = 100
+    max_interval_s: float = 1800.0
+    walk_hz_per_sqrt_s: float = 20.0
+    inversion_drop: float = 0.25
+    retune_shots_per_phase: int = 1500
+    max_consecutive_failures: int = 3
+    max_rig_time_s: float = 0.0
+    max_wall_time_s: float = 0.0
+    end_at_local_time: str = ""
+    on_stop: StopAction = "safe"
+
+    @property
+    def end_at_minutes(self) -> int | None:
+        """Minutes after midnight of ``end_at_local_time`` (None when empty)."""
+        if not self.end_at_local_time:
+            return None
+        hours, minutes = self.end_at_local_time.split(":")
+        return int(hours) * 60 + int(minutes)
+
+
+@dataclass(frozen=True)
 class RecoveryConfig:
     """Bounded recovery from rig faults."""
 
@@ -252,6 +322,7 @@ class RunConfig:
     retune: RetuneConfig
     recovery: RecoveryConfig
     lock: LockConfig
+    track: TrackConfig = field(default_factory=TrackConfig)
     raw: Mapping[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     def setpoint(self, name: str) -> SetpointConfig:
@@ -387,6 +458,14 @@ class _Table:
 
 _REQUIRED = object()
 _MISSING = object()
+
+
+def _is_local_time(text: str) -> bool:
+    """True for ``"HH:MM"`` with 00 <= HH <= 23 and 00 <= MM <= 59."""
+    parts = text.split(":")
+    if len(parts) != 2 or not all(len(p) == 2 and p.isdigit() for p in parts):
+        return False
+    return int(parts[0]) <= 23 and int(parts[1]) <= 59
 
 
 def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
@@ -554,6 +633,48 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         max_corrections=l_t.integer("max_corrections", 2, low=0, high=20),
     )
     l_t.finish()
+
+    t_t = top.table("track", required=False)
+    if t_t is None:
+        t_t = _Table(source, "track", {}, problems)
+    defaults = TrackConfig()
+    end_at = t_t.string("end_at_local_time", "-", choices=())
+    if end_at == "-":
+        end_at = ""
+    elif not _is_local_time(end_at):
+        t_t.problem("end_at_local_time", 'a local time of day "HH:MM" (00:00 to 23:59)', end_at)
+        end_at = ""
+    track = TrackConfig(
+        budget_fraction=t_t.number("budget_fraction", defaults.budget_fraction, low=0.0,
+                                   high=1.0, low_open=True),
+        floor=t_t.number("floor", defaults.floor, low=0.0, high=1.0, low_open=True),
+        false_alarm_interval_s=t_t.number("false_alarm_interval_s",
+                                          defaults.false_alarm_interval_s, low=60.0, high=1e9),
+        max_gain=t_t.number("max_gain", defaults.max_gain, low=0.0, high=1.0, low_open=True),
+        max_correction_hz=t_t.number("max_correction_hz", defaults.max_correction_hz, low=0.0,
+                                     high=1e9, low_open=True),
+        min_correction_hz=t_t.number("min_correction_hz", defaults.min_correction_hz, low=0.0,
+                                     high=1e9),
+        min_shots_per_phase=t_t.integer("min_shots_per_phase", defaults.min_shots_per_phase,
+                                        low=1, high=10_000_000),
+        max_interval_s=t_t.number("max_interval_s", defaults.max_interval_s, low=60.0,
+                                  high=86400.0),
+        walk_hz_per_sqrt_s=t_t.number("walk_hz_per_sqrt_s", defaults.walk_hz_per_sqrt_s,
+                                      low=0.0, high=1e6),
+        inversion_drop=t_t.number("inversion_drop", defaults.inversion_drop, low=0.0, high=1.0,
+                                  low_open=True),
+        retune_shots_per_phase=t_t.integer("retune_shots_per_phase",
+                                           defaults.retune_shots_per_phase, low=1,
+                                           high=100_000_000),
+        max_consecutive_failures=t_t.integer("max_consecutive_failures",
+                                             defaults.max_consecutive_failures, low=1, high=1000),
+        max_rig_time_s=t_t.number("max_rig_time_s", defaults.max_rig_time_s, low=0.0, high=1e9),
+        max_wall_time_s=t_t.number("max_wall_time_s", defaults.max_wall_time_s, low=0.0,
+                                   high=1e9),
+        end_at_local_time=end_at,
+        on_stop=t_t.string("on_stop", defaults.on_stop, choices=get_args(StopAction)),  # type: ignore[arg-type]
+    )
+    t_t.finish()
     top.finish()
 
     # Relations between keys, checked once every key has been read.
@@ -563,6 +684,9 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
     if search.n_initial_points > search.max_points:
         s_t.problem("n_initial_points", f"a value <= search.max_points = {search.max_points}",
                     search.n_initial_points)
+    if track.min_correction_hz >= track.max_correction_hz:
+        t_t.problem("min_correction_hz", f"a value < track.max_correction_hz = "
+                    f"{track.max_correction_hz:g}", track.min_correction_hz)
     if retune.n_initial_points > retune.max_points:
         r_t.problem("n_initial_points", f"a value <= retune.max_points = {retune.max_points}",
                     retune.n_initial_points)
@@ -581,6 +705,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         retune=retune,
         recovery=recovery,
         lock=lock,
+        track=track,
         raw=dict(data),
     )
 

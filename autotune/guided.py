@@ -120,7 +120,8 @@ from autotune.search import (
     SearchSpace,
 )
 
-__all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch"]
+__all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch",
+           "phase_signal_note", "detuning_offset"]
 
 _TWO_PI = 2.0 * math.pi
 # Two velocities closer than this (relative) are one velocity group of the absorption fit.
@@ -149,6 +150,57 @@ def _wrap(angle: float | np.ndarray) -> Any:
 
 def _finite_or_none(value: float) -> float | None:
     return float(value) if math.isfinite(float(value)) else None
+
+
+def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak_rad: float) -> str | None:
+    """None when a measurement's phase signal can steer the detuning, else why not.
+
+    Usable means: fringes identified, a one-photon contrast of at least
+    ``settings.min_contrast_ratio`` of the empty one (near a pi or 3 pi rotation both fall),
+    and a phase error ``|phi - phi*|`` within ``settings.capture_phase_error_rad`` (beyond it
+    the angle wraps and the discriminator is no longer monotone).
+    """
+    if not result.identified:
+        return "fringes not identified"
+    if result.contrast_empty <= 0.0 or \
+            result.contrast_one_photon < settings.min_contrast_ratio * result.contrast_empty:
+        ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
+        return f"one-photon/empty contrast {ratio:.2f} below {settings.min_contrast_ratio:.2f}"
+    error = float(_wrap(result.phase_shift - phase_at_peak_rad))
+    if abs(error) > settings.capture_phase_error_rad:
+        return (f"phase error {error / math.pi:+.2f} pi beyond the capture range "
+                f"+-{settings.capture_phase_error_rad / math.pi:.2f} pi")
+    return None
+
+
+def detuning_offset(error_rad: float, error_stderr_rad: float, slope_rad_per_hz: float,
+                    slope_stderr_rad_per_hz: float, cubic_rad_per_hz3: float = 0.0,
+                    cubic_stderr_rad_per_hz3: float = 0.0) -> tuple[float, float]:
+    """The detuning set-point minus the peak's, from a phase error and the stored phase curve.
+
+    Solves ``error = s D + c D^3`` for ``D`` (Newton steps while the curve stays monotone with
+    the slope's sign, else the linear solution), with its standard error by the delta method
+    from the phase error's, the slope's and the cubic's.
+
+    Returns
+    -------
+    (float, float)
+        ``D`` and its standard error (Hz).
+    """
+    slope, c3 = float(slope_rad_per_hz), float(cubic_rad_per_hz3)
+    offset = error_rad / slope
+    for _ in range(_NEWTON_STEPS):
+        derivative = slope + 3.0 * c3 * offset**2
+        if derivative * slope <= 0.25 * slope**2:
+            offset = error_rad / slope
+            break
+        offset -= (slope * offset + c3 * offset**3 - error_rad) / derivative
+    derivative = slope + 3.0 * c3 * offset**2
+    if derivative * slope <= 0.25 * slope**2:
+        derivative = slope
+    offset_sd = math.sqrt((error_stderr_rad**2 + (offset * slope_stderr_rad_per_hz) ** 2
+                           + (offset**3 * cubic_stderr_rad_per_hz3) ** 2) / derivative**2)
+    return float(offset), float(offset_sd)
 
 
 # --------------------------------------------------------------------------------------------
@@ -824,17 +876,7 @@ class PhaseLockSearch:
 
     def _range_note(self, result: PointResult) -> str | None:
         """None when the point's phase signal is usable, else why not."""
-        s = self.settings
-        if not result.identified:
-            return "fringes not identified"
-        if result.contrast_empty <= 0.0 or result.contrast_one_photon < s.min_contrast_ratio * result.contrast_empty:
-            ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
-            return f"one-photon/empty contrast {ratio:.2f} below {s.min_contrast_ratio:.2f}"
-        error = self._phase_error(result)
-        if abs(error) > s.capture_phase_error_rad:
-            return (f"phase error {error / math.pi:+.2f} pi beyond the capture range "
-                    f"+-{s.capture_phase_error_rad / math.pi:.2f} pi")
-        return None
+        return phase_signal_note(result, self.settings, self._phase_star_prior[0])
 
     def _in_range(self) -> list[_Obs]:
         return self._cached("in_range", lambda: [o for o in self._obs if self._range_note(o.result) is None])
@@ -1562,20 +1604,8 @@ class PhaseLockSearch:
         error_sd = math.hypot(check.result.phase_shift_stderr, star_sd)
         p = self.prior
         slope, slope_sd = self._slope_prior()
-        c3 = p.cubic_rad_per_hz3
-        # Solve error = s D + c D^3 for D = set-point minus peak detuning.
-        offset = error / slope
-        for _ in range(_NEWTON_STEPS):
-            derivative = slope + 3.0 * c3 * offset**2
-            if derivative * slope <= 0.25 * slope**2:
-                offset = error / slope
-                break
-            offset -= (slope * offset + c3 * offset**3 - error) / derivative
-        derivative = slope + 3.0 * c3 * offset**2
-        if derivative * slope <= 0.25 * slope**2:
-            derivative = slope
-        offset_sd = math.sqrt((error_sd**2 + (offset * slope_sd) ** 2
-                               + (offset**3 * p.cubic_stderr_rad_per_hz3) ** 2) / derivative**2)
+        offset, offset_sd = detuning_offset(error, error_sd, slope, slope_sd, p.cubic_rad_per_hz3,
+                                            p.cubic_stderr_rad_per_hz3)
         normals = self._draw_normals(2, 13)
         eps = error + error_sd * normals[:, 0]
         d_draws = 1.0 - np.cos(0.5 * eps)

@@ -47,6 +47,7 @@ from autotune.errors import (
     Interrupted,
     JournalError,
 )
+from autotune.guided import LockPrior
 from autotune.journal import (
     JOURNAL_NAME,
     MANIFEST_NAME,
@@ -71,7 +72,8 @@ from autotune.progress import ProgressObserver
 from autotune.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
-           "describe_to_dict", "preflight", "resume_changes", "STAGE_COMMANDS"]
+           "describe_to_dict", "preflight", "track_preflight", "resume_changes",
+           "STAGE_COMMANDS"]
 
 _log = structlog.get_logger(__name__)
 
@@ -264,6 +266,76 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
     return problems
 
 
+def track_preflight(config: RunConfig, description: Any, *, store: Path,
+                    last_good: Mapping[str, Any] | None) -> list[ConfigError]:
+    """Everything ``autotune track`` can check before its first move, all at once.
+
+    The limits, units and search box (as for a calibration, which a night may need), every
+    shot count a night can send against the rig's ``max_shots_per_acquisition`` (its checks
+    are planned within it), room for one point in the calibration's and the retune's shot
+    budgets, that the checks' least shots fit the beam-time budget at the longest interval,
+    that the store can be written, and a last good calibration it starts from: its set-points
+    within the effective limits and its lock prior readable (a store without one makes the
+    night start with a calibration, which is not a problem).
+    """
+    source = config.source
+    problems: list[ConfigError] = []
+    limits = _limits(config, description, problems)
+    track = config.track
+    most = int(getattr(description, "max_shots_per_acquisition", 0) or 0)
+    if most:
+        for key, value in (("measurement.shots_per_phase", config.measurement.shots_per_phase),
+                           ("measurement.verification_shots_per_phase",
+                            config.measurement.verification_shots_per_phase),
+                           ("lock.lock_shots_per_phase", config.lock.lock_shots_per_phase),
+                           ("lock.velocity_shots_per_phase", config.lock.velocity_shots_per_phase),
+                           ("track.retune_shots_per_phase", track.retune_shots_per_phase),
+                           ("track.min_shots_per_phase", track.min_shots_per_phase)):
+            if value > most:
+                problems.append(ConfigError(source, key, f"at most the rig's "
+                                            f"max_shots_per_acquisition = {most}", value))
+    phases = config.measurement.ramsey_phases
+    for key, budget, per_phase in (
+            ("search.max_shots", config.search.max_shots, config.lock.lock_shots_per_phase),
+            ("retune.max_shots", config.retune.max_shots, config.lock.lock_shots_per_phase)):
+        if 2 * phases * per_phase > budget:
+            problems.append(ConfigError(source, key, f"room for one lock step of "
+                                        f"{2 * phases * per_phase} shots (2 fields x {phases} "
+                                        f"phases x lock.lock_shots_per_phase {per_phase})", budget))
+    rate = float(description.repetition_rate_hz)
+    least_check_s = 2 * phases * track.min_shots_per_phase / rate
+    affordable = 0.5 * track.budget_fraction * track.max_interval_s
+    if least_check_s > affordable:
+        problems.append(ConfigError(
+            source, "track.min_shots_per_phase",
+            f"checks that fit half of track.budget_fraction ({track.budget_fraction:g}) at "
+            f"track.max_interval_s ({track.max_interval_s:g} s): at most "
+            f"{int(affordable * rate / (2 * phases))} shots per phase at {rate:g} shots/s",
+            track.min_shots_per_phase))
+    store_problem = _check_store(store, source)
+    if store_problem is not None:
+        problems.append(store_problem)
+    if last_good is not None:
+        for sp in config.setpoints:
+            value = last_good["setpoints"].get(sp.name)
+            if value is None:
+                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                            "a value in the last good calibration", None))
+            elif sp.name in limits and not limits[sp.name].min <= value <= limits[sp.name].max:
+                limit = limits[sp.name]
+                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                            f"a value within the effective limits "
+                                            f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
+        prior = last_good.get("lock_prior")
+        if prior is not None:
+            try:
+                LockPrior.from_dict(prior)
+            except ValueError as exc:
+                problems.append(ConfigError(str(store), "lock_prior",
+                                            "the lock prior a calibration stored", str(exc)))
+    return problems
+
+
 def _flatten(data: Any, prefix: str = "") -> Iterator[tuple[str, Any]]:
     if isinstance(data, Mapping):
         for key, value in data.items():
@@ -272,7 +344,8 @@ def _flatten(data: Any, prefix: str = "") -> Iterator[tuple[str, Any]]:
         yield prefix[:-1], data
 
 
-def resume_changes(started: Mapping[str, Any], present: Mapping[str, Any], source: str
+def resume_changes(started: Mapping[str, Any], present: Mapping[str, Any], source: str,
+                   also_allowed: Sequence[str] = ()
                    ) -> tuple[list[tuple[str, Any, Any]], list[ConfigError]]:
     """Configuration changes between the run's start and its resume, sorted into allowed ones
     and refusals.
@@ -281,6 +354,8 @@ def resume_changes(started: Mapping[str, Any], present: Mapping[str, Any], sourc
     decision thresholds, set-point limits (every move is checked again), the store. Anything
     else (the box, units, strategy, seed, phases, nominal physics, retune widths) would change
     the meaning of what was measured already and is refused, naming the key and both values.
+    ``also_allowed`` adds dotted prefixes a command may change on resume (``track.`` for
+    ``autotune track``).
     """
     before, after = dict(_flatten(started)), dict(_flatten(present))
     allowed: list[tuple[str, Any, Any]] = []
@@ -291,7 +366,7 @@ def resume_changes(started: Mapping[str, Any], present: Mapping[str, Any], sourc
             continue
         limit_key = key.startswith("setpoints.") and key.rsplit(".", 1)[-1] in _LIMIT_KEYS
         if limit_key or any(key == p or (p.endswith(".") and key.startswith(p))
-                            for p in _RESUMABLE_CHANGES):
+                            for p in (*_RESUMABLE_CHANGES, *also_allowed)):
             allowed.append((key, old, new))
         else:
             refused.append(ConfigError(

@@ -5,6 +5,11 @@ disk before it is sent, its outcome after it returns, so a crash at any point le
 that says what may have happened; common practice) and at-least-once delivery with idempotent
 receivers (a request that may have been lost is sent again with the same id, and the receiver
 answers a repeated id from its record instead of acting twice; common practice).
+
+A night of ``autotune track`` holds several stages in one journal: each stage's measurements
+are numbered from 0 again, so measurements are told apart by their scope (a ``stage`` record
+opens one, the night's ``stage_done`` decision closes it); the night's own checks (label
+``hold``) are numbered through the night.
 """
 
 from __future__ import annotations
@@ -13,8 +18,13 @@ from collections import Counter
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-FINAL = {"accepted", "below_acceptance", "still_good"}
+FINAL = {"accepted", "below_acceptance", "still_good", "ended", "gave_up"}
 GUIDED = {"search", "lock", "velocity", "relock", "check", "correct", "verify"}
+HOLD = "hold"
+
+
+def _scoped(scope: int, label: str, point: int) -> tuple[Any, str, int]:
+    return ("night" if label == HOLD else scope, label, point)
 
 
 def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = True) -> None:
@@ -28,25 +38,30 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
       carrying its msg_id (in a finished run), and no msg_id is resolved twice;
     - every measurement has at most one estimate, after all of its acquisitions;
     - each resume re-told every search point estimated before it exactly once;
+    - a night (``autotune track``): see :func:`check_night`;
     - a finished run ends with a final status.
     """
     assert [r["seq"] for r in records] == list(range(len(records))), "seq has gaps"
-    opened: dict[tuple[str, int], Mapping[str, Any]] = {}
-    filed: Counter[tuple[str, int, str, int]] = Counter()
+    opened: dict[tuple[Any, str, int], Mapping[str, Any]] = {}
+    filed: Counter[tuple[Any, str, int, str, int]] = Counter()
     requests: dict[str, Mapping[str, Any]] = {}
     resolved: Counter[str] = Counter()
-    estimated: Counter[tuple[str, int]] = Counter()
+    estimated: Counter[tuple[Any, str, int]] = Counter()
     point_estimates: list[int] = []
     steps: list[int] = []
+    scope = 0
     for rec in records:
         kind = rec["type"]
+        if kind == "stage" or (kind == "decision" and rec["what"] == "stage_done"):
+            scope += 1
+            point_estimates, steps = [], []
         if kind == "measurement":
-            opened.setdefault((rec["label"], rec["point"]), rec)
+            opened.setdefault(_scoped(scope, rec["label"], rec["point"]), rec)
         elif kind == "request" and rec["op"] == "acquire":
             assert rec["msg_id"] not in requests, f"msg_id {rec['msg_id']} requested twice"
             requests[rec["msg_id"]] = rec
         elif kind in ("acquisition", "discarded", "refused"):
-            key = (rec["label"], rec["point"])
+            key = _scoped(scope, rec["label"], rec["point"])
             assert key in opened, f"record {rec['seq']}: {kind} of a measurement never opened"
             if "msg_id" in rec:
                 assert rec["msg_id"] in requests, f"record {rec['seq']}: no request was written ahead"
@@ -58,7 +73,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
                 assert all(abs(got[n] - v) <= 1e-9 * max(1.0, abs(v)) for n, v in want.items()), (
                     f"record {rec['seq']}: acquisition filed at {got}, measurement at {want}")
         elif kind == "estimate":
-            key = (rec["label"], rec["point"])
+            key = _scoped(scope, rec["label"], rec["point"])
             estimated[key] += 1
             if rec["label"] == "point":
                 point_estimates.append(rec["point"])
@@ -74,10 +89,93 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     assert not twice, f"acquisitions filed twice: {twice}"
     assert all(n == 1 for n in resolved.values()), "a request was resolved twice"
     assert all(n == 1 for n in estimated.values()), f"estimated twice: {estimated}"
+    if any(r["type"] == "hold" or (r["type"] == "decision" and r["what"] == "stage_done")
+           for r in records):
+        check_night(records, finished=finished)
     if finished:
         unresolved = set(requests) - set(resolved)
         assert not unresolved, f"requests never resolved: {sorted(unresolved)}"
         assert records[-1]["type"] == "end" and records[-1]["status"] in FINAL, records[-1]
+
+
+def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) -> None:
+    """The invariants of a night of ``autotune track``.
+
+    - every ``hold`` record follows the estimate of its check, once per check, in order, and
+      carries its action, reason, numbers and the night's state (statistics >= 0);
+    - every correction is a ``correct`` decision with ``from``/``to`` set-points, and the rig is
+      at ``to`` (a move reaching it, or the next check filed there) before the next check is
+      measured or the night stops;
+    - every alarm is followed by a stage (a ``retune`` or ``calibrate`` decision), or by the
+      night's stop (its end came first);
+    - every stage begun (a ``retune``/``calibrate`` decision with its index) has its records
+      and, in a finished night, its ``stage_done``, indices in order, each once;
+    - every ``wait`` waits forwards, and is written before the check it waits for;
+    - a finished night ends with a ``stop`` decision that says why.
+    """
+    hold_estimates: dict[int, int] = {}
+    holds: list[int] = []
+    begun: list[int] = []
+    done: list[int] = []
+    pending_correction: Mapping[str, Any] | None = None
+    alarm_open = False
+    for position, rec in enumerate(records):
+        kind = rec["type"]
+        what = rec.get("what")
+        if kind == "estimate" and rec["label"] == HOLD:
+            hold_estimates[rec["point"]] = position
+        elif kind == "measurement" and rec["label"] == HOLD:
+            if pending_correction is not None:
+                # The rig may have applied the correction just before a kill, with no move
+                # record: the next check is then opened (and, by the invariant above, filed)
+                # at the corrected set-points.
+                want = pending_correction["to"]
+                assert all(abs(rec["setpoints"][n] - v) <= 1e-6 * max(1.0, abs(v))
+                           for n, v in want.items()), (
+                    f"record {rec['seq']}: check {rec['point']} measured at {rec['setpoints']} "
+                    f"before the correction of check {pending_correction['point']} reached {want}")
+                pending_correction = None
+        elif kind == "hold":
+            point = rec["point"]
+            assert point in hold_estimates, f"record {rec['seq']}: hold of a check never estimated"
+            assert point not in holds, f"record {rec['seq']}: check {point} assessed twice"
+            assert not holds or point > holds[-1], f"record {rec['seq']}: checks out of order"
+            holds.append(point)
+            assert rec["action"] in ("hold", "correct", "recheck", "alarm") and rec["reason"]
+            tests = rec["state"]["tests"]
+            assert min(tests["upper"], tests["lower"], tests["inversion"]) >= 0.0
+        elif kind == "decision" and what == "correct" and "point" in rec:
+            assert set(rec["from"]) == set(rec["to"]), rec
+            pending_correction = rec
+        elif kind == "move" and pending_correction is not None:
+            want = pending_correction["to"]
+            if all(abs(rec["applied"].get(n, float("nan")) - v) <= 1e-6 * max(1.0, abs(v))
+                   for n, v in want.items()):
+                pending_correction = None
+        elif kind == "decision" and what == "alarm":
+            alarm_open = True
+        elif kind == "decision" and what in ("retune", "calibrate") and "index" in rec:
+            alarm_open = False
+            assert rec["index"] not in begun, f"record {rec['seq']}: stage {rec['index']} begun twice"
+            assert not begun or rec["index"] == begun[-1] + 1, "stages out of order"
+            begun.append(rec["index"])
+        elif kind == "decision" and what == "stage_done":
+            assert rec["index"] in begun and rec["index"] not in done, rec
+            done.append(rec["index"])
+        elif kind == "decision" and what == "stop" and rec.get("status") != "interrupted":
+            assert rec["reason"]
+            pending_correction = None
+            alarm_open = False
+        elif kind == "wait":
+            assert rec["until_clock"] >= rec["from_clock"], rec
+        elif kind == "safe":
+            pending_correction = None
+    if finished:
+        assert not alarm_open, "an alarm without a stage after it"
+        assert begun == done, f"stages begun {begun}, finished {done}"
+        assert pending_correction is None, f"correction never reached: {pending_correction}"
+        assert any(r["type"] == "decision" and r["what"] == "stop"
+                   and r.get("status") != "interrupted" for r in records)
 
 
 def journal_shots(records: Sequence[Mapping[str, Any]]) -> int:

@@ -1,5 +1,5 @@
 """Smoke test of the benchmark runner (autotune.bench) at tiny sizes, in this process and on
-dask clusters; the scenario families; the targets of the guided strategy."""
+dask clusters; the scenario families; the targets of the guided strategy; the night study."""
 
 from __future__ import annotations
 
@@ -17,7 +17,10 @@ from autotune import bench
 
 # The main and the mismatch family: the held-out one is the main one with another seed.
 TINY = dataclasses.replace(bench.plan_for("tiny", workers=1), strategies=("bayesian", "grid"),
-                           families=("main", "mismatch"), night_steps=4, overhead_points=(10,))
+                           families=("main", "mismatch"), night_steps=4, overhead_points=(10,),
+                           night_study=False)
+#: The night study alone at its tiny size: one scenario, a night of 1.5 h.
+TINY_NIGHT = bench.plan_for("tiny", workers=1, night_only=True)
 
 
 @pytest.fixture(scope="module")
@@ -340,7 +343,7 @@ def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
     assert str(missing) in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("name", ["latest.json", "quick.json"])
+@pytest.mark.parametrize("name", ["latest.json", "quick.json", "night.json"])
 def test_stored_results_still_print(name, capsys):
     """The README's `--show benchmarks/results/latest.json` prints every stored result, old or new."""
     # Source: README, Performance (the command as written there, on the files the repo holds).
@@ -365,3 +368,85 @@ def test_unreachable_scheduler_fails_within_its_bound(monkeypatch):
                                overhead_points=(), workers=2)
     with pytest.raises(OSError, match="127.0.0.1:1"):
         bench.run_study(plan, scheduler="tcp://127.0.0.1:1")
+
+
+# --------------------------------------------------------------------------------------------
+# The night study
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def night_study():
+    """The night study alone at its tiny size, in this process."""
+    return bench.run_study(TINY_NIGHT)
+
+
+def test_fraction_of_the_night_is_weighted_by_rig_time():
+    """Samples stand for the rig time until the next one: 60 s at 0.99, 30 s at 0.90, 10 s at
+    0.98 up to the end (hand computation)."""
+    samples = [(0.0, 0.99), (60.0, 0.90), (90.0, 0.98)]
+    assert bench._fraction_at(samples, 100.0, 0.97) == pytest.approx(70.0 / 100.0)
+    assert bench._fraction_at(samples, 100.0, 0.985) == pytest.approx(60.0 / 100.0)
+
+
+def test_recovery_is_the_time_back_above_the_bar():
+    """From each step to the first sample at or above the bar; 0 when the step never took the
+    ratio below it; None when the night ended first (hand computation)."""
+    samples = [(0.0, 0.99), (100.0, 0.80), (160.0, 0.95), (400.0, 0.98), (500.0, 0.85)]
+    steps = [{"clock": 100.0}, {"clock": 0.0}, {"clock": 500.0}]
+    assert bench._recovery_delays(samples, steps, 0.97) == [300.0, 0.0, None]
+
+
+def test_night_steps_are_seeded_and_leave_an_hour_to_recover():
+    """Two +-15 kHz steps per night at uniform times before the night's last hour, the same for
+    the same scenario."""
+    scenarios = bench.make_scenarios(30, seed=11)
+    for scenario in scenarios:
+        steps = bench.night_steps(scenario, 8.0)
+        assert steps == bench.night_steps(scenario, 8.0)
+        assert len(steps) == 2 and all(abs(x) == 15e3 for _, x in steps)
+        assert all(0.0 <= t <= 7.0 * 3600.0 for t, _ in steps)
+    signs = {x > 0 for s in scenarios for _, x in bench.night_steps(s, 8.0)}
+    assert signs == {True, False}
+
+
+def test_the_night_study_runs_every_method_on_every_scenario(night_study):
+    """track, both schedules and the quiet track ran on the scenario; the fractions lie in
+    [0, 1]; the holding share is the night's acquisitions over its rig time."""
+    runs = night_study["night_study"]["runs"]
+    assert sorted(bench._night_label(r) for r in runs) == sorted(bench.night_labels())
+    for run in runs:
+        assert 0.0 <= run["fraction_098"] <= run["fraction_097"] <= 1.0
+        assert 0.0 < run["holding_share"] < 1.0
+        assert run["night_rig_time_s"] >= TINY_NIGHT.night_hours * 3600.0
+        if run["method"] == "track" and not run["quiet"]:
+            assert len(run["steps"]) == 2 and len(run["recovery_s"]) == 2
+        if run["quiet"]:
+            assert run["steps"] == []
+
+
+def test_the_night_targets_are_said_plainly(night_study):
+    """Four issue-12 targets per night family, each met or MISSED, and the table prints them
+    with section 6; --show reprints the same table."""
+    targets = night_study["targets"]
+    assert len(targets) == 4 and all(t["status"] in ("met", "MISSED") for t in targets)
+    table = bench.format_table(night_study)
+    assert "6. the night" in table and "schedule 120 min" in table
+    for t in targets:
+        assert f"[{t['status']}] {t['name']}" in table
+
+
+def test_the_night_result_reprints_from_its_file(night_study, tmp_path, capsys):
+    """A night-only result file is strict JSON and --show prints its table."""
+    path = tmp_path / "night.json"
+    bench.write_result(night_study, path)
+    assert bench.main(["--show", str(path)]) == 0
+    assert capsys.readouterr().out.rstrip("\n") == bench.format_table(night_study)
+
+
+def test_night_only_plan_needs_a_study():
+    """A plan with neither study is refused before anything runs."""
+    plan = dataclasses.replace(TINY_NIGHT, night_study=False)
+    with pytest.raises(ValueError, match="calibration study, the night study or both"):
+        bench.check_plan(plan)
+

@@ -97,13 +97,15 @@ def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(tmp_path: Path) -> N
     assert "true best" in done.stdout
 
 
-def test_report_summarises_a_run_folder_and_track_retunes_from_it(tmp_path: Path,
-                                                                   rig_server: Any) -> None:
-    """report: a summary of every point and a PNG figure; track: one retune folder per cycle."""
+def test_report_summarises_a_run_folder_and_track_holds_from_it(tmp_path: Path,
+                                                                  rig_server: Any) -> None:
+    """report: a summary of every point and a PNG figure; track: one run folder for a night of
+    an hour of rig time, held from the calibration just accepted, its summary line printed."""
     server = rig_server()
     config = _write_config(tmp_path / "c.toml", server.endpoint,
                            search={"max_points": 6, "min_points": 6, "n_initial_points": 4},
-                           calibration={"store": str(tmp_path / "good.json")})
+                           calibration={"store": str(tmp_path / "good.json")},
+                           track={"max_rig_time_s": 3600.0})
     run = tmp_path / "run"
     done = _autotune("calibrate", "--config", str(config), "--out", str(run))
     assert done.returncode == 0, done.stderr[-3000:]
@@ -116,12 +118,28 @@ def test_report_summarises_a_run_folder_and_track_retunes_from_it(tmp_path: Path
     assert [(label, int(n)) for label, n in table] == estimates
     png = run / "report.png"
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, ISO/IEC 15948)
-    # Tracking retunes from the calibration just accepted.
-    tracked = _autotune("track", "--config", str(config), "--cycles", "2", "--interval-s", "0",
-                        "--out", str(tmp_path / "track"))
+    # Holding the condition from the calibration just accepted: one folder for the night.
+    night = tmp_path / "night"
+    tracked = _autotune("track", "--config", str(config), "--out", str(night))
     assert tracked.returncode == 0, tracked.stderr[-3000:]
-    assert sorted(p.name for p in (tmp_path / "track").iterdir()) == ["cycle-0000", "cycle-0001"]
-    assert tracked.stdout.count("retune: ") == 2
+    assert (night / JOURNAL_NAME).exists() and (night / RESULT_NAME).exists()
+    assert tracked.stdout.startswith("track: ended (end of the night: 1.00 h of rig time")
+    assert f"run folder: {night}" in tracked.stdout
+    assert "CAUTION" in tracked.stderr
+
+
+@pytest.mark.parametrize("flags", [["--interval-s", "60"], ["--cycles", "2"]])
+def test_track_refuses_the_options_of_its_schedule(tmp_path: Path, flags: list[str]) -> None:
+    """The schedule-based track's --interval-s and --cycles are refused with exit 2 and a
+    message naming what replaced them, before any connection."""
+    config = _write_config(tmp_path / "c.toml", "tcp://127.0.0.1:9",
+                           calibration={"store": str(tmp_path / "good.json")})
+    done = _autotune("track", "--config", str(config), *flags, "--out", str(tmp_path / "night"),
+                     timeout=60)
+    assert done.returncode == 2
+    assert "--interval-s and --cycles were removed" in done.stderr
+    assert "max_rig_time_s" in done.stderr
+    assert not (tmp_path / "night").exists()
 
 
 def test_calibrate_killed_and_resumed_loses_and_repeats_nothing(tmp_path: Path,

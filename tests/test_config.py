@@ -44,6 +44,15 @@ def test_two_pi_velocity_of_the_demo() -> None:
         ("search", "strategy", "bayes", "one of phase_lock, bayesian, grid, coordinate, random"),
         ("nominal", "coupling_hz", "49 kHz", "a finite number"),
         ("acceptance", "min_inversion", 2.0, "<= 1"),
+        ("track", "budget_fraction", 0.0, "track.budget_fraction: expected a value > 0"),
+        ("track", "floor", 1.5, "track.floor: expected a value <= 1"),
+        ("track", "max_gain", 0.0, "track.max_gain"),
+        ("track", "min_shots_per_phase", 2.5, "track.min_shots_per_phase: expected an integer"),
+        ("track", "max_interval_s", 10.0, "track.max_interval_s: expected a value >= 60"),
+        ("track", "on_stop", "home", "track.on_stop: expected one of safe, last_good"),
+        ("track", "end_at_local_time", "7:30", 'track.end_at_local_time: expected a local time'),
+        ("track", "end_at_local_time", "24:00", '"HH:MM"'),
+        ("track", "max_rig_time_s", -1.0, "track.max_rig_time_s: expected a value >= 0"),
     ],
 )
 def test_bad_values_are_refused_with_key_expected_and_got(section: str, key: str, value: object,
@@ -101,3 +110,20 @@ def test_relative_paths_resolve_against_the_file(tmp_path: Path) -> None:
     path.write_text(text)
     config = load_config(path)
     assert config.calibration_store == path.parent / "../calibration/last-good.json"
+
+
+def test_track_table_is_optional_and_its_keys_related() -> None:
+    """Without [track] the night's defaults apply (5 % budget, floor 0.97, safe on stop); a
+    smallest correction not below the largest is refused naming both."""
+    data = _demo()
+    del data["track"]
+    config = config_from_dict(data, source="demo.toml")
+    assert (config.track.budget_fraction, config.track.floor, config.track.on_stop) == \
+        (0.05, 0.97, "safe")
+    data["track"] = {"min_correction_hz": 6000.0, "max_correction_hz": 5000.0}
+    with pytest.raises(ConfigError, match="track.min_correction_hz: expected a value < "
+                                          "track.max_correction_hz = 5000"):
+        config_from_dict(data, source="demo.toml")
+    data["track"] = {"end_at_local_time": "07:30"}
+    assert config_from_dict(data, source="demo.toml").track.end_at_minutes == 450
+

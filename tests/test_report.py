@@ -1,7 +1,7 @@
 """Tests of autotune.report: the morning report of run folders, dry runs and nights.
 
 Real inputs come from real processes: a dry run, a calibration killed with SIGKILL against a
-simulated rig subprocess, and two cycles of ``track`` (one module-scoped set, made once).
+simulated rig subprocess, and an hour-long night of ``track`` (one module-scoped set, made once).
 Constructed run folders are written with the real journal writer and real fringe estimates from
 binomial counts, to make the flags fire (and stay quiet) on purpose.
 
@@ -50,10 +50,12 @@ def _autotune(*args: str, timeout: float = RUN_TIMEOUT_S) -> subprocess.Complete
 
 
 
-def _config(path: Path, endpoint: str, store: Path) -> Path:
+def _config(path: Path, endpoint: str, store: Path, **tables: dict[str, Any]) -> Path:
     data = tomllib.loads(DRY_RUN_CONFIG.read_text())
     data["bus"]["endpoint"] = endpoint
     data["calibration"]["store"] = str(store)
+    for name, values in tables.items():
+        data.setdefault(name, {}).update(values)
     path.write_text(_to_toml(data))
     return path
 
@@ -96,9 +98,10 @@ def real(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
             if process.poll() is None:
                 process.kill()
                 process.wait(timeout=30)
-        track_config = _config(base / "t.toml", server.endpoint, store)
-        tracked = _autotune("track", "--config", str(track_config), "--cycles", "2",
-                            "--interval-s", "0", "--out", str(base / "track"))
+        track_config = _config(base / "t.toml", server.endpoint, store,
+                               track={"max_rig_time_s": 3600.0})
+        tracked = _autotune("track", "--config", str(track_config), "--out",
+                            str(base / "track"))
         assert tracked.returncode == 0, tracked.stderr[-3000:]
     finally:
         server.stop()
@@ -456,20 +459,23 @@ def test_report_of_a_killed_run(real: dict[str, Path], tmp_path: Path) -> None:
     assert "latest measurement" in fig.caption
 
 
-def test_report_of_a_track_folder_draws_the_night(real: dict[str, Path]) -> None:
-    """A track folder: one section per cycle and the night figure against rig time."""
+def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
+    """A night of track (one run folder): the night figure against rig time with every check,
+    and the corrections drawn from the night's 'correct' decisions (from/to set-points)."""
     done = _autotune("report", str(real["track"]))
     assert done.returncode == 0, done.stderr[-3000:]
     page = (real["track"] / report.HTML_NAME).read_text(encoding="utf-8")
-    assert 'id="run-cycle-0000"' in page and 'id="run-cycle-0001"' in page
     assert 'id="fig-run-night"' in page
     assert (real["track"] / "report-night.png").read_bytes()[:8] == PNG_SIGNATURE
     built = report.build_report(real["track"])
     fig = _figure(built, "", "night")
     checks = sum(len(line.get_xdata()) for line in fig.findobj(
         lambda a: str(a.get_gid()).startswith("inv-")))
-    assert checks == sum(len(_journal_estimates(real["track"] / c))
-                         for c in ("cycle-0000", "cycle-0001"))
+    assert checks == len(_journal_estimates(real["track"]))
+    records = read_journal(real["track"] / JOURNAL_NAME)
+    corrections = [r for r in records if r["type"] == "decision" and r["what"] == "correct"]
+    drawn = fig.findobj(lambda a: a.get_gid() == "corrections")
+    assert corrections and sum(len(line.get_xdata()) for line in drawn) == len(corrections)
 
 
 @pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "garbage", "bad_result"])

@@ -1,9 +1,10 @@
 """A night that survives anything, through real processes, real sockets and real files.
 
 - Kill and resume: SIGKILL, SIGINT or SIGTERM after each record kind of calibrate, retune and
-  track; the resume command the stop message names finishes the run; the journal keeps its
-  invariants (tests/journal_checks.py: write-ahead logging, at-least-once delivery with
-  idempotent receivers) and accounts for every shot the rig counted.
+  track (a night: after a check, after a correction, during a retune inside the night after a
+  thermal step, between checks); the resume command the stop message names finishes the run;
+  the journal keeps its invariants (tests/journal_checks.py: write-ahead logging, at-least-once
+  delivery with idempotent receivers) and accounts for every shot the rig counted.
 - A rig restarted on the same endpoint between acquisitions is noticed and nothing it
   measured at other set-points is filed.
 - Under heavy fault injection (drop 0.3, delay 0.3 s, corrupt 0.2) every shot the rig reports
@@ -19,7 +20,6 @@ import shlex
 import signal
 import subprocess
 import sys
-import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -61,7 +61,12 @@ def _rig_shots(endpoint: str) -> int:
 
 def _matcher(spec: str) -> Callable[[dict[str, Any]], bool]:
     """``kind``, ``kind:label`` (measurements, estimates) or ``decision:what``; ``a|b`` for
-    either of two labels."""
+    either of two labels; for a night, ``between_checks`` (a wait after the first check) and
+    ``night_retune`` (a retune begun inside the night)."""
+    if spec == "between_checks":
+        return lambda r: r["type"] == "wait" and r.get("point", 0) >= 1
+    if spec == "night_retune":
+        return lambda r: r["type"] == "decision" and r["what"] == "retune" and r["index"] >= 1
     kind, _, detail = spec.partition(":")
 
     def match(record: dict[str, Any]) -> bool:
@@ -76,9 +81,12 @@ def _matcher(spec: str) -> Callable[[dict[str, Any]], bool]:
 
 
 def _journals(run: Path) -> list[Path]:
-    if (run / JOURNAL_NAME).exists():
-        return [run / JOURNAL_NAME]
-    return sorted(run.glob("cycle-*/" + JOURNAL_NAME))
+    return [run / JOURNAL_NAME] if (run / JOURNAL_NAME).exists() else []
+
+
+#: A night of three hours of rig time at the tiny sizes (a retune's check and verification at
+#: 400 shots per phase).
+NIGHT = {"track": {"max_rig_time_s": 3 * 3600.0, "retune_shots_per_phase": 400}}
 
 
 def _stop(process: subprocess.Popen[str], before: Callable[[], None],
@@ -101,7 +109,7 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
     server = servers("--delay-s", "0.01", name=f"rig-{command}")
     store = tmp_path / "good.json"
     config = tiny_config(tmp_path / "c.toml", server.endpoint, store,
-                         search={"strategy": strategy})
+                         search={"strategy": strategy}, **NIGHT)
     if command in ("retune", "track"):
         done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "first"))
         assert done.returncode == 0, done.stderr[-3000:]
@@ -109,16 +117,15 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
             rig.thermal_step(15e3)
     run = tmp_path / "run"
     args = [command, "--config", str(config), "--out", str(run)]
-    if command == "track":
-        args += ["--cycles", "2", "--interval-s", "3"]
     process = start_autotune(*args)
     try:
-        journal = run / "cycle-0000" / JOURNAL_NAME if command == "track" else run / JOURNAL_NAME
-        if spec == "between_cycles":
-            wait_for_record(journal, _matcher("end"), process=process)
-            time.sleep(0.5)
-        else:
-            wait_for_record(journal, _matcher(spec), process=process)
+        journal = run / JOURNAL_NAME
+        if spec == "night_retune":
+            # A thermal step once the night holds: its checks raise the alarm, a retune begins.
+            wait_for_record(journal, _matcher("hold"), process=process)
+            with _client(server.endpoint) as rig:
+                rig.thermal_step(15e3)
+        wait_for_record(journal, _matcher(spec), process=process)
         process.send_signal(sig)
         _, err = process.communicate(timeout=120)
     finally:
@@ -128,8 +135,6 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
     if sig == signal.SIGKILL:
         assert process.returncode == -signal.SIGKILL
         hint = f"autotune {command} --config {config} --resume {run}"
-        if command == "track":
-            hint += " --interval-s 3"
     else:
         last = read_journal(journal)[-1] if journal.exists() else {}
         if process.returncode == 0 or (last.get("type") == "end" and
@@ -137,14 +142,9 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
             pytest.skip("the run finished before the signal was handled")  # timing only
         assert process.returncode == 130, err[-3000:]
         assert "stopped by signal" in err
-        if spec == "between_cycles":
-            assert "no move was in progress" in err
-        else:
-            assert "the rig confirmed its safe set-points" in err
+        assert "the rig confirmed its safe set-points" in err
         hint = err.split("Continue with: ", 1)[1].strip().splitlines()[0]
-        assert hint.startswith(f"autotune {command} ") and "--resume" in hint
-    if command == "track":
-        hint += " --cycles 1"  # finish the cycle in progress (or one more), then stop
+        assert hint == f"autotune {command} --config {config} --resume {run}"
     resumed = subprocess.run([sys.executable, "-m", "autotune.cli", *shlex.split(hint)[1:]],
                              capture_output=True, text=True, timeout=600, cwd=REPO,
                              stdin=subprocess.DEVNULL)
@@ -172,7 +172,9 @@ CASES = {
     ("retune", "phase_lock"): ["measurement:check", "request", "estimate:check",
                                "decision:verdict", "proposal", "estimate:correct|verify"],
     ("retune", "bayesian"): ["estimate:check", "decision:search", "proposal"],
-    ("track", "phase_lock"): ["estimate:check", "between_cycles"],
+    ("track", "phase_lock"): ["hold", "decision:correct", "night_retune", "between_checks",
+                              "request", "estimate:hold", "decision:plan", "decision:alarm",
+                              "decision:stage_done", "estimate:check"],
 }
 DEFAULT = [("calibrate", "phase_lock", "request", signal.SIGKILL),
            ("calibrate", "phase_lock", "estimate", signal.SIGINT),
@@ -181,12 +183,13 @@ DEFAULT = [("calibrate", "phase_lock", "request", signal.SIGKILL),
            ("calibrate", "bayesian", "decision:refine_plan", signal.SIGTERM),
            ("retune", "phase_lock", "estimate:check", signal.SIGTERM),
            ("retune", "phase_lock", "decision:verdict", signal.SIGINT),
-           ("track", "phase_lock", "estimate:check", signal.SIGKILL),
-           ("track", "phase_lock", "between_cycles", signal.SIGINT)]
+           ("track", "phase_lock", "hold", signal.SIGKILL),
+           ("track", "phase_lock", "decision:correct", signal.SIGINT),
+           ("track", "phase_lock", "night_retune", signal.SIGKILL),
+           ("track", "phase_lock", "between_checks", signal.SIGTERM)]
 COMPLETE = [(command, strategy, spec, sig) for (command, strategy), specs in CASES.items()
             for spec in specs for sig in SIGNALS
-            if (command, strategy, spec, sig) not in DEFAULT
-            and not (spec == "between_cycles" and sig == signal.SIGKILL)]
+            if (command, strategy, spec, sig) not in DEFAULT]
 
 
 def _case_id(case: tuple[str, str, str, signal.Signals]) -> str:

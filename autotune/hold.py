@@ -1,0 +1,911 @@
+"""Holding the 2π condition through the night: the lock, the sequential test, the plan (pure).
+
+``autotune track`` (:mod:`autotune.track`) keeps the rig on the condition between guided
+retunes (:func:`autotune.loop.run_guided_stage`). Everything it decides comes from this
+module, which does no I/O:
+
+- **The drift lock** (:class:`DriftLock`). A short check at the set-points in force measures
+  the photon phase shift; with the slope, cubic and phase at the peak stored by the last
+  calibration or retune (:class:`autotune.guided.LockPrior`) its phase error gives the
+  set-point's offset from the peak, ``D`` (:func:`autotune.guided.detuning_offset`), so the
+  check measures the peak's detuning set-point ``y = d - D`` with variance ``R``. A two-state
+  Kalman filter (R. E. Kalman, J. Basic Eng. 82, 35 (1960)) follows that peak and its drift
+  rate: the peak ``p`` performs a random walk on top of a rate ``r`` that itself wanders
+  slowly (PHYSICS.md section 4: a slow ramp plus a random walk). After each check the
+  detuning set-point is moved to the filter's prediction of the peak at the middle of the
+  coming interval. The gain is the filter's, bounded by ``max_gain`` (the Joseph form keeps the
+  covariance right for any gain), and a correction is bounded by ``max_correction_hz`` and the
+  rig's steps.
+- **When the lock cannot follow** (:class:`SequentialTest`). The filter's standardised
+  innovations ``z = (y - p^-) / sqrt(P^- + R)`` are independent standard normals while the
+  model holds (a property of the optimal filter; suboptimal gains keep them close). A step of
+  the cavity (a thermal event) shifts their mean. Page's two-sided CUSUM (E. S. Page,
+  Biometrika 41, 100 (1954)), ``S+ = max(0, S+ + z - k)`` and ``S- = max(0, S- - z - k)``, raises
+  the alarm when either exceeds ``h``; a third, one-sided CUSUM watches the inversion for a drop
+  of ``inversion_drop`` of its reference (the phase lock is blind to a lost velocity or fringe
+  contrast). The reference ``k`` is half the design shift, the shift in detuning that would take
+  the inversion below the floor (``1 - cos(eps / 2)`` of PHYSICS.md section 5b's phase error
+  ``eps``, see :mod:`autotune.guided`); ``h`` is set by the mean time between false alarms the
+  user asks for, through Siegmund's approximation of the average run length (:func:`cusum_arl`).
+  The checks' variances are the pooled ones of the measurements so far (:class:`NoiseModel`): a
+  fringe's own delta-method error is itself noisy at a few atoms per phase. The inversion's
+  reference is the precision-weighted mean of the last stage's measurement and the checks since
+  (kept by the shell), so that the verification's own error does not bias every check alike
+  (a self-starting chart: D. M. Hawkins, The Statistician 36, 299 (1987), from memory).
+  When a statistic rises above a warning level ``w`` the next check follows at once instead of
+  after the interval (variable sampling intervals: M. R. Reynolds Jr., R. W. Amin, J. C. Arnold
+  and J. A. Nachlas, Technometrics 30, 181 (1988), from memory), so a step is confirmed within
+  a few check durations.
+- **The plan** (:func:`plan_checks`). The interval between checks and their shots are chosen
+  from the measured noise (the phase and inversion variance per shot of the checks so far),
+  the stored slope and the drift filter's state, given the share of beam time the checks may
+  take: the interval that minimises the expected delay to the alarm, averaged over shifts from
+  the design shift to the largest the phase still reads (the capture range; shifts equally
+  likely per decade), among those whose shots per check reach ``min_shots_per_phase`` and whose
+  tracking error between checks stays below a third of the design shift.
+
+Everything is a deterministic function of its inputs, so a resumed night rebuilds the same
+decisions from the journal's snapshots.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, fields, replace
+from typing import Any
+
+import numpy as np
+from scipy import optimize
+
+from autotune.guided import LockPrior, LockSettings, detuning_offset, phase_signal_note
+from autotune.search import PointResult
+
+__all__ = [
+    "SIEGMUND_CORRECTION",
+    "cusum_arl",
+    "two_sided_arl",
+    "cusum_threshold",
+    "SequentialTest",
+    "DriftLock",
+    "HoldSettings",
+    "NoiseModel",
+    "CheckPlan",
+    "plan_checks",
+    "floor_shift_hz",
+    "known_cubic",
+    "Assessment",
+    "assess_check",
+    "peak_after_change",
+]
+
+#: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
+#: ``b = h + 2 * 0.583`` (D. Siegmund, Sequential Analysis, Springer 1985; from memory).
+SIEGMUND_CORRECTION = 1.166
+
+_TWO_PI = 2.0 * math.pi
+# The drift rate itself wanders: 0.2 Hz/s per square root of an hour (a ramp of 0.7 kHz/h
+# that may change by that much over an hour). Only its order matters: it keeps the filter
+# from freezing its rate estimate over a long night.
+_RATE_WALK_HZ_PER_S_PER_SQRT_S = 0.2 / 60.0
+# Shortest interval the planner considers (s) and the number of candidate intervals.
+_MIN_INTERVAL_S = 30.0
+_CANDIDATES = 60
+# Riccati iterations for the filter's steady state in the planner.
+_RICCATI_STEPS = 400
+# Shifts the planner averages the expected delay over (log-spaced, design to capture range).
+_SHIFTS = 8
+
+
+def _finite(value: Any) -> bool:
+    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer)) \
+        and math.isfinite(float(value))
+
+
+# --------------------------------------------------------------------------------------------
+# The sequential test
+# --------------------------------------------------------------------------------------------
+
+
+def cusum_arl(shift: float, reference: float, threshold: float) -> float:
+    """Siegmund's approximation of a one-sided CUSUM's average run length (checks).
+
+    For ``S_n = max(0, S_{n-1} + z_n - k)`` with ``z ~ N(shift, 1)`` and an alarm at
+    ``S_n > h``: ``ARL = (exp(-2 D b) + 2 D b - 1) / (2 D^2)`` with ``D = shift - k`` and
+    ``b = h + 1.166``; ``b^2`` when ``D = 0`` (D. Siegmund, Sequential Analysis, Springer 1985;
+    from memory). Infinite when the exponential overflows.
+    """
+    delta = float(shift) - float(reference)
+    b = float(threshold) + SIEGMUND_CORRECTION
+    if abs(delta) < 1e-9:
+        return b * b
+    x = 2.0 * delta * b
+    if -x > 700.0:
+        return math.inf
+    return (math.expm1(-x) + x) / (2.0 * delta * delta)
+
+
+def two_sided_arl(shift: float, reference: float, threshold: float) -> float:
+    """Average run length of two one-sided CUSUMs (upper on ``z``, lower on ``-z``) run together.
+
+    Their alarm rates add: ``1 / ARL = 1 / ARL+(shift) + 1 / ARL-(shift)``, with
+    ``ARL-(shift) = ARL+(-shift)`` (the usual approximation for a two-sided CUSUM; from memory).
+    """
+    upper = cusum_arl(shift, reference, threshold)
+    lower = cusum_arl(-shift, reference, threshold)
+    rate = (0.0 if math.isinf(upper) else 1.0 / upper) + (0.0 if math.isinf(lower) else 1.0 / lower)
+    return math.inf if rate == 0.0 else 1.0 / rate
+
+
+def cusum_threshold(reference: float, in_control_arl: float) -> float:
+    """The threshold ``h`` whose one-sided in-control ARL (Siegmund) is ``in_control_arl`` checks.
+
+    Returns 0 when even ``h = 0`` reaches it.
+    """
+    if not (_finite(reference) and reference >= 0.0):
+        raise ValueError(f"reference: expected a finite number >= 0, got {reference!r}")
+    if not (_finite(in_control_arl) and in_control_arl >= 1.0):
+        raise ValueError(f"in_control_arl: expected a finite number >= 1, got {in_control_arl!r}")
+    target = math.log(in_control_arl)
+    if math.log(cusum_arl(0.0, reference, 0.0)) >= target:
+        return 0.0
+    high = 1.0
+    while math.log(cusum_arl(0.0, reference, high)) < target:
+        high *= 2.0
+        if high > 1e4:
+            raise ValueError(f"in_control_arl {in_control_arl!r} out of reach")
+    return float(optimize.brentq(lambda h: math.log(cusum_arl(0.0, reference, h)) - target,
+                                 0.0, high, xtol=1e-9))
+
+
+@dataclass(frozen=True)
+class SequentialTest:
+    """The design of the night's CUSUMs, in units of each statistic's standard deviation.
+
+    Attributes
+    ----------
+    reference, threshold, warning : float
+        ``k``, ``h`` and the warning level ``w`` of the two-sided test on the lock's
+        standardised innovations.
+    inversion_reference, inversion_threshold, inversion_warning : float
+        The same for the one-sided test on the inversion's standardised drop.
+    """
+
+    reference: float
+    threshold: float
+    warning: float
+    inversion_reference: float
+    inversion_threshold: float
+    inversion_warning: float
+
+    @staticmethod
+    def step(upper: float, lower: float, z: float, reference: float) -> tuple[float, float]:
+        """One step of Page's two-sided CUSUM: ``(max(0, S+ + z - k), max(0, S- - z - k))``."""
+        return max(0.0, upper + z - reference), max(0.0, lower - z - reference)
+
+
+# --------------------------------------------------------------------------------------------
+# The drift lock
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Innovation:
+    """One update of the drift lock: the measured peak minus the predicted one.
+
+    Attributes
+    ----------
+    value_hz : float
+        ``y - p^-`` (Hz).
+    variance_hz2 : float
+        Its predicted variance ``P^- + R`` (Hz^2).
+    gain : float
+        The gain applied to the peak (bounded by ``max_gain``).
+    z : float
+        ``value_hz / sqrt(variance_hz2)``.
+    """
+
+    value_hz: float
+    variance_hz2: float
+    gain: float
+    z: float
+
+
+@dataclass(frozen=True)
+class DriftLock:
+    """Kalman filter of the peak's detuning set-point ``p`` (Hz) and its drift rate ``r`` (Hz/s).
+
+    Model between checks ``tau`` apart: ``p <- p + r tau + w_p``, ``r <- r + w_r`` with
+    ``Var w_p = q tau`` (the cavity's random walk, ``q = walk_hz_per_sqrt_s^2``) and the rate
+    wandering as a random walk of its own (integrated into ``p``). A check measures ``p``
+    directly: ``y = d - D``.
+
+    Attributes
+    ----------
+    clock_s : float
+        Rig time of the estimate (s).
+    peak_hz, rate_hz_per_s : float
+        Posterior means.
+    covariance : tuple of tuples
+        Their 2 x 2 covariance (Hz^2, Hz^2/s, Hz^2/s^2).
+    walk_hz_per_sqrt_s : float
+        The random walk assumed for the peak (Hz/s^0.5).
+    """
+
+    clock_s: float
+    peak_hz: float
+    rate_hz_per_s: float
+    covariance: tuple[tuple[float, float], tuple[float, float]]
+    walk_hz_per_sqrt_s: float
+
+    @classmethod
+    def start(cls, clock_s: float, peak_hz: float, peak_stderr_hz: float, rate_hz_per_s: float,
+              rate_stderr_hz_per_s: float, walk_hz_per_sqrt_s: float) -> DriftLock:
+        """A lock at ``peak_hz`` known to ``peak_stderr_hz``, its rate to ``rate_stderr_hz_per_s``."""
+        for name, value in (("clock_s", clock_s), ("peak_hz", peak_hz),
+                            ("peak_stderr_hz", peak_stderr_hz), ("rate_hz_per_s", rate_hz_per_s),
+                            ("rate_stderr_hz_per_s", rate_stderr_hz_per_s),
+                            ("walk_hz_per_sqrt_s", walk_hz_per_sqrt_s)):
+            if not _finite(value):
+                raise ValueError(f"{name}: expected a finite number, got {value!r}")
+        return cls(float(clock_s), float(peak_hz), float(rate_hz_per_s),
+                   ((float(peak_stderr_hz) ** 2, 0.0), (0.0, float(rate_stderr_hz_per_s) ** 2)),
+                   float(walk_hz_per_sqrt_s))
+
+    @property
+    def _cov(self) -> np.ndarray:
+        return np.array(self.covariance, dtype=float)
+
+    @property
+    def peak_stderr_hz(self) -> float:
+        """Standard error of the peak (Hz)."""
+        return math.sqrt(max(self.covariance[0][0], 0.0))
+
+    @property
+    def rate_stderr_hz_per_s(self) -> float:
+        """Standard error of the rate (Hz/s)."""
+        return math.sqrt(max(self.covariance[1][1], 0.0))
+
+    def _process(self, tau: float) -> np.ndarray:
+        q = self.walk_hz_per_sqrt_s**2
+        qr = _RATE_WALK_HZ_PER_S_PER_SQRT_S**2
+        return np.array([[q * tau + qr * tau**3 / 3.0, qr * tau**2 / 2.0],
+                         [qr * tau**2 / 2.0, qr * tau]])
+
+    def predict(self, clock_s: float) -> DriftLock:
+        """The estimate carried to ``clock_s`` (forwards or backwards in rig time)."""
+        tau = float(clock_s) - self.clock_s
+        transition = np.array([[1.0, tau], [0.0, 1.0]])
+        cov = transition @ self._cov @ transition.T + self._process(abs(tau))
+        cov = 0.5 * (cov + cov.T)
+        return replace(self, clock_s=float(clock_s),
+                       peak_hz=self.peak_hz + self.rate_hz_per_s * tau,
+                       covariance=((float(cov[0, 0]), float(cov[0, 1])),
+                                   (float(cov[1, 0]), float(cov[1, 1]))))
+
+    def peak_at(self, clock_s: float) -> float:
+        """Predicted peak at ``clock_s`` (Hz)."""
+        return self.peak_hz + self.rate_hz_per_s * (float(clock_s) - self.clock_s)
+
+    def update(self, clock_s: float, peak_hz: float, variance_hz2: float, *,
+               max_gain: float = 1.0) -> tuple[DriftLock, Innovation]:
+        """Tell the lock one measured peak (Hz, with its variance) at ``clock_s``.
+
+        The Kalman gain of the peak is bounded by ``max_gain`` (both gains scaled alike); the
+        covariance is updated in Joseph form, right for any gain.
+        """
+        if not (_finite(peak_hz) and _finite(variance_hz2) and variance_hz2 > 0.0):
+            raise ValueError(f"peak_hz, variance_hz2: expected finite numbers (variance > 0), "
+                             f"got {peak_hz!r}, {variance_hz2!r}")
+        prior = self.predict(clock_s)
+        cov = prior._cov
+        innovation = float(peak_hz) - prior.peak_hz
+        s = float(cov[0, 0] + variance_hz2)
+        gain = cov[:, 0] / s
+        if gain[0] > max_gain:
+            gain = gain * (max_gain / gain[0])
+        a = np.eye(2) - np.outer(gain, [1.0, 0.0])
+        post = a @ cov @ a.T + variance_hz2 * np.outer(gain, gain)
+        post = 0.5 * (post + post.T)
+        lock = replace(prior, peak_hz=prior.peak_hz + float(gain[0]) * innovation,
+                       rate_hz_per_s=prior.rate_hz_per_s + float(gain[1]) * innovation,
+                       covariance=((float(post[0, 0]), float(post[0, 1])),
+                                   (float(post[1, 0]), float(post[1, 1]))))
+        return lock, Innovation(innovation, s, float(gain[0]), innovation / math.sqrt(s))
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return {"clock_s": self.clock_s, "peak_hz": self.peak_hz,
+                "rate_hz_per_s": self.rate_hz_per_s,
+                "covariance": [list(row) for row in self.covariance],
+                "walk_hz_per_sqrt_s": self.walk_hz_per_sqrt_s}
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> DriftLock:
+        """Rebuild from :meth:`to_dict`."""
+        cov = data["covariance"]
+        return cls(float(data["clock_s"]), float(data["peak_hz"]), float(data["rate_hz_per_s"]),
+                   ((float(cov[0][0]), float(cov[0][1])), (float(cov[1][0]), float(cov[1][1]))),
+                   float(data["walk_hz_per_sqrt_s"]))
+
+
+# --------------------------------------------------------------------------------------------
+# Settings and noise
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class HoldSettings:
+    """What the night's decisions depend on (from ``[track]``, ``[lock]`` and ``[measurement]``).
+
+    Attributes
+    ----------
+    floor : float
+        The condition: inversion at least this fraction of the best.
+    budget_fraction : float
+        Largest share of beam time holding may take (checks, retunes, calibrations).
+    false_alarm_interval_s : float
+        Mean rig time between false alarms the sequential test is designed for (s).
+    max_gain : float
+        Largest gain of the lock's correction of the peak.
+    max_correction_hz, min_correction_hz : float
+        Largest correction of one check, and the smallest one worth a move (Hz).
+    min_shots_per_phase, max_shots_per_phase : int
+        Shots per field and Ramsey phase of a check: at least, and at most (the rig's limit).
+    max_interval_s : float
+        Longest interval between checks (rig s).
+    walk_hz_per_sqrt_s : float
+        Random walk of the cavity assumed by the lock (Hz/s^0.5).
+    inversion_drop : float
+        Drop of the inversion, as a fraction of its reference, that the inversion watch is
+        designed to detect.
+    ramsey_phases : int
+        Ramsey phases of a check (the measurement's).
+    repetition_rate_hz : float
+        Shots per second of rig time (the rig's).
+    lock : LockSettings
+        The phase lock's settings (capture range, contrast ratio) for the usability of a check.
+    """
+
+    floor: float
+    budget_fraction: float
+    false_alarm_interval_s: float
+    max_gain: float
+    max_correction_hz: float
+    min_correction_hz: float
+    min_shots_per_phase: int
+    max_shots_per_phase: int
+    max_interval_s: float
+    walk_hz_per_sqrt_s: float
+    inversion_drop: float
+    ramsey_phases: int
+    repetition_rate_hz: float
+    lock: LockSettings
+
+
+def known_cubic(prior: LockPrior) -> float:
+    """The stored cubic of the phase curve when it is known (two standard errors from zero), else 0.
+
+    A short calibration leaves the cubic poorly determined; used anyway it can bend a large
+    phase error into a wrong detuning (the linear discriminator is the better guess then).
+    """
+    c, sd = prior.cubic_rad_per_hz3, prior.cubic_stderr_rad_per_hz3
+    return c if abs(c) >= 2.0 * sd else 0.0
+
+
+def floor_shift_hz(floor: float, slope_rad_per_hz: float) -> float:
+    """The detuning error whose phase error alone takes the inversion to ``floor`` of the best (Hz).
+
+    With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (PHYSICS.md section 3, see
+    :mod:`autotune.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
+    """
+    return 2.0 * math.acos(float(floor)) / abs(float(slope_rad_per_hz))
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """Variance per shot of a check's phase shift and inversion, measured.
+
+    A fringe pair's estimates have variances that scale as one over the shots (binomial
+    counts; common practice), so ``phase_variance_shots = stderr^2 * shots`` is a property of
+    the rig at its set-points; the median over the measurements so far is robust to one odd
+    fringe.
+
+    Attributes
+    ----------
+    phase_variance_shots : float
+        rad^2 times shots.
+    inversion_variance_shots : float
+        Inversion variance times shots.
+    measurements : int
+        How many measurements it comes from.
+    """
+
+    phase_variance_shots: float
+    inversion_variance_shots: float
+    measurements: int
+
+    @classmethod
+    def from_estimates(cls, rows: Sequence[tuple[float, float, int]]) -> NoiseModel:
+        """From ``(phase_stderr_rad, inversion_stderr, shots)`` of measurements (at least one)."""
+        usable = [(p, i, n) for p, i, n in rows if n > 0 and _finite(p) and _finite(i) and p > 0]
+        if not usable:
+            raise ValueError("NoiseModel: expected at least one measurement with a phase stderr")
+        return cls(float(np.median([p * p * n for p, _, n in usable])),
+                   float(np.median([i * i * n for _, i, n in usable])), len(usable))
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return asdict(self)
+
+
+# --------------------------------------------------------------------------------------------
+# The plan of the checks
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CheckPlan:
+    """The cadence and shots of the checks and the design of the sequential test.
+
+    Attributes
+    ----------
+    interval_s : float
+        Rig time from one check's start to the next (s).
+    shots_per_phase : int
+        Shots per field and Ramsey phase of a check.
+    check_s : float
+        Beam time of one check (s).
+    check_share : float
+        Share of beam time the checks take (``check_s / interval_s``).
+    detuning_stderr_hz : float
+        Standard error of one check's offset from the peak (Hz).
+    design_shift_hz : float
+        The shift the test is designed for (:func:`floor_shift_hz`).
+    test : SequentialTest
+        ``k``, ``h``, ``w`` of both statistics.
+    expected_delay_s : float
+        Expected rig time from a shift to its alarm, averaged over shifts from the design shift
+        to the capture range of the phase (the planner's approximation).
+    step_delay_s : float
+        The same for a shift of ``step_hz`` (a thermal step).
+    false_alarm_interval_h : float
+        Mean rig time between false alarms of the three one-sided charts together (Siegmund).
+    tracking_error_hz : float
+        Predicted rms error of the held detuning between checks (Hz).
+    reason : str
+        The choice in one sentence, with its numbers.
+    inputs : dict
+        What it was computed from.
+    """
+
+    interval_s: float
+    shots_per_phase: int
+    check_s: float
+    check_share: float
+    detuning_stderr_hz: float
+    design_shift_hz: float
+    test: SequentialTest
+    expected_delay_s: float
+    step_delay_s: float
+    false_alarm_interval_h: float
+    tracking_error_hz: float
+    reason: str
+    inputs: dict[str, Any]
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping (infinities as None)."""
+        out: dict[str, Any] = {}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if isinstance(value, SequentialTest):
+                out[f.name] = asdict(value)
+            elif isinstance(value, float) and not math.isfinite(value):
+                out[f.name] = None
+            else:
+                out[f.name] = value
+        return out
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> CheckPlan:
+        """Rebuild from :meth:`to_dict`."""
+        values = dict(data)
+        values["test"] = SequentialTest(**data["test"])
+        for name in ("expected_delay_s", "step_delay_s", "false_alarm_interval_h"):
+            if values.get(name) is None:
+                values[name] = math.inf
+        return cls(**values)
+
+
+def _steady_peak_variance(interval_s: float, variance_hz2: float, lock: DriftLock,
+                          max_gain: float) -> tuple[float, float]:
+    """Steady-state (prior, posterior) variance of the peak for checks ``interval_s`` apart."""
+    state = lock
+    prior = posterior = lock.covariance[0][0]
+    for _ in range(_RICCATI_STEPS):
+        ahead = state.predict(state.clock_s + interval_s)
+        prior = ahead.covariance[0][0]
+        state, _ = ahead.update(ahead.clock_s, ahead.peak_hz, variance_hz2, max_gain=max_gain)
+        if abs(state.covariance[0][0] - posterior) <= 1e-9 * max(posterior, 1.0):
+            posterior = state.covariance[0][0]
+            break
+        posterior = state.covariance[0][0]
+    return prior, posterior
+
+
+def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
+           interval_s: float, check_s: float) -> float:
+    """Expected rig time from a shift of ``shift_sd`` standard deviations to the alarm.
+
+    The shift happens uniformly within an interval; the statistic grows by ``shift - k`` per
+    check on average; checks come an interval apart until it passes the warning level, then
+    back to back (each a check's duration).
+    """
+    increment = shift_sd - reference
+    if increment <= 0.0:
+        return math.inf
+    run_length = max(1.0, cusum_arl(shift_sd, reference, threshold))
+    spaced = max(1.0, math.ceil(warning / increment)) if warning > 0 else 1.0
+    spaced = min(spaced, run_length)
+    return 0.5 * interval_s + (spaced - 1.0) * interval_s + run_length * check_s
+
+
+def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, lock: DriftLock,
+                reference_inversion: float, reference_stderr: float, check_share: float,
+                step_hz: float = 15e3) -> CheckPlan:
+    """Choose the interval and shots of the checks and design the sequential test.
+
+    Parameters
+    ----------
+    settings : HoldSettings
+    noise : NoiseModel
+        Measured phase and inversion variance per shot.
+    prior : LockPrior
+        The stored phase curve (its slope sets the detuning noise and the design shift).
+    lock : DriftLock
+        The drift filter now (rate and its uncertainty enter the tracking error).
+    reference_inversion, reference_stderr : float
+        The inversion the watch compares with, and its standard error.
+    check_share : float
+        Share of beam time the checks may take.
+    step_hz : float
+        A second shift to report the expected delay for (a thermal step, Hz).
+
+    Notes
+    -----
+    For each candidate interval ``T`` (log-spaced from 30 s to ``max_interval_s``) the checks
+    get ``check_share * T`` of beam time; shots per phase below ``min_shots_per_phase`` rule the
+    interval out, above ``max_shots_per_phase`` they are capped. The test's ``k`` is half the
+    design shift in units of the innovation's standard deviation (Page's choice for a known
+    shift), ``h`` gives each of the three one-sided charts an in-control run length of three
+    times ``false_alarm_interval_s / T`` checks (their rates add), and ``w = h / 2``. Among the
+    intervals whose predicted tracking error stays below a third of the design shift, the one
+    with the least expected delay, averaged over 8 shifts log-spaced from the design shift to
+    the capture range, wins (ties to the longer interval).
+    """
+    if not (0.0 < check_share <= 1.0):
+        raise ValueError(f"check_share: expected a number in (0, 1], got {check_share!r}")
+    slope = abs(prior.slope_rad_per_hz)
+    design = floor_shift_hz(settings.floor, prior.slope_rad_per_hz)
+    capture = settings.lock.capture_phase_error_rad / slope
+    shifts = np.geomspace(design, max(capture, design), _SHIFTS)
+    rate = settings.repetition_rate_hz
+    phases = settings.ramsey_phases
+    best: tuple[float, float, dict[str, Any]] | None = None
+    fallback: tuple[float, dict[str, Any]] | None = None
+    top = max(settings.max_interval_s, _MIN_INTERVAL_S)
+    for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
+        interval = float(interval)
+        per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
+        if per_phase < settings.min_shots_per_phase:
+            continue
+        per_phase = min(per_phase, settings.max_shots_per_phase)
+        shots = 2 * phases * per_phase
+        check_s = shots / rate
+        detuning_var = noise.phase_variance_shots / shots / slope**2
+        p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
+        innovation_sd = math.sqrt(p_prior + detuning_var)
+        shift = design / innovation_sd
+        k = 0.5 * shift
+        checks_between_false_alarms = max(settings.false_alarm_interval_s / interval, 1.0)
+        h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
+        inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
+        inv_shift = settings.inversion_drop * reference_inversion / inv_sd
+        k_inv = 0.5 * inv_shift
+        h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
+        delay = float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h, interval, check_s)
+                               for x in shifts]))
+        step_delay = _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s)
+        rate_sd = lock.rate_stderr_hz_per_s
+        tracking = math.sqrt(p_post + settings.walk_hz_per_sqrt_s**2 * interval / 2.0
+                             + (rate_sd * interval) ** 2 / 3.0
+                             + (lock.rate_hz_per_s * interval) ** 2 / 12.0)
+        arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
+        row = {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
+               "detuning_stderr_hz": math.sqrt(detuning_var),
+               "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
+               "expected_delay_s": delay, "step_delay_s": step_delay,
+               "false_alarm_interval_h": arl * interval / 3600.0, "tracking_error_hz": tracking,
+               "innovation_sd_hz": innovation_sd}
+        if fallback is None or tracking < fallback[0]:
+            fallback = (tracking, row)
+        if tracking > design / 3.0:
+            continue
+        if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6 and interval > best[1]):
+            best = (delay, interval, row)
+    inputs = {"phase_variance_shots": noise.phase_variance_shots,
+              "inversion_variance_shots": noise.inversion_variance_shots,
+              "noise_measurements": noise.measurements, "slope_rad_per_hz": prior.slope_rad_per_hz,
+              "rate_hz_per_s": lock.rate_hz_per_s, "rate_stderr_hz_per_s": lock.rate_stderr_hz_per_s,
+              "walk_hz_per_sqrt_s": settings.walk_hz_per_sqrt_s, "check_share": check_share,
+              "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
+              "floor": settings.floor, "step_hz": step_hz}
+    if best is not None:
+        row = best[2]
+        why = (f"least mean expected delay to the alarm for shifts from {design / 1e3:.1f} kHz (the "
+               f"detuning error that takes the inversion to {settings.floor:.2f} of the best) to "
+               f"{capture / 1e3:.1f} kHz (the capture range of the phase), among the intervals "
+               f"whose tracking error stays below a third of the former")
+    elif fallback is not None:
+        row = fallback[1]
+        why = (f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
+               f"design shift within the budget: the smallest tracking error")
+    else:
+        # Not even the longest interval affords min_shots_per_phase: take them anyway and let
+        # the interval stretch until the checks fit the share.
+        per_phase = settings.min_shots_per_phase
+        shots = 2 * phases * per_phase
+        check_s = shots / rate
+        interval = check_s / check_share
+        detuning_var = noise.phase_variance_shots / shots / slope**2
+        p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
+        innovation_sd = math.sqrt(p_prior + detuning_var)
+        k = 0.5 * design / innovation_sd
+        checks = max(settings.false_alarm_interval_s / interval, 1.0)
+        h = cusum_threshold(k, 3.0 * checks)
+        inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
+        k_inv = 0.5 * settings.inversion_drop * reference_inversion / inv_sd
+        h_inv = cusum_threshold(k_inv, 3.0 * checks)
+        arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
+        row = {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
+               "detuning_stderr_hz": math.sqrt(detuning_var),
+               "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
+               "expected_delay_s": float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h,
+                                                         interval, check_s) for x in shifts])),
+               "step_delay_s": _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s),
+               "false_alarm_interval_h": arl * interval / 3600.0,
+               "tracking_error_hz": math.sqrt(p_post), "innovation_sd_hz": innovation_sd}
+        why = (f"even {settings.max_interval_s:g} s between checks does not afford "
+               f"{settings.min_shots_per_phase} shots per phase within the share: the interval "
+               f"is stretched to fit")
+    test = row["test"]
+    inputs["innovation_sd_hz"] = row.pop("innovation_sd_hz")
+    reason = (f"a check of {row['shots_per_phase']} shots per phase ({row['check_s']:.0f} s of beam, "
+              f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak) every "
+              f"{row['interval_s'] / 60:.1f} min of rig time ({row['check_s'] / row['interval_s']:.1%} "
+              f"of the beam): {why}; test k {test.reference:.2f}, h {test.threshold:.2f} "
+              f"(false alarms every {row['false_alarm_interval_h']:.0f} h, Siegmund), expected delay "
+              f"{row['expected_delay_s'] / 60:.1f} min (mean over those shifts), "
+              f"{row['step_delay_s'] / 60:.1f} min for {step_hz / 1e3:.0f} kHz")
+    return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
+                     check_s=row["check_s"], check_share=row["check_s"] / row["interval_s"],
+                     detuning_stderr_hz=row["detuning_stderr_hz"], design_shift_hz=design,
+                     test=test, expected_delay_s=row["expected_delay_s"],
+                     step_delay_s=row["step_delay_s"],
+                     false_alarm_interval_h=row["false_alarm_interval_h"],
+                     tracking_error_hz=row["tracking_error_hz"], reason=reason, inputs=inputs)
+
+
+# --------------------------------------------------------------------------------------------
+# One check
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Assessment:
+    """What one check says and what to do about it.
+
+    Attributes
+    ----------
+    usable : bool
+        Whether the phase signal could steer the detuning (else ``note`` says why).
+    note : str
+        Why not usable, or empty.
+    offset_hz, offset_stderr_hz : float
+        The held set-point minus the peak (Hz; nan when not usable).
+    peak_hz, peak_variance_hz2 : float
+        The measured peak ``y = d - D`` and its variance.
+    innovation : Innovation or None
+    lock : DriftLock
+        The lock after this check (unchanged when not usable).
+    upper, lower, inversion : float
+        The CUSUM statistics after this check.
+    inversion_z : float
+        The inversion's standardised drop below its reference.
+    action : str
+        ``"alarm"``, ``"recheck"``, ``"correct"`` or ``"hold"``.
+    alarm : str or None
+        ``"out_of_range"``, ``"upper"``, ``"lower"`` or ``"inversion"``.
+    target_detuning_hz : float
+        The detuning set-point to hold next (the present one unless ``action`` corrects).
+    reason : str
+        One sentence with the numbers.
+    """
+
+    usable: bool
+    note: str
+    offset_hz: float
+    offset_stderr_hz: float
+    peak_hz: float
+    peak_variance_hz2: float
+    innovation: Innovation | None
+    lock: DriftLock
+    upper: float
+    lower: float
+    inversion: float
+    inversion_z: float
+    action: str
+    alarm: str | None
+    target_detuning_hz: float
+    reason: str
+
+    def numbers(self) -> dict[str, Any]:
+        """JSON-ready numbers for the journal (nan as None)."""
+        def clean(value: Any) -> Any:
+            return None if isinstance(value, float) and not math.isfinite(value) else value
+
+        out = {f.name: clean(getattr(self, f.name)) for f in fields(self)
+               if f.name not in ("innovation", "lock")}
+        out["innovation"] = None if self.innovation is None else \
+            {k: clean(v) for k, v in asdict(self.innovation).items()}
+        out["lock"] = self.lock.to_dict()
+        return out
+
+
+def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: float,
+                 lock: DriftLock, prior: LockPrior, plan: CheckPlan, upper: float, lower: float,
+                 inversion: float, reference_inversion: float, reference_stderr: float,
+                 next_interval_s: float, noise: NoiseModel | None = None,
+                 previous_unusable: bool = False,
+                 limits: tuple[float, float] | None = None) -> Assessment:
+    """Assess one check at the held detuning ``detuning_hz``: update the lock and the test, decide.
+
+    Order of the decision: a check whose phase signal is unusable is checked again at once, and
+    raises the alarm when the repeat is unusable too (out of the capture range, or a contrast
+    too low: the lock cannot read it; one cheap check alone may be unusable by chance); else the
+    lock is told the measured
+    peak, the statistics take their step, and an alarm (a statistic above its threshold) comes
+    first, then a recheck (above the warning level: the next check at once), then a correction
+    (the lock's prediction of the peak at the middle of the coming interval, bounded by
+    ``max_correction_hz`` and ``limits``, applied when at least ``min_correction_hz``).
+
+    Parameters
+    ----------
+    result : PointResult
+        The check's estimate (``clock_s`` is its middle on the rig clock).
+    next_interval_s : float
+        Rig time until the next check (the plan's interval): the correction aims at the middle.
+    noise : NoiseModel, optional
+        The pooled noise of the measurements so far: the check's phase and inversion variances
+        are taken from it at the check's shots (a fringe's own delta-method error is itself
+        noisy at a few atoms per phase, and an underestimate would inflate the statistic);
+        without it, the check's own standard errors.
+    previous_unusable : bool
+        Whether the check before this one was unusable (this one is its repeat).
+    limits : (float, float), optional
+        The detuning's effective limits (Hz).
+    """
+    test = plan.test
+    clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
+    error = float(np.mod(result.phase_shift - prior.phase_at_peak_rad + math.pi, _TWO_PI) - math.pi)
+    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad)
+    phase_sd, inversion_sd = result.phase_shift_stderr, result.inversion_stderr
+    if noise is not None and result.shots > 0:
+        phase_sd = math.sqrt(noise.phase_variance_shots / result.shots)
+        inversion_sd = math.sqrt(noise.inversion_variance_shots / result.shots)
+    inv_sd = math.sqrt(inversion_sd**2 + reference_stderr**2)
+    inversion_z = (reference_inversion - result.inversion) / inv_sd if inv_sd > 0 else 0.0
+    inversion_stat = max(0.0, inversion + inversion_z - test.inversion_reference)
+    if note is not None:
+        if not previous_unusable:
+            return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock,
+                              upper, lower, inversion_stat, inversion_z, "recheck", None,
+                              detuning_hz, f"check unusable for the lock ({note}): check again "
+                                           f"at once")
+        return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock, upper,
+                          lower, inversion_stat, inversion_z, "alarm", "out_of_range",
+                          detuning_hz, f"check unusable for the lock again ({note}): the lock "
+                                       f"cannot follow; retune")
+    # The check's own noise only: the stored curve's uncertainty (slope, cubic) is the same at
+    # every check, a bias of the peak's scale, not noise; counted as noise it would make a large
+    # phase error look insignificant (the offset's error grows as D^3) and hide a step.
+    offset, offset_sd = detuning_offset(error, phase_sd, prior.slope_rad_per_hz,
+                                        0.0, known_cubic(prior), 0.0)
+    peak = detuning_hz - offset
+    variance = max(offset_sd**2, 1.0)
+    updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
+    new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
+    numbers = (f"phase error {error / math.pi:+.3f} +- {phase_sd / math.pi:.3f} pi: "
+               f"set-point {offset / 1e3:+.2f} +- {offset_sd / 1e3:.2f} kHz from the peak; "
+               f"innovation {innovation.value_hz / 1e3:+.2f} kHz (z {innovation.z:+.2f}); "
+               f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
+               f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
+               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
+    alarm = None
+    if new_upper > test.threshold:
+        alarm = "upper"
+    elif new_lower > test.threshold:
+        alarm = "lower"
+    elif inversion_stat > test.inversion_threshold:
+        alarm = "inversion"
+    aim = updated.peak_at(clock + 0.5 * next_interval_s)
+    move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
+    target = detuning_hz + move
+    if limits is not None:
+        target = float(np.clip(target, limits[0], limits[1]))
+    if alarm is not None:
+        side = {"upper": "the peak moved up beyond what the lock follows",
+                "lower": "the peak moved down beyond what the lock follows",
+                "inversion": "the inversion dropped below its reference"}[alarm]
+        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
+                          new_upper, new_lower, inversion_stat, inversion_z, "alarm", alarm,
+                          detuning_hz, f"{numbers}: alarm, {side}; retune")
+    rising = new_upper > test.warning or new_lower > test.warning or \
+        inversion_stat > test.inversion_warning
+    action = "hold"
+    if abs(target - detuning_hz) >= settings.min_correction_hz:
+        action = "correct"
+    if rising:
+        why = "a statistic is above its warning level: check again at once"
+        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
+                          new_upper, new_lower, inversion_stat, inversion_z, "recheck", None,
+                          target if action == "correct" else detuning_hz,
+                          f"{numbers}: {why}" + (f"; lock moves the detuning by "
+                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz"
+                                                 if action == "correct" else ""))
+    if action == "correct":
+        limited = " (bounded)" if abs(aim - target) > 1.0 else ""
+        why = (f"lock moves the detuning by {(target - detuning_hz) / 1e3:+.2f} kHz to "
+               f"{target / 1e3:+.2f} kHz{limited}, the predicted peak at the middle of the next "
+               f"interval (gain {innovation.gain:.2f}, drift {updated.rate_hz_per_s:+.2f} Hz/s)")
+    else:
+        why = (f"held: the lock's correction {(aim - detuning_hz) / 1e3:+.2f} kHz is below "
+               f"{settings.min_correction_hz / 1e3:.2f} kHz")
+    return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated, new_upper,
+                      new_lower, inversion_stat, inversion_z, action, None, target,
+                      f"{numbers}: {why}")
+
+
+def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_per_s: float,
+                      clock_s: float) -> tuple[float, float] | None:
+    """Where the peak is after an alarm, from the checks since the alarming statistic left zero.
+
+    Page's CUSUM dates the change at the last check where the alarming statistic was zero
+    (the maximum-likelihood change point for a known shift); the checks after it measured the
+    new peak. Their measured peaks, carried to ``clock_s`` with the drift rate, are averaged
+    with weights ``1 / variance``.
+
+    Parameters
+    ----------
+    recent : sequence of mappings
+        Latest checks, oldest first: ``clock_s``, ``peak_hz``, ``variance_hz2`` and the
+        statistics ``upper``, ``lower`` after each (None when the check was unusable).
+    side : {"upper", "lower"}
+
+    Returns
+    -------
+    (float, float) or None
+        The peak at ``clock_s`` and its standard error (Hz), or None without usable checks.
+    """
+    run: list[Mapping[str, Any]] = []
+    for row in reversed(recent):
+        if row.get("peak_hz") is None or not row.get(side):
+            break
+        run.append(row)
+    if not run:
+        return None
+    weights = np.array([1.0 / float(r["variance_hz2"]) for r in run])
+    values = np.array([float(r["peak_hz"]) + rate_hz_per_s * (clock_s - float(r["clock_s"]))
+                       for r in run])
+    mean = float((weights * values).sum() / weights.sum())
+    return mean, float(math.sqrt(1.0 / weights.sum()))
