@@ -63,7 +63,7 @@ from autotune.errors import (
     RigError,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
-from autotune.display import ProgressDisplay, progress_mode, stage_progress_text
+from autotune.display import ProgressDisplay, progress_mode, progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
            "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]
@@ -233,7 +233,7 @@ def _log_to_run_folder(run_dir: Path) -> logging.Handler:
 def _progress_display(ns: argparse.Namespace) -> ProgressDisplay:
     """The progress display of a stage, as the command's options ask (``--quiet``: none); use
     it as a context manager and give it to the run as its progress observer."""
-    return ProgressDisplay(progress_mode(quiet=getattr(ns, "quiet", False)), stage_progress_text)
+    return ProgressDisplay(progress_mode(quiet=getattr(ns, "quiet", False)), progress_text)
 
 
 # -- signals -----------------------------------------------------------------------------
@@ -830,7 +830,8 @@ def _cmd_track(ns: argparse.Namespace) -> int:
             started.append(run_dir)
             handler = _log_to_run_folder(run_dir)
             try:
-                result = tracking.execute_track(prepared, rig, stop=stop)
+                with _progress_display(ns) as progress:
+                    result = tracking.execute_track(prepared, rig, stop=stop, progress=progress)
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()

@@ -5,7 +5,7 @@ The commands (``autotune`` and ``python -m autotune.bench``) show where a long r
 - on a terminal, one line updated in place (drawn with tqdm); the console log lines are written
   above it, never over it;
 - when the output is not a terminal (a file, a pipe, a service's journal), plain lines, at most
-  one a minute for a stage (and one when each stage starts);
+  one a minute for a stage (and one when each stage starts, and after each check of a night);
 - nothing with ``--quiet``.
 
 Nothing here is imported by the loop or the runner: they only call an observer.
@@ -21,10 +21,10 @@ import time
 from collections.abc import Callable
 from typing import Any, Literal
 
-from autotune.progress import StageProgress, format_duration
+from autotune.progress import NightProgress, StageProgress, format_duration
 
 __all__ = ["ProgressMode", "ProgressDisplay", "progress_mode", "stage_progress_text",
-           "shots_text"]
+           "night_progress_text", "progress_text", "shots_text"]
 
 ProgressMode = Literal["terminal", "plain", "off"]
 
@@ -62,6 +62,34 @@ def stage_progress_text(p: StageProgress) -> str:
     return " | ".join(parts)
 
 
+def night_progress_text(p: NightProgress) -> str:
+    """One progress line of a night between its stages: rig time of the night against its end,
+    the held set-points, the last check and what it decided, the next check, the counts, and
+    the beam share of holding against its budget."""
+    end = f"/{p.end_s / 3600:.1f}" if p.end_s is not None else ""
+    held = ", ".join(f"{v:.1f} m/s" if k == "velocity" else
+                     f"{v / 1e3:+.2f} kHz" if k == "detuning" else f"{k} {v:g}"
+                     for k, v in p.setpoints.items())
+    parts = [f"night {p.night_s / 3600:.1f}{end} h", f"held {held}"]
+    if p.inversion is not None and p.interval is not None:
+        parts.append(f"last check {p.inversion:.3f} [{p.interval[0]:.3f}, {p.interval[1]:.3f}]"
+                     + (f" {p.action}" if p.action else ""))
+    if p.event == "wait" and p.next_in_s is not None:
+        parts.append(f"next check in {format_duration(p.next_in_s)}")
+    parts.append(f"{p.checks} checks, {p.corrections} corrections, {p.alarms} alarms, "
+                 f"{p.retunes} retunes, {p.calibrations} calibrations")
+    share = "-" if p.holding_share is None else f"{p.holding_share:.1%}"
+    parts.append(f"holding {share} of beam (budget {p.budget_fraction:.0%})")
+    return " | ".join(parts)
+
+
+def progress_text(item: StageProgress | NightProgress) -> str:
+    """The line of a stage's or a night's progress item."""
+    if isinstance(item, NightProgress):
+        return night_progress_text(item)
+    return stage_progress_text(item)
+
+
 class ProgressDisplay:
     """Shows progress items as the mode asks; the object itself is the observer.
 
@@ -74,8 +102,8 @@ class ProgressDisplay:
     stream : file, optional
         Where to show it (default: stderr, beside the log).
     plain_every_s : float
-        Fewest seconds between two plain lines; an item whose ``event`` is ``"start"`` is
-        always shown.
+        Fewest seconds between two plain lines; an item whose ``event`` is ``"start"`` (a
+        stage began) or ``"check"`` (a night's check was assessed) is always shown.
 
     Use it as a context manager: on a terminal it draws the line on entry, moves the console
     log handlers of ``stream`` above the line, and on exit clears the line and restores them.
@@ -83,6 +111,9 @@ class ProgressDisplay:
 
     #: Fewest seconds between two redraws of the terminal line for acquisitions.
     REDRAW_S = 0.1
+    #: Events shown as plain lines whatever the time since the last: a stage's start and a
+    #: night's check.
+    ALWAYS = ("start", "check")
 
     def __init__(self, mode: ProgressMode, render: Callable[[Any], str], stream: Any = None,
                  plain_every_s: float = 60.0) -> None:
@@ -141,7 +172,7 @@ class ProgressDisplay:
             # line never wraps and is always overwritten in place.
             self._bar.set_description_str(self.render(item)[: self._width() - 1], refresh=True)
         else:
-            if event != "start" and now - self._last < self.plain_every_s:
+            if event not in self.ALWAYS and now - self._last < self.plain_every_s:
                 return
             print(f"progress: {self.render(item)}", file=self.stream, flush=True)
         self._last = now

@@ -428,6 +428,12 @@ class Session:
         self._plan = plan
         self._tell_progress("start", None)
 
+    def end_progress(self) -> None:
+        """The stage is over: measurements after it (a night's checks) tell no stage progress
+        until the next :meth:`plan_progress`."""
+        self._plan = None
+        self.log = self.log.try_unbind("stage")
+
     def _tell_progress(self, event: str, m: _Measurement | None) -> None:
         plan = self._plan
         if self.progress is None or plan is None:

@@ -15,7 +15,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Literal
 
-__all__ = ["StageProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration"]
+__all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration"]
 
 #: Measurement labels that come after the search has stopped: only their own shots are left.
 SEARCH_DONE_LABELS = ("verify", "correct")
@@ -89,8 +89,56 @@ class StageProgress:
     clock_s: float = 0.0
 
 
-#: A callable told every :class:`StageProgress` of a stage.
-ProgressObserver = Callable[[StageProgress], None]
+@dataclass(frozen=True)
+class NightProgress:
+    """Where a night of ``track`` stands, between its stages (a stage in the night tells its
+    own :class:`StageProgress`).
+
+    Attributes
+    ----------
+    event : {"check", "wait"}
+        A check was just assessed, or the night waits for the next one.
+    night_s : float
+        Rig time since the night began (s).
+    end_s : float or None
+        Rig time at which the night ends (s after it began), ``None`` without a rig-time end.
+    setpoints : Mapping[str, float]
+        The set-points held (m/s, Hz).
+    checks, corrections, alarms, retunes, calibrations : int
+        Counts since the night began.
+    holding_share : float or None
+        Share of the night's rig time spent holding (checks and recoveries).
+    budget_fraction : float
+        The configured largest share.
+    inversion, interval : float or None, (float, float) or None
+        The last check's inversion and its interval.
+    action : str
+        What the last check decided (``hold``, ``correct``, ``recheck``, ``alarm``), ``""``
+        before the first.
+    next_in_s : float or None
+        Rig time to the next check (s), on a ``wait``.
+    """
+
+    event: Literal["check", "wait"]
+    night_s: float
+    end_s: float | None
+    setpoints: Mapping[str, float]
+    checks: int
+    corrections: int
+    alarms: int
+    retunes: int
+    calibrations: int
+    holding_share: float | None
+    budget_fraction: float
+    inversion: float | None = None
+    interval: tuple[float, float] | None = None
+    action: str = ""
+    next_in_s: float | None = None
+
+
+#: A callable told every :class:`StageProgress` of a stage (and, in a night, every
+#: :class:`NightProgress`).
+ProgressObserver = Callable[[StageProgress | NightProgress], None]
 
 
 def format_duration(seconds: float) -> str:

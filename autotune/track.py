@@ -111,6 +111,7 @@ from autotune.loop import (
     retune_box,
     run_guided_stage,
 )
+from autotune.progress import NightProgress, ProgressObserver
 from autotune.rig import Rig
 from autotune.runner import (
     _manifest,
@@ -246,16 +247,22 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
 def track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
           stop: threading.Event | None = None, store: Path | None = None,
           extra: Mapping[str, Any] | None = None,
-          wall: Callable[[], float] = time.time) -> dict[str, Any]:
+          wall: Callable[[], float] = time.time,
+          progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Prepare and run a night (studies and tests; the CLI calls the two steps)."""
     prepared = prepare_track(rig, config, run_dir, resume=resume, store=store)
-    return execute_track(prepared, rig, stop=stop, extra=extra, wall=wall)
+    return execute_track(prepared, rig, stop=stop, extra=extra, wall=wall, progress=progress)
 
 
 def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | None = None,
                   extra: Mapping[str, Any] | None = None,
-                  wall: Callable[[], float] = time.time) -> dict[str, Any]:
+                  wall: Callable[[], float] = time.time,
+                  progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Run a prepared night: open the run folder, hold, write the result.
+
+    ``progress`` is a progress observer (:mod:`autotune.progress`): told a
+    :class:`~autotune.progress.NightProgress` after each check and before each wait, and the
+    stages' own progress during a retune or a calibration. Display only, never journaled.
 
     On a stop signal the rig stays at the held set-points if ``on_stop = "last_good"`` and it is
     there, else goes to its safe set-points (the outcome is on the raised :class:`Interrupted`
@@ -284,7 +291,8 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     status = "failed"
     session: Session | None = None
     try:
-        session = Session(rig, config, ledger, prepared.description, stop=stop)  # type: ignore[arg-type]
+        session = Session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
+                          stop=stop, progress=progress)
         if prepared.changes:
             session.decide("config_changed", "resumed with a changed configuration: "
                            + "; ".join(f"{k}: {old!r} -> {new!r}"
@@ -535,6 +543,7 @@ class _Night:
         if self._find("wait", **key) is None:
             self.ledger.append("wait", **key, from_clock=now, until_clock=until,
                                reason=reason, how="advance" if self.simulated else "wall")
+        self._tell("wait", next_in_s=until - now)
         if self.simulated:
             def advance(_msg_id: str) -> Any:
                 # Recomputed at each attempt from the rig's own clock: a retried advance never
@@ -768,6 +777,7 @@ class _Night:
                     records=records, **shots)
             finally:
                 session.config = base
+                session.end_progress()
             last = self.ledger.last_estimate or {}
             outcome = {"status": result.status,
                        "accepted": bool(result.accepted),
@@ -1071,6 +1081,37 @@ class _Night:
         self.state = new
         self._snapshot("hold", point=point, action=a.action, reason=a.reason,
                        setpoints=held, clock_s=m.clock_s, numbers=a.numbers())
+        self._tell("check", estimate=estimate, action=a.action)
+
+    def _tell(self, event: str, *, estimate: InversionEstimate | None = None, action: str = "",
+              next_in_s: float | None = None) -> None:
+        """Tell the session's progress observer where the night stands (display only)."""
+        observer = self.session.progress
+        if observer is None or self.state is None:
+            return
+        counts = self.state.get("counts") or {}
+        night = self.session.clock - self.start_clock
+        if estimate is None and self.ledger.last_estimate is not None and \
+                self.ledger.last_estimate.get("label") == _HOLD:
+            estimate = InversionEstimate.from_dict(self.ledger.last_estimate["estimate"])
+        item = NightProgress(
+            event=event,  # type: ignore[arg-type]
+            night_s=night, end_s=self.config.track.max_rig_time_s or None,
+            setpoints={k: float(v) for k, v in (self.state.get("held") or {}).items()},
+            checks=int(counts.get("checks", 0)), corrections=int(counts.get("corrections", 0)),
+            alarms=int(counts.get("alarms", 0)), retunes=int(counts.get("retunes", 0)),
+            calibrations=int(counts.get("calibrations", 0)),
+            holding_share=self.ledger.holding_beam_s / night if night > 0 else None,
+            budget_fraction=self.config.track.budget_fraction,
+            inversion=None if estimate is None else estimate.inversion,
+            interval=None if estimate is None else (estimate.inversion_low,
+                                                    estimate.inversion_high),
+            action=action, next_in_s=next_in_s)
+        try:
+            observer(item)
+        except Exception as exc:  # a display must never stop a night
+            self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
+            self.session.progress = None
 
     @staticmethod
     def _before_change(recent: Sequence[Mapping[str, Any]], side: str | None

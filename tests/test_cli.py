@@ -126,6 +126,9 @@ def test_report_summarises_a_run_folder_and_track_holds_from_it(tmp_path: Path,
     assert tracked.stdout.startswith("track: ended (end of the night: 1.00 h of rig time")
     assert f"run folder: {night}" in tracked.stdout
     assert "CAUTION" in tracked.stderr
+    # Piped: plain progress lines of the night's retune and of its checks.
+    assert re.search(r"^progress: retune step ", tracked.stderr, flags=re.M), tracked.stderr[-2000:]
+    assert re.search(r"^progress: night \d+\.\d/1\.0 h \| held ", tracked.stderr, flags=re.M)
 
 
 @pytest.mark.parametrize("flags", [["--interval-s", "60"], ["--cycles", "2"]])

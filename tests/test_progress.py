@@ -26,9 +26,14 @@ from structlog.testing import capture_logs
 from autotune import cli, runner
 from autotune.bench import _counting
 from autotune.config import RunConfig, load_config
-from autotune.display import ProgressDisplay, stage_progress_text
+from autotune.display import (
+    ProgressDisplay,
+    night_progress_text,
+    progress_text,
+    stage_progress_text,
+)
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
-from autotune.progress import StageProgress, format_duration
+from autotune.progress import NightProgress, StageProgress, format_duration
 from autotune.server import LocalRig
 from cli_helpers import autotune, tiny_config
 from drivers_sim.config import load_sim_config
@@ -193,6 +198,21 @@ def test_progress_text_and_durations() -> None:
                                       "best 0.757 [0.654, 0.861] | shots 78k/1500k | "
                                       "rig time 8.7/240 min")
     assert [format_duration(s) for s in (40, 720, 7500)] == ["40 s", "12 min", "2 h 05 min"]
+
+
+def test_night_progress_text() -> None:
+    """A night's line: rig time against its end, the held set-points in the units a physicist
+    reads, the last check with its interval and decision, the next check, counts, beam share."""
+    p = NightProgress(event="wait", night_s=9000.0, end_s=28_800.0,
+                      setpoints={"velocity": 503.24, "detuning": 1234.0}, checks=12,
+                      corrections=3, alarms=1, retunes=2, calibrations=0, holding_share=0.0412,
+                      budget_fraction=0.05, inversion=0.6123, interval=(0.581, 0.644),
+                      action="hold", next_in_s=390.0)
+    assert night_progress_text(p) == (
+        "night 2.5/8.0 h | held 503.2 m/s, +1.23 kHz | last check 0.612 [0.581, 0.644] hold | "
+        "next check in 6 min | 12 checks, 3 corrections, 1 alarms, 2 retunes, 0 calibrations | "
+        "holding 4.1% of beam (budget 5%)")
+    assert progress_text(p) == night_progress_text(p)
 
 
 def test_bench_lines_count_jobs_and_time_to_go() -> None:

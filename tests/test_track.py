@@ -22,8 +22,10 @@ import pytest
 
 from autotune import bench, runner, track
 from autotune.config import load_config
+from autotune.display import night_progress_text
 from autotune.errors import ConfigErrors, Interrupted, JournalError
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.progress import NightProgress, StageProgress
 from autotune.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
@@ -61,10 +63,12 @@ def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     start = rig.sim.clock
     watched = bench._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
     watched.watching = True
-    result = track.track(watched, config, base / "night", store=store)
+    progress: list[Any] = []
+    result = track.track(watched, config, base / "night", store=store, progress=progress.append)
     watched._tick()
     return {"rig": rig, "watched": watched, "config": config, "base": base, "store": store,
-            "result": result, "start": start, "records": read_journal(base / "night" / JOURNAL_NAME)}
+            "result": result, "start": start, "progress": progress,
+            "records": read_journal(base / "night" / JOURNAL_NAME)}
 
 
 def test_a_night_journals_every_check_correction_and_decision(night):
@@ -94,6 +98,30 @@ def test_a_night_journals_every_check_correction_and_decision(night):
     # Every shot of the night is in its journal (the rig's counter includes the calibration).
     calibration = read_journal(night["base"] / "calibrate" / JOURNAL_NAME)
     assert night["rig"].status().shots_total == journal_shots(records) + journal_shots(calibration)
+
+
+def test_the_night_tells_its_progress_and_the_journal_agrees(night):
+    """A progress item after every check (as many as hold records, the last with the result's
+    counts), one before each wait, the stages' own progress during the retunes, and none of a
+    stage while the night checks."""
+    items, records, result = night["progress"], night["records"], night["result"]
+    checks = [p for p in items if isinstance(p, NightProgress) and p.event == "check"]
+    holds = [r for r in records if r["type"] == "hold"]
+    assert len(checks) == len(holds) == result["checks"]
+    last = checks[-1]
+    for key in ("corrections", "alarms", "retunes", "calibrations"):
+        assert getattr(last, key) <= result[key]
+    assert [c.checks for c in checks] == list(range(1, len(checks) + 1))
+    assert all(c.inversion is not None and c.interval[0] <= c.inversion <= c.interval[1]
+               for c in checks)
+    assert all(c.action == h["action"] for c, h in zip(checks, holds))
+    waits = [p for p in items if isinstance(p, NightProgress) and p.event == "wait"]
+    assert len(waits) >= len([r for r in records if r["type"] == "wait"]) > 0
+    assert all(w.next_in_s > 0 and 0 <= w.night_s <= w.end_s for w in waits)
+    stages = [p for p in items if isinstance(p, StageProgress)]
+    assert {p.stage for p in stages} == {"retune"} and result["retunes"] >= 2
+    assert not any(p.label == "hold" for p in stages)
+    assert "night" in night_progress_text(last) and "holding" in night_progress_text(last)
 
 
 def test_the_thermal_step_is_found_and_the_condition_recovered(night):
