@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import functools
 import logging
 import math
 import shlex
@@ -621,6 +622,16 @@ def _resume_command(command: str, config_path: str, run_dir: Path) -> str:
 def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
     from autotune import runner
 
+    return _act_on_rig(ns, command, functools.partial(runner.prepare, command), runner.execute,
+                       _summary, _exit_for_result)
+
+
+def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any],
+                execute: Callable[..., dict[str, Any]], summary: Callable[[dict[str, Any]], str],
+                exit_code: Callable[[dict[str, Any]], int]) -> int:
+    """A command that acts on a rig: everything checked before the run folder exists or
+    anything moves, the caution, the run with its progress and its log in the folder, the
+    summary; a stop prints the exact command that resumes."""
     started: list[Path] = []
 
     def body() -> int:
@@ -628,21 +639,20 @@ def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers()
         with _connect(config) as rig:
-            # Everything that can be checked is checked before the folder exists or anything moves.
-            prepared = runner.prepare(command, rig, config, run_dir, resume=resume)
+            prepared = prepare(rig, config, run_dir, resume=resume)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
             started.append(run_dir)
             handler = _log_to_run_folder(run_dir)
             try:
                 with _progress_display(ns) as progress:
-                    result = runner.execute(prepared, rig, stop=stop, progress=progress)
+                    result = execute(prepared, rig, stop=stop, progress=progress)
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()
-        print(_summary(result))
+        print(summary(result))
         print(f"run folder: {run_dir}")
-        return _exit_for_result(result)
+        return exit_code(result)
 
     def hint() -> str | None:
         return _resume_command(command, ns.config, started[0]) if started else None
@@ -816,33 +826,9 @@ def _cmd_track(ns: argparse.Namespace) -> int:
               "[track] max_rig_time_s, max_wall_time_s or end_at_local_time in the config, or "
               "with SIGINT/SIGTERM (README: Holding the condition overnight)", file=sys.stderr)
         return EXIT_BAD_INPUT
-    started: list[Path] = []
-
-    def body() -> int:
-        config = load_config(ns.config)
-        run_dir, resume = _run_folder(ns, "track")
-        stop = _install_stop_handlers()
-        with _connect(config) as rig:
-            # Everything that can be checked is checked before the folder exists or anything moves.
-            prepared = tracking.prepare_track(rig, config, run_dir, resume=resume)
-            print(CAUTION, file=sys.stderr)
-            run_dir.mkdir(parents=True, exist_ok=True)
-            started.append(run_dir)
-            handler = _log_to_run_folder(run_dir)
-            try:
-                with _progress_display(ns) as progress:
-                    result = tracking.execute_track(prepared, rig, stop=stop, progress=progress)
-            finally:
-                logging.getLogger().removeHandler(handler)
-                handler.close()
-        print(_track_summary(result))
-        print(f"run folder: {run_dir}")
-        return EXIT_OK if result["status"] == "ended" else EXIT_BELOW_ACCEPTANCE
-
-    def hint() -> str | None:
-        return _resume_command("track", ns.config, started[0]) if started else None
-
-    return _guarded(body, hint)
+    return _act_on_rig(ns, "track", tracking.prepare_track, tracking.execute_track,
+                       _track_summary,
+                       lambda r: EXIT_OK if r["status"] == "ended" else EXIT_BELOW_ACCEPTANCE)
 
 
 def _cmd_report(ns: argparse.Namespace) -> int:

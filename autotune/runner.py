@@ -203,6 +203,41 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
     return limits
 
 
+def _last_good_problems(config: RunConfig, limits: Mapping[str, Any], store: Path,
+                        last_good: Mapping[str, Any]) -> list[ConfigError]:
+    """A last good calibration to start from: each set-point there and within the limits."""
+    problems = []
+    for sp in config.setpoints:
+        value = last_good["setpoints"].get(sp.name)
+        if value is None:
+            problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                        "a value in the last good calibration", None))
+        elif sp.name in limits and not limits[sp.name].min <= value <= limits[sp.name].max:
+            limit = limits[sp.name]
+            problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
+                                        f"a value within the effective limits "
+                                        f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
+    return problems
+
+
+def settle_failure(session: Session, exc: Exception, status: str) -> str:
+    """A run stops on ``exc`` (not a signal): journal why, send the rig to its safe set-points,
+    and return the status its ``end`` record gets. A store that failed after the run finished
+    keeps ``store_failed`` and the rig at the verified set-points."""
+    if isinstance(exc, JournalError):
+        if status == "store_failed":
+            return status
+        session.go_safe("the run folder could not be written")
+        return "aborted"
+    if isinstance(exc, AutotuneError):
+        session.decide("abort", str(exc))
+        session.go_safe(f"aborted: {exc}")
+        return "aborted"
+    session.decide("abort", f"internal error: {type(exc).__name__}: {exc}")
+    session.go_safe(f"internal error: {type(exc).__name__}")
+    return "failed"
+
+
 def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
               last_good: Mapping[str, Any] | None = None) -> list[ConfigError]:
     """Everything that can be checked before the first set-point is sent, all at once.
@@ -253,16 +288,7 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
     if store_problem is not None:
         problems.append(store_problem)
     if command == "retune" and last_good is not None:
-        for sp in config.setpoints:
-            value = last_good["setpoints"].get(sp.name)
-            if value is None:
-                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
-                                            "a value in the last good calibration", None))
-            elif sp.name in limits and not limits[sp.name].min <= value <= limits[sp.name].max:
-                limit = limits[sp.name]
-                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
-                                            f"a value within the effective limits "
-                                            f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
+        problems += _last_good_problems(config, limits, store, last_good)
     return problems
 
 
@@ -316,16 +342,7 @@ def track_preflight(config: RunConfig, description: Any, *, store: Path,
     if store_problem is not None:
         problems.append(store_problem)
     if last_good is not None:
-        for sp in config.setpoints:
-            value = last_good["setpoints"].get(sp.name)
-            if value is None:
-                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
-                                            "a value in the last good calibration", None))
-            elif sp.name in limits and not limits[sp.name].min <= value <= limits[sp.name].max:
-                limit = limits[sp.name]
-                problems.append(ConfigError(str(store), f"setpoints.{sp.name}",
-                                            f"a value within the effective limits "
-                                            f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
+        problems += _last_good_problems(config, limits, store, last_good)
         prior = last_good.get("lock_prior")
         if prior is not None:
             try:
@@ -659,20 +676,8 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         status = "interrupted"
         exc.safe, exc.safe_detail = session.go_safe("stopped by signal")
         raise
-    except JournalError:
-        if status != "store_failed":
-            status = "aborted"
-            session.go_safe("the run folder could not be written")
-        raise
-    except AutotuneError as exc:
-        status = "aborted"
-        session.decide("abort", str(exc))
-        session.go_safe(f"aborted: {exc}")
-        raise
     except Exception as exc:
-        status = "failed"
-        session.decide("abort", f"internal error: {type(exc).__name__}: {exc}")
-        session.go_safe(f"internal error: {type(exc).__name__}")
+        status = settle_failure(session, exc, status)
         raise
     finally:
         journal.append("end", status=status)

@@ -70,7 +70,6 @@ import structlog
 
 from autotune.config import RunConfig
 from autotune.errors import (
-    AutotuneError,
     ConfigErrors,
     Interrupted,
     JournalError,
@@ -117,6 +116,7 @@ from autotune.runner import (
     _manifest,
     read_last_good,
     resume_changes,
+    settle_failure,
     track_preflight,
 )
 from autotune.search import PointResult
@@ -321,19 +321,8 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
         exc.safe, exc.safe_detail = night.leave_on_signal() if night is not None else \
             session.go_safe("stopped by signal")
         raise
-    except JournalError:
-        status = "aborted"
-        session.go_safe("the run folder could not be written")
-        raise
-    except AutotuneError as exc:
-        status = "aborted"
-        session.decide("abort", str(exc))
-        session.go_safe(f"aborted: {exc}")
-        raise
     except Exception as exc:
-        status = "failed"
-        session.decide("abort", f"internal error: {type(exc).__name__}: {exc}")
-        session.go_safe(f"internal error: {type(exc).__name__}")
+        status = settle_failure(session, exc, status)
         raise
     finally:
         ledger.append("end", status=status)
