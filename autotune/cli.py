@@ -474,8 +474,7 @@ def _cmd_rig(ns: argparse.Namespace) -> int:
 
 
 def _cmd_serve(ns: argparse.Namespace) -> int:
-    from autotune.driver_config import DriverStartError, build_driver, load_driver_config
-    from autotune.served import ServedDriver
+    from autotune.driver_config import load_driver_config
     from autotune.server import FaultConfig
 
     _configure_server_logging(ns.server_log_level or _console_level(ns))
@@ -488,24 +487,14 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
         else:
             curve = _curve_server_keys(config.curve_secret_key_file, config.curve_allowed_dir,
                                        str(ns.config))
-        driver = build_driver(config)
     except ConfigError as exc:
         log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
         return EXIT_BAD_INPUT
-    except DriverStartError as exc:
-        log.error("driver_failed_to_start", error=str(exc))
-        return EXIT_RIG
     log = log.bind(bind=bind)
-    try:
-        served = ServedDriver(driver, config.setpoints, source=str(ns.config))
-    except ConfigError as exc:
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
-        _close_quietly(driver, log)
-        return EXIT_BAD_INPUT
-    except Exception as exc:  # noqa: BLE001 - the lab's driver failed while describing itself
-        log.exception("driver_failed_to_start", error=f"{type(exc).__name__}: {exc}")
-        _close_quietly(driver, log)
-        return EXIT_RIG
+    started = _start_driver(config, log)
+    if isinstance(started, int):
+        return started
+    served = started
     if served.description.simulated:
         print(f"serving the SIMULATED rig {served.description.rig!r}: no hardware is touched",
               file=sys.stderr)
@@ -517,6 +506,62 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
              simulated=served.description.simulated, setpoints=served.channel_map.summary())
     return _serve_until_stopped(served, bind, faults=FaultConfig(), curve=curve, fault_seed=0,
                                 ready_file=ns.ready_file, log=log)
+
+
+def _start_driver(config: Any, log: Any) -> Any:
+    """Build the lab's driver and describe it, within ``[server] start_timeout_s``: the
+    :class:`~autotune.served.ServedDriver`, or the exit status when it cannot start (2 for a
+    driver class or channel map that does not fit, 3 when it fails or hangs: its hardware is
+    taken as unreachable; 0, a clean stop, on SIGINT/SIGTERM while waiting)."""
+    from autotune.driver_config import DriverStartError, build_driver
+    from autotune.served import ServedDriver
+
+    outcome: dict[str, Any] = {}
+
+    def start() -> None:
+        driver = None
+        try:
+            driver = build_driver(config)
+            outcome["served"] = ServedDriver(driver, config.setpoints, source=str(config.path))
+        except BaseException as exc:  # noqa: BLE001 - reported by the waiting thread
+            outcome["error"] = exc
+            if driver is not None:
+                _close_quietly(driver, log)
+
+    stop = threading.Event()
+    previous = {number: signal.signal(number, lambda signum, frame: stop.set())
+                for number in (signal.SIGINT, signal.SIGTERM)}
+    # A daemon thread: a driver that never returns cannot keep the process alive.
+    worker = threading.Thread(target=start, name="driver-start", daemon=True)
+    began = time.monotonic()
+    try:
+        worker.start()
+        while worker.is_alive() and not stop.is_set() and \
+                time.monotonic() - began < config.start_timeout_s:
+            worker.join(0.1)
+    finally:
+        for number, handler in previous.items():
+            signal.signal(number, handler)
+    if worker.is_alive():
+        if stop.is_set():
+            log.warning("driver_start_interrupted", waited_s=round(time.monotonic() - began, 1))
+            return EXIT_OK
+        log.error("driver_failed_to_start", error=f"the driver did not start within "
+                  f"{config.start_timeout_s:g} s ([server] start_timeout_s of {config.path}): "
+                  f"its hardware is taken as unreachable")
+        return EXIT_RIG
+    exc = outcome.get("error")
+    if isinstance(exc, ConfigError):
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        return EXIT_BAD_INPUT
+    if isinstance(exc, DriverStartError):
+        log.error("driver_failed_to_start", error=str(exc))
+        return EXIT_RIG
+    if exc is not None:  # the lab's driver failed while describing itself
+        log.error("driver_failed_to_start", error=f"{type(exc).__name__}: {exc}",
+                  exc_info=exc)
+        return EXIT_RIG
+    return outcome["served"]
 
 
 def _close_quietly(driver: Any, log: Any) -> None:

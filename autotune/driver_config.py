@@ -13,6 +13,7 @@ Layout (every key is checked; an unknown one is refused)::
     bind = "tcp://127.0.0.1:5560"           # default; loopback unless you mean otherwise
     curve_secret_key_file = "keys/server.key_secret"   # optional, both or neither,
     curve_allowed_dir = "keys/allowed"                 # relative to this file
+    start_timeout_s = 60.0                  # optional: longest start of the driver (s)
 
     [setpoints.velocity]                    # the channel map, see autotune.channels
     ...
@@ -36,10 +37,13 @@ from typing import Any
 
 from autotune.errors import ConfigError
 
-__all__ = ["DEFAULT_BIND", "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
+__all__ = ["DEFAULT_BIND", "DEFAULT_START_TIMEOUT_S", "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
 
 DEFAULT_BIND = "tcp://127.0.0.1:5560"
 """Where a server listens unless told otherwise: loopback only."""
+
+DEFAULT_START_TIMEOUT_S = 60.0
+"""How long a driver may take to start (built, described, its status read) unless told."""
 
 
 class DriverStartError(RuntimeError):
@@ -64,6 +68,9 @@ class DriverConfig:
         Endpoint to listen on.
     curve_secret_key_file, curve_allowed_dir : Path or None
         CURVE keys of the server (both or neither).
+    start_timeout_s : float
+        Longest the driver may take to start (s): built from its options, described and its
+        status read; past it, ``serve`` gives up (its hardware is taken as unreachable).
     setpoints : Mapping[str, Any]
         The ``[setpoints]`` tables (the channel map), checked when the driver is known.
     """
@@ -76,6 +83,7 @@ class DriverConfig:
     curve_secret_key_file: Path | None
     curve_allowed_dir: Path | None
     setpoints: Mapping[str, Any]
+    start_timeout_s: float = DEFAULT_START_TIMEOUT_S
 
 
 def _unknown(file: str, table: Mapping[str, Any], allowed: tuple[str, ...], prefix: str) -> None:
@@ -134,7 +142,13 @@ def load_driver_config(path: str | Path) -> DriverConfig:
     options = _table(file, driver, "options", "driver", required=False)
 
     server = _table(file, data, "server", "", required=False)
-    _unknown(file, server, ("bind", "curve_secret_key_file", "curve_allowed_dir"), "server")
+    _unknown(file, server, ("bind", "curve_secret_key_file", "curve_allowed_dir",
+                            "start_timeout_s"), "server")
+    start_timeout_s = server.get("start_timeout_s", DEFAULT_START_TIMEOUT_S)
+    if isinstance(start_timeout_s, bool) or not isinstance(start_timeout_s, (int, float)) or \
+            not 0.0 < start_timeout_s < float("inf"):
+        raise ConfigError(file, "server.start_timeout_s", "a finite number of seconds > 0",
+                          start_timeout_s)
     bind = server.get("bind", DEFAULT_BIND)
     if not isinstance(bind, str) or "://" not in bind:
         raise ConfigError(file, "server.bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
@@ -153,7 +167,8 @@ def load_driver_config(path: str | Path) -> DriverConfig:
                         options=types.MappingProxyType(dict(options)), bind=bind,
                         curve_secret_key_file=curve["curve_secret_key_file"],
                         curve_allowed_dir=curve["curve_allowed_dir"],
-                        setpoints=types.MappingProxyType(dict(setpoints)))
+                        setpoints=types.MappingProxyType(dict(setpoints)),
+                        start_timeout_s=float(start_timeout_s))
 
 
 def build_driver(config: DriverConfig) -> Any:

@@ -44,6 +44,7 @@ def test_example_file_loads_with_loopback_default(tmp_path: Path):
     assert config.driver_class == "lab_driver.driver:LabDriver"
     assert config.python_path == (EXAMPLE_DRIVER_TOML.parent.parent.resolve(),)
     assert config.bind == "tcp://127.0.0.1:5560" == DEFAULT_BIND
+    assert config.start_timeout_s == 60.0
     assert set(config.setpoints) == {"velocity", "detuning"}
 
 
@@ -53,6 +54,10 @@ def test_example_file_loads_with_loopback_default(tmp_path: Path):
     (MINIMAL.format(target="a:B", options="") + "\n[server]\nbind = \"127.0.0.1\"\n", "server.bind"),
     (MINIMAL.format(target="a:B", options="")
      + "\n[server]\ncurve_secret_key_file = \"k\"\n", "server.curve_secret_key_file"),
+    (MINIMAL.format(target="a:B", options="") + "\n[server]\nstart_timeout_s = 0\n",
+     "server.start_timeout_s"),
+    (MINIMAL.format(target="a:B", options="") + "\n[server]\nstart_timeout_s = \"60\"\n",
+     "server.start_timeout_s"),
     (MINIMAL.format(target="a:B", options="").replace('["."]', '["missing"]'), "driver.python_path"),
     ("[driver]\nclass = \"a:B\"\n", "setpoints"),
     ("[driver\n", "<file>"),

@@ -109,6 +109,40 @@ def test_driver_that_cannot_reach_its_hardware_exits_3(serve, tmp_path: Path):
     assert failed and "sequencer refused" in failed[0]["error"]
 
 
+def _hanging_driver(tmp_path: Path, timeout_s: float) -> Path:
+    """A DRIVER.toml whose driver's constructor never returns (a controller that does not
+    answer and a library without a timeout)."""
+    (tmp_path / "hung_driver.py").write_text(
+        "import time\nclass Driver:\n    def __init__(self):\n        time.sleep(3600)\n")
+    config = tmp_path / "DRIVER.toml"
+    config.write_text('[driver]\nclass = "hung_driver:Driver"\npython_path = ["."]\n'
+                      f'[server]\nstart_timeout_s = {timeout_s}\n'
+                      '[setpoints.velocity]\nunit = "m/s"\nchannel = "v"\nchannel_unit = "m/s"\n'
+                      'law = "linear"\nscale = 1.0\n')
+    return config
+
+
+def test_driver_that_hangs_while_starting_exits_3_within_its_start_timeout(serve, tmp_path: Path):
+    """Bounded start-up: a driver that never finishes starting stops serve with status 3 after
+    [server] start_timeout_s, naming the key; nothing listens."""
+    server = serve(_hanging_driver(tmp_path, 1.5), wait=False)
+    began = time.monotonic()
+    assert server.process.wait(timeout=60) == 3
+    assert time.monotonic() - began < 30
+    failed = server.wait_for_event("driver_failed_to_start")
+    assert failed and "start_timeout_s" in failed[0]["error"] and "1.5 s" in failed[0]["error"]
+    assert not server.ready_path.exists()
+
+
+def test_sigterm_while_the_driver_starts_is_a_clean_stop(serve, tmp_path: Path):
+    """SIGTERM while the driver is still starting: serve stops at once with status 0."""
+    server = serve(_hanging_driver(tmp_path, 600), wait=False)
+    time.sleep(1.5)
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=STOP_TIMEOUT_S) == 0
+    assert server.wait_for_event("driver_start_interrupted")
+
+
 def test_port_in_use_exits_1(serve):
     """A second server on a bound port exits with status 1 and logs why."""
     first = serve()
