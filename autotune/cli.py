@@ -847,8 +847,10 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
 def _track_summary(result: dict[str, Any]) -> str:
     share = result.get("holding_share")
     night_h = result["night_rig_time_s"] / 3600.0
-    text = (f"track: {result['status']} ({result['stop_reason']}); held "
-            f"{_format_setpoints(result['setpoints'])}, left at {result['left_at']}: "
+    held = (f"held {_format_setpoints(result['setpoints'])}" if result.get("held", True)
+            else "held nothing (no recovery was accepted)")
+    text = (f"track: {result['status']} ({result['stop_reason']}); {held}, left at "
+            f"{result['left_at']}: "
             f"{result.get('checks', 0)} checks ({result.get('rechecks', 0)} repeated at once), "
             f"{result.get('corrections', 0)} corrections, {result.get('alarms', 0)} alarms, "
             f"{result.get('retunes', 0)} retunes, {result.get('calibrations', 0)} calibrations; "

@@ -62,24 +62,30 @@ def stage_progress_text(p: StageProgress) -> str:
     return " | ".join(parts)
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
+
+
 def night_progress_text(p: NightProgress) -> str:
-    """One progress line of a night between its stages: rig time of the night against its end,
-    the held set-points, the last check and what it decided, the next check, the counts, and
-    the beam share of holding against its budget."""
+    """One progress line of a night between its stages, most telling first (a narrow terminal
+    cuts the end): rig time of the night against its end, the held set-points, the last check
+    with its interval and what it decided, the next check, the beam share of holding against its
+    budget, and the counts."""
     end = f"/{p.end_s / 3600:.1f}" if p.end_s is not None else ""
     held = ", ".join(f"{v:.1f} m/s" if k == "velocity" else
                      f"{v / 1e3:+.2f} kHz" if k == "detuning" else f"{k} {v:g}"
                      for k, v in p.setpoints.items())
-    parts = [f"night {p.night_s / 3600:.1f}{end} h", f"held {held}"]
+    parts = [f"night {p.night_s / 3600:.1f}{end} h", f"held {held}" if held else "held nothing"]
     if p.inversion is not None and p.interval is not None:
-        parts.append(f"last check {p.inversion:.3f} [{p.interval[0]:.3f}, {p.interval[1]:.3f}]"
+        parts.append(f"check {p.inversion:.3f} [{p.interval[0]:.3f}, {p.interval[1]:.3f}]"
                      + (f" {p.action}" if p.action else ""))
     if p.event == "wait" and p.next_in_s is not None:
-        parts.append(f"next check in {format_duration(p.next_in_s)}")
-    parts.append(f"{p.checks} checks, {p.corrections} corrections, {p.alarms} alarms, "
-                 f"{p.retunes} retunes, {p.calibrations} calibrations")
+        parts.append(f"next in {format_duration(p.next_in_s)}")
     share = "-" if p.holding_share is None else f"{p.holding_share:.1%}"
-    parts.append(f"holding {share} of beam (budget {p.budget_fraction:.0%})")
+    parts.append(f"beam {share} (budget {p.budget_fraction:.0%})")
+    parts.append(", ".join([_count(p.checks, "check"), _count(p.corrections, "correction"),
+                            _count(p.alarms, "alarm"), _count(p.retunes, "retune"),
+                            _count(p.calibrations, "calibration")]))
     return " | ".join(parts)
 
 

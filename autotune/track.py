@@ -842,8 +842,8 @@ class _Night:
                                             f"{'y' if failures == 1 else 'ies'}",
                                   "first_index": int(self.state["stages"])}}
         if failures >= limit:
-            why = (f"{failures} recoveries in a row were not accepted with a lock prior "
-                   f"(track.max_consecutive_failures = {limit})")
+            why = (f"{failures} recoveries in a row failed, each not accepted or accepted "
+                   f"without a lock prior (track.max_consecutive_failures = {limit})")
             self.state.update(mode="stopped", stop_reason=why)
             self._snapshot("failure", reason=why, failures=failures)
             return
@@ -1156,7 +1156,8 @@ class _Night:
         result: dict[str, Any] = {
             "command": "track", "status": status, "accepted": status == "ended",
             "stop_reason": reason, "left_at": where,
-            "setpoints": dict(state.get("held") or self.session.current), **counts,
+            "setpoints": dict(state.get("held") or self.session.current),
+            "held": bool(state.get("held")), **counts,
             "shots": self.ledger.shots,
             "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s_total,
             "night_rig_time_s": night, "holding_beam_s": self.ledger.holding_beam_s,

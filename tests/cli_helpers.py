@@ -2,9 +2,15 @@
 
 from __future__ import annotations
 
+import fcntl
 import json
+import os
+import pty
+import select
+import struct
 import subprocess
 import sys
+import termios
 import time
 import tomllib
 from pathlib import Path
@@ -84,6 +90,35 @@ def tiny_config(path: Path, endpoint: str, store: Path, **sections: dict[str, An
         merged["search"]["max_points"] = 3
     merged.setdefault("calibration", {})["store"] = str(store)
     return write_config(path, endpoint, **merged)
+
+
+def run_in_a_terminal(argv: list[str], columns: int, timeout_s: float = 300.0
+                       ) -> tuple[int, bytes]:
+    """Run argv with stdin, stdout and stderr on a pseudo-terminal of ``columns`` columns."""
+    master, slave = pty.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, columns, 0, 0))
+    process = subprocess.Popen(argv, stdin=slave, stdout=slave, stderr=slave, cwd=REPO)
+    os.close(slave)
+    output = b""
+    deadline = time.monotonic() + timeout_s
+    try:
+        while time.monotonic() < deadline:
+            ready, _, _ = select.select([master], [], [], 0.5)
+            if ready:
+                try:
+                    chunk = os.read(master, 65536)
+                except OSError:  # the child closed the terminal (Linux reports EIO)
+                    break
+                if not chunk:
+                    break
+                output += chunk
+            elif process.poll() is not None:
+                break
+        return process.wait(timeout=60), output
+    finally:
+        if process.poll() is None:
+            process.kill()
+        os.close(master)
 
 
 def wait_for_record(journal: Path, match: Any, timeout_s: float = 300.0,

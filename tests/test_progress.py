@@ -3,19 +3,12 @@ lines, and how the commands show both on a terminal, in a file and with --quiet.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
-import os
-import pty
 import re
-import select
 import shutil
-import struct
-import subprocess
 import sys
-import termios
-import time
-import fcntl
 from pathlib import Path
 from typing import Any
 
@@ -35,7 +28,7 @@ from autotune.display import (
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from autotune.progress import NightProgress, StageProgress, format_duration
 from autotune.server import LocalRig
-from cli_helpers import autotune, tiny_config
+from cli_helpers import autotune, run_in_a_terminal, tiny_config
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
@@ -209,9 +202,15 @@ def test_night_progress_text() -> None:
                       budget_fraction=0.05, inversion=0.6123, interval=(0.581, 0.644),
                       action="hold", next_in_s=390.0)
     assert night_progress_text(p) == (
-        "night 2.5/8.0 h | held 503.2 m/s, +1.23 kHz | last check 0.612 [0.581, 0.644] hold | "
-        "next check in 6 min | 12 checks, 3 corrections, 1 alarms, 2 retunes, 0 calibrations | "
-        "holding 4.1% of beam (budget 5%)")
+        "night 2.5/8.0 h | held 503.2 m/s, +1.23 kHz | check 0.612 [0.581, 0.644] hold | "
+        "next in 6 min | beam 4.1% (budget 5%) | 12 checks, 3 corrections, 1 alarm, 2 retunes, "
+        "0 calibrations")
+    # Nothing held yet (a night that begins with its calibration): said, not left blank.
+    start = dataclasses.replace(p, event="check", setpoints={}, inversion=None, interval=None,
+                                checks=0, alarms=0, retunes=0, calibrations=1)
+    assert night_progress_text(start) == (
+        "night 2.5/8.0 h | held nothing | beam 4.1% (budget 5%) | 0 checks, 3 corrections, "
+        "0 alarms, 0 retunes, 1 calibration")
     assert progress_text(p) == night_progress_text(p)
 
 
@@ -276,40 +275,11 @@ def test_quiet_after_the_command_shows_no_progress_and_no_info(tmp_path: Path) -
     assert isinstance(estimate["inversion"], float)  # full precision, not rounded
 
 
-def _run_in_a_terminal(argv: list[str], columns: int, timeout_s: float = 300.0
-                       ) -> tuple[int, bytes]:
-    """Run argv with stdin, stdout and stderr on a pseudo-terminal of ``columns`` columns."""
-    master, slave = pty.openpty()
-    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, columns, 0, 0))
-    process = subprocess.Popen(argv, stdin=slave, stdout=slave, stderr=slave, cwd=REPO)
-    os.close(slave)
-    output = b""
-    deadline = time.monotonic() + timeout_s
-    try:
-        while time.monotonic() < deadline:
-            ready, _, _ = select.select([master], [], [], 0.5)
-            if ready:
-                try:
-                    chunk = os.read(master, 65536)
-                except OSError:  # the child closed the terminal (Linux reports EIO)
-                    break
-                if not chunk:
-                    break
-                output += chunk
-            elif process.poll() is not None:
-                break
-        return process.wait(timeout=60), output
-    finally:
-        if process.poll() is None:
-            process.kill()
-        os.close(master)
-
-
 def test_one_line_updated_in_place_on_a_terminal(tmp_path: Path) -> None:
     """On a terminal: the progress line is redrawn in place (carriage returns), fits the
     width, is cleared before each log line and is gone when the stage ends."""
     columns = 90
-    code, output = _run_in_a_terminal(
+    code, output = run_in_a_terminal(
         [sys.executable, "-m", "autotune.cli", *_tiny_dry_run_args(tmp_path)], columns)
     text = output.decode()
     assert code == 0, text[-3000:]

@@ -121,7 +121,7 @@ def test_the_night_tells_its_progress_and_the_journal_agrees(night):
     stages = [p for p in items if isinstance(p, StageProgress)]
     assert {p.stage for p in stages} == {"retune"} and result["retunes"] >= 2
     assert not any(p.label == "hold" for p in stages)
-    assert "night" in night_progress_text(last) and "holding" in night_progress_text(last)
+    assert "night" in night_progress_text(last) and "beam" in night_progress_text(last)
 
 
 def test_the_thermal_step_is_found_and_the_condition_recovered(night):

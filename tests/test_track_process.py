@@ -14,6 +14,7 @@ detuning of the set-point plus the cavity offset).
 
 from __future__ import annotations
 
+import re
 import signal
 import subprocess
 import sys
@@ -25,7 +26,8 @@ import numpy as np
 
 from autotune.bus import BusClient
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
-from cli_helpers import autotune, start_autotune, tiny_config, to_toml, wait_for_record
+from cli_helpers import (autotune, run_in_a_terminal, start_autotune, tiny_config, to_toml,
+                         wait_for_record)
 from journal_checks import check_invariants, journal_shots
 from rig_process import REPO, SIM_CONFIG, spawn_server
 
@@ -144,5 +146,80 @@ def test_a_night_with_a_thermal_step_a_sigterm_and_a_resume_holds_the_condition(
                 ratios.append(truth["inversion"] / truth["best"]["inversion"])
         above = float(np.mean(np.array(ratios) >= FLOOR))
         assert above >= 0.90, (above, ratios)
+    finally:
+        server.stop()
+
+
+def test_a_night_on_a_terminal_shows_one_line_redrawn_in_place(tmp_path):
+    """``autotune track`` on a terminal of 100 columns: the night's line (rig time, held
+    set-points, last check, next check, beam share) is redrawn in place and never wraps, the
+    log lines go above it, and it is gone once the night has ended."""
+    server = spawn_server(tmp_path, "terminal-rig")
+    try:
+        store = tmp_path / "good.json"
+        config = tiny_config(tmp_path / "c.toml", server.endpoint, store,
+                             track={"max_rig_time_s": 3600.0})
+        done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "cal"))
+        assert done.returncode == 0, done.stderr[-3000:]
+        columns = 100
+        code, output = run_in_a_terminal(
+            [sys.executable, "-m", "autotune.cli", "track", "--config", str(config), "--out",
+             str(tmp_path / "night")], columns)
+        text = output.decode()
+        assert code == 0, text[-3000:]
+        drawn = re.findall(r"\r(night \d+\.\d/1\.0 h \|[^\r\n]*)", text)
+        assert len(drawn) >= 3, text[-3000:]
+        assert all(len(line) < columns for line in drawn)
+        assert any("| next in " in line for line in drawn)
+        assert any(re.search(r"\| check 0\.\d{3} \[", line) for line in drawn)
+        # A log line of the night written after the line was erased (blanks, then a return).
+        assert re.search(r"\r +\r\d\d:\d\d:\d\d (hold|correct) ", text), text[-3000:]
+        assert "progress:" not in text
+        summary = text.index("track: ended (")
+        assert "\rnight " not in text[summary:]
+        records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+        assert len([r for r in records if r["type"] == "hold"]) >= 3
+    finally:
+        server.stop()
+
+
+def test_a_night_whose_recoveries_all_fail_exits_4_at_safe(tmp_path):
+    """The rig's cavity moved on for six hours since the last good calibration and the
+    acceptance bar is out of reach: the night's first retune and the calibration after it are
+    not accepted, and with ``max_consecutive_failures = 1`` the night gives up: exit 4 (README:
+    track exit codes), the summary says nothing was held, the rig is at its safe set-points and
+    every shot the rig took is in the journal."""
+    server = spawn_server(tmp_path, "failing-rig")
+    try:
+        store = tmp_path / "good.json"
+        config = tiny_config(tmp_path / "c.toml", server.endpoint, store,
+                             track={"max_rig_time_s": 3600.0, "max_consecutive_failures": 1})
+        done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "cal"))
+        assert done.returncode == 0, done.stderr[-3000:]
+        with _client(server.endpoint) as rig:
+            rig.advance(6 * 3600.0)
+            safe = rig.describe().safe_setpoints
+        data = tomllib.loads(config.read_text())
+        data["acceptance"]["min_inversion"] = 0.999
+        config.write_text(to_toml(data))
+        night = tmp_path / "night"
+        ran = autotune("track", "--config", str(config), "--out", str(night))
+        assert ran.returncode == 4, ran.stderr[-3000:]
+        assert ran.stdout.startswith("track: gave_up (1 recoveries in a row failed")
+        assert "held nothing (no recovery was accepted), left at its safe set-points" in ran.stdout
+        result = read_json(night / RESULT_NAME)
+        assert result["status"] == "gave_up" and result["held"] is False
+        assert result["failures"] == 1 and result["checks"] == 0
+        records = read_journal(night / JOURNAL_NAME)
+        check_invariants(records)
+        kinds = [r["what"] for r in records if r["type"] == "decision"
+                 and r["what"] in ("retune", "calibrate", "failure", "stop")]
+        assert kinds == ["retune", "calibrate", "failure", "stop"]
+        assert records[-1] == {**records[-1], "type": "end", "status": "gave_up"}
+        calibration = read_journal(tmp_path / "cal" / JOURNAL_NAME)
+        with _client(server.endpoint) as rig:
+            status = rig.status()
+        assert status.setpoints == safe
+        assert status.shots_total == journal_shots(records) + journal_shots(calibration)
     finally:
         server.stop()
