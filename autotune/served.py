@@ -254,8 +254,9 @@ class ServedDriver:
         try:
             self._read_status()
         except DriverResultError as exc:
-            raise ConfigError(source, "driver.status()", "a status with every mapped channel's read-back",
-                              str(exc)) from None
+            raise ConfigError(source, "driver.status()", "a status as autotune.driver states it (clock, "
+                              "busy, interlock None or a non-empty string, every mapped channel's "
+                              "read-back, shots_total)", str(exc)) from None
         for op in SIMULATED_OPS:
             method = getattr(driver, op, None)
             if callable(method):

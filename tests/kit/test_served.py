@@ -193,6 +193,23 @@ def test_driver_lacking_a_mapped_readback_is_refused_at_start():
         ServedDriver(driver, load_driver_config(EXAMPLE_DRIVER_TOML).setpoints)
 
 
+@pytest.mark.parametrize(("change", "named"), [
+    ({"interlock": ""}, "driver.status().interlock: expected None or a non-empty string, got ''"),
+    ({"busy": "no"}, "driver.status().busy: expected true or false, got 'no'"),
+])
+def test_a_malformed_first_status_is_refused_naming_its_own_key(change, named):
+    """A first status wrong in another key than the read-backs is refused naming that key, and
+    the message does not send the engineer looking for a missing read-back (autotune.driver's
+    contract: interlock is None or a string saying which interlock is set, busy a bool)."""
+    driver = Recorder()
+    good = driver.inner.status
+    driver.inner.status = lambda: {**good(), **change}
+    with pytest.raises(ConfigError) as caught:
+        ServedDriver(driver, load_driver_config(EXAMPLE_DRIVER_TOML).setpoints)
+    assert named in str(caught.value)
+    assert "expected a status with every mapped channel's read-back" not in str(caught.value)
+
+
 def test_simulated_rig_through_the_stark_map_gets_the_closed_form_voltage():
     """Served through configs/sim-driver.toml, a detuning reaches the simulated electrodes as
     V = gap sqrt(E_bias^2 + d / k) (the simulated rig's own truth reports the voltage)."""
