@@ -199,6 +199,19 @@ def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
                 name: float(current[name]) + (float(value) - float(current[name])) * k / n_steps
                 for name, value in target.items()
             })
+    for name in target:
+        # A rig found outside the limits (left there by hand, or a read-back in another unit
+        # than its channel's) cannot be walked in: the first steps would be outside too. Say
+        # where the rig is, not only which planned value is refused.
+        start = float(current[name])
+        limit = limits[name]
+        if not limit.min <= start <= limit.max and not limit.min <= steps[0][name] <= limit.max:
+            raise LimitError(
+                f"set-point {name}: the rig is at {start:g}, outside its limits "
+                f"[{limit.min:g}, {limit.max:g}], and the move to {float(target[name]):g} in "
+                f"steps of at most {limit.max_step:g} would send {steps[0][name]:g} first; "
+                f"no set-point was sent: bring the rig within the limits (or check that its read-back "
+                f"is in the channel's unit)")
     return steps
 
 

@@ -73,6 +73,20 @@ def test_long_move_is_split_evenly() -> None:
     assert [s["velocity"] for s in steps] == pytest.approx([433.333333, 466.666667, 500.0])
 
 
+def test_rig_found_outside_its_limits_is_named_before_anything_moves() -> None:
+    """A rig at 562.5 kHz with limits of +-100 kHz (a read-back in V taken as mV, through the
+    Stark law) cannot be walked in with 15 kHz steps: the refusal says where the rig is."""
+    limits = {"detuning": Limit(-100e3, 100e3, 15e3)}
+    with pytest.raises(LimitError, match=r"the rig is at 562499, outside its limits \[-100000, 100000\]"):
+        plan_moves({"detuning": 562499.0}, {"detuning": 0.0}, limits)
+
+
+def test_rig_just_outside_its_limits_comes_back_in_one_step() -> None:
+    """Within one max_step of a target inside the limits, the one step sent is inside them."""
+    steps = plan_moves({"velocity": 705.0}, {"velocity": 690.0}, {"velocity": Limit(300.0, 700.0, 40.0)})
+    assert steps == [{"velocity": 690.0}]
+
+
 def test_ramsey_phases_are_equally_spaced() -> None:
     """K phases 2 pi j / K (common practice for a fringe scan)."""
     assert ramsey_phases(4) == pytest.approx((0.0, math.pi / 2, math.pi, 3 * math.pi / 2))
