@@ -39,6 +39,7 @@ import dataclasses
 import functools
 import logging
 import math
+import os
 import shlex
 import signal
 import subprocess
@@ -400,9 +401,87 @@ def _curve_server_keys(secret: Path | None, allowed: Path | None, source: str) -
     return None if secret is None else CurveServerKeys.load(secret, allowed)
 
 
+class _StopGuard:
+    """SIGINT/SIGTERM while a server answers requests.
+
+    The first signal asks the server to stop at its next wake-up. The server's own thread may be
+    inside a driver call that does not return (an instrument that hangs): a watcher thread, told
+    of each signal through the interpreter's wake-up file descriptor (so even while the main
+    thread is blocked), logs the call being waited for and, when the server has not finished
+    stopping ``bound_s`` later or at a second signal, logs what it abandons and ends the process
+    at once with exit status 3 (the driver's ``close`` is not called; the hardware is as that
+    call left it).
+    """
+
+    def __init__(self, server: Any, served: Any, bound_s: float, log: Any) -> None:
+        self.server, self.served, self.bound_s, self.log = server, served, bound_s, log
+        self.finished = threading.Event()
+        self._previous: dict[int, Any] = {}
+        self._previous_fd = -1
+        self._pipe: tuple[int, int] | None = None
+
+    def _call_text(self) -> str:
+        watch = getattr(self.served, "call_in_progress", None)
+        current = watch() if callable(watch) else None
+        return "none" if current is None else f"driver.{current[0]}() running for {current[1]:.1f} s"
+
+    def __enter__(self) -> _StopGuard:
+        read_fd, write_fd = os.pipe()
+        os.set_blocking(write_fd, False)
+        self._pipe = (read_fd, write_fd)
+        self._previous_fd = signal.set_wakeup_fd(write_fd, warn_on_full_buffer=False)
+        for number in (signal.SIGINT, signal.SIGTERM):
+            self._previous[number] = signal.signal(number, lambda signum, frame: self.server.stop())
+        threading.Thread(target=self._watch, name="stop-guard", daemon=True).start()
+        return self
+
+    def _watch(self) -> None:
+        import select
+
+        assert self._pipe is not None
+        signals, first = 0, None
+        while not self.finished.is_set():
+            ready, _, _ = select.select([self._pipe[0]], [], [], 0.2)
+            if ready:
+                try:
+                    signals += len(os.read(self._pipe[0], 64))
+                except OSError:
+                    return
+            if signals and first is None:
+                first = time.monotonic()
+                self.log.warning("stop_requested", call_in_progress=self._call_text(),
+                                 reason=f"stopping; a driver call still running after "
+                                        f"{self.bound_s:g} s (stop_timeout_s), or a second "
+                                        f"signal, ends the server at once")
+            if first is not None and not self.finished.is_set() and (
+                    signals >= 2 or time.monotonic() - first > self.bound_s):
+                self.log.error("stop_forced", call_in_progress=self._call_text(),
+                               reason="a second signal" if signals >= 2 else
+                               f"the server had not stopped {self.bound_s:g} s after the signal",
+                               consequence="exit 3 without the driver's close(): the hardware "
+                                           "is as the abandoned call left it; check it")
+                sys.stderr.flush()
+                os._exit(EXIT_RIG)
+
+    def __exit__(self, *exc: object) -> None:
+        self.finished.set()
+        for number, handler in self._previous.items():
+            signal.signal(number, handler)
+        signal.set_wakeup_fd(self._previous_fd)
+        if self._pipe is not None:
+            for fd in self._pipe:
+                os.close(fd)
+            self._pipe = None
+
+
 def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fault_seed: int,
-                         ready_file: Path | None, log: Any) -> int:
-    """Bind, write the ready file, answer requests until SIGINT/SIGTERM; the exit status."""
+                         ready_file: Path | None, log: Any, stop_timeout_s: float = 30.0,
+                         safe_on_stop: bool = False) -> int:
+    """Bind, write the ready file, answer requests until SIGINT/SIGTERM; the exit status.
+
+    A stop waits at most ``stop_timeout_s`` for a driver call in progress (see
+    :class:`_StopGuard`); with ``safe_on_stop`` the driver's safe procedure runs before its
+    ``close``."""
     import zmq
 
     from autotune.server import RigServer, write_ready_file
@@ -412,29 +491,33 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
     except ConfigError as exc:
         log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
         return EXIT_BAD_INPUT
-    previous: dict[int, Any] = {}
-    try:
+    code = EXIT_OK
+    with _StopGuard(server, served, stop_timeout_s, log):
         try:
-            endpoint = server.start()
-        except zmq.ZMQError as exc:
-            log.error("server_bind_failed", error=str(exc))
-            return 1
-        for number in (signal.SIGINT, signal.SIGTERM):
-            previous[number] = signal.signal(number, lambda signum, frame: server.stop())
-        if ready_file is not None:
-            write_ready_file(ready_file, endpoint)
-        server.serve()
-        return EXIT_OK
-    finally:
-        server.close()
-        for number, handler in previous.items():
-            signal.signal(number, handler)
-        close = getattr(served, "close", None)
-        if callable(close):
             try:
-                close()
-            except Exception as exc:  # noqa: BLE001 - the driver's own shutdown; report, exit anyway
-                log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
+                endpoint = server.start()
+            except zmq.ZMQError as exc:
+                log.error("server_bind_failed", error=str(exc))
+                return 1
+            if ready_file is not None:
+                write_ready_file(ready_file, endpoint)
+            server.serve()
+        finally:
+            server.close()
+            if safe_on_stop:
+                try:
+                    served.safe()
+                except Exception as exc:  # noqa: BLE001 - reported; the stop goes on
+                    log.error("safe_on_stop_failed", error=f"{type(exc).__name__}: {exc}",
+                              consequence="the hardware was left where it was; check it")
+                    code = EXIT_RIG
+            close = getattr(served, "close", None)
+            if callable(close):
+                try:
+                    close()
+                except Exception as exc:  # noqa: BLE001 - the driver's own shutdown; report, exit anyway
+                    log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
+    return code
 
 
 def _child_seed(seed: int) -> int:
@@ -505,7 +588,9 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
     log.info("driver_loaded", rig=served.description.rig, driver=config.driver_class,
              simulated=served.description.simulated, setpoints=served.channel_map.summary())
     return _serve_until_stopped(served, bind, faults=FaultConfig(), curve=curve, fault_seed=0,
-                                ready_file=ns.ready_file, log=log)
+                                ready_file=ns.ready_file, log=log,
+                                stop_timeout_s=config.stop_timeout_s,
+                                safe_on_stop=config.safe_on_stop)
 
 
 def _start_driver(config: Any, log: Any) -> Any:

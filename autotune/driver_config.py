@@ -14,6 +14,8 @@ Layout (every key is checked; an unknown one is refused)::
     curve_secret_key_file = "keys/server.key_secret"   # optional, both or neither,
     curve_allowed_dir = "keys/allowed"                 # relative to this file
     start_timeout_s = 60.0                  # optional: longest start of the driver (s)
+    stop_timeout_s = 30.0                   # optional: longest wait for a driver call at a stop (s)
+    safe_on_stop = false                    # optional: call the driver's safe() when serve stops
 
     [setpoints.velocity]                    # the channel map, see autotune.channels
     ...
@@ -37,13 +39,17 @@ from typing import Any
 
 from autotune.errors import ConfigError
 
-__all__ = ["DEFAULT_BIND", "DEFAULT_START_TIMEOUT_S", "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
+__all__ = ["DEFAULT_BIND", "DEFAULT_START_TIMEOUT_S", "DEFAULT_STOP_TIMEOUT_S",
+           "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
 
 DEFAULT_BIND = "tcp://127.0.0.1:5560"
 """Where a server listens unless told otherwise: loopback only."""
 
 DEFAULT_START_TIMEOUT_S = 60.0
 """How long a driver may take to start (built, described, its status read) unless told."""
+
+DEFAULT_STOP_TIMEOUT_S = 30.0
+"""How long a stopping server waits for a driver call in progress unless told."""
 
 
 class DriverStartError(RuntimeError):
@@ -71,6 +77,12 @@ class DriverConfig:
     start_timeout_s : float
         Longest the driver may take to start (s): built from its options, described and its
         status read; past it, ``serve`` gives up (its hardware is taken as unreachable).
+    stop_timeout_s : float
+        Longest ``serve`` waits, after SIGINT/SIGTERM, for a driver call in progress (and for
+        ``safe_on_stop`` and ``close()``); past it, or at a second signal, it exits at once.
+    safe_on_stop : bool
+        Whether ``serve`` calls the driver's ``safe`` procedure when it stops (by default it
+        leaves the hardware where it is).
     setpoints : Mapping[str, Any]
         The ``[setpoints]`` tables (the channel map), checked when the driver is known.
     """
@@ -84,6 +96,16 @@ class DriverConfig:
     curve_allowed_dir: Path | None
     setpoints: Mapping[str, Any]
     start_timeout_s: float = DEFAULT_START_TIMEOUT_S
+    stop_timeout_s: float = DEFAULT_STOP_TIMEOUT_S
+    safe_on_stop: bool = False
+
+
+def _seconds(file: str, server: Mapping[str, Any], key: str, default: float) -> float:
+    value = server.get(key, default)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or \
+            not 0.0 < value < float("inf"):
+        raise ConfigError(file, f"server.{key}", "a finite number of seconds > 0", value)
+    return float(value)
 
 
 def _unknown(file: str, table: Mapping[str, Any], allowed: tuple[str, ...], prefix: str) -> None:
@@ -143,12 +165,12 @@ def load_driver_config(path: str | Path) -> DriverConfig:
 
     server = _table(file, data, "server", "", required=False)
     _unknown(file, server, ("bind", "curve_secret_key_file", "curve_allowed_dir",
-                            "start_timeout_s"), "server")
-    start_timeout_s = server.get("start_timeout_s", DEFAULT_START_TIMEOUT_S)
-    if isinstance(start_timeout_s, bool) or not isinstance(start_timeout_s, (int, float)) or \
-            not 0.0 < start_timeout_s < float("inf"):
-        raise ConfigError(file, "server.start_timeout_s", "a finite number of seconds > 0",
-                          start_timeout_s)
+                            "start_timeout_s", "stop_timeout_s", "safe_on_stop"), "server")
+    start_timeout_s = _seconds(file, server, "start_timeout_s", DEFAULT_START_TIMEOUT_S)
+    stop_timeout_s = _seconds(file, server, "stop_timeout_s", DEFAULT_STOP_TIMEOUT_S)
+    safe_on_stop = server.get("safe_on_stop", False)
+    if not isinstance(safe_on_stop, bool):
+        raise ConfigError(file, "server.safe_on_stop", "true or false", safe_on_stop)
     bind = server.get("bind", DEFAULT_BIND)
     if not isinstance(bind, str) or "://" not in bind:
         raise ConfigError(file, "server.bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
@@ -168,7 +190,8 @@ def load_driver_config(path: str | Path) -> DriverConfig:
                         curve_secret_key_file=curve["curve_secret_key_file"],
                         curve_allowed_dir=curve["curve_allowed_dir"],
                         setpoints=types.MappingProxyType(dict(setpoints)),
-                        start_timeout_s=float(start_timeout_s))
+                        start_timeout_s=start_timeout_s, stop_timeout_s=stop_timeout_s,
+                        safe_on_stop=safe_on_stop)
 
 
 def build_driver(config: DriverConfig) -> Any:

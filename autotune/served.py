@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import time
 import types
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -241,8 +242,9 @@ class ServedDriver:
             if not callable(getattr(driver, method, None)):
                 raise ConfigError(source, "driver.class", f"a class with a {method}() method "
                                   "(see autotune.driver)", type(driver).__name__)
-        self._driver = driver
-        self._description = parse_driver_description(driver.describe(), source=source)
+        self._watch = _CallWatch(driver)
+        self._driver = self._watch
+        self._description = parse_driver_description(self._driver.describe(), source=source)
         channels = self._description.channels
         if setpoints is None:
             self._map = identity_channel_map(channels, source=source)
@@ -258,14 +260,18 @@ class ServedDriver:
                               "busy, interlock None or a non-empty string, every mapped channel's "
                               "read-back, shots_total)", str(exc)) from None
         for op in SIMULATED_OPS:
-            method = getattr(driver, op, None)
-            if callable(method):
-                setattr(self, op, method)
+            if callable(getattr(driver, op, None)):
+                setattr(self, op, getattr(self._driver, op))
 
     @property
     def driver(self) -> Any:
         """The driver served."""
-        return self._driver
+        return self._watch.driver
+
+    @property
+    def call_in_progress(self) -> tuple[str, float] | None:
+        """The driver method running now and for how long (s), or None (any thread may ask)."""
+        return self._watch.in_progress()
 
     @property
     def channel_map(self) -> ChannelMap:
@@ -390,6 +396,32 @@ class ServedDriver:
 
     def close(self) -> None:
         """Close the driver if it has a ``close()``."""
-        close = getattr(self._driver, "close", None)
-        if callable(close):
-            close()
+        if callable(getattr(self._watch.driver, "close", None)):
+            self._driver.close()
+
+
+class _CallWatch:
+    """The driver, with the method running now (its name and start) known to other threads: a
+    server asked to stop names the call it waits for."""
+
+    def __init__(self, driver: Any) -> None:
+        self.driver = driver
+        self._current: tuple[str, float] | None = None
+
+    def in_progress(self) -> tuple[str, float] | None:
+        current = self._current
+        return None if current is None else (current[0], time.monotonic() - current[1])
+
+    def __getattr__(self, name: str) -> Any:
+        method = getattr(self.driver, name)
+        if not callable(method):
+            return method
+
+        def watched(*args: Any, **kwargs: Any) -> Any:
+            self._current = (name, time.monotonic())
+            try:
+                return method(*args, **kwargs)
+            finally:
+                self._current = None
+
+        return watched
