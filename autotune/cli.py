@@ -270,7 +270,7 @@ def _connect(config: RunConfig) -> Any:
                                      max_step=sp.max_step) for sp in config.setpoints}
     return BusClient(config.bus.endpoint, timeout_s=config.bus.timeout_s,
                      retries=config.bus.retries, backoff_s=config.bus.backoff_s, curve=curve,
-                     limits=limits)
+                     limits=limits, source=config.source)
 
 
 def _format_setpoints(setpoints: dict[str, float]) -> str:
