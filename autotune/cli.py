@@ -314,6 +314,17 @@ def _stop_message(exc: Interrupted, resume_hint: str | None) -> str:
     return text
 
 
+def _safe_message(exc: BaseException) -> str | None:
+    """What a run stopped by an error did to the rig, when it tried its safe set-points."""
+    safe = getattr(exc, "rig_safe", None)
+    if safe is True:
+        return "autotune: the rig confirmed its safe set-points; the journal is closed"
+    if safe is False:
+        return (f"autotune: the rig did NOT confirm its safe set-points "
+                f"({getattr(exc, 'rig_safe_detail', '')}); check it before leaving it")
+    return None
+
+
 def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = lambda: None
              ) -> int:
     """Run a command body, mapping the error tree to exit codes with one clear message."""
@@ -324,12 +335,16 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         return EXIT_INTERRUPTED
     except (ConfigError, LimitError, JournalError) as exc:
         print(f"autotune: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if isinstance(exc, JournalError) and hint and "store" in str(exc):
             print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if hint:
             print(f"autotune: once the rig answers again, continue with: {hint}",
@@ -337,11 +352,15 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         return EXIT_RIG
     except AutotuneError as exc:
         print(f"autotune: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         return EXIT_BAD_INPUT
     except Exception as exc:  # noqa: BLE001 - the last line of defence prints and exits
         _log.exception("internal_error")
         print(f"autotune: internal error (a bug of autotune, please report it): "
               f"{type(exc).__name__}: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if hint:
             print(f"autotune: the run can be continued with: {hint}", file=sys.stderr)

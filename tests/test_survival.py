@@ -386,3 +386,22 @@ def test_a_stop_with_the_rig_gone_says_safe_was_not_confirmed(tmp_path, servers)
     assert process.returncode == 130, err[-3000:]
     assert "did NOT confirm its safe set-points" in err
     assert any(r["type"] == "safe_failed" for r in read_journal(run / JOURNAL_NAME))
+
+
+def test_a_rig_lost_mid_run_says_safe_was_not_confirmed(tmp_path, servers):
+    """The rig dies mid-run and stays away: exit 3 (README: rig unreachable or failing), and
+    the last message says the safe set-points were NOT confirmed, as a stop by signal does, not
+    only a log line further up; the journal records the failed safe op."""
+    server = servers("--delay-s", "0.05", name="lost")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         bus={"timeout_s": 0.3, "retries": 1, "backoff_s": 0.05},
+                         recovery={"step_retries": 1, "retry_wait_s": 0.1})
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    err = _stop(process, lambda: wait_for_record(run / JOURNAL_NAME, _matcher("acquisition"),
+                                                 process=process),
+                server.kill)
+    assert process.returncode == 3, err[-3000:]
+    assert "autotune: the rig did NOT confirm its safe set-points" in err
+    assert "continue with: autotune calibrate" in err
+    assert any(r["type"] == "safe_failed" for r in read_journal(run / JOURNAL_NAME))
