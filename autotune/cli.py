@@ -113,8 +113,8 @@ def _console_value(key: str, value: Any) -> str | None:
         return ", ".join(_setpoint_text(k, v) for k, v in value.items())
     if key == "counts" and isinstance(value, dict):
         return " ".join(f"{k} {v}" for k, v in value.items())
-    if isinstance(value, dict | list | tuple | set):
-        return None  # nested data stays in the run folder's log.jsonl
+    if value is None or isinstance(value, dict | list | tuple | set):
+        return None  # nothing to show; nested data stays in the run folder's log.jsonl
     if isinstance(value, bool) or not isinstance(value, float):
         return str(value)
     if key in ("velocity",) or key.endswith("_m_per_s"):
@@ -131,7 +131,8 @@ def _console_value(key: str, value: Any) -> str | None:
 
 
 def _console_name(key: str) -> str:
-    """A key as words, its unit suffix dropped (the value carries the unit shown)."""
+    """A key as words, its unit suffix dropped (the value carries the unit shown); a second
+    set of set-points is named (``from ...``, ``target ...``), the one in force is not."""
     for suffix in ("_m_per_s", "_hz", "_rad", "_s"):
         if key.endswith(suffix) and key != suffix[1:]:
             key = key[: -len(suffix)]
@@ -174,7 +175,7 @@ def _console_line(_logger: Any, _method: str, event_dict: dict[str, Any]) -> str
             continue
         text = _console_value(key, value)
         if text is not None:
-            details.append(text if key in _SETPOINT_KEYS else f"{_console_name(key)} {text}")
+            details.append(text if key == "setpoints" else f"{_console_name(key)} {text}")
     line = " ".join(parts + [head])
     if details:
         line += " (" + "; ".join(details) + ")"

@@ -178,6 +178,19 @@ def test_console_value_units() -> None:
     assert cli._console_value("predicted", 0.72301526727128) == "0.723"
     assert cli._console_value("learned", {"slope": 1e-4}) is None
     assert cli._console_name("phase_shift_rad") == "phase shift"
+    assert cli._console_value("learned", None) is None
+
+
+def test_a_decision_with_two_sets_of_setpoints_names_the_second() -> None:
+    """A correction logs the set-points it goes to and those it comes from: the line says which
+    is which ('from ...'), and a value that is None is left out (no 'learned None')."""
+    line = cli._console_line(None, "info", {
+        "event": "decision", "what": "correct", "reason": "lock moves the detuning",
+        "stage": "calibrate", "timestamp": "2026-12-01T22:14:05.1Z", "level": "info",
+        "setpoints": {"velocity": 518.435, "detuning": -5776.6},
+        "from": {"velocity": 518.435, "detuning": -341.09}, "learned": None})
+    assert line == ("22:14:05 calibrate: correct: lock moves the detuning (velocity 518.4 m/s, "
+                    "detuning -5.78 kHz; from velocity 518.4 m/s, detuning -0.34 kHz)")
 
 
 def test_progress_text_and_durations() -> None:
