@@ -864,16 +864,20 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
+
+
 def _track_summary(result: dict[str, Any]) -> str:
     share = result.get("holding_share")
     night_h = result["night_rig_time_s"] / 3600.0
     held = (f"held {_format_setpoints(result['setpoints'])}" if result.get("held", True)
             else "held nothing (no recovery was accepted)")
+    counts = ", ".join(_count(int(result.get(key, 0)), key[:-1])
+                       for key in ("corrections", "alarms", "retunes", "calibrations"))
     text = (f"track: {result['status']} ({result['stop_reason']}); {held}, left at "
-            f"{result['left_at']}: "
-            f"{result.get('checks', 0)} checks ({result.get('rechecks', 0)} repeated at once), "
-            f"{result.get('corrections', 0)} corrections, {result.get('alarms', 0)} alarms, "
-            f"{result.get('retunes', 0)} retunes, {result.get('calibrations', 0)} calibrations; "
+            f"{result['left_at']}: {_count(int(result.get('checks', 0)), 'check')} "
+            f"({result.get('rechecks', 0)} repeated at once), {counts}; "
             f"holding took {'-' if share is None else f'{share:.1%}'} of {night_h:.2f} h of rig "
             f"time (budget {result['budget_fraction']:.0%})")
     if "inversion" in result:

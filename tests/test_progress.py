@@ -335,3 +335,14 @@ def test_the_library_stays_free_of_display_code() -> None:
             if any(n.split(".")[0] == "tqdm" or n == "autotune.display" for n in names):
                 users.add(path.name)
     assert users == {"cli.py", "bench.py", "display.py"}, users
+
+
+def test_the_night_summary_counts_in_the_singular_when_one() -> None:
+    """The summary of a night, like its progress line, says '1 retune', not '1 retunes'."""
+    text = cli._track_summary({
+        "status": "ended", "stop_reason": "end of the night", "setpoints": {"velocity": 516.33,
+        "detuning": -32090.0}, "held": True, "left_at": "its safe set-points", "checks": 1,
+        "rechecks": 0, "corrections": 4, "alarms": 0, "retunes": 1, "calibrations": 0,
+        "holding_share": 0.087, "night_rig_time_s": 3600.0, "budget_fraction": 0.05})
+    assert ": 1 check (0 repeated at once), 4 corrections, 0 alarms, 1 retune, 0 calibrations; " \
+        in text, text
