@@ -44,6 +44,7 @@ import zmq.auth
 from autotune import protocol
 from autotune.errors import (
     ConfigError,
+    ConfigErrors,
     LimitError,
     ProtocolError,
     RigError,
@@ -149,6 +150,9 @@ class BusClient:
         Configured limits; where the rig also describes a limit, the tighter one wins.
     context : zmq.Context, optional
         Context to create sockets in; by default the client owns a new one.
+    source : str, optional
+        The configuration file the limits came from, named (with the key
+        ``setpoints.NAME...``) when :meth:`describe` finds them incompatible with the rig's.
 
     Raises
     ------
@@ -172,6 +176,7 @@ class BusClient:
         curve: CurveClientKeys | None = None,
         limits: Mapping[str, SetpointLimit] | None = None,
         context: zmq.Context | None = None,
+        source: str = "<BusClient>",
     ) -> None:
         def bad(key: str, expected: str, got: object) -> ConfigError:
             return ConfigError("<BusClient>", key, expected, got)
@@ -203,6 +208,7 @@ class BusClient:
         self._backoff_s = float(backoff_s)
         self._curve = curve
         self._configured = types.MappingProxyType(configured)
+        self._source = str(source)
         self._limits: Mapping[str, SetpointLimit] = self._configured
         self._in_force: dict[str, float] = {}
         # The watch on the rig's identity, started by describe().
@@ -307,8 +313,9 @@ class BusClient:
 
         Raises
         ------
-        ConfigError
-            If a configured limit has another unit than the rig's or does not overlap it.
+        ConfigErrors
+            If configured limits have another unit than the rig's or do not overlap them:
+            every such set-point at once, each named by its key in ``source``.
         """
         description = protocol.parse_description(self._call(Op.DESCRIBE, {}))
         self._instance = description.instance
@@ -318,14 +325,27 @@ class BusClient:
         self._in_force.clear()
         self._repetition_rate_hz = float(description.repetition_rate_hz)
         merged = dict(description.setpoints)
+        problems: list[ConfigError] = []
         for name, configured in self._configured.items():
-            if name in merged:
-                try:
-                    merged[name] = merged[name].tighter(configured)
-                except ValueError as exc:
-                    raise ConfigError("<BusClient>", f"limits.{name}", f"a limit compatible with the rig's {merged[name]}", f"{configured} ({exc})") from exc
-            else:
+            if name not in merged:
                 merged[name] = configured
+                continue
+            described = merged[name]
+            key = f"setpoints.{name}"
+            if described.unit != configured.unit:
+                problems.append(ConfigError(self._source, f"{key}.unit",
+                                            f"the rig's unit {described.unit!r}",
+                                            configured.unit))
+                continue
+            try:
+                merged[name] = described.tighter(configured)
+            except ValueError:
+                problems.append(ConfigError(
+                    self._source, f"{key}.limit_min/limit_max",
+                    f"limits that overlap the rig's [{described.min:g}, {described.max:g}] "
+                    f"{described.unit}", [configured.min, configured.max]))
+        if problems:
+            raise ConfigErrors(problems)
         self._limits = types.MappingProxyType(merged)
         return description
 

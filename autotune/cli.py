@@ -114,8 +114,8 @@ def _console_value(key: str, value: Any) -> str | None:
         return ", ".join(_setpoint_text(k, v) for k, v in value.items())
     if key == "counts" and isinstance(value, dict):
         return " ".join(f"{k} {v}" for k, v in value.items())
-    if isinstance(value, dict | list | tuple | set):
-        return None  # nested data stays in the run folder's log.jsonl
+    if value is None or isinstance(value, dict | list | tuple | set):
+        return None  # nothing to show; nested data stays in the run folder's log.jsonl
     if isinstance(value, bool) or not isinstance(value, float):
         return str(value)
     if key in ("velocity",) or key.endswith("_m_per_s"):
@@ -132,7 +132,8 @@ def _console_value(key: str, value: Any) -> str | None:
 
 
 def _console_name(key: str) -> str:
-    """A key as words, its unit suffix dropped (the value carries the unit shown)."""
+    """A key as words, its unit suffix dropped (the value carries the unit shown); a second
+    set of set-points is named (``from ...``, ``target ...``), the one in force is not."""
     for suffix in ("_m_per_s", "_hz", "_rad", "_s"):
         if key.endswith(suffix) and key != suffix[1:]:
             key = key[: -len(suffix)]
@@ -175,7 +176,7 @@ def _console_line(_logger: Any, _method: str, event_dict: dict[str, Any]) -> str
             continue
         text = _console_value(key, value)
         if text is not None:
-            details.append(text if key in _SETPOINT_KEYS else f"{_console_name(key)} {text}")
+            details.append(text if key == "setpoints" else f"{_console_name(key)} {text}")
     line = " ".join(parts + [head])
     if details:
         line += " (" + "; ".join(details) + ")"
@@ -271,7 +272,7 @@ def _connect(config: RunConfig) -> Any:
                                      max_step=sp.max_step) for sp in config.setpoints}
     return BusClient(config.bus.endpoint, timeout_s=config.bus.timeout_s,
                      retries=config.bus.retries, backoff_s=config.bus.backoff_s, curve=curve,
-                     limits=limits)
+                     limits=limits, source=config.source)
 
 
 def _format_setpoints(setpoints: dict[str, float]) -> str:
@@ -315,6 +316,17 @@ def _stop_message(exc: Interrupted, resume_hint: str | None) -> str:
     return text
 
 
+def _safe_message(exc: BaseException) -> str | None:
+    """What a run stopped by an error did to the rig, when it tried its safe set-points."""
+    safe = getattr(exc, "rig_safe", None)
+    if safe is True:
+        return "autotune: the rig confirmed its safe set-points; the journal is closed"
+    if safe is False:
+        return (f"autotune: the rig did NOT confirm its safe set-points "
+                f"({getattr(exc, 'rig_safe_detail', '')}); check it before leaving it")
+    return None
+
+
 def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = lambda: None
              ) -> int:
     """Run a command body, mapping the error tree to exit codes with one clear message."""
@@ -325,12 +337,16 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         return EXIT_INTERRUPTED
     except (ConfigError, LimitError, JournalError) as exc:
         print(f"autotune: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if isinstance(exc, JournalError) and hint and "store" in str(exc):
             print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if hint:
             print(f"autotune: once the rig answers again, continue with: {hint}",
@@ -338,11 +354,15 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         return EXIT_RIG
     except AutotuneError as exc:
         print(f"autotune: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         return EXIT_BAD_INPUT
     except Exception as exc:  # noqa: BLE001 - the last line of defence prints and exits
         _log.exception("internal_error")
         print(f"autotune: internal error (a bug of autotune, please report it): "
               f"{type(exc).__name__}: {exc}", file=sys.stderr)
+        if (safe := _safe_message(exc)) is not None:
+            print(safe, file=sys.stderr)
         hint = resume_hint()
         if hint:
             print(f"autotune: the run can be continued with: {hint}", file=sys.stderr)
@@ -929,16 +949,20 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
+
+
 def _track_summary(result: dict[str, Any]) -> str:
     share = result.get("holding_share")
     night_h = result["night_rig_time_s"] / 3600.0
     held = (f"held {_format_setpoints(result['setpoints'])}" if result.get("held", True)
             else "held nothing (no recovery was accepted)")
+    counts = ", ".join(_count(int(result.get(key, 0)), key[:-1])
+                       for key in ("corrections", "alarms", "retunes", "calibrations"))
     text = (f"track: {result['status']} ({result['stop_reason']}); {held}, left at "
-            f"{result['left_at']}: "
-            f"{result.get('checks', 0)} checks ({result.get('rechecks', 0)} repeated at once), "
-            f"{result.get('corrections', 0)} corrections, {result.get('alarms', 0)} alarms, "
-            f"{result.get('retunes', 0)} retunes, {result.get('calibrations', 0)} calibrations; "
+            f"{result['left_at']}: {_count(int(result.get('checks', 0)), 'check')} "
+            f"({result.get('rechecks', 0)} repeated at once), {counts}; "
             f"holding took {'-' if share is None else f'{share:.1%}'} of {night_h:.2f} h of rig "
             f"time (budget {result['budget_fraction']:.0%})")
     if "inversion" in result:

@@ -227,15 +227,24 @@ def settle_failure(session: Session, exc: Exception, status: str) -> str:
     if isinstance(exc, JournalError):
         if status == "store_failed":
             return status
-        session.go_safe("the run folder could not be written")
+        _note_safe(exc, session.go_safe("the run folder could not be written"))
         return "aborted"
     if isinstance(exc, AutotuneError):
         session.decide("abort", str(exc))
-        session.go_safe(f"aborted: {exc}")
+        _note_safe(exc, session.go_safe(f"aborted: {exc}"))
         return "aborted"
     session.decide("abort", f"internal error: {type(exc).__name__}: {exc}")
-    session.go_safe(f"internal error: {type(exc).__name__}")
+    _note_safe(exc, session.go_safe(f"internal error: {type(exc).__name__}"))
     return "failed"
+
+
+def _note_safe(exc: Exception, outcome: tuple[bool, str]) -> None:
+    """Keep on ``exc`` whether the rig confirmed its safe set-points (``rig_safe``) and the
+    error if it did not (``rig_safe_detail``), for the command's last message."""
+    try:
+        exc.rig_safe, exc.rig_safe_detail = outcome  # type: ignore[attr-defined]
+    except AttributeError:  # an exception type without a __dict__: nothing to say then
+        pass
 
 
 def preflight(command: str, config: RunConfig, description: Any, *, store: Path,

@@ -408,6 +408,17 @@ class _Ledger:
         return getattr(self._journal, name)
 
 
+def _setpoints_text(setpoints: Mapping[str, float]) -> str:
+    """Set-points as a physicist reads them: velocity to 0.1 m/s, detuning in kHz to 0.01."""
+    def one(name: str, value: float) -> str:
+        if name == "velocity":
+            return f"velocity {value:.1f} m/s"
+        if name == "detuning":
+            return f"detuning {value / 1e3:+.2f} kHz"
+        return f"{name} {value:.6g}"
+    return ", ".join(one(k, float(v)) for k, v in setpoints.items())
+
+
 def _same(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
     return all(abs(float(a.get(k, math.nan)) - float(v)) <= 1e-9 * max(1.0, abs(float(v)))
                for k, v in b.items())
@@ -780,7 +791,7 @@ class _Night:
                              int(rec.get("shots") or 0)]
                             for rec in self._stage_estimates(index)]
         session.decide("stage_done", f"{kind} {index}: {outcome['status']} at "
-                       + ", ".join(f"{k} {v:.6g}" for k, v in outcome["setpoints"].items()),
+                       + _setpoints_text(outcome["setpoints"]),
                        index=index, outcome=_clean(outcome))
         return outcome
 

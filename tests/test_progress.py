@@ -178,6 +178,19 @@ def test_console_value_units() -> None:
     assert cli._console_value("predicted", 0.72301526727128) == "0.723"
     assert cli._console_value("learned", {"slope": 1e-4}) is None
     assert cli._console_name("phase_shift_rad") == "phase shift"
+    assert cli._console_value("learned", None) is None
+
+
+def test_a_decision_with_two_sets_of_setpoints_names_the_second() -> None:
+    """A correction logs the set-points it goes to and those it comes from: the line says which
+    is which ('from ...'), and a value that is None is left out (no 'learned None')."""
+    line = cli._console_line(None, "info", {
+        "event": "decision", "what": "correct", "reason": "lock moves the detuning",
+        "stage": "calibrate", "timestamp": "2026-12-01T22:14:05.1Z", "level": "info",
+        "setpoints": {"velocity": 518.435, "detuning": -5776.6},
+        "from": {"velocity": 518.435, "detuning": -341.09}, "learned": None})
+    assert line == ("22:14:05 calibrate: correct: lock moves the detuning (velocity 518.4 m/s, "
+                    "detuning -5.78 kHz; from velocity 518.4 m/s, detuning -0.34 kHz)")
 
 
 def test_progress_text_and_durations() -> None:
@@ -322,3 +335,14 @@ def test_the_library_stays_free_of_display_code() -> None:
             if any(n.split(".")[0] == "tqdm" or n == "autotune.display" for n in names):
                 users.add(path.name)
     assert users == {"cli.py", "bench.py", "display.py"}, users
+
+
+def test_the_night_summary_counts_in_the_singular_when_one() -> None:
+    """The summary of a night, like its progress line, says '1 retune', not '1 retunes'."""
+    text = cli._track_summary({
+        "status": "ended", "stop_reason": "end of the night", "setpoints": {"velocity": 516.33,
+        "detuning": -32090.0}, "held": True, "left_at": "its safe set-points", "checks": 1,
+        "rechecks": 0, "corrections": 4, "alarms": 0, "retunes": 1, "calibrations": 0,
+        "holding_share": 0.087, "night_rig_time_s": 3600.0, "budget_fraction": 0.05})
+    assert ": 1 check (0 repeated at once), 4 corrections, 0 alarms, 1 retune, 0 calibrations; " \
+        in text, text

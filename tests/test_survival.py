@@ -290,6 +290,31 @@ def test_a_bad_run_is_refused_before_the_first_move(tmp_path, servers):
     assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
 
 
+def test_a_wrong_unit_and_limits_outside_the_rigs_name_the_file_and_keys(tmp_path, servers):
+    """A detuning configured in kHz and velocity limits wholly outside the rig's are both named
+    by the config file and key (README: a wrong key names the file, the key, what was expected
+    and what was found), exit 2, no run folder, and the rig never moved."""
+    server = servers(name="units")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         setpoints={"velocity": {"limit_min": 750.0, "limit_max": 900.0,
+                                                 "search_min": 760.0, "search_max": 800.0},
+                                    "detuning": {"unit": "kHz"}})
+    with _client(server.endpoint) as rig:
+        before = rig.status()
+    done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
+    assert done.returncode == 2, done.stderr[-3000:]
+    assert "2 problems" in done.stderr
+    assert f"{config}: setpoints.detuning.unit: expected the rig's unit 'Hz', got 'kHz'" \
+        in done.stderr
+    assert f"{config}: setpoints.velocity.limit_min/limit_max: expected limits that overlap " \
+           "the rig's [300, 700] m/s" in done.stderr
+    assert "<BusClient>" not in done.stderr and "Traceback" not in done.stderr
+    assert not (tmp_path / "run").exists()
+    with _client(server.endpoint) as rig:
+        after = rig.status()
+    assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
+
+
 def test_a_config_with_several_wrong_keys_names_them_all(tmp_path):
     """min_points above max_points, n_initial_points above it too and a negative timeout:
     one message with every problem, exit 2, before any connection (README: configuration)."""
@@ -360,4 +385,23 @@ def test_a_stop_with_the_rig_gone_says_safe_was_not_confirmed(tmp_path, servers)
     err = _stop(process, rig_dies, lambda: process.send_signal(signal.SIGTERM))
     assert process.returncode == 130, err[-3000:]
     assert "did NOT confirm its safe set-points" in err
+    assert any(r["type"] == "safe_failed" for r in read_journal(run / JOURNAL_NAME))
+
+
+def test_a_rig_lost_mid_run_says_safe_was_not_confirmed(tmp_path, servers):
+    """The rig dies mid-run and stays away: exit 3 (README: rig unreachable or failing), and
+    the last message says the safe set-points were NOT confirmed, as a stop by signal does, not
+    only a log line further up; the journal records the failed safe op."""
+    server = servers("--delay-s", "0.05", name="lost")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         bus={"timeout_s": 0.3, "retries": 1, "backoff_s": 0.05},
+                         recovery={"step_retries": 1, "retry_wait_s": 0.1})
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    err = _stop(process, lambda: wait_for_record(run / JOURNAL_NAME, _matcher("acquisition"),
+                                                 process=process),
+                server.kill)
+    assert process.returncode == 3, err[-3000:]
+    assert "autotune: the rig did NOT confirm its safe set-points" in err
+    assert "continue with: autotune calibrate" in err
     assert any(r["type"] == "safe_failed" for r in read_journal(run / JOURNAL_NAME))

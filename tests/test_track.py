@@ -150,6 +150,17 @@ def test_the_store_holds_the_latest_accepted_retune_with_its_lock_prior(night):
     assert stored["lock_prior"] is not None and stored["run_dir"].endswith("night")
 
 
+def test_a_stage_done_names_its_setpoints_in_the_units_a_physicist_reads(night):
+    """README (Progress and logs): velocity to 0.1 m/s, detuning in kHz to 0.01, as every other
+    decision of the night; not raw Hz and m/s to six digits."""
+    done = [r for r in night["records"] if r["type"] == "decision" and r["what"] == "stage_done"]
+    assert done
+    for rec in done:
+        sp = rec["outcome"]["setpoints"]
+        assert rec["reason"].endswith(f"at velocity {sp['velocity']:.1f} m/s, "
+                                      f"detuning {sp['detuning'] / 1e3:+.2f} kHz"), rec["reason"]
+
+
 def _cuts(records: list[dict[str, Any]]) -> list[tuple[str, int, bool]]:
     names: dict[str, int] = {}
     for index, rec in enumerate(records[:-1]):
