@@ -28,6 +28,7 @@ Everything here is pure: no I/O, no sockets.
 
 from __future__ import annotations
 
+import difflib
 import math
 import types
 from collections.abc import Mapping
@@ -484,9 +485,15 @@ class _Reader:
     def fail(self, key: str, expected: str, got: object) -> ConfigError:
         return ConfigError(self.file, f"{self.prefix}.{key}" if key else self.prefix, expected, got)
 
+    def missing(self, key: str) -> str:
+        """What a required key's absence is reported as, with a near spelling that is there."""
+        near = difflib.get_close_matches(key, [str(k) for k in self.table], n=1, cutoff=0.8)
+        return ("nothing (the key is required)" if not near else
+                f"nothing (the key is required; there is {near[0]!r}: a misspelling?)")
+
     def string(self, key: str) -> str:
         if key not in self.table:
-            raise self.fail(key, "a string", "nothing (the key is required)")
+            raise self.fail(key, "a string", self.missing(key))
         value = self.table[key]
         if not isinstance(value, str) or not value:
             raise self.fail(key, "a non-empty string", value)
@@ -496,7 +503,7 @@ class _Reader:
                non_negative: bool = False) -> float | None:
         if key not in self.table:
             if required:
-                raise self.fail(key, "a number", "nothing (the key is required)")
+                raise self.fail(key, "a number", self.missing(key))
             return None
         value = self.table[key]
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):

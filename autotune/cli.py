@@ -63,9 +63,10 @@ from autotune.errors import (
     JournalError,
     LimitError,
     RigError,
+    RunAlreadyEnded,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
-from autotune.display import ProgressDisplay, progress_mode, progress_text
+from autotune.display import ProgressDisplay, count_text, progress_mode, progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
            "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]
@@ -441,8 +442,7 @@ class _StopGuard:
         self._pipe: tuple[int, int] | None = None
 
     def _call_text(self) -> str:
-        watch = getattr(self.served, "call_in_progress", None)
-        current = watch() if callable(watch) else None
+        current = getattr(self.served, "call_in_progress", None)
         return "none" if current is None else f"driver.{current[0]}() running for {current[1]:.1f} s"
 
     def __enter__(self) -> _StopGuard:
@@ -789,7 +789,18 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers()
         with _connect(config) as rig:
-            prepared = prepare(rig, config, run_dir, resume=resume)
+            try:
+                prepared = prepare(rig, config, run_dir, resume=resume)
+            except RunAlreadyEnded as exc:
+                if exc.result is None:
+                    raise
+                # A resume of a run killed after its end record (or run twice): nothing moves;
+                # its outcome is told again, with its exit status.
+                print(f"autotune: {exc}; nothing was sent to the rig. Its result:",
+                      file=sys.stderr)
+                print(summary(exc.result))
+                print(f"run folder: {run_dir}")
+                return exit_code(exc.result)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
             started.append(run_dir)
@@ -949,19 +960,15 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
     return "\n".join(lines)
 
 
-def _count(n: int, noun: str) -> str:
-    return f"{n} {noun}" + ("" if n == 1 else "s")
-
-
 def _track_summary(result: dict[str, Any]) -> str:
     share = result.get("holding_share")
     night_h = result["night_rig_time_s"] / 3600.0
     held = (f"held {_format_setpoints(result['setpoints'])}" if result.get("held", True)
             else "held nothing (no recovery was accepted)")
-    counts = ", ".join(_count(int(result.get(key, 0)), key[:-1])
+    counts = ", ".join(count_text(int(result.get(key, 0)), key[:-1])
                        for key in ("corrections", "alarms", "retunes", "calibrations"))
     text = (f"track: {result['status']} ({result['stop_reason']}); {held}, left at "
-            f"{result['left_at']}: {_count(int(result.get('checks', 0)), 'check')} "
+            f"{result['left_at']}: {count_text(int(result.get('checks', 0)), 'check')} "
             f"({result.get('rechecks', 0)} repeated at once), {counts}; "
             f"holding took {'-' if share is None else f'{share:.1%}'} of {night_h:.2f} h of rig "
             f"time (budget {result['budget_fraction']:.0%})")

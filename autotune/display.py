@@ -24,7 +24,7 @@ from typing import Any, Literal
 from autotune.progress import NightProgress, StageProgress, format_duration
 
 __all__ = ["ProgressMode", "ProgressDisplay", "progress_mode", "stage_progress_text",
-           "night_progress_text", "progress_text", "shots_text"]
+           "night_progress_text", "progress_text", "shots_text", "count_text"]
 
 ProgressMode = Literal["terminal", "plain", "off"]
 
@@ -62,7 +62,8 @@ def stage_progress_text(p: StageProgress) -> str:
     return " | ".join(parts)
 
 
-def _count(n: int, noun: str) -> str:
+def count_text(n: int, noun: str) -> str:
+    """``"1 check"``, ``"3 checks"``."""
     return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
@@ -83,9 +84,9 @@ def night_progress_text(p: NightProgress) -> str:
         parts.append(f"next in {format_duration(p.next_in_s)}")
     share = "-" if p.holding_share is None else f"{p.holding_share:.1%}"
     parts.append(f"beam {share} (budget {p.budget_fraction:.0%})")
-    parts.append(", ".join([_count(p.checks, "check"), _count(p.corrections, "correction"),
-                            _count(p.alarms, "alarm"), _count(p.retunes, "retune"),
-                            _count(p.calibrations, "calibration")]))
+    parts.append(", ".join([count_text(p.checks, "check"), count_text(p.corrections, "correction"),
+                            count_text(p.alarms, "alarm"), count_text(p.retunes, "retune"),
+                            count_text(p.calibrations, "calibration")]))
     return " | ".join(parts)
 
 

@@ -28,8 +28,11 @@ driver is built (:class:`autotune.served.ServedDriver`); everything else here, a
 
 from __future__ import annotations
 
+import difflib
 import importlib
+import inspect
 import sys
+import traceback
 import tomllib
 import types
 from collections.abc import Mapping
@@ -205,11 +208,13 @@ def build_driver(config: DriverConfig) -> Any:
     Raises
     ------
     ConfigError
-        If the module or class cannot be found, or the class refuses its options (TypeError or
-        ValueError while it is built).
+        If the module cannot be imported (missing, or its code fails at import: a syntax
+        error, a name error), the class is not found, or the options do not fit the class's
+        signature (an unknown or a missing keyword).
     DriverStartError
-        If building the driver fails otherwise (its hardware cannot be reached, most often);
-        the cause is chained.
+        If building the driver fails otherwise (its hardware cannot be reached or answers
+        what the driver cannot read, an option value the driver refuses); the message names
+        where the driver raised, the cause is chained.
     """
     file = str(config.path)
     for folder in reversed(config.python_path):
@@ -221,19 +226,66 @@ def build_driver(config: DriverConfig) -> Any:
     except ImportError as exc:
         raise ConfigError(file, "driver.class", f"an importable module {module_name!r} (see driver.python_path)",
                           f"{type(exc).__name__}: {exc}") from exc
+    except Exception as exc:  # noqa: BLE001 - the lab's module failed while importing
+        raise ConfigError(file, "driver.class", f"a module {module_name!r} that imports without error",
+                          f"{type(exc).__name__}: {exc}{_raised_at(exc)}") from exc
     target: Any = module
     for part in class_name.split("."):
         target = getattr(target, part, None)
     if not isinstance(target, type):
         raise ConfigError(file, "driver.class", f"a class {class_name!r} in module {module_name!r}", target)
     options = dict(config.options)
+    factory = getattr(target, "from_config", None)
+    if not callable(factory):
+        try:
+            signature = inspect.signature(target)
+        except (TypeError, ValueError):  # no signature to read (a class built in C): try it
+            signature = None
+        problem = None if signature is None else _options_problem(signature, options)
+        if problem:
+            raise ConfigError(file, "driver.options", f"the keyword arguments of "
+                              f"{config.driver_class}{signature}", problem)
     try:
-        factory = getattr(target, "from_config", None)
         if callable(factory):
             return factory(options, config.path.resolve().parent)
         return target(**options)
-    except (TypeError, ValueError) as exc:
-        raise ConfigError(file, "driver.options", f"options that {config.driver_class} accepts",
-                          f"{type(exc).__name__}: {exc}") from exc
     except Exception as exc:  # noqa: BLE001 - any failure of the lab's code while starting
-        raise DriverStartError(f"{config.driver_class} failed to start: {type(exc).__name__}: {exc}") from exc
+        raise DriverStartError(f"{config.driver_class} failed to start: {type(exc).__name__}: "
+                               f"{exc}{_raised_at(exc)}") from exc
+
+
+def _options_problem(signature: inspect.Signature, options: Mapping[str, Any]) -> str:
+    """What keeps ``options`` from binding to ``signature`` ("" when they bind): unknown
+    options with the nearest accepted name, then missing required ones."""
+    try:
+        signature.bind(**options)
+        return ""
+    except TypeError as exc:
+        fallback = str(exc)
+    params = signature.parameters
+    named = [n for n, p in params.items()
+             if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)]
+    problems = []
+    if not any(p.kind == p.VAR_KEYWORD for p in params.values()):
+        for name in options:
+            if name not in named:
+                near = difflib.get_close_matches(name, named, n=1)
+                problems.append(f"unknown option {name!r}"
+                                + (f" (did you mean {near[0]!r}?)" if near else ""))
+    for name in named:
+        p = params[name]
+        if p.default is p.empty and name not in options:
+            problems.append(f"missing option {name!r}")
+    return "; ".join(problems) or fallback
+
+
+def _raised_at(exc: BaseException) -> str:
+    """`` (raised at FILE:LINE in FUNCTION)`` for the innermost frame of ``exc``, or where a
+    syntax error is."""
+    if isinstance(exc, SyntaxError) and exc.filename:
+        return f" (at {Path(exc.filename).name}:{exc.lineno})"
+    frames = traceback.extract_tb(exc.__traceback__)
+    if not frames:
+        return ""
+    last = frames[-1]
+    return f" (raised at {Path(last.filename).name}:{last.lineno} in {last.name})"

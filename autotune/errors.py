@@ -43,6 +43,7 @@ __all__ = [
     "LimitError",
     "EstimationError",
     "JournalError",
+    "RunAlreadyEnded",
     "Interrupted",
     "RigError",
     "RigTimeout",
@@ -116,6 +117,17 @@ class EstimationError(AutotuneError, ValueError):
 
 class JournalError(AutotuneError):
     """A run folder or its journal cannot be written, read or resumed."""
+
+
+class RunAlreadyEnded(JournalError):
+    """A resume of a run (or night) whose journal ends with a final status: nothing is left to
+    do. ``status`` is that status; ``result`` the run's ``result.json`` (None if it has none),
+    so that a resume after a process killed at its very end still reports the outcome."""
+
+    def __init__(self, message: str, status: str, result: dict | None) -> None:
+        super().__init__(message)
+        self.status = status
+        self.result = result
 
 
 class Interrupted(AutotuneError):

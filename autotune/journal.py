@@ -35,6 +35,7 @@ __all__ = [
     "RESULT_NAME",
     "LOG_NAME",
     "read_journal",
+    "ended_result",
     "read_json",
     "write_json_atomic",
     "utc_now",
@@ -94,6 +95,15 @@ def read_json(path: Path) -> Any:
         raise JournalError(f"{path}: no such file") from exc
     except (OSError, ValueError) as exc:
         raise JournalError(f"{path}: not readable JSON ({exc})") from exc
+
+
+def ended_result(run_dir: Path) -> dict[str, Any] | None:
+    """The ``result.json`` of a run that ended, or None when it has none (or it is unreadable)."""
+    try:
+        result = read_json(Path(run_dir) / RESULT_NAME)
+    except JournalError:
+        return None
+    return result if isinstance(result, dict) else None
 
 
 def _iter_lines(path: Path) -> Iterator[tuple[int, bytes]]:

@@ -41,6 +41,7 @@ import structlog
 from autotune import __version__
 from autotune.config import RunConfig
 from autotune.errors import (
+    RunAlreadyEnded,
     AutotuneError,
     ConfigError,
     ConfigErrors,
@@ -50,6 +51,7 @@ from autotune.errors import (
 from autotune.guided import LockPrior
 from autotune.journal import (
     JOURNAL_NAME,
+    ended_result,
     MANIFEST_NAME,
     RESULT_NAME,
     RESUMABLE,
@@ -465,15 +467,17 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
         records = read_journal(run_dir / JOURNAL_NAME)
         if manifest.get("command") != command:
             raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not {command}; "
-                               f"resume it with 'autotune {manifest.get('command')} --resume'")
+                               f"resume it with 'autotune {manifest.get('command')} --config "
+                               f"CONFIG --resume {run_dir}'")
         started_on = manifest.get("rig", {}).get("rig")
         if started_on != description.rig:
             raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
                                f"{description.rig!r}")
         if records and records[-1].get("type") == "end" and \
                 records[-1].get("status") not in RESUMABLE:
-            raise JournalError(f"{run_dir}: the run already ended "
-                               f"({records[-1].get('status')}); nothing to resume")
+            raise RunAlreadyEnded(f"{run_dir}: the run already ended "
+                                  f"({records[-1].get('status')}); nothing to resume",
+                                  str(records[-1].get("status")), ended_result(run_dir))
         changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source)
         problems.extend(refused)
     if problems:

@@ -70,6 +70,7 @@ import structlog
 
 from autotune.config import RunConfig
 from autotune.errors import (
+    RunAlreadyEnded,
     ConfigErrors,
     Interrupted,
     JournalError,
@@ -90,6 +91,7 @@ from autotune.hold import (
 )
 from autotune.journal import (
     JOURNAL_NAME,
+    ended_result,
     MANIFEST_NAME,
     RESULT_NAME,
     RESUMABLE,
@@ -227,15 +229,16 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
         if manifest.get("command") != "track":
             raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not a night of "
                                f"track; resume it with 'autotune {manifest.get('command')} "
-                               f"--resume'")
+                               f"--config CONFIG --resume {run_dir}'")
         started_on = manifest.get("rig", {}).get("rig")
         if started_on != description.rig:
             raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
                                f"{description.rig!r}")
         if records and records[-1].get("type") == "end" and \
                 records[-1].get("status") not in RESUMABLE:
-            raise JournalError(f"{run_dir}: the night already ended "
-                               f"({records[-1].get('status')}); nothing to resume")
+            raise RunAlreadyEnded(f"{run_dir}: the night already ended "
+                                  f"({records[-1].get('status')}); nothing to resume",
+                                  str(records[-1].get("status")), ended_result(run_dir))
         changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source,
                                           also_allowed=("track.",))
         problems.extend(refused)

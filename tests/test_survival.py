@@ -315,6 +315,33 @@ def test_a_wrong_unit_and_limits_outside_the_rigs_name_the_file_and_keys(tmp_pat
     assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
 
 
+def test_a_finished_run_resumed_tells_its_outcome_again_and_moves_nothing(tmp_path, servers):
+    """A resume of a run that already ended (a process killed after its end record, or the
+    same resume run twice by a script): nothing is sent to the rig, the summary of its
+    result.json is printed again and the exit status is the run's own (0 when accepted)."""
+    server = servers(name="rig-ended")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
+    run = tmp_path / "run"
+    done = autotune("calibrate", "--config", str(config), "--out", str(run))
+    assert done.returncode == 0, done.stderr[-3000:]
+    with _client(server.endpoint) as rig:
+        before = rig.status()
+    lines = len(read_journal(run / JOURNAL_NAME))
+    for _ in range(2):
+        again = autotune("calibrate", "--config", str(config), "--resume", str(run))
+        assert again.returncode == 0, again.stderr[-3000:]
+        assert "the run already ended (accepted); nothing to resume; nothing was sent to the " \
+               "rig" in again.stderr
+        assert again.stdout == done.stdout
+    assert len(read_journal(run / JOURNAL_NAME)) == lines
+    with _client(server.endpoint) as rig:
+        after = rig.status()
+    assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
+    wrong = autotune("retune", "--config", str(config), "--resume", str(run))
+    assert wrong.returncode == 2
+    assert f"resume it with 'autotune calibrate --config CONFIG --resume {run}'" in wrong.stderr
+
+
 def test_a_config_with_several_wrong_keys_names_them_all(tmp_path):
     """min_points above max_points, n_initial_points above it too and a negative timeout:
     one message with every problem, exit 2, before any connection (README: configuration)."""

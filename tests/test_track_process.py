@@ -221,5 +221,12 @@ def test_a_night_whose_recoveries_all_fail_exits_4_at_safe(tmp_path):
             status = rig.status()
         assert status.setpoints == safe
         assert status.shots_total == journal_shots(records) + journal_shots(calibration)
+        # Resumed once it has given up: its outcome again, exit 4, nothing sent to the rig.
+        again = autotune("track", "--config", str(config), "--resume", str(night))
+        assert again.returncode == 4, again.stderr[-3000:]
+        assert "the night already ended (gave_up)" in again.stderr
+        assert again.stdout == ran.stdout
+        with _client(server.endpoint) as rig:
+            assert rig.status().shots_total == status.shots_total
     finally:
         server.stop()

@@ -89,7 +89,45 @@ def test_wrong_options_are_a_config_error(tmp_path: Path):
     text = MINIMAL.format(target="kit_opts_driver:Driver", options="[driver.options]\nadress = \"x\"\n")
     with pytest.raises(ConfigError) as info:
         build_driver(load_driver_config(_write(tmp_path, text)))
-    assert info.value.key == "driver.options" and "adress" in str(info.value)
+    assert info.value.key == "driver.options"
+    assert "unknown option 'adress' (did you mean 'address'?); missing option 'address'" \
+        in str(info.value)
+
+
+def test_a_module_that_fails_at_import_is_a_config_error_naming_the_line(tmp_path: Path):
+    """A driver module with a syntax error is the driver's code, not its hardware: a
+    ConfigError on driver.class (exit 2) with the file and line."""
+    (tmp_path / "kit_broken_driver.py").write_text("class Driver\n    pass\n")
+    text = MINIMAL.format(target="kit_broken_driver:Driver", options="")
+    with pytest.raises(ConfigError) as info:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert info.value.key == "driver.class"
+    assert "SyntaxError" in str(info.value) and "kit_broken_driver.py:1" in str(info.value)
+
+
+def test_a_reply_the_constructor_cannot_read_is_a_start_error_naming_where(tmp_path: Path):
+    """A ValueError raised inside the constructor while reading an instrument's reply is a
+    failure to start (exit 3), not an options error; the message says where it was raised."""
+    (tmp_path / "kit_parse_driver.py").write_text(
+        "class Driver:\n    def __init__(self, address='supply://a'):\n"
+        "        self.volts = float('ERR -113,Undefined header')\n")
+    text = MINIMAL.format(target="kit_parse_driver:Driver", options="")
+    with pytest.raises(DriverStartError) as info:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert "could not convert string to float" in str(info.value)
+    assert "raised at kit_parse_driver.py:3 in __init__" in str(info.value)
+
+
+def test_a_misspelled_required_channel_key_is_named(tmp_path: Path):
+    """'chanel_unit' for 'channel_unit': the message names the misspelling that is there."""
+    from autotune.channels import channel_map_from_table
+
+    table = {"velocity": {"unit": "m/s", "channel": "V", "chanel_unit": "m/s", "law": "linear",
+                          "scale": 1.0}}
+    with pytest.raises(ConfigError) as info:
+        channel_map_from_table(table, {}, file="DRIVER.toml")
+    assert info.value.key == "setpoints.velocity.channel_unit"
+    assert "there is 'chanel_unit': a misspelling?" in str(info.value)
 
 
 def test_driver_failing_to_connect_is_a_start_error(tmp_path: Path):

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import shutil
 import signal
 import socket
@@ -230,3 +231,111 @@ def test_installed_script_shows_help(command: str, options: list[str]):
     assert done.returncode == 0, done.stderr
     for option in options:
         assert option in done.stdout
+
+
+def _driver_variant(tmp_path: Path, body: str, server_keys: str) -> Path:
+    """The example driver's DRIVER.toml and package copied, its class replaced by a subclass of
+    LabDriver written here (``body``: the class body), with ``server_keys`` in [server]."""
+    config = _bad_copy(tmp_path, 'class = "lab_driver.driver:LabDriver"',
+                       'class = "lab_driver.variant:Variant"')
+    (config.parent / "variant.py").write_text(
+        "import json, time\nfrom lab_driver.driver import LabDriver\n\n"
+        "class Variant(LabDriver):\n" + body)
+    text = config.read_text()
+    for line in server_keys.splitlines():
+        key = line.split("=")[0].strip()
+        text, n = re.subn(rf"(?m)^{key} = .*$", line, text)
+        assert n == 1, key
+    config.write_text(text)
+    return config
+
+
+def _acquire_in_background(endpoint: str) -> None:
+    """Send one acquire and let it go unanswered (the driver hangs in it)."""
+    import threading
+
+    def ask() -> None:
+        try:
+            with BusClient(endpoint, timeout_s=30.0, retries=0, backoff_s=0.1) as client:
+                client.describe()
+                client.acquire("empty", 0.0, 100)
+        except Exception:  # noqa: BLE001 - no answer is what this test expects
+            pass
+
+    threading.Thread(target=ask, daemon=True).start()
+
+
+def _hangs_in_acquire(marker: Path) -> str:
+    """A class body whose acquire marks that it began, then never returns."""
+    return ("    def acquire(self, field, ramsey_phase, shots):\n"
+            f"        open({str(marker)!r}, 'w').close()\n"
+            "        time.sleep(3600)\n")
+
+
+def _wait_for(path: Path, timeout_s: float = 60.0) -> None:
+    deadline = time.monotonic() + timeout_s
+    while not path.exists():
+        assert time.monotonic() < deadline, f"{path} did not appear within {timeout_s} s"
+        time.sleep(0.05)
+
+
+def test_a_driver_call_that_never_returns_bounds_the_stop(serve, tmp_path: Path):
+    """SIGTERM while the driver hangs in acquire (an instrument that stopped answering and a
+    library without a timeout): serve logs the call it waits for and, [server] stop_timeout_s
+    later, what it abandons, and exits 3 (README: driver kit, exit codes)."""
+    marker = tmp_path / "acquiring"
+    server = serve(_driver_variant(tmp_path, _hangs_in_acquire(marker), "stop_timeout_s = 2.0"))
+    _acquire_in_background(server.endpoint)
+    _wait_for(marker)
+    began = time.monotonic()
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=60) == 3
+    assert time.monotonic() - began >= 2.0
+    requested = server.wait_for_event("stop_requested")
+    assert requested and requested[0]["call_in_progress"].startswith("driver.acquire() running")
+    forced = server.wait_for_event("stop_forced")
+    assert forced and forced[0]["call_in_progress"].startswith("driver.acquire() running")
+    assert "2 s after the signal" in forced[0]["reason"]
+
+
+def test_a_second_signal_ends_a_stop_that_waits_for_the_driver(serve, tmp_path: Path):
+    """With a long stop_timeout_s, a second SIGTERM (an operator's second Ctrl-C) ends the
+    wait at once: exit 3, the abandoned call logged."""
+    marker = tmp_path / "acquiring"
+    server = serve(_driver_variant(tmp_path, _hangs_in_acquire(marker), "stop_timeout_s = 600.0"))
+    _acquire_in_background(server.endpoint)
+    _wait_for(marker)
+    server.process.send_signal(signal.SIGTERM)
+    assert server.wait_for_event("stop_requested", timeout_s=30)
+    assert server.process.poll() is None
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=60) == 3
+    forced = server.wait_for_event("stop_forced")
+    assert forced and forced[0]["reason"] == "a second signal"
+
+
+def test_safe_on_stop_runs_the_drivers_safe_procedure(serve, tmp_path: Path):
+    """[server] safe_on_stop = true: a stop (SIGTERM) calls the driver's safe procedure with the
+    map's safe channel values before close (by default serve leaves the hardware as it is)."""
+    record = tmp_path / "safe-calls.jsonl"
+    body = ("    def safe(self, channels):\n"
+            f"        with open({str(record)!r}, 'a') as f:\n"
+            "            f.write(json.dumps(dict(channels)) + '\\n')\n"
+            "        super().safe(channels)\n")
+    quiet = serve(_driver_variant(tmp_path / "a", body, ""), name="default")
+    with _client(quiet.endpoint) as client:
+        client.describe()
+        client.apply({"detuning": -10e3})
+    quiet.process.send_signal(signal.SIGTERM)
+    assert quiet.process.wait(timeout=60) == 0
+    assert not record.exists()
+    server = serve(_driver_variant(tmp_path / "b", body, "safe_on_stop = true"), name="safe")
+    with _client(server.endpoint) as client:
+        client.describe()
+        client.apply({"detuning": -10e3})
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=60) == 0
+    calls = [json.loads(line) for line in record.read_text().splitlines()]
+    # The map's safe channel values (examples/lab_driver/DRIVER.toml): 3.0 V, 500 m/s / 4.49.
+    assert calls == [{"STARK:HV1": 3.0, "VSEL:AOM_MHZ": pytest.approx(500.0 / 4.49)}]
+    assert server.wait_for_event("safe_setpoints_applied")
