@@ -196,6 +196,14 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
                 f"limits that overlap the rig's [{described.min:g}, {described.max:g}] "
                 f"{sp.unit}", [sp.limit_min, sp.limit_max]))
             continue
+        safe = (getattr(description, "safe_setpoints", None) or {}).get(sp.name)
+        if safe is not None and not sp.limit_min <= float(safe) <= sp.limit_max:
+            # A stop sends the rig to its safe set-points by its own procedure: limits that
+            # exclude them would be left at every stop.
+            problems.append(ConfigError(
+                source, f"{key}.limit_min/limit_max",
+                f"limits that hold the rig's safe set-point {float(safe):g} {sp.unit} (every "
+                f"stop sends the rig there)", [sp.limit_min, sp.limit_max]))
         if sp.search_min < limit.min or sp.search_max > limit.max:
             problems.append(ConfigError(
                 source, f"{key}.search_min/search_max",
@@ -203,6 +211,22 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
                 [sp.search_min, sp.search_max]))
         limits[sp.name] = limit
     return limits
+
+
+def _box_problems(config: RunConfig) -> list[ConfigError]:
+    """A detuning box the phase lock cannot work in: narrower than its first step (most often
+    kHz values typed in a box in Hz)."""
+    if config.search.strategy != "phase_lock":
+        return []
+    step = config.lock.bracket_step_hz
+    problems = []
+    for sp in config.setpoints:
+        if sp.name == "detuning" and sp.search_max - sp.search_min < step:
+            problems.append(ConfigError(
+                config.source, "setpoints.detuning.search_min/search_max",
+                f"a box at least the lock's first step wide ([lock] bracket_step_hz = "
+                f"{step:g} {sp.unit}; values in {sp.unit})", [sp.search_min, sp.search_max]))
+    return problems
 
 
 def _last_good_problems(config: RunConfig, limits: Mapping[str, Any], store: Path,
@@ -295,6 +319,7 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
         problems.append(ConfigError(source, budget_key, f"room for one point of {per_point} "
                                     f"shots (2 fields x {config.measurement.ramsey_phases} "
                                     f"phases x {config.measurement.shots_per_phase})", budget))
+    problems += _box_problems(config)
     store_problem = _check_store(store, source)
     if store_problem is not None:
         problems.append(store_problem)
@@ -349,6 +374,7 @@ def track_preflight(config: RunConfig, description: Any, *, store: Path,
             f"track.max_interval_s ({track.max_interval_s:g} s): at most "
             f"{int(affordable * rate / (2 * phases))} shots per phase at {rate:g} shots/s",
             track.min_shots_per_phase))
+    problems += _box_problems(config)
     store_problem = _check_store(store, source)
     if store_problem is not None:
         problems.append(store_problem)

@@ -342,6 +342,33 @@ def test_a_finished_run_resumed_tells_its_outcome_again_and_moves_nothing(tmp_pa
     assert f"resume it with 'autotune calibrate --config CONFIG --resume {run}'" in wrong.stderr
 
 
+def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, servers):
+    """Two slips a new user makes, caught before anything moves (exit 2, no run folder, rig
+    untouched): kHz numbers typed in the detuning box in Hz (narrower than the lock's first
+    step: the run would search a 120 Hz box and be accepted at its edge), and velocity limits
+    that exclude the rig's safe set-point (every stop would take the rig outside them)."""
+    server = servers(name="rig-slips")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         setpoints={"detuning": {"search_min": -60.0, "search_max": 60.0,
+                                                 "limit_min": -150.0, "limit_max": 150.0,
+                                                 "max_step": 20.0},
+                                    "velocity": {"limit_min": 505.0, "search_min": 505.0}})
+    with _client(server.endpoint) as rig:
+        before = rig.status()
+        safe = rig.describe().safe_setpoints
+    assert safe["velocity"] < 505.0  # the simulated rig's safe velocity (configs/sim-rig.toml)
+    done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
+    assert done.returncode == 2, done.stderr[-3000:]
+    assert f"{config}: setpoints.detuning.search_min/search_max: expected a box at least the " \
+           "lock's first step wide" in done.stderr
+    assert f"{config}: setpoints.velocity.limit_min/limit_max: expected limits that hold the " \
+           f"rig's safe set-point {safe['velocity']:g} m/s" in done.stderr
+    assert not (tmp_path / "run").exists()
+    with _client(server.endpoint) as rig:
+        after = rig.status()
+    assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
+
+
 def test_a_config_with_several_wrong_keys_names_them_all(tmp_path):
     """min_points above max_points, n_initial_points above it too and a negative timeout:
     one message with every problem, exit 2, before any connection (README: configuration)."""
