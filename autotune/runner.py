@@ -707,7 +707,8 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
                                f"rig stays at the verified set-points")
                 status = "store_failed"
                 raise
-            session.decide("store", f"new last good calibration written to {prepared.store}")
+            session.decide("store", f"new last good calibration written to "
+                           f"{Path(prepared.store).resolve()}")
         write_json_atomic(run_dir / RESULT_NAME, result)
         status = outcome.status
         return result
