@@ -52,6 +52,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from autotune.display import count_text
 from autotune.errors import EstimationError, JournalError
 from autotune.fringe import FringeData, fit_fringe
 from autotune.journal import JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal, read_json
@@ -479,8 +480,11 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
                 safe_failed.append(rec)
             elif kind == "end":
                 ended = str(rec["status"])
-            elif kind in ("proposal", "safe"):
-                pass
+            elif kind in ("proposal", "safe", "request", "wait", "hold"):
+                # Drawn through what they lead to: the proposal's move, a request's
+                # acquisition, a night's wait and check (its estimate and decisions).
+                if kind == "wait" and isinstance(rec.get("clock"), (int, float)):
+                    clock = float(rec["clock"])
             else:
                 unknown[str(kind)] += 1
                 if isinstance(rec.get("clock"), (int, float)):
@@ -697,8 +701,50 @@ def _interval(result: Mapping[str, Any]) -> tuple[float, float, float] | None:
     return (inv, low, high) if math.isfinite(low) and math.isfinite(high) else None
 
 
+def _night_header(run: Run) -> list[tuple[str, str]]:
+    """A night's header (``autotune track``): its end, the set-points held, its counts and beam
+    share, and its last check (a check, not a verification)."""
+    result = run.result or {}
+    rows = [("rig", run.rig), ("command", run.command),
+            ("started", str(run.manifest.get("started", "?"))), ("status", run.status)]
+    rows.append(("stop reason", str(result.get("stop_reason") or "none yet")))
+    if result:
+        held = result.get("held", True)
+        rows.append(("held set-points", _fmt_setpoints(_setpoints(result["setpoints"]))
+                     if held else "none (no stage was accepted)"))
+        counts = ", ".join(count_text(int(result.get(k, 0)), k[:-1]) for k in (
+            "checks", "rechecks", "corrections", "alarms", "retunes", "calibrations",
+            "failures"))
+        rows.append(("night", f"{_duration(_number(result, 'night_rig_time_s', math.nan))} of "
+                     f"rig time: {counts}"))
+        share = result.get("holding_share")
+        rows.append(("beam on holding", ("-" if share is None else f"{share:.1%}")
+                     + f" of the night's rig time (budget "
+                     f"{_number(result, 'budget_fraction', math.nan):.0%})"))
+    checks = [m for m in run.estimated if m.label == "hold"]
+    if checks:
+        last = checks[-1]
+        rows.append(("last check", f"{last.value('inversion'):.3f} "
+                     f"[{last.value('inversion_low'):.3f}, {last.value('inversion_high'):.3f}]"
+                     f" ({_level(run.confidence)} interval; check {last.point} at "
+                     f"{_fmt_setpoints(last.setpoints)}, phase shift "
+                     f"{last.value('phase_shift') / math.pi:.3f} pi)"))
+        low = min(checks, key=lambda m: m.value("inversion"))
+        rows.append(("lowest check", f"{low.value('inversion'):.3f} "
+                     f"[{low.value('inversion_low'):.3f}, {low.value('inversion_high'):.3f}] "
+                     f"(check {low.point})"))
+    else:
+        rows.append(("last check", "none yet"))
+    rows.append(("effort", f"{len(run.estimated)} measurements, "
+                 f"{int(_number(result, 'shots', run.shots)):,} shots, beam time "
+                 f"{_duration(_number(result, 'rig_time_s', run.rig_time_s))}"))
+    return rows
+
+
 def _header(run: Run) -> list[tuple[str, str]]:
     """The run's header as (name, text) rows, for the text summary and the page."""
+    if run.command == "track":
+        return _night_header(run)
     result = run.result or {}
     rows = [("rig", run.rig), ("command", run.command),
             ("started", str(run.manifest.get("started", "?"))), ("status", run.status)]
@@ -1171,8 +1217,11 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         pick = [m for _, m in done if m.label == label]
         t = np.array([_when(use_clock, origin, m.clock_s, m.t_wall) for m in pick])
         y = np.array([m.value("inversion") for m in pick])
-        e = np.array([m.value("inversion_stderr") for m in pick])
-        _errorbar(ax_inv, t, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt=_marker(label), ms=4,
+        # The same intervals as everywhere else (the run's confidence, within [0, 1]).
+        lo = np.array([m.value("inversion_low") for m in pick])
+        hi = np.array([m.value("inversion_high") for m in pick])
+        e = np.vstack([np.where(np.isfinite(lo), y - lo, 0.0), np.where(np.isfinite(hi), hi - y, 0.0)])
+        _errorbar(ax_inv, t, y, yerr=np.clip(e, 0.0, None), fmt=_marker(label), ms=4,
                         capsize=2, lw=0.8, label=f"{label} ({len(pick)})", gid=f"inv-{label}")
     if len(runs) > 1:
         for r in runs:
@@ -1257,7 +1306,8 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
                     va="center", fontsize=8, color="0.4")
     what = "night" if night else "timeline"
     _title(fig, None, f"{what}: {runs[0].path.parent.name if len(runs) > 1 else runs[0].name}")
-    caption = (f"Top: the inversion of every measurement (one standard error) against "
+    level = _level(runs[0].confidence)
+    caption = (f"Top: the inversion of every measurement with its {level} interval against "
                f"{'rig' if use_clock else 'wall'} time; middle: the detuning set-point applied "
                "(moves) and measured; bottom: detuning corrections, from 'correct' decisions "
                "(to minus from) and from retunes that left their check point."

@@ -35,7 +35,8 @@ from scipy import stats
 
 from autotune import report
 from autotune.fringe import FringeData, estimate_inversion
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, Journal, read_journal, write_json_atomic
+from autotune.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
+                              write_json_atomic)
 from rig_process import REPO, spawn_server
 
 DRY_RUN_CONFIG = REPO / "configs" / "dry-run.toml"
@@ -476,6 +477,22 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     corrections = [r for r in records if r["type"] == "decision" and r["what"] == "correct"]
     drawn = fig.findobj(lambda a: a.get_gid() == "corrections")
     assert corrections and sum(len(line.get_xdata()) for line in drawn) == len(corrections)
+    # The bars are the intervals the text prints (the run's confidence, within [0, 1]).
+    ax_inv = fig.axes[0]
+    tops = [seg[:, 1].max() for coll in ax_inv.collections
+            if hasattr(coll, "get_segments") for seg in coll.get_segments() if len(seg)]
+    assert tops and max(tops) <= 1.0 + 1e-12
+    # The header reads as a night: what it held, its counts and beam share, its last check
+    # (a check, not a verification), the numbers of its result.json.
+    result = read_json(real["track"] / RESULT_NAME)
+    rows = dict(report._header(built.runs[0]))
+    assert "verified inversion" not in rows and "best measured" not in rows
+    assert rows["stop reason"] == result["stop_reason"]
+    assert rows["beam on holding"].startswith(f"{result['holding_share']:.1%} of the night")
+    assert f"{result['checks']} checks" in rows["night"] or result["checks"] == 1
+    holds = [r for r in records if r["type"] == "estimate" and r["label"] == "hold"]
+    assert rows["last check"].startswith(f"{holds[-1]['estimate']['inversion']:.3f} [")
+    assert "journal record types not drawn" not in done.stdout
 
 
 @pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "garbage", "bad_result"])
