@@ -555,7 +555,7 @@ class BusClient:
             if attempt > 0:
                 log = log or self._log.bind(op=op.value, msg_id=msg_id)
                 pause = self._pause_s(attempt)
-                log.warning("bus_retry", attempt=attempt, of=self._retries, pause_s=pause,
+                log.warning("bus_retry", retry=f"{attempt} of {self._retries}", pause_s=pause,
                             reason="malformed reply" if last_problem else "no reply")
                 time.sleep(pause)
             if self._socket is None:

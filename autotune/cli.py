@@ -63,6 +63,7 @@ from autotune.errors import (
     JournalError,
     LimitError,
     RigError,
+    RigTimeout,
     RunAlreadyEnded,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
@@ -349,6 +350,10 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         if (safe := _safe_message(exc)) is not None:
             print(safe, file=sys.stderr)
         hint = resume_hint()
+        if isinstance(exc, RigTimeout) and not hint:
+            print("autotune: nothing answered before the run began: check that the rig's server "
+                  "is running and listening at the config's [bus] endpoint ('autotune probe "
+                  "ENDPOINT' checks a server)", file=sys.stderr)
         if hint:
             print(f"autotune: once the rig answers again, continue with: {hint}",
                   file=sys.stderr)

@@ -621,8 +621,9 @@ class Session:
                                 reason=reason, msg_id=msg_id)
             self.log.debug("move", setpoints=step, reason=reason)
 
-    def go_safe(self, reason: str) -> tuple[bool, str]:
+    def go_safe(self, reason: str, *, expected: bool = False) -> tuple[bool, str]:
         """Send the rig to its safe set-points; record it. Never raises past a rig error.
+        ``expected``: the planned end of a run (logged as information, not as a warning).
 
         Returns
         -------
@@ -633,7 +634,8 @@ class Session:
             reply = self.rig.safe()
             self.current = {k: float(v) for k, v in reply.setpoints.items()}
             self.journal.append("safe", setpoints=self.current, reason=reason)
-            self.log.warning("safe_setpoints_applied", reason=reason, setpoints=self.current)
+            (self.log.info if expected else self.log.warning)(
+                "safe_setpoints_applied", reason=reason, setpoints=self.current)
             return True, ""
         except RigError as exc:
             self.journal.append("safe_failed", reason=reason, error=str(exc))
@@ -1175,7 +1177,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         resend = [msg_id for m in measurements.values() for msg_id, _ in m.pending.values()]
         session.decide("resume", f"continuing {stage} from {len(records)} journal records: "
                        f"{len(order)} finished steps told to the strategy again, once each, "
-                       f"{len(resend)} requests to ask the rig for again by their msg_id",
+                       f"{len(resend)} request{'' if len(resend) == 1 else 's'} to ask the rig "
+                       f"for again by their msg_id",
                        estimates=len(replayed.estimates), retold=[],
                        steps=[k[1] for k in order], resend=resend)
     else:

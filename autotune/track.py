@@ -1147,7 +1147,7 @@ class _Night:
                 session.go_safe(f"the night ended; the move to the held set-points failed: {exc}")
                 where = "its safe set-points (the move to the held set-points failed)"
         else:
-            session.go_safe(f"the night ended: {reason}")
+            session.go_safe(f"the night ended: {reason}", expected=status == "ended")
             where = "its safe set-points"
         return self._result(status, reason, where)
 
