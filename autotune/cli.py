@@ -67,7 +67,8 @@ from autotune.errors import (
     RunAlreadyEnded,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
-from autotune.display import ProgressDisplay, count_text, progress_mode, progress_text
+from autotune.progress import count_text
+from autotune.display import ProgressDisplay, progress_mode, progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
            "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]

@@ -21,10 +21,10 @@ import time
 from collections.abc import Callable
 from typing import Any, Literal
 
-from autotune.progress import NightProgress, StageProgress, format_duration
+from autotune.progress import NightProgress, StageProgress, count_text, format_duration
 
 __all__ = ["ProgressMode", "ProgressDisplay", "progress_mode", "stage_progress_text",
-           "night_progress_text", "progress_text", "shots_text", "count_text"]
+           "night_progress_text", "progress_text", "shots_text"]
 
 ProgressMode = Literal["terminal", "plain", "off"]
 
@@ -60,11 +60,6 @@ def stage_progress_text(p: StageProgress) -> str:
     parts.append(f"shots {shots_text(p.shots)}/{shots_text(p.max_shots)}")
     parts.append(f"rig time {p.rig_time_s / 60:.1f}/{p.max_rig_time_s / 60:.0f} min")
     return " | ".join(parts)
-
-
-def count_text(n: int, noun: str) -> str:
-    """``"1 check"``, ``"3 checks"``."""
-    return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
 def night_progress_text(p: NightProgress) -> str:

@@ -50,7 +50,7 @@ from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
 from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
-from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress
+from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
 from autotune.search import Dimension, PointResult, SearchSpace, Strategy, make_strategy
 
 __all__ = [
@@ -1177,8 +1177,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         resend = [msg_id for m in measurements.values() for msg_id, _ in m.pending.values()]
         session.decide("resume", f"continuing {stage} from {len(records)} journal records: "
                        f"{len(order)} finished steps told to the strategy again, once each, "
-                       f"{len(resend)} request{'' if len(resend) == 1 else 's'} to ask the rig "
-                       f"for again by their msg_id",
+                       f"{count_text(len(resend), 'request')} to ask the rig for again by their "
+                       f"msg_id",
                        estimates=len(replayed.estimates), retold=[],
                        steps=[k[1] for k in order], resend=resend)
     else:

@@ -15,7 +15,8 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Literal
 
-__all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration"]
+__all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration",
+           "count_text"]
 
 #: Measurement labels that come after the search has stopped: only their own shots are left.
 SEARCH_DONE_LABELS = ("verify", "correct")
@@ -139,6 +140,11 @@ class NightProgress:
 #: A callable told every :class:`StageProgress` of a stage (and, in a night, every
 #: :class:`NightProgress`).
 ProgressObserver = Callable[[StageProgress | NightProgress], None]
+
+
+def count_text(n: int, noun: str) -> str:
+    """``"1 check"``, ``"3 checks"``."""
+    return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
 def format_duration(seconds: float) -> str:

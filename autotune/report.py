@@ -52,10 +52,10 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from autotune.display import count_text
 from autotune.errors import EstimationError, JournalError
 from autotune.fringe import FringeData, fit_fringe
 from autotune.journal import JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal, read_json
+from autotune.progress import count_text
 
 __all__ = [
     "FIGURE_NAME",
