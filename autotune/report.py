@@ -174,8 +174,8 @@ class Measurement:
 
     @property
     def name(self) -> str:
-        """``label point``, as the loop names it."""
-        return f"{self.label} {self.point}"
+        """``label #point`` (``velocity #4``: the fourth velocity step, not 4 m/s)."""
+        return f"{self.label} #{self.point}"
 
     def value(self, key: str) -> float:
         """A float field of the estimate, NaN when absent."""

@@ -582,7 +582,7 @@ def test_a_poor_fringe_fit_is_flagged_with_its_p_value(tmp_path: Path) -> None:
                                          _point(rng, "point", 1, 510.0, 0.0, pattern=zigzag)],
                      end=None)
     flags = [f for f in report.run_flags(report.load_run(run)) if f.kind == "poor_fit"]
-    assert len(flags) == 1 and "point 1 (one photon)" in flags[0].text
+    assert len(flags) == 1 and "point #1 (one photon)" in flags[0].text
     assert re.search(r"p = \d\.\de-\d+", flags[0].text)
 
 
@@ -635,7 +635,7 @@ def test_a_running_run_shows_the_setpoints_it_is_verifying(tmp_path: Path) -> No
     assert header["chosen set-points"] == "velocity 495.0 m/s, detuning -2.50 kHz (not yet verified)"
     assert header["verified inversion"] == "none yet"
     fringes = next(f for f in built.figures if f.key == "fringes")
-    assert "latest measurement" in fringes.caption and "point 2" in fringes.caption
+    assert "latest measurement" in fringes.caption and "point #2" in fringes.caption
 
 
 # --------------------------------------------------------------------------------------------
