@@ -339,3 +339,42 @@ def test_safe_on_stop_runs_the_drivers_safe_procedure(serve, tmp_path: Path):
     # The map's safe channel values (examples/lab_driver/DRIVER.toml): 3.0 V, 500 m/s / 4.49.
     assert calls == [{"STARK:HV1": 3.0, "VSEL:AOM_MHZ": pytest.approx(500.0 / 4.49)}]
     assert server.wait_for_event("safe_setpoints_applied")
+
+
+def _times_out_twice_in_acquire() -> str:
+    """A class body whose acquire guards each read of its instrument with SIGALRM (a common
+    timeout of serial and GPIB libraries that have none): the first read times out, so does
+    the retry, then the read succeeds. The alarms are the driver's own, not a stop."""
+    return ("    def acquire(self, field, ramsey_phase, shots):\n"
+            "        import signal\n"
+            "        def late(signum, frame):\n"
+            "            raise TimeoutError('instrument read')\n"
+            "        previous = signal.signal(signal.SIGALRM, late)\n"
+            "        try:\n"
+            "            for _ in range(2):\n"
+            "                try:\n"
+            "                    signal.setitimer(signal.ITIMER_REAL, 0.01)\n"
+            "                    time.sleep(3600)\n"
+            "                except TimeoutError:\n"
+            "                    pass\n"
+            "        finally:\n"
+            "            signal.setitimer(signal.ITIMER_REAL, 0)\n"
+            "            signal.signal(signal.SIGALRM, previous)\n"
+            "        return super().acquire(field, ramsey_phase, shots)\n")
+
+
+def test_a_drivers_own_signals_are_not_taken_for_a_stop(serve, tmp_path: Path):
+    """Only SIGINT and SIGTERM stop serve: a driver's own SIGALRM (its read timeouts, twice
+    here) reaches the wake-up fd too but neither starts a stop nor counts as a second signal;
+    the acquire is answered and a SIGTERM afterwards stops serve cleanly (exit 0)."""
+    server = serve(_driver_variant(tmp_path, _times_out_twice_in_acquire(),
+                                   "stop_timeout_s = 600.0"))
+    with _client(server.endpoint) as client:
+        client.describe()
+        acquisition = client.acquire("empty", 0.0, 100)
+        assert acquisition.shots == 100
+        client.status()
+    assert server.process.poll() is None
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=60) == 0
+    assert not server.wait_for_event("stop_forced")
