@@ -530,6 +530,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
         log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
         return EXIT_BAD_INPUT
     code = EXIT_OK
+    served_requests = False
     with _StopGuard(server, served, stop_timeout_s, log):
         try:
             try:
@@ -537,12 +538,15 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
             except zmq.ZMQError as exc:
                 log.error("server_bind_failed", error=str(exc))
                 return 1
+            served_requests = True
             if ready_file is not None:
                 write_ready_file(ready_file, endpoint)
             server.serve()
         finally:
             server.close()
-            if safe_on_stop:
+            # Not when it never listened: a second serve started by mistake on a port in use
+            # must not move the hardware another server's client is working with.
+            if safe_on_stop and served_requests:
                 try:
                     served.safe()
                 except Exception as exc:  # noqa: BLE001 - reported; the stop goes on

@@ -378,3 +378,23 @@ def test_a_drivers_own_signals_are_not_taken_for_a_stop(serve, tmp_path: Path):
     server.process.send_signal(signal.SIGTERM)
     assert server.process.wait(timeout=60) == 0
     assert not server.wait_for_event("stop_forced")
+
+
+def test_safe_on_stop_does_not_move_the_hardware_when_serve_never_listened(serve, tmp_path: Path):
+    """A second serve of the same DRIVER.toml started by mistake on the port of one already
+    serving exits 1 (README: the endpoint cannot be bound) without running the driver's safe
+    procedure: it would move hardware the first server's client is working with."""
+    record = tmp_path / "safe-calls.jsonl"
+    body = ("    def safe(self, channels):\n"
+            f"        with open({str(record)!r}, 'a') as f:\n"
+            "            f.write(json.dumps(dict(channels)) + '\\n')\n"
+            "        super().safe(channels)\n")
+    config = _driver_variant(tmp_path, body, "safe_on_stop = true")
+    first = serve(config, name="first")
+    second = serve(config, name="second", bind=first.endpoint, wait=False)
+    assert second.process.wait(timeout=60) == 1
+    assert second.wait_for_event("server_bind_failed")
+    assert not record.exists()
+    first.process.send_signal(signal.SIGTERM)
+    assert first.process.wait(timeout=60) == 0
+    assert len(record.read_text().splitlines()) == 1  # the first one's own stop
