@@ -428,6 +428,13 @@ def _curve_server_keys(secret: Path | None, allowed: Path | None, source: str) -
     return None if secret is None else CurveServerKeys.load(secret, allowed)
 
 
+def _stop_signals(woken: bytes) -> int:
+    """How many of the signals written to the wake-up fd ask for a stop: each is one byte, its
+    number. Any signal with a Python handler is written there, a driver's own too (its SIGALRM
+    read timeouts, a SIGUSR1 or SIGHUP of its library): those are not a stop."""
+    return sum(1 for number in woken if number in (signal.SIGINT, signal.SIGTERM))
+
+
 class _StopGuard:
     """SIGINT/SIGTERM while a server answers requests.
 
@@ -446,6 +453,7 @@ class _StopGuard:
         self._previous: dict[int, Any] = {}
         self._previous_fd = -1
         self._pipe: tuple[int, int] | None = None
+        self._watcher: threading.Thread | None = None
 
     def _call_text(self) -> str:
         current = getattr(self.served, "call_in_progress", None)
@@ -458,7 +466,8 @@ class _StopGuard:
         self._previous_fd = signal.set_wakeup_fd(write_fd, warn_on_full_buffer=False)
         for number in (signal.SIGINT, signal.SIGTERM):
             self._previous[number] = signal.signal(number, lambda signum, frame: self.server.stop())
-        threading.Thread(target=self._watch, name="stop-guard", daemon=True).start()
+        self._watcher = threading.Thread(target=self._watch, name="stop-guard", daemon=True)
+        self._watcher.start()
         return self
 
     def _watch(self) -> None:
@@ -470,7 +479,7 @@ class _StopGuard:
             ready, _, _ = select.select([self._pipe[0]], [], [], 0.2)
             if ready:
                 try:
-                    signals += len(os.read(self._pipe[0], 64))
+                    signals += _stop_signals(os.read(self._pipe[0], 64))
                 except OSError:
                     return
             if signals and first is None:
@@ -494,6 +503,10 @@ class _StopGuard:
         for number, handler in self._previous.items():
             signal.signal(number, handler)
         signal.set_wakeup_fd(self._previous_fd)
+        if self._watcher is not None:
+            # Its select must not meet a closed (or reused) descriptor: it ends within 0.2 s.
+            self._watcher.join()
+            self._watcher = None
         if self._pipe is not None:
             for fd in self._pipe:
                 os.close(fd)
@@ -518,6 +531,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
         log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
         return EXIT_BAD_INPUT
     code = EXIT_OK
+    served_requests = False
     with _StopGuard(server, served, stop_timeout_s, log):
         try:
             try:
@@ -525,12 +539,15 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
             except zmq.ZMQError as exc:
                 log.error("server_bind_failed", error=str(exc))
                 return 1
+            served_requests = True
             if ready_file is not None:
                 write_ready_file(ready_file, endpoint)
             server.serve()
         finally:
             server.close()
-            if safe_on_stop:
+            # Not when it never listened: a second serve started by mistake on a port in use
+            # must not move the hardware another server's client is working with.
+            if safe_on_stop and served_requests:
                 try:
                     served.safe()
                 except Exception as exc:  # noqa: BLE001 - reported; the stop goes on

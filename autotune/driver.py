@@ -67,7 +67,9 @@ Otherwise they are answered ``unknown_op``, as the protocol says of a real rig.
 
 A driver class may define a class method ``from_config(options, config_dir)`` to be built
 from the ``[driver.options]`` table and the folder of ``DRIVER.toml`` (to resolve relative
-paths); otherwise it is called as ``Class(**options)``.
+paths); otherwise it is called as ``Class(**options)``. A ``from_config`` refuses options it
+does not take by raising TypeError itself (``autotune serve`` exits 2 then, as for options that
+do not fit ``__init__``); anything else it raises is a failure to start (exit 3).
 """
 
 from __future__ import annotations

@@ -210,7 +210,8 @@ def build_driver(config: DriverConfig) -> Any:
     ConfigError
         If the module cannot be imported (missing, or its code fails at import: a syntax
         error, a name error), the class is not found, or the options do not fit the class's
-        signature (an unknown or a missing keyword).
+        signature (an unknown or a missing keyword), or the class's ``from_config`` raises
+        a TypeError itself (its refusal of the options).
     DriverStartError
         If building the driver fails otherwise (its hardware cannot be reached or answers
         what the driver cannot read, an option value the driver refuses); the message names
@@ -249,6 +250,14 @@ def build_driver(config: DriverConfig) -> Any:
         if callable(factory):
             return factory(options, config.path.resolve().parent)
         return target(**options)
+    except TypeError as exc:
+        if callable(factory) and _raised_by(exc, factory):
+            # from_config has no signature to check its options against: a TypeError it raises
+            # itself is its refusal of the options (autotune.driver; drivers_sim's, for one).
+            raise ConfigError(file, "driver.options", f"options that {config.driver_class}"
+                              f".from_config accepts", f"{type(exc).__name__}: {exc}") from exc
+        raise DriverStartError(f"{config.driver_class} failed to start: {type(exc).__name__}: "
+                               f"{exc}{_raised_at(exc)}") from exc
     except Exception as exc:  # noqa: BLE001 - any failure of the lab's code while starting
         raise DriverStartError(f"{config.driver_class} failed to start: {type(exc).__name__}: "
                                f"{exc}{_raised_at(exc)}") from exc
@@ -277,6 +286,15 @@ def _options_problem(signature: inspect.Signature, options: Mapping[str, Any]) -
         if p.default is p.empty and name not in options:
             problems.append(f"missing option {name!r}")
     return "; ".join(problems) or fallback
+
+
+def _raised_by(exc: BaseException, function: Any) -> bool:
+    """Whether ``exc`` was raised in ``function``'s own frame (not in what it called)."""
+    code = getattr(getattr(function, "__func__", function), "__code__", None)
+    tb = exc.__traceback__
+    while tb is not None and tb.tb_next is not None:
+        tb = tb.tb_next
+    return code is not None and tb is not None and tb.tb_frame.f_code is code
 
 
 def _raised_at(exc: BaseException) -> str:

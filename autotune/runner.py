@@ -215,7 +215,9 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
 
 def _box_problems(config: RunConfig) -> list[ConfigError]:
     """A detuning box the phase lock cannot work in: narrower than its first step (most often
-    kHz values typed in a box in Hz)."""
+    kHz values typed in a box in Hz). Not on a resume: neither the box nor the step can change
+    then, and a run started before this check (the lock halves its step to fit the box) would
+    be left with no way to continue."""
     if config.search.strategy != "phase_lock":
         return []
     step = config.lock.bracket_step_hz
@@ -274,7 +276,8 @@ def _note_safe(exc: Exception, outcome: tuple[bool, str]) -> None:
 
 
 def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
-              last_good: Mapping[str, Any] | None = None) -> list[ConfigError]:
+              last_good: Mapping[str, Any] | None = None, resume: bool = False
+              ) -> list[ConfigError]:
     """Everything that can be checked before the first set-point is sent, all at once.
 
     Parameters
@@ -319,7 +322,8 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
         problems.append(ConfigError(source, budget_key, f"room for one point of {per_point} "
                                     f"shots (2 fields x {config.measurement.ramsey_phases} "
                                     f"phases x {config.measurement.shots_per_phase})", budget))
-    problems += _box_problems(config)
+    if not resume:  # a resume keeps the box and the lock's step it started with
+        problems += _box_problems(config)
     store_problem = _check_store(store, source)
     if store_problem is not None:
         problems.append(store_problem)
@@ -329,7 +333,8 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
 
 
 def track_preflight(config: RunConfig, description: Any, *, store: Path,
-                    last_good: Mapping[str, Any] | None) -> list[ConfigError]:
+                    last_good: Mapping[str, Any] | None, resume: bool = False
+                    ) -> list[ConfigError]:
     """Everything ``autotune track`` can check before its first move, all at once.
 
     The limits, units and search box (as for a calibration, which a night may need), every
@@ -374,7 +379,8 @@ def track_preflight(config: RunConfig, description: Any, *, store: Path,
             f"track.max_interval_s ({track.max_interval_s:g} s): at most "
             f"{int(affordable * rate / (2 * phases))} shots per phase at {rate:g} shots/s",
             track.min_shots_per_phase))
-    problems += _box_problems(config)
+    if not resume:  # a resume keeps the box and the lock's step it started with
+        problems += _box_problems(config)
     store_problem = _check_store(store, source)
     if store_problem is not None:
         problems.append(store_problem)
@@ -486,7 +492,8 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
     description = rig.describe()
-    problems = preflight(command, config, description, store=store, last_good=last_good)
+    problems = preflight(command, config, description, store=store, last_good=last_good,
+                         resume=resume)
     changes: list[tuple[str, Any, Any]] = []
     if resume:
         manifest = read_json(run_dir / MANIFEST_NAME)

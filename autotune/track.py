@@ -221,7 +221,8 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
     description = rig.describe()
-    problems = track_preflight(config, description, store=store, last_good=last_good)
+    problems = track_preflight(config, description, store=store, last_good=last_good,
+                               resume=resume)
     changes: list[tuple[str, Any, Any]] = []
     if resume:
         manifest = read_json(run_dir / MANIFEST_NAME)

@@ -138,3 +138,37 @@ def test_driver_failing_to_connect_is_a_start_error(tmp_path: Path):
         build_driver(load_driver_config(_write(tmp_path, MINIMAL.format(target="kit_down_driver:Driver",
                                                                              options=""))))
     assert isinstance(info.value.__cause__, ConnectionRefusedError)
+
+
+def test_options_refused_by_from_config_are_a_config_error(tmp_path: Path):
+    """A class built by from_config has no signature to check: the TypeError from_config
+    raises itself for an option it does not take is a driver.options error (exit 2, README:
+    options the driver class does not take), as drivers_sim's from_config documents; a
+    TypeError from deeper down (its hardware library) stays a failure to start (exit 3)."""
+    (tmp_path / "kit_factory_driver.py").write_text(
+        "def connect(address):\n    return address + 1\n\n"
+        "class Driver:\n    @classmethod\n    def from_config(cls, options, config_dir):\n"
+        "        unknown = set(options) - {'address'}\n"
+        "        if unknown:\n            raise TypeError(f'unknown option {sorted(unknown)[0]!r}')\n"
+        "        connect(options['address'])\n        return cls()\n")
+    text = MINIMAL.format(target="kit_factory_driver:Driver",
+                          options="[driver.options]\ncolour = 1\n")
+    with pytest.raises(ConfigError) as info:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert info.value.key == "driver.options" and "unknown option 'colour'" in str(info.value)
+    text = MINIMAL.format(target="kit_factory_driver:Driver",
+                          options="[driver.options]\naddress = \"gpib0\"\n")
+    with pytest.raises(DriverStartError) as started:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert "raised at kit_factory_driver.py:2 in connect" in str(started.value)
+
+
+def test_the_simulated_driver_refuses_an_unknown_option_as_a_config_error(tmp_path: Path):
+    """configs/sim-driver.toml with an option SimulatedDriver.from_config does not take."""
+    from .conftest import SIM_DRIVER_TOML
+
+    text = SIM_DRIVER_TOML.read_text().replace("seed = 2", "seed = 2\ncolour = 1")
+    text = text.replace('config = "sim-rig.toml"', f'config = "{SIM_DRIVER_TOML.parent / "sim-rig.toml"}"')
+    with pytest.raises(ConfigError) as info:
+        build_driver(load_driver_config(_write(tmp_path, text)))
+    assert info.value.key == "driver.options" and "colour" in str(info.value)

@@ -339,3 +339,62 @@ def test_safe_on_stop_runs_the_drivers_safe_procedure(serve, tmp_path: Path):
     # The map's safe channel values (examples/lab_driver/DRIVER.toml): 3.0 V, 500 m/s / 4.49.
     assert calls == [{"STARK:HV1": 3.0, "VSEL:AOM_MHZ": pytest.approx(500.0 / 4.49)}]
     assert server.wait_for_event("safe_setpoints_applied")
+
+
+def _times_out_twice_in_acquire() -> str:
+    """A class body whose acquire guards each read of its instrument with SIGALRM (a common
+    timeout of serial and GPIB libraries that have none): the first read times out, so does
+    the retry, then the read succeeds. The alarms are the driver's own, not a stop."""
+    return ("    def acquire(self, field, ramsey_phase, shots):\n"
+            "        import signal\n"
+            "        def late(signum, frame):\n"
+            "            raise TimeoutError('instrument read')\n"
+            "        previous = signal.signal(signal.SIGALRM, late)\n"
+            "        try:\n"
+            "            for _ in range(2):\n"
+            "                try:\n"
+            "                    signal.setitimer(signal.ITIMER_REAL, 0.01)\n"
+            "                    time.sleep(3600)\n"
+            "                except TimeoutError:\n"
+            "                    pass\n"
+            "        finally:\n"
+            "            signal.setitimer(signal.ITIMER_REAL, 0)\n"
+            "            signal.signal(signal.SIGALRM, previous)\n"
+            "        return super().acquire(field, ramsey_phase, shots)\n")
+
+
+def test_a_drivers_own_signals_are_not_taken_for_a_stop(serve, tmp_path: Path):
+    """Only SIGINT and SIGTERM stop serve: a driver's own SIGALRM (its read timeouts, twice
+    here) reaches the wake-up fd too but neither starts a stop nor counts as a second signal;
+    the acquire is answered and a SIGTERM afterwards stops serve cleanly (exit 0)."""
+    server = serve(_driver_variant(tmp_path, _times_out_twice_in_acquire(),
+                                   "stop_timeout_s = 600.0"))
+    with _client(server.endpoint) as client:
+        client.describe()
+        acquisition = client.acquire("empty", 0.0, 100)
+        assert acquisition.shots == 100
+        client.status()
+    assert server.process.poll() is None
+    server.process.send_signal(signal.SIGTERM)
+    assert server.process.wait(timeout=60) == 0
+    assert not server.wait_for_event("stop_forced")
+
+
+def test_safe_on_stop_does_not_move_the_hardware_when_serve_never_listened(serve, tmp_path: Path):
+    """A second serve of the same DRIVER.toml started by mistake on the port of one already
+    serving exits 1 (README: the endpoint cannot be bound) without running the driver's safe
+    procedure: it would move hardware the first server's client is working with."""
+    record = tmp_path / "safe-calls.jsonl"
+    body = ("    def safe(self, channels):\n"
+            f"        with open({str(record)!r}, 'a') as f:\n"
+            "            f.write(json.dumps(dict(channels)) + '\\n')\n"
+            "        super().safe(channels)\n")
+    config = _driver_variant(tmp_path, body, "safe_on_stop = true")
+    first = serve(config, name="first")
+    second = serve(config, name="second", bind=first.endpoint, wait=False)
+    assert second.process.wait(timeout=60) == 1
+    assert second.wait_for_event("server_bind_failed")
+    assert not record.exists()
+    first.process.send_signal(signal.SIGTERM)
+    assert first.process.wait(timeout=60) == 0
+    assert len(record.read_text().splitlines()) == 1  # the first one's own stop
