@@ -214,20 +214,22 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
 
 
 def _box_problems(config: RunConfig) -> list[ConfigError]:
-    """A detuning box the phase lock cannot work in: narrower than its first step (most often
-    kHz values typed in a box in Hz). Not on a resume: neither the box nor the step can change
-    then, and a run started before this check (the lock halves its step to fit the box) would
-    be left with no way to continue."""
+    """A detuning box the phase lock cannot work in: narrower than a tenth of its first step
+    (the lock halves its step to fit a narrow box, but a box of a few hundred hertz is below
+    what one check resolves; most often kHz values typed in a box in Hz). Not on a resume:
+    neither the box nor the step can change then, and a run started before this check would be
+    left with no way to continue."""
     if config.search.strategy != "phase_lock":
         return []
-    step = config.lock.bracket_step_hz
+    least = 0.1 * config.lock.bracket_step_hz
     problems = []
     for sp in config.setpoints:
-        if sp.name == "detuning" and sp.search_max - sp.search_min < step:
+        if sp.name == "detuning" and sp.search_max - sp.search_min < least:
             problems.append(ConfigError(
                 config.source, "setpoints.detuning.search_min/search_max",
-                f"a box at least the lock's first step wide ([lock] bracket_step_hz = "
-                f"{step:g} {sp.unit}; values in {sp.unit})", [sp.search_min, sp.search_max]))
+                f"a box at least a tenth of the lock's first step wide ({least:g} {sp.unit}; "
+                f"[lock] bracket_step_hz = {config.lock.bracket_step_hz:g}; values in "
+                f"{sp.unit})", [sp.search_min, sp.search_max]))
     return problems
 
 

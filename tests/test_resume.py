@@ -205,18 +205,18 @@ def test_resume_refuses_a_change_that_alters_what_was_measured(finished_runs, tm
 
 
 def test_a_run_started_with_a_box_narrower_than_the_lock_step_still_resumes(tmp_path, monkeypatch):
-    """A detuning box narrower than [lock] bracket_step_hz is refused for a new run, but a run
-    that started with one (before that check existed; the lock halves its step to fit the box)
-    resumes: on a resume neither the box nor the step may change, so refusing it would leave
-    the run with no way to continue."""
+    """A detuning box narrower than a tenth of [lock] bracket_step_hz is refused for a new run,
+    but a run that started with one (before that check existed; the lock halves its step to fit
+    the box) resumes: on a resume neither the box nor the step may change, so refusing it would
+    leave the run with no way to continue."""
     config = small_config()
     box = next(sp for sp in config.setpoints if sp.name == "detuning")
-    narrow = dataclasses.replace(box, search_min=-4e3, search_max=4e3)
+    narrow = dataclasses.replace(box, search_min=-400.0, search_max=400.0)
     config = dataclasses.replace(config, setpoints=tuple(
         narrow if sp.name == "detuning" else sp for sp in config.setpoints))
-    assert narrow.search_max - narrow.search_min < config.lock.bracket_step_hz
+    assert narrow.search_max - narrow.search_min < 0.1 * config.lock.bracket_step_hz
     rig = LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), 43)))
-    with pytest.raises(ConfigErrors, match="at least the lock's first step wide"):
+    with pytest.raises(ConfigErrors, match="at least a tenth of the lock's first step wide"):
         runner.calibrate(rig, config, tmp_path / "new", store=tmp_path / "good.json")
     with monkeypatch.context() as patch:  # as the version before the check started it
         patch.setattr(runner, "_box_problems", lambda config: [])

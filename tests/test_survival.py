@@ -359,8 +359,8 @@ def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, se
     assert safe["velocity"] < 505.0  # the simulated rig's safe velocity (configs/sim-rig.toml)
     done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
     assert done.returncode == 2, done.stderr[-3000:]
-    assert f"{config}: setpoints.detuning.search_min/search_max: expected a box at least the " \
-           "lock's first step wide" in done.stderr
+    assert f"{config}: setpoints.detuning.search_min/search_max: expected a box at least a " \
+           "tenth of the lock's first step wide" in done.stderr
     assert f"{config}: setpoints.velocity.limit_min/limit_max: expected limits that hold the " \
            f"rig's safe set-point {safe['velocity']:g} m/s" in done.stderr
     assert not (tmp_path / "run").exists()
