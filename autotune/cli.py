@@ -66,7 +66,7 @@ from autotune.errors import (
     RigTimeout,
     RunAlreadyEnded,
 )
-from autotune.journal import LOG_NAME, RESULT_NAME, write_json_atomic
+from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
 from autotune.progress import count_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -811,19 +811,25 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers()
+        def tell_again(exc: RunAlreadyEnded) -> int:
+            # A resume of a run killed after its end record (or run twice): nothing moves;
+            # its outcome is told again, with its exit status.
+            print(f"autotune: {exc}; nothing was sent to the rig. Its result:", file=sys.stderr)
+            print(summary(exc.result or {}))
+            print(f"run folder: {run_dir}")
+            return exit_code(exc.result or {})
+
+        # Read from the folder alone: the outcome is told even with the rig down.
+        ended = already_ended(run_dir, command) if resume else None
+        if ended is not None:
+            return tell_again(ended)
         with _connect(config) as rig:
             try:
                 prepared = prepare(rig, config, run_dir, resume=resume)
             except RunAlreadyEnded as exc:
                 if exc.result is None:
                     raise
-                # A resume of a run killed after its end record (or run twice): nothing moves;
-                # its outcome is told again, with its exit status.
-                print(f"autotune: {exc}; nothing was sent to the rig. Its result:",
-                      file=sys.stderr)
-                print(summary(exc.result))
-                print(f"run folder: {run_dir}")
-                return exit_code(exc.result)
+                return tell_again(exc)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
             started.append(run_dir)

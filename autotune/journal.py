@@ -26,7 +26,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from autotune.errors import JournalError
+from autotune.errors import JournalError, RunAlreadyEnded
 
 __all__ = [
     "Journal",
@@ -36,6 +36,7 @@ __all__ = [
     "LOG_NAME",
     "read_journal",
     "ended_result",
+    "already_ended",
     "read_json",
     "write_json_atomic",
     "utc_now",
@@ -104,6 +105,26 @@ def ended_result(run_dir: Path) -> dict[str, Any] | None:
     except JournalError:
         return None
     return result if isinstance(result, dict) else None
+
+
+def already_ended(run_dir: Path, command: str) -> RunAlreadyEnded | None:
+    """For a resume: the :class:`RunAlreadyEnded` of a ``command`` run whose journal ends with
+    a final status and which has its result, read from the folder alone (no rig needed); None
+    otherwise (the resume then goes on and checks everything)."""
+    run_dir = Path(run_dir)
+    try:
+        if read_json(run_dir / MANIFEST_NAME).get("command") != command:
+            return None
+        records = read_journal(run_dir / JOURNAL_NAME)
+    except (JournalError, AttributeError):
+        return None
+    last = records[-1] if records else {}
+    result = ended_result(run_dir)
+    if last.get("type") != "end" or last.get("status") in RESUMABLE or result is None:
+        return None
+    word = "night" if command == "track" else "run"
+    return RunAlreadyEnded(f"{run_dir}: the {word} already ended ({last.get('status')}); "
+                           f"nothing to resume", str(last.get("status")), result)
 
 
 def _iter_lines(path: Path) -> Iterator[tuple[int, bytes]]:

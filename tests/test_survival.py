@@ -340,6 +340,11 @@ def test_a_finished_run_resumed_tells_its_outcome_again_and_moves_nothing(tmp_pa
     wrong = autotune("retune", "--config", str(config), "--resume", str(run))
     assert wrong.returncode == 2
     assert f"resume it with 'autotune calibrate --config CONFIG --resume {run}'" in wrong.stderr
+    # Read from the folder alone: told again with the rig down too.
+    server.stop()
+    down = autotune("calibrate", "--config", str(config), "--resume", str(run), timeout=120)
+    assert down.returncode == 0, down.stderr[-3000:]
+    assert down.stdout == done.stdout
 
 
 def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, servers):
