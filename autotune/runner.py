@@ -197,7 +197,9 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
                 f"{sp.unit}", [sp.limit_min, sp.limit_max]))
             continue
         safe = (getattr(description, "safe_setpoints", None) or {}).get(sp.name)
-        if safe is not None and not sp.limit_min <= float(safe) <= sp.limit_max:
+        # (a float's rounding of a safe value converted from its channel is no excursion)
+        slack = 1e-9 * max(abs(sp.limit_min), abs(sp.limit_max), 1.0)
+        if safe is not None and not sp.limit_min - slack <= float(safe) <= sp.limit_max + slack:
             # A stop sends the rig to its safe set-points by its own procedure: limits that
             # exclude them would be left at every stop.
             problems.append(ConfigError(
