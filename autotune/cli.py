@@ -67,7 +67,7 @@ from autotune.errors import (
     RunAlreadyEnded,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
-from autotune.progress import count_text
+from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
@@ -104,11 +104,7 @@ _CONSOLE_HIDDEN = frozenset({"timestamp", "level", "event", "logger", "logger_na
 def _setpoint_text(name: str, value: Any) -> str:
     if isinstance(value, bool) or not isinstance(value, int | float):
         return f"{name} {value}"
-    if name == "velocity":
-        return f"{name} {value:.1f} m/s"
-    if name == "detuning":
-        return f"{name} {value / 1e3:+.2f} kHz"
-    return f"{name} {value:.6g}"
+    return f"{name} {setpoint_value_text(name, float(value))}"
 
 
 def _console_value(key: str, value: Any) -> str | None:
@@ -279,15 +275,7 @@ def _connect(config: RunConfig) -> Any:
 
 
 def _format_setpoints(setpoints: dict[str, float]) -> str:
-    parts = []
-    for name, value in setpoints.items():
-        if name == "velocity":
-            parts.append(f"velocity {value:.2f} m/s")
-        elif name == "detuning":
-            parts.append(f"detuning {value / 1e3:+.2f} kHz")
-        else:
-            parts.append(f"{name} {value:g}")
-    return ", ".join(parts)
+    return setpoints_text(setpoints)
 
 
 def _summary(result: dict[str, Any]) -> str:

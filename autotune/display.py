@@ -21,7 +21,8 @@ import time
 from collections.abc import Callable
 from typing import Any, Literal
 
-from autotune.progress import NightProgress, StageProgress, count_text, format_duration
+from autotune.progress import (NightProgress, StageProgress, count_text, format_duration,
+                               setpoint_value_text)
 
 __all__ = ["ProgressMode", "ProgressDisplay", "progress_mode", "stage_progress_text",
            "night_progress_text", "progress_text", "shots_text"]
@@ -68,9 +69,8 @@ def night_progress_text(p: NightProgress) -> str:
     with its interval and what it decided, the next check, the beam share of holding against its
     budget, and the counts."""
     end = f"/{p.end_s / 3600:.1f}" if p.end_s is not None else ""
-    held = ", ".join(f"{v:.1f} m/s" if k == "velocity" else
-                     f"{v / 1e3:+.2f} kHz" if k == "detuning" else f"{k} {v:g}"
-                     for k, v in p.setpoints.items())
+    held = ", ".join(setpoint_value_text(k, v) if k in ("velocity", "detuning") else
+                     f"{k} {setpoint_value_text(k, v)}" for k, v in p.setpoints.items())
     parts = [f"night {p.night_s / 3600:.1f}{end} h", f"held {held}" if held else "held nothing"]
     if p.inversion is not None and p.interval is not None:
         parts.append(f"check {p.inversion:.3f} [{p.interval[0]:.3f}, {p.interval[1]:.3f}]"

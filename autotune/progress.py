@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from typing import Literal
 
 __all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration",
-           "count_text"]
+           "count_text", "setpoint_value_text", "setpoints_text"]
 
 #: Measurement labels that come after the search has stopped: only their own shots are left.
 SEARCH_DONE_LABELS = ("verify", "correct")
@@ -140,6 +140,23 @@ class NightProgress:
 #: A callable told every :class:`StageProgress` of a stage (and, in a night, every
 #: :class:`NightProgress`).
 ProgressObserver = Callable[[StageProgress | NightProgress], None]
+
+
+def setpoint_value_text(name: str, value: float) -> str:
+    """One set-point's value as a physicist reads it: velocity to 0.1 m/s, detuning in kHz to
+    0.01 (the API stays in SI: m/s, Hz)."""
+    if name == "velocity":
+        return f"{value:.1f} m/s"
+    if name == "detuning":
+        return f"{value / 1e3:+.2f} kHz"
+    return f"{value:.6g}"
+
+
+def setpoints_text(setpoints: Mapping[str, float]) -> str:
+    """``"velocity 509.2 m/s, detuning -4.06 kHz"``: velocity and detuning first, others after."""
+    ordered = [k for k in ("velocity", "detuning") if k in setpoints] + \
+        sorted(k for k in setpoints if k not in ("velocity", "detuning"))
+    return ", ".join(f"{k} {setpoint_value_text(k, float(setpoints[k]))}" for k in ordered)
 
 
 def count_text(n: int, noun: str) -> str:

@@ -55,7 +55,7 @@ from scipy import stats
 from autotune.errors import EstimationError, JournalError
 from autotune.fringe import FringeData, fit_fringe
 from autotune.journal import JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal, read_json
-from autotune.progress import count_text
+from autotune.progress import count_text, setpoint_value_text, setpoints_text
 
 __all__ = [
     "FIGURE_NAME",
@@ -522,19 +522,11 @@ def _edge_zone(low: float, high: float) -> float:
 
 
 def _fmt_value(name: str, value: float) -> str:
-    if name == "velocity":
-        return f"{value:.1f} m/s"
-    if name == "detuning":
-        return f"{value / 1e3:+.2f} kHz"
-    return f"{value:g}"
+    return setpoint_value_text(name, value)
 
 
 def _fmt_setpoints(setpoints: Mapping[str, float] | None) -> str:
-    if not setpoints:
-        return "none"
-    ordered = [k for k in ("velocity", "detuning") if k in setpoints] + \
-        sorted(k for k in setpoints if k not in ("velocity", "detuning"))
-    return ", ".join(f"{k} {_fmt_value(k, setpoints[k])}" for k in ordered)
+    return setpoints_text(setpoints) if setpoints else "none"
 
 
 def fit_p_value(chi2: float, dof: int) -> float:

@@ -112,7 +112,7 @@ from autotune.loop import (
     retune_box,
     run_guided_stage,
 )
-from autotune.progress import NightProgress, ProgressObserver
+from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.rig import Rig
 from autotune.runner import (
     _manifest,
@@ -410,17 +410,6 @@ class _Ledger:
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self._journal, name)
-
-
-def _setpoints_text(setpoints: Mapping[str, float]) -> str:
-    """Set-points as a physicist reads them: velocity to 0.1 m/s, detuning in kHz to 0.01."""
-    def one(name: str, value: float) -> str:
-        if name == "velocity":
-            return f"velocity {value:.1f} m/s"
-        if name == "detuning":
-            return f"detuning {value / 1e3:+.2f} kHz"
-        return f"{name} {value:.6g}"
-    return ", ".join(one(k, float(v)) for k, v in setpoints.items())
 
 
 def _same(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
@@ -795,7 +784,7 @@ class _Night:
                              int(rec.get("shots") or 0)]
                             for rec in self._stage_estimates(index)]
         session.decide("stage_done", f"{kind} {index}: {outcome['status']} at "
-                       + _setpoints_text(outcome["setpoints"]),
+                       + setpoints_text(outcome["setpoints"]),
                        index=index, outcome=_clean(outcome))
         return outcome
 
