@@ -98,7 +98,9 @@ _SETPOINT_KEYS = frozenset({"setpoints", "target", "applied", "from", "best_setp
 #: Keys left out of a console line: shown elsewhere on the line, or plumbing.
 _CONSOLE_HIDDEN = frozenset({"timestamp", "level", "event", "logger", "logger_name", "run",
                              "stage", "command", "what", "reason", "exception", "msg_id",
-                             "_record", "_from_structlog"})
+                             "_record", "_from_structlog",
+                             # a retune's verdict says both in words in its reason
+                             "still_good", "in_range"})
 
 
 def _setpoint_text(name: str, value: Any) -> str:
