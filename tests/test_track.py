@@ -15,6 +15,7 @@ import json
 import math
 import shutil
 import threading
+import time
 from datetime import datetime
 from typing import Any
 
@@ -318,3 +319,76 @@ def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
     small_hours = datetime(2026, 12, 3, 1, 5).timestamp()
     assert math.isclose(track._Night._local_end(small_hours, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
+
+
+class _WallPacedRig:
+    """The simulated rig seen as a real one: it describes itself as not simulated, offers no
+    ``advance``, and its clock runs with the wall clock, ``speed`` times faster (a rig whose
+    own clock moves on while autotune waits). The night must then wait in wall time, reading
+    the rig's clock with ``status``."""
+
+    HIDDEN = ("advance", "truth", "thermal_step")
+
+    def __init__(self, rig: LocalRig, speed: float) -> None:
+        self._rig, self._speed = rig, speed
+        self._last = time.monotonic()
+
+    def _catch_up(self) -> None:
+        now = time.monotonic()
+        self._rig.advance((now - self._last) * self._speed)
+        self._last = now
+
+    def describe(self):
+        return dataclasses.replace(self._rig.describe(), simulated=False)
+
+    def status(self):
+        self._catch_up()
+        return self._rig.status()
+
+    def __getattr__(self, name: str) -> Any:
+        if name in self.HIDDEN:
+            raise AttributeError(name)
+        return getattr(self._rig, name)
+
+
+def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path, monkeypatch):
+    """A rig that is not simulated: the night's waits are 'wall' waits that end when the rig's
+    own clock (read with status) reaches the planned check, and a stop (the SIGINT/SIGTERM
+    event) ends a wait at once, resumable (README: Waiting between checks). The rig's clock
+    runs 1200 times faster than the wall here, so the night reads it every 50 ms of wall time
+    (60 s of its rig time) instead of sleeping up to 30 s between reads."""
+    monkeypatch.setattr(track, "_WALL_POLL_S", 0.05)
+    rig = _rig(29)
+    config = night_config(hours=1.0)
+    store = tmp_path / "good.json"
+    runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
+    paced = _WallPacedRig(rig, speed=1200.0)  # 1 s of wall time is 20 min of rig time
+    stop = threading.Event()
+    waits: list[Any] = []
+
+    def progress(item: Any) -> None:
+        if isinstance(item, NightProgress) and item.event == "wait":
+            waits.append(item)
+            if len(waits) == 3:
+                threading.Timer(0.2, stop.set).start()  # a stop in the middle of this wait
+
+    with pytest.raises(Interrupted):
+        track.track(paced, config, tmp_path / "night", store=store, stop=stop,
+                    progress=progress)
+    records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+    wall_waits = [r for r in records if r["type"] == "wait"]
+    assert wall_waits and all(r["how"] == "wall" for r in wall_waits)
+    # Each check before the stop came once the rig clock had reached its wait's target.
+    holds = {r["point"]: r for r in records if r["type"] == "hold"}
+    checks = [r for r in records if r["type"] == "measurement" and r["label"] == "hold"]
+    for wait in wall_waits[:-1]:
+        check = next(c for c in checks if c["point"] == wait["point"])
+        first = next(r for r in records if r["type"] == "acquisition"
+                     and r["seq"] > check["seq"])
+        assert first["t_start"] >= wait["until_clock"] - 1e-6
+    assert len(holds) >= 2
+    assert records[-1] == {**records[-1], "type": "end", "status": "interrupted"}
+    # Resumed, the night finishes its hour in wall time.
+    result = track.track(paced, config, tmp_path / "night", resume=True, store=store)
+    assert result["status"] == "ended" and result["checks"] > len(holds)
+    check_invariants(read_journal(tmp_path / "night" / JOURNAL_NAME))
