@@ -64,7 +64,6 @@ from autotune.errors import (
     LimitError,
     RigError,
     RigTimeout,
-    RunAlreadyEnded,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
@@ -276,14 +275,10 @@ def _connect(config: RunConfig) -> Any:
                      limits=limits, source=config.source)
 
 
-def _format_setpoints(setpoints: dict[str, float]) -> str:
-    return setpoints_text(setpoints)
-
-
 def _summary(result: dict[str, Any]) -> str:
     low, high = result["inversion_interval"]
     conf = round(100 * result["confidence"])
-    return (f"{result['command']}: {result['status']} at {_format_setpoints(result['setpoints'])}: "
+    return (f"{result['command']}: {result['status']} at {setpoints_text(result['setpoints'])}: "
             f"inversion {result['inversion']:.3f} [{low:.3f}, {high:.3f}] ({conf}% interval), "
             f"phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi, absorption "
             f"{result['absorption']:.3f}; {result['points']} points, {result['shots']} shots, "
@@ -801,25 +796,17 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers()
-        def tell_again(exc: RunAlreadyEnded) -> int:
-            # A resume of a run killed after its end record (or run twice): nothing moves;
-            # its outcome is told again, with its exit status.
-            print(f"autotune: {exc}; nothing was sent to the rig. Its result:", file=sys.stderr)
-            print(summary(exc.result or {}))
-            print(f"run folder: {run_dir}")
-            return exit_code(exc.result or {})
-
-        # Read from the folder alone: the outcome is told even with the rig down.
+        # A resume of a run killed after its end record (or run twice): nothing moves; its
+        # outcome is told again from the folder alone (the rig may be down), with its exit
+        # status. One that ended without a result is refused by prepare (exit 2).
         ended = already_ended(run_dir, command) if resume else None
-        if ended is not None:
-            return tell_again(ended)
+        if ended is not None and ended.result is not None:
+            print(f"autotune: {ended}; nothing was sent to the rig. Its result:", file=sys.stderr)
+            print(summary(ended.result))
+            print(f"run folder: {run_dir}")
+            return exit_code(ended.result)
         with _connect(config) as rig:
-            try:
-                prepared = prepare(rig, config, run_dir, resume=resume)
-            except RunAlreadyEnded as exc:
-                if exc.result is None:
-                    raise
-                return tell_again(exc)
+            prepared = prepare(rig, config, run_dir, resume=resume)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
             started.append(run_dir)
@@ -974,15 +961,15 @@ def _truth_table(rows: Sequence[tuple[str, dict[str, Any], float]]) -> str:
             f"{result['rig_time_s'] / 60:>7.1f} m {wall:>6.1f}s")
     for name, result, _ in rows:
         best = result["truth"]["best_setpoints"]
-        lines.append(f"{name}: chosen {_format_setpoints(result['setpoints'])}; "
-                     f"true best {_format_setpoints(best)}")
+        lines.append(f"{name}: chosen {setpoints_text(result['setpoints'])}; "
+                     f"true best {setpoints_text(best)}")
     return "\n".join(lines)
 
 
 def _track_summary(result: dict[str, Any]) -> str:
     share = result.get("holding_share")
     night_h = result["night_rig_time_s"] / 3600.0
-    held = (f"held {_format_setpoints(result['setpoints'])}" if result.get("held", True)
+    held = (f"held {setpoints_text(result['setpoints'])}" if result.get("held", True)
             else "held nothing (no recovery was accepted)")
     counts = ", ".join(count_text(int(result.get(key, 0)), key[:-1])
                        for key in ("corrections", "alarms", "retunes", "calibrations"))

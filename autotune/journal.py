@@ -36,6 +36,7 @@ __all__ = [
     "LOG_NAME",
     "read_journal",
     "ended_result",
+    "ended_error",
     "already_ended",
     "read_json",
     "write_json_atomic",
@@ -107,10 +108,21 @@ def ended_result(run_dir: Path) -> dict[str, Any] | None:
     return result if isinstance(result, dict) else None
 
 
+def ended_error(run_dir: Path, records: list[dict[str, Any]], word: str = "run"
+                ) -> RunAlreadyEnded | None:
+    """The :class:`RunAlreadyEnded` of a journal whose last record ends it with a final status
+    (one not in :data:`RESUMABLE`), with the folder's result; None when it may be resumed."""
+    last = records[-1] if records else {}
+    if last.get("type") != "end" or last.get("status") in RESUMABLE:
+        return None
+    return RunAlreadyEnded(f"{run_dir}: the {word} already ended ({last.get('status')}); "
+                           f"nothing to resume", str(last.get("status")), ended_result(run_dir))
+
+
 def already_ended(run_dir: Path, command: str) -> RunAlreadyEnded | None:
-    """For a resume: the :class:`RunAlreadyEnded` of a ``command`` run whose journal ends with
-    a final status and which has its result, read from the folder alone (no rig needed); None
-    otherwise (the resume then goes on and checks everything)."""
+    """For a resume: the :func:`ended_error` of a ``command`` run that has its result, read
+    from the folder alone (no rig needed); None otherwise (the resume then goes on and checks
+    everything)."""
     run_dir = Path(run_dir)
     try:
         if read_json(run_dir / MANIFEST_NAME).get("command") != command:
@@ -118,13 +130,8 @@ def already_ended(run_dir: Path, command: str) -> RunAlreadyEnded | None:
         records = read_journal(run_dir / JOURNAL_NAME)
     except (JournalError, AttributeError):
         return None
-    last = records[-1] if records else {}
-    result = ended_result(run_dir)
-    if last.get("type") != "end" or last.get("status") in RESUMABLE or result is None:
-        return None
-    word = "night" if command == "track" else "run"
-    return RunAlreadyEnded(f"{run_dir}: the {word} already ended ({last.get('status')}); "
-                           f"nothing to resume", str(last.get("status")), result)
+    ended = ended_error(run_dir, records, "night" if command == "track" else "run")
+    return ended if ended is not None and ended.result is not None else None
 
 
 def _iter_lines(path: Path) -> Iterator[tuple[int, bytes]]:
@@ -208,10 +215,8 @@ class Journal:
         manifest = read_json(run_dir / MANIFEST_NAME)
         path = run_dir / JOURNAL_NAME
         records = read_journal(path)
-        if records and records[-1].get("type") == "end" and \
-                records[-1].get("status") not in RESUMABLE:
-            raise JournalError(f"{run_dir}: the run already ended "
-                               f"({records[-1].get('status')}); nothing to resume")
+        if (ended := ended_error(run_dir, records)) is not None:
+            raise ended
         complete = sum(len(line) for _, line in _iter_lines(path)
                        if line.endswith(b"\n"))
         size = path.stat().st_size

@@ -521,10 +521,6 @@ def _edge_zone(low: float, high: float) -> float:
     return EDGE_FRACTION * (high - low)
 
 
-def _fmt_value(name: str, value: float) -> str:
-    return setpoint_value_text(name, value)
-
-
 def _fmt_setpoints(setpoints: Mapping[str, float] | None) -> str:
     return setpoints_text(setpoints) if setpoints else "none"
 
@@ -603,7 +599,7 @@ def run_flags(run: Run) -> list[Flag]:
                 if len(near) > PILE_FRACTION * len(points):
                     flags.append(Flag("edge_pile", f"{len(near)} of {len(points)} search points "
                                       f"lie within 2 % of the {side} {name} edge "
-                                      f"({_fmt_value(name, edge)}): the best may be outside the "
+                                      f"({setpoint_value_text(name, edge)}): the best may be outside the "
                                       "box"))
     chosen = run.chosen
     box = run.box()
@@ -615,8 +611,8 @@ def run_flags(run: Run) -> list[Flag]:
             for side, edge in (("lower", low), ("upper", high)):
                 if abs(chosen[name] - edge) <= zone:
                     flags.append(Flag("edge_choice", f"the chosen {name} "
-                                      f"{_fmt_value(name, chosen[name])} is at the {side} edge "
-                                      f"of the box ({_fmt_value(name, edge)})"))
+                                      f"{setpoint_value_text(name, chosen[name])} is at the {side} edge "
+                                      f"of the box ({setpoint_value_text(name, edge)})"))
     final = run.final_measurement()
     if final is not None:
         shift, stderr = final.value("phase_shift"), final.value("phase_shift_stderr")

@@ -41,7 +41,6 @@ import structlog
 from autotune import __version__
 from autotune.config import RunConfig
 from autotune.errors import (
-    RunAlreadyEnded,
     AutotuneError,
     ConfigError,
     ConfigErrors,
@@ -51,11 +50,11 @@ from autotune.errors import (
 from autotune.guided import LockPrior
 from autotune.journal import (
     JOURNAL_NAME,
-    ended_result,
     MANIFEST_NAME,
     RESULT_NAME,
     RESUMABLE,
     Journal,
+    ended_error,
     read_journal,
     read_json,
     utc_now,
@@ -510,11 +509,8 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
         if started_on != description.rig:
             raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
                                f"{description.rig!r}")
-        if records and records[-1].get("type") == "end" and \
-                records[-1].get("status") not in RESUMABLE:
-            raise RunAlreadyEnded(f"{run_dir}: the run already ended "
-                                  f"({records[-1].get('status')}); nothing to resume",
-                                  str(records[-1].get("status")), ended_result(run_dir))
+        if (ended := ended_error(run_dir, records)) is not None:
+            raise ended
         changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source)
         problems.extend(refused)
     if problems:

@@ -242,8 +242,9 @@ class ServedDriver:
             if not callable(getattr(driver, method, None)):
                 raise ConfigError(source, "driver.class", f"a class with a {method}() method "
                                   "(see autotune.driver)", type(driver).__name__)
-        self._watch = _CallWatch(driver)
-        self._driver = self._watch
+        # Every call of the driver goes through the watch: a stopping server names the one
+        # it waits for.
+        self._driver = _CallWatch(driver)
         self._description = parse_driver_description(self._driver.describe(), source=source)
         channels = self._description.channels
         if setpoints is None:
@@ -266,12 +267,12 @@ class ServedDriver:
     @property
     def driver(self) -> Any:
         """The driver served."""
-        return self._watch.driver
+        return self._driver.driver
 
     @property
     def call_in_progress(self) -> tuple[str, float] | None:
         """The driver method running now and for how long (s), or None (any thread may ask)."""
-        return self._watch.in_progress()
+        return self._driver.in_progress()
 
     @property
     def channel_map(self) -> ChannelMap:
@@ -396,7 +397,7 @@ class ServedDriver:
 
     def close(self) -> None:
         """Close the driver if it has a ``close()``."""
-        if callable(getattr(self._watch.driver, "close", None)):
+        if callable(getattr(self._driver.driver, "close", None)):
             self._driver.close()
 
 

@@ -70,7 +70,6 @@ import structlog
 
 from autotune.config import RunConfig
 from autotune.errors import (
-    RunAlreadyEnded,
     ConfigErrors,
     Interrupted,
     JournalError,
@@ -91,11 +90,10 @@ from autotune.hold import (
 )
 from autotune.journal import (
     JOURNAL_NAME,
-    ended_result,
     MANIFEST_NAME,
     RESULT_NAME,
-    RESUMABLE,
     Journal,
+    ended_error,
     read_journal,
     read_json,
     utc_now,
@@ -235,11 +233,8 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
         if started_on != description.rig:
             raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
                                f"{description.rig!r}")
-        if records and records[-1].get("type") == "end" and \
-                records[-1].get("status") not in RESUMABLE:
-            raise RunAlreadyEnded(f"{run_dir}: the night already ended "
-                                  f"({records[-1].get('status')}); nothing to resume",
-                                  str(records[-1].get("status")), ended_result(run_dir))
+        if (ended := ended_error(run_dir, records, "night")) is not None:
+            raise ended
         changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source,
                                           also_allowed=("track.",))
         problems.extend(refused)
