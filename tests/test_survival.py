@@ -426,15 +426,24 @@ def test_a_dry_run_stopped_at_the_terminal_leaves_its_rig_safe(tmp_path):
     assert records[-1]["status"] == "interrupted" and any(r["type"] == "safe" for r in records)
 
 
+def _calibration_on_a_slow_rig(tmp_path: Path, servers: Any, name: str,
+                               recovery: dict[str, Any]
+                               ) -> tuple[ServerProcess, Path, subprocess.Popen[str]]:
+    """A rig answering after 50 ms, a calibration started on it with short bus waits and the
+    given [recovery]: the rig, the run folder and the process."""
+    server = servers("--delay-s", "0.05", name=name)
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         bus={"timeout_s": 0.3, "retries": 1, "backoff_s": 0.05},
+                         recovery=recovery)
+    run = tmp_path / "run"
+    return server, run, start_autotune("calibrate", "--config", str(config), "--out", str(run))
+
+
 def test_a_stop_with_the_rig_gone_says_safe_was_not_confirmed(tmp_path, servers):
     """SIGTERM after the rig died: exit 130 and a message that the safe set-points were NOT
     confirmed (never the comforting default)."""
-    server = servers("--delay-s", "0.05", name="doomed")
-    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
-                         bus={"timeout_s": 0.3, "retries": 1, "backoff_s": 0.05},
-                         recovery={"step_retries": 30, "retry_wait_s": 0.2})
-    run = tmp_path / "run"
-    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    server, run, process = _calibration_on_a_slow_rig(
+        tmp_path, servers, "doomed", {"step_retries": 30, "retry_wait_s": 0.2})
 
     def rig_dies() -> None:
         wait_for_record(run / JOURNAL_NAME, _matcher("acquisition"), process=process)
@@ -451,12 +460,8 @@ def test_a_rig_lost_mid_run_says_safe_was_not_confirmed(tmp_path, servers):
     """The rig dies mid-run and stays away: exit 3 (README: rig unreachable or failing), and
     the last message says the safe set-points were NOT confirmed, as a stop by signal does, not
     only a log line further up; the journal records the failed safe op."""
-    server = servers("--delay-s", "0.05", name="lost")
-    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
-                         bus={"timeout_s": 0.3, "retries": 1, "backoff_s": 0.05},
-                         recovery={"step_retries": 1, "retry_wait_s": 0.1})
-    run = tmp_path / "run"
-    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    server, run, process = _calibration_on_a_slow_rig(
+        tmp_path, servers, "lost", {"step_retries": 1, "retry_wait_s": 0.1})
     err = _stop(process, lambda: wait_for_record(run / JOURNAL_NAME, _matcher("acquisition"),
                                                  process=process),
                 server.kill)

@@ -14,6 +14,7 @@ import sys
 import time
 import tomllib
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -322,19 +323,19 @@ def test_safe_on_stop_runs_the_drivers_safe_procedure(serve, tmp_path: Path):
             f"        with open({str(record)!r}, 'a') as f:\n"
             "            f.write(json.dumps(dict(channels)) + '\\n')\n"
             "        super().safe(channels)\n")
-    quiet = serve(_driver_variant(tmp_path / "a", body, ""), name="default")
-    with _client(quiet.endpoint) as client:
-        client.describe()
-        client.apply({"detuning": -10e3})
-    quiet.process.send_signal(signal.SIGTERM)
-    assert quiet.process.wait(timeout=60) == 0
+
+    def move_then_stop(folder: str, server_keys: str) -> Any:
+        server = serve(_driver_variant(tmp_path / folder, body, server_keys), name=folder)
+        with _client(server.endpoint) as client:
+            client.describe()
+            client.apply({"detuning": -10e3})
+        server.process.send_signal(signal.SIGTERM)
+        assert server.process.wait(timeout=60) == 0
+        return server
+
+    move_then_stop("default", "")
     assert not record.exists()
-    server = serve(_driver_variant(tmp_path / "b", body, "safe_on_stop = true"), name="safe")
-    with _client(server.endpoint) as client:
-        client.describe()
-        client.apply({"detuning": -10e3})
-    server.process.send_signal(signal.SIGTERM)
-    assert server.process.wait(timeout=60) == 0
+    server = move_then_stop("safe", "safe_on_stop = true")
     calls = [json.loads(line) for line in record.read_text().splitlines()]
     # The map's safe channel values (examples/lab_driver/DRIVER.toml): 3.0 V, 500 m/s / 4.49.
     assert calls == [{"STARK:HV1": 3.0, "VSEL:AOM_MHZ": pytest.approx(500.0 / 4.49)}]
