@@ -64,15 +64,38 @@ def test_the_wheel_holds_every_default_config(tmp_path: Path) -> None:
             assert archive.read(f"autotune/data/{name}") == (REPO / "configs" / name).read_bytes()
 
 
+def _site_folders_of_this_environment() -> list[str]:
+    """The folders this interpreter imports installed packages from (its venv's and, for a
+    venv made with --system-site-packages, the base's): the test environment's packages."""
+    folders = [entry for entry in sys.path
+               if Path(entry).name in ("site-packages", "dist-packages") and Path(entry).is_dir()]
+    return list(dict.fromkeys(folders))
+
+
+def _venv_seeing_this_environment(venv: Path) -> Path:
+    """A fresh venv whose interpreter imports the test environment's packages (pip, setuptools,
+    numpy, ...) after its own, whether the suite runs in a venv or in a base interpreter.
+
+    ``venv --system-site-packages`` is not used: from inside a venv it exposes the *base*
+    interpreter's packages, not the test environment's (a base setuptools 65 then refused the
+    project's SPDX licence). The folders are listed as plain paths in a .pth file, so the
+    test environment's own editable install of autotune (a .pth in those folders) is not
+    processed, and the venv's non-editable autotune is the one imported."""
+    subprocess.run([sys.executable, "-m", "venv", "--without-pip", str(venv)], check=True,
+                   timeout=120)
+    python = venv / "bin" / "python"
+    purelib = subprocess.run([str(python), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
+                             capture_output=True, text=True, check=True, timeout=60).stdout.strip()
+    Path(purelib, "_test_environment.pth").write_text(
+        "\n".join(_site_folders_of_this_environment()) + "\n", encoding="utf-8")
+    return python
+
+
 def test_a_non_editable_install_runs_dry_run_from_any_folder(tmp_path: Path) -> None:
     """pip install (not editable) into a fresh venv, then `autotune dry-run --out TMP` from a
     folder outside the repository: exit 0, both stages' results written."""
     venv = tmp_path / "venv"
-    # The venv sees the installed dependencies (and pip) of this interpreter; autotune itself
-    # is installed into the venv, whose site-packages comes first.
-    subprocess.run([sys.executable, "-m", "venv", "--system-site-packages", "--without-pip",
-                    str(venv)], check=True, timeout=120)
-    python = venv / "bin" / "python"
+    python = _venv_seeing_this_environment(venv)
     env = _environment_without_the_work_tree()
     done = subprocess.run([str(python), "-m", "pip", "install", "--no-deps",
                            "--no-build-isolation", "--quiet", str(_source_copy(tmp_path))],

@@ -262,13 +262,18 @@ def test_dry_run_options_sentence_matches_its_help() -> None:
 
 
 def test_ci_runs_exactly_the_readme_test_command() -> None:
-    """.ci/run installs the test extra and its last command is the README's test command."""
+    """.ci/run makes a fresh venv, installs the test extra in it and its last command is the
+    README's test command."""
     text = README.read_text(encoding="utf-8")
     line = next(line.strip() for line in text.splitlines() if ".[test]" in line)
     install, test = (part.strip() for part in line.split("&&"))
     ci = [line.strip() for line in (REPO / ".ci" / "run").read_text().splitlines()
           if line.strip() and not line.startswith("#")]
     assert ci[-1] == test == "python3 -m pytest -q"
+    venv_made = next(i for i, command in enumerate(ci) if command.startswith("python3 -m venv "))
+    activated = next(i for i, command in enumerate(ci) if command.startswith("source ")
+                     and command.endswith('/bin/activate"'))
+    assert venv_made < activated < len(ci) - 2, "the tests run inside a fresh venv"
     assert any(".[test]" in command and command.startswith("python3 -m pip install")
                for command in ci), install
 
