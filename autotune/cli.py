@@ -65,7 +65,7 @@ from autotune.errors import (
     RigError,
     RigTimeout,
 )
-from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
+from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -337,9 +337,11 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
             print(safe, file=sys.stderr)
         hint = resume_hint()
         if isinstance(exc, RigTimeout) and not hint:
-            print("autotune: nothing answered before the run began: check that the rig's server "
-                  "is running and listening at the config's [bus] endpoint ('autotune probe "
-                  "ENDPOINT' checks a server)", file=sys.stderr)
+            print("autotune: the rig gave no reply before the run began (none came, or every "
+                  "one was lost, through the bus's and [recovery]'s retries): nothing was moved "
+                  "and no journal was written; check that the rig's server is running and "
+                  "listening at the config's [bus] endpoint ('autotune probe ENDPOINT' checks a "
+                  "server)", file=sys.stderr)
         if hint:
             print(f"autotune: once the rig answers again, continue with: {hint}",
                   file=sys.stderr)
@@ -806,7 +808,7 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
             print(f"run folder: {run_dir}")
             return exit_code(ended.result)
         with _connect(config) as rig:
-            prepared = prepare(rig, config, run_dir, resume=resume)
+            prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
             started.append(run_dir)
@@ -822,7 +824,10 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         return exit_code(result)
 
     def hint() -> str | None:
-        return _resume_command(command, ns.config, started[0]) if started else None
+        # A folder whose run never reached the rig has no journal: nothing to resume.
+        if not started or not (started[0] / JOURNAL_NAME).exists():
+            return None
+        return _resume_command(command, ns.config, started[0])
 
     return _guarded(body, hint)
 
@@ -908,7 +913,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
     rows = []
     exit_code = EXIT_OK
     with _connect(config) as rig:
-        description = rig.describe()
+        description = runner.opening_call("describe", rig.describe, config, rig, stop)
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
         stages = ["calibrate"] if ns.no_retune else ["calibrate", "retune"]
@@ -925,7 +930,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
             wall = time.monotonic()
-            prepared = runner.prepare(name, rig, config, run_dir, store=store)
+            prepared = runner.prepare(name, rig, config, run_dir, store=store, stop=stop)
             handler = _log_to_run_folder(run_dir)
             try:
                 with _progress_display(ns) as progress:

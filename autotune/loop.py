@@ -70,6 +70,7 @@ __all__ = [
     "GUIDED_LABELS",
     "retune_box",
     "quadratic_peak",
+    "call_with_recovery",
 ]
 
 _log = structlog.get_logger(__name__)
@@ -351,6 +352,92 @@ class _ProgressPlan:
             self.best = (estimate, {k: float(v) for k, v in setpoints.items()})
 
 
+def _log_decision(what: str, reason: str, *, level: str = "info", **fields: Any) -> None:
+    """A decision taken before the run's journal exists: logged only."""
+    getattr(_log, level)("decision", what=what, reason=reason, **fields)
+
+
+def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *, rig: Rig,
+                       stop: threading.Event | None = None,
+                       sleep: Callable[[float], None] = time.sleep,
+                       decide: Callable[..., None] | None = None,
+                       msg_id: str | None = None) -> Any:
+    """Run one logical rig operation with bounded retries, under one ``msg_id``.
+
+    The one recovery path of every rig call of a run, its opening ``describe`` and ``status``
+    included. ``action(msg_id)`` performs the call (the bus client makes its own
+    ``1 + [bus] retries`` attempts inside it). A timeout, a malformed reply, a ``busy`` or
+    ``internal`` refusal is retried (at most ``recovery.step_retries`` times,
+    ``recovery.retry_wait_s`` apart); an interlock waits (bounded) and retries. Every retry
+    resends the same ``msg_id``: a rig that already executed the request answers from its replay
+    cache instead of running it again, and one that answered ``internal`` (it failed, the
+    request did not complete) runs it again (see :mod:`autotune.protocol`).
+
+    Parameters
+    ----------
+    what : str
+        The operation's name, for the decisions and the log.
+    action : callable
+        ``action(msg_id)`` makes the call and returns its reply.
+    recovery : RecoveryConfig
+        ``step_retries``, ``retry_wait_s``, ``interlock_poll_s``, ``interlock_max_wait_s``.
+    rig : Rig
+        Asked for its ``status`` while an interlock is set.
+    stop : threading.Event, optional
+        A stop signal: checked before every attempt (:class:`Interrupted`).
+    sleep : callable
+        The wait between attempts (s).
+    decide : callable, optional
+        ``decide(what, reason, **fields)`` records a retry or the give-up (the session's
+        journal); by default they are only logged (before a run's journal exists).
+    msg_id : str, optional
+        The operation's ``msg_id`` (default: a new one).
+    """
+    decide = decide if decide is not None else _log_decision
+    msg_id = msg_id if msg_id is not None else new_msg_id()
+    failures = 0
+    while True:
+        if stop is not None and stop.is_set():
+            raise Interrupted("stopped by signal")
+        try:
+            return action(msg_id)
+        except RigRefused as exc:
+            if exc.kind == "interlock":
+                _wait_interlock(what, exc.detail, recovery, rig=rig, stop=stop, sleep=sleep,
+                                decide=decide)
+                continue
+            if exc.kind not in ("busy", "internal"):
+                raise
+            error: RigError = exc
+        except (RigTimeout, ProtocolError) as exc:
+            # No valid reply: the request may or may not have run; the same msg_id is safe.
+            error = exc
+        failures += 1
+        if failures > recovery.step_retries:
+            decide("give_up", f"{what} failed {failures} times: {error}", op=what, msg_id=msg_id)
+            raise error
+        decide("retry", f"{what} failed: {error}; resending msg_id {msg_id}", op=what,
+               attempt=failures, msg_id=msg_id)
+        sleep(recovery.retry_wait_s)
+
+
+def _wait_interlock(what: str, detail: str, recovery: Any, *, rig: Rig,
+                    stop: threading.Event | None, sleep: Callable[[float], None],
+                    decide: Callable[..., None]) -> None:
+    decide("pause", f"interlock during {what}: {detail}", op=what)
+    waited = 0.0
+    while waited < recovery.interlock_max_wait_s:
+        if stop is not None and stop.is_set():
+            raise Interrupted("stopped by signal")
+        sleep(recovery.interlock_poll_s)
+        waited += recovery.interlock_poll_s
+        status = rig.status()
+        if status.interlock is None:
+            decide("resume", f"interlock cleared after {waited:g} s", op=what)
+            return
+    raise RigRefused("interlock", f"{detail} (still set after {waited:g} s)")
+
+
 class Session:
     """One stage's conversation with the rig: guarded moves, bounded retries, journaled steps.
 
@@ -504,52 +591,15 @@ class Session:
             raise Interrupted("stopped by signal")
 
     def _call(self, what: str, action: Callable[[str], Any], msg_id: str | None = None) -> Any:
-        """Run one logical rig operation with bounded retries, under one ``msg_id``.
-
-        ``action(msg_id)`` performs the call. A timeout, a malformed reply, a ``busy`` or
-        ``internal`` refusal is retried (at most ``recovery.step_retries`` times, ``retry_wait_s`` apart); an interlock
-        waits (bounded) and retries. Every retry resends the same ``msg_id``, so a rig that
-        already executed the request answers from its replay cache instead of running it again.
-        """
-        recovery = self.config.recovery
-        msg_id = msg_id if msg_id is not None else new_msg_id()
-        failures = 0
-        while True:
-            self._check_stop()
-            try:
-                return action(msg_id)
-            except RigRefused as exc:
-                if exc.kind == "interlock":
-                    self._wait_interlock(what, exc.detail)
-                    continue
-                if exc.kind not in ("busy", "internal"):
-                    raise
-                error: RigError = exc
-            except (RigTimeout, ProtocolError) as exc:
-                # No valid reply: the request may or may not have run; the same msg_id is safe.
-                error = exc
-            failures += 1
-            if failures > recovery.step_retries:
-                self.decide("give_up", f"{what} failed {failures} times: {error}", op=what,
-                            msg_id=msg_id)
-                raise error
-            self.decide("retry", f"{what} failed: {error}; resending msg_id {msg_id}", op=what,
-                        attempt=failures, msg_id=msg_id)
-            self.sleep(recovery.retry_wait_s)
+        """Run one logical rig operation through :func:`call_with_recovery` (this session's
+        recovery settings, stop flag and journal)."""
+        return call_with_recovery(what, action, self.config.recovery, rig=self.rig,
+                                  stop=self.stop, sleep=self.sleep, decide=self.decide,
+                                  msg_id=msg_id)
 
     def _wait_interlock(self, what: str, detail: str) -> None:
-        recovery = self.config.recovery
-        self.decide("pause", f"interlock during {what}: {detail}", op=what)
-        waited = 0.0
-        while waited < recovery.interlock_max_wait_s:
-            self._check_stop()
-            self.sleep(recovery.interlock_poll_s)
-            waited += recovery.interlock_poll_s
-            status = self.rig.status()
-            if status.interlock is None:
-                self.decide("resume", f"interlock cleared after {waited:g} s", op=what)
-                return
-        raise RigRefused("interlock", f"{detail} (still set after {waited:g} s)")
+        _wait_interlock(what, detail, self.config.recovery, rig=self.rig, stop=self.stop,
+                        sleep=self.sleep, decide=self.decide)
 
     def learn_present(self) -> dict[str, float]:
         """Ask the rig which set-points are in force."""

@@ -65,6 +65,7 @@ from autotune.loop import (
     Limit,
     Session,
     StageOutcome,
+    call_with_recovery,
     retune_box,
     run_guided_stage,
     run_stage,
@@ -74,7 +75,7 @@ from autotune.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
-           "STAGE_COMMANDS"]
+           "STAGE_COMMANDS", "opening_call"]
 
 _log = structlog.get_logger(__name__)
 
@@ -249,6 +250,28 @@ def _last_good_problems(config: RunConfig, limits: Mapping[str, Any], store: Pat
                                         f"a value within the effective limits "
                                         f"[{limit.min:g}, {limit.max:g}] {sp.unit}", value))
     return problems
+
+
+def never_started(run_dir: Path) -> None:
+    """Refuse, before the rig is asked anything, the resume of a folder where no run began
+    (no journal: a run whose rig never answered its first calls writes none), saying how to
+    start it.
+
+    Raises
+    ------
+    JournalError
+        ``run_dir`` holds no journal.
+    """
+    if not (Path(run_dir) / JOURNAL_NAME).exists():
+        raise JournalError(f"{run_dir}: no run began there (it holds no {JOURNAL_NAME}); "
+                           f"nothing to resume: start the run with --out {run_dir}")
+
+
+def opening_call(what: str, call: Callable[[], Any], config: RunConfig, rig: Rig,
+                 stop: threading.Event | None) -> Any:
+    """A rig call before the run's journal exists (its ``describe``, its first ``status``),
+    through the same recovery as every later call; its retries are logged only."""
+    return call_with_recovery(what, lambda _id: call(), config.recovery, rig=rig, stop=stop)
 
 
 def settle_failure(session: Session, exc: Exception, status: str) -> str:
@@ -472,8 +495,12 @@ class Prepared:
 
 
 def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
-            store: Path | None = None) -> Prepared:
+            store: Path | None = None, stop: threading.Event | None = None) -> Prepared:
     """Check a stage before anything moves or is written; see the module notes.
+
+    The rig's ``describe`` goes through the run's one recovery path
+    (:func:`autotune.loop.call_with_recovery`: the same retries as every later call);
+    ``stop`` ends its waits.
 
     Raises
     ------
@@ -485,7 +512,9 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
         A new run's folder already holds a run, or a resumed one cannot be resumed (no
         journal, a damaged record, another command or rig, or the run already ended).
     RigError
-        The rig does not answer its ``describe``.
+        The rig does not answer its ``describe`` past the retries.
+    Interrupted
+        ``stop`` was set while waiting for the rig.
     """
     if command not in STAGE_COMMANDS:
         raise ValueError(f"command: expected one of {STAGE_COMMANDS}, got {command!r}")
@@ -494,7 +523,9 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     last_good = read_last_good(store) if command == "retune" else None
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
-    description = rig.describe()
+    if resume:
+        never_started(run_dir)
+    description = opening_call("describe", rig.describe, config, rig, stop)
     problems = preflight(command, config, description, store=store, last_good=last_good,
                          resume=resume)
     changes: list[tuple[str, Any, Any]] = []
@@ -656,9 +687,13 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
     extra = dict(extra or {})
     if command == "retune":
         extra = {"last_good": prepared.last_good, **extra}
+    opening_clock = None
     if prepared.resume:
         journal, _, records = Journal.open_for_resume(run_dir)
     else:
+        # The rig's clock before the folder exists: a run that never reached the rig leaves
+        # no journal behind.
+        opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
         journal, records = Journal.create(run_dir, _manifest(prepared, extra)), []
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
@@ -675,7 +710,8 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         if starts:
             clock_start = float(starts[0]["clock"])
         else:
-            clock_start = float(rig.status().clock)
+            clock_start = opening_clock if opening_clock is not None else \
+                float(session._call("status", lambda _id: rig.status()).clock)
             journal.append("start", clock=clock_start, command=command,
                            instance=getattr(prepared.description, "instance", None))
     except BaseException:
@@ -736,7 +772,7 @@ def _run(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bo
          stop: threading.Event | None, store: Path | None, extra: Mapping[str, Any] | None,
          observer: Callable[..., None] | None, progress: ProgressObserver | None
          ) -> dict[str, Any]:
-    prepared = prepare(command, rig, config, run_dir, resume=resume, store=store)
+    prepared = prepare(command, rig, config, run_dir, resume=resume, store=store, stop=stop)
     return execute(prepared, rig, stop=stop, extra=extra, observer=observer, progress=progress)
 
 

@@ -114,6 +114,8 @@ from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.rig import Rig
 from autotune.runner import (
     _manifest,
+    never_started,
+    opening_call,
     read_last_good,
     resume_changes,
     settle_failure,
@@ -197,7 +199,8 @@ def hold_settings(config: RunConfig, description: Any) -> HoldSettings:
 
 
 def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
-                  store: Path | None = None) -> PreparedNight:
+                  store: Path | None = None, stop: threading.Event | None = None
+                  ) -> PreparedNight:
     """Check a night before anything moves or is written.
 
     Raises
@@ -218,7 +221,9 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
     last_good = read_last_good(store) if store.exists() else None
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
-    description = rig.describe()
+    if resume:
+        never_started(run_dir)
+    description = opening_call("describe", rig.describe, config, rig, stop)
     problems = track_preflight(config, description, store=store, last_good=last_good,
                                resume=resume)
     changes: list[tuple[str, Any, Any]] = []
@@ -249,7 +254,7 @@ def track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
           wall: Callable[[], float] = time.time,
           progress: ProgressObserver | None = None) -> dict[str, Any]:
     """Prepare and run a night (studies and tests; the CLI calls the two steps)."""
-    prepared = prepare_track(rig, config, run_dir, resume=resume, store=store)
+    prepared = prepare_track(rig, config, run_dir, resume=resume, store=store, stop=stop)
     return execute_track(prepared, rig, stop=stop, extra=extra, wall=wall, progress=progress)
 
 
@@ -279,9 +284,13 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     """
     config, run_dir = prepared.config, prepared.run_dir
     wall_start = time.monotonic()
+    opening_clock = None
     if prepared.resume:
         journal, _, records = Journal.open_for_resume(run_dir)
     else:
+        # The rig's clock before the folder exists: a night that never reached the rig
+        # leaves no journal behind.
+        opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
         manifest = _manifest(_AsPrepared(prepared), {"last_good": prepared.last_good,
                                                      **dict(extra or {})})
         journal, records = Journal.create(run_dir, manifest), []
@@ -299,7 +308,8 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
                            changes=[{"key": k, "old": old, "new": new}
                                     for k, old, new in prepared.changes])
         if not any(r.get("type") == "start" for r in records):
-            clock = float(rig.status().clock)
+            clock = opening_clock if opening_clock is not None else \
+                float(session._call("status", lambda _id: rig.status()).clock)
             ledger.append("start", clock=clock, command="track",
                           instance=getattr(prepared.description, "instance", None))
     except BaseException:

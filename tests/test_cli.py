@@ -258,7 +258,8 @@ def test_unreachable_rig_exits_3_within_its_bound(tmp_path: Path) -> None:
     assert "rig error" in done.stderr
     assert "check that the rig's server is running and listening at the config's [bus] " \
            "endpoint" in done.stderr
-    # Bound: (1 + retries) * timeout + backoff, plus interpreter start-up on a busy machine.
+    # Bound: (1 + [recovery] step_retries) times the bus's (1 + retries) * timeout + backoff,
+    # with retry_wait_s between, plus interpreter start-up on a busy machine.
     assert time.monotonic() - start < 60
     assert not (tmp_path / "run" / JOURNAL_NAME).exists()
 

@@ -1,0 +1,79 @@
+"""Every fault path as the README promises it, through real processes, sockets and files.
+
+- The opening calls of a run (``describe``, the first ``status``) get the same recovery as
+  every later call: a rig dropping a third of its replies starts every time, and a run that
+  never reached the rig leaves no journal (its resume says so).
+"""
+
+from __future__ import annotations
+
+import signal
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from autotune.journal import JOURNAL_NAME, read_journal
+from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
+from rig_process import ServerProcess, spawn_server
+
+
+@pytest.fixture
+def servers(tmp_path: Path) -> Any:
+    """Factory of simulated rig processes, all stopped at teardown."""
+    started: list[ServerProcess] = []
+
+    def start(*flags: str, name: str | None = None, **options: Any) -> ServerProcess:
+        server = spawn_server(tmp_path, name or f"rig{len(started)}", *flags, **options)
+        started.append(server)
+        return server
+
+    yield start
+    for server in started:
+        server.stop()
+
+
+#: A bus that gives up quickly on its own (two attempts of 0.4 s): with a third of the replies
+#: dropped, one call in nine fails at the bus; the run's recovery (four attempts of the bus's
+#: two) leaves one in 6561.
+LOSSY_BUS = {"bus": {"timeout_s": 0.4, "retries": 1, "backoff_s": 0.0},
+             "recovery": {"step_retries": 3, "retry_wait_s": 0.0}}
+
+
+@pytest.mark.parametrize("seed", range(10))
+def test_a_rig_dropping_a_third_of_its_replies_starts_every_time(tmp_path, servers, seed):
+    """A seeded rig dropping a third of its replies: the run's first describe and status are
+    retried like every later call, so the run starts and its journal opens with ``start``
+    (with the bus's own two attempts alone, about one run in five failed before starting)."""
+    server = servers("--drop-probability", "0.33", seed=1000 + seed)
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         **LOSSY_BUS)
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    try:
+        wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
+                        timeout_s=120, process=process)
+    finally:
+        process.send_signal(signal.SIGKILL)
+        process.communicate(timeout=60)
+    records = read_journal(run / JOURNAL_NAME)
+    assert records[0]["type"] == "start", records[:3]
+    assert not any(r["type"] == "end" for r in records)
+
+
+def test_a_run_that_never_reached_the_rig_leaves_no_journal(tmp_path):
+    """No rig at the endpoint: exit 3 once the recovery gave up, a message that nothing moved
+    and no journal was written, no resume hint; a resume of that folder is refused in a
+    sentence that says no run began there (exit 2)."""
+    config = tiny_config(tmp_path / "c.toml", "tcp://127.0.0.1:9", tmp_path / "good.json",
+                         bus={"timeout_s": 0.2, "retries": 0, "backoff_s": 0.0},
+                         recovery={"step_retries": 2, "retry_wait_s": 0.0})
+    run = tmp_path / "run"
+    done = autotune("calibrate", "--config", str(config), "--out", str(run))
+    assert done.returncode == 3, done.stderr[-3000:]
+    assert "no journal was written" in done.stderr
+    assert "--resume" not in done.stderr
+    assert not (run / JOURNAL_NAME).exists()
+    resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
+    assert resumed.returncode == 2, resumed.stderr[-3000:]
+    assert "no run began there" in resumed.stderr
