@@ -537,7 +537,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
             if safe_on_stop and served_requests:
                 try:
                     served.safe()
-                except Exception as exc:  # noqa: BLE001 - reported; the stop goes on
+                except BaseException as exc:  # noqa: BLE001 - reported; the stop goes on
                     log.error("safe_on_stop_failed", error=f"{type(exc).__name__}: {exc}",
                               consequence="the hardware was left where it was; check it")
                     code = EXIT_RIG
@@ -545,7 +545,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
             if callable(close):
                 try:
                     close()
-                except Exception as exc:  # noqa: BLE001 - the driver's own shutdown; report, exit anyway
+                except BaseException as exc:  # noqa: BLE001 - the driver's own shutdown; report, exit anyway
                     log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
     return code
 
@@ -684,7 +684,7 @@ def _close_quietly(driver: Any, log: Any) -> None:
     if callable(close):
         try:
             close()
-        except Exception as exc:  # noqa: BLE001 - already failing; report and go on
+        except BaseException as exc:  # noqa: BLE001 - already failing; report and go on
             log.error("driver_close_failed", error=f"{type(exc).__name__}: {exc}")
 
 

@@ -7,9 +7,10 @@ not, with one reply; bad input never stops it. A request repeated with a ``msg_i
 answered gets the cached reply bytes and is not executed again (bounded LRU cache); replies of
 kind ``busy`` and ``interlock`` are never kept, so the same request sent again once the rig is
 free is executed. Errors a driver raises from the vocabulary of :mod:`autotune.driver` become
-their error kinds; any other exception is ``internal``. Every result of ``describe``,
-``status``, ``apply``, ``acquire`` and ``safe`` carries the server's ``instance``, new at each
-start. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
+their error kinds; any other exception, ``BaseException`` included (``SystemExit``,
+``KeyboardInterrupt``, ``GeneratorExit``), is ``internal`` and the server keeps serving. Every
+result of ``describe``, ``status``, ``apply``, ``acquire`` and ``safe`` carries the server's
+``instance``, new at each start. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
 exit after a number of messages. Optional CURVE encryption admits only clients whose public
 key is in an allowed folder; others get nothing and are logged.
 
@@ -512,7 +513,10 @@ class RigServer:
             result = handler(request.args)
         except DriverRefusal as exc:
             kind, detail = ErrorKind(exc.kind), str(exc)
-        except Exception as exc:  # noqa: BLE001 - the server must answer whatever the rig does
+        except BaseException as exc:  # noqa: BLE001 - the server must answer whatever the rig does
+            # SystemExit, KeyboardInterrupt and GeneratorExit from a driver are its failures
+            # too: the server's own stop never raises here (its signal handlers only ask
+            # serve() to return), so nothing a driver raises may end it.
             log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
             log.exception("rig_failed")
             kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"

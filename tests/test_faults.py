@@ -3,19 +3,78 @@
 - The opening calls of a run (``describe``, the first ``status``) get the same recovery as
   every later call: a rig dropping a third of its replies starts every time, and a run that
   never reached the rig leaves no journal (its resume says so).
+- ``autotune serve`` survives a driver raising ``SystemExit``, ``KeyboardInterrupt`` or
+  ``GeneratorExit``: each is answered ``internal`` and the server keeps serving.
 """
 
 from __future__ import annotations
 
+import json
 import signal
 from pathlib import Path
 from typing import Any
 
 import pytest
 
+from autotune.bus import BusClient
+from autotune.errors import RigRefused
 from autotune.journal import JOURNAL_NAME, read_journal
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
-from rig_process import ServerProcess, spawn_server
+from rig_process import REPO, STOP_TIMEOUT_S, ServerProcess, spawn_server
+
+#: The bundled simulated driver, failing on the calls named in its ``fail`` option
+#: (``"op:n:ExceptionName"``: the n-th call of ``op``, counted from 1, raises that built-in
+#: exception before the rig does anything).
+FLAKY_DRIVER = """
+import builtins
+from pathlib import Path
+
+from drivers_sim.driver import SimulatedDriver
+
+
+class Flaky(SimulatedDriver):
+    @classmethod
+    def from_config(cls, options, config_dir):
+        options = dict(options)
+        plan = {}
+        for entry in options.pop("fail", []):
+            op, n, name = entry.split(":")
+            plan[(op, int(n))] = getattr(builtins, name)
+        driver = super().from_config(options, config_dir)
+        driver._plan, driver._calls = plan, {}
+        return driver
+
+    def _maybe_fail(self, op):
+        self._calls[op] = self._calls.get(op, 0) + 1
+        error = self._plan.get((op, self._calls[op]))
+        if error is not None:
+            raise error(f"{op} call {self._calls[op]} failed on purpose")
+
+    def acquire(self, field, ramsey_phase, shots):
+        self._maybe_fail("acquire")
+        return super().acquire(field, ramsey_phase, shots)
+
+    def apply(self, channels):
+        self._maybe_fail("apply")
+        return super().apply(channels)
+"""
+
+
+def flaky_driver_toml(folder: Path, *fail: str) -> Path:
+    """A DRIVER.toml serving the simulated rig (configs/sim-driver.toml's channel map) through
+    the :data:`FLAKY_DRIVER` with ``fail`` as its plan of failures."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "flaky_sim.py").write_text(FLAKY_DRIVER)
+    text = (REPO / "configs" / "sim-driver.toml").read_text()
+    text = text.replace('class = "drivers_sim.driver:SimulatedDriver"',
+                        'class = "flaky_sim:Flaky"\n'
+                        f'python_path = [".", {json.dumps(str(REPO))}]')
+    text = text.replace('config = "sim-rig.toml"',
+                        f'config = {json.dumps(str(REPO / "configs" / "sim-rig.toml"))}\n'
+                        f'fail = {json.dumps(list(fail))}')
+    path = folder / "DRIVER.toml"
+    path.write_text(text)
+    return path
 
 
 @pytest.fixture
@@ -77,3 +136,29 @@ def test_a_run_that_never_reached_the_rig_leaves_no_journal(tmp_path):
     resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
     assert resumed.returncode == 2, resumed.stderr[-3000:]
     assert "no run began there" in resumed.stderr
+
+
+def test_serve_survives_a_driver_raising_systemexit_keyboardinterrupt_generatorexit(tmp_path):
+    """A driver raising SystemExit, KeyboardInterrupt and GeneratorExit on its first three
+    acquisitions: each is answered ``internal`` naming the exception, the fourth acquisition
+    and a status are answered, and only SIGTERM (the server's own signal) stops it, exit 0
+    (README: "anything else is answered internal ... and the server keeps running")."""
+    config = flaky_driver_toml(tmp_path / "driver", "acquire:1:SystemExit",
+                               "acquire:2:KeyboardInterrupt", "acquire:3:GeneratorExit")
+    server = spawn_server(tmp_path, "serve", config=config, seed=None, command="serve")
+    try:
+        with BusClient(server.endpoint, timeout_s=10.0, retries=0, backoff_s=0.0) as client:
+            client.describe()
+            for name in ("SystemExit", "KeyboardInterrupt", "GeneratorExit"):
+                with pytest.raises(RigRefused) as refused:
+                    client.acquire("empty", 0.0, 10)
+                assert refused.value.kind == "internal"
+                assert name in refused.value.detail
+                assert server.process.poll() is None
+            assert client.acquire("empty", 0.0, 10).shots == 10
+            assert client.status().shots_total >= 10
+        assert len(server.wait_for_event("rig_failed")) == 3
+        server.process.send_signal(signal.SIGTERM)
+        assert server.process.wait(timeout=STOP_TIMEOUT_S) == 0
+    finally:
+        server.stop()
