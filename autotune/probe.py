@@ -49,6 +49,14 @@ acquire.field         an unknown field is ``bad_request`` and nothing is acquire
 safe                  ``safe`` answers the described safe set-points, and ``status`` shows them
 ===================== ===========================================================================
 
+Then ``internal``, reported only when the rig answered a request ``internal`` during the probe
+(a conforming rig never does on purpose, so the rule cannot be provoked): the probe retries that
+request with the same ``msg_id``, as autotune does, and the retry must reach the rig again (a
+result, or a fresh execution: the same ``msg_id`` sent with a ``status`` request is then
+answered as a new request, not refused as a reuse), since an ``internal`` reply to a request
+that did not complete must not be kept (:mod:`autotune.protocol`, Idempotency). A lab can
+exercise it with a driver that fails once on purpose.
+
 Last, ``instance``: the optional rig identity is in every result of describe, status, apply,
 acquire and safe and never changes (``WARN`` if the rig does not report one; ``FAIL`` if it
 changes during the probe or is malformed).
@@ -70,7 +78,8 @@ from autotune.bus import CurveClientKeys
 from autotune.errors import ProtocolError, RigRefused
 from autotune.protocol import Description
 
-__all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES", "summarise"]
+__all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES",
+           "OCCASIONAL_RULES", "summarise"]
 
 Outcome = Literal["pass", "fail", "warn", "skip"]
 
@@ -85,8 +94,10 @@ MOVING_RULES: tuple[str, ...] = (
     "nonfinite", "apply", "apply.full_step", "refuse.out_of_range", "refuse.step", "acquire",
     "replay", "acquire.field", "safe",
 )
-#: Every rule, in the order they are reported.
+#: Every rule reported at every probe, in the order they are reported.
 RULES: tuple[str, ...] = STILL_RULES + MOVING_RULES + ("instance",)
+#: Rules reported only when their occasion arises (before ``instance``): ``internal``.
+OCCASIONAL_RULES: tuple[str, ...] = ("internal",)
 
 _EXPECTED = {
     "describe": "describe answers with rig, proto 1, simulated, setpoints, fields, repetition_rate_hz, safe_setpoints",
@@ -114,6 +125,8 @@ _EXPECTED = {
     "acquire.field": "an unknown field answered bad_request; nothing acquired",
     "safe": "safe answers the described safe set-points; status shows them",
     "instance": "the same instance in every describe/status/apply/acquire/safe result (optional)",
+    "internal": "a request answered internal reaches the rig again when retried with its msg_id "
+                "(an internal reply to a request that did not complete is not kept)",
 }
 _IDENTIFIED = frozenset({"describe", "status", "apply", "acquire", "safe"})
 _SETPOINT_UNITS = {"velocity": "m/s", "detuning": "Hz"}
@@ -269,6 +282,8 @@ class Probe:
         self.moving_refused: str | None = None
         self.unreachable = False
         self._instances: list[tuple[str, object]] = []
+        # The finding of the internal rule, once a request was answered internal.
+        self._internal: tuple[Outcome, str] | None = None
 
     # ------------------------------------------------------------------ recording
 
@@ -305,7 +320,38 @@ class Probe:
 
     def _call(self, op: str, args: Mapping[str, Any] | None = None) -> _Answer:
         msg_id = protocol.new_msg_id()
-        return self._send(_request(op, dict(args or {}), msg_id), msg_id, op)
+        data = _request(op, dict(args or {}), msg_id)
+        answer = self._send(data, msg_id, op)
+        if answer.kind == "internal":
+            answer = self._retry_internal(data, msg_id, op, answer)
+        return answer
+
+    def _retry_internal(self, data: bytes, msg_id: str, op: str, first: _Answer) -> _Answer:
+        """A request answered ``internal``: retry it once with its msg_id (as autotune does);
+        the retry must reach the rig again. Keeps the ``internal`` rule's finding (the first
+        one met) and returns the retry's answer."""
+        second = self._send(data, msg_id, op)
+        if second.result is not None:
+            finding: tuple[Outcome, str] = (
+                "pass", f"{op} answered {first.show()}; its retry was executed and answered")
+        elif second.kind == "internal":
+            # Failed again, or replayed from the cache? A kept reply makes the msg_id used:
+            # another request under it is then refused as a reuse (or answered the old reply).
+            other = "describe" if op != "describe" else "status"
+            reuse = self._send(_request(other, {}, msg_id), msg_id, other)
+            if reuse.result is not None:
+                finding = ("pass", f"{op} answered internal twice; the retry was executed "
+                                   f"again (the reply was not kept)")
+            else:
+                finding = ("fail", f"{op} answered {first.show()}; its reply was kept: the "
+                                   f"retry with its msg_id got {second.show()} and {other} "
+                                   f"under the same msg_id got {reuse.show()}, so a retry "
+                                   f"never reaches the rig")
+        else:
+            return second
+        if self._internal is None:
+            self._internal = finding
+        return second
 
     def _expect_error(self, rule: str, data: bytes, msg_id: str, kind: str, *, echo: str | None) -> bool:
         """Send a frame that must be refused with ``kind``; record the rule; True if it passed."""
@@ -369,6 +415,8 @@ class Probe:
                 self._skip_moving(reason)
             else:
                 self._moving_rules(status)
+        if self._internal is not None:
+            self._record("internal", *self._internal)
         self._instance_rule()
         return self.findings
 

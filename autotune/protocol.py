@@ -42,8 +42,15 @@ bus client's resends and the loop's later retries after a timeout, a ``busy`` or
 ``internal`` reply or an interlock), so a rig that keeps its replies makes every retry safe: a
 request it already executed is answered from its cache, never run again. Replies of kind
 ``busy`` and ``interlock`` say that nothing was done: a rig must not keep them, so that the same
-request sent again once the rig is free is executed. Every other reply (results and the other
-error kinds) must be kept. autotune's server does exactly this.
+request sent again once the rig is free is executed. A reply of kind ``internal`` says that the
+rig failed while executing the request, not that the request was done: a rig must not keep it
+when the request did not complete (its driver or hardware call failed), so that the same
+request sent again reaches the rig again and may succeed; autotune retries it like a timeout.
+When the request did run and only its result could not be read back or sent (a read-back after
+the move, a malformed result of a completed acquisition), the rig must keep its ``internal``
+reply: running the request again would act twice (an acquisition counted twice). Every other
+reply (results and the other error kinds) must be kept. autotune's server does exactly this,
+and ``autotune probe`` checks it whenever the rig answers ``internal`` (rule ``internal``).
 
 Error kinds (``error.kind``), see :class:`ErrorKind`:
 
@@ -55,7 +62,9 @@ out_of_range          a set-point is outside its limits, or the step from the va
                       larger than ``max_step``; the detail names set-point, limit and value
 busy                  the rig cannot take the request now; retry later
 interlock             a hardware interlock is set; nothing was changed
-internal              the rig failed while executing the request
+internal              the rig failed while executing the request; it did not complete
+                      (the same request sent again is executed again) unless it ran and
+                      only its result failed (then the reply is kept, see Idempotency)
 unsupported_version   ``proto`` is not 1
 ===================== ==========================================================================
 

@@ -26,11 +26,12 @@ the server answers with ``internal``.
 
 from __future__ import annotations
 
+import contextlib
 import math
 import numbers
 import time
 import types
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -40,6 +41,7 @@ from autotune import protocol
 from autotune.channels import ChannelInfo, ChannelMap, channel_map_from_table, identity_channel_map
 from autotune.driver import COUNT_STATES, FIELDS, SIMULATED_OPS
 from autotune.errors import BadRequest, Busy, ConfigError, InterlockSet
+from autotune.server import mark_ran
 
 __all__ = ["ServedDriver", "DriverDescription", "DriverStatus", "DriverResultError",
            "parse_driver_description"]
@@ -49,6 +51,17 @@ _log = structlog.get_logger(__name__)
 
 class DriverResultError(RuntimeError):
     """A driver method returned something other than the interface asks (answered ``internal``)."""
+
+
+@contextlib.contextmanager
+def _acted() -> Iterator[None]:
+    """The part of an op after the driver acted (read-backs, result checks): whatever fails
+    there is marked as a request that ran, so the server keeps its ``internal`` reply and never
+    runs the request twice (:func:`autotune.server.mark_ran`)."""
+    try:
+        yield
+    except BaseException as exc:
+        raise mark_ran(exc)
 
 
 def _is_real(value: object) -> bool:
@@ -351,10 +364,11 @@ class ServedDriver:
             # Until the driver returns, what is in force is whatever the read-back says.
             self._commanded.pop(name, None)
         self._driver.apply(dict(channels))
-        for name, value in setpoints.items():
-            self._commanded[name] = (float(value), channels[self._map[name].channel])
-        after = self._read_status()
-        in_force = self._in_force(after)
+        with _acted():
+            for name, value in setpoints.items():
+                self._commanded[name] = (float(value), channels[self._map[name].channel])
+            after = self._read_status()
+            in_force = self._in_force(after)
         return {"setpoints": {name: v.setpoint for name, v in in_force.items()}, "clock": after.clock}
 
     def acquire(self, field: str, ramsey_phase: float, shots: int) -> dict[str, Any]:
@@ -376,12 +390,14 @@ class ServedDriver:
         self._refuse_if_not_ready("acquire", self._read_status())
         where = "driver.acquire()"
         result = self._driver.acquire(field, float(ramsey_phase), int(shots))
-        raw = _need(result, "counts", where)
-        counts = {state: _count(raw, state, f"{where}.counts") for state in COUNT_STATES}
-        t_start, t_end = _real(result, "t_start", where), _real(result, "t_end", where)
-        if t_end < t_start:
-            raise DriverResultError(f"{where}: expected t_end >= t_start, got {t_start!r} and {t_end!r}")
-        after = self._in_force(self._read_status())
+        with _acted():
+            raw = _need(result, "counts", where)
+            counts = {state: _count(raw, state, f"{where}.counts") for state in COUNT_STATES}
+            t_start, t_end = _real(result, "t_start", where), _real(result, "t_end", where)
+            if t_end < t_start:
+                raise DriverResultError(f"{where}: expected t_end >= t_start, got {t_start!r} "
+                                        f"and {t_end!r}")
+            after = self._in_force(self._read_status())
         return {"counts": counts, "shots": int(shots), "t_start": t_start, "t_end": t_end,
                 "setpoints": {name: v.setpoint for name, v in after.items()}}
 
@@ -389,9 +405,10 @@ class ServedDriver:
         """Send the safe channel values to the driver's safe procedure; the ``safe`` result."""
         self._commanded.clear()
         self._driver.safe(self._map.safe_channels())
-        for name, m in self._map.setpoints.items():
-            self._commanded[name] = (m.safe, m.channel_safe)
-        in_force = self._in_force(self._read_status())
+        with _acted():
+            for name, m in self._map.setpoints.items():
+                self._commanded[name] = (m.safe, m.channel_safe)
+            in_force = self._in_force(self._read_status())
         self._log.info("safe_setpoints_applied", setpoints={n: v.setpoint for n, v in in_force.items()})
         return {"setpoints": {name: v.setpoint for name, v in in_force.items()}}
 

@@ -6,7 +6,9 @@ or the bundled simulated rig's driver (``autotune rig``). It answers every reque
 not, with one reply; bad input never stops it. A request repeated with a ``msg_id`` it has
 answered gets the cached reply bytes and is not executed again (bounded LRU cache); replies of
 kind ``busy`` and ``interlock`` are never kept, so the same request sent again once the rig is
-free is executed. Errors a driver raises from the vocabulary of :mod:`autotune.driver` become
+free is executed, nor are ``internal`` replies to a request whose execution failed, so that a
+retry reaches the driver again (an ``internal`` reply to a request that ran, its result
+unreadable, is kept: see :func:`mark_ran`). Errors a driver raises from the vocabulary of :mod:`autotune.driver` become
 their error kinds; any other exception, ``BaseException`` included (``SystemExit``,
 ``KeyboardInterrupt``, ``GeneratorExit``), is ``internal`` and the server keeps serving. Every
 result of ``describe``, ``status``, ``apply``, ``acquire`` and ``safe`` carries the server's
@@ -55,6 +57,8 @@ __all__ = [
     "RigServer",
     "LocalRig",
     "write_ready_file",
+    "mark_ran",
+    "request_ran",
 ]
 
 _log = structlog.get_logger(__name__)
@@ -64,7 +68,26 @@ DEFAULT_BIND = "tcp://127.0.0.1:5560"
 
 _POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag again
 _BATCH = 64  # messages taken per wake-up before due replies are sent
-_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})  # replies never replayed
+# Refusals never replayed: nothing was done. An internal reply is kept only for a request that
+# ran (mark_ran).
+_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})
+_RAN_ATTRIBUTE = "autotune_request_ran"
+
+
+def mark_ran(exc: BaseException) -> BaseException:
+    """Mark ``exc`` as raised after the rig acted on the request (a read-back or a result check
+    failed once the driver's call returned): its ``internal`` reply is kept in the replay cache,
+    so the request is never run twice. Returns ``exc``."""
+    try:
+        setattr(exc, _RAN_ATTRIBUTE, True)
+    except AttributeError:  # an exception without a __dict__ cannot carry the mark
+        pass
+    return exc
+
+
+def request_ran(exc: BaseException) -> bool:
+    """True if ``exc`` was marked by :func:`mark_ran`."""
+    return bool(getattr(exc, _RAN_ATTRIBUTE, False))
 _INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
 _HANDSHAKE_EVENTS = (
     zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
@@ -490,9 +513,11 @@ class RigServer:
             self._cache.move_to_end(request.msg_id)
             self._log.info("request_replayed", op=request.op.value, msg_id=request.msg_id)
             return cached[1], True
-        reply, kind = self._execute(request)
-        # busy and interlock mean nothing was done: the same request sent again is executed.
-        if kind not in _NOT_KEPT:
+        reply, kept = self._execute(request)
+        # busy and interlock mean nothing was done, internal that it did not complete: the same
+        # request sent again is executed. An internal reply to a request that ran (its result
+        # could not be read or sent) is kept: running it again would act twice.
+        if kept:
             self._remember(request.msg_id, digest, reply)
         return reply, False
 
@@ -501,34 +526,40 @@ class RigServer:
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
-    def _execute(self, request: protocol.Request) -> tuple[bytes, ErrorKind | None]:
+    def _execute(self, request: protocol.Request) -> tuple[bytes, bool]:
+        """Run one request; its reply and whether the replay cache keeps it (see the module
+        notes: not for busy, interlock, or internal when the request did not complete)."""
         handler = self._dispatch.get(request.op)
         if handler is None:
             kind = ErrorKind.UNKNOWN_OP
             detail = (f"op: {request.op.value!r} is offered by simulated rigs only; this rig offers "
                       f"{', '.join(op.value for op in self._dispatch)}")
             self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id, kind=kind.value)
-            return protocol.encode_error(request.msg_id, kind, detail), kind
+            return protocol.encode_error(request.msg_id, kind, detail), True
         try:
             result = handler(request.args)
         except DriverRefusal as exc:
             kind, detail = ErrorKind(exc.kind), str(exc)
+            kept = kind not in _NOT_KEPT
         except BaseException as exc:  # noqa: BLE001 - the server must answer whatever the rig does
             # SystemExit, KeyboardInterrupt and GeneratorExit from a driver are its failures
             # too: the server's own stop never raises here (its signal handlers only ask
             # serve() to return), so nothing a driver raises may end it.
+            kept = request_ran(exc)
             log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
-            log.exception("rig_failed")
+            log.exception("rig_failed", request_ran=kept)
             kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"
         else:
             try:
-                return protocol.encode_result(request.msg_id, result), None
+                return protocol.encode_result(request.msg_id, result), True
             except ValueError as exc:
+                # The request ran; only its result cannot be sent: kept, never run twice.
                 log = self._log.bind(op=request.op.value, msg_id=request.msg_id)
                 log.error("result_not_encodable", error=str(exc))
-                return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc)), ErrorKind.INTERNAL
-        self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id, kind=kind.value, detail=detail)
-        return protocol.encode_error(request.msg_id, kind, detail), kind
+                return protocol.encode_error(request.msg_id, ErrorKind.INTERNAL, str(exc)), True
+        self._log.info("request_refused", op=request.op.value, msg_id=request.msg_id,
+                       kind=kind.value, detail=detail, kept=kept)
+        return protocol.encode_error(request.msg_id, kind, detail), kept
 
 
 def _digest(payload: bytes) -> bytes:

@@ -5,6 +5,9 @@
   never reached the rig leaves no journal (its resume says so).
 - ``autotune serve`` survives a driver raising ``SystemExit``, ``KeyboardInterrupt`` or
   ``GeneratorExit``: each is answered ``internal`` and the server keeps serving.
+- An ``internal`` reply (the driver failed) is not kept: the retry with the same ``msg_id``
+  reaches the driver again, so a driver failing once does not end a calibration, and every
+  shot the rig took is in the journal once.
 """
 
 from __future__ import annotations
@@ -20,6 +23,7 @@ from autotune.bus import BusClient
 from autotune.errors import RigRefused
 from autotune.journal import JOURNAL_NAME, read_journal
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
+from journal_checks import check_invariants, journal_shots
 from rig_process import REPO, STOP_TIMEOUT_S, ServerProcess, spawn_server
 
 #: The bundled simulated driver, failing on the calls named in its ``fail`` option
@@ -160,5 +164,31 @@ def test_serve_survives_a_driver_raising_systemexit_keyboardinterrupt_generatore
         assert len(server.wait_for_event("rig_failed")) == 3
         server.process.send_signal(signal.SIGTERM)
         assert server.process.wait(timeout=STOP_TIMEOUT_S) == 0
+    finally:
+        server.stop()
+
+
+def test_a_driver_failing_once_does_not_end_a_calibration(tmp_path):
+    """A driver failing once on its fifth acquisition and once on its second apply: each is
+    answered internal, not kept, and the loop's retry with the same msg_id runs it again; the
+    calibration finishes (not exit 3), its journal keeps its invariants and holds every shot
+    the rig counted."""
+    config = flaky_driver_toml(tmp_path / "driver", "acquire:5:RuntimeError",
+                               "apply:2:OSError")
+    server = spawn_server(tmp_path, "serve", config=config, seed=None, command="serve")
+    try:
+        run = tmp_path / "run"
+        calibration = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                                  recovery={"retry_wait_s": 0.1})
+        done = autotune("calibrate", "--config", str(calibration), "--out", str(run))
+        assert done.returncode in (0, 4), done.stderr[-3000:]
+        records = read_journal(run / JOURNAL_NAME)
+        check_invariants(records)
+        retries = [r for r in records if r["type"] == "decision" and r["what"] == "retry"]
+        assert {r["op"] for r in retries} == {"acquire", "apply"}, retries
+        assert all("internal" in r["reason"] for r in retries)
+        with BusClient(server.endpoint, timeout_s=5.0, retries=1, backoff_s=0.1) as client:
+            assert client.status().shots_total == journal_shots(records)
+        assert len(server.wait_for_event("rig_failed")) == 2
     finally:
         server.stop()

@@ -95,6 +95,52 @@ def test_unexpected_rig_failure_maps_to_internal(server, rig, monkeypatch):
     assert _ask(server, Op.DESCRIBE, {})["ok"] is True
 
 
+def test_an_internal_reply_of_a_failed_request_is_not_kept(server, rig, monkeypatch):
+    """A driver failing once in acquire: its internal reply is not kept, so the same request
+    (same msg_id) sent again runs and is counted once (protocol.py, Idempotency)."""
+    good, calls = rig.acquire, []
+
+    def fails_once(*args: object, **kwargs: object) -> dict:
+        calls.append(args)
+        if len(calls) == 1:
+            raise RuntimeError("trigger lost")
+        return good(*args, **kwargs)
+
+    monkeypatch.setattr(rig, "acquire", fails_once)
+    request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 25},
+                                      "a1" * 16)
+    assert json.loads(server.handle(request))["error"]["kind"] == "internal"
+    retried = server.handle(request)
+    assert json.loads(retried)["ok"] is True
+    assert server.handle(request) == retried  # the result is kept: never run a third time
+    assert len(calls) == 2 and rig.status()["shots_total"] == 25
+
+
+def test_an_internal_reply_of_a_request_that_ran_is_kept(server, rig, monkeypatch):
+    """The acquisition ran but its read-back failed: the internal reply is kept, the same
+    request sent again gets it back and the rig acquires once (never twice)."""
+    good_status, acquired = rig.status, []
+    good_acquire = rig.acquire
+
+    def acquire(*args: object, **kwargs: object) -> dict:
+        acquired.append(args)
+        return good_acquire(*args, **kwargs)
+
+    def status_fails_after_acquiring() -> dict:
+        if acquired:
+            raise OSError("read-back lost")
+        return good_status()
+
+    monkeypatch.setattr(rig, "acquire", acquire)
+    monkeypatch.setattr(rig, "status", status_fails_after_acquiring)
+    request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 25},
+                                      "b2" * 16)
+    first = server.handle(request)
+    assert json.loads(first)["error"]["kind"] == "internal"
+    assert server.handle(request) == first
+    assert len(acquired) == 1
+
+
 def test_fault_table_with_unknown_key_is_refused():
     """A [faults] key the server does not know is refused naming file and key."""
     with pytest.raises(ConfigError) as info:

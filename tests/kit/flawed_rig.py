@@ -7,6 +7,10 @@ It serves the example lab driver through the generic server with exactly one fla
 ``unknown_op_bad_request`` an unknown op is answered bad_request instead of unknown_op
 ``ignores_steps``          a set-point step larger than max_step is applied
 ``no_instance``            results carry no rig identity (allowed: the probe only warns)
+``keeps_internal``         its driver fails once, on the first acquisition, and the server keeps
+                           that ``internal`` reply (a retry never reaches the driver again)
+``fails_once``             no flaw of the server: its driver fails once, on the first
+                           acquisition (a conforming server answers the retry afresh)
 
 Usage: ``python flawed_rig.py FLAW READY_FILE``; it listens on a free loopback port, writes the
 endpoint to READY_FILE and serves until SIGTERM.
@@ -34,7 +38,8 @@ from autotune.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
 from autotune.served import ServedDriver  # noqa: E402
 from autotune.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
 
-FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance")
+FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance",
+         "keeps_internal", "fails_once")
 
 
 class _Server(RigServer):
@@ -45,6 +50,10 @@ class _Server(RigServer):
     def _remember(self, msg_id: str, digest: bytes, reply: bytes) -> None:
         if self._flaw != "replays_nothing":
             super()._remember(msg_id, digest, reply)
+
+    def _execute(self, request: Any) -> tuple[bytes, bool]:
+        reply, kept = super()._execute(request)
+        return reply, kept or self._flaw == "keeps_internal"
 
     def _identified(self, result: Any) -> dict[str, Any]:
         return dict(result) if self._flaw == "no_instance" else super()._identified(result)
@@ -84,13 +93,26 @@ class _StepBlind(ServedDriver):
             self._map = strict
 
 
+class _FailsOnce(LabDriver):
+    """The example driver, failing on its first acquisition (before acquiring anything)."""
+
+    failed = False
+
+    def acquire(self, field: str, ramsey_phase: float, shots: int) -> Any:
+        if not self.failed:
+            self.failed = True
+            raise RuntimeError("the sequencer dropped its trigger (on purpose, once)")
+        return super().acquire(field, ramsey_phase, shots)
+
+
 def main() -> int:
     flaw, ready = sys.argv[1], Path(sys.argv[2])
     if flaw not in FLAWS:
         print(f"unknown flaw {flaw!r}; expected one of {FLAWS}", file=sys.stderr)
         return 2
     config = load_driver_config(REPO / "examples" / "lab_driver" / "DRIVER.toml")
-    driver = LabDriver(**config.options)
+    driver_class = _FailsOnce if flaw in ("keeps_internal", "fails_once") else LabDriver
+    driver = driver_class(**config.options)
     served_class = _StepBlind if flaw == "ignores_steps" else ServedDriver
     served = served_class(driver, config.setpoints, source=str(config.path))
     server = _Server(flaw, served, "tcp://127.0.0.1:0", faults=FaultConfig())

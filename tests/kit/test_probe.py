@@ -140,6 +140,22 @@ def test_broken_server_is_caught(flawed, flaw: str, rules: set[str]):
     assert failed == rules, done.stdout
 
 
+def test_a_retry_after_internal_reaches_the_driver_again(flawed):
+    """A driver failing once on the first acquisition: the probe retries with the same msg_id,
+    a conforming server runs it again (acquire and internal pass, exit 0); a server that keeps
+    the internal reply fails the internal rule (protocol.py, Idempotency)."""
+    done = _probe(flawed("fails_once"), "--yes")
+    outcomes = _outcomes(done.stdout)
+    assert done.returncode == 0, done.stdout
+    assert outcomes["internal"] == "PASS" and outcomes["acquire"] == "PASS", done.stdout
+    done = _probe(flawed("keeps_internal"), "--yes")
+    outcomes = _outcomes(done.stdout)
+    assert done.returncode == 1, done.stdout
+    assert outcomes["internal"] == "FAIL", done.stdout
+    line = next(line for line in done.stdout.splitlines() if line.startswith("FAIL  internal"))
+    assert "its reply was kept" in line and "bad_request" in line
+
+
 def test_server_without_instance_is_a_warning_only(flawed):
     """No rig identity is allowed by the protocol: a WARN line, exit status 0."""
     done = _probe(flawed("no_instance"), "--yes")
