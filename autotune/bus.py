@@ -23,6 +23,11 @@ rig's described repetition rate, so a long acquisition never times out by constr
 One logical operation keeps one ``msg_id``: pass ``msg_id=`` to repeat a request after this
 client gave up on it (the rig answers from its replay cache if it executed it already).
 
+A stop: given a ``stop`` event (set by the CLI's signal handler), every wait looks at it at
+least every :data:`_STOP_POLL_S`; once it is set, the call in flight is abandoned (its socket
+closed) with :class:`~autotune.errors.Interrupted` naming the op and its ``msg_id``, and so is
+every later call but ``safe``, which then gets one bounded try of ``stop_safe_s`` in all.
+
 A client is not thread-safe: use one per thread.
 """
 
@@ -30,6 +35,7 @@ from __future__ import annotations
 
 import contextlib
 import math
+import threading
 import time
 import types
 from collections.abc import Iterator, Mapping
@@ -45,6 +51,7 @@ from autotune import protocol
 from autotune.errors import (
     ConfigError,
     ConfigErrors,
+    Interrupted,
     LimitError,
     ProtocolError,
     RigError,
@@ -63,6 +70,9 @@ _BACKOFF_CAP_S = 2.0
 
 _CLOCK_SLACK_S = 1e-9
 """A clock may read this much earlier than the last one seen (float rounding only), s."""
+
+_STOP_POLL_S = 0.2
+"""Longest wait between two looks at the stop event, s."""
 
 
 
@@ -153,6 +163,11 @@ class BusClient:
     source : str, optional
         The configuration file the limits came from, named (with the key
         ``setpoints.NAME...``) when :meth:`describe` finds them incompatible with the rig's.
+    stop : threading.Event, optional
+        A stop signal: once set, a call in flight is abandoned and later calls raise
+        :class:`~autotune.errors.Interrupted`, except ``safe`` (see the module notes).
+    stop_safe_s : float
+        The whole wait of a ``safe`` asked after ``stop`` was set, s (> 0).
 
     Raises
     ------
@@ -177,6 +192,8 @@ class BusClient:
         limits: Mapping[str, SetpointLimit] | None = None,
         context: zmq.Context | None = None,
         source: str = "<BusClient>",
+        stop: threading.Event | None = None,
+        stop_safe_s: float = 10.0,
     ) -> None:
         def bad(key: str, expected: str, got: object) -> ConfigError:
             return ConfigError("<BusClient>", key, expected, got)
@@ -193,6 +210,10 @@ class BusClient:
             math.isfinite(backoff_s) and backoff_s >= 0
         ):
             raise bad("backoff_s", "a finite number >= 0", backoff_s)
+        if isinstance(stop_safe_s, bool) or not isinstance(stop_safe_s, (int, float)) or not (
+            math.isfinite(stop_safe_s) and stop_safe_s > 0
+        ):
+            raise bad("stop_safe_s", "a finite number > 0", stop_safe_s)
         if curve is not None and not isinstance(curve, CurveClientKeys):
             raise bad("curve", "CurveClientKeys or None", type(curve).__name__)
         configured: dict[str, SetpointLimit] = {}
@@ -209,6 +230,8 @@ class BusClient:
         self._curve = curve
         self._configured = types.MappingProxyType(configured)
         self._source = str(source)
+        self._stop = stop
+        self._stop_safe_s = float(stop_safe_s)
         self._limits: Mapping[str, SetpointLimit] = self._configured
         self._in_force: dict[str, float] = {}
         # The watch on the rig's identity, started by describe().
@@ -378,7 +401,7 @@ class BusClient:
             applied = protocol.parse_applied(self._call(Op.APPLY, {"setpoints": wanted},
                                                         msg_id=msg_id))
             self._watch(applied.instance, applied.clock, "apply")
-        except RigError:
+        except (RigError, Interrupted):
             # It may have been applied without our hearing of it: the next step check asks first.
             self._in_force.clear()
             self._applied = None
@@ -456,7 +479,7 @@ class BusClient:
         """
         try:
             applied = protocol.parse_safe(self._call(Op.SAFE, {}, msg_id=msg_id))
-        except RigError:
+        except (RigError, Interrupted):
             self._in_force.clear()
             self._applied = None
             raise
@@ -544,24 +567,55 @@ class BusClient:
     def _pause_s(self, attempt: int) -> float:
         return min(self._backoff_s * 2 ** (attempt - 1), _BACKOFF_CAP_S) if attempt > 0 else 0.0
 
+    def _stopped(self) -> bool:
+        return self._stop is not None and self._stop.is_set()
+
+    def _abandon(self, op: Op, msg_id: str) -> Interrupted:
+        """The call in flight is given up at a stop: its REQ socket cannot be reused."""
+        self._close_socket()
+        return Interrupted(f"stopped by signal: {op.value} to {self._endpoint} abandoned "
+                           f"(msg_id {msg_id})")
+
     def _call(self, op: Op, args: Mapping[str, Any], *, msg_id: str | None = None,
               timeout_s: float | None = None) -> dict[str, Any]:
         msg_id = msg_id if msg_id is not None else protocol.new_msg_id()
         data = protocol.encode_request(op, args, msg_id)
         timeout_ms = self._timeout_ms if timeout_s is None else max(1, int(round(timeout_s * 1000)))
+        # After a stop only safe goes out, once, within its own bound; a second signal is the
+        # CLI's to handle (it ends the process).
+        interruptible = op is not Op.SAFE
+        deadline = None
+        if self._stopped():
+            if interruptible:
+                raise self._abandon(op, msg_id)
+            deadline = time.monotonic() + self._stop_safe_s
         log = None  # bound on the first trouble only: the clean path stays cheap
         last_problem: ProtocolError | None = None
+        attempts = 0
         for attempt in range(self._retries + 1):
             if attempt > 0:
                 log = log or self._log.bind(op=op.value, msg_id=msg_id)
                 pause = self._pause_s(attempt)
+                if deadline is not None:
+                    pause = min(pause, max(0.0, deadline - time.monotonic()))
                 log.warning("bus_retry", retry=f"{attempt} of {self._retries}", pause_s=pause,
                             reason="malformed reply" if last_problem else "no reply")
-                time.sleep(pause)
+                if interruptible and self._stop is not None:
+                    if self._stop.wait(pause):
+                        raise self._abandon(op, msg_id)
+                else:
+                    time.sleep(pause)
+            wait_ms = timeout_ms
+            if deadline is not None:
+                wait_ms = int((deadline - time.monotonic()) * 1000)
+                if wait_ms <= 0:
+                    break
+                wait_ms = min(timeout_ms, wait_ms)
             if self._socket is None:
                 self._open()
                 (log or self._log.bind(op=op.value, msg_id=msg_id)).info("bus_reconnect", attempt=attempt)
-            frames = self._exchange(data, op, timeout_ms)
+            attempts += 1
+            frames = self._exchange(data, op, wait_ms, msg_id=msg_id if interruptible else None)
             if frames is None:
                 last_problem = None
                 # A REQ socket that missed its reply cannot send again: start a fresh one.
@@ -575,20 +629,29 @@ class BusClient:
                 last_problem = exc
                 log = log or self._log.bind(op=op.value, msg_id=msg_id)
                 log.warning("bus_malformed_reply", attempt=attempt, error=str(exc))
-        attempts = self._retries + 1
         if last_problem is not None:
             raise ProtocolError(
                 f"{op.value} to {self._endpoint}: no valid reply in {attempts} attempts; last: {last_problem}"
             ) from last_problem
+        if deadline is not None:
+            raise RigTimeout(f"{op.value} to {self._endpoint}: no reply within "
+                             f"{self._stop_safe_s:g} s after the stop signal, {attempts} "
+                             f"attempts (msg_id {msg_id})")
         raise RigTimeout(
             f"{op.value} to {self._endpoint}: no reply within {timeout_ms / 1000:g} s, "
             f"{attempts} attempts (msg_id {msg_id})"
         )
 
-    def _exchange(self, data: bytes, op: Op, timeout_ms: int) -> list[bytes] | None:
-        """Send one request and wait for its reply frames; ``None`` if none came within the bound."""
+    def _exchange(self, data: bytes, op: Op, timeout_ms: int, *,
+                  msg_id: str | None = None) -> list[bytes] | None:
+        """Send one request and wait for its reply frames; ``None`` if none came within the bound.
+
+        With ``msg_id`` and a stop event the wait looks at the event every
+        :data:`_STOP_POLL_S` and abandons the request once it is set."""
         socket = self._socket
         assert socket is not None
+        if msg_id is not None and self._stop is not None:
+            return self._exchange_watching(socket, data, op, timeout_ms, msg_id)
         with _zmq_errors(self._endpoint, op.value):
             try:
                 socket.send(data, zmq.NOBLOCK)
@@ -610,3 +673,27 @@ class BusClient:
             finally:
                 if receive_ms != self._timeout_ms:
                     socket.setsockopt(zmq.RCVTIMEO, self._timeout_ms)
+
+    def _exchange_watching(self, socket: zmq.Socket, data: bytes, op: Op, timeout_ms: int,
+                           msg_id: str) -> list[bytes] | None:
+        """:meth:`_exchange` in slices of at most :data:`_STOP_POLL_S`, watching the stop."""
+        assert self._stop is not None
+        deadline = time.monotonic() + timeout_ms / 1000
+
+        def wait(event: int) -> bool:
+            while True:
+                if self._stop.is_set():  # type: ignore[union-attr]
+                    raise self._abandon(op, msg_id)
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    return False
+                if socket.poll(max(1, int(min(left, _STOP_POLL_S) * 1000)), event):
+                    return True
+
+        with _zmq_errors(self._endpoint, op.value):
+            if not wait(zmq.POLLOUT):
+                return None
+            socket.send(data, zmq.NOBLOCK)
+            if not wait(zmq.POLLIN):
+                return None
+            return socket.recv_multipart(zmq.NOBLOCK)

@@ -241,11 +241,28 @@ def _progress_display(ns: argparse.Namespace) -> ProgressDisplay:
 
 # -- signals -----------------------------------------------------------------------------
 
-def _install_stop_handlers() -> threading.Event:
+def _install_stop_handlers(at_once: Callable[[], str] = lambda: "") -> threading.Event:
+    """SIGINT/SIGTERM of a command that acts on a rig: the first sets the returned event (the
+    call in flight is abandoned within a fraction of a second, then ``safe`` is tried within
+    ``[recovery] safe_on_stop_s``); a second one ends the process at once (exit 130), after
+    printing what that leaves and ``at_once()`` (which may also clean up: the resume hint)."""
     stop = threading.Event()
 
     def handler(signum: int, _frame: object) -> None:
-        _log.warning("stop_requested", signal=signal.Signals(signum).name)
+        if stop.is_set():
+            try:
+                more = at_once()
+            except Exception as exc:  # noqa: BLE001 - the exit must happen whatever
+                more = f" ({type(exc).__name__}: {exc})"
+            # os.write: a print could be re-entered while the main thread is printing.
+            os.write(2, (f"autotune: stopped at once by a second signal "
+                         f"({signal.Signals(signum).name}): the rig did NOT confirm its safe "
+                         f"set-points; check it before leaving it; the journal keeps every "
+                         f"record written.{more}\n").encode())
+            os._exit(EXIT_INTERRUPTED)
+        _log.warning("stop_requested", signal=signal.Signals(signum).name,
+                     reason="abandoning the call in flight, then safe set-points; a second "
+                            "signal stops at once")
         stop.set()
 
     signal.signal(signal.SIGINT, handler)
@@ -260,7 +277,7 @@ def _default_run_dir(command: str) -> Path:
     return Path("runs") / f"{command}-{stamp}"
 
 
-def _connect(config: RunConfig) -> Any:
+def _connect(config: RunConfig, stop: threading.Event | None = None) -> Any:
     from autotune.bus import BusClient, CurveClientKeys
     from autotune.protocol import SetpointLimit
 
@@ -272,7 +289,8 @@ def _connect(config: RunConfig) -> Any:
                                      max_step=sp.max_step) for sp in config.setpoints}
     return BusClient(config.bus.endpoint, timeout_s=config.bus.timeout_s,
                      retries=config.bus.retries, backoff_s=config.bus.backoff_s, curve=curve,
-                     limits=limits, source=config.source)
+                     limits=limits, source=config.source, stop=stop,
+                     stop_safe_s=config.recovery.safe_on_stop_s)
 
 
 def _summary(result: dict[str, Any]) -> str:
@@ -797,7 +815,7 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
     def body() -> int:
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
-        stop = _install_stop_handlers()
+        stop = _install_stop_handlers(lambda: f" Continue with: {hint()}" if hint() else "")
         # A resume of a run killed after its end record (or run twice): nothing moves; its
         # outcome is told again from the folder alone (the rig may be down), with its exit
         # status. One that ended without a result is refused by prepare (exit 2).
@@ -807,7 +825,7 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
             print(summary(ended.result))
             print(f"run folder: {run_dir}")
             return exit_code(ended.result)
-        with _connect(config) as rig:
+        with _connect(config, stop) as rig:
             prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
             print(CAUTION, file=sys.stderr)
             run_dir.mkdir(parents=True, exist_ok=True)
@@ -875,7 +893,14 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
         if out.exists() and any(out.iterdir()):
             raise JournalError(f"{out} is not empty; choose another --out")
         out.mkdir(parents=True, exist_ok=True)
-        stop = _install_stop_handlers()
+        rig_process: list[subprocess.Popen[bytes]] = []
+
+        def at_once() -> str:
+            for process in rig_process:  # its own session: no signal of ours reaches it
+                process.kill()
+            return " The simulated rig was stopped."
+
+        stop = _install_stop_handlers(at_once)
         seed = config.search.seed
         print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
               "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
@@ -890,6 +915,7 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
             process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
                                        stdout=subprocess.DEVNULL, stderr=rig_log,
                                        start_new_session=True)
+            rig_process.append(process)
             try:
                 endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
                 config = dataclasses.replace(
@@ -912,7 +938,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
     store = out / "last-good.json"
     rows = []
     exit_code = EXIT_OK
-    with _connect(config) as rig:
+    with _connect(config, stop) as rig:
         description = runner.opening_call("describe", rig.describe, config, rig, stop)
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")

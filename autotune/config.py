@@ -305,6 +305,7 @@ class RecoveryConfig:
     retry_wait_s: float
     interlock_poll_s: float
     interlock_max_wait_s: float
+    safe_on_stop_s: float = 10.0
 
 
 @dataclass(frozen=True)
@@ -605,6 +606,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         retry_wait_s=rec_t.number("retry_wait_s", 1.0, low=0.0, high=3600.0),
         interlock_poll_s=rec_t.number("interlock_poll_s", 5.0, low=0.0, high=3600.0, low_open=True),
         interlock_max_wait_s=rec_t.number("interlock_max_wait_s", 600.0, low=0.0, high=86400.0),
+        safe_on_stop_s=rec_t.number("safe_on_stop_s", 10.0, low=0.0, high=600.0, low_open=True),
     )
     rec_t.finish()
 

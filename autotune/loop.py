@@ -359,7 +359,7 @@ def _log_decision(what: str, reason: str, *, level: str = "info", **fields: Any)
 
 def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *, rig: Rig,
                        stop: threading.Event | None = None,
-                       sleep: Callable[[float], None] = time.sleep,
+                       sleep: Callable[[float], None] | None = None,
                        decide: Callable[..., None] | None = None,
                        msg_id: str | None = None) -> Any:
     """Run one logical rig operation with bounded retries, under one ``msg_id``.
@@ -385,8 +385,8 @@ def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *
         Asked for its ``status`` while an interlock is set.
     stop : threading.Event, optional
         A stop signal: checked before every attempt (:class:`Interrupted`).
-    sleep : callable
-        The wait between attempts (s).
+    sleep : callable, optional
+        The wait between attempts (s); by default one that ends early at ``stop``.
     decide : callable, optional
         ``decide(what, reason, **fields)`` records a retry or the give-up (the session's
         journal); by default they are only logged (before a run's journal exists).
@@ -394,6 +394,8 @@ def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *
         The operation's ``msg_id`` (default: a new one).
     """
     decide = decide if decide is not None else _log_decision
+    if sleep is None:
+        sleep = stop.wait if stop is not None else time.sleep
     msg_id = msg_id if msg_id is not None else new_msg_id()
     failures = 0
     while True:
@@ -401,6 +403,12 @@ def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *
             raise Interrupted("stopped by signal")
         try:
             return action(msg_id)
+        except Interrupted:
+            # A stop abandoned the call in flight: name its msg_id for the resume (an
+            # acquisition's or a move's request record holds it too).
+            decide("abandon", f"{what} abandoned at a stop signal; msg_id {msg_id} may or may "
+                              f"not have run", op=what, msg_id=msg_id)
+            raise
         except RigRefused as exc:
             if exc.kind == "interlock":
                 _wait_interlock(what, exc.detail, recovery, rig=rig, stop=stop, sleep=sleep,
@@ -459,8 +467,9 @@ class Session:
         The rig's describe reply (limits, repetition rate).
     stop : threading.Event
         Set by the CLI's signal handler; checked between acquisitions.
-    sleep : callable
-        Wall-clock wait used between retries (injectable for tests).
+    sleep : callable, optional
+        Wall-clock wait used between retries (injectable for tests); by default a wait that
+        ends early at a stop signal.
     progress : callable, optional
         A progress observer (:mod:`autotune.progress`), told a
         :class:`~autotune.progress.StageProgress` at the stage's start, after every
@@ -469,7 +478,7 @@ class Session:
 
     def __init__(self, rig: Rig, config: RunConfig, journal: Journal, description: Any,
                  stop: threading.Event | None = None,
-                 sleep: Callable[[float], None] = time.sleep,
+                 sleep: Callable[[float], None] | None = None,
                  progress: ProgressObserver | None = None) -> None:
         self.rig = rig
         self.config = config
@@ -478,7 +487,8 @@ class Session:
         self.limits = effective_limits(config, description)
         self.repetition_rate_hz = float(description.repetition_rate_hz)
         self.stop = stop if stop is not None else threading.Event()
-        self.sleep = sleep
+        # By default a wait between retries ends at a stop signal (the next look raises).
+        self.sleep = sleep if sleep is not None else self.stop.wait
         self.tally = _Tally()
         self.phases = ramsey_phases(config.measurement.ramsey_phases)
         self.current: dict[str, float] = {}
@@ -687,7 +697,7 @@ class Session:
             (self.log.info if expected else self.log.warning)(
                 "safe_setpoints_applied", reason=reason, setpoints=self.current)
             return True, ""
-        except RigError as exc:
+        except (RigError, Interrupted) as exc:
             self.journal.append("safe_failed", reason=reason, error=str(exc))
             self.log.error("safe_setpoints_failed", reason=reason, error=str(exc))
             return False, str(exc)
