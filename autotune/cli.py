@@ -66,6 +66,7 @@ from autotune.errors import (
     RigTimeout,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
+from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder, holder_if_running, holder_text
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -796,35 +797,47 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers()
-        # A resume of a run killed after its end record (or run twice): nothing moves; its
-        # outcome is told again from the folder alone (the rig may be down), with its exit
-        # status. One that ended without a result is refused by prepare (exit 2).
-        ended = already_ended(run_dir, command) if resume else None
-        if ended is not None and ended.result is not None:
-            print(f"autotune: {ended}; nothing was sent to the rig. Its result:", file=sys.stderr)
-            print(summary(ended.result))
-            print(f"run folder: {run_dir}")
-            return exit_code(ended.result)
-        with _connect(config) as rig:
-            prepared = prepare(rig, config, run_dir, resume=resume)
-            print(CAUTION, file=sys.stderr)
-            run_dir.mkdir(parents=True, exist_ok=True)
-            started.append(run_dir)
-            handler = _log_to_run_folder(run_dir)
-            try:
-                with _progress_display(ns) as progress:
-                    result = execute(prepared, rig, stop=stop, progress=progress)
-            finally:
-                logging.getLogger().removeHandler(handler)
-                handler.close()
-        print(summary(result))
-        print(f"run folder: {run_dir}")
-        return exit_code(result)
+        # One owner per run folder, from before the first request to the rig until the exit.
+        with hold_run_folder(run_dir, command):
+            return _act_on_rig_locked(ns, command, config, run_dir, resume, stop, prepare,
+                                      execute, summary, exit_code, started)
 
     def hint() -> str | None:
         return _resume_command(command, ns.config, started[0]) if started else None
 
     return _guarded(body, hint)
+
+
+def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, run_dir: Path,
+                       resume: bool, stop: threading.Event, prepare: Callable[..., Any],
+                       execute: Callable[..., dict[str, Any]],
+                       summary: Callable[[dict[str, Any]], str],
+                       exit_code: Callable[[dict[str, Any]], int], started: list[Path]) -> int:
+    """The body of :func:`_act_on_rig` once this process holds the run folder's lock."""
+    # A resume of a run killed after its end record (or run twice): nothing moves; its
+    # outcome is told again from the folder alone (the rig may be down), with its exit
+    # status. One that ended without a result is refused by prepare (exit 2).
+    ended = already_ended(run_dir, command) if resume else None
+    if ended is not None and ended.result is not None:
+        print(f"autotune: {ended}; nothing was sent to the rig. Its result:", file=sys.stderr)
+        print(summary(ended.result))
+        print(f"run folder: {run_dir}")
+        return exit_code(ended.result)
+    with _connect(config) as rig:
+        prepared = prepare(rig, config, run_dir, resume=resume)
+        print(CAUTION, file=sys.stderr)
+        run_dir.mkdir(parents=True, exist_ok=True)
+        started.append(run_dir)
+        handler = _log_to_run_folder(run_dir)
+        try:
+            with _progress_display(ns) as progress:
+                result = execute(prepared, rig, stop=stop, progress=progress)
+        finally:
+            logging.getLogger().removeHandler(handler)
+            handler.close()
+    print(summary(result))
+    print(f"run folder: {run_dir}")
+    return exit_code(result)
 
 
 def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, log: Path,
@@ -853,8 +866,6 @@ def _truth_block(rig: Any, chosen: dict[str, float]) -> dict[str, Any]:
 
 
 def _cmd_dry_run(ns: argparse.Namespace) -> int:
-    from autotune import runner
-
     def body() -> int:
         config_path = Path(ns.config) if ns.config else packaged_config("dry-run.toml")
         rig_config = Path(ns.rig_config) if ns.rig_config else packaged_config("sim-rig.toml")
@@ -867,39 +878,47 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
             config = dataclasses.replace(
                 config, search=dataclasses.replace(config.search, seed=ns.seed))
         out = Path(ns.out) if ns.out else _default_run_dir("dry-run")
-        if out.exists() and any(out.iterdir()):
-            raise JournalError(f"{out} is not empty; choose another --out")
-        out.mkdir(parents=True, exist_ok=True)
-        stop = _install_stop_handlers()
-        seed = config.search.seed
-        print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
-              "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
-        with tempfile.TemporaryDirectory() as tmp:
-            ready = Path(tmp) / "endpoint"
-            command = [sys.executable, "-m", "autotune.cli", "rig", "--config", str(rig_config),
-                       "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
-                       str(ready), "--log-level", "warning"]
-            # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
-            # session keeps a Ctrl-C at the terminal from stopping it before our safe request.
-            rig_log = (out / "rig.log").open("wb")
-            process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
-                                       stdout=subprocess.DEVNULL, stderr=rig_log,
-                                       start_new_session=True)
-            try:
-                endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
-                config = dataclasses.replace(
-                    config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
-                return _dry_run_stages(ns, config, out, endpoint, stop, runner)
-            finally:
-                process.terminate()
-                try:
-                    process.wait(timeout=10)
-                except subprocess.TimeoutExpired:
-                    process.kill()
-                    process.wait(timeout=10)
-                rig_log.close()
+        with hold_run_folder(out, "dry-run"):
+            if any(p.name not in (LOCK_NAME, HOLDER_NAME) for p in out.iterdir()):
+                raise JournalError(f"{out} is not empty; choose another --out")
+            return _dry_run_in(ns, config, config_path, rig_config, out)
 
     return _guarded(body)
+
+
+def _dry_run_in(ns: argparse.Namespace, config: RunConfig, config_path: Path, rig_config: Path,
+                out: Path) -> int:
+    """The body of ``dry-run`` once this process holds the lock of its folder ``out``."""
+    from autotune import runner
+
+    stop = _install_stop_handlers()
+    seed = config.search.seed
+    print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
+          "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
+    with tempfile.TemporaryDirectory() as tmp:
+        ready = Path(tmp) / "endpoint"
+        command = [sys.executable, "-m", "autotune.cli", "rig", "--config", str(rig_config),
+                   "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
+                   str(ready), "--log-level", "warning"]
+        # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
+        # session keeps a Ctrl-C at the terminal from stopping it before our safe request.
+        rig_log = (out / "rig.log").open("wb")
+        process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
+                                   stdout=subprocess.DEVNULL, stderr=rig_log,
+                                   start_new_session=True)
+        try:
+            endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
+            config = dataclasses.replace(
+                config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
+            return _dry_run_stages(ns, config, out, endpoint, stop, runner)
+        finally:
+            process.terminate()
+            try:
+                process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait(timeout=10)
+            rig_log.close()
 
 
 def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoint: str,
@@ -925,15 +944,17 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
             wall = time.monotonic()
-            prepared = runner.prepare(name, rig, config, run_dir, store=store)
-            handler = _log_to_run_folder(run_dir)
-            try:
-                with _progress_display(ns) as progress:
-                    result = runner.execute(prepared, rig, stop=stop, progress=progress,
-                                            extra={"dry_run": {"endpoint": endpoint}})
-            finally:
-                logging.getLogger().removeHandler(handler)
-                handler.close()
+            # Each stage's folder has its lock too: a resume of it meanwhile is refused.
+            with hold_run_folder(run_dir, "dry-run"):
+                prepared = runner.prepare(name, rig, config, run_dir, store=store)
+                handler = _log_to_run_folder(run_dir)
+                try:
+                    with _progress_display(ns) as progress:
+                        result = runner.execute(prepared, rig, stop=stop, progress=progress,
+                                                extra={"dry_run": {"endpoint": endpoint}})
+                finally:
+                    logging.getLogger().removeHandler(handler)
+                    handler.close()
             result["truth"] = _truth_block(rig, result["setpoints"])
             write_json_atomic(run_dir / RESULT_NAME, result)
             rows.append((name, result, time.monotonic() - wall))
@@ -1000,12 +1021,36 @@ def _cmd_track(ns: argparse.Namespace) -> int:
                        lambda r: EXIT_OK if r["status"] == "ended" else EXIT_BELOW_ACCEPTANCE)
 
 
+def _report_notes(path: Path, runs: Sequence[Path]) -> list[str]:
+    """What a reader must know before the report of ``path``: a run still being written (its
+    holder), and a damaged journal (where, what, and that the report stops before it)."""
+    from autotune.journal import JOURNAL_NAME, read_journal_prefix
+
+    notes = []
+    folders = list(dict.fromkeys([path, *runs]))
+    for folder in folders:
+        holder = holder_if_running(folder)
+        if holder is not None:
+            notes.append(f"{folder}: the run is still going ({holder_text(holder)}); this "
+                         f"report shows the records written so far")
+    for folder in runs:
+        if not (folder / JOURNAL_NAME).exists():
+            continue
+        records, damage = read_journal_prefix(folder / JOURNAL_NAME)
+        if damage is not None:
+            notes.append(f"{damage.where()}; this report shows the {len(records)} records "
+                         f"before it and nothing after it")
+    return notes
+
+
 def _cmd_report(ns: argparse.Namespace) -> int:
     from autotune import report
 
     def body() -> int:
         text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot,
                                    out=Path(ns.out) if ns.out is not None else None)
+        for note in _report_notes(Path(ns.run_dir), report.find_runs(Path(ns.run_dir))):
+            print(f"NOTE: {note}")
         print(text)
         return EXIT_OK
 

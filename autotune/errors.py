@@ -9,6 +9,8 @@
     │                              (outside the configured or described limits, or too large a step)
     ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
     ├── JournalError               a run folder or journal cannot be written, read or resumed
+    │   ├── RunAlreadyEnded        a resume of a run that already ended with a final status
+    │   └── RunFolderInUse         another live process holds the run folder's lock
     ├── Interrupted                the run was stopped by a signal (SIGINT/SIGTERM) and made safe
     └── RigError                   the rig, or the bus to it, failed
         ├── RigTimeout             no reply within the bound, after the capped retries
@@ -44,6 +46,7 @@ __all__ = [
     "EstimationError",
     "JournalError",
     "RunAlreadyEnded",
+    "RunFolderInUse",
     "Interrupted",
     "RigError",
     "RigTimeout",
@@ -128,6 +131,21 @@ class RunAlreadyEnded(JournalError):
         super().__init__(message)
         self.status = status
         self.result = result
+
+
+class RunFolderInUse(JournalError):
+    """Another live process holds the run folder's lock (see :mod:`autotune.runlock`).
+
+    Attributes
+    ----------
+    holder : dict or None
+        What the holder wrote about itself (``pid``, ``host``, ``user``, ``command``,
+        ``since``), None when its holder file cannot be read.
+    """
+
+    def __init__(self, message: str, holder: dict | None) -> None:
+        super().__init__(message)
+        self.holder = holder
 
 
 class Interrupted(AutotuneError):
