@@ -17,9 +17,10 @@ Exit codes
 1    internal error (a bug of autotune): the rig was sent to its safe set-points, the journal
      closed; the run can be resumed
 2    bad input: configuration, command line, missing or damaged files, a refused set-point,
-     a last good store that cannot be written
+     a last good store that cannot be written, a run folder in use by another process
 3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set,
-     a rig that kept answering with other set-points than those applied
+     a rig that kept answering with other set-points than those applied, a rig leased to
+     another client (``--wait-lease-s`` waits for it)
 4    the verified inversion is below the configured acceptance threshold
 130  stopped by SIGINT/SIGTERM (the message says whether the rig confirmed its safe
      set-points; the journal is closed and the run can be resumed)
@@ -63,6 +64,7 @@ from autotune.errors import (
     JournalError,
     LimitError,
     RigError,
+    RigLeased,
     RigTimeout,
 )
 from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
@@ -276,6 +278,20 @@ def _connect(config: RunConfig) -> Any:
                      limits=limits, source=config.source)
 
 
+def _claim_rig(rig: Any, command: str, wait_s: float) -> None:
+    """Take the rig's lease for this process before anything moves (kept renewed, released
+    when the client closes); a rig without leases goes on with one warning.
+
+    Raises
+    ------
+    RigLeased
+        Another client holds the rig (still, after ``wait_s`` seconds).
+    """
+    from autotune.bus import client_identity
+
+    rig.claim(client_identity(command), wait_s=wait_s)
+
+
 def _summary(result: dict[str, Any]) -> str:
     low, high = result["inversion_interval"]
     conf = round(100 * result["confidence"])
@@ -332,6 +348,14 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         if isinstance(exc, JournalError) and hint and "store" in str(exc):
             print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except RigLeased as exc:
+        print(f"autotune: {exc.detail}: another client is driving this rig; nothing was sent "
+              f"to it. Wait for that run to end, or let this command wait for the rig with "
+              f"--wait-lease-s SECONDS", file=sys.stderr)
+        hint = resume_hint()
+        if hint:
+            print(f"autotune: once the rig is free, continue with: {hint}", file=sys.stderr)
+        return EXIT_RIG
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)
         if (safe := _safe_message(exc)) is not None:
@@ -824,6 +848,7 @@ def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, 
         print(f"run folder: {run_dir}")
         return exit_code(ended.result)
     with _connect(config) as rig:
+        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
         prepared = prepare(rig, config, run_dir, resume=resume)
         print(CAUTION, file=sys.stderr)
         run_dir.mkdir(parents=True, exist_ok=True)
@@ -927,6 +952,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
     rows = []
     exit_code = EXIT_OK
     with _connect(config) as rig:
+        _claim_rig(rig, "dry-run", 0.0)
         description = rig.describe()
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
@@ -1153,6 +1179,7 @@ def _parser() -> argparse.ArgumentParser:
         group = p.add_mutually_exclusive_group()
         group.add_argument("--out", help="new run folder (default runs/<command>-<UTC time>)")
         group.add_argument("--resume", metavar="RUN_DIR", help="continue a killed run")
+        _add_wait_lease(p)
         p.set_defaults(handler=lambda ns, n=name: _cmd_stage(ns, n))
 
     dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
@@ -1180,6 +1207,7 @@ def _parser() -> argparse.ArgumentParser:
     track_out.add_argument("--out", help="new run folder (default runs/track-<UTC time>)")
     track_out.add_argument("--resume", metavar="TRACK_DIR",
                            help="continue a stopped night from its journal")
+    _add_wait_lease(track)
     # Options of the schedule-based track this command replaced: refused with a message.
     track.add_argument("--interval-s", default=None, help=argparse.SUPPRESS)
     track.add_argument("--cycles", default=None, help=argparse.SUPPRESS)
@@ -1198,6 +1226,14 @@ def _parser() -> argparse.ArgumentParser:
         _add_output_options(command, log_level=name not in ("rig", "serve"),
                             default=argparse.SUPPRESS)
     return parser
+
+
+def _add_wait_lease(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--wait-lease-s", type=_non_negative_seconds, default=0.0,
+                        metavar="SECONDS",
+                        help="when another client holds the rig's lease, wait up to SECONDS for "
+                             "it to be released or to run out (default 0: exit 3 at once, "
+                             "naming the holder)")
 
 
 def _add_output_options(parser: argparse.ArgumentParser, *, log_level: bool,

@@ -15,6 +15,7 @@
     └── RigError                   the rig, or the bus to it, failed
         ├── RigTimeout             no reply within the bound, after the capped retries
         ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
+        │   └── RigLeased          ``leased``: another client holds the rig's lease (names it)
         ├── ProtocolError          a reply (or request) does not follow the wire protocol
         └── RigMismatch            a reply does not match what this client applied or saw
             └── RigRestarted       the rig's identity changed or its clock went back: it restarted
@@ -51,6 +52,7 @@ __all__ = [
     "RigError",
     "RigTimeout",
     "RigRefused",
+    "RigLeased",
     "ProtocolError",
     "RigMismatch",
     "RigRestarted",
@@ -190,6 +192,25 @@ class RigRefused(RigError):
         self.kind = kind
         self.detail = detail
         super().__init__(f"rig refused ({kind}): {detail}")
+
+
+class RigLeased(RigRefused):
+    """The rig is leased to another client (error kind ``leased``): nothing was done. The
+    detail names the holder and when its lease runs out.
+
+    Attributes
+    ----------
+    holder : str or None
+        The holding client's identity, when the rig said it.
+    expires_in_s : float or None
+        Seconds until its lease runs out unless renewed, when the rig said it.
+    """
+
+    def __init__(self, detail: str, holder: str | None = None,
+                 expires_in_s: float | None = None) -> None:
+        super().__init__("leased", detail)
+        self.holder = holder
+        self.expires_in_s = expires_in_s
 
 
 class ProtocolError(RigError):

@@ -45,6 +45,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune import protocol
 from autotune.errors import ConfigError, DriverRefusal
+from autotune.lease import LeaseBook, LeaseHeld
 from autotune.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
 __all__ = [
@@ -63,7 +64,7 @@ DEFAULT_BIND = "tcp://127.0.0.1:5560"
 
 _POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag again
 _BATCH = 64  # messages taken per wake-up before due replies are sent
-_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})  # replies never replayed
+_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK, ErrorKind.LEASED})  # never replayed
 _INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
 _HANDSHAKE_EVENTS = (
     zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
@@ -288,6 +289,7 @@ class RigServer:
         if callable(getattr(rig, "thermal_step", None)):
             dispatch[Op.THERMAL_STEP] = lambda a: rig.thermal_step(a["shift_hz"])
         self._dispatch = types.MappingProxyType(dispatch)
+        self._leases = LeaseBook()
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -500,7 +502,44 @@ class RigServer:
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
+    def _lease_gate(self, request: protocol.Request) -> tuple[bytes, ErrorKind | None] | None:
+        """The reply of a ``claim`` or ``release``, or the ``leased`` refusal of an op another
+        client's lease reserves; None when the request goes on to the rig. A ``safe`` always
+        goes on, logged with who sent it."""
+        op, client = request.op, request.client
+        log = self._log.bind(op=op.value, msg_id=request.msg_id, client=client)
+        try:
+            if op is Op.CLAIM:
+                assert client is not None  # decode_request requires it
+                result = self._leases.claim(client, request.args["ttl_s"])
+                if not result["renewed"]:
+                    log.info("lease_claimed", ttl_s=result["ttl_s"])
+                return protocol.encode_result(request.msg_id, result), None
+            if op is Op.RELEASE:
+                assert client is not None
+                result = self._leases.release(client)
+                log.info("lease_released", released=result["released"])
+                return protocol.encode_result(request.msg_id, result), None
+            if op is Op.SAFE:
+                holder = self._leases.holder()
+                if holder is not None and holder.client != client:
+                    log.warning("safe_requested", holder=holder.client,
+                                reason="safe is open to every client; the lease stays with "
+                                       "its holder")
+                else:
+                    log.info("safe_requested", holder=None if holder is None else holder.client)
+                return None
+            self._leases.check(op, client)
+        except LeaseHeld as exc:
+            log.info("request_refused", kind=ErrorKind.LEASED.value, detail=str(exc))
+            extra = {"holder": exc.holder, "expires_in_s": round(exc.expires_in_s, 3)}
+            return protocol.encode_error(request.msg_id, ErrorKind.LEASED, str(exc), extra), \
+                ErrorKind.LEASED
+        return None
+
     def _execute(self, request: protocol.Request) -> tuple[bytes, ErrorKind | None]:
+        if (gated := self._lease_gate(request)) is not None:
+            return gated
         handler = self._dispatch.get(request.op)
         if handler is None:
             kind = ErrorKind.UNKNOWN_OP

@@ -8,6 +8,7 @@ import signal
 import socket
 import subprocess
 import sys
+import time
 from pathlib import Path
 from typing import Any
 
@@ -133,3 +134,52 @@ def test_a_second_dry_run_into_the_same_folder_is_refused(tmp_path: Path) -> Non
     assert refused.returncode == 2, refused.stderr
     assert f"process {holder.pid}" in refused.stderr and "in use" in refused.stderr
     assert not (out / "rig.log").exists()  # no rig was started
+
+
+def _raw(endpoint: str, op: str, client: str, args: dict[str, Any]) -> dict[str, Any]:
+    """One request as another client sends it (claimed by hand: never renewed)."""
+    import zmq
+
+    from autotune import protocol
+
+    with zmq.Context() as context, context.socket(zmq.REQ) as raw:
+        raw.setsockopt(zmq.LINGER, 0)
+        raw.setsockopt(zmq.RCVTIMEO, 10_000)
+        raw.connect(endpoint)
+        msg_id = protocol.new_msg_id()
+        raw.send(protocol.encode_request(protocol.Op(op), args, msg_id, client=client))
+        return protocol.decode_reply(raw.recv(), msg_id)
+
+
+def test_a_rig_leased_to_another_client_is_refused_or_waited_for(tmp_path: Path,
+                                                                  rig: ServerProcess) -> None:
+    """A calibration on a rig another client holds exits 3 naming it, with no run folder and
+    nothing moved; with --wait-lease-s it waits until the holder releases, then runs."""
+    config = tiny_config(tmp_path / "c.toml", rig.endpoint, tmp_path / "good.json")
+    carol = "carol@bench pid 77 (retune)"
+    _raw(rig.endpoint, "claim", carol, {"ttl_s": 600.0})
+    refused = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "a"),
+                       timeout=120)
+    assert refused.returncode == 3, refused.stderr[-3000:]
+    assert f"rig leased by {carol}" in refused.stderr
+    assert "--wait-lease-s" in refused.stderr and "CAUTION" not in refused.stderr
+    assert not (tmp_path / "a").exists()
+    err = tmp_path / "waiting.err"
+    with err.open("w") as stream:
+        waiting = start_autotune("calibrate", "--config", str(config), "--out",
+                                 str(tmp_path / "b"), "--wait-lease-s", "300", output=stream)
+        try:
+            deadline = time.monotonic() + 120
+            while "waiting_for_lease" not in err.read_text() and time.monotonic() < deadline:
+                assert waiting.poll() is None, err.read_text()
+                time.sleep(0.1)
+            assert "waiting_for_lease" in err.read_text()
+            assert _raw(rig.endpoint, "release", carol, {}) == {"released": True}
+            assert waiting.wait(timeout=600) == 0, err.read_text()[-3000:]
+        finally:
+            if waiting.poll() is None:
+                waiting.kill()
+                waiting.wait(timeout=10)
+    claims = [e["client"] for e in rig.events() if e.get("event") == "lease_claimed"]
+    assert claims[0] == carol and claims[-1] != carol and "(calibrate)" in claims[-1]
+    assert rig.wait_for_event("lease_released")
