@@ -720,7 +720,10 @@ def _probe_plan(description: Any, shots: int) -> str:
                  "nearest limit and a step of 1.5 max_step (a rig that wrongly executes them moves)")
     lines.append("  four malformed applies (NaN, infinities) that must be refused")
     lines.append(f"  four acquisitions of {shots} shots (one request sent twice, one refused)")
-    lines.append("  and it ends with safe (the rig's safe set-points)")
+    lines.append("  safe (the rig's safe set-points)")
+    lines.append("  the lease rules: a second identity of the probe claims, applies the values in "
+                 "force and acquires while the probe holds the rig (a conforming rig refuses "
+                 "them) and sends safe")
     return "\n".join(lines)
 
 

@@ -9,7 +9,10 @@ kind ``busy`` and ``interlock`` are never kept, so the same request sent again o
 free is executed. Errors a driver raises from the vocabulary of :mod:`autotune.driver` become
 their error kinds; any other exception is ``internal``. Every result of ``describe``,
 ``status``, ``apply``, ``acquire`` and ``safe`` carries the server's ``instance``, new at each
-start. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
+start. The protocol's lease (*One driver at a time*) is kept here, in a
+:class:`autotune.lease.LeaseBook`: ``claim`` and ``release`` are answered by the server, an
+op another client's lease reserves is refused ``leased`` without reaching the rig, and every
+``safe`` is logged with its sender. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
 exit after a number of messages. Optional CURVE encryption admits only clients whose public
 key is in an allowed folder; others get nothing and are logged.
 

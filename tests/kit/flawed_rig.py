@@ -7,6 +7,9 @@ It serves the example lab driver through the generic server with exactly one fla
 ``unknown_op_bad_request`` an unknown op is answered bad_request instead of unknown_op
 ``ignores_steps``          a set-point step larger than max_step is applied
 ``no_instance``            results carry no rig identity (allowed: the probe only warns)
+``no_lease``               a rig of the protocol's first edition: no claim, and the request key
+                           ``client`` refused as unknown (allowed: the probe only warns)
+``ignores_lease``          claims are granted, but other clients' moves and acquisitions executed
 
 Usage: ``python flawed_rig.py FLAW READY_FILE``; it listens on a free loopback port, writes the
 endpoint to READY_FILE and serves until SIGTERM.
@@ -34,7 +37,8 @@ from autotune.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
 from autotune.served import ServedDriver  # noqa: E402
 from autotune.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
 
-FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance")
+FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance",
+         "no_lease", "ignores_lease")
 
 
 class _Server(RigServer):
@@ -68,7 +72,20 @@ class _Server(RigServer):
             except RequestRejected as exc:
                 if exc.kind is ErrorKind.UNKNOWN_OP:
                     return protocol.encode_error(exc.msg_id, ErrorKind.BAD_REQUEST, exc.detail), False
+        if self._flaw == "no_lease":
+            try:
+                message = json.loads(payload)
+            except ValueError:
+                message = None
+            if isinstance(message, dict) and "client" in message:
+                return protocol.encode_error(str(message.get("msg_id", "")), ErrorKind.BAD_REQUEST,
+                                             "request: unknown key 'client'"), False
         return super()._handle(payload)
+
+    def _lease_gate(self, request: protocol.Request) -> Any:
+        if self._flaw == "ignores_lease" and request.op not in (Op.CLAIM, Op.RELEASE):
+            return None
+        return super()._lease_gate(request)
 
 
 class _StepBlind(ServedDriver):
