@@ -274,6 +274,7 @@ class Journal:
         self.run_dir = Path(run_dir)
         self.path = self.run_dir / JOURNAL_NAME
         self._seq = next_seq
+        self._failure: str | None = None
         try:
             # Unbuffered bytes: a record is one write, and a failed one can be taken back.
             self._handle = self.path.open("ab", buffering=0)
@@ -335,6 +336,10 @@ class Journal:
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
         """Append one record and flush it to disk before returning it."""
+        if self._failure is not None:
+            raise JournalError(f"cannot append to {self.path}: an earlier write failed "
+                               f"({self._failure}); the run stops here and can be resumed once "
+                               f"the disk is writable")
         if self._handle.closed:
             raise JournalError(f"{self.path} is closed")
         record = {"seq": self._seq, "type": record_type, "t_wall": utc_now(), **fields}
@@ -356,6 +361,10 @@ class Journal:
                 os.ftruncate(fd, before)
             except OSError:
                 pass  # the cut line stays last; readers and resumes leave it out
+            # After a failed write or fsync what reached the disk is uncertain (a retried fsync
+            # may report success without writing): this journal takes no further record.
+            self._failure = exc.strerror or str(exc)
+            self._handle.close()
             raise JournalError(f"cannot append to {self.path}: {exc}; the run stops here and "
                                f"can be resumed once the disk is writable") from exc
         self._seq += 1
