@@ -349,12 +349,15 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
             print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RigLeased as exc:
-        print(f"autotune: {exc.detail}: another client is driving this rig; nothing was sent "
-              f"to it. Wait for that run to end, or let this command wait for the rig with "
-              f"--wait-lease-s SECONDS", file=sys.stderr)
         hint = resume_hint()
-        if hint:
-            print(f"autotune: once the rig is free, continue with: {hint}", file=sys.stderr)
+        if not hint:
+            print(f"autotune: {exc.detail}: another client is driving this rig; nothing was "
+                  f"sent to it. Wait for that run to end, or let this command wait for the rig "
+                  f"with --wait-lease-s SECONDS", file=sys.stderr)
+        else:
+            print(f"autotune: {exc.detail}: this run lost the rig's lease (it could not renew it "
+                  f"in time) and stopped without sending the rig anywhere; the journal is "
+                  f"closed. Once the rig is free, continue with: {hint}", file=sys.stderr)
         return EXIT_RIG
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)

@@ -183,3 +183,30 @@ def test_a_rig_without_leases_works_with_one_warning(make_client: Callable[..., 
         stop.set()
         thread.join(timeout=10)
         context.term()
+
+
+def test_a_run_that_lost_its_lease_stops_without_sending_safe(
+        tmp_path, start_server: Callable[..., ServerProcess],
+        make_client: Callable[..., BusClient]) -> None:
+    """A client whose lease ran out (its keeper stalled) and was taken by another: its next
+    move is refused leased, the run ends aborted without a safe request (the rig is the other
+    client's now), and the journal says why."""
+    from autotune import runner
+    from autotune.journal import JOURNAL_NAME, read_journal
+    from test_resume import small_config
+
+    server = start_server()
+    client = make_client(server.endpoint, timeout_s=5.0)
+    assert client.claim("stalled pid 1 (calibrate)", ttl_s=1.0) is not None
+    client._keeper.stop()  # the process froze: nothing renews the lease any more
+    time.sleep(1.3)
+    other = make_client(server.endpoint)
+    assert other.claim("other pid 2 (retune)") is not None
+    with pytest.raises(RigLeased, match="other pid 2"):
+        runner.calibrate(client, small_config(), tmp_path / "run", store=tmp_path / "good.json")
+    records = read_journal(tmp_path / "run" / JOURNAL_NAME)
+    assert records[-1] == {**records[-1], "type": "end", "status": "aborted"}
+    assert not [r for r in records if r["type"] in ("safe", "safe_failed")]
+    abort = [r for r in records if r["type"] == "decision" and r["what"] == "abort"]
+    assert abort and "not sent to its safe set-points" in abort[-1]["reason"]
+    assert not [e for e in server.events() if e.get("event") == "safe_requested"]
