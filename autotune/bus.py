@@ -35,12 +35,15 @@ from __future__ import annotations
 
 import contextlib
 import math
+import os
+import re
 import threading
 import time
 import types
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from socket import gethostname
 from typing import Any
 
 import structlog
@@ -55,13 +58,15 @@ from autotune.errors import (
     LimitError,
     ProtocolError,
     RigError,
+    RigLeased,
     RigMismatch,
+    RigRefused,
     RigRestarted,
     RigTimeout,
 )
 from autotune.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
 
-__all__ = ["BusClient", "CurveClientKeys"]
+__all__ = ["BusClient", "CurveClientKeys", "LEASE_TTL_S", "client_identity"]
 
 _log = structlog.get_logger(__name__)
 
@@ -73,6 +78,95 @@ _CLOCK_SLACK_S = 1e-9
 
 _STOP_POLL_S = 0.2
 """Longest wait between two looks at the stop event, s."""
+LEASE_TTL_S = 20.0
+"""Time to live of the lease autotune claims, s: renewed every third of it while the process
+lives, so a client that dies frees the rig within this time."""
+
+
+def client_identity(command: str) -> str:
+    """This process as a lease holder: ``USER@HOST pid PID (COMMAND)``, printable ASCII."""
+    try:
+        user = os.getlogin()
+    except OSError:
+        user = os.environ.get("USER") or os.environ.get("LOGNAME") or str(os.getuid())
+    text = f"{user}@{gethostname()} pid {os.getpid()} ({command})"
+    return "".join(c if " " <= c <= "~" else "?" for c in text)[:128]
+
+
+_IDENTITY_RE = re.compile(r"[^@]*@(?P<host>\S+) pid (?P<pid>\d+) \(")
+
+
+def _holder_gone(holder: str | None) -> bool:
+    """True for a holder identity of :func:`client_identity` naming a process of this host
+    that no longer runs."""
+    match = _IDENTITY_RE.match(holder or "")
+    if match is None or match["host"] != gethostname():
+        return False
+    try:
+        os.kill(int(match["pid"]), 0)
+    except ProcessLookupError:
+        return True
+    except (PermissionError, OverflowError, ValueError):
+        return False
+    return False
+
+
+class _LeaseKeeper:
+    """Renews a lease from its own thread and socket (a client's socket is not thread-safe)."""
+
+    def __init__(self, context: zmq.Context, endpoint: str, curve: CurveClientKeys | None,
+                 client: str, ttl_s: float, timeout_s: float, log: Any) -> None:
+        self._context, self._endpoint, self._curve = context, endpoint, curve
+        self._client, self._ttl_s, self._log = client, ttl_s, log
+        self._timeout_ms = max(1, int(round(min(timeout_s, ttl_s / 3) * 1000)))
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="lease-keeper", daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join()
+
+    def exchange_once(self, data: bytes) -> bytes | None:
+        """Send one request on a fresh socket and wait one bound for its reply."""
+        socket = self._context.socket(zmq.REQ)
+        try:
+            socket.setsockopt(zmq.LINGER, 0)
+            socket.setsockopt(zmq.RCVTIMEO, self._timeout_ms)
+            socket.setsockopt(zmq.SNDTIMEO, self._timeout_ms)
+            if self._curve is not None:
+                socket.curve_publickey = self._curve.public
+                socket.curve_secretkey = self._curve.secret
+                socket.curve_serverkey = self._curve.server_public
+            socket.connect(self._endpoint)
+            socket.send(data)
+            return socket.recv()
+        except zmq.ZMQError:
+            return None
+        finally:
+            socket.close(linger=0)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self._ttl_s / 3):
+            msg_id = protocol.new_msg_id()
+            data = protocol.encode_request(Op.CLAIM, {"ttl_s": self._ttl_s}, msg_id,
+                                           client=self._client)
+            reply = self.exchange_once(data)
+            if reply is None:
+                self._log.warning("lease_not_renewed", reason="no reply; trying again")
+                continue
+            try:
+                protocol.decode_reply(reply, msg_id)
+            except RigRefused as exc:
+                self._log.error("lease_lost", kind=exc.kind, detail=exc.detail,
+                                consequence="the rig refuses this client's moves and "
+                                            "acquisitions from now on")
+                if exc.kind == "leased":
+                    return
+            except ProtocolError as exc:
+                self._log.warning("lease_not_renewed", reason=str(exc))
 
 
 
@@ -244,6 +338,10 @@ class BusClient:
         self._context = zmq.Context() if context is None else context
         self._socket: zmq.Socket | None = None
         self._log = _log.bind(endpoint=endpoint)
+        # The lease (see claim): this client's identity once the rig granted one, and the
+        # thread that renews it.
+        self._lease_client: str | None = None
+        self._keeper: _LeaseKeeper | None = None
         try:
             self._open()
         except ConfigError:
@@ -259,7 +357,9 @@ class BusClient:
         self.close()
 
     def close(self) -> None:
-        """Close the socket (and the context if the client created it). Safe to call twice."""
+        """Release the lease if one is held, close the socket (and the context if the client
+        created it). Safe to call twice."""
+        self.release()
         self._close_socket()
         if self._own_context and self._context is not None and not self._context.closed:
             self._context.term()
@@ -500,6 +600,99 @@ class BusClient:
         """Simulated rig only: a sudden cavity frequency step of ``shift_hz`` (Hz)."""
         return protocol.parse_thermal_step(self._call(Op.THERMAL_STEP, {"shift_hz": shift_hz}))
 
+    # ------------------------------------------------------------------ the lease
+
+    def claim(self, client: str, *, ttl_s: float = LEASE_TTL_S, wait_s: float = 0.0
+              ) -> protocol.Lease | None:
+        """Take the rig's lease for this client, and keep it renewed until :meth:`release`.
+
+        From then on every request carries ``client``; a thread with its own socket claims
+        again every third of ``ttl_s``, so the lease lasts while this process does and ends
+        within ``ttl_s`` of its death.
+
+        Parameters
+        ----------
+        client : str
+            This client's identity (see :func:`client_identity`).
+        ttl_s : float
+            The lease's time to live, s.
+        wait_s : float
+            How long to wait for a lease another client holds, s (0: refuse at once).
+
+        Returns
+        -------
+        Lease or None
+            The lease; None for a rig without leases (it answered ``unknown_op`` or
+            ``bad_request`` to a valid claim), after one warning: the run then goes on as
+            before, without the protection.
+
+        Raises
+        ------
+        RigLeased
+            Another client holds the lease (still, after ``wait_s``).
+        """
+        deadline = time.monotonic() + wait_s
+        waiting = False
+        while True:
+            self._lease_client = client
+            try:
+                lease = protocol.parse_claim(self._call(Op.CLAIM, {"ttl_s": float(ttl_s)}))
+            except RigLeased as exc:
+                self._lease_client = None
+                left = deadline - time.monotonic()
+                if _holder_gone(exc.holder) and exc.expires_in_s is not None:
+                    # A process of this host that no longer runs (killed before it could
+                    # release): its lease runs out by itself; wait for that, as for a lock.
+                    deadline = max(deadline, time.monotonic() + exc.expires_in_s + 0.5)
+                    left = deadline - time.monotonic()
+                    if not waiting:
+                        self._log.warning("waiting_for_lease", detail=exc.detail,
+                                          reason="its holder no longer runs on this host",
+                                          wait_s=round(left, 1))
+                        waiting = True
+                if left <= 0:
+                    raise
+                if not waiting:
+                    self._log.warning("waiting_for_lease", detail=exc.detail,
+                                      wait_s=round(left, 1))
+                    waiting = True
+                time.sleep(min(1.0, left))
+                continue
+            except RigRefused as exc:
+                self._lease_client = None
+                if exc.kind in ("unknown_op", "bad_request"):
+                    self._log.warning("rig_without_lease", reason=f"the rig answered "
+                                      f"{exc.kind} to a claim ({exc.detail}); going on without a "
+                                      f"lease: another client could move this rig meanwhile")
+                    return None
+                raise
+            except BaseException:
+                self._lease_client = None
+                raise
+            break
+        self._log.info("lease_held", client=client, ttl_s=lease.ttl_s)
+        self._keeper = _LeaseKeeper(self._context, self._endpoint, self._curve, client,
+                                    float(ttl_s), self._timeout_s, self._log)
+        self._keeper.start()
+        return lease
+
+    def release(self) -> None:
+        """End this client's lease (one bounded attempt: a lease not released runs out within
+        its ttl). Does nothing without a lease. Never raises."""
+        keeper, self._keeper = self._keeper, None
+        if keeper is None:
+            return
+        keeper.stop()
+        data = protocol.encode_request(Op.RELEASE, {}, protocol.new_msg_id(),
+                                       client=self._lease_client)
+        reply = keeper.exchange_once(data)
+        self._lease_client = None
+        if reply is None:
+            self._log.warning("lease_not_released", reason="no reply; the lease runs out "
+                              "within its ttl")
+        else:
+            self._log.info("lease_released")
+
     # ------------------------------------------------------------------ guards
 
     def _watch(self, instance: str | None, clock: float | None, op: str, *,
@@ -579,7 +772,7 @@ class BusClient:
     def _call(self, op: Op, args: Mapping[str, Any], *, msg_id: str | None = None,
               timeout_s: float | None = None) -> dict[str, Any]:
         msg_id = msg_id if msg_id is not None else protocol.new_msg_id()
-        data = protocol.encode_request(op, args, msg_id)
+        data = protocol.encode_request(op, args, msg_id, client=self._lease_client)
         timeout_ms = self._timeout_ms if timeout_s is None else max(1, int(round(timeout_s * 1000)))
         # After a stop only safe goes out, once, within its own bound; a second signal is the
         # CLI's to handle (it ends the process).

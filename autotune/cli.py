@@ -17,9 +17,10 @@ Exit codes
 1    internal error (a bug of autotune): the rig was sent to its safe set-points, the journal
      closed; the run can be resumed
 2    bad input: configuration, command line, missing or damaged files, a refused set-point,
-     a last good store that cannot be written
+     a last good store that cannot be written, a run folder in use by another process
 3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set,
-     a rig that kept answering with other set-points than those applied
+     a rig that kept answering with other set-points than those applied, a rig leased to
+     another client (``--wait-lease-s`` waits for it)
 4    the verified inversion is below the configured acceptance threshold
 130  stopped by SIGINT/SIGTERM (the message says whether the rig confirmed its safe
      set-points; the journal is closed and the run can be resumed)
@@ -63,9 +64,11 @@ from autotune.errors import (
     JournalError,
     LimitError,
     RigError,
+    RigLeased,
     RigTimeout,
 )
 from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
+from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder, holder_if_running, holder_text
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -293,6 +296,20 @@ def _connect(config: RunConfig, stop: threading.Event | None = None) -> Any:
                      stop_safe_s=config.recovery.safe_on_stop_s)
 
 
+def _claim_rig(rig: Any, command: str, wait_s: float) -> None:
+    """Take the rig's lease for this process before anything moves (kept renewed, released
+    when the client closes); a rig without leases goes on with one warning.
+
+    Raises
+    ------
+    RigLeased
+        Another client holds the rig (still, after ``wait_s`` seconds).
+    """
+    from autotune.bus import client_identity
+
+    rig.claim(client_identity(command), wait_s=wait_s)
+
+
 def _summary(result: dict[str, Any]) -> str:
     low, high = result["inversion_interval"]
     conf = round(100 * result["confidence"])
@@ -349,6 +366,17 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         if isinstance(exc, JournalError) and hint and "store" in str(exc):
             print(f"autotune: after correcting it, continue with: {hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except RigLeased as exc:
+        hint = resume_hint()
+        if not hint:
+            print(f"autotune: {exc.detail}: another client is driving this rig; nothing was "
+                  f"sent to it. Wait for that run to end, or let this command wait for the rig "
+                  f"with --wait-lease-s SECONDS", file=sys.stderr)
+        else:
+            print(f"autotune: {exc.detail}: this run lost the rig's lease (it could not renew it "
+                  f"in time) and stopped without sending the rig anywhere; the journal is "
+                  f"closed. Once the rig is free, continue with: {hint}", file=sys.stderr)
+        return EXIT_RIG
     except RigError as exc:
         print(f"autotune: rig error: {exc}", file=sys.stderr)
         if (safe := _safe_message(exc)) is not None:
@@ -715,7 +743,10 @@ def _probe_plan(description: Any, shots: int) -> str:
                  "nearest limit and a step of 1.5 max_step (a rig that wrongly executes them moves)")
     lines.append("  four malformed applies (NaN, infinities) that must be refused")
     lines.append(f"  four acquisitions of {shots} shots (one request sent twice, one refused)")
-    lines.append("  and it ends with safe (the rig's safe set-points)")
+    lines.append("  safe (the rig's safe set-points)")
+    lines.append("  the lease rules: a second identity of the probe claims, applies the values in "
+                 "force and acquires while the probe holds the rig (a conforming rig refuses "
+                 "them) and sends safe")
     return "\n".join(lines)
 
 
@@ -816,30 +847,10 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         config = load_config(ns.config)
         run_dir, resume = _run_folder(ns, command)
         stop = _install_stop_handlers(lambda: f" Continue with: {hint()}" if hint() else "")
-        # A resume of a run killed after its end record (or run twice): nothing moves; its
-        # outcome is told again from the folder alone (the rig may be down), with its exit
-        # status. One that ended without a result is refused by prepare (exit 2).
-        ended = already_ended(run_dir, command) if resume else None
-        if ended is not None and ended.result is not None:
-            print(f"autotune: {ended}; nothing was sent to the rig. Its result:", file=sys.stderr)
-            print(summary(ended.result))
-            print(f"run folder: {run_dir}")
-            return exit_code(ended.result)
-        with _connect(config, stop) as rig:
-            prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
-            print(CAUTION, file=sys.stderr)
-            run_dir.mkdir(parents=True, exist_ok=True)
-            started.append(run_dir)
-            handler = _log_to_run_folder(run_dir)
-            try:
-                with _progress_display(ns) as progress:
-                    result = execute(prepared, rig, stop=stop, progress=progress)
-            finally:
-                logging.getLogger().removeHandler(handler)
-                handler.close()
-        print(summary(result))
-        print(f"run folder: {run_dir}")
-        return exit_code(result)
+        # One owner per run folder, from before the first request to the rig until the exit.
+        with hold_run_folder(run_dir, command):
+            return _act_on_rig_locked(ns, command, config, run_dir, resume, stop, prepare,
+                                      execute, summary, exit_code, started)
 
     def hint() -> str | None:
         # A folder whose run never reached the rig has no journal: nothing to resume.
@@ -848,6 +859,39 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
         return _resume_command(command, ns.config, started[0])
 
     return _guarded(body, hint)
+
+
+def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, run_dir: Path,
+                       resume: bool, stop: threading.Event, prepare: Callable[..., Any],
+                       execute: Callable[..., dict[str, Any]],
+                       summary: Callable[[dict[str, Any]], str],
+                       exit_code: Callable[[dict[str, Any]], int], started: list[Path]) -> int:
+    """The body of :func:`_act_on_rig` once this process holds the run folder's lock."""
+    # A resume of a run killed after its end record (or run twice): nothing moves; its
+    # outcome is told again from the folder alone (the rig may be down), with its exit
+    # status. One that ended without a result is refused by prepare (exit 2).
+    ended = already_ended(run_dir, command) if resume else None
+    if ended is not None and ended.result is not None:
+        print(f"autotune: {ended}; nothing was sent to the rig. Its result:", file=sys.stderr)
+        print(summary(ended.result))
+        print(f"run folder: {run_dir}")
+        return exit_code(ended.result)
+    with _connect(config, stop) as rig:
+        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
+        prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
+        print(CAUTION, file=sys.stderr)
+        run_dir.mkdir(parents=True, exist_ok=True)
+        started.append(run_dir)
+        handler = _log_to_run_folder(run_dir)
+        try:
+            with _progress_display(ns) as progress:
+                result = execute(prepared, rig, stop=stop, progress=progress)
+        finally:
+            logging.getLogger().removeHandler(handler)
+            handler.close()
+    print(summary(result))
+    print(f"run folder: {run_dir}")
+    return exit_code(result)
 
 
 def _wait_for_ready(process: subprocess.Popen[bytes], ready: Path, log: Path,
@@ -876,8 +920,6 @@ def _truth_block(rig: Any, chosen: dict[str, float]) -> dict[str, Any]:
 
 
 def _cmd_dry_run(ns: argparse.Namespace) -> int:
-    from autotune import runner
-
     def body() -> int:
         config_path = Path(ns.config) if ns.config else packaged_config("dry-run.toml")
         rig_config = Path(ns.rig_config) if ns.rig_config else packaged_config("sim-rig.toml")
@@ -890,47 +932,55 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
             config = dataclasses.replace(
                 config, search=dataclasses.replace(config.search, seed=ns.seed))
         out = Path(ns.out) if ns.out else _default_run_dir("dry-run")
-        if out.exists() and any(out.iterdir()):
-            raise JournalError(f"{out} is not empty; choose another --out")
-        out.mkdir(parents=True, exist_ok=True)
-        rig_process: list[subprocess.Popen[bytes]] = []
-
-        def at_once() -> str:
-            for process in rig_process:  # its own session: no signal of ours reaches it
-                process.kill()
-            return " The simulated rig was stopped."
-
-        stop = _install_stop_handlers(at_once)
-        seed = config.search.seed
-        print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
-              "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
-        with tempfile.TemporaryDirectory() as tmp:
-            ready = Path(tmp) / "endpoint"
-            command = [sys.executable, "-m", "autotune.cli", "rig", "--config", str(rig_config),
-                       "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
-                       str(ready), "--log-level", "warning"]
-            # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
-            # session keeps a Ctrl-C at the terminal from stopping it before our safe request.
-            rig_log = (out / "rig.log").open("wb")
-            process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
-                                       stdout=subprocess.DEVNULL, stderr=rig_log,
-                                       start_new_session=True)
-            rig_process.append(process)
-            try:
-                endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
-                config = dataclasses.replace(
-                    config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
-                return _dry_run_stages(ns, config, out, endpoint, stop, runner)
-            finally:
-                process.terminate()
-                try:
-                    process.wait(timeout=10)
-                except subprocess.TimeoutExpired:
-                    process.kill()
-                    process.wait(timeout=10)
-                rig_log.close()
+        with hold_run_folder(out, "dry-run"):
+            if any(p.name not in (LOCK_NAME, HOLDER_NAME) for p in out.iterdir()):
+                raise JournalError(f"{out} is not empty; choose another --out")
+            return _dry_run_in(ns, config, config_path, rig_config, out)
 
     return _guarded(body)
+
+
+def _dry_run_in(ns: argparse.Namespace, config: RunConfig, config_path: Path, rig_config: Path,
+                out: Path) -> int:
+    """The body of ``dry-run`` once this process holds the lock of its folder ``out``."""
+    from autotune import runner
+
+    rig_process: list[subprocess.Popen[bytes]] = []
+
+    def at_once() -> str:
+        for process in rig_process:  # its own session: no signal of ours reaches it
+            process.kill()
+        return " The simulated rig was stopped."
+
+    stop = _install_stop_handlers(at_once)
+    seed = config.search.seed
+    print("dry run on the bundled SIMULATED rig: no hardware is touched. On a real rig, "
+          "calibrate/retune act on hardware:\n" + CAUTION, file=sys.stderr)
+    with tempfile.TemporaryDirectory() as tmp:
+        ready = Path(tmp) / "endpoint"
+        command = [sys.executable, "-m", "autotune.cli", "rig", "--config", str(rig_config),
+                   "--bind", "tcp://127.0.0.1:0", "--seed", str(seed), "--ready-file",
+                   str(ready), "--log-level", "warning"]
+        # The rig's log goes to a file: an unread pipe could fill and stall the rig. Its own
+        # session keeps a Ctrl-C at the terminal from stopping it before our safe request.
+        rig_log = (out / "rig.log").open("wb")
+        process = subprocess.Popen(command, stdin=subprocess.DEVNULL,
+                                   stdout=subprocess.DEVNULL, stderr=rig_log,
+                                   start_new_session=True)
+        rig_process.append(process)
+        try:
+            endpoint = _wait_for_ready(process, ready, out / "rig.log", timeout_s=60.0)
+            config = dataclasses.replace(
+                config, bus=dataclasses.replace(config.bus, endpoint=endpoint))
+            return _dry_run_stages(ns, config, out, endpoint, stop, runner)
+        finally:
+            process.terminate()
+            try:
+                process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait(timeout=10)
+            rig_log.close()
 
 
 def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoint: str,
@@ -939,6 +989,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
     rows = []
     exit_code = EXIT_OK
     with _connect(config, stop) as rig:
+        _claim_rig(rig, "dry-run", 0.0)
         description = runner.opening_call("describe", rig.describe, config, rig, stop)
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
@@ -956,15 +1007,17 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
             wall = time.monotonic()
-            prepared = runner.prepare(name, rig, config, run_dir, store=store, stop=stop)
-            handler = _log_to_run_folder(run_dir)
-            try:
-                with _progress_display(ns) as progress:
-                    result = runner.execute(prepared, rig, stop=stop, progress=progress,
-                                            extra={"dry_run": {"endpoint": endpoint}})
-            finally:
-                logging.getLogger().removeHandler(handler)
-                handler.close()
+            # Each stage's folder has its lock too: a resume of it meanwhile is refused.
+            with hold_run_folder(run_dir, "dry-run"):
+                prepared = runner.prepare(name, rig, config, run_dir, store=store, stop=stop)
+                handler = _log_to_run_folder(run_dir)
+                try:
+                    with _progress_display(ns) as progress:
+                        result = runner.execute(prepared, rig, stop=stop, progress=progress,
+                                                extra={"dry_run": {"endpoint": endpoint}})
+                finally:
+                    logging.getLogger().removeHandler(handler)
+                    handler.close()
             result["truth"] = _truth_block(rig, result["setpoints"])
             write_json_atomic(run_dir / RESULT_NAME, result)
             rows.append((name, result, time.monotonic() - wall))
@@ -1031,12 +1084,36 @@ def _cmd_track(ns: argparse.Namespace) -> int:
                        lambda r: EXIT_OK if r["status"] == "ended" else EXIT_BELOW_ACCEPTANCE)
 
 
+def _report_notes(path: Path, runs: Sequence[Path]) -> list[str]:
+    """What a reader must know before the report of ``path``: a run still being written (its
+    holder), and a damaged journal (where, what, and that the report stops before it)."""
+    from autotune.journal import JOURNAL_NAME, read_journal_prefix
+
+    notes = []
+    folders = list(dict.fromkeys([path, *runs]))
+    for folder in folders:
+        holder = holder_if_running(folder)
+        if holder is not None:
+            notes.append(f"{folder}: the run is still going ({holder_text(holder)}); this "
+                         f"report shows the records written so far")
+    for folder in runs:
+        if not (folder / JOURNAL_NAME).exists():
+            continue
+        records, damage = read_journal_prefix(folder / JOURNAL_NAME)
+        if damage is not None:
+            notes.append(f"{damage.where()}; this report shows the {len(records)} records "
+                         f"before it and nothing after it")
+    return notes
+
+
 def _cmd_report(ns: argparse.Namespace) -> int:
     from autotune import report
 
     def body() -> int:
         text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot,
                                    out=Path(ns.out) if ns.out is not None else None)
+        for note in _report_notes(Path(ns.run_dir), report.find_runs(Path(ns.run_dir))):
+            print(f"NOTE: {note}")
         print(text)
         return EXIT_OK
 
@@ -1139,6 +1216,7 @@ def _parser() -> argparse.ArgumentParser:
         group = p.add_mutually_exclusive_group()
         group.add_argument("--out", help="new run folder (default runs/<command>-<UTC time>)")
         group.add_argument("--resume", metavar="RUN_DIR", help="continue a killed run")
+        _add_wait_lease(p)
         p.set_defaults(handler=lambda ns, n=name: _cmd_stage(ns, n))
 
     dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
@@ -1166,6 +1244,7 @@ def _parser() -> argparse.ArgumentParser:
     track_out.add_argument("--out", help="new run folder (default runs/track-<UTC time>)")
     track_out.add_argument("--resume", metavar="TRACK_DIR",
                            help="continue a stopped night from its journal")
+    _add_wait_lease(track)
     # Options of the schedule-based track this command replaced: refused with a message.
     track.add_argument("--interval-s", default=None, help=argparse.SUPPRESS)
     track.add_argument("--cycles", default=None, help=argparse.SUPPRESS)
@@ -1184,6 +1263,14 @@ def _parser() -> argparse.ArgumentParser:
         _add_output_options(command, log_level=name not in ("rig", "serve"),
                             default=argparse.SUPPRESS)
     return parser
+
+
+def _add_wait_lease(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--wait-lease-s", type=_non_negative_seconds, default=0.0,
+                        metavar="SECONDS",
+                        help="when another client holds the rig's lease, wait up to SECONDS for "
+                             "it to be released or to run out (default 0: exit 3 at once, "
+                             "naming the holder)")
 
 
 def _add_output_options(parser: argparse.ArgumentParser, *, log_level: bool,

@@ -9,10 +9,13 @@
     │                              (outside the configured or described limits, or too large a step)
     ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
     ├── JournalError               a run folder or journal cannot be written, read or resumed
+    │   ├── RunAlreadyEnded        a resume of a run that already ended with a final status
+    │   └── RunFolderInUse         another live process holds the run folder's lock
     ├── Interrupted                the run was stopped by a signal (SIGINT/SIGTERM) and made safe
     └── RigError                   the rig, or the bus to it, failed
         ├── RigTimeout             no reply within the bound, after the capped retries
         ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
+        │   └── RigLeased          ``leased``: another client holds the rig's lease (names it)
         ├── ProtocolError          a reply (or request) does not follow the wire protocol
         └── RigMismatch            a reply does not match what this client applied or saw
             └── RigRestarted       the rig's identity changed or its clock went back: it restarted
@@ -44,10 +47,12 @@ __all__ = [
     "EstimationError",
     "JournalError",
     "RunAlreadyEnded",
+    "RunFolderInUse",
     "Interrupted",
     "RigError",
     "RigTimeout",
     "RigRefused",
+    "RigLeased",
     "ProtocolError",
     "RigMismatch",
     "RigRestarted",
@@ -130,6 +135,21 @@ class RunAlreadyEnded(JournalError):
         self.result = result
 
 
+class RunFolderInUse(JournalError):
+    """Another live process holds the run folder's lock (see :mod:`autotune.runlock`).
+
+    Attributes
+    ----------
+    holder : dict or None
+        What the holder wrote about itself (``pid``, ``host``, ``user``, ``command``,
+        ``since``), None when its holder file cannot be read.
+    """
+
+    def __init__(self, message: str, holder: dict | None) -> None:
+        super().__init__(message)
+        self.holder = holder
+
+
 class Interrupted(AutotuneError):
     """The run was stopped by SIGINT/SIGTERM.
 
@@ -172,6 +192,25 @@ class RigRefused(RigError):
         self.kind = kind
         self.detail = detail
         super().__init__(f"rig refused ({kind}): {detail}")
+
+
+class RigLeased(RigRefused):
+    """The rig is leased to another client (error kind ``leased``): nothing was done. The
+    detail names the holder and when its lease runs out.
+
+    Attributes
+    ----------
+    holder : str or None
+        The holding client's identity, when the rig said it.
+    expires_in_s : float or None
+        Seconds until its lease runs out unless renewed, when the rig said it.
+    """
+
+    def __init__(self, detail: str, holder: str | None = None,
+                 expires_in_s: float | None = None) -> None:
+        super().__init__("leased", detail)
+        self.holder = holder
+        self.expires_in_s = expires_in_s
 
 
 class ProtocolError(RigError):

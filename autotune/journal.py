@@ -22,6 +22,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -35,6 +36,8 @@ __all__ = [
     "RESULT_NAME",
     "LOG_NAME",
     "read_journal",
+    "read_journal_prefix",
+    "JournalDamage",
     "ended_result",
     "ended_error",
     "already_ended",
@@ -142,11 +145,83 @@ def _iter_lines(path: Path) -> Iterator[tuple[int, bytes]]:
             offset += len(line)
 
 
-def read_journal(path: Path) -> list[dict[str, Any]]:
-    """All complete records of a journal, in order.
+@dataclass(frozen=True)
+class JournalDamage:
+    """The first damaged line of a journal: where it is, and what was found there.
 
-    A last line without its newline (a write cut by a kill) is ignored; any other line that is
-    not a JSON object, or a gap in ``seq``, raises :class:`JournalError`.
+    Attributes
+    ----------
+    path : Path
+        The journal.
+    line : int
+        Its line number, from 1.
+    expected_seq : int
+        The ``seq`` the line should have carried (the number of good records before it).
+    kind : {"gap", "repeat", "not_json", "not_record"}
+        ``gap``: a larger ``seq`` (records missing); ``repeat``: a smaller one (a ``seq``
+        written twice, typically by two processes); ``not_json``: the line is not JSON (two
+        writes mixed into one line, or a write cut and written after); ``not_record``: JSON,
+        but not an object with an integer ``seq``.
+    found : str
+        What was found, in words (``"seq 122"``, ``"text that is not JSON: ..."``).
+    """
+
+    path: Path
+    line: int
+    expected_seq: int
+    kind: str
+    found: str
+
+    @property
+    def cause(self) -> str:
+        """The likely cause of this kind of damage, in words."""
+        return {
+            "gap": "records are missing",
+            "repeat": "a record number written twice, as two processes writing one journal do",
+            "not_json": "two writes mixed into one line, or a write cut short and written after",
+            "not_record": "a line that is not a journal record",
+        }[self.kind]
+
+    def where(self) -> str:
+        """Where and what, in one clause: line, expected, found, cause."""
+        return (f"{self.path} line {self.line}: expected record seq {self.expected_seq}, "
+                f"found {self.found} ({self.cause})")
+
+
+def _found(line: bytes, record: Any) -> tuple[str, str]:
+    """The kind of damage of a line read where another record was expected, and its words."""
+    if record is _NOT_JSON:
+        text = line.decode("utf-8", "replace").strip()
+        shown = text if len(text) <= 60 else text[:57] + "..."
+        return "not_json", f"text that is not JSON: {shown}"
+    seq = record.get("seq") if isinstance(record, dict) else None
+    if isinstance(seq, bool) or not isinstance(seq, int):
+        return "not_record", ("an object without an integer seq" if isinstance(record, dict)
+                              else f"a JSON {type(record).__name__}, not an object")
+    return "", f"seq {seq}"
+
+
+_NOT_JSON = object()
+
+
+def read_journal_prefix(path: Path) -> tuple[list[dict[str, Any]], JournalDamage | None]:
+    """The complete records of a journal up to its first damaged line, and that damage.
+
+    Readers that must show what there is (``report``) use this; :func:`read_journal` refuses
+    a damaged journal. A last line without its newline (a write cut by a kill or a full disk)
+    is not damage: it is left out, as the writer had not finished it.
+
+    Returns
+    -------
+    records : list of dict
+        Records with ``seq`` 0, 1, 2, ... in order, before the first damaged line.
+    damage : JournalDamage or None
+        The first damaged line, None for an undamaged journal.
+
+    Raises
+    ------
+    JournalError
+        The journal does not exist or cannot be read.
     """
     path = Path(path)
     records: list[dict[str, Any]] = []
@@ -155,15 +230,37 @@ def read_journal(path: Path) -> list[dict[str, Any]]:
             if not line.endswith(b"\n"):
                 break
             try:
-                record = json.loads(line)
-            except ValueError as exc:
-                raise JournalError(f"{path}:{number}: not JSON ({exc})") from exc
-            if not isinstance(record, dict) or record.get("seq") != len(records):
-                raise JournalError(f"{path}:{number}: expected record seq {len(records)}, "
-                                   f"got {str(line[:80])}")
-            records.append(record)
+                record: Any = json.loads(line)
+            except ValueError:
+                record = _NOT_JSON
+            kind, found = _found(line, record)
+            if not kind:
+                seq = record["seq"]
+                if seq == len(records):
+                    records.append(record)
+                    continue
+                kind = "gap" if seq > len(records) else "repeat"
+            return records, JournalDamage(path, number, len(records), kind, found)
     except FileNotFoundError as exc:
         raise JournalError(f"{path}: no such journal") from exc
+    except OSError as exc:
+        raise JournalError(f"{path}: cannot be read ({exc})") from exc
+    return records, None
+
+
+def read_journal(path: Path) -> list[dict[str, Any]]:
+    """All complete records of a journal, in order.
+
+    A last line without its newline (a write cut by a kill) is ignored; any other line that is
+    not a JSON object, a gap or a repeat in ``seq``, raises :class:`JournalError` in one
+    sentence naming the line, what was expected and found, and what can be done.
+    """
+    records, damage = read_journal_prefix(path)
+    if damage is not None:
+        raise JournalError(
+            f"{damage.where()}; this journal cannot be continued: 'autotune report "
+            f"{damage.path.parent}' shows its {damage.expected_seq} records before line "
+            f"{damage.line}, and a new run (--out) starts afresh")
     return records
 
 
@@ -177,8 +274,10 @@ class Journal:
         self.run_dir = Path(run_dir)
         self.path = self.run_dir / JOURNAL_NAME
         self._seq = next_seq
+        self._failure: str | None = None
         try:
-            self._handle = self.path.open("a", encoding="utf-8")
+            # Unbuffered bytes: a record is one write, and a failed one can be taken back.
+            self._handle = self.path.open("ab", buffering=0)
         except OSError as exc:
             raise JournalError(f"cannot open {self.path} for appending: {exc}") from exc
 
@@ -237,16 +336,37 @@ class Journal:
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
         """Append one record and flush it to disk before returning it."""
+        if self._failure is not None:
+            raise JournalError(f"cannot append to {self.path}: an earlier write failed "
+                               f"({self._failure}); the run stops here and can be resumed once "
+                               f"the disk is writable")
         if self._handle.closed:
             raise JournalError(f"{self.path} is closed")
         record = {"seq": self._seq, "type": record_type, "t_wall": utc_now(), **fields}
-        line = _to_json(record)
+        data = (_to_json(record) + "\n").encode("utf-8")
+        fd = self._handle.fileno()
         try:
-            self._handle.write(line + "\n")
-            self._handle.flush()
-            os.fsync(self._handle.fileno())
+            before = os.fstat(fd).st_size
         except OSError as exc:
             raise JournalError(f"cannot append to {self.path}: {exc}") from exc
+        try:
+            written = 0
+            while written < len(data):
+                written += os.write(fd, data[written:])
+            os.fsync(fd)
+        except OSError as exc:
+            # A full disk or a failed fsync: take the part written back, so that the next
+            # append (the end record, a resume) does not follow half a line.
+            try:
+                os.ftruncate(fd, before)
+            except OSError:
+                pass  # the cut line stays last; readers and resumes leave it out
+            # After a failed write or fsync what reached the disk is uncertain (a retried fsync
+            # may report success without writing): this journal takes no further record.
+            self._failure = exc.strerror or str(exc)
+            self._handle.close()
+            raise JournalError(f"cannot append to {self.path}: {exc}; the run stops here and "
+                               f"can be resumed once the disk is writable") from exc
         self._seq += 1
         return record
 

@@ -47,6 +47,18 @@ replay                the same acquire request sent twice gets the same reply an
                       (``shots_total`` grows once)
 acquire.field         an unknown field is ``bad_request`` and nothing is acquired
 safe                  ``safe`` answers the described safe set-points, and ``status`` shows them
+lease.claim           ``claim`` gives the probe the lease (holder, ttl_s, expires_in_s, renewed
+                      false) and a second claim renews it (renewed true); a rig that answers
+                      ``unknown_op`` or ``bad_request`` has no leases (``WARN``, optional) and the
+                      other lease rules are not run
+lease.refuse          while the probe holds the lease, a second client's claim, apply (of the
+                      values in force) and acquire are ``leased`` with ``holder`` and
+                      ``expires_in_s``, and nothing is acquired; its status is answered
+lease.safe            the second client's ``safe`` is executed (a person must always be able to
+                      park the rig), and the lease stays with the probe
+lease.release         the second client's ``release`` is ``leased``; the probe's releases it
+                      (released true), after which the second client claims and releases
+lease.expiry          a lease of 1 s not renewed runs out: the second client claims it 1.5 s later
 ===================== ===========================================================================
 
 Then ``internal``, reported only when the rig answered a request ``internal`` during the probe
@@ -67,6 +79,7 @@ Set-point values are compared to a millionth of the set-point's ``max_step``.
 from __future__ import annotations
 
 import json
+import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Literal
@@ -75,7 +88,7 @@ import zmq
 
 from autotune import protocol
 from autotune.bus import CurveClientKeys
-from autotune.errors import ProtocolError, RigRefused
+from autotune.errors import ProtocolError, RigLeased, RigRefused
 from autotune.protocol import Description
 
 __all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES",
@@ -92,7 +105,8 @@ STILL_RULES: tuple[str, ...] = (
 #: Rules that move the rig, in the order they run.
 MOVING_RULES: tuple[str, ...] = (
     "nonfinite", "apply", "apply.full_step", "refuse.out_of_range", "refuse.step", "acquire",
-    "replay", "acquire.field", "safe",
+    "replay", "acquire.field", "safe", "lease.claim", "lease.refuse", "lease.safe",
+    "lease.release", "lease.expiry",
 )
 #: Every rule reported at every probe, in the order they are reported.
 RULES: tuple[str, ...] = STILL_RULES + MOVING_RULES + ("instance",)
@@ -124,6 +138,14 @@ _EXPECTED = {
     "replay": "a repeated msg_id answered with the first reply, executed once (shots_total grows once)",
     "acquire.field": "an unknown field answered bad_request; nothing acquired",
     "safe": "safe answers the described safe set-points; status shows them",
+    "lease.claim": "claim grants the lease (holder, ttl_s, expires_in_s, renewed false); a second "
+                   "claim renews it (optional feature)",
+    "lease.refuse": "another client's claim, apply and acquire answered leased with holder and "
+                    "expires_in_s; nothing acquired; its status answered",
+    "lease.safe": "another client's safe is executed; the lease stays with its holder",
+    "lease.release": "another client's release answered leased; the holder's releases it; then "
+                     "the other client claims",
+    "lease.expiry": "a lease of 1 s not renewed runs out: another client claims it 1.5 s later",
     "instance": "the same instance in every describe/status/apply/acquire/safe result (optional)",
     "internal": "a request answered internal reaches the rig again when retried with its msg_id "
                 "(an internal reply to a request that did not complete is not kept)",
@@ -229,6 +251,8 @@ class _Answer:
     detail: str = ""
     echoed: object = None
     problem: str | None = None
+    holder: str | None = None
+    expires_in_s: float | None = None
 
     def show(self) -> str:
         if self.problem is not None:
@@ -247,8 +271,17 @@ def _short(text: str, limit: int = 120) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
-def _request(op: str, args: Any, msg_id: str, *, proto: Any = protocol.PROTO_VERSION) -> bytes:
-    return json.dumps({"proto": proto, "msg_id": msg_id, "op": op, "args": args}).encode()
+def _request(op: str, args: Any, msg_id: str, *, proto: Any = protocol.PROTO_VERSION,
+             client: str | None = None) -> bytes:
+    message = {"proto": proto, "msg_id": msg_id, "op": op, "args": args}
+    if client is not None:
+        message["client"] = client
+    return json.dumps(message).encode()
+
+
+#: The probe's identities in the lease rules: the holder and a second client.
+_HOLDER = "autotune probe (holder)"
+_STRANGER = "autotune probe (second client)"
 
 
 class _Incomplete(Exception):
@@ -310,6 +343,9 @@ class Probe:
             echoed = None
         try:
             result = protocol.decode_reply(raw, msg_id)
+        except RigLeased as exc:
+            return _Answer(kind=exc.kind, detail=exc.detail, echoed=echoed, holder=exc.holder,
+                           expires_in_s=exc.expires_in_s)
         except RigRefused as exc:
             return _Answer(kind=exc.kind, detail=exc.detail, echoed=echoed)
         except ProtocolError as exc:
@@ -318,9 +354,10 @@ class Probe:
             self._instances.append((op, result.get("instance")))
         return _Answer(result=result, echoed=echoed)
 
-    def _call(self, op: str, args: Mapping[str, Any] | None = None) -> _Answer:
+    def _call(self, op: str, args: Mapping[str, Any] | None = None, *,
+              client: str | None = None) -> _Answer:
         msg_id = protocol.new_msg_id()
-        data = _request(op, dict(args or {}), msg_id)
+        data = _request(op, dict(args or {}), msg_id, client=client)
         answer = self._send(data, msg_id, op)
         if answer.kind == "internal":
             answer = self._retry_internal(data, msg_id, op, answer)
@@ -527,7 +564,112 @@ class Probe:
                 rule()
             except _Incomplete:
                 pass
+        try:
+            self._lease_rules()
+        except _Incomplete:
+            pass
+        finally:
+            # Whatever happened, the probe leaves no lease behind.
+            for client in (_HOLDER, _STRANGER):
+                self._call("release", client=client)
         self._skip_moving("an earlier rule could not finish")
+
+    # ------------------------------------------------------------------ lease rules
+
+    def _claim(self, rule: str, client: str, ttl_s: float, *, renewed: bool) -> None:
+        """A claim that must be granted to ``client``; records a failure and stops otherwise."""
+        answer = self._call("claim", {"ttl_s": ttl_s}, client=client)
+        if answer.result is None:
+            self._fail(rule, f"claim by {client!r}: {answer.show()}")
+            raise _Incomplete
+        try:
+            lease = protocol.parse_claim(answer.result)
+        except ProtocolError as exc:
+            self._fail(rule, f"claim by {client!r}: {exc}")
+            raise _Incomplete from None
+        if lease.holder != client or lease.renewed is not renewed or not 0 < lease.expires_in_s <= ttl_s:
+            self._fail(rule, f"claim by {client!r}: holder {lease.holder!r}, renewed "
+                             f"{str(lease.renewed).lower()}, expires_in_s {_num(lease.expires_in_s)} "
+                             f"(ttl_s {_num(ttl_s)})")
+            raise _Incomplete
+
+    def _leased(self, answer: _Answer, what: str) -> str:
+        """"" if ``answer`` is a proper ``leased`` refusal naming the probe's holder, else why not."""
+        if answer.kind != "leased":
+            return f"{what}: {answer.show()}"
+        if answer.holder != _HOLDER or answer.expires_in_s is None or answer.expires_in_s <= 0:
+            return (f"{what}: leased, but holder {answer.holder!r} and expires_in_s "
+                    f"{_num(answer.expires_in_s)} (expected {_HOLDER!r} and a time > 0)")
+        return ""
+
+    def _lease_rules(self) -> None:
+        assert self.description is not None
+        first = self._call("claim", {"ttl_s": 30.0}, client=_HOLDER)
+        if first.kind in ("unknown_op", "bad_request"):
+            self._record("lease.claim", "warn", f"no leases ({first.show()}): a second client "
+                                                f"can move this rig while autotune runs")
+            for rule in ("lease.refuse", "lease.safe", "lease.release", "lease.expiry"):
+                self._record(rule, "skip", "not run: the rig has no leases")
+            return
+        self._call("release", client=_HOLDER)
+        self._claim("lease.claim", _HOLDER, 30.0, renewed=False)
+        self._claim("lease.claim", _HOLDER, 30.0, renewed=True)
+        self._pass("lease.claim")
+
+        before = self._in_force("lease.refuse")
+        values = {name: before.setpoints[name] for name in self.description.setpoints}
+        shots = min(self._shots, self.description.max_shots_per_acquisition)
+        problems = [
+            self._leased(self._call("claim", {"ttl_s": 30.0}, client=_STRANGER), "its claim"),
+            self._leased(self._call("apply", {"setpoints": values}, client=_STRANGER), "its apply"),
+            self._leased(self._call("acquire", {"field": "empty", "ramsey_phase": 0.0,
+                                                "shots": shots}, client=_STRANGER), "its acquire"),
+            self._leased(self._call("acquire", {"field": "empty", "ramsey_phase": 0.0,
+                                                "shots": shots}), "an acquire without client"),
+        ]
+        answer = self._call("status", client=_STRANGER)
+        if answer.result is None:
+            problems.append(f"its status: {answer.show()}")
+        grown = self._in_force("lease.refuse").shots_total - before.shots_total
+        if grown:
+            problems.append(f"shots_total grew by {grown}")
+        problems = [p for p in problems if p]
+        self._fail("lease.refuse", "; ".join(problems)) if problems else self._pass("lease.refuse")
+
+        answer = self._call("safe", client=_STRANGER)
+        if answer.result is None:
+            self._fail("lease.safe", f"its safe: {answer.show()}")
+        else:
+            shown = self._unchanged(dict(self.description.safe_setpoints),
+                                    dict(self._in_force("lease.safe").setpoints))
+            still = self._leased(self._call("claim", {"ttl_s": 30.0}, client=_STRANGER),
+                                 "its claim after the safe")
+            if shown:
+                self._fail("lease.safe", f"status differs from safe_setpoints: {shown}")
+            elif still:
+                self._fail("lease.safe", still)
+            else:
+                self._pass("lease.safe")
+
+        problem = self._leased(self._call("release", client=_STRANGER), "its release")
+        answer = self._call("release", client=_HOLDER)
+        if not problem and (answer.result is None or answer.result.get("released") is not True):
+            problem = f"the holder's release: {answer.show()}, {answer.result!r}"
+        if problem:
+            self._fail("lease.release", problem)
+        else:
+            self._claim("lease.release", _STRANGER, 30.0, renewed=False)
+            answer = self._call("release", client=_STRANGER)
+            if answer.result is None or answer.result.get("released") is not True:
+                self._fail("lease.release", f"the second client's release: {answer.show()}")
+            else:
+                self._pass("lease.release")
+
+        self._claim("lease.expiry", _HOLDER, 1.0, renewed=False)
+        time.sleep(1.5)
+        self._claim("lease.expiry", _STRANGER, 30.0, renewed=False)
+        self._call("release", client=_STRANGER)
+        self._pass("lease.expiry")
 
     def _in_force(self, rule: str) -> protocol.Status:
         return self._status(rule)

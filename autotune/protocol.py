@@ -27,7 +27,8 @@ Reply, failure::
 
     {"proto": 1, "msg_id": "<same>", "ok": false, "error": {"kind": "<kind>", "detail": "<text>"}}
 
-All four request keys are required and no other key is allowed. ``proto`` is the integer 1; a
+All four request keys are required; the one optional key is ``client`` (see *One driver at a
+time* below), and no other key is allowed. ``proto`` is the integer 1; a
 request with another integer gets an ``unsupported_version`` error. ``msg_id`` is 1 to 64
 lower-case hexadecimal characters, unique per logical request (autotune sends 32, from a
 cryptographic random source). When the rig cannot read a request's ``msg_id`` it answers with
@@ -66,6 +67,8 @@ internal              the rig failed while executing the request; it did not com
                       (the same request sent again is executed again) unless it ran and
                       only its result failed (then the reply is kept, see Idempotency)
 unsupported_version   ``proto`` is not 1
+leased                another client holds the rig's lease (see *One driver at a time*); nothing
+                      was done; the detail names the holder and when its lease runs out
 ===================== ==========================================================================
 
 ``error.detail`` is human-readable text naming what was wrong, what was expected and what was
@@ -129,6 +132,53 @@ clock that never goes back). autotune checks every ``acquire`` reply: the instan
 it started with, the set-points in force are those it applied, and ``t_start`` is not earlier
 than the clock of the last reply. A mismatch is never filed as data.
 
+One driver at a time
+--------------------
+Optional, backward compatible: a rig that offers it answers ``claim``; one that does not
+answers ``unknown_op`` (or ``bad_request``, as a rig of the first edition does for the
+``client`` key), and a client then goes on without a lease.
+
+A client names itself with the request key ``"client": str`` (1 to 128 printable ASCII
+characters; autotune sends ``USER@HOST pid PID (COMMAND)``). ``claim`` gives the rig to one
+client for ``ttl_s`` seconds; claiming again before the lease runs out renews it; ``release``
+ends it; a lease not renewed in time ends by itself (a client that died frees the rig within
+its ttl). While a lease is held:
+
+- ``apply``, ``acquire`` and ``advance`` (the ops that move the rig, acquire, or spend its
+  time) from any other client, or without ``client``, are answered ``leased``; like ``busy``
+  and ``interlock``, a ``leased`` reply is never kept for replay (the same request sent once
+  the lease is free is executed);
+- ``describe``, ``status`` and ``truth`` (the ops that read) stay open to everyone, and so does
+  the simulated rig's ``thermal_step`` (it plays the lab's environment, not a driver);
+- ``safe`` stays open to everyone (a person must always be able to park the rig); the rig logs
+  who sent it, and the lease stays with its holder (whose next acquisition then sees set-points
+  it did not apply).
+
+With no lease held every client may send every op, with or without ``client``, as in the first
+edition of this protocol.
+
+``claim``, request key ``client`` required, args ``{"ttl_s": float}`` (``0 < ttl_s <=``
+:data:`MAX_LEASE_TTL_S`), result::
+
+    {"holder": str, "ttl_s": float, "expires_in_s": float, "renewed": bool}
+
+    ``renewed`` is true when the same client already held the lease. Claimed while another
+    client holds it: ``leased``.
+
+``release``, request key ``client`` required, args ``{}``, result ``{"released": bool}``
+(false when this client held no lease). Sent while another client holds it: ``leased``.
+
+The ``leased`` error object has two more keys: ``"holder": str`` (the holder's identity) and
+``"expires_in_s": float`` (seconds until its lease runs out unless renewed); its detail reads
+``rig leased by HOLDER for another S s (until UTC-TIME unless renewed)``, and a client shows it
+to its user as it is. (A client of the first edition reads ``leased`` as an unknown error
+kind: it stops, as it should, rather than drive a rig someone else drives.)
+
+autotune claims for :data:`autotune.bus.LEASE_TTL_S` seconds and renews every third of it
+from a thread of its own; it waits for a lease whose holder it knows is dead (a process of its
+own host that no longer runs) to run out, and refuses to start on one held by a live client
+unless told to wait (``--wait-lease-s``).
+
 Simulated rig only (a real rig answers ``unknown_op``):
 
 ``truth``, args ``{}`` or ``{"setpoints": {NAME: float}}``: the model's exact fringes and figures
@@ -150,13 +200,15 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from autotune.errors import ProtocolError, RigRefused
+from autotune.errors import ProtocolError, RigLeased, RigRefused
 
 __all__ = [
     "STEP_TOLERANCE",
     "PROTO_VERSION",
     "MAX_MESSAGE_BYTES",
     "MAX_SHOTS",
+    "MAX_LEASE_TTL_S",
+    "LEASED_OPS",
     "Op",
     "ErrorKind",
     "Field",
@@ -183,6 +235,10 @@ __all__ = [
     "parse_truth",
     "parse_advance",
     "parse_thermal_step",
+    "Lease",
+    "parse_claim",
+    "parse_release",
+    "check_client",
 ]
 
 PROTO_VERSION = 1
@@ -194,12 +250,16 @@ MAX_MESSAGE_BYTES = 1 << 20
 MAX_SHOTS = 10_000_000
 """Largest number of shots one ``acquire`` may ask for."""
 
+MAX_LEASE_TTL_S = 3600.0
+"""Longest lease one ``claim`` may ask for, s."""
+
 STEP_TOLERANCE = 1e-9
 """Relative slack of every ``max_step`` check: a step up to ``max_step * (1 + STEP_TOLERANCE)``
 is accepted, so that float rounding does not refuse a step of exactly ``max_step``."""
 
 _MSG_ID_RE = re.compile(r"[0-9a-f]{1,64}")
 _INSTANCE_RE = re.compile(r"[0-9A-Za-z_-]{1,64}")
+_CLIENT_RE = re.compile(r"[ -~]{1,128}")
 
 
 class Op(str, enum.Enum):
@@ -213,6 +273,12 @@ class Op(str, enum.Enum):
     TRUTH = "truth"
     ADVANCE = "advance"
     THERMAL_STEP = "thermal_step"
+    CLAIM = "claim"
+    RELEASE = "release"
+
+
+#: The ops a lease reserves to its holder: those that move the rig, acquire or spend its time.
+LEASED_OPS = frozenset({Op.APPLY, Op.ACQUIRE, Op.ADVANCE})
 
 
 class ErrorKind(str, enum.Enum):
@@ -225,6 +291,7 @@ class ErrorKind(str, enum.Enum):
     INTERLOCK = "interlock"
     INTERNAL = "internal"
     UNSUPPORTED_VERSION = "unsupported_version"
+    LEASED = "leased"
 
 
 class Field(str, enum.Enum):
@@ -266,11 +333,14 @@ class Request:
         The operation.
     args : Mapping[str, Any]
         The arguments, validated and normalised by :func:`validate_args` (floats as ``float``).
+    client : str or None
+        The sending client's identity (request key ``client``), None when it sent none.
     """
 
     msg_id: str
     op: Op
     args: Mapping[str, Any]
+    client: str | None = None
 
 
 # --------------------------------------------------------------------------- JSON boundary
@@ -362,7 +432,8 @@ def new_msg_id() -> str:
     return secrets.token_hex(16)
 
 
-def encode_request(op: Op, args: Mapping[str, Any], msg_id: str) -> bytes:
+def encode_request(op: Op, args: Mapping[str, Any], msg_id: str, *,
+                   client: str | None = None) -> bytes:
     """Build the bytes of a request, validating ``args`` first.
 
     Parameters
@@ -373,6 +444,9 @@ def encode_request(op: Op, args: Mapping[str, Any], msg_id: str) -> bytes:
         Its arguments (see the module docstring).
     msg_id : str
         A message id from :func:`new_msg_id`.
+    client : str, optional
+        The client's identity (request key ``client``; required by ``claim`` and
+        ``release``), see :func:`check_client`.
 
     Returns
     -------
@@ -391,7 +465,16 @@ def encode_request(op: Op, args: Mapping[str, Any], msg_id: str) -> bytes:
         clean = validate_args(op, args)
     except RequestRejected as exc:
         raise ProtocolError(f"{op.value} request: {exc.detail}") from exc
-    data = _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "op": op.value, "args": clean})
+    message: dict[str, Any] = {"proto": PROTO_VERSION, "msg_id": msg_id, "op": op.value,
+                               "args": clean}
+    if client is not None:
+        try:
+            message["client"] = check_client(client)
+        except RequestRejected as exc:
+            raise ProtocolError(f"{op.value} request: {exc.detail}") from exc
+    elif op in (Op.CLAIM, Op.RELEASE):
+        raise ProtocolError(f"{op.value} request: expected a client identity, got none")
+    data = _dumps(message)
     if len(data) > MAX_MESSAGE_BYTES:
         raise ProtocolError(f"{op.value} request: expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
     return data
@@ -417,10 +500,12 @@ def encode_result(msg_id: str, result: Mapping[str, Any]) -> bytes:
     return data
 
 
-def encode_error(msg_id: str, kind: ErrorKind, detail: str) -> bytes:
-    """Build the bytes of an error reply (the detail is cut to 2000 characters)."""
+def encode_error(msg_id: str, kind: ErrorKind, detail: str,
+                 extra: Mapping[str, Any] | None = None) -> bytes:
+    """Build the bytes of an error reply (the detail is cut to 2000 characters); ``extra``
+    adds the keys a kind defines (``leased``: ``holder``, ``expires_in_s``)."""
     kind = ErrorKind(kind)
-    error = {"kind": kind.value, "detail": str(detail)[:2000]}
+    error = {**dict(extra or {}), "kind": kind.value, "detail": str(detail)[:2000]}
     return _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "ok": False, "error": error})
 
 
@@ -470,7 +555,8 @@ def decode_request(data: bytes) -> Request:
         raise reject(
             ErrorKind.BAD_REQUEST, f"msg_id: expected 1-64 lower-case hex characters, got {_show(raw_id)}"
         )
-    _check_keys("request", message, required=("proto", "msg_id", "op", "args"), optional=(), fail=reject)
+    _check_keys("request", message, required=("proto", "msg_id", "op", "args"),
+                optional=("client",), fail=reject)
     raw_op = message["op"]
     if not isinstance(raw_op, str):
         raise reject(ErrorKind.BAD_REQUEST, f"op: expected a string, got {_show(raw_op)}")
@@ -481,9 +567,22 @@ def decode_request(data: bytes) -> Request:
         raise reject(ErrorKind.UNKNOWN_OP, f"op: expected one of {known}, got {_show(raw_op)}") from None
     try:
         args = validate_args(op, message["args"])
+        client = check_client(message["client"]) if "client" in message else None
     except RequestRejected as exc:
         raise reject(exc.kind, exc.detail) from None
-    return Request(msg_id=msg_id, op=op, args=types.MappingProxyType(args))
+    if client is None and op in (Op.CLAIM, Op.RELEASE):
+        raise reject(ErrorKind.BAD_REQUEST, f"request: {op.value} needs the key 'client' (the "
+                                            f"client's identity)")
+    return Request(msg_id=msg_id, op=op, args=types.MappingProxyType(args), client=client)
+
+
+def check_client(value: object) -> str:
+    """A client identity (request key ``client``), checked: 1 to 128 printable ASCII
+    characters; raises :class:`RequestRejected` (``bad_request``) otherwise."""
+    if not isinstance(value, str) or _CLIENT_RE.fullmatch(value) is None:
+        raise _bad(ErrorKind.BAD_REQUEST, f"client: expected 1 to 128 printable ASCII "
+                                          f"characters, got {_show(value)}")
+    return value
 
 
 def _is_int(value: object) -> bool:
@@ -537,7 +636,7 @@ def _arg_setpoints(where: str, value: object) -> dict[str, float]:
     return clean
 
 
-_NO_ARGUMENTS = frozenset({Op.DESCRIBE, Op.STATUS, Op.SAFE})
+_NO_ARGUMENTS = frozenset({Op.DESCRIBE, Op.STATUS, Op.SAFE, Op.RELEASE})
 
 
 def validate_args(op: Op, args: object) -> dict[str, Any]:
@@ -598,6 +697,13 @@ def validate_args(op: Op, args: object) -> dict[str, Any]:
     if op is Op.THERMAL_STEP:
         _check_keys(where, args, required=("shift_hz",), optional=(), fail=_bad)
         return {"shift_hz": _arg_number("args.shift_hz", args["shift_hz"])}
+    if op is Op.CLAIM:
+        _check_keys(where, args, required=("ttl_s",), optional=(), fail=_bad)
+        ttl = _arg_number("args.ttl_s", args["ttl_s"])
+        if not 0.0 < ttl <= MAX_LEASE_TTL_S:
+            raise _bad(ErrorKind.BAD_REQUEST, f"args.ttl_s: expected a number of seconds in "
+                                              f"(0, {MAX_LEASE_TTL_S:g}], got {_show(args['ttl_s'])}")
+        return {"ttl_s": ttl}
     raise AssertionError(f"unhandled op {op}")  # pragma: no cover - every Op is handled above
 
 
@@ -656,6 +762,10 @@ def decode_reply(data: bytes, msg_id: str) -> dict[str, Any]:
         # An error answering an unreadable msg_id comes back with "", so it is accepted here.
         if got_id not in (msg_id, ""):
             raise ProtocolError(f"reply msg_id: expected {msg_id!r}, got {_show(got_id)}")
+        if kind == ErrorKind.LEASED.value:
+            holder, left = error.get("holder"), error.get("expires_in_s")
+            raise RigLeased(detail, holder if isinstance(holder, str) else None,
+                            float(left) if _is_number(left) and math.isfinite(left) else None)
         raise RigRefused(kind, detail)
     if got_id != msg_id:
         raise ProtocolError(f"reply msg_id: expected {msg_id!r}, got {_show(got_id)}")
@@ -1010,3 +1120,37 @@ def parse_thermal_step(result: Mapping[str, Any]) -> dict[str, Any]:
     _float(result, "clock", where)
     _float(result, "cavity_offset_hz", where)
     return dict(result)
+
+
+@dataclass(frozen=True)
+class Lease:
+    """Result of ``claim``: the lease this client now holds.
+
+    Attributes
+    ----------
+    holder : str
+        The client identity holding it (this client's).
+    ttl_s : float
+        The lease's time to live, s.
+    expires_in_s : float
+        Seconds until it runs out unless renewed.
+    renewed : bool
+        True when this client already held it.
+    """
+
+    holder: str
+    ttl_s: float
+    expires_in_s: float
+    renewed: bool
+
+
+def parse_claim(result: Mapping[str, Any]) -> Lease:
+    """Turn a ``claim`` result into :class:`Lease` (raises ProtocolError)."""
+    where = "claim result"
+    return Lease(_str(result, "holder", where), _float(result, "ttl_s", where),
+                 _float(result, "expires_in_s", where), _bool(result, "renewed", where))
+
+
+def parse_release(result: Mapping[str, Any]) -> bool:
+    """Turn a ``release`` result into whether a lease was released (raises ProtocolError)."""
+    return _bool(result, "released", "release result")

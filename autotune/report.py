@@ -54,7 +54,8 @@ from scipy import stats
 
 from autotune.errors import EstimationError, JournalError
 from autotune.fringe import FringeData, fit_fringe
-from autotune.journal import JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal, read_json
+from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal_prefix,
+                              read_json)
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 
 __all__ = [
@@ -381,7 +382,8 @@ def load_run(path: Path) -> Run:
         raise JournalError(f"{path / MANIFEST_NAME}: expected a JSON object, "
                            f"got {type(manifest).__name__}")
     journal = path / JOURNAL_NAME
-    records = read_journal(journal)
+    # A damaged journal is shown up to its first damaged line (the CLI says where and what).
+    records, _ = read_journal_prefix(journal)
     size = journal.stat().st_size
     cut_line = size > 0 and _last_byte(journal) != b"\n"
     result = None

@@ -46,6 +46,7 @@ from autotune.errors import (
     ConfigErrors,
     Interrupted,
     JournalError,
+    RigLeased,
 )
 from autotune.guided import LockPrior
 from autotune.journal import (
@@ -282,6 +283,12 @@ def settle_failure(session: Session, exc: Exception, status: str) -> str:
         if status == "store_failed":
             return status
         _note_safe(exc, session.go_safe("the run folder could not be written"))
+        return "aborted"
+    if isinstance(exc, RigLeased):
+        # The lease ran out and another client holds the rig now: its run, not ours, decides
+        # where the rig goes, so this one stops without sending safe.
+        session.decide("abort", f"{exc}; the rig belongs to another client now, so it is not "
+                                f"sent to its safe set-points by this run")
         return "aborted"
     if isinstance(exc, AutotuneError):
         session.decide("abort", str(exc))

@@ -12,7 +12,10 @@ unreadable, is kept: see :func:`mark_ran`). Errors a driver raises from the voca
 their error kinds; any other exception, ``BaseException`` included (``SystemExit``,
 ``KeyboardInterrupt``, ``GeneratorExit``), is ``internal`` and the server keeps serving. Every
 result of ``describe``, ``status``, ``apply``, ``acquire`` and ``safe`` carries the server's
-``instance``, new at each start. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
+``instance``, new at each start. The protocol's lease (*One driver at a time*) is kept here, in a
+:class:`autotune.lease.LeaseBook`: ``claim`` and ``release`` are answered by the server, an
+op another client's lease reserves is refused ``leased`` without reaching the rig, and every
+``safe`` is logged with its sender. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
 exit after a number of messages. Optional CURVE encryption admits only clients whose public
 key is in an allowed folder; others get nothing and are logged.
 
@@ -48,6 +51,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune import protocol
 from autotune.errors import ConfigError, DriverRefusal
+from autotune.lease import LeaseBook, LeaseHeld
 from autotune.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
 __all__ = [
@@ -70,7 +74,7 @@ _POLL_MS = 100  # the longest the loop sleeps before it looks at the stop flag a
 _BATCH = 64  # messages taken per wake-up before due replies are sent
 # Refusals never replayed: nothing was done. An internal reply is kept only for a request that
 # ran (mark_ran).
-_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK})
+_NOT_KEPT = frozenset({ErrorKind.BUSY, ErrorKind.INTERLOCK, ErrorKind.LEASED})
 _RAN_ATTRIBUTE = "autotune_request_ran"
 
 
@@ -312,6 +316,7 @@ class RigServer:
         if callable(getattr(rig, "thermal_step", None)):
             dispatch[Op.THERMAL_STEP] = lambda a: rig.thermal_step(a["shift_hz"])
         self._dispatch = types.MappingProxyType(dispatch)
+        self._leases = LeaseBook()
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -526,9 +531,46 @@ class RigServer:
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
+    def _lease_gate(self, request: protocol.Request) -> tuple[bytes, bool] | None:
+        """The reply of a ``claim`` or ``release``, or the ``leased`` refusal of an op another
+        client's lease reserves, with whether the replay cache keeps it; None when the request
+        goes on to the rig. A ``safe`` always
+        goes on, logged with who sent it."""
+        op, client = request.op, request.client
+        log = self._log.bind(op=op.value, msg_id=request.msg_id, client=client)
+        try:
+            if op is Op.CLAIM:
+                assert client is not None  # decode_request requires it
+                result = self._leases.claim(client, request.args["ttl_s"])
+                if not result["renewed"]:
+                    log.info("lease_claimed", ttl_s=result["ttl_s"])
+                return protocol.encode_result(request.msg_id, result), True
+            if op is Op.RELEASE:
+                assert client is not None
+                result = self._leases.release(client)
+                log.info("lease_released", released=result["released"])
+                return protocol.encode_result(request.msg_id, result), True
+            if op is Op.SAFE:
+                holder = self._leases.holder()
+                if holder is not None and holder.client != client:
+                    log.warning("safe_requested", holder=holder.client,
+                                reason="safe is open to every client; the lease stays with "
+                                       "its holder")
+                else:
+                    log.info("safe_requested", holder=None if holder is None else holder.client)
+                return None
+            self._leases.check(op, client)
+        except LeaseHeld as exc:
+            log.info("request_refused", kind=ErrorKind.LEASED.value, detail=str(exc))
+            extra = {"holder": exc.holder, "expires_in_s": round(exc.expires_in_s, 3)}
+            return protocol.encode_error(request.msg_id, ErrorKind.LEASED, str(exc), extra), False
+        return None
+
     def _execute(self, request: protocol.Request) -> tuple[bytes, bool]:
         """Run one request; its reply and whether the replay cache keeps it (see the module
-        notes: not for busy, interlock, or internal when the request did not complete)."""
+        notes: not for busy, interlock, leased, or internal when the request did not complete)."""
+        if (gated := self._lease_gate(request)) is not None:
+            return gated
         handler = self._dispatch.get(request.op)
         if handler is None:
             kind = ErrorKind.UNKNOWN_OP

@@ -23,6 +23,14 @@ START_TIMEOUT_S = 30.0  # a cold start imports numpy and scipy on a busy machine
 STOP_TIMEOUT_S = 5.0
 
 
+def autotune_command() -> list[str]:
+    """The ``autotune`` console script of the environment running the tests, as a user types
+    it (the one beside ``sys.executable``: a PATH lookup could find another installation's);
+    the module entry point where the package is not installed with its script."""
+    script = Path(sys.executable).with_name("autotune")
+    return [str(script)] if script.is_file() else [sys.executable, "-m", "autotune.cli"]
+
+
 @dataclass
 class ServerProcess:
     """An ``autotune rig`` (or ``autotune serve``) child process and what it told us."""

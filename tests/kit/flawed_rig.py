@@ -11,6 +11,9 @@ It serves the example lab driver through the generic server with exactly one fla
                            that ``internal`` reply (a retry never reaches the driver again)
 ``fails_once``             no flaw of the server: its driver fails once, on the first
                            acquisition (a conforming server answers the retry afresh)
+``no_lease``               a rig of the protocol's first edition: no claim, and the request key
+                           ``client`` refused as unknown (allowed: the probe only warns)
+``ignores_lease``          claims are granted, but other clients' moves and acquisitions executed
 
 Usage: ``python flawed_rig.py FLAW READY_FILE``; it listens on a free loopback port, writes the
 endpoint to READY_FILE and serves until SIGTERM.
@@ -39,7 +42,7 @@ from autotune.served import ServedDriver  # noqa: E402
 from autotune.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
 
 FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance",
-         "keeps_internal", "fails_once")
+         "keeps_internal", "fails_once", "no_lease", "ignores_lease")
 
 
 class _Server(RigServer):
@@ -77,7 +80,20 @@ class _Server(RigServer):
             except RequestRejected as exc:
                 if exc.kind is ErrorKind.UNKNOWN_OP:
                     return protocol.encode_error(exc.msg_id, ErrorKind.BAD_REQUEST, exc.detail), False
+        if self._flaw == "no_lease":
+            try:
+                message = json.loads(payload)
+            except ValueError:
+                message = None
+            if isinstance(message, dict) and "client" in message:
+                return protocol.encode_error(str(message.get("msg_id", "")), ErrorKind.BAD_REQUEST,
+                                             "request: unknown key 'client'"), False
         return super()._handle(payload)
+
+    def _lease_gate(self, request: protocol.Request) -> Any:
+        if self._flaw == "ignores_lease" and request.op not in (Op.CLAIM, Op.RELEASE):
+            return None
+        return super()._lease_gate(request)
 
 
 class _StepBlind(ServedDriver):

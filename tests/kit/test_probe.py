@@ -130,6 +130,7 @@ def test_probe_asks_on_a_terminal(serve, answer: str, code: int):
     ("accepts_nan", {"nonfinite"}),
     ("unknown_op_bad_request", {"unknown_op"}),
     ("ignores_steps", {"refuse.step"}),
+    ("ignores_lease", {"lease.refuse"}),
 ])
 def test_broken_server_is_caught(flawed, flaw: str, rules: set[str]):
     """Each deliberate breach of the protocol fails exactly the rules it breaks; exit status 1."""
@@ -161,6 +162,16 @@ def test_server_without_instance_is_a_warning_only(flawed):
     done = _probe(flawed("no_instance"), "--yes")
     assert done.returncode == 0, done.stdout
     assert _outcomes(done.stdout)["instance"] == "WARN"
+
+
+def test_server_without_leases_is_a_warning_only(flawed):
+    """A rig of the protocol's first edition (no claim, no client key): the lease rules warn
+    once and are not run, every other rule passes, exit status 5 (some rules not run)."""
+    done = _probe(flawed("no_lease"), "--yes")
+    outcomes = _outcomes(done.stdout)
+    assert outcomes["lease.claim"] == "WARN", done.stdout
+    assert {outcomes[r] for r in ("lease.refuse", "lease.safe", "lease.release", "lease.expiry")} == {"SKIP"}
+    assert "FAIL" not in outcomes.values() and done.returncode == 5, done.stdout
 
 
 def test_replay_failure_says_what_happened(flawed):

@@ -2,15 +2,13 @@
 
 from __future__ import annotations
 
-import shutil
 import signal
 import socket
 import subprocess
-import sys
 import time
 
 import pytest
-from rig_process import REPO, STOP_TIMEOUT_S
+from rig_process import REPO, STOP_TIMEOUT_S, autotune_command
 
 from autotune.bus import BusClient
 
@@ -27,8 +25,7 @@ def _argv(line: str, port: int) -> list[str]:
     """A README line as argv: the installed console script (the module if not installed)."""
     words = line.replace("PORT", str(port)).split()
     assert words[0] == "autotune"
-    script = shutil.which("autotune")
-    return ([script] if script else [sys.executable, "-m", "autotune.cli"]) + words[1:]
+    return autotune_command() + words[1:]
 
 
 @pytest.mark.parametrize(("serve_line", "probe_line"), [

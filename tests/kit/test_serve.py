@@ -19,7 +19,7 @@ from typing import Any
 import pytest
 
 from cli_helpers import to_toml as _toml
-from rig_process import REPO, STOP_TIMEOUT_S
+from rig_process import REPO, STOP_TIMEOUT_S, autotune_command
 
 from autotune.bus import BusClient, CurveClientKeys
 from autotune.errors import RigRefused
@@ -41,8 +41,7 @@ def _free_port() -> int:
 
 def _autotune_script() -> list[str]:
     """The installed console script, as a user types it (the module entry point if not installed)."""
-    script = shutil.which("autotune")
-    return [script] if script else [sys.executable, "-m", "autotune.cli"]
+    return autotune_command()
 
 
 def test_example_driver_served_over_the_bus(serve):
