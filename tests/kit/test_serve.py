@@ -113,8 +113,10 @@ def test_driver_that_cannot_reach_its_hardware_exits_3(serve, tmp_path: Path):
 def _hanging_driver(tmp_path: Path, timeout_s: float) -> Path:
     """A DRIVER.toml whose driver's constructor never returns (a controller that does not
     answer and a library without a timeout)."""
+    started = tmp_path / "driver-constructor-entered"
     (tmp_path / "hung_driver.py").write_text(
-        "import time\nclass Driver:\n    def __init__(self):\n        time.sleep(3600)\n")
+        "import pathlib, time\nclass Driver:\n    def __init__(self):\n"
+        f"        pathlib.Path({str(started)!r}).touch()\n        time.sleep(3600)\n")
     config = tmp_path / "DRIVER.toml"
     config.write_text('[driver]\nclass = "hung_driver:Driver"\npython_path = ["."]\n'
                       f'[server]\nstart_timeout_s = {timeout_s}\n'
@@ -138,7 +140,11 @@ def test_driver_that_hangs_while_starting_exits_3_within_its_start_timeout(serve
 def test_sigterm_while_the_driver_starts_is_a_clean_stop(serve, tmp_path: Path):
     """SIGTERM while the driver is still starting: serve stops at once with status 0."""
     server = serve(_hanging_driver(tmp_path, 600), wait=False)
-    time.sleep(1.5)
+    # The signal goes once the driver's constructor runs (serve's handlers are in place by
+    # then), not after a fixed sleep that a busy machine's slow imports can outlast.
+    deadline = time.monotonic() + 60
+    while not (tmp_path / "driver-constructor-entered").exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
     server.process.send_signal(signal.SIGTERM)
     assert server.process.wait(timeout=STOP_TIMEOUT_S) == 0
     assert server.wait_for_event("driver_start_interrupted")
