@@ -59,9 +59,9 @@ __all__ = [
 #: gets the hint "did you mean VALUE NAME = PRODUCT?".
 _SLIPS: dict[str, tuple[tuple[float, str], ...]] = {
     "Hz": ((1e3, "kHz"), (1e6, "MHz"), (1e9, "GHz")),
-    "m": ((1e-3, "mm"), (1e-2, "cm"), (1e-6, "µm")),
+    "m": ((1e-3, "mm"), (1e-2, "cm")),
     "m/s": ((1e3, "km/s"), (1e-3, "mm/s")),
-    "s": ((1e-3, "ms"), (1e-6, "µs"), (3600.0, "h")),
+    "s": ((1e-3, "ms"), (3600.0, "h")),
     "K": ((1e-3, "mK"),),
     "V/m": ((1e2, "V/cm"), (1e3, "kV/m")),
     "V": ((1e-3, "mV"), (1e3, "kV")),
@@ -134,7 +134,7 @@ class Plausible:
         else:
             span = f"a value {span}"
         if self.zero:
-            span += " (or 0)"
+            span += ", or 0"
         return f"{span} ({self.why})"
 
     def hint(self, value: float) -> str:
