@@ -261,8 +261,9 @@ CHANNEL_VALUE = Plausible(
     -1e12, 1e12, "", "no instrument channel reads beyond 1e12 of its unit; leave the key out "
     "to take the driver's limit")
 #: Scale of a linear law (set-point unit per channel unit).
+#: (0 passes here: the law refuses it with its own reason.)
 LAW_SCALE = Plausible(
-    1e-12, 1e12, "", "a law within 12 decades of a unit", magnitude=True)
+    1e-12, 1e12, "", "a law within 12 decades of a unit", magnitude=True, zero=True)
 
 # -- budgets and waits ------------------------------------------------------------------------
 
