@@ -2,9 +2,10 @@
 
 Every physical number of a run configuration, of DRIVER.toml's channel laws, of the simulated
 rig's configuration and of the command line is checked against a range a lab could mean. The
-ranges are wide (a factor of tens around what the trade uses) but narrower than a factor of
-1000, so that a value typed in the wrong unit (kHz where Hz is asked, mm where m is asked) falls
-outside and its refusal can say which unit it was probably typed in::
+ranges are wide (a factor of tens around what the trade uses); those of the nominal physics and
+of the velocity are narrower than a factor of 1000, so that a value typed in the wrong unit
+(kHz where Hz is asked, mm where m is asked) falls outside, and a refusal says which unit a
+value was probably typed in::
 
     calibrate.toml: nominal.coupling_hz: expected a value from 1000 to 500000 Hz (vacuum Rabi
     frequencies of microwave cavity QED with Rydberg atoms are tens of kHz), got 49: did you
@@ -152,14 +153,6 @@ class Plausible:
         if self.holds(value):
             return None
         return self.expected(), self.hint(value)
-
-    def refusal(self, where: str, value: float) -> str | None:
-        """The whole sentence ``WHERE: expected ..., got VALUE[: did you mean ...?]`` or None."""
-        found = self.problem(value)
-        if found is None:
-            return None
-        expected, hint = found
-        return f"{where}: expected {expected}, got {value!r}" + (f": {hint}" if hint else "")
 
 
 # -- the atom-cavity system ------------------------------------------------------------------

@@ -494,13 +494,17 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     last_good = read_last_good(store) if command == "retune" else None
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
+    if resume:  # every file is read (and a damaged one refused) before the rig is asked
+        manifest = read_json(run_dir / MANIFEST_NAME)
+        records = read_journal(run_dir / JOURNAL_NAME)
+        if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
+            raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
+                               f"manifest, got {type(manifest).__name__}")
     description = rig.describe()
     problems = preflight(command, config, description, store=store, last_good=last_good,
                          resume=resume)
     changes: list[tuple[str, Any, Any]] = []
     if resume:
-        manifest = read_json(run_dir / MANIFEST_NAME)
-        records = read_journal(run_dir / JOURNAL_NAME)
         if manifest.get("command") != command:
             raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not {command}; "
                                f"resume it with 'autotune {manifest.get('command')} --config "
