@@ -199,3 +199,19 @@ def test_serve_refuses_a_channel_limit_of_1e308_and_a_garbage_rig_config(tmp_pat
     done = autotune("serve", "--config", str(driver), "--bind", "tcp://127.0.0.1:0")
     _refused(done, f"{tmp_path / 'sim-rig.toml'}: expected a TOML file (UTF-8 text)")
     assert "server_listening" not in done.stderr
+
+
+def test_garbage_key_files_stop_the_run_naming_the_file(tmp_path, rig):
+    """[bus.curve] key files of garbage bytes: exit 2 naming the key file (security fails
+    loudly, never a fallback to plain text), no run folder, nothing sent to the rig."""
+    for name in ("client.key_secret", "rig.key"):
+        (tmp_path / name).write_bytes(GARBAGE)
+    config = _config(tmp_path, rig.endpoint,
+                     bus={"curve": {"client_secret_key_file": str(tmp_path / "client.key_secret"),
+                                    "server_public_key_file": str(tmp_path / "rig.key")}})
+    before = _state(rig.endpoint)
+    done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
+    _refused(done, f"{tmp_path / 'client.key_secret'}: curve.client_secret_file: expected a "
+                   "readable ZeroMQ certificate file")
+    assert not (tmp_path / "run").exists()
+    assert _state(rig.endpoint) == before
