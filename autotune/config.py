@@ -481,7 +481,9 @@ def _check_two_pi_velocity(table: _Table, nominal: NominalConfig,
                            setpoints: list[SetpointConfig]) -> None:
     """The nominal 2π velocity must lie in the velocity search box: the search starts there,
     and a nominal outside it is a unit slipped in ``coupling_hz`` or ``waist_m`` (or a box
-    around another rig). Not checked when either key, or the box, is already refused."""
+    around another rig). The velocity comes from :func:`nominal_two_pi_velocity`; the refusal
+    names the units that would put it inside. Not checked when either key is not a positive
+    number (already refused) or the velocity box is itself refused."""
     box = next((sp for sp in setpoints if sp.name == "velocity"), None)
     typed = [table.data.get(key) for key in ("coupling_hz", "waist_m")]
     if box is None or table.absent or not all(

@@ -24,6 +24,7 @@ It is replaced (atomically) only by an accepted calibration or retune.
 
 from __future__ import annotations
 
+import math
 import os
 import platform
 import tempfile
@@ -140,9 +141,15 @@ def read_last_good(path: Path) -> dict[str, Any]:
     if not isinstance(data, dict) or not isinstance(data.get("setpoints"), dict) or not isinstance(
             data.get("inversion"), int | float) or isinstance(data.get("inversion"), bool):
         raise ConfigError(str(path), "setpoints/inversion", "a last good calibration", data)
+    # JSON readers take NaN and Infinity: a store must hold what a calibration can measure.
+    if not -2.0 <= data["inversion"] <= 2.0:
+        raise ConfigError(str(path), "inversion", "a measured inversion from -2 to 2 (a "
+                          "difference of two probabilities, at most 1 in size, noise aside)",
+                          data["inversion"])
     for name, value in data["setpoints"].items():
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise ConfigError(str(path), f"setpoints.{name}", "a number", value)
+        if isinstance(value, bool) or not isinstance(value, int | float) or \
+                not math.isfinite(value):
+            raise ConfigError(str(path), f"setpoints.{name}", "a finite number", value)
     return data
 
 

@@ -284,3 +284,20 @@ def test_flags_out_of_range_exit_2_with_the_reason(argv, fragment, capsys):
         main(argv)
     assert info.value.code == 2
     assert fragment in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(("text", "fragment"), [
+    ('{"setpoints": {"velocity": 500.0, "detuning": NaN}, "inversion": 0.8}',
+     "setpoints.detuning: expected a finite number, got nan"),
+    ('{"setpoints": {"velocity": 500.0, "detuning": 0.0}, "inversion": Infinity}',
+     "inversion: expected a measured inversion from -2 to 2"),
+])
+def test_a_last_good_store_holds_finite_numbers(tmp_path, text, fragment):
+    """JSON readers take NaN and Infinity; a last good store holding them is refused naming
+    the file and key."""
+    from autotune.runner import read_last_good
+
+    store = tmp_path / "good.json"
+    store.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError, match=fragment):
+        read_last_good(store)
