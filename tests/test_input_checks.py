@@ -215,3 +215,16 @@ def test_garbage_key_files_stop_the_run_naming_the_file(tmp_path, rig):
                    "readable ZeroMQ certificate file")
     assert not (tmp_path / "run").exists()
     assert _state(rig.endpoint) == before
+
+
+def test_rig_refuses_a_garbage_config_and_an_absurd_delay(tmp_path):
+    """autotune rig with a config of garbage bytes, and with a reply delay of a year: exit 2
+    naming the file or the flag; nothing listens."""
+    garbage = tmp_path / "garbage.toml"
+    garbage.write_bytes(GARBAGE)
+    done = autotune("rig", "--config", str(garbage), "--bind", "tcp://127.0.0.1:0")
+    _refused(done, f"{garbage}: expected a TOML file (UTF-8 text)")
+    assert "server_listening" not in done.stderr
+    done = autotune("rig", "--bind", "tcp://127.0.0.1:0", "--delay-s", "3.2e7")
+    _refused(done, "<flags>: delay_reply_s: expected a number of seconds from 0 to 600")
+    assert "server_listening" not in done.stderr
