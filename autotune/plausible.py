@@ -12,8 +12,9 @@ value was probably typed in::
     mean 49 kHz = 49000?
 
 Each range names where it comes from beside it (a published or textbook fact, "from memory"
-where recalled, or the design of this program). Pure: no I/O; the simulated rig's
-configuration uses the same table through :mod:`autotune.driver`.
+where recalled, or the design of this program). Pure and a leaf: no I/O and no import of
+autotune, so that the simulated rig's configuration (``drivers_sim``) holds its keys to the
+same table as the client's.
 """
 
 from __future__ import annotations
