@@ -28,6 +28,7 @@ Everything here is pure: no I/O, no sockets.
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import math
 import types
@@ -35,7 +36,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any, ClassVar, Literal
 
-from autotune.errors import ConfigError, OutOfRange
+from autotune import plausible
+from autotune.errors import ConfigError, ConfigErrors, OutOfRange
 from autotune.protocol import STEP_TOLERANCE
 
 __all__ = [
@@ -515,6 +517,58 @@ class _Reader:
         return float(value)
 
 
+#: The ranges a lab could mean of a set-point's value and step (autotune.plausible).
+_SETPOINT_RANGES: Mapping[str, tuple[plausible.Plausible, plausible.Plausible]] = {
+    "velocity": (plausible.VELOCITY_M_PER_S, plausible.VELOCITY_STEP_M_PER_S),
+    "detuning": (plausible.DETUNING_HZ, plausible.DETUNING_STEP_HZ),
+}
+
+
+def _channel_range(channel_unit: str) -> plausible.Plausible:
+    """What a channel value in ``channel_unit`` may be: voltages up to 100 kV, anything else
+    within the catch-all (no stand-in for "no limit": leave the key out)."""
+    if channel_unit in _VOLT_UNITS:
+        bound = plausible.VOLTAGE_V.high / _VOLT_UNITS[channel_unit]
+        return dataclasses.replace(plausible.VOLTAGE_V, low=-bound, high=bound, unit=channel_unit)
+    return plausible.CHANNEL_VALUE
+
+
+def _key_ranges(name: str, channel_unit: str) -> dict[str, plausible.Plausible]:
+    """The range a lab could mean of every numeric key of a ``[setpoints.NAME]`` table."""
+    value, step = _SETPOINT_RANGES[name]
+    channel = _channel_range(channel_unit)
+    channel_size = dataclasses.replace(channel, low=0.0, high=channel.high)
+    return {
+        "limit_min": value, "limit_max": value, "safe": value, "max_step": step,
+        "offset": dataclasses.replace(value, low=-max(abs(value.low), value.high),
+                                      high=max(abs(value.low), value.high)),
+        "channel_limit_min": channel, "channel_limit_max": channel, "channel_safe": channel,
+        "channel_max_step": channel_size, "channel_readback_tolerance": channel_size,
+        "scale": plausible.LAW_SCALE,
+        "coefficient_hz_m2_per_v2": plausible.STARK_COEFFICIENT_HZ_M2_PER_V2,
+        "bias_field_v_per_m": plausible.ELECTRIC_FIELD_V_PER_M,
+        "electrode_gap_m": plausible.ELECTRODE_GAP_M,
+    }
+
+
+def _implausible(table: Mapping[str, Any], file: str, prefix: str, name: str
+                 ) -> list[ConfigError]:
+    """Every numeric key of one set-point's table outside the range a lab could mean (a value
+    typed in another unit gets a hint at it); wrong types are left to the reader."""
+    channel_unit = table.get("channel_unit")
+    ranges = _key_ranges(name, channel_unit if isinstance(channel_unit, str) else "")
+    problems = []
+    for key, spec in ranges.items():
+        value = table.get(key)
+        if isinstance(value, bool) or not isinstance(value, int | float) or \
+                not math.isfinite(value):
+            continue
+        found = spec.problem(float(value))
+        if found is not None:
+            problems.append(ConfigError(file, f"{prefix}.{key}", found[0], value, hint=found[1]))
+    return problems
+
+
 def _law_from(reader: _Reader, name: str, unit: str, channel_unit: str) -> Law:
     kind = reader.string("law")
     if kind not in _LAW_KEYS:
@@ -658,9 +712,16 @@ def channel_map_from_table(table: Any, driver_channels: Mapping[str, ChannelInfo
         Naming the file, the dotted key, what was expected and what was found, for any wrong,
         missing, unknown or inconsistent value (a channel the driver lacks, a unit that differs
         from the driver's, limits that do not overlap, no limit, no step, no safe value).
+        Values outside the range a lab could mean (:mod:`autotune.plausible`) are reported
+        first, all of them at once (:class:`~autotune.errors.ConfigErrors`).
     """
     if not isinstance(table, Mapping) or not table:
         raise ConfigError(file, prefix, "a table [setpoints.NAME] per set-point (velocity, detuning)", table)
+    implausible = [problem for name, declaration in table.items()
+                   if name in SETPOINT_UNITS and isinstance(declaration, Mapping)
+                   for problem in _implausible(declaration, file, f"{prefix}.{name}", name)]
+    if implausible:
+        raise ConfigErrors(implausible)
     mapped: dict[str, MappedSetpoint] = {}
     used: dict[str, str] = {}
     for name, declaration in table.items():

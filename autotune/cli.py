@@ -69,6 +69,7 @@ from autotune.errors import (
 )
 from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
 from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder, holder_if_running, holder_text
+from autotune.plausible import SEED_MAX, SERVER_TIMEOUT_S, THERMAL_STEP_HZ, Plausible
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -928,6 +929,14 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
                 raise ConfigError(str(path), "<file>", f"an existing file (pass {flag})",
                                   "no such file")
         config = load_config(config_path)
+        # The rig's own config is read again by the rig process; a bad one must be refused
+        # here, naming the file, before the run folder exists.
+        from drivers_sim.config import SimConfigError, load_sim_config
+        try:
+            load_sim_config(rig_config)
+        except SimConfigError as exc:
+            print(f"autotune: {exc}", file=sys.stderr)
+            return EXIT_BAD_INPUT
         if ns.seed is not None:
             config = dataclasses.replace(
                 config, search=dataclasses.replace(config.search, seed=ns.seed))
@@ -1124,16 +1133,50 @@ def _cmd_report(ns: argparse.Namespace) -> int:
 
 def _at_least_one(text: str) -> int:
     value = int(text)
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected an integer >= 1, got {text!r}")
+    if not 1 <= value <= 10_000_000:
+        raise argparse.ArgumentTypeError(f"expected an integer from 1 to 10000000 (the most "
+                                         f"shots per phase a config takes), got {text!r}")
     return value
 
 
 def _positive_seconds(text: str) -> float:
     value = float(text)
-    if not (value > 0.0 and value < float("inf")):
-        raise argparse.ArgumentTypeError(f"expected a finite number of seconds > 0, got {text!r}")
+    if not (value > 0.0 and value <= SERVER_TIMEOUT_S):
+        raise argparse.ArgumentTypeError(f"expected a number of seconds > 0 and at most "
+                                         f"{SERVER_TIMEOUT_S:g} (an hour), got {text!r}")
     return value
+
+
+def _seed(text: str) -> int:
+    """A seed flag: an integer the configs take as a seed (``[search] seed``)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
+    if not 0 <= value <= SEED_MAX:
+        raise argparse.ArgumentTypeError(f"expected an integer from 0 to {SEED_MAX} (a seed, "
+                                         f"as [search] seed), got {text!r}")
+    return value
+
+
+def _physical(spec: Plausible) -> Callable[[str], float]:
+    """A flag holding a physical value: a finite number within the range a lab could mean of
+    its kind (autotune.plausible), refused with a hint at a slipped unit."""
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a number in {spec.unit}, got "
+                                             f"{text!r}") from None
+        if not math.isfinite(value):
+            raise argparse.ArgumentTypeError(f"expected a finite number in {spec.unit}, got "
+                                             f"{text!r}")
+        if (found := spec.problem(value)) is not None:
+            expected, hint = found
+            raise argparse.ArgumentTypeError(f"expected {expected}, got {text}"
+                                             + (f": {hint}" if hint else ""))
+        return value
+    return parse
 
 
 def _non_negative_seconds(text: str) -> float:
@@ -1162,7 +1205,7 @@ def _parser() -> argparse.ArgumentParser:
                      help="simulated rig TOML (default: the packaged copy of "
                           "configs/sim-rig.toml)")
     _add_server_arguments(rig, bind_default="tcp://127.0.0.1:5560")
-    rig.add_argument("--seed", type=int, default=None,
+    rig.add_argument("--seed", type=_seed, default=None,
                      help="seed of the rig's noise and of the faults (default: the config's "
                           "rig.default_seed)")
     faults = rig.add_argument_group("fault injection (to test clients)")
@@ -1225,9 +1268,9 @@ def _parser() -> argparse.ArgumentParser:
                                        "configs/dry-run.toml)")
     dry.add_argument("--rig-config", help="simulated rig TOML (default: the packaged copy of "
                                            "configs/sim-rig.toml)")
-    dry.add_argument("--seed", type=int, help="seed of the rig and the search")
+    dry.add_argument("--seed", type=_seed, help="seed of the rig and the search")
     dry.add_argument("--out", help="folder for the stages' run folders")
-    dry.add_argument("--thermal-step-hz", type=float, default=15e3,
+    dry.add_argument("--thermal-step-hz", type=_physical(THERMAL_STEP_HZ), default=15e3,
                      help="cavity frequency step before the retune (Hz, default 15000)")
     dry.add_argument("--no-retune", action="store_true", help="stop after the calibration")
     dry.set_defaults(handler=_cmd_dry_run)

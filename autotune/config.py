@@ -22,6 +22,8 @@ The file layout (see ``configs/calibrate.toml`` for a commented example)::
 
 from __future__ import annotations
 
+import dataclasses
+import difflib
 import math
 import tomllib
 from collections.abc import Mapping
@@ -29,6 +31,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, get_args
 
+from autotune import plausible
 from autotune.errors import ConfigError, ConfigErrors
 
 __all__ = [
@@ -357,10 +360,11 @@ class _Table:
     def _key(self, name: str) -> str:
         return f"{self.path}.{name}" if self.path else name
 
-    def problem(self, key: str, expected: str, got: object) -> None:
+    def problem(self, key: str, expected: str, got: object, hint: str = "") -> None:
         """Record a problem of ``key`` (a dotted key relative to this table)."""
         if not self.absent:
-            self.problems.append(ConfigError(self.source, self._key(key), expected, got))
+            self.problems.append(ConfigError(self.source, self._key(key), expected, got,
+                                             hint=hint))
 
     def _raw(self, name: str, default: object) -> object:
         self.used.add(name)
@@ -382,11 +386,11 @@ class _Table:
                       absent=self.absent)
 
     def _ranged(self, name: str, value: float, low: float | None, high: float | None,
-                low_open: bool) -> None:
+                low_open: bool, why: str = "") -> None:
         if low is not None and (value <= low if low_open else value < low):
             self.problem(name, f"a value {'>' if low_open else '>='} {low:g}", value)
         elif high is not None and value > high:
-            self.problem(name, f"a value <= {high:g}", value)
+            self.problem(name, f"a value <= {high:g}" + (f" ({why})" if why else ""), value)
 
     def number(
         self,
@@ -396,7 +400,11 @@ class _Table:
         low: float | None = None,
         high: float | None = None,
         low_open: bool = False,
+        spec: plausible.Plausible | None = None,
+        why: str = "",
     ) -> float:
+        """A finite number within ``[low, high]`` and, with ``spec``, within the range a lab
+        could mean for its kind of quantity (refused with a hint at a slipped unit)."""
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
@@ -407,12 +415,17 @@ class _Table:
         if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
             self.problem(name, "a finite number", value)
             return stand_in
-        value = float(value)
-        self._ranged(name, value, low, high, low_open)
+        typed, value = value, float(value)
+        before = len(self.problems)
+        self._ranged(name, value, low, high, low_open, why)
+        if spec is not None and len(self.problems) == before:
+            found = spec.problem(value)
+            if found is not None:
+                self.problem(name, found[0], typed, found[1])
         return value
 
     def integer(self, name: str, default: object = None, *, low: int | None = None,
-                high: int | None = None) -> int:
+                high: int | None = None, why: str = "") -> int:
         if default is None:
             default = _REQUIRED
         value = self._raw(name, default)
@@ -422,7 +435,7 @@ class _Table:
         if isinstance(value, bool) or not isinstance(value, int):
             self.problem(name, "an integer", value)
             return stand_in
-        self._ranged(name, value, low, high, False)
+        self._ranged(name, value, low, high, False, why)
         return value
 
     def boolean(self, name: str, default: object = None) -> bool:
@@ -453,12 +466,58 @@ class _Table:
 
     def finish(self) -> None:
         for name in sorted(set(self.data) - self.used):
+            near = difflib.get_close_matches(str(name), sorted(self.used), n=1)
             self.problem(name, "no such key (known: " + ", ".join(sorted(self.used)) + ")",
-                         self.data[name])
+                         self.data[name], f"did you mean {near[0]!r}?" if near else "")
 
 
 _REQUIRED = object()
 _MISSING = object()
+
+_SHOTS_WHY = "1e9 shots are 77 days of beam at 150 shots per second: no budget a lab means"
+_RIG_TIME_WHY = "30 days: no budget a lab means"
+
+
+def _check_two_pi_velocity(table: _Table, nominal: NominalConfig,
+                           setpoints: list[SetpointConfig]) -> None:
+    """The nominal 2π velocity must lie in the velocity search box: the search starts there,
+    and a nominal outside it is a unit slipped in ``coupling_hz`` or ``waist_m`` (or a box
+    around another rig). The velocity comes from :func:`nominal_two_pi_velocity`; the refusal
+    names the units that would put it inside. Not checked when either key is not a positive
+    number (already refused) or the velocity box is itself refused."""
+    box = next((sp for sp in setpoints if sp.name == "velocity"), None)
+    typed = [table.data.get(key) for key in ("coupling_hz", "waist_m")]
+    if box is None or table.absent or not all(
+            isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x) and x > 0
+            for x in typed) or any(problem.key.startswith("setpoints.velocity.")
+                                   for problem in table.problems):
+        return
+    velocity = nominal.two_pi_velocity
+    if box.search_min <= velocity <= box.search_max:
+        return
+    guesses = []
+    for key, value, spec in (("coupling_hz", nominal.coupling_hz, plausible.COUPLING_HZ),
+                             ("waist_m", nominal.waist_m, plausible.WAIST_M)):
+        for factor, unit in plausible.unit_slips(spec.unit):
+            other = dataclasses.replace(nominal, **{key: value * factor})
+            if box.search_min <= other.two_pi_velocity <= box.search_max:
+                guesses.append(f"{key} = {value:g} {unit} = {value * factor:g} "
+                               f"(giving {other.two_pi_velocity:.1f} m/s)")
+    table.problem(
+        "coupling_hz/waist_m",
+        f"a nominal 2π velocity Ω0 w / (2 √π), Ω0 = 2π coupling_hz, within the velocity search "
+        f"box [{box.search_min:g}, {box.search_max:g}] m/s (setpoints.velocity)",
+        _MetresPerSecond(velocity),
+        f"the 2π velocity of coupling_hz = {nominal.coupling_hz:g} Hz and waist_m = "
+        f"{nominal.waist_m:g} m" + (f"; did you mean {' or '.join(guesses)}?" if guesses else
+                                    "; check both and the box"))
+
+
+class _MetresPerSecond(float):
+    """A velocity that shows its unit in a message (``503.7 m/s``)."""
+
+    def __repr__(self) -> str:
+        return f"{float(self):.4g} m/s"
 
 
 def _is_local_time(text: str) -> bool:
@@ -469,17 +528,27 @@ def _is_local_time(text: str) -> bool:
     return int(parts[0]) <= 23 and int(parts[1]) <= 59
 
 
+#: The ranges a lab could mean for each set-point of the protocol: (value, step); a set-point
+#: of another name is held to the catch-all of any channel.
+_SETPOINT_RANGES: dict[str, tuple[plausible.Plausible, plausible.Plausible]] = {
+    "velocity": (plausible.VELOCITY_M_PER_S, plausible.VELOCITY_STEP_M_PER_S),
+    "detuning": (plausible.DETUNING_HZ, plausible.DETUNING_STEP_HZ),
+}
+_ANY_SETPOINT = (plausible.CHANNEL_VALUE, plausible.CHANNEL_VALUE)
+
+
 def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
+    value_range, step_range = _SETPOINT_RANGES.get(name, _ANY_SETPOINT)
     unit = table.string("unit")
-    limit_min = table.number("limit_min")
-    limit_max = table.number("limit_max")
+    limit_min = table.number("limit_min", spec=value_range)
+    limit_max = table.number("limit_max", spec=value_range)
     if limit_max <= limit_min:
         table.problem("limit_max", f"a value > limit_min = {limit_min:g}", limit_max)
-    search_min = table.number("search_min", low=limit_min, high=limit_max)
-    search_max = table.number("search_max", low=limit_min, high=limit_max)
+    search_min = table.number("search_min", low=limit_min, high=limit_max, spec=value_range)
+    search_max = table.number("search_max", low=limit_min, high=limit_max, spec=value_range)
     if search_max <= search_min:
         table.problem("search_max", f"a value > search_min = {search_min:g}", search_max)
-    max_step = table.number("max_step", low=0.0, low_open=True)
+    max_step = table.number("max_step", low=0.0, low_open=True, spec=step_range)
     table.finish()
     return SetpointConfig(name, unit, search_min, search_max, limit_min, limit_max, max_step)
 
@@ -549,8 +618,9 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         strategy=strategy,  # type: ignore[arg-type]
         seed=s_t.integer("seed", 0, low=0, high=2**32 - 1),
         max_points=s_t.integer("max_points", low=1, high=10_000),
-        max_shots=s_t.integer("max_shots", low=1),
-        max_rig_time_s=s_t.number("max_rig_time_s", low=0.0, low_open=True),
+        max_shots=s_t.integer("max_shots", low=1, high=plausible.MAX_SHOTS, why=_SHOTS_WHY),
+        max_rig_time_s=s_t.number("max_rig_time_s", low=0.0, low_open=True,
+                                  high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
         n_initial_points=s_t.integer("n_initial_points", 8, low=1, high=1000),
         min_points=s_t.integer("min_points", 12, low=1, high=10_000),
         grid_points_per_dimension=s_t.integer("grid_points_per_dimension", 9, low=2, high=200),
@@ -562,17 +632,18 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         max_drift_hz_per_s=s_t.number("max_drift_hz_per_s", 3.0, low=0.0, high=1e4,
                                       low_open=True),
         refine_points=s_t.integer("refine_points", 7, low=0, high=50),
-        refine_half_width_hz=s_t.number("refine_half_width_hz", 9e3, low=0.0, high=1e9,
-                                        low_open=True),
+        refine_half_width_hz=s_t.number("refine_half_width_hz", 9e3, low=0.0, low_open=True,
+                                        spec=plausible.DETUNING_STEP_HZ),
     )
     s_t.finish()
 
     n_t = top.table("nominal")
     nominal = NominalConfig(
-        coupling_hz=n_t.number("coupling_hz", low=0.0, high=1e9, low_open=True),
-        waist_m=n_t.number("waist_m", low=0.0, high=1.0, low_open=True),
+        coupling_hz=n_t.number("coupling_hz", spec=plausible.COUPLING_HZ),
+        waist_m=n_t.number("waist_m", spec=plausible.WAIST_M),
     )
     n_t.finish()
+    _check_two_pi_velocity(n_t, nominal, setpoints)
 
     a_t = top.table("acceptance")
     min_inversion = a_t.number("min_inversion", low=-1.0, high=1.0)
@@ -586,13 +657,14 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
     hw_t = r_t.table("half_widths")
     half_widths = {}
     for sp in setpoints:
-        half_widths[sp.name] = hw_t.number(sp.name, low=0.0, low_open=True)
+        half_widths[sp.name] = hw_t.number(sp.name, low=0.0, low_open=True,
+                                           spec=_SETPOINT_RANGES.get(sp.name, _ANY_SETPOINT)[1])
     hw_t.finish()
     retune = RetuneConfig(
         still_good_fraction=r_t.number("still_good_fraction", low=0.0, high=1.0, low_open=True),
         half_widths=half_widths,
         max_points=r_t.integer("max_points", low=1, high=10_000),
-        max_shots=r_t.integer("max_shots", low=1),
+        max_shots=r_t.integer("max_shots", low=1, high=plausible.MAX_SHOTS, why=_SHOTS_WHY),
         n_initial_points=r_t.integer("n_initial_points", 4, low=1, high=1000),
         check_shots_per_phase=r_t.integer("check_shots_per_phase", low=1, high=100_000_000),
     )
@@ -624,7 +696,7 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
                                            high=math.pi, low_open=True),
         min_contrast_ratio=l_t.number("min_contrast_ratio", 0.35, low=0.0, high=1.0),
         bracket_step_hz=l_t.number("bracket_step_hz", nominal.coupling_hz / 5.0, low=0.0,
-                                   high=1e9, low_open=True),
+                                   low_open=True, spec=plausible.DETUNING_STEP_HZ),
         velocity_step_fraction=l_t.number("velocity_step_fraction", 0.05, low=0.0, high=0.5,
                                           low_open=True),
         phase_at_peak_rad=l_t.number("phase_at_peak_rad", math.pi, low=0.0, high=2 * math.pi),
@@ -654,15 +726,15 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
                                           defaults.false_alarm_interval_s, low=60.0, high=1e9),
         max_gain=t_t.number("max_gain", defaults.max_gain, low=0.0, high=1.0, low_open=True),
         max_correction_hz=t_t.number("max_correction_hz", defaults.max_correction_hz, low=0.0,
-                                     high=1e9, low_open=True),
+                                     low_open=True, spec=plausible.DETUNING_STEP_HZ),
         min_correction_hz=t_t.number("min_correction_hz", defaults.min_correction_hz, low=0.0,
-                                     high=1e9),
+                                     high=plausible.DETUNING_STEP_HZ.high),
         min_shots_per_phase=t_t.integer("min_shots_per_phase", defaults.min_shots_per_phase,
                                         low=1, high=10_000_000),
         max_interval_s=t_t.number("max_interval_s", defaults.max_interval_s, low=60.0,
                                   high=86400.0),
         walk_hz_per_sqrt_s=t_t.number("walk_hz_per_sqrt_s", defaults.walk_hz_per_sqrt_s,
-                                      low=0.0, high=1e6),
+                                      spec=plausible.RANDOM_WALK_HZ_PER_SQRT_S),
         inversion_drop=t_t.number("inversion_drop", defaults.inversion_drop, low=0.0, high=1.0,
                                   low_open=True),
         retune_shots_per_phase=t_t.integer("retune_shots_per_phase",
@@ -670,9 +742,10 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
                                            high=100_000_000),
         max_consecutive_failures=t_t.integer("max_consecutive_failures",
                                              defaults.max_consecutive_failures, low=1, high=1000),
-        max_rig_time_s=t_t.number("max_rig_time_s", defaults.max_rig_time_s, low=0.0, high=1e9),
+        max_rig_time_s=t_t.number("max_rig_time_s", defaults.max_rig_time_s, low=0.0,
+                                  high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
         max_wall_time_s=t_t.number("max_wall_time_s", defaults.max_wall_time_s, low=0.0,
-                                   high=1e9),
+                                   high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
         end_at_local_time=end_at,
         on_stop=t_t.string("on_stop", defaults.on_stop, choices=get_args(StopAction)),  # type: ignore[arg-type]
     )
@@ -718,7 +791,8 @@ def load_config(path: str | Path) -> RunConfig:
     Raises
     ------
     ConfigError
-        The file is missing, is not TOML, or holds a wrong, missing or unknown value.
+        The file is missing, is not UTF-8 TOML, or holds a wrong, missing or unknown value
+        (every problem of the file at once).
     """
     path = Path(path)
     try:
@@ -728,6 +802,10 @@ def load_config(path: str | Path) -> RunConfig:
         raise ConfigError(str(path), "<file>", "an existing TOML file", "no such file") from exc
     except OSError as exc:
         raise ConfigError(str(path), "<file>", "a readable file", str(exc)) from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(str(path), "<file>", "a TOML file (UTF-8 text)",
+                          f"bytes that are not UTF-8 text ({exc.reason} at byte {exc.start})"
+                          ) from exc
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(path), "<file>", "valid TOML", str(exc)) from exc
     return config_from_dict(data, source=str(path), base_dir=path.parent)

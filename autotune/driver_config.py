@@ -41,6 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import ConfigError
+from autotune.plausible import SERVER_TIMEOUT_S
 
 __all__ = ["DEFAULT_BIND", "DEFAULT_START_TIMEOUT_S", "DEFAULT_STOP_TIMEOUT_S",
            "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
@@ -108,6 +109,9 @@ def _seconds(file: str, server: Mapping[str, Any], key: str, default: float) -> 
     if isinstance(value, bool) or not isinstance(value, (int, float)) or \
             not 0.0 < value < float("inf"):
         raise ConfigError(file, f"server.{key}", "a finite number of seconds > 0", value)
+    if value > SERVER_TIMEOUT_S:
+        raise ConfigError(file, f"server.{key}", f"at most {SERVER_TIMEOUT_S:g} s (a driver "
+                          f"that takes longer is taken as hung)", value)
     return float(value)
 
 

@@ -81,14 +81,20 @@ class ConfigError(AutotuneError):
         What was expected, in words.
     got : object
         What was found.
+    hint : str, optional
+        What the value was probably meant to be (``"did you mean 49 kHz = 49000?"``), shown
+        after it.
     """
 
-    def __init__(self, file: str, key: str, expected: str, got: object) -> None:
+    def __init__(self, file: str, key: str, expected: str, got: object, *,
+                 hint: str = "") -> None:
         self.file = str(file)
         self.key = key
         self.expected = expected
         self.got = got
-        super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}")
+        self.hint = hint
+        super().__init__(f"{self.file}: {key}: expected {expected}, got {got!r}"
+                         + (f": {hint}" if hint else ""))
 
 
 class ConfigErrors(ConfigError):
@@ -105,7 +111,8 @@ class ConfigErrors(ConfigError):
             raise ValueError("ConfigErrors: expected at least one problem")
         self.problems = list(problems)
         first = self.problems[0]
-        super().__init__(first.file, first.key, first.expected, first.got)
+        super().__init__(first.file, first.key, first.expected, first.got,
+                         hint=getattr(first, "hint", ""))
         if len(self.problems) > 1:
             lines = [f"{len(self.problems)} problems, nothing was sent to the rig:"]
             lines += [f"  - {problem}" for problem in self.problems]

@@ -24,6 +24,7 @@ It is replaced (atomically) only by an accepted calibration or retune.
 
 from __future__ import annotations
 
+import math
 import os
 import platform
 import tempfile
@@ -142,9 +143,15 @@ def read_last_good(path: Path) -> dict[str, Any]:
     if not isinstance(data, dict) or not isinstance(data.get("setpoints"), dict) or not isinstance(
             data.get("inversion"), int | float) or isinstance(data.get("inversion"), bool):
         raise ConfigError(str(path), "setpoints/inversion", "a last good calibration", data)
+    # JSON readers take NaN and Infinity: a store must hold what a calibration can measure.
+    if not -2.0 <= data["inversion"] <= 2.0:
+        raise ConfigError(str(path), "inversion", "a measured inversion from -2 to 2 (a "
+                          "difference of two probabilities, at most 1 in size, noise aside)",
+                          data["inversion"])
     for name, value in data["setpoints"].items():
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise ConfigError(str(path), f"setpoints.{name}", "a number", value)
+        if isinstance(value, bool) or not isinstance(value, int | float) or \
+                not math.isfinite(value):
+            raise ConfigError(str(path), f"setpoints.{name}", "a finite number", value)
     return data
 
 
@@ -530,15 +537,18 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     last_good = read_last_good(store) if command == "retune" else None
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
-    if resume:
+    if resume:  # every file is read (and a damaged one refused) before the rig is asked
         never_started(run_dir)
+        manifest = read_json(run_dir / MANIFEST_NAME)
+        records = read_journal(run_dir / JOURNAL_NAME)
+        if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
+            raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
+                               f"manifest, got {type(manifest).__name__}")
     description = opening_call("describe", rig.describe, config, rig, stop)
     problems = preflight(command, config, description, store=store, last_good=last_good,
                          resume=resume)
     changes: list[tuple[str, Any, Any]] = []
     if resume:
-        manifest = read_json(run_dir / MANIFEST_NAME)
-        records = read_journal(run_dir / JOURNAL_NAME)
         if manifest.get("command") != command:
             raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not {command}; "
                                f"resume it with 'autotune {manifest.get('command')} --config "

@@ -130,11 +130,13 @@ class FaultConfig:
             if not _is_number(value) or not 0.0 <= value <= 1.0:
                 raise ConfigError("<memory>", key, "a probability in [0, 1]", value)
         delay = self.delay_reply_s
-        if not _is_number(delay) or not (math.isfinite(delay) and delay >= 0):
-            raise ConfigError("<memory>", "delay_reply_s", "a finite number of seconds >= 0", delay)
+        if not _is_number(delay) or not (math.isfinite(delay) and 0 <= delay <= 600.0):
+            raise ConfigError("<memory>", "delay_reply_s", "a number of seconds from 0 to 600 "
+                              "(the longest reply wait a client takes, bus.timeout_s)", delay)
         value = self.exit_after_messages
-        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise ConfigError("<memory>", "exit_after_messages", "an integer >= 0 (0: never)", value)
+        if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value <= 10**9:
+            raise ConfigError("<memory>", "exit_after_messages", "an integer from 0 to 1e9 "
+                              "(0: never)", value)
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any] | None, *, file: str = "<memory>") -> FaultConfig:

@@ -221,15 +221,18 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
     last_good = read_last_good(store) if store.exists() else None
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
-    if resume:
+    if resume:  # every file is read (and a damaged one refused) before the rig is asked
         never_started(run_dir)
+        manifest = read_json(run_dir / MANIFEST_NAME)
+        records = read_journal(run_dir / JOURNAL_NAME)
+        if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
+            raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
+                               f"manifest, got {type(manifest).__name__}")
     description = opening_call("describe", rig.describe, config, rig, stop)
     problems = track_preflight(config, description, store=store, last_good=last_good,
                                resume=resume)
     changes: list[tuple[str, Any, Any]] = []
     if resume:
-        manifest = read_json(run_dir / MANIFEST_NAME)
-        records = read_journal(run_dir / JOURNAL_NAME)
         if manifest.get("command") != "track":
             raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not a night of "
                                f"track; resume it with 'autotune {manifest.get('command')} "

@@ -2,7 +2,10 @@
 
 Every value is checked here for type, range and finiteness, and unknown keys are refused; an
 error is a :class:`SimConfigError` whose message names the file, the dotted key, what was
-expected and what was received. The top-level ``[faults]`` table belongs to the server
+expected and what was received, for every problem of the file at once. A physical value must
+also lie in the range a lab could mean (:mod:`autotune.plausible`, shared with the client's
+configuration): a value typed in the wrong unit is refused with a hint at the likely one
+(``cavity.damping_time_s ... got 25: did you mean 25 ms = 0.025?``). The top-level ``[faults]`` table belongs to the server
 (``autotune rig`` validates it with :class:`autotune.server.FaultConfig`) and is kept
 unvalidated as a plain dict.
 
@@ -15,12 +18,14 @@ round-trip through ``to_dict`` / ``sim_config_from_dict`` when the new values ne
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import math
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import autotune.plausible as plausible
 from drivers_sim.physics import (
     MODE_PROFILES,
     SUPER_GAUSSIAN_ORDER_RANGE,
@@ -404,7 +409,7 @@ _SECTION_SPECS: dict[str, dict[str, _Spec]] = {
         "max_shots_per_acquisition": _i(1, 10**9),
     },
     "cavity": {
-        "frequency_hz": _f(1e6, 1e13),
+        "frequency_hz": _f(0.0, low_open=True),
         "coupling_hz": _f(0.0, 1e8, low_open=True),
         "waist_m": _f(0.0, 1.0, low_open=True),
         "damping_time_s": _f(0.0, 1e6, low_open=True),
@@ -454,6 +459,38 @@ _SECTION_SPECS: dict[str, dict[str, _Spec]] = {
         "stencil_points": _i(3, 15),
     },
 }
+#: The range a lab could mean of each physical key (autotune.plausible names each source),
+#: checked once the key's type and hard bounds above hold.
+_PLAUSIBLE: dict[str, plausible.Plausible] = {
+    "rig.repetition_rate_hz": plausible.REPETITION_RATE_HZ,
+    "rig.atoms_per_sample": plausible.ATOMS_PER_SAMPLE,
+    "cavity.frequency_hz": plausible.CAVITY_FREQUENCY_HZ,
+    "cavity.coupling_hz": plausible.COUPLING_HZ,
+    "cavity.waist_m": plausible.WAIST_M,
+    "cavity.damping_time_s": plausible.DAMPING_TIME_S,
+    "cavity.temperature_k": plausible.TEMPERATURE_K,
+    "cavity.initial_offset_hz": plausible.DETUNING_HZ,
+    "beam.velocity_bias_m_per_s": plausible.VELOCITY_BIAS_M_PER_S,
+    "beam.velocity_spread_m_per_s": plausible.VELOCITY_SPREAD_M_PER_S,
+    "beam.preparation_to_cavity_m": plausible.FLIGHT_DISTANCE_M,
+    "ramsey.detuning_hz": plausible.RAMSEY_DETUNING_HZ,
+    "ramsey.zone_separation_m": plausible.ZONE_SEPARATION_M,
+    "stark.coefficient_hz_m2_per_v2": plausible.STARK_COEFFICIENT_HZ_M2_PER_V2,
+    "stark.bias_field_v_per_m": plausible.ELECTRIC_FIELD_V_PER_M,
+    "stark.electrode_gap_m": plausible.ELECTRODE_GAP_M,
+    "stark.bias_field_error_v_per_m": plausible.ELECTRIC_FIELD_V_PER_M,
+    "drift.ramp_hz_per_s": plausible.DRIFT_RAMP_HZ_PER_S,
+    "drift.random_walk_hz_per_sqrt_s": plausible.RANDOM_WALK_HZ_PER_SQRT_S,
+    "drift.thermal_step_hz": plausible.THERMAL_STEP_HZ,
+    "limits.velocity.min_m_per_s": plausible.VELOCITY_M_PER_S,
+    "limits.velocity.max_m_per_s": plausible.VELOCITY_M_PER_S,
+    "limits.velocity.safe_m_per_s": plausible.VELOCITY_M_PER_S,
+    "limits.velocity.max_step_m_per_s": plausible.VELOCITY_STEP_M_PER_S,
+    "limits.detuning.min_hz": plausible.DETUNING_HZ,
+    "limits.detuning.max_hz": plausible.DETUNING_HZ,
+    "limits.detuning.safe_hz": plausible.DETUNING_HZ,
+    "limits.detuning.max_step_hz": plausible.DETUNING_STEP_HZ,
+}
 _SECTIONS = tuple(_SECTION_SPECS)
 _SECTION_TYPES = {
     "rig": RigSection,
@@ -470,56 +507,102 @@ _OPTIONAL_SECTIONS = frozenset({"model"})
 
 
 class _Checker:
+    """Reads the file's tables, collecting every problem (a wrong value reads as a stand-in so
+    that reading goes on); :meth:`raise_problems` reports them all in one error."""
+
     def __init__(self, source: str) -> None:
         self.source = source
+        self.problems: list[str] = []
 
-    def fail(self, key: str, expected: str, got: Any) -> SimConfigError:
-        return SimConfigError(f"{self.source}: {key}: expected {expected}, got {got!r}")
+    def fail(self, key: str, expected: str, got: Any, hint: str = "") -> SimConfigError:
+        return SimConfigError(f"{self.source}: {key}: expected {expected}, got {got!r}"
+                              + (f": {hint}" if hint else ""))
+
+    def note(self, key: str, expected: str, got: Any, hint: str = "") -> None:
+        """Record a problem and go on reading."""
+        self.problems.append(str(self.fail(key, expected, got, hint)))
+
+    def raise_problems(self) -> None:
+        """Raise every problem noted so far in one :class:`SimConfigError`."""
+        if len(self.problems) == 1:
+            raise SimConfigError(self.problems[0])
+        if self.problems:
+            raise SimConfigError(f"{self.source}: {len(self.problems)} problems:\n"
+                                 + "\n".join(f"  - {problem}" for problem in self.problems))
 
     def table(self, data: Any, key: str) -> Mapping[str, Any]:
         if not isinstance(data, Mapping):
-            raise self.fail(key, "a table", data)
+            self.note(key, "a table", data)
+            return {}
         return data
 
     def unknown(self, data: Mapping[str, Any], allowed, prefix: str) -> None:
         for key in data:
             if key not in allowed:
                 where = f"{prefix}.{key}" if prefix else str(key)
-                raise self.fail(where, f"one of the keys {sorted(allowed)}", "an unknown key")
+                near = difflib.get_close_matches(str(key), [str(a) for a in allowed], n=1)
+                self.note(where, f"one of the keys {sorted(allowed)}", "an unknown key",
+                          f"did you mean {near[0]!r}?" if near else "")
 
     def value(self, spec: _Spec, raw: Any, key: str) -> Any:
+        stand_in = self._stand_in(spec)
         if spec.kind == "choice":
             if not isinstance(raw, str) or raw not in spec.choices:
-                raise self.fail(key, spec.describe(), raw)
+                self.note(key, spec.describe(), raw)
+                return stand_in
             return raw
         if spec.kind == "str":
             if not isinstance(raw, str) or not raw.strip():
-                raise self.fail(key, spec.describe(), raw)
+                self.note(key, spec.describe(), raw)
+                return stand_in
             return raw
         if spec.kind == "int":
             if isinstance(raw, bool) or not isinstance(raw, int):
-                raise self.fail(key, spec.describe(), raw)
+                self.note(key, spec.describe(), raw)
+                return stand_in
             value: float | int = raw
         else:
             if isinstance(raw, bool) or not isinstance(raw, (int, float)):
-                raise self.fail(key, spec.describe(), raw)
+                self.note(key, spec.describe(), raw)
+                return stand_in
             value = float(raw)
             if not math.isfinite(value):
-                raise self.fail(key, spec.describe(), raw)
+                self.note(key, spec.describe(), raw)
+                return stand_in
         if spec.low is not None and (value <= spec.low if spec.low_open else value < spec.low):
-            raise self.fail(key, spec.describe(), raw)
+            self.note(key, spec.describe(), raw)
+            return stand_in
         if spec.high is not None and (value >= spec.high if spec.high_open else value > spec.high):
-            raise self.fail(key, spec.describe(), raw)
+            self.note(key, spec.describe(), raw)
+            return stand_in
+        if key in _PLAUSIBLE and (found := _PLAUSIBLE[key].problem(float(value))) is not None:
+            self.note(key, found[0], raw, found[1])
         return value
 
+    @staticmethod
+    def _stand_in(spec: _Spec) -> Any:
+        """A value that lets reading go on after a problem (never returned to a caller)."""
+        if spec.kind == "choice":
+            return spec.choices[0]
+        if spec.kind == "str":
+            return "-"
+        low = spec.low if spec.low is not None else 0.0
+        high = spec.high if spec.high is not None else low + 2.0
+        middle = 0.5 * (low + high) if spec.low is not None or spec.high is not None else 1.0
+        return int(middle) if spec.kind == "int" else float(middle)
+
     def section(self, name: str, data: Any) -> Any:
+        """The section's dataclass, or None when the table is missing (noted once)."""
         specs = _SECTION_SPECS[name]
         cls = _SECTION_TYPES[name]
         if data is None:
             if name in _OPTIONAL_SECTIONS:
                 return cls()
-            raise self.fail(name, "a table", "nothing")
-        data = self.table(data, name)
+            self.note(name, "a table", "nothing")
+            return None
+        if not isinstance(data, Mapping):
+            self.note(name, "a table", data)
+            return None
         self.unknown(data, specs, name)
         defaults = {f.name: f.default for f in dataclasses.fields(cls)}
         values = {}
@@ -527,23 +610,32 @@ class _Checker:
             dotted = f"{name}.{key}"
             if key not in data:
                 if defaults[key] is dataclasses.MISSING:
-                    raise self.fail(dotted, spec.describe(), "nothing")
-                values[key] = defaults[key]
+                    self.note(dotted, spec.describe(), "nothing")
+                    values[key] = self._stand_in(spec)
+                else:
+                    values[key] = defaults[key]
                 continue
             values[key] = self.value(spec, data[key], dotted)
         return cls(**values)
 
     def limits(self, data: Any) -> dict[str, SetpointLimit]:
+        """The ``[limits.NAME]`` tables; a set-point whose table has a problem is left out."""
         if data is None:
-            raise self.fail("limits", "a table", "nothing")
+            self.note("limits", "a table", "nothing")
+            return {}
         data = self.table(data, "limits")
         self.unknown(data, SETPOINT_UNITS, "limits")
         out = {}
         for name, unit in SETPOINT_UNITS.items():
             prefix = f"limits.{name}"
             if name not in data:
-                raise self.fail(prefix, "a table", "nothing")
-            table = self.table(data[name], prefix)
+                self.note(prefix, "a table", "nothing")
+                continue
+            if not isinstance(data[name], Mapping):
+                self.note(prefix, "a table", data[name])
+                continue
+            table = data[name]
+            before = len(self.problems)
             suffix = _UNIT_SUFFIX[name]
             keys = {f"{k}_{suffix}": k for k in ("min", "max", "max_step", "safe")}
             self.unknown(table, keys, prefix)
@@ -551,23 +643,22 @@ class _Checker:
             for key, field in keys.items():
                 dotted = f"{prefix}.{key}"
                 if key not in table:
-                    raise self.fail(dotted, "a finite number", "nothing")
+                    self.note(dotted, "a finite number", "nothing")
+                    continue
                 spec = _f(0.0, low_open=True) if field == "max_step" else _f()
                 if name == "velocity" and field in ("min", "max", "safe"):
                     spec = _f(0.0, low_open=True)
                 values[field] = self.value(spec, table[key], dotted)
+            if len(self.problems) > before:
+                continue
             if values["min"] >= values["max"]:
-                raise self.fail(
-                    f"{prefix}.max_{suffix}", f"a number > min_{suffix} = {values['min']:g}",
-                    values["max"],
-                )
-            if not values["min"] <= values["safe"] <= values["max"]:
-                raise self.fail(
-                    f"{prefix}.safe_{suffix}",
-                    f"a number in [{values['min']:g}, {values['max']:g}]",
-                    values["safe"],
-                )
-            out[name] = SetpointLimit(unit=unit, **values)
+                self.note(f"{prefix}.max_{suffix}", f"a number > min_{suffix} = {values['min']:g}",
+                          values["max"])
+            elif not values["min"] <= values["safe"] <= values["max"]:
+                self.note(f"{prefix}.safe_{suffix}",
+                          f"a number in [{values['min']:g}, {values['max']:g}]", values["safe"])
+            else:
+                out[name] = SetpointLimit(unit=unit, **values)
         return out
 
 
@@ -584,7 +675,8 @@ def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> S
     Raises
     ------
     SimConfigError
-        On any unknown key, missing key, wrong type, non-finite or out-of-range value.
+        On any unknown key, missing key, wrong type, non-finite, out-of-range or implausible
+        value (all of them in one message), or values that do not fit together.
     """
     check = _Checker(source)
     data = check.table(data, "<top level>")
@@ -594,6 +686,8 @@ def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> S
     limits = check.limits(data.get("limits"))
     faults = data.get("faults", {})
     faults = dict(check.table(faults, "faults"))
+    # Every problem of a single key at once; the relations below need every key right.
+    check.raise_problems()
     detection = sections["detection"]
     if detection.g_read_as_e + detection.g_read_as_i > 1.0:
         raise check.fail(
@@ -663,7 +757,8 @@ def load_sim_config(path: str | Path) -> SimRigConfig:
     Raises
     ------
     SimConfigError
-        If the file cannot be read or parsed, or any value is wrong.
+        If the file cannot be read, is not UTF-8 TOML, or any value is wrong (every problem
+        of a single key at once).
     """
     path = Path(path)
     try:
@@ -671,6 +766,9 @@ def load_sim_config(path: str | Path) -> SimRigConfig:
             data = tomllib.load(handle)
     except OSError as exc:
         raise SimConfigError(f"{path}: expected a readable TOML file, got {exc}") from exc
+    except UnicodeDecodeError as exc:
+        raise SimConfigError(f"{path}: expected a TOML file (UTF-8 text), got bytes that are not "
+                             f"UTF-8 text ({exc.reason} at byte {exc.start})") from exc
     except tomllib.TOMLDecodeError as exc:
         raise SimConfigError(f"{path}: expected valid TOML, got {exc}") from exc
     return sim_config_from_dict(data, source=str(path))

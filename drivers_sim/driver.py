@@ -32,7 +32,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.driver import BadRequest
-from drivers_sim.config import load_sim_config
+from drivers_sim.config import SimConfigError, load_sim_config
 from drivers_sim.rig import SimulatedRig
 
 __all__ = ["SimulatedDriver"]
@@ -70,7 +70,9 @@ class SimulatedDriver:
         Raises
         ------
         TypeError
-            For an unknown option or a missing ``config``.
+            For an unknown option, a missing ``config``, a seed out of range, or a ``config``
+            file that cannot be read or holds a wrong value (the refusal of the options,
+            naming the file: ``autotune serve`` exits 2).
         """
         unknown = sorted(set(options) - {"config", "seed"})
         if unknown:
@@ -78,9 +80,14 @@ class SimulatedDriver:
         if "config" not in options or not isinstance(options["config"], str):
             raise TypeError(f"config: expected the path of a simulated-rig TOML, got {options.get('config')!r}")
         seed = options.get("seed")
-        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int)):
-            raise TypeError(f"seed: expected an integer, got {seed!r}")
-        return cls.from_file(Path(config_dir) / options["config"], seed)
+        if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int)
+                                 or not 0 <= seed <= 2**63 - 1):
+            raise TypeError(f"seed: expected an integer from 0 to 2**63 - 1, got {seed!r}")
+        try:
+            config = load_sim_config(Path(config_dir) / options["config"])
+        except SimConfigError as exc:
+            raise TypeError(str(exc)) from exc
+        return cls(SimulatedRig(config, seed))
 
     @property
     def sim(self) -> SimulatedRig:

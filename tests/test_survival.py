@@ -298,7 +298,10 @@ def test_a_wrong_unit_and_limits_outside_the_rigs_name_the_file_and_keys(tmp_pat
     config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
                          setpoints={"velocity": {"limit_min": 750.0, "limit_max": 900.0,
                                                  "search_min": 760.0, "search_max": 800.0},
-                                    "detuning": {"unit": "kHz"}})
+                                    "detuning": {"unit": "kHz"}},
+                         # a nominal 2π velocity inside that box (781.6 m/s), as the config
+                         # requires before any connection
+                         nominal={"waist_m": 9.0e-3})
     with _client(server.endpoint) as rig:
         before = rig.status()
     done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
@@ -357,7 +360,8 @@ def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, se
                          setpoints={"detuning": {"search_min": -60.0, "search_max": 60.0,
                                                  "limit_min": -150.0, "limit_max": 150.0,
                                                  "max_step": 20.0},
-                                    "velocity": {"limit_min": 505.0, "search_min": 505.0}})
+                                    "velocity": {"limit_min": 505.0, "search_min": 505.0}},
+                         nominal={"waist_m": 5.9e-3})  # 2π velocity 512.4 m/s, in the box
     with _client(server.endpoint) as rig:
         before = rig.status()
         safe = rig.describe().safe_setpoints
