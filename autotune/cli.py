@@ -65,7 +65,7 @@ from autotune.errors import (
     RigError,
     RigTimeout,
 )
-from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
+from autotune.journal import LOG_NAME, RESULT_NAME, already_ended, utc_now, write_json_atomic
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
 
@@ -912,6 +912,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
         stages = ["calibrate"] if ns.no_retune else ["calibrate", "retune"]
+        thermal: dict[str, Any] = {}
         for name in stages:
             if name == "retune":
                 if not rows[-1][1]["accepted"]:
@@ -921,6 +922,10 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                           f"retune from")
                     break
                 step = rig.thermal_step(ns.thermal_step_hz)
+                # In the retune's manifest, so that its report marks when the cavity jumped.
+                thermal = {"thermal_step": {"shift_hz": ns.thermal_step_hz,
+                                            "clock": step["clock"], "t_wall": utc_now(),
+                                            "cavity_offset_hz": step["cavity_offset_hz"]}}
                 print(f"thermal step of {ns.thermal_step_hz / 1e3:+.1f} kHz applied to the "
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
@@ -930,7 +935,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
             try:
                 with _progress_display(ns) as progress:
                     result = runner.execute(prepared, rig, stop=stop, progress=progress,
-                                            extra={"dry_run": {"endpoint": endpoint}})
+                                            extra={"dry_run": {"endpoint": endpoint, **thermal}})
             finally:
                 logging.getLogger().removeHandler(handler)
                 handler.close()

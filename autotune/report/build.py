@@ -8,8 +8,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from autotune.report.figures.absorption import figure_absorption
 from autotune.report.figures.fringes import figure_fringes
 from autotune.report.figures.map import figure_map
+from autotune.report.figures.night import figure_night
 from autotune.report.figures.phase import figure_phase_shift
 from autotune.report.figures.progress import figure_progress
 from autotune.report.figures.scan import figure_scan
@@ -51,8 +53,15 @@ class Report:
         return [(name, f) for name, flags in self.flags.items() for f in flags]
 
 
-_RUN_FIGURES = (("fringes", figure_fringes), ("progress", figure_progress), ("map", figure_map),
-                ("scan", figure_scan), ("phase-shift", figure_phase_shift))
+_RUN_FIGURES = (("fringes", figure_fringes), ("phase-shift", figure_phase_shift),
+                ("absorption", figure_absorption), ("map", figure_map), ("scan", figure_scan),
+                ("progress", figure_progress))
+"""The figures of a calibration or a retune, in the order a reader asks: how good, why this
+detuning, why this velocity, where it searched, how it got there."""
+
+_NIGHT_FIGURES = (("fringes", figure_fringes),)
+"""A night's figures besides the night itself: the last check's fringes (a map, a running
+maximum or a phase against set-point mean nothing over a drifting night)."""
 
 
 def build_report(path: Path, *, draw: bool = True) -> Report:
@@ -79,12 +88,16 @@ def build_report(path: Path, *, draw: bool = True) -> Report:
     if draw:
         multi = len(runs) > 1 or runs[0].path != path
         night = any(r.command == "track" or r.name.startswith("cycle-") for r in runs)
-        if multi or runs[0].command == "track":
+        if multi:
             drawn = figure_timeline(runs, night=night)
             if drawn is not None:
                 figures.append(ReportFigure("night" if night else "timeline", "", *drawn))
         for r in runs:
-            for key, draw_one in _RUN_FIGURES:
+            if r.command == "track":
+                drawn = figure_night(r)
+                if drawn is not None:
+                    figures.append(ReportFigure("night", names[id(r)] if multi else "", *drawn))
+            for key, draw_one in (_NIGHT_FIGURES if r.command == "track" else _RUN_FIGURES):
                 drawn = draw_one(r)
                 if drawn is not None:
                     figures.append(ReportFigure(key, names[id(r)] if multi else "", *drawn))

@@ -202,6 +202,24 @@ class Run:
         return bool(self.result and isinstance(self.result.get("setpoints"), Mapping))
 
     @property
+    def learned(self) -> dict[str, Any] | None:
+        """What the phase lock had learned when it stopped searching (the last ``stop_search``
+        decision's ``learned``: its phase curve ``lock_fit``, ``absorption_fit``, the phase at the
+        peak, ...), or None (another strategy, or not stopped yet)."""
+        for d in reversed(self.decisions):
+            if d.get("what") == "stop_search" and isinstance(d.get("learned"), Mapping):
+                return dict(d["learned"])
+        return None
+
+    @property
+    def recommended(self) -> dict[str, Any] | None:
+        """The last ``recommend`` decision (set-points and predicted inversion), or None."""
+        for d in reversed(self.decisions):
+            if d.get("what") == "recommend" and isinstance(d.get("setpoints"), Mapping):
+                return d
+        return None
+
+    @property
     def truth(self) -> dict[str, Any] | None:
         """The dry run's truth block of the result, if any."""
         truth = (self.result or {}).get("truth")

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Mapping
 from typing import Any
 
@@ -13,41 +12,13 @@ from autotune.report.figures._base import _marker, _new_figure, _title
 from autotune.report.model import SEARCH_LABELS, Run, _setpoints
 
 
-def _gp_surface(xy: np.ndarray, y: np.ndarray, stderr: np.ndarray,
-                low: np.ndarray, high: np.ndarray, grid: int = 60
-                ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
-    """Posterior mean of a Gaussian process through the points, on a grid over [low, high]."""
-    from sklearn.exceptions import ConvergenceWarning
-    from sklearn.gaussian_process import GaussianProcessRegressor
-    from sklearn.gaussian_process.kernels import ConstantKernel, Matern
-
-    span = high - low
-    unit = (xy - low) / span
-    mean = float(np.mean(y))
-    noise = np.clip(np.where(np.isfinite(stderr), stderr, 0.05), 1e-3, None) ** 2
-    kernel = ConstantKernel(max(float(np.var(y)), 1e-4), (1e-5, 1.0)) * \
-        Matern(length_scale=[0.3, 0.3], length_scale_bounds=(0.02, 10.0), nu=2.5)
-    model = GaussianProcessRegressor(kernel, alpha=noise, n_restarts_optimizer=2,
-                                     random_state=0)
-    with warnings.catch_warnings():
-        # Hyper-parameters at a bound are fine for a display surface.
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        try:
-            model.fit(unit, y - mean)
-        except (ValueError, np.linalg.LinAlgError):
-            return None
-    gx = np.linspace(low[0], high[0], grid)
-    gy = np.linspace(low[1], high[1], grid)
-    mx, my = np.meshgrid(gx, gy)
-    pts = (np.column_stack([mx.ravel(), my.ravel()]) - low) / span
-    return mx, my, model.predict(pts).reshape(mx.shape) + mean
-
-
 def figure_map(run: Run) -> tuple[Any, str] | None:
-    """Figure 3: the measured points over the (velocity, detuning) box, over a model surface.
+    """Figure: the measured points over the (velocity, detuning) box, in the order measured.
 
-    Search points are numbered in order; other labels get their own markers. The surface is a
-    Gaussian-process regression of every measured inversion (display only). Returns
+    Search points are numbered in order; other labels get their own markers; the colour is the
+    measured inversion (with its colour bar). No surface is drawn: the model that chose the
+    points is the phase lock's curves (the phase-shift and absorption figures), and a surface
+    the report fitted itself would not be the one that decided. Returns
     ``(figure, caption)``, or None with fewer than two measurements that have both set-points
     (the header gives a single point).
     """
@@ -68,8 +39,14 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     else:
         low = np.array([vel.min(), det.min()])
         high = np.array([vel.max(), det.max()])
-    low_all = np.minimum(low, [vel.min(), det.min()])
-    high_all = np.maximum(high, [vel.max(), det.max()])
+    # The view: the points, the chosen and the true best, with a margin; the box only where
+    # it is near them (a wide box would crowd every point into its middle).
+    low_all = np.array([vel.min(), det.min()])
+    high_all = np.array([vel.max(), det.max()])
+    chosen = run.chosen
+    if chosen is not None and {"velocity", "detuning"} <= set(chosen):
+        low_all = np.minimum(low_all, [chosen["velocity"], chosen["detuning"] / 1e3])
+        high_all = np.maximum(high_all, [chosen["velocity"], chosen["detuning"] / 1e3])
     truth = run.truth
     true_best = None
     if truth is not None and isinstance(truth.get("best_setpoints"), Mapping):
@@ -79,53 +56,49 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
             low_all = np.minimum(low_all, true_best)
             high_all = np.maximum(high_all, true_best)
     span = np.where(high_all > low_all, high_all - low_all, 1.0)
-    low_all, high_all = low_all - 0.04 * span, high_all + 0.04 * span
+    low_all, high_all = low_all - 0.12 * span, high_all + 0.12 * span
+    near = high - low
+    clipped = bool(np.any(low < low_all - 0.3 * near) or np.any(high > high_all + 0.3 * near))
+    if not clipped:
+        low_all, high_all = np.minimum(low_all, low - 0.04 * near), np.maximum(high_all, high + 0.04 * near)
     vmin, vmax = float(np.min(inv)), float(np.max(inv))
-    model_note = "too few points for a model surface"
-    xy = np.column_stack([vel, det])
-    if len(done) >= 3 and np.all(np.ptp(xy, axis=0) > 0) and np.all(high > low):
-        # Over the box (or the points' extent) only: outside it the model only extrapolates.
-        surface = _gp_surface(xy, inv, err, low, high)
-        if surface is not None:
-            mx, my, mz = surface
-            vmin, vmax = min(vmin, float(mz.min())), max(vmax, float(mz.max()))
-            if vmax <= vmin:
-                vmax = vmin + 1e-3
-            from matplotlib.ticker import MaxNLocator
-
-            levels = MaxNLocator(14).tick_values(vmin, vmax)
-            vmin, vmax = float(levels[0]), float(levels[-1])
-            cs = ax.contourf(mx, my, mz, levels=levels, cmap="viridis", alpha=0.55)
-            fig.colorbar(cs, ax=ax, label="inversion: model and points (dimensionless)")
-            model_note = ("background: Gaussian-process regression of the measured inversions "
-                          "(Matérn ν = 5/2 kernel, each point's own standard error as its noise, "
-                          "scikit-learn) over the box, for display only; it is not the search's "
-                          "surrogate")
     if vmax <= vmin:
         vmax = vmin + 1e-3
+    strategy = str(run.stages[-1].get("strategy", "")) if run.stages else ""
+    if strategy == "phase_lock":
+        model_note = ("no surface is drawn: the phase lock chose these points from its phase "
+                      "curve and its absorption curve (see the phase-shift and absorption "
+                      "figures), not from a model of the inversion over this plane")
+    else:
+        model_note = ("no surface is drawn: the model that chose these points is not in the "
+                      "journal, and a surface fitted here would not be the one that decided")
     from matplotlib.lines import Line2D
 
     handles = []
     labels = list(dict.fromkeys(m.label for m in done))
     for label in labels:
         pick = np.array([m.label == label for m in done])
-        ax.scatter(vel[pick], det[pick], c=inv[pick], cmap="viridis", vmin=vmin, vmax=vmax,
+        mappable = ax.scatter(vel[pick], det[pick], c=inv[pick], cmap="viridis", vmin=vmin, vmax=vmax,
                    marker=_marker(label), s=46 if label in SEARCH_LABELS else 60, edgecolors="white",
                    linewidths=0.8, gid=f"points-{label}", zorder=3)
         # Legend entries in grey: the marker tells the label, the colour is the inversion.
         handles.append(Line2D([], [], marker=_marker(label), ls="none", color="0.45", mec="white",
                               ms=7, label=f"{label} ({int(pick.sum())})"))
-    for m, v, d in zip(done, vel, det, strict=True):
+    fig.colorbar(mappable, ax=ax, label="measured inversion (dimensionless)")
+    offsets = ((6, -10), (6, 5), (-13, 5), (-13, -10))
+    for k, (m, v, d) in enumerate(zip(done, vel, det, strict=True)):
         if m.label in SEARCH_LABELS:
-            ax.annotate(str(m.point), (v, d), textcoords="offset points", xytext=(4, 3),
-                        fontsize=6.5, color="black", zorder=4)
+            # Numbers beside their point on a pale box, under the chosen star.
+            ax.annotate(str(m.point), (v, d), textcoords="offset points", xytext=offsets[k % 4],
+                        fontsize=7.5, color="black", zorder=4,
+                        bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none",
+                              "alpha": 0.7})
     if box is not None and "velocity" in box and "detuning" in box:
         from matplotlib.patches import Rectangle
 
         handles.append(ax.add_patch(Rectangle(
             (low[0], low[1]), high[0] - low[0], high[1] - low[1], fill=False, ls="--", lw=1.2,
             ec="black", label="search box", gid="box")))
-    chosen = run.chosen
     if chosen is not None and {"velocity", "detuning"} <= set(chosen):
         handles += ax.plot(chosen["velocity"], chosen["detuning"] / 1e3, marker="*", ms=18,
                            mfc="none", mec="red", mew=1.8, ls="none", gid="chosen", zorder=5,
@@ -148,7 +121,10 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     caption = (f"Every measured point over the (velocity, detuning) plane, coloured by its "
                f"measured inversion; search points numbered in the order measured; dashed: the "
                f"stage's search box; star: the chosen set-points. {model_note[0].upper()}"
-               f"{model_note[1:]}.{outside}")
+               f"{model_note[1:]}.{outside}"
+               + (f" The view is zoomed on the points; the box spans "
+                  f"{low[0]:.1f} to {high[0]:.1f} m/s and {low[1]:+.1f} to {high[1]:+.1f} kHz."
+                  if clipped else ""))
     return fig, caption
 
 

@@ -77,12 +77,30 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
                           r.records[0].get("t_wall") if r.records else None)
             if not math.isfinite(start):
                 continue
+            end = _when(use_clock, origin, r.clock_end,
+                        r.records[-1].get("t_wall") if r.records else None)
             for ax in (ax_inv, ax_det, ax_cor):
                 ax.axvline(start, color="0.7", lw=0.8, ls="--", zorder=0)
+                if math.isfinite(end) and end > start and runs.index(r) % 2 == 0:
+                    ax.axvspan(start, end, color="0.5", alpha=0.07, lw=0, zorder=0)
             if len(runs) <= _NAMED_RUNS_MAX:
                 ax_inv.annotate(r.name, (start, 1.0), xycoords=("data", "axes fraction"),
                                 xytext=(2, -2), textcoords="offset points", fontsize=7,
                                 va="top", color="0.35", rotation=90)
+    thermal = []
+    for r in runs:
+        step = (r.manifest.get("dry_run") or {}).get("thermal_step") \
+            if isinstance(r.manifest.get("dry_run"), Mapping) else None
+        if isinstance(step, Mapping) and isinstance(step.get("clock"), (int, float)):
+            when = _when(use_clock, origin, float(step["clock"]), step.get("t_wall"))
+            shift = step.get("shift_hz")
+            if math.isfinite(when):
+                thermal.append((when, float(shift) if isinstance(shift, (int, float)) else math.nan))
+    for k, (when, shift) in enumerate(thermal):
+        for ax in (ax_inv, ax_det, ax_cor):
+            ax.axvline(when, color="tab:red", lw=1.4, ls="-.", zorder=1, gid="thermal-step",
+                       label=(f"thermal step {shift / 1e3:+.1f} kHz (simulated)"
+                              if ax is ax_det and k == 0 else None))
     ax_inv.set_ylabel("fringe inversion (dimensionless)")
     ax_inv.grid(alpha=0.3)
     ax_inv.legend(fontsize=7, loc="best", ncol=2)
@@ -129,8 +147,14 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         if r.result and check and chosen and r.status == "accepted" and \
                 not _same_setpoints(check[0].setpoints, chosen):
             size = _detuning_of(chosen) - _detuning_of(check[0].setpoints)
-            retuned.append((_when(use_clock, origin, r.clock_end,
-                                  r.records[-1].get("t_wall")), size))
+            # When the retune left its check point: its first move after the check (the
+            # run's end would draw it long after it happened).
+            left = [mv for mv in r.moves if check[0].clock_s is not None
+                    and mv["clock"] is not None and mv["clock"] > check[0].clock_s
+                    and not _same_setpoints(mv["setpoints"], check[0].setpoints)]
+            when = (left[0]["clock"], left[0]["t_wall"]) if left else \
+                (r.clock_end, r.records[-1].get("t_wall"))
+            retuned.append((_when(use_clock, origin, *when), size))
     for series, name, colour, gid in ((decided, "correct decisions", "tab:orange", "corrections"),
                                       (retuned, "retunes", "tab:purple", "retunes")):
         if not series:
@@ -158,7 +182,11 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
     caption = (f"Top: the inversion of every measurement with its {level} interval against "
                f"{'rig' if use_clock else 'wall'} time; middle: the detuning set-point applied "
                "(moves) and measured; bottom: detuning corrections, from 'correct' decisions "
-               "(to minus from) and from retunes that left their check point."
+               "(to minus from) and from retunes that left their check point, drawn when the "
+               "retune first moved away from it. Dashed lines and shading: where each run "
+               "begins and ends"
+               + ("; dash-dotted red: the thermal step the dry run applied to the simulated "
+                  "cavity." if thermal else ".")
                + ("" if use_clock else " The rig clock restarted between runs, so the axis is "
                   "wall time."))
     return fig, caption
