@@ -900,6 +900,9 @@ def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any
             print(summary(ended.result))
             print(f"run folder: {run_dir}")
             return exit_code(ended.result)
+        # At once: a rig that does not answer is otherwise silent for a whole timeout.
+        _log.info("connect", endpoint=config.bus.endpoint, timeout_s=config.bus.timeout_s,
+                  retries=config.bus.retries)
         with _connect(config) as rig:
             prepared = prepare(rig, config, run_dir, resume=resume)
             print(CAUTION, file=sys.stderr)

@@ -128,3 +128,21 @@ def test_every_line_of_a_dry_run_is_short(tmp_path) -> None:
     long = [line for line in (done.stdout + done.stderr).splitlines()
             if len(line) > cli.CONSOLE_WIDTH]
     assert not long, long
+
+
+def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
+    """calibrate against a closed port: the first line names the endpoint and the waits before
+    any timeout has run out; then one warning per retry; exit 3."""
+    import tomllib
+
+    from cli_helpers import to_toml
+
+    data = tomllib.loads((REPO / "configs" / "dry-run.toml").read_text())
+    data["bus"].update(endpoint="tcp://127.0.0.1:9", timeout_s=1.0, retries=2, backoff_s=0.1)
+    config = tmp_path / "down.toml"
+    config.write_text(to_toml(data))
+    done = _autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
+    assert done.returncode == 3, done.stderr[-2000:]
+    lines = done.stderr.splitlines()
+    assert lines[0].endswith("connect (endpoint tcp://127.0.0.1:9; timeout 1.0 s; retries 2)")
+    assert sum("bus_retry" in line for line in lines) == 2
