@@ -15,19 +15,29 @@ timeline. Journal record types and measurement labels this module does not know 
 (counted in the page's notes), so it keeps working while the loop learns new steps.
 
 Figures (PNG, matplotlib's Agg canvas, no display needed), each returned as a
-:class:`matplotlib.figure.Figure` by its drawing function before it is saved:
+:class:`matplotlib.figure.Figure` by its drawing function before it is saved. For a calibration
+or a retune, in the order a reader asks:
 
 1. ``fringes``: both Ramsey fringes P_g(phi) at the chosen set-points, the data with binomial
    (Wilson) error bars at the run's confidence, and ``a + b cos phi + c sin phi`` refitted from
    the journal's counts with :func:`autotune.fringe.fit_fringe`;
-2. ``progress``: the best inversion measured so far, with its interval, against cumulative shots;
-3. ``map``: the measured points over the (velocity, detuning) box, numbered in order, over a
-   Gaussian-process regression of the measured inversions (display only), the chosen point and,
-   in a dry run, the simulator's true best;
-4. ``scan``: inversion against detuning for the detuning scans (labels ``refine``, ``lock``,
-   ``relock``, ``bracket``);
-5. ``phase-shift``: the photon phase shift (units of pi) against detuning, with error bars;
-6. ``night`` / ``timeline``: inversion, detuning set-point and corrections against rig time.
+2. ``phase-shift``: why this detuning: the photon phase shift against detuning with the phase
+   lock's own journaled curve and band, the phase at the peak and the chosen detuning;
+3. ``absorption``: why this velocity: absorption against velocity with the lock's quadratic,
+   the velocity of least absorption with its interval and the chosen velocity; the inversion
+   below;
+4. ``map``: where it measured: the points over the (velocity, detuning) box, numbered in order,
+   the chosen point and, in a dry run, the simulator's true best (no surface: the report draws
+   only models that decided);
+5. ``scan``: inversion against detuning for the lock steps and scans;
+6. ``progress``: the best inversion measured so far against cumulative shots.
+
+For a night of ``track``: ``night`` (every check's inversion with the reference and the floor,
+the phase error, the detuning held with the lock's peak and the corrections, the sequential
+statistics against their thresholds with the alarms, the beam share against the budget, the
+retunes and calibrations) and the last check's ``fringes``. For a folder of runs: ``timeline``
+(inversion, detuning and corrections against rig time, stage boundaries, a dry run's thermal
+step).
 
 Flags (:func:`run_flags`) list what a person should look at first: search points piled at an
 edge of the box, a recommendation at an edge, a phase shift far from pi at the chosen point, a

@@ -279,9 +279,11 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     for ax in axes:
         ax.grid(alpha=0.3)
     _title(fig, run, "the night, told by its checks and its test")
-    counts = (f"{len(holds)} checks, {len(corr)} corrections, {len(night['alarms'])} alarms, "
-              f"{len(night['stages'])} retunes or calibrations, {len(night['failures'])} failed "
-              "recoveries")
+    counts = ", ".join(f"{n} {one if n == 1 else many}" for n, one, many in (
+        (len(holds), "check", "checks"), (len(corr), "correction", "corrections"),
+        (len(night["alarms"]), "alarm", "alarms"),
+        (len(night["stages"]), "retune or calibration", "retunes or calibrations"),
+        (len(night["failures"]), "failed recovery", "failed recoveries")))
     caption = (f"The night against rig time ({counts}). (1) Each check's inversion with its "
                f"{level} interval, the reference the inversion watch compares with (the "
                "precision-weighted mean of the last stage and the checks since) and the floor "
