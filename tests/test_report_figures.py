@@ -134,6 +134,13 @@ def test_phase_figure_draws_the_lock_model_that_chose_the_detuning(folders, stag
     z = stats.norm.ppf(0.975)
     top = band.get_paths()[0].vertices[:, 1].max()
     assert top == pytest.approx(((expected + z * sd) / math.pi).max(), rel=1e-6)
+    # The numbers printed on it are the journal's.
+    legend = [text.get_text() for ax in fig.axes if ax.get_legend()
+              for text in ax.get_legend().get_texts()]
+    assert f"chosen detuning {result['setpoints']['detuning'] / 1e3:+.2f} kHz" in legend
+    star_sd = learned["phase_at_peak_stderr_rad"]
+    assert (f"phase at the peak {learned['phase_at_peak_rad'] / math.pi:.3f} π ± "
+            f"{z * star_sd / math.pi:.3f} π") in legend
     # Every estimate is drawn, unwrapped around the phase at the peak.
     (points,) = _by_gid(fig, "phase-shift")
     assert len(points.get_offsets()) == len(_estimates(run_dir))
@@ -168,6 +175,10 @@ def test_absorption_figure_draws_the_lock_quadratic_and_the_chosen_velocity(fold
                           for c in chosen)
     sd = learned["velocity_least_absorption_stderr_m_per_s"]
     assert f"{stats.norm.ppf(0.975) * sd:.1f} m/s (95 %)" in item.caption
+    legend = [text.get_text() for legend in fig.legends for text in legend.get_texts()]
+    assert f"chosen velocity {result['setpoints']['velocity']:.1f} m/s" in legend
+    assert (f"least absorption {learned['velocity_least_absorption_m_per_s']:.1f} m/s ± "
+            f"{stats.norm.ppf(0.975) * sd:.1f} m/s (95 %)") in legend
 
 
 def test_the_dry_run_timeline_marks_the_thermal_step_where_it_happened(folders):
@@ -221,6 +232,9 @@ def test_the_night_draws_each_statistic_against_its_threshold(folders, name):
     assert sorted(m.get_ydata()[0] for m in marks) == pytest.approx(
         sorted(a["value"] for a in alarms))
     assert all(a["value"] > a["threshold"] for a in alarms)
+    printed = [text.get_text() for ax in fig.axes for text in ax.texts]
+    for a in alarms:
+        assert f"alarm: {a['statistic']} {a['value']:.2f} > {a['threshold']:.2f}" in printed
 
 
 def test_a_failed_recovery_is_shaded_red_and_marked(folders):
