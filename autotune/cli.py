@@ -36,16 +36,20 @@ range too narrow for a rule), 130 on SIGINT.
 from __future__ import annotations
 
 import argparse
+import atexit
 import dataclasses
+import difflib
 import functools
 import logging
 import math
 import os
+import re
 import shlex
 import signal
 import subprocess
 import sys
 import tempfile
+import textwrap
 import threading
 import time
 from collections.abc import Callable, Sequence
@@ -67,7 +71,7 @@ from autotune.errors import (
     RigLeased,
     RigTimeout,
 )
-from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, write_json_atomic
+from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, utc_now, write_json_atomic
 from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder, holder_if_running, holder_text
 from autotune.plausible import SEED_MAX, SERVER_TIMEOUT_S, THERMAL_STEP_HZ, Plausible
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
@@ -83,13 +87,20 @@ EXIT_RIG = 3
 EXIT_BELOW_ACCEPTANCE = 4
 EXIT_INTERRUPTED = 130
 
-CAUTION = (
+CAUTION = textwrap.fill(
     "CAUTION: autotune moves set-points of a real apparatus (Stark-tuning electrodes, velocity-"
     "selection lasers, detector high voltage through the control system). It stays within the "
     "configured limits and step sizes and sends the rig to its safe set-points on abort, but it "
     "is no substitute for the lab's interlocks and local safety rules, which always take "
-    "precedence. Do not run it on a rig you are not authorised to operate."
-)
+    "precedence. Do not run it on a rig you are not authorised to operate.",
+    width=100, break_on_hyphens=False)
+
+#: The exit codes of calibrate and retune, for their --help.
+_STAGE_EXITS = (" Exit 0 when the verified setting is accepted (or the checked one still good), "
+                "4 when its inversion is below min_inversion (the rig is left there), 2 for bad "
+                "input (config, flags, run folder), 3 when the rig does not answer or refuses, "
+                "130 on SIGINT/SIGTERM (continue with the printed --resume command), 1 for an "
+                "internal error.")
 
 _log = structlog.get_logger("autotune.cli")
 
@@ -145,6 +156,39 @@ def _console_name(key: str) -> str:
     return key.replace("_", " ")
 
 
+#: A console line's length at most (characters); the run folder's log.jsonl keeps the rest.
+CONSOLE_WIDTH = 150
+_MORE = " [...]"
+
+
+def _fit_console(line: str, head: str) -> str:
+    """``line`` if short enough; else its head without the details, cut at the last clause
+    boundary that fits and marked ``[...]`` (the whole text is in the run's log.jsonl)."""
+    if len(line) <= CONSOLE_WIDTH:
+        return line
+    if len(head) <= CONSOLE_WIDTH:
+        return head
+    room = CONSOLE_WIDTH - len(_MORE)
+    # The decision usually ends the text, after its last top-level ': ': kept when short.
+    depth, tail = 0, ""
+    for k, char in enumerate(head):
+        depth += {"(": 1, ")": -1}.get(char, 0)
+        if depth == 0 and head.startswith(": ", k) and k > len(head) - 70:
+            tail = head[k:]
+            break
+    room = CONSOLE_WIDTH - len(_MORE) - len(tail)
+    # A whole clause if one ends late enough, else whole words; never inside parentheses.
+    depth, clause, word = 0, -1, -1
+    for k, char in enumerate(head[:room]):
+        depth += {"(": 1, ")": -1}.get(char, 0)
+        if depth == 0 and char == " ":
+            word = k
+            if head[k - 1] in ";:,":
+                clause = k - 1
+    cut = clause if clause > 0.6 * room else word if word > room // 2 else room
+    return head[:cut].rstrip(" ,;:") + _MORE + tail
+
+
 def _console_line(_logger: Any, _method: str, event_dict: dict[str, Any]) -> str:
     """A log event as one short line: time, stage, what happened and why, values in units.
 
@@ -184,9 +228,53 @@ def _console_line(_logger: Any, _method: str, event_dict: dict[str, Any]) -> str
     line = " ".join(parts + [head])
     if details:
         line += " (" + "; ".join(details) + ")"
+    line = _fit_console(line, " ".join(parts + [head]))
     if event_dict.get("exception"):
         line += "\n" + str(event_dict["exception"])
     return line
+
+
+class _MergeRepeats(logging.Filter):
+    """Merge a warning repeated on the console: the same line again (its numbers aside) is held
+    back and counted, and one line says how many were held before the next different line (or
+    at exit). The run folder's log.jsonl, written by another handler, keeps every one."""
+
+    _NUMBERS = re.compile(r"[-+]?\d[\d.,:]*(?:e[-+]?\d+)?")
+
+    def __init__(self, handler: logging.Handler) -> None:
+        super().__init__()
+        self.handler = handler
+        self.key: str | None = None
+        self.count = 0
+        atexit.register(self.flush)
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if getattr(record, "_merge_note", False):
+            return True
+        try:
+            line = self.handler.format(record)
+        except Exception:  # noqa: BLE001 - a line that cannot be formatted is not merged
+            return True
+        key = self._NUMBERS.sub("#", line.split(" ", 1)[-1])
+        if record.levelno >= logging.WARNING and key == self.key:
+            self.count += 1
+            return False
+        self.flush()
+        self.key = key if record.levelno >= logging.WARNING else None
+        return True
+
+    def flush(self) -> None:
+        """Say how many repeats were held back, if any."""
+        if not self.count:
+            return
+        count, self.count = self.count, 0
+        note = logging.makeLogRecord({
+            "msg": f"the warning above repeated {count} more time{'s' if count > 1 else ''} "
+                   f"(each in the run folder's {LOG_NAME})",
+            "levelno": logging.WARNING, "levelname": "WARNING", "_merge_note": True})
+        for handler in logging.getLogger().handlers:
+            if self in handler.filters:
+                handler.handle(note)
 
 
 def _configure_logging(level: str) -> None:
@@ -212,6 +300,7 @@ def _configure_logging(level: str) -> None:
                     _console_line],
         foreign_pre_chain=shared,
     ))
+    handler.addFilter(_MergeRepeats(handler))
     root = logging.getLogger()
     root.handlers[:] = [handler]
     # The root passes everything of autotune on: the console handler filters by --log-level,
@@ -315,9 +404,9 @@ def _summary(result: dict[str, Any]) -> str:
     low, high = result["inversion_interval"]
     conf = round(100 * result["confidence"])
     return (f"{result['command']}: {result['status']} at {setpoints_text(result['setpoints'])}: "
-            f"inversion {result['inversion']:.3f} [{low:.3f}, {high:.3f}] ({conf}% interval), "
-            f"phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi, absorption "
-            f"{result['absorption']:.3f}; {result['points']} points, {result['shots']} shots, "
+            f"inversion {result['inversion']:.3f} [{low:.3f}, {high:.3f}] ({conf}% interval)\n"
+            f"  phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi, absorption "
+            f"{result['absorption']:.3f}; {result['points']} points, {result['shots']:,} shots, "
             f"rig time {result['rig_time_s'] / 60:.1f} min")
 
 
@@ -562,7 +651,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
     try:
         server = RigServer(served, bind, faults=faults, curve=curve, fault_seed=fault_seed)
     except ConfigError as exc:
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        _refused_to_start(log, exc)
         return EXIT_BAD_INPUT
     code = EXIT_OK
     served_requests = False
@@ -603,6 +692,12 @@ def _child_seed(seed: int) -> int:
     return int(np.random.SeedSequence(seed).spawn(1)[0].generate_state(1)[0])
 
 
+def _refused_to_start(log: Any, exc: BaseException) -> None:
+    """A server that will not start: its JSON log line, and a sentence for the person."""
+    log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+    print(f"autotune: the server did not start: {exc}", file=sys.stderr)
+
+
 def _cmd_rig(ns: argparse.Namespace) -> int:
     # The simulated rig is imported only by the commands that serve or start it.
     from autotune.served import ServedDriver
@@ -627,7 +722,7 @@ def _cmd_rig(ns: argparse.Namespace) -> int:
         served = ServedDriver(SimulatedDriver(SimulatedRig(config, seed)), source=str(ns.config))
     except (ConfigError, OSError, ValueError) as exc:
         # The simulated rig's own configuration errors are ValueErrors; all refuse the start.
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        _refused_to_start(log, exc)
         return EXIT_BAD_INPUT
     return _serve_until_stopped(served, ns.bind, faults=faults, curve=curve,
                                 fault_seed=_child_seed(seed), ready_file=ns.ready_file, log=log)
@@ -648,7 +743,7 @@ def _cmd_serve(ns: argparse.Namespace) -> int:
             curve = _curve_server_keys(config.curve_secret_key_file, config.curve_allowed_dir,
                                        str(ns.config))
     except ConfigError as exc:
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        _refused_to_start(log, exc)
         return EXIT_BAD_INPUT
     log = log.bind(bind=bind)
     started = _start_driver(config, log)
@@ -714,7 +809,7 @@ def _start_driver(config: Any, log: Any) -> Any:
         return EXIT_RIG
     exc = outcome.get("error")
     if isinstance(exc, ConfigError):
-        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+        _refused_to_start(log, exc)
         return EXIT_BAD_INPUT
     if isinstance(exc, DriverStartError):
         log.error("driver_failed_to_start", error=str(exc))
@@ -877,6 +972,9 @@ def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, 
         print(summary(ended.result))
         print(f"run folder: {run_dir}")
         return exit_code(ended.result)
+    # At once: a rig that does not answer is otherwise silent for a whole timeout.
+    _log.info("connect", endpoint=config.bus.endpoint, timeout_s=config.bus.timeout_s,
+              retries=config.bus.retries)
     with _connect(config, stop) as rig:
         _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
         prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
@@ -1003,6 +1101,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")
         stages = ["calibrate"] if ns.no_retune else ["calibrate", "retune"]
+        thermal: dict[str, Any] = {}
         for name in stages:
             if name == "retune":
                 if not rows[-1][1]["accepted"]:
@@ -1012,6 +1111,10 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                           f"retune from")
                     break
                 step = rig.thermal_step(ns.thermal_step_hz)
+                # In the retune's manifest, so that its report marks when the cavity jumped.
+                thermal = {"thermal_step": {"shift_hz": ns.thermal_step_hz,
+                                            "clock": step["clock"], "t_wall": utc_now(),
+                                            "cavity_offset_hz": step["cavity_offset_hz"]}}
                 print(f"thermal step of {ns.thermal_step_hz / 1e3:+.1f} kHz applied to the "
                       f"simulated cavity (offset now {step['cavity_offset_hz'] / 1e3:+.2f} kHz)")
             run_dir = out / name
@@ -1023,7 +1126,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
                 try:
                     with _progress_display(ns) as progress:
                         result = runner.execute(prepared, rig, stop=stop, progress=progress,
-                                                extra={"dry_run": {"endpoint": endpoint}})
+                                                extra={"dry_run": {"endpoint": endpoint, **thermal}})
                 finally:
                     logging.getLogger().removeHandler(handler)
                     handler.close()
@@ -1186,11 +1289,26 @@ def _non_negative_seconds(text: str) -> float:
     return value
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse's parser, whose refusal of an unknown command or choice names the nearest one."""
+
+    def error(self, message: str) -> Any:
+        found = re.search(r"invalid choice: '([^']*)' \(choose from (.*)\)", message)
+        if found:
+            choices = re.findall(r"'([^']*)'", found.group(2))
+            near = difflib.get_close_matches(found.group(1), choices, n=1, cutoff=0.6)
+            if near:
+                message += f"; did you mean '{near[0]}'?"
+        return super().error(message)
+
+
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="autotune",
         description="Closed-loop calibration of a Ramsey-cavity single-photon detector. "
-                    + CAUTION,
+                    "calibrate, retune, track, serve and probe act on a real rig: their --help "
+                    "carries the caution (the lab's interlocks and safety rules come first); "
+                    "rig, dry-run and report touch no hardware.",
     )
     parser.add_argument("--version", action="version", version=f"autotune {__version__}")
     _add_output_options(parser, log_level=True, default=None)
@@ -1254,7 +1372,7 @@ def _parser() -> argparse.ArgumentParser:
     for name, text in (("calibrate", "full calibration of a rig (acts on hardware)"),
                        ("retune", "check the last good setting and retune if needed "
                                   "(acts on hardware)")):
-        p = sub.add_parser(name, help=text, description=text + ". " + CAUTION)
+        p = sub.add_parser(name, help=text, description=text + ". " + CAUTION + _STAGE_EXITS)
         p.add_argument("--config", required=True, help="calibrate/retune TOML file")
         group = p.add_mutually_exclusive_group()
         group.add_argument("--out", help="new run folder (default runs/<command>-<UTC time>)")
@@ -1263,7 +1381,14 @@ def _parser() -> argparse.ArgumentParser:
         p.set_defaults(handler=lambda ns, n=name: _cmd_stage(ns, n))
 
     dry = sub.add_parser("dry-run", help="calibrate and retune the bundled simulated rig and "
-                                         "compare with its truth")
+                                         "compare with its truth",
+                         description="Start the bundled simulated rig (no hardware), calibrate "
+                                     "it, apply a thermal step to its cavity, retune, and compare "
+                                     "each stage's choice with the simulator's truth; one run "
+                                     "folder per stage under --out, then 'autotune report' on "
+                                     "that folder. Exit 0 when both stages are accepted, 4 when "
+                                     "one is below min_inversion, 2 for bad input, 3 if the "
+                                     "simulated rig fails, 130 on SIGINT.")
     dry.add_argument("--config", help="calibrate/retune TOML (default: the packaged copy of "
                                        "configs/dry-run.toml)")
     dry.add_argument("--rig-config", help="simulated rig TOML (default: the packaged copy of "
@@ -1294,7 +1419,13 @@ def _parser() -> argparse.ArgumentParser:
     track.set_defaults(handler=_cmd_track)
 
     rep = sub.add_parser("report", help="morning report of a run, dry-run or track folder: "
-                                        "figures, report.html and a text summary (reads only)")
+                                        "figures, report.html and a text summary (reads only)",
+                         description="Read a run folder, a dry run's folder or a track folder "
+                                     "(never a rig) and print what to look at first and each "
+                                     "run's summary; write its figures, an overview report.png "
+                                     "and a self-contained report.html (images inline) next to "
+                                     "the runs or under --out. Exit 0, or 2 when the folder is "
+                                     "not a run folder or a file in it is damaged.")
     rep.add_argument("run_dir", help="a run folder, a dry run's folder or a track folder")
     rep.add_argument("--no-plot", action="store_true", help="text summary only")
     rep.add_argument("--out", metavar="DIR",
@@ -1304,7 +1435,8 @@ def _parser() -> argparse.ArgumentParser:
     # have their own --log-level (their JSON lines).
     for name, command in sub.choices.items():
         _add_output_options(command, log_level=name not in ("rig", "serve"),
-                            default=argparse.SUPPRESS)
+                            default=argparse.SUPPRESS,
+                            run_folder=name in ("calibrate", "retune", "track", "dry-run"))
     return parser
 
 
@@ -1317,12 +1449,13 @@ def _add_wait_lease(parser: argparse.ArgumentParser) -> None:
 
 
 def _add_output_options(parser: argparse.ArgumentParser, *, log_level: bool,
-                        default: Any) -> None:
+                        default: Any, run_folder: bool = True) -> None:
     if log_level:
         parser.add_argument("--log-level", default=default,
                             choices=["debug", "info", "warning", "error"],
-                            help="terminal log level (default: info; warning with --quiet); "
-                                 "the run folder's log.jsonl keeps every level")
+                            help="terminal log level (default: info; warning with --quiet)"
+                                 + ("; the run folder's log.jsonl keeps every level"
+                                    if run_folder else ""))
     parser.add_argument("--quiet", action="store_true",
                         default=False if default is None else default,
                         help="no progress line, and only warnings and errors in the log; "

@@ -187,6 +187,8 @@ class _AboveProgressLine(logging.Handler):
     def __init__(self, original: logging.StreamHandler) -> None:  # type: ignore[type-arg]
         super().__init__(original.level)
         self.setFormatter(original.formatter)
+        for console_filter in original.filters:  # e.g. the CLI's merging of repeated warnings
+            self.addFilter(console_filter)
         self.stream = original.stream
 
     def emit(self, record: logging.LogRecord) -> None:

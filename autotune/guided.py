@@ -1692,7 +1692,11 @@ class PhaseLockSearch:
         ``slope_stderr_rad_per_hz``, ``phase_at_peak_rad``, ``phase_at_peak_stderr_rad``,
         ``detuning_at_peak_hz``, ``detuning_at_peak_stderr_hz``,
         ``velocity_least_absorption_m_per_s``, ``velocity_least_absorption_stderr_m_per_s``,
-        ``velocity_note``, ``absorption_fit`` (``velocity_ref_m_per_s``, ``coefficients`` of
+        ``velocity_note``, ``lock_fit`` (the phase curve ``alpha + s d + c (d / h)^3 + beta tau``
+        with ``d`` the detuning set-point minus ``centre_hz``, ``h`` = ``step_hz`` and ``tau``
+        the rig clock minus ``t_ref_s`` (0 when None): ``coefficients`` (alpha rad, s rad/Hz,
+        c rad, beta rad/s), their ``covariance``, at ``velocity_m_per_s``), ``absorption_fit``
+        (``velocity_ref_m_per_s``, ``coefficients`` of
         ``P_e = a0 + a1 x + a2 x^2`` with ``x = v_ref / v - 1``, ``covariance``),
         ``phase_drift_rad_per_s``, ``peak_drift_hz_per_s`` (the rate of the peak's detuning
         set-point, ``-phase drift / slope``), ``shortfall`` and ``prior`` (a
@@ -1708,7 +1712,7 @@ class PhaseLockSearch:
                 "velocity_least_absorption_m_per_s", "velocity_least_absorption_stderr_m_per_s",
                 "phase_drift_rad_per_s", "peak_drift_hz_per_s")
         out.update({key: None for key in keys})
-        out.update(absorption_fit=None, velocity_note=plan["note"], prior=None)
+        out.update(absorption_fit=None, lock_fit=None, velocity_note=plan["note"], prior=None)
         if anchor is None:
             out["stage"] = "search"
         elif not plan["concluded"]:
@@ -1721,6 +1725,11 @@ class PhaseLockSearch:
         if lock is not None:
             out["slope_rad_per_hz"] = lock.slope
             out["slope_stderr_rad_per_hz"] = lock.slope_stderr
+            # The whole fitted phase curve, so that a report draws the model that decided.
+            out["lock_fit"] = {"velocity_m_per_s": lock.velocity, "centre_hz": lock.centre_hz,
+                               "step_hz": lock.step_hz, "t_ref_s": lock.t_ref,
+                               "coefficients": [float(v) for v in lock.theta],
+                               "covariance": [[float(v) for v in row] for row in lock.cov]}
             if lock.t_ref is not None:
                 out["phase_drift_rad_per_s"] = float(lock.theta[3])
                 if lock.slope != 0.0:

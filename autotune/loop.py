@@ -1342,9 +1342,10 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         if not stop_reason:
             shortfall = lock.shortfall(clock_s=now)
             if searched and lock.converged(clock_s=now):
-                stop_reason = (f"predicted shortfall {shortfall.estimate:.4f} (upper "
-                               f"{shortfall.upper:.4f} at {shortfall.confidence:.0%}) below the "
-                               f"target {config.lock.target_shortfall:g}")
+                # The one format of a shortfall, as the lock's verdicts print it.
+                stop_reason = (f"predicted shortfall {shortfall.estimate:.2%}, bound "
+                               f"{shortfall.upper:.2%} ({shortfall.confidence:.0%}) below the "
+                               f"target {config.lock.target_shortfall:.1%}")
             elif searched >= budget.max_points:
                 stop_reason = f"point budget of {budget.max_points} reached"
             elif session.tally.rig_time_s >= budget.max_rig_time_s:

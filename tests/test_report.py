@@ -231,7 +231,7 @@ def test_dry_run_folder_has_a_section_per_stage_and_the_truth(real: dict[str, Pa
     expected = {("", "timeline")}
     for stage in ("calibrate", "retune"):
         expected |= {(stage, "fringes"), (stage, "progress"), (stage, "map"),
-                     (stage, "phase-shift")}
+                     (stage, "phase-shift"), (stage, "absorption")}
         if any(r["label"] in report.SCAN_LABELS
                for r in _journal_estimates(real["dry"] / stage)):
             expected.add((stage, "scan"))  # only where the stage measured lock steps or a scan
@@ -340,7 +340,11 @@ def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
     assert chosen.get_xdata()[0] == result["setpoints"]["velocity"]
     (true_best,) = _by_gid(fig, "true-best")
     assert true_best.get_xdata()[0] == result["truth"]["best_setpoints"]["velocity"]
-    assert any(isinstance(c, ContourSet) for c in fig.axes[0].collections)  # the model
+    # No surface of the report's own: the lock chose from its curves, not from a surface.
+    assert not any(isinstance(c, ContourSet) for c in fig.axes[0].collections)
+    assert "No surface is drawn" in next(f for f in dry_report.figures
+                                         if f.key == "map" and f.section == "calibrate").caption
+    assert any(ax.get_label() == "<colorbar>" for ax in fig.axes)  # the colour has its scale
 
 
 def test_scan_figure_holds_the_lock_steps(real: dict[str, Path],
@@ -469,10 +473,11 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     assert 'id="fig-run-night"' in page
     assert (real["track"] / "report-night.png").read_bytes()[:8] == PNG_SIGNATURE
     built = report.build_report(real["track"])
+    assert [f.key for f in built.figures] == ["night", "fringes"]  # no map, no running maximum
     fig = _figure(built, "", "night")
-    checks = sum(len(line.get_xdata()) for line in fig.findobj(
-        lambda a: str(a.get_gid()).startswith("inv-")))
-    assert checks == len(_journal_estimates(real["track"]))
+    drawn = sum(len(line.get_xdata()) for line in fig.findobj(
+        lambda a: a.get_gid() in ("night-checks", "night-stage-points")))
+    assert drawn == len(_journal_estimates(real["track"]))
     records = read_journal(real["track"] / JOURNAL_NAME)
     corrections = [r for r in records if r["type"] == "decision" and r["what"] == "correct"]
     drawn = fig.findobj(lambda a: a.get_gid() == "corrections")
@@ -644,7 +649,8 @@ def test_a_running_run_shows_the_setpoints_it_is_verifying(tmp_path: Path) -> No
 
 
 def test_a_single_track_journal_with_new_records_draws_the_night(tmp_path: Path) -> None:
-    """Unknown record types and labels are skipped; lock steps, moves and corrections are drawn."""
+    """Unknown record types and labels are skipped; a night is drawn as a night (its points,
+    moves and sized corrections; no map, no scan), and its alarm-like decisions are flagged."""
     rng = np.random.default_rng(8)
     measurements = [_point(rng, "verify", 0, 505.0, 0.0)]
     for k in range(5):
@@ -661,18 +667,12 @@ def test_a_single_track_journal_with_new_records_draws_the_night(tmp_path: Path)
     run = _write_run(tmp_path / "night", measurements, command="track", box=None, end=None,
                      extra=corrections)
     built = report.build_report(run)
-    keys = [f.key for f in built.figures]
-    assert keys[0] == "night" and "scan" in keys and "map" in keys
+    assert [f.key for f in built.figures] == ["night", "fringes"]
     night = _figure(built, "", "night")
     (sized,) = _by_gid(night, "corrections")
     assert list(sized.get_ydata()) == [3.0]
-    (unsized,) = _by_gid(night, "corrections-unsized")
-    assert len(unsized.get_xdata()) == 1
-    (lock,) = _by_gid(_figure(built, "", "scan"), "scan-lock")
-    assert len(lock.get_xdata()) == 5
-    inv = {line.get_gid(): len(line.get_xdata()) for line in night.findobj(
-        lambda a: str(a.get_gid()).startswith("inv-"))}
-    assert inv == {"inv-verify": 1, "inv-lock": 5, "inv-velocity": 1}
+    (points,) = _by_gid(night, "night-stage-points")
+    assert len(points.get_xdata()) == 7
     text = report.format_text(built)
     assert "lock_state (5)" in text
     assert "rig_mismatch: describe changed" in text

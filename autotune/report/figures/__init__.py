@@ -1,0 +1,1 @@
+"""The report's figures, one module per kind."""

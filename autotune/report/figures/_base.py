@@ -1,0 +1,39 @@
+"""What every figure of the report shares: the canvas, markers, error bars, titles."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from autotune.report.model import Run
+
+_LABEL_MARKERS = {"point": "o", "check": "s", "verify": "D", "refine": "^", "lock": "v",
+                  "relock": "<", "bracket": ">", "velocity": "P", "search": "o", "correct": "X"}
+# Above this many runs, the timeline marks where each starts but no longer names it.
+_NAMED_RUNS_MAX = 12
+_DPI = 100
+
+
+def _new_figure(width: float = 7.0, height: float = 4.5) -> Any:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _marker(label: str) -> str:
+    return _LABEL_MARKERS.get(label, "X")
+
+
+def _errorbar(ax: Any, x: Any, y: Any, *, gid: str, **kwargs: Any) -> Any:
+    """``ax.errorbar`` with ``gid`` on the data line only (matplotlib would copy it to the bars)."""
+    container = ax.errorbar(x, y, **kwargs)
+    container.lines[0].set_gid(gid)
+    return container
+
+
+def _title(fig: Any, run: Run | None, text: str) -> None:
+    fig.suptitle(f"{run.name}: {text}" if run is not None else text, fontsize=11)
+
+

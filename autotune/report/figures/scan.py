@@ -1,0 +1,48 @@
+"""Figure: inversion against detuning for scans and lock steps."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from autotune.report.figures._base import _errorbar, _marker, _new_figure, _title
+from autotune.report.model import SCAN_LABELS, Run, _level
+
+
+def figure_scan(run: Run) -> tuple[Any, str] | None:
+    """Figure 4: inversion against detuning for detuning scans and lock steps.
+
+    Uses the measurements labelled as in :data:`SCAN_LABELS`. Returns ``(figure, caption)``, or
+    None when the run has none.
+    """
+    done = [m for m in run.estimated if m.label in SCAN_LABELS and "detuning" in m.setpoints
+            and math.isfinite(m.value("inversion"))]
+    if not done:
+        return None
+    fig = _new_figure()
+    ax = fig.add_subplot()
+    for label in dict.fromkeys(m.label for m in done):
+        pick = [m for m in done if m.label == label]
+        x = np.array([m.setpoints["detuning"] / 1e3 for m in pick])
+        y = np.array([m.value("inversion") for m in pick])
+        lo = np.array([m.value("inversion_low") for m in pick])
+        hi = np.array([m.value("inversion_high") for m in pick])
+        _errorbar(ax, x, y, yerr=[y - lo, hi - y], fmt=_marker(label), capsize=3, ms=6,
+                    label=f"{label} ({len(pick)})", gid=f"scan-{label}")
+    chosen = run.chosen
+    if chosen is not None and "detuning" in chosen:
+        ax.axvline(chosen["detuning"] / 1e3, color="red", ls="--", lw=1.2, gid="chosen",
+                   label=f"chosen {chosen['detuning'] / 1e3:+.2f} kHz")
+    ax.set_xlabel("detuning set-point (kHz)")
+    ax.set_ylabel("fringe inversion (dimensionless)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8, loc="best")
+    _title(fig, run, "detuning scan / lock steps")
+    caption = (f"Inversion against detuning for the measurements labelled "
+               f"{', '.join(sorted({m.label for m in done}))}, with their "
+               f"{_level(run.confidence)} intervals; dashed: the chosen detuning.")
+    return fig, caption
+
+

@@ -1,0 +1,148 @@
+"""What a person reads on the terminal: short lines, repeated warnings merged, help texts that
+say what each command does and how it exits, the nearest name for a mistyped one.
+
+Real processes (``python -m autotune.cli``) for everything a user runs; the line formatter
+directly for its cut. Outside reference: the run folder's own log.jsonl (the full text).
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from autotune import cli
+from rig_process import REPO
+
+MOVING = ("calibrate", "retune", "track", "serve", "probe")
+NOT_MOVING = ("rig", "dry-run", "report")
+
+
+def _autotune(*args: str, timeout: float = 120.0) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "autotune.cli", *args], capture_output=True,
+                          text=True, timeout=timeout, cwd=REPO, stdin=subprocess.DEVNULL)
+
+
+LONG_VERDICT = ("check's phase error +0.462 +- 0.025 pi: set-point +18.42 kHz from the peak "
+                "[-3.47, +40.31] (95%); velocity not judged (phase error beyond the absorption "
+                "window); predicted shortfall 25.15%, bound 29.66% above 2.0%: correct the "
+                "detuning to -18.85 kHz")
+
+
+def test_a_long_decision_fits_a_line_and_keeps_its_action() -> None:
+    """A 240-character reason becomes one line of at most 150 characters, cut at a clause and
+    never inside parentheses, ending with the decision itself."""
+    line = cli._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
+                                            "event": "decision", "what": "verdict",
+                                            "reason": LONG_VERDICT, "stage": "retune"})
+    assert len(line) <= cli.CONSOLE_WIDTH
+    assert line.startswith("13:50:18 retune: verdict: check's phase error +0.462")
+    assert line.endswith(": correct the detuning to -18.85 kHz") and "[...]" in line
+    kept = line.split(" [...]")[0]
+    assert kept.count("(") == kept.count(")")
+
+
+def test_a_short_line_is_left_whole() -> None:
+    """A line within the width keeps its details."""
+    line = cli._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
+                                            "event": "decision", "what": "store",
+                                            "reason": "written", "stage": "calibrate",
+                                            "attempt": 2})
+    assert line == "13:50:18 calibrate: store: written (attempt 2)"
+
+
+def test_repeated_warnings_are_merged_with_a_count() -> None:
+    """Four warnings that differ only in their numbers: one line and 'repeated 3 more times';
+    a different warning after them starts again; the count of the last run is said at exit."""
+    code = ("import structlog\n"
+            "from autotune import cli\n"
+            "cli._configure_logging('info')\n"
+            "log = structlog.get_logger('autotune.test')\n"
+            "for k in range(4):\n"
+            "    log.warning('readback_differs', setpoint='detuning', got=1234.5 + k)\n"
+            "log.info('decision', what='move', reason='next point')\n"
+            "for k in range(3):\n"
+            "    log.warning('slow_reply', waited_s=1.0 + k)\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=60, cwd=REPO)
+    assert done.returncode == 0, done.stderr
+    lines = [line.split(" ", 1)[1] for line in done.stderr.splitlines()]
+    assert lines == [
+        "WARNING readback_differs (setpoint detuning; got 1234)",
+        "WARNING the warning above repeated 3 more times (each in the run folder's log.jsonl)",
+        "move: next point",
+        "WARNING slow_reply (waited 1.0 s)",
+        "WARNING the warning above repeated 2 more times (each in the run folder's log.jsonl)"]
+
+
+@pytest.mark.parametrize("command", MOVING + NOT_MOVING)
+def test_each_command_has_a_description_and_the_caution_only_where_it_moves_a_rig(command):
+    """Every command's --help describes it; the caution is in the help of the commands that
+    move a rig, once, and in no other; acting commands give their exit codes."""
+    done = _autotune(command, "--help", timeout=60)
+    assert done.returncode == 0, done.stderr
+    text = " ".join(done.stdout.split())
+    description = done.stdout.split("\n\n")[1]
+    assert not description.lstrip().startswith(("positional arguments", "options")), command
+    assert text.count("CAUTION") == (1 if command in MOVING else 0)
+    if command in MOVING or command in ("dry-run", "report"):
+        assert "Exit 0" in text, command
+    if command in ("calibrate", "retune"):
+        assert "4 when its inversion is below min_inversion" in text
+    if command in ("probe", "report"):
+        assert "run folder's log.jsonl" not in text  # they have no run folder
+
+
+def test_the_top_level_help_points_at_the_caution_without_repeating_it() -> None:
+    """autotune --help names the commands that act on a rig; the caution itself is theirs."""
+    done = _autotune("--help", timeout=60)
+    assert done.returncode == 0
+    assert "CAUTION" not in done.stdout and "interlocks" in done.stdout
+
+
+@pytest.mark.parametrize(("typed", "meant"), [("calibrat", "calibrate"), ("reprot", "report"),
+                                              ("dryrun", "dry-run")])
+def test_a_mistyped_command_names_the_nearest(typed, meant):
+    """An unknown command exits 2 and suggests the nearest command's name."""
+    done = _autotune(typed, timeout=60)
+    assert done.returncode == 2
+    assert f"did you mean '{meant}'?" in done.stderr
+
+
+def test_a_server_that_does_not_start_says_why_in_a_sentence(tmp_path) -> None:
+    """autotune rig with a missing config: exit 2, its JSON log line, and a sentence naming the
+    file (not only JSON)."""
+    missing = tmp_path / "nope.toml"
+    done = _autotune("rig", "--config", str(missing), "--bind", "tcp://127.0.0.1:0", timeout=60)
+    assert done.returncode == 2
+    sentences = [line for line in done.stderr.splitlines() if not line.startswith("{")]
+    assert any(line.startswith("autotune: the server did not start:") and str(missing) in line
+               for line in sentences), done.stderr
+
+
+def test_every_line_of_a_dry_run_is_short(tmp_path) -> None:
+    """stdout and stderr of a dry run: every line at most 150 characters."""
+    done = _autotune("dry-run", "--out", str(tmp_path / "dry"), timeout=600)
+    assert done.returncode == 0, done.stderr[-2000:]
+    long = [line for line in (done.stdout + done.stderr).splitlines()
+            if len(line) > cli.CONSOLE_WIDTH]
+    assert not long, long
+
+
+def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
+    """calibrate against a closed port: the first line names the endpoint and the waits before
+    any timeout has run out; then one warning per retry; exit 3."""
+    import tomllib
+
+    from cli_helpers import to_toml
+
+    data = tomllib.loads((REPO / "configs" / "dry-run.toml").read_text())
+    data["bus"].update(endpoint="tcp://127.0.0.1:9", timeout_s=1.0, retries=2, backoff_s=0.1)
+    config = tmp_path / "down.toml"
+    config.write_text(to_toml(data))
+    done = _autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
+    assert done.returncode == 3, done.stderr[-2000:]
+    lines = done.stderr.splitlines()
+    assert lines[0].endswith("connect (endpoint tcp://127.0.0.1:9; timeout 1.0 s; retries 2)")
+    assert sum("bus_retry" in line for line in lines) == 2
