@@ -501,8 +501,10 @@ class Session:
         self.log = _log.bind(run=journal.run_dir.name)
         self.progress = progress
         self._plan: _ProgressPlan | None = None
-        # Moves written ahead whose outcome is not known yet: msg_id -> the step's set-points.
+        # Moves written ahead whose outcome is not known yet: msg_id -> the step's set-points;
+        # and safe requests (the rig's own procedure) likewise, by msg_id.
         self._unresolved_moves: dict[str, dict[str, float]] = {}
+        self._unresolved_safe: set[str] = set()
 
     # -- recording -----------------------------------------------------------------------
 
@@ -637,16 +639,37 @@ class Session:
         written ahead have no such requests and are read as they are.
         """
         intents: dict[str, dict[str, float]] = {}
+        safes: set[str] = set()
         for rec in records:
             kind = rec.get("type")
             if kind == "request" and rec.get("op") == "apply" and rec.get("msg_id"):
                 intents[str(rec["msg_id"])] = {k: float(v) for k, v in rec["setpoints"].items()}
+            elif kind == "request" and rec.get("op") == "safe" and rec.get("msg_id"):
+                safes.add(str(rec["msg_id"]))
             elif kind in ("move", "move_unconfirmed") and rec.get("msg_id") in intents:
                 del intents[str(rec["msg_id"])]
+            elif kind in ("safe", "safe_failed") and rec.get("msg_id") in safes:
+                safes.discard(str(rec["msg_id"]))
         self._unresolved_moves.update(intents)
+        self._unresolved_safe.update(safes)
 
     def _reconcile_moves(self) -> None:
-        """Write the outcome of every unresolved move from the set-points now in force."""
+        """Write the outcome of every unresolved move (and safe request) from the set-points
+        now in force."""
+        safe = {k: float(v) for k, v in
+                (getattr(self.description, "safe_setpoints", None) or {}).items()}
+        for msg_id in sorted(self._unresolved_safe):
+            self._unresolved_safe.discard(msg_id)
+            if safe and all(_same_value(self.current.get(n), v) for n, v in safe.items()):
+                self.journal.append("safe", setpoints=dict(self.current), msg_id=msg_id,
+                                    reconciled=True,
+                                    reason="its reply was never received; the rig's status "
+                                           "shows its safe set-points in force")
+            else:
+                self.journal.append("safe_failed", msg_id=msg_id, reconciled=True,
+                                    error=f"its reply was never received and the rig's status "
+                                          f"shows {dict(self.current)}, not its safe set-points",
+                                    reason="a resume asked the rig where it is")
         for msg_id, step in list(self._unresolved_moves.items()):
             del self._unresolved_moves[msg_id]
             at_step = all(_same_value(self.current.get(name), value)
@@ -752,15 +775,25 @@ class Session:
         (bool, str)
             Whether the rig confirmed its safe set-points, and its error if it did not.
         """
+        msg_id = new_msg_id()
         try:
-            reply = self.rig.safe()
+            # Written ahead like every move; a run folder that cannot be written must not
+            # keep the rig from its safe set-points.
+            self.journal.append("request", op="safe", msg_id=msg_id, reason=reason)
+            self._unresolved_safe.add(msg_id)
+        except JournalError as exc:
+            self.log.error("safe_request_not_journaled", error=str(exc))
+        try:
+            reply = self.rig.safe(msg_id=msg_id)
             self.current = {k: float(v) for k, v in reply.setpoints.items()}
-            self.journal.append("safe", setpoints=self.current, reason=reason)
+            self._unresolved_safe.discard(msg_id)
+            self.journal.append("safe", setpoints=self.current, reason=reason, msg_id=msg_id)
             (self.log.info if expected else self.log.warning)(
                 "safe_setpoints_applied", reason=reason, setpoints=self.current)
             return True, ""
         except (RigError, Interrupted) as exc:
-            self.journal.append("safe_failed", reason=reason, error=str(exc))
+            self._unresolved_safe.discard(msg_id)
+            self.journal.append("safe_failed", reason=reason, error=str(exc), msg_id=msg_id)
             self.log.error("safe_setpoints_failed", reason=reason, error=str(exc))
             return False, str(exc)
 

@@ -38,7 +38,8 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
       carrying its msg_id (in a finished run), and no msg_id is resolved twice;
     - every move written ahead (a request of op ``apply``) is resolved by one ``move`` or
       ``move_unconfirmed`` record carrying its msg_id, after it (in a finished run), and a
-      ``move`` resolving it was applied at the step's set-points;
+      ``move`` resolving it was applied at the step's set-points; every ``safe`` written ahead
+      is resolved by one ``safe`` or ``safe_failed`` record with its msg_id;
     - every measurement has at most one estimate, after all of its acquisitions;
     - each resume re-told every search point estimated before it exactly once;
     - a night (``autotune track``): see :func:`check_night`;
@@ -68,6 +69,10 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
         elif kind == "request" and rec["op"] == "apply":
             assert rec["msg_id"] not in moves_ahead, f"move {rec['msg_id']} written ahead twice"
             moves_ahead[rec["msg_id"]] = rec
+        elif kind == "request" and rec["op"] == "safe":
+            moves_ahead[rec["msg_id"]] = rec
+        elif kind in ("safe", "safe_failed") and rec.get("msg_id") in moves_ahead:
+            moves_resolved[rec["msg_id"]] += 1
         elif kind in ("move", "move_unconfirmed") and rec.get("msg_id") in moves_ahead:
             moves_resolved[rec["msg_id"]] += 1
             if kind == "move":

@@ -315,3 +315,35 @@ def test_a_kill_between_a_moves_intent_and_its_outcome_is_settled_by_the_resume(
     assert len(executed) == sum(1 for r in records if r["type"] == "move")
     with BusClient(server.endpoint, timeout_s=5.0, retries=1, backoff_s=0.1) as client:
         assert client.status().shots_total == journal_shots(records)
+
+
+def test_a_kill_while_the_rig_goes_safe_is_settled_by_the_resume(tmp_path, servers):
+    """SIGTERM, then SIGKILL while safe's reply is on its way (the rig went safe and delays
+    its reply): the journal names the safe request (written ahead); the resume writes its
+    outcome from the rig's status (safe, reconciled) and finishes the run."""
+    server = servers("--delay-s", "0.6", name="slow")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    try:
+        wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
+                        timeout_s=300, process=process)
+        process.send_signal(signal.SIGTERM)
+        intent = wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "request"
+                                 and r["op"] == "safe", timeout_s=60, process=process)
+        time.sleep(0.15)  # the request reached the rig; its reply comes 0.6 s after
+        process.send_signal(signal.SIGKILL)
+        process.communicate(timeout=60)
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+    records = read_journal(run / JOURNAL_NAME)
+    assert not any(r.get("msg_id") == intent["msg_id"] for r in records
+                   if r["type"] in ("safe", "safe_failed")), "the kill came too late"
+    resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
+    assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
+    records = read_journal(run / JOURNAL_NAME)
+    check_invariants(records)
+    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == "safe"]
+    assert len(settled) == 1 and settled[0]["reconciled"] is True, settled
