@@ -352,6 +352,11 @@ class _ProgressPlan:
             self.best = (estimate, {k: float(v) for k, v in setpoints.items()})
 
 
+def _same_value(reported: float | None, wanted: float) -> bool:
+    """A set-point in force equals the one sent (to float rounding)."""
+    return reported is not None and abs(float(reported) - wanted) <= 1e-9 * max(1.0, abs(wanted))
+
+
 def _log_decision(what: str, reason: str, *, level: str = "info", **fields: Any) -> None:
     """A decision taken before the run's journal exists: logged only."""
     getattr(_log, level)("decision", what=what, reason=reason, **fields)
@@ -496,6 +501,10 @@ class Session:
         self.log = _log.bind(run=journal.run_dir.name)
         self.progress = progress
         self._plan: _ProgressPlan | None = None
+        # Moves written ahead whose outcome is not known yet: msg_id -> the step's set-points;
+        # and safe requests (the rig's own procedure) likewise, by msg_id.
+        self._unresolved_moves: dict[str, dict[str, float]] = {}
+        self._unresolved_safe: set[str] = set()
 
     # -- recording -----------------------------------------------------------------------
 
@@ -612,11 +621,71 @@ class Session:
                         sleep=self.sleep, decide=self.decide)
 
     def learn_present(self) -> dict[str, float]:
-        """Ask the rig which set-points are in force."""
+        """Ask the rig which set-points are in force (and settle, from its answer, the moves
+        written ahead whose outcome is not known: see :meth:`resume_moves`)."""
         status = self._call("status", lambda _id: self.rig.status())
         self.current = {k: float(v) for k, v in status.setpoints.items()}
         self.clock = float(status.clock)
+        self._reconcile_moves()
         return dict(self.current)
+
+    def resume_moves(self, records: Iterable[Mapping[str, Any]]) -> None:
+        """Take up, on a resume, the moves written ahead (``request`` records of op ``apply``)
+        that have no outcome record (``move`` or ``move_unconfirmed`` with their ``msg_id``):
+        the run stopped between the intent and its outcome, so the rig may or may not have
+        made them. The next :meth:`learn_present` settles each from the rig's ``status``: a
+        ``move`` record (``reconciled``) if the rig is at the step's set-points, else a
+        ``move_unconfirmed`` record naming where it is. Journals written before moves were
+        written ahead have no such requests and are read as they are.
+        """
+        intents: dict[str, dict[str, float]] = {}
+        safes: set[str] = set()
+        for rec in records:
+            kind = rec.get("type")
+            if kind == "request" and rec.get("op") == "apply" and rec.get("msg_id"):
+                intents[str(rec["msg_id"])] = {k: float(v) for k, v in rec["setpoints"].items()}
+            elif kind == "request" and rec.get("op") == "safe" and rec.get("msg_id"):
+                safes.add(str(rec["msg_id"]))
+            elif kind in ("move", "move_unconfirmed") and rec.get("msg_id") in intents:
+                del intents[str(rec["msg_id"])]
+            elif kind in ("safe", "safe_failed") and rec.get("msg_id") in safes:
+                safes.discard(str(rec["msg_id"]))
+        self._unresolved_moves.update(intents)
+        self._unresolved_safe.update(safes)
+
+    def _reconcile_moves(self) -> None:
+        """Write the outcome of every unresolved move (and safe request) from the set-points
+        now in force."""
+        safe = {k: float(v) for k, v in
+                (getattr(self.description, "safe_setpoints", None) or {}).items()}
+        for msg_id in sorted(self._unresolved_safe):
+            self._unresolved_safe.discard(msg_id)
+            if safe and all(_same_value(self.current.get(n), v) for n, v in safe.items()):
+                self.journal.append("safe", setpoints=dict(self.current), msg_id=msg_id,
+                                    reconciled=True,
+                                    reason="its reply was never received; the rig's status "
+                                           "shows its safe set-points in force")
+            else:
+                self.journal.append("safe_failed", msg_id=msg_id, reconciled=True,
+                                    error=f"its reply was never received and the rig's status "
+                                          f"shows {dict(self.current)}, not its safe set-points",
+                                    reason="a resume asked the rig where it is")
+        for msg_id, step in list(self._unresolved_moves.items()):
+            del self._unresolved_moves[msg_id]
+            at_step = all(_same_value(self.current.get(name), value)
+                          for name, value in step.items())
+            if at_step:
+                self.journal.append("move", setpoints=step, applied=dict(self.current),
+                                    clock=self.clock, msg_id=msg_id, reconciled=True,
+                                    reason="its reply was never received; the rig's status "
+                                           "shows the step's set-points in force")
+            else:
+                self.journal.append("move_unconfirmed", setpoints=step, msg_id=msg_id,
+                                    in_force=dict(self.current), clock=self.clock,
+                                    reason="its reply was never received and the rig's status "
+                                           "does not show the step's set-points in force (it "
+                                           "did not make it, or moved on since)")
+            self.log.info("move_reconciled", msg_id=msg_id, setpoints=step, applied=at_step)
 
     def recover(self, error: RigMismatch, failures: int, what: str) -> None:
         """Handle a reply that contradicts what was applied: journal it, re-learn the rig.
@@ -668,13 +737,29 @@ class Session:
             for name, value in step.items():
                 self.limits[name].check(name, value)
             msg_id = new_msg_id()
+            # Write-ahead, as for an acquisition: the journal names every move the rig may
+            # have made, even if this process dies before the reply is recorded.
+            self.journal.append("request", op="apply", msg_id=msg_id, setpoints=step,
+                                reason=reason)
+            self._unresolved_moves[msg_id] = dict(step)
             try:
                 applied = self._call("apply", lambda i, s=step: self.rig.apply(s, msg_id=i),
                                      msg_id)
-            except RigError:
-                # The rig may or may not have moved: ask before planning the next step.
+            except (LimitError, RigRefused) as exc:
+                # Refused before it left, or by the rig (after the retries): nothing moved,
+                # unless the rig failed while moving (internal): then its status decides.
+                if not (isinstance(exc, RigRefused) and exc.kind == "internal"):
+                    del self._unresolved_moves[msg_id]
+                    self.journal.append("move_unconfirmed", setpoints=step, msg_id=msg_id,
+                                        refused=getattr(exc, "kind", "limit"), reason=str(exc))
                 self.current = {}
                 raise
+            except (RigError, Interrupted):
+                # The rig may or may not have moved: the next status (here or at the resume)
+                # settles it, before the next step is planned.
+                self.current = {}
+                raise
+            del self._unresolved_moves[msg_id]
             self.current = {k: float(v) for k, v in applied.setpoints.items()}
             self.clock = float(applied.clock)
             self.journal.append("move", setpoints=step, applied=self.current, clock=applied.clock,
@@ -690,15 +775,25 @@ class Session:
         (bool, str)
             Whether the rig confirmed its safe set-points, and its error if it did not.
         """
+        msg_id = new_msg_id()
         try:
-            reply = self.rig.safe()
+            # Written ahead like every move; a run folder that cannot be written must not
+            # keep the rig from its safe set-points.
+            self.journal.append("request", op="safe", msg_id=msg_id, reason=reason)
+            self._unresolved_safe.add(msg_id)
+        except JournalError as exc:
+            self.log.error("safe_request_not_journaled", error=str(exc))
+        try:
+            reply = self.rig.safe(msg_id=msg_id)
             self.current = {k: float(v) for k, v in reply.setpoints.items()}
-            self.journal.append("safe", setpoints=self.current, reason=reason)
+            self._unresolved_safe.discard(msg_id)
+            self.journal.append("safe", setpoints=self.current, reason=reason, msg_id=msg_id)
             (self.log.info if expected else self.log.warning)(
                 "safe_setpoints_applied", reason=reason, setpoints=self.current)
             return True, ""
         except (RigError, Interrupted) as exc:
-            self.journal.append("safe_failed", reason=reason, error=str(exc))
+            self._unresolved_safe.discard(msg_id)
+            self.journal.append("safe_failed", reason=reason, error=str(exc), msg_id=msg_id)
             self.log.error("safe_setpoints_failed", reason=reason, error=str(exc))
             return False, str(exc)
 

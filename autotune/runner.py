@@ -736,6 +736,7 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         journal.close()
         raise
     try:
+        session.resume_moves(records)
         session.learn_present()
         if config.search.strategy == "phase_lock":
             outcome = run_guided_stage(session, records=records,

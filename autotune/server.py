@@ -594,6 +594,9 @@ class RigServer:
             log.exception("rig_failed", request_ran=kept)
             kind, detail = ErrorKind.INTERNAL, f"{type(exc).__name__}: {exc}"
         else:
+            # One line per request the rig executed (repeats answered from the cache are
+            # 'request_replayed'): a fault harness counts the rig's own acts from it.
+            self._log.debug("request_executed", op=request.op.value, msg_id=request.msg_id)
             try:
                 return protocol.encode_result(request.msg_id, result), True
             except ValueError as exc:

@@ -322,6 +322,7 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     night: _Night | None = None
     try:
         night = _Night(session, prepared, rig, ledger, wall)
+        session.resume_moves(records)
         session.learn_present()
         result = night.run()
         result["wall_time_s"] = time.monotonic() - wall_start

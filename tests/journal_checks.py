@@ -36,6 +36,10 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     - no acquisition (label, point, field, phase) is filed twice: nothing was measured twice;
     - every write-ahead request is resolved by an acquisition, a discarded or a refused record
       carrying its msg_id (in a finished run), and no msg_id is resolved twice;
+    - every move written ahead (a request of op ``apply``) is resolved by one ``move`` or
+      ``move_unconfirmed`` record carrying its msg_id, after it (in a finished run), and a
+      ``move`` resolving it was applied at the step's set-points; every ``safe`` written ahead
+      is resolved by one ``safe`` or ``safe_failed`` record with its msg_id;
     - every measurement has at most one estimate, after all of its acquisitions;
     - each resume re-told every search point estimated before it exactly once;
     - a night (``autotune track``): see :func:`check_night`;
@@ -46,6 +50,8 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     filed: Counter[tuple[Any, str, int, str, int]] = Counter()
     requests: dict[str, Mapping[str, Any]] = {}
     resolved: Counter[str] = Counter()
+    moves_ahead: dict[str, Mapping[str, Any]] = {}
+    moves_resolved: Counter[str] = Counter()
     estimated: Counter[tuple[Any, str, int]] = Counter()
     point_estimates: list[int] = []
     steps: list[int] = []
@@ -60,6 +66,20 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
         elif kind == "request" and rec["op"] == "acquire":
             assert rec["msg_id"] not in requests, f"msg_id {rec['msg_id']} requested twice"
             requests[rec["msg_id"]] = rec
+        elif kind == "request" and rec["op"] == "apply":
+            assert rec["msg_id"] not in moves_ahead, f"move {rec['msg_id']} written ahead twice"
+            moves_ahead[rec["msg_id"]] = rec
+        elif kind == "request" and rec["op"] == "safe":
+            moves_ahead[rec["msg_id"]] = rec
+        elif kind in ("safe", "safe_failed") and rec.get("msg_id") in moves_ahead:
+            moves_resolved[rec["msg_id"]] += 1
+        elif kind in ("move", "move_unconfirmed") and rec.get("msg_id") in moves_ahead:
+            moves_resolved[rec["msg_id"]] += 1
+            if kind == "move":
+                want = moves_ahead[rec["msg_id"]]["setpoints"]
+                got = rec["applied"]
+                assert all(abs(got[n] - v) <= 1e-9 * max(1.0, abs(v)) for n, v in want.items()), (
+                    f"record {rec['seq']}: move resolved at {got}, step {want}")
         elif kind in ("acquisition", "discarded", "refused"):
             key = _scoped(scope, rec["label"], rec["point"])
             assert key in opened, f"record {rec['seq']}: {kind} of a measurement never opened"
@@ -88,6 +108,7 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     twice = [k for k, n in filed.items() if n > 1]
     assert not twice, f"acquisitions filed twice: {twice}"
     assert all(n == 1 for n in resolved.values()), "a request was resolved twice"
+    assert all(n == 1 for n in moves_resolved.values()), "a move was resolved twice"
     assert all(n == 1 for n in estimated.values()), f"estimated twice: {estimated}"
     if any(r["type"] == "hold" or (r["type"] == "decision" and r["what"] == "stage_done")
            for r in records):
@@ -95,6 +116,8 @@ def check_invariants(records: Sequence[Mapping[str, Any]], *, finished: bool = T
     if finished:
         unresolved = set(requests) - set(resolved)
         assert not unresolved, f"requests never resolved: {sorted(unresolved)}"
+        unsettled = set(moves_ahead) - set(moves_resolved)
+        assert not unsettled, f"moves written ahead never resolved: {sorted(unsettled)}"
         assert records[-1]["type"] == "end" and records[-1]["status"] in FINAL, records[-1]
 
 

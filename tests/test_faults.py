@@ -8,12 +8,19 @@
 - An ``internal`` reply (the driver failed) is not kept: the retry with the same ``msg_id``
   reaches the driver again, so a driver failing once does not end a calibration, and every
   shot the rig took is in the journal once.
+- A stop is prompt with the rig gone: the call in flight is abandoned (its msg_id journaled),
+  ``safe`` is tried within ``[recovery] safe_on_stop_s``, a second signal ends the process at
+  once; the message says the rig did not confirm its safe set-points; the resume finishes the
+  run once the rig is back.
 """
 
 from __future__ import annotations
 
 import json
+import shlex
 import signal
+import socket
+import time
 from pathlib import Path
 from typing import Any
 
@@ -192,3 +199,151 @@ def test_a_driver_failing_once_does_not_end_a_calibration(tmp_path):
         assert len(server.wait_for_event("rig_failed")) == 2
     finally:
         server.stop()
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+def _stop_with_the_rig_gone(tmp_path: Path, servers: Any, safe_on_stop_s: float,
+                            second_signal: bool) -> tuple[str, float, Path, str, str]:
+    """A calibration with the default bus waits (10 s per reply, 3 resends) on a rig that is
+    then killed mid-run; SIGTERM (and a second one 0.5 s later if asked) while the call in
+    flight waits for it. Returns stderr, the seconds from the first signal to the exit, the
+    run folder, the config path and the rig's endpoint."""
+    endpoint = f"tcp://127.0.0.1:{_free_port()}"
+    server = servers("--delay-s", "0.05", bind=endpoint, name="gone")
+    config = tiny_config(tmp_path / "c.toml", endpoint, tmp_path / "good.json",
+                         recovery={"safe_on_stop_s": safe_on_stop_s})
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    try:
+        wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
+                        process=process)
+        server.kill()
+        time.sleep(1.0)  # the call in flight now waits for a reply that never comes
+        began = time.monotonic()
+        process.send_signal(signal.SIGTERM)
+        if second_signal:
+            time.sleep(0.5)
+            process.send_signal(signal.SIGTERM)
+        _, err = process.communicate(timeout=300)
+        elapsed = time.monotonic() - began
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+    assert process.returncode == 130, err[-3000:]
+    return err, elapsed, run, str(config), endpoint
+
+
+def _resume_on_a_new_rig(servers: Any, endpoint: str, hint: str, run: Path) -> None:
+    """The rig back on its endpoint (a new instance): the printed resume command finishes the
+    run and its journal keeps the invariants."""
+    servers("--delay-s", "0.01", bind=endpoint, name="back")
+    resumed = autotune(*shlex.split(hint)[1:])
+    assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
+    check_invariants(read_journal(run / JOURNAL_NAME))
+
+
+def test_a_stop_with_the_rig_gone_takes_seconds_and_the_resume_works(tmp_path, servers):
+    """SIGTERM while the call in flight waits for a killed rig (default bus waits, ~45 s for
+    that call, then as long again for safe): the call is abandoned and journaled with its
+    msg_id, safe is given up after safe_on_stop_s (2 s), the exit (130) comes within seconds
+    (it took 89-105 s before) and says the rig did NOT confirm its safe set-points; the resume
+    finishes the run once the rig is back."""
+    err, elapsed, run, config, endpoint = _stop_with_the_rig_gone(tmp_path, servers, 2.0, False)
+    assert elapsed < 30.0, (elapsed, err[-3000:])  # a bound against a hang, not a speed target
+    assert "did NOT confirm its safe set-points" in err
+    records = read_journal(run / JOURNAL_NAME)
+    abandoned = [r for r in records if r["type"] == "decision" and r["what"] == "abandon"]
+    assert abandoned and abandoned[0]["msg_id"], records[-6:]
+    assert any(r["type"] == "safe_failed" and "after the stop signal" in r["error"]
+               for r in records)
+    assert records[-1]["type"] == "end" and records[-1]["status"] == "interrupted"
+    hint = err.split("Continue with: ", 1)[1].strip().splitlines()[0]
+    assert hint == f"autotune calibrate --config {config} --resume {run}"
+    _resume_on_a_new_rig(servers, endpoint, hint, run)
+
+
+def test_a_second_signal_ends_the_stop_at_once(tmp_path, servers):
+    """A second SIGTERM while safe waits for a rig that is gone (safe_on_stop_s 60 s) ends the
+    process at once with exit 130, a message that the rig did NOT confirm its safe set-points
+    and the resume command; the journal (no end record) is resumed once the rig is back."""
+    err, elapsed, run, config, endpoint = _stop_with_the_rig_gone(tmp_path, servers, 60.0, True)
+    assert elapsed < 30.0, (elapsed, err[-3000:])  # well before safe_on_stop_s
+    assert "stopped at once by a second signal" in err
+    assert "did NOT confirm its safe set-points" in err
+    hint = err.split("Continue with: ", 1)[1].strip().splitlines()[0]
+    assert hint == f"autotune calibrate --config {config} --resume {run}"
+    _resume_on_a_new_rig(servers, endpoint, hint, run)
+
+
+def test_a_kill_between_a_moves_intent_and_its_outcome_is_settled_by_the_resume(tmp_path,
+                                                                                servers):
+    """SIGKILL while an apply's reply is on its way (the rig applied it and delays its reply):
+    the journal names the move (a request of op apply, no outcome); the resume writes its
+    outcome from the rig's status (a move, reconciled) and finishes; every apply the rig
+    executed (its own log) has one move record, every shot it took is in the journal."""
+    server = servers("--delay-s", "0.6", "--log-level", "debug", name="slow")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    try:
+        intent = wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "request"
+                                 and r["op"] == "apply", timeout_s=300, process=process)
+        time.sleep(0.15)  # the request reached the rig; its reply comes 0.6 s after
+        process.send_signal(signal.SIGKILL)
+        process.communicate(timeout=60)
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+    records = read_journal(run / JOURNAL_NAME)
+    assert not any(r.get("msg_id") == intent["msg_id"] for r in records
+                   if r["type"] in ("move", "move_unconfirmed")), "the kill came too late"
+    resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
+    assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
+    records = read_journal(run / JOURNAL_NAME)
+    check_invariants(records)
+    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == "move"]
+    assert len(settled) == 1 and settled[0]["reconciled"] is True, settled
+    executed = [e for e in server.events()
+                if e.get("event") == "request_executed" and e.get("op") == "apply"]
+    assert len(executed) == sum(1 for r in records if r["type"] == "move")
+    with BusClient(server.endpoint, timeout_s=5.0, retries=1, backoff_s=0.1) as client:
+        assert client.status().shots_total == journal_shots(records)
+
+
+def test_a_kill_while_the_rig_goes_safe_is_settled_by_the_resume(tmp_path, servers):
+    """SIGTERM, then SIGKILL while safe's reply is on its way (the rig went safe and delays
+    its reply): the journal names the safe request (written ahead); the resume writes its
+    outcome from the rig's status (safe, reconciled) and finishes the run."""
+    server = servers("--delay-s", "0.6", name="slow")
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
+    run = tmp_path / "run"
+    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
+    try:
+        wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
+                        timeout_s=300, process=process)
+        process.send_signal(signal.SIGTERM)
+        intent = wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "request"
+                                 and r["op"] == "safe", timeout_s=60, process=process)
+        time.sleep(0.15)  # the request reached the rig; its reply comes 0.6 s after
+        process.send_signal(signal.SIGKILL)
+        process.communicate(timeout=60)
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+    records = read_journal(run / JOURNAL_NAME)
+    assert not any(r.get("msg_id") == intent["msg_id"] for r in records
+                   if r["type"] in ("safe", "safe_failed")), "the kill came too late"
+    resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
+    assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
+    records = read_journal(run / JOURNAL_NAME)
+    check_invariants(records)
+    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == "safe"]
+    assert len(settled) == 1 and settled[0]["reconciled"] is True, settled
