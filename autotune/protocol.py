@@ -146,7 +146,9 @@ its ttl). While a lease is held:
   it did not apply).
 
 With no lease held every client may send every op, with or without ``client``, as in the first
-edition of this protocol.
+edition of this protocol. The identity is what a client says it is: the lease guards against
+accidents (two runs, a person and a cron job), not against a client that lies; CURVE decides who
+may connect at all.
 
 ``claim``, request key ``client`` required, args ``{"ttl_s": float}`` (``0 < ttl_s <=``
 :data:`MAX_LEASE_TTL_S`), result::
