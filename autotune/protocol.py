@@ -131,8 +131,9 @@ answers ``unknown_op`` (or ``bad_request``, as a rig of the first edition does f
 
 A client names itself with the request key ``"client": str`` (1 to 128 printable ASCII
 characters; autotune sends ``USER@HOST pid PID (COMMAND)``). ``claim`` gives the rig to one
-client for ``ttl_s`` seconds; claiming again before the lease runs out renews it; ``release``
-ends it; a lease not renewed in time ends by itself (a client that died frees the rig within
+client for ``ttl_s`` seconds; claiming again before the lease runs out renews it, and so does
+the end of every request the holder sends (a request longer than ``ttl_s``, such as a long
+acquisition, never loses the lease); ``release`` ends it; a lease not renewed in time ends by itself (a client that died frees the rig within
 its ttl). While a lease is held:
 
 - ``apply``, ``acquire`` and ``advance`` (the ops that move the rig, acquire, or spend its
