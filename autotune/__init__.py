@@ -16,8 +16,10 @@ from autotune.errors import (
     LimitError,
     ProtocolError,
     RigError,
+    RigLeased,
     RigRefused,
     RigTimeout,
+    RunFolderInUse,
 )
 
 __version__ = "0.1.0"
@@ -31,6 +33,8 @@ __all__ = [
     "LimitError",
     "ProtocolError",
     "RigError",
+    "RigLeased",
     "RigRefused",
     "RigTimeout",
+    "RunFolderInUse",
 ]

@@ -460,7 +460,7 @@ def _guarded(action: Callable[[], int], resume_hint: Callable[[], str | None] = 
         hint = resume_hint()
         if not hint:
             print(f"autotune: {exc.detail}: another client is driving this rig; nothing was "
-                  f"sent to it. Wait for that run to end, or let this command wait for the rig "
+                  f"moved (it was only described). Wait for that run to end, or let this command wait for the rig "
                   f"with --wait-lease-s SECONDS", file=sys.stderr)
         else:
             print(f"autotune: {exc.detail}: this run lost the rig's lease (it could not renew it "
@@ -976,8 +976,10 @@ def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, 
     _log.info("connect", endpoint=config.bus.endpoint, timeout_s=config.bus.timeout_s,
               retries=config.bus.retries)
     with _connect(config, stop) as rig:
-        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
+        # prepare only reads the rig (describe): its checks of the input come first, the
+        # lease before the first move.
         prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
+        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
         print(CAUTION, file=sys.stderr)
         run_dir.mkdir(parents=True, exist_ok=True)
         started.append(run_dir)

@@ -92,6 +92,13 @@ class LeaseBook:
         return {"holder": client, "ttl_s": float(ttl_s), "expires_in_s": float(ttl_s),
                 "renewed": held is not None}
 
+    def renew_if_held(self, client: str) -> None:
+        """Restart the time to live of ``client``'s lease, if it holds one (the end of one of
+        its requests counts as a claim: a request longer than the ttl never loses it)."""
+        held = self._holder
+        if held is not None and held.client == client:
+            self._holder = Holder(client, held.ttl_s, self._clock() + held.ttl_s)
+
     def release(self, client: str) -> dict[str, object]:
         """End ``client``'s lease; the ``release`` result (``released`` false if it held none).
 

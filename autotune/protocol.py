@@ -140,8 +140,9 @@ answers ``unknown_op`` (or ``bad_request``, as a rig of the first edition does f
 
 A client names itself with the request key ``"client": str`` (1 to 128 printable ASCII
 characters; autotune sends ``USER@HOST pid PID (COMMAND)``). ``claim`` gives the rig to one
-client for ``ttl_s`` seconds; claiming again before the lease runs out renews it; ``release``
-ends it; a lease not renewed in time ends by itself (a client that died frees the rig within
+client for ``ttl_s`` seconds; claiming again before the lease runs out renews it, and so does
+the end of every request the holder sends (a request longer than ``ttl_s``, such as a long
+acquisition, never loses the lease); ``release`` ends it; a lease not renewed in time ends by itself (a client that died frees the rig within
 its ttl). While a lease is held:
 
 - ``apply``, ``acquire`` and ``advance`` (the ops that move the rig, acquire, or spend its
@@ -155,7 +156,9 @@ its ttl). While a lease is held:
   it did not apply).
 
 With no lease held every client may send every op, with or without ``client``, as in the first
-edition of this protocol.
+edition of this protocol. The identity is what a client says it is: the lease guards against
+accidents (two runs, a person and a cron job), not against a client that lies; CURVE decides who
+may connect at all.
 
 ``claim``, request key ``client`` required, args ``{"ttl_s": float}`` (``0 < ttl_s <=``
 :data:`MAX_LEASE_TTL_S`), result::

@@ -317,8 +317,12 @@ class RigServer:
             dispatch[Op.ADVANCE] = lambda a: rig.advance(a["seconds"])
         if callable(getattr(rig, "thermal_step", None)):
             dispatch[Op.THERMAL_STEP] = lambda a: rig.thermal_step(a["shift_hz"])
-        self._dispatch = types.MappingProxyType(dispatch)
         self._leases = LeaseBook()
+        self._sender: str | None = None  # the client of the request being executed
+        # A request of the lease's holder renews the lease when it ends: a long acquisition
+        # (or a slow driver) cannot let the lease run out under the client that waits for it.
+        self._dispatch = types.MappingProxyType(
+            {op: self._renewing(handler) for op, handler in dispatch.items()})
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -533,12 +537,23 @@ class RigServer:
         if len(self._cache) > self._cache_size:
             self._cache.popitem(last=False)
 
+    def _renewing(self, handler: Callable[[Mapping[str, Any]], Mapping[str, Any]]
+                  ) -> Callable[[Mapping[str, Any]], Mapping[str, Any]]:
+        def call(args: Mapping[str, Any]) -> Mapping[str, Any]:
+            try:
+                return handler(args)
+            finally:
+                if self._sender is not None:
+                    self._leases.renew_if_held(self._sender)
+        return call
+
     def _lease_gate(self, request: protocol.Request) -> tuple[bytes, bool] | None:
         """The reply of a ``claim`` or ``release``, or the ``leased`` refusal of an op another
         client's lease reserves, with whether the replay cache keeps it; None when the request
         goes on to the rig. A ``safe`` always
         goes on, logged with who sent it."""
         op, client = request.op, request.client
+        self._sender = client
         log = self._log.bind(op=op.value, msg_id=request.msg_id, client=client)
         try:
             if op is Op.CLAIM:

@@ -500,7 +500,7 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     assert "journal record types not drawn" not in done.stdout
 
 
-@pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "garbage", "bad_result"])
+@pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "bad_result"])
 def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path],
                                                             tmp_path: Path, damage: str) -> None:
     """Missing or damaged files: exit code 2 and a message naming the offending path."""
@@ -515,17 +515,28 @@ def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path
         if damage == "no_manifest":
             (folder / "manifest.json").unlink()
             named = str(folder / "manifest.json")
-        elif damage == "garbage":
-            lines = (folder / JOURNAL_NAME).read_text().splitlines(keepends=True)
-            lines[3] = "this is not JSON\n"
-            (folder / JOURNAL_NAME).write_text("".join(lines))
-            named = str(folder / JOURNAL_NAME)
         else:
             (folder / RESULT_NAME).write_text("{truncated")
             named = str(folder / RESULT_NAME)
     done = _autotune("report", str(folder))
     assert done.returncode == 2, (done.stdout, done.stderr)
     assert named in done.stderr
+
+
+def test_a_journal_with_a_damaged_line_is_reported_up_to_it(real: dict[str, Path],
+                                                           tmp_path: Path) -> None:
+    """A line that is not JSON in the middle of a journal: exit code 0, the records before it
+    reported, and a note naming the journal, the line and what was found there."""
+    folder = tmp_path / "run"
+    shutil.copytree(real["dry"] / "retune", folder)
+    lines = (folder / JOURNAL_NAME).read_text().splitlines(keepends=True)
+    lines[3] = "this is not JSON\n"
+    (folder / JOURNAL_NAME).write_text("".join(lines))
+    done = _autotune("report", str(folder), "--no-plot")
+    assert done.returncode == 0, (done.stdout, done.stderr)
+    assert (f"NOTE: {folder / JOURNAL_NAME} line 4: expected record seq 3, found text that is "
+            f"not JSON: this is not JSON") in done.stdout
+    assert "shows the 3 records before it" in done.stdout
 
 
 # --------------------------------------------------------------------------------------------

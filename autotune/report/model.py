@@ -411,9 +411,11 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
                 safe_failed.append(rec)
             elif kind == "end":
                 ended = str(rec["status"])
-            elif kind in ("proposal", "safe", "request", "wait", "hold"):
+            elif kind in ("proposal", "safe", "request", "wait", "hold", "move_unconfirmed"):
                 # Drawn through what they lead to: the proposal's move, a request's
-                # acquisition, a night's wait and check (its estimate and decisions).
+                # acquisition or move, a night's wait and check (its estimate and decisions);
+                # a move the rig did not confirm left the set-points where the next move or
+                # acquisition shows them.
                 if kind == "wait" and isinstance(rec.get("clock"), (int, float)):
                     clock = float(rec["clock"])
             else:

@@ -48,6 +48,10 @@ def test_the_book_gives_the_rig_to_one_client_until_release_or_expiry() -> None:
         book.check(op, "b")
     with pytest.raises(LeaseHeld):
         book.release("b")
+    clock.now += 25.0  # a request of the holder longer than its ttl ...
+    book.renew_if_held("a")  # ... renews the lease when it ends
+    book.renew_if_held("b")  # (a stranger's request renews nothing)
+    assert book.holder().client == "a" and book.holder().expires_at == clock.now + 10.0
     clock.now += 10.0
     assert book.holder() is None  # ran out
     book.check(Op.APPLY, "b")
