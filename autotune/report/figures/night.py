@@ -53,6 +53,9 @@ def night_records(run: Run) -> dict[str, Any]:
                 clock = t1
         elif kind == "hold":
             holds.append(rec)
+        elif kind == "wait" and isinstance(rec.get("until_clock"), (int, float)):
+            # What follows a wait happens when it ends.
+            clock = float(rec["until_clock"])
         elif kind == "decision":
             what = rec.get("what")
             if what in _STAGES:
@@ -78,6 +81,15 @@ def night_records(run: Run) -> dict[str, Any]:
         open_stage["end"] = clock
     return {"holds": holds, "stages": stages, "alarms": alarms, "failures": failures,
             "corrections": corrections, "plans": plans, "beam": beam}
+
+
+def _peak_variance(hold: Mapping[str, Any]) -> float:
+    """The variance of the lock's peak after a check (Hz^2): its covariance's first element."""
+    cov = _get(hold, "numbers", "lock", "covariance")
+    try:
+        return _num(cov[0][0])
+    except (TypeError, IndexError, KeyError):
+        return math.nan
 
 
 def _budget(run: Run) -> float:
@@ -182,9 +194,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     if steps:
         ax_det.step([s[0] for s in steps], [s[1] for s in steps], where="post", color="0.3", lw=1.1,
                     label="detuning set-point applied", gid="held")
-    peak = [(_num(_get(h, "numbers", "lock", "peak_hz")),
-             _num(_get(h, "numbers", "lock", "covariance", )[0][0])
-             if isinstance(_get(h, "numbers", "lock", "covariance"), list) else math.nan) for h in holds]
+    peak = [(_num(_get(h, "numbers", "lock", "peak_hz")), _peak_variance(h)) for h in holds]
     if peak:
         p = np.array([x[0] for x in peak]) / 1e3
         sd = np.sqrt(np.clip(np.array([x[1] for x in peak]), 0.0, None)) / 1e3
@@ -233,13 +243,16 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
                      ha="center", va="center", fontsize=8, color="0.4")
 
     # 5. beam share against the budget
+    final_share = math.nan
     if night["beam"]:
         beam = np.array(sorted(night["beam"]))
         ends = beam[:, 1]
         used = np.cumsum(beam[:, 1] - beam[:, 0])
         elapsed = ends - origin
         keep = elapsed > 0
-        ax_share.plot((ends[keep] - origin) / 3600.0, 100.0 * used[keep] / elapsed[keep], "-",
+        share = 100.0 * used[keep] / elapsed[keep]
+        final_share = float(share[-1]) if len(share) else math.nan
+        ax_share.plot((ends[keep] - origin) / 3600.0, share, "-",
                       color="tab:blue", lw=1.2, label="beam time holding took so far",
                       gid="beam-share")
     budget = _budget(run)
@@ -254,8 +267,12 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     ax_share.set_xlabel("rig time since the night began (h)")
     ax_share.legend(fontsize=7, loc="upper right")
     if math.isfinite(budget):
-        # The start of a night is all retune (100 %): the scale is the budget's, not that.
-        ax_share.set_ylim(0.0, min(100.0, 400.0 * budget))
+        # The start of a night is all retune (100 %): the scale is the budget's, unless the
+        # night ended far above it.
+        top = 400.0 * budget
+        if math.isfinite(final_share):
+            top = max(top, 1.15 * final_share)
+        ax_share.set_ylim(0.0, min(100.0, top))
 
     # Stages, alarms and failures over every panel.
     for stage in night["stages"]:
