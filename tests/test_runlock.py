@@ -42,8 +42,7 @@ def _holding_process(run_dir: Path) -> subprocess.Popen[str]:
 
 @pytest.fixture
 def rig(tmp_path: Path) -> Any:
-    # Every reply a quarter of a second late: the first run lasts while the others are tried.
-    server = spawn_server(tmp_path, "rig", "--delay-s", "0.25", seed=5)
+    server = spawn_server(tmp_path, "rig", seed=5)
     yield server
     server.stop()
 
@@ -95,6 +94,9 @@ def test_a_second_command_on_a_running_folder_is_refused_and_the_first_ends_as_i
     first = start_autotune("calibrate", "--config", str(config), "--out", str(run), "--quiet")
     try:
         wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "estimate", process=first)
+        # Frozen mid-run (it keeps its lock, as a slow run would), so that the others are tried
+        # while it runs, however fast the machine; it goes on afterwards.
+        first.send_signal(signal.SIGSTOP)
         for argv in (["calibrate", "--config", str(config), "--resume", str(run)],
                      ["calibrate", "--config", str(config), "--out", str(run)],
                      ["retune", "--config", str(config), "--out", str(run)],
@@ -107,11 +109,13 @@ def test_a_second_command_on_a_running_folder_is_refused_and_the_first_ends_as_i
         report = autotune("report", str(run), "--no-plot", timeout=120)
         assert report.returncode == 0, report.stderr
         assert "the run is still going" in report.stdout and f"process {first.pid}" in report.stdout
+        first.send_signal(signal.SIGCONT)
         out, err = first.communicate(timeout=600)
     finally:
         if first.poll() is None:
+            first.send_signal(signal.SIGCONT)
             first.kill()
-            first.wait(timeout=10)
+            first.communicate(timeout=10)
     assert first.returncode == 0, err[-3000:]
     records = read_journal(run / JOURNAL_NAME)
     assert records[-1]["type"] == "end" and records[-1]["status"] == "accepted"
