@@ -58,7 +58,9 @@ def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     watched on a one-minute grid of the truth."""
     base = tmp_path_factory.mktemp("night")
     rig = _rig(23)
-    config = night_config()
+    # A two-hour night at the default 5 % has a 6 min ceiling, about its first retune and one
+    # recovery: a tenth leaves room for the checks this test reads.
+    config = night_config(budget_fraction=0.1)
     store = base / "good.json"
     runner.calibrate(rig, config, base / "calibrate", store=store)
     start = rig.sim.clock
@@ -92,7 +94,8 @@ def test_a_night_journals_every_check_correction_and_decision(night):
     plans = [r for r in records if r["type"] == "decision" and r["what"] == "plan"]
     assert plans and all({"interval_s", "shots_per_phase", "test", "check_share"}
                          <= set(p["plan"]) for p in plans)
-    assert all(p["plan"]["check_share"] <= 0.5 * 0.05 + 1e-9 for p in plans)
+    assert all(p["plan"]["check_share"] <= 0.5 * 0.1 + 1e-9 for p in plans)
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
     assert (night["base"] / "night" / RESULT_NAME).exists()
     stop = [r for r in records if r["type"] == "decision" and r["what"] == "stop"]
     assert len(stop) == 1 and "max_rig_time_s" in stop[0]["reason"]
@@ -129,7 +132,7 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     """The +15 kHz step of the cavity (its detuning up, so the peak's set-point down) raises the
     alarm of the lower statistic, the guided retune inside the night recovers, and the
     truth is back at 97 % of the moving best within 10 minutes of rig time; the night as a
-    whole spends at least 95 % of its rig time there, holding within the 5 % budget."""
+    whole spends at least 95 % of its rig time there, holding within its budget (a ceiling)."""
     records, watched = night["records"], night["watched"]
     alarms = [r for r in records if r["type"] == "decision" and r["what"] == "alarm"]
     assert alarms and alarms[0]["statistic"] in ("lower", "out_of_range")
@@ -139,7 +142,8 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     delays = bench._recovery_delays(watched.samples, watched.applied, 0.97)
     assert delays[0] is not None and delays[0] <= 600.0, delays
     assert bench._fraction_at(watched.samples, end, 0.97) >= 0.95
-    assert night["result"]["holding_share"] <= 0.05 + 0.01  # one retune over budget at most
+    # The ceiling, not a target: never above the night's budget fraction.
+    assert night["result"]["holding_share"] <= night["config"].track.budget_fraction + 1e-9
 
 
 def test_the_store_holds_the_latest_accepted_retune_with_its_lock_prior(night):
@@ -260,7 +264,12 @@ def test_consecutive_failed_recoveries_stop_the_night(tmp_path):
     assert len(failures) == 2 and "max_consecutive_failures" in failures[-1]["reason"]
     kinds = [r["what"] for r in records if r["type"] == "decision"
              and r["what"] in ("retune", "calibrate")]
-    assert kinds == ["retune", "calibrate", "retune", "calibrate"]
+    # A stage the budget cannot pay for is not begun: a 'budget' decision stands in its place.
+    skipped = [r["kind"] for r in records if r["type"] == "decision" and r["what"] == "budget"
+               and r["action"] in ("correct", "hold")]
+    assert kinds[:3] == ["retune", "calibrate", "retune"]
+    assert kinds + skipped == ["retune", "calibrate", "retune", "calibrate"]
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
     assert records[-2]["type"] == "safe"
 
 
@@ -359,7 +368,8 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     (60 s of its rig time) instead of sleeping up to 30 s between reads."""
     monkeypatch.setattr(track, "_WALL_POLL_S", 0.05)
     rig = _rig(29)
-    config = night_config(hours=1.0)
+    # An hour at 5 % affords little besides its first retune: a fifth leaves room for checks.
+    config = night_config(hours=1.0, budget_fraction=0.2)
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
     paced = _WallPacedRig(rig, speed=1200.0)  # 1 s of wall time is 20 min of rig time
