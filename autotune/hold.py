@@ -458,11 +458,12 @@ class SignalModel:
     """What one shot tells of the fringes at the held set-points, measured on this rig.
 
     A fringe ``P_g(phi) = a + (C / 2) cos(phi + chi)`` fitted by least squares to ``N``
-    detected atoms spread evenly over the Ramsey phases has ``Var b = Var c = 2 s^2 / N`` with
-    the binomial variance averaged over the fringe, ``s^2 = 1/4 - C^2 / 8`` (at ``a = 1/2``);
-    so ``Var chi = (2 - C^2) / (N C^2)`` and ``Var C = (2 - C^2) / N`` (binomial least squares
-    and the delta method; our derivation from PHYSICS.md section 5, checked against seeded
-    binomial draws in the tests). The photon phase shift is the difference of two fringes, one
+    detected atoms spread evenly over the Ramsey phases, with the binomial variance
+    ``p (1 - p) = 1/4 - (C^2 / 4) cos^2(phi + chi)`` (at ``a = 1/2``) weighted by the fit's
+    projections across and along the fringe's direction, has
+    ``Var chi = (2 - C^2 / 2) / (N C^2)`` and ``Var C = (2 - 3 C^2 / 2) / N`` (binomial least
+    squares and the delta method; our derivation from PHYSICS.md section 5, checked against
+    seeded binomial draws in the tests). The photon phase shift is the difference of two fringes, one
     per field, each measured on half of a check's shots. Noise beyond the counts (phase
     noise of the rig, a fringe that is not quite sinusoidal) shows as a reduced chi-square
     above one; the variances are scaled by it (quasi-likelihood, common practice).
@@ -513,7 +514,7 @@ class SignalModel:
     def _per_atom(contrast: float) -> tuple[float, float]:
         """``(Var chi, Var C)`` of one fringe times its detected atoms."""
         c = min(max(contrast, 1e-3), 1.0)
-        return (2.0 - c * c) / (c * c), 2.0 - c * c
+        return (2.0 - 0.5 * c * c) / (c * c), 2.0 - 1.5 * c * c
 
     @property
     def phase_variance_shots(self) -> float:
