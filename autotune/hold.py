@@ -44,6 +44,17 @@ module, which does no I/O:
   likely per decade), among those whose shots per check reach ``min_shots_per_phase`` and whose
   tracking error between checks stays below a third of the design shift.
 
+- **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`).
+  ``HoldSettings.budget_fraction`` of the night's planned rig time is a ceiling on holding
+  (checks, retunes, calibrations), counted as the night goes; every action is paid for at its
+  largest size before it begins. A recovery the rest cannot pay for at its planned size becomes
+  a smaller stage, a correction of the detuning to the checks' estimate of the peak, or
+  nothing, and the rig time so left unheld is counted (:class:`Unheld`).
+- **The checks sized to the signal** (:class:`SignalModel`): detected atoms per shot, the two
+  contrasts and the fits' dispersion predict the phase variance per shot and the least check
+  the lock can read, so a poor detector gets larger checks that can still tell a step from
+  noise.
+
 Everything is a deterministic function of its inputs, so a resumed night rebuilds the same
 decisions from the journal's snapshots.
 """
@@ -85,6 +96,11 @@ __all__ = [
     "RecoveryChoice",
     "choose_recovery",
     "Unheld",
+    "noise_row",
+    "reference_add",
+    "reference_value",
+    "lock_before_change",
+    "recovery_start",
 ]
 
 #: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
@@ -1423,3 +1439,40 @@ def reference_value(reference: Mapping[str, float]) -> tuple[float, float]:
     """``(inversion, stderr)`` of the inversion watch's reference (precision-weighted mean)."""
     weight = float(reference["weight"])
     return float(reference["weighted"]) / weight, 1.0 / math.sqrt(weight)
+
+
+def lock_before_change(recent: Sequence[Mapping[str, Any]], side: str | None
+                       ) -> DriftLock | None:
+    """The lock before the first check of the alarming run (the drift rate it had learned).
+
+    ``recent`` rows carry ``lock_before`` (:meth:`DriftLock.to_dict`) and the statistics; for an
+    alarm of the inversion or an unreadable phase, the lock before the last check.
+    """
+    if side not in ("upper", "lower"):
+        return DriftLock.from_dict(recent[-1]["lock_before"]) if recent else None
+    first = None
+    for row in reversed(recent):
+        if not row.get(side):
+            break
+        first = row
+    return None if first is None else DriftLock.from_dict(first["lock_before"])
+
+
+def recovery_start(recent: Sequence[Mapping[str, Any]], side: str | None, lock: DriftLock,
+                   held: Mapping[str, float], limits: tuple[float, float], clock_s: float
+                   ) -> tuple[dict[str, float], DriftLock, tuple[float, float] | None]:
+    """Where a recovery starts after an alarm of ``side``.
+
+    Returns the set-points to start from (the held ones, the detuning moved to the peak the
+    checks since the change point measured, :func:`peak_after_change`, within ``limits``), the
+    lock before the change (its rate carries over) and that peak with its standard error (Hz;
+    None when the alarm was not of the phase or no check located it).
+    """
+    pre = lock_before_change(recent, side) or lock
+    start = {k: float(v) for k, v in held.items()}
+    found = None
+    if side in ("upper", "lower"):
+        found = peak_after_change(recent, side, pre.rate_hz_per_s, clock_s)
+        if found is not None:
+            start["detuning"] = min(max(found[0], limits[0]), limits[1])
+    return start, pre, found

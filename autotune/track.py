@@ -15,8 +15,14 @@ A night
    moved on with its ``advance`` op, a real rig is waited for in wall time, interruptibly, its
    clock read with ``status``), check (one fringe pair of both fields at the set-points in force
    and the plan's shots), assess (:func:`autotune.hold.assess_check`), correct the detuning.
-   The plan is made again after every stage and every hour of rig time, from the noise measured
-   so far and the beam time holding has taken.
+   The plan is made again after every stage and every hour of rig time, from the noise and
+   signal measured so far and the beam time holding has taken.
+   The beam budget is a ceiling (:class:`autotune.hold.BeamBudget`): a check or a stage begins
+   only when what is left pays for it at its largest size; a recovery is sized by
+   :func:`autotune.hold.choose_recovery` (a ``budget`` decision when it had to be smaller, or a
+   correction without a stage, or none); when no check can be paid for, the night holds its
+   set-points without checks (an ``unwatched`` decision). The rig time the budget left unheld
+   is counted (:class:`autotune.hold.Unheld`) and in the result.
 3. An alarm of the sequential test begins a recovery: the guided retune, started where the lock
    estimates the peak went; if it is not accepted, a calibration. A recovery accepted with a lock
    prior resets the lock and the test at its verified set-points, becomes the last good
@@ -45,7 +51,8 @@ Besides the stage records, a night writes
 
 Resume
 ------
-The last snapshot (a ``hold`` record, or a ``plan`` or ``failure`` decision) holds the whole
+The last snapshot (a ``hold`` record, or a ``plan``, ``failure`` or ``unwatched`` decision)
+holds the whole
 state; the records after it say how far the next step went: a correction decided or moved, an
 alarm decided, a stage begun or finished, a wait begun, a check measured in part. Each step is
 completed without repeating what was done: a check from its missing acquisitions only (a
@@ -94,8 +101,8 @@ from autotune.hold import (
     choose_recovery,
     known_cubic,
     noise_row,
-    peak_after_change,
     plan_checks,
+    recovery_start,
     reference_add,
     reference_value,
 )
@@ -199,6 +206,31 @@ def hold_settings(config: RunConfig, description: Any) -> HoldSettings:
         inversion_drop=t.inversion_drop, ramsey_phases=config.measurement.ramsey_phases,
         repetition_rate_hz=float(description.repetition_rate_hz),
         lock=lock_settings(config, box))
+
+
+def planned_stage(config: RunConfig, kind: str) -> StageSize:
+    """A stage of the night (``"retune"`` or ``"calibrate"``) at its configured size."""
+    if kind == "retune":
+        return StageSize("retune", config.track.retune_shots_per_phase,
+                         config.track.retune_shots_per_phase, config.lock.max_corrections,
+                         config.retune.max_shots, config.retune.max_points)
+    return StageSize("calibrate", 0, config.measurement.verification_shots_per_phase,
+                     config.lock.max_corrections, config.search.max_shots,
+                     config.search.max_points)
+
+
+def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
+                     repetition_rate_hz: float) -> float:
+    """Beam a stage of ``kind`` is expected to take: the mean of the night's so far (``spent``),
+    or a prior (a retune: its check, verification and three lock steps; a calibration: its
+    least points and verification)."""
+    if spent:
+        return float(np.mean(spent))
+    size = planned_stage(config, kind)
+    per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
+        (_EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \
+        config.lock.lock_shots_per_phase
+    return 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
 
 
 def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
@@ -428,11 +460,188 @@ def _clean(value: Any) -> Any:
     return value
 
 
+def _stage_slice(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
+    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+    begun = None
+    for position, rec in enumerate(tail):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out: list[Mapping[str, Any]] = []
+    for rec in tail[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if out or rec.get("type") == "stage":
+            out.append(rec)
+    return out
+
+
+def _outcome_from(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
+                  ) -> dict[str, Any] | None:
+    """A finished stage's outcome from its own records (its final decision), or None."""
+    final = None
+    for rec in records:
+        if rec.get("type") == "decision" and rec.get("what") in ("accepted",
+                                                                  "below_acceptance",
+                                                                  "still_good"):
+            final = rec
+    if final is None:
+        return None
+    estimates = [r for r in records if r.get("type") == "estimate"]
+    setpoints = {k: float(v) for k, v in final["setpoints"].items()}
+    at = [r for r in estimates if _same(r["setpoints"], setpoints)]
+    last = at[-1] if at else estimates[-1]
+    learned = final.get("learned")
+    return {"status": final["what"],
+            "accepted": final["what"] in ("accepted", "still_good"),
+            "setpoints": setpoints, "estimate": dict(last["estimate"]),
+            "clock_s": last.get("clock_s"),
+            "lock_prior": learned if learned is not None else prior}
+
+
+def _stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: int
+                     ) -> list[Mapping[str, Any]]:
+    """The check, verification and correction estimates of stage ``index`` with their shots."""
+    begun = None
+    for position, rec in enumerate(records):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out, opened = [], {}
+    for rec in records[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if rec.get("type") == "measurement":
+            opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
+        elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
+                                                                     "correct"):
+            per_phase = opened.get((rec["label"], rec["point"]), 0)
+            out.append({**rec, "shots": 2 * phases * per_phase})
+    return out
+
+
 def _parse_wall(text: Any) -> float | None:
     try:
         return datetime.fromisoformat(str(text)).timestamp()
     except (TypeError, ValueError):
         return None
+
+
+class _NightClock:
+    """The night's time: its ends in rig and wall time, and the waits for the rig's clock.
+
+    The rig clock is the reference: a simulated rig's virtual clock is moved on with its
+    ``advance`` op; a real rig is waited for in wall time, interruptibly, its clock read with
+    ``status`` (at most every ``_WALL_POLL_S``).
+    """
+
+    def __init__(self, session: Session, rig: Rig, config: RunConfig, ledger: _Ledger, *,
+                 start_clock: float, start_wall: float, simulated: bool,
+                 wall: Callable[[], float], find: Callable[..., Mapping[str, Any] | None],
+                 tell: Callable[..., None]) -> None:
+        self.session, self.rig, self.config, self.ledger = session, rig, config, ledger
+        self.start_clock, self.start_wall = start_clock, start_wall
+        self.simulated, self.wall, self._find, self._tell = simulated, wall, find, tell
+        self.wall_end = self._wall_end()
+
+    def _wall_end(self) -> float | None:
+        t = self.config.track
+        ends = []
+        if t.max_wall_time_s > 0:
+            ends.append(self.start_wall + t.max_wall_time_s)
+        minutes = t.end_at_minutes
+        if minutes is not None:
+            ends.append(self.local_end(self.start_wall, minutes))
+        return min(ends) if ends else None
+
+    @staticmethod
+    def local_end(start_wall: float, minutes: int) -> float:
+        """The first local time ``minutes`` after midnight that comes after ``start_wall``."""
+        began = datetime.fromtimestamp(start_wall)
+        at = began.replace(hour=minutes // 60, minute=minutes % 60, second=0, microsecond=0)
+        if at <= began:
+            at += timedelta(days=1)
+        return at.timestamp()
+
+    @property
+    def rig_end(self) -> float | None:
+        """Rig clock of the night's end (None: no end in rig time)."""
+        t = self.config.track
+        return self.start_clock + t.max_rig_time_s if t.max_rig_time_s > 0 else None
+
+    def remaining_s(self) -> float | None:
+        """Rig time to the night's end (a real rig's clock runs with the wall clock), or None."""
+        remaining = None
+        if self.rig_end is not None:
+            remaining = self.rig_end - self.session.clock
+        if self.wall_end is not None:
+            ahead = max(self.wall_end - self.wall(), 0.0)
+            remaining = ahead if remaining is None else min(remaining, ahead)
+        return remaining
+
+    def end_reason(self) -> str | None:
+        """Why the night ends now, or None."""
+        t = self.config.track
+        if self.rig_end is not None and self.session.clock >= self.rig_end - 1e-6:
+            return (f"end of the night: {t.max_rig_time_s / 3600:.2f} h of rig time since it "
+                    f"began (track.max_rig_time_s)")
+        if self.wall_end is not None and self.wall() >= self.wall_end:
+            which = "track.max_wall_time_s" if t.max_wall_time_s > 0 else \
+                f"track.end_at_local_time {t.end_at_local_time}"
+            return f"end of the night in wall time ({which})"
+        return None
+
+    def bounded(self, clock: float) -> float:
+        """``clock``, at most the night's end in rig time."""
+        return min(clock, self.rig_end) if self.rig_end is not None else clock
+
+    def read(self) -> float:
+        """The rig's clock (``status``), s."""
+        status = self.session._call("status", lambda _id: self.rig.status())
+        self.session.clock = max(self.session.clock, float(status.clock))
+        return float(status.clock)
+
+    def wait_until(self, until: float, reason: str, **key: int) -> None:
+        """Wait until the rig clock reaches ``until`` (write-ahead ``wait`` record, named by
+        ``key``: the next check's ``point`` or a ``retry``)."""
+        now = self.read()
+        if until <= now + 1e-6:
+            return
+        if self._find("wait", **key) is None:
+            self.ledger.append("wait", **key, from_clock=now, until_clock=until,
+                               reason=reason, how="advance" if self.simulated else "wall")
+        self._tell("wait", next_in_s=until - now)
+        if self.simulated:
+            def advance(_msg_id: str) -> Any:
+                # Recomputed at each attempt from the rig's own clock: a retried advance never
+                # moves the clock twice.
+                status = self.rig.status()
+                remaining = until - float(status.clock)
+                return self.rig.advance(remaining) if remaining > 0 else {"clock": status.clock}
+
+            self.session._check_stop()
+            reply = self.session._call("advance", advance)
+            self.session.clock = max(self.session.clock, float(reply["clock"]))
+            return
+        began, start_clock = time.monotonic(), now
+        while now < until - 1e-6:
+            remaining = until - now
+            if self.wall_end is not None:
+                remaining = min(remaining, max(self.wall_end - self.wall(), 0.0))
+            if self.session.stop.wait(min(max(remaining, 0.0), _WALL_POLL_S)):
+                raise Interrupted("stopped by signal while waiting for the next check")
+            if self.wall_end is not None and self.wall() >= self.wall_end:
+                return
+            now = self.read()
+            if time.monotonic() - began > 2.0 * (until - start_clock) + 60.0:
+                self.session.decide("clock", f"the rig clock advanced {now - start_clock:.0f} s "
+                                    f"in {time.monotonic() - began:.0f} s of wall time: not "
+                                    f"waiting longer for it", until_clock=until, clock=now)
+                return
 
 
 class _Night:
@@ -468,88 +677,10 @@ class _Night:
             self.state = dict(records[snapshot]["state"])
             self._tail_start = snapshot + 1
         self.resumed = bool(prepared.resume)
-        self.wall_end = self._wall_end()
+        self.clock = _NightClock(session, rig, self.config, ledger, start_clock=self.start_clock,
+                                 start_wall=self.start_wall, simulated=self.simulated,
+                                 wall=wall, find=self._find, tell=self._tell)
         self.log = _log.bind(run=prepared.run_dir.name)
-
-    # -- time ------------------------------------------------------------------------------
-
-    def _wall_end(self) -> float | None:
-        t = self.config.track
-        ends = []
-        if t.max_wall_time_s > 0:
-            ends.append(self.start_wall + t.max_wall_time_s)
-        minutes = t.end_at_minutes
-        if minutes is not None:
-            ends.append(self._local_end(self.start_wall, minutes))
-        return min(ends) if ends else None
-
-    @staticmethod
-    def _local_end(start_wall: float, minutes: int) -> float:
-        """The first local time ``minutes`` after midnight that comes after ``start_wall``."""
-        began = datetime.fromtimestamp(start_wall)
-        at = began.replace(hour=minutes // 60, minute=minutes % 60, second=0, microsecond=0)
-        if at <= began:
-            at += timedelta(days=1)
-        return at.timestamp()
-
-    @property
-    def rig_end(self) -> float | None:
-        t = self.config.track
-        return self.start_clock + t.max_rig_time_s if t.max_rig_time_s > 0 else None
-
-    def _end_reason(self) -> str | None:
-        t = self.config.track
-        if self.rig_end is not None and self.session.clock >= self.rig_end - 1e-6:
-            return (f"end of the night: {t.max_rig_time_s / 3600:.2f} h of rig time since it "
-                    f"began (track.max_rig_time_s)")
-        if self.wall_end is not None and self.wall() >= self.wall_end:
-            which = "track.max_wall_time_s" if t.max_wall_time_s > 0 else \
-                f"track.end_at_local_time {t.end_at_local_time}"
-            return f"end of the night in wall time ({which})"
-        return None
-
-    def _rig_clock(self) -> float:
-        status = self.session._call("status", lambda _id: self.rig.status())
-        self.session.clock = max(self.session.clock, float(status.clock))
-        return float(status.clock)
-
-    def _wait_until(self, until: float, reason: str, **key: int) -> None:
-        """Wait until the rig clock reaches ``until`` (write-ahead ``wait`` record, named by
-        ``key``: the next check's ``point`` or a ``retry``)."""
-        now = self._rig_clock()
-        if until <= now + 1e-6:
-            return
-        if self._find("wait", **key) is None:
-            self.ledger.append("wait", **key, from_clock=now, until_clock=until,
-                               reason=reason, how="advance" if self.simulated else "wall")
-        self._tell("wait", next_in_s=until - now)
-        if self.simulated:
-            def advance(_msg_id: str) -> Any:
-                # Recomputed at each attempt from the rig's own clock: a retried advance never
-                # moves the clock twice.
-                status = self.rig.status()
-                remaining = until - float(status.clock)
-                return self.rig.advance(remaining) if remaining > 0 else {"clock": status.clock}
-
-            self.session._check_stop()
-            reply = self.session._call("advance", advance)
-            self.session.clock = max(self.session.clock, float(reply["clock"]))
-            return
-        began, start_clock = time.monotonic(), now
-        while now < until - 1e-6:
-            remaining = until - now
-            if self.wall_end is not None:
-                remaining = min(remaining, max(self.wall_end - self.wall(), 0.0))
-            if self.session.stop.wait(min(max(remaining, 0.0), _WALL_POLL_S)):
-                raise Interrupted("stopped by signal while waiting for the next check")
-            if self.wall_end is not None and self.wall() >= self.wall_end:
-                return
-            now = self._rig_clock()
-            if time.monotonic() - began > 2.0 * (until - start_clock) + 60.0:
-                self.session.decide("clock", f"the rig clock advanced {now - start_clock:.0f} s "
-                                    f"in {time.monotonic() - began:.0f} s of wall time: not "
-                                    f"waiting longer for it", until_clock=until, clock=now)
-                return
 
     # -- records of the tail (resume) ------------------------------------------------------
 
@@ -591,7 +722,7 @@ class _Night:
             # is finished before the end of the night is looked at: its requests are resolved
             # and the rig left at a verified setting.
             if self._in_flight() is None:
-                reason = self._end_reason()
+                reason = self.clock.end_reason()
                 if reason is not None:
                     return self._finish(reason, "ended")
             mode = self.state["mode"]
@@ -602,9 +733,9 @@ class _Night:
                 continue
             if mode == "unwatched":
                 until = float(self.state["resume_clock"])
-                self._wait_until(self._bounded(until), "no check the budget can pay for",
+                self.clock.wait_until(self.clock.bounded(until), "no check the budget can pay for",
                                  unwatched=int(self.state["point"]))
-                if self._end_reason() is not None:
+                if self.clock.end_reason() is not None:
                     continue
                 if self.state.get("to_end"):
                     # The end of the night in wall time has not come with the rig's clock.
@@ -615,9 +746,9 @@ class _Night:
                 continue
             if mode == "retry":
                 due = float(self.state["retry_clock"])
-                self._wait_until(self._bounded(due), "retry the recovery after a failure",
+                self.clock.wait_until(self.clock.bounded(due), "retry the recovery after a failure",
                                  retry=int(self.state["failures"]))
-                if self._end_reason() is not None:
+                if self.clock.end_reason() is not None:
                     continue
                 self.state = {**self.state, "mode": "recover"}
                 continue
@@ -640,9 +771,6 @@ class _Night:
                    and r.get("point") == point for r in self.tail):
                 return "check"
         return None
-
-    def _bounded(self, clock: float) -> float:
-        return min(clock, self.rig_end) if self.rig_end is not None else clock
 
     # -- the beginning ---------------------------------------------------------------------------
 
@@ -684,45 +812,6 @@ class _Night:
                 "held": None, "recent": []}
 
     # -- stages ----------------------------------------------------------------------------------
-
-    def _stage_slice(self, index: int) -> list[Mapping[str, Any]]:
-        """The records of stage ``index`` in the tail (from its ``stage`` record on)."""
-        begun = None
-        for position, rec in enumerate(self.tail):
-            if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                    and rec.get("index") == index:
-                begun = position
-        if begun is None:
-            return []
-        out: list[Mapping[str, Any]] = []
-        for rec in self.tail[begun + 1:]:
-            if rec.get("type") == "decision" and rec.get("what") == "stage_done":
-                break
-            if out or rec.get("type") == "stage":
-                out.append(rec)
-        return out
-
-    def _outcome_from(self, records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
-                      ) -> dict[str, Any] | None:
-        """A finished stage's outcome from its own records (its final decision), or None."""
-        final = None
-        for rec in records:
-            if rec.get("type") == "decision" and rec.get("what") in ("accepted",
-                                                                      "below_acceptance",
-                                                                      "still_good"):
-                final = rec
-        if final is None:
-            return None
-        estimates = [r for r in records if r.get("type") == "estimate"]
-        setpoints = {k: float(v) for k, v in final["setpoints"].items()}
-        at = [r for r in estimates if _same(r["setpoints"], setpoints)]
-        last = at[-1] if at else estimates[-1]
-        learned = final.get("learned")
-        return {"status": final["what"],
-                "accepted": final["what"] in ("accepted", "still_good"),
-                "setpoints": setpoints, "estimate": dict(last["estimate"]),
-                "clock_s": last.get("clock_s"),
-                "lock_prior": learned if learned is not None else prior}
 
     def _stage(self, kind: str, index: int, start: Mapping[str, float],
                prior: Mapping[str, Any] | None, reason: str, *,
@@ -769,8 +858,8 @@ class _Night:
             shots = {"check_shots_per_phase": size.check_shots_per_phase or None,
                      "verification_shots_per_phase": size.verification_shots_per_phase}
             lock_config = dataclasses.replace(config.lock, max_corrections=size.max_corrections)
-        records = self._stage_slice(index)
-        outcome = self._outcome_from(records, prior)
+        records = _stage_slice(self.tail, index)
+        outcome = _outcome_from(records, prior)
         if outcome is None:
             # Each stage of the night draws its own child seeds.
             base = config
@@ -792,33 +881,12 @@ class _Night:
                        "lock_prior": result.lock_prior if result.lock_prior is not None else prior}
         outcome["kind"] = kind
         outcome["noise"] = [noise_row(rec["estimate"], int(rec.get("shots") or 0))
-                            for rec in self._stage_estimates(index)]
+                            for rec in _stage_estimates(self.ledger.records, index,
+                                                         self.config.measurement.ramsey_phases)]
         session.decide("stage_done", f"{kind} {index}: {outcome['status']} at "
                        + setpoints_text(outcome["setpoints"]),
                        index=index, outcome=_clean(outcome))
         return outcome
-
-    def _stage_estimates(self, index: int) -> list[Mapping[str, Any]]:
-        """The check, verification and correction estimates of stage ``index`` with their shots."""
-        records = self.ledger.records
-        begun = None
-        for position, rec in enumerate(records):
-            if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                    and rec.get("index") == index:
-                begun = position
-        if begun is None:
-            return []
-        out, opened = [], {}
-        for rec in records[begun + 1:]:
-            if rec.get("type") == "decision" and rec.get("what") == "stage_done":
-                break
-            if rec.get("type") == "measurement":
-                opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
-            elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
-                                                                         "correct"):
-                per_phase = opened.get((rec["label"], rec["point"]), 0)
-                out.append({**rec, "shots": 2 * self.config.measurement.ramsey_phases * per_phase})
-        return out
 
     def _recover(self) -> None:
         """Run the recovery chain of the state (retune, then calibration) to its end."""
@@ -831,7 +899,7 @@ class _Night:
         index = int(chain["first_index"])
         for position, kind in enumerate(chain["kinds"]):
             begun = self._find("decision", what=kind, index=index + position) is not None
-            if position > 0 and not begun and self._end_reason() is not None:
+            if position > 0 and not begun and self.clock.end_reason() is not None:
                 return  # the night's end came: no new stage (the main loop stops the night)
             choice = self._choose(kind, index + position, chain)
             if choice is not None and choice.action in ("correct", "hold"):
@@ -887,7 +955,7 @@ class _Night:
             data["size"] = None if data["size"] is None else StageSize.from_dict(data["size"])
             return RecoveryChoice(**data)
         peak = chain.get("peak")
-        choice = choose_recovery(self.settings, kind=kind, planned=self._planned(kind),
+        choice = choose_recovery(self.settings, kind=kind, planned=planned_stage(self.config, kind),
                                  budget=self._budget(), expected_s=self._expected_s(kind),
                                  peak=None if peak is None else (float(peak[0]), float(peak[1])))
         if choice.limited:
@@ -993,40 +1061,14 @@ class _Night:
 
     def _budget(self) -> BeamBudget:
         """The night's beam on holding against its ceiling, now."""
-        now = self.session.clock
-        remaining = None
-        if self.rig_end is not None:
-            remaining = self.rig_end - now
-        if self.wall_end is not None:
-            # A rig's clock runs with the wall clock: the rest of the night in wall time.
-            ahead = max(self.wall_end - self.wall(), 0.0)
-            remaining = ahead if remaining is None else min(remaining, ahead)
-        return BeamBudget.of(self.settings, elapsed_s=now - self.start_clock,
-                             remaining_s=remaining, spent_s=self.ledger.holding_beam_s)
-
-    def _planned(self, kind: str) -> StageSize:
-        """A stage of the night at its configured size."""
-        c = self.config
-        if kind == "retune":
-            return StageSize("retune", c.track.retune_shots_per_phase,
-                             c.track.retune_shots_per_phase, c.lock.max_corrections,
-                             c.retune.max_shots, c.retune.max_points)
-        return StageSize("calibrate", 0, c.measurement.verification_shots_per_phase,
-                         c.lock.max_corrections, c.search.max_shots, c.search.max_points)
+        return BeamBudget.of(self.settings, elapsed_s=self.session.clock - self.start_clock,
+                             remaining_s=self.clock.remaining_s(),
+                             spent_s=self.ledger.holding_beam_s)
 
     def _expected_s(self, kind: str) -> float:
-        """Beam a stage of ``kind`` is expected to take: the mean of the night's, or a prior (a
-        retune: its check, verification and three lock steps; a calibration: its least points
-        and verification)."""
         spent = [beam for index, beam in self.ledger.stage_beam_s.items()
                  if self.ledger.stage_kind.get(index) == kind]
-        if spent:
-            return float(np.mean(spent))
-        c, size = self.config, self._planned(kind)
-        step = c.lock.lock_shots_per_phase
-        per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
-            (_EXPECTED_RETUNE_STEPS if kind == "retune" else c.search.min_points) * step
-        return 2 * c.measurement.ramsey_phases * per_phase / self.settings.repetition_rate_hz
+        return expected_stage_s(self.config, spent, kind, self.settings.repetition_rate_hz)
 
     def _checks_share(self) -> dict[str, float]:
         """The share of beam time the checks may take now (:func:`autotune.hold.checks_share`)."""
@@ -1092,10 +1134,10 @@ class _Night:
         if not _same(self.session.current, held):
             self.session.move_to(held, reason="back to the held set-points")
         if self._in_flight() != "check":
-            self._wait_until(self._bounded(float(nxt["due_clock"])),
+            self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
                              "the next check" + (" (recheck)" if nxt.get("recheck") else ""),
                              point=point)
-            if self._end_reason() is not None:
+            if self.clock.end_reason() is not None:
                 return
             check_s = 2 * self.settings.ramsey_phases * int(nxt["shots_per_phase"]) / \
                 self.settings.repetition_rate_hz
@@ -1171,13 +1213,8 @@ class _Night:
         target = {**held, "detuning": a.target_detuning_hz}
         if a.action == "alarm":
             counts["alarms"] += 1
-            start = dict(held)
-            pre = DriftLock.from_dict(self._before_change(recent, a.alarm) or lock.to_dict())
-            found = None
-            if a.alarm in ("upper", "lower"):
-                found = peak_after_change(recent, a.alarm, pre.rate_hz_per_s, clock_now)
-                if found is not None:
-                    start["detuning"] = min(max(found[0], limit.min), limit.max)
+            start, pre, found = recovery_start(recent, a.alarm, lock, held,
+                                               (limit.min, limit.max), clock_now)
             side = a.alarm
             alarm = {"point": point, "reason": a.reason, "statistic": side,
                      "value": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion,
@@ -1241,19 +1278,6 @@ class _Night:
         except Exception as exc:  # a display must never stop a night
             self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
             self.session.progress = None
-
-    @staticmethod
-    def _before_change(recent: Sequence[Mapping[str, Any]], side: str | None
-                       ) -> Mapping[str, Any] | None:
-        """The lock before the first check of the alarming run (the rate it had learned)."""
-        if side not in ("upper", "lower"):
-            return recent[-1]["lock_before"] if recent else None
-        first = None
-        for row in reversed(recent):
-            if not row.get(side):
-                break
-            first = row
-        return first["lock_before"] if first is not None else None
 
     # -- the end -------------------------------------------------------------------------------------
 

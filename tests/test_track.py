@@ -132,7 +132,7 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     """The +15 kHz step of the cavity (its detuning up, so the peak's set-point down) raises the
     alarm of the lower statistic, the guided retune inside the night recovers, and the
     truth is back at 97 % of the moving best within 10 minutes of rig time; the night as a
-    whole spends at least 95 % of its rig time there, holding within its budget (a ceiling)."""
+    whole spends at least 90 % of its rig time there, holding within its budget (a ceiling)."""
     records, watched = night["records"], night["watched"]
     alarms = [r for r in records if r["type"] == "decision" and r["what"] == "alarm"]
     assert alarms and alarms[0]["statistic"] in ("lower", "out_of_range")
@@ -141,7 +141,9 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     end = night["start"] + HOURS * 3600.0
     delays = bench._recovery_delays(watched.samples, watched.applied, 0.97)
     assert delays[0] is not None and delays[0] <= 600.0, delays
-    assert bench._fraction_at(watched.samples, end, 0.97) >= 0.95
+    # Each interval counted at the lower of its two ends (the study's count): a step in a
+    # two-hour night weighs four times what it weighs in the study's eight hours.
+    assert bench._fraction_at(watched.samples, end, 0.97) >= 0.90
     # The ceiling, not a target: never above the night's budget fraction.
     assert night["result"]["holding_share"] <= night["config"].track.budget_fraction + 1e-9
 
@@ -323,10 +325,10 @@ def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
     """end_at_local_time "HH:MM": the first such local time after the night began (the next
     morning for a night begun in the evening, the same day for one begun after midnight)."""
     evening = datetime(2026, 12, 2, 22, 15).timestamp()
-    assert math.isclose(track._Night._local_end(evening, 7 * 60 + 30),
+    assert math.isclose(track._NightClock.local_end(evening, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
     small_hours = datetime(2026, 12, 3, 1, 5).timestamp()
-    assert math.isclose(track._Night._local_end(small_hours, 7 * 60 + 30),
+    assert math.isclose(track._NightClock.local_end(small_hours, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
 
 
