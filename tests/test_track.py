@@ -366,15 +366,16 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     """A rig that is not simulated: the night's waits are 'wall' waits that end when the rig's
     own clock (read with status) reaches the planned check, and a stop (the SIGINT/SIGTERM
     event) ends a wait at once, resumable (README: Waiting between checks). The rig's clock
-    runs 1200 times faster than the wall here, so the night reads it every 50 ms of wall time
-    (60 s of its rig time) instead of sleeping up to 30 s between reads."""
+    runs 300 times faster than the wall here, so the night reads it every 50 ms of wall time
+    (15 s of its rig time) instead of sleeping up to 30 s between reads (faster, a plan of a
+    second of wall time on a loaded machine would pass the hour)."""
     monkeypatch.setattr(track, "_WALL_POLL_S", 0.05)
     rig = _rig(29)
     # An hour at 5 % affords little besides its first retune: a fifth leaves room for checks.
     config = night_config(hours=1.0, budget_fraction=0.2)
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
-    paced = _WallPacedRig(rig, speed=1200.0)  # 1 s of wall time is 20 min of rig time
+    paced = _WallPacedRig(rig, speed=300.0)  # 1 s of wall time is 5 min of rig time
     stop = threading.Event()
     waits: list[Any] = []
 
@@ -404,3 +405,47 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     result = track.track(paced, config, tmp_path / "night", resume=True, store=store)
     assert result["status"] == "ended" and result["checks"] > len(holds)
     check_invariants(read_journal(tmp_path / "night" / JOURNAL_NAME))
+
+
+def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budget_records(
+        tmp_path):
+    """A two-hour night at the default 5 % (a 6 min ceiling) with a thermal step: its first
+    retune and the recovery spend most of it, so the checks are planned again within what is
+    left, then stop ('unwatched'); holding never passes the ceiling, and a night cut after each
+    of those budget records (whole, or with half of the next line) resumes, finishes and keeps
+    both the ceiling and the journal's invariants."""
+    rig = _rig(23)
+    config = night_config()
+    store = tmp_path / "good.json"
+    runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
+    start = rig.sim.clock
+    watched = bench._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
+    shutil.copy(store, tmp_path / "good-start.json")
+    result = track.track(watched, config, tmp_path / "night", store=store)
+    records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+    check_invariants(records)
+    assert result["status"] == "ended"
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
+    assert result["budget_ceiling_s"] == pytest.approx(0.05 * 2 * 3600.0)
+    marks = [i for i, r in enumerate(records[:-1]) if r["type"] == "decision" and (
+        r["what"] in ("budget", "unwatched")
+        or (r["what"] == "plan" and "budget left cannot pay" in r["reason"]))]
+    assert marks, "the night never reached its ceiling"
+    assert result["budget_limited"] >= 1
+    for number, index in enumerate(marks[:3]):
+        run = tmp_path / f"cut-{number}"
+        shutil.copytree(tmp_path / "night", run)
+        lines = (tmp_path / "night" / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+        data = b"".join(lines[: index + 1])
+        if number % 2:
+            data += lines[index + 1][: len(lines[index + 1]) // 2]
+        (run / JOURNAL_NAME).write_bytes(data)
+        (run / RESULT_NAME).unlink()
+        again = tmp_path / f"good-{number}.json"
+        shutil.copy(tmp_path / "good-start.json", again)
+        resumed = track.track(rig, config, run, resume=True, store=again)
+        after = read_journal(run / JOURNAL_NAME)
+        check_invariants(after)
+        assert after[: index + 1] == records[: index + 1]
+        assert resumed["status"] == "ended"
+        assert resumed["holding_beam_s"] <= resumed["budget_ceiling_s"] + 1e-6
