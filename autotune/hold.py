@@ -91,6 +91,8 @@ __all__ = [
     "SignalModel",
     "OPEN_NIGHT_HORIZON_S",
     "BeamBudget",
+    "least_check_s",
+    "checks_reserve_s",
     "checks_share",
     "StageSize",
     "RecoveryChoice",
