@@ -285,7 +285,11 @@ class StudyPlan:
     night_hours : float
         Rig hours of each night.
     night_families : tuple of str
-        Scenario families of the night study.
+        Scenario families of the night study (default: every family of :data:`FAMILIES`,
+        read when the plan is made, so that a family added there is studied too).
+    night_schedules : bool
+        Hold each night with today's retune schedules too, for comparison (False: ``track``
+        and its quiet night only, a shorter run).
     """
 
     mode: str
@@ -310,7 +314,8 @@ class StudyPlan:
     night_study: bool = True
     night_scenarios: int = 10
     night_hours: float = NIGHT_HOURS
-    night_families: tuple[str, ...] = ("main", "held_out")
+    night_families: tuple[str, ...] = dataclasses.field(default_factory=lambda: tuple(FAMILIES))
+    night_schedules: bool = True
 
 
 def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
@@ -333,7 +338,7 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
         # The overhead study stops at 100 points: the steps beyond cost most of its time.
         plan = StudyPlan("quick", scenarios=3, night_steps=100,
                          overhead_points=(10, 25, 50, 100), overhead_window=3, workers=workers,
-                         night_scenarios=3, night_families=("main",))
+                         night_scenarios=3)
     elif mode == "tiny":
         plan = StudyPlan(
             "tiny", scenarios=1, night_steps=8, overhead_points=(10, 16), overhead_window=2,
@@ -749,11 +754,13 @@ class _NightRig:
     """A simulated rig watched through a night: the truth on a fine grid of rig time, thermal
     steps at their times.
 
-    Before every operation that lets rig time pass (``apply``, ``acquire``, ``advance``,
-    ``safe``), steps that are due are applied and the truth at the set-points in force is
-    sampled (the ``truth`` op does not advance the clock); an ``advance`` is cut into pieces of
-    at most ``grid_s`` and at the steps' times, each sampled. A sample stands for the rig time
-    until the next one, so the fractions are weighted by time.
+    Before and after every operation that lets rig time pass or moves the set-points
+    (``apply``, ``acquire``, ``advance``, ``safe``), steps that are due are applied and the
+    truth at the set-points in force is sampled (the ``truth`` op does not advance the clock);
+    an ``advance`` is cut into pieces of at most ``grid_s`` and at the steps' times, each
+    sampled. Each interval between two samples counts at the lower of its two ends
+    (:func:`_fraction_at`), so a fall within an operation is never hidden by the sample before
+    it.
     """
 
     def __init__(self, rig: Any, steps: Sequence[tuple[float, float]], grid_s: float) -> None:
@@ -780,17 +787,23 @@ class _NightRig:
 
     def apply(self, setpoints: Mapping[str, float], **kwargs: Any) -> Any:
         self._tick()
-        return self.rig.apply(setpoints, **kwargs)
+        reply = self.rig.apply(setpoints, **kwargs)
+        self._tick()
+        return reply
 
     def acquire(self, field: str, ramsey_phase: float, shots: int, **kwargs: Any) -> Any:
         self._tick()
         if self.watching:
             self.acquired_shots += int(shots)
-        return self.rig.acquire(field, ramsey_phase, shots, **kwargs)
+        reply = self.rig.acquire(field, ramsey_phase, shots, **kwargs)
+        self._tick()
+        return reply
 
     def safe(self, **kwargs: Any) -> Any:
         self._tick()
-        return self.rig.safe(**kwargs)
+        reply = self.rig.safe(**kwargs)
+        self._tick()
+        return reply
 
     def advance(self, seconds: float) -> dict[str, Any]:
         end = self.rig.sim.clock + float(seconds)
@@ -801,6 +814,7 @@ class _NightRig:
             if self.pending:
                 piece = min(piece, max(self.pending[0][0] - self.rig.sim.clock, 1e-6))
             reply = self.rig.advance(piece)
+        self._tick()
         return reply
 
 
@@ -818,14 +832,19 @@ def night_steps(scenario: Mapping[str, Any], hours: float, count: int = NIGHT_TH
 
 
 def _fraction_at(samples: Sequence[tuple[float, float]], end: float, bar: float) -> float:
-    """Time-weighted fraction of ``[first sample, end]`` with the ratio at or above ``bar``."""
+    """Time-weighted fraction of ``[first sample, end]`` with the ratio at or above ``bar``.
+
+    Each interval between two samples counts at the lower of its two ends (the last sample
+    alone up to ``end``).
+    """
     if not samples:
         return math.nan
     total = above = 0.0
     for (t, ratio), following in zip(samples, [*samples[1:], (end, math.nan)]):
         span = max(min(following[0], end) - t, 0.0)
+        low = ratio if math.isnan(following[1]) else min(ratio, following[1])
         total += span
-        above += span if ratio >= bar else 0.0
+        above += span if low >= bar else 0.0
     return above / total if total > 0 else math.nan
 
 
@@ -886,7 +905,8 @@ def _hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
             outcome = tracking.track(watched, night, Path(tmp) / "night", store=store)
             record.update({k: outcome.get(k) for k in (
                 "status", "checks", "rechecks", "corrections", "alarms", "retunes",
-                "calibrations", "failures")})
+                "calibrations", "failures", "budget_unheld_s", "budget_limited",
+                "holding_beam_s", "budget_ceiling_s")})
             record["plans"] = _night_plans(Path(tmp) / "night")
             record["alarm_clocks"] = [c - start for c in _alarm_clocks(Path(tmp) / "night")]
         else:
@@ -998,15 +1018,17 @@ def _night_jobs(plan: StudyPlan, base: RunConfig, rig: Mapping[str, Any]) -> lis
             common = {"kind": "hold_night", "config": spec, "scenario": scenario, "rig": rig,
                       "hours": plan.night_hours, "steps": night_steps(scenario, plan.night_hours)}
             jobs.append({**common, "method": "track", "quiet": False})
-            for interval in NIGHT_SCHEDULES_S:
+            for interval in NIGHT_SCHEDULES_S if plan.night_schedules else ():
                 jobs.append({**common, "method": "schedule", "interval_s": interval,
                              "quiet": False})
             jobs.append({**common, "method": "track", "quiet": True})
     return jobs
 
 
-def _summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan) -> dict[str, Any]:
-    """Figures of every method of the night study, per family."""
+def _summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
+                     budget_fraction: float) -> dict[str, Any]:
+    """Figures of every method of the night study, per family: the distribution (quartiles,
+    least and most), the worst night, and the nights over ``budget_fraction``."""
     out: dict[str, Any] = {}
     for family in plan.night_families:
         mine = [r for r in runs if r["family"] == family]
@@ -1018,50 +1040,78 @@ def _summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan) -> dict
             detections = [d for r in done for d in r.get("detection_s") or []]
             hours = sum(r["night_rig_time_s"] for r in done) / 3600.0
             alarms = [r.get("alarms") for r in done if r.get("alarms") is not None]
+            worst = min(done, key=lambda r: r["fraction_097"], default=None)
+            finite = [d for d in delays if d is not None]
             out[family][label] = {
                 "nights": len(done), "skipped": len(rows) - len(done),
                 "fraction_097_q": quantiles([r["fraction_097"] for r in done]),
+                "fraction_097_all": sorted(r["fraction_097"] for r in done),
                 "fraction_098_q": quantiles([r["fraction_098"] for r in done]),
                 "below_095": sum(r["fraction_097"] < 0.95 for r in done),
                 "holding_share_q": quantiles([r["holding_share"] for r in done]),
+                "holding_share_max": max((r["holding_share"] for r in done), default=math.nan),
+                "over_budget": sum(r["holding_share"] > budget_fraction + 1e-9 for r in done),
+                "budget_unheld_s_q": quantiles([r.get("budget_unheld_s") or 0.0 for r in done]),
                 "retunes_q": quantiles([r["retunes"] for r in done]),
                 "calibrations_total": sum(int(r["calibrations"] or 0) for r in done),
                 "alarms_per_8h_q": quantiles([a * 8.0 / plan.night_hours for a in alarms]),
+                "alarms_per_8h_max": max((a * 8.0 / plan.night_hours for a in alarms),
+                                         default=math.nan),
                 "alarms_total": sum(alarms), "rig_hours": hours,
                 "recovery_s_q": quantiles(delays), "steps": len(delays),
+                "recovery_s_max": math.inf if any(d is None for d in delays) else
+                max(finite, default=math.nan),
                 "never_recovered": sum(d is None for d in delays),
                 "detection_s_q": quantiles(detections),
+                "worst": None if worst is None else {
+                    "scenario": worst["scenario"], "fraction_097": worst["fraction_097"],
+                    "fraction_098": worst["fraction_098"],
+                    "holding_share": worst["holding_share"], "retunes": worst["retunes"],
+                    "alarms": worst.get("alarms"), "recovery_s": worst["recovery_s"],
+                    "ratio_min": worst["ratio_min"],
+                    "budget_unheld_s": worst.get("budget_unheld_s")},
             }
     return out
 
 
-def _night_targets(summary: Mapping[str, Any], plan: StudyPlan) -> list[dict[str, Any]]:
-    """The issue-12 targets, per family of the night study."""
+def _night_targets(summary: Mapping[str, Any], plan: StudyPlan,
+                   budget_fraction: float) -> list[dict[str, Any]]:
+    """The issue-22 targets, per family of the night study: every night, not the median."""
     out = []
     schedules = [label for label in night_labels() if label.startswith("schedule")]
     for family in plan.night_families:
         rows = summary[family]
         t, quiet = rows["track"], rows["track (quiet)"]
-        f97, share = t["fraction_097_q"][1], t["holding_share_q"][1]
+        least = min(t["fraction_097_all"], default=math.nan)
         out.append(_target(
-            f"track [{family}]: night held", ">= 95% of the night at >= 0.97 of the moving best "
-            "with <= 5% of beam time on holding it (medians)",
-            f"{_num(f97, 3)} of the night, {_num(share * 100, 1)}% of beam time "
+            f"track [{family}]: every night held",
+            ">= 95% of the night at >= 0.97 of the moving best (lower end of each interval), "
+            "in the worst night",
+            f"worst {_num(least, 3)}, median {_num(t['fraction_097_q'][1], 3)} "
             f"({t['below_095']} of {t['nights']} nights below 95%)",
-            bool(t["nights"]) and f97 >= 0.95 and share <= 0.05))
-        recovery = t["recovery_s_q"][1]
+            bool(t["nights"]) and least >= 0.95))
+        out.append(_target(
+            f"track [{family}]: beam within the budget",
+            f"no night above budget_fraction ({budget_fraction:.0%}) on holding",
+            f"{t['over_budget']} of {t['nights']} nights over, most "
+            f"{_num(t['holding_share_max'] * 100, 2)}%, median "
+            f"{_num(t['holding_share_q'][1] * 100, 2)}%",
+            bool(t["nights"]) and t["over_budget"] == 0))
+        recovery, most = t["recovery_s_q"][1], t["recovery_s_max"]
         out.append(_target(
             f"track [{family}]: recovery from a {THERMAL_STEP_HZ / 1e3:g} kHz step",
-            "within 10 min of rig time, median",
-            f"{_num(recovery / 60, 1)} min median over {t['steps']} steps "
-            f"({t['never_recovered']} never recovered)",
-            bool(t["steps"]) and recovery <= 600.0))
-        false = quiet["alarms_per_8h_q"][1]
+            "within 5 min of rig time in the median, 15 min in the worst night",
+            f"{_num(recovery / 60, 1)} min median, {_num(most / 60, 1)} min worst over "
+            f"{t['steps']} steps ({t['never_recovered']} never recovered)",
+            bool(t["steps"]) and recovery <= 300.0 and most <= 900.0))
+        false = quiet["alarms_per_8h_max"]
         out.append(_target(
             f"track [{family}]: quiet night (no steps, no ramp)",
-            "at most one false retune per 8 h, median",
-            f"{_num(false, 2)} per 8 h median ({quiet['alarms_total']} alarms in "
+            "at most one false retune per 8 h in any night",
+            f"{_num(false, 2)} per 8 h in the worst night ({quiet['alarms_total']} alarms in "
             f"{quiet['rig_hours']:.0f} h)", bool(quiet["nights"]) and false <= 1.0))
+        if not all(rows[label]["nights"] for label in schedules):
+            continue
         better = []
         for key in ("fraction_097_q", "fraction_098_q"):
             mine = t[key][1]
@@ -1407,13 +1457,14 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
     holds = [r for r in results if "method" in r]
     night_study = None
     if plan.night_study:
-        night_summary = _summarise_night(holds, plan)
+        night_summary = _summarise_night(holds, plan, base.track.budget_fraction)
         night_study = {"hours": plan.night_hours, "thermal_steps": NIGHT_THERMAL_STEPS,
                        "thermal_step_hz": THERMAL_STEP_HZ, "schedules_s": list(NIGHT_SCHEDULES_S),
                        "grid_s": NIGHT_GRID_S, "families": list(plan.night_families),
                        "scenarios": plan.night_scenarios,
                        "track": dataclasses.asdict(base.track),
-                       "summary": night_summary, "targets": _night_targets(night_summary, plan),
+                       "summary": night_summary,
+                       "targets": _night_targets(night_summary, plan, base.track.budget_fraction),
                        "runs": sorted(holds, key=lambda r: (r["family"], r["scenario"],
                                                             _night_label(r)))}
     try:
@@ -1685,15 +1736,36 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
              f"before the end); track against today's retune every "
              f"{' and '.join(f'{s / 60:g}' for s in night['schedules_s'])} min; a quiet night "
              f"(no steps, no ramp) for track's false retunes. The truth at the set-points in "
-             f"force, sampled every {night['grid_s']:g} s of rig time and at every operation, "
-             f"over the moving true best; median [quartiles]"]
+             f"force, sampled every {night['grid_s']:g} s of rig time and before and after every "
+             f"operation, each interval counted at the lower of its two ends, over the moving "
+             f"true best; median [quartiles]"]
     header = (f"    {'method':<17} {'nights':>6} {'night at >=0.97':>22} {'night at >=0.98':>22} "
               f"{'<95%':>4} {'beam on holding':>22} {'retunes':>13} {'calib.':>6} "
               f"{'recovery (min)':>20} {'alarm delay (min)':>20} {'false/8h':>8}")
+    budget = float((night.get("track") or {}).get("budget_fraction", 0.05))
     for family in night["families"]:
         lines.append(f"  {family} ({night['scenarios']} scenarios)")
+        t = night["summary"][family].get("track") or {}
+        worst = t.get("worst")
+        if worst is not None:
+            recovery = ", ".join("never" if d is None else f"{d / 60:.1f}"
+                                 for d in worst["recovery_s"])
+            lines.append(
+                f"    worst track night: scenario {worst['scenario']}, "
+                f"{worst['fraction_097']:.3f} of the night at >= 0.97 (lowest ratio "
+                f"{worst['ratio_min']:.3f}), {worst['holding_share']:.2%} of the beam on holding, "
+                f"{worst['retunes']} retunes, recovery {recovery or '-'} min, "
+                f"{(worst.get('budget_unheld_s') or 0.0) / 60:.1f} min not held for the budget")
+            lines.append(
+                f"    every track night at >= 0.97: "
+                f"{', '.join(f'{x:.3f}' for x in t['fraction_097_all'])}; beam on holding at "
+                f"most {t['holding_share_max']:.2%}; nights over the {budget:.0%} budget: "
+                f"{t['over_budget']} of {t['nights']}; recovery worst "
+                f"{_num(t['recovery_s_max'] / 60, 1)} min")
         lines.append(header)
         for label, row in night["summary"][family].items():
+            if not row["nights"]:
+                continue
             recovery = row["recovery_s_q"]
             detection = row["detection_s_q"]
             quiet = label == "track (quiet)"
@@ -1990,6 +2062,12 @@ def main(argv: Sequence[str] | None = None) -> int:
                              f"{DEFAULT_TIMEOUT_S:g})")
     parser.add_argument("--scenarios", type=int, help="scenarios per family (default by mode)")
     parser.add_argument("--seed", type=int, help="seed of the main scenario draw")
+    parser.add_argument("--night-families", metavar="NAMES",
+                        help="comma-separated families of the night study (default: every "
+                             "family, " + ",".join(FAMILIES) + ")")
+    parser.add_argument("--no-schedules", action="store_true",
+                        help="night study: track and its quiet night only, without today's "
+                             "retune schedules")
     parser.add_argument("--strategies", metavar="NAMES",
                         help="comma-separated strategies (default " + ",".join(STRATEGIES) + ")")
     parser.add_argument("--config", type=Path, default=DEFAULT_RUN_CONFIG,
@@ -2024,6 +2102,16 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ValueError as exc:
         parser.error(str(exc))
     plan = dataclasses.replace(plan, timeout_s=ns.timeout_s)
+    if ns.night_families is not None or ns.no_schedules:
+        changes: dict[str, Any] = {"night_schedules": not ns.no_schedules}
+        if ns.night_families is not None:
+            changes["night_families"] = tuple(
+                name.strip() for name in ns.night_families.split(",") if name.strip())
+        plan = dataclasses.replace(plan, **changes)
+        try:
+            check_plan(plan)
+        except ValueError as exc:
+            parser.error(str(exc))
     # The bench is a command: it configures logging (warnings only) like autotune/cli.py;
     # dask reads its logging level from the environment when first imported, here and in
     # its worker processes.

@@ -1176,6 +1176,9 @@ def _track_summary(result: dict[str, Any]) -> str:
             f"({result.get('rechecks', 0)} repeated at once), {counts}; "
             f"holding took {'-' if share is None else f'{share:.1%}'} of {night_h:.2f} h of rig "
             f"time (budget {result['budget_fraction']:.0%})")
+    if result.get("budget_unheld_s"):
+        text += (f"; {result['budget_unheld_s'] / 60:.1f} min not held because of the budget "
+                 f"({count_text(int(result.get('budget_limited', 0)), 'budget decision')})")
     if "inversion" in result:
         low, high = result["inversion_interval"]
         text += (f"; last measurement: inversion {result['inversion']:.3f} [{low:.3f}, "

@@ -44,6 +44,17 @@ module, which does no I/O:
   likely per decade), among those whose shots per check reach ``min_shots_per_phase`` and whose
   tracking error between checks stays below a third of the design shift.
 
+- **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`).
+  ``HoldSettings.budget_fraction`` of the night's planned rig time is a ceiling on holding
+  (checks, retunes, calibrations), counted as the night goes; every action is paid for at its
+  largest size before it begins. A recovery the rest cannot pay for at its planned size becomes
+  a smaller stage, a correction of the detuning to the checks' estimate of the peak, or
+  nothing, and the rig time so left unheld is counted (:class:`Unheld`).
+- **The checks sized to the signal** (:class:`SignalModel`): detected atoms per shot, the two
+  contrasts and the fits' dispersion predict the phase variance per shot and the least check
+  the lock can read, so a poor detector gets larger checks that can still tell a step from
+  noise.
+
 Everything is a deterministic function of its inputs, so a resumed night rebuilds the same
 decisions from the journal's snapshots.
 """
@@ -77,6 +88,21 @@ __all__ = [
     "Assessment",
     "assess_check",
     "peak_after_change",
+    "SignalModel",
+    "OPEN_NIGHT_HORIZON_S",
+    "BeamBudget",
+    "least_check_s",
+    "checks_reserve_s",
+    "checks_share",
+    "StageSize",
+    "RecoveryChoice",
+    "choose_recovery",
+    "Unheld",
+    "noise_row",
+    "reference_add",
+    "reference_value",
+    "lock_before_change",
+    "recovery_start",
 ]
 
 #: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
@@ -95,6 +121,12 @@ _CANDIDATES = 60
 _RICCATI_STEPS = 400
 # Shifts the planner averages the expected delay over (log-spaced, design to capture range).
 _SHIFTS = 8
+# Standard deviations of room a check must leave for the lock to read it (one-sided 0.5 %:
+# scipy.stats.norm.isf(0.005)); a check read as unusable twice raises an alarm.
+_USABLE_Z = 2.576
+# Least ratio of the design shift to the innovation's standard deviation of a check that can
+# tell a step from noise (the test's k at least a half).
+_MIN_DESIGN_SNR = 1.0
 
 
 def _finite(value: Any) -> bool:
@@ -439,6 +471,110 @@ class NoiseModel:
         return asdict(self)
 
 
+@dataclass(frozen=True)
+class SignalModel:
+    """What one shot tells of the fringes at the held set-points, measured on this rig.
+
+    A fringe ``P_g(phi) = a + (C / 2) cos(phi + chi)`` fitted by least squares to ``N``
+    detected atoms spread evenly over the Ramsey phases, with the binomial variance
+    ``p (1 - p) = 1/4 - (C^2 / 4) cos^2(phi + chi)`` (at ``a = 1/2``) weighted by the fit's
+    projections across and along the fringe's direction, has
+    ``Var chi = (2 - C^2 / 2) / (N C^2)`` and ``Var C = (2 - 3 C^2 / 2) / N`` (binomial least
+    squares and the delta method; our derivation from PHYSICS.md section 5, checked against
+    seeded binomial draws in the tests). The photon phase shift is the difference of two fringes, one
+    per field, each measured on half of a check's shots. Noise beyond the counts (phase
+    noise of the rig, a fringe that is not quite sinusoidal) shows as a reduced chi-square
+    above one; the variances are scaled by it (quasi-likelihood, common practice).
+
+    The model is pooled over every detected atom of the measurements so far, so it is steady
+    where a fringe's own delta-method error is not (a few atoms per phase on a poor detector).
+
+    Attributes
+    ----------
+    detected_per_shot_empty, detected_per_shot_one_photon : float
+        Detected atoms per shot of each field.
+    contrast_empty, contrast_one_photon : float
+        The fringes' contrasts (medians of the measurements).
+    dispersion : float
+        Pooled reduced chi-square of the fits, at least 1.
+    measurements : int
+        How many measurements it comes from.
+    """
+
+    detected_per_shot_empty: float
+    detected_per_shot_one_photon: float
+    contrast_empty: float
+    contrast_one_photon: float
+    dispersion: float
+    measurements: int
+
+    @classmethod
+    def from_rows(cls, rows: Sequence[Sequence[float]]) -> SignalModel | None:
+        """From noise rows ``(phase_sd, inversion_sd, shots, detected_empty, detected_one_photon,
+        contrast_empty, contrast_one_photon, chi2, dof)``; None without such rows.
+
+        Rows of three numbers (journals written before the model) are skipped.
+        """
+        usable = [r for r in rows if len(r) >= 9 and int(r[2]) > 0
+                  and all(_finite(x) for x in r[:9]) and float(r[5]) > 0.0]
+        if not usable:
+            return None
+        shots_per_field = sum(0.5 * float(r[2]) for r in usable)
+        chi2 = sum(float(r[7]) for r in usable)
+        dof = sum(float(r[8]) for r in usable)
+        return cls(sum(float(r[3]) for r in usable) / shots_per_field,
+                   sum(float(r[4]) for r in usable) / shots_per_field,
+                   float(np.median([float(r[5]) for r in usable])),
+                   float(np.median([max(float(r[6]), 0.0) for r in usable])),
+                   max(chi2 / dof, 1.0) if dof > 0 else 1.0, len(usable))
+
+    @staticmethod
+    def _per_atom(contrast: float) -> tuple[float, float]:
+        """``(Var chi, Var C)`` of one fringe times its detected atoms."""
+        c = min(max(contrast, 1e-3), 1.0)
+        return (2.0 - 0.5 * c * c) / (c * c), 2.0 - 1.5 * c * c
+
+    @property
+    def phase_variance_shots(self) -> float:
+        """Variance of the photon phase shift times a check's shots (rad^2)."""
+        total = 0.0
+        for atoms, contrast in ((self.detected_per_shot_empty, self.contrast_empty),
+                                (self.detected_per_shot_one_photon, self.contrast_one_photon)):
+            # Each field gets half of the shots: Var = v / (n shots / 2).
+            total += 2.0 * self._per_atom(contrast)[0] / max(atoms, 1e-9)
+        return self.dispersion * total
+
+    def contrast_margin_sd(self, shots: int, ratio: float) -> tuple[float, float]:
+        """``C1 - ratio C0`` and its standard deviation for a check of ``shots`` shots."""
+        half = max(0.5 * shots, 1e-9)
+        var = self.dispersion * (
+            self._per_atom(self.contrast_one_photon)[1]
+            / max(self.detected_per_shot_one_photon * half, 1e-9)
+            + ratio**2 * self._per_atom(self.contrast_empty)[1]
+            / max(self.detected_per_shot_empty * half, 1e-9))
+        return self.contrast_one_photon - ratio * self.contrast_empty, math.sqrt(var)
+
+    def usable_shots(self, *, ratio: float, phase_margin_rad: float,
+                     z: float = _USABLE_Z) -> int | None:
+        """Fewest shots of a check whose phase the lock can read with ``z`` standard deviations
+        of room: the one-photon contrast above ``ratio`` of the empty one, and the phase error
+        at the design shift within the capture range (``phase_margin_rad`` of room).
+
+        None when the rig's own contrasts leave no room at any size.
+        """
+        margin, _ = self.contrast_margin_sd(2, ratio)
+        if margin <= 0.0 or phase_margin_rad <= 0.0:
+            return None
+        var_one = self.contrast_margin_sd(2, ratio)[1] ** 2  # one shot per field
+        contrast_shots = 2.0 * z * z * var_one / margin**2
+        phase_shots = z * z * self.phase_variance_shots / phase_margin_rad**2
+        return int(math.ceil(max(contrast_shots, phase_shots)))
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return asdict(self)
+
+
 # --------------------------------------------------------------------------------------------
 # The plan of the checks
 # --------------------------------------------------------------------------------------------
@@ -550,16 +686,48 @@ def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
     return 0.5 * interval_s + (spaced - 1.0) * interval_s + run_length * check_s
 
 
+def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase_var: float,
+               slope: float, design: float, shifts: np.ndarray, step_hz: float,
+               noise: NoiseModel, lock: DriftLock, reference_inversion: float,
+               reference_stderr: float) -> dict[str, Any]:
+    """The numbers of checks of ``per_phase`` shots every ``interval`` s."""
+    phases = settings.ramsey_phases
+    shots = 2 * phases * per_phase
+    check_s = shots / settings.repetition_rate_hz
+    detuning_var = phase_var / shots / slope**2
+    p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
+    innovation_sd = math.sqrt(p_prior + detuning_var)
+    k = 0.5 * design / innovation_sd
+    checks_between_false_alarms = max(settings.false_alarm_interval_s / interval, 1.0)
+    h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
+    inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
+    k_inv = 0.5 * settings.inversion_drop * reference_inversion / inv_sd
+    h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
+    rate_sd = lock.rate_stderr_hz_per_s
+    tracking = math.sqrt(p_post + settings.walk_hz_per_sqrt_s**2 * interval / 2.0
+                         + (rate_sd * interval) ** 2 / 3.0
+                         + (lock.rate_hz_per_s * interval) ** 2 / 12.0)
+    arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
+    return {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
+            "detuning_stderr_hz": math.sqrt(detuning_var),
+            "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
+            "expected_delay_s": float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h, interval,
+                                                      check_s) for x in shifts])),
+            "step_delay_s": _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s),
+            "false_alarm_interval_h": arl * interval / 3600.0, "tracking_error_hz": tracking,
+            "innovation_sd_hz": innovation_sd, "design_snr": design / innovation_sd}
+
+
 def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, lock: DriftLock,
                 reference_inversion: float, reference_stderr: float, check_share: float,
-                step_hz: float = 15e3) -> CheckPlan:
+                step_hz: float = 15e3, signal: SignalModel | None = None) -> CheckPlan:
     """Choose the interval and shots of the checks and design the sequential test.
 
     Parameters
     ----------
     settings : HoldSettings
     noise : NoiseModel
-        Measured phase and inversion variance per shot.
+        Measured phase and inversion variance per shot (the fringes' own errors).
     prior : LockPrior
         The stored phase curve (its slope sets the detuning noise and the design shift).
     lock : DriftLock
@@ -567,21 +735,30 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     reference_inversion, reference_stderr : float
         The inversion the watch compares with, and its standard error.
     check_share : float
-        Share of beam time the checks may take.
+        Share of beam time the checks may take (at most what the budget has left,
+        :func:`checks_share`).
     step_hz : float
-        A second shift to report the expected delay for (a thermal step, Hz).
+        A second shift whose time to confirm is planned and stated (a thermal step, Hz).
+    signal : SignalModel, optional
+        This rig's information per shot (detected atoms, contrasts, dispersion): the phase
+        variance per shot is the larger of its prediction and ``noise``'s, and a check is at
+        least large enough for the lock to read it (:meth:`SignalModel.usable_shots`).
 
     Notes
     -----
     For each candidate interval ``T`` (log-spaced from 30 s to ``max_interval_s``) the checks
-    get ``check_share * T`` of beam time; shots per phase below ``min_shots_per_phase`` rule the
-    interval out, above ``max_shots_per_phase`` they are capped. The test's ``k`` is half the
-    design shift in units of the innovation's standard deviation (Page's choice for a known
-    shift), ``h`` gives each of the three one-sided charts an in-control run length of three
-    times ``false_alarm_interval_s / T`` checks (their rates add), and ``w = h / 2``. Among the
-    intervals whose predicted tracking error stays below a third of the design shift, the one
-    with the least expected delay, averaged over 8 shifts log-spaced from the design shift to
-    the capture range, wins (ties to the longer interval).
+    get ``check_share * T`` of beam time; shots per phase below the least size (the larger of
+    ``min_shots_per_phase`` and what the signal needs to be read) rule the interval out, above
+    ``max_shots_per_phase`` they are capped, and so does a check that cannot tell a step from
+    noise: the design shift below one standard deviation of the innovation (``k < 1/2``). The
+    test's ``k`` is half the design shift in units of the innovation's standard deviation
+    (Page's choice for a known shift), ``h`` gives each of the three one-sided charts an
+    in-control run length of three times ``false_alarm_interval_s / T`` checks (their rates
+    add), and ``w = h / 2``. Among the intervals whose predicted tracking error stays below a
+    third of the design shift, the one with the least expected delay, averaged over 8 shifts
+    log-spaced from the design shift to the capture range, wins (ties to the longer interval).
+    When none qualifies, the checks are made large enough to tell a step from noise and
+    spaced further apart until they fit the share (fewer but larger checks).
     """
     if not (0.0 < check_share <= 1.0):
         raise ValueError(f"check_share: expected a number in (0, 1], got {check_share!r}")
@@ -591,49 +768,45 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     shifts = np.geomspace(design, max(capture, design), _SHIFTS)
     rate = settings.repetition_rate_hz
     phases = settings.ramsey_phases
+    phase_var = noise.phase_variance_shots
+    least = settings.min_shots_per_phase
+    readable = None
+    if signal is not None:
+        phase_var = max(phase_var, signal.phase_variance_shots)
+        readable = signal.usable_shots(
+            ratio=settings.lock.min_contrast_ratio,
+            phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope)
+        if readable is not None:
+            least = max(least, int(math.ceil(readable / (2 * phases))))
+    least = min(least, settings.max_shots_per_phase)
+    common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
+              "step_hz": step_hz, "noise": noise, "lock": lock,
+              "reference_inversion": reference_inversion, "reference_stderr": reference_stderr}
     best: tuple[float, float, dict[str, Any]] | None = None
     fallback: tuple[float, dict[str, Any]] | None = None
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
         per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
-        if per_phase < settings.min_shots_per_phase:
+        if per_phase < least:
             continue
         per_phase = min(per_phase, settings.max_shots_per_phase)
-        shots = 2 * phases * per_phase
-        check_s = shots / rate
-        detuning_var = noise.phase_variance_shots / shots / slope**2
-        p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
-        innovation_sd = math.sqrt(p_prior + detuning_var)
-        shift = design / innovation_sd
-        k = 0.5 * shift
-        checks_between_false_alarms = max(settings.false_alarm_interval_s / interval, 1.0)
-        h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
-        inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
-        inv_shift = settings.inversion_drop * reference_inversion / inv_sd
-        k_inv = 0.5 * inv_shift
-        h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
-        delay = float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h, interval, check_s)
-                               for x in shifts]))
-        step_delay = _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s)
-        rate_sd = lock.rate_stderr_hz_per_s
-        tracking = math.sqrt(p_post + settings.walk_hz_per_sqrt_s**2 * interval / 2.0
-                             + (rate_sd * interval) ** 2 / 3.0
-                             + (lock.rate_hz_per_s * interval) ** 2 / 12.0)
-        arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
-        row = {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
-               "detuning_stderr_hz": math.sqrt(detuning_var),
-               "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
-               "expected_delay_s": delay, "step_delay_s": step_delay,
-               "false_alarm_interval_h": arl * interval / 3600.0, "tracking_error_hz": tracking,
-               "innovation_sd_hz": innovation_sd}
+        row = _check_row(settings, interval=interval, per_phase=per_phase, **common)
+        if row["design_snr"] < _MIN_DESIGN_SNR:
+            continue
+        tracking = row["tracking_error_hz"]
         if fallback is None or tracking < fallback[0]:
             fallback = (tracking, row)
         if tracking > design / 3.0:
             continue
-        if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6 and interval > best[1]):
+        delay = row["expected_delay_s"]
+        if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6
+                                                      and interval > best[1]):
             best = (delay, interval, row)
-    inputs = {"phase_variance_shots": noise.phase_variance_shots,
+    inputs = {"phase_variance_shots": phase_var,
+              "measured_phase_variance_shots": noise.phase_variance_shots,
+              "signal": None if signal is None else signal.to_dict(),
+              "readable_shots_per_phase": least,
               "inversion_variance_shots": noise.inversion_variance_shots,
               "noise_measurements": noise.measurements, "slope_rad_per_hz": prior.slope_rad_per_hz,
               "rate_hz_per_s": lock.rate_hz_per_s, "rate_stderr_hz_per_s": lock.rate_stderr_hz_per_s,
@@ -651,42 +824,29 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
         why = (f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
                f"design shift within the budget: the smallest tracking error")
     else:
-        # Not even the longest interval affords min_shots_per_phase: take them anyway and let
-        # the interval stretch until the checks fit the share.
-        per_phase = settings.min_shots_per_phase
-        shots = 2 * phases * per_phase
-        check_s = shots / rate
-        interval = check_s / check_share
-        detuning_var = noise.phase_variance_shots / shots / slope**2
-        p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
-        innovation_sd = math.sqrt(p_prior + detuning_var)
-        k = 0.5 * design / innovation_sd
-        checks = max(settings.false_alarm_interval_s / interval, 1.0)
-        h = cusum_threshold(k, 3.0 * checks)
-        inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
-        k_inv = 0.5 * settings.inversion_drop * reference_inversion / inv_sd
-        h_inv = cusum_threshold(k_inv, 3.0 * checks)
-        arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
-        row = {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
-               "detuning_stderr_hz": math.sqrt(detuning_var),
-               "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
-               "expected_delay_s": float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h,
-                                                         interval, check_s) for x in shifts])),
-               "step_delay_s": _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s),
-               "false_alarm_interval_h": arl * interval / 3600.0,
-               "tracking_error_hz": math.sqrt(p_post), "innovation_sd_hz": innovation_sd}
-        why = (f"even {settings.max_interval_s:g} s between checks does not afford "
-               f"{settings.min_shots_per_phase} shots per phase within the share: the interval "
-               f"is stretched to fit")
+        # Fewer but larger checks: the least size that reads the phase and tells the design
+        # shift from the noise of one check (twice the bare need: the filter's own
+        # uncertainty adds to the innovation), spaced to fit the share.
+        tell = phase_var / (slope * design / _MIN_DESIGN_SNR) ** 2 * 2.0
+        per_phase = min(max(least, int(math.ceil(tell / (2 * phases)))),
+                        settings.max_shots_per_phase)
+        check_s = 2 * phases * per_phase / rate
+        row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase, **common)
+        why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
+               f"of {least} shots per phase that the lock reads and that tells the design shift "
+               f"from noise: fewer but larger checks")
     test = row["test"]
     inputs["innovation_sd_hz"] = row.pop("innovation_sd_hz")
+    inputs["design_snr"] = row.pop("design_snr")
     reason = (f"a check of {row['shots_per_phase']} shots per phase ({row['check_s']:.0f} s of beam, "
-              f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak) every "
+              f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak, the design shift "
+              f"{inputs['design_snr']:.1f} sd of the innovation) every "
               f"{row['interval_s'] / 60:.1f} min of rig time ({row['check_s'] / row['interval_s']:.1%} "
               f"of the beam): {why}; test k {test.reference:.2f}, h {test.threshold:.2f} "
-              f"(false alarms every {row['false_alarm_interval_h']:.0f} h, Siegmund), expected delay "
-              f"{row['expected_delay_s'] / 60:.1f} min (mean over those shifts), "
-              f"{row['step_delay_s'] / 60:.1f} min for {step_hz / 1e3:.0f} kHz")
+              f"(false alarms every {row['false_alarm_interval_h']:.0f} h, Siegmund); a "
+              f"{step_hz / 1e3:.0f} kHz step is confirmed {row['step_delay_s'] / 60:.1f} min after "
+              f"it (planned), a shift at the design {row['expected_delay_s'] / 60:.1f} min (mean "
+              f"over those shifts)")
     return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
                      check_s=row["check_s"], check_share=row["check_s"] / row["interval_s"],
                      detuning_stderr_hz=row["detuning_stderr_hz"], design_shift_hz=design,
@@ -909,3 +1069,412 @@ def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_pe
                        for r in run])
     mean = float((weights * values).sum() / weights.sum())
     return mean, float(math.sqrt(1.0 / weights.sum()))
+
+
+# --------------------------------------------------------------------------------------------
+# The beam budget
+# --------------------------------------------------------------------------------------------
+
+#: Rig time a night without a known end counts ahead of its clock for its ceiling (s).
+OPEN_NIGHT_HORIZON_S = 3600.0
+# The checks' share of the budget: what is left after the recoveries expected in the rest of
+# the night, at most a half, never less than a quarter (unless less is left). Recoveries are
+# expected at the night's own rate so far, starting from one per four hours (a gamma-Poisson
+# estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the night's retunes.
+_RECOVERY_PRIOR_S = 4 * 3600.0
+_CHECK_SHARE = 0.5
+_LEAST_CHECK_SHARE = 0.25
+
+
+@dataclass(frozen=True)
+class BeamBudget:
+    """The night's beam time on holding against its ceiling, counted as it goes.
+
+    The ceiling is ``budget_fraction`` of the night's rig time: of its whole planned length
+    when its end is known (``remaining_s``), else of the rig time so far plus
+    :data:`OPEN_NIGHT_HORIZON_S`. Nothing that holding starts may take the beam spent past it:
+    every check and every stage is paid for, at its largest possible size, from ``left_s``
+    before it begins.
+
+    Attributes
+    ----------
+    fraction : float
+        ``HoldSettings.budget_fraction``.
+    elapsed_s : float
+        Rig time of the night so far (s).
+    remaining_s : float or None
+        Rig time to the night's end (s); None when it has none.
+    spent_s : float
+        Beam time holding has taken so far (s): checks, retunes, calibrations (not a
+        calibration the night began with).
+    """
+
+    fraction: float
+    elapsed_s: float
+    remaining_s: float | None
+    spent_s: float
+
+    @classmethod
+    def of(cls, settings: HoldSettings, *, elapsed_s: float, remaining_s: float | None,
+           spent_s: float) -> BeamBudget:
+        """The budget of ``settings`` (its ``budget_fraction`` is the one source)."""
+        return cls(float(settings.budget_fraction), max(float(elapsed_s), 0.0),
+                   None if remaining_s is None else max(float(remaining_s), 0.0),
+                   max(float(spent_s), 0.0))
+
+    @property
+    def ahead_s(self) -> float:
+        """Rig time ahead that the ceiling counts (s)."""
+        return OPEN_NIGHT_HORIZON_S if self.remaining_s is None else self.remaining_s
+
+    @property
+    def ceiling_s(self) -> float:
+        """Most beam time holding may have taken by the night's end (s)."""
+        return self.fraction * (self.elapsed_s + self.ahead_s)
+
+    @property
+    def left_s(self) -> float:
+        """Beam time holding may still take (s)."""
+        return max(self.ceiling_s - self.spent_s, 0.0)
+
+    def affords(self, beam_s: float) -> bool:
+        """Whether ``beam_s`` more stays within the ceiling."""
+        return self.spent_s + float(beam_s) <= self.ceiling_s + 1e-9
+
+    def after(self, beam_s: float, rig_s: float = 0.0) -> BeamBudget:
+        """The budget once ``beam_s`` more is spent and ``rig_s`` of rig time passed."""
+        remaining = None if self.remaining_s is None else max(self.remaining_s - rig_s, 0.0)
+        return replace(self, elapsed_s=self.elapsed_s + rig_s, remaining_s=remaining,
+                       spent_s=self.spent_s + beam_s)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping with the derived numbers."""
+        return {**asdict(self), "ceiling_s": self.ceiling_s, "left_s": self.left_s}
+
+
+def least_check_s(settings: HoldSettings) -> float:
+    """Beam time of the smallest check (``min_shots_per_phase``), s."""
+    return 2 * settings.ramsey_phases * settings.min_shots_per_phase / settings.repetition_rate_hz
+
+
+def checks_reserve_s(settings: HoldSettings, budget: BeamBudget) -> float:
+    """Beam time kept for the checks of the rest of the night when a recovery is sized: the
+    smallest checks every ``max_interval_s`` (s)."""
+    return least_check_s(settings) * math.ceil(budget.ahead_s / settings.max_interval_s)
+
+
+def checks_share(settings: HoldSettings, budget: BeamBudget, *, recovery_beam_s: float,
+                 recoveries: int) -> dict[str, float]:
+    """The share of beam time the checks may take now, with its numbers.
+
+    What is left of the budget after the recoveries expected in the rest of the night (at the
+    night's own rate so far, from one per four hours: ``(recoveries + 1) / (elapsed + 4 h)``,
+    each costing ``recovery_beam_s``), spread over the rest of the night; at most half the
+    budget, at least a quarter of it, and never more than what is left (the ceiling). A share
+    of 0 means no check can be paid for.
+    """
+    ahead = max(budget.ahead_s, 60.0)
+    rate = (recoveries + 1.0) / (budget.elapsed_s + _RECOVERY_PRIOR_S)
+    reserve = rate * ahead * max(recovery_beam_s, 0.0)
+    allowance = (budget.left_s - reserve) / ahead
+    share = min(max(allowance, _LEAST_CHECK_SHARE * budget.fraction),
+                _CHECK_SHARE * budget.fraction)
+    share = min(share, budget.left_s / ahead)
+    return {"share": share, "allowance": allowance, "remaining_s": ahead,
+            "reserve_s": reserve, "recoveries_per_h": rate * 3600.0,
+            "recovery_beam_s": recovery_beam_s, "holding_beam_s": budget.spent_s,
+            "left_s": budget.left_s, "ceiling_s": budget.ceiling_s}
+
+
+@dataclass(frozen=True)
+class StageSize:
+    """How large a stage of the night may grow, in shots.
+
+    Attributes
+    ----------
+    kind : {"retune", "calibrate"}
+    check_shots_per_phase : int
+        A retune's check (0 for a calibration).
+    verification_shots_per_phase : int
+        Its verification and each correction.
+    max_corrections : int
+        Re-verifications after the verification.
+    max_shots : int
+        The steps before the verification, the check included (the stage's shot budget).
+    max_points : int
+        Most search points.
+    """
+
+    kind: str
+    check_shots_per_phase: int
+    verification_shots_per_phase: int
+    max_corrections: int
+    max_shots: int
+    max_points: int
+
+    def shots(self, phases: int) -> int:
+        """The most shots the stage can take (a check larger than the budget counted whole)."""
+        check = 2 * phases * self.check_shots_per_phase
+        verify = 2 * phases * self.verification_shots_per_phase
+        return max(self.max_shots, check) + (1 + self.max_corrections) * verify
+
+    def beam_s(self, phases: int, repetition_rate_hz: float) -> float:
+        """The most beam time the stage can take (s)."""
+        return self.shots(phases) / float(repetition_rate_hz)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> StageSize:
+        """Rebuild from :meth:`to_dict`."""
+        return cls(**{f.name: data[f.name] for f in fields(cls)})
+
+
+def _fit(size: StageSize, shots_left: int, phases: int, least_per_phase: int) -> StageSize | None:
+    """``size`` cut so that its most shots are at most ``shots_left``: fewer corrections, then a
+    smaller shot budget (at least the check and one more step of its size), then smaller check
+    and verification shots (not below ``least_per_phase``); None when nothing fits."""
+    for per_phase in sorted({size.verification_shots_per_phase,
+                             *[max(least_per_phase, size.verification_shots_per_phase // d)
+                               for d in (2, 4, 8, 16)]}, reverse=True):
+        check = min(size.check_shots_per_phase, per_phase) if size.check_shots_per_phase else 0
+        step = 2 * phases * max(check, per_phase)
+        for corrections in range(size.max_corrections, -1, -1):
+            verify = (1 + corrections) * 2 * phases * per_phase
+            budget = min(size.max_shots, shots_left - verify)
+            if budget >= 2 * step or (budget >= step and size.kind == "retune"):
+                return replace(size, check_shots_per_phase=check,
+                               verification_shots_per_phase=per_phase,
+                               max_corrections=corrections, max_shots=int(budget))
+    return None
+
+
+@dataclass(frozen=True)
+class RecoveryChoice:
+    """What a recovery does within the budget, and why.
+
+    Attributes
+    ----------
+    action : {"stage", "smaller", "correct", "hold"}
+        The stage at its planned size (its shot budget capped at what is left); a smaller one
+        (fewer shots for its check, verification and search); a correction of the detuning to
+        the checks' own estimate of the peak without a stage; or holding on with no stage.
+    kind : {"retune", "calibrate"}
+    size : StageSize or None
+        The stage's size (None without a stage).
+    beam_s : float
+        The most beam time it can take (s).
+    available_s : float
+        Beam time the budget had for it (s): what is left less the checks' reserve.
+    expected_s : float
+        What a stage of this kind is expected to take at its planned size (s).
+    target_hz : float or None
+        The corrected detuning set-point (``"correct"``).
+    limited : bool
+        Whether the budget made the night take less than the planned stage.
+    reason : str
+        One sentence with the numbers.
+    """
+
+    action: str
+    kind: str
+    size: StageSize | None
+    beam_s: float
+    available_s: float
+    expected_s: float
+    target_hz: float | None
+    limited: bool
+    reason: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        out = {f.name: getattr(self, f.name) for f in fields(self)}
+        out["size"] = None if self.size is None else self.size.to_dict()
+        return out
+
+
+def choose_recovery(settings: HoldSettings, *, kind: str, planned: StageSize,
+                    budget: BeamBudget, expected_s: float,
+                    peak: tuple[float, float] | None = None) -> RecoveryChoice:
+    """The recovery that keeps the most of the condition within what is left of the budget.
+
+    The beam for it is what is left less the reserve for the checks of the rest of the night
+    (:func:`checks_reserve_s`). In order: the stage at its planned size when its expected cost
+    fits (its shot budget capped so that even its largest size fits); else a smaller stage
+    (:func:`_fit`: fewer corrections, a smaller shot budget, then fewer shots per check and
+    verification, down to ``min_shots_per_phase``); else, when the checks located the peak
+    (``peak``: its detuning set-point and standard error, Hz), a correction to it without a
+    stage; else holding on as it is.
+
+    Parameters
+    ----------
+    kind : {"retune", "calibrate"}
+    planned : StageSize
+        The stage at its configured size.
+    expected_s : float
+        Beam time a stage of this kind is expected to take (s): the mean of the night's so far,
+        or a prior.
+    """
+    phases, rate = settings.ramsey_phases, settings.repetition_rate_hz
+    reserve = checks_reserve_s(settings, budget)
+    available = max(budget.left_s - reserve, 0.0)
+    numbers = (f"{budget.left_s / 60:.1f} min of the {budget.ceiling_s / 60:.1f} min budget left "
+               f"({budget.fraction:.0%} of the night), {reserve / 60:.1f} min kept for the checks "
+               f"of the rest of it, so {available / 60:.1f} min for this {kind}; expected "
+               f"{expected_s / 60:.1f} min at its planned size, at most "
+               f"{planned.beam_s(phases, rate) / 60:.1f} min")
+    shots_left = int(math.floor(available * rate))
+    if expected_s <= available:
+        size = _fit(planned, shots_left, phases, planned.verification_shots_per_phase)
+        if size is not None:
+            capped = size != planned
+            return RecoveryChoice(
+                "stage", kind, size, size.beam_s(phases, rate), available, expected_s, None,
+                False, f"{numbers}: the {kind} at its planned size"
+                + (f", its shot budget capped at {size.max_shots} so that it cannot overrun"
+                   if capped else ""))
+    size = _fit(planned, shots_left, phases, settings.min_shots_per_phase)
+    if size is not None:
+        return RecoveryChoice(
+            "smaller", kind, size, size.beam_s(phases, rate), available, expected_s, None, True,
+            f"{numbers}: a smaller {kind} that fits ({size.check_shots_per_phase} check and "
+            f"{size.verification_shots_per_phase} verification shots per phase, "
+            f"{size.max_corrections} corrections, {size.max_shots} shots before the "
+            f"verification; at most {size.beam_s(phases, rate) / 60:.1f} min)")
+    if peak is not None:
+        return RecoveryChoice(
+            "correct", kind, None, 0.0, available, expected_s, float(peak[0]), True,
+            f"{numbers}: not even the smallest {kind} fits; the detuning is corrected to the "
+            f"peak the checks measured, {peak[0] / 1e3:+.2f} +- {peak[1] / 1e3:.2f} kHz, "
+            f"without a {kind}")
+    return RecoveryChoice(
+        "hold", kind, None, 0.0, available, expected_s, None, True,
+        f"{numbers}: not even the smallest {kind} fits and the checks did not locate the peak; "
+        f"holding on at the set-points in force")
+
+
+@dataclass(frozen=True)
+class Unheld:
+    """Rig time the night could not hold because of the budget, counted as it goes.
+
+    It begins when the budget makes the night take less than it planned (a smaller stage, a
+    correction without a stage, holding on without one, checks it cannot pay for) and ends at
+    the next accepted stage or the next check that finds the condition held (no alarm, every
+    statistic below its warning level), or at the night's end.
+
+    Attributes
+    ----------
+    since_s : float or None
+        Rig clock when the present stretch began (None: none open).
+    total_s : float
+        Closed stretches so far (s).
+    stretches : int
+        How many began.
+    """
+
+    since_s: float | None = None
+    total_s: float = 0.0
+    stretches: int = 0
+
+    def begin(self, clock_s: float) -> Unheld:
+        """A stretch begins (no change when one is open)."""
+        if self.since_s is not None:
+            return self
+        return replace(self, since_s=float(clock_s), stretches=self.stretches + 1)
+
+    def end(self, clock_s: float) -> Unheld:
+        """The open stretch ends (no change when none is)."""
+        if self.since_s is None:
+            return self
+        return replace(self, since_s=None,
+                       total_s=self.total_s + max(float(clock_s) - self.since_s, 0.0))
+
+    def at(self, clock_s: float) -> float:
+        """Total rig time not held at ``clock_s`` (the open stretch counted to it), s."""
+        return self.end(clock_s).total_s
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any] | None) -> Unheld:
+        """Rebuild from :meth:`to_dict` (an empty one from None)."""
+        if not data:
+            return cls()
+        return cls(None if data.get("since_s") is None else float(data["since_s"]),
+                   float(data.get("total_s", 0.0)), int(data.get("stretches", 0)))
+
+
+# --------------------------------------------------------------------------------------------
+# What the night remembers of its measurements
+# --------------------------------------------------------------------------------------------
+
+
+def noise_row(estimate: Mapping[str, Any], shots: int) -> list[float]:
+    """One measurement's row for :class:`NoiseModel` and :class:`SignalModel`.
+
+    ``(phase_sd, inversion_sd, shots, detected_empty, detected_one_photon, contrast_empty,
+    contrast_one_photon, chi2, dof)`` from an estimate's mapping
+    (:meth:`autotune.fringe.InversionEstimate.to_dict`) and the measurement's shots.
+    """
+    return [float(estimate["phase_shift_stderr"]), float(estimate["inversion_stderr"]),
+            int(shots), int(estimate.get("detected_empty", 0)),
+            int(estimate.get("detected_one_photon", 0)),
+            float(estimate.get("contrast_empty", 0.0)),
+            float(estimate.get("contrast_one_photon", 0.0)),
+            float(estimate.get("chi2_empty", 0.0)) + float(estimate.get("chi2_one_photon", 0.0)),
+            int(estimate.get("dof_empty", 0)) + int(estimate.get("dof_one_photon", 0))]
+
+
+def reference_add(reference: Mapping[str, float], inversion: float, stderr: float
+                  ) -> dict[str, float]:
+    """The inversion watch's reference with one more measurement (weight ``1 / stderr^2``)."""
+    weight = 1.0 / max(stderr, 1e-6) ** 2
+    return {"weight": float(reference["weight"]) + weight,
+            "weighted": float(reference["weighted"]) + weight * inversion}
+
+
+def reference_value(reference: Mapping[str, float]) -> tuple[float, float]:
+    """``(inversion, stderr)`` of the inversion watch's reference (precision-weighted mean)."""
+    weight = float(reference["weight"])
+    return float(reference["weighted"]) / weight, 1.0 / math.sqrt(weight)
+
+
+def lock_before_change(recent: Sequence[Mapping[str, Any]], side: str | None
+                       ) -> DriftLock | None:
+    """The lock before the first check of the alarming run (the drift rate it had learned).
+
+    ``recent`` rows carry ``lock_before`` (:meth:`DriftLock.to_dict`) and the statistics; for an
+    alarm of the inversion or an unreadable phase, the lock before the last check.
+    """
+    if side not in ("upper", "lower"):
+        return DriftLock.from_dict(recent[-1]["lock_before"]) if recent else None
+    first = None
+    for row in reversed(recent):
+        if not row.get(side):
+            break
+        first = row
+    return None if first is None else DriftLock.from_dict(first["lock_before"])
+
+
+def recovery_start(recent: Sequence[Mapping[str, Any]], side: str | None, lock: DriftLock,
+                   held: Mapping[str, float], limits: tuple[float, float], clock_s: float
+                   ) -> tuple[dict[str, float], DriftLock, tuple[float, float] | None]:
+    """Where a recovery starts after an alarm of ``side``.
+
+    Returns the set-points to start from (the held ones, the detuning moved to the peak the
+    checks since the change point measured, :func:`peak_after_change`, within ``limits``), the
+    lock before the change (its rate carries over) and that peak with its standard error (Hz;
+    None when the alarm was not of the phase or no check located it).
+    """
+    pre = lock_before_change(recent, side) or lock
+    start = {k: float(v) for k, v in held.items()}
+    found = None
+    if side in ("upper", "lower"):
+        found = peak_after_change(recent, side, pre.rate_hz_per_s, clock_s)
+        if found is not None:
+            start["detuning"] = min(max(found[0], limits[0]), limits[1])
+    return start, pre, found

@@ -15,8 +15,14 @@ A night
    moved on with its ``advance`` op, a real rig is waited for in wall time, interruptibly, its
    clock read with ``status``), check (one fringe pair of both fields at the set-points in force
    and the plan's shots), assess (:func:`autotune.hold.assess_check`), correct the detuning.
-   The plan is made again after every stage and every hour of rig time, from the noise measured
-   so far and the beam time holding has taken.
+   The plan is made again after every stage and every hour of rig time, from the noise and
+   signal measured so far and the beam time holding has taken.
+   The beam budget is a ceiling (:class:`autotune.hold.BeamBudget`): a check or a stage begins
+   only when what is left pays for it at its largest size; a recovery is sized by
+   :func:`autotune.hold.choose_recovery` (a ``budget`` decision when it had to be smaller, or a
+   correction without a stage, or none); when no check can be paid for, the night holds its
+   set-points without checks (an ``unwatched`` decision). The rig time the budget left unheld
+   is counted (:class:`autotune.hold.Unheld`) and in the result.
 3. An alarm of the sequential test begins a recovery: the guided retune, started where the lock
    estimates the peak went; if it is not accepted, a calibration. A recovery accepted with a lock
    prior resets the lock and the test at its verified set-points, becomes the last good
@@ -45,7 +51,8 @@ Besides the stage records, a night writes
 
 Resume
 ------
-The last snapshot (a ``hold`` record, or a ``plan`` or ``failure`` decision) holds the whole
+The last snapshot (a ``hold`` record, or a ``plan``, ``failure`` or ``unwatched`` decision)
+holds the whole
 state; the records after it say how far the next step went: a correction decided or moved, an
 alarm decided, a stage begun or finished, a wait begun, a check measured in part. Each step is
 completed without repeating what was done: a check from its missing acquisitions only (a
@@ -79,14 +86,25 @@ from autotune.fringe import InversionEstimate
 from autotune.guided import LockPrior
 from autotune.guided import detuning_offset
 from autotune.hold import (
+    OPEN_NIGHT_HORIZON_S,
+    BeamBudget,
     CheckPlan,
     DriftLock,
     HoldSettings,
     NoiseModel,
+    RecoveryChoice,
+    SignalModel,
+    StageSize,
+    Unheld,
     assess_check,
+    checks_share,
+    choose_recovery,
     known_cubic,
-    peak_after_change,
+    noise_row,
     plan_checks,
+    recovery_start,
+    reference_add,
+    reference_value,
 )
 from autotune.journal import (
     JOURNAL_NAME,
@@ -139,19 +157,13 @@ _NOISE_MEMORY = 24
 _RECENT = 16
 # The plan is made again after this much rig time (s).
 _REPLAN_S = 3600.0
-# The checks' share of the budget: what is left of the night's budget (its end in rig time, or
-# this horizon when it has none) after the recoveries expected in the rest of it, at most a half,
-# never less than a quarter. Recoveries are expected at the night's own rate so far, starting
-# from one per four hours (a gamma-Poisson estimate, (alarms + 1) / (elapsed + 4 h)), each
-# costing the mean beam time of the night's retunes.
-_BUDGET_HORIZON_S = 4 * 3600.0
-_RECOVERY_PRIOR_S = 4 * 3600.0
-_CHECK_SHARE = 0.5
-_LEAST_CHECK_SHARE = 0.25
+# Lock steps a retune is expected to take besides its check and verification (the prior of
+# its cost before the night has measured its own retunes).
+_EXPECTED_RETUNE_STEPS = 3
 # Longest single wall-clock wait on a real rig between reads of its clock (s).
 _WALL_POLL_S = 30.0
 # Snapshots: the records that carry the night's whole state.
-_SNAPSHOT_DECISIONS = ("plan", "failure")
+_SNAPSHOT_DECISIONS = ("plan", "failure", "unwatched")
 
 
 @dataclass
@@ -196,6 +208,31 @@ def hold_settings(config: RunConfig, description: Any) -> HoldSettings:
         inversion_drop=t.inversion_drop, ramsey_phases=config.measurement.ramsey_phases,
         repetition_rate_hz=float(description.repetition_rate_hz),
         lock=lock_settings(config, box))
+
+
+def planned_stage(config: RunConfig, kind: str) -> StageSize:
+    """A stage of the night (``"retune"`` or ``"calibrate"``) at its configured size."""
+    if kind == "retune":
+        return StageSize("retune", config.track.retune_shots_per_phase,
+                         config.track.retune_shots_per_phase, config.lock.max_corrections,
+                         config.retune.max_shots, config.retune.max_points)
+    return StageSize("calibrate", 0, config.measurement.verification_shots_per_phase,
+                     config.lock.max_corrections, config.search.max_shots,
+                     config.search.max_points)
+
+
+def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
+                     repetition_rate_hz: float) -> float:
+    """Beam a stage of ``kind`` is expected to take: the mean of the night's so far (``spent``),
+    or a prior (a retune: its check, verification and three lock steps; a calibration: its
+    least points and verification)."""
+    if spent:
+        return float(np.mean(spent))
+    size = planned_stage(config, kind)
+    per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
+        (_EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \
+        config.lock.lock_shots_per_phase
+    return 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
 
 
 def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
@@ -437,18 +474,68 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def _reference_add(reference: Mapping[str, float], inversion: float, stderr: float
-                   ) -> dict[str, float]:
-    """The inversion watch's reference with one more measurement (weight 1 / stderr^2)."""
-    weight = 1.0 / max(stderr, 1e-6) ** 2
-    return {"weight": float(reference["weight"]) + weight,
-            "weighted": float(reference["weighted"]) + weight * inversion}
+def _stage_slice(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
+    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+    begun = None
+    for position, rec in enumerate(tail):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out: list[Mapping[str, Any]] = []
+    for rec in tail[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if out or rec.get("type") == "stage":
+            out.append(rec)
+    return out
 
 
-def _reference(reference: Mapping[str, float]) -> tuple[float, float]:
-    """(inversion, stderr) of the inversion watch's reference."""
-    weight = float(reference["weight"])
-    return float(reference["weighted"]) / weight, 1.0 / math.sqrt(weight)
+def _outcome_from(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
+                  ) -> dict[str, Any] | None:
+    """A finished stage's outcome from its own records (its final decision), or None."""
+    final = None
+    for rec in records:
+        if rec.get("type") == "decision" and rec.get("what") in ("accepted",
+                                                                  "below_acceptance",
+                                                                  "still_good"):
+            final = rec
+    if final is None:
+        return None
+    estimates = [r for r in records if r.get("type") == "estimate"]
+    setpoints = {k: float(v) for k, v in final["setpoints"].items()}
+    at = [r for r in estimates if _same(r["setpoints"], setpoints)]
+    last = at[-1] if at else estimates[-1]
+    learned = final.get("learned")
+    return {"status": final["what"],
+            "accepted": final["what"] in ("accepted", "still_good"),
+            "setpoints": setpoints, "estimate": dict(last["estimate"]),
+            "clock_s": last.get("clock_s"),
+            "lock_prior": learned if learned is not None else prior}
+
+
+def _stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: int
+                     ) -> list[Mapping[str, Any]]:
+    """The check, verification and correction estimates of stage ``index`` with their shots."""
+    begun = None
+    for position, rec in enumerate(records):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out, opened = [], {}
+    for rec in records[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if rec.get("type") == "measurement":
+            opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
+        elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
+                                                                     "correct"):
+            per_phase = opened.get((rec["label"], rec["point"]), 0)
+            out.append({**rec, "shots": 2 * phases * per_phase})
+    return out
 
 
 def _parse_wall(text: Any) -> float | None:
@@ -456,6 +543,119 @@ def _parse_wall(text: Any) -> float | None:
         return datetime.fromisoformat(str(text)).timestamp()
     except (TypeError, ValueError):
         return None
+
+
+class _NightClock:
+    """The night's time: its ends in rig and wall time, and the waits for the rig's clock.
+
+    The rig clock is the reference: a simulated rig's virtual clock is moved on with its
+    ``advance`` op; a real rig is waited for in wall time, interruptibly, its clock read with
+    ``status`` (at most every ``_WALL_POLL_S``).
+    """
+
+    def __init__(self, session: Session, rig: Rig, config: RunConfig, ledger: _Ledger, *,
+                 start_clock: float, start_wall: float, simulated: bool,
+                 wall: Callable[[], float], find: Callable[..., Mapping[str, Any] | None],
+                 tell: Callable[..., None]) -> None:
+        self.session, self.rig, self.config, self.ledger = session, rig, config, ledger
+        self.start_clock, self.start_wall = start_clock, start_wall
+        self.simulated, self.wall, self._find, self._tell = simulated, wall, find, tell
+        self.wall_end = self._wall_end()
+
+    def _wall_end(self) -> float | None:
+        t = self.config.track
+        ends = []
+        if t.max_wall_time_s > 0:
+            ends.append(self.start_wall + t.max_wall_time_s)
+        minutes = t.end_at_minutes
+        if minutes is not None:
+            ends.append(self.local_end(self.start_wall, minutes))
+        return min(ends) if ends else None
+
+    @staticmethod
+    def local_end(start_wall: float, minutes: int) -> float:
+        """The first local time ``minutes`` after midnight that comes after ``start_wall``."""
+        began = datetime.fromtimestamp(start_wall)
+        at = began.replace(hour=minutes // 60, minute=minutes % 60, second=0, microsecond=0)
+        if at <= began:
+            at += timedelta(days=1)
+        return at.timestamp()
+
+    @property
+    def rig_end(self) -> float | None:
+        """Rig clock of the night's end (None: no end in rig time)."""
+        t = self.config.track
+        return self.start_clock + t.max_rig_time_s if t.max_rig_time_s > 0 else None
+
+    def remaining_s(self) -> float | None:
+        """Rig time to the night's end (a real rig's clock runs with the wall clock), or None."""
+        remaining = None
+        if self.rig_end is not None:
+            remaining = self.rig_end - self.session.clock
+        if self.wall_end is not None:
+            ahead = max(self.wall_end - self.wall(), 0.0)
+            remaining = ahead if remaining is None else min(remaining, ahead)
+        return remaining
+
+    def end_reason(self) -> str | None:
+        """Why the night ends now, or None."""
+        t = self.config.track
+        if self.rig_end is not None and self.session.clock >= self.rig_end - 1e-6:
+            return (f"end of the night: {t.max_rig_time_s / 3600:.2f} h of rig time since it "
+                    f"began (track.max_rig_time_s)")
+        if self.wall_end is not None and self.wall() >= self.wall_end:
+            which = "track.max_wall_time_s" if t.max_wall_time_s > 0 else \
+                f"track.end_at_local_time {t.end_at_local_time}"
+            return f"end of the night in wall time ({which})"
+        return None
+
+    def bounded(self, clock: float) -> float:
+        """``clock``, at most the night's end in rig time."""
+        return min(clock, self.rig_end) if self.rig_end is not None else clock
+
+    def read(self) -> float:
+        """The rig's clock (``status``), s."""
+        status = self.session._call("status", lambda _id: self.rig.status())
+        self.session.clock = max(self.session.clock, float(status.clock))
+        return float(status.clock)
+
+    def wait_until(self, until: float, reason: str, **key: int) -> None:
+        """Wait until the rig clock reaches ``until`` (write-ahead ``wait`` record, named by
+        ``key``: the next check's ``point`` or a ``retry``)."""
+        now = self.read()
+        if until <= now + 1e-6:
+            return
+        if self._find("wait", **key) is None:
+            self.ledger.append("wait", **key, from_clock=now, until_clock=until,
+                               reason=reason, how="advance" if self.simulated else "wall")
+        self._tell("wait", next_in_s=until - now)
+        if self.simulated:
+            def advance(_msg_id: str) -> Any:
+                # Recomputed at each attempt from the rig's own clock: a retried advance never
+                # moves the clock twice.
+                status = self.rig.status()
+                remaining = until - float(status.clock)
+                return self.rig.advance(remaining) if remaining > 0 else {"clock": status.clock}
+
+            self.session._check_stop()
+            reply = self.session._call("advance", advance)
+            self.session.clock = max(self.session.clock, float(reply["clock"]))
+            return
+        began, start_clock = time.monotonic(), now
+        while now < until - 1e-6:
+            remaining = until - now
+            if self.wall_end is not None:
+                remaining = min(remaining, max(self.wall_end - self.wall(), 0.0))
+            if self.session.stop.wait(min(max(remaining, 0.0), _WALL_POLL_S)):
+                raise Interrupted("stopped by signal while waiting for the next check")
+            if self.wall_end is not None and self.wall() >= self.wall_end:
+                return
+            now = self.read()
+            if time.monotonic() - began > 2.0 * (until - start_clock) + 60.0:
+                self.session.decide("clock", f"the rig clock advanced {now - start_clock:.0f} s "
+                                    f"in {time.monotonic() - began:.0f} s of wall time: not "
+                                    f"waiting longer for it", until_clock=until, clock=now)
+                return
 
 
 class _Night:
@@ -491,88 +691,10 @@ class _Night:
             self.state = dict(records[snapshot]["state"])
             self._tail_start = snapshot + 1
         self.resumed = bool(prepared.resume)
-        self.wall_end = self._wall_end()
+        self.clock = _NightClock(session, rig, self.config, ledger, start_clock=self.start_clock,
+                                 start_wall=self.start_wall, simulated=self.simulated,
+                                 wall=wall, find=self._find, tell=self._tell)
         self.log = _log.bind(run=prepared.run_dir.name)
-
-    # -- time ------------------------------------------------------------------------------
-
-    def _wall_end(self) -> float | None:
-        t = self.config.track
-        ends = []
-        if t.max_wall_time_s > 0:
-            ends.append(self.start_wall + t.max_wall_time_s)
-        minutes = t.end_at_minutes
-        if minutes is not None:
-            ends.append(self._local_end(self.start_wall, minutes))
-        return min(ends) if ends else None
-
-    @staticmethod
-    def _local_end(start_wall: float, minutes: int) -> float:
-        """The first local time ``minutes`` after midnight that comes after ``start_wall``."""
-        began = datetime.fromtimestamp(start_wall)
-        at = began.replace(hour=minutes // 60, minute=minutes % 60, second=0, microsecond=0)
-        if at <= began:
-            at += timedelta(days=1)
-        return at.timestamp()
-
-    @property
-    def rig_end(self) -> float | None:
-        t = self.config.track
-        return self.start_clock + t.max_rig_time_s if t.max_rig_time_s > 0 else None
-
-    def _end_reason(self) -> str | None:
-        t = self.config.track
-        if self.rig_end is not None and self.session.clock >= self.rig_end - 1e-6:
-            return (f"end of the night: {t.max_rig_time_s / 3600:.2f} h of rig time since it "
-                    f"began (track.max_rig_time_s)")
-        if self.wall_end is not None and self.wall() >= self.wall_end:
-            which = "track.max_wall_time_s" if t.max_wall_time_s > 0 else \
-                f"track.end_at_local_time {t.end_at_local_time}"
-            return f"end of the night in wall time ({which})"
-        return None
-
-    def _rig_clock(self) -> float:
-        status = self.session._call("status", lambda _id: self.rig.status())
-        self.session.clock = max(self.session.clock, float(status.clock))
-        return float(status.clock)
-
-    def _wait_until(self, until: float, reason: str, **key: int) -> None:
-        """Wait until the rig clock reaches ``until`` (write-ahead ``wait`` record, named by
-        ``key``: the next check's ``point`` or a ``retry``)."""
-        now = self._rig_clock()
-        if until <= now + 1e-6:
-            return
-        if self._find("wait", **key) is None:
-            self.ledger.append("wait", **key, from_clock=now, until_clock=until,
-                               reason=reason, how="advance" if self.simulated else "wall")
-        self._tell("wait", next_in_s=until - now)
-        if self.simulated:
-            def advance(_msg_id: str) -> Any:
-                # Recomputed at each attempt from the rig's own clock: a retried advance never
-                # moves the clock twice.
-                status = self.rig.status()
-                remaining = until - float(status.clock)
-                return self.rig.advance(remaining) if remaining > 0 else {"clock": status.clock}
-
-            self.session._check_stop()
-            reply = self.session._call("advance", advance)
-            self.session.clock = max(self.session.clock, float(reply["clock"]))
-            return
-        began, start_clock = time.monotonic(), now
-        while now < until - 1e-6:
-            remaining = until - now
-            if self.wall_end is not None:
-                remaining = min(remaining, max(self.wall_end - self.wall(), 0.0))
-            if self.session.stop.wait(min(max(remaining, 0.0), _WALL_POLL_S)):
-                raise Interrupted("stopped by signal while waiting for the next check")
-            if self.wall_end is not None and self.wall() >= self.wall_end:
-                return
-            now = self._rig_clock()
-            if time.monotonic() - began > 2.0 * (until - start_clock) + 60.0:
-                self.session.decide("clock", f"the rig clock advanced {now - start_clock:.0f} s "
-                                    f"in {time.monotonic() - began:.0f} s of wall time: not "
-                                    f"waiting longer for it", until_clock=until, clock=now)
-                return
 
     # -- records of the tail (resume) ------------------------------------------------------
 
@@ -614,7 +736,7 @@ class _Night:
             # is finished before the end of the night is looked at: its requests are resolved
             # and the rig left at a verified setting.
             if self._in_flight() is None:
-                reason = self._end_reason()
+                reason = self.clock.end_reason()
                 if reason is not None:
                     return self._finish(reason, "ended")
             mode = self.state["mode"]
@@ -623,11 +745,24 @@ class _Night:
                 if self.state["mode"] == "stopped":
                     return self._finish(self.state["stop_reason"], "gave_up")
                 continue
+            if mode == "unwatched":
+                until = float(self.state["resume_clock"])
+                self.clock.wait_until(self.clock.bounded(until), "no check the budget can pay for",
+                                 unwatched=int(self.state["point"]))
+                if self.clock.end_reason() is not None:
+                    continue
+                if self.state.get("to_end"):
+                    # The end of the night in wall time has not come with the rig's clock.
+                    self._unwatched("the budget still cannot pay for a check")
+                    continue
+                self.state = {**self.state, "mode": "hold", "starved": False, "next": None}
+                self._replan("the budget affords a check again")
+                continue
             if mode == "retry":
                 due = float(self.state["retry_clock"])
-                self._wait_until(self._bounded(due), "retry the recovery after a failure",
+                self.clock.wait_until(self.clock.bounded(due), "retry the recovery after a failure",
                                  retry=int(self.state["failures"]))
-                if self._end_reason() is not None:
+                if self.clock.end_reason() is not None:
                     continue
                 self.state = {**self.state, "mode": "recover"}
                 continue
@@ -650,9 +785,6 @@ class _Night:
                    and r.get("point") == point for r in self.tail):
                 return "check"
         return None
-
-    def _bounded(self, clock: float) -> float:
-        return min(clock, self.rig_end) if self.rig_end is not None else clock
 
     # -- the beginning ---------------------------------------------------------------------------
 
@@ -695,48 +827,13 @@ class _Night:
 
     # -- stages ----------------------------------------------------------------------------------
 
-    def _stage_slice(self, index: int) -> list[Mapping[str, Any]]:
-        """The records of stage ``index`` in the tail (from its ``stage`` record on)."""
-        begun = None
-        for position, rec in enumerate(self.tail):
-            if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                    and rec.get("index") == index:
-                begun = position
-        if begun is None:
-            return []
-        out: list[Mapping[str, Any]] = []
-        for rec in self.tail[begun + 1:]:
-            if rec.get("type") == "decision" and rec.get("what") == "stage_done":
-                break
-            if out or rec.get("type") == "stage":
-                out.append(rec)
-        return out
-
-    def _outcome_from(self, records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
-                      ) -> dict[str, Any] | None:
-        """A finished stage's outcome from its own records (its final decision), or None."""
-        final = None
-        for rec in records:
-            if rec.get("type") == "decision" and rec.get("what") in ("accepted",
-                                                                      "below_acceptance",
-                                                                      "still_good"):
-                final = rec
-        if final is None:
-            return None
-        estimates = [r for r in records if r.get("type") == "estimate"]
-        setpoints = {k: float(v) for k, v in final["setpoints"].items()}
-        at = [r for r in estimates if _same(r["setpoints"], setpoints)]
-        last = at[-1] if at else estimates[-1]
-        learned = final.get("learned")
-        return {"status": final["what"],
-                "accepted": final["what"] in ("accepted", "still_good"),
-                "setpoints": setpoints, "estimate": dict(last["estimate"]),
-                "clock_s": last.get("clock_s"),
-                "lock_prior": learned if learned is not None else prior}
-
     def _stage(self, kind: str, index: int, start: Mapping[str, float],
-               prior: Mapping[str, Any] | None, reason: str) -> dict[str, Any]:
-        """Run (or resume, or read back) stage ``index``; its outcome as a plain dict."""
+               prior: Mapping[str, Any] | None, reason: str, *,
+               size: StageSize | None = None) -> dict[str, Any]:
+        """Run (or resume, or read back) stage ``index``; its outcome as a plain dict.
+
+        ``size`` bounds its shots (the budget's choice); None keeps the configured sizes.
+        """
         done = self._find("decision", what="stage_done", index=index)
         if done is not None:
             self.state["counts"]["retunes" if kind == "retune" else "calibrations"] += 1
@@ -761,17 +858,26 @@ class _Night:
         self.state["counts"]["retunes" if kind == "retune" else "calibrations"] += 1
         if begun is None:
             session.decide(kind, reason, index=index, start=dict(start),
-                           box={k: list(v) for k, v in box.items()}, prior=prior)
+                           box={k: list(v) for k, v in box.items()}, prior=prior,
+                           size=None if size is None else size.to_dict())
         else:
             start = {k: float(v) for k, v in begun["start"].items()}
             box = {k: (float(v[0]), float(v[1])) for k, v in begun["box"].items()}
             prior = begun.get("prior")
-        records = self._stage_slice(index)
-        outcome = self._outcome_from(records, prior)
+            size = None if begun.get("size") is None else StageSize.from_dict(begun["size"])
+        lock_config = config.lock
+        if size is not None:
+            budget = dataclasses.replace(budget, max_shots=size.max_shots,
+                                         max_points=min(budget.max_points, size.max_points))
+            shots = {"check_shots_per_phase": size.check_shots_per_phase or None,
+                     "verification_shots_per_phase": size.verification_shots_per_phase}
+            lock_config = dataclasses.replace(config.lock, max_corrections=size.max_corrections)
+        records = _stage_slice(self.tail, index)
+        outcome = _outcome_from(records, prior)
         if outcome is None:
             # Each stage of the night draws its own child seeds.
             base = config
-            session.config = dataclasses.replace(config, search=dataclasses.replace(
+            session.config = dataclasses.replace(config, lock=lock_config, search=dataclasses.replace(
                 config.search, seed=child_seed(config.search.seed, 9, index)))
             try:
                 result: StageOutcome = run_guided_stage(
@@ -788,36 +894,13 @@ class _Night:
                        "clock_s": last.get("clock_s", session.clock),
                        "lock_prior": result.lock_prior if result.lock_prior is not None else prior}
         outcome["kind"] = kind
-        outcome["noise"] = [[float(rec["estimate"]["phase_shift_stderr"]),
-                             float(rec["estimate"]["inversion_stderr"]),
-                             int(rec.get("shots") or 0)]
-                            for rec in self._stage_estimates(index)]
+        outcome["noise"] = [noise_row(rec["estimate"], int(rec.get("shots") or 0))
+                            for rec in _stage_estimates(self.ledger.records, index,
+                                                         self.config.measurement.ramsey_phases)]
         session.decide("stage_done", f"{kind} {index}: {outcome['status']} at "
                        + setpoints_text(outcome["setpoints"]),
                        index=index, outcome=_clean(outcome))
         return outcome
-
-    def _stage_estimates(self, index: int) -> list[Mapping[str, Any]]:
-        """The check, verification and correction estimates of stage ``index`` with their shots."""
-        records = self.ledger.records
-        begun = None
-        for position, rec in enumerate(records):
-            if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                    and rec.get("index") == index:
-                begun = position
-        if begun is None:
-            return []
-        out, opened = [], {}
-        for rec in records[begun + 1:]:
-            if rec.get("type") == "decision" and rec.get("what") == "stage_done":
-                break
-            if rec.get("type") == "measurement":
-                opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
-            elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
-                                                                         "correct"):
-                per_phase = opened.get((rec["label"], rec["point"]), 0)
-                out.append({**rec, "shots": 2 * self.config.measurement.ramsey_phases * per_phase})
-        return out
 
     def _recover(self) -> None:
         """Run the recovery chain of the state (retune, then calibration) to its end."""
@@ -830,13 +913,21 @@ class _Night:
         index = int(chain["first_index"])
         for position, kind in enumerate(chain["kinds"]):
             begun = self._find("decision", what=kind, index=index + position) is not None
-            if position > 0 and not begun and self._end_reason() is not None:
+            if position > 0 and not begun and self.clock.end_reason() is not None:
                 return  # the night's end came: no new stage (the main loop stops the night)
+            choice = self._choose(kind, index + position, chain)
+            if choice is not None and choice.action in ("correct", "hold"):
+                if self._compromise(choice, chain):
+                    return
+                continue
             start = chain["start"] if kind == "retune" else {}
             outcome = self._stage(kind, index + position, start, chain.get("prior"),
                                   chain["reason"] if position == 0 else
-                                  f"the retune was not accepted ({chain['reason']}): a calibration")
+                                  f"the retune was not accepted ({chain['reason']}): a calibration",
+                                  size=None if choice is None else choice.size)
             self.state["stages"] = max(int(self.state["stages"]), index + position + 1)
+            # The one place where a stage's outcome decides: accepted with a lock prior, the
+            # night holds there; anything else (not accepted) is a failed recovery.
             if outcome["accepted"] and outcome.get("lock_prior") is not None:
                 self._resume_holding(outcome)
                 return
@@ -864,6 +955,82 @@ class _Night:
         self._snapshot("failure", reason=f"recovery {failures} not accepted; trying again at rig "
                        f"clock {retry:.0f} s", failures=failures)
 
+    def _choose(self, kind: str, index: int, chain: Mapping[str, Any]) -> RecoveryChoice | None:
+        """The size of stage ``index`` within the budget (a ``budget`` decision when the budget
+        made it smaller or put something cheaper in its place); None for the calibration a
+        night begins with (not holding) and for a stage already begun (its own record)."""
+        if self._find("decision", what=kind, index=index) is not None:
+            return None
+        if index == 0 and kind == "calibrate":
+            return None
+        journaled = self._find("decision", what="budget", index=index)
+        if journaled is not None:
+            data = dict(journaled["choice"])
+            data["size"] = None if data["size"] is None else StageSize.from_dict(data["size"])
+            return RecoveryChoice(**data)
+        peak = chain.get("peak")
+        choice = choose_recovery(self.settings, kind=kind, planned=planned_stage(self.config, kind),
+                                 budget=self._budget(), expected_s=self._expected_s(kind),
+                                 peak=None if peak is None else (float(peak[0]), float(peak[1])))
+        if choice.limited:
+            self.session.decide("budget", choice.reason, index=index, kind=kind,
+                                action=choice.action, choice=_clean(choice.to_dict()),
+                                budget=_clean(self._budget().to_dict()))
+        return choice
+
+    def _compromise(self, choice: RecoveryChoice, chain: Mapping[str, Any]) -> bool:
+        """Hold on without a stage, the budget having none to pay for: the detuning corrected to
+        the checks' estimate of the peak (``correct``) or kept; the lock and the test start
+        again there. False when the night holds nothing yet (no stage ever accepted)."""
+        held = self.state.get("held")
+        if not held or not self.state.get("prior"):
+            return False
+        clock = self.session.clock
+        target = dict(held)
+        lock = DriftLock.from_dict(self.state["lock"]).predict(clock)
+        if choice.action == "correct" and choice.target_hz is not None:
+            limit = self.session.limits["detuning"]
+            target["detuning"] = min(max(float(choice.target_hz), limit.min), limit.max)
+            peak = chain.get("peak") or [target["detuning"], self.settings.max_correction_hz]
+            lock = DriftLock.start(clock, target["detuning"], max(float(peak[1]), 1.0),
+                                   lock.rate_hz_per_s, lock.rate_stderr_hz_per_s,
+                                   self.config.track.walk_hz_per_sqrt_s)
+        point = int(self.state["point"])
+        pending = None
+        if not _same(target, held):
+            self.state["counts"]["corrections"] += 1
+            pending = {"kind": "correct", "point": point, "from": dict(held), "to": target,
+                       "reason": choice.reason}
+        unheld = Unheld.from_dict(self.state.get("unheld")).begin(clock)
+        self.state = {**self.state, "mode": "hold", "failures": 0, "held": target,
+                      "lock": lock.to_dict(), "pending": pending, "next": None, "recent": [],
+                      "tests": {"upper": 0.0, "lower": 0.0, "inversion": 0.0},
+                      "unheld": unheld.to_dict()}
+        self._replan(f"after the budget's {choice.action} in place of a {choice.kind}")
+        return True
+
+    def _unwatched(self, why: str) -> None:
+        """No check can be paid for: hold the set-points without checks until the budget allows
+        one again (a night without an end) or the night ends."""
+        budget = self._budget()
+        check_s = 2 * self.settings.ramsey_phases * self.settings.min_shots_per_phase / \
+            self.settings.repetition_rate_hz
+        clock = self.session.clock
+        if budget.remaining_s is None:
+            # An open night's ceiling grows with its rig time.
+            until = max(self.start_clock + (budget.spent_s + check_s) / budget.fraction
+                        - OPEN_NIGHT_HORIZON_S, clock + 60.0)
+        else:
+            until = clock + max(budget.remaining_s, 60.0)
+        self.state = {**self.state, "mode": "unwatched", "resume_clock": until,
+                      "to_end": budget.remaining_s is not None,
+                      "unheld": Unheld.from_dict(self.state.get("unheld")).begin(clock).to_dict()}
+        self._snapshot("unwatched", reason=f"{why}: {budget.left_s:.0f} s of beam left of the "
+                       f"{budget.ceiling_s:.0f} s ceiling; the set-points are held without checks "
+                       + ("until the night ends" if budget.remaining_s is not None else
+                          f"until rig clock {until:.0f} s, when the ceiling affords one again"),
+                       budget=budget.to_dict())
+
     def _resume_holding(self, outcome: Mapping[str, Any]) -> None:
         """Hold from an accepted stage: reset the lock and the test there, store it, plan."""
         prior = LockPrior.from_dict(outcome["lock_prior"])
@@ -886,12 +1053,13 @@ class _Night:
                       "prior": prior.to_dict(), "lock": lock.to_dict(),
                       # The inversion watch's reference: precision-weighted mean of the stage's
                       # last measurement and the checks since (self-starting).
-                      "reference": _reference_add({"weight": 0.0, "weighted": 0.0},
+                      "reference": reference_add({"weight": 0.0, "weighted": 0.0},
                                                   estimate.inversion,
                                                   estimate.inversion_stderr),
                       "tests": {"upper": 0.0, "lower": 0.0, "inversion": 0.0},
                       "noise": noise[-_NOISE_MEMORY:], "recent": [], "pending": None,
-                      "next": None}
+                      "next": None, "unheld": Unheld.from_dict(self.state.get("unheld")).end(
+                          self.session.clock).to_dict()}
         self.state["counts"]["stages_accepted"] += 1
         self._store(outcome, estimate)
         self._replan(f"after the {outcome['kind']} ({outcome['status']})")
@@ -905,39 +1073,38 @@ class _Night:
 
     # -- the plan ---------------------------------------------------------------------------------
 
-    def _check_share(self) -> dict[str, float]:
-        """The share of beam time the checks may take now, with its numbers (module notes)."""
-        budget = self.config.track.budget_fraction
-        ledger = self.ledger
-        now = self.session.clock
-        elapsed = max(now - self.start_clock, 0.0)
-        remaining = max(self.rig_end - now if self.rig_end is not None else _BUDGET_HORIZON_S,
-                        60.0)
-        retunes = [beam for index, beam in ledger.stage_beam_s.items()
-                   if ledger.stage_kind.get(index) == "retune"]
-        stages = list(ledger.stage_beam_s.values())
-        cost = float(np.mean(retunes)) if retunes else float(np.mean(stages)) if stages else 0.0
-        recoveries = max(ledger.stages_begun - 1, 0)
-        rate = (recoveries + 1.0) / (elapsed + _RECOVERY_PRIOR_S)
-        reserve = rate * remaining * cost
-        allowance = (budget * (elapsed + remaining) - ledger.holding_beam_s - reserve) / remaining
-        share = min(max(allowance, _LEAST_CHECK_SHARE * budget), _CHECK_SHARE * budget)
-        return {"share": share, "allowance": allowance, "remaining_s": remaining,
-                "reserve_s": reserve, "recoveries_per_h": rate * 3600.0,
-                "recovery_beam_s": cost, "holding_beam_s": ledger.holding_beam_s}
+    def _budget(self) -> BeamBudget:
+        """The night's beam on holding against its ceiling, now."""
+        return BeamBudget.of(self.settings, elapsed_s=self.session.clock - self.start_clock,
+                             remaining_s=self.clock.remaining_s(),
+                             spent_s=self.ledger.holding_beam_s)
+
+    def _expected_s(self, kind: str) -> float:
+        spent = [beam for index, beam in self.ledger.stage_beam_s.items()
+                 if self.ledger.stage_kind.get(index) == kind]
+        return expected_stage_s(self.config, spent, kind, self.settings.repetition_rate_hz)
+
+    def _checks_share(self) -> dict[str, float]:
+        """The share of beam time the checks may take now (:func:`autotune.hold.checks_share`)."""
+        return checks_share(self.settings, self._budget(),
+                            recovery_beam_s=self._expected_s("retune"),
+                            recoveries=max(self.ledger.stages_begun - 1, 0))
 
     def _replan(self, why: str) -> None:
         state = self.state
         prior = LockPrior.from_dict(state["prior"])
         lock = DriftLock.from_dict(state["lock"]).predict(self.session.clock)
-        noise_rows = [tuple(x) for x in state["noise"]]
-        noise = NoiseModel.from_estimates([(p, i, int(n)) for p, i, n in noise_rows])
-        budget = self._check_share()
+        noise = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in state["noise"]])
+        signal = SignalModel.from_rows(state["noise"])
+        budget = self._checks_share()
         share = budget["share"]
+        if share <= 0.0:
+            self._unwatched("the budget has nothing left for a check")
+            return
         plan = plan_checks(self.settings, noise=noise, prior=prior, lock=lock,
-                           reference_inversion=_reference(state["reference"])[0],
-                           reference_stderr=_reference(state["reference"])[1],
-                           check_share=share)
+                           reference_inversion=reference_value(state["reference"])[0],
+                           reference_stderr=reference_value(state["reference"])[1],
+                           check_share=share, signal=signal)
         point = int(state["point"])
         nxt = state.get("next")
         # After a stage the first check comes one interval later (the stage has just measured);
@@ -948,8 +1115,9 @@ class _Night:
                                "shots_per_phase": plan.shots_per_phase},
                       "replan_clock": self.session.clock + _REPLAN_S}
         self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
-                       f"of the beam (budget {self.config.track.budget_fraction:.0%}, "
-                       f"{budget['holding_beam_s'] / 60:.1f} min spent, "
+                       f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
+                       f"{budget['ceiling_s'] / 60:.1f} min, {budget['holding_beam_s'] / 60:.1f} "
+                       f"min spent, "
                        f"{budget['reserve_s'] / 60:.1f} min kept for the recoveries expected in "
                        f"the {budget['remaining_s'] / 3600:.1f} h to come)",
                        budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
@@ -980,10 +1148,21 @@ class _Night:
         if not _same(self.session.current, held):
             self.session.move_to(held, reason="back to the held set-points")
         if self._in_flight() != "check":
-            self._wait_until(self._bounded(float(nxt["due_clock"])),
+            self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
                              "the next check" + (" (recheck)" if nxt.get("recheck") else ""),
                              point=point)
-            if self._end_reason() is not None:
+            if self.clock.end_reason() is not None:
+                return
+            check_s = 2 * self.settings.ramsey_phases * int(nxt["shots_per_phase"]) / \
+                self.settings.repetition_rate_hz
+            if not self._budget().affords(check_s):
+                # The ceiling first: a plan within what is left, else no more checks.
+                if state.get("starved"):
+                    self._unwatched(f"the budget cannot pay for a check of {check_s:.0f} s")
+                else:
+                    self.state = {**state, "starved": True, "next": None}
+                    self._replan(f"the budget left cannot pay for the next check of "
+                                 f"{check_s:.0f} s")
                 return
         estimate, m = self._measure(point, held, int(nxt["shots_per_phase"]))
         self._assess(point, estimate, m)
@@ -1015,21 +1194,20 @@ class _Night:
         shots = 2 * len(self.session.phases) * m.shots_per_phase
         result = PointResult.from_estimate(estimate, clock_s=m.clock_s, shots=shots)
         limit = self.session.limits["detuning"]
-        pooled = NoiseModel.from_estimates([(p, i, int(n)) for p, i, n in state["noise"]])
+        pooled = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in state["noise"]])
         previous = state["recent"][-1] if state["recent"] else None
         a = assess_check(settings, result=result, detuning_hz=held["detuning"], lock=lock,
                          prior=prior, plan=plan, upper=float(tests["upper"]),
                          lower=float(tests["lower"]), inversion=float(tests["inversion"]),
-                         reference_inversion=_reference(state["reference"])[0],
-                         reference_stderr=_reference(state["reference"])[1],
+                         reference_inversion=reference_value(state["reference"])[0],
+                         reference_stderr=reference_value(state["reference"])[1],
                          next_interval_s=plan.interval_s, noise=pooled,
                          previous_unusable=previous is not None and previous["peak_hz"] is None
                          and previous.get("point") == point - 1,
                          limits=(limit.min, limit.max))
         counts = dict(state["counts"])
         counts["checks"] += 1
-        noise = list(state["noise"]) + [[estimate.phase_shift_stderr, estimate.inversion_stderr,
-                                         shots]]
+        noise = list(state["noise"]) + [noise_row(estimate.to_dict(), shots)]
         recent = list(state["recent"]) + [{
             "point": point, "clock_s": m.clock_s, "peak_hz": a.peak_hz if a.usable else None,
             "variance_hz2": a.peak_variance_hz2 if a.usable else None,
@@ -1037,21 +1215,20 @@ class _Night:
         clock_now = self.session.clock
         reference = state["reference"]
         if a.action != "alarm":
-            reference = _reference_add(reference, estimate.inversion,
+            reference = reference_add(reference, estimate.inversion,
                                        math.sqrt(pooled.inversion_variance_shots / shots))
         new = {**state, "lock": a.lock.to_dict(), "counts": counts, "reference": reference,
                "tests": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion},
                "noise": noise[-_NOISE_MEMORY:], "recent": recent[-_RECENT:], "point": point + 1,
-               "pending": None}
+               "pending": None, "starved": False}
+        if a.action in ("hold", "correct"):
+            # The condition held again: a stretch the budget left unheld ends here.
+            new["unheld"] = Unheld.from_dict(state.get("unheld")).end(clock_now).to_dict()
         target = {**held, "detuning": a.target_detuning_hz}
         if a.action == "alarm":
             counts["alarms"] += 1
-            start = dict(held)
-            pre = DriftLock.from_dict(self._before_change(recent, a.alarm) or lock.to_dict())
-            if a.alarm in ("upper", "lower"):
-                found = peak_after_change(recent, a.alarm, pre.rate_hz_per_s, clock_now)
-                if found is not None:
-                    start["detuning"] = min(max(found[0], limit.min), limit.max)
+            start, pre, found = recovery_start(recent, a.alarm, lock, held,
+                                               (limit.min, limit.max), clock_now)
             side = a.alarm
             alarm = {"point": point, "reason": a.reason, "statistic": side,
                      "value": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion,
@@ -1064,7 +1241,8 @@ class _Night:
                 "reason": a.reason + (f"; the retune starts at the peak the checks since the "
                                       f"change point measured, {start['detuning'] / 1e3:+.2f} kHz"
                                       if start != held else ""),
-                "first_index": int(state["stages"]), "alarm": alarm},
+                "first_index": int(state["stages"]), "alarm": alarm,
+                "peak": None if found is None else [found[0], found[1]]},
                 rate={"rate_hz_per_s": pre.rate_hz_per_s,
                       "rate_stderr_hz_per_s": pre.rate_stderr_hz_per_s})
         else:
@@ -1104,7 +1282,7 @@ class _Night:
             alarms=int(counts.get("alarms", 0)), retunes=int(counts.get("retunes", 0)),
             calibrations=int(counts.get("calibrations", 0)),
             holding_share=self.ledger.holding_beam_s / night if night > 0 else None,
-            budget_fraction=self.config.track.budget_fraction,
+            budget_fraction=self.settings.budget_fraction,
             inversion=None if estimate is None else estimate.inversion,
             interval=None if estimate is None else (estimate.inversion_low,
                                                     estimate.inversion_high),
@@ -1114,19 +1292,6 @@ class _Night:
         except Exception as exc:  # a display must never stop a night
             self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
             self.session.progress = None
-
-    @staticmethod
-    def _before_change(recent: Sequence[Mapping[str, Any]], side: str | None
-                       ) -> Mapping[str, Any] | None:
-        """The lock before the first check of the alarming run (the rate it had learned)."""
-        if side not in ("upper", "lower"):
-            return recent[-1]["lock_before"] if recent else None
-        first = None
-        for row in reversed(recent):
-            if not row.get(side):
-                break
-            first = row
-        return first["lock_before"] if first is not None else None
 
     # -- the end -------------------------------------------------------------------------------------
 
@@ -1175,7 +1340,12 @@ class _Night:
             "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s_total,
             "night_rig_time_s": night, "holding_beam_s": self.ledger.holding_beam_s,
             "holding_share": self.ledger.holding_beam_s / night if night > 0 else None,
-            "budget_fraction": self.config.track.budget_fraction,
+            "budget_fraction": self.settings.budget_fraction,
+            "budget_ceiling_s": self._budget().ceiling_s,
+            # Rig time the night could not hold because of the budget (hold.Unheld).
+            "budget_unheld_s": Unheld.from_dict(state.get("unheld")).at(self.session.clock),
+            "budget_limited": sum(1 for r in self.ledger.records if r.get("type") == "decision"
+                                  and r.get("what") in ("budget", "unwatched")),
             "plan": state.get("plan"), "lock": state.get("lock"),
             "run_dir": str(self.prepared.run_dir),
         }

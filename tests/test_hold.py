@@ -350,11 +350,12 @@ def test_a_noisier_rig_gets_more_shots_per_check():
 
 def test_a_budget_too_small_for_the_least_shots_stretches_the_interval():
     """When even the longest interval cannot afford min_shots_per_phase, the plan says so and
-    keeps the share by stretching the interval."""
+    keeps the share with fewer but larger checks (the interval stretched)."""
     settings = _settings(min_shots_per_phase=2000, max_interval_s=600.0)
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.01)
-    assert plan.shots_per_phase == 2000
+    assert plan.shots_per_phase >= 2000
+    assert plan.interval_s > settings.max_interval_s
     assert plan.check_s / plan.interval_s == pytest.approx(0.01)
-    assert "stretched" in plan.reason
+    assert "fewer but larger checks" in plan.reason

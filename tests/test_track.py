@@ -58,7 +58,9 @@ def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     watched on a one-minute grid of the truth."""
     base = tmp_path_factory.mktemp("night")
     rig = _rig(23)
-    config = night_config()
+    # A two-hour night at the default 5 % has a 6 min ceiling, about its first retune and one
+    # recovery: a tenth leaves room for the checks this test reads.
+    config = night_config(budget_fraction=0.1)
     store = base / "good.json"
     runner.calibrate(rig, config, base / "calibrate", store=store)
     start = rig.sim.clock
@@ -92,7 +94,8 @@ def test_a_night_journals_every_check_correction_and_decision(night):
     plans = [r for r in records if r["type"] == "decision" and r["what"] == "plan"]
     assert plans and all({"interval_s", "shots_per_phase", "test", "check_share"}
                          <= set(p["plan"]) for p in plans)
-    assert all(p["plan"]["check_share"] <= 0.5 * 0.05 + 1e-9 for p in plans)
+    assert all(p["plan"]["check_share"] <= 0.5 * 0.1 + 1e-9 for p in plans)
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
     assert (night["base"] / "night" / RESULT_NAME).exists()
     stop = [r for r in records if r["type"] == "decision" and r["what"] == "stop"]
     assert len(stop) == 1 and "max_rig_time_s" in stop[0]["reason"]
@@ -129,7 +132,7 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     """The +15 kHz step of the cavity (its detuning up, so the peak's set-point down) raises the
     alarm of the lower statistic, the guided retune inside the night recovers, and the
     truth is back at 97 % of the moving best within 10 minutes of rig time; the night as a
-    whole spends at least 95 % of its rig time there, holding within the 5 % budget."""
+    whole spends at least 90 % of its rig time there, holding within its budget (a ceiling)."""
     records, watched = night["records"], night["watched"]
     alarms = [r for r in records if r["type"] == "decision" and r["what"] == "alarm"]
     assert alarms and alarms[0]["statistic"] in ("lower", "out_of_range")
@@ -138,8 +141,11 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     end = night["start"] + HOURS * 3600.0
     delays = bench._recovery_delays(watched.samples, watched.applied, 0.97)
     assert delays[0] is not None and delays[0] <= 600.0, delays
-    assert bench._fraction_at(watched.samples, end, 0.97) >= 0.95
-    assert night["result"]["holding_share"] <= 0.05 + 0.01  # one retune over budget at most
+    # Each interval counted at the lower of its two ends (the study's count): a step in a
+    # two-hour night weighs four times what it weighs in the study's eight hours.
+    assert bench._fraction_at(watched.samples, end, 0.97) >= 0.90
+    # The ceiling, not a target: never above the night's budget fraction.
+    assert night["result"]["holding_share"] <= night["config"].track.budget_fraction + 1e-9
 
 
 def test_the_store_holds_the_latest_accepted_retune_with_its_lock_prior(night):
@@ -260,7 +266,12 @@ def test_consecutive_failed_recoveries_stop_the_night(tmp_path):
     assert len(failures) == 2 and "max_consecutive_failures" in failures[-1]["reason"]
     kinds = [r["what"] for r in records if r["type"] == "decision"
              and r["what"] in ("retune", "calibrate")]
-    assert kinds == ["retune", "calibrate", "retune", "calibrate"]
+    # A stage the budget cannot pay for is not begun: a 'budget' decision stands in its place.
+    skipped = [r["kind"] for r in records if r["type"] == "decision" and r["what"] == "budget"
+               and r["action"] in ("correct", "hold")]
+    assert kinds[:3] == ["retune", "calibrate", "retune"]
+    assert kinds + skipped == ["retune", "calibrate", "retune", "calibrate"]
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
     assert records[-2]["type"] == "safe"
 
 
@@ -314,10 +325,10 @@ def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
     """end_at_local_time "HH:MM": the first such local time after the night began (the next
     morning for a night begun in the evening, the same day for one begun after midnight)."""
     evening = datetime(2026, 12, 2, 22, 15).timestamp()
-    assert math.isclose(track._Night._local_end(evening, 7 * 60 + 30),
+    assert math.isclose(track._NightClock.local_end(evening, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
     small_hours = datetime(2026, 12, 3, 1, 5).timestamp()
-    assert math.isclose(track._Night._local_end(small_hours, 7 * 60 + 30),
+    assert math.isclose(track._NightClock.local_end(small_hours, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
 
 
@@ -355,14 +366,16 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     """A rig that is not simulated: the night's waits are 'wall' waits that end when the rig's
     own clock (read with status) reaches the planned check, and a stop (the SIGINT/SIGTERM
     event) ends a wait at once, resumable (README: Waiting between checks). The rig's clock
-    runs 1200 times faster than the wall here, so the night reads it every 50 ms of wall time
-    (60 s of its rig time) instead of sleeping up to 30 s between reads."""
+    runs 300 times faster than the wall here, so the night reads it every 50 ms of wall time
+    (15 s of its rig time) instead of sleeping up to 30 s between reads (faster, a plan of a
+    second of wall time on a loaded machine would pass the hour)."""
     monkeypatch.setattr(track, "_WALL_POLL_S", 0.05)
     rig = _rig(29)
-    config = night_config(hours=1.0)
+    # An hour at 5 % affords little besides its first retune: a fifth leaves room for checks.
+    config = night_config(hours=1.0, budget_fraction=0.2)
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
-    paced = _WallPacedRig(rig, speed=1200.0)  # 1 s of wall time is 20 min of rig time
+    paced = _WallPacedRig(rig, speed=300.0)  # 1 s of wall time is 5 min of rig time
     stop = threading.Event()
     waits: list[Any] = []
 
@@ -392,3 +405,47 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     result = track.track(paced, config, tmp_path / "night", resume=True, store=store)
     assert result["status"] == "ended" and result["checks"] > len(holds)
     check_invariants(read_journal(tmp_path / "night" / JOURNAL_NAME))
+
+
+def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budget_records(
+        tmp_path):
+    """A two-hour night at the default 5 % (a 6 min ceiling) with a thermal step: its first
+    retune and the recovery spend most of it, so the checks are planned again within what is
+    left, then stop ('unwatched'); holding never passes the ceiling, and a night cut after each
+    of those budget records (whole, or with half of the next line) resumes, finishes and keeps
+    both the ceiling and the journal's invariants."""
+    rig = _rig(23)
+    config = night_config()
+    store = tmp_path / "good.json"
+    runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
+    start = rig.sim.clock
+    watched = bench._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
+    shutil.copy(store, tmp_path / "good-start.json")
+    result = track.track(watched, config, tmp_path / "night", store=store)
+    records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+    check_invariants(records)
+    assert result["status"] == "ended"
+    assert result["holding_beam_s"] <= result["budget_ceiling_s"] + 1e-6
+    assert result["budget_ceiling_s"] == pytest.approx(0.05 * 2 * 3600.0)
+    marks = [i for i, r in enumerate(records[:-1]) if r["type"] == "decision" and (
+        r["what"] in ("budget", "unwatched")
+        or (r["what"] == "plan" and "budget left cannot pay" in r["reason"]))]
+    assert marks, "the night never reached its ceiling"
+    assert result["budget_limited"] >= 1
+    for number, index in enumerate(marks[:3]):
+        run = tmp_path / f"cut-{number}"
+        shutil.copytree(tmp_path / "night", run)
+        lines = (tmp_path / "night" / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+        data = b"".join(lines[: index + 1])
+        if number % 2:
+            data += lines[index + 1][: len(lines[index + 1]) // 2]
+        (run / JOURNAL_NAME).write_bytes(data)
+        (run / RESULT_NAME).unlink()
+        again = tmp_path / f"good-{number}.json"
+        shutil.copy(tmp_path / "good-start.json", again)
+        resumed = track.track(rig, config, run, resume=True, store=again)
+        after = read_journal(run / JOURNAL_NAME)
+        check_invariants(after)
+        assert after[: index + 1] == records[: index + 1]
+        assert resumed["status"] == "ended"
+        assert resumed["holding_beam_s"] <= resumed["budget_ceiling_s"] + 1e-6
