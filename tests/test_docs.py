@@ -50,3 +50,21 @@ def test_every_formula_section_names_a_source() -> None:
         number = part.split(".", 1)[0]
         if number in ("2", "3", "4", "5", "5b"):
             assert re.search(r"\(\d{4}\)|\d{4}\)", part), number
+
+
+def test_every_document_named_is_in_the_repository() -> None:
+    """Every Markdown file that code, configs, tests or documents name exists in this
+    repository (notes kept outside it were cited 95 times; a reader could open none)."""
+    named = re.compile(r"(?<![\w/.-])([\w./-]+\.md)\b")
+    missing: dict[str, list[str]] = {}
+    paths = [p for folder in ("autotune", "drivers_sim", "configs", "tests", "examples",
+                              "benchmarks", "docs") for p in (REPO / folder).rglob("*")]
+    paths += [REPO / "README.md", REPO / "DEVELOPERS.md"]
+    for path in paths:
+        if path.suffix not in (".py", ".toml", ".md") or not path.is_file():
+            continue
+        for name in named.findall(path.read_text(encoding="utf-8")):
+            candidates = (REPO / name, path.parent / name, REPO / "docs" / name)
+            if not any(candidate.is_file() for candidate in candidates):
+                missing.setdefault(name, []).append(str(path.relative_to(REPO)))
+    assert not missing, missing
