@@ -111,6 +111,7 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
+from autotune.velocity_model import InversionCurve, fit_inversion_curve
 from autotune.search import (
     PURPOSES,
     BayesianSearch,
@@ -1047,6 +1048,35 @@ class PhaseLockSearch:
     def _absorption_ready(self, fit: _AbsorptionFit | None) -> bool:
         return fit is not None and (fit.from_prior or len(fit.x_groups) >= 3)
 
+    def _velocity_curve(self) -> InversionCurve | None:
+        """The inversion along velocity (a calibration's; None before three velocities)."""
+        return self._cached("velocity_curve", self._compute_velocity_curve)
+
+    def _compute_velocity_curve(self) -> InversionCurve | None:
+        fit = self._absorption_fit()
+        if self.prior is not None or not self._absorption_ready(fit):
+            return None
+        # The search's own points: a verification measures the inversion at one velocity at
+        # its own precision and moment; it judges the choice and does not move the model.
+        points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
+        star = self._phase_star()[0]
+        xs, values, variances = [], [], []
+        for o in points:
+            # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
+            half = 0.5 * (self._unwrapped(o) - star)
+            factor = max(math.cos(half), 0.5)
+            value = o.result.inversion / factor
+            xs.append(fit.x_of(o.velocity))
+            values.append(value)
+            variances.append((o.result.inversion_stderr / factor) ** 2
+                             + (value * 0.5 * math.tan(half) * o.result.phase_shift_stderr) ** 2)
+        return fit_inversion_curve(
+            xs, values, variances, [o.result.absorption for o in points],
+            [o.result.absorption_stderr**2 for o in points],
+            [o.result.contrast_empty for o in points],
+            [o.result.contrast_empty_stderr**2 for o in points],
+            fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
+
     @staticmethod
     def _vertex_velocity_stderr(fit: _AbsorptionFit) -> float:
         """Standard error of the velocity of least absorption (delta method; inf without a vertex)."""
@@ -1114,29 +1144,32 @@ class PhaseLockSearch:
                         "note": "velocities around the lock for the absorption's curvature"}
             return {"concluded": True, "velocity": v0, "next": None,
                     "note": "no third usable velocity within the box: staying at the lock's velocity"}
-        vertex = fit.vertex()
-        x_lo, x_hi = min(fit.x_groups), max(fit.x_groups)
+        curve = self._velocity_curve()
+        vertex = curve.vertex()
+        x_lo, x_hi = min(curve.x_groups), max(curve.x_groups)
         if vertex is not None and x_lo < vertex < x_hi:
-            return {"concluded": True, "velocity": fit.velocity_of(vertex), "next": None,
-                    "note": "least absorption bracketed"}
-        # Not bracketed: extend towards lower absorption.
+            return {"concluded": True, "velocity": curve.velocity_of(vertex), "next": None,
+                    "note": "inversion optimum bracketed"}
+        # Not bracketed: extend towards higher inversion.
         if vertex is not None:
             towards_high_x = vertex >= x_hi
         else:
-            towards_high_x = fit.value(x_hi) < fit.value(x_lo)
+            towards_high_x = curve.value(x_hi) > curve.value(x_lo)
         end_x = x_hi if towards_high_x else x_lo
-        end_v = fit.velocity_of(end_x)
+        end_v = curve.velocity_of(end_x)
         candidate = end_v * (1.0 - f) if towards_high_x else end_v * (1.0 + f)
         v = float(np.clip(candidate, low, high))
+        rising = "lower" if towards_high_x else "higher"
         if abs(v / end_v - 1.0) <= _SAME_VELOCITY:
-            return {"concluded": True, "velocity": end_v, "next": None,
-                    "note": f"least absorption not bracketed: stopped at the box edge {end_v:.1f} m/s"}
+            return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
+                    "note": f"inversion optimum not bracketed: stopped at the box edge {end_v:.1f} m/s "
+                            f"with the inversion rising towards {rising} velocities"}
         if was_tried(v):
-            return {"concluded": True, "velocity": end_v, "next": None,
-                    "note": f"least absorption not bracketed: no usable signal at {v:.1f} m/s, "
+            return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
+                    "note": f"inversion optimum not bracketed: no usable signal at {v:.1f} m/s, "
                             f"stopped at {end_v:.1f} m/s"}
         return {"concluded": False, "velocity": end_v, "next": v,
-                "note": "least absorption not bracketed: extending towards lower absorption"}
+                "note": "inversion optimum not bracketed: extending towards higher inversion"}
 
     def _recommended_velocity(self) -> float:
         return float(self._velocity_plan()["velocity"])
@@ -1235,11 +1268,40 @@ class PhaseLockSearch:
         at_rec = a0 + a1 * x_rec + a2 * x_rec**2
         return np.maximum(at_rec - least, 0.0) / scale
 
+    def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
+        """The ``x`` range the inversion curve is trusted over: the velocities measured and one
+        velocity step beyond, within the box (a quadratic is not extrapolated further)."""
+        box_lo, box_hi = self._box_x(curve)
+        f = self.settings.velocity_step_fraction
+        return (max(box_lo, min(curve.x_groups) - f), min(box_hi, max(curve.x_groups) + f))
+
+    def _curve_draws(self, curve: InversionCurve, velocity: float, normals: np.ndarray, scale: float,
+                     residual_cov: np.ndarray | None = None,
+                     absorption_cov: np.ndarray | None = None) -> tuple[np.ndarray, float]:
+        """Relative inversion lost at ``velocity`` against the best within the trusted range:
+        posterior draws and the value at the posterior mean."""
+        x_lo, x_hi = self._curve_range(curve)
+        x_rec = float(np.clip(curve.x_of(velocity), x_lo, x_hi))
+
+        def loss(b: np.ndarray) -> np.ndarray:
+            b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                vertex = np.where(b2 < 0.0, -b1 / (2.0 * b2), x_lo)
+            inside = np.clip(np.nan_to_num(vertex, nan=x_lo), x_lo, x_hi)
+            best = np.maximum.reduce([b0 + b1 * x + b2 * x**2 for x in (x_lo, x_hi)]
+                                     + [np.where(b2 < 0.0, b0 + b1 * inside + b2 * inside**2, -np.inf)])
+            return np.maximum(best - (b0 + b1 * x_rec + b2 * x_rec**2), 0.0) / scale
+
+        draws = loss(curve.draws(normals, residual_cov, absorption_cov))
+        return draws, float(loss(curve.coef[None, :])[0])
+
     def _shortfall_at(self, point: Mapping[str, float], clock: float | None,
-                      lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None) -> Shortfall:
+                      lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None,
+                      residual_cov: np.ndarray | None = None,
+                      phase_error: tuple[float, float] | None = None) -> Shortfall:
         s = self.settings
         q = s.confidence
-        detuning = self._detuning_terms(point, clock)
+        detuning = self._detuning_terms(point, clock) if phase_error is None else phase_error
         if lock_cov is not None and detuning is not None:
             fit = self._lock_fit(point["velocity"])
             x = fit.features(point["detuning"], clock)
@@ -1260,7 +1322,15 @@ class PhaseLockSearch:
             d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
         fit = self._absorption_fit()
         plan = self._velocity_plan()
-        if self._absorption_ready(fit) and (plan["concluded"] or self.prior is not None):
+        curve = self._velocity_curve()
+        if curve is not None and plan["concluded"]:
+            # A calibration: the inversion along velocity, the physics as its prior.
+            scale = self._inversion_scale()
+            v_draws, v_point = self._curve_draws(curve, point["velocity"], normals[:, 1:], scale,
+                                                 residual_cov, absorption_cov)
+            v_upper = float(np.quantile(v_draws, q))
+        elif self._absorption_ready(fit) and self.prior is not None:
+            # A retune: the excess absorption over the stored curve around the last good velocity.
             scale = self._inversion_scale()
             cov = fit.cov if absorption_cov is None else absorption_cov
             v_draws = self._velocity_draws(fit, cov, point["velocity"], normals[:, 1:], scale)
@@ -1274,20 +1344,79 @@ class PhaseLockSearch:
         else:
             v_draws = np.full(len(normals), math.inf)
             v_point = v_upper = math.inf
-            notes.append("velocity of least absorption not established yet")
+            notes.append("velocity model not established yet")
         total = d_draws + v_draws
         upper = float(np.quantile(total, q)) if np.all(np.isfinite(total)) else math.inf
         return Shortfall(estimate=d_point + v_point, upper=upper, detuning=d_point, detuning_upper=d_upper,
                          velocity=v_point, velocity_upper=v_upper, phase_error_rad=mu,
                          phase_error_stderr_rad=sigma, confidence=q, note="; ".join(notes))
 
-    def shortfall(self, *, clock_s: float | None = None) -> Shortfall:
-        """Predicted shortfall of :meth:`recommend`'s set-points below the best, at ``clock_s``."""
+    def shortfall(self, *, clock_s: float | None = None,
+                  point: Mapping[str, float] | None = None) -> Shortfall:
+        """Predicted shortfall below the best at ``clock_s`` of ``point`` (default:
+        :meth:`recommend`'s set-points)."""
         clock = self._now(clock_s)
         if self._anchor() is None:
             return Shortfall(math.inf, math.inf, math.inf, math.inf, math.inf, math.inf, math.nan, math.inf,
                              self.settings.confidence, "no point in the capture range yet")
-        return self._shortfall_at(self.recommend(clock_s=clock).point, clock)
+        if point is None:
+            point = self.recommend(clock_s=clock).point
+        else:
+            point = self.space.clip({k: float(point[k]) for k in self.space.names})
+        # After a verification at this point its own phase is the most direct word on the
+        # detuning there (as for :meth:`correction`), carried to the clock by the drift term.
+        last = self._obs[-1] if self._obs else None
+        if last is not None and last.purpose in ("verify", "correct") and \
+                self._range_note(last.result) is None and \
+                abs(last.velocity - point["velocity"]) < 1e-9 and abs(last.detuning - point["detuning"]) < 1e-6:
+            error, sd, _, _ = self._phase_error_test(last, clock)
+            return self._shortfall_at(point, clock, phase_error=(error, sd))
+        return self._shortfall_at(point, clock)
+
+    def acceptance_problems(self, point: Mapping[str, float], *, clock_s: float | None = None,
+                            max_shortfall: float | None = None) -> list[tuple[str, str]]:
+        """Why this search cannot vouch for ``point``: ``(problem, what to check)`` pairs.
+
+        Empty when the detuning lock and the velocity model are established, the velocity
+        optimum is bracketed inside the box, the lock's peak detuning lies inside the box, and
+        the upper bound of the predicted shortfall at ``point`` (at ``confidence``, every
+        observation so far included) is within ``max_shortfall`` (default
+        ``target_shortfall``).
+        """
+        clock = self._now(clock_s)
+        s = self.settings
+        target = s.target_shortfall if max_shortfall is None else float(max_shortfall)
+        nominal = "[nominal] coupling_hz and waist_m and their units (Hz, m)"
+        if self._anchor() is None:
+            return [("the phase lock was never established (no point in its capture range)",
+                     f"the search box (it must hold the 2 pi point), {nominal}")]
+        problems: list[tuple[str, str]] = []
+        velocity = float(point["velocity"])
+        fit = self._lock_fit(velocity)
+        if fit is None or not fit.slope_known():
+            problems.append(("the detuning lock was not established (no significant phase slope)",
+                             f"the detuning box and {nominal}"))
+        else:
+            star, star_sd = self._phase_star()
+            centre, centre_sd, _ = fit.solve(star, star_sd**2, clock, math.inf)
+            low, high = self._detuning_box
+            if centre < low - 2.0 * centre_sd or centre > high + 2.0 * centre_sd:
+                problems.append((f"the lock's peak detuning {centre / 1e3:+.2f} kHz lies outside the "
+                                 f"detuning box [{low / 1e3:+.1f}, {high / 1e3:+.1f}] kHz",
+                                 "[setpoints.detuning] search_min and search_max (Hz)"))
+        plan = self._velocity_plan()
+        if not plan["concluded"] or not self._absorption_ready(self._absorption_fit()):
+            problems.append(("the velocity model was not established "
+                             f"({plan['note']})", f"the velocity box and {nominal}"))
+        elif not plan.get("bracketed", True):
+            problems.append((f"the velocity optimum is not bracketed inside the box ({plan['note']})",
+                             f"[setpoints.velocity] search_min and search_max (m/s) and {nominal}"))
+        short = self.shortfall(clock_s=clock, point=point)
+        if not problems and not short.upper <= target:
+            problems.append((f"the predicted shortfall's {s.confidence:.0%} bound {short.upper:.2%} is "
+                             f"above the target {target:.1%}",
+                             f"the point budget, the box, and {nominal}"))
+        return problems
 
     def converged(self, *, clock_s: float | None = None) -> bool:
         """True when the upper bound of the predicted shortfall is below ``target_shortfall``.
@@ -1297,12 +1426,25 @@ class PhaseLockSearch:
         """
         clock = self._now(clock_s)
         points = self._in_range()
-        if not points or not self._velocity_plan()["concluded"]:
+        plan = self._velocity_plan()
+        if not points or not plan["concluded"] or not plan.get("bracketed", True):
             return False
         velocity = self._recommended_velocity()
         if not self._measured_at(velocity):
             return False
         return self.shortfall(clock_s=clock).upper <= self.settings.target_shortfall
+
+    def hopeless(self, *, clock_s: float | None = None) -> str | None:
+        """Why more points in this box cannot meet the target, or None.
+
+        Said when the velocity optimum lies beyond the box (the data point outward at its
+        edge): the loop should stop and verify, and the stage is then not accepted.
+        """
+        self._check_clock(clock_s)
+        plan = self._velocity_plan()
+        if plan["concluded"] and not plan.get("bracketed", True):
+            return f"velocity optimum not bracketed inside the box: {plan['note']}"
+        return None
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1363,8 +1505,11 @@ class PhaseLockSearch:
         if not self._measured_at(velocity):
             short = self._shortfall_at({"velocity": velocity,
                                         "detuning": self._lock_target(velocity, clock)[0]}, clock)
-            return self._lock_proposal(velocity, clock, "relock", short,
-                                       f"re-centre the lock at the chosen velocity ({plan['note']})")
+            # Re-centre the lock at the chosen velocity once the bound allows a stop: before
+            # that, the point that lowers the bound most per shot (a lock point there among them).
+            if short.upper <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
+                return self._lock_proposal(velocity, clock, "relock", short,
+                                           f"re-centre the lock at the chosen velocity ({plan['note']})")
         return self._best_proposal(velocity, clock)
 
     def _fallback_proposal(self) -> Proposal:
@@ -1461,6 +1606,11 @@ class PhaseLockSearch:
         per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
         return float(np.median(per_shot)) / shots if per_shot else (0.1**2)
 
+    def _expected_inversion_variance(self, shots: int) -> float:
+        points = self._absorption_points() or self._in_range()
+        per_shot = [o.result.inversion_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
+        return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
+
     def _expected_absorption_variance(self, value: float, shots: int) -> float:
         points = self._absorption_points() or self._in_range()
         floor = 0.005
@@ -1483,14 +1633,20 @@ class PhaseLockSearch:
         model = self.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
         var = self._expected_phase_variance(shots) + model**2
         lock_cov = lock_fit.cov - np.outer(lock_fit.cov @ x, lock_fit.cov @ x) / (var + x @ lock_fit.cov @ x)
-        absorption_cov = None
+        absorption_cov = residual_cov = None
         fit = self._absorption_fit()
         if self._absorption_ready(fit):
             xv = fit.x_of(velocity)
             f = np.array([1.0, xv, xv * xv])
             avar = self._expected_absorption_variance(fit.value(xv), shots)
             absorption_cov = fit.cov - np.outer(fit.cov @ f, fit.cov @ f) / (avar + f @ fit.cov @ f)
-        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov)
+            curve = self._velocity_curve()
+            if curve is not None:
+                r_cov = curve.residual_cov
+                rvar = self._expected_inversion_variance(shots) + avar
+                residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
+        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
+                                  residual_cov=residual_cov)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
         rec_delta = self._lock_target(velocity, clock)[0]
@@ -1661,9 +1817,16 @@ class PhaseLockSearch:
             return None
         star, star_sd = self._phase_star()
         h = lock.step_hz
+        curve = self._velocity_curve()
         vertex = fit_abs.vertex()
         x_lo, x_hi = self._box_x(fit_abs)
-        x_star = float(np.clip(vertex, x_lo, x_hi)) if vertex is not None else fit_abs.x_of(rec["velocity"])
+        if curve is not None:
+            # The retune's reference is the chosen velocity (the inversion's optimum), with the
+            # absorption there as its stored "least" absorption: a retune judges the excess
+            # over it.
+            x_star = fit_abs.x_of(rec["velocity"])
+        else:
+            x_star = float(np.clip(vertex, x_lo, x_hi)) if vertex is not None else fit_abs.x_of(rec["velocity"])
         f = np.array([1.0, x_star, x_star**2])
         minimum = float(f @ fit_abs.coef)
         minimum_sd = math.sqrt(max(float(f @ fit_abs.cov @ f), 0.0))
@@ -1672,7 +1835,7 @@ class PhaseLockSearch:
         drift = 0.0
         if lock.t_ref is not None and lock.slope != 0.0:
             drift = -float(lock.theta[3]) / lock.slope
-        velocity_sd = self._vertex_velocity_stderr(fit_abs)
+        velocity_sd = curve.vertex_velocity_stderr() if curve is not None else self._vertex_velocity_stderr(fit_abs)
         if not math.isfinite(velocity_sd):
             velocity_sd = self.settings.velocity_step_fraction * rec["velocity"]
         return LockPrior(
@@ -1708,7 +1871,8 @@ class PhaseLockSearch:
                 "velocity_least_absorption_m_per_s", "velocity_least_absorption_stderr_m_per_s",
                 "phase_drift_rad_per_s", "peak_drift_hz_per_s")
         out.update({key: None for key in keys})
-        out.update(absorption_fit=None, velocity_note=plan["note"], prior=None)
+        out.update(absorption_fit=None, inversion_fit=None, velocity_note=plan["note"], prior=None,
+                   velocity_best_inversion_m_per_s=None, velocity_best_inversion_stderr_m_per_s=None)
         if anchor is None:
             out["stage"] = "search"
         elif not plan["concluded"]:
@@ -1737,6 +1901,17 @@ class PhaseLockSearch:
             if vertex is not None:
                 out["velocity_least_absorption_m_per_s"] = fit.velocity_of(vertex)
                 out["velocity_least_absorption_stderr_m_per_s"] = self._vertex_velocity_stderr(fit)
+        curve = self._velocity_curve()
+        if curve is not None:
+            peak = curve.vertex()
+            out["inversion_fit"] = {"velocity_ref_m_per_s": curve.velocity_ref,
+                                    "coefficients": [float(v) for v in curve.coef],
+                                    "covariance": [[float(v) for v in row] for row in curve.cov],
+                                    "proxy_slope_curvature": [float(v) for v in curve.proxy],
+                                    "discrepancy_widened": bool(curve.widened)}
+            if peak is not None:
+                out["velocity_best_inversion_m_per_s"] = curve.velocity_of(peak)
+                out["velocity_best_inversion_stderr_m_per_s"] = curve.vertex_velocity_stderr()
         out["shortfall"] = self.shortfall(clock_s=clock).to_dict()
         prior = self.learned_prior(clock_s=clock)
         out["prior"] = prior.to_dict() if prior is not None else None
