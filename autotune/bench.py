@@ -638,6 +638,7 @@ def _stage_record(result: Mapping[str, Any], follower: _Follower, rig: Any,
         "rig_time_s": float(rig.sim.clock) - clock_start,
         "setpoints": {k: float(v) for k, v in result["setpoints"].items()},
         "accepted": bool(result["accepted"]),
+        "reason": result.get("reason", ""),
         # The stage's own bound (None when it states none) against the truth's shortfall.
         "predicted_shortfall_upper": (result.get("predicted_shortfall") or {}).get("upper"),
         "true_shortfall": 1.0 - final["ratio"],

@@ -51,7 +51,8 @@ from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
 from autotune.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
-from autotune.search import Dimension, PointResult, SearchSpace, Strategy, make_strategy
+from autotune.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.strategies import make_strategy
 
 __all__ = [
     "Limit",
@@ -1199,8 +1200,12 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                            settings=lock_settings(config, box), prior=lock_prior)
     phases = len(session.phases)
     session.plan_progress(stage, budget,
-                          step_shots=2 * phases * max(config.lock.lock_shots_per_phase,
-                                                      config.lock.velocity_shots_per_phase),
+                          # A step may take up to step_shots_range's top multiple of its
+                          # configured shots (sized from the measured error per shot).
+                          step_shots=2 * phases * math.ceil(
+                              lock.settings.step_shots_range[1]
+                              * max(config.lock.lock_shots_per_phase,
+                                    config.lock.velocity_shots_per_phase)),
                           verify_shots=2 * phases * verify_shots, measured=_measured(replayed))
 
     def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
@@ -1322,7 +1327,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         recommendation = lock.recommend(clock_s=now + 0.5 * verify_duration)
         chosen = {k: float(v) for k, v in recommendation.point.items()}
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
-                       "shift is at its peak value, velocity of least absorption",
+                       "shift is at its peak value, velocity of the highest inversion",
                        setpoints=chosen, predicted=recommendation.value)
         run_step("verify", chosen, verify_shots)
     assert final is not None

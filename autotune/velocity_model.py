@@ -16,9 +16,9 @@ inversion that the absorption does not carry: fitted to the measured ``I + P_e``
 point, with a Gaussian prior on its slope and curvature from the physics, ``(r1, r2) =
 (S / c0) (c1, c2)`` where ``c0 + c1 x + c2 x^2`` is the fit of the empty-fringe contrast that
 every point measures and ``S`` the inversion scale. The prior is widened by a discrepancy
-``tau = (0.1 S, 1.0 S)`` (the terms the empty contrast does not carry: the photon's decay on
-its flight, ``d / (v T_c) ~ 0.04`` per unit of ``x`` on the demo rig, with room), and fourfold
-again when the measured inversions' marginal likelihood prefers it: where the inversions
+``tau = (0.1 S, 0.5 S)`` (the terms the empty contrast does not carry: the photon's decay on
+its flight, ``d / (v T_c) ~ 0.04`` per unit of ``x`` on the demo rig, with room), its slope
+fourfold again when the measured inversions' marginal likelihood prefers it: where the inversions
 disagree with the proxy, the data decide. This is Bayesian linear regression on the figure of
 merit itself with the error signals as its prior mean.
 
@@ -38,9 +38,12 @@ __all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_
 
 #: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
 #: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
-DISCREPANCY = (0.1, 1.0)
-#: The discrepancy may widen by this factor when the inversions' marginal likelihood prefers it.
+DISCREPANCY = (0.1, 0.5)
+#: The discrepancy may widen by this factor when the inversions' marginal likelihood prefers it
+#: (the slope only: the curvature is the absorption's, measured sharply).
 DISCREPANCY_WIDENING = 4.0
+#: Prior standard deviation of the empty contrast's curvature in ``x``, relative to its level.
+CONTRAST_CURVATURE = 0.5
 #: Smallest empty contrast and inversion scale used as denominators.
 _MIN_SCALE = 0.05
 
@@ -170,8 +173,11 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     c_var = np.maximum(np.asarray(contrast_vars, dtype=float), 1e-8)
     c_mean = float(np.sum(c / c_var) / np.sum(1.0 / c_var)) if len(c) else 1.0
     c_level = max(abs(c_mean), _MIN_SCALE)
-    # Loose priors: the contrast's shape over a few % of velocity is learned from the points.
-    c_prior = np.diag([1.0, (3.0 * c_level) ** 2, (3.0 * c_level) ** 2])
+    # A loose prior on the contrast's slope, learned from the points; a tight one on its
+    # curvature: over +-10 % of velocity the dephasing law exp(-(k / v^2)^2 / 2) is nearly
+    # linear in x for contrasts above about 0.5 (its curvature term is second order), and a
+    # free curvature fitted to a few noisy contrasts would swamp the absorption's.
+    c_prior = np.diag([1.0, (3.0 * c_level) ** 2, (CONTRAST_CURVATURE * c_level) ** 2])
     c_coef, c_cov, _ = _posterior(design, c, c_var, np.array([c_mean, 0.0, 0.0]), c_prior)
     k = scale / max(float(c_coef[0]), _MIN_SCALE)
     proxy_r = k * c_coef[1:]
@@ -182,7 +188,7 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
                        + np.asarray(absorption_vars, dtype=float), 1e-8)
     best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
     for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
-        tau = factor * scale * np.array(DISCREPANCY)
+        tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
         prior_cov = np.zeros((3, 3))
         prior_cov[0, 0] = 1.0
         prior_cov[1:, 1:] = proxy_r_cov + np.diag(tau**2)
@@ -200,3 +206,28 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
                           residual_cov=r_cov, absorption_cov=a_cov,
                           x_groups=tuple(sorted(float(g) for g in x_groups)),
                           proxy=proxy_r - a_coef[1:], widened=widened)
+
+
+@dataclass(frozen=True)
+class _AbsorptionFit:
+    """Weighted quadratic fit of P_e in ``x = v_ref / v - 1``."""
+
+    velocity_ref: float
+    coef: np.ndarray
+    cov: np.ndarray
+    x_groups: tuple[float, ...]
+    from_prior: bool
+
+    def x_of(self, velocity: float) -> float:
+        return self.velocity_ref / velocity - 1.0
+
+    def velocity_of(self, x: float) -> float:
+        return self.velocity_ref / (1.0 + x)
+
+    def value(self, x: float) -> float:
+        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
+
+    def vertex(self) -> float | None:
+        if self.coef[2] <= 0.0:
+            return None
+        return float(-self.coef[1] / (2.0 * self.coef[2]))
