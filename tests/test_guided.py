@@ -250,6 +250,43 @@ def test_velocity_step_stops_at_the_box_edge_and_says_so():
     assert lock.recommend().point["velocity"] == pytest.approx(BOX.highs[0], abs=1.0)
 
 
+def test_an_optimum_beyond_the_box_is_not_vouched_for_and_says_what_to_check():
+    """The best velocity (600 m/s) beyond the box (460-560): the search stops at the edge with the
+    data pointing outward (hopeless), and the acceptance gate names the box in one line."""
+    from autotune.loop import acceptance_reason
+
+    rig = Synthetic(peak_detuning_hz=0.0, velocity_star=600.0, curvature=2.0, seed=12)
+    lock = PhaseLockSearch(BOX, seed=0, start=START, settings=SETTINGS)
+    for _ in range(40):
+        if lock.hopeless(clock_s=rig.clock) is not None:
+            break
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+    assert lock.hopeless(clock_s=rig.clock) is not None and not lock.converged(clock_s=rig.clock)
+    point = lock.recommend(clock_s=rig.clock).point
+    problems = lock.acceptance_problems(point, clock_s=rig.clock, max_shortfall=0.02)
+    assert any("not bracketed" in problem for problem, _ in problems)
+    reason = acceptance_reason(0.7, lock.shortfall(clock_s=rig.clock, point=point), problems)
+    assert "\n" not in reason and reason.startswith("not accepted: ")
+    assert "[setpoints.velocity] search_min and search_max" in reason
+
+
+def test_a_verified_optimum_inside_the_box_is_vouched_for():
+    """Optimum inside the box: after convergence and a verification there, no acceptance problem."""
+    rig = Synthetic(peak_detuning_hz=-4e3, velocity_star=V0 * 1.02, seed=3)
+    lock = PhaseLockSearch(BOX, seed=3, start=START, settings=SETTINGS)
+    converged, _ = _run(lock, rig)
+    assert converged
+    chosen = lock.recommend(clock_s=rig.clock).point
+    lock.observe(chosen, rig.measure(chosen, 6000), purpose="verify")
+    assert lock.acceptance_problems(chosen, max_shortfall=0.02) == []
+    bound = lock.shortfall(point=chosen)
+    assert math.isfinite(bound.upper) and bound.upper <= 0.02
+    # The bound covers the synthetic rig's true shortfall there (its own law, outside the model).
+    assert rig.shortfall(chosen) <= bound.upper
+
+
 # --------------------------------------------------------------------------------------------
 # The stopping rule
 # --------------------------------------------------------------------------------------------
