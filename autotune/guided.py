@@ -1135,14 +1135,8 @@ class PhaseLockSearch:
             point = self.recommend(clock_s=clock).point
         else:
             point = self.space.clip({k: float(point[k]) for k in self.space.names})
-        # After a verification at this point its own phase is the most direct word on the
-        # detuning there (as for :meth:`correction`), carried to the clock by the drift term.
-        last = self._obs[-1] if self._obs else None
-        if last is not None and last.purpose in ("verify", "correct") and \
-                self._range_note(last.result) is None and \
-                abs(last.velocity - point["velocity"]) < 1e-9 and abs(last.detuning - point["detuning"]) < 1e-6:
-            error, sd, _, _ = self._phase_error_test(last, clock)
-            return self._shortfall_at(point, clock, phase_error=(error, sd))
+        # The posterior with every result told (a verification's included, at its precision):
+        # its own phase alone would throw away what the lock points already said.
         return self._shortfall_at(point, clock)
 
     def acceptance_problems(self, point: Mapping[str, float], *, clock_s: float | None = None,
