@@ -177,6 +177,35 @@ MISMATCH_PROFILES: dict[str, tuple[str, tuple[float, float]]] = {
 }
 
 
+#: Seeds of the velocity-physics draw and of its held-out twin (issue 18): fixed here, never
+#: used to tune.
+VELOCITY_PHYSICS_SEED = 20270611
+VELOCITY_PHYSICS_HELD_OUT_SEED = 20270707
+
+#: Ranges of the velocity-physics draw: what makes the inversion depend on velocity (a long
+#: Ramsey arm, a large Ramsey detuning, a wide velocity class: the fringe phase
+#: 2 pi Delta_R L / v is spread by about 2 pi Delta_R L sigma_v / v^2, PHYSICS.md section 3) and
+#: what degrades the signal, plus the main ranges. Where each range comes from:
+#: zone separation 3-12 cm and Ramsey detuning 5-40 kHz (from memory: Ramsey zones a few cm to
+#: ~10 cm apart, fringes scanned over tens of kHz; at the corner 40 kHz, 12 cm, 6 m/s the
+#: dephasing is 0.7 rad at 500 m/s, an empty contrast of about 0.77); velocity spread 1-6 m/s
+#: (PHYSICS.md section 4: a few m/s, from memory); one-photon probability 0.55-0.95 (from
+#: memory; a poor source near 0.6 is the issue's case); mode temperature 0.3-1.2 K (n_th a few
+#: hundredths to about 0.2 at 48.6 GHz, PHYSICS.md section 4); atoms per sample 0.08-0.4 (a
+#: small Poisson mean, two-atom samples rare, PHYSICS.md section 4); detection efficiency
+#: 0.3-0.8 (tens of percent, from memory).
+VELOCITY_PHYSICS_RANGES: dict[tuple[str, str], tuple[float, float]] = {
+    **SCENARIO_RANGES,
+    ("ramsey", "zone_separation_m"): (0.03, 0.12),
+    ("ramsey", "detuning_hz"): (5e3, 40e3),
+    ("beam", "velocity_spread_m_per_s"): (1.0, 6.0),
+    ("field", "one_photon_probability"): (0.55, 0.95),
+    ("cavity", "temperature_k"): (0.3, 1.2),
+    ("rig", "atoms_per_sample"): (0.08, 0.4),
+    ("detection", "efficiency"): (0.3, 0.8),
+}
+
+
 @dataclasses.dataclass(frozen=True)
 class ScenarioFamily:
     """One way of drawing scenarios.
@@ -211,6 +240,12 @@ FAMILIES: dict[str, ScenarioFamily] = {
                                summary="the main ranges, another seed (fixed, never tuned on)"),
     "mismatch": ScenarioFamily("mismatch", MISMATCH_SEED, MISMATCH_RANGES, MISMATCH_PROFILES,
                                summary="physics the guided strategy does not assume"),
+    "velocity_physics": ScenarioFamily(
+        "velocity_physics", VELOCITY_PHYSICS_SEED, VELOCITY_PHYSICS_RANGES,
+        summary="Ramsey arm and detuning, velocity spread, source, temperature, atoms, detector"),
+    "velocity_physics_held_out": ScenarioFamily(
+        "velocity_physics_held_out", VELOCITY_PHYSICS_HELD_OUT_SEED, VELOCITY_PHYSICS_RANGES,
+        summary="the velocity-physics ranges, another seed (fixed, never tuned on)"),
 }
 
 #: The thermal step before each scenario's retune, Hz (PHYSICS.md section 6).
@@ -607,6 +642,11 @@ def _stage_record(result: Mapping[str, Any], follower: _Follower, rig: Any,
         "acquisition_time_s": float(result["rig_time_s"]),
         "rig_time_s": float(rig.sim.clock) - clock_start,
         "setpoints": {k: float(v) for k, v in result["setpoints"].items()},
+        "accepted": bool(result["accepted"]),
+        "reason": result.get("reason", ""),
+        # The stage's own bound (None when it states none) against the truth's shortfall.
+        "predicted_shortfall_upper": (result.get("predicted_shortfall") or {}).get("upper"),
+        "true_shortfall": 1.0 - final["ratio"],
         "verified_inversion": float(result["inversion"]),
         "verified_stderr": float(result["inversion_stderr"]),
         "final_true_inversion": final["inversion"], "final_true_best": final["best"],

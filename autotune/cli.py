@@ -21,7 +21,10 @@ Exit codes
 3    rig unreachable or failing: timeout, refusal, protocol error, interlock that stayed set,
      a rig that kept answering with other set-points than those applied, a rig leased to
      another client (``--wait-lease-s`` waits for it)
-4    the verified inversion is below the configured acceptance threshold
+4    the stage was not accepted: the verified inversion is below [acceptance] min_inversion,
+     or (phase lock) the predicted shortfall's bound misses the target, the optimum is not
+     bracketed inside the box, or the lock was not established; one line says what to check;
+     the last good calibration is untouched
 130  stopped by SIGINT/SIGTERM (the message says whether the rig confirmed its safe
      set-points; the journal is closed and the run can be resumed)
 
@@ -407,7 +410,9 @@ def _summary(result: dict[str, Any]) -> str:
             f"inversion {result['inversion']:.3f} [{low:.3f}, {high:.3f}] ({conf}% interval)\n"
             f"  phase shift {result['phase_shift_rad'] / 3.141592653589793:.3f} pi, absorption "
             f"{result['absorption']:.3f}; {result['points']} points, {result['shots']:,} shots, "
-            f"rig time {result['rig_time_s'] / 60:.1f} min")
+            f"rig time {result['rig_time_s'] / 60:.1f} min") + (
+        f"\n{result['command']}: {result['reason']}"
+        if not result["accepted"] and result.get("reason") else "")
 
 
 def _exit_for_result(result: dict[str, Any]) -> int:
@@ -1107,10 +1112,8 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
         for name in stages:
             if name == "retune":
                 if not rows[-1][1]["accepted"]:
-                    print(f"retune skipped: the calibration was not accepted (verified inversion "
-                          f"{rows[-1][1]['inversion']:.3f} below min_inversion "
-                          f"{config.min_inversion:.3f}), so there is no last good setting to "
-                          f"retune from")
+                    print("retune skipped: the calibration was not accepted, so there is no "
+                          "last good setting to retune from")
                     break
                 step = rig.thermal_step(ns.thermal_step_hz)
                 # In the retune's manifest, so that its report marks when the cavity jumped.

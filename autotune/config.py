@@ -12,7 +12,7 @@ The file layout (see ``configs/calibrate.toml`` for a commented example)::
     [measurement]    shots_per_phase, ramsey_phases, confidence, resamples, verification_shots_per_phase
     [search]         strategy, seed, budgets, convergence thresholds, hand-strategy settings
     [nominal]        coupling_hz, waist_m (the first design's 2*pi velocity; not the rig's truth)
-    [acceptance]     min_inversion
+    [acceptance]     min_inversion, on_reject, max_shortfall
     [calibration]    store (where the last good calibration is kept)
     [retune]         still_good_fraction, half widths of the narrowed box, budgets
     [recovery]       retries of a failed step, interlock waits
@@ -46,6 +46,7 @@ __all__ = [
     "LockConfig",
     "TrackConfig",
     "StopAction",
+    "RejectAction",
     "RunConfig",
     "StrategyKind",
     "load_config",
@@ -84,6 +85,8 @@ def packaged_config(name: str) -> Path:
 StrategyKind = Literal["phase_lock", "bayesian", "grid", "coordinate", "random"]
 #: Where ``autotune track`` leaves the rig when the night stops.
 StopAction = Literal["safe", "last_good"]
+#: Where a calibration or retune that is not accepted leaves the rig.
+RejectAction = Literal["safe", "verified"]
 
 
 def nominal_two_pi_velocity(coupling_hz: float, waist_m: float) -> float:
@@ -327,6 +330,11 @@ class RunConfig:
     recovery: RecoveryConfig
     lock: LockConfig
     track: TrackConfig = field(default_factory=TrackConfig)
+    #: ``[acceptance] on_reject``: where a stage not accepted leaves the rig.
+    on_reject: RejectAction = "safe"
+    #: ``[acceptance] max_shortfall``: the largest predicted-shortfall bound a phase-lock stage
+    #: is accepted with (None: ``[lock] still_good_shortfall``; 1: no bound required).
+    max_shortfall: float | None = None
     raw: Mapping[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     def setpoint(self, name: str) -> SetpointConfig:
@@ -647,6 +655,10 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
 
     a_t = top.table("acceptance")
     min_inversion = a_t.number("min_inversion", low=-1.0, high=1.0)
+    on_reject = a_t.string("on_reject", "safe", choices=get_args(RejectAction))
+    max_shortfall = a_t.number("max_shortfall", low=0.0, high=1.0, low_open=True) \
+        if "max_shortfall" in a_t.data else None
+    a_t.used.add("max_shortfall")
     a_t.finish()
 
     c_t = top.table("calibration")
@@ -781,6 +793,8 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         recovery=recovery,
         lock=lock,
         track=track,
+        on_reject=on_reject,  # type: ignore[arg-type]
+        max_shortfall=max_shortfall,
         raw=dict(data),
     )
 

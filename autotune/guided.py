@@ -21,18 +21,23 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   on pi (the 2 pi rotation's sign flip, PHYSICS.md section 1) and is refined by the
   inversions through the ``cos(eps / 2)`` law (a grid posterior, the inversion scale solved in
   closed form per velocity at each grid value).
-- **Velocity: the least absorption.** ``P_e(one photon) = p1 |a_e(1)|^2 / 2`` vanishes at an
-  exact resonant 2 pi rotation and grows as the pulse area (``oc 1 / v``, PHYSICS.md section
-  2's pulse-area result) moves away from 2 pi (section 5b). With ``|a|^2 = 1 - x`` the
-  inversion above falls by about ``x / 2``, i.e. by the excess absorption ``Delta P_e`` (with
-  ``p1`` in both), a relative loss ``Delta P_e / I``. At the locked detuning a weighted
-  quadratic fit of ``P_e`` in ``x = v_ref / v - 1`` over a few velocities finds the velocity
-  of least absorption, extending towards lower absorption while the minimum is not bracketed
-  (up to the box edge, which it then says).
+- **Velocity: the inversion itself, with the physics as its prior.** ``P_e(one photon) = p1
+  |a_e(1)|^2 / 2`` vanishes at an exact resonant 2 pi rotation and grows as the pulse area
+  (``oc 1 / v``, PHYSICS.md section 2's pulse-area result) moves away from 2 pi (section 5b).
+  With ``|a|^2 = 1 - x`` the inversion above falls by about ``x / 2``, i.e. by the excess
+  absorption ``Delta P_e`` (with ``p1`` in both). But the least absorption is the best velocity
+  only when nothing else in the inversion depends on velocity: at the locked detuning a
+  weighted quadratic fit of ``P_e`` in ``x = v_ref / v - 1`` over a few velocities, and the
+  inversion curve of :mod:`autotune.velocity_model` (the measured inversions, with the
+  empty-fringe contrast's shape minus the absorption as the prior mean) gives the velocity of
+  the highest inversion, extending towards higher inversion while it is not bracketed (up to
+  the box edge, which it then says, and whether the data point outward there). A retune keeps
+  the absorption curve stored around the last good velocity.
 - **The posterior decides.** The predicted shortfall of the recommendation below the best is
   the detuning term ``1 - cos(eps / 2)`` with ``eps`` from the lock's posterior (phase
-  prediction and ``phi*``) plus the velocity term ``Delta P_e / I`` from the absorption fit's
-  posterior; its upper quantile at ``confidence`` comes from seeded posterior draws (the
+  prediction and ``phi*``) plus the velocity term, the relative inversion lost against the
+  best of the inversion curve's posterior (a retune: ``Delta P_e / I`` over the stored
+  curve); its upper quantile at ``confidence`` comes from seeded posterior draws (the
   detuning term alone also from ``scipy.stats.ncx2``). Once the lock and the velocity are
   established, each next point is the candidate (a lock point at the recommendation, or a
   velocity point one or two steps either side) whose measurement is expected to lower that bound
@@ -83,8 +88,12 @@ the lock's drift term then leads a drifting cavity.
 
 Shots: ``shots_per_phase=None`` means the loop's configured default for the purpose (search
 points: ``measurement.shots_per_phase``; ``"check"``: the check's precision; ``"correct"``:
-the verification's). Lock and velocity steps carry ``LockSettings.lock_shots_per_phase`` and
-``velocity_shots_per_phase``. Their default, 500 each, comes from a comparison on 20 scenarios
+the verification's). Lock and velocity steps carry :meth:`PhaseLockSearch.step_shots`: the
+configured ``LockSettings.lock_shots_per_phase`` and ``velocity_shots_per_phase`` until a
+usable point is measured, then the shots that give a lock step a phase standard error of
+``step_phase_stderr_rad`` and a velocity step an absorption standard error of
+``step_absorption_stderr`` from the measured error per shot (a poor one-photon source or a low
+atom flux raises it), within ``step_shots_range`` times the configured shots. Their default, 500 each, comes from a comparison on 20 scenarios
 of the simulated rig drawn over the benchmark's ranges (one draw, used for this choice only;
 6 Ramsey phases, a 72,000-shot verification): median search shots, worst final true ratio,
 scenarios at >= 0.98: 300/300: 32,400, 0.979, 19; 400/400: 43,200, 0.991, 20; 500/500:
@@ -111,6 +120,16 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
+from autotune.lock_fit import (
+    _LockFit,
+    _log_evidence,
+    _solve_gaussian,
+    _wrap,
+    detuning_offset,
+    phase_signal_note,
+)
+from autotune.shortfall import Shortfall, Verdict, _finite_or_none
+from autotune.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
 from autotune.search import (
     PURPOSES,
     BayesianSearch,
@@ -129,8 +148,6 @@ _SAME_VELOCITY = 0.005
 # A point within this relative velocity of the recommendation counts as measured there (the
 # phase at the peak does not depend on the velocity, and the velocity tolerance is several %).
 _AT_VELOCITY = 0.02
-# Newton steps when the lock's cubic curve is solved for the phase at the peak.
-_NEWTON_STEPS = 8
 # The drift prior may widen by this factor when the data's marginal likelihood prefers it.
 _DRIFT_WIDENING = 4.0
 # Grid points of the posterior over the phase at the peak.
@@ -141,66 +158,6 @@ _MIN_INVERSION_SCALE = 0.05
 
 def _is_number(value: Any) -> bool:
     return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer))
-
-
-def _wrap(angle: float | np.ndarray) -> Any:
-    """Angle wrapped to [-pi, pi)."""
-    return np.mod(np.asarray(angle, dtype=float) + math.pi, _TWO_PI) - math.pi
-
-
-def _finite_or_none(value: float) -> float | None:
-    return float(value) if math.isfinite(float(value)) else None
-
-
-def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak_rad: float) -> str | None:
-    """None when a measurement's phase signal can steer the detuning, else why not.
-
-    Usable means: fringes identified, a one-photon contrast of at least
-    ``settings.min_contrast_ratio`` of the empty one (near a pi or 3 pi rotation both fall),
-    and a phase error ``|phi - phi*|`` within ``settings.capture_phase_error_rad`` (beyond it
-    the angle wraps and the discriminator is no longer monotone).
-    """
-    if not result.identified:
-        return "fringes not identified"
-    if result.contrast_empty <= 0.0 or \
-            result.contrast_one_photon < settings.min_contrast_ratio * result.contrast_empty:
-        ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
-        return f"one-photon/empty contrast {ratio:.2f} below {settings.min_contrast_ratio:.2f}"
-    error = float(_wrap(result.phase_shift - phase_at_peak_rad))
-    if abs(error) > settings.capture_phase_error_rad:
-        return (f"phase error {error / math.pi:+.2f} pi beyond the capture range "
-                f"+-{settings.capture_phase_error_rad / math.pi:.2f} pi")
-    return None
-
-
-def detuning_offset(error_rad: float, error_stderr_rad: float, slope_rad_per_hz: float,
-                    slope_stderr_rad_per_hz: float, cubic_rad_per_hz3: float = 0.0,
-                    cubic_stderr_rad_per_hz3: float = 0.0) -> tuple[float, float]:
-    """The detuning set-point minus the peak's, from a phase error and the stored phase curve.
-
-    Solves ``error = s D + c D^3`` for ``D`` (Newton steps while the curve stays monotone with
-    the slope's sign, else the linear solution), with its standard error by the delta method
-    from the phase error's, the slope's and the cubic's.
-
-    Returns
-    -------
-    (float, float)
-        ``D`` and its standard error (Hz).
-    """
-    slope, c3 = float(slope_rad_per_hz), float(cubic_rad_per_hz3)
-    offset = error_rad / slope
-    for _ in range(_NEWTON_STEPS):
-        derivative = slope + 3.0 * c3 * offset**2
-        if derivative * slope <= 0.25 * slope**2:
-            offset = error_rad / slope
-            break
-        offset -= (slope * offset + c3 * offset**3 - error_rad) / derivative
-    derivative = slope + 3.0 * c3 * offset**2
-    if derivative * slope <= 0.25 * slope**2:
-        derivative = slope
-    offset_sd = math.sqrt((error_stderr_rad**2 + (offset * slope_stderr_rad_per_hz) ** 2
-                           + (offset**3 * cubic_stderr_rad_per_hz3) ** 2) / derivative**2)
-    return float(offset), float(offset_sd)
 
 
 # --------------------------------------------------------------------------------------------
@@ -277,6 +234,18 @@ class LockSettings:
         velocity).
     fallback_initial_points : int
         Space-filling points of the Gaussian-process fallback's first design (6).
+    step_phase_stderr_rad : float
+        Phase-shift standard error a lock step is sized for, rad (0.15: the 1 % target allows
+        a phase error of 0.4 rad, ``1 - cos(eps / 2) <= 0.01``, so a step's own noise keeps its
+        95 % range inside it).
+    step_absorption_stderr : float
+        Absorption standard error a velocity step is sized for (0.005: half the excess
+        absorption one velocity step of 5 % adds at a curvature of 4, ``4 x 0.05^2 = 0.01``).
+    step_shots_range : (float, float)
+        Lock and velocity steps take their configured shots until a point is measured, then the
+        shots that give the standard errors above from the measured error per shot (which
+        carries the one-photon contrast, the atom rate and the detection efficiency), within
+        this range of multiples of the configured shots ((0.5, 4.0); (1, 1) keeps them fixed).
     posterior_draws : int
         Seeded posterior draws behind every upper bound (4000).
     """
@@ -304,6 +273,9 @@ class LockSettings:
     prior_velocity_tolerance_fraction: float = 0.01
     fallback_initial_points: int = 6
     posterior_draws: int = 4000
+    step_phase_stderr_rad: float = 0.15
+    step_absorption_stderr: float = 0.005
+    step_shots_range: tuple[float, float] = (0.5, 4.0)
 
     def __post_init__(self) -> None:
         open_unit = ("target_shortfall", "confidence", "still_good_shortfall", "lock_acquired_shortfall")
@@ -343,6 +315,15 @@ class LockSettings:
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
                 raise ValueError(f"LockSettings.{name}: expected an integer >= {minimum}, got {value!r}")
+        for name in ("step_phase_stderr_rad", "step_absorption_stderr"):
+            value = getattr(self, name)
+            if not _is_number(value) or not (math.isfinite(float(value)) and float(value) > 0.0):
+                raise ValueError(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
+        low_high = self.step_shots_range
+        if not (isinstance(low_high, tuple) and len(low_high) == 2 and all(_is_number(v) for v in low_high)
+                and 0.0 < low_high[0] <= 1.0 <= low_high[1] and math.isfinite(low_high[1])):
+            raise ValueError(f"LockSettings.step_shots_range: expected (low, high) with 0 < low <= 1 <= high, "
+                             f"got {low_high!r}")
         if self.slope_sign not in (-1, 0, 1) or isinstance(self.slope_sign, bool):
             raise ValueError(f"LockSettings.slope_sign: expected -1, 0 or +1, got {self.slope_sign!r}")
 
@@ -473,107 +454,6 @@ class LockPrior:
 
 
 # --------------------------------------------------------------------------------------------
-# Reports
-# --------------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class Shortfall:
-    """Predicted relative shortfall of a setting below the best (inversion fractions).
-
-    Attributes
-    ----------
-    estimate : float
-        Point estimate: detuning term plus velocity term at the posterior means.
-    upper : float
-        Upper bound at ``confidence`` of their sum (seeded posterior draws).
-    detuning, detuning_upper : float
-        ``1 - cos(eps / 2)`` at the mean phase error, and its upper bound
-        (``scipy.stats.ncx2`` for the Gaussian phase error's square).
-    velocity, velocity_upper : float
-        Excess absorption over the least absorption divided by the inversion, at the fit's
-        mean, and its upper bound (draws).
-    phase_error_rad, phase_error_stderr_rad : float
-        Posterior mean and standard deviation of the phase error at the setting (rad).
-    confidence : float
-        Level of the upper bounds.
-    note : str
-        Why a term is infinite (nothing known yet), or empty.
-    """
-
-    estimate: float
-    upper: float
-    detuning: float
-    detuning_upper: float
-    velocity: float
-    velocity_upper: float
-    phase_error_rad: float
-    phase_error_stderr_rad: float
-    confidence: float
-    note: str = ""
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready mapping (infinite values as None)."""
-        out: dict[str, Any] = {}
-        for f in fields(self):
-            value = getattr(self, f.name)
-            out[f.name] = value if isinstance(value, str) else _finite_or_none(value)
-        return out
-
-
-@dataclass(frozen=True)
-class Verdict:
-    """A retune check's judgement of the last good set-points.
-
-    Attributes
-    ----------
-    still_good : bool
-        True when the check was in the capture range and the upper bound of the predicted
-        shortfall is below ``still_good_shortfall``.
-    in_range : bool
-        Whether the check's phase signal was usable (identified, contrast, capture range).
-    reason : str
-        A sentence with the numbers behind the verdict, for the journal.
-    detuning_error_hz, detuning_error_low_hz, detuning_error_high_hz : float
-        Inferred set-point minus peak detuning and its interval at ``confidence`` (Hz; nan
-        when out of range).
-    velocity_excess_absorption, velocity_excess_absorption_stderr : float
-        Check's absorption minus the stored least absorption, and its standard error (nan
-        when the check's phase error is outside the absorption window).
-    shortfall : Shortfall
-        The predicted shortfall at the last good set-points.
-    corrected : dict or None
-        The corrected set-points when not still good and in range, else None.
-    """
-
-    still_good: bool
-    in_range: bool
-    reason: str
-    detuning_error_hz: float
-    detuning_error_low_hz: float
-    detuning_error_high_hz: float
-    velocity_excess_absorption: float
-    velocity_excess_absorption_stderr: float
-    shortfall: Shortfall
-    corrected: dict[str, float] | None
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready mapping (nan and infinities as None)."""
-        out: dict[str, Any] = {}
-        for f in fields(self):
-            value = getattr(self, f.name)
-            if isinstance(value, Shortfall):
-                out[f.name] = value.to_dict()
-            elif isinstance(value, (bool, str)) or value is None:
-                out[f.name] = value
-            elif isinstance(value, dict):
-                out[f.name] = dict(value)
-            else:
-                out[f.name] = _finite_or_none(value)
-        return out
-
-
-# --------------------------------------------------------------------------------------------
 # Internal models
 # --------------------------------------------------------------------------------------------
 
@@ -584,122 +464,6 @@ class _Obs:
     detuning: float
     result: PointResult
     purpose: str
-
-
-@dataclass(frozen=True)
-class _LockFit:
-    """Posterior of the phase curve ``alpha + s d + c (d/h)^3 + beta (t - t_ref)`` at one velocity."""
-
-    velocity: float
-    centre_hz: float
-    step_hz: float
-    t_ref: float | None
-    theta: np.ndarray
-    cov: np.ndarray
-    points: int
-
-    def features(self, detuning: float, clock: float | None) -> np.ndarray:
-        d = detuning - self.centre_hz
-        tau = 0.0 if (self.t_ref is None or clock is None) else clock - self.t_ref
-        return np.array([1.0, d, (d / self.step_hz) ** 3, tau])
-
-    @property
-    def slope(self) -> float:
-        return float(self.theta[1])
-
-    @property
-    def slope_stderr(self) -> float:
-        return float(math.sqrt(max(self.cov[1, 1], 0.0)))
-
-    def slope_known(self) -> bool:
-        """The slope's sign is established (its posterior mean is two standard errors from 0)."""
-        return self.points >= 1 and abs(self.slope) >= 2.0 * self.slope_stderr and self.slope != 0.0
-
-    def phase(self, detuning: float, clock: float | None) -> tuple[float, float]:
-        """Posterior mean and variance of the phase at ``detuning`` (Hz) and ``clock`` (s)."""
-        x = self.features(detuning, clock)
-        return float(x @ self.theta), float(max(x @ self.cov @ x, 0.0))
-
-    def solve(self, phase_star: float, phase_star_var: float, clock: float | None,
-              max_offset_hz: float) -> tuple[float, float, float]:
-        """Detuning where the curve crosses ``phase_star``: (delta*, its stderr, local slope)."""
-        tau = 0.0 if (self.t_ref is None or clock is None) else clock - self.t_ref
-        alpha, s, c3, beta = (float(v) for v in self.theta)
-        h = self.step_hz
-        a = alpha + beta * tau - phase_star
-        d = -a / s
-        for _ in range(_NEWTON_STEPS):
-            value = a + s * d + c3 * (d / h) ** 3
-            derivative = s + 3.0 * c3 * d * d / h**3
-            # Only while the curve stays monotone with the fitted slope's sign.
-            if derivative * s <= 0.25 * s * s:
-                d = -a / s
-                break
-            d -= value / derivative
-        d = float(np.clip(d, -max_offset_hz, max_offset_hz))
-        derivative = s + 3.0 * c3 * d * d / h**3
-        if derivative * s <= 0.25 * s * s:
-            derivative = s
-        gradient = -np.array([1.0, d, (d / h) ** 3, tau]) / derivative
-        variance = float(gradient @ self.cov @ gradient) + phase_star_var / derivative**2
-        return self.centre_hz + d, math.sqrt(max(variance, 0.0)), derivative
-
-
-@dataclass(frozen=True)
-class _AbsorptionFit:
-    """Weighted quadratic fit of P_e in ``x = v_ref / v - 1``."""
-
-    velocity_ref: float
-    coef: np.ndarray
-    cov: np.ndarray
-    x_groups: tuple[float, ...]
-    from_prior: bool
-
-    def x_of(self, velocity: float) -> float:
-        return self.velocity_ref / velocity - 1.0
-
-    def velocity_of(self, x: float) -> float:
-        return self.velocity_ref / (1.0 + x)
-
-    def value(self, x: float) -> float:
-        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
-
-    def vertex(self) -> float | None:
-        if self.coef[2] <= 0.0:
-            return None
-        return float(-self.coef[1] / (2.0 * self.coef[2]))
-
-
-def _solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
-                    prior_mean: np.ndarray, prior_precision: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Posterior mean and covariance of a linear-Gaussian model with a Gaussian prior."""
-    weights = 1.0 / variances
-    precision = design.T @ (design * weights[:, None]) + prior_precision
-    rhs = design.T @ (values * weights) + prior_precision @ prior_mean
-    cov = np.linalg.inv(precision)
-    cov = 0.5 * (cov + cov.T)
-    return cov @ rhs, cov
-
-
-def _log_evidence(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
-                  prior_mean: np.ndarray, prior_sd: np.ndarray) -> float:
-    """Log marginal likelihood of a linear-Gaussian model, ``N(y | X m, X S X^T + D)`` (no constant)."""
-    covariance = np.diag(variances) + (design * prior_sd**2) @ design.T
-    residual = values - design @ prior_mean
-    _, logdet = np.linalg.slogdet(covariance)
-    return float(-0.5 * residual @ np.linalg.solve(covariance, residual) - 0.5 * logdet)
-
-
-def _cholesky(cov: np.ndarray) -> np.ndarray:
-    cov = 0.5 * (cov + cov.T)
-    scale = max(float(np.max(np.abs(np.diag(cov)))), 1e-300)
-    for jitter in (0.0, 1e-12, 1e-9, 1e-6):
-        try:
-            return np.linalg.cholesky(cov + jitter * scale * np.eye(len(cov)))
-        except np.linalg.LinAlgError:
-            continue
-    values, vectors = np.linalg.eigh(cov)
-    return vectors * np.sqrt(np.clip(values, 0.0, None))
 
 
 # --------------------------------------------------------------------------------------------
@@ -1047,6 +811,35 @@ class PhaseLockSearch:
     def _absorption_ready(self, fit: _AbsorptionFit | None) -> bool:
         return fit is not None and (fit.from_prior or len(fit.x_groups) >= 3)
 
+    def _velocity_curve(self) -> InversionCurve | None:
+        """The inversion along velocity (a calibration's; None before three velocities)."""
+        return self._cached("velocity_curve", self._compute_velocity_curve)
+
+    def _compute_velocity_curve(self) -> InversionCurve | None:
+        fit = self._absorption_fit()
+        if self.prior is not None or not self._absorption_ready(fit):
+            return None
+        # The search's own points: a verification measures the inversion at one velocity at
+        # its own precision and moment; it judges the choice and does not move the model.
+        points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
+        star = self._phase_star()[0]
+        xs, values, variances = [], [], []
+        for o in points:
+            # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
+            half = 0.5 * (self._unwrapped(o) - star)
+            factor = max(math.cos(half), 0.5)
+            value = o.result.inversion / factor
+            xs.append(fit.x_of(o.velocity))
+            values.append(value)
+            variances.append((o.result.inversion_stderr / factor) ** 2
+                             + (value * 0.5 * math.tan(half) * o.result.phase_shift_stderr) ** 2)
+        return fit_inversion_curve(
+            xs, values, variances, [o.result.absorption for o in points],
+            [o.result.absorption_stderr**2 for o in points],
+            [o.result.contrast_empty for o in points],
+            [o.result.contrast_empty_stderr**2 for o in points],
+            fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
+
     @staticmethod
     def _vertex_velocity_stderr(fit: _AbsorptionFit) -> float:
         """Standard error of the velocity of least absorption (delta method; inf without a vertex)."""
@@ -1114,29 +907,41 @@ class PhaseLockSearch:
                         "note": "velocities around the lock for the absorption's curvature"}
             return {"concluded": True, "velocity": v0, "next": None,
                     "note": "no third usable velocity within the box: staying at the lock's velocity"}
-        vertex = fit.vertex()
-        x_lo, x_hi = min(fit.x_groups), max(fit.x_groups)
+        curve = self._velocity_curve()
+        vertex = curve.vertex()
+        x_lo, x_hi = min(curve.x_groups), max(curve.x_groups)
         if vertex is not None and x_lo < vertex < x_hi:
-            return {"concluded": True, "velocity": fit.velocity_of(vertex), "next": None,
-                    "note": "least absorption bracketed"}
-        # Not bracketed: extend towards lower absorption.
+            return {"concluded": True, "velocity": curve.velocity_of(vertex), "next": None,
+                    "note": "inversion optimum bracketed"}
+        # Not bracketed: extend towards higher inversion.
         if vertex is not None:
             towards_high_x = vertex >= x_hi
         else:
-            towards_high_x = fit.value(x_hi) < fit.value(x_lo)
+            towards_high_x = curve.value(x_hi) > curve.value(x_lo)
         end_x = x_hi if towards_high_x else x_lo
-        end_v = fit.velocity_of(end_x)
+        end_v = curve.velocity_of(end_x)
         candidate = end_v * (1.0 - f) if towards_high_x else end_v * (1.0 + f)
         v = float(np.clip(candidate, low, high))
+        rising = "lower" if towards_high_x else "higher"
+        # The data point outward when the inversion's slope at the last velocity, outward,
+        # is two standard errors above zero; otherwise the edge may be the flat top itself and
+        # the bound decides.
+        gradient = np.array([0.0, 1.0, 2.0 * end_x])
+        slope = float(gradient @ curve.coef) * (1.0 if towards_high_x else -1.0)
+        outward = slope > 2.0 * math.sqrt(max(float(gradient @ curve.cov @ gradient), 0.0))
+        pointing = f"the inversion rising towards {rising} velocities" if outward else \
+            f"no significant slope towards {rising} velocities"
         if abs(v / end_v - 1.0) <= _SAME_VELOCITY:
-            return {"concluded": True, "velocity": end_v, "next": None,
-                    "note": f"least absorption not bracketed: stopped at the box edge {end_v:.1f} m/s"}
+            return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
+                    "outward": outward,
+                    "note": f"inversion optimum not bracketed: at the box edge {end_v:.1f} m/s with {pointing}"}
         if was_tried(v):
-            return {"concluded": True, "velocity": end_v, "next": None,
-                    "note": f"least absorption not bracketed: no usable signal at {v:.1f} m/s, "
-                            f"stopped at {end_v:.1f} m/s"}
+            return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
+                    "outward": outward,
+                    "note": f"inversion optimum not bracketed: no usable signal at {v:.1f} m/s, "
+                            f"stopped at {end_v:.1f} m/s with {pointing}"}
         return {"concluded": False, "velocity": end_v, "next": v,
-                "note": "least absorption not bracketed: extending towards lower absorption"}
+                "note": "inversion optimum not bracketed: extending towards higher inversion"}
 
     def _recommended_velocity(self) -> float:
         return float(self._velocity_plan()["velocity"])
@@ -1235,11 +1040,40 @@ class PhaseLockSearch:
         at_rec = a0 + a1 * x_rec + a2 * x_rec**2
         return np.maximum(at_rec - least, 0.0) / scale
 
+    def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
+        """The ``x`` range the inversion curve is trusted over: the velocities measured and one
+        velocity step beyond, within the box (a quadratic is not extrapolated further)."""
+        box_lo, box_hi = self._box_x(curve)
+        f = self.settings.velocity_step_fraction
+        return (max(box_lo, min(curve.x_groups) - f), min(box_hi, max(curve.x_groups) + f))
+
+    def _curve_draws(self, curve: InversionCurve, velocity: float, normals: np.ndarray, scale: float,
+                     residual_cov: np.ndarray | None = None,
+                     absorption_cov: np.ndarray | None = None) -> tuple[np.ndarray, float]:
+        """Relative inversion lost at ``velocity`` against the best within the trusted range:
+        posterior draws and the value at the posterior mean."""
+        x_lo, x_hi = self._curve_range(curve)
+        x_rec = float(np.clip(curve.x_of(velocity), x_lo, x_hi))
+
+        def loss(b: np.ndarray) -> np.ndarray:
+            b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                vertex = np.where(b2 < 0.0, -b1 / (2.0 * b2), x_lo)
+            inside = np.clip(np.nan_to_num(vertex, nan=x_lo), x_lo, x_hi)
+            best = np.maximum.reduce([b0 + b1 * x + b2 * x**2 for x in (x_lo, x_hi)]
+                                     + [np.where(b2 < 0.0, b0 + b1 * inside + b2 * inside**2, -np.inf)])
+            return np.maximum(best - (b0 + b1 * x_rec + b2 * x_rec**2), 0.0) / scale
+
+        draws = loss(curve.draws(normals, residual_cov, absorption_cov))
+        return draws, float(loss(curve.coef[None, :])[0])
+
     def _shortfall_at(self, point: Mapping[str, float], clock: float | None,
-                      lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None) -> Shortfall:
+                      lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None,
+                      residual_cov: np.ndarray | None = None,
+                      phase_error: tuple[float, float] | None = None) -> Shortfall:
         s = self.settings
         q = s.confidence
-        detuning = self._detuning_terms(point, clock)
+        detuning = self._detuning_terms(point, clock) if phase_error is None else phase_error
         if lock_cov is not None and detuning is not None:
             fit = self._lock_fit(point["velocity"])
             x = fit.features(point["detuning"], clock)
@@ -1260,7 +1094,15 @@ class PhaseLockSearch:
             d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
         fit = self._absorption_fit()
         plan = self._velocity_plan()
-        if self._absorption_ready(fit) and (plan["concluded"] or self.prior is not None):
+        curve = self._velocity_curve()
+        if curve is not None and plan["concluded"]:
+            # A calibration: the inversion along velocity, the physics as its prior.
+            scale = self._inversion_scale()
+            v_draws, v_point = self._curve_draws(curve, point["velocity"], normals[:, 1:], scale,
+                                                 residual_cov, absorption_cov)
+            v_upper = float(np.quantile(v_draws, q))
+        elif self._absorption_ready(fit) and self.prior is not None:
+            # A retune: the excess absorption over the stored curve around the last good velocity.
             scale = self._inversion_scale()
             cov = fit.cov if absorption_cov is None else absorption_cov
             v_draws = self._velocity_draws(fit, cov, point["velocity"], normals[:, 1:], scale)
@@ -1274,20 +1116,73 @@ class PhaseLockSearch:
         else:
             v_draws = np.full(len(normals), math.inf)
             v_point = v_upper = math.inf
-            notes.append("velocity of least absorption not established yet")
+            notes.append("velocity model not established yet")
         total = d_draws + v_draws
         upper = float(np.quantile(total, q)) if np.all(np.isfinite(total)) else math.inf
         return Shortfall(estimate=d_point + v_point, upper=upper, detuning=d_point, detuning_upper=d_upper,
                          velocity=v_point, velocity_upper=v_upper, phase_error_rad=mu,
                          phase_error_stderr_rad=sigma, confidence=q, note="; ".join(notes))
 
-    def shortfall(self, *, clock_s: float | None = None) -> Shortfall:
-        """Predicted shortfall of :meth:`recommend`'s set-points below the best, at ``clock_s``."""
+    def shortfall(self, *, clock_s: float | None = None,
+                  point: Mapping[str, float] | None = None) -> Shortfall:
+        """Predicted shortfall below the best at ``clock_s`` of ``point`` (default:
+        :meth:`recommend`'s set-points)."""
         clock = self._now(clock_s)
         if self._anchor() is None:
             return Shortfall(math.inf, math.inf, math.inf, math.inf, math.inf, math.inf, math.nan, math.inf,
                              self.settings.confidence, "no point in the capture range yet")
-        return self._shortfall_at(self.recommend(clock_s=clock).point, clock)
+        if point is None:
+            point = self.recommend(clock_s=clock).point
+        else:
+            point = self.space.clip({k: float(point[k]) for k in self.space.names})
+        # The posterior with every result told (a verification's included, at its precision):
+        # its own phase alone would throw away what the lock points already said.
+        return self._shortfall_at(point, clock)
+
+    def acceptance_problems(self, point: Mapping[str, float], *, clock_s: float | None = None,
+                            max_shortfall: float | None = None) -> list[tuple[str, str]]:
+        """Why this search cannot vouch for ``point``: ``(problem, what to check)`` pairs.
+
+        Empty when the detuning lock and the velocity model are established, the velocity
+        optimum is bracketed inside the box, the lock's peak detuning lies inside the box, and
+        the upper bound of the predicted shortfall at ``point`` (at ``confidence``, every
+        observation so far included) is within ``max_shortfall`` (default
+        ``target_shortfall``).
+        """
+        clock = self._now(clock_s)
+        s = self.settings
+        target = s.target_shortfall if max_shortfall is None else float(max_shortfall)
+        nominal = "[nominal] coupling_hz and waist_m and their units (Hz, m)"
+        if self._anchor() is None:
+            return [("the phase lock was never established (no point in its capture range)",
+                     f"the search box (it must hold the 2 pi point), {nominal}")]
+        problems: list[tuple[str, str]] = []
+        velocity = float(point["velocity"])
+        fit = self._lock_fit(velocity)
+        if fit is None or not fit.slope_known():
+            problems.append(("the detuning lock was not established (no significant phase slope)",
+                             f"the detuning box and {nominal}"))
+        else:
+            star, star_sd = self._phase_star()
+            centre, centre_sd, _ = fit.solve(star, star_sd**2, clock, math.inf)
+            low, high = self._detuning_box
+            if centre < low - 2.0 * centre_sd or centre > high + 2.0 * centre_sd:
+                problems.append((f"the lock's peak detuning {centre / 1e3:+.2f} kHz lies outside the "
+                                 f"detuning box [{low / 1e3:+.1f}, {high / 1e3:+.1f}] kHz",
+                                 "[setpoints.detuning] search_min and search_max (Hz)"))
+        plan = self._velocity_plan()
+        if not plan["concluded"] or not self._absorption_ready(self._absorption_fit()):
+            problems.append(("the velocity model was not established "
+                             f"({plan['note']})", f"the velocity box and {nominal}"))
+        elif plan.get("outward", False):
+            problems.append((f"the velocity optimum is not bracketed inside the box ({plan['note']})",
+                             f"[setpoints.velocity] search_min and search_max (m/s) and {nominal}"))
+        short = self.shortfall(clock_s=clock, point=point)
+        if not problems and not short.upper <= target:
+            problems.append((f"the predicted shortfall's {s.confidence:.0%} bound {short.upper:.2%} is "
+                             f"above the target {target:.1%}",
+                             f"the point budget, the box, and {nominal}"))
+        return problems
 
     def converged(self, *, clock_s: float | None = None) -> bool:
         """True when the upper bound of the predicted shortfall is below ``target_shortfall``.
@@ -1297,12 +1192,25 @@ class PhaseLockSearch:
         """
         clock = self._now(clock_s)
         points = self._in_range()
-        if not points or not self._velocity_plan()["concluded"]:
+        plan = self._velocity_plan()
+        if not points or not plan["concluded"] or plan.get("outward", False):
             return False
         velocity = self._recommended_velocity()
         if not self._measured_at(velocity):
             return False
         return self.shortfall(clock_s=clock).upper <= self.settings.target_shortfall
+
+    def hopeless(self, *, clock_s: float | None = None) -> str | None:
+        """Why more points in this box cannot meet the target, or None.
+
+        Said when the velocity optimum lies beyond the box (the data point outward at its
+        edge): the loop should stop and verify, and the stage is then not accepted.
+        """
+        self._check_clock(clock_s)
+        plan = self._velocity_plan()
+        if plan["concluded"] and plan.get("outward", False):
+            return f"velocity optimum not bracketed inside the box: {plan['note']}"
+        return None
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1310,6 +1218,37 @@ class PhaseLockSearch:
         return bool(points) and abs(points[-1].velocity / velocity - 1.0) <= _AT_VELOCITY
 
     # -- proposals --------------------------------------------------------------------------
+
+    def step_shots(self, purpose: str) -> int:
+        """Shots per field and phase of a lock (``"lock"``, ``"relock"``) or velocity step.
+
+        Sized from the measured error per shot of the usable points so far (median of
+        ``stderr^2 x shots``: the one-photon contrast, the atom rate and the detection
+        efficiency are all in it) to give ``step_phase_stderr_rad`` (lock) or
+        ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the configured
+        shots; the configured shots before any usable point.
+        """
+        s = self.settings
+        base = s.velocity_shots_per_phase if purpose == "velocity" else s.lock_shots_per_phase
+        return self._cached(("step_shots", purpose), lambda: self._compute_step_shots(purpose, base))
+
+    def _compute_step_shots(self, purpose: str, base: int) -> int:
+        s = self.settings
+        points = [o for o in self._in_range() if o.result.shots > 0]
+        if not points:
+            return base
+        if purpose == "velocity":
+            floor = 0.005
+            per_shot = float(np.median([o.result.absorption_stderr**2 * o.result.shots / max(o.result.absorption, floor)
+                                        for o in points]))
+            level = max(float(np.median([o.result.absorption for o in points])), floor)
+            total = per_shot * level / s.step_absorption_stderr**2
+        else:
+            per_shot = float(np.median([o.result.phase_shift_stderr**2 * o.result.shots for o in points]))
+            total = per_shot / s.step_phase_stderr_rad**2
+        per_phase = math.ceil(total / (2 * s.ramsey_phases))
+        low, high = s.step_shots_range
+        return int(np.clip(per_phase, max(1, math.ceil(low * base)), max(1, math.floor(high * base))))
 
     def _total_shots(self, shots_per_phase: int) -> int:
         return 2 * self.settings.ramsey_phases * shots_per_phase
@@ -1338,7 +1277,7 @@ class PhaseLockSearch:
                 if short.upper <= s.target_shortfall:
                     return Proposal(verdict.corrected, "correct", None,
                                     f"retune: {verdict.reason}; predicted bound there {short.upper:.2%}: verify")
-                return Proposal(verdict.corrected, "lock", s.lock_shots_per_phase,
+                return Proposal(verdict.corrected, "lock", self.step_shots("lock"),
                                 f"retune: {verdict.reason}; predicted bound there {short.upper:.2%} above "
                                 f"{s.target_shortfall:.1%}: a lock step there first")
         if not self._obs:
@@ -1363,8 +1302,11 @@ class PhaseLockSearch:
         if not self._measured_at(velocity):
             short = self._shortfall_at({"velocity": velocity,
                                         "detuning": self._lock_target(velocity, clock)[0]}, clock)
-            return self._lock_proposal(velocity, clock, "relock", short,
-                                       f"re-centre the lock at the chosen velocity ({plan['note']})")
+            # Re-centre the lock at the chosen velocity once the bound allows a stop: before
+            # that, the point that lowers the bound most per shot (a lock point there among them).
+            if short.upper <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
+                return self._lock_proposal(velocity, clock, "relock", short,
+                                           f"re-centre the lock at the chosen velocity ({plan['note']})")
         return self._best_proposal(velocity, clock)
 
     def _fallback_proposal(self) -> Proposal:
@@ -1402,7 +1344,7 @@ class PhaseLockSearch:
                 continue
             if steps != direction:
                 why += "; the slope is not yet significant from the points so far"
-            return Proposal({"velocity": velocity, "detuning": target}, "lock", s.lock_shots_per_phase,
+            return Proposal({"velocity": velocity, "detuning": target}, "lock", self.step_shots("lock"),
                             f"bracket the lock: {abs(steps):.0f} step(s) of {self.step_hz / 1e3:.1f} kHz from "
                             f"{ref.detuning / 1e3:+.2f} kHz (phase error {error / math.pi:+.2f} pi; {why}) for "
                             "the phase slope; the detuning term is unknown (infinite) until the slope's sign "
@@ -1417,8 +1359,8 @@ class PhaseLockSearch:
         limited = "" if abs(target - self._clip_detuning(delta)) < 1.0 else \
             f", step limited to {self.max_lock_step_hz / 1e3:.1f} kHz"
         rec = {"velocity": velocity, "detuning": self._clip_detuning(delta)}
-        after = self._expected_after(rec, velocity, target, s.lock_shots_per_phase, clock)
-        return Proposal({"velocity": velocity, "detuning": target}, purpose, s.lock_shots_per_phase,
+        after = self._expected_after(rec, velocity, target, self.step_shots(purpose), clock)
+        return Proposal({"velocity": velocity, "detuning": target}, purpose, self.step_shots(purpose),
                         f"{why}: phase at the peak predicted at {delta / 1e3:+.2f} +- {sd / 1e3:.2f} kHz{limited}; "
                         f"phase error there {short.phase_error_rad / math.pi:+.3f} +- "
                         f"{short.phase_error_stderr_rad / math.pi:.3f} pi; this point is expected to reduce the "
@@ -1433,7 +1375,7 @@ class PhaseLockSearch:
         target = self._lock_target(lock_velocity, clock)
         detuning = self._limit_step(target[0], velocity) if target is not None else self._anchor().detuning
         groups = len(self._absorption_fit().x_groups) if self._absorption_fit() is not None else 0
-        return Proposal({"velocity": velocity, "detuning": detuning}, "velocity", s.velocity_shots_per_phase,
+        return Proposal({"velocity": velocity, "detuning": detuning}, "velocity", self.step_shots("velocity"),
                         f"{note}: absorption at {velocity:.1f} m/s, at the locked detuning "
                         f"{detuning / 1e3:+.2f} kHz; the velocity term is unknown (infinite) until the "
                         f"least absorption is bracketed ({groups} usable velocities so far)")
@@ -1443,7 +1385,7 @@ class PhaseLockSearch:
         low, high = self._velocity_box
         out = []
         delta = self._lock_target(velocity, clock)[0]
-        out.append(("lock", velocity, self._limit_step(delta, velocity), s.lock_shots_per_phase))
+        out.append(("lock", velocity, self._limit_step(delta, velocity), self.step_shots("lock")))
         # One and two steps either side: the curvature and the vertex of the absorption are
         # learned fastest from its wings (the excess grows as the square of the step).
         f = s.velocity_step_fraction
@@ -1453,13 +1395,18 @@ class PhaseLockSearch:
             if abs(v / velocity - 1.0) <= _SAME_VELOCITY or any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in seen):
                 continue
             seen.append(v)
-            out.append(("velocity", v, self._limit_step(delta, v), s.velocity_shots_per_phase))
+            out.append(("velocity", v, self._limit_step(delta, v), self.step_shots("velocity")))
         return out
 
     def _expected_phase_variance(self, shots: int) -> float:
         points = self._in_range()
         per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
         return float(np.median(per_shot)) / shots if per_shot else (0.1**2)
+
+    def _expected_inversion_variance(self, shots: int) -> float:
+        points = self._absorption_points() or self._in_range()
+        per_shot = [o.result.inversion_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
+        return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
 
     def _expected_absorption_variance(self, value: float, shots: int) -> float:
         points = self._absorption_points() or self._in_range()
@@ -1483,14 +1430,20 @@ class PhaseLockSearch:
         model = self.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
         var = self._expected_phase_variance(shots) + model**2
         lock_cov = lock_fit.cov - np.outer(lock_fit.cov @ x, lock_fit.cov @ x) / (var + x @ lock_fit.cov @ x)
-        absorption_cov = None
+        absorption_cov = residual_cov = None
         fit = self._absorption_fit()
         if self._absorption_ready(fit):
             xv = fit.x_of(velocity)
             f = np.array([1.0, xv, xv * xv])
             avar = self._expected_absorption_variance(fit.value(xv), shots)
             absorption_cov = fit.cov - np.outer(fit.cov @ f, fit.cov @ f) / (avar + f @ fit.cov @ f)
-        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov)
+            curve = self._velocity_curve()
+            if curve is not None:
+                r_cov = curve.residual_cov
+                rvar = self._expected_inversion_variance(shots) + avar
+                residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
+        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
+                                  residual_cov=residual_cov)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
         rec_delta = self._lock_target(velocity, clock)[0]
@@ -1661,9 +1614,16 @@ class PhaseLockSearch:
             return None
         star, star_sd = self._phase_star()
         h = lock.step_hz
+        curve = self._velocity_curve()
         vertex = fit_abs.vertex()
         x_lo, x_hi = self._box_x(fit_abs)
-        x_star = float(np.clip(vertex, x_lo, x_hi)) if vertex is not None else fit_abs.x_of(rec["velocity"])
+        if curve is not None:
+            # The retune's reference is the chosen velocity (the inversion's optimum), with the
+            # absorption there as its stored "least" absorption: a retune judges the excess
+            # over it.
+            x_star = fit_abs.x_of(rec["velocity"])
+        else:
+            x_star = float(np.clip(vertex, x_lo, x_hi)) if vertex is not None else fit_abs.x_of(rec["velocity"])
         f = np.array([1.0, x_star, x_star**2])
         minimum = float(f @ fit_abs.coef)
         minimum_sd = math.sqrt(max(float(f @ fit_abs.cov @ f), 0.0))
@@ -1672,7 +1632,7 @@ class PhaseLockSearch:
         drift = 0.0
         if lock.t_ref is not None and lock.slope != 0.0:
             drift = -float(lock.theta[3]) / lock.slope
-        velocity_sd = self._vertex_velocity_stderr(fit_abs)
+        velocity_sd = curve.vertex_velocity_stderr() if curve is not None else self._vertex_velocity_stderr(fit_abs)
         if not math.isfinite(velocity_sd):
             velocity_sd = self.settings.velocity_step_fraction * rec["velocity"]
         return LockPrior(
@@ -1712,7 +1672,9 @@ class PhaseLockSearch:
                 "velocity_least_absorption_m_per_s", "velocity_least_absorption_stderr_m_per_s",
                 "phase_drift_rad_per_s", "peak_drift_hz_per_s")
         out.update({key: None for key in keys})
-        out.update(absorption_fit=None, lock_fit=None, velocity_note=plan["note"], prior=None)
+        out.update(absorption_fit=None, lock_fit=None, inversion_fit=None,
+                   velocity_note=plan["note"], prior=None,
+                   velocity_best_inversion_m_per_s=None, velocity_best_inversion_stderr_m_per_s=None)
         if anchor is None:
             out["stage"] = "search"
         elif not plan["concluded"]:
@@ -1746,6 +1708,17 @@ class PhaseLockSearch:
             if vertex is not None:
                 out["velocity_least_absorption_m_per_s"] = fit.velocity_of(vertex)
                 out["velocity_least_absorption_stderr_m_per_s"] = self._vertex_velocity_stderr(fit)
+        curve = self._velocity_curve()
+        if curve is not None:
+            peak = curve.vertex()
+            out["inversion_fit"] = {"velocity_ref_m_per_s": curve.velocity_ref,
+                                    "coefficients": [float(v) for v in curve.coef],
+                                    "covariance": [[float(v) for v in row] for row in curve.cov],
+                                    "proxy_slope_curvature": [float(v) for v in curve.proxy],
+                                    "discrepancy_widened": bool(curve.widened)}
+            if peak is not None:
+                out["velocity_best_inversion_m_per_s"] = curve.velocity_of(peak)
+                out["velocity_best_inversion_stderr_m_per_s"] = curve.vertex_velocity_stderr()
         out["shortfall"] = self.shortfall(clock_s=clock).to_dict()
         prior = self.learned_prior(clock_s=clock)
         out["prior"] = prior.to_dict() if prior is not None else None

@@ -49,9 +49,10 @@ from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
-from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
+from autotune.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
-from autotune.search import Dimension, PointResult, SearchSpace, Strategy, make_strategy
+from autotune.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.strategies import make_strategy
 
 __all__ = [
     "Limit",
@@ -71,6 +72,8 @@ __all__ = [
     "retune_box",
     "quadratic_peak",
     "call_with_recovery",
+    "shortfall_numbers",
+    "acceptance_reason",
 ]
 
 _log = structlog.get_logger(__name__)
@@ -120,6 +123,8 @@ class StageOutcome:
     check: InversionEstimate | None = None
     drift_rate_hz_per_s: float = 0.0
     lock_prior: dict[str, Any] | None = None
+    predicted_shortfall: dict[str, Any] | None = None
+    reason: str = ""
 
 
 def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
@@ -1236,10 +1241,15 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         session.move_to(chosen, reason="leave the rig at the verified set-points")
     accepted = final.inversion >= config.min_inversion
     status = "accepted" if accepted else "below_acceptance"
-    session.decide(status, f"verified inversion {final.inversion:.3f} vs acceptance "
-                   f"{config.min_inversion:.3f}", setpoints=chosen)
+    reason = (f"verified inversion {final.inversion:.3f} vs acceptance {config.min_inversion:.3f}"
+              if accepted else
+              f"not accepted: the verified inversion {final.inversion:.3f} is below [acceptance] "
+              f"min_inversion {config.min_inversion:.3f}; check the rig (source, detectors), the "
+              f"box and [nominal] coupling_hz and waist_m and their units (Hz, m)")
+    session.decide(status, reason, setpoints=chosen)
     return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
-                        session.tally.rig_time_s, accepted, check_estimate, drift_rate)
+                        session.tally.rig_time_s, accepted, check_estimate, drift_rate,
+                        reason=reason)
 
 
 #: Measurement labels of the phase-lock stage: its proposals' purposes.
@@ -1345,8 +1355,12 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                            settings=lock_settings(config, box), prior=lock_prior)
     phases = len(session.phases)
     session.plan_progress(stage, budget,
-                          step_shots=2 * phases * max(config.lock.lock_shots_per_phase,
-                                                      config.lock.velocity_shots_per_phase),
+                          # A step may take up to step_shots_range's top multiple of its
+                          # configured shots (sized from the measured error per shot).
+                          step_shots=2 * phases * math.ceil(
+                              lock.settings.step_shots_range[1]
+                              * max(config.lock.lock_shots_per_phase,
+                                    config.lock.velocity_shots_per_phase)),
                           verify_shots=2 * phases * verify_shots, measured=_measured(replayed))
 
     def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
@@ -1419,10 +1433,13 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                        for k, v in check_m.setpoints.items()):
                     session.move_to(check_m.setpoints, reason="leave the rig at the checked "
                                                               "set-points")
-                session.decide("still_good", verdict.reason, setpoints=check_m.setpoints)
+                session.decide("still_good", verdict.reason, setpoints=check_m.setpoints,
+                               predicted_shortfall=shortfall_numbers(verdict.shortfall))
                 return StageOutcome("still_good", dict(check_m.setpoints), check,
                                     "check passed", searched, session.tally.shots,
-                                    session.tally.rig_time_s, True, check)
+                                    session.tally.rig_time_s, True, check,
+                                    predicted_shortfall=shortfall_numbers(verdict.shortfall),
+                                    reason=f"still good: {verdict.reason}")
             continue
         if final is not None:
             correction = lock.correction(clock_s=now) \
@@ -1436,22 +1453,24 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             continue
         if not stop_reason:
             shortfall = lock.shortfall(clock_s=now)
+            bound = _bound_text(shortfall)
+            hopeless = lock.hopeless(clock_s=now) if searched else None
             if searched and lock.converged(clock_s=now):
                 # The one format of a shortfall, as the lock's verdicts print it.
-                stop_reason = (f"predicted shortfall {shortfall.estimate:.2%}, bound "
-                               f"{shortfall.upper:.2%} ({shortfall.confidence:.0%}) below the "
-                               f"target {config.lock.target_shortfall:.1%}")
+                stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"
+            elif hopeless is not None:
+                stop_reason = f"{hopeless}; {bound}"
             elif searched >= budget.max_points:
-                stop_reason = f"point budget of {budget.max_points} reached"
+                stop_reason = f"point budget of {budget.max_points} reached; {bound}"
             elif session.tally.rig_time_s >= budget.max_rig_time_s:
-                stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s spent"
+                stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s spent; {bound}"
             else:
                 proposal = lock.propose(clock_s=now)
                 shots = proposal.shots_per_phase or default_shots.get(
                     proposal.purpose, config.measurement.shots_per_phase)
                 if session.tally.shots + 2 * phases * shots > budget.max_shots:
                     stop_reason = (f"shot budget {budget.max_shots} would be exceeded by the "
-                                   f"next step")
+                                   f"next step; {bound}")
                 else:
                     session.journal.append("proposal", point=steps, setpoints=proposal.point,
                                            strategy="phase_lock", purpose=proposal.purpose,
@@ -1464,7 +1483,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         recommendation = lock.recommend(clock_s=now + 0.5 * verify_duration)
         chosen = {k: float(v) for k, v in recommendation.point.items()}
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
-                       "shift is at its peak value, velocity of least absorption",
+                       "shift is at its peak value, velocity of the highest inversion",
                        setpoints=chosen, predicted=recommendation.value)
         run_step("verify", chosen, verify_shots)
     assert final is not None
@@ -1472,12 +1491,62 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     if any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in chosen.items()):
         session.move_to(chosen, reason="leave the rig at the verified set-points")
     learned = lock.learned_prior(clock_s=session.clock)
-    accepted = estimate.inversion >= config.min_inversion
+    # The stage vouches for its choice only with every observation told, the verification's
+    # included: the bound at the chosen set-points now, the lock, the box, the inversion.
+    # At the verification's own moment (clock None: the last result's), so that a drift term
+    # fitted to a few points is not extrapolated past what was verified.
+    final_short = lock.shortfall(clock_s=None, point=chosen)
+    # The acceptance bar is the goal itself (still_good_shortfall, 2 %: >= 0.98 of the best);
+    # the stop's target_shortfall is stricter to leave room for the drift and the verification.
+    max_shortfall = config.max_shortfall if config.max_shortfall is not None \
+        else config.lock.still_good_shortfall
+    # A bound of 100 % vouches for nothing: such a setting checks the verified inversion only.
+    problems = lock.acceptance_problems(chosen, clock_s=None,
+                                        max_shortfall=max_shortfall) if max_shortfall < 1.0 else []
+    if estimate.inversion < config.min_inversion:
+        problems.append((f"the verified inversion {estimate.inversion:.3f} is below [acceptance] "
+                         f"min_inversion {config.min_inversion:.3f}",
+                         "the rig (source, detectors) and [acceptance] min_inversion"))
+    accepted = not problems
+    reason = acceptance_reason(estimate.inversion, final_short, problems)
     status = "accepted" if accepted else "below_acceptance"
-    session.decide(status, f"verified inversion {estimate.inversion:.3f} vs acceptance "
-                   f"{config.min_inversion:.3f}", setpoints=chosen,
-                   learned=None if learned is None else learned.to_dict())
+    session.decide(status, reason, setpoints=chosen,
+                   learned=None if learned is None else learned.to_dict(),
+                   predicted_shortfall=shortfall_numbers(final_short),
+                   problems=[p for p, _ in problems])
     outcome = StageOutcome(status, chosen, estimate, stop_reason or "verified after a "
                            "correction", searched, session.tally.shots,
-                           session.tally.rig_time_s, accepted, check)
+                           session.tally.rig_time_s, accepted, check,
+                           predicted_shortfall=shortfall_numbers(final_short), reason=reason)
     return dataclasses.replace(outcome, lock_prior=None if learned is None else learned.to_dict())
+
+
+def _bound_text(shortfall: Shortfall) -> str:
+    if not math.isfinite(shortfall.upper):
+        return (f"predicted shortfall not bounded yet ({shortfall.note or 'no model'})")
+    return (f"predicted shortfall {shortfall.estimate:.2%}, bound {shortfall.upper:.2%} "
+            f"({shortfall.confidence:.0%})")
+
+
+def shortfall_numbers(shortfall: Shortfall) -> dict[str, Any]:
+    """The predicted shortfall as numbers for result.json and the journal (None: unbounded).
+
+    Keys: ``estimate``, ``upper`` (the bound at ``confidence``), ``confidence``, and the terms
+    ``detuning``, ``detuning_upper``, ``velocity``, ``velocity_upper``.
+    """
+    out = shortfall.to_dict()
+    return {key: out[key] for key in ("estimate", "upper", "confidence", "detuning",
+                                      "detuning_upper", "velocity", "velocity_upper", "note")}
+
+
+def acceptance_reason(inversion: float, shortfall: Shortfall,
+                      problems: Sequence[tuple[str, str]]) -> str:
+    """One line: why a stage was accepted, or why not and what to check."""
+    if not problems:
+        return (f"verified inversion {inversion:.3f}; {_bound_text(shortfall)} within the target")
+    checks: list[str] = []
+    for _, check in problems:
+        if check not in checks:
+            checks.append(check)
+    return ("not accepted: " + "; ".join(p for p, _ in problems)
+            + "; check " + "; ".join(checks))

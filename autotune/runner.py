@@ -92,7 +92,7 @@ _RESUMABLE_CHANGES = (
     "search.max_points", "search.max_shots", "search.max_rig_time_s", "search.min_points",
     "measurement.shots_per_phase", "measurement.verification_shots_per_phase",
     "measurement.confidence", "measurement.resamples",
-    "acceptance.min_inversion",
+    "acceptance.min_inversion", "acceptance.on_reject",
     "calibration.store",
     "retune.max_points", "retune.max_shots", "retune.check_shots_per_phase",
     "retune.still_good_fraction",
@@ -605,6 +605,10 @@ def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: flo
         "wall_time_s": wall_s,
         "stop_reason": outcome.stop_reason,
         "drift_rate_hz_per_s": outcome.drift_rate_hz_per_s,
+        # The stage's own bound on how far below the best its choice is (None: the strategy
+        # states none), and the one line that says why it was or was not accepted.
+        "predicted_shortfall": outcome.predicted_shortfall,
+        "reason": outcome.reason,
         "run_dir": str(run_dir),
         "estimate": est.to_dict(),
     }
@@ -770,6 +774,15 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
                 raise
             session.decide("store", f"new last good calibration written to "
                            f"{Path(prepared.store).resolve()}")
+        elif not outcome.accepted:
+            if config.on_reject == "safe":
+                ok, detail = session.go_safe(f"{command} not accepted", expected=True)
+                result["left_at"] = "safe" if ok else f"safe set-points NOT confirmed: {detail}"
+            else:
+                result["left_at"] = "verified"
+            session.decide("not_stored", f"the last good calibration is untouched; the rig is "
+                           f"left at its {'safe' if config.on_reject == 'safe' else 'verified'} "
+                           f"set-points ([acceptance] on_reject)")
         write_json_atomic(run_dir / RESULT_NAME, result)
         status = outcome.status
         return result

@@ -64,7 +64,6 @@ __all__ = [
     "CoordinateScan",
     "RandomSearch",
     "StrategyKind",
-    "make_strategy",
 ]
 
 StrategyKind = Literal["bayesian", "grid", "coordinate", "random", "phase_lock"]
@@ -1276,45 +1275,3 @@ class BayesianSearch(_Record):
         _, value, _ = self._recommend_unit(now)
         mean, std = self._predict(self._candidates, now)
         return float(np.max(mean + self.convergence.upper_bound_sigmas * std) - value)
-
-
-# --------------------------------------------------------------------------------------------
-# Factory
-# --------------------------------------------------------------------------------------------
-
-
-def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settings: Any) -> Strategy:
-    """Build a strategy by kind.
-
-    Parameters
-    ----------
-    kind : {"bayesian", "grid", "coordinate", "random", "phase_lock"}
-    space : SearchSpace
-    seed : int
-        Used by the seeded strategies (bayesian, random, phase_lock); ignored by grid and
-        coordinate.
-    **settings
-        Keyword arguments of the strategy's constructor (``points_per_dimension``,
-        ``rounds``, ``n_points``, ``initial_points``, ...; for ``"phase_lock"``: ``start``,
-        ``settings``, ``prior``, see :class:`autotune.guided.PhaseLockSearch`).
-    """
-    if kind == "phase_lock":
-        # Imported here: autotune.guided builds on this module.
-        from autotune.guided import PhaseLockSearch
-
-        try:
-            return PhaseLockSearch(space, seed=seed, **settings)
-        except TypeError as exc:
-            raise ValueError(f"settings for {kind!r}: {exc}") from exc
-    try:
-        if kind == "bayesian":
-            return BayesianSearch(space, seed=seed, **settings)
-        if kind == "grid":
-            return GridScan(space, **settings)
-        if kind == "coordinate":
-            return CoordinateScan(space, **settings)
-        if kind == "random":
-            return RandomSearch(space, seed, **settings)
-    except TypeError as exc:
-        raise ValueError(f"settings for {kind!r}: {exc}") from exc
-    raise ValueError(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', 'phase_lock', got {kind!r}")

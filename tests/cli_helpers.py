@@ -77,6 +77,9 @@ TINY = {
     "retune": {"max_points": 2, "n_initial_points": 1, "check_shots_per_phase": 400,
                "max_shots": 100_000},
     "lock": {"lock_shots_per_phase": 200, "velocity_shots_per_phase": 200},
+    # Eight steps of 200 shots cannot bound the shortfall within 1 %: these runs test the
+    # mechanics (resume, store, faults), so they are accepted on the verified inversion alone.
+    "acceptance": {"max_shortfall": 1.0},
 }
 
 

@@ -207,6 +207,40 @@ def test_sigterm_sends_the_rig_to_safe_setpoints_and_closes_the_journal(
     assert not (tmp_path / "good.json").exists()
 
 
+def test_a_box_that_excludes_the_optimum_exits_4_with_one_reason_and_keeps_the_last_good(
+        tmp_path: Path, rig_server: Any) -> None:
+    """calibrate in a velocity box below the rig's best (nominal 2 pi velocity inside it): the
+    stage is not accepted (exit 4), one line says why and what to check, result.json carries the
+    predicted shortfall as numbers, the last good store is untouched and the rig is left at its
+    safe set-points ([acceptance] on_reject = "safe")."""
+    server = rig_server()
+    store = tmp_path / "good.json"
+    store.write_text('{"kept": true}')
+    # 45 kHz and 5.8 mm put the nominal 2 pi velocity at 462.6 m/s, inside 400-470 m/s; the
+    # simulated rig's best lies near 517 m/s (its truth, read below).
+    config = _write_config(tmp_path / "c.toml", server.endpoint,
+                           setpoints={"velocity": {"search_min": 400.0, "search_max": 470.0}},
+                           nominal={"coupling_hz": 45e3},
+                           calibration={"store": str(store)})
+    run = tmp_path / "run"
+    done = _autotune("--log-level", "warning", "calibrate", "--config", str(config),
+                     "--out", str(run))
+    assert done.returncode == 4, done.stderr[-3000:]
+    reasons = [line for line in done.stdout.splitlines()
+               if line.startswith("calibrate: not accepted: ")]
+    assert len(reasons) == 1, done.stdout
+    assert "box" in reasons[0] and "check" in reasons[0]
+    result = json.loads((run / RESULT_NAME).read_text())
+    assert not result["accepted"] and result["reason"] == reasons[0][len("calibrate: "):]
+    bound = result["predicted_shortfall"]
+    assert set(bound) >= {"estimate", "upper", "confidence"} and bound["confidence"] == 0.95
+    assert json.loads(store.read_text()) == {"kept": True}
+    with _client(server.endpoint) as rig:
+        best = rig.truth()["best"]["setpoints"]["velocity"]
+        assert best > 470.0
+        assert rig.status().setpoints == rig.describe().safe_setpoints
+
+
 @pytest.mark.parametrize(("change", "fragment"), [
     ({"measurement": {"shots_per_phase": -5}}, "measurement.shots_per_phase"),
     ({"search": {"strategy": "simplex"}}, "search.strategy"),

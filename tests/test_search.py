@@ -21,8 +21,8 @@ from autotune.search import (
     Recommendation,
     SearchSpace,
     Strategy,
-    make_strategy,
 )
+from autotune.strategies import make_strategy
 
 BRANIN_SPACE = SearchSpace((Dimension("x", -5.0, 10.0), Dimension("y", 0.0, 15.0)))
 # Branin minimum and its three minimisers: Dixon and Szego (1978), "Towards Global

@@ -1,0 +1,233 @@
+"""The inversion along velocity, with the physics as its prior (pure, no I/O).
+
+The least absorption marks the best velocity only when nothing else in the inversion depends
+on velocity (PHYSICS.md section 5b). Several things do: the Ramsey dephasing grows as
+``Delta_R L sigma_v / v^2`` (section 3), so the empty fringe's contrast rises with velocity;
+the Ramsey pulse areas scale as ``1 / v``; the photon decays during the flight to the mode
+(``exp(-d / (v T_c))``, section 4). To first order the inversion along velocity is the product
+of the empty-fringe contrast and the interaction factor that the absorption measures, so near
+the optimum, in ``x = v_ref / v - 1``::
+
+    I(x) = r(x) - P_e(x),      r(x) = r0 + r1 x + r2 x^2
+
+``P_e(x)`` is the absorption's weighted quadratic fit (an excess absorption ``Delta P_e`` costs
+``Delta P_e`` of the inversion, :mod:`autotune.guided`'s notes), and ``r`` is the part of the
+inversion that the absorption does not carry: fitted to the measured ``I + P_e`` of every
+point, with a Gaussian prior on its slope and curvature from the physics, ``(r1, r2) =
+(S / c0) (c1, c2)`` where ``c0 + c1 x + c2 x^2`` is the fit of the empty-fringe contrast that
+every point measures and ``S`` the inversion scale. The prior is widened by a discrepancy
+``tau = (0.1 S, 0.5 S)`` (the terms the empty contrast does not carry: the photon's decay on
+its flight, ``d / (v T_c) ~ 0.04`` per unit of ``x`` on the demo rig, with room), its slope
+fourfold again when the measured inversions' marginal likelihood prefers it: where the inversions
+disagree with the proxy, the data decide. This is Bayesian linear regression on the figure of
+merit itself with the error signals as its prior mean.
+
+The velocity optimum is the vertex of ``I(x)`` (a maximum when its curvature is negative);
+it is bracketed when it lies between the smallest and the largest velocity measured.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_WIDENING"]
+
+#: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
+#: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
+DISCREPANCY = (0.1, 0.5)
+#: The discrepancy may widen by this factor when the inversions' marginal likelihood prefers it
+#: (the slope only: the curvature is the absorption's, measured sharply).
+DISCREPANCY_WIDENING = 4.0
+#: Prior standard deviation of the empty contrast's curvature in ``x``, relative to its level.
+CONTRAST_CURVATURE = 0.5
+#: Smallest empty contrast and inversion scale used as denominators.
+_MIN_SCALE = 0.05
+
+
+@dataclass(frozen=True)
+class InversionCurve:
+    """Posterior of ``I(x) = b0 + b1 x + b2 x^2`` along ``x = v_ref / v - 1``.
+
+    Attributes
+    ----------
+    velocity_ref : float
+        Reference velocity of ``x`` (m/s).
+    coef, cov : ndarray
+        Posterior mean and covariance of ``(b0, b1, b2)`` (inversion units).
+    residual_cov, absorption_cov : ndarray
+        The two independent parts of ``cov``: of the residual ``r`` and of the absorption fit.
+    x_groups : tuple of float
+        The distinct ``x`` measured (sorted).
+    proxy : ndarray
+        The physics' prediction of ``(b1, b2)`` (the contrast's shape minus the absorption's).
+    widened : bool
+        Whether the data's marginal likelihood chose the widened discrepancy (the inversions
+        disagree with the proxy).
+    """
+
+    velocity_ref: float
+    coef: np.ndarray
+    cov: np.ndarray
+    residual_cov: np.ndarray
+    absorption_cov: np.ndarray
+    x_groups: tuple[float, ...]
+    proxy: np.ndarray
+    widened: bool
+
+    def x_of(self, velocity: float) -> float:
+        return self.velocity_ref / velocity - 1.0
+
+    def velocity_of(self, x: float) -> float:
+        return self.velocity_ref / (1.0 + x)
+
+    def value(self, x: float) -> float:
+        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
+
+    def vertex(self) -> float | None:
+        """``x`` of the maximum, or None when the curve is not concave."""
+        if self.coef[2] >= 0.0:
+            return None
+        return float(-self.coef[1] / (2.0 * self.coef[2]))
+
+    def vertex_velocity_stderr(self) -> float:
+        """Standard error of the velocity of the maximum (delta method; inf without one)."""
+        vertex = self.vertex()
+        if vertex is None:
+            return math.inf
+        b1, b2 = float(self.coef[1]), float(self.coef[2])
+        gradient = np.array([0.0, -1.0 / (2.0 * b2), b1 / (2.0 * b2**2)])
+        x_sd = math.sqrt(max(float(gradient @ self.cov @ gradient), 0.0))
+        return self.velocity_of(vertex) * x_sd / (1.0 + vertex)
+
+    def draws(self, normals: np.ndarray, residual_cov: np.ndarray | None = None,
+              absorption_cov: np.ndarray | None = None) -> np.ndarray:
+        """Posterior draws of ``(b0, b1, b2)`` from standard normals of shape ``(n, 3)``."""
+        cov = (self.residual_cov if residual_cov is None else residual_cov) + \
+            (self.absorption_cov if absorption_cov is None else absorption_cov)
+        return self.coef[None, :] + normals @ _cholesky(cov).T
+
+
+def _cholesky(cov: np.ndarray) -> np.ndarray:
+    cov = 0.5 * (cov + cov.T)
+    scale = max(float(np.max(np.abs(np.diag(cov)))), 1e-300)
+    for jitter in (0.0, 1e-12, 1e-9, 1e-6):
+        try:
+            return np.linalg.cholesky(cov + jitter * scale * np.eye(len(cov)))
+        except np.linalg.LinAlgError:
+            continue
+    values, vectors = np.linalg.eigh(cov)
+    return vectors * np.sqrt(np.clip(values, 0.0, None))
+
+
+def _posterior(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
+               prior_mean: np.ndarray, prior_cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """Posterior mean, covariance and log evidence of a linear-Gaussian model (full prior)."""
+    weights = 1.0 / variances
+    prior_precision = np.linalg.inv(prior_cov)
+    precision = design.T @ (design * weights[:, None]) + prior_precision
+    cov = np.linalg.inv(precision)
+    cov = 0.5 * (cov + cov.T)
+    mean = cov @ (design.T @ (values * weights) + prior_precision @ prior_mean)
+    marginal = np.diag(variances) + design @ prior_cov @ design.T
+    residual = values - design @ prior_mean
+    _, logdet = np.linalg.slogdet(marginal)
+    evidence = float(-0.5 * residual @ np.linalg.solve(marginal, residual) - 0.5 * logdet)
+    return mean, cov, evidence
+
+
+def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
+                        inversion_vars: Sequence[float], absorptions: Sequence[float],
+                        absorption_vars: Sequence[float], contrasts: Sequence[float],
+                        contrast_vars: Sequence[float], absorption_coef: np.ndarray,
+                        absorption_cov: np.ndarray, scale: float, velocity_ref: float,
+                        x_groups: Sequence[float]) -> InversionCurve:
+    """The posterior of the inversion along velocity (see the module notes).
+
+    Parameters
+    ----------
+    xs : sequence of float
+        ``v_ref / v - 1`` of every point.
+    inversions, inversion_vars : sequence of float
+        Each point's inversion (corrected for its phase error) and its variance.
+    absorptions, absorption_vars : sequence of float
+        Each point's absorption ``P_e(one photon)`` and its variance.
+    contrasts, contrast_vars : sequence of float
+        Each point's empty-fringe contrast and its variance.
+    absorption_coef, absorption_cov : ndarray
+        The absorption's quadratic fit in ``x`` (mean and covariance).
+    scale : float
+        The inversion scale ``S`` (> 0).
+    velocity_ref : float
+        Reference velocity of ``x`` (m/s).
+    x_groups : sequence of float
+        The distinct ``x`` measured.
+    """
+    x = np.asarray(xs, dtype=float)
+    design = np.stack([np.ones(len(x)), x, x * x], axis=1)
+    scale = max(float(scale), _MIN_SCALE)
+    c = np.asarray(contrasts, dtype=float)
+    c_var = np.maximum(np.asarray(contrast_vars, dtype=float), 1e-8)
+    c_mean = float(np.sum(c / c_var) / np.sum(1.0 / c_var)) if len(c) else 1.0
+    c_level = max(abs(c_mean), _MIN_SCALE)
+    # A loose prior on the contrast's slope, learned from the points; a tight one on its
+    # curvature: over +-10 % of velocity the dephasing law exp(-(k / v^2)^2 / 2) is nearly
+    # linear in x for contrasts above about 0.5 (its curvature term is second order), and a
+    # free curvature fitted to a few noisy contrasts would swamp the absorption's.
+    c_prior = np.diag([1.0, (3.0 * c_level) ** 2, (CONTRAST_CURVATURE * c_level) ** 2])
+    c_coef, c_cov, _ = _posterior(design, c, c_var, np.array([c_mean, 0.0, 0.0]), c_prior)
+    k = scale / max(float(c_coef[0]), _MIN_SCALE)
+    proxy_r = k * c_coef[1:]
+    proxy_r_cov = k * k * c_cov[1:, 1:]
+
+    r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
+    r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
+                       + np.asarray(absorption_vars, dtype=float), 1e-8)
+    best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
+    for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
+        tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
+        prior_cov = np.zeros((3, 3))
+        prior_cov[0, 0] = 1.0
+        prior_cov[1:, 1:] = proxy_r_cov + np.diag(tau**2)
+        prior_mean = np.array([scale + float(np.mean(absorptions)) if len(x) else scale,
+                               *proxy_r])
+        mean, cov, evidence = _posterior(design, r, r_var, prior_mean, prior_cov)
+        if best is None or evidence > best[0] + 1e-9:
+            best = (evidence, mean, cov, widened)
+    assert best is not None
+    _, r_coef, r_cov, widened = best
+    a_coef = np.asarray(absorption_coef, dtype=float)
+    a_cov = np.asarray(absorption_cov, dtype=float)
+    coef = r_coef - a_coef
+    return InversionCurve(velocity_ref=float(velocity_ref), coef=coef, cov=r_cov + a_cov,
+                          residual_cov=r_cov, absorption_cov=a_cov,
+                          x_groups=tuple(sorted(float(g) for g in x_groups)),
+                          proxy=proxy_r - a_coef[1:], widened=widened)
+
+
+@dataclass(frozen=True)
+class _AbsorptionFit:
+    """Weighted quadratic fit of P_e in ``x = v_ref / v - 1``."""
+
+    velocity_ref: float
+    coef: np.ndarray
+    cov: np.ndarray
+    x_groups: tuple[float, ...]
+    from_prior: bool
+
+    def x_of(self, velocity: float) -> float:
+        return self.velocity_ref / velocity - 1.0
+
+    def velocity_of(self, x: float) -> float:
+        return self.velocity_ref / (1.0 + x)
+
+    def value(self, x: float) -> float:
+        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
+
+    def vertex(self) -> float | None:
+        if self.coef[2] <= 0.0:
+            return None
+        return float(-self.coef[1] / (2.0 * self.coef[2]))
