@@ -144,7 +144,7 @@ GUIDED = "phase_lock"
 RETUNE_STRATEGIES: tuple[str, ...] = ("bayesian", GUIDED)
 
 #: Uniform ranges of the main scenario draw: (section, key) -> (low, high), SI units.
-#: The demo values (PHYSICS.md section 6) lie inside every range.
+#: The demo values (docs/physics.md section 6) lie inside every range.
 SCENARIO_RANGES: dict[tuple[str, str], tuple[float, float]] = {
     ("beam", "velocity_bias_m_per_s"): (-15.0, 15.0),
     ("cavity", "coupling_hz"): (46e3, 52e3),
@@ -184,15 +184,15 @@ VELOCITY_PHYSICS_HELD_OUT_SEED = 20270707
 
 #: Ranges of the velocity-physics draw: what makes the inversion depend on velocity (a long
 #: Ramsey arm, a large Ramsey detuning, a wide velocity class: the fringe phase
-#: 2 pi Delta_R L / v is spread by about 2 pi Delta_R L sigma_v / v^2, PHYSICS.md section 3) and
+#: 2 pi Delta_R L / v is spread by about 2 pi Delta_R L sigma_v / v^2, docs/physics.md section 3) and
 #: what degrades the signal, plus the main ranges. Where each range comes from:
 #: zone separation 3-12 cm and Ramsey detuning 5-40 kHz (from memory: Ramsey zones a few cm to
 #: ~10 cm apart, fringes scanned over tens of kHz; at the corner 40 kHz, 12 cm, 6 m/s the
 #: dephasing is 0.7 rad at 500 m/s, an empty contrast of about 0.77); velocity spread 1-6 m/s
-#: (PHYSICS.md section 4: a few m/s, from memory); one-photon probability 0.55-0.95 (from
+#: (docs/physics.md section 4: a few m/s, from memory); one-photon probability 0.55-0.95 (from
 #: memory; a poor source near 0.6 is the issue's case); mode temperature 0.3-1.2 K (n_th a few
-#: hundredths to about 0.2 at 48.6 GHz, PHYSICS.md section 4); atoms per sample 0.08-0.4 (a
-#: small Poisson mean, two-atom samples rare, PHYSICS.md section 4); detection efficiency
+#: hundredths to about 0.2 at 48.6 GHz, docs/physics.md section 4); atoms per sample 0.08-0.4 (a
+#: small Poisson mean, two-atom samples rare, docs/physics.md section 4); detection efficiency
 #: 0.3-0.8 (tens of percent, from memory).
 VELOCITY_PHYSICS_RANGES: dict[tuple[str, str], tuple[float, float]] = {
     **SCENARIO_RANGES,
@@ -248,7 +248,7 @@ FAMILIES: dict[str, ScenarioFamily] = {
         summary="the velocity-physics ranges, another seed (fixed, never tuned on)"),
 }
 
-#: The thermal step before each scenario's retune, Hz (PHYSICS.md section 6).
+#: The thermal step before each scenario's retune, Hz (docs/physics.md section 6).
 THERMAL_STEP_HZ = 15e3
 
 #: Rig time between thermal steps of the long run, s.

@@ -9,7 +9,7 @@ declared law, with its inverse for read-backs:
     ``offset`` in the set-point unit), e.g. the velocity selected by a Doppler-selective laser
     whose acousto-optic frequency is the channel.
 ``stark``
-    The quadratic Stark tuning of the atomic line by an electrode voltage (PHYSICS.md section 4):
+    The quadratic Stark tuning of the atomic line by an electrode voltage (docs/physics.md section 4):
     ``detuning = k (E^2 - E_bias^2)`` with ``E = V / gap``; ``k`` in Hz per (V/m)^2, ``E_bias``
     the field at detuning 0 in V/m, the gap in m, the channel in V, mV or kV. The law is even
     in ``E``, so its inverse needs a **branch**, the sign of the voltage, chosen explicitly;
@@ -126,7 +126,7 @@ class StarkLaw:
     ----------
     coefficient_hz_m2_per_v2 : float
         ``k``, Hz per (V/m)^2, non-zero (about -25 for an e-g pair near n = 50, i.e. -250 kHz
-        per (V/cm)^2; PHYSICS.md section 4).
+        per (V/cm)^2; docs/physics.md section 4).
     bias_field_v_per_m : float
         ``E_bias``, the field at detuning 0, V/m (>= 0).
     electrode_gap_m : float

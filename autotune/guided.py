@@ -2,10 +2,10 @@
 
 The inversion is flat at its top, so a search on it alone spends most of its shots telling
 noise from a fraction of a percent. The same fringe pair measures two sharper signals
-(PHYSICS.md section 5b), and :class:`PhaseLockSearch` steers on them:
+(docs/physics.md section 5b), and :class:`PhaseLockSearch` steers on them:
 
 - **Detuning: a lock on the photon phase shift.** With the one-photon amplitude
-  ``a = |a| e^{i chi}`` and ``chi = pi - eps``, the inversion of ideal fringes (PHYSICS.md
+  ``a = |a| e^{i chi}`` and ``chi = pi - eps``, the inversion of ideal fringes (docs/physics.md
   section 3's ``P_g(phi) = (1 + |a|^2 - 2 |a| cos(chi + phi)) / 4``, maximised over the Ramsey
   phase as in section 5) is ``(|a|^2 - 1) / 4 + |1 + |a| e^{i eps}| / 2``, which for ``|a| = 1``
   is ``cos(eps / 2)``: a phase error ``eps`` costs ``1 - cos(eps / 2) ~ eps^2 / 8`` of the
@@ -13,17 +13,17 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   weighted fit ``phi = alpha + s d + c (d / h)^3 + beta (t - t_ref)`` (``d`` the detuning from
   the fit's centre, ``h`` the bracket step; the cubic term is odd because the crossing's
   amplitude at ``-delta`` is the complex conjugate of that at ``+delta`` for any real mode
-  profile (``sigma_x H(delta) sigma_x = H(-delta)`` in PHYSICS.md section 2's Hamiltonian), and
+  profile (``sigma_x H(delta) sigma_x = H(-delta)`` in docs/physics.md section 2's Hamiltonian), and
   ``beta`` is a drift of the cavity during the calibration, with a Gaussian prior centred on 0
   that is widened fourfold when the data's marginal likelihood prefers it) gives the detuning
   ``delta*`` where the phase
   equals the phase at the peak ``phi*``, with its uncertainty. ``phi*`` has a prior centred
-  on pi (the 2 pi rotation's sign flip, PHYSICS.md section 1) and is refined by the
+  on pi (the 2 pi rotation's sign flip, docs/physics.md section 1) and is refined by the
   inversions through the ``cos(eps / 2)`` law (a grid posterior, the inversion scale solved in
   closed form per velocity at each grid value).
 - **Velocity: the inversion itself, with the physics as its prior.** ``P_e(one photon) = p1
   |a_e(1)|^2 / 2`` vanishes at an exact resonant 2 pi rotation and grows as the pulse area
-  (``oc 1 / v``, PHYSICS.md section 2's pulse-area result) moves away from 2 pi (section 5b).
+  (``oc 1 / v``, docs/physics.md section 2's pulse-area result) moves away from 2 pi (section 5b).
   With ``|a|^2 = 1 - x`` the inversion above falls by about ``x / 2``, i.e. by the excess
   absorption ``Delta P_e`` (with ``p1`` in both). But the least absorption is the best velocity
   only when nothing else in the inversion depends on velocity: at the locked detuning a
@@ -182,7 +182,7 @@ class LockSettings:
         absorption is noisy; a thermal step of 15 kHz costs ~10 %, far above it).
     phase_at_peak_rad : float
         Centre of the prior on the phase shift at the peak, rad (pi: the 2 pi rotation's sign
-        flip, PHYSICS.md section 1).
+        flip, docs/physics.md section 1).
     phase_at_peak_prior_rad : float
         Width (standard deviation) of that prior, rad (0.02 pi: small, for a dispersive phase
         of level i or fringe imperfections; the inversions refine it).

@@ -11,7 +11,7 @@ module, which does no I/O:
   check measures the peak's detuning set-point ``y = d - D`` with variance ``R``. A two-state
   Kalman filter (R. E. Kalman, J. Basic Eng. 82, 35 (1960)) follows that peak and its drift
   rate: the peak ``p`` performs a random walk on top of a rate ``r`` that itself wanders
-  slowly (PHYSICS.md section 4: a slow ramp plus a random walk). After each check the
+  slowly (docs/physics.md section 4: a slow ramp plus a random walk). After each check the
   detuning set-point is moved to the filter's prediction of the peak at the middle of the
   coming interval. The gain is the filter's, bounded by ``max_gain`` (the Joseph form keeps the
   covariance right for any gain), and a correction is bounded by ``max_correction_hz`` and the
@@ -24,7 +24,7 @@ module, which does no I/O:
   the alarm when either exceeds ``h``; a third, one-sided CUSUM watches the inversion for a drop
   of ``inversion_drop`` of its reference (the phase lock is blind to a lost velocity or fringe
   contrast). The reference ``k`` is half the design shift, the shift in detuning that would take
-  the inversion below the floor (``1 - cos(eps / 2)`` of PHYSICS.md section 5b's phase error
+  the inversion below the floor (``1 - cos(eps / 2)`` of docs/physics.md section 5b's phase error
   ``eps``, see :mod:`autotune.guided`); ``h`` is set by the mean time between false alarms the
   user asks for, through Siegmund's approximation of the average run length (:func:`cusum_arl`).
   The checks' variances are the pooled ones of the measurements so far (:class:`NoiseModel`): a
@@ -428,7 +428,7 @@ def known_cubic(prior: LockPrior) -> float:
 def floor_shift_hz(floor: float, slope_rad_per_hz: float) -> float:
     """The detuning error whose phase error alone takes the inversion to ``floor`` of the best (Hz).
 
-    With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (PHYSICS.md section 3, see
+    With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (docs/physics.md section 3, see
     :mod:`autotune.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
     """
     return 2.0 * math.acos(float(floor)) / abs(float(slope_rad_per_hz))
@@ -480,7 +480,7 @@ class SignalModel:
     ``p (1 - p) = 1/4 - (C^2 / 4) cos^2(phi + chi)`` (at ``a = 1/2``) weighted by the fit's
     projections across and along the fringe's direction, has
     ``Var chi = (2 - C^2 / 2) / (N C^2)`` and ``Var C = (2 - 3 C^2 / 2) / N`` (binomial least
-    squares and the delta method; our derivation from PHYSICS.md section 5, checked against
+    squares and the delta method; our derivation from docs/physics.md section 5, checked against
     seeded binomial draws in the tests). The photon phase shift is the difference of two fringes, one
     per field, each measured on half of a check's shots. Noise beyond the counts (phase
     noise of the rig, a fringe that is not quite sinusoidal) shows as a reduced chi-square

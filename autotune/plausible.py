@@ -179,16 +179,16 @@ VELOCITY_M_PER_S = Plausible(
 VELOCITY_STEP_M_PER_S = Plausible(
     0.0, 3000.0, "m/s", "a step within the plausible velocities", low_open=True)
 #: Atom-cavity detuning (set-point and offsets): the lock works within tens of kHz, Stark
-#: tuning of a Rydberg line reaches MHz (a few V/cm at -250 kHz per (V/cm)^2, PHYSICS.md
+#: tuning of a Rydberg line reaches MHz (a few V/cm at -250 kHz per (V/cm)^2, docs/physics.md
 #: section 4); 100 MHz is beyond any tuning a rig of this kind uses (from memory).
 DETUNING_HZ = Plausible(
     -1e8, 1e8, "Hz", "Stark tuning of a Rydberg line spans kHz to MHz, never 100 MHz")
 #: Largest detuning change (or a detuning width, a correction) of one move.
 DETUNING_STEP_HZ = Plausible(
     0.0, 1e8, "Hz", "a detuning within +-100 MHz", low_open=True)
-#: A thermal step of the cavity frequency: kHz to tens of kHz (the demo's 15 kHz, PHYSICS.md
+#: A thermal step of the cavity frequency: kHz to tens of kHz (the demo's 15 kHz, docs/physics.md
 #: section 6); a step under 100 Hz is below what one check of the lock resolves (the demo's
-#: phase noise of 0.045 pi per point is about 1 kHz, PHYSICS.md section 5b), so it is a kHz
+#: phase noise of 0.045 pi per point is about 1 kHz, docs/physics.md section 5b), so it is a kHz
 #: value typed in Hz; 0 is no step.
 THERMAL_STEP_HZ = Plausible(
     100.0, 1e7, "Hz", "a thermal step of the cavity is kHz to tens of kHz", magnitude=True,
@@ -214,12 +214,12 @@ VELOCITY_SPREAD_M_PER_S = Plausible(
 #: Flight distance from the field preparation to the mode: tens of cm in a cryostat.
 FLIGHT_DISTANCE_M = Plausible(0.0, 10.0, "m", "an atomic beam line inside a cryostat is tens of cm")
 #: Ramsey detuning from the g-i line: kHz to hundreds of kHz (the demo's 10 kHz); above 10 MHz
-#: the fringe of a beam with a few m/s spread is gone (PHYSICS.md section 3).
+#: the fringe of a beam with a few m/s spread is gone (docs/physics.md section 3).
 RAMSEY_DETUNING_HZ = Plausible(
     -1e7, 1e7, "Hz", "a Ramsey detuning is kHz to hundreds of kHz")
 #: Distance between the Ramsey zones: cm (the demo's 6 cm).
 ZONE_SEPARATION_M = Plausible(0.0, 5.0, "m", "Ramsey zones are cm apart")
-#: Quadratic Stark coefficient of an e-g pair: -25 Hz per (V/m)^2 near n = 50 (PHYSICS.md
+#: Quadratic Stark coefficient of an e-g pair: -25 Hz per (V/m)^2 near n = 50 (docs/physics.md
 #: section 4), scaling about as n^6 (hydrogenic second-order Stark shift; T. F. Gallagher,
 #: Rydberg Atoms, 1994): about 0.3 at n = 25 and 400 at n = 100.
 STARK_COEFFICIENT_HZ_M2_PER_V2 = Plausible(

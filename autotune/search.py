@@ -261,7 +261,7 @@ class PointResult:
     Attributes
     ----------
     inversion, inversion_stderr : float
-        Fringe inversion (PHYSICS.md section 5) and its standard error.
+        Fringe inversion (docs/physics.md section 5) and its standard error.
     phase_shift, phase_shift_stderr : float
         Photon phase shift, the angle between the one-photon and the empty fringe (rad, in
         [0, 2 pi)), and its standard error (rad).

@@ -1,7 +1,7 @@
 """The inversion along velocity, with the physics as its prior (pure, no I/O).
 
 The least absorption marks the best velocity only when nothing else in the inversion depends
-on velocity (PHYSICS.md section 5b). Several things do: the Ramsey dephasing grows as
+on velocity (docs/physics.md section 5b). Several things do: the Ramsey dephasing grows as
 ``Delta_R L sigma_v / v^2`` (section 3), so the empty fringe's contrast rises with velocity;
 the Ramsey pulse areas scale as ``1 / v``; the photon decays during the flight to the mode
 (``exp(-d / (v T_c))``, section 4). To first order the inversion along velocity is the product

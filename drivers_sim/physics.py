@@ -1,9 +1,9 @@
 """Atom-cavity-Ramsey model of the simulated rig: pure, vectorised, numpy/scipy only.
 
-The model follows /work/shared/PHYSICS.md:
+The model follows docs/physics.md:
 
 - :class:`ModeProfile` is the shape ``f`` of the coupling envelope ``Omega_0 f(v t / w)``: the
-  Gaussian mode of PHYSICS.md section 2 (the default), a super-Gaussian ``exp(-|x|^p)`` or an
+  Gaussian mode of docs/physics.md section 2 (the default), a super-Gaussian ``exp(-|x|^p)`` or an
   asymmetric mode (two half-Gaussians of different waists);
 - :func:`crossing_amplitudes` integrates the 2x2 problem {|g,n>, |e,n-1>} of one crossing of the
   mode for whole arrays of velocities, detunings and photon numbers at once;
@@ -12,7 +12,7 @@ The model follows /work/shared/PHYSICS.md:
   nodes) and a photon-number distribution and returns the first-harmonic coefficients
   ``(a, b, c)`` of every outcome, ``P_x(phi) = a + b cos(phi) + c sin(phi)``;
 - :func:`detected_coefficients` applies a confusion matrix; :func:`fringe_figures` gives the
-  inversion, phase shift, contrasts and absorption defined in PHYSICS.md section 5;
+  inversion, phase shift, contrasts and absorption defined in docs/physics.md section 5;
 - :func:`thermal_photon_number`, :func:`thermal_distribution` and
   :func:`one_photon_distribution` describe the fields; :func:`stark_field_for_detuning`,
   :func:`stark_detuning` the quadratic Stark tuning.
@@ -116,7 +116,7 @@ class ModeProfile:
     Attributes
     ----------
     kind : {"gaussian", "super_gaussian", "asymmetric"}
-        ``"gaussian"``: ``f = exp(-x^2)`` (PHYSICS.md section 2). ``"super_gaussian"``:
+        ``"gaussian"``: ``f = exp(-x^2)`` (docs/physics.md section 2). ``"super_gaussian"``:
         ``f = exp(-|x|^order)``, a flatter top and steeper sides for ``order > 2``.
         ``"asymmetric"``: ``f = exp(-x^2 / (1 - asymmetry)^2)`` before the centre (``x < 0``) and
         ``exp(-x^2 / (1 + asymmetry)^2)`` after it: waists ``w (1 - a)`` and ``w (1 + a)``, so
@@ -190,7 +190,7 @@ class ModeProfile:
         return {"kind": self.kind}
 
 
-#: The Gaussian mode of PHYSICS.md section 2.
+#: The Gaussian mode of docs/physics.md section 2.
 GAUSSIAN_MODE = ModeProfile()
 
 

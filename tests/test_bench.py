@@ -136,7 +136,7 @@ def test_study_covers_every_family_and_strategy(study):
 
 def test_whole_stage_shots_are_what_the_stage_measured(study):
     """A stage's shots are its points plus the detuning scan plus the verification, in whole fringes."""
-    # Source: the measurement of PHYSICS.md section 5 (2 fields x phases x shots per phase).
+    # Source: the measurement of docs/physics.md section 5 (2 fields x phases x shots per phase).
     m = study["strategies"]["grid"]
     per_point = 2 * m["ramsey_phases"] * m["shots_per_phase"]
     verification = 2 * m["ramsey_phases"] * m["verification_shots_per_phase"]
@@ -187,7 +187,7 @@ def test_shots_to_threshold_are_whole_points(study):
 
 
 def test_rig_time_covers_the_acquisitions(study):
-    """Rig time to the threshold is at least shots / repetition rate (PHYSICS.md section 4)."""
+    """Rig time to the threshold is at least shots / repetition rate (docs/physics.md section 4)."""
     rate = study["overhead"]["repetition_rate_hz"]
     for run in study["runs"]:
         c = run["calibrate"]
@@ -257,7 +257,7 @@ def test_guided_targets_follow_the_issue_thresholds():
 
 def test_unknown_strategy_is_refused_before_anything_runs(capsys):
     """A strategy the loop does not know is refused by the command, naming it, exit code 2."""
-    # Source: STYLE.md habit 5 (check input once; say what was expected and what was received).
+    # Source: DEVELOPERS.md habit 5 (check input once; say what was expected and what was received).
     with pytest.raises(SystemExit) as caught:
         bench.main(["--tiny", "--serial", "--strategies", "bayesian,simplex"])
     assert caught.value.code == 2
@@ -275,7 +275,7 @@ def test_serial_and_scheduler_options_exclude_each_other(capsys):
 
 def test_importing_autotune_pulls_in_neither_dask_nor_the_simulator():
     """`import autotune` and `import autotune.bench` load neither dask nor drivers_sim."""
-    # Source: STYLE.md (autotune never imports drivers_sim except where a study starts it) and
+    # Source: DEVELOPERS.md (autotune never imports drivers_sim except where a study starts it) and
     # the issue (dask imported lazily inside the study); checked in a fresh interpreter.
     code = ("import sys, autotune, autotune.bench; "
             "print(sorted(m for m in sys.modules if m.split('.')[0] in "
@@ -354,14 +354,14 @@ def test_stored_results_still_print(name, capsys):
 
 def test_job_in_a_subprocess_reports_its_failure():
     """A job run in a fresh interpreter (the night's, on a cluster) that fails raises with its error."""
-    # Source: STYLE.md habit 6 (clear errors); the child's own message is passed on.
+    # Source: DEVELOPERS.md habit 6 (clear errors); the child's own message is passed on.
     with pytest.raises(RuntimeError, match="job kind: expected one of"):
         bench._run_job_in_subprocess(json.dumps({"kind": "nap"}), timeout_s=120.0)
 
 
 def test_unreachable_scheduler_fails_within_its_bound(monkeypatch):
     """A scheduler address where nothing listens is an OSError once the connection bound passes."""
-    # Source: STYLE.md habit 7 (every wait has a bound); port 1 on loopback has no listener
+    # Source: DEVELOPERS.md habit 7 (every wait has a bound); port 1 on loopback has no listener
     # (tcpmux, unused on test machines: common practice).
     monkeypatch.setattr(bench, "CLUSTER_START_TIMEOUT_S", 2.0)
     plan = dataclasses.replace(TINY, strategies=("grid",), families=("main",), night_steps=0,

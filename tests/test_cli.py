@@ -87,7 +87,7 @@ def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(tmp_path: Path) -> N
         assert set(truth) == {"inversion_at_chosen", "best_inversion", "best_setpoints"}
         # Reference: the simulated rig's noiseless truth at the end of the stage.
         assert truth["inversion_at_chosen"] >= 0.98 * truth["best_inversion"], name
-        # The global optimum, not the detuned ridge of slower atoms (PHYSICS.md s.2): the
+        # The global optimum, not the detuned ridge of slower atoms (docs/physics.md s.2): the
         # chosen detuning sits within the few-kHz tolerance of the best one.
         assert abs(result["setpoints"]["detuning"] - truth["best_setpoints"]["detuning"]) < 6e3
         assert result["accepted"]

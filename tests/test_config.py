@@ -26,7 +26,7 @@ def test_shipped_configs_load() -> None:
 
 
 def test_two_pi_velocity_of_the_demo() -> None:
-    """v_2pi = Omega_0 w / (2 sqrt(pi)) gives 503.7 m/s for 49 kHz and 5.8 mm (PHYSICS.md s.2, s.6)."""
+    """v_2pi = Omega_0 w / (2 sqrt(pi)) gives 503.7 m/s for 49 kHz and 5.8 mm (docs/physics.md s.2, s.6)."""
     assert nominal_two_pi_velocity(49e3, 5.8e-3) == pytest.approx(503.7, abs=0.05)
     # Independent form: pulse area Omega_0 sqrt(pi) w / v equals 2 pi at that velocity.
     v = nominal_two_pi_velocity(49e3, 5.8e-3)

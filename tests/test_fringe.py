@@ -51,7 +51,7 @@ def _true_inversion(abc0, abc1) -> float:
 
 
 def test_worked_values_seven_of_fifty():
-    """7 of 50 at 95 % gives the published worked intervals (PHYSICS.md section 5, scipy.stats)."""
+    """7 of 50 at 95 % gives the published worked intervals (docs/physics.md section 5, scipy.stats)."""
     low, high = proportion_interval(7, 50, 0.95, "clopper_pearson")
     assert (float(low), float(high)) == pytest.approx((0.058192, 0.267396), abs=5e-7)
     low, high = proportion_interval(7, 50, 0.95, "wilson")

@@ -2,10 +2,10 @@
 
 The synthetic rig below is built from the laws the strategy's models rest on, each from outside
 the project: the inversion ``cos(eps / 2)`` of an ideal fringe pair with a phase error ``eps``
-(from the Ramsey formula of PHYSICS.md section 3, checked numerically here), a phase shift that
+(from the Ramsey formula of docs/physics.md section 3, checked numerically here), a phase shift that
 saturates at +-pi far from the peak as a crossing's does, and an absorption quadratic in the
-pulse area, i.e. in 1 / v (the pulse-area result of PHYSICS.md section 2). Its noise levels are
-those of the simulated demo rig at 1,500 shots per phase (PHYSICS.md section 5b, measured).
+pulse area, i.e. in 1 / v (the pulse-area result of docs/physics.md section 2). Its noise levels are
+those of the simulated demo rig at 1,500 shots per phase (docs/physics.md section 5b, measured).
 Statistical checks use scipy.stats.
 """
 
@@ -25,7 +25,7 @@ from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
 from autotune.search import Dimension, PointResult, SearchSpace, Strategy
 
 PI = math.pi
-V0 = 503.7  # nominal 2 pi velocity of the demo's nominal coupling and waist, m/s (PHYSICS.md section 6)
+V0 = 503.7  # nominal 2 pi velocity of the demo's nominal coupling and waist, m/s (docs/physics.md section 6)
 BOX = SearchSpace((Dimension("velocity", 460.0, 560.0), Dimension("detuning", -60e3, 60e3)))
 START = {"velocity": V0, "detuning": 0.0}
 SETTINGS = LockSettings(bracket_step_hz=49e3 / 5)
@@ -115,7 +115,7 @@ def _run(lock: PhaseLockSearch, rig: Synthetic, max_points: int = 60) -> tuple[b
 @pytest.mark.parametrize("error", [0.0, 0.1 * PI, 0.3 * PI, -0.5 * PI])
 def test_detuning_term_is_the_ramsey_inversion_loss(error):
     """The verdict's detuning term equals 1 - I(eps)/I(0) of the Ramsey formula P_g = |a - e^{-i phi}|^2 / 4."""
-    # PHYSICS.md section 3: one photon at a 2 pi rotation with phase error eps has a = -e^{-i eps};
+    # docs/physics.md section 3: one photon at a 2 pi rotation with phase error eps has a = -e^{-i eps};
     # the inversion is the largest one-photon minus empty difference over the Ramsey phase.
     phi = np.linspace(0.0, 2 * PI, 200001)
 
@@ -187,7 +187,7 @@ def test_lock_falls_back_where_the_one_photon_contrast_is_low():
 
 
 def test_phase_at_peak_is_refined_by_the_inversions():
-    """Inversions on the cos(eps/2) law (PHYSICS.md section 3) pull the phase at the peak from pi to its true value."""
+    """Inversions on the cos(eps/2) law (docs/physics.md section 3) pull the phase at the peak from pi to its true value."""
     truth = PI + 0.04 * PI  # two prior widths from the prior's centre
     lock = PhaseLockSearch(BOX, seed=0, start=START, settings=SETTINGS)
     rng = np.random.default_rng(5)
@@ -507,7 +507,7 @@ def _measure(rig, point: Mapping[str, float], shots_per_phase: int, seed: int, p
 
 def _calibrate(rig, seed: int, max_points: int = 20) -> tuple[dict, int, PhaseLockSearch]:
     """The calibration loop of the module notes: search, verify, at most two corrections."""
-    nominal = 2 * PI * 49e3 * 5.8e-3 / (2 * math.sqrt(PI))  # PHYSICS.md section 2: Omega_0 w / (2 sqrt(pi))
+    nominal = 2 * PI * 49e3 * 5.8e-3 / (2 * math.sqrt(PI))  # docs/physics.md section 2: Omega_0 w / (2 sqrt(pi))
     lock = PhaseLockSearch(BOX, seed=seed, start={"velocity": nominal, "detuning": 0.0}, settings=SETTINGS)
     shots = 0
     for k in range(max_points):

@@ -27,7 +27,7 @@ from autotune.hold import (
 )
 from autotune.search import PointResult
 
-SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (PHYSICS.md section 5b)
+SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
 
 
 def _settings(**changes) -> HoldSettings:
@@ -233,7 +233,7 @@ def test_the_lock_follows_a_ramp():
     floor's shift of the peak (rms), the rate is learned, and nothing alarms.
 
     Reference: the floor's shift is the detuning error whose phase error alone costs
-    1 - cos(eps / 2) = 3 % of the inversion (PHYSICS.md section 3's ideal fringes)."""
+    1 - cos(eps / 2) = 3 % of the inversion (docs/physics.md section 3's ideal fringes)."""
     settings = _settings(false_alarm_interval_s=1e9)
     rows = _simulate_hold(2.0, 120, settings=settings)
     assert len(rows) == 120 and all(r["a"].action != "alarm" for r in rows)

@@ -87,7 +87,7 @@ def test_a_coupling_typed_in_khz_is_refused_before_anything_moves(tmp_path, rig)
 
 def test_a_nominal_two_pi_velocity_outside_the_box_is_refused(tmp_path, rig):
     """A plausible coupling and waist whose 2π velocity (Ω0 w / (2√π) = 411.2 m/s for 40 kHz
-    and 5.8 mm, PHYSICS.md section 2) lies below the box [460, 560]: exit 2 naming both keys and
+    and 5.8 mm, docs/physics.md section 2) lies below the box [460, 560]: exit 2 naming both keys and
     the velocity, no run folder, rig untouched."""
     config = _config(tmp_path, rig.endpoint, nominal={"coupling_hz": 40e3})
     before = _state(rig.endpoint)

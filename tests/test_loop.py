@@ -70,7 +70,7 @@ def _session(rig: LocalRig, tmp_path: Path, config: RunConfig | None = None,
 def test_interval_covers_the_truth_at_its_stated_rate(tmp_path: Path) -> None:
     """Over 100 seeded measurements at three settings the 95% interval covers the true inversion >= 90%.
 
-    Reference: the simulated rig's noiseless truth (PHYSICS.md s.5: "a correct interval must
+    Reference: the simulated rig's noiseless truth (docs/physics.md s.5: "a correct interval must
     cover the truth at its stated rate on the simulated rig").
     """
     settings_list = [{"velocity": 517.0, "detuning": -3e3},   # near the optimum

@@ -21,7 +21,7 @@ from drivers_sim.config import SimConfigError, load_sim_config, sim_config_from_
 CONFIGS = Path(__file__).resolve().parent.parent / "configs"
 
 # (range, a value the trade uses, the same value in the unit a person slips into, the hint).
-# The in-range values are the demo scenario's (PHYSICS.md section 6) unless said otherwise.
+# The in-range values are the demo scenario's (docs/physics.md section 6) unless said otherwise.
 SLIPS = [
     # Vacuum Rabi frequency of circular Rydberg atoms in a microwave cavity: tens of kHz
     # (from memory); 49 kHz typed as 49.
@@ -44,7 +44,7 @@ SLIPS = [
     # Flight distance and Ramsey arm: tens of cm and cm.
     (plausible.FLIGHT_DISTANCE_M, 0.5, 500, "did you mean 500 mm = 0.5 or 500 cm = 5?"),
     (plausible.ZONE_SEPARATION_M, 0.06, 60, "did you mean 60 mm = 0.06 or 60 cm = 0.6?"),
-    # Stark coefficient: -250 kHz per (V/cm)^2 = -25 Hz per (V/m)^2 (PHYSICS.md section 4),
+    # Stark coefficient: -250 kHz per (V/cm)^2 = -25 Hz per (V/m)^2 (docs/physics.md section 4),
     # typed per (V/cm)^2.
     (plausible.STARK_COEFFICIENT_HZ_M2_PER_V2, -25.0, -250e3,
      "did you mean -250000 Hz per (V/cm)^2 = -25?"),
@@ -105,7 +105,7 @@ def _problems(data: dict) -> dict[str, ConfigError]:
 
 def test_the_nominal_coupling_in_khz_names_both_keys_and_the_velocity():
     """coupling_hz = 49 is refused with its hint, and its 2π velocity 0.5037 m/s (Ω0 w/(2√π),
-    PHYSICS.md section 2) outside the box names both nominal keys and the unit that fixes it."""
+    docs/physics.md section 2) outside the box names both nominal keys and the unit that fixes it."""
     data = _demo()
     data["nominal"]["coupling_hz"] = 49
     problems = _problems(data)
@@ -127,7 +127,7 @@ def test_a_waist_in_mm_names_the_unit_that_puts_the_velocity_in_the_box():
 
 
 @pytest.mark.parametrize(("coupling_hz", "waist_m", "inside"), [
-    (49e3, 5.8e-3, True),     # 503.7 m/s, the demo (PHYSICS.md section 6)
+    (49e3, 5.8e-3, True),     # 503.7 m/s, the demo (docs/physics.md section 6)
     (42e3, 5.8e-3, True),     # 431.8 m/s, just inside [430, 590]
     (41e3, 5.8e-3, False),    # 421.5 m/s, below
     (49e3, 6.9e-3, False),    # 599.2 m/s, above

@@ -324,7 +324,7 @@ def test_display_off_and_plain_rate(tmp_path: Path) -> None:
 
 def test_the_library_stays_free_of_display_code() -> None:
     """Only the commands (cli.py, bench.py) and display.py know tqdm or the display; the loop,
-    the runner and the progress data never do (STYLE.md: a functional core, a thin shell)."""
+    the runner and the progress data never do (DEVELOPERS.md: a functional core, a thin shell)."""
     import ast
 
     users = set()

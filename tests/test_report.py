@@ -6,7 +6,7 @@ Constructed run folders are written with the real journal writer and real fringe
 binomial counts, to make the flags fire (and stay quiet) on purpose.
 
 Outside references: scipy.stats (Wilson interval, chi-square tail), the worked Wilson values of
-PHYSICS.md section 5 (scipy.stats, 7 of 50 at 95 %), chi-square tables, the PNG signature
+docs/physics.md section 5 (scipy.stats, 7 of 50 at 95 %), chi-square tables, the PNG signature
 (PNG specification, ISO/IEC 15948), and the run's own journal and result files.
 """
 
@@ -277,14 +277,14 @@ def test_fringe_figure_shows_wilson_bars_and_the_journal_fit(real: dict[str, Pat
     (empty,) = _by_gid(fig, "fit-empty")
     (one,) = _by_gid(fig, "fit-one_photon")
     journaled = [r for r in _journal_estimates(real["dry"] / "calibrate") if r["label"] == "verify"]
-    # The largest one-photon minus empty difference over phase is the inversion (PHYSICS.md s.5),
+    # The largest one-photon minus empty difference over phase is the inversion (docs/physics.md s.5),
     # here the value the loop journaled from the same counts.
     difference = np.max(np.asarray(one.get_ydata()) - np.asarray(empty.get_ydata()))
     assert difference == pytest.approx(journaled[-1]["estimate"]["inversion"], abs=2e-3)
 
 
 def test_wilson_bars_match_the_worked_values(tmp_path: Path) -> None:
-    """7 of 50 at 95 %: the bar spans Wilson [0.069508, 0.261862] (PHYSICS.md s.5, scipy.stats)."""
+    """7 of 50 at 95 %: the bar spans Wilson [0.069508, 0.261862] (docs/physics.md s.5, scipy.stats)."""
     rng = np.random.default_rng(1)
     spec = _point(rng, "verify", 0, 500.0, 0.0)
     spec["counts"]["empty"][0] = (0, 7, 43)

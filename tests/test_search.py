@@ -36,7 +36,7 @@ PEAK = (498.0, 6e3)
 
 
 def _two_peak(velocity: float, detuning: float) -> float:
-    """A global 2 pi peak (0.83) and a lower curved ridge of slower atoms (0.63), PHYSICS.md section 2."""
+    """A global 2 pi peak (0.83) and a lower curved ridge of slower atoms (0.63), docs/physics.md section 2."""
     peak = 0.75 * math.exp(-0.5 * (((velocity - PEAK[0]) / 12.0) ** 2 + ((detuning - PEAK[1]) / 5e3) ** 2))
     ridge_detuning = -12e3 - 22e3 * ((470.0 - velocity) / 40.0) ** 2
     ridge = 0.55 * math.exp(-0.5 * ((detuning - ridge_detuning) / 4e3) ** 2) * math.exp(-0.5 * ((velocity - 445.0) / 22.0) ** 2)

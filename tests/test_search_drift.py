@@ -18,7 +18,7 @@ from autotune.search import (
 
 SPACE = SearchSpace((Dimension("velocity", 420.0, 600.0), Dimension("detuning", -40e3, 40e3)))
 NOMINAL = {"velocity": 504.0, "detuning": 0.0}
-# Demo drift, PHYSICS.md section 6: 4 kHz per hour, in Hz/s.
+# Demo drift, docs/physics.md section 6: 4 kHz per hour, in Hz/s.
 RATE_HZ_PER_S = 4e3 / 3600.0
 # A calibration of 30 points over 90 minutes of rig time (the measured run: ~40 points, ~90 min).
 POINTS, STEP_S = 30, 180.0

@@ -8,7 +8,7 @@ after the retune that follows it and resumed with the command its stop message p
 
 Outside reference: the simulated rig's noiseless truth (``truth`` op), evaluated after the night
 at the set-points the journal says were in force on a one-minute grid of rig time, each moved
-to the true detuning it had then (PHYSICS.md section 4: the true detuning is the Stark-law
+to the true detuning it had then (docs/physics.md section 4: the true detuning is the Stark-law
 detuning of the set-point plus the cavity offset).
 """
 

@@ -1,6 +1,6 @@
 """Tests of autotune.velocity_model: the inversion along velocity with the physics as its prior.
 
-The reference rig here is the product law of PHYSICS.md section 5b: an empty-fringe contrast
+The reference rig here is the product law of docs/physics.md section 5b: an empty-fringe contrast
 that rises with velocity as the Ramsey dephasing falls, exp(-(2 pi Delta_R L sigma_v / v^2)^2 / 2)
 (the average of a fringe over a Gaussian velocity class, N. F. Ramsey, Phys. Rev. 78, 695
 (1950) for the free-evolution phase Delta_R L / v), times an interaction factor that loses the
@@ -17,7 +17,7 @@ from scipy import optimize
 
 from autotune.velocity_model import fit_inversion_curve
 
-V_REF = 503.7      # m/s, the demo's nominal 2 pi velocity (PHYSICS.md section 6)
+V_REF = 503.7      # m/s, the demo's nominal 2 pi velocity (docs/physics.md section 6)
 V_ABS = 505.0      # m/s, velocity of least absorption
 CURVATURE = 4.0    # P_e = P_min + k (V_ABS / v - 1)^2
 P_MIN = 0.015

@@ -19,7 +19,7 @@ from autotune.channels import (
 )
 from autotune.errors import ConfigError, OutOfRange
 
-# The demo scenario's Stark constants (PHYSICS.md sections 4 and 6, configs/sim-rig.toml):
+# The demo scenario's Stark constants (docs/physics.md sections 4 and 6, configs/sim-rig.toml):
 # k = -250 kHz per (V/cm)^2 = -25 Hz per (V/m)^2, bias field 1.5 V/cm = 150 V/m, gap 2 cm.
 K = -25.0
 BIAS = 150.0
@@ -28,12 +28,12 @@ STARK = StarkLaw(K, BIAS, GAP, "positive")
 
 
 def _detuning(volts: float) -> float:
-    """The Stark law written out: detuning = k ((V / gap)^2 - E_bias^2) (PHYSICS.md section 4)."""
+    """The Stark law written out: detuning = k ((V / gap)^2 - E_bias^2) (docs/physics.md section 4)."""
     return K * ((volts / GAP) ** 2 - BIAS**2)
 
 
 def test_stark_coefficient_unit_conversion():
-    """-250 kHz per (V/cm)^2 is -25 Hz per (V/m)^2, since 1 V/cm = 100 V/m (PHYSICS.md section 4)."""
+    """-250 kHz per (V/cm)^2 is -25 Hz per (V/m)^2, since 1 V/cm = 100 V/m (docs/physics.md section 4)."""
     # No bias, 1 m gap: 100 V gives 100 V/m = 1 V/cm and so -250 kHz.
     assert StarkLaw(K, 0.0, 1.0).to_setpoint(100.0) == pytest.approx(-250e3)
 
@@ -227,7 +227,7 @@ def test_map_without_any_limit_is_refused():
 
 
 def test_map_without_any_step_is_refused():
-    """A channel with no step limit anywhere is refused (every change must be bounded, PHYSICS.md section 7)."""
+    """A channel with no step limit anywhere is refused (every change must be bounded, docs/physics.md section 7)."""
     driver = {"AOM": ChannelInfo("MHz", 90.0, 140.0, safe=100.0)}
     table = {"velocity": {"unit": "m/s", "channel": "AOM", "channel_unit": "MHz", "law": "linear", "scale": 4.49}}
     with pytest.raises(ConfigError, match="largest step"):

@@ -1,4 +1,4 @@
-"""The direction of the arrows (STYLE.md, Shape): drivers_sim knows only the protocol and the
+"""The direction of the arrows (DEVELOPERS.md, Habits): drivers_sim knows only the protocol and the
 driver interface; autotune imports drivers_sim only where the simulated rig is started."""
 
 from __future__ import annotations

@@ -26,7 +26,7 @@ from autotune.errors import RigRefused
 
 from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML, Keys
 
-K, BIAS, GAP = -25.0, 150.0, 0.02  # Stark constants of configs/sim-driver.toml (PHYSICS.md section 4)
+K, BIAS, GAP = -25.0, 150.0, 0.02  # Stark constants of configs/sim-driver.toml (docs/physics.md section 4)
 
 
 def _client(endpoint: str, **options: object) -> BusClient:

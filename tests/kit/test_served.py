@@ -19,7 +19,7 @@ from drivers_sim.driver import SimulatedDriver
 
 from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML
 
-K, BIAS, GAP = -25.0, 150.0, 0.02  # the Stark constants of both DRIVER.toml files (PHYSICS.md section 4)
+K, BIAS, GAP = -25.0, 150.0, 0.02  # the Stark constants of both DRIVER.toml files (docs/physics.md section 4)
 
 
 def _volts(detuning_hz: float) -> float:
@@ -67,7 +67,7 @@ def _ask(server: RigServer, op: str, args: dict, msg_id: str | None = None) -> d
 
 
 def test_detuning_reaches_the_electrode_as_the_closed_form_voltage(server, recorder):
-    """apply detuning -12 kHz sends V = gap sqrt(E_bias^2 + d/k) to STARK:HV1 (PHYSICS.md section 4)."""
+    """apply detuning -12 kHz sends V = gap sqrt(E_bias^2 + d/k) to STARK:HV1 (docs/physics.md section 4)."""
     reply = _ask(server, "apply", {"setpoints": {"detuning": -12e3}})
     assert reply["ok"], reply
     assert recorder.applied == [{ELECTRODE: pytest.approx(_volts(-12e3), rel=1e-12)}]

@@ -12,7 +12,7 @@ REPO = Path(__file__).resolve().parents[2]
 DEMO_CONFIG = REPO / "configs" / "sim-rig.toml"
 SEED = 20240611
 
-# Demo values of PHYSICS.md section 6 (design values of the invented "Bench 2").
+# Demo values of docs/physics.md section 6 (design values of the invented "Bench 2").
 COUPLING_HZ = 49e3
 WAIST_M = 5.8e-3
 

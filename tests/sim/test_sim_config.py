@@ -14,7 +14,7 @@ from .reference import DEMO_CONFIG
 
 def test_shipped_scenario_matches_demo_values(demo_config):
     """configs/sim-rig.toml carries the Bench 2 design values."""
-    # Source: PHYSICS.md section 6 (invented demo scenario) and the task brief's limits.
+    # Source: docs/physics.md section 6 (invented demo scenario) and the task brief's limits.
     c = demo_config
     assert c.rig.name == "bench-2-sim"
     assert (c.cavity.frequency_hz, c.cavity.coupling_hz, c.cavity.waist_m) == (48.6e9, 49e3, 5.8e-3)
@@ -25,7 +25,7 @@ def test_shipped_scenario_matches_demo_values(demo_config):
     assert (c.rig.atoms_per_sample, c.rig.repetition_rate_hz) == (0.2, 150.0)
     assert c.drift.ramp_hz_per_s * 3600.0 == pytest.approx(4e3)
     assert c.drift.thermal_step_hz == 15e3
-    # -250 kHz per (V/cm)^2 (PHYSICS.md section 4); 1 (V/cm)^2 = 1e4 (V/m)^2.
+    # -250 kHz per (V/cm)^2 (docs/physics.md section 4); 1 (V/cm)^2 = 1e4 (V/m)^2.
     assert c.stark.coefficient_hz_m2_per_v2 * 100.0**2 == pytest.approx(-250e3)
     assert c.limits["velocity"].max_step == 40.0 and c.limits["detuning"].max_step == 20e3
     assert c.faults == {}
@@ -125,7 +125,7 @@ def _set(data, dotted, value):
 @pytest.mark.parametrize("dotted, value", BAD_VALUES)
 def test_bad_value_is_refused_naming_file_key_expected_got(demo_config, dotted, value):
     """Each bad value is a SimConfigError naming the file, a dotted key, what was expected and got."""
-    # Source: STYLE.md habit 5 and README, Configuration (check input once; name key, expected, got).
+    # Source: DEVELOPERS.md habit 5 and README, Configuration (check input once; name key, expected, got).
     data = _data(demo_config)
     _set(data, dotted, value)
     with pytest.raises(SimConfigError) as caught:
@@ -209,7 +209,7 @@ def test_file_errors_name_the_file(tmp_path):
 ])
 def test_bad_profile_parameter_is_refused(demo_config, profile, key, value):
     """A profile's parameter outside its checked range, or missing, names the key, expected, got."""
-    # Source: STYLE.md habit 5 (check input once; name key, expected, got); the ranges are those
+    # Source: DEVELOPERS.md habit 5 (check input once; name key, expected, got); the ranges are those
     # over which tests/sim/test_sim_physics.py checks the crossing against qutip.
     data = _data(demo_config)
     data["cavity"]["mode_profile"] = profile
@@ -241,7 +241,7 @@ def test_profiles_round_trip_through_dict(demo_config, cavity):
 
 def test_defaults_of_the_new_keys_keep_the_demo(demo_config):
     """Without mode_profile and bias_field_error_v_per_m the rig is the Gaussian, error-free one."""
-    # Source: PHYSICS.md section 2 (the Gaussian mode is the demo's) and section 6.
+    # Source: docs/physics.md section 2 (the Gaussian mode is the demo's) and section 6.
     data = _data(demo_config)
     del data["cavity"]["mode_profile"]
     del data["stark"]["bias_field_error_v_per_m"]

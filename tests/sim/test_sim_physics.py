@@ -36,7 +36,7 @@ def test_crossing_matches_qutip_sesolve(velocity, detuning_hz, photons):
 
 def test_crossing_vectorised_matches_scalar_calls():
     """One array call gives the same amplitudes as qutip point by point, broadcasting (v, delta, n)."""
-    # Reference: qutip sesolve at each grid point (PHYSICS.md section 2 Hamiltonian).
+    # Reference: qutip sesolve at each grid point (docs/physics.md section 2 Hamiltonian).
     velocity = np.array([350.0, 620.0])[:, None, None]
     detuning = np.array([-40e3, 25e3])[None, :, None]
     photons = np.array([1, 3])[None, None, :]
@@ -49,7 +49,7 @@ def test_crossing_vectorised_matches_scalar_calls():
 
 def test_vacuum_is_not_coupled():
     """Photon number 0 gives a_g = 1 and a_e = 0 at any velocity and detuning."""
-    # Source: PHYSICS.md section 2, |g,0> is not coupled (Jaynes-Cummings model).
+    # Source: docs/physics.md section 2, |g,0> is not coupled (Jaynes-Cummings model).
     a_g, a_e = physics.crossing_amplitudes([300.0, 700.0], [-1e5, 3e4], 0, **MODE)
     np.testing.assert_allclose(a_g, 1.0, atol=1e-12)
     np.testing.assert_allclose(a_e, 0.0, atol=1e-12)
@@ -70,7 +70,7 @@ def test_resonant_crossing_follows_pulse_area():
 def test_two_pi_velocity_of_demo_flips_sign():
     """At v_2pi = Omega_0 w / (2 sqrt(pi)) = 503.7 m/s one photon gives a_g = -1, a_e = 0."""
     # Source: common practice (a 2 pi rotation flips the amplitude's sign); 503.7 m/s from
-    # PHYSICS.md section 6 for Omega_0/2pi = 49 kHz and w = 5.8 mm.
+    # docs/physics.md section 6 for Omega_0/2pi = 49 kHz and w = 5.8 mm.
     v_2pi = physics.two_pi_velocity(**MODE)
     assert v_2pi == pytest.approx(503.7, abs=0.05)
     a_g, a_e = physics.crossing_amplitudes(v_2pi, 0.0, 1, **MODE)
@@ -80,7 +80,7 @@ def test_two_pi_velocity_of_demo_flips_sign():
 
 def test_two_photons_are_not_seen_as_one():
     """At v_2pi two photons give a_g = cos(pi sqrt 2), not -1."""
-    # Source: PHYSICS.md section 2 (sqrt(n) scaling of the Jaynes-Cummings model).
+    # Source: docs/physics.md section 2 (sqrt(n) scaling of the Jaynes-Cummings model).
     a_g, _ = physics.crossing_amplitudes(physics.two_pi_velocity(**MODE), 0.0, 2, **MODE)
     assert a_g.real == pytest.approx(math.cos(math.pi * math.sqrt(2.0)), abs=1e-6)
 
@@ -102,7 +102,7 @@ def test_constant_coupling_follows_rabi_formula(detuning_hz, coupling_hz):
 def test_large_detuning_gives_dispersive_phase(detuning_hz, photons):
     """For |delta| >> Omega_0, arg a_g = n Omega_0^2 w sqrt(pi/2) / (4 delta v) to 1 %, no absorption."""
     # Source: dispersive (second-order) light shift integrated over the Gaussian mode,
-    # PHYSICS.md section 2; the neglected terms are of relative order (Omega_0 / delta)^2.
+    # docs/physics.md section 2; the neglected terms are of relative order (Omega_0 / delta)^2.
     velocity = 450.0
     omega0, delta = 2 * math.pi * COUPLING_HZ, 2 * math.pi * detuning_hz
     expected = photons * omega0**2 * WAIST_M * math.sqrt(math.pi / 2) / (4 * delta * velocity)
@@ -113,7 +113,7 @@ def test_large_detuning_gives_dispersive_phase(detuning_hz, photons):
 
 def test_ten_khz_detuning_near_two_pi_gives_about_077_pi():
     """Near v_2pi a 10 kHz detuning turns the one-photon phase to about 0.77 pi (qutip recomputed)."""
-    # Source: PHYSICS.md section 2 states ~0.77 pi; recomputed here with qutip's sesolve.
+    # Source: docs/physics.md section 2 states ~0.77 pi; recomputed here with qutip's sesolve.
     v_2pi = physics.two_pi_velocity(**MODE)
     ref_g, _ = qutip_crossing(v_2pi, 10e3, 1)
     assert abs(np.angle(ref_g)) / math.pi == pytest.approx(0.77, abs=0.01)
@@ -123,7 +123,7 @@ def test_ten_khz_detuning_near_two_pi_gives_about_077_pi():
 
 def test_ramsey_rotation_matches_stated_matrix_and_is_unitary():
     """U(theta, phi) is the stated (g, i) rotation; two pi/2 pulses of equal phase make a pi pulse."""
-    # Source: PHYSICS.md section 3 matrix; rotations about one axis add (common practice).
+    # Source: docs/physics.md section 3 matrix; rotations about one axis add (common practice).
     theta, phi = 0.7, -1.3
     u = physics.ramsey_rotation(theta, phi)
     c, s = math.cos(theta / 2), math.sin(theta / 2)
@@ -136,7 +136,7 @@ def test_ramsey_rotation_matches_stated_matrix_and_is_unitary():
 
 def test_ramsey_assembly_matches_ideal_fringe_formula():
     """With ideal pi/2 zones and a Fock state, P_g = (1 + |a|^2 - 2|a| cos(chi + phi))/4, P_e = |a_e|^2/2."""
-    # Source: PHYSICS.md section 3 (ideal pi/2 pulses; the matrices of ramsey_rotation applied
+    # Source: docs/physics.md section 3 (ideal pi/2 pulses; the matrices of ramsey_rotation applied
     # here by hand, independently of the coefficient code).
     model = physics.AtomCavityModel(
         coupling_hz=COUPLING_HZ, waist_m=WAIST_M, cavity_frequency_hz=48.6e9, temperature_k=0.0,
@@ -160,7 +160,7 @@ def test_ramsey_assembly_matches_ideal_fringe_formula():
 
 def test_velocity_spread_washes_out_fringe_as_stated():
     """A Gaussian spread cuts the empty contrast by exp(-(2 pi Delta_R L sigma_v / v^2)^2 / 2)."""
-    # Source: PHYSICS.md section 3 (average of the fringe over a Gaussian, to first order in
+    # Source: docs/physics.md section 3 (average of the fringe over a Gaussian, to first order in
     # sigma_v / v); the zone-area change across the spread (0.4 %) is of second order.
     model = physics.AtomCavityModel(
         coupling_hz=COUPLING_HZ, waist_m=WAIST_M, cavity_frequency_hz=48.6e9, temperature_k=0.0,
@@ -189,8 +189,8 @@ def test_velocity_nodes_reproduce_gaussian_moments():
 @pytest.mark.parametrize("frequency_hz, temperature_k, expected",
                          [(51.1e9, 0.8, 0.04891), (48.6e9, 0.7, 0.03704)])
 def test_thermal_photon_number_worked_values(frequency_hz, temperature_k, expected):
-    """n_th matches the worked values of PHYSICS.md section 5 and Bose-Einstein with CODATA."""
-    # Source: PHYSICS.md section 5 worked values (CODATA 2022 via scipy.constants); the
+    """n_th matches the worked values of docs/physics.md section 5 and Bose-Einstein with CODATA."""
+    # Source: docs/physics.md section 5 worked values (CODATA 2022 via scipy.constants); the
     # Bose-Einstein law written out here with scipy.constants.
     got = physics.thermal_photon_number(frequency_hz, temperature_k)
     assert got == pytest.approx(expected, abs=5e-6)
@@ -246,7 +246,7 @@ def test_confusion_matrix_columns_are_distributions():
 
 def test_fringe_figures_match_contract_definitions():
     """Inversion is the maximum over phi of the fringe difference; phase shift, contrast as defined."""
-    # Source: PHYSICS.md section 5 definitions, checked by brute force over a dense phase grid.
+    # Source: docs/physics.md section 5 definitions, checked by brute force over a dense phase grid.
     rng = np.random.default_rng(SEED)
     detected = np.zeros((2, 3, 3))
     detected[:, 1, :] = rng.uniform(-0.2, 0.2, (2, 3)) + [0.5, 0.0, 0.0]
@@ -262,7 +262,7 @@ def test_fringe_figures_match_contract_definitions():
 
 def test_stark_law_matches_hydrogenic_quadratic_shift():
     """-250 kHz per (V/cm)^2: 1.5 -> 2.0 V/cm shifts the detuning by -437.5 kHz, and back."""
-    # Source: quadratic Stark shift coefficient of PHYSICS.md section 4 (Gallagher, Rydberg
+    # Source: quadratic Stark shift coefficient of docs/physics.md section 4 (Gallagher, Rydberg
     # Atoms, 1994; our own evaluation); arithmetic by hand: -250e3 * (2.0^2 - 1.5^2).
     kw = {"coefficient_hz_m2_per_v2": -25.0, "bias_field_v_per_m": 150.0}
     assert physics.stark_detuning(200.0, **kw) == pytest.approx(-437.5e3, rel=1e-12)
@@ -272,7 +272,7 @@ def test_stark_law_matches_hydrogenic_quadratic_shift():
 
 def test_stark_law_refuses_unreachable_detuning():
     """A detuning that would need a negative squared field is refused with a clear message."""
-    # Source: E^2 >= 0 for the quadratic law of PHYSICS.md section 4.
+    # Source: E^2 >= 0 for the quadratic law of docs/physics.md section 4.
     with pytest.raises(ValueError, match="detuning_hz"):
         physics.stark_field_for_detuning(1e6, coefficient_hz_m2_per_v2=-25.0, bias_field_v_per_m=150.0)
 
@@ -334,7 +334,7 @@ def test_profile_envelope_and_area_match_their_definitions(profile, envelope, wi
 def test_resonant_crossing_follows_pulse_area_for_any_profile(profile, envelope, window):
     """At zero detuning a_g = cos(A/2), a_e = -i sin(A/2), A = integral of Omega dt by quad."""
     # Source: pulse-area result for a resonant two-level system and any real pulse shape
-    # (Allen & Eberly, Optical Resonance and Two-Level Atoms, 1975; PHYSICS.md section 2), with
+    # (Allen & Eberly, Optical Resonance and Two-Level Atoms, 1975; docs/physics.md section 2), with
     # A = Omega_0 sqrt(n) (w / v) * integral of f(x) dx computed by scipy.integrate.quad.
     velocity = np.linspace(250.0, 900.0, 27)[:, None]
     photons = np.arange(1, 5)[None, :]
@@ -398,7 +398,7 @@ def test_profiles_vectorise_over_velocity_and_detuning():
 def test_asymmetric_mode_turns_the_detuned_phase_differently():
     """With detuning, the asymmetric mode's one-photon phase differs from the Gaussian's of equal area."""
     # Reference: qutip sesolve for both envelopes (equal pulse area, so equal at resonance by
-    # the pulse-area result; the detuned phase depends on the shape, PHYSICS.md section 2).
+    # the pulse-area result; the detuned phase depends on the shape, docs/physics.md section 2).
     v_2pi = physics.two_pi_velocity(**MODE)
     gaussian, _ = qutip_crossing(v_2pi, 10e3, 1)
     skewed, _ = qutip_crossing(v_2pi, 10e3, 1, envelope=_asymmetric(0.4), window=(-3.6, 8.4))
@@ -414,6 +414,6 @@ def test_asymmetric_mode_turns_the_detuned_phase_differently():
 ])
 def test_mode_profile_refuses_parameters_outside_the_checked_range(kind, changes):
     """A profile outside the range the solver is checked for is refused, naming the parameter."""
-    # Source: the ranges checked against qutip above (STYLE.md habit 5: say what was expected).
+    # Source: the ranges checked against qutip above (DEVELOPERS.md habit 5: say what was expected).
     with pytest.raises(ValueError, match="expected"):
         physics.ModeProfile(kind, **changes)

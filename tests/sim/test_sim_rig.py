@@ -79,7 +79,7 @@ def test_counts_follow_noiseless_probabilities(still_config, field, phase):
 
 def test_same_seed_same_counts_and_different_seed_different_counts(demo_config):
     """Two rigs with one seed and one call sequence give identical counts; another seed does not."""
-    # Source: the README's wire protocol / STYLE.md habit 10 (reproducible from the seed).
+    # Source: the README's wire protocol / DEVELOPERS.md habit 10 (reproducible from the seed).
     def run(seed):
         rig = SimulatedRig(demo_config, seed)
         rig.apply({"velocity": 520.0})
@@ -94,7 +94,7 @@ def test_same_seed_same_counts_and_different_seed_different_counts(demo_config):
 
 def test_acquire_takes_shots_over_repetition_rate(demo_config):
     """An acquisition advances the clock by shots / repetition_rate and counts its shots."""
-    # Source: PHYSICS.md section 4 (time) and the README's wire protocol acquire result.
+    # Source: docs/physics.md section 4 (time) and the README's wire protocol acquire result.
     rig = SimulatedRig(demo_config, SEED)
     before = rig.status()["clock"]
     result = rig.acquire("empty", 0.0, 1500)
@@ -121,7 +121,7 @@ def test_acquire_refuses_bad_arguments(demo_config, args, key):
 def test_flawless_rig_inverts_fringe_at_two_pi_point(flawless_config):
     """Without flaws, at v_2pi and zero detuning the one-photon fringe is the empty one shifted by pi."""
     # Source: common practice (a 2 pi vacuum Rabi rotation flips the sign of the g amplitude,
-    # so P_g(phi | one photon) = P_g(phi + pi | empty)); PHYSICS.md sections 1 and 3.
+    # so P_g(phi | one photon) = P_g(phi + pi | empty)); docs/physics.md sections 1 and 3.
     rig = SimulatedRig(flawless_config, SEED)
     truth = rig.truth({"velocity": V_2PI, "detuning": 0.0})
     empty, one = np.array(truth["fringes"]["empty"]["g"]), np.array(truth["fringes"]["one_photon"]["g"])
@@ -133,7 +133,7 @@ def test_flawless_rig_inverts_fringe_at_two_pi_point(flawless_config):
 
 def test_flawless_rig_best_is_two_pi_velocity_plus_bias(flawless_config):
     """With only a velocity bias, the best set-point is v_2pi minus the bias (509.7 m/s) at zero detuning."""
-    # Source: PHYSICS.md section 2 (2 pi condition) and section 6 (v_2pi = 503.7 m/s, bias -6 m/s).
+    # Source: docs/physics.md section 2 (2 pi condition) and section 6 (v_2pi = 503.7 m/s, bias -6 m/s).
     rig = SimulatedRig(perturbed(flawless_config, beam={"velocity_bias_m_per_s": -6.0}), SEED)
     best = rig.truth()["best"]
     assert best["setpoints"]["velocity"] == pytest.approx(509.7, abs=0.3)
@@ -143,7 +143,7 @@ def test_flawless_rig_best_is_two_pi_velocity_plus_bias(flawless_config):
 
 def test_demo_best_is_near_bias_corrected_two_pi_point(demo_truth):
     """The demo's true optimum is a little above 509.7 m/s and at a true detuning near zero."""
-    # Source: PHYSICS.md sections 2 and 6. Two effects pull toward faster atoms: the two-photon
+    # Source: docs/physics.md sections 2 and 6. Two effects pull toward faster atoms: the two-photon
     # part of the field (a_g(2) gains from a smaller area) and the one-photon decay during the
     # flight (faster atoms arrive sooner); both are percent-level, so within 2 % of 509.7.
     best = demo_truth["best"]
@@ -155,7 +155,7 @@ def test_demo_best_is_near_bias_corrected_two_pi_point(demo_truth):
 @pytest.mark.parametrize("velocity", [350.0, 400.0])
 def test_slow_atoms_on_detuned_ridge_are_worse(demo_config, demo_truth, velocity):
     """Slower atoms find their best inversion at a compensating detuning, and it is below the optimum."""
-    # Source: PHYSICS.md section 2 (the curved ridge of slower atoms with a compensating detuning).
+    # Source: docs/physics.md section 2 (the curved ridge of slower atoms with a compensating detuning).
     rig = SimulatedRig(demo_config, SEED)
     scan = [rig.truth({"velocity": velocity, "detuning": d}) for d in np.arange(-45e3, 45e3, 1e3)]
     top = max(scan, key=lambda t: t["inversion"])
@@ -212,7 +212,7 @@ def test_random_walk_spread_grows_as_square_root_of_time(demo_config):
 
 def test_thermal_step_moves_offset_and_best(demo_config, demo_truth):
     """A 15 kHz thermal step moves the offset by 15 kHz and the best detuning set-point by -15 kHz/(1+err)."""
-    # Source: PHYSICS.md section 6 (15 kHz thermal step) and the Stark error of the config.
+    # Source: docs/physics.md section 6 (15 kHz thermal step) and the Stark error of the config.
     rig = SimulatedRig(perturbed(demo_config, drift={"random_walk_hz_per_sqrt_s": 0.0,
                                                      "ramp_hz_per_s": 0.0}), SEED)
     before = rig.thermal_step(0.0)["cavity_offset_hz"]
@@ -224,7 +224,7 @@ def test_thermal_step_moves_offset_and_best(demo_config, demo_truth):
 
 def test_stark_error_makes_applied_detuning_differ(demo_config):
     """The true detuning is (1 + Stark error) times the set-point plus the cavity offset."""
-    # Source: quadratic Stark law of PHYSICS.md section 4 with the configured hidden error.
+    # Source: quadratic Stark law of docs/physics.md section 4 with the configured hidden error.
     rig = SimulatedRig(demo_config, SEED)
     truth = rig.truth({"detuning": 40e3})
     hidden = truth["hidden"]
@@ -235,7 +235,7 @@ def test_stark_error_makes_applied_detuning_differ(demo_config):
 
 def _stark_closed_form(setpoint_hz, *, error, field_error_v_per_m, k=-25.0, bias=150.0):
     """delta = k_true (E_seen^2 - E_bias^2), E_seen = E + field error, E from the nominal law."""
-    # Source: quadratic Stark law of PHYSICS.md section 4, delta/2pi = k (E^2 - E_bias^2),
+    # Source: quadratic Stark law of docs/physics.md section 4, delta/2pi = k (E^2 - E_bias^2),
     # written out by hand: the nominal law commands E = sqrt(E_bias^2 + set-point / k).
     field = math.sqrt(bias**2 + setpoint_hz / k)
     return k * (1.0 + error) * ((field + field_error_v_per_m) ** 2 - bias**2)
@@ -246,7 +246,7 @@ def _stark_closed_form(setpoint_hz, *, error, field_error_v_per_m, k=-25.0, bias
 def test_large_hidden_stark_errors_hold_across_the_detuning_limits(demo_config, error, field_error):
     """With a 15 % coefficient error and a stray field the rig follows the closed-form Stark law
     from limit to limit, and its best set-point maps back to its best true detuning."""
-    # Source: quadratic Stark law of PHYSICS.md section 4 (closed form written out above).
+    # Source: quadratic Stark law of docs/physics.md section 4 (closed form written out above).
     config = perturbed(demo_config, stark={"coefficient_error": error,
                                            "bias_field_error_v_per_m": field_error},
                        drift={"ramp_hz_per_s": 0.0, "random_walk_hz_per_sqrt_s": 0.0})
@@ -270,7 +270,7 @@ def test_large_hidden_stark_errors_hold_across_the_detuning_limits(demo_config, 
 
 def test_stray_field_alone_shifts_the_zero_set_point(demo_config):
     """A stray field e moves set-point 0 to the true detuning k (1 + err)((E_b + e)^2 - E_b^2)."""
-    # Source: quadratic Stark law of PHYSICS.md section 4; arithmetic by hand for e = 1 V/m:
+    # Source: quadratic Stark law of docs/physics.md section 4; arithmetic by hand for e = 1 V/m:
     # -25 * 1.015 * (151^2 - 150^2) = -25 * 1.015 * 301 = -7637.875 Hz.
     config = perturbed(demo_config, stark={"bias_field_error_v_per_m": 1.0})
     rig = SimulatedRig(config, SEED)
@@ -300,7 +300,7 @@ def test_rig_with_another_mode_profile_peaks_at_its_own_two_pi_velocity(demo_con
 
 def test_out_of_range_setpoint_is_refused_naming_limit(demo_config):
     """A velocity above max is refused naming the set-point, the limit and the value; nothing moves."""
-    # Source: the README's wire protocol limits and PHYSICS.md section 7 (never outside the configured limits).
+    # Source: the README's wire protocol limits and docs/physics.md section 7 (never outside the configured limits).
     rig = SimulatedRig(demo_config, SEED)
     _walk(rig, {"velocity": 700.0})
     before = rig.status()
@@ -311,7 +311,7 @@ def test_out_of_range_setpoint_is_refused_naming_limit(demo_config):
 
 def test_too_large_step_is_refused_naming_max_step(demo_config):
     """A detuning step above max_step is refused naming max_step and the value."""
-    # Source: PHYSICS.md section 7 (bounded steps) and the configured max_step of 20 kHz.
+    # Source: docs/physics.md section 7 (bounded steps) and the configured max_step of 20 kHz.
     rig = SimulatedRig(demo_config, SEED)
     with pytest.raises(SetpointError, match=r"detuning.*max_step 20000.*25000"):
         rig.apply({"detuning": 25e3})
@@ -332,7 +332,7 @@ def test_bad_setpoint_is_refused(demo_config, setpoints, fragment):
 
 def test_safe_returns_to_safe_setpoints_even_under_interlock(demo_config):
     """safe applies the configured safe set-points regardless of steps and interlock."""
-    # Source: PHYSICS.md section 7 (return to safe set-points on abort) and configs/sim-rig.toml.
+    # Source: docs/physics.md section 7 (return to safe set-points on abort) and configs/sim-rig.toml.
     rig = SimulatedRig(demo_config, SEED)
     _walk(rig, {"velocity": 620.0, "detuning": -60e3})
     rig.set_interlock("door open")

@@ -1,7 +1,7 @@
 """Figure: absorption and inversion against velocity, with the lock's absorption model.
 
 The phase lock (:mod:`autotune.guided`) learns the velocity from the absorption
-P_e(one photon), which vanishes at the exact 2π rotation (PHYSICS.md §5b): a weighted quadratic
+P_e(one photon), which vanishes at the exact 2π rotation (docs/physics.md §5b): a weighted quadratic
 in ``x = v_ref / v - 1`` journaled with its covariance in the ``stop_search`` decision
 (``learned``: ``absorption_fit``, ``velocity_least_absorption_m_per_s`` and its standard error).
 This figure draws that model, the points, the velocity it gives and the velocity chosen, and
@@ -126,7 +126,7 @@ def figure_absorption(run: Run) -> tuple[Any, str] | None:
            if model is not None else "No absorption model was journaled for this run.")
     caption = (f"Top: the absorption P_e of the one-photon field at each velocity set-point, with "
                f"its {level} interval; it vanishes at the exact 2π rotation and grows on either "
-               f"side (PHYSICS.md §5b). {how} Red dashed: the chosen velocity. Bottom: the "
+               f"side (docs/physics.md §5b). {how} Red dashed: the chosen velocity. Bottom: the "
                f"inversion measured at the same points, with its {level} interval (points off "
                "the detuning peak sit lower)." + (" " + "; ".join(notes).capitalize() + "."
                                                    if notes else ""))

@@ -307,7 +307,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
                f"({floor:g} of the reference); grey: points of the retunes and calibrations. "
                "(2) Each check's phase error: its photon phase shift minus the stored phase at "
                "the peak, one standard error; the lock reads the detuning error from it "
-               "(PHYSICS.md §5b). (3) The detuning set-point applied, the lock's estimate of the "
+               "(docs/physics.md §5b). (3) The detuning set-point applied, the lock's estimate of the "
                "peak (Kalman filter, one standard error) and each correction (from → to). "
                "(4) The sequential statistics after each check (two-sided CUSUM of the lock's "
                "standardised innovations, one-sided CUSUM of the inversion's drop) against their "

@@ -164,6 +164,6 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
     caption = ("The angle between the one-photon and the empty fringe, in units of π, with one "
                "standard error, at every measured point (coloured by velocity when it varies). "
                "At the 2π condition it is near π; detuning turns it one way or the other "
-               f"(PHYSICS.md §5b). {model}"
+               f"(docs/physics.md §5b). {model}"
                + (" Note: " + "; ".join(notes) + "." if notes else ""))
     return fig, caption
