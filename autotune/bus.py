@@ -51,6 +51,7 @@ import zmq
 import zmq.auth
 
 from autotune import protocol
+from autotune.progress import setpoint_value_text
 from autotune.errors import (
     ConfigError,
     ConfigErrors,
@@ -109,6 +110,17 @@ def _holder_gone(holder: str | None) -> bool:
     except (PermissionError, OverflowError, ValueError):
         return False
     return False
+
+
+def _mismatch_text(name: str, in_force: float | None, applied: float) -> str:
+    """``"detuning -4.06 kHz (applied -4.20 kHz)"``: in a physicist's units, with more digits
+    only where those units would print the two alike."""
+    if in_force is None:
+        return f"{name} missing (applied {setpoint_value_text(name, applied)})"
+    shown, wanted = setpoint_value_text(name, in_force), setpoint_value_text(name, applied)
+    if shown == wanted:
+        shown, wanted = f"{in_force:.12g}", f"{applied:.12g}"
+    return f"{name} {shown} (applied {wanted})"
 
 
 class _LeaseKeeper:
@@ -548,8 +560,8 @@ class BusClient:
                 differ = [name for name, value in self._applied.items()
                           if not _same(acquisition.setpoints.get(name), value)]
                 if differ:
-                    shown = ", ".join(f"{n} {acquisition.setpoints.get(n)!r} (applied "
-                                      f"{self._applied[n]!r})" for n in differ)
+                    shown = ", ".join(_mismatch_text(n, acquisition.setpoints.get(n),
+                                                     self._applied[n]) for n in differ)
                     raise RigMismatch(f"acquire at {self._endpoint}: the set-points in force "
                                       f"were not those applied: {shown}")
         except RigMismatch as exc:
@@ -716,7 +728,7 @@ class BusClient:
             if advance_only:
                 return
             raise RigRestarted(f"{op} at {self._endpoint}: the rig clock went back from "
-                               f"{self._last_clock!r} s to {clock!r} s: it restarted or "
+                               f"{self._last_clock:.3f} s to {clock:.3f} s: it restarted or "
                                f"another client reset it")
         self._last_clock = clock if self._last_clock is None else max(self._last_clock, clock)
 
