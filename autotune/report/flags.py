@@ -97,8 +97,12 @@ def run_flags(run: Run) -> list[Flag]:
         flags.append(Flag("ended_badly", f"the run ended {run.ended}{why}; it can continue with "
                           f"'autotune {run.command} --config F --resume {run.path}'"))
     elif run.ended == "below_acceptance":
-        flags.append(Flag("below_acceptance", "the verified inversion is below the acceptance "
-                          "threshold; the rig was left at the chosen set-points"))
+        said = [d["reason"] for d in run.decisions if d["what"] == "below_acceptance"]
+        reason = (run.result or {}).get("reason") or (said[-1] if said else
+                                                      "its verification missed [acceptance]")
+        flags.append(Flag("below_acceptance", f"not accepted ({reason}); the last good "
+                          f"calibration was kept, and the rig left where [acceptance] on_reject "
+                          f"says (its safe set-points by default)"))
     for rec in run.safe_failed:
         flags.append(Flag("safe_failed", f"the return to safe set-points FAILED "
                           f"({rec.get('reason', '')}: {rec.get('error', '')}); check the rig"))
