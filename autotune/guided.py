@@ -1369,7 +1369,6 @@ class PhaseLockSearch:
 
     def _velocity_proposal(self, velocity: float, lock_velocity: float, clock: float | None,
                            note: str) -> Proposal:
-        s = self.settings
         # The lock at the lock's velocity: at the resonance the phase is that of the peak for
         # every velocity class (a real amplitude), so the locked detuning carries over.
         target = self._lock_target(lock_velocity, clock)

@@ -77,7 +77,7 @@ from autotune.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
-           "STAGE_COMMANDS", "opening_call"]
+           "STAGE_COMMANDS", "opening_call", "read_run_files"]
 
 _log = structlog.get_logger(__name__)
 
@@ -538,12 +538,7 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
     if resume:  # every file is read (and a damaged one refused) before the rig is asked
-        never_started(run_dir)
-        manifest = read_json(run_dir / MANIFEST_NAME)
-        records = read_journal(run_dir / JOURNAL_NAME)
-        if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
-            raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
-                               f"manifest, got {type(manifest).__name__}")
+        manifest, records = read_run_files(run_dir)
     description = opening_call("describe", rig.describe, config, rig, stop)
     problems = preflight(command, config, description, store=store, last_good=last_good,
                          resume=resume)
@@ -564,6 +559,18 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     if problems:
         raise ConfigErrors(problems)
     return Prepared(command, config, description, run_dir, resume, store, last_good, changes)
+
+
+def read_run_files(run_dir: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
+    """The manifest and the journal records of a run folder to resume, read (and a damaged or
+    missing one refused, :class:`JournalError`) before the rig is asked anything."""
+    never_started(run_dir)
+    manifest = read_json(run_dir / MANIFEST_NAME)
+    records = read_journal(run_dir / JOURNAL_NAME)
+    if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
+        raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
+                           f"manifest, got {type(manifest).__name__}")
+    return manifest, records
 
 
 def _manifest(prepared: Prepared, extra: Mapping[str, Any]) -> dict[str, Any]:

@@ -108,12 +108,9 @@ from autotune.hold import (
 )
 from autotune.journal import (
     JOURNAL_NAME,
-    MANIFEST_NAME,
     RESULT_NAME,
     Journal,
     ended_error,
-    read_journal,
-    read_json,
     utc_now,
     write_json_atomic,
 )
@@ -132,9 +129,9 @@ from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.rig import Rig
 from autotune.runner import (
     _manifest,
-    never_started,
     opening_call,
     read_last_good,
+    read_run_files,
     resume_changes,
     settle_failure,
     track_preflight,
@@ -259,12 +256,7 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
     if not resume and (run_dir / JOURNAL_NAME).exists():
         raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
     if resume:  # every file is read (and a damaged one refused) before the rig is asked
-        never_started(run_dir)
-        manifest = read_json(run_dir / MANIFEST_NAME)
-        records = read_journal(run_dir / JOURNAL_NAME)
-        if not isinstance(manifest, dict) or not isinstance(manifest.get("rig", {}), dict):
-            raise JournalError(f"{run_dir / MANIFEST_NAME}: expected the JSON object of a run's "
-                               f"manifest, got {type(manifest).__name__}")
+        manifest, records = read_run_files(run_dir)
     description = opening_call("describe", rig.describe, config, rig, stop)
     problems = track_preflight(config, description, store=store, last_good=last_good,
                                resume=resume)

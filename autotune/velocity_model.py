@@ -48,8 +48,28 @@ CONTRAST_CURVATURE = 0.5
 _MIN_SCALE = 0.05
 
 
+class _QuadraticInX:
+    """A quadratic ``c0 + c1 x + c2 x^2`` in ``x = v_ref / v - 1`` (the pulse area's relative
+    excess over that at ``v_ref``): what the inversion and the absorption curves share."""
+
+    velocity_ref: float
+    coef: np.ndarray
+
+    def x_of(self, velocity: float) -> float:
+        """``x`` of a velocity (m/s)."""
+        return self.velocity_ref / velocity - 1.0
+
+    def velocity_of(self, x: float) -> float:
+        """The velocity (m/s) of an ``x``."""
+        return self.velocity_ref / (1.0 + x)
+
+    def value(self, x: float) -> float:
+        """The curve at ``x``."""
+        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
+
+
 @dataclass(frozen=True)
-class InversionCurve:
+class InversionCurve(_QuadraticInX):
     """Posterior of ``I(x) = b0 + b1 x + b2 x^2`` along ``x = v_ref / v - 1``.
 
     Attributes
@@ -77,15 +97,6 @@ class InversionCurve:
     x_groups: tuple[float, ...]
     proxy: np.ndarray
     widened: bool
-
-    def x_of(self, velocity: float) -> float:
-        return self.velocity_ref / velocity - 1.0
-
-    def velocity_of(self, x: float) -> float:
-        return self.velocity_ref / (1.0 + x)
-
-    def value(self, x: float) -> float:
-        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
 
     def vertex(self) -> float | None:
         """``x`` of the maximum, or None when the curve is not concave."""
@@ -209,7 +220,7 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
 
 
 @dataclass(frozen=True)
-class _AbsorptionFit:
+class _AbsorptionFit(_QuadraticInX):
     """Weighted quadratic fit of P_e in ``x = v_ref / v - 1``."""
 
     velocity_ref: float
@@ -217,15 +228,6 @@ class _AbsorptionFit:
     cov: np.ndarray
     x_groups: tuple[float, ...]
     from_prior: bool
-
-    def x_of(self, velocity: float) -> float:
-        return self.velocity_ref / velocity - 1.0
-
-    def velocity_of(self, x: float) -> float:
-        return self.velocity_ref / (1.0 + x)
-
-    def value(self, x: float) -> float:
-        return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
 
     def vertex(self) -> float | None:
         if self.coef[2] <= 0.0:

@@ -31,7 +31,6 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     vel = np.array([m.setpoints["velocity"] for m in done])
     det = np.array([m.setpoints["detuning"] / 1e3 for m in done])
     inv = np.array([m.value("inversion") for m in done])
-    err = np.array([m.value("inversion_stderr") for m in done])
     box = run.box()
     if box is not None and "velocity" in box and "detuning" in box:
         low = np.array([box["velocity"][0], box["detuning"][0] / 1e3])
