@@ -1042,10 +1042,11 @@ class PhaseLockSearch:
 
     def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
         """The ``x`` range the inversion curve is trusted over: the velocities measured and one
-        velocity step beyond, within the box (a quadratic is not extrapolated further)."""
-        box_lo, box_hi = self._box_x(curve)
+        velocity step beyond (a quadratic is not extrapolated further). Not clipped to the box:
+        the shortfall is below the rig's best, and a choice at the box edge must count what
+        the curve says lies just outside it."""
         f = self.settings.velocity_step_fraction
-        return (max(box_lo, min(curve.x_groups) - f), min(box_hi, max(curve.x_groups) + f))
+        return (min(curve.x_groups) - f, max(curve.x_groups) + f)
 
     def _curve_draws(self, curve: InversionCurve, velocity: float, normals: np.ndarray, scale: float,
                      residual_cov: np.ndarray | None = None,
