@@ -389,18 +389,22 @@ def _connect(config: RunConfig, stop: threading.Event | None = None) -> Any:
                      stop_safe_s=config.recovery.safe_on_stop_s)
 
 
-def _claim_rig(rig: Any, command: str, wait_s: float) -> None:
+def _claim_rig(rig: Any, command: str, wait_s: float, config: RunConfig,
+               stop: threading.Event | None) -> None:
     """Take the rig's lease for this process before anything moves (kept renewed, released
-    when the client closes); a rig without leases goes on with one warning.
+    when the client closes); a rig without leases goes on with one warning. The claim has the
+    run's recovery, as every rig call of a run (a claim again by the holder only renews).
 
     Raises
     ------
     RigLeased
         Another client holds the rig (still, after ``wait_s`` seconds).
     """
+    from autotune import runner
     from autotune.bus import client_identity
 
-    rig.claim(client_identity(command), wait_s=wait_s)
+    identity = client_identity(command)
+    runner.opening_call("claim", lambda: rig.claim(identity, wait_s=wait_s), config, rig, stop)
 
 
 def _summary(result: dict[str, Any]) -> str:
@@ -984,7 +988,7 @@ def _act_on_rig_locked(ns: argparse.Namespace, command: str, config: RunConfig, 
         # prepare only reads the rig (describe): its checks of the input come first, the
         # lease before the first move.
         prepared = prepare(rig, config, run_dir, resume=resume, stop=stop)
-        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0))
+        _claim_rig(rig, command, getattr(ns, "wait_lease_s", 0.0), config, stop)
         print(CAUTION, file=sys.stderr)
         run_dir.mkdir(parents=True, exist_ok=True)
         started.append(run_dir)
@@ -1103,7 +1107,7 @@ def _dry_run_stages(ns: argparse.Namespace, config: RunConfig, out: Path, endpoi
     rows = []
     exit_code = EXIT_OK
     with _connect(config, stop) as rig:
-        _claim_rig(rig, "dry-run", 0.0)
+        _claim_rig(rig, "dry-run", 0.0, config, stop)
         description = runner.opening_call("describe", rig.describe, config, rig, stop)
         print(f"simulated rig {description.rig!r} listening on {endpoint} "
               f"(seed {config.search.seed})")

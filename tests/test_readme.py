@@ -295,6 +295,7 @@ def _keys_config_reads(monkeypatch: pytest.MonkeyPatch) -> set[tuple[str, str]]:
     monkeypatch.setattr(config._Table, "_raw", recording)
     data = tomllib.loads((REPO / "configs" / "calibrate.toml").read_text(encoding="utf-8"))
     data["bus"]["curve"] = {"client_secret_key_file": "a", "server_public_key_file": "b"}
+    data.setdefault("acceptance", {})["max_shortfall"] = 0.02  # optional, read only when given
     config.config_from_dict(data, source="calibrate.toml")
     return read
 
