@@ -236,18 +236,22 @@ def test_the_night_draws_each_statistic_against_its_threshold(folders, name):
     # An alarm of the set-point leaving its range has no statistic's value to mark.
     assert sorted(m.get_ydata()[0] for m in marks) == pytest.approx(
         sorted(a["value"] for a in alarms if a["value"] is not None))
-    assert all(a["value"] > a["threshold"] for a in alarms)
+    valued = [a for a in alarms if a["value"] is not None]
+    assert all(a["value"] > a["threshold"] for a in valued)
     printed = [text.get_text() for ax in fig.axes for text in ax.texts]
-    for a in alarms:
+    for a in valued:
         assert f"alarm: {a['statistic']} {a['value']:.2f} > {a['threshold']:.2f}" in printed
 
 
 def test_a_failed_recovery_is_shaded_red_and_marked(folders):
-    """The failed night: its recoveries not accepted are red spans, each failure a red cross."""
+    """The failed night: its recoveries not accepted are red spans, each failure a red cross
+    (under the beam ceiling a calibration the night cannot pay for after a rejected retune is
+    a budget decision, not a failure: the crosses then match the failures journaled, if any)."""
     run_dir = folders["failed"]
     fig = _figure(report.build_report(run_dir), "", "night").figure
     failures = _decisions(run_dir, "failure")
-    assert failures and len(_by_gid(fig, "failure")) == len(failures)
+    assert len(_by_gid(fig, "failure")) == len(failures)
+    assert failures or _decisions(run_dir, "budget")
     done = _decisions(run_dir, "stage_done")
     assert any("below_acceptance" in d["reason"] for d in done)
     rows = dict(report._header(report.load_run(run_dir)))

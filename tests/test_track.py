@@ -280,8 +280,9 @@ def test_a_night_without_a_last_good_calibration_calibrates_first(tmp_path):
     holding), then holds."""
     rig = _rig(13)
     # The mechanics of a night that must calibrate first; whether that calibration can vouch
-    # for 2 % is the acceptance tests' (a rejected one is a failed recovery, tested apart).
-    config = dataclasses.replace(night_config(hours=0.5), max_shortfall=1.0)
+    # for 2 % is the acceptance tests' (a rejected one is a failed recovery, tested apart), and
+    # half an hour at the default 5 % of beam pays for no check after it (the ceiling's tests).
+    config = dataclasses.replace(night_config(hours=0.5, budget_fraction=0.2), max_shortfall=1.0)
     result = track.track(rig, config, tmp_path / "night", store=tmp_path / "good.json")
     records = read_journal(tmp_path / "night" / JOURNAL_NAME)
     first = next(r for r in records if r["type"] == "decision" and r["what"] in ("retune",
