@@ -37,7 +37,9 @@ cryptographic random source). When the rig cannot read a request's ``msg_id`` it
 Idempotency: a client that gets no reply resends the **same bytes with the same msg_id**. A rig
 must answer a repeated ``msg_id`` with the reply it gave the first time, without executing the
 request again (so an acquisition is never counted twice). autotune's server keeps the last 1024
-replies. A ``msg_id`` reused with a different request is answered with ``bad_request``.
+replies. A ``msg_id`` reused with a different request (another op or other arguments) is
+answered with ``bad_request``; the ``client`` key is not part of that comparison, because a run
+resumed in a new process resends its predecessor's unanswered request under its own identity.
 autotune keeps one ``msg_id`` for one logical operation across all of its own retries too (the
 bus client's resends and the loop's later retries after a timeout, a ``busy`` or
 ``internal`` reply or an interlock), so a rig that keeps its replies makes every retry safe: a

@@ -30,6 +30,7 @@ import hashlib
 import heapq
 import ipaddress
 import itertools
+import json
 import math
 import os
 import random
@@ -515,7 +516,7 @@ class RigServer:
             if exc.msg_id:
                 self._remember(exc.msg_id, _digest(payload), reply)
             return reply, False
-        digest = _digest(payload)
+        digest = _request_digest(request)
         cached = self._cache.get(request.msg_id)
         if cached is not None:
             if cached[0] != digest:
@@ -626,6 +627,15 @@ class RigServer:
 
 def _digest(payload: bytes) -> bytes:
     return hashlib.blake2b(payload, digest_size=16).digest()
+
+
+def _request_digest(request: protocol.Request) -> bytes:
+    """What a repeated ``msg_id`` must repeat: its op and arguments. The ``client`` key names
+    the sender, not the request: a resumed run resends its predecessor's pending request under
+    its own identity and must get the reply the rig kept."""
+    content = json.dumps({"op": request.op.value, "args": request.args}, sort_keys=True,
+                         separators=(",", ":"), default=str)
+    return hashlib.blake2b(content.encode(), digest_size=16).digest()
 
 
 def _wildcard_port(bind: str) -> str:

@@ -53,6 +53,18 @@ def test_reused_msg_id_with_another_request_is_refused(server, rig):
     assert rig.status()["shots_total"] == 0
 
 
+def test_a_resumed_client_resending_under_its_own_identity_gets_the_kept_reply(server, rig):
+    """The same op and arguments under the same msg_id from another ``client`` (a run resumed in
+    a new process resends its predecessor's unanswered request) is a repeat, answered from the
+    cache and counted once (protocol.py, Idempotency): the client key names the sender, not the
+    request."""
+    args = {"field": "empty", "ramsey_phase": 0.0, "shots": 25}
+    first = server.handle(protocol.encode_request(Op.ACQUIRE, args, "ab" * 16, client="run pid 1"))
+    again = server.handle(protocol.encode_request(Op.ACQUIRE, args, "ab" * 16, client="run pid 2"))
+    assert json.loads(again) == json.loads(first) and json.loads(first)["ok"]
+    assert rig.status()["shots_total"] == 25
+
+
 def test_replay_cache_is_bounded(server, rig):
     """With a cache of 2, a request older than two others is executed again when repeated."""
     request = protocol.encode_request(Op.ACQUIRE, {"field": "empty", "ramsey_phase": 0.0, "shots": 10}, "ef" * 16)
