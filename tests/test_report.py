@@ -22,6 +22,7 @@ import subprocess
 import sys
 import time
 import tomllib
+from html.parser import HTMLParser
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -652,6 +653,112 @@ def test_a_running_run_shows_the_setpoints_it_is_verifying(tmp_path: Path) -> No
     assert header["verified inversion"] == "none yet"
     fringes = next(f for f in built.figures if f.key == "fringes")
     assert "latest measurement" in fringes.caption and "point #2" in fringes.caption
+
+
+# --------------------------------------------------------------------------------------------
+# What to know first, on the page: a damaged journal, a run still going
+# --------------------------------------------------------------------------------------------
+
+
+class _Sections(HTMLParser):
+    """The page's top-level ``<section id=...>`` in order, each with its text."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.order: list[str] = []
+        self.text: dict[str, str] = {}
+        self._open: list[str | None] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        if tag == "section":
+            section = dict(attrs).get("id")
+            if section and not any(self._open):
+                self.order.append(section)
+                self.text[section] = ""
+            self._open.append(section)
+
+    def handle_endtag(self, tag: str) -> None:
+        if tag == "section" and self._open:
+            self._open.pop()
+
+    def handle_data(self, data: str) -> None:
+        for section in self._open:
+            if section:
+                self.text[section] += data
+
+
+def _page_sections(page: Path) -> _Sections:
+    parsed = _Sections()
+    parsed.feed(page.read_text(encoding="utf-8"))
+    return parsed
+
+
+def test_a_damaged_journal_is_told_at_the_top_of_the_page(tmp_path: Path) -> None:
+    """``autotune report RUN`` on a journal whose 10th line the test overwrote: the page opens
+    with a notice, above the flags, naming the line, the record expected there (9, the records
+    before it, counted by the test), what was found, and that the page stops before it."""
+    rng = np.random.default_rng(12)
+    run = _write_run(tmp_path / "run", [_point(rng, "point", k, 480.0 + 10 * k, 0.0)
+                                         for k in range(3)])
+    lines = (run / JOURNAL_NAME).read_text().splitlines(keepends=True)
+    lines[9] = "this is not JSON\n"
+    (run / JOURNAL_NAME).write_text("".join(lines))
+    done = _autotune("report", str(run))
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert f"NOTE: {run / JOURNAL_NAME} line 10: expected record seq 9" in done.stdout
+    page = _page_sections(run / report.HTML_NAME)
+    assert page.order[:2] == ["notices", "flags"]
+    notice = " ".join(page.text["notices"].split())
+    assert "Read this first" in notice and "A damaged journal" in notice
+    assert f"The journal {run / JOURNAL_NAME} is damaged at line 10" in notice
+    assert "record number 9 was expected there" in notice
+    assert "text that is not JSON: this is not JSON" in notice
+    assert "shows the 9 records before that line and nothing after it" in notice
+    assert 'href="#notices"' in (run / report.HTML_NAME).read_text(encoding="utf-8")
+
+
+_HOLD = """
+import sys
+from pathlib import Path
+from autotune.runlock import RunLock
+lock = RunLock.acquire(Path(sys.argv[1]), "calibrate")
+print("held", flush=True)
+sys.stdin.read()
+lock.release()
+"""
+
+
+def test_a_run_still_going_is_told_at_the_top_of_the_page(tmp_path: Path) -> None:
+    """A run folder whose lock another live process holds (a real process, as a running
+    calibration holds it): the page opens with a notice naming that process by the id the
+    operating system gave it, and saying the page shows only what was written so far; once
+    the process has let go, a new page has no notice at all."""
+    rng = np.random.default_rng(13)
+    run = _write_run(tmp_path / "run", [_point(rng, "point", k, 480.0 + 10 * k, 0.0)
+                                         for k in range(2)], end=None)
+    records = len(read_journal(run / JOURNAL_NAME))
+    holder = subprocess.Popen([sys.executable, "-c", _HOLD, str(run)], cwd=REPO, text=True,
+                              stdin=subprocess.PIPE, stdout=subprocess.PIPE)
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
+        done = _autotune("report", str(run))
+        assert done.returncode == 0, done.stderr[-3000:]
+        assert "NOTE: " in done.stdout and f"process {holder.pid}" in done.stdout
+        page = _page_sections(run / report.HTML_NAME)
+        assert page.order[:2] == ["notices", "flags"]
+        notice = " ".join(page.text["notices"].split())
+        assert "This run was still going" in notice
+        assert f"by process {holder.pid} of " in notice
+        assert f"shows only the {records} journal records written so far" in notice
+        assert "Make the report again once the run has ended" in notice
+    finally:
+        holder.communicate("", timeout=30)
+    done = _autotune("report", str(run))
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert "NOTE:" not in done.stdout
+    page = _page_sections(run / report.HTML_NAME)
+    assert "notices" not in page.order and page.order[0] == "flags"
+    assert "Read this first" not in (run / report.HTML_NAME).read_text(encoding="utf-8")
 
 
 # --------------------------------------------------------------------------------------------

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +18,7 @@ from autotune.report.figures.scan import figure_scan
 from autotune.report.figures.timeline import figure_timeline
 from autotune.report.flags import Flag, run_flags
 from autotune.report.model import Run, find_runs, load_run
+from autotune.report.notices import Notice, report_notices
 from autotune.report.text import _header
 
 @dataclass
@@ -34,13 +35,15 @@ class ReportFigure:
 
 @dataclass
 class Report:
-    """Everything a report shows: the runs, their headers and flags, the figures."""
+    """Everything a report shows: what to know first, the runs, their headers and flags, the
+    figures."""
 
     path: Path
     runs: list[Run]
     headers: dict[str, list[tuple[str, str]]]
     flags: dict[str, list[Flag]]
     figures: list[ReportFigure]
+    notices: list[Notice] = field(default_factory=list)
 
     @property
     def multi(self) -> bool:
@@ -84,6 +87,7 @@ def build_report(path: Path, *, draw: bool = True) -> Report:
     names = _unique_names(runs)
     headers = {names[id(r)]: _header(r) for r in runs}
     flags = {names[id(r)]: run_flags(r) for r in runs}
+    notices = report_notices(path, runs)
     figures: list[ReportFigure] = []
     if draw:
         multi = len(runs) > 1 or runs[0].path != path
@@ -101,7 +105,7 @@ def build_report(path: Path, *, draw: bool = True) -> Report:
                 drawn = draw_one(r)
                 if drawn is not None:
                     figures.append(ReportFigure(key, names[id(r)] if multi else "", *drawn))
-    return Report(path, runs, headers, flags, figures)
+    return Report(path, runs, headers, flags, figures, notices)
 
 
 def _unique_names(runs: Sequence[Run]) -> dict[int, str]:

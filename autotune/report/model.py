@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError
-from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, read_journal_prefix,
-                              read_json)
+from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
+                              read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
 
 FIGURE_NAME = "report.png"
@@ -119,6 +119,8 @@ class Run:
     clock_start: float | None
     clock_end: float | None
     unknown: Counter[str]
+    damage: JournalDamage | None = None
+    """The journal's first damaged line; the run holds only the records before it."""
 
     @property
     def name(self) -> str:
@@ -311,8 +313,8 @@ def load_run(path: Path) -> Run:
         raise JournalError(f"{path / MANIFEST_NAME}: expected a JSON object, "
                            f"got {type(manifest).__name__}")
     journal = path / JOURNAL_NAME
-    # A damaged journal is shown up to its first damaged line (the CLI says where and what).
-    records, _ = read_journal_prefix(journal)
+    # A damaged journal is shown up to its first damaged line (the notices say where and what).
+    records, damage = read_journal_prefix(journal)
     size = journal.stat().st_size
     cut_line = size > 0 and _last_byte(journal) != b"\n"
     result = None
@@ -321,7 +323,9 @@ def load_run(path: Path) -> Run:
         if not isinstance(result, dict):
             raise JournalError(f"{path / RESULT_NAME}: expected a JSON object, "
                                f"got {type(result).__name__}")
-    return _walk(path, manifest, result, records, cut_line)
+    run = _walk(path, manifest, result, records, cut_line)
+    run.damage = damage
+    return run
 
 
 def _last_byte(path: Path) -> bytes:

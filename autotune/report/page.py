@@ -24,6 +24,11 @@ _CSS = """
 body { font-family: sans-serif; margin: 1em auto; max-width: 1500px; padding: 0 1em;
        color: #222; }
 h1 { font-size: 1.4em; } h2 { font-size: 1.2em; border-bottom: 1px solid #ccc; }
+.notices { background: #fdecea; border: 3px solid #c62828; padding: 0.4em 1em;
+           margin: 0.8em 0; }
+.notices h2 { border: none; color: #b71c1c; margin: 0.3em 0; }
+.notices h3 { font-size: 1em; margin: 0.6em 0 0.2em; }
+.notices p { margin: 0.2em 0 0.6em; }
 .flags { background: #fff4e5; border: 2px solid #e08a00; padding: 0.4em 1em; }
 .flags.clear { background: #eef7ee; border-color: #4a9a4a; }
 .flags li { margin: 0.2em 0; }
@@ -81,7 +86,8 @@ def _contents_html(report: Report, names: Sequence[str], lead: Sequence[ReportFi
         return "".join(f'<li><a href="#{_esc(_figure_id(f))}">{_esc(FIGURE_TITLES.get(f.key, f.key))}'
                        "</a></li>" for f in figs)
 
-    items = ['<li><a href="#flags">Look at this</a></li>']
+    items = (['<li><a href="#notices">Read this first</a></li>'] if report.notices else [])
+    items.append('<li><a href="#flags">Look at this</a></li>')
     if report.multi:
         items.append('<li><a href="#runs">Runs</a></li>')
         items.append(figure_links(lead))
@@ -96,6 +102,16 @@ def _contents_html(report: Report, names: Sequence[str], lead: Sequence[ReportFi
 
 def _anchor(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_-]", "-", name)
+
+
+def _notices_html(report: Report) -> str:
+    """The box at the top: a run still going, a damaged journal (empty when there is none)."""
+    if not report.notices:
+        return ""
+    items = "".join(f'<div class="notice {_esc(n.kind)}"><h3>{_esc(n.title)}</h3>'
+                    f"<p>{_esc(n.page)}</p></div>" for n in report.notices)
+    return (f'<section id="notices" class="notices" role="alert"><h2>Read this first</h2>'
+            f"{items}</section>")
 
 
 def _flags_html(report: Report) -> str:
@@ -144,7 +160,7 @@ def render_html(report: Report) -> str:
              f"<h1>autotune report: {_esc(report.path)}</h1>",
              f'<p class="meta">written {_esc(datetime.now(UTC).isoformat(timespec="seconds"))}'
              " from the run files (read only; no rig was contacted)</p>",
-             _flags_html(report)]
+             _notices_html(report), _flags_html(report)]
     lead = [f for f in report.figures if f.section == ""] if report.multi else []
     parts.append(_contents_html(report, names, lead))
     if report.multi:

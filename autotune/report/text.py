@@ -199,11 +199,13 @@ def _overview_line(name: str, run: Run) -> str:
 
 
 def format_text(report: Report) -> str:
-    """The short text summary: flags first, then each run's header and measurements.
+    """The short text summary: the notices (a run still going, a damaged journal) as ``NOTE:``
+    lines, the flags, then each run's header and measurements.
 
     A folder of more than three runs gets one line per run instead of a section each.
     """
-    lines = [f"autotune report of {report.path}"]
+    lines = [f"NOTE: {notice.text}" for notice in report.notices]
+    lines.append(f"autotune report of {report.path}")
     lines += _fmt_flags(report)
     names = list(report.headers)
     if report.multi:
