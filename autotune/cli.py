@@ -42,7 +42,7 @@ import argparse
 import atexit
 import dataclasses
 import difflib
-import functools
+import importlib
 import logging
 import math
 import os
@@ -75,7 +75,7 @@ from autotune.errors import (
     RigTimeout,
 )
 from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, utc_now, write_json_atomic
-from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder, holder_if_running, holder_text
+from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder
 from autotune.plausible import SEED_MAX, SERVER_TIMEOUT_S, THERMAL_STEP_HZ, Plausible
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
 from autotune.display import ProgressDisplay, progress_mode, progress_text
@@ -933,11 +933,22 @@ def _resume_command(command: str, config_path: str, run_dir: Path) -> str:
     return f"autotune {command} --config {shlex.quote(str(config_path))} --resume {shlex.quote(str(run_dir))}"
 
 
-def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
-    from autotune import runner
+def _deferred(module: str, name: str, *bound: Any) -> Callable[..., Any]:
+    """``module.name`` (with ``bound`` first arguments), imported at its first call.
 
-    return _act_on_rig(ns, command, functools.partial(runner.prepare, command), runner.execute,
-                       _summary, _exit_for_result)
+    The run's modules load scipy, scikit-optimize and matplotlib (seconds on a loaded
+    machine); a command imports them only after its first line (what it does, which endpoint)
+    is on the terminal, so that a rig that does not answer is never met by silence.
+    """
+    def call(*args: Any, **kwargs: Any) -> Any:
+        return getattr(importlib.import_module(module), name)(*bound, *args, **kwargs)
+
+    return call
+
+
+def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
+    return _act_on_rig(ns, command, _deferred("autotune.runner", "prepare", command),
+                       _deferred("autotune.runner", "execute"), _summary, _exit_for_result)
 
 
 def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any],
@@ -1194,8 +1205,6 @@ def _track_summary(result: dict[str, Any]) -> str:
 
 
 def _cmd_track(ns: argparse.Namespace) -> int:
-    from autotune import track as tracking
-
     if ns.interval_s is not None or ns.cycles is not None:
         print("autotune: track: --interval-s and --cycles were removed: track now holds the "
               "condition all night in one run folder, with checks at a cadence it plans from the "
@@ -1203,31 +1212,9 @@ def _cmd_track(ns: argparse.Namespace) -> int:
               "[track] max_rig_time_s, max_wall_time_s or end_at_local_time in the config, or "
               "with SIGINT/SIGTERM (README: Holding the condition overnight)", file=sys.stderr)
         return EXIT_BAD_INPUT
-    return _act_on_rig(ns, "track", tracking.prepare_track, tracking.execute_track,
-                       _track_summary,
+    return _act_on_rig(ns, "track", _deferred("autotune.track", "prepare_track"),
+                       _deferred("autotune.track", "execute_track"), _track_summary,
                        lambda r: EXIT_OK if r["status"] == "ended" else EXIT_BELOW_ACCEPTANCE)
-
-
-def _report_notes(path: Path, runs: Sequence[Path]) -> list[str]:
-    """What a reader must know before the report of ``path``: a run still being written (its
-    holder), and a damaged journal (where, what, and that the report stops before it)."""
-    from autotune.journal import JOURNAL_NAME, read_journal_prefix
-
-    notes = []
-    folders = list(dict.fromkeys([path, *runs]))
-    for folder in folders:
-        holder = holder_if_running(folder)
-        if holder is not None:
-            notes.append(f"{folder}: the run is still going ({holder_text(holder)}); this "
-                         f"report shows the records written so far")
-    for folder in runs:
-        if not (folder / JOURNAL_NAME).exists():
-            continue
-        records, damage = read_journal_prefix(folder / JOURNAL_NAME)
-        if damage is not None:
-            notes.append(f"{damage.where()}; this report shows the {len(records)} records "
-                         f"before it and nothing after it")
-    return notes
 
 
 def _cmd_report(ns: argparse.Namespace) -> int:
@@ -1236,8 +1223,6 @@ def _cmd_report(ns: argparse.Namespace) -> int:
     def body() -> int:
         text = report.write_report(Path(ns.run_dir), plot=not ns.no_plot,
                                    out=Path(ns.out) if ns.out is not None else None)
-        for note in _report_notes(Path(ns.run_dir), report.find_runs(Path(ns.run_dir))):
-            print(f"NOTE: {note}")
         print(text)
         return EXIT_OK
 

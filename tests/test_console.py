@@ -149,3 +149,48 @@ def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
     lines = done.stderr.splitlines()
     assert lines[0].endswith("connect (endpoint tcp://127.0.0.1:9; timeout 1.0 s; retries 2)")
     assert sum("bus_retry" in line for line in lines) == 2 * 2
+
+
+#: Run the CLI in a process that writes a line to stderr when a heavy library is first imported
+#: (a finder on sys.meta_path, Python language reference section 5.5, "The meta path").
+_WATCH_IMPORTS = """
+import sys
+
+class Watch:
+    heavy = {"scipy", "skopt", "matplotlib", "sklearn"}
+
+    def find_spec(self, name, path=None, target=None):
+        if name in self.heavy:
+            self.heavy.discard(name)
+            print(f"IMPORTED {name}", file=sys.stderr, flush=True)
+        return None
+
+sys.meta_path.insert(0, Watch())
+from autotune.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+@pytest.mark.parametrize("command", ["calibrate", "track"])
+def test_the_first_line_comes_before_the_heavy_imports(tmp_path, command) -> None:
+    """A rig that does not answer: the command's first line (connect, naming the endpoint) is
+    on the terminal before scipy, scikit-optimize or matplotlib is imported (they take seconds
+    on a loaded machine; benchmarks/first_line.py measures it), and the run still imports them
+    afterwards, so the watch is not idle."""
+    import tomllib
+
+    from cli_helpers import to_toml
+
+    data = tomllib.loads((REPO / "configs" / "dry-run.toml").read_text())
+    data["bus"].update(endpoint="tcp://127.0.0.1:9", timeout_s=0.5, retries=1, backoff_s=0.1)
+    data.setdefault("recovery", {}).update(step_retries=0, retry_wait_s=0.1)
+    config = tmp_path / "down.toml"
+    config.write_text(to_toml(data))
+    done = subprocess.run([sys.executable, "-c", _WATCH_IMPORTS, command, "--config",
+                           str(config), "--out", str(tmp_path / "run")], capture_output=True,
+                          text=True, timeout=300, cwd=REPO, stdin=subprocess.DEVNULL)
+    assert done.returncode == 3, done.stderr[-2000:]
+    lines = done.stderr.splitlines()
+    assert lines[0].endswith("connect (endpoint tcp://127.0.0.1:9; timeout 0.5 s; retries 1)"), \
+        lines[:3]
+    assert any(line.startswith("IMPORTED ") for line in lines[1:]), lines
