@@ -1421,8 +1421,11 @@ def _parser() -> argparse.ArgumentParser:
                                      "(never a rig) and print what to look at first and each "
                                      "run's summary; write its figures, an overview report.png "
                                      "and a self-contained report.html (images inline) next to "
-                                     "the runs or under --out. Exit 0, or 2 when the folder is "
-                                     "not a run folder or a file in it is damaged.")
+                                     "the runs or under --out. A run still being written (its "
+                                     "holder named) and a damaged journal (shown up to its "
+                                     "damaged line) are said first, on the terminal and at the "
+                                     "top of the page. Exit 0, or 2 when the folder is not a "
+                                     "run folder or its manifest or result file is damaged.")
     rep.add_argument("run_dir", help="a run folder, a dry run's folder or a track folder")
     rep.add_argument("--no-plot", action="store_true", help="text summary only")
     rep.add_argument("--out", metavar="DIR",

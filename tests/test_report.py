@@ -721,10 +721,11 @@ _HOLD = """
 import sys
 from pathlib import Path
 from autotune.runlock import RunLock
-lock = RunLock.acquire(Path(sys.argv[1]), "calibrate")
+locks = [RunLock.acquire(Path(folder), "dry-run") for folder in sys.argv[1:]]
 print("held", flush=True)
 sys.stdin.read()
-lock.release()
+for lock in locks:
+    lock.release()
 """
 
 
@@ -759,6 +760,26 @@ def test_a_run_still_going_is_told_at_the_top_of_the_page(tmp_path: Path) -> Non
     page = _page_sections(run / report.HTML_NAME)
     assert "notices" not in page.order and page.order[0] == "flags"
     assert "Read this first" not in (run / report.HTML_NAME).read_text(encoding="utf-8")
+
+
+def test_one_process_holding_a_folder_and_its_run_is_told_once(tmp_path: Path) -> None:
+    """A dry run holds its output folder and the stage it is in: a report of the folder tells
+    that one process (its pid from the operating system) once, at the stage's folder."""
+    rng = np.random.default_rng(14)
+    folder = tmp_path / "dry"
+    run = _write_run(folder / "calibrate", [_point(rng, "point", 0, 500.0, 0.0)], end=None)
+    holder = subprocess.Popen([sys.executable, "-c", _HOLD, str(folder), str(run)], cwd=REPO,
+                              text=True, stdin=subprocess.PIPE, stdout=subprocess.PIPE)
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "held"
+        built = report.build_report(folder, draw=False)
+    finally:
+        holder.communicate("", timeout=30)
+    assert [n.kind for n in built.notices] == ["running"]
+    assert f"The run in {run} was still being written" in built.notices[0].page
+    assert f"process {holder.pid} of " in built.notices[0].page
+    html_page = report.render_html(built)
+    assert html_page.count("This run was still going") == 1
 
 
 # --------------------------------------------------------------------------------------------

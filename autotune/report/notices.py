@@ -43,14 +43,18 @@ def report_notices(path: Path, runs: Sequence[Run]) -> list[Notice]:
 
     A folder is "still running" while a live process holds its lock
     (:func:`autotune.runlock.holder_if_running`; the folder of runs itself too, as a dry run
-    holds it); a journal is damaged where :func:`autotune.journal.read_journal_prefix` stopped.
+    holds it; one process holding several folders is told once, at its run's folder); a journal
+    is damaged where :func:`autotune.journal.read_journal_prefix` stopped.
     """
     notices = []
     counts = {run.path: len(run.records) for run in runs}
-    for folder in dict.fromkeys([Path(path), *(run.path for run in runs)]):
+    told: set[object] = set()
+    # The runs first: a dry run holds its own folder and the stage's, one process told once.
+    for folder in dict.fromkeys([*(run.path for run in runs), Path(path)]):
         holder = holder_if_running(folder)
-        if holder is None:
+        if holder is None or (holder.get("pid") is not None and holder.get("pid") in told):
             continue
+        told.add(holder.get("pid"))
         who = holder_text(holder)
         written = (f"the {counts[folder]} journal records written so far" if folder in counts
                    else "the records written so far")
