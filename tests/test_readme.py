@@ -51,6 +51,8 @@ HOW = {
     "python3 benchmarks/bench_sim.py": ("slow", "a benchmark (about 10 s of timing loops)"),
     "python3 benchmarks/bench_bus.py": ("slow", "a benchmark (about 10 s of round trips)"),
     "python3 benchmarks/phase_design.py": ("help", "a study of minutes on 2 cores"),
+    "python3 benchmarks/first_line.py": ("slow", "a benchmark (20 process starts, about a "
+                                         "minute on a quiet machine)"),
     "python3 -m autotune.bench": ("help", "the study takes minutes on 2 cores"),
     "python3 -m autotune.bench --quick": ("help", "the study takes minutes on 2 cores"),
     "python3 -m autotune.bench --night": ("help", "the night study takes minutes on 2 cores"),
