@@ -79,6 +79,17 @@ class ServerProcess:
             self._log_file.close()
 
 
+@dataclass(frozen=True)
+class CurveFiles:
+    """Throwaway CURVE certificate files of one test (tests/conftest.py's ``curve_files``)."""
+
+    server_public: Path
+    server_secret: Path
+    allowed_dir: Path
+    client_secret: Path
+    stranger_secret: Path
+
+
 def spawn_server(tmp_path: Path, name: str, *flags: str, bind: str = "tcp://127.0.0.1:0",
                  seed: int | None = SEED, wait: bool = True, config: Path = SIM_CONFIG,
                  command: str = "rig") -> ServerProcess:

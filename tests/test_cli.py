@@ -6,6 +6,7 @@ reference for the quality of what a run chose.
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 import signal
@@ -14,6 +15,7 @@ import subprocess
 import sys
 import time
 import tomllib
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +23,7 @@ import pytest
 
 from autotune.bus import BusClient
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
-from rig_process import REPO, ServerProcess, spawn_server
+from rig_process import REPO, ServerProcess
 
 from cli_helpers import DRY_RUN
 from cli_helpers import autotune as _autotune
@@ -30,17 +32,10 @@ from cli_helpers import write_config as _write_config
 
 
 @pytest.fixture
-def rig_server(tmp_path: Path) -> Any:
-    servers: list[ServerProcess] = []
-
-    def start(seed: int = 11) -> ServerProcess:
-        server = spawn_server(tmp_path, f"rig{len(servers)}", seed=seed)
-        servers.append(server)
-        return server
-
-    yield start
-    for server in servers:
-        server.stop()
+def rig_server(servers: Callable[..., ServerProcess]) -> Callable[..., ServerProcess]:
+    """Factory of simulated rig processes seeded 11 unless told (tests/conftest.py's
+    ``servers``), all stopped at teardown."""
+    return functools.partial(servers, seed=11)
 
 
 def _client(endpoint: str) -> BusClient:

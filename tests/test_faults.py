@@ -88,21 +88,6 @@ def flaky_driver_toml(folder: Path, *fail: str) -> Path:
     return path
 
 
-@pytest.fixture
-def servers(tmp_path: Path) -> Any:
-    """Factory of simulated rig processes, all stopped at teardown."""
-    started: list[ServerProcess] = []
-
-    def start(*flags: str, name: str | None = None, **options: Any) -> ServerProcess:
-        server = spawn_server(tmp_path, name or f"rig{len(started)}", *flags, **options)
-        started.append(server)
-        return server
-
-    yield start
-    for server in started:
-        server.stop()
-
-
 #: A bus that gives up quickly on its own (two attempts of 0.4 s): with a third of the replies
 #: dropped, one call in nine fails at the bus; the run's recovery (four attempts of the bus's
 #: two) leaves one in 6561.
@@ -281,19 +266,25 @@ def test_a_second_signal_ends_the_stop_at_once(tmp_path, servers):
     _resume_on_a_new_rig(servers, endpoint, hint, run)
 
 
-def test_a_kill_between_a_moves_intent_and_its_outcome_is_settled_by_the_resume(tmp_path,
-                                                                                servers):
-    """SIGKILL while an apply's reply is on its way (the rig applied it and delays its reply):
-    the journal names the move (a request of op apply, no outcome); the resume writes its
-    outcome from the rig's status (a move, reconciled) and finishes; every apply the rig
-    executed (its own log) has one move record, every shot it took is in the journal."""
-    server = servers("--delay-s", "0.6", "--log-level", "debug", name="slow")
+def _kill_while_the_reply_is_on_its_way(tmp_path: Path, server: ServerProcess, op: str,
+                                        outcomes: tuple[str, ...], *, stop_first: bool = False
+                                        ) -> tuple[Path, Path, dict[str, Any]]:
+    """A calibration against ``server`` (replies delayed 0.6 s) SIGKILLed 0.15 s after its
+    request of ``op`` is journaled (``stop_first``: after a SIGTERM sent at the first
+    acquisition, for the request the stop makes): the rig executed the request, its reply was
+    on its way. Checks that the journal names the request and no outcome of it (record types
+    ``outcomes``). Returns the config, the run folder and the request record."""
     config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
     run = tmp_path / "run"
     process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
     try:
+        if stop_first:
+            wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
+                            timeout_s=300, process=process)
+            process.send_signal(signal.SIGTERM)
         intent = wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "request"
-                                 and r["op"] == "apply", timeout_s=300, process=process)
+                                 and r["op"] == op, timeout_s=60 if stop_first else 300,
+                                 process=process)
         time.sleep(0.15)  # the request reached the rig; its reply comes 0.6 s after
         process.send_signal(signal.SIGKILL)
         process.communicate(timeout=60)
@@ -303,13 +294,34 @@ def test_a_kill_between_a_moves_intent_and_its_outcome_is_settled_by_the_resume(
         process.communicate()
     records = read_journal(run / JOURNAL_NAME)
     assert not any(r.get("msg_id") == intent["msg_id"] for r in records
-                   if r["type"] in ("move", "move_unconfirmed")), "the kill came too late"
+                   if r["type"] in outcomes), "the kill came too late"
+    return config, run, intent
+
+
+def _resume_settles(config: Path, run: Path, intent: dict[str, Any], kind: str
+                    ) -> list[dict[str, Any]]:
+    """The resume finishes the run (exit 0 or 4), the journal keeps its invariants and holds
+    one ``kind`` record of the request's msg_id, written from the rig's status (reconciled).
+    Returns the journal's records."""
     resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
     assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
     records = read_journal(run / JOURNAL_NAME)
     check_invariants(records)
-    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == "move"]
+    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == kind]
     assert len(settled) == 1 and settled[0]["reconciled"] is True, settled
+    return records
+
+
+def test_a_kill_between_a_moves_intent_and_its_outcome_is_settled_by_the_resume(tmp_path,
+                                                                                servers):
+    """SIGKILL while an apply's reply is on its way (the rig applied it and delays its reply):
+    the journal names the move (a request of op apply, no outcome); the resume writes its
+    outcome from the rig's status (a move, reconciled) and finishes; every apply the rig
+    executed (its own log) has one move record, every shot it took is in the journal."""
+    server = servers("--delay-s", "0.6", "--log-level", "debug", name="slow")
+    config, run, intent = _kill_while_the_reply_is_on_its_way(
+        tmp_path, server, "apply", ("move", "move_unconfirmed"))
+    records = _resume_settles(config, run, intent, "move")
     executed = [e for e in server.events()
                 if e.get("event") == "request_executed" and e.get("op") == "apply"]
     assert len(executed) == sum(1 for r in records if r["type"] == "move")
@@ -322,28 +334,6 @@ def test_a_kill_while_the_rig_goes_safe_is_settled_by_the_resume(tmp_path, serve
     its reply): the journal names the safe request (written ahead); the resume writes its
     outcome from the rig's status (safe, reconciled) and finishes the run."""
     server = servers("--delay-s", "0.6", name="slow")
-    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
-    run = tmp_path / "run"
-    process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
-    try:
-        wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "acquisition",
-                        timeout_s=300, process=process)
-        process.send_signal(signal.SIGTERM)
-        intent = wait_for_record(run / JOURNAL_NAME, lambda r: r["type"] == "request"
-                                 and r["op"] == "safe", timeout_s=60, process=process)
-        time.sleep(0.15)  # the request reached the rig; its reply comes 0.6 s after
-        process.send_signal(signal.SIGKILL)
-        process.communicate(timeout=60)
-    finally:
-        if process.poll() is None:
-            process.kill()
-        process.communicate()
-    records = read_journal(run / JOURNAL_NAME)
-    assert not any(r.get("msg_id") == intent["msg_id"] for r in records
-                   if r["type"] in ("safe", "safe_failed")), "the kill came too late"
-    resumed = autotune("calibrate", "--config", str(config), "--resume", str(run))
-    assert resumed.returncode in (0, 4), resumed.stderr[-3000:]
-    records = read_journal(run / JOURNAL_NAME)
-    check_invariants(records)
-    settled = [r for r in records if r.get("msg_id") == intent["msg_id"] and r["type"] == "safe"]
-    assert len(settled) == 1 and settled[0]["reconciled"] is True, settled
+    config, run, intent = _kill_while_the_reply_is_on_its_way(
+        tmp_path, server, "safe", ("safe", "safe_failed"), stop_first=True)
+    _resume_settles(config, run, intent, "safe")

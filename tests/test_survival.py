@@ -30,24 +30,9 @@ from autotune.bus import BusClient
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
 from journal_checks import check_invariants, journal_shots
-from rig_process import REPO, ServerProcess, spawn_server
+from rig_process import REPO, ServerProcess
 
 SIGNALS = (signal.SIGKILL, signal.SIGINT, signal.SIGTERM)
-
-
-@pytest.fixture
-def servers(tmp_path: Path) -> Any:
-    """Factory of simulated rig processes, all stopped at teardown."""
-    started: list[ServerProcess] = []
-
-    def start(*flags: str, name: str | None = None, **options: Any) -> ServerProcess:
-        server = spawn_server(tmp_path, name or f"rig{len(started)}", *flags, **options)
-        started.append(server)
-        return server
-
-    yield start
-    for server in started:
-        server.stop()
 
 
 def _client(endpoint: str) -> BusClient:
