@@ -702,8 +702,10 @@ def _child_seed(seed: int) -> int:
 
 
 def _refused_to_start(log: Any, exc: BaseException) -> None:
-    """A server that will not start: its JSON log line, and a sentence for the person."""
-    log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
+    """A server that will not start: a sentence for the person, and its JSON log line where
+    stderr goes to a log collector (a file or a pipe; on a terminal the sentence is all)."""
+    if progress_mode(quiet=False) != "terminal":
+        log.error("server_refused_to_start", error=str(exc), error_type=type(exc).__name__)
     print(f"autotune: the server did not start: {exc}", file=sys.stderr)
 
 

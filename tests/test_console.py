@@ -151,6 +151,38 @@ def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
     assert sum("bus_retry" in line for line in lines) == 2 * 2
 
 
+def test_a_server_that_does_not_start_on_a_terminal_says_only_the_sentence(tmp_path) -> None:
+    """autotune rig with a missing config, its output on a real terminal (a pseudo-terminal,
+    POSIX openpty): exit 2 and the sentence naming the file, no JSON line (that goes to a log
+    collector, a file or a pipe, as the test above checks)."""
+    import os
+    import pty
+
+    missing = tmp_path / "nope.toml"
+    master, slave = pty.openpty()
+    try:
+        process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "rig", "--config",
+                                    str(missing), "--bind", "tcp://127.0.0.1:0"], cwd=REPO,
+                                   stdin=subprocess.DEVNULL, stdout=slave, stderr=slave)
+        os.close(slave)
+        chunks = []
+        while True:
+            try:
+                chunk = os.read(master, 4096)
+            except OSError:  # EIO: the terminal's other end closed (Linux)
+                break
+            if not chunk:
+                break
+            chunks.append(chunk)
+        assert process.wait(timeout=60) == 2
+    finally:
+        os.close(master)
+    lines = b"".join(chunks).decode("utf-8", "replace").splitlines()
+    assert not [line for line in lines if line.lstrip().startswith("{")], lines
+    assert any(line.startswith("autotune: the server did not start:") and str(missing) in line
+               for line in lines), lines
+
+
 #: Run the CLI in a process that writes a line to stderr when a heavy library is first imported
 #: (a finder on sys.meta_path, Python language reference section 5.5, "The meta path").
 _WATCH_IMPORTS = """
