@@ -669,7 +669,11 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
             try:
                 endpoint = server.start()
             except zmq.ZMQError as exc:
-                log.error("server_bind_failed", error=str(exc))
+                if progress_mode(quiet=False) != "terminal":
+                    log.error("server_bind_failed", error=str(exc))
+                print(f"autotune: the server did not start: cannot listen on {bind} "
+                      f"({zmq.strerror(exc.errno)}); --bind another endpoint, or port 0 for a "
+                      "free one", file=sys.stderr)
                 return 1
             served_requests = True
             if ready_file is not None:

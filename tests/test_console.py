@@ -151,6 +151,26 @@ def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
     assert sum("bus_retry" in line for line in lines) == 2 * 2
 
 
+def test_a_server_that_cannot_listen_says_so_in_a_sentence(tmp_path) -> None:
+    """autotune rig on a port a listening socket already holds (the kernel refuses a second
+    bind: EADDRINUSE, POSIX bind(2)): exit 1, its JSON log line for a collector, and a sentence
+    naming the endpoint and what to do."""
+    import socket
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        endpoint = f"tcp://127.0.0.1:{taken.getsockname()[1]}"
+        done = _autotune("rig", "--bind", endpoint, timeout=60)
+    assert done.returncode == 1, done.stderr
+    assert '"event": "server_bind_failed"' in done.stderr
+    sentence = [line for line in done.stderr.splitlines()
+                if line.startswith("autotune: the server did not start:")]
+    assert len(sentence) == 1 and f"cannot listen on {endpoint}" in sentence[0], done.stderr
+    assert "Address already in use" in sentence[0] and "--bind another" in sentence[0]
+    assert len(sentence[0]) <= cli.CONSOLE_WIDTH, sentence
+
+
 def test_a_server_that_does_not_start_on_a_terminal_says_only_the_sentence(tmp_path) -> None:
     """autotune rig with a missing config, its output on a real terminal (a pseudo-terminal,
     POSIX openpty): exit 2 and the sentence naming the file, no JSON line (that goes to a log
