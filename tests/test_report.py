@@ -715,6 +715,11 @@ def test_a_damaged_journal_is_told_at_the_top_of_the_page(tmp_path: Path) -> Non
     assert "text that is not JSON: this is not JSON" in notice
     assert "shows the 9 records before that line and nothing after it" in notice
     assert 'href="#notices"' in (run / report.HTML_NAME).read_text(encoding="utf-8")
+    # The records after the damage hold the run's end: it is not called running, nor resumable.
+    flags = " ".join(page.text["flags"].split())
+    assert "the journal is damaged at line 10" in flags and "cannot be resumed" in flags
+    assert "--resume" not in flags and "did not end" not in flags
+    assert "journal damaged" in page.text[f"run-{run.name}"]
 
 
 _HOLD = """

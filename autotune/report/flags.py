@@ -74,6 +74,7 @@ def run_flags(run: Run) -> list[Flag]:
     Returns
     -------
     list of Flag
+        ``damaged_journal``: no end record before the journal's first damaged line;
         ``did_not_end``: no end record (still running, or killed); ``ended_badly``: ended
         interrupted, aborted or failed; ``below_acceptance``; ``safe_failed``: the return to
         safe set-points failed; ``alarm``: an alarm-like decision; ``edge_pile``: more than a
@@ -83,7 +84,12 @@ def run_flags(run: Run) -> list[Flag]:
         ``poor_fit``: a fringe fit whose chi-square p-value is below 0.001.
     """
     flags: list[Flag] = []
-    if run.ended is None:
+    if run.ended is None and run.damage is not None:
+        flags.append(Flag("damaged_journal", (
+            f"the journal is damaged at line {run.damage.line} (see the note at the top): what "
+            f"the run did after it, and whether it ended, is not shown; it cannot be resumed, "
+            f"a new run (--out) starts afresh")))
+    elif run.ended is None:
         last = run.records[-1].get("t_wall") if run.records else None
         age = _age(last)
         text = (f"the run did not end: no end record (still running, or killed)"

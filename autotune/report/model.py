@@ -38,6 +38,7 @@ phase lock's steps); checks, scans, verifications and corrections are not search
 _FIELDS = ("empty", "one_photon")
 _FIELD_NAMES = {"empty": "empty field", "one_photon": "one photon"}
 _RUNNING = "running or killed"
+_DAMAGED = "journal damaged"
 
 
 @dataclass
@@ -141,10 +142,11 @@ class Run:
 
     @property
     def status(self) -> str:
-        """The end record's status, or ``running or killed`` without an end record."""
+        """The end record's status; without one, ``journal damaged`` when the journal is read
+        only up to a damaged line (its end may lie beyond), else ``running or killed``."""
         if self.ended is not None:
             return self.ended
-        return _RUNNING
+        return _DAMAGED if self.damage is not None else _RUNNING
 
     @property
     def confidence(self) -> float:
