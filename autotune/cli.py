@@ -1464,8 +1464,8 @@ def _add_output_options(parser: argparse.ArgumentParser, *, log_level: bool,
                                     if run_folder else ""))
     parser.add_argument("--quiet", action="store_true",
                         default=False if default is None else default,
-                        help="no progress line, and only warnings and errors in the log; "
-                             "results are still printed")
+                        help=("no progress line, and only" if run_folder else "only")
+                        + " warnings and errors in the log; results are still printed")
 
 
 def _console_level(ns: argparse.Namespace) -> str:

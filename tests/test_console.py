@@ -17,6 +17,7 @@ from rig_process import REPO
 
 MOVING = ("calibrate", "retune", "track", "serve", "probe")
 NOT_MOVING = ("rig", "dry-run", "report")
+PROGRESS = ("calibrate", "retune", "track", "dry-run")
 
 
 def _autotune(*args: str, timeout: float = 120.0) -> subprocess.CompletedProcess[str]:
@@ -149,6 +150,17 @@ def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
     lines = done.stderr.splitlines()
     assert lines[0].endswith("connect (endpoint tcp://127.0.0.1:9; timeout 1.0 s; retries 2)")
     assert sum("bus_retry" in line for line in lines) == 2 * 2
+
+
+@pytest.mark.parametrize("command", MOVING + NOT_MOVING)
+def test_quiet_speaks_of_a_progress_line_only_where_there_is_one(command) -> None:
+    """--quiet's help names the progress line only for the commands that draw one (a stage or
+    a night: calibrate, retune, track, dry-run); options are described as they are (common
+    practice of command-line help)."""
+    done = _autotune(command, "--help", timeout=60)
+    assert done.returncode == 0
+    quiet = " ".join(done.stdout.split("--quiet ", 2)[-1].split("\n\n")[0].split())
+    assert quiet.startswith("no progress line" if command in PROGRESS else "only warnings"), quiet
 
 
 def test_a_server_that_cannot_listen_says_so_in_a_sentence(tmp_path) -> None:
