@@ -43,8 +43,14 @@ Flags (:func:`run_flags`) list what a person should look at first: search points
 edge of the box, a recommendation at an edge, a phase shift far from pi at the chosen point, a
 poor fringe fit, a run that did not end (or ended badly), a failed return to safe set-points.
 
+Before the flags, the report says what a reader must know first
+(:mod:`~autotune.report.notices`): a run still being written by another process, and a damaged
+journal (shown up to its first damaged line); the terminal prints them as ``NOTE:`` lines, the
+page in a box at its top.
+
 The package, by concern: :mod:`~autotune.report.model` (the journal read into runs),
-:mod:`~autotune.report.flags`, :mod:`~autotune.report.text` (headers and the terminal summary),
+:mod:`~autotune.report.notices`, :mod:`~autotune.report.flags`, :mod:`~autotune.report.text`
+(headers and the terminal summary),
 :mod:`~autotune.report.figures` (one module per kind of figure), :mod:`~autotune.report.build`
 (the report of a folder) and :mod:`~autotune.report.page` (the HTML page and the files).
 """
