@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 from autotune.report.model import Run
@@ -37,3 +38,19 @@ def _title(fig: Any, run: Run | None, text: str) -> None:
     fig.suptitle(f"{run.name}: {text}" if run is not None else text, fontsize=11)
 
 
+
+
+def _finish_against_detuning(fig: Any, ax: Any, run: Run, chosen: Mapping[str, float] | None,
+                             *, ylabel: str, title: str, gid: str, label: str,
+                             legend_size: float) -> None:
+    """What every figure against the detuning set-point ends with: the chosen detuning (a
+    dashed red line labelled ``label`` and its value in kHz, ``gid`` for tests), the axes'
+    labels, the grid, the legend and the title."""
+    if chosen is not None and "detuning" in chosen:
+        ax.axvline(chosen["detuning"] / 1e3, color="red", lw=1.2, ls="--", zorder=4, gid=gid,
+                   label=f"{label} {chosen['detuning'] / 1e3:+.2f} kHz")
+    ax.set_xlabel("detuning set-point (kHz)")
+    ax.set_ylabel(ylabel)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=legend_size, loc="best")
+    _title(fig, run, title)

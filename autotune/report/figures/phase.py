@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _new_figure, _title
+from autotune.report.figures._base import _finish_against_detuning, _new_figure
 from autotune.report.model import Run
 
 #: Two-sided 95 % point of the standard normal (scipy.stats.norm.ppf(0.975)).
@@ -138,20 +138,14 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
                        color="0.5", alpha=0.12, lw=0, zorder=0)
     else:
         ax.axhline(1.0, color="black", lw=1.0, ls=":", label="π (the 2π condition)")
-    if chosen is not None and "detuning" in chosen:
-        ax.axvline(chosen["detuning"] / 1e3, color="red", lw=1.2, ls="--", zorder=4,
-                   gid="chosen-detuning",
-                   label=f"chosen detuning {chosen['detuning'] / 1e3:+.2f} kHz")
     if final is not None and final in done:
         k = done.index(final)
         ax.plot(x[k], y[k], marker="*", ms=16, mfc="none", mec="red", mew=1.6, ls="none",
                 gid="chosen", zorder=5,
                 label=f"{final.name}: {y[k]:.3f} π ± {e[k]:.3f} π")
-    ax.set_xlabel("detuning set-point (kHz)")
-    ax.set_ylabel("photon phase shift (π rad)")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, loc="best")
-    _title(fig, run, "photon phase shift and the lock's model")
+    _finish_against_detuning(fig, ax, run, chosen, ylabel="photon phase shift (π rad)",
+                             title="photon phase shift and the lock's model",
+                             gid="chosen-detuning", label="chosen detuning", legend_size=7)
     if curve is not None:
         model = ("Green: the phase lock's own fitted curve (phase = α + s d + c (d/h)³ + β t, "
                  "a Bayesian linear fit journaled with its covariance when the lock stopped) and "

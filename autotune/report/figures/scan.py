@@ -7,7 +7,8 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _errorbar, _marker, _new_figure, _title
+from autotune.report.figures._base import (_errorbar, _finish_against_detuning, _marker,
+                                           _new_figure)
 from autotune.report.model import SCAN_LABELS, Run, _level
 
 
@@ -31,15 +32,9 @@ def figure_scan(run: Run) -> tuple[Any, str] | None:
         hi = np.array([m.value("inversion_high") for m in pick])
         _errorbar(ax, x, y, yerr=[y - lo, hi - y], fmt=_marker(label), capsize=3, ms=6,
                     label=f"{label} ({len(pick)})", gid=f"scan-{label}")
-    chosen = run.chosen
-    if chosen is not None and "detuning" in chosen:
-        ax.axvline(chosen["detuning"] / 1e3, color="red", ls="--", lw=1.2, gid="chosen",
-                   label=f"chosen {chosen['detuning'] / 1e3:+.2f} kHz")
-    ax.set_xlabel("detuning set-point (kHz)")
-    ax.set_ylabel("fringe inversion (dimensionless)")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8, loc="best")
-    _title(fig, run, "detuning scan / lock steps")
+    _finish_against_detuning(fig, ax, run, run.chosen, ylabel="fringe inversion (dimensionless)",
+                             title="detuning scan / lock steps", gid="chosen", label="chosen",
+                             legend_size=8)
     caption = (f"Inversion against detuning for the measurements labelled "
                f"{', '.join(sorted({m.label for m in done}))}, with their "
                f"{_level(run.confidence)} intervals; dashed: the chosen detuning.")
