@@ -220,7 +220,7 @@ def test_a_sim_rig_config_that_is_not_utf8_names_the_file(tmp_path):
     """Binary garbage is a SimConfigError naming the file."""
     path = tmp_path / "sim.toml"
     path.write_bytes(b"\xff\xfe\x00")
-    with pytest.raises(SimConfigError, match=r"sim\.toml: expected a TOML file \(UTF-8 text\)"):
+    with pytest.raises(SimConfigError, match=r"sim\.toml: <file>: expected a TOML file \(UTF-8 text\)"):
         load_sim_config(path)
 
 

@@ -1,0 +1,280 @@
+"""One way to check what a person writes: a TOML file (or its dict) against typed dataclasses.
+
+A file's layout is declared once, as frozen dataclasses whose field types carry their bounds
+(:func:`table`; :func:`number`, :func:`integer`, :func:`text`, ``Literal[...]`` for a
+choice; a nested table for a table; a default for an optional key). pydantic (v2) validates the whole dict
+against them in one pass, strictly (a bool is not a number, a string is not a number, no NaN or
+infinity), refusing unknown keys; :func:`check` turns every problem it found into a
+:class:`~autotune.errors.ConfigError` of the project's own shape::
+
+    sim-rig.toml: cavity.waist_m: expected a finite number > 0 and <= 1, got -0.0058
+    sim-rig.toml: cavity.waist: expected one of the keys [...], got 'an unknown key': did you mean 'waist_m'?
+
+and raises them all at once. A physical number is also held to the range a lab could mean
+(``number(..., plausible=...)``, :mod:`autotune.plausible`), in the same pass. Rules that join
+several keys are small functions beside each schema, run on the validated result: they return
+their problems (:func:`problem`) rather than raising, so that they too are reported together.
+
+The dataclasses stay plain ``dataclasses`` (``replace``, ``asdict``, equality as before):
+pydantic only reads their annotations.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import functools
+import tomllib
+import types
+import typing
+from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
+from typing import Annotated, Any, Literal, NoReturn, TypeVar
+
+from pydantic import AfterValidator, ConfigDict, Field, Strict, TypeAdapter, ValidationError
+from pydantic_core import PydanticCustomError
+
+from autotune.errors import ConfigError, ConfigErrors
+from autotune.plausible import Plausible
+
+__all__ = ["table", "number", "integer", "text", "refuse", "check", "problem", "read_toml"]
+
+T = TypeVar("T")
+
+#: The error type of a problem this module (or a schema's own rule) words itself.
+_WORDED = "worded"
+
+
+@dataclasses.dataclass(frozen=True)
+class _Expect:
+    """What a key expects, in words (read back from the annotation for every problem)."""
+
+    words: str
+
+
+def _bounds(low: float | None, high: float | None, low_open: bool, high_open: bool) -> str:
+    parts = []
+    if low is not None:
+        parts.append(f"{'>' if low_open else '>='} {low:g}")
+    if high is not None:
+        parts.append(f"{'<' if high_open else '<='} {high:g}")
+    return (" " + " and ".join(parts)) if parts else ""
+
+
+def _limits(low: float | None, high: float | None, low_open: bool, high_open: bool
+            ) -> dict[str, float]:
+    found: dict[str, float] = {}
+    if low is not None:
+        found["gt" if low_open else "ge"] = low
+    if high is not None:
+        found["lt" if high_open else "le"] = high
+    return found
+
+
+def _plausible(spec: Plausible) -> AfterValidator:
+    def check(value: float) -> float:
+        found = spec.problem(float(value))
+        if found is not None:
+            raise PydanticCustomError(_WORDED, "{expected}", {"expected": found[0], "hint": found[1]})
+        return value
+    return AfterValidator(check)
+
+
+def number(low: float | None = None, high: float | None = None, *, low_open: bool = False,
+           high_open: bool = False, plausible: Plausible | None = None,
+           expected: str = "") -> Any:
+    """A finite number (an integer is taken as a float) within ``[low, high]`` (ends open where
+    said), and within the plausible range when one is given. ``expected`` replaces the words
+    ``a finite number >= low and <= high``."""
+    words = expected or "a finite number" + _bounds(low, high, low_open, high_open)
+    extra = (_plausible(plausible),) if plausible is not None else ()
+    return Annotated[float, Strict(), Field(allow_inf_nan=False,
+                                            **_limits(low, high, low_open, high_open)),
+                     *extra, _Expect(words)]
+
+
+def integer(low: int | None = None, high: int | None = None) -> Any:
+    """An integer (not a bool, not a float) within ``[low, high]``."""
+    return Annotated[int, Strict(), Field(**_limits(low, high, False, False)),
+                     _Expect("an integer" + _bounds(low, high, False, False))]
+
+
+def _not_blank(value: str) -> str:
+    if not value.strip():
+        raise PydanticCustomError(_WORDED, "{expected}", {"expected": "a non-empty string"})
+    return value
+
+
+def text(expected: str = "a non-empty string") -> Any:
+    """A string with something besides white space in it."""
+    return Annotated[str, Strict(), AfterValidator(_not_blank), _Expect(expected)]
+
+
+def refuse(key: str, expected: str, got: object) -> NoReturn:
+    """Refuse a value from a table's ``__post_init__`` (a rule joining keys of one table):
+    reported as ``TABLE.key: expected ..., got ...`` with the other problems of the file."""
+    raise PydanticCustomError(_WORDED, "{expected}", {"key": key, "expected": expected, "got": got})
+
+
+def problem(file: str, key: str, expected: str, got: object, hint: str = "") -> ConfigError:
+    """One problem found by a rule beside a schema (for :func:`check`'s ``rules``)."""
+    return ConfigError(file, key, expected, got, hint=hint)
+
+
+@typing.dataclass_transform(frozen_default=True)
+def table(cls: type[T]) -> type[T]:
+    """A frozen dataclass that :func:`check` validates, unknown keys refused."""
+    cls = dataclasses.dataclass(frozen=True)(cls)
+    cls.__pydantic_config__ = ConfigDict(extra="forbid")  # type: ignore[attr-defined]
+    return cls
+
+
+@functools.cache
+def _adapter(cls: type) -> TypeAdapter:
+    return TypeAdapter(cls)
+
+
+def _strip(kind: Any) -> tuple[Any, list[Any]]:
+    """The bare type of an annotation and its metadata (through ``X | None``)."""
+    metadata: list[Any] = []
+    while True:
+        if typing.get_origin(kind) is Annotated:
+            metadata += list(kind.__metadata__)
+            kind = kind.__origin__
+        elif isinstance(kind, types.UnionType) or typing.get_origin(kind) is typing.Union:
+            options = [a for a in typing.get_args(kind) if a is not type(None)]
+            if len(options) != 1:
+                return kind, metadata
+            kind = options[0]
+        else:
+            return kind, metadata
+
+
+def _fields(cls: Any) -> dict[str, Any]:
+    hints = typing.get_type_hints(cls, include_extras=True)
+    return {f.name: hints[f.name] for f in dataclasses.fields(cls) if f.init}
+
+
+def _walk(root: type, loc: Sequence[Any]) -> tuple[Any, list[Any], Any]:
+    """The annotation at ``loc`` (bare type, metadata) and the table type that holds it."""
+    kind, metadata, parent = root, [], None
+    for part in loc:
+        kind, _ = _strip(kind)
+        if dataclasses.is_dataclass(kind):
+            fields = _fields(kind)
+            if part not in fields:
+                return None, [], kind
+            parent, (kind, metadata) = kind, _strip(fields[part])
+        elif typing.get_origin(kind) in (dict, Mapping):
+            parent, (kind, metadata) = kind, _strip(typing.get_args(kind)[1])
+        else:
+            return None, [], parent
+    return kind, metadata, parent
+
+
+def _words(kind: Any, metadata: list[Any]) -> str:
+    for item in metadata:
+        if isinstance(item, _Expect):
+            return item.words
+    if dataclasses.is_dataclass(kind) or typing.get_origin(kind) in (dict, Mapping) or \
+            kind in (dict, Mapping):
+        return "a table"
+    if typing.get_origin(kind) is Literal:
+        return "one of " + ", ".join(repr(c) for c in typing.get_args(kind))
+    if kind is bool:
+        return "true or false"
+    return {str: "a string", int: "an integer", float: "a finite number"}.get(kind, "a value")
+
+
+def _dotted(prefix: str, loc: Sequence[Any]) -> str:
+    return ".".join([prefix] * bool(prefix) + [str(part) for part in loc]) or "<top level>"
+
+
+def _problems(cls: type, data: Any, error: ValidationError, file: str, prefix: str
+              ) -> list[ConfigError]:
+    found = []
+    for item in error.errors(include_url=False):
+        loc, kind = item["loc"], item["type"]
+        key = _dotted(prefix, loc)
+        bare, metadata, parent = _walk(cls, loc)
+        ctx = item.get("ctx") or {}
+        if kind in ("unexpected_keyword_argument", "extra_forbidden"):
+            allowed = sorted(_fields(parent)) if dataclasses.is_dataclass(parent) else []
+            near = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
+            found.append(ConfigError(file, key, f"one of the keys {allowed}", "an unknown key",
+                                     hint=f"did you mean {near[0]!r}?" if near else ""))
+        elif kind == "missing":
+            # A key of the table that the schema does not know, spelt close to the one missing.
+            table = item.get("input")
+            strays = [str(k) for k in table if k not in known] if isinstance(table, Mapping) \
+                and dataclasses.is_dataclass(parent) and (known := _fields(parent)) else []
+            near = difflib.get_close_matches(str(loc[-1]), strays, n=1, cutoff=0.8)
+            got = f"nothing (the key is required; there is {near[0]!r}: a misspelling?)" \
+                if near else "nothing"
+            found.append(ConfigError(file, key, _words(bare, metadata), got))
+        elif kind == _WORDED:
+            # A rule of a table (its __post_init__) names the key it is about.
+            where = f"{key}.{ctx['key']}" if ctx.get("key") else key
+            found.append(ConfigError(file, where, ctx["expected"], ctx.get("got", item["input"]),
+                                     hint=ctx.get("hint", "")))
+        else:
+            found.append(ConfigError(file, key, _words(bare, metadata), item["input"]))
+    return found
+
+
+def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
+          rules: Callable[[T], list[ConfigError]] | None = None,
+          error: Callable[[list[ConfigError]], Exception] = ConfigErrors) -> T:
+    """Validate ``data`` (a parsed TOML table) against the dataclass ``cls``.
+
+    Parameters
+    ----------
+    cls : type
+        A dataclass whose annotations declare the table (see the module docstring).
+    data : object
+        The parsed table.
+    file, prefix : str
+        The file named in messages, and the dotted key of the table in it ("" at the top).
+    rules : callable, optional
+        Rules joining several keys, run once every key is right: the problems they find.
+    error : callable, optional
+        Builds the exception from every problem found (default
+        :class:`~autotune.errors.ConfigErrors`).
+
+    Raises
+    ------
+    Exception
+        ``error(problems)``, with every problem of the table at once.
+    """
+    if not isinstance(data, Mapping):
+        raise error([ConfigError(file, prefix or "<top level>", "a table", data)])
+    try:
+        value = _adapter(cls).validate_python(dict(data))
+    except ValidationError as exc:
+        raise error(_problems(cls, data, exc, file, prefix)) from None
+    found = rules(value) if rules is not None else []
+    if found:
+        raise error(found)
+    return value
+
+
+def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exception] = ConfigErrors,
+              what: str = "a TOML file") -> dict[str, Any]:
+    """Parse a TOML file; a missing, unreadable, non-UTF-8 or invalid one is ``error`` naming
+    the file (key ``<file>``)."""
+    file = str(path)
+    try:
+        raw = Path(path).read_bytes()
+    except FileNotFoundError:
+        raise error([ConfigError(file, "<file>", f"an existing {what}", "no such file")]) from None
+    except OSError as exc:
+        raise error([ConfigError(file, "<file>", "a readable file",
+                                 f"{type(exc).__name__}: {exc}")]) from exc
+    try:
+        return tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        raise error([ConfigError(file, "<file>", f"{what} (UTF-8 text)",
+                                 f"bytes that are not UTF-8 text ({exc.reason} at byte "
+                                 f"{exc.start})")]) from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise error([ConfigError(file, "<file>", "valid TOML", str(exc))]) from exc
