@@ -32,12 +32,13 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, NoReturn, TypeVar
 
 from pydantic import AfterValidator, ConfigDict, Field, Strict, TypeAdapter, ValidationError
+from pydantic.fields import FieldInfo
 from pydantic_core import PydanticCustomError
 
-from autotune.errors import ConfigError, ConfigErrors
+from autotune.errors import ConfigError, FileErrors
 from autotune.plausible import Plausible
 
-__all__ = ["table", "number", "integer", "text", "refuse", "check", "problem", "read_toml"]
+__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "problem", "read_toml"]
 
 T = TypeVar("T")
 
@@ -46,8 +47,9 @@ _WORDED = "worded"
 
 
 @dataclasses.dataclass(frozen=True)
-class _Expect:
-    """What a key expects, in words (read back from the annotation for every problem)."""
+class Expect:
+    """What a key expects, in words, as the last item of its ``Annotated[...]`` (read back
+    for every problem of the key; :func:`number` and the others add their own)."""
 
     words: str
 
@@ -90,24 +92,26 @@ def number(low: float | None = None, high: float | None = None, *, low_open: boo
     extra = (_plausible(plausible),) if plausible is not None else ()
     return Annotated[float, Strict(), Field(allow_inf_nan=False,
                                             **_limits(low, high, low_open, high_open)),
-                     *extra, _Expect(words)]
+                     *extra, Expect(words)]
 
 
 def integer(low: int | None = None, high: int | None = None) -> Any:
     """An integer (not a bool, not a float) within ``[low, high]``."""
     return Annotated[int, Strict(), Field(**_limits(low, high, False, False)),
-                     _Expect("an integer" + _bounds(low, high, False, False))]
+                     Expect("an integer" + _bounds(low, high, False, False))]
 
 
 def _not_blank(value: str) -> str:
     if not value.strip():
-        raise PydanticCustomError(_WORDED, "{expected}", {"expected": "a non-empty string"})
+        raise PydanticCustomError("blank", "a blank string")
     return value
 
 
-def text(expected: str = "a non-empty string") -> Any:
-    """A string with something besides white space in it."""
-    return Annotated[str, Strict(), AfterValidator(_not_blank), _Expect(expected)]
+def text(expected: str = "a non-empty string", *, pattern: str | None = None) -> Any:
+    """A string with something besides white space in it (matching ``pattern`` if given,
+    anywhere unless anchored); ``expected`` says what it is."""
+    return Annotated[str, Strict(), Field(pattern=pattern), AfterValidator(_not_blank),
+                     Expect(expected)]
 
 
 def refuse(key: str, expected: str, got: object) -> NoReturn:
@@ -151,8 +155,14 @@ def _strip(kind: Any) -> tuple[Any, list[Any]]:
 
 
 def _fields(cls: Any) -> dict[str, Any]:
+    """The keys of a table (a field's alias where it has one: ``class``) and their types."""
     hints = typing.get_type_hints(cls, include_extras=True)
-    return {f.name: hints[f.name] for f in dataclasses.fields(cls) if f.init}
+    keys = {}
+    for field in dataclasses.fields(cls):
+        aliases = [m.alias for m in _strip(hints[field.name])[1] if isinstance(m, FieldInfo)
+                   and m.alias]
+        keys[aliases[0] if aliases else field.name] = hints[field.name]
+    return keys
 
 
 def _walk(root: type, loc: Sequence[Any]) -> tuple[Any, list[Any], Any]:
@@ -167,6 +177,8 @@ def _walk(root: type, loc: Sequence[Any]) -> tuple[Any, list[Any], Any]:
             parent, (kind, metadata) = kind, _strip(fields[part])
         elif typing.get_origin(kind) in (dict, Mapping):
             parent, (kind, metadata) = kind, _strip(typing.get_args(kind)[1])
+        elif typing.get_origin(kind) in (list, tuple):
+            parent, (kind, metadata) = kind, _strip(typing.get_args(kind)[0])
         else:
             return None, [], parent
     return kind, metadata, parent
@@ -174,7 +186,7 @@ def _walk(root: type, loc: Sequence[Any]) -> tuple[Any, list[Any], Any]:
 
 def _words(kind: Any, metadata: list[Any]) -> str:
     for item in metadata:
-        if isinstance(item, _Expect):
+        if isinstance(item, Expect):
             return item.words
     if dataclasses.is_dataclass(kind) or typing.get_origin(kind) in (dict, Mapping) or \
             kind in (dict, Mapping):
@@ -224,7 +236,7 @@ def _problems(cls: type, data: Any, error: ValidationError, file: str, prefix: s
 
 def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
           rules: Callable[[T], list[ConfigError]] | None = None,
-          error: Callable[[list[ConfigError]], Exception] = ConfigErrors) -> T:
+          error: Callable[[list[ConfigError]], Exception] = FileErrors) -> T:
     """Validate ``data`` (a parsed TOML table) against the dataclass ``cls``.
 
     Parameters
@@ -239,7 +251,7 @@ def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
         Rules joining several keys, run once every key is right: the problems they find.
     error : callable, optional
         Builds the exception from every problem found (default
-        :class:`~autotune.errors.ConfigErrors`).
+        :class:`~autotune.errors.FileErrors`).
 
     Raises
     ------
@@ -258,7 +270,7 @@ def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
     return value
 
 
-def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exception] = ConfigErrors,
+def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exception] = FileErrors,
               what: str = "a TOML file") -> dict[str, Any]:
     """Parse a TOML file; a missing, unreadable, non-UTF-8 or invalid one is ``error`` naming
     the file (key ``<file>``)."""

@@ -21,12 +21,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 import autotune.plausible as plausible
-from autotune.errors import ConfigError, ConfigErrors
+from autotune.errors import ConfigError, FileErrors
 from autotune.schema import check, integer, number, read_toml, refuse, table, text
 from drivers_sim.physics import (
     MODE_PROFILES,
@@ -59,17 +59,11 @@ SETPOINT_UNITS: dict[str, str] = {"velocity": "m/s", "detuning": "Hz"}
 _UNIT_SUFFIX = {"velocity": "m_per_s", "detuning": "hz"}
 
 
-class SimConfigError(ConfigErrors, ValueError):
+class SimConfigError(FileErrors, ValueError):
     """A simulated-rig configuration file or value is wrong (a :class:`ValueError` too, as it
     always was): every problem of the file, each naming the file, the dotted key, what was
-    expected and what was received (``problems``; a :class:`~autotune.errors.ConfigErrors`).
+    expected and what was received (``problems``).
     """
-
-    def __init__(self, problems: Sequence[ConfigError]) -> None:
-        super().__init__(problems)
-        if len(self.problems) > 1:
-            self.args = (f"{self.file}: {len(self.problems)} problems:\n"
-                         + "\n".join(f"  - {problem}" for problem in self.problems),)
 
 
 _PROBABILITY = number(0.0, 1.0)
