@@ -126,11 +126,14 @@ def problem(file: str, key: str, expected: str, got: object, hint: str = "") -> 
 
 
 @typing.dataclass_transform(frozen_default=True)
-def table(cls: type[T]) -> type[T]:
-    """A frozen dataclass that :func:`check` validates, unknown keys refused."""
-    cls = dataclasses.dataclass(frozen=True)(cls)
-    cls.__pydantic_config__ = ConfigDict(extra="forbid")  # type: ignore[attr-defined]
-    return cls
+def table(cls: type[T] | None = None, *, kw_only: bool = False) -> Any:
+    """A frozen dataclass that :func:`check` validates, unknown keys refused (``@table``, or
+    ``@table(kw_only=True)`` for a base whose subclasses add required keys)."""
+    def make(cls: type[T]) -> type[T]:
+        cls = dataclasses.dataclass(frozen=True, kw_only=kw_only)(cls)
+        cls.__pydantic_config__ = ConfigDict(extra="forbid")  # type: ignore[attr-defined]
+        return cls
+    return make if cls is None else make(cls)
 
 
 @functools.cache

@@ -29,7 +29,6 @@ import autotune.plausible as plausible
 from autotune.errors import ConfigError, FileErrors
 from autotune.schema import check, integer, number, read_toml, refuse, table, text
 from drivers_sim.physics import (
-    MODE_PROFILES,
     SUPER_GAUSSIAN_ORDER_RANGE,
     WAIST_ASYMMETRY_RANGE,
     ModeProfile,
