@@ -1,22 +1,23 @@
 """One way to check what a person writes: a TOML file (or its dict) against typed dataclasses.
 
-A file's layout is declared once, as frozen dataclasses whose field types carry their bounds
-(:func:`table`; :func:`number`, :func:`integer`, :func:`text`, ``Literal[...]`` for a
-choice; a nested table for a table; a default for an optional key). pydantic (v2) validates the whole dict
-against them in one pass, strictly (a bool is not a number, a string is not a number, no NaN or
-infinity), refusing unknown keys; :func:`check` turns every problem it found into a
-:class:`~autotune.errors.ConfigError` of the project's own shape::
+A file's layout is declared once, as frozen dataclasses (:func:`table`) whose annotations carry
+each key's type and bounds (:func:`number`, :func:`integer`, :func:`text`, ``Literal[...]`` for
+a choice, a nested table for a table, a default for an optional key). pydantic (v2) validates
+the whole dict against them in one pass, strictly (a bool or a string is not a number, no NaN
+or infinity), refusing unknown keys; :func:`check` turns every problem found into a
+:class:`~autotune.errors.ConfigError` of the project's own shape and raises them all at once::
 
     sim-rig.toml: cavity.waist_m: expected a finite number > 0 and <= 1, got -0.0058
-    sim-rig.toml: cavity.waist: expected one of the keys [...], got 'an unknown key': did you mean 'waist_m'?
+    sim-rig.toml: cavity.waist: expected one of the keys [...], got 'an unknown key': did you
+    mean 'waist_m'?
 
-and raises them all at once. A physical number is also held to the range a lab could mean
-(``number(..., plausible=...)``, :mod:`autotune.plausible`), in the same pass. Rules that join
-several keys are small functions beside each schema, run on the validated result: they return
-their problems (:func:`problem`) rather than raising, so that they too are reported together.
+A physical number is also held to the range a lab could mean (``number(..., plausible=...)``,
+:mod:`autotune.plausible`) in the same pass. The rules a schema cannot state sit beside it: a
+rule of one table in its ``__post_init__`` (:func:`refuse`, reported with the other problems),
+a rule joining tables in ``check(..., rules=...)``, run once every key is right.
 
-The dataclasses stay plain ``dataclasses`` (``replace``, ``asdict``, equality as before):
-pydantic only reads their annotations.
+The dataclasses stay plain ``dataclasses`` (``replace`` does not re-check, ``asdict`` and
+equality as before): pydantic only reads their annotations.
 """
 
 from __future__ import annotations
@@ -38,7 +39,8 @@ from pydantic_core import PydanticCustomError
 from autotune.errors import ConfigError, FileErrors
 from autotune.plausible import Plausible
 
-__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "problem", "read_toml"]
+__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "problem",
+           "read_toml"]
 
 T = TypeVar("T")
 
@@ -77,7 +79,8 @@ def _plausible(spec: Plausible) -> AfterValidator:
     def check(value: float) -> float:
         found = spec.problem(float(value))
         if found is not None:
-            raise PydanticCustomError(_WORDED, "{expected}", {"expected": found[0], "hint": found[1]})
+            raise PydanticCustomError(_WORDED, "{expected}",
+                                      {"expected": found[0], "hint": found[1]})
         return value
     return AfterValidator(check)
 
@@ -126,12 +129,14 @@ def problem(file: str, key: str, expected: str, got: object, hint: str = "") -> 
 
 
 @typing.dataclass_transform(frozen_default=True)
-def table(cls: type[T] | None = None, *, kw_only: bool = False) -> Any:
-    """A frozen dataclass that :func:`check` validates, unknown keys refused (``@table``, or
-    ``@table(kw_only=True)`` for a base whose subclasses add required keys)."""
+def table(cls: type[T] | None = None, *, kw_only: bool = False,
+          extra: Literal["forbid", "ignore"] = "forbid") -> Any:
+    """A frozen dataclass that :func:`check` validates, unknown keys refused (``@table``;
+    ``kw_only=True`` for a base whose subclasses add required keys; ``extra="ignore"`` where
+    unknown keys are allowed, as in a rig's results, which newer rigs may extend)."""
     def make(cls: type[T]) -> type[T]:
         cls = dataclasses.dataclass(frozen=True, kw_only=kw_only)(cls)
-        cls.__pydantic_config__ = ConfigDict(extra="forbid")  # type: ignore[attr-defined]
+        cls.__pydantic_config__ = ConfigDict(extra=extra)  # type: ignore[attr-defined]
         return cls
     return make if cls is None else make(cls)
 
@@ -146,7 +151,9 @@ def _strip(kind: Any) -> tuple[Any, list[Any]]:
     metadata: list[Any] = []
     while True:
         if typing.get_origin(kind) is Annotated:
-            metadata += list(kind.__metadata__)
+            # Inner first, so that the outermost word on a key is the last (as Python orders
+            # a flattened Annotated[Annotated[...], ...]).
+            metadata = list(kind.__metadata__) + metadata
             kind = kind.__origin__
         elif isinstance(kind, types.UnionType) or typing.get_origin(kind) is typing.Union:
             options = [a for a in typing.get_args(kind) if a is not type(None)]
@@ -188,7 +195,7 @@ def _walk(root: type, loc: Sequence[Any]) -> tuple[Any, list[Any], Any]:
 
 
 def _words(kind: Any, metadata: list[Any]) -> str:
-    for item in metadata:
+    for item in reversed(metadata):
         if isinstance(item, Expect):
             return item.words
     if dataclasses.is_dataclass(kind) or typing.get_origin(kind) in (dict, Mapping) or \
