@@ -974,7 +974,7 @@ def parse_safe(result: Mapping[str, Any]) -> Applied:
     return Applied(types.MappingProxyType(found.setpoints), None, found.instance)
 
 
-@dataclass(frozen=True)
+@schema.table(extra="ignore")
 class Counts:
     """Detected atoms per state.
 
@@ -984,9 +984,9 @@ class Counts:
         Atoms assigned to the upper, lower and reference level.
     """
 
-    e: int
-    g: int
-    i: int
+    e: _COUNT
+    g: _COUNT
+    i: _COUNT
 
     @property
     def detected(self) -> int:
@@ -1021,15 +1021,8 @@ class Acquisition:
 
 
 @schema.table(extra="ignore")
-class _Counts:
-    e: _COUNT
-    g: _COUNT
-    i: _COUNT
-
-
-@schema.table(extra="ignore")
 class _Acquired:
-    counts: Annotated[_Counts, schema.Expect("an object of e, g, i")]
+    counts: Annotated[Counts, schema.Expect("an object of e, g, i")]
     shots: schema.integer(1)
     t_start: _FINITE
     t_end: _FINITE
@@ -1045,7 +1038,7 @@ class _Acquired:
 def parse_acquisition(result: Mapping[str, Any]) -> Acquisition:
     """Turn an ``acquire`` result into :class:`Acquisition` (raises ProtocolError)."""
     found = _parsed(_Acquired, result, "acquire result")
-    return Acquisition(counts=Counts(found.counts.e, found.counts.g, found.counts.i),
+    return Acquisition(counts=found.counts,
                        shots=found.shots, t_start=found.t_start, t_end=found.t_end,
                        setpoints=types.MappingProxyType(found.setpoints), instance=found.instance)
 
@@ -1129,7 +1122,7 @@ def parse_thermal_step(result: Mapping[str, Any]) -> dict[str, Any]:
     return dict(result)
 
 
-@dataclass(frozen=True)
+@schema.table(extra="ignore")
 class Lease:
     """Result of ``claim``: the lease this client now holds.
 
@@ -1145,14 +1138,6 @@ class Lease:
         True when this client already held it.
     """
 
-    holder: str
-    ttl_s: float
-    expires_in_s: float
-    renewed: bool
-
-
-@schema.table(extra="ignore")
-class _Claimed:
     holder: _STRING
     ttl_s: _FINITE
     expires_in_s: _FINITE
@@ -1166,8 +1151,7 @@ class _Released:
 
 def parse_claim(result: Mapping[str, Any]) -> Lease:
     """Turn a ``claim`` result into :class:`Lease` (raises ProtocolError)."""
-    found = _parsed(_Claimed, result, "claim result")
-    return Lease(found.holder, found.ttl_s, found.expires_in_s, found.renewed)
+    return _parsed(Lease, result, "claim result")
 
 
 def parse_release(result: Mapping[str, Any]) -> bool:
