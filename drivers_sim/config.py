@@ -440,8 +440,9 @@ def _relations(file: _File, source: str) -> list[ConfigError]:
         refused("detection.g_read_as_i",
                 f"a probability <= 1 - g_read_as_e = {1.0 - detection.g_read_as_e:g}",
                 detection.g_read_as_i)
-    for key, profile, bounds in (("super_gaussian_order", "super_gaussian", SUPER_GAUSSIAN_ORDER_RANGE),
-                                 ("waist_asymmetry", "asymmetric", WAIST_ASYMMETRY_RANGE)):
+    for key, profile, bounds in (
+            ("super_gaussian_order", "super_gaussian", SUPER_GAUSSIAN_ORDER_RANGE),
+            ("waist_asymmetry", "asymmetric", WAIST_ASYMMETRY_RANGE)):
         value = getattr(cavity, key)
         if cavity.mode_profile == profile and value is None:
             refused(f"cavity.{key}", f"a finite number >= {bounds[0]:g} and <= {bounds[1]:g} "
@@ -451,7 +452,8 @@ def _relations(file: _File, source: str) -> list[ConfigError]:
                     f"(it is {cavity.mode_profile!r})", value)
     k = stark.coefficient_hz_m2_per_v2
     velocity, detuning = file.limits.velocity, file.limits.detuning
-    if velocity.min_m_per_s + beam.velocity_bias_m_per_s - 6.0 * beam.velocity_spread_m_per_s <= 0.0:
+    slowest = velocity.min_m_per_s + beam.velocity_bias_m_per_s - 6.0 * beam.velocity_spread_m_per_s
+    if slowest <= 0.0:
         refused("beam.velocity_bias_m_per_s", "a bias and spread that keep every true velocity "
                 "> 0 at limits.velocity.min_m_per_s", beam.velocity_bias_m_per_s)
     if k == 0.0:
