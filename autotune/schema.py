@@ -212,8 +212,7 @@ def _dotted(prefix: str, loc: Sequence[Any]) -> str:
     return ".".join([prefix] * bool(prefix) + [str(part) for part in loc]) or "<top level>"
 
 
-def _problems(cls: type, data: Any, error: ValidationError, file: str, prefix: str
-              ) -> list[ConfigError]:
+def _problems(cls: type, error: ValidationError, file: str, prefix: str) -> list[ConfigError]:
     found = []
     for item in error.errors(include_url=False):
         loc, kind = item["loc"], item["type"]
@@ -273,7 +272,7 @@ def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
     try:
         value = _adapter(cls).validate_python(dict(data))
     except ValidationError as exc:
-        raise error(_problems(cls, data, exc, file, prefix)) from None
+        raise error(_problems(cls, exc, file, prefix)) from None
     found = rules(value) if rules is not None else []
     if found:
         raise error(found)
@@ -281,7 +280,7 @@ def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
 
 
 def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exception] = FileErrors,
-              what: str = "a TOML file") -> dict[str, Any]:
+              what: str = "TOML file") -> dict[str, Any]:
     """Parse a TOML file; a missing, unreadable, non-UTF-8 or invalid one is ``error`` naming
     the file (key ``<file>``)."""
     file = str(path)
@@ -295,7 +294,7 @@ def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exceptio
     try:
         return tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError as exc:
-        raise error([ConfigError(file, "<file>", f"{what} (UTF-8 text)",
+        raise error([ConfigError(file, "<file>", f"a {what} (UTF-8 text)",
                                  f"bytes that are not UTF-8 text ({exc.reason} at byte "
                                  f"{exc.start})")]) from exc
     except tomllib.TOMLDecodeError as exc:
