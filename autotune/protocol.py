@@ -195,6 +195,7 @@ cavity frequency step, result ``{"clock": float, "cavity_offset_hz": float}``.
 
 from __future__ import annotations
 
+import dataclasses
 import enum
 import json
 import math
@@ -203,8 +204,9 @@ import secrets
 import types
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Annotated, Any, TypeVar
+from typing import Annotated, Any, Literal, TypeVar
 
+import pydantic
 from pydantic import Strict
 
 from autotune.errors import ProtocolError, RigLeased, RigRefused
@@ -621,32 +623,60 @@ def _bad(kind: ErrorKind, detail: str) -> RequestRejected:
     return RequestRejected(kind, detail)
 
 
-def _arg_number(where: str, value: object) -> float:
-    if not _is_number(value):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
-    try:
-        number = float(value)  # type: ignore[arg-type]
-    except OverflowError:
-        number = math.inf
-    if not math.isfinite(number):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
-    return number
+def _wire_detail(problems: list[Any]) -> str:
+    """Every problem :mod:`autotune.schema` found in a message, on one line."""
+    return "; ".join(f"{p.key}: expected {p.expected}, got {_show(p.got)}" for p in problems)
 
 
-def _arg_setpoints(where: str, value: object) -> dict[str, float]:
-    if not isinstance(value, Mapping):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object of name: number, got {_show(value)}")
-    if not value:
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected at least one set-point, got {{}}")
-    clean: dict[str, float] = {}
-    for name, number in value.items():
-        if not isinstance(name, str) or not name:
-            raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected non-empty names, got {_show(name)}")
-        clean[name] = _arg_number(f"{where}.{name}", number)
-    return clean
+_FINITE = schema.number()
+_NAME = Annotated[str, Strict(), pydantic.Field(min_length=1), schema.Expect("a non-empty name")]
+_SETPOINTS = Annotated[dict[_NAME, _FINITE], pydantic.Field(min_length=1),
+                       schema.Expect("an object of name: number, at least one")]
+_FIELDS = tuple(f.value for f in Field)
 
 
-_NO_ARGUMENTS = frozenset({Op.DESCRIBE, Op.STATUS, Op.SAFE, Op.RELEASE})
+@schema.table
+class _NoArgs:
+    """``describe``, ``status``, ``safe``, ``release``: no argument."""
+
+
+@schema.table
+class _ApplyArgs:
+    setpoints: _SETPOINTS
+
+
+@schema.table
+class _AcquireArgs:
+    field: Annotated[Literal[_FIELDS], schema.Expect(" or ".join(repr(f) for f in _FIELDS))]
+    ramsey_phase: _FINITE
+    shots: schema.integer(1, MAX_SHOTS)
+
+
+@schema.table
+class _TruthArgs:
+    setpoints: _SETPOINTS | None = None
+
+
+@schema.table
+class _AdvanceArgs:
+    seconds: schema.number(0.0)
+
+
+@schema.table
+class _ThermalStepArgs:
+    shift_hz: _FINITE
+
+
+@schema.table
+class _ClaimArgs:
+    ttl_s: schema.number(0.0, MAX_LEASE_TTL_S, low_open=True,
+                         expected=f"a number of seconds in (0, {MAX_LEASE_TTL_S:g}]")
+
+
+_ARGS: Mapping[Op, type] = {Op.DESCRIBE: _NoArgs, Op.STATUS: _NoArgs, Op.SAFE: _NoArgs,
+                            Op.RELEASE: _NoArgs, Op.APPLY: _ApplyArgs, Op.ACQUIRE: _AcquireArgs,
+                            Op.TRUTH: _TruthArgs, Op.ADVANCE: _AdvanceArgs,
+                            Op.THERMAL_STEP: _ThermalStepArgs, Op.CLAIM: _ClaimArgs}
 
 
 def validate_args(op: Op, args: object) -> dict[str, Any]:
@@ -663,58 +693,18 @@ def validate_args(op: Op, args: object) -> dict[str, Any]:
     -------
     dict
         A new dict: set-point values and phases as ``float``, ``shots`` as ``int``, ``field`` as
-        its string value.
+        its string value; an optional argument left out (or null) is not in it.
 
     Raises
     ------
     RequestRejected
-        With kind ``bad_request`` and a detail naming the argument, expected and got.
+        With kind ``bad_request`` and a detail naming every wrong argument, expected and got.
     """
-    op = Op(op)
-    where = "args"
     if not isinstance(args, Mapping):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object, got {_show(args)}")
-    if op in _NO_ARGUMENTS:
-        _check_keys(where, args, required=(), optional=(), fail=_bad)
-        return {}
-    if op is Op.APPLY:
-        _check_keys(where, args, required=("setpoints",), optional=(), fail=_bad)
-        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
-    if op is Op.ACQUIRE:
-        _check_keys(where, args, required=("field", "ramsey_phase", "shots"), optional=(), fail=_bad)
-        field = args["field"]
-        if not isinstance(field, str) or field not in {f.value for f in Field}:
-            expected = " or ".join(repr(f.value) for f in Field)
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.field: expected {expected}, got {_show(field)}")
-        phase = _arg_number("args.ramsey_phase", args["ramsey_phase"])
-        shots = args["shots"]
-        if not _is_int(shots) or not 1 <= shots <= MAX_SHOTS:
-            raise _bad(
-                ErrorKind.BAD_REQUEST, f"args.shots: expected an integer in [1, {MAX_SHOTS}], got {_show(shots)}"
-            )
-        return {"field": field, "ramsey_phase": phase, "shots": int(shots)}
-    if op is Op.TRUTH:
-        _check_keys(where, args, required=(), optional=("setpoints",), fail=_bad)
-        if args.get("setpoints") is None:
-            return {}
-        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
-    if op is Op.ADVANCE:
-        _check_keys(where, args, required=("seconds",), optional=(), fail=_bad)
-        seconds = _arg_number("args.seconds", args["seconds"])
-        if seconds < 0:
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.seconds: expected a number >= 0, got {_show(args['seconds'])}")
-        return {"seconds": seconds}
-    if op is Op.THERMAL_STEP:
-        _check_keys(where, args, required=("shift_hz",), optional=(), fail=_bad)
-        return {"shift_hz": _arg_number("args.shift_hz", args["shift_hz"])}
-    if op is Op.CLAIM:
-        _check_keys(where, args, required=("ttl_s",), optional=(), fail=_bad)
-        ttl = _arg_number("args.ttl_s", args["ttl_s"])
-        if not 0.0 < ttl <= MAX_LEASE_TTL_S:
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.ttl_s: expected a number of seconds in "
-                                              f"(0, {MAX_LEASE_TTL_S:g}], got {_show(args['ttl_s'])}")
-        return {"ttl_s": ttl}
-    raise AssertionError(f"unhandled op {op}")  # pragma: no cover - every Op is handled above
+        raise _bad(ErrorKind.BAD_REQUEST, f"args: expected an object, got {_show(args)}")
+    found = schema.check(_ARGS[Op(op)], args, file="args", prefix="args",
+                         error=lambda problems: _bad(ErrorKind.BAD_REQUEST, _wire_detail(problems)))
+    return {key: value for key, value in dataclasses.asdict(found).items() if value is not None}
 
 
 # --------------------------------------------------------------------------- client side
@@ -785,7 +775,6 @@ def decode_reply(data: bytes, msg_id: str) -> dict[str, Any]:
     return result
 
 
-_FINITE = schema.number()
 _COUNT = schema.integer(0)
 _STRING = Annotated[str, Strict()]
 _FLAG = Annotated[bool, Strict()]
@@ -801,9 +790,7 @@ def _parsed(cls: type[_T], result: object, where: str) -> _T:
     if not isinstance(result, Mapping):
         raise ProtocolError(f"{where}: expected an object, got {_show(result)}")
     return schema.check(cls, result, file=where, prefix=where,
-                        error=lambda problems: ProtocolError("; ".join(
-                            f"{p.key}: expected {p.expected}, got {_show(p.got)}"
-                            for p in problems)))
+                        error=lambda problems: ProtocolError(_wire_detail(problems)))
 
 
 @dataclass(frozen=True)

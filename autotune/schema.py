@@ -57,11 +57,13 @@ class Expect:
 
 
 def _bounds(low: float | None, high: float | None, low_open: bool, high_open: bool) -> str:
+    def show(bound: float) -> str:  # a count in full, a number as %g
+        return str(bound) if isinstance(bound, int) else f"{bound:g}"
     parts = []
     if low is not None:
-        parts.append(f"{'>' if low_open else '>='} {low:g}")
+        parts.append(f"{'>' if low_open else '>='} {show(low)}")
     if high is not None:
-        parts.append(f"{'<' if high_open else '<='} {high:g}")
+        parts.append(f"{'<' if high_open else '<='} {show(high)}")
     return (" " + " and ".join(parts)) if parts else ""
 
 
@@ -219,10 +221,14 @@ def _problems(cls: type, error: ValidationError, file: str, prefix: str) -> list
         key = _dotted(prefix, loc)
         bare, metadata, parent = _walk(cls, loc)
         ctx = item.get("ctx") or {}
+        if loc and loc[-1] == "[key]":  # a name of a table of names (dict[Name, ...])
+            names, _, _ = _walk(cls, loc[:-2])
+            key, (bare, metadata) = _dotted(prefix, loc[:-2]), _strip(typing.get_args(names)[0])
         if kind in ("unexpected_keyword_argument", "extra_forbidden"):
             allowed = sorted(_fields(parent)) if dataclasses.is_dataclass(parent) else []
             near = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
-            found.append(ConfigError(file, key, f"one of the keys {allowed}", "an unknown key",
+            found.append(ConfigError(file, key, f"one of the keys {allowed}" if allowed
+                                     else "no keys", "an unknown key",
                                      hint=f"did you mean {near[0]!r}?" if near else ""))
         elif kind == "missing":
             # A key of the table that the schema does not know, spelt close to the one missing.
