@@ -29,16 +29,16 @@ Everything here is pure: no I/O, no sockets.
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
 import types
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Any, ClassVar, Literal
+from typing import Annotated, Any, ClassVar, Literal
 
 from autotune import plausible
-from autotune.errors import ConfigError, ConfigErrors, OutOfRange
+from autotune.errors import ConfigError, ConfigErrors, FileErrors, OutOfRange
 from autotune.protocol import STEP_TOLERANCE
+from autotune.schema import Expect, check, number, refuse, table, text
 
 __all__ = [
     "SETPOINT_UNITS",
@@ -469,52 +469,75 @@ class ChannelMap:
 
 # --------------------------------------------------------------------------- building a map
 
-_COMMON_KEYS = ("unit", "channel", "channel_unit", "law", "limit_min", "limit_max", "max_step",
-                "channel_limit_min", "channel_limit_max", "channel_max_step", "safe", "channel_safe",
-                "channel_readback_tolerance")
-_LAW_KEYS = {
-    "linear": ("scale", "offset"),
-    "stark": ("coefficient_hz_m2_per_v2", "bias_field_v_per_m", "electrode_gap_m", "branch"),
-}
+_NUMBER = number()
+_SIZE = number(0.0, low_open=True)
 
 
-class _Reader:
-    """Typed access to one ``[setpoints.NAME]`` table, with errors naming file and key."""
+@table(kw_only=True)
+class _Declaration:
+    """The keys of every ``[setpoints.NAME]`` table (the law's own are its subclass's)."""
 
-    def __init__(self, table: Mapping[str, Any], file: str, prefix: str) -> None:
-        self.table, self.file, self.prefix = table, file, prefix
+    unit: text()
+    channel: text()
+    channel_unit: text()
+    limit_min: _NUMBER | None = None
+    limit_max: _NUMBER | None = None
+    max_step: _SIZE | None = None
+    channel_limit_min: _NUMBER | None = None
+    channel_limit_max: _NUMBER | None = None
+    channel_max_step: _SIZE | None = None
+    safe: _NUMBER | None = None
+    channel_safe: _NUMBER | None = None
+    channel_readback_tolerance: number(0.0) = 0.0
 
-    def fail(self, key: str, expected: str, got: object) -> ConfigError:
-        return ConfigError(self.file, f"{self.prefix}.{key}" if key else self.prefix, expected, got)
+    def __post_init__(self) -> None:
+        for low_key, high_key in (("limit_min", "limit_max"),
+                                  ("channel_limit_min", "channel_limit_max")):
+            low, high = getattr(self, low_key), getattr(self, high_key)
+            if low is not None and high is not None and low > high:
+                refuse(high_key, f"a number >= {low_key} {_fmt(low)}", high)
+        if self.safe is not None and self.channel_safe is not None:
+            refuse("safe", "safe or channel_safe, not both", f"{self.safe} and {self.channel_safe}")
 
-    def missing(self, key: str) -> str:
-        """What a required key's absence is reported as, with a near spelling that is there."""
-        near = difflib.get_close_matches(key, [str(k) for k in self.table], n=1, cutoff=0.8)
-        return ("nothing (the key is required)" if not near else
-                f"nothing (the key is required; there is {near[0]!r}: a misspelling?)")
 
-    def string(self, key: str) -> str:
-        if key not in self.table:
-            raise self.fail(key, "a string", self.missing(key))
-        value = self.table[key]
-        if not isinstance(value, str) or not value:
-            raise self.fail(key, "a non-empty string", value)
-        return value
+@table(kw_only=True)
+class _Linear(_Declaration):
+    law: Literal["linear"]
+    scale: number(expected="a non-zero number (set-point unit per channel unit)")
+    offset: _NUMBER = 0.0
 
-    def number(self, key: str, *, required: bool = False, positive: bool = False,
-               non_negative: bool = False) -> float | None:
-        if key not in self.table:
-            if required:
-                raise self.fail(key, "a number", self.missing(key))
-            return None
-        value = self.table[key]
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise self.fail(key, "a finite number", value)
-        if positive and value <= 0:
-            raise self.fail(key, "a number > 0", value)
-        if non_negative and value < 0:
-            raise self.fail(key, "a number >= 0", value)
-        return float(value)
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        if self.scale == 0.0:
+            refuse("scale", f"a non-zero number ({self.unit} per {self.channel_unit})", 0.0)
+
+    def law_of(self) -> Law:
+        return LinearLaw(self.scale, self.offset)
+
+
+@table(kw_only=True)
+class _Stark(_Declaration):
+    law: Literal["stark"]
+    coefficient_hz_m2_per_v2: number(expected="a non-zero number, Hz per (V/m)^2")
+    bias_field_v_per_m: number(0.0)
+    electrode_gap_m: _SIZE
+    branch: Annotated[Literal["positive", "negative"],
+                      Expect("'positive' or 'negative' (the sign of the electrode voltage)")]
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        if self.coefficient_hz_m2_per_v2 == 0.0:
+            refuse("coefficient_hz_m2_per_v2", "a non-zero number, Hz per (V/m)^2", 0.0)
+        if self.channel_unit not in _VOLT_UNITS:
+            refuse("channel_unit", f"a voltage unit for the stark law: {', '.join(_VOLT_UNITS)}",
+                   self.channel_unit)
+
+    def law_of(self) -> Law:
+        return StarkLaw(self.coefficient_hz_m2_per_v2, self.bias_field_v_per_m,
+                        self.electrode_gap_m, self.branch, _VOLT_UNITS[self.channel_unit])
+
+
+_LAWS: Mapping[str, type[_Linear] | type[_Stark]] = {"linear": _Linear, "stark": _Stark}
 
 
 #: The ranges a lab could mean of a set-point's value and step (autotune.plausible).
@@ -554,7 +577,7 @@ def _key_ranges(name: str, channel_unit: str) -> dict[str, plausible.Plausible]:
 def _implausible(table: Mapping[str, Any], file: str, prefix: str, name: str
                  ) -> list[ConfigError]:
     """Every numeric key of one set-point's table outside the range a lab could mean (a value
-    typed in another unit gets a hint at it); wrong types are left to the reader."""
+    typed in another unit gets a hint at it); wrong types are left to the schema."""
     channel_unit = table.get("channel_unit")
     ranges = _key_ranges(name, channel_unit if isinstance(channel_unit, str) else "")
     problems = []
@@ -569,37 +592,10 @@ def _implausible(table: Mapping[str, Any], file: str, prefix: str, name: str
     return problems
 
 
-def _law_from(reader: _Reader, name: str, unit: str, channel_unit: str) -> Law:
-    kind = reader.string("law")
-    if kind not in _LAW_KEYS:
-        raise reader.fail("law", "'linear' or 'stark'", kind)
-    if kind == "stark" and unit != "Hz":
-        raise reader.fail("law", "the stark law only for a detuning (unit Hz)", f"{kind} for {name} in {unit}")
-    allowed = set(_COMMON_KEYS) | set(_LAW_KEYS[kind])
-    unknown = sorted(str(k) for k in reader.table if k not in allowed)
-    if unknown:
-        raise reader.fail(unknown[0], f"one of the keys of a {kind} law: {', '.join(sorted(allowed))}",
-                          unknown[0])
-    if kind == "linear":
-        scale = reader.number("scale", required=True)
-        assert scale is not None
-        if scale == 0.0:
-            raise reader.fail("scale", f"a non-zero number ({unit} per {channel_unit})", scale)
-        return LinearLaw(scale, reader.number("offset") or 0.0)
-    if channel_unit not in _VOLT_UNITS:
-        raise reader.fail("channel_unit", f"a voltage unit for the stark law: {', '.join(_VOLT_UNITS)}",
-                          channel_unit)
-    coefficient = reader.number("coefficient_hz_m2_per_v2", required=True)
-    assert coefficient is not None
-    if coefficient == 0.0:
-        raise reader.fail("coefficient_hz_m2_per_v2", "a non-zero number, Hz per (V/m)^2", coefficient)
-    bias = reader.number("bias_field_v_per_m", required=True, non_negative=True)
-    gap = reader.number("electrode_gap_m", required=True, positive=True)
-    branch = reader.string("branch")
-    if branch not in ("positive", "negative"):
-        raise reader.fail("branch", "'positive' or 'negative' (the sign of the electrode voltage)", branch)
-    assert bias is not None and gap is not None
-    return StarkLaw(coefficient, bias, gap, branch, _VOLT_UNITS[channel_unit])  # type: ignore[arg-type]
+def _at(file: str, where: str) -> Callable[[str, str, object], ConfigError]:
+    """``fail(key, expected, got)``: a problem of ``key`` (or of the whole table: "") at ``where``."""
+    return lambda key, expected, got: ConfigError(file, f"{where}.{key}" if key else where,
+                                                  expected, got)
 
 
 def _tightest(values: list[float | None], pick: Any, default: float) -> float:
@@ -607,86 +603,119 @@ def _tightest(values: list[float | None], pick: Any, default: float) -> float:
     return pick(present) if present else default
 
 
-def _resolve(name: str, reader: _Reader, law: Law, unit: str, channel: str, channel_unit: str,
-             driver: ChannelInfo) -> MappedSetpoint:
-    """Combine declared limits (both units) with the driver's into effective ones."""
-    for low_key, high_key in (("limit_min", "limit_max"), ("channel_limit_min", "channel_limit_max")):
-        low, high = reader.number(low_key), reader.number(high_key)
-        if low is not None and high is not None and low > high:
-            raise reader.fail(high_key, f"a number >= {low_key} {_fmt(low)}", high)
+def _resolve(name: str, declared: _Linear | _Stark, law: Law, driver: ChannelInfo,
+             fail: Callable[[str, str, object], ConfigError]) -> MappedSetpoint:
+    """Combine declared limits (both units) with the driver's into effective ones; the first
+    rule that does not hold raises ``fail(key, expected, got)``."""
+    unit, channel, channel_unit = declared.unit, declared.channel, declared.channel_unit
     branch_low, branch_high = law.branch_interval()
-    channel_low = _tightest([reader.number("channel_limit_min"), driver.min, branch_low], max, -_INF)
-    channel_high = _tightest([reader.number("channel_limit_max"), driver.max, branch_high], min, _INF)
+    channel_low = _tightest([declared.channel_limit_min, driver.min, branch_low], max, -_INF)
+    channel_high = _tightest([declared.channel_limit_max, driver.max, branch_high], min, _INF)
     if channel_low > channel_high:
-        raise reader.fail("channel_limit_min",
-                          f"channel limits overlapping the driver's [{driver.min}, {driver.max}] "
-                          f"{channel_unit} and the law's branch [{branch_low}, {branch_high}]",
-                          f"[{reader.number('channel_limit_min')}, {reader.number('channel_limit_max')}]")
+        raise fail("channel_limit_min",
+                   f"channel limits overlapping the driver's [{driver.min}, {driver.max}] "
+                   f"{channel_unit} and the law's branch [{branch_low}, {branch_high}]",
+                   f"[{declared.channel_limit_min}, {declared.channel_limit_max}]")
     image_low, image_high = _image(law, channel_low, channel_high)
-    low = max(image_low, _tightest([reader.number("limit_min")], max, -_INF))
-    high = min(image_high, _tightest([reader.number("limit_max")], min, _INF))
+    low = max(image_low, _tightest([declared.limit_min], max, -_INF))
+    high = min(image_high, _tightest([declared.limit_max], min, _INF))
     reach_low, reach_high = law.reach()
     low, high = max(low, reach_low), min(high, reach_high)
     if not (math.isfinite(low) and math.isfinite(high)):
-        raise reader.fail("", "finite limits: limit_min and limit_max, or channel_limit_min and "
-                              "channel_limit_max, here or in the driver's channel description",
-                          f"[{low}, {high}] {unit}")
+        raise fail("", "finite limits: limit_min and limit_max, or channel_limit_min and "
+                       "channel_limit_max, here or in the driver's channel description",
+                   f"[{low}, {high}] {unit}")
     if low > high:
-        raise reader.fail("limit_min", f"set-point limits overlapping the channel limits "
-                                       f"[{_fmt(channel_low)}, {_fmt(channel_high)}] {channel_unit}, "
-                                       f"which give [{_fmt(image_low)}, {_fmt(image_high)}] {unit}",
-                          f"[{reader.number('limit_min')}, {reader.number('limit_max')}]")
+        raise fail("limit_min", f"set-point limits overlapping the channel limits "
+                                f"[{_fmt(channel_low)}, {_fmt(channel_high)}] {channel_unit}, "
+                                f"which give [{_fmt(image_low)}, {_fmt(image_high)}] {unit}",
+                   f"[{declared.limit_min}, {declared.limit_max}]")
     preimage_low, preimage_high = _preimage(law, low, high)
     channel_low, channel_high = max(channel_low, preimage_low), min(channel_high, preimage_high)
     if channel_low > channel_high:  # a single point, split by rounding
         channel_low = channel_high = 0.5 * (channel_low + channel_high)
 
-    declared_step = reader.number("max_step", positive=True)
-    channel_step = _tightest([reader.number("channel_max_step", positive=True), driver.max_step], min, _INF)
+    declared_step = declared.max_step
+    channel_step = _tightest([declared.channel_max_step, driver.max_step], min, _INF)
     if declared_step is None and not math.isfinite(channel_step):
-        raise reader.fail("max_step", "a largest step: max_step or channel_max_step here, or max_step "
-                                      "in the driver's channel description", "none")
+        raise fail("max_step", "a largest step: max_step or channel_max_step here, or max_step "
+                               "in the driver's channel description", "none")
     max_step = declared_step if declared_step is not None else _INF
     if math.isfinite(channel_step):
         max_step = min(max_step, channel_step * law.smallest_slope(channel_low, channel_high))
     if not max_step > 0.0:
-        raise reader.fail("channel_max_step",
-                          "a channel range where the law is not flat: the channel step limit gives no "
-                          f"set-point step where the channel reaches 0 {channel_unit}; narrow "
-                          "channel_limit_min/channel_limit_max away from 0", max_step)
+        raise fail("channel_max_step",
+                   "a channel range where the law is not flat: the channel step limit gives no "
+                   f"set-point step where the channel reaches 0 {channel_unit}; narrow "
+                   "channel_limit_min/channel_limit_max away from 0", max_step)
 
-    safe_given, channel_safe_given = reader.number("safe"), reader.number("channel_safe")
-    if safe_given is not None and channel_safe_given is not None:
-        raise reader.fail("safe", "safe or channel_safe, not both", f"{safe_given} and {channel_safe_given}")
+    safe_given, channel_safe_given = declared.safe, declared.channel_safe
     if safe_given is not None:
         safe = safe_given
         if not low <= safe <= high:
-            raise reader.fail("safe", f"a value within the effective limits [{_fmt(low)}, {_fmt(high)}] {unit}",
-                              safe)
+            raise fail("safe", f"a value within the effective limits [{_fmt(low)}, {_fmt(high)}] "
+                               f"{unit}", safe)
         channel_safe = law.to_channel(safe)
         channel_safe = min(max(channel_safe, channel_low), channel_high)
     else:
         key = "channel_safe"
         channel_safe_value = channel_safe_given if channel_safe_given is not None else driver.safe
         if channel_safe_value is None:
-            raise reader.fail("safe", "a safe value: safe or channel_safe here, or safe in the driver's "
-                                      "channel description", "none")
+            raise fail("safe", "a safe value: safe or channel_safe here, or safe in the driver's "
+                               "channel description", "none")
         if channel_safe_given is None:
             key = "channel_safe (from the driver)"
         slack = _ROUNDING * max(abs(channel_low), abs(channel_high), 1e-300)
         if not channel_low - slack <= channel_safe_value <= channel_high + slack:
-            raise reader.fail(key, f"a value within the effective channel limits [{_fmt(channel_low)}, "
-                                   f"{_fmt(channel_high)}] {channel_unit}", channel_safe_value)
+            raise fail(key, f"a value within the effective channel limits [{_fmt(channel_low)}, "
+                            f"{_fmt(channel_high)}] {channel_unit}", channel_safe_value)
         channel_safe = channel_safe_value
         safe = min(max(law.to_setpoint(channel_safe), low), high)
-    tolerance = reader.number("channel_readback_tolerance", non_negative=True) or 0.0
-    step_in_channel = reader.number("channel_max_step", positive=True)
+    tolerance = declared.channel_readback_tolerance
+    step_in_channel = declared.channel_max_step
     if driver.max_step is not None:
         step_in_channel = driver.max_step if step_in_channel is None else min(step_in_channel, driver.max_step)
     return MappedSetpoint(name=name, unit=unit, channel=channel, channel_unit=channel_unit, law=law,
                           min=low, max=high, max_step=max_step, channel_min=channel_low,
                           channel_max=channel_high, channel_max_step=step_in_channel, safe=safe,
                           channel_safe=channel_safe, channel_readback_tolerance=tolerance)
+
+
+def _declared(declaration: Any, name: str, file: str, where: str) -> _Linear | _Stark:
+    """One ``[setpoints.NAME]`` table checked against its law's keys (every problem at once).
+
+    Raises
+    ------
+    FileErrors
+        Every problem of the table.
+    """
+    kind = declaration.get("law", "nothing") if isinstance(declaration, Mapping) else None
+    if kind is not None and kind not in _LAWS:
+        raise FileErrors([ConfigError(file, f"{where}.law", "'linear' or 'stark'", kind)])
+    if kind == "stark" and SETPOINT_UNITS[name] != "Hz":
+        raise FileErrors([ConfigError(file, f"{where}.law", "the stark law only for a detuning "
+                                      "(unit Hz)", f"{kind} for {name} in {SETPOINT_UNITS[name]}")])
+    return check(_LAWS[kind or "linear"], declaration, file=file, prefix=where)
+
+
+def _mapped(name: str, declared: _Linear | _Stark, driver_channels: Mapping[str, ChannelInfo],
+            used: dict[str, str], fail: Callable[[str, str, object], ConfigError]
+            ) -> MappedSetpoint:
+    """The rules between a checked table, the protocol and the driver (the first that does not
+    hold raises ``fail(key, expected, got)``); the mapped set-point."""
+    unit, channel, channel_unit = declared.unit, declared.channel, declared.channel_unit
+    if unit != SETPOINT_UNITS[name]:
+        raise fail("unit", f"the protocol's unit of {name}, {SETPOINT_UNITS[name]!r}", unit)
+    if channel in used:
+        raise fail("channel", f"a channel not already mapped (by {used[channel]})", channel)
+    info = driver_channels.get(channel)
+    if info is None:
+        raise fail("channel", f"a channel the driver describes: "
+                   f"{', '.join(sorted(driver_channels)) or 'none'}", channel)
+    if info.unit != channel_unit:
+        raise fail("channel_unit", f"the driver's unit of {channel}, {info.unit!r}", channel_unit)
+    used[channel] = name
+    return _resolve(name, declared, declared.law_of(), info, fail)
 
 
 def channel_map_from_table(table: Any, driver_channels: Mapping[str, ChannelInfo], *,
@@ -712,41 +741,39 @@ def channel_map_from_table(table: Any, driver_channels: Mapping[str, ChannelInfo
         Naming the file, the dotted key, what was expected and what was found, for any wrong,
         missing, unknown or inconsistent value (a channel the driver lacks, a unit that differs
         from the driver's, limits that do not overlap, no limit, no step, no safe value).
-        Values outside the range a lab could mean (:mod:`autotune.plausible`) are reported
-        first, all of them at once (:class:`~autotune.errors.ConfigErrors`).
+        Every problem of every table at once (:class:`~autotune.errors.FileErrors`): the
+        keys' types and bounds (:mod:`autotune.schema`) and the range a lab could mean
+        (:mod:`autotune.plausible`), then, for a table whose keys are all right, the first
+        rule between its keys, the protocol and the driver that does not hold.
     """
     if not isinstance(table, Mapping) or not table:
         raise ConfigError(file, prefix, "a table [setpoints.NAME] per set-point (velocity, detuning)", table)
-    implausible = [problem for name, declaration in table.items()
-                   if name in SETPOINT_UNITS and isinstance(declaration, Mapping)
-                   for problem in _implausible(declaration, file, f"{prefix}.{name}", name)]
-    if implausible:
-        raise ConfigErrors(implausible)
+    problems: list[ConfigError] = []
     mapped: dict[str, MappedSetpoint] = {}
     used: dict[str, str] = {}
     for name, declaration in table.items():
         where = f"{prefix}.{name}"
         if name not in SETPOINT_UNITS:
-            raise ConfigError(file, where, f"a set-point of the protocol: {', '.join(SETPOINT_UNITS)}", name)
-        if not isinstance(declaration, Mapping):
-            raise ConfigError(file, where, "a table", declaration)
-        reader = _Reader(declaration, file, where)
-        unit = reader.string("unit")
-        if unit != SETPOINT_UNITS[name]:
-            raise reader.fail("unit", f"the protocol's unit of {name}, {SETPOINT_UNITS[name]!r}", unit)
-        channel = reader.string("channel")
-        channel_unit = reader.string("channel_unit")
-        if channel in used:
-            raise reader.fail("channel", f"a channel not already mapped (by {used[channel]})", channel)
-        info = driver_channels.get(channel)
-        if info is None:
-            raise reader.fail("channel", f"a channel the driver describes: {', '.join(sorted(driver_channels)) or 'none'}",
-                              channel)
-        if info.unit != channel_unit:
-            raise reader.fail("channel_unit", f"the driver's unit of {channel}, {info.unit!r}", channel_unit)
-        law = _law_from(reader, name, unit, channel_unit)
-        mapped[name] = _resolve(name, reader, law, unit, channel, channel_unit, info)
-        used[channel] = name
+            problems.append(ConfigError(file, where, f"a set-point of the protocol: "
+                                        f"{', '.join(SETPOINT_UNITS)}", name))
+            continue
+        try:
+            declared = _declared(declaration, name, file, where)
+        except ConfigErrors as exc:
+            wrong = {problem.key for problem in exc.problems}
+            problems += exc.problems + [problem for problem in _implausible(
+                declaration, file, where, name) if problem.key not in wrong] \
+                if isinstance(declaration, Mapping) else exc.problems
+            continue
+        if implausible := _implausible(declaration, file, where, name):
+            problems += implausible  # the rules below would only echo a slipped unit
+            continue
+        try:
+            mapped[name] = _mapped(name, declared, driver_channels, used, _at(file, where))
+        except ConfigError as exc:
+            problems.append(exc)
+    if problems:
+        raise FileErrors(problems)
     return ChannelMap(mapped)
 
 

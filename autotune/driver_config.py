@@ -28,20 +28,23 @@ driver is built (:class:`autotune.served.ServedDriver`); everything else here, a
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import importlib
 import inspect
 import sys
 import traceback
-import tomllib
 import types
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any
 
-from autotune.errors import ConfigError
+from pydantic import Field, Strict
+
+from autotune.errors import ConfigError, RigError
 from autotune.plausible import SERVER_TIMEOUT_S
+from autotune.schema import Expect, check, number, problem, read_toml, refuse, table, text
 
 __all__ = ["DEFAULT_BIND", "DEFAULT_START_TIMEOUT_S", "DEFAULT_STOP_TIMEOUT_S",
            "DriverConfig", "DriverStartError", "load_driver_config", "build_driver"]
@@ -56,8 +59,9 @@ DEFAULT_STOP_TIMEOUT_S = 30.0
 """How long a stopping server waits for a driver call in progress unless told."""
 
 
-class DriverStartError(RuntimeError):
-    """The driver was found but failed while being built (its hardware, most often)."""
+class DriverStartError(RigError, RuntimeError):
+    """The driver was found but failed while being built (its hardware, most often): a
+    :class:`~autotune.errors.RigError` (``serve`` exits 3), and a RuntimeError as it was."""
 
 
 @dataclass(frozen=True)
@@ -104,34 +108,44 @@ class DriverConfig:
     safe_on_stop: bool = False
 
 
-def _seconds(file: str, server: Mapping[str, Any], key: str, default: float) -> float:
-    value = server.get(key, default)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or \
-            not 0.0 < value < float("inf"):
-        raise ConfigError(file, f"server.{key}", "a finite number of seconds > 0", value)
-    if value > SERVER_TIMEOUT_S:
-        raise ConfigError(file, f"server.{key}", f"at most {SERVER_TIMEOUT_S:g} s (a driver "
-                          f"that takes longer is taken as hung)", value)
-    return float(value)
+_SECONDS = number(0.0, SERVER_TIMEOUT_S, low_open=True, expected=(
+    f"a finite number of seconds > 0 and at most {SERVER_TIMEOUT_S:g} s (a driver that takes "
+    f"longer is taken as hung)"))
+_PATH = text("a path (relative to this file)")
 
 
-def _unknown(file: str, table: Mapping[str, Any], allowed: tuple[str, ...], prefix: str) -> None:
-    extra = sorted(str(k) for k in table if k not in allowed)
-    if extra:
-        where = f"{prefix}.{extra[0]}" if prefix else extra[0]
-        raise ConfigError(file, where, f"one of {', '.join(allowed)}", extra[0])
+@table
+class _DriverTable:
+    target: Annotated[text("'module:Class', e.g. 'lab_driver.driver:LabDriver'",
+                           pattern=r"^[^\W\d]\w*(\.[^\W\d]\w*)*:[^\W\d]\w*(\.[^\W\d]\w*)*$"),
+                      Field(alias="class")]
+    python_path: Annotated[list[text("a folder (relative to this file)")],
+                           Expect("a list of folders (strings)")] = dataclasses.field(
+        default_factory=list)
+    options: dict[str, Any] = dataclasses.field(default_factory=dict)
 
 
-def _table(file: str, data: Mapping[str, Any], key: str, prefix: str, *, required: bool) -> Mapping[str, Any]:
-    where = f"{prefix}.{key}" if prefix else key
-    if key not in data:
-        if required:
-            raise ConfigError(file, where, "a table", "nothing (the table is required)")
-        return {}
-    value = data[key]
-    if not isinstance(value, Mapping):
-        raise ConfigError(file, where, "a table", value)
-    return value
+@table
+class _ServerTable:
+    bind: text("an endpoint such as 'tcp://127.0.0.1:5560'", pattern="://") = DEFAULT_BIND
+    curve_secret_key_file: _PATH | None = None
+    curve_allowed_dir: _PATH | None = None
+    start_timeout_s: _SECONDS = DEFAULT_START_TIMEOUT_S
+    stop_timeout_s: _SECONDS = DEFAULT_STOP_TIMEOUT_S
+    safe_on_stop: Annotated[bool, Strict()] = False
+
+    def __post_init__(self) -> None:
+        if (self.curve_secret_key_file is None) != (self.curve_allowed_dir is None):
+            refuse("curve_secret_key_file", "both curve_secret_key_file and curve_allowed_dir, "
+                   "or neither", {"curve_secret_key_file": self.curve_secret_key_file,
+                                  "curve_allowed_dir": self.curve_allowed_dir})
+
+
+@table
+class _DriverFile:
+    driver: _DriverTable
+    setpoints: dict[str, Any]
+    server: _ServerTable = _ServerTable()
 
 
 def load_driver_config(path: str | Path) -> DriverConfig:
@@ -140,65 +154,31 @@ def load_driver_config(path: str | Path) -> DriverConfig:
     Raises
     ------
     ConfigError
-        Naming the file, the key, what was expected and what was found.
+        Naming the file, the key, what was expected and what was found (a
+        :class:`~autotune.errors.FileErrors` with every problem of the file).
     """
     path = Path(path)
-    file = str(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ConfigError(file, "<file>", "an existing DRIVER.toml", "no such file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(file, "<file>", "a readable UTF-8 file", f"{type(exc).__name__}: {exc}") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(file, "<file>", "valid TOML", str(exc)) from exc
-    _unknown(file, data, ("driver", "server", "setpoints"), "")
     base = path.resolve().parent
 
-    driver = _table(file, data, "driver", "", required=True)
-    _unknown(file, driver, ("class", "python_path", "options"), "driver")
-    target = driver.get("class")
-    module, _, name = target.partition(":") if isinstance(target, str) else ("", "", "")
-    if not (module and name and all(part.isidentifier() for part in module.split(".") + name.split("."))):
-        raise ConfigError(file, "driver.class", "'module:Class', e.g. 'lab_driver.driver:LabDriver'", target)
-    raw_path = driver.get("python_path", [])
-    if not isinstance(raw_path, list) or not all(isinstance(p, str) and p for p in raw_path):
-        raise ConfigError(file, "driver.python_path", "a list of folders (strings)", raw_path)
-    python_path = tuple((base / p).resolve() for p in raw_path)
-    for folder in python_path:
-        if not folder.is_dir():
-            raise ConfigError(file, "driver.python_path", "existing folders (relative to this file)", str(folder))
-    options = _table(file, driver, "options", "driver", required=False)
+    def folders(found: _DriverFile) -> list[ConfigError]:
+        return [problem(str(path), "driver.python_path", "existing folders (relative to this "
+                        "file)", str((base / folder).resolve()))
+                for folder in found.driver.python_path if not (base / folder).is_dir()]
 
-    server = _table(file, data, "server", "", required=False)
-    _unknown(file, server, ("bind", "curve_secret_key_file", "curve_allowed_dir",
-                            "start_timeout_s", "stop_timeout_s", "safe_on_stop"), "server")
-    start_timeout_s = _seconds(file, server, "start_timeout_s", DEFAULT_START_TIMEOUT_S)
-    stop_timeout_s = _seconds(file, server, "stop_timeout_s", DEFAULT_STOP_TIMEOUT_S)
-    safe_on_stop = server.get("safe_on_stop", False)
-    if not isinstance(safe_on_stop, bool):
-        raise ConfigError(file, "server.safe_on_stop", "true or false", safe_on_stop)
-    bind = server.get("bind", DEFAULT_BIND)
-    if not isinstance(bind, str) or "://" not in bind:
-        raise ConfigError(file, "server.bind", "an endpoint such as 'tcp://127.0.0.1:5560'", bind)
-    curve: dict[str, Path | None] = {}
-    for key in ("curve_secret_key_file", "curve_allowed_dir"):
-        value = server.get(key)
-        if value is not None and (not isinstance(value, str) or not value):
-            raise ConfigError(file, f"server.{key}", "a path (relative to this file)", value)
-        curve[key] = None if value is None else base / value
-    if (curve["curve_secret_key_file"] is None) != (curve["curve_allowed_dir"] is None):
-        raise ConfigError(file, "server.curve_secret_key_file", "both curve_secret_key_file and "
-                          "curve_allowed_dir, or neither", {k: str(v) if v else None for k, v in curve.items()})
-
-    setpoints = _table(file, data, "setpoints", "", required=True)
-    return DriverConfig(path=path, driver_class=target, python_path=python_path,
-                        options=types.MappingProxyType(dict(options)), bind=bind,
-                        curve_secret_key_file=curve["curve_secret_key_file"],
-                        curve_allowed_dir=curve["curve_allowed_dir"],
-                        setpoints=types.MappingProxyType(dict(setpoints)),
-                        start_timeout_s=start_timeout_s, stop_timeout_s=stop_timeout_s,
-                        safe_on_stop=safe_on_stop)
+    found = check(_DriverFile, read_toml(path, what="DRIVER.toml"), file=str(path),
+                  rules=folders)
+    server = found.server
+    return DriverConfig(
+        path=path, driver_class=found.driver.target,
+        python_path=tuple((base / folder).resolve() for folder in found.driver.python_path),
+        options=types.MappingProxyType(dict(found.driver.options)), bind=server.bind,
+        curve_secret_key_file=None if server.curve_secret_key_file is None
+        else base / server.curve_secret_key_file,
+        curve_allowed_dir=None if server.curve_allowed_dir is None
+        else base / server.curve_allowed_dir,
+        setpoints=types.MappingProxyType(dict(found.setpoints)),
+        start_timeout_s=server.start_timeout_s, stop_timeout_s=server.stop_timeout_s,
+        safe_on_stop=server.safe_on_stop)
 
 
 def build_driver(config: DriverConfig) -> Any:

@@ -5,6 +5,8 @@
     AutotuneError                  everything autotune raises on purpose
     ├── ConfigError                a configuration file or value is wrong (file, key, expected, got)
     │   └── ConfigErrors           several of them, found together before anything moved
+    │       └── FileErrors         every problem of one file (autotune.schema)
+    │           └── SimConfigError the simulated rig's config (drivers_sim.config; a ValueError too)
     ├── LimitError                 a set-point was refused before it left this process
     │                              (outside the configured or described limits, or too large a step)
     ├── EstimationError            counts cannot give a fringe estimate (inconsistent input)
@@ -17,8 +19,10 @@
         ├── RigRefused             the rig answered ``ok: false``; carries its ``kind`` and ``detail``
         │   └── RigLeased          ``leased``: another client holds the rig's lease (names it)
         ├── ProtocolError          a reply (or request) does not follow the wire protocol
-        └── RigMismatch            a reply does not match what this client applied or saw
-            └── RigRestarted       the rig's identity changed or its clock went back: it restarted
+        ├── RigMismatch            a reply does not match what this client applied or saw
+        │   └── RigRestarted       the rig's identity changed or its clock went back: it restarted
+        └── DriverStartError       a lab's driver failed while being built (autotune.driver_config;
+                                   a RuntimeError too)
 
     DriverRefusal                  a rig driver refuses a request (``autotune serve`` answers it
     │                              with the error kind below; nothing was done)
@@ -43,6 +47,7 @@ __all__ = [
     "AutotuneError",
     "ConfigError",
     "ConfigErrors",
+    "FileErrors",
     "LimitError",
     "EstimationError",
     "JournalError",
@@ -117,6 +122,23 @@ class ConfigErrors(ConfigError):
             lines = [f"{len(self.problems)} problems, nothing was sent to the rig:"]
             lines += [f"  - {problem}" for problem in self.problems]
             self.args = ("\n".join(lines),)
+
+
+class FileErrors(ConfigErrors):
+    """Every problem of one file, reported together (``FILE: N problems:``, one line each);
+    what :mod:`autotune.schema` raises for a file a person wrote.
+
+    Parameters
+    ----------
+    problems : sequence of ConfigError
+        Every problem found, in the order found (at least one).
+    """
+
+    def __init__(self, problems: Sequence[ConfigError]) -> None:
+        super().__init__(problems)
+        if len(self.problems) > 1:
+            self.args = (f"{self.file}: {len(self.problems)} problems:\n"
+                         + "\n".join(f"  - {problem}" for problem in self.problems),)
 
 
 class LimitError(AutotuneError):

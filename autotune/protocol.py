@@ -195,6 +195,7 @@ cavity frequency step, result ``{"clock": float, "cavity_offset_hz": float}``.
 
 from __future__ import annotations
 
+import dataclasses
 import enum
 import json
 import math
@@ -203,9 +204,15 @@ import secrets
 import types
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Any, Literal, TypeVar
+
+import pydantic
+from pydantic import Strict
 
 from autotune.errors import ProtocolError, RigLeased, RigRefused
+from autotune import schema
+
+_T = TypeVar("_T")
 
 __all__ = [
     "STEP_TOLERANCE",
@@ -616,32 +623,60 @@ def _bad(kind: ErrorKind, detail: str) -> RequestRejected:
     return RequestRejected(kind, detail)
 
 
-def _arg_number(where: str, value: object) -> float:
-    if not _is_number(value):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
-    try:
-        number = float(value)  # type: ignore[arg-type]
-    except OverflowError:
-        number = math.inf
-    if not math.isfinite(number):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected a finite number, got {_show(value)}")
-    return number
+def _wire_detail(problems: list[Any]) -> str:
+    """Every problem :mod:`autotune.schema` found in a message, on one line."""
+    return "; ".join(f"{p.key}: expected {p.expected}, got {_show(p.got)}" for p in problems)
 
 
-def _arg_setpoints(where: str, value: object) -> dict[str, float]:
-    if not isinstance(value, Mapping):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object of name: number, got {_show(value)}")
-    if not value:
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected at least one set-point, got {{}}")
-    clean: dict[str, float] = {}
-    for name, number in value.items():
-        if not isinstance(name, str) or not name:
-            raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected non-empty names, got {_show(name)}")
-        clean[name] = _arg_number(f"{where}.{name}", number)
-    return clean
+_FINITE = schema.number()
+_NAME = Annotated[str, Strict(), pydantic.Field(min_length=1), schema.Expect("a non-empty name")]
+_SETPOINTS = Annotated[dict[_NAME, _FINITE], pydantic.Field(min_length=1),
+                       schema.Expect("an object of name: number, at least one")]
+_FIELDS = tuple(f.value for f in Field)
 
 
-_NO_ARGUMENTS = frozenset({Op.DESCRIBE, Op.STATUS, Op.SAFE, Op.RELEASE})
+@schema.table
+class _NoArgs:
+    """``describe``, ``status``, ``safe``, ``release``: no argument."""
+
+
+@schema.table
+class _ApplyArgs:
+    setpoints: _SETPOINTS
+
+
+@schema.table
+class _AcquireArgs:
+    field: Annotated[Literal[_FIELDS], schema.Expect(" or ".join(repr(f) for f in _FIELDS))]
+    ramsey_phase: _FINITE
+    shots: schema.integer(1, MAX_SHOTS)
+
+
+@schema.table
+class _TruthArgs:
+    setpoints: _SETPOINTS | None = None
+
+
+@schema.table
+class _AdvanceArgs:
+    seconds: schema.number(0.0)
+
+
+@schema.table
+class _ThermalStepArgs:
+    shift_hz: _FINITE
+
+
+@schema.table
+class _ClaimArgs:
+    ttl_s: schema.number(0.0, MAX_LEASE_TTL_S, low_open=True,
+                         expected=f"a number of seconds in (0, {MAX_LEASE_TTL_S:g}]")
+
+
+_ARGS: Mapping[Op, type] = {Op.DESCRIBE: _NoArgs, Op.STATUS: _NoArgs, Op.SAFE: _NoArgs,
+                            Op.RELEASE: _NoArgs, Op.APPLY: _ApplyArgs, Op.ACQUIRE: _AcquireArgs,
+                            Op.TRUTH: _TruthArgs, Op.ADVANCE: _AdvanceArgs,
+                            Op.THERMAL_STEP: _ThermalStepArgs, Op.CLAIM: _ClaimArgs}
 
 
 def validate_args(op: Op, args: object) -> dict[str, Any]:
@@ -658,58 +693,18 @@ def validate_args(op: Op, args: object) -> dict[str, Any]:
     -------
     dict
         A new dict: set-point values and phases as ``float``, ``shots`` as ``int``, ``field`` as
-        its string value.
+        its string value; an optional argument left out (or null) is not in it.
 
     Raises
     ------
     RequestRejected
-        With kind ``bad_request`` and a detail naming the argument, expected and got.
+        With kind ``bad_request`` and a detail naming every wrong argument, expected and got.
     """
-    op = Op(op)
-    where = "args"
     if not isinstance(args, Mapping):
-        raise _bad(ErrorKind.BAD_REQUEST, f"{where}: expected an object, got {_show(args)}")
-    if op in _NO_ARGUMENTS:
-        _check_keys(where, args, required=(), optional=(), fail=_bad)
-        return {}
-    if op is Op.APPLY:
-        _check_keys(where, args, required=("setpoints",), optional=(), fail=_bad)
-        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
-    if op is Op.ACQUIRE:
-        _check_keys(where, args, required=("field", "ramsey_phase", "shots"), optional=(), fail=_bad)
-        field = args["field"]
-        if not isinstance(field, str) or field not in {f.value for f in Field}:
-            expected = " or ".join(repr(f.value) for f in Field)
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.field: expected {expected}, got {_show(field)}")
-        phase = _arg_number("args.ramsey_phase", args["ramsey_phase"])
-        shots = args["shots"]
-        if not _is_int(shots) or not 1 <= shots <= MAX_SHOTS:
-            raise _bad(
-                ErrorKind.BAD_REQUEST, f"args.shots: expected an integer in [1, {MAX_SHOTS}], got {_show(shots)}"
-            )
-        return {"field": field, "ramsey_phase": phase, "shots": int(shots)}
-    if op is Op.TRUTH:
-        _check_keys(where, args, required=(), optional=("setpoints",), fail=_bad)
-        if args.get("setpoints") is None:
-            return {}
-        return {"setpoints": _arg_setpoints("args.setpoints", args["setpoints"])}
-    if op is Op.ADVANCE:
-        _check_keys(where, args, required=("seconds",), optional=(), fail=_bad)
-        seconds = _arg_number("args.seconds", args["seconds"])
-        if seconds < 0:
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.seconds: expected a number >= 0, got {_show(args['seconds'])}")
-        return {"seconds": seconds}
-    if op is Op.THERMAL_STEP:
-        _check_keys(where, args, required=("shift_hz",), optional=(), fail=_bad)
-        return {"shift_hz": _arg_number("args.shift_hz", args["shift_hz"])}
-    if op is Op.CLAIM:
-        _check_keys(where, args, required=("ttl_s",), optional=(), fail=_bad)
-        ttl = _arg_number("args.ttl_s", args["ttl_s"])
-        if not 0.0 < ttl <= MAX_LEASE_TTL_S:
-            raise _bad(ErrorKind.BAD_REQUEST, f"args.ttl_s: expected a number of seconds in "
-                                              f"(0, {MAX_LEASE_TTL_S:g}], got {_show(args['ttl_s'])}")
-        return {"ttl_s": ttl}
-    raise AssertionError(f"unhandled op {op}")  # pragma: no cover - every Op is handled above
+        raise _bad(ErrorKind.BAD_REQUEST, f"args: expected an object, got {_show(args)}")
+    found = schema.check(_ARGS[Op(op)], args, file="args", prefix="args",
+                         error=lambda problems: _bad(ErrorKind.BAD_REQUEST, _wire_detail(problems)))
+    return {key: value for key, value in dataclasses.asdict(found).items() if value is not None}
 
 
 # --------------------------------------------------------------------------- client side
@@ -780,47 +775,22 @@ def decode_reply(data: bytes, msg_id: str) -> dict[str, Any]:
     return result
 
 
-def _need(obj: Mapping[str, Any], key: str, where: str) -> Any:
-    if not isinstance(obj, Mapping):
-        raise ProtocolError(f"{where}: expected an object, got {_show(obj)}")
-    if key not in obj:
-        raise ProtocolError(f"{where}: missing key {key!r}")
-    return obj[key]
+_COUNT = schema.integer(0)
+_STRING = Annotated[str, Strict()]
+_FLAG = Annotated[bool, Strict()]
+_VALUES = Annotated[dict[str, _FINITE], schema.Expect("an object of name: number")]
+# Left out, the rig reports no identity; an explicit null is refused.
+_INSTANCE = schema.text("1 to 64 characters of [0-9A-Za-z_-]",
+                        pattern=r"^[0-9A-Za-z_-]{1,64}$")
 
 
-def _float(obj: Mapping[str, Any], key: str, where: str) -> float:
-    value = _need(obj, key, where)
-    if not _is_number(value) or not math.isfinite(float(value)):
-        raise ProtocolError(f"{where}.{key}: expected a finite number, got {_show(value)}")
-    return float(value)
-
-
-def _int(obj: Mapping[str, Any], key: str, where: str, *, minimum: int = 0) -> int:
-    value = _need(obj, key, where)
-    if not _is_int(value) or value < minimum:
-        raise ProtocolError(f"{where}.{key}: expected an integer >= {minimum}, got {_show(value)}")
-    return int(value)
-
-
-def _str(obj: Mapping[str, Any], key: str, where: str) -> str:
-    value = _need(obj, key, where)
-    if not isinstance(value, str):
-        raise ProtocolError(f"{where}.{key}: expected a string, got {_show(value)}")
-    return value
-
-
-def _bool(obj: Mapping[str, Any], key: str, where: str) -> bool:
-    value = _need(obj, key, where)
-    if not isinstance(value, bool):
-        raise ProtocolError(f"{where}.{key}: expected true or false, got {_show(value)}")
-    return value
-
-
-def _setpoint_values(obj: Mapping[str, Any], key: str, where: str) -> Mapping[str, float]:
-    value = _need(obj, key, where)
-    if not isinstance(value, Mapping):
-        raise ProtocolError(f"{where}.{key}: expected an object of name: number, got {_show(value)}")
-    return types.MappingProxyType({str(name): _float(value, name, f"{where}.{key}") for name in value})
+def _parsed(cls: type[_T], result: object, where: str) -> _T:
+    """A result checked against its table (:mod:`autotune.schema`; keys a newer rig adds are
+    ignored); every problem in one :class:`ProtocolError`."""
+    if not isinstance(result, Mapping):
+        raise ProtocolError(f"{where}: expected an object, got {_show(result)}")
+    return schema.check(cls, result, file=where, prefix=where,
+                        error=lambda problems: ProtocolError(_wire_detail(problems)))
 
 
 @dataclass(frozen=True)
@@ -873,15 +843,16 @@ class SetpointLimit:
         return SetpointLimit(self.unit, low, high, min(self.max_step, other.max_step))
 
 
-def _parse_limit(obj: object, where: str) -> SetpointLimit:
-    if not isinstance(obj, Mapping):
-        raise ProtocolError(f"{where}: expected an object, got {_show(obj)}")
-    unit = _str(obj, "unit", where)
-    low, high, step = _float(obj, "min", where), _float(obj, "max", where), _float(obj, "max_step", where)
-    try:
-        return SetpointLimit(unit, low, high, step)
-    except ValueError as exc:
-        raise ProtocolError(f"{where}: {exc}") from exc
+@schema.table(extra="ignore")
+class _Limit:
+    unit: _STRING
+    min: _FINITE
+    max: _FINITE
+    max_step: schema.number(0.0, low_open=True)
+
+    def __post_init__(self) -> None:
+        if self.min > self.max:
+            schema.refuse("max", f"a number >= min = {self.min!r}", self.max)
 
 
 @dataclass(frozen=True)
@@ -921,48 +892,31 @@ class Description:
     max_shots_per_acquisition: int = MAX_SHOTS
 
 
+@schema.table(extra="ignore")
+class _Described:
+    proto: Annotated[schema.integer(PROTO_VERSION, PROTO_VERSION),
+                     schema.Expect(f"{PROTO_VERSION}")]
+    rig: _STRING
+    simulated: _FLAG
+    setpoints: Annotated[dict[str, _Limit], schema.Expect("an object of name: limits")]
+    fields: Annotated[list[_STRING], schema.Expect("an array of strings")]
+    repetition_rate_hz: schema.number(0.0, low_open=True)
+    safe_setpoints: _VALUES
+    instance: _INSTANCE = None
+    max_shots_per_acquisition: schema.integer(1) = MAX_SHOTS
+
+
 def parse_description(result: Mapping[str, Any]) -> Description:
     """Turn a ``describe`` result into a :class:`Description` (raises ProtocolError)."""
-    where = "describe result"
-    proto = _int(result, "proto", where)
-    if proto != PROTO_VERSION:
-        raise ProtocolError(f"{where}.proto: expected {PROTO_VERSION}, got {proto}")
-    raw_limits = _need(result, "setpoints", where)
-    if not isinstance(raw_limits, Mapping):
-        raise ProtocolError(f"{where}.setpoints: expected an object, got {_show(raw_limits)}")
-    limits = {str(n): _parse_limit(v, f"{where}.setpoints.{n}") for n, v in raw_limits.items()}
-    fields = _need(result, "fields", where)
-    if not isinstance(fields, list) or not all(isinstance(f, str) for f in fields):
-        raise ProtocolError(f"{where}.fields: expected an array of strings, got {_show(fields)}")
-    rate = _float(result, "repetition_rate_hz", where)
-    if rate <= 0:
-        raise ProtocolError(f"{where}.repetition_rate_hz: expected a number > 0, got {rate!r}")
-    safe = _setpoint_values(result, "safe_setpoints", where)
-    max_shots = MAX_SHOTS
-    if "max_shots_per_acquisition" in result:
-        max_shots = _int(result, "max_shots_per_acquisition", where, minimum=1)
+    found = _parsed(_Described, result, "describe result")
     return Description(
-        rig=_str(result, "rig", where),
-        proto=proto,
-        simulated=_bool(result, "simulated", where),
-        setpoints=types.MappingProxyType(limits),
-        fields=tuple(fields),
-        repetition_rate_hz=rate,
-        safe_setpoints=safe,
-        instance=_instance(result, where),
-        max_shots_per_acquisition=max_shots,
-    )
-
-
-def _instance(result: Mapping[str, Any], where: str) -> str | None:
-    """The optional ``instance`` key of a result (the rig's identity), checked."""
-    if "instance" not in result:
-        return None
-    value = result["instance"]
-    if not isinstance(value, str) or not _INSTANCE_RE.fullmatch(value):
-        raise ProtocolError(f"{where}.instance: expected 1 to 64 characters of [0-9A-Za-z_-], "
-                            f"got {_show(value)}")
-    return value
+        rig=found.rig, proto=found.proto, simulated=found.simulated,
+        setpoints=types.MappingProxyType({name: SetpointLimit(
+            limit.unit, limit.min, limit.max, limit.max_step)
+            for name, limit in found.setpoints.items()}),
+        fields=tuple(found.fields), repetition_rate_hz=found.repetition_rate_hz,
+        safe_setpoints=types.MappingProxyType(found.safe_setpoints), instance=found.instance,
+        max_shots_per_acquisition=found.max_shots_per_acquisition)
 
 
 @dataclass(frozen=True)
@@ -984,20 +938,30 @@ class Applied:
     instance: str | None = None
 
 
+@schema.table(extra="ignore")
+class _Safe:
+    setpoints: _VALUES
+    instance: _INSTANCE = None
+
+
+@schema.table(extra="ignore", kw_only=True)
+class _Applied(_Safe):
+    clock: _FINITE
+
+
 def parse_applied(result: Mapping[str, Any]) -> Applied:
     """Turn an ``apply`` result into :class:`Applied` (raises ProtocolError)."""
-    where = "apply result"
-    return Applied(_setpoint_values(result, "setpoints", where), _float(result, "clock", where),
-                   _instance(result, where))
+    found = _parsed(_Applied, result, "apply result")
+    return Applied(types.MappingProxyType(found.setpoints), found.clock, found.instance)
 
 
 def parse_safe(result: Mapping[str, Any]) -> Applied:
     """Turn a ``safe`` result into :class:`Applied` with ``clock=None`` (raises ProtocolError)."""
-    where = "safe result"
-    return Applied(_setpoint_values(result, "setpoints", where), None, _instance(result, where))
+    found = _parsed(_Safe, result, "safe result")
+    return Applied(types.MappingProxyType(found.setpoints), None, found.instance)
 
 
-@dataclass(frozen=True)
+@schema.table(extra="ignore")
 class Counts:
     """Detected atoms per state.
 
@@ -1007,9 +971,9 @@ class Counts:
         Atoms assigned to the upper, lower and reference level.
     """
 
-    e: int
-    g: int
-    i: int
+    e: _COUNT
+    g: _COUNT
+    i: _COUNT
 
     @property
     def detected(self) -> int:
@@ -1043,22 +1007,27 @@ class Acquisition:
     instance: str | None = None
 
 
+@schema.table(extra="ignore")
+class _Acquired:
+    counts: Annotated[Counts, schema.Expect("an object of e, g, i")]
+    shots: schema.integer(1)
+    t_start: _FINITE
+    t_end: _FINITE
+    setpoints: _VALUES
+    instance: _INSTANCE = None
+
+    def __post_init__(self) -> None:
+        # The rig clock never runs backwards within an acquisition.
+        if self.t_end < self.t_start:
+            schema.refuse("t_end", f"a time >= t_start = {self.t_start!r}", self.t_end)
+
+
 def parse_acquisition(result: Mapping[str, Any]) -> Acquisition:
     """Turn an ``acquire`` result into :class:`Acquisition` (raises ProtocolError)."""
-    where = "acquire result"
-    raw = _need(result, "counts", where)
-    counts = Counts(*(_int(raw, k, f"{where}.counts") for k in ("e", "g", "i")))
-    t_start, t_end = _float(result, "t_start", where), _float(result, "t_end", where)
-    if t_end < t_start:
-        raise ProtocolError(f"{where}: expected t_end >= t_start, got {t_start!r} and {t_end!r}")
-    return Acquisition(
-        counts=counts,
-        shots=_int(result, "shots", where, minimum=1),
-        t_start=t_start,
-        t_end=t_end,
-        setpoints=_setpoint_values(result, "setpoints", where),
-        instance=_instance(result, where),
-    )
+    found = _parsed(_Acquired, result, "acquire result")
+    return Acquisition(counts=found.counts,
+                       shots=found.shots, t_start=found.t_start, t_end=found.t_end,
+                       setpoints=types.MappingProxyType(found.setpoints), instance=found.instance)
 
 
 @dataclass(frozen=True)
@@ -1089,45 +1058,58 @@ class Status:
     instance: str | None = None
 
 
+@schema.table(extra="ignore")
+class _Status:
+    clock: _FINITE
+    busy: _FLAG
+    interlock: Annotated[_STRING | None, schema.Expect("null or a string")]
+    setpoints: _VALUES
+    shots_total: _COUNT
+    instance: _INSTANCE = None
+
+
 def parse_status(result: Mapping[str, Any]) -> Status:
     """Turn a ``status`` result into :class:`Status` (raises ProtocolError)."""
-    where = "status result"
-    interlock = _need(result, "interlock", where)
-    if interlock is not None and not isinstance(interlock, str):
-        raise ProtocolError(f"{where}.interlock: expected null or a string, got {_show(interlock)}")
-    return Status(
-        clock=_float(result, "clock", where),
-        busy=_bool(result, "busy", where),
-        interlock=interlock,
-        setpoints=_setpoint_values(result, "setpoints", where),
-        shots_total=_int(result, "shots_total", where),
-        instance=_instance(result, where),
-    )
+    found = _parsed(_Status, result, "status result")
+    return Status(clock=found.clock, busy=found.busy, interlock=found.interlock,
+                  setpoints=types.MappingProxyType(found.setpoints),
+                  shots_total=found.shots_total, instance=found.instance)
+
+
+@schema.table(extra="ignore")
+class _Clock:
+    clock: _FINITE
+
+
+@schema.table(extra="ignore", kw_only=True)
+class _Truth(_Clock):
+    setpoints: _VALUES
+
+
+@schema.table(extra="ignore", kw_only=True)
+class _Stepped(_Clock):
+    cavity_offset_hz: _FINITE
 
 
 def parse_truth(result: Mapping[str, Any]) -> dict[str, Any]:
     """Check a ``truth`` result's outline (set-points, clock) and return it as a dict."""
-    where = "truth result"
-    _setpoint_values(result, "setpoints", where)
-    _float(result, "clock", where)
+    _parsed(_Truth, result, "truth result")
     return dict(result)
 
 
 def parse_advance(result: Mapping[str, Any]) -> dict[str, Any]:
     """Check an ``advance`` result (``clock``) and return it as a dict."""
-    _float(result, "clock", "advance result")
+    _parsed(_Clock, result, "advance result")
     return dict(result)
 
 
 def parse_thermal_step(result: Mapping[str, Any]) -> dict[str, Any]:
     """Check a ``thermal_step`` result (``clock``, ``cavity_offset_hz``) and return it as a dict."""
-    where = "thermal_step result"
-    _float(result, "clock", where)
-    _float(result, "cavity_offset_hz", where)
+    _parsed(_Stepped, result, "thermal_step result")
     return dict(result)
 
 
-@dataclass(frozen=True)
+@schema.table(extra="ignore")
 class Lease:
     """Result of ``claim``: the lease this client now holds.
 
@@ -1143,19 +1125,22 @@ class Lease:
         True when this client already held it.
     """
 
-    holder: str
-    ttl_s: float
-    expires_in_s: float
-    renewed: bool
+    holder: _STRING
+    ttl_s: _FINITE
+    expires_in_s: _FINITE
+    renewed: _FLAG
+
+
+@schema.table(extra="ignore")
+class _Released:
+    released: _FLAG
 
 
 def parse_claim(result: Mapping[str, Any]) -> Lease:
     """Turn a ``claim`` result into :class:`Lease` (raises ProtocolError)."""
-    where = "claim result"
-    return Lease(_str(result, "holder", where), _float(result, "ttl_s", where),
-                 _float(result, "expires_in_s", where), _bool(result, "renewed", where))
+    return _parsed(Lease, result, "claim result")
 
 
 def parse_release(result: Mapping[str, Any]) -> bool:
     """Turn a ``release`` result into whether a lease was released (raises ProtocolError)."""
-    return _bool(result, "released", "release result")
+    return _parsed(_Released, result, "release result").released

@@ -1,8 +1,10 @@
 """Configuration of the simulated rig: TOML -> frozen dataclasses, checked once.
 
-Every value is checked here for type, range and finiteness, and unknown keys are refused; an
-error is a :class:`SimConfigError` whose message names the file, the dotted key, what was
-expected and what was received, for every problem of the file at once. A physical value must
+Each section's annotations declare its keys' types and bounds, checked by
+:mod:`autotune.schema` (unknown keys refused, with the nearest name); the rules joining keys of
+several tables sit beside them (``_relations``). An error is a :class:`SimConfigError` whose
+message names the file, the dotted key, what was expected and what was received, for every
+problem of the file at once. A physical value must
 also lie in the range a lab could mean (:mod:`autotune.plausible`, shared with the client's
 configuration): a value typed in the wrong unit is refused with a hint at the likely one
 (``cavity.damping_time_s ... got 25: did you mean 25 ms = 0.025?``). The top-level ``[faults]`` table belongs to the server
@@ -18,16 +20,15 @@ round-trip through ``to_dict`` / ``sim_config_from_dict`` when the new values ne
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
-import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 import autotune.plausible as plausible
+from autotune.errors import ConfigError, FileErrors
+from autotune.schema import check, integer, number, read_toml, refuse, table, text
 from drivers_sim.physics import (
-    MODE_PROFILES,
     SUPER_GAUSSIAN_ORDER_RANGE,
     WAIST_ASYMMETRY_RANGE,
     ModeProfile,
@@ -57,11 +58,14 @@ SETPOINT_UNITS: dict[str, str] = {"velocity": "m/s", "detuning": "Hz"}
 _UNIT_SUFFIX = {"velocity": "m_per_s", "detuning": "hz"}
 
 
-class SimConfigError(ValueError):
-    """A simulated-rig configuration file or value is wrong.
-
-    The message names the file, the dotted key, what was expected and what was received.
+class SimConfigError(FileErrors, ValueError):
+    """A simulated-rig configuration file or value is wrong (a :class:`ValueError` too, as it
+    always was): every problem of the file, each naming the file, the dotted key, what was
+    expected and what was received (``problems``).
     """
+
+
+_PROBABILITY = number(0.0, 1.0)
 
 
 # --------------------------------------------------------------------------------------------
@@ -69,7 +73,7 @@ class SimConfigError(ValueError):
 # --------------------------------------------------------------------------------------------
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class RigSection:
     """``[rig]``: identity and timing.
 
@@ -89,15 +93,15 @@ class RigSection:
         Largest ``shots`` one ``acquire`` accepts.
     """
 
-    name: str
-    default_seed: int
-    repetition_rate_hz: float
-    atoms_per_sample: float
-    settle_time_s: float
-    max_shots_per_acquisition: int
+    name: text()
+    default_seed: integer(0, 2**63 - 1)
+    repetition_rate_hz: number(0.0, 1e7, low_open=True, plausible=plausible.REPETITION_RATE_HZ)
+    atoms_per_sample: number(0.0, 100.0, plausible=plausible.ATOMS_PER_SAMPLE)
+    settle_time_s: number(0.0, 3600.0)
+    max_shots_per_acquisition: integer(1, 10**9)
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class CavitySection:
     """``[cavity]``: the mode (hidden truth of the simulation).
 
@@ -128,15 +132,16 @@ class CavitySection:
         otherwise.
     """
 
-    frequency_hz: float
-    coupling_hz: float
-    waist_m: float
-    damping_time_s: float
-    temperature_k: float
-    initial_offset_hz: float
+    frequency_hz: number(0.0, low_open=True, plausible=plausible.CAVITY_FREQUENCY_HZ)
+    coupling_hz: number(0.0, 1e8, low_open=True, plausible=plausible.COUPLING_HZ)
+    waist_m: number(0.0, 1.0, low_open=True, plausible=plausible.WAIST_M)
+    damping_time_s: number(0.0, 1e6, low_open=True, plausible=plausible.DAMPING_TIME_S)
+    temperature_k: number(0.0, 1e4, plausible=plausible.TEMPERATURE_K)
+    initial_offset_hz: number(-1e9, 1e9, plausible=plausible.DETUNING_HZ)
     mode_profile: ModeProfileKind = "gaussian"
-    super_gaussian_order: float | None = None
-    waist_asymmetry: float | None = None
+    # None (left out of the file) unless the profile needs it: an explicit None is refused.
+    super_gaussian_order: number(*SUPER_GAUSSIAN_ORDER_RANGE) = None
+    waist_asymmetry: number(*WAIST_ASYMMETRY_RANGE) = None
 
     @property
     def profile(self) -> ModeProfile:
@@ -148,7 +153,7 @@ class CavitySection:
         return ModeProfile()
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class BeamSection:
     """``[beam]``: velocity selection (hidden truth) and geometry.
 
@@ -162,12 +167,12 @@ class BeamSection:
         Flight distance from the field preparation to the mode centre, m.
     """
 
-    velocity_bias_m_per_s: float
-    velocity_spread_m_per_s: float
-    preparation_to_cavity_m: float
+    velocity_bias_m_per_s: number(-1e4, 1e4, plausible=plausible.VELOCITY_BIAS_M_PER_S)
+    velocity_spread_m_per_s: number(0.0, 1e4, plausible=plausible.VELOCITY_SPREAD_M_PER_S)
+    preparation_to_cavity_m: number(0.0, 100.0, plausible=plausible.FLIGHT_DISTANCE_M)
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class FieldSection:
     """``[field]``: preparation of the one-photon field.
 
@@ -177,10 +182,10 @@ class FieldSection:
         Probability ``p1`` that the preparation puts one photon in.
     """
 
-    one_photon_probability: float
+    one_photon_probability: _PROBABILITY
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class RamseySection:
     """``[ramsey]``: the interferometer zones.
 
@@ -194,12 +199,12 @@ class RamseySection:
         Zone pulse area at the set velocity (power calibrated there), rad.
     """
 
-    detuning_hz: float
-    zone_separation_m: float
-    area_at_set_velocity_rad: float
+    detuning_hz: number(-1e9, 1e9, plausible=plausible.RAMSEY_DETUNING_HZ)
+    zone_separation_m: number(0.0, 100.0, plausible=plausible.ZONE_SEPARATION_M)
+    area_at_set_velocity_rad: number(0.0, 2.0 * math.pi)
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class StarkSection:
     """``[stark]``: quadratic Stark tuning of the e-g line.
 
@@ -219,14 +224,14 @@ class StarkSection:
         default 0. The true detuning is ``k_true ((E + error)^2 - E_bias^2)``.
     """
 
-    coefficient_hz_m2_per_v2: float
-    coefficient_error: float
-    bias_field_v_per_m: float
-    electrode_gap_m: float
-    bias_field_error_v_per_m: float = 0.0
+    coefficient_hz_m2_per_v2: number(-1e6, 1e6, plausible=plausible.STARK_COEFFICIENT_HZ_M2_PER_V2)
+    coefficient_error: number(-0.5, 0.5)
+    bias_field_v_per_m: number(0.0, 1e7, low_open=True, plausible=plausible.ELECTRIC_FIELD_V_PER_M)
+    electrode_gap_m: number(0.0, low_open=True, plausible=plausible.ELECTRODE_GAP_M)
+    bias_field_error_v_per_m: number(-1e7, 1e7, plausible=plausible.ELECTRIC_FIELD_V_PER_M) = 0.0
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class DetectionSection:
     """``[detection]``: detectors.
 
@@ -238,14 +243,14 @@ class DetectionSection:
         Confusion probabilities of a detected atom.
     """
 
-    efficiency: float
-    e_read_as_g: float
-    g_read_as_e: float
-    g_read_as_i: float
-    i_read_as_g: float
+    efficiency: number(0.0, 1.0, low_open=True)
+    e_read_as_g: _PROBABILITY
+    g_read_as_e: _PROBABILITY
+    g_read_as_i: _PROBABILITY
+    i_read_as_g: _PROBABILITY
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class DriftSection:
     """``[drift]``: cavity-frequency drift on the rig clock.
 
@@ -259,12 +264,12 @@ class DriftSection:
         Default size of a thermal step, Hz.
     """
 
-    ramp_hz_per_s: float
-    random_walk_hz_per_sqrt_s: float
-    thermal_step_hz: float
+    ramp_hz_per_s: number(-1e6, 1e6, plausible=plausible.DRIFT_RAMP_HZ_PER_S)
+    random_walk_hz_per_sqrt_s: number(0.0, 1e6, plausible=plausible.RANDOM_WALK_HZ_PER_SQRT_S)
+    thermal_step_hz: number(-1e9, 1e9, plausible=plausible.THERMAL_STEP_HZ)
 
 
-@dataclasses.dataclass(frozen=True)
+@table
 class ModelSection:
     """``[model]``: numerical settings of the simulation (optional table).
 
@@ -282,11 +287,11 @@ class ModelSection:
         Points of that stencil (odd, >= 3).
     """
 
-    velocity_nodes: int = 9
-    max_photons: int = 4
-    crossing_steps: int = 256
-    stencil_spacing_hz: float = 200.0
-    stencil_points: int = 5
+    velocity_nodes: integer(1, 64) = 9
+    max_photons: integer(1, 20) = 4
+    crossing_steps: integer(8, 65536) = 256
+    stencil_spacing_hz: number(0.0, 1e6, low_open=True) = 200.0
+    stencil_points: integer(3, 15) = 5
 
 
 @dataclasses.dataclass(frozen=True)
@@ -360,306 +365,117 @@ class SimRigConfig:
         return out
 
 
-# --------------------------------------------------------------------------------------------
-# Checking
-# --------------------------------------------------------------------------------------------
+_SECTIONS = ("rig", "cavity", "beam", "field", "ramsey", "stark", "detection", "drift", "model")
 
 
-@dataclasses.dataclass(frozen=True)
-class _Spec:
-    kind: str  # "float", "int", "str" or "choice"
-    low: float | None = None
-    high: float | None = None
-    low_open: bool = False
-    high_open: bool = False
-    choices: tuple[str, ...] = ()
-
-    def describe(self) -> str:
-        if self.kind == "choice":
-            return "one of " + ", ".join(repr(c) for c in self.choices)
-        what = {"float": "a finite number", "int": "an integer", "str": "a non-empty string"}[
-            self.kind
-        ]
-        parts = []
-        if self.low is not None:
-            parts.append(f"{'>' if self.low_open else '>='} {self.low:g}")
-        if self.high is not None:
-            parts.append(f"{'<' if self.high_open else '<='} {self.high:g}")
-        return what + (" " + " and ".join(parts) if parts else "")
+def _ordered(low: float, high: float, safe: float, suffix: str) -> None:
+    if low >= high:
+        refuse(f"max_{suffix}", f"a number > min_{suffix} = {low:g}", high)
+    if not low <= safe <= high:
+        refuse(f"safe_{suffix}", f"a number in [{low:g}, {high:g}]", safe)
 
 
-def _f(low=None, high=None, *, low_open=False, high_open=False):
-    return _Spec("float", low, high, low_open, high_open)
+_SPEED = number(0.0, low_open=True, plausible=plausible.VELOCITY_M_PER_S)
+_DETUNING = number(plausible=plausible.DETUNING_HZ)
 
 
-def _i(low=None, high=None):
-    return _Spec("int", low, high)
+@table
+class _VelocityLimits:
+    """``[limits.velocity]`` as the file spells it, m/s."""
+
+    min_m_per_s: _SPEED
+    max_m_per_s: _SPEED
+    max_step_m_per_s: number(0.0, low_open=True, plausible=plausible.VELOCITY_STEP_M_PER_S)
+    safe_m_per_s: _SPEED
+
+    def __post_init__(self) -> None:
+        _ordered(self.min_m_per_s, self.max_m_per_s, self.safe_m_per_s, "m_per_s")
 
 
-_PROB = _f(0.0, 1.0)
-_POS = _f(0.0, low_open=True)
+@table
+class _DetuningLimits:
+    """``[limits.detuning]`` as the file spells it, Hz."""
 
-_SECTION_SPECS: dict[str, dict[str, _Spec]] = {
-    "rig": {
-        "name": _Spec("str"),
-        "default_seed": _i(0, 2**63 - 1),
-        "repetition_rate_hz": _f(0.0, 1e7, low_open=True),
-        "atoms_per_sample": _f(0.0, 100.0),
-        "settle_time_s": _f(0.0, 3600.0),
-        "max_shots_per_acquisition": _i(1, 10**9),
-    },
-    "cavity": {
-        "frequency_hz": _f(0.0, low_open=True),
-        "coupling_hz": _f(0.0, 1e8, low_open=True),
-        "waist_m": _f(0.0, 1.0, low_open=True),
-        "damping_time_s": _f(0.0, 1e6, low_open=True),
-        "temperature_k": _f(0.0, 1e4),
-        "initial_offset_hz": _f(-1e9, 1e9),
-        "mode_profile": _Spec("choice", choices=MODE_PROFILES),
-        "super_gaussian_order": _f(*SUPER_GAUSSIAN_ORDER_RANGE),
-        "waist_asymmetry": _f(*WAIST_ASYMMETRY_RANGE),
-    },
-    "beam": {
-        "velocity_bias_m_per_s": _f(-1e4, 1e4),
-        "velocity_spread_m_per_s": _f(0.0, 1e4),
-        "preparation_to_cavity_m": _f(0.0, 100.0),
-    },
-    "field": {
-        "one_photon_probability": _PROB,
-    },
-    "ramsey": {
-        "detuning_hz": _f(-1e9, 1e9),
-        "zone_separation_m": _f(0.0, 100.0),
-        "area_at_set_velocity_rad": _f(0.0, 2.0 * math.pi),
-    },
-    "stark": {
-        "coefficient_hz_m2_per_v2": _f(-1e6, 1e6),
-        "coefficient_error": _f(-0.5, 0.5),
-        "bias_field_v_per_m": _f(0.0, 1e7, low_open=True),
-        "electrode_gap_m": _POS,
-        "bias_field_error_v_per_m": _f(-1e7, 1e7),
-    },
-    "detection": {
-        "efficiency": _f(0.0, 1.0, low_open=True),
-        "e_read_as_g": _PROB,
-        "g_read_as_e": _PROB,
-        "g_read_as_i": _PROB,
-        "i_read_as_g": _PROB,
-    },
-    "drift": {
-        "ramp_hz_per_s": _f(-1e6, 1e6),
-        "random_walk_hz_per_sqrt_s": _f(0.0, 1e6),
-        "thermal_step_hz": _f(-1e9, 1e9),
-    },
-    "model": {
-        "velocity_nodes": _i(1, 64),
-        "max_photons": _i(1, 20),
-        "crossing_steps": _i(8, 65536),
-        "stencil_spacing_hz": _f(0.0, 1e6, low_open=True),
-        "stencil_points": _i(3, 15),
-    },
-}
-#: The range a lab could mean of each physical key (autotune.plausible names each source),
-#: checked once the key's type and hard bounds above hold.
-_PLAUSIBLE: dict[str, plausible.Plausible] = {
-    "rig.repetition_rate_hz": plausible.REPETITION_RATE_HZ,
-    "rig.atoms_per_sample": plausible.ATOMS_PER_SAMPLE,
-    "cavity.frequency_hz": plausible.CAVITY_FREQUENCY_HZ,
-    "cavity.coupling_hz": plausible.COUPLING_HZ,
-    "cavity.waist_m": plausible.WAIST_M,
-    "cavity.damping_time_s": plausible.DAMPING_TIME_S,
-    "cavity.temperature_k": plausible.TEMPERATURE_K,
-    "cavity.initial_offset_hz": plausible.DETUNING_HZ,
-    "beam.velocity_bias_m_per_s": plausible.VELOCITY_BIAS_M_PER_S,
-    "beam.velocity_spread_m_per_s": plausible.VELOCITY_SPREAD_M_PER_S,
-    "beam.preparation_to_cavity_m": plausible.FLIGHT_DISTANCE_M,
-    "ramsey.detuning_hz": plausible.RAMSEY_DETUNING_HZ,
-    "ramsey.zone_separation_m": plausible.ZONE_SEPARATION_M,
-    "stark.coefficient_hz_m2_per_v2": plausible.STARK_COEFFICIENT_HZ_M2_PER_V2,
-    "stark.bias_field_v_per_m": plausible.ELECTRIC_FIELD_V_PER_M,
-    "stark.electrode_gap_m": plausible.ELECTRODE_GAP_M,
-    "stark.bias_field_error_v_per_m": plausible.ELECTRIC_FIELD_V_PER_M,
-    "drift.ramp_hz_per_s": plausible.DRIFT_RAMP_HZ_PER_S,
-    "drift.random_walk_hz_per_sqrt_s": plausible.RANDOM_WALK_HZ_PER_SQRT_S,
-    "drift.thermal_step_hz": plausible.THERMAL_STEP_HZ,
-    "limits.velocity.min_m_per_s": plausible.VELOCITY_M_PER_S,
-    "limits.velocity.max_m_per_s": plausible.VELOCITY_M_PER_S,
-    "limits.velocity.safe_m_per_s": plausible.VELOCITY_M_PER_S,
-    "limits.velocity.max_step_m_per_s": plausible.VELOCITY_STEP_M_PER_S,
-    "limits.detuning.min_hz": plausible.DETUNING_HZ,
-    "limits.detuning.max_hz": plausible.DETUNING_HZ,
-    "limits.detuning.safe_hz": plausible.DETUNING_HZ,
-    "limits.detuning.max_step_hz": plausible.DETUNING_STEP_HZ,
-}
-_SECTIONS = tuple(_SECTION_SPECS)
-_SECTION_TYPES = {
-    "rig": RigSection,
-    "cavity": CavitySection,
-    "beam": BeamSection,
-    "field": FieldSection,
-    "ramsey": RamseySection,
-    "stark": StarkSection,
-    "detection": DetectionSection,
-    "drift": DriftSection,
-    "model": ModelSection,
-}
-_OPTIONAL_SECTIONS = frozenset({"model"})
+    min_hz: _DETUNING
+    max_hz: _DETUNING
+    max_step_hz: number(0.0, low_open=True, plausible=plausible.DETUNING_STEP_HZ)
+    safe_hz: _DETUNING
+
+    def __post_init__(self) -> None:
+        _ordered(self.min_hz, self.max_hz, self.safe_hz, "hz")
 
 
-class _Checker:
-    """Reads the file's tables, collecting every problem (a wrong value reads as a stand-in so
-    that reading goes on); :meth:`raise_problems` reports them all in one error."""
+@table
+class _Limits:
+    velocity: _VelocityLimits
+    detuning: _DetuningLimits
 
-    def __init__(self, source: str) -> None:
-        self.source = source
-        self.problems: list[str] = []
 
-    def fail(self, key: str, expected: str, got: Any, hint: str = "") -> SimConfigError:
-        return SimConfigError(f"{self.source}: {key}: expected {expected}, got {got!r}"
-                              + (f": {hint}" if hint else ""))
+@table
+class _File:
+    """The whole file as written (``[faults]`` is the server's: any table)."""
 
-    def note(self, key: str, expected: str, got: Any, hint: str = "") -> None:
-        """Record a problem and go on reading."""
-        self.problems.append(str(self.fail(key, expected, got, hint)))
+    rig: RigSection
+    cavity: CavitySection
+    beam: BeamSection
+    field: FieldSection
+    ramsey: RamseySection
+    stark: StarkSection
+    detection: DetectionSection
+    drift: DriftSection
+    limits: _Limits
+    model: ModelSection = ModelSection()
+    faults: dict[str, Any] = dataclasses.field(default_factory=dict)
 
-    def raise_problems(self) -> None:
-        """Raise every problem noted so far in one :class:`SimConfigError`."""
-        if len(self.problems) == 1:
-            raise SimConfigError(self.problems[0])
-        if self.problems:
-            raise SimConfigError(f"{self.source}: {len(self.problems)} problems:\n"
-                                 + "\n".join(f"  - {problem}" for problem in self.problems))
 
-    def table(self, data: Any, key: str) -> Mapping[str, Any]:
-        if not isinstance(data, Mapping):
-            self.note(key, "a table", data)
-            return {}
-        return data
+def _relations(file: _File, source: str) -> list[ConfigError]:
+    """The rules that join keys of several tables (each key is right by itself)."""
+    found: list[ConfigError] = []
 
-    def unknown(self, data: Mapping[str, Any], allowed, prefix: str) -> None:
-        for key in data:
-            if key not in allowed:
-                where = f"{prefix}.{key}" if prefix else str(key)
-                near = difflib.get_close_matches(str(key), [str(a) for a in allowed], n=1)
-                self.note(where, f"one of the keys {sorted(allowed)}", "an unknown key",
-                          f"did you mean {near[0]!r}?" if near else "")
+    def refused(key: str, expected: str, got: Any) -> None:
+        found.append(ConfigError(source, key, expected, got))
 
-    def value(self, spec: _Spec, raw: Any, key: str) -> Any:
-        stand_in = self._stand_in(spec)
-        if spec.kind == "choice":
-            if not isinstance(raw, str) or raw not in spec.choices:
-                self.note(key, spec.describe(), raw)
-                return stand_in
-            return raw
-        if spec.kind == "str":
-            if not isinstance(raw, str) or not raw.strip():
-                self.note(key, spec.describe(), raw)
-                return stand_in
-            return raw
-        if spec.kind == "int":
-            if isinstance(raw, bool) or not isinstance(raw, int):
-                self.note(key, spec.describe(), raw)
-                return stand_in
-            value: float | int = raw
-        else:
-            if isinstance(raw, bool) or not isinstance(raw, (int, float)):
-                self.note(key, spec.describe(), raw)
-                return stand_in
-            value = float(raw)
-            if not math.isfinite(value):
-                self.note(key, spec.describe(), raw)
-                return stand_in
-        if spec.low is not None and (value <= spec.low if spec.low_open else value < spec.low):
-            self.note(key, spec.describe(), raw)
-            return stand_in
-        if spec.high is not None and (value >= spec.high if spec.high_open else value > spec.high):
-            self.note(key, spec.describe(), raw)
-            return stand_in
-        if key in _PLAUSIBLE and (found := _PLAUSIBLE[key].problem(float(value))) is not None:
-            self.note(key, found[0], raw, found[1])
-        return value
-
-    @staticmethod
-    def _stand_in(spec: _Spec) -> Any:
-        """A value that lets reading go on after a problem (never returned to a caller)."""
-        if spec.kind == "choice":
-            return spec.choices[0]
-        if spec.kind == "str":
-            return "-"
-        low = spec.low if spec.low is not None else 0.0
-        high = spec.high if spec.high is not None else low + 2.0
-        middle = 0.5 * (low + high) if spec.low is not None or spec.high is not None else 1.0
-        return int(middle) if spec.kind == "int" else float(middle)
-
-    def section(self, name: str, data: Any) -> Any:
-        """The section's dataclass, or None when the table is missing (noted once)."""
-        specs = _SECTION_SPECS[name]
-        cls = _SECTION_TYPES[name]
-        if data is None:
-            if name in _OPTIONAL_SECTIONS:
-                return cls()
-            self.note(name, "a table", "nothing")
-            return None
-        if not isinstance(data, Mapping):
-            self.note(name, "a table", data)
-            return None
-        self.unknown(data, specs, name)
-        defaults = {f.name: f.default for f in dataclasses.fields(cls)}
-        values = {}
-        for key, spec in specs.items():
-            dotted = f"{name}.{key}"
-            if key not in data:
-                if defaults[key] is dataclasses.MISSING:
-                    self.note(dotted, spec.describe(), "nothing")
-                    values[key] = self._stand_in(spec)
-                else:
-                    values[key] = defaults[key]
-                continue
-            values[key] = self.value(spec, data[key], dotted)
-        return cls(**values)
-
-    def limits(self, data: Any) -> dict[str, SetpointLimit]:
-        """The ``[limits.NAME]`` tables; a set-point whose table has a problem is left out."""
-        if data is None:
-            self.note("limits", "a table", "nothing")
-            return {}
-        data = self.table(data, "limits")
-        self.unknown(data, SETPOINT_UNITS, "limits")
-        out = {}
-        for name, unit in SETPOINT_UNITS.items():
-            prefix = f"limits.{name}"
-            if name not in data:
-                self.note(prefix, "a table", "nothing")
-                continue
-            if not isinstance(data[name], Mapping):
-                self.note(prefix, "a table", data[name])
-                continue
-            table = data[name]
-            before = len(self.problems)
-            suffix = _UNIT_SUFFIX[name]
-            keys = {f"{k}_{suffix}": k for k in ("min", "max", "max_step", "safe")}
-            self.unknown(table, keys, prefix)
-            values = {}
-            for key, field in keys.items():
-                dotted = f"{prefix}.{key}"
-                if key not in table:
-                    self.note(dotted, "a finite number", "nothing")
-                    continue
-                spec = _f(0.0, low_open=True) if field == "max_step" else _f()
-                if name == "velocity" and field in ("min", "max", "safe"):
-                    spec = _f(0.0, low_open=True)
-                values[field] = self.value(spec, table[key], dotted)
-            if len(self.problems) > before:
-                continue
-            if values["min"] >= values["max"]:
-                self.note(f"{prefix}.max_{suffix}", f"a number > min_{suffix} = {values['min']:g}",
-                          values["max"])
-            elif not values["min"] <= values["safe"] <= values["max"]:
-                self.note(f"{prefix}.safe_{suffix}",
-                          f"a number in [{values['min']:g}, {values['max']:g}]", values["safe"])
-            else:
-                out[name] = SetpointLimit(unit=unit, **values)
-        return out
+    detection, cavity, stark, beam = file.detection, file.cavity, file.stark, file.beam
+    if detection.g_read_as_e + detection.g_read_as_i > 1.0:
+        refused("detection.g_read_as_i",
+                f"a probability <= 1 - g_read_as_e = {1.0 - detection.g_read_as_e:g}",
+                detection.g_read_as_i)
+    for key, profile, bounds in (
+            ("super_gaussian_order", "super_gaussian", SUPER_GAUSSIAN_ORDER_RANGE),
+            ("waist_asymmetry", "asymmetric", WAIST_ASYMMETRY_RANGE)):
+        value = getattr(cavity, key)
+        if cavity.mode_profile == profile and value is None:
+            refused(f"cavity.{key}", f"a finite number >= {bounds[0]:g} and <= {bounds[1]:g} "
+                    f"(mode_profile = {profile!r} needs it)", "nothing")
+        if cavity.mode_profile != profile and value is not None:
+            refused(f"cavity.{key}", f"no value unless cavity.mode_profile = {profile!r} "
+                    f"(it is {cavity.mode_profile!r})", value)
+    k = stark.coefficient_hz_m2_per_v2
+    velocity, detuning = file.limits.velocity, file.limits.detuning
+    slowest = velocity.min_m_per_s + beam.velocity_bias_m_per_s - 6.0 * beam.velocity_spread_m_per_s
+    if slowest <= 0.0:
+        refused("beam.velocity_bias_m_per_s", "a bias and spread that keep every true velocity "
+                "> 0 at limits.velocity.min_m_per_s", beam.velocity_bias_m_per_s)
+    if k == 0.0:
+        refused("stark.coefficient_hz_m2_per_v2", "a non-zero number", 0.0)
+        return found
+    # Every detuning set-point must map to a real electrode field (E^2 >= 0), ...
+    squares = {bound: stark.bias_field_v_per_m**2 + getattr(detuning, f"{bound}_hz") / k
+               for bound in ("min", "max")}
+    for bound, square in squares.items():
+        if square < 0.0:
+            refused("stark.bias_field_v_per_m", f"a bias field that reaches limits.detuning."
+                    f"{bound}_hz (needs >= {math.sqrt(stark.bias_field_v_per_m**2 - square):g})",
+                    stark.bias_field_v_per_m)
+            return found
+    # ... and the stray field must not reverse the field the atoms see anywhere within the
+    # limits (the set-point -> detuning map would fold over and lose its inverse).
+    weakest = min(math.sqrt(square) for square in squares.values())
+    if abs(stark.bias_field_error_v_per_m) >= weakest:
+        refused("stark.bias_field_error_v_per_m", f"a field error smaller in size than the "
+                f"weakest electrode field within limits.detuning ({weakest:g} V/m)",
+                stark.bias_field_error_v_per_m)
+    return found
 
 
 def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> SimRigConfig:
@@ -676,74 +492,21 @@ def sim_config_from_dict(data: Mapping[str, Any], source: str = "<memory>") -> S
     ------
     SimConfigError
         On any unknown key, missing key, wrong type, non-finite, out-of-range or implausible
-        value (all of them in one message), or values that do not fit together.
+        value, or values that do not fit together: all of them in one message (the rules
+        joining tables once every key is right by itself).
     """
-    check = _Checker(source)
-    data = check.table(data, "<top level>")
-    allowed = set(_SECTIONS) | {"limits", "faults"}
-    check.unknown(data, allowed, "")
-    sections = {name: check.section(name, data.get(name)) for name in _SECTIONS}
-    limits = check.limits(data.get("limits"))
-    faults = data.get("faults", {})
-    faults = dict(check.table(faults, "faults"))
-    # Every problem of a single key at once; the relations below need every key right.
-    check.raise_problems()
-    detection = sections["detection"]
-    if detection.g_read_as_e + detection.g_read_as_i > 1.0:
-        raise check.fail(
-            "detection.g_read_as_i",
-            f"a probability <= 1 - g_read_as_e = {1.0 - detection.g_read_as_e:g}",
-            detection.g_read_as_i,
-        )
-    cavity = sections["cavity"]
-    for key, profile in (("super_gaussian_order", "super_gaussian"),
-                         ("waist_asymmetry", "asymmetric")):
-        value = getattr(cavity, key)
-        if cavity.mode_profile == profile and value is None:
-            raise check.fail(f"cavity.{key}",
-                             f"{_SECTION_SPECS['cavity'][key].describe()} "
-                             f"(mode_profile = {profile!r} needs it)", "nothing")
-        if cavity.mode_profile != profile and value is not None:
-            raise check.fail(f"cavity.{key}",
-                             f"no value unless cavity.mode_profile = {profile!r} "
-                             f"(it is {cavity.mode_profile!r})", value)
-    stark = sections["stark"]
-    if stark.coefficient_hz_m2_per_v2 == 0.0:
-        raise check.fail("stark.coefficient_hz_m2_per_v2", "a non-zero number", 0.0)
-    # Every detuning set-point must map to a real electrode field (E^2 >= 0).
-    detuning = limits["detuning"]
-    for bound in ("min", "max"):
-        square = stark.bias_field_v_per_m**2 + getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2
-        if square < 0.0:
-            raise check.fail(
-                "stark.bias_field_v_per_m",
-                f"a bias field that reaches limits.detuning.{bound}_hz "
-                f"(needs >= {math.sqrt(-getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2):g})",
-                stark.bias_field_v_per_m,
-            )
-    # The stray field must not reverse the field the atoms see anywhere within the limits
-    # (the set-point -> detuning map would fold over and lose its inverse).
-    weakest = min(
-        math.sqrt(stark.bias_field_v_per_m**2 + getattr(detuning, bound) / stark.coefficient_hz_m2_per_v2)
-        for bound in ("min", "max")
-    )
-    if abs(stark.bias_field_error_v_per_m) >= weakest:
-        raise check.fail(
-            "stark.bias_field_error_v_per_m",
-            f"a field error smaller in size than the weakest electrode field within "
-            f"limits.detuning ({weakest:g} V/m)",
-            stark.bias_field_error_v_per_m,
-        )
-    velocity = limits["velocity"]
-    bias = sections["beam"].velocity_bias_m_per_s
-    spread = sections["beam"].velocity_spread_m_per_s
-    if velocity.min + bias - 6.0 * spread <= 0.0:
-        raise check.fail(
-            "beam.velocity_bias_m_per_s",
-            "a bias and spread that keep every true velocity > 0 at limits.velocity.min_m_per_s",
-            bias,
-        )
-    return SimRigConfig(source=source, limits=limits, faults=faults, **sections)
+    file = check(_File, data, file=source, rules=lambda file: _relations(file, source),
+                 error=SimConfigError)
+    limits = {
+        "velocity": SetpointLimit("m/s", file.limits.velocity.min_m_per_s,
+                                  file.limits.velocity.max_m_per_s,
+                                  file.limits.velocity.max_step_m_per_s,
+                                  file.limits.velocity.safe_m_per_s),
+        "detuning": SetpointLimit("Hz", file.limits.detuning.min_hz, file.limits.detuning.max_hz,
+                                  file.limits.detuning.max_step_hz, file.limits.detuning.safe_hz),
+    }
+    return SimRigConfig(source=source, limits=limits, faults=dict(file.faults),
+                        **{name: getattr(file, name) for name in _SECTIONS})
 
 
 def load_sim_config(path: str | Path) -> SimRigConfig:
@@ -757,18 +520,7 @@ def load_sim_config(path: str | Path) -> SimRigConfig:
     Raises
     ------
     SimConfigError
-        If the file cannot be read, is not UTF-8 TOML, or any value is wrong (every problem
-        of a single key at once).
+        If the file is missing, unreadable, not UTF-8 TOML, or any value is wrong (every
+        problem of the file at once).
     """
-    path = Path(path)
-    try:
-        with path.open("rb") as handle:
-            data = tomllib.load(handle)
-    except OSError as exc:
-        raise SimConfigError(f"{path}: expected a readable TOML file, got {exc}") from exc
-    except UnicodeDecodeError as exc:
-        raise SimConfigError(f"{path}: expected a TOML file (UTF-8 text), got bytes that are not "
-                             f"UTF-8 text ({exc.reason} at byte {exc.start})") from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise SimConfigError(f"{path}: expected valid TOML, got {exc}") from exc
-    return sim_config_from_dict(data, source=str(path))
+    return sim_config_from_dict(read_toml(path, error=SimConfigError), source=str(path))

@@ -178,8 +178,8 @@ def test_a_bad_simulated_rig_config_stops_the_dry_run_before_its_folder(tmp_path
     garbage = tmp_path / "garbage.toml"
     garbage.write_bytes(GARBAGE)
     done = autotune("dry-run", "--rig-config", str(garbage), "--out", str(tmp_path / "dry"))
-    _refused(done, f"autotune: {garbage}: expected a TOML file (UTF-8 text), got bytes that are "
-                   "not UTF-8 text")
+    _refused(done, f"autotune: {garbage}: <file>: expected a TOML file (UTF-8 text), got "
+                   "'bytes that are not UTF-8 text")
     assert not (tmp_path / "dry").exists()
     slipped = tmp_path / "sim.toml"
     slipped.write_text(SIM_RIG.read_text(encoding="utf-8").replace(
@@ -206,7 +206,7 @@ def test_serve_refuses_a_channel_limit_of_1e308_and_a_garbage_rig_config(tmp_pat
     (tmp_path / "sim-rig.toml").write_bytes(GARBAGE)
     driver.write_text(SIM_DRIVER.read_text(encoding="utf-8"), encoding="utf-8")
     done = autotune("serve", "--config", str(driver), "--bind", "tcp://127.0.0.1:0")
-    _refused(done, f"{tmp_path / 'sim-rig.toml'}: expected a TOML file (UTF-8 text)")
+    _refused(done, f"{tmp_path / 'sim-rig.toml'}: <file>: expected a TOML file (UTF-8 text)")
     assert "server_listening" not in done.stderr
 
 
@@ -232,7 +232,7 @@ def test_rig_refuses_a_garbage_config_and_an_absurd_delay(tmp_path):
     garbage = tmp_path / "garbage.toml"
     garbage.write_bytes(GARBAGE)
     done = autotune("rig", "--config", str(garbage), "--bind", "tcp://127.0.0.1:0")
-    _refused(done, f"{garbage}: expected a TOML file (UTF-8 text)")
+    _refused(done, f"{garbage}: <file>: expected a TOML file (UTF-8 text)")
     assert "server_listening" not in done.stderr
     done = autotune("rig", "--bind", "tcp://127.0.0.1:0", "--delay-s", "3.2e7")
     _refused(done, "<flags>: delay_reply_s: expected a number of seconds from 0 to 600")

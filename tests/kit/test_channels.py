@@ -196,7 +196,8 @@ def test_identity_map_reproduces_the_drivers_limits_exactly():
 
 
 @pytest.mark.parametrize(("table", "key", "fragment"), [
-    ({"detuning": _stark_table(wobble=1)}, "setpoints.detuning.wobble", "keys of a stark law"),
+    ({"detuning": _stark_table(wobble=1)}, "setpoints.detuning.wobble",
+     "one of the keys ['bias_field_v_per_m', 'branch', 'channel'"),
     ({"detuning": _stark_table(channel="STARK:HV9")}, "setpoints.detuning.channel", "STARK:HV1"),
     ({"detuning": _stark_table(channel_unit="kV")}, "setpoints.detuning.channel_unit", "'V'"),
     ({"detuning": _stark_table(unit="kHz")}, "setpoints.detuning.unit", "'Hz'"),
@@ -207,8 +208,13 @@ def test_identity_map_reproduces_the_drivers_limits_exactly():
     ({"velocity": _aom_table(law="stark")}, "setpoints.velocity.law", "only for a detuning"),
     ({"velocity": _aom_table(scale=0.0)}, "setpoints.velocity.scale", "non-zero"),
     ({"laser": _aom_table()}, "setpoints.laser", "velocity, detuning"),
-    ({"velocity": _aom_table(), "detuning": _stark_table(channel="VSEL:AOM_MHZ", channel_unit="MHz")},
+    ({"velocity": _aom_table(), "detuning": _stark_table(channel="VSEL:AOM_MHZ")},
      "setpoints.detuning.channel", "not already mapped"),
+    ({"detuning": _stark_table(channel="VSEL:AOM_MHZ", channel_unit="MHz")},
+     "setpoints.detuning.channel_unit", "a voltage unit for the stark law"),
+    ({"detuning": _stark_table(limit_max=-130e3)}, "setpoints.detuning.limit_max", ">= limit_min"),
+    ({"detuning": _stark_table(electrode_gap_m=0.0)}, "setpoints.detuning.electrode_gap_m", "> 0"),
+    ({"detuning": _stark_table(law=None)}, "setpoints.detuning.law", "'linear' or 'stark'"),
 ])
 def test_bad_declarations_name_the_key(table: dict, key: str, fragment: str):
     """Every wrong declaration is a ConfigError naming file, key and what was expected."""

@@ -23,14 +23,21 @@ def _imports(path: Path) -> set[str]:
 
 
 def test_drivers_sim_imports_only_the_protocol_and_the_driver_interface():
-    """Every autotune module drivers_sim imports is autotune.protocol, autotune.driver or the
-    pure table of plausible physical ranges (autotune.plausible, which imports nothing of
-    autotune: the simulated rig's config is held to the ranges the client's is)."""
+    """Every autotune module drivers_sim imports is autotune.protocol, autotune.driver, the
+    error tree they raise from (autotune.errors), or a pure leaf that reads a file the way the
+    client reads its own: the table of plausible physical ranges (autotune.plausible, which
+    imports nothing of autotune) and the validation library (autotune.schema, which imports
+    only those two)."""
     used = {name for path in (REPO / "drivers_sim").glob("*.py") for name in _imports(path)
             if name == "autotune" or name.startswith("autotune.")}
-    assert used <= {"autotune.protocol", "autotune.driver", "autotune.plausible"}, used
+    assert used <= {"autotune.protocol", "autotune.driver", "autotune.errors",
+                    "autotune.plausible", "autotune.schema"}, used
     assert not {name for name in _imports(REPO / "autotune" / "plausible.py")
                 if name.startswith("autotune")}
+    assert not {name for name in _imports(REPO / "autotune" / "errors.py")
+                if name.startswith("autotune")}
+    assert {name for name in _imports(REPO / "autotune" / "schema.py")
+            if name.startswith("autotune")} <= {"autotune.errors", "autotune.plausible"}
 
 
 def test_autotune_imports_drivers_sim_only_where_it_starts_the_simulated_rig():

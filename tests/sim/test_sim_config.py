@@ -184,7 +184,7 @@ def test_unreadable_and_invalid_files_are_refused(tmp_path):
         load_sim_config(missing)
     broken = tmp_path / "broken.toml"
     broken.write_text("[rig\nname = 1\n", encoding="utf-8")
-    with pytest.raises(SimConfigError, match="broken.toml: expected valid TOML"):
+    with pytest.raises(SimConfigError, match="broken.toml: <file>: expected valid TOML"):
         load_sim_config(broken)
 
 
