@@ -23,6 +23,11 @@ TINY = dataclasses.replace(bench.plan_for("tiny", workers=1), strategies=("bayes
 TINY_NIGHT = bench.plan_for("tiny", workers=1, night_only=True)
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_bench")
+
+
 @pytest.fixture(scope="module")
 def study():
     """One tiny study in this process: one scenario per family, Bayesian search (then a retune)

@@ -28,6 +28,11 @@ SIM_DRIVER = REPO / "configs" / "sim-driver.toml"
 GARBAGE = b"\xff\xfe\x00\x81 not a config \x9c\xd0\n" + bytes(range(128, 256))
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_input_checks")
+
+
 @pytest.fixture(scope="module")
 def rig(tmp_path_factory: pytest.TempPathFactory) -> Any:
     """One simulated rig process listening for the whole module; every test checks that its

@@ -49,6 +49,11 @@ _DAMAGE = {"gap": (_gap, "gap", "records are missing"),
            "cut and written after": (_cut_then_written, "not_json", "cut short")}
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_journal_damage")
+
+
 @pytest.fixture(scope="module")
 def stopped_run(tmp_path_factory: pytest.TempPathFactory) -> Any:
     """A rig, a config, and the folder of a calibration cut before its end (as if killed)."""

@@ -75,6 +75,11 @@ def _wait_for_estimates(journal: Path, count: int, timeout_s: float = 300.0) -> 
     pytest.fail(f"{journal} did not reach {count} estimates in {timeout_s} s")
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_report")
+
+
 @pytest.fixture(scope="module")
 def real(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     """A dry run's folder, a calibration killed mid-run, and a two-cycle track folder."""

@@ -50,6 +50,11 @@ def _rig(seed: int) -> LocalRig:
     return LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), seed)))
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_report_figures")
+
+
 @pytest.fixture(scope="module")
 def folders(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     """A dry run, a night with a recovered thermal step, a night whose recovery fails, and a

@@ -81,6 +81,11 @@ def _cut_copy(source: Path, target: Path, keep: int, partial: bool) -> None:
     (target / RESULT_NAME).unlink(missing_ok=True)
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_resume")
+
+
 @pytest.fixture(scope="module", params=["phase_lock", "bayesian"])
 def finished_runs(request: pytest.FixtureRequest,
                   tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:

@@ -52,6 +52,11 @@ def _rig(seed: int) -> LocalRig:
     return LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), seed)))
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_track")
+
+
 @pytest.fixture(scope="module")
 def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     """A calibration, then a two-hour night with a +15 kHz thermal step after 50 minutes,

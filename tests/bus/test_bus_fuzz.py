@@ -94,6 +94,11 @@ def test_result_parsers_raise_only_protocol_errors(parser: Any, result: dict[str
         pass
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_bus_fuzz")
+
+
 @pytest.fixture(scope="module")
 def in_process_server():
     """A RigServer around the real simulated rig, never bound: only its request handler is used."""

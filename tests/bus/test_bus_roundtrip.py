@@ -31,8 +31,10 @@ def reference() -> SimulatedRig:
 
 @pytest.fixture
 def client(start_server, make_client):
-    """A client of a fresh server child."""
-    return make_client(start_server().endpoint)
+    """A client of a fresh server child. Its replies are compared, not timed: a generous
+    timeout, since the truth op integrates the model and took over 1 s at a load average of 10
+    on a 2-core machine (the bus timeouts have tests of their own)."""
+    return make_client(start_server().endpoint, timeout_s=30.0)
 
 
 def _a_legal_move(reference: SimulatedRig) -> dict[str, float]:

@@ -18,6 +18,11 @@ ALPHA = 1e-3
 V_2PI = physics.two_pi_velocity(coupling_hz=COUPLING_HZ, waist_m=WAIST_M)
 
 
+#: The tests of this module share an expensive module-scoped fixture: one worker runs them
+#: all (pytest-xdist's loadgroup), so that it is built once.
+pytestmark = pytest.mark.xdist_group("test_sim_rig")
+
+
 @pytest.fixture(scope="module")
 def still_config(demo_config):
     """The demo rig with the cavity drift switched off (probabilities constant in time)."""
