@@ -1389,10 +1389,18 @@ class PhaseLockSearch:
         # One and two steps either side: the curvature and the vertex of the absorption are
         # learned fastest from its wings (the excess grows as the square of the step).
         f = s.velocity_step_fraction
+        # A velocity step at the locked detuning that came back out of the capture range says
+        # the phase signal is not usable there (a low one-photon contrast, say): the expected
+        # gain of another point within half a step of it assumes a usable result and would pick
+        # it again and again while nothing is learned.
+        unusable = [o.velocity for o in self._obs
+                    if o.purpose == "velocity" and self._range_note(o.result) is not None]
         seen: list[float] = []
         for factor in (1.0 - f, 1.0 + f, 1.0 - 2.0 * f, 1.0 + 2.0 * f):
             v = float(np.clip(velocity * factor, low, high))
             if abs(v / velocity - 1.0) <= _SAME_VELOCITY or any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in seen):
+                continue
+            if any(abs(v / u - 1.0) <= 0.5 * f for u in unusable):
                 continue
             seen.append(v)
             out.append(("velocity", v, self._limit_step(delta, v), self.step_shots("velocity")))

@@ -172,9 +172,6 @@ def test_lock_falls_back_from_far_outside_the_capture_range_and_still_locks():
     assert rig.shortfall(lock.recommend(clock_s=rig.clock).point) < 0.02
 
 
-@pytest.mark.xfail(reason="since the velocity is chosen on the inversion, this run no longer bounds its "
-                   "shortfall within 80 points (velocities below 490 m/s stay out of the capture "
-                   "range): open, see the branch's report", strict=False)
 def test_lock_falls_back_where_the_one_photon_contrast_is_low():
     """Started where the one-photon contrast is too low (|a| small), the search falls back, then locks elsewhere."""
     rig = Synthetic(peak_detuning_hz=5e3, velocity_star=520.0, seed=4,
@@ -183,6 +180,10 @@ def test_lock_falls_back_where_the_one_photon_contrast_is_low():
     converged, proposals = _run(lock, rig, max_points=80)
     assert proposals[1].purpose == "search" and "contrast" in proposals[1].reason
     assert converged
+    # A velocity step that came back without a usable phase signal is not asked for again
+    # (it was, 70 times, while the expected gain assumed a usable result there).
+    unusable = [p for p in proposals if p.purpose == "velocity" and p.point["velocity"] < 490.0]
+    assert len(unusable) <= 2, [p.point for p in unusable]
     assert rig.shortfall(lock.recommend(clock_s=rig.clock).point) < 0.02
 
 
