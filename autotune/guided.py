@@ -355,6 +355,8 @@ _PRIOR_KEYS: dict[str, str] = {
 }
 _PRIOR_OPTIONAL: dict[str, str] = {
     "peak_drift_hz_per_s": "the rate of the peak's detuning set-point during the calibration (Hz/s)",
+    "velocity_shortfall": "the calibration's velocity term at its chosen velocity (inversion fraction), >= 0",
+    "velocity_shortfall_upper": "its upper bound at the calibration's confidence, >= velocity_shortfall",
 }
 
 
@@ -383,6 +385,12 @@ class LockPrior:
     peak_drift_hz_per_s : float
         Rate of change of the peak's detuning set-point seen during the calibration (Hz/s;
         a cavity drifting up in frequency moves it down; information only).
+    velocity_shortfall, velocity_shortfall_upper : float
+        The calibration's velocity term at the velocity it chose (the relative inversion lost
+        against the best of its inversion curve) and its upper bound at its confidence. A retune
+        keeps that velocity and learns only whether the rig moved from it, so the calibration's
+        own uncertainty of the velocity stays in every retune's bound (0 in a store written
+        before these keys existed).
     """
 
     velocity_m_per_s: float
@@ -400,6 +408,8 @@ class LockPrior:
     absorption_curvature_stderr: float
     inversion: float
     peak_drift_hz_per_s: float = 0.0
+    velocity_shortfall: float = 0.0
+    velocity_shortfall_upper: float = 0.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -414,10 +424,13 @@ class LockPrior:
             ("absorption_min", 0.0 <= self.absorption_min <= 1.0),
             ("absorption_curvature", self.absorption_curvature >= 0.0),
             ("inversion", 0.0 < self.inversion <= 1.0),
+            ("velocity_shortfall", 0.0 <= self.velocity_shortfall <= 1.0),
+            ("velocity_shortfall_upper", self.velocity_shortfall <= self.velocity_shortfall_upper <= 1.0),
         )
         for name, ok in checks:
             if not ok:
-                raise ValueError(f"LockPrior.{name}: expected {_PRIOR_KEYS[name]}, got {getattr(self, name)!r}")
+                what = _PRIOR_KEYS.get(name) or _PRIOR_OPTIONAL[name]
+                raise ValueError(f"LockPrior.{name}: expected {what}, got {getattr(self, name)!r}")
         for name in ("velocity_stderr_m_per_s", "slope_stderr_rad_per_hz", "cubic_stderr_rad_per_hz3",
                      "absorption_min_stderr", "absorption_curvature_stderr"):
             if getattr(self, name) < 0.0:
@@ -1040,6 +1053,21 @@ class PhaseLockSearch:
         at_rec = a0 + a1 * x_rec + a2 * x_rec**2
         return np.maximum(at_rec - least, 0.0) / scale
 
+    def _inherited_draws(self, count: int) -> tuple[np.ndarray, float]:
+        """A retune's share of the calibration's velocity term: draws and the point value.
+
+        The stored term is told as its estimate ``e`` and upper bound ``u`` at the confidence;
+        the draws are ``e + (u - e) |z| / z_q`` with ``z`` standard normal and ``z_q`` the
+        half-normal's quantile at the confidence, so that their quantile there is ``u``.
+        """
+        p = self.prior
+        if p is None or p.velocity_shortfall_upper <= 0.0:
+            return np.zeros(count), 0.0
+        z_q = float(special.ndtri(0.5 + 0.5 * self.settings.confidence))
+        rng = np.random.default_rng([self.seed, 17, len(self._obs)])
+        spread = (p.velocity_shortfall_upper - p.velocity_shortfall) / z_q
+        return p.velocity_shortfall + spread * np.abs(rng.standard_normal(count)), p.velocity_shortfall
+
     def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
         """The ``x`` range the inversion curve is trusted over: the velocities measured and one
         velocity step beyond (a quadratic is not extrapolated further). Not clipped to the box:
@@ -1071,7 +1099,7 @@ class PhaseLockSearch:
     def _shortfall_at(self, point: Mapping[str, float], clock: float | None,
                       lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None,
                       residual_cov: np.ndarray | None = None,
-                      phase_error: tuple[float, float] | None = None) -> Shortfall:
+                      phase_error: tuple[float, float] | None = None, inherit: bool = True) -> Shortfall:
         s = self.settings
         q = s.confidence
         detuning = self._detuning_terms(point, clock) if phase_error is None else phase_error
@@ -1113,6 +1141,11 @@ class PhaseLockSearch:
             least = fit.value(float(np.clip(vertex, x_lo, x_hi))) if vertex is not None else min(
                 fit.value(x_lo), fit.value(x_hi))
             v_point = max(fit.value(x_rec) - least, 0.0) / scale
+            if inherit:
+                # The calibration's own uncertainty of the velocity the retune keeps.
+                inherited, inherited_point = self._inherited_draws(len(v_draws))
+                v_draws = v_draws + inherited
+                v_point += inherited_point
             v_upper = float(np.quantile(v_draws, q))
         else:
             v_draws = np.full(len(normals), math.inf)
@@ -1188,7 +1221,9 @@ class PhaseLockSearch:
     def converged(self, *, clock_s: float | None = None) -> bool:
         """True when the upper bound of the predicted shortfall is below ``target_shortfall``.
 
-        Also requires the last usable point to lie at the recommended velocity (within 2 %):
+        A retune's bound is taken without the calibration's velocity term it inherits
+        (``LockPrior.velocity_shortfall``): its points cannot lower that term, and its
+        acceptance, against ``[acceptance] max_shortfall``, counts it. Also requires the last usable point to lie at the recommended velocity (within 2 %):
         the last step re-centres the lock there from fresh data.
         """
         clock = self._now(clock_s)
@@ -1199,7 +1234,14 @@ class PhaseLockSearch:
         velocity = self._recommended_velocity()
         if not self._measured_at(velocity):
             return False
-        return self.shortfall(clock_s=clock).upper <= self.settings.target_shortfall
+        rec = self.recommend(clock_s=clock).point
+        return self._stop_bound(rec, clock) <= self.settings.target_shortfall
+
+    def _stop_bound(self, rec: Mapping[str, float], clock: float | None) -> float:
+        """The bound the stop compares with the target at ``rec``: without the calibration's
+        velocity term that a retune inherits (its points cannot lower it; the acceptance and
+        every reported bound count it)."""
+        return self._shortfall_at(rec, clock, inherit=False).upper
 
     def hopeless(self, *, clock_s: float | None = None) -> str | None:
         """Why more points in this box cannot meet the target, or None.
@@ -1274,7 +1316,7 @@ class PhaseLockSearch:
             if not verdict.still_good and verdict.corrected is not None:
                 # Verify the corrected set-points directly only when the stored slope predicts
                 # them well enough; otherwise one cheap lock step there first.
-                short = self._shortfall_at(verdict.corrected, clock)
+                short = self._shortfall_at(verdict.corrected, clock, inherit=False)
                 if short.upper <= s.target_shortfall:
                     return Proposal(verdict.corrected, "correct", None,
                                     f"retune: {verdict.reason}; predicted bound there {short.upper:.2%}: verify")
@@ -1305,7 +1347,8 @@ class PhaseLockSearch:
                                         "detuning": self._lock_target(velocity, clock)[0]}, clock)
             # Re-centre the lock at the chosen velocity once the bound allows a stop: before
             # that, the point that lowers the bound most per shot (a lock point there among them).
-            if short.upper <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
+            rec = {"velocity": velocity, "detuning": self._clip_detuning(self._lock_target(velocity, clock)[0])}
+            if self._stop_bound(rec, clock) <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
                 return self._lock_proposal(velocity, clock, "relock", short,
                                            f"re-centre the lock at the chosen velocity ({plan['note']})")
         return self._best_proposal(velocity, clock)
@@ -1426,7 +1469,7 @@ class PhaseLockSearch:
         return float(np.median(per)) * max(value, floor) / shots
 
     def _expected_after(self, rec: Mapping[str, float], velocity: float, detuning: float,
-                        shots_per_phase: int, clock: float | None) -> Shortfall:
+                        shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
         """The shortfall at ``rec`` expected after measuring (velocity, detuning).
 
         A linear-Gaussian update's posterior covariance does not depend on the value to be
@@ -1451,16 +1494,17 @@ class PhaseLockSearch:
                 rvar = self._expected_inversion_variance(shots) + avar
                 residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
         return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
-                                  residual_cov=residual_cov)
+                                  residual_cov=residual_cov, inherit=inherit)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
         rec_delta = self._lock_target(velocity, clock)[0]
         rec = {"velocity": velocity, "detuning": self._clip_detuning(rec_delta)}
-        now = self._shortfall_at(rec, clock)
+        # What this stage's points can lower (a retune's inherited velocity term they cannot).
+        now = self._shortfall_at(rec, clock, inherit=False)
         best = None
         for purpose, v, d, shots_per_phase in self._candidates(velocity, clock):
             shots = self._total_shots(shots_per_phase)
-            after = self._expected_after(rec, v, d, shots_per_phase, clock)
+            after = self._expected_after(rec, v, d, shots_per_phase, clock, inherit=False)
             gain = (now.upper - after.upper) / shots
             if best is None or gain > best[0] + 1e-15:
                 best = (gain, purpose, v, d, shots_per_phase, after)
@@ -1590,6 +1634,11 @@ class PhaseLockSearch:
             v_draws = np.zeros(len(normals))
             v_point = v_upper = 0.0
             velocity_text = "velocity not judged (phase error beyond the absorption window)"
+        # The calibration's own uncertainty of the velocity the retune keeps.
+        inherited, inherited_point = self._inherited_draws(len(v_draws))
+        v_draws = v_draws + inherited
+        v_point += inherited_point
+        v_upper = float(np.quantile(v_draws, q))
         total = d_draws + v_draws
         upper = float(np.quantile(total, q))
         short = Shortfall(d_point + v_point, upper, d_point, d_upper, v_point, v_upper, error, error_sd, q)
@@ -1643,6 +1692,16 @@ class PhaseLockSearch:
         velocity_sd = curve.vertex_velocity_stderr() if curve is not None else self._vertex_velocity_stderr(fit_abs)
         if not math.isfinite(velocity_sd):
             velocity_sd = self.settings.velocity_step_fraction * rec["velocity"]
+        if self.prior is not None:
+            # A retune keeps the calibration's velocity: its uncertainty passes on.
+            v_term, v_upper = self.prior.velocity_shortfall, self.prior.velocity_shortfall_upper
+        else:
+            short = self._shortfall_at(rec, clock)
+            v_term, v_upper = short.velocity, short.velocity_upper
+            if not (math.isfinite(v_term) and math.isfinite(v_upper)):
+                v_term, v_upper = 0.0, 1.0
+            v_term = float(min(max(v_term, 0.0), 1.0))
+            v_upper = float(min(max(v_upper, v_term), 1.0))
         return LockPrior(
             velocity_m_per_s=rec["velocity"], velocity_stderr_m_per_s=velocity_sd, detuning_hz=rec["detuning"],
             slope_rad_per_hz=lock.slope, slope_stderr_rad_per_hz=lock.slope_stderr,
@@ -1651,7 +1710,8 @@ class PhaseLockSearch:
             phase_at_peak_rad=star, phase_at_peak_stderr_rad=star_sd,
             absorption_min=float(np.clip(minimum, 0.0, 1.0)), absorption_min_stderr=minimum_sd,
             absorption_curvature=curvature, absorption_curvature_stderr=curvature_sd,
-            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift)
+            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift,
+            velocity_shortfall=v_term, velocity_shortfall_upper=v_upper)
 
     def state(self, *, clock_s: float | None = None) -> dict[str, Any]:
         """JSON-ready summary of what was learned, for the journal and the next retune.
