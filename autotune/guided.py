@@ -128,6 +128,8 @@ from autotune.lock_fit import (
     detuning_offset,
     phase_signal_note,
 )
+from autotune.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
+from autotune.retune_verdict import inherited_draws, retune_verdict
 from autotune.shortfall import Shortfall, Verdict, _finite_or_none
 from autotune.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
 from autotune.search import (
@@ -144,7 +146,7 @@ __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch
 
 _TWO_PI = 2.0 * math.pi
 # Two velocities closer than this (relative) are one velocity group of the absorption fit.
-_SAME_VELOCITY = 0.005
+_SAME_VELOCITY = SAME_VELOCITY
 # A point within this relative velocity of the recommendation counts as measured there (the
 # phase at the peak does not depend on the velocity, and the velocity tolerance is several %).
 _AT_VELOCITY = 0.02
@@ -1054,19 +1056,7 @@ class PhaseLockSearch:
         return np.maximum(at_rec - least, 0.0) / scale
 
     def _inherited_draws(self, count: int) -> tuple[np.ndarray, float]:
-        """A retune's share of the calibration's velocity term: draws and the point value.
-
-        The stored term is told as its estimate ``e`` and upper bound ``u`` at the confidence;
-        the draws are ``e + (u - e) |z| / z_q`` with ``z`` standard normal and ``z_q`` the
-        half-normal's quantile at the confidence, so that their quantile there is ``u``.
-        """
-        p = self.prior
-        if p is None or p.velocity_shortfall_upper <= 0.0:
-            return np.zeros(count), 0.0
-        z_q = float(special.ndtri(0.5 + 0.5 * self.settings.confidence))
-        rng = np.random.default_rng([self.seed, 17, len(self._obs)])
-        spread = (p.velocity_shortfall_upper - p.velocity_shortfall) / z_q
-        return p.velocity_shortfall + spread * np.abs(rng.standard_normal(count)), p.velocity_shortfall
+        return inherited_draws(self, count)
 
     def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
         """The ``x`` range the inversion curve is trusted over: the velocities measured and one
@@ -1243,17 +1233,49 @@ class PhaseLockSearch:
         every reported bound count it)."""
         return self._shortfall_at(rec, clock, inherit=False).upper
 
-    def hopeless(self, *, clock_s: float | None = None) -> str | None:
+    def hopeless(self, *, clock_s: float | None = None, points_left: int | None = None,
+                 acceptance_bar: float | None = None) -> str | None:
         """Why more points in this box cannot meet the target, or None.
 
         Said when the velocity optimum lies beyond the box (the data point outward at its
-        edge): the loop should stop and verify, and the stage is then not accepted.
+        edge), or when the velocity stage ended without three usable velocities (no velocity
+        model, an infinite bound): the loop should stop and verify, and the stage is then not
+        accepted. With
+        ``points_left`` (the point budget left), also when the bound already meets
+        ``acceptance_bar`` (default ``still_good_shortfall``) and its expected fall per point
+        (the best next point's, a linear-Gaussian update) would need more points than are left
+        to reach the stricter target, as where the optimum sits at a box edge and the curve
+        beyond it cannot be measured: the loop should stop and verify. Not above the bar: there
+        the posterior's mean still moves as the data come in (a bound of 3.4 % expected to fall
+        by 0.07 % per point fell to 1.1 % in four), and the points are the stage's only hope.
         """
-        self._check_clock(clock_s)
+        clock = self._now(clock_s)
         plan = self._velocity_plan()
         if plan["concluded"] and plan.get("outward", False):
             return f"velocity optimum not bracketed inside the box: {plan['note']}"
-        return None
+        if plan["concluded"] and self._anchor() is not None and not self._absorption_ready(self._absorption_fit()):
+            # The velocity stage found no third usable velocity: the bound stays infinite, no
+            # point's expected gain can be told apart, and the stage cannot be accepted.
+            return f"the velocity model cannot be established in this box: {plan['note']}"
+        if points_left is None or not plan["concluded"] or self._anchor() is None:
+            return None
+        velocity = float(plan["velocity"])
+        fit = self._lock_fit(velocity)
+        if fit is None or not fit.slope_known():
+            return None
+        now, after = expected_fall(self, velocity, clock)
+        target = self.settings.target_shortfall
+        bar = self.settings.still_good_shortfall if acceptance_bar is None else float(acceptance_bar)
+        if not math.isfinite(now) or now <= target or now > bar:
+            return None
+        fall = now - after
+        if fall > 0.0 and (now - target) / fall <= points_left:
+            return None
+        needed = "no point lowers it" if fall <= 0.0 else \
+            f"{math.ceil((now - target) / fall)} points at {fall:.2%} each"
+        return (f"the target {target:.1%} is out of reach within the point budget: the bound {now:.2%} "
+                f"(within the acceptance bar {bar:.1%}) would need {needed}, more than the "
+                f"{points_left} left")
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1423,99 +1445,12 @@ class PhaseLockSearch:
                         f"{detuning / 1e3:+.2f} kHz; the velocity term is unknown (infinite) until the "
                         f"least absorption is bracketed ({groups} usable velocities so far)")
 
-    def _candidates(self, velocity: float, clock: float | None) -> list[tuple[str, float, float, int]]:
-        s = self.settings
-        low, high = self._velocity_box
-        out = []
-        delta = self._lock_target(velocity, clock)[0]
-        out.append(("lock", velocity, self._limit_step(delta, velocity), self.step_shots("lock")))
-        # One and two steps either side: the curvature and the vertex of the absorption are
-        # learned fastest from its wings (the excess grows as the square of the step).
-        f = s.velocity_step_fraction
-        # A velocity step at the locked detuning that came back out of the capture range says
-        # the phase signal is not usable there (a low one-photon contrast, say): the expected
-        # gain of another point within half a step of it assumes a usable result and would pick
-        # it again and again while nothing is learned.
-        unusable = [o.velocity for o in self._obs
-                    if o.purpose == "velocity" and self._range_note(o.result) is not None]
-        seen: list[float] = []
-        for factor in (1.0 - f, 1.0 + f, 1.0 - 2.0 * f, 1.0 + 2.0 * f):
-            v = float(np.clip(velocity * factor, low, high))
-            if abs(v / velocity - 1.0) <= _SAME_VELOCITY or any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in seen):
-                continue
-            if any(abs(v / u - 1.0) <= 0.5 * f for u in unusable):
-                continue
-            seen.append(v)
-            out.append(("velocity", v, self._limit_step(delta, v), self.step_shots("velocity")))
-        return out
-
-    def _expected_phase_variance(self, shots: int) -> float:
-        points = self._in_range()
-        per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
-        return float(np.median(per_shot)) / shots if per_shot else (0.1**2)
-
-    def _expected_inversion_variance(self, shots: int) -> float:
-        points = self._absorption_points() or self._in_range()
-        per_shot = [o.result.inversion_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
-        return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
-
-    def _expected_absorption_variance(self, value: float, shots: int) -> float:
-        points = self._absorption_points() or self._in_range()
-        floor = 0.005
-        per = [o.result.absorption_stderr**2 * o.result.shots / max(o.result.absorption, floor)
-               for o in points if o.result.shots > 0]
-        if not per:
-            return 0.01**2
-        return float(np.median(per)) * max(value, floor) / shots
-
     def _expected_after(self, rec: Mapping[str, float], velocity: float, detuning: float,
                         shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
-        """The shortfall at ``rec`` expected after measuring (velocity, detuning).
-
-        A linear-Gaussian update's posterior covariance does not depend on the value to be
-        measured, so it is known before the measurement; the means are kept.
-        """
-        shots = self._total_shots(shots_per_phase)
-        lock_fit = self._lock_fit(rec["velocity"])
-        x = lock_fit.features(detuning, clock)
-        model = self.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
-        var = self._expected_phase_variance(shots) + model**2
-        lock_cov = lock_fit.cov - np.outer(lock_fit.cov @ x, lock_fit.cov @ x) / (var + x @ lock_fit.cov @ x)
-        absorption_cov = residual_cov = None
-        fit = self._absorption_fit()
-        if self._absorption_ready(fit):
-            xv = fit.x_of(velocity)
-            f = np.array([1.0, xv, xv * xv])
-            avar = self._expected_absorption_variance(fit.value(xv), shots)
-            absorption_cov = fit.cov - np.outer(fit.cov @ f, fit.cov @ f) / (avar + f @ fit.cov @ f)
-            curve = self._velocity_curve()
-            if curve is not None:
-                r_cov = curve.residual_cov
-                rvar = self._expected_inversion_variance(shots) + avar
-                residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
-        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
-                                  residual_cov=residual_cov, inherit=inherit)
+        return expected_after(self, rec, velocity, detuning, shots_per_phase, clock, inherit)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
-        rec_delta = self._lock_target(velocity, clock)[0]
-        rec = {"velocity": velocity, "detuning": self._clip_detuning(rec_delta)}
-        # What this stage's points can lower (a retune's inherited velocity term they cannot).
-        now = self._shortfall_at(rec, clock, inherit=False)
-        best = None
-        for purpose, v, d, shots_per_phase in self._candidates(velocity, clock):
-            shots = self._total_shots(shots_per_phase)
-            after = self._expected_after(rec, v, d, shots_per_phase, clock, inherit=False)
-            gain = (now.upper - after.upper) / shots
-            if best is None or gain > best[0] + 1e-15:
-                best = (gain, purpose, v, d, shots_per_phase, after)
-        gain, purpose, v, d, shots_per_phase, after = best
-        term = "detuning" if (now.detuning_upper - after.detuning_upper) >= (now.velocity_upper - after.velocity_upper) \
-            else "velocity"
-        reason = (f"predicted shortfall's {now.confidence:.0%} bound {now.upper:.2%} (detuning {now.detuning_upper:.2%}, "
-                  f"velocity {now.velocity_upper:.2%}); this {purpose} point at {v:.1f} m/s, {d / 1e3:+.2f} kHz "
-                  f"reduces the {term} term most per shot: expected bound {after.upper:.2%} "
-                  f"(detuning {after.detuning_upper:.2%}, velocity {after.velocity_upper:.2%})")
-        return Proposal({"velocity": v, "detuning": d}, purpose, shots_per_phase, reason)
+        return best_proposal(self, velocity, clock)
 
     # -- after the verification -------------------------------------------------------------
 
@@ -1577,84 +1512,9 @@ class PhaseLockSearch:
     def verdict(self, *, clock_s: float | None = None) -> Verdict:
         """Judge the last good set-points from the retune's check (the first ``"check"`` result).
 
-        The detuning error comes from the check's phase error and the stored slope (and cubic),
-        with both uncertainties (delta method); the velocity error from the check's excess
-        absorption over the stored least absorption. Still good when the check is in the
-        capture range and the upper bound (at ``confidence``) of the predicted shortfall at
-        the last good set-points is below ``still_good_shortfall``.
-
-        Raises
-        ------
-        RuntimeError
-            Without a prior (not a retune) or before the check was observed.
+        See :func:`autotune.retune_verdict.retune_verdict`.
         """
-        self._check_clock(clock_s)
-        if self.prior is None:
-            raise RuntimeError("verdict: this search has no LockPrior; it is not a retune")
-        checks = [o for o in self._obs if o.purpose == "check"]
-        if not checks:
-            raise RuntimeError("verdict: the check has not been observed yet")
-        check = checks[0]
-        s = self.settings
-        q = s.confidence
-        z = float(special.ndtri(0.5 + 0.5 * q))
-        note = self._range_note(check.result)
-        nan = math.nan
-        if note is not None:
-            short = Shortfall(math.inf, math.inf, math.inf, math.inf, math.inf, math.inf, nan, math.inf, q, note)
-            return Verdict(False, False, f"check out of the capture range ({note}): search needed",
-                           nan, nan, nan, nan, nan, short, None)
-        star, star_sd = self._phase_star_prior
-        error = self._phase_error(check.result, star)
-        error_sd = math.hypot(check.result.phase_shift_stderr, star_sd)
-        p = self.prior
-        slope, slope_sd = self._slope_prior()
-        offset, offset_sd = detuning_offset(error, error_sd, slope, slope_sd, p.cubic_rad_per_hz3,
-                                            p.cubic_stderr_rad_per_hz3)
-        normals = self._draw_normals(2, 13)
-        eps = error + error_sd * normals[:, 0]
-        d_draws = 1.0 - np.cos(0.5 * eps)
-        d_point = 1.0 - math.cos(0.5 * error)
-        eps2 = error_sd**2 * float(stats.ncx2.ppf(q, 1, (error / error_sd) ** 2))
-        d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
-        scale = max(p.inversion, _MIN_INVERSION_SCALE)
-        if abs(error) <= s.absorption_phase_window_rad:
-            excess = check.result.absorption - p.absorption_min
-            excess_sd = math.hypot(check.result.absorption_stderr, p.absorption_min_stderr)
-            v_draws = np.maximum(excess + excess_sd * normals[:, 1], 0.0) / scale
-            v_point = max(excess, 0.0) / scale
-            v_upper = float(np.quantile(v_draws, q))
-            velocity_text = (f"excess absorption {excess:+.4f} +- {excess_sd:.4f} over the stored least "
-                             f"{p.absorption_min:.4f}")
-            if p.absorption_curvature > 0 and excess > 0:
-                velocity_text += (f" (velocity off by about +-{math.sqrt(excess / p.absorption_curvature):.1%}, "
-                                  "sign unknown)")
-        else:
-            excess = excess_sd = nan
-            v_draws = np.zeros(len(normals))
-            v_point = v_upper = 0.0
-            velocity_text = "velocity not judged (phase error beyond the absorption window)"
-        # The calibration's own uncertainty of the velocity the retune keeps.
-        inherited, inherited_point = self._inherited_draws(len(v_draws))
-        v_draws = v_draws + inherited
-        v_point += inherited_point
-        v_upper = float(np.quantile(v_draws, q))
-        total = d_draws + v_draws
-        upper = float(np.quantile(total, q))
-        short = Shortfall(d_point + v_point, upper, d_point, d_upper, v_point, v_upper, error, error_sd, q)
-        still_good = upper <= s.still_good_shortfall
-        low, high = offset - z * offset_sd, offset + z * offset_sd
-        corrected = None
-        if not still_good:
-            detuning = self._clip_detuning(check.detuning - offset)
-            corrected = {"velocity": check.velocity, "detuning": detuning}
-        reason = (f"check's phase error {error / math.pi:+.3f} +- {error_sd / math.pi:.3f} pi: set-point "
-                  f"{offset / 1e3:+.2f} kHz from the peak [{low / 1e3:+.2f}, {high / 1e3:+.2f}] ({q:.0%}); "
-                  f"{velocity_text}; predicted shortfall {short.estimate:.2%}, bound {upper:.2%} "
-                  f"{'within' if still_good else 'above'} {s.still_good_shortfall:.1%}")
-        if corrected is not None:
-            reason += f": correct the detuning to {corrected['detuning'] / 1e3:+.2f} kHz"
-        return Verdict(still_good, True, reason, offset, low, high, excess, excess_sd, short, corrected)
+        return retune_verdict(self, clock_s=clock_s)
 
     # -- what was learned ---------------------------------------------------------------------
 

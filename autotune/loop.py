@@ -1474,7 +1474,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         if not stop_reason:
             shortfall = lock.shortfall(clock_s=now)
             bound = _bound_text(shortfall)
-            hopeless = lock.hopeless(clock_s=now) if searched else None
+            hopeless = lock.hopeless(clock_s=now, points_left=budget.max_points - searched,
+                                     acceptance_bar=_acceptance_bar(config)) if searched else None
             if searched and lock.converged(clock_s=now):
                 # The one format of a shortfall, as the lock's verdicts print it.
                 stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"
@@ -1572,7 +1573,8 @@ def _search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sess
     if lock.acceptance_problems(chosen, clock_s=None, max_shortfall=math.inf):
         return None
     # Nor when the points have nothing left to lower (a retune's inherited velocity term).
-    if lock.hopeless(clock_s=session.clock) is not None or lock.converged(clock_s=session.clock):
+    if lock.hopeless(clock_s=session.clock, points_left=budget.max_points - searched,
+                     acceptance_bar=bar) is not None or lock.converged(clock_s=session.clock):
         return None
     if searched >= budget.max_points or session.tally.rig_time_s >= budget.max_rig_time_s:
         return None

@@ -652,3 +652,50 @@ def test_calibration_stores_its_velocity_term_and_a_retune_passes_it_on():
         retune.learned_prior(clock_s=rig.clock).velocity_shortfall_upper == prior.velocity_shortfall_upper
     verdict = retune.verdict(clock_s=rig.clock)
     assert verdict.shortfall.velocity_upper >= prior.velocity_shortfall_upper * 0.95
+
+
+# --------------------------------------------------------------------------------------------
+# When more points cannot help
+# --------------------------------------------------------------------------------------------
+
+
+def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
+    """Where the one-photon contrast is usable only within +-10 m/s of the start (a poor source
+    elsewhere, docs/physics.md section 5b: the lock needs the one-photon fringe), the velocity stage
+    ends without a model; the search then says so (hopeless) instead of spending its budget on
+    lock points whose expected gains are all infinite."""
+    rig = Synthetic(peak_detuning_hz=2e3, velocity_star=V0, seed=7,
+                    contrast_ratio=lambda v, d: 0.73 if abs(v - V0) < 10.0 else 0.15)
+    lock = PhaseLockSearch(BOX, seed=7, start=START, settings=SETTINGS)
+    for _ in range(20):
+        if lock.hopeless(clock_s=rig.clock) is not None:
+            break
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+    reason = lock.hopeless(clock_s=rig.clock)
+    assert reason is not None and "velocity model cannot be established" in reason
+    assert lock.n_told <= 8
+    assert lock.acceptance_problems(lock.recommend(clock_s=rig.clock).point, clock_s=rig.clock)
+
+
+def test_a_bound_within_the_bar_stops_when_the_target_is_out_of_reach_of_the_budget():
+    """Mechanics of the budget rule: a bound between the target (1 %) and the acceptance bar (2 %)
+    with no point left is hopeless; with a large budget it is not; above the bar it never is."""
+    rig = Synthetic(peak_detuning_hz=-4e3, velocity_star=V0 * 1.03, seed=5)
+    lock = PhaseLockSearch(BOX, seed=5, start=START, settings=SETTINGS)
+    within = None
+    for _ in range(40):
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+        upper = lock.shortfall(clock_s=rig.clock).upper
+        plan_done = lock.state(clock_s=rig.clock)["stage"] == "refine"
+        if plan_done and SETTINGS.target_shortfall < upper <= SETTINGS.still_good_shortfall:
+            within = upper
+            break
+    if within is None:
+        pytest.skip("this draw never had a bound between the target and the bar")
+    assert "out of reach" in lock.hopeless(clock_s=rig.clock, points_left=0)
+    assert lock.hopeless(clock_s=rig.clock, points_left=10**6) is None
+    assert lock.hopeless(clock_s=rig.clock, points_left=0, acceptance_bar=0.5 * within) is None
