@@ -128,6 +128,8 @@ from autotune.lock_fit import (
     detuning_offset,
     phase_signal_note,
 )
+from autotune.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
+from autotune.retune_verdict import inherited_draws, retune_verdict
 from autotune.shortfall import Shortfall, Verdict, _finite_or_none
 from autotune.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
 from autotune.search import (
@@ -144,7 +146,7 @@ __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch
 
 _TWO_PI = 2.0 * math.pi
 # Two velocities closer than this (relative) are one velocity group of the absorption fit.
-_SAME_VELOCITY = 0.005
+_SAME_VELOCITY = SAME_VELOCITY
 # A point within this relative velocity of the recommendation counts as measured there (the
 # phase at the peak does not depend on the velocity, and the velocity tolerance is several %).
 _AT_VELOCITY = 0.02
@@ -355,6 +357,8 @@ _PRIOR_KEYS: dict[str, str] = {
 }
 _PRIOR_OPTIONAL: dict[str, str] = {
     "peak_drift_hz_per_s": "the rate of the peak's detuning set-point during the calibration (Hz/s)",
+    "velocity_shortfall": "the calibration's velocity term at its chosen velocity (inversion fraction), >= 0",
+    "velocity_shortfall_upper": "its upper bound at the calibration's confidence, >= velocity_shortfall",
 }
 
 
@@ -383,6 +387,12 @@ class LockPrior:
     peak_drift_hz_per_s : float
         Rate of change of the peak's detuning set-point seen during the calibration (Hz/s;
         a cavity drifting up in frequency moves it down; information only).
+    velocity_shortfall, velocity_shortfall_upper : float
+        The calibration's velocity term at the velocity it chose (the relative inversion lost
+        against the best of its inversion curve) and its upper bound at its confidence. A retune
+        keeps that velocity and learns only whether the rig moved from it, so the calibration's
+        own uncertainty of the velocity stays in every retune's bound (0 in a store written
+        before these keys existed).
     """
 
     velocity_m_per_s: float
@@ -400,6 +410,8 @@ class LockPrior:
     absorption_curvature_stderr: float
     inversion: float
     peak_drift_hz_per_s: float = 0.0
+    velocity_shortfall: float = 0.0
+    velocity_shortfall_upper: float = 0.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -414,10 +426,13 @@ class LockPrior:
             ("absorption_min", 0.0 <= self.absorption_min <= 1.0),
             ("absorption_curvature", self.absorption_curvature >= 0.0),
             ("inversion", 0.0 < self.inversion <= 1.0),
+            ("velocity_shortfall", 0.0 <= self.velocity_shortfall <= 1.0),
+            ("velocity_shortfall_upper", self.velocity_shortfall <= self.velocity_shortfall_upper <= 1.0),
         )
         for name, ok in checks:
             if not ok:
-                raise ValueError(f"LockPrior.{name}: expected {_PRIOR_KEYS[name]}, got {getattr(self, name)!r}")
+                what = _PRIOR_KEYS.get(name) or _PRIOR_OPTIONAL[name]
+                raise ValueError(f"LockPrior.{name}: expected {what}, got {getattr(self, name)!r}")
         for name in ("velocity_stderr_m_per_s", "slope_stderr_rad_per_hz", "cubic_stderr_rad_per_hz3",
                      "absorption_min_stderr", "absorption_curvature_stderr"):
             if getattr(self, name) < 0.0:
@@ -1040,6 +1055,9 @@ class PhaseLockSearch:
         at_rec = a0 + a1 * x_rec + a2 * x_rec**2
         return np.maximum(at_rec - least, 0.0) / scale
 
+    def _inherited_draws(self, count: int) -> tuple[np.ndarray, float]:
+        return inherited_draws(self, count)
+
     def _curve_range(self, curve: InversionCurve) -> tuple[float, float]:
         """The ``x`` range the inversion curve is trusted over: the velocities measured and one
         velocity step beyond (a quadratic is not extrapolated further). Not clipped to the box:
@@ -1071,7 +1089,7 @@ class PhaseLockSearch:
     def _shortfall_at(self, point: Mapping[str, float], clock: float | None,
                       lock_cov: np.ndarray | None = None, absorption_cov: np.ndarray | None = None,
                       residual_cov: np.ndarray | None = None,
-                      phase_error: tuple[float, float] | None = None) -> Shortfall:
+                      phase_error: tuple[float, float] | None = None, inherit: bool = True) -> Shortfall:
         s = self.settings
         q = s.confidence
         detuning = self._detuning_terms(point, clock) if phase_error is None else phase_error
@@ -1113,6 +1131,11 @@ class PhaseLockSearch:
             least = fit.value(float(np.clip(vertex, x_lo, x_hi))) if vertex is not None else min(
                 fit.value(x_lo), fit.value(x_hi))
             v_point = max(fit.value(x_rec) - least, 0.0) / scale
+            if inherit:
+                # The calibration's own uncertainty of the velocity the retune keeps.
+                inherited, inherited_point = self._inherited_draws(len(v_draws))
+                v_draws = v_draws + inherited
+                v_point += inherited_point
             v_upper = float(np.quantile(v_draws, q))
         else:
             v_draws = np.full(len(normals), math.inf)
@@ -1188,7 +1211,9 @@ class PhaseLockSearch:
     def converged(self, *, clock_s: float | None = None) -> bool:
         """True when the upper bound of the predicted shortfall is below ``target_shortfall``.
 
-        Also requires the last usable point to lie at the recommended velocity (within 2 %):
+        A retune's bound is taken without the calibration's velocity term it inherits
+        (``LockPrior.velocity_shortfall``): its points cannot lower that term, and its
+        acceptance, against ``[acceptance] max_shortfall``, counts it. Also requires the last usable point to lie at the recommended velocity (within 2 %):
         the last step re-centres the lock there from fresh data.
         """
         clock = self._now(clock_s)
@@ -1199,19 +1224,58 @@ class PhaseLockSearch:
         velocity = self._recommended_velocity()
         if not self._measured_at(velocity):
             return False
-        return self.shortfall(clock_s=clock).upper <= self.settings.target_shortfall
+        rec = self.recommend(clock_s=clock).point
+        return self._stop_bound(rec, clock) <= self.settings.target_shortfall
 
-    def hopeless(self, *, clock_s: float | None = None) -> str | None:
+    def _stop_bound(self, rec: Mapping[str, float], clock: float | None) -> float:
+        """The bound the stop compares with the target at ``rec``: without the calibration's
+        velocity term that a retune inherits (its points cannot lower it; the acceptance and
+        every reported bound count it)."""
+        return self._shortfall_at(rec, clock, inherit=False).upper
+
+    def hopeless(self, *, clock_s: float | None = None, points_left: int | None = None,
+                 acceptance_bar: float | None = None) -> str | None:
         """Why more points in this box cannot meet the target, or None.
 
         Said when the velocity optimum lies beyond the box (the data point outward at its
-        edge): the loop should stop and verify, and the stage is then not accepted.
+        edge), or when the velocity stage ended without three usable velocities (no velocity
+        model, an infinite bound): the loop should stop and verify, and the stage is then not
+        accepted. With
+        ``points_left`` (the point budget left), also when the bound already meets
+        ``acceptance_bar`` (default ``still_good_shortfall``) and its expected fall per point
+        (the best next point's, a linear-Gaussian update) would need more points than are left
+        to reach the stricter target, as where the optimum sits at a box edge and the curve
+        beyond it cannot be measured: the loop should stop and verify. Not above the bar: there
+        the posterior's mean still moves as the data come in (a bound of 3.4 % expected to fall
+        by 0.07 % per point fell to 1.1 % in four), and the points are the stage's only hope.
         """
-        self._check_clock(clock_s)
+        clock = self._now(clock_s)
         plan = self._velocity_plan()
         if plan["concluded"] and plan.get("outward", False):
             return f"velocity optimum not bracketed inside the box: {plan['note']}"
-        return None
+        if plan["concluded"] and self._anchor() is not None and not self._absorption_ready(self._absorption_fit()):
+            # The velocity stage found no third usable velocity: the bound stays infinite, no
+            # point's expected gain can be told apart, and the stage cannot be accepted.
+            return f"the velocity model cannot be established in this box: {plan['note']}"
+        if points_left is None or not plan["concluded"] or self._anchor() is None:
+            return None
+        velocity = float(plan["velocity"])
+        fit = self._lock_fit(velocity)
+        if fit is None or not fit.slope_known():
+            return None
+        now, after = expected_fall(self, velocity, clock)
+        target = self.settings.target_shortfall
+        bar = self.settings.still_good_shortfall if acceptance_bar is None else float(acceptance_bar)
+        if not math.isfinite(now) or now <= target or now > bar:
+            return None
+        fall = now - after
+        if fall > 0.0 and (now - target) / fall <= points_left:
+            return None
+        needed = "no point lowers it" if fall <= 0.0 else \
+            f"{math.ceil((now - target) / fall)} points at {fall:.2%} each"
+        return (f"the target {target:.1%} is out of reach within the point budget: the bound {now:.2%} "
+                f"(within the acceptance bar {bar:.1%}) would need {needed}, more than the "
+                f"{points_left} left")
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1274,7 +1338,7 @@ class PhaseLockSearch:
             if not verdict.still_good and verdict.corrected is not None:
                 # Verify the corrected set-points directly only when the stored slope predicts
                 # them well enough; otherwise one cheap lock step there first.
-                short = self._shortfall_at(verdict.corrected, clock)
+                short = self._shortfall_at(verdict.corrected, clock, inherit=False)
                 if short.upper <= s.target_shortfall:
                     return Proposal(verdict.corrected, "correct", None,
                                     f"retune: {verdict.reason}; predicted bound there {short.upper:.2%}: verify")
@@ -1305,7 +1369,8 @@ class PhaseLockSearch:
                                         "detuning": self._lock_target(velocity, clock)[0]}, clock)
             # Re-centre the lock at the chosen velocity once the bound allows a stop: before
             # that, the point that lowers the bound most per shot (a lock point there among them).
-            if short.upper <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
+            rec = {"velocity": velocity, "detuning": self._clip_detuning(self._lock_target(velocity, clock)[0])}
+            if self._stop_bound(rec, clock) <= s.target_shortfall or self.hopeless(clock_s=clock) is not None:
                 return self._lock_proposal(velocity, clock, "relock", short,
                                            f"re-centre the lock at the chosen velocity ({plan['note']})")
         return self._best_proposal(velocity, clock)
@@ -1380,90 +1445,12 @@ class PhaseLockSearch:
                         f"{detuning / 1e3:+.2f} kHz; the velocity term is unknown (infinite) until the "
                         f"least absorption is bracketed ({groups} usable velocities so far)")
 
-    def _candidates(self, velocity: float, clock: float | None) -> list[tuple[str, float, float, int]]:
-        s = self.settings
-        low, high = self._velocity_box
-        out = []
-        delta = self._lock_target(velocity, clock)[0]
-        out.append(("lock", velocity, self._limit_step(delta, velocity), self.step_shots("lock")))
-        # One and two steps either side: the curvature and the vertex of the absorption are
-        # learned fastest from its wings (the excess grows as the square of the step).
-        f = s.velocity_step_fraction
-        seen: list[float] = []
-        for factor in (1.0 - f, 1.0 + f, 1.0 - 2.0 * f, 1.0 + 2.0 * f):
-            v = float(np.clip(velocity * factor, low, high))
-            if abs(v / velocity - 1.0) <= _SAME_VELOCITY or any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in seen):
-                continue
-            seen.append(v)
-            out.append(("velocity", v, self._limit_step(delta, v), self.step_shots("velocity")))
-        return out
-
-    def _expected_phase_variance(self, shots: int) -> float:
-        points = self._in_range()
-        per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
-        return float(np.median(per_shot)) / shots if per_shot else (0.1**2)
-
-    def _expected_inversion_variance(self, shots: int) -> float:
-        points = self._absorption_points() or self._in_range()
-        per_shot = [o.result.inversion_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
-        return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
-
-    def _expected_absorption_variance(self, value: float, shots: int) -> float:
-        points = self._absorption_points() or self._in_range()
-        floor = 0.005
-        per = [o.result.absorption_stderr**2 * o.result.shots / max(o.result.absorption, floor)
-               for o in points if o.result.shots > 0]
-        if not per:
-            return 0.01**2
-        return float(np.median(per)) * max(value, floor) / shots
-
     def _expected_after(self, rec: Mapping[str, float], velocity: float, detuning: float,
-                        shots_per_phase: int, clock: float | None) -> Shortfall:
-        """The shortfall at ``rec`` expected after measuring (velocity, detuning).
-
-        A linear-Gaussian update's posterior covariance does not depend on the value to be
-        measured, so it is known before the measurement; the means are kept.
-        """
-        shots = self._total_shots(shots_per_phase)
-        lock_fit = self._lock_fit(rec["velocity"])
-        x = lock_fit.features(detuning, clock)
-        model = self.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
-        var = self._expected_phase_variance(shots) + model**2
-        lock_cov = lock_fit.cov - np.outer(lock_fit.cov @ x, lock_fit.cov @ x) / (var + x @ lock_fit.cov @ x)
-        absorption_cov = residual_cov = None
-        fit = self._absorption_fit()
-        if self._absorption_ready(fit):
-            xv = fit.x_of(velocity)
-            f = np.array([1.0, xv, xv * xv])
-            avar = self._expected_absorption_variance(fit.value(xv), shots)
-            absorption_cov = fit.cov - np.outer(fit.cov @ f, fit.cov @ f) / (avar + f @ fit.cov @ f)
-            curve = self._velocity_curve()
-            if curve is not None:
-                r_cov = curve.residual_cov
-                rvar = self._expected_inversion_variance(shots) + avar
-                residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
-        return self._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
-                                  residual_cov=residual_cov)
+                        shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
+        return expected_after(self, rec, velocity, detuning, shots_per_phase, clock, inherit)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
-        rec_delta = self._lock_target(velocity, clock)[0]
-        rec = {"velocity": velocity, "detuning": self._clip_detuning(rec_delta)}
-        now = self._shortfall_at(rec, clock)
-        best = None
-        for purpose, v, d, shots_per_phase in self._candidates(velocity, clock):
-            shots = self._total_shots(shots_per_phase)
-            after = self._expected_after(rec, v, d, shots_per_phase, clock)
-            gain = (now.upper - after.upper) / shots
-            if best is None or gain > best[0] + 1e-15:
-                best = (gain, purpose, v, d, shots_per_phase, after)
-        gain, purpose, v, d, shots_per_phase, after = best
-        term = "detuning" if (now.detuning_upper - after.detuning_upper) >= (now.velocity_upper - after.velocity_upper) \
-            else "velocity"
-        reason = (f"predicted shortfall's {now.confidence:.0%} bound {now.upper:.2%} (detuning {now.detuning_upper:.2%}, "
-                  f"velocity {now.velocity_upper:.2%}); this {purpose} point at {v:.1f} m/s, {d / 1e3:+.2f} kHz "
-                  f"reduces the {term} term most per shot: expected bound {after.upper:.2%} "
-                  f"(detuning {after.detuning_upper:.2%}, velocity {after.velocity_upper:.2%})")
-        return Proposal({"velocity": v, "detuning": d}, purpose, shots_per_phase, reason)
+        return best_proposal(self, velocity, clock)
 
     # -- after the verification -------------------------------------------------------------
 
@@ -1525,79 +1512,9 @@ class PhaseLockSearch:
     def verdict(self, *, clock_s: float | None = None) -> Verdict:
         """Judge the last good set-points from the retune's check (the first ``"check"`` result).
 
-        The detuning error comes from the check's phase error and the stored slope (and cubic),
-        with both uncertainties (delta method); the velocity error from the check's excess
-        absorption over the stored least absorption. Still good when the check is in the
-        capture range and the upper bound (at ``confidence``) of the predicted shortfall at
-        the last good set-points is below ``still_good_shortfall``.
-
-        Raises
-        ------
-        RuntimeError
-            Without a prior (not a retune) or before the check was observed.
+        See :func:`autotune.retune_verdict.retune_verdict`.
         """
-        self._check_clock(clock_s)
-        if self.prior is None:
-            raise RuntimeError("verdict: this search has no LockPrior; it is not a retune")
-        checks = [o for o in self._obs if o.purpose == "check"]
-        if not checks:
-            raise RuntimeError("verdict: the check has not been observed yet")
-        check = checks[0]
-        s = self.settings
-        q = s.confidence
-        z = float(special.ndtri(0.5 + 0.5 * q))
-        note = self._range_note(check.result)
-        nan = math.nan
-        if note is not None:
-            short = Shortfall(math.inf, math.inf, math.inf, math.inf, math.inf, math.inf, nan, math.inf, q, note)
-            return Verdict(False, False, f"check out of the capture range ({note}): search needed",
-                           nan, nan, nan, nan, nan, short, None)
-        star, star_sd = self._phase_star_prior
-        error = self._phase_error(check.result, star)
-        error_sd = math.hypot(check.result.phase_shift_stderr, star_sd)
-        p = self.prior
-        slope, slope_sd = self._slope_prior()
-        offset, offset_sd = detuning_offset(error, error_sd, slope, slope_sd, p.cubic_rad_per_hz3,
-                                            p.cubic_stderr_rad_per_hz3)
-        normals = self._draw_normals(2, 13)
-        eps = error + error_sd * normals[:, 0]
-        d_draws = 1.0 - np.cos(0.5 * eps)
-        d_point = 1.0 - math.cos(0.5 * error)
-        eps2 = error_sd**2 * float(stats.ncx2.ppf(q, 1, (error / error_sd) ** 2))
-        d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
-        scale = max(p.inversion, _MIN_INVERSION_SCALE)
-        if abs(error) <= s.absorption_phase_window_rad:
-            excess = check.result.absorption - p.absorption_min
-            excess_sd = math.hypot(check.result.absorption_stderr, p.absorption_min_stderr)
-            v_draws = np.maximum(excess + excess_sd * normals[:, 1], 0.0) / scale
-            v_point = max(excess, 0.0) / scale
-            v_upper = float(np.quantile(v_draws, q))
-            velocity_text = (f"excess absorption {excess:+.4f} +- {excess_sd:.4f} over the stored least "
-                             f"{p.absorption_min:.4f}")
-            if p.absorption_curvature > 0 and excess > 0:
-                velocity_text += (f" (velocity off by about +-{math.sqrt(excess / p.absorption_curvature):.1%}, "
-                                  "sign unknown)")
-        else:
-            excess = excess_sd = nan
-            v_draws = np.zeros(len(normals))
-            v_point = v_upper = 0.0
-            velocity_text = "velocity not judged (phase error beyond the absorption window)"
-        total = d_draws + v_draws
-        upper = float(np.quantile(total, q))
-        short = Shortfall(d_point + v_point, upper, d_point, d_upper, v_point, v_upper, error, error_sd, q)
-        still_good = upper <= s.still_good_shortfall
-        low, high = offset - z * offset_sd, offset + z * offset_sd
-        corrected = None
-        if not still_good:
-            detuning = self._clip_detuning(check.detuning - offset)
-            corrected = {"velocity": check.velocity, "detuning": detuning}
-        reason = (f"check's phase error {error / math.pi:+.3f} +- {error_sd / math.pi:.3f} pi: set-point "
-                  f"{offset / 1e3:+.2f} kHz from the peak [{low / 1e3:+.2f}, {high / 1e3:+.2f}] ({q:.0%}); "
-                  f"{velocity_text}; predicted shortfall {short.estimate:.2%}, bound {upper:.2%} "
-                  f"{'within' if still_good else 'above'} {s.still_good_shortfall:.1%}")
-        if corrected is not None:
-            reason += f": correct the detuning to {corrected['detuning'] / 1e3:+.2f} kHz"
-        return Verdict(still_good, True, reason, offset, low, high, excess, excess_sd, short, corrected)
+        return retune_verdict(self, clock_s=clock_s)
 
     # -- what was learned ---------------------------------------------------------------------
 
@@ -1635,6 +1552,16 @@ class PhaseLockSearch:
         velocity_sd = curve.vertex_velocity_stderr() if curve is not None else self._vertex_velocity_stderr(fit_abs)
         if not math.isfinite(velocity_sd):
             velocity_sd = self.settings.velocity_step_fraction * rec["velocity"]
+        if self.prior is not None:
+            # A retune keeps the calibration's velocity: its uncertainty passes on.
+            v_term, v_upper = self.prior.velocity_shortfall, self.prior.velocity_shortfall_upper
+        else:
+            short = self._shortfall_at(rec, clock)
+            v_term, v_upper = short.velocity, short.velocity_upper
+            if not (math.isfinite(v_term) and math.isfinite(v_upper)):
+                v_term, v_upper = 0.0, 1.0
+            v_term = float(min(max(v_term, 0.0), 1.0))
+            v_upper = float(min(max(v_upper, v_term), 1.0))
         return LockPrior(
             velocity_m_per_s=rec["velocity"], velocity_stderr_m_per_s=velocity_sd, detuning_hz=rec["detuning"],
             slope_rad_per_hz=lock.slope, slope_stderr_rad_per_hz=lock.slope_stderr,
@@ -1643,7 +1570,8 @@ class PhaseLockSearch:
             phase_at_peak_rad=star, phase_at_peak_stderr_rad=star_sd,
             absorption_min=float(np.clip(minimum, 0.0, 1.0)), absorption_min_stderr=minimum_sd,
             absorption_curvature=curvature, absorption_curvature_stderr=curvature_sd,
-            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift)
+            inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift,
+            velocity_shortfall=v_term, velocity_shortfall_upper=v_upper)
 
     def state(self, *, clock_s: float | None = None) -> dict[str, Any]:
         """JSON-ready summary of what was learned, for the journal and the next retune.

@@ -1298,7 +1298,13 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
       below the target at the configured confidence (or a budget is spent), then verifies the
       recommendation; a ``correct`` proposal is itself a verification;
     - after a verification the strategy may ask for a correction, measured at the same
-      precision, at most ``[lock] max_corrections`` times.
+      precision, at most ``[lock] max_corrections`` times;
+    - when the verified choice's bound still misses the acceptance bar (``[acceptance]
+      max_shortfall``, else ``[lock] still_good_shortfall``) and more points could lower it
+      (lock and velocity model established, no optimum beyond the box, the budgets not spent),
+      the search goes on (decision ``search_again``), then verifies again; only then is a stage
+      judged not accepted. A night's retune after a thermal step thus keeps searching within
+      its own budget before its recovery counts as failed.
 
     Parameters
     ----------
@@ -1372,6 +1378,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     searched = 0
     final: tuple[dict[str, float], InversionEstimate] | None = None
     check: InversionEstimate | None = None
+    # Verifications (and corrections) since the search last stopped: a verification that
+    # misses the acceptance bar sends the stage back to its search while the budget lasts.
     verifications = 0
     for key in order:
         rec = replayed.estimates[key]
@@ -1385,6 +1393,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             check = estimate
         else:
             searched += 1
+            final, verifications = None, 0
 
     def run_step(label: str, setpoints: Mapping[str, float], shots_per_phase: int
                  ) -> InversionEstimate:
@@ -1408,12 +1417,18 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             check = estimate
         else:
             searched += 1
+            final, verifications = None, 0
             if observer is not None:
                 observer(searched, lock, session)
         return estimate
 
     stop_reason = str(replayed.decisions["stop_search"]["reason"]) \
         if "stop_search" in replayed.decisions else ""
+    again = replayed.decisions.get("search_again")
+    if again is not None and (not stop_reason or int(replayed.decisions["stop_search"]["seq"])
+                              < int(again["seq"])):
+        # The search went on after a verification missed the bar and has not stopped since.
+        stop_reason = ""
     verdict_done = "verdict" in replayed.decisions
     while True:
         pending = next((m for (label, point), m in measurements.items()
@@ -1445,7 +1460,12 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             correction = lock.correction(clock_s=now) \
                 if verifications <= config.lock.max_corrections else None
             if correction is None:
-                break
+                again = _search_again(lock, config, budget, session, final, searched, phases)
+                if again is None:
+                    break
+                session.decide("search_again", again, setpoints=final[0], points=searched)
+                final, verifications, stop_reason = None, 0, ""
+                continue
             session.decide("correct", correction.reason, setpoints=correction.point,
                            **{"from": final[0]})
             run_step("correct", correction.point,
@@ -1454,10 +1474,14 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         if not stop_reason:
             shortfall = lock.shortfall(clock_s=now)
             bound = _bound_text(shortfall)
-            hopeless = lock.hopeless(clock_s=now) if searched else None
+            hopeless = lock.hopeless(clock_s=now, points_left=budget.max_points - searched,
+                                     acceptance_bar=_acceptance_bar(config)) if searched else None
             if searched and lock.converged(clock_s=now):
                 # The one format of a shortfall, as the lock's verdicts print it.
                 stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"
+                if shortfall.upper > config.lock.target_shortfall:
+                    stop_reason = (f"{bound}; below the target {config.lock.target_shortfall:.1%} "
+                                   "without the calibration's velocity term this retune keeps")
             elif hopeless is not None:
                 stop_reason = f"{hopeless}; {bound}"
             elif searched >= budget.max_points:
@@ -1498,8 +1522,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     final_short = lock.shortfall(clock_s=None, point=chosen)
     # The acceptance bar is the goal itself (still_good_shortfall, 2 %: >= 0.98 of the best);
     # the stop's target_shortfall is stricter to leave room for the drift and the verification.
-    max_shortfall = config.max_shortfall if config.max_shortfall is not None \
-        else config.lock.still_good_shortfall
+    max_shortfall = _acceptance_bar(config)
     # A bound of 100 % vouches for nothing: such a setting checks the verified inversion only.
     problems = lock.acceptance_problems(chosen, clock_s=None,
                                         max_shortfall=max_shortfall) if max_shortfall < 1.0 else []
@@ -1519,6 +1542,48 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                            session.tally.rig_time_s, accepted, check,
                            predicted_shortfall=shortfall_numbers(final_short), reason=reason)
     return dataclasses.replace(outcome, lock_prior=None if learned is None else learned.to_dict())
+
+
+def _acceptance_bar(config: RunConfig) -> float:
+    """The bound a stage's verified choice must meet: ``[acceptance] max_shortfall``, else
+    ``[lock] still_good_shortfall`` (the goal itself, 2 %: >= 0.98 of the best)."""
+    return config.max_shortfall if config.max_shortfall is not None else config.lock.still_good_shortfall
+
+
+def _search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, session: Session,
+                  final: tuple[dict[str, float], InversionEstimate], searched: int,
+                  phases: int) -> str | None:
+    """Why the search should go on after its verification, or None (the stage ends).
+
+    It goes on when the verified choice's bound (every result told) misses the acceptance bar
+    while more points could lower it: the lock and the velocity model were established, the
+    velocity optimum is not beyond the box, and the point, shot and rig-time budgets leave
+    room for another step. Otherwise the stage is judged as it stands (also when the verified
+    inversion is below ``[acceptance] min_inversion``: that says the rig, not the search).
+    """
+    chosen, estimate = final
+    bar = _acceptance_bar(config)
+    if bar >= 1.0 or estimate.inversion < config.min_inversion:
+        return None
+    short = lock.shortfall(clock_s=None, point=chosen)
+    if short.upper <= bar:
+        return None
+    # Only a bound above the bar is something more points can mend: any other problem (no
+    # lock, no velocity model, an optimum beyond the box) ends the stage as it stands.
+    if lock.acceptance_problems(chosen, clock_s=None, max_shortfall=math.inf):
+        return None
+    # Nor when the points have nothing left to lower (a retune's inherited velocity term).
+    if lock.hopeless(clock_s=session.clock, points_left=budget.max_points - searched,
+                     acceptance_bar=bar) is not None or lock.converged(clock_s=session.clock):
+        return None
+    if searched >= budget.max_points or session.tally.rig_time_s >= budget.max_rig_time_s:
+        return None
+    proposal = lock.propose(clock_s=session.clock)
+    shots = proposal.shots_per_phase or config.measurement.shots_per_phase
+    if session.tally.shots + 2 * phases * shots > budget.max_shots:
+        return None
+    return (f"the verified choice's {_bound_text(short)} misses the acceptance bar {bar:.1%}; "
+            f"the budget has room ({searched} of {budget.max_points} points): searching on")
 
 
 def _bound_text(shortfall: Shortfall) -> str:

@@ -11,6 +11,7 @@ Statistical checks use scipy.stats.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from collections.abc import Callable, Mapping
@@ -172,9 +173,6 @@ def test_lock_falls_back_from_far_outside_the_capture_range_and_still_locks():
     assert rig.shortfall(lock.recommend(clock_s=rig.clock).point) < 0.02
 
 
-@pytest.mark.xfail(reason="since the velocity is chosen on the inversion, this run no longer bounds its "
-                   "shortfall within 80 points (velocities below 490 m/s stay out of the capture "
-                   "range): open, see the branch's report", strict=False)
 def test_lock_falls_back_where_the_one_photon_contrast_is_low():
     """Started where the one-photon contrast is too low (|a| small), the search falls back, then locks elsewhere."""
     rig = Synthetic(peak_detuning_hz=5e3, velocity_star=520.0, seed=4,
@@ -183,6 +181,10 @@ def test_lock_falls_back_where_the_one_photon_contrast_is_low():
     converged, proposals = _run(lock, rig, max_points=80)
     assert proposals[1].purpose == "search" and "contrast" in proposals[1].reason
     assert converged
+    # A velocity step that came back without a usable phase signal is not asked for again
+    # (it was, 70 times, while the expected gain assumed a usable result there).
+    unusable = [p for p in proposals if p.purpose == "velocity" and p.point["velocity"] < 490.0]
+    assert len(unusable) <= 2, [p.point for p in unusable]
     assert rig.shortfall(lock.recommend(clock_s=rig.clock).point) < 0.02
 
 
@@ -588,3 +590,112 @@ def test_closed_loop_retune_after_a_thermal_step():
     truth = rig.truth(final)
     assert truth["inversion"] / truth["best"]["inversion"] >= 0.97
     assert shots <= 72_000
+
+
+# --------------------------------------------------------------------------------------------
+# A retune carries the calibration's velocity term
+# --------------------------------------------------------------------------------------------
+
+
+def _check_at_the_peak(lock: PhaseLockSearch, prior: LockPrior) -> None:
+    """A check at the last good set-points that finds them exactly at the peak: phase pi and
+    the stored least absorption, both with negligible errors (the retune's own terms vanish)."""
+    check = PointResult(inversion=0.73, inversion_stderr=1e-4, phase_shift=PI, phase_shift_stderr=1e-5,
+                        absorption=prior.absorption_min, absorption_stderr=1e-6, contrast_empty=0.3,
+                        contrast_empty_stderr=0.01, contrast_one_photon=0.22, contrast_one_photon_stderr=0.01,
+                        identified=True, clock_s=0.0, shots=36_000)
+    lock.observe(START, check, purpose="check")
+
+
+def test_retune_bound_carries_the_calibrations_velocity_term():
+    """The stored velocity term (estimate e, bound u at 95 %) enters the retune's bound: with a check
+    exactly at the peak the verdict's bound is u, the 95 % quantile of e + (u - e) |z| / z_q
+    (scipy.stats.halfnorm: z_q = halfnorm.ppf(0.95)); a store without the keys adds nothing."""
+    e, u = 0.002, 0.012
+    base = dataclasses.replace(_prior(phase_sd=1e-5, absorption_min_stderr=1e-6),
+                               absorption_curvature_stderr=0.0)
+    carried = dataclasses.replace(base, velocity_shortfall=e, velocity_shortfall_upper=u)
+    verdicts = {}
+    for name, prior in (("without", base), ("with", carried)):
+        lock = PhaseLockSearch(BOX, seed=0, start=START, settings=SETTINGS, prior=prior)
+        _check_at_the_peak(lock, prior)
+        verdicts[name] = lock.verdict()
+    assert verdicts["without"].shortfall.upper < 1e-3
+    # The half-normal's quantile: 4000 seeded draws give it to a few percent.
+    assert stats.halfnorm.ppf(0.95) == pytest.approx(1.959964, abs=1e-6)
+    assert verdicts["with"].shortfall.upper == pytest.approx(u, rel=0.05, abs=1e-3)
+    assert verdicts["with"].shortfall.estimate >= e
+    # The numbers survive the store (JSON) and an older store without the keys reads as zeros.
+    data = json.loads(json.dumps(carried.to_dict()))
+    assert LockPrior.from_dict(data) == carried
+    old = {k: v for k, v in data.items() if not k.startswith("velocity_shortfall")}
+    assert LockPrior.from_dict(old).velocity_shortfall_upper == 0.0
+    with pytest.raises(ValueError, match="velocity_shortfall_upper"):
+        LockPrior.from_dict({**data, "velocity_shortfall_upper": e / 2})
+
+
+def test_calibration_stores_its_velocity_term_and_a_retune_passes_it_on():
+    """A calibration's learned prior holds its own velocity term at the chosen velocity; a retune
+    from that prior keeps it (its points cannot lower it) and still stops on what they can."""
+    rig = Synthetic(peak_detuning_hz=-4e3, velocity_star=V0 * 1.03, seed=3)
+    lock = PhaseLockSearch(BOX, seed=3, start=START, settings=SETTINGS)
+    assert _run(lock, rig)[0]
+    prior = lock.learned_prior(clock_s=rig.clock)
+    short = lock.shortfall(clock_s=rig.clock, point=lock.recommend(clock_s=rig.clock).point)
+    assert prior.velocity_shortfall == pytest.approx(max(short.velocity, 0.0))
+    assert prior.velocity_shortfall_upper == pytest.approx(short.velocity_upper)
+    assert 0.0 < prior.velocity_shortfall_upper < SETTINGS.target_shortfall
+    start = lock.recommend(clock_s=rig.clock).point
+    retune = PhaseLockSearch(BOX, seed=3, start=start, settings=SETTINGS, prior=prior)
+    retune.observe(start, rig.measure(start, 3000), purpose="check")
+    assert retune.learned_prior(clock_s=rig.clock) is None or \
+        retune.learned_prior(clock_s=rig.clock).velocity_shortfall_upper == prior.velocity_shortfall_upper
+    verdict = retune.verdict(clock_s=rig.clock)
+    assert verdict.shortfall.velocity_upper >= prior.velocity_shortfall_upper * 0.95
+
+
+# --------------------------------------------------------------------------------------------
+# When more points cannot help
+# --------------------------------------------------------------------------------------------
+
+
+def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
+    """Where the one-photon contrast is usable only within +-10 m/s of the start (a poor source
+    elsewhere, docs/physics.md section 5b: the lock needs the one-photon fringe), the velocity stage
+    ends without a model; the search then says so (hopeless) instead of spending its budget on
+    lock points whose expected gains are all infinite."""
+    rig = Synthetic(peak_detuning_hz=2e3, velocity_star=V0, seed=7,
+                    contrast_ratio=lambda v, d: 0.73 if abs(v - V0) < 10.0 else 0.15)
+    lock = PhaseLockSearch(BOX, seed=7, start=START, settings=SETTINGS)
+    for _ in range(20):
+        if lock.hopeless(clock_s=rig.clock) is not None:
+            break
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+    reason = lock.hopeless(clock_s=rig.clock)
+    assert reason is not None and "velocity model cannot be established" in reason
+    assert lock.n_told <= 8
+    assert lock.acceptance_problems(lock.recommend(clock_s=rig.clock).point, clock_s=rig.clock)
+
+
+def test_a_bound_within_the_bar_stops_when_the_target_is_out_of_reach_of_the_budget():
+    """Mechanics of the budget rule: a bound between the target (1 %) and the acceptance bar (2 %)
+    with no point left is hopeless; with a large budget it is not; above the bar it never is."""
+    rig = Synthetic(peak_detuning_hz=-4e3, velocity_star=V0 * 1.03, seed=5)
+    lock = PhaseLockSearch(BOX, seed=5, start=START, settings=SETTINGS)
+    within = None
+    for _ in range(40):
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+        upper = lock.shortfall(clock_s=rig.clock).upper
+        plan_done = lock.state(clock_s=rig.clock)["stage"] == "refine"
+        if plan_done and SETTINGS.target_shortfall < upper <= SETTINGS.still_good_shortfall:
+            within = upper
+            break
+    if within is None:
+        pytest.skip("this draw never had a bound between the target and the bar")
+    assert "out of reach" in lock.hopeless(clock_s=rig.clock, points_left=0)
+    assert lock.hopeless(clock_s=rig.clock, points_left=10**6) is None
+    assert lock.hopeless(clock_s=rig.clock, points_left=0, acceptance_bar=0.5 * within) is None
