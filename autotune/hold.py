@@ -1229,13 +1229,12 @@ def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_pe
 #: Rig time a night without a known end counts ahead of its clock for its ceiling (s).
 OPEN_NIGHT_HORIZON_S = 3600.0
 # The checks' share of the budget: what is left after the recoveries expected in the rest of
-# the night and one spare, at most 70 %, never less than a quarter (unless less is left). Recoveries are
+# the night, at most a half, never less than a quarter (unless less is left). Recoveries are
 # expected at the night's own rate so far, starting from one per four hours (a gamma-Poisson
 # estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the night's retunes.
 _RECOVERY_PRIOR_S = 4 * 3600.0
-_CHECK_SHARE = 0.7
+_CHECK_SHARE = 0.5
 _LEAST_CHECK_SHARE = 0.25
-_SPARE_RECOVERIES = 1.0
 
 
 @dataclass(frozen=True)
@@ -1320,15 +1319,14 @@ def checks_share(settings: HoldSettings, budget: BeamBudget, *, recovery_beam_s:
     """The share of beam time the checks may take now, with its numbers.
 
     What is left of the budget after the recoveries expected in the rest of the night (at the
-    night's own rate so far, from one per four hours: ``(recoveries + 1) / (elapsed + 4 h)``)
-    and one more (a night may meet more steps than its mean), each costing
-    ``recovery_beam_s``, spread over the rest of the night; at most 70 % of the budget, at
-    least a quarter of it, and never more than what is left (the ceiling). A share of 0 means
-    no check can be paid for.
+    night's own rate so far, from one per four hours: ``(recoveries + 1) / (elapsed + 4 h)``,
+    each costing ``recovery_beam_s``), spread over the rest of the night; at most half the
+    budget, at least a quarter of it, and never more than what is left (the ceiling). A share
+    of 0 means no check can be paid for.
     """
     ahead = max(budget.ahead_s, 60.0)
     rate = (recoveries + 1.0) / (budget.elapsed_s + _RECOVERY_PRIOR_S)
-    reserve = (rate * ahead + _SPARE_RECOVERIES) * max(recovery_beam_s, 0.0)
+    reserve = rate * ahead * max(recovery_beam_s, 0.0)
     allowance = (budget.left_s - reserve) / ahead
     share = min(max(allowance, _LEAST_CHECK_SHARE * budget.fraction),
                 _CHECK_SHARE * budget.fraction)

@@ -153,8 +153,9 @@ _RECENT = 16
 # The plan is made again after this much rig time (s).
 _REPLAN_S = 3600.0
 # Lock steps a retune is expected to take besides its check and verification (the prior of
-# its cost before the night has measured its own retunes).
-_EXPECTED_RETUNE_STEPS = 3
+# its cost before the night has measured its own retunes): a recovery starts at the peak the
+# checks measured, so one step corrects what is left of that estimate's error.
+_EXPECTED_RETUNE_STEPS = 1
 # Longest single wall-clock wait on a real rig between reads of its clock (s).
 _WALL_POLL_S = 30.0
 # Snapshots: the records that carry the night's whole state.
@@ -220,7 +221,7 @@ def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
                      repetition_rate_hz: float) -> float:
     """Beam a recovery of ``kind`` is expected to take (:func:`autotune.hold.expected_stage_beam_s`)
     from the night's recoveries so far (``spent``) and a prior (a retune: its check,
-    verification and three lock steps; a calibration: its least points and verification)."""
+    verification and one lock step; a calibration: its least points and verification)."""
     size = planned_stage(config, kind)
     per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
         (_EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \

@@ -156,7 +156,7 @@ def test_the_night_plans_from_its_rows_within_the_budget_or_not_at_all():
     budget = BeamBudget.of(settings, elapsed_s=600.0, remaining_s=8 * 3600.0, spent_s=120.0)
     plan, share = plan_night(settings, budget=budget, rows=rows, prior=_prior(), lock=lock,
                              reference=reference, recovery_beam_s=240.0, recoveries=0)
-    assert plan is not None and 0.0 < share["share"] <= 0.7 * settings.budget_fraction
+    assert plan is not None and 0.0 < share["share"] <= 0.5 * settings.budget_fraction
     assert plan.check_share <= share["share"] + 1e-9
     spent = BeamBudget.of(settings, elapsed_s=600.0, remaining_s=8 * 3600.0,
                           spent_s=budget.ceiling_s)
