@@ -440,7 +440,9 @@ class _Ledger:
         return self.check_beam_s + self.stage_beam_s_total - first
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
-        rec = self._journal.append(record_type, **fields)
+        # JSON has no infinity: a stage's non-finite number (a recommendation's predicted value
+        # from too few points) is journaled as null rather than refused mid-night.
+        rec = self._journal.append(record_type, **_clean(fields))
         self._count(rec)
         return rec
 
