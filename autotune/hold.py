@@ -922,8 +922,8 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
                              warning_fraction=fraction, **common)
             if row["check_s"] / row["mean_gap_s"] <= check_share * (1.0 + 1e-9):
                 return row
-            per_phase = min(per_phase - 1, int(math.floor(
-                check_share * row["mean_gap_s"] * rate / (2 * phases))))
+            per_phase = min(per_phase - 1, math.floor(
+                check_share * row["mean_gap_s"] * rate / (2 * phases)))
         return None
 
     best: tuple[float, float, dict[str, Any]] | None = None
@@ -931,7 +931,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
-        if int(math.floor(check_share * interval * rate / (2 * phases))) < least:
+        if math.floor(check_share * interval * rate / (2 * phases)) < least:
             continue
         for fraction in _WARNING_FRACTIONS:
             row = sized(interval, fraction)
