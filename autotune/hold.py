@@ -36,13 +36,20 @@ module, which does no I/O:
   after the interval (variable sampling intervals: M. R. Reynolds Jr., R. W. Amin, J. C. Arnold
   and J. A. Nachlas, Technometrics 30, 181 (1988), from memory), so a step is confirmed within
   a few check durations.
-- **The plan** (:func:`plan_checks`). The interval between checks and their shots are chosen
-  from the measured noise (the phase and inversion variance per shot of the checks so far),
-  the stored slope and the drift filter's state, given the share of beam time the checks may
-  take: the interval that minimises the expected delay to the alarm, averaged over shifts from
-  the design shift to the largest the phase still reads (the capture range; shifts equally
-  likely per decade), among those whose shots per check reach ``min_shots_per_phase`` and whose
-  tracking error between checks stays below a third of the design shift.
+- **The plan** (:func:`plan_checks`, called through :func:`plan_night`). The interval between
+  checks, their shots and the warning level are chosen from the measured noise (the phase and
+  inversion variance per shot of the checks so far), the stored slope and the drift filter's
+  state, given the share of beam time the checks may take: the cadence that minimises the
+  expected time to confirm a thermal step (``step_hz``, 15 kHz by default, docs/physics.md
+  section 6), among those whose shots per check reach the least readable size and whose
+  tracking error between checks stays below a third of the design shift. Many small checks
+  beat a few large ones because a statistic above the warning level brings the next check at
+  once: the step waits about half an interval for its first check, and the checks that
+  confirm it come back to back. The warning level sets how often that first check is enough
+  (:func:`flag_probability`) and how many in-control checks are followed by a recheck
+  (:func:`in_control_rechecks`), both from the Brook-Evans Markov chain of the CUSUM
+  (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
+  share, and the false-alarm design in rig time counts their shorter gaps.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`).
   ``HoldSettings.budget_fraction`` of the night's planned rig time is a ceiling on holding
@@ -61,13 +68,14 @@ decisions from the journal's snapshots.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
 import numpy as np
-from scipy import optimize
+from scipy import optimize, special
 
 from autotune.guided import LockPrior, LockSettings, detuning_offset, phase_signal_note
 from autotune.search import PointResult
@@ -94,6 +102,9 @@ __all__ = [
     "least_check_s",
     "checks_reserve_s",
     "checks_share",
+    "expected_stage_beam_s",
+    "plan_night",
+    "unwatched_until",
     "StageSize",
     "RecoveryChoice",
     "choose_recovery",
@@ -116,11 +127,15 @@ _TWO_PI = 2.0 * math.pi
 _RATE_WALK_HZ_PER_S_PER_SQRT_S = 0.2 / 60.0
 # Shortest interval the planner considers (s) and the number of candidate intervals.
 _MIN_INTERVAL_S = 30.0
-_CANDIDATES = 60
+_CANDIDATES = 40
 # Riccati iterations for the filter's steady state in the planner.
 _RICCATI_STEPS = 400
 # Shifts the planner averages the expected delay over (log-spaced, design to capture range).
 _SHIFTS = 8
+# Cells of the Brook-Evans chains of the planner (the run lengths to about 1 %), and the
+# warning levels it chooses among (fractions of each threshold).
+_CHAIN_CELLS = 40
+_WARNING_FRACTIONS = (0.15, 0.25, 0.35, 0.5)
 # Standard deviations of room a check must leave for the lock to read it (one-sided 0.5 %:
 # scipy.stats.norm.isf(0.005)); a check read as unusable twice raises an alarm.
 _USABLE_Z = 2.576
@@ -655,67 +670,173 @@ class CheckPlan:
 
 def _steady_peak_variance(interval_s: float, variance_hz2: float, lock: DriftLock,
                           max_gain: float) -> tuple[float, float]:
-    """Steady-state (prior, posterior) variance of the peak for checks ``interval_s`` apart."""
-    state = lock
-    prior = posterior = lock.covariance[0][0]
+    """Steady-state (prior, posterior) variance of the peak for checks ``interval_s`` apart.
+
+    The Riccati recursion of :meth:`DriftLock.predict` and :meth:`DriftLock.update` (the gain
+    bounded, the Joseph form) written out for the 2 x 2 covariance.
+    """
+    tau, r = float(interval_s), float(variance_hz2)
+    q = lock.walk_hz_per_sqrt_s**2
+    qr = _RATE_WALK_HZ_PER_S_PER_SQRT_S**2
+    (a, b), (_, c) = lock.covariance
+    prior = posterior = a
     for _ in range(_RICCATI_STEPS):
-        ahead = state.predict(state.clock_s + interval_s)
-        prior = ahead.covariance[0][0]
-        state, _ = ahead.update(ahead.clock_s, ahead.peak_hz, variance_hz2, max_gain=max_gain)
-        if abs(state.covariance[0][0] - posterior) <= 1e-9 * max(posterior, 1.0):
-            posterior = state.covariance[0][0]
+        pa = a + 2.0 * tau * b + tau * tau * c + q * tau + qr * tau**3 / 3.0
+        pb = b + tau * c + qr * tau**2 / 2.0
+        pc = c + qr * tau
+        s = pa + r
+        g0, g1 = pa / s, pb / s
+        if g0 > max_gain:
+            g0, g1 = max_gain, g1 * max_gain / g0
+        a = (1.0 - g0) ** 2 * pa + r * g0 * g0
+        b = (1.0 - g0) * (pb - g1 * pa) + r * g0 * g1
+        c = g1 * g1 * pa - 2.0 * g1 * pb + pc + r * g1 * g1
+        prior = pa
+        if abs(a - posterior) <= 1e-9 * max(posterior, 1.0):
+            posterior = a
             break
-        posterior = state.covariance[0][0]
+        posterior = a
     return prior, posterior
 
 
+def _chain(shift: float, reference: float, threshold: float, cells: int = _CHAIN_CELLS
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """A one-sided CUSUM as a Markov chain (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)).
+
+    The statistic ``S`` on ``[0, h]`` is cut into ``cells`` cells, the first holding 0, of width
+    ``2 h / (2 cells - 1)``; a step ``S' = max(0, S + z - k)`` with ``z ~ N(shift, 1)`` moves
+    between their centres. Returns the centres and the transition matrix among them (its rows
+    sum to less than one by the probability of the alarm, ``S' > h``).
+    """
+    h = max(float(threshold), 1e-6)
+    width = 2.0 * h / (2 * cells - 1)
+    centres = width * np.arange(cells)
+    upper = centres[None, :] + 0.5 * width - centres[:, None] + reference - shift
+    cdf = special.ndtr(upper)
+    moves = np.diff(cdf, axis=1, prepend=0.0)  # the cell of 0 takes every step that ends below
+    return centres, moves
+
+
+@functools.lru_cache(maxsize=4096)
+def _stationary(reference: float, threshold: float, cells: int) -> tuple[np.ndarray, np.ndarray]:
+    """Centres and in-control stationary distribution of the chain of :func:`_chain`, an alarm
+    restarting the chart at 0 (a renewal)."""
+    centres, moves = _chain(0.0, reference, threshold, cells)
+    renewal = moves.copy()
+    renewal[:, 0] += 1.0 - moves.sum(axis=1)
+    # pi (Q - I) = 0 with sum(pi) = 1: one equation replaced by the normalisation.
+    system = (renewal - np.eye(cells)).T
+    system[0, :] = 1.0
+    rhs = np.zeros(cells)
+    rhs[0] = 1.0
+    return centres, np.linalg.solve(system, rhs)
+
+
+def in_control_rechecks(reference: float, threshold: float, warning: float,
+                        cells: int = _CHAIN_CELLS) -> float:
+    """Long-run share of a one-sided chart's in-control checks that leave it at or above the
+    warning level without an alarm (each followed at once by a recheck).
+
+    The stationary distribution of the Brook-Evans chain (:func:`_chain`, an alarm restarting
+    the chart at 0), carried one step on exactly: ``P(w <= S' <= h)`` for the normal step from
+    each cell.
+    """
+    centres, stationary = _stationary(float(reference), float(threshold), int(cells))
+    above = special.ndtr(threshold - centres + reference) - \
+        special.ndtr(warning - centres + reference)
+    return float(np.clip(stationary @ np.maximum(above, 0.0), 0.0, 1.0))
+
+
+def flag_probability(shift: float, reference: float, threshold: float, warning: float,
+                     cells: int = _CHAIN_CELLS) -> float:
+    """Probability that the first check after a shift of ``shift`` standard deviations leaves
+    the chart at or above its warning level (a recheck at once, or the alarm), the chart being
+    in its in-control stationary state before (:func:`in_control_rechecks`' chain; the step
+    itself exact: ``P(S + z - k >= w)``, ``z ~ N(shift, 1)``)."""
+    centres, stationary = _stationary(float(reference), float(threshold), int(cells))
+    flagged = special.ndtr(centres - warning - reference + shift)
+    return float(np.clip(stationary @ flagged, 0.0, 1.0))
+
+
 def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
-           interval_s: float, check_s: float) -> float:
+           interval_s: float, check_s: float, *, late: bool = False,
+           flag: float | None = None) -> float:
     """Expected rig time from a shift of ``shift_sd`` standard deviations to the alarm.
 
-    The shift happens uniformly within an interval; the statistic grows by ``shift - k`` per
-    check on average; checks come an interval apart until it passes the warning level, then
-    back to back (each a check's duration).
+    Checks come an interval apart until one leaves the statistic at or above the warning
+    level, which happens at each with the probability of :func:`flag_probability` (``flag``
+    when known; the step lands uniformly within an interval: half an interval to the first
+    check, a whole one when ``late``); from there checks follow back to back, Siegmund's run
+    length of them (:func:`cusum_arl`) each a check's duration.
     """
-    increment = shift_sd - reference
-    if increment <= 0.0:
+    if shift_sd - reference <= 0.0:
+        return math.inf
+    if flag is None:
+        flag = flag_probability(shift_sd, reference, threshold, warning)
+    if flag <= 1e-9:
         return math.inf
     run_length = max(1.0, cusum_arl(shift_sd, reference, threshold))
-    spaced = max(1.0, math.ceil(warning / increment)) if warning > 0 else 1.0
-    spaced = min(spaced, run_length)
-    return 0.5 * interval_s + (spaced - 1.0) * interval_s + run_length * check_s
+    first = 1.0 if late else 0.5
+    return interval_s * (first + (1.0 - flag) / flag) + run_length * check_s
 
 
 def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase_var: float,
                slope: float, design: float, shifts: np.ndarray, step_hz: float,
                noise: NoiseModel, lock: DriftLock, reference_inversion: float,
-               reference_stderr: float) -> dict[str, Any]:
-    """The numbers of checks of ``per_phase`` shots every ``interval`` s."""
+               reference_stderr: float, warning_fraction: float,
+               steady: dict[tuple[float, int], tuple[float, float]]) -> dict[str, Any]:
+    """The numbers of checks of ``per_phase`` shots every ``interval`` s, warning level
+    ``warning_fraction`` of each threshold (``steady`` caches the filter's steady state)."""
     phases = settings.ramsey_phases
     shots = 2 * phases * per_phase
     check_s = shots / settings.repetition_rate_hz
     detuning_var = phase_var / shots / slope**2
-    p_prior, p_post = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
+    key = (interval, per_phase)
+    if key not in steady:
+        steady[key] = _steady_peak_variance(interval, detuning_var, lock, settings.max_gain)
+    p_prior, p_post = steady[key]
     innovation_sd = math.sqrt(p_prior + detuning_var)
     k = 0.5 * design / innovation_sd
-    checks_between_false_alarms = max(settings.false_alarm_interval_s / interval, 1.0)
-    h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
     inv_sd = math.sqrt(noise.inversion_variance_shots / shots + reference_stderr**2)
     k_inv = 0.5 * settings.inversion_drop * reference_inversion / inv_sd
-    h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
+    # The charts' in-control run lengths are in checks, rechecks included: the mean rig time
+    # per check is the interval, shortened by the share of checks that are rechecks (back to
+    # back). Two passes: the rechecks depend on the thresholds they help set.
+    gap = interval
+    recheck = 0.0
+    for _ in range(2):
+        checks_between_false_alarms = max(settings.false_alarm_interval_s / gap, 1.0)
+        h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
+        h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
+        recheck = min(2.0 * in_control_rechecks(k, h, warning_fraction * h)
+                      + in_control_rechecks(k_inv, h_inv, warning_fraction * h_inv), 0.9)
+        gap = (1.0 - recheck) * interval + recheck * check_s
     rate_sd = lock.rate_stderr_hz_per_s
     tracking = math.sqrt(p_post + settings.walk_hz_per_sqrt_s**2 * interval / 2.0
                          + (rate_sd * interval) ** 2 / 3.0
                          + (lock.rate_hz_per_s * interval) ** 2 / 12.0)
     arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
+    w, w_inv = warning_fraction * h, warning_fraction * h_inv
+    step_sd = step_hz / innovation_sd
+    flag = flag_probability(step_sd, k, h, w) if step_sd > k else 0.0
     return {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
             "detuning_stderr_hz": math.sqrt(detuning_var),
-            "test": SequentialTest(k, h, 0.5 * h, k_inv, h_inv, 0.5 * h_inv),
-            "expected_delay_s": float(np.mean([_delay(x / innovation_sd, k, h, 0.5 * h, interval,
-                                                      check_s) for x in shifts])),
-            "step_delay_s": _delay(step_hz / innovation_sd, k, h, 0.5 * h, interval, check_s),
-            "false_alarm_interval_h": arl * interval / 3600.0, "tracking_error_hz": tracking,
+            "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv),
+            "shifts": shifts, "recheck_share": recheck, "mean_gap_s": gap,
+            "step_delay_s": _delay(step_sd, k, h, w, interval, check_s, flag=flag),
+            "step_delay_late_s": _delay(step_sd, k, h, w, interval, check_s, late=True,
+                                        flag=flag),
+            "step_flag": flag,
+            "false_alarm_interval_h": arl * gap / 3600.0, "tracking_error_hz": tracking,
             "innovation_sd_hz": innovation_sd, "design_snr": design / innovation_sd}
+
+
+def _expected_delay(row: Mapping[str, Any]) -> float:
+    """The mean expected delay over the row's shifts (design shift to capture range)."""
+    t = row["test"]
+    return float(np.mean([_delay(x / row["innovation_sd_hz"], t.reference, t.threshold,
+                                 t.warning, row["interval_s"], row["check_s"])
+                          for x in row["shifts"]]))
 
 
 def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, lock: DriftLock,
@@ -746,19 +867,23 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
 
     Notes
     -----
-    For each candidate interval ``T`` (log-spaced from 30 s to ``max_interval_s``) the checks
-    get ``check_share * T`` of beam time; shots per phase below the least size (the larger of
-    ``min_shots_per_phase`` and what the signal needs to be read) rule the interval out, above
-    ``max_shots_per_phase`` they are capped, and so does a check that cannot tell a step from
-    noise: the design shift below one standard deviation of the innovation (``k < 1/2``). The
-    test's ``k`` is half the design shift in units of the innovation's standard deviation
-    (Page's choice for a known shift), ``h`` gives each of the three one-sided charts an
-    in-control run length of three times ``false_alarm_interval_s / T`` checks (their rates
-    add), and ``w = h / 2``. Among the intervals whose predicted tracking error stays below a
-    third of the design shift, the one with the least expected delay, averaged over 8 shifts
-    log-spaced from the design shift to the capture range, wins (ties to the longer interval).
-    When none qualifies, the checks are made large enough to tell a step from noise and
-    spaced further apart until they fit the share (fewer but larger checks).
+    For each candidate interval ``T`` (log-spaced from 30 s to ``max_interval_s``) and warning
+    level ``w`` (a fraction of each threshold, :data:`_WARNING_FRACTIONS`) the checks get the
+    largest size whose beam, rechecks included, is ``check_share`` of the rig time: a share
+    ``r`` of the checks are rechecks (in control, :func:`in_control_rechecks` of the two phase
+    charts and the inversion chart), so the mean gap between checks is
+    ``(1 - r) T + r check_s`` and a check may take ``check_share`` of it. Shots per phase below
+    the least size (the larger of ``min_shots_per_phase`` and what the signal needs to be read)
+    rule the candidate out, above ``max_shots_per_phase`` they are capped, and so does a check
+    that cannot tell a step from noise: the design shift below one standard deviation of the
+    innovation (``k < 1/2``). The test's ``k`` is half the design shift in units of the
+    innovation's standard deviation (Page's choice for a known shift), ``h`` gives each of the
+    three one-sided charts an in-control run length (Siegmund) of three times
+    ``false_alarm_interval_s`` over the mean gap (their rates add). Among the candidates whose
+    predicted tracking error stays below a third of the design shift, the least expected time
+    to confirm a ``step_hz`` shift wins (:func:`_delay`; ties to the longer interval). When none
+    qualifies, the checks are made large enough to tell a step from noise and spaced further
+    apart until they fit the share (fewer but larger checks).
     """
     if not (0.0 < check_share <= 1.0):
         raise ValueError(f"check_share: expected a number in (0, 1], got {check_share!r}")
@@ -779,30 +904,48 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
         if readable is not None:
             least = max(least, int(math.ceil(readable / (2 * phases))))
     least = min(least, settings.max_shots_per_phase)
+    steady: dict[tuple[float, int], tuple[float, float]] = {}
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
               "step_hz": step_hz, "noise": noise, "lock": lock,
-              "reference_inversion": reference_inversion, "reference_stderr": reference_stderr}
+              "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
+              "steady": steady}
+
+    def sized(interval: float, fraction: float) -> dict[str, Any] | None:
+        """Checks every ``interval`` as large as the share pays for, rechecks included."""
+        per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
+        row = None
+        for _ in range(4):
+            if per_phase < least:
+                return None
+            per_phase = min(per_phase, settings.max_shots_per_phase)
+            row = _check_row(settings, interval=interval, per_phase=per_phase,
+                             warning_fraction=fraction, **common)
+            if row["check_s"] / row["mean_gap_s"] <= check_share * (1.0 + 1e-9):
+                return row
+            per_phase = min(per_phase - 1, math.floor(
+                check_share * row["mean_gap_s"] * rate / (2 * phases)))
+        return None
+
     best: tuple[float, float, dict[str, Any]] | None = None
     fallback: tuple[float, dict[str, Any]] | None = None
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
-        per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
-        if per_phase < least:
+        if math.floor(check_share * interval * rate / (2 * phases)) < least:
             continue
-        per_phase = min(per_phase, settings.max_shots_per_phase)
-        row = _check_row(settings, interval=interval, per_phase=per_phase, **common)
-        if row["design_snr"] < _MIN_DESIGN_SNR:
-            continue
-        tracking = row["tracking_error_hz"]
-        if fallback is None or tracking < fallback[0]:
-            fallback = (tracking, row)
-        if tracking > design / 3.0:
-            continue
-        delay = row["expected_delay_s"]
-        if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6
-                                                      and interval > best[1]):
-            best = (delay, interval, row)
+        for fraction in _WARNING_FRACTIONS:
+            row = sized(interval, fraction)
+            if row is None or row["design_snr"] < _MIN_DESIGN_SNR:
+                continue
+            tracking = row["tracking_error_hz"]
+            if fallback is None or tracking < fallback[0]:
+                fallback = (tracking, row)
+            if tracking > design / 3.0:
+                continue
+            delay = row["step_delay_s"]
+            if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6
+                                                          and interval > best[1]):
+                best = (delay, interval, row)
     inputs = {"phase_variance_shots": phase_var,
               "measured_phase_variance_shots": noise.phase_variance_shots,
               "signal": None if signal is None else signal.to_dict(),
@@ -815,10 +958,10 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
               "floor": settings.floor, "step_hz": step_hz}
     if best is not None:
         row = best[2]
-        why = (f"least mean expected delay to the alarm for shifts from {design / 1e3:.1f} kHz (the "
-               f"detuning error that takes the inversion to {settings.floor:.2f} of the best) to "
-               f"{capture / 1e3:.1f} kHz (the capture range of the phase), among the intervals "
-               f"whose tracking error stays below a third of the former")
+        why = (f"the least expected time to confirm a {step_hz / 1e3:.0f} kHz step, among the "
+               f"cadences and warning levels whose tracking error stays below a third of the "
+               f"{design / 1e3:.1f} kHz design shift (the detuning error that takes the inversion "
+               f"to {settings.floor:.2f} of the best)")
     elif fallback is not None:
         row = fallback[1]
         why = (f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
@@ -831,24 +974,32 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
         per_phase = min(max(least, int(math.ceil(tell / (2 * phases)))),
                         settings.max_shots_per_phase)
         check_s = 2 * phases * per_phase / rate
-        row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase, **common)
+        row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase,
+                         warning_fraction=_WARNING_FRACTIONS[-1], **common)
         why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
                f"of {least} shots per phase that the lock reads and that tells the design shift "
                f"from noise: fewer but larger checks")
     test = row["test"]
-    inputs["innovation_sd_hz"] = row.pop("innovation_sd_hz")
-    inputs["design_snr"] = row.pop("design_snr")
+    row["expected_delay_s"] = _expected_delay(row)
+    for name in ("innovation_sd_hz", "design_snr", "recheck_share", "mean_gap_s",
+                 "step_delay_late_s", "step_flag"):
+        inputs[name] = row[name]
+    share = row["check_s"] / row["mean_gap_s"]
     reason = (f"a check of {row['shots_per_phase']} shots per phase ({row['check_s']:.0f} s of beam, "
               f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak, the design shift "
               f"{inputs['design_snr']:.1f} sd of the innovation) every "
-              f"{row['interval_s'] / 60:.1f} min of rig time ({row['check_s'] / row['interval_s']:.1%} "
-              f"of the beam): {why}; test k {test.reference:.2f}, h {test.threshold:.2f} "
-              f"(false alarms every {row['false_alarm_interval_h']:.0f} h, Siegmund); a "
-              f"{step_hz / 1e3:.0f} kHz step is confirmed {row['step_delay_s'] / 60:.1f} min after "
-              f"it (planned), a shift at the design {row['expected_delay_s'] / 60:.1f} min (mean "
-              f"over those shifts)")
+              f"{row['interval_s'] / 60:.1f} min of rig time, checked again at once above the "
+              f"warning level ({row['recheck_share']:.0%} of the checks in a quiet night; "
+              f"{share:.1%} of the beam in all): {why}; test k {test.reference:.2f}, "
+              f"h {test.threshold:.2f}, w {test.warning:.2f} (false alarms every "
+              f"{row['false_alarm_interval_h']:.0f} h, Siegmund); a {step_hz / 1e3:.0f} kHz step "
+              f"is confirmed {row['step_delay_s'] / 60:.1f} min after it in the mean, "
+              f"{row['step_delay_late_s'] / 60:.1f} min when it comes just after a check (its "
+              f"first check passes the warning level with probability {row['step_flag']:.2f}; "
+              f"Brook-Evans chain), a shift at the design {row['expected_delay_s'] / 60:.1f} min "
+              f"(mean over the shifts to the capture range)")
     return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
-                     check_s=row["check_s"], check_share=row["check_s"] / row["interval_s"],
+                     check_s=row["check_s"], check_share=share,
                      detuning_stderr_hz=row["detuning_stderr_hz"], design_shift_hz=design,
                      test=test, expected_delay_s=row["expected_delay_s"],
                      step_delay_s=row["step_delay_s"],
@@ -1184,6 +1335,49 @@ def checks_share(settings: HoldSettings, budget: BeamBudget, *, recovery_beam_s:
             "reserve_s": reserve, "recoveries_per_h": rate * 3600.0,
             "recovery_beam_s": recovery_beam_s, "holding_beam_s": budget.spent_s,
             "left_s": budget.left_s, "ceiling_s": budget.ceiling_s}
+
+
+def expected_stage_beam_s(prior_s: float, spent: Sequence[float]) -> float:
+    """Beam a recovery of one kind is expected to take (s): the mean of the night's recoveries
+    of that kind so far with the prior counted as one more (a stage that found the condition
+    still good costs less than one that had to recover it, and a night that met only the
+    former would otherwise plan its reserve too small)."""
+    values = [float(prior_s), *[float(x) for x in spent]]
+    return float(np.mean(values))
+
+
+def plan_night(settings: HoldSettings, *, budget: BeamBudget, rows: Sequence[Sequence[float]],
+               prior: LockPrior, lock: DriftLock, reference: Mapping[str, float],
+               recovery_beam_s: float, recoveries: int, step_hz: float = 15e3
+               ) -> tuple[CheckPlan | None, dict[str, float]]:
+    """The night's plan of its checks now: the share the budget gives them
+    (:func:`checks_share`), then their cadence, shots and test (:func:`plan_checks`) from the
+    measurements so far (``rows`` of :func:`noise_row`: the noise and the signal models).
+
+    Returns the plan (None when the budget has no share for a check) and the share's numbers.
+    """
+    share = checks_share(settings, budget, recovery_beam_s=recovery_beam_s,
+                         recoveries=recoveries)
+    if share["share"] <= 0.0:
+        return None, share
+    noise = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in rows])
+    inversion, stderr = reference_value(reference)
+    plan = plan_checks(settings, noise=noise, prior=prior, lock=lock,
+                       reference_inversion=inversion, reference_stderr=stderr,
+                       check_share=share["share"], step_hz=step_hz,
+                       signal=SignalModel.from_rows(rows))
+    return plan, share
+
+
+def unwatched_until(settings: HoldSettings, budget: BeamBudget, *, clock_s: float,
+                    start_clock_s: float) -> float:
+    """Rig clock until which a night that cannot pay for a check holds without checks: the end
+    of a night with one, else when the open night's growing ceiling affords the least check
+    again (at least a minute on)."""
+    if budget.remaining_s is None:
+        return max(start_clock_s + (budget.spent_s + least_check_s(settings)) / budget.fraction
+                   - OPEN_NIGHT_HORIZON_S, clock_s + 60.0)
+    return clock_s + max(budget.remaining_s, 60.0)
 
 
 @dataclass(frozen=True)

@@ -72,7 +72,6 @@ from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import structlog
 
 from autotune.config import RunConfig
@@ -86,25 +85,24 @@ from autotune.fringe import InversionEstimate
 from autotune.guided import LockPrior
 from autotune.guided import detuning_offset
 from autotune.hold import (
-    OPEN_NIGHT_HORIZON_S,
     BeamBudget,
     CheckPlan,
     DriftLock,
     HoldSettings,
     NoiseModel,
     RecoveryChoice,
-    SignalModel,
     StageSize,
     Unheld,
     assess_check,
-    checks_share,
     choose_recovery,
+    expected_stage_beam_s,
     known_cubic,
     noise_row,
-    plan_checks,
+    plan_night,
     recovery_start,
     reference_add,
     reference_value,
+    unwatched_until,
 )
 from autotune.journal import (
     JOURNAL_NAME,
@@ -155,8 +153,9 @@ _RECENT = 16
 # The plan is made again after this much rig time (s).
 _REPLAN_S = 3600.0
 # Lock steps a retune is expected to take besides its check and verification (the prior of
-# its cost before the night has measured its own retunes).
-_EXPECTED_RETUNE_STEPS = 3
+# its cost before the night has measured its own retunes): a recovery starts at the peak the
+# checks measured, so one step corrects what is left of that estimate's error.
+_EXPECTED_RETUNE_STEPS = 1
 # Longest single wall-clock wait on a real rig between reads of its clock (s).
 _WALL_POLL_S = 30.0
 # Snapshots: the records that carry the night's whole state.
@@ -220,16 +219,15 @@ def planned_stage(config: RunConfig, kind: str) -> StageSize:
 
 def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
                      repetition_rate_hz: float) -> float:
-    """Beam a stage of ``kind`` is expected to take: the mean of the night's so far (``spent``),
-    or a prior (a retune: its check, verification and three lock steps; a calibration: its
-    least points and verification)."""
-    if spent:
-        return float(np.mean(spent))
+    """Beam a recovery of ``kind`` is expected to take (:func:`autotune.hold.expected_stage_beam_s`)
+    from the night's recoveries so far (``spent``) and a prior (a retune: its check,
+    verification and one lock step; a calibration: its least points and verification)."""
     size = planned_stage(config, kind)
     per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
         (_EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \
         config.lock.lock_shots_per_phase
-    return 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
+    prior = 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
+    return expected_stage_beam_s(prior, spent)
 
 
 def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
@@ -442,7 +440,9 @@ class _Ledger:
         return self.check_beam_s + self.stage_beam_s_total - first
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
-        rec = self._journal.append(record_type, **fields)
+        # JSON has no infinity: a stage's non-finite number (a recommendation's predicted value
+        # from too few points) is journaled as null rather than refused mid-night.
+        rec = self._journal.append(record_type, **_clean(fields))
         self._count(rec)
         return rec
 
@@ -1005,15 +1005,9 @@ class _Night:
         """No check can be paid for: hold the set-points without checks until the budget allows
         one again (a night without an end) or the night ends."""
         budget = self._budget()
-        check_s = 2 * self.settings.ramsey_phases * self.settings.min_shots_per_phase / \
-            self.settings.repetition_rate_hz
         clock = self.session.clock
-        if budget.remaining_s is None:
-            # An open night's ceiling grows with its rig time.
-            until = max(self.start_clock + (budget.spent_s + check_s) / budget.fraction
-                        - OPEN_NIGHT_HORIZON_S, clock + 60.0)
-        else:
-            until = clock + max(budget.remaining_s, 60.0)
+        until = unwatched_until(self.settings, budget, clock_s=clock,
+                                start_clock_s=self.start_clock)
         self.state = {**self.state, "mode": "unwatched", "resume_clock": until,
                       "to_end": budget.remaining_s is not None,
                       "unheld": Unheld.from_dict(self.state.get("unheld")).begin(clock).to_dict()}
@@ -1072,31 +1066,23 @@ class _Night:
                              spent_s=self.ledger.holding_beam_s)
 
     def _expected_s(self, kind: str) -> float:
+        # The recoveries' own cost: the stage the night began with is not one.
         spent = [beam for index, beam in self.ledger.stage_beam_s.items()
-                 if self.ledger.stage_kind.get(index) == kind]
+                 if index > 0 and self.ledger.stage_kind.get(index) == kind]
         return expected_stage_s(self.config, spent, kind, self.settings.repetition_rate_hz)
-
-    def _checks_share(self) -> dict[str, float]:
-        """The share of beam time the checks may take now (:func:`autotune.hold.checks_share`)."""
-        return checks_share(self.settings, self._budget(),
-                            recovery_beam_s=self._expected_s("retune"),
-                            recoveries=max(self.ledger.stages_begun - 1, 0))
 
     def _replan(self, why: str) -> None:
         state = self.state
-        prior = LockPrior.from_dict(state["prior"])
-        lock = DriftLock.from_dict(state["lock"]).predict(self.session.clock)
-        noise = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in state["noise"]])
-        signal = SignalModel.from_rows(state["noise"])
-        budget = self._checks_share()
-        share = budget["share"]
-        if share <= 0.0:
+        plan, budget = plan_night(
+            self.settings, budget=self._budget(), rows=state["noise"],
+            prior=LockPrior.from_dict(state["prior"]),
+            lock=DriftLock.from_dict(state["lock"]).predict(self.session.clock),
+            reference=state["reference"], recovery_beam_s=self._expected_s("retune"),
+            recoveries=max(self.ledger.stages_begun - 1, 0))
+        if plan is None:
             self._unwatched("the budget has nothing left for a check")
             return
-        plan = plan_checks(self.settings, noise=noise, prior=prior, lock=lock,
-                           reference_inversion=reference_value(state["reference"])[0],
-                           reference_stderr=reference_value(state["reference"])[1],
-                           check_share=share, signal=signal)
+        share = budget["share"]
         point = int(state["point"])
         nxt = state.get("next")
         # After a stage the first check comes one interval later (the stage has just measured);
