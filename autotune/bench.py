@@ -2102,6 +2102,13 @@ def main(argv: Sequence[str] | None = None) -> int:
                              f"{DEFAULT_TIMEOUT_S:g})")
     parser.add_argument("--scenarios", type=int, help="scenarios per family (default by mode)")
     parser.add_argument("--seed", type=int, help="seed of the main scenario draw")
+    parser.add_argument("--calibration-only", action="store_true",
+                        help="sections 1, 2 and 5 alone: calibrations, the oracle floor and "
+                             "retunes, without the optimiser overhead, the long run and the "
+                             "night study")
+    parser.add_argument("--families", metavar="NAMES",
+                        help="comma-separated families of the calibration study (default: "
+                             "every family, " + ",".join(FAMILIES) + ")")
     parser.add_argument("--night-families", metavar="NAMES",
                         help="comma-separated families of the night study (default: every "
                              "family, " + ",".join(FAMILIES) + ")")
@@ -2142,6 +2149,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ValueError as exc:
         parser.error(str(exc))
     plan = dataclasses.replace(plan, timeout_s=ns.timeout_s)
+    if ns.calibration_only and ns.night:
+        parser.error("--calibration-only and --night exclude each other")
+    if ns.calibration_only or ns.families is not None:
+        extra: dict[str, Any] = {}
+        if ns.calibration_only:
+            extra.update(night_steps=0, overhead_points=(), night_study=False)
+        if ns.families is not None:
+            extra["families"] = tuple(name.strip() for name in ns.families.split(",")
+                                      if name.strip())
+        plan = dataclasses.replace(plan, **extra)
+        try:
+            check_plan(plan)
+        except ValueError as exc:
+            parser.error(str(exc))
     if ns.night_families is not None or ns.no_schedules:
         changes: dict[str, Any] = {"night_schedules": not ns.no_schedules}
         if ns.night_families is not None:
