@@ -130,7 +130,7 @@ from autotune.lock_fit import (
 )
 from autotune.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
 from autotune.retune_verdict import inherited_draws, retune_verdict
-from autotune.shortfall import Shortfall, Verdict, _finite_or_none
+from autotune.shortfall import Shortfall, Verdict, finite_or_none
 from autotune.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
 from autotune.search import (
     PURPOSES,
@@ -1650,4 +1650,4 @@ class PhaseLockSearch:
         out["shortfall"] = self.shortfall(clock_s=clock).to_dict()
         prior = self.learned_prior(clock_s=clock)
         out["prior"] = prior.to_dict() if prior is not None else None
-        return {key: (_finite_or_none(value) if isinstance(value, float) else value) for key, value in out.items()}
+        return {key: (finite_or_none(value) if isinstance(value, float) else value) for key, value in out.items()}

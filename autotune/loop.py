@@ -52,6 +52,7 @@ from autotune.rig import FIELDS, Rig
 from autotune.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
 from autotune.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.shortfall import finite_or_none
 from autotune.strategies import make_strategy
 
 __all__ = [
@@ -1221,7 +1222,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         recommendation = strategy.recommend(clock_s=session.clock)
         chosen = {k: float(v) for k, v in recommendation.point.items()}
         session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
-                       setpoints=chosen, predicted=recommendation.value,
+                       setpoints=chosen, predicted=finite_or_none(recommendation.value),
                        drift_rate_hz_per_s=drift_rate)
     if refine and config.search.refine_points and "detuning" in box and \
             measurements.get(("verify", 0)) is None:
@@ -1508,7 +1509,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         chosen = {k: float(v) for k, v in recommendation.point.items()}
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
                        "shift is at its peak value, velocity of the highest inversion",
-                       setpoints=chosen, predicted=recommendation.value)
+                       setpoints=chosen, predicted=finite_or_none(recommendation.value))
         run_step("verify", chosen, verify_shots)
     assert final is not None
     chosen, estimate = final

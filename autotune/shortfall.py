@@ -9,7 +9,8 @@ from typing import Any
 __all__ = ["Shortfall", "Verdict"]
 
 
-def _finite_or_none(value: float) -> float | None:
+def finite_or_none(value: float) -> float | None:
+    """The value as a float, or None where it is not finite (JSON has no infinity or NaN)."""
     return float(value) if math.isfinite(float(value)) else None
 
 
@@ -55,7 +56,7 @@ class Shortfall:
         out: dict[str, Any] = {}
         for f in fields(self):
             value = getattr(self, f.name)
-            out[f.name] = value if isinstance(value, str) else _finite_or_none(value)
+            out[f.name] = value if isinstance(value, str) else finite_or_none(value)
         return out
 
 
@@ -107,5 +108,5 @@ class Verdict:
             elif isinstance(value, dict):
                 out[f.name] = dict(value)
             else:
-                out[f.name] = _finite_or_none(value)
+                out[f.name] = finite_or_none(value)
         return out
