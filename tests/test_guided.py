@@ -252,6 +252,16 @@ def test_velocity_step_stops_at_the_box_edge_and_says_so():
     assert lock.recommend().point["velocity"] == pytest.approx(BOX.highs[0], abs=1.0)
 
 
+def _run_until_hopeless(lock: PhaseLockSearch, rig: Synthetic, points: int) -> None:
+    """Propose and measure up to ``points`` points, stopping once the lock says it is hopeless."""
+    for _ in range(points):
+        if lock.hopeless(clock_s=rig.clock) is not None:
+            return
+        proposal = lock.propose(clock_s=rig.clock)
+        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
+                     purpose=proposal.purpose)
+
+
 def test_an_optimum_beyond_the_box_is_not_vouched_for_and_says_what_to_check():
     """The best velocity (600 m/s) beyond the box (460-560): the search stops at the edge with the
     data pointing outward (hopeless), and the acceptance gate names the box in one line."""
@@ -259,12 +269,7 @@ def test_an_optimum_beyond_the_box_is_not_vouched_for_and_says_what_to_check():
 
     rig = Synthetic(peak_detuning_hz=0.0, velocity_star=600.0, curvature=2.0, seed=12)
     lock = PhaseLockSearch(BOX, seed=0, start=START, settings=SETTINGS)
-    for _ in range(40):
-        if lock.hopeless(clock_s=rig.clock) is not None:
-            break
-        proposal = lock.propose(clock_s=rig.clock)
-        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
-                     purpose=proposal.purpose)
+    _run_until_hopeless(lock, rig, 40)
     assert lock.hopeless(clock_s=rig.clock) is not None and not lock.converged(clock_s=rig.clock)
     point = lock.recommend(clock_s=rig.clock).point
     problems = lock.acceptance_problems(point, clock_s=rig.clock, max_shortfall=0.02)
@@ -667,12 +672,7 @@ def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
     rig = Synthetic(peak_detuning_hz=2e3, velocity_star=V0, seed=7,
                     contrast_ratio=lambda v, d: 0.73 if abs(v - V0) < 10.0 else 0.15)
     lock = PhaseLockSearch(BOX, seed=7, start=START, settings=SETTINGS)
-    for _ in range(20):
-        if lock.hopeless(clock_s=rig.clock) is not None:
-            break
-        proposal = lock.propose(clock_s=rig.clock)
-        lock.observe(proposal.point, rig.measure(proposal.point, proposal.shots_per_phase or 1500),
-                     purpose=proposal.purpose)
+    _run_until_hopeless(lock, rig, 20)
     reason = lock.hopeless(clock_s=rig.clock)
     assert reason is not None and "velocity model cannot be established" in reason
     assert lock.n_told <= 8

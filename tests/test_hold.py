@@ -7,9 +7,10 @@ import math
 
 import numpy as np
 import pytest
+from hold_helpers import hold_settings
 from scipy import linalg, stats
 
-from autotune.guided import LockPrior, LockSettings
+from autotune.guided import LockPrior
 from autotune.hold import (
     CheckPlan,
     DriftLock,
@@ -28,16 +29,6 @@ from autotune.hold import (
 from autotune.search import PointResult
 
 SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
-
-
-def _settings(**changes) -> HoldSettings:
-    base = dict(floor=0.97, budget_fraction=0.05, false_alarm_interval_s=288_000.0, max_gain=0.7,
-                max_correction_hz=5000.0, min_correction_hz=100.0, min_shots_per_phase=100,
-                max_shots_per_phase=100_000, max_interval_s=1800.0, walk_hz_per_sqrt_s=20.0,
-                inversion_drop=0.25, ramsey_phases=6, repetition_rate_hz=150.0,
-                lock=LockSettings())
-    base.update(changes)
-    return HoldSettings(**base)
 
 
 def _prior(**changes) -> LockPrior:
@@ -204,7 +195,7 @@ def _simulate_hold(ramp_hz_per_s: float, checks: int, *, step_at: int | None = N
                    step_hz: float = 0.0, seed: int = 3, settings: HoldSettings | None = None,
                    plan: CheckPlan | None = None, phase_sd: float = 0.27):
     """Hold a synthetic peak ``p(t) = ramp t (+ step)`` with checks of a linear phase curve."""
-    settings = settings or _settings()
+    settings = settings or hold_settings()
     plan = plan or _plan()
     prior = _prior()
     rng = np.random.default_rng(seed)
@@ -234,7 +225,7 @@ def test_the_lock_follows_a_ramp():
 
     Reference: the floor's shift is the detuning error whose phase error alone costs
     1 - cos(eps / 2) = 3 % of the inversion (docs/physics.md section 3's ideal fringes)."""
-    settings = _settings(false_alarm_interval_s=1e9)
+    settings = hold_settings(false_alarm_interval_s=1e9)
     rows = _simulate_hold(2.0, 120, settings=settings)
     assert len(rows) == 120 and all(r["a"].action != "alarm" for r in rows)
     # Held during the interval after each check: compare the set-point with the peak at the
@@ -261,7 +252,7 @@ def test_a_thermal_step_raises_the_alarm_within_two_checks(step_hz):
 def test_an_unusable_check_is_repeated_before_the_alarm():
     """A check out of the capture range asks for a repeat at once; the alarm comes only when
     the repeat is unusable too."""
-    settings, prior, plan = _settings(), _prior(), _plan()
+    settings, prior, plan = hold_settings(), _prior(), _plan()
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 1.0, 20.0)
     far = _check(math.pi + 0.8 * math.pi, 0.1, 600.0)
     common = dict(detuning_hz=0.0, lock=lock, prior=prior, plan=plan, upper=0.0, lower=0.0,
@@ -278,7 +269,7 @@ def test_an_unusable_check_is_repeated_before_the_alarm():
 
 def test_pooled_noise_replaces_a_checks_own_error():
     """With a noise model the check's variance is the pooled variance per shot over its shots."""
-    settings, prior, plan = _settings(), _prior(), _plan()
+    settings, prior, plan = hold_settings(), _prior(), _plan()
     lock = DriftLock.start(0.0, 0.0, 1.0, 0.0, 1.0, 20.0)
     noise = NoiseModel(phase_variance_shots=3600 * 0.2**2, inversion_variance_shots=3600 * 0.05**2,
                        measurements=5)
@@ -319,7 +310,7 @@ def _noise(phase_sd_at_18000: float = 0.082) -> NoiseModel:
 def test_plan_keeps_the_checks_within_their_share_and_their_shots():
     """The chosen checks take at most the share asked, at least min_shots_per_phase, and the
     test's false-alarm interval is Siegmund's for the three one-sided charts together."""
-    settings = _settings()
+    settings = hold_settings()
     lock = DriftLock.start(0.0, 0.0, 1000.0, 1.0, 0.5, 20.0)
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.025)
@@ -343,7 +334,7 @@ def test_plan_keeps_the_checks_within_their_share_and_their_shots():
 def test_a_noisier_rig_gets_more_shots_per_check():
     """Four times the phase variance: each check gets more shots (and a longer interval, the
     share being the same), so one check's error on the peak grows by less than twice."""
-    settings = _settings()
+    settings = hold_settings()
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
     common = dict(prior=_prior(), lock=lock, reference_inversion=0.72, reference_stderr=0.02,
                   check_share=0.025)
@@ -356,7 +347,7 @@ def test_a_noisier_rig_gets_more_shots_per_check():
 def test_a_budget_too_small_for_the_least_shots_stretches_the_interval():
     """When even the longest interval cannot afford min_shots_per_phase, the plan says so and
     keeps the share with fewer but larger checks (the interval stretched)."""
-    settings = _settings(min_shots_per_phase=2000, max_interval_s=600.0)
+    settings = hold_settings(min_shots_per_phase=2000, max_interval_s=600.0)
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.01)

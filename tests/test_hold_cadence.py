@@ -9,13 +9,13 @@ import math
 
 import numpy as np
 import pytest
+from hold_helpers import hold_settings
 from scipy import stats
 
-from autotune.guided import LockPrior, LockSettings
+from autotune.guided import LockPrior
 from autotune.hold import (
     BeamBudget,
     DriftLock,
-    HoldSettings,
     NoiseModel,
     _chain,
     expected_stage_beam_s,
@@ -27,16 +27,6 @@ from autotune.hold import (
 )
 
 SLOPE = 6.4e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
-
-
-def _settings(**changes) -> HoldSettings:
-    base = dict(floor=0.97, budget_fraction=0.05, false_alarm_interval_s=288_000.0, max_gain=0.7,
-                max_correction_hz=5000.0, min_correction_hz=100.0, min_shots_per_phase=100,
-                max_shots_per_phase=100_000, max_interval_s=1800.0, walk_hz_per_sqrt_s=20.0,
-                inversion_drop=0.25, ramsey_phases=6, repetition_rate_hz=150.0,
-                lock=LockSettings())
-    base.update(changes)
-    return HoldSettings(**base)
 
 
 def _prior() -> LockPrior:
@@ -104,7 +94,7 @@ def test_the_first_check_after_a_step_flags_it_as_the_chain_says(shift):
 
 
 def _planned():
-    settings = _settings()
+    settings = hold_settings()
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
     noise = NoiseModel(18000 * 0.10**2, 18000 * 0.03**2, 6)
     return plan_checks(settings, noise=noise, prior=_prior(), lock=lock,
@@ -145,7 +135,7 @@ def test_the_planned_time_to_confirm_a_step_matches_seeded_nights_of_checks():
 def test_the_night_plans_from_its_rows_within_the_budget_or_not_at_all():
     """plan_night (what the shell calls): a plan whose checks take at most the share the budget
     gives them, rechecks included; no plan when nothing is left of the ceiling."""
-    settings = _settings()
+    settings = hold_settings()
     estimate = {"phase_shift_stderr": 0.10 * math.sqrt(18000 / 2000), "inversion_stderr": 0.09,
                 "detected_empty": 200, "detected_one_photon": 200, "contrast_empty": 0.8,
                 "contrast_one_photon": 0.7, "chi2_empty": 3.0, "chi2_one_photon": 3.0,
