@@ -278,6 +278,21 @@ def test_serial_and_scheduler_options_exclude_each_other(capsys):
     assert "--serial" in capsys.readouterr().err
 
 
+@pytest.mark.parametrize(("argv", "named"), [
+    (["--calibration-only", "--night"], "--calibration-only"),
+    (["--families", "main,nosuch"], "'nosuch'"),
+    (["--families", ","], "at least one family"),
+])
+def test_calibration_only_and_families_are_checked_before_anything_runs(capsys, argv, named):
+    """The calibration study's options: a contradiction or an unknown family is a usage error
+    naming what was wrong, exit code 2, before a cluster starts."""
+    # Source: argparse's usage errors exit with status 2 (Python documentation).
+    with pytest.raises(SystemExit) as caught:
+        bench.main(["--tiny", "--serial", *argv])
+    assert caught.value.code == 2
+    assert named in capsys.readouterr().err
+
+
 def test_importing_autotune_pulls_in_neither_dask_nor_the_simulator():
     """`import autotune` and `import autotune.bench` load neither dask nor drivers_sim."""
     # Source: DEVELOPERS.md (autotune never imports drivers_sim except where a study starts it) and
@@ -348,7 +363,7 @@ def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
     assert str(missing) in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("name", ["latest.json", "quick.json", "night.json"])
+@pytest.mark.parametrize("name", ["latest.json", "quick.json", "night.json", "calibration.json"])
 def test_stored_results_still_print(name, capsys):
     """The README's `--show benchmarks/results/latest.json` prints every stored result, old or new."""
     # Source: README, Performance (the command as written there, on the files the repo holds).

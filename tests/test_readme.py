@@ -55,6 +55,9 @@ HOW = {
                                          "minute on a quiet machine)"),
     "python3 -m autotune.bench": ("help", "the study takes minutes on 2 cores"),
     "python3 -m autotune.bench --quick": ("help", "the study takes minutes on 2 cores"),
+    "python3 -m autotune.bench --calibration-only --strategies phase_lock --scenarios 8 "
+    "--out benchmarks/results/calibration.json": ("help", "the calibration study takes about "
+                                                  "30 minutes on 2 cores"),
     "python3 -m autotune.bench --night": ("help", "the night study takes minutes on 2 cores"),
     "python3 -m autotune.bench --night --scenarios 2 --workers 2 --no-schedules "
     "--night-families main": ("help", "the small night study of issue 22, tens of minutes"),
