@@ -440,9 +440,9 @@ class _Ledger:
         return self.check_beam_s + self.stage_beam_s_total - first
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
-        # JSON has no infinity: a stage's non-finite number (a recommendation's predicted value
-        # from too few points) is journaled as null rather than refused mid-night.
-        rec = self._journal.append(record_type, **_clean(fields))
+        # A non-finite number is refused by the journal (a bug upstream, never written silently):
+        # a recommendation's predicted value is made null where it is computed (autotune/loop.py).
+        rec = self._journal.append(record_type, **fields)
         self._count(rec)
         return rec
 
