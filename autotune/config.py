@@ -1,8 +1,12 @@
 """Run configuration: TOML -> frozen dataclasses, checked once at the boundary.
 
-Every value is checked here and nowhere else. A wrong value raises
-:class:`autotune.errors.ConfigError` naming the file, the dotted key, what was expected and what
-was found; unknown keys are refused so that a typo never silently falls back to a default.
+Every value is checked here and nowhere else. Each table's annotations declare its keys' types
+and bounds, checked by :mod:`autotune.schema` (the range a lab could mean, from
+:mod:`autotune.plausible`, in the same pass); the rules joining keys sit in the tables'
+``__post_init__`` and in :func:`_two_pi_velocity_problems`. A wrong value raises
+:class:`autotune.errors.ConfigErrors` naming, for every problem of the file at once, the file,
+the dotted key, what was expected and what was found; unknown keys are refused (with the nearest
+known name) so that a typo never silently falls back to a default.
 
 The file layout (see ``configs/calibrate.toml`` for a commented example)::
 
@@ -23,16 +27,28 @@ The file layout (see ``configs/calibrate.toml`` for a commented example)::
 from __future__ import annotations
 
 import dataclasses
-import difflib
+import functools
 import math
-import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal, get_args
+from typing import Annotated, Any, Literal, get_args
+
+from pydantic import BeforeValidator, Strict
+from pydantic_core import PydanticCustomError
 
 from autotune import plausible
 from autotune.errors import ConfigError, ConfigErrors
+from autotune.schema import (
+    Expect,
+    collect,
+    integer,
+    number,
+    read_toml,
+    refuse,
+    table,
+    text,
+)
 
 __all__ = [
     "BusConfig",
@@ -105,22 +121,52 @@ def nominal_two_pi_velocity(coupling_hz: float, waist_m: float) -> float:
     return 2.0 * math.pi * coupling_hz * waist_m / (2.0 * math.sqrt(math.pi))
 
 
-@dataclass(frozen=True)
+def _choice(kind: Any) -> Any:
+    """One of the strings of a ``Literal``, named as a person types them."""
+    return Annotated[kind, Expect("one of " + ", ".join(get_args(kind)))]
+
+
+def _file_name(value: object) -> object:
+    if not isinstance(value, str) or not value.strip():
+        raise PydanticCustomError("file_name", "a file name")
+    return value
+
+
+#: A file named in the config, relative to the config's folder (resolved by config_from_dict).
+_FILE = Annotated[Path, BeforeValidator(_file_name),
+                  Expect("a non-empty string (a file, relative to the config's folder)")]
+_FLAG = Annotated[bool, Strict(), Expect("true or false")]
+_ENDPOINT = text("a ZeroMQ endpoint such as tcp://127.0.0.1:5560 (or - for none)",
+                 pattern=r"^(-$|tcp://|ipc://|inproc://)")
+_LOCAL_TIME = text('a local time of day "HH:MM" (00:00 to 23:59)',
+                   pattern=r"^([01][0-9]|2[0-3]):[0-5][0-9]$")
+_FRACTION = number(0.0, 1.0, low_open=True)
+_SHOTS_PER_PHASE = integer(1, 100_000_000)
+_SHOTS_WHY = "1e9 shots are 77 days of beam at 150 shots per second: no budget a lab means"
+_RIG_TIME_WHY = "30 days: no budget a lab means"
+_SHOT_BUDGET = integer(1, plausible.MAX_SHOTS, why=_SHOTS_WHY)
+_RIG_TIME = number(0.0, plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY)
+_DETUNING_STEP = number(0.0, low_open=True, plausible=plausible.DETUNING_STEP_HZ)
+_DRIFT = number(0.0, 1e4, low_open=True)
+
+
+@table
 class CurveConfig:
-    """CURVE key files of the client: its own secret key and the rig server's public key."""
+    """``[bus.curve]``: CURVE key files of the client: its own secret key and the rig server's
+    public key (relative to the config's folder in the file, resolved once read)."""
 
-    client_secret_key_file: Path
-    server_public_key_file: Path
+    client_secret_key_file: _FILE
+    server_public_key_file: _FILE
 
 
-@dataclass(frozen=True)
+@table
 class BusConfig:
-    """Where the rig listens and how long to wait for it."""
+    """``[bus]``: where the rig listens and how long to wait for it."""
 
-    endpoint: str
-    timeout_s: float
-    retries: int
-    backoff_s: float
+    endpoint: _ENDPOINT
+    timeout_s: number(0.0, 600.0, low_open=True)
+    retries: integer(0, 100)
+    backoff_s: number(0.0, 60.0)
     curve: CurveConfig | None = None
 
 
@@ -137,44 +183,104 @@ class SetpointConfig:
     max_step: float
 
 
-@dataclass(frozen=True)
+def _setpoint_rules(self: Any) -> None:
+    """The rules joining the keys of one ``[setpoints.NAME]`` table (the first that fails)."""
+    if self.limit_max <= self.limit_min:
+        refuse("limit_max", f"a value > limit_min = {self.limit_min:g}", self.limit_max)
+    for key in ("search_min", "search_max"):
+        value = getattr(self, key)
+        if not self.limit_min <= value <= self.limit_max:
+            refuse(key, f"a value within the limits [{self.limit_min:g}, {self.limit_max:g}]",
+                   value)
+    if self.search_max <= self.search_min:
+        refuse("search_max", f"a value > search_min = {self.search_min:g}", self.search_max)
+
+
+#: The ranges a lab could mean for each set-point of the protocol: (value, step); a set-point
+#: of another name is held to the catch-all of any channel.
+_SETPOINT_RANGES: dict[str, tuple[plausible.Plausible, plausible.Plausible]] = {
+    "velocity": (plausible.VELOCITY_M_PER_S, plausible.VELOCITY_STEP_M_PER_S),
+    "detuning": (plausible.DETUNING_HZ, plausible.DETUNING_STEP_HZ),
+}
+_ANY_SETPOINT = (plausible.CHANNEL_VALUE, plausible.CHANNEL_VALUE)
+#: The set-points every config searches, first and in this order.
+_REQUIRED_SETPOINTS = ("velocity", "detuning")
+
+
+def _made_table(name: str, fields: list[tuple[str, Any]], **namespace: Any) -> type:
+    """A :func:`autotune.schema.table` whose keys are known only once the file is read (the
+    names of its set-points)."""
+    return table(dataclasses.make_dataclass(name, fields, namespace=namespace))
+
+
+@functools.cache
+def _setpoint_table(name: str) -> type:
+    """The ``[setpoints.NAME]`` table: the ranges a lab could mean depend on the set-point."""
+    value, step = _SETPOINT_RANGES.get(name, _ANY_SETPOINT)
+    keys = [("unit", text())] + [(key, number(plausible=value)) for key in
+                                 ("search_min", "search_max", "limit_min", "limit_max")]
+    keys.append(("max_step", number(0.0, low_open=True, plausible=step)))
+    return _made_table(f"Setpoint_{name}", keys, __post_init__=_setpoint_rules)
+
+
+@functools.cache
+def _setpoints_table(names: tuple[str, ...]) -> type:
+    """``[setpoints]``: one table per set-point, velocity and detuning required."""
+    return _made_table("Setpoints", [(name, _setpoint_table(name)) for name in names])
+
+
+@functools.cache
+def _half_widths_table(names: tuple[str, ...]) -> type:
+    """``[retune.half_widths]``: one half width per set-point, in the set-point's unit."""
+    return _made_table("HalfWidths", [
+        (name, number(0.0, low_open=True, plausible=_SETPOINT_RANGES.get(name, _ANY_SETPOINT)[1]))
+        for name in names])
+
+
+@table(kw_only=True)
 class MeasurementConfig:
-    """How one point is measured: a fringe of each field state."""
+    """``[measurement]``: how one point is measured: a fringe of each field state."""
 
-    shots_per_phase: int
-    ramsey_phases: int
-    confidence: float
-    resamples: int
-    verification_shots_per_phase: int
+    shots_per_phase: integer(1, 10_000_000)
+    ramsey_phases: integer(3, 256)
+    confidence: number(0.5, 0.999) = 0.95
+    resamples: integer(100, 100_000) = 2000
+    verification_shots_per_phase: _SHOTS_PER_PHASE
 
 
-@dataclass(frozen=True)
+@table(kw_only=True)
 class SearchConfig:
-    """The search strategy and when it stops."""
+    """``[search]``: the search strategy and when it stops."""
 
-    strategy: StrategyKind
-    seed: int
-    max_points: int
-    max_shots: int
-    max_rig_time_s: float
-    n_initial_points: int
-    min_points: int
-    grid_points_per_dimension: int
-    coordinate_points_per_dimension: int
-    coordinate_rounds: int
-    exploration: float
-    drift_compensation: bool
-    max_drift_hz_per_s: float
-    refine_points: int
-    refine_half_width_hz: float
+    strategy: _choice(StrategyKind) = "phase_lock"
+    seed: integer(0, 2**32 - 1) = 0
+    max_points: integer(1, 10_000)
+    max_shots: _SHOT_BUDGET
+    max_rig_time_s: number(0.0, plausible.MAX_RIG_TIME_S, low_open=True, why=_RIG_TIME_WHY)
+    n_initial_points: integer(1, 1000) = 8
+    min_points: integer(1, 10_000) = 12
+    grid_points_per_dimension: integer(2, 200) = 9
+    coordinate_points_per_dimension: integer(3, 200) = 9
+    coordinate_rounds: integer(1, 50) = 3
+    exploration: number(0.0, 1.0) = 0.01
+    drift_compensation: _FLAG = False
+    max_drift_hz_per_s: _DRIFT = 3.0
+    refine_points: integer(0, 50) = 7
+    refine_half_width_hz: _DETUNING_STEP = 9e3
+
+    def __post_init__(self) -> None:
+        for key in ("min_points", "n_initial_points"):
+            if getattr(self, key) > self.max_points:
+                refuse(key, f"a value <= search.max_points = {self.max_points}",
+                       getattr(self, key))
 
 
-@dataclass(frozen=True)
+@table
 class NominalConfig:
-    """Nominal physics of the apparatus, used only for the first design."""
+    """``[nominal]``: nominal physics of the apparatus, used only for the first design."""
 
-    coupling_hz: float
-    waist_m: float
+    coupling_hz: number(plausible=plausible.COUPLING_HZ)
+    waist_m: number(plausible=plausible.WAIST_M)
 
     @property
     def two_pi_velocity(self) -> float:
@@ -182,21 +288,27 @@ class NominalConfig:
         return nominal_two_pi_velocity(self.coupling_hz, self.waist_m)
 
 
-@dataclass(frozen=True)
+@table(kw_only=True)
 class RetuneConfig:
-    """How a retune decides and how far it looks."""
+    """``[retune]``: how a retune decides and how far it looks (``half_widths``: set-point
+    name to the half width of the retune's box, in its unit)."""
 
-    still_good_fraction: float
-    half_widths: Mapping[str, float]
-    max_points: int
-    max_shots: int
-    n_initial_points: int
-    check_shots_per_phase: int
+    still_good_fraction: _FRACTION
+    half_widths: Mapping[str, Any]
+    max_points: integer(1, 10_000)
+    max_shots: _SHOT_BUDGET
+    n_initial_points: integer(1, 1000) = 4
+    check_shots_per_phase: _SHOTS_PER_PHASE
+
+    def __post_init__(self) -> None:
+        if self.n_initial_points > self.max_points:
+            refuse("n_initial_points", f"a value <= retune.max_points = {self.max_points}",
+                   self.n_initial_points)
 
 
-@dataclass(frozen=True)
+@table
 class LockConfig:
-    """Settings of the phase-lock strategy (``[lock]``), SI units.
+    """Settings of the phase-lock strategy (``[lock]``, every key optional), SI units.
 
     Attributes
     ----------
@@ -213,7 +325,8 @@ class LockConfig:
     min_contrast_ratio : float
         Smallest one-photon contrast, relative to the empty one, where the phase is trusted.
     bracket_step_hz : float
-        First detuning step when the slope is unknown (Hz; default: the nominal coupling / 5).
+        First detuning step when the slope is unknown (Hz; default: the nominal coupling / 5,
+        filled in by :func:`config_from_dict`).
     velocity_step_fraction : float
         Velocity step of the absorption scan, as a fraction of the velocity.
     phase_at_peak_rad, phase_at_peak_prior_rad : float
@@ -224,23 +337,23 @@ class LockConfig:
         Most re-verifications after a verification whose own phase shows a shortfall.
     """
 
-    target_shortfall: float
-    still_good_shortfall: float
-    lock_shots_per_phase: int
-    velocity_shots_per_phase: int
-    capture_phase_error_rad: float
-    min_contrast_ratio: float
-    bracket_step_hz: float
-    velocity_step_fraction: float
-    phase_at_peak_rad: float
-    phase_at_peak_prior_rad: float
-    drift_prior_hz_per_s: float
-    max_corrections: int
+    target_shortfall: number(0.0, 0.5, low_open=True) = 0.01
+    still_good_shortfall: number(0.0, 0.5, low_open=True) = 0.02
+    lock_shots_per_phase: integer(1, 10_000_000) = 500
+    velocity_shots_per_phase: integer(1, 10_000_000) = 500
+    capture_phase_error_rad: number(0.0, math.pi, low_open=True) = 0.6 * math.pi
+    min_contrast_ratio: number(0.0, 1.0) = 0.35
+    bracket_step_hz: _DETUNING_STEP = None
+    velocity_step_fraction: number(0.0, 0.5, low_open=True) = 0.05
+    phase_at_peak_rad: number(0.0, 2 * math.pi) = math.pi
+    phase_at_peak_prior_rad: number(0.0, math.pi, low_open=True) = 0.02 * math.pi
+    drift_prior_hz_per_s: _DRIFT = 3.0
+    max_corrections: integer(0, 20) = 2
 
 
-@dataclass(frozen=True)
+@table
 class TrackConfig:
-    """Holding the 2π condition through the night (``[track]``), SI units.
+    """Holding the 2π condition through the night (``[track]``, every key optional), SI units.
 
     Attributes
     ----------
@@ -277,22 +390,27 @@ class TrackConfig:
         held last (on a signal, only if the rig is already there; otherwise safe).
     """
 
-    budget_fraction: float = 0.05
-    floor: float = 0.97
-    false_alarm_interval_s: float = 288_000.0
-    max_gain: float = 0.7
-    max_correction_hz: float = 5000.0
-    min_correction_hz: float = 100.0
-    min_shots_per_phase: int = 100
-    max_interval_s: float = 1800.0
-    walk_hz_per_sqrt_s: float = 20.0
-    inversion_drop: float = 0.25
-    retune_shots_per_phase: int = 1500
-    max_consecutive_failures: int = 3
-    max_rig_time_s: float = 0.0
-    max_wall_time_s: float = 0.0
-    end_at_local_time: str = ""
-    on_stop: StopAction = "safe"
+    budget_fraction: _FRACTION = 0.05
+    floor: _FRACTION = 0.97
+    false_alarm_interval_s: number(60.0, 1e9) = 288_000.0
+    max_gain: _FRACTION = 0.7
+    max_correction_hz: _DETUNING_STEP = 5000.0
+    min_correction_hz: number(0.0, plausible.DETUNING_STEP_HZ.high) = 100.0
+    min_shots_per_phase: integer(1, 10_000_000) = 100
+    max_interval_s: number(60.0, 86400.0) = 1800.0
+    walk_hz_per_sqrt_s: number(plausible=plausible.RANDOM_WALK_HZ_PER_SQRT_S) = 20.0
+    inversion_drop: _FRACTION = 0.25
+    retune_shots_per_phase: _SHOTS_PER_PHASE = 1500
+    max_consecutive_failures: integer(1, 1000) = 3
+    max_rig_time_s: _RIG_TIME = 0.0
+    max_wall_time_s: _RIG_TIME = 0.0
+    end_at_local_time: _LOCAL_TIME = ""
+    on_stop: _choice(StopAction) = "safe"
+
+    def __post_init__(self) -> None:
+        if self.min_correction_hz >= self.max_correction_hz:
+            refuse("min_correction_hz", f"a value < track.max_correction_hz = "
+                   f"{self.max_correction_hz:g}", self.min_correction_hz)
 
     @property
     def end_at_minutes(self) -> int | None:
@@ -303,15 +421,49 @@ class TrackConfig:
         return int(hours) * 60 + int(minutes)
 
 
-@dataclass(frozen=True)
+@table
 class RecoveryConfig:
-    """Bounded recovery from rig faults."""
+    """``[recovery]`` (optional): bounded recovery from rig faults."""
 
-    step_retries: int
-    retry_wait_s: float
-    interlock_poll_s: float
-    interlock_max_wait_s: float
-    safe_on_stop_s: float = 10.0
+    step_retries: integer(0, 100) = 3
+    retry_wait_s: number(0.0, 3600.0) = 1.0
+    interlock_poll_s: number(0.0, 3600.0, low_open=True) = 5.0
+    interlock_max_wait_s: number(0.0, 86400.0) = 600.0
+    safe_on_stop_s: number(0.0, 600.0, low_open=True) = 10.0
+
+
+@table
+class _Acceptance:
+    """``[acceptance]``: when a stage is accepted and where one that is not leaves the rig."""
+
+    min_inversion: number(-1.0, 1.0)
+    on_reject: _choice(RejectAction) = "safe"
+    max_shortfall: number(0.0, 1.0, low_open=True) = None
+
+
+@table
+class _Calibration:
+    """``[calibration]``: where the last good calibration is kept."""
+
+    store: _FILE
+
+
+@table
+class _RunFile:
+    """The whole file, as written; :func:`config_from_dict` turns it into a :class:`RunConfig`
+    (the set-points' and half widths' tables, named by set-point, are read in a second pass)."""
+
+    bus: BusConfig
+    setpoints: Mapping[str, Any]
+    measurement: MeasurementConfig
+    search: SearchConfig
+    nominal: NominalConfig
+    acceptance: _Acceptance
+    calibration: _Calibration
+    retune: RetuneConfig
+    recovery: RecoveryConfig = RecoveryConfig()
+    lock: LockConfig = LockConfig()
+    track: TrackConfig = TrackConfig()
 
 
 @dataclass(frozen=True)
@@ -345,182 +497,6 @@ class RunConfig:
         raise KeyError(name)
 
 
-class _Table:
-    """A TOML table being read: typed getters that name the key on error, and a leftover check.
-
-    Problems are collected in ``problems`` (shared by every table of one file) instead of
-    raised, so that one reading reports every wrong key at once; a getter whose value is wrong
-    returns a stand-in value so that reading can go on. A table that is missing or not a table
-    is reported once and reads as empty without further reports.
-    """
-
-    def __init__(self, source: str, path: str, data: object, problems: list[ConfigError],
-                 *, absent: bool = False) -> None:
-        self.source = source
-        self.path = path
-        self.problems = problems
-        self.absent = absent or not isinstance(data, Mapping)
-        if not isinstance(data, Mapping) and not absent:
-            problems.append(ConfigError(source, path or "<top>", "a table", data))
-        self.data: Mapping[str, Any] = data if isinstance(data, Mapping) else {}
-        self.used: set[str] = set()
-
-    def _key(self, name: str) -> str:
-        return f"{self.path}.{name}" if self.path else name
-
-    def problem(self, key: str, expected: str, got: object, hint: str = "") -> None:
-        """Record a problem of ``key`` (a dotted key relative to this table)."""
-        if not self.absent:
-            self.problems.append(ConfigError(self.source, self._key(key), expected, got,
-                                             hint=hint))
-
-    def _raw(self, name: str, default: object) -> object:
-        self.used.add(name)
-        if name in self.data:
-            return self.data[name]
-        if default is _REQUIRED:
-            self.problem(name, "a value (key is missing)", None)
-            return _MISSING
-        return default
-
-    def table(self, name: str, *, required: bool = True) -> _Table | None:
-        self.used.add(name)
-        if name not in self.data:
-            if required:
-                self.problem(name, "a table (missing)", None)
-                return _Table(self.source, self._key(name), {}, self.problems, absent=True)
-            return None
-        return _Table(self.source, self._key(name), self.data[name], self.problems,
-                      absent=self.absent)
-
-    def _ranged(self, name: str, value: float, low: float | None, high: float | None,
-                low_open: bool, why: str = "") -> None:
-        if low is not None and (value <= low if low_open else value < low):
-            self.problem(name, f"a value {'>' if low_open else '>='} {low:g}", value)
-        elif high is not None and value > high:
-            self.problem(name, f"a value <= {high:g}" + (f" ({why})" if why else ""), value)
-
-    def number(
-        self,
-        name: str,
-        default: object = None,
-        *,
-        low: float | None = None,
-        high: float | None = None,
-        low_open: bool = False,
-        spec: plausible.Plausible | None = None,
-        why: str = "",
-    ) -> float:
-        """A finite number within ``[low, high]`` and, with ``spec``, within the range a lab
-        could mean for its kind of quantity (refused with a hint at a slipped unit)."""
-        if default is None:
-            default = _REQUIRED
-        value = self._raw(name, default)
-        stand_in = float(low if low is not None else (high if high is not None else 1.0)) + (
-            1.0 if low_open else 0.0)
-        if value is _MISSING:
-            return stand_in
-        if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-            self.problem(name, "a finite number", value)
-            return stand_in
-        typed, value = value, float(value)
-        before = len(self.problems)
-        self._ranged(name, value, low, high, low_open, why)
-        if spec is not None and len(self.problems) == before:
-            found = spec.problem(value)
-            if found is not None:
-                self.problem(name, found[0], typed, found[1])
-        return value
-
-    def integer(self, name: str, default: object = None, *, low: int | None = None,
-                high: int | None = None, why: str = "") -> int:
-        if default is None:
-            default = _REQUIRED
-        value = self._raw(name, default)
-        stand_in = low if low is not None else 1
-        if value is _MISSING:
-            return stand_in
-        if isinstance(value, bool) or not isinstance(value, int):
-            self.problem(name, "an integer", value)
-            return stand_in
-        self._ranged(name, value, low, high, False, why)
-        return value
-
-    def boolean(self, name: str, default: object = None) -> bool:
-        if default is None:
-            default = _REQUIRED
-        value = self._raw(name, default)
-        if value is _MISSING:
-            return False
-        if not isinstance(value, bool):
-            self.problem(name, "true or false", value)
-            return False
-        return value
-
-    def string(self, name: str, default: object = None, *, choices: tuple[str, ...] = ()) -> str:
-        if default is None:
-            default = _REQUIRED
-        value = self._raw(name, default)
-        stand_in = choices[0] if choices else "-"
-        if value is _MISSING:
-            return stand_in
-        if not isinstance(value, str) or not value:
-            self.problem(name, "a non-empty string", value)
-            return stand_in
-        if choices and value not in choices:
-            self.problem(name, f"one of {', '.join(choices)}", value)
-            return stand_in
-        return value
-
-    def finish(self) -> None:
-        for name in sorted(set(self.data) - self.used):
-            near = difflib.get_close_matches(str(name), sorted(self.used), n=1)
-            self.problem(name, "no such key (known: " + ", ".join(sorted(self.used)) + ")",
-                         self.data[name], f"did you mean {near[0]!r}?" if near else "")
-
-
-_REQUIRED = object()
-_MISSING = object()
-
-_SHOTS_WHY = "1e9 shots are 77 days of beam at 150 shots per second: no budget a lab means"
-_RIG_TIME_WHY = "30 days: no budget a lab means"
-
-
-def _check_two_pi_velocity(table: _Table, nominal: NominalConfig,
-                           setpoints: list[SetpointConfig]) -> None:
-    """The nominal 2π velocity must lie in the velocity search box: the search starts there,
-    and a nominal outside it is a unit slipped in ``coupling_hz`` or ``waist_m`` (or a box
-    around another rig). The velocity comes from :func:`nominal_two_pi_velocity`; the refusal
-    names the units that would put it inside. Not checked when either key is not a positive
-    number (already refused) or the velocity box is itself refused."""
-    box = next((sp for sp in setpoints if sp.name == "velocity"), None)
-    typed = [table.data.get(key) for key in ("coupling_hz", "waist_m")]
-    if box is None or table.absent or not all(
-            isinstance(x, int | float) and not isinstance(x, bool) and math.isfinite(x) and x > 0
-            for x in typed) or any(problem.key.startswith("setpoints.velocity.")
-                                   for problem in table.problems):
-        return
-    velocity = nominal.two_pi_velocity
-    if box.search_min <= velocity <= box.search_max:
-        return
-    guesses = []
-    for key, value, spec in (("coupling_hz", nominal.coupling_hz, plausible.COUPLING_HZ),
-                             ("waist_m", nominal.waist_m, plausible.WAIST_M)):
-        for factor, unit in plausible.unit_slips(spec.unit):
-            other = dataclasses.replace(nominal, **{key: value * factor})
-            if box.search_min <= other.two_pi_velocity <= box.search_max:
-                guesses.append(f"{key} = {value:g} {unit} = {value * factor:g} "
-                               f"(giving {other.two_pi_velocity:.1f} m/s)")
-    table.problem(
-        "coupling_hz/waist_m",
-        f"a nominal 2π velocity Ω0 w / (2 √π), Ω0 = 2π coupling_hz, within the velocity search "
-        f"box [{box.search_min:g}, {box.search_max:g}] m/s (setpoints.velocity)",
-        _MetresPerSecond(velocity),
-        f"the 2π velocity of coupling_hz = {nominal.coupling_hz:g} Hz and waist_m = "
-        f"{nominal.waist_m:g} m" + (f"; did you mean {' or '.join(guesses)}?" if guesses else
-                                    "; check both and the box"))
-
-
 class _MetresPerSecond(float):
     """A velocity that shows its unit in a message (``503.7 m/s``)."""
 
@@ -528,37 +504,48 @@ class _MetresPerSecond(float):
         return f"{float(self):.4g} m/s"
 
 
-def _is_local_time(text: str) -> bool:
-    """True for ``"HH:MM"`` with 00 <= HH <= 23 and 00 <= MM <= 59."""
-    parts = text.split(":")
-    if len(parts) != 2 or not all(len(p) == 2 and p.isdigit() for p in parts):
-        return False
-    return int(parts[0]) <= 23 and int(parts[1]) <= 59
+def _positive(value: object) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool) and \
+        math.isfinite(value) and value > 0
 
 
-#: The ranges a lab could mean for each set-point of the protocol: (value, step); a set-point
-#: of another name is held to the catch-all of any channel.
-_SETPOINT_RANGES: dict[str, tuple[plausible.Plausible, plausible.Plausible]] = {
-    "velocity": (plausible.VELOCITY_M_PER_S, plausible.VELOCITY_STEP_M_PER_S),
-    "detuning": (plausible.DETUNING_HZ, plausible.DETUNING_STEP_HZ),
-}
-_ANY_SETPOINT = (plausible.CHANNEL_VALUE, plausible.CHANNEL_VALUE)
+def _two_pi_velocity_problems(source: str, nominal: object, box: Any) -> list[ConfigError]:
+    """The nominal 2π velocity must lie in the velocity search box: the search starts there,
+    and a nominal outside it is a unit slipped in ``coupling_hz`` or ``waist_m`` (or a box
+    around another rig). The velocity comes from :func:`nominal_two_pi_velocity`; the refusal
+    names the units that would put it inside. Checked on the file's own numbers as soon as both
+    are positive (beside their own refusal as implausible) and the velocity box is right
+    (``box``, else None)."""
+    if box is None or not isinstance(nominal, Mapping):
+        return []
+    coupling_hz, waist_m = nominal.get("coupling_hz"), nominal.get("waist_m")
+    if not (_positive(coupling_hz) and _positive(waist_m)):
+        return []
+    velocity = nominal_two_pi_velocity(coupling_hz, waist_m)
+    if box.search_min <= velocity <= box.search_max:
+        return []
+    guesses = []
+    for key, spec in (("coupling_hz", plausible.COUPLING_HZ), ("waist_m", plausible.WAIST_M)):
+        for factor, unit in plausible.unit_slips(spec.unit):
+            values = {"coupling_hz": coupling_hz, "waist_m": waist_m, key: nominal[key] * factor}
+            other = nominal_two_pi_velocity(**values)
+            if box.search_min <= other <= box.search_max:
+                guesses.append(f"{key} = {nominal[key]:g} {unit} = {values[key]:g} "
+                               f"(giving {other:.1f} m/s)")
+    return [ConfigError(
+        source, "nominal.coupling_hz/waist_m",
+        f"a nominal 2π velocity Ω0 w / (2 √π), Ω0 = 2π coupling_hz, within the velocity search "
+        f"box [{box.search_min:g}, {box.search_max:g}] m/s (setpoints.velocity)",
+        _MetresPerSecond(velocity),
+        hint=f"the 2π velocity of coupling_hz = {coupling_hz:g} Hz and waist_m = {waist_m:g} m"
+        + (f"; did you mean {' or '.join(guesses)}?" if guesses else "; check both and the box"))]
 
 
-def _read_setpoint(table: _Table, name: str) -> SetpointConfig:
-    value_range, step_range = _SETPOINT_RANGES.get(name, _ANY_SETPOINT)
-    unit = table.string("unit")
-    limit_min = table.number("limit_min", spec=value_range)
-    limit_max = table.number("limit_max", spec=value_range)
-    if limit_max <= limit_min:
-        table.problem("limit_max", f"a value > limit_min = {limit_min:g}", limit_max)
-    search_min = table.number("search_min", low=limit_min, high=limit_max, spec=value_range)
-    search_max = table.number("search_max", low=limit_min, high=limit_max, spec=value_range)
-    if search_max <= search_min:
-        table.problem("search_max", f"a value > search_min = {search_min:g}", search_max)
-    max_step = table.number("max_step", low=0.0, low_open=True, spec=step_range)
-    table.finish()
-    return SetpointConfig(name, unit, search_min, search_max, limit_min, limit_max, max_step)
+def _setpoint_names(data: Mapping[str, Any]) -> tuple[str, ...]:
+    """The set-points a file names: velocity and detuning (always), then any other, sorted."""
+    table_ = data.get("setpoints")
+    others = sorted(table_) if isinstance(table_, Mapping) else []
+    return _REQUIRED_SETPOINTS + tuple(str(n) for n in others if n not in _REQUIRED_SETPOINTS)
 
 
 def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
@@ -573,230 +560,76 @@ def config_from_dict(data: Mapping[str, Any], source: str = "<memory>",
         Name of the file it came from, for error messages.
     base_dir : Path, optional
         Folder against which relative paths in the file are resolved (the file's folder).
+
+    Raises
+    ------
+    ConfigErrors
+        Every wrong, missing or unknown value of the file at once.
     """
     base = base_dir if base_dir is not None else Path.cwd()
-    problems: list[ConfigError] = []
-    top = _Table(source, "", data, problems)
-
-    bus_t = top.table("bus")
-    endpoint = bus_t.string("endpoint")
-    if endpoint != "-" and not endpoint.startswith(("tcp://", "ipc://", "inproc://")):
-        bus_t.problem("endpoint", "a ZeroMQ endpoint such as tcp://127.0.0.1:5560", endpoint)
-    curve_t = bus_t.table("curve", required=False)
-    curve = None
-    if curve_t is not None:
-        curve = CurveConfig(
-            base / curve_t.string("client_secret_key_file"),
-            base / curve_t.string("server_public_key_file"),
-        )
-        curve_t.finish()
-    bus = BusConfig(
-        endpoint=endpoint,
-        timeout_s=bus_t.number("timeout_s", low=0.0, high=600.0, low_open=True),
-        retries=bus_t.integer("retries", low=0, high=100),
-        backoff_s=bus_t.number("backoff_s", low=0.0, high=60.0),
-        curve=curve,
-    )
-    bus_t.finish()
-
-    sp_t = top.table("setpoints")
-    setpoints = []
-    for name in sorted(sp_t.data, key=lambda n: (n != "velocity", n != "detuning", n)):
-        sub = sp_t.table(name)
-        setpoints.append(_read_setpoint(sub, name))
-    for needed in ("velocity", "detuning"):
-        if needed not in sp_t.data:
-            sp_t.problem(needed, "a table (missing)", None)
-    sp_t.finish()
-
-    m_t = top.table("measurement")
-    measurement = MeasurementConfig(
-        shots_per_phase=m_t.integer("shots_per_phase", low=1, high=10_000_000),
-        ramsey_phases=m_t.integer("ramsey_phases", low=3, high=256),
-        confidence=m_t.number("confidence", 0.95, low=0.5, high=0.999),
-        resamples=m_t.integer("resamples", 2000, low=100, high=100_000),
-        verification_shots_per_phase=m_t.integer("verification_shots_per_phase", low=1,
-                                                 high=100_000_000),
-    )
-    m_t.finish()
-
-    s_t = top.table("search")
-    strategy = s_t.string("strategy", "phase_lock", choices=get_args(StrategyKind))
-    search = SearchConfig(
-        strategy=strategy,  # type: ignore[arg-type]
-        seed=s_t.integer("seed", 0, low=0, high=2**32 - 1),
-        max_points=s_t.integer("max_points", low=1, high=10_000),
-        max_shots=s_t.integer("max_shots", low=1, high=plausible.MAX_SHOTS, why=_SHOTS_WHY),
-        max_rig_time_s=s_t.number("max_rig_time_s", low=0.0, low_open=True,
-                                  high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
-        n_initial_points=s_t.integer("n_initial_points", 8, low=1, high=1000),
-        min_points=s_t.integer("min_points", 12, low=1, high=10_000),
-        grid_points_per_dimension=s_t.integer("grid_points_per_dimension", 9, low=2, high=200),
-        coordinate_points_per_dimension=s_t.integer("coordinate_points_per_dimension", 9, low=3,
-                                                    high=200),
-        coordinate_rounds=s_t.integer("coordinate_rounds", 3, low=1, high=50),
-        exploration=s_t.number("exploration", 0.01, low=0.0, high=1.0),
-        drift_compensation=s_t.boolean("drift_compensation", False),
-        max_drift_hz_per_s=s_t.number("max_drift_hz_per_s", 3.0, low=0.0, high=1e4,
-                                      low_open=True),
-        refine_points=s_t.integer("refine_points", 7, low=0, high=50),
-        refine_half_width_hz=s_t.number("refine_half_width_hz", 9e3, low=0.0, low_open=True,
-                                        spec=plausible.DETUNING_STEP_HZ),
-    )
-    s_t.finish()
-
-    n_t = top.table("nominal")
-    nominal = NominalConfig(
-        coupling_hz=n_t.number("coupling_hz", spec=plausible.COUPLING_HZ),
-        waist_m=n_t.number("waist_m", spec=plausible.WAIST_M),
-    )
-    n_t.finish()
-    _check_two_pi_velocity(n_t, nominal, setpoints)
-
-    a_t = top.table("acceptance")
-    min_inversion = a_t.number("min_inversion", low=-1.0, high=1.0)
-    on_reject = a_t.string("on_reject", "safe", choices=get_args(RejectAction))
-    max_shortfall = a_t.number("max_shortfall", low=0.0, high=1.0, low_open=True) \
-        if "max_shortfall" in a_t.data else None
-    a_t.used.add("max_shortfall")
-    a_t.finish()
-
-    c_t = top.table("calibration")
-    store = base / c_t.string("store")
-    c_t.finish()
-
-    r_t = top.table("retune")
-    hw_t = r_t.table("half_widths")
-    half_widths = {}
-    for sp in setpoints:
-        half_widths[sp.name] = hw_t.number(sp.name, low=0.0, low_open=True,
-                                           spec=_SETPOINT_RANGES.get(sp.name, _ANY_SETPOINT)[1])
-    hw_t.finish()
-    retune = RetuneConfig(
-        still_good_fraction=r_t.number("still_good_fraction", low=0.0, high=1.0, low_open=True),
-        half_widths=half_widths,
-        max_points=r_t.integer("max_points", low=1, high=10_000),
-        max_shots=r_t.integer("max_shots", low=1, high=plausible.MAX_SHOTS, why=_SHOTS_WHY),
-        n_initial_points=r_t.integer("n_initial_points", 4, low=1, high=1000),
-        check_shots_per_phase=r_t.integer("check_shots_per_phase", low=1, high=100_000_000),
-    )
-    r_t.finish()
-
-    rec_t = top.table("recovery", required=False)
-    if rec_t is None:
-        rec_t = _Table(source, "recovery", {}, problems)
-    recovery = RecoveryConfig(
-        step_retries=rec_t.integer("step_retries", 3, low=0, high=100),
-        retry_wait_s=rec_t.number("retry_wait_s", 1.0, low=0.0, high=3600.0),
-        interlock_poll_s=rec_t.number("interlock_poll_s", 5.0, low=0.0, high=3600.0, low_open=True),
-        interlock_max_wait_s=rec_t.number("interlock_max_wait_s", 600.0, low=0.0, high=86400.0),
-        safe_on_stop_s=rec_t.number("safe_on_stop_s", 10.0, low=0.0, high=600.0, low_open=True),
-    )
-    rec_t.finish()
-
-    l_t = top.table("lock", required=False)
-    if l_t is None:
-        l_t = _Table(source, "lock", {}, problems)
-    lock = LockConfig(
-        target_shortfall=l_t.number("target_shortfall", 0.01, low=0.0, high=0.5, low_open=True),
-        still_good_shortfall=l_t.number("still_good_shortfall", 0.02, low=0.0, high=0.5,
-                                        low_open=True),
-        lock_shots_per_phase=l_t.integer("lock_shots_per_phase", 500, low=1, high=10_000_000),
-        velocity_shots_per_phase=l_t.integer("velocity_shots_per_phase", 500, low=1,
-                                             high=10_000_000),
-        capture_phase_error_rad=l_t.number("capture_phase_error_rad", 0.6 * math.pi, low=0.0,
-                                           high=math.pi, low_open=True),
-        min_contrast_ratio=l_t.number("min_contrast_ratio", 0.35, low=0.0, high=1.0),
-        bracket_step_hz=l_t.number("bracket_step_hz", nominal.coupling_hz / 5.0, low=0.0,
-                                   low_open=True, spec=plausible.DETUNING_STEP_HZ),
-        velocity_step_fraction=l_t.number("velocity_step_fraction", 0.05, low=0.0, high=0.5,
-                                          low_open=True),
-        phase_at_peak_rad=l_t.number("phase_at_peak_rad", math.pi, low=0.0, high=2 * math.pi),
-        phase_at_peak_prior_rad=l_t.number("phase_at_peak_prior_rad", 0.02 * math.pi, low=0.0,
-                                           high=math.pi, low_open=True),
-        drift_prior_hz_per_s=l_t.number("drift_prior_hz_per_s", 3.0, low=0.0, high=1e4,
-                                        low_open=True),
-        max_corrections=l_t.integer("max_corrections", 2, low=0, high=20),
-    )
-    l_t.finish()
-
-    t_t = top.table("track", required=False)
-    if t_t is None:
-        t_t = _Table(source, "track", {}, problems)
-    defaults = TrackConfig()
-    end_at = t_t.string("end_at_local_time", "-", choices=())
-    if end_at == "-":
-        end_at = ""
-    elif not _is_local_time(end_at):
-        t_t.problem("end_at_local_time", 'a local time of day "HH:MM" (00:00 to 23:59)', end_at)
-        end_at = ""
-    track = TrackConfig(
-        budget_fraction=t_t.number("budget_fraction", defaults.budget_fraction, low=0.0,
-                                   high=1.0, low_open=True),
-        floor=t_t.number("floor", defaults.floor, low=0.0, high=1.0, low_open=True),
-        false_alarm_interval_s=t_t.number("false_alarm_interval_s",
-                                          defaults.false_alarm_interval_s, low=60.0, high=1e9),
-        max_gain=t_t.number("max_gain", defaults.max_gain, low=0.0, high=1.0, low_open=True),
-        max_correction_hz=t_t.number("max_correction_hz", defaults.max_correction_hz, low=0.0,
-                                     low_open=True, spec=plausible.DETUNING_STEP_HZ),
-        min_correction_hz=t_t.number("min_correction_hz", defaults.min_correction_hz, low=0.0,
-                                     high=plausible.DETUNING_STEP_HZ.high),
-        min_shots_per_phase=t_t.integer("min_shots_per_phase", defaults.min_shots_per_phase,
-                                        low=1, high=10_000_000),
-        max_interval_s=t_t.number("max_interval_s", defaults.max_interval_s, low=60.0,
-                                  high=86400.0),
-        walk_hz_per_sqrt_s=t_t.number("walk_hz_per_sqrt_s", defaults.walk_hz_per_sqrt_s,
-                                      spec=plausible.RANDOM_WALK_HZ_PER_SQRT_S),
-        inversion_drop=t_t.number("inversion_drop", defaults.inversion_drop, low=0.0, high=1.0,
-                                  low_open=True),
-        retune_shots_per_phase=t_t.integer("retune_shots_per_phase",
-                                           defaults.retune_shots_per_phase, low=1,
-                                           high=100_000_000),
-        max_consecutive_failures=t_t.integer("max_consecutive_failures",
-                                             defaults.max_consecutive_failures, low=1, high=1000),
-        max_rig_time_s=t_t.number("max_rig_time_s", defaults.max_rig_time_s, low=0.0,
-                                  high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
-        max_wall_time_s=t_t.number("max_wall_time_s", defaults.max_wall_time_s, low=0.0,
-                                   high=plausible.MAX_RIG_TIME_S, why=_RIG_TIME_WHY),
-        end_at_local_time=end_at,
-        on_stop=t_t.string("on_stop", defaults.on_stop, choices=get_args(StopAction)),  # type: ignore[arg-type]
-    )
-    t_t.finish()
-    top.finish()
-
-    # Relations between keys, checked once every key has been read.
-    if search.min_points > search.max_points:
-        s_t.problem("min_points", f"a value <= search.max_points = {search.max_points}",
-                    search.min_points)
-    if search.n_initial_points > search.max_points:
-        s_t.problem("n_initial_points", f"a value <= search.max_points = {search.max_points}",
-                    search.n_initial_points)
-    if track.min_correction_hz >= track.max_correction_hz:
-        t_t.problem("min_correction_hz", f"a value < track.max_correction_hz = "
-                    f"{track.max_correction_hz:g}", track.min_correction_hz)
-    if retune.n_initial_points > retune.max_points:
-        r_t.problem("n_initial_points", f"a value <= retune.max_points = {retune.max_points}",
-                    retune.n_initial_points)
-    if problems:
+    if not isinstance(data, Mapping):
+        raise ConfigErrors([ConfigError(source, "<top level>", "a table", data)])
+    names = _setpoint_names(data)
+    run, problems = collect(_RunFile, data, file=source)
+    # The set-points' tables are read in a second pass, named by set-point (the first saw a
+    # table of tables), and so are the half widths of a retune's box.
+    tables = data.get("setpoints")
+    setpoints, found = collect(_setpoints_table(names), tables, file=source,
+                               prefix="setpoints") if isinstance(tables, Mapping) else (None, [])
+    retune = data.get("retune")
+    widths = retune.get("half_widths") if isinstance(retune, Mapping) else None
+    half_widths, more = collect(_half_widths_table(names), widths, file=source,
+                                prefix="retune.half_widths") if isinstance(widths, Mapping) \
+        else (None, [])
+    problems += found + more
+    velocity = setpoints.velocity if setpoints is not None else _valid_setpoint(data, source)
+    problems += _two_pi_velocity_problems(source, data.get("nominal"), velocity)
+    if problems or run is None or setpoints is None or half_widths is None:
         raise ConfigErrors(problems)
-
+    lock = run.lock if run.lock.bracket_step_hz is not None else dataclasses.replace(
+        run.lock, bracket_step_hz=run.nominal.coupling_hz / 5.0)
+    curve = run.bus.curve
+    bus = run.bus if curve is None else dataclasses.replace(run.bus, curve=CurveConfig(
+        base / curve.client_secret_key_file, base / curve.server_public_key_file))
     return RunConfig(
         source=source,
         bus=bus,
-        setpoints=tuple(setpoints),
-        measurement=measurement,
-        search=search,
-        nominal=nominal,
-        min_inversion=min_inversion,
-        calibration_store=store,
-        retune=retune,
-        recovery=recovery,
+        setpoints=tuple(SetpointConfig(name, **dataclasses.asdict(getattr(setpoints, name)))
+                        for name in names),
+        measurement=run.measurement,
+        search=run.search,
+        nominal=run.nominal,
+        min_inversion=run.acceptance.min_inversion,
+        calibration_store=base / run.calibration.store,
+        retune=dataclasses.replace(run.retune, half_widths=dataclasses.asdict(half_widths)),
+        recovery=run.recovery,
         lock=lock,
-        track=track,
-        on_reject=on_reject,  # type: ignore[arg-type]
-        max_shortfall=max_shortfall,
+        track=run.track,
+        on_reject=run.acceptance.on_reject,
+        max_shortfall=run.acceptance.max_shortfall,
         raw=dict(data),
     )
+
+
+def _valid_setpoint(data: Mapping[str, Any], source: str) -> Any:
+    """The velocity's table when it alone is right (another set-point's table is wrong)."""
+    table_ = data.get("setpoints")
+    if not isinstance(table_, Mapping):
+        return None
+    return collect(_setpoint_table("velocity"), table_.get("velocity"), file=source)[0]
+
+
+def file_keys(setpoint_names: tuple[str, ...] = _REQUIRED_SETPOINTS) -> set[tuple[str, str]]:
+    """(table, key) of every key a run config may hold, for the README's list of keys."""
+    tables: dict[str, type] = {
+        "bus": BusConfig, "bus.curve": CurveConfig, "measurement": MeasurementConfig,
+        "search": SearchConfig, "nominal": NominalConfig, "acceptance": _Acceptance,
+        "calibration": _Calibration, "retune": RetuneConfig,
+        "retune.half_widths": _half_widths_table(setpoint_names), "recovery": RecoveryConfig,
+        "lock": LockConfig, "track": TrackConfig}
+    tables |= {f"setpoints.{name}": _setpoint_table(name) for name in setpoint_names}
+    return {(path, item.name) for path, cls in tables.items()
+            for item in dataclasses.fields(cls) if f"{path}.{item.name}" not in tables}
 
 
 def load_config(path: str | Path) -> RunConfig:
@@ -809,17 +642,5 @@ def load_config(path: str | Path) -> RunConfig:
         (every problem of the file at once).
     """
     path = Path(path)
-    try:
-        with path.open("rb") as handle:
-            data = tomllib.load(handle)
-    except FileNotFoundError as exc:
-        raise ConfigError(str(path), "<file>", "an existing TOML file", "no such file") from exc
-    except OSError as exc:
-        raise ConfigError(str(path), "<file>", "a readable file", str(exc)) from exc
-    except UnicodeDecodeError as exc:
-        raise ConfigError(str(path), "<file>", "a TOML file (UTF-8 text)",
-                          f"bytes that are not UTF-8 text ({exc.reason} at byte {exc.start})"
-                          ) from exc
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(str(path), "<file>", "valid TOML", str(exc)) from exc
+    data = read_toml(path, error=ConfigErrors)
     return config_from_dict(data, source=str(path), base_dir=path.parent)

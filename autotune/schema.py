@@ -39,8 +39,8 @@ from pydantic_core import PydanticCustomError
 from autotune.errors import ConfigError, FileErrors
 from autotune.plausible import Plausible
 
-__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "problem",
-           "read_toml"]
+__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "collect",
+           "problem", "read_toml"]
 
 T = TypeVar("T")
 
@@ -89,21 +89,24 @@ def _plausible(spec: Plausible) -> AfterValidator:
 
 def number(low: float | None = None, high: float | None = None, *, low_open: bool = False,
            high_open: bool = False, plausible: Plausible | None = None,
-           expected: str = "") -> Any:
+           expected: str = "", why: str = "") -> Any:
     """A finite number (an integer is taken as a float) within ``[low, high]`` (ends open where
     said), and within the plausible range when one is given. ``expected`` replaces the words
-    ``a finite number >= low and <= high``."""
-    words = expected or "a finite number" + _bounds(low, high, low_open, high_open)
+    ``a finite number >= low and <= high``; ``why`` says where the bounds come from."""
+    words = expected or "a finite number" + _bounds(low, high, low_open, high_open) + \
+        (f" ({why})" if why else "")
     extra = (_plausible(plausible),) if plausible is not None else ()
     return Annotated[float, Strict(), Field(allow_inf_nan=False,
                                             **_limits(low, high, low_open, high_open)),
                      *extra, Expect(words)]
 
 
-def integer(low: int | None = None, high: int | None = None) -> Any:
-    """An integer (not a bool, not a float) within ``[low, high]``."""
+def integer(low: int | None = None, high: int | None = None, *, why: str = "") -> Any:
+    """An integer (not a bool, not a float) within ``[low, high]``; ``why`` says where the
+    bounds come from."""
     return Annotated[int, Strict(), Field(**_limits(low, high, False, False)),
-                     Expect("an integer" + _bounds(low, high, False, False))]
+                     Expect("an integer" + _bounds(low, high, False, False)
+                            + (f" ({why})" if why else ""))]
 
 
 def _not_blank(value: str) -> str:
@@ -273,16 +276,24 @@ def check(cls: type[T], data: Any, *, file: str, prefix: str = "",
     Exception
         ``error(problems)``, with every problem of the table at once.
     """
-    if not isinstance(data, Mapping):
-        raise error([ConfigError(file, prefix or "<top level>", "a table", data)])
-    try:
-        value = _adapter(cls).validate_python(dict(data))
-    except ValidationError as exc:
-        raise error(_problems(cls, exc, file, prefix)) from None
-    found = rules(value) if rules is not None else []
+    value, found = collect(cls, data, file=file, prefix=prefix)
+    if not found and rules is not None:
+        found = rules(value)
     if found:
         raise error(found)
     return value
+
+
+def collect(cls: type[T], data: Any, *, file: str, prefix: str = ""
+            ) -> tuple[T | None, list[ConfigError]]:
+    """Validate ``data`` against ``cls`` as :func:`check` does, without raising: the value (None
+    when a problem was found) and every problem, for a file read in several passes."""
+    if not isinstance(data, Mapping):
+        return None, [ConfigError(file, prefix or "<top level>", "a table", data)]
+    try:
+        return _adapter(cls).validate_python(dict(data)), []
+    except ValidationError as exc:
+        return None, _problems(cls, exc, file, prefix)
 
 
 def read_toml(path: str | Path, *, error: Callable[[list[ConfigError]], Exception] = FileErrors,

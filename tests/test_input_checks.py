@@ -117,10 +117,11 @@ def test_absurd_budgets_are_refused_naming_key_bound_and_why(tmp_path, rig):
     before = _state(rig.endpoint)
     done = autotune("calibrate", "--config", str(config), "--out", str(tmp_path / "run"))
     _refused(done, "2 problems",
-             f"{config}: search.max_shots: expected a value <= 1e+09 (1e9 shots are 77 days of "
-             "beam at 150 shots per second: no budget a lab means), got "
+             f"{config}: search.max_shots: expected an integer >= 1 and <= 1000000000 (1e9 shots "
+             "are 77 days of beam at 150 shots per second: no budget a lab means), got "
              "99999999999999999999999999",
-             f"{config}: search.max_rig_time_s: expected a value <= 2.592e+06 (30 days")
+             f"{config}: search.max_rig_time_s: expected a finite number > 0 and <= 2.592e+06 "
+             "(30 days")
     assert not (tmp_path / "run").exists()
     assert _state(rig.endpoint) == before
 

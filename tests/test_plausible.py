@@ -147,8 +147,8 @@ def test_the_two_pi_velocity_must_lie_in_the_search_box(coupling_hz, waist_m, in
 
 
 @pytest.mark.parametrize(("section", "key", "value", "bound"), [
-    ("search", "max_shots", 99999999999999999999999999, "<= 1e+09 (1e9 shots are 77 days"),
-    ("retune", "max_shots", 10**10, "<= 1e+09"),
+    ("search", "max_shots", 99999999999999999999999999, "<= 1000000000 (1e9 shots are 77 days"),
+    ("retune", "max_shots", 10**10, "<= 1000000000"),
     ("search", "max_rig_time_s", 1e12, "<= 2.592e+06 (30 days"),
     ("track", "max_wall_time_s", 1e9, "<= 2.592e+06 (30 days"),
     ("lock", "bracket_step_hz", 1e308, "at most 1e+08 Hz"),
