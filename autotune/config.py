@@ -2,8 +2,9 @@
 
 Every value is checked here and nowhere else. Each table's annotations declare its keys' types
 and bounds, checked by :mod:`autotune.schema` (the range a lab could mean, from
-:mod:`autotune.plausible`, in the same pass); the rules joining keys sit in the tables'
-``__post_init__`` and in :func:`_two_pi_velocity_problems`. A wrong value raises
+:mod:`autotune.plausible`, in the same pass); the rules joining keys sit in the tables (a
+``model_validator``, which ``dataclasses.replace`` does not run: studies shrink budgets that
+way) and in :func:`_two_pi_velocity_problems`. A wrong value raises
 :class:`autotune.errors.ConfigErrors` naming, for every problem of the file at once, the file,
 the dotted key, what was expected and what was found; unknown keys are refused (with the nearest
 known name) so that a typo never silently falls back to a default.
@@ -34,7 +35,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated, Any, Literal, get_args
 
-from pydantic import BeforeValidator, Strict
+from pydantic import BeforeValidator, Strict, model_validator
 from pydantic_core import PydanticCustomError
 
 from autotune import plausible
@@ -268,11 +269,13 @@ class SearchConfig:
     refine_points: integer(0, 50) = 7
     refine_half_width_hz: _DETUNING_STEP = 9e3
 
-    def __post_init__(self) -> None:
+    @model_validator(mode="after")
+    def _related(self) -> SearchConfig:
         for key in ("min_points", "n_initial_points"):
             if getattr(self, key) > self.max_points:
                 refuse(key, f"a value <= search.max_points = {self.max_points}",
                        getattr(self, key))
+        return self
 
 
 @table
@@ -300,10 +303,12 @@ class RetuneConfig:
     n_initial_points: integer(1, 1000) = 4
     check_shots_per_phase: _SHOTS_PER_PHASE
 
-    def __post_init__(self) -> None:
+    @model_validator(mode="after")
+    def _related(self) -> RetuneConfig:
         if self.n_initial_points > self.max_points:
             refuse("n_initial_points", f"a value <= retune.max_points = {self.max_points}",
                    self.n_initial_points)
+        return self
 
 
 @table
@@ -407,10 +412,12 @@ class TrackConfig:
     end_at_local_time: _LOCAL_TIME = ""
     on_stop: _choice(StopAction) = "safe"
 
-    def __post_init__(self) -> None:
+    @model_validator(mode="after")
+    def _related(self) -> TrackConfig:
         if self.min_correction_hz >= self.max_correction_hz:
             refuse("min_correction_hz", f"a value < track.max_correction_hz = "
                    f"{self.max_correction_hz:g}", self.min_correction_hz)
+        return self
 
     @property
     def end_at_minutes(self) -> int | None:

@@ -13,7 +13,8 @@ or infinity), refusing unknown keys; :func:`check` turns every problem found int
 
 A physical number is also held to the range a lab could mean (``number(..., plausible=...)``,
 :mod:`autotune.plausible`) in the same pass. The rules a schema cannot state sit beside it: a
-rule of one table in its ``__post_init__`` (:func:`refuse`, reported with the other problems),
+rule of one table in its ``__post_init__`` or, where ``dataclasses.replace`` must not run it, a
+pydantic ``model_validator(mode="after")`` (:func:`refuse`, reported with the other problems),
 a rule joining tables in ``check(..., rules=...)``, run once every key is right.
 
 The dataclasses stay plain ``dataclasses`` (``replace`` does not re-check, ``asdict`` and
@@ -244,7 +245,7 @@ def _problems(cls: type, error: ValidationError, file: str, prefix: str) -> list
             found.append(ConfigError(file, key, _words(bare, metadata), got))
         elif kind == _WORDED:
             # A rule of a table (its __post_init__) names the key it is about.
-            where = f"{key}.{ctx['key']}" if ctx.get("key") else key
+            where = _dotted(prefix, [*loc, ctx["key"]]) if ctx.get("key") else key
             found.append(ConfigError(file, where, ctx["expected"], ctx.get("got", item["input"]),
                                      hint=ctx.get("hint", "")))
         else:
