@@ -97,6 +97,7 @@ from autotune.config import (
 )
 from autotune.loop import build_strategy, search_space
 from autotune.progress import format_duration
+from autotune.rig import measurement_shots
 
 __all__ = [
     "THRESHOLD",
@@ -441,7 +442,7 @@ def _base_config(plan: StudyPlan, config_path: Path) -> RunConfig:
 
 
 def _per_point_shots(config: RunConfig) -> int:
-    return 2 * config.measurement.ramsey_phases * config.measurement.shots_per_phase
+    return measurement_shots(config.measurement.ramsey_phases, config.measurement.shots_per_phase)
 
 
 def strategy_configs(base: RunConfig, plan: StudyPlan) -> dict[str, RunConfig]:

@@ -94,7 +94,8 @@ __all__ = [
 #: Detected states of an acquisition's ``counts`` (upper, lower and reference level).
 COUNT_STATES: tuple[str, str, str] = ("e", "g", "i")
 
-#: Field states ``acquire`` prepares in the cavity.
+#: Field states ``acquire`` prepares in the cavity (the one definition: the loop, the report
+#: and the simulated rig take it from here).
 FIELDS: tuple[str, str] = ("empty", "one_photon")
 
 #: Methods a simulated rig's driver may add; each is served as the protocol op of its name.

@@ -48,7 +48,7 @@ from autotune.errors import (
 from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
-from autotune.rig import FIELDS, Rig
+from autotune.rig import FIELDS, Rig, measurement_shots
 from autotune.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
 from autotune.search import Dimension, PointResult, SearchSpace, Strategy
@@ -563,7 +563,7 @@ class Session:
         plan = self._plan
         if self.progress is None or plan is None:
             return
-        per_measurement = 2 * len(self.phases)
+        per_measurement = measurement_shots(len(self.phases), 1)
         planned = per_measurement * m.shots_per_phase if m is not None else 0
         taken = min(len(m.counts) * m.shots_per_phase, planned) if m is not None else 0
         best = plan.best
@@ -1109,7 +1109,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     shots = config.measurement.shots_per_phase
     long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
     wanted_shots = {"check": long_shots, "verify": long_shots}
-    per_measurement = 2 * len(session.phases)
+    per_measurement = measurement_shots(len(session.phases), 1)
     session.plan_progress(stage, budget, step_shots=per_measurement * shots,
                           verify_shots=per_measurement * long_shots,
                           refine_points=config.search.refine_points
@@ -1175,7 +1175,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]),
                       clock_s=rec.get("clock_s"))
     n_points = len(told)
-    per_point = 2 * len(session.phases) * shots
+    per_point = measurement_shots(len(session.phases), shots)
     per_point_time = per_point / session.repetition_rate_hz
     stopped = replayed.decisions.get("stop_search")
     stop_reason = str(stopped["reason"]) if stopped is not None else ""
@@ -1368,11 +1368,11 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                               lock.settings.step_shots_range[1]
                               * max(config.lock.lock_shots_per_phase,
                                     config.lock.velocity_shots_per_phase)),
-                          verify_shots=2 * phases * verify_shots, measured=_measured(replayed))
+                          verify_shots=measurement_shots(phases, verify_shots), measured=_measured(replayed))
 
     def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
         estimate = InversionEstimate.from_dict(rec["estimate"])
-        shots = rec.get("shots") or (2 * phases * m.shots_per_phase if m is not None else 1)
+        shots = rec.get("shots") or (measurement_shots(phases, m.shots_per_phase) if m is not None else 1)
         return PointResult.from_estimate(estimate, clock_s=rec.get("clock_s"), shots=int(shots))
 
     steps = 0
@@ -1408,7 +1408,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                                    setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
         estimate = session.measure(m, child_seed(seed, stage_code, 5, steps))
         result = PointResult.from_estimate(estimate, clock_s=m.clock_s,
-                                           shots=2 * phases * m.shots_per_phase)
+                                           shots=measurement_shots(phases, m.shots_per_phase))
         lock.observe(m.setpoints, result, purpose=label)
         steps += 1
         if label in ("verify", "correct"):
@@ -1493,7 +1493,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                 proposal = lock.propose(clock_s=now)
                 shots = proposal.shots_per_phase or default_shots.get(
                     proposal.purpose, config.measurement.shots_per_phase)
-                if session.tally.shots + 2 * phases * shots > budget.max_shots:
+                if session.tally.shots + measurement_shots(phases, shots) > budget.max_shots:
                     stop_reason = (f"shot budget {budget.max_shots} would be exceeded by the "
                                    f"next step; {bound}")
                 else:
@@ -1504,7 +1504,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                     continue
             session.decide("stop_search", stop_reason, points=searched,
                            shortfall=shortfall.to_dict(), learned=lock.state(clock_s=now))
-        verify_duration = 2 * phases * verify_shots / session.repetition_rate_hz
+        verify_duration = measurement_shots(phases, verify_shots) / session.repetition_rate_hz
         recommendation = lock.recommend(clock_s=now + 0.5 * verify_duration)
         chosen = {k: float(v) for k, v in recommendation.point.items()}
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
@@ -1581,7 +1581,7 @@ def _search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sess
         return None
     proposal = lock.propose(clock_s=session.clock)
     shots = proposal.shots_per_phase or config.measurement.shots_per_phase
-    if session.tally.shots + 2 * phases * shots > budget.max_shots:
+    if session.tally.shots + measurement_shots(phases, shots) > budget.max_shots:
         return None
     return (f"the verified choice's {_bound_text(short)} misses the acceptance bar {bar:.1%}; "
             f"the budget has room ({searched} of {budget.max_points} points): searching on")

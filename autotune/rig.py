@@ -15,10 +15,16 @@ from typing import TYPE_CHECKING, Protocol, runtime_checkable
 if TYPE_CHECKING:
     from autotune.protocol import Acquisition, Applied, Description, Status
 
-__all__ = ["Rig", "FIELDS"]
+from autotune.driver import FIELDS
 
-#: The two field states, in the order the loop interleaves them at each Ramsey phase.
-FIELDS: tuple[str, str] = ("empty", "one_photon")
+__all__ = ["Rig", "FIELDS", "measurement_shots"]
+
+
+def measurement_shots(phases: int, shots_per_phase: int) -> int:
+    """Shots of one measurement: every field state (:data:`FIELDS`, in the order the loop
+    interleaves them) at each of ``phases`` Ramsey phases, ``shots_per_phase`` each (the one
+    place that says a measurement costs ``2 * phases * shots_per_phase``)."""
+    return len(FIELDS) * phases * shots_per_phase
 
 
 @runtime_checkable

@@ -73,7 +73,7 @@ from autotune.loop import (
     run_stage,
 )
 from autotune.progress import ProgressObserver
-from autotune.rig import Rig
+from autotune.rig import Rig, measurement_shots
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
@@ -355,7 +355,7 @@ def preflight(command: str, config: RunConfig, description: Any, *, store: Path,
             if value > most:
                 problems.append(ConfigError(source, key, f"at most the rig's "
                                             f"max_shots_per_acquisition = {most}", value))
-    per_point = 2 * config.measurement.ramsey_phases * config.measurement.shots_per_phase
+    per_point = measurement_shots(config.measurement.ramsey_phases, config.measurement.shots_per_phase)
     budget_key, budget = (("retune.max_shots", config.retune.max_shots) if command == "retune"
                           else ("search.max_shots", config.search.max_shots))
     if per_point > budget:
@@ -405,19 +405,19 @@ def track_preflight(config: RunConfig, description: Any, *, store: Path,
     for key, budget, per_phase in (
             ("search.max_shots", config.search.max_shots, config.lock.lock_shots_per_phase),
             ("retune.max_shots", config.retune.max_shots, config.lock.lock_shots_per_phase)):
-        if 2 * phases * per_phase > budget:
+        if measurement_shots(phases, per_phase) > budget:
             problems.append(ConfigError(source, key, f"room for one lock step of "
-                                        f"{2 * phases * per_phase} shots (2 fields x {phases} "
+                                        f"{measurement_shots(phases, per_phase)} shots (2 fields x {phases} "
                                         f"phases x lock.lock_shots_per_phase {per_phase})", budget))
     rate = float(description.repetition_rate_hz)
-    least_check_s = 2 * phases * track.min_shots_per_phase / rate
+    least_check_s = measurement_shots(phases, track.min_shots_per_phase) / rate
     affordable = 0.5 * track.budget_fraction * track.max_interval_s
     if least_check_s > affordable:
         problems.append(ConfigError(
             source, "track.min_shots_per_phase",
             f"checks that fit half of track.budget_fraction ({track.budget_fraction:g}) at "
             f"track.max_interval_s ({track.max_interval_s:g} s): at most "
-            f"{int(affordable * rate / (2 * phases))} shots per phase at {rate:g} shots/s",
+            f"{int(affordable * rate / measurement_shots(phases, 1))} shots per phase at {rate:g} shots/s",
             track.min_shots_per_phase))
     if not resume:  # a resume keeps the box and the lock's step it started with
         problems += _box_problems(config)

@@ -34,6 +34,8 @@ import numpy as np
 import scipy.constants
 import scipy.special
 
+from autotune.driver import FIELDS
+
 __all__ = [
     "OUTCOMES",
     "FIELDS",
@@ -66,7 +68,6 @@ __all__ = [
 ]
 
 OUTCOMES: tuple[str, str, str] = ("e", "g", "i")
-FIELDS: tuple[str, str] = ("empty", "one_photon")
 
 #: Crossing steps over the window; each step is two exact SU(2) exponentials. 256 steps keep
 #: the amplitudes within 4e-7 of a converged solution over 250..900 m/s, |delta|/2pi <= 300 kHz,

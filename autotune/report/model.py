@@ -22,6 +22,7 @@ from autotune.errors import JournalError
 from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
                               read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
+from autotune.rig import FIELDS
 
 FIGURE_NAME = "report.png"
 """Overview sheet: the figures of a single run, or the timeline and the latest run's figures."""
@@ -35,7 +36,7 @@ SEARCH_LABELS = ("point", "search", "lock", "velocity", "relock", "bracket")
 """Measurement labels of search steps (the Gaussian-process and hand strategies' ``point``, the
 phase lock's steps); checks, scans, verifications and corrections are not search steps."""
 
-_FIELDS = ("empty", "one_photon")
+_FIELDS = FIELDS
 _FIELD_NAMES = {"empty": "empty field", "one_photon": "one photon"}
 _RUNNING = "running or killed"
 _DAMAGED = "journal damaged"
