@@ -36,7 +36,13 @@ from dataclasses import dataclass
 from typing import Annotated, Any, ClassVar, Literal
 
 from autotune import plausible
-from autotune.errors import ConfigError, ConfigErrors, FileErrors, OutOfRange
+from autotune.errors import (
+    ConfigError,
+    ConfigErrors,
+    FileErrors,
+    OutOfRange,
+    ValueRefused,
+)
 from autotune.protocol import STEP_TOLERANCE
 from autotune.schema import Expect, check, number, refuse, table, text
 
@@ -89,9 +95,9 @@ class LinearLaw:
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.scale) and self.scale != 0.0):
-            raise ValueError(f"scale: expected a finite non-zero number, got {self.scale!r}")
+            raise ValueRefused(f"scale: expected a finite non-zero number, got {self.scale!r}")
         if not math.isfinite(self.offset):
-            raise ValueError(f"offset: expected a finite number, got {self.offset!r}")
+            raise ValueRefused(f"offset: expected a finite number, got {self.offset!r}")
 
     def to_setpoint(self, channel: float) -> float:
         """The set-point a channel value gives."""
@@ -147,15 +153,15 @@ class StarkLaw:
     def __post_init__(self) -> None:
         k = self.coefficient_hz_m2_per_v2
         if not (math.isfinite(k) and k != 0.0):
-            raise ValueError(f"coefficient_hz_m2_per_v2: expected a finite non-zero number, got {k!r}")
+            raise ValueRefused(f"coefficient_hz_m2_per_v2: expected a finite non-zero number, got {k!r}")
         if not (math.isfinite(self.bias_field_v_per_m) and self.bias_field_v_per_m >= 0.0):
-            raise ValueError(f"bias_field_v_per_m: expected a finite number >= 0, got {self.bias_field_v_per_m!r}")
+            raise ValueRefused(f"bias_field_v_per_m: expected a finite number >= 0, got {self.bias_field_v_per_m!r}")
         if not (math.isfinite(self.electrode_gap_m) and self.electrode_gap_m > 0.0):
-            raise ValueError(f"electrode_gap_m: expected a finite number > 0, got {self.electrode_gap_m!r}")
+            raise ValueRefused(f"electrode_gap_m: expected a finite number > 0, got {self.electrode_gap_m!r}")
         if self.branch not in ("positive", "negative"):
-            raise ValueError(f"branch: expected 'positive' or 'negative', got {self.branch!r}")
+            raise ValueRefused(f"branch: expected 'positive' or 'negative', got {self.branch!r}")
         if not (math.isfinite(self.volts_per_unit) and self.volts_per_unit > 0.0):
-            raise ValueError(f"volts_per_unit: expected a finite number > 0, got {self.volts_per_unit!r}")
+            raise ValueRefused(f"volts_per_unit: expected a finite number > 0, got {self.volts_per_unit!r}")
 
     @property
     def _sign(self) -> float:
@@ -172,12 +178,12 @@ class StarkLaw:
 
         Raises
         ------
-        ValueError
+        ValueRefused
             If the detuning needs ``E^2 < 0`` (beyond what the law reaches at ``E = 0``).
         """
         square = self.bias_field_v_per_m**2 + setpoint / self.coefficient_hz_m2_per_v2
         if square < 0.0:
-            raise ValueError(f"detuning {_fmt(setpoint)} Hz is beyond the Stark law's reach "
+            raise ValueRefused(f"detuning {_fmt(setpoint)} Hz is beyond the Stark law's reach "
                              f"({_fmt(self.reach_limit)} Hz at zero field)")
         return self._sign * math.sqrt(square) * self.electrode_gap_m / self.volts_per_unit
 
@@ -301,7 +307,7 @@ class MappedSetpoint:
                              f"max {_fmt(self.max)}] {self.unit}, got {_fmt(value)}")
         try:
             channel = self.law.to_channel(value)
-        except ValueError as exc:
+        except ValueRefused as exc:
             raise OutOfRange(f"{self.name}: {exc}") from None
         slack = _ROUNDING * max(abs(self.channel_min), abs(self.channel_max), 1e-300)
         if not self.channel_min - slack <= channel <= self.channel_max + slack:
@@ -357,10 +363,10 @@ class ChannelMap:
 
     def __init__(self, setpoints: Mapping[str, MappedSetpoint]) -> None:
         if not setpoints:
-            raise ValueError("a channel map needs at least one set-point")
+            raise ValueRefused("a channel map needs at least one set-point")
         channels = [m.channel for m in setpoints.values()]
         if len(set(channels)) != len(channels):
-            raise ValueError(f"two set-points map to one channel: {channels}")
+            raise ValueRefused(f"two set-points map to one channel: {channels}")
         self._setpoints = types.MappingProxyType(dict(setpoints))
 
     @property

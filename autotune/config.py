@@ -39,7 +39,7 @@ from pydantic import BeforeValidator, Strict, model_validator
 from pydantic_core import PydanticCustomError
 
 from autotune import plausible
-from autotune.errors import ConfigError, ConfigErrors
+from autotune.errors import ConfigError, ConfigErrors, ValueRefused
 from autotune.schema import (
     Expect,
     collect,
@@ -91,11 +91,11 @@ def packaged_config(name: str) -> Path:
 
     Raises
     ------
-    ValueError
-        ``name`` is not a packaged configuration.
+    ValueRefused
+        ``name`` is not a packaged configuration (a ValueError too).
     """
     if name not in PACKAGED_CONFIGS:
-        raise ValueError(f"name: expected one of {', '.join(PACKAGED_CONFIGS)}, got {name!r}")
+        raise ValueRefused(f"name: expected one of {', '.join(PACKAGED_CONFIGS)}, got {name!r}")
     return _DATA_DIR / name
 
 

@@ -2,7 +2,10 @@
 
 ::
 
-    AutotuneError                  everything autotune raises on purpose
+    AutotuneError                  everything autotune raises on purpose (exit code: exit_code)
+    ├── ValueRefused               a value given to autotune's API in code is outside its domain
+    │                              (a channel law's coefficient, a channel map, a Stark law asked
+    │                              beyond its reach, a packaged config's name; a ValueError too)
     ├── ConfigError                a configuration file or value is wrong (file, key, expected, got)
     │   └── ConfigErrors           several of them, found together before anything moved
     │       └── FileErrors         every problem of one file (autotune.schema)
@@ -31,7 +34,10 @@
     ├── InterlockSet               ``interlock``: a hardware interlock is set (never replayed)
     └── BadRequest                 ``bad_request``: a value the rig cannot take
 
-A driver raising anything else is answered ``internal``. The refusals live apart from
+Every ``AutotuneError`` carries the exit code of the commands it stops (``exit_code``: 2 for
+what the user can correct, 3 for the rig, 130 for a signal; :mod:`autotune.cli` returns the
+same, tests/test_errors.py holds them equal). A driver raising anything else is answered
+``internal``. The refusals live apart from
 ``AutotuneError``: they are the vocabulary of code a lab writes (see :mod:`autotune.driver`),
 not errors of this program.
 
@@ -42,9 +48,14 @@ where they occur and chained with ``raise ... from exc``.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import ClassVar
 
 __all__ = [
+    "EXIT_BAD_INPUT",
+    "EXIT_RIG",
+    "EXIT_INTERRUPTED",
     "AutotuneError",
+    "ValueRefused",
     "ConfigError",
     "ConfigErrors",
     "FileErrors",
@@ -69,8 +80,24 @@ __all__ = [
 ]
 
 
+#: Exit codes of the commands (a contract, README "Exit codes"): bad input, the rig, a signal.
+EXIT_BAD_INPUT = 2
+EXIT_RIG = 3
+EXIT_INTERRUPTED = 130
+
+
 class AutotuneError(Exception):
-    """Base of every error autotune raises on purpose."""
+    """Base of every error autotune raises on purpose; ``exit_code`` is what a command that
+    it stops exits with."""
+
+    exit_code: ClassVar[int] = EXIT_BAD_INPUT
+
+
+class ValueRefused(AutotuneError, ValueError):
+    """A value given to autotune's API in code (not read from a file) is outside its domain:
+    a channel law's coefficient, a channel map with no or shared channels, a Stark law asked
+    for a detuning beyond its reach, a packaged config's name. A :class:`ValueError` too, as
+    these were."""
 
 
 class ConfigError(AutotuneError):
@@ -191,6 +218,8 @@ class Interrupted(AutotuneError):
         The rig's error when ``safe`` is False, else an empty string.
     """
 
+    exit_code: ClassVar[int] = EXIT_INTERRUPTED
+
     def __init__(self, message: str) -> None:
         super().__init__(message)
         self.safe: bool | None = None
@@ -199,6 +228,8 @@ class Interrupted(AutotuneError):
 
 class RigError(AutotuneError):
     """The rig, or the bus to it, failed."""
+
+    exit_code: ClassVar[int] = EXIT_RIG
 
 
 class RigTimeout(RigError):
