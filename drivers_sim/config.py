@@ -27,6 +27,7 @@ from typing import Any
 
 import autotune.plausible as plausible
 from autotune.errors import ConfigError, FileErrors
+from autotune.protocol import SetpointLimit as WireLimit
 from autotune.schema import check, integer, number, read_toml, refuse, table, text
 from drivers_sim.physics import (
     SUPER_GAUSSIAN_ORDER_RANGE,
@@ -295,25 +296,17 @@ class ModelSection:
 
 
 @dataclasses.dataclass(frozen=True)
-class SetpointLimit:
-    """Limits of one set-point (``[limits.NAME]``), in its SI unit.
+class SetpointLimit(WireLimit):
+    """Limits of one set-point (``[limits.NAME]``), in its SI unit: the wire's set-point limit
+    (:class:`autotune.protocol.SetpointLimit`: ``unit``, ``min``, ``max``, ``max_step``, and
+    its ``tighter``) with the simulated rig's safe value.
 
     Attributes
     ----------
-    unit : str
-        SI unit of the set-point.
-    min, max : float
-        Allowed range.
-    max_step : float
-        Largest change one ``apply`` may make.
     safe : float
         Safe value (applied by ``safe``).
     """
 
-    unit: str
-    min: float
-    max: float
-    max_step: float
     safe: float
 
 
