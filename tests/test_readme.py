@@ -64,6 +64,9 @@ HOW = {
                                            "minutes"),
     "python3 -m autotune.bench --show benchmarks/results/latest.json":
         ("run in the repository", "its path is relative to the repository"),
+    "python -m autotune.bench --tiny --calibration-only --strategies phase_lock --families "
+    "main,mismatch --serial --quiet --out benchmarks/results/quick-check.json":
+        ("elsewhere", "tests/test_stored_results.py"),
 }
 
 
