@@ -45,15 +45,15 @@ from autotune.errors import (
     RigRestarted,
     RigTimeout,
 )
-from autotune.fringe import FringeData, InversionEstimate, estimate_inversion
+from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
 from autotune.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.rig import FIELDS, Rig
-from autotune.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
+from autotune.analysis.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
-from autotune.search import Dimension, PointResult, SearchSpace, Strategy
-from autotune.shortfall import finite_or_none
-from autotune.strategies import make_strategy
+from autotune.analysis.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.analysis.shortfall import finite_or_none
+from autotune.analysis.strategies import make_strategy
 
 __all__ = [
     "Limit",

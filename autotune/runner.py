@@ -49,7 +49,7 @@ from autotune.errors import (
     JournalError,
     RigLeased,
 )
-from autotune.guided import LockPrior
+from autotune.analysis.guided import LockPrior
 from autotune.journal import (
     JOURNAL_NAME,
     MANIFEST_NAME,

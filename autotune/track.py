@@ -81,10 +81,10 @@ from autotune.errors import (
     JournalError,
     RigError,
 )
-from autotune.fringe import InversionEstimate
-from autotune.guided import LockPrior
-from autotune.guided import detuning_offset
-from autotune.hold import (
+from autotune.analysis.fringe import InversionEstimate
+from autotune.analysis.guided import LockPrior
+from autotune.analysis.guided import detuning_offset
+from autotune.analysis.hold import (
     BeamBudget,
     CheckPlan,
     DriftLock,
@@ -134,7 +134,7 @@ from autotune.runner import (
     settle_failure,
     track_preflight,
 )
-from autotune.search import PointResult
+from autotune.analysis.search import PointResult
 
 __all__ = ["PreparedNight", "prepare_track", "execute_track", "track", "TRACK_END_STATUSES",
            "hold_settings"]

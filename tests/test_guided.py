@@ -21,9 +21,9 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from autotune.fringe import FringeData, estimate_inversion
-from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
-from autotune.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.analysis.fringe import FringeData, estimate_inversion
+from autotune.analysis.guided import LockPrior, LockSettings, PhaseLockSearch
+from autotune.analysis.search import Dimension, PointResult, SearchSpace, Strategy
 
 PI = math.pi
 V0 = 503.7  # nominal 2 pi velocity of the demo's nominal coupling and waist, m/s (docs/physics.md section 6)

@@ -35,7 +35,7 @@ from matplotlib.contour import ContourSet
 from scipy import stats
 
 from autotune import report
-from autotune.fringe import FringeData, estimate_inversion
+from autotune.analysis.fringe import FringeData, estimate_inversion
 from autotune.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
                               write_json_atomic)
 from rig_process import REPO, spawn_server

@@ -9,7 +9,7 @@ import numpy as np
 from scipy import stats
 
 from autotune.errors import EstimationError
-from autotune.fringe import FringeData, fit_fringe
+from autotune.analysis.fringe import FringeData, fit_fringe
 from autotune.report.figures._base import _errorbar, _new_figure, _title
 from autotune.report.flags import fit_p_value
 from autotune.report.model import _FIELD_NAMES, _FIELDS, Run, _fmt_setpoints, _level

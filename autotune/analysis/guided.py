@@ -120,7 +120,7 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
-from autotune.lock_fit import (
+from autotune.analysis.lock_fit import (
     _LockFit,
     _log_evidence,
     _solve_gaussian,
@@ -128,11 +128,11 @@ from autotune.lock_fit import (
     detuning_offset,
     phase_signal_note,
 )
-from autotune.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
-from autotune.retune_verdict import inherited_draws, retune_verdict
-from autotune.shortfall import Shortfall, Verdict, finite_or_none
-from autotune.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
-from autotune.search import (
+from autotune.analysis.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
+from autotune.analysis.retune_verdict import inherited_draws, retune_verdict
+from autotune.analysis.shortfall import Shortfall, Verdict, finite_or_none
+from autotune.analysis.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
+from autotune.analysis.search import (
     PURPOSES,
     BayesianSearch,
     PointResult,

@@ -14,10 +14,10 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from autotune.search import PointResult
+from autotune.analysis.search import PointResult
 
 if TYPE_CHECKING:
-    from autotune.guided import LockSettings
+    from autotune.analysis.guided import LockSettings
 
 __all__ = ["phase_signal_note", "detuning_offset"]
 

@@ -19,11 +19,11 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from autotune.search import Proposal
-from autotune.shortfall import Shortfall
+from autotune.analysis.search import Proposal
+from autotune.analysis.shortfall import Shortfall
 
 if TYPE_CHECKING:
-    from autotune.guided import PhaseLockSearch
+    from autotune.analysis.guided import PhaseLockSearch
 
 __all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall"]
 

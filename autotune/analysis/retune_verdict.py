@@ -15,11 +15,11 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import special, stats
 
-from autotune.lock_fit import detuning_offset
-from autotune.shortfall import Shortfall, Verdict
+from autotune.analysis.lock_fit import detuning_offset
+from autotune.analysis.shortfall import Shortfall, Verdict
 
 if TYPE_CHECKING:
-    from autotune.guided import PhaseLockSearch
+    from autotune.analysis.guided import PhaseLockSearch
 
 __all__ = ["inherited_draws", "retune_verdict"]
 

@@ -77,8 +77,8 @@ from typing import Any
 import numpy as np
 from scipy import optimize, special
 
-from autotune.guided import LockPrior, LockSettings, detuning_offset, phase_signal_note
-from autotune.search import PointResult
+from autotune.analysis.guided import LockPrior, LockSettings, detuning_offset, phase_signal_note
+from autotune.analysis.search import PointResult
 
 __all__ = [
     "SIEGMUND_CORRECTION",

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from autotune.guided import PhaseLockSearch
-from autotune.search import (
+from autotune.analysis.guided import PhaseLockSearch
+from autotune.analysis.search import (
     BayesianSearch,
     CoordinateScan,
     GridScan,
