@@ -37,7 +37,7 @@ from typing import Annotated, Any, ClassVar, Literal
 
 from autotune import plausible
 from autotune.errors import ConfigError, ConfigErrors, FileErrors, OutOfRange
-from autotune.protocol import STEP_TOLERANCE
+from autotune.wire.protocol import STEP_TOLERANCE
 from autotune.schema import Expect, check, number, refuse, table, text
 
 __all__ = [

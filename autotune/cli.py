@@ -374,8 +374,8 @@ def _default_run_dir(command: str) -> Path:
 
 
 def _connect(config: RunConfig, stop: threading.Event | None = None) -> Any:
-    from autotune.bus import BusClient, CurveClientKeys
-    from autotune.protocol import SetpointLimit
+    from autotune.wire.bus import BusClient, CurveClientKeys
+    from autotune.wire.protocol import SetpointLimit
 
     curve = None
     if config.bus.curve is not None:
@@ -401,7 +401,7 @@ def _claim_rig(rig: Any, command: str, wait_s: float, config: RunConfig,
         Another client holds the rig (still, after ``wait_s`` seconds).
     """
     from autotune import runner
-    from autotune.bus import client_identity
+    from autotune.wire.bus import client_identity
 
     identity = client_identity(command)
     runner.opening_call("claim", lambda: rig.claim(identity, wait_s=wait_s), config, rig, stop)
@@ -862,7 +862,7 @@ def _probe_plan(description: Any, shots: int) -> str:
 
 
 def _cmd_probe(ns: argparse.Namespace) -> int:
-    from autotune.bus import CurveClientKeys
+    from autotune.wire.bus import CurveClientKeys
     from autotune.probe import Link, Probe, summarise
 
     if "://" not in ns.endpoint:
@@ -906,7 +906,7 @@ def _cmd_probe(ns: argparse.Namespace) -> int:
         findings = probe.run()
     except KeyboardInterrupt:
         if consented:
-            from autotune import protocol
+            from autotune.wire import protocol
 
             msg_id = protocol.new_msg_id()
             link.reset()

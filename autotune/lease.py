@@ -16,7 +16,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
-from autotune.protocol import LEASED_OPS, Op
+from autotune.wire.protocol import LEASED_OPS, Op
 
 __all__ = ["LeaseBook", "LeaseHeld", "Holder"]
 

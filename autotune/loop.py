@@ -47,8 +47,8 @@ from autotune.errors import (
 )
 from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.journal import Journal
-from autotune.protocol import STEP_TOLERANCE, new_msg_id
-from autotune.rig import FIELDS, Rig
+from autotune.wire.protocol import STEP_TOLERANCE, new_msg_id
+from autotune.wire.rig import FIELDS, Rig
 from autotune.analysis.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress, count_text
 from autotune.analysis.search import Dimension, PointResult, SearchSpace, Strategy

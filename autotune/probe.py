@@ -86,10 +86,10 @@ from typing import Any, Literal
 
 import zmq
 
-from autotune import protocol
-from autotune.bus import CurveClientKeys
+from autotune.wire import protocol
+from autotune.wire.bus import CurveClientKeys
 from autotune.errors import ProtocolError, RigLeased, RigRefused
-from autotune.protocol import Description
+from autotune.wire.protocol import Description
 
 __all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES",
            "OCCASIONAL_RULES", "summarise"]

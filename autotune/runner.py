@@ -73,7 +73,7 @@ from autotune.loop import (
     run_stage,
 )
 from autotune.progress import ProgressObserver
-from autotune.rig import Rig
+from autotune.wire.rig import Rig
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",

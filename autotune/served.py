@@ -37,7 +37,7 @@ from typing import Any
 
 import structlog
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.channels import ChannelInfo, ChannelMap, channel_map_from_table, identity_channel_map
 from autotune.driver import COUNT_STATES, FIELDS, SIMULATED_OPS
 from autotune.errors import BadRequest, Busy, ConfigError, InterlockSet

@@ -50,10 +50,10 @@ import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import ConfigError, DriverRefusal
 from autotune.lease import LeaseBook, LeaseHeld
-from autotune.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
+from autotune.wire.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
 __all__ = [
     "DEFAULT_BIND",

@@ -124,7 +124,7 @@ from autotune.loop import (
     run_guided_stage,
 )
 from autotune.progress import NightProgress, ProgressObserver, setpoints_text
-from autotune.rig import Rig
+from autotune.wire.rig import Rig
 from autotune.runner import (
     _manifest,
     opening_call,

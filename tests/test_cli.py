@@ -21,7 +21,7 @@ from typing import Any
 
 import pytest
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from rig_process import REPO, ServerProcess
 

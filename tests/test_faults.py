@@ -26,7 +26,7 @@ from typing import Any
 
 import pytest
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 from autotune.errors import RigRefused
 from autotune.journal import JOURNAL_NAME, read_journal
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record

@@ -17,7 +17,7 @@ import pytest
 
 from autotune.runlock import HOLDER_NAME, LOCK_NAME
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 from autotune.journal import JOURNAL_NAME, MANIFEST_NAME
 from cli_helpers import autotune, tiny_config, to_toml
 from rig_process import REPO, spawn_server

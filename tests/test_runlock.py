@@ -144,7 +144,7 @@ def _raw(endpoint: str, op: str, client: str, args: dict[str, Any]) -> dict[str,
     """One request as another client sends it (claimed by hand: never renewed)."""
     import zmq
 
-    from autotune import protocol
+    from autotune.wire import protocol
 
     with zmq.Context() as context, context.socket(zmq.REQ) as raw:
         raw.setsockopt(zmq.LINGER, 0)

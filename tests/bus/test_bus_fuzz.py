@@ -14,9 +14,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from rig_process import SEED, SIM_CONFIG
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import ProtocolError, RigRefused
-from autotune.protocol import ErrorKind, Op, RequestRejected
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 MSG_ID = "fedcba9876543210fedcba9876543210"
 FUZZ = settings(max_examples=300, deadline=None, derandomize=True,

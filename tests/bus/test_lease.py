@@ -10,11 +10,11 @@ from collections.abc import Callable
 import pytest
 import zmq
 
-from autotune import protocol
-from autotune.bus import BusClient
+from autotune.wire import protocol
+from autotune.wire.bus import BusClient
 from autotune.errors import RigLeased, RigRefused
 from autotune.lease import LeaseBook, LeaseHeld
-from autotune.protocol import ErrorKind, Op, RequestRejected
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 from .conftest import ServerProcess
 

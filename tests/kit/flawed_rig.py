@@ -37,7 +37,7 @@ from lab_driver.driver import LabDriver  # noqa: E402
 from autotune import protocol  # noqa: E402
 from autotune.channels import ChannelMap  # noqa: E402
 from autotune.driver_config import load_driver_config  # noqa: E402
-from autotune.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
 from autotune.served import ServedDriver  # noqa: E402
 from autotune.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
 

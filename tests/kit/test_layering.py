@@ -30,7 +30,7 @@ def test_drivers_sim_imports_only_the_protocol_and_the_driver_interface():
     only those two)."""
     used = {name for path in (REPO / "drivers_sim").glob("*.py") for name in _imports(path)
             if name == "autotune" or name.startswith("autotune.")}
-    assert used <= {"autotune.protocol", "autotune.driver", "autotune.errors",
+    assert used <= {"autotune.wire.protocol", "autotune.driver", "autotune.errors",
                     "autotune.plausible", "autotune.schema"}, used
     assert not {name for name in _imports(REPO / "autotune" / "plausible.py")
                 if name.startswith("autotune")}

@@ -9,10 +9,10 @@ from typing import Any
 import pytest
 from lab_driver.driver import ELECTRODE, LabDriver
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.driver_config import load_driver_config
 from autotune.errors import ConfigError, RigRefused
-from autotune.protocol import Op
+from autotune.wire.protocol import Op
 from autotune.served import ServedDriver
 from autotune.server import FaultConfig, LocalRig, RigServer
 from drivers_sim.driver import SimulatedDriver

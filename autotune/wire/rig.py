@@ -13,7 +13,7 @@ from collections.abc import Mapping
 from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
 if TYPE_CHECKING:
-    from autotune.protocol import Acquisition, Applied, Description, Status
+    from autotune.wire.protocol import Acquisition, Applied, Description, Status
 
 __all__ = ["Rig", "FIELDS"]
 

@@ -50,7 +50,7 @@ import structlog
 import zmq
 import zmq.auth
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.progress import setpoint_value_text
 from autotune.errors import (
     ConfigError,
@@ -65,7 +65,7 @@ from autotune.errors import (
     RigRestarted,
     RigTimeout,
 )
-from autotune.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
+from autotune.wire.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
 
 __all__ = ["BusClient", "CurveClientKeys", "LEASE_TTL_S", "client_identity"]
 
