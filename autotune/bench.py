@@ -560,7 +560,7 @@ def _rig_data(rig_config_path: Path) -> dict[str, Any]:
 def _local_rig(rig: Mapping[str, Any], perturbation: Mapping[str, Mapping[str, Any]],
                seed: int) -> Any:
     # A study on the simulated rig: drivers_sim is imported here only (see the module docstring).
-    from autotune.server import LocalRig
+    from autotune.kit.server import LocalRig
     from drivers_sim.config import sim_config_from_dict
     from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig

@@ -552,7 +552,7 @@ def _add_server_arguments(parser: argparse.ArgumentParser, *, bind_default: str 
 
 
 def _curve_server_keys(secret: Path | None, allowed: Path | None, source: str) -> Any:
-    from autotune.server import CurveServerKeys
+    from autotune.kit.server import CurveServerKeys
 
     if (secret is None) != (allowed is None):
         raise ConfigError(source, "--curve-secret-key/--curve-allowed-dir", "both or neither",
@@ -655,7 +655,7 @@ def _serve_until_stopped(served: Any, bind: str, *, faults: Any, curve: Any, fau
     ``close``."""
     import zmq
 
-    from autotune.server import RigServer, write_ready_file
+    from autotune.kit.server import RigServer, write_ready_file
 
     try:
         server = RigServer(served, bind, faults=faults, curve=curve, fault_seed=fault_seed)
@@ -715,8 +715,8 @@ def _refused_to_start(log: Any, exc: BaseException) -> None:
 
 def _cmd_rig(ns: argparse.Namespace) -> int:
     # The simulated rig is imported only by the commands that serve or start it.
-    from autotune.served import ServedDriver
-    from autotune.server import FaultConfig
+    from autotune.kit.served import ServedDriver
+    from autotune.kit.server import FaultConfig
     from drivers_sim.config import load_sim_config
     from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig
@@ -744,8 +744,8 @@ def _cmd_rig(ns: argparse.Namespace) -> int:
 
 
 def _cmd_serve(ns: argparse.Namespace) -> int:
-    from autotune.driver_config import load_driver_config
-    from autotune.server import FaultConfig
+    from autotune.kit.driver_config import load_driver_config
+    from autotune.kit.server import FaultConfig
 
     _configure_server_logging(ns.server_log_level or _console_level(ns))
     log = structlog.get_logger("autotune.serve").bind(config=str(ns.config))
@@ -785,8 +785,8 @@ def _start_driver(config: Any, log: Any) -> Any:
     :class:`~autotune.served.ServedDriver`, or the exit status when it cannot start (2 for a
     driver class or channel map that does not fit, 3 when it fails or hangs: its hardware is
     taken as unreachable; 0, a clean stop, on SIGINT/SIGTERM while waiting)."""
-    from autotune.driver_config import DriverStartError, build_driver
-    from autotune.served import ServedDriver
+    from autotune.kit.driver_config import DriverStartError, build_driver
+    from autotune.kit.served import ServedDriver
 
     outcome: dict[str, Any] = {}
 
@@ -863,7 +863,7 @@ def _probe_plan(description: Any, shots: int) -> str:
 
 def _cmd_probe(ns: argparse.Namespace) -> int:
     from autotune.wire.bus import CurveClientKeys
-    from autotune.probe import Link, Probe, summarise
+    from autotune.kit.probe import Link, Probe, summarise
 
     if "://" not in ns.endpoint:
         print(f"autotune: probe: ENDPOINT: expected a ZeroMQ endpoint such as "

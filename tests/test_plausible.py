@@ -11,10 +11,10 @@ from pathlib import Path
 import pytest
 
 from autotune import plausible
-from autotune.channels import ChannelInfo, channel_map_from_table
+from autotune.kit.channels import ChannelInfo, channel_map_from_table
 from autotune.cli import main
 from autotune.config import config_from_dict, load_config, nominal_two_pi_velocity
-from autotune.driver_config import load_driver_config
+from autotune.kit.driver_config import load_driver_config
 from autotune.errors import ConfigError
 from drivers_sim.config import SimConfigError, load_sim_config, sim_config_from_dict
 

@@ -27,7 +27,7 @@ from autotune.display import (
 )
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from autotune.progress import NightProgress, StageProgress, format_duration
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from cli_helpers import autotune, run_in_a_terminal, tiny_config
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver

@@ -28,7 +28,7 @@ from scipy import stats
 from autotune import bench, report, runner, track
 from autotune.config import load_config
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig

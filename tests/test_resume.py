@@ -23,7 +23,7 @@ from autotune.config import RunConfig, load_config
 from autotune.errors import ConfigErrors
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from drivers_sim.config import load_sim_config
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
 from journal_checks import check_invariants

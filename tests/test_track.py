@@ -27,7 +27,7 @@ from autotune.display import night_progress_text
 from autotune.errors import ConfigErrors, Interrupted, JournalError
 from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.progress import NightProgress, StageProgress
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig

@@ -102,8 +102,8 @@ pytestmark = pytest.mark.xdist_group("test_bus_fuzz")
 @pytest.fixture(scope="module")
 def in_process_server():
     """A RigServer around the real simulated rig, never bound: only its request handler is used."""
-    from autotune.served import ServedDriver
-    from autotune.server import FaultConfig, RigServer
+    from autotune.kit.served import ServedDriver
+    from autotune.kit.server import FaultConfig, RigServer
     from drivers_sim.config import load_sim_config
     from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig

@@ -13,7 +13,7 @@ import zmq
 from autotune.wire import protocol
 from autotune.wire.bus import BusClient
 from autotune.errors import RigLeased, RigRefused
-from autotune.lease import LeaseBook, LeaseHeld
+from autotune.kit.lease import LeaseBook, LeaseHeld
 from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 from .conftest import ServerProcess
@@ -136,8 +136,8 @@ def _first_edition_rig(context: zmq.Context, box: list[str], stop: threading.Eve
     behind the strict key check of that edition, which refuses the key ``client``."""
     import json
 
-    from autotune.served import ServedDriver
-    from autotune.server import FaultConfig, RigServer
+    from autotune.kit.served import ServedDriver
+    from autotune.kit.server import FaultConfig, RigServer
     from drivers_sim.driver import SimulatedDriver
     from rig_process import SEED, SIM_CONFIG
 

@@ -14,7 +14,7 @@ import pytest
 from rig_process import REPO, START_TIMEOUT_S, STOP_TIMEOUT_S
 
 from autotune.wire.bus import BusClient
-from autotune.probe import RULES
+from autotune.kit.probe import RULES
 
 from .conftest import Keys
 

@@ -38,10 +38,10 @@ from typing import Any
 import structlog
 
 from autotune.wire import protocol
-from autotune.channels import ChannelInfo, ChannelMap, channel_map_from_table, identity_channel_map
-from autotune.driver import COUNT_STATES, FIELDS, SIMULATED_OPS
+from autotune.kit.channels import ChannelInfo, ChannelMap, channel_map_from_table, identity_channel_map
+from autotune.kit.driver import COUNT_STATES, FIELDS, SIMULATED_OPS
 from autotune.errors import BadRequest, Busy, ConfigError, InterlockSet
-from autotune.server import mark_ran
+from autotune.kit.server import mark_ran
 
 __all__ = ["ServedDriver", "DriverDescription", "DriverStatus", "DriverResultError",
            "parse_driver_description"]

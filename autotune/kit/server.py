@@ -52,7 +52,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune.wire import protocol
 from autotune.errors import ConfigError, DriverRefusal
-from autotune.lease import LeaseBook, LeaseHeld
+from autotune.kit.lease import LeaseBook, LeaseHeld
 from autotune.wire.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
 __all__ = [
@@ -710,7 +710,7 @@ class LocalRig:
         if served:
             self.served = driver
         else:
-            from autotune.served import ServedDriver
+            from autotune.kit.served import ServedDriver
 
             self.served = ServedDriver(driver, setpoints)
         self.driver = getattr(self.served, "driver", driver)
