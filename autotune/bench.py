@@ -82,7 +82,7 @@ from typing import Any, get_args
 import numpy as np
 import structlog
 
-from autotune import runner
+from autotune.run import runner
 from autotune.config import (
     LockConfig,
     MeasurementConfig,
@@ -95,7 +95,7 @@ from autotune.config import (
     load_config,
     packaged_config,
 )
-from autotune.loop import build_strategy, search_space
+from autotune.run.loop import build_strategy, search_space
 from autotune.progress import format_duration
 
 __all__ = [
@@ -909,7 +909,7 @@ def _hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
     The night lasts ``hours`` of rig time after the calibration, with the scenario's drift
     (no ramp on a quiet night) and its thermal steps (none on a quiet night).
     """
-    from autotune import track as tracking
+    from autotune.run import track as tracking
 
     config = _config_from_spec(job["config"])
     scenario = job["scenario"]
@@ -984,7 +984,7 @@ def _hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
 
 def _alarm_clocks(run_dir: Path) -> list[float]:
     """Rig clocks of the night's alarms (the middle of the check that raised each)."""
-    from autotune.journal import read_journal
+    from autotune.run.journal import read_journal
 
     records = read_journal(run_dir / "journal.jsonl")
     clocks = {r["point"]: r["clock_s"] for r in records if r.get("type") == "hold"}
@@ -993,7 +993,7 @@ def _alarm_clocks(run_dir: Path) -> list[float]:
 
 
 def _night_plans(run_dir: Path) -> list[dict[str, Any]]:
-    from autotune.journal import read_journal
+    from autotune.run.journal import read_journal
 
     return [{"interval_s": r["plan"]["interval_s"], "shots_per_phase": r["plan"]["shots_per_phase"],
              "check_share": r["plan"]["check_share"]}
@@ -2180,7 +2180,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     _quiet_logging()
     os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
     # Progress is display only (autotune.display); the study calls it with one line per job.
-    from autotune.display import ProgressDisplay, progress_mode
+    from autotune.run.display import ProgressDisplay, progress_mode
 
     try:
         with ProgressDisplay(progress_mode(quiet=ns.quiet), str, plain_every_s=0.0) as shown:

@@ -74,11 +74,11 @@ from autotune.errors import (
     RigLeased,
     RigTimeout,
 )
-from autotune.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, utc_now, write_json_atomic
-from autotune.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder
+from autotune.run.journal import JOURNAL_NAME, LOG_NAME, RESULT_NAME, already_ended, utc_now, write_json_atomic
+from autotune.run.runlock import HOLDER_NAME, LOCK_NAME, hold_run_folder
 from autotune.plausible import SEED_MAX, SERVER_TIMEOUT_S, THERMAL_STEP_HZ, Plausible
 from autotune.progress import count_text, setpoint_value_text, setpoints_text
-from autotune.display import ProgressDisplay, progress_mode, progress_text
+from autotune.run.display import ProgressDisplay, progress_mode, progress_text
 
 __all__ = ["main", "EXIT_OK", "EXIT_INTERNAL", "EXIT_BAD_INPUT", "EXIT_RIG",
            "EXIT_BELOW_ACCEPTANCE", "EXIT_INTERRUPTED"]
@@ -400,7 +400,7 @@ def _claim_rig(rig: Any, command: str, wait_s: float, config: RunConfig,
     RigLeased
         Another client holds the rig (still, after ``wait_s`` seconds).
     """
-    from autotune import runner
+    from autotune.run import runner
     from autotune.wire.bus import client_identity
 
     identity = client_identity(command)
@@ -953,8 +953,8 @@ def _deferred(module: str, name: str, *bound: Any) -> Callable[..., Any]:
 
 
 def _cmd_stage(ns: argparse.Namespace, command: str) -> int:
-    return _act_on_rig(ns, command, _deferred("autotune.runner", "prepare", command),
-                       _deferred("autotune.runner", "execute"), _summary, _exit_for_result)
+    return _act_on_rig(ns, command, _deferred("autotune.run.runner", "prepare", command),
+                       _deferred("autotune.run.runner", "execute"), _summary, _exit_for_result)
 
 
 def _act_on_rig(ns: argparse.Namespace, command: str, prepare: Callable[..., Any],
@@ -1078,7 +1078,7 @@ def _cmd_dry_run(ns: argparse.Namespace) -> int:
 def _dry_run_in(ns: argparse.Namespace, config: RunConfig, config_path: Path, rig_config: Path,
                 out: Path) -> int:
     """The body of ``dry-run`` once this process holds the lock of its folder ``out``."""
-    from autotune import runner
+    from autotune.run import runner
 
     rig_process: list[subprocess.Popen[bytes]] = []
 
@@ -1218,8 +1218,8 @@ def _cmd_track(ns: argparse.Namespace) -> int:
               "[track] max_rig_time_s, max_wall_time_s or end_at_local_time in the config, or "
               "with SIGINT/SIGTERM (README: Holding the condition overnight)", file=sys.stderr)
         return EXIT_BAD_INPUT
-    return _act_on_rig(ns, "track", _deferred("autotune.track", "prepare_track"),
-                       _deferred("autotune.track", "execute_track"), _track_summary,
+    return _act_on_rig(ns, "track", _deferred("autotune.run.track", "prepare_track"),
+                       _deferred("autotune.run.track", "execute_track"), _track_summary,
                        lambda r: EXIT_OK if r["status"] == "ended" else EXIT_BELOW_ACCEPTANCE)
 
 

@@ -295,7 +295,7 @@ def test_flags_out_of_range_exit_2_with_the_reason(argv, fragment, capsys):
 def test_a_last_good_store_holds_finite_numbers(tmp_path, text, fragment):
     """JSON readers take NaN and Infinity; a last good store holding them is refused naming
     the file and key."""
-    from autotune.runner import read_last_good
+    from autotune.run.runner import read_last_good
 
     store = tmp_path / "good.json"
     store.write_text(text, encoding="utf-8")

@@ -25,9 +25,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from autotune import bench, report, runner, track
+from autotune import bench, report
+from autotune.run import runner
+from autotune.run import track
 from autotune.config import load_config
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver

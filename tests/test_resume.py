@@ -18,10 +18,10 @@ from typing import Any
 
 import pytest
 
-from autotune import runner
+from autotune.run import runner
 from autotune.config import RunConfig, load_config
 from autotune.errors import ConfigErrors
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from drivers_sim.config import load_sim_config
 from autotune.kit.server import LocalRig
 from drivers_sim.driver import SimulatedDriver

@@ -21,11 +21,13 @@ from typing import Any
 
 import pytest
 
-from autotune import bench, runner, track
+from autotune import bench
+from autotune.run import runner
+from autotune.run import track
 from autotune.config import load_config
-from autotune.display import night_progress_text
+from autotune.run.display import night_progress_text
 from autotune.errors import ConfigErrors, Interrupted, JournalError
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.progress import NightProgress, StageProgress
 from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config

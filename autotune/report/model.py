@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError
-from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
+from autotune.run.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
                               read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
 

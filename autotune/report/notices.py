@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from autotune.report.model import Run
-from autotune.runlock import holder_if_running, holder_text
+from autotune.run.runlock import holder_if_running, holder_text
 
 
 @dataclass(frozen=True)

@@ -195,8 +195,8 @@ def test_a_run_that_lost_its_lease_stops_without_sending_safe(
     """A client whose lease ran out (its keeper stalled) and was taken by another: its next
     move is refused leased, the run ends aborted without a safe request (the rig is the other
     client's now), and the journal says why."""
-    from autotune import runner
-    from autotune.journal import JOURNAL_NAME, read_journal
+    from autotune.run import runner
+    from autotune.run.journal import JOURNAL_NAME, read_journal
     from test_resume import small_config
 
     server = start_server()

@@ -53,7 +53,7 @@ def _try_lock(fd: int, *, shared: bool = False) -> bool:
 
 
 def _holder_now(command: str) -> dict[str, Any]:
-    from autotune.journal import utc_now
+    from autotune.run.journal import utc_now
 
     try:
         user = os.getlogin()
@@ -143,7 +143,7 @@ class RunLock:
             time.sleep(0.05)
         holder = _holder_now(command)
         try:
-            from autotune.journal import write_json_atomic
+            from autotune.run.journal import write_json_atomic
 
             write_json_atomic(run_dir / HOLDER_NAME, holder)
         except JournalError:

@@ -50,7 +50,7 @@ from autotune.errors import (
     RigLeased,
 )
 from autotune.analysis.guided import LockPrior
-from autotune.journal import (
+from autotune.run.journal import (
     JOURNAL_NAME,
     MANIFEST_NAME,
     RESULT_NAME,
@@ -62,7 +62,7 @@ from autotune.journal import (
     utc_now,
     write_json_atomic,
 )
-from autotune.loop import (
+from autotune.run.loop import (
     Budget,
     Limit,
     Session,

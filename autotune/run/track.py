@@ -104,7 +104,7 @@ from autotune.analysis.hold import (
     reference_value,
     unwatched_until,
 )
-from autotune.journal import (
+from autotune.run.journal import (
     JOURNAL_NAME,
     RESULT_NAME,
     Journal,
@@ -112,7 +112,7 @@ from autotune.journal import (
     utc_now,
     write_json_atomic,
 )
-from autotune.loop import (
+from autotune.run.loop import (
     Budget,
     Session,
     StageOutcome,
@@ -125,7 +125,7 @@ from autotune.loop import (
 )
 from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.wire.rig import Rig
-from autotune.runner import (
+from autotune.run.runner import (
     _manifest,
     opening_call,
     read_last_good,

@@ -46,7 +46,7 @@ from autotune.errors import (
     RigTimeout,
 )
 from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
-from autotune.journal import Journal
+from autotune.run.journal import Journal
 from autotune.wire.protocol import STEP_TOLERANCE, new_msg_id
 from autotune.wire.rig import FIELDS, Rig
 from autotune.analysis.guided import LockPrior, LockSettings, PhaseLockSearch, Shortfall
