@@ -34,7 +34,7 @@ sys.path.insert(0, str(REPO / "examples"))
 
 from lab_driver.driver import LabDriver  # noqa: E402
 
-from autotune import protocol  # noqa: E402
+from autotune.wire import protocol  # noqa: E402
 from autotune.kit.channels import ChannelMap  # noqa: E402
 from autotune.kit.driver_config import load_driver_config  # noqa: E402
 from autotune.wire.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
