@@ -20,7 +20,7 @@ from autotune.cli import console
 from autotune.cli import parser as cli_parser
 from autotune.cli import stages as cli_stages
 from autotune.run import runner
-from autotune.bench import _counting
+from autotune.bench.study import _counting
 from autotune.config import RunConfig, load_config
 from autotune.run.display import (
     ProgressDisplay,
