@@ -1,6 +1,6 @@
 """One stage as a run: checks before the first move, run folder, manifest, result, last good.
 
-This is the imperative shell around :func:`autotune.loop.run_stage`. A stage runs in two steps:
+This is the imperative shell around :func:`autotune.run.loop.run_stage`. A stage runs in two steps:
 
 1. :func:`prepare` talks to the rig only to ask it to describe itself and checks everything that
    can be checked before a set-point is sent (units, limits, the search box, shots per
@@ -513,7 +513,7 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     """Check a stage before anything moves or is written; see the module notes.
 
     The rig's ``describe`` goes through the run's one recovery path
-    (:func:`autotune.loop.call_with_recovery`: the same retries as every later call);
+    (:func:`autotune.run.loop.call_with_recovery`: the same retries as every later call);
     ``stop`` ends its waits.
 
     Raises
@@ -573,7 +573,7 @@ def read_run_files(run_dir: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]
     return manifest, records
 
 
-def _manifest(prepared: Prepared, extra: Mapping[str, Any]) -> dict[str, Any]:
+def run_manifest(prepared: Prepared, extra: Mapping[str, Any]) -> dict[str, Any]:
     config = prepared.config
     return {
         "run_id": uuid.uuid4().hex,
@@ -722,7 +722,7 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         # The rig's clock before the folder exists: a run that never reached the rig leaves
         # no journal behind.
         opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
-        journal, records = Journal.create(run_dir, _manifest(prepared, extra)), []
+        journal, records = Journal.create(run_dir, run_manifest(prepared, extra)), []
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
     try:
@@ -838,7 +838,7 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
     extra : Mapping, optional
         More manifest entries (the dry run records its scenario here).
     observer : callable, optional
-        Passed to :func:`autotune.loop.run_stage` (benchmark studies).
+        Passed to :func:`autotune.run.loop.run_stage` (benchmark studies).
     progress : callable, optional
         A progress observer (:mod:`autotune.progress`), for a display; never journaled.
     """

@@ -126,7 +126,7 @@ from autotune.run.loop import (
 from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.wire.rig import Rig
 from autotune.run.runner import (
-    _manifest,
+    run_manifest as _manifest,
     opening_call,
     read_last_good,
     read_run_files,
