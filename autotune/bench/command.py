@@ -144,7 +144,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=logging.WARNING)
     quiet_logging()
     os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
-    # Progress is display only (autotune.display); the study calls it with one line per job.
+    # Progress is display only (autotune.run.display); the study calls it with one line per job.
     from autotune.run.display import ProgressDisplay, progress_mode
 
     try:

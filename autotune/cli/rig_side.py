@@ -296,7 +296,7 @@ def cmd_serve(ns: argparse.Namespace) -> int:
 
 def _start_driver(config: Any, log: Any) -> Any:
     """Build the lab's driver and describe it, within ``[server] start_timeout_s``: the
-    :class:`~autotune.served.ServedDriver`, or the exit status when it cannot start (2 for a
+    :class:`~autotune.kit.served.ServedDriver`, or the exit status when it cannot start (2 for a
     driver class or channel map that does not fit, 3 when it fails or hangs: its hardware is
     taken as unreachable; 0, a clean stop, on SIGINT/SIGTERM while waiting)."""
     from autotune.kit.driver_config import DriverStartError, build_driver

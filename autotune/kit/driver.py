@@ -1,12 +1,12 @@
 """The rig-driver interface: the one class a lab writes to connect its control system.
 
 ``autotune serve --config DRIVER.toml`` loads a driver class named ``module:Class`` in that
-file and serves it over the wire protocol (:mod:`autotune.protocol`). The server does all the
+file and serves it over the wire protocol (:mod:`autotune.wire.protocol`). The server does all the
 protocol work: message checks, the replay cache for repeated ``msg_id``, error replies, CURVE
 access control, the rig identity, and the **limit and step checks, before the driver is
 called**. It also translates set-points: the driver never sees ``velocity`` in m/s or
 ``detuning`` in Hz, but the lab's own channels in the lab's own units, through the channel map
-of ``DRIVER.toml`` (:mod:`autotune.channels`).
+of ``DRIVER.toml`` (:mod:`autotune.kit.channels`).
 
 A driver is any class with these methods (no base class needed)::
 

@@ -17,13 +17,13 @@ Layout (every key is checked; an unknown one is refused)::
     stop_timeout_s = 30.0                   # optional: longest wait for a driver call at a stop (s)
     safe_on_stop = false                    # optional: call the driver's safe() when serve stops
 
-    [setpoints.velocity]                    # the channel map, see autotune.channels
+    [setpoints.velocity]                    # the channel map, see autotune.kit.channels
     ...
     [setpoints.detuning]
     ...
 
 The ``[setpoints]`` tables are checked against the driver's own channel description once the
-driver is built (:class:`autotune.served.ServedDriver`); everything else here, at load.
+driver is built (:class:`autotune.kit.served.ServedDriver`); everything else here, at load.
 """
 
 from __future__ import annotations

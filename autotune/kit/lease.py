@@ -1,8 +1,8 @@
 """The rig's lease: which client may move it and acquire, and until when (pure, no I/O).
 
 :class:`LeaseBook` is the server's side of the protocol's *One driver at a time*
-(:mod:`autotune.protocol`): one holder at most, a time to live renewed by claiming again, an
-end by ``release`` or by running out. :class:`autotune.server.RigServer` asks it before it
+(:mod:`autotune.wire.protocol`): one holder at most, a time to live renewed by claiming again, an
+end by ``release`` or by running out. :class:`autotune.kit.server.RigServer` asks it before it
 executes a request; the book never touches the rig.
 
 Times are read from a monotonic clock (a wall clock that jumps neither shortens nor extends a

@@ -66,7 +66,7 @@ Then ``internal``, reported only when the rig answered a request ``internal`` du
 request with the same ``msg_id``, as autotune does, and the retry must reach the rig again (a
 result, or a fresh execution: the same ``msg_id`` sent with a ``status`` request is then
 answered as a new request, not refused as a reuse), since an ``internal`` reply to a request
-that did not complete must not be kept (:mod:`autotune.protocol`, Idempotency). A lab can
+that did not complete must not be kept (:mod:`autotune.wire.protocol`, Idempotency). A lab can
 exercise it with a driver that fails once on purpose.
 
 Last, ``instance``: the optional rig identity is in every result of describe, status, apply,
@@ -192,7 +192,7 @@ class Link:
     timeout_s : float
         Longest wait for one reply, s.
     curve : CurveClientKeys, optional
-        CURVE keys, as for :class:`autotune.bus.BusClient`.
+        CURVE keys, as for :class:`autotune.wire.bus.BusClient`.
     """
 
     def __init__(self, endpoint: str, *, timeout_s: float, curve: CurveClientKeys | None = None) -> None:

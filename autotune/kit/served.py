@@ -3,13 +3,13 @@
 :class:`ServedDriver` turns a lab's driver (:mod:`autotune.driver`, in its own channels and
 units) into an object with the protocol's operations (``describe``, ``apply``, ``acquire``,
 ``status``, ``safe``, and the simulated-only ones when the driver has them) returning the
-protocol's result dicts. :class:`autotune.server.RigServer` serves such an object over ZeroMQ.
+protocol's result dicts. :class:`autotune.kit.server.RigServer` serves such an object over ZeroMQ.
 
 What it does around each driver call:
 
 - ``apply``: reads ``status`` first; refuses with ``interlock`` or ``busy`` if the rig reports
   one; takes the set-points in force from the read-backs; checks every requested set-point in
-  both units (limits and steps, :meth:`autotune.channels.ChannelMap.plan_apply`); only then
+  both units (limits and steps, :meth:`autotune.kit.channels.ChannelMap.plan_apply`); only then
   calls the driver with channel values; reads ``status`` again for the result.
 - ``acquire``: refuses shot counts above the driver's maximum (``bad_request``) and refuses
   under interlock or busy; after the driver's acquisition, reads ``status`` for the
@@ -57,7 +57,7 @@ class DriverResultError(RuntimeError):
 def _acted() -> Iterator[None]:
     """The part of an op after the driver acted (read-backs, result checks): whatever fails
     there is marked as a request that ran, so the server keeps its ``internal`` reply and never
-    runs the request twice (:func:`autotune.server.mark_ran`)."""
+    runs the request twice (:func:`autotune.kit.server.mark_ran`)."""
     try:
         yield
     except BaseException as exc:

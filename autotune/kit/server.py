@@ -1,7 +1,7 @@
-"""Serve a rig over :mod:`autotune.protocol` on a ZeroMQ ROUTER socket.
+"""Serve a rig over :mod:`autotune.wire.protocol` on a ZeroMQ ROUTER socket.
 
 :class:`RigServer` is the protocol's transport for any object with the protocol's operations,
-in practice a lab's driver behind :class:`autotune.served.ServedDriver` (``autotune serve``)
+in practice a lab's driver behind :class:`autotune.kit.served.ServedDriver` (``autotune serve``)
 or the bundled simulated rig's driver (``autotune rig``). It answers every request, valid or
 not, with one reply; bad input never stops it. A request repeated with a ``msg_id`` it has
 answered gets the cached reply bytes and is not executed again (bounded LRU cache); replies of
@@ -13,7 +13,7 @@ their error kinds; any other exception, ``BaseException`` included (``SystemExit
 ``KeyboardInterrupt``, ``GeneratorExit``), is ``internal`` and the server keeps serving. Every
 result of ``describe``, ``status``, ``apply``, ``acquire`` and ``safe`` carries the server's
 ``instance``, new at each start. The protocol's lease (*One driver at a time*) is kept here, in a
-:class:`autotune.lease.LeaseBook`: ``claim`` and ``release`` are answered by the server, an
+:class:`autotune.kit.lease.LeaseBook`: ``claim`` and ``release`` are answered by the server, an
 op another client's lease reserves is refused ``leased`` without reaching the rig, and every
 ``safe`` is logged with its sender. Faults can be injected to test clients: dropped, delayed and corrupted replies, and an
 exit after a number of messages. Optional CURVE encryption admits only clients whose public
@@ -242,7 +242,7 @@ class RigServer:
     rig : object
         The rig: methods ``describe``, ``apply``, ``acquire``, ``status``, ``safe`` returning
         the protocol's JSON-ready result dicts and raising the refusals of
-        :mod:`autotune.driver` (usually an :class:`autotune.served.ServedDriver`); the
+        :mod:`autotune.driver` (usually an :class:`autotune.kit.served.ServedDriver`); the
         simulated-only ``truth``, ``advance`` and ``thermal_step`` are served where it has
         them, and answered ``unknown_op`` where it has not.
     bind : str
@@ -680,17 +680,17 @@ def write_ready_file(path: str | os.PathLike[str], endpoint: str) -> None:
 class LocalRig:
     """A served rig in this process, spoken to through the wire protocol without a socket.
 
-    Offers the methods of :class:`autotune.bus.BusClient` (the ``Rig`` interface plus the
+    Offers the methods of :class:`autotune.wire.bus.BusClient` (the ``Rig`` interface plus the
     simulated-only ``truth``, ``advance`` and ``thermal_step``). Each call is encoded as a
     protocol request, answered by :meth:`RigServer.handle` (validation, error kinds, replay
-    cache, instance) and decoded by the client-side parsers of :mod:`autotune.protocol`, so
+    cache, instance) and decoded by the client-side parsers of :mod:`autotune.wire.protocol`, so
     only the ZeroMQ transport is left out. Benchmark studies that run hundreds of simulated
     calibrations use it; integration tests and dry runs use the real bus.
 
     Parameters
     ----------
     driver : object
-        A rig driver (:mod:`autotune.driver`), served with :class:`autotune.served.ServedDriver`
+        A rig driver (:mod:`autotune.driver`), served with :class:`autotune.kit.served.ServedDriver`
         (identity channel map unless ``setpoints`` is given), or an object that already has
         the protocol's operations (pass ``served=True``).
     setpoints : Mapping, optional

@@ -2,7 +2,7 @@
 
 Reads a run folder (``manifest.json``, ``journal.jsonl``, ``result.json`` once the run ended)
 into a :class:`Run`; never writes. A last journal line cut by a kill is ignored (see
-:func:`autotune.journal.read_journal`). Journal record types and measurement labels it does not
+:func:`autotune.run.journal.read_journal`). Journal record types and measurement labels it does not
 know are counted in :attr:`Run.unknown`, so the report keeps working while the loop learns new
 steps. Also the small value helpers every part of the report shares (durations, levels,
 set-points for a person).

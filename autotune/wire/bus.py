@@ -1,6 +1,6 @@
 """The ZeroMQ client of a rig: bounded waits, retries with the same msg_id, reconnects, CURVE keys.
 
-:class:`BusClient` speaks :mod:`autotune.protocol` over a REQ socket. Every call waits at most
+:class:`BusClient` speaks :mod:`autotune.wire.protocol` over a REQ socket. Every call waits at most
 ``timeout_s`` per attempt and makes at most ``1 + retries`` attempts, so a call never takes
 longer than :attr:`BusClient.max_wait_s`. A missed reply closes the socket (linger 0), opens a
 new one and resends the same bytes with the same ``msg_id``; the rig answers a repeated

@@ -181,7 +181,7 @@ The ``leased`` error object has two more keys: ``"holder": str`` (the holder's i
 to its user as it is. (A client of the first edition reads ``leased`` as an unknown error
 kind: it stops, as it should, rather than drive a rig someone else drives.)
 
-autotune claims for :data:`autotune.bus.LEASE_TTL_S` seconds and renews every third of it
+autotune claims for :data:`autotune.wire.bus.LEASE_TTL_S` seconds and renews every third of it
 from a thread of its own; it waits for a lease whose holder it knows is dead (a process of its
 own host that no longer runs) to run out, and refuses to start on one held by a live client
 unless told to wait (``--wait-lease-s``).

@@ -3,7 +3,7 @@
 The loop talks to "a rig" only through :class:`Rig`: five operations that mirror the wire
 protocol's ops of the same names. An implementation checks each reply against what it applied
 (:class:`autotune.errors.RigMismatch`, :class:`autotune.errors.RigRestarted`); ``describe``
-(re)starts that watch. :class:`autotune.bus.BusClient` is the implementation used
+(re)starts that watch. :class:`autotune.wire.bus.BusClient` is the implementation used
 against every real or simulated rig; tests may pass any other object with these methods.
 """
 
