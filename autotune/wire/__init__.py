@@ -6,7 +6,9 @@ What lives here:
   implemented by :mod:`~autotune.wire.terms` (version, limits, ops, error kinds),
   :mod:`~autotune.wire.codec` (strict JSON, requests and replies as bytes, an op's arguments
   checked) and :mod:`~autotune.wire.results` (the ops' results read into typed objects);
-- :mod:`~autotune.wire.bus`: the ZeroMQ client (bounded waits, retries, reconnect, CURVE keys);
+- :mod:`~autotune.wire.bus`: the ZeroMQ client (bounded waits, retries, reconnect), with its
+  CURVE keys in :mod:`~autotune.wire.keys` and its side of the rig's lease (who this client
+  is, the thread that renews the lease) in :mod:`~autotune.wire.claim`;
 - :mod:`~autotune.wire.rig`: the ``Rig`` interface the loop talks to, which the client and the
   in-process simulated rig both implement.
 
@@ -16,4 +18,4 @@ the analysis, the lab kit, a run, the report, the study or the command line
 (tests/test_layout.py holds this). ``drivers_sim`` imports :mod:`autotune.wire.protocol`.
 """
 
-__all__ = ["bus", "codec", "protocol", "results", "rig", "terms"]
+__all__ = ["bus", "claim", "codec", "keys", "protocol", "results", "rig", "terms"]

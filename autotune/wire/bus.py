@@ -35,15 +35,10 @@ from __future__ import annotations
 
 import contextlib
 import math
-import os
-import re
 import threading
 import time
 import types
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass
-from pathlib import Path
-from socket import gethostname
 from typing import Any
 
 import structlog
@@ -65,6 +60,8 @@ from autotune.errors import (
     RigRestarted,
     RigTimeout,
 )
+from autotune.wire.claim import LEASE_TTL_S, LeaseKeeper, client_identity, holder_gone
+from autotune.wire.keys import CurveClientKeys
 from autotune.wire.protocol import Acquisition, Applied, Description, Op, SetpointLimit, Status
 
 __all__ = ["BusClient", "CurveClientKeys", "LEASE_TTL_S", "client_identity"]
@@ -79,38 +76,6 @@ _CLOCK_SLACK_S = 1e-9
 
 _STOP_POLL_S = 0.2
 """Longest wait between two looks at the stop event, s."""
-LEASE_TTL_S = 20.0
-"""Time to live of the lease autotune claims, s: renewed every third of it while the process
-lives, so a client that dies frees the rig within this time."""
-
-
-def client_identity(command: str) -> str:
-    """This process as a lease holder: ``USER@HOST pid PID (COMMAND)``, printable ASCII."""
-    try:
-        user = os.getlogin()
-    except OSError:
-        user = os.environ.get("USER") or os.environ.get("LOGNAME") or str(os.getuid())
-    text = f"{user}@{gethostname()} pid {os.getpid()} ({command})"
-    return "".join(c if " " <= c <= "~" else "?" for c in text)[:128]
-
-
-_IDENTITY_RE = re.compile(r"[^@]*@(?P<host>\S+) pid (?P<pid>\d+) \(")
-
-
-def _holder_gone(holder: str | None) -> bool:
-    """True for a holder identity of :func:`client_identity` naming a process of this host
-    that no longer runs."""
-    match = _IDENTITY_RE.match(holder or "")
-    if match is None or match["host"] != gethostname():
-        return False
-    try:
-        os.kill(int(match["pid"]), 0)
-    except ProcessLookupError:
-        return True
-    except (PermissionError, OverflowError, ValueError):
-        return False
-    return False
-
 
 def _mismatch_text(name: str, in_force: float | None, applied: float) -> str:
     """``"detuning -4.06 kHz (applied -4.20 kHz)"``: in a physicist's units, with more digits
@@ -121,118 +86,6 @@ def _mismatch_text(name: str, in_force: float | None, applied: float) -> str:
     if shown == wanted:
         shown, wanted = f"{in_force:.12g}", f"{applied:.12g}"
     return f"{name} {shown} (applied {wanted})"
-
-
-class _LeaseKeeper:
-    """Renews a lease from its own thread and socket (a client's socket is not thread-safe)."""
-
-    def __init__(self, context: zmq.Context, endpoint: str, curve: CurveClientKeys | None,
-                 client: str, ttl_s: float, timeout_s: float, log: Any) -> None:
-        self._context, self._endpoint, self._curve = context, endpoint, curve
-        self._client, self._ttl_s, self._log = client, ttl_s, log
-        self._timeout_ms = max(1, int(round(min(timeout_s, ttl_s / 3) * 1000)))
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="lease-keeper", daemon=True)
-
-    def start(self) -> None:
-        self._thread.start()
-
-    def stop(self) -> None:
-        self._stop.set()
-        self._thread.join()
-
-    def exchange_once(self, data: bytes) -> bytes | None:
-        """Send one request on a fresh socket and wait one bound for its reply."""
-        socket = self._context.socket(zmq.REQ)
-        try:
-            socket.setsockopt(zmq.LINGER, 0)
-            socket.setsockopt(zmq.RCVTIMEO, self._timeout_ms)
-            socket.setsockopt(zmq.SNDTIMEO, self._timeout_ms)
-            if self._curve is not None:
-                socket.curve_publickey = self._curve.public
-                socket.curve_secretkey = self._curve.secret
-                socket.curve_serverkey = self._curve.server_public
-            socket.connect(self._endpoint)
-            socket.send(data)
-            return socket.recv()
-        except zmq.ZMQError:
-            return None
-        finally:
-            socket.close(linger=0)
-
-    def _run(self) -> None:
-        while not self._stop.wait(self._ttl_s / 3):
-            msg_id = protocol.new_msg_id()
-            data = protocol.encode_request(Op.CLAIM, {"ttl_s": self._ttl_s}, msg_id,
-                                           client=self._client)
-            reply = self.exchange_once(data)
-            if reply is None:
-                # Usually the rig is busy with this client's own long request, whose end renews
-                # the lease on the rig's side.
-                self._log.info("lease_not_renewed", reason="no reply; trying again")
-                continue
-            try:
-                protocol.decode_reply(reply, msg_id)
-            except RigRefused as exc:
-                self._log.error("lease_lost", kind=exc.kind, detail=exc.detail,
-                                consequence="the rig refuses this client's moves and "
-                                            "acquisitions from now on")
-                if exc.kind == "leased":
-                    return
-            except ProtocolError as exc:
-                self._log.warning("lease_not_renewed", reason=str(exc))
-
-
-
-@dataclass(frozen=True)
-class CurveClientKeys:
-    """CURVE keys of a client: its own pair and the server's public key (Z85 bytes).
-
-    Attributes
-    ----------
-    public, secret : bytes
-        The client's key pair.
-    server_public : bytes
-        The server's public key.
-    """
-
-    public: bytes
-    secret: bytes
-    server_public: bytes
-
-    def __repr__(self) -> str:
-        return f"CurveClientKeys(public={self.public!r}, secret=<hidden>, server_public={self.server_public!r})"
-
-    @classmethod
-    def load(cls, client_secret_file: str | Path, server_public_file: str | Path) -> CurveClientKeys:
-        """Load keys from certificate files written by ``zmq.auth.create_certificates``.
-
-        Parameters
-        ----------
-        client_secret_file : str or Path
-            The client's ``.key_secret`` file (holds both of its keys).
-        server_public_file : str or Path
-            The server's ``.key`` (public) file.
-
-        Raises
-        ------
-        ConfigError
-            If a file is missing, unreadable, or lacks the key it must hold. There is no
-            fallback to plain text.
-        """
-        public, secret = _load_certificate(client_secret_file, "curve.client_secret_file")
-        if secret is None:
-            raise ConfigError(str(client_secret_file), "curve.client_secret_file",
-                              "a certificate with a secret key", "a public-only certificate")
-        server_public, _ = _load_certificate(server_public_file, "curve.server_public_file")
-        return cls(public=public, secret=secret, server_public=server_public)
-
-
-def _load_certificate(path: str | Path, key: str) -> tuple[bytes, bytes | None]:
-    try:
-        return zmq.auth.load_certificate(path)
-    except (OSError, ValueError) as exc:
-        raise ConfigError(str(path), key, "a readable ZeroMQ certificate file", f"{type(exc).__name__}: {exc}") from exc
 
 
 def _same(reported: float | None, applied: float) -> bool:
@@ -355,7 +208,7 @@ class BusClient:
         # The lease (see claim): this client's identity once the rig granted one, and the
         # thread that renews it.
         self._lease_client: str | None = None
-        self._keeper: _LeaseKeeper | None = None
+        self._keeper: LeaseKeeper | None = None
         try:
             self._open()
         except ConfigError:
@@ -654,7 +507,7 @@ class BusClient:
             except RigLeased as exc:
                 self._lease_client = None
                 left = deadline - time.monotonic()
-                if _holder_gone(exc.holder) and exc.expires_in_s is not None:
+                if holder_gone(exc.holder) and exc.expires_in_s is not None:
                     # A process of this host that no longer runs (killed before it could
                     # release): its lease runs out by itself; wait for that, as for a lock.
                     deadline = max(deadline, time.monotonic() + exc.expires_in_s + 0.5)
@@ -685,7 +538,7 @@ class BusClient:
                 raise
             break
         self._log.info("lease_held", client=client, ttl_s=lease.ttl_s)
-        self._keeper = _LeaseKeeper(self._context, self._endpoint, self._curve, client,
+        self._keeper = LeaseKeeper(self._context, self._endpoint, self._curve, client,
                                     float(ttl_s), self._timeout_s, self._log)
         self._keeper.start()
         return lease
