@@ -13,7 +13,8 @@ What lives here:
 - :mod:`~autotune.kit.server`: ``RigServer`` (ZeroMQ transport, replay cache, lease, CURVE,
   faults) and ``LocalRig`` (the same handler in process);
 - :mod:`~autotune.kit.lease`: the rig's lease book, who may move it and until when (pure);
-- :mod:`~autotune.kit.probe`: the conformance probe (``autotune probe``).
+- :mod:`~autotune.kit.probe`: the conformance probe (``autotune probe``), with its rules, findings
+  and link to the rig in :mod:`~autotune.kit.probe_rules`.
 
 What it may import: the foundation modules (:mod:`autotune.errors`, :mod:`autotune.plausible`,
 :mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`), the wire
@@ -22,4 +23,4 @@ command line (tests/test_layout.py holds this). ``drivers_sim`` imports
 :mod:`autotune.driver`.
 """
 
-__all__ = ["channels", "driver", "driver_config", "lease", "probe", "served", "server"]
+__all__ = ["channels", "driver", "driver_config", "lease", "probe", "probe_rules", "served", "server"]

@@ -81,202 +81,19 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any
 
-import zmq
 
 from autotune.wire import protocol
-from autotune.wire.bus import CurveClientKeys
 from autotune.errors import ProtocolError, RigLeased, RigRefused
 from autotune.wire.protocol import Description
+from autotune.kit.probe_rules import (EXPECTED, IDENTIFIED_OPS, MOVING_RULES, OCCASIONAL_RULES,
+                                      PROBE_OP, RULES, SETPOINT_UNITS, STILL_RULES, Answer,
+                                      Finding, Link, Outcome, number_text, raw_request,
+                                      shortened)
 
 __all__ = ["Finding", "Probe", "Link", "STILL_RULES", "MOVING_RULES", "RULES",
            "OCCASIONAL_RULES", "summarise"]
-
-Outcome = Literal["pass", "fail", "warn", "skip"]
-
-#: Rules that need no motion, in the order they run.
-STILL_RULES: tuple[str, ...] = (
-    "describe", "describe.setpoints", "describe.safe", "describe.fields", "status", "version",
-    "unknown_op", "bad_request.json", "bad_request.keys", "bad_request.types", "bad_request.msg_id",
-    "bad_request.duplicate", "size_limit", "msg_id.reuse",
-)
-#: Rules that move the rig, in the order they run.
-MOVING_RULES: tuple[str, ...] = (
-    "nonfinite", "apply", "apply.full_step", "refuse.out_of_range", "refuse.step", "acquire",
-    "replay", "acquire.field", "safe", "lease.claim", "lease.refuse", "lease.safe",
-    "lease.release", "lease.expiry",
-)
-#: Every rule reported at every probe, in the order they are reported.
-RULES: tuple[str, ...] = STILL_RULES + MOVING_RULES + ("instance",)
-#: Rules reported only when their occasion arises (before ``instance``): ``internal``.
-OCCASIONAL_RULES: tuple[str, ...] = ("internal",)
-
-_EXPECTED = {
-    "describe": "describe answers with rig, proto 1, simulated, setpoints, fields, repetition_rate_hz, safe_setpoints",
-    "describe.setpoints": "velocity in m/s and detuning in Hz described, min <= max, max_step > 0",
-    "describe.safe": "safe_setpoints names every set-point, within its limits",
-    "describe.fields": "fields holds empty and one_photon",
-    "status": "status answers clock, busy, interlock, setpoints (the described names), shots_total",
-    "version": "proto 2 answered unsupported_version, echoing the msg_id",
-    "unknown_op": "an unknown op answered unknown_op, echoing the msg_id",
-    "bad_request.json": "a frame that is not JSON answered bad_request with msg_id \"\"",
-    "bad_request.keys": "a request without args answered bad_request, echoing the msg_id",
-    "bad_request.types": "apply with setpoints that are not an object answered bad_request",
-    "bad_request.msg_id": "a msg_id that is not lower-case hex answered bad_request with msg_id \"\"",
-    "bad_request.duplicate": "a JSON object with a duplicate key answered bad_request",
-    "size_limit": f"a request longer than {protocol.MAX_MESSAGE_BYTES} bytes answered bad_request",
-    "msg_id.reuse": "a msg_id reused for another request answered bad_request",
-    "nonfinite": "NaN, Infinity, -Infinity, 1e999 in apply answered bad_request; nothing moves",
-    "apply": "a step of half max_step is applied; the reply and status show it",
-    "apply.full_step": "a step of exactly max_step is accepted",
-    "refuse.out_of_range": "a value beyond a limit answered out_of_range naming the set-point; nothing moves",
-    "refuse.step": "a step of 1.5 max_step answered out_of_range; nothing moves",
-    "acquire": "acquire answers counts e/g/i, the shots asked, a clock that does not go back, the "
-               "set-points in force; shots_total grows by the shots",
-    "replay": "a repeated msg_id answered with the first reply, executed once (shots_total grows once)",
-    "acquire.field": "an unknown field answered bad_request; nothing acquired",
-    "safe": "safe answers the described safe set-points; status shows them",
-    "lease.claim": "claim grants the lease (holder, ttl_s, expires_in_s, renewed false); a second "
-                   "claim renews it (optional feature)",
-    "lease.refuse": "another client's claim, apply and acquire answered leased with holder and "
-                    "expires_in_s; nothing acquired; its status answered",
-    "lease.safe": "another client's safe is executed; the lease stays with its holder",
-    "lease.release": "another client's release answered leased; the holder's releases it; then "
-                     "the other client claims",
-    "lease.expiry": "a lease of 1 s not renewed runs out: another client claims it 1.5 s later",
-    "instance": "the same instance in every describe/status/apply/acquire/safe result (optional)",
-    "internal": "a request answered internal reaches the rig again when retried with its msg_id "
-                "(an internal reply to a request that did not complete is not kept)",
-}
-_IDENTIFIED = frozenset({"describe", "status", "apply", "acquire", "safe"})
-_SETPOINT_UNITS = {"velocity": "m/s", "detuning": "Hz"}
-_PROBE_OP = "no_such_op_from_the_probe"
-
-
-@dataclass(frozen=True)
-class Finding:
-    """The outcome of one rule.
-
-    Attributes
-    ----------
-    rule : str
-        The rule's name (see the module docstring).
-    outcome : {"pass", "fail", "warn", "skip"}
-        What happened.
-    expected : str
-        What the protocol asks.
-    got : str
-        What the rig did, where it matters ("" for a plain pass).
-    """
-
-    rule: str
-    outcome: Outcome
-    expected: str
-    got: str = ""
-
-    def line(self) -> str:
-        """The finding as one printed line."""
-        text = f"{self.outcome.upper():<5} {self.rule:<22} expected: {self.expected}"
-        return text + (f"; got: {self.got}" if self.got else "")
-
-
-class Link:
-    """A REQ socket to the rig with a bounded wait per exchange; reopened after a missed reply.
-
-    Parameters
-    ----------
-    endpoint : str
-        The rig's endpoint.
-    timeout_s : float
-        Longest wait for one reply, s.
-    curve : CurveClientKeys, optional
-        CURVE keys, as for :class:`autotune.wire.bus.BusClient`.
-    """
-
-    def __init__(self, endpoint: str, *, timeout_s: float, curve: CurveClientKeys | None = None) -> None:
-        self.endpoint = endpoint
-        self.timeout_s = timeout_s
-        self._curve = curve
-        self._context = zmq.Context()
-        self._socket: zmq.Socket | None = None
-
-    def _open(self) -> zmq.Socket:
-        socket = self._context.socket(zmq.REQ)
-        socket.setsockopt(zmq.LINGER, 0)
-        socket.setsockopt(zmq.MAXMSGSIZE, 4 * protocol.MAX_MESSAGE_BYTES)
-        if self._curve is not None:
-            socket.curve_publickey = self._curve.public
-            socket.curve_secretkey = self._curve.secret
-            socket.curve_serverkey = self._curve.server_public
-        socket.connect(self.endpoint)
-        return socket
-
-    def exchange(self, data: bytes) -> bytes | None:
-        """Send one frame and return the reply frame, or None if none came within the bound."""
-        if self._socket is None:
-            self._socket = self._open()
-        socket = self._socket
-        timeout_ms = max(1, int(self.timeout_s * 1000))
-        if not socket.poll(timeout_ms, zmq.POLLOUT):
-            self.reset()
-            return None
-        socket.send(data, zmq.NOBLOCK)
-        if not socket.poll(timeout_ms, zmq.POLLIN):
-            self.reset()  # a REQ socket that missed its reply cannot send again
-            return None
-        frames = socket.recv_multipart()
-        return frames[0] if len(frames) == 1 else b"".join(frames)
-
-    def reset(self) -> None:
-        """Close the socket; the next exchange opens a new one."""
-        if self._socket is not None:
-            self._socket.close(linger=0)
-            self._socket = None
-
-    def close(self) -> None:
-        """Close the socket and the context. Safe to call twice."""
-        self.reset()
-        if not self._context.closed:
-            self._context.term()
-
-
-@dataclass(frozen=True)
-class _Answer:
-    """One reply, read strictly with the client's decoder."""
-
-    result: dict[str, Any] | None = None
-    kind: str | None = None
-    detail: str = ""
-    echoed: object = None
-    problem: str | None = None
-    holder: str | None = None
-    expires_in_s: float | None = None
-
-    def show(self) -> str:
-        if self.problem is not None:
-            return self.problem
-        if self.kind is not None:
-            return f"error {self.kind} ({_short(self.detail)})"
-        return "an ok reply"
-
-
-def _num(value: object) -> str:
-    """A set-point value as a person reads it (ten significant digits)."""
-    return f"{value:.10g}" if isinstance(value, float) else repr(value)
-
-
-def _short(text: str, limit: int = 120) -> str:
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
-def _request(op: str, args: Any, msg_id: str, *, proto: Any = protocol.PROTO_VERSION,
-             client: str | None = None) -> bytes:
-    message = {"proto": proto, "msg_id": msg_id, "op": op, "args": args}
-    if client is not None:
-        message["client"] = client
-    return json.dumps(message).encode()
 
 
 #: The probe's identities in the lease rules: the holder and a second client.
@@ -321,7 +138,7 @@ class Probe:
     # ------------------------------------------------------------------ recording
 
     def _record(self, rule: str, outcome: Outcome, got: str = "") -> None:
-        finding = Finding(rule, outcome, _EXPECTED[rule], got)
+        finding = Finding(rule, outcome, EXPECTED[rule], got)
         self.findings.append(finding)
         self._report(finding)
 
@@ -333,10 +150,10 @@ class Probe:
 
     # ------------------------------------------------------------------ exchanges
 
-    def _send(self, data: bytes, msg_id: str, op: str | None = None) -> _Answer:
+    def _send(self, data: bytes, msg_id: str, op: str | None = None) -> Answer:
         raw = self._link.exchange(data)
         if raw is None:
-            return _Answer(problem=f"no reply within {self._link.timeout_s:g} s")
+            return Answer(problem=f"no reply within {self._link.timeout_s:g} s")
         try:
             echoed = json.loads(raw).get("msg_id")
         except (ValueError, AttributeError, RecursionError):
@@ -344,26 +161,26 @@ class Probe:
         try:
             result = protocol.decode_reply(raw, msg_id)
         except RigLeased as exc:
-            return _Answer(kind=exc.kind, detail=exc.detail, echoed=echoed, holder=exc.holder,
+            return Answer(kind=exc.kind, detail=exc.detail, echoed=echoed, holder=exc.holder,
                            expires_in_s=exc.expires_in_s)
         except RigRefused as exc:
-            return _Answer(kind=exc.kind, detail=exc.detail, echoed=echoed)
+            return Answer(kind=exc.kind, detail=exc.detail, echoed=echoed)
         except ProtocolError as exc:
-            return _Answer(problem=f"a malformed reply ({_short(str(exc))})", echoed=echoed)
-        if op in _IDENTIFIED:
+            return Answer(problem=f"a malformed reply ({shortened(str(exc))})", echoed=echoed)
+        if op in IDENTIFIED_OPS:
             self._instances.append((op, result.get("instance")))
-        return _Answer(result=result, echoed=echoed)
+        return Answer(result=result, echoed=echoed)
 
     def _call(self, op: str, args: Mapping[str, Any] | None = None, *,
-              client: str | None = None) -> _Answer:
+              client: str | None = None) -> Answer:
         msg_id = protocol.new_msg_id()
-        data = _request(op, dict(args or {}), msg_id, client=client)
+        data = raw_request(op, dict(args or {}), msg_id, client=client)
         answer = self._send(data, msg_id, op)
         if answer.kind == "internal":
             answer = self._retry_internal(data, msg_id, op, answer)
         return answer
 
-    def _retry_internal(self, data: bytes, msg_id: str, op: str, first: _Answer) -> _Answer:
+    def _retry_internal(self, data: bytes, msg_id: str, op: str, first: Answer) -> Answer:
         """A request answered ``internal``: retry it once with its msg_id (as autotune does);
         the retry must reach the rig again. Keeps the ``internal`` rule's finding (the first
         one met) and returns the retry's answer."""
@@ -375,7 +192,7 @@ class Probe:
             # Failed again, or replayed from the cache? A kept reply makes the msg_id used:
             # another request under it is then refused as a reuse (or answered the old reply).
             other = "describe" if op != "describe" else "status"
-            reuse = self._send(_request(other, {}, msg_id), msg_id, other)
+            reuse = self._send(raw_request(other, {}, msg_id), msg_id, other)
             if reuse.result is not None:
                 finding = ("pass", f"{op} answered internal twice; the retry was executed "
                                    f"again (the reply was not kept)")
@@ -428,7 +245,7 @@ class Probe:
 
     def _unchanged(self, before: Mapping[str, float], after: Mapping[str, float]) -> str:
         """"" if every set-point is where it was, else a description of what moved."""
-        moved = [f"{name} {_num(before[name])} -> {_num(after.get(name))}" for name in before
+        moved = [f"{name} {number_text(before[name])} -> {number_text(after.get(name))}" for name in before
                  if name not in after or not self._close_enough(name, after[name], before[name])]
         return ", ".join(moved)
 
@@ -480,13 +297,13 @@ class Probe:
         self.description = description
         self._pass("describe", f"rig {description.rig!r}, simulated {str(description.simulated).lower()}")
         problems = []
-        for name, unit in _SETPOINT_UNITS.items():
+        for name, unit in SETPOINT_UNITS.items():
             limit = description.setpoints.get(name)
             if limit is None:
                 problems.append(f"no {name}")
             elif limit.unit != unit:
                 problems.append(f"{name} in {limit.unit!r}")
-        extra = sorted(set(description.setpoints) - set(_SETPOINT_UNITS))
+        extra = sorted(set(description.setpoints) - set(SETPOINT_UNITS))
         if problems:
             self._fail("describe.setpoints", ", ".join(problems))
         elif extra:
@@ -499,7 +316,7 @@ class Probe:
             if safe is None:
                 problems.append(f"no safe value for {name}")
             elif not limit.min <= safe <= limit.max:
-                problems.append(f"{name} safe {_num(safe)} outside [{_num(limit.min)}, {_num(limit.max)}]")
+                problems.append(f"{name} safe {number_text(safe)} outside [{number_text(limit.min)}, {number_text(limit.max)}]")
         self._fail("describe.safe", "; ".join(problems)) if problems else self._pass("describe.safe")
         missing = [f for f in ("empty", "one_photon") if f not in description.fields]
         if missing:
@@ -527,31 +344,31 @@ class Probe:
                 else:
                     self._pass("status")
         msg_id = protocol.new_msg_id()
-        self._expect_error("version", _request("status", {}, msg_id, proto=2), msg_id,
+        self._expect_error("version", raw_request("status", {}, msg_id, proto=2), msg_id,
                            "unsupported_version", echo=msg_id)
         msg_id = protocol.new_msg_id()
-        self._expect_error("unknown_op", _request(_PROBE_OP, {}, msg_id), msg_id, "unknown_op", echo=msg_id)
+        self._expect_error("unknown_op", raw_request(PROBE_OP, {}, msg_id), msg_id, "unknown_op", echo=msg_id)
         self._expect_error("bad_request.json", b"{\"proto\": 1, \"msg_id\": ", "", "bad_request", echo="")
         msg_id = protocol.new_msg_id()
         data = json.dumps({"proto": 1, "msg_id": msg_id, "op": "status"}).encode()
         self._expect_error("bad_request.keys", data, msg_id, "bad_request", echo=msg_id)
         msg_id = protocol.new_msg_id()
-        self._expect_error("bad_request.types", _request("apply", {"setpoints": "fast"}, msg_id), msg_id,
+        self._expect_error("bad_request.types", raw_request("apply", {"setpoints": "fast"}, msg_id), msg_id,
                            "bad_request", echo=msg_id)
-        data = _request("status", {}, "NOT-HEX")
+        data = raw_request("status", {}, "NOT-HEX")
         self._expect_error("bad_request.msg_id", data, "", "bad_request", echo="")
         msg_id = protocol.new_msg_id()
         data = (f'{{"proto": 1, "proto": 1, "msg_id": "{msg_id}", "op": "status", "args": {{}}}}').encode()
         self._expect_error("bad_request.duplicate", data, msg_id, "bad_request", echo=None)
         msg_id = protocol.new_msg_id()
-        data = _request("status", {}, msg_id) + b" " * (protocol.MAX_MESSAGE_BYTES + 16)
+        data = raw_request("status", {}, msg_id) + b" " * (protocol.MAX_MESSAGE_BYTES + 16)
         self._expect_error("size_limit", data, msg_id, "bad_request", echo=None)
         msg_id = protocol.new_msg_id()
-        first = self._send(_request("status", {}, msg_id), msg_id, "status")
+        first = self._send(raw_request("status", {}, msg_id), msg_id, "status")
         if first.result is None:
             self._fail("msg_id.reuse", f"the first use: {first.show()}")
         else:
-            self._expect_error("msg_id.reuse", _request("describe", {}, msg_id), msg_id, "bad_request",
+            self._expect_error("msg_id.reuse", raw_request("describe", {}, msg_id), msg_id, "bad_request",
                                echo=None)
         return status
 
@@ -589,17 +406,17 @@ class Probe:
             raise _Incomplete from None
         if lease.holder != client or lease.renewed is not renewed or not 0 < lease.expires_in_s <= ttl_s:
             self._fail(rule, f"claim by {client!r}: holder {lease.holder!r}, renewed "
-                             f"{str(lease.renewed).lower()}, expires_in_s {_num(lease.expires_in_s)} "
-                             f"(ttl_s {_num(ttl_s)})")
+                             f"{str(lease.renewed).lower()}, expires_in_s {number_text(lease.expires_in_s)} "
+                             f"(ttl_s {number_text(ttl_s)})")
             raise _Incomplete
 
-    def _leased(self, answer: _Answer, what: str) -> str:
+    def _leased(self, answer: Answer, what: str) -> str:
         """"" if ``answer`` is a proper ``leased`` refusal naming the probe's holder, else why not."""
         if answer.kind != "leased":
             return f"{what}: {answer.show()}"
         if answer.holder != _HOLDER or answer.expires_in_s is None or answer.expires_in_s <= 0:
             return (f"{what}: leased, but holder {answer.holder!r} and expires_in_s "
-                    f"{_num(answer.expires_in_s)} (expected {_HOLDER!r} and a time > 0)")
+                    f"{number_text(answer.expires_in_s)} (expected {_HOLDER!r} and a time > 0)")
         return ""
 
     def _lease_rules(self) -> None:
@@ -696,7 +513,7 @@ class Probe:
     def _apply(self, rule: str, name: str, value: float) -> bool:
         answer = self._call("apply", {"setpoints": {name: value}})
         if answer.result is None:
-            self._fail(rule, f"{name} {_num(value)}: {answer.show()}")
+            self._fail(rule, f"{name} {number_text(value)}: {answer.show()}")
             return False
         try:
             applied = protocol.parse_applied(answer.result)
@@ -705,11 +522,11 @@ class Probe:
             return False
         reported = applied.setpoints.get(name)
         if reported is None or not self._close_enough(name, reported, value):
-            self._fail(rule, f"{name} {_num(value)} sent, the reply says {_num(reported)}")
+            self._fail(rule, f"{name} {number_text(value)} sent, the reply says {number_text(reported)}")
             return False
         shown = self._in_force(rule).setpoints.get(name)
         if shown is None or not self._close_enough(name, shown, value):
-            self._fail(rule, f"{name} {_num(value)} applied, status says {_num(shown)}")
+            self._fail(rule, f"{name} {number_text(value)} applied, status says {number_text(shown)}")
             return False
         return True
 
@@ -720,8 +537,8 @@ class Probe:
         for name, limit in self.description.setpoints.items():
             current = start.get(name)
             if current is None or not limit.min <= current <= limit.max:
-                self._fail("apply", f"{name} in force {_num(current)} is outside its limits "
-                                    f"[{_num(limit.min)}, {_num(limit.max)}]; not moved")
+                self._fail("apply", f"{name} in force {number_text(current)} is outside its limits "
+                                    f"[{number_text(limit.min)}, {number_text(limit.max)}]; not moved")
                 raise _Incomplete
             upward = current <= 0.5 * (limit.min + limit.max)
             room = (limit.max - current) if upward else (current - limit.min)
@@ -731,7 +548,7 @@ class Probe:
             target = current + step if upward else current - step
             if not self._apply("apply", name, target):
                 raise _Incomplete
-            moved.append(f"{name} {_num(current)} -> {_num(target)}")
+            moved.append(f"{name} {number_text(current)} -> {number_text(target)}")
         if moved:
             self._pass("apply", "; ".join(moved))
         else:
@@ -746,7 +563,7 @@ class Probe:
             value = here[name] + limit.max_step if room_up >= room_down else here[name] - limit.max_step
             if not self._apply("apply.full_step", name, value):
                 return
-            full.append(f"{name} {_num(here[name])} -> {_num(value)}")
+            full.append(f"{name} {number_text(here[name])} -> {number_text(value)}")
         if full:
             self._pass("apply.full_step", "; ".join(full))
         else:
@@ -780,13 +597,13 @@ class Probe:
         after = self._in_force(rule).setpoints
         moved = self._unchanged(before, after)
         if answer.kind != "out_of_range":
-            self._fail(rule, f"{name} {_num(value)}: {answer.show()}" + (f"; moved {moved}" if moved else ""))
+            self._fail(rule, f"{name} {number_text(value)}: {answer.show()}" + (f"; moved {moved}" if moved else ""))
         elif name not in answer.detail:
-            self._fail(rule, f"out_of_range whose detail does not name {name}: {_short(answer.detail)}")
+            self._fail(rule, f"out_of_range whose detail does not name {name}: {shortened(answer.detail)}")
         elif moved:
             self._fail(rule, f"out_of_range, but moved {moved}")
         else:
-            self._pass(rule, f"{name} {_num(value)}: {_short(answer.detail, 90)}")
+            self._pass(rule, f"{name} {number_text(value)}: {shortened(answer.detail, 90)}")
 
     def _rule_acquire(self) -> None:
         assert self.description is not None
@@ -807,7 +624,7 @@ class Probe:
         if acquisition.shots != shots:
             problems.append(f"shots {acquisition.shots} for {shots} asked")
         if acquisition.t_start < before.clock:
-            problems.append(f"t_start {_num(acquisition.t_start)} before the clock {_num(before.clock)}")
+            problems.append(f"t_start {number_text(acquisition.t_start)} before the clock {number_text(before.clock)}")
         moved = self._unchanged(before.setpoints, acquisition.setpoints)
         if moved:
             problems.append(f"set-points in force differ from status: {moved}")
@@ -820,7 +637,7 @@ class Probe:
             self._pass("acquire", f"{shots} shots: e {counts.e}, g {counts.g}, i {counts.i}")
 
         msg_id = protocol.new_msg_id()
-        data = _request("acquire", args, msg_id)
+        data = raw_request("acquire", args, msg_id)
         first = self._send(data, msg_id, "acquire")
         second = self._send(data, msg_id, "acquire")
         total = self._in_force("replay").shots_total
@@ -878,7 +695,7 @@ class Probe:
             value = next(iter(seen))
             if not isinstance(value, str) or not 1 <= len(value) <= 64 or not all(
                     c.isascii() and (c.isalnum() or c in "_-") for c in value):
-                self._fail("instance", f"malformed {_num(value)}")
+                self._fail("instance", f"malformed {number_text(value)}")
             else:
                 self._pass("instance", value)
 
