@@ -5,7 +5,9 @@ What lives here:
 
 - :mod:`~autotune.run.loop`: one stage, propose -> guard -> apply -> acquire -> estimate -> tell
   -> record (``Session``, ``run_stage``, ``run_guided_stage``);
-- :mod:`~autotune.run.runner`: one stage as a run: run folder, manifest, result, last good store;
+- :mod:`~autotune.run.runner`: one stage as a run: run folder, manifest, result, last good store,
+  with its checks before the first move in :mod:`~autotune.run.preflight` (the config against
+  the rig's description and the store, a resume's changes, a failure settled safely);
 - :mod:`~autotune.run.track`: ``autotune track``, a night in one run folder (the shell around
   :mod:`autotune.analysis.hold` and the guided stages);
 - :mod:`~autotune.run.journal`: append-only JSON Lines, durable, replayable, read up to a damage;
@@ -20,4 +22,4 @@ the report, the study or the command line (tests/test_layout.py holds this): a s
 any rig through :class:`autotune.wire.rig.Rig`.
 """
 
-__all__ = ["display", "journal", "loop", "runlock", "runner", "track"]
+__all__ = ["display", "journal", "loop", "preflight", "runlock", "runner", "track"]
