@@ -24,7 +24,7 @@
         ├── ProtocolError          a reply (or request) does not follow the wire protocol
         ├── RigMismatch            a reply does not match what this client applied or saw
         │   └── RigRestarted       the rig's identity changed or its clock went back: it restarted
-        └── DriverStartError       a lab's driver failed while being built (autotune.driver_config;
+        └── DriverStartError       a lab's driver failed while being built (autotune.kit.driver_config;
                                    a RuntimeError too)
 
     DriverRefusal                  a rig driver refuses a request (``autotune serve`` answers it
@@ -192,7 +192,7 @@ class RunAlreadyEnded(JournalError):
 
 
 class RunFolderInUse(JournalError):
-    """Another live process holds the run folder's lock (see :mod:`autotune.runlock`).
+    """Another live process holds the run folder's lock (see :mod:`autotune.run.runlock`).
 
     Attributes
     ----------

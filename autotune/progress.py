@@ -1,6 +1,6 @@
 """Progress of a running stage as plain numbers, for whoever displays it.
 
-The loop (:class:`autotune.loop.Session`) calls a *progress observer* with a
+The loop (:class:`autotune.run.loop.Session`) calls a *progress observer* with a
 :class:`StageProgress` when a stage starts, after every acquisition and after every estimate.
 It is display data only: it never enters the journal, and an observer that raises is dropped
 (with one warning in the log) rather than allowed to stop a run. Rendering lives in the CLI;

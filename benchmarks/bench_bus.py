@@ -19,8 +19,8 @@ from pathlib import Path
 
 import zmq
 
-from autotune import protocol
-from autotune.bus import BusClient
+from autotune.wire import protocol
+from autotune.wire.bus import BusClient
 
 REPO = Path(__file__).resolve().parents[1]
 START_TIMEOUT_S = 30.0

@@ -7,8 +7,8 @@ endpoint). Measured side by side, in alternating rounds so that machine noise hi
 - **deferred**: the command as users run it (``python -m autotune.cli ...``): the run's modules,
   with scipy, scikit-optimize and matplotlib, are imported after the first line;
 - **eager**: the same command in a process that imports the run's module first
-  (``autotune.runner`` for calibrate, ``autotune.track`` for track), as the command did before
-  its imports were deferred.
+  (``autotune.run.runner`` for calibrate, ``autotune.run.track`` for track), as the command did
+  before its imports were deferred.
 
 Each trial starts a fresh interpreter (cold imports, warm file cache) and is killed (SIGKILL,
 the child of this script only) once its first line is read. Prints the median of each, the
@@ -40,7 +40,7 @@ sys.exit(main(sys.argv[2:]))
 """
 
 #: The module each command imported before its first line, before the imports were deferred.
-_RUN_MODULE = {"calibrate": "autotune.runner", "track": "autotune.track"}
+_RUN_MODULE = {"calibrate": "autotune.run.runner", "track": "autotune.run.track"}
 
 
 def _unserved_endpoint() -> str:

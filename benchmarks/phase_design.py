@@ -29,7 +29,9 @@ import structlog
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from autotune import bench, runner  # noqa: E402
+from autotune.bench import jobs as bench_jobs, scenarios as bench_scenarios  # noqa: E402
+from autotune import bench  # noqa: E402
+from autotune.run import runner  # noqa: E402
 from autotune.config import load_config  # noqa: E402
 
 #: (phases, shots per phase of a search point, of a lock/velocity step, of the verification,
@@ -56,17 +58,17 @@ def _run(job: dict[str, Any]) -> dict[str, Any]:
         lock=dataclasses.replace(config.lock, lock_shots_per_phase=lock_shots,
                                  velocity_shots_per_phase=lock_shots),
         retune=dataclasses.replace(config.retune, check_shots_per_phase=check))
-    rig = bench._local_rig(bench._rig_data(REPO / "configs" / "sim-rig.toml"),
+    rig = bench_scenarios.local_rig(bench_scenarios.rig_data(REPO / "configs" / "sim-rig.toml"),
                            job["scenario"]["perturbation"], job["scenario"]["rig_seed"])
     out: dict[str, Any] = {"design": job["design"]}
     with tempfile.TemporaryDirectory() as tmp:
         store = Path(tmp) / "good.json"
         calibration = runner.calibrate(rig, config, Path(tmp) / "c", store=store)
-        out["calibrate"] = (calibration["shots"], bench._final_truth(rig, calibration["setpoints"])["ratio"])
+        out["calibrate"] = (calibration["shots"], bench_jobs.final_truth(rig, calibration["setpoints"])["ratio"])
         rig.thermal_step(15e3)
         if calibration["accepted"]:
             retune = runner.retune(rig, config, Path(tmp) / "r", store=store)
-            out["retune"] = (retune["shots"], bench._final_truth(rig, retune["setpoints"])["ratio"])
+            out["retune"] = (retune["shots"], bench_jobs.final_truth(rig, retune["setpoints"])["ratio"])
     return out
 
 

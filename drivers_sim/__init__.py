@@ -4,7 +4,7 @@ Modules: :mod:`drivers_sim.physics` (the pure, vectorised atom-cavity-Ramsey mod
 :mod:`drivers_sim.config` (its checked TOML configuration), :mod:`drivers_sim.rig` (set-points,
 virtual clock, drift, detection noise, truth) and :mod:`drivers_sim.driver` (the rig behind the
 rig-driver interface of :mod:`autotune.driver`, served by ``autotune rig`` and ``autotune
-serve`` like any lab's driver). It imports only :mod:`autotune.protocol` and
+serve`` like any lab's driver). It imports only :mod:`autotune.wire.protocol` and
 :mod:`autotune.driver` of the plugin.
 """
 

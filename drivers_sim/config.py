@@ -27,7 +27,7 @@ from typing import Any
 
 import autotune.plausible as plausible
 from autotune.errors import ConfigError, FileErrors
-from autotune.protocol import SetpointLimit as WireLimit
+from autotune.wire.protocol import SetpointLimit as WireLimit
 from autotune.schema import check, integer, number, read_toml, refuse, table, text
 from drivers_sim.physics import (
     SUPER_GAUSSIAN_ORDER_RANGE,

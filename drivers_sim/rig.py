@@ -52,7 +52,7 @@ import scipy.optimize
 import structlog
 
 from autotune.driver import BadRequest, InterlockSet, OutOfRange
-from autotune.protocol import STEP_TOLERANCE
+from autotune.wire.protocol import STEP_TOLERANCE
 from drivers_sim import physics
 from drivers_sim.config import SimRigConfig
 

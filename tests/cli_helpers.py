@@ -18,7 +18,7 @@ from typing import Any
 
 import pytest
 
-from autotune.journal import read_journal
+from autotune.run.journal import read_journal
 from rig_process import REPO
 
 DRY_RUN = REPO / "configs" / "dry-run.toml"

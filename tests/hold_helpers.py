@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from autotune.guided import LockSettings
-from autotune.hold import HoldSettings
+from autotune.analysis.guided import LockSettings
+from autotune.analysis.hold import HoldSettings
 
 
 def hold_settings(**changes) -> HoldSettings:

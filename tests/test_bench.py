@@ -14,6 +14,11 @@ import numpy as np
 import pytest
 
 from autotune import bench
+from autotune.bench import night_rig as bench_night_rig
+from autotune.bench import night_study as bench_night_study
+from autotune.bench import study as bench_study
+from autotune.bench import summaries as bench_summaries
+from autotune.bench import targets as bench_targets
 
 # The main and the mismatch family: the held-out one is the main one with another seed.
 TINY = dataclasses.replace(bench.plan_for("tiny", workers=1), strategies=("bayesian", "grid"),
@@ -242,20 +247,20 @@ def test_guided_targets_follow_the_issue_thresholds():
     floor = 72_000.0
     good = [0.99] * 19 + [0.975]
     summary = {"main": {
-        bench.GUIDED: bench._summarise(_row(143_000, good), floor),
-        "coordinate": bench._summarise(_row(1_170_000, [0.99] * 18 + [0.975] * 2), floor)}}
+        bench.GUIDED: bench_summaries.summarise(_row(143_000, good), floor),
+        "coordinate": bench_summaries.summarise(_row(1_170_000, [0.99] * 18 + [0.975] * 2), floor)}}
     retunes = [{"retune": {**row, "ratio_after_step": 0.85, "moved_judged_still_good": False},
                 "calibrate": {"shots": 143_000}} for row in _row(100_000, good)]
-    retune = {"main": {bench.GUIDED: bench._summarise_retunes(retunes, floor)}}
-    targets = bench._guided_targets(summary, retune, ["main"], run=True)
+    retune = {"main": {bench.GUIDED: bench_summaries.summarise_retunes(retunes, floor)}}
+    targets = bench_targets.guided_targets(summary, retune, ["main"], run=True)
     assert [t["status"] for t in targets] == ["met"] * 7
     # One more scenario below 0.98, one below 0.97, a stage 2.1x the floor, a retune 1.6x it.
     worse = [0.99] * 18 + [0.975, 0.965]
-    summary["main"][bench.GUIDED] = bench._summarise(_row(151_200, worse), floor)
+    summary["main"][bench.GUIDED] = bench_summaries.summarise(_row(151_200, worse), floor)
     retunes[0]["retune"]["moved_judged_still_good"] = True
     retunes = [{**r, "retune": {**r["retune"], "shots": 115_200}} for r in retunes]
-    retune["main"][bench.GUIDED] = bench._summarise_retunes(retunes, floor)
-    targets = bench._guided_targets(summary, retune, ["main"], run=True)
+    retune["main"][bench.GUIDED] = bench_summaries.summarise_retunes(retunes, floor)
+    targets = bench_targets.guided_targets(summary, retune, ["main"], run=True)
     assert [t["status"] for t in targets] == ["MISSED", "MISSED", "MISSED", "MISSED", "MISSED",
                                               "met", "MISSED"]
 
@@ -376,14 +381,14 @@ def test_job_in_a_subprocess_reports_its_failure():
     """A job run in a fresh interpreter (the night's, on a cluster) that fails raises with its error."""
     # Source: DEVELOPERS.md habit 6 (clear errors); the child's own message is passed on.
     with pytest.raises(RuntimeError, match="job kind: expected one of"):
-        bench._run_job_in_subprocess(json.dumps({"kind": "nap"}), timeout_s=120.0)
+        bench_study._run_job_in_subprocess(json.dumps({"kind": "nap"}), timeout_s=120.0)
 
 
 def test_unreachable_scheduler_fails_within_its_bound(monkeypatch):
     """A scheduler address where nothing listens is an OSError once the connection bound passes."""
     # Source: DEVELOPERS.md habit 7 (every wait has a bound); port 1 on loopback has no listener
     # (tcpmux, unused on test machines: common practice).
-    monkeypatch.setattr(bench, "CLUSTER_START_TIMEOUT_S", 2.0)
+    monkeypatch.setattr(bench_study, "CLUSTER_START_TIMEOUT_S", 2.0)
     plan = dataclasses.replace(TINY, strategies=("grid",), families=("main",), night_steps=0,
                                overhead_points=(), workers=2)
     with pytest.raises(OSError, match="127.0.0.1:1"):
@@ -405,10 +410,10 @@ def test_fraction_of_the_night_counts_each_interval_at_its_lower_end():
     """Each interval between samples counts at the lower of its two ends, the last sample alone
     up to the end: [0, 60] at 0.90, [60, 90] at 0.90, [90, 100] at 0.98 (hand computation)."""
     samples = [(0.0, 0.99), (60.0, 0.90), (90.0, 0.98)]
-    assert bench._fraction_at(samples, 100.0, 0.97) == pytest.approx(10.0 / 100.0)
-    assert bench._fraction_at(samples, 100.0, 0.985) == pytest.approx(0.0)
+    assert bench_night_rig._fraction_at(samples, 100.0, 0.97) == pytest.approx(10.0 / 100.0)
+    assert bench_night_rig._fraction_at(samples, 100.0, 0.985) == pytest.approx(0.0)
     steady = [(0.0, 0.99), (50.0, 0.98)]
-    assert bench._fraction_at(steady, 100.0, 0.97) == pytest.approx(1.0)
+    assert bench_night_rig._fraction_at(steady, 100.0, 0.97) == pytest.approx(1.0)
 
 
 def test_the_night_study_takes_every_family_of_the_registry(monkeypatch):
@@ -426,7 +431,7 @@ def test_recovery_is_the_time_back_above_the_bar():
     ratio below it; None when the night ended first (hand computation)."""
     samples = [(0.0, 0.99), (100.0, 0.80), (160.0, 0.95), (400.0, 0.98), (500.0, 0.85)]
     steps = [{"clock": 100.0}, {"clock": 0.0}, {"clock": 500.0}]
-    assert bench._recovery_delays(samples, steps, 0.97) == [300.0, 0.0, None]
+    assert bench_night_rig._recovery_delays(samples, steps, 0.97) == [300.0, 0.0, None]
 
 
 def test_night_steps_are_seeded_and_leave_an_hour_to_recover():
@@ -446,7 +451,7 @@ def test_the_night_study_runs_every_method_on_every_scenario(night_study):
     """track, both schedules and the quiet track ran on the scenario; the fractions lie in
     [0, 1]; the holding share is the night's acquisitions over its rig time."""
     runs = night_study["night_study"]["runs"]
-    assert sorted(bench._night_label(r) for r in runs) == sorted(bench.night_labels())
+    assert sorted(bench_night_study.night_label(r) for r in runs) == sorted(bench.night_labels())
     for run in runs:
         assert 0.0 <= run["fraction_098"] <= run["fraction_097"] <= 1.0
         assert 0.0 < run["holding_share"] < 1.0

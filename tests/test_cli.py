@@ -21,8 +21,8 @@ from typing import Any
 
 import pytest
 
-from autotune.bus import BusClient
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
+from autotune.wire.bus import BusClient
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from rig_process import REPO, ServerProcess
 
 from cli_helpers import DRY_RUN

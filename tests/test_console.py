@@ -12,7 +12,7 @@ import sys
 
 import pytest
 
-from autotune import cli
+from autotune.cli import console
 from rig_process import REPO
 
 MOVING = ("calibrate", "retune", "track", "serve", "probe")
@@ -34,10 +34,10 @@ LONG_VERDICT = ("check's phase error +0.462 +- 0.025 pi: set-point +18.42 kHz fr
 def test_a_long_decision_fits_a_line_and_keeps_its_action() -> None:
     """A 240-character reason becomes one line of at most 150 characters, cut at a clause and
     never inside parentheses, ending with the decision itself."""
-    line = cli._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
+    line = console._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
                                             "event": "decision", "what": "verdict",
                                             "reason": LONG_VERDICT, "stage": "retune"})
-    assert len(line) <= cli.CONSOLE_WIDTH
+    assert len(line) <= console.CONSOLE_WIDTH
     assert line.startswith("13:50:18 retune: verdict: check's phase error +0.462")
     assert line.endswith(": correct the detuning to -18.85 kHz") and "[...]" in line
     kept = line.split(" [...]")[0]
@@ -46,7 +46,7 @@ def test_a_long_decision_fits_a_line_and_keeps_its_action() -> None:
 
 def test_a_short_line_is_left_whole() -> None:
     """A line within the width keeps its details."""
-    line = cli._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
+    line = console._console_line(None, "info", {"timestamp": "2026-12-04T13:50:18.193Z",
                                             "event": "decision", "what": "store",
                                             "reason": "written", "stage": "calibrate",
                                             "attempt": 2})
@@ -57,8 +57,8 @@ def test_repeated_warnings_are_merged_with_a_count() -> None:
     """Four warnings that differ only in their numbers: one line and 'repeated 3 more times';
     a different warning after them starts again; the count of the last run is said at exit."""
     code = ("import structlog\n"
-            "from autotune import cli\n"
-            "cli._configure_logging('info')\n"
+            "from autotune.cli import console\n"
+            "console.configure_logging('info')\n"
             "log = structlog.get_logger('autotune.test')\n"
             "for k in range(4):\n"
             "    log.warning('readback_differs', setpoint='detuning', got=1234.5 + k)\n"
@@ -127,7 +127,7 @@ def test_every_line_of_a_dry_run_is_short(tmp_path) -> None:
     done = _autotune("dry-run", "--out", str(tmp_path / "dry"), timeout=600)
     assert done.returncode == 0, done.stderr[-2000:]
     long = [line for line in (done.stdout + done.stderr).splitlines()
-            if len(line) > cli.CONSOLE_WIDTH]
+            if len(line) > console.CONSOLE_WIDTH]
     assert not long, long
 
 
@@ -180,7 +180,7 @@ def test_a_server_that_cannot_listen_says_so_in_a_sentence(tmp_path) -> None:
                 if line.startswith("autotune: the server did not start:")]
     assert len(sentence) == 1 and f"cannot listen on {endpoint}" in sentence[0], done.stderr
     assert "Address already in use" in sentence[0] and "--bind another" in sentence[0]
-    assert len(sentence[0]) <= cli.CONSOLE_WIDTH, sentence
+    assert len(sentence[0]) <= console.CONSOLE_WIDTH, sentence
 
 
 def test_a_server_that_does_not_start_on_a_terminal_says_only_the_sentence(tmp_path) -> None:

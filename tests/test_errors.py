@@ -7,9 +7,10 @@ from __future__ import annotations
 import pytest
 
 from autotune import cli, errors
-from autotune.channels import ChannelMap, LinearLaw, StarkLaw
+from autotune.cli.common import guarded
+from autotune.kit.channels import ChannelMap, LinearLaw, StarkLaw
 from autotune.config import packaged_config
-from autotune.driver_config import DriverStartError
+from autotune.kit.driver_config import DriverStartError
 from drivers_sim.config import SimConfigError
 
 _PROBLEM = errors.ConfigError("c.toml", "bus.timeout_s", "a finite number > 0", -1.0)
@@ -49,11 +50,11 @@ def test_every_class_of_the_tree_is_covered():
 
 @pytest.mark.parametrize("error", INSTANCES, ids=lambda e: type(e).__name__)
 def test_the_command_exits_with_the_errors_own_code(error, capsys):
-    """autotune's commands map an error to the code the error carries (cli._guarded, the
+    """autotune's commands map an error to the code the error carries (cli.common.guarded, the
     wrapper of calibrate, retune, track and dry-run)."""
     def fail() -> int:
         raise error
-    assert cli._guarded(fail) == error.exit_code
+    assert guarded(fail) == error.exit_code
     assert error.exit_code in (cli.EXIT_BAD_INPUT, cli.EXIT_RIG, cli.EXIT_INTERRUPTED)
     assert (error.exit_code == cli.EXIT_RIG) == isinstance(error, errors.RigError)
     assert capsys.readouterr().err.startswith("autotune: ")

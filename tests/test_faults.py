@@ -26,9 +26,9 @@ from typing import Any
 
 import pytest
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 from autotune.errors import RigRefused
-from autotune.journal import JOURNAL_NAME, read_journal
+from autotune.run.journal import JOURNAL_NAME, read_journal
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
 from journal_checks import check_invariants, journal_shots
 from rig_process import REPO, STOP_TIMEOUT_S, ServerProcess, spawn_server

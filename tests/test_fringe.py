@@ -10,7 +10,7 @@ import pytest
 from scipy import stats
 
 from autotune.errors import EstimationError
-from autotune.fringe import (
+from autotune.analysis.fringe import (
     FringeData,
     InversionEstimate,
     estimate_inversion,

@@ -13,11 +13,11 @@ from pathlib import Path
 
 import pytest
 
-from autotune import journal as journal_module
-from autotune import runner
+from autotune.run import journal as journal_module
+from autotune.run import runner
 from autotune.errors import JournalError
-from autotune.journal import JOURNAL_NAME, read_journal, read_journal_prefix
-from autotune.server import LocalRig
+from autotune.run.journal import JOURNAL_NAME, read_journal, read_journal_prefix
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig

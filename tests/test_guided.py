@@ -21,9 +21,9 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from autotune.fringe import FringeData, estimate_inversion
-from autotune.guided import LockPrior, LockSettings, PhaseLockSearch
-from autotune.search import Dimension, PointResult, SearchSpace, Strategy
+from autotune.analysis.fringe import FringeData, estimate_inversion
+from autotune.analysis.guided import LockPrior, LockSettings, PhaseLockSearch
+from autotune.analysis.search import Dimension, PointResult, SearchSpace, Strategy
 
 PI = math.pi
 V0 = 503.7  # nominal 2 pi velocity of the demo's nominal coupling and waist, m/s (docs/physics.md section 6)
@@ -265,7 +265,7 @@ def _run_until_hopeless(lock: PhaseLockSearch, rig: Synthetic, points: int) -> N
 def test_an_optimum_beyond_the_box_is_not_vouched_for_and_says_what_to_check():
     """The best velocity (600 m/s) beyond the box (460-560): the search stops at the edge with the
     data pointing outward (hopeless), and the acceptance gate names the box in one line."""
-    from autotune.loop import acceptance_reason
+    from autotune.run.loop import acceptance_reason
 
     rig = Synthetic(peak_detuning_hz=0.0, velocity_star=600.0, curvature=2.0, seed=12)
     lock = PhaseLockSearch(BOX, seed=0, start=START, settings=SETTINGS)

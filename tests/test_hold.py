@@ -10,8 +10,8 @@ import pytest
 from hold_helpers import hold_settings
 from scipy import linalg, stats
 
-from autotune.guided import LockPrior
-from autotune.hold import (
+from autotune.analysis.guided import LockPrior
+from autotune.analysis.hold import (
     CheckPlan,
     DriftLock,
     HoldSettings,
@@ -26,7 +26,7 @@ from autotune.hold import (
     plan_checks,
     two_sided_arl,
 )
-from autotune.search import PointResult
+from autotune.analysis.search import PointResult
 
 SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
 

@@ -13,8 +13,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from autotune.guided import LockPrior, LockSettings
-from autotune.hold import (
+from autotune.analysis.guided import LockPrior, LockSettings
+from autotune.analysis.hold import (
     OPEN_NIGHT_HORIZON_S,
     BeamBudget,
     DriftLock,

@@ -12,8 +12,8 @@ import pytest
 from hold_helpers import hold_settings
 from scipy import stats
 
-from autotune.guided import LockPrior
-from autotune.hold import (
+from autotune.analysis.guided import LockPrior
+from autotune.analysis.hold import (
     BeamBudget,
     DriftLock,
     NoiseModel,

@@ -15,10 +15,10 @@ from typing import Any
 
 import pytest
 
-from autotune.runlock import HOLDER_NAME, LOCK_NAME
+from autotune.run.runlock import HOLDER_NAME, LOCK_NAME
 
-from autotune.bus import BusClient
-from autotune.journal import JOURNAL_NAME, MANIFEST_NAME
+from autotune.wire.bus import BusClient
+from autotune.run.journal import JOURNAL_NAME, MANIFEST_NAME
 from cli_helpers import autotune, tiny_config, to_toml
 from rig_process import REPO, spawn_server
 

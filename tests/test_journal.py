@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from autotune.errors import JournalError
-from autotune.journal import JOURNAL_NAME, Journal, read_journal
+from autotune.run.journal import JOURNAL_NAME, Journal, read_journal
 
 
 def test_records_are_numbered_and_on_disk_at_once(tmp_path: Path) -> None:

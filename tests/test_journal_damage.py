@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_journal_prefix
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_journal_prefix
 from cli_helpers import autotune, tiny_config
 from rig_process import spawn_server
 

@@ -16,13 +16,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from autotune import runner
+from autotune.run import runner
 from autotune.config import RunConfig, load_config
 from autotune.errors import LimitError, RigRefused
-from autotune.journal import JOURNAL_NAME, Journal, read_journal, write_json_atomic
-from autotune.loop import Session, _Measurement
-from autotune.protocol import Applied, Description, SetpointLimit, Status
-from autotune.server import LocalRig
+from autotune.run.journal import JOURNAL_NAME, Journal, read_journal, write_json_atomic
+from autotune.run.loop import Session, _Measurement
+from autotune.wire.protocol import Applied, Description, SetpointLimit, Status
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config, sim_config_from_dict
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig

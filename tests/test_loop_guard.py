@@ -9,7 +9,7 @@ from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from autotune.errors import LimitError
-from autotune.loop import Limit, plan_moves, ramsey_phases
+from autotune.run.loop import Limit, plan_moves, ramsey_phases
 
 finite = st.floats(min_value=-1e6, max_value=1e6, allow_nan=False, allow_infinity=False)
 
@@ -94,7 +94,7 @@ def test_ramsey_phases_are_equally_spaced() -> None:
 
 def test_quadratic_peak_finds_the_vertex_of_a_known_parabola() -> None:
     """The vertex of y = 0.7 - 2e-9 (x + 3000)^2 is x = -3000 (elementary algebra: -b / 2a)."""
-    from autotune.loop import quadratic_peak
+    from autotune.run.loop import quadratic_peak
 
     xs = [-9000.0, -6000.0, -3000.0, 0.0, 3000.0]
     ys = [0.7 - 2e-9 * (x + 3000.0) ** 2 for x in xs]
@@ -103,7 +103,7 @@ def test_quadratic_peak_finds_the_vertex_of_a_known_parabola() -> None:
 
 def test_quadratic_peak_falls_back_to_the_best_point() -> None:
     """A parabola opening upwards, or a vertex outside the scan, gives the best measured x."""
-    from autotune.loop import quadratic_peak
+    from autotune.run.loop import quadratic_peak
 
     assert quadratic_peak([0.0, 1.0, 2.0], [0.5, 0.4, 0.6], [0.01] * 3) == 2.0
     assert quadratic_peak([0.0, 1.0, 2.0], [0.1, 0.2, 0.3], [0.01] * 3) == 2.0

@@ -11,10 +11,10 @@ from pathlib import Path
 import pytest
 
 from autotune import plausible
-from autotune.channels import ChannelInfo, channel_map_from_table
+from autotune.kit.channels import ChannelInfo, channel_map_from_table
 from autotune.cli import main
 from autotune.config import config_from_dict, load_config, nominal_two_pi_velocity
-from autotune.driver_config import load_driver_config
+from autotune.kit.driver_config import load_driver_config
 from autotune.errors import ConfigError
 from drivers_sim.config import SimConfigError, load_sim_config, sim_config_from_dict
 
@@ -295,7 +295,7 @@ def test_flags_out_of_range_exit_2_with_the_reason(argv, fragment, capsys):
 def test_a_last_good_store_holds_finite_numbers(tmp_path, text, fragment):
     """JSON readers take NaN and Infinity; a last good store holding them is refused naming
     the file and key."""
-    from autotune.runner import read_last_good
+    from autotune.run.runner import read_last_good
 
     store = tmp_path / "good.json"
     store.write_text(text, encoding="utf-8")

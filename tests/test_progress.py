@@ -16,18 +16,21 @@ import pytest
 import structlog
 from structlog.testing import capture_logs
 
-from autotune import cli, runner
-from autotune.bench import _counting
+from autotune.cli import console
+from autotune.cli import parser as cli_parser
+from autotune.cli import stages as cli_stages
+from autotune.run import runner
+from autotune.bench.study import _counting
 from autotune.config import RunConfig, load_config
-from autotune.display import (
+from autotune.run.display import (
     ProgressDisplay,
     night_progress_text,
     progress_text,
     stage_progress_text,
 )
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from autotune.progress import NightProgress, StageProgress, format_duration
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from cli_helpers import autotune, run_in_a_terminal, tiny_config
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
@@ -156,13 +159,13 @@ def test_console_lines_show_units_and_one_line_per_decision(tmp_path: Path) -> N
     assert any(isinstance(v, dict) and any(isinstance(x, dict) for x in v.values())
                for e in info for v in e.values()), "the run logs nested details (for log.jsonl)"
     for event in info:
-        line = cli._console_line(None, "info", {**event, "timestamp": "2026-12-01T22:14:05.1Z",
+        line = console._console_line(None, "info", {**event, "timestamp": "2026-12-01T22:14:05.1Z",
                                                 "level": event["log_level"]})
         assert "\n" not in line and "{" not in line, line
         assert not LONG_FLOAT.search(line), line
         assert line.startswith("22:14:05 calibrate: ")
     estimate = next(e for e in info if e["event"] == "estimate")
-    line = cli._console_line(None, "info", {**estimate, "level": "info"})
+    line = console._console_line(None, "info", {**estimate, "level": "info"})
     sp = estimate["setpoints"]
     assert f"velocity {sp['velocity']:.1f} m/s" in line
     assert f"detuning {sp['detuning'] / 1e3:+.2f} kHz" in line
@@ -171,20 +174,20 @@ def test_console_lines_show_units_and_one_line_per_decision(tmp_path: Path) -> N
 
 def test_console_value_units() -> None:
     """Each kind of value in the unit a physicist reads."""
-    assert cli._console_value("setpoints", {"velocity": 503.73138, "detuning": -9800.0}) == \
+    assert console._console_value("setpoints", {"velocity": 503.73138, "detuning": -9800.0}) == \
         "velocity 503.7 m/s, detuning -9.80 kHz"
-    assert cli._console_value("peak_drift_hz", 1234.5678) == "+1.23 kHz"
-    assert cli._console_value("phase_shift_rad", math.pi) == "1.000 pi"
-    assert cli._console_value("predicted", 0.72301526727128) == "0.723"
-    assert cli._console_value("learned", {"slope": 1e-4}) is None
-    assert cli._console_name("phase_shift_rad") == "phase shift"
-    assert cli._console_value("learned", None) is None
+    assert console._console_value("peak_drift_hz", 1234.5678) == "+1.23 kHz"
+    assert console._console_value("phase_shift_rad", math.pi) == "1.000 pi"
+    assert console._console_value("predicted", 0.72301526727128) == "0.723"
+    assert console._console_value("learned", {"slope": 1e-4}) is None
+    assert console._console_name("phase_shift_rad") == "phase shift"
+    assert console._console_value("learned", None) is None
 
 
 def test_a_decision_with_two_sets_of_setpoints_names_the_second() -> None:
     """A correction logs the set-points it goes to and those it comes from: the line says which
     is which ('from ...'), and a value that is None is left out (no 'learned None')."""
-    line = cli._console_line(None, "info", {
+    line = console._console_line(None, "info", {
         "event": "decision", "what": "correct", "reason": "lock moves the detuning",
         "stage": "calibrate", "timestamp": "2026-12-01T22:14:05.1Z", "level": "info",
         "setpoints": {"velocity": 518.435, "detuning": -5776.6},
@@ -240,14 +243,14 @@ def test_bench_lines_count_jobs_and_time_to_go() -> None:
 
 def test_log_level_and_quiet_are_accepted_after_the_command() -> None:
     """--log-level and --quiet parse before or after the command; after wins for the command."""
-    parse = cli._parser().parse_args
+    parse = cli_parser._parser().parse_args
     ns = parse(["calibrate", "--config", "c.toml", "--quiet", "--log-level", "debug"])
     assert ns.quiet and ns.log_level == "debug"
     ns = parse(["--log-level", "warning", "--quiet", "retune", "--config", "c.toml"])
     assert ns.quiet and ns.log_level == "warning"
     ns = parse(["dry-run"])
-    assert not ns.quiet and cli._console_level(ns) == "info"
-    assert cli._console_level(parse(["report", "x", "--quiet"])) == "warning"
+    assert not ns.quiet and console.console_level(ns) == "info"
+    assert console.console_level(parse(["report", "x", "--quiet"])) == "warning"
     assert parse(["rig", "--quiet", "--log-level", "error"]).server_log_level == "error"
 
 
@@ -323,23 +326,26 @@ def test_display_off_and_plain_rate(tmp_path: Path) -> None:
 
 
 def test_the_library_stays_free_of_display_code() -> None:
-    """Only the commands (cli.py, bench.py) and display.py know tqdm or the display; the loop,
-    the runner and the progress data never do (DEVELOPERS.md: a functional core, a thin shell)."""
+    """Only the commands (the command line, the study) and run/display.py know tqdm or the
+    display; the loop, the runner and the progress data never do (DEVELOPERS.md: a functional
+    core, a thin shell)."""
     import ast
 
     users = set()
-    for path in (REPO / "autotune").glob("*.py"):
+    for path in (REPO / "autotune").rglob("*.py"):
         for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
             names = ([a.name for a in node.names] if isinstance(node, ast.Import) else
                      [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
-            if any(n.split(".")[0] == "tqdm" or n == "autotune.display" for n in names):
-                users.add(path.name)
-    assert users == {"cli.py", "bench.py", "display.py"}, users
+            if any(n.split(".")[0] == "tqdm" or n == "autotune.run.display" for n in names):
+                users.add(path.relative_to(REPO / "autotune").as_posix())
+    shells = {"cli", "bench", "cli.py", "bench.py"}
+    assert "run/display.py" in users, users
+    assert {u for u in users if u.split("/")[0] not in shells} == {"run/display.py"}, users
 
 
 def test_the_night_summary_counts_in_the_singular_when_one() -> None:
     """The summary of a night, like its progress line, says '1 retune', not '1 retunes'."""
-    text = cli._track_summary({
+    text = cli_stages._track_summary({
         "status": "ended", "stop_reason": "end of the night", "setpoints": {"velocity": 516.33,
         "detuning": -32090.0}, "held": True, "left_at": "its safe set-points", "checks": 1,
         "rechecks": 0, "corrections": 4, "alarms": 0, "retunes": 1, "calibrations": 0,

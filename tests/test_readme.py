@@ -16,7 +16,8 @@ from pathlib import Path
 import pytest
 from rig_process import REPO, spawn_server
 
-from autotune import cli, config
+from autotune import config
+from autotune.cli import parser as cli_parser
 
 README = REPO / "README.md"
 BENCHMARKS = REPO / "benchmarks" / "README.md"
@@ -101,7 +102,7 @@ def _options(text: str) -> set[str]:
 
 
 def _subcommands() -> dict[str, argparse.ArgumentParser]:
-    parser = cli._parser()
+    parser = cli_parser._parser()
     action = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
     return dict(action.choices)
 
@@ -258,7 +259,7 @@ def test_every_option_the_readme_names_exists() -> None:
     known: set[str] = set()
     for parser in commands.values():
         known |= _options(parser.format_help())
-    known |= _options(_bench_help()) | _options(cli._parser().format_help())
+    known |= _options(_bench_help()) | _options(cli_parser._parser().format_help())
     # Named by the README as removed (refused with exit 2: tests/test_cli.py checks it).
     known |= {"--interval-s", "--cycles"}
     for path in (README, BENCHMARKS):

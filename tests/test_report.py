@@ -35,8 +35,8 @@ from matplotlib.contour import ContourSet
 from scipy import stats
 
 from autotune import report
-from autotune.fringe import FringeData, estimate_inversion
-from autotune.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
+from autotune.analysis.fringe import FringeData, estimate_inversion
+from autotune.run.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
                               write_json_atomic)
 from rig_process import REPO, spawn_server
 
@@ -730,7 +730,7 @@ def test_a_damaged_journal_is_told_at_the_top_of_the_page(tmp_path: Path) -> Non
 _HOLD = """
 import sys
 from pathlib import Path
-from autotune.runlock import RunLock
+from autotune.run.runlock import RunLock
 locks = [RunLock.acquire(Path(folder), "dry-run") for folder in sys.argv[1:]]
 print("held", flush=True)
 sys.stdin.read()

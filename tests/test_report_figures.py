@@ -25,10 +25,13 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from autotune import bench, report, runner, track
+from autotune import report
+from autotune.bench import night_rig as bench_night_rig
+from autotune.run import runner
+from autotune.run import track
 from autotune.config import load_config
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
-from autotune.server import LocalRig
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
@@ -82,7 +85,7 @@ def folders(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
             config = dataclasses.replace(config, min_inversion=bar, search=dataclasses.replace(
                 config.search, max_points=6))
         steps = [(rig.sim.clock + 3000.0, shift_hz)] if shift_hz else []
-        track.track(bench._NightRig(rig, steps, 60.0), config, base / name, store=store)
+        track.track(bench_night_rig._NightRig(rig, steps, 60.0), config, base / name, store=store)
         out[name] = base / name
     return out
 

@@ -18,12 +18,12 @@ from typing import Any
 
 import pytest
 
-from autotune import runner
+from autotune.run import preflight, runner
 from autotune.config import RunConfig, load_config
 from autotune.errors import ConfigErrors
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from drivers_sim.config import load_sim_config
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
 from journal_checks import check_invariants
@@ -227,7 +227,7 @@ def test_a_run_started_with_a_box_narrower_than_the_lock_step_still_resumes(tmp_
     with pytest.raises(ConfigErrors, match="at least a tenth of the lock's first step wide"):
         runner.calibrate(rig, config, tmp_path / "new", store=tmp_path / "good.json")
     with monkeypatch.context() as patch:  # as the version before the check started it
-        patch.setattr(runner, "_box_problems", lambda config: [])
+        patch.setattr(preflight, "_box_problems", lambda config: [])
         runner.calibrate(rig, config, tmp_path / "old", store=tmp_path / "good.json")
     records = read_journal(tmp_path / "old" / JOURNAL_NAME)
     keep = next(i for i, rec in enumerate(records) if rec["type"] == "estimate") + 1

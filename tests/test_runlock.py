@@ -15,14 +15,14 @@ from typing import Any
 import pytest
 
 from autotune.errors import RunFolderInUse
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal
-from autotune.runlock import HOLDER_NAME, LOCK_NAME, RunLock, holder_if_running
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal
+from autotune.run.runlock import HOLDER_NAME, LOCK_NAME, RunLock, holder_if_running
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
 from rig_process import REPO, ServerProcess, spawn_server
 
 _HOLD = """
 import sys, time
-from autotune.runlock import RunLock
+from autotune.run.runlock import RunLock
 lock = RunLock.acquire(sys.argv[1], "calibrate")
 print("held", flush=True)
 time.sleep(120)
@@ -144,7 +144,7 @@ def _raw(endpoint: str, op: str, client: str, args: dict[str, Any]) -> dict[str,
     """One request as another client sends it (claimed by hand: never renewed)."""
     import zmq
 
-    from autotune import protocol
+    from autotune.wire import protocol
 
     with zmq.Context() as context, context.socket(zmq.REQ) as raw:
         raw.setsockopt(zmq.LINGER, 0)

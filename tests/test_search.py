@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from autotune.search import (
+from autotune.analysis.search import (
     BayesianSearch,
     Convergence,
     CoordinateScan,
@@ -22,7 +22,7 @@ from autotune.search import (
     SearchSpace,
     Strategy,
 )
-from autotune.strategies import make_strategy
+from autotune.analysis.strategies import make_strategy
 
 BRANIN_SPACE = SearchSpace((Dimension("x", -5.0, 10.0), Dimension("y", 0.0, 15.0)))
 # Branin minimum and its three minimisers: Dixon and Szego (1978), "Towards Global
@@ -342,7 +342,7 @@ def test_space_unit_round_trip_and_clip():
 
 
 def _point_result(**changes):
-    from autotune.search import PointResult
+    from autotune.analysis.search import PointResult
 
     values = dict(inversion=0.7, inversion_stderr=0.03, phase_shift=math.pi, phase_shift_stderr=0.08,
                   absorption=0.02, absorption_stderr=0.004, contrast_empty=0.3, contrast_empty_stderr=0.01,
@@ -356,8 +356,8 @@ def test_point_result_from_estimate_reads_the_wilson_half_width():
     """from_estimate's absorption stderr is the Wilson half width over z (scipy.stats.binomtest's Wilson interval)."""
     from scipy import stats
 
-    from autotune.fringe import FringeData, estimate_inversion
-    from autotune.search import PointResult
+    from autotune.analysis.fringe import FringeData, estimate_inversion
+    from autotune.analysis.search import PointResult
 
     phases = [2 * math.pi * k / 6 for k in range(6)]
     empty = FringeData.from_counts(phases, [0] * 6, [160, 130, 70, 40, 70, 130], [40, 70, 130, 160, 130, 70])
@@ -388,7 +388,7 @@ def test_point_result_refuses_bad_values(field, value, match):
 
 def test_proposal_checks_its_fields():
     """An unknown purpose, a bad shot count or an empty reason raise ValueError naming the field."""
-    from autotune.search import Proposal
+    from autotune.analysis.search import Proposal
 
     assert Proposal({"x": 1}, "lock", 500, "why").to_dict() == {
         "point": {"x": 1.0}, "purpose": "lock", "shots_per_phase": 500, "reason": "why"}

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from autotune.search import (
+from autotune.analysis.search import (
     BayesianSearch,
     CoordinateScan,
     Dimension,

@@ -26,8 +26,8 @@ from typing import Any
 
 import pytest
 
-from autotune.bus import BusClient
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.wire.bus import BusClient
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
 from journal_checks import check_invariants, journal_shots
 from rig_process import REPO, ServerProcess

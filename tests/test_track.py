@@ -21,13 +21,15 @@ from typing import Any
 
 import pytest
 
-from autotune import bench, runner, track
+from autotune.bench import night_rig as bench_night_rig
+from autotune.run import runner
+from autotune.run import track
 from autotune.config import load_config
-from autotune.display import night_progress_text
+from autotune.run.display import night_progress_text
 from autotune.errors import ConfigErrors, Interrupted, JournalError
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.progress import NightProgress, StageProgress
-from autotune.server import LocalRig
+from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
@@ -69,7 +71,7 @@ def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     store = base / "good.json"
     runner.calibrate(rig, config, base / "calibrate", store=store)
     start = rig.sim.clock
-    watched = bench._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
+    watched = bench_night_rig._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
     watched.watching = True
     progress: list[Any] = []
     result = track.track(watched, config, base / "night", store=store, progress=progress.append)
@@ -144,11 +146,11 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     retunes = [r for r in records if r["type"] == "decision" and r["what"] == "retune"]
     assert [r["index"] for r in retunes][:2] == [0, 1]
     end = night["start"] + HOURS * 3600.0
-    delays = bench._recovery_delays(watched.samples, watched.applied, 0.97)
+    delays = bench_night_rig._recovery_delays(watched.samples, watched.applied, 0.97)
     assert delays[0] is not None and delays[0] <= 600.0, delays
     # Each interval counted at the lower of its two ends (the study's count): a step in a
     # two-hour night weighs four times what it weighs in the study's eight hours.
-    assert bench._fraction_at(watched.samples, end, 0.97) >= 0.90
+    assert bench_night_rig._fraction_at(watched.samples, end, 0.97) >= 0.90
     # The ceiling, not a target: never above the night's budget fraction.
     assert night["result"]["holding_share"] <= night["config"].track.budget_fraction + 1e-9
 
@@ -232,7 +234,7 @@ def test_a_stop_signal_between_checks_can_leave_the_rig_at_the_held_setpoints(tm
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
 
-    class StopAfterChecks(bench._NightRig):
+    class StopAfterChecks(bench_night_rig._NightRig):
         def advance(self, seconds: float) -> dict[str, Any]:
             holds = sum(1 for r in read_journal(tmp_path / "night" / JOURNAL_NAME)
                         if r["type"] == "hold")
@@ -427,7 +429,7 @@ def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budg
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
     start = rig.sim.clock
-    watched = bench._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
+    watched = bench_night_rig._NightRig(rig, [(start + 3000.0, 15e3)], 60.0)
     shutil.copy(store, tmp_path / "good-start.json")
     result = track.track(watched, config, tmp_path / "night", store=store)
     records = read_journal(tmp_path / "night" / JOURNAL_NAME)

@@ -24,8 +24,8 @@ from typing import Any
 
 import numpy as np
 
-from autotune.bus import BusClient
-from autotune.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
+from autotune.wire.bus import BusClient
+from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from cli_helpers import (autotune, run_in_a_terminal, start_autotune, tiny_config, to_toml,
                          wait_for_record)
 from journal_checks import check_invariants, journal_shots

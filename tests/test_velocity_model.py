@@ -15,7 +15,7 @@ import math
 import numpy as np
 from scipy import optimize
 
-from autotune.velocity_model import fit_inversion_curve
+from autotune.analysis.velocity_model import fit_inversion_curve
 
 V_REF = 503.7      # m/s, the demo's nominal 2 pi velocity (docs/physics.md section 6)
 V_ABS = 505.0      # m/s, velocity of least absorption

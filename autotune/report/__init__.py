@@ -5,7 +5,7 @@ and its page next to them (or under ``--out DIR``). It reads
 
 - a **run folder** (``manifest.json``, ``journal.jsonl``, ``result.json`` once the run ended):
   finished, stopped, or still running / killed (no ``result.json``; a last journal line cut by
-  a kill is ignored, see :func:`autotune.journal.read_journal`);
+  a kill is ignored, see :func:`autotune.run.journal.read_journal`);
 - a **folder of run folders**: a dry run's output (``calibrate/``, ``retune/``, plus
   ``last-good.json`` and ``rig.log``) or a night of ``track`` (``cycle-0000/``, ...). Every run
   gets a section, and the folder a timeline of all of them against rig time.
@@ -20,7 +20,7 @@ or a retune, in the order a reader asks:
 
 1. ``fringes``: both Ramsey fringes P_g(phi) at the chosen set-points, the data with binomial
    (Wilson) error bars at the run's confidence, and ``a + b cos phi + c sin phi`` refitted from
-   the journal's counts with :func:`autotune.fringe.fit_fringe`;
+   the journal's counts with :func:`autotune.analysis.fringe.fit_fringe`;
 2. ``phase-shift``: why this detuning: the photon phase shift against detuning with the phase
    lock's own journaled curve and band, the phase at the peak and the chosen detuning;
 3. ``absorption``: why this velocity: absorption against velocity with the lock's quadratic,
@@ -53,6 +53,10 @@ The package, by concern: :mod:`~autotune.report.model` (the journal read into ru
 (headers and the terminal summary),
 :mod:`~autotune.report.figures` (one module per kind of figure), :mod:`~autotune.report.build`
 (the report of a folder) and :mod:`~autotune.report.page` (the HTML page and the files).
+
+It may import the foundation (errors, plausible, progress, schema, config), the pure analysis
+(to refit what the journal holds), the wire's vocabulary (the field states) and the run
+package's journal reader; never the lab kit, the command line or the study.
 """
 
 from __future__ import annotations

@@ -2,7 +2,7 @@
 
 Reads a run folder (``manifest.json``, ``journal.jsonl``, ``result.json`` once the run ended)
 into a :class:`Run`; never writes. A last journal line cut by a kill is ignored (see
-:func:`autotune.journal.read_journal`). Journal record types and measurement labels it does not
+:func:`autotune.run.journal.read_journal`). Journal record types and measurement labels it does not
 know are counted in :attr:`Run.unknown`, so the report keeps working while the loop learns new
 steps. Also the small value helpers every part of the report shares (durations, levels,
 set-points for a person).
@@ -19,10 +19,10 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError
-from autotune.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
+from autotune.run.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
                               read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
-from autotune.rig import FIELDS
+from autotune.wire.rig import FIELDS
 
 FIGURE_NAME = "report.png"
 """Overview sheet: the figures of a single run, or the timeline and the latest run's figures."""

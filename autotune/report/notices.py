@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from autotune.report.model import Run
-from autotune.runlock import holder_if_running, holder_text
+from autotune.run.runlock import holder_if_running, holder_text
 
 
 @dataclass(frozen=True)
@@ -42,9 +42,9 @@ def report_notices(path: Path, runs: Sequence[Run]) -> list[Notice]:
     """The notices of the report of ``path`` (a run folder or a folder of them) and its runs.
 
     A folder is "still running" while a live process holds its lock
-    (:func:`autotune.runlock.holder_if_running`; the folder of runs itself too, as a dry run
+    (:func:`autotune.run.runlock.holder_if_running`; the folder of runs itself too, as a dry run
     holds it; one process holding several folders is told once, at its run's folder); a journal
-    is damaged where :func:`autotune.journal.read_journal_prefix` stopped.
+    is damaged where :func:`autotune.run.journal.read_journal_prefix` stopped.
     """
     notices = []
     counts = {run.path: len(run.records) for run in runs}

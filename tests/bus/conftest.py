@@ -9,7 +9,7 @@ from typing import Any
 import pytest
 from rig_process import REPO, SEED, SIM_CONFIG, ServerProcess, spawn_server  # noqa: F401  (re-exported to the bus tests)
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 
 
 @pytest.fixture

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from autotune.bus import _mismatch_text
+from autotune.wire.bus import _mismatch_text
 
 
 def test_a_mismatch_is_told_in_the_units_a_physicist_reads() -> None:

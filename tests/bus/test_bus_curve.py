@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from autotune.bus import CurveClientKeys
+from autotune.wire.bus import CurveClientKeys
 from autotune.errors import ConfigError, RigTimeout
 
 

@@ -14,9 +14,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from rig_process import SEED, SIM_CONFIG
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import ProtocolError, RigRefused
-from autotune.protocol import ErrorKind, Op, RequestRejected
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 MSG_ID = "fedcba9876543210fedcba9876543210"
 FUZZ = settings(max_examples=300, deadline=None, derandomize=True,
@@ -102,8 +102,8 @@ pytestmark = pytest.mark.xdist_group("test_bus_fuzz")
 @pytest.fixture(scope="module")
 def in_process_server():
     """A RigServer around the real simulated rig, never bound: only its request handler is used."""
-    from autotune.served import ServedDriver
-    from autotune.server import FaultConfig, RigServer
+    from autotune.kit.served import ServedDriver
+    from autotune.kit.server import FaultConfig, RigServer
     from drivers_sim.config import load_sim_config
     from drivers_sim.driver import SimulatedDriver
     from drivers_sim.rig import SimulatedRig

@@ -12,9 +12,9 @@ import signal
 import pytest
 import zmq
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import LimitError, RigTimeout
-from autotune.protocol import Op, SetpointLimit
+from autotune.wire.protocol import Op, SetpointLimit
 
 
 @pytest.fixture

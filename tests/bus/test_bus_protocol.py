@@ -6,9 +6,9 @@ import json
 
 import pytest
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import ProtocolError, RigRefused
-from autotune.protocol import ErrorKind, Op, RequestRejected
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 MSG_ID = "0123456789abcdef0123456789abcdef"
 

@@ -11,7 +11,7 @@ import math
 import pytest
 from rig_process import SEED, SIM_CONFIG
 
-from autotune.protocol import (
+from autotune.wire.protocol import (
     Acquisition,
     Applied,
     Counts,

@@ -8,11 +8,11 @@ import json
 import pytest
 from rig_process import SEED, SIM_CONFIG
 
-from autotune import protocol
+from autotune.wire import protocol
 from autotune.errors import ConfigError
-from autotune.protocol import Op
-from autotune.served import ServedDriver
-from autotune.server import FaultConfig, RigServer
+from autotune.wire.protocol import Op
+from autotune.kit.served import ServedDriver
+from autotune.kit.server import FaultConfig, RigServer
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig

@@ -10,11 +10,11 @@ from collections.abc import Callable
 import pytest
 import zmq
 
-from autotune import protocol
-from autotune.bus import BusClient
+from autotune.wire import protocol
+from autotune.wire.bus import BusClient
 from autotune.errors import RigLeased, RigRefused
-from autotune.lease import LeaseBook, LeaseHeld
-from autotune.protocol import ErrorKind, Op, RequestRejected
+from autotune.kit.lease import LeaseBook, LeaseHeld
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected
 
 from .conftest import ServerProcess
 
@@ -136,8 +136,8 @@ def _first_edition_rig(context: zmq.Context, box: list[str], stop: threading.Eve
     behind the strict key check of that edition, which refuses the key ``client``."""
     import json
 
-    from autotune.served import ServedDriver
-    from autotune.server import FaultConfig, RigServer
+    from autotune.kit.served import ServedDriver
+    from autotune.kit.server import FaultConfig, RigServer
     from drivers_sim.driver import SimulatedDriver
     from rig_process import SEED, SIM_CONFIG
 
@@ -195,8 +195,8 @@ def test_a_run_that_lost_its_lease_stops_without_sending_safe(
     """A client whose lease ran out (its keeper stalled) and was taken by another: its next
     move is refused leased, the run ends aborted without a safe request (the rig is the other
     client's now), and the journal says why."""
-    from autotune import runner
-    from autotune.journal import JOURNAL_NAME, read_journal
+    from autotune.run import runner
+    from autotune.run.journal import JOURNAL_NAME, read_journal
     from test_resume import small_config
 
     server = start_server()

@@ -34,12 +34,12 @@ sys.path.insert(0, str(REPO / "examples"))
 
 from lab_driver.driver import LabDriver  # noqa: E402
 
-from autotune import protocol  # noqa: E402
-from autotune.channels import ChannelMap  # noqa: E402
-from autotune.driver_config import load_driver_config  # noqa: E402
-from autotune.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
-from autotune.served import ServedDriver  # noqa: E402
-from autotune.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
+from autotune.wire import protocol  # noqa: E402
+from autotune.kit.channels import ChannelMap  # noqa: E402
+from autotune.kit.driver_config import load_driver_config  # noqa: E402
+from autotune.wire.protocol import ErrorKind, Op, RequestRejected  # noqa: E402
+from autotune.kit.served import ServedDriver  # noqa: E402
+from autotune.kit.server import FaultConfig, RigServer, write_ready_file  # noqa: E402
 
 FLAWS = ("replays_nothing", "accepts_nan", "unknown_op_bad_request", "ignores_steps", "no_instance",
          "keeps_internal", "fails_once", "no_lease", "ignores_lease")

@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from autotune.channels import (
+from autotune.kit.channels import (
     ChannelInfo,
     ChannelMap,
     LinearLaw,

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from autotune.driver_config import DEFAULT_BIND, DriverStartError, build_driver, load_driver_config
+from autotune.kit.driver_config import DEFAULT_BIND, DriverStartError, build_driver, load_driver_config
 from autotune.errors import ConfigError
 
 from .conftest import EXAMPLE_DRIVER_TOML
@@ -120,7 +120,7 @@ def test_a_reply_the_constructor_cannot_read_is_a_start_error_naming_where(tmp_p
 
 def test_a_misspelled_required_channel_key_is_named(tmp_path: Path):
     """'chanel_unit' for 'channel_unit': the message names the misspelling that is there."""
-    from autotune.channels import channel_map_from_table
+    from autotune.kit.channels import channel_map_from_table
 
     table = {"velocity": {"unit": "m/s", "channel": "V", "chanel_unit": "m/s", "law": "linear",
                           "scale": 1.0}}

@@ -6,7 +6,7 @@ import pytest
 from lab_driver.driver import AOM, ELECTRODE, LabDriver
 
 from autotune.driver import BadRequest, Busy, InterlockSet, OutOfRange, RigDriver
-from autotune.served import parse_driver_description
+from autotune.kit.served import parse_driver_description
 
 
 @pytest.fixture

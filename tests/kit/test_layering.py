@@ -9,7 +9,7 @@ from pathlib import Path
 from rig_process import REPO
 
 # Where autotune may start the simulated rig: the rig and dry-run commands, and the study.
-ALLOWED_IN_AUTOTUNE = {"cli.py", "bench.py"}
+ALLOWED_IN_AUTOTUNE = {"cli", "bench"}
 
 
 def _imports(path: Path) -> set[str]:
@@ -23,14 +23,14 @@ def _imports(path: Path) -> set[str]:
 
 
 def test_drivers_sim_imports_only_the_protocol_and_the_driver_interface():
-    """Every autotune module drivers_sim imports is autotune.protocol, autotune.driver, the
+    """Every autotune module drivers_sim imports is autotune.wire.protocol, autotune.driver, the
     error tree they raise from (autotune.errors), or a pure leaf that reads a file the way the
     client reads its own: the table of plausible physical ranges (autotune.plausible, which
     imports nothing of autotune) and the validation library (autotune.schema, which imports
     only those two)."""
     used = {name for path in (REPO / "drivers_sim").glob("*.py") for name in _imports(path)
             if name == "autotune" or name.startswith("autotune.")}
-    assert used <= {"autotune.protocol", "autotune.driver", "autotune.errors",
+    assert used <= {"autotune.wire.protocol", "autotune.driver", "autotune.errors",
                     "autotune.plausible", "autotune.schema"}, used
     assert not {name for name in _imports(REPO / "autotune" / "plausible.py")
                 if name.startswith("autotune")}
@@ -41,7 +41,7 @@ def test_drivers_sim_imports_only_the_protocol_and_the_driver_interface():
 
 
 def test_autotune_imports_drivers_sim_only_where_it_starts_the_simulated_rig():
-    """drivers_sim appears only in the CLI (rig, dry-run) and the benchmark study."""
-    users = {path.name for path in (REPO / "autotune").glob("*.py")
+    """drivers_sim appears only in the command line (rig, dry-run) and the benchmark study."""
+    users = {path.relative_to(REPO / "autotune").parts[0] for path in (REPO / "autotune").rglob("*.py")
              if any(name.split(".")[0] == "drivers_sim" for name in _imports(path))}
     assert users <= ALLOWED_IN_AUTOTUNE, users

@@ -13,8 +13,8 @@ from pathlib import Path
 import pytest
 from rig_process import REPO, START_TIMEOUT_S, STOP_TIMEOUT_S
 
-from autotune.bus import BusClient
-from autotune.probe import RULES
+from autotune.wire.bus import BusClient
+from autotune.kit.probe import RULES
 
 from .conftest import Keys
 

@@ -10,7 +10,7 @@ import time
 import pytest
 from rig_process import REPO, STOP_TIMEOUT_S, autotune_command
 
-from autotune.bus import BusClient
+from autotune.wire.bus import BusClient
 
 README = (REPO / "README.md").read_text(encoding="utf-8")
 

@@ -21,7 +21,7 @@ import pytest
 from cli_helpers import to_toml as _toml
 from rig_process import REPO, STOP_TIMEOUT_S, autotune_command
 
-from autotune.bus import BusClient, CurveClientKeys
+from autotune.wire.bus import BusClient, CurveClientKeys
 from autotune.errors import RigRefused
 
 from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML, Keys

@@ -9,12 +9,12 @@ from typing import Any
 import pytest
 from lab_driver.driver import ELECTRODE, LabDriver
 
-from autotune import protocol
-from autotune.driver_config import load_driver_config
+from autotune.wire import protocol
+from autotune.kit.driver_config import load_driver_config
 from autotune.errors import ConfigError, RigRefused
-from autotune.protocol import Op
-from autotune.served import ServedDriver
-from autotune.server import FaultConfig, LocalRig, RigServer
+from autotune.wire.protocol import Op
+from autotune.kit.served import ServedDriver
+from autotune.kit.server import FaultConfig, LocalRig, RigServer
 from drivers_sim.driver import SimulatedDriver
 
 from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML
@@ -129,7 +129,7 @@ def test_busy_rig_is_answered_busy_and_not_replayed(server, recorder):
 def test_driver_refusal_becomes_its_kind(server, recorder, monkeypatch):
     """A driver's own OutOfRange (the supply's range) is answered out_of_range with its message."""
     def refuse(channels: dict) -> None:
-        from autotune.driver import OutOfRange
+        from autotune.kit.driver import OutOfRange
         raise OutOfRange("STARK:HV1: the supply says no")
 
     monkeypatch.setattr(recorder.inner, "apply", refuse)

@@ -170,7 +170,7 @@ def test_model_table_is_optional(demo_config):
 
 def test_faults_table_is_kept_unvalidated(demo_config):
     """The [faults] table is kept as a plain dict for the server to check."""
-    # Source: task brief ([faults] reserved for the server, autotune/server.py).
+    # Source: task brief ([faults] reserved for the server, autotune/kit/server.py).
     data = _data(demo_config)
     data["faults"] = {"drop_reply_probability": 0.1, "anything": "kept"}
     assert sim_config_from_dict(data).faults == {"drop_reply_probability": 0.1, "anything": "kept"}

@@ -1,6 +1,6 @@
 """Figure: absorption and inversion against velocity, with the lock's absorption model.
 
-The phase lock (:mod:`autotune.guided`) learns the velocity from the absorption
+The phase lock (:mod:`autotune.analysis.guided`) learns the velocity from the absorption
 P_e(one photon), which vanishes at the exact 2π rotation (docs/physics.md §5b): a weighted quadratic
 in ``x = v_ref / v - 1`` journaled with its covariance in the ``stop_search`` decision
 (``learned``: ``absorption_fit``, ``velocity_least_absorption_m_per_s`` and its standard error).

@@ -9,7 +9,7 @@ import numpy as np
 from scipy import stats
 
 from autotune.errors import EstimationError
-from autotune.fringe import FringeData, fit_fringe
+from autotune.analysis.fringe import FringeData, fit_fringe
 from autotune.report.figures._base import _errorbar, _new_figure, _title
 from autotune.report.flags import fit_p_value
 from autotune.report.model import _FIELD_NAMES, _FIELDS, Run, _fmt_setpoints, _level
@@ -20,7 +20,7 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
 
     The data are P_g = g / (e + g + i) at each Ramsey phase with Wilson intervals at the run's
     confidence (``scipy.stats.binomtest(...).proportion_ci``); the curves are
-    ``a + b cos phi + c sin phi`` from :func:`autotune.fringe.fit_fringe` on the journal's
+    ``a + b cos phi + c sin phi`` from :func:`autotune.analysis.fringe.fit_fringe` on the journal's
     counts. Without chosen set-points yet (a running run) it shows the latest measurement.
     Returns ``(figure, caption)``, or None before the first estimate.
     """
@@ -81,7 +81,7 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
                f"{m.name}{shots}. "
                f"Points: the fraction of detected atoms found in g, with {_level(level)} Wilson "
                "intervals (scipy.stats.binomtest); curves: a + b cos φ + c sin φ refitted from "
-               "the journal's counts (weighted linear least squares, autotune.fringe). "
+               "the journal's counts (weighted linear least squares, autotune.analysis.fringe). "
                + "; ".join(fit_notes) + ".")
     return fig, caption
 

@@ -1,8 +1,8 @@
 """Figure: a night of ``autotune track`` told by its own test, against rig time.
 
-A night (:mod:`autotune.track`) decides by what its ``hold`` records journal after every check:
+A night (:mod:`autotune.run.track`) decides by what its ``hold`` records journal after every check:
 the phase error against the stored phase at the peak, the lock's estimate of the peak, the
-three sequential statistics against their thresholds (:mod:`autotune.hold`), the inversion
+three sequential statistics against their thresholds (:mod:`autotune.analysis.hold`), the inversion
 against its reference, and the beam time holding took against the budget. This figure draws
 exactly those numbers, with the night's retunes and calibrations (shaded from their start to
 their end, red when not accepted), its alarms and its failed recoveries.

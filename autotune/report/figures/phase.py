@@ -1,6 +1,6 @@
 """Figure: the photon phase shift against detuning, with the phase lock's own model.
 
-The phase lock (:mod:`autotune.guided`) chooses the detuning where its fitted phase curve
+The phase lock (:mod:`autotune.analysis.guided`) chooses the detuning where its fitted phase curve
 crosses its estimate of the phase at the inversion's peak; both are journaled in the
 ``stop_search`` decision (``learned``: ``lock_fit``, ``phase_at_peak_rad``). This figure draws
 exactly those: a reader sees the crossing that made the choice.
@@ -28,7 +28,7 @@ def _wrap(angle: Any) -> Any:
 
 class LockCurve:
     """The lock's fitted phase curve from its journaled ``lock_fit`` (see
-    :meth:`autotune.guided.PhaseLockSearch.state`): mean and standard error in rad."""
+    :meth:`autotune.analysis.guided.PhaseLockSearch.state`): mean and standard error in rad."""
 
     def __init__(self, fit: Mapping[str, Any]) -> None:
         self.centre_hz = float(fit["centre_hz"])

@@ -1,0 +1,27 @@
+"""The pure analysis: counts to inversions, the search over set-points, the phase lock and the
+night's hold, as functions and objects that do no I/O (no socket, file, clock or terminal).
+
+What lives here:
+
+- :mod:`~autotune.analysis.fringe`: counts -> fringe fit -> inversion with its uncertainty;
+- :mod:`~autotune.analysis.search`: the search space and the strategies' ask/tell interface;
+  the only module that imports scikit-optimize;
+- :mod:`~autotune.analysis.guided`: the phase lock (``PhaseLockSearch``), with its models by
+  concern in :mod:`~autotune.analysis.lock_fit` (the detuning lock's fit),
+  :mod:`~autotune.analysis.velocity_model` (the inversion along velocity),
+  :mod:`~autotune.analysis.shortfall` (the bound as data), :mod:`~autotune.analysis.next_point`
+  (the choice of the next point) and :mod:`~autotune.analysis.retune_verdict` (a retune's
+  verdict);
+- :mod:`~autotune.analysis.strategies`: a strategy by its configured name;
+- :mod:`~autotune.analysis.hold`: the night's pure core (drift lock, sequential test, plan of the
+  checks, beam budget, recovery).
+
+What it may import: the foundation modules (:mod:`autotune.errors`, :mod:`autotune.plausible`,
+:mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`) and itself; nothing of
+the wire, the lab kit, a run, the report, the study or the command line
+(tests/test_layout.py holds this). The package imports no module of its own here: import the
+module you need (``from autotune.analysis.fringe import estimate_inversion``).
+"""
+
+__all__ = ["fringe", "guided", "hold", "lock_fit", "next_point", "retune_verdict", "search",
+           "shortfall", "strategies", "velocity_model"]

@@ -1,0 +1,25 @@
+"""Running a stage and a night: the shell around the analysis that moves the rig, records every
+step and survives a kill.
+
+What lives here:
+
+- :mod:`~autotune.run.loop`: one stage, propose -> guard -> apply -> acquire -> estimate -> tell
+  -> record (``Session``, ``run_stage``, ``run_guided_stage``);
+- :mod:`~autotune.run.runner`: one stage as a run: run folder, manifest, result, last good store,
+  with its checks before the first move in :mod:`~autotune.run.preflight` (the config against
+  the rig's description and the store, a resume's changes, a failure settled safely);
+- :mod:`~autotune.run.track`: ``autotune track``, a night in one run folder (the shell around
+  :mod:`autotune.analysis.hold` and the guided stages);
+- :mod:`~autotune.run.journal`: append-only JSON Lines, durable, replayable, read up to a damage;
+- :mod:`~autotune.run.runlock`: one owner per run folder (the OS lock and its holder file);
+- :mod:`~autotune.run.display`: the progress line on a terminal, or plain lines (used by the
+  command line and the study only).
+
+What it may import: the foundation modules (:mod:`autotune.errors`, :mod:`autotune.plausible`,
+:mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`), the analysis
+(:mod:`autotune.analysis`), the wire (:mod:`autotune.wire`) and itself; nothing of the lab kit,
+the report, the study or the command line (tests/test_layout.py holds this): a stage talks to
+any rig through :class:`autotune.wire.rig.Rig`.
+"""
+
+__all__ = ["display", "journal", "loop", "preflight", "runlock", "runner", "track"]

@@ -1,0 +1,1339 @@
+"""``autotune track``: hold the 2π condition through the night, in one run folder.
+
+The imperative shell around :mod:`autotune.hold` (the lock, the sequential test and the plan of
+the checks, all pure) and :func:`autotune.loop.run_guided_stage` (the guided retune and
+calibration, unchanged).
+
+A night
+-------
+1. It begins with the guided retune from the last good calibration (a check of its set-points
+   against the stored lock, corrected when needed), or with a calibration when the store holds
+   none with a lock prior. The stage's verified set-points, its lock prior (slope, cubic, phase
+   at the peak) and its verified inversion are what the night holds.
+2. It plans the checks (:func:`autotune.hold.plan_checks`, a ``plan`` decision with its
+   numbers) and holds: wait (the rig clock is the reference: a simulated rig's virtual clock is
+   moved on with its ``advance`` op, a real rig is waited for in wall time, interruptibly, its
+   clock read with ``status``), check (one fringe pair of both fields at the set-points in force
+   and the plan's shots), assess (:func:`autotune.hold.assess_check`), correct the detuning.
+   The plan is made again after every stage and every hour of rig time, from the noise and
+   signal measured so far and the beam time holding has taken.
+   The beam budget is a ceiling (:class:`autotune.hold.BeamBudget`): a check or a stage begins
+   only when what is left pays for it at its largest size; a recovery is sized by
+   :func:`autotune.hold.choose_recovery` (a ``budget`` decision when it had to be smaller, or a
+   correction without a stage, or none); when no check can be paid for, the night holds its
+   set-points without checks (an ``unwatched`` decision). The rig time the budget left unheld
+   is counted (:class:`autotune.hold.Unheld`) and in the result.
+3. An alarm of the sequential test begins a recovery: the guided retune, started where the lock
+   estimates the peak went; if it is not accepted, a calibration. A recovery accepted with a lock
+   prior resets the lock and the test at its verified set-points, becomes the last good
+   calibration (``[calibration] store``) and the plan is made again; one that is not counts a
+   failure, and the recovery is tried again an interval later.
+4. It stops at SIGINT/SIGTERM, at its end in rig or wall time (``[track] max_rig_time_s``,
+   ``max_wall_time_s``, ``end_at_local_time``), or after ``max_consecutive_failures`` failed
+   recoveries in a row, leaving the rig where ``[track] on_stop`` says, with the journal closed
+   and resumable.
+
+The journal
+-----------
+Besides the stage records, a night writes
+
+- ``wait``: written before waiting, with the rig clock it waits until and why;
+- measurements labelled ``hold``, numbered through the night, with their write-ahead requests,
+  acquisitions and estimates;
+- ``hold`` after each check's estimate: every number of the assessment (phase error, offset
+  from the peak, innovation, the statistics, the lock), the action with its reason, and the
+  night's whole ``state``;
+- decisions ``retune`` / ``calibrate`` (a stage begins, with its index and arguments; its own
+  records follow, from ``stage`` to its final decision), ``stage_done`` (its outcome), ``plan``
+  (the cadence and shots of the checks with their numbers, and the ``state``), ``correct``
+  (``from``/``to`` set-points, as :mod:`autotune.report` draws them), ``alarm`` (the statistic,
+  its value and threshold), ``failure`` (with the ``state``), ``stop`` (the reason).
+
+Resume
+------
+The last snapshot (a ``hold`` record, or a ``plan``, ``failure`` or ``unwatched`` decision)
+holds the whole
+state; the records after it say how far the next step went: a correction decided or moved, an
+alarm decided, a stage begun or finished, a wait begun, a check measured in part. Each step is
+completed without repeating what was done: a check from its missing acquisitions only (a
+request whose reply never arrived is asked for again by its ``msg_id``), a stage through
+:func:`autotune.loop.run_guided_stage`'s own resume, a wait up to its recorded clock.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import threading
+import time
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import structlog
+
+from autotune.config import RunConfig
+from autotune.errors import (
+    ConfigErrors,
+    Interrupted,
+    JournalError,
+    RigError,
+)
+from autotune.analysis.fringe import InversionEstimate
+from autotune.analysis.guided import LockPrior
+from autotune.analysis.guided import detuning_offset
+from autotune.analysis.hold import (
+    BeamBudget,
+    CheckPlan,
+    DriftLock,
+    HoldSettings,
+    NoiseModel,
+    RecoveryChoice,
+    StageSize,
+    Unheld,
+    assess_check,
+    choose_recovery,
+    expected_stage_beam_s,
+    known_cubic,
+    noise_row,
+    plan_night,
+    recovery_start,
+    reference_add,
+    reference_value,
+    unwatched_until,
+)
+from autotune.run.journal import (
+    JOURNAL_NAME,
+    RESULT_NAME,
+    Journal,
+    ended_error,
+    utc_now,
+    write_json_atomic,
+)
+from autotune.run.loop import (
+    Budget,
+    Session,
+    StageOutcome,
+    _Measurement,
+    _replay,
+    child_seed,
+    lock_settings,
+    retune_box,
+    run_guided_stage,
+)
+from autotune.progress import NightProgress, ProgressObserver, setpoints_text
+from autotune.wire.rig import Rig
+from autotune.run.runner import (
+    run_manifest as _manifest,
+    opening_call,
+    read_last_good,
+    read_run_files,
+    resume_changes,
+    settle_failure,
+    track_preflight,
+)
+from autotune.analysis.search import PointResult
+
+__all__ = ["PreparedNight", "prepare_track", "execute_track", "track", "TRACK_END_STATUSES",
+           "hold_settings"]
+
+_log = structlog.get_logger(__name__)
+
+#: End statuses of a night that finished: its end came, or its recoveries kept failing.
+TRACK_END_STATUSES = ("ended", "gave_up")
+
+# Measurement label of the night's checks.
+_HOLD = "hold"
+# How many measurements the noise model remembers, and how many checks the change-point
+# estimate may look back over.
+_NOISE_MEMORY = 24
+_RECENT = 16
+# The plan is made again after this much rig time (s).
+_REPLAN_S = 3600.0
+# Lock steps a retune is expected to take besides its check and verification (the prior of
+# its cost before the night has measured its own retunes): a recovery starts at the peak the
+# checks measured, so one step corrects what is left of that estimate's error.
+_EXPECTED_RETUNE_STEPS = 1
+# Longest single wall-clock wait on a real rig between reads of its clock (s).
+_WALL_POLL_S = 30.0
+# Snapshots: the records that carry the night's whole state.
+_SNAPSHOT_DECISIONS = ("plan", "failure", "unwatched")
+
+
+@dataclass
+class PreparedNight:
+    """A night checked and ready to run (nothing written yet).
+
+    Attributes
+    ----------
+    config : RunConfig
+    description : Description
+        The rig's describe reply.
+    run_dir : Path
+    resume : bool
+    store : Path
+        The last good calibration (read at the start, replaced after accepted recoveries).
+    last_good : dict or None
+        The last good calibration the night starts from (None: it starts with a calibration).
+    changes : list of (key, old, new)
+        Configuration changes a resume accepted.
+    """
+
+    config: RunConfig
+    description: Any
+    run_dir: Path
+    resume: bool
+    store: Path
+    last_good: dict[str, Any] | None = None
+    changes: list[tuple[str, Any, Any]] = field(default_factory=list)
+
+
+def hold_settings(config: RunConfig, description: Any) -> HoldSettings:
+    """The pure side's settings from ``[track]``, ``[lock]``, ``[measurement]`` and the rig."""
+    t = config.track
+    box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
+    most = int(getattr(description, "max_shots_per_acquisition", 0) or 0) or 10_000_000
+    return HoldSettings(
+        floor=t.floor, budget_fraction=t.budget_fraction,
+        false_alarm_interval_s=t.false_alarm_interval_s, max_gain=t.max_gain,
+        max_correction_hz=t.max_correction_hz, min_correction_hz=t.min_correction_hz,
+        min_shots_per_phase=t.min_shots_per_phase, max_shots_per_phase=most,
+        max_interval_s=t.max_interval_s, walk_hz_per_sqrt_s=t.walk_hz_per_sqrt_s,
+        inversion_drop=t.inversion_drop, ramsey_phases=config.measurement.ramsey_phases,
+        repetition_rate_hz=float(description.repetition_rate_hz),
+        lock=lock_settings(config, box))
+
+
+def planned_stage(config: RunConfig, kind: str) -> StageSize:
+    """A stage of the night (``"retune"`` or ``"calibrate"``) at its configured size."""
+    if kind == "retune":
+        return StageSize("retune", config.track.retune_shots_per_phase,
+                         config.track.retune_shots_per_phase, config.lock.max_corrections,
+                         config.retune.max_shots, config.retune.max_points)
+    return StageSize("calibrate", 0, config.measurement.verification_shots_per_phase,
+                     config.lock.max_corrections, config.search.max_shots,
+                     config.search.max_points)
+
+
+def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
+                     repetition_rate_hz: float) -> float:
+    """Beam a recovery of ``kind`` is expected to take (:func:`autotune.hold.expected_stage_beam_s`)
+    from the night's recoveries so far (``spent``) and a prior (a retune: its check,
+    verification and one lock step; a calibration: its least points and verification)."""
+    size = planned_stage(config, kind)
+    per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
+        (_EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \
+        config.lock.lock_shots_per_phase
+    prior = 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
+    return expected_stage_beam_s(prior, spent)
+
+
+def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
+                  store: Path | None = None, stop: threading.Event | None = None
+                  ) -> PreparedNight:
+    """Check a night before anything moves or is written.
+
+    Raises
+    ------
+    ConfigErrors
+        Every problem found together (exit code 2 in the CLI), see
+        :func:`autotune.runner.track_preflight`.
+    ConfigError
+        The last good store exists but is damaged.
+    JournalError
+        A new night's folder already holds a run, or a resumed one cannot be resumed (no
+        journal, another command or rig, or the night already ended).
+    RigError
+        The rig does not answer its ``describe``.
+    """
+    run_dir = Path(run_dir)
+    store = Path(store) if store is not None else config.calibration_store
+    last_good = read_last_good(store) if store.exists() else None
+    if not resume and (run_dir / JOURNAL_NAME).exists():
+        raise JournalError(f"{run_dir} already holds a run; use --resume or another --out")
+    if resume:  # every file is read (and a damaged one refused) before the rig is asked
+        manifest, records = read_run_files(run_dir)
+    description = opening_call("describe", rig.describe, config, rig, stop)
+    problems = track_preflight(config, description, store=store, last_good=last_good,
+                               resume=resume)
+    changes: list[tuple[str, Any, Any]] = []
+    if resume:
+        if manifest.get("command") != "track":
+            raise JournalError(f"{run_dir} holds a {manifest.get('command')} run, not a night of "
+                               f"track; resume it with 'autotune {manifest.get('command')} "
+                               f"--config CONFIG --resume {run_dir}'")
+        started_on = manifest.get("rig", {}).get("rig")
+        if started_on != description.rig:
+            raise JournalError(f"{run_dir} was run on rig {started_on!r}, this is "
+                               f"{description.rig!r}")
+        if (ended := ended_error(run_dir, records, "night")) is not None:
+            raise ended
+        changes, refused = resume_changes(manifest.get("config", {}), config.raw, config.source,
+                                          also_allowed=("track.",))
+        problems.extend(refused)
+    if problems:
+        raise ConfigErrors(problems)
+    return PreparedNight(config, description, run_dir, resume, store, last_good, changes)
+
+
+def track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
+          stop: threading.Event | None = None, store: Path | None = None,
+          extra: Mapping[str, Any] | None = None,
+          wall: Callable[[], float] = time.time,
+          progress: ProgressObserver | None = None) -> dict[str, Any]:
+    """Prepare and run a night (studies and tests; the CLI calls the two steps)."""
+    prepared = prepare_track(rig, config, run_dir, resume=resume, store=store, stop=stop)
+    return execute_track(prepared, rig, stop=stop, extra=extra, wall=wall, progress=progress)
+
+
+def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | None = None,
+                  extra: Mapping[str, Any] | None = None,
+                  wall: Callable[[], float] = time.time,
+                  progress: ProgressObserver | None = None) -> dict[str, Any]:
+    """Run a prepared night: open the run folder, hold, write the result.
+
+    ``progress`` is a progress observer (:mod:`autotune.progress`): told a
+    :class:`~autotune.progress.NightProgress` after each check and before each wait, and the
+    stages' own progress during a retune or a calibration. Display only, never journaled.
+
+    On a stop signal the rig stays at the held set-points if ``on_stop = "last_good"`` and it is
+    there, else goes to its safe set-points (the outcome is on the raised :class:`Interrupted`
+    as ``safe``); on an error it goes to its safe set-points. The journal gets an ``end``
+    record and is closed; a stopped or aborted night can be resumed.
+
+    Raises
+    ------
+    Interrupted
+        SIGINT/SIGTERM.
+    JournalError
+        The run folder or the last good store could not be written.
+    RigError, LimitError
+        The rig failed past the retries, or a set-point was refused.
+    """
+    config, run_dir = prepared.config, prepared.run_dir
+    wall_start = time.monotonic()
+    opening_clock = None
+    if prepared.resume:
+        journal, _, records = Journal.open_for_resume(run_dir)
+    else:
+        # The rig's clock before the folder exists: a night that never reached the rig
+        # leaves no journal behind.
+        opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
+        manifest = _manifest(_AsPrepared(prepared), {"last_good": prepared.last_good,
+                                                     **dict(extra or {})})
+        journal, records = Journal.create(run_dir, manifest), []
+    ledger = _Ledger(journal, records)
+    log = _log.bind(run=run_dir.name, command="track")
+    status = "failed"
+    session: Session | None = None
+    try:
+        session = Session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
+                          stop=stop, progress=progress)
+        if prepared.changes:
+            session.decide("config_changed", "resumed with a changed configuration: "
+                           + "; ".join(f"{k}: {old!r} -> {new!r}"
+                                       for k, old, new in prepared.changes),
+                           changes=[{"key": k, "old": old, "new": new}
+                                    for k, old, new in prepared.changes])
+        if not any(r.get("type") == "start" for r in records):
+            clock = opening_clock if opening_clock is not None else \
+                float(session._call("status", lambda _id: rig.status()).clock)
+            ledger.append("start", clock=clock, command="track",
+                          instance=getattr(prepared.description, "instance", None))
+    except BaseException:
+        ledger.append("end", status=status)
+        journal.close()
+        raise
+    night: _Night | None = None
+    try:
+        night = _Night(session, prepared, rig, ledger, wall)
+        session.resume_moves(records)
+        session.learn_present()
+        result = night.run()
+        result["wall_time_s"] = time.monotonic() - wall_start
+        write_json_atomic(run_dir / RESULT_NAME, result)
+        status = result["status"]
+        return result
+    except Interrupted as exc:
+        status = "interrupted"
+        exc.safe, exc.safe_detail = night.leave_on_signal() if night is not None else \
+            session.go_safe("stopped by signal")
+        raise
+    except Exception as exc:
+        status = settle_failure(session, exc, status)
+        raise
+    finally:
+        ledger.append("end", status=status)
+        journal.close()
+        log.info("night_end", status=status)
+
+
+@dataclass
+class _AsPrepared:
+    """What :func:`autotune.runner._manifest` reads of a prepared run."""
+
+    prepared: PreparedNight
+
+    @property
+    def command(self) -> str:
+        return "track"
+
+    @property
+    def config(self) -> RunConfig:
+        return self.prepared.config
+
+    @property
+    def description(self) -> Any:
+        return self.prepared.description
+
+
+class _Ledger:
+    """The journal, seen through: every record passes, and the night keeps its accounts.
+
+    Acquisitions are counted as the night's checks (label ``hold``) or as its stages (anything
+    else); the last estimate record is kept (a stage's final clock).
+    """
+
+    def __init__(self, journal: Journal, records: Sequence[Mapping[str, Any]]) -> None:
+        self._journal = journal
+        self.check_beam_s = 0.0
+        self.stage_beam_s_total = 0.0
+        self.first_stage_beam_s = 0.0
+        self.shots = 0
+        self.stages_begun = 0
+        self.first_stage_is_calibration = False
+        self.stage_beam_s: dict[int, float] = {}
+        self.stage_kind: dict[int, str] = {}
+        self.last_estimate: Mapping[str, Any] | None = None
+        self.records: list[Mapping[str, Any]] = []
+        for rec in records:
+            self._count(rec)
+
+    def _count(self, rec: Mapping[str, Any]) -> None:
+        self.records.append(rec)
+        kind = rec.get("type")
+        if kind == "acquisition":
+            beam = float(rec["t_end"]) - float(rec["t_start"])
+            self.shots += int(rec["shots"])
+            if rec.get("label") == _HOLD:
+                self.check_beam_s += beam
+            else:
+                self.stage_beam_s_total += beam
+                index = self.stages_begun - 1
+                self.stage_beam_s[index] = self.stage_beam_s.get(index, 0.0) + beam
+                if self.stages_begun == 1:
+                    self.first_stage_beam_s += beam
+        elif kind == "estimate":
+            self.last_estimate = rec
+        elif kind == "decision" and rec.get("what") in ("retune", "calibrate") and "index" in rec:
+            self.stages_begun = max(self.stages_begun, int(rec["index"]) + 1)
+            self.stage_kind[int(rec["index"])] = str(rec["what"])
+            if int(rec["index"]) == 0:
+                self.first_stage_is_calibration = rec.get("what") == "calibrate"
+
+    @property
+    def holding_beam_s(self) -> float:
+        """Beam time of holding: checks and stages, less a calibration the night began with."""
+        first = self.first_stage_beam_s if self.first_stage_is_calibration else 0.0
+        return self.check_beam_s + self.stage_beam_s_total - first
+
+    def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
+        # A non-finite number is refused by the journal (a bug upstream, never written silently):
+        # a recommendation's predicted value is made null where it is computed (autotune/loop.py).
+        rec = self._journal.append(record_type, **fields)
+        self._count(rec)
+        return rec
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._journal, name)
+
+
+def _same(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+    return all(abs(float(a.get(k, math.nan)) - float(v)) <= 1e-9 * max(1.0, abs(float(v)))
+               for k, v in b.items())
+
+
+def _clean(value: Any) -> Any:
+    """JSON-ready: nan and infinities as None, recursively."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, Mapping):
+        return {str(k): _clean(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_clean(v) for v in value]
+    return value
+
+
+def _stage_slice(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
+    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+    begun = None
+    for position, rec in enumerate(tail):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out: list[Mapping[str, Any]] = []
+    for rec in tail[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if out or rec.get("type") == "stage":
+            out.append(rec)
+    return out
+
+
+def _outcome_from(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
+                  ) -> dict[str, Any] | None:
+    """A finished stage's outcome from its own records (its final decision), or None."""
+    final = None
+    for rec in records:
+        if rec.get("type") == "decision" and rec.get("what") in ("accepted",
+                                                                  "below_acceptance",
+                                                                  "still_good"):
+            final = rec
+    if final is None:
+        return None
+    estimates = [r for r in records if r.get("type") == "estimate"]
+    setpoints = {k: float(v) for k, v in final["setpoints"].items()}
+    at = [r for r in estimates if _same(r["setpoints"], setpoints)]
+    last = at[-1] if at else estimates[-1]
+    learned = final.get("learned")
+    return {"status": final["what"],
+            "accepted": final["what"] in ("accepted", "still_good"),
+            "setpoints": setpoints, "estimate": dict(last["estimate"]),
+            "clock_s": last.get("clock_s"),
+            "lock_prior": learned if learned is not None else prior}
+
+
+def _stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: int
+                     ) -> list[Mapping[str, Any]]:
+    """The check, verification and correction estimates of stage ``index`` with their shots."""
+    begun = None
+    for position, rec in enumerate(records):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out, opened = [], {}
+    for rec in records[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if rec.get("type") == "measurement":
+            opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
+        elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
+                                                                     "correct"):
+            per_phase = opened.get((rec["label"], rec["point"]), 0)
+            out.append({**rec, "shots": 2 * phases * per_phase})
+    return out
+
+
+def _parse_wall(text: Any) -> float | None:
+    try:
+        return datetime.fromisoformat(str(text)).timestamp()
+    except (TypeError, ValueError):
+        return None
+
+
+class _NightClock:
+    """The night's time: its ends in rig and wall time, and the waits for the rig's clock.
+
+    The rig clock is the reference: a simulated rig's virtual clock is moved on with its
+    ``advance`` op; a real rig is waited for in wall time, interruptibly, its clock read with
+    ``status`` (at most every ``_WALL_POLL_S``).
+    """
+
+    def __init__(self, session: Session, rig: Rig, config: RunConfig, ledger: _Ledger, *,
+                 start_clock: float, start_wall: float, simulated: bool,
+                 wall: Callable[[], float], find: Callable[..., Mapping[str, Any] | None],
+                 tell: Callable[..., None]) -> None:
+        self.session, self.rig, self.config, self.ledger = session, rig, config, ledger
+        self.start_clock, self.start_wall = start_clock, start_wall
+        self.simulated, self.wall, self._find, self._tell = simulated, wall, find, tell
+        self.wall_end = self._wall_end()
+
+    def _wall_end(self) -> float | None:
+        t = self.config.track
+        ends = []
+        if t.max_wall_time_s > 0:
+            ends.append(self.start_wall + t.max_wall_time_s)
+        minutes = t.end_at_minutes
+        if minutes is not None:
+            ends.append(self.local_end(self.start_wall, minutes))
+        return min(ends) if ends else None
+
+    @staticmethod
+    def local_end(start_wall: float, minutes: int) -> float:
+        """The first local time ``minutes`` after midnight that comes after ``start_wall``."""
+        began = datetime.fromtimestamp(start_wall)
+        at = began.replace(hour=minutes // 60, minute=minutes % 60, second=0, microsecond=0)
+        if at <= began:
+            at += timedelta(days=1)
+        return at.timestamp()
+
+    @property
+    def rig_end(self) -> float | None:
+        """Rig clock of the night's end (None: no end in rig time)."""
+        t = self.config.track
+        return self.start_clock + t.max_rig_time_s if t.max_rig_time_s > 0 else None
+
+    def remaining_s(self) -> float | None:
+        """Rig time to the night's end (a real rig's clock runs with the wall clock), or None."""
+        remaining = None
+        if self.rig_end is not None:
+            remaining = self.rig_end - self.session.clock
+        if self.wall_end is not None:
+            ahead = max(self.wall_end - self.wall(), 0.0)
+            remaining = ahead if remaining is None else min(remaining, ahead)
+        return remaining
+
+    def end_reason(self) -> str | None:
+        """Why the night ends now, or None."""
+        t = self.config.track
+        if self.rig_end is not None and self.session.clock >= self.rig_end - 1e-6:
+            return (f"end of the night: {t.max_rig_time_s / 3600:.2f} h of rig time since it "
+                    f"began (track.max_rig_time_s)")
+        if self.wall_end is not None and self.wall() >= self.wall_end:
+            which = "track.max_wall_time_s" if t.max_wall_time_s > 0 else \
+                f"track.end_at_local_time {t.end_at_local_time}"
+            return f"end of the night in wall time ({which})"
+        return None
+
+    def bounded(self, clock: float) -> float:
+        """``clock``, at most the night's end in rig time."""
+        return min(clock, self.rig_end) if self.rig_end is not None else clock
+
+    def read(self) -> float:
+        """The rig's clock (``status``), s."""
+        status = self.session._call("status", lambda _id: self.rig.status())
+        self.session.clock = max(self.session.clock, float(status.clock))
+        return float(status.clock)
+
+    def wait_until(self, until: float, reason: str, **key: int) -> None:
+        """Wait until the rig clock reaches ``until`` (write-ahead ``wait`` record, named by
+        ``key``: the next check's ``point`` or a ``retry``)."""
+        now = self.read()
+        if until <= now + 1e-6:
+            return
+        if self._find("wait", **key) is None:
+            self.ledger.append("wait", **key, from_clock=now, until_clock=until,
+                               reason=reason, how="advance" if self.simulated else "wall")
+        self._tell("wait", next_in_s=until - now)
+        if self.simulated:
+            def advance(_msg_id: str) -> Any:
+                # Recomputed at each attempt from the rig's own clock: a retried advance never
+                # moves the clock twice.
+                status = self.rig.status()
+                remaining = until - float(status.clock)
+                return self.rig.advance(remaining) if remaining > 0 else {"clock": status.clock}
+
+            self.session._check_stop()
+            reply = self.session._call("advance", advance)
+            self.session.clock = max(self.session.clock, float(reply["clock"]))
+            return
+        began, start_clock = time.monotonic(), now
+        while now < until - 1e-6:
+            remaining = until - now
+            if self.wall_end is not None:
+                remaining = min(remaining, max(self.wall_end - self.wall(), 0.0))
+            if self.session.stop.wait(min(max(remaining, 0.0), _WALL_POLL_S)):
+                raise Interrupted("stopped by signal while waiting for the next check")
+            if self.wall_end is not None and self.wall() >= self.wall_end:
+                return
+            now = self.read()
+            if time.monotonic() - began > 2.0 * (until - start_clock) + 60.0:
+                self.session.decide("clock", f"the rig clock advanced {now - start_clock:.0f} s "
+                                    f"in {time.monotonic() - began:.0f} s of wall time: not "
+                                    f"waiting longer for it", until_clock=until, clock=now)
+                return
+
+
+class _Night:
+    """One night's state machine (see the module notes)."""
+
+    def __init__(self, session: Session, prepared: PreparedNight, rig: Rig, ledger: _Ledger,
+                 wall: Callable[[], float]) -> None:
+        self.session = session
+        self.prepared = prepared
+        self.config = prepared.config
+        self.rig = rig
+        self.ledger = ledger
+        self.wall = wall
+        self.settings = hold_settings(self.config, prepared.description)
+        self.simulated = bool(getattr(prepared.description, "simulated", False)) and \
+            callable(getattr(rig, "advance", None))
+        records = list(ledger.records)
+        starts = [r for r in records if r.get("type") == "start"]
+        self.start_clock = float(starts[0]["clock"])
+        self.start_wall = _parse_wall(starts[0].get("t_wall")) or wall()
+        snapshot = None
+        for index in range(len(records) - 1, -1, -1):
+            rec = records[index]
+            if rec.get("type") == "hold" or (rec.get("type") == "decision"
+                                             and rec.get("what") in _SNAPSHOT_DECISIONS):
+                snapshot = index
+                break
+        self.state: dict[str, Any] | None = None
+        # The records after the last snapshot (those this process writes included): how far
+        # the next step went.
+        self._tail_start = 0
+        if snapshot is not None:
+            self.state = dict(records[snapshot]["state"])
+            self._tail_start = snapshot + 1
+        self.resumed = bool(prepared.resume)
+        self.clock = _NightClock(session, rig, self.config, ledger, start_clock=self.start_clock,
+                                 start_wall=self.start_wall, simulated=self.simulated,
+                                 wall=wall, find=self._find, tell=self._tell)
+        self.log = _log.bind(run=prepared.run_dir.name)
+
+    # -- records of the tail (resume) ------------------------------------------------------
+
+    @property
+    def tail(self) -> list[Mapping[str, Any]]:
+        """The records after the last snapshot."""
+        return self.ledger.records[self._tail_start:]
+
+    def _find(self, kind: str, **match: Any) -> Mapping[str, Any] | None:
+        for rec in self.tail:
+            if rec.get("type") != kind:
+                continue
+            if all(rec.get(k) == v for k, v in match.items()):
+                return rec
+        return None
+
+    def _snapshot(self, kind: str, **fields: Any) -> None:
+        """Write a record carrying the whole state; the tail of a resume is done with."""
+        state = _clean(self.state)
+        if kind == "hold":
+            self.ledger.append("hold", state=state, **_clean(fields))
+        else:
+            self.session.decide(kind, fields.pop("reason"), state=state, **_clean(fields))
+        self._tail_start = len(self.ledger.records)
+
+    # -- the night ---------------------------------------------------------------------------
+
+    def run(self) -> dict[str, Any]:
+        """Hold until the night ends; the result."""
+        if self.resumed:
+            self.session.decide("resume", f"continuing the night from its journal "
+                                f"({'no snapshot yet' if self.state is None else 'last snapshot'}"
+                                f", {len(self.tail)} records after it)", retold=[])
+        if self.state is None:
+            self.state = self._begin()
+        while True:
+            self._complete_pending()
+            # Work a killed process left half done (a stage begun, a check measured in part)
+            # is finished before the end of the night is looked at: its requests are resolved
+            # and the rig left at a verified setting.
+            if self._in_flight() is None:
+                reason = self.clock.end_reason()
+                if reason is not None:
+                    return self._finish(reason, "ended")
+            mode = self.state["mode"]
+            if mode == "recover":
+                self._recover()
+                if self.state["mode"] == "stopped":
+                    return self._finish(self.state["stop_reason"], "gave_up")
+                continue
+            if mode == "unwatched":
+                until = float(self.state["resume_clock"])
+                self.clock.wait_until(self.clock.bounded(until), "no check the budget can pay for",
+                                 unwatched=int(self.state["point"]))
+                if self.clock.end_reason() is not None:
+                    continue
+                if self.state.get("to_end"):
+                    # The end of the night in wall time has not come with the rig's clock.
+                    self._unwatched("the budget still cannot pay for a check")
+                    continue
+                self.state = {**self.state, "mode": "hold", "starved": False, "next": None}
+                self._replan("the budget affords a check again")
+                continue
+            if mode == "retry":
+                due = float(self.state["retry_clock"])
+                self.clock.wait_until(self.clock.bounded(due), "retry the recovery after a failure",
+                                 retry=int(self.state["failures"]))
+                if self.clock.end_reason() is not None:
+                    continue
+                self.state = {**self.state, "mode": "recover"}
+                continue
+            if self.session.clock >= float(self.state["replan_clock"]):
+                self._replan("an hour of rig time since the last plan")
+                continue
+            self._hold_once()
+
+    def _in_flight(self) -> str | None:
+        """``"stage"`` or ``"check"`` when the journal's tail holds one begun and not finished."""
+        begun = {r["index"] for r in self.tail if r.get("type") == "decision"
+                 and r.get("what") in ("retune", "calibrate") and "index" in r}
+        done = {r["index"] for r in self.tail if r.get("type") == "decision"
+                and r.get("what") == "stage_done"}
+        if begun - done:
+            return "stage"
+        if self.state is not None and self.state.get("mode") == "hold" and self.state.get("next"):
+            point = self.state["next"]["point"]
+            if any(r.get("type") == "measurement" and r.get("label") == _HOLD
+                   and r.get("point") == point for r in self.tail):
+                return "check"
+        return None
+
+    # -- the beginning ---------------------------------------------------------------------------
+
+    def _begin(self) -> dict[str, Any]:
+        """The state before the first stage (no snapshot in the journal yet)."""
+        config = self.config
+        good = self.prepared.last_good
+        begun = self._find("decision", what="retune", index=0) or \
+            self._find("decision", what="calibrate", index=0)
+        noise: list[list[float]] = []
+        if begun is not None:
+            kinds = [begun["what"]] + (["calibrate"] if begun["what"] == "retune" else [])
+            start = dict(begun["start"])
+            prior = begun.get("prior")
+            reason = "start of the night (resumed)"
+        elif good is not None and good.get("lock_prior") is not None:
+            kinds = ["retune", "calibrate"]
+            start = {sp.name: float(good["setpoints"][sp.name]) for sp in config.setpoints}
+            prior = good["lock_prior"]
+            reason = (f"start of the night: the guided retune from the last good calibration of "
+                      f"{good.get('t_wall', '?')} ({good.get('run_dir', '?')})")
+        else:
+            kinds = ["calibrate"]
+            start = {}
+            prior = None
+            reason = ("start of the night: no last good calibration" if good is None else
+                      "start of the night: the last good calibration has no lock prior (made "
+                      "without the phase lock)") + "; a calibration first"
+        rate, rate_sd = 0.0, float(config.lock.drift_prior_hz_per_s)
+        if prior is not None:
+            rate = float(LockPrior.from_dict(prior).peak_drift_hz_per_s)
+        return {"mode": "recover", "failures": 0, "stages": 0, "point": 0,
+                "recover": {"kinds": kinds, "start": start, "prior": prior, "reason": reason,
+                            "first_index": 0},
+                "rate": {"rate_hz_per_s": rate, "rate_stderr_hz_per_s": rate_sd},
+                "noise": noise, "counts": {"checks": 0, "rechecks": 0, "corrections": 0,
+                                            "alarms": 0, "retunes": 0, "calibrations": 0,
+                                            "failures": 0, "stages_accepted": 0},
+                "held": None, "recent": []}
+
+    # -- stages ----------------------------------------------------------------------------------
+
+    def _stage(self, kind: str, index: int, start: Mapping[str, float],
+               prior: Mapping[str, Any] | None, reason: str, *,
+               size: StageSize | None = None) -> dict[str, Any]:
+        """Run (or resume, or read back) stage ``index``; its outcome as a plain dict.
+
+        ``size`` bounds its shots (the budget's choice); None keeps the configured sizes.
+        """
+        done = self._find("decision", what="stage_done", index=index)
+        if done is not None:
+            self.state["counts"]["retunes" if kind == "retune" else "calibrations"] += 1
+            return dict(done["outcome"])
+        config, session = self.config, self.session
+        s, r = config.search, config.retune
+        if kind == "retune":
+            box = retune_box(config, start, session.limits)
+            budget = Budget(r.max_points, r.max_shots, s.max_rig_time_s, 1)
+            shots = {"check_shots_per_phase": config.track.retune_shots_per_phase,
+                     "verification_shots_per_phase": config.track.retune_shots_per_phase}
+        else:
+            box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
+            nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
+            start = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
+                     for name, (lo, hi) in box.items()}
+            budget = Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points)
+            shots = {}
+            prior = None
+        begun = self._find("decision", what=kind, index=index)
+        # The snapshot the state came from predates this stage: count it once here.
+        self.state["counts"]["retunes" if kind == "retune" else "calibrations"] += 1
+        if begun is None:
+            session.decide(kind, reason, index=index, start=dict(start),
+                           box={k: list(v) for k, v in box.items()}, prior=prior,
+                           size=None if size is None else size.to_dict())
+        else:
+            start = {k: float(v) for k, v in begun["start"].items()}
+            box = {k: (float(v[0]), float(v[1])) for k, v in begun["box"].items()}
+            prior = begun.get("prior")
+            size = None if begun.get("size") is None else StageSize.from_dict(begun["size"])
+        lock_config = config.lock
+        if size is not None:
+            budget = dataclasses.replace(budget, max_shots=size.max_shots,
+                                         max_points=min(budget.max_points, size.max_points))
+            shots = {"check_shots_per_phase": size.check_shots_per_phase or None,
+                     "verification_shots_per_phase": size.verification_shots_per_phase}
+            lock_config = dataclasses.replace(config.lock, max_corrections=size.max_corrections)
+        records = _stage_slice(self.tail, index)
+        outcome = _outcome_from(records, prior)
+        if outcome is None:
+            # Each stage of the night draws its own child seeds.
+            base = config
+            session.config = dataclasses.replace(config, lock=lock_config, search=dataclasses.replace(
+                config.search, seed=child_seed(config.search.seed, 9, index)))
+            try:
+                result: StageOutcome = run_guided_stage(
+                    session, stage=kind, box=box, budget=budget, start=start, prior=prior,
+                    records=records, **shots)
+            finally:
+                session.config = base
+                session.end_progress()
+            last = self.ledger.last_estimate or {}
+            outcome = {"status": result.status,
+                       "accepted": bool(result.accepted),
+                       "setpoints": dict(result.setpoints),
+                       "estimate": result.estimate.to_dict(),
+                       "clock_s": last.get("clock_s", session.clock),
+                       "lock_prior": result.lock_prior if result.lock_prior is not None else prior}
+        outcome["kind"] = kind
+        outcome["noise"] = [noise_row(rec["estimate"], int(rec.get("shots") or 0))
+                            for rec in _stage_estimates(self.ledger.records, index,
+                                                         self.config.measurement.ramsey_phases)]
+        session.decide("stage_done", f"{kind} {index}: {outcome['status']} at "
+                       + setpoints_text(outcome["setpoints"]),
+                       index=index, outcome=_clean(outcome))
+        return outcome
+
+    def _recover(self) -> None:
+        """Run the recovery chain of the state (retune, then calibration) to its end."""
+        chain = self.state["recover"]
+        alarm = chain.get("alarm")
+        if alarm is not None and self._find("decision", what="alarm", point=alarm["point"]) is None:
+            self.session.decide("alarm", alarm["reason"], point=alarm["point"],
+                                statistic=alarm["statistic"], value=alarm["value"],
+                                threshold=alarm["threshold"])
+        index = int(chain["first_index"])
+        for position, kind in enumerate(chain["kinds"]):
+            begun = self._find("decision", what=kind, index=index + position) is not None
+            if position > 0 and not begun and self.clock.end_reason() is not None:
+                return  # the night's end came: no new stage (the main loop stops the night)
+            choice = self._choose(kind, index + position, chain)
+            if choice is not None and choice.action in ("correct", "hold"):
+                if self._compromise(choice, chain):
+                    return
+                continue
+            start = chain["start"] if kind == "retune" else {}
+            outcome = self._stage(kind, index + position, start, chain.get("prior"),
+                                  chain["reason"] if position == 0 else
+                                  f"the retune was not accepted ({chain['reason']}): a calibration",
+                                  size=None if choice is None else choice.size)
+            self.state["stages"] = max(int(self.state["stages"]), index + position + 1)
+            # The one place where a stage's outcome decides: accepted with a lock prior, the
+            # night holds there; anything else (not accepted) is a failed recovery.
+            if outcome["accepted"] and outcome.get("lock_prior") is not None:
+                self._resume_holding(outcome)
+                return
+        self.state["counts"]["failures"] += 1
+        failures = int(self.state["failures"]) + 1
+        limit = self.config.track.max_consecutive_failures
+        held = self.state.get("held")
+        start = held or chain["start"]
+        interval = float((self.state.get("plan") or {}).get("interval_s")
+                         or self.config.track.max_interval_s)
+        retry = self.session.clock + interval
+        self.state = {**self.state, "failures": failures,
+                      "recover": {"kinds": ["retune", "calibrate"] if start else ["calibrate"],
+                                  "start": start, "prior": chain.get("prior"),
+                                  "reason": f"retry after {failures} failed recover"
+                                            f"{'y' if failures == 1 else 'ies'}",
+                                  "first_index": int(self.state["stages"])}}
+        if failures >= limit:
+            why = (f"{failures} recoveries in a row failed, each not accepted or accepted "
+                   f"without a lock prior (track.max_consecutive_failures = {limit})")
+            self.state.update(mode="stopped", stop_reason=why)
+            self._snapshot("failure", reason=why, failures=failures)
+            return
+        self.state.update(mode="retry", retry_clock=retry)
+        self._snapshot("failure", reason=f"recovery {failures} not accepted; trying again at rig "
+                       f"clock {retry:.0f} s", failures=failures)
+
+    def _choose(self, kind: str, index: int, chain: Mapping[str, Any]) -> RecoveryChoice | None:
+        """The size of stage ``index`` within the budget (a ``budget`` decision when the budget
+        made it smaller or put something cheaper in its place); None for the calibration a
+        night begins with (not holding) and for a stage already begun (its own record)."""
+        if self._find("decision", what=kind, index=index) is not None:
+            return None
+        if index == 0 and kind == "calibrate":
+            return None
+        journaled = self._find("decision", what="budget", index=index)
+        if journaled is not None:
+            data = dict(journaled["choice"])
+            data["size"] = None if data["size"] is None else StageSize.from_dict(data["size"])
+            return RecoveryChoice(**data)
+        peak = chain.get("peak")
+        choice = choose_recovery(self.settings, kind=kind, planned=planned_stage(self.config, kind),
+                                 budget=self._budget(), expected_s=self._expected_s(kind),
+                                 peak=None if peak is None else (float(peak[0]), float(peak[1])))
+        if choice.limited:
+            self.session.decide("budget", choice.reason, index=index, kind=kind,
+                                action=choice.action, choice=_clean(choice.to_dict()),
+                                budget=_clean(self._budget().to_dict()))
+        return choice
+
+    def _compromise(self, choice: RecoveryChoice, chain: Mapping[str, Any]) -> bool:
+        """Hold on without a stage, the budget having none to pay for: the detuning corrected to
+        the checks' estimate of the peak (``correct``) or kept; the lock and the test start
+        again there. False when the night holds nothing yet (no stage ever accepted)."""
+        held = self.state.get("held")
+        if not held or not self.state.get("prior"):
+            return False
+        clock = self.session.clock
+        target = dict(held)
+        lock = DriftLock.from_dict(self.state["lock"]).predict(clock)
+        if choice.action == "correct" and choice.target_hz is not None:
+            limit = self.session.limits["detuning"]
+            target["detuning"] = min(max(float(choice.target_hz), limit.min), limit.max)
+            peak = chain.get("peak") or [target["detuning"], self.settings.max_correction_hz]
+            lock = DriftLock.start(clock, target["detuning"], max(float(peak[1]), 1.0),
+                                   lock.rate_hz_per_s, lock.rate_stderr_hz_per_s,
+                                   self.config.track.walk_hz_per_sqrt_s)
+        point = int(self.state["point"])
+        pending = None
+        if not _same(target, held):
+            self.state["counts"]["corrections"] += 1
+            pending = {"kind": "correct", "point": point, "from": dict(held), "to": target,
+                       "reason": choice.reason}
+        unheld = Unheld.from_dict(self.state.get("unheld")).begin(clock)
+        self.state = {**self.state, "mode": "hold", "failures": 0, "held": target,
+                      "lock": lock.to_dict(), "pending": pending, "next": None, "recent": [],
+                      "tests": {"upper": 0.0, "lower": 0.0, "inversion": 0.0},
+                      "unheld": unheld.to_dict()}
+        self._replan(f"after the budget's {choice.action} in place of a {choice.kind}")
+        return True
+
+    def _unwatched(self, why: str) -> None:
+        """No check can be paid for: hold the set-points without checks until the budget allows
+        one again (a night without an end) or the night ends."""
+        budget = self._budget()
+        clock = self.session.clock
+        until = unwatched_until(self.settings, budget, clock_s=clock,
+                                start_clock_s=self.start_clock)
+        self.state = {**self.state, "mode": "unwatched", "resume_clock": until,
+                      "to_end": budget.remaining_s is not None,
+                      "unheld": Unheld.from_dict(self.state.get("unheld")).begin(clock).to_dict()}
+        self._snapshot("unwatched", reason=f"{why}: {budget.left_s:.0f} s of beam left of the "
+                       f"{budget.ceiling_s:.0f} s ceiling; the set-points are held without checks "
+                       + ("until the night ends" if budget.remaining_s is not None else
+                          f"until rig clock {until:.0f} s, when the ceiling affords one again"),
+                       budget=budget.to_dict())
+
+    def _resume_holding(self, outcome: Mapping[str, Any]) -> None:
+        """Hold from an accepted stage: reset the lock and the test there, store it, plan."""
+        prior = LockPrior.from_dict(outcome["lock_prior"])
+        estimate = InversionEstimate.from_dict(outcome["estimate"])
+        setpoints = {k: float(v) for k, v in outcome["setpoints"].items()}
+        clock = float(outcome.get("clock_s") or self.session.clock)
+        # The stage's last measurement at the chosen set-points is the lock's first: the peak
+        # at d minus its offset, with the stage's precision.
+        error = math.remainder(estimate.phase_shift - prior.phase_at_peak_rad, 2.0 * math.pi)
+        offset, offset_sd = detuning_offset(error, estimate.phase_shift_stderr,
+                                            prior.slope_rad_per_hz, 0.0, known_cubic(prior), 0.0)
+        if abs(error) > self.settings.lock.capture_phase_error_rad:
+            offset, offset_sd = 0.0, self.settings.max_correction_hz
+        rate = self.state["rate"]
+        lock = DriftLock.start(clock, setpoints["detuning"] - offset, max(offset_sd, 1.0),
+                               float(rate["rate_hz_per_s"]), float(rate["rate_stderr_hz_per_s"]),
+                               self.config.track.walk_hz_per_sqrt_s)
+        noise = list(self.state.get("noise") or []) + [list(x) for x in outcome.get("noise", [])]
+        self.state = {**self.state, "mode": "hold", "failures": 0, "held": setpoints,
+                      "prior": prior.to_dict(), "lock": lock.to_dict(),
+                      # The inversion watch's reference: precision-weighted mean of the stage's
+                      # last measurement and the checks since (self-starting).
+                      "reference": reference_add({"weight": 0.0, "weighted": 0.0},
+                                                  estimate.inversion,
+                                                  estimate.inversion_stderr),
+                      "tests": {"upper": 0.0, "lower": 0.0, "inversion": 0.0},
+                      "noise": noise[-_NOISE_MEMORY:], "recent": [], "pending": None,
+                      "next": None, "unheld": Unheld.from_dict(self.state.get("unheld")).end(
+                          self.session.clock).to_dict()}
+        self.state["counts"]["stages_accepted"] += 1
+        self._store(outcome, estimate)
+        self._replan(f"after the {outcome['kind']} ({outcome['status']})")
+
+    def _store(self, outcome: Mapping[str, Any], estimate: InversionEstimate) -> None:
+        write_json_atomic(self.prepared.store, {
+            "setpoints": dict(outcome["setpoints"]), "inversion": estimate.inversion,
+            "inversion_low": estimate.inversion_low, "inversion_high": estimate.inversion_high,
+            "run_dir": str(self.prepared.run_dir), "t_wall": utc_now(),
+            "rig": self.prepared.description.rig, "lock_prior": outcome["lock_prior"]})
+
+    # -- the plan ---------------------------------------------------------------------------------
+
+    def _budget(self) -> BeamBudget:
+        """The night's beam on holding against its ceiling, now."""
+        return BeamBudget.of(self.settings, elapsed_s=self.session.clock - self.start_clock,
+                             remaining_s=self.clock.remaining_s(),
+                             spent_s=self.ledger.holding_beam_s)
+
+    def _expected_s(self, kind: str) -> float:
+        # The recoveries' own cost: the stage the night began with is not one.
+        spent = [beam for index, beam in self.ledger.stage_beam_s.items()
+                 if index > 0 and self.ledger.stage_kind.get(index) == kind]
+        return expected_stage_s(self.config, spent, kind, self.settings.repetition_rate_hz)
+
+    def _replan(self, why: str) -> None:
+        state = self.state
+        plan, budget = plan_night(
+            self.settings, budget=self._budget(), rows=state["noise"],
+            prior=LockPrior.from_dict(state["prior"]),
+            lock=DriftLock.from_dict(state["lock"]).predict(self.session.clock),
+            reference=state["reference"], recovery_beam_s=self._expected_s("retune"),
+            recoveries=max(self.ledger.stages_begun - 1, 0))
+        if plan is None:
+            self._unwatched("the budget has nothing left for a check")
+            return
+        share = budget["share"]
+        point = int(state["point"])
+        nxt = state.get("next")
+        # After a stage the first check comes one interval later (the stage has just measured);
+        # a plan made again on the hour keeps the next check's time and takes the new shots.
+        due = self.session.clock + plan.interval_s if nxt is None else float(nxt["due_clock"])
+        self.state = {**state, "plan": plan.to_dict(),
+                      "next": {"point": point, "due_clock": due, "recheck": False,
+                               "shots_per_phase": plan.shots_per_phase},
+                      "replan_clock": self.session.clock + _REPLAN_S}
+        self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
+                       f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
+                       f"{budget['ceiling_s'] / 60:.1f} min, {budget['holding_beam_s'] / 60:.1f} "
+                       f"min spent, "
+                       f"{budget['reserve_s'] / 60:.1f} min kept for the recoveries expected in "
+                       f"the {budget['remaining_s'] / 3600:.1f} h to come)",
+                       budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
+                       plan=plan.to_dict())
+
+    # -- holding ------------------------------------------------------------------------------------
+
+    def _complete_pending(self) -> None:
+        """Finish a correction or an alarm decided by the last check (resume-safe)."""
+        pending = self.state.get("pending")
+        if not pending:
+            return
+        if pending["kind"] == "correct":
+            if self._find("decision", what="correct", point=pending["point"]) is None:
+                self.session.decide("correct", pending["reason"], point=pending["point"],
+                                    setpoints=pending["to"], **{"from": pending["from"],
+                                                                "to": pending["to"]})
+            if not _same(self.session.current, pending["to"]):
+                self.session.move_to(pending["to"], reason=f"lock correction after check "
+                                                           f"{pending['point']}")
+        self.state = {**self.state, "pending": None}
+
+    def _hold_once(self) -> None:
+        state = self.state
+        nxt = state["next"]
+        point = int(nxt["point"])
+        held = {k: float(v) for k, v in state["held"].items()}
+        if not _same(self.session.current, held):
+            self.session.move_to(held, reason="back to the held set-points")
+        if self._in_flight() != "check":
+            self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
+                             "the next check" + (" (recheck)" if nxt.get("recheck") else ""),
+                             point=point)
+            if self.clock.end_reason() is not None:
+                return
+            check_s = 2 * self.settings.ramsey_phases * int(nxt["shots_per_phase"]) / \
+                self.settings.repetition_rate_hz
+            if not self._budget().affords(check_s):
+                # The ceiling first: a plan within what is left, else no more checks.
+                if state.get("starved"):
+                    self._unwatched(f"the budget cannot pay for a check of {check_s:.0f} s")
+                else:
+                    self.state = {**state, "starved": True, "next": None}
+                    self._replan(f"the budget left cannot pay for the next check of "
+                                 f"{check_s:.0f} s")
+                return
+        estimate, m = self._measure(point, held, int(nxt["shots_per_phase"]))
+        self._assess(point, estimate, m)
+
+    def _measure(self, point: int, held: Mapping[str, float], shots_per_phase: int
+                 ) -> tuple[InversionEstimate, _Measurement]:
+        session = self.session
+        mine = [r for r in self.tail if r.get("label") == _HOLD and r.get("point") == point]
+        replayed = _replay(mine)
+        key = (_HOLD, point)
+        m = replayed.measurements.get(key)
+        if m is None:
+            m = _Measurement(_HOLD, point, dict(held), shots_per_phase)
+            self.ledger.append("measurement", label=_HOLD, point=point, setpoints=dict(held),
+                               shots_per_phase=shots_per_phase)
+        if key in replayed.estimates:
+            return InversionEstimate.from_dict(replayed.estimates[key]["estimate"]), m
+        estimate = session.measure(m, child_seed(self.config.search.seed, 7, point))
+        return estimate, m
+
+    def _assess(self, point: int, estimate: InversionEstimate, m: _Measurement) -> None:
+        state = self.state
+        settings = self.settings
+        prior = LockPrior.from_dict(state["prior"])
+        plan = CheckPlan.from_dict(state["plan"])
+        lock = DriftLock.from_dict(state["lock"])
+        tests = state["tests"]
+        held = {k: float(v) for k, v in state["held"].items()}
+        shots = 2 * len(self.session.phases) * m.shots_per_phase
+        result = PointResult.from_estimate(estimate, clock_s=m.clock_s, shots=shots)
+        limit = self.session.limits["detuning"]
+        pooled = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in state["noise"]])
+        previous = state["recent"][-1] if state["recent"] else None
+        a = assess_check(settings, result=result, detuning_hz=held["detuning"], lock=lock,
+                         prior=prior, plan=plan, upper=float(tests["upper"]),
+                         lower=float(tests["lower"]), inversion=float(tests["inversion"]),
+                         reference_inversion=reference_value(state["reference"])[0],
+                         reference_stderr=reference_value(state["reference"])[1],
+                         next_interval_s=plan.interval_s, noise=pooled,
+                         previous_unusable=previous is not None and previous["peak_hz"] is None
+                         and previous.get("point") == point - 1,
+                         limits=(limit.min, limit.max))
+        counts = dict(state["counts"])
+        counts["checks"] += 1
+        noise = list(state["noise"]) + [noise_row(estimate.to_dict(), shots)]
+        recent = list(state["recent"]) + [{
+            "point": point, "clock_s": m.clock_s, "peak_hz": a.peak_hz if a.usable else None,
+            "variance_hz2": a.peak_variance_hz2 if a.usable else None,
+            "upper": a.upper, "lower": a.lower, "lock_before": lock.to_dict()}]
+        clock_now = self.session.clock
+        reference = state["reference"]
+        if a.action != "alarm":
+            reference = reference_add(reference, estimate.inversion,
+                                       math.sqrt(pooled.inversion_variance_shots / shots))
+        new = {**state, "lock": a.lock.to_dict(), "counts": counts, "reference": reference,
+               "tests": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion},
+               "noise": noise[-_NOISE_MEMORY:], "recent": recent[-_RECENT:], "point": point + 1,
+               "pending": None, "starved": False}
+        if a.action in ("hold", "correct"):
+            # The condition held again: a stretch the budget left unheld ends here.
+            new["unheld"] = Unheld.from_dict(state.get("unheld")).end(clock_now).to_dict()
+        target = {**held, "detuning": a.target_detuning_hz}
+        if a.action == "alarm":
+            counts["alarms"] += 1
+            start, pre, found = recovery_start(recent, a.alarm, lock, held,
+                                               (limit.min, limit.max), clock_now)
+            side = a.alarm
+            alarm = {"point": point, "reason": a.reason, "statistic": side,
+                     "value": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion,
+                               "out_of_range": None}[side],
+                     "threshold": {"upper": plan.test.threshold, "lower": plan.test.threshold,
+                                   "inversion": plan.test.inversion_threshold,
+                                   "out_of_range": None}[side]}
+            new.update(mode="recover", recover={
+                "kinds": ["retune", "calibrate"], "start": start, "prior": state["prior"],
+                "reason": a.reason + (f"; the retune starts at the peak the checks since the "
+                                      f"change point measured, {start['detuning'] / 1e3:+.2f} kHz"
+                                      if start != held else ""),
+                "first_index": int(state["stages"]), "alarm": alarm,
+                "peak": None if found is None else [found[0], found[1]]},
+                rate={"rate_hz_per_s": pre.rate_hz_per_s,
+                      "rate_stderr_hz_per_s": pre.rate_stderr_hz_per_s})
+        else:
+            if a.action in ("correct", "recheck") and not _same(target, held):
+                counts["corrections"] += 1
+                new["pending"] = {"kind": "correct", "point": point, "from": held, "to": target,
+                                  "reason": a.reason}
+                new["held"] = target
+            due = clock_now if a.action == "recheck" else \
+                (m.t_first if m.t_first is not None else clock_now) + plan.interval_s
+            if a.action == "recheck":
+                counts["rechecks"] += 1
+            new["next"] = {"point": point + 1, "due_clock": due,
+                           "shots_per_phase": plan.shots_per_phase,
+                           "recheck": a.action == "recheck"}
+        self.state = new
+        self._snapshot("hold", point=point, action=a.action, reason=a.reason,
+                       setpoints=held, clock_s=m.clock_s, numbers=a.numbers())
+        self._tell("check", estimate=estimate, action=a.action)
+
+    def _tell(self, event: str, *, estimate: InversionEstimate | None = None, action: str = "",
+              next_in_s: float | None = None) -> None:
+        """Tell the session's progress observer where the night stands (display only)."""
+        observer = self.session.progress
+        if observer is None or self.state is None:
+            return
+        counts = self.state.get("counts") or {}
+        night = self.session.clock - self.start_clock
+        if estimate is None and self.ledger.last_estimate is not None and \
+                self.ledger.last_estimate.get("label") == _HOLD:
+            estimate = InversionEstimate.from_dict(self.ledger.last_estimate["estimate"])
+        item = NightProgress(
+            event=event,  # type: ignore[arg-type]
+            night_s=night, end_s=self.config.track.max_rig_time_s or None,
+            setpoints={k: float(v) for k, v in (self.state.get("held") or {}).items()},
+            checks=int(counts.get("checks", 0)), corrections=int(counts.get("corrections", 0)),
+            alarms=int(counts.get("alarms", 0)), retunes=int(counts.get("retunes", 0)),
+            calibrations=int(counts.get("calibrations", 0)),
+            holding_share=self.ledger.holding_beam_s / night if night > 0 else None,
+            budget_fraction=self.settings.budget_fraction,
+            inversion=None if estimate is None else estimate.inversion,
+            interval=None if estimate is None else (estimate.inversion_low,
+                                                    estimate.inversion_high),
+            action=action, next_in_s=next_in_s)
+        try:
+            observer(item)
+        except Exception as exc:  # a display must never stop a night
+            self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
+            self.session.progress = None
+
+    # -- the end -------------------------------------------------------------------------------------
+
+    def _finish(self, reason: str, status: str) -> dict[str, Any]:
+        session = self.session
+        on_stop = self.config.track.on_stop
+        held = self.state.get("held") if self.state else None
+        if self._find("decision", what="stop", status=status) is None:
+            session.decide("stop", reason, status=status, on_stop=on_stop)
+        if on_stop == "last_good" and held:
+            try:
+                if not _same(session.current, held):
+                    session.move_to(held, reason="the night ended: leave the rig at the held "
+                                                 "set-points")
+                where = "the held set-points"
+            except RigError as exc:
+                session.go_safe(f"the night ended; the move to the held set-points failed: {exc}")
+                where = "its safe set-points (the move to the held set-points failed)"
+        else:
+            session.go_safe(f"the night ended: {reason}", expected=status == "ended")
+            where = "its safe set-points"
+        return self._result(status, reason, where)
+
+    def leave_on_signal(self) -> tuple[bool | None, str]:
+        """Where a stop signal leaves the rig: (safe confirmed?, detail), as Interrupted carries."""
+        held = self.state.get("held") if self.state else None
+        if self.config.track.on_stop == "last_good" and held and \
+                self.state.get("mode") == "hold" and _same(self.session.current, held):
+            self.session.decide("stop", "stopped by signal: the rig stays at the held set-points "
+                                "(track.on_stop = last_good)", status="interrupted",
+                                on_stop="last_good")
+            return None, ""
+        return self.session.go_safe("stopped by signal")
+
+    def _result(self, status: str, reason: str, where: str) -> dict[str, Any]:
+        state = self.state or {}
+        counts = dict(state.get("counts") or {})
+        night = self.session.clock - self.start_clock
+        last = self.ledger.last_estimate
+        result: dict[str, Any] = {
+            "command": "track", "status": status, "accepted": status == "ended",
+            "stop_reason": reason, "left_at": where,
+            "setpoints": dict(state.get("held") or self.session.current),
+            "held": bool(state.get("held")), **counts,
+            "shots": self.ledger.shots,
+            "rig_time_s": self.ledger.check_beam_s + self.ledger.stage_beam_s_total,
+            "night_rig_time_s": night, "holding_beam_s": self.ledger.holding_beam_s,
+            "holding_share": self.ledger.holding_beam_s / night if night > 0 else None,
+            "budget_fraction": self.settings.budget_fraction,
+            "budget_ceiling_s": self._budget().ceiling_s,
+            # Rig time the night could not hold because of the budget (hold.Unheld).
+            "budget_unheld_s": Unheld.from_dict(state.get("unheld")).at(self.session.clock),
+            "budget_limited": sum(1 for r in self.ledger.records if r.get("type") == "decision"
+                                  and r.get("what") in ("budget", "unwatched")),
+            "plan": state.get("plan"), "lock": state.get("lock"),
+            "run_dir": str(self.prepared.run_dir),
+        }
+        if last is not None:
+            e = InversionEstimate.from_dict(last["estimate"])
+            result.update({"inversion": e.inversion,
+                           "inversion_interval": [e.inversion_low, e.inversion_high],
+                           "inversion_stderr": e.inversion_stderr, "confidence": e.confidence,
+                           "phase_shift_rad": e.phase_shift,
+                           "phase_shift_stderr_rad": e.phase_shift_stderr,
+                           "absorption": e.absorption, "last_measurement": {
+                               "label": last.get("label"), "point": last.get("point")}})
+        return _clean(result)
