@@ -1096,8 +1096,9 @@ class _Night:
                        f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
                        f"{budget['ceiling_s'] / 60:.1f} min, {budget['holding_beam_s'] / 60:.1f} "
                        f"min spent, "
-                       f"{budget['reserve_s'] / 60:.1f} min kept for the recoveries expected in "
-                       f"the {budget['remaining_s'] / 3600:.1f} h to come)",
+                       f"{budget['recoveries_left_s'] / 60:.1f} min left for recoveries, "
+                       f"{budget['reserve_s'] / 60:.1f} min for those expected in the "
+                       f"{budget['remaining_s'] / 3600:.1f} h to come)",
                        budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
                        plan=plan.to_dict())
 
