@@ -91,6 +91,7 @@ __all__ = [
     "NoiseModel",
     "CheckPlan",
     "plan_checks",
+    "readable_z",
     "floor_shift_hz",
     "known_cubic",
     "Assessment",
@@ -931,7 +932,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     if signal is not None:
         phase_var = max(phase_var, signal.phase_variance_shots)
 
-    @functools.lru_cache(maxsize=None)
+    @functools.cache
     def least_at(interval: float) -> int:
         """The least shots per phase of a check every ``interval``: the configured least, and
         what the lock needs to read it (:func:`readable_z` of the interval)."""
@@ -942,7 +943,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
                 phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope,
                 z=readable_z(settings, interval))
             if readable is not None:
-                least = max(least, int(math.ceil(readable / (2 * phases))))
+                least = max(least, math.ceil(readable / (2 * phases)))
         return min(least, settings.max_shots_per_phase)
     steady: dict[tuple[float, int], tuple[float, float]] = {}
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
