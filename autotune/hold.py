@@ -92,6 +92,8 @@ __all__ = [
     "CheckPlan",
     "plan_checks",
     "readable_z",
+    "recheck_run_limit",
+    "next_check",
     "floor_shift_hz",
     "known_cubic",
     "Assessment",
@@ -1269,6 +1271,41 @@ def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_pe
                        for r in run])
     mean = float((weights * values).sum() / weights.sum())
     return mean, float(math.sqrt(1.0 / weights.sum()))
+
+
+def recheck_run_limit(test: SequentialTest) -> int:
+    """Most rechecks in a row the phase charts call at once (checks).
+
+    The warning level brings the next check at once so that a shift at or beyond the design
+    shift is confirmed back to back: at the design shift (``2 k`` standard deviations of the
+    innovation) the chart needs Siegmund's run length of checks (:func:`cusum_arl`). A chart
+    that stays between its warning level and its threshold for longer is following a shift
+    smaller than the design shift, which by construction keeps the inversion above the floor:
+    it no longer needs checks at once, and checks back to back for it would spend the checks'
+    share many times over (16 in a row, twice in a held-out night, ran its budget out by the
+    fifth hour). The chart keeps its value, so the alarm still comes if the shift grows.
+    """
+    k, h = float(test.reference), float(test.threshold)
+    return max(1, math.ceil(cusum_arl(2.0 * k, k, h)))
+
+
+def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
+               run: int) -> dict[str, Any]:
+    """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
+
+    A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
+    stay within :func:`recheck_run_limit`; any other check comes the plan's interval after the
+    first shot of the last (``first_shot_s``, else ``clock_s``). Returns ``due_clock``,
+    ``recheck`` and ``run`` (the rechecks in a row, this one included).
+    """
+    if action == "recheck":
+        run = int(run) + 1
+        if run <= recheck_run_limit(plan.test):
+            return {"due_clock": float(clock_s), "recheck": True, "run": run}
+    else:
+        run = 0
+    start = float(clock_s if first_shot_s is None else first_shot_s)
+    return {"due_clock": start + plan.interval_s, "recheck": False, "run": run}
 
 
 # --------------------------------------------------------------------------------------------

@@ -97,6 +97,7 @@ from autotune.hold import (
     choose_recovery,
     expected_stage_beam_s,
     known_cubic,
+    next_check,
     noise_row,
     plan_night,
     recovery_start,
@@ -1230,13 +1231,14 @@ class _Night:
                 new["pending"] = {"kind": "correct", "point": point, "from": held, "to": target,
                                   "reason": a.reason}
                 new["held"] = target
-            due = clock_now if a.action == "recheck" else \
-                (m.t_first if m.t_first is not None else clock_now) + plan.interval_s
-            if a.action == "recheck":
+            after = next_check(plan, action=a.action, clock_s=clock_now,
+                               first_shot_s=m.t_first,
+                               # An unreadable check is always repeated at once.
+                               run=int(state["next"].get("run", 0)) if a.usable else 0)
+            if after["recheck"]:
                 counts["rechecks"] += 1
-            new["next"] = {"point": point + 1, "due_clock": due,
-                           "shots_per_phase": plan.shots_per_phase,
-                           "recheck": a.action == "recheck"}
+            new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
+                           **after}
         self.state = new
         self._snapshot("hold", point=point, action=a.action, reason=a.reason,
                        setpoints=held, clock_s=m.clock_s, numbers=a.numbers())
