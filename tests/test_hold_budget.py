@@ -29,6 +29,7 @@ from autotune.analysis.hold import (
     cusum_arl,
     noise_row,
     plan_checks,
+    readable_z,
 )
 
 PHASES = 6
@@ -283,8 +284,8 @@ def test_a_poor_detector_gets_larger_checks_that_still_tell_a_step_from_noise():
 
 def test_the_signal_model_is_pooled_from_the_noise_rows():
     """Detected atoms per shot are pooled over all rows (each field half of the shots), the
-    dispersion is the pooled reduced chi-square (at least 1), and rows of the older
-    three-number form are skipped."""
+    dispersion is the median of the fits' reduced chi-squares (at least 1), and rows of the
+    older three-number form are skipped."""
     estimate = {"phase_shift_stderr": 0.1, "inversion_stderr": 0.03, "detected_empty": 100,
                 "detected_one_photon": 120, "contrast_empty": 0.8, "contrast_one_photon": 0.6,
                 "chi2_empty": 3.0, "chi2_one_photon": 5.0, "dof_empty": 3, "dof_one_photon": 3}
@@ -295,3 +296,59 @@ def test_the_signal_model_is_pooled_from_the_noise_rows():
     assert signal.detected_per_shot_one_photon == pytest.approx(240 / 2000)
     assert signal.dispersion == pytest.approx(16.0 / 12.0)
     assert SignalModel.from_rows([[0.1, 0.03, 2000]]) is None
+
+
+def test_one_odd_fit_does_not_set_the_dispersion():
+    """A stage's long fit whose fringe moved while it was measured (reduced chi-square 9) among
+    fits of binomial scatter (about 1) leaves the dispersion near 1, and with it the predicted
+    phase variance per shot near the count-limited one: the median, robust to one odd fringe
+    like the noise model's (a pooled ratio made it 3.9 on a mismatch night whose checks'
+    innovations had a variance of 1.1)."""
+    def estimate(chi2: float) -> dict[str, float]:
+        return {"phase_shift_stderr": 0.09, "inversion_stderr": 0.03, "detected_empty": 1000,
+                "detected_one_photon": 1000, "contrast_empty": 0.85, "contrast_one_photon": 0.55,
+                "chi2_empty": chi2 / 2, "chi2_one_photon": chi2 / 2, "dof_empty": 3,
+                "dof_one_photon": 3}
+    rows = [noise_row(estimate(x), 18_000) for x in (5.1, 52.9, 6.4)]
+    signal = SignalModel.from_rows(rows)
+    assert signal.dispersion == pytest.approx(6.4 / 6.0)
+    bare = SignalModel.from_rows([noise_row(estimate(6.0), 18_000)])
+    assert signal.phase_variance_shots == pytest.approx(bare.phase_variance_shots, rel=0.07)
+
+
+@pytest.mark.parametrize("interval_s", [30.0, 120.0, 600.0, 1800.0])
+def test_the_room_to_read_a_check_keeps_two_unreadable_checks_as_rare_as_a_chart_alarm(
+        interval_s):
+    """Two unreadable checks in a row raise the alarm: the room ``z`` of a check every
+    ``interval_s`` makes that pair (probability ``norm.sf(z)^2``, scipy.stats) no more frequent
+    than each chart's false alarms, one in three times the designed interval's checks, within
+    the one-sided 5 % and 0.5 % bounds."""
+    s = _settings()
+    z = readable_z(s, interval_s)
+    checks = s.false_alarm_interval_s / interval_s
+    assert stats.norm.isf(0.05) - 1e-3 <= z <= stats.norm.isf(0.005) + 1e-3
+    if stats.norm.isf(0.05) < z < stats.norm.isf(0.005):
+        assert stats.norm.sf(z) ** 2 * 3.0 * checks == pytest.approx(1.0, rel=1e-6)
+    assert readable_z(s, interval_s / 2) >= z
+
+
+def test_after_a_retune_the_checks_keep_half_the_budget_and_a_poor_signal_its_cadence():
+    """Right after a retune that left less than the recoveries expected in the rest of the night
+    would take, the checks still get half the budget (the numbers say what the recoveries
+    lack), and a rig of few detected atoms and a weak one-photon contrast gets checks within
+    the configured longest interval whose planned time to confirm a 15 kHz step is under
+    10 min (they were 20-35 min apart at a quarter of the budget)."""
+    s = _settings()
+    budget = BeamBudget(0.05, 8280.0, 20_520.0, 890.0)
+    share = checks_share(s, budget, recovery_beam_s=356.0, recoveries=1)
+    assert share["reserve_s"] > budget.left_s
+    assert share["share"] == pytest.approx(0.025)
+    assert share["recoveries_left_s"] == pytest.approx(budget.left_s - 0.025 * 20_520.0)
+    prior = _prior()
+    lock = DriftLock.start(8280.0, 0.0, 1500.0, 0.0, 0.4, 20.0)
+    signal = SignalModel(0.28, 0.28, 0.83, 0.44, 1.0, 13)
+    plan = plan_checks(s, noise=NoiseModel(signal.phase_variance_shots, 7.3, 13), prior=prior,
+                       lock=lock, reference_inversion=0.61, reference_stderr=0.01,
+                       check_share=share["share"], signal=signal)
+    assert plan.interval_s <= s.max_interval_s
+    assert plan.step_delay_s < 600.0

@@ -21,9 +21,11 @@ from autotune.analysis.hold import (
     expected_stage_beam_s,
     flag_probability,
     in_control_rechecks,
+    next_check,
     noise_row,
     plan_checks,
     plan_night,
+    recheck_run_limit,
 )
 
 SLOPE = 6.4e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
@@ -161,3 +163,33 @@ def test_a_recovery_is_expected_to_cost_the_mean_with_the_prior_as_one_more():
     assert expected_stage_beam_s(360.0, []) == pytest.approx(360.0)
     assert expected_stage_beam_s(360.0, [120.0]) == pytest.approx(240.0)
     assert expected_stage_beam_s(360.0, [240.0, 240.0]) == pytest.approx(280.0)
+
+
+def test_rechecks_at_once_stop_after_the_run_that_confirms_the_design_shift():
+    """The rechecks in a row come at once up to the run length that confirms the design shift
+    (``2 k`` sd), then at the plan's interval; a seeded chart at the design shift (scipy.stats
+    norm) alarms within that many checks in the median, so the limit cuts no step the plan is
+    designed for short, and a check that is not a recheck starts the count again."""
+    rng = np.random.default_rng(11)
+    plan = plan_checks(hold_settings(), noise=NoiseModel(60.0, 2.0, 8), prior=_prior(),
+                       lock=DriftLock.start(0.0, 0.0, 500.0, 0.0, 0.3, 20.0),
+                       reference_inversion=0.7, reference_stderr=0.01, check_share=0.025)
+    k, h = plan.test.reference, plan.test.threshold
+    limit = recheck_run_limit(plan.test)
+    lengths = []
+    for _ in range(2000):
+        s, n = 0.0, 0
+        while s <= h:
+            s = max(0.0, s + stats.norm.rvs(loc=2.0 * k, random_state=rng) - k)
+            n += 1
+        lengths.append(n)
+    assert np.median(lengths) <= limit
+    run = 0
+    for _ in range(limit):
+        after = next_check(plan, action="recheck", clock_s=1000.0, first_shot_s=990.0, run=run)
+        assert after["recheck"] and after["due_clock"] == 1000.0
+        run = after["run"]
+    after = next_check(plan, action="recheck", clock_s=1000.0, first_shot_s=990.0, run=run)
+    assert not after["recheck"] and after["due_clock"] == pytest.approx(990.0 + plan.interval_s)
+    after = next_check(plan, action="correct", clock_s=1000.0, first_shot_s=990.0, run=run)
+    assert after["run"] == 0 and after["due_clock"] == pytest.approx(990.0 + plan.interval_s)

@@ -58,11 +58,10 @@ HOW = {
     "--out benchmarks/results/calibration.json": ("help", "the calibration study takes about "
                                                   "30 minutes on 2 cores"),
     "python3 -m autotune.bench --night": ("help", "the night study takes minutes on 2 cores"),
-    "python3 -m autotune.bench --night --scenarios 2 --workers 2 --no-schedules "
-    "--night-families main": ("help", "the small night study of issue 22, tens of minutes"),
-    "python3 -m autotune.bench --night --scenarios 1 --workers 2 --no-schedules "
-    "--night-families held_out,mismatch": ("help", "the small night study of issue 22, tens of "
-                                           "minutes"),
+    "python3 -m autotune.bench --night --night-families main,held_out,mismatch,velocity_physics,"
+    "velocity_physics_held_out --scenarios 2 --workers 2 --no-schedules "
+    "--out benchmarks/results/night.json": ("help", "the small night study of issue 22, tens of "
+                                            "minutes"),
     "python3 -m autotune.bench --show benchmarks/results/latest.json":
         ("run in the repository", "its path is relative to the repository"),
     "python -m autotune.bench --tiny --calibration-only --strategies phase_lock --families "

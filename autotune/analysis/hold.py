@@ -91,6 +91,9 @@ __all__ = [
     "NoiseModel",
     "CheckPlan",
     "plan_checks",
+    "readable_z",
+    "recheck_run_limit",
+    "next_check",
     "floor_shift_hz",
     "known_cubic",
     "Assessment",
@@ -139,9 +142,14 @@ _WARNING_FRACTIONS = (0.15, 0.25, 0.35, 0.5)
 # Standard deviations of room a check must leave for the lock to read it (one-sided 0.5 %:
 # scipy.stats.norm.isf(0.005)); a check read as unusable twice raises an alarm.
 _USABLE_Z = 2.576
+# One-sided 5 % (scipy.stats.norm.isf(0.05)): the least room of a check, however rare the checks.
+_LEAST_USABLE_Z = 1.645
 # Least ratio of the design shift to the innovation's standard deviation of a check that can
 # tell a step from noise (the test's k at least a half).
 _MIN_DESIGN_SNR = 1.0
+# Rig time of the prior of the night's rate of steps and recoveries: one per four hours,
+# counted as one more recovery (s).
+_RECOVERY_PRIOR_S = 4 * 3600.0
 
 
 def _finite(value: Any) -> bool:
@@ -511,7 +519,11 @@ class SignalModel:
     contrast_empty, contrast_one_photon : float
         The fringes' contrasts (medians of the measurements).
     dispersion : float
-        Pooled reduced chi-square of the fits, at least 1.
+        Median of the fits' reduced chi-squares, at least 1. A median, not the pooled ratio:
+        one long fit whose fringe moved while it was measured (a stage's verification with the
+        cavity drifting) can carry a reduced chi-square of 9 where the checks show none; pooled,
+        it made a night plan its checks for four times the phase variance their own innovations
+        showed (a mismatch night: ``z`` variance 1.1 against the measured variance).
     measurements : int
         How many measurements it comes from.
     """
@@ -535,13 +547,12 @@ class SignalModel:
         if not usable:
             return None
         shots_per_field = sum(0.5 * float(r[2]) for r in usable)
-        chi2 = sum(float(r[7]) for r in usable)
-        dof = sum(float(r[8]) for r in usable)
+        reduced = [float(r[7]) / float(r[8]) for r in usable if float(r[8]) > 0]
         return cls(sum(float(r[3]) for r in usable) / shots_per_field,
                    sum(float(r[4]) for r in usable) / shots_per_field,
                    float(np.median([float(r[5]) for r in usable])),
                    float(np.median([max(float(r[6]), 0.0) for r in usable])),
-                   max(chi2 / dof, 1.0) if dof > 0 else 1.0, len(usable))
+                   max(float(np.median(reduced)), 1.0) if reduced else 1.0, len(usable))
 
     @staticmethod
     def _per_atom(contrast: float) -> tuple[float, float]:
@@ -839,9 +850,26 @@ def _expected_delay(row: Mapping[str, Any]) -> float:
                           for x in row["shifts"]]))
 
 
+def readable_z(settings: HoldSettings, interval_s: float) -> float:
+    """Standard deviations of room a check every ``interval_s`` leaves for the lock to read it.
+
+    A check the lock cannot read is repeated at once, and a second one in a row raises the alarm
+    (:func:`assess_check`): by chance, that happens with the square of the probability ``p`` of
+    one. The room is set so that this pair is no more frequent than each of the three charts'
+    false alarms, an in-control run length of three times ``false_alarm_interval_s`` over the
+    interval in checks: ``p = (3 N)^(-1/2)``, one-sided, and never less room than a one-sided
+    5 % (``z`` at least 1.645) nor more than :data:`_USABLE_Z`. Many checks a night need more
+    room each than a few.
+    """
+    checks = max(float(settings.false_alarm_interval_s) / max(float(interval_s), 1.0), 1.0)
+    z = float(special.ndtri(1.0 - 1.0 / math.sqrt(3.0 * checks)))
+    return min(max(z, _LEAST_USABLE_Z), _USABLE_Z)
+
+
 def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, lock: DriftLock,
                 reference_inversion: float, reference_stderr: float, check_share: float,
-                step_hz: float = 15e3, signal: SignalModel | None = None) -> CheckPlan:
+                step_hz: float = 15e3, signal: SignalModel | None = None,
+                step_rate_per_s: float = 1.0 / _RECOVERY_PRIOR_S) -> CheckPlan:
     """Choose the interval and shots of the checks and design the sequential test.
 
     Parameters
@@ -863,7 +891,12 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     signal : SignalModel, optional
         This rig's information per shot (detected atoms, contrasts, dispersion): the phase
         variance per shot is the larger of its prediction and ``noise``'s, and a check is at
-        least large enough for the lock to read it (:meth:`SignalModel.usable_shots`).
+        least large enough for the lock to read it (:meth:`SignalModel.usable_shots`, with the
+        room of :func:`readable_z`).
+    step_rate_per_s : float
+        Steps expected per second of rig time (the night's own rate of recoveries,
+        :func:`checks_share`); weighs the steps' delay against the tracking error when no
+        cadence meets the tracking bound.
 
     Notes
     -----
@@ -882,7 +915,11 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     ``false_alarm_interval_s`` over the mean gap (their rates add). Among the candidates whose
     predicted tracking error stays below a third of the design shift, the least expected time
     to confirm a ``step_hz`` shift wins (:func:`_delay`; ties to the longer interval). When none
-    qualifies, the checks are made large enough to tell a step from noise and spaced further
+    qualifies, the least expected share of the night lost wins: ``2 Q(design / tracking error)``
+    (a normal tracking error beyond the design shift) plus ``step_rate_per_s`` times the time to
+    confirm a step (the smallest tracking error alone left the checks 20-27 min apart on poor
+    signals, and the steps as long unconfirmed). When no candidate affords a readable check,
+    the checks are made large enough to tell a step from noise and spaced further
     apart until they fit the share (fewer but larger checks).
     """
     if not (0.0 < check_share <= 1.0):
@@ -894,16 +931,22 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     rate = settings.repetition_rate_hz
     phases = settings.ramsey_phases
     phase_var = noise.phase_variance_shots
-    least = settings.min_shots_per_phase
-    readable = None
     if signal is not None:
         phase_var = max(phase_var, signal.phase_variance_shots)
-        readable = signal.usable_shots(
-            ratio=settings.lock.min_contrast_ratio,
-            phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope)
-        if readable is not None:
-            least = max(least, int(math.ceil(readable / (2 * phases))))
-    least = min(least, settings.max_shots_per_phase)
+
+    @functools.cache
+    def least_at(interval: float) -> int:
+        """The least shots per phase of a check every ``interval``: the configured least, and
+        what the lock needs to read it (:func:`readable_z` of the interval)."""
+        least = settings.min_shots_per_phase
+        if signal is not None:
+            readable = signal.usable_shots(
+                ratio=settings.lock.min_contrast_ratio,
+                phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope,
+                z=readable_z(settings, interval))
+            if readable is not None:
+                least = max(least, math.ceil(readable / (2 * phases)))
+        return min(least, settings.max_shots_per_phase)
     steady: dict[tuple[float, int], tuple[float, float]] = {}
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
               "step_hz": step_hz, "noise": noise, "lock": lock,
@@ -913,6 +956,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     def sized(interval: float, fraction: float) -> dict[str, Any] | None:
         """Checks every ``interval`` as large as the share pays for, rechecks included."""
         per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
+        least = least_at(interval)
         row = None
         for _ in range(4):
             if per_phase < least:
@@ -931,15 +975,19 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
-        if math.floor(check_share * interval * rate / (2 * phases)) < least:
+        if math.floor(check_share * interval * rate / (2 * phases)) < least_at(interval):
             continue
         for fraction in _WARNING_FRACTIONS:
             row = sized(interval, fraction)
             if row is None or row["design_snr"] < _MIN_DESIGN_SNR:
                 continue
             tracking = row["tracking_error_hz"]
-            if fallback is None or tracking < fallback[0]:
-                fallback = (tracking, row)
+            # The expected share of the night lost: the tracking error beyond the design shift
+            # (a normal error: 2 Q(design / error)) and the steps' delays at the night's rate.
+            lost = 2.0 * special.ndtr(-design / max(tracking, 1e-9)) + \
+                step_rate_per_s * row["step_delay_s"]
+            if fallback is None or lost < fallback[0]:
+                fallback = (lost, row)
             if tracking > design / 3.0:
                 continue
             delay = row["step_delay_s"]
@@ -949,7 +997,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     inputs = {"phase_variance_shots": phase_var,
               "measured_phase_variance_shots": noise.phase_variance_shots,
               "signal": None if signal is None else signal.to_dict(),
-              "readable_shots_per_phase": least,
+              "readable_shots_per_phase": least_at(float(top)),
               "inversion_variance_shots": noise.inversion_variance_shots,
               "noise_measurements": noise.measurements, "slope_rad_per_hz": prior.slope_rad_per_hz,
               "rate_hz_per_s": lock.rate_hz_per_s, "rate_stderr_hz_per_s": lock.rate_stderr_hz_per_s,
@@ -965,12 +1013,15 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     elif fallback is not None:
         row = fallback[1]
         why = (f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
-               f"design shift within the budget: the smallest tracking error")
+               f"design shift within the budget: the least expected share of the night lost, "
+               f"{fallback[0]:.1%} (the tracking error beyond the design shift, and "
+               f"{step_rate_per_s * 3600:.2f} steps per hour each unheld for its time to confirm)")
     else:
         # Fewer but larger checks: the least size that reads the phase and tells the design
         # shift from the noise of one check (twice the bare need: the filter's own
         # uncertainty adds to the innovation), spaced to fit the share.
         tell = phase_var / (slope * design / _MIN_DESIGN_SNR) ** 2 * 2.0
+        least = least_at(float(top))
         per_phase = min(max(least, int(math.ceil(tell / (2 * phases)))),
                         settings.max_shots_per_phase)
         check_s = 2 * phases * per_phase / rate
@@ -1222,19 +1273,57 @@ def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_pe
     return mean, float(math.sqrt(1.0 / weights.sum()))
 
 
+def recheck_run_limit(test: SequentialTest) -> int:
+    """Most rechecks in a row the phase charts call at once (checks).
+
+    The warning level brings the next check at once so that a shift at or beyond the design
+    shift is confirmed back to back: at the design shift (``2 k`` standard deviations of the
+    innovation) the chart needs Siegmund's run length of checks (:func:`cusum_arl`). A chart
+    that stays between its warning level and its threshold for longer is following a shift
+    smaller than the design shift, which by construction keeps the inversion above the floor:
+    it no longer needs checks at once, and checks back to back for it would spend the checks'
+    share many times over (16 in a row, twice in a held-out night, ran its budget out by the
+    fifth hour). The chart keeps its value, so the alarm still comes if the shift grows.
+    """
+    k, h = float(test.reference), float(test.threshold)
+    return max(1, math.ceil(cusum_arl(2.0 * k, k, h)))
+
+
+def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
+               run: int) -> dict[str, Any]:
+    """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
+
+    A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
+    stay within :func:`recheck_run_limit`; any other check comes the plan's interval after the
+    first shot of the last (``first_shot_s``, else ``clock_s``). Returns ``due_clock``,
+    ``recheck`` and ``run`` (the rechecks in a row, this one included).
+    """
+    if action == "recheck":
+        run = int(run) + 1
+        if run <= recheck_run_limit(plan.test):
+            return {"due_clock": float(clock_s), "recheck": True, "run": run}
+    else:
+        run = 0
+    start = float(clock_s if first_shot_s is None else first_shot_s)
+    return {"due_clock": start + plan.interval_s, "recheck": False, "run": run}
+
+
 # --------------------------------------------------------------------------------------------
 # The beam budget
 # --------------------------------------------------------------------------------------------
 
 #: Rig time a night without a known end counts ahead of its clock for its ceiling (s).
 OPEN_NIGHT_HORIZON_S = 3600.0
-# The checks' share of the budget: what is left after the recoveries expected in the rest of
-# the night, at most a half, never less than a quarter (unless less is left). Recoveries are
-# expected at the night's own rate so far, starting from one per four hours (a gamma-Poisson
-# estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the night's retunes.
-_RECOVERY_PRIOR_S = 4 * 3600.0
+# The checks' share of the budget: a half, never more than what is left. Checks come first: a
+# recovery the rest cannot pay for in full is made smaller or replaced by a correction to the
+# checks' own estimate of the peak (:func:`choose_recovery`), while a step no check looks at is
+# lost for the whole delay. (Giving the checks only what the recoveries expected in the rest of
+# the night left over, down to a quarter of the budget, stretched the checks after a retune to
+# 20-35 min apart on a velocity-physics night, and its steps went 19-25 min unconfirmed.)
+# Recoveries are still expected at the night's own rate so far, from one per four hours (a
+# gamma-Poisson estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the
+# night's retunes (:data:`_RECOVERY_PRIOR_S`), and the plan states whether the rest pays for them.
 _CHECK_SHARE = 0.5
-_LEAST_CHECK_SHARE = 0.25
 
 
 @dataclass(frozen=True)
@@ -1318,21 +1407,22 @@ def checks_share(settings: HoldSettings, budget: BeamBudget, *, recovery_beam_s:
                  recoveries: int) -> dict[str, float]:
     """The share of beam time the checks may take now, with its numbers.
 
-    What is left of the budget after the recoveries expected in the rest of the night (at the
-    night's own rate so far, from one per four hours: ``(recoveries + 1) / (elapsed + 4 h)``,
-    each costing ``recovery_beam_s``), spread over the rest of the night; at most half the
-    budget, at least a quarter of it, and never more than what is left (the ceiling). A share
-    of 0 means no check can be paid for.
+    Half the budget fraction, never more than what is left of the ceiling spread over the rest
+    of the night; a share of 0 means no check can be paid for. The numbers state what the
+    recoveries expected in the rest of the night would take (at the night's own rate so far,
+    from one per four hours: ``(recoveries + 1) / (elapsed + 4 h)``, each costing
+    ``recovery_beam_s``: ``reserve_s``) against what the checks leave them
+    (``recoveries_left_s``); a recovery the rest cannot pay for is made smaller when it comes
+    (:func:`choose_recovery`).
     """
     ahead = max(budget.ahead_s, 60.0)
     rate = (recoveries + 1.0) / (budget.elapsed_s + _RECOVERY_PRIOR_S)
     reserve = rate * ahead * max(recovery_beam_s, 0.0)
     allowance = (budget.left_s - reserve) / ahead
-    share = min(max(allowance, _LEAST_CHECK_SHARE * budget.fraction),
-                _CHECK_SHARE * budget.fraction)
-    share = min(share, budget.left_s / ahead)
+    share = min(_CHECK_SHARE * budget.fraction, budget.left_s / ahead)
     return {"share": share, "allowance": allowance, "remaining_s": ahead,
-            "reserve_s": reserve, "recoveries_per_h": rate * 3600.0,
+            "reserve_s": reserve, "recoveries_left_s": max(budget.left_s - share * ahead, 0.0),
+            "recoveries_per_h": rate * 3600.0,
             "recovery_beam_s": recovery_beam_s, "holding_beam_s": budget.spent_s,
             "left_s": budget.left_s, "ceiling_s": budget.ceiling_s}
 
@@ -1365,7 +1455,8 @@ def plan_night(settings: HoldSettings, *, budget: BeamBudget, rows: Sequence[Seq
     plan = plan_checks(settings, noise=noise, prior=prior, lock=lock,
                        reference_inversion=inversion, reference_stderr=stderr,
                        check_share=share["share"], step_hz=step_hz,
-                       signal=SignalModel.from_rows(rows))
+                       signal=SignalModel.from_rows(rows),
+                       step_rate_per_s=share["recoveries_per_h"] / 3600.0)
     return plan, share
 
 

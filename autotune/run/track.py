@@ -97,6 +97,7 @@ from autotune.analysis.hold import (
     choose_recovery,
     expected_stage_beam_s,
     known_cubic,
+    next_check,
     noise_row,
     plan_night,
     recovery_start,
@@ -1096,8 +1097,9 @@ class _Night:
                        f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
                        f"{budget['ceiling_s'] / 60:.1f} min, {budget['holding_beam_s'] / 60:.1f} "
                        f"min spent, "
-                       f"{budget['reserve_s'] / 60:.1f} min kept for the recoveries expected in "
-                       f"the {budget['remaining_s'] / 3600:.1f} h to come)",
+                       f"{budget['recoveries_left_s'] / 60:.1f} min left for recoveries, "
+                       f"{budget['reserve_s'] / 60:.1f} min for those expected in the "
+                       f"{budget['remaining_s'] / 3600:.1f} h to come)",
                        budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
                        plan=plan.to_dict())
 
@@ -1229,13 +1231,14 @@ class _Night:
                 new["pending"] = {"kind": "correct", "point": point, "from": held, "to": target,
                                   "reason": a.reason}
                 new["held"] = target
-            due = clock_now if a.action == "recheck" else \
-                (m.t_first if m.t_first is not None else clock_now) + plan.interval_s
-            if a.action == "recheck":
+            after = next_check(plan, action=a.action, clock_s=clock_now,
+                               first_shot_s=m.t_first,
+                               # An unreadable check is always repeated at once.
+                               run=int(state["next"].get("run", 0)) if a.usable else 0)
+            if after["recheck"]:
                 counts["rechecks"] += 1
-            new["next"] = {"point": point + 1, "due_clock": due,
-                           "shots_per_phase": plan.shots_per_phase,
-                           "recheck": a.action == "recheck"}
+            new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
+                           **after}
         self.state = new
         self._snapshot("hold", point=point, action=a.action, reason=a.reason,
                        setpoints=held, clock_s=m.clock_s, numbers=a.numbers())
