@@ -1233,8 +1233,35 @@ class PhaseLockSearch:
         every reported bound count it)."""
         return self._shortfall_at(rec, clock, inherit=False).upper
 
+    def best_inversion(self) -> tuple[float, float] | None:
+        """The highest inversion the velocity curve expects within its trusted range: (value at
+        the posterior mean, upper bound at the two-sided level of ``confidence`` from the seeded
+        posterior draws);
+        None before the curve exists or while its optimum is not bracketed (it may lie beyond)."""
+        return self._cached("best_inversion", self._compute_best_inversion)
+
+    def _compute_best_inversion(self) -> tuple[float, float] | None:
+        curve = self._velocity_curve()
+        plan = self._velocity_plan()
+        if curve is None or not plan["concluded"] or plan.get("outward", False):
+            return None
+        x_lo, x_hi = self._curve_range(curve)
+
+        def best(b: np.ndarray) -> np.ndarray:
+            b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                vertex = np.where(b2 < 0.0, -b1 / (2.0 * b2), x_lo)
+            inside = np.clip(np.nan_to_num(vertex, nan=x_lo), x_lo, x_hi)
+            return np.maximum.reduce([b0 + b1 * x + b2 * x**2 for x in (x_lo, x_hi)]
+                                     + [b0 + b1 * inside + b2 * inside**2])
+
+        draws = best(curve.draws(self._draw_normals(3, 7)))
+        # Two-sided level: the check is made after every point, as the verification's first look.
+        level = 1.0 - 0.5 * (1.0 - self.settings.confidence)
+        return float(best(curve.coef[None, :])[0]), float(np.quantile(draws, level))
+
     def hopeless(self, *, clock_s: float | None = None, points_left: int | None = None,
-                 acceptance_bar: float | None = None) -> str | None:
+                 acceptance_bar: float | None = None, min_inversion: float | None = None) -> str | None:
         """Why more points in this box cannot meet the target, or None.
 
         Said when the velocity optimum lies beyond the box (the data point outward at its
@@ -1250,6 +1277,16 @@ class PhaseLockSearch:
         by 0.07 % per point fell to 1.1 % in four), and the points are the stage's only hope.
         """
         clock = self._now(clock_s)
+        no_lock = self._lock_not_established()
+        if no_lock is not None:
+            return no_lock
+        best = self.best_inversion() if min_inversion is not None else None
+        if best is not None and best[1] < min_inversion:
+            # No point in this box can reach the acceptance's inversion: the rig, not the search.
+            level = 1.0 - 0.5 * (1.0 - self.settings.confidence)
+            return (f"the highest inversion in the box is {best[0]:.3f} (at most {best[1]:.3f} at "
+                    f"{level:.1%}), below [acceptance] min_inversion {min_inversion:.3f} "
+                    "(check the one-photon source, the detectors and [acceptance] min_inversion)")
         plan = self._velocity_plan()
         if plan["concluded"] and plan.get("outward", False):
             return f"velocity optimum not bracketed inside the box: {plan['note']}"
@@ -1276,6 +1313,40 @@ class PhaseLockSearch:
         return (f"the target {target:.1%} is out of reach within the point budget: the bound {now:.2%} "
                 f"(within the acceptance bar {bar:.1%}) would need {needed}, more than the "
                 f"{points_left} left")
+
+    def _lock_not_established(self) -> str | None:
+        """Why the detuning lock is not established after twice the fallback's first design,
+        or None (established, a retune with its stored slope, or fewer points so far).
+
+        A one-photon source prepared with a probability near 0.5 mixes the inverted one-photon
+        fringe with the empty one: near the best the one-photon contrast falls to about
+        ``2 p1 - 1`` of the empty one, below ``min_contrast_ratio`` wherever the inversion is
+        high, and no point there steers the lock. More points of the fallback's search do not
+        change that; the stage should stop and say what to check.
+        """
+        s = self.settings
+        if self.prior is not None or len(self._obs) < 2 * s.fallback_initial_points:
+            return None
+        anchor = self._anchor()
+        if anchor is not None:
+            fit = self._lock_fit(anchor.velocity)
+            if fit is not None and fit.slope_known():
+                return None
+        notes = [self._range_note(o.result) or "" for o in self._obs]
+        low = sum(n.startswith("one-photon/empty contrast") for n in notes)
+        wrapped = sum(n.startswith("phase error") for n in notes)
+        unidentified = sum(n == "fringes not identified" for n in notes)
+        if low >= max(wrapped, unidentified):
+            cause = (f"the one-photon contrast was below {s.min_contrast_ratio:.2f} of the empty one at "
+                     f"{low} of {len(notes)} points (check the one-photon source's preparation probability "
+                     "and thermal photons, then [nominal] coupling_hz and waist_m)")
+        elif wrapped >= unidentified:
+            cause = (f"the phase error was beyond the capture range at {wrapped} of {len(notes)} points "
+                     "(check the detuning box, [nominal] coupling_hz and waist_m, their units)")
+        else:
+            cause = (f"no fringe was identified at {unidentified} of {len(notes)} points (check the atom "
+                     "rate, the detectors and the Ramsey phases)")
+        return f"the detuning lock is not established after {len(notes)} points: {cause}"
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1448,6 +1519,15 @@ class PhaseLockSearch:
     def _expected_after(self, rec: Mapping[str, float], velocity: float, detuning: float,
                         shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
         return expected_after(self, rec, velocity, detuning, shots_per_phase, clock, inherit)
+
+    def expected_after(self, point: Mapping[str, float], shots_per_phase: int, *,
+                       clock_s: float | None = None) -> Shortfall:
+        """The shortfall at ``point`` expected after ``shots_per_phase`` more shots there (a
+        linear-Gaussian update: the covariance is known before the measurement, the means are
+        kept), every term included."""
+        clock = self._now(clock_s)
+        return expected_after(self, point, float(point["velocity"]), float(point["detuning"]),
+                              int(shots_per_phase), clock, True)
 
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
         return best_proposal(self, velocity, clock)
