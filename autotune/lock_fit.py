@@ -17,7 +17,7 @@ import numpy as np
 from autotune.search import PointResult
 
 if TYPE_CHECKING:
-    from autotune.guided import LockSettings
+    from autotune.lock_settings import LockSettings
 
 __all__ = ["phase_signal_note", "detuning_offset"]
 
