@@ -8,7 +8,7 @@ problem of the file at once. A physical value must
 also lie in the range a lab could mean (:mod:`autotune.plausible`, shared with the client's
 configuration): a value typed in the wrong unit is refused with a hint at the likely one
 (``cavity.damping_time_s ... got 25: did you mean 25 ms = 0.025?``). The top-level ``[faults]`` table belongs to the server
-(``autotune rig`` validates it with :class:`autotune.server.FaultConfig`) and is kept
+(``autotune rig`` validates it with :class:`autotune.kit.server.FaultConfig`) and is kept
 unvalidated as a plain dict.
 
 Use :func:`load_sim_config` for a file and :func:`sim_config_from_dict` for a dict (tests and
@@ -298,7 +298,7 @@ class ModelSection:
 @dataclasses.dataclass(frozen=True)
 class SetpointLimit(WireLimit):
     """Limits of one set-point (``[limits.NAME]``), in its SI unit: the wire's set-point limit
-    (:class:`autotune.protocol.SetpointLimit`: ``unit``, ``min``, ``max``, ``max_step``, and
+    (:class:`autotune.wire.protocol.SetpointLimit`: ``unit``, ``min``, ``max``, ``max_step``, and
     its ``tighter``) with the simulated rig's safe value.
 
     Attributes

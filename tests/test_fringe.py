@@ -1,4 +1,4 @@
-"""Tests of autotune.fringe against scipy.stats, numpy.linalg and synthetic fringes of known truth."""
+"""Tests of autotune.analysis.fringe against scipy.stats, numpy.linalg and synthetic fringes of known truth."""
 
 from __future__ import annotations
 

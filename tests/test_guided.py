@@ -1,4 +1,4 @@
-"""Tests of autotune.guided: the phase lock on synthetic error signals and on the simulated rig.
+"""Tests of autotune.analysis.guided: the phase lock on synthetic error signals and on the simulated rig.
 
 The synthetic rig below is built from the laws the strategy's models rest on, each from outside
 the project: the inversion ``cos(eps / 2)`` of an ideal fringe pair with a phase error ``eps``
@@ -492,7 +492,7 @@ def _sim_rig(perturbation: Mapping[str, Mapping[str, float]], seed: int):
 
 
 def _measure(rig, point: Mapping[str, float], shots_per_phase: int, seed: int, phases: int = 6) -> PointResult:
-    """Move in allowed steps, acquire both fields interleaved at each Ramsey phase, estimate (as autotune.loop)."""
+    """Move in allowed steps, acquire both fields interleaved at each Ramsey phase, estimate (as autotune.run.loop)."""
     limits = rig.describe()["setpoints"]
     current = rig.status()["setpoints"]
     steps = max(1, *(math.ceil(abs(point[k] - current[k]) / (0.999 * limits[k]["max_step"])) for k in point))
@@ -677,6 +677,44 @@ def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
     assert reason is not None and "velocity model cannot be established" in reason
     assert lock.n_told <= 8
     assert lock.acceptance_problems(lock.recommend(clock_s=rig.clock).point, clock_s=rig.clock)
+
+
+def test_a_poor_one_photon_source_ends_the_lock_after_twice_the_fallback_design():
+    """A source prepared with a probability near 0.5 mixes the inverted one-photon fringe with
+    the empty one: the one-photon contrast is about ``2 p1 - 1`` of the empty one (0.15 for p1 =
+    0.575, below min_contrast_ratio 0.35) wherever the rotation is near 2 pi (docs/physics.md
+    section 3's fringe of a mixture, a weighted sum of the two fringes). No point steers the
+    lock; after twice the fallback's first design (12 points) the search says so in one line
+    naming the source, instead of spending its 40 points."""
+    rig = Synthetic(peak_detuning_hz=-18e3, seed=3, contrast_ratio=lambda v, d: 0.15)
+    lock = PhaseLockSearch(BOX, seed=3, start=START, settings=SETTINGS)
+    _run_until_hopeless(lock, rig, 40)
+    reason = lock.hopeless(clock_s=rig.clock)
+    assert lock.n_told == 2 * SETTINGS.fallback_initial_points
+    assert reason.startswith("the detuning lock is not established after 12 points")
+    assert "one-photon contrast was below 0.35" in reason and "preparation probability" in reason
+    assert "\n" not in reason
+
+
+def test_a_rig_whose_best_inversion_is_below_the_acceptance_threshold_is_hopeless():
+    """The inversion curve's best within its trusted range is an upper bound on what any point
+    in the box reaches: when its upper bound (97.5 %, the two-sided level of the 95 %
+    confidence) is below [acceptance] min_inversion, more points cannot make the stage
+    acceptable, and the search says so; with a threshold below the best it does not."""
+    rig = Synthetic(peak_detuning_hz=2e3, velocity_star=V0, seed=4, scale=0.42)
+    lock = PhaseLockSearch(BOX, seed=4, start=START, settings=SETTINGS)
+    for _ in range(20):
+        if lock.best_inversion() is not None:
+            break
+        p = lock.propose(clock_s=rig.clock)
+        lock.observe(p.point, rig.measure(p.point, p.shots_per_phase or 1500), purpose=p.purpose)
+    value, upper = lock.best_inversion()
+    # The synthetic rig's best is its scale minus its least absorption (0.42 - 0.015).
+    assert value == pytest.approx(0.42 - 0.015, abs=0.05) and upper >= value
+    reason = lock.hopeless(clock_s=rig.clock, min_inversion=0.5)
+    assert reason is not None and "below [acceptance] min_inversion 0.500" in reason
+    assert lock.hopeless(clock_s=rig.clock, min_inversion=0.3) is None or \
+        "min_inversion" not in lock.hopeless(clock_s=rig.clock, min_inversion=0.3)
 
 
 def test_a_bound_within_the_bar_stops_when_the_target_is_out_of_reach_of_the_budget():

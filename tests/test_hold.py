@@ -1,4 +1,4 @@
-"""The night's pure core (autotune.hold): the sequential test against its published run lengths,
+"""The night's pure core (autotune.analysis.hold): the sequential test against its published run lengths,
 the drift lock against the Kalman filter's steady state and on a synthetic ramp, the plan."""
 
 from __future__ import annotations

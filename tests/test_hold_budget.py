@@ -1,4 +1,4 @@
-"""The night's planning (autotune.hold), pure: the beam budget as a ceiling over random
+"""The night's planning (autotune.analysis.hold), pure: the beam budget as a ceiling over random
 sequences of checks and recoveries, the recovery chosen within it, and the checks sized to the
 rig's signal, whose statistics are checked against seeded binomial draws (scipy.stats) and the
 published run lengths of the sequential test."""

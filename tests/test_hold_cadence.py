@@ -1,4 +1,4 @@
-"""The cadence of the night's checks (autotune.hold): the Brook-Evans chain the planner uses,
+"""The cadence of the night's checks (autotune.analysis.hold): the Brook-Evans chain the planner uses,
 against the published CUSUM run lengths and seeded normal data (scipy.stats.norm); the time to
 confirm a thermal step and the share of rechecks, against seeded nights of checks; the pure
 planning entry point the shell calls."""

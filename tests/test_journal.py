@@ -1,4 +1,4 @@
-"""Tests of autotune.journal: append-only JSON Lines that survive a kill mid-write."""
+"""Tests of autotune.run.journal: append-only JSON Lines that survive a kill mid-write."""
 
 from __future__ import annotations
 

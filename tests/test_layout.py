@@ -40,18 +40,9 @@ ALLOWED: dict[str, frozenset[str]] = {
 #: The packages built by concern, where no module imports another's private name.
 BY_CONCERN = ("analysis", "wire", "kit", "run", "bench", "cli")
 
-#: Private names still imported across modules, each with why it is left: the modules that
-#: define them are being changed on other branches at the same time, so renaming them here
-#: would collide with that work; rename them (public, or move the use) once those have merged.
-PRIVATE_IMPORTS_LEFT = {
-    # The phase lock's models were split out of guided.py; guided still reaches into them.
-    ("analysis/guided.py", "autotune.analysis.lock_fit"):
-        {"_LockFit", "_log_evidence", "_solve_gaussian", "_wrap"},
-    ("analysis/guided.py", "autotune.analysis.velocity_model"): {"_AbsorptionFit", "_cholesky"},
-    # The night replays a stage's journal with the loop's own reader (issue 21 item 3: one
-    # module for journal records would make this public).
-    ("run/track.py", "autotune.run.loop"): {"_Measurement", "_replay"},
-}
+#: Private names still imported across modules, each with why it is left (none today: a name
+#: another module needs is public in its own, listed in its ``__all__``).
+PRIVATE_IMPORTS_LEFT: dict[tuple[str, str], set[str]] = {}
 
 
 def _unit(path: Path) -> str:

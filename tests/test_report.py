@@ -35,6 +35,7 @@ from matplotlib.contour import ContourSet
 from scipy import stats
 
 from autotune import report
+from autotune.report.text import _header as report_header
 from autotune.analysis.fringe import FringeData, estimate_inversion
 from autotune.run.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
                               write_json_atomic)
@@ -163,7 +164,7 @@ def _write_run(path: Path, measurements: Sequence[dict[str, Any]], *, command: s
                box: dict[str, list[float]] | None = BOX, end: str | None = "accepted",
                result: dict[str, Any] | None = None, extra: Sequence[tuple[str, dict]] = (),
                clock0: float = 0.0) -> Path:
-    """A run folder written with the real journal writer; estimates from autotune.fringe."""
+    """A run folder written with the real journal writer; estimates from autotune.analysis.fringe."""
     manifest = {"run_id": path.name, "command": command, "started": "2026-01-01T00:00:00+00:00",
                 "config": {"measurement": {"confidence": 0.95}}, "seed": 1, "versions": {},
                 "rig": {"rig": "test-bench", "simulated": True}}
@@ -496,7 +497,7 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     # The header reads as a night: what it held, its counts and beam share, its last check
     # (a check, not a verification), the numbers of its result.json.
     result = read_json(real["track"] / RESULT_NAME)
-    rows = dict(report._header(built.runs[0]))
+    rows = dict(report_header(built.runs[0]))
     assert "verified inversion" not in rows and "best measured" not in rows
     assert rows["stop reason"] == result["stop_reason"]
     assert rows["beam on holding"].startswith(f"{result['holding_share']:.1%} of the night")

@@ -1,13 +1,13 @@
 """Tests of the report's decision figures against the journal's own numbers.
 
 Real inputs: a dry run (``autotune dry-run``, a real process) and three nights of ``track`` on
-the simulated rig in process (autotune.track through LocalRig, the real protocol without a
+the simulated rig in process (autotune.run.track through LocalRig, the real protocol without a
 socket): a thermal step found and recovered; a larger step whose recovery fails (an alarm and
 a failed recovery); and an acceptance bar no stage reaches (a night that never holds).
 
 Outside references: the journal's own records (the lock's fitted curve and covariance, the
 absorption fit, the hold records' statistics and thresholds, the result's beam time), the
-phase-curve and quadratic formulas written out here from autotune.guided's documented state
+phase-curve and quadratic formulas written out here from autotune.analysis.guided's documented state
 (not imported from the report), and the standard normal's 95 % point (scipy.stats.norm).
 """
 
@@ -26,6 +26,7 @@ import pytest
 from scipy import stats
 
 from autotune import report
+from autotune.report.text import _header as report_header
 from autotune.bench import night_rig as bench_night_rig
 from autotune.run import runner
 from autotune.run import track
@@ -262,7 +263,7 @@ def test_a_failed_recovery_is_shaded_red_and_marked(folders):
     assert failures or _decisions(run_dir, "budget")
     done = _decisions(run_dir, "stage_done")
     assert any("below_acceptance" in d["reason"] for d in done)
-    rows = dict(report._header(report.load_run(run_dir)))
+    rows = dict(report_header(report.load_run(run_dir)))
     assert f"{len(failures)} failure" in rows["night"]
 
 

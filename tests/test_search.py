@@ -1,4 +1,4 @@
-"""Tests of autotune.search: the skopt adapter on a standard function, and the scan strategies."""
+"""Tests of autotune.analysis.search: the skopt adapter on a standard function, and the scan strategies."""
 
 from __future__ import annotations
 

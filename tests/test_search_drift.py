@@ -1,4 +1,4 @@
-"""Tests of autotune.search under a drifting set-point: clocks on the interface, the drift model."""
+"""Tests of autotune.analysis.search under a drifting set-point: clocks on the interface, the drift model."""
 
 from __future__ import annotations
 

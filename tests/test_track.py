@@ -1,4 +1,4 @@
-"""``autotune track`` in process (autotune.track on the simulated rig through LocalRig: the real
+"""``autotune track`` in process (autotune.run.track on the simulated rig through LocalRig: the real
 protocol without a socket): a night's journal, a thermal step found and recovered, every cut of
 a night's journal resumed, the stop conditions and where they leave the rig, the checks before
 the first move. Real processes, sockets and signals are in tests/test_survival.py and

@@ -1,4 +1,4 @@
-"""Tests of autotune.velocity_model: the inversion along velocity with the physics as its prior.
+"""Tests of autotune.analysis.velocity_model: the inversion along velocity with the physics as its prior.
 
 The reference rig here is the product law of docs/physics.md section 5b: an empty-fringe contrast
 that rises with velocity as the Ramsey dephasing falls, exp(-(2 pi Delta_R L sigma_v / v^2)^2 / 2)

@@ -28,7 +28,7 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   absorption ``Delta P_e`` (with ``p1`` in both). But the least absorption is the best velocity
   only when nothing else in the inversion depends on velocity: at the locked detuning a
   weighted quadratic fit of ``P_e`` in ``x = v_ref / v - 1`` over a few velocities, and the
-  inversion curve of :mod:`autotune.velocity_model` (the measured inversions, with the
+  inversion curve of :mod:`autotune.analysis.velocity_model` (the measured inversions, with the
   empty-fringe contrast's shape minus the absorption as the prior mean) gives the velocity of
   the highest inversion, extending towards higher inversion while it is not bracketed (up to
   the box edge, which it then says, and whether the data point outward there). A retune keeps
@@ -47,7 +47,7 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
 - **Fallback.** Where the phase signal is not usable (fringes not identified, a one-photon
   contrast too low against the empty one, or a phase error beyond the capture range, where
   the angle wraps), a Gaussian-process search on the inversion
-  (:class:`autotune.search.BayesianSearch` over the box, told every result) proposes points
+  (:class:`autotune.analysis.search.BayesianSearch` over the box, told every result) proposes points
   until one lands in the capture range; the lock starts there.
 
 How the closed loop drives it
@@ -114,24 +114,25 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from scipy import special, stats
 
 from autotune.analysis.lock_fit import (
-    _LockFit,
-    _log_evidence,
-    _solve_gaussian,
-    _wrap,
+    LockFit,
+    log_evidence,
+    solve_gaussian,
+    wrap_phase,
     detuning_offset,
     phase_signal_note,
 )
+from autotune.analysis.lock_settings import LockPrior, LockSettings, is_number
 from autotune.analysis.next_point import SAME_VELOCITY, best_proposal, expected_after, expected_fall
 from autotune.analysis.retune_verdict import inherited_draws, retune_verdict
 from autotune.analysis.shortfall import Shortfall, Verdict, finite_or_none
-from autotune.analysis.velocity_model import InversionCurve, _AbsorptionFit, _cholesky, fit_inversion_curve
+from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, cholesky_jittered, fit_inversion_curve
 from autotune.analysis.search import (
     PURPOSES,
     BayesianSearch,
@@ -156,321 +157,6 @@ _DRIFT_WIDENING = 4.0
 _PHASE_GRID = 241
 # Smallest inversion scale used as the denominator of the velocity term.
 _MIN_INVERSION_SCALE = 0.05
-
-
-def _is_number(value: Any) -> bool:
-    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer))
-
-
-# --------------------------------------------------------------------------------------------
-# Settings
-# --------------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class LockSettings:
-    """Settings of :class:`PhaseLockSearch`, SI units with the unit in every name.
-
-    Attributes
-    ----------
-    target_shortfall : float
-        Predicted relative shortfall below the best at which the search stops (0.01: the
-        issue's 98 % goal with room for the drift until the verification ends).
-    confidence : float
-        Level of the upper bound compared with the target (0.95).
-    still_good_shortfall : float
-        A retune's check keeps the last good set-points when the upper bound of their
-        shortfall is below this (0.02: twice the target, because a single check's excess
-        absorption is noisy; a thermal step of 15 kHz costs ~10 %, far above it).
-    phase_at_peak_rad : float
-        Centre of the prior on the phase shift at the peak, rad (pi: the 2 pi rotation's sign
-        flip, docs/physics.md section 1).
-    phase_at_peak_prior_rad : float
-        Width (standard deviation) of that prior, rad (0.02 pi: small, for a dispersive phase
-        of level i or fringe imperfections; the inversions refine it).
-    capture_phase_error_rad : float
-        Largest phase error ``|phi - phi*|`` of a point the lock uses, rad (0.6 pi: well inside
-        the wrap at pi; the phase error is a nearly linear discriminator within it).
-    min_contrast_ratio : float
-        Smallest one-photon / empty contrast ratio of a usable point (0.35: near a pi or 3 pi
-        rotation ``|a|`` and the ratio fall towards the unrotated fraction).
-    bracket_step_hz : float or None
-        Detuning step of the bracket and the scale of the lock's cubic term, Hz. None: the
-        detuning box's width / 12. Pass ``coupling_hz / 5`` from the nominal coupling.
-    max_lock_step_hz : float or None
-        Largest move of a lock step from the nearest usable point, Hz (None: two bracket
-        steps), so that a noisy early slope cannot throw the lock out of range.
-    velocity_step_fraction : float
-        Velocity step of the absorption fit, relative to the velocity (0.05).
-    lock_shots_per_phase, velocity_shots_per_phase : int
-        Shots per field and Ramsey phase of lock and velocity steps (500 each; see the module
-        notes for the comparison behind the defaults).
-    ramsey_phases : int
-        Ramsey phases per fringe of the loop (converts shots per phase to shots per point).
-    phase_cubic_prior_fraction : float
-        Prior width of the lock's cubic term at one bracket step, as a fraction of the linear
-        term there (0.15: the curve may bend by this much within one step).
-    drift_prior_hz_per_s : float
-        Width of the Gaussian prior (centred on 0) on the cavity's drift during a calibration,
-        Hz/s; the prior on the phase drift is this times the fitted slope (3 Hz/s, 10.8 kHz
-        per hour; 0 switches the drift term off).
-    phase_velocity_error_rad : float
-        Model error added to a point's phase per unit of relative velocity between the point
-        and the velocity the lock is evaluated at, rad (1.0: a point 5 % away counts with an
-        extra 0.05 rad).
-    absorption_phase_window_rad : float
-        Largest phase error of a point the absorption fit uses, rad (0.2 pi: absorption varies
-        with the detuning too).
-    lock_acquired_shortfall : float
-        The detuning term's upper bound below which the lock counts as acquired and the
-        velocity steps begin (0.03).
-    slope_sign : int
-        Known sign of the phase slope ``d phi / d delta`` (+1 or -1), or 0 (unknown: learned;
-        the first bracket step then goes towards the box centre).
-    prior_slope_tolerance_fraction : float
-        Relative change of the slope a retune allows beyond the stored slope's standard error
-        (0.1).
-    prior_velocity_tolerance_fraction : float
-        Relative move of the velocity of least absorption a retune allows beyond its stored
-        standard error (0.01: a thermal step moves the cavity's frequency, not the selected
-        velocity).
-    fallback_initial_points : int
-        Space-filling points of the Gaussian-process fallback's first design (6).
-    step_phase_stderr_rad : float
-        Phase-shift standard error a lock step is sized for, rad (0.15: the 1 % target allows
-        a phase error of 0.4 rad, ``1 - cos(eps / 2) <= 0.01``, so a step's own noise keeps its
-        95 % range inside it).
-    step_absorption_stderr : float
-        Absorption standard error a velocity step is sized for (0.005: half the excess
-        absorption one velocity step of 5 % adds at a curvature of 4, ``4 x 0.05^2 = 0.01``).
-    step_shots_range : (float, float)
-        Lock and velocity steps take their configured shots until a point is measured, then the
-        shots that give the standard errors above from the measured error per shot (which
-        carries the one-photon contrast, the atom rate and the detection efficiency), within
-        this range of multiples of the configured shots ((0.5, 4.0); (1, 1) keeps them fixed).
-    posterior_draws : int
-        Seeded posterior draws behind every upper bound (4000).
-    """
-
-    target_shortfall: float = 0.01
-    confidence: float = 0.95
-    still_good_shortfall: float = 0.02
-    phase_at_peak_rad: float = math.pi
-    phase_at_peak_prior_rad: float = 0.02 * math.pi
-    capture_phase_error_rad: float = 0.6 * math.pi
-    min_contrast_ratio: float = 0.35
-    bracket_step_hz: float | None = None
-    max_lock_step_hz: float | None = None
-    velocity_step_fraction: float = 0.05
-    lock_shots_per_phase: int = 500
-    velocity_shots_per_phase: int = 500
-    ramsey_phases: int = 6
-    phase_cubic_prior_fraction: float = 0.15
-    drift_prior_hz_per_s: float = 3.0
-    phase_velocity_error_rad: float = 1.0
-    absorption_phase_window_rad: float = 0.2 * math.pi
-    lock_acquired_shortfall: float = 0.03
-    slope_sign: int = 0
-    prior_slope_tolerance_fraction: float = 0.1
-    prior_velocity_tolerance_fraction: float = 0.01
-    fallback_initial_points: int = 6
-    posterior_draws: int = 4000
-    step_phase_stderr_rad: float = 0.15
-    step_absorption_stderr: float = 0.005
-    step_shots_range: tuple[float, float] = (0.5, 4.0)
-
-    def __post_init__(self) -> None:
-        open_unit = ("target_shortfall", "confidence", "still_good_shortfall", "lock_acquired_shortfall")
-        for name in open_unit:
-            value = getattr(self, name)
-            if not _is_number(value) or not 0.0 < float(value) < 1.0:
-                raise ValueError(f"LockSettings.{name}: expected a number in (0, 1), got {value!r}")
-        positive = ("phase_at_peak_prior_rad", "capture_phase_error_rad", "absorption_phase_window_rad")
-        for name in positive:
-            value = getattr(self, name)
-            if not _is_number(value) or not (math.isfinite(float(value)) and float(value) > 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
-        if self.capture_phase_error_rad >= math.pi:
-            raise ValueError(f"LockSettings.capture_phase_error_rad: expected a number in (0, pi), "
-                             f"got {self.capture_phase_error_rad!r}")
-        for name in ("phase_cubic_prior_fraction", "drift_prior_hz_per_s", "phase_velocity_error_rad",
-                     "prior_slope_tolerance_fraction", "prior_velocity_tolerance_fraction"):
-            value = getattr(self, name)
-            if not _is_number(value) or not (math.isfinite(float(value)) and float(value) >= 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number >= 0, got {value!r}")
-        if not _is_number(self.phase_at_peak_rad) or not math.isfinite(float(self.phase_at_peak_rad)):
-            raise ValueError(f"LockSettings.phase_at_peak_rad: expected a finite number (rad), "
-                             f"got {self.phase_at_peak_rad!r}")
-        if not _is_number(self.min_contrast_ratio) or not 0.0 <= float(self.min_contrast_ratio) < 1.0:
-            raise ValueError(f"LockSettings.min_contrast_ratio: expected a number in [0, 1), "
-                             f"got {self.min_contrast_ratio!r}")
-        if not _is_number(self.velocity_step_fraction) or not 0.0 < float(self.velocity_step_fraction) < 0.5:
-            raise ValueError(f"LockSettings.velocity_step_fraction: expected a number in (0, 0.5), "
-                             f"got {self.velocity_step_fraction!r}")
-        for name in ("bracket_step_hz", "max_lock_step_hz"):
-            value = getattr(self, name)
-            if value is not None and (not _is_number(value) or not (math.isfinite(float(value)) and value > 0)):
-                raise ValueError(f"LockSettings.{name}: expected None or a finite number > 0 (Hz), got {value!r}")
-        for name, minimum in (("lock_shots_per_phase", 1), ("velocity_shots_per_phase", 1),
-                              ("ramsey_phases", 3), ("fallback_initial_points", 1),
-                              ("posterior_draws", 200)):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-                raise ValueError(f"LockSettings.{name}: expected an integer >= {minimum}, got {value!r}")
-        for name in ("step_phase_stderr_rad", "step_absorption_stderr"):
-            value = getattr(self, name)
-            if not _is_number(value) or not (math.isfinite(float(value)) and float(value) > 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
-        low_high = self.step_shots_range
-        if not (isinstance(low_high, tuple) and len(low_high) == 2 and all(_is_number(v) for v in low_high)
-                and 0.0 < low_high[0] <= 1.0 <= low_high[1] and math.isfinite(low_high[1])):
-            raise ValueError(f"LockSettings.step_shots_range: expected (low, high) with 0 < low <= 1 <= high, "
-                             f"got {low_high!r}")
-        if self.slope_sign not in (-1, 0, 1) or isinstance(self.slope_sign, bool):
-            raise ValueError(f"LockSettings.slope_sign: expected -1, 0 or +1, got {self.slope_sign!r}")
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready mapping of every setting."""
-        return {f.name: getattr(self, f.name) for f in fields(self)}
-
-
-# --------------------------------------------------------------------------------------------
-# What a calibration learned
-# --------------------------------------------------------------------------------------------
-
-
-_PRIOR_KEYS: dict[str, str] = {
-    "velocity_m_per_s": "the calibrated velocity set-point (m/s), > 0",
-    "velocity_stderr_m_per_s": "the standard error of the velocity of least absorption (m/s), >= 0",
-    "detuning_hz": "the calibrated detuning set-point (Hz)",
-    "slope_rad_per_hz": "the phase slope d phi / d delta (rad/Hz), non-zero",
-    "slope_stderr_rad_per_hz": "its standard error (rad/Hz), >= 0",
-    "cubic_rad_per_hz3": "the cubic coefficient of the phase curve (rad/Hz^3)",
-    "cubic_stderr_rad_per_hz3": "its standard error (rad/Hz^3), >= 0",
-    "phase_at_peak_rad": "the phase shift at the peak (rad)",
-    "phase_at_peak_stderr_rad": "its standard error (rad), > 0",
-    "absorption_min": "the least absorption P_e(one photon), in [0, 1]",
-    "absorption_min_stderr": "its standard error, >= 0",
-    "absorption_curvature": "k of P_e = P_min + k (v*/v - 1)^2, >= 0",
-    "absorption_curvature_stderr": "its standard error, >= 0",
-    "inversion": "the inversion at the lock, in (0, 1]",
-}
-_PRIOR_OPTIONAL: dict[str, str] = {
-    "peak_drift_hz_per_s": "the rate of the peak's detuning set-point during the calibration (Hz/s)",
-    "velocity_shortfall": "the calibration's velocity term at its chosen velocity (inversion fraction), >= 0",
-    "velocity_shortfall_upper": "its upper bound at the calibration's confidence, >= velocity_shortfall",
-}
-
-
-@dataclass(frozen=True)
-class LockPrior:
-    """What a calibration learned, for the next retune (JSON-ready with :meth:`to_dict`).
-
-    Attributes
-    ----------
-    velocity_m_per_s, detuning_hz : float
-        The calibrated set-points (m/s, Hz).
-    velocity_stderr_m_per_s : float
-        Standard error of the velocity of least absorption (m/s).
-    slope_rad_per_hz, slope_stderr_rad_per_hz : float
-        Phase slope ``d phi / d delta`` at the peak and its standard error (rad/Hz).
-    cubic_rad_per_hz3, cubic_stderr_rad_per_hz3 : float
-        Cubic coefficient ``c`` of ``phi - phi* = s d + c d^3`` and its standard error.
-    phase_at_peak_rad, phase_at_peak_stderr_rad : float
-        Phase shift at the peak and its standard error (rad).
-    absorption_min, absorption_min_stderr : float
-        Least absorption P_e(one photon) and its standard error.
-    absorption_curvature, absorption_curvature_stderr : float
-        ``k`` of ``P_e = P_min + k (v*/v - 1)^2`` and its standard error.
-    inversion : float
-        The inversion scale at the lock.
-    peak_drift_hz_per_s : float
-        Rate of change of the peak's detuning set-point seen during the calibration (Hz/s;
-        a cavity drifting up in frequency moves it down; information only).
-    velocity_shortfall, velocity_shortfall_upper : float
-        The calibration's velocity term at the velocity it chose (the relative inversion lost
-        against the best of its inversion curve) and its upper bound at its confidence. A retune
-        keeps that velocity and learns only whether the rig moved from it, so the calibration's
-        own uncertainty of the velocity stays in every retune's bound (0 in a store written
-        before these keys existed).
-    """
-
-    velocity_m_per_s: float
-    velocity_stderr_m_per_s: float
-    detuning_hz: float
-    slope_rad_per_hz: float
-    slope_stderr_rad_per_hz: float
-    cubic_rad_per_hz3: float
-    cubic_stderr_rad_per_hz3: float
-    phase_at_peak_rad: float
-    phase_at_peak_stderr_rad: float
-    absorption_min: float
-    absorption_min_stderr: float
-    absorption_curvature: float
-    absorption_curvature_stderr: float
-    inversion: float
-    peak_drift_hz_per_s: float = 0.0
-    velocity_shortfall: float = 0.0
-    velocity_shortfall_upper: float = 0.0
-
-    def __post_init__(self) -> None:
-        for f in fields(self):
-            value = getattr(self, f.name)
-            if not _is_number(value) or not math.isfinite(float(value)):
-                raise ValueError(f"LockPrior.{f.name}: expected a finite number, got {value!r}")
-            object.__setattr__(self, f.name, float(value))
-        checks = (
-            ("velocity_m_per_s", self.velocity_m_per_s > 0.0),
-            ("slope_rad_per_hz", self.slope_rad_per_hz != 0.0),
-            ("phase_at_peak_stderr_rad", self.phase_at_peak_stderr_rad > 0.0),
-            ("absorption_min", 0.0 <= self.absorption_min <= 1.0),
-            ("absorption_curvature", self.absorption_curvature >= 0.0),
-            ("inversion", 0.0 < self.inversion <= 1.0),
-            ("velocity_shortfall", 0.0 <= self.velocity_shortfall <= 1.0),
-            ("velocity_shortfall_upper", self.velocity_shortfall <= self.velocity_shortfall_upper <= 1.0),
-        )
-        for name, ok in checks:
-            if not ok:
-                what = _PRIOR_KEYS.get(name) or _PRIOR_OPTIONAL[name]
-                raise ValueError(f"LockPrior.{name}: expected {what}, got {getattr(self, name)!r}")
-        for name in ("velocity_stderr_m_per_s", "slope_stderr_rad_per_hz", "cubic_stderr_rad_per_hz3",
-                     "absorption_min_stderr", "absorption_curvature_stderr"):
-            if getattr(self, name) < 0.0:
-                raise ValueError(f"LockPrior.{name}: expected {_PRIOR_KEYS[name]}, got {getattr(self, name)!r}")
-
-    def to_dict(self) -> dict[str, float]:
-        """JSON-ready mapping of every field."""
-        return {f.name: float(getattr(self, f.name)) for f in fields(self)}
-
-    @classmethod
-    def from_dict(cls, data: Mapping[str, Any]) -> LockPrior:
-        """Check and build from :meth:`to_dict`'s mapping.
-
-        Raises
-        ------
-        ValueError
-            Not a mapping, a missing or unknown key, or a value out of its range; the message
-            names the key, what was expected and what was received.
-        """
-        if not isinstance(data, Mapping):
-            raise ValueError(f"LockPrior: expected a mapping of {sorted(_PRIOR_KEYS)}, got {data!r}")
-        missing = [key for key in _PRIOR_KEYS if key not in data]
-        if missing:
-            raise ValueError(f"LockPrior: missing key {missing[0]!r}: expected {_PRIOR_KEYS[missing[0]]}")
-        unknown = sorted(set(data) - set(_PRIOR_KEYS) - set(_PRIOR_OPTIONAL))
-        if unknown:
-            raise ValueError(f"LockPrior: unknown key {unknown[0]!r}: expected only "
-                             f"{sorted(_PRIOR_KEYS) + sorted(_PRIOR_OPTIONAL)}")
-        for key, value in data.items():
-            if not _is_number(value) or not math.isfinite(float(value)):
-                what = _PRIOR_KEYS.get(key) or _PRIOR_OPTIONAL[key]
-                raise ValueError(f"LockPrior: key {key!r}: expected {what} as a finite number, got {value!r}")
-        return cls(**{key: float(value) for key, value in data.items()})
-
-
-# --------------------------------------------------------------------------------------------
-# Internal models
-# --------------------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
@@ -508,7 +194,7 @@ class PhaseLockSearch:
 
     Notes
     -----
-    Implements :class:`autotune.search.Strategy`. ``ask``/``tell`` exist for the protocol's
+    Implements :class:`autotune.analysis.search.Strategy`. ``ask``/``tell`` exist for the protocol's
     sake: ``tell`` gives only an inversion, so the strategy can then only search with its
     Gaussian process; the loop should use ``propose``/``observe``.
     """
@@ -573,7 +259,7 @@ class PhaseLockSearch:
     def _check_clock(clock_s: Any) -> float | None:
         if clock_s is None:
             return None
-        if not _is_number(clock_s) or not math.isfinite(float(clock_s)):
+        if not is_number(clock_s) or not math.isfinite(float(clock_s)):
             raise ValueError(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
         return float(clock_s)
 
@@ -634,7 +320,7 @@ class PhaseLockSearch:
              clock_s: float | None = None) -> None:
         """Record an inversion alone (no phase signal): the point counts as out of the capture range."""
         for label, number in (("value", value), ("stderr", stderr)):
-            if not _is_number(number) or not math.isfinite(float(number)):
+            if not is_number(number) or not math.isfinite(float(number)):
                 raise ValueError(f"{label}: expected a finite number, got {number!r}")
         result = PointResult(
             inversion=float(value), inversion_stderr=float(stderr), phase_shift=0.0,
@@ -651,7 +337,7 @@ class PhaseLockSearch:
 
     def _phase_error(self, result: PointResult, centre: float | None = None) -> float:
         centre = self._phase_star_prior[0] if centre is None else centre
-        return float(_wrap(result.phase_shift - centre))
+        return float(wrap_phase(result.phase_shift - centre))
 
     def _range_note(self, result: PointResult) -> str | None:
         """None when the point's phase signal is usable, else why not."""
@@ -671,10 +357,10 @@ class PhaseLockSearch:
         sd = math.hypot(self.prior.slope_stderr_rad_per_hz, self.settings.prior_slope_tolerance_fraction * s)
         return s, sd
 
-    def _lock_fit(self, velocity: float) -> _LockFit | None:
+    def _lock_fit(self, velocity: float) -> LockFit | None:
         return self._cached(("lock", round(velocity, 9)), lambda: self._compute_lock_fit(velocity))
 
-    def _compute_lock_fit(self, velocity: float) -> _LockFit | None:
+    def _compute_lock_fit(self, velocity: float) -> LockFit | None:
         points = self._in_range()
         if not points:
             return None
@@ -700,7 +386,7 @@ class PhaseLockSearch:
         design = np.stack([np.ones(len(points)), detunings - centre], axis=1)
         mean0 = np.array([phase_star, slope_prior[0] if slope_prior else 0.0])
         precision0 = np.diag([1.0 / (_TWO_PI**2), 1.0 / (slope_prior[1] if slope_prior else wide_slope) ** 2])
-        theta, _ = _solve_gaussian(design, phases, variances, mean0, precision0)
+        theta, _ = solve_gaussian(design, phases, variances, mean0, precision0)
         slope_scale = abs(float(theta[1]))
 
         cubic_sd = s_set.phase_cubic_prior_fraction * slope_scale * h
@@ -720,11 +406,11 @@ class PhaseLockSearch:
                 drift_sd = slope_scale * width
                 prior_sd = np.array([_TWO_PI, slope_prior[1] if slope_prior else wide_slope,
                                      max(cubic_sd, 1e-12), max(drift_sd, 1e-15)])
-                evidence = _log_evidence(design, phases, variances, mean, prior_sd)
+                evidence = log_evidence(design, phases, variances, mean, prior_sd)
                 if best is None or evidence > best[0] + 1e-9:
                     best = (evidence, prior_sd)
-            theta, cov = _solve_gaussian(design, phases, variances, mean, np.diag(1.0 / best[1] ** 2))
-            fit = _LockFit(velocity, centre, h, t_ref, theta, cov, len(points))
+            theta, cov = solve_gaussian(design, phases, variances, mean, np.diag(1.0 / best[1] ** 2))
+            fit = LockFit(velocity, centre, h, t_ref, theta, cov, len(points))
             if not fit.slope_known():
                 break
             star, _, _ = fit.solve(phase_star, 0.0, t_ref, 4.0 * h)
@@ -780,7 +466,7 @@ class PhaseLockSearch:
         star = self._phase_star()[0]
         return [o for o in self._in_range() if abs(self._unwrapped(o) - star) <= window]
 
-    def _absorption_fit(self) -> _AbsorptionFit | None:
+    def _absorption_fit(self) -> AbsorptionFit | None:
         return self._cached("absorption", self._compute_absorption_fit)
 
     def _absorption_prior(self, velocity_ref: float) -> tuple[np.ndarray, np.ndarray] | None:
@@ -799,7 +485,7 @@ class PhaseLockSearch:
         sd = np.array([math.hypot(p.absorption_min_stderr, a2 * x_sd**2), 2.0 * a2 * x_sd, max(a2_sd, 1e-6)])
         return mean, np.diag(1.0 / sd**2)
 
-    def _compute_absorption_fit(self) -> _AbsorptionFit | None:
+    def _compute_absorption_fit(self) -> AbsorptionFit | None:
         anchor = self._anchor()
         if anchor is None:
             return None
@@ -812,7 +498,7 @@ class PhaseLockSearch:
                 groups.append(x)
         prior = self._absorption_prior(velocity_ref)
         if prior is None and len(groups) < 3:
-            return _AbsorptionFit(velocity_ref, np.zeros(3), np.eye(3), tuple(groups), False) if points else None
+            return AbsorptionFit(velocity_ref, np.zeros(3), np.eye(3), tuple(groups), False) if points else None
         values = np.array([o.result.absorption for o in points])
         variances = np.maximum(np.array([o.result.absorption_stderr for o in points]) ** 2, 1e-8)
         design = np.stack([np.ones(len(points)), xs, xs**2], axis=1) if points else np.zeros((0, 3))
@@ -820,10 +506,10 @@ class PhaseLockSearch:
             mean, precision = np.zeros(3), np.diag([1e-6, 1e-6, 1e-6])
         else:
             mean, precision = prior
-        coef, cov = _solve_gaussian(design, values, variances, mean, precision)
-        return _AbsorptionFit(velocity_ref, coef, cov, tuple(groups), prior is not None)
+        coef, cov = solve_gaussian(design, values, variances, mean, precision)
+        return AbsorptionFit(velocity_ref, coef, cov, tuple(groups), prior is not None)
 
-    def _absorption_ready(self, fit: _AbsorptionFit | None) -> bool:
+    def _absorption_ready(self, fit: AbsorptionFit | None) -> bool:
         return fit is not None and (fit.from_prior or len(fit.x_groups) >= 3)
 
     def _velocity_curve(self) -> InversionCurve | None:
@@ -856,7 +542,7 @@ class PhaseLockSearch:
             fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
 
     @staticmethod
-    def _vertex_velocity_stderr(fit: _AbsorptionFit) -> float:
+    def _vertex_velocity_stderr(fit: AbsorptionFit) -> float:
         """Standard error of the velocity of least absorption (delta method; inf without a vertex)."""
         vertex = fit.vertex()
         if vertex is None:
@@ -874,7 +560,7 @@ class PhaseLockSearch:
         weights = 1.0 / np.maximum(np.array([o.result.inversion_stderr for o in points]) ** 2, 1e-8)
         return max(float((values * weights).sum() / weights.sum()), _MIN_INVERSION_SCALE)
 
-    def _box_x(self, fit: _AbsorptionFit) -> tuple[float, float]:
+    def _box_x(self, fit: AbsorptionFit) -> tuple[float, float]:
         low, high = self._velocity_box
         return fit.x_of(high), fit.x_of(low)
 
@@ -1038,9 +724,9 @@ class PhaseLockSearch:
         mean, var = fit.phase(point["detuning"], clock)
         return mean - star, math.sqrt(var + star_sd**2)
 
-    def _velocity_draws(self, fit: _AbsorptionFit, cov: np.ndarray, velocity: float,
+    def _velocity_draws(self, fit: AbsorptionFit, cov: np.ndarray, velocity: float,
                         normals: np.ndarray, scale: float) -> np.ndarray:
-        draws = fit.coef[None, :] + normals @ _cholesky(cov).T
+        draws = fit.coef[None, :] + normals @ cholesky_jittered(cov).T
         x_rec = fit.x_of(velocity)
         x_lo, x_hi = self._box_x(fit)
         a0, a1, a2 = draws[:, 0], draws[:, 1], draws[:, 2]
@@ -1233,8 +919,35 @@ class PhaseLockSearch:
         every reported bound count it)."""
         return self._shortfall_at(rec, clock, inherit=False).upper
 
+    def best_inversion(self) -> tuple[float, float] | None:
+        """The highest inversion the velocity curve expects within its trusted range: (value at
+        the posterior mean, upper bound at the two-sided level of ``confidence`` from the seeded
+        posterior draws);
+        None before the curve exists or while its optimum is not bracketed (it may lie beyond)."""
+        return self._cached("best_inversion", self._compute_best_inversion)
+
+    def _compute_best_inversion(self) -> tuple[float, float] | None:
+        curve = self._velocity_curve()
+        plan = self._velocity_plan()
+        if curve is None or not plan["concluded"] or plan.get("outward", False):
+            return None
+        x_lo, x_hi = self._curve_range(curve)
+
+        def best(b: np.ndarray) -> np.ndarray:
+            b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                vertex = np.where(b2 < 0.0, -b1 / (2.0 * b2), x_lo)
+            inside = np.clip(np.nan_to_num(vertex, nan=x_lo), x_lo, x_hi)
+            return np.maximum.reduce([b0 + b1 * x + b2 * x**2 for x in (x_lo, x_hi)]
+                                     + [b0 + b1 * inside + b2 * inside**2])
+
+        draws = best(curve.draws(self._draw_normals(3, 7)))
+        # Two-sided level: the check is made after every point, as the verification's first look.
+        level = 1.0 - 0.5 * (1.0 - self.settings.confidence)
+        return float(best(curve.coef[None, :])[0]), float(np.quantile(draws, level))
+
     def hopeless(self, *, clock_s: float | None = None, points_left: int | None = None,
-                 acceptance_bar: float | None = None) -> str | None:
+                 acceptance_bar: float | None = None, min_inversion: float | None = None) -> str | None:
         """Why more points in this box cannot meet the target, or None.
 
         Said when the velocity optimum lies beyond the box (the data point outward at its
@@ -1250,6 +963,16 @@ class PhaseLockSearch:
         by 0.07 % per point fell to 1.1 % in four), and the points are the stage's only hope.
         """
         clock = self._now(clock_s)
+        no_lock = self._lock_not_established()
+        if no_lock is not None:
+            return no_lock
+        best = self.best_inversion() if min_inversion is not None else None
+        if best is not None and best[1] < min_inversion:
+            # No point in this box can reach the acceptance's inversion: the rig, not the search.
+            level = 1.0 - 0.5 * (1.0 - self.settings.confidence)
+            return (f"the highest inversion in the box is {best[0]:.3f} (at most {best[1]:.3f} at "
+                    f"{level:.1%}), below [acceptance] min_inversion {min_inversion:.3f} "
+                    "(check the one-photon source, the detectors and [acceptance] min_inversion)")
         plan = self._velocity_plan()
         if plan["concluded"] and plan.get("outward", False):
             return f"velocity optimum not bracketed inside the box: {plan['note']}"
@@ -1276,6 +999,40 @@ class PhaseLockSearch:
         return (f"the target {target:.1%} is out of reach within the point budget: the bound {now:.2%} "
                 f"(within the acceptance bar {bar:.1%}) would need {needed}, more than the "
                 f"{points_left} left")
+
+    def _lock_not_established(self) -> str | None:
+        """Why the detuning lock is not established after twice the fallback's first design,
+        or None (established, a retune with its stored slope, or fewer points so far).
+
+        A one-photon source prepared with a probability near 0.5 mixes the inverted one-photon
+        fringe with the empty one: near the best the one-photon contrast falls to about
+        ``2 p1 - 1`` of the empty one, below ``min_contrast_ratio`` wherever the inversion is
+        high, and no point there steers the lock. More points of the fallback's search do not
+        change that; the stage should stop and say what to check.
+        """
+        s = self.settings
+        if self.prior is not None or len(self._obs) < 2 * s.fallback_initial_points:
+            return None
+        anchor = self._anchor()
+        if anchor is not None:
+            fit = self._lock_fit(anchor.velocity)
+            if fit is not None and fit.slope_known():
+                return None
+        notes = [self._range_note(o.result) or "" for o in self._obs]
+        low = sum(n.startswith("one-photon/empty contrast") for n in notes)
+        wrapped = sum(n.startswith("phase error") for n in notes)
+        unidentified = sum(n == "fringes not identified" for n in notes)
+        if low >= max(wrapped, unidentified):
+            cause = (f"the one-photon contrast was below {s.min_contrast_ratio:.2f} of the empty one at "
+                     f"{low} of {len(notes)} points (check the one-photon source's preparation probability "
+                     "and thermal photons, then [nominal] coupling_hz and waist_m)")
+        elif wrapped >= unidentified:
+            cause = (f"the phase error was beyond the capture range at {wrapped} of {len(notes)} points "
+                     "(check the detuning box, [nominal] coupling_hz and waist_m, their units)")
+        else:
+            cause = (f"no fringe was identified at {unidentified} of {len(notes)} points (check the atom "
+                     "rate, the detectors and the Ramsey phases)")
+        return f"the detuning lock is not established after {len(notes)} points: {cause}"
 
     def _measured_at(self, velocity: float) -> bool:
         """The last usable point lies at ``velocity`` (within ``_AT_VELOCITY``): fresh lock data there."""
@@ -1449,6 +1206,15 @@ class PhaseLockSearch:
                         shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
         return expected_after(self, rec, velocity, detuning, shots_per_phase, clock, inherit)
 
+    def expected_after(self, point: Mapping[str, float], shots_per_phase: int, *,
+                       clock_s: float | None = None) -> Shortfall:
+        """The shortfall at ``point`` expected after ``shots_per_phase`` more shots there (a
+        linear-Gaussian update: the covariance is known before the measurement, the means are
+        kept), every term included."""
+        clock = self._now(clock_s)
+        return expected_after(self, point, float(point["velocity"]), float(point["detuning"]),
+                              int(shots_per_phase), clock, True)
+
     def _best_proposal(self, velocity: float, clock: float | None) -> Proposal:
         return best_proposal(self, velocity, clock)
 
@@ -1512,7 +1278,7 @@ class PhaseLockSearch:
     def verdict(self, *, clock_s: float | None = None) -> Verdict:
         """Judge the last good set-points from the retune's check (the first ``"check"`` result).
 
-        See :func:`autotune.retune_verdict.retune_verdict`.
+        See :func:`autotune.analysis.retune_verdict.retune_verdict`.
         """
         return retune_verdict(self, clock_s=clock_s)
 

@@ -1,13 +1,13 @@
 """Holding the 2π condition through the night: the lock, the sequential test, the plan (pure).
 
-``autotune track`` (:mod:`autotune.track`) keeps the rig on the condition between guided
-retunes (:func:`autotune.loop.run_guided_stage`). Everything it decides comes from this
+``autotune track`` (:mod:`autotune.run.track`) keeps the rig on the condition between guided
+retunes (:func:`autotune.run.loop.run_guided_stage`). Everything it decides comes from this
 module, which does no I/O:
 
 - **The drift lock** (:class:`DriftLock`). A short check at the set-points in force measures
   the photon phase shift; with the slope, cubic and phase at the peak stored by the last
-  calibration or retune (:class:`autotune.guided.LockPrior`) its phase error gives the
-  set-point's offset from the peak, ``D`` (:func:`autotune.guided.detuning_offset`), so the
+  calibration or retune (:class:`autotune.analysis.guided.LockPrior`) its phase error gives the
+  set-point's offset from the peak, ``D`` (:func:`autotune.analysis.guided.detuning_offset`), so the
   check measures the peak's detuning set-point ``y = d - D`` with variance ``R``. A two-state
   Kalman filter (R. E. Kalman, J. Basic Eng. 82, 35 (1960)) follows that peak and its drift
   rate: the peak ``p`` performs a random walk on top of a rate ``r`` that itself wanders
@@ -25,7 +25,7 @@ module, which does no I/O:
   of ``inversion_drop`` of its reference (the phase lock is blind to a lost velocity or fringe
   contrast). The reference ``k`` is half the design shift, the shift in detuning that would take
   the inversion below the floor (``1 - cos(eps / 2)`` of docs/physics.md section 5b's phase error
-  ``eps``, see :mod:`autotune.guided`); ``h`` is set by the mean time between false alarms the
+  ``eps``, see :mod:`autotune.analysis.guided`); ``h`` is set by the mean time between false alarms the
   user asks for, through Siegmund's approximation of the average run length (:func:`cusum_arl`).
   The checks' variances are the pooled ones of the measurements so far (:class:`NoiseModel`): a
   fringe's own delta-method error is itself noisy at a few atoms per phase. The inversion's
@@ -452,7 +452,7 @@ def floor_shift_hz(floor: float, slope_rad_per_hz: float) -> float:
     """The detuning error whose phase error alone takes the inversion to ``floor`` of the best (Hz).
 
     With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (docs/physics.md section 3, see
-    :mod:`autotune.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
+    :mod:`autotune.analysis.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
     """
     return 2.0 * math.acos(float(floor)) / abs(float(slope_rad_per_hz))
 
@@ -1703,7 +1703,7 @@ def noise_row(estimate: Mapping[str, Any], shots: int) -> list[float]:
 
     ``(phase_sd, inversion_sd, shots, detected_empty, detected_one_photon, contrast_empty,
     contrast_one_photon, chi2, dof)`` from an estimate's mapping
-    (:meth:`autotune.fringe.InversionEstimate.to_dict`) and the measurement's shots.
+    (:meth:`autotune.analysis.fringe.InversionEstimate.to_dict`) and the measurement's shots.
     """
     return [float(estimate["phase_shift_stderr"]), float(estimate["inversion_stderr"]),
             int(shots), int(estimate.get("detected_empty", 0)),

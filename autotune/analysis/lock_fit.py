@@ -3,7 +3,7 @@
 The phase shift is a signed, nearly linear function of the detuning near the peak; a weighted
 fit ``phi = alpha + s d + c (d / h)^3 + beta (t - t_ref)`` with Gaussian priors gives the
 detuning where the phase equals the phase at the peak, with its uncertainty (see
-:mod:`autotune.guided` for the physics and the priors).
+:mod:`autotune.analysis.guided` for the physics and the priors).
 """
 
 from __future__ import annotations
@@ -17,16 +17,17 @@ import numpy as np
 from autotune.analysis.search import PointResult
 
 if TYPE_CHECKING:
-    from autotune.analysis.guided import LockSettings
+    from autotune.analysis.lock_settings import LockSettings
 
-__all__ = ["phase_signal_note", "detuning_offset"]
+__all__ = ["phase_signal_note", "detuning_offset", "LockFit", "log_evidence", "solve_gaussian",
+           "wrap_phase"]
 
 _TWO_PI = 2.0 * math.pi
 # Newton steps when the lock's cubic curve is solved for the phase at the peak.
 _NEWTON_STEPS = 8
 
 
-def _wrap(angle: float | np.ndarray) -> Any:
+def wrap_phase(angle: float | np.ndarray) -> Any:
     """Angle wrapped to [-pi, pi)."""
     return np.mod(np.asarray(angle, dtype=float) + math.pi, _TWO_PI) - math.pi
 
@@ -45,7 +46,7 @@ def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak
             result.contrast_one_photon < settings.min_contrast_ratio * result.contrast_empty:
         ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
         return f"one-photon/empty contrast {ratio:.2f} below {settings.min_contrast_ratio:.2f}"
-    error = float(_wrap(result.phase_shift - phase_at_peak_rad))
+    error = float(wrap_phase(result.phase_shift - phase_at_peak_rad))
     if abs(error) > settings.capture_phase_error_rad:
         return (f"phase error {error / math.pi:+.2f} pi beyond the capture range "
                 f"+-{settings.capture_phase_error_rad / math.pi:.2f} pi")
@@ -83,7 +84,7 @@ def detuning_offset(error_rad: float, error_stderr_rad: float, slope_rad_per_hz:
 
 
 @dataclass(frozen=True)
-class _LockFit:
+class LockFit:
     """Posterior of the phase curve ``alpha + s d + c (d/h)^3 + beta (t - t_ref)`` at one velocity."""
 
     velocity: float
@@ -141,7 +142,7 @@ class _LockFit:
         return self.centre_hz + d, math.sqrt(max(variance, 0.0)), derivative
 
 
-def _solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
+def solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
                     prior_mean: np.ndarray, prior_precision: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Posterior mean and covariance of a linear-Gaussian model with a Gaussian prior."""
     weights = 1.0 / variances
@@ -152,7 +153,7 @@ def _solve_gaussian(design: np.ndarray, values: np.ndarray, variances: np.ndarra
     return cov @ rhs, cov
 
 
-def _log_evidence(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
+def log_evidence(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
                   prior_mean: np.ndarray, prior_sd: np.ndarray) -> float:
     """Log marginal likelihood of a linear-Gaussian model, ``N(y | X m, X S X^T + D)`` (no constant)."""
     covariance = np.diag(variances) + (design * prior_sd**2) @ design.T

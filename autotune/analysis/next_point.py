@@ -1,14 +1,14 @@
 """The phase lock's choice of the next point (pure, no I/O).
 
 Once the detuning lock and the velocity model are established, each next point of
-:class:`autotune.guided.PhaseLockSearch` is the candidate (a lock point at the recommendation,
+:class:`autotune.analysis.guided.PhaseLockSearch` is the candidate (a lock point at the recommendation,
 or a velocity point one or two steps either side) whose measurement is expected to lower the
 predicted shortfall's upper bound most per shot. The posterior covariance after a
 linear-Gaussian update does not depend on the value to be measured, so the bound a
-measurement would leave is known before it is made (see :mod:`autotune.guided`'s notes).
+measurement would leave is known before it is made (see :mod:`autotune.analysis.guided`'s notes).
 
 These functions read the search's posterior through its private helpers: they are the search's
-own concern, kept apart from its models; :mod:`autotune.guided` imports this module, never the
+own concern, kept apart from its models; :mod:`autotune.analysis.guided` imports this module, never the
 reverse.
 """
 

@@ -3,8 +3,8 @@
 The retune's check measures at the last good set-points; its phase error with the stored
 slope (and cubic) says how far the peak has moved, its excess absorption over the stored one
 how far the velocity has, and the calibration's own velocity term (stored with the prior)
-stays in the bound because a retune keeps that velocity. See :mod:`autotune.guided`'s notes;
-:mod:`autotune.guided` imports this module, never the reverse.
+stays in the bound because a retune keeps that velocity. See :mod:`autotune.analysis.guided`'s notes;
+:mod:`autotune.analysis.guided` imports this module, never the reverse.
 """
 
 from __future__ import annotations

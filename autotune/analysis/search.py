@@ -12,7 +12,7 @@ finite design is finished and ``converged()`` is the strategy's own stopping tes
 A strategy that learns from more than the inversion speaks through ``propose()`` (a
 :class:`Proposal`: the point, its purpose, its shots and the reason) and ``observe(point,
 result, purpose=...)`` (a :class:`PointResult`: everything the fringe pair measured). Every
-strategy has both: the ones here wrap ``ask``/``tell``; :class:`autotune.guided.PhaseLockSearch`
+strategy has both: the ones here wrap ``ask``/``tell``; :class:`autotune.analysis.guided.PhaseLockSearch`
 (``"phase_lock"``) is built on them.
 
 Resuming without saved state
@@ -321,7 +321,7 @@ class PointResult:
 
     @classmethod
     def from_estimate(cls, estimate: Any, *, clock_s: float | None, shots: int) -> PointResult:
-        """Read an :class:`autotune.fringe.InversionEstimate` (or any object with its attributes).
+        """Read an :class:`autotune.analysis.fringe.InversionEstimate` (or any object with its attributes).
 
         The absorption's standard error is the half width of its Wilson interval over ``z``,
         ``(absorption_high - absorption_low) / (2 z)`` with ``z`` the two-sided normal quantile

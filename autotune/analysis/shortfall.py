@@ -30,7 +30,7 @@ class Shortfall:
     velocity, velocity_upper : float
         The velocity term at the posterior mean and its upper bound (draws): for a
         calibration the relative inversion lost against the best of the inversion curve
-        along velocity (:mod:`autotune.velocity_model`) within the velocities it is trusted
+        along velocity (:mod:`autotune.analysis.velocity_model`) within the velocities it is trusted
         over; for a retune the excess absorption over the stored one divided by the inversion.
     phase_error_rad, phase_error_stderr_rad : float
         Posterior mean and standard deviation of the phase error at the setting (rad).

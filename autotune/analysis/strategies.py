@@ -1,7 +1,7 @@
 """Build a search strategy by kind: the one place that knows every strategy.
 
-It lives apart from :mod:`autotune.search` (the hand strategies and the Gaussian process) and
-:mod:`autotune.guided` (the phase lock, which builds on :mod:`autotune.search`), so that
+It lives apart from :mod:`autotune.analysis.search` (the hand strategies and the Gaussian process) and
+:mod:`autotune.analysis.guided` (the phase lock, which builds on :mod:`autotune.analysis.search`), so that
 neither imports the other in a circle.
 """
 
@@ -36,7 +36,7 @@ def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settin
     **settings
         Keyword arguments of the strategy's constructor (``points_per_dimension``,
         ``rounds``, ``n_points``, ``initial_points``, ...; for ``"phase_lock"``: ``start``,
-        ``settings``, ``prior``, see :class:`autotune.guided.PhaseLockSearch`).
+        ``settings``, ``prior``, see :class:`autotune.analysis.guided.PhaseLockSearch`).
     """
     if kind == "phase_lock":
         try:

@@ -11,7 +11,7 @@ the optimum, in ``x = v_ref / v - 1``::
     I(x) = r(x) - P_e(x),      r(x) = r0 + r1 x + r2 x^2
 
 ``P_e(x)`` is the absorption's weighted quadratic fit (an excess absorption ``Delta P_e`` costs
-``Delta P_e`` of the inversion, :mod:`autotune.guided`'s notes), and ``r`` is the part of the
+``Delta P_e`` of the inversion, :mod:`autotune.analysis.guided`'s notes), and ``r`` is the part of the
 inversion that the absorption does not carry: fitted to the measured ``I + P_e`` of every
 point, with a Gaussian prior on its slope and curvature from the physics, ``(r1, r2) =
 (S / c0) (c1, c2)`` where ``c0 + c1 x + c2 x^2`` is the fit of the empty-fringe contrast that
@@ -34,7 +34,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_WIDENING"]
+__all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_WIDENING",
+           "AbsorptionFit", "cholesky_jittered"]
 
 #: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
 #: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
@@ -119,10 +120,10 @@ class InversionCurve(_QuadraticInX):
         """Posterior draws of ``(b0, b1, b2)`` from standard normals of shape ``(n, 3)``."""
         cov = (self.residual_cov if residual_cov is None else residual_cov) + \
             (self.absorption_cov if absorption_cov is None else absorption_cov)
-        return self.coef[None, :] + normals @ _cholesky(cov).T
+        return self.coef[None, :] + normals @ cholesky_jittered(cov).T
 
 
-def _cholesky(cov: np.ndarray) -> np.ndarray:
+def cholesky_jittered(cov: np.ndarray) -> np.ndarray:
     cov = 0.5 * (cov + cov.T)
     scale = max(float(np.max(np.abs(np.diag(cov)))), 1e-300)
     for jitter in (0.0, 1e-12, 1e-9, 1e-6):
@@ -220,7 +221,7 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
 
 
 @dataclass(frozen=True)
-class _AbsorptionFit(_QuadraticInX):
+class AbsorptionFit(_QuadraticInX):
     """Weighted quadratic fit of P_e in ``x = v_ref / v - 1``."""
 
     velocity_ref: float

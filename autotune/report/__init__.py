@@ -72,7 +72,7 @@ from autotune.report.flags import Flag, fit_p_value, run_flags
 from autotune.report.model import (FIGURE_NAME, HTML_NAME, SCAN_LABELS, SEARCH_LABELS,
                                    Measurement, Run, find_runs, load_run)
 from autotune.report.page import render_html, write_report
-from autotune.report.text import _header, format_text
+from autotune.report.text import format_text
 
 __all__ = [
     "FIGURE_NAME",

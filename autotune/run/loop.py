@@ -31,6 +31,7 @@ from typing import Any
 
 import numpy as np
 import structlog
+from scipy import stats
 
 from autotune.config import RunConfig
 from autotune.errors import (
@@ -56,6 +57,8 @@ from autotune.analysis.shortfall import finite_or_none
 from autotune.analysis.strategies import make_strategy
 
 __all__ = [
+    "Measurement",
+    "replay_records",
     "Limit",
     "Budget",
     "StageOutcome",
@@ -303,7 +306,7 @@ class _Tally:
 
 
 @dataclass
-class _Measurement:
+class Measurement:
     """Acquisitions of one measurement, keyed by (field, phase index)."""
 
     label: str
@@ -382,7 +385,7 @@ def call_with_recovery(what: str, action: Callable[[str], Any], recovery: Any, *
     ``recovery.retry_wait_s`` apart); an interlock waits (bounded) and retries. Every retry
     resends the same ``msg_id``: a rig that already executed the request answers from its replay
     cache instead of running it again, and one that answered ``internal`` (it failed, the
-    request did not complete) runs it again (see :mod:`autotune.protocol`).
+    request did not complete) runs it again (see :mod:`autotune.wire.protocol`).
 
     Parameters
     ----------
@@ -469,7 +472,7 @@ class Session:
     Parameters
     ----------
     rig : Rig
-        The apparatus (a :class:`autotune.bus.BusClient` in every real run).
+        The apparatus (a :class:`autotune.wire.bus.BusClient` in every real run).
     config : RunConfig
         The checked configuration.
     journal : Journal
@@ -559,7 +562,7 @@ class Session:
         self._plan = None
         self.log = self.log.try_unbind("stage")
 
-    def _tell_progress(self, event: str, m: _Measurement | None) -> None:
+    def _tell_progress(self, event: str, m: Measurement | None) -> None:
         plan = self._plan
         if self.progress is None or plan is None:
             return
@@ -585,7 +588,7 @@ class Session:
             self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
             self.progress = None
 
-    def _remaining_shots(self, m: _Measurement | None, left_here: int) -> float:
+    def _remaining_shots(self, m: Measurement | None, left_here: int) -> float:
         """Shots still to go at most: this measurement's rest, then the search budget's rest,
         a final detuning scan and one verification while the search goes on."""
         plan = self._plan
@@ -805,7 +808,7 @@ class Session:
 
     # -- measurements ---------------------------------------------------------------------
 
-    def measure(self, m: _Measurement, seed: int) -> InversionEstimate:
+    def measure(self, m: Measurement, seed: int) -> InversionEstimate:
         """Complete measurement ``m`` (only its missing acquisitions) and estimate it."""
         cfg = self.config.measurement
         for j, phase in enumerate(self.phases):
@@ -837,7 +840,7 @@ class Session:
         self._tell_progress("estimate", m)
         return estimate
 
-    def _acquire_one(self, m: _Measurement, field_state: str, j: int, phase: float) -> None:
+    def _acquire_one(self, m: Measurement, field_state: str, j: int, phase: float) -> None:
         """Take (or recover) one acquisition of ``m`` and journal it; never files a mismatch."""
         if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in m.setpoints.items()):
             self.move_to(m.setpoints, reason=f"{m.label} {m.point}")
@@ -894,7 +897,7 @@ class Session:
                        counts={"e": counts[0], "g": counts[1], "i": counts[2]})
         self._tell_progress("acquisition", m)
 
-    def fringe(self, m: _Measurement, field_state: str) -> FringeData:
+    def fringe(self, m: Measurement, field_state: str) -> FringeData:
         """The counts of one field state of ``m`` as fringe data."""
         rows = [(self.phases[j], *m.counts[(field_state, j)]) for j in range(len(self.phases))]
         arr = np.asarray(rows, dtype=float)
@@ -907,14 +910,14 @@ class _Replayed:
     """What a stage's journal records say, rebuilt for a resume."""
 
     header: dict[str, Any] = field(default_factory=dict)
-    measurements: dict[tuple[str, int], _Measurement] = field(default_factory=dict)
+    measurements: dict[tuple[str, int], Measurement] = field(default_factory=dict)
     estimates: dict[tuple[str, int], dict[str, Any]] = field(default_factory=dict)
     estimate_order: list[tuple[str, int]] = field(default_factory=list)
     proposals: dict[int, dict[str, float]] = field(default_factory=dict)
     decisions: dict[str, dict[str, Any]] = field(default_factory=dict)
 
 
-def _replay(records: Iterable[Mapping[str, Any]]) -> _Replayed:
+def replay_records(records: Iterable[Mapping[str, Any]]) -> _Replayed:
     """Rebuild measurements, estimates, proposals and decisions from journal records.
 
     Raises
@@ -931,7 +934,7 @@ def _replay(records: Iterable[Mapping[str, Any]]) -> _Replayed:
             out.header = dict(rec)
         elif kind == "measurement":
             key = (rec["label"], int(rec["point"]))
-            out.measurements[key] = _Measurement(rec["label"], int(rec["point"]),
+            out.measurements[key] = Measurement(rec["label"], int(rec["point"]),
                                                  dict(rec["setpoints"]),
                                                  int(rec["shots_per_phase"]))
         elif kind == "amend":
@@ -991,7 +994,7 @@ def _tally_from(records: Iterable[Mapping[str, Any]]) -> _Tally:
 
 def _refine_detuning(session: Session, chosen: Mapping[str, float],
                      box: Mapping[str, tuple[float, float]],
-                     measurement: Callable[..., _Measurement],
+                     measurement: Callable[..., Measurement],
                      estimate_of: Callable[[str, int], InversionEstimate | None],
                      seed_of: Callable[[int], int],
                      planned: Sequence[float] | None) -> dict[str, float]:
@@ -1084,7 +1087,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     config = session.config
     seed = config.search.seed
     stage_code = {"calibrate": 1, "retune": 2}[stage]
-    replayed = _replay(records)
+    replayed = replay_records(records)
     measurements = replayed.measurements
     session.tally = _tally_from(records)
     told = sorted((key for key in replayed.estimate_order if key[0] == "point"),
@@ -1125,10 +1128,10 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
             m.shots_per_phase = want
 
     def measurement(label: str, point: int, setpoints: Mapping[str, float],
-                    shots_per_phase: int) -> _Measurement:
+                    shots_per_phase: int) -> Measurement:
         key = (label, point)
         if key not in measurements:
-            measurements[key] = _Measurement(label, point, dict(setpoints), shots_per_phase)
+            measurements[key] = Measurement(label, point, dict(setpoints), shots_per_phase)
             session.journal.append("measurement", label=label, point=point,
                                    setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
         return measurements[key]
@@ -1285,7 +1288,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                      verification_shots_per_phase: int | None = None,
                      observer: Callable[[int, Strategy, Session], None] | None = None,
                      records: Sequence[Mapping[str, Any]] = ()) -> StageOutcome:
-    """Run (or resume) one stage with the phase lock (:class:`autotune.guided.PhaseLockSearch`).
+    """Run (or resume) one stage with the phase lock (:class:`autotune.analysis.guided.PhaseLockSearch`).
 
     Every step is one measurement of both fields, labelled by its purpose (``lock``,
     ``velocity``, ``relock``, ``search``, ``check``, ``verify``, ``correct``) and numbered in
@@ -1332,7 +1335,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     config = session.config
     seed = config.search.seed
     stage_code = {"calibrate": 1, "retune": 2}[stage]
-    replayed = _replay(records)
+    replayed = replay_records(records)
     measurements = replayed.measurements
     session.tally = _tally_from(records)
     verify_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
@@ -1370,7 +1373,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                                     config.lock.velocity_shots_per_phase)),
                           verify_shots=measurement_shots(phases, verify_shots), measured=_measured(replayed))
 
-    def result_of(rec: Mapping[str, Any], m: _Measurement | None) -> PointResult:
+    def result_of(rec: Mapping[str, Any], m: Measurement | None) -> PointResult:
         estimate = InversionEstimate.from_dict(rec["estimate"])
         shots = rec.get("shots") or (measurement_shots(phases, m.shots_per_phase) if m is not None else 1)
         return PointResult.from_estimate(estimate, clock_s=rec.get("clock_s"), shots=int(shots))
@@ -1382,27 +1385,43 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     # Verifications (and corrections) since the search last stopped: a verification that
     # misses the acceptance bar sends the stage back to its search while the budget lasts.
     verifications = 0
+    # A verification is measured in two halves: the first half of one whose second half has
+    # not been measured yet (None otherwise). See _first_half_settles.
+    half: Measurement | None = None
+    first_half_shots = max(1, verify_shots // 2)
+
+    def note_final(label: str, m: Measurement, estimate: InversionEstimate) -> None:
+        nonlocal final, verifications, half
+        if label == "verify" and half is not None and half.setpoints == m.setpoints:
+            # The second half: the verification is both halves' counts, estimated as one.
+            final = (dict(m.setpoints), _pooled_estimate(session, half, m, child_seed(
+                seed, stage_code, 6, m.point)))
+            half = None
+            return
+        final = (dict(m.setpoints), estimate)
+        verifications += 1
+        half = m if label == "verify" and m.shots_per_phase < verify_shots else None
+
     for key in order:
         rec = replayed.estimates[key]
         lock.observe(rec["setpoints"], result_of(rec, measurements.get(key)), purpose=key[0])
         steps = key[1] + 1
         estimate = InversionEstimate.from_dict(rec["estimate"])
         if key[0] in ("verify", "correct"):
-            final = ({k: float(v) for k, v in rec["setpoints"].items()}, estimate)
-            verifications += 1
+            note_final(key[0], measurements[key], estimate)
         elif key[0] == "check":
             check = estimate
         else:
             searched += 1
-            final, verifications = None, 0
+            final, verifications, half = None, 0, None
 
     def run_step(label: str, setpoints: Mapping[str, float], shots_per_phase: int
                  ) -> InversionEstimate:
-        nonlocal steps, searched, final, check, verifications
+        nonlocal steps, searched, final, check, verifications, half
         key = (label, steps)
         m = measurements.get(key)
         if m is None:
-            m = _Measurement(label, steps, dict(setpoints), shots_per_phase)
+            m = Measurement(label, steps, dict(setpoints), shots_per_phase)
             measurements[key] = m
             session.journal.append("measurement", label=label, point=steps,
                                    setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
@@ -1412,13 +1431,12 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         lock.observe(m.setpoints, result, purpose=label)
         steps += 1
         if label in ("verify", "correct"):
-            final = (dict(m.setpoints), estimate)
-            verifications += 1
+            note_final(label, m, estimate)
         elif label == "check":
             check = estimate
         else:
             searched += 1
-            final, verifications = None, 0
+            final, verifications, half = None, 0, None
             if observer is not None:
                 observer(searched, lock, session)
         return estimate
@@ -1460,6 +1478,25 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         if final is not None:
             correction = lock.correction(clock_s=now) \
                 if verifications <= config.lock.max_corrections else None
+            if correction is None and half is not None:
+                settled = _first_half_settles(lock, config, final)
+                second = verify_shots - half.shots_per_phase
+                if settled is None:
+                    expected = lock.expected_after(final[0], second, clock_s=None)
+                    bar = _acceptance_bar(config)
+                    if bar >= 1.0 or expected.upper <= bar:
+                        session.decide("verify_second_half", "the first half of the verification "
+                                       "does not settle the acceptance: its second half "
+                                       f"({2 * phases * second:,} shots) at the same set-points "
+                                       f"(expected bound after it {expected.upper:.2%})",
+                                       setpoints=final[0])
+                        run_step("verify", final[0], second)
+                        continue
+                    settled = (f"the verification's first half leaves {_bound_text(expected)} "
+                               f"expected after its second half, above the bar {bar:.1%}: no "
+                               "second half")
+                session.decide("verify_first_half_settles", settled, setpoints=final[0])
+                half = None
             if correction is None:
                 again = _search_again(lock, config, budget, session, final, searched, phases)
                 if again is None:
@@ -1476,7 +1513,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             shortfall = lock.shortfall(clock_s=now)
             bound = _bound_text(shortfall)
             hopeless = lock.hopeless(clock_s=now, points_left=budget.max_points - searched,
-                                     acceptance_bar=_acceptance_bar(config)) if searched else None
+                                     acceptance_bar=_acceptance_bar(config),
+                                     min_inversion=config.min_inversion) if searched else None
             if searched and lock.converged(clock_s=now):
                 # The one format of a shortfall, as the lock's verdicts print it.
                 stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"
@@ -1510,7 +1548,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
                        "shift is at its peak value, velocity of the highest inversion",
                        setpoints=chosen, predicted=finite_or_none(recommendation.value))
-        run_step("verify", chosen, verify_shots)
+        run_step("verify", chosen, first_half_shots)
     assert final is not None
     chosen, estimate = final
     if any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in chosen.items()):
@@ -1543,6 +1581,62 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                            session.tally.rig_time_s, accepted, check,
                            predicted_shortfall=shortfall_numbers(final_short), reason=reason)
     return dataclasses.replace(outcome, lock_prior=None if learned is None else learned.to_dict())
+
+
+def _pooled_estimate(session: Session, first: Measurement, second: Measurement,
+                     seed: int) -> InversionEstimate:
+    """One estimate from two measurements at the same set-points (their counts summed)."""
+    fringes = []
+    for field_state in FIELDS:
+        a, b = session.fringe(first, field_state), session.fringe(second, field_state)
+        fringes.append(FringeData.from_counts(a.ramsey_phase, a.e + b.e, a.g + b.g, a.i + b.i))
+    cfg = session.config.measurement
+    return estimate_inversion(*fringes, confidence=cfg.confidence, seed=seed,
+                              resamples=cfg.resamples)
+
+
+def _first_half_settles(lock: PhaseLockSearch, config: RunConfig,
+                        final: tuple[dict[str, float], InversionEstimate]) -> str | None:
+    """Why the verification's first half already settles the stage, or None.
+
+    The verification is measured in two halves; the second is skipped when the first, with
+    every result told, settles the verdict either way:
+
+    - accepted: no acceptance problem (the bound within the bar, the lock, the velocity model,
+      the box) and the first half's own inversion clears ``[acceptance] min_inversion`` by
+      ``z`` standard errors (``z`` at the two-sided level of the lock's confidence: one of two
+      looks at the same point, Bonferroni);
+    - not accepted whatever the second half says: a problem that more shots at this point
+      cannot mend (no lock, no velocity model, an optimum beyond the box), or an inversion
+      ``z`` standard errors below ``min_inversion``.
+
+    Only the fresh shots at the chosen set-points count for the inversion: the earlier points
+    near it chose it (the recommendation is the maximum of a curve fitted to them), so their
+    inversions are biased upward there. The bound is the posterior of every result, which the
+    order and the choice of the points do not bias under the model (each choice depends only
+    on data already seen).
+    """
+    chosen, estimate = final
+    z = float(stats.norm.ppf(1.0 - 0.5 * (1.0 - lock.settings.confidence)))
+    low = estimate.inversion - z * estimate.inversion_stderr
+    high = estimate.inversion + z * estimate.inversion_stderr
+    head = "the verification's first half settles it"
+    bar = _acceptance_bar(config)
+    # A bar of 100 % vouches for nothing: the stage then checks the verified inversion only.
+    structural = lock.acceptance_problems(chosen, clock_s=None, max_shortfall=math.inf) \
+        if bar < 1.0 else []
+    if structural:
+        return f"{head}: not accepted whatever its second half says ({structural[0][0]})"
+    if high < config.min_inversion:
+        return (f"{head}: not accepted whatever its second half says (inversion "
+                f"{estimate.inversion:.3f}, plus {z:.2f} standard errors {high:.3f}, below "
+                f"[acceptance] min_inversion {config.min_inversion:.3f})")
+    bound = lock.shortfall(clock_s=None, point=chosen)
+    if (bar < 1.0 and not bound.upper <= bar) or low < config.min_inversion:
+        return None
+    return (f"{head}: inversion {estimate.inversion:.3f} (minus {z:.2f} standard errors "
+            f"{low:.3f}, at least [acceptance] min_inversion {config.min_inversion:.3f}); "
+            f"{_bound_text(bound)} within {bar:.1%}")
 
 
 def _acceptance_bar(config: RunConfig) -> float:

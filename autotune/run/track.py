@@ -1,7 +1,7 @@
 """``autotune track``: hold the 2π condition through the night, in one run folder.
 
-The imperative shell around :mod:`autotune.hold` (the lock, the sequential test and the plan of
-the checks, all pure) and :func:`autotune.loop.run_guided_stage` (the guided retune and
+The imperative shell around :mod:`autotune.analysis.hold` (the lock, the sequential test and the plan of
+the checks, all pure) and :func:`autotune.run.loop.run_guided_stage` (the guided retune and
 calibration, unchanged).
 
 A night
@@ -10,19 +10,19 @@ A night
    against the stored lock, corrected when needed), or with a calibration when the store holds
    none with a lock prior. The stage's verified set-points, its lock prior (slope, cubic, phase
    at the peak) and its verified inversion are what the night holds.
-2. It plans the checks (:func:`autotune.hold.plan_checks`, a ``plan`` decision with its
+2. It plans the checks (:func:`autotune.analysis.hold.plan_checks`, a ``plan`` decision with its
    numbers) and holds: wait (the rig clock is the reference: a simulated rig's virtual clock is
    moved on with its ``advance`` op, a real rig is waited for in wall time, interruptibly, its
    clock read with ``status``), check (one fringe pair of both fields at the set-points in force
-   and the plan's shots), assess (:func:`autotune.hold.assess_check`), correct the detuning.
+   and the plan's shots), assess (:func:`autotune.analysis.hold.assess_check`), correct the detuning.
    The plan is made again after every stage and every hour of rig time, from the noise and
    signal measured so far and the beam time holding has taken.
-   The beam budget is a ceiling (:class:`autotune.hold.BeamBudget`): a check or a stage begins
+   The beam budget is a ceiling (:class:`autotune.analysis.hold.BeamBudget`): a check or a stage begins
    only when what is left pays for it at its largest size; a recovery is sized by
-   :func:`autotune.hold.choose_recovery` (a ``budget`` decision when it had to be smaller, or a
+   :func:`autotune.analysis.hold.choose_recovery` (a ``budget`` decision when it had to be smaller, or a
    correction without a stage, or none); when no check can be paid for, the night holds its
    set-points without checks (an ``unwatched`` decision). The rig time the budget left unheld
-   is counted (:class:`autotune.hold.Unheld`) and in the result.
+   is counted (:class:`autotune.analysis.hold.Unheld`) and in the result.
 3. An alarm of the sequential test begins a recovery: the guided retune, started where the lock
    estimates the peak went; if it is not accepted, a calibration. A recovery accepted with a lock
    prior resets the lock and the test at its verified set-points, becomes the last good
@@ -57,7 +57,7 @@ state; the records after it say how far the next step went: a correction decided
 alarm decided, a stage begun or finished, a wait begun, a check measured in part. Each step is
 completed without repeating what was done: a check from its missing acquisitions only (a
 request whose reply never arrived is asked for again by its ``msg_id``), a stage through
-:func:`autotune.loop.run_guided_stage`'s own resume, a wait up to its recorded clock.
+:func:`autotune.run.loop.run_guided_stage`'s own resume, a wait up to its recorded clock.
 """
 
 from __future__ import annotations
@@ -117,8 +117,8 @@ from autotune.run.loop import (
     Budget,
     Session,
     StageOutcome,
-    _Measurement,
-    _replay,
+    Measurement,
+    replay_records,
     child_seed,
     lock_settings,
     retune_box,
@@ -220,7 +220,7 @@ def planned_stage(config: RunConfig, kind: str) -> StageSize:
 
 def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
                      repetition_rate_hz: float) -> float:
-    """Beam a recovery of ``kind`` is expected to take (:func:`autotune.hold.expected_stage_beam_s`)
+    """Beam a recovery of ``kind`` is expected to take (:func:`autotune.analysis.hold.expected_stage_beam_s`)
     from the night's recoveries so far (``spent``) and a prior (a retune: its check,
     verification and one lock step; a calibration: its least points and verification)."""
     size = planned_stage(config, kind)
@@ -240,7 +240,7 @@ def prepare_track(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = 
     ------
     ConfigErrors
         Every problem found together (exit code 2 in the CLI), see
-        :func:`autotune.runner.track_preflight`.
+        :func:`autotune.run.runner.track_preflight`.
     ConfigError
         The last good store exists but is damaged.
     JournalError
@@ -373,7 +373,7 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
 
 @dataclass
 class _AsPrepared:
-    """What :func:`autotune.runner._manifest` reads of a prepared run."""
+    """What :func:`autotune.run.runner._manifest` reads of a prepared run."""
 
     prepared: PreparedNight
 
@@ -1148,14 +1148,14 @@ class _Night:
         self._assess(point, estimate, m)
 
     def _measure(self, point: int, held: Mapping[str, float], shots_per_phase: int
-                 ) -> tuple[InversionEstimate, _Measurement]:
+                 ) -> tuple[InversionEstimate, Measurement]:
         session = self.session
         mine = [r for r in self.tail if r.get("label") == _HOLD and r.get("point") == point]
-        replayed = _replay(mine)
+        replayed = replay_records(mine)
         key = (_HOLD, point)
         m = replayed.measurements.get(key)
         if m is None:
-            m = _Measurement(_HOLD, point, dict(held), shots_per_phase)
+            m = Measurement(_HOLD, point, dict(held), shots_per_phase)
             self.ledger.append("measurement", label=_HOLD, point=point, setpoints=dict(held),
                                shots_per_phase=shots_per_phase)
         if key in replayed.estimates:
@@ -1163,7 +1163,7 @@ class _Night:
         estimate = session.measure(m, child_seed(self.config.search.seed, 7, point))
         return estimate, m
 
-    def _assess(self, point: int, estimate: InversionEstimate, m: _Measurement) -> None:
+    def _assess(self, point: int, estimate: InversionEstimate, m: Measurement) -> None:
         state = self.state
         settings = self.settings
         prior = LockPrior.from_dict(state["prior"])

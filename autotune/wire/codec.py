@@ -18,7 +18,7 @@ from pydantic import Strict
 from autotune.errors import ProtocolError, RigLeased, RigRefused
 from autotune import schema
 from autotune.wire.terms import (MAX_LEASE_TTL_S, MAX_MESSAGE_BYTES, MAX_SHOTS, PROTO_VERSION,
-                                 FIELDS, ErrorKind, Field, Op, Request,
+                                 FIELDS, ErrorKind, Op, Request,
                                  RequestRejected)
 
 __all__ = ["new_msg_id", "encode_request", "encode_result", "encode_error", "decode_request",

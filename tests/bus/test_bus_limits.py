@@ -14,7 +14,7 @@ import zmq
 
 from autotune.wire import protocol
 from autotune.errors import LimitError, RigTimeout
-from autotune.wire.protocol import Op, SetpointLimit
+from autotune.wire.protocol import SetpointLimit
 
 
 @pytest.fixture

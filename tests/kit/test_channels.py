@@ -1,4 +1,4 @@
-"""autotune.channels: the laws against their closed forms, and the map's limits in both units."""
+"""autotune.kit.channels: the laws against their closed forms, and the map's limits in both units."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""autotune.driver_config: DRIVER.toml is checked once, and the driver class is found and built."""
+"""autotune.kit.driver_config: DRIVER.toml is checked once, and the driver class is found and built."""
 
 from __future__ import annotations
 

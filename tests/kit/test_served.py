@@ -1,4 +1,4 @@
-"""autotune.served and autotune.server in process: a driver behind the protocol, through its map."""
+"""autotune.kit.served and autotune.kit.server in process: a driver behind the protocol, through its map."""
 
 from __future__ import annotations
 
