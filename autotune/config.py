@@ -47,6 +47,7 @@ from autotune.schema import (
     number,
     read_toml,
     refuse,
+    refuse_each,
     table,
     text,
 )
@@ -271,10 +272,9 @@ class SearchConfig:
 
     @model_validator(mode="after")
     def _related(self) -> SearchConfig:
-        for key in ("min_points", "n_initial_points"):
-            if getattr(self, key) > self.max_points:
-                refuse(key, f"a value <= search.max_points = {self.max_points}",
-                       getattr(self, key))
+        refuse_each([(key, f"a value <= search.max_points = {self.max_points}", getattr(self, key))
+                     for key in ("min_points", "n_initial_points")
+                     if getattr(self, key) > self.max_points])
         return self
 
 

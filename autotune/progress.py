@@ -30,9 +30,9 @@ class StageProgress:
     ----------
     stage : str
         ``"calibrate"`` or ``"retune"``.
-    event : {"start", "acquisition", "estimate"}
-        What just happened: the stage began (or resumed), an acquisition's counts arrived, or
-        a measurement was estimated.
+    event : {"start", "acquisition", "estimate", "end"}
+        What just happened: the stage began (or resumed), an acquisition's counts arrived, a
+        measurement was estimated, or the stage ended (nothing more to go).
     label : str
         Label of the measurement in progress or just finished (``check``, ``lock``, ``point``,
         ``refine``, ``verify``, ...), ``""`` at the start.
@@ -71,7 +71,7 @@ class StageProgress:
     """
 
     stage: str
-    event: Literal["start", "acquisition", "estimate"]
+    event: Literal["start", "acquisition", "estimate", "end"]
     label: str
     step: int
     max_steps: int

@@ -40,7 +40,7 @@ from pydantic_core import PydanticCustomError
 from autotune.errors import ConfigError, FileErrors
 from autotune.plausible import Plausible
 
-__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "check", "collect",
+__all__ = ["table", "number", "integer", "text", "Expect", "refuse", "refuse_each", "check", "collect",
            "problem", "read_toml"]
 
 T = TypeVar("T")
@@ -127,6 +127,17 @@ def refuse(key: str, expected: str, got: object) -> NoReturn:
     """Refuse a value from a table's ``__post_init__`` (a rule joining keys of one table):
     reported as ``TABLE.key: expected ..., got ...`` with the other problems of the file."""
     raise PydanticCustomError(_WORDED, "{expected}", {"key": key, "expected": expected, "got": got})
+
+
+def refuse_each(found: list[tuple[str, str, object]]) -> None:
+    """Refuse every ``(key, expected, got)`` a rule joining keys found wrong, all at once (one
+    problem line each, with the file's other problems); nothing when ``found`` is empty."""
+    if len(found) == 1:
+        refuse(*found[0])
+    if found:
+        raise PydanticCustomError(_WORDED, "{expected}",
+                                  {"each": list(found),
+                                   "expected": "; ".join(words for _, words, _ in found)})
 
 
 def problem(file: str, key: str, expected: str, got: object, hint: str = "") -> ConfigError:
@@ -243,6 +254,10 @@ def _problems(cls: type, error: ValidationError, file: str, prefix: str) -> list
             got = f"nothing (the key is required; there is {near[0]!r}: a misspelling?)" \
                 if near else "nothing"
             found.append(ConfigError(file, key, _words(bare, metadata), got))
+        elif kind == _WORDED and ctx.get("each"):
+            # A rule of a table that found several keys wrong (refuse_each).
+            found.extend(ConfigError(file, _dotted(prefix, [*loc, name]), words, got)
+                         for name, words, got in ctx["each"])
         elif kind == _WORDED:
             # A rule of a table (its __post_init__) names the key it is about.
             where = _dotted(prefix, [*loc, ctx["key"]]) if ctx.get("key") else key

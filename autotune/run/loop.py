@@ -354,6 +354,8 @@ class _ProgressPlan:
     steps: int = 0
     refines: int = 0
     best: tuple[InversionEstimate, dict[str, float]] | None = None
+    #: Shots of a verification's second half that may follow the half being measured.
+    verify_rest: int = 0
 
     def note(self, estimate: InversionEstimate, setpoints: Mapping[str, float]) -> None:
         """Keep the highest inversion measured so far."""
@@ -556,6 +558,18 @@ class Session:
         self._plan = plan
         self._tell_progress("start", None)
 
+    def expect_verify_rest(self, shots: int) -> None:
+        """A verification's second half of ``shots`` may follow the measurement about to be
+        made (0: none will): the time to go counts it."""
+        if self._plan is not None:
+            self._plan.verify_rest = int(shots)
+
+    def finish_progress(self) -> None:
+        """The stage ended: tell the observer so (event ``end``, nothing more to go); no stage
+        progress follows until the next :meth:`plan_progress` (the log keeps its stage)."""
+        self._tell_progress("end", None)
+        self._plan = None
+
     def end_progress(self) -> None:
         """The stage is over: measurements after it (a night's checks) tell no stage progress
         until the next :meth:`plan_progress`."""
@@ -582,7 +596,8 @@ class Session:
                                                          best[0].inversion_high),
                 best_setpoints={} if best is None else dict(best[1]),
                 confidence=self.config.measurement.confidence,
-                remaining_s=self._remaining_shots(m, planned - taken) / self.repetition_rate_hz,
+                remaining_s=0.0 if event == "end"
+                else self._remaining_shots(m, planned - taken) / self.repetition_rate_hz,
                 repetition_rate_hz=self.repetition_rate_hz, clock_s=self.clock))
         except Exception as exc:  # noqa: BLE001 - a display must never stop a run
             self.log.warning("progress_observer_dropped", error=f"{type(exc).__name__}: {exc}")
@@ -595,7 +610,7 @@ class Session:
         assert plan is not None
         label = m.label if m is not None else ""
         if label in SEARCH_DONE_LABELS:
-            return float(left_here)
+            return float(left_here + (plan.verify_rest if label == "verify" else 0))
         unfinished = 1 if m is not None and left_here > 0 else 0
         refine_left = plan.refine_points - plan.refines
         if label == "refine":
@@ -1461,7 +1476,13 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
             verdict_done = True
             session.decide("verdict", verdict.reason, still_good=verdict.still_good,
                            in_range=verdict.in_range, numbers=verdict.to_dict())
-            if verdict.still_good:
+            if verdict.still_good and check.inversion < config.min_inversion:
+                # A check is accepted as a verification is: its inversion must reach the bar.
+                session.decide("check_below_acceptance",
+                               f"the check's inversion {check.inversion:.3f} is below "
+                               f"[acceptance] min_inversion {config.min_inversion:.3f}: the "
+                               "retune searches")
+            elif verdict.still_good:
                 check_m = next(m for (label, _), m in measurements.items() if label == "check")
                 if any(abs(session.current.get(k, math.nan) - v) > 0.0
                        for k, v in check_m.setpoints.items()):
@@ -1487,9 +1508,11 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                     if bar >= 1.0 or expected.upper <= bar:
                         session.decide("verify_second_half", "the first half of the verification "
                                        "does not settle the acceptance: its second half "
-                                       f"({2 * phases * second:,} shots) at the same set-points "
+                                       f"({measurement_shots(phases, second):,} shots) at the same "
+                                       "set-points "
                                        f"(expected bound after it {expected.upper:.2%})",
                                        setpoints=final[0])
+                        session.expect_verify_rest(0)
                         run_step("verify", final[0], second)
                         continue
                     settled = (f"the verification's first half leaves {_bound_text(expected)} "
@@ -1548,6 +1571,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         session.decide("recommend", "the phase lock's posterior: detuning where the phase "
                        "shift is at its peak value, velocity of the highest inversion",
                        setpoints=chosen, predicted=finite_or_none(recommendation.value))
+        session.expect_verify_rest(measurement_shots(phases, verify_shots - first_half_shots))
         run_step("verify", chosen, first_half_shots)
     assert final is not None
     chosen, estimate = final

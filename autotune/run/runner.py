@@ -413,6 +413,7 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         else:
             outcome = run_stage(session, records=records,
                                 **_stage_args(prepared, session, observer))
+        session.finish_progress()
         clock_end = session.clock
         result = _result(outcome, command, run_dir, clock_start, clock_end,
                          time.monotonic() - wall_start)

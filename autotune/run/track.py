@@ -876,6 +876,7 @@ class _Night:
                 result: StageOutcome = run_guided_stage(
                     session, stage=kind, box=box, budget=budget, start=start, prior=prior,
                     records=records, **shots)
+                session.finish_progress()
             finally:
                 session.config = base
                 session.end_progress()
