@@ -37,6 +37,7 @@ from scipy import stats
 from autotune import report
 from autotune.report.text import _header as report_header
 from autotune.analysis.fringe import FringeData, estimate_inversion
+from autotune.run import records
 from autotune.run.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,
                               write_json_atomic)
 from rig_process import REPO, spawn_server
@@ -176,6 +177,11 @@ def _write_run(path: Path, measurements: Sequence[dict[str, Any]], *, command: s
                            strategy="bayesian", seed=1)
         for spec in measurements:
             for kind, fields in spec.get("before", ()):
+                if kind not in records.KINDS:
+                    # A record of a later version: the writer refuses a type it does not know,
+                    # so it is written as a placeholder and renamed below.
+                    fields = {"what": _LATER, "reason": kind, **fields}
+                    kind = "decision"
                 journal.append(kind, **({"clock": clock} | fields))
             label, point, setpoints = spec["label"], spec["point"], spec["setpoints"]
             journal.append("measurement", label=label, point=point, setpoints=setpoints,
@@ -202,9 +208,21 @@ def _write_run(path: Path, measurements: Sequence[dict[str, Any]], *, command: s
             journal.append(kind, **fields)
         if end is not None:
             journal.append("end", status=end)
+    lines = (path / JOURNAL_NAME).read_text(encoding="utf-8").splitlines()
+    for n, line in enumerate(lines):
+        rec = json.loads(line)
+        if rec.get("what") == _LATER:
+            rec["type"] = rec.pop("reason")
+            del rec["what"]
+            lines[n] = json.dumps(rec)
+    (path / JOURNAL_NAME).write_text("".join(line + "\n" for line in lines), encoding="utf-8")
     if result is not None:
         write_json_atomic(path / RESULT_NAME, result)
     return path
+
+
+#: The placeholder of a record type from a later version (see _write_run).
+_LATER = "__a_later_version__"
 
 
 def _point(rng: np.random.Generator, label: str, point: int, velocity: float, detuning: float,

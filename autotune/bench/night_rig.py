@@ -216,17 +216,18 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
 def _alarm_clocks(run_dir: Path) -> list[float]:
     """Rig clocks of the night's alarms (the middle of the check that raised each)."""
     from autotune.run.journal import read_journal
+    from autotune.run.records import Hold, decisions, of_type, parse_all
 
-    records = read_journal(run_dir / "journal.jsonl")
-    clocks = {r["point"]: r["clock_s"] for r in records if r.get("type") == "hold"}
-    return [float(clocks[r["point"]]) for r in records
-            if r.get("type") == "decision" and r.get("what") == "alarm" and r["point"] in clocks]
+    typed = parse_all(read_journal(run_dir / "journal.jsonl"))
+    clocks = {r.get("point"): r.get("clock_s") for r in of_type(typed, Hold)}
+    return [float(clocks[r.get("point")]) for r in decisions(typed, "alarm")
+            if r.get("point") in clocks]
 
 
 def _night_plans(run_dir: Path) -> list[dict[str, Any]]:
     from autotune.run.journal import read_journal
+    from autotune.run.records import decisions, parse_all
 
-    return [{"interval_s": r["plan"]["interval_s"], "shots_per_phase": r["plan"]["shots_per_phase"],
-             "check_share": r["plan"]["check_share"]}
-            for r in read_journal(run_dir / "journal.jsonl")
-            if r.get("type") == "decision" and r.get("what") == "plan"]
+    return [{"interval_s": r.plan["interval_s"], "shots_per_phase": r.plan["shots_per_phase"],
+             "check_share": r.plan["check_share"]}
+            for r in decisions(parse_all(read_journal(run_dir / "journal.jsonl")), "plan")]

@@ -22,6 +22,8 @@ from autotune.errors import JournalError
 from autotune.run.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
                               read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
+from autotune.run.records import (Acquisition, Decision, End, Estimate, MeasurementOpened, Move,
+                                  Other, SafeFailed, StageHeader, Start, parse)
 from autotune.wire.rig import FIELDS
 
 FIGURE_NAME = "report.png"
@@ -353,85 +355,68 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
     shots = 0
     rig_time = 0.0
 
-    def measurement_of(rec: Mapping[str, Any]) -> Measurement:
-        key = (str(rec["label"]), int(rec["point"]))
+    def measurement_of(label: str, point: int, setpoints: Mapping[str, float]) -> Measurement:
+        key = (label, point)
         if key not in latest:
             # An acquisition or estimate without its measurement record: keep it anyway.
-            m = Measurement(key[0], key[1], _setpoints(rec.get("setpoints") or {}), None,
-                            len(stages) - 1)
+            m = Measurement(label, point, _setpoints(setpoints), None, len(stages) - 1)
             measurements.append(m)
             latest[key] = m
         return latest[key]
 
-    for rec in records:
-        kind = rec.get("type")
-        try:
-            if kind == "start":
-                if isinstance(rec.get("clock"), (int, float)):
-                    clock = float(rec["clock"])
-            elif kind == "stage":
-                stages.append(rec)
-            elif kind == "measurement":
-                m = Measurement(str(rec["label"]), int(rec["point"]),
-                                _setpoints(rec["setpoints"]),
-                                int(rec["shots_per_phase"]) if "shots_per_phase" in rec else None,
-                                len(stages) - 1)
-                measurements.append(m)
-                latest[(m.label, m.point)] = m
-            elif kind == "acquisition":
-                m = measurement_of(rec)
-                counts = rec["counts"]
-                t_start, t_end = float(rec["t_start"]), float(rec["t_end"])
-                m.acquisitions[(str(rec["field"]), int(rec["phase_index"]))] = {
-                    "ramsey_phase": float(rec["ramsey_phase"]), "e": int(counts["e"]),
-                    "g": int(counts["g"]), "i": int(counts["i"]), "shots": int(rec["shots"])}
-                m._t_first = t_start if m._t_first is None else min(m._t_first, t_start)
-                m._t_last = t_end if m._t_last is None else max(m._t_last, t_end)
-                shots += int(rec["shots"])
-                rig_time += t_end - t_start
-                clock = t_end
-            elif kind == "estimate":
-                m = measurement_of(rec)
-                if not isinstance(rec["estimate"], Mapping):
-                    raise TypeError("estimate is not an object")
-                m.estimate = dict(rec["estimate"])
-                if isinstance(rec.get("clock_s"), (int, float)):
-                    m.clock_s = float(rec["clock_s"])
-                elif m._t_first is not None and m._t_last is not None:
-                    m.clock_s = 0.5 * (m._t_first + m._t_last)
-                else:
-                    m.clock_s = clock
-                m.t_wall = rec.get("t_wall")
-                m.shots_after = shots
-                m.order = int(rec.get("seq", -1))
-            elif kind == "move":
-                applied = rec.get("applied") or rec.get("setpoints")
-                if isinstance(rec.get("clock"), (int, float)):
-                    clock = float(rec["clock"])
-                moves.append({"clock": clock, "t_wall": rec.get("t_wall"),
-                              "setpoints": _setpoints(applied or {}),
-                              "reason": str(rec.get("reason", ""))})
-            elif kind == "decision":
-                decisions.append({**rec, "what": str(rec["what"]),
-                                  "reason": str(rec.get("reason", "")), "clock": clock})
-            elif kind == "safe_failed":
-                safe_failed.append(rec)
-            elif kind == "end":
-                ended = str(rec["status"])
-            elif kind in ("proposal", "safe", "request", "wait", "hold", "move_unconfirmed"):
-                # Drawn through what they lead to: the proposal's move, a request's
-                # acquisition or move, a night's wait and check (its estimate and decisions);
-                # a move the rig did not confirm left the set-points where the next move or
-                # acquisition shows them.
-                if kind == "wait" and isinstance(rec.get("clock"), (int, float)):
-                    clock = float(rec["clock"])
+    for raw in records:
+        rec = parse(raw)  # a record that does not fit its type: JournalError naming its seq
+        if isinstance(rec, Start):
+            if rec.clock is not None:
+                clock = rec.clock
+        elif isinstance(rec, StageHeader):
+            stages.append(raw)
+        elif isinstance(rec, MeasurementOpened):
+            m = Measurement(rec.label, rec.point, _setpoints(rec.setpoints), rec.shots_per_phase,
+                            len(stages) - 1)
+            measurements.append(m)
+            latest[(m.label, m.point)] = m
+        elif isinstance(rec, Acquisition):
+            m = measurement_of(rec.label, rec.point, rec.setpoints)
+            m.acquisitions[(rec.field, rec.phase_index)] = {
+                "ramsey_phase": rec.ramsey_phase, "e": rec.counts.e, "g": rec.counts.g,
+                "i": rec.counts.i, "shots": rec.shots}
+            m._t_first = rec.t_start if m._t_first is None else min(m._t_first, rec.t_start)
+            m._t_last = rec.t_end if m._t_last is None else max(m._t_last, rec.t_end)
+            shots += rec.shots
+            rig_time += rec.t_end - rec.t_start
+            clock = rec.t_end
+        elif isinstance(rec, Estimate):
+            m = measurement_of(rec.label, rec.point, rec.setpoints)
+            m.estimate = dict(rec.estimate)
+            if rec.clock_s is not None:
+                m.clock_s = rec.clock_s
+            elif m._t_first is not None and m._t_last is not None:
+                m.clock_s = 0.5 * (m._t_first + m._t_last)
             else:
-                unknown[str(kind)] += 1
-                if isinstance(rec.get("clock"), (int, float)):
-                    clock = float(rec["clock"])
-        except (KeyError, TypeError, ValueError) as exc:
-            raise JournalError(f"{path / JOURNAL_NAME}: record seq {rec.get('seq')} ({kind}) "
-                               f"is damaged: {exc!r}") from exc
+                m.clock_s = clock
+            m.t_wall = rec.t_wall
+            m.shots_after = shots
+            m.order = rec.seq
+        elif isinstance(rec, Move):
+            if rec.clock is not None:
+                clock = rec.clock
+            moves.append({"clock": clock, "t_wall": rec.t_wall,
+                          "setpoints": _setpoints(rec.applied or rec.setpoints),
+                          "reason": rec.reason})
+        elif isinstance(rec, Decision):
+            decisions.append({**raw, "what": rec.what, "reason": rec.reason, "clock": clock})
+        elif isinstance(rec, SafeFailed):
+            safe_failed.append(raw)
+        elif isinstance(rec, End):
+            ended = rec.status
+        elif isinstance(rec, Other):
+            unknown[rec.type] += 1
+            if isinstance(rec.get("clock"), (int, float)):
+                clock = float(rec.get("clock"))
+        # The others are drawn through what they lead to: the proposal's move, a request's
+        # acquisition or move, a night's check (its estimate and decisions); a move the rig did
+        # not confirm left the set-points where the next move or acquisition shows them.
         if clock_start is None and clock is not None:
             clock_start = clock
     return Run(path=path, manifest=manifest, result=result, records=records, cut_line=cut_line,

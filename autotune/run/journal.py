@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError, RunAlreadyEnded
+from autotune.run.records import check_fields
 
 __all__ = [
     "Journal",
@@ -335,7 +336,14 @@ class Journal:
         return self._seq
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
-        """Append one record and flush it to disk before returning it."""
+        """Append one record and flush it to disk before returning it.
+
+        Raises
+        ------
+        JournalError
+            The record does not fit its type (:func:`autotune.run.records.check_fields`:
+            nothing is written), or the disk refused the write.
+        """
         if self._failure is not None:
             raise JournalError(f"cannot append to {self.path}: an earlier write failed "
                                f"({self._failure}); the run stops here and can be resumed once "
@@ -343,7 +351,11 @@ class Journal:
         if self._handle.closed:
             raise JournalError(f"{self.path} is closed")
         record = {"seq": self._seq, "type": record_type, "t_wall": utc_now(), **fields}
-        data = (_to_json(record) + "\n").encode("utf-8")
+        text = _to_json(record)
+        # Its type's fields, as a reader will see them (autotune.run.records): a writer's bug
+        # is refused here, before the disk, not found by a resume or a report.
+        check_fields(json.loads(text))
+        data = (text + "\n").encode("utf-8")
         fd = self._handle.fileno()
         try:
             before = os.fstat(fd).st_size

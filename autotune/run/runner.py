@@ -66,6 +66,7 @@ from autotune.run.loop import (
     run_stage,
 )
 from autotune.progress import ProgressObserver
+from autotune.run.records import End, Start, of_type, parse, parse_all
 from autotune.wire.rig import Rig
 from autotune.run.preflight import (never_started, opening_call, preflight, resume_changes,
                                     settle_failure, track_preflight)
@@ -392,9 +393,9 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
                                        for k, old, new in prepared.changes),
                            changes=[{"key": k, "old": old, "new": new}
                                     for k, old, new in prepared.changes])
-        starts = [r for r in records if r.get("type") == "start"]
-        if starts:
-            clock_start = float(starts[0]["clock"])
+        starts = of_type(parse_all(records), Start)
+        if starts and starts[0].clock is not None:
+            clock_start = starts[0].clock
         else:
             clock_start = opening_clock if opening_clock is not None else \
                 float(session._call("status", lambda _id: rig.status()).clock)
@@ -521,5 +522,7 @@ def retune(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = False,
 
 def unfinished(records: Sequence[Mapping[str, Any]]) -> bool:
     """True when a journal's records show a run that did not end, or ended resumably."""
-    return not records or records[-1].get("type") != "end" or \
-        records[-1].get("status") in RESUMABLE
+    if not records:
+        return True
+    last = parse(records[-1])
+    return not isinstance(last, End) or last.status in RESUMABLE

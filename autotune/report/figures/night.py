@@ -19,6 +19,7 @@ import numpy as np
 from autotune.report.figures._base import _errorbar, _new_figure, _title
 from autotune.report.figures.phase import _wrap
 from autotune.report.model import Run, _level
+from autotune.run.records import Acquisition, Decision, Hold, Wait, parse
 
 _STAGES = ("retune", "calibrate")
 
@@ -42,41 +43,39 @@ def night_records(run: Run) -> dict[str, Any]:
     holds, stages, alarms, failures, corrections, plans, beam = [], [], [], [], [], [], []
     clock = run.clock_start
     open_stage: dict[str, Any] | None = None
-    for rec in run.records:
-        kind = rec.get("type")
+    for raw in run.records:
+        rec = parse(raw)
         if isinstance(rec.get("clock"), (int, float)):
-            clock = float(rec["clock"])
-        if kind == "acquisition":
-            t0, t1 = _num(rec.get("t_start")), _num(rec.get("t_end"))
-            if math.isfinite(t0) and math.isfinite(t1):
-                beam.append((t0, t1))
-                clock = t1
-        elif kind == "hold":
-            holds.append(rec)
-        elif kind == "wait" and isinstance(rec.get("until_clock"), (int, float)):
+            clock = float(rec.get("clock"))
+        if isinstance(rec, Acquisition):
+            beam.append((rec.t_start, rec.t_end))
+            clock = rec.t_end
+        elif isinstance(rec, Hold):
+            holds.append(raw)
+        elif isinstance(rec, Wait):
             # What follows a wait happens when it ends.
-            clock = float(rec["until_clock"])
-        elif kind == "decision":
-            what = rec.get("what")
+            clock = rec.until_clock
+        elif isinstance(rec, Decision):
+            what = rec.what
             if what in _STAGES:
                 open_stage = {"kind": what, "index": rec.get("index"), "start": clock,
                               "end": None, "status": None}
                 stages.append(open_stage)
             elif what == "stage_done" and open_stage is not None:
                 open_stage["end"] = clock
-                reason = str(rec.get("reason", ""))
-                status = _get(rec, "outcome", "status")
+                reason = rec.reason
+                status = _get(raw, "outcome", "status")
                 open_stage["status"] = str(status) if status else (
                     "accepted" if ": accepted" in reason or "still_good" in reason else reason)
                 open_stage = None
             elif what == "alarm":
-                alarms.append({**rec, "clock": clock})
+                alarms.append({**raw, "clock": clock})
             elif what == "failure":
-                failures.append({**rec, "clock": clock})
+                failures.append({**raw, "clock": clock})
             elif what == "correct" and isinstance(rec.get("to"), Mapping):
-                corrections.append({**rec, "clock": clock})
+                corrections.append({**raw, "clock": clock})
             elif what == "plan":
-                plans.append({**rec, "clock": clock})
+                plans.append({**raw, "clock": clock})
     if open_stage is not None:
         open_stage["end"] = clock
     return {"holds": holds, "stages": stages, "alarms": alarms, "failures": failures,
