@@ -26,6 +26,7 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import functools
+import numbers
 import tomllib
 import types
 import typing
@@ -41,12 +42,18 @@ from autotune.errors import ConfigError, FileErrors
 from autotune.plausible import Plausible
 
 __all__ = ["table", "number", "integer", "text", "Expect", "refuse", "refuse_each", "check", "collect",
-           "problem", "read_toml"]
+           "problem", "read_toml", "is_number"]
 
 T = TypeVar("T")
 
 #: The error type of a problem this module (or a schema's own rule) words itself.
 _WORDED = "worded"
+
+
+def is_number(value: object) -> bool:
+    """A real number and not a bool (``True`` is an ``int`` to Python, never a number here);
+    numpy's scalars count (they register as :class:`numbers.Real`)."""
+    return isinstance(value, numbers.Real) and not isinstance(value, bool)
 
 
 @dataclasses.dataclass(frozen=True)

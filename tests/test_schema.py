@@ -12,7 +12,7 @@ from typing import Annotated, Literal
 
 import pytest
 
-from autotune import plausible
+from autotune import plausible, schema
 from autotune.errors import ConfigError, FileErrors
 from autotune.schema import Expect, check, integer, number, read_toml, refuse, table, text
 
@@ -124,3 +124,18 @@ def test_a_file_that_cannot_be_read_is_named(tmp_path):
     (tmp_path / "broken.toml").write_text("[a\n", encoding="utf-8")
     with pytest.raises(FileErrors, match=r"broken\.toml: <file>: expected valid TOML"):
         read_toml(tmp_path / "broken.toml")
+
+
+def test_is_number_is_the_one_test_of_a_real_number() -> None:
+    """One ``is_number`` for the config, the wire, the lock and the server: a bool is an int to
+    Python (the ``bool`` subclass of ``int``, Python's documentation of numeric types) and never a
+    number here; numpy's scalars are (numpy registers them with ``numbers.Real``)."""
+    import numpy as np
+
+    from autotune.analysis import lock_settings
+    from autotune.wire import codec
+
+    assert schema.is_number(3) and schema.is_number(2.5) and schema.is_number(np.float64(1.0))
+    assert schema.is_number(np.int32(4))
+    assert not any(schema.is_number(v) for v in (True, False, "3", None, [1.0], 1j))
+    assert codec.is_number is schema.is_number and lock_settings.is_number is schema.is_number

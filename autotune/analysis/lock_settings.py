@@ -16,12 +16,9 @@ from typing import Any
 
 import numpy as np
 
+from autotune.schema import is_number
+
 __all__ = ["LockSettings", "LockPrior", "is_number"]
-
-
-def is_number(value: Any) -> bool:
-    """A real number, not a bool (numpy scalars included)."""
-    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer))
 
 
 # --------------------------------------------------------------------------------------------

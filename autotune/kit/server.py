@@ -52,6 +52,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from autotune.wire import protocol
 from autotune.errors import ConfigError, DriverRefusal
+from autotune.schema import is_number
 from autotune.kit.lease import LeaseBook, LeaseHeld
 from autotune.wire.protocol import Acquisition, Applied, Description, ErrorKind, Op, RequestRejected, Status
 
@@ -128,10 +129,10 @@ class FaultConfig:
     def __post_init__(self) -> None:
         for key in ("drop_reply_probability", "corrupt_reply_probability"):
             value = getattr(self, key)
-            if not _is_number(value) or not 0.0 <= value <= 1.0:
+            if not is_number(value) or not 0.0 <= value <= 1.0:
                 raise ConfigError("<memory>", key, "a probability in [0, 1]", value)
         delay = self.delay_reply_s
-        if not _is_number(delay) or not (math.isfinite(delay) and 0 <= delay <= 600.0):
+        if not is_number(delay) or not (math.isfinite(delay) and 0 <= delay <= 600.0):
             raise ConfigError("<memory>", "delay_reply_s", "a number of seconds from 0 to 600 "
                               "(the longest reply wait a client takes, bus.timeout_s)", delay)
         value = self.exit_after_messages
@@ -168,10 +169,6 @@ class FaultConfig:
             return replace(self, **changes)
         except ConfigError as exc:
             raise ConfigError("<flags>", exc.key, exc.expected, exc.got) from exc
-
-
-def _is_number(value: object) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 # --------------------------------------------------------------------------- CURVE

@@ -15,6 +15,7 @@ from typing import Annotated, Any, Literal
 import pydantic
 from pydantic import Strict
 
+from autotune.schema import is_number
 from autotune.errors import ProtocolError, RigLeased, RigRefused
 from autotune import schema
 from autotune.wire.terms import (MAX_LEASE_TTL_S, MAX_MESSAGE_BYTES, MAX_SHOTS, PROTO_VERSION,
@@ -272,10 +273,6 @@ def check_client(value: object) -> str:
 
 def _is_int(value: object) -> bool:
     return isinstance(value, int) and not isinstance(value, bool)
-
-
-def is_number(value: object) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 def _check_keys(where: str, obj: Mapping[str, Any], *, required: tuple[str, ...],
