@@ -13,8 +13,12 @@ What lives here:
   (the choice of the next point) and :mod:`~autotune.analysis.retune_verdict` (a retune's
   verdict);
 - :mod:`~autotune.analysis.strategies`: a strategy by its configured name;
-- :mod:`~autotune.analysis.hold`: the night's pure core (drift lock, sequential test, plan of the
-  checks, beam budget, recovery).
+- :mod:`~autotune.analysis.hold`: the night's pure core, described and re-exported there, over
+  :mod:`~autotune.analysis.hold_lock` (drift lock, sequential test, settings),
+  :mod:`~autotune.analysis.hold_signal` (the checks' noise and signal),
+  :mod:`~autotune.analysis.hold_plan` (plan and cadence of the checks),
+  :mod:`~autotune.analysis.hold_check` (one check read; what the night keeps of its measurements)
+  and :mod:`~autotune.analysis.hold_budget` (beam budget, recovery sizing, rig time unheld).
 
 What it may import: the foundation modules (:mod:`autotune.errors`, :mod:`autotune.plausible`,
 :mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`) and itself; nothing of
@@ -23,5 +27,6 @@ the wire, the lab kit, a run, the report, the study or the command line
 module you need (``from autotune.analysis.fringe import estimate_inversion``).
 """
 
-__all__ = ["fringe", "guided", "hold", "lock_fit", "next_point", "retune_verdict", "search",
+__all__ = ["fringe", "guided", "hold", "hold_budget", "hold_check", "hold_lock", "hold_plan",
+           "hold_signal", "lock_fit", "next_point", "retune_verdict", "search",
            "shortfall", "strategies", "velocity_model"]
