@@ -4,8 +4,10 @@ night's hold, as functions and objects that do no I/O (no socket, file, clock or
 What lives here:
 
 - :mod:`~autotune.analysis.fringe`: counts -> fringe fit -> inversion with its uncertainty;
-- :mod:`~autotune.analysis.search`: the search space and the strategies' ask/tell interface;
-  the only module that imports scikit-optimize;
+- :mod:`~autotune.analysis.search`: the Gaussian-process search, the only module that imports
+  scikit-optimize, re-exporting :mod:`~autotune.analysis.search_types` (the search space, the
+  results and proposals, the strategies' ask/tell interface) and
+  :mod:`~autotune.analysis.search_scans` (the grid, coordinate and random scans);
 - :mod:`~autotune.analysis.guided`: the phase lock (``PhaseLockSearch``), with its models by
   concern in :mod:`~autotune.analysis.lock_fit` (the detuning lock's fit),
   :mod:`~autotune.analysis.velocity_model` (the inversion along velocity),
@@ -29,4 +31,4 @@ module you need (``from autotune.analysis.fringe import estimate_inversion``).
 
 __all__ = ["fringe", "guided", "hold", "hold_budget", "hold_check", "hold_lock", "hold_plan",
            "hold_signal", "lock_fit", "next_point", "retune_verdict", "search",
-           "shortfall", "strategies", "velocity_model"]
+           "search_scans", "search_types", "shortfall", "strategies", "velocity_model"]

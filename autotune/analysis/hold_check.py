@@ -26,7 +26,7 @@ from autotune.analysis.hold_lock import (
 )
 from autotune.analysis.hold_plan import CheckPlan
 from autotune.analysis.hold_signal import NoiseModel
-from autotune.analysis.search import PointResult
+from autotune.analysis.search_types import PointResult
 
 __all__ = [
     "Assessment",
