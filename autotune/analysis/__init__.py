@@ -23,8 +23,10 @@ What lives here:
   and :mod:`~autotune.analysis.hold_budget` (beam budget, recovery sizing, rig time unheld).
 
 What it may import: the foundation modules (:mod:`autotune.errors`, :mod:`autotune.plausible`,
-:mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`) and itself; nothing of
-the wire, the lab kit, a run, the report, the study or the command line
+:mod:`autotune.progress`, :mod:`autotune.schema`, :mod:`autotune.config`) and itself; of the wire
+only :mod:`autotune.wire.rig`, for a measurement's shot count (``measurement_shots``, the one
+place that says what a measurement costs; that module imports only the wire's vocabulary);
+nothing of the lab kit, a run, the report, the study or the command line
 (tests/test_layout.py holds this). The package imports no module of its own here: import the
 module you need (``from autotune.analysis.fringe import estimate_inversion``).
 """

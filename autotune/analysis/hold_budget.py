@@ -21,6 +21,7 @@ from autotune.analysis.hold_check import reference_value
 from autotune.analysis.hold_lock import DriftLock, HoldSettings
 from autotune.analysis.hold_plan import RECOVERY_PRIOR_S, CheckPlan, plan_checks
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
+from autotune.wire.rig import measurement_shots
 
 __all__ = [
     "OPEN_NIGHT_HORIZON_S",
@@ -119,7 +120,8 @@ class BeamBudget:
 
 def least_check_s(settings: HoldSettings) -> float:
     """Beam time of the smallest check (``min_shots_per_phase``), s."""
-    return 2 * settings.ramsey_phases * settings.min_shots_per_phase / settings.repetition_rate_hz
+    return (measurement_shots(settings.ramsey_phases, settings.min_shots_per_phase)
+            / settings.repetition_rate_hz)
 
 
 def checks_reserve_s(settings: HoldSettings, budget: BeamBudget) -> float:
@@ -224,8 +226,8 @@ class StageSize:
 
     def shots(self, phases: int) -> int:
         """The most shots the stage can take (a check larger than the budget counted whole)."""
-        check = 2 * phases * self.check_shots_per_phase
-        verify = 2 * phases * self.verification_shots_per_phase
+        check = measurement_shots(phases, self.check_shots_per_phase)
+        verify = measurement_shots(phases, self.verification_shots_per_phase)
         return max(self.max_shots, check) + (1 + self.max_corrections) * verify
 
     def beam_s(self, phases: int, repetition_rate_hz: float) -> float:
@@ -250,9 +252,9 @@ def _fit(size: StageSize, shots_left: int, phases: int, least_per_phase: int) ->
                              *[max(least_per_phase, size.verification_shots_per_phase // d)
                                for d in (2, 4, 8, 16)]}, reverse=True):
         check = min(size.check_shots_per_phase, per_phase) if size.check_shots_per_phase else 0
-        step = 2 * phases * max(check, per_phase)
+        step = measurement_shots(phases, max(check, per_phase))
         for corrections in range(size.max_corrections, -1, -1):
-            verify = (1 + corrections) * 2 * phases * per_phase
+            verify = (1 + corrections) * measurement_shots(phases, per_phase)
             budget = min(size.max_shots, shots_left - verify)
             if budget >= 2 * step or (budget >= step and size.kind == "retune"):
                 return replace(size, check_shots_per_phase=check,

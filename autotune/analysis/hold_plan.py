@@ -31,6 +31,7 @@ from autotune.analysis.hold_lock import (
     floor_shift_hz,
 )
 from autotune.analysis.hold_signal import USABLE_Z, NoiseModel, SignalModel
+from autotune.wire.rig import measurement_shots
 
 __all__ = [
     "RECOVERY_PRIOR_S",
@@ -260,7 +261,7 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
     """The numbers of checks of ``per_phase`` shots every ``interval`` s, warning level
     ``warning_fraction`` of each threshold (``steady`` caches the filter's steady state)."""
     phases = settings.ramsey_phases
-    shots = 2 * phases * per_phase
+    shots = measurement_shots(phases, per_phase)
     check_s = shots / settings.repetition_rate_hz
     detuning_var = phase_var / shots / slope**2
     key = (interval, per_phase)
@@ -406,7 +407,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
                 phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope,
                 z=readable_z(settings, interval))
             if readable is not None:
-                least = max(least, math.ceil(readable / (2 * phases)))
+                least = max(least, math.ceil(readable / measurement_shots(phases, 1)))
         return min(least, settings.max_shots_per_phase)
     steady: dict[tuple[float, int], tuple[float, float]] = {}
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
@@ -416,7 +417,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
 
     def sized(interval: float, fraction: float) -> dict[str, Any] | None:
         """Checks every ``interval`` as large as the share pays for, rechecks included."""
-        per_phase = int(math.floor(check_share * interval * rate / (2 * phases)))
+        per_phase = int(math.floor(check_share * interval * rate / measurement_shots(phases, 1)))
         least = least_at(interval)
         row = None
         for _ in range(4):
@@ -428,7 +429,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
             if row["check_s"] / row["mean_gap_s"] <= check_share * (1.0 + 1e-9):
                 return row
             per_phase = min(per_phase - 1, math.floor(
-                check_share * row["mean_gap_s"] * rate / (2 * phases)))
+                check_share * row["mean_gap_s"] * rate / measurement_shots(phases, 1)))
         return None
 
     best: tuple[float, float, dict[str, Any]] | None = None
@@ -436,7 +437,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
-        if math.floor(check_share * interval * rate / (2 * phases)) < least_at(interval):
+        if math.floor(check_share * interval * rate / measurement_shots(phases, 1)) < least_at(interval):
             continue
         for fraction in _WARNING_FRACTIONS:
             row = sized(interval, fraction)
@@ -483,9 +484,9 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
         # uncertainty adds to the innovation), spaced to fit the share.
         tell = phase_var / (slope * design / _MIN_DESIGN_SNR) ** 2 * 2.0
         least = least_at(float(top))
-        per_phase = min(max(least, int(math.ceil(tell / (2 * phases)))),
+        per_phase = min(max(least, int(math.ceil(tell / measurement_shots(phases, 1)))),
                         settings.max_shots_per_phase)
-        check_s = 2 * phases * per_phase / rate
+        check_s = measurement_shots(phases, per_phase) / rate
         row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase,
                          warning_fraction=_WARNING_FRACTIONS[-1], **common)
         why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
