@@ -3,8 +3,14 @@ step and survives a kill.
 
 What lives here:
 
-- :mod:`~autotune.run.loop`: one stage, propose -> guard -> apply -> acquire -> estimate -> tell
-  -> record (``Session``, ``run_stage``, ``run_guided_stage``);
+- one stage, propose -> guard -> apply -> acquire -> estimate -> tell -> record, by concern:
+  :mod:`~autotune.run.guard` (the effective limits, a move in allowed steps, the budget),
+  :mod:`~autotune.run.session` (``Session``: guarded rig calls, bounded retries, journaled
+  acquisitions, ``Measurement``), :mod:`~autotune.run.replay` (a stage's records read back for
+  a resume), :mod:`~autotune.run.stage` (``run_stage``, an ask/tell strategy),
+  :mod:`~autotune.run.guided_stage` (``run_guided_stage``, the phase lock) and
+  :mod:`~autotune.run.verification` (its verification and acceptance);
+  :mod:`~autotune.run.loop` re-exports their names under the path they always had;
 - :mod:`~autotune.run.runner`: one stage as a run: run folder, manifest, result, last good store,
   with its checks before the first move in :mod:`~autotune.run.preflight` (the config against
   the rig's description and the store, a resume's changes, a failure settled safely);
@@ -22,4 +28,5 @@ the report, the study or the command line (tests/test_layout.py holds this): a s
 any rig through :class:`autotune.wire.rig.Rig`.
 """
 
-__all__ = ["display", "journal", "loop", "preflight", "runlock", "runner", "track"]
+__all__ = ["display", "guard", "guided_stage", "journal", "loop", "preflight", "replay", "runlock",
+           "runner", "session", "stage", "track", "verification"]

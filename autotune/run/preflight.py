@@ -15,7 +15,8 @@ from autotune.config import RunConfig
 from autotune.errors import AutotuneError, ConfigError, JournalError, RigLeased
 from autotune.analysis.guided import LockPrior
 from autotune.run.journal import JOURNAL_NAME
-from autotune.run.loop import Limit, Session, call_with_recovery
+from autotune.run.guard import Limit
+from autotune.run.session import Session, call_with_recovery
 from autotune.wire.rig import Rig, measurement_shots
 
 __all__ = ["preflight", "track_preflight", "resume_changes", "opening_call", "settle_failure",

@@ -1,7 +1,7 @@
 """``autotune track``: hold the 2π condition through the night, in one run folder.
 
 The imperative shell around :mod:`autotune.analysis.hold` (the lock, the sequential test and the plan of
-the checks, all pure) and :func:`autotune.run.loop.run_guided_stage` (the guided retune and
+the checks, all pure) and :func:`autotune.run.guided_stage.run_guided_stage` (the guided retune and
 calibration, unchanged).
 
 A night
@@ -57,7 +57,7 @@ state; the records after it say how far the next step went: a correction decided
 alarm decided, a stage begun or finished, a wait begun, a check measured in part. Each step is
 completed without repeating what was done: a check from its missing acquisitions only (a
 request whose reply never arrived is asked for again by its ``msg_id``), a stage through
-:func:`autotune.run.loop.run_guided_stage`'s own resume, a wait up to its recorded clock.
+:func:`autotune.run.guided_stage.run_guided_stage`'s own resume, a wait up to its recorded clock.
 """
 
 from __future__ import annotations
@@ -113,17 +113,11 @@ from autotune.run.journal import (
     utc_now,
     write_json_atomic,
 )
-from autotune.run.loop import (
-    Budget,
-    Session,
-    StageOutcome,
-    Measurement,
-    replay_records,
-    child_seed,
-    lock_settings,
-    retune_box,
-    run_guided_stage,
-)
+from autotune.run.guard import Budget, retune_box
+from autotune.run.guided_stage import lock_settings, run_guided_stage
+from autotune.run.replay import replay_records
+from autotune.run.session import Measurement, Session
+from autotune.run.stage import StageOutcome, child_seed
 from autotune.progress import NightProgress, ProgressObserver, setpoints_text
 from autotune.wire.rig import Rig
 from autotune.run.runner import (
@@ -442,7 +436,7 @@ class _Ledger:
 
     def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
         # A non-finite number is refused by the journal (a bug upstream, never written silently):
-        # a recommendation's predicted value is made null where it is computed (autotune/loop.py).
+        # a recommendation's predicted value is made null where it is computed (autotune/run/stage.py, autotune/run/guided_stage.py).
         rec = self._journal.append(record_type, **fields)
         self._count(rec)
         return rec
