@@ -15,7 +15,11 @@ What lives here:
   with its checks before the first move in :mod:`~autotune.run.preflight` (the config against
   the rig's description and the store, a resume's changes, a failure settled safely);
 - :mod:`~autotune.run.track`: ``autotune track``, a night in one run folder (the shell around
-  :mod:`autotune.analysis.hold` and the guided stages);
+  :mod:`autotune.analysis.hold` and the guided stages): its state machine in
+  :mod:`~autotune.run.night`, with :mod:`~autotune.run.night_settings` (the prepared night, the
+  hold's settings, a stage's size), :mod:`~autotune.run.night_ledger` (the journal seen through,
+  the night's accounts, what its records say) and :mod:`~autotune.run.night_clock` (its ends and
+  its waits for the rig's clock);
 - :mod:`~autotune.run.journal`: append-only JSON Lines, durable, replayable, read up to a damage;
 - :mod:`~autotune.run.runlock`: one owner per run folder (the OS lock and its holder file);
 - :mod:`~autotune.run.display`: the progress line on a terminal, or plain lines (used by the
@@ -28,5 +32,6 @@ the report, the study or the command line (tests/test_layout.py holds this): a s
 any rig through :class:`autotune.wire.rig.Rig`.
 """
 
-__all__ = ["display", "guard", "guided_stage", "journal", "loop", "preflight", "replay", "runlock",
-           "runner", "session", "stage", "track", "verification"]
+__all__ = ["display", "guard", "guided_stage", "journal", "loop", "night", "night_clock",
+           "night_ledger", "night_settings", "preflight", "replay", "runlock", "runner", "session",
+           "stage", "track", "verification"]
