@@ -1,5 +1,6 @@
 """The guard of every move: the effective limits of each set-point (the tighter of the
-configured and the described), the split of a long move into allowed steps, a retune's box
+configured and the described, as the wire's :class:`~autotune.wire.protocol.SetpointLimit`,
+the one limit type of autotune), the split of a long move into allowed steps, a retune's box
 within the limits, and the budget a search must stop at.
 """
 
@@ -13,27 +14,10 @@ from typing import Any
 
 from autotune.config import RunConfig
 from autotune.errors import ConfigError, LimitError
-from autotune.wire.protocol import STEP_TOLERANCE
+from autotune.wire.protocol import STEP_TOLERANCE, SetpointLimit
 
-__all__ = ["Limit", "Budget", "effective_limits", "plan_moves", "retune_box"]
-
-
-@dataclass(frozen=True)
-class Limit:
-    """Effective limits of one set-point, in its unit."""
-
-    min: float
-    max: float
-    max_step: float
-
-    def check(self, name: str, value: float) -> None:
-        """Raise :class:`LimitError` unless ``value`` is finite and within [min, max]."""
-        if not math.isfinite(value):
-            raise LimitError(f"set-point {name}: value {value!r} is not finite")
-        if value < self.min or value > self.max:
-            raise LimitError(
-                f"set-point {name}: {value:g} is outside its limits [{self.min:g}, {self.max:g}]"
-            )
+__all__ = ["Budget", "configured_limit", "effective_limit", "effective_limits", "plan_moves",
+           "retune_box"]
 
 
 @dataclass(frozen=True)
@@ -46,16 +30,34 @@ class Budget:
     min_points: int
 
 
-def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
+def configured_limit(sp: Any) -> SetpointLimit:
+    """The limits a run config sets on one set-point (``[setpoints.NAME]``: ``unit``,
+    ``limit_min``, ``limit_max``, ``max_step``)."""
+    return SetpointLimit(sp.unit, sp.limit_min, sp.limit_max, sp.max_step)
+
+
+def effective_limit(sp: Any, described: Any) -> SetpointLimit | None:
+    """The tighter of the configured limits of ``sp`` and those the rig described for it
+    (:meth:`SetpointLimit.tighter <autotune.wire.protocol.SetpointLimit.tighter>`, the one place
+    that intersects two limits), or None when the two ranges do not overlap. The caller has
+    checked that the units agree.
+    """
+    try:
+        return configured_limit(sp).tighter(described)
+    except ValueError:
+        return None
+
+
+def effective_limits(config: RunConfig, description: Any) -> dict[str, SetpointLimit]:
     """The tighter of the configured and the described limits of every searched set-point.
 
     Raises
     ------
     ConfigError
         A configured set-point is unknown to the rig, its unit differs from the rig's, or its
-        search box reaches outside the rig's limits.
+        limits do not overlap the rig's, or its search box reaches outside the effective limits.
     """
-    limits: dict[str, Limit] = {}
+    limits: dict[str, SetpointLimit] = {}
     for sp in config.setpoints:
         described = description.setpoints.get(sp.name)
         key = f"setpoints.{sp.name}"
@@ -65,11 +67,11 @@ def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
         if described.unit != sp.unit:
             raise ConfigError(config.source, f"{key}.unit", f"the rig's unit {described.unit!r}",
                               sp.unit)
-        limit = Limit(
-            min=max(sp.limit_min, described.min),
-            max=min(sp.limit_max, described.max),
-            max_step=min(sp.max_step, described.max_step),
-        )
+        limit = effective_limit(sp, described)
+        if limit is None:
+            raise ConfigError(config.source, f"{key}.limit_min/limit_max",
+                              f"limits that overlap the rig's [{described.min:g}, "
+                              f"{described.max:g}] {sp.unit}", [sp.limit_min, sp.limit_max])
         if sp.search_min < limit.min or sp.search_max > limit.max:
             raise ConfigError(config.source, f"{key}.search_min/search_max",
                               f"a box within the effective limits [{limit.min:g}, {limit.max:g}]",
@@ -79,7 +81,7 @@ def effective_limits(config: RunConfig, description: Any) -> dict[str, Limit]:
 
 
 def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
-               limits: Mapping[str, Limit]) -> list[dict[str, float]]:
+               limits: Mapping[str, SetpointLimit]) -> list[dict[str, float]]:
     """Split the move from ``current`` to ``target`` into steps within the largest step.
 
     All set-points move together along a straight line, in the fewest equal steps that keep
@@ -141,7 +143,7 @@ def plan_moves(current: Mapping[str, float], target: Mapping[str, float],
 
 
 def retune_box(config: RunConfig, centre: Mapping[str, float],
-               limits: Mapping[str, Limit]) -> dict[str, tuple[float, float]]:
+               limits: Mapping[str, SetpointLimit]) -> dict[str, tuple[float, float]]:
     """The narrowed box of a retune: the last good set-points +- half widths, within the limits."""
     box = {}
     for sp in config.setpoints:

@@ -145,10 +145,10 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
     session.plan_progress(stage, budget,
                           # A step may take up to step_shots_range's top multiple of its
                           # configured shots (sized from the measured error per shot).
-                          step_shots=2 * phases * math.ceil(
+                          step_shots=measurement_shots(phases, math.ceil(
                               lock.settings.step_shots_range[1]
                               * max(config.lock.lock_shots_per_phase,
-                                    config.lock.velocity_shots_per_phase)),
+                                    config.lock.velocity_shots_per_phase))),
                           verify_shots=measurement_shots(phases, verify_shots), measured=measured_estimates(replayed))
 
     def result_of(rec: Mapping[str, Any], m: Measurement | None) -> PointResult:
@@ -265,7 +265,7 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
                     if bar >= 1.0 or expected.upper <= bar:
                         session.decide("verify_second_half", "the first half of the verification "
                                        "does not settle the acceptance: its second half "
-                                       f"({2 * phases * second:,} shots) at the same set-points "
+                                       f"({measurement_shots(phases, second):,} shots) at the same set-points "
                                        f"(expected bound after it {expected.upper:.2%})",
                                        setpoints=final[0])
                         run_step("verify", final[0], second)

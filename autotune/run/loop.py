@@ -31,7 +31,7 @@ of :mod:`autotune.run` have always imported from ``autotune.run.loop``):
 
 from __future__ import annotations
 
-from autotune.run.guard import Budget, Limit, effective_limits, plan_moves, retune_box
+from autotune.run.guard import Budget, effective_limits, plan_moves, retune_box
 from autotune.run.guided_stage import GUIDED_LABELS, lock_settings, run_guided_stage
 from autotune.run.replay import replay_records
 from autotune.run.session import Measurement, Session, call_with_recovery, ramsey_phases
@@ -49,7 +49,6 @@ from autotune.run.verification import acceptance_reason, shortfall_numbers
 __all__ = [
     "Measurement",
     "replay_records",
-    "Limit",
     "Budget",
     "StageOutcome",
     "effective_limits",

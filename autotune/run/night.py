@@ -40,7 +40,7 @@ from autotune.run.replay import replay_records
 from autotune.run.session import Measurement, Session
 from autotune.run.stage import StageOutcome, child_seed
 from autotune.progress import NightProgress, setpoints_text
-from autotune.wire.rig import Rig
+from autotune.wire.rig import Rig, measurement_shots
 from autotune.analysis.search import PointResult
 from autotune.run.night_settings import (
     PreparedNight,
@@ -554,7 +554,7 @@ class Night:
                              point=point)
             if self.clock.end_reason() is not None:
                 return
-            check_s = 2 * self.settings.ramsey_phases * int(nxt["shots_per_phase"]) / \
+            check_s = measurement_shots(self.settings.ramsey_phases, int(nxt["shots_per_phase"])) / \
                 self.settings.repetition_rate_hz
             if not self._budget().affords(check_s):
                 # The ceiling first: a plan within what is left, else no more checks.
@@ -592,7 +592,7 @@ class Night:
         lock = DriftLock.from_dict(state["lock"])
         tests = state["tests"]
         held = {k: float(v) for k, v in state["held"].items()}
-        shots = 2 * len(self.session.phases) * m.shots_per_phase
+        shots = measurement_shots(len(self.session.phases), m.shots_per_phase)
         result = PointResult.from_estimate(estimate, clock_s=m.clock_s, shots=shots)
         limit = self.session.limits["detuning"]
         pooled = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in state["noise"]])

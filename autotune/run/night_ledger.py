@@ -9,6 +9,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from autotune.run.journal import Journal
+from autotune.wire.rig import measurement_shots
 
 __all__ = ["HOLD", "NightLedger", "same_setpoints", "json_ready", "stage_records", "stage_outcome",
            "stage_estimates"]
@@ -153,5 +154,5 @@ def stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: in
         elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
                                                                      "correct"):
             per_phase = opened.get((rec["label"], rec["point"]), 0)
-            out.append({**rec, "shots": 2 * phases * per_phase})
+            out.append({**rec, "shots": measurement_shots(phases, per_phase)})
     return out

@@ -12,6 +12,7 @@ from typing import Any
 from autotune.config import RunConfig
 from autotune.analysis.hold import HoldSettings, StageSize, expected_stage_beam_s
 from autotune.run.guided_stage import lock_settings
+from autotune.wire.rig import measurement_shots
 
 __all__ = ["PreparedNight", "hold_settings", "planned_stage", "expected_stage_s",
            "EXPECTED_RETUNE_STEPS"]
@@ -85,5 +86,5 @@ def expected_stage_s(config: RunConfig, spent: Sequence[float], kind: str,
     per_phase = size.check_shots_per_phase + size.verification_shots_per_phase + \
         (EXPECTED_RETUNE_STEPS if kind == "retune" else config.search.min_points) * \
         config.lock.lock_shots_per_phase
-    prior = 2 * config.measurement.ramsey_phases * per_phase / repetition_rate_hz
+    prior = measurement_shots(config.measurement.ramsey_phases, per_phase) / repetition_rate_hz
     return expected_stage_beam_s(prior, spent)
