@@ -12,8 +12,9 @@ What lives here:
   concern in :mod:`~autotune.analysis.lock_fit` (the detuning lock's fit),
   :mod:`~autotune.analysis.velocity_model` (the inversion along velocity),
   :mod:`~autotune.analysis.shortfall` (the bound as data), :mod:`~autotune.analysis.next_point`
-  (the choice of the next point) and :mod:`~autotune.analysis.retune_verdict` (a retune's
-  verdict);
+  (the choice of the next point), :mod:`~autotune.analysis.retune_verdict` (a retune's
+  verdict) and :mod:`~autotune.analysis.lock_settings` (its settings and the prior a
+  calibration stores);
 - :mod:`~autotune.analysis.strategies`: a strategy by its configured name;
 - :mod:`~autotune.analysis.hold`: the night's pure core, described and re-exported there, over
   :mod:`~autotune.analysis.hold_lock` (drift lock, sequential test, settings),
@@ -32,5 +33,5 @@ module you need (``from autotune.analysis.fringe import estimate_inversion``).
 """
 
 __all__ = ["fringe", "guided", "hold", "hold_budget", "hold_check", "hold_lock", "hold_plan",
-           "hold_signal", "lock_fit", "next_point", "retune_verdict", "search",
+           "hold_signal", "lock_fit", "lock_settings", "next_point", "retune_verdict", "search",
            "search_scans", "search_types", "shortfall", "strategies", "velocity_model"]
