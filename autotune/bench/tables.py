@@ -258,7 +258,7 @@ def shots_by_purpose_rows(study: Mapping[str, Any], stage: str = "calibrate"
         out.setdefault(run["family"], {}).setdefault(run["strategy"], {}).setdefault("_runs", [])
         out[run["family"]][run["strategy"]]["_runs"].append(record["shots_by_purpose"])
     for family in out.values():
-        for strategy, row in family.items():
+        for row in family.values():
             runs = row.pop("_runs")
             for purpose in PURPOSES_SHOWN:
                 values = sorted(float(r.get(purpose, 0)) for r in runs)
@@ -278,9 +278,9 @@ def _format_shots_by_purpose(study: Mapping[str, Any]) -> list[str]:
     if not rows:
         return []
     floor = float(study["oracle"]["shots"])
-    lines = ["", "1b. where a calibration's shots went: median shots of each purpose over the "
-                 "family's calibrations, as a multiple of the oracle floor (medians do not add "
-                 "up to the median stage)"]
+    lines = ["", ("1b. where a calibration's shots went: median shots of each purpose over the "
+                  "family's calibrations, as a multiple of the oracle floor (medians do not add "
+                  "up to the median stage)")]
     for name in study["plan"]["families"]:
         for kind, row in rows.get(name, {}).items():
             parts = ", ".join(f"{purpose} {row[purpose] / floor:.2f}" for purpose in PURPOSES_SHOWN
