@@ -3,9 +3,7 @@
 Once the detuning lock and the velocity model are established, each next point of
 :class:`autotune.analysis.guided.PhaseLockSearch` is the candidate (a lock point at the recommendation,
 or a velocity point one or two steps either side) whose measurement is expected to lower the
-predicted shortfall's upper bound most per shot, every candidate's fall taken at the same
-number of shots (the largest step's) so that a cheaper step is not preferred for its size alone.
-The posterior covariance after a
+predicted shortfall's upper bound most per shot. The posterior covariance after a
 linear-Gaussian update does not depend on the value to be measured, so the bound a
 measurement would leave is known before it is made (see :mod:`autotune.analysis.guided`'s notes).
 
@@ -120,22 +118,15 @@ def _best(search: PhaseLockSearch, velocity: float, clock: float | None
     rec = {"velocity": velocity, "detuning": search._clip_detuning(rec_delta)}
     # What this stage's points can lower (a retune's inherited velocity term they cannot).
     now = search._shortfall_at(rec, clock, inherit=False)
-    found = candidates(search, velocity, clock)
-    # Compared at equal shots: the bound's expected fall is concave in the shots, so a fall
-    # per shot taken at each candidate's own (smaller or larger) step would favour the
-    # cheaper step for its size, not for what a shot there teaches.
-    common = max(shots_per_phase for *_, shots_per_phase in found)
     best = None
-    for purpose, v, d, shots_per_phase in found:
-        after = expected_after(search, rec, v, d, common, clock, inherit=False)
-        gain = (now.upper - after.upper) / search._total_shots(common)
+    for purpose, v, d, shots_per_phase in candidates(search, velocity, clock):
+        shots = search._total_shots(shots_per_phase)
+        after = expected_after(search, rec, v, d, shots_per_phase, clock, inherit=False)
+        gain = (now.upper - after.upper) / shots
         if best is None or gain > best[0] + 1e-15:
             best = (gain, purpose, v, d, shots_per_phase, after)
     assert best is not None
-    gain, purpose, v, d, shots_per_phase, after = best
-    if shots_per_phase != common:
-        after = expected_after(search, rec, v, d, shots_per_phase, clock, inherit=False)
-    return now, (gain, purpose, v, d, shots_per_phase, after)
+    return now, best
 
 
 def expected_fall(search: PhaseLockSearch, velocity: float, clock: float | None) -> tuple[float, float]:
