@@ -391,6 +391,17 @@ def test_table_reprints_from_the_result_file(study, tmp_path, capsys):
     assert capsys.readouterr().out.rstrip("\n") == bench.format_table(study)
 
 
+def test_show_of_a_study_from_before_the_families_is_a_clear_error(tmp_path, capsys):
+    """A study stored before the scenario families is refused in one line (exit 2), not
+    printed by an untested table."""
+    path = tmp_path / "old.json"
+    path.write_text(json.dumps({"mode": "quick", "summary": {}, "command": "x"}),
+                    encoding="utf-8")
+    assert bench.main(["--show", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "before the scenario families" in err and str(path) in err
+
+
 def test_show_of_a_missing_file_is_a_clear_error(tmp_path, capsys):
     """A result file that is not there is refused with its name, exit code 2."""
     missing = tmp_path / "nope.json"
