@@ -19,6 +19,8 @@ from typing import Any, Literal, Protocol, runtime_checkable
 import numpy as np
 from scipy import special
 
+from autotune.schema import is_number
+
 __all__ = [
     "Dimension",
     "SearchSpace",
@@ -202,10 +204,6 @@ class Recommendation:
     stderr: float
 
 
-def _is_number(value: Any) -> bool:
-    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer))
-
-
 def _check_purpose(purpose: Any) -> str:
     if purpose not in PURPOSES:
         raise ValueError(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
@@ -261,7 +259,7 @@ class PointResult:
                      "absorption", "absorption_stderr", "contrast_empty", "contrast_empty_stderr",
                      "contrast_one_photon", "contrast_one_photon_stderr"):
             value = getattr(self, name)
-            if not _is_number(value) or not math.isfinite(float(value)):
+            if not is_number(value) or not math.isfinite(float(value)):
                 raise ValueError(f"PointResult.{name}: expected a finite number, got {value!r}")
             object.__setattr__(self, name, float(value))
             if name.endswith("_stderr") and float(value) < 0.0:
@@ -274,7 +272,7 @@ class PointResult:
             raise ValueError(f"PointResult.identified: expected a bool, got {self.identified!r}")
         object.__setattr__(self, "identified", bool(self.identified))
         if self.clock_s is not None:
-            if not _is_number(self.clock_s) or not math.isfinite(float(self.clock_s)):
+            if not is_number(self.clock_s) or not math.isfinite(float(self.clock_s)):
                 raise ValueError(f"PointResult.clock_s: expected None or a finite number of seconds, got {self.clock_s!r}")
             object.__setattr__(self, "clock_s", float(self.clock_s))
         if isinstance(self.shots, bool) or not isinstance(self.shots, (int, np.integer)) or self.shots < 0:
@@ -313,11 +311,11 @@ class PointResult:
         if missing:
             raise ValueError(f"estimate: expected an InversionEstimate-like object, missing attributes {missing}")
         confidence = estimate.confidence
-        if not _is_number(confidence) or not 0.0 < float(confidence) < 1.0:
+        if not is_number(confidence) or not 0.0 < float(confidence) < 1.0:
             raise ValueError(f"estimate.confidence: expected a number in (0, 1), got {confidence!r}")
         low, high = estimate.absorption_low, estimate.absorption_high
         for name, value in (("absorption_low", low), ("absorption_high", high)):
-            if not _is_number(value) or not math.isfinite(float(value)):
+            if not is_number(value) or not math.isfinite(float(value)):
                 raise ValueError(f"estimate.{name}: expected a finite number, got {value!r}")
         if float(high) < float(low):
             raise ValueError(f"estimate: expected absorption_low <= absorption_high, got {low!r} > {high!r}")
@@ -371,7 +369,7 @@ class Proposal:
             raise ValueError(f"Proposal.point: expected a non-empty mapping {{name: value}}, got {self.point!r}")
         point = {}
         for name, value in self.point.items():
-            if not isinstance(name, str) or not _is_number(value) or not math.isfinite(float(value)):
+            if not isinstance(name, str) or not is_number(value) or not math.isfinite(float(value)):
                 raise ValueError(f"Proposal.point[{name!r}]: expected a finite number, got {value!r}")
             point[name] = float(value)
         object.__setattr__(self, "point", point)

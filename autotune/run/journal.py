@@ -28,7 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError, RunAlreadyEnded
-from autotune.run.records import check_fields
+from autotune.run.records import End, check_fields, parse
 
 __all__ = [
     "Journal",
@@ -116,11 +116,11 @@ def ended_error(run_dir: Path, records: list[dict[str, Any]], word: str = "run"
                 ) -> RunAlreadyEnded | None:
     """The :class:`RunAlreadyEnded` of a journal whose last record ends it with a final status
     (one not in :data:`RESUMABLE`), with the folder's result; None when it may be resumed."""
-    last = records[-1] if records else {}
-    if last.get("type") != "end" or last.get("status") in RESUMABLE:
+    last = parse(records[-1]) if records else None
+    if not isinstance(last, End) or last.status in RESUMABLE:
         return None
-    return RunAlreadyEnded(f"{run_dir}: the {word} already ended ({last.get('status')}); "
-                           f"nothing to resume", str(last.get("status")), ended_result(run_dir))
+    return RunAlreadyEnded(f"{run_dir}: the {word} already ended ({last.status}); "
+                           f"nothing to resume", last.status, ended_result(run_dir))
 
 
 def already_ended(run_dir: Path, command: str) -> RunAlreadyEnded | None:

@@ -11,7 +11,7 @@ from typing import Any
 
 import structlog
 
-from autotune.errors import RigError
+from autotune.errors import JournalError, RigError
 from autotune.analysis.fringe import InversionEstimate
 from autotune.analysis.guided import LockPrior, detuning_offset
 from autotune.analysis.hold import (
@@ -34,6 +34,8 @@ from autotune.analysis.hold import (
     unwatched_until,
 )
 from autotune.run.journal import utc_now, write_json_atomic
+from autotune.run.records import (Decision, Hold, MeasurementOpened, Start, decisions, of_type,
+                                  parse_all)
 from autotune.run.guard import Budget, retune_box
 from autotune.run.guided_stage import run_guided_stage
 from autotune.run.replay import replay_records
@@ -53,6 +55,7 @@ from autotune.run.night_ledger import (
     NightLedger,
     json_ready,
     same_setpoints,
+    stage_begun,
     stage_estimates,
     stage_outcome,
     stage_records,
@@ -87,14 +90,17 @@ class Night:
         self.simulated = bool(getattr(prepared.description, "simulated", False)) and \
             callable(getattr(rig, "advance", None))
         records = list(ledger.records)
-        starts = [r for r in records if r.get("type") == "start"]
-        self.start_clock = float(starts[0]["clock"])
-        self.start_wall = parse_wall(starts[0].get("t_wall")) or wall()
+        typed = parse_all(records)
+        start = of_type(typed, Start)[0]
+        if start.clock is None:
+            raise JournalError(f"journal record {start.seq}: the night's start has no rig clock")
+        self.start_clock = start.clock
+        self.start_wall = parse_wall(start.t_wall) or wall()
         snapshot = None
-        for index in range(len(records) - 1, -1, -1):
-            rec = records[index]
-            if rec.get("type") == "hold" or (rec.get("type") == "decision"
-                                             and rec.get("what") in _SNAPSHOT_DECISIONS):
+        for index in range(len(typed) - 1, -1, -1):
+            rec = typed[index]
+            if isinstance(rec, Hold) or (isinstance(rec, Decision)
+                                         and rec.what in _SNAPSHOT_DECISIONS):
                 snapshot = index
                 break
         self.state: dict[str, Any] | None = None
@@ -118,11 +124,11 @@ class Night:
         return self.ledger.records[self._tail_start:]
 
     def _find(self, kind: str, **match: Any) -> Mapping[str, Any] | None:
-        for rec in self.tail:
-            if rec.get("type") != kind:
+        for raw, rec in zip(self.tail, parse_all(self.tail), strict=True):
+            if rec.type != kind:
                 continue
             if all(rec.get(k) == v for k, v in match.items()):
-                return rec
+                return raw
         return None
 
     def _snapshot(self, kind: str, **fields: Any) -> None:
@@ -187,16 +193,15 @@ class Night:
 
     def _in_flight(self) -> str | None:
         """``"stage"`` or ``"check"`` when the journal's tail holds one begun and not finished."""
-        begun = {r["index"] for r in self.tail if r.get("type") == "decision"
-                 and r.get("what") in ("retune", "calibrate") and "index" in r}
-        done = {r["index"] for r in self.tail if r.get("type") == "decision"
-                and r.get("what") == "stage_done"}
+        tail = parse_all(self.tail)
+        begun = {index for r in tail if (index := stage_begun(r)) is not None}
+        done = {r.get("index") for r in decisions(tail, "stage_done")}
         if begun - done:
             return "stage"
         if self.state is not None and self.state.get("mode") == "hold" and self.state.get("next"):
             point = self.state["next"]["point"]
-            if any(r.get("type") == "measurement" and r.get("label") == HOLD
-                   and r.get("point") == point for r in self.tail):
+            if any(r.label == HOLD and r.point == point
+                   for r in of_type(tail, MeasurementOpened)):
                 return "check"
         return None
 
@@ -747,8 +752,8 @@ class Night:
             "budget_ceiling_s": self._budget().ceiling_s,
             # Rig time the night could not hold because of the budget (hold.Unheld).
             "budget_unheld_s": Unheld.from_dict(state.get("unheld")).at(self.session.clock),
-            "budget_limited": sum(1 for r in self.ledger.records if r.get("type") == "decision"
-                                  and r.get("what") in ("budget", "unwatched")),
+            "budget_limited": len(decisions(parse_all(self.ledger.records), "budget",
+                                            "unwatched")),
             "plan": state.get("plan"), "lock": state.get("lock"),
             "run_dir": str(self.prepared.run_dir),
         }

@@ -9,9 +9,11 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from autotune.run.journal import Journal
+from autotune.run.records import (Acquisition, Decision, Estimate, MeasurementOpened, Record,
+                                  StageHeader, parse, parse_all)
 from autotune.wire.rig import measurement_shots
 
-__all__ = ["HOLD", "NightLedger", "same_setpoints", "json_ready", "stage_records", "stage_outcome",
+__all__ = ["HOLD", "NightLedger", "stage_begun", "same_setpoints", "json_ready", "stage_records", "stage_outcome",
            "stage_estimates"]
 
 # Measurement label of the night's checks.
@@ -41,11 +43,11 @@ class NightLedger:
 
     def _count(self, rec: Mapping[str, Any]) -> None:
         self.records.append(rec)
-        kind = rec.get("type")
-        if kind == "acquisition":
-            beam = float(rec["t_end"]) - float(rec["t_start"])
-            self.shots += int(rec["shots"])
-            if rec.get("label") == HOLD:
+        typed = parse(rec)
+        if isinstance(typed, Acquisition):
+            beam = typed.t_end - typed.t_start
+            self.shots += typed.shots
+            if typed.label == HOLD:
                 self.check_beam_s += beam
             else:
                 self.stage_beam_s_total += beam
@@ -53,13 +55,13 @@ class NightLedger:
                 self.stage_beam_s[index] = self.stage_beam_s.get(index, 0.0) + beam
                 if self.stages_begun == 1:
                     self.first_stage_beam_s += beam
-        elif kind == "estimate":
+        elif isinstance(typed, Estimate):
             self.last_estimate = rec
-        elif kind == "decision" and rec.get("what") in ("retune", "calibrate") and "index" in rec:
-            self.stages_begun = max(self.stages_begun, int(rec["index"]) + 1)
-            self.stage_kind[int(rec["index"])] = str(rec["what"])
-            if int(rec["index"]) == 0:
-                self.first_stage_is_calibration = rec.get("what") == "calibrate"
+        elif (index := stage_begun(typed)) is not None:
+            self.stages_begun = max(self.stages_begun, index + 1)
+            self.stage_kind[index] = typed.what  # type: ignore[attr-defined]
+            if index == 0:
+                self.first_stage_is_calibration = typed.what == "calibrate"  # type: ignore[attr-defined]
 
     @property
     def holding_beam_s(self) -> float:
@@ -94,21 +96,40 @@ def json_ready(value: Any) -> Any:
     return value
 
 
-def stage_records(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
-    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+def stage_begun(rec: Record) -> int | None:
+    """The index of the stage a record begins (a ``retune`` or ``calibrate`` decision), or
+    None."""
+    if isinstance(rec, Decision) and rec.what in ("retune", "calibrate") \
+            and isinstance(rec.get("index"), int):
+        return int(rec.get("index"))
+    return None
+
+
+def _stage_span(records: Sequence[Mapping[str, Any]], index: int
+                ) -> list[tuple[Mapping[str, Any], Record]]:
+    """The records after the decision that began stage ``index`` up to its ``stage_done``
+    decision (excluded), each with its typed view."""
+    typed = parse_all(records)
     begun = None
-    for position, rec in enumerate(tail):
-        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                and rec.get("index") == index:
+    for position, rec in enumerate(typed):
+        if stage_begun(rec) == index:
             begun = position
     if begun is None:
         return []
-    out: list[Mapping[str, Any]] = []
-    for rec in tail[begun + 1:]:
-        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+    out = []
+    for raw, rec in zip(records[begun + 1:], typed[begun + 1:], strict=True):
+        if isinstance(rec, Decision) and rec.what == "stage_done":
             break
-        if out or rec.get("type") == "stage":
-            out.append(rec)
+        out.append((raw, rec))
+    return out
+
+
+def stage_records(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
+    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+    out: list[Mapping[str, Any]] = []
+    for raw, rec in _stage_span(tail, index):
+        if out or isinstance(rec, StageHeader):
+            out.append(raw)
     return out
 
 
@@ -116,14 +137,15 @@ def stage_outcome(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any]
                   ) -> dict[str, Any] | None:
     """A finished stage's outcome from its own records (its final decision), or None."""
     final = None
-    for rec in records:
-        if rec.get("type") == "decision" and rec.get("what") in ("accepted",
-                                                                  "below_acceptance",
-                                                                  "still_good"):
-            final = rec
+    estimates = []
+    for raw, rec in zip(records, parse_all(records), strict=True):
+        if isinstance(rec, Decision) and rec.what in ("accepted", "below_acceptance",
+                                                      "still_good"):
+            final = raw
+        elif isinstance(rec, Estimate):
+            estimates.append(raw)
     if final is None:
         return None
-    estimates = [r for r in records if r.get("type") == "estimate"]
     setpoints = {k: float(v) for k, v in final["setpoints"].items()}
     at = [r for r in estimates if same_setpoints(r["setpoints"], setpoints)]
     last = at[-1] if at else estimates[-1]
@@ -138,21 +160,11 @@ def stage_outcome(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any]
 def stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: int
                      ) -> list[Mapping[str, Any]]:
     """The check, verification and correction estimates of stage ``index`` with their shots."""
-    begun = None
-    for position, rec in enumerate(records):
-        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
-                and rec.get("index") == index:
-            begun = position
-    if begun is None:
-        return []
     out, opened = [], {}
-    for rec in records[begun + 1:]:
-        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
-            break
-        if rec.get("type") == "measurement":
-            opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
-        elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
-                                                                     "correct"):
-            per_phase = opened.get((rec["label"], rec["point"]), 0)
-            out.append({**rec, "shots": measurement_shots(phases, per_phase)})
+    for raw, rec in _stage_span(records, index):
+        if isinstance(rec, MeasurementOpened):
+            opened[(rec.label, rec.point)] = rec.shots_per_phase
+        elif isinstance(rec, Estimate) and rec.label in ("check", "verify", "correct"):
+            per_phase = opened.get((rec.label, rec.point), 0)
+            out.append({**raw, "shots": measurement_shots(phases, per_phase)})
     return out

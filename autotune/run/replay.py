@@ -11,6 +11,9 @@ from typing import Any
 
 from autotune.errors import JournalError
 from autotune.analysis.fringe import InversionEstimate
+from autotune.run.records import (Acquisition, Amend, Decision, Discarded, Estimate,
+                                  MeasurementOpened, Proposal, Record, Refused, Request,
+                                  StageHeader, of_type, parse_all)
 from autotune.run.session import Measurement, Tally
 
 __all__ = ["Replayed", "replay_records", "measured_estimates", "tally_from"]
@@ -38,53 +41,51 @@ def replay_records(records: Iterable[Mapping[str, Any]]) -> Replayed:
         twice (both mean a damaged journal).
     """
     out = Replayed()
-    requests: dict[str, tuple[tuple[str, int], str, int, int]] = {}
-    for rec in records:
-        kind = rec.get("type")
-        if kind == "stage":
-            out.header = dict(rec)
-        elif kind == "measurement":
-            key = (rec["label"], int(rec["point"]))
-            out.measurements[key] = Measurement(rec["label"], int(rec["point"]),
-                                                 dict(rec["setpoints"]),
-                                                 int(rec["shots_per_phase"]))
-        elif kind == "amend":
-            out.measurements[(rec["label"], int(rec["point"]))].shots_per_phase = \
-                int(rec["shots_per_phase"])
-        elif kind == "request" and rec.get("op") == "acquire":
-            key = (rec["label"], int(rec["point"]))
-            if key not in out.measurements:
-                raise JournalError(f"journal record {rec['seq']}: a request for measurement "
-                                   f"{key} that was never opened")
-            slot = (rec["field"], int(rec["phase_index"]))
-            out.measurements[key].pending[slot] = (rec["msg_id"], int(rec["shots"]))
-            requests[rec["msg_id"]] = (key, rec["field"], int(rec["phase_index"]),
-                                       int(rec["shots"]))
-        elif kind in ("acquisition", "discarded", "refused"):
-            key = (rec["label"], int(rec["point"]))
-            m = out.measurements.get(key)
-            if m is None:
-                raise JournalError(f"journal record {rec['seq']}: an {kind} for measurement "
-                                   f"{key} that was never opened")
-            slot = (rec["field"], int(rec["phase_index"]))
+    for rec in parse_all(records):  # a record that does not fit its type: a damaged journal
+        if isinstance(rec, StageHeader):
+            out.header = rec.as_dict()
+        elif isinstance(rec, MeasurementOpened):
+            out.measurements[(rec.label, rec.point)] = Measurement(
+                rec.label, rec.point, dict(rec.setpoints), rec.shots_per_phase)
+        elif isinstance(rec, Amend):
+            opened(out, rec, rec.label, rec.point).shots_per_phase = rec.shots_per_phase
+        elif isinstance(rec, Request) and rec.op == "acquire":
+            if rec.label is None or rec.point is None or rec.field is None \
+                    or rec.phase_index is None or rec.shots is None:
+                raise JournalError(f"journal record {rec.seq}: a request to acquire without "
+                                   f"its label, point, field, phase index and shots")
+            m = opened(out, rec, rec.label, rec.point)
+            m.pending[(rec.field, rec.phase_index)] = (rec.msg_id, rec.shots)
+        elif isinstance(rec, (Acquisition, Discarded, Refused)):
+            m = opened(out, rec, rec.label, rec.point)
+            slot = (rec.field, rec.phase_index)
             m.pending.pop(slot, None)
-            if kind == "acquisition":
+            if isinstance(rec, Acquisition):
                 if slot in m.counts:
-                    raise JournalError(f"journal record {rec['seq']}: acquisition {key} {slot} "
-                                       f"appears twice")
-                c = rec["counts"]
-                m.counts[slot] = (int(c["e"]), int(c["g"]), int(c["i"]))
-                m.note_times(float(rec["t_start"]), float(rec["t_end"]))
-        elif kind == "estimate":
-            key = (rec["label"], int(rec["point"]))
+                    raise JournalError(f"journal record {rec.seq}: acquisition "
+                                       f"{(rec.label, rec.point)} {slot} appears twice")
+                m.counts[slot] = (rec.counts.e, rec.counts.g, rec.counts.i)
+                m.note_times(rec.t_start, rec.t_end)
+        elif isinstance(rec, Estimate):
+            key = (rec.label, rec.point)
             if key not in out.estimates:
                 out.estimate_order.append(key)
-            out.estimates[key] = dict(rec)
-        elif kind == "proposal":
-            out.proposals[int(rec["point"])] = {k: float(v) for k, v in rec["setpoints"].items()}
-        elif kind == "decision":
-            out.decisions[str(rec.get("what"))] = dict(rec)
+            out.estimates[key] = rec.as_dict()
+        elif isinstance(rec, Proposal):
+            out.proposals[rec.point] = dict(rec.setpoints)
+        elif isinstance(rec, Decision):
+            out.decisions[rec.what] = rec.as_dict()
     return out
+
+
+def opened(out: Replayed, rec: Record, label: str, point: int) -> Measurement:
+    """The measurement a record refers to; one the journal never opened is damage."""
+    m = out.measurements.get((label, point))
+    if m is None:
+        article = "an" if rec.type[0] in "aeiou" else "a"
+        raise JournalError(f"journal record {rec.seq}: {article} {rec.type} for measurement "
+                           f"{(label, point)} that was never opened")
+    return m
 
 
 def measured_estimates(replayed: Replayed) -> list[tuple[str, dict[str, float], InversionEstimate]]:
@@ -95,9 +96,9 @@ def measured_estimates(replayed: Replayed) -> list[tuple[str, dict[str, float], 
 
 
 def tally_from(records: Iterable[Mapping[str, Any]]) -> Tally:
+    """The shots and rig time the acquisitions of these records spent."""
     tally = Tally()
-    for rec in records:
-        if rec.get("type") == "acquisition":
-            tally.shots += int(rec["shots"])
-            tally.rig_time_s += float(rec["t_end"]) - float(rec["t_start"])
+    for rec in of_type(parse_all(records), Acquisition):
+        tally.shots += rec.shots
+        tally.rig_time_s += rec.t_end - rec.t_start
     return tally

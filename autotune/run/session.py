@@ -30,6 +30,7 @@ from autotune.errors import (
 )
 from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.run.journal import Journal
+from autotune.run.records import Move, MoveUnconfirmed, Request, Safe, SafeFailed, parse_all
 from autotune.wire.protocol import new_msg_id
 from autotune.wire.rig import FIELDS, Rig, measurement_shots
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress
@@ -411,16 +412,15 @@ class Session:
         """
         intents: dict[str, dict[str, float]] = {}
         safes: set[str] = set()
-        for rec in records:
-            kind = rec.get("type")
-            if kind == "request" and rec.get("op") == "apply" and rec.get("msg_id"):
-                intents[str(rec["msg_id"])] = {k: float(v) for k, v in rec["setpoints"].items()}
-            elif kind == "request" and rec.get("op") == "safe" and rec.get("msg_id"):
-                safes.add(str(rec["msg_id"]))
-            elif kind in ("move", "move_unconfirmed") and rec.get("msg_id") in intents:
-                del intents[str(rec["msg_id"])]
-            elif kind in ("safe", "safe_failed") and rec.get("msg_id") in safes:
-                safes.discard(str(rec["msg_id"]))
+        for rec in parse_all(records):
+            if isinstance(rec, Request) and rec.op == "apply" and rec.msg_id and rec.setpoints:
+                intents[rec.msg_id] = dict(rec.setpoints)
+            elif isinstance(rec, Request) and rec.op == "safe" and rec.msg_id:
+                safes.add(rec.msg_id)
+            elif isinstance(rec, (Move, MoveUnconfirmed)) and rec.msg_id in intents:
+                del intents[rec.msg_id]
+            elif isinstance(rec, (Safe, SafeFailed)) and rec.msg_id in safes:
+                safes.discard(rec.msg_id)
         self._unresolved_moves.update(intents)
         self._unresolved_safe.update(safes)
 

@@ -80,6 +80,7 @@ from autotune.run.journal import (
     ended_error,
     write_json_atomic,
 )
+from autotune.run.records import Start, of_type, parse_all
 from autotune.run.session import Session
 from autotune.progress import ProgressObserver
 from autotune.wire.rig import Rig
@@ -212,7 +213,7 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
                                        for k, old, new in prepared.changes),
                            changes=[{"key": k, "old": old, "new": new}
                                     for k, old, new in prepared.changes])
-        if not any(r.get("type") == "start" for r in records):
+        if not of_type(parse_all(records), Start):
             clock = opening_clock if opening_clock is not None else \
                 float(session._call("status", lambda _id: rig.status()).clock)
             ledger.append("start", clock=clock, command="track",
