@@ -306,6 +306,28 @@ def test_a_retune_not_accepted_but_as_good_as_the_last_calibration_is_held(tmp_p
     assert not [r for r in decisions if r["what"] == "calibrate"]
     assert result["status"] == "ended" and result["checks"] >= 1 and result["failures"] == 0
     assert store.read_text() == stored
+    # Cut after the retune's stage_done and after the adopt decision, resumed with half an hour
+    # of the night left on the rig's clock: the resume holds the same point once, with one adopt
+    # decision and still no calibration.
+    config = dataclasses.replace(config, track=dataclasses.replace(
+        config.track, max_rig_time_s=config.track.max_rig_time_s + 1800.0))
+    lines = (tmp_path / "night" / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+    for what in ("stage_done", "adopt"):
+        index = next(i for i, r in enumerate(records)
+                     if r["type"] == "decision" and r["what"] == what)
+        run = tmp_path / f"cut-{what}"
+        shutil.copytree(tmp_path / "night", run)
+        (run / JOURNAL_NAME).write_bytes(b"".join(lines[: index + 1]))
+        (run / RESULT_NAME).unlink()
+        again = track.track(rig, config, run, resume=True, store=store)
+        after = read_journal(run / JOURNAL_NAME)
+        check_invariants(after)
+        assert after[: index + 1] == records[: index + 1]
+        decided = [r for r in after if r["type"] == "decision"]
+        assert [r["index"] for r in decided if r["what"] == "adopt"][:1] == [0]
+        assert sum(r["what"] == "adopt" and r["index"] == 0 for r in decided) == 1
+        assert not [r for r in decided if r["what"] == "calibrate"]
+        assert again["status"] == "ended"
 
 
 def test_a_night_without_a_last_good_calibration_calibrates_first(tmp_path):

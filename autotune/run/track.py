@@ -911,10 +911,10 @@ class _Night:
         index = int(chain["first_index"])
         for position, kind in enumerate(chain["kinds"]):
             begun = self._find("decision", what=kind, index=index + position) is not None
-            if position > 0 and not begun and self.clock.end_reason() is not None:
-                return  # the night's end came: no new stage (the main loop stops the night)
             if position > 0 and self._adopt(index + position - 1):
                 return
+            if position > 0 and not begun and self.clock.end_reason() is not None:
+                return  # the night's end came: no new stage (the main loop stops the night)
             choice = self._choose(kind, index + position, chain)
             if choice is not None and choice.action in ("correct", "hold"):
                 if self._compromise(choice, chain):
