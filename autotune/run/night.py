@@ -412,7 +412,7 @@ class Night:
                 f"{test['p']:.3f} >= {test['level']}; at least [acceptance] min_inversion "
                 f"{test['min_inversion']:.3f}): held at "
                 f"{setpoints_text(outcome['setpoints'])} without a further stage; the checks "
-                f"go on from there", index=index, test=_clean(test))
+                f"go on from there", index=index, test=json_ready(test))
         self._resume_holding(outcome, store=False)
         return True
 
