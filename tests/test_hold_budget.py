@@ -26,6 +26,7 @@ from autotune.analysis.hold import (
     checks_reserve_s,
     checks_share,
     choose_recovery,
+    holds_as_well,
     cusum_arl,
     noise_row,
     plan_checks,
@@ -352,3 +353,34 @@ def test_after_a_retune_the_checks_keep_half_the_budget_and_a_poor_signal_its_ca
                        check_share=share["share"], signal=signal)
     assert plan.interval_s <= s.max_interval_s
     assert plan.step_delay_s < 600.0
+
+
+@pytest.mark.parametrize(("inversion", "stderr", "reference", "reference_sd"), [
+    (0.726, 0.040, 0.718, 0.012), (0.62, 0.03, 0.72, 0.01), (0.70, 0.02, 0.72, 0.02),
+    (0.65, 0.02, 0.72, 0.02)])
+def test_a_failed_retunes_point_is_held_when_not_below_the_reference(inversion, stderr,
+                                                                     reference, reference_sd):
+    """The test that lets a night hold a retune's point that missed its acceptance bound is the
+    one-sided z-test of the difference of two independent Gaussian estimates: its z and p are
+    scipy.stats.norm's, and it holds exactly when p is at least the 2.5 % level."""
+    test = holds_as_well(inversion, stderr, reference, reference_sd)
+    z = (inversion - reference) / math.hypot(stderr, reference_sd)
+    assert test["z"] == pytest.approx(z, rel=1e-12)
+    assert test["p"] == pytest.approx(stats.norm.cdf(z), rel=1e-9)
+    assert test["holds"] is bool(stats.norm.cdf(z) >= 0.025)
+
+
+def test_the_held_point_test_at_its_worked_boundary():
+    """Worked values: a difference of -1.96 combined standard errors is the two-sided 95 % bound
+    (common practice), p = 0.025 (scipy.stats.norm.cdf(-1.959964) = 0.0250000); just above it the
+    point holds, just below it does not."""
+    assert stats.norm.cdf(-1.959964) == pytest.approx(0.025, abs=1e-7)
+    spread = math.hypot(0.03, 0.04)  # 0.05
+    assert holds_as_well(0.70 - 1.95 * spread, 0.03, 0.70, 0.04)["holds"]
+    assert not holds_as_well(0.70 - 1.97 * spread, 0.03, 0.70, 0.04)["holds"]
+
+
+def test_the_held_point_never_waives_the_inversion_floor():
+    """A point as good as the reference but below [acceptance] min_inversion is not held."""
+    assert holds_as_well(0.72, 0.04, 0.70, 0.02, min_inversion=0.5)["holds"]
+    assert not holds_as_well(0.72, 0.04, 0.70, 0.02, min_inversion=0.99)["holds"]

@@ -837,7 +837,8 @@ def test_a_single_track_journal_with_new_records_draws_the_night(tmp_path: Path)
                                  "from": {"velocity": 505.0, "detuning": 0.0},
                                  "to": {"velocity": 505.0, "detuning": 3000.0}}),
                    ("decision", {"what": "correct", "reason": "relock"}),
-                   ("decision", {"what": "rig_mismatch", "reason": "describe changed"})]
+                   ("decision", {"what": "rig_mismatch", "reason": "describe changed"}),
+                   ("decision", {"what": "adopt", "reason": "retune 1 was not accepted but"})]
     run = _write_run(tmp_path / "night", measurements, command="track", box=None, end=None,
                      extra=corrections)
     built = report.build_report(run)
@@ -850,6 +851,7 @@ def test_a_single_track_journal_with_new_records_draws_the_night(tmp_path: Path)
     text = report.format_text(built)
     assert "lock_state (5)" in text
     assert "rig_mismatch: describe changed" in text
+    assert "adopt: retune 1 was not accepted but" in text
     assert "the run did not end" in text
 
 

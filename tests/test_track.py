@@ -282,6 +282,54 @@ def test_consecutive_failed_recoveries_stop_the_night(tmp_path):
     assert records[-2]["type"] == "safe"
 
 
+def test_a_retune_not_accepted_but_as_good_as_the_last_calibration_is_held(tmp_path):
+    """A thermal step before the night and a shortfall bar no retune can vouch for (0.01 %):
+    the night's first retune is not accepted, but its verified inversion is not below the last good calibration's (the z-test
+    of hold.holds_as_well), so the night holds its point (an 'adopt' decision) and checks on,
+    without a calibration; the last good calibration is not replaced."""
+    rig = _rig(23)
+    config = night_config(hours=1.0, budget_fraction=0.2)
+    store = tmp_path / "good.json"
+    runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
+    stored = store.read_text()
+    rig.thermal_step(15e3)
+    config = dataclasses.replace(config, max_shortfall=1e-4)
+    result = track.track(rig, config, tmp_path / "night", store=store)
+    records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+    check_invariants(records)
+    decisions = [r for r in records if r["type"] == "decision"]
+    done = next(r for r in decisions if r["what"] == "stage_done")
+    assert done["index"] == 0 and done["outcome"]["status"] == "below_acceptance"
+    adopt = [r for r in decisions if r["what"] == "adopt"]
+    assert len(adopt) >= 1 and adopt[0]["index"] == 0 and adopt[0]["test"]["holds"]
+    assert adopt[0]["test"]["p"] >= adopt[0]["test"]["level"]
+    assert not [r for r in decisions if r["what"] == "calibrate"]
+    assert result["status"] == "ended" and result["checks"] >= 1 and result["failures"] == 0
+    assert store.read_text() == stored
+    # Cut after the retune's stage_done and after the adopt decision, resumed with half an hour
+    # of the night left on the rig's clock: the resume holds the same point once, with one adopt
+    # decision and still no calibration.
+    config = dataclasses.replace(config, track=dataclasses.replace(
+        config.track, max_rig_time_s=config.track.max_rig_time_s + 1800.0))
+    lines = (tmp_path / "night" / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+    for what in ("stage_done", "adopt"):
+        index = next(i for i, r in enumerate(records)
+                     if r["type"] == "decision" and r["what"] == what)
+        run = tmp_path / f"cut-{what}"
+        shutil.copytree(tmp_path / "night", run)
+        (run / JOURNAL_NAME).write_bytes(b"".join(lines[: index + 1]))
+        (run / RESULT_NAME).unlink()
+        again = track.track(rig, config, run, resume=True, store=store)
+        after = read_journal(run / JOURNAL_NAME)
+        check_invariants(after)
+        assert after[: index + 1] == records[: index + 1]
+        decided = [r for r in after if r["type"] == "decision"]
+        assert [r["index"] for r in decided if r["what"] == "adopt"][:1] == [0]
+        assert sum(r["what"] == "adopt" and r["index"] == 0 for r in decided) == 1
+        assert not [r for r in decided if r["what"] == "calibrate"]
+        assert again["status"] == "ended"
+
+
 def test_a_night_without_a_last_good_calibration_calibrates_first(tmp_path):
     """No store: the night begins with a calibration (its beam time is not counted as
     holding), then holds."""

@@ -93,6 +93,8 @@ from autotune.analysis.hold_check import (
     lock_before_change,
     noise_row,
     peak_after_change,
+    ADOPT_LEVEL,
+    holds_as_well,
     recovery_start,
     reference_add,
     reference_value,
@@ -160,6 +162,8 @@ __all__ = [
     "noise_row",
     "reference_add",
     "reference_value",
+    "ADOPT_LEVEL",
+    "holds_as_well",
     "lock_before_change",
     "recovery_start",
 ]

@@ -35,6 +35,8 @@ __all__ = [
     "noise_row",
     "reference_add",
     "reference_value",
+    "ADOPT_LEVEL",
+    "holds_as_well",
     "lock_before_change",
     "recovery_start",
 ]
@@ -285,6 +287,41 @@ def reference_value(reference: Mapping[str, float]) -> tuple[float, float]:
     """``(inversion, stderr)`` of the inversion watch's reference (precision-weighted mean)."""
     weight = float(reference["weight"])
     return float(reference["weighted"]) / weight, 1.0 / math.sqrt(weight)
+
+
+#: One-sided level of :func:`holds_as_well`: a failed recovery's point is held when its verified
+#: inversion is not below the night's reference at this level.
+ADOPT_LEVEL = 0.025
+
+
+def holds_as_well(inversion: float, stderr: float, reference_inversion: float,
+                  reference_stderr: float, level: float = ADOPT_LEVEL,
+                  min_inversion: float = 0.0) -> dict[str, Any]:
+    """Whether a recovery that was not accepted verified a point the night can hold: its
+    inversion not significantly below the night's reference.
+
+    A one-sided z-test of the difference of two independent Gaussian estimates: ``z = (inversion
+    - reference) / sqrt(stderr^2 + reference_stderr^2)`` and its lower-tail probability
+    ``p = Phi(z)``; the point holds as well when ``p >= level`` and the inversion reaches
+    ``min_inversion`` (``[acceptance] min_inversion``: the floor is never waived). A retune is accepted only when
+    its bound on the shortfall from the true best is tight; one that missed that bound may still
+    have found a point as good as the one the night held before the change, far better than the
+    set-points the checks have just found off the peak. Holding it (the checks and the lock go on
+    from there) costs no beam; a calibration in its place would cost most of the night's budget.
+
+    Returns
+    -------
+    dict
+        ``holds`` (bool), ``z``, ``p`` and the inputs, for the journal.
+    """
+    spread = math.hypot(float(stderr), float(reference_stderr))
+    z = (float(inversion) - float(reference_inversion)) / max(spread, 1e-12)
+    p = 0.5 * math.erfc(-z / math.sqrt(2.0))
+    return {"holds": bool(p >= level and float(inversion) >= float(min_inversion)), "z": z,
+            "p": p, "level": float(level), "min_inversion": float(min_inversion),
+            "inversion": float(inversion), "stderr": float(stderr),
+            "reference_inversion": float(reference_inversion),
+            "reference_stderr": float(reference_stderr)}
 
 
 def lock_before_change(recent: Sequence[Mapping[str, Any]], side: str | None

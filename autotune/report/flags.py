@@ -23,8 +23,9 @@ PHASE_SIGMAS = 3.0
 PHASE_MIN_RAD = 0.1 * math.pi
 #: Fringe fit flagged when its chi-square p-value is below this.
 FIT_P_VALUE = 1e-3
-#: Decisions (``what``) that are flagged with their reason wherever they occur.
-ALARM_DECISIONS = frozenset({"alarm", "rig_mismatch"})
+#: Decisions (``what``) that are flagged with their reason wherever they occur (``adopt``: a
+#: night held the point of a retune that was not accepted).
+ALARM_DECISIONS = frozenset({"alarm", "rig_mismatch", "adopt"})
 #: Ended statuses that mean the run stopped before its result.
 BAD_ENDINGS = frozenset({"interrupted", "aborted", "failed"})
 

@@ -29,6 +29,7 @@ from autotune.analysis.hold import (
     noise_row,
     plan_night,
     recovery_start,
+    holds_as_well,
     reference_add,
     reference_value,
     unwatched_until,
@@ -333,6 +334,8 @@ class Night:
         index = int(chain["first_index"])
         for position, kind in enumerate(chain["kinds"]):
             begun = self._find("decision", what=kind, index=index + position) is not None
+            if position > 0 and self._adopt(index + position - 1):
+                return
             if position > 0 and not begun and self.clock.end_reason() is not None:
                 return  # the night's end came: no new stage (the main loop stops the night)
             choice = self._choose(kind, index + position, chain)
@@ -351,6 +354,8 @@ class Night:
             if outcome["accepted"] and outcome.get("lock_prior") is not None:
                 self._resume_holding(outcome)
                 return
+        if self._adopt(index + len(chain["kinds"]) - 1):
+            return
         self.state["counts"]["failures"] += 1
         failures = int(self.state["failures"]) + 1
         limit = self.config.track.max_consecutive_failures
@@ -374,6 +379,47 @@ class Night:
         self.state.update(mode="retry", retry_clock=retry)
         self._snapshot("failure", reason=f"recovery {failures} not accepted; trying again at rig "
                        f"clock {retry:.0f} s", failures=failures)
+
+    def _adopt(self, index: int) -> bool:
+        """Hold the point of stage ``index``, a retune not accepted, when its verification is
+        not significantly below the night's reference (:func:`holds_as_well`; at the night's
+        start, the last good calibration's inversion): an ``adopt`` decision with its numbers,
+        then the checks and the lock go on from there, with no further stage and no beam. The
+        night's reference and its last good calibration are kept. False (and nothing done) for
+        any other stage."""
+        done = self._find("decision", what="stage_done", index=index)
+        if done is None or done["outcome"].get("kind") != "retune" or done["outcome"]["accepted"]:
+            return False
+        outcome = done["outcome"]
+        if outcome.get("lock_prior") is None or outcome.get("estimate") is None:
+            return False
+        estimate = InversionEstimate.from_dict(outcome["estimate"])
+        if self.state.get("reference"):
+            reference, reference_sd = reference_value(self.state["reference"])
+            against = "the night's reference"
+        else:
+            good = self.prepared.last_good or {}
+            if good.get("inversion") is None or good.get("inversion_low") is None:
+                return False
+            reference = float(good["inversion"])
+            reference_sd = (float(good["inversion_high"]) - float(good["inversion_low"])) / (
+                2.0 * 1.959963984540054)
+            against = "the last good calibration's"
+        test = holds_as_well(estimate.inversion, estimate.inversion_stderr, reference,
+                             reference_sd, min_inversion=self.config.min_inversion)
+        if not test["holds"]:
+            return False
+        if self._find("decision", what="adopt", index=index) is None:
+            self.session.decide(
+                "adopt", f"retune {index} was not accepted ({outcome['status']}) but verified "
+                f"inversion {estimate.inversion:.3f} +- {estimate.inversion_stderr:.3f}, not "
+                f"below {against} {reference:.3f} +- {reference_sd:.3f} (z {test['z']:+.2f}, p "
+                f"{test['p']:.3f} >= {test['level']}; at least [acceptance] min_inversion "
+                f"{test['min_inversion']:.3f}): held at "
+                f"{setpoints_text(outcome['setpoints'])} without a further stage; the checks "
+                f"go on from there", index=index, test=json_ready(test))
+        self._resume_holding(outcome, store=False)
+        return True
 
     def _choose(self, kind: str, index: int, chain: Mapping[str, Any]) -> RecoveryChoice | None:
         """The size of stage ``index`` within the budget (a ``budget`` decision when the budget
@@ -445,8 +491,10 @@ class Night:
                           f"until rig clock {until:.0f} s, when the ceiling affords one again"),
                        budget=budget.to_dict())
 
-    def _resume_holding(self, outcome: Mapping[str, Any]) -> None:
-        """Hold from an accepted stage: reset the lock and the test there, store it, plan."""
+    def _resume_holding(self, outcome: Mapping[str, Any], *, store: bool = True) -> None:
+        """Hold from an accepted stage: reset the lock and the test there, store it, plan. With
+        ``store`` False (a point held though not accepted, :meth:`_adopt`), neither stored nor
+        counted as accepted, and the night's reference is kept."""
         prior = LockPrior.from_dict(outcome["lock_prior"])
         estimate = InversionEstimate.from_dict(outcome["estimate"])
         setpoints = {k: float(v) for k, v in outcome["setpoints"].items()}
@@ -467,15 +515,17 @@ class Night:
                       "prior": prior.to_dict(), "lock": lock.to_dict(),
                       # The inversion watch's reference: precision-weighted mean of the stage's
                       # last measurement and the checks since (self-starting).
-                      "reference": reference_add({"weight": 0.0, "weighted": 0.0},
-                                                  estimate.inversion,
-                                                  estimate.inversion_stderr),
+                      "reference": self.state["reference"] if not store and self.state.get(
+                          "reference") else reference_add({"weight": 0.0, "weighted": 0.0},
+                                                          estimate.inversion,
+                                                          estimate.inversion_stderr),
                       "tests": {"upper": 0.0, "lower": 0.0, "inversion": 0.0},
                       "noise": noise[-_NOISE_MEMORY:], "recent": [], "pending": None,
                       "next": None, "unheld": Unheld.from_dict(self.state.get("unheld")).end(
                           self.session.clock).to_dict()}
-        self.state["counts"]["stages_accepted"] += 1
-        self._store(outcome, estimate)
+        if store:
+            self.state["counts"]["stages_accepted"] += 1
+            self._store(outcome, estimate)
         self._replan(f"after the {outcome['kind']} ({outcome['status']})")
 
     def _store(self, outcome: Mapping[str, Any], estimate: InversionEstimate) -> None:

@@ -26,8 +26,11 @@ A night
 3. An alarm of the sequential test begins a recovery: the guided retune, started where the lock
    estimates the peak went; if it is not accepted, a calibration. A recovery accepted with a lock
    prior resets the lock and the test at its verified set-points, becomes the last good
-   calibration (``[calibration] store``) and the plan is made again; one that is not counts a
-   failure, and the recovery is tried again an interval later.
+   calibration (``[calibration] store``) and the plan is made again. A retune not accepted whose
+   verified inversion is not significantly below the night's reference
+   (:func:`autotune.analysis.hold.holds_as_well`) is held in place of the calibration (an
+   ``adopt`` decision; not stored as last good). Any other failed recovery counts a failure,
+   and the recovery is tried again an interval later.
 4. It stops at SIGINT/SIGTERM, at its end in rig or wall time (``[track] max_rig_time_s``,
    ``max_wall_time_s``, ``end_at_local_time``), or after ``max_consecutive_failures`` failed
    recoveries in a row, leaving the rig where ``[track] on_stop`` says, with the journal closed
