@@ -16,6 +16,7 @@ import structlog
 
 from autotune.run import runner
 from autotune.run.journal import JOURNAL_NAME, read_journal
+from autotune.run.records import Acquisition, Decision, parse_all
 from autotune.config import (
     LockConfig,
     MeasurementConfig,
@@ -94,15 +95,14 @@ def shots_by_purpose(journal: Path) -> dict[str, int]:
     ``verify``), the verification's second half apart as ``verify_second_half``."""
     out: dict[str, int] = {}
     second_half = False
-    for record in read_journal(journal):
-        kind = record.get("type")
-        if kind == "decision" and record.get("what") == "verify_second_half":
+    for record in parse_all(read_journal(journal)):
+        if isinstance(record, Decision) and record.what == "verify_second_half":
             second_half = True
-        elif kind == "acquisition":
-            label = str(record["label"])
+        elif isinstance(record, Acquisition):
+            label = record.label
             if label == "verify" and second_half:
                 label = "verify_second_half"
-            out[label] = out.get(label, 0) + int(record["shots"])
+            out[label] = out.get(label, 0) + record.shots
     return out
 
 
