@@ -43,8 +43,6 @@ from dataclasses import dataclass
 from typing import Any, Literal, Protocol, runtime_checkable
 
 import numpy as np
-from sklearn.base import clone
-from sklearn.exceptions import ConvergenceWarning
 from scipy import linalg, optimize, special
 from scipy.stats import qmc
 
@@ -1077,6 +1075,11 @@ class BayesianSearch(_Record):
                      warm=len(self._all_values) >= _WARM_HYPERPARAMETERS_AFTER)
 
     def _fit_gp(self, coordinates: np.ndarray, targets: np.ndarray, alpha: np.ndarray, warm: bool) -> None:
+        # Imported here, as _skopt() is: only the Gaussian-process strategies need scikit-learn,
+        # and every stage's process would otherwise pay for its import.
+        from sklearn.base import clone
+        from sklearn.exceptions import ConvergenceWarning
+
         model = clone(self._regressor).set_params(alpha=alpha)
         if warm and self._drift_kernel is not None:
             model.set_params(kernel=self._drift_kernel, n_restarts_optimizer=0)
