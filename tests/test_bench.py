@@ -18,6 +18,7 @@ from autotune.bench import night_rig as bench_night_rig
 from autotune.bench import night_study as bench_night_study
 from autotune.bench import study as bench_study
 from autotune.bench import summaries as bench_summaries
+from autotune.bench import tables as bench_tables
 from autotune.bench import targets as bench_targets
 
 # The main and the mismatch family: the held-out one is the main one with another seed.
@@ -155,6 +156,35 @@ def test_whole_stage_shots_are_what_the_stage_measured(study):
         if run["strategy"] == "grid":
             c = run["calibrate"]
             assert c["shots"] == (c["points"] + refine) * per_point + verification
+
+
+def test_shots_by_purpose_add_up_to_the_stage_and_name_the_verification(study):
+    """Where the shots went: the journal's tally by purpose adds up to the stage's shots, and a
+    grid's verification is one fringe pair at the verification's shots."""
+    # Source: the measurement of docs/physics.md section 5 (2 fields x phases x shots per phase).
+    m = study["strategies"]["grid"]
+    verification = 2 * m["ramsey_phases"] * m["verification_shots_per_phase"]
+    for run in study["runs"]:
+        for stage in ("calibrate", "retune"):
+            record = run.get(stage) or {}
+            if "shots" not in record:
+                continue
+            assert sum(record["shots_by_purpose"].values()) == record["shots"], (run["family"], stage)
+        if run["strategy"] == "grid":
+            assert run["calibrate"]["shots_by_purpose"]["verify"] == verification
+
+
+def test_shots_by_purpose_rows_are_numpy_medians(study):
+    """The printed breakdown's medians are numpy's (0 for a stage without that purpose)."""
+    rows = bench_tables.shots_by_purpose_rows(study)
+    for run_family, by_strategy in rows.items():
+        for strategy, row in by_strategy.items():
+            records = [r["calibrate"]["shots_by_purpose"] for r in study["runs"]
+                       if r["family"] == run_family and r["strategy"] == strategy]
+            for purpose, value in row.items():
+                if purpose != "stages":
+                    assert value == float(np.median([r.get(purpose, 0) for r in records]))
+    assert "1b. where a calibration's shots went" in bench.format_table(study)
 
 
 def test_failures_at_both_bars_count_the_final_ratios(study):

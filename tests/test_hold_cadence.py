@@ -17,7 +17,7 @@ from autotune.analysis.hold import (
     BeamBudget,
     DriftLock,
     NoiseModel,
-    _chain,
+    cusum_chain,
     expected_stage_beam_s,
     flag_probability,
     in_control_rechecks,
@@ -52,7 +52,7 @@ def _stationary_draws(reference: float, threshold: float, chains: int, steps: in
 
 
 def test_the_planners_chain_reproduces_the_published_run_lengths():
-    """Run lengths from the planner's chain (hold._chain, solved for the mean time to the
+    """Run lengths from the planner's chain (hold_plan.cusum_chain, solved for the mean time to the
     alarm from 0) against the one-sided CUSUM table with k = 0.5 in D. C. Montgomery,
     Introduction to Statistical Quality Control (from memory): within 1 % at 300 cells, and
     within 3 % at the 40 cells the planner uses."""
@@ -60,7 +60,7 @@ def test_the_planners_chain_reproduces_the_published_run_lengths():
              (5, 0.0): 930, (5, 0.5): 38.0, (5, 1.0): 10.4, (5, 2.0): 4.01}
     for (h, shift), published in table.items():
         for cells, tolerance in ((300, 0.01), (40, 0.03)):
-            _, moves = _chain(shift, 0.5, h, cells)
+            _, moves = cusum_chain(shift, 0.5, h, cells)
             arl = np.linalg.solve(np.eye(cells) - moves, np.ones(cells))[0]
             assert arl == pytest.approx(published, rel=tolerance), (h, shift, cells)
 

@@ -28,7 +28,7 @@ ALLOWED: dict[str, frozenset[str]] = {
     "schema": frozenset({"errors", "plausible"}),
     "config": frozenset({"errors", "plausible", "schema"}),
     "autotune": frozenset({"errors"}),
-    "analysis": FOUNDATION,
+    "analysis": FOUNDATION | {"wire"},  # of the wire, only WIRE_FOR_ANALYSIS
     "wire": FOUNDATION,
     "kit": FOUNDATION | {"wire"},
     "run": FOUNDATION | {"analysis", "wire"},
@@ -36,6 +36,11 @@ ALLOWED: dict[str, frozenset[str]] = {
     "cli": FOUNDATION | {"analysis", "wire", "kit", "run", "report", "drivers_sim"},
     "bench": FOUNDATION | {"analysis", "wire", "kit", "run", "report", "drivers_sim"},
 }
+
+#: What the pure analysis may import of the wire: the module that says what a measurement costs
+#: (``measurement_shots``, the one place for ``2 * phases * shots``), which imports nothing but
+#: the wire's vocabulary (``autotune.wire.terms``).
+WIRE_FOR_ANALYSIS = frozenset({"autotune.wire.rig"})
 
 #: The packages built by concern, where no module imports another's private name.
 BY_CONCERN = ("analysis", "wire", "kit", "run", "bench", "cli")
@@ -122,6 +127,21 @@ def test_each_package_docstring_states_what_it_may_import() -> None:
             encoding="utf-8"))) or ""
         assert "may import" in doc, package
         assert "test_layout.py" in doc, package
+
+
+def test_the_analysis_takes_of_the_wire_only_a_measurements_shot_count() -> None:
+    """The analysis stays pure (no socket): of the wire it imports only
+    :data:`WIRE_FOR_ANALYSIS`, and that module imports only the wire's vocabulary at run time."""
+    used = {module for path in (AUTOTUNE / "analysis").rglob("*.py") for node in _imports(path)
+            for module in _modules(node) if module.startswith("autotune.wire")}
+    assert used <= WIRE_FOR_ANALYSIS, used - WIRE_FOR_ANALYSIS
+    tree = ast.parse((AUTOTUNE / "wire" / "rig.py").read_text(encoding="utf-8"))
+    at_run_time = {module for node in tree.body if isinstance(node, (ast.Import, ast.ImportFrom))
+                   for module in _modules(node) if module.startswith("autotune")}
+    assert at_run_time <= {"autotune.wire.terms"}, at_run_time
+    terms = ast.parse((AUTOTUNE / "wire" / "terms.py").read_text(encoding="utf-8"))
+    assert not {module for node in terms.body if isinstance(node, (ast.Import, ast.ImportFrom))
+                for module in _modules(node) if module.startswith("autotune")}
 
 
 def test_no_import_circle_between_packages() -> None:

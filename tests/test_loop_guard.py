@@ -9,7 +9,14 @@ from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from autotune.errors import LimitError
-from autotune.run.loop import Limit, plan_moves, ramsey_phases
+from autotune.run.guard import effective_limit
+from autotune.run.loop import plan_moves, ramsey_phases
+from autotune.wire.protocol import SetpointLimit
+
+def _limit(low: float, high: float, max_step: float, unit: str = "m/s") -> SetpointLimit:
+    """The one limit type of autotune (the wire's), as the guard reads it: min, max, max_step."""
+    return SetpointLimit(unit, low, high, max_step)
+
 
 finite = st.floats(min_value=-1e6, max_value=1e6, allow_nan=False, allow_infinity=False)
 
@@ -21,7 +28,7 @@ def boxes_and_moves(draw: st.DrawFn) -> tuple[dict, dict, dict]:
         lo = draw(finite)
         width = draw(st.floats(min_value=1e-3, max_value=1e6))
         step = draw(st.floats(min_value=1e-3 * width, max_value=2 * width))
-        limits[name] = Limit(lo, lo + width, step)
+        limits[name] = _limit(lo, lo + width, step)
         current[name] = draw(st.floats(min_value=lo, max_value=lo + width))
         # Targets anywhere, inside or outside the box.
         target[name] = draw(st.floats(min_value=lo - width, max_value=lo + 2 * width))
@@ -32,7 +39,7 @@ def boxes_and_moves(draw: st.DrawFn) -> tuple[dict, dict, dict]:
 @given(boxes_and_moves())
 # Found by hypothesis: a max_step tiny against the set-point's size, where interpolated steps
 # carry float rounding above max_step unless planned below it.
-@example(({"velocity": Limit(11.999, 12.0, 1e-6), "detuning": Limit(0.0, 1.0, 1.0)},
+@example(({"velocity": _limit(11.999, 12.0, 1e-6), "detuning": _limit(0.0, 1.0, 1.0, "Hz")},
           {"velocity": 12.0, "detuning": 0.0}, {"velocity": 11.999, "detuning": 0.0}))
 def test_planned_steps_stay_inside_limits_and_steps(case: tuple[dict, dict, dict]) -> None:
     """Every planned step is inside the limits and within max_step of the previous one."""
@@ -55,7 +62,7 @@ def test_planned_steps_stay_inside_limits_and_steps(case: tuple[dict, dict, dict
 
 def test_non_finite_target_is_refused() -> None:
     """A NaN set-point never gets planned."""
-    limits = {"velocity": Limit(300.0, 700.0, 40.0)}
+    limits = {"velocity": _limit(300.0, 700.0, 40.0)}
     with pytest.raises(LimitError, match="not finite"):
         plan_moves({"velocity": 500.0}, {"velocity": math.nan}, limits)
 
@@ -63,28 +70,39 @@ def test_non_finite_target_is_refused() -> None:
 def test_unknown_setpoint_is_refused() -> None:
     """A set-point without limits cannot be moved."""
     with pytest.raises(LimitError, match="not among the limited"):
-        plan_moves({"velocity": 500.0}, {"voltage": 1.0}, {"velocity": Limit(0, 1, 1)})
+        plan_moves({"velocity": 500.0}, {"voltage": 1.0}, {"velocity": _limit(0, 1, 1)})
 
 
 def test_long_move_is_split_evenly() -> None:
     """A 100 m/s move with 40 m/s steps takes three equal steps."""
     steps = plan_moves({"velocity": 400.0}, {"velocity": 500.0},
-                       {"velocity": Limit(300.0, 700.0, 40.0)})
+                       {"velocity": _limit(300.0, 700.0, 40.0)})
     assert [s["velocity"] for s in steps] == pytest.approx([433.333333, 466.666667, 500.0])
 
 
 def test_rig_found_outside_its_limits_is_named_before_anything_moves() -> None:
     """A rig at 562.5 kHz with limits of +-100 kHz (a read-back in V taken as mV, through the
     Stark law) cannot be walked in with 15 kHz steps: the refusal says where the rig is."""
-    limits = {"detuning": Limit(-100e3, 100e3, 15e3)}
+    limits = {"detuning": _limit(-100e3, 100e3, 15e3, "Hz")}
     with pytest.raises(LimitError, match=r"the rig is at 562499, outside its limits \[-100000, 100000\]"):
         plan_moves({"detuning": 562499.0}, {"detuning": 0.0}, limits)
 
 
 def test_rig_just_outside_its_limits_comes_back_in_one_step() -> None:
     """Within one max_step of a target inside the limits, the one step sent is inside them."""
-    steps = plan_moves({"velocity": 705.0}, {"velocity": 690.0}, {"velocity": Limit(300.0, 700.0, 40.0)})
+    steps = plan_moves({"velocity": 705.0}, {"velocity": 690.0}, {"velocity": _limit(300.0, 700.0, 40.0)})
     assert steps == [{"velocity": 690.0}]
+
+
+def test_effective_limit_is_the_intersection_of_the_configured_and_the_described() -> None:
+    """The tighter of two limits: the intersection of the two ranges and the smaller step
+    (interval intersection, common practice); None when the ranges do not overlap."""
+
+    class _Configured:
+        unit, limit_min, limit_max, max_step = "m/s", 300.0, 650.0, 40.0
+
+    assert effective_limit(_Configured, _limit(350.0, 700.0, 25.0)) == _limit(350.0, 650.0, 25.0)
+    assert effective_limit(_Configured, _limit(660.0, 700.0, 25.0)) is None
 
 
 def test_ramsey_phases_are_equally_spaced() -> None:

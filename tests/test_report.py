@@ -106,6 +106,12 @@ def real(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
             if process.poll() is None:
                 process.kill()
                 process.wait(timeout=30)
+    finally:
+        server.stop()
+    # The night on a rig of its own: on the killed calibration's rig, its data (the rig's
+    # clock, its random draws) would depend on how far that calibration got before the kill.
+    server = spawn_server(base, "night-rig", seed=11)
+    try:
         track_config = _config(base / "t.toml", server.endpoint, store,
                                track={"max_rig_time_s": 3600.0})
         tracked = _autotune("track", "--config", str(track_config), "--out",

@@ -23,7 +23,7 @@ import pytest
 
 from autotune.bench import night_rig as bench_night_rig
 from autotune.run import runner
-from autotune.run import track
+from autotune.run import night_clock, track
 from autotune.config import load_config
 from autotune.run.display import night_progress_text
 from autotune.errors import ConfigErrors, Interrupted, JournalError
@@ -335,10 +335,10 @@ def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
     """end_at_local_time "HH:MM": the first such local time after the night began (the next
     morning for a night begun in the evening, the same day for one begun after midnight)."""
     evening = datetime(2026, 12, 2, 22, 15).timestamp()
-    assert math.isclose(track._NightClock.local_end(evening, 7 * 60 + 30),
+    assert math.isclose(night_clock.NightClock.local_end(evening, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
     small_hours = datetime(2026, 12, 3, 1, 5).timestamp()
-    assert math.isclose(track._NightClock.local_end(small_hours, 7 * 60 + 30),
+    assert math.isclose(night_clock.NightClock.local_end(small_hours, 7 * 60 + 30),
                         datetime(2026, 12, 3, 7, 30).timestamp())
 
 
@@ -379,7 +379,7 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     runs 300 times faster than the wall here, so the night reads it every 50 ms of wall time
     (15 s of its rig time) instead of sleeping up to 30 s between reads (faster, a plan of a
     second of wall time on a loaded machine would pass the hour)."""
-    monkeypatch.setattr(track, "_WALL_POLL_S", 0.05)
+    monkeypatch.setattr(night_clock, "_WALL_POLL_S", 0.05)
     rig = _rig(29)
     # An hour at 5 % affords little besides its first retune: a fifth leaves room for checks.
     config = night_config(hours=1.0, budget_fraction=0.2)

@@ -141,6 +141,7 @@ from autotune.analysis.search import (
     Recommendation,
     SearchSpace,
 )
+from autotune.wire.rig import measurement_shots
 
 __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch",
            "phase_signal_note", "detuning_offset"]
@@ -1068,12 +1069,12 @@ class PhaseLockSearch:
         else:
             per_shot = float(np.median([o.result.phase_shift_stderr**2 * o.result.shots for o in points]))
             total = per_shot / s.step_phase_stderr_rad**2
-        per_phase = math.ceil(total / (2 * s.ramsey_phases))
+        per_phase = math.ceil(total / measurement_shots(s.ramsey_phases, 1))
         low, high = s.step_shots_range
         return int(np.clip(per_phase, max(1, math.ceil(low * base)), max(1, math.floor(high * base))))
 
     def _total_shots(self, shots_per_phase: int) -> int:
-        return 2 * self.settings.ramsey_phases * shots_per_phase
+        return measurement_shots(self.settings.ramsey_phases, shots_per_phase)
 
     def propose(self, *, clock_s: float | None = None) -> Proposal:
         """The next point to measure, its purpose, its shots and the reason (see the module notes).

@@ -15,6 +15,7 @@ from typing import Any
 import structlog
 
 from autotune.run import runner
+from autotune.run.journal import JOURNAL_NAME, read_journal
 from autotune.config import (
     LockConfig,
     MeasurementConfig,
@@ -87,8 +88,26 @@ def final_truth(rig: Any, setpoints: Mapping[str, float]) -> dict[str, float]:
             "ratio": float(truth["inversion"]) / float(truth["best"]["inversion"])}
 
 
+def shots_by_purpose(journal: Path) -> dict[str, int]:
+    """Where a stage's shots went: the shots of its journal's acquisitions by the purpose of
+    their measurement (``lock``, ``velocity``, ``relock``, ``search``, ``check``, ``correct``,
+    ``verify``), the verification's second half apart as ``verify_second_half``."""
+    out: dict[str, int] = {}
+    second_half = False
+    for record in read_journal(journal):
+        kind = record.get("type")
+        if kind == "decision" and record.get("what") == "verify_second_half":
+            second_half = True
+        elif kind == "acquisition":
+            label = str(record["label"])
+            if label == "verify" and second_half:
+                label = "verify_second_half"
+            out[label] = out.get(label, 0) + int(record["shots"])
+    return out
+
+
 def _stage_record(result: Mapping[str, Any], follower: _Follower, rig: Any,
-                  clock_start: float, wall_s: float) -> dict[str, Any]:
+                  clock_start: float, wall_s: float, journal: Path | None = None) -> dict[str, Any]:
     final = final_truth(rig, result["setpoints"])
     reached = follower.reached
     return {
@@ -112,6 +131,8 @@ def _stage_record(result: Mapping[str, Any], follower: _Follower, rig: Any,
         "rig_time_to_threshold_s": None if reached is None else reached["rig_time_s"],
         "best_ratio_seen": follower.best_ratio if math.isfinite(follower.best_ratio) else None,
         "wall_time_s": wall_s,
+        **({"shots_by_purpose": shots_by_purpose(journal)}
+           if journal is not None and journal.is_file() else {}),
     }
 
 
@@ -135,7 +156,8 @@ def calibration_job(job: Mapping[str, Any]) -> dict[str, Any]:
         result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=store,
                                   observer=follower)
         record["calibrate"] = _stage_record(result, follower, rig, clock_start,
-                                            time.perf_counter() - wall)
+                                            time.perf_counter() - wall,
+                                            Path(tmp) / "calibrate" / JOURNAL_NAME)
         if job.get("retune"):
             if not result["accepted"]:
                 record["retune"] = {"skipped": "calibration not accepted, no last good setting"}
@@ -147,7 +169,8 @@ def calibration_job(job: Mapping[str, Any]) -> dict[str, Any]:
                 result = runner.retune(rig, config, Path(tmp) / "retune", store=store,
                                        observer=follower)
                 stage = _stage_record(result, follower, rig, clock_start,
-                                      time.perf_counter() - wall)
+                                      time.perf_counter() - wall,
+                                      Path(tmp) / "retune" / JOURNAL_NAME)
                 stage["ratio_after_step"] = before["ratio"]
                 # The blind spot the issue counts: the check passed on a peak that had moved.
                 stage["moved_judged_still_good"] = bool(

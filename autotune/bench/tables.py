@@ -172,6 +172,7 @@ def format_table(study: Mapping[str, Any]) -> str:
                 f"{_q(row['final_ratio_q'], 3):>21} {row['below_threshold']:>5} "
                 f"{row['below_lower_threshold']:>5}   {_q(row['shots_to_threshold_q']):>30} "
                 f"{row['never_reached']:>5}")
+    lines += _format_shots_by_purpose(study)
     lines.append("")
     lines.append(f"2. oracle floor: {o['shots']:,.0f} shots; verified stderr median "
                  f"{o['verified_stderr_median']:.4f}; " + "; ".join(
@@ -238,6 +239,54 @@ def format_table(study: Mapping[str, Any]) -> str:
         lines.append(f"  [{t['status']}] {t['name']}: target {t['target']}; measured "
                      f"{t['measured']}")
     return "\n".join(lines)
+
+
+#: The purposes of a stage's measurements, in the order a calibration meets them.
+PURPOSES_SHOWN = ("search", "lock", "velocity", "relock", "check", "correct", "verify",
+                  "verify_second_half")
+
+
+def shots_by_purpose_rows(study: Mapping[str, Any], stage: str = "calibrate"
+                          ) -> dict[str, dict[str, dict[str, float]]]:
+    """Family -> strategy -> purpose -> median shots of that purpose over the family's stages
+    (0 where a stage had none), from the runs that record ``shots_by_purpose``."""
+    out: dict[str, dict[str, dict[str, float]]] = {}
+    for run in study.get("runs", []):
+        record = run.get(stage) or {}
+        if "shots_by_purpose" not in record:
+            continue
+        out.setdefault(run["family"], {}).setdefault(run["strategy"], {}).setdefault("_runs", [])
+        out[run["family"]][run["strategy"]]["_runs"].append(record["shots_by_purpose"])
+    for family in out.values():
+        for row in family.values():
+            runs = row.pop("_runs")
+            for purpose in PURPOSES_SHOWN:
+                values = sorted(float(r.get(purpose, 0)) for r in runs)
+                if any(values):
+                    row[purpose] = _median(values)
+            row["stages"] = float(len(runs))
+    return out
+
+
+def _median(values: Sequence[float]) -> float:
+    n = len(values)
+    return values[n // 2] if n % 2 else 0.5 * (values[n // 2 - 1] + values[n // 2])
+
+
+def _format_shots_by_purpose(study: Mapping[str, Any]) -> list[str]:
+    rows = shots_by_purpose_rows(study)
+    if not rows:
+        return []
+    floor = float(study["oracle"]["shots"])
+    lines = ["", ("1b. where a calibration's shots went: median shots of each purpose over the "
+                  "family's calibrations, as a multiple of the oracle floor (medians do not add "
+                  "up to the median stage)")]
+    for name in study["plan"]["families"]:
+        for kind, row in rows.get(name, {}).items():
+            parts = ", ".join(f"{purpose} {row[purpose] / floor:.2f}" for purpose in PURPOSES_SHOWN
+                              if purpose in row)
+            lines.append(f"  {name} ({kind}, {row['stages']:.0f} calibrations): {parts}")
+    return lines
 
 
 def _format_legacy_table(study: Mapping[str, Any]) -> str:

@@ -92,15 +92,14 @@ def default_run_dir(command: str) -> Path:
 
 
 def connect(config: RunConfig, stop: threading.Event | None = None) -> Any:
+    from autotune.run.guard import configured_limit
     from autotune.wire.bus import BusClient, CurveClientKeys
-    from autotune.wire.protocol import SetpointLimit
 
     curve = None
     if config.bus.curve is not None:
         curve = CurveClientKeys.load(config.bus.curve.client_secret_key_file,
                                      config.bus.curve.server_public_key_file)
-    limits = {sp.name: SetpointLimit(unit=sp.unit, min=sp.limit_min, max=sp.limit_max,
-                                     max_step=sp.max_step) for sp in config.setpoints}
+    limits = {sp.name: configured_limit(sp) for sp in config.setpoints}
     return BusClient(config.bus.endpoint, timeout_s=config.bus.timeout_s,
                      retries=config.bus.retries, backoff_s=config.bus.backoff_s, curve=curve,
                      limits=limits, source=config.source, stop=stop,

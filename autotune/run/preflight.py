@@ -15,7 +15,9 @@ from autotune.config import RunConfig
 from autotune.errors import AutotuneError, ConfigError, JournalError, RigLeased
 from autotune.analysis.guided import LockPrior
 from autotune.run.journal import JOURNAL_NAME
-from autotune.run.loop import Limit, Session, call_with_recovery
+from autotune.run.guard import effective_limit
+from autotune.run.session import Session, call_with_recovery
+from autotune.wire.protocol import SetpointLimit
 from autotune.wire.rig import Rig, measurement_shots
 
 __all__ = ["preflight", "track_preflight", "resume_changes", "opening_call", "settle_failure",
@@ -66,9 +68,9 @@ def _check_store(store: Path, source: str) -> ConfigError | None:
 
 
 def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
-            ) -> dict[str, Limit]:
+            ) -> dict[str, SetpointLimit]:
     source = config.source
-    limits: dict[str, Limit] = {}
+    limits: dict[str, SetpointLimit] = {}
     for sp in config.setpoints:
         key = f"setpoints.{sp.name}"
         described = description.setpoints.get(sp.name)
@@ -81,9 +83,8 @@ def _limits(config: RunConfig, description: Any, problems: list[ConfigError]
             problems.append(ConfigError(source, f"{key}.unit",
                                         f"the rig's unit {described.unit!r}", sp.unit))
             continue
-        limit = Limit(min=max(sp.limit_min, described.min), max=min(sp.limit_max, described.max),
-                      max_step=min(sp.max_step, described.max_step))
-        if limit.min >= limit.max:
+        limit = effective_limit(sp, described)
+        if limit is None or limit.min >= limit.max:
             problems.append(ConfigError(
                 source, f"{key}.limit_min/limit_max",
                 f"limits that overlap the rig's [{described.min:g}, {described.max:g}] "

@@ -1,6 +1,6 @@
 """One stage as a run: checks before the first move, run folder, manifest, result, last good.
 
-This is the imperative shell around :func:`autotune.run.loop.run_stage`. A stage runs in two steps:
+This is the imperative shell around :func:`autotune.run.stage.run_stage`. A stage runs in two steps:
 
 1. :func:`prepare` talks to the rig only to ask it to describe itself and checks everything that
    can be checked before a set-point is sent (units, limits, the search box, shots per
@@ -57,14 +57,10 @@ from autotune.run.journal import (
     utc_now,
     write_json_atomic,
 )
-from autotune.run.loop import (
-    Budget,
-    Session,
-    StageOutcome,
-    retune_box,
-    run_guided_stage,
-    run_stage,
-)
+from autotune.run.guard import Budget, retune_box
+from autotune.run.guided_stage import run_guided_stage
+from autotune.run.session import Session
+from autotune.run.stage import StageOutcome, run_stage
 from autotune.progress import ProgressObserver
 from autotune.wire.rig import Rig
 from autotune.run.preflight import (never_started, opening_call, preflight, resume_changes,
@@ -171,7 +167,7 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
     """Check a stage before anything moves or is written; see the module notes.
 
     The rig's ``describe`` goes through the run's one recovery path
-    (:func:`autotune.run.loop.call_with_recovery`: the same retries as every later call);
+    (:func:`autotune.run.session.call_with_recovery`: the same retries as every later call);
     ``stop`` ends its waits.
 
     Raises
@@ -497,7 +493,7 @@ def calibrate(rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool = Fals
     extra : Mapping, optional
         More manifest entries (the dry run records its scenario here).
     observer : callable, optional
-        Passed to :func:`autotune.run.loop.run_stage` (benchmark studies).
+        Passed to :func:`autotune.run.stage.run_stage` (benchmark studies).
     progress : callable, optional
         A progress observer (:mod:`autotune.progress`), for a display; never journaled.
     """

@@ -11,7 +11,7 @@ from typing import Annotated, Any, TypeVar
 
 from pydantic import Strict
 
-from autotune.errors import ProtocolError
+from autotune.errors import LimitError, ProtocolError
 from autotune import schema
 from autotune.wire.codec import FINITE, is_number, show_value, wire_detail
 from autotune.wire.terms import MAX_SHOTS, PROTO_VERSION
@@ -73,6 +73,16 @@ class SetpointLimit:
             raise ValueError(f"SetpointLimit: expected min <= max, got min={self.min!r}, max={self.max!r}")
         if self.max_step <= 0:
             raise ValueError(f"SetpointLimit.max_step: expected a number > 0, got {self.max_step!r}")
+
+    def check(self, name: str, value: float) -> None:
+        """Raise :class:`~autotune.errors.LimitError` unless ``value`` is finite and within
+        [min, max] (the step from the value in force is checked where that value is known)."""
+        if not math.isfinite(value):
+            raise LimitError(f"set-point {name}: value {value!r} is not finite")
+        if value < self.min or value > self.max:
+            raise LimitError(
+                f"set-point {name}: {value:g} is outside its limits [{self.min:g}, {self.max:g}]"
+            )
 
     def tighter(self, other: SetpointLimit) -> SetpointLimit:
         """Return the intersection of two limits (the tighter bound of each).

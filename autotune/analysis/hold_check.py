@@ -1,0 +1,324 @@
+"""One check of the hold read, and what the night remembers of its measurements (pure).
+
+:func:`assess_check` turns a check's result into an :class:`Assessment` (the lock's update, the
+sequential test's statistics, the action); :func:`peak_after_change`, :func:`lock_before_change`
+and :func:`recovery_start` say where the peak went after a change; :func:`noise_row` and the
+inversion's reference (:func:`reference_add`, :func:`reference_value`) are what the night keeps
+of each measurement. :mod:`autotune.analysis.hold` describes the whole and re-exports these.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+import numpy as np
+
+from autotune.analysis.guided import LockPrior, detuning_offset, phase_signal_note
+from autotune.analysis.hold_lock import (
+    DriftLock,
+    HoldSettings,
+    Innovation,
+    SequentialTest,
+    known_cubic,
+)
+from autotune.analysis.hold_plan import CheckPlan
+from autotune.analysis.hold_signal import NoiseModel
+from autotune.analysis.search_types import PointResult
+
+__all__ = [
+    "Assessment",
+    "assess_check",
+    "peak_after_change",
+    "noise_row",
+    "reference_add",
+    "reference_value",
+    "lock_before_change",
+    "recovery_start",
+]
+
+_TWO_PI = 2.0 * math.pi
+
+
+@dataclass(frozen=True)
+class Assessment:
+    """What one check says and what to do about it.
+
+    Attributes
+    ----------
+    usable : bool
+        Whether the phase signal could steer the detuning (else ``note`` says why).
+    note : str
+        Why not usable, or empty.
+    offset_hz, offset_stderr_hz : float
+        The held set-point minus the peak (Hz; nan when not usable).
+    peak_hz, peak_variance_hz2 : float
+        The measured peak ``y = d - D`` and its variance.
+    innovation : Innovation or None
+    lock : DriftLock
+        The lock after this check (unchanged when not usable).
+    upper, lower, inversion : float
+        The CUSUM statistics after this check.
+    inversion_z : float
+        The inversion's standardised drop below its reference.
+    action : str
+        ``"alarm"``, ``"recheck"``, ``"correct"`` or ``"hold"``.
+    alarm : str or None
+        ``"out_of_range"``, ``"upper"``, ``"lower"`` or ``"inversion"``.
+    target_detuning_hz : float
+        The detuning set-point to hold next (the present one unless ``action`` corrects).
+    reason : str
+        One sentence with the numbers.
+    """
+
+    usable: bool
+    note: str
+    offset_hz: float
+    offset_stderr_hz: float
+    peak_hz: float
+    peak_variance_hz2: float
+    innovation: Innovation | None
+    lock: DriftLock
+    upper: float
+    lower: float
+    inversion: float
+    inversion_z: float
+    action: str
+    alarm: str | None
+    target_detuning_hz: float
+    reason: str
+
+    def numbers(self) -> dict[str, Any]:
+        """JSON-ready numbers for the journal (nan as None)."""
+        def clean(value: Any) -> Any:
+            return None if isinstance(value, float) and not math.isfinite(value) else value
+
+        out = {f.name: clean(getattr(self, f.name)) for f in fields(self)
+               if f.name not in ("innovation", "lock")}
+        out["innovation"] = None if self.innovation is None else \
+            {k: clean(v) for k, v in asdict(self.innovation).items()}
+        out["lock"] = self.lock.to_dict()
+        return out
+
+
+def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: float,
+                 lock: DriftLock, prior: LockPrior, plan: CheckPlan, upper: float, lower: float,
+                 inversion: float, reference_inversion: float, reference_stderr: float,
+                 next_interval_s: float, noise: NoiseModel | None = None,
+                 previous_unusable: bool = False,
+                 limits: tuple[float, float] | None = None) -> Assessment:
+    """Assess one check at the held detuning ``detuning_hz``: update the lock and the test, decide.
+
+    Order of the decision: a check whose phase signal is unusable is checked again at once, and
+    raises the alarm when the repeat is unusable too (out of the capture range, or a contrast
+    too low: the lock cannot read it; one cheap check alone may be unusable by chance); else the
+    lock is told the measured
+    peak, the statistics take their step, and an alarm (a statistic above its threshold) comes
+    first, then a recheck (above the warning level: the next check at once), then a correction
+    (the lock's prediction of the peak at the middle of the coming interval, bounded by
+    ``max_correction_hz`` and ``limits``, applied when at least ``min_correction_hz``).
+
+    Parameters
+    ----------
+    result : PointResult
+        The check's estimate (``clock_s`` is its middle on the rig clock).
+    next_interval_s : float
+        Rig time until the next check (the plan's interval): the correction aims at the middle.
+    noise : NoiseModel, optional
+        The pooled noise of the measurements so far: the check's phase and inversion variances
+        are taken from it at the check's shots (a fringe's own delta-method error is itself
+        noisy at a few atoms per phase, and an underestimate would inflate the statistic);
+        without it, the check's own standard errors.
+    previous_unusable : bool
+        Whether the check before this one was unusable (this one is its repeat).
+    limits : (float, float), optional
+        The detuning's effective limits (Hz).
+    """
+    test = plan.test
+    clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
+    error = float(np.mod(result.phase_shift - prior.phase_at_peak_rad + math.pi, _TWO_PI) - math.pi)
+    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad)
+    phase_sd, inversion_sd = result.phase_shift_stderr, result.inversion_stderr
+    if noise is not None and result.shots > 0:
+        phase_sd = math.sqrt(noise.phase_variance_shots / result.shots)
+        inversion_sd = math.sqrt(noise.inversion_variance_shots / result.shots)
+    inv_sd = math.sqrt(inversion_sd**2 + reference_stderr**2)
+    inversion_z = (reference_inversion - result.inversion) / inv_sd if inv_sd > 0 else 0.0
+    inversion_stat = max(0.0, inversion + inversion_z - test.inversion_reference)
+    if note is not None:
+        if not previous_unusable:
+            return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock,
+                              upper, lower, inversion_stat, inversion_z, "recheck", None,
+                              detuning_hz, f"check unusable for the lock ({note}): check again "
+                                           f"at once")
+        return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock, upper,
+                          lower, inversion_stat, inversion_z, "alarm", "out_of_range",
+                          detuning_hz, f"check unusable for the lock again ({note}): the lock "
+                                       f"cannot follow; retune")
+    # The check's own noise only: the stored curve's uncertainty (slope, cubic) is the same at
+    # every check, a bias of the peak's scale, not noise; counted as noise it would make a large
+    # phase error look insignificant (the offset's error grows as D^3) and hide a step.
+    offset, offset_sd = detuning_offset(error, phase_sd, prior.slope_rad_per_hz,
+                                        0.0, known_cubic(prior), 0.0)
+    peak = detuning_hz - offset
+    variance = max(offset_sd**2, 1.0)
+    updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
+    new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
+    numbers = (f"phase error {error / math.pi:+.3f} +- {phase_sd / math.pi:.3f} pi: "
+               f"set-point {offset / 1e3:+.2f} +- {offset_sd / 1e3:.2f} kHz from the peak; "
+               f"innovation {innovation.value_hz / 1e3:+.2f} kHz (z {innovation.z:+.2f}); "
+               f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
+               f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
+               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
+    alarm = None
+    if new_upper > test.threshold:
+        alarm = "upper"
+    elif new_lower > test.threshold:
+        alarm = "lower"
+    elif inversion_stat > test.inversion_threshold:
+        alarm = "inversion"
+    aim = updated.peak_at(clock + 0.5 * next_interval_s)
+    move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
+    target = detuning_hz + move
+    if limits is not None:
+        target = float(np.clip(target, limits[0], limits[1]))
+    if alarm is not None:
+        side = {"upper": "the peak moved up beyond what the lock follows",
+                "lower": "the peak moved down beyond what the lock follows",
+                "inversion": "the inversion dropped below its reference"}[alarm]
+        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
+                          new_upper, new_lower, inversion_stat, inversion_z, "alarm", alarm,
+                          detuning_hz, f"{numbers}: alarm, {side}; retune")
+    rising = new_upper > test.warning or new_lower > test.warning or \
+        inversion_stat > test.inversion_warning
+    action = "hold"
+    if abs(target - detuning_hz) >= settings.min_correction_hz:
+        action = "correct"
+    if rising:
+        why = "a statistic is above its warning level: check again at once"
+        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
+                          new_upper, new_lower, inversion_stat, inversion_z, "recheck", None,
+                          target if action == "correct" else detuning_hz,
+                          f"{numbers}: {why}" + (f"; lock moves the detuning by "
+                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz"
+                                                 if action == "correct" else ""))
+    if action == "correct":
+        limited = " (bounded)" if abs(aim - target) > 1.0 else ""
+        why = (f"lock moves the detuning by {(target - detuning_hz) / 1e3:+.2f} kHz to "
+               f"{target / 1e3:+.2f} kHz{limited}, the predicted peak at the middle of the next "
+               f"interval (gain {innovation.gain:.2f}, drift {updated.rate_hz_per_s:+.2f} Hz/s)")
+    else:
+        why = (f"held: the lock's correction {(aim - detuning_hz) / 1e3:+.2f} kHz is below "
+               f"{settings.min_correction_hz / 1e3:.2f} kHz")
+    return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated, new_upper,
+                      new_lower, inversion_stat, inversion_z, action, None, target,
+                      f"{numbers}: {why}")
+
+
+def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_per_s: float,
+                      clock_s: float) -> tuple[float, float] | None:
+    """Where the peak is after an alarm, from the checks since the alarming statistic left zero.
+
+    Page's CUSUM dates the change at the last check where the alarming statistic was zero
+    (the maximum-likelihood change point for a known shift); the checks after it measured the
+    new peak. Their measured peaks, carried to ``clock_s`` with the drift rate, are averaged
+    with weights ``1 / variance``.
+
+    Parameters
+    ----------
+    recent : sequence of mappings
+        Latest checks, oldest first: ``clock_s``, ``peak_hz``, ``variance_hz2`` and the
+        statistics ``upper``, ``lower`` after each (None when the check was unusable).
+    side : {"upper", "lower"}
+
+    Returns
+    -------
+    (float, float) or None
+        The peak at ``clock_s`` and its standard error (Hz), or None without usable checks.
+    """
+    run: list[Mapping[str, Any]] = []
+    for row in reversed(recent):
+        if row.get("peak_hz") is None or not row.get(side):
+            break
+        run.append(row)
+    if not run:
+        return None
+    weights = np.array([1.0 / float(r["variance_hz2"]) for r in run])
+    values = np.array([float(r["peak_hz"]) + rate_hz_per_s * (clock_s - float(r["clock_s"]))
+                       for r in run])
+    mean = float((weights * values).sum() / weights.sum())
+    return mean, float(math.sqrt(1.0 / weights.sum()))
+
+
+# --------------------------------------------------------------------------------------------
+# What the night remembers of its measurements
+# --------------------------------------------------------------------------------------------
+
+
+def noise_row(estimate: Mapping[str, Any], shots: int) -> list[float]:
+    """One measurement's row for :class:`NoiseModel` and :class:`SignalModel`.
+
+    ``(phase_sd, inversion_sd, shots, detected_empty, detected_one_photon, contrast_empty,
+    contrast_one_photon, chi2, dof)`` from an estimate's mapping
+    (:meth:`autotune.analysis.fringe.InversionEstimate.to_dict`) and the measurement's shots.
+    """
+    return [float(estimate["phase_shift_stderr"]), float(estimate["inversion_stderr"]),
+            int(shots), int(estimate.get("detected_empty", 0)),
+            int(estimate.get("detected_one_photon", 0)),
+            float(estimate.get("contrast_empty", 0.0)),
+            float(estimate.get("contrast_one_photon", 0.0)),
+            float(estimate.get("chi2_empty", 0.0)) + float(estimate.get("chi2_one_photon", 0.0)),
+            int(estimate.get("dof_empty", 0)) + int(estimate.get("dof_one_photon", 0))]
+
+
+def reference_add(reference: Mapping[str, float], inversion: float, stderr: float
+                  ) -> dict[str, float]:
+    """The inversion watch's reference with one more measurement (weight ``1 / stderr^2``)."""
+    weight = 1.0 / max(stderr, 1e-6) ** 2
+    return {"weight": float(reference["weight"]) + weight,
+            "weighted": float(reference["weighted"]) + weight * inversion}
+
+
+def reference_value(reference: Mapping[str, float]) -> tuple[float, float]:
+    """``(inversion, stderr)`` of the inversion watch's reference (precision-weighted mean)."""
+    weight = float(reference["weight"])
+    return float(reference["weighted"]) / weight, 1.0 / math.sqrt(weight)
+
+
+def lock_before_change(recent: Sequence[Mapping[str, Any]], side: str | None
+                       ) -> DriftLock | None:
+    """The lock before the first check of the alarming run (the drift rate it had learned).
+
+    ``recent`` rows carry ``lock_before`` (:meth:`DriftLock.to_dict`) and the statistics; for an
+    alarm of the inversion or an unreadable phase, the lock before the last check.
+    """
+    if side not in ("upper", "lower"):
+        return DriftLock.from_dict(recent[-1]["lock_before"]) if recent else None
+    first = None
+    for row in reversed(recent):
+        if not row.get(side):
+            break
+        first = row
+    return None if first is None else DriftLock.from_dict(first["lock_before"])
+
+
+def recovery_start(recent: Sequence[Mapping[str, Any]], side: str | None, lock: DriftLock,
+                   held: Mapping[str, float], limits: tuple[float, float], clock_s: float
+                   ) -> tuple[dict[str, float], DriftLock, tuple[float, float] | None]:
+    """Where a recovery starts after an alarm of ``side``.
+
+    Returns the set-points to start from (the held ones, the detuning moved to the peak the
+    checks since the change point measured, :func:`peak_after_change`, within ``limits``), the
+    lock before the change (its rate carries over) and that peak with its standard error (Hz;
+    None when the alarm was not of the phase or no check located it).
+    """
+    pre = lock_before_change(recent, side) or lock
+    start = {k: float(v) for k, v in held.items()}
+    found = None
+    if side in ("upper", "lower"):
+        found = peak_after_change(recent, side, pre.rate_hz_per_s, clock_s)
+        if found is not None:
+            start["detuning"] = min(max(found[0], limits[0]), limits[1])
+    return start, pre, found

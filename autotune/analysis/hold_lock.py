@@ -1,0 +1,350 @@
+"""The hold's drift lock and sequential test, and the hold's settings (pure).
+
+:class:`DriftLock` (the two-state Kalman filter that follows the peak's detuning set-point and
+its drift rate), :class:`SequentialTest` (Page's CUSUM on the lock's standardised innovations
+and on the inversion) with its run lengths (:func:`cusum_arl`, :func:`cusum_threshold`),
+:class:`HoldSettings`, and the design shift a floor on the inversion allows
+(:func:`floor_shift_hz`). :mod:`autotune.analysis.hold` describes the whole and re-exports these.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+from scipy import optimize
+
+from autotune.analysis.guided import LockPrior, LockSettings
+
+__all__ = [
+    "SIEGMUND_CORRECTION",
+    "RATE_WALK_HZ_PER_S_PER_SQRT_S",
+    "is_finite_number",
+    "cusum_arl",
+    "two_sided_arl",
+    "cusum_threshold",
+    "SequentialTest",
+    "Innovation",
+    "DriftLock",
+    "HoldSettings",
+    "known_cubic",
+    "floor_shift_hz",
+]
+
+#: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
+#: ``b = h + 2 * 0.583`` (D. Siegmund, Sequential Analysis, Springer 1985; from memory).
+SIEGMUND_CORRECTION = 1.166
+
+# The drift rate itself wanders: 0.2 Hz/s per square root of an hour (a ramp of 0.7 kHz/h
+# that may change by that much over an hour). Only its order matters: it keeps the filter
+# from freezing its rate estimate over a long night.
+RATE_WALK_HZ_PER_S_PER_SQRT_S = 0.2 / 60.0
+
+
+def is_finite_number(value: Any) -> bool:
+    """A finite real number, not a bool (numpy scalars included)."""
+    return not isinstance(value, bool) and isinstance(value, (int, float, np.floating, np.integer)) \
+        and math.isfinite(float(value))
+
+
+# --------------------------------------------------------------------------------------------
+# The sequential test
+# --------------------------------------------------------------------------------------------
+
+
+def cusum_arl(shift: float, reference: float, threshold: float) -> float:
+    """Siegmund's approximation of a one-sided CUSUM's average run length (checks).
+
+    For ``S_n = max(0, S_{n-1} + z_n - k)`` with ``z ~ N(shift, 1)`` and an alarm at
+    ``S_n > h``: ``ARL = (exp(-2 D b) + 2 D b - 1) / (2 D^2)`` with ``D = shift - k`` and
+    ``b = h + 1.166``; ``b^2`` when ``D = 0`` (D. Siegmund, Sequential Analysis, Springer 1985;
+    from memory). Infinite when the exponential overflows.
+    """
+    delta = float(shift) - float(reference)
+    b = float(threshold) + SIEGMUND_CORRECTION
+    if abs(delta) < 1e-9:
+        return b * b
+    x = 2.0 * delta * b
+    if -x > 700.0:
+        return math.inf
+    return (math.expm1(-x) + x) / (2.0 * delta * delta)
+
+
+def two_sided_arl(shift: float, reference: float, threshold: float) -> float:
+    """Average run length of two one-sided CUSUMs (upper on ``z``, lower on ``-z``) run together.
+
+    Their alarm rates add: ``1 / ARL = 1 / ARL+(shift) + 1 / ARL-(shift)``, with
+    ``ARL-(shift) = ARL+(-shift)`` (the usual approximation for a two-sided CUSUM; from memory).
+    """
+    upper = cusum_arl(shift, reference, threshold)
+    lower = cusum_arl(-shift, reference, threshold)
+    rate = (0.0 if math.isinf(upper) else 1.0 / upper) + (0.0 if math.isinf(lower) else 1.0 / lower)
+    return math.inf if rate == 0.0 else 1.0 / rate
+
+
+def cusum_threshold(reference: float, in_control_arl: float) -> float:
+    """The threshold ``h`` whose one-sided in-control ARL (Siegmund) is ``in_control_arl`` checks.
+
+    Returns 0 when even ``h = 0`` reaches it.
+    """
+    if not (is_finite_number(reference) and reference >= 0.0):
+        raise ValueError(f"reference: expected a finite number >= 0, got {reference!r}")
+    if not (is_finite_number(in_control_arl) and in_control_arl >= 1.0):
+        raise ValueError(f"in_control_arl: expected a finite number >= 1, got {in_control_arl!r}")
+    target = math.log(in_control_arl)
+    if math.log(cusum_arl(0.0, reference, 0.0)) >= target:
+        return 0.0
+    high = 1.0
+    while math.log(cusum_arl(0.0, reference, high)) < target:
+        high *= 2.0
+        if high > 1e4:
+            raise ValueError(f"in_control_arl {in_control_arl!r} out of reach")
+    return float(optimize.brentq(lambda h: math.log(cusum_arl(0.0, reference, h)) - target,
+                                 0.0, high, xtol=1e-9))
+
+
+@dataclass(frozen=True)
+class SequentialTest:
+    """The design of the night's CUSUMs, in units of each statistic's standard deviation.
+
+    Attributes
+    ----------
+    reference, threshold, warning : float
+        ``k``, ``h`` and the warning level ``w`` of the two-sided test on the lock's
+        standardised innovations.
+    inversion_reference, inversion_threshold, inversion_warning : float
+        The same for the one-sided test on the inversion's standardised drop.
+    """
+
+    reference: float
+    threshold: float
+    warning: float
+    inversion_reference: float
+    inversion_threshold: float
+    inversion_warning: float
+
+    @staticmethod
+    def step(upper: float, lower: float, z: float, reference: float) -> tuple[float, float]:
+        """One step of Page's two-sided CUSUM: ``(max(0, S+ + z - k), max(0, S- - z - k))``."""
+        return max(0.0, upper + z - reference), max(0.0, lower - z - reference)
+
+
+# --------------------------------------------------------------------------------------------
+# The drift lock
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Innovation:
+    """One update of the drift lock: the measured peak minus the predicted one.
+
+    Attributes
+    ----------
+    value_hz : float
+        ``y - p^-`` (Hz).
+    variance_hz2 : float
+        Its predicted variance ``P^- + R`` (Hz^2).
+    gain : float
+        The gain applied to the peak (bounded by ``max_gain``).
+    z : float
+        ``value_hz / sqrt(variance_hz2)``.
+    """
+
+    value_hz: float
+    variance_hz2: float
+    gain: float
+    z: float
+
+
+@dataclass(frozen=True)
+class DriftLock:
+    """Kalman filter of the peak's detuning set-point ``p`` (Hz) and its drift rate ``r`` (Hz/s).
+
+    Model between checks ``tau`` apart: ``p <- p + r tau + w_p``, ``r <- r + w_r`` with
+    ``Var w_p = q tau`` (the cavity's random walk, ``q = walk_hz_per_sqrt_s^2``) and the rate
+    wandering as a random walk of its own (integrated into ``p``). A check measures ``p``
+    directly: ``y = d - D``.
+
+    Attributes
+    ----------
+    clock_s : float
+        Rig time of the estimate (s).
+    peak_hz, rate_hz_per_s : float
+        Posterior means.
+    covariance : tuple of tuples
+        Their 2 x 2 covariance (Hz^2, Hz^2/s, Hz^2/s^2).
+    walk_hz_per_sqrt_s : float
+        The random walk assumed for the peak (Hz/s^0.5).
+    """
+
+    clock_s: float
+    peak_hz: float
+    rate_hz_per_s: float
+    covariance: tuple[tuple[float, float], tuple[float, float]]
+    walk_hz_per_sqrt_s: float
+
+    @classmethod
+    def start(cls, clock_s: float, peak_hz: float, peak_stderr_hz: float, rate_hz_per_s: float,
+              rate_stderr_hz_per_s: float, walk_hz_per_sqrt_s: float) -> DriftLock:
+        """A lock at ``peak_hz`` known to ``peak_stderr_hz``, its rate to ``rate_stderr_hz_per_s``."""
+        for name, value in (("clock_s", clock_s), ("peak_hz", peak_hz),
+                            ("peak_stderr_hz", peak_stderr_hz), ("rate_hz_per_s", rate_hz_per_s),
+                            ("rate_stderr_hz_per_s", rate_stderr_hz_per_s),
+                            ("walk_hz_per_sqrt_s", walk_hz_per_sqrt_s)):
+            if not is_finite_number(value):
+                raise ValueError(f"{name}: expected a finite number, got {value!r}")
+        return cls(float(clock_s), float(peak_hz), float(rate_hz_per_s),
+                   ((float(peak_stderr_hz) ** 2, 0.0), (0.0, float(rate_stderr_hz_per_s) ** 2)),
+                   float(walk_hz_per_sqrt_s))
+
+    @property
+    def _cov(self) -> np.ndarray:
+        return np.array(self.covariance, dtype=float)
+
+    @property
+    def peak_stderr_hz(self) -> float:
+        """Standard error of the peak (Hz)."""
+        return math.sqrt(max(self.covariance[0][0], 0.0))
+
+    @property
+    def rate_stderr_hz_per_s(self) -> float:
+        """Standard error of the rate (Hz/s)."""
+        return math.sqrt(max(self.covariance[1][1], 0.0))
+
+    def _process(self, tau: float) -> np.ndarray:
+        q = self.walk_hz_per_sqrt_s**2
+        qr = RATE_WALK_HZ_PER_S_PER_SQRT_S**2
+        return np.array([[q * tau + qr * tau**3 / 3.0, qr * tau**2 / 2.0],
+                         [qr * tau**2 / 2.0, qr * tau]])
+
+    def predict(self, clock_s: float) -> DriftLock:
+        """The estimate carried to ``clock_s`` (forwards or backwards in rig time)."""
+        tau = float(clock_s) - self.clock_s
+        transition = np.array([[1.0, tau], [0.0, 1.0]])
+        cov = transition @ self._cov @ transition.T + self._process(abs(tau))
+        cov = 0.5 * (cov + cov.T)
+        return replace(self, clock_s=float(clock_s),
+                       peak_hz=self.peak_hz + self.rate_hz_per_s * tau,
+                       covariance=((float(cov[0, 0]), float(cov[0, 1])),
+                                   (float(cov[1, 0]), float(cov[1, 1]))))
+
+    def peak_at(self, clock_s: float) -> float:
+        """Predicted peak at ``clock_s`` (Hz)."""
+        return self.peak_hz + self.rate_hz_per_s * (float(clock_s) - self.clock_s)
+
+    def update(self, clock_s: float, peak_hz: float, variance_hz2: float, *,
+               max_gain: float = 1.0) -> tuple[DriftLock, Innovation]:
+        """Tell the lock one measured peak (Hz, with its variance) at ``clock_s``.
+
+        The Kalman gain of the peak is bounded by ``max_gain`` (both gains scaled alike); the
+        covariance is updated in Joseph form, right for any gain.
+        """
+        if not (is_finite_number(peak_hz) and is_finite_number(variance_hz2) and variance_hz2 > 0.0):
+            raise ValueError(f"peak_hz, variance_hz2: expected finite numbers (variance > 0), "
+                             f"got {peak_hz!r}, {variance_hz2!r}")
+        prior = self.predict(clock_s)
+        cov = prior._cov
+        innovation = float(peak_hz) - prior.peak_hz
+        s = float(cov[0, 0] + variance_hz2)
+        gain = cov[:, 0] / s
+        if gain[0] > max_gain:
+            gain = gain * (max_gain / gain[0])
+        a = np.eye(2) - np.outer(gain, [1.0, 0.0])
+        post = a @ cov @ a.T + variance_hz2 * np.outer(gain, gain)
+        post = 0.5 * (post + post.T)
+        lock = replace(prior, peak_hz=prior.peak_hz + float(gain[0]) * innovation,
+                       rate_hz_per_s=prior.rate_hz_per_s + float(gain[1]) * innovation,
+                       covariance=((float(post[0, 0]), float(post[0, 1])),
+                                   (float(post[1, 0]), float(post[1, 1]))))
+        return lock, Innovation(innovation, s, float(gain[0]), innovation / math.sqrt(s))
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready mapping."""
+        return {"clock_s": self.clock_s, "peak_hz": self.peak_hz,
+                "rate_hz_per_s": self.rate_hz_per_s,
+                "covariance": [list(row) for row in self.covariance],
+                "walk_hz_per_sqrt_s": self.walk_hz_per_sqrt_s}
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> DriftLock:
+        """Rebuild from :meth:`to_dict`."""
+        cov = data["covariance"]
+        return cls(float(data["clock_s"]), float(data["peak_hz"]), float(data["rate_hz_per_s"]),
+                   ((float(cov[0][0]), float(cov[0][1])), (float(cov[1][0]), float(cov[1][1]))),
+                   float(data["walk_hz_per_sqrt_s"]))
+
+
+# --------------------------------------------------------------------------------------------
+# Settings
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class HoldSettings:
+    """What the night's decisions depend on (from ``[track]``, ``[lock]`` and ``[measurement]``).
+
+    Attributes
+    ----------
+    floor : float
+        The condition: inversion at least this fraction of the best.
+    budget_fraction : float
+        Largest share of beam time holding may take (checks, retunes, calibrations).
+    false_alarm_interval_s : float
+        Mean rig time between false alarms the sequential test is designed for (s).
+    max_gain : float
+        Largest gain of the lock's correction of the peak.
+    max_correction_hz, min_correction_hz : float
+        Largest correction of one check, and the smallest one worth a move (Hz).
+    min_shots_per_phase, max_shots_per_phase : int
+        Shots per field and Ramsey phase of a check: at least, and at most (the rig's limit).
+    max_interval_s : float
+        Longest interval between checks (rig s).
+    walk_hz_per_sqrt_s : float
+        Random walk of the cavity assumed by the lock (Hz/s^0.5).
+    inversion_drop : float
+        Drop of the inversion, as a fraction of its reference, that the inversion watch is
+        designed to detect.
+    ramsey_phases : int
+        Ramsey phases of a check (the measurement's).
+    repetition_rate_hz : float
+        Shots per second of rig time (the rig's).
+    lock : LockSettings
+        The phase lock's settings (capture range, contrast ratio) for the usability of a check.
+    """
+
+    floor: float
+    budget_fraction: float
+    false_alarm_interval_s: float
+    max_gain: float
+    max_correction_hz: float
+    min_correction_hz: float
+    min_shots_per_phase: int
+    max_shots_per_phase: int
+    max_interval_s: float
+    walk_hz_per_sqrt_s: float
+    inversion_drop: float
+    ramsey_phases: int
+    repetition_rate_hz: float
+    lock: LockSettings
+
+
+def known_cubic(prior: LockPrior) -> float:
+    """The stored cubic of the phase curve when it is known (two standard errors from zero), else 0.
+
+    A short calibration leaves the cubic poorly determined; used anyway it can bend a large
+    phase error into a wrong detuning (the linear discriminator is the better guess then).
+    """
+    c, sd = prior.cubic_rad_per_hz3, prior.cubic_stderr_rad_per_hz3
+    return c if abs(c) >= 2.0 * sd else 0.0
+
+
+def floor_shift_hz(floor: float, slope_rad_per_hz: float) -> float:
+    """The detuning error whose phase error alone takes the inversion to ``floor`` of the best (Hz).
+
+    With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (docs/physics.md section 3, see
+    :mod:`autotune.analysis.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
+    """
+    return 2.0 * math.acos(float(floor)) / abs(float(slope_rad_per_hz))

@@ -1,0 +1,158 @@
+"""The night's ledger (the journal seen through, keeping the night's accounts of beam and
+shots) and what a night's records say: a stage's records, its outcome, its estimates with
+their shots."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from autotune.run.journal import Journal
+from autotune.wire.rig import measurement_shots
+
+__all__ = ["HOLD", "NightLedger", "same_setpoints", "json_ready", "stage_records", "stage_outcome",
+           "stage_estimates"]
+
+# Measurement label of the night's checks.
+HOLD = "hold"
+
+class NightLedger:
+    """The journal, seen through: every record passes, and the night keeps its accounts.
+
+    Acquisitions are counted as the night's checks (label ``hold``) or as its stages (anything
+    else); the last estimate record is kept (a stage's final clock).
+    """
+
+    def __init__(self, journal: Journal, records: Sequence[Mapping[str, Any]]) -> None:
+        self._journal = journal
+        self.check_beam_s = 0.0
+        self.stage_beam_s_total = 0.0
+        self.first_stage_beam_s = 0.0
+        self.shots = 0
+        self.stages_begun = 0
+        self.first_stage_is_calibration = False
+        self.stage_beam_s: dict[int, float] = {}
+        self.stage_kind: dict[int, str] = {}
+        self.last_estimate: Mapping[str, Any] | None = None
+        self.records: list[Mapping[str, Any]] = []
+        for rec in records:
+            self._count(rec)
+
+    def _count(self, rec: Mapping[str, Any]) -> None:
+        self.records.append(rec)
+        kind = rec.get("type")
+        if kind == "acquisition":
+            beam = float(rec["t_end"]) - float(rec["t_start"])
+            self.shots += int(rec["shots"])
+            if rec.get("label") == HOLD:
+                self.check_beam_s += beam
+            else:
+                self.stage_beam_s_total += beam
+                index = self.stages_begun - 1
+                self.stage_beam_s[index] = self.stage_beam_s.get(index, 0.0) + beam
+                if self.stages_begun == 1:
+                    self.first_stage_beam_s += beam
+        elif kind == "estimate":
+            self.last_estimate = rec
+        elif kind == "decision" and rec.get("what") in ("retune", "calibrate") and "index" in rec:
+            self.stages_begun = max(self.stages_begun, int(rec["index"]) + 1)
+            self.stage_kind[int(rec["index"])] = str(rec["what"])
+            if int(rec["index"]) == 0:
+                self.first_stage_is_calibration = rec.get("what") == "calibrate"
+
+    @property
+    def holding_beam_s(self) -> float:
+        """Beam time of holding: checks and stages, less a calibration the night began with."""
+        first = self.first_stage_beam_s if self.first_stage_is_calibration else 0.0
+        return self.check_beam_s + self.stage_beam_s_total - first
+
+    def append(self, record_type: str, **fields: Any) -> dict[str, Any]:
+        # A non-finite number is refused by the journal (a bug upstream, never written silently):
+        # a recommendation's predicted value is made null where it is computed (autotune/run/stage.py, autotune/run/guided_stage.py).
+        rec = self._journal.append(record_type, **fields)
+        self._count(rec)
+        return rec
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._journal, name)
+
+
+def same_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+    return all(abs(float(a.get(k, math.nan)) - float(v)) <= 1e-9 * max(1.0, abs(float(v)))
+               for k, v in b.items())
+
+
+def json_ready(value: Any) -> Any:
+    """JSON-ready: nan and infinities as None, recursively."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, Mapping):
+        return {str(k): json_ready(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [json_ready(v) for v in value]
+    return value
+
+
+def stage_records(tail: Sequence[Mapping[str, Any]], index: int) -> list[Mapping[str, Any]]:
+    """The records of stage ``index`` in ``tail`` (from its ``stage`` record on)."""
+    begun = None
+    for position, rec in enumerate(tail):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out: list[Mapping[str, Any]] = []
+    for rec in tail[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if out or rec.get("type") == "stage":
+            out.append(rec)
+    return out
+
+
+def stage_outcome(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any] | None
+                  ) -> dict[str, Any] | None:
+    """A finished stage's outcome from its own records (its final decision), or None."""
+    final = None
+    for rec in records:
+        if rec.get("type") == "decision" and rec.get("what") in ("accepted",
+                                                                  "below_acceptance",
+                                                                  "still_good"):
+            final = rec
+    if final is None:
+        return None
+    estimates = [r for r in records if r.get("type") == "estimate"]
+    setpoints = {k: float(v) for k, v in final["setpoints"].items()}
+    at = [r for r in estimates if same_setpoints(r["setpoints"], setpoints)]
+    last = at[-1] if at else estimates[-1]
+    learned = final.get("learned")
+    return {"status": final["what"],
+            "accepted": final["what"] in ("accepted", "still_good"),
+            "setpoints": setpoints, "estimate": dict(last["estimate"]),
+            "clock_s": last.get("clock_s"),
+            "lock_prior": learned if learned is not None else prior}
+
+
+def stage_estimates(records: Sequence[Mapping[str, Any]], index: int, phases: int
+                     ) -> list[Mapping[str, Any]]:
+    """The check, verification and correction estimates of stage ``index`` with their shots."""
+    begun = None
+    for position, rec in enumerate(records):
+        if rec.get("type") == "decision" and rec.get("what") in ("retune", "calibrate") \
+                and rec.get("index") == index:
+            begun = position
+    if begun is None:
+        return []
+    out, opened = [], {}
+    for rec in records[begun + 1:]:
+        if rec.get("type") == "decision" and rec.get("what") == "stage_done":
+            break
+        if rec.get("type") == "measurement":
+            opened[(rec["label"], rec["point"])] = int(rec["shots_per_phase"])
+        elif rec.get("type") == "estimate" and rec.get("label") in ("check", "verify",
+                                                                     "correct"):
+            per_phase = opened.get((rec["label"], rec["point"]), 0)
+            out.append({**rec, "shots": measurement_shots(phases, per_phase)})
+    return out
