@@ -49,8 +49,6 @@ from typing import Any
 import numpy as np
 from scipy import linalg, optimize, special
 from scipy.stats import qmc
-from sklearn.base import clone
-from sklearn.exceptions import ConvergenceWarning
 
 from autotune.analysis.search_scans import CoordinateScan, GridScan, RandomSearch
 from autotune.analysis.search_types import (
