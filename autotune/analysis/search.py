@@ -40,6 +40,7 @@ them); to resume it, re-tell the results with their original clocks.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from collections.abc import Mapping, Sequence
@@ -138,6 +139,19 @@ def _skopt():
     except ImportError as exc:  # pragma: no cover - environment problem
         raise ImportError("autotune.search needs scikit-optimize==0.10.2 and scikit-learn") from exc
     return Optimizer, GaussianProcessRegressor, ConstantKernel, Matern, Real
+
+
+@functools.lru_cache(maxsize=32)
+def _latin_design(dims: int, n: int, seed: int) -> tuple[tuple[float, ...], ...]:
+    """The first design's ``n`` points in the unit cube: a Latin hypercube of ``dims`` axes
+    whose centred discrepancy is lowered by random coordinate swaps, drawn from ``seed``.
+
+    A pure function of its arguments, kept (as tuples, immutable) for the searches rebuilt in
+    one process with the same seed (a resume, a study's repeats): the discrepancy optimisation
+    takes seconds of CPU and gives the same points each time.
+    """
+    sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(seed))
+    return tuple(tuple(float(x) for x in row) for row in sampler.random(n))
 
 
 def _gaussian_ei():
@@ -294,8 +308,7 @@ class BayesianSearch(SearchRecord):
                 raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
             design.append(space.to_unit(point))
         if n_initial_points:
-            sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(self.seed))
-            design.extend(sampler.random(int(n_initial_points)))
+            design.extend(_latin_design(dims, int(n_initial_points), self.seed))
         self._design = np.array(design).reshape(-1, dims)
         warm = [_as_observation(item) for item in warm_start]
         if not len(self._design) and not warm:
