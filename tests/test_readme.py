@@ -35,6 +35,8 @@ HOW = {
     'python3 -m pip install -e ".[test]"': ("not here", "as above"),
     "python3 -m pytest -q": ("not here", "it is this suite; .ci/run must call exactly it "
                              "(test_ci_runs_exactly_the_readme_test_command)"),
+    "python3 -m pytest -q -m slow": ("not here", "the slow suite itself, tens of minutes on 2 "
+                                     "cores; .ci/run runs its kill and resume matrices"),
     "autotune calibrate --config my-rig.toml --out runs/first-calibration": ("run", ""),
     "autotune report runs/first-calibration": ("run", ""),
     "autotune retune --config my-rig.toml --out runs/retune-1": ("run", ""),

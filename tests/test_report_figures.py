@@ -2,7 +2,8 @@
 
 Real inputs: a dry run (``autotune dry-run``, a real process) and three nights of ``track`` on
 the simulated rig in process (autotune.run.track through LocalRig, the real protocol without a
-socket): a thermal step found and recovered; a larger step whose recovery fails (an alarm and
+socket): a thermal step found and recovered; a step as wide as the whole detuning range, so
+that no set-point within the limits brings the mode back (a night that holds, then an alarm and
 a failed recovery); and an acceptance bar no stage reaches (a night that never holds).
 
 Outside references: the journal's own records (the lock's fitted curve and covariance, the
@@ -59,13 +60,6 @@ def _rig(seed: int) -> LocalRig:
 pytestmark = pytest.mark.xdist_group("test_report_figures")
 
 
-#: The "failed" night held on a check below its 0.99 bar before a retune's check had to reach
-#: [acceptance] min_inversion as a verification does; it now never holds, so it has no checks
-#: to draw. Its fixture needs a night that holds and then fails a recovery (left open).
-_HOLDS_NO_MORE = pytest.mark.xfail(strict=True, raises=(ValueError, AssertionError),
-                                   reason="the 'failed' night no longer holds before it fails")
-
-
 @pytest.fixture(scope="module")
 def folders(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     """A dry run, a night with a recovered thermal step, a night whose recovery fails, and a
@@ -76,13 +70,18 @@ def folders(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
                           text=True, timeout=600, cwd=REPO, stdin=subprocess.DEVNULL)
     assert done.returncode == 0, done.stderr[-3000:]
     out = {"dry": base / "dry"}
+    # The failed night's step moves the mode by the whole width of the detuning limits: the
+    # set-point that would bring the atoms back into resonance lies beyond a limit, so the night
+    # holds at its default bar until the step and then no recovery can reach that bar.
+    detuning = {s.name: s for s in load_config(DRY_RUN).setpoints}["detuning"]
+    out_of_reach_hz = detuning.limit_max - detuning.limit_min
     # A two-hour night at the default 5 % has a 6 min beam ceiling, less than a recovery: a
     # fifth lets the shifted nights pay for the recoveries these figures draw.
     for name, seed, shift_hz, changes, bar in (("recovered", 23, 15e3,
                                                 {"budget_fraction": 0.2}, None),
-                                               ("failed", 23, 40e3,
+                                               ("failed", 23, out_of_reach_hz,
                                                 {"max_consecutive_failures": 1,
-                                                 "budget_fraction": 0.2}, 0.99),
+                                                 "budget_fraction": 0.2}, None),
                                                ("never", 9, None,
                                                 {"max_consecutive_failures": 2}, 0.99)):
         rig = _rig(seed)
@@ -228,7 +227,7 @@ def _holds(run_dir: Path) -> list[dict[str, Any]]:
     return [r for r in read_journal(run_dir / JOURNAL_NAME) if r["type"] == "hold"]
 
 
-@pytest.mark.parametrize("name", ["recovered", pytest.param("failed", marks=_HOLDS_NO_MORE)])
+@pytest.mark.parametrize("name", ["recovered", "failed"])
 def test_the_night_draws_each_statistic_against_its_threshold(folders, name):
     """S+, S- and the inversion's S are the hold records' numbers at the checks' clocks; the
     thresholds are the plan's; each alarm is marked at its journaled value."""
@@ -274,7 +273,7 @@ def test_a_failed_recovery_is_shaded_red_and_marked(folders):
     assert f"{len(failures)} failure" in rows["night"]
 
 
-@pytest.mark.parametrize("name", ["recovered", pytest.param("failed", marks=_HOLDS_NO_MORE)])
+@pytest.mark.parametrize("name", ["recovered", "failed"])
 def test_the_night_draws_inversion_reference_phase_error_and_beam_share(folders, name):
     """Each check's inversion and phase error (phase shift minus the stored phase at the peak);
     the reference is the hold state's weighted mean; the beam share ends at the result's

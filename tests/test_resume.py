@@ -81,12 +81,14 @@ def _cut_copy(source: Path, target: Path, keep: int, partial: bool) -> None:
     (target / RESULT_NAME).unlink(missing_ok=True)
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_resume")
+#: The tests of each strategy share its expensive module-scoped fixture: one worker runs them
+#: (pytest-xdist's loadgroup), so that it is built once per strategy; the two strategies' tests
+#: run on two workers side by side (the bayesian cut matrix alone is minutes of GP fits).
+_STRATEGIES = [pytest.param(name, marks=pytest.mark.xdist_group(f"test_resume_{name}"))
+               for name in ("phase_lock", "bayesian")]
 
 
-@pytest.fixture(scope="module", params=["phase_lock", "bayesian"])
+@pytest.fixture(scope="module", params=_STRATEGIES)
 def finished_runs(request: pytest.FixtureRequest,
                   tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     """One finished calibration and one retune that did not stop at its check, on one

@@ -40,6 +40,7 @@ them); to resume it, re-tell the results with their original clocks.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from collections.abc import Mapping, Sequence
@@ -49,8 +50,6 @@ from typing import Any
 import numpy as np
 from scipy import linalg, optimize, special
 from scipy.stats import qmc
-from sklearn.base import clone
-from sklearn.exceptions import ConvergenceWarning
 
 from autotune.analysis.search_scans import CoordinateScan, GridScan, RandomSearch
 from autotune.analysis.search_types import (
@@ -140,6 +139,19 @@ def _skopt():
     except ImportError as exc:  # pragma: no cover - environment problem
         raise ImportError("autotune.search needs scikit-optimize==0.10.2 and scikit-learn") from exc
     return Optimizer, GaussianProcessRegressor, ConstantKernel, Matern, Real
+
+
+@functools.lru_cache(maxsize=32)
+def _latin_design(dims: int, n: int, seed: int) -> tuple[tuple[float, ...], ...]:
+    """The first design's ``n`` points in the unit cube: a Latin hypercube of ``dims`` axes
+    whose centred discrepancy is lowered by random coordinate swaps, drawn from ``seed``.
+
+    A pure function of its arguments, kept (as tuples, immutable) for the searches rebuilt in
+    one process with the same seed (a resume, a study's repeats): the discrepancy optimisation
+    takes seconds of CPU and gives the same points each time.
+    """
+    sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(seed))
+    return tuple(tuple(float(x) for x in row) for row in sampler.random(n))
 
 
 def _gaussian_ei():
@@ -296,8 +308,7 @@ class BayesianSearch(SearchRecord):
                 raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
             design.append(space.to_unit(point))
         if n_initial_points:
-            sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(self.seed))
-            design.extend(sampler.random(int(n_initial_points)))
+            design.extend(_latin_design(dims, int(n_initial_points), self.seed))
         self._design = np.array(design).reshape(-1, dims)
         warm = [_as_observation(item) for item in warm_start]
         if not len(self._design) and not warm:
@@ -431,6 +442,11 @@ class BayesianSearch(SearchRecord):
                      warm=len(self._all_values) >= _WARM_HYPERPARAMETERS_AFTER)
 
     def _fit_gp(self, coordinates: np.ndarray, targets: np.ndarray, alpha: np.ndarray, warm: bool) -> None:
+        # Imported here, as _skopt() is: only the Gaussian-process strategies need scikit-learn,
+        # and every stage's process would otherwise pay for its import.
+        from sklearn.base import clone
+        from sklearn.exceptions import ConvergenceWarning
+
         model = clone(self._regressor).set_params(alpha=alpha)
         if warm and self._drift_kernel is not None:
             model.set_params(kernel=self._drift_kernel, n_restarts_optimizer=0)
