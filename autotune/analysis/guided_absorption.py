@@ -1,0 +1,136 @@
+"""The phase lock's absorption signal: the absorption fit along velocity, the inversion curve and
+the velocity plan (pure, no I/O).
+
+Moved out of :mod:`autotune.analysis.guided` (the physics is described there);
+:class:`AbsorptionSignal` is a part of :class:`~autotune.analysis.guided.PhaseLockSearch`, reading
+its state.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from autotune.analysis.lock_fit import solve_gaussian
+from autotune.analysis.next_point import SAME_VELOCITY
+from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, fit_inversion_curve
+from autotune.analysis.guided_phase import MIN_INVERSION_SCALE, Observation
+
+__all__ = ["AbsorptionSignal"]
+
+# Two velocities closer than this (relative) are one velocity group of the absorption fit.
+_SAME_VELOCITY = SAME_VELOCITY
+
+
+class AbsorptionSignal:
+    """The absorption signal of :class:`~autotune.analysis.guided.PhaseLockSearch` (a part of it, not used alone)."""
+
+    # -- the absorption signal --------------------------------------------------------------
+
+    def _anchor(self) -> Observation | None:
+        points = self._in_range()
+        return points[0] if points else None
+
+    def _absorption_points(self) -> list[Observation]:
+        window = self.settings.absorption_phase_window_rad
+        star = self._phase_star()[0]
+        return [o for o in self._in_range() if abs(self._unwrapped(o) - star) <= window]
+
+    def _absorption_fit(self) -> AbsorptionFit | None:
+        return self._cached("absorption", self._compute_absorption_fit)
+
+    def _absorption_prior(self, velocity_ref: float) -> tuple[np.ndarray, np.ndarray] | None:
+        if self.prior is None:
+            return None
+        p = self.prior
+        # P = P_min + k (v*/v - 1)^2 in x = v_ref/v - 1: a2 = k / (1 + x*)^2, a1 = -2 a2 x*.
+        x_star = velocity_ref / p.velocity_m_per_s - 1.0
+        a2 = p.absorption_curvature / (1.0 + x_star) ** 2
+        mean = np.array([p.absorption_min + a2 * x_star**2, -2.0 * a2 * x_star, a2])
+        # The vertex is known to its stored error and may have moved by the tolerance; the
+        # curvature to its error and 30 %.
+        x_sd = math.hypot(p.velocity_stderr_m_per_s / p.velocity_m_per_s,
+                          self.settings.prior_velocity_tolerance_fraction)
+        a2_sd = math.hypot(p.absorption_curvature_stderr, 0.3 * p.absorption_curvature)
+        sd = np.array([math.hypot(p.absorption_min_stderr, a2 * x_sd**2), 2.0 * a2 * x_sd, max(a2_sd, 1e-6)])
+        return mean, np.diag(1.0 / sd**2)
+
+    def _compute_absorption_fit(self) -> AbsorptionFit | None:
+        anchor = self._anchor()
+        if anchor is None:
+            return None
+        velocity_ref = self.prior.velocity_m_per_s if self.prior is not None else anchor.velocity
+        points = self._absorption_points()
+        xs = np.array([velocity_ref / o.velocity - 1.0 for o in points])
+        groups: list[float] = []
+        for x in sorted(xs.tolist()):
+            if not groups or x - groups[-1] > _SAME_VELOCITY:
+                groups.append(x)
+        prior = self._absorption_prior(velocity_ref)
+        if prior is None and len(groups) < 3:
+            return AbsorptionFit(velocity_ref, np.zeros(3), np.eye(3), tuple(groups), False) if points else None
+        values = np.array([o.result.absorption for o in points])
+        variances = np.maximum(np.array([o.result.absorption_stderr for o in points]) ** 2, 1e-8)
+        design = np.stack([np.ones(len(points)), xs, xs**2], axis=1) if points else np.zeros((0, 3))
+        if prior is None:
+            mean, precision = np.zeros(3), np.diag([1e-6, 1e-6, 1e-6])
+        else:
+            mean, precision = prior
+        coef, cov = solve_gaussian(design, values, variances, mean, precision)
+        return AbsorptionFit(velocity_ref, coef, cov, tuple(groups), prior is not None)
+
+    def _absorption_ready(self, fit: AbsorptionFit | None) -> bool:
+        return fit is not None and (fit.from_prior or len(fit.x_groups) >= 3)
+
+    def _velocity_curve(self) -> InversionCurve | None:
+        """The inversion along velocity (a calibration's; None before three velocities)."""
+        return self._cached("velocity_curve", self._compute_velocity_curve)
+
+    def _compute_velocity_curve(self) -> InversionCurve | None:
+        fit = self._absorption_fit()
+        if self.prior is not None or not self._absorption_ready(fit):
+            return None
+        # The search's own points: a verification measures the inversion at one velocity at
+        # its own precision and moment; it judges the choice and does not move the model.
+        points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
+        star = self._phase_star()[0]
+        xs, values, variances = [], [], []
+        for o in points:
+            # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
+            half = 0.5 * (self._unwrapped(o) - star)
+            factor = max(math.cos(half), 0.5)
+            value = o.result.inversion / factor
+            xs.append(fit.x_of(o.velocity))
+            values.append(value)
+            variances.append((o.result.inversion_stderr / factor) ** 2
+                             + (value * 0.5 * math.tan(half) * o.result.phase_shift_stderr) ** 2)
+        return fit_inversion_curve(
+            xs, values, variances, [o.result.absorption for o in points],
+            [o.result.absorption_stderr**2 for o in points],
+            [o.result.contrast_empty for o in points],
+            [o.result.contrast_empty_stderr**2 for o in points],
+            fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
+
+    @staticmethod
+    def _vertex_velocity_stderr(fit: AbsorptionFit) -> float:
+        """Standard error of the velocity of least absorption (delta method; inf without a vertex)."""
+        vertex = fit.vertex()
+        if vertex is None:
+            return math.inf
+        a1, a2 = float(fit.coef[1]), float(fit.coef[2])
+        gradient = np.array([0.0, -1.0 / (2.0 * a2), a1 / (2.0 * a2**2)])
+        x_sd = math.sqrt(max(float(gradient @ fit.cov @ gradient), 0.0))
+        return fit.velocity_of(vertex) * x_sd / (1.0 + vertex)
+
+    def _inversion_scale(self) -> float:
+        points = self._absorption_points() or self._in_range()
+        if not points:
+            return 1.0
+        values = np.array([o.result.inversion for o in points])
+        weights = 1.0 / np.maximum(np.array([o.result.inversion_stderr for o in points]) ** 2, 1e-8)
+        return max(float((values * weights).sum() / weights.sum()), MIN_INVERSION_SCALE)
+
+    def _box_x(self, fit: AbsorptionFit) -> tuple[float, float]:
+        low, high = self._velocity_box
+        return fit.x_of(high), fit.x_of(low)

@@ -1,0 +1,172 @@
+"""The phase lock's phase signal: the phase observations in range, the detuning lock's fit and the
+phase at the peak (pure, no I/O).
+
+Moved out of :mod:`autotune.analysis.guided` (the physics is described there);
+:class:`PhaseSignal` is a part of :class:`~autotune.analysis.guided.PhaseLockSearch`, reading its
+state (``space``, ``settings``, ``prior``, ``_obs``, ``_cache``).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from autotune.analysis.lock_fit import (
+    LockFit,
+    log_evidence,
+    solve_gaussian,
+    wrap_phase,
+    phase_signal_note,
+)
+from autotune.analysis.next_point import SAME_VELOCITY
+from autotune.analysis.search import PointResult
+
+__all__ = ["PhaseSignal", "Observation", "MIN_INVERSION_SCALE"]
+
+_TWO_PI = 2.0 * math.pi
+# Two velocities closer than this (relative) are one velocity group of the absorption fit.
+_SAME_VELOCITY = SAME_VELOCITY
+# The drift prior may widen by this factor when the data's marginal likelihood prefers it.
+_DRIFT_WIDENING = 4.0
+# Grid points of the posterior over the phase at the peak.
+_PHASE_GRID = 241
+# Smallest inversion scale used as the denominator of the velocity term.
+MIN_INVERSION_SCALE = 0.05
+
+
+@dataclass(frozen=True)
+class Observation:
+    """One result told to the phase lock: where (m/s, Hz), what was measured, and why."""
+
+    velocity: float
+    detuning: float
+    result: PointResult
+    purpose: str
+
+
+class PhaseSignal:
+    """The phase signal of :class:`~autotune.analysis.guided.PhaseLockSearch` (a part of it, not used alone)."""
+
+    # -- the phase signal -------------------------------------------------------------------
+
+    def _phase_error(self, result: PointResult, centre: float | None = None) -> float:
+        centre = self._phase_star_prior[0] if centre is None else centre
+        return float(wrap_phase(result.phase_shift - centre))
+
+    def _range_note(self, result: PointResult) -> str | None:
+        """None when the point's phase signal is usable, else why not."""
+        return phase_signal_note(result, self.settings, self._phase_star_prior[0])
+
+    def _in_range(self) -> list[Observation]:
+        return self._cached("in_range", lambda: [o for o in self._obs if self._range_note(o.result) is None])
+
+    def _unwrapped(self, obs: Observation) -> float:
+        centre = self._phase_star_prior[0]
+        return centre + self._phase_error(obs.result, centre)
+
+    def _slope_prior(self) -> tuple[float, float] | None:
+        if self.prior is None:
+            return None
+        s = self.prior.slope_rad_per_hz
+        sd = math.hypot(self.prior.slope_stderr_rad_per_hz, self.settings.prior_slope_tolerance_fraction * s)
+        return s, sd
+
+    def _lock_fit(self, velocity: float) -> LockFit | None:
+        return self._cached(("lock", round(velocity, 9)), lambda: self._compute_lock_fit(velocity))
+
+    def _compute_lock_fit(self, velocity: float) -> LockFit | None:
+        points = self._in_range()
+        if not points:
+            return None
+        s_set = self.settings
+        h = self.step_hz
+        detunings = np.array([o.detuning for o in points])
+        phases = np.array([self._unwrapped(o) for o in points])
+        model = s_set.phase_velocity_error_rad * np.array([abs(o.velocity / velocity - 1.0) for o in points])
+        variances = np.array([o.result.phase_shift_stderr for o in points]) ** 2 + model**2
+        variances = np.maximum(variances, 1e-8)
+        clocks = [o.result.clock_s for o in points]
+        drift = s_set.drift_prior_hz_per_s > 0.0 and all(c is not None for c in clocks) and len(points) >= 2
+        t_ref = max(clocks) if drift else None
+        taus = np.array([c - t_ref for c in clocks]) if drift else np.zeros(len(points))
+        phase_star = self._phase_star_prior[0]
+        slope_prior = self._slope_prior()
+        wide_slope = math.pi / h
+        cubic_prior_mean = 0.0 if self.prior is None else self.prior.cubic_rad_per_hz3 * h**3
+
+        # Pass 1: a line through the point closest to the peak, for the scales of the priors.
+        nearest = int(np.argmin(np.abs(phases - phase_star)))
+        centre = float(detunings[nearest])
+        design = np.stack([np.ones(len(points)), detunings - centre], axis=1)
+        mean0 = np.array([phase_star, slope_prior[0] if slope_prior else 0.0])
+        precision0 = np.diag([1.0 / (_TWO_PI**2), 1.0 / (slope_prior[1] if slope_prior else wide_slope) ** 2])
+        theta, _ = solve_gaussian(design, phases, variances, mean0, precision0)
+        slope_scale = abs(float(theta[1]))
+
+        cubic_sd = s_set.phase_cubic_prior_fraction * slope_scale * h
+        if self.prior is not None:
+            cubic_sd = math.hypot(cubic_sd, self.prior.cubic_stderr_rad_per_hz3 * h**3)
+        # The drift prior's width: the configured one, or four times it when the data's marginal
+        # likelihood prefers that (a cavity drifting faster than assumed would otherwise be
+        # explained away by a wrong slope).
+        widths = (s_set.drift_prior_hz_per_s, _DRIFT_WIDENING * s_set.drift_prior_hz_per_s) if drift else (0.0,)
+        fit = None
+        for _ in range(3):
+            d = detunings - centre
+            design = np.stack([np.ones(len(points)), d, (d / h) ** 3, taus], axis=1)
+            mean = np.array([phase_star, slope_prior[0] if slope_prior else 0.0, cubic_prior_mean, 0.0])
+            best = None
+            for width in widths:
+                drift_sd = slope_scale * width
+                prior_sd = np.array([_TWO_PI, slope_prior[1] if slope_prior else wide_slope,
+                                     max(cubic_sd, 1e-12), max(drift_sd, 1e-15)])
+                evidence = log_evidence(design, phases, variances, mean, prior_sd)
+                if best is None or evidence > best[0] + 1e-9:
+                    best = (evidence, prior_sd)
+            theta, cov = solve_gaussian(design, phases, variances, mean, np.diag(1.0 / best[1] ** 2))
+            fit = LockFit(velocity, centre, h, t_ref, theta, cov, len(points))
+            if not fit.slope_known():
+                break
+            star, _, _ = fit.solve(phase_star, 0.0, t_ref, 4.0 * h)
+            if abs(star - centre) < 1e-3 * h:
+                break
+            centre = star
+        return fit
+
+    def _phase_star(self) -> tuple[float, float]:
+        """Posterior mean and standard deviation of the phase at the peak (rad)."""
+        return self._cached("phase_star", self._compute_phase_star)
+
+    def _compute_phase_star(self) -> tuple[float, float]:
+        centre, width = self._phase_star_prior
+        points = self._in_range()
+        groups: dict[int, list[Observation]] = {}
+        for obs in points:
+            key = int(round(math.log(obs.velocity) / _SAME_VELOCITY))
+            groups.setdefault(key, []).append(obs)
+        usable = [g for g in groups.values() if len(g) >= 2]
+        if not usable:
+            return centre, width
+        grid = centre + width * np.linspace(-4.0, 4.0, _PHASE_GRID)
+        log_post = -0.5 * ((grid - centre) / width) ** 2
+        for group in usable:
+            phases = np.array([self._unwrapped(o) for o in group])
+            inversions = np.array([o.result.inversion for o in group])
+            scale0 = max(float(np.max(inversions)), MIN_INVERSION_SCALE)
+            errors0 = phases - centre
+            # The phase's own noise moves the cos law too (errors in the regressor).
+            variances = (np.array([o.result.inversion_stderr for o in group]) ** 2
+                         + (0.5 * scale0 * np.sin(0.5 * np.abs(errors0))) ** 2
+                         * np.array([o.result.phase_shift_stderr for o in group]) ** 2)
+            weights = 1.0 / np.maximum(variances, 1e-10)
+            shape = np.cos(0.5 * (phases[None, :] - grid[:, None]))  # (grid, points)
+            scale = (shape * weights * inversions).sum(axis=1) / np.maximum((shape**2 * weights).sum(axis=1), 1e-12)
+            chi2 = ((inversions[None, :] - scale[:, None] * shape) ** 2 * weights).sum(axis=1)
+            log_post = log_post - 0.5 * chi2
+        post = np.exp(log_post - log_post.max())
+        post /= post.sum()
+        mean = float((grid * post).sum())
+        sd = float(math.sqrt(max(((grid - mean) ** 2 * post).sum(), 1e-12)))
+        return mean, sd
