@@ -14,7 +14,11 @@ What lives here:
   :mod:`~autotune.analysis.shortfall` (the bound as data), :mod:`~autotune.analysis.next_point`
   (the choice of the next point), :mod:`~autotune.analysis.retune_verdict` (a retune's
   verdict) and :mod:`~autotune.analysis.lock_settings` (its settings and the prior a
-  calibration stores);
+  calibration stores), and its methods by concern in classes it inherits:
+  :mod:`~autotune.analysis.guided_phase` (the phase observations, the detuning lock's fit, the
+  phase at the peak), :mod:`~autotune.analysis.guided_absorption` (absorption fit, inversion
+  curve, velocity plan), :mod:`~autotune.analysis.guided_shortfall` (shortfall, acceptance,
+  stopping) and :mod:`~autotune.analysis.guided_proposals` (step shots, the next point);
 - :mod:`~autotune.analysis.strategies`: a strategy by its configured name;
 - :mod:`~autotune.analysis.hold`: the night's pure core, described and re-exported there, over
   :mod:`~autotune.analysis.hold_lock` (drift lock, sequential test, settings),
@@ -32,6 +36,7 @@ nothing of the lab kit, a run, the report, the study or the command line
 module you need (``from autotune.analysis.fringe import estimate_inversion``).
 """
 
-__all__ = ["fringe", "guided", "hold", "hold_budget", "hold_check", "hold_lock", "hold_plan",
+__all__ = ["fringe", "guided", "guided_absorption", "guided_phase", "guided_proposals",
+           "guided_shortfall", "hold", "hold_budget", "hold_check", "hold_lock", "hold_plan",
            "hold_signal", "lock_fit", "lock_settings", "next_point", "retune_verdict", "search",
            "search_scans", "search_types", "shortfall", "strategies", "velocity_model"]
