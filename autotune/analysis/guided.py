@@ -560,7 +560,7 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         drift = 0.0
         if lock.t_ref is not None and lock.slope != 0.0:
             drift = -float(lock.theta[3]) / lock.slope
-        velocity_sd = curve.vertex_velocity_stderr() if curve is not None else self._vertex_velocity_stderr(fit_abs)
+        velocity_sd = curve.vertex_velocity_stderr() if curve is not None else fit_abs.vertex_velocity_stderr()
         if not math.isfinite(velocity_sd):
             velocity_sd = self.settings.velocity_step_fraction * rec["velocity"]
         if self.prior is not None:
@@ -646,7 +646,7 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
             vertex = fit.vertex()
             if vertex is not None:
                 out["velocity_least_absorption_m_per_s"] = fit.velocity_of(vertex)
-                out["velocity_least_absorption_stderr_m_per_s"] = self._vertex_velocity_stderr(fit)
+                out["velocity_least_absorption_stderr_m_per_s"] = fit.vertex_velocity_stderr()
         curve = self._velocity_curve()
         if curve is not None:
             peak = curve.vertex()

@@ -112,17 +112,6 @@ class AbsorptionSignal:
             [o.result.contrast_empty_stderr**2 for o in points],
             fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
 
-    @staticmethod
-    def _vertex_velocity_stderr(fit: AbsorptionFit) -> float:
-        """Standard error of the velocity of least absorption (delta method; inf without a vertex)."""
-        vertex = fit.vertex()
-        if vertex is None:
-            return math.inf
-        a1, a2 = float(fit.coef[1]), float(fit.coef[2])
-        gradient = np.array([0.0, -1.0 / (2.0 * a2), a1 / (2.0 * a2**2)])
-        x_sd = math.sqrt(max(float(gradient @ fit.cov @ gradient), 0.0))
-        return fit.velocity_of(vertex) * x_sd / (1.0 + vertex)
-
     def _inversion_scale(self) -> float:
         points = self._absorption_points() or self._in_range()
         if not points:

@@ -55,6 +55,7 @@ class _QuadraticInX:
 
     velocity_ref: float
     coef: np.ndarray
+    cov: np.ndarray
 
     def x_of(self, velocity: float) -> float:
         """``x`` of a velocity (m/s)."""
@@ -67,6 +68,22 @@ class _QuadraticInX:
     def value(self, x: float) -> float:
         """The curve at ``x``."""
         return float(self.coef[0] + self.coef[1] * x + self.coef[2] * x * x)
+
+    def vertex(self) -> float | None:
+        """``x`` of the curve's vertex, None where it has none of the expected kind."""
+        raise NotImplementedError
+
+    def vertex_velocity_stderr(self) -> float:
+        """Standard error of the velocity of the vertex (the inversion's maximum, the
+        absorption's minimum): the delta method on ``x* = -c1 / (2 c2)`` with the fit's
+        covariance, carried to ``v = v_ref / (1 + x*)``; inf without a vertex."""
+        vertex = self.vertex()
+        if vertex is None:
+            return math.inf
+        c1, c2 = float(self.coef[1]), float(self.coef[2])
+        gradient = np.array([0.0, -1.0 / (2.0 * c2), c1 / (2.0 * c2**2)])
+        x_sd = math.sqrt(max(float(gradient @ self.cov @ gradient), 0.0))
+        return self.velocity_of(vertex) * x_sd / (1.0 + vertex)
 
 
 @dataclass(frozen=True)
@@ -104,16 +121,6 @@ class InversionCurve(_QuadraticInX):
         if self.coef[2] >= 0.0:
             return None
         return float(-self.coef[1] / (2.0 * self.coef[2]))
-
-    def vertex_velocity_stderr(self) -> float:
-        """Standard error of the velocity of the maximum (delta method; inf without one)."""
-        vertex = self.vertex()
-        if vertex is None:
-            return math.inf
-        b1, b2 = float(self.coef[1]), float(self.coef[2])
-        gradient = np.array([0.0, -1.0 / (2.0 * b2), b1 / (2.0 * b2**2)])
-        x_sd = math.sqrt(max(float(gradient @ self.cov @ gradient), 0.0))
-        return self.velocity_of(vertex) * x_sd / (1.0 + vertex)
 
     def draws(self, normals: np.ndarray, residual_cov: np.ndarray | None = None,
               absorption_cov: np.ndarray | None = None) -> np.ndarray:
