@@ -35,7 +35,7 @@ from matplotlib.contour import ContourSet
 from scipy import stats
 
 from autotune import report
-from autotune.report.text import _header as report_header
+from autotune.report.text import header_rows as report_header
 from autotune.analysis.fringe import FringeData, estimate_inversion
 from autotune.run import records
 from autotune.run.journal import (JOURNAL_NAME, RESULT_NAME, Journal, read_journal, read_json,

@@ -27,7 +27,7 @@ import pytest
 from scipy import stats
 
 from autotune import report
-from autotune.report.text import _header as report_header
+from autotune.report.text import header_rows as report_header
 from autotune.bench import night_rig as bench_night_rig
 from autotune.run import runner
 from autotune.run import track

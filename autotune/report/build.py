@@ -19,7 +19,7 @@ from autotune.report.figures.timeline import figure_timeline
 from autotune.report.flags import Flag, run_flags
 from autotune.report.model import Run, find_runs, load_run
 from autotune.report.notices import Notice, report_notices
-from autotune.report.text import _header
+from autotune.report.text import header_rows
 
 @dataclass
 class ReportFigure:
@@ -85,7 +85,7 @@ def build_report(path: Path, *, draw: bool = True) -> Report:
     path = Path(path)
     runs = [load_run(p) for p in find_runs(path)]
     names = _unique_names(runs)
-    headers = {names[id(r)]: _header(r) for r in runs}
+    headers = {names[id(r)]: header_rows(r) for r in runs}
     flags = {names[id(r)]: run_flags(r) for r in runs}
     notices = report_notices(path, runs)
     figures: list[ReportFigure] = []

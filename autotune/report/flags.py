@@ -10,8 +10,9 @@ from typing import Any
 from scipy import stats
 
 from autotune.progress import setpoint_value_text
-from autotune.report.model import (_FIELD_NAMES, _FIELDS, SEARCH_LABELS, Measurement, Run,
-                                   _duration, _parse_time)
+from autotune.report.model import (FIELD_NAMES, SEARCH_LABELS, Measurement, Run,
+                                   format_duration, parse_time)
+from autotune.wire.rig import FIELDS
 
 #: An edge zone is this fraction of the box width, on each side of each axis.
 EDGE_FRACTION = 0.02
@@ -55,7 +56,7 @@ def fit_p_value(chi2: float, dof: int) -> float:
 
 def _poor_fits(m: Measurement) -> list[tuple[str, float, int, float]]:
     out = []
-    for fld in _FIELDS:
+    for fld in FIELDS:
         chi2 = m.value(f"chi2_{fld}")
         dof_raw = m.value(f"dof_{fld}")
         dof = int(dof_raw) if math.isfinite(dof_raw) else 0
@@ -157,7 +158,7 @@ def run_flags(run: Run) -> list[Flag]:
     poor = [(m, fits) for m in run.estimated if (fits := _poor_fits(m))]
     for m, fits in poor[:3]:
         for fld, chi2, dof, p in fits:
-            flags.append(Flag("poor_fit", f"poor fringe fit of {m.name} ({_FIELD_NAMES[fld]}): "
+            flags.append(Flag("poor_fit", f"poor fringe fit of {m.name} ({FIELD_NAMES[fld]}): "
                               f"reduced chi2 {chi2 / dof:.2f} ({chi2:.1f} for {dof} dof), "
                               f"p = {p:.1e}"))
     if len(poor) > 3:
@@ -167,10 +168,10 @@ def run_flags(run: Run) -> list[Flag]:
 
 
 def _age(t_wall: Any) -> str:
-    when = _parse_time(t_wall)
+    when = parse_time(t_wall)
     if when is None:
         return ""
     seconds = (datetime.now(UTC) - when).total_seconds()
-    return f" ({_duration(seconds)} ago)" if seconds >= 0 else ""
+    return f" ({format_duration(seconds)} ago)" if seconds >= 0 else ""
 
 

@@ -24,7 +24,6 @@ from autotune.run.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, Jour
 from autotune.progress import setpoints_text
 from autotune.run.records import (Acquisition, Decision, End, Estimate, MeasurementOpened, Move,
                                   Other, SafeFailed, StageHeader, Start, parse)
-from autotune.wire.rig import FIELDS
 
 FIGURE_NAME = "report.png"
 """Overview sheet: the figures of a single run, or the timeline and the latest run's figures."""
@@ -38,8 +37,7 @@ SEARCH_LABELS = ("point", "search", "lock", "velocity", "relock", "bracket")
 """Measurement labels of search steps (the Gaussian-process and hand strategies' ``point``, the
 phase lock's steps); checks, scans, verifications and corrections are not search steps."""
 
-_FIELDS = FIELDS
-_FIELD_NAMES = {"empty": "empty field", "one_photon": "one photon"}
+FIELD_NAMES = {"empty": "empty field", "one_photon": "one photon"}
 _RUNNING = "running or killed"
 _DAMAGED = "journal damaged"
 
@@ -195,13 +193,13 @@ class Run:
         """Set-points the run chose: the result's; before it, the last verification's (after
         the detuning scan) or else the last recommendation's."""
         if self.result and isinstance(self.result.get("setpoints"), Mapping):
-            return _setpoints(self.result["setpoints"])
+            return read_setpoints(self.result["setpoints"])
         verifying = [m for m in self.measurements if m.label == "verify"]
         if verifying:
             return dict(verifying[-1].setpoints)
         for d in reversed(self.decisions):
             if d.get("what") == "recommend" and isinstance(d.get("setpoints"), Mapping):
-                return _setpoints(d["setpoints"])
+                return read_setpoints(d["setpoints"])
         return None
 
     @property
@@ -243,7 +241,7 @@ class Run:
         done = self.estimated
         chosen = self.chosen if self.chosen_is_verified else None
         if chosen is not None:
-            at = [m for m in done if _same_setpoints(m.setpoints, chosen)]
+            at = [m for m in done if same_setpoints(m.setpoints, chosen)]
             for label in ("verify", "check"):
                 picked = [m for m in at if m.label == label]
                 if picked:
@@ -254,7 +252,7 @@ class Run:
         return verified[-1] if verified else None
 
 
-def _setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
+def read_setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
     out = {}
     for name, value in raw.items():
         if isinstance(value, (int, float)) and not isinstance(value, bool):
@@ -262,7 +260,7 @@ def _setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
     return out
 
 
-def _same_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+def same_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
     if set(a) != set(b):
         return False
     return all(abs(a[k] - b[k]) <= 1e-9 * max(1.0, abs(b[k])) for k in a)
@@ -359,7 +357,7 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
         key = (label, point)
         if key not in latest:
             # An acquisition or estimate without its measurement record: keep it anyway.
-            m = Measurement(label, point, _setpoints(setpoints), None, len(stages) - 1)
+            m = Measurement(label, point, read_setpoints(setpoints), None, len(stages) - 1)
             measurements.append(m)
             latest[key] = m
         return latest[key]
@@ -372,7 +370,7 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
         elif isinstance(rec, StageHeader):
             stages.append(raw)
         elif isinstance(rec, MeasurementOpened):
-            m = Measurement(rec.label, rec.point, _setpoints(rec.setpoints), rec.shots_per_phase,
+            m = Measurement(rec.label, rec.point, read_setpoints(rec.setpoints), rec.shots_per_phase,
                             len(stages) - 1)
             measurements.append(m)
             latest[(m.label, m.point)] = m
@@ -402,7 +400,7 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
             if rec.clock is not None:
                 clock = rec.clock
             moves.append({"clock": clock, "t_wall": rec.t_wall,
-                          "setpoints": _setpoints(rec.applied or rec.setpoints),
+                          "setpoints": read_setpoints(rec.applied or rec.setpoints),
                           "reason": rec.reason})
         elif isinstance(rec, Decision):
             decisions.append({**raw, "what": rec.what, "reason": rec.reason, "clock": clock})
@@ -425,7 +423,7 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
                clock_start=clock_start, clock_end=clock, unknown=unknown)
 
 
-def _parse_time(text: Any) -> datetime | None:
+def parse_time(text: Any) -> datetime | None:
     if not isinstance(text, str):
         return None
     try:
@@ -436,7 +434,7 @@ def _parse_time(text: Any) -> datetime | None:
 
 
 
-def _duration(seconds: float | None) -> str:
+def format_duration(seconds: float | None) -> str:
     if seconds is None or not math.isfinite(seconds):
         return "unknown"
     if seconds < 120:
@@ -446,11 +444,11 @@ def _duration(seconds: float | None) -> str:
     return f"{seconds / 3600:.2f} h"
 
 
-def _level(confidence: float) -> str:
+def level_label(confidence: float) -> str:
     return f"{100 * confidence:g} %"
 
 
-def _number(mapping: Mapping[str, Any], key: str, default: float) -> float:
+def number_at(mapping: Mapping[str, Any], key: str, default: float) -> float:
     value = mapping.get(key, default)
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         return float(value)
@@ -458,7 +456,7 @@ def _number(mapping: Mapping[str, Any], key: str, default: float) -> float:
 
 
 
-def _fmt_setpoints(setpoints: Mapping[str, float] | None) -> str:
+def format_setpoints(setpoints: Mapping[str, float] | None) -> str:
     return setpoints_text(setpoints) if setpoints else "none"
 
 

@@ -14,11 +14,12 @@ from typing import Any
 
 from autotune.errors import JournalError
 from autotune.report.build import Report, ReportFigure, build_report
-from autotune.report.figures._base import _DPI, _new_figure
+from autotune.report.figures.base import DPI, new_figure
 from autotune.report.flags import fit_p_value
-from autotune.report.model import (_FIELDS, FIGURE_NAME, HTML_NAME, Run, _duration, _level,
-                                   _number)
-from autotune.report.text import _notes, format_text
+from autotune.report.model import (FIGURE_NAME, HTML_NAME, Run, format_duration, level_label,
+                                   number_at)
+from autotune.report.text import page_notes, format_text
+from autotune.wire.rig import FIELDS
 
 _CSS = """
 body { font-family: sans-serif; margin: 1em auto; max-width: 1500px; padding: 0 1em;
@@ -128,7 +129,7 @@ def _table_html(run: Run) -> str:
     rows = []
     for m in run.estimated:
         p = min((fit_p_value(m.value(f"chi2_{f}"), int(m.value(f"dof_{f}") or 0))
-                 for f in _FIELDS), default=math.nan)
+                 for f in FIELDS), default=math.nan)
         cells = [m.label, m.point, f"{m.setpoints.get('velocity', math.nan):.1f}",
                  f"{m.setpoints.get('detuning', math.nan) / 1e3:+.2f}",
                  f"{m.value('inversion'):.3f}",
@@ -138,7 +139,7 @@ def _table_html(run: Run) -> str:
                  f"{m.value('absorption'):.3f}", f"{p:.2g}", f"{m.shots_after:,}"]
         rows.append("<tr>" + "".join(f'<td class="num">{_esc(c)}</td>' for c in cells) + "</tr>")
     head = ("<tr><th>label</th><th>#</th><th>velocity (m/s)</th><th>detuning (kHz)</th>"
-            f"<th>inversion</th><th>{_esc(_level(run.confidence))} interval</th>"
+            f"<th>inversion</th><th>{_esc(level_label(run.confidence))} interval</th>"
             "<th>phase shift (π rad)</th><th>absorption</th><th>fit p</th>"
             "<th>cumulative shots</th></tr>")
     return (f"<details><summary>measurements ({len(rows)})</summary>"
@@ -172,8 +173,8 @@ def render_html(report: Report) -> str:
             rows.append("<tr>" + "".join(f"<td>{_esc(c)}</td>" for c in (
                 name, run.command, run.status, hdr.get("verified inversion", "-"),
                 hdr.get("chosen set-points", "-"),
-                f"{int(_number(run.result or {}, 'shots', run.shots)):,}",
-                _duration(_number(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
+                f"{int(number_at(run.result or {}, 'shots', run.shots)):,}",
+                format_duration(number_at(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
         parts.append(f'<section id="runs"><h2>Runs</h2><table>{head}{"".join(rows)}</table>'
                      "</section>")
         if lead:
@@ -195,7 +196,7 @@ def render_html(report: Report) -> str:
             parts.append("<p>no figure: nothing measured yet</p>")
         parts.append(_table_html(run))
         parts.append(_decisions_html(run))
-        for note in _notes(run):
+        for note in page_notes(run):
             parts.append(f'<p class="meta">note: {_esc(note)}</p>')
         parts.append("</section>")
     parts.append("</body></html>")
@@ -205,7 +206,7 @@ def render_html(report: Report) -> str:
 
 def _png(fig: Any) -> bytes:
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=_DPI)
+    fig.savefig(buffer, format="png", dpi=DPI)
     return buffer.getvalue()
 
 
@@ -233,7 +234,7 @@ def _overview_sheet(rows: Sequence[Sequence[ReportFigure]], path: Path) -> None:
     import matplotlib.image as mpimg
 
     columns = max(len(row) for row in rows)
-    sheet = _new_figure(6.0 * columns, 4.2 * len(rows))
+    sheet = new_figure(6.0 * columns, 4.2 * len(rows))
     grid = sheet.add_gridspec(len(rows), columns)
     for r, row in enumerate(rows):
         for c, fig in enumerate(row):
@@ -241,7 +242,7 @@ def _overview_sheet(rows: Sequence[Sequence[ReportFigure]], path: Path) -> None:
             ax = sheet.add_subplot(grid[r, :] if len(row) == 1 else grid[r, c])
             ax.imshow(mpimg.imread(io.BytesIO(fig.png), format="png"))
             ax.set_axis_off()
-    sheet.savefig(path, dpi=_DPI)
+    sheet.savefig(path, dpi=DPI)
 
 
 def _write_bytes(path: Path, data: bytes) -> None:

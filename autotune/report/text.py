@@ -10,9 +10,10 @@ import numpy as np
 
 from autotune.progress import count_text
 from autotune.report.flags import fit_p_value
-from autotune.report.model import (_FIELDS, HTML_NAME, SEARCH_LABELS, Measurement, Run,
-                                   _duration, _fmt_setpoints, _level, _number, _parse_time,
-                                   _setpoints)
+from autotune.report.model import (HTML_NAME, SEARCH_LABELS, Measurement, Run,
+                                   format_duration, format_setpoints, level_label, number_at, parse_time,
+                                   read_setpoints)
+from autotune.wire.rig import FIELDS
 
 if TYPE_CHECKING:
     from autotune.report.build import Report
@@ -27,10 +28,10 @@ _TEXT_SECTIONS_MAX = 3
 def _interval(result: Mapping[str, Any]) -> tuple[float, float, float] | None:
     """The result's inversion and interval, or None if absent or not numbers."""
     pair = result.get("inversion_interval")
-    inv = _number(result, "inversion", math.nan)
+    inv = number_at(result, "inversion", math.nan)
     if not (isinstance(pair, Sequence) and len(pair) == 2 and math.isfinite(inv)):
         return None
-    low, high = (_number({"v": v}, "v", math.nan) for v in pair)
+    low, high = (number_at({"v": v}, "v", math.nan) for v in pair)
     return (inv, low, high) if math.isfinite(low) and math.isfinite(high) else None
 
 
@@ -43,24 +44,24 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
     rows.append(("stop reason", str(result.get("stop_reason") or "none yet")))
     if result:
         held = result.get("held", True)
-        rows.append(("held set-points", _fmt_setpoints(_setpoints(result["setpoints"]))
+        rows.append(("held set-points", format_setpoints(read_setpoints(result["setpoints"]))
                      if held else "none (no stage was accepted)"))
         counts = ", ".join(count_text(int(result.get(k, 0)), k[:-1]) for k in (
             "checks", "rechecks", "corrections", "alarms", "retunes", "calibrations",
             "failures"))
-        rows.append(("night", f"{_duration(_number(result, 'night_rig_time_s', math.nan))} of "
+        rows.append(("night", f"{format_duration(number_at(result, 'night_rig_time_s', math.nan))} of "
                      f"rig time: {counts}"))
         share = result.get("holding_share")
         rows.append(("beam on holding", ("-" if share is None else f"{share:.1%}")
                      + f" of the night's rig time (budget "
-                     f"{_number(result, 'budget_fraction', math.nan):.0%})"))
+                     f"{number_at(result, 'budget_fraction', math.nan):.0%})"))
     checks = [m for m in run.estimated if m.label == "hold"]
     if checks:
         last = checks[-1]
         rows.append(("last check", f"{last.value('inversion'):.3f} "
                      f"[{last.value('inversion_low'):.3f}, {last.value('inversion_high'):.3f}]"
-                     f" ({_level(run.confidence)} interval; check {last.point} at "
-                     f"{_fmt_setpoints(last.setpoints)}, phase shift "
+                     f" ({level_label(run.confidence)} interval; check {last.point} at "
+                     f"{format_setpoints(last.setpoints)}, phase shift "
                      f"{last.value('phase_shift') / math.pi:.3f} pi)"))
         low = min(checks, key=lambda m: m.value("inversion"))
         rows.append(("lowest check", f"{low.value('inversion'):.3f} "
@@ -69,12 +70,12 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
     else:
         rows.append(("last check", "none yet"))
     rows.append(("effort", f"{len(run.estimated)} measurements, "
-                 f"{int(_number(result, 'shots', run.shots)):,} shots, beam time "
-                 f"{_duration(_number(result, 'rig_time_s', run.rig_time_s))}"))
+                 f"{int(number_at(result, 'shots', run.shots)):,} shots, beam time "
+                 f"{format_duration(number_at(result, 'rig_time_s', run.rig_time_s))}"))
     return rows
 
 
-def _header(run: Run) -> list[tuple[str, str]]:
+def header_rows(run: Run) -> list[tuple[str, str]]:
     """The run's header as (name, text) rows, for the text summary and the page."""
     if run.command == "track":
         return _night_header(run)
@@ -82,7 +83,7 @@ def _header(run: Run) -> list[tuple[str, str]]:
     rows = [("rig", run.rig), ("command", run.command),
             ("started", str(run.manifest.get("started", "?"))), ("status", run.status)]
     final = run.final_measurement()
-    level = _level(run.confidence)
+    level = level_label(run.confidence)
     verified = _interval(result)
     if verified is not None:
         inv, low, high = verified
@@ -98,9 +99,9 @@ def _header(run: Run) -> list[tuple[str, str]]:
     if best is not None and (final is None or best is not final):
         rows.append(("best measured", f"{best.value('inversion'):.3f} "
                      f"[{best.value('inversion_low'):.3f}, {best.value('inversion_high'):.3f}] "
-                     f"at {best.name} ({_fmt_setpoints(best.setpoints)})"))
+                     f"at {best.name} ({format_setpoints(best.setpoints)})"))
     chosen = run.chosen
-    rows.append(("chosen set-points", _fmt_setpoints(chosen) +
+    rows.append(("chosen set-points", format_setpoints(chosen) +
                  ("" if chosen is None or run.chosen_is_verified
                   else " (not yet verified)")))
     if final is not None:
@@ -109,18 +110,18 @@ def _header(run: Run) -> list[tuple[str, str]]:
                      f"absorption {final.value('absorption'):.3f}; contrasts "
                      f"{final.value('contrast_empty'):.3f} (empty), "
                      f"{final.value('contrast_one_photon'):.3f} (one photon)"))
-    points = int(_number(result, "points", sum(m.label in SEARCH_LABELS for m in run.estimated)))
-    shots = int(_number(result, "shots", run.shots))
-    rig_time = _number(result, "rig_time_s", run.rig_time_s)
-    if math.isfinite(_number(result, "wall_time_s", math.nan)):
-        wall = _duration(_number(result, "wall_time_s", math.nan))
+    points = int(number_at(result, "points", sum(m.label in SEARCH_LABELS for m in run.estimated)))
+    shots = int(number_at(result, "shots", run.shots))
+    rig_time = number_at(result, "rig_time_s", run.rig_time_s)
+    if math.isfinite(number_at(result, "wall_time_s", math.nan)):
+        wall = format_duration(number_at(result, "wall_time_s", math.nan))
     else:
-        first = _parse_time(run.records[0].get("t_wall")) if run.records else None
-        last = _parse_time(run.records[-1].get("t_wall")) if run.records else None
-        wall = (_duration((last - first).total_seconds()) + " so far"
+        first = parse_time(run.records[0].get("t_wall")) if run.records else None
+        last = parse_time(run.records[-1].get("t_wall")) if run.records else None
+        wall = (format_duration((last - first).total_seconds()) + " so far"
                 if first is not None and last is not None else "unknown")
     rows.append(("effort", f"{points} search points, {len(run.estimated)} measurements, "
-                 f"{shots:,} shots, rig time {_duration(rig_time)}, wall time {wall}"))
+                 f"{shots:,} shots, rig time {format_duration(rig_time)}, wall time {wall}"))
     stop = result.get("stop_reason")
     if not stop:
         stops = [d["reason"] for d in run.decisions if d["what"] == "stop_search"]
@@ -131,7 +132,7 @@ def _header(run: Run) -> list[tuple[str, str]]:
         try:
             at, best_true = float(truth["inversion_at_chosen"]), float(truth["best_inversion"])
             rows.append(("truth (simulated)", f"true@chosen {at:.3f}, true best {best_true:.3f} "
-                         f"at {_fmt_setpoints(_setpoints(truth['best_setpoints']))}; "
+                         f"at {format_setpoints(read_setpoints(truth['best_setpoints']))}; "
                          f"ratio {at / best_true:.3f}"))
         except (KeyError, TypeError, ValueError, ZeroDivisionError):
             rows.append(("truth (simulated)", "unreadable truth block"))
@@ -170,7 +171,7 @@ def _measurement_rows(run: Run) -> list[str]:
              f"{'inversion':>9} {'interval':<14} {'phase/pi':>8} {'fit p':>7}"]
     for m in done:
         p = min((fit_p_value(m.value(f"chi2_{f}"), int(m.value(f"dof_{f}") or 0))
-                 for f in _FIELDS), default=math.nan)
+                 for f in FIELDS), default=math.nan)
         lines.append(
             f"{m.label:<7} {m.point:>3} {m.setpoints.get('velocity', math.nan):>12.1f} "
             f"{m.setpoints.get('detuning', math.nan) / 1e3:>12.2f} {m.value('inversion'):>9.3f} "
@@ -194,8 +195,8 @@ def _overview_line(name: str, run: Run) -> str:
     return (f"{name:<12} {run.status:<17} {inv:>22} "
             f"{chosen.get('velocity', math.nan):>8.1f} "
             f"{chosen.get('detuning', math.nan) / 1e3:>9.2f} "
-            f"{int(_number(result, 'shots', run.shots)):>9,} "
-            f"{_duration(_number(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
+            f"{int(number_at(result, 'shots', run.shots)):>9,} "
+            f"{format_duration(number_at(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
 
 
 def format_text(report: Report) -> str:
@@ -218,12 +219,12 @@ def format_text(report: Report) -> str:
             lines += [f"  {key:<19} {value}" for key, value in report.headers[name]]
             lines.append("")
             lines += _measurement_rows(run)
-            notes = _notes(run)
+            notes = page_notes(run)
             lines += [f"  note: {n}" for n in notes]
     return "\n".join(lines)
 
 
-def _notes(run: Run) -> list[str]:
+def page_notes(run: Run) -> list[str]:
     notes = []
     if run.unknown:
         kinds = ", ".join(f"{k} ({n})" for k, n in sorted(run.unknown.items()))

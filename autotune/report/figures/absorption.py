@@ -16,9 +16,9 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _errorbar, _marker, _new_figure, _title
+from autotune.report.figures.base import errorbar, marker_of, new_figure, set_title
 from autotune.report.figures.phase import Z95
-from autotune.report.model import Run, _level
+from autotune.report.model import Run, level_label
 
 
 def _absorption_model(learned: Mapping[str, Any]) -> tuple[float, np.ndarray, np.ndarray] | None:
@@ -55,9 +55,9 @@ def figure_absorption(run: Run) -> tuple[Any, str] | None:
             and math.isfinite(m.value("absorption"))]
     if len({round(m.setpoints["velocity"], 3) for m in done}) < 2:
         return None
-    fig = _new_figure(7.0, 6.0)
+    fig = new_figure(7.0, 6.0)
     ax_abs, ax_inv = fig.subplots(2, 1, sharex=True, height_ratios=[3, 2])
-    level = _level(run.confidence)
+    level = level_label(run.confidence)
     for label in dict.fromkeys(m.label for m in done):
         pick = [m for m in done if m.label == label]
         v = np.array([m.setpoints["velocity"] for m in pick])
@@ -65,14 +65,14 @@ def figure_absorption(run: Run) -> tuple[Any, str] | None:
         lo = np.array([m.value("absorption_low") for m in pick])
         hi = np.array([m.value("absorption_high") for m in pick])
         err = np.vstack([np.where(np.isfinite(lo), p - lo, 0.0), np.where(np.isfinite(hi), hi - p, 0.0)])
-        _errorbar(ax_abs, v, p, yerr=np.clip(err, 0.0, None), fmt=_marker(label), ms=5, capsize=2,
+        errorbar(ax_abs, v, p, yerr=np.clip(err, 0.0, None), fmt=marker_of(label), ms=5, capsize=2,
                   lw=0.8, label=f"{label} ({len(pick)})", gid=f"absorption-{label}")
         inv = np.array([m.value("inversion") for m in pick])
         ilo = np.array([m.value("inversion_low") for m in pick])
         ihi = np.array([m.value("inversion_high") for m in pick])
         ierr = np.vstack([np.where(np.isfinite(ilo), inv - ilo, 0.0),
                           np.where(np.isfinite(ihi), ihi - inv, 0.0)])
-        _errorbar(ax_inv, v, inv, yerr=np.clip(ierr, 0.0, None), fmt=_marker(label), ms=5,
+        errorbar(ax_inv, v, inv, yerr=np.clip(ierr, 0.0, None), fmt=marker_of(label), ms=5,
                   capsize=2, lw=0.8, gid=f"inversion-{label}")
     learned = run.learned or {}
     model = _absorption_model(learned)
@@ -119,7 +119,7 @@ def figure_absorption(run: Run) -> tuple[Any, str] | None:
     ax_inv.set_xlabel("velocity set-point (m/s)")
     ax_inv.set_xlim(grid[0], grid[-1])  # an interval wider than the points is cut, not drawn out
     ax_inv.grid(alpha=0.3)
-    _title(fig, run, "absorption and inversion against velocity")
+    set_title(fig, run, "absorption and inversion against velocity")
     how = ("Green: the phase lock's own weighted quadratic of the absorption in x = v_ref/v − 1 "
            "(journaled with its covariance when the lock stopped) with its 95 % band; its "
            "minimum is the velocity of the 2π rotation, shaded with its 95 % interval."

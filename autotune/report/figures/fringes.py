@@ -10,9 +10,10 @@ from scipy import stats
 
 from autotune.errors import EstimationError
 from autotune.analysis.fringe import FringeData, fit_fringe
-from autotune.report.figures._base import _errorbar, _new_figure, _title
+from autotune.report.figures.base import errorbar, new_figure, set_title
 from autotune.report.flags import fit_p_value
-from autotune.report.model import _FIELD_NAMES, _FIELDS, Run, _fmt_setpoints, _level
+from autotune.report.model import FIELD_NAMES, Run, format_setpoints, level_label
+from autotune.wire.rig import FIELDS
 
 
 def figure_fringes(run: Run) -> tuple[Any, str] | None:
@@ -31,12 +32,12 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
         which = "the latest measurement (no set-points chosen yet)"
     if m is None or not m.acquisitions:
         return None
-    fig = _new_figure()
+    fig = new_figure()
     ax = fig.add_subplot()
     level = run.confidence
     fit_notes = []
     dense = np.linspace(0.0, 2.0 * math.pi, 241)
-    for fld, colour in zip(_FIELDS, ("tab:blue", "tab:red"), strict=True):
+    for fld, colour in zip(FIELDS, ("tab:blue", "tab:red"), strict=True):
         rows = sorted((j, a) for (f, j), a in m.acquisitions.items() if f == fld)
         if not rows:
             continue
@@ -53,19 +54,19 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
         low = np.array([c.low for c in cis])
         high = np.array([c.high for c in cis])
         x = np.mod(phase[keep], 2.0 * math.pi)
-        _errorbar(ax, x, p, yerr=[p - low, high - p], fmt="o", color=colour, capsize=3, ms=5,
-                    label=f"{_FIELD_NAMES[fld]}: data ({_level(level)} Wilson)", gid=f"data-{fld}")
+        errorbar(ax, x, p, yerr=[p - low, high - p], fmt="o", color=colour, capsize=3, ms=5,
+                    label=f"{FIELD_NAMES[fld]}: data ({level_label(level)} Wilson)", gid=f"data-{fld}")
         try:
             fit = fit_fringe(FringeData.from_counts(phase, e, g, i))
         except EstimationError as exc:
-            fit_notes.append(f"{_FIELD_NAMES[fld]}: no fit ({exc})")
+            fit_notes.append(f"{FIELD_NAMES[fld]}: no fit ({exc})")
             continue
         a, b, c = (float(v) for v in fit.coefficients)
         ax.plot(dense, a + b * np.cos(dense) + c * np.sin(dense), "-", color=colour, lw=1.5,
-                label=f"{_FIELD_NAMES[fld]}: fit {a:.3f} {b:+.3f} cos φ {c:+.3f} sin φ",
+                label=f"{FIELD_NAMES[fld]}: fit {a:.3f} {b:+.3f} cos φ {c:+.3f} sin φ",
                 gid=f"fit-{fld}")
         if fit.dof > 0:
-            fit_notes.append(f"{_FIELD_NAMES[fld]}: reduced chi2 {fit.chi2 / fit.dof:.2f} "
+            fit_notes.append(f"{FIELD_NAMES[fld]}: reduced chi2 {fit.chi2 / fit.dof:.2f} "
                              f"({fit.dof} dof, p = {fit_p_value(fit.chi2, fit.dof):.2g})")
     ax.set_xlim(0.0, 2.0 * math.pi)
     ax.set_ylim(-0.02, 1.02)
@@ -75,11 +76,11 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
     ax.set_ylabel("ground-state probability $P_g$ (dimensionless)")
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7, loc="best")
-    _title(fig, run, f"fringes at {m.name} ({_fmt_setpoints(m.setpoints)})")
+    set_title(fig, run, f"fringes at {m.name} ({format_setpoints(m.setpoints)})")
     shots = f", {m.shots_per_phase} shots per phase and field" if m.shots_per_phase else ""
     caption = (f"Ramsey fringes P_g(φ) of the empty and the one-photon field at {which}, "
                f"{m.name}{shots}. "
-               f"Points: the fraction of detected atoms found in g, with {_level(level)} Wilson "
+               f"Points: the fraction of detected atoms found in g, with {level_label(level)} Wilson "
                "intervals (scipy.stats.binomtest); curves: a + b cos φ + c sin φ refitted from "
                "the journal's counts (weighted linear least squares, autotune.analysis.fringe). "
                + "; ".join(fit_notes) + ".")

@@ -8,8 +8,8 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _marker, _new_figure, _title
-from autotune.report.model import SEARCH_LABELS, Run, _setpoints
+from autotune.report.figures.base import marker_of, new_figure, set_title
+from autotune.report.model import SEARCH_LABELS, Run, read_setpoints
 
 
 def figure_map(run: Run) -> tuple[Any, str] | None:
@@ -26,7 +26,7 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
             and math.isfinite(m.value("inversion"))]
     if len(done) < 2:
         return None
-    fig = _new_figure(7.5, 5.2)
+    fig = new_figure(7.5, 5.2)
     ax = fig.add_subplot()
     vel = np.array([m.setpoints["velocity"] for m in done])
     det = np.array([m.setpoints["detuning"] / 1e3 for m in done])
@@ -49,7 +49,7 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     truth = run.truth
     true_best = None
     if truth is not None and isinstance(truth.get("best_setpoints"), Mapping):
-        tb = _setpoints(truth["best_setpoints"])
+        tb = read_setpoints(truth["best_setpoints"])
         if {"velocity", "detuning"} <= set(tb):
             true_best = (tb["velocity"], tb["detuning"] / 1e3)
             low_all = np.minimum(low_all, true_best)
@@ -78,10 +78,10 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     for label in labels:
         pick = np.array([m.label == label for m in done])
         mappable = ax.scatter(vel[pick], det[pick], c=inv[pick], cmap="viridis", vmin=vmin, vmax=vmax,
-                   marker=_marker(label), s=46 if label in SEARCH_LABELS else 60, edgecolors="white",
+                   marker=marker_of(label), s=46 if label in SEARCH_LABELS else 60, edgecolors="white",
                    linewidths=0.8, gid=f"points-{label}", zorder=3)
         # Legend entries in grey: the marker tells the label, the colour is the inversion.
-        handles.append(Line2D([], [], marker=_marker(label), ls="none", color="0.45", mec="white",
+        handles.append(Line2D([], [], marker=marker_of(label), ls="none", color="0.45", mec="white",
                               ms=7, label=f"{label} ({int(pick.sum())})"))
     fig.colorbar(mappable, ax=ax, label="measured inversion (dimensionless)")
     offsets = ((6, -10), (6, 5), (-13, 5), (-13, -10))
@@ -116,7 +116,7 @@ def figure_map(run: Run) -> tuple[Any, str] | None:
     ax.set_xlabel("velocity set-point (m/s)")
     ax.set_ylabel("detuning set-point (kHz)")
     fig.legend(handles=handles, fontsize=7, loc="outside lower center", ncol=min(len(handles), 6))
-    _title(fig, run, "measured points over the box")
+    set_title(fig, run, "measured points over the box")
     caption = (f"Every measured point over the (velocity, detuning) plane, coloured by its "
                f"measured inversion; search points numbered in the order measured; dashed: the "
                f"stage's search box; star: the chosen set-points. {model_note[0].upper()}"

@@ -16,9 +16,9 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _errorbar, _new_figure, _title
-from autotune.report.figures.phase import _wrap
-from autotune.report.model import Run, _level
+from autotune.report.figures.base import errorbar, new_figure, set_title
+from autotune.report.figures.phase import wrap_angle
+from autotune.report.model import Run, level_label
 from autotune.run.records import Acquisition, Decision, Hold, Wait, parse
 
 _STAGES = ("retune", "calibrate")
@@ -132,10 +132,10 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
         value = _num(clock)
         return (value - origin) / 3600.0 if math.isfinite(value) else math.nan
 
-    fig = _new_figure(9.0, 10.5)
+    fig = new_figure(9.0, 10.5)
     axes = fig.subplots(5, 1, sharex=True, height_ratios=[3, 2, 2.4, 2.4, 1.6])
     ax_inv, ax_phase, ax_det, ax_stat, ax_share = axes
-    level = _level(run.confidence)
+    level = level_label(run.confidence)
     checks = {m.point: m for m in run.estimated if m.label == "hold"}
     holds = [h for h in night["holds"] if h.get("point") in checks]
 
@@ -146,7 +146,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     hi = np.array([checks[h["point"]].value("inversion_high") for h in holds])
     if len(holds):
         err = np.vstack([np.where(np.isfinite(lo), inv - lo, 0.0), np.where(np.isfinite(hi), hi - inv, 0.0)])
-        _errorbar(ax_inv, t, inv, yerr=np.clip(err, 0.0, None), fmt="s", ms=4, capsize=2, lw=0.8,
+        errorbar(ax_inv, t, inv, yerr=np.clip(err, 0.0, None), fmt="s", ms=4, capsize=2, lw=0.8,
                   color="tab:blue", label=f"checks ({len(holds)}), {level} interval",
                   gid="night-checks")
     others = [m for m in run.estimated if m.label != "hold" and math.isfinite(m.value("inversion"))]
@@ -174,10 +174,10 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     for h in holds:
         m = checks[h["point"]]
         star = _num(_get(h, "state", "prior", "phase_at_peak_rad"))
-        perr.append(float(_wrap(m.value("phase_shift") - star)) / math.pi if math.isfinite(star) else math.nan)
+        perr.append(float(wrap_angle(m.value("phase_shift") - star)) / math.pi if math.isfinite(star) else math.nan)
         perr_sd.append(m.value("phase_shift_stderr") / math.pi)
     if holds:
-        _errorbar(ax_phase, t, np.array(perr), yerr=np.nan_to_num(np.array(perr_sd)), fmt="o",
+        errorbar(ax_phase, t, np.array(perr), yerr=np.nan_to_num(np.array(perr_sd)), fmt="o",
                   ms=4, capsize=2, lw=0.8, color="tab:purple", gid="phase-error",
                   label="phase shift − phase at the peak")
         ax_phase.legend(fontsize=7, loc="best")
@@ -294,7 +294,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
                     mew=2, color="red", gid="failure")
     for ax in axes:
         ax.grid(alpha=0.3)
-    _title(fig, run, "the night, told by its checks and its test")
+    set_title(fig, run, "the night, told by its checks and its test")
     counts = ", ".join(f"{n} {one if n == 1 else many}" for n, one, many in (
         (len(holds), "check", "checks"), (len(corr), "correction", "corrections"),
         (len(night["alarms"]), "alarm", "alarms"),

@@ -14,15 +14,15 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _finish_against_detuning, _new_figure
-from autotune.report.model import Run
+from autotune.report.figures.base import finish_against_detuning, new_figure
+from autotune.report.model import Run, number_at
 
 #: Two-sided 95 % point of the standard normal (scipy.stats.norm.ppf(0.975)).
 Z95 = 1.959963984540054
 
 
-def _wrap(angle: Any) -> Any:
-    """An angle brought to (-pi, pi]."""
+def wrap_angle(angle: Any) -> Any:
+    """An angle brought to (-pi, pi] (the phase figures; the analysis wraps to [-pi, pi))."""
     return np.pi - np.mod(np.pi - np.asarray(angle, dtype=float), 2.0 * np.pi)
 
 
@@ -64,12 +64,6 @@ def lock_curve(run: Run) -> LockCurve | None:
         return None
 
 
-def _number(mapping: Mapping[str, Any], key: str) -> float:
-    value = mapping.get(key)
-    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) \
-        else math.nan
-
-
 def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
     """Figure: photon phase shift (units of pi) against detuning, with the lock's model.
 
@@ -85,14 +79,14 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
     if len(done) < 2:
         return None
     learned = run.learned or {}
-    star = _number(learned, "phase_at_peak_rad")
-    star_sd = _number(learned, "phase_at_peak_stderr_rad")
+    star = number_at(learned, "phase_at_peak_rad", math.nan)
+    star_sd = number_at(learned, "phase_at_peak_stderr_rad", math.nan)
     centre = star if math.isfinite(star) else math.pi
-    fig = _new_figure(7.0, 4.8)
+    fig = new_figure(7.0, 4.8)
     ax = fig.add_subplot()
     x = np.array([m.setpoints["detuning"] / 1e3 for m in done])
     # Unwrapped around the phase at the peak, as the lock reads them.
-    y = (centre + _wrap(np.array([m.value("phase_shift") for m in done]) - centre)) / math.pi
+    y = (centre + wrap_angle(np.array([m.value("phase_shift") for m in done]) - centre)) / math.pi
     e = np.array([m.value("phase_shift_stderr") / math.pi for m in done])
     ax.errorbar(x, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt="none", ecolor="0.5",
                 capsize=2, lw=0.8, zorder=2)
@@ -143,7 +137,7 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
         ax.plot(x[k], y[k], marker="*", ms=16, mfc="none", mec="red", mew=1.6, ls="none",
                 gid="chosen", zorder=5,
                 label=f"{final.name}: {y[k]:.3f} π ± {e[k]:.3f} π")
-    _finish_against_detuning(fig, ax, run, chosen, ylabel="photon phase shift (π rad)",
+    finish_against_detuning(fig, ax, run, chosen, ylabel="photon phase shift (π rad)",
                              title="photon phase shift and the lock's model",
                              gid="chosen-detuning", label="chosen detuning", legend_size=7)
     if curve is not None:

@@ -7,8 +7,8 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import _errorbar, _new_figure, _title
-from autotune.report.model import Run, _level
+from autotune.report.figures.base import errorbar, new_figure, set_title
+from autotune.report.model import Run, level_label
 
 
 def figure_progress(run: Run) -> tuple[Any, str] | None:
@@ -19,7 +19,7 @@ def figure_progress(run: Run) -> tuple[Any, str] | None:
     done = [m for m in run.estimated if math.isfinite(m.value("inversion"))]
     if len(done) < 2:
         return None
-    fig = _new_figure()
+    fig = new_figure()
     ax = fig.add_subplot()
     shots = np.array([m.shots_after for m in done], dtype=float)
     inv = np.array([m.value("inversion") for m in done])
@@ -30,13 +30,13 @@ def figure_progress(run: Run) -> tuple[Any, str] | None:
         best[k] = k if inv[k] > inv[best[k - 1]] else best[k - 1]
     ax.plot(shots, inv, ".", color="0.6", ms=4, label="each measurement", gid="measurements")
     ax.fill_between(shots, low[best], high[best], step="post", color="tab:blue", alpha=0.2,
-                    label=f"its {_level(run.confidence)} interval")
+                    label=f"its {level_label(run.confidence)} interval")
     ax.step(shots, inv[best], where="post", color="tab:blue", lw=1.8, label="best so far",
             gid="best-so-far")
     final = run.final_measurement()
     if final is not None and final in done:
         k = done.index(final)
-        _errorbar(ax, [shots[k]], [inv[k]], yerr=[[inv[k] - low[k]], [high[k] - inv[k]]], fmt="D",
+        errorbar(ax, [shots[k]], [inv[k]], yerr=[[inv[k] - low[k]], [high[k] - inv[k]]], fmt="D",
                     color="tab:red", capsize=4, label=f"verified ({final.name})", gid="verified")
     from matplotlib.ticker import StrMethodFormatter
 
@@ -45,9 +45,9 @@ def figure_progress(run: Run) -> tuple[Any, str] | None:
     ax.set_ylabel("fringe inversion (dimensionless)")
     ax.grid(alpha=0.3)
     ax.legend(fontsize=8, loc="lower right")
-    _title(fig, run, "best inversion so far")
+    set_title(fig, run, "best inversion so far")
     caption = ("The largest inversion measured so far (line) with that measurement's "
-               f"{_level(run.confidence)} interval (band), against the shots acquired in the run; "
+               f"{level_label(run.confidence)} interval (band), against the shots acquired in the run; "
                "grey dots: every measurement. The maximum of noisy values is biased upward; the "
                "verification (red) is the unbiased figure.")
     return fig, caption

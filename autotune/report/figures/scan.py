@@ -7,9 +7,9 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import (_errorbar, _finish_against_detuning, _marker,
-                                           _new_figure)
-from autotune.report.model import SCAN_LABELS, Run, _level
+from autotune.report.figures.base import (errorbar, finish_against_detuning, marker_of,
+                                           new_figure)
+from autotune.report.model import SCAN_LABELS, Run, level_label
 
 
 def figure_scan(run: Run) -> tuple[Any, str] | None:
@@ -22,7 +22,7 @@ def figure_scan(run: Run) -> tuple[Any, str] | None:
             and math.isfinite(m.value("inversion"))]
     if not done:
         return None
-    fig = _new_figure()
+    fig = new_figure()
     ax = fig.add_subplot()
     for label in dict.fromkeys(m.label for m in done):
         pick = [m for m in done if m.label == label]
@@ -30,14 +30,14 @@ def figure_scan(run: Run) -> tuple[Any, str] | None:
         y = np.array([m.value("inversion") for m in pick])
         lo = np.array([m.value("inversion_low") for m in pick])
         hi = np.array([m.value("inversion_high") for m in pick])
-        _errorbar(ax, x, y, yerr=[y - lo, hi - y], fmt=_marker(label), capsize=3, ms=6,
+        errorbar(ax, x, y, yerr=[y - lo, hi - y], fmt=marker_of(label), capsize=3, ms=6,
                     label=f"{label} ({len(pick)})", gid=f"scan-{label}")
-    _finish_against_detuning(fig, ax, run, run.chosen, ylabel="fringe inversion (dimensionless)",
+    finish_against_detuning(fig, ax, run, run.chosen, ylabel="fringe inversion (dimensionless)",
                              title="detuning scan / lock steps", gid="chosen", label="chosen",
                              legend_size=8)
     caption = (f"Inversion against detuning for the measurements labelled "
                f"{', '.join(sorted({m.label for m in done}))}, with their "
-               f"{_level(run.confidence)} intervals; dashed: the chosen detuning.")
+               f"{level_label(run.confidence)} intervals; dashed: the chosen detuning.")
     return fig, caption
 
 

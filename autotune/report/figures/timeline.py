@@ -8,9 +8,9 @@ from typing import Any
 
 import numpy as np
 
-from autotune.report.figures._base import (_NAMED_RUNS_MAX, _errorbar, _marker, _new_figure,
-                                           _title)
-from autotune.report.model import Run, _level, _parse_time, _same_setpoints
+from autotune.report.figures.base import (NAMED_RUNS_MAX, errorbar, marker_of, new_figure,
+                                           set_title)
+from autotune.report.model import Run, level_label, parse_time, same_setpoints
 
 
 def _timeline_items(runs: Sequence[Run]) -> tuple[bool, float, str]:
@@ -25,7 +25,7 @@ def _timeline_items(runs: Sequence[Run]) -> tuple[bool, float, str]:
         previous = r.clock_end if r.clock_end is not None else previous
     if use_clock:
         return True, float(runs[0].clock_start), "rig time since the first run started (h)"
-    starts = [_parse_time(r.records[0].get("t_wall")) for r in runs if r.records]
+    starts = [parse_time(r.records[0].get("t_wall")) for r in runs if r.records]
     origin = min((s for s in starts if s is not None), default=None)
     return False, origin.timestamp() if origin else 0.0, \
         "wall time since the first run started (h)"
@@ -34,7 +34,7 @@ def _timeline_items(runs: Sequence[Run]) -> tuple[bool, float, str]:
 def _when(use_clock: bool, origin: float, clock: float | None, t_wall: Any) -> float:
     if use_clock:
         return (clock - origin) / 3600.0 if clock is not None else math.nan
-    when = _parse_time(t_wall)
+    when = parse_time(t_wall)
     return (when.timestamp() - origin) / 3600.0 if when is not None else math.nan
 
 
@@ -57,7 +57,7 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
     if not any(r.estimated for r in runs):
         return None
     use_clock, origin, xlabel = _timeline_items(runs)
-    fig = _new_figure(9.0, 7.0)
+    fig = new_figure(9.0, 7.0)
     ax_inv, ax_det, ax_cor = fig.subplots(3, 1, sharex=True, height_ratios=[3, 2, 1.4])
     done = [(r, m) for r in runs for m in r.estimated if math.isfinite(m.value("inversion"))]
     labels = list(dict.fromkeys(m.label for _, m in done))
@@ -69,7 +69,7 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         lo = np.array([m.value("inversion_low") for m in pick])
         hi = np.array([m.value("inversion_high") for m in pick])
         e = np.vstack([np.where(np.isfinite(lo), y - lo, 0.0), np.where(np.isfinite(hi), hi - y, 0.0)])
-        _errorbar(ax_inv, t, y, yerr=np.clip(e, 0.0, None), fmt=_marker(label), ms=4,
+        errorbar(ax_inv, t, y, yerr=np.clip(e, 0.0, None), fmt=marker_of(label), ms=4,
                         capsize=2, lw=0.8, label=f"{label} ({len(pick)})", gid=f"inv-{label}")
     if len(runs) > 1:
         for r in runs:
@@ -83,7 +83,7 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
                 ax.axvline(start, color="0.7", lw=0.8, ls="--", zorder=0)
                 if math.isfinite(end) and end > start and runs.index(r) % 2 == 0:
                     ax.axvspan(start, end, color="0.5", alpha=0.07, lw=0, zorder=0)
-            if len(runs) <= _NAMED_RUNS_MAX:
+            if len(runs) <= NAMED_RUNS_MAX:
                 ax_inv.annotate(r.name, (start, 1.0), xycoords=("data", "axes fraction"),
                                 xytext=(2, -2), textcoords="offset points", fontsize=7,
                                 va="top", color="0.35", rotation=90)
@@ -145,13 +145,13 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         check = [m for m in r.estimated if m.label == "check"]
         chosen = r.chosen
         if r.result and check and chosen and r.status == "accepted" and \
-                not _same_setpoints(check[0].setpoints, chosen):
+                not same_setpoints(check[0].setpoints, chosen):
             size = _detuning_of(chosen) - _detuning_of(check[0].setpoints)
             # When the retune left its check point: its first move after the check (the
             # run's end would draw it long after it happened).
             left = [mv for mv in r.moves if check[0].clock_s is not None
                     and mv["clock"] is not None and mv["clock"] > check[0].clock_s
-                    and not _same_setpoints(mv["setpoints"], check[0].setpoints)]
+                    and not same_setpoints(mv["setpoints"], check[0].setpoints)]
             when = (left[0]["clock"], left[0]["t_wall"]) if left else \
                 (r.clock_end, r.records[-1].get("t_wall"))
             retuned.append((_when(use_clock, origin, *when), size))
@@ -177,8 +177,8 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         ax_cor.text(0.5, 0.5, "no corrections", transform=ax_cor.transAxes, ha="center",
                     va="center", fontsize=8, color="0.4")
     what = "night" if night else "timeline"
-    _title(fig, None, f"{what}: {runs[0].path.parent.name if len(runs) > 1 else runs[0].name}")
-    level = _level(runs[0].confidence)
+    set_title(fig, None, f"{what}: {runs[0].path.parent.name if len(runs) > 1 else runs[0].name}")
+    level = level_label(runs[0].confidence)
     caption = (f"Top: the inversion of every measurement with its {level} interval against "
                f"{'rig' if use_clock else 'wall'} time; middle: the detuning set-point applied "
                "(moves) and measured; bottom: detuning corrections, from 'correct' decisions "

@@ -10,37 +10,37 @@ from autotune.report.model import Run
 _LABEL_MARKERS = {"point": "o", "check": "s", "verify": "D", "refine": "^", "lock": "v",
                   "relock": "<", "bracket": ">", "velocity": "P", "search": "o", "correct": "X"}
 # Above this many runs, the timeline marks where each starts but no longer names it.
-_NAMED_RUNS_MAX = 12
-_DPI = 100
+NAMED_RUNS_MAX = 12
+DPI = 100
 
 
-def _new_figure(width: float = 7.0, height: float = 4.5) -> Any:
+def new_figure(width: float = 7.0, height: float = 4.5) -> Any:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(width, height), dpi=_DPI, layout="constrained")
+    fig = Figure(figsize=(width, height), dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
     return fig
 
 
-def _marker(label: str) -> str:
+def marker_of(label: str) -> str:
     return _LABEL_MARKERS.get(label, "X")
 
 
-def _errorbar(ax: Any, x: Any, y: Any, *, gid: str, **kwargs: Any) -> Any:
+def errorbar(ax: Any, x: Any, y: Any, *, gid: str, **kwargs: Any) -> Any:
     """``ax.errorbar`` with ``gid`` on the data line only (matplotlib would copy it to the bars)."""
     container = ax.errorbar(x, y, **kwargs)
     container.lines[0].set_gid(gid)
     return container
 
 
-def _title(fig: Any, run: Run | None, text: str) -> None:
+def set_title(fig: Any, run: Run | None, text: str) -> None:
     fig.suptitle(f"{run.name}: {text}" if run is not None else text, fontsize=11)
 
 
 
 
-def _finish_against_detuning(fig: Any, ax: Any, run: Run, chosen: Mapping[str, float] | None,
+def finish_against_detuning(fig: Any, ax: Any, run: Run, chosen: Mapping[str, float] | None,
                              *, ylabel: str, title: str, gid: str, label: str,
                              legend_size: float) -> None:
     """What every figure against the detuning set-point ends with: the chosen detuning (a
@@ -53,4 +53,4 @@ def _finish_against_detuning(fig: Any, ax: Any, run: Run, chosen: Mapping[str, f
     ax.set_ylabel(ylabel)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=legend_size, loc="best")
-    _title(fig, run, title)
+    set_title(fig, run, title)
