@@ -14,6 +14,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from autotune.analysis.search_types import Recommendation, SearchRecord, SearchSpace
+from autotune.errors import ValueRefused
 
 __all__ = ["GridScan", "CoordinateScan", "RandomSearch"]
 
@@ -60,15 +61,15 @@ def _counts_per_dimension(space: SearchSpace, points_per_dimension: int | Mappin
     if isinstance(points_per_dimension, Mapping):
         unknown = sorted(set(points_per_dimension) - set(space.names))
         if unknown:
-            raise ValueError(f"points_per_dimension: unknown dimensions {unknown}")
+            raise ValueRefused(f"points_per_dimension: unknown dimensions {unknown}")
         counts = [points_per_dimension.get(name, None) for name in space.names]
         if any(c is None for c in counts):
-            raise ValueError(f"points_per_dimension: expected a count for each of {list(space.names)}")
+            raise ValueRefused(f"points_per_dimension: expected a count for each of {list(space.names)}")
     else:
         counts = [points_per_dimension] * len(space.dimensions)
     for name, count in zip(space.names, counts):
         if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < minimum:
-            raise ValueError(f"points_per_dimension[{name!r}]: expected an integer >= {minimum}, got {count!r}")
+            raise ValueRefused(f"points_per_dimension[{name!r}]: expected an integer >= {minimum}, got {count!r}")
     return [int(c) for c in counts]
 
 
@@ -109,7 +110,7 @@ class RandomSearch(_FixedDesign):
     def __init__(self, space: SearchSpace, seed: int, n_points: int) -> None:
         super().__init__(space)
         if isinstance(n_points, bool) or not isinstance(n_points, (int, np.integer)) or n_points < 1:
-            raise ValueError(f"n_points: expected an integer >= 1, got {n_points!r}")
+            raise ValueRefused(f"n_points: expected an integer >= 1, got {n_points!r}")
         self._design = np.random.default_rng(seed).uniform(size=(int(n_points), len(space.dimensions)))
 
     def _size(self) -> int:
@@ -155,16 +156,16 @@ class CoordinateScan(_FixedDesign):
         super().__init__(space)
         self._counts = _counts_per_dimension(space, points_per_dimension, 2)
         if isinstance(rounds, bool) or not isinstance(rounds, (int, np.integer)) or rounds < 1:
-            raise ValueError(f"rounds: expected an integer >= 1, got {rounds!r}")
+            raise ValueRefused(f"rounds: expected an integer >= 1, got {rounds!r}")
         if not (isinstance(narrowing, (int, float)) and 0.0 < float(narrowing) <= 1.0):
-            raise ValueError(f"narrowing: expected a number in (0, 1], got {narrowing!r}")
+            raise ValueRefused(f"narrowing: expected a number in (0, 1], got {narrowing!r}")
         self._rounds = int(rounds)
         self._narrowing = float(narrowing)
         if start is None:
             self._start = np.full(len(space.dimensions), 0.5)
         else:
             if not space.contains(start):
-                raise ValueError(f"start: expected a point inside the space, got {dict(start)}")
+                raise ValueRefused(f"start: expected a point inside the space, got {dict(start)}")
             self._start = space.to_unit(start)
         # Line l covers told indices [self._offsets[l], self._offsets[l + 1]).
         per_round = list(self._counts)

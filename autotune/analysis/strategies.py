@@ -19,6 +19,7 @@ from autotune.analysis.search import (
     Strategy,
     StrategyKind,
 )
+from autotune.errors import ValueRefused
 
 __all__ = ["make_strategy"]
 
@@ -42,7 +43,7 @@ def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settin
         try:
             return PhaseLockSearch(space, seed=seed, **settings)
         except TypeError as exc:
-            raise ValueError(f"settings for {kind!r}: {exc}") from exc
+            raise ValueRefused(f"settings for {kind!r}: {exc}") from exc
     try:
         if kind == "bayesian":
             return BayesianSearch(space, seed=seed, **settings)
@@ -53,5 +54,5 @@ def make_strategy(kind: StrategyKind, space: SearchSpace, *, seed: int, **settin
         if kind == "random":
             return RandomSearch(space, seed, **settings)
     except TypeError as exc:
-        raise ValueError(f"settings for {kind!r}: {exc}") from exc
-    raise ValueError(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', 'phase_lock', got {kind!r}")
+        raise ValueRefused(f"settings for {kind!r}: {exc}") from exc
+    raise ValueRefused(f"kind: expected one of 'bayesian', 'grid', 'coordinate', 'random', 'phase_lock', got {kind!r}")

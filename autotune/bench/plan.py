@@ -16,6 +16,7 @@ from autotune.config import (
     packaged_config,
 )
 from autotune.bench.scenarios import FAMILIES, make_scenarios
+from autotune.errors import ValueRefused
 from autotune.wire.rig import measurement_shots
 
 
@@ -178,14 +179,14 @@ def plan_for(mode: str, *, workers: int = 2, scenarios: int | None = None,
             night_scenarios=1, night_hours=1.5, night_families=("main",),
         )
     else:
-        raise ValueError(f"mode: expected 'full', 'quick' or 'tiny', got {mode!r}")
+        raise ValueRefused(f"mode: expected 'full', 'quick' or 'tiny', got {mode!r}")
     changes: dict[str, Any] = {}
     if scenarios is not None:
         if scenarios < 1:
-            raise ValueError(f"scenarios: expected an integer >= 1, got {scenarios!r}")
+            raise ValueRefused(f"scenarios: expected an integer >= 1, got {scenarios!r}")
         changes["scenarios"] = scenarios
     if workers < 1:
-        raise ValueError(f"workers: expected an integer >= 1, got {workers!r}")
+        raise ValueRefused(f"workers: expected an integer >= 1, got {workers!r}")
     if seed is not None:
         changes["seed"] = seed
     if strategies is not None:
@@ -204,21 +205,21 @@ def check_plan(plan: StudyPlan) -> None:
     known = get_args(StrategyKind)
     for name in plan.strategies:
         if name not in known:
-            raise ValueError(f"strategies: expected names among {list(known)} "
-                             f"(autotune.config.StrategyKind), got {name!r}")
+            raise ValueRefused(f"strategies: expected names among {list(known)} "
+                               f"(autotune.config.StrategyKind), got {name!r}")
     if not plan.strategies:
-        raise ValueError("strategies: expected at least one strategy, got none")
+        raise ValueRefused("strategies: expected at least one strategy, got none")
     for name in (*plan.families, *plan.night_families):
         if name not in FAMILIES:
-            raise ValueError(f"families: expected names among {list(FAMILIES)}, got {name!r}")
+            raise ValueRefused(f"families: expected names among {list(FAMILIES)}, got {name!r}")
     if not plan.families:
-        raise ValueError("families: expected at least one family, got none")
+        raise ValueRefused("families: expected at least one family, got none")
     if not (plan.calibration_study or plan.night_study):
-        raise ValueError("plan: expected the calibration study, the night study or both")
+        raise ValueRefused("plan: expected the calibration study, the night study or both")
     if plan.night_study and (plan.night_scenarios < 1 or not plan.night_hours > 0
                              or not plan.night_families):
-        raise ValueError(f"night study: expected scenarios >= 1, hours > 0 and a family, got "
-                         f"{plan.night_scenarios}, {plan.night_hours}, {plan.night_families}")
+        raise ValueRefused(f"night study: expected scenarios >= 1, hours > 0 and a family, got "
+                           f"{plan.night_scenarios}, {plan.night_hours}, {plan.night_families}")
 
 
 def base_config(plan: StudyPlan, config_path: Path) -> RunConfig:

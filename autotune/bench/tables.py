@@ -8,6 +8,7 @@ from typing import Any
 
 
 from autotune.bench.plan import GUIDED, LOWER_THRESHOLD, THERMAL_STEP_HZ, THRESHOLD
+from autotune.errors import ValueRefused
 
 
 # --------------------------------------------------------------------------------------------
@@ -116,8 +117,8 @@ def format_table(study: Mapping[str, Any]) -> str:
     if "families" not in study:
         # Studies stored before the scenario families (one draw, 2026-11) are not read by
         # this version: none is kept in benchmarks/results, and their table had no test.
-        raise ValueError("this study was stored before the scenario families (no 'families' "
-                         "key) and is not shown by this version; run the study again")
+        raise ValueRefused("this study was stored before the scenario families (no 'families' "
+                           "key) and is not shown by this version; run the study again")
     lines = []
     plan = study["plan"]
     n = plan["scenarios"]

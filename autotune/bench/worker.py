@@ -10,6 +10,7 @@ from typing import Any
 from autotune.bench.jobs import calibration_job, jsonable, oracle_job, quiet_logging
 from autotune.bench.memory import night_job
 from autotune.bench.night_rig import hold_night_job
+from autotune.errors import ValueRefused
 
 
 _JOBS: dict[str, Callable[[Mapping[str, Any]], dict[str, Any]]] = {
@@ -37,7 +38,7 @@ def run_job(job_json: str, quiet: bool = False) -> str:
     job = json.loads(job_json)
     kind = job["kind"]
     if kind not in _JOBS:
-        raise ValueError(f"job kind: expected one of {sorted(_JOBS)}, got {kind!r}")
+        raise ValueRefused(f"job kind: expected one of {sorted(_JOBS)}, got {kind!r}")
     with threadpool_limits(limits=1):
         result = _JOBS[kind](job)
     return json.dumps(jsonable(result), allow_nan=False)

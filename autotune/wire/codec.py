@@ -16,7 +16,7 @@ import pydantic
 from pydantic import Strict
 
 from autotune.schema import is_number
-from autotune.errors import ProtocolError, RigLeased, RigRefused
+from autotune.errors import ProtocolError, RigLeased, RigRefused, ValueRefused
 from autotune import schema
 from autotune.wire.terms import (MAX_LEASE_TTL_S, MAX_MESSAGE_BYTES, MAX_SHOTS, PROTO_VERSION,
                                  FIELDS, ErrorKind, Op, Request,
@@ -176,13 +176,13 @@ def encode_result(msg_id: str, result: Mapping[str, Any]) -> bytes:
         large; the server then answers ``internal`` instead.
     """
     if not isinstance(result, Mapping):
-        raise ValueError(f"result: expected a mapping, got {type(result).__name__}")
+        raise ValueRefused(f"result: expected a mapping, got {type(result).__name__}")
     try:
         data = _dumps({"proto": PROTO_VERSION, "msg_id": msg_id, "ok": True, "result": dict(result)})
     except (TypeError, ValueError, RecursionError) as exc:
-        raise ValueError(f"result is not JSON-ready: {exc}") from exc
+        raise ValueRefused(f"result is not JSON-ready: {exc}") from exc
     if len(data) > MAX_MESSAGE_BYTES:
-        raise ValueError(f"reply: expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
+        raise ValueRefused(f"reply: expected at most {MAX_MESSAGE_BYTES} bytes, got {len(data)}")
     return data
 
 

@@ -11,7 +11,7 @@ from typing import Annotated, Any, TypeVar
 
 from pydantic import Strict
 
-from autotune.errors import LimitError, ProtocolError
+from autotune.errors import LimitError, ProtocolError, ValueRefused
 from autotune import schema
 from autotune.wire.codec import FINITE, is_number, show_value, wire_detail
 from autotune.wire.terms import MAX_SHOTS, PROTO_VERSION
@@ -65,14 +65,14 @@ class SetpointLimit:
         for name in ("min", "max", "max_step"):
             value = getattr(self, name)
             if not is_number(value) or not math.isfinite(value):
-                raise ValueError(f"SetpointLimit.{name}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"SetpointLimit.{name}: expected a finite number, got {value!r}")
             object.__setattr__(self, name, float(value))
         if not isinstance(self.unit, str):
-            raise ValueError(f"SetpointLimit.unit: expected a string, got {self.unit!r}")
+            raise ValueRefused(f"SetpointLimit.unit: expected a string, got {self.unit!r}")
         if self.min > self.max:
-            raise ValueError(f"SetpointLimit: expected min <= max, got min={self.min!r}, max={self.max!r}")
+            raise ValueRefused(f"SetpointLimit: expected min <= max, got min={self.min!r}, max={self.max!r}")
         if self.max_step <= 0:
-            raise ValueError(f"SetpointLimit.max_step: expected a number > 0, got {self.max_step!r}")
+            raise ValueRefused(f"SetpointLimit.max_step: expected a number > 0, got {self.max_step!r}")
 
     def check(self, name: str, value: float) -> None:
         """Raise :class:`~autotune.errors.LimitError` unless ``value`` is finite and within
@@ -93,10 +93,10 @@ class SetpointLimit:
             If the units differ or the ranges do not overlap.
         """
         if self.unit != other.unit:
-            raise ValueError(f"units differ: {self.unit!r} and {other.unit!r}")
+            raise ValueRefused(f"units differ: {self.unit!r} and {other.unit!r}")
         low, high = max(self.min, other.min), min(self.max, other.max)
         if low > high:
-            raise ValueError(
+            raise ValueRefused(
                 f"ranges [{self.min}, {self.max}] and [{other.min}, {other.max}] do not overlap"
             )
         return SetpointLimit(self.unit, low, high, min(self.max_step, other.max_step))

@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from autotune.errors import ValueRefused
 from autotune.report.figures.base import finish_against_detuning, new_figure
 from autotune.report.model import Run, number_at
 
@@ -38,7 +39,7 @@ class LockCurve:
         self.cov = np.asarray(fit["covariance"], dtype=float)
         self.velocity = float(fit["velocity_m_per_s"])
         if self.theta.shape != (4,) or self.cov.shape != (4, 4):
-            raise ValueError("lock_fit needs 4 coefficients and a 4 x 4 covariance")
+            raise ValueRefused("lock_fit needs 4 coefficients and a 4 x 4 covariance")
 
     def _design(self, detuning_hz: np.ndarray, clock_s: float | None) -> np.ndarray:
         d = np.asarray(detuning_hz, dtype=float) - self.centre_hz
