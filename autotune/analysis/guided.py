@@ -42,7 +42,9 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   established, each next point is the candidate (a lock point at the recommendation, or a
   velocity point one or two steps either side) whose measurement is expected to lower that bound
   most per shot (the posterior covariance after a linear-Gaussian update does not depend on
-  the value to be measured); each proposal's ``reason`` says which term and by how much.
+  the value to be measured), a velocity step's expected fall weighted by the chance, learned
+  from this stage's points, that it comes back usable (:mod:`autotune.analysis.next_point`);
+  each proposal's ``reason`` says which term and by how much.
   :meth:`PhaseLockSearch.converged` is true when the bound is below ``target_shortfall``.
 - **Fallback.** Where the phase signal is not usable (fringes not identified, a one-photon
   contrast too low against the empty one, or a phase error beyond the capture range, where
@@ -386,7 +388,12 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
             return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
                     "outward": outward,
                     "note": f"inversion optimum not bracketed: at the box edge {end_v:.1f} m/s with {pointing}"}
-        if was_tried(v):
+        # The one-photon contrast falls as the pulse area leaves 2 pi on either side
+        # (docs/physics.md section 5b): a velocity step that came back unusable between the
+        # curve's end and the extension, or at it, says the extension will not be usable either.
+        beyond = any(not usable and (t - end_v) * (v - end_v) > 0.0 and abs(t - end_v) <= abs(v - end_v)
+                     for t, usable in attempts)
+        if was_tried(v) or beyond:
             return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
                     "outward": outward,
                     "note": f"inversion optimum not bracketed: no usable signal at {v:.1f} m/s, "

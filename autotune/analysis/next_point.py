@@ -7,6 +7,20 @@ predicted shortfall's upper bound most per shot. The posterior covariance after 
 linear-Gaussian update does not depend on the value to be measured, so the bound a
 measurement would leave is known before it is made (see :mod:`autotune.analysis.guided`'s notes).
 
+A velocity step whose phase signal comes back unusable (a one-photon contrast below the
+gate, say) teaches the bound nothing, so a velocity candidate's expected fall is the fall if
+usable times the chance ``p`` of a usable result (:func:`usable_chance`). ``p`` is learned
+from this stage's own points: the one-photon contrast is largest at the 2 pi rotation and
+falls as the pulse area leaves it on either side (docs/physics.md section 5b), so a velocity
+step that came back unusable bears on every velocity beyond it (seen from the lock) and on its
+neighbours within a step; a usable point bears on its neighbours and on every velocity farther
+from the lock on its side. Where an unusable step bears on a candidate, ``p`` is the mean of
+the Beta posterior of the usable and unusable points that bear on it, from a uniform
+Beta(1, 1) prior (the conjugate update of a binomial rate, e.g. A. Gelman et al., *Bayesian
+Data Analysis*, 3rd ed., 2013, section 2.4); where none does, the gate has not failed on that
+side and ``p = 1``, which leaves the choice as it was on a rig whose contrast passes
+everywhere.
+
 These functions read the search's posterior through its private helpers: they are the search's
 own concern, kept apart from its models; :mod:`autotune.analysis.guided` imports this module, never the
 reverse.
@@ -25,7 +39,8 @@ from autotune.analysis.shortfall import Shortfall
 if TYPE_CHECKING:
     from autotune.analysis.guided import PhaseLockSearch
 
-__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall"]
+__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall", "updated_cov",
+           "usable_chance", "usable_evidence"]
 
 #: Two velocities closer than this (relative) are one velocity group of the absorption fit.
 SAME_VELOCITY = 0.005
@@ -59,6 +74,47 @@ def candidates(search: PhaseLockSearch, velocity: float, clock: float | None) ->
     return out
 
 
+def usable_evidence(search: PhaseLockSearch, velocity: float, candidate: float) -> tuple[int, int]:
+    """``(usable, unusable)``: this stage's points that bear on a velocity step at ``candidate``
+    taken from the lock at ``velocity`` (see the module notes).
+
+    Unusable: velocity steps (measured at the locked detuning, so the velocity is what failed)
+    whose phase signal was not usable, within one velocity step of ``candidate`` or between the
+    lock and it. Usable: points in the capture range within one step of ``candidate`` or beyond
+    it, seen from the lock, on its side.
+    """
+    f = search.settings.velocity_step_fraction
+    side = candidate - velocity
+    reach = abs(side)
+
+    def near(u: float) -> bool:
+        return abs(u / candidate - 1.0) <= f
+
+    def same_side(u: float) -> bool:
+        return (u - velocity) * side > 0.0
+
+    unusable = sum(1 for o in search._obs
+                   if o.purpose == "velocity" and search._range_note(o.result) is not None
+                   and (near(o.velocity) or (same_side(o.velocity) and abs(o.velocity - velocity) <= reach)))
+    usable = sum(1 for o in search._in_range()
+                 if near(o.velocity) or (same_side(o.velocity) and abs(o.velocity - velocity) >= reach))
+    return usable, unusable
+
+
+def usable_chance(usable: int, unusable: int) -> float:
+    """The chance that the next velocity step comes back usable, from the points that bear on it.
+
+    1 where no unusable step bears on it; else the mean of the Beta(1 + usable, 1 + unusable)
+    posterior (a uniform prior updated by the binomial counts), ``(1 + usable) / (2 + usable +
+    unusable)``.
+    """
+    if usable < 0 or unusable < 0:
+        raise ValueError(f"usable_chance: expected counts >= 0, got {usable!r}, {unusable!r}")
+    if unusable == 0:
+        return 1.0
+    return (1.0 + usable) / (2.0 + usable + unusable)
+
+
 def expected_phase_variance(search: PhaseLockSearch, shots: int) -> float:
     points = search._in_range()
     per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
@@ -81,6 +137,15 @@ def expected_absorption_variance(search: PhaseLockSearch, value: float, shots: i
     return float(np.median(per)) * max(value, floor) / shots
 
 
+def updated_cov(cov: np.ndarray, features: np.ndarray, variance: float) -> np.ndarray:
+    """The posterior covariance of a linear-Gaussian model's coefficients after one more
+    measurement ``y = features @ coef + noise`` of noise ``variance``: ``cov - cov f f^T cov /
+    (variance + f^T cov f)``, the rank-one (Sherman-Morrison) form of ``(cov^-1 + f f^T /
+    variance)^-1``; it does not depend on the value to be measured."""
+    g = cov @ features
+    return cov - np.outer(g, g) / (variance + features @ cov @ features)
+
+
 def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: float, detuning: float,
                     shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:
     """The shortfall at ``rec`` expected after measuring (velocity, detuning).
@@ -93,19 +158,18 @@ def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: 
     x = lock_fit.features(detuning, clock)
     model = search.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
     var = expected_phase_variance(search, shots) + model**2
-    lock_cov = lock_fit.cov - np.outer(lock_fit.cov @ x, lock_fit.cov @ x) / (var + x @ lock_fit.cov @ x)
+    lock_cov = updated_cov(lock_fit.cov, x, var)
     absorption_cov = residual_cov = None
     fit = search._absorption_fit()
     if search._absorption_ready(fit):
         xv = fit.x_of(velocity)
         f = np.array([1.0, xv, xv * xv])
         avar = expected_absorption_variance(search, fit.value(xv), shots)
-        absorption_cov = fit.cov - np.outer(fit.cov @ f, fit.cov @ f) / (avar + f @ fit.cov @ f)
+        absorption_cov = updated_cov(fit.cov, f, avar)
         curve = search._velocity_curve()
         if curve is not None:
-            r_cov = curve.residual_cov
             rvar = expected_inversion_variance(search, shots) + avar
-            residual_cov = r_cov - np.outer(r_cov @ f, r_cov @ f) / (rvar + f @ r_cov @ f)
+            residual_cov = updated_cov(curve.residual_cov, f, rvar)
     return search._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
                               residual_cov=residual_cov, inherit=inherit)
 
@@ -120,9 +184,12 @@ def _best(search: PhaseLockSearch, velocity: float, clock: float | None
     now = search._shortfall_at(rec, clock, inherit=False)
     best = None
     for purpose, v, d, shots_per_phase in candidates(search, velocity, clock):
+        # The expected fall if usable, times the chance that it is (a lock point at the
+        # established lock: taken as 1).
+        chance = usable_chance(*usable_evidence(search, velocity, v)) if purpose == "velocity" else 1.0
         shots = search._total_shots(shots_per_phase)
         after = expected_after(search, rec, v, d, shots_per_phase, clock, inherit=False)
-        gain = (now.upper - after.upper) / shots
+        gain = chance * (now.upper - after.upper) / shots
         if best is None or gain > best[0] + 1e-15:
             best = (gain, purpose, v, d, shots_per_phase, after)
     assert best is not None
@@ -141,8 +208,10 @@ def best_proposal(search: PhaseLockSearch, velocity: float, clock: float | None)
     now, (_, purpose, v, d, shots_per_phase, after) = _best(search, velocity, clock)
     term = "detuning" if (now.detuning_upper - after.detuning_upper) >= (now.velocity_upper - after.velocity_upper) \
         else "velocity"
+    chance = usable_chance(*usable_evidence(search, velocity, v)) if purpose == "velocity" else 1.0
+    usable = "" if chance == 1.0 else f"; chance of a usable result there {chance:.2f}"
     reason = (f"predicted shortfall's {now.confidence:.0%} bound {now.upper:.2%} (detuning {now.detuning_upper:.2%}, "
               f"velocity {now.velocity_upper:.2%}); this {purpose} point at {v:.1f} m/s, {d / 1e3:+.2f} kHz "
               f"reduces the {term} term most per shot: expected bound {after.upper:.2%} "
-              f"(detuning {after.detuning_upper:.2%}, velocity {after.velocity_upper:.2%})")
+              f"(detuning {after.detuning_upper:.2%}, velocity {after.velocity_upper:.2%}){usable}")
     return Proposal({"velocity": v, "detuning": d}, purpose, shots_per_phase, reason)
