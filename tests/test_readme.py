@@ -14,6 +14,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from cli_helpers import README_DRY_RUN, DryRun
 from rig_process import REPO, spawn_server
 
 from autotune import config
@@ -137,10 +138,12 @@ def _normalised(text: str) -> list[str]:
             for line in text.splitlines()]
 
 
-def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(tmp_path: Path) -> None:
+def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(readme_dry_run: DryRun) -> None:
     """`autotune dry-run` from an empty folder: exit 0, and stdout has the README's lines, up to
     the numbers (which vary with the seed and the machine)."""
-    done = _run(_argv("autotune dry-run"), tmp_path)
+    # The session's one run of the line (conftest.py's readme_dry_run), as written.
+    assert README_DRY_RUN == "autotune dry-run" and HOW[README_DRY_RUN][0] == "run"
+    done = readme_dry_run
     assert done.returncode == 0, done.stderr[-3000:]
     text = README.read_text(encoding="utf-8")
     start = text.index("Output of `autotune dry-run` on this machine")
@@ -152,8 +155,8 @@ def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(tmp_path: Path)
         block.append(line[4:])
     shown = "\n".join(block).strip("\n")
     assert _normalised(done.stdout) == _normalised(shown)
-    (folder,) = (tmp_path / "runs").iterdir()
-    assert folder.name.startswith("dry-run-")
+    folder = done.folder
+    assert folder is not None and folder.name.startswith("dry-run-")
     assert {p.name for p in folder.iterdir()} >= {"calibrate", "retune", "last-good.json"}
 
 
