@@ -69,7 +69,7 @@ from autotune.run.preflight import (never_started, opening_call, preflight, resu
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
-           "STAGE_COMMANDS", "opening_call", "read_run_files"]
+           "STAGE_COMMANDS", "opening_call", "read_run_files", "decide_config_changes"]
 
 _log = structlog.get_logger(__name__)
 
@@ -432,16 +432,28 @@ def _open_run_folder(prepared: Prepared, rig: Rig, stop: threading.Event | None,
     return Journal.create(prepared.run_dir, run_manifest(prepared, extra)), [], opening_clock
 
 
+def decide_config_changes(session: Session, changes: Sequence[tuple[str, Any, Any]]) -> None:
+    """Journal the configuration changes a resume accepted (a ``config_changed`` decision), if
+    any.
+
+    Parameters
+    ----------
+    session : Session
+        The resumed run's session.
+    changes : sequence of (key, old, new)
+        The changes :func:`autotune.run.preflight.resume_changes` allowed.
+    """
+    if changes:
+        session.decide("config_changed", "resumed with a changed configuration: "
+                       + "; ".join(f"{k}: {old!r} -> {new!r}" for k, old, new in changes),
+                       changes=[{"key": k, "old": old, "new": new} for k, old, new in changes])
+
+
 def _start_session(prepared: Prepared, session: Session, rig: Rig, journal: Journal,
                    records: Sequence[Mapping[str, Any]], opening_clock: float | None) -> float:
     """Journal a resume's configuration changes and the run's ``start`` (once); the rig clock
     at the start of the run."""
-    if prepared.changes:
-        session.decide("config_changed", "resumed with a changed configuration: "
-                       + "; ".join(f"{k}: {old!r} -> {new!r}"
-                                   for k, old, new in prepared.changes),
-                       changes=[{"key": k, "old": old, "new": new}
-                                for k, old, new in prepared.changes])
+    decide_config_changes(session, prepared.changes)
     starts = of_type(parse_all(records), Start)
     if starts and starts[0].clock is not None:
         return starts[0].clock
