@@ -13,6 +13,7 @@ import sys
 import termios
 import time
 import tomllib
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +24,21 @@ from rig_process import REPO
 
 DRY_RUN = REPO / "configs" / "dry-run.toml"
 RUN_TIMEOUT_S = 600.0
+
+#: The README's dry run, exactly as written (tests/test_readme.py classifies it "run").
+README_DRY_RUN = "autotune dry-run"
+
+
+@dataclass(frozen=True)
+class DryRun:
+    """What the README's ``autotune dry-run`` did from an empty folder: its exit code, what it
+    printed, and its run folder (``runs/dry-run-<UTC time>``: calibrate, retune, last-good.json).
+    Shared by the tests of a session: read it, never write into it."""
+
+    returncode: int
+    stdout: str
+    stderr: str
+    folder: Path | None
 
 
 def autotune(*args: str, timeout: float = RUN_TIMEOUT_S, cwd: Path | None = None

@@ -1,7 +1,11 @@
-"""Fixtures of every test folder: simulated rigs in real subprocesses, throwaway CURVE keys."""
+"""Fixtures of every test folder: simulated rigs in real subprocesses, throwaway CURVE keys, the
+README's dry run (run once per test session and read by every test that checks its output)."""
 
 from __future__ import annotations
 
+import fcntl
+import json
+import shlex
 import shutil
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -9,7 +13,34 @@ from typing import Any
 
 import pytest
 import zmq.auth
+from cli_helpers import README_DRY_RUN, DryRun, autotune
 from rig_process import CurveFiles, ServerProcess, spawn_server
+
+
+@pytest.fixture(scope="session")
+def readme_dry_run(tmp_path_factory: pytest.TempPathFactory, worker_id: str) -> DryRun:
+    """The README's ``autotune dry-run`` run once per test session, from an empty folder.
+
+    One dry run takes a core for tens of seconds; five test files read one. pytest-xdist's
+    workers share it through a lock in their common temporary folder (the first runs it, the
+    others wait for it and read what it left).
+    """
+    root = tmp_path_factory.getbasetemp()
+    if worker_id != "master":
+        root = root.parent  # the folder every worker of this session shares
+    here = root / "readme-dry-run"
+    done = here / "done.json"
+    with open(root / "readme-dry-run.lock", "w") as lock:
+        fcntl.flock(lock, fcntl.LOCK_EX)
+        if not done.exists():
+            here.mkdir(exist_ok=True)
+            ran = autotune(*shlex.split(README_DRY_RUN)[1:], cwd=here)
+            done.write_text(json.dumps({"returncode": ran.returncode, "stdout": ran.stdout,
+                                        "stderr": ran.stderr}), encoding="utf-8")
+    outcome = json.loads(done.read_text(encoding="utf-8"))
+    folders = sorted((here / "runs").glob("dry-run-*")) if (here / "runs").is_dir() else []
+    return DryRun(outcome["returncode"], outcome["stdout"], outcome["stderr"],
+                  folders[0] if len(folders) == 1 else None)
 
 
 @pytest.fixture

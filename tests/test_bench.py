@@ -344,13 +344,22 @@ def test_local_dask_cluster_gives_the_serial_results(study):
     """Two dask worker processes give exactly the serial run's calibrations, oracles and retunes."""
     # Reference: the same jobs run in this process (the module's study); every job is seeded,
     # so only wall times may differ.
-    plan = dataclasses.replace(TINY, workers=2, night_steps=0, overhead_points=())
+    # The main family alone (both strategies, the retunes, the oracles): the mismatch family's
+    # jobs travel the same way, and the cluster run costs half as much (129 s of a loaded
+    # machine for both families). Summaries are computed here from what the jobs return, over
+    # the families run, so the jobs' own results are compared.
+    plan = dataclasses.replace(TINY, workers=2, night_steps=0, overhead_points=(),
+                               families=("main",))
     on_cluster = bench.run_study(plan)
     assert on_cluster["machine"]["ran_on"].startswith("local dask cluster")
-    for key in ("runs", "summary", "retune", "scenarios"):
-        assert _without_wall_times(on_cluster[key]) == _without_wall_times(study[key]), key
-    assert _without_wall_times(on_cluster["oracle"]["runs"]) == \
-        _without_wall_times(study["oracle"]["runs"])
+
+    def main_only(runs):
+        return _without_wall_times([r for r in runs if r["family"] == "main"])
+
+    assert on_cluster["runs"] and main_only(on_cluster["runs"]) == main_only(study["runs"])
+    assert any("retune" in r for r in on_cluster["runs"])
+    assert on_cluster["scenarios"]["main"] == study["scenarios"]["main"]
+    assert main_only(on_cluster["oracle"]["runs"]) == main_only(study["oracle"]["runs"])
 
 
 def test_existing_scheduler_gives_the_serial_results(study):

@@ -25,7 +25,7 @@ from autotune.wire.bus import BusClient
 from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal
 from rig_process import REPO, ServerProcess
 
-from cli_helpers import DRY_RUN
+from cli_helpers import DRY_RUN, DryRun
 from cli_helpers import autotune as _autotune
 from cli_helpers import to_toml as _to_toml
 from cli_helpers import write_config as _write_config
@@ -67,13 +67,13 @@ def _wait_for(path: Path, kind: str, count: int, timeout_s: float = 300.0) -> No
     pytest.fail(f"{path} did not reach {count} {kind} records in {timeout_s} s")
 
 
-def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(tmp_path: Path) -> None:
+def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(readme_dry_run: DryRun) -> None:
     """dry-run: both stages reach >= 0.98 of the true best and are accepted; the retune costs
     less than the calibration, and the calibration no more than 3.5 times its own verification
     (the oracle floor of the study: verification alone at the true best)."""
-    out = tmp_path / "dry"
-    done = _autotune("--log-level", "warning", "dry-run", "--out", str(out))
-    assert done.returncode == 0, done.stderr[-3000:]
+    done = readme_dry_run  # the session's one README dry run (conftest.py)
+    assert done.returncode == 0 and done.folder is not None, done.stderr[-3000:]
+    out = done.folder
     assert "SIMULATED" in done.stderr and "CAUTION" in done.stderr
     results = {name: json.loads((out / name / RESULT_NAME).read_text())
                for name in ("calibrate", "retune")}

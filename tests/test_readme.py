@@ -14,6 +14,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from cli_helpers import README_DRY_RUN, DryRun
 from rig_process import REPO, spawn_server
 
 from autotune import config
@@ -36,7 +37,8 @@ HOW = {
     "python3 -m pytest -q": ("not here", "it is this suite; .ci/run must call exactly it "
                              "(test_ci_runs_exactly_the_readme_test_command)"),
     "python3 -m pytest -q -m slow": ("not here", "the slow suite itself, tens of minutes on 2 "
-                                     "cores; .ci/run runs its kill and resume matrices"),
+                                     "cores; .ci/run runs its kill and resume matrices "
+                                     "and two studies"),
     "autotune calibrate --config my-rig.toml --out runs/first-calibration": ("run", ""),
     "autotune report runs/first-calibration": ("run", ""),
     "autotune retune --config my-rig.toml --out runs/retune-1": ("run", ""),
@@ -137,10 +139,12 @@ def _normalised(text: str) -> list[str]:
             for line in text.splitlines()]
 
 
-def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(tmp_path: Path) -> None:
+def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(readme_dry_run: DryRun) -> None:
     """`autotune dry-run` from an empty folder: exit 0, and stdout has the README's lines, up to
     the numbers (which vary with the seed and the machine)."""
-    done = _run(_argv("autotune dry-run"), tmp_path)
+    # The session's one run of the line (conftest.py's readme_dry_run), as written.
+    assert README_DRY_RUN == "autotune dry-run" and HOW[README_DRY_RUN][0] == "run"
+    done = readme_dry_run
     assert done.returncode == 0, done.stderr[-3000:]
     text = README.read_text(encoding="utf-8")
     start = text.index("Output of `autotune dry-run` on this machine")
@@ -152,8 +156,8 @@ def test_readme_dry_run_runs_as_written_and_prints_what_it_shows(tmp_path: Path)
         block.append(line[4:])
     shown = "\n".join(block).strip("\n")
     assert _normalised(done.stdout) == _normalised(shown)
-    (folder,) = (tmp_path / "runs").iterdir()
-    assert folder.name.startswith("dry-run-")
+    folder = done.folder
+    assert folder is not None and folder.name.startswith("dry-run-")
     assert {p.name for p in folder.iterdir()} >= {"calibrate", "retune", "last-good.json"}
 
 
@@ -280,7 +284,7 @@ def test_dry_run_options_sentence_matches_its_help() -> None:
 
 def test_ci_runs_exactly_the_readme_test_command() -> None:
     """.ci/run makes a fresh venv, installs the test extra in it, runs the README's test command
-    and then the slow kill and resume matrices."""
+    and then the slow kill and resume matrices and the lock's and the drift search's studies."""
     text = README.read_text(encoding="utf-8")
     line = next(line.strip() for line in text.splitlines() if ".[test]" in line)
     install, test = (part.strip() for part in line.split("&&"))
@@ -292,9 +296,11 @@ def test_ci_runs_exactly_the_readme_test_command() -> None:
     activated = next(i for i, command in enumerate(ci) if command.startswith("source ")
                      and command.endswith('/bin/activate"'))
     assert venv_made < activated < suite - 1, "the tests run inside a fresh venv"
-    # After the README's suite, the slow kill and resume matrices (every resume path).
+    # After the README's suite, the slow kill and resume matrices (every resume path), and the
+    # studies whose samples the default suite keeps small.
     assert ci[suite + 1:] == ["python3 -m pytest -q -m slow tests/test_survival.py "
-                              "tests/test_resume.py"]
+                              "tests/test_resume.py tests/test_guided.py "
+                              "tests/test_search_drift.py"]
     assert any(".[test]" in command and command.startswith("python3 -m pip install")
                for command in ci), install
 

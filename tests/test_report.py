@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from cli_helpers import DryRun
 from cli_helpers import to_toml as _to_toml
 from matplotlib.contour import ContourSet
 from scipy import stats
@@ -83,12 +84,13 @@ pytestmark = pytest.mark.xdist_group("test_report")
 
 
 @pytest.fixture(scope="module")
-def real(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
-    """A dry run's folder, a calibration killed mid-run, and a two-cycle track folder."""
+def real(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) -> dict[str, Path]:
+    """A dry run's folder (the session's one README dry run, conftest.py: read only), a
+    calibration killed mid-run, and a two-cycle track folder."""
     base = tmp_path_factory.mktemp("report")
-    dry = base / "dry"
-    done = _autotune("--log-level", "warning", "dry-run", "--out", str(dry))
-    assert done.returncode == 0, done.stderr[-3000:]
+    assert readme_dry_run.returncode == 0 and readme_dry_run.folder is not None, \
+        readme_dry_run.stderr[-3000:]
+    dry = readme_dry_run.folder
     server = spawn_server(base, "rig", seed=11)
     try:
         store = base / "good.json"

@@ -9,14 +9,13 @@ from __future__ import annotations
 
 import shutil
 import subprocess
-import sys
 import tempfile
 from pathlib import Path
 
 import pytest
 
 from autotune import report
-from rig_process import REPO
+from cli_helpers import DryRun
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
 LAPTOP = (1366, 2400)  # a common laptop screen's width (px), and a tall window to see more
@@ -32,16 +31,15 @@ def _chromium() -> str:
     pytest.skip("no Chromium on this machine (Debian: apt-get install chromium)")
 
 
-def test_the_page_of_a_dry_run_opens_in_chromium_with_figures_side_by_side(tmp_path: Path) -> None:
+def test_the_page_of_a_dry_run_opens_in_chromium_with_figures_side_by_side(
+        tmp_path: Path, readme_dry_run: DryRun) -> None:
     """Chromium renders the page from the file alone (no network: every image is inline and
     decodes); at a laptop's width the first stage's first two figures share a row, each at least
     560 px wide, and the timeline spans wider."""
     browser = _chromium()
-    dry = tmp_path / "dry"
-    done = subprocess.run([sys.executable, "-m", "autotune.cli", "--log-level", "warning",
-                           "dry-run", "--out", str(dry)], capture_output=True, text=True,
-                          timeout=600, cwd=REPO, stdin=subprocess.DEVNULL)
-    assert done.returncode == 0, done.stderr[-3000:]
+    done = readme_dry_run  # the session's one README dry run (conftest.py): read only
+    assert done.returncode == 0 and done.folder is not None, done.stderr[-3000:]
+    dry = done.folder
     out = tmp_path / "page"
     report.write_report(dry, out=out)
     page = out / report.HTML_NAME

@@ -17,8 +17,6 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
-import subprocess
-import sys
 from pathlib import Path
 from typing import Any
 
@@ -37,6 +35,7 @@ from autotune.kit.server import LocalRig
 from drivers_sim.config import load_sim_config
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
+from cli_helpers import DryRun
 from rig_process import REPO
 
 DRY_RUN = REPO / "configs" / "dry-run.toml"
@@ -61,15 +60,14 @@ pytestmark = pytest.mark.xdist_group("test_report_figures")
 
 
 @pytest.fixture(scope="module")
-def folders(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+def folders(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) -> dict[str, Path]:
     """A dry run, a night with a recovered thermal step, a night whose recovery fails, and a
     night that never holds."""
     base = tmp_path_factory.mktemp("figures")
-    done = subprocess.run([sys.executable, "-m", "autotune.cli", "--log-level", "warning",
-                           "dry-run", "--out", str(base / "dry")], capture_output=True,
-                          text=True, timeout=600, cwd=REPO, stdin=subprocess.DEVNULL)
-    assert done.returncode == 0, done.stderr[-3000:]
-    out = {"dry": base / "dry"}
+    # The session's one README dry run (conftest.py): read only.
+    assert readme_dry_run.returncode == 0 and readme_dry_run.folder is not None, \
+        readme_dry_run.stderr[-3000:]
+    out = {"dry": readme_dry_run.folder}
     # The failed night's step moves the mode by the whole width of the detuning limits: the
     # set-point that would bring the atoms back into resonance lies beyond a limit, so the night
     # holds at its default bar until the step and then no recovery can reach that bar.

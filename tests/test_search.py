@@ -92,9 +92,12 @@ def test_skopt_optimizer_api_is_the_one_adapted():
 
 
 def test_bayesian_finds_branin_minimum():
-    """On Branin, 50 evaluations bring the recommendation within 0.02 of the known minimum 0.397887."""
+    """On Branin, 30 evaluations bring the recommendation within 0.02 of the known minimum 0.397887."""
+    # 8 space-filling points and 22 proposals. Measured (seed 0): 0.0019 above the minimum and
+    # 0.07 from a minimiser after 30, 0.0005 and 0.01 after 50 (the earlier length, at twice
+    # the CPU: the fits grow with the results).
     search = BayesianSearch(BRANIN_SPACE, seed=0, n_initial_points=8)
-    _run(search, _branin_value, 50)
+    _run(search, _branin_value, 30)
     best = search.recommend()
     assert -_branin_value(best.point) == pytest.approx(BRANIN_MINIMUM, abs=0.02)
     distance = np.min(np.hypot(*(BRANIN_MINIMISERS - [best.point["x"], best.point["y"]]).T))
@@ -106,11 +109,14 @@ def test_bayesian_finds_branin_minimum():
 
 def test_bayesian_is_deterministic_for_a_seed():
     """Two searches with one seed propose the same points; another seed differs."""
-    first = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 14)]
-    again = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 14)]
-    other = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=4), _rig_value, 14)]
+    # 11 asks: the 8 space-filling points and 3 of the surrogate's proposals (11 s of CPU for
+    # the three searches, 18 s at 14 asks).
+    first = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 11)]
+    again = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=3), _rig_value, 11)]
+    other = [p for p, _ in _run(BayesianSearch(RIG_SPACE, seed=4), _rig_value, 11)]
     assert first == again
     assert first != other
+    assert first[8:] != other[8:]  # the proposals too, not only the design
 
 
 def test_bayesian_initial_design_starts_with_given_points():

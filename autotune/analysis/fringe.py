@@ -655,15 +655,23 @@ def estimate_inversion(
     level = _check_confidence(confidence)
     if isinstance(resamples, bool) or not isinstance(resamples, (int, np.integer)) or resamples < 100:
         raise EstimationError(f"resamples: expected an integer >= 100, got {resamples!r}")
-    resamples = int(resamples)
+    common = _common_terms(empty, one_photon, level, int(resamples))
+    if not (_identified(empty) and _identified(one_photon)):
+        return _uninformed_estimate(empty, one_photon, common)
+    return _bootstrap_estimate(empty, one_photon, level, seed, int(resamples), common)
 
+
+def _common_terms(
+    empty: FringeData, one_photon: FringeData, level: float, resamples: int
+) -> dict[str, Any]:
+    """What every estimate carries, determined fringe or not: the absorption with its Wilson
+    interval, the detected totals, the level and the resample count."""
     detected0 = int(empty.detected.sum())
     detected1 = int(one_photon.detected.sum())
     absorbed = int(one_photon.e.sum())
     absorption_low, absorption_high = proportion_interval(absorbed, detected1, level, "wilson")
     absorption = absorbed / detected1 if detected1 > 0 else 0.5
-
-    common = {
+    return {
         "absorption": float(absorption),
         "absorption_low": float(absorption_low),
         "absorption_high": float(absorption_high),
@@ -673,12 +681,21 @@ def estimate_inversion(
         "resamples": resamples,
     }
 
-    if not (_identified(empty) and _identified(one_photon)):
-        return _uninformed_estimate(empty, one_photon, common)
 
+def _bootstrap_estimate(
+    empty: FringeData,
+    one_photon: FringeData,
+    level: float,
+    seed: int,
+    resamples: int,
+    common: dict[str, Any],
+) -> InversionEstimate:
+    """The estimate of two determined fringes: both fitted, then the parametric bootstrap
+    (see :func:`estimate_inversion`)."""
     fit0 = fit_fringe(empty)
     fit1 = fit_fringe(one_photon)
     rng = np.random.default_rng(seed)
+    # Ordering hazard: both fields draw from one generator, the empty field first.
     g0 = _resample_g(rng, fit0, empty, resamples)
     g1 = _resample_g(rng, fit1, one_photon, resamples)
     theta0 = _fit_batch(empty.ramsey_phase, g0, empty.detected)

@@ -178,6 +178,77 @@ def _as_observation(item: Any) -> Observation:
 _EDGE_MARGIN = 0.05
 
 
+def _check_settings(space: SearchSpace, *, seed: Any, n_initial_points: Any, n_points: Any,
+                    convergence: Any, candidates: Any, exploration: Any, drift_dimension: Any,
+                    max_drift_rate: Any, drift_grid: Any) -> None:
+    """Refuse a :class:`BayesianSearch` setting, naming it, before anything is built."""
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
+        raise ValueError(f"seed: expected an integer, got {seed!r}")
+    if isinstance(n_initial_points, bool) or not isinstance(n_initial_points, (int, np.integer)) or n_initial_points < 0:
+        raise ValueError(f"n_initial_points: expected an integer >= 0, got {n_initial_points!r}")
+    if n_points is not None and (isinstance(n_points, bool) or not isinstance(n_points, int) or n_points < 1):
+        raise ValueError(f"n_points: expected None or an integer >= 1, got {n_points!r}")
+    if not isinstance(convergence, Convergence):
+        raise ValueError(f"convergence: expected a Convergence, got {convergence!r}")
+    if isinstance(candidates, bool) or not isinstance(candidates, int) or candidates < 16:
+        raise ValueError(f"candidates: expected an integer >= 16, got {candidates!r}")
+    if isinstance(exploration, bool) or not isinstance(exploration, (int, float)) or not (
+            math.isfinite(exploration) and exploration >= 0):
+        raise ValueError(f"exploration: expected a finite number >= 0, got {exploration!r}")
+    if drift_dimension is not None and drift_dimension not in space.names:
+        raise ValueError(f"drift_dimension: expected None or one of {list(space.names)}, got {drift_dimension!r}")
+    if isinstance(max_drift_rate, bool) or not isinstance(max_drift_rate, (int, float)) or not (
+            math.isfinite(max_drift_rate) and max_drift_rate > 0):
+        raise ValueError(f"max_drift_rate: expected a finite number > 0 (unit per second), got {max_drift_rate!r}")
+    if isinstance(drift_grid, bool) or not isinstance(drift_grid, int) or drift_grid < 3 or drift_grid % 2 == 0:
+        raise ValueError(f"drift_grid: expected an odd integer >= 3 (so that 0 is on it), got {drift_grid!r}")
+
+
+def _first_design(space: SearchSpace, initial_points: Sequence[Mapping[str, float]],
+                  n_initial_points: int, seed: int) -> np.ndarray:
+    """The first points asked, in the unit cube: ``initial_points`` in order, then a Latin
+    hypercube of ``n_initial_points`` from ``seed``."""
+    dims = len(space.dimensions)
+    design = []
+    for k, point in enumerate(initial_points):
+        if not space.contains(point):
+            raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
+        design.append(space.to_unit(point))
+    if n_initial_points:
+        design.extend(_latin_design(dims, n_initial_points, seed))
+    return np.array(design).reshape(-1, dims)
+
+
+def _surrogate(space: SearchSpace, seed: int, exploration: float, candidates: int
+               ) -> tuple[Any, Any]:
+    """The Gaussian-process regressor and the skopt optimiser around it (unit cube)."""
+    dims = len(space.dimensions)
+    optimizer, regressor, constant, matern, real = _skopt()
+    kernel = constant(1.0, (1e-2, 1e2)) * matern(
+        length_scale=np.full(dims, 0.3), length_scale_bounds=(0.02, 5.0), nu=2.5
+    )
+    gp = regressor(
+        kernel=kernel,
+        normalize_y=True,
+        noise="gaussian",
+        n_restarts_optimizer=2,
+        random_state=seed,
+    )
+    return gp, optimizer(
+        # Bounds in the unit cube: skopt sees only our normalised coordinates.
+        [real(0.0, 1.0, name=name) for name in space.names],
+        base_estimator=gp,
+        n_initial_points=0,
+        acq_func="EI",
+        # xi: the improvement (value's unit) a proposal must promise beyond the incumbent.
+        # Under noise, plain EI keeps re-measuring next to one lucky result.
+        acq_func_kwargs={"xi": exploration},
+        acq_optimizer="sampling",
+        acq_optimizer_kwargs={"n_points": candidates},
+        random_state=seed,
+    )
+
+
 class BayesianSearch(SearchRecord):
     """Bayesian optimisation with a noise-aware Gaussian-process surrogate (skopt ask/tell).
 
@@ -273,26 +344,10 @@ class BayesianSearch(SearchRecord):
         drift_grid: int = 21,
     ) -> None:
         super().__init__(space)
-        if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-            raise ValueError(f"seed: expected an integer, got {seed!r}")
-        if isinstance(n_initial_points, bool) or not isinstance(n_initial_points, (int, np.integer)) or n_initial_points < 0:
-            raise ValueError(f"n_initial_points: expected an integer >= 0, got {n_initial_points!r}")
-        if n_points is not None and (isinstance(n_points, bool) or not isinstance(n_points, int) or n_points < 1):
-            raise ValueError(f"n_points: expected None or an integer >= 1, got {n_points!r}")
-        if not isinstance(convergence, Convergence):
-            raise ValueError(f"convergence: expected a Convergence, got {convergence!r}")
-        if isinstance(candidates, bool) or not isinstance(candidates, int) or candidates < 16:
-            raise ValueError(f"candidates: expected an integer >= 16, got {candidates!r}")
-        if isinstance(exploration, bool) or not isinstance(exploration, (int, float)) or not (
-                math.isfinite(exploration) and exploration >= 0):
-            raise ValueError(f"exploration: expected a finite number >= 0, got {exploration!r}")
-        if drift_dimension is not None and drift_dimension not in space.names:
-            raise ValueError(f"drift_dimension: expected None or one of {list(space.names)}, got {drift_dimension!r}")
-        if isinstance(max_drift_rate, bool) or not isinstance(max_drift_rate, (int, float)) or not (
-                math.isfinite(max_drift_rate) and max_drift_rate > 0):
-            raise ValueError(f"max_drift_rate: expected a finite number > 0 (unit per second), got {max_drift_rate!r}")
-        if isinstance(drift_grid, bool) or not isinstance(drift_grid, int) or drift_grid < 3 or drift_grid % 2 == 0:
-            raise ValueError(f"drift_grid: expected an odd integer >= 3 (so that 0 is on it), got {drift_grid!r}")
+        _check_settings(space, seed=seed, n_initial_points=n_initial_points, n_points=n_points,
+                        convergence=convergence, candidates=candidates, exploration=exploration,
+                        drift_dimension=drift_dimension, max_drift_rate=max_drift_rate,
+                        drift_grid=drift_grid)
         self.seed = int(seed)
         self.convergence = convergence
         self.exploration = float(exploration)
@@ -301,51 +356,23 @@ class BayesianSearch(SearchRecord):
         self._budget = n_points
         dims = len(space.dimensions)
         self._n_candidates = candidates
-
-        design = []
-        for k, point in enumerate(initial_points):
-            if not space.contains(point):
-                raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
-            design.append(space.to_unit(point))
-        if n_initial_points:
-            design.extend(_latin_design(dims, int(n_initial_points), self.seed))
-        self._design = np.array(design).reshape(-1, dims)
+        self._design = _first_design(space, initial_points, int(n_initial_points), self.seed)
         warm = [_as_observation(item) for item in warm_start]
         if not len(self._design) and not warm:
             raise ValueError("BayesianSearch: expected initial_points, n_initial_points > 0 or a warm_start")
         self._candidates = qmc.Sobol(d=dims, scramble=True, rng=np.random.default_rng(self.seed + 1)).random(candidates)
-
-        optimizer, regressor, constant, matern, real = _skopt()
-        kernel = constant(1.0, (1e-2, 1e2)) * matern(
-            length_scale=np.full(dims, 0.3), length_scale_bounds=(0.02, 5.0), nu=2.5
-        )
-        self._regressor = regressor(
-            kernel=kernel,
-            normalize_y=True,
-            noise="gaussian",
-            n_restarts_optimizer=2,
-            random_state=self.seed,
-        )
-        self._optimizer = optimizer(
-            # Bounds in the unit cube: skopt sees only our normalised coordinates.
-            [real(0.0, 1.0, name=name) for name in space.names],
-            base_estimator=self._regressor,
-            n_initial_points=0,
-            acq_func="EI",
-            # xi: the improvement (value's unit) a proposal must promise beyond the incumbent.
-            # Under noise, plain EI keeps re-measuring next to one lucky result.
-            acq_func_kwargs={"xi": float(exploration)},
-            acq_optimizer="sampling",
-            acq_optimizer_kwargs={"n_points": candidates},
-            random_state=self.seed,
-        )
+        self._regressor, self._optimizer = _surrogate(space, self.seed, float(exploration), candidates)
         self._all_stderrs: list[float] = []
         self._model = None
         self._history: list[tuple[np.ndarray, float | None]] = []
         self._warm_count = len(warm)
+        self._start_drift_model(drift_grid)
+        self._tell_warm_start(warm)
 
-        # Drift model state (all results, warm start first, in order).
-        self._axis = space.names.index(drift_dimension) if drift_dimension is not None else -1
+    def _start_drift_model(self, drift_grid: int) -> None:
+        """The drift model's state: all results, warm start first, in order."""
+        drift_dimension = self.drift_dimension
+        self._axis = self.space.names.index(drift_dimension) if drift_dimension is not None else -1
         self._rate_grid = np.linspace(-1.0, 1.0, drift_grid) * self.max_drift_rate
         self._all_units: list[np.ndarray] = []
         self._all_values: list[float] = []
@@ -356,6 +383,8 @@ class BayesianSearch(SearchRecord):
         self._rate_unit = 0.0  # estimated rate, unit-cube width per second
         self._proposal: dict[float | None, np.ndarray] = {}
 
+    def _tell_warm_start(self, warm: Sequence[Observation]) -> None:
+        """Tell the earlier results, fitting once after the last."""
         for k, item in enumerate(warm):
             try:
                 unit = self._check_result(item.point, item.value, item.stderr)

@@ -69,7 +69,7 @@ from autotune.run.preflight import (never_started, opening_call, preflight, resu
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
-           "STAGE_COMMANDS", "opening_call", "read_run_files"]
+           "STAGE_COMMANDS", "opening_call", "read_run_files", "decide_config_changes"]
 
 _log = structlog.get_logger(__name__)
 
@@ -365,67 +365,27 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
     RigError, LimitError
         The rig failed past the retries, or a set-point was refused.
     """
-    command, config, run_dir = prepared.command, prepared.config, prepared.run_dir
+    command, run_dir = prepared.command, prepared.run_dir
     wall_start = time.monotonic()
-    extra = dict(extra or {})
-    if command == "retune":
-        extra = {"last_good": prepared.last_good, **extra}
-    opening_clock = None
-    if prepared.resume:
-        journal, _, records = Journal.open_for_resume(run_dir)
-    else:
-        # The rig's clock before the folder exists: a run that never reached the rig leaves
-        # no journal behind.
-        opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
-        journal, records = Journal.create(run_dir, run_manifest(prepared, extra)), []
+    journal, records, opening_clock = _open_run_folder(prepared, rig, stop, extra)
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
     try:
-        session = Session(rig, config, journal, prepared.description, stop=stop,
+        session = Session(rig, prepared.config, journal, prepared.description, stop=stop,
                           progress=progress)
-        if prepared.changes:
-            session.decide("config_changed", "resumed with a changed configuration: "
-                           + "; ".join(f"{k}: {old!r} -> {new!r}"
-                                       for k, old, new in prepared.changes),
-                           changes=[{"key": k, "old": old, "new": new}
-                                    for k, old, new in prepared.changes])
-        starts = of_type(parse_all(records), Start)
-        if starts and starts[0].clock is not None:
-            clock_start = starts[0].clock
-        else:
-            clock_start = opening_clock if opening_clock is not None else \
-                float(session._call("status", lambda _id: rig.status()).clock)
-            journal.append("start", clock=clock_start, command=command,
-                           instance=getattr(prepared.description, "instance", None))
+        clock_start = _start_session(prepared, session, rig, journal, records, opening_clock)
     except BaseException:
         journal.append("end", status=status)
         journal.close()
         raise
     try:
-        session.resume_moves(records)
-        session.learn_present()
-        if config.search.strategy == "phase_lock":
-            outcome = run_guided_stage(session, records=records,
-                                       **_guided_args(prepared, session, observer))
-        else:
-            outcome = run_stage(session, records=records,
-                                **_stage_args(prepared, session, observer))
+        outcome = _run_stage(prepared, session, records, observer)
         session.finish_progress()
-        clock_end = session.clock
-        result = _result(outcome, command, run_dir, clock_start, clock_end,
+        result = _result(outcome, command, run_dir, clock_start, session.clock,
                          time.monotonic() - wall_start)
         if outcome.accepted and outcome.status != "still_good":
             try:
-                write_json_atomic(prepared.store, {
-                    "setpoints": outcome.setpoints, "inversion": outcome.estimate.inversion,
-                    "inversion_low": outcome.estimate.inversion_low,
-                    "inversion_high": outcome.estimate.inversion_high,
-                    "run_dir": str(run_dir), "t_wall": utc_now(),
-                    "rig": prepared.description.rig,
-                    # What the phase lock learned (slope, phase at the peak, absorption
-                    # minimum): the next retune reads the detuning error from one check.
-                    "lock_prior": _carried_prior(outcome, prepared),
-                })
+                _store_last_good(prepared, outcome)
             except JournalError as exc:
                 # The calibration itself is good and the rig stays at it: keep the result,
                 # say what failed, and let a resume with a corrected store finish the job.
@@ -438,14 +398,7 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
             session.decide("store", f"new last good calibration written to "
                            f"{Path(prepared.store).resolve()}")
         elif not outcome.accepted:
-            if config.on_reject == "safe":
-                ok, detail = session.go_safe(f"{command} not accepted", expected=True)
-                result["left_at"] = "safe" if ok else f"safe set-points NOT confirmed: {detail}"
-            else:
-                result["left_at"] = "verified"
-            session.decide("not_stored", f"the last good calibration is untouched; the rig is "
-                           f"left at its {'safe' if config.on_reject == 'safe' else 'verified'} "
-                           f"set-points ([acceptance] on_reject)")
+            result["left_at"] = _leave_rejected(prepared, session)
         write_json_atomic(run_dir / RESULT_NAME, result)
         status = outcome.status
         return result
@@ -460,6 +413,95 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         journal.append("end", status=status)
         journal.close()
         log.info("run_end", status=status)
+
+
+def _open_run_folder(prepared: Prepared, rig: Rig, stop: threading.Event | None,
+                     extra: Mapping[str, Any] | None
+                     ) -> tuple[Journal, list[dict[str, Any]], float | None]:
+    """The run's journal (created with its manifest, or reopened for a resume), the records of
+    an earlier attempt, and the rig's clock read before a new folder was made (else None)."""
+    extra = dict(extra or {})
+    if prepared.command == "retune":
+        extra = {"last_good": prepared.last_good, **extra}
+    if prepared.resume:
+        journal, _, records = Journal.open_for_resume(prepared.run_dir)
+        return journal, records, None
+    # The rig's clock before the folder exists: a run that never reached the rig leaves
+    # no journal behind.
+    opening_clock = float(opening_call("status", rig.status, prepared.config, rig, stop).clock)
+    return Journal.create(prepared.run_dir, run_manifest(prepared, extra)), [], opening_clock
+
+
+def decide_config_changes(session: Session, changes: Sequence[tuple[str, Any, Any]]) -> None:
+    """Journal the configuration changes a resume accepted (a ``config_changed`` decision), if
+    any.
+
+    Parameters
+    ----------
+    session : Session
+        The resumed run's session.
+    changes : sequence of (key, old, new)
+        The changes :func:`autotune.run.preflight.resume_changes` allowed.
+    """
+    if changes:
+        session.decide("config_changed", "resumed with a changed configuration: "
+                       + "; ".join(f"{k}: {old!r} -> {new!r}" for k, old, new in changes),
+                       changes=[{"key": k, "old": old, "new": new} for k, old, new in changes])
+
+
+def _start_session(prepared: Prepared, session: Session, rig: Rig, journal: Journal,
+                   records: Sequence[Mapping[str, Any]], opening_clock: float | None) -> float:
+    """Journal a resume's configuration changes and the run's ``start`` (once); the rig clock
+    at the start of the run."""
+    decide_config_changes(session, prepared.changes)
+    starts = of_type(parse_all(records), Start)
+    if starts and starts[0].clock is not None:
+        return starts[0].clock
+    clock_start = opening_clock if opening_clock is not None else \
+        float(session._call("status", lambda _id: rig.status()).clock)
+    journal.append("start", clock=clock_start, command=prepared.command,
+                   instance=getattr(prepared.description, "instance", None))
+    return clock_start
+
+
+def _run_stage(prepared: Prepared, session: Session, records: Sequence[Mapping[str, Any]],
+               observer: Callable[..., None] | None) -> StageOutcome:
+    """Replay the earlier attempt's moves, then run the configured strategy's stage."""
+    session.resume_moves(records)
+    session.learn_present()
+    if prepared.config.search.strategy == "phase_lock":
+        return run_guided_stage(session, records=records,
+                                **_guided_args(prepared, session, observer))
+    return run_stage(session, records=records, **_stage_args(prepared, session, observer))
+
+
+def _store_last_good(prepared: Prepared, outcome: StageOutcome) -> None:
+    """Replace the last good calibration with an accepted stage's choice (atomically)."""
+    write_json_atomic(prepared.store, {
+        "setpoints": outcome.setpoints, "inversion": outcome.estimate.inversion,
+        "inversion_low": outcome.estimate.inversion_low,
+        "inversion_high": outcome.estimate.inversion_high,
+        "run_dir": str(prepared.run_dir), "t_wall": utc_now(),
+        "rig": prepared.description.rig,
+        # What the phase lock learned (slope, phase at the peak, absorption
+        # minimum): the next retune reads the detuning error from one check.
+        "lock_prior": _carried_prior(outcome, prepared),
+    })
+
+
+def _leave_rejected(prepared: Prepared, session: Session) -> str:
+    """Leave the rig as ``[acceptance] on_reject`` says after a stage not accepted; where it
+    was left (the result's ``left_at``)."""
+    on_reject = prepared.config.on_reject
+    if on_reject == "safe":
+        ok, detail = session.go_safe(f"{prepared.command} not accepted", expected=True)
+        left_at = "safe" if ok else f"safe set-points NOT confirmed: {detail}"
+    else:
+        left_at = "verified"
+    session.decide("not_stored", f"the last good calibration is untouched; the rig is "
+                   f"left at its {'safe' if on_reject == 'safe' else 'verified'} "
+                   f"set-points ([acceptance] on_reject)")
+    return left_at
 
 
 def _run(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume: bool,

@@ -23,8 +23,8 @@ from autotune.run.guard import Budget
 from autotune.run.session import Measurement, Session
 from autotune.run.replay import measured_estimates, replay_records, tally_from
 
-__all__ = ["StageOutcome", "quadratic_peak", "child_seed", "search_space", "build_strategy",
-           "run_stage"]
+__all__ = ["StageOutcome", "StageRun", "quadratic_peak", "child_seed", "search_space",
+           "build_strategy", "run_stage"]
 
 
 @dataclass(frozen=True)
@@ -195,71 +195,148 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     record says so); a recommendation, detuning-scan plan or stop decision already journaled
     is kept. Budgets are those of the present configuration.
     """
-    config = session.config
-    seed = config.search.seed
-    stage_code = {"calibrate": 1, "retune": 2}[stage]
-    replayed = replay_records(records)
-    measurements = replayed.measurements
-    session.tally = tally_from(records)
-    told = sorted((key for key in replayed.estimate_order if key[0] == "point"),
-                  key=lambda k: k[1])
-    if replayed.header:
+    run = _AskTellStage(session, stage, records)
+    box, initial_points = run.begin(box, initial_points, budget)
+    long_shots = verification_shots_per_phase or run.config.measurement.verification_shots_per_phase
+    run.plan(budget, long_shots, refine_points=run.config.search.refine_points
+             if refine and "detuning" in box else 0)
+    warm_start: list[tuple[Mapping[str, float], float, float, float | None]] = []
+    check_estimate: InversionEstimate | None = None
+    if check_at is not None:
+        check_estimate, passed = run.check(check_at, still_good_above, long_shots, warm_start)
+        if passed is not None:
+            return passed
+    strategy = build_strategy(run.config.search.strategy, search_space(box), run.config,
+                              seed=child_seed(run.seed, run.stage_code, 0),
+                              n_initial_points=n_initial_points, max_points=budget.max_points,
+                              initial_points=initial_points, warm_start=warm_start)
+    stop_reason, n_points = run.search(strategy, budget, observer)
+    chosen, drift_rate = run.choose(strategy, box, refine)
+    return run.verify(chosen, long_shots, stop_reason, n_points, check_estimate, drift_rate)
+
+
+class StageRun:
+    """Where a stage's run starts (:func:`run_stage`, :func:`autotune.run.guided_stage.run_guided_stage`):
+    the session, its configuration and seed, the stage's code in the child seeds, and the
+    records of an earlier attempt replayed (the session's tally taken from them).
+
+    Parameters
+    ----------
+    session : Session
+        The guarded conversation with the rig.
+    stage : {"calibrate", "retune"}
+    records : sequence of journal records
+        Records of an earlier attempt of this stage (empty for a new run).
+    """
+
+    def __init__(self, session: Session, stage: str, records: Sequence[Mapping[str, Any]]):
+        self.session = session
+        self.config = session.config
+        self.seed = self.config.search.seed
+        self.stage = stage
+        self.stage_code = {"calibrate": 1, "retune": 2}[stage]
+        self.records = records
+        self.replayed = replay_records(records)
+        self.measurements = self.replayed.measurements
+        session.tally = tally_from(records)
+
+    def leave_at(self, setpoints: Mapping[str, float], reason: str) -> None:
+        """Move the rig to ``setpoints`` unless it is there already (``reason`` journaled)."""
+        session = self.session
+        if any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in setpoints.items()):
+            session.move_to(setpoints, reason=reason)
+
+
+class _AskTellStage(StageRun):
+    """One ask/tell stage as it runs: what its journal already holds (a resume) and the steps
+    of :func:`run_stage`, each journaled before it is measured."""
+
+    #: The child seed's code of each measurement's label.
+    _LABEL_CODE = {"check": 1, "point": 2, "verify": 3, "refine": 4}
+
+    def __init__(self, session: Session, stage: str, records: Sequence[Mapping[str, Any]]):
+        super().__init__(session, stage, records)
+        self.told = sorted((key for key in self.replayed.estimate_order if key[0] == "point"),
+                           key=lambda k: k[1])
+        self.shots = self.config.measurement.shots_per_phase
+
+    def seed_of(self, label: str, *point: int) -> int:
+        """The child seed of a measurement's acquisitions."""
+        return child_seed(self.seed, self.stage_code, self._LABEL_CODE[label], *point)
+
+    def begin(self, box: Mapping[str, tuple[float, float]],
+              initial_points: Sequence[Mapping[str, float]], budget: Budget
+              ) -> tuple[Mapping[str, tuple[float, float]], Sequence[Mapping[str, float]]]:
+        """Journal the stage (or, resuming, say what is taken up again); the box and first
+        design in force (a resume keeps the journaled ones)."""
+        session, replayed = self.session, self.replayed
+        if not replayed.header:
+            session.journal.append("stage", stage=self.stage,
+                                   box={k: list(v) for k, v in box.items()},
+                                   initial_points=[dict(p) for p in initial_points],
+                                   budget=budget.__dict__, strategy=self.config.search.strategy,
+                                   seed=self.seed)
+            return box, initial_points
         header = replayed.header
         box = {k: (float(v[0]), float(v[1])) for k, v in header["box"].items()}
         initial_points = [dict(p) for p in header["initial_points"]]
-        resend = [msg_id for m in measurements.values() for msg_id, _ in m.pending.values()]
-        session.decide("resume", f"continuing {stage} from {len(records)} journal records: "
-                       f"{len(replayed.estimates)} finished measurements ({len(told)} search "
-                       f"points told to the strategy again, once each), {len(resend)} requests "
-                       f"to ask the rig for again by their msg_id",
-                       estimates=len(replayed.estimates), retold=[k[1] for k in told],
+        resend = [msg_id for m in self.measurements.values() for msg_id, _ in m.pending.values()]
+        session.decide("resume", f"continuing {self.stage} from {len(self.records)} journal "
+                       f"records: {len(replayed.estimates)} finished measurements "
+                       f"({len(self.told)} search points told to the strategy again, once "
+                       f"each), {len(resend)} requests to ask the rig for again by their msg_id",
+                       estimates=len(replayed.estimates), retold=[k[1] for k in self.told],
                        resend=resend)
-    else:
-        session.journal.append("stage", stage=stage, box={k: list(v) for k, v in box.items()},
-                               initial_points=[dict(p) for p in initial_points],
-                               budget=budget.__dict__, strategy=config.search.strategy,
-                               seed=seed)
+        return box, initial_points
 
-    shots = config.measurement.shots_per_phase
-    long_shots = verification_shots_per_phase or config.measurement.verification_shots_per_phase
-    wanted_shots = {"check": long_shots, "verify": long_shots}
-    per_measurement = measurement_shots(len(session.phases), 1)
-    session.plan_progress(stage, budget, step_shots=per_measurement * shots,
-                          verify_shots=per_measurement * long_shots,
-                          refine_points=config.search.refine_points
-                          if refine and "detuning" in box else 0,
-                          measured=measured_estimates(replayed))
-    for key, m in measurements.items():
-        want = wanted_shots.get(m.label, shots)
-        if key not in replayed.estimates and not m.started and m.shots_per_phase != want:
-            session.journal.append("amend", label=m.label, point=m.point, shots_per_phase=want,
-                                   reason=f"not started yet: shots per phase {m.shots_per_phase} "
-                                          f"of the journal replaced by {want} of the present "
-                                          f"configuration")
-            m.shots_per_phase = want
+    def plan(self, budget: Budget, long_shots: int, refine_points: int) -> None:
+        """Tell the progress observer the plan; give a journaled measurement not started yet
+        the shots per phase of the present configuration (an ``amend`` record)."""
+        session, shots = self.session, self.shots
+        per_measurement = measurement_shots(len(session.phases), 1)
+        session.plan_progress(self.stage, budget, step_shots=per_measurement * shots,
+                              verify_shots=per_measurement * long_shots,
+                              refine_points=refine_points,
+                              measured=measured_estimates(self.replayed))
+        wanted_shots = {"check": long_shots, "verify": long_shots}
+        for key, m in self.measurements.items():
+            want = wanted_shots.get(m.label, shots)
+            if key not in self.replayed.estimates and not m.started and m.shots_per_phase != want:
+                session.journal.append("amend", label=m.label, point=m.point,
+                                       shots_per_phase=want,
+                                       reason=f"not started yet: shots per phase "
+                                              f"{m.shots_per_phase} of the journal replaced by "
+                                              f"{want} of the present configuration")
+                m.shots_per_phase = want
 
-    def measurement(label: str, point: int, setpoints: Mapping[str, float],
+    def measurement(self, label: str, point: int, setpoints: Mapping[str, float],
                     shots_per_phase: int) -> Measurement:
+        """The measurement ``(label, point)``: the journaled one, else a new one journaled."""
         key = (label, point)
-        if key not in measurements:
-            measurements[key] = Measurement(label, point, dict(setpoints), shots_per_phase)
-            session.journal.append("measurement", label=label, point=point,
-                                   setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
-        return measurements[key]
+        if key not in self.measurements:
+            self.measurements[key] = Measurement(label, point, dict(setpoints), shots_per_phase)
+            self.session.journal.append("measurement", label=label, point=point,
+                                        setpoints=dict(setpoints),
+                                        shots_per_phase=shots_per_phase)
+        return self.measurements[key]
 
-    def estimate_of(label: str, point: int) -> InversionEstimate | None:
-        rec = replayed.estimates.get((label, point))
+    def estimate_of(self, label: str, point: int) -> InversionEstimate | None:
+        """The journaled estimate of ``(label, point)``, if it was finished."""
+        rec = self.replayed.estimates.get((label, point))
         return None if rec is None else InversionEstimate.from_dict(rec["estimate"])
 
-    label_code = {"check": 1, "point": 2, "verify": 3, "refine": 4}
-    check_estimate: InversionEstimate | None = None
-    warm_start: list[tuple[Mapping[str, float], float, float, float | None]] = []
-    if check_at is not None:
-        check_estimate = estimate_of("check", 0)
+    def check(self, check_at: Mapping[str, float], still_good_above: float | None,
+              long_shots: int, warm_start: list[tuple[Mapping[str, float], float, float,
+                                                       float | None]]
+              ) -> tuple[InversionEstimate, StageOutcome | None]:
+        """A retune's check at ``check_at`` (added to ``warm_start``); the outcome
+        ``still_good`` when it reaches ``still_good_above``, else None (the search follows)."""
+        session = self.session
+        check_estimate = self.estimate_of("check", 0)
         if check_estimate is None:
-            m = measurement("check", 0, check_at, long_shots)
-            check_estimate = session.measure(m, child_seed(seed, stage_code, label_code["check"]))
-        check = measurements.get(("check", 0))
+            m = self.measurement("check", 0, check_at, long_shots)
+            check_estimate = session.measure(m, self.seed_of("check"))
+        check = self.measurements.get(("check", 0))
         check_setpoints = dict(check.setpoints) if check is not None else dict(check_at)
         check_clock = check.clock_s if check is not None else None
         warm_start.append((check_setpoints, check_estimate.inversion,
@@ -268,100 +345,116 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
             session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
                            setpoints=check_setpoints)
-            if any(abs(session.current.get(k, math.nan) - v) > 0.0
-                   for k, v in check_setpoints.items()):
-                session.move_to(check_setpoints, reason="leave the rig at the checked set-points")
-            return StageOutcome("still_good", check_setpoints, check_estimate, "check passed", 0,
-                                session.tally.shots, session.tally.rig_time_s, True,
-                                check_estimate)
-        if "search" not in replayed.decisions:
+            self.leave_at(check_setpoints, "leave the rig at the checked set-points")
+            return check_estimate, StageOutcome(
+                "still_good", check_setpoints, check_estimate, "check passed", 0,
+                session.tally.shots, session.tally.rig_time_s, True, check_estimate)
+        if "search" not in self.replayed.decisions:
             session.decide("search", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) below {still_good_above:.3f}")
+        return check_estimate, None
 
-    space = search_space(box)
-    kind = config.search.strategy
-    strategy = build_strategy(kind, space, config, seed=child_seed(seed, stage_code, 0),
-                              n_initial_points=n_initial_points, max_points=budget.max_points,
-                              initial_points=initial_points, warm_start=warm_start)
-    for key in told:
-        rec = replayed.estimates[key]
-        est = rec["estimate"]
-        strategy.tell(rec["setpoints"], float(est["inversion"]), float(est["inversion_stderr"]),
-                      clock_s=rec.get("clock_s"))
-    n_points = len(told)
-    per_point = measurement_shots(len(session.phases), shots)
-    per_point_time = per_point / session.repetition_rate_hz
-    stopped = replayed.decisions.get("stop_search")
-    stop_reason = str(stopped["reason"]) if stopped is not None else ""
-    while not stop_reason:
-        pending = measurements.get(("point", n_points))
-        if pending is None:
-            proposal = replayed.proposals.get(n_points)
-            if proposal is None:
-                if n_points >= budget.max_points:
-                    stop_reason = f"point budget of {budget.max_points} reached"
-                    break
-                if session.tally.shots + per_point > budget.max_shots:
-                    stop_reason = (f"shot budget {budget.max_shots} would be exceeded by the "
-                                   f"next point")
-                    break
-                if session.tally.rig_time_s + per_point_time > budget.max_rig_time_s:
-                    stop_reason = f"rig-time budget {budget.max_rig_time_s:g} s would be exceeded"
-                    break
-                if strategy.exhausted():
-                    stop_reason = "the strategy's design is finished"
-                    break
-                proposal = {k: float(v) for k, v in strategy.ask(clock_s=session.clock).items()}
-                session.journal.append("proposal", point=n_points, setpoints=proposal,
-                                       strategy=strategy.name)
-            pending = measurement("point", n_points, proposal, shots)
-        estimate = session.measure(pending, child_seed(seed, stage_code, label_code["point"],
-                                                       n_points))
-        strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr,
-                      clock_s=pending.clock_s)
-        n_points += 1
-        if observer is not None:
-            observer(n_points, strategy, session)
-        if n_points >= budget.min_points and strategy.converged(clock_s=session.clock):
-            stop_reason = "the strategy's convergence test passed"
-    if stopped is None:
-        session.decide("stop_search", stop_reason, points=n_points)
+    def search(self, strategy: Strategy, budget: Budget,
+               observer: Callable[[int, Strategy, Session], None] | None) -> tuple[str, int]:
+        """Tell the finished points again, then ask, measure and tell until a budget is spent
+        or the strategy stops; the stop's reason and the points told."""
+        session, replayed = self.session, self.replayed
+        for key in self.told:
+            rec = replayed.estimates[key]
+            est = rec["estimate"]
+            strategy.tell(rec["setpoints"], float(est["inversion"]),
+                          float(est["inversion_stderr"]), clock_s=rec.get("clock_s"))
+        n_points = len(self.told)
+        stopped = replayed.decisions.get("stop_search")
+        stop_reason = str(stopped["reason"]) if stopped is not None else ""
+        while not stop_reason:
+            pending = self.measurements.get(("point", n_points))
+            if pending is None:
+                proposal = replayed.proposals.get(n_points)
+                if proposal is None:
+                    stop_reason = self.budget_spent(strategy, budget, n_points)
+                    if stop_reason:
+                        break
+                    proposal = {k: float(v)
+                                for k, v in strategy.ask(clock_s=session.clock).items()}
+                    session.journal.append("proposal", point=n_points, setpoints=proposal,
+                                           strategy=strategy.name)
+                pending = self.measurement("point", n_points, proposal, self.shots)
+            estimate = session.measure(pending, self.seed_of("point", n_points))
+            strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr,
+                          clock_s=pending.clock_s)
+            n_points += 1
+            if observer is not None:
+                observer(n_points, strategy, session)
+            if n_points >= budget.min_points and strategy.converged(clock_s=session.clock):
+                stop_reason = "the strategy's convergence test passed"
+        if stopped is None:
+            session.decide("stop_search", stop_reason, points=n_points)
+        return stop_reason, n_points
 
-    recommended = replayed.decisions.get("recommend")
-    drift_rate = float(getattr(strategy, "drift_rate", 0.0))
-    if recommended is not None:
-        chosen = {k: float(v) for k, v in recommended["setpoints"].items()}
-        drift_rate = float(recommended.get("drift_rate_hz_per_s", drift_rate))
-    else:
-        recommendation = strategy.recommend(clock_s=session.clock)
-        chosen = {k: float(v) for k, v in recommendation.point.items()}
-        session.decide("recommend", "surrogate's best" if kind == "bayesian" else "best observed",
-                       setpoints=chosen, predicted=finite_or_none(recommendation.value),
-                       drift_rate_hz_per_s=drift_rate)
-    if refine and config.search.refine_points and "detuning" in box and \
-            measurements.get(("verify", 0)) is None:
-        plan = replayed.decisions.get("refine_plan")
-        chosen = _refine_detuning(
-            session, chosen, box, measurement, estimate_of,
-            lambda k: child_seed(seed, stage_code, label_code["refine"], k),
-            None if plan is None else [float(x) for x in plan["detunings"]])
-    existing = measurements.get(("verify", 0))
-    if existing is not None:
-        chosen = dict(existing.setpoints)
-    verify = measurement("verify", 0, chosen, long_shots)
-    final = estimate_of("verify", 0)
-    if final is None:
-        final = session.measure(verify, child_seed(seed, stage_code, label_code["verify"]))
-    elif any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in chosen.items()):
-        session.move_to(chosen, reason="leave the rig at the verified set-points")
-    accepted = final.inversion >= config.min_inversion
-    status = "accepted" if accepted else "below_acceptance"
-    reason = (f"verified inversion {final.inversion:.3f} vs acceptance {config.min_inversion:.3f}"
-              if accepted else
-              f"not accepted: the verified inversion {final.inversion:.3f} is below [acceptance] "
-              f"min_inversion {config.min_inversion:.3f}; check the rig (source, detectors), the "
-              f"box and [nominal] coupling_hz and waist_m and their units (Hz, m)")
-    session.decide(status, reason, setpoints=chosen)
-    return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
-                        session.tally.rig_time_s, accepted, check_estimate, drift_rate,
-                        reason=reason)
+    def budget_spent(self, strategy: Strategy, budget: Budget, n_points: int) -> str:
+        """Why no further point is asked (a budget or the design is spent), else ``""``."""
+        session = self.session
+        per_point = measurement_shots(len(session.phases), self.shots)
+        if n_points >= budget.max_points:
+            return f"point budget of {budget.max_points} reached"
+        if session.tally.shots + per_point > budget.max_shots:
+            return f"shot budget {budget.max_shots} would be exceeded by the next point"
+        if session.tally.rig_time_s + per_point / session.repetition_rate_hz > \
+                budget.max_rig_time_s:
+            return f"rig-time budget {budget.max_rig_time_s:g} s would be exceeded"
+        if strategy.exhausted():
+            return "the strategy's design is finished"
+        return ""
+
+    def choose(self, strategy: Strategy, box: Mapping[str, tuple[float, float]], refine: bool
+               ) -> tuple[dict[str, float], float]:
+        """The set-points to verify (the recommendation, moved to a detuning scan's peak with
+        ``refine``) and the drift rate in Hz/s; journaled choices are kept."""
+        session, replayed = self.session, self.replayed
+        recommended = replayed.decisions.get("recommend")
+        drift_rate = float(getattr(strategy, "drift_rate", 0.0))
+        if recommended is not None:
+            chosen = {k: float(v) for k, v in recommended["setpoints"].items()}
+            drift_rate = float(recommended.get("drift_rate_hz_per_s", drift_rate))
+        else:
+            recommendation = strategy.recommend(clock_s=session.clock)
+            chosen = {k: float(v) for k, v in recommendation.point.items()}
+            session.decide("recommend", "surrogate's best"
+                           if self.config.search.strategy == "bayesian" else "best observed",
+                           setpoints=chosen, predicted=finite_or_none(recommendation.value),
+                           drift_rate_hz_per_s=drift_rate)
+        if refine and self.config.search.refine_points and "detuning" in box and \
+                self.measurements.get(("verify", 0)) is None:
+            plan = replayed.decisions.get("refine_plan")
+            chosen = _refine_detuning(
+                session, chosen, box, self.measurement, self.estimate_of,
+                lambda k: self.seed_of("refine", k),
+                None if plan is None else [float(x) for x in plan["detunings"]])
+        existing = self.measurements.get(("verify", 0))
+        if existing is not None:
+            chosen = dict(existing.setpoints)
+        return chosen, drift_rate
+
+    def verify(self, chosen: dict[str, float], long_shots: int, stop_reason: str, n_points: int,
+               check_estimate: InversionEstimate | None, drift_rate: float) -> StageOutcome:
+        """Measure the verification at ``chosen`` and judge it against ``[acceptance]``."""
+        session, config = self.session, self.config
+        verify = self.measurement("verify", 0, chosen, long_shots)
+        final = self.estimate_of("verify", 0)
+        if final is None:
+            final = session.measure(verify, self.seed_of("verify"))
+        else:
+            self.leave_at(chosen, "leave the rig at the verified set-points")
+        accepted = final.inversion >= config.min_inversion
+        status = "accepted" if accepted else "below_acceptance"
+        reason = (f"verified inversion {final.inversion:.3f} vs acceptance "
+                  f"{config.min_inversion:.3f}" if accepted else
+                  f"not accepted: the verified inversion {final.inversion:.3f} is below "
+                  f"[acceptance] min_inversion {config.min_inversion:.3f}; check the rig "
+                  f"(source, detectors), the box and [nominal] coupling_hz and waist_m and "
+                  f"their units (Hz, m)")
+        session.decide(status, reason, setpoints=chosen)
+        return StageOutcome(status, chosen, final, stop_reason, n_points, session.tally.shots,
+                            session.tally.rig_time_s, accepted, check_estimate, drift_rate,
+                            reason=reason)

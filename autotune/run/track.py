@@ -89,6 +89,7 @@ from autotune.progress import ProgressObserver
 from autotune.wire.rig import Rig
 from autotune.run.runner import (
     run_manifest as _manifest,
+    decide_config_changes,
     opening_call,
     read_last_good,
     read_run_files,
@@ -210,12 +211,7 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     try:
         session = Session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
                           stop=stop, progress=progress)
-        if prepared.changes:
-            session.decide("config_changed", "resumed with a changed configuration: "
-                           + "; ".join(f"{k}: {old!r} -> {new!r}"
-                                       for k, old, new in prepared.changes),
-                           changes=[{"key": k, "old": old, "new": new}
-                                    for k, old, new in prepared.changes])
+        decide_config_changes(session, prepared.changes)
         if not of_type(parse_all(records), Start):
             clock = opening_clock if opening_clock is not None else \
                 float(session._call("status", lambda _id: rig.status()).clock)
