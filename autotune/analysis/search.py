@@ -65,6 +65,7 @@ from autotune.analysis.search_types import (
     Strategy,
     StrategyKind,
 )
+from autotune.errors import ValueRefused
 
 __all__ = [
     "Dimension",
@@ -122,11 +123,11 @@ class Convergence:
         for attr in ("expected_improvement", "upper_bound_gap", "upper_bound_sigmas", "stable_distance"):
             value = getattr(self, attr)
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not (math.isfinite(value) and value > 0):
-                raise ValueError(f"Convergence.{attr}: expected a finite number > 0, got {value!r}")
+                raise ValueRefused(f"Convergence.{attr}: expected a finite number > 0, got {value!r}")
         for attr, minimum in (("stable_tells", 1), ("min_told", 0)):
             value = getattr(self, attr)
             if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
-                raise ValueError(f"Convergence.{attr}: expected an integer >= {minimum}, got {value!r}")
+                raise ValueRefused(f"Convergence.{attr}: expected an integer >= {minimum}, got {value!r}")
 
 
 def _skopt():
@@ -168,9 +169,9 @@ def _as_observation(item: Any) -> Observation:
     try:
         point, value, stderr, *clock = item
         if len(clock) > 1:
-            raise ValueError("too many fields")
+            raise ValueRefused("too many fields")
     except (TypeError, ValueError) as exc:
-        raise ValueError(f"warm_start: expected (point, value, stderr[, clock_s]) items, got {item!r}") from exc
+        raise ValueRefused(f"warm_start: expected (point, value, stderr[, clock_s]) items, got {item!r}") from exc
     return Observation(point, value, stderr, clock[0] if clock else None)
 
 
@@ -183,25 +184,25 @@ def _check_settings(space: SearchSpace, *, seed: Any, n_initial_points: Any, n_p
                     max_drift_rate: Any, drift_grid: Any) -> None:
     """Refuse a :class:`BayesianSearch` setting, naming it, before anything is built."""
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-        raise ValueError(f"seed: expected an integer, got {seed!r}")
+        raise ValueRefused(f"seed: expected an integer, got {seed!r}")
     if isinstance(n_initial_points, bool) or not isinstance(n_initial_points, (int, np.integer)) or n_initial_points < 0:
-        raise ValueError(f"n_initial_points: expected an integer >= 0, got {n_initial_points!r}")
+        raise ValueRefused(f"n_initial_points: expected an integer >= 0, got {n_initial_points!r}")
     if n_points is not None and (isinstance(n_points, bool) or not isinstance(n_points, int) or n_points < 1):
-        raise ValueError(f"n_points: expected None or an integer >= 1, got {n_points!r}")
+        raise ValueRefused(f"n_points: expected None or an integer >= 1, got {n_points!r}")
     if not isinstance(convergence, Convergence):
-        raise ValueError(f"convergence: expected a Convergence, got {convergence!r}")
+        raise ValueRefused(f"convergence: expected a Convergence, got {convergence!r}")
     if isinstance(candidates, bool) or not isinstance(candidates, int) or candidates < 16:
-        raise ValueError(f"candidates: expected an integer >= 16, got {candidates!r}")
+        raise ValueRefused(f"candidates: expected an integer >= 16, got {candidates!r}")
     if isinstance(exploration, bool) or not isinstance(exploration, (int, float)) or not (
             math.isfinite(exploration) and exploration >= 0):
-        raise ValueError(f"exploration: expected a finite number >= 0, got {exploration!r}")
+        raise ValueRefused(f"exploration: expected a finite number >= 0, got {exploration!r}")
     if drift_dimension is not None and drift_dimension not in space.names:
-        raise ValueError(f"drift_dimension: expected None or one of {list(space.names)}, got {drift_dimension!r}")
+        raise ValueRefused(f"drift_dimension: expected None or one of {list(space.names)}, got {drift_dimension!r}")
     if isinstance(max_drift_rate, bool) or not isinstance(max_drift_rate, (int, float)) or not (
             math.isfinite(max_drift_rate) and max_drift_rate > 0):
-        raise ValueError(f"max_drift_rate: expected a finite number > 0 (unit per second), got {max_drift_rate!r}")
+        raise ValueRefused(f"max_drift_rate: expected a finite number > 0 (unit per second), got {max_drift_rate!r}")
     if isinstance(drift_grid, bool) or not isinstance(drift_grid, int) or drift_grid < 3 or drift_grid % 2 == 0:
-        raise ValueError(f"drift_grid: expected an odd integer >= 3 (so that 0 is on it), got {drift_grid!r}")
+        raise ValueRefused(f"drift_grid: expected an odd integer >= 3 (so that 0 is on it), got {drift_grid!r}")
 
 
 def _first_design(space: SearchSpace, initial_points: Sequence[Mapping[str, float]],
@@ -212,7 +213,7 @@ def _first_design(space: SearchSpace, initial_points: Sequence[Mapping[str, floa
     design = []
     for k, point in enumerate(initial_points):
         if not space.contains(point):
-            raise ValueError(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
+            raise ValueRefused(f"initial_points[{k}]: expected a point inside the space, got {dict(point)}")
         design.append(space.to_unit(point))
     if n_initial_points:
         design.extend(_latin_design(dims, n_initial_points, seed))
@@ -359,7 +360,7 @@ class BayesianSearch(SearchRecord):
         self._design = _first_design(space, initial_points, int(n_initial_points), self.seed)
         warm = [_as_observation(item) for item in warm_start]
         if not len(self._design) and not warm:
-            raise ValueError("BayesianSearch: expected initial_points, n_initial_points > 0 or a warm_start")
+            raise ValueRefused("BayesianSearch: expected initial_points, n_initial_points > 0 or a warm_start")
         self._candidates = qmc.Sobol(d=dims, scramble=True, rng=np.random.default_rng(self.seed + 1)).random(candidates)
         self._regressor, self._optimizer = _surrogate(space, self.seed, float(exploration), candidates)
         self._all_stderrs: list[float] = []
@@ -390,7 +391,7 @@ class BayesianSearch(SearchRecord):
                 unit = self._check_result(item.point, item.value, item.stderr)
                 clock = self._check_clock(item.clock_s)
             except ValueError as exc:
-                raise ValueError(f"warm_start[{k}]: {exc}") from exc
+                raise ValueRefused(f"warm_start[{k}]: {exc}") from exc
             self._feed(unit, float(item.value), float(item.stderr), clock, fit=(k == len(warm) - 1))
 
     # -- adapter ------------------------------------------------------------------------

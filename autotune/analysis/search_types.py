@@ -19,6 +19,7 @@ from typing import Any, Literal, Protocol, runtime_checkable
 import numpy as np
 from scipy import special
 
+from autotune.errors import ValueRefused
 from autotune.schema import is_number
 
 __all__ = [
@@ -75,16 +76,16 @@ class Dimension:
 
     def __post_init__(self) -> None:
         if not isinstance(self.name, str) or not self.name:
-            raise ValueError(f"Dimension.name: expected a non-empty string, got {self.name!r}")
+            raise ValueRefused(f"Dimension.name: expected a non-empty string, got {self.name!r}")
         for attr in ("low", "high"):
             value = getattr(self, attr)
             if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
-                raise ValueError(f"Dimension {self.name!r}: {attr}: expected a number, got {value!r}")
+                raise ValueRefused(f"Dimension {self.name!r}: {attr}: expected a number, got {value!r}")
             if not math.isfinite(float(value)):
-                raise ValueError(f"Dimension {self.name!r}: {attr}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"Dimension {self.name!r}: {attr}: expected a finite number, got {value!r}")
             object.__setattr__(self, attr, float(value))
         if not self.low < self.high:
-            raise ValueError(
+            raise ValueRefused(
                 f"Dimension {self.name!r}: expected low < high, got low={self.low!r}, high={self.high!r}"
             )
 
@@ -106,14 +107,14 @@ class SearchSpace:
     def __post_init__(self) -> None:
         dims = tuple(self.dimensions)
         if not dims:
-            raise ValueError("SearchSpace.dimensions: expected at least one Dimension, got none")
+            raise ValueRefused("SearchSpace.dimensions: expected at least one Dimension, got none")
         for dim in dims:
             if not isinstance(dim, Dimension):
-                raise ValueError(f"SearchSpace.dimensions: expected Dimension objects, got {dim!r}")
+                raise ValueRefused(f"SearchSpace.dimensions: expected Dimension objects, got {dim!r}")
         names = [dim.name for dim in dims]
         duplicates = sorted({name for name in names if names.count(name) > 1})
         if duplicates:
-            raise ValueError(f"SearchSpace.dimensions: expected unique names, got duplicates {duplicates}")
+            raise ValueRefused(f"SearchSpace.dimensions: expected unique names, got duplicates {duplicates}")
         object.__setattr__(self, "dimensions", dims)
 
     @property
@@ -134,18 +135,18 @@ class SearchSpace:
     def to_array(self, point: Mapping[str, float]) -> np.ndarray:
         """The point's values in dimension order; raises ValueError on missing/extra/non-finite."""
         if not isinstance(point, Mapping):
-            raise ValueError(f"point: expected a mapping {{name: value}}, got {point!r}")
+            raise ValueRefused(f"point: expected a mapping {{name: value}}, got {point!r}")
         missing = [name for name in self.names if name not in point]
         extra = sorted(set(point) - set(self.names))
         if missing or extra:
-            raise ValueError(f"point: expected keys {list(self.names)}, missing {missing}, unexpected {extra}")
+            raise ValueRefused(f"point: expected keys {list(self.names)}, missing {missing}, unexpected {extra}")
         values = []
         for name in self.names:
             value = point[name]
             if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
-                raise ValueError(f"point[{name!r}]: expected a number, got {value!r}")
+                raise ValueRefused(f"point[{name!r}]: expected a number, got {value!r}")
             if not math.isfinite(float(value)):
-                raise ValueError(f"point[{name!r}]: expected a finite number, got {value!r}")
+                raise ValueRefused(f"point[{name!r}]: expected a finite number, got {value!r}")
             values.append(float(value))
         return np.array(values)
 
@@ -153,7 +154,7 @@ class SearchSpace:
         """``{name: float}`` from values in dimension order."""
         array = np.asarray(list(values), dtype=float)
         if array.shape != (len(self.dimensions),):
-            raise ValueError(f"values: expected {len(self.dimensions)} numbers, got shape {array.shape}")
+            raise ValueRefused(f"values: expected {len(self.dimensions)} numbers, got shape {array.shape}")
         return {name: float(v) for name, v in zip(self.names, array)}
 
     def contains(self, point: Mapping[str, float]) -> bool:
@@ -206,7 +207,7 @@ class Recommendation:
 
 def _check_purpose(purpose: Any) -> str:
     if purpose not in PURPOSES:
-        raise ValueError(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
+        raise ValueRefused(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
     return str(purpose)
 
 
@@ -260,23 +261,23 @@ class PointResult:
                      "contrast_one_photon", "contrast_one_photon_stderr"):
             value = getattr(self, name)
             if not is_number(value) or not math.isfinite(float(value)):
-                raise ValueError(f"PointResult.{name}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"PointResult.{name}: expected a finite number, got {value!r}")
             object.__setattr__(self, name, float(value))
             if name.endswith("_stderr") and float(value) < 0.0:
-                raise ValueError(f"PointResult.{name}: expected a number >= 0, got {value!r}")
+                raise ValueRefused(f"PointResult.{name}: expected a number >= 0, got {value!r}")
         if not 0.0 <= self.phase_shift < 2.0 * math.pi:
-            raise ValueError(f"PointResult.phase_shift: expected rad in [0, 2 pi), got {self.phase_shift!r}")
+            raise ValueRefused(f"PointResult.phase_shift: expected rad in [0, 2 pi), got {self.phase_shift!r}")
         if not 0.0 <= self.absorption <= 1.0:
-            raise ValueError(f"PointResult.absorption: expected a probability in [0, 1], got {self.absorption!r}")
+            raise ValueRefused(f"PointResult.absorption: expected a probability in [0, 1], got {self.absorption!r}")
         if not isinstance(self.identified, (bool, np.bool_)):
-            raise ValueError(f"PointResult.identified: expected a bool, got {self.identified!r}")
+            raise ValueRefused(f"PointResult.identified: expected a bool, got {self.identified!r}")
         object.__setattr__(self, "identified", bool(self.identified))
         if self.clock_s is not None:
             if not is_number(self.clock_s) or not math.isfinite(float(self.clock_s)):
-                raise ValueError(f"PointResult.clock_s: expected None or a finite number of seconds, got {self.clock_s!r}")
+                raise ValueRefused(f"PointResult.clock_s: expected None or a finite number of seconds, got {self.clock_s!r}")
             object.__setattr__(self, "clock_s", float(self.clock_s))
         if isinstance(self.shots, bool) or not isinstance(self.shots, (int, np.integer)) or self.shots < 0:
-            raise ValueError(f"PointResult.shots: expected an integer >= 0, got {self.shots!r}")
+            raise ValueRefused(f"PointResult.shots: expected an integer >= 0, got {self.shots!r}")
         object.__setattr__(self, "shots", int(self.shots))
 
     @classmethod
@@ -309,16 +310,16 @@ class PointResult:
                  "contrast_one_photon", "contrast_one_photon_stderr", "identified", "confidence")
         missing = [name for name in names if not hasattr(estimate, name)]
         if missing:
-            raise ValueError(f"estimate: expected an InversionEstimate-like object, missing attributes {missing}")
+            raise ValueRefused(f"estimate: expected an InversionEstimate-like object, missing attributes {missing}")
         confidence = estimate.confidence
         if not is_number(confidence) or not 0.0 < float(confidence) < 1.0:
-            raise ValueError(f"estimate.confidence: expected a number in (0, 1), got {confidence!r}")
+            raise ValueRefused(f"estimate.confidence: expected a number in (0, 1), got {confidence!r}")
         low, high = estimate.absorption_low, estimate.absorption_high
         for name, value in (("absorption_low", low), ("absorption_high", high)):
             if not is_number(value) or not math.isfinite(float(value)):
-                raise ValueError(f"estimate.{name}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"estimate.{name}: expected a finite number, got {value!r}")
         if float(high) < float(low):
-            raise ValueError(f"estimate: expected absorption_low <= absorption_high, got {low!r} > {high!r}")
+            raise ValueRefused(f"estimate: expected absorption_low <= absorption_high, got {low!r} > {high!r}")
         z = float(special.ndtri(0.5 + 0.5 * float(confidence)))
         return cls(
             inversion=estimate.inversion,
@@ -366,25 +367,25 @@ class Proposal:
 
     def __post_init__(self) -> None:
         if not isinstance(self.point, Mapping) or not self.point:
-            raise ValueError(f"Proposal.point: expected a non-empty mapping {{name: value}}, got {self.point!r}")
+            raise ValueRefused(f"Proposal.point: expected a non-empty mapping {{name: value}}, got {self.point!r}")
         point = {}
         for name, value in self.point.items():
             if not isinstance(name, str) or not is_number(value) or not math.isfinite(float(value)):
-                raise ValueError(f"Proposal.point[{name!r}]: expected a finite number, got {value!r}")
+                raise ValueRefused(f"Proposal.point[{name!r}]: expected a finite number, got {value!r}")
             point[name] = float(value)
         object.__setattr__(self, "point", point)
         try:
             _check_purpose(self.purpose)
         except ValueError as exc:
-            raise ValueError(f"Proposal.{exc}") from None
+            raise ValueRefused(f"Proposal.{exc}") from None
         if self.shots_per_phase is not None and (
                 isinstance(self.shots_per_phase, bool) or not isinstance(self.shots_per_phase, (int, np.integer))
                 or self.shots_per_phase < 1):
-            raise ValueError(f"Proposal.shots_per_phase: expected None or an integer >= 1, got {self.shots_per_phase!r}")
+            raise ValueRefused(f"Proposal.shots_per_phase: expected None or an integer >= 1, got {self.shots_per_phase!r}")
         if self.shots_per_phase is not None:
             object.__setattr__(self, "shots_per_phase", int(self.shots_per_phase))
         if not isinstance(self.reason, str) or not self.reason:
-            raise ValueError(f"Proposal.reason: expected a non-empty sentence, got {self.reason!r}")
+            raise ValueRefused(f"Proposal.reason: expected a non-empty sentence, got {self.reason!r}")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready mapping of every field."""
@@ -447,7 +448,7 @@ class SearchRecord:
 
     def __init__(self, space: SearchSpace) -> None:
         if not isinstance(space, SearchSpace):
-            raise ValueError(f"space: expected a SearchSpace, got {type(space).__name__}")
+            raise ValueRefused(f"space: expected a SearchSpace, got {type(space).__name__}")
         self.space = space
         self._units: list[np.ndarray] = []
         self._values: list[float] = []
@@ -463,17 +464,17 @@ class SearchRecord:
         # Set-points read back from a rig may differ from the request in the last digits.
         slack = 1e-9 * (self.space.highs - self.space.lows)
         if np.any(values < self.space.lows - slack) or np.any(values > self.space.highs + slack):
-            raise ValueError(
+            raise ValueRefused(
                 f"point: expected within {dict(zip(self.space.names, zip(self.space.lows, self.space.highs)))}, "
                 f"got {dict(point)}"
             )
         for label, number in (("value", value), ("stderr", stderr)):
             if isinstance(number, bool) or not isinstance(number, (int, float, np.floating, np.integer)):
-                raise ValueError(f"{label}: expected a finite number, got {number!r}")
+                raise ValueRefused(f"{label}: expected a finite number, got {number!r}")
             if not math.isfinite(float(number)):
-                raise ValueError(f"{label}: expected a finite number, got {number!r}")
+                raise ValueRefused(f"{label}: expected a finite number, got {number!r}")
         if float(stderr) < 0.0:
-            raise ValueError(f"stderr: expected >= 0, got {stderr!r}")
+            raise ValueRefused(f"stderr: expected >= 0, got {stderr!r}")
         return np.clip((values - self.space.lows) / (self.space.highs - self.space.lows), 0.0, 1.0)
 
     @staticmethod
@@ -482,7 +483,7 @@ class SearchRecord:
             return None
         if isinstance(clock_s, bool) or not isinstance(clock_s, (int, float, np.floating, np.integer)) or not math.isfinite(
                 float(clock_s)):
-            raise ValueError(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
+            raise ValueRefused(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
         return float(clock_s)
 
     def _store(self, unit: np.ndarray, value: float, stderr: float) -> None:
@@ -506,7 +507,7 @@ class SearchRecord:
         """
         _check_purpose(purpose)
         if not isinstance(result, PointResult):
-            raise ValueError(f"result: expected a PointResult, got {type(result).__name__}")
+            raise ValueRefused(f"result: expected a PointResult, got {type(result).__name__}")
         if purpose != "search":
             return
         self.tell(point, result.inversion, result.inversion_stderr,  # type: ignore[attr-defined]

@@ -39,12 +39,7 @@ import structlog
 
 from autotune import __version__
 from autotune.config import RunConfig
-from autotune.errors import (
-    ConfigError,
-    ConfigErrors,
-    Interrupted,
-    JournalError,
-)
+from autotune.errors import ConfigError, ConfigErrors, Interrupted, JournalError, ValueRefused
 from autotune.run.journal import (
     JOURNAL_NAME,
     MANIFEST_NAME,
@@ -186,7 +181,7 @@ def prepare(command: str, rig: Rig, config: RunConfig, run_dir: Path, *, resume:
         ``stop`` was set while waiting for the rig.
     """
     if command not in STAGE_COMMANDS:
-        raise ValueError(f"command: expected one of {STAGE_COMMANDS}, got {command!r}")
+        raise ValueRefused(f"command: expected one of {STAGE_COMMANDS}, got {command!r}")
     run_dir = Path(run_dir)
     store = Path(store) if store is not None else config.calibration_store
     last_good = read_last_good(store) if command == "retune" else None
