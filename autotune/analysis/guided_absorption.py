@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 
-from autotune.analysis.lock_fit import solve_gaussian
+from autotune.analysis.lock_fit import mixture_phase_error, solve_gaussian
 from autotune.analysis.next_point import SAME_VELOCITY
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, fit_inversion_curve
 from autotune.analysis.guided_phase import MIN_INVERSION_SCALE, Observation
@@ -95,16 +95,21 @@ class AbsorptionSignal:
         # its own precision and moment; it judges the choice and does not move the model.
         points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
         star = self._phase_star()[0]
+        # The source's empty fraction at its cautious end (lock_fit.mixture_phase_error).
+        empty = self._mixture_low()
         xs, values, variances = [], [], []
         for o in points:
             # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
-            half = 0.5 * (self._unwrapped(o) - star)
+            measured = self._unwrapped(o) - star
+            half = 0.5 * float(mixture_phase_error(measured, empty))
             factor = max(math.cos(half), 0.5)
             value = o.result.inversion / factor
+            # d eps / d psi of the mixture law: the measured phase's noise moves eps less.
+            gain = 1.0 - empty * math.cos(measured) / math.sqrt(max(1.0 - (empty * math.sin(measured)) ** 2, 1e-12))
             xs.append(fit.x_of(o.velocity))
             values.append(value)
             variances.append((o.result.inversion_stderr / factor) ** 2
-                             + (value * 0.5 * math.tan(half) * o.result.phase_shift_stderr) ** 2)
+                             + (value * 0.5 * math.tan(half) * gain * o.result.phase_shift_stderr) ** 2)
         return fit_inversion_curve(
             xs, values, variances, [o.result.absorption for o in points],
             [o.result.absorption_stderr**2 for o in points],
