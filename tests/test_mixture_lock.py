@@ -113,19 +113,22 @@ def test_the_empty_fraction_is_read_from_the_contrast_and_the_absorption(p1, amp
     assert lock._mixture_low() == pytest.approx(expected, abs=5e-4)  # the cautious end moves it by ~1e-4
 
 
-def test_closed_loop_locks_on_a_simulated_rig_with_a_poor_source():
-    """The demo rig with a one-photon probability of 0.6 (contrast ratio about 0.2 near the best,
-    every point below the fixed gate): the lock is established (no point was usable before:
-    the stage ended after 12 points without a lock), the bound is stated, and the verified
-    choice is >= 0.97 of the simulator's noiseless best."""
+@pytest.mark.parametrize("p1, seed", [(0.6, 61), (0.57, 62)])
+def test_closed_loop_locks_on_a_simulated_rig_with_a_poor_source(p1, seed):
+    """The demo rig with a one-photon probability of 0.6 or 0.57 (contrast ratio 0.14-0.2 near
+    the best, every point below the fixed gate; the velocity steps' phase often too faint to
+    steer): the lock and the velocity model are established (no point was usable before: the
+    stage ended after 12 points without a lock), the bound is stated and covers the true
+    shortfall, and the verified choice is >= 0.97 of the simulator's noiseless best."""
     from test_guided import _calibrate, _sim_rig
 
-    rig = _sim_rig({"field": {"one_photon_probability": 0.6}}, seed=61)
+    rig = _sim_rig({"field": {"one_photon_probability": p1}}, seed=seed)
     chosen, shots, lock = _calibrate(rig, seed=5, max_points=40)
     state = lock.state(clock_s=rig.clock)
     assert state["in_range"] >= 3 and state["slope_rad_per_hz"] is not None
     problems = [p for p, _ in lock.acceptance_problems(chosen, clock_s=rig.clock)]
-    assert not any("detuning lock" in p or "phase lock" in p for p in problems), problems
-    assert math.isfinite(lock.shortfall(clock_s=rig.clock).upper)
+    assert not any("detuning lock" in p or "phase lock" in p or "velocity model" in p for p in problems), problems
     truth = rig.truth(chosen)
-    assert truth["inversion"] / truth["best"]["inversion"] >= 0.97
+    ratio = truth["inversion"] / truth["best"]["inversion"]
+    assert ratio >= 0.97
+    assert 1.0 - ratio <= lock.shortfall(clock_s=rig.clock, point=chosen).upper

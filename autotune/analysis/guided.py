@@ -57,7 +57,10 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   peak's ``cos(eps / 2)`` law, the velocity curve's phase correction and the verification's
   correction, with ``q`` from the contrast ratio and the absorption near the peak at its
   cautious (low) end, and 0 (the pure photon's law, which overstates the loss) while that
-  ratio reaches ``min_contrast_ratio``.
+  ratio reaches ``min_contrast_ratio`` or when the inversions' fall with the phase prefers the
+  pure law (marginal likelihood, by a factor e^2). A velocity step whose phase is too faint to
+  steer still measures the absorption and the inversion: on such a source its phase is the
+  lock's prediction there (``phase_velocity_error_rad`` included).
 - **Fallback.** Where the phase signal is not usable (fringes not identified, a one-photon
   contrast too low against the empty one with a phase too noisy to keep off the wrap, or a
   phase error beyond the capture range, where the angle wraps), a Gaussian-process search on the inversion
@@ -342,7 +345,9 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         if anchor is None:
             return {"concluded": False, "velocity": self.start["velocity"], "next": None, "note": "no lock yet"}
         fit = self._absorption_fit()
-        attempts = [(o.velocity, self._range_note(o.result) is None) for o in self._obs if o.purpose == "velocity"]
+        faint = self._faint_velocity_phases()
+        attempts = [(o.velocity, self._range_note(o.result) is None or id(o) in faint)
+                    for o in self._obs if o.purpose == "velocity"]
 
         def was_tried(v: float) -> bool:
             # Out of the capture range there, or twice in range but outside the absorption

@@ -38,6 +38,10 @@ _PHASE_GRID = 241
 # the cautious ends of its estimate (one-sided 95 %).
 _MAX_MIXTURE = 0.9
 _CAUTIOUS_Z = 1.645
+# Log marginal-likelihood margin by which the pure photon's law must beat the mixture's for the
+# lock to drop the mixture (2: a factor e^2 ~ 7, "positive" evidence on Kass and Raftery's scale,
+# J. Am. Stat. Assoc. 90, 773 (1995)).
+_LAW_EVIDENCE = 2.0
 # Smallest inversion scale used as the denominator of the velocity term.
 MIN_INVERSION_SCALE = 0.05
 
@@ -143,16 +147,37 @@ class PhaseSignal:
 
     def _phase_star(self) -> tuple[float, float]:
         """Posterior mean and standard deviation of the phase at the peak (rad)."""
-        return self._cached("phase_star", self._compute_phase_star)
+        mean, sd, _ = self._phase_model()
+        return mean, sd
 
     def _mixture_low(self) -> float:
-        """The one-photon source's empty fraction ``q = p0 / p1`` at its cautious (low) end.
+        """The one-photon source's empty fraction ``q = p0 / p1`` the lock uses: the physics'
+        estimate at its cautious end (:meth:`_compute_mixture_estimate`) unless the inversions
+        reject its law against a pure photon's (:meth:`_compute_phase_model`), else 0."""
+        return self._phase_model()[2]
 
-        Cached; see :meth:`_compute_mixture_low`.
+    def _phase_model(self) -> tuple[float, float, float]:
+        return self._cached("phase_star", self._compute_phase_model)
+
+    def _compute_phase_model(self) -> tuple[float, float, float]:
+        """The phase at the peak (mean, sd) and the empty fraction used.
+
+        The inversions are fitted with the pure photon's law (``q = 0``) and with the
+        mixture's at the estimated ``q`` (:meth:`_compute_phase_star`); the mixture's law is
+        kept unless the data's marginal likelihood prefers the pure one by more than
+        ``exp(_LAW_EVIDENCE)``: a contrast lowered by something other than an empty fraction
+        (the phase then moves as a pure photon's) must not make the bound bolder.
         """
-        return self._cached("mixture_low", self._compute_mixture_low)
+        q = self._compute_mixture_estimate()
+        pure = self._compute_phase_star(0.0)
+        if q <= 0.0:
+            return pure[0], pure[1], 0.0
+        mixed = self._compute_phase_star(q)
+        if mixed[2] < pure[2] - _LAW_EVIDENCE:
+            return pure[0], pure[1], 0.0
+        return mixed[0], mixed[1], q
 
-    def _compute_mixture_low(self) -> float:
+    def _compute_mixture_estimate(self) -> float:
         """``q`` from the one-photon contrast and the absorption near the peak (0 without such points).
 
         At the peak (``a_g(1) = -|a|``) a field ``p0 |0> + p1 |1>`` gives the one-photon fringe
@@ -200,14 +225,14 @@ class PhaseSignal:
             return 0.0
         return float(min((amplitude - r_up) / ((1.0 + r_up) * amplitude), _MAX_MIXTURE))
 
-    def _compute_phase_star(self) -> tuple[float, float]:
+    def _compute_phase_star(self, empty: float) -> tuple[float, float, float]:
         """The phase at the peak from a grid posterior: the inversions of each velocity group
         fall from the peak as ``cos(eps / 2)`` of the one-photon phase error ``eps`` behind the
-        measured one (:func:`~autotune.analysis.lock_fit.mixture_phase_error` at
-        :meth:`_mixture_low`; a pure photon's ``eps`` is the measured error), the scale solved in
-        closed form per grid value."""
+        measured one (:func:`~autotune.analysis.lock_fit.mixture_phase_error` with the empty
+        fraction ``empty``; a pure photon's ``eps`` is the measured error), the scale solved in
+        closed form per grid value. Returns the mean, the sd and the log marginal likelihood
+        (up to a constant shared by every ``empty``)."""
         centre, width = self._phase_star_prior
-        empty = self._mixture_low()
         points = self._in_range()
         groups: dict[int, list[Observation]] = {}
         for obs in points:
@@ -215,7 +240,7 @@ class PhaseSignal:
             groups.setdefault(key, []).append(obs)
         usable = [g for g in groups.values() if len(g) >= 2]
         if not usable:
-            return centre, width
+            return centre, width, 0.0
         grid = centre + width * np.linspace(-4.0, 4.0, _PHASE_GRID)
         log_post = -0.5 * ((grid - centre) / width) ** 2
         for group in usable:
@@ -232,8 +257,11 @@ class PhaseSignal:
             scale = (shape * weights * inversions).sum(axis=1) / np.maximum((shape**2 * weights).sum(axis=1), 1e-12)
             chi2 = ((inversions[None, :] - scale[:, None] * shape) ** 2 * weights).sum(axis=1)
             log_post = log_post - 0.5 * chi2
-        post = np.exp(log_post - log_post.max())
+        top = float(log_post.max())
+        post = np.exp(log_post - top)
+        # The prior's normalisation on the grid is the same for every law.
+        evidence = top + math.log(float(post.sum())) - math.log(float(np.exp(-0.5 * ((grid - centre) / width) ** 2).sum()))
         post /= post.sum()
         mean = float((grid * post).sum())
         sd = float(math.sqrt(max(((grid - mean) ** 2 * post).sum(), 1e-12)))
-        return mean, sd
+        return mean, sd, evidence

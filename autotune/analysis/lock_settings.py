@@ -54,7 +54,9 @@ class LockSettings:
         Smallest one-photon / empty contrast ratio of a usable point (0.35: near a pi or 3 pi
         rotation ``|a|`` and the ratio fall towards the unrotated fraction). A point below it
         is still usable when its phase error and its own standard error satisfy
-        ``|phi - phi*| + phase_wrap_sigmas sigma_phi <= pi`` (see below).
+        ``|phi - phi*| + phase_wrap_sigmas sigma_phi <= pi`` (see below); and only below it
+        near the peak does the lock read the inversion through a poor source's mixture law
+        (:func:`autotune.analysis.lock_fit.mixture_phase_error`).
     phase_wrap_sigmas : float or None
         Standard errors of a point's measured phase that must separate its phase error from
         the wrap at pi for a point below ``min_contrast_ratio`` to steer the lock (3: the
