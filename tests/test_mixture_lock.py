@@ -11,8 +11,6 @@ docs/physics.md section 2); the simulated rig's noiseless truth for the closed l
 from __future__ import annotations
 
 import math
-from types import SimpleNamespace
-
 import numpy as np
 import pytest
 
@@ -79,18 +77,19 @@ def test_the_gate_takes_a_poor_sources_phase_and_refuses_a_pi_rotation():
     with a phase standard error of 0.3 rad it steers the lock, with 1.2 rad (three of them reach
     the wrap) it does not. At a pi rotation a_g(1) = cos(pi / 2) = 0 (pulse-area result): the
     amplitude is p0, phase 0, a phase error of pi, refused for any source; and the night's hold,
-    whose settings carry no phase_wrap_sigmas, keeps the fixed contrast gate."""
+    which passes no wrap_sigmas, keeps the fixed contrast gate."""
     error, ratio = _mixture_phase_error(0.6, -1.0)
     assert ratio == pytest.approx(0.2) and abs(error) < 1e-12
-    assert phase_signal_note(_point(ratio, error, 0.3), SETTINGS, PI) is None
-    refused = phase_signal_note(_point(ratio, error, 1.2), SETTINGS, PI)
+    z = SETTINGS.phase_wrap_sigmas
+    assert phase_signal_note(_point(ratio, error, 0.3), SETTINGS, PI, wrap_sigmas=z) is None
+    refused = phase_signal_note(_point(ratio, error, 1.2), SETTINGS, PI, wrap_sigmas=z)
     assert refused is not None and "standard errors inside the wrap" in refused
     for p1 in (0.6, 0.95):
         error, ratio = _mixture_phase_error(p1, complex(math.cos(PI / 2)))
         assert abs(abs(error) - PI) < 1e-9
-        assert phase_signal_note(_point(ratio, error, 0.05), SETTINGS, PI) is not None
-    hold_settings = SimpleNamespace(min_contrast_ratio=0.35, capture_phase_error_rad=0.6 * PI)
-    assert phase_signal_note(_point(0.2, 0.0, 0.3), hold_settings, PI).startswith("one-photon/empty contrast 0.20")
+        assert phase_signal_note(_point(ratio, error, 0.05), SETTINGS, PI, wrap_sigmas=z) is not None
+    # The night's hold calls it without wrap_sigmas: the fixed contrast gate.
+    assert phase_signal_note(_point(0.2, 0.0, 0.3), SETTINGS, PI).startswith("one-photon/empty contrast 0.20")
 
 
 @pytest.mark.parametrize("p1, amplitude", [(0.6, 0.98), (0.7, 0.95), (0.9, 0.99)])

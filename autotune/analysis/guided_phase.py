@@ -67,7 +67,8 @@ class PhaseSignal:
 
     def _range_note(self, result: PointResult) -> str | None:
         """None when the point's phase signal is usable, else why not."""
-        return phase_signal_note(result, self.settings, self._phase_star_prior[0])
+        return phase_signal_note(result, self.settings, self._phase_star_prior[0],
+                                 wrap_sigmas=self.settings.phase_wrap_sigmas)
 
     def _in_range(self) -> list[Observation]:
         return self._cached("in_range", lambda: [o for o in self._obs if self._range_note(o.result) is None])

@@ -32,15 +32,17 @@ def wrap_phase(angle: float | np.ndarray) -> Any:
     return np.mod(np.asarray(angle, dtype=float) + math.pi, _TWO_PI) - math.pi
 
 
-def phase_signal_note(result: PointResult, settings: Any, phase_at_peak_rad: float) -> str | None:
+def phase_signal_note(result: PointResult, settings: Any, phase_at_peak_rad: float, *,
+                      wrap_sigmas: float | None = None) -> str | None:
     """None when a measurement's phase signal can steer the detuning, else why not.
 
     Usable means: fringes identified, a phase error ``|phi - phi*|`` within
     ``settings.capture_phase_error_rad`` (beyond it the angle wraps and the discriminator is no
     longer monotone), and a one-photon fringe whose phase means something: a one-photon contrast
-    of at least ``settings.min_contrast_ratio`` of the empty one, or (where ``settings`` has a
-    ``phase_wrap_sigmas``, the calibration's lock) a phase error whose own standard error keeps
-    it that many standard errors from the wrap at pi, ``|phi - phi*| + z sigma_phi <= pi``.
+    of at least ``settings.min_contrast_ratio`` of the empty one, or (with ``wrap_sigmas`` =
+    ``z``: the calibration's and the retune's lock pass ``LockSettings.phase_wrap_sigmas``; the
+    night's hold passes none and keeps the fixed gate) a phase error whose own standard error
+    keeps it ``z`` standard errors from the wrap at pi, ``|phi - phi*| + z sigma_phi <= pi``.
 
     Why the second way: a poor one-photon source (probability ``p1`` of one photon, the rest
     mostly empty) gives the one-photon fringe the amplitude ``p0 + p1 a_g(1)`` (docs/physics.md
@@ -56,7 +58,7 @@ def phase_signal_note(result: PointResult, settings: Any, phase_at_peak_rad: flo
         return "fringes not identified"
     ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
     error = float(wrap_phase(result.phase_shift - phase_at_peak_rad))
-    z = getattr(settings, "phase_wrap_sigmas", None)
+    z = wrap_sigmas
     sigma = float(result.phase_shift_stderr)
     low = result.contrast_empty <= 0.0 or ratio < settings.min_contrast_ratio
     if low and not (z is not None and result.contrast_empty > 0.0 and math.isfinite(sigma)
