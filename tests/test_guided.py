@@ -76,12 +76,16 @@ class Synthetic:
         middle = self.clock + 0.5 * duration
         self.clock += duration + 0.5
         relative = math.sqrt(1500.0 / shots_per_phase)
-        phase_sd, inversion_sd = 0.025 * PI * relative, 0.03 * relative
+        ratio = 0.73 if self.contrast_ratio is None else self.contrast_ratio(point["velocity"], point["detuning"])
+        # The phase shift is the angle between two fringes: its variance is the sum of each
+        # fringe's angle variance, sigma_fringe^2 / contrast^2 (the delta method), so it grows
+        # as (1 + 1 / r^2) with the one-photon/empty ratio r (0.025 pi at the demo's 0.73).
+        contrast_factor = math.sqrt((1.0 + 1.0 / ratio**2) / (1.0 + 1.0 / 0.73**2))
+        phase_sd, inversion_sd = 0.025 * PI * relative * contrast_factor, 0.03 * relative
         error = self._error(point, middle)
         absorption = self.absorption_min + self._excess(point)
         atoms = 0.11 * phases * shots_per_phase
         absorption_sd = math.sqrt(max(absorption, 1e-3) * (1 - absorption) / atoms) if self.absorption_noise else 1e-6
-        ratio = 0.73 if self.contrast_ratio is None else self.contrast_ratio(point["velocity"], point["detuning"])
         return PointResult(
             inversion=self.scale * math.cos(0.5 * error) - (absorption - self.absorption_min)
             + self.rng.normal(0.0, inversion_sd),
@@ -174,9 +178,11 @@ def test_lock_falls_back_from_far_outside_the_capture_range_and_still_locks():
 
 
 def test_lock_falls_back_where_the_one_photon_contrast_is_low():
-    """Started where the one-photon contrast is too low (|a| small), the search falls back, then locks elsewhere."""
+    """Started where the one-photon contrast is too low (|a| small: a ratio of 0.03, whose phase's
+    own standard error, 1.5 rad at 1,500 shots per phase, reaches the wrap), the search falls
+    back, then locks elsewhere."""
     rig = Synthetic(peak_detuning_hz=5e3, velocity_star=520.0, seed=4,
-                    contrast_ratio=lambda v, d: 0.15 if v < 490.0 else 0.73)
+                    contrast_ratio=lambda v, d: 0.03 if v < 490.0 else 0.73)
     lock = PhaseLockSearch(BOX, seed=2, start={"velocity": 470.0, "detuning": 0.0}, settings=SETTINGS)
     converged, proposals = _run(lock, rig, max_points=80)
     assert proposals[1].purpose == "search" and "contrast" in proposals[1].reason
@@ -694,12 +700,13 @@ def test_calibration_stores_its_velocity_term_and_a_retune_passes_it_on():
 
 
 def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
-    """Where the one-photon contrast is usable only within +-10 m/s of the start (a poor source
-    elsewhere, docs/physics.md section 5b: the lock needs the one-photon fringe), the velocity stage
+    """Where the one-photon contrast is usable only within +-10 m/s of the start (a ratio of
+    0.03 elsewhere, whose phase is noise: docs/physics.md section 5b, the lock needs the
+    one-photon fringe), the velocity stage
     ends without a model; the search then says so (hopeless) instead of spending its budget on
     lock points whose expected gains are all infinite."""
     rig = Synthetic(peak_detuning_hz=2e3, velocity_star=V0, seed=7,
-                    contrast_ratio=lambda v, d: 0.73 if abs(v - V0) < 10.0 else 0.15)
+                    contrast_ratio=lambda v, d: 0.73 if abs(v - V0) < 10.0 else 0.03)
     lock = PhaseLockSearch(BOX, seed=7, start=START, settings=SETTINGS)
     _run_until_hopeless(lock, rig, 20)
     reason = lock.hopeless(clock_s=rig.clock)
@@ -710,12 +717,13 @@ def test_no_third_usable_velocity_is_hopeless_not_forty_lock_points():
 
 def test_a_poor_one_photon_source_ends_the_lock_after_twice_the_fallback_design():
     """A source prepared with a probability near 0.5 mixes the inverted one-photon fringe with
-    the empty one: the one-photon contrast is about ``2 p1 - 1`` of the empty one (0.15 for p1 =
-    0.575, below min_contrast_ratio 0.35) wherever the rotation is near 2 pi (docs/physics.md
-    section 3's fringe of a mixture, a weighted sum of the two fringes). No point steers the
-    lock; after twice the fallback's first design (12 points) the search says so in one line
-    naming the source, instead of spending its 40 points."""
-    rig = Synthetic(peak_detuning_hz=-18e3, seed=3, contrast_ratio=lambda v, d: 0.15)
+    the empty one: the one-photon contrast is about ``2 p1 - 1`` of the empty one (0.03 for p1 =
+    0.515) wherever the rotation is near 2 pi (docs/physics.md section 3's fringe of a mixture,
+    a weighted sum of the two fringes), and the phase's own standard error (1.5 rad at 1,500
+    shots per phase) reaches the wrap. No point steers the lock; after twice the fallback's
+    first design (12 points) the search says so in one line naming the source, instead of
+    spending its 40 points."""
+    rig = Synthetic(peak_detuning_hz=-18e3, seed=3, contrast_ratio=lambda v, d: 0.03)
     lock = PhaseLockSearch(BOX, seed=3, start=START, settings=SETTINGS)
     _run_until_hopeless(lock, rig, 40)
     reason = lock.hopeless(clock_s=rig.clock)

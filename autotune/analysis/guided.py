@@ -46,9 +46,26 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   from this stage's points, that it comes back usable (:mod:`autotune.analysis.next_point`);
   each proposal's ``reason`` says which term and by how much.
   :meth:`PhaseLockSearch.converged` is true when the bound is below ``target_shortfall``.
+- **A poor one-photon source.** A field ``p0 |0> + p1 |1>`` gives the one-photon fringe the
+  amplitude ``p0 - p1 |a| e^{i eps}`` (docs/physics.md section 5b): a contrast ratio near
+  ``2 p1 - 1`` at the peak (0.16 at ``p1 = 0.58``, below ``min_contrast_ratio``) and a
+  measured phase error ``psi = arg(e^{i eps} - q)``, ``q = p0 / (p1 |a|)``, about
+  ``p1 / (2 p1 - 1)`` times ``eps`` near the peak. Such a point still steers the lock when its
+  phase error lies ``phase_wrap_sigmas`` of its own standard errors inside the wrap at pi
+  (:func:`autotune.analysis.lock_fit.phase_signal_note`); the step shots follow its measured
+  phase error per shot as for any point. The lock's curve is fitted to ``psi`` as measured; the
+  inversion follows ``eps = psi - arcsin(q sin psi)``
+  (:func:`~autotune.analysis.lock_fit.mixture_phase_error`) in the detuning term, the phase at the
+  peak's ``cos(eps / 2)`` law, the velocity curve's phase correction and the verification's
+  correction, with ``q`` from the contrast ratio and the absorption near the peak at its
+  cautious (low) end, and 0 (the pure photon's law, which overstates the loss) while that
+  ratio reaches ``min_contrast_ratio`` or when the inversions' fall with the phase prefers the
+  pure law (marginal likelihood, by a factor e^2). A velocity step whose phase is too faint to
+  steer still measures the absorption and the inversion: on such a source its phase is the
+  lock's prediction there (``phase_velocity_error_rad`` included).
 - **Fallback.** Where the phase signal is not usable (fringes not identified, a one-photon
-  contrast too low against the empty one, or a phase error beyond the capture range, where
-  the angle wraps), a Gaussian-process search on the inversion
+  contrast too low against the empty one with a phase too noisy to keep off the wrap, or a
+  phase error beyond the capture range, where the angle wraps), a Gaussian-process search on the inversion
   (:class:`autotune.analysis.search.BayesianSearch` over the box, told every result) proposes points
   until one lands in the capture range; the lock starts there.
 
@@ -123,6 +140,7 @@ from scipy import special
 
 from autotune.analysis.lock_fit import (
     detuning_offset,
+    mixture_measured_phase,
     phase_signal_note,
 )
 from autotune.analysis.lock_settings import LockPrior, LockSettings, is_number
@@ -329,7 +347,9 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         if anchor is None:
             return {"concluded": False, "velocity": self.start["velocity"], "next": None, "note": "no lock yet"}
         fit = self._absorption_fit()
-        attempts = [(o.velocity, self._range_note(o.result) is None) for o in self._obs if o.purpose == "velocity"]
+        faint = self._faint_velocity_phases()
+        attempts = [(o.velocity, self._range_note(o.result) is None or id(o) in faint)
+                    for o in self._obs if o.purpose == "velocity"]
 
         def was_tried(v: float) -> bool:
             # Out of the capture range there, or twice in range but outside the absorption
@@ -358,8 +378,16 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                     continue
                 return {"concluded": False, "velocity": v0, "next": v,
                         "note": "velocities around the lock for the absorption's curvature"}
-            return {"concluded": True, "velocity": v0, "next": None,
-                    "note": "no third usable velocity within the box: staying at the lock's velocity"}
+            note = "no third usable velocity within the box: staying at the lock's velocity"
+            faint = [n for n in (self._range_note(o.result) for o in self._obs if o.purpose == "velocity")
+                     if n is not None and n.startswith("one-photon/empty contrast")]
+            if faint:
+                # A poor source: the mixture's amplitude p0 + p1 a_g(1) nears zero a few steps
+                # from the 2 pi velocity, and its phase with it.
+                note += (f" (the one-photon phase too faint to use at {len(faint)} velocity step"
+                         f"{'s' if len(faint) > 1 else ''}: check the one-photon source's preparation "
+                         "probability)")
+            return {"concluded": True, "velocity": v0, "next": None, "note": note}
         curve = self._velocity_curve()
         vertex = curve.vertex()
         x_lo, x_hi = min(curve.x_groups), max(curve.x_groups)
@@ -491,7 +519,9 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                 error += float(fit.theta[3]) * elapsed
                 variance += float(fit.cov[3, 3]) * elapsed**2
         sd = math.sqrt(variance)
-        limit = 2.0 * math.acos(1.0 - self.settings.target_shortfall)
+        # The target's one-photon phase error, as the mixed field's fringe measures it.
+        limit = float(mixture_measured_phase(2.0 * math.acos(1.0 - self.settings.target_shortfall),
+                                             self._mixture_low()))
         probability = float(special.ndtr((limit - error) / sd) - special.ndtr((-limit - error) / sd))
         return error, sd, probability, slope
 

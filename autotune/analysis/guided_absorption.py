@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 
-from autotune.analysis.lock_fit import solve_gaussian
+from autotune.analysis.lock_fit import mixture_phase_error, solve_gaussian
 from autotune.analysis.next_point import SAME_VELOCITY
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, fit_inversion_curve
 from autotune.analysis.guided_phase import MIN_INVERSION_SCALE, Observation
@@ -35,7 +35,46 @@ class AbsorptionSignal:
     def _absorption_points(self) -> list[Observation]:
         window = self.settings.absorption_phase_window_rad
         star = self._phase_star()[0]
-        return [o for o in self._in_range() if abs(self._unwrapped(o) - star) <= window]
+        faint = self._faint_velocity_phases()
+        return [o for o in self._obs
+                if (self._range_note(o.result) is None and abs(self._unwrapped(o) - star) <= window)
+                or (id(o) in faint and abs(faint[id(o)][0] - star) <= window)]
+
+    def _faint_velocity_phases(self) -> dict[int, tuple[float, float]]:
+        """Velocity steps of a poor source whose own phase was too faint to steer (below
+        ``min_contrast_ratio`` and too noisy to keep off the wrap), by ``id``: the lock's
+        predicted (measured-scale) phase there and its standard deviation.
+
+        The absorption and the inversion of such a step are measured as well as any other's;
+        only its phase is not, and the lock, established at the other velocities, predicts it
+        (with the model error of the velocity difference, ``phase_velocity_error_rad``). Only
+        for a poor source (:meth:`_mixture_low` above 0; a good source's faint point is a
+        rotation far from 2 pi) and in a calibration.
+        """
+        return self._cached("faint_velocity", self._compute_faint_velocity_phases)
+
+    def _compute_faint_velocity_phases(self) -> dict[int, tuple[float, float]]:
+        if self.prior is not None or self._mixture_low() <= 0.0:
+            return {}
+        out: dict[int, tuple[float, float]] = {}
+        for o in self._obs:
+            note = self._range_note(o.result) if o.purpose == "velocity" else None
+            if note is None or not note.startswith("one-photon/empty contrast"):
+                continue
+            fit = self._lock_fit(o.velocity)
+            if fit is None or not fit.slope_known():
+                continue
+            phase, variance = fit.phase(o.detuning, o.result.clock_s)
+            out[id(o)] = (phase, math.sqrt(variance))
+        return out
+
+    def _phase_for_absorption(self, o: Observation) -> tuple[float, float]:
+        """A point's (unwrapped) phase and its standard deviation: measured, or predicted by
+        the lock for a faint velocity step."""
+        faint = self._faint_velocity_phases()
+        if id(o) in faint:
+            return faint[id(o)]
+        return self._unwrapped(o), o.result.phase_shift_stderr
 
     def _absorption_fit(self) -> AbsorptionFit | None:
         return self._cached("absorption", self._compute_absorption_fit)
@@ -95,16 +134,22 @@ class AbsorptionSignal:
         # its own precision and moment; it judges the choice and does not move the model.
         points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
         star = self._phase_star()[0]
+        # The source's empty fraction at its cautious end (lock_fit.mixture_phase_error).
+        empty = self._mixture_low()
         xs, values, variances = [], [], []
         for o in points:
             # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
-            half = 0.5 * (self._unwrapped(o) - star)
+            phase, phase_sd = self._phase_for_absorption(o)
+            measured = phase - star
+            half = 0.5 * float(mixture_phase_error(measured, empty))
             factor = max(math.cos(half), 0.5)
             value = o.result.inversion / factor
+            # d eps / d psi of the mixture law: the measured phase's noise moves eps less.
+            gain = 1.0 - empty * math.cos(measured) / math.sqrt(max(1.0 - (empty * math.sin(measured)) ** 2, 1e-12))
             xs.append(fit.x_of(o.velocity))
             values.append(value)
             variances.append((o.result.inversion_stderr / factor) ** 2
-                             + (value * 0.5 * math.tan(half) * o.result.phase_shift_stderr) ** 2)
+                             + (value * 0.5 * math.tan(half) * gain * phase_sd) ** 2)
         return fit_inversion_curve(
             xs, values, variances, [o.result.absorption for o in points],
             [o.result.absorption_stderr**2 for o in points],

@@ -16,6 +16,7 @@ import numpy as np
 from autotune.analysis.lock_fit import (
     LockFit,
     log_evidence,
+    mixture_phase_error,
     solve_gaussian,
     wrap_phase,
     phase_signal_note,
@@ -32,6 +33,15 @@ _SAME_VELOCITY = SAME_VELOCITY
 _DRIFT_WIDENING = 4.0
 # Grid points of the posterior over the phase at the peak.
 _PHASE_GRID = 241
+# Largest one-photon source's empty fraction q = p0 / p1 used (0.9: a one-photon probability of
+# 0.53; nearer 0.5 the mixture's phase is a step, not a lock signal), and the normal quantile of
+# the cautious ends of its estimate (one-sided 95 %).
+_MAX_MIXTURE = 0.9
+_CAUTIOUS_Z = 1.645
+# Log marginal-likelihood margin by which the pure photon's law must beat the mixture's for the
+# lock to drop the mixture (2: a factor e^2 ~ 7, "positive" evidence on Kass and Raftery's scale,
+# J. Am. Stat. Assoc. 90, 773 (1995)).
+_LAW_EVIDENCE = 2.0
 # Smallest inversion scale used as the denominator of the velocity term.
 MIN_INVERSION_SCALE = 0.05
 
@@ -57,7 +67,8 @@ class PhaseSignal:
 
     def _range_note(self, result: PointResult) -> str | None:
         """None when the point's phase signal is usable, else why not."""
-        return phase_signal_note(result, self.settings, self._phase_star_prior[0])
+        return phase_signal_note(result, self.settings, self._phase_star_prior[0],
+                                 wrap_sigmas=self.settings.phase_wrap_sigmas)
 
     def _in_range(self) -> list[Observation]:
         return self._cached("in_range", lambda: [o for o in self._obs if self._range_note(o.result) is None])
@@ -137,9 +148,91 @@ class PhaseSignal:
 
     def _phase_star(self) -> tuple[float, float]:
         """Posterior mean and standard deviation of the phase at the peak (rad)."""
-        return self._cached("phase_star", self._compute_phase_star)
+        mean, sd, _ = self._phase_model()
+        return mean, sd
 
-    def _compute_phase_star(self) -> tuple[float, float]:
+    def _mixture_low(self) -> float:
+        """The one-photon source's empty fraction ``q = p0 / p1`` the lock uses: the physics'
+        estimate at its cautious end (:meth:`_compute_mixture_estimate`) unless the inversions
+        reject its law against a pure photon's (:meth:`_compute_phase_model`), else 0."""
+        return self._phase_model()[2]
+
+    def _phase_model(self) -> tuple[float, float, float]:
+        return self._cached("phase_star", self._compute_phase_model)
+
+    def _compute_phase_model(self) -> tuple[float, float, float]:
+        """The phase at the peak (mean, sd) and the empty fraction used.
+
+        The inversions are fitted with the pure photon's law (``q = 0``) and with the
+        mixture's at the estimated ``q`` (:meth:`_compute_phase_star`); the mixture's law is
+        kept unless the data's marginal likelihood prefers the pure one by more than
+        ``exp(_LAW_EVIDENCE)``: a contrast lowered by something other than an empty fraction
+        (the phase then moves as a pure photon's) must not make the bound bolder.
+        """
+        q = self._compute_mixture_estimate()
+        pure = self._compute_phase_star(0.0)
+        if q <= 0.0:
+            return pure[0], pure[1], 0.0
+        mixed = self._compute_phase_star(q)
+        if mixed[2] < pure[2] - _LAW_EVIDENCE:
+            return pure[0], pure[1], 0.0
+        return mixed[0], mixed[1], q
+
+    def _compute_mixture_estimate(self) -> float:
+        """``q`` from the one-photon contrast and the absorption near the peak (0 without such points).
+
+        At the peak (``a_g(1) = -|a|``) a field ``p0 |0> + p1 |1>`` gives the one-photon fringe
+        the amplitude ``p0 - p1 |a|`` against the empty fringe's 1 (docs/physics.md section 5b:
+        the photon-number average of ``a_g(n)``; detection, Ramsey pulses and velocity
+        dephasing scale both fringes alike), and the absorption ``P_e = p1 (1 - |a|^2) / 2``.
+        With ``p0 + p1 = 1`` the contrast ratio ``r = p1 (1 + |a|) - 1`` and ``P_e`` give
+        ``|a| = 1 - 2 P_e / (1 + r)`` and ``p1 = (1 + r) / (1 + |a|)``; the mixture's phase then
+        follows ``q = p0 / (p1 |a|) = (|a| - r) / ((1 + r) |a|)``
+        (:func:`~autotune.analysis.lock_fit.mixture_phase_error`). Thermal photons raise ``r``
+        (the empty fringe loses contrast too) and ``P_e`` (their own absorption), and both
+        lower ``q``: the estimate errs towards a pure photon, whose inversion falls fastest with
+        the measured phase. Taken at the upper 95 % limits of the inverse-variance weighted
+        ``r`` and ``P_e`` of the usable points within ``absorption_phase_window_rad`` of the
+        peak (the cautious end again), at most ``_MAX_MIXTURE``.
+
+        Only for a poor source: while that upper ratio reaches ``min_contrast_ratio`` (every
+        point the fixed contrast gate would have taken), ``q`` is 0, the pure photon's law, as
+        the lock was measured on such rigs; the law gains at most ``1 / (1 - q)^2 ~ 1.3`` there
+        (``q ~ 0.14`` at ``p1 = 0.88``), against a velocity term that is not always as safe
+        (a rig of the velocity-physics family stopped one point earlier with it, below its bound).
+        """
+        centre = self._phase_star_prior[0]
+        window = self.settings.absorption_phase_window_rad
+        near = [o.result for o in self._in_range()
+                if abs(self._unwrapped(o) - centre) <= window and o.result.contrast_empty > 0.0]
+        if not near:
+            return 0.0
+
+        def upper(values: np.ndarray, sds: np.ndarray) -> float:
+            weights = 1.0 / np.maximum(sds, 1e-4) ** 2
+            mean = float((weights * values).sum() / weights.sum())
+            return mean + _CAUTIOUS_Z / math.sqrt(float(weights.sum()))
+
+        ratios = np.array([r.contrast_one_photon / r.contrast_empty for r in near])
+        ratio_sds = np.array([math.hypot(r.contrast_one_photon_stderr, ratio * r.contrast_empty_stderr)
+                              / r.contrast_empty for r, ratio in zip(near, ratios)])
+        r_up = min(max(upper(ratios, ratio_sds), 0.0), 1.0)
+        if r_up >= self.settings.min_contrast_ratio:
+            return 0.0
+        absorption_up = max(upper(np.array([r.absorption for r in near]),
+                                  np.array([r.absorption_stderr for r in near])), 0.0)
+        amplitude = 1.0 - 2.0 * absorption_up / (1.0 + r_up)
+        if amplitude <= r_up:
+            return 0.0
+        return float(min((amplitude - r_up) / ((1.0 + r_up) * amplitude), _MAX_MIXTURE))
+
+    def _compute_phase_star(self, empty: float) -> tuple[float, float, float]:
+        """The phase at the peak from a grid posterior: the inversions of each velocity group
+        fall from the peak as ``cos(eps / 2)`` of the one-photon phase error ``eps`` behind the
+        measured one (:func:`~autotune.analysis.lock_fit.mixture_phase_error` with the empty
+        fraction ``empty``; a pure photon's ``eps`` is the measured error), the scale solved in
+        closed form per grid value. Returns the mean, the sd and the log marginal likelihood
+        (up to a constant shared by every ``empty``)."""
         centre, width = self._phase_star_prior
         points = self._in_range()
         groups: dict[int, list[Observation]] = {}
@@ -148,7 +241,7 @@ class PhaseSignal:
             groups.setdefault(key, []).append(obs)
         usable = [g for g in groups.values() if len(g) >= 2]
         if not usable:
-            return centre, width
+            return centre, width, 0.0
         grid = centre + width * np.linspace(-4.0, 4.0, _PHASE_GRID)
         log_post = -0.5 * ((grid - centre) / width) ** 2
         for group in usable:
@@ -161,12 +254,15 @@ class PhaseSignal:
                          + (0.5 * scale0 * np.sin(0.5 * np.abs(errors0))) ** 2
                          * np.array([o.result.phase_shift_stderr for o in group]) ** 2)
             weights = 1.0 / np.maximum(variances, 1e-10)
-            shape = np.cos(0.5 * (phases[None, :] - grid[:, None]))  # (grid, points)
+            shape = np.cos(0.5 * mixture_phase_error(phases[None, :] - grid[:, None], empty))  # (grid, points)
             scale = (shape * weights * inversions).sum(axis=1) / np.maximum((shape**2 * weights).sum(axis=1), 1e-12)
             chi2 = ((inversions[None, :] - scale[:, None] * shape) ** 2 * weights).sum(axis=1)
             log_post = log_post - 0.5 * chi2
-        post = np.exp(log_post - log_post.max())
+        top = float(log_post.max())
+        post = np.exp(log_post - top)
+        # The prior's normalisation on the grid is the same for every law.
+        evidence = top + math.log(float(post.sum())) - math.log(float(np.exp(-0.5 * ((grid - centre) / width) ** 2).sum()))
         post /= post.sum()
         mean = float((grid * post).sum())
         sd = float(math.sqrt(max(((grid - mean) ** 2 * post).sum(), 1e-12)))
-        return mean, sd
+        return mean, sd, evidence

@@ -14,6 +14,7 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import stats
 
+from autotune.analysis.lock_fit import mixture_phase_error
 from autotune.analysis.next_point import expected_fall
 from autotune.analysis.retune_verdict import inherited_draws
 from autotune.analysis.shortfall import Shortfall
@@ -108,11 +109,16 @@ class ShortfallBound:
             notes.append("no phase slope yet")
         else:
             mu, sigma = detuning
-            eps = mu + sigma * normals[:, 0]
+            # The phase error is measured on the mixed field's fringe; the inversion follows
+            # the one-photon phase error behind it (lock_fit.mixture_phase_error), at the
+            # cautious end of the source's empty fraction (0 for a pure photon, or until the
+            # inversions show the mixture's slower fall).
+            empty = self._mixture_low()
+            eps = mixture_phase_error(mu + sigma * normals[:, 0], empty)
             d_draws = 1.0 - np.cos(0.5 * eps)
-            d_point = 1.0 - math.cos(0.5 * mu)
+            d_point = 1.0 - math.cos(0.5 * float(mixture_phase_error(mu, empty)))
             eps2 = sigma**2 * float(stats.ncx2.ppf(q, 1, (mu / sigma) ** 2)) if sigma > 0 else mu**2
-            d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
+            d_upper = 1.0 - math.cos(0.5 * min(float(mixture_phase_error(math.sqrt(eps2), empty)), math.pi))
         fit = self._absorption_fit()
         plan = self._velocity_plan()
         curve = self._velocity_curve()
@@ -323,8 +329,10 @@ class ShortfallBound:
         A one-photon source prepared with a probability near 0.5 mixes the inverted one-photon
         fringe with the empty one: near the best the one-photon contrast falls to about
         ``2 p1 - 1`` of the empty one, below ``min_contrast_ratio`` wherever the inversion is
-        high, and no point there steers the lock. More points of the fallback's search do not
-        change that; the stage should stop and say what to check.
+        high, and its phase's own standard error grows as the contrast falls; once it reaches
+        the wrap (``phase_wrap_sigmas``, lock_fit.phase_signal_note) no point there steers the
+        lock. More points of the fallback's search do not change that; the stage should stop
+        and say what to check.
         """
         s = self.settings
         if self.prior is not None or len(self._obs) < 2 * s.fallback_initial_points:
@@ -339,8 +347,8 @@ class ShortfallBound:
         wrapped = sum(n.startswith("phase error") for n in notes)
         unidentified = sum(n == "fringes not identified" for n in notes)
         if low >= max(wrapped, unidentified):
-            cause = (f"the one-photon contrast was below {s.min_contrast_ratio:.2f} of the empty one at "
-                     f"{low} of {len(notes)} points (check the one-photon source's preparation probability "
+            cause = (f"the one-photon contrast was below {s.min_contrast_ratio:.2f} of the empty one, its "
+                     f"phase too noisy to steer, at {low} of {len(notes)} points (check the one-photon source's preparation probability "
                      "and thermal photons, then [nominal] coupling_hz and waist_m)")
         elif wrapped >= unidentified:
             cause = (f"the phase error was beyond the capture range at {wrapped} of {len(notes)} points "

@@ -19,7 +19,7 @@ from autotune.analysis.search import PointResult
 if TYPE_CHECKING:
     from autotune.analysis.lock_settings import LockSettings
 
-__all__ = ["phase_signal_note", "detuning_offset", "LockFit", "log_evidence", "solve_gaussian",
+__all__ = ["phase_signal_note", "mixture_phase_error", "mixture_measured_phase", "detuning_offset", "LockFit", "log_evidence", "solve_gaussian",
            "wrap_phase"]
 
 _TWO_PI = 2.0 * math.pi
@@ -32,25 +32,78 @@ def wrap_phase(angle: float | np.ndarray) -> Any:
     return np.mod(np.asarray(angle, dtype=float) + math.pi, _TWO_PI) - math.pi
 
 
-def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak_rad: float) -> str | None:
+def phase_signal_note(result: PointResult, settings: Any, phase_at_peak_rad: float, *,
+                      wrap_sigmas: float | None = None) -> str | None:
     """None when a measurement's phase signal can steer the detuning, else why not.
 
-    Usable means: fringes identified, a one-photon contrast of at least
-    ``settings.min_contrast_ratio`` of the empty one (near a pi or 3 pi rotation both fall),
-    and a phase error ``|phi - phi*|`` within ``settings.capture_phase_error_rad`` (beyond it
-    the angle wraps and the discriminator is no longer monotone).
+    Usable means: fringes identified, a phase error ``|phi - phi*|`` within
+    ``settings.capture_phase_error_rad`` (beyond it the angle wraps and the discriminator is no
+    longer monotone), and a one-photon fringe whose phase means something: a one-photon contrast
+    of at least ``settings.min_contrast_ratio`` of the empty one, or (with ``wrap_sigmas`` =
+    ``z``: the calibration's and the retune's lock pass ``LockSettings.phase_wrap_sigmas``; the
+    night's hold passes none and keeps the fixed gate) a phase error whose own standard error
+    keeps it ``z`` standard errors from the wrap at pi, ``|phi - phi*| + z sigma_phi <= pi``.
+
+    Why the second way: a poor one-photon source (probability ``p1`` of one photon, the rest
+    mostly empty) gives the one-photon fringe the amplitude ``p0 + p1 a_g(1)`` (docs/physics.md
+    section 5b), whose contrast is about ``2 p1 - 1`` of the empty one near the best (0.16 at
+    ``p1 = 0.58``), below any fixed ratio that still refuses a pi rotation, while its phase moves
+    ``p1 / (2 p1 - 1)`` times faster with the true phase error: weaker, not useless, and its
+    standard error (measured at every point) says how much it is worth. Near a pi rotation
+    (``a_g(1) ~ 0``) the amplitude tends to ``p0 >= 0``, a phase near 0, a phase error near pi:
+    outside the capture range; near the crossing where the amplitude vanishes the contrast and
+    so the phase's own standard error explode. Both are refused.
     """
     if not result.identified:
         return "fringes not identified"
-    if result.contrast_empty <= 0.0 or \
-            result.contrast_one_photon < settings.min_contrast_ratio * result.contrast_empty:
-        ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
-        return f"one-photon/empty contrast {ratio:.2f} below {settings.min_contrast_ratio:.2f}"
+    ratio = result.contrast_one_photon / result.contrast_empty if result.contrast_empty > 0 else 0.0
     error = float(wrap_phase(result.phase_shift - phase_at_peak_rad))
+    z = wrap_sigmas
+    sigma = float(result.phase_shift_stderr)
+    low = result.contrast_empty <= 0.0 or ratio < settings.min_contrast_ratio
+    if low and not (z is not None and result.contrast_empty > 0.0 and math.isfinite(sigma)
+                    and abs(error) + z * sigma <= math.pi
+                    and abs(error) <= settings.capture_phase_error_rad):
+        note = f"one-photon/empty contrast {ratio:.2f} below {settings.min_contrast_ratio:.2f}"
+        if z is not None:
+            note += (f" and the phase error {error / math.pi:+.2f} pi +- {sigma:.2f} rad not "
+                     f"{z:g} standard errors inside the wrap at pi")
+        return note
     if abs(error) > settings.capture_phase_error_rad:
         return (f"phase error {error / math.pi:+.2f} pi beyond the capture range "
                 f"+-{settings.capture_phase_error_rad / math.pi:.2f} pi")
     return None
+
+
+def mixture_phase_error(measured_rad: Any, empty_fraction: Any) -> Any:
+    """The one-photon phase error ``eps`` behind a measured phase error of a mixed field.
+
+    For a field ``p0 |0> + p1 |1>`` with ``a_g(1) = -e^{i eps}`` (a full rotation off by the
+    phase ``eps``), the one-photon fringe's amplitude is ``p0 - p1 e^{i eps}`` (docs/physics.md
+    section 5b: the photon-number average of ``a_g(n)``), so the measured phase error
+    ``psi = arg(e^{i eps} - q) `` with ``q = p0 / p1``; the triangle 0, ``q``, ``e^{i eps}``
+    (law of sines) inverts it: ``eps = psi - arcsin(q sin psi)``. Near the peak
+    ``psi ~ eps / (1 - q) = eps p1 / (p1 - p0)``: 3.6 times ``eps`` at ``p1 = 0.58``.
+
+    Parameters
+    ----------
+    measured_rad : float or array
+        Measured phase error ``psi`` (rad), unwrapped (the law is continued beyond ``+-pi``
+        by the same formula, still increasing: a draw of a posterior may reach there).
+    empty_fraction : float or array
+        ``q = p0 / p1`` in ``[0, 1)`` (0: a pure photon, ``eps = psi``).
+    """
+    psi = np.asarray(measured_rad, dtype=float)
+    q = np.asarray(empty_fraction, dtype=float)
+    return psi - np.arcsin(np.clip(q * np.sin(psi), -1.0, 1.0))
+
+
+def mixture_measured_phase(error_rad: Any, empty_fraction: Any) -> Any:
+    """The measured phase error ``psi = arg(e^{i eps} - q)`` of a true phase error ``eps``
+    (the inverse of :func:`mixture_phase_error`), rad."""
+    eps = np.asarray(error_rad, dtype=float)
+    q = np.asarray(empty_fraction, dtype=float)
+    return np.arctan2(np.sin(eps), np.cos(eps) - q)
 
 
 def detuning_offset(error_rad: float, error_stderr_rad: float, slope_rad_per_hz: float,

@@ -52,7 +52,20 @@ class LockSettings:
         the wrap at pi; the phase error is a nearly linear discriminator within it).
     min_contrast_ratio : float
         Smallest one-photon / empty contrast ratio of a usable point (0.35: near a pi or 3 pi
-        rotation ``|a|`` and the ratio fall towards the unrotated fraction).
+        rotation ``|a|`` and the ratio fall towards the unrotated fraction). A point below it
+        is still usable when its phase error and its own standard error satisfy
+        ``|phi - phi*| + phase_wrap_sigmas sigma_phi <= pi`` (see below); and only below it
+        near the peak does the lock read the inversion through a poor source's mixture law
+        (:func:`autotune.analysis.lock_fit.mixture_phase_error`).
+    phase_wrap_sigmas : float or None
+        Standard errors of a point's measured phase that must separate its phase error from
+        the wrap at pi for a point below ``min_contrast_ratio`` to steer the lock (3: the
+        wrapped angle is then on the right side at 99.7 % for a normal error). A poor
+        one-photon source (``p1`` near 0.6) leaves every point near the best at a contrast ratio
+        of about ``2 p1 - 1`` with a phase that still moves, ``p1 / (2 p1 - 1)`` times faster
+        with the true phase error (docs/physics.md section 5b); its standard error, measured at
+        every point, says what it is worth. None: the contrast ratio alone decides (as in the
+        night's hold, which does not use this setting).
     bracket_step_hz : float or None
         Detuning step of the bracket and the scale of the lock's cubic term, Hz. None: the
         detuning box's width / 12. Pass ``coupling_hz / 5`` from the nominal coupling.
@@ -118,6 +131,7 @@ class LockSettings:
     phase_at_peak_prior_rad: float = 0.02 * math.pi
     capture_phase_error_rad: float = 0.6 * math.pi
     min_contrast_ratio: float = 0.35
+    phase_wrap_sigmas: float | None = 3.0
     bracket_step_hz: float | None = None
     max_lock_step_hz: float | None = None
     velocity_step_fraction: float = 0.05
@@ -163,6 +177,11 @@ class LockSettings:
         if not is_number(self.min_contrast_ratio) or not 0.0 <= float(self.min_contrast_ratio) < 1.0:
             raise ValueError(f"LockSettings.min_contrast_ratio: expected a number in [0, 1), "
                              f"got {self.min_contrast_ratio!r}")
+        if self.phase_wrap_sigmas is not None and (
+                not is_number(self.phase_wrap_sigmas)
+                or not (math.isfinite(float(self.phase_wrap_sigmas)) and float(self.phase_wrap_sigmas) > 0.0)):
+            raise ValueError(f"LockSettings.phase_wrap_sigmas: expected None or a finite number > 0, "
+                             f"got {self.phase_wrap_sigmas!r}")
         if not is_number(self.velocity_step_fraction) or not 0.0 < float(self.velocity_step_fraction) < 0.5:
             raise ValueError(f"LockSettings.velocity_step_fraction: expected a number in (0, 0.5), "
                              f"got {self.velocity_step_fraction!r}")
