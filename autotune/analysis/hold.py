@@ -53,7 +53,11 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   (:func:`flag_probability`) and how many in-control checks are followed by a recheck
   (:func:`in_control_rechecks`), both from the Brook-Evans Markov chain of the CUSUM
   (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
-  share, and the false-alarm design in rig time counts their shorter gaps.
+  share, and the false-alarm design in rig time counts their shorter gaps. A check that leaves
+  a phase chart between half its warning level and the warning level brings the next one after
+  half the interval (a CUSUM with variable sampling intervals: M. R. Reynolds, R. W. Amin and
+  J. C. Arnold, Technometrics 32, 371 (1990); :func:`in_control_sooner`, :func:`next_check`),
+  counted in the share and the false-alarm design alike.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
