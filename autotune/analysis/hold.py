@@ -17,7 +17,9 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   detuning set-point is moved to the filter's prediction of the peak at the middle of the
   coming interval. The gain is the filter's, bounded by ``max_gain`` (the Joseph form keeps the
   covariance right for any gain), and a correction is bounded by ``max_correction_hz`` and the
-  rig's steps.
+  rig's steps. A check read while a phase chart of the test below is above its warning level
+  moves the peak but not the rate (``DriftLock.update(learn_rate=False)``): a step the filter
+  followed through a run of rechecks would otherwise stay in its rate as a ramp.
 - **When the lock cannot follow** (:class:`SequentialTest`, in :mod:`autotune.analysis.hold_lock`;
   a check read by :func:`assess_check`, in :mod:`autotune.analysis.hold_check`). The filter's standardised
   innovations ``z = (y - p^-) / sqrt(P^- + R)`` are independent standard normals while the
