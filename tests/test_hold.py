@@ -26,6 +26,7 @@ from autotune.analysis.hold import (
     plan_checks,
     two_sided_arl,
 )
+from autotune.analysis.hold_plan import SOONER_INTERVAL
 from autotune.analysis.search import PointResult
 
 SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
@@ -314,10 +315,13 @@ def test_plan_keeps_the_checks_within_their_share_and_their_shots():
     lock = DriftLock.start(0.0, 0.0, 1000.0, 1.0, 0.5, 20.0)
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.025)
-    # The rechecks above the warning level take beam too: the share counts them.
+    # The rechecks above the warning level and the checks brought sooner by the middle zone
+    # (after SOONER_INTERVAL of the interval) take beam too: the share counts them.
     gap = plan.inputs["mean_gap_s"]
-    assert gap == pytest.approx((1.0 - plan.inputs["recheck_share"]) * plan.interval_s
-                                + plan.inputs["recheck_share"] * plan.check_s)
+    recheck, sooner = plan.inputs["recheck_share"], plan.inputs["sooner_share"]
+    assert gap == pytest.approx((1.0 - recheck - sooner) * plan.interval_s
+                                + sooner * SOONER_INTERVAL * plan.interval_s
+                                + recheck * plan.check_s)
     assert plan.check_share == pytest.approx(plan.check_s / gap)
     assert plan.check_share <= 0.025 + 1e-9
     assert plan.shots_per_phase >= settings.min_shots_per_phase
@@ -355,3 +359,49 @@ def test_a_budget_too_small_for_the_least_shots_stretches_the_interval():
     assert plan.interval_s > settings.max_interval_s
     assert plan.check_s / plan.interval_s == pytest.approx(0.01)
     assert "fewer but larger checks" in plan.reason
+
+
+# --------------------------------------------------------------------------------------------
+# The rate during a suspected change
+# --------------------------------------------------------------------------------------------
+
+
+def test_an_update_without_the_rate_keeps_it_and_states_its_errors_covariance():
+    """DriftLock.update(learn_rate=False): the rate is unchanged, and the covariance it states
+    (Joseph form, right for any gain) is the covariance of the estimate's errors: 200,000 seeded
+    draws of the state from the prior and of the measurement's noise (numpy's multivariate
+    normal), within 2 % on each term."""
+    lock = DriftLock.start(0.0, 100.0, 1500.0, 2.0, 0.8, 20.0)
+    clock, variance = 600.0, 3000.0**2
+    updated, _ = lock.update(clock, 4000.0, variance, max_gain=0.7, learn_rate=False)
+    assert updated.rate_hz_per_s == lock.rate_hz_per_s
+    prior = lock.predict(clock)
+    rng = np.random.default_rng(31)
+    truth = rng.multivariate_normal([prior.peak_hz, prior.rate_hz_per_s],
+                                    np.array(prior.covariance), size=200_000)
+    measured = truth[:, 0] + rng.normal(0.0, math.sqrt(variance), size=truth.shape[0])
+    gain = updated.peak_hz - prior.peak_hz  # per Hz of innovation, below
+    gain /= 4000.0 - prior.peak_hz
+    estimate = np.column_stack([prior.peak_hz + gain * (measured - prior.peak_hz),
+                                np.full(truth.shape[0], prior.rate_hz_per_s)])
+    errors = np.cov((estimate - truth).T)
+    stated = np.array(updated.covariance)
+    assert errors[0, 0] == pytest.approx(stated[0, 0], rel=0.02)
+    assert errors[1, 1] == pytest.approx(stated[1, 1], rel=0.02)
+    assert errors[0, 1] == pytest.approx(stated[0, 1], rel=0.05, abs=0.02 * math.sqrt(
+        stated[0, 0] * stated[1, 1]))
+
+
+def test_a_check_during_a_suspected_change_does_not_teach_the_rate():
+    """A check read while a phase chart is above its warning level (before or after it) moves
+    the peak but not the drift rate; a quiet check teaches both."""
+    settings, prior, plan = hold_settings(), _prior(), _plan()
+    lock = DriftLock.start(0.0, 0.0, 1000.0, 0.5, 1.0, 20.0)
+    common = dict(detuning_hz=0.0, lock=lock, prior=prior, plan=plan, lower=0.0, inversion=0.0,
+                  reference_inversion=0.72, reference_stderr=0.02, next_interval_s=600.0)
+    off = _check(math.pi - SLOPE * 4000.0, 0.1, 600.0)  # the peak 4 kHz above the set-point
+    quiet = assess_check(settings, result=off, upper=0.0, **common)
+    assert quiet.upper <= plan.test.warning and quiet.lock.rate_hz_per_s != lock.rate_hz_per_s
+    suspected = assess_check(settings, result=off, upper=plan.test.warning + 0.1, **common)
+    assert suspected.lock.rate_hz_per_s == lock.rate_hz_per_s
+    assert suspected.lock.peak_hz != lock.predict(600.0).peak_hz

@@ -17,7 +17,9 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   detuning set-point is moved to the filter's prediction of the peak at the middle of the
   coming interval. The gain is the filter's, bounded by ``max_gain`` (the Joseph form keeps the
   covariance right for any gain), and a correction is bounded by ``max_correction_hz`` and the
-  rig's steps.
+  rig's steps. A check read while a phase chart of the test below is above its warning level
+  moves the peak but not the rate (``DriftLock.update(learn_rate=False)``): a step the filter
+  followed through a run of rechecks would otherwise stay in its rate as a ramp.
 - **When the lock cannot follow** (:class:`SequentialTest`, in :mod:`autotune.analysis.hold_lock`;
   a check read by :func:`assess_check`, in :mod:`autotune.analysis.hold_check`). The filter's standardised
   innovations ``z = (y - p^-) / sqrt(P^- + R)`` are independent standard normals while the
@@ -53,7 +55,11 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   (:func:`flag_probability`) and how many in-control checks are followed by a recheck
   (:func:`in_control_rechecks`), both from the Brook-Evans Markov chain of the CUSUM
   (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
-  share, and the false-alarm design in rig time counts their shorter gaps.
+  share, and the false-alarm design in rig time counts their shorter gaps. A check that leaves
+  a phase chart between half its warning level and the warning level brings the next one after
+  half the interval (a CUSUM with variable sampling intervals: M. R. Reynolds, R. W. Amin and
+  J. C. Arnold, Technometrics 32, 371 (1990); :func:`in_control_sooner`, :func:`next_check`),
+  counted in the share and the false-alarm design alike.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
@@ -116,6 +122,7 @@ from autotune.analysis.hold_plan import (
     cusum_chain,
     flag_probability,
     in_control_rechecks,
+    in_control_sooner,
     next_check,
     plan_checks,
     readable_z,
@@ -141,6 +148,7 @@ __all__ = [
     "cusum_chain",
     "flag_probability",
     "in_control_rechecks",
+    "in_control_sooner",
     "floor_shift_hz",
     "known_cubic",
     "Assessment",

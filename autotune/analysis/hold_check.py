@@ -150,15 +150,9 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     inversion_z = (reference_inversion - result.inversion) / inv_sd if inv_sd > 0 else 0.0
     inversion_stat = max(0.0, inversion + inversion_z - test.inversion_reference)
     if note is not None:
-        if not previous_unusable:
-            return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock,
-                              upper, lower, inversion_stat, inversion_z, "recheck", None,
-                              detuning_hz, f"check unusable for the lock ({note}): check again "
-                                           f"at once")
-        return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock, upper,
-                          lower, inversion_stat, inversion_z, "alarm", "out_of_range",
-                          detuning_hz, f"check unusable for the lock again ({note}): the lock "
-                                       f"cannot follow; retune")
+        return _unusable(note, lock=lock, upper=upper, lower=lower, inversion=inversion_stat,
+                         inversion_z=inversion_z, detuning_hz=detuning_hz,
+                         again=previous_unusable)
     # The check's own noise only: the stored curve's uncertainty (slope, cubic) is the same at
     # every check, a bias of the peak's scale, not noise; counted as noise it would make a large
     # phase error look insignificant (the offset's error grows as D^3) and hide a step.
@@ -168,12 +162,53 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     variance = max(offset_sd**2, 1.0)
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
     new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
+    if max(upper, lower, new_upper, new_lower) > test.warning:
+        # A change is suspected (a phase chart at or above its warning level before or after
+        # this check): the check measures the change, not the drift; the rate keeps what the
+        # quiet checks taught it (a held-out night took a 15 kHz step it followed through a run
+        # of rechecks into a drift rate of +4.4 Hz/s, carried through four retunes).
+        updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain,
+                                          learn_rate=False)
     numbers = (f"phase error {error / math.pi:+.3f} +- {phase_sd / math.pi:.3f} pi: "
                f"set-point {offset / 1e3:+.2f} +- {offset_sd / 1e3:.2f} kHz from the peak; "
                f"innovation {innovation.value_hz / 1e3:+.2f} kHz (z {innovation.z:+.2f}); "
                f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
                f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
                f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
+    aim = updated.peak_at(clock + 0.5 * next_interval_s)
+    move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
+    target = detuning_hz + move
+    if limits is not None:
+        target = float(np.clip(target, limits[0], limits[1]))
+    read = {"offset": offset, "offset_sd": offset_sd, "peak": peak, "variance": variance,
+            "innovation": innovation, "lock": updated, "upper": new_upper, "lower": new_lower,
+            "inversion": inversion_stat, "inversion_z": inversion_z}
+    return _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
+                   numbers=numbers)
+
+
+def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversion: float,
+              inversion_z: float, detuning_hz: float, again: bool) -> Assessment:
+    """A check the lock cannot read: checked again at once, the alarm when ``again``."""
+    if not again:
+        return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock,
+                          upper, lower, inversion, inversion_z, "recheck", None,
+                          detuning_hz, f"check unusable for the lock ({note}): check again "
+                                       f"at once")
+    return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock, upper,
+                      lower, inversion, inversion_z, "alarm", "out_of_range",
+                      detuning_hz, f"check unusable for the lock again ({note}): the lock "
+                                   f"cannot follow; retune")
+
+
+def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any], *,
+            detuning_hz: float, aim: float, target: float, numbers: str) -> Assessment:
+    """The action of a check the lock read (``read``: its offset, the lock's update and the
+    statistics after it): an alarm, else a recheck, else a correction or holding on."""
+    common = (True, "", read["offset"], read["offset_sd"], read["peak"], read["variance"],
+              read["innovation"], read["lock"], read["upper"], read["lower"],
+              read["inversion"], read["inversion_z"])
+    new_upper, new_lower, inversion_stat = read["upper"], read["lower"], read["inversion"]
     alarm = None
     if new_upper > test.threshold:
         alarm = "upper"
@@ -181,18 +216,12 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
         alarm = "lower"
     elif inversion_stat > test.inversion_threshold:
         alarm = "inversion"
-    aim = updated.peak_at(clock + 0.5 * next_interval_s)
-    move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
-    target = detuning_hz + move
-    if limits is not None:
-        target = float(np.clip(target, limits[0], limits[1]))
     if alarm is not None:
         side = {"upper": "the peak moved up beyond what the lock follows",
                 "lower": "the peak moved down beyond what the lock follows",
                 "inversion": "the inversion dropped below its reference"}[alarm]
-        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
-                          new_upper, new_lower, inversion_stat, inversion_z, "alarm", alarm,
-                          detuning_hz, f"{numbers}: alarm, {side}; retune")
+        return Assessment(*common, "alarm", alarm, detuning_hz,
+                          f"{numbers}: alarm, {side}; retune")
     rising = new_upper > test.warning or new_lower > test.warning or \
         inversion_stat > test.inversion_warning
     action = "hold"
@@ -200,8 +229,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
         action = "correct"
     if rising:
         why = "a statistic is above its warning level: check again at once"
-        return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated,
-                          new_upper, new_lower, inversion_stat, inversion_z, "recheck", None,
+        return Assessment(*common, "recheck", None,
                           target if action == "correct" else detuning_hz,
                           f"{numbers}: {why}" + (f"; lock moves the detuning by "
                                                  f"{(target - detuning_hz) / 1e3:+.2f} kHz"
@@ -210,13 +238,12 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
         limited = " (bounded)" if abs(aim - target) > 1.0 else ""
         why = (f"lock moves the detuning by {(target - detuning_hz) / 1e3:+.2f} kHz to "
                f"{target / 1e3:+.2f} kHz{limited}, the predicted peak at the middle of the next "
-               f"interval (gain {innovation.gain:.2f}, drift {updated.rate_hz_per_s:+.2f} Hz/s)")
+               f"interval (gain {read['innovation'].gain:.2f}, drift "
+               f"{read['lock'].rate_hz_per_s:+.2f} Hz/s)")
     else:
         why = (f"held: the lock's correction {(aim - detuning_hz) / 1e3:+.2f} kHz is below "
                f"{settings.min_correction_hz / 1e3:.2f} kHz")
-    return Assessment(True, "", offset, offset_sd, peak, variance, innovation, updated, new_upper,
-                      new_lower, inversion_stat, inversion_z, action, None, target,
-                      f"{numbers}: {why}")
+    return Assessment(*common, action, None, target, f"{numbers}: {why}")
 
 
 def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_per_s: float,

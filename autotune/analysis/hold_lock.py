@@ -236,11 +236,14 @@ class DriftLock:
         return self.peak_hz + self.rate_hz_per_s * (float(clock_s) - self.clock_s)
 
     def update(self, clock_s: float, peak_hz: float, variance_hz2: float, *,
-               max_gain: float = 1.0) -> tuple[DriftLock, Innovation]:
+               max_gain: float = 1.0, learn_rate: bool = True) -> tuple[DriftLock, Innovation]:
         """Tell the lock one measured peak (Hz, with its variance) at ``clock_s``.
 
         The Kalman gain of the peak is bounded by ``max_gain`` (both gains scaled alike); the
-        covariance is updated in Joseph form, right for any gain.
+        covariance is updated in Joseph form, right for any gain. With ``learn_rate`` False the
+        rate's gain is zero (the peak alone moves): a check taken while a change is suspected
+        measures the change, not the drift, and a step the filter followed into its rate would
+        stay there as a ramp.
         """
         if not (is_finite_number(peak_hz) and is_finite_number(variance_hz2) and variance_hz2 > 0.0):
             raise ValueError(f"peak_hz, variance_hz2: expected finite numbers (variance > 0), "
@@ -252,6 +255,8 @@ class DriftLock:
         gain = cov[:, 0] / s
         if gain[0] > max_gain:
             gain = gain * (max_gain / gain[0])
+        if not learn_rate:
+            gain = np.array([gain[0], 0.0])
         a = np.eye(2) - np.outer(gain, [1.0, 0.0])
         post = a @ cov @ a.T + variance_hz2 * np.outer(gain, gain)
         post = 0.5 * (post + post.T)

@@ -38,6 +38,9 @@ __all__ = [
     "CheckPlan",
     "cusum_chain",
     "in_control_rechecks",
+    "in_control_sooner",
+    "SOONER_LEVEL",
+    "SOONER_INTERVAL",
     "flag_probability",
     "readable_z",
     "plan_checks",
@@ -56,6 +59,15 @@ _SHIFTS = 8
 # warning levels it chooses among (fractions of each threshold).
 _CHAIN_CELLS = 40
 _WARNING_FRACTIONS = (0.15, 0.25, 0.35, 0.5)
+
+#: A check that leaves a phase chart at or above this fraction of its warning level (and below
+#: the warning level) brings the next check after :data:`SOONER_INTERVAL` of the interval: the
+#: middle zone of a CUSUM with variable sampling intervals (M. R. Reynolds, R. W. Amin and
+#: J. C. Arnold, Technometrics 32, 371 (1990)). A step whose first check saw it at about two
+#: standard deviations, short of the warning level, waited a whole interval more (two of seven
+#: steps on mismatch nights, 6.2 min each).
+SOONER_LEVEL = 0.5
+SOONER_INTERVAL = 0.5
 
 # One-sided 5 % (scipy.stats.norm.isf(0.05)): the least room of a check, however rare the checks.
 _LEAST_USABLE_Z = 1.645
@@ -220,6 +232,16 @@ def in_control_rechecks(reference: float, threshold: float, warning: float,
     return float(np.clip(stationary @ np.maximum(above, 0.0), 0.0, 1.0))
 
 
+def in_control_sooner(reference: float, threshold: float, warning: float,
+                      cells: int = _CHAIN_CELLS) -> float:
+    """Long-run share of a one-sided chart's in-control checks that leave it in the middle zone,
+    at or above ``SOONER_LEVEL`` of the warning level and below the warning level (each followed
+    by the next check after ``SOONER_INTERVAL`` of the interval): :func:`in_control_rechecks` at
+    the two levels, subtracted."""
+    return max(in_control_rechecks(reference, threshold, SOONER_LEVEL * warning, cells)
+               - in_control_rechecks(reference, threshold, warning, cells), 0.0)
+
+
 def flag_probability(shift: float, reference: float, threshold: float, warning: float,
                      cells: int = _CHAIN_CELLS) -> float:
     """Probability that the first check after a shift of ``shift`` standard deviations leaves
@@ -274,16 +296,23 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
     k_inv = 0.5 * settings.inversion_drop * reference_inversion / inv_sd
     # The charts' in-control run lengths are in checks, rechecks included: the mean rig time
     # per check is the interval, shortened by the share of checks that are rechecks (back to
-    # back). Two passes: the rechecks depend on the thresholds they help set.
+    # back) and by the phase charts' middle zone (SOONER_LEVEL: the next check after
+    # SOONER_INTERVAL of the interval). Passes until the gap settles (to 0.1 %, at most six):
+    # the rechecks and the middle zone depend on the thresholds they help set.
     gap = interval
-    recheck = 0.0
-    for _ in range(2):
+    recheck = sooner = 0.0
+    for _ in range(6):
+        previous = gap
         checks_between_false_alarms = max(settings.false_alarm_interval_s / gap, 1.0)
         h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
         h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
         recheck = min(2.0 * in_control_rechecks(k, h, warning_fraction * h)
                       + in_control_rechecks(k_inv, h_inv, warning_fraction * h_inv), 0.9)
-        gap = (1.0 - recheck) * interval + recheck * check_s
+        sooner = min(2.0 * in_control_sooner(k, h, warning_fraction * h), 0.95 - recheck)
+        gap = (1.0 - recheck - sooner) * interval + sooner * SOONER_INTERVAL * interval \
+            + recheck * check_s
+        if abs(gap - previous) <= 1e-3 * previous:
+            break
     rate_sd = lock.rate_stderr_hz_per_s
     tracking = math.sqrt(p_post + settings.walk_hz_per_sqrt_s**2 * interval / 2.0
                          + (rate_sd * interval) ** 2 / 3.0
@@ -295,7 +324,8 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
     return {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
             "detuning_stderr_hz": math.sqrt(detuning_var),
             "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv),
-            "shifts": shifts, "recheck_share": recheck, "mean_gap_s": gap,
+            "shifts": shifts, "recheck_share": recheck, "sooner_share": sooner,
+            "mean_gap_s": gap,
             "step_delay_s": _delay(step_sd, k, h, w, interval, check_s, flag=flag),
             "step_delay_late_s": _delay(step_sd, k, h, w, interval, check_s, late=True,
                                         flag=flag),
@@ -390,57 +420,97 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     design = floor_shift_hz(settings.floor, prior.slope_rad_per_hz)
     capture = settings.lock.capture_phase_error_rad / slope
     shifts = np.geomspace(design, max(capture, design), _SHIFTS)
-    rate = settings.repetition_rate_hz
-    phases = settings.ramsey_phases
     phase_var = noise.phase_variance_shots
     if signal is not None:
         phase_var = max(phase_var, signal.phase_variance_shots)
-
-    @functools.cache
-    def least_at(interval: float) -> int:
-        """The least shots per phase of a check every ``interval``: the configured least, and
-        what the lock needs to read it (:func:`readable_z` of the interval)."""
-        least = settings.min_shots_per_phase
-        if signal is not None:
-            readable = signal.usable_shots(
-                ratio=settings.lock.min_contrast_ratio,
-                phase_margin_rad=settings.lock.capture_phase_error_rad - design * slope,
-                z=readable_z(settings, interval))
-            if readable is not None:
-                least = max(least, math.ceil(readable / measurement_shots(phases, 1)))
-        return min(least, settings.max_shots_per_phase)
-    steady: dict[tuple[float, int], tuple[float, float]] = {}
+    least_at = functools.cache(functools.partial(_least_shots_per_phase, settings, signal,
+                                                 design * slope))
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
               "step_hz": step_hz, "noise": noise, "lock": lock,
               "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
-              "steady": steady}
+              "steady": {}}
+    top = max(settings.max_interval_s, _MIN_INTERVAL_S)
+    best, fallback = _search_cadences(settings, check_share=check_share, top=top,
+                                      step_rate_per_s=step_rate_per_s, least_at=least_at,
+                                      common=common)
+    inputs = _plan_inputs(settings, noise=noise, signal=signal, prior=prior, lock=lock,
+                          phase_var=phase_var, readable=least_at(float(top)),
+                          check_share=check_share, reference_inversion=reference_inversion,
+                          reference_stderr=reference_stderr, step_hz=step_hz)
+    row, why = _choose(settings, best, fallback, check_share=check_share,
+                       step_rate_per_s=step_rate_per_s, least=least_at(float(top)),
+                       common=common)
+    row["expected_delay_s"] = _expected_delay(row)
+    for name in ("innovation_sd_hz", "design_snr", "recheck_share", "sooner_share", "mean_gap_s",
+                 "step_delay_late_s", "step_flag"):
+        inputs[name] = row[name]
+    share = row["check_s"] / row["mean_gap_s"]
+    return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
+                     check_s=row["check_s"], check_share=share,
+                     detuning_stderr_hz=row["detuning_stderr_hz"], design_shift_hz=design,
+                     test=row["test"], expected_delay_s=row["expected_delay_s"],
+                     step_delay_s=row["step_delay_s"],
+                     false_alarm_interval_h=row["false_alarm_interval_h"],
+                     tracking_error_hz=row["tracking_error_hz"],
+                     reason=_plan_reason(row, why, share=share, step_hz=step_hz),
+                     inputs=inputs)
 
-    def sized(interval: float, fraction: float) -> dict[str, Any] | None:
-        """Checks every ``interval`` as large as the share pays for, rechecks included."""
-        per_phase = int(math.floor(check_share * interval * rate / measurement_shots(phases, 1)))
-        least = least_at(interval)
-        row = None
-        for _ in range(4):
-            if per_phase < least:
-                return None
-            per_phase = min(per_phase, settings.max_shots_per_phase)
-            row = _check_row(settings, interval=interval, per_phase=per_phase,
-                             warning_fraction=fraction, **common)
-            if row["check_s"] / row["mean_gap_s"] <= check_share * (1.0 + 1e-9):
-                return row
-            per_phase = min(per_phase - 1, math.floor(
-                check_share * row["mean_gap_s"] * rate / measurement_shots(phases, 1)))
-        return None
 
+def _least_shots_per_phase(settings: HoldSettings, signal: SignalModel | None,
+                           design_phase_rad: float, interval: float) -> int:
+    """The least shots per phase of a check every ``interval``: the configured least, and what
+    the lock needs to read it (:func:`readable_z` of the interval; ``design_phase_rad`` is the
+    design shift's phase error, the room it leaves in the capture range)."""
+    least = settings.min_shots_per_phase
+    if signal is not None:
+        readable = signal.usable_shots(
+            ratio=settings.lock.min_contrast_ratio,
+            phase_margin_rad=settings.lock.capture_phase_error_rad - design_phase_rad,
+            z=readable_z(settings, interval))
+        if readable is not None:
+            least = max(least, math.ceil(readable / measurement_shots(settings.ramsey_phases, 1)))
+    return min(least, settings.max_shots_per_phase)
+
+
+def _sized(settings: HoldSettings, *, interval: float, fraction: float, check_share: float,
+           least: int, common: Mapping[str, Any]) -> dict[str, Any] | None:
+    """Checks every ``interval`` as large as the share pays for, rechecks included (None when
+    they fall below ``least`` shots per phase)."""
+    one = measurement_shots(settings.ramsey_phases, 1)
+    rate = settings.repetition_rate_hz
+    per_phase = int(math.floor(check_share * interval * rate / one))
+    row = None
+    for _ in range(4):
+        if per_phase < least:
+            return None
+        per_phase = min(per_phase, settings.max_shots_per_phase)
+        row = _check_row(settings, interval=interval, per_phase=per_phase,
+                         warning_fraction=fraction, **common)
+        if row["check_s"] / row["mean_gap_s"] <= check_share * (1.0 + 1e-9):
+            return row
+        per_phase = min(per_phase - 1, math.floor(check_share * row["mean_gap_s"] * rate / one))
+    return None
+
+
+def _search_cadences(settings: HoldSettings, *, check_share: float, top: float,
+                     step_rate_per_s: float, least_at: Any, common: Mapping[str, Any]
+                     ) -> tuple[tuple[float, float, dict[str, Any]] | None,
+                                tuple[float, dict[str, Any]] | None]:
+    """The candidates of :func:`plan_checks`: the best whose tracking error stays below a third
+    of the design shift (``(delay, interval, row)``) and the fallback of the least expected
+    share of the night lost (``(lost, row)``); None where no candidate qualifies."""
+    design = common["design"]
+    one = measurement_shots(settings.ramsey_phases, 1)
     best: tuple[float, float, dict[str, Any]] | None = None
     fallback: tuple[float, dict[str, Any]] | None = None
-    top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     for interval in np.geomspace(_MIN_INTERVAL_S, top, _CANDIDATES):
         interval = float(interval)
-        if math.floor(check_share * interval * rate / measurement_shots(phases, 1)) < least_at(interval):
+        least = least_at(interval)
+        if math.floor(check_share * interval * settings.repetition_rate_hz / one) < least:
             continue
         for fraction in _WARNING_FRACTIONS:
-            row = sized(interval, fraction)
+            row = _sized(settings, interval=interval, fraction=fraction, check_share=check_share,
+                         least=least, common=common)
             if row is None or row["design_snr"] < _MIN_DESIGN_SNR:
                 continue
             tracking = row["tracking_error_hz"]
@@ -456,68 +526,84 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
             if best is None or delay < best[0] - 1e-6 or (abs(delay - best[0]) <= 1e-6
                                                           and interval > best[1]):
                 best = (delay, interval, row)
-    inputs = {"phase_variance_shots": phase_var,
-              "measured_phase_variance_shots": noise.phase_variance_shots,
-              "signal": None if signal is None else signal.to_dict(),
-              "readable_shots_per_phase": least_at(float(top)),
-              "inversion_variance_shots": noise.inversion_variance_shots,
-              "noise_measurements": noise.measurements, "slope_rad_per_hz": prior.slope_rad_per_hz,
-              "rate_hz_per_s": lock.rate_hz_per_s, "rate_stderr_hz_per_s": lock.rate_stderr_hz_per_s,
-              "walk_hz_per_sqrt_s": settings.walk_hz_per_sqrt_s, "check_share": check_share,
-              "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
-              "floor": settings.floor, "step_hz": step_hz}
+    return best, fallback
+
+
+def _plan_inputs(settings: HoldSettings, *, noise: NoiseModel, signal: SignalModel | None,
+                 prior: LockPrior, lock: DriftLock, phase_var: float, readable: int,
+                 check_share: float, reference_inversion: float, reference_stderr: float,
+                 step_hz: float) -> dict[str, Any]:
+    """What a plan was computed from, for its ``inputs``."""
+    return {"phase_variance_shots": phase_var,
+            "measured_phase_variance_shots": noise.phase_variance_shots,
+            "signal": None if signal is None else signal.to_dict(),
+            "readable_shots_per_phase": readable,
+            "inversion_variance_shots": noise.inversion_variance_shots,
+            "noise_measurements": noise.measurements, "slope_rad_per_hz": prior.slope_rad_per_hz,
+            "rate_hz_per_s": lock.rate_hz_per_s, "rate_stderr_hz_per_s": lock.rate_stderr_hz_per_s,
+            "walk_hz_per_sqrt_s": settings.walk_hz_per_sqrt_s, "check_share": check_share,
+            "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
+            "floor": settings.floor, "step_hz": step_hz}
+
+
+def _choose(settings: HoldSettings, best: tuple[float, float, dict[str, Any]] | None,
+            fallback: tuple[float, dict[str, Any]] | None, *, check_share: float,
+            step_rate_per_s: float, least: int, common: Mapping[str, Any]
+            ) -> tuple[dict[str, Any], str]:
+    """The row :func:`plan_checks` takes, and why: the best candidate, else the fallback, else
+    fewer but larger checks (:func:`_larger_checks`)."""
+    design, step_hz = common["design"], common["step_hz"]
     if best is not None:
-        row = best[2]
-        why = (f"the least expected time to confirm a {step_hz / 1e3:.0f} kHz step, among the "
-               f"cadences and warning levels whose tracking error stays below a third of the "
-               f"{design / 1e3:.1f} kHz design shift (the detuning error that takes the inversion "
-               f"to {settings.floor:.2f} of the best)")
-    elif fallback is not None:
-        row = fallback[1]
-        why = (f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
-               f"design shift within the budget: the least expected share of the night lost, "
-               f"{fallback[0]:.1%} (the tracking error beyond the design shift, and "
-               f"{step_rate_per_s * 3600:.2f} steps per hour each unheld for its time to confirm)")
-    else:
-        # Fewer but larger checks: the least size that reads the phase and tells the design
-        # shift from the noise of one check (twice the bare need: the filter's own
-        # uncertainty adds to the innovation), spaced to fit the share.
-        tell = phase_var / (slope * design / _MIN_DESIGN_SNR) ** 2 * 2.0
-        least = least_at(float(top))
-        per_phase = min(max(least, int(math.ceil(tell / measurement_shots(phases, 1)))),
-                        settings.max_shots_per_phase)
-        check_s = measurement_shots(phases, per_phase) / rate
-        row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase,
-                         warning_fraction=_WARNING_FRACTIONS[-1], **common)
-        why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
-               f"of {least} shots per phase that the lock reads and that tells the design shift "
-               f"from noise: fewer but larger checks")
+        return best[2], (
+            f"the least expected time to confirm a {step_hz / 1e3:.0f} kHz step, among the "
+            f"cadences and warning levels whose tracking error stays below a third of the "
+            f"{design / 1e3:.1f} kHz design shift (the detuning error that takes the inversion "
+            f"to {settings.floor:.2f} of the best)")
+    if fallback is not None:
+        return fallback[1], (
+            f"no interval keeps the tracking error below a third of the {design / 1e3:.1f} kHz "
+            f"design shift within the budget: the least expected share of the night lost, "
+            f"{fallback[0]:.1%} (the tracking error beyond the design shift, and "
+            f"{step_rate_per_s * 3600:.2f} steps per hour each unheld for its time to confirm)")
+    return _larger_checks(settings, check_share=check_share, least=least, common=common)
+
+
+def _larger_checks(settings: HoldSettings, *, check_share: float, least: int,
+                   common: Mapping[str, Any]) -> tuple[dict[str, Any], str]:
+    """Fewer but larger checks: the least size that reads the phase and tells the design shift
+    from the noise of one check (twice the bare need: the filter's own uncertainty adds to the
+    innovation), spaced to fit the share; the row and why."""
+    phases = settings.ramsey_phases
+    tell = common["phase_var"] / (common["slope"] * common["design"] / _MIN_DESIGN_SNR) ** 2 * 2.0
+    per_phase = min(max(least, int(math.ceil(tell / measurement_shots(phases, 1)))),
+                    settings.max_shots_per_phase)
+    check_s = measurement_shots(phases, per_phase) / settings.repetition_rate_hz
+    row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase,
+                     warning_fraction=_WARNING_FRACTIONS[-1], **common)
+    why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
+           f"of {least} shots per phase that the lock reads and that tells the design shift "
+           f"from noise: fewer but larger checks")
+    return row, why
+
+
+def _plan_reason(row: Mapping[str, Any], why: str, *, share: float, step_hz: float) -> str:
+    """The plan in one sentence, with its numbers."""
     test = row["test"]
-    row["expected_delay_s"] = _expected_delay(row)
-    for name in ("innovation_sd_hz", "design_snr", "recheck_share", "mean_gap_s",
-                 "step_delay_late_s", "step_flag"):
-        inputs[name] = row[name]
-    share = row["check_s"] / row["mean_gap_s"]
-    reason = (f"a check of {row['shots_per_phase']} shots per phase ({row['check_s']:.0f} s of beam, "
-              f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak, the design shift "
-              f"{inputs['design_snr']:.1f} sd of the innovation) every "
-              f"{row['interval_s'] / 60:.1f} min of rig time, checked again at once above the "
-              f"warning level ({row['recheck_share']:.0%} of the checks in a quiet night; "
-              f"{share:.1%} of the beam in all): {why}; test k {test.reference:.2f}, "
-              f"h {test.threshold:.2f}, w {test.warning:.2f} (false alarms every "
-              f"{row['false_alarm_interval_h']:.0f} h, Siegmund); a {step_hz / 1e3:.0f} kHz step "
-              f"is confirmed {row['step_delay_s'] / 60:.1f} min after it in the mean, "
-              f"{row['step_delay_late_s'] / 60:.1f} min when it comes just after a check (its "
-              f"first check passes the warning level with probability {row['step_flag']:.2f}; "
-              f"Brook-Evans chain), a shift at the design {row['expected_delay_s'] / 60:.1f} min "
-              f"(mean over the shifts to the capture range)")
-    return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
-                     check_s=row["check_s"], check_share=share,
-                     detuning_stderr_hz=row["detuning_stderr_hz"], design_shift_hz=design,
-                     test=test, expected_delay_s=row["expected_delay_s"],
-                     step_delay_s=row["step_delay_s"],
-                     false_alarm_interval_h=row["false_alarm_interval_h"],
-                     tracking_error_hz=row["tracking_error_hz"], reason=reason, inputs=inputs)
+    return (f"a check of {row['shots_per_phase']} shots per phase ({row['check_s']:.0f} s of beam, "
+            f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak, the design shift "
+            f"{row['design_snr']:.1f} sd of the innovation) every "
+            f"{row['interval_s'] / 60:.1f} min of rig time, checked again at once above the "
+            f"warning level ({row['recheck_share']:.0%} of the checks in a quiet night), "
+            f"after {SOONER_INTERVAL:.0%} of the interval above {SOONER_LEVEL:.0%} of it "
+            f"({row['sooner_share']:.0%}; "
+            f"{share:.1%} of the beam in all): {why}; test k {test.reference:.2f}, "
+            f"h {test.threshold:.2f}, w {test.warning:.2f} (false alarms every "
+            f"{row['false_alarm_interval_h']:.0f} h, Siegmund); a {step_hz / 1e3:.0f} kHz step "
+            f"is confirmed {row['step_delay_s'] / 60:.1f} min after it in the mean, "
+            f"{row['step_delay_late_s'] / 60:.1f} min when it comes just after a check (its "
+            f"first check passes the warning level with probability {row['step_flag']:.2f}; "
+            f"Brook-Evans chain), a shift at the design {row['expected_delay_s'] / 60:.1f} min "
+            f"(mean over the shifts to the capture range)")
 
 
 # --------------------------------------------------------------------------------------------
@@ -542,19 +628,27 @@ def recheck_run_limit(test: SequentialTest) -> int:
 
 
 def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
-               run: int) -> dict[str, Any]:
+               run: int, statistic: float = 0.0) -> dict[str, Any]:
     """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
 
     A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
-    stay within :func:`recheck_run_limit`; any other check comes the plan's interval after the
-    first shot of the last (``first_shot_s``, else ``clock_s``). Returns ``due_clock``,
-    ``recheck`` and ``run`` (the rechecks in a row, this one included).
+    stay within :func:`recheck_run_limit`; a check assessed ``"hold"`` or ``"correct"`` that
+    left the larger phase chart (``statistic``, the CUSUM's value after it) at or above
+    :data:`SOONER_LEVEL` of the warning level comes :data:`SOONER_INTERVAL` of the plan's
+    interval after the first shot of the last (the middle zone of a CUSUM with variable
+    sampling intervals; the planner counts its share in the checks' beam,
+    :func:`in_control_sooner`); any other check comes the plan's interval after it
+    (``first_shot_s``, else ``clock_s``). Returns ``due_clock``, ``recheck``, ``sooner`` and
+    ``run`` (the rechecks in a row, this one included).
     """
     if action == "recheck":
         run = int(run) + 1
         if run <= recheck_run_limit(plan.test):
-            return {"due_clock": float(clock_s), "recheck": True, "run": run}
+            return {"due_clock": float(clock_s), "recheck": True, "sooner": False, "run": run}
     else:
         run = 0
     start = float(clock_s if first_shot_s is None else first_shot_s)
-    return {"due_clock": start + plan.interval_s, "recheck": False, "run": run}
+    sooner = action in ("hold", "correct") and \
+        float(statistic) >= SOONER_LEVEL * float(plan.test.warning)
+    interval = plan.interval_s * (SOONER_INTERVAL if sooner else 1.0)
+    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "run": run}

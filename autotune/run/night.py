@@ -606,7 +606,8 @@ class Night:
             self.session.move_to(held, reason="back to the held set-points")
         if self._in_flight() != "check":
             self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
-                             "the next check" + (" (recheck)" if nxt.get("recheck") else ""),
+                             "the next check" + (" (recheck)" if nxt.get("recheck") else
+                                                 " (sooner)" if nxt.get("sooner") else ""),
                              point=point)
             if self.clock.end_reason() is not None:
                 return
@@ -711,7 +712,8 @@ class Night:
             after = next_check(plan, action=a.action, clock_s=clock_now,
                                first_shot_s=m.t_first,
                                # An unreadable check is always repeated at once.
-                               run=int(state["next"].get("run", 0)) if a.usable else 0)
+                               run=int(state["next"].get("run", 0)) if a.usable else 0,
+                               statistic=max(a.upper, a.lower) if a.usable else 0.0)
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
