@@ -140,7 +140,7 @@ class ConfigErrors(ConfigError):
 
     def __init__(self, problems: Sequence[ConfigError]) -> None:
         if not problems:
-            raise ValueError("ConfigErrors: expected at least one problem")
+            raise ValueRefused("ConfigErrors: expected at least one problem")
         self.problems = list(problems)
         first = self.problems[0]
         super().__init__(first.file, first.key, first.expected, first.got,

@@ -4,10 +4,15 @@ signal), and the values refused in code are ValueRefused (a ValueError too, as t
 
 from __future__ import annotations
 
+import ast
+from pathlib import Path
+
 import pytest
 
 from autotune import cli, errors
 from autotune.cli.common import guarded
+from autotune.analysis.lock_settings import LockSettings
+from autotune.analysis.search import Dimension
 from autotune.kit.channels import ChannelMap, LinearLaw, StarkLaw
 from autotune.config import packaged_config
 from autotune.kit.driver_config import DriverStartError
@@ -61,6 +66,8 @@ def test_the_command_exits_with_the_errors_own_code(error, capsys):
 
 
 @pytest.mark.parametrize(("build", "words"), [
+    (lambda: LockSettings(target_shortfall=2.0), "LockSettings.target_shortfall: expected a number in"),
+    (lambda: Dimension("velocity", 500.0, 400.0), "expected low < high"),
     (lambda: LinearLaw(0.0), "scale: expected a finite non-zero number, got 0.0"),
     (lambda: StarkLaw(0.0, 0.0, 1e-2), "coefficient_hz_m2_per_v2: expected a finite non-zero"),
     (lambda: StarkLaw(-1.0, 0.0, 1e-2).to_channel(10.0), "beyond the Stark law's reach"),
@@ -72,3 +79,15 @@ def test_values_refused_in_code_are_the_trees_own(build, words):
     with pytest.raises(errors.ValueRefused, match=words) as info:
         build()
     assert isinstance(info.value, ValueError) and info.value.exit_code == cli.EXIT_BAD_INPUT
+
+
+def test_the_core_raises_no_bare_value_error():
+    """Every ``raise ValueError(...)`` of the package is a ValueRefused (a subclass, so callers
+    that catch ValueError still do): an error a caller can cause carries its exit code."""
+    found = []
+    for path in sorted((Path(errors.__file__).parent).rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Raise) and isinstance(node.exc, ast.Call) \
+                    and isinstance(node.exc.func, ast.Name) and node.exc.func.id == "ValueError":
+                found.append(f"{path.name}:{node.lineno}")
+    assert not found, found

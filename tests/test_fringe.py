@@ -309,6 +309,21 @@ def test_tiny_samples_give_finite_wide_intervals():
     assert -1.0 <= est.inversion_low <= est.inversion <= est.inversion_high <= 1.0
 
 
+def test_an_overshooting_fit_is_brought_into_the_physical_range_inside_its_interval():
+    """Three phases 2 pi / 3 apart determine a + b cos phi + c sin phi exactly. Fractions
+    (0, 0, 1) give a = 1/3 and an amplitude 2/3, (1, 1, 0) the mirror fringe, so the unclipped
+    inversion is (2/3 - 1/3) + 2 (2/3) = 5/3 (section 5's formula, worked by hand): beyond the
+    physical 1, since no difference of two probabilities exceeds 1. The estimate is 1, and its
+    interval lies in [-1, 1] and holds it (it once reported 5/3 above an interval ending at 1)."""
+    phases = _phases(3)
+    empty = FringeData.from_counts(phases, [0, 0, 0], [0, 0, 200], [200, 200, 0])
+    one = FringeData.from_counts(phases, [0, 0, 0], [200, 200, 0], [0, 0, 200])
+    est = estimate_inversion(empty, one, resamples=200)
+    assert est.identified
+    assert est.inversion == 1.0
+    assert -1.0 <= est.inversion_low <= est.inversion <= est.inversion_high <= 1.0
+
+
 def test_to_dict_is_json_ready_plain_numbers():
     """to_dict returns plain Python numbers that json.dumps accepts with allow_nan=False."""
     rng = np.random.default_rng(9)

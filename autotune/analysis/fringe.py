@@ -623,7 +623,8 @@ def estimate_inversion(
     estimator (weights included), vectorised as batched 3x3 solves. The inversion interval
     is the hull of the bias-corrected percentile, basic and normal bootstrap intervals
     (the ``hypot`` term is biased upward at low signal; see ``_inversion_interval``),
-    clipped to the physical range [-1, 1]. Standard errors are
+    clipped to the physical range [-1, 1]; an estimate beyond that range (fringes fitted at few
+    phases can overshoot [0, 1]) is brought to its edge, inside its interval. Standard errors are
     bootstrap standard deviations (the phase shift's from wrapped differences).
 
     Parameters
@@ -703,16 +704,20 @@ def _bootstrap_estimate(
     boot = _fringe_quantities(theta0, theta1)
     point = _fringe_quantities(fit0.coefficients, fit1.coefficients)
 
-    inversion = float(point["inversion"])
-    low, high = _inversion_interval(boot["inversion"], inversion, level)
+    raw = float(point["inversion"])
+    low, high = _inversion_interval(boot["inversion"], raw, level)
+    # The fitted sinusoids are not held to [0, 1], so fringes measured at few phases can give an
+    # inversion beyond the physical range: the estimate is brought to the nearest physical value,
+    # and the interval, clipped to the range, holds it.
+    inversion = min(max(raw, -1.0), 1.0)
     low = min(max(low, -1.0), inversion)
     high = max(min(high, 1.0), inversion)
     shift = float(point["phase1"] - point["phase0"])
     shift_replicates = boot["phase1"] - boot["phase0"]
     return InversionEstimate(
         inversion=inversion,
-        inversion_low=float(max(low, -1.0)),
-        inversion_high=float(min(high, 1.0)),
+        inversion_low=float(low),
+        inversion_high=float(high),
         inversion_stderr=float(np.std(boot["inversion"], ddof=1)),
         phase_shift=_mod_two_pi(shift),
         phase_shift_stderr=float(np.sqrt(np.mean(_wrap(shift_replicates - shift) ** 2))),

@@ -159,6 +159,7 @@ from autotune.analysis.guided_absorption import AbsorptionSignal
 from autotune.analysis.guided_phase import Observation, PhaseSignal
 from autotune.analysis.guided_proposals import ProposalChoice
 from autotune.analysis.guided_shortfall import ShortfallBound
+from autotune.errors import ValueRefused
 
 __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch",
            "phase_signal_note", "detuning_offset"]
@@ -205,24 +206,24 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
     def __init__(self, space: SearchSpace, *, seed: int, start: Mapping[str, float],
                  settings: LockSettings | None = None, prior: LockPrior | None = None) -> None:
         if not isinstance(space, SearchSpace):
-            raise ValueError(f"space: expected a SearchSpace, got {type(space).__name__}")
+            raise ValueRefused(f"space: expected a SearchSpace, got {type(space).__name__}")
         if set(space.names) != {"velocity", "detuning"}:
-            raise ValueError(f"space: expected the dimensions ['velocity', 'detuning'], got {list(space.names)}")
+            raise ValueRefused(f"space: expected the dimensions ['velocity', 'detuning'], got {list(space.names)}")
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-            raise ValueError(f"seed: expected an integer, got {seed!r}")
+            raise ValueRefused(f"seed: expected an integer, got {seed!r}")
         settings = LockSettings() if settings is None else settings
         if not isinstance(settings, LockSettings):
-            raise ValueError(f"settings: expected a LockSettings, got {type(settings).__name__}")
+            raise ValueRefused(f"settings: expected a LockSettings, got {type(settings).__name__}")
         if prior is not None and not isinstance(prior, LockPrior):
-            raise ValueError(f"prior: expected None or a LockPrior (LockPrior.from_dict), got {type(prior).__name__}")
+            raise ValueRefused(f"prior: expected None or a LockPrior (LockPrior.from_dict), got {type(prior).__name__}")
         try:
             start_values = space.to_array(start)
         except ValueError as exc:
-            raise ValueError(f"start: {exc}") from None
+            raise ValueRefused(f"start: {exc}") from None
         if not space.contains(start):
-            raise ValueError(f"start: expected a point inside the box "
-                             f"{dict(zip(space.names, zip(space.lows.tolist(), space.highs.tolist())))}, "
-                             f"got {dict(start)}")
+            raise ValueRefused(f"start: expected a point inside the box "
+                               f"{dict(zip(space.names, zip(space.lows.tolist(), space.highs.tolist())))}, "
+                               f"got {dict(start)}")
         self.space = space
         self.seed = int(seed)
         self.settings = settings
@@ -261,7 +262,7 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         if clock_s is None:
             return None
         if not is_number(clock_s) or not math.isfinite(float(clock_s)):
-            raise ValueError(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
+            raise ValueRefused(f"clock_s: expected None or a finite number of seconds, got {clock_s!r}")
         return float(clock_s)
 
     def _now(self, clock_s: Any) -> float | None:
@@ -303,15 +304,15 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
             An unknown purpose, a result that is not a PointResult, or a point outside the box.
         """
         if purpose not in PURPOSES:
-            raise ValueError(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
+            raise ValueRefused(f"purpose: expected one of {list(PURPOSES)}, got {purpose!r}")
         if not isinstance(result, PointResult):
-            raise ValueError(f"result: expected a PointResult (PointResult.from_estimate), got {type(result).__name__}")
+            raise ValueRefused(f"result: expected a PointResult (PointResult.from_estimate), got {type(result).__name__}")
         values = self.space.to_array(point)
         slack = 1e-9 * (self.space.highs - self.space.lows)
         if np.any(values < self.space.lows - slack) or np.any(values > self.space.highs + slack):
-            raise ValueError(f"point: expected within "
-                             f"{dict(zip(self.space.names, zip(self.space.lows.tolist(), self.space.highs.tolist())))}, "
-                             f"got {dict(point)}")
+            raise ValueRefused(f"point: expected within "
+                               f"{dict(zip(self.space.names, zip(self.space.lows.tolist(), self.space.highs.tolist())))}, "
+                               f"got {dict(point)}")
         values = np.clip(values, self.space.lows, self.space.highs)
         named = dict(zip(self.space.names, values.tolist()))
         self._obs.append(Observation(float(named["velocity"]), float(named["detuning"]), result, str(purpose)))
@@ -322,7 +323,7 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         """Record an inversion alone (no phase signal): the point counts as out of the capture range."""
         for label, number in (("value", value), ("stderr", stderr)):
             if not is_number(number) or not math.isfinite(float(number)):
-                raise ValueError(f"{label}: expected a finite number, got {number!r}")
+                raise ValueRefused(f"{label}: expected a finite number, got {number!r}")
         result = PointResult(
             inversion=float(value), inversion_stderr=float(stderr), phase_shift=0.0,
             phase_shift_stderr=_TWO_PI / math.sqrt(12.0), absorption=0.5, absorption_stderr=0.5,

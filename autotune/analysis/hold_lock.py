@@ -18,6 +18,7 @@ import numpy as np
 from scipy import optimize
 
 from autotune.analysis.guided import LockPrior, LockSettings
+from autotune.errors import ValueRefused
 
 __all__ = [
     "SIEGMUND_CORRECTION",
@@ -91,9 +92,9 @@ def cusum_threshold(reference: float, in_control_arl: float) -> float:
     Returns 0 when even ``h = 0`` reaches it.
     """
     if not (is_finite_number(reference) and reference >= 0.0):
-        raise ValueError(f"reference: expected a finite number >= 0, got {reference!r}")
+        raise ValueRefused(f"reference: expected a finite number >= 0, got {reference!r}")
     if not (is_finite_number(in_control_arl) and in_control_arl >= 1.0):
-        raise ValueError(f"in_control_arl: expected a finite number >= 1, got {in_control_arl!r}")
+        raise ValueRefused(f"in_control_arl: expected a finite number >= 1, got {in_control_arl!r}")
     target = math.log(in_control_arl)
     if math.log(cusum_arl(0.0, reference, 0.0)) >= target:
         return 0.0
@@ -101,7 +102,7 @@ def cusum_threshold(reference: float, in_control_arl: float) -> float:
     while math.log(cusum_arl(0.0, reference, high)) < target:
         high *= 2.0
         if high > 1e4:
-            raise ValueError(f"in_control_arl {in_control_arl!r} out of reach")
+            raise ValueRefused(f"in_control_arl {in_control_arl!r} out of reach")
     return float(optimize.brentq(lambda h: math.log(cusum_arl(0.0, reference, h)) - target,
                                  0.0, high, xtol=1e-9))
 
@@ -195,7 +196,7 @@ class DriftLock:
                             ("rate_stderr_hz_per_s", rate_stderr_hz_per_s),
                             ("walk_hz_per_sqrt_s", walk_hz_per_sqrt_s)):
             if not is_finite_number(value):
-                raise ValueError(f"{name}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"{name}: expected a finite number, got {value!r}")
         return cls(float(clock_s), float(peak_hz), float(rate_hz_per_s),
                    ((float(peak_stderr_hz) ** 2, 0.0), (0.0, float(rate_stderr_hz_per_s) ** 2)),
                    float(walk_hz_per_sqrt_s))
@@ -246,8 +247,8 @@ class DriftLock:
         stay there as a ramp.
         """
         if not (is_finite_number(peak_hz) and is_finite_number(variance_hz2) and variance_hz2 > 0.0):
-            raise ValueError(f"peak_hz, variance_hz2: expected finite numbers (variance > 0), "
-                             f"got {peak_hz!r}, {variance_hz2!r}")
+            raise ValueRefused(f"peak_hz, variance_hz2: expected finite numbers (variance > 0), "
+                               f"got {peak_hz!r}, {variance_hz2!r}")
         prior = self.predict(clock_s)
         cov = prior._cov
         innovation = float(peak_hz) - prior.peak_hz

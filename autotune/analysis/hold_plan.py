@@ -31,6 +31,7 @@ from autotune.analysis.hold_lock import (
     floor_shift_hz,
 )
 from autotune.analysis.hold_signal import USABLE_Z, NoiseModel, SignalModel
+from autotune.errors import ValueRefused
 from autotune.wire.rig import measurement_shots
 
 __all__ = [
@@ -415,7 +416,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     apart until they fit the share (fewer but larger checks).
     """
     if not (0.0 < check_share <= 1.0):
-        raise ValueError(f"check_share: expected a number in (0, 1], got {check_share!r}")
+        raise ValueRefused(f"check_share: expected a number in (0, 1], got {check_share!r}")
     slope = abs(prior.slope_rad_per_hz)
     design = floor_shift_hz(settings.floor, prior.slope_rad_per_hz)
     capture = settings.lock.capture_phase_error_rad / slope

@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from autotune.analysis.hold_lock import is_finite_number
+from autotune.errors import ValueRefused
 
 __all__ = ["USABLE_Z", "NoiseModel", "SignalModel"]
 
@@ -53,7 +54,7 @@ class NoiseModel:
         usable = [(p, i, n) for p, i, n in rows
                   if n > 0 and is_finite_number(p) and is_finite_number(i) and p > 0]
         if not usable:
-            raise ValueError("NoiseModel: expected at least one measurement with a phase stderr")
+            raise ValueRefused("NoiseModel: expected at least one measurement with a phase stderr")
         return cls(float(np.median([p * p * n for p, _, n in usable])),
                    float(np.median([i * i * n for _, i, n in usable])), len(usable))
 

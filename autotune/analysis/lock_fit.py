@@ -32,7 +32,7 @@ def wrap_phase(angle: float | np.ndarray) -> Any:
     return np.mod(np.asarray(angle, dtype=float) + math.pi, _TWO_PI) - math.pi
 
 
-def phase_signal_note(result: PointResult, settings: Any, phase_at_peak_rad: float, *,
+def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak_rad: float, *,
                       wrap_sigmas: float | None = None) -> str | None:
     """None when a measurement's phase signal can steer the detuning, else why not.
 

@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from autotune.errors import ValueRefused
 from autotune.schema import is_number
 
 __all__ = ["LockSettings", "LockPrior", "is_number"]
@@ -157,55 +158,55 @@ class LockSettings:
         for name in open_unit:
             value = getattr(self, name)
             if not is_number(value) or not 0.0 < float(value) < 1.0:
-                raise ValueError(f"LockSettings.{name}: expected a number in (0, 1), got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected a number in (0, 1), got {value!r}")
         positive = ("phase_at_peak_prior_rad", "capture_phase_error_rad", "absorption_phase_window_rad")
         for name in positive:
             value = getattr(self, name)
             if not is_number(value) or not (math.isfinite(float(value)) and float(value) > 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
         if self.capture_phase_error_rad >= math.pi:
-            raise ValueError(f"LockSettings.capture_phase_error_rad: expected a number in (0, pi), "
-                             f"got {self.capture_phase_error_rad!r}")
+            raise ValueRefused(f"LockSettings.capture_phase_error_rad: expected a number in (0, pi), "
+                               f"got {self.capture_phase_error_rad!r}")
         for name in ("phase_cubic_prior_fraction", "drift_prior_hz_per_s", "phase_velocity_error_rad",
                      "prior_slope_tolerance_fraction", "prior_velocity_tolerance_fraction"):
             value = getattr(self, name)
             if not is_number(value) or not (math.isfinite(float(value)) and float(value) >= 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number >= 0, got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected a finite number >= 0, got {value!r}")
         if not is_number(self.phase_at_peak_rad) or not math.isfinite(float(self.phase_at_peak_rad)):
-            raise ValueError(f"LockSettings.phase_at_peak_rad: expected a finite number (rad), "
-                             f"got {self.phase_at_peak_rad!r}")
+            raise ValueRefused(f"LockSettings.phase_at_peak_rad: expected a finite number (rad), "
+                               f"got {self.phase_at_peak_rad!r}")
         if not is_number(self.min_contrast_ratio) or not 0.0 <= float(self.min_contrast_ratio) < 1.0:
-            raise ValueError(f"LockSettings.min_contrast_ratio: expected a number in [0, 1), "
-                             f"got {self.min_contrast_ratio!r}")
+            raise ValueRefused(f"LockSettings.min_contrast_ratio: expected a number in [0, 1), "
+                               f"got {self.min_contrast_ratio!r}")
         if self.phase_wrap_sigmas is not None and (
                 not is_number(self.phase_wrap_sigmas)
                 or not (math.isfinite(float(self.phase_wrap_sigmas)) and float(self.phase_wrap_sigmas) > 0.0)):
-            raise ValueError(f"LockSettings.phase_wrap_sigmas: expected None or a finite number > 0, "
-                             f"got {self.phase_wrap_sigmas!r}")
+            raise ValueRefused(f"LockSettings.phase_wrap_sigmas: expected None or a finite number > 0, "
+                               f"got {self.phase_wrap_sigmas!r}")
         if not is_number(self.velocity_step_fraction) or not 0.0 < float(self.velocity_step_fraction) < 0.5:
-            raise ValueError(f"LockSettings.velocity_step_fraction: expected a number in (0, 0.5), "
-                             f"got {self.velocity_step_fraction!r}")
+            raise ValueRefused(f"LockSettings.velocity_step_fraction: expected a number in (0, 0.5), "
+                               f"got {self.velocity_step_fraction!r}")
         for name in ("bracket_step_hz", "max_lock_step_hz"):
             value = getattr(self, name)
             if value is not None and (not is_number(value) or not (math.isfinite(float(value)) and value > 0)):
-                raise ValueError(f"LockSettings.{name}: expected None or a finite number > 0 (Hz), got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected None or a finite number > 0 (Hz), got {value!r}")
         for name, minimum in (("lock_shots_per_phase", 1), ("velocity_shots_per_phase", 1),
                               ("ramsey_phases", 3), ("fallback_initial_points", 1),
                               ("posterior_draws", 200)):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-                raise ValueError(f"LockSettings.{name}: expected an integer >= {minimum}, got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected an integer >= {minimum}, got {value!r}")
         for name in ("step_phase_stderr_rad", "step_absorption_stderr"):
             value = getattr(self, name)
             if not is_number(value) or not (math.isfinite(float(value)) and float(value) > 0.0):
-                raise ValueError(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
+                raise ValueRefused(f"LockSettings.{name}: expected a finite number > 0, got {value!r}")
         low_high = self.step_shots_range
         if not (isinstance(low_high, tuple) and len(low_high) == 2 and all(is_number(v) for v in low_high)
                 and 0.0 < low_high[0] <= 1.0 <= low_high[1] and math.isfinite(low_high[1])):
-            raise ValueError(f"LockSettings.step_shots_range: expected (low, high) with 0 < low <= 1 <= high, "
-                             f"got {low_high!r}")
+            raise ValueRefused(f"LockSettings.step_shots_range: expected (low, high) with 0 < low <= 1 <= high, "
+                               f"got {low_high!r}")
         if self.slope_sign not in (-1, 0, 1) or isinstance(self.slope_sign, bool):
-            raise ValueError(f"LockSettings.slope_sign: expected -1, 0 or +1, got {self.slope_sign!r}")
+            raise ValueRefused(f"LockSettings.slope_sign: expected -1, 0 or +1, got {self.slope_sign!r}")
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready mapping of every setting."""
@@ -295,7 +296,7 @@ class LockPrior:
         for f in fields(self):
             value = getattr(self, f.name)
             if not is_number(value) or not math.isfinite(float(value)):
-                raise ValueError(f"LockPrior.{f.name}: expected a finite number, got {value!r}")
+                raise ValueRefused(f"LockPrior.{f.name}: expected a finite number, got {value!r}")
             object.__setattr__(self, f.name, float(value))
         checks = (
             ("velocity_m_per_s", self.velocity_m_per_s > 0.0),
@@ -310,11 +311,11 @@ class LockPrior:
         for name, ok in checks:
             if not ok:
                 what = _PRIOR_KEYS.get(name) or _PRIOR_OPTIONAL[name]
-                raise ValueError(f"LockPrior.{name}: expected {what}, got {getattr(self, name)!r}")
+                raise ValueRefused(f"LockPrior.{name}: expected {what}, got {getattr(self, name)!r}")
         for name in ("velocity_stderr_m_per_s", "slope_stderr_rad_per_hz", "cubic_stderr_rad_per_hz3",
                      "absorption_min_stderr", "absorption_curvature_stderr"):
             if getattr(self, name) < 0.0:
-                raise ValueError(f"LockPrior.{name}: expected {_PRIOR_KEYS[name]}, got {getattr(self, name)!r}")
+                raise ValueRefused(f"LockPrior.{name}: expected {_PRIOR_KEYS[name]}, got {getattr(self, name)!r}")
 
     def to_dict(self) -> dict[str, float]:
         """JSON-ready mapping of every field."""
@@ -331,18 +332,18 @@ class LockPrior:
             names the key, what was expected and what was received.
         """
         if not isinstance(data, Mapping):
-            raise ValueError(f"LockPrior: expected a mapping of {sorted(_PRIOR_KEYS)}, got {data!r}")
+            raise ValueRefused(f"LockPrior: expected a mapping of {sorted(_PRIOR_KEYS)}, got {data!r}")
         missing = [key for key in _PRIOR_KEYS if key not in data]
         if missing:
-            raise ValueError(f"LockPrior: missing key {missing[0]!r}: expected {_PRIOR_KEYS[missing[0]]}")
+            raise ValueRefused(f"LockPrior: missing key {missing[0]!r}: expected {_PRIOR_KEYS[missing[0]]}")
         unknown = sorted(set(data) - set(_PRIOR_KEYS) - set(_PRIOR_OPTIONAL))
         if unknown:
-            raise ValueError(f"LockPrior: unknown key {unknown[0]!r}: expected only "
-                             f"{sorted(_PRIOR_KEYS) + sorted(_PRIOR_OPTIONAL)}")
+            raise ValueRefused(f"LockPrior: unknown key {unknown[0]!r}: expected only "
+                               f"{sorted(_PRIOR_KEYS) + sorted(_PRIOR_OPTIONAL)}")
         for key, value in data.items():
             if not is_number(value) or not math.isfinite(float(value)):
                 what = _PRIOR_KEYS.get(key) or _PRIOR_OPTIONAL[key]
-                raise ValueError(f"LockPrior: key {key!r}: expected {what} as a finite number, got {value!r}")
+                raise ValueRefused(f"LockPrior: key {key!r}: expected {what} as a finite number, got {value!r}")
         return cls(**{key: float(value) for key, value in data.items()})
 
 

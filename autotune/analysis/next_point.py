@@ -35,6 +35,7 @@ import numpy as np
 
 from autotune.analysis.search import Proposal
 from autotune.analysis.shortfall import Shortfall
+from autotune.errors import ValueRefused
 
 if TYPE_CHECKING:
     from autotune.analysis.guided import PhaseLockSearch
@@ -109,7 +110,7 @@ def usable_chance(usable: int, unusable: int) -> float:
     unusable)``.
     """
     if usable < 0 or unusable < 0:
-        raise ValueError(f"usable_chance: expected counts >= 0, got {usable!r}, {unusable!r}")
+        raise ValueRefused(f"usable_chance: expected counts >= 0, got {usable!r}, {unusable!r}")
     if unusable == 0:
         return 1.0
     return (1.0 + usable) / (2.0 + usable + unusable)
