@@ -5,7 +5,9 @@
     AutotuneError                  everything autotune raises on purpose (exit code: exit_code)
     ├── ValueRefused               a value given to autotune's API in code is outside its domain
     │                              (a channel law's coefficient, a channel map, a Stark law asked
-    │                              beyond its reach, a packaged config's name; a ValueError too)
+    │                              beyond its reach, a packaged config's name, the settings of the
+    │                              lock, the search, the hold or the study; a ValueError too: the
+    │                              package raises no bare ValueError, tests/test_errors.py)
     ├── ConfigError                a configuration file or value is wrong (file, key, expected, got)
     │   └── ConfigErrors           several of them, found together before anything moved
     │       └── FileErrors         every problem of one file (autotune.schema)
