@@ -9,10 +9,9 @@ import math
 
 import numpy as np
 import pytest
-from hold_helpers import hold_settings
+from hold_helpers import DEMO_SLOPE, demo_prior, hold_settings
 from scipy import stats
 
-from autotune.analysis.guided import LockPrior
 from autotune.analysis.hold import (
     BeamBudget,
     DriftLock,
@@ -28,16 +27,8 @@ from autotune.analysis.hold import (
     recheck_run_limit,
 )
 
-SLOPE = 6.4e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
-
-
-def _prior() -> LockPrior:
-    return LockPrior(velocity_m_per_s=510.0, velocity_stderr_m_per_s=3.0, detuning_hz=0.0,
-                     slope_rad_per_hz=SLOPE, slope_stderr_rad_per_hz=1e-5, cubic_rad_per_hz3=0.0,
-                     cubic_stderr_rad_per_hz3=1e-14, phase_at_peak_rad=math.pi,
-                     phase_at_peak_stderr_rad=0.03, absorption_min=0.015,
-                     absorption_min_stderr=0.002, absorption_curvature=5.0,
-                     absorption_curvature_stderr=1.0, inversion=0.72)
+SLOPE = DEMO_SLOPE
+_prior = demo_prior
 
 
 def _stationary_draws(reference: float, threshold: float, chains: int, steps: int,
