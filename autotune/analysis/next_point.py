@@ -176,9 +176,10 @@ def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: 
 
 
 def _best(search: PhaseLockSearch, velocity: float, clock: float | None
-          ) -> tuple[Shortfall, tuple[float, str, float, float, int, Shortfall]]:
+          ) -> tuple[Shortfall, tuple[float, str, float, float, int, Shortfall, float]]:
     """The bound now at the recommendation and the candidate that lowers it most per shot:
-    ``(gain per shot, purpose, velocity, detuning, shots per phase, expected bound after)``."""
+    ``(gain per shot, purpose, velocity, detuning, shots per phase, expected bound after,
+    chance of a usable result)``."""
     rec_delta = search._lock_target(velocity, clock)[0]
     rec = {"velocity": velocity, "detuning": search._clip_detuning(rec_delta)}
     # What this stage's points can lower (a retune's inherited velocity term they cannot).
@@ -192,7 +193,7 @@ def _best(search: PhaseLockSearch, velocity: float, clock: float | None
         after = expected_after(search, rec, v, d, shots_per_phase, clock, inherit=False)
         gain = chance * (now.upper - after.upper) / shots
         if best is None or gain > best[0] + 1e-15:
-            best = (gain, purpose, v, d, shots_per_phase, after)
+            best = (gain, purpose, v, d, shots_per_phase, after, chance)
     assert best is not None
     return now, best
 
@@ -206,10 +207,9 @@ def expected_fall(search: PhaseLockSearch, velocity: float, clock: float | None)
 
 def best_proposal(search: PhaseLockSearch, velocity: float, clock: float | None) -> Proposal:
     """The candidate whose measurement is expected to lower the bound most per shot."""
-    now, (_, purpose, v, d, shots_per_phase, after) = _best(search, velocity, clock)
+    now, (_, purpose, v, d, shots_per_phase, after, chance) = _best(search, velocity, clock)
     term = "detuning" if (now.detuning_upper - after.detuning_upper) >= (now.velocity_upper - after.velocity_upper) \
         else "velocity"
-    chance = usable_chance(*usable_evidence(search, velocity, v)) if purpose == "velocity" else 1.0
     usable = "" if chance == 1.0 else f"; chance of a usable result there {chance:.2f}"
     reason = (f"predicted shortfall's {now.confidence:.0%} bound {now.upper:.2%} (detuning {now.detuning_upper:.2%}, "
               f"velocity {now.velocity_upper:.2%}); this {purpose} point at {v:.1f} m/s, {d / 1e3:+.2f} kHz "
