@@ -113,8 +113,10 @@ from autotune.analysis.hold_lock import (
     SequentialTest,
     cusum_arl,
     cusum_threshold,
+    floor_phase_rad,
     floor_shift_hz,
     known_cubic,
+    peak_offset,
     two_sided_arl,
 )
 from autotune.analysis.hold_plan import (
@@ -150,7 +152,9 @@ __all__ = [
     "in_control_rechecks",
     "in_control_sooner",
     "floor_shift_hz",
+    "floor_phase_rad",
     "known_cubic",
+    "peak_offset",
     "Assessment",
     "assess_check",
     "peak_after_change",

@@ -16,13 +16,13 @@ from typing import Any
 
 import numpy as np
 
-from autotune.analysis.guided import LockPrior, detuning_offset, phase_signal_note
+from autotune.analysis.guided import LockPrior, phase_signal_note
 from autotune.analysis.hold_lock import (
     DriftLock,
     HoldSettings,
     Innovation,
     SequentialTest,
-    known_cubic,
+    peak_offset,
 )
 from autotune.analysis.hold_plan import CheckPlan
 from autotune.analysis.hold_signal import NoiseModel
@@ -141,7 +141,10 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     test = plan.test
     clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
     error = float(np.mod(result.phase_shift - prior.phase_at_peak_rad + math.pi, _TWO_PI) - math.pi)
-    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad)
+    # The calibration's gate: a poor source's faint fringe steers when its phase error stays
+    # phase_wrap_sigmas of its own standard errors inside the wrap (lock_fit.phase_signal_note).
+    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad,
+                             wrap_sigmas=settings.lock.phase_wrap_sigmas)
     phase_sd, inversion_sd = result.phase_shift_stderr, result.inversion_stderr
     if noise is not None and result.shots > 0:
         phase_sd = math.sqrt(noise.phase_variance_shots / result.shots)
@@ -156,8 +159,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     # The check's own noise only: the stored curve's uncertainty (slope, cubic) is the same at
     # every check, a bias of the peak's scale, not noise; counted as noise it would make a large
     # phase error look insignificant (the offset's error grows as D^3) and hide a step.
-    offset, offset_sd = detuning_offset(error, phase_sd, prior.slope_rad_per_hz,
-                                        0.0, known_cubic(prior), 0.0)
+    offset, offset_sd = peak_offset(error, phase_sd, prior)
     peak = detuning_hz - offset
     variance = max(offset_sd**2, 1.0)
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)

@@ -13,7 +13,7 @@ import structlog
 
 from autotune.errors import JournalError, RigError
 from autotune.analysis.fringe import InversionEstimate
-from autotune.analysis.guided import LockPrior, detuning_offset
+from autotune.analysis.guided import LockPrior
 from autotune.analysis.hold import (
     BeamBudget,
     CheckPlan,
@@ -24,9 +24,9 @@ from autotune.analysis.hold import (
     Unheld,
     assess_check,
     choose_recovery,
-    known_cubic,
     next_check,
     noise_row,
+    peak_offset,
     plan_night,
     recovery_start,
     holds_as_well,
@@ -502,8 +502,7 @@ class Night:
         # The stage's last measurement at the chosen set-points is the lock's first: the peak
         # at d minus its offset, with the stage's precision.
         error = math.remainder(estimate.phase_shift - prior.phase_at_peak_rad, 2.0 * math.pi)
-        offset, offset_sd = detuning_offset(error, estimate.phase_shift_stderr,
-                                            prior.slope_rad_per_hz, 0.0, known_cubic(prior), 0.0)
+        offset, offset_sd = peak_offset(error, estimate.phase_shift_stderr, prior)
         if abs(error) > self.settings.lock.capture_phase_error_rad:
             offset, offset_sd = 0.0, self.settings.max_correction_hz
         rate = self.state["rate"]
