@@ -102,6 +102,8 @@ from autotune.analysis.hold_check import (
     ADOPT_LEVEL,
     holds_as_well,
     recovery_start,
+    recovery_after_alarm,
+    lock_at_stage_end,
     reference_add,
     reference_value,
 )
@@ -178,4 +180,6 @@ __all__ = [
     "holds_as_well",
     "lock_before_change",
     "recovery_start",
+    "recovery_after_alarm",
+    "lock_at_stage_end",
 ]
