@@ -13,7 +13,7 @@ import math
 
 import numpy as np
 import pytest
-from hold_helpers import DEMO_SLOPE, demo_prior, hold_settings
+from hold_helpers import DEMO_SLOPE, demo_prior
 from scipy import stats
 
 from autotune.analysis.hold import floor_phase_rad, floor_shift_hz, peak_offset
