@@ -263,9 +263,15 @@ def test_an_unusable_check_is_repeated_before_the_alarm():
     assert (first.action, first.usable) == ("recheck", False)
     second = assess_check(settings, result=far, previous_unusable=True, **common)
     assert (second.action, second.alarm) == ("alarm", "out_of_range")
-    low = assess_check(settings, result=_check(math.pi, 0.1, 600.0, contrast_ratio=0.2),
+    # A faint one-photon fringe whose phase error is not 3 of its own standard errors inside the
+    # wrap at pi (LockSettings.phase_wrap_sigmas) is unusable; 3 inside, it steers (the gate the
+    # calibration's lock uses, lock_fit.phase_signal_note).
+    low = assess_check(settings, result=_check(math.pi + 0.5, 1.0, 600.0, contrast_ratio=0.2),
                        previous_unusable=True, **common)
-    assert low.alarm == "out_of_range" and "contrast" in low.reason
+    assert low.alarm == "out_of_range" and "contrast" in low.reason and "wrap" in low.reason
+    faint = assess_check(settings, result=_check(math.pi + 0.5, 0.5, 600.0, contrast_ratio=0.2),
+                         previous_unusable=True, **common)
+    assert faint.usable and faint.alarm is None
 
 
 def test_pooled_noise_replaces_a_checks_own_error():

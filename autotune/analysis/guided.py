@@ -620,7 +620,8 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
             absorption_min=float(np.clip(minimum, 0.0, 1.0)), absorption_min_stderr=minimum_sd,
             absorption_curvature=curvature, absorption_curvature_stderr=curvature_sd,
             inversion=float(min(max(self._inversion_scale(), 1e-3), 1.0)), peak_drift_hz_per_s=drift,
-            velocity_shortfall=v_term, velocity_shortfall_upper=v_upper)
+            velocity_shortfall=v_term, velocity_shortfall_upper=v_upper,
+            mixture_empty_fraction=self._mixture_low())
 
     def state(self, *, clock_s: float | None = None) -> dict[str, Any]:
         """JSON-ready summary of what was learned, for the journal and the next retune.

@@ -102,6 +102,8 @@ from autotune.analysis.hold_check import (
     ADOPT_LEVEL,
     holds_as_well,
     recovery_start,
+    recovery_after_alarm,
+    lock_at_stage_end,
     reference_add,
     reference_value,
 )
@@ -113,8 +115,10 @@ from autotune.analysis.hold_lock import (
     SequentialTest,
     cusum_arl,
     cusum_threshold,
+    floor_phase_rad,
     floor_shift_hz,
     known_cubic,
+    peak_offset,
     two_sided_arl,
 )
 from autotune.analysis.hold_plan import (
@@ -150,7 +154,9 @@ __all__ = [
     "in_control_rechecks",
     "in_control_sooner",
     "floor_shift_hz",
+    "floor_phase_rad",
     "known_cubic",
+    "peak_offset",
     "Assessment",
     "assess_check",
     "peak_after_change",
@@ -174,4 +180,6 @@ __all__ = [
     "holds_as_well",
     "lock_before_change",
     "recovery_start",
+    "recovery_after_alarm",
+    "lock_at_stage_end",
 ]

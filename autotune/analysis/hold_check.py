@@ -2,7 +2,9 @@
 
 :func:`assess_check` turns a check's result into an :class:`Assessment` (the lock's update, the
 sequential test's statistics, the action); :func:`peak_after_change`, :func:`lock_before_change`
-and :func:`recovery_start` say where the peak went after a change; :func:`noise_row` and the
+and :func:`recovery_start` say where the peak went after a change, and
+:func:`recovery_after_alarm` what the night's state becomes then; :func:`lock_at_stage_end`
+starts the lock after a stage; :func:`noise_row` and the
 inversion's reference (:func:`reference_add`, :func:`reference_value`) are what the night keeps
 of each measurement. :mod:`autotune.analysis.hold` describes the whole and re-exports these.
 """
@@ -16,13 +18,13 @@ from typing import Any
 
 import numpy as np
 
-from autotune.analysis.guided import LockPrior, detuning_offset, phase_signal_note
+from autotune.analysis.guided import LockPrior, phase_signal_note
 from autotune.analysis.hold_lock import (
     DriftLock,
     HoldSettings,
     Innovation,
     SequentialTest,
-    known_cubic,
+    peak_offset,
 )
 from autotune.analysis.hold_plan import CheckPlan
 from autotune.analysis.hold_signal import NoiseModel
@@ -39,6 +41,8 @@ __all__ = [
     "holds_as_well",
     "lock_before_change",
     "recovery_start",
+    "recovery_after_alarm",
+    "lock_at_stage_end",
 ]
 
 _TWO_PI = 2.0 * math.pi
@@ -141,7 +145,10 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     test = plan.test
     clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
     error = float(np.mod(result.phase_shift - prior.phase_at_peak_rad + math.pi, _TWO_PI) - math.pi)
-    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad)
+    # The calibration's gate: a poor source's faint fringe steers when its phase error stays
+    # phase_wrap_sigmas of its own standard errors inside the wrap (lock_fit.phase_signal_note).
+    note = phase_signal_note(result, settings.lock, prior.phase_at_peak_rad,
+                             wrap_sigmas=settings.lock.phase_wrap_sigmas)
     phase_sd, inversion_sd = result.phase_shift_stderr, result.inversion_stderr
     if noise is not None and result.shots > 0:
         phase_sd = math.sqrt(noise.phase_variance_shots / result.shots)
@@ -156,8 +163,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     # The check's own noise only: the stored curve's uncertainty (slope, cubic) is the same at
     # every check, a bias of the peak's scale, not noise; counted as noise it would make a large
     # phase error look insignificant (the offset's error grows as D^3) and hide a step.
-    offset, offset_sd = detuning_offset(error, phase_sd, prior.slope_rad_per_hz,
-                                        0.0, known_cubic(prior), 0.0)
+    offset, offset_sd = peak_offset(error, phase_sd, prior)
     peak = detuning_hz - offset
     variance = max(offset_sd**2, 1.0)
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
@@ -190,15 +196,12 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
 def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversion: float,
               inversion_z: float, detuning_hz: float, again: bool) -> Assessment:
     """A check the lock cannot read: checked again at once, the alarm when ``again``."""
-    if not again:
-        return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock,
-                          upper, lower, inversion, inversion_z, "recheck", None,
-                          detuning_hz, f"check unusable for the lock ({note}): check again "
-                                       f"at once")
+    action, alarm, reason = (("alarm", "out_of_range", f"check unusable for the lock again "
+                              f"({note}): the lock cannot follow; retune") if again else
+                             ("recheck", None, f"check unusable for the lock ({note}): check "
+                              f"again at once"))
     return Assessment(False, note, math.nan, math.nan, math.nan, math.nan, None, lock, upper,
-                      lower, inversion, inversion_z, "alarm", "out_of_range",
-                      detuning_hz, f"check unusable for the lock again ({note}): the lock "
-                                   f"cannot follow; retune")
+                      lower, inversion, inversion_z, action, alarm, detuning_hz, reason)
 
 
 def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any], *,
@@ -386,3 +389,51 @@ def recovery_start(recent: Sequence[Mapping[str, Any]], side: str | None, lock: 
         if found is not None:
             start["detuning"] = min(max(found[0], limits[0]), limits[1])
     return start, pre, found
+
+
+def recovery_after_alarm(a: Assessment, *, point: int, plan: CheckPlan,
+                         recent: Sequence[Mapping[str, Any]], lock: DriftLock,
+                         held: Mapping[str, float], limits: tuple[float, float], clock_s: float,
+                         prior: Mapping[str, Any], first_index: int) -> dict[str, Any]:
+    """The night's state after the alarm of check ``point`` (``a.action == "alarm"``).
+
+    ``mode`` ``"recover"``; ``recover``: the stage kinds to try, where to start
+    (:func:`recovery_start`), the lock prior (``prior``, a :meth:`LockPrior.to_dict`), the
+    reason, the first stage index, the alarm (its statistic, value and threshold) and the peak
+    the checks since the change point measured (None when none did); ``rate``: the drift rate of
+    the lock before the change, which the recovery carries over.
+    """
+    start, pre, found = recovery_start(recent, a.alarm, lock, held, limits, clock_s)
+    side = a.alarm
+    thresholds = {"upper": plan.test.threshold, "lower": plan.test.threshold,
+                  "inversion": plan.test.inversion_threshold, "out_of_range": None}
+    values = {"upper": a.upper, "lower": a.lower, "inversion": a.inversion, "out_of_range": None}
+    alarm = {"point": point, "reason": a.reason, "statistic": side, "value": values[side],
+             "threshold": thresholds[side]}
+    moved = (f"; the retune starts at the peak the checks since the change point measured, "
+             f"{start['detuning'] / 1e3:+.2f} kHz" if start != held else "")
+    return {"mode": "recover",
+            "recover": {"kinds": ["retune", "calibrate"], "start": start, "prior": prior,
+                        "reason": a.reason + moved, "first_index": first_index, "alarm": alarm,
+                        "peak": None if found is None else [found[0], found[1]]},
+            "rate": {"rate_hz_per_s": pre.rate_hz_per_s,
+                     "rate_stderr_hz_per_s": pre.rate_stderr_hz_per_s}}
+
+
+def lock_at_stage_end(settings: HoldSettings, prior: LockPrior, estimate: Any, *,
+                      detuning_hz: float, clock_s: float, rate: Mapping[str, float]) -> DriftLock:
+    """The lock's start after a stage: its last measurement at the chosen set-points is the
+    lock's first, the peak at ``detuning_hz`` minus its offset (:func:`peak_offset`) with the
+    stage's precision (outside the capture range: the set-point itself, ``max_correction_hz``
+    of uncertainty), the drift ``rate`` (``rate_hz_per_s``, ``rate_stderr_hz_per_s``) carried.
+
+    ``estimate`` has ``phase_shift`` and ``phase_shift_stderr`` (rad), an
+    :class:`~autotune.analysis.fringe.InversionEstimate`.
+    """
+    error = math.remainder(estimate.phase_shift - prior.phase_at_peak_rad, _TWO_PI)
+    offset, offset_sd = peak_offset(error, estimate.phase_shift_stderr, prior)
+    if abs(error) > settings.lock.capture_phase_error_rad:
+        offset, offset_sd = 0.0, settings.max_correction_hz
+    return DriftLock.start(clock_s, detuning_hz - offset, max(offset_sd, 1.0),
+                           float(rate["rate_hz_per_s"]), float(rate["rate_stderr_hz_per_s"]),
+                           settings.walk_hz_per_sqrt_s)

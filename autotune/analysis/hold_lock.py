@@ -4,7 +4,9 @@
 its drift rate), :class:`SequentialTest` (Page's CUSUM on the lock's standardised innovations
 and on the inversion) with its run lengths (:func:`cusum_arl`, :func:`cusum_threshold`),
 :class:`HoldSettings`, and the design shift a floor on the inversion allows
-(:func:`floor_shift_hz`). :mod:`autotune.analysis.hold` describes the whole and re-exports these.
+(:func:`floor_shift_hz`), and the reading of a check's phase error as the set-point's offset from
+the peak (:func:`peak_offset`, with the mixture law of a poor one-photon source).
+:mod:`autotune.analysis.hold` describes the whole and re-exports these.
 """
 
 from __future__ import annotations
@@ -17,7 +19,8 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
-from autotune.analysis.guided import LockPrior, LockSettings
+from autotune.analysis.guided import LockPrior, LockSettings, detuning_offset
+from autotune.analysis.lock_fit import mixture_measured_phase, mixture_phase_error
 from autotune.errors import ValueRefused
 
 __all__ = [
@@ -33,6 +36,8 @@ __all__ = [
     "HoldSettings",
     "known_cubic",
     "floor_shift_hz",
+    "floor_phase_rad",
+    "peak_offset",
 ]
 
 #: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
@@ -347,10 +352,47 @@ def known_cubic(prior: LockPrior) -> float:
     return c if abs(c) >= 2.0 * sd else 0.0
 
 
-def floor_shift_hz(floor: float, slope_rad_per_hz: float) -> float:
+def floor_shift_hz(floor: float, slope_rad_per_hz: float, empty_fraction: float = 0.0) -> float:
     """The detuning error whose phase error alone takes the inversion to ``floor`` of the best (Hz).
 
     With ``|a| = 1`` the inversion is ``cos(eps / 2)`` of the best (docs/physics.md section 3, see
     :mod:`autotune.analysis.guided`), so ``eps = 2 acos(floor)`` and the shift is ``eps / |slope|``.
+    A poor one-photon source (``empty_fraction`` ``q > 0``, :attr:`LockPrior.mixture_empty_fraction`)
+    measures a phase ``1 / (1 - q)`` times steeper near the peak than the one-photon phase
+    ``eps`` (:func:`autotune.analysis.lock_fit.mixture_phase_error`), and the stored slope is the
+    measured one: the one-photon slope is ``(1 - q) |slope|``.
     """
-    return 2.0 * math.acos(float(floor)) / abs(float(slope_rad_per_hz))
+    return 2.0 * math.acos(float(floor)) / (abs(float(slope_rad_per_hz)) * (1.0 - float(empty_fraction)))
+
+
+def floor_phase_rad(floor: float, empty_fraction: float = 0.0) -> float:
+    """The measured phase error at :func:`floor_shift_hz` (rad): ``2 acos(floor)`` for a pure
+    photon, its mixture reading :func:`autotune.analysis.lock_fit.mixture_measured_phase` else."""
+    return float(mixture_measured_phase(2.0 * math.acos(float(floor)), float(empty_fraction)))
+
+
+def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> tuple[float, float]:
+    """The held set-point minus the peak (Hz) and its standard error, from a check's phase error.
+
+    A pure photon (``prior.mixture_empty_fraction`` 0): the stored curve ``s D + c D^3``
+    (:func:`known_cubic`) solved by :func:`~autotune.analysis.lock_fit.detuning_offset`. A poor
+    source (``q > 0``), as the calibration's lock read it: the measured error ``psi`` is the
+    one-photon error ``eps = psi - arcsin(q sin psi)``
+    (:func:`~autotune.analysis.lock_fit.mixture_phase_error`), read on the one-photon line
+    ``eps = (1 - q) s D`` (near the peak the measured phase is ``1 / (1 - q)`` times steeper,
+    and ``s`` is the measured slope). The stored cubic is not used there: fitted in the measured
+    phase, it is mostly the law's own bend (its Taylor term ``-q (1 + q) / (6 (1 - q)^3)
+    eps^3``, hundreds of times the one-photon curve's cubic at ``q`` of 0.7) and, with the law's
+    higher orders folded in, it misreads a 12 kHz offset by a sixth (tests/test_hold_poor_source.py).
+    The standard error follows by the delta method,
+    ``d eps / d psi = 1 - q cos psi / sqrt(1 - q^2 sin^2 psi)``.
+    """
+    q = float(prior.mixture_empty_fraction)
+    if q <= 0.0:
+        return detuning_offset(error_rad, error_stderr_rad, prior.slope_rad_per_hz, 0.0,
+                               known_cubic(prior), 0.0)
+    error = float(mixture_phase_error(error_rad, q))
+    sine = q * math.sin(error_rad)
+    derivative = 1.0 - q * math.cos(error_rad) / math.sqrt(max(1.0 - sine * sine, 1e-12))
+    return detuning_offset(error, abs(derivative) * error_stderr_rad,
+                           (1.0 - q) * prior.slope_rad_per_hz, 0.0, 0.0, 0.0)

@@ -28,6 +28,7 @@ from autotune.analysis.hold_lock import (
     SequentialTest,
     cusum_arl,
     cusum_threshold,
+    floor_phase_rad,
     floor_shift_hz,
 )
 from autotune.analysis.hold_signal import USABLE_Z, NoiseModel, SignalModel
@@ -418,14 +419,15 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     if not (0.0 < check_share <= 1.0):
         raise ValueRefused(f"check_share: expected a number in (0, 1], got {check_share!r}")
     slope = abs(prior.slope_rad_per_hz)
-    design = floor_shift_hz(settings.floor, prior.slope_rad_per_hz)
+    design = floor_shift_hz(settings.floor, prior.slope_rad_per_hz, prior.mixture_empty_fraction)
     capture = settings.lock.capture_phase_error_rad / slope
     shifts = np.geomspace(design, max(capture, design), _SHIFTS)
     phase_var = noise.phase_variance_shots
     if signal is not None:
         phase_var = max(phase_var, signal.phase_variance_shots)
     least_at = functools.cache(functools.partial(_least_shots_per_phase, settings, signal,
-                                                 design * slope))
+                                                 floor_phase_rad(settings.floor,
+                                                                 prior.mixture_empty_fraction)))
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
               "step_hz": step_hz, "noise": noise, "lock": lock,
               "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
@@ -467,7 +469,8 @@ def _least_shots_per_phase(settings: HoldSettings, signal: SignalModel | None,
         readable = signal.usable_shots(
             ratio=settings.lock.min_contrast_ratio,
             phase_margin_rad=settings.lock.capture_phase_error_rad - design_phase_rad,
-            z=readable_z(settings, interval))
+            z=readable_z(settings, interval), wrap_sigmas=settings.lock.phase_wrap_sigmas,
+            wrap_margin_rad=math.pi - design_phase_rad)
         if readable is not None:
             least = max(least, math.ceil(readable / measurement_shots(settings.ramsey_phases, 1)))
     return min(least, settings.max_shots_per_phase)

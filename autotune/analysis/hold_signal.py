@@ -150,20 +150,40 @@ class SignalModel:
         return self.contrast_one_photon - ratio * self.contrast_empty, math.sqrt(var)
 
     def usable_shots(self, *, ratio: float, phase_margin_rad: float,
-                     z: float = USABLE_Z) -> int | None:
+                     z: float = USABLE_Z, wrap_sigmas: float | None = None,
+                     wrap_margin_rad: float = math.pi) -> int | None:
         """Fewest shots of a check whose phase the lock can read with ``z`` standard deviations
         of room: the one-photon contrast above ``ratio`` of the empty one, and the phase error
         at the design shift within the capture range (``phase_margin_rad`` of room).
 
+        A poor one-photon source (its contrast below ``ratio`` of the empty one) is read by the
+        lock's other gate when ``wrap_sigmas`` (``w``, :attr:`LockSettings.phase_wrap_sigmas`)
+        is given: the phase error ``w`` of the check's own standard errors inside the wrap
+        (``wrap_margin_rad`` ``m`` of room at the design shift,
+        :func:`autotune.analysis.lock_fit.phase_signal_note`). That own standard error scales
+        as one over the check's measured one-photon contrast ``C``, so the gate holds while
+        ``C >= C1 w sigma / m``, with ``sigma`` the phase's standard deviation: with ``z``
+        standard deviations of ``C`` to spare, ``sqrt(n) >= z s_C / C1 + w s_phi / m`` for
+        per-shot deviations ``s_C`` and ``s_phi`` (the delta method; our derivation), besides
+        the capture range's ``z``.
+
         None when the rig's own contrasts leave no room at any size.
         """
         margin, _ = self.contrast_margin_sd(2, ratio)
-        if margin <= 0.0 or phase_margin_rad <= 0.0:
+        if phase_margin_rad <= 0.0:
             return None
-        var_one = self.contrast_margin_sd(2, ratio)[1] ** 2  # one shot per field
-        contrast_shots = 2.0 * z * z * var_one / margin**2
         phase_shots = z * z * self.phase_variance_shots / phase_margin_rad**2
-        return int(math.ceil(max(contrast_shots, phase_shots)))
+        if margin > 0.0:
+            var_one = self.contrast_margin_sd(2, ratio)[1] ** 2  # one shot per field
+            contrast_shots = 2.0 * z * z * var_one / margin**2
+            return int(math.ceil(max(contrast_shots, phase_shots)))
+        one_photon, one_sd = self.contrast_margin_sd(2, 0.0)
+        if wrap_sigmas is None or wrap_margin_rad <= 0.0 or one_photon <= 0.0:
+            return None
+        # contrast_margin_sd(2, .) is one shot per field: a check of n shots has sqrt(2 / n) of it.
+        root = (z * one_sd * math.sqrt(2.0) / one_photon
+                + wrap_sigmas * math.sqrt(self.phase_variance_shots) / wrap_margin_rad)
+        return int(math.ceil(max(root * root, phase_shots)))
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready mapping."""

@@ -238,6 +238,7 @@ _PRIOR_OPTIONAL: dict[str, str] = {
     "peak_drift_hz_per_s": "the rate of the peak's detuning set-point during the calibration (Hz/s)",
     "velocity_shortfall": "the calibration's velocity term at its chosen velocity (inversion fraction), >= 0",
     "velocity_shortfall_upper": "its upper bound at the calibration's confidence, >= velocity_shortfall",
+    "mixture_empty_fraction": "the one-photon source's empty fraction q = p0 / (p1 |a|) the lock used, in [0, 1)",
 }
 
 
@@ -272,6 +273,10 @@ class LockPrior:
         keeps that velocity and learns only whether the rig moved from it, so the calibration's
         own uncertainty of the velocity stays in every retune's bound (0 in a store written
         before these keys existed).
+    mixture_empty_fraction : float
+        The one-photon source's empty fraction ``q`` the calibration's lock read its phase with
+        (:func:`autotune.analysis.lock_fit.mixture_phase_error`; 0 for a good source and in a
+        store written before this key existed): the night's checks read theirs the same way.
     """
 
     velocity_m_per_s: float
@@ -291,6 +296,7 @@ class LockPrior:
     peak_drift_hz_per_s: float = 0.0
     velocity_shortfall: float = 0.0
     velocity_shortfall_upper: float = 0.0
+    mixture_empty_fraction: float = 0.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -307,6 +313,7 @@ class LockPrior:
             ("inversion", 0.0 < self.inversion <= 1.0),
             ("velocity_shortfall", 0.0 <= self.velocity_shortfall <= 1.0),
             ("velocity_shortfall_upper", self.velocity_shortfall <= self.velocity_shortfall_upper <= 1.0),
+            ("mixture_empty_fraction", 0.0 <= self.mixture_empty_fraction < 1.0),
         )
         for name, ok in checks:
             if not ok:

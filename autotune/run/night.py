@@ -13,7 +13,7 @@ import structlog
 
 from autotune.errors import JournalError, RigError
 from autotune.analysis.fringe import InversionEstimate
-from autotune.analysis.guided import LockPrior, detuning_offset
+from autotune.analysis.guided import LockPrior
 from autotune.analysis.hold import (
     BeamBudget,
     CheckPlan,
@@ -24,11 +24,11 @@ from autotune.analysis.hold import (
     Unheld,
     assess_check,
     choose_recovery,
-    known_cubic,
     next_check,
     noise_row,
+    lock_at_stage_end,
     plan_night,
-    recovery_start,
+    recovery_after_alarm,
     holds_as_well,
     reference_add,
     reference_value,
@@ -499,17 +499,8 @@ class Night:
         estimate = InversionEstimate.from_dict(outcome["estimate"])
         setpoints = {k: float(v) for k, v in outcome["setpoints"].items()}
         clock = float(outcome.get("clock_s") or self.session.clock)
-        # The stage's last measurement at the chosen set-points is the lock's first: the peak
-        # at d minus its offset, with the stage's precision.
-        error = math.remainder(estimate.phase_shift - prior.phase_at_peak_rad, 2.0 * math.pi)
-        offset, offset_sd = detuning_offset(error, estimate.phase_shift_stderr,
-                                            prior.slope_rad_per_hz, 0.0, known_cubic(prior), 0.0)
-        if abs(error) > self.settings.lock.capture_phase_error_rad:
-            offset, offset_sd = 0.0, self.settings.max_correction_hz
-        rate = self.state["rate"]
-        lock = DriftLock.start(clock, setpoints["detuning"] - offset, max(offset_sd, 1.0),
-                               float(rate["rate_hz_per_s"]), float(rate["rate_stderr_hz_per_s"]),
-                               self.config.track.walk_hz_per_sqrt_s)
+        lock = lock_at_stage_end(self.settings, prior, estimate, detuning_hz=setpoints["detuning"],
+                                 clock_s=clock, rate=self.state["rate"])
         noise = list(self.state.get("noise") or []) + [list(x) for x in outcome.get("noise", [])]
         self.state = {**self.state, "mode": "hold", "failures": 0, "held": setpoints,
                       "prior": prior.to_dict(), "lock": lock.to_dict(),
@@ -685,24 +676,10 @@ class Night:
         target = {**held, "detuning": a.target_detuning_hz}
         if a.action == "alarm":
             counts["alarms"] += 1
-            start, pre, found = recovery_start(recent, a.alarm, lock, held,
-                                               (limit.min, limit.max), clock_now)
-            side = a.alarm
-            alarm = {"point": point, "reason": a.reason, "statistic": side,
-                     "value": {"upper": a.upper, "lower": a.lower, "inversion": a.inversion,
-                               "out_of_range": None}[side],
-                     "threshold": {"upper": plan.test.threshold, "lower": plan.test.threshold,
-                                   "inversion": plan.test.inversion_threshold,
-                                   "out_of_range": None}[side]}
-            new.update(mode="recover", recover={
-                "kinds": ["retune", "calibrate"], "start": start, "prior": state["prior"],
-                "reason": a.reason + (f"; the retune starts at the peak the checks since the "
-                                      f"change point measured, {start['detuning'] / 1e3:+.2f} kHz"
-                                      if start != held else ""),
-                "first_index": int(state["stages"]), "alarm": alarm,
-                "peak": None if found is None else [found[0], found[1]]},
-                rate={"rate_hz_per_s": pre.rate_hz_per_s,
-                      "rate_stderr_hz_per_s": pre.rate_stderr_hz_per_s})
+            new.update(recovery_after_alarm(a, point=point, plan=plan, recent=recent, lock=lock,
+                                            held=held, limits=(limit.min, limit.max),
+                                            clock_s=clock_now, prior=state["prior"],
+                                            first_index=int(state["stages"])))
         else:
             if a.action in ("correct", "recheck") and not same_setpoints(target, held):
                 counts["corrections"] += 1
