@@ -81,3 +81,41 @@ def test_the_data_override_a_proxy_that_disagrees():
         V_REF, sorted(set(xs)))
     assert curve.widened
     assert curve.velocity_of(curve.vertex()) > V_ABS + 10.0
+
+
+def test_the_absorption_noise_is_counted_once_in_the_curves_covariance(monkeypatch):
+    """The stated covariance of the curve equals its sampling covariance (simulation, numpy).
+
+    Inversions and absorptions of equal noise at 15 velocities, a weak physics prior (the
+    discrepancy widened a thousandfold), so that the posterior covariance is the estimator's
+    sampling covariance: ``b = r - a`` with ``r`` fitted to ``I + P_e(x)`` cancels the
+    absorption fit's noise, and the weighted least-squares covariance ``(X^T W X)^-1`` of the
+    inversions alone remains (Gauss-Markov; C. M. Bishop, *Pattern Recognition and Machine
+    Learning*, 2006, eq. 3.51 with a flat prior). Counting each point's absorption noise in
+    ``r`` as well stated about twice the variance.
+    """
+    from autotune.analysis import velocity_model
+
+    monkeypatch.setattr(velocity_model, "DISCREPANCY", (1e3, 1e3))
+    velocities = np.linspace(420.0, 600.0, 15)
+    xs = V_REF / velocities - 1.0
+    design = np.stack([np.ones(len(xs)), xs, xs * xs], axis=1)
+    sd = 0.01
+    truth_p = np.array([_absorption(v) for v in velocities])
+    truth_i = np.array([_inversion(v, 0.0) for v in velocities])
+    rng = np.random.default_rng(5)
+    coefs, stated = [], None
+    for _ in range(1500):
+        p = truth_p + rng.normal(0.0, sd, len(xs))
+        i = truth_i + rng.normal(0.0, sd, len(xs))
+        a_cov = np.linalg.inv(design.T @ design / sd**2)
+        a_coef = a_cov @ design.T @ p / sd**2
+        curve = fit_inversion_curve(xs, i, [sd**2] * len(xs), p, [sd**2] * len(xs), [0.9] * len(xs),
+                                    [1e-6] * len(xs), a_coef, a_cov, 0.7, V_REF, sorted(xs))
+        coefs.append(curve.coef)
+        stated = curve.cov
+    sampled = np.cov(np.array(coefs).T)
+    least_squares = np.linalg.inv(design.T @ design / sd**2)
+    # 1500 draws: a variance's relative standard error is sqrt(2 / 1500) = 3.7 %.
+    np.testing.assert_allclose(np.diag(stated), np.diag(sampled), rtol=0.15)
+    np.testing.assert_allclose(np.diag(stated), np.diag(least_squares), rtol=0.05)
