@@ -12,8 +12,8 @@ the optimum, in ``x = v_ref / v - 1``::
 
 ``P_e(x)`` is the absorption's weighted quadratic fit (an excess absorption ``Delta P_e`` costs
 ``Delta P_e`` of the inversion, :mod:`autotune.analysis.guided`'s notes), and ``r`` is the part of the
-inversion that the absorption does not carry: fitted to each point's measured ``I`` plus the
-absorption fit at its velocity (so that an absorption's noise is counted once, in that fit), with a Gaussian prior on its slope and curvature from the physics, ``(r1, r2) =
+inversion that the absorption does not carry: fitted to the measured ``I + P_e`` of every
+point, with a Gaussian prior on its slope and curvature from the physics, ``(r1, r2) =
 (S / c0) (c1, c2)`` where ``c0 + c1 x + c2 x^2`` is the fit of the empty-fringe contrast that
 every point measures and ``S`` the inversion scale. The prior is widened by a discrepancy
 ``tau = (0.1 S, 0.5 S)`` (the terms the empty contrast does not carry: the photon's decay on
