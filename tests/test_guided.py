@@ -470,10 +470,6 @@ def test_settings_and_arguments_are_checked_at_the_boundary():
         LockSettings(lock_shots_per_phase=0)
     with pytest.raises(ValueError, match="slope_sign"):
         LockSettings(slope_sign=2)
-    with pytest.raises(ValueError, match="verification_shots_per_phase"):
-        LockSettings(verification_shots_per_phase=-1)
-    with pytest.raises(ValueError, match="verification_shots_per_phase"):
-        LockSettings(verification_shots_per_phase=True)
     with pytest.raises(ValueError, match="start"):
         PhaseLockSearch(BOX, seed=0, start={"velocity": 700.0, "detuning": 0.0})
     with pytest.raises(ValueError, match="space"):

@@ -246,14 +246,11 @@ class ShortfallBound:
         acceptance bound includes it: the bound expected after it (a linear-Gaussian update,
         whose covariance does not depend on the value to be measured) is what a stop now
         leaves. Not counting it made the search buy, in lock and velocity steps, precision
-        that the verification then adds again. Counted once: after a verification (one that
-        missed the acceptance bar sends the search on) the stop compares the bound as it
-        stands, as a lock point is cheaper than another verification.
+        that the verification then adds again.
         """
         shots = self.settings.verification_shots_per_phase
-        verified = any(o.purpose in ("verify", "correct") for o in self._obs)
         fit = self._lock_fit(rec["velocity"])
-        if shots > 0 and not verified and fit is not None and fit.slope_known():
+        if shots > 0 and fit is not None and fit.slope_known():
             return expected_after(self, rec, float(rec["velocity"]), float(rec["detuning"]), shots,
                                   clock, inherit=False).upper
         return self._shortfall_at(rec, clock, inherit=False).upper

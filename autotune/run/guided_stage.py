@@ -157,13 +157,6 @@ class _GuidedStage(StageRun):
         self.stop_reason = ""
         self.verdict_done = False
 
-    def counted_verification_shots(self) -> int:
-        """Shots per phase of the verification's first half that a calibration's stop counts
-        (LockSettings.verification_shots_per_phase); 0 for a retune, whose acceptance also
-        carries the calibration's velocity term, which its points cannot lower: its stop keeps
-        the bound as it stands, and the room below the bar for the verification's outcome."""
-        return self.first_half_shots if self.stage == "calibrate" else 0
-
     def begin(self, box: Mapping[str, tuple[float, float]], start: Mapping[str, float],
               prior: Mapping[str, Any] | None, budget: Budget) -> None:
         """Journal the stage (or, resuming, say what is taken up again), build the lock over
@@ -194,7 +187,7 @@ class _GuidedStage(StageRun):
                                    budget=budget.__dict__, strategy="phase_lock", seed=self.seed)
         self.lock = PhaseLockSearch(search_space(box),
                                     seed=child_seed(self.seed, self.stage_code, 0), start=start,
-                                    settings=lock_settings(config, box, self.counted_verification_shots()),
+                                    settings=lock_settings(config, box, self.first_half_shots),
                                     prior=lock_prior)
         session.plan_progress(self.stage, budget,
                               # A step may take up to step_shots_range's top multiple of its
@@ -393,10 +386,8 @@ class _GuidedStage(StageRun):
             # The one format of a shortfall, as the lock's verdicts print it.
             stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"
             if shortfall.upper > config.lock.target_shortfall:
-                kept = "without the calibration's velocity term this retune keeps, " \
-                    if self.stage == "retune" else ""
                 stop_reason = (f"{bound}; below the target {config.lock.target_shortfall:.1%} "
-                               f"{kept}with the verification counted")
+                               "without the calibration's velocity term this retune keeps")
         elif hopeless is not None:
             stop_reason = f"{hopeless}; {bound}"
         elif searched >= budget.max_points:
