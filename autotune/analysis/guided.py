@@ -45,10 +45,7 @@ noise from a fraction of a percent. The same fringe pair measures two sharper si
   the value to be measured), a velocity step's expected fall weighted by the chance, learned
   from this stage's points, that it comes back usable (:mod:`autotune.analysis.next_point`);
   each proposal's ``reason`` says which term and by how much.
-  :meth:`PhaseLockSearch.converged` is true when the bound expected after the verification
-  that follows the stop (``LockSettings.verification_shots_per_phase``; none by default) is
-  below ``target_shortfall``: the verdict's bound counts that verification, so the search need
-  not buy its precision first.
+  :meth:`PhaseLockSearch.converged` is true when the bound is below ``target_shortfall``.
 - **A poor one-photon source.** A field ``p0 |0> + p1 |1>`` gives the one-photon fringe the
   amplitude ``p0 - p1 |a| e^{i eps}`` (docs/physics.md section 5b): a contrast ratio near
   ``2 p1 - 1`` at the peak (0.16 at ``p1 = 0.58``, below ``min_contrast_ratio``) and a

@@ -217,8 +217,7 @@ class ShortfallBound:
         return problems
 
     def converged(self, *, clock_s: float | None = None) -> bool:
-        """True when the upper bound of the predicted shortfall, with the verification that
-        follows counted (:meth:`_stop_bound`), is below ``target_shortfall``.
+        """True when the upper bound of the predicted shortfall is below ``target_shortfall``.
 
         A retune's bound is taken without the calibration's velocity term it inherits
         (``LockPrior.velocity_shortfall``): its points cannot lower that term, and its
