@@ -130,10 +130,9 @@ class AbsorptionSignal:
         fit = self._absorption_fit()
         if self.prior is not None or not self._absorption_ready(fit):
             return None
-        # Every point, a verification's and a correction's included: each choice depended only
-        # on the data before it, so the posterior is that of all of them (the likelihood
-        # principle), and the stop counts the verification that follows it (_stop_bound).
-        points = self._absorption_points()
+        # The search's own points: a verification measures the inversion at one velocity at
+        # its own precision and moment; it judges the choice and does not move the model.
+        points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")]
         star = self._phase_star()[0]
         # The source's empty fraction at its cautious end (lock_fit.mixture_phase_error).
         empty = self._mixture_low()

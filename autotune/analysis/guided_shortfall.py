@@ -15,7 +15,7 @@ import numpy as np
 from scipy import stats
 
 from autotune.analysis.lock_fit import mixture_phase_error
-from autotune.analysis.next_point import expected_after, expected_fall
+from autotune.analysis.next_point import expected_fall
 from autotune.analysis.retune_verdict import inherited_draws
 from autotune.analysis.shortfall import Shortfall
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, cholesky_jittered
@@ -238,20 +238,7 @@ class ShortfallBound:
     def _stop_bound(self, rec: Mapping[str, float], clock: float | None) -> float:
         """The bound the stop compares with the target at ``rec``: without the calibration's
         velocity term that a retune inherits (its points cannot lower it; the acceptance and
-        every reported bound count it), and with the verification's first half that follows
-        the stop (``verification_shots_per_phase``) counted as the verdict will count it.
-
-        The verification is measured at ``rec`` whatever the stop decides, and the stage's
-        acceptance bound includes it: the bound expected after it (a linear-Gaussian update,
-        whose covariance does not depend on the value to be measured) is what a stop now
-        leaves. Not counting it made the search buy, in lock and velocity steps, precision
-        that the verification then adds again.
-        """
-        shots = self.settings.verification_shots_per_phase
-        fit = self._lock_fit(rec["velocity"])
-        if shots > 0 and fit is not None and fit.slope_known():
-            return expected_after(self, rec, float(rec["velocity"]), float(rec["detuning"]), shots,
-                                  clock, inherit=False).upper
+        every reported bound count it)."""
         return self._shortfall_at(rec, clock, inherit=False).upper
 
     def best_inversion(self) -> tuple[float, float] | None:

@@ -123,10 +123,6 @@ class LockSettings:
         this range of multiples of the configured shots ((0.5, 4.0); (1, 1) keeps them fixed).
     posterior_draws : int
         Seeded posterior draws behind every upper bound (4000).
-    verification_shots_per_phase : int
-        Shots per field and phase of the verification's first half that follows the stop: the
-        stop compares with ``target_shortfall`` the bound expected after it, as the verdict
-        will count it (0, the default, counts none).
     """
 
     target_shortfall: float = 0.01
@@ -156,7 +152,6 @@ class LockSettings:
     step_phase_stderr_rad: float = 0.15
     step_absorption_stderr: float = 0.005
     step_shots_range: tuple[float, float] = (0.5, 4.0)
-    verification_shots_per_phase: int = 0
 
     def __post_init__(self) -> None:
         open_unit = ("target_shortfall", "confidence", "still_good_shortfall", "lock_acquired_shortfall")
@@ -197,7 +192,7 @@ class LockSettings:
                 raise ValueRefused(f"LockSettings.{name}: expected None or a finite number > 0 (Hz), got {value!r}")
         for name, minimum in (("lock_shots_per_phase", 1), ("velocity_shots_per_phase", 1),
                               ("ramsey_phases", 3), ("fallback_initial_points", 1),
-                              ("posterior_draws", 200), ("verification_shots_per_phase", 0)):
+                              ("posterior_draws", 200)):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
                 raise ValueRefused(f"LockSettings.{name}: expected an integer >= {minimum}, got {value!r}")

@@ -169,7 +169,7 @@ def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: 
         absorption_cov = updated_cov(fit.cov, f, avar)
         curve = search._velocity_curve()
         if curve is not None:
-            rvar = expected_inversion_variance(search, shots)
+            rvar = expected_inversion_variance(search, shots) + avar
             residual_cov = updated_cov(curve.residual_cov, f, rvar)
     return search._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
                               residual_cov=residual_cov, inherit=inherit)

@@ -97,13 +97,7 @@ class InversionCurve(_QuadraticInX):
     coef, cov : ndarray
         Posterior mean and covariance of ``(b0, b1, b2)`` (inversion units).
     residual_cov, absorption_cov : ndarray
-        The two independent parts of ``cov``: of the residual ``r`` (from the inversions' own
-        noise) and of the absorption fit, which enters as ``M absorption_cov M^T``.
-    absorption_map : ndarray
-        ``M = A X - 1``: how the absorption fit's error moves ``(b0, b1, b2)``. ``r`` is fitted
-        to ``I + P_e(x)`` with ``P_e(x)`` the absorption fit's curve, so that fit's error enters
-        ``r`` through the data gain ``A`` (on the design ``X``) and ``b = r - a`` by ``-1``; the
-        two cancel where the inversions alone determine the curve.
+        The two independent parts of ``cov``: of the residual ``r`` and of the absorption fit.
     x_groups : tuple of float
         The distinct ``x`` measured (sorted).
     proxy : ndarray
@@ -121,7 +115,6 @@ class InversionCurve(_QuadraticInX):
     x_groups: tuple[float, ...]
     proxy: np.ndarray
     widened: bool
-    absorption_map: np.ndarray
 
     def vertex(self) -> float | None:
         """``x`` of the maximum, or None when the curve is not concave."""
@@ -132,9 +125,8 @@ class InversionCurve(_QuadraticInX):
     def draws(self, normals: np.ndarray, residual_cov: np.ndarray | None = None,
               absorption_cov: np.ndarray | None = None) -> np.ndarray:
         """Posterior draws of ``(b0, b1, b2)`` from standard normals of shape ``(n, 3)``."""
-        m = self.absorption_map
         cov = (self.residual_cov if residual_cov is None else residual_cov) + \
-            m @ (self.absorption_cov if absorption_cov is None else absorption_cov) @ m.T
+            (self.absorption_cov if absorption_cov is None else absorption_cov)
         return self.coef[None, :] + normals @ cholesky_jittered(cov).T
 
 
@@ -210,13 +202,9 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     proxy_r = k * c_coef[1:]
     proxy_r_cov = k * k * c_cov[1:, 1:]
 
-    a_coef = np.asarray(absorption_coef, dtype=float)
-    a_cov = np.asarray(absorption_cov, dtype=float)
-    # r at each point is its inversion plus the absorption fit's curve there, not plus its own
-    # measured absorption: the fit already holds every measured absorption, and adding a point's
-    # own noise to r as well counted that noise twice (once in r, once in the fit subtracted).
-    r = np.asarray(inversions, dtype=float) + design @ a_coef
-    r_var = np.maximum(np.asarray(inversion_vars, dtype=float), 1e-8)
+    r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
+    r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
+                       + np.asarray(absorption_vars, dtype=float), 1e-8)
     best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
     for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
@@ -230,16 +218,13 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
             best = (evidence, mean, cov, widened)
     assert best is not None
     _, r_coef, r_cov, widened = best
+    a_coef = np.asarray(absorption_coef, dtype=float)
+    a_cov = np.asarray(absorption_cov, dtype=float)
     coef = r_coef - a_coef
-    # The data gain of r's posterior mean (d r_coef / d values = cov X^T W), on the absorption
-    # fit's curve (X a), less the subtracted fit itself.
-    gain = r_cov @ (design.T / r_var[None, :])
-    absorption_map = gain @ design - np.eye(3)
-    return InversionCurve(velocity_ref=float(velocity_ref), coef=coef,
-                          cov=r_cov + absorption_map @ a_cov @ absorption_map.T,
+    return InversionCurve(velocity_ref=float(velocity_ref), coef=coef, cov=r_cov + a_cov,
                           residual_cov=r_cov, absorption_cov=a_cov,
                           x_groups=tuple(sorted(float(g) for g in x_groups)),
-                          proxy=proxy_r - a_coef[1:], widened=widened, absorption_map=absorption_map)
+                          proxy=proxy_r - a_coef[1:], widened=widened)
 
 
 @dataclass(frozen=True)

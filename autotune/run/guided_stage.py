@@ -38,13 +38,10 @@ __all__ = ["GUIDED_LABELS", "lock_settings", "run_guided_stage"]
 GUIDED_LABELS = ("search", "lock", "velocity", "relock", "check", "correct", "verify")
 
 
-def lock_settings(config: RunConfig, box: Mapping[str, tuple[float, float]],
-                  verification_shots_per_phase: int = 0) -> LockSettings:
-    """The phase lock's settings from ``[lock]`` and ``[measurement]``; the stop counts a
-    verification's first half of ``verification_shots_per_phase`` (0: none)."""
+def lock_settings(config: RunConfig, box: Mapping[str, tuple[float, float]]) -> LockSettings:
+    """The phase lock's settings from ``[lock]`` and ``[measurement]``."""
     lock = config.lock
     return LockSettings(
-        verification_shots_per_phase=verification_shots_per_phase,
         target_shortfall=lock.target_shortfall,
         confidence=config.measurement.confidence,
         still_good_shortfall=lock.still_good_shortfall,
@@ -187,8 +184,7 @@ class _GuidedStage(StageRun):
                                    budget=budget.__dict__, strategy="phase_lock", seed=self.seed)
         self.lock = PhaseLockSearch(search_space(box),
                                     seed=child_seed(self.seed, self.stage_code, 0), start=start,
-                                    settings=lock_settings(config, box, self.first_half_shots),
-                                    prior=lock_prior)
+                                    settings=lock_settings(config, box), prior=lock_prior)
         session.plan_progress(self.stage, budget,
                               # A step may take up to step_shots_range's top multiple of its
                               # configured shots (sized from the measured error per shot).
