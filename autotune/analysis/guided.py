@@ -159,6 +159,7 @@ from autotune.analysis.guided_absorption import AbsorptionSignal
 from autotune.analysis.guided_phase import Observation, PhaseSignal
 from autotune.analysis.guided_proposals import ProposalChoice
 from autotune.analysis.guided_shortfall import ShortfallBound
+from autotune.analysis.velocity_model import AbsorptionFit
 from autotune.errors import ValueRefused
 
 __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch",
@@ -343,24 +344,10 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
 
     def _compute_velocity_plan(self) -> dict[str, Any]:
         anchor = self._anchor()
-        f = self.settings.velocity_step_fraction
         low, high = self._velocity_box
         if anchor is None:
             return {"concluded": False, "velocity": self.start["velocity"], "next": None, "note": "no lock yet"}
         fit = self._absorption_fit()
-        faint = self._faint_velocity_phases()
-        attempts = [(o.velocity, self._range_note(o.result) is None or id(o) in faint)
-                    for o in self._obs if o.purpose == "velocity"]
-
-        def was_tried(v: float) -> bool:
-            # Out of the capture range there, or twice in range but outside the absorption
-            # window (the lock does not settle at that velocity).
-            same = [usable for t, usable in attempts if abs(t / v - 1.0) <= _SAME_VELOCITY]
-            return (not all(same)) or len(same) >= 2 if same else False
-
-        def known(v: float) -> bool:
-            return fit is not None and any(abs(fit.x_of(v) - x) <= _SAME_VELOCITY for x in fit.x_groups)
-
         if self.prior is not None:
             # A retune starts from the stored absorption curve: concluded at the last good velocity
             # unless the data move the minimum.
@@ -370,25 +357,48 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                         "note": "stored absorption curve"}
             v = float(np.clip(fit.velocity_of(vertex), low, high))
             return {"concluded": True, "velocity": v, "next": None, "note": "stored absorption curve and the data"}
-
-        v0 = anchor.velocity
+        faint = self._faint_velocity_phases()
+        attempts = [(o.velocity, self._range_note(o.result) is None or id(o) in faint)
+                    for o in self._obs if o.purpose == "velocity"]
         if not self._absorption_ready(fit):
-            for candidate in (v0 * (1.0 - f), v0 * (1.0 + f), v0 * (1.0 - 2.0 * f), v0 * (1.0 + 2.0 * f)):
-                v = float(np.clip(candidate, low, high))
-                if known(v) or was_tried(v) or abs(v / v0 - 1.0) <= _SAME_VELOCITY:
-                    continue
-                return {"concluded": False, "velocity": v0, "next": v,
-                        "note": "velocities around the lock for the absorption's curvature"}
-            note = "no third usable velocity within the box: staying at the lock's velocity"
-            faint = [n for n in (self._range_note(o.result) for o in self._obs if o.purpose == "velocity")
-                     if n is not None and n.startswith("one-photon/empty contrast")]
-            if faint:
-                # A poor source: the mixture's amplitude p0 + p1 a_g(1) nears zero a few steps
-                # from the 2 pi velocity, and its phase with it.
-                note += (f" (the one-photon phase too faint to use at {len(faint)} velocity step"
-                         f"{'s' if len(faint) > 1 else ''}: check the one-photon source's preparation "
-                         "probability)")
-            return {"concluded": True, "velocity": v0, "next": None, "note": note}
+            return self._absorption_plan(anchor.velocity, fit, attempts)
+        return self._extension_plan(attempts)
+
+    @staticmethod
+    def _was_tried(v: float, attempts: list[tuple[float, bool]]) -> bool:
+        """True when velocity ``v`` came back out of the capture range, or twice in range but
+        outside the absorption window (the lock does not settle at that velocity)."""
+        same = [usable for t, usable in attempts if abs(t / v - 1.0) <= _SAME_VELOCITY]
+        return (not all(same)) or len(same) >= 2 if same else False
+
+    def _absorption_plan(self, v0: float, fit: AbsorptionFit | None,
+                         attempts: list[tuple[float, bool]]) -> dict[str, Any]:
+        """The plan before the absorption's curvature is known: velocities around the lock's."""
+        f = self.settings.velocity_step_fraction
+        low, high = self._velocity_box
+        for candidate in (v0 * (1.0 - f), v0 * (1.0 + f), v0 * (1.0 - 2.0 * f), v0 * (1.0 + 2.0 * f)):
+            v = float(np.clip(candidate, low, high))
+            known = fit is not None and any(abs(fit.x_of(v) - x) <= _SAME_VELOCITY for x in fit.x_groups)
+            if known or self._was_tried(v, attempts) or abs(v / v0 - 1.0) <= _SAME_VELOCITY:
+                continue
+            return {"concluded": False, "velocity": v0, "next": v,
+                    "note": "velocities around the lock for the absorption's curvature"}
+        note = "no third usable velocity within the box: staying at the lock's velocity"
+        faint = [n for n in (self._range_note(o.result) for o in self._obs if o.purpose == "velocity")
+                 if n is not None and n.startswith("one-photon/empty contrast")]
+        if faint:
+            # A poor source: the mixture's amplitude p0 + p1 a_g(1) nears zero a few steps
+            # from the 2 pi velocity, and its phase with it.
+            note += (f" (the one-photon phase too faint to use at {len(faint)} velocity step"
+                     f"{'s' if len(faint) > 1 else ''}: check the one-photon source's preparation "
+                     "probability)")
+        return {"concluded": True, "velocity": v0, "next": None, "note": note}
+
+    def _extension_plan(self, attempts: list[tuple[float, bool]]) -> dict[str, Any]:
+        """The plan once the inversion curve exists: concluded when its optimum is bracketed,
+        otherwise a step towards higher inversion, or the box edge (outward or not)."""
+        f = self.settings.velocity_step_fraction
+        low, high = self._velocity_box
         curve = self._velocity_curve()
         vertex = curve.vertex()
         x_lo, x_hi = min(curve.x_groups), max(curve.x_groups)
@@ -422,7 +432,7 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
         # curve's end and the extension, or at it, says the extension will not be usable either.
         beyond = any(not usable and (t - end_v) * (v - end_v) > 0.0 and abs(t - end_v) <= abs(v - end_v)
                      for t, usable in attempts)
-        if was_tried(v) or beyond:
+        if self._was_tried(v, attempts) or beyond:
             return {"concluded": True, "velocity": end_v, "next": None, "bracketed": False,
                     "outward": outward,
                     "note": f"inversion optimum not bracketed: no usable signal at {v:.1f} m/s, "

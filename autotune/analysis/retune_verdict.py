@@ -20,6 +20,7 @@ from autotune.analysis.shortfall import Shortfall, Verdict
 
 if TYPE_CHECKING:
     from autotune.analysis.guided import PhaseLockSearch
+    from autotune.analysis.search_types import PointResult
 
 __all__ = ["inherited_draws", "retune_verdict"]
 
@@ -41,6 +42,28 @@ def inherited_draws(search: PhaseLockSearch, count: int) -> tuple[np.ndarray, fl
     rng = np.random.default_rng([search.seed, 17, len(search._obs)])
     spread = (p.velocity_shortfall_upper - p.velocity_shortfall) / z_q
     return p.velocity_shortfall + spread * np.abs(rng.standard_normal(count)), p.velocity_shortfall
+
+
+def _velocity_terms(search: PhaseLockSearch, result: PointResult, error: float, normals: np.ndarray,
+                    scale: float) -> tuple[np.ndarray, float, float, float, str]:
+    """The check's velocity shortfall: (draws, point value, excess absorption, its sd, text).
+
+    Judged from the check's excess absorption over the stored least absorption, only while its
+    phase error is inside the absorption window (beyond it the absorption says nothing of the
+    velocity).
+    """
+    p = search.prior
+    if abs(error) > search.settings.absorption_phase_window_rad:
+        return (np.zeros(len(normals)), 0.0, math.nan, math.nan,
+                "velocity not judged (phase error beyond the absorption window)")
+    excess = result.absorption - p.absorption_min
+    excess_sd = math.hypot(result.absorption_stderr, p.absorption_min_stderr)
+    v_draws = np.maximum(excess + excess_sd * normals, 0.0) / scale
+    text = f"excess absorption {excess:+.4f} +- {excess_sd:.4f} over the stored least {p.absorption_min:.4f}"
+    if p.absorption_curvature > 0 and excess > 0:
+        text += (f" (velocity off by about +-{math.sqrt(excess / p.absorption_curvature):.1%}, "
+                 "sign unknown)")
+    return v_draws, max(excess, 0.0) / scale, excess, excess_sd, text
 
 
 def retune_verdict(search: PhaseLockSearch, *, clock_s: float | None = None) -> Verdict:
@@ -87,22 +110,8 @@ def retune_verdict(search: PhaseLockSearch, *, clock_s: float | None = None) -> 
     eps2 = error_sd**2 * float(stats.ncx2.ppf(q, 1, (error / error_sd) ** 2))
     d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
     scale = max(p.inversion, _MIN_INVERSION_SCALE)
-    if abs(error) <= s.absorption_phase_window_rad:
-        excess = check.result.absorption - p.absorption_min
-        excess_sd = math.hypot(check.result.absorption_stderr, p.absorption_min_stderr)
-        v_draws = np.maximum(excess + excess_sd * normals[:, 1], 0.0) / scale
-        v_point = max(excess, 0.0) / scale
-        v_upper = float(np.quantile(v_draws, q))
-        velocity_text = (f"excess absorption {excess:+.4f} +- {excess_sd:.4f} over the stored least "
-                         f"{p.absorption_min:.4f}")
-        if p.absorption_curvature > 0 and excess > 0:
-            velocity_text += (f" (velocity off by about +-{math.sqrt(excess / p.absorption_curvature):.1%}, "
-                              "sign unknown)")
-    else:
-        excess = excess_sd = nan
-        v_draws = np.zeros(len(normals))
-        v_point = v_upper = 0.0
-        velocity_text = "velocity not judged (phase error beyond the absorption window)"
+    v_draws, v_point, excess, excess_sd, velocity_text = _velocity_terms(search, check.result, error,
+                                                                        normals[:, 1], scale)
     # The calibration's own uncertainty of the velocity the retune keeps.
     inherited, inherited_point = inherited_draws(search, len(v_draws))
     v_draws = v_draws + inherited
