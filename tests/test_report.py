@@ -78,9 +78,9 @@ def _wait_for_estimates(journal: Path, count: int, timeout_s: float = 300.0) -> 
     pytest.fail(f"{journal} did not reach {count} estimates in {timeout_s} s")
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_report")
+#: The tests that read the module-scoped fixture run on one worker (pytest-xdist's
+#: loadgroup), so that it is built once; the others go to any worker.
+_SHARES_FIXTURE = pytest.mark.xdist_group("test_report")
 
 
 @pytest.fixture(scope="module")
@@ -249,6 +249,7 @@ def _kinds(run_dir: Path) -> list[str]:
 # --------------------------------------------------------------------------------------------
 
 
+@_SHARES_FIXTURE
 def test_dry_run_folder_has_a_section_per_stage_and_the_truth(real: dict[str, Path],
                                                               dry_report: report.Report) -> None:
     """A dry run's folder reports calibrate and retune, each with true best, true@chosen, ratio."""
@@ -271,6 +272,7 @@ def test_dry_run_folder_has_a_section_per_stage_and_the_truth(real: dict[str, Pa
     assert keys == expected
 
 
+@_SHARES_FIXTURE
 def test_header_states_status_interval_level_and_setpoints(real: dict[str, Path],
                                                            dry_report: report.Report) -> None:
     """The header gives the verified inversion with its interval and level, set-points to 0.1 m/s and 0.01 kHz."""
@@ -287,6 +289,7 @@ def test_header_states_status_interval_level_and_setpoints(real: dict[str, Path]
     assert header["stop reason"] == result["stop_reason"]
 
 
+@_SHARES_FIXTURE
 def test_fringe_figure_shows_wilson_bars_and_the_journal_fit(real: dict[str, Path],
                                                              dry_report: report.Report) -> None:
     """Six phases per field with Wilson bars from the counts; the curves give the journal's inversion."""
@@ -329,6 +332,7 @@ def test_wilson_bars_match_the_worked_values(tmp_path: Path) -> None:
     assert low == pytest.approx(0.069508, abs=1e-6) and high == pytest.approx(0.261862, abs=1e-6)
 
 
+@_SHARES_FIXTURE
 def test_progress_figure_follows_the_best_so_far(real: dict[str, Path],
                                                  dry_report: report.Report) -> None:
     """One step per estimate, never decreasing, ending at the largest inversion measured."""
@@ -346,6 +350,7 @@ def test_progress_figure_follows_the_best_so_far(real: dict[str, Path],
     assert any("(count)" in label for label in _labels(fig))
 
 
+@_SHARES_FIXTURE
 def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
                                                   dry_report: report.Report) -> None:
     """Every search point drawn and numbered, the box drawn, chosen and true best marked."""
@@ -380,6 +385,7 @@ def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
     assert any(ax.get_label() == "<colorbar>" for ax in fig.axes)  # the colour has its scale
 
 
+@_SHARES_FIXTURE
 def test_scan_figure_holds_the_lock_steps(real: dict[str, Path],
                                           dry_report: report.Report) -> None:
     """The phase lock's detuning steps, in kHz, with their intervals, one series per label."""
@@ -396,6 +402,7 @@ def test_scan_figure_holds_the_lock_steps(real: dict[str, Path],
     assert "detuning set-point (kHz)" in _labels(fig)
 
 
+@_SHARES_FIXTURE
 def test_phase_shift_figure_is_in_units_of_pi(real: dict[str, Path],
                                               dry_report: report.Report) -> None:
     """Every estimate's phase shift divided by pi, against detuning in kHz."""
@@ -408,6 +415,7 @@ def test_phase_shift_figure_is_in_units_of_pi(real: dict[str, Path],
     assert "photon phase shift (π rad)" in _labels(fig)
 
 
+@_SHARES_FIXTURE
 def test_timeline_chains_the_stages_on_the_rig_clock(real: dict[str, Path],
                                                      dry_report: report.Report) -> None:
     """Inversion, detuning and corrections against rig time; the retune counts as a correction."""
@@ -425,6 +433,7 @@ def test_timeline_chains_the_stages_on_the_rig_clock(real: dict[str, Path],
         (retune["setpoints"]["detuning"] - check["setpoints"]["detuning"]) / 1e3)
 
 
+@_SHARES_FIXTURE
 def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
     """Each drawn axis label names its unit in parentheses."""
     for fig in dry_report.figures:
@@ -439,6 +448,7 @@ def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
 # --------------------------------------------------------------------------------------------
 
 
+@_SHARES_FIXTURE
 def test_report_of_a_dry_run_writes_a_self_contained_page(real: dict[str, Path],
                                                           tmp_path: Path) -> None:
     """report DRY --out DIR: one data URI per figure file, no script, no network reference."""
@@ -461,6 +471,7 @@ def test_report_of_a_dry_run_writes_a_self_contained_page(real: dict[str, Path],
     assert not list(real["dry"].glob("report*"))  # --out: nothing written beside the runs
 
 
+@_SHARES_FIXTURE
 def test_no_plot_prints_text_and_writes_nothing(real: dict[str, Path]) -> None:
     """--no-plot: the summary on stdout, no file added to the folder."""
     before = sorted(p.name for p in real["dry"].rglob("*"))
@@ -472,6 +483,7 @@ def test_no_plot_prints_text_and_writes_nothing(real: dict[str, Path]) -> None:
     assert sorted(p.name for p in real["dry"].rglob("*")) == before
 
 
+@_SHARES_FIXTURE
 def test_report_of_a_killed_run(real: dict[str, Path], tmp_path: Path) -> None:
     """A SIGKILLed calibration, and the same with a last line cut mid-write: reported, flagged."""
     cut = tmp_path / "cut"
@@ -497,6 +509,7 @@ def test_report_of_a_killed_run(real: dict[str, Path], tmp_path: Path) -> None:
     assert "latest measurement" in fig.caption
 
 
+@_SHARES_FIXTURE
 def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     """A night of track (one run folder): the night figure against rig time with every check,
     and the corrections drawn from the night's 'correct' decisions (from/to set-points)."""
@@ -533,6 +546,7 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     assert "journal record types not drawn" not in done.stdout
 
 
+@_SHARES_FIXTURE
 @pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "bad_result"])
 def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path],
                                                             tmp_path: Path, damage: str) -> None:
@@ -556,6 +570,7 @@ def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path
     assert named in done.stderr
 
 
+@_SHARES_FIXTURE
 def test_a_journal_with_a_damaged_line_is_reported_up_to_it(real: dict[str, Path],
                                                            tmp_path: Path) -> None:
     """A line that is not JSON in the middle of a journal: exit code 0, the records before it
