@@ -3,6 +3,16 @@ README's dry run (run once per test session and read by every test that checks i
 
 from __future__ import annotations
 
+import os
+
+# One BLAS thread per process, set before numpy is first imported here and inherited by every
+# worker and subprocess of the suite: four workers on two cores, each with OpenBLAS's own
+# threads spinning for the small matrices of the Gaussian-process fits, spent twice the CPU
+# (tests/test_search.py's determinism and resume tests side by side: 31.2 s of CPU with the
+# default threads, 14.8 s with one, same results). A value set by the caller is kept.
+for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS"):
+    os.environ.setdefault(_variable, "1")
+
 import fcntl
 import json
 import shlex

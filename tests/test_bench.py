@@ -29,9 +29,12 @@ TINY = dataclasses.replace(bench.plan_for("tiny", workers=1), strategies=("bayes
 TINY_NIGHT = bench.plan_for("tiny", workers=1, night_only=True)
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_bench")
+#: The tests that read one of the two module-scoped studies run on one worker each
+#: (pytest-xdist's loadgroup), so that each study is built once; the calibration study and the
+#: night study are two groups, built side by side on two workers, and the tests that read
+#: neither go to any worker.
+_READS_STUDY = pytest.mark.xdist_group("test_bench_study")
+_READS_NIGHT_STUDY = pytest.mark.xdist_group("test_bench_night_study")
 
 
 @pytest.fixture(scope="module")
@@ -134,6 +137,7 @@ def test_main_draw_is_unchanged_by_the_families():
     assert [scenario["rig_seed"], scenario["search_seed"]] == seeds
 
 
+@_READS_STUDY
 def test_study_covers_every_family_and_strategy(study):
     """Every family has every strategy's calibration, its oracle runs, and retunes of the Bayesian one."""
     # Source: the study's plan (TINY above).
@@ -145,6 +149,7 @@ def test_study_covers_every_family_and_strategy(study):
     assert len(study["runs"]) == len(TINY.families) * TINY.scenarios * len(TINY.strategies)
 
 
+@_READS_STUDY
 def test_whole_stage_shots_are_what_the_stage_measured(study):
     """A stage's shots are its points plus the detuning scan plus the verification, in whole fringes."""
     # Source: the measurement of docs/physics.md section 5 (2 fields x phases x shots per phase).
@@ -158,6 +163,7 @@ def test_whole_stage_shots_are_what_the_stage_measured(study):
             assert c["shots"] == (c["points"] + refine) * per_point + verification
 
 
+@_READS_STUDY
 def test_shots_by_purpose_add_up_to_the_stage_and_name_the_verification(study):
     """Where the shots went: the journal's tally by purpose adds up to the stage's shots, and a
     grid's verification is one fringe pair at the verification's shots."""
@@ -174,6 +180,7 @@ def test_shots_by_purpose_add_up_to_the_stage_and_name_the_verification(study):
             assert run["calibrate"]["shots_by_purpose"]["verify"] == verification
 
 
+@_READS_STUDY
 def test_shots_by_purpose_rows_are_numpy_medians(study):
     """The printed breakdown's medians are numpy's (0 for a stage without that purpose)."""
     rows = bench_tables.shots_by_purpose_rows(study)
@@ -187,6 +194,7 @@ def test_shots_by_purpose_rows_are_numpy_medians(study):
     assert "1b. where a calibration's shots went" in bench.format_table(study)
 
 
+@_READS_STUDY
 def test_failures_at_both_bars_count_the_final_ratios(study):
     """The columns '<0.98' and '<0.97' count the scenarios whose final true ratio is below each bar."""
     # Source: the issue's definition (failures counted at 0.98 and at 0.97 of the true best).
@@ -199,6 +207,7 @@ def test_failures_at_both_bars_count_the_final_ratios(study):
             assert row["below_lower_threshold"] == sum(f < 0.97 for f in finals)
 
 
+@_READS_STUDY
 def test_moved_peak_judged_still_good_is_a_passed_check_below_98(study):
     """A retune counts as 'moved, judged still good' exactly when its check passed and the old
     set-points were below 98 % of the new best right after the step."""
@@ -210,12 +219,14 @@ def test_moved_peak_judged_still_good_is_a_passed_check_below_98(study):
                 r["status"] == "still_good" and r["ratio_after_step"] < 0.98)
 
 
+@_READS_STUDY
 def test_grid_finishes_its_design(study):
     """The grid run measures all 3 x 3 points of its design, the budget raised to allow it."""
     grid = [r["calibrate"] for r in study["runs"] if r["strategy"] == "grid"]
     assert [r["points"] for r in grid] == [3 * 3] * len(TINY.families)
 
 
+@_READS_STUDY
 def test_shots_to_threshold_are_whole_points(study):
     """Shots to the threshold are a whole number of points of 2 fields x phases x shots each."""
     m = study["strategies"]["bayesian"]
@@ -226,6 +237,7 @@ def test_shots_to_threshold_are_whole_points(study):
             assert c["shots_to_threshold"] == c["points_to_threshold"] * per_point
 
 
+@_READS_STUDY
 def test_rig_time_covers_the_acquisitions(study):
     """Rig time to the threshold is at least shots / repetition rate (docs/physics.md section 4)."""
     rate = study["overhead"]["repetition_rate_hz"]
@@ -235,6 +247,7 @@ def test_rig_time_covers_the_acquisitions(study):
             assert c["rig_time_to_threshold_s"] >= c["shots_to_threshold"] / rate * (1 - 1e-9)
 
 
+@_READS_STUDY
 def test_final_true_inversion_does_not_beat_the_true_best(study):
     """The truth's best is a maximum over the set-points, so no final ratio exceeds one."""
     for run in study["runs"]:
@@ -242,12 +255,14 @@ def test_final_true_inversion_does_not_beat_the_true_best(study):
         assert run["calibrate"]["final_ratio"] <= 1.005
 
 
+@_READS_STUDY
 def test_oracle_floor_is_the_verification_alone(study):
     """The oracle floor is 2 fields x phases x verification shots per phase."""
     m = study["strategies"]["bayesian"]
     assert study["oracle"]["shots"] == 2 * m["ramsey_phases"] * m["verification_shots_per_phase"]
 
 
+@_READS_STUDY
 def test_missed_targets_are_said_plainly(study):
     """Every target appears in the table with 'met', 'MISSED' or 'not run' as measured."""
     table = bench.format_table(study)
@@ -256,6 +271,7 @@ def test_missed_targets_are_said_plainly(study):
         assert f"[{expected}] {target['name']}" in table
 
 
+@_READS_STUDY
 def test_guided_targets_say_not_run_without_the_guided_strategy(study):
     """Without phase_lock in the run, each of its seven targets is printed as 'not run'."""
     # Source: the issue's list of the guided strategy's targets (seven kinds).
@@ -340,6 +356,7 @@ def test_importing_autotune_pulls_in_neither_dask_nor_the_simulator():
     assert out.strip() == "[]"
 
 
+@_READS_STUDY
 def test_local_dask_cluster_gives_the_serial_results(study):
     """Two dask worker processes give exactly the serial run's calibrations, oracles and retunes."""
     # Reference: the same jobs run in this process (the module's study); every job is seeded,
@@ -362,24 +379,26 @@ def test_local_dask_cluster_gives_the_serial_results(study):
     assert main_only(on_cluster["oracle"]["runs"]) == main_only(study["oracle"]["runs"])
 
 
-def test_existing_scheduler_gives_the_serial_results(study):
+def test_existing_scheduler_gives_the_serial_results():
     """Jobs sent to a running scheduler (--scheduler) give the serial run's results too."""
-    # Reference: the module's serial study; a dask LocalCluster started here stands for an
-    # existing cluster.
+    # Reference: the same plan run in this process; a dask LocalCluster started here stands for
+    # an existing cluster. The grid alone on the main family: a few seconds of serial jobs, so
+    # that this test does not wait for the module's study on the study's worker.
     from distributed import LocalCluster
 
     plan = dataclasses.replace(TINY, strategies=("grid",), families=("main",), night_steps=0,
                                overhead_points=(), workers=2)
+    serial = bench.run_study(dataclasses.replace(plan, workers=1))["runs"]
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None, death_timeout=120,
                       scheduler_kwargs={"dashboard": False,
                                         "dashboard_address": "127.0.0.1:0"}) as cluster:
         remote = bench.run_study(plan, scheduler=cluster.scheduler_address)
     assert remote["machine"]["ran_on"] == f"dask scheduler {cluster.scheduler_address}"
-    serial = [r for r in study["runs"] if r["family"] == "main" and r["strategy"] == "grid"]
-    assert _without_wall_times(remote["runs"]) == _without_wall_times(serial)
+    assert remote["runs"] and _without_wall_times(remote["runs"]) == _without_wall_times(serial)
 
 
+@_READS_STUDY
 def test_result_file_is_strict_json(study, tmp_path):
     """The result file parses as JSON without NaN or Infinity (RFC 8259 has neither)."""
     path = tmp_path / "result.json"
@@ -392,6 +411,7 @@ def test_result_file_is_strict_json(study, tmp_path):
     assert data["mode"] == "tiny"
 
 
+@_READS_STUDY
 def test_table_reprints_from_the_result_file(study, tmp_path, capsys):
     """``--show FILE`` prints the same table from the file as the run printed from memory."""
     path = tmp_path / "result.json"
@@ -497,6 +517,7 @@ def test_night_steps_are_seeded_and_leave_an_hour_to_recover():
     assert signs == {True, False}
 
 
+@_READS_NIGHT_STUDY
 def test_the_night_study_runs_every_method_on_every_scenario(night_study):
     """track, both schedules and the quiet track ran on the scenario; the fractions lie in
     [0, 1]; the holding share is the night's acquisitions over its rig time."""
@@ -522,6 +543,7 @@ def test_the_night_study_runs_every_method_on_every_scenario(night_study):
             assert run["steps"] == []
 
 
+@_READS_NIGHT_STUDY
 def test_the_night_targets_are_said_plainly(night_study):
     """Five issue-22 targets per night family (every night held, within the budget, the
     recovery, the quiet night, against the schedules), each met or MISSED, and the table prints
@@ -535,6 +557,7 @@ def test_the_night_targets_are_said_plainly(night_study):
         assert f"[{t['status']}] {t['name']}" in table
 
 
+@_READS_NIGHT_STUDY
 def test_the_night_result_reprints_from_its_file(night_study, tmp_path, capsys):
     """A night-only result file is strict JSON and --show prints its table."""
     path = tmp_path / "night.json"

@@ -28,9 +28,9 @@ SIM_DRIVER = REPO / "configs" / "sim-driver.toml"
 GARBAGE = b"\xff\xfe\x00\x81 not a config \x9c\xd0\n" + bytes(range(128, 256))
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_input_checks")
+#: The tests that read the module-scoped fixture run on one worker (pytest-xdist's
+#: loadgroup), so that it is built once; the others go to any worker.
+_SHARES_FIXTURE = pytest.mark.xdist_group("test_input_checks")
 
 
 @pytest.fixture(scope="module")
@@ -61,6 +61,7 @@ def _config(tmp_path: Path, endpoint: str, **sections: dict[str, Any]) -> Path:
                        **sections)
 
 
+@_SHARES_FIXTURE
 def test_a_config_of_binary_garbage_is_refused_naming_the_file(tmp_path, rig):
     """calibrate, retune and track with a config that is not UTF-8 text: exit 2 naming the file
     (it used to exit 1 with a UnicodeDecodeError traceback), no run folder, rig untouched."""
@@ -75,6 +76,7 @@ def test_a_config_of_binary_garbage_is_refused_naming_the_file(tmp_path, rig):
     assert _state(rig.endpoint) == before
 
 
+@_SHARES_FIXTURE
 def test_a_coupling_typed_in_khz_is_refused_before_anything_moves(tmp_path, rig):
     """[nominal] coupling_hz = 49 (kHz typed where Hz is asked; issue 18 ran a whole night on
     it): exit 2 naming both nominal keys, the 2π velocity they give and the likely unit; no run
@@ -92,6 +94,7 @@ def test_a_coupling_typed_in_khz_is_refused_before_anything_moves(tmp_path, rig)
     assert _state(rig.endpoint) == before
 
 
+@_SHARES_FIXTURE
 def test_a_nominal_two_pi_velocity_outside_the_box_is_refused(tmp_path, rig):
     """A plausible coupling and waist whose 2π velocity (Ω0 w / (2√π) = 411.2 m/s for 40 kHz
     and 5.8 mm, docs/physics.md section 2) lies below the box [460, 560]: exit 2 naming both keys and
@@ -105,6 +108,7 @@ def test_a_nominal_two_pi_velocity_outside_the_box_is_refused(tmp_path, rig):
     assert _state(rig.endpoint) == before
 
 
+@_SHARES_FIXTURE
 def test_absurd_budgets_are_refused_naming_key_bound_and_why(tmp_path, rig):
     """max_shots = 1e26 (issue 23: accepted, the progress line showed 0/99999999999999991611392k)
     and a search of 100 years: one message with both, exit 2, rig untouched."""
@@ -126,6 +130,7 @@ def test_absurd_budgets_are_refused_naming_key_bound_and_why(tmp_path, rig):
     assert _state(rig.endpoint) == before
 
 
+@_SHARES_FIXTURE
 def test_a_damaged_last_good_store_stops_a_retune_naming_it(tmp_path, rig):
     """retune with a last good store of garbage bytes: exit 2 naming the store, no run folder,
     nothing sent to the rig."""
@@ -141,6 +146,7 @@ def test_a_damaged_last_good_store_stops_a_retune_naming_it(tmp_path, rig):
     assert _state(rig.endpoint) == before
 
 
+@_SHARES_FIXTURE
 @pytest.mark.parametrize("damaged", [JOURNAL_NAME, MANIFEST_NAME])
 def test_a_damaged_run_folder_is_refused_on_resume_and_report(tmp_path, rig, damaged):
     """A resume of a folder whose journal or manifest is garbage: exit 2 naming the file, the
@@ -216,6 +222,7 @@ def test_serve_refuses_a_channel_limit_of_1e308_and_a_garbage_rig_config(tmp_pat
     assert "server_listening" not in done.stderr
 
 
+@_SHARES_FIXTURE
 def test_garbage_key_files_stop_the_run_naming_the_file(tmp_path, rig):
     """[bus.curve] key files of garbage bytes: exit 2 naming the key file (security fails
     loudly, never a fallback to plain text), no run folder, nothing sent to the rig."""

@@ -78,23 +78,26 @@ def _wait_for_estimates(journal: Path, count: int, timeout_s: float = 300.0) -> 
     pytest.fail(f"{journal} did not reach {count} estimates in {timeout_s} s")
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_report")
+#: The tests that read the dry run's report (dry_report, its figures drawn once per module) run
+#: on one worker (pytest-xdist's loadgroup); the killed run and the night, each read by one
+#: test, are built on whichever worker runs it, side by side with the others.
+_SHARES_FIXTURE = pytest.mark.xdist_group("test_report")
 
 
 @pytest.fixture(scope="module")
-def real(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) -> dict[str, Path]:
-    """A dry run's folder (the session's one README dry run, conftest.py: read only), a
-    calibration killed mid-run, and a two-cycle track folder."""
-    base = tmp_path_factory.mktemp("report")
+def dry_folder(readme_dry_run: DryRun) -> Path:
+    """The dry run's folder: the session's one README dry run (conftest.py), read only."""
     assert readme_dry_run.returncode == 0 and readme_dry_run.folder is not None, \
         readme_dry_run.stderr[-3000:]
-    dry = readme_dry_run.folder
+    return readme_dry_run.folder
+
+
+@pytest.fixture(scope="module")
+def killed_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A calibration killed (SIGKILL) after its fourth estimate, on a rig of its own."""
+    base = tmp_path_factory.mktemp("killed")
     server = spawn_server(base, "rig", seed=11)
     try:
-        store = base / "good.json"
-        shutil.copy(dry / "last-good.json", store)
         config = _config(base / "c.toml", server.endpoint, base / "unused-store.json")
         killed = base / "killed"
         process = subprocess.Popen([sys.executable, "-m", "autotune.cli", "calibrate",
@@ -111,8 +114,16 @@ def real(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) -> di
                 process.wait(timeout=30)
     finally:
         server.stop()
-    # The night on a rig of its own: on the killed calibration's rig, its data (the rig's
-    # clock, its random draws) would depend on how far that calibration got before the kill.
+    return killed
+
+
+@pytest.fixture(scope="module")
+def night_run(tmp_path_factory: pytest.TempPathFactory, dry_folder: Path) -> Path:
+    """A two-cycle track folder, from the dry run's last good calibration, on a rig of its
+    own (on another run's rig, its data would depend on how far that run got)."""
+    base = tmp_path_factory.mktemp("night")
+    store = base / "good.json"
+    shutil.copy(dry_folder / "last-good.json", store)
     server = spawn_server(base, "night-rig", seed=11)
     try:
         track_config = _config(base / "t.toml", server.endpoint, store,
@@ -122,13 +133,13 @@ def real(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) -> di
         assert tracked.returncode == 0, tracked.stderr[-3000:]
     finally:
         server.stop()
-    return {"dry": dry, "killed": killed, "track": base / "track"}
+    return base / "track"
 
 
 @pytest.fixture(scope="module")
-def dry_report(real: dict[str, Path]) -> report.Report:
+def dry_report(dry_folder: Path) -> report.Report:
     """The dry run's report, figures drawn (not saved)."""
-    return report.build_report(real["dry"])
+    return report.build_report(dry_folder)
 
 
 def _figure(rep: report.Report, section: str, key: str) -> Any:
@@ -249,12 +260,13 @@ def _kinds(run_dir: Path) -> list[str]:
 # --------------------------------------------------------------------------------------------
 
 
-def test_dry_run_folder_has_a_section_per_stage_and_the_truth(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_dry_run_folder_has_a_section_per_stage_and_the_truth(dry_folder: Path,
                                                               dry_report: report.Report) -> None:
     """A dry run's folder reports calibrate and retune, each with true best, true@chosen, ratio."""
     assert [r.name for r in dry_report.runs] == ["calibrate", "retune"]
     for run in dry_report.runs:
-        truth = json.loads((real["dry"] / run.name / RESULT_NAME).read_text())["truth"]
+        truth = json.loads((dry_folder / run.name / RESULT_NAME).read_text())["truth"]
         row = dict(dry_report.headers[run.name])["truth (simulated)"]
         ratio = truth["inversion_at_chosen"] / truth["best_inversion"]
         assert f"true@chosen {truth['inversion_at_chosen']:.3f}" in row
@@ -266,15 +278,16 @@ def test_dry_run_folder_has_a_section_per_stage_and_the_truth(real: dict[str, Pa
         expected |= {(stage, "fringes"), (stage, "progress"), (stage, "map"),
                      (stage, "phase-shift"), (stage, "absorption")}
         if any(r["label"] in report.SCAN_LABELS
-               for r in _journal_estimates(real["dry"] / stage)):
+               for r in _journal_estimates(dry_folder / stage)):
             expected.add((stage, "scan"))  # only where the stage measured lock steps or a scan
     assert keys == expected
 
 
-def test_header_states_status_interval_level_and_setpoints(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_header_states_status_interval_level_and_setpoints(dry_folder: Path,
                                                            dry_report: report.Report) -> None:
     """The header gives the verified inversion with its interval and level, set-points to 0.1 m/s and 0.01 kHz."""
-    result = json.loads((real["dry"] / "calibrate" / RESULT_NAME).read_text())
+    result = json.loads((dry_folder / "calibrate" / RESULT_NAME).read_text())
     header = dict(dry_report.headers["calibrate"])
     low, high = result["inversion_interval"]
     assert header["status"] == result["status"]
@@ -287,12 +300,13 @@ def test_header_states_status_interval_level_and_setpoints(real: dict[str, Path]
     assert header["stop reason"] == result["stop_reason"]
 
 
-def test_fringe_figure_shows_wilson_bars_and_the_journal_fit(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_fringe_figure_shows_wilson_bars_and_the_journal_fit(dry_folder: Path,
                                                              dry_report: report.Report) -> None:
     """Six phases per field with Wilson bars from the counts; the curves give the journal's inversion."""
     fig = _figure(dry_report, "calibrate", "fringes")
     assert any("(rad)" in label for label in _labels(fig))
-    records = read_journal(real["dry"] / "calibrate" / JOURNAL_NAME)
+    records = read_journal(dry_folder / "calibrate" / JOURNAL_NAME)
     verify = [r for r in records if r["type"] == "acquisition" and r["label"] == "verify"]
     for fld in ("empty", "one_photon"):
         (line,) = _by_gid(fig, f"data-{fld}")
@@ -309,7 +323,7 @@ def test_fringe_figure_shows_wilson_bars_and_the_journal_fit(real: dict[str, Pat
             assert seg[0][1] == pytest.approx(ci.low) and seg[1][1] == pytest.approx(ci.high)
     (empty,) = _by_gid(fig, "fit-empty")
     (one,) = _by_gid(fig, "fit-one_photon")
-    journaled = [r for r in _journal_estimates(real["dry"] / "calibrate") if r["label"] == "verify"]
+    journaled = [r for r in _journal_estimates(dry_folder / "calibrate") if r["label"] == "verify"]
     # The largest one-photon minus empty difference over phase is the inversion (docs/physics.md s.5),
     # here the value the loop journaled from the same counts.
     difference = np.max(np.asarray(one.get_ydata()) - np.asarray(empty.get_ydata()))
@@ -329,30 +343,32 @@ def test_wilson_bars_match_the_worked_values(tmp_path: Path) -> None:
     assert low == pytest.approx(0.069508, abs=1e-6) and high == pytest.approx(0.261862, abs=1e-6)
 
 
-def test_progress_figure_follows_the_best_so_far(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_progress_figure_follows_the_best_so_far(dry_folder: Path,
                                                  dry_report: report.Report) -> None:
     """One step per estimate, never decreasing, ending at the largest inversion measured."""
     fig = _figure(dry_report, "calibrate", "progress")
-    estimates = _journal_estimates(real["dry"] / "calibrate")
+    estimates = _journal_estimates(dry_folder / "calibrate")
     (line,) = _by_gid(fig, "best-so-far")
     best = np.asarray(line.get_ydata())
     assert len(best) == len(estimates)
     assert np.all(np.diff(best) >= 0)
     assert best[-1] == pytest.approx(max(r["estimate"]["inversion"] for r in estimates))
     shots = np.asarray(line.get_xdata())
-    total = sum(r["shots"] for r in read_journal(real["dry"] / "calibrate" / JOURNAL_NAME)
+    total = sum(r["shots"] for r in read_journal(dry_folder / "calibrate" / JOURNAL_NAME)
                 if r["type"] == "acquisition")
     assert shots[-1] == total and np.all(np.diff(shots) > 0)
     assert any("(count)" in label for label in _labels(fig))
 
 
-def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_map_figure_numbers_the_points_in_the_box(dry_folder: Path,
                                                   dry_report: report.Report) -> None:
     """Every search point drawn and numbered, the box drawn, chosen and true best marked."""
     fig = _figure(dry_report, "calibrate", "map")
     labels = _labels(fig)
     assert "velocity set-point (m/s)" in labels and "detuning set-point (kHz)" in labels
-    estimates = [r for r in _journal_estimates(real["dry"] / "calibrate")
+    estimates = [r for r in _journal_estimates(dry_folder / "calibrate")
                  if r["label"] in report.SEARCH_LABELS]
     drawn = []
     for label in dict.fromkeys(r["label"] for r in estimates):
@@ -363,12 +379,12 @@ def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
     numbers = sorted(int(t.get_text()) for t in fig.axes[0].texts)
     assert numbers == sorted(r["point"] for r in estimates)
     (box,) = _by_gid(fig, "box")
-    stage = next(r for r in read_journal(real["dry"] / "calibrate" / JOURNAL_NAME)
+    stage = next(r for r in read_journal(dry_folder / "calibrate" / JOURNAL_NAME)
                  if r["type"] == "stage")
     assert box.get_x() == stage["box"]["velocity"][0]
     assert box.get_width() == pytest.approx(np.ptp(stage["box"]["velocity"]))
     assert box.get_y() == pytest.approx(stage["box"]["detuning"][0] / 1e3)
-    result = json.loads((real["dry"] / "calibrate" / RESULT_NAME).read_text())
+    result = json.loads((dry_folder / "calibrate" / RESULT_NAME).read_text())
     (chosen,) = _by_gid(fig, "chosen")
     assert chosen.get_xdata()[0] == result["setpoints"]["velocity"]
     (true_best,) = _by_gid(fig, "true-best")
@@ -380,11 +396,12 @@ def test_map_figure_numbers_the_points_in_the_box(real: dict[str, Path],
     assert any(ax.get_label() == "<colorbar>" for ax in fig.axes)  # the colour has its scale
 
 
-def test_scan_figure_holds_the_lock_steps(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_scan_figure_holds_the_lock_steps(dry_folder: Path,
                                           dry_report: report.Report) -> None:
     """The phase lock's detuning steps, in kHz, with their intervals, one series per label."""
     fig = _figure(dry_report, "calibrate", "scan")
-    estimates = _journal_estimates(real["dry"] / "calibrate")
+    estimates = _journal_estimates(dry_folder / "calibrate")
     for label in ("lock", "relock"):
         steps = [r for r in estimates if r["label"] == label]
         if not steps:
@@ -396,35 +413,38 @@ def test_scan_figure_holds_the_lock_steps(real: dict[str, Path],
     assert "detuning set-point (kHz)" in _labels(fig)
 
 
-def test_phase_shift_figure_is_in_units_of_pi(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_phase_shift_figure_is_in_units_of_pi(dry_folder: Path,
                                               dry_report: report.Report) -> None:
     """Every estimate's phase shift divided by pi, against detuning in kHz."""
     fig = _figure(dry_report, "retune", "phase-shift")
     (scatter,) = _by_gid(fig, "phase-shift")
-    estimates = _journal_estimates(real["dry"] / "retune")
+    estimates = _journal_estimates(dry_folder / "retune")
     np.testing.assert_allclose(scatter.get_offsets(),
                                [[r["setpoints"]["detuning"] / 1e3,
                                  r["estimate"]["phase_shift"] / math.pi] for r in estimates])
     assert "photon phase shift (π rad)" in _labels(fig)
 
 
-def test_timeline_chains_the_stages_on_the_rig_clock(real: dict[str, Path],
+@_SHARES_FIXTURE
+def test_timeline_chains_the_stages_on_the_rig_clock(dry_folder: Path,
                                                      dry_report: report.Report) -> None:
     """Inversion, detuning and corrections against rig time; the retune counts as a correction."""
     fig = _figure(dry_report, "", "timeline")
     assert len(fig.axes) == 3
     assert fig.axes[2].get_xlabel() == "rig time since the first run started (h)"
-    total = sum(len(_journal_estimates(real["dry"] / name)) for name in ("calibrate", "retune"))
+    total = sum(len(_journal_estimates(dry_folder / name)) for name in ("calibrate", "retune"))
     drawn = sum(len(line.get_xdata()) for line in fig.findobj(
         lambda a: str(a.get_gid()).startswith("inv-")))
     assert drawn == total
     (retunes,) = _by_gid(fig, "retunes")
-    retune = json.loads((real["dry"] / "retune" / RESULT_NAME).read_text())
-    check = [r for r in _journal_estimates(real["dry"] / "retune") if r["label"] == "check"][0]
+    retune = json.loads((dry_folder / "retune" / RESULT_NAME).read_text())
+    check = [r for r in _journal_estimates(dry_folder / "retune") if r["label"] == "check"][0]
     assert retunes.get_ydata()[0] == pytest.approx(
         (retune["setpoints"]["detuning"] - check["setpoints"]["detuning"]) / 1e3)
 
 
+@_SHARES_FIXTURE
 def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
     """Each drawn axis label names its unit in parentheses."""
     for fig in dry_report.figures:
@@ -439,16 +459,16 @@ def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
 # --------------------------------------------------------------------------------------------
 
 
-def test_report_of_a_dry_run_writes_a_self_contained_page(real: dict[str, Path],
+def test_report_of_a_dry_run_writes_a_self_contained_page(dry_folder: Path,
                                                           tmp_path: Path) -> None:
     """report DRY --out DIR: one data URI per figure file, no script, no network reference."""
     out = tmp_path / "out"
-    done = _autotune("report", str(real["dry"]), "--out", str(out))
+    done = _autotune("report", str(dry_folder), "--out", str(out))
     assert done.returncode == 0, done.stderr[-3000:]
     assert "look at this" in done.stdout and "calibrate" in done.stdout
     assert "retune" in done.stdout
     pngs = sorted(out.glob("report-*.png"))
-    assert len(pngs) == len(report.build_report(real["dry"]).figures)
+    assert len(pngs) == len(report.build_report(dry_folder).figures)
     page = (out / report.HTML_NAME).read_text(encoding="utf-8")
     uris = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
     assert len(uris) == len(pngs)
@@ -458,27 +478,27 @@ def test_report_of_a_dry_run_writes_a_self_contained_page(real: dict[str, Path],
     lowered = page.lower()
     assert "<script" not in lowered and "<link" not in lowered and "@import" not in lowered
     assert "http://" not in lowered and "https://" not in lowered and "url(" not in lowered
-    assert not list(real["dry"].glob("report*"))  # --out: nothing written beside the runs
+    assert not list(dry_folder.glob("report*"))  # --out: nothing written beside the runs
 
 
-def test_no_plot_prints_text_and_writes_nothing(real: dict[str, Path]) -> None:
+def test_no_plot_prints_text_and_writes_nothing(dry_folder: Path) -> None:
     """--no-plot: the summary on stdout, no file added to the folder."""
-    before = sorted(p.name for p in real["dry"].rglob("*"))
-    done = _autotune("report", str(real["dry"] / "calibrate"), "--no-plot")
+    before = sorted(p.name for p in dry_folder.rglob("*"))
+    done = _autotune("report", str(dry_folder / "calibrate"), "--no-plot")
     assert done.returncode == 0, done.stderr[-3000:]
     assert "verified inversion" in done.stdout
-    estimates = _journal_estimates(real["dry"] / "calibrate")
+    estimates = _journal_estimates(dry_folder / "calibrate")
     assert done.stdout.count("\npoint ") == sum(r["label"] == "point" for r in estimates)
-    assert sorted(p.name for p in real["dry"].rglob("*")) == before
+    assert sorted(p.name for p in dry_folder.rglob("*")) == before
 
 
-def test_report_of_a_killed_run(real: dict[str, Path], tmp_path: Path) -> None:
+def test_report_of_a_killed_run(killed_run: Path, tmp_path: Path) -> None:
     """A SIGKILLed calibration, and the same with a last line cut mid-write: reported, flagged."""
     cut = tmp_path / "cut"
-    shutil.copytree(real["killed"], cut)
+    shutil.copytree(killed_run, cut)
     with (cut / JOURNAL_NAME).open("ab") as handle:
         handle.write(b'{"seq": 999, "type": "acquisition", "label": "po')
-    for folder in (real["killed"], cut):
+    for folder in (killed_run, cut):
         assert not (folder / RESULT_NAME).exists()
         done = _autotune("report", str(folder))
         assert done.returncode == 0, done.stderr[-3000:]
@@ -497,21 +517,21 @@ def test_report_of_a_killed_run(real: dict[str, Path], tmp_path: Path) -> None:
     assert "latest measurement" in fig.caption
 
 
-def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
+def test_report_of_a_night_draws_its_timeline(night_run: Path) -> None:
     """A night of track (one run folder): the night figure against rig time with every check,
     and the corrections drawn from the night's 'correct' decisions (from/to set-points)."""
-    done = _autotune("report", str(real["track"]))
+    done = _autotune("report", str(night_run))
     assert done.returncode == 0, done.stderr[-3000:]
-    page = (real["track"] / report.HTML_NAME).read_text(encoding="utf-8")
+    page = (night_run / report.HTML_NAME).read_text(encoding="utf-8")
     assert 'id="fig-run-night"' in page
-    assert (real["track"] / "report-night.png").read_bytes()[:8] == PNG_SIGNATURE
-    built = report.build_report(real["track"])
+    assert (night_run / "report-night.png").read_bytes()[:8] == PNG_SIGNATURE
+    built = report.build_report(night_run)
     assert [f.key for f in built.figures] == ["night", "fringes"]  # no map, no running maximum
     fig = _figure(built, "", "night")
     drawn = sum(len(line.get_xdata()) for line in fig.findobj(
         lambda a: a.get_gid() in ("night-checks", "night-stage-points")))
-    assert drawn == len(_journal_estimates(real["track"]))
-    records = read_journal(real["track"] / JOURNAL_NAME)
+    assert drawn == len(_journal_estimates(night_run))
+    records = read_journal(night_run / JOURNAL_NAME)
     corrections = [r for r in records if r["type"] == "decision" and r["what"] == "correct"]
     drawn = fig.findobj(lambda a: a.get_gid() == "corrections")
     assert corrections and sum(len(line.get_xdata()) for line in drawn) == len(corrections)
@@ -522,7 +542,7 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
     assert tops and max(tops) <= 1.0 + 1e-12
     # The header reads as a night: what it held, its counts and beam share, its last check
     # (a check, not a verification), the numbers of its result.json.
-    result = read_json(real["track"] / RESULT_NAME)
+    result = read_json(night_run / RESULT_NAME)
     rows = dict(report_header(built.runs[0]))
     assert "verified inversion" not in rows and "best measured" not in rows
     assert rows["stop reason"] == result["stop_reason"]
@@ -534,7 +554,7 @@ def test_report_of_a_night_draws_its_timeline(real: dict[str, Path]) -> None:
 
 
 @pytest.mark.parametrize("damage", ["empty", "missing", "no_manifest", "bad_result"])
-def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path],
+def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(dry_folder: Path,
                                                             tmp_path: Path, damage: str) -> None:
     """Missing or damaged files: exit code 2 and a message naming the offending path."""
     folder = tmp_path / "run"
@@ -544,7 +564,7 @@ def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path
     elif damage == "missing":
         named = str(folder)
     else:
-        shutil.copytree(real["dry"] / "retune", folder)
+        shutil.copytree(dry_folder / "retune", folder)
         if damage == "no_manifest":
             (folder / "manifest.json").unlink()
             named = str(folder / "manifest.json")
@@ -556,12 +576,12 @@ def test_a_folder_that_is_not_a_run_exits_2_naming_the_path(real: dict[str, Path
     assert named in done.stderr
 
 
-def test_a_journal_with_a_damaged_line_is_reported_up_to_it(real: dict[str, Path],
+def test_a_journal_with_a_damaged_line_is_reported_up_to_it(dry_folder: Path,
                                                            tmp_path: Path) -> None:
     """A line that is not JSON in the middle of a journal: exit code 0, the records before it
     reported, and a note naming the journal, the line and what was found there."""
     folder = tmp_path / "run"
-    shutil.copytree(real["dry"] / "retune", folder)
+    shutil.copytree(dry_folder / "retune", folder)
     lines = (folder / JOURNAL_NAME).read_text().splitlines(keepends=True)
     lines[3] = "this is not JSON\n"
     (folder / JOURNAL_NAME).write_text("".join(lines))

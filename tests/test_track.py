@@ -15,7 +15,6 @@ import json
 import math
 import shutil
 import threading
-import time
 from datetime import datetime
 from typing import Any
 
@@ -54,9 +53,9 @@ def _rig(seed: int) -> LocalRig:
     return LocalRig(SimulatedDriver(SimulatedRig(load_sim_config(SIM), seed)))
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_track")
+#: The tests that read the module-scoped fixture run on one worker (pytest-xdist's
+#: loadgroup), so that it is built once; the others go to any worker.
+_SHARES_FIXTURE = pytest.mark.xdist_group("test_track")
 
 
 @pytest.fixture(scope="module")
@@ -81,6 +80,7 @@ def night(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
             "records": read_journal(base / "night" / JOURNAL_NAME)}
 
 
+@_SHARES_FIXTURE
 def test_a_night_journals_every_check_correction_and_decision(night):
     """One run folder for the night: every check has its hold record with the numbers and the
     state, every correction a 'correct' decision with from/to followed by its moves, every
@@ -111,6 +111,7 @@ def test_a_night_journals_every_check_correction_and_decision(night):
     assert night["rig"].status().shots_total == journal_shots(records) + journal_shots(calibration)
 
 
+@_SHARES_FIXTURE
 def test_the_night_tells_its_progress_and_the_journal_agrees(night):
     """A progress item after every check (as many as hold records, the last with the result's
     counts), one before each wait, the stages' own progress during the retunes, and none of a
@@ -135,6 +136,7 @@ def test_the_night_tells_its_progress_and_the_journal_agrees(night):
     assert "night" in night_progress_text(last) and "beam" in night_progress_text(last)
 
 
+@_SHARES_FIXTURE
 def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     """The +15 kHz step of the cavity (its detuning up, so the peak's set-point down) raises the
     alarm of the lower statistic, the guided retune inside the night recovers, and the
@@ -155,6 +157,7 @@ def test_the_thermal_step_is_found_and_the_condition_recovered(night):
     assert night["result"]["holding_share"] <= night["config"].track.budget_fraction + 1e-9
 
 
+@_SHARES_FIXTURE
 def test_the_store_holds_the_latest_accepted_retune_with_its_lock_prior(night):
     """After the night the last good calibration is the night's last accepted stage."""
     stored = read_json(night["store"])
@@ -164,6 +167,7 @@ def test_the_store_holds_the_latest_accepted_retune_with_its_lock_prior(night):
     assert stored["lock_prior"] is not None and stored["run_dir"].endswith("night")
 
 
+@_SHARES_FIXTURE
 def test_a_stage_done_names_its_setpoints_in_the_units_a_physicist_reads(night):
     """README (Progress and logs): velocity to 0.1 m/s, detuning in kHz to 0.01, as every other
     decision of the night; not raw Hz and m/s to six digits."""
@@ -190,6 +194,7 @@ def _cuts(records: list[dict[str, Any]]) -> list[tuple[str, int, bool]]:
             for number, (name, index) in enumerate(sorted(names.items(), key=lambda kv: kv[1]))]
 
 
+@_SHARES_FIXTURE
 def test_a_night_cut_after_any_record_kind_resumes_and_finishes(night, tmp_path):
     """Cut after the first record of every kind (whole, or with half of the next line), and at
     the records that begin the retune inside the night, the night resumes, finishes what was
@@ -218,6 +223,7 @@ def test_a_night_cut_after_any_record_kind_resumes_and_finishes(night, tmp_path)
         assert read_json(run / RESULT_NAME)["status"] == result["status"] == "ended"
 
 
+@_SHARES_FIXTURE
 def test_a_finished_night_is_not_resumed(night, tmp_path):
     """A night that ended is refused on --resume, naming why."""
     run = tmp_path / "done"
@@ -390,29 +396,28 @@ def test_the_end_at_a_local_time_is_the_next_one_after_the_start():
                         datetime(2026, 12, 3, 7, 30).timestamp())
 
 
-class _WallPacedRig:
+class _RealClockRig:
     """The simulated rig seen as a real one: it describes itself as not simulated, offers no
-    ``advance``, and its clock runs with the wall clock, ``speed`` times faster (a rig whose
-    own clock moves on while autotune waits). The night must then wait in wall time, reading
-    the rig's clock with ``status``."""
+    ``advance``, and its own clock moves on while autotune waits: by ``step_s`` of rig time at
+    every ``status`` read (a fixed step, not the wall clock, so that the test does not depend
+    on how loaded the machine is). The night must then wait by reading the rig's clock.
+    ``on_status`` is called after each read."""
 
     HIDDEN = ("advance", "truth", "thermal_step")
 
-    def __init__(self, rig: LocalRig, speed: float) -> None:
-        self._rig, self._speed = rig, speed
-        self._last = time.monotonic()
-
-    def _catch_up(self) -> None:
-        now = time.monotonic()
-        self._rig.advance((now - self._last) * self._speed)
-        self._last = now
+    def __init__(self, rig: LocalRig, step_s: float) -> None:
+        self._rig, self._step_s = rig, step_s
+        self.on_status: Any = None
 
     def describe(self):
         return dataclasses.replace(self._rig.describe(), simulated=False)
 
     def status(self):
-        self._catch_up()
-        return self._rig.status()
+        self._rig.advance(self._step_s)
+        status = self._rig.status()
+        if self.on_status is not None:
+            self.on_status()
+        return status
 
     def __getattr__(self, name: str) -> Any:
         if name in self.HIDDEN:
@@ -424,31 +429,39 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     """A rig that is not simulated: the night's waits are 'wall' waits that end when the rig's
     own clock (read with status) reaches the planned check, and a stop (the SIGINT/SIGTERM
     event) ends a wait at once, resumable (README: Waiting between checks). The rig's clock
-    runs 300 times faster than the wall here, so the night reads it every 50 ms of wall time
-    (15 s of its rig time) instead of sleeping up to 30 s between reads (faster, a plan of a
-    second of wall time on a loaded machine would pass the hour)."""
-    monkeypatch.setattr(night_clock, "_WALL_POLL_S", 0.05)
+    moves 15 s at each read and the night reads it every millisecond here, instead of every
+    30 s of wall time; the stop comes at the second read of the third wait, whatever the
+    machine's load (it used to come from a timer, and a loaded machine could end the night
+    first)."""
+    monkeypatch.setattr(night_clock, "_WALL_POLL_S", 0.001)
     rig = _rig(29)
     # An hour at 5 % affords little besides its first retune: a fifth leaves room for checks.
     config = night_config(hours=1.0, budget_fraction=0.2)
     store = tmp_path / "good.json"
     runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
-    paced = _WallPacedRig(rig, speed=300.0)  # 1 s of wall time is 5 min of rig time
+    paced = _RealClockRig(rig, step_s=15.0)
     stop = threading.Event()
     waits: list[Any] = []
+    reads_in_third_wait: list[int] = []
 
     def progress(item: Any) -> None:
         if isinstance(item, NightProgress) and item.event == "wait":
             waits.append(item)
-            if len(waits) == 3:
-                threading.Timer(0.2, stop.set).start()  # a stop in the middle of this wait
 
-    with pytest.raises(Interrupted):
+    def on_status() -> None:
+        if len(waits) == 3:
+            reads_in_third_wait.append(1)
+            if len(reads_in_third_wait) == 2:
+                stop.set()  # a stop in the middle of this wait
+
+    paced.on_status = on_status
+    with pytest.raises(Interrupted, match="while waiting"):
         track.track(paced, config, tmp_path / "night", store=store, stop=stop,
                     progress=progress)
+    paced.on_status = None
     records = read_journal(tmp_path / "night" / JOURNAL_NAME)
     wall_waits = [r for r in records if r["type"] == "wait"]
-    assert wall_waits and all(r["how"] == "wall" for r in wall_waits)
+    assert len(wall_waits) == 3 and all(r["how"] == "wall" for r in wall_waits)
     # Each check before the stop came once the rig clock had reached its wait's target.
     holds = {r["point"]: r for r in records if r["type"] == "hold"}
     checks = [r for r in records if r["type"] == "measurement" and r["label"] == "hold"]
@@ -459,7 +472,7 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
         assert first["t_start"] >= wait["until_clock"] - 1e-6
     assert len(holds) >= 2
     assert records[-1] == {**records[-1], "type": "end", "status": "interrupted"}
-    # Resumed, the night finishes its hour in wall time.
+    # Resumed, the night finishes its hour waiting on the rig's clock.
     result = track.track(paced, config, tmp_path / "night", resume=True, store=store)
     assert result["status"] == "ended" and result["checks"] > len(holds)
     check_invariants(read_journal(tmp_path / "night" / JOURNAL_NAME))

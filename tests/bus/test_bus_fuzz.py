@@ -94,9 +94,6 @@ def test_result_parsers_raise_only_protocol_errors(parser: Any, result: dict[str
         pass
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_bus_fuzz")
 
 
 @pytest.fixture(scope="module")

@@ -29,8 +29,8 @@ from .conftest import EXAMPLE_DRIVER_TOML, SIM_DRIVER_TOML, Keys
 K, BIAS, GAP = -25.0, 150.0, 0.02  # Stark constants of configs/sim-driver.toml (docs/physics.md section 4)
 
 
-def _client(endpoint: str, **options: object) -> BusClient:
-    return BusClient(endpoint, timeout_s=5.0, retries=1, backoff_s=0.1, **options)
+def _client(endpoint: str, timeout_s: float = 5.0, **options: object) -> BusClient:
+    return BusClient(endpoint, timeout_s=timeout_s, retries=1, backoff_s=0.1, **options)
 
 
 def _free_port() -> int:
@@ -129,9 +129,9 @@ def test_driver_that_hangs_while_starting_exits_3_within_its_start_timeout(serve
     """Bounded start-up: a driver that never finishes starting stops serve with status 3 after
     [server] start_timeout_s, naming the key; nothing listens."""
     server = serve(_hanging_driver(tmp_path, 1.5), wait=False)
-    began = time.monotonic()
+    # The driver sleeps an hour: an exit within the minute of this wait is serve's own bound,
+    # however slowly a loaded machine starts the process (no timed assertion on top of it).
     assert server.process.wait(timeout=60) == 3
-    assert time.monotonic() - began < 30
     failed = server.wait_for_event("driver_failed_to_start")
     assert failed and "start_timeout_s" in failed[0]["error"] and "1.5 s" in failed[0]["error"]
     assert not server.ready_path.exists()
@@ -188,7 +188,10 @@ def test_simulated_rig_calibrated_through_the_stark_map(serve, tmp_path: Path):
                           stdin=subprocess.DEVNULL)
     assert done.returncode in (0, 4), done.stderr[-3000:]
     result = json.loads((run / "result.json").read_text())
-    with _client(server.endpoint) as client:
+    # truth searches the simulated rig's whole map for its best point: seconds of CPU, more
+    # than the 5 s of the other requests on a loaded machine (it timed out twice in loaded
+    # suites). A bound, not a measure.
+    with _client(server.endpoint, timeout_s=120.0) as client:
         described = client.describe().setpoints["detuning"]
         in_force = client.status().setpoints["detuning"]
         hidden = client.truth()["hidden"]
@@ -209,7 +212,9 @@ def test_readme_rig_command_serves_until_sigterm():
                                stderr=subprocess.PIPE)
     try:
         with _client(f"tcp://127.0.0.1:{port}") as client:
-            deadline = time.monotonic() + 30
+            # A bound for a loaded machine's start-up (imports alone take seconds), not a
+            # measure of it.
+            deadline = time.monotonic() + 120
             while True:
                 try:
                     assert client.describe().rig == "bench-2-sim"

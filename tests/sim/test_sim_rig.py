@@ -18,9 +18,9 @@ ALPHA = 1e-3
 V_2PI = physics.two_pi_velocity(coupling_hz=COUPLING_HZ, waist_m=WAIST_M)
 
 
-#: The tests of this module share an expensive module-scoped fixture: one worker runs them
-#: all (pytest-xdist's loadgroup), so that it is built once.
-pytestmark = pytest.mark.xdist_group("test_sim_rig")
+#: The tests that read the module-scoped fixture run on one worker (pytest-xdist's
+#: loadgroup), so that it is built once; the others go to any worker.
+_SHARES_FIXTURE = pytest.mark.xdist_group("test_sim_rig")
 
 
 @pytest.fixture(scope="module")
@@ -53,6 +53,7 @@ def _walk(rig, target):
 # ---------------------------------------------------------------------------------- counts
 
 
+@_SHARES_FIXTURE
 @pytest.mark.parametrize("field, phase", [("empty", 0.0), ("empty", 2.2), ("one_photon", 0.0),
                                           ("one_photon", 4.0)])
 def test_counts_follow_noiseless_probabilities(still_config, field, phase):
@@ -146,6 +147,7 @@ def test_flawless_rig_best_is_two_pi_velocity_plus_bias(flawless_config):
     assert best["inversion"] == pytest.approx(1.0, abs=1e-3)
 
 
+@_SHARES_FIXTURE
 def test_demo_best_is_near_bias_corrected_two_pi_point(demo_truth):
     """The demo's true optimum is a little above 509.7 m/s and at a true detuning near zero."""
     # Source: docs/physics.md sections 2 and 6. Two effects pull toward faster atoms: the two-photon
@@ -157,6 +159,7 @@ def test_demo_best_is_near_bias_corrected_two_pi_point(demo_truth):
     assert 0.5 < best["inversion"] < 1.0
 
 
+@_SHARES_FIXTURE
 @pytest.mark.parametrize("velocity", [350.0, 400.0])
 def test_slow_atoms_on_detuned_ridge_are_worse(demo_config, demo_truth, velocity):
     """Slower atoms find their best inversion at a compensating detuning, and it is below the optimum."""
@@ -168,6 +171,7 @@ def test_slow_atoms_on_detuned_ridge_are_worse(demo_config, demo_truth, velocity
     assert top["inversion"] < demo_truth["best"]["inversion"] - 0.03
 
 
+@_SHARES_FIXTURE
 def test_truth_best_beats_a_dense_scan(demo_config, demo_truth):
     """No point of an independent dense scan around the optimum beats the reported best."""
     # Reference: brute-force evaluation on a 1 m/s x 250 Hz grid (the global maximum's basin).
@@ -215,6 +219,7 @@ def test_random_walk_spread_grows_as_square_root_of_time(demo_config):
     assert ALPHA / 2 < tail < 1 - ALPHA / 2
 
 
+@_SHARES_FIXTURE
 def test_thermal_step_moves_offset_and_best(demo_config, demo_truth):
     """A 15 kHz thermal step moves the offset by 15 kHz and the best detuning set-point by -15 kHz/(1+err)."""
     # Source: docs/physics.md section 6 (15 kHz thermal step) and the Stark error of the config.
@@ -374,6 +379,7 @@ def test_describe_follows_contract(demo_config):
     assert description["safe_setpoints"] == {"velocity": 500.0, "detuning": 0.0}
 
 
+@_SHARES_FIXTURE
 def test_truth_follows_contract(demo_truth):
     """truth carries the contract's keys, three coefficients per outcome, phase shift in [0, 2 pi)."""
     # Source: the README's wire protocol truth result.
