@@ -383,7 +383,8 @@ def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> 
     and ``s`` is the measured slope). The stored cubic is not used there: fitted in the measured
     phase, it is mostly the law's own bend (its Taylor term ``-q (1 + q) / (6 (1 - q)^3)
     eps^3``, hundreds of times the one-photon curve's cubic at ``q`` of 0.7) and, with the law's
-    higher orders folded in, it misreads a 12 kHz offset by a sixth (tests/test_hold_poor_source.py).
+    higher orders folded in, it misreads a 12 kHz offset by a third at ``p1`` 0.6
+    (tests/test_hold_poor_source.py).
     The standard error follows by the delta method,
     ``d eps / d psi = 1 - q cos psi / sqrt(1 - q^2 sin^2 psi)``.
     """

@@ -169,13 +169,12 @@ class SignalModel:
 
         None when the rig's own contrasts leave no room at any size.
         """
-        margin, _ = self.contrast_margin_sd(2, ratio)
+        margin, margin_sd = self.contrast_margin_sd(2, ratio)  # one shot per field
         if phase_margin_rad <= 0.0:
             return None
         phase_shots = z * z * self.phase_variance_shots / phase_margin_rad**2
         if margin > 0.0:
-            var_one = self.contrast_margin_sd(2, ratio)[1] ** 2  # one shot per field
-            contrast_shots = 2.0 * z * z * var_one / margin**2
+            contrast_shots = 2.0 * z * z * margin_sd**2 / margin**2
             return int(math.ceil(max(contrast_shots, phase_shots)))
         one_photon, one_sd = self.contrast_margin_sd(2, 0.0)
         if wrap_sigmas is None or wrap_margin_rad <= 0.0 or one_photon <= 0.0:

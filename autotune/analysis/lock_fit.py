@@ -19,8 +19,8 @@ from autotune.analysis.search import PointResult
 if TYPE_CHECKING:
     from autotune.analysis.lock_settings import LockSettings
 
-__all__ = ["phase_signal_note", "mixture_phase_error", "mixture_measured_phase", "detuning_offset", "LockFit", "log_evidence", "solve_gaussian",
-           "wrap_phase"]
+__all__ = ["phase_signal_note", "mixture_phase_error", "mixture_measured_phase", "detuning_offset",
+           "LockFit", "log_evidence", "solve_gaussian", "wrap_phase"]
 
 _TWO_PI = 2.0 * math.pi
 # Newton steps when the lock's cubic curve is solved for the phase at the peak.
@@ -40,8 +40,8 @@ def phase_signal_note(result: PointResult, settings: LockSettings, phase_at_peak
     ``settings.capture_phase_error_rad`` (beyond it the angle wraps and the discriminator is no
     longer monotone), and a one-photon fringe whose phase means something: a one-photon contrast
     of at least ``settings.min_contrast_ratio`` of the empty one, or (with ``wrap_sigmas`` =
-    ``z``: the calibration's and the retune's lock pass ``LockSettings.phase_wrap_sigmas``; the
-    night's hold passes none and keeps the fixed gate) a phase error whose own standard error
+    ``z``: the calibration's and the retune's lock and the night's checks pass
+    ``LockSettings.phase_wrap_sigmas``; without it only the fixed ratio) a phase error whose own standard error
     keeps it ``z`` standard errors from the wrap at pi, ``|phi - phi*| + z sigma_phi <= pi``.
 
     Why the second way: a poor one-photon source (probability ``p1`` of one photon, the rest
