@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 
 from autotune.analysis.guided import LockSettings, PhaseLockSearch
-from autotune.analysis.lock_fit import mixture_measured_phase, mixture_phase_error, phase_signal_note, wrap_phase
+from autotune.analysis.lock_fit import (mixture_measured_phase, mixture_phase_error, mixture_phase_gain,
+                                        phase_signal_note, wrap_phase)
 from autotune.analysis.search import Dimension, PointResult, SearchSpace
 
 PI = math.pi
@@ -44,6 +45,21 @@ def test_mixture_law_inverts_the_photon_number_average(p1):
     assert slope == pytest.approx(p1 / (2 * p1 - 1), rel=1e-6)
     # The contrast ratio at the peak is 2 p1 - 1 (the empty fringe's is 1).
     assert _mixture_phase_error(p1, -1.0)[1] == pytest.approx(2 * p1 - 1, abs=1e-12)
+
+
+@pytest.mark.parametrize("p1", [1.0, 0.75, 0.6])
+def test_mixture_laws_derivative_is_the_inverse_of_the_photon_number_averages_slope(p1):
+    """d eps / d psi (mixture_phase_gain) is one over the central difference of the measured phase
+    error arg(p0 - p1 e^{i eps}) - pi in eps (numpy, docs/physics.md section 5b), at the peak and
+    off it; 1 - q at the peak."""
+    q = (1.0 - p1) / p1
+    h = 1e-6
+    for eps in (-1.2, 0.0, 0.4, 1.5):
+        psi, _ = _mixture_phase_error(p1, -np.exp(1j * eps))
+        dpsi = (_mixture_phase_error(p1, -np.exp(1j * (eps + h)))[0]
+                - _mixture_phase_error(p1, -np.exp(1j * (eps - h)))[0]) / (2 * h)
+        assert mixture_phase_gain(psi, q) == pytest.approx(1.0 / dpsi, rel=1e-6)
+    assert mixture_phase_gain(0.0, q) == pytest.approx(1.0 - q, abs=1e-12)
 
 
 @pytest.mark.parametrize("detuning_hz", [-6e3, 2e3, 5e3])

@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 
-from autotune.analysis.lock_fit import mixture_phase_error, solve_gaussian
+from autotune.analysis.lock_fit import mixture_phase_error, mixture_phase_gain, solve_gaussian
 from autotune.analysis.next_point import SAME_VELOCITY
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, fit_inversion_curve
 from autotune.analysis.guided_phase import MIN_INVERSION_SCALE, Observation
@@ -145,7 +145,7 @@ class AbsorptionSignal:
             factor = max(math.cos(half), 0.5)
             value = o.result.inversion / factor
             # d eps / d psi of the mixture law: the measured phase's noise moves eps less.
-            gain = 1.0 - empty * math.cos(measured) / math.sqrt(max(1.0 - (empty * math.sin(measured)) ** 2, 1e-12))
+            gain = mixture_phase_gain(measured, empty)
             xs.append(fit.x_of(o.velocity))
             values.append(value)
             variances.append((o.result.inversion_stderr / factor) ** 2

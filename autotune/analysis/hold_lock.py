@@ -20,7 +20,7 @@ import numpy as np
 from scipy import optimize
 
 from autotune.analysis.guided import LockPrior, LockSettings, detuning_offset
-from autotune.analysis.lock_fit import mixture_measured_phase, mixture_phase_error
+from autotune.analysis.lock_fit import mixture_measured_phase, mixture_phase_error, mixture_phase_gain
 from autotune.errors import ValueRefused
 
 __all__ = [
@@ -385,15 +385,14 @@ def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> 
     eps^3``, hundreds of times the one-photon curve's cubic at ``q`` of 0.7) and, with the law's
     higher orders folded in, it misreads a 12 kHz offset by a third at ``p1`` 0.6
     (tests/test_hold_poor_source.py).
-    The standard error follows by the delta method,
-    ``d eps / d psi = 1 - q cos psi / sqrt(1 - q^2 sin^2 psi)``.
+    The standard error follows by the delta method
+    (:func:`~autotune.analysis.lock_fit.mixture_phase_gain`).
     """
     q = float(prior.mixture_empty_fraction)
     if q <= 0.0:
         return detuning_offset(error_rad, error_stderr_rad, prior.slope_rad_per_hz, 0.0,
                                known_cubic(prior), 0.0)
     error = float(mixture_phase_error(error_rad, q))
-    sine = q * math.sin(error_rad)
-    derivative = 1.0 - q * math.cos(error_rad) / math.sqrt(max(1.0 - sine * sine, 1e-12))
+    derivative = mixture_phase_gain(error_rad, q)
     return detuning_offset(error, abs(derivative) * error_stderr_rad,
                            (1.0 - q) * prior.slope_rad_per_hz, 0.0, 0.0, 0.0)

@@ -19,7 +19,8 @@ from autotune.analysis.search import PointResult
 if TYPE_CHECKING:
     from autotune.analysis.lock_settings import LockSettings
 
-__all__ = ["phase_signal_note", "mixture_phase_error", "mixture_measured_phase", "detuning_offset",
+__all__ = ["phase_signal_note", "mixture_phase_error", "mixture_phase_gain", "mixture_measured_phase",
+           "detuning_offset",
            "LockFit", "log_evidence", "solve_gaussian", "wrap_phase"]
 
 _TWO_PI = 2.0 * math.pi
@@ -96,6 +97,15 @@ def mixture_phase_error(measured_rad: Any, empty_fraction: Any) -> Any:
     psi = np.asarray(measured_rad, dtype=float)
     q = np.asarray(empty_fraction, dtype=float)
     return psi - np.arcsin(np.clip(q * np.sin(psi), -1.0, 1.0))
+
+
+def mixture_phase_gain(measured_rad: float, empty_fraction: float) -> float:
+    """``d eps / d psi`` of :func:`mixture_phase_error` at the measured phase error ``psi``:
+    ``1 - q cos psi / sqrt(1 - q^2 sin^2 psi)`` (``1 - q`` at the peak), the factor by which a
+    measured phase's noise moves the one-photon phase error (the delta method)."""
+    q = float(empty_fraction)
+    sine = q * math.sin(measured_rad)
+    return 1.0 - q * math.cos(measured_rad) / math.sqrt(max(1.0 - sine * sine, 1e-12))
 
 
 def mixture_measured_phase(error_rad: Any, empty_fraction: Any) -> Any:

@@ -65,8 +65,8 @@ class LockSettings:
         one-photon source (``p1`` near 0.6) leaves every point near the best at a contrast ratio
         of about ``2 p1 - 1`` with a phase that still moves, ``p1 / (2 p1 - 1)`` times faster
         with the true phase error (docs/physics.md section 5b); its standard error, measured at
-        every point, says what it is worth. None: the contrast ratio alone decides (as in the
-        night's hold, which does not use this setting).
+        every point, says what it is worth. The night's checks use it too. None: the contrast
+        ratio alone decides.
     bracket_step_hz : float or None
         Detuning step of the bracket and the scale of the lock's cubic term, Hz. None: the
         detuning box's width / 12. Pass ``coupling_hz / 5`` from the nominal coupling.
