@@ -106,7 +106,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         Shots per field and phase of a verification and of a correction (default:
         ``measurement.verification_shots_per_phase``).
     observer : callable, optional
-        ``observer(steps, strategy, session)`` after every told step (studies).
+        ``observer(steps, strategy, session)`` after every search step measured, with their
+        count (not for steps replayed on a resume; studies).
     records : sequence of journal records
         Records of an earlier attempt of this stage, to resume from (see :func:`run_stage`).
     """

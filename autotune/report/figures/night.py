@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from autotune.report.figures.base import errorbar, new_figure, set_title
-from autotune.report.figures.phase import wrap_angle
+from autotune.analysis.lock_fit import wrap_phase
 from autotune.report.model import Run, level_label
 from autotune.run.records import Acquisition, Decision, Hold, Wait, parse
 
@@ -174,7 +174,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     for h in holds:
         m = checks[h["point"]]
         star = _num(_get(h, "state", "prior", "phase_at_peak_rad"))
-        perr.append(float(wrap_angle(m.value("phase_shift") - star)) / math.pi if math.isfinite(star) else math.nan)
+        perr.append(float(wrap_phase(m.value("phase_shift") - star)) / math.pi if math.isfinite(star) else math.nan)
         perr_sd.append(m.value("phase_shift_stderr") / math.pi)
     if holds:
         errorbar(ax_phase, t, np.array(perr), yerr=np.nan_to_num(np.array(perr_sd)), fmt="o",

@@ -14,17 +14,13 @@ from typing import Any
 
 import numpy as np
 
+from autotune.analysis.lock_fit import wrap_phase
 from autotune.errors import ValueRefused
 from autotune.report.figures.base import finish_against_detuning, new_figure
 from autotune.report.model import Run, number_at
 
 #: Two-sided 95 % point of the standard normal (scipy.stats.norm.ppf(0.975)).
 Z95 = 1.959963984540054
-
-
-def wrap_angle(angle: Any) -> Any:
-    """An angle brought to (-pi, pi] (the phase figures; the analysis wraps to [-pi, pi))."""
-    return np.pi - np.mod(np.pi - np.asarray(angle, dtype=float), 2.0 * np.pi)
 
 
 class LockCurve:
@@ -87,7 +83,7 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
     ax = fig.add_subplot()
     x = np.array([m.setpoints["detuning"] / 1e3 for m in done])
     # Unwrapped around the phase at the peak, as the lock reads them.
-    y = (centre + wrap_angle(np.array([m.value("phase_shift") for m in done]) - centre)) / math.pi
+    y = (centre + wrap_phase(np.array([m.value("phase_shift") for m in done]) - centre)) / math.pi
     e = np.array([m.value("phase_shift_stderr") / math.pi for m in done])
     ax.errorbar(x, y, yerr=np.where(np.isfinite(e), e, 0.0), fmt="none", ecolor="0.5",
                 capsize=2, lw=0.8, zorder=2)
