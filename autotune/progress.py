@@ -15,8 +15,8 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Literal
 
-__all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS", "format_duration",
-           "count_text", "setpoint_value_text", "setpoints_text"]
+__all__ = ["StageProgress", "NightProgress", "ProgressObserver", "SEARCH_DONE_LABELS",
+           "rough_duration_text", "count_text", "setpoint_value_text", "setpoints_text"]
 
 #: Measurement labels that come after the search has stopped: only their own shots are left.
 SEARCH_DONE_LABELS = ("verify", "correct")
@@ -164,8 +164,18 @@ def count_text(n: int, noun: str) -> str:
     return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
-def format_duration(seconds: float) -> str:
-    """A duration as a person reads it: ``"45 s"``, ``"12 min"``, ``"2 h 05 min"``."""
+def rough_duration_text(seconds: float) -> str:
+    """A duration rounded as a live display shows it (a time to go, a time elapsed): whole
+    seconds below 90 s, else whole minutes: ``"45 s"``, ``"12 min"``, ``"2 h 05 min"``.
+
+    The report's measured durations keep their decimals instead
+    (:func:`autotune.report.model.measured_duration_text`).
+
+    Parameters
+    ----------
+    seconds : float
+        The duration (s); a negative one reads as ``"0 s"``.
+    """
     seconds = max(0.0, float(seconds))
     if seconds < 90.0:
         return f"{seconds:.0f} s"

@@ -29,7 +29,7 @@ from autotune.run.display import (
     stage_progress_text,
 )
 from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal
-from autotune.progress import NightProgress, StageProgress, format_duration
+from autotune.progress import NightProgress, StageProgress, rough_duration_text
 from autotune.kit.server import LocalRig
 from cli_helpers import autotune, run_in_a_terminal, tiny_config
 from drivers_sim.config import load_sim_config
@@ -206,7 +206,7 @@ def test_progress_text_and_durations() -> None:
     assert stage_progress_text(p) == ("calibrate step 8/40 (verify 30k/72k) | <= 5 min to go | "
                                       "best 0.757 [0.654, 0.861] | shots 78k/1500k | "
                                       "rig time 8.7/240 min")
-    assert [format_duration(s) for s in (40, 720, 7500)] == ["40 s", "12 min", "2 h 05 min"]
+    assert [rough_duration_text(s) for s in (40, 720, 7500)] == ["40 s", "12 min", "2 h 05 min"]
 
 
 def test_night_progress_text() -> None:

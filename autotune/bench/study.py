@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from autotune.progress import format_duration
+from autotune.progress import rough_duration_text
 from autotune.bench.jobs import config_spec, jsonable
 from autotune.bench.memory import measure_overhead
 from autotune.bench.night_study import night_jobs, night_label, night_targets, summarise_night
@@ -226,8 +226,8 @@ def _counting(progress: Callable[[str], None] | None, total: int
         nonlocal done
         done += 1
         elapsed = time.perf_counter() - started
-        to_go = format_duration(elapsed / done * (total - done))
-        progress(f"[{done}/{total} jobs, {format_duration(elapsed)} wall, ~{to_go} to go] "
+        to_go = rough_duration_text(elapsed / done * (total - done))
+        progress(f"[{done}/{total} jobs, {rough_duration_text(elapsed)} wall, ~{to_go} to go] "
                  f"{line.strip()}")
 
     return note

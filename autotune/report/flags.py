@@ -11,7 +11,7 @@ from scipy import stats
 
 from autotune.progress import setpoint_value_text
 from autotune.report.model import (FIELD_NAMES, SEARCH_LABELS, Measurement, Run,
-                                   format_duration, parse_time)
+                                   measured_duration_text, parse_time)
 from autotune.wire.rig import FIELDS
 
 #: An edge zone is this fraction of the box width, on each side of each axis.
@@ -172,6 +172,6 @@ def _age(t_wall: Any) -> str:
     if when is None:
         return ""
     seconds = (datetime.now(UTC) - when).total_seconds()
-    return f" ({format_duration(seconds)} ago)" if seconds >= 0 else ""
+    return f" ({measured_duration_text(seconds)} ago)" if seconds >= 0 else ""
 
 

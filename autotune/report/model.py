@@ -434,7 +434,17 @@ def parse_time(text: Any) -> datetime | None:
 
 
 
-def format_duration(seconds: float | None) -> str:
+def measured_duration_text(seconds: float | None) -> str:
+    """A measured duration in a report (rig time, wall time, a journal's age) to its first
+    decimal: ``"42.0 s"`` below 2 min, ``"7.6 min"`` below 2 h, then ``"2.25 h"``.
+
+    Live displays round instead (:func:`autotune.progress.rough_duration_text`).
+
+    Parameters
+    ----------
+    seconds : float or None
+        The duration (s); None or not finite reads ``"unknown"``.
+    """
     if seconds is None or not math.isfinite(seconds):
         return "unknown"
     if seconds < 120:

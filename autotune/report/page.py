@@ -16,8 +16,8 @@ from autotune.errors import JournalError
 from autotune.report.build import Report, ReportFigure, build_report
 from autotune.report.figures.base import DPI, new_figure
 from autotune.report.flags import fit_p_value
-from autotune.report.model import (FIGURE_NAME, HTML_NAME, Run, format_duration, level_label,
-                                   number_at)
+from autotune.report.model import (FIGURE_NAME, HTML_NAME, Run, level_label,
+                                   measured_duration_text, number_at)
 from autotune.report.text import page_notes, format_text
 from autotune.wire.rig import FIELDS
 
@@ -174,7 +174,7 @@ def render_html(report: Report) -> str:
                 name, run.command, run.status, hdr.get("verified inversion", "-"),
                 hdr.get("chosen set-points", "-"),
                 f"{int(number_at(run.result or {}, 'shots', run.shots)):,}",
-                format_duration(number_at(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
+                measured_duration_text(number_at(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
         parts.append(f'<section id="runs"><h2>Runs</h2><table>{head}{"".join(rows)}</table>'
                      "</section>")
         if lead:

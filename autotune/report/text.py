@@ -10,8 +10,8 @@ import numpy as np
 
 from autotune.progress import count_text
 from autotune.report.flags import fit_p_value
-from autotune.report.model import (HTML_NAME, SEARCH_LABELS, Measurement, Run,
-                                   format_duration, format_setpoints, level_label, number_at, parse_time,
+from autotune.report.model import (HTML_NAME, SEARCH_LABELS, Measurement, Run, format_setpoints,
+                                   level_label, measured_duration_text, number_at, parse_time,
                                    read_setpoints)
 from autotune.wire.rig import FIELDS
 
@@ -49,7 +49,7 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
         counts = ", ".join(count_text(int(result.get(k, 0)), k[:-1]) for k in (
             "checks", "rechecks", "corrections", "alarms", "retunes", "calibrations",
             "failures"))
-        rows.append(("night", f"{format_duration(number_at(result, 'night_rig_time_s', math.nan))} of "
+        rows.append(("night", f"{measured_duration_text(number_at(result, 'night_rig_time_s', math.nan))} of "
                      f"rig time: {counts}"))
         share = result.get("holding_share")
         rows.append(("beam on holding", ("-" if share is None else f"{share:.1%}")
@@ -71,7 +71,7 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
         rows.append(("last check", "none yet"))
     rows.append(("effort", f"{len(run.estimated)} measurements, "
                  f"{int(number_at(result, 'shots', run.shots)):,} shots, beam time "
-                 f"{format_duration(number_at(result, 'rig_time_s', run.rig_time_s))}"))
+                 f"{measured_duration_text(number_at(result, 'rig_time_s', run.rig_time_s))}"))
     return rows
 
 
@@ -114,14 +114,14 @@ def header_rows(run: Run) -> list[tuple[str, str]]:
     shots = int(number_at(result, "shots", run.shots))
     rig_time = number_at(result, "rig_time_s", run.rig_time_s)
     if math.isfinite(number_at(result, "wall_time_s", math.nan)):
-        wall = format_duration(number_at(result, "wall_time_s", math.nan))
+        wall = measured_duration_text(number_at(result, "wall_time_s", math.nan))
     else:
         first = parse_time(run.records[0].get("t_wall")) if run.records else None
         last = parse_time(run.records[-1].get("t_wall")) if run.records else None
-        wall = (format_duration((last - first).total_seconds()) + " so far"
+        wall = (measured_duration_text((last - first).total_seconds()) + " so far"
                 if first is not None and last is not None else "unknown")
     rows.append(("effort", f"{points} search points, {len(run.estimated)} measurements, "
-                 f"{shots:,} shots, rig time {format_duration(rig_time)}, wall time {wall}"))
+                 f"{shots:,} shots, rig time {measured_duration_text(rig_time)}, wall time {wall}"))
     stop = result.get("stop_reason")
     if not stop:
         stops = [d["reason"] for d in run.decisions if d["what"] == "stop_search"]
@@ -196,7 +196,7 @@ def _overview_line(name: str, run: Run) -> str:
             f"{chosen.get('velocity', math.nan):>8.1f} "
             f"{chosen.get('detuning', math.nan) / 1e3:>9.2f} "
             f"{int(number_at(result, 'shots', run.shots)):>9,} "
-            f"{format_duration(number_at(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
+            f"{measured_duration_text(number_at(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
 
 
 def format_text(report: Report) -> str:

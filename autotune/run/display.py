@@ -21,7 +21,7 @@ import time
 from collections.abc import Callable
 from typing import Any, Literal
 
-from autotune.progress import (NightProgress, StageProgress, count_text, format_duration,
+from autotune.progress import (NightProgress, StageProgress, count_text, rough_duration_text,
                                setpoint_value_text)
 
 __all__ = ["ProgressMode", "ProgressDisplay", "progress_mode", "stage_progress_text",
@@ -54,7 +54,7 @@ def stage_progress_text(p: StageProgress) -> str:
     doing = (f"{p.label} {shots_text(p.measurement_shots)}/"
              f"{shots_text(p.measurement_shots_planned)}") if p.label else "starting"
     parts = [f"{p.stage} step {p.step}/{p.max_steps} ({doing})",
-             f"<= {format_duration(p.remaining_s)} to go"]
+             f"<= {rough_duration_text(p.remaining_s)} to go"]
     if p.best_inversion is not None and p.best_interval is not None:
         low, high = p.best_interval
         parts.append(f"best {p.best_inversion:.3f} [{low:.3f}, {high:.3f}]")
@@ -76,7 +76,7 @@ def night_progress_text(p: NightProgress) -> str:
         parts.append(f"check {p.inversion:.3f} [{p.interval[0]:.3f}, {p.interval[1]:.3f}]"
                      + (f" {p.action}" if p.action else ""))
     if p.event == "wait" and p.next_in_s is not None:
-        parts.append(f"next in {format_duration(p.next_in_s)}")
+        parts.append(f"next in {rough_duration_text(p.next_in_s)}")
     share = "-" if p.holding_share is None else f"{p.holding_share:.1%}"
     parts.append(f"beam {share} (budget {p.budget_fraction:.0%})")
     parts.append(", ".join([count_text(p.checks, "check"), count_text(p.corrections, "correction"),
