@@ -241,7 +241,7 @@ class Run:
         done = self.estimated
         chosen = self.chosen if self.chosen_is_verified else None
         if chosen is not None:
-            at = [m for m in done if same_setpoints(m.setpoints, chosen)]
+            at = [m for m in done if setpoints_equal(m.setpoints, chosen)]
             for label in ("verify", "check"):
                 picked = [m for m in at if m.label == label]
                 if picked:
@@ -260,7 +260,15 @@ def read_setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
     return out
 
 
-def same_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+def setpoints_equal(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+    """Whether two sets of set-points are the same: the same names, each value equal to
+    float rounding (a relative 1e-9, absolute below 1).
+
+    Parameters
+    ----------
+    a, b : Mapping of str to float
+        Set-points (SI units: m/s, Hz).
+    """
     if set(a) != set(b):
         return False
     return all(abs(a[k] - b[k]) <= 1e-9 * max(1.0, abs(b[k])) for k in a)

@@ -10,7 +10,7 @@ import numpy as np
 
 from autotune.report.figures.base import (NAMED_RUNS_MAX, errorbar, marker_of, new_figure,
                                            set_title)
-from autotune.report.model import Run, level_label, parse_time, same_setpoints
+from autotune.report.model import Run, level_label, parse_time, setpoints_equal
 
 
 def _timeline_items(runs: Sequence[Run]) -> tuple[bool, float, str]:
@@ -145,13 +145,13 @@ def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] 
         check = [m for m in r.estimated if m.label == "check"]
         chosen = r.chosen
         if r.result and check and chosen and r.status == "accepted" and \
-                not same_setpoints(check[0].setpoints, chosen):
+                not setpoints_equal(check[0].setpoints, chosen):
             size = _detuning_of(chosen) - _detuning_of(check[0].setpoints)
             # When the retune left its check point: its first move after the check (the
             # run's end would draw it long after it happened).
             left = [mv for mv in r.moves if check[0].clock_s is not None
                     and mv["clock"] is not None and mv["clock"] > check[0].clock_s
-                    and not same_setpoints(mv["setpoints"], check[0].setpoints)]
+                    and not setpoints_equal(mv["setpoints"], check[0].setpoints)]
             when = (left[0]["clock"], left[0]["t_wall"]) if left else \
                 (r.clock_end, r.records[-1].get("t_wall"))
             retuned.append((_when(use_clock, origin, *when), size))
