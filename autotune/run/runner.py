@@ -64,7 +64,8 @@ from autotune.run.preflight import (never_started, opening_call, preflight, resu
 
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
-           "STAGE_COMMANDS", "opening_call", "read_run_files", "decide_config_changes"]
+           "STAGE_COMMANDS", "opening_call", "read_run_files", "decide_config_changes",
+           "run_manifest", "open_run_folder", "start_run"]
 
 _log = structlog.get_logger(__name__)
 
@@ -223,17 +224,32 @@ def read_run_files(run_dir: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]
     return manifest, records
 
 
-def run_manifest(prepared: Prepared, extra: Mapping[str, Any]) -> dict[str, Any]:
-    config = prepared.config
+def run_manifest(command: str, config: RunConfig, description: Any,
+                 extra: Mapping[str, Any]) -> dict[str, Any]:
+    """A new run's ``manifest.json``: its id, command, start, configuration (file and every
+    key), seed, the versions of the software, the rig's describe reply, then ``extra``.
+
+    Parameters
+    ----------
+    command : str
+        The command that runs (``calibrate``, ``retune``, ``track``).
+    config : RunConfig
+        The checked configuration.
+    description : Description
+        The rig's describe reply.
+    extra : Mapping
+        More entries (the last good calibration a retune or a night starts from, a dry run's
+        scenario).
+    """
     return {
         "run_id": uuid.uuid4().hex,
-        "command": prepared.command,
+        "command": command,
         "started": utc_now(),
         "config_file": config.source,
         "config": dict(config.raw),
         "seed": config.search.seed,
         "versions": _versions(),
-        "rig": describe_to_dict(prepared.description),
+        "rig": describe_to_dict(description),
         **extra,
     }
 
@@ -362,13 +378,18 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
     """
     command, run_dir = prepared.command, prepared.run_dir
     wall_start = time.monotonic()
-    journal, records, opening_clock = _open_run_folder(prepared, rig, stop, extra)
+    extra = dict(extra or {})
+    if command == "retune":
+        extra = {"last_good": prepared.last_good, **extra}
+    journal, records, opening_clock = open_run_folder(
+        command, prepared.config, prepared.description, run_dir, resume=prepared.resume,
+        rig=rig, stop=stop, extra=extra)
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
     try:
         session = Session(rig, prepared.config, journal, prepared.description, stop=stop,
                           progress=progress)
-        clock_start = _start_session(prepared, session, rig, journal, records, opening_clock)
+        clock_start = start_run(session, command, prepared.changes, records, opening_clock)
     except BaseException:
         journal.append("end", status=status)
         journal.close()
@@ -410,21 +431,58 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
         log.info("run_end", status=status)
 
 
-def _open_run_folder(prepared: Prepared, rig: Rig, stop: threading.Event | None,
-                     extra: Mapping[str, Any] | None
-                     ) -> tuple[Journal, list[dict[str, Any]], float | None]:
-    """The run's journal (created with its manifest, or reopened for a resume), the records of
-    an earlier attempt, and the rig's clock read before a new folder was made (else None)."""
-    extra = dict(extra or {})
-    if prepared.command == "retune":
-        extra = {"last_good": prepared.last_good, **extra}
-    if prepared.resume:
-        journal, _, records = Journal.open_for_resume(prepared.run_dir)
+def open_run_folder(command: str, config: RunConfig, description: Any, run_dir: Path, *,
+                    resume: bool, rig: Rig, stop: threading.Event | None = None,
+                    extra: Mapping[str, Any] | None = None
+                    ) -> tuple[Journal, list[dict[str, Any]], float | None]:
+    """Create a run's folder with its manifest, or reopen it for a resume (a stage's and a
+    night's alike).
+
+    A new folder is made only after the rig has told its clock (through the run's one
+    recovery path, ``stop`` ending its waits): a run that never reached the rig leaves no
+    journal behind.
+
+    Parameters
+    ----------
+    command : str
+        The command that runs (``calibrate``, ``retune``, ``track``).
+    config : RunConfig
+        The checked configuration.
+    description : Description
+        The rig's describe reply (into the manifest).
+    run_dir : Path
+        The run folder.
+    resume : bool
+        Reopen the folder's journal instead of creating it.
+    rig : Rig
+        Asked for its ``status`` before a new folder is made.
+    stop : threading.Event, optional
+        A stop signal ending the waits of that call.
+    extra : Mapping, optional
+        More manifest entries (see :func:`run_manifest`).
+
+    Returns
+    -------
+    journal : Journal
+        The run's journal, open for appending.
+    records : list of dict
+        The records of an earlier attempt (empty for a new run).
+    opening_clock : float or None
+        The rig's clock before a new folder was made (s); None on a resume.
+
+    Raises
+    ------
+    JournalError
+        The folder cannot be created or its journal reopened.
+    RigError, Interrupted
+        The rig did not tell its clock past the retries, or ``stop`` was set meanwhile.
+    """
+    if resume:
+        journal, _, records = Journal.open_for_resume(run_dir)
         return journal, records, None
-    # The rig's clock before the folder exists: a run that never reached the rig leaves
-    # no journal behind.
-    opening_clock = float(opening_call("status", rig.status, prepared.config, rig, stop).clock)
-    return Journal.create(prepared.run_dir, run_manifest(prepared, extra)), [], opening_clock
+    opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
+    manifest = run_manifest(command, config, description, dict(extra or {}))
+    return Journal.create(run_dir, manifest), [], opening_clock
 
 
 def decide_config_changes(session: Session, changes: Sequence[tuple[str, Any, Any]]) -> None:
@@ -444,18 +502,37 @@ def decide_config_changes(session: Session, changes: Sequence[tuple[str, Any, An
                        changes=[{"key": k, "old": old, "new": new} for k, old, new in changes])
 
 
-def _start_session(prepared: Prepared, session: Session, rig: Rig, journal: Journal,
-                   records: Sequence[Mapping[str, Any]], opening_clock: float | None) -> float:
-    """Journal a resume's configuration changes and the run's ``start`` (once); the rig clock
-    at the start of the run."""
-    decide_config_changes(session, prepared.changes)
+def start_run(session: Session, command: str, changes: Sequence[tuple[str, Any, Any]],
+              records: Sequence[Mapping[str, Any]], opening_clock: float | None) -> float:
+    """Journal a resume's configuration changes and the run's ``start`` record (once, with the
+    rig's clock and instance), a stage's and a night's alike.
+
+    Parameters
+    ----------
+    session : Session
+        The run's session (its journal gets the records).
+    command : str
+        The command that runs.
+    changes : sequence of (key, old, new)
+        The configuration changes a resume accepted (:func:`decide_config_changes`).
+    records : sequence of journal records
+        The records of an earlier attempt: a ``start`` with its clock there is not written
+        again.
+    opening_clock : float or None
+        The rig's clock read before a new folder was made (s); None: asked now.
+
+    Returns
+    -------
+    float
+        The rig's clock at the start of the run (s): the first attempt's on a resume.
+    """
+    decide_config_changes(session, changes)
     starts = of_type(parse_all(records), Start)
     if starts and starts[0].clock is not None:
         return starts[0].clock
-    clock_start = opening_clock if opening_clock is not None else \
-        float(session._call("status", lambda _id: rig.status()).clock)
-    journal.append("start", clock=clock_start, command=prepared.command,
-                   instance=getattr(prepared.description, "instance", None))
+    clock_start = opening_clock if opening_clock is not None else session.read_clock()
+    session.journal.append("start", clock=clock_start, command=command,
+                           instance=getattr(session.description, "instance", None))
     return clock_start
 
 

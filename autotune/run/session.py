@@ -392,6 +392,11 @@ class Session:
         _wait_interlock(what, detail, self.config.recovery, rig=self.rig, stop=self.stop,
                         sleep=self.sleep, decide=self.decide)
 
+    def read_clock(self) -> float:
+        """The rig's clock now (s), from its ``status`` through the recovery path; nothing
+        else of the answer is taken up (see :meth:`learn_present`)."""
+        return float(self._call("status", lambda _id: self.rig.status()).clock)
+
     def learn_present(self) -> dict[str, float]:
         """Ask the rig which set-points are in force (and settle, from its answer, the moves
         written ahead whose outcome is not known: see :meth:`resume_moves`)."""

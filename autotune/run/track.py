@@ -68,7 +68,6 @@ from __future__ import annotations
 import threading
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -79,22 +78,20 @@ from autotune.errors import ConfigErrors, Interrupted, JournalError
 from autotune.run.journal import (
     JOURNAL_NAME,
     RESULT_NAME,
-    Journal,
     ended_error,
     write_json_atomic,
 )
-from autotune.run.records import Start, of_type, parse_all
 from autotune.run.session import Session
 from autotune.progress import ProgressObserver
 from autotune.wire.rig import Rig
 from autotune.run.runner import (
-    run_manifest as _manifest,
-    decide_config_changes,
+    open_run_folder,
     opening_call,
     read_last_good,
     read_run_files,
     resume_changes,
     settle_failure,
+    start_run,
     track_preflight,
 )
 from autotune.run.night_settings import PreparedNight, hold_settings
@@ -194,16 +191,9 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     """
     config, run_dir = prepared.config, prepared.run_dir
     wall_start = time.monotonic()
-    opening_clock = None
-    if prepared.resume:
-        journal, _, records = Journal.open_for_resume(run_dir)
-    else:
-        # The rig's clock before the folder exists: a night that never reached the rig
-        # leaves no journal behind.
-        opening_clock = float(opening_call("status", rig.status, config, rig, stop).clock)
-        manifest = _manifest(_AsPrepared(prepared), {"last_good": prepared.last_good,
-                                                     **dict(extra or {})})
-        journal, records = Journal.create(run_dir, manifest), []
+    journal, records, opening_clock = open_run_folder(
+        "track", config, prepared.description, run_dir, resume=prepared.resume, rig=rig,
+        stop=stop, extra={"last_good": prepared.last_good, **dict(extra or {})})
     ledger = NightLedger(journal, records)
     log = _log.bind(run=run_dir.name, command="track")
     status = "failed"
@@ -211,12 +201,7 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
     try:
         session = Session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
                           stop=stop, progress=progress)
-        decide_config_changes(session, prepared.changes)
-        if not of_type(parse_all(records), Start):
-            clock = opening_clock if opening_clock is not None else \
-                float(session._call("status", lambda _id: rig.status()).clock)
-            ledger.append("start", clock=clock, command="track",
-                          instance=getattr(prepared.description, "instance", None))
+        start_run(session, "track", prepared.changes, records, opening_clock)
     except BaseException:
         ledger.append("end", status=status)
         journal.close()
@@ -244,21 +229,3 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
         journal.close()
         log.info("night_end", status=status)
 
-
-@dataclass
-class _AsPrepared:
-    """What :func:`autotune.run.runner._manifest` reads of a prepared run."""
-
-    prepared: PreparedNight
-
-    @property
-    def command(self) -> str:
-        return "track"
-
-    @property
-    def config(self) -> RunConfig:
-        return self.prepared.config
-
-    @property
-    def description(self) -> Any:
-        return self.prepared.description
