@@ -20,7 +20,7 @@ from autotune.analysis.shortfall import finite_or_none
 from autotune.run.guard import Budget
 from autotune.run.session import Measurement, Session
 from autotune.run.replay import measured_estimates
-from autotune.run.stage import StageOutcome, StageRun, child_seed, search_space
+from autotune.run.stage import StageOutcome, StageRun, search_space, verification_shots
 from autotune.run.verification import (
     acceptance_bar,
     acceptance_reason,
@@ -112,8 +112,8 @@ def run_guided_stage(session: Session, *, stage: str, box: Mapping[str, tuple[fl
         Records of an earlier attempt of this stage, to resume from (see :func:`run_stage`).
     """
     run = _GuidedStage(session, stage, records, observer,
-                       verify_shots=verification_shots_per_phase
-                       or session.config.measurement.verification_shots_per_phase,
+                       verify_shots=verification_shots(session.config,
+                                                       verification_shots_per_phase),
                        check_shots_per_phase=check_shots_per_phase)
     run.begin(box, start, prior, budget)
     run.retell()
@@ -168,8 +168,7 @@ class _GuidedStage(StageRun):
             start = {k: float(v) for k, v in header["start"].items()}
             lock_prior = None if header.get("prior") is None else \
                 LockPrior.from_dict(header["prior"])
-            resend = [msg_id for m in self.measurements.values()
-                      for msg_id, _ in m.pending.values()]
+            resend = self.resend_ids
             session.decide("resume", f"continuing {self.stage} from {len(self.records)} "
                            f"journal records: {len(self.order)} finished steps told to the "
                            f"strategy again, once each, "
@@ -184,7 +183,7 @@ class _GuidedStage(StageRun):
                                    prior=None if lock_prior is None else lock_prior.to_dict(),
                                    budget=budget.__dict__, strategy="phase_lock", seed=self.seed)
         self.lock = PhaseLockSearch(search_space(box),
-                                    seed=child_seed(self.seed, self.stage_code, 0), start=start,
+                                    seed=self.seed_for("strategy"), start=start,
                                     settings=lock_settings(config, box), prior=lock_prior)
         session.plan_progress(self.stage, budget,
                               # A step may take up to step_shots_range's top multiple of its
@@ -240,8 +239,8 @@ class _GuidedStage(StageRun):
         half = self.half
         if label == "verify" and half is not None and half.setpoints == m.setpoints:
             # The second half: the verification is both halves' counts, estimated as one.
-            self.final = (dict(m.setpoints), pooled_estimate(self.session, half, m, child_seed(
-                self.seed, self.stage_code, 6, m.point)))
+            self.final = (dict(m.setpoints), pooled_estimate(
+                self.session, half, m, self.seed_for("pooled_verification", m.point)))
             self.half = None
             return
         self.final = (dict(m.setpoints), estimate)
@@ -252,14 +251,8 @@ class _GuidedStage(StageRun):
                  ) -> InversionEstimate:
         """Measure one step (journaled first unless it was), tell the lock, note it."""
         session, steps = self.session, self.steps
-        key = (label, steps)
-        m = self.measurements.get(key)
-        if m is None:
-            m = Measurement(label, steps, dict(setpoints), shots_per_phase)
-            self.measurements[key] = m
-            session.journal.append("measurement", label=label, point=steps,
-                                   setpoints=dict(setpoints), shots_per_phase=shots_per_phase)
-        estimate = session.measure(m, child_seed(self.seed, self.stage_code, 5, steps))
+        m = self.measurement(label, steps, setpoints, shots_per_phase)
+        estimate = session.measure(m, self.seed_for("phase_lock_step", steps))
         result = PointResult.from_estimate(estimate, clock_s=m.clock_s,
                                            shots=measurement_shots(self.phases,
                                                                    m.shots_per_phase))

@@ -501,6 +501,12 @@ class Session:
                 failures += 1
                 self.recover(exc, failures, "apply")
 
+    def ensure_at(self, target: Mapping[str, float], reason: str) -> None:
+        """Move to ``target`` (:meth:`move_to`, ``reason`` journaled) unless every one of its
+        set-points is in force already, exactly as sent."""
+        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in target.items()):
+            self.move_to(target, reason=reason)
+
     def _move_once(self, target: Mapping[str, float], reason: str) -> None:
         if not self.current:
             self.learn_present()
@@ -609,8 +615,7 @@ class Session:
 
     def _acquire_one(self, m: Measurement, field_state: str, j: int, phase: float) -> None:
         """Take (or recover) one acquisition of ``m`` and journal it; never files a mismatch."""
-        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in m.setpoints.items()):
-            self.move_to(m.setpoints, reason=f"{m.label} {m.point}")
+        self.ensure_at(m.setpoints, reason=f"{m.label} {m.point}")
         resend = (field_state, j) in m.pending
         if resend:
             msg_id, shots = m.pending[(field_state, j)]

@@ -5,10 +5,9 @@ what a stage ends with (:class:`StageOutcome`), the strategy built from the conf
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -24,7 +23,7 @@ from autotune.run.session import Measurement, Session
 from autotune.run.replay import measured_estimates, replay_records, tally_from
 
 __all__ = ["StageOutcome", "StageRun", "quadratic_peak", "child_seed", "search_space",
-           "build_strategy", "run_stage"]
+           "build_strategy", "run_stage", "verification_shots"]
 
 
 @dataclass(frozen=True)
@@ -70,6 +69,12 @@ def quadratic_peak(x: Sequence[float], y: Sequence[float], stderr: Sequence[floa
 def child_seed(seed: int, *path: int) -> int:
     """A reproducible 32-bit child seed of ``seed`` for the sub-task named by ``path``."""
     return int(np.random.SeedSequence([seed, *path]).generate_state(1)[0])
+
+
+def verification_shots(config: RunConfig, shots_per_phase: int | None) -> int:
+    """Shots per field and phase of a stage's verification: ``shots_per_phase`` if given (a
+    retune's or a night's), else ``[measurement] verification_shots_per_phase``."""
+    return shots_per_phase or config.measurement.verification_shots_per_phase
 
 
 def search_space(box: Mapping[str, tuple[float, float]]) -> SearchSpace:
@@ -197,7 +202,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
     """
     run = _AskTellStage(session, stage, records)
     box, initial_points = run.begin(box, initial_points, budget)
-    long_shots = verification_shots_per_phase or run.config.measurement.verification_shots_per_phase
+    long_shots = verification_shots(run.config, verification_shots_per_phase)
     run.plan(budget, long_shots, refine_points=run.config.search.refine_points
              if refine and "detuning" in box else 0)
     warm_start: list[tuple[Mapping[str, float], float, float, float | None]] = []
@@ -207,7 +212,7 @@ def run_stage(session: Session, *, stage: str, box: Mapping[str, tuple[float, fl
         if passed is not None:
             return passed
     strategy = build_strategy(run.config.search.strategy, search_space(box), run.config,
-                              seed=child_seed(run.seed, run.stage_code, 0),
+                              seed=run.seed_for("strategy"),
                               n_initial_points=n_initial_points, max_points=budget.max_points,
                               initial_points=initial_points, warm_start=warm_start)
     stop_reason, n_points = run.search(strategy, budget, observer)
@@ -229,6 +234,13 @@ class StageRun:
         Records of an earlier attempt of this stage (empty for a new run).
     """
 
+    #: The child seed's code of each kind of draw of a stage, after the stage's own code (so
+    #: that a resume draws the same numbers): the strategy's; an ask/tell stage's measurements
+    #: by their label; a phase-lock step; a phase-lock verification pooled from its halves.
+    SEED_CODES: ClassVar[Mapping[str, int]] = {
+        "strategy": 0, "check": 1, "point": 2, "verify": 3, "refine": 4,
+        "phase_lock_step": 5, "pooled_verification": 6}
+
     def __init__(self, session: Session, stage: str, records: Sequence[Mapping[str, Any]]):
         self.session = session
         self.config = session.config
@@ -240,29 +252,43 @@ class StageRun:
         self.measurements = self.replayed.measurements
         session.tally = tally_from(records)
 
+    def seed_for(self, kind: str, *path: int) -> int:
+        """The child seed of one of the stage's draws (``kind`` one of :attr:`SEED_CODES`,
+        ``path`` the step's numbers)."""
+        return child_seed(self.seed, self.stage_code, self.SEED_CODES[kind], *path)
+
+    @property
+    def resend_ids(self) -> list[str]:
+        """The ``msg_id`` of every journaled request whose reply never arrived: a resume asks
+        the rig for them again first."""
+        return [msg_id for m in self.measurements.values() for msg_id, _ in m.pending.values()]
+
+    def measurement(self, label: str, point: int, setpoints: Mapping[str, float],
+                    shots_per_phase: int) -> Measurement:
+        """The measurement ``(label, point)``: the journaled one, else a new one journaled."""
+        key = (label, point)
+        if key not in self.measurements:
+            self.measurements[key] = Measurement(label, point, dict(setpoints), shots_per_phase)
+            self.session.journal.append("measurement", label=label, point=point,
+                                        setpoints=dict(setpoints),
+                                        shots_per_phase=shots_per_phase)
+        return self.measurements[key]
+
     def leave_at(self, setpoints: Mapping[str, float], reason: str) -> None:
-        """Move the rig to ``setpoints`` unless it is there already (``reason`` journaled)."""
-        session = self.session
-        if any(abs(session.current.get(k, math.nan) - v) > 0.0 for k, v in setpoints.items()):
-            session.move_to(setpoints, reason=reason)
+        """Leave the rig at ``setpoints`` (``reason`` journaled if it moves): see
+        :meth:`autotune.run.session.Session.ensure_at`."""
+        self.session.ensure_at(setpoints, reason)
 
 
 class _AskTellStage(StageRun):
     """One ask/tell stage as it runs: what its journal already holds (a resume) and the steps
     of :func:`run_stage`, each journaled before it is measured."""
 
-    #: The child seed's code of each measurement's label.
-    _LABEL_CODE = {"check": 1, "point": 2, "verify": 3, "refine": 4}
-
     def __init__(self, session: Session, stage: str, records: Sequence[Mapping[str, Any]]):
         super().__init__(session, stage, records)
         self.told = sorted((key for key in self.replayed.estimate_order if key[0] == "point"),
                            key=lambda k: k[1])
         self.shots = self.config.measurement.shots_per_phase
-
-    def seed_of(self, label: str, *point: int) -> int:
-        """The child seed of a measurement's acquisitions."""
-        return child_seed(self.seed, self.stage_code, self._LABEL_CODE[label], *point)
 
     def begin(self, box: Mapping[str, tuple[float, float]],
               initial_points: Sequence[Mapping[str, float]], budget: Budget
@@ -280,7 +306,7 @@ class _AskTellStage(StageRun):
         header = replayed.header
         box = {k: (float(v[0]), float(v[1])) for k, v in header["box"].items()}
         initial_points = [dict(p) for p in header["initial_points"]]
-        resend = [msg_id for m in self.measurements.values() for msg_id, _ in m.pending.values()]
+        resend = self.resend_ids
         session.decide("resume", f"continuing {self.stage} from {len(self.records)} journal "
                        f"records: {len(replayed.estimates)} finished measurements "
                        f"({len(self.told)} search points told to the strategy again, once "
@@ -309,17 +335,6 @@ class _AskTellStage(StageRun):
                                               f"{want} of the present configuration")
                 m.shots_per_phase = want
 
-    def measurement(self, label: str, point: int, setpoints: Mapping[str, float],
-                    shots_per_phase: int) -> Measurement:
-        """The measurement ``(label, point)``: the journaled one, else a new one journaled."""
-        key = (label, point)
-        if key not in self.measurements:
-            self.measurements[key] = Measurement(label, point, dict(setpoints), shots_per_phase)
-            self.session.journal.append("measurement", label=label, point=point,
-                                        setpoints=dict(setpoints),
-                                        shots_per_phase=shots_per_phase)
-        return self.measurements[key]
-
     def estimate_of(self, label: str, point: int) -> InversionEstimate | None:
         """The journaled estimate of ``(label, point)``, if it was finished."""
         rec = self.replayed.estimates.get((label, point))
@@ -335,7 +350,7 @@ class _AskTellStage(StageRun):
         check_estimate = self.estimate_of("check", 0)
         if check_estimate is None:
             m = self.measurement("check", 0, check_at, long_shots)
-            check_estimate = session.measure(m, self.seed_of("check"))
+            check_estimate = session.measure(m, self.seed_for("check"))
         check = self.measurements.get(("check", 0))
         check_setpoints = dict(check.setpoints) if check is not None else dict(check_at)
         check_clock = check.clock_s if check is not None else None
@@ -380,7 +395,7 @@ class _AskTellStage(StageRun):
                     session.journal.append("proposal", point=n_points, setpoints=proposal,
                                            strategy=strategy.name)
                 pending = self.measurement("point", n_points, proposal, self.shots)
-            estimate = session.measure(pending, self.seed_of("point", n_points))
+            estimate = session.measure(pending, self.seed_for("point", n_points))
             strategy.tell(pending.setpoints, estimate.inversion, estimate.inversion_stderr,
                           clock_s=pending.clock_s)
             n_points += 1
@@ -429,7 +444,7 @@ class _AskTellStage(StageRun):
             plan = replayed.decisions.get("refine_plan")
             chosen = _refine_detuning(
                 session, chosen, box, self.measurement, self.estimate_of,
-                lambda k: self.seed_of("refine", k),
+                lambda k: self.seed_for("refine", k),
                 None if plan is None else [float(x) for x in plan["detunings"]])
         existing = self.measurements.get(("verify", 0))
         if existing is not None:
@@ -443,7 +458,7 @@ class _AskTellStage(StageRun):
         verify = self.measurement("verify", 0, chosen, long_shots)
         final = self.estimate_of("verify", 0)
         if final is None:
-            final = session.measure(verify, self.seed_of("verify"))
+            final = session.measure(verify, self.seed_for("verify"))
         else:
             self.leave_at(chosen, "leave the rig at the verified set-points")
         accepted = final.inversion >= config.min_inversion
