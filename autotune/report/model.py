@@ -466,8 +466,33 @@ def level_label(confidence: float) -> str:
     return f"{100 * confidence:g} %"
 
 
-def number_at(mapping: Mapping[str, Any], key: str, default: float) -> float:
-    value = mapping.get(key, default)
+def number_at(data: Any, *keys: str, default: float = math.nan) -> float:
+    """The number at ``keys`` in journaled data (nested mappings), or ``default``.
+
+    The one reader of a number out of a record, a result or a manifest: whatever is missing,
+    null, a bool, text or not a mapping along the way gives ``default``, so a report draws
+    what it can of a damaged or older journal.
+
+    Parameters
+    ----------
+    data : Any
+        A mapping (a record, ``result.json``, the manifest), or a bare value when ``keys`` is
+        empty.
+    *keys : str
+        The path of keys down to the number (``"numbers", "lock", "peak_hz"``).
+    default : float
+        What to return when there is no number there (NaN unless given).
+
+    Returns
+    -------
+    float
+        The number as a float, or ``default`` as given.
+    """
+    value = data
+    for key in keys:
+        if not isinstance(value, Mapping):
+            return default
+        value = value.get(key)
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         return float(value)
     return default

@@ -173,8 +173,9 @@ def render_html(report: Report) -> str:
             rows.append("<tr>" + "".join(f"<td>{_esc(c)}</td>" for c in (
                 name, run.command, run.status, hdr.get("verified inversion", "-"),
                 hdr.get("chosen set-points", "-"),
-                f"{int(number_at(run.result or {}, 'shots', run.shots)):,}",
-                measured_duration_text(number_at(run.result or {}, "rig_time_s", run.rig_time_s)))) + "</tr>")
+                f"{int(number_at(run.result or {}, 'shots', default=run.shots)):,}",
+                measured_duration_text(number_at(run.result or {}, "rig_time_s",
+                                                 default=run.rig_time_s)))) + "</tr>")
         parts.append(f'<section id="runs"><h2>Runs</h2><table>{head}{"".join(rows)}</table>'
                      "</section>")
         if lead:

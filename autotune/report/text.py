@@ -28,10 +28,10 @@ _TEXT_SECTIONS_MAX = 3
 def _interval(result: Mapping[str, Any]) -> tuple[float, float, float] | None:
     """The result's inversion and interval, or None if absent or not numbers."""
     pair = result.get("inversion_interval")
-    inv = number_at(result, "inversion", math.nan)
+    inv = number_at(result, "inversion")
     if not (isinstance(pair, Sequence) and len(pair) == 2 and math.isfinite(inv)):
         return None
-    low, high = (number_at({"v": v}, "v", math.nan) for v in pair)
+    low, high = (number_at(v) for v in pair)
     return (inv, low, high) if math.isfinite(low) and math.isfinite(high) else None
 
 
@@ -49,12 +49,12 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
         counts = ", ".join(count_text(int(result.get(k, 0)), k[:-1]) for k in (
             "checks", "rechecks", "corrections", "alarms", "retunes", "calibrations",
             "failures"))
-        rows.append(("night", f"{measured_duration_text(number_at(result, 'night_rig_time_s', math.nan))} of "
+        rows.append(("night", f"{measured_duration_text(number_at(result, 'night_rig_time_s'))} of "
                      f"rig time: {counts}"))
         share = result.get("holding_share")
         rows.append(("beam on holding", ("-" if share is None else f"{share:.1%}")
                      + f" of the night's rig time (budget "
-                     f"{number_at(result, 'budget_fraction', math.nan):.0%})"))
+                     f"{number_at(result, 'budget_fraction'):.0%})"))
     checks = [m for m in run.estimated if m.label == "hold"]
     if checks:
         last = checks[-1]
@@ -70,8 +70,8 @@ def _night_header(run: Run) -> list[tuple[str, str]]:
     else:
         rows.append(("last check", "none yet"))
     rows.append(("effort", f"{len(run.estimated)} measurements, "
-                 f"{int(number_at(result, 'shots', run.shots)):,} shots, beam time "
-                 f"{measured_duration_text(number_at(result, 'rig_time_s', run.rig_time_s))}"))
+                 f"{int(number_at(result, 'shots', default=run.shots)):,} shots, beam time "
+                 f"{measured_duration_text(number_at(result, 'rig_time_s', default=run.rig_time_s))}"))
     return rows
 
 
@@ -110,11 +110,12 @@ def header_rows(run: Run) -> list[tuple[str, str]]:
                      f"absorption {final.value('absorption'):.3f}; contrasts "
                      f"{final.value('contrast_empty'):.3f} (empty), "
                      f"{final.value('contrast_one_photon'):.3f} (one photon)"))
-    points = int(number_at(result, "points", sum(m.label in SEARCH_LABELS for m in run.estimated)))
-    shots = int(number_at(result, "shots", run.shots))
-    rig_time = number_at(result, "rig_time_s", run.rig_time_s)
-    if math.isfinite(number_at(result, "wall_time_s", math.nan)):
-        wall = measured_duration_text(number_at(result, "wall_time_s", math.nan))
+    points = int(number_at(result, "points",
+                           default=sum(m.label in SEARCH_LABELS for m in run.estimated)))
+    shots = int(number_at(result, "shots", default=run.shots))
+    rig_time = number_at(result, "rig_time_s", default=run.rig_time_s)
+    if math.isfinite(number_at(result, "wall_time_s")):
+        wall = measured_duration_text(number_at(result, "wall_time_s"))
     else:
         first = parse_time(run.records[0].get("t_wall")) if run.records else None
         last = parse_time(run.records[-1].get("t_wall")) if run.records else None
@@ -171,7 +172,7 @@ def _measurement_rows(run: Run) -> list[str]:
              f"{'inversion':>9} {'interval':<14} {'phase/pi':>8} {'fit p':>7}"]
     for m in done:
         p = min((fit_p_value(m.value(f"chi2_{f}"), int(m.value(f"dof_{f}") or 0))
-                 for f in FIELDS), default=math.nan)
+                 for f in FIELDS))
         lines.append(
             f"{m.label:<7} {m.point:>3} {m.setpoints.get('velocity', math.nan):>12.1f} "
             f"{m.setpoints.get('detuning', math.nan) / 1e3:>12.2f} {m.value('inversion'):>9.3f} "
@@ -195,8 +196,9 @@ def _overview_line(name: str, run: Run) -> str:
     return (f"{name:<12} {run.status:<17} {inv:>22} "
             f"{chosen.get('velocity', math.nan):>8.1f} "
             f"{chosen.get('detuning', math.nan) / 1e3:>9.2f} "
-            f"{int(number_at(result, 'shots', run.shots)):>9,} "
-            f"{measured_duration_text(number_at(result, 'rig_time_s', run.rig_time_s)):>10} {ratio:>6}")
+            f"{int(number_at(result, 'shots', default=run.shots)):>9,} "
+            f"{measured_duration_text(number_at(result, 'rig_time_s', default=run.rig_time_s)):>10} "
+            f"{ratio:>6}")
 
 
 def format_text(report: Report) -> str:

@@ -18,7 +18,7 @@ import numpy as np
 
 from autotune.report.figures.base import errorbar, marker_of, new_figure, set_title
 from autotune.report.figures.phase import Z95
-from autotune.report.model import Run, level_label
+from autotune.report.model import Run, level_label, number_at
 
 
 def _absorption_model(learned: Mapping[str, Any]) -> tuple[float, np.ndarray, np.ndarray] | None:
@@ -34,12 +34,6 @@ def _absorption_model(learned: Mapping[str, Any]) -> tuple[float, np.ndarray, np
     if coef.shape != (3,) or cov.shape != (3, 3) or not ref > 0:
         return None
     return ref, coef, cov
-
-
-def _value(mapping: Mapping[str, Any], key: str) -> float:
-    value = mapping.get(key)
-    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) \
-        else math.nan
 
 
 def figure_absorption(run: Run) -> tuple[Any, str] | None:
@@ -93,8 +87,8 @@ def figure_absorption(run: Run) -> tuple[Any, str] | None:
                     label="the lock's quadratic in v_ref/v − 1")
         ax_abs.fill_between(grid, mean - Z95 * sd, mean + Z95 * sd, color="tab:green", alpha=0.18,
                             lw=0, gid="absorption-band", label="its 95 % band")
-    best = _value(learned, "velocity_least_absorption_m_per_s")
-    best_sd = _value(learned, "velocity_least_absorption_stderr_m_per_s")
+    best = number_at(learned, "velocity_least_absorption_m_per_s")
+    best_sd = number_at(learned, "velocity_least_absorption_stderr_m_per_s")
     if math.isfinite(best):
         text = f"least absorption {best:.1f} m/s"
         if math.isfinite(best_sd):

@@ -18,15 +18,10 @@ import numpy as np
 
 from autotune.report.figures.base import errorbar, new_figure, set_title
 from autotune.analysis.lock_fit import wrap_phase
-from autotune.report.model import Run, level_label
+from autotune.report.model import Run, level_label, number_at
 from autotune.run.records import Acquisition, Decision, Hold, Wait, parse
 
 _STAGES = ("retune", "calibrate")
-
-
-def _num(value: Any) -> float:
-    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) \
-        else math.nan
 
 
 def _get(mapping: Any, *keys: str) -> Any:
@@ -86,24 +81,24 @@ def _peak_variance(hold: Mapping[str, Any]) -> float:
     """The variance of the lock's peak after a check (Hz^2): its covariance's first element."""
     cov = _get(hold, "numbers", "lock", "covariance")
     try:
-        return _num(cov[0][0])
+        return number_at(cov[0][0])
     except (TypeError, IndexError, KeyError):
         return math.nan
 
 
 def _budget(run: Run) -> float:
-    value = _num((run.result or {}).get("budget_fraction"))
+    value = number_at(run.result, "budget_fraction")
     if not math.isfinite(value):
-        value = _num(_get(run.manifest, "config", "track", "budget_fraction"))
+        value = number_at(run.manifest, "config", "track", "budget_fraction")
     return value
 
 
 def _floor(run: Run, plans: list[dict[str, Any]]) -> float:
     for plan in reversed(plans):
-        value = _num(_get(plan, "plan", "inputs", "floor"))
+        value = number_at(plan, "plan", "inputs", "floor")
         if math.isfinite(value):
             return value
-    return _num(_get(run.manifest, "config", "track", "floor"))
+    return number_at(run.manifest, "config", "track", "floor")
 
 
 def figure_night(run: Run) -> tuple[Any, str] | None:
@@ -129,7 +124,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     origin = run.clock_start if run.clock_start is not None else 0.0
 
     def hours(clock: Any) -> float:
-        value = _num(clock)
+        value = number_at(clock)
         return (value - origin) / 3600.0 if math.isfinite(value) else math.nan
 
     fig = new_figure(9.0, 10.5)
@@ -157,7 +152,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     reference = []
     for h in holds:
         ref = _get(h, "state", "reference")
-        weight, weighted = _num(_get(ref, "weight")), _num(_get(ref, "weighted"))
+        weight, weighted = number_at(ref, "weight"), number_at(ref, "weighted")
         reference.append(weighted / weight if weight > 0 else math.nan)
     floor = _floor(run, night["plans"])
     if reference:
@@ -173,7 +168,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     perr, perr_sd = [], []
     for h in holds:
         m = checks[h["point"]]
-        star = _num(_get(h, "state", "prior", "phase_at_peak_rad"))
+        star = number_at(h, "state", "prior", "phase_at_peak_rad")
         perr.append(float(wrap_phase(m.value("phase_shift") - star)) / math.pi if math.isfinite(star) else math.nan)
         perr_sd.append(m.value("phase_shift_stderr") / math.pi)
     if holds:
@@ -193,7 +188,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     if steps:
         ax_det.step([s[0] for s in steps], [s[1] for s in steps], where="post", color="0.3", lw=1.1,
                     label="detuning set-point applied", gid="held")
-    peak = [(_num(_get(h, "numbers", "lock", "peak_hz")), _peak_variance(h)) for h in holds]
+    peak = [(number_at(h, "numbers", "lock", "peak_hz"), _peak_variance(h)) for h in holds]
     if peak:
         p = np.array([x[0] for x in peak]) / 1e3
         sd = np.sqrt(np.clip(np.array([x[1] for x in peak]), 0.0, None)) / 1e3
@@ -203,8 +198,8 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     corr = night["corrections"]
     if corr:
         ct = np.array([hours(c["clock"]) for c in corr])
-        to = np.array([_num(_get(c, "to", "detuning")) for c in corr]) / 1e3
-        fr = np.array([_num(_get(c, "from", "detuning")) for c in corr]) / 1e3
+        to = np.array([number_at(c, "to", "detuning") for c in corr]) / 1e3
+        fr = np.array([number_at(c, "from", "detuning") for c in corr]) / 1e3
         ax_det.vlines(ct, fr, to, color="tab:orange", lw=1.5)
         ax_det.plot(ct, to, "o", color="tab:orange", ms=4, label=f"corrections ({len(corr)})",
                     gid="corrections")
@@ -215,11 +210,11 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     for key, name, colour in (("upper", "S+ (peak moved up)", "tab:red"),
                               ("lower", "S− (peak moved down)", "tab:blue"),
                               ("inversion", "S of the inversion's drop", "tab:olive")):
-        values = np.array([_num(_get(h, "numbers", key)) for h in holds])
+        values = np.array([number_at(h, "numbers", key) for h in holds])
         if len(values):
             ax_stat.plot(t, values, "o-", ms=3, lw=1.0, color=colour, label=name, gid=f"stat-{key}")
-    thresholds = np.array([_num(_get(h, "state", "plan", "test", "threshold")) for h in holds])
-    inv_thresholds = np.array([_num(_get(h, "state", "plan", "test", "inversion_threshold"))
+    thresholds = np.array([number_at(h, "state", "plan", "test", "threshold") for h in holds])
+    inv_thresholds = np.array([number_at(h, "state", "plan", "test", "inversion_threshold")
                                for h in holds])
     if len(holds):
         ax_stat.step(t, thresholds, where="post", color="black", lw=1.2, gid="threshold",
@@ -227,11 +222,11 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
         ax_stat.step(t, inv_thresholds, where="post", color="tab:olive", lw=1.0, ls="--",
                      gid="inversion-threshold", label="threshold of S")
     for a in night["alarms"]:
-        value = _num(a.get("value"))
+        value = number_at(a, "value")
         if math.isfinite(value):
             ax_stat.plot(hours(a["clock"]), value, "X", ms=11, color="red", mec="black",
                          zorder=5, gid="alarm-marker")
-            ax_stat.annotate(f"alarm: {a.get('statistic')} {value:.2f} > {_num(a.get('threshold')):.2f}",
+            ax_stat.annotate(f"alarm: {a.get('statistic')} {value:.2f} > {number_at(a, 'threshold'):.2f}",
                              (hours(a["clock"]), value), xytext=(6, 4), textcoords="offset points",
                              fontsize=7, color="red")
     ax_stat.set_ylabel("statistic (standard units)")
@@ -258,7 +253,7 @@ def figure_night(run: Run) -> tuple[Any, str] | None:
     if math.isfinite(budget):
         ax_share.axhline(100.0 * budget, color="red", lw=1.0, ls="--", gid="budget",
                          label=f"budget {budget:.0%}")
-    plans = [(hours(p["clock"]), _num(_get(p, "plan", "check_share"))) for p in night["plans"]]
+    plans = [(hours(p["clock"]), number_at(p, "plan", "check_share")) for p in night["plans"]]
     if plans:
         ax_share.plot([p[0] for p in plans], [100.0 * p[1] for p in plans], "v", color="tab:green",
                       ms=5, label="planned share of the checks", gid="planned-share")

@@ -76,8 +76,8 @@ def figure_phase_shift(run: Run) -> tuple[Any, str] | None:
     if len(done) < 2:
         return None
     learned = run.learned or {}
-    star = number_at(learned, "phase_at_peak_rad", math.nan)
-    star_sd = number_at(learned, "phase_at_peak_stderr_rad", math.nan)
+    star = number_at(learned, "phase_at_peak_rad")
+    star_sd = number_at(learned, "phase_at_peak_stderr_rad")
     centre = star if math.isfinite(star) else math.pi
     fig = new_figure(7.0, 4.8)
     ax = fig.add_subplot()

@@ -10,7 +10,7 @@ import numpy as np
 
 from autotune.report.figures.base import (NAMED_RUNS_MAX, errorbar, marker_of, new_figure,
                                            set_title)
-from autotune.report.model import Run, level_label, parse_time, setpoints_equal
+from autotune.report.model import Run, level_label, number_at, parse_time, setpoints_equal
 
 
 def _timeline_items(runs: Sequence[Run]) -> tuple[bool, float, str]:
@@ -39,10 +39,8 @@ def _when(use_clock: bool, origin: float, clock: float | None, t_wall: Any) -> f
 
 
 def _detuning_of(value: Any) -> float:
-    if isinstance(value, Mapping):
-        value = value.get("detuning")
-    return float(value) if isinstance(value, (int, float)) and not isinstance(value, bool) \
-        else math.nan
+    """The detuning of journaled set-points (Hz), or a bare number as it is; else NaN."""
+    return number_at(value, "detuning") if isinstance(value, Mapping) else number_at(value)
 
 
 def figure_timeline(runs: Sequence[Run], night: bool = True) -> tuple[Any, str] | None:
