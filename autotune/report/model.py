@@ -253,6 +253,17 @@ class Run:
 
 
 def read_setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
+    """The set-points of a journaled mapping that are numbers (a bool or text left out).
+
+    Parameters
+    ----------
+    raw : Mapping
+        Set-points as journaled (name -> value in SI units: m/s, Hz).
+
+    Returns
+    -------
+    dict of str to float
+    """
     out = {}
     for name, value in raw.items():
         if isinstance(value, (int, float)) and not isinstance(value, bool):
@@ -432,6 +443,18 @@ def _walk(path: Path, manifest: dict[str, Any], result: dict[str, Any] | None,
 
 
 def parse_time(text: Any) -> datetime | None:
+    """A journaled wall time (ISO 8601) as an aware datetime, UTC when it names no zone.
+
+    Parameters
+    ----------
+    text : Any
+        A record's ``t_wall`` (or a manifest's ``started``).
+
+    Returns
+    -------
+    datetime or None
+        None for anything that is not an ISO 8601 string.
+    """
     if not isinstance(text, str):
         return None
     try:
@@ -463,6 +486,13 @@ def measured_duration_text(seconds: float | None) -> str:
 
 
 def level_label(confidence: float) -> str:
+    """A confidence level as a person reads it: ``0.95`` -> ``"95 %"``.
+
+    Parameters
+    ----------
+    confidence : float
+        The level as a fraction.
+    """
     return f"{100 * confidence:g} %"
 
 
@@ -500,6 +530,14 @@ def number_at(data: Any, *keys: str, default: float = math.nan) -> float:
 
 
 def format_setpoints(setpoints: Mapping[str, float] | None) -> str:
+    """Set-points as a person reads them (:func:`autotune.progress.setpoints_text`), or
+    ``"none"``.
+
+    Parameters
+    ----------
+    setpoints : Mapping of str to float, or None
+        Set-points in SI units (m/s, Hz).
+    """
     return setpoints_text(setpoints) if setpoints else "none"
 
 

@@ -227,6 +227,18 @@ def format_text(report: Report) -> str:
 
 
 def page_notes(run: Run) -> list[str]:
+    """The notes under a run's section of the page and the terminal summary: the journal
+    record types this report does not draw, with their counts.
+
+    Parameters
+    ----------
+    run : Run
+
+    Returns
+    -------
+    list of str
+        One line a note (empty when there is nothing to say).
+    """
     notes = []
     if run.unknown:
         kinds = ", ".join(f"{k} ({n})" for k, n in sorted(run.unknown.items()))

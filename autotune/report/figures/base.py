@@ -15,6 +15,17 @@ DPI = 100
 
 
 def new_figure(width: float = 7.0, height: float = 4.5) -> Any:
+    """A new matplotlib figure on the Agg canvas (no display needed), constrained layout.
+
+    Parameters
+    ----------
+    width, height : float
+        Its size in inches (at :data:`DPI` dots per inch).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -24,6 +35,14 @@ def new_figure(width: float = 7.0, height: float = 4.5) -> Any:
 
 
 def marker_of(label: str) -> str:
+    """The matplotlib marker that draws measurements of ``label`` in every figure (``"X"``
+    for a label the report does not know).
+
+    Parameters
+    ----------
+    label : str
+        A measurement's label (``point``, ``check``, ``verify``, ``lock``, ...).
+    """
     return _LABEL_MARKERS.get(label, "X")
 
 
@@ -35,6 +54,16 @@ def errorbar(ax: Any, x: Any, y: Any, *, gid: str, **kwargs: Any) -> Any:
 
 
 def set_title(fig: Any, run: Run | None, text: str) -> None:
+    """Title ``fig`` with ``text``, after the run's name when there is a run.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    run : Run or None
+        The run drawn (None: a figure of several runs).
+    text : str
+        What the figure shows.
+    """
     fig.suptitle(f"{run.name}: {text}" if run is not None else text, fontsize=11)
 
 
