@@ -65,7 +65,7 @@ from autotune.run.preflight import (never_started, opening_call, preflight, resu
 __all__ = ["calibrate", "retune", "prepare", "execute", "Prepared", "read_last_good",
            "describe_to_dict", "preflight", "track_preflight", "resume_changes",
            "STAGE_COMMANDS", "opening_call", "read_run_files", "decide_config_changes",
-           "run_manifest", "open_run_folder", "start_run"]
+           "run_manifest", "open_run_folder", "start_session"]
 
 _log = structlog.get_logger(__name__)
 
@@ -384,16 +384,12 @@ def execute(prepared: Prepared, rig: Rig, *, stop: threading.Event | None = None
     journal, records, opening_clock = open_run_folder(
         command, prepared.config, prepared.description, run_dir, resume=prepared.resume,
         rig=rig, stop=stop, extra=extra)
+    session, clock_start = start_session(
+        rig, prepared.config, journal, prepared.description, command=command,
+        changes=prepared.changes, records=records, opening_clock=opening_clock, stop=stop,
+        progress=progress)
     log = _log.bind(run=run_dir.name, command=command)
     status = "failed"
-    try:
-        session = Session(rig, prepared.config, journal, prepared.description, stop=stop,
-                          progress=progress)
-        clock_start = start_run(session, command, prepared.changes, records, opening_clock)
-    except BaseException:
-        journal.append("end", status=status)
-        journal.close()
-        raise
     try:
         outcome = _run_stage(prepared, session, records, observer)
         session.finish_progress()
@@ -444,12 +440,9 @@ def open_run_folder(command: str, config: RunConfig, description: Any, run_dir: 
 
     Parameters
     ----------
-    command : str
-        The command that runs (``calibrate``, ``retune``, ``track``).
-    config : RunConfig
-        The checked configuration.
-    description : Description
-        The rig's describe reply (into the manifest).
+    command, config, description
+        The run's command, checked configuration and the rig's describe reply (into the
+        manifest, :func:`run_manifest`).
     run_dir : Path
         The run folder.
     resume : bool
@@ -502,15 +495,22 @@ def decide_config_changes(session: Session, changes: Sequence[tuple[str, Any, An
                        changes=[{"key": k, "old": old, "new": new} for k, old, new in changes])
 
 
-def start_run(session: Session, command: str, changes: Sequence[tuple[str, Any, Any]],
-              records: Sequence[Mapping[str, Any]], opening_clock: float | None) -> float:
-    """Journal a resume's configuration changes and the run's ``start`` record (once, with the
-    rig's clock and instance), a stage's and a night's alike.
+def start_session(rig: Rig, config: RunConfig, journal: Journal, description: Any, *,
+                  command: str, changes: Sequence[tuple[str, Any, Any]],
+                  records: Sequence[Mapping[str, Any]], opening_clock: float | None,
+                  stop: threading.Event | None = None,
+                  progress: ProgressObserver | None = None) -> tuple[Session, float]:
+    """The run's session, with a resume's configuration changes and the run's ``start`` record
+    (once, with the rig's clock and instance) journaled: a stage's and a night's alike.
+
+    If anything here fails, the journal gets an ``end`` record (``failed``) and is closed
+    before the error is raised.
 
     Parameters
     ----------
-    session : Session
-        The run's session (its journal gets the records).
+    rig, config, journal, description
+        The rig, the checked configuration, the run's journal (or what wraps it) and the rig's
+        describe reply, for the :class:`~autotune.run.session.Session`.
     command : str
         The command that runs.
     changes : sequence of (key, old, new)
@@ -519,21 +519,31 @@ def start_run(session: Session, command: str, changes: Sequence[tuple[str, Any, 
         The records of an earlier attempt: a ``start`` with its clock there is not written
         again.
     opening_clock : float or None
-        The rig's clock read before a new folder was made (s); None: asked now.
+        The rig's clock read before a new folder was made (s, :func:`open_run_folder`); None:
+        asked now.
+    stop, progress
+        The session's stop signal and progress observer.
 
     Returns
     -------
-    float
+    session : Session
+    clock_start : float
         The rig's clock at the start of the run (s): the first attempt's on a resume.
     """
-    decide_config_changes(session, changes)
-    starts = of_type(parse_all(records), Start)
-    if starts and starts[0].clock is not None:
-        return starts[0].clock
-    clock_start = opening_clock if opening_clock is not None else session.read_clock()
-    session.journal.append("start", clock=clock_start, command=command,
-                           instance=getattr(session.description, "instance", None))
-    return clock_start
+    try:
+        session = Session(rig, config, journal, description, stop=stop, progress=progress)
+        decide_config_changes(session, changes)
+        starts = of_type(parse_all(records), Start)
+        if starts and starts[0].clock is not None:
+            return session, starts[0].clock
+        clock_start = opening_clock if opening_clock is not None else session.read_clock()
+        journal.append("start", clock=clock_start, command=command,
+                       instance=getattr(description, "instance", None))
+        return session, clock_start
+    except BaseException:
+        journal.append("end", status="failed")
+        journal.close()
+        raise
 
 
 def _run_stage(prepared: Prepared, session: Session, records: Sequence[Mapping[str, Any]],

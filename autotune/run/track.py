@@ -81,7 +81,6 @@ from autotune.run.journal import (
     ended_error,
     write_json_atomic,
 )
-from autotune.run.session import Session
 from autotune.progress import ProgressObserver
 from autotune.wire.rig import Rig
 from autotune.run.runner import (
@@ -91,7 +90,7 @@ from autotune.run.runner import (
     read_run_files,
     resume_changes,
     settle_failure,
-    start_run,
+    start_session,
     track_preflight,
 )
 from autotune.run.night_settings import PreparedNight, hold_settings
@@ -195,17 +194,11 @@ def execute_track(prepared: PreparedNight, rig: Rig, *, stop: threading.Event | 
         "track", config, prepared.description, run_dir, resume=prepared.resume, rig=rig,
         stop=stop, extra={"last_good": prepared.last_good, **dict(extra or {})})
     ledger = NightLedger(journal, records)
+    session, _ = start_session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
+                               command="track", changes=prepared.changes, records=records,
+                               opening_clock=opening_clock, stop=stop, progress=progress)
     log = _log.bind(run=run_dir.name, command="track")
     status = "failed"
-    session: Session | None = None
-    try:
-        session = Session(rig, config, ledger, prepared.description,  # type: ignore[arg-type]
-                          stop=stop, progress=progress)
-        start_run(session, "track", prepared.changes, records, opening_clock)
-    except BaseException:
-        ledger.append("end", status=status)
-        journal.close()
-        raise
     night: Night | None = None
     try:
         night = Night(session, prepared, rig, ledger, wall)
