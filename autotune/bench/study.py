@@ -30,8 +30,8 @@ from autotune.bench.plan import (CLUSTER_CLOSE_TIMEOUT_S, CLUSTER_START_TIMEOUT_
                                  StudyPlan, THERMAL_STEP_HZ, THRESHOLD, base_config, check_plan,
                                  family_scenarios, family_seed, settings_of, strategy_configs)
 from autotune.bench.scenarios import FAMILIES, SCENARIO_RANGES, rig_data
-from autotune.bench.summaries import summarise, summarise_retunes
-from autotune.bench.targets import guided_targets, night_growth, secondary_targets
+from autotune.bench.summaries import summarise, summarise_confidence, summarise_retunes
+from autotune.bench.targets import confidence_targets, guided_targets, night_growth, secondary_targets
 from autotune.bench.worker import run_job
 
 
@@ -144,6 +144,7 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
     oracle_shots = float(np.median([o["verification_shots"] for o in oracles]))
     summary: dict[str, dict[str, Any]] = {}
     retune: dict[str, dict[str, Any]] = {}
+    confidence: dict[str, dict[str, Any]] = {}
     oracle_families: dict[str, Any] = {}
     for family in plan.families:
         mine = [r for r in calibrations if r["family"] == family]
@@ -151,8 +152,12 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
                                              if r["strategy"] == kind], oracle_shots)
                            for kind in plan.strategies}
         retune[family] = {kind: summarise_retunes([r for r in mine if r["strategy"] == kind
-                                                    and "retune" in r], oracle_shots)
+                                                    and "retune" in r], oracle_shots,
+                                                   base.min_inversion)
                           for kind in retuned}
+        confidence[family] = {kind: summarise_confidence(
+            [r for r in mine if r["strategy"] == kind], oracle_shots,
+            base.min_inversion) for kind in plan.strategies}
         theirs = [o for o in oracles if o["family"] == family]
         oracle_families[family] = {
             "verified_stderr_median": float(np.median([o["verified_stderr"] for o in theirs])),
@@ -167,6 +172,7 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
     if night is not None:
         night = night_growth(night)
     targets = guided_targets(summary, retune, plan.families, GUIDED in plan.strategies)
+    targets += confidence_targets(confidence, plan.families)
     targets += secondary_targets(summary.get("main", {}), oracle_shots, overhead, night)
     if night_study is not None:
         targets += night_study["targets"]
@@ -181,7 +187,7 @@ def run_study(plan: StudyPlan, *, config_path: Path = DEFAULT_RUN_CONFIG,
         "strategies": {kind: settings_of(cfg) for kind, cfg in configs.items()},
         "retune_strategies": retuned,
         "summary": summary, "oracle": oracle, "overhead": overhead, "night": night,
-        "retune": retune, "targets": targets,
+        "retune": retune, "confidence": confidence, "targets": targets,
         "runs": sorted(calibrations, key=lambda r: (r["family"], r["scenario"], r["strategy"])),
     }
 

@@ -8,8 +8,12 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from scipy.stats import binomtest
 
 from autotune.bench.plan import LOWER_THRESHOLD, THERMAL_STEP_HZ, THRESHOLD
+
+#: No stage may be accepted below this fraction of the true best (issue 18's target).
+ACCEPT_FLOOR = 0.95
 
 
 # --------------------------------------------------------------------------------------------
@@ -70,14 +74,29 @@ def summarise(rows: Sequence[Mapping[str, Any]], oracle_shots: float) -> dict[st
     return summary
 
 
-def summarise_retunes(records: Sequence[Mapping[str, Any]], oracle_shots: float
-                       ) -> dict[str, Any]:
+def rig_below_acceptance(record: Mapping[str, Any], min_inversion: float | None) -> bool:
+    """Whether a scenario's rig cannot show ``[acceptance] min_inversion`` anywhere: its true
+    best inversion (the simulator's truth, read by the study only) lies below the bar, so no
+    calibration of it may be accepted and no retune can follow."""
+    if min_inversion is None:
+        return False
+    best = record.get("calibrate", {}).get("final_true_best")
+    return best is not None and math.isfinite(best) and best < min_inversion
+
+
+def summarise_retunes(records: Sequence[Mapping[str, Any]], oracle_shots: float,
+                      min_inversion: float | None = None) -> dict[str, Any]:
+    """Figures of one strategy's retunes in one family; a retune is skipped when its
+    calibration was not accepted, and ``skipped_rig_below_min`` counts those skips on rigs
+    whose true best lies below ``min_inversion`` (nothing there could be accepted)."""
     done = [r for r in records if "skipped" not in r["retune"]]
     rows = [r["retune"] for r in done]
     summary = summarise(rows, oracle_shots)
     summary.update({
         "thermal_step_hz": THERMAL_STEP_HZ, "scenarios": len(records),
         "skipped": len(records) - len(done),
+        "skipped_rig_below_min": sum(rig_below_acceptance(r, min_inversion)
+                                     for r in records if "skipped" in r["retune"]),
         "still_good": sum(r["status"] == "still_good" for r in rows),
         "moved_judged_still_good": sum(bool(r["moved_judged_still_good"]) for r in rows),
         "ratio_after_step_q": quantiles([r["ratio_after_step"] for r in rows]),
@@ -85,6 +104,60 @@ def summarise_retunes(records: Sequence[Mapping[str, Any]], oracle_shots: float
             [r["retune"]["shots"] / r["calibrate"]["shots"] for r in done]),
     })
     return summary
+
+
+def one_line_reason(stage: Mapping[str, Any]) -> bool:
+    """Whether a stage's stated reason is one non-empty line (what a refused stage owes)."""
+    reason = stage.get("reason")
+    return isinstance(reason, str) and bool(reason.strip()) and "\n" not in reason.strip()
+
+
+def summarise_confidence(records: Sequence[Mapping[str, Any]], oracle_shots: float,
+                         min_inversion: float | None = None, confidence: float = 0.95
+                         ) -> dict[str, Any]:
+    """What a family's stages claimed against the truth: issue 18's figures.
+
+    Over every calibration and retune that ran (a skipped retune did not), how often the
+    stated upper bound of the predicted shortfall covered the true shortfall, with the
+    Clopper-Pearson interval of that rate (``scipy.stats.binomtest``); the stages accepted
+    below the lower bar; the refused stages and whether each said why in one line; the most
+    expensive calibration as a multiple of the oracle floor, and how many rigs could not show
+    ``min_inversion`` anywhere.
+    """
+    stages = [r[kind] for r in records for kind in ("calibrate", "retune")
+              if kind in r and "skipped" not in r[kind]]
+    stated = [s for s in stages if _finite(s.get("predicted_shortfall_upper"))
+              and _finite(s.get("true_shortfall"))]
+    covered = sum(s["true_shortfall"] <= s["predicted_shortfall_upper"] for s in stated)
+    if stated:
+        ci = binomtest(covered, len(stated)).proportion_ci(confidence_level=confidence,
+                                                             method="exact")
+        interval = [float(ci.low), float(ci.high)]
+    else:
+        interval = [math.nan, math.nan]
+    accepted = [s for s in stages if s.get("accepted")]
+    refused = [s for s in stages if not s.get("accepted")]
+    shots = [r["calibrate"]["shots"] for r in records if "calibrate" in r]
+    return {
+        "stages": len(stages), "bound_stated": len(stated), "bound_covered": covered,
+        "coverage": covered / len(stated) if stated else math.nan,
+        "coverage_interval": interval, "bound_confidence": confidence,
+        "accepted": len(accepted),
+        "accepted_below_lower": sum(s["final_ratio"] < ACCEPT_FLOOR for s in accepted),
+        "accepted_final_min": min((s["final_ratio"] for s in accepted), default=math.nan),
+        "refused": len(refused),
+        "refused_without_reason": sum(not one_line_reason(s) for s in refused),
+        "calibration_shots_max": max(shots, default=math.nan),
+        "calibration_shots_max_over_oracle": ratio_of(max(shots, default=math.nan),
+                                                      oracle_shots),
+        "rigs_below_min_inversion": sum(rig_below_acceptance(r, min_inversion)
+                                        for r in records),
+        "min_inversion": min_inversion,
+    }
+
+
+def _finite(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
 
 
 def allowed_misses(runs: int) -> int:

@@ -234,6 +234,7 @@ def format_table(study: Mapping[str, Any]) -> str:
                     f"{number_text(r['shots_over_calibration_q'][1], 2):>8} "
                     f"{_q(r['final_ratio_q'], 3):>21} {r['below_threshold']:>5} "
                     f"{r['below_lower_threshold']:>5}")
+    lines += _format_confidence(study)
     if study.get("night_study"):
         lines.append("")
         lines += _format_night(study["night_study"])
@@ -243,6 +244,36 @@ def format_table(study: Mapping[str, Any]) -> str:
         lines.append(f"  [{t['status']}] {t['name']}: target {t['target']}; measured "
                      f"{t['measured']}")
     return "\n".join(lines)
+
+
+def _format_confidence(study: Mapping[str, Any]) -> list[str]:
+    """Section 6: what the stages claimed against the truth, per family (absent in results
+    written before the study kept these figures)."""
+    confidence = study.get("confidence")
+    if not confidence:
+        return []
+    lines = ["", "6. earned confidence: over every calibration and retune that ran, how often "
+             "the stated upper bound of the predicted shortfall covered the true shortfall "
+             "(exact binomial 95% interval), the stages accepted and refused, the lowest "
+             "accepted final true ratio and the most expensive calibration (x oracle)"]
+    header = (f"    {'strategy':<10} {'stages':>6} {'bound covered':>14} {'interval':>10} "
+              f"{'accepted':>8} {'lowest':>6} {'refused':>7} {'no reason':>9} "
+              f"{'most shots':>10} {'x oracle':>8} {'rigs < min':>10}")
+    for name, rows in confidence.items():
+        lines.append(f"  {name}")
+        lines.append(header)
+        for kind, c in rows.items():
+            low, high = c["coverage_interval"]
+            covered = f"{c['bound_covered']} of {c['bound_stated']}"
+            interval = f"{low:.0%}-{high:.0%}" if c["bound_stated"] else "-"
+            lowest = number_text(c["accepted_final_min"], 3) if c["accepted"] else "-"
+            lines.append(
+                f"    {kind:<10} {c['stages']:>6} {covered:>14} {interval:>10} "
+                f"{c['accepted']:>8} {lowest:>6} {c['refused']:>7} "
+                f"{c['refused_without_reason']:>9} {number_text(c['calibration_shots_max']):>10} "
+                f"{number_text(c['calibration_shots_max_over_oracle'], 2):>8} "
+                f"{c['rigs_below_min_inversion']:>10}")
+    return lines
 
 
 #: The purposes of a stage's measurements, in the order a calibration meets them.

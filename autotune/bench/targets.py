@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from autotune.bench.plan import GUIDED, LOWER_THRESHOLD, THERMAL_STEP_HZ, THRESHOLD
-from autotune.bench.summaries import allowed_misses, ratio_of, target_row
+from autotune.bench.summaries import ACCEPT_FLOOR, allowed_misses, ratio_of, target_row
 from autotune.bench.tables import number_text
 
 
@@ -77,17 +77,59 @@ def guided_targets(summary: Mapping[str, Mapping[str, Any]],
         out.append(target_row(f"{g} [{family}]: {kinds[4][0]}", kinds[4][1],
                            f"{ratio:.2f}x ({number_text(r['stage_shots_q'][1])} shots)"
                            if rn else "no retune ran", rn > 0 and ratio <= 1.5))
-        # A skipped retune (calibration not accepted) counts as a miss: nothing was retuned.
-        misses = r["below_threshold"] + r["skipped"]
+        # A skipped retune (calibration not accepted) counts as a miss: nothing was retuned;
+        # except on a rig whose true best lies below [acceptance] min_inversion, where no
+        # calibration may be accepted and no retune can follow (said in the line, not hidden).
+        unreachable = r.get("skipped_rig_below_min", 0)
+        eligible = r["scenarios"] - unreachable
+        misses = r["below_threshold"] + r["skipped"] - unreachable
+        skipped = f"{r['skipped']} skipped" + (
+            f" ({unreachable} on rigs whose true best is below [acceptance] min_inversion: "
+            f"not applicable)" if unreachable else "")
         out.append(target_row(f"{g} [{family}]: {kinds[5][0]}", kinds[5][1] +
-                           f" (here at most {allowed_misses(r['scenarios'])} of "
-                           f"{r['scenarios']} below)",
-                           f"{r['below_threshold']} of {rn} below, {r['skipped']} skipped",
-                           misses <= allowed_misses(r["scenarios"])))
+                           f" (here at most {allowed_misses(eligible)} of {eligible} below)",
+                           f"{r['below_threshold']} of {rn} below, {skipped}",
+                           misses <= allowed_misses(eligible)))
         out.append(target_row(f"{g} [{family}]: {kinds[6][0]}", kinds[6][1],
                            f"{r['moved_judged_still_good']} of {rn} retunes "
                            f"({r['still_good']} checks passed)",
                            r["moved_judged_still_good"] == 0))
+    return out
+
+
+def confidence_targets(confidence: Mapping[str, Mapping[str, Any]], families: Sequence[str]
+                       ) -> list[dict[str, Any]]:
+    """Issue 18's targets of the guided strategy per family: no calibration above 4x the
+    oracle floor; the stated bound covers the true shortfall in at least 90 % of stages; no
+    stage accepted below 0.95 of the true best, and every refused stage says why in one line.
+    A family the study holds no figures for (an older result) gets no rows."""
+    g = GUIDED
+    out = []
+    for family in families:
+        c = confidence.get(family, {}).get(g)
+        if c is None:
+            continue
+        most = c["calibration_shots_max_over_oracle"]
+        out.append(target_row(f"{g} [{family}]: most whole-stage calibration shots",
+                              "<= 4x the oracle floor",
+                              f"{number_text(most, 2)}x ({number_text(c['calibration_shots_max'])}"
+                              f" shots)", most is not None and most <= 4.0))
+        n, k = c["bound_stated"], c["bound_covered"]
+        low, high = c["coverage_interval"]
+        out.append(target_row(
+            f"{g} [{family}]: stated {c['bound_confidence']:.0%} shortfall bound covers the "
+            f"true shortfall", ">= 90% of calibrations and retunes",
+            f"{k} of {n} ({c['coverage']:.0%}; exact 95% interval {low:.0%}-{high:.0%}); "
+            f"{c['stages'] - n} stated none" if n else "no stage stated a bound",
+            n > 0 and n == c["stages"] and k >= 0.9 * n))
+        out.append(target_row(
+            f"{g} [{family}]: accepted only what it can vouch for",
+            f"no stage accepted below {ACCEPT_FLOOR:.2f} of the true best; every refused "
+            f"stage says why in one line",
+            f"{c['accepted_below_lower']} of {c['accepted']} accepted below (lowest accepted "
+            f"{number_text(c['accepted_final_min'], 3)}); {c['refused']} refused, "
+            f"{c['refused_without_reason']} without a one-line reason",
+            c["accepted_below_lower"] == 0 and c["refused_without_reason"] == 0))
     return out
 
 
