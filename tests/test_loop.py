@@ -354,3 +354,23 @@ def test_the_verification_stops_at_its_first_half_only_when_that_settles_the_sta
     low = min(h["estimate"]["inversion"] for h in halves)
     high = max(h["estimate"]["inversion"] for h in halves)
     assert low - 1e-9 <= result["inversion"] <= high + 1e-9
+
+
+def test_a_session_that_lost_its_setpoints_moves_before_it_measures(tmp_path: Path) -> None:
+    """After a failed move or a mismatch the session forgets what is in force (``current``
+    empty); the next acquisition must move to its set-points rather than assume it is there."""
+    # Source: common practice (a controller re-sends a set-point whose state it cannot vouch
+    # for); the rig's own reply names the set-points it measured at.
+    rig = _sim(3, drift=False)
+    session = _session(rig, tmp_path)
+    target = {"velocity": 505.0, "detuning": 2000.0}
+    session.move_to(target, reason="first")
+    session.current = {}                        # as after a failed move or a mismatch
+    rig.apply({"velocity": 500.0, "detuning": 0.0})   # the rig elsewhere, unknown to us
+    session.ensure_at(target, reason="again")
+    assert session.current == pytest.approx(target)
+    assert rig.status().setpoints == pytest.approx(target)
+    session.current = dict(target)
+    moves = len([r for r in read_journal(session.journal.path) if r["type"] == "move"])
+    session.ensure_at(target, reason="already there")
+    assert len([r for r in read_journal(session.journal.path) if r["type"] == "move"]) == moves

@@ -503,8 +503,10 @@ class Session:
 
     def ensure_at(self, target: Mapping[str, float], reason: str) -> None:
         """Move to ``target`` (:meth:`move_to`, ``reason`` journaled) unless every one of its
-        set-points is in force already, exactly as sent."""
-        if any(abs(self.current.get(k, math.nan) - v) > 0.0 for k, v in target.items()):
+        set-points is known to be in force already, exactly as sent. A set-point this session
+        does not know (none learned yet, or forgotten after a failed move or a mismatch) is
+        not in force: the move is made."""
+        if any(self.current.get(k) != v for k, v in target.items()):
             self.move_to(target, reason=reason)
 
     def _move_once(self, target: Mapping[str, float], reason: str) -> None:
