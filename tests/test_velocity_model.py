@@ -81,39 +81,3 @@ def test_the_data_override_a_proxy_that_disagrees():
         V_REF, sorted(set(xs)))
     assert curve.widened
     assert curve.velocity_of(curve.vertex()) > V_ABS + 10.0
-
-
-def test_the_expected_update_counts_the_contrast_a_new_point_measures():
-    """The covariance of r expected after one more point is Bishop's linear-Gaussian posterior
-    (C. M. Bishop, Pattern Recognition and Machine Learning, 2006, eq. 3.51, S_N^-1 = S_0^-1 +
-    Phi^T W Phi), with the prior S_0 of r built from the contrast fit that the point sharpens
-    (the same equation for the contrast's quadratic), written out here with numpy alone; and it
-    is tighter in r's slope than the update that ignores the contrast."""
-    xs = [-0.06, -0.02, 0.0, 0.0, 0.05]
-    n = len(xs)
-    c_sd, i_sd, p_sd, scale = 0.04, 0.05, 0.005, 0.7
-    absorptions = [0.015 + 4.0 * x * x for x in xs]
-    curve = fit_inversion_curve(xs, [0.7] * n, [i_sd**2] * n, absorptions, [p_sd**2] * n, [0.85] * n,
-                                [c_sd**2] * n, np.array([0.015, 0.0, 4.0]), np.eye(3) * 1e-6, scale, V_REF,
-                                sorted(set(xs)))
-    assert not curve.widened
-    x_new = 0.1
-    f = np.array([1.0, x_new, x_new**2])
-    after = curve.residual_cov_after(f, i_sd**2 + p_sd**2, c_sd**2)
-
-    # Bishop 3.51 for the contrast: a loose prior on (c0, c1) and 0.5 c0 on c2 (the module's), 6 points.
-    phi = np.array([[1.0, x, x * x] for x in [*xs, x_new]])
-    c0 = 0.85
-    c_prior = np.diag([1.0, (3.0 * c0) ** 2, (0.5 * c0) ** 2])
-    c_post = np.linalg.inv(np.linalg.inv(c_prior) + phi.T @ phi / c_sd**2)
-    k = scale / c0
-    tau = scale * np.array([0.1, 0.5])
-    r_prior = np.zeros((3, 3))
-    r_prior[0, 0] = 1.0
-    r_prior[1:, 1:] = k * k * c_post[1:, 1:] + np.diag(tau**2)
-    expected = np.linalg.inv(np.linalg.inv(r_prior) + phi.T @ phi / (i_sd**2 + p_sd**2))
-    np.testing.assert_allclose(after, expected, rtol=1e-6, atol=1e-12)
-
-    g = curve.residual_cov @ f
-    without = curve.residual_cov - np.outer(g, g) / (i_sd**2 + p_sd**2 + f @ curve.residual_cov @ f)
-    assert after[1, 1] < 0.95 * without[1, 1]

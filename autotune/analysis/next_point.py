@@ -128,12 +128,6 @@ def expected_inversion_variance(search: PhaseLockSearch, shots: int) -> float:
     return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
 
 
-def expected_contrast_variance(search: PhaseLockSearch, shots: int) -> float:
-    points = search._absorption_points() or search._in_range()
-    per_shot = [o.result.contrast_empty_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
-    return float(np.median(per_shot)) / shots if per_shot else (0.05**2)
-
-
 def expected_absorption_variance(search: PhaseLockSearch, value: float, shots: int) -> float:
     points = search._absorption_points() or search._in_range()
     floor = 0.005
@@ -176,8 +170,7 @@ def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: 
         curve = search._velocity_curve()
         if curve is not None:
             rvar = expected_inversion_variance(search, shots) + avar
-            # The point measures the empty contrast too, which sharpens r's prior (the proxy).
-            residual_cov = curve.residual_cov_after(f, rvar, expected_contrast_variance(search, shots))
+            residual_cov = updated_cov(curve.residual_cov, f, rvar)
     return search._shortfall_at(rec, clock, lock_cov=lock_cov, absorption_cov=absorption_cov,
                               residual_cov=residual_cov, inherit=inherit)
 

@@ -105,15 +105,6 @@ class InversionCurve(_QuadraticInX):
     widened : bool
         Whether the data's marginal likelihood chose the widened discrepancy (the inversions
         disagree with the proxy).
-    contrast_cov : ndarray or None
-        Posterior covariance of the empty contrast's quadratic ``(c0, c1, c2)``, whose shape
-        (times ``proxy_gain``) is the prior mean of ``(r1, r2)``; None: not kept.
-    proxy_gain : float
-        ``k = S / c0``, from the contrast's shape to ``r``'s.
-    discrepancy : ndarray
-        The prior standard deviations ``tau`` of ``(r1, r2)`` beyond the proxy that were chosen.
-    residual_data_precision : ndarray
-        ``X^T W X`` of the measured ``r`` (the data part of ``r``'s posterior precision).
     """
 
     velocity_ref: float
@@ -124,34 +115,6 @@ class InversionCurve(_QuadraticInX):
     x_groups: tuple[float, ...]
     proxy: np.ndarray
     widened: bool
-    contrast_cov: np.ndarray | None = None
-    proxy_gain: float = 1.0
-    discrepancy: np.ndarray | None = None
-    residual_data_precision: np.ndarray | None = None
-
-    def residual_cov_after(self, features: np.ndarray, residual_variance: float,
-                           contrast_variance: float) -> np.ndarray:
-        """``r``'s posterior covariance after one more point at ``features = (1, x, x^2)``.
-
-        The point measures ``r`` (variance ``residual_variance``) and the empty contrast
-        (variance ``contrast_variance``), which sharpens the proxy that is ``r``'s prior: both
-        enter. A linear-Gaussian model's posterior covariance does not depend on the values to
-        be measured (C. M. Bishop, *Pattern Recognition and Machine Learning*, 2006, eq. 3.51:
-        ``S_N^-1 = S_0^-1 + Phi^T W Phi``), so it is known before the measurement. Without the
-        kept parts (a curve built by hand), only ``r``'s own update.
-        """
-        f = np.asarray(features, dtype=float)
-        if self.contrast_cov is None or self.discrepancy is None or self.residual_data_precision is None:
-            g = self.residual_cov @ f
-            return self.residual_cov - np.outer(g, g) / (residual_variance + f @ self.residual_cov @ f)
-        g = self.contrast_cov @ f
-        c_cov = self.contrast_cov - np.outer(g, g) / (contrast_variance + f @ self.contrast_cov @ f)
-        prior_cov = np.zeros((3, 3))
-        prior_cov[0, 0] = 1.0
-        prior_cov[1:, 1:] = self.proxy_gain**2 * c_cov[1:, 1:] + np.diag(np.asarray(self.discrepancy) ** 2)
-        precision = self.residual_data_precision + np.outer(f, f) / residual_variance + np.linalg.inv(prior_cov)
-        cov = np.linalg.inv(precision)
-        return 0.5 * (cov + cov.T)
 
     def vertex(self) -> float | None:
         """``x`` of the maximum, or None when the curve is not concave."""
@@ -242,7 +205,7 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
     r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
                        + np.asarray(absorption_vars, dtype=float), 1e-8)
-    best: tuple[float, np.ndarray, np.ndarray, bool, np.ndarray] | None = None
+    best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
     for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
         prior_cov = np.zeros((3, 3))
@@ -252,18 +215,16 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
                                *proxy_r])
         mean, cov, evidence = _posterior(design, r, r_var, prior_mean, prior_cov)
         if best is None or evidence > best[0] + 1e-9:
-            best = (evidence, mean, cov, widened, tau)
+            best = (evidence, mean, cov, widened)
     assert best is not None
-    _, r_coef, r_cov, widened, tau = best
+    _, r_coef, r_cov, widened = best
     a_coef = np.asarray(absorption_coef, dtype=float)
     a_cov = np.asarray(absorption_cov, dtype=float)
     coef = r_coef - a_coef
     return InversionCurve(velocity_ref=float(velocity_ref), coef=coef, cov=r_cov + a_cov,
                           residual_cov=r_cov, absorption_cov=a_cov,
                           x_groups=tuple(sorted(float(g) for g in x_groups)),
-                          proxy=proxy_r - a_coef[1:], widened=widened,
-                          contrast_cov=c_cov, proxy_gain=float(k), discrepancy=tau,
-                          residual_data_precision=design.T @ (design / r_var[:, None]))
+                          proxy=proxy_r - a_coef[1:], widened=widened)
 
 
 @dataclass(frozen=True)
