@@ -94,6 +94,29 @@ def test_a_family_seed_offset_gives_development_draws_of_the_fixed_families():
             != bench.family_scenarios(plan)["velocity_physics"][0]["perturbation"])
 
 
+def test_the_family_seed_offset_option_reaches_the_study_plan(monkeypatch):
+    """``python -m autotune.bench --family-seed-offset 5`` hands the study a plan whose fixed
+    families draw from their seeds plus 5 (the study itself is not run here)."""
+    # Source: argparse (Python documentation): an int option's value; the plan is what run_study reads.
+    from autotune.bench import command
+
+    seen = {}
+
+    class _Stop(Exception):
+        pass
+
+    def capture(plan, **kwargs):
+        seen["plan"] = plan
+        raise _Stop
+
+    monkeypatch.setattr(command, "run_study", capture)
+    with pytest.raises(_Stop):
+        bench.main(["--tiny", "--serial", "--quiet", "--calibration-only", "--strategies", "phase_lock",
+                    "--families", "velocity_physics", "--family-seed-offset", "5"])
+    assert seen["plan"].family_seed_offset == 5
+    assert bench.family_seed(seen["plan"], "velocity_physics") == bench.FAMILIES["velocity_physics"].seed + 5
+
+
 def test_held_out_draw_has_the_main_ranges_and_its_own_fixed_seed():
     """The held-out family draws the main ranges from a seed fixed in the code, not the plan's."""
     # Source: the issue's held-out rule (same ranges, another generator seed, never tuned on).
