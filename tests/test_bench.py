@@ -80,6 +80,43 @@ def test_scenarios_lie_in_the_stated_ranges_and_repeat_with_the_seed():
         assert len(set(values)) == 12
 
 
+def test_a_family_seed_offset_gives_development_draws_of_the_fixed_families():
+    """``--family-seed-offset N`` moves every fixed family's seed by N (the main draw keeps
+    ``--seed``); 0 is the study's own draw."""
+    # Source: the issue's rule (never tune to a study family's draws: develop on draws it does not report).
+    plan = bench.plan_for("full", scenarios=2)
+    dev = dataclasses.replace(plan, family_seed_offset=7)
+    for name in ("held_out", "mismatch", "velocity_physics", "velocity_physics_held_out"):
+        assert bench.family_seed(plan, name) == bench.FAMILIES[name].seed
+        assert bench.family_seed(dev, name) == bench.FAMILIES[name].seed + 7
+    assert bench.family_seed(dev, "main") == plan.seed
+    assert (bench.family_scenarios(dev)["velocity_physics"][0]["perturbation"]
+            != bench.family_scenarios(plan)["velocity_physics"][0]["perturbation"])
+
+
+def test_the_family_seed_offset_option_reaches_the_study_plan(monkeypatch):
+    """``python -m autotune.bench --family-seed-offset 5`` hands the study a plan whose fixed
+    families draw from their seeds plus 5 (the study itself is not run here)."""
+    # Source: argparse (Python documentation): an int option's value; the plan is what run_study reads.
+    from autotune.bench import command
+
+    seen = {}
+
+    class _Stop(Exception):
+        pass
+
+    def capture(plan, **kwargs):
+        seen["plan"] = plan
+        raise _Stop
+
+    monkeypatch.setattr(command, "run_study", capture)
+    with pytest.raises(_Stop):
+        bench.main(["--tiny", "--serial", "--quiet", "--calibration-only", "--strategies", "phase_lock",
+                    "--families", "velocity_physics", "--family-seed-offset", "5"])
+    assert seen["plan"].family_seed_offset == 5
+    assert bench.family_seed(seen["plan"], "velocity_physics") == bench.FAMILIES["velocity_physics"].seed + 5
+
+
 def test_held_out_draw_has_the_main_ranges_and_its_own_fixed_seed():
     """The held-out family draws the main ranges from a seed fixed in the code, not the plan's."""
     # Source: the issue's held-out rule (same ranges, another generator seed, never tuned on).

@@ -67,6 +67,10 @@ def main(argv: Sequence[str] | None = None) -> int:
                              f"{DEFAULT_TIMEOUT_S:g})")
     parser.add_argument("--scenarios", type=int, help="scenarios per family (default by mode)")
     parser.add_argument("--seed", type=int, help="seed of the main scenario draw")
+    parser.add_argument("--family-seed-offset", type=int, default=0, metavar="N",
+                        help="add N to the fixed seed of every other family (held_out, "
+                             "mismatch, velocity_physics, ...): development draws the study "
+                             "does not report (default 0, the study's own)")
     parser.add_argument("--calibration-only", action="store_true",
                         help="sections 1, 2 and 5 alone: calibrations, the oracle floor and "
                              "retunes, without the optimiser overhead, the long run and the "
@@ -113,7 +117,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                         seed=ns.seed, strategies=strategies, night_only=ns.night)
     except ValueError as exc:
         parser.error(str(exc))
-    plan = dataclasses.replace(plan, timeout_s=ns.timeout_s)
+    plan = dataclasses.replace(plan, timeout_s=ns.timeout_s, family_seed_offset=ns.family_seed_offset)
     if ns.calibration_only and ns.night:
         parser.error("--calibration-only and --night exclude each other")
     if ns.calibration_only or ns.families is not None:

@@ -76,6 +76,10 @@ class StudyPlan:
         Number of seeded scenarios of each family.
     seed : int
         Seed of the main draw (the other families have their own, :data:`FAMILIES`).
+    family_seed_offset : int
+        Added to the fixed seed of every family that has one (0: the study's own draws). A
+        development draw of those families that the study does not report, as ``seed`` is
+        for the main one.
     families : tuple of str
         Scenario families run, among :data:`FAMILIES`.
     strategies : tuple of str
@@ -122,6 +126,7 @@ class StudyPlan:
     mode: str
     scenarios: int
     seed: int = 20261205
+    family_seed_offset: int = 0
     families: tuple[str, ...] = tuple(FAMILIES)
     strategies: tuple[str, ...] = STRATEGIES
     retune_strategies: tuple[str, ...] = RETUNE_STRATEGIES
@@ -298,9 +303,10 @@ def settings_of(config: RunConfig) -> dict[str, Any]:
 
 
 def family_seed(plan: StudyPlan, name: str) -> int:
-    """The seed of a family's draw in ``plan`` (the main draw takes the plan's seed)."""
+    """The seed of a family's draw in ``plan`` (the main draw takes the plan's seed; a fixed
+    seed is moved by the plan's ``family_seed_offset``)."""
     seed = FAMILIES[name].seed
-    return plan.seed if seed is None else seed
+    return plan.seed if seed is None else seed + plan.family_seed_offset
 
 
 def family_scenarios(plan: StudyPlan) -> dict[str, list[dict[str, Any]]]:
