@@ -20,7 +20,6 @@ import shutil
 import signal
 import subprocess
 import sys
-import time
 import tomllib
 from html.parser import HTMLParser
 from collections.abc import Sequence
@@ -32,6 +31,7 @@ import pytest
 
 from cli_helpers import DryRun
 from cli_helpers import to_toml as _to_toml
+from cli_helpers import wait_for_records
 from matplotlib.contour import ContourSet
 from scipy import stats
 
@@ -66,16 +66,7 @@ def _config(path: Path, endpoint: str, store: Path, **tables: dict[str, Any]) ->
 
 
 def _wait_for_estimates(journal: Path, count: int, timeout_s: float = 300.0) -> None:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if journal.exists():
-            try:
-                if sum(r["type"] == "estimate" for r in read_journal(journal)) >= count:
-                    return
-            except Exception:  # noqa: BLE001 - a journal read mid-write is retried
-                pass
-        time.sleep(0.1)
-    pytest.fail(f"{journal} did not reach {count} estimates in {timeout_s} s")
+    wait_for_records(journal, "estimate", count, timeout_s)
 
 
 #: The tests that read the dry run's report (dry_report, its figures drawn once per module) run
