@@ -450,16 +450,19 @@ def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
 # --------------------------------------------------------------------------------------------
 
 
+@_SHARES_FIXTURE
 def test_report_of_a_dry_run_writes_a_self_contained_page(dry_folder: Path,
+                                                          dry_report: report.Report,
                                                           tmp_path: Path) -> None:
-    """report DRY --out DIR: one data URI per figure file, no script, no network reference."""
+    """report DRY --out DIR: one data URI per figure file, no script, no network reference
+    (one PNG per figure of the module's report of the same folder, drawn once)."""
     out = tmp_path / "out"
     done = _autotune("report", str(dry_folder), "--out", str(out))
     assert done.returncode == 0, done.stderr[-3000:]
     assert "look at this" in done.stdout and "calibrate" in done.stdout
     assert "retune" in done.stdout
     pngs = sorted(out.glob("report-*.png"))
-    assert len(pngs) == len(report.build_report(dry_folder).figures)
+    assert len(pngs) == len(dry_report.figures)
     page = (out / report.HTML_NAME).read_text(encoding="utf-8")
     uris = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
     assert len(uris) == len(pngs)
