@@ -300,8 +300,9 @@ def test_ci_runs_exactly_the_readme_test_command() -> None:
     # After the README's suite, the slow kill and resume matrices (every resume path), the
     # studies whose samples the default suite keeps small, and the study's cluster runs.
     assert ci[suite + 1:] == ["python3 -m pytest -q -m slow tests/test_survival.py "
-                              "tests/test_resume.py tests/test_track.py tests/test_guided.py "
-                              "tests/test_search_drift.py tests/test_bench.py"]
+                              "tests/test_resume.py tests/test_track.py tests/test_faults.py "
+                              "tests/test_guided.py tests/test_search_drift.py "
+                              "tests/test_bench.py"]
     assert any(".[test]" in command and command.startswith("python3 -m pip install")
                for command in ci), install
 
