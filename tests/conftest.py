@@ -27,6 +27,49 @@ from cli_helpers import README_DRY_RUN, DryRun, autotune
 from rig_process import CurveFiles, ServerProcess, spawn_server
 
 
+#: The longest tests outside an xdist group (their wall time in the whole default suite on the
+#: loaded 2-core machine, longest first), started first so that the workers end together
+#: instead of one of them running a long test alone at the end. pytest-xdist's loadgroup hands
+#: out the groups with the most tests first (their module fixtures are the other long chains),
+#: then single tests in collection order; a prefix that matches nothing is ignored.
+LONG_FIRST = (
+    "tests/test_survival.py::test_every_shot_is_accounted_for_under_heavy_faults",
+    "tests/test_track_process.py::test_a_night_with_a_thermal_step",
+    "tests/test_survival.py::test_killed_after_each_record_kind_the_run_resumes[track",
+    "tests/test_faults.py::test_a_kill_between_a_moves_intent_and_its_outcome",
+    "tests/test_faults.py::test_a_kill_while_the_rig_goes_safe",
+    "tests/test_runlock.py::test_a_second_command_on_a_running_folder_is_refused",
+    "tests/test_readme.py::test_readme_quick_start_runs_as_written",
+    "tests/test_stored_results.py::test_the_stored_quick_check_reproduces",
+    "tests/test_cli.py::test_report_summarises_a_run_folder_and_track_holds_from_it",
+    "tests/test_report.py::test_report_of_a_killed_run",
+    "tests/test_cli.py::test_calibrate_killed_and_resumed_loses_and_repeats_nothing",
+    "tests/test_survival.py::test_killed_after_each_record_kind_the_run_resumes",
+    "tests/test_report.py::test_a_run_still_going_is_told_at_the_top_of_the_page",
+    "tests/test_loop.py::test_out_of_range_proposals_never_reach_the_rig",
+    "tests/test_survival.py::test_a_finished_run_resumed_tells_its_outcome_again",
+    "tests/test_runlock.py::test_a_rig_leased_to_another_client_is_refused_or_waited_for",
+    "tests/test_track_process.py",
+    "tests/test_search.py::test_bayesian_recommends_global_peak_not_ridge",
+    "tests/test_progress.py::test_one_line_updated_in_place_on_a_terminal",
+    "tests/test_survival.py::test_a_rig_restarted_mid_run_is_noticed_and_never_filed",
+    "tests/test_faults.py::test_a_stop_with_the_rig_gone_takes_seconds",
+    "tests/test_loop.py::test_interval_covers_the_truth_at_its_stated_rate",
+    "tests/test_report.py::test_report_of_a_night_draws_its_timeline",
+    "tests/test_guided.py::test_stopping_rule_rarely_stops_falsely_in_forty_calibrations",
+    "tests/test_track.py::test_a_retune_not_accepted_but_as_good_as_the_last_calibration_is_held",
+)
+
+
+def pytest_collection_modifyitems(items: list[pytest.Item]) -> None:
+    """Put the tests of :data:`LONG_FIRST` first, in its order (the others keep theirs)."""
+    def rank(item: pytest.Item) -> int:
+        return next((number for number, prefix in enumerate(LONG_FIRST)
+                     if item.nodeid.startswith(prefix)), len(LONG_FIRST))
+
+    items.sort(key=rank)
+
+
 @pytest.fixture(scope="session")
 def readme_dry_run(tmp_path_factory: pytest.TempPathFactory, worker_id: str) -> DryRun:
     """The README's ``autotune dry-run`` run once per test session, from an empty folder.

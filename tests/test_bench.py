@@ -393,6 +393,11 @@ def test_importing_autotune_pulls_in_neither_dask_nor_the_simulator():
     assert out.strip() == "[]"
 
 
+# The two cluster runs (a local cluster the study starts, and a running scheduler) are in the
+# slow suite, which .ci/run runs: each starts dask worker processes that import the whole
+# stack, about a third of this file's CPU. The default suite keeps the job that fails in a
+# fresh interpreter and the unreachable scheduler.
+@pytest.mark.slow
 @_READS_STUDY
 def test_local_dask_cluster_gives_the_serial_results(study):
     """Two dask worker processes give exactly the serial run's calibrations, oracles and retunes."""
@@ -416,6 +421,7 @@ def test_local_dask_cluster_gives_the_serial_results(study):
     assert main_only(on_cluster["oracle"]["runs"]) == main_only(study["oracle"]["runs"])
 
 
+@pytest.mark.slow
 def test_existing_scheduler_gives_the_serial_results():
     """Jobs sent to a running scheduler (--scheduler) give the serial run's results too."""
     # Reference: the same plan run in this process; a dask LocalCluster started here stands for

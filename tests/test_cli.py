@@ -28,6 +28,7 @@ from rig_process import REPO, ServerProcess
 from cli_helpers import DRY_RUN, DryRun
 from cli_helpers import autotune as _autotune
 from cli_helpers import to_toml as _to_toml
+from cli_helpers import wait_for_records
 from cli_helpers import write_config as _write_config
 
 
@@ -55,16 +56,7 @@ def _start_calibration(tmp_path: Path, server: ServerProcess, output: int
 
 
 def _wait_for(path: Path, kind: str, count: int, timeout_s: float = 300.0) -> None:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if path.exists():
-            try:
-                if sum(r["type"] == kind for r in read_journal(path)) >= count:
-                    return
-            except Exception:  # noqa: BLE001 - a journal read mid-write is retried
-                pass
-        time.sleep(0.1)
-    pytest.fail(f"{path} did not reach {count} {kind} records in {timeout_s} s")
+    wait_for_records(path, kind, count, timeout_s)
 
 
 def test_dry_run_finds_the_true_optimum_and_retunes_cheaply(readme_dry_run: DryRun) -> None:

@@ -7,6 +7,7 @@ directly for its cut. Outside reference: the run folder's own log.jsonl (the ful
 
 from __future__ import annotations
 
+import functools
 import subprocess
 import sys
 
@@ -24,6 +25,16 @@ PROGRESS = ("calibrate", "retune", "track", "dry-run")
 def _autotune(*args: str, timeout: float = 120.0) -> subprocess.CompletedProcess[str]:
     return subprocess.run([sys.executable, "-m", "autotune.cli", *args], capture_output=True,
                           text=True, timeout=timeout, cwd=REPO, stdin=subprocess.DEVNULL)
+
+
+@functools.cache
+def _help(command: str) -> subprocess.CompletedProcess[str]:
+    """``autotune COMMAND --help`` run once per command in this process: the two help tests
+    below read the same text (their xdist group keeps them on one worker)."""
+    return _autotune(command, "--help", timeout=60)
+
+
+_READS_HELP = pytest.mark.xdist_group("test_console_help")
 
 
 LONG_VERDICT = ("check's phase error +0.462 +- 0.025 pi: set-point +18.42 kHz from the peak "
@@ -78,11 +89,12 @@ def test_repeated_warnings_are_merged_with_a_count() -> None:
         "WARNING the warning above repeated 2 more times (each in the run folder's log.jsonl)"]
 
 
+@_READS_HELP
 @pytest.mark.parametrize("command", MOVING + NOT_MOVING)
 def test_each_command_has_a_description_and_the_caution_only_where_it_moves_a_rig(command):
     """Every command's --help describes it; the caution is in the help of the commands that
     move a rig, once, and in no other; acting commands give their exit codes."""
-    done = _autotune(command, "--help", timeout=60)
+    done = _help(command)
     assert done.returncode == 0, done.stderr
     text = " ".join(done.stdout.split())
     description = done.stdout.split("\n\n")[1]
@@ -153,12 +165,13 @@ def test_a_rig_that_does_not_answer_is_named_at_once(tmp_path) -> None:
     assert sum("bus_retry" in line for line in lines) == 2 * 2
 
 
+@_READS_HELP
 @pytest.mark.parametrize("command", MOVING + NOT_MOVING)
 def test_quiet_speaks_of_a_progress_line_only_where_there_is_one(command) -> None:
     """--quiet's help names the progress line only for the commands that draw one (a stage or
     a night: calibrate, retune, track, dry-run); options are described as they are (common
     practice of command-line help)."""
-    done = _autotune(command, "--help", timeout=60)
+    done = _help(command)
     assert done.returncode == 0
     quiet = " ".join(done.stdout.split("--quiet ", 2)[-1].split("\n\n")[0].split())
     assert quiet.startswith("no progress line" if command in PROGRESS else "only warnings"), quiet

@@ -95,7 +95,15 @@ LOSSY_BUS = {"bus": {"timeout_s": 0.4, "retries": 1, "backoff_s": 0.0},
              "recovery": {"step_retries": 3, "retry_wait_s": 0.0}}
 
 
-@pytest.mark.parametrize("seed", range(10))
+#: Ten seeded rigs: with the bus's own two attempts alone about one run in five failed before
+#: starting, so each seed is a trial that catches that regression with probability 0.2. The
+#: default suite runs five (it misses the regression with probability 0.8**5 = 0.33), the slow
+#: suite the other five (.ci/run runs both: 0.8**10 = 0.11); each costs two process starts.
+_DROPPING_SEEDS = [seed if seed < 5 else pytest.param(seed, marks=pytest.mark.slow)
+                   for seed in range(10)]
+
+
+@pytest.mark.parametrize("seed", _DROPPING_SEEDS)
 def test_a_rig_dropping_a_third_of_its_replies_starts_every_time(tmp_path, servers, seed):
     """A seeded rig dropping a third of its replies: the run's first describe and status are
     retried like every later call, so the run starts and its journal opens with ``start``

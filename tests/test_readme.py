@@ -284,7 +284,8 @@ def test_dry_run_options_sentence_matches_its_help() -> None:
 
 def test_ci_runs_exactly_the_readme_test_command() -> None:
     """.ci/run makes a fresh venv, installs the test extra in it, runs the README's test command
-    and then the slow kill and resume matrices and the lock's and the drift search's studies."""
+    and then the slow kill and resume matrices, the lock's and the drift search's studies and
+    the study's cluster runs."""
     text = README.read_text(encoding="utf-8")
     line = next(line.strip() for line in text.splitlines() if ".[test]" in line)
     install, test = (part.strip() for part in line.split("&&"))
@@ -296,11 +297,12 @@ def test_ci_runs_exactly_the_readme_test_command() -> None:
     activated = next(i for i, command in enumerate(ci) if command.startswith("source ")
                      and command.endswith('/bin/activate"'))
     assert venv_made < activated < suite - 1, "the tests run inside a fresh venv"
-    # After the README's suite, the slow kill and resume matrices (every resume path), and the
-    # studies whose samples the default suite keeps small.
+    # After the README's suite, the slow kill and resume matrices (every resume path), the
+    # studies whose samples the default suite keeps small, and the study's cluster runs.
     assert ci[suite + 1:] == ["python3 -m pytest -q -m slow tests/test_survival.py "
-                              "tests/test_resume.py tests/test_guided.py "
-                              "tests/test_search_drift.py"]
+                              "tests/test_resume.py tests/test_track.py tests/test_faults.py "
+                              "tests/test_guided.py tests/test_search_drift.py "
+                              "tests/test_bench.py"]
     assert any(".[test]" in command and command.startswith("python3 -m pip install")
                for command in ci), install
 

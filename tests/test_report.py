@@ -20,7 +20,6 @@ import shutil
 import signal
 import subprocess
 import sys
-import time
 import tomllib
 from html.parser import HTMLParser
 from collections.abc import Sequence
@@ -32,6 +31,7 @@ import pytest
 
 from cli_helpers import DryRun
 from cli_helpers import to_toml as _to_toml
+from cli_helpers import wait_for_records
 from matplotlib.contour import ContourSet
 from scipy import stats
 
@@ -66,16 +66,7 @@ def _config(path: Path, endpoint: str, store: Path, **tables: dict[str, Any]) ->
 
 
 def _wait_for_estimates(journal: Path, count: int, timeout_s: float = 300.0) -> None:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if journal.exists():
-            try:
-                if sum(r["type"] == "estimate" for r in read_journal(journal)) >= count:
-                    return
-            except Exception:  # noqa: BLE001 - a journal read mid-write is retried
-                pass
-        time.sleep(0.1)
-    pytest.fail(f"{journal} did not reach {count} estimates in {timeout_s} s")
+    wait_for_records(journal, "estimate", count, timeout_s)
 
 
 #: The tests that read the dry run's report (dry_report, its figures drawn once per module) run
@@ -459,16 +450,19 @@ def test_every_figure_has_units_on_its_axes(dry_report: report.Report) -> None:
 # --------------------------------------------------------------------------------------------
 
 
+@_SHARES_FIXTURE
 def test_report_of_a_dry_run_writes_a_self_contained_page(dry_folder: Path,
+                                                          dry_report: report.Report,
                                                           tmp_path: Path) -> None:
-    """report DRY --out DIR: one data URI per figure file, no script, no network reference."""
+    """report DRY --out DIR: one data URI per figure file, no script, no network reference
+    (one PNG per figure of the module's report of the same folder, drawn once)."""
     out = tmp_path / "out"
     done = _autotune("report", str(dry_folder), "--out", str(out))
     assert done.returncode == 0, done.stderr[-3000:]
     assert "look at this" in done.stdout and "calibrate" in done.stdout
     assert "retune" in done.stdout
     pngs = sorted(out.glob("report-*.png"))
-    assert len(pngs) == len(report.build_report(dry_folder).figures)
+    assert len(pngs) == len(dry_report.figures)
     page = (out / report.HTML_NAME).read_text(encoding="utf-8")
     uris = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
     assert len(uris) == len(pngs)

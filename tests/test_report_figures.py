@@ -95,6 +95,21 @@ def folders(tmp_path_factory: pytest.TempPathFactory, readme_dry_run: DryRun) ->
     return out
 
 
+@pytest.fixture(scope="module")
+def reports(folders: dict[str, Path]) -> Any:
+    """``reports(folder)``: the report of one of the module's folders, its figures drawn once
+    for every test that reads them (drawing the dry run's takes seconds of CPU; six tests read
+    it). The tests only read the figures."""
+    built: dict[Path, report.Report] = {}
+
+    def get(folder: Path) -> report.Report:
+        if folder not in built:
+            built[folder] = report.build_report(folder)
+        return built[folder]
+
+    return get
+
+
 def _figure(built: report.Report, section: str, key: str) -> Any:
     found = [f for f in built.figures if f.section == section and f.key == key]
     assert len(found) == 1, [(f.section, f.key) for f in built.figures]
@@ -120,11 +135,11 @@ def _estimates(run_dir: Path) -> list[dict[str, Any]]:
 
 
 @pytest.mark.parametrize("stage", ["calibrate", "retune"])
-def test_phase_figure_draws_the_lock_model_that_chose_the_detuning(folders, stage):
+def test_phase_figure_draws_the_lock_model_that_chose_the_detuning(folders, reports, stage):
     """The green curve is alpha + s d + c (d/h)^3 + beta tau from the journaled lock_fit at the
     verification's clock; it crosses the journaled phase at the peak at the chosen detuning."""
     run_dir = folders["dry"] / stage
-    built = report.build_report(folders["dry"])
+    built = reports(folders["dry"])
     fig = _figure(built, stage, "phase-shift").figure
     learned = _decisions(run_dir, "stop_search")[-1]["learned"]
     fit = learned["lock_fit"]
@@ -164,11 +179,12 @@ def test_phase_figure_draws_the_lock_model_that_chose_the_detuning(folders, stag
 
 
 @pytest.mark.parametrize("stage", ["calibrate", "retune"])
-def test_absorption_figure_draws_the_lock_quadratic_and_the_chosen_velocity(folders, stage):
+def test_absorption_figure_draws_the_lock_quadratic_and_the_chosen_velocity(folders, reports,
+                                                                           stage):
     """Points are the journal's absorptions; the curve is a0 + a1 x + a2 x^2 in x = v_ref/v - 1
     from the journaled fit; the least-absorption and chosen velocities are the journal's."""
     run_dir = folders["dry"] / stage
-    built = report.build_report(folders["dry"])
+    built = reports(folders["dry"])
     item = _figure(built, stage, "absorption")
     fig = item.figure
     learned = _decisions(run_dir, "stop_search")[-1]["learned"]
@@ -198,10 +214,10 @@ def test_absorption_figure_draws_the_lock_quadratic_and_the_chosen_velocity(fold
             f"{stats.norm.ppf(0.975) * sd:.1f} m/s (95 %)") in legend
 
 
-def test_the_dry_run_timeline_marks_the_thermal_step_where_it_happened(folders):
+def test_the_dry_run_timeline_marks_the_thermal_step_where_it_happened(folders, reports):
     """The thermal step recorded in the retune's manifest is drawn at its rig clock, and the
     retune's correction where the retune first moved, not at the run's end."""
-    built = report.build_report(folders["dry"])
+    built = reports(folders["dry"])
     fig = _figure(built, "", "timeline").figure
     manifest = json.loads((folders["dry"] / "retune" / "manifest.json").read_text())
     step = manifest["dry_run"]["thermal_step"]
@@ -226,11 +242,11 @@ def _holds(run_dir: Path) -> list[dict[str, Any]]:
 
 
 @pytest.mark.parametrize("name", ["recovered", "failed"])
-def test_the_night_draws_each_statistic_against_its_threshold(folders, name):
+def test_the_night_draws_each_statistic_against_its_threshold(folders, reports, name):
     """S+, S- and the inversion's S are the hold records' numbers at the checks' clocks; the
     thresholds are the plan's; each alarm is marked at its journaled value."""
     run_dir = folders[name]
-    built = report.build_report(run_dir)
+    built = reports(run_dir)
     assert [f.key for f in built.figures] == ["night", "fringes"]
     fig = _figure(built, "", "night").figure
     holds = _holds(run_dir)
@@ -256,12 +272,12 @@ def test_the_night_draws_each_statistic_against_its_threshold(folders, name):
         assert f"alarm: {a['statistic']} {a['value']:.2f} > {a['threshold']:.2f}" in printed
 
 
-def test_a_failed_recovery_is_shaded_red_and_marked(folders):
+def test_a_failed_recovery_is_shaded_red_and_marked(folders, reports):
     """The failed night: its recoveries not accepted are red spans, each failure a red cross
     (under the beam ceiling a calibration the night cannot pay for after a rejected retune is
     a budget decision, not a failure: the crosses then match the failures journaled, if any)."""
     run_dir = folders["failed"]
-    fig = _figure(report.build_report(run_dir), "", "night").figure
+    fig = _figure(reports(run_dir), "", "night").figure
     failures = _decisions(run_dir, "failure")
     assert len(_by_gid(fig, "failure")) == len(failures)
     assert failures or _decisions(run_dir, "budget")
@@ -272,12 +288,12 @@ def test_a_failed_recovery_is_shaded_red_and_marked(folders):
 
 
 @pytest.mark.parametrize("name", ["recovered", "failed"])
-def test_the_night_draws_inversion_reference_phase_error_and_beam_share(folders, name):
+def test_the_night_draws_inversion_reference_phase_error_and_beam_share(folders, reports, name):
     """Each check's inversion and phase error (phase shift minus the stored phase at the peak);
     the reference is the hold state's weighted mean; the beam share ends at the result's
     holding beam time over the rig time elapsed; the budget is the result's."""
     run_dir = folders[name]
-    fig = _figure(report.build_report(run_dir), "", "night").figure
+    fig = _figure(reports(run_dir), "", "night").figure
     holds = _holds(run_dir)
     checks = {r["point"]: r for r in _estimates(run_dir) if r["label"] == "hold"}
     (inv,) = _by_gid(fig, "night-checks")
@@ -305,10 +321,10 @@ def test_the_night_draws_inversion_reference_phase_error_and_beam_share(folders,
     assert sum(len(d.get_ydata()) for d in drawn) == len(corrections)
 
 
-def test_a_night_that_never_held_still_draws_its_stages(folders):
+def test_a_night_that_never_held_still_draws_its_stages(folders, reports):
     """No check at all: the night figure says so and shades its failed recoveries."""
     run_dir = folders["never"]
-    built = report.build_report(run_dir)
+    built = reports(run_dir)
     item = _figure(built, "", "night")
     assert not _holds(run_dir)
     assert "0 checks" in item.caption
@@ -318,10 +334,10 @@ def test_a_night_that_never_held_still_draws_its_stages(folders):
 
 
 @pytest.mark.parametrize("name", ["dry", "recovered", "failed", "never"])
-def test_every_figure_is_written_with_units_on_its_axes(folders, name, tmp_path):
+def test_every_figure_is_written_with_units_on_its_axes(folders, reports, name, tmp_path):
     """Every figure of a dry run and of each night is written as a PNG, and every axis label
     names its unit in parentheses."""
-    built = report.build_report(folders[name])
+    built = reports(folders[name])
     for item in built.figures:
         for ax in item.figure.axes:
             for label in (ax.get_xlabel(), ax.get_ylabel()):

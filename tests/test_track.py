@@ -194,17 +194,28 @@ def _cuts(records: list[dict[str, Any]]) -> list[tuple[str, int, bool]]:
             for number, (name, index) in enumerate(sorted(names.items(), key=lambda kv: kv[1]))]
 
 
-@_SHARES_FIXTURE
-def test_a_night_cut_after_any_record_kind_resumes_and_finishes(night, tmp_path):
-    """Cut after the first record of every kind (whole, or with half of the next line), and at
-    the records that begin the retune inside the night, the night resumes, finishes what was
-    in flight without measuring anything twice, and keeps the journal's invariants."""
+#: The default suite's sample of the night's cuts: every record type once, in each part of the
+#: night (its opening retune, the holding, the retune begun inside it after the alarm, its end),
+#: whole and half-written lines both. Each cut resumes the rest of a two-hour night, so the
+#: sample takes the latest cut of each type it can: 15 of the 31 cuts, 7 of the 17 that
+#: resume a whole night. The slow suite runs the other cuts (.ci/run runs it).
+DEFAULT_CUTS = frozenset({
+    "start", "estimate", "wait", "measurement:hold", "hold", "decision:correct", "move",
+    "decision:alarm", "night-retune-stage", "night-retune-proposal",
+    "night-retune-measurement", "night-retune-request", "night-retune-acquisition",
+    "decision:stop", "safe"})
+
+
+def _resume_cuts(night: dict[str, Any], tmp_path: Any, default: bool) -> None:
+    """Resume a copy of the night cut at each cut of the sample (``default``) or of the rest."""
     source = night["base"] / "night"
     records = night["records"]
-    cuts = _cuts(records)
-    kinds = {name.split(":")[0] for name, _, _ in cuts}
-    assert {"wait", "hold", "measurement", "request", "acquisition", "estimate", "move",
-            "stage", "decision"} <= kinds
+    cuts = [cut for cut in _cuts(records) if (cut[0] in DEFAULT_CUTS) == default]
+    kinds = {name.removeprefix("night-retune-").split(":")[0] for name, _, _ in cuts}
+    if default:
+        assert {"start", "wait", "hold", "measurement", "request", "acquisition", "estimate",
+                "move", "stage", "proposal", "decision", "safe"} <= kinds, kinds
+        assert {partial for _, _, partial in cuts} == {True, False}
     for number, (name, index, partial) in enumerate(cuts):
         run = tmp_path / f"{number}-{name.replace(':', '-')}"
         shutil.copytree(source, run)
@@ -221,6 +232,24 @@ def test_a_night_cut_after_any_record_kind_resumes_and_finishes(night, tmp_path)
         check_invariants(after)
         assert after[: index + 1] == records[: index + 1], f"cut after {name}"
         assert read_json(run / RESULT_NAME)["status"] == result["status"] == "ended"
+
+
+@_SHARES_FIXTURE
+def test_a_night_cut_after_any_record_kind_resumes_and_finishes(night, tmp_path):
+    """Cut after a record of every type (whole, or with half of the next line), in the opening
+    retune, the holding, the retune begun inside the night and at its end, the night resumes,
+    finishes what was in flight without measuring anything twice, and keeps the journal's
+    invariants (the sample DEFAULT_CUTS; the slow test below resumes every other cut)."""
+    _resume_cuts(night, tmp_path, default=True)
+
+
+@pytest.mark.slow
+@_SHARES_FIXTURE
+def test_every_other_cut_of_the_night_resumes_and_finishes(night, tmp_path):
+    """The complete matrix with the test above: after the first record of every kind (every
+    decision and measurement label) and at each of the first records of the retune inside
+    the night."""
+    _resume_cuts(night, tmp_path, default=False)
 
 
 @_SHARES_FIXTURE
