@@ -411,31 +411,3 @@ def test_a_check_during_a_suspected_change_does_not_teach_the_rate():
     suspected = assess_check(settings, result=off, upper=plan.test.warning + 0.1, **common)
     assert suspected.lock.rate_hz_per_s == lock.rate_hz_per_s
     assert suspected.lock.peak_hz != lock.predict(600.0).peak_hz
-
-
-def test_an_innovation_beyond_the_recheck_level_is_checked_again_at_once():
-    """A check whose innovation alone reaches the plan's recheck_z, the charts still below their
-    warning level, is checked again at once (a Shewhart limit beside the CUSUM, J. M. Lucas,
-    J. Quality Technology 14, 51 (1982)) and does not teach the drift rate; the charts keep
-    their values (the rule only brings the next check sooner); a plan without the rule
-    (recheck_z infinite, as a plan made before it) corrects and waits."""
-    settings, prior = hold_settings(), _prior()
-    lock = DriftLock.start(0.0, 0.0, 1000.0, 0.5, 1.0, 20.0)
-    common = dict(detuning_hz=0.0, lock=lock, prior=prior, upper=0.0, lower=0.0, inversion=0.0,
-                  reference_inversion=0.72, reference_stderr=0.02, next_interval_s=600.0)
-    off = _check(math.pi - SLOPE * 5000.0, 0.1, 600.0)  # the peak 5 kHz above the set-point
-    ruled = _plan()
-    ruled = CheckPlan(**{**ruled.__dict__, "test": SequentialTest(1.0, 10.0, 8.0, 0.4, 6.0, 3.0,
-                                                                  2.0)})
-    a = assess_check(settings, result=off, plan=ruled, **common)
-    assert a.innovation.z >= 2.0 and a.upper < ruled.test.warning
-    assert a.action == "recheck" and "innovation alone" in a.reason
-    assert a.lock.rate_hz_per_s == lock.rate_hz_per_s
-    assert a.upper == pytest.approx(max(0.0, a.innovation.z - 1.0))
-    before = CheckPlan(**{**ruled.__dict__, "test": SequentialTest(1.0, 10.0, 8.0, 0.4, 6.0,
-                                                                   3.0)})
-    b = assess_check(settings, result=off, plan=before, **common)
-    assert b.action == "correct" and b.lock.rate_hz_per_s != lock.rate_hz_per_s
-    restored = CheckPlan.from_dict({**ruled.to_dict(), "test": {**ruled.to_dict()["test"],
-                                                                "recheck_z": None}})
-    assert restored.test.recheck_z == math.inf

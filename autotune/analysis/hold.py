@@ -40,11 +40,7 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   When a statistic rises above a warning level ``w`` the next check follows at once instead of
   after the interval (variable sampling intervals: M. R. Reynolds Jr., R. W. Amin, J. C. Arnold
   and J. A. Nachlas, Technometrics 30, 181 (1988), from memory), so a step is confirmed within
-  a few check durations. A check whose innovation alone reaches ``RECHECK_Z`` (2 sd) is
-  checked again at once too, whatever the charts (a Shewhart limit beside the CUSUM: J. M.
-  Lucas, J. Quality Technology 14, 51 (1982), from memory, here to look again, never to alarm):
-  the charts' ``k`` is set for the design shift, and a thermal step read at three or four
-  standard deviations may leave them below their warning level.
+  a few check durations.
 - **The plan** (:func:`plan_checks`, in :mod:`autotune.analysis.hold_plan`, called through
   :func:`plan_night`). The interval between
   checks, their shots and the warning level are chosen from the measured noise (the phase and
@@ -131,7 +127,6 @@ from autotune.analysis.hold_plan import (
     flag_probability,
     in_control_rechecks,
     in_control_sooner,
-    in_control_flags_alone,
     next_check,
     plan_checks,
     readable_z,
@@ -158,7 +153,6 @@ __all__ = [
     "flag_probability",
     "in_control_rechecks",
     "in_control_sooner",
-    "in_control_flags_alone",
     "floor_shift_hz",
     "floor_phase_rad",
     "known_cubic",

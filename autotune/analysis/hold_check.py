@@ -122,8 +122,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     too low: the lock cannot read it; one cheap check alone may be unusable by chance); else the
     lock is told the measured
     peak, the statistics take their step, and an alarm (a statistic above its threshold) comes
-    first, then a recheck (above the warning level, or the innovation alone at least
-    ``recheck_z`` from zero: the next check at once), then a correction
+    first, then a recheck (above the warning level: the next check at once), then a correction
     (the lock's prediction of the peak at the middle of the coming interval, bounded by
     ``max_correction_hz`` and ``limits``, applied when at least ``min_correction_hz``).
 
@@ -169,13 +168,11 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     variance = max(offset_sd**2, 1.0)
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
     new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
-    if max(upper, lower, new_upper, new_lower) > test.warning or \
-            abs(innovation.z) >= test.recheck_z:
+    if max(upper, lower, new_upper, new_lower) > test.warning:
         # A change is suspected (a phase chart at or above its warning level before or after
-        # this check, or the innovation alone beyond recheck_z): the check measures the
-        # change, not the drift; the rate keeps what the quiet checks taught it (a held-out
-        # night took a 15 kHz step it followed through a run of rechecks into a drift rate of
-        # +4.4 Hz/s, carried through four retunes).
+        # this check): the check measures the change, not the drift; the rate keeps what the
+        # quiet checks taught it (a held-out night took a 15 kHz step it followed through a run
+        # of rechecks into a drift rate of +4.4 Hz/s, carried through four retunes).
         updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain,
                                           learn_rate=False)
     numbers = (f"phase error {error / math.pi:+.3f} +- {phase_sd / math.pi:.3f} pi: "
@@ -228,15 +225,13 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
                 "inversion": "the inversion dropped below its reference"}[alarm]
         return Assessment(*common, "alarm", alarm, detuning_hz,
                           f"{numbers}: alarm, {side}; retune")
-    charted = new_upper > test.warning or new_lower > test.warning or \
+    rising = new_upper > test.warning or new_lower > test.warning or \
         inversion_stat > test.inversion_warning
-    alone = abs(read["innovation"].z) >= test.recheck_z
     action = "hold"
     if abs(target - detuning_hz) >= settings.min_correction_hz:
         action = "correct"
-    if charted or alone:
-        why = ("a statistic is above its warning level" if charted else
-               f"the innovation alone is beyond {test.recheck_z:.1f} sd") + ": check again at once"
+    if rising:
+        why = "a statistic is above its warning level: check again at once"
         return Assessment(*common, "recheck", None,
                           target if action == "correct" else detuning_hz,
                           f"{numbers}: {why}" + (f"; lock moves the detuning by "

@@ -31,7 +31,6 @@ __all__ = [
     "two_sided_arl",
     "cusum_threshold",
     "SequentialTest",
-    "RECHECK_Z",
     "Innovation",
     "DriftLock",
     "HoldSettings",
@@ -113,17 +112,6 @@ def cusum_threshold(reference: float, in_control_arl: float) -> float:
                                  0.0, high, xtol=1e-9))
 
 
-#: A check whose innovation alone is this many standard deviations from zero is checked again
-#: at once, beside the CUSUM's warning level (a Shewhart limit with a CUSUM, as in J. M. Lucas,
-#: J. Quality Technology 14, 51 (1982), here to look again rather than to alarm; the charts
-#: alone decide the alarm). The charts' ``k`` is set for the design shift, a few kHz: a thermal
-#: step read at three to four standard deviations may leave them below their warning level
-#: from zero (``w + k``, about 2.9) and wait another interval, while the innovation
-#: already says more than the charts admit. Two-sided, 4.6 % of the in-control checks
-#: (scipy.stats.norm.sf(2) * 2), which the planner counts in the checks' beam.
-RECHECK_Z = 2.0
-
-
 @dataclass(frozen=True)
 class SequentialTest:
     """The design of the night's CUSUMs, in units of each statistic's standard deviation.
@@ -135,10 +123,6 @@ class SequentialTest:
         standardised innovations.
     inversion_reference, inversion_threshold, inversion_warning : float
         The same for the one-sided test on the inversion's standardised drop.
-    recheck_z : float
-        A single innovation at least this many standard deviations from zero brings the next
-        check at once, whatever the charts (:data:`RECHECK_Z`; infinite in a plan made before
-        the rule).
     """
 
     reference: float
@@ -147,7 +131,6 @@ class SequentialTest:
     inversion_reference: float
     inversion_threshold: float
     inversion_warning: float
-    recheck_z: float = math.inf
 
     @staticmethod
     def step(upper: float, lower: float, z: float, reference: float) -> tuple[float, float]:

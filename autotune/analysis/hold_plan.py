@@ -23,7 +23,6 @@ from scipy import special
 from autotune.analysis.guided import LockPrior
 from autotune.analysis.hold_lock import (
     RATE_WALK_HZ_PER_S_PER_SQRT_S,
-    RECHECK_Z,
     DriftLock,
     HoldSettings,
     SequentialTest,
@@ -42,7 +41,6 @@ __all__ = [
     "cusum_chain",
     "in_control_rechecks",
     "in_control_sooner",
-    "in_control_flags_alone",
     "SOONER_LEVEL",
     "SOONER_INTERVAL",
     "flag_probability",
@@ -150,10 +148,7 @@ class CheckPlan:
     def from_dict(cls, data: Mapping[str, Any]) -> CheckPlan:
         """Rebuild from :meth:`to_dict`."""
         values = dict(data)
-        test = dict(data["test"])
-        if test.get("recheck_z", 0.0) is None:  # infinite, as JSON writes it
-            test["recheck_z"] = math.inf
-        values["test"] = SequentialTest(**test)
+        values["test"] = SequentialTest(**data["test"])
         for name in ("expected_delay_s", "step_delay_s", "false_alarm_interval_h"):
             if values.get(name) is None:
                 values[name] = math.inf
@@ -250,34 +245,19 @@ def in_control_sooner(reference: float, threshold: float, warning: float,
 
 
 def flag_probability(shift: float, reference: float, threshold: float, warning: float,
-                     cells: int = _CHAIN_CELLS, recheck_z: float = math.inf) -> float:
+                     cells: int = _CHAIN_CELLS) -> float:
     """Probability that the first check after a shift of ``shift`` standard deviations leaves
-    the chart at or above its warning level or reads an innovation of at least ``recheck_z``
-    (a recheck at once, or the alarm), the chart being in its in-control stationary state
-    before (:func:`in_control_rechecks`' chain; the step itself exact:
-    ``P(z >= min(w + k - S, recheck_z))``, ``z ~ N(shift, 1)``)."""
+    the chart at or above its warning level (a recheck at once, or the alarm), the chart being
+    in its in-control stationary state before (:func:`in_control_rechecks`' chain; the step
+    itself exact: ``P(S + z - k >= w)``, ``z ~ N(shift, 1)``)."""
     centres, stationary = _stationary(float(reference), float(threshold), int(cells))
-    needed = np.minimum(warning + reference - centres, float(recheck_z))
-    flagged = special.ndtr(shift - needed)
+    flagged = special.ndtr(centres - warning - reference + shift)
     return float(np.clip(stationary @ flagged, 0.0, 1.0))
-
-
-def in_control_flags_alone(reference: float, threshold: float, warning: float, recheck_z: float,
-                           cells: int = _CHAIN_CELLS) -> float:
-    """Long-run share of a one-sided chart's in-control checks whose innovation reaches
-    ``recheck_z`` while the chart stays below its warning level (rechecked at once for the
-    innovation alone: :data:`~autotune.analysis.hold_lock.RECHECK_Z`); the chain of
-    :func:`in_control_rechecks`, ``P(recheck_z <= z < w + k - S)``."""
-    if not math.isfinite(recheck_z):
-        return 0.0
-    centres, stationary = _stationary(float(reference), float(threshold), int(cells))
-    alone = special.ndtr(warning + reference - centres) - special.ndtr(float(recheck_z))
-    return float(np.clip(stationary @ np.maximum(alone, 0.0), 0.0, 1.0))
 
 
 def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
            interval_s: float, check_s: float, *, late: bool = False,
-           flag: float | None = None, recheck_z: float = math.inf) -> float:
+           flag: float | None = None) -> float:
     """Expected rig time from a shift of ``shift_sd`` standard deviations to the alarm.
 
     Checks come an interval apart until one leaves the statistic at or above the warning
@@ -289,7 +269,7 @@ def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
     if shift_sd - reference <= 0.0:
         return math.inf
     if flag is None:
-        flag = flag_probability(shift_sd, reference, threshold, warning, recheck_z=recheck_z)
+        flag = flag_probability(shift_sd, reference, threshold, warning)
     if flag <= 1e-9:
         return math.inf
     run_length = max(1.0, cusum_arl(shift_sd, reference, threshold))
@@ -329,7 +309,6 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
         h = cusum_threshold(k, 3.0 * checks_between_false_alarms)
         h_inv = cusum_threshold(k_inv, 3.0 * checks_between_false_alarms)
         recheck = min(2.0 * in_control_rechecks(k, h, warning_fraction * h)
-                      + 2.0 * in_control_flags_alone(k, h, warning_fraction * h, RECHECK_Z)
                       + in_control_rechecks(k_inv, h_inv, warning_fraction * h_inv), 0.9)
         sooner = min(2.0 * in_control_sooner(k, h, warning_fraction * h), 0.95 - recheck)
         gap = (1.0 - recheck - sooner) * interval + sooner * SOONER_INTERVAL * interval \
@@ -343,10 +322,10 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
     arl = 1.0 / (2.0 / cusum_arl(0.0, k, h) + 1.0 / cusum_arl(0.0, k_inv, h_inv))
     w, w_inv = warning_fraction * h, warning_fraction * h_inv
     step_sd = step_hz / innovation_sd
-    flag = flag_probability(step_sd, k, h, w, recheck_z=RECHECK_Z) if step_sd > k else 0.0
+    flag = flag_probability(step_sd, k, h, w) if step_sd > k else 0.0
     return {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
             "detuning_stderr_hz": math.sqrt(detuning_var),
-            "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv, RECHECK_Z),
+            "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv),
             "shifts": shifts, "recheck_share": recheck, "sooner_share": sooner,
             "mean_gap_s": gap,
             "step_delay_s": _delay(step_sd, k, h, w, interval, check_s, flag=flag),
@@ -361,8 +340,7 @@ def _expected_delay(row: Mapping[str, Any]) -> float:
     """The mean expected delay over the row's shifts (design shift to capture range)."""
     t = row["test"]
     return float(np.mean([_delay(x / row["innovation_sd_hz"], t.reference, t.threshold,
-                                 t.warning, row["interval_s"], row["check_s"],
-                                 recheck_z=t.recheck_z)
+                                 t.warning, row["interval_s"], row["check_s"])
                           for x in row["shifts"]]))
 
 
@@ -619,8 +597,7 @@ def _plan_reason(row: Mapping[str, Any], why: str, *, share: float, step_hz: flo
             f"{row['detuning_stderr_hz'] / 1e3:.2f} kHz on the peak, the design shift "
             f"{row['design_snr']:.1f} sd of the innovation) every "
             f"{row['interval_s'] / 60:.1f} min of rig time, checked again at once above the "
-            f"warning level or at an innovation of {test.recheck_z:.1f} sd "
-            f"({row['recheck_share']:.0%} of the checks in a quiet night), "
+            f"warning level ({row['recheck_share']:.0%} of the checks in a quiet night), "
             f"after {SOONER_INTERVAL:.0%} of the interval above {SOONER_LEVEL:.0%} of it "
             f"({row['sooner_share']:.0%}; "
             f"{share:.1%} of the beam in all): {why}; test k {test.reference:.2f}, "
