@@ -160,7 +160,9 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
         store = Path(tmp) / "last-good.json"
         result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=store)
         record["calibration"] = {"status": result["status"], "shots": int(result["shots"]),
-                                 "final_ratio": final_truth(rig, result["setpoints"])["ratio"]}
+                                 "final_ratio": final_truth(rig, result["setpoints"])["ratio"],
+                                 "inversion": result.get("inversion"),
+                                 "min_inversion": float(config.min_inversion)}
         if not result["accepted"]:
             record["skipped"] = "calibration not accepted"
             return record

@@ -71,6 +71,10 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
             finite = [d for d in delays if d is not None]
             out[family][label] = {
                 "nights": len(done), "skipped": len(rows) - len(done),
+                # Nights not run because their calibration ended below [acceptance]
+                # min_inversion (a rig fact: no setting the tool may vouch for).
+                "below_min_inversion": sum(_below_min_inversion(r) for r in rows
+                                           if "skipped" in r),
                 "fraction_097_q": quantiles([r["fraction_097"] for r in done]),
                 "fraction_097_all": sorted(r["fraction_097"] for r in done),
                 "fraction_098_q": quantiles([r["fraction_098"] for r in done]),
@@ -101,6 +105,26 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
     return out
 
 
+def _below_min_inversion(run: Mapping[str, Any]) -> bool:
+    """Whether a night's calibration verified an inversion below ``[acceptance] min_inversion``
+    (False when its record does not say: a result file from before it did)."""
+    calibration = run.get("calibration") or {}
+    inversion, floor = calibration.get("inversion"), calibration.get("min_inversion")
+    return inversion is not None and floor is not None and float(inversion) < float(floor)
+
+
+def _not_applicable(row: dict[str, Any], track: Mapping[str, Any]) -> dict[str, Any]:
+    """``row`` of a family with no track night because every drawn rig's calibration ended
+    below ``min_inversion``: "not applicable", saying so with the counts; else ``row``."""
+    drawn = track["nights"] + track["skipped"]
+    below = track.get("below_min_inversion", 0)
+    if track["nights"] or not drawn or below != drawn:
+        return row
+    return {**row, "met": None, "status": "not applicable",
+            "measured": f"not applicable: no drawn rig could be calibrated above min_inversion; "
+                        f"{below} of {drawn} track nights' calibrations verified below it"}
+
+
 def night_targets(summary: Mapping[str, Any], plan: StudyPlan,
                    budget_fraction: float) -> list[dict[str, Any]]:
     """The issue-22 targets, per family of the night study: every night, not the median."""
@@ -110,27 +134,27 @@ def night_targets(summary: Mapping[str, Any], plan: StudyPlan,
         rows = summary[family]
         t, quiet = rows["track"], rows["track (quiet)"]
         least = min(t["fraction_097_all"], default=math.nan)
-        out.append(target_row(
+        out.append(_not_applicable(target_row(
             f"track [{family}]: every night held",
             ">= 95% of the night at >= 0.97 of the moving best (lower end of each interval), "
             "in the worst night",
             f"worst {number_text(least, 3)}, median {number_text(t['fraction_097_q'][1], 3)} "
             f"({t['below_095']} of {t['nights']} nights below 95%)",
-            bool(t["nights"]) and least >= 0.95))
-        out.append(target_row(
+            bool(t["nights"]) and least >= 0.95), t))
+        out.append(_not_applicable(target_row(
             f"track [{family}]: beam within the budget",
             f"no night above budget_fraction ({budget_fraction:.0%}) on holding",
             f"{t['over_budget']} of {t['nights']} nights over, most "
             f"{number_text(t['holding_share_max'] * 100, 2)}%, median "
             f"{number_text(t['holding_share_q'][1] * 100, 2)}%",
-            bool(t["nights"]) and t["over_budget"] == 0))
+            bool(t["nights"]) and t["over_budget"] == 0), t))
         recovery, most = t["recovery_s_q"][1], t["recovery_s_max"]
-        out.append(target_row(
+        out.append(_not_applicable(target_row(
             f"track [{family}]: recovery from a {THERMAL_STEP_HZ / 1e3:g} kHz step",
             "within 5 min of rig time in the median, 15 min in the worst night",
             f"{number_text(recovery / 60, 1)} min median, {number_text(most / 60, 1)} min worst over "
             f"{t['steps']} steps ({t['never_recovered']} never recovered)",
-            bool(t["steps"]) and recovery <= 300.0 and most <= 900.0))
+            bool(t["steps"]) and recovery <= 300.0 and most <= 900.0), t))
         false = quiet["alarms_per_8h_max"]
         out.append(target_row(
             f"track [{family}]: quiet night (no steps, no ramp)",
