@@ -55,7 +55,7 @@ from autotune.run.night_ledger import (
     HOLD,
     NightLedger,
     json_ready,
-    same_setpoints,
+    holds_setpoints,
     stage_begun,
     stage_estimates,
     stage_outcome,
@@ -460,10 +460,10 @@ class Night:
             peak = chain.get("peak") or [target["detuning"], self.settings.max_correction_hz]
             lock = DriftLock.start(clock, target["detuning"], max(float(peak[1]), 1.0),
                                    lock.rate_hz_per_s, lock.rate_stderr_hz_per_s,
-                                   self.config.track.walk_hz_per_sqrt_s)
+                                   self.settings.walk_hz_per_sqrt_s)
         point = int(self.state["point"])
         pending = None
-        if not same_setpoints(target, held):
+        if not holds_setpoints(target, held):
             self.state["counts"]["corrections"] += 1
             pending = {"kind": "correct", "point": point, "from": dict(held), "to": target,
                        "reason": choice.reason}
@@ -583,7 +583,7 @@ class Night:
                 self.session.decide("correct", pending["reason"], point=pending["point"],
                                     setpoints=pending["to"], **{"from": pending["from"],
                                                                 "to": pending["to"]})
-            if not same_setpoints(self.session.current, pending["to"]):
+            if not holds_setpoints(self.session.current, pending["to"]):
                 self.session.move_to(pending["to"], reason=f"lock correction after check "
                                                            f"{pending['point']}")
         self.state = {**self.state, "pending": None}
@@ -593,7 +593,7 @@ class Night:
         nxt = state["next"]
         point = int(nxt["point"])
         held = {k: float(v) for k, v in state["held"].items()}
-        if not same_setpoints(self.session.current, held):
+        if not holds_setpoints(self.session.current, held):
             self.session.move_to(held, reason="back to the held set-points")
         if self._in_flight() != "check":
             self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
@@ -681,7 +681,7 @@ class Night:
                                             clock_s=clock_now, prior=state["prior"],
                                             first_index=int(state["stages"])))
         else:
-            if a.action in ("correct", "recheck") and not same_setpoints(target, held):
+            if a.action in ("correct", "recheck") and not holds_setpoints(target, held):
                 counts["corrections"] += 1
                 new["pending"] = {"kind": "correct", "point": point, "from": held, "to": target,
                                   "reason": a.reason}
@@ -740,7 +740,7 @@ class Night:
             session.decide("stop", reason, status=status, on_stop=on_stop)
         if on_stop == "last_good" and held:
             try:
-                if not same_setpoints(session.current, held):
+                if not holds_setpoints(session.current, held):
                     session.move_to(held, reason="the night ended: leave the rig at the held "
                                                  "set-points")
                 where = "the held set-points"
@@ -756,7 +756,7 @@ class Night:
         """Where a stop signal leaves the rig: (safe confirmed?, detail), as Interrupted carries."""
         held = self.state.get("held") if self.state else None
         if self.config.track.on_stop == "last_good" and held and \
-                self.state.get("mode") == "hold" and same_setpoints(self.session.current, held):
+                self.state.get("mode") == "hold" and holds_setpoints(self.session.current, held):
             self.session.decide("stop", "stopped by signal: the rig stays at the held set-points "
                                 "(track.on_stop = last_good)", status="interrupted",
                                 on_stop="last_good")

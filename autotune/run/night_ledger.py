@@ -13,7 +13,7 @@ from autotune.run.records import (Acquisition, Decision, Estimate, MeasurementOp
                                   StageHeader, parse, parse_all)
 from autotune.wire.rig import measurement_shots
 
-__all__ = ["HOLD", "NightLedger", "stage_begun", "same_setpoints", "json_ready", "stage_records", "stage_outcome",
+__all__ = ["HOLD", "NightLedger", "stage_begun", "holds_setpoints", "json_ready", "stage_records", "stage_outcome",
            "stage_estimates"]
 
 # Measurement label of the night's checks.
@@ -80,7 +80,10 @@ class NightLedger:
         return getattr(self._journal, name)
 
 
-def same_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+def holds_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
+    """Whether ``a`` holds every set-point of ``b`` (``a`` may name more), each equal to a
+    relative 1e-9; a set-point ``a`` does not name is not held. Compare
+    :func:`autotune.report.model.setpoints_equal`, which asks for the same names both ways."""
     return all(abs(float(a.get(k, math.nan)) - float(v)) <= 1e-9 * max(1.0, abs(float(v)))
                for k, v in b.items())
 
@@ -147,7 +150,7 @@ def stage_outcome(records: Sequence[Mapping[str, Any]], prior: Mapping[str, Any]
     if final is None:
         return None
     setpoints = {k: float(v) for k, v in final["setpoints"].items()}
-    at = [r for r in estimates if same_setpoints(r["setpoints"], setpoints)]
+    at = [r for r in estimates if holds_setpoints(r["setpoints"], setpoints)]
     last = at[-1] if at else estimates[-1]
     learned = final.get("learned")
     return {"status": final["what"],
