@@ -131,6 +131,11 @@ def format_table(study: Mapping[str, Any]) -> str:
     lines.append(f"code: commit {str(code.get('commit'))[:10]}" + (
         ", with uncommitted changes to " + ", ".join(code["modified_files"])
         if code.get("modified_files") else ""))
+    rederived = study.get("targets_rederived")
+    if rederived:
+        lines.append(f"targets and summaries re-derived from the stored runs (unchanged) by the "
+                     f"rules of commit {str(rederived.get('commit'))[:10]}: "
+                     f"{rederived.get('why', '')}")
     lines.append("scenario families (seeded draws, never hand-picked):")
     main_ranges = study["scenario_ranges"]
     for name in families:

@@ -290,20 +290,35 @@ def _result(outcome: StageOutcome, command: str, run_dir: Path, clock_start: flo
     return result
 
 
+def _calibration_box_and_start(config: RunConfig
+                               ) -> tuple[dict[str, tuple[float, float]], dict[str, float]]:
+    """A calibration's search box (each set-point's search range) and its first point: the
+    nominal 2 pi velocity and zero detuning, clipped into the box (a set-point without a
+    nominal value starts at the middle of its range)."""
+    box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
+    nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
+    start = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
+             for name, (lo, hi) in box.items()}
+    return box, start
+
+
+def _retune_centre(prepared: Prepared) -> dict[str, float]:
+    """A retune's centre and first point: the last good calibration's set-points."""
+    assert prepared.last_good is not None
+    return {sp.name: float(prepared.last_good["setpoints"][sp.name])
+            for sp in prepared.config.setpoints}
+
+
 def _guided_args(prepared: Prepared, session: Session,
                  observer: Callable[..., None] | None) -> dict[str, Any]:
     config = prepared.config
     s = config.search
     if prepared.command == "calibrate":
-        box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
-        nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
-        start = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
-                 for name, (lo, hi) in box.items()}
+        box, start = _calibration_box_and_start(config)
         return {"stage": "calibrate", "box": box, "start": start,
                 "budget": Budget(s.max_points, s.max_shots, s.max_rig_time_s, s.min_points),
                 "observer": observer}
-    assert prepared.last_good is not None
-    centre = {sp.name: float(prepared.last_good["setpoints"][sp.name]) for sp in config.setpoints}
+    centre = _retune_centre(prepared)
     r = config.retune
     return {"stage": "retune", "box": retune_box(config, centre, session.limits),
             "start": centre, "prior": prepared.last_good.get("lock_prior"),
@@ -317,10 +332,7 @@ def _stage_args(prepared: Prepared, session: Session,
                 observer: Callable[..., None] | None) -> dict[str, Any]:
     config = prepared.config
     if prepared.command == "calibrate":
-        nominal = {"velocity": config.nominal.two_pi_velocity, "detuning": 0.0}
-        box = {sp.name: (sp.search_min, sp.search_max) for sp in config.setpoints}
-        first = {name: min(max(nominal.get(name, (lo + hi) / 2), lo), hi)
-                 for name, (lo, hi) in box.items()}
+        box, first = _calibration_box_and_start(config)
         s = config.search
         return {
             "stage": "calibrate", "box": box,
@@ -328,8 +340,7 @@ def _stage_args(prepared: Prepared, session: Session,
             "n_initial_points": s.n_initial_points, "initial_points": [first],
             "observer": observer, "refine": True,
         }
-    assert prepared.last_good is not None
-    centre = {sp.name: float(prepared.last_good["setpoints"][sp.name]) for sp in config.setpoints}
+    centre = _retune_centre(prepared)
     r = config.retune
     return {
         "stage": "retune", "box": retune_box(config, centre, session.limits),
