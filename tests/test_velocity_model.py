@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 from scipy import optimize
 
 from autotune.analysis.velocity_model import fit_inversion_curve
@@ -81,3 +82,24 @@ def test_the_data_override_a_proxy_that_disagrees():
         V_REF, sorted(set(xs)))
     assert curve.widened
     assert curve.velocity_of(curve.vertex()) > V_ABS + 10.0
+
+
+def test_the_log_evidence_is_the_gaussian_marginal_likelihood():
+    """The evidence the discrepancy is chosen by is log N(y; X m0, D + X S0 X^T) (Bishop 2006,
+    eq. 3.86; Rasmussen and Williams 2006, eq. 2.30), evaluated here by
+    scipy.stats.multivariate_normal, up to the constant -n/2 log(2 pi) the code omits."""
+    from scipy import stats
+
+    from autotune.analysis.velocity_model import _posterior
+    rng = np.random.default_rng(3)
+    x = np.linspace(-0.08, 0.08, 6)
+    design = np.stack([np.ones(6), x, x * x], axis=1)
+    values = 0.7 + 0.3 * x - 3.0 * x * x + 0.02 * rng.standard_normal(6)
+    variances = np.full(6, 0.02**2)
+    prior_mean = np.array([0.7, 0.1, -2.0])
+    prior_cov = np.diag([1.0, 0.07, 0.35]) ** 2
+    _, _, evidence = _posterior(design, values, variances, prior_mean, prior_cov)
+    reference = stats.multivariate_normal.logpdf(
+        values, mean=design @ prior_mean, cov=np.diag(variances) + design @ prior_cov @ design.T)
+    assert evidence - 0.5 * 6 * math.log(2.0 * math.pi) == pytest.approx(reference, rel=1e-10)
+
