@@ -9,7 +9,7 @@ from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from autotune.errors import LimitError
-from autotune.run.guard import effective_limit
+from autotune.run.guard import effective_limit, holds_setpoints, setpoint_in_force
 from autotune.run.loop import plan_moves, ramsey_phases
 from autotune.wire.protocol import SetpointLimit
 
@@ -125,3 +125,21 @@ def test_quadratic_peak_falls_back_to_the_best_point() -> None:
 
     assert quadratic_peak([0.0, 1.0, 2.0], [0.5, 0.4, 0.6], [0.01] * 3) == 2.0
     assert quadratic_peak([0.0, 1.0, 2.0], [0.1, 0.2, 0.3], [0.01] * 3) == 2.0
+
+
+def test_one_equality_of_setpoints_holds_to_float_rounding_and_not_beyond():
+    """A set-point is in force when the value reported equals the one wanted to float rounding
+    (a relative 1e-9), never when it is unknown; a session holds every set-point it was asked
+    for and may know more."""
+    # Source: common practice (compare floats within a relative tolerance; Python's
+    # math.isclose with rel_tol=1e-9 is the reference here); an unknown state is not assumed.
+    for wanted in (505.0, -12_000.0, 0.3, 0.0):
+        for reported in (wanted, wanted * (1 + 5e-10) + 1e-10, wanted + 1e-6 * max(1, abs(wanted))):
+            expected = math.isclose(reported, wanted, rel_tol=1e-9, abs_tol=1e-9)
+            assert setpoint_in_force(reported, wanted) is expected, (reported, wanted)
+        assert setpoint_in_force(None, wanted) is False
+    held = {"velocity": 505.0, "detuning": 2_000.0}
+    assert holds_setpoints({**held, "extra": 1.0}, held)
+    assert not holds_setpoints({"velocity": 505.0}, held)
+    assert not holds_setpoints({}, held)
+    assert holds_setpoints({}, {})

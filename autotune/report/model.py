@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from autotune.errors import JournalError
+from autotune.run.guard import holds_setpoints
 from autotune.run.journal import (JOURNAL_NAME, MANIFEST_NAME, RESULT_NAME, JournalDamage,
                               read_journal_prefix, read_json)
 from autotune.progress import setpoints_text
@@ -273,16 +274,14 @@ def read_setpoints(raw: Mapping[str, Any]) -> dict[str, float]:
 
 def setpoints_equal(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
     """Whether two sets of set-points are the same: the same names, each value equal to
-    float rounding (a relative 1e-9, absolute below 1).
+    float rounding (:func:`autotune.run.guard.setpoint_in_force`).
 
     Parameters
     ----------
     a, b : Mapping of str to float
         Set-points (SI units: m/s, Hz).
     """
-    if set(a) != set(b):
-        return False
-    return all(abs(a[k] - b[k]) <= 1e-9 * max(1.0, abs(b[k])) for k in a)
+    return set(a) == set(b) and holds_setpoints(a, b)
 
 
 def _is_run_folder(path: Path) -> bool:

@@ -17,7 +17,7 @@ from autotune.errors import ConfigError, LimitError
 from autotune.wire.protocol import STEP_TOLERANCE, SetpointLimit
 
 __all__ = ["Budget", "configured_limit", "effective_limit", "effective_limits", "plan_moves",
-           "retune_box"]
+           "retune_box", "setpoint_in_force", "holds_setpoints"]
 
 
 @dataclass(frozen=True)
@@ -28,6 +28,20 @@ class Budget:
     max_shots: int
     max_rig_time_s: float
     min_points: int
+
+
+def setpoint_in_force(reported: float | None, wanted: float) -> bool:
+    """Whether a set-point value reported (or journaled) is the one wanted, to float rounding
+    (a relative 1e-9, absolute below 1): the one equality of set-points in autotune. None (not
+    known) is not in force."""
+    return reported is not None and abs(float(reported) - float(wanted)) <= \
+        1e-9 * max(1.0, abs(float(wanted)))
+
+
+def holds_setpoints(current: Mapping[str, float], wanted: Mapping[str, float]) -> bool:
+    """Whether ``current`` holds every set-point of ``wanted`` (``current`` may name more),
+    each :func:`setpoint_in_force`; a set-point ``current`` does not name is not held."""
+    return all(setpoint_in_force(current.get(k), v) for k, v in wanted.items())
 
 
 def configured_limit(sp: Any) -> SetpointLimit:

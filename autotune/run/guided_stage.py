@@ -304,7 +304,7 @@ class _GuidedStage(StageRun):
         if not verdict.still_good:
             return None
         check_m = next(m for (label, _), m in self.measurements.items() if label == "check")
-        self.leave_at(check_m.setpoints, "leave the rig at the checked set-points")
+        self.session.ensure_at(check_m.setpoints, "leave the rig at the checked set-points")
         session.decide("still_good", verdict.reason, setpoints=check_m.setpoints,
                        predicted_shortfall=shortfall_numbers(verdict.shortfall))
         return StageOutcome("still_good", dict(check_m.setpoints), check,
@@ -421,7 +421,7 @@ class _GuidedStage(StageRun):
         session, config, lock = self.session, self.config, self.lock
         assert self.final is not None
         chosen, estimate = self.final
-        self.leave_at(chosen, "leave the rig at the verified set-points")
+        self.session.ensure_at(chosen, "leave the rig at the verified set-points")
         learned = lock.learned_prior(clock_s=session.clock)
         # The stage vouches for its choice only with every observation told, the
         # verification's included: the bound at the chosen set-points now, the lock, the box,

@@ -37,7 +37,7 @@ from autotune.analysis.hold import (
 from autotune.run.journal import utc_now, write_json_atomic
 from autotune.run.records import (Decision, Hold, MeasurementOpened, Start, decisions, of_type,
                                   parse_all)
-from autotune.run.guard import Budget, retune_box
+from autotune.run.guard import Budget, holds_setpoints, retune_box
 from autotune.run.guided_stage import run_guided_stage
 from autotune.run.replay import replay_records
 from autotune.run.session import Measurement, Session
@@ -55,7 +55,6 @@ from autotune.run.night_ledger import (
     HOLD,
     NightLedger,
     json_ready,
-    holds_setpoints,
     stage_begun,
     stage_estimates,
     stage_outcome,
@@ -583,9 +582,8 @@ class Night:
                 self.session.decide("correct", pending["reason"], point=pending["point"],
                                     setpoints=pending["to"], **{"from": pending["from"],
                                                                 "to": pending["to"]})
-            if not holds_setpoints(self.session.current, pending["to"]):
-                self.session.move_to(pending["to"], reason=f"lock correction after check "
-                                                           f"{pending['point']}")
+            self.session.ensure_at(pending["to"], reason=f"lock correction after check "
+                                                         f"{pending['point']}")
         self.state = {**self.state, "pending": None}
 
     def _hold_once(self) -> None:
@@ -593,8 +591,7 @@ class Night:
         nxt = state["next"]
         point = int(nxt["point"])
         held = {k: float(v) for k, v in state["held"].items()}
-        if not holds_setpoints(self.session.current, held):
-            self.session.move_to(held, reason="back to the held set-points")
+        self.session.ensure_at(held, reason="back to the held set-points")
         if self._in_flight() != "check":
             self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
                              "the next check" + (" (recheck)" if nxt.get("recheck") else
@@ -740,9 +737,8 @@ class Night:
             session.decide("stop", reason, status=status, on_stop=on_stop)
         if on_stop == "last_good" and held:
             try:
-                if not holds_setpoints(session.current, held):
-                    session.move_to(held, reason="the night ended: leave the rig at the held "
-                                                 "set-points")
+                session.ensure_at(held, reason="the night ended: leave the rig at the held "
+                                               "set-points")
                 where = "the held set-points"
             except RigError as exc:
                 session.go_safe(f"the night ended; the move to the held set-points failed: {exc}")

@@ -8,12 +8,13 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from autotune.run.guard import holds_setpoints
 from autotune.run.journal import Journal
 from autotune.run.records import (Acquisition, Decision, Estimate, MeasurementOpened, Record,
                                   StageHeader, parse, parse_all)
 from autotune.wire.rig import measurement_shots
 
-__all__ = ["HOLD", "NightLedger", "stage_begun", "holds_setpoints", "json_ready", "stage_records", "stage_outcome",
+__all__ = ["HOLD", "NightLedger", "stage_begun", "json_ready", "stage_records", "stage_outcome",
            "stage_estimates"]
 
 # Measurement label of the night's checks.
@@ -78,14 +79,6 @@ class NightLedger:
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self._journal, name)
-
-
-def holds_setpoints(a: Mapping[str, float], b: Mapping[str, float]) -> bool:
-    """Whether ``a`` holds every set-point of ``b`` (``a`` may name more), each equal to a
-    relative 1e-9; a set-point ``a`` does not name is not held. Compare
-    :func:`autotune.report.model.setpoints_equal`, which asks for the same names both ways."""
-    return all(abs(float(a.get(k, math.nan)) - float(v)) <= 1e-9 * max(1.0, abs(float(v)))
-               for k, v in b.items())
 
 
 def json_ready(value: Any) -> Any:

@@ -34,7 +34,7 @@ from autotune.run.records import Move, MoveUnconfirmed, Request, Safe, SafeFaile
 from autotune.wire.protocol import new_msg_id
 from autotune.wire.rig import FIELDS, Rig, measurement_shots
 from autotune.progress import SEARCH_DONE_LABELS, ProgressObserver, StageProgress
-from autotune.run.guard import Budget, effective_limits, plan_moves
+from autotune.run.guard import Budget, effective_limits, holds_setpoints, plan_moves, setpoint_in_force
 
 __all__ = ["Tally", "Measurement", "NOT_SEARCH_STEPS", "ramsey_phases", "call_with_recovery",
            "Session"]
@@ -109,11 +109,6 @@ class _ProgressPlan:
         """Keep the highest inversion measured so far."""
         if self.best is None or estimate.inversion > self.best[0].inversion:
             self.best = (estimate, {k: float(v) for k, v in setpoints.items()})
-
-
-def _same_value(reported: float | None, wanted: float) -> bool:
-    """A set-point in force equals the one sent (to float rounding)."""
-    return reported is not None and abs(float(reported) - wanted) <= 1e-9 * max(1.0, abs(wanted))
 
 
 def _log_decision(what: str, reason: str, *, level: str = "info", **fields: Any) -> None:
@@ -436,7 +431,7 @@ class Session:
                 (getattr(self.description, "safe_setpoints", None) or {}).items()}
         for msg_id in sorted(self._unresolved_safe):
             self._unresolved_safe.discard(msg_id)
-            if safe and all(_same_value(self.current.get(n), v) for n, v in safe.items()):
+            if safe and all(setpoint_in_force(self.current.get(n), v) for n, v in safe.items()):
                 self.journal.append("safe", setpoints=dict(self.current), msg_id=msg_id,
                                     reconciled=True,
                                     reason="its reply was never received; the rig's status "
@@ -448,7 +443,7 @@ class Session:
                                     reason="a resume asked the rig where it is")
         for msg_id, step in list(self._unresolved_moves.items()):
             del self._unresolved_moves[msg_id]
-            at_step = all(_same_value(self.current.get(name), value)
+            at_step = all(setpoint_in_force(self.current.get(name), value)
                           for name, value in step.items())
             if at_step:
                 self.journal.append("move", setpoints=step, applied=dict(self.current),
@@ -503,10 +498,10 @@ class Session:
 
     def ensure_at(self, target: Mapping[str, float], reason: str) -> None:
         """Move to ``target`` (:meth:`move_to`, ``reason`` journaled) unless every one of its
-        set-points is known to be in force already, exactly as sent. A set-point this session
-        does not know (none learned yet, or forgotten after a failed move or a mismatch) is
-        not in force: the move is made."""
-        if any(self.current.get(k) != v for k, v in target.items()):
+        set-points is known to be in force already (:func:`~autotune.run.guard.holds_setpoints`,
+        to float rounding). A set-point this session does not know (none learned yet, or
+        forgotten after a failed move or a mismatch) is not in force: the move is made."""
+        if not holds_setpoints(self.current, target):
             self.move_to(target, reason=reason)
 
     def _move_once(self, target: Mapping[str, float], reason: str) -> None:

@@ -274,11 +274,6 @@ class StageRun:
                                         shots_per_phase=shots_per_phase)
         return self.measurements[key]
 
-    def leave_at(self, setpoints: Mapping[str, float], reason: str) -> None:
-        """Leave the rig at ``setpoints`` (``reason`` journaled if it moves): see
-        :meth:`autotune.run.session.Session.ensure_at`."""
-        self.session.ensure_at(setpoints, reason)
-
 
 class _AskTellStage(StageRun):
     """One ask/tell stage as it runs: what its journal already holds (a resume) and the steps
@@ -360,7 +355,7 @@ class _AskTellStage(StageRun):
             session.decide("still_good", f"inversion {check_estimate.inversion:.3f} (upper "
                            f"{check_estimate.inversion_high:.3f}) reaches {still_good_above:.3f}",
                            setpoints=check_setpoints)
-            self.leave_at(check_setpoints, "leave the rig at the checked set-points")
+            self.session.ensure_at(check_setpoints, "leave the rig at the checked set-points")
             return check_estimate, StageOutcome(
                 "still_good", check_setpoints, check_estimate, "check passed", 0,
                 session.tally.shots, session.tally.rig_time_s, True, check_estimate)
@@ -460,7 +455,7 @@ class _AskTellStage(StageRun):
         if final is None:
             final = session.measure(verify, self.seed_for("verify"))
         else:
-            self.leave_at(chosen, "leave the rig at the verified set-points")
+            self.session.ensure_at(chosen, "leave the rig at the verified set-points")
         accepted = final.inversion >= config.min_inversion
         status = "accepted" if accepted else "below_acceptance"
         reason = (f"verified inversion {final.inversion:.3f} vs acceptance "
