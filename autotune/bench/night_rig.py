@@ -159,8 +159,10 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
     with tempfile.TemporaryDirectory(prefix="autotune-bench-hold-") as tmp:
         store = Path(tmp) / "last-good.json"
         result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=store)
+        truth = final_truth(rig, result["setpoints"])
         record["calibration"] = {"status": result["status"], "shots": int(result["shots"]),
-                                 "final_ratio": final_truth(rig, result["setpoints"])["ratio"],
+                                 "final_ratio": truth["ratio"],
+                                 "final_true_best": truth["best"],
                                  "inversion": result.get("inversion"),
                                  "min_inversion": float(config.min_inversion)}
         if not result["accepted"]:

@@ -15,7 +15,7 @@ from autotune.bench.jobs import config_spec
 from autotune.bench.night_rig import night_steps
 from autotune.bench.plan import NIGHT_SCHEDULES_S, StudyPlan, THERMAL_STEP_HZ, family_seed
 from autotune.bench.scenarios import FAMILIES, make_scenarios
-from autotune.bench.summaries import quantiles, target_row
+from autotune.bench.summaries import quantiles, target_row, true_best_below
 from autotune.bench.tables import number_text
 
 
@@ -71,7 +71,7 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
             finite = [d for d in delays if d is not None]
             out[family][label] = {
                 "nights": len(done), "skipped": len(rows) - len(done),
-                # Nights not run because their calibration ended below [acceptance]
+                # Nights not run on rigs whose true best lies below [acceptance]
                 # min_inversion (a rig fact: no setting the tool may vouch for).
                 "below_min_inversion": sum(_below_min_inversion(r) for r in rows
                                            if "skipped" in r),
@@ -106,23 +106,22 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
 
 
 def _below_min_inversion(run: Mapping[str, Any]) -> bool:
-    """Whether a night's calibration verified an inversion below ``[acceptance] min_inversion``
-    (False when its record does not say: a result file from before it did)."""
+    """Whether a night's rig cannot reach ``[acceptance] min_inversion`` at its true best
+    (:func:`~autotune.bench.summaries.true_best_below`)."""
     calibration = run.get("calibration") or {}
-    inversion, floor = calibration.get("inversion"), calibration.get("min_inversion")
-    return inversion is not None and floor is not None and float(inversion) < float(floor)
+    return true_best_below(calibration.get("final_true_best"), calibration.get("min_inversion"))
 
 
 def _not_applicable(row: dict[str, Any], track: Mapping[str, Any]) -> dict[str, Any]:
-    """``row`` of a family with no track night because every drawn rig's calibration ended
-    below ``min_inversion``: "not applicable", saying so with the counts; else ``row``."""
+    """``row`` of a family with no track night because no drawn rig reaches ``min_inversion``
+    at its true best: "not applicable", saying so with the counts; else ``row``."""
     drawn = track["nights"] + track["skipped"]
     below = track.get("below_min_inversion", 0)
     if track["nights"] or not drawn or below != drawn:
         return row
     return {**row, "met": None, "status": "not applicable",
-            "measured": f"not applicable: no drawn rig could be calibrated above min_inversion; "
-                        f"{below} of {drawn} track nights' calibrations verified below it"}
+            "measured": f"not applicable: no drawn rig reaches min_inversion at its true best "
+                        f"({below} of {drawn} track nights' rigs below it)"}
 
 
 def night_targets(summary: Mapping[str, Any], plan: StudyPlan,

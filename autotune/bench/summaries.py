@@ -74,14 +74,19 @@ def summarise(rows: Sequence[Mapping[str, Any]], oracle_shots: float) -> dict[st
     return summary
 
 
+def true_best_below(true_best: float | None, min_inversion: float | None) -> bool:
+    """Whether a rig cannot show ``[acceptance] min_inversion`` anywhere: its true best
+    inversion (the simulator's truth, read by the study only) lies below the bar, so no
+    calibration of it may be accepted, and no retune or night can follow. False when either is
+    not known (a result file from before the study kept them). The one rule of the study's
+    "not applicable": a refusal on a rig that can reach the bar stays a miss."""
+    return true_best is not None and min_inversion is not None and \
+        math.isfinite(true_best) and true_best < min_inversion
+
+
 def rig_below_acceptance(record: Mapping[str, Any], min_inversion: float | None) -> bool:
-    """Whether a scenario's rig cannot show ``[acceptance] min_inversion`` anywhere: its true
-    best inversion (the simulator's truth, read by the study only) lies below the bar, so no
-    calibration of it may be accepted and no retune can follow."""
-    if min_inversion is None:
-        return False
-    best = record.get("calibrate", {}).get("final_true_best")
-    return best is not None and math.isfinite(best) and best < min_inversion
+    """:func:`true_best_below` of a calibration-study scenario (its ``calibrate`` record)."""
+    return true_best_below(record.get("calibrate", {}).get("final_true_best"), min_inversion)
 
 
 def summarise_retunes(records: Sequence[Mapping[str, Any]], oracle_shots: float,
