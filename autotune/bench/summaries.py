@@ -11,6 +11,7 @@ import numpy as np
 from scipy.stats import binomtest
 
 from autotune.bench.plan import LOWER_THRESHOLD, THERMAL_STEP_HZ, THRESHOLD
+from autotune.report.model import number_at
 
 #: No stage may be accepted below this fraction of the true best (issue 18's target).
 ACCEPT_FLOOR = 0.95
@@ -131,8 +132,8 @@ def summarise_confidence(records: Sequence[Mapping[str, Any]], oracle_shots: flo
     """
     stages = [r[kind] for r in records for kind in ("calibrate", "retune")
               if kind in r and "skipped" not in r[kind]]
-    stated = [s for s in stages if _finite(s.get("predicted_shortfall_upper"))
-              and _finite(s.get("true_shortfall"))]
+    stated = [s for s in stages if math.isfinite(number_at(s, "predicted_shortfall_upper"))
+              and math.isfinite(number_at(s, "true_shortfall"))]
     covered = sum(s["true_shortfall"] <= s["predicted_shortfall_upper"] for s in stated)
     if stated:
         ci = binomtest(covered, len(stated)).proportion_ci(confidence_level=confidence,
@@ -159,10 +160,6 @@ def summarise_confidence(records: Sequence[Mapping[str, Any]], oracle_shots: flo
                                         for r in records),
         "min_inversion": min_inversion,
     }
-
-
-def _finite(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
 
 
 def allowed_misses(runs: int) -> int:
