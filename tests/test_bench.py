@@ -610,6 +610,7 @@ def test_the_night_study_runs_every_method_on_every_scenario(night_study):
         if "skipped" in run:
             assert run["skipped"] == "calibration not accepted"
             assert run["calibration"]["status"] != "accepted"
+            assert run["calibration"]["reason"]   # the calibration's one-line reason, kept
             continue
         assert 0.0 <= run["fraction_098"] <= run["fraction_097"] <= 1.0
         assert 0.0 < run["holding_share"] < 1.0
@@ -635,6 +636,26 @@ def test_the_night_targets_are_said_plainly(night_study):
     assert "worst track night: scenario" in table and "nights over the 5% budget" in table
     for t in targets:
         assert f"[{t['status']}] {t['name']}" in table
+
+
+def test_a_night_that_never_started_is_listed_with_its_reason():
+    """The table names every night whose calibration was not accepted, with the calibration's
+    figures and its one-line reason (issue 18: a refused stage says why; issue 22: every night
+    of every family is shown), and says nothing of nights that ran. Made-up records."""
+    from autotune.bench.tables import nights_not_run
+
+    refused = {"family": "velocity_physics", "scenario": 1, "method": "track", "quiet": False,
+               "skipped": "calibration not accepted",
+               "calibration": {"status": "below_acceptance", "inversion": 0.492,
+                               "final_true_best": 0.510, "final_ratio": 0.9995,
+                               "reason": "verified inversion 0.492 below min_inversion 0.5"}}
+    ran = {"family": "velocity_physics", "scenario": 0, "method": "track", "quiet": True,
+           "calibration": {"status": "accepted"}}
+    other = dict(refused, family="main")
+    lines = nights_not_run([refused, ran, other], "velocity_physics")
+    assert lines == ["    not run: scenario 1 track: calibration not accepted (below_acceptance; "
+                     "verified 0.492, true best 0.510, 1.000 of it): verified inversion 0.492 "
+                     "below min_inversion 0.5"]
 
 
 @_READS_NIGHT_STUDY

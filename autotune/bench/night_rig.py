@@ -164,7 +164,8 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
                                  "final_ratio": truth["ratio"],
                                  "final_true_best": truth["best"],
                                  "inversion": result.get("inversion"),
-                                 "min_inversion": float(config.min_inversion)}
+                                 "min_inversion": float(config.min_inversion),
+                                 "reason": result.get("reason") or ""}
         if not result["accepted"]:
             record["skipped"] = "calibration not accepted"
             return record

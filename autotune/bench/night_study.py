@@ -16,18 +16,12 @@ from autotune.bench.night_rig import night_steps
 from autotune.bench.plan import NIGHT_SCHEDULES_S, StudyPlan, THERMAL_STEP_HZ, family_seed
 from autotune.bench.scenarios import FAMILIES, make_scenarios
 from autotune.bench.summaries import quantiles, target_row, true_best_below
-from autotune.bench.tables import number_text
+from autotune.bench.tables import night_label, number_text
 
 
 # --------------------------------------------------------------------------------------------
 # The night study (section 6)
 # --------------------------------------------------------------------------------------------
-
-
-def night_label(run: Mapping[str, Any]) -> str:
-    if run["method"] == "track":
-        return "track (quiet)" if run["quiet"] else "track"
-    return f"schedule {float(run['interval_s']) / 60:g} min"
 
 
 def night_labels() -> list[str]:

@@ -70,6 +70,7 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
                 f"most {t['holding_share_max']:.2%}; nights over the {budget:.0%} budget: "
                 f"{t['over_budget']} of {t['nights']}; recovery worst "
                 f"{number_text(t['recovery_s_max'] / 60, 1)} min")
+        lines.extend(nights_not_run(night.get("runs") or [], family))
         lines.append(header)
         for label, row in night["summary"][family].items():
             if not row["nights"]:
@@ -85,6 +86,34 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
                 f"{'-' if quiet or not row['steps'] else _q([x / 60 if isinstance(x, float) else x for x in recovery], 1):>20} "
                 f"{'-' if not label.startswith('track') or quiet or not row['steps'] else _q([x / 60 if isinstance(x, float) else x for x in detection], 1):>20} "
                 f"{number_text(row['alarms_per_8h_q'][1], 2) if quiet else '-':>8}")
+    return lines
+
+
+def night_label(run: Mapping[str, Any]) -> str:
+    """The night study's name for a night's method: ``track``, ``track (quiet)`` or
+    ``schedule N min``."""
+    if run["method"] == "track":
+        return "track (quiet)" if run["quiet"] else "track"
+    return f"schedule {float(run['interval_s']) / 60:g} min"
+
+
+def nights_not_run(runs: Sequence[Mapping[str, Any]], family: str) -> list[str]:
+    """One line per night of ``family`` that never started, with its calibration's figures and
+    the one-line reason the calibration gave (records before that field say only the status)."""
+    lines = []
+    for run in runs:
+        if run.get("family") != family or "skipped" not in run:
+            continue
+        cal = run.get("calibration") or {}
+        figures = ", ".join(text for text in (
+            f"verified {cal['inversion']:.3f}" if cal.get("inversion") is not None else "",
+            f"true best {cal['final_true_best']:.3f}" if cal.get("final_true_best") is not None
+            else "",
+            f"{cal['final_ratio']:.3f} of it" if cal.get("final_ratio") is not None else "",
+        ) if text)
+        lines.append(f"    not run: scenario {run['scenario']} {night_label(run)}: {run['skipped']} "
+                     f"({cal.get('status', '?')}; {figures})"
+                     + (f": {cal['reason']}" if cal.get("reason") else ""))
     return lines
 
 
