@@ -147,3 +147,135 @@ def test_closed_loop_locks_on_a_simulated_rig_with_a_poor_source(p1, seed):
     ratio = truth["inversion"] / truth["best"]["inversion"]
     assert ratio >= 0.97
     assert 1.0 - ratio <= lock.shortfall(clock_s=rig.clock, point=chosen).upper
+
+
+# -- the detuning term's two laws averaged (Bayesian model averaging) ----------------------------
+
+def test_law_weights_are_posterior_model_probabilities():
+    """Posterior model probabilities P(M_k | y) = B_k P(M_k) / sum_j B_j P(M_j) (Kass and Raftery,
+    J. Am. Stat. Assoc. 90, 773 (1995), section 2; Hoeting et al., Statistical Science 14, 382
+    (1999), eq. 2). Worked values: a Bayes factor of e at even prior odds gives e / (1 + e) =
+    0.7311; 2 ln B = 6 (the edge of Kass and Raftery's 'strong', from memory) gives
+    1 / (1 + e^-3) = 0.9526; the same evidences offset by 1000 (one shared constant) give the
+    same weights (scipy.special.logsumexp keeps them finite); prior odds 1 : 3 multiply the
+    Bayes factor."""
+    from scipy.special import logsumexp
+    from autotune.analysis.lock_fit import law_weights
+
+    assert law_weights([0.0, 1.0]) == pytest.approx([1.0 / (1.0 + math.e), math.e / (1.0 + math.e)], abs=1e-12)
+    assert law_weights([1000.0, 1003.0])[1] == pytest.approx(1.0 / (1.0 + math.exp(-3.0)), abs=1e-12)
+    assert law_weights([-1.1, -0.5], [0.25, 0.75])[1] == pytest.approx(
+        3.0 * math.exp(0.6) / (1.0 + 3.0 * math.exp(0.6)), abs=1e-12)
+    evidence, prior = np.array([-3.2, 0.4, -1.0]), np.array([0.2, 0.5, 0.3])
+    expected = np.exp(evidence + np.log(prior) - logsumexp(evidence + np.log(prior)))
+    assert law_weights(evidence, prior) == pytest.approx(expected, abs=1e-12)
+    # A model of prior probability 0 gets no weight, whatever its evidence.
+    assert law_weights([0.0, 50.0], [1.0, 0.0]) == pytest.approx([1.0, 0.0], abs=1e-12)
+    for bad in (([math.nan, 0.0], None), ([0.0, 1.0], [0.0, 0.0]), ([0.0, 1.0], [1.0, -0.1]),
+                ([0.0, 1.0], [1.0])):
+        with pytest.raises(ValueError):
+            law_weights(*bad)
+
+
+@pytest.mark.parametrize("mean, sd, q", [(0.1, 0.2, 0.0), (-0.3, 0.12, 0.0), (0.05, 0.3, 0.45), (0.0, 0.06, 0.47)])
+def test_one_laws_loss_bound_is_the_noncentral_chi_square_quantile(mean, sd, q):
+    """One law: the bound of 1 - cos(eps / 2) is that of |psi|, psi ~ N(mean, sd^2), whose square
+    over sd^2 is noncentral chi-square with one degree of freedom and noncentrality (mean/sd)^2
+    (scipy.stats.ncx2), read through the mixture's law (eps = psi - arcsin(q sin psi))."""
+    from scipy import stats
+    from autotune.analysis.lock_fit import averaged_loss_upper
+
+    psi = sd * math.sqrt(stats.ncx2.ppf(0.95, 1, (mean / sd) ** 2))
+    expected = 1.0 - math.cos(0.5 * float(mixture_phase_error(psi, q)))
+    assert averaged_loss_upper(0.95, [1.0], [mean], [sd], [q]) == pytest.approx(expected, rel=1e-8)
+
+
+def test_averaged_loss_bound_is_the_quantile_of_the_weighted_mixture():
+    """Two laws (pure photon, q = 0; mixture, q = 0.47) weighted 0.3 : 0.7: the bound x solves
+    0.3 F_pure(x) + 0.7 F_mix(x) = 0.95 with each F a difference of scipy.stats.norm CDFs, agrees
+    with the 95 % quantile of 400,000 draws of the mixture (numpy), and lies between the two laws'
+    own bounds: the weighted mixture, not the bolder law."""
+    from scipy import stats
+    from autotune.analysis.lock_fit import averaged_loss_upper
+
+    weights, means, sds, qs = [0.3, 0.7], [0.08, 0.05], [0.12, 0.13], [0.0, 0.47]
+    x = averaged_loss_upper(0.95, weights, means, sds, qs)
+    e = 2.0 * math.acos(1.0 - x)
+    cdf = sum(w * (stats.norm.cdf(float(mixture_measured_phase(e, q)), m, s)
+                   - stats.norm.cdf(-float(mixture_measured_phase(e, q)), m, s))
+              for w, m, s, q in zip(weights, means, sds, qs))
+    assert cdf == pytest.approx(0.95, abs=1e-9)
+    rng = np.random.default_rng(7)
+    n = 400_000
+    pick = rng.random(n) < weights[0]
+    psi = np.where(pick, rng.normal(means[0], sds[0], n), rng.normal(means[1], sds[1], n))
+    loss = 1.0 - np.cos(0.5 * mixture_phase_error(psi, np.where(pick, qs[0], qs[1])))
+    assert x == pytest.approx(float(np.quantile(loss, 0.95)), rel=0.01)
+    alone = [averaged_loss_upper(0.95, [1.0], [m], [s], [q]) for m, s, q in zip(means, sds, qs)]
+    assert min(alone) < x < max(alone)
+    # An error of pi is not likely enough: the bound is the whole inversion.
+    assert averaged_loss_upper(0.95, [1.0], [0.0], [50.0], [0.0]) == 1.0
+
+
+def test_weighted_quantile_is_the_inverse_of_the_weighted_empirical_cdf():
+    """Against numpy's quantile with weights (method 'inverted_cdf', numpy >= 2.0) and a worked
+    example: values 1, 2, 3 with weights 0.5, 0.3, 0.2 have the 50 % quantile 1 and the 80 %
+    quantile 2 (the smallest value whose cumulative weight reaches the probability)."""
+    from autotune.analysis.lock_fit import weighted_quantile
+
+    assert weighted_quantile([3.0, 1.0, 2.0], [0.2, 0.5, 0.3], 0.5) == 1.0
+    assert weighted_quantile([3.0, 1.0, 2.0], [0.2, 0.5, 0.3], 0.8) == 2.0
+    assert weighted_quantile([3.0, 1.0, 2.0], [0.2, 0.5, 0.3], 0.81) == 3.0
+    if int(np.__version__.split(".")[0]) >= 2:
+        rng = np.random.default_rng(3)
+        values, weights = rng.normal(size=2001), rng.random(2001)
+        for p in (0.05, 0.5, 0.95):
+            assert weighted_quantile(values, weights, p) == float(
+                np.quantile(values, p, weights=weights, method="inverted_cdf"))
+
+
+def _poor_lock(ratio: float, ratio_sd: float) -> PhaseLockSearch:
+    """A lock at one velocity on a source of contrast ratio ``ratio``: five points across the peak
+    whose phase follows a slope of 2e-4 rad/Hz and whose inversions fall as cos(psi / 2)."""
+    box = SearchSpace((Dimension("velocity", 460.0, 560.0), Dimension("detuning", -60e3, 60e3)))
+    lock = PhaseLockSearch(box, seed=1, start={"velocity": 503.7, "detuning": 0.0}, settings=SETTINGS)
+    for k, detuning in enumerate((-1500.0, -700.0, 0.0, 800.0, 1600.0)):
+        psi = 2e-4 * detuning
+        result = PointResult(inversion=0.45 * math.cos(0.5 * psi), inversion_stderr=0.03,
+                             phase_shift=float(np.mod(PI + psi, 2 * PI)), phase_shift_stderr=0.15,
+                             absorption=0.02, absorption_stderr=0.004, contrast_empty=0.6,
+                             contrast_empty_stderr=1e-6, contrast_one_photon=0.6 * ratio,
+                             contrast_one_photon_stderr=0.6 * ratio_sd, identified=True,
+                             clock_s=10.0 * k, shots=12_000)
+        lock.observe({"velocity": 503.7, "detuning": detuning}, result, purpose="lock")
+    return lock
+
+
+def test_the_detuning_term_averages_the_laws_only_where_the_source_may_be_poor():
+    """A contrast ratio of 0.8 (a good source, P(r < 0.35) ~ 0): one law, the pure photon's, the
+    term as before. A ratio of 0.33 +- 0.03 per point (the upper 95 % limit above 0.35: the lock
+    reads the pure law, but the source is poor with a probability of 0.93): both laws, weights
+    from scipy.stats.norm's probability times each law's evidence, and the detuning term's
+    bound between the pure law's alone and the mixture's alone."""
+    from scipy import stats
+    from autotune.analysis.lock_fit import law_weights
+
+    good = _poor_lock(0.8, 0.02)
+    assert len(good._phase_laws()) == 1 and good._phase_laws()[0][1] == 0.0
+
+    lock = _poor_lock(0.33, 0.03)
+    assert lock._mixture_low() == 0.0  # the gate still reads the pure photon's law
+    laws = lock._phase_laws()
+    assert len(laws) == 2 and laws[0][1] == 0.0 and laws[1][1] > 0.3
+    chance = float(stats.norm.cdf(0.35, 0.33, 0.03 / math.sqrt(5)))
+    assert lock._source_estimate()[1] == pytest.approx(chance, abs=1e-9)
+    evidences = [lock._compute_phase_star(law[1])[2] for law in laws]
+    assert [law[0] for law in laws] == pytest.approx(list(law_weights(evidences, [1 - chance, chance])), abs=1e-9)
+    point = {"velocity": 503.7, "detuning": 0.0}
+    averaged = lock._shortfall_at(point, 40.0).detuning_upper
+    fit = lock._lock_fit(503.7)
+    phase, var = fit.phase(0.0, 40.0)
+    alone = [1.0 - math.cos(0.5 * float(mixture_phase_error(
+        sd * math.sqrt(stats.ncx2.ppf(0.95, 1, ((phase - star) / sd) ** 2)), q)))
+        for q, star, sd in ((law[1], law[2], math.sqrt(var + law[3] ** 2)) for law in laws)]
+    assert alone[1] < averaged < alone[0]
