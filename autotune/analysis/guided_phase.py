@@ -12,11 +12,9 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
 from autotune.analysis.lock_fit import (
     LockFit,
-    law_weights,
     log_evidence,
     mixture_phase_error,
     solve_gaussian,
@@ -44,9 +42,6 @@ _CAUTIOUS_Z = 1.645
 # lock to drop the mixture (2: a factor e^2 ~ 7, "positive" evidence on Kass and Raftery's scale,
 # J. Am. Stat. Assoc. 90, 773 (1995)).
 _LAW_EVIDENCE = 2.0
-# The smallest probability that the source is poor (its contrast ratio below min_contrast_ratio)
-# at which the detuning term of the bound averages the pure photon's and the mixture's laws.
-_POOR_FLOOR = 0.05
 # Smallest inversion scale used as the denominator of the velocity term.
 MIN_INVERSION_SCALE = 0.05
 
@@ -206,74 +201,30 @@ class PhaseSignal:
         (``q ~ 0.14`` at ``p1 = 0.88``), against a velocity term that is not always as safe
         (a rig of the velocity-physics family stopped one point earlier with it, below its bound).
         """
-        q, _, poor = self._source_estimate()
-        return q if poor else 0.0
-
-    def _source_estimate(self) -> tuple[float, float, bool]:
-        return self._cached("source", self._compute_source_estimate)
-
-    def _compute_source_estimate(self) -> tuple[float, float, bool]:
-        """The empty fraction ``q`` at its cautious end whatever the contrast (0 where the near
-        points' absorption leaves no room for it), the probability that the source is poor by
-        the lock's own criterion, ``P(r < min_contrast_ratio)`` under the normal law of the
-        weighted contrast ratio ``r``, and whether the upper 95 % limit of ``r`` is below the
-        ratio (:meth:`_compute_mixture_estimate` uses ``q`` then; that probability is then
-        above 95 %). (0, 0, False) without such points."""
         centre = self._phase_star_prior[0]
         window = self.settings.absorption_phase_window_rad
         near = [o.result for o in self._in_range()
                 if abs(self._unwrapped(o) - centre) <= window and o.result.contrast_empty > 0.0]
         if not near:
-            return 0.0, 0.0, False
-
-        def weighted(values: np.ndarray, sds: np.ndarray) -> tuple[float, float]:
-            weights = 1.0 / np.maximum(sds, 1e-4) ** 2
-            return float((weights * values).sum() / weights.sum()), 1.0 / math.sqrt(float(weights.sum()))
+            return 0.0
 
         def upper(values: np.ndarray, sds: np.ndarray) -> float:
-            mean, sd = weighted(values, sds)
-            return mean + _CAUTIOUS_Z * sd
+            weights = 1.0 / np.maximum(sds, 1e-4) ** 2
+            mean = float((weights * values).sum() / weights.sum())
+            return mean + _CAUTIOUS_Z / math.sqrt(float(weights.sum()))
 
         ratios = np.array([r.contrast_one_photon / r.contrast_empty for r in near])
         ratio_sds = np.array([math.hypot(r.contrast_one_photon_stderr, ratio * r.contrast_empty_stderr)
                               / r.contrast_empty for r, ratio in zip(near, ratios)])
-        r_mean, r_sd = weighted(ratios, ratio_sds)
-        r_up = min(max(r_mean + _CAUTIOUS_Z * r_sd, 0.0), 1.0)
-        chance = float(special.ndtr((self.settings.min_contrast_ratio - r_mean) / r_sd))
-        poor = r_up < self.settings.min_contrast_ratio
+        r_up = min(max(upper(ratios, ratio_sds), 0.0), 1.0)
+        if r_up >= self.settings.min_contrast_ratio:
+            return 0.0
         absorption_up = max(upper(np.array([r.absorption for r in near]),
                                   np.array([r.absorption_stderr for r in near])), 0.0)
         amplitude = 1.0 - 2.0 * absorption_up / (1.0 + r_up)
         if amplitude <= r_up:
-            return 0.0, chance, poor
-        return float(min((amplitude - r_up) / ((1.0 + r_up) * amplitude), _MAX_MIXTURE)), chance, poor
-
-    def _phase_laws(self) -> tuple[tuple[float, float, float, float], ...]:
-        return self._cached("phase_laws", self._compute_phase_laws)
-
-    def _compute_phase_laws(self) -> tuple[tuple[float, float, float, float], ...]:
-        """The laws of the phase that the detuning term of the bound averages: ``(weight, q,
-        mean, sd)`` of the phase at the peak under each (the weights sum to 1).
-
-        One law, the lock's own (:meth:`_phase_model`), unless the source may be poor (the
-        probability ``P(r < min_contrast_ratio)`` of :meth:`_source_estimate` at least
-        ``_POOR_FLOOR``) with an empty fraction ``q > 0``: then the pure photon's law and the
-        mixture's at that ``q``, weighed by their marginal likelihoods (the inversions' fall
-        with the phase error, :meth:`_compute_phase_star`) times their prior probabilities,
-        ``1 - P`` and ``P`` (Bayesian model averaging, :func:`~autotune.analysis.lock_fit.law_weights`;
-        Kass and Raftery 1995, Hoeting et al. 1999). The bound is then the weighted mixture of
-        both laws' losses, not the bolder one: on a poor source the pure law's share falls as
-        the contrast and the inversions say so, instead of the whole term dropping at once
-        when the contrast's upper limit crosses the ratio.
-        """
-        mean, sd, q_used = self._phase_model()
-        q, chance, _ = self._source_estimate()
-        if q <= 0.0 or chance < _POOR_FLOOR:
-            return ((1.0, q_used, mean, sd),)
-        pure = self._compute_phase_star(0.0)
-        mixed = self._compute_phase_star(q)
-        weights = law_weights([pure[2], mixed[2]], [1.0 - chance, chance])
-        return ((float(weights[0]), 0.0, pure[0], pure[1]), (float(weights[1]), q, mixed[0], mixed[1]))
+            return 0.0
+        return float(min((amplitude - r_up) / ((1.0 + r_up) * amplitude), _MAX_MIXTURE))
 
     def _compute_phase_star(self, empty: float) -> tuple[float, float, float]:
         """The phase at the peak from a grid posterior: the inversions of each velocity group

@@ -14,7 +14,7 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import stats
 
-from autotune.analysis.lock_fit import averaged_loss_upper, mixture_phase_error, weighted_quantile
+from autotune.analysis.lock_fit import mixture_phase_error
 from autotune.analysis.next_point import expected_fall
 from autotune.analysis.retune_verdict import inherited_draws
 from autotune.analysis.shortfall import Shortfall
@@ -96,53 +96,29 @@ class ShortfallBound:
         s = self.settings
         q = s.confidence
         detuning = self._detuning_terms(point, clock) if phase_error is None else phase_error
-        laws = self._phase_laws() if phase_error is None else ((1.0, self._mixture_low(), math.nan, math.nan),)
+        if lock_cov is not None and detuning is not None:
+            fit = self._lock_fit(point["velocity"])
+            x = fit.features(point["detuning"], clock)
+            detuning = (detuning[0], math.sqrt(max(float(x @ lock_cov @ x), 0.0) + self._phase_star()[1] ** 2))
         normals = self._draw_normals(4, 11)
         notes = []
-        law_draws: list[tuple[float, np.ndarray]] = []
         if detuning is None:
             d_draws = np.full(len(normals), math.inf)
             d_point = d_upper = math.inf
             mu, sigma = math.nan, math.inf
             notes.append("no phase slope yet")
-        elif len(laws) == 1:
+        else:
             mu, sigma = detuning
-            if lock_cov is not None:
-                fit = self._lock_fit(point["velocity"])
-                x = fit.features(point["detuning"], clock)
-                sigma = math.sqrt(max(float(x @ lock_cov @ x), 0.0) + self._phase_star()[1] ** 2)
             # The phase error is measured on the mixed field's fringe; the inversion follows
             # the one-photon phase error behind it (lock_fit.mixture_phase_error), at the
             # cautious end of the source's empty fraction (0 for a pure photon, or until the
             # inversions show the mixture's slower fall).
-            empty = laws[0][1]
+            empty = self._mixture_low()
             eps = mixture_phase_error(mu + sigma * normals[:, 0], empty)
             d_draws = 1.0 - np.cos(0.5 * eps)
             d_point = 1.0 - math.cos(0.5 * float(mixture_phase_error(mu, empty)))
             eps2 = sigma**2 * float(stats.ncx2.ppf(q, 1, (mu / sigma) ** 2)) if sigma > 0 else mu**2
             d_upper = 1.0 - math.cos(0.5 * min(float(mixture_phase_error(math.sqrt(eps2), empty)), math.pi))
-        else:
-            # A source that may be poor: the pure photon's law and the mixture's, each with its
-            # own phase at the peak, averaged by their posterior probabilities
-            # (PhaseSignal._compute_phase_laws; Hoeting et al. 1999): the loss's law is the
-            # weighted mixture of the two, its bound that mixture's quantile.
-            fit = self._lock_fit(point["velocity"])
-            phase, var = fit.phase(point["detuning"], clock)
-            if lock_cov is not None:
-                x = fit.features(point["detuning"], clock)
-                var = max(float(x @ lock_cov @ x), 0.0)
-            means, sds, weights, empties = [], [], [], []
-            d_point = 0.0
-            for weight, empty, star, star_sd in laws:
-                m, sd = phase - star, math.sqrt(var + star_sd**2)
-                eps = mixture_phase_error(m + sd * normals[:, 0], empty)
-                law_draws.append((weight, 1.0 - np.cos(0.5 * eps)))
-                d_point += weight * (1.0 - math.cos(0.5 * float(mixture_phase_error(m, empty))))
-                means.append(m), sds.append(sd), weights.append(weight), empties.append(empty)
-            d_upper = averaged_loss_upper(q, weights, means, sds, empties)
-            mu = float(np.dot(weights, means))
-            sigma = math.sqrt(float(np.dot(weights, np.square(sds) + np.square(np.subtract(means, mu)))))
-            d_draws = law_draws[0][1]
         fit = self._absorption_fit()
         plan = self._velocity_plan()
         curve = self._velocity_curve()
@@ -173,13 +149,8 @@ class ShortfallBound:
             v_draws = np.full(len(normals), math.inf)
             v_point = v_upper = math.inf
             notes.append("velocity model not established yet")
-        if law_draws:
-            totals = np.concatenate([draws + v_draws for _, draws in law_draws])
-            weights = np.concatenate([np.full(len(draws), w / len(draws)) for w, draws in law_draws])
-            upper = weighted_quantile(totals, weights, q) if np.all(np.isfinite(totals)) else math.inf
-        else:
-            total = d_draws + v_draws
-            upper = float(np.quantile(total, q)) if np.all(np.isfinite(total)) else math.inf
+        total = d_draws + v_draws
+        upper = float(np.quantile(total, q)) if np.all(np.isfinite(total)) else math.inf
         return Shortfall(estimate=d_point + v_point, upper=upper, detuning=d_point, detuning_upper=d_upper,
                          velocity=v_point, velocity_upper=v_upper, phase_error_rad=mu,
                          phase_error_stderr_rad=sigma, confidence=q, note="; ".join(notes))

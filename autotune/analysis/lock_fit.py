@@ -13,7 +13,6 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import optimize, special
 
 from autotune.analysis.search import PointResult
 
@@ -21,7 +20,7 @@ if TYPE_CHECKING:
     from autotune.analysis.lock_settings import LockSettings
 
 __all__ = ["phase_signal_note", "mixture_phase_error", "mixture_phase_gain", "mixture_measured_phase",
-           "detuning_offset", "law_weights", "phase_loss_cdf", "averaged_loss_upper", "weighted_quantile",
+           "detuning_offset",
            "LockFit", "log_evidence", "solve_gaussian", "wrap_phase"]
 
 _TWO_PI = 2.0 * math.pi
@@ -115,88 +114,6 @@ def mixture_measured_phase(error_rad: Any, empty_fraction: Any) -> Any:
     eps = np.asarray(error_rad, dtype=float)
     q = np.asarray(empty_fraction, dtype=float)
     return np.arctan2(np.sin(eps), np.cos(eps) - q)
-
-
-def law_weights(log_evidence: Any, prior: Any = None) -> np.ndarray:
-    """Posterior probabilities of competing models from their log marginal likelihoods.
-
-    Bayesian model averaging: ``P(M_k | y) = p(y | M_k) P(M_k) / sum_j p(y | M_j) P(M_j)``
-    (Kass and Raftery, J. Am. Stat. Assoc. 90, 773 (1995), section 2; Hoeting, Madigan,
-    Raftery and Volinsky, Statistical Science 14, 382 (1999), eq. 2), computed in logs with
-    ``scipy.special.logsumexp`` so that evidences of any size do not overflow.
-
-    Parameters
-    ----------
-    log_evidence : sequence of float
-        ``log p(y | M_k)``, each up to one constant shared by every model.
-    prior : sequence of float, optional
-        Prior model probabilities ``P(M_k)`` (>= 0, not all 0; normalised here); default equal.
-
-    Raises
-    ------
-    ValueError
-        Evidences not finite, priors negative or all zero, or lengths that differ.
-    """
-    evidence = np.asarray(log_evidence, dtype=float)
-    if evidence.ndim != 1 or evidence.size == 0 or not np.all(np.isfinite(evidence)):
-        raise ValueError(f"law_weights: expected a non-empty sequence of finite log evidences, got {log_evidence!r}")
-    weights = np.ones_like(evidence) if prior is None else np.asarray(prior, dtype=float)
-    if weights.shape != evidence.shape or not np.all(np.isfinite(weights)) or np.any(weights < 0.0) \
-            or not np.any(weights > 0.0):
-        raise ValueError(f"law_weights: expected one prior probability >= 0 per model, not all 0, got {prior!r}")
-    with np.errstate(divide="ignore"):
-        log_joint = evidence + np.log(weights)
-    return np.exp(log_joint - special.logsumexp(log_joint))
-
-
-def phase_loss_cdf(loss: float, mean_rad: float, sd_rad: float, empty_fraction: float) -> float:
-    """``P(1 - cos(eps / 2) <= loss)`` for a measured phase error ``psi ~ N(mean, sd^2)`` and the
-    one-photon error ``eps`` behind it (:func:`mixture_phase_error` with ``empty_fraction``).
-
-    ``eps`` grows with ``psi`` and is odd in it, so the loss is at most ``loss`` exactly while
-    ``|psi|`` is at most the measured phase of ``e = 2 arccos(1 - loss)``
-    (:func:`mixture_measured_phase`): a difference of two normal CDFs. For a pure photon this is
-    the noncentral chi-square law of ``psi^2 / sd^2`` (one degree of freedom) read at
-    ``(e / sd)^2``. A loss of 1 or more (``eps`` beyond pi) gives that of ``e = pi``."""
-    e = 2.0 * math.acos(1.0 - min(max(float(loss), 0.0), 1.0))
-    edge = float(mixture_measured_phase(e, float(empty_fraction)))
-    if sd_rad <= 0.0:
-        return float(abs(mean_rad) <= edge)
-    return float(special.ndtr((edge - mean_rad) / sd_rad) - special.ndtr((-edge - mean_rad) / sd_rad))
-
-
-def averaged_loss_upper(confidence: float, weights: Any, means_rad: Any, sds_rad: Any,
-                        empty_fractions: Any) -> float:
-    """The ``confidence`` quantile of the relative inversion lost to the phase error,
-    ``1 - cos(eps / 2)``, averaged over laws of the phase (Bayesian model averaging: the
-    predictive distribution is the weighted mixture of each law's, Hoeting et al. 1999, eq. 1),
-    each law a normal measured error ``N(mean_k, sd_k^2)`` read through its empty fraction
-    (:func:`phase_loss_cdf`). The root of ``sum_k w_k F_k(x) = confidence`` (Brent's method);
-    1 when even a loss of 1 (an error of pi) is not that likely."""
-    w = np.asarray(weights, dtype=float)
-    laws = list(zip(w, np.asarray(means_rad, dtype=float), np.asarray(sds_rad, dtype=float),
-                    np.asarray(empty_fractions, dtype=float)))
-
-    def excess(x: float) -> float:
-        return sum(wk * phase_loss_cdf(x, m, sd, q) for wk, m, sd, q in laws) / float(w.sum()) - confidence
-
-    if excess(1.0) < 0.0:
-        return 1.0
-    if excess(0.0) >= 0.0:
-        return 0.0
-    return float(optimize.brentq(excess, 0.0, 1.0, xtol=1e-12, rtol=1e-10))
-
-
-def weighted_quantile(samples: Any, weights: Any, probability: float) -> float:
-    """The ``probability`` quantile of a weighted sample: the smallest sample whose cumulative
-    weight reaches ``probability`` of the total (the inverse of the weighted empirical CDF,
-    numpy's ``method="inverted_cdf"`` with weights)."""
-    values = np.asarray(samples, dtype=float).ravel()
-    w = np.asarray(weights, dtype=float).ravel()
-    order = np.argsort(values, kind="stable")
-    cumulative = np.cumsum(w[order])
-    index = int(np.searchsorted(cumulative, probability * cumulative[-1], side="left"))
-    return float(values[order][min(index, len(values) - 1)])
 
 
 def detuning_offset(error_rad: float, error_stderr_rad: float, slope_rad_per_hz: float,
