@@ -21,9 +21,6 @@ __all__ = ["AbsorptionSignal"]
 
 # Two velocities closer than this (relative) are one velocity group of the absorption fit.
 _SAME_VELOCITY = SAME_VELOCITY
-#: At most this many velocity steps of a calibration re-measure a velocity group because the
-#: inversions disagree with the absorption there (:meth:`AbsorptionSignal._disagreement_replicate`).
-MAX_DISAGREEMENT_REPLICATES = 2
 
 
 class AbsorptionSignal:
@@ -159,46 +156,6 @@ class AbsorptionSignal:
             [o.result.contrast_empty for o in points],
             [o.result.contrast_empty_stderr**2 for o in points],
             fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
-
-    def _disagreement_replicate(self) -> tuple[float, str] | None:
-        """The velocity to measure again because the inversions disagree with the absorption,
-        and why; None when they do not (or nothing is left to re-measure).
-
-        The curve's :class:`~autotune.analysis.velocity_model.ProxyDisagreement` tests the
-        measured inversions' slope along velocity beyond the absorption's; when it is
-        significant, the velocity group whose inversion lies farthest from the absorption's
-        prediction carries it, and a second measurement there resolves it one way or the other:
-        a noisy inversion regresses, a real departure (the empty contrast rising with velocity,
-        say) is confirmed. Only a group measured once (by one point) is re-measured, at most
-        :data:`MAX_DISAGREEMENT_REPLICATES` times a calibration; a calibration's only.
-        """
-        return self._cached("disagreement_replicate", self._compute_disagreement_replicate)
-
-    def _compute_disagreement_replicate(self) -> tuple[float, str] | None:
-        curve = self._velocity_curve()
-        if curve is None or curve.disagreement is None or not curve.disagreement.significant():
-            return None
-        steps = [o.velocity for o in self._obs if o.purpose == "velocity"]
-        replicates = sum(1 for k, v in enumerate(steps)
-                         if any(abs(v / u - 1.0) <= _SAME_VELOCITY for u in steps[:k]))
-        if replicates >= MAX_DISAGREEMENT_REPLICATES:
-            return None
-        d = curve.disagreement
-        g = d.farthest_group()
-        velocity = curve.velocity_of(float(d.x[g]))
-        points = [o for o in self._absorption_points() if o.purpose not in ("verify", "correct")
-                  and abs(o.velocity / velocity - 1.0) <= _SAME_VELOCITY]
-        if len(points) != 1:
-            return None
-        low, high = self._velocity_box
-        velocity = float(np.clip(points[0].velocity, low, high))
-        score = float(d.residual[g] / d.residual_stderr[g]) if d.residual_stderr[g] > 0.0 else math.inf
-        reason = (f"the measured inversions' slope along x = v_ref / v - 1 is {d.slope:+.2f} +- "
-                  f"{d.slope_stderr:.2f} against the absorption's {d.proxy_slope:+.2f} +- "
-                  f"{d.proxy_slope_stderr:.2f} (z {d.z:+.2f}, two-sided p {d.p_value:.3f}): the inversion "
-                  f"at {velocity:.1f} m/s, {score:+.1f} standard errors from the absorption's "
-                  "prediction and measured once, is measured again")
-        return velocity, reason
 
     def _inversion_scale(self) -> float:
         points = self._absorption_points() or self._in_range()

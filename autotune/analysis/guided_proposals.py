@@ -108,13 +108,7 @@ class ProposalChoice:
                 return self._lock_proposal(velocity, clock, "lock", short,
                                            f"acquire the lock (detuning term's bound {short.detuning_upper:.1%} "
                                            f"above {s.lock_acquired_shortfall:.1%})")
-            replicate = self._disagreement_replicate()
-            if replicate is not None:
-                return self._replicate_proposal(replicate, velocity, clock)
             return self._velocity_proposal(float(plan["next"]), velocity, clock, plan["note"])
-        replicate = self._disagreement_replicate()
-        if replicate is not None:
-            return self._replicate_proposal(replicate, velocity, clock)
         if not self._measured_at(velocity):
             short = self._shortfall_at({"velocity": velocity,
                                         "detuning": self._lock_target(velocity, clock)[0]}, clock)
@@ -195,17 +189,6 @@ class ProposalChoice:
                         f"{note}: absorption at {velocity:.1f} m/s, at the locked detuning "
                         f"{detuning / 1e3:+.2f} kHz; the velocity term is unknown (infinite) until the "
                         f"least absorption is bracketed ({groups} usable velocities so far)")
-
-    def _replicate_proposal(self, replicate: tuple[float, str], lock_velocity: float,
-                            clock: float | None) -> Proposal:
-        """A velocity step that measures a velocity group again (see
-        :meth:`~autotune.analysis.guided_absorption.AbsorptionSignal._disagreement_replicate`),
-        at the locked detuning."""
-        velocity, reason = replicate
-        target = self._lock_target(lock_velocity, clock)
-        detuning = self._limit_step(target[0], velocity) if target is not None else self._anchor().detuning
-        return Proposal({"velocity": velocity, "detuning": detuning}, "velocity",
-                        self.step_shots("velocity"), f"{reason}, at the locked detuning {detuning / 1e3:+.2f} kHz")
 
     def _expected_after(self, rec: Mapping[str, float], velocity: float, detuning: float,
                         shots_per_phase: int, clock: float | None, inherit: bool = True) -> Shortfall:

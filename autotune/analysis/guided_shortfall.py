@@ -222,8 +222,7 @@ class ShortfallBound:
         A retune's bound is taken without the calibration's velocity term it inherits
         (``LockPrior.velocity_shortfall``): its points cannot lower that term, and its
         acceptance, against ``[acceptance] max_shortfall``, counts it. Also requires the last usable point to lie at the recommended velocity (within 2 %):
-        the last step re-centres the lock there from fresh data; and no velocity group waiting to be
-        measured again because the inversions disagree with the absorption there.
+        the last step re-centres the lock there from fresh data.
         """
         clock = self._now(clock_s)
         points = self._in_range()
@@ -231,7 +230,7 @@ class ShortfallBound:
         if not points or not plan["concluded"] or plan.get("outward", False):
             return False
         velocity = self._recommended_velocity()
-        if not self._measured_at(velocity) or self._disagreement_replicate() is not None:
+        if not self._measured_at(velocity):
             return False
         rec = self.recommend(clock_s=clock).point
         return self._stop_bound(rec, clock) <= self.settings.target_shortfall
