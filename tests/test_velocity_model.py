@@ -103,3 +103,102 @@ def test_the_log_evidence_is_the_gaussian_marginal_likelihood():
         values, mean=design @ prior_mean, cov=np.diag(variances) + design @ prior_cov @ design.T)
     assert evidence - 0.5 * 6 * math.log(2.0 * math.pi) == pytest.approx(reference, rel=1e-10)
 
+
+
+# The disagreement of the measured inversions with the proxy (velocity_model.proxy_disagreement)
+# --------------------------------------------------------------------------------------------
+
+def _groups(rng: np.random.Generator):
+    """Three velocity groups of 1, 3 and 2 points with unequal variances."""
+    x = np.array([-0.05, 0.0, 0.0005, -0.0004, 0.05, 0.0496])
+    sd = np.array([0.026, 0.05, 0.06, 0.07, 0.028, 0.03])
+    y = 0.75 + 0.4 * x + sd * rng.standard_normal(len(x))
+    return x, y, sd, [-0.05, 0.0, 0.05]
+
+
+def test_the_slope_is_numpy_polyfit_of_the_weighted_group_means():
+    """The measured slope and its sd are numpy.polyfit's weighted straight line (cov='unscaled')
+    through the groups' inverse-variance means (numpy.average), and the proxy's slope the same
+    fit through the proxy's curve."""
+    from autotune.analysis.velocity_model import proxy_disagreement
+
+    x, y, sd, groups = _groups(np.random.default_rng(5))
+    d = proxy_disagreement(x, y, sd**2, [0.3, -4.0], np.zeros((2, 2)), groups)
+    members = [np.array([0]), np.array([1, 2, 3]), np.array([4, 5])]
+    gx = np.array([np.average(x[m], weights=sd[m] ** -2) for m in members])
+    gm = np.array([np.average(y[m], weights=sd[m] ** -2) for m in members])
+    gsd = np.array([np.sum(sd[m] ** -2) ** -0.5 for m in members])
+    coef, cov = np.polyfit(gx, gm, 1, w=1.0 / gsd, cov="unscaled")
+    assert d.slope == pytest.approx(coef[0], rel=1e-10)
+    assert d.slope_stderr == pytest.approx(math.sqrt(cov[0, 0]), rel=1e-10)
+    np.testing.assert_allclose(d.mean, gm, rtol=1e-12)
+    np.testing.assert_allclose(d.mean_stderr, gsd, rtol=1e-12)
+    proxy = np.polyfit(gx, 0.3 * gx - 4.0 * gx**2, 1, w=1.0 / gsd)[0]
+    assert d.proxy_slope == pytest.approx(proxy, rel=1e-10)
+
+
+def test_the_z_and_p_value_are_the_two_sided_normal_test_of_scipy_stats():
+    """z = (slope - proxy slope) / sqrt(both variances); p = 2 scipy.stats.norm.sf(|z|), with
+    the proxy's variance a P a^T for the least-squares slopes a of x and x^2 (numpy.polyfit)."""
+    from scipy import stats
+
+    from autotune.analysis.velocity_model import proxy_disagreement
+
+    x, y, sd, groups = _groups(np.random.default_rng(6))
+    proxy_cov = np.array([[0.2**2, 0.3 * 0.2 * 1.5], [0.3 * 0.2 * 1.5, 1.5**2]])
+    d = proxy_disagreement(x, y, sd**2, [-0.2, -3.0], proxy_cov, groups)
+    gx, gsd = d.x, d.mean_stderr
+    along = np.array([np.polyfit(gx, gx, 1, w=1.0 / gsd)[0], np.polyfit(gx, gx**2, 1, w=1.0 / gsd)[0]])
+    assert d.proxy_slope_stderr == pytest.approx(math.sqrt(along @ proxy_cov @ along), rel=1e-9)
+    z = (d.slope - d.proxy_slope) / math.hypot(d.slope_stderr, d.proxy_slope_stderr)
+    assert d.z == pytest.approx(z, rel=1e-12)
+    assert d.p_value == pytest.approx(2.0 * stats.norm.sf(abs(z)), rel=1e-9)
+
+
+def test_under_the_null_the_residuals_have_their_stated_sd_and_the_test_its_level():
+    """Data drawn from the proxy (its slope and curvature drawn from its covariance, any level,
+    the stated noise): the residuals' sampling sd matches residual_stderr (5 %, 4000 draws) and
+    p < 0.05 holds in 5 % of draws (within the binomial 99.9 % interval, scipy.stats.binomtest)."""
+    from scipy import stats
+
+    from autotune.analysis.velocity_model import proxy_disagreement
+
+    rng = np.random.default_rng(7)
+    x, _, sd, groups = _groups(rng)
+    mean = np.array([0.1, -4.0])
+    proxy_cov = np.diag([0.15, 1.0]) ** 2
+    residuals, rejected = [], 0
+    n = 4000
+    for _ in range(n):
+        p = rng.multivariate_normal(mean, proxy_cov)
+        y = rng.uniform(0.5, 0.8) + p[0] * x + p[1] * x**2 + sd * rng.standard_normal(len(x))
+        d = proxy_disagreement(x, y, sd**2, mean, proxy_cov, groups)
+        residuals.append(d.residual)
+        rejected += d.significant(0.05)
+    np.testing.assert_allclose(np.std(residuals, axis=0), d.residual_stderr, rtol=0.05)
+    interval = stats.binomtest(rejected, n, 0.05).proportion_ci(0.999)
+    assert interval.low <= 0.05 <= interval.high
+
+
+def test_the_farthest_group_is_the_outlier():
+    """An inversion 0.1 above a flat r at one end: the test is significant and names that group."""
+    from autotune.analysis.velocity_model import proxy_disagreement
+
+    x = np.array([-0.05, 0.0, 0.05])
+    y = np.array([0.75, 0.75, 0.85])
+    sd = np.array([0.025, 0.025, 0.025])
+    d = proxy_disagreement(x, y, sd**2, [0.0, 0.0], np.zeros((2, 2)), x)
+    assert d.significant() and d.z > 0.0
+    assert d.farthest_group() == 2
+
+
+def test_one_group_states_no_disagreement_and_bad_input_is_refused():
+    """A single velocity group has no slope (None); a zero variance is refused by name."""
+    from autotune.analysis.velocity_model import proxy_disagreement
+    from autotune.errors import ValueRefused
+
+    assert proxy_disagreement([0.0, 0.001], [0.7, 0.71], [1e-3, 1e-3], [0.0, 0.0],
+                              np.zeros((2, 2)), [0.0]) is None
+    with pytest.raises(ValueRefused, match="variances"):
+        proxy_disagreement([0.0, 0.05], [0.7, 0.71], [1e-3, 0.0], [0.0, 0.0], np.zeros((2, 2)),
+                           [0.0, 0.05])

@@ -159,7 +159,7 @@ from autotune.analysis.guided_absorption import AbsorptionSignal
 from autotune.analysis.guided_phase import Observation, PhaseSignal
 from autotune.analysis.guided_proposals import ProposalChoice
 from autotune.analysis.guided_shortfall import ShortfallBound
-from autotune.analysis.velocity_model import AbsorptionFit
+from autotune.analysis.velocity_model import AbsorptionFit, ProxyDisagreement
 from autotune.errors import ValueRefused
 
 __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch",
@@ -168,6 +168,16 @@ __all__ = ["LockSettings", "LockPrior", "Shortfall", "Verdict", "PhaseLockSearch
 _TWO_PI = 2.0 * math.pi
 # Two velocities closer than this (relative) are one velocity group of the absorption fit.
 _SAME_VELOCITY = SAME_VELOCITY
+
+
+def _disagreement_dict(d: ProxyDisagreement | None) -> dict[str, float] | None:
+    """The inversions' slope against the absorption's (velocity_model.proxy_disagreement), for
+    the journal: slopes in inversion per unit of ``x = v_ref / v - 1``."""
+    if d is None:
+        return None
+    return {"inversion_slope": d.slope, "inversion_slope_stderr": d.slope_stderr,
+            "absorption_slope": d.proxy_slope, "absorption_slope_stderr": d.proxy_slope_stderr,
+            "z": d.z, "p_value": d.p_value}
 
 
 # --------------------------------------------------------------------------------------------
@@ -703,7 +713,8 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                                     "coefficients": [float(v) for v in curve.coef],
                                     "covariance": [[float(v) for v in row] for row in curve.cov],
                                     "proxy_slope_curvature": [float(v) for v in curve.proxy],
-                                    "discrepancy_widened": bool(curve.widened)}
+                                    "discrepancy_widened": bool(curve.widened),
+                                    "disagreement": _disagreement_dict(curve.disagreement)}
             if peak is not None:
                 out["velocity_best_inversion_m_per_s"] = curve.velocity_of(peak)
                 out["velocity_best_inversion_stderr_m_per_s"] = curve.vertex_velocity_stderr()

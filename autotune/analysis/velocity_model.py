@@ -24,6 +24,14 @@ merit itself with the error signals as its prior mean.
 
 The velocity optimum is the vertex of ``I(x)`` (a maximum when its curvature is negative);
 it is bracketed when it lies between the smallest and the largest velocity measured.
+
+Whether the measured inversions say more than the absorption is told by
+:func:`proxy_disagreement`: the weighted least-squares slope of ``r`` along ``x`` against the
+slope the absorption alone allows (``r`` flat within the discrepancy ``tau``), in standard
+errors. It is tested against the absorption, not against the contrast's prediction: the empty
+contrast is measured from the same fringes as the inversion (``I = (a1 - a0) + |theta1 -
+theta0|``, about half the empty contrast's noise, :mod:`autotune.analysis.fringe`), so a noisy
+fringe moves both the same way and they cannot arbitrate each other.
 """
 
 from __future__ import annotations
@@ -34,8 +42,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from autotune.errors import ValueRefused
+
 __all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_WIDENING",
-           "AbsorptionFit", "cholesky_jittered"]
+           "AbsorptionFit", "cholesky_jittered", "ProxyDisagreement", "proxy_disagreement",
+           "DISAGREEMENT_LEVEL"]
 
 #: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
 #: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
@@ -43,6 +54,9 @@ DISCREPANCY = (0.1, 0.5)
 #: The discrepancy may widen by this factor when the inversions' marginal likelihood prefers it
 #: (the slope only: the curvature is the absorption's, measured sharply).
 DISCREPANCY_WIDENING = 4.0
+#: Two-sided level of the test of the measured inversions' slope against the proxy's
+#: (:func:`proxy_disagreement`) below which the disagreement is called significant.
+DISAGREEMENT_LEVEL = 0.05
 #: Prior standard deviation of the empty contrast's curvature in ``x``, relative to its level.
 CONTRAST_CURVATURE = 0.5
 #: Smallest empty contrast and inversion scale used as denominators.
@@ -105,6 +119,9 @@ class InversionCurve(_QuadraticInX):
     widened : bool
         Whether the data's marginal likelihood chose the widened discrepancy (the inversions
         disagree with the proxy).
+    disagreement : ProxyDisagreement or None
+        The measured inversions' slope along ``x`` against the proxy's (None with fewer than
+        two velocity groups).
     """
 
     velocity_ref: float
@@ -115,6 +132,7 @@ class InversionCurve(_QuadraticInX):
     x_groups: tuple[float, ...]
     proxy: np.ndarray
     widened: bool
+    disagreement: ProxyDisagreement | None = None
 
     def vertex(self) -> float | None:
         """``x`` of the maximum, or None when the curve is not concave."""
@@ -156,6 +174,145 @@ def _posterior(design: np.ndarray, values: np.ndarray, variances: np.ndarray,
     _, logdet = np.linalg.slogdet(marginal)
     evidence = float(-0.5 * residual @ np.linalg.solve(marginal, residual) - 0.5 * logdet)
     return mean, cov, evidence
+
+
+@dataclass(frozen=True)
+class ProxyDisagreement:
+    """The measured inversions along velocity against the proxy's prediction of their shape.
+
+    Each velocity group's ``r = I + P_e`` (the part of the inversion that the absorption does not
+    carry, see the module notes) is averaged with inverse-variance weights. Under the null
+    hypothesis that the proxy is right up to measurement noise, the group means are ``r0 + p1 x
+    + p2 x^2 + noise`` with ``(p1, p2)`` the contrast's prediction (mean and covariance) and
+    ``r0`` free.
+
+    The statistic is a z test (a Wald test of one linear combination, e.g. L. Wasserman, *All
+    of Statistics*, 2004, section 10.4) of the weighted least-squares slope of the group means
+    in ``x`` (the straight line's slope, as ``numpy.polyfit(x, y, 1, w=1 / sd)`` gives it)
+    against the same least-squares slope of the proxy's curve: ``z = (slope - proxy_slope) / sqrt(var_data + var_proxy)``, with the
+    data's variance from the group means' variances alone and the proxy's from its covariance
+    (the offset cancels: the slope's weights sum to zero). ``z > 0``: the inversions rise
+    towards larger ``x`` (lower velocities) more than the proxy says. The residuals are the
+    group means minus the proxy's curve with ``r0`` fitted by generalised least squares, and
+    their standard deviations are those of the residuals under the null, ``diag(Sigma - 1 1^T
+    / (1^T Sigma^-1 1))`` with ``Sigma = diag(var) + D P D^T`` (Bishop 2006, *Pattern
+    Recognition and Machine Learning*, section 3.3.2 for the predictive covariance of a linear
+    model).
+
+    Attributes
+    ----------
+    x : ndarray
+        ``x`` of each velocity group (sorted).
+    mean, mean_stderr : ndarray
+        Each group's weighted mean of ``r`` and its standard deviation.
+    residual, residual_stderr : ndarray
+        Each group's mean minus the proxy's curve (level fitted), and its sd under the null.
+    slope, slope_stderr : float
+        The weighted least-squares slope of the group means in ``x`` and its sd.
+    proxy_slope, proxy_slope_stderr : float
+        The same slope of the proxy's curve, and its sd from the proxy's covariance.
+    z, p_value : float
+        The standardised difference of the two slopes and its two-sided normal p-value.
+    """
+
+    x: np.ndarray
+    mean: np.ndarray
+    mean_stderr: np.ndarray
+    residual: np.ndarray
+    residual_stderr: np.ndarray
+    slope: float
+    slope_stderr: float
+    proxy_slope: float
+    proxy_slope_stderr: float
+    z: float
+    p_value: float
+
+    def significant(self, level: float = DISAGREEMENT_LEVEL) -> bool:
+        """Whether the slopes differ at the two-sided ``level``."""
+        return self.p_value < level
+
+    def farthest_group(self) -> int:
+        """Index of the group whose mean lies most standard deviations from the proxy's curve:
+        the measurement that carries the disagreement."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            scores = np.abs(self.residual) / self.residual_stderr
+        return int(np.nanargmax(np.where(np.isfinite(scores), scores, -1.0)))
+
+
+def proxy_disagreement(xs: Sequence[float], values: Sequence[float], variances: Sequence[float],
+                       proxy_mean: Sequence[float], proxy_cov: np.ndarray,
+                       x_groups: Sequence[float]) -> ProxyDisagreement | None:
+    """Test the measured ``r = I + P_e`` along ``x`` against the proxy's slope (see
+    :class:`ProxyDisagreement`).
+
+    Parameters
+    ----------
+    xs, values, variances : sequence of float
+        Each point's ``x = v_ref / v - 1``, ``r`` and its variance (> 0).
+    proxy_mean, proxy_cov : array_like
+        The proxy's ``(p1, p2)`` (slope and curvature of ``r`` in ``x``) and their 2 x 2
+        covariance.
+    x_groups : sequence of float
+        The velocity groups: each point belongs to the nearest.
+
+    Returns
+    -------
+    ProxyDisagreement or None
+        None with fewer than two groups holding points.
+    """
+    x = np.asarray(xs, dtype=float)
+    y = np.asarray(values, dtype=float)
+    var = np.asarray(variances, dtype=float)
+    if not (len(x) == len(y) == len(var)):
+        raise ValueRefused(f"proxy_disagreement: expected as many values and variances as xs, "
+                           f"got {len(x)}, {len(y)}, {len(var)}")
+    if len(x) == 0 or not len(x_groups):
+        return None
+    if np.any(~np.isfinite(var)) or np.any(var <= 0.0):
+        raise ValueRefused("proxy_disagreement: expected variances > 0")
+    groups = np.asarray(sorted(float(g) for g in x_groups))
+    member = np.argmin(np.abs(x[:, None] - groups[None, :]), axis=1)
+    used = np.unique(member)
+    if len(used) < 2:
+        return None
+    gx, gmean, gvar = [], [], []
+    for g in used:
+        mine = member == g
+        w = 1.0 / var[mine]
+        gvar.append(1.0 / float(w.sum()))
+        gmean.append(float((w * y[mine]).sum()) * gvar[-1])
+        gx.append(float((w * x[mine]).sum()) * gvar[-1])
+    gx_a, gm, gv = np.array(gx), np.array(gmean), np.array(gvar)
+    p = np.asarray(proxy_mean, dtype=float)
+    p_cov = np.asarray(proxy_cov, dtype=float)
+    shape = np.stack([gx_a, gx_a * gx_a], axis=1)
+    # The weighted least-squares slope as a linear functional of the group means.
+    line = np.stack([np.ones(len(gx_a)), gx_a], axis=1)
+    weights = 1.0 / gv
+    normal = line.T @ (line * weights[:, None])
+    functional = (np.linalg.inv(normal) @ (line * weights[:, None]).T)[1]
+    slope = float(functional @ gm)
+    slope_var = float(functional @ (gv * functional))
+    along = functional @ shape
+    proxy_slope = float(along @ p)
+    proxy_var = float(along @ p_cov @ along)
+    total = math.sqrt(max(slope_var + proxy_var, 1e-300))
+    z = (slope - proxy_slope) / total
+    p_value = float(math.erfc(abs(z) / math.sqrt(2.0)))
+    # Residuals against the proxy's curve, its level by generalised least squares.
+    sigma = np.diag(gv) + shape @ p_cov @ shape.T
+    ones = np.ones(len(gx_a))
+    inv_ones = np.linalg.solve(sigma, ones)
+    level_precision = float(ones @ inv_ones)
+    centred = gm - shape @ p
+    level = float(inv_ones @ centred) / level_precision
+    residual = centred - level
+    residual_var = np.diag(sigma) - 1.0 / level_precision
+    return ProxyDisagreement(
+        x=gx_a, mean=gm, mean_stderr=np.sqrt(gv), residual=residual,
+        residual_stderr=np.sqrt(np.maximum(residual_var, 0.0)), slope=slope,
+        slope_stderr=math.sqrt(max(slope_var, 0.0)), proxy_slope=proxy_slope,
+        proxy_slope_stderr=math.sqrt(max(proxy_var, 0.0)), z=float(z), p_value=p_value)
 
 
 def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
@@ -221,10 +378,15 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     a_coef = np.asarray(absorption_coef, dtype=float)
     a_cov = np.asarray(absorption_cov, dtype=float)
     coef = r_coef - a_coef
+    # Against the absorption alone (r flat within the discrepancy): the empty contrast is
+    # measured from the same fringes as the inversion and shares its noise.
+    tau = scale * np.array(DISCREPANCY)
+    disagreement = proxy_disagreement(x, r, r_var, np.zeros(2), np.diag(tau**2), x_groups) \
+        if len(x) else None
     return InversionCurve(velocity_ref=float(velocity_ref), coef=coef, cov=r_cov + a_cov,
                           residual_cov=r_cov, absorption_cov=a_cov,
                           x_groups=tuple(sorted(float(g) for g in x_groups)),
-                          proxy=proxy_r - a_coef[1:], widened=widened)
+                          proxy=proxy_r - a_coef[1:], widened=widened, disagreement=disagreement)
 
 
 @dataclass(frozen=True)
