@@ -37,6 +37,8 @@ __all__ = [
     "InversionEstimate",
     "estimate_inversion",
     "DEFAULT_RESAMPLES",
+    "inversion_contrast_covariance",
+    "shared_fringe_covariance",
 ]
 
 IntervalMethod = Literal["wilson", "clopper_pearson"]
@@ -732,6 +734,78 @@ def _bootstrap_estimate(
         identified=True,
         **common,
     )
+
+
+def inversion_contrast_covariance(empty: FringeFit, one_photon: FringeFit) -> float:
+    """Covariance of the inversion estimate with the empty fringe's contrast estimate.
+
+    Both are read from the same empty fringe: ``I = (a1 - a0) + hypot(b1 - b0, c1 - c0)`` and
+    ``C0 = 2 hypot(b0, c0)``, so the noise of ``theta0 = (a0, b0, c0)`` moves both. The two
+    fields' fits are independent (separate atoms), so by the first-order (multivariate) delta
+    method (G. Casella and R. L. Berger, *Statistical Inference*, 2nd ed., 2002, section
+    5.5.4)::
+
+        cov(I, C0) = grad0(I)^T Sigma0 grad0(C0),
+        grad0(I)  = (-1, -(b1 - b0) / h, -(c1 - c0) / h),   h = hypot(b1 - b0, c1 - c0),
+        grad0(C0) = (0, 2 b0 / rho0, 2 c0 / rho0),          rho0 = hypot(b0, c0),
+
+    with ``Sigma0`` the empty fit's covariance ``(X^T W X)^-1`` (:func:`fit_fringe`). For an
+    inverted fringe (photon phase shift pi) and phases spread evenly over the circle it is about
+    half the contrast's variance: see :func:`shared_fringe_covariance`.
+
+    Raises
+    ------
+    EstimationError
+        A fringe of zero amplitude or two identical fringes (the gradient is not defined).
+    """
+    theta0 = np.asarray(empty.coefficients, dtype=float)
+    theta1 = np.asarray(one_photon.coefficients, dtype=float)
+    delta = theta1 - theta0
+    h = math.hypot(delta[1], delta[2])
+    rho0 = math.hypot(theta0[1], theta0[2])
+    if h <= 0.0 or rho0 <= 0.0:
+        raise EstimationError("inversion_contrast_covariance: expected an empty fringe of nonzero "
+                              f"amplitude ({rho0!r}) differing from the one-photon fringe ({h!r})")
+    grad_inversion = np.array([-1.0, -delta[1] / h, -delta[2] / h])
+    grad_contrast = np.array([0.0, 2.0 * theta0[1] / rho0, 2.0 * theta0[2] / rho0])
+    return float(grad_inversion @ np.asarray(empty.covariance, dtype=float) @ grad_contrast)
+
+
+def shared_fringe_covariance(contrast_empty: float, contrast_empty_stderr: float,
+                             contrast_one_photon: float, phase_shift: float) -> float:
+    """:func:`inversion_contrast_covariance` from a point's summary (no fit needed).
+
+    With phases spread evenly over the circle and near-equal weights, the empty fit's
+    covariance is isotropic, ``Sigma0 = diag(s_a^2, s^2, s^2)`` (the design's cosine and sine
+    columns are orthogonal to each other and to the constant), so ``var(C0) = 4 s^2`` and the
+    delta method gives::
+
+        cov(I, C0) = 2 s^2 cos(angle) = var(C0) / 2 * (C0 - C1 cos(psi)) / hypot(C0 - C1 cos(psi), C1 sin(psi))
+
+    with ``psi`` the photon phase shift (rad): the angle is that between the empty fringe's
+    phasor and the difference of the two fringes', 0 for an inverted fringe (``psi = pi``),
+    where the covariance is half the contrast's variance (the inversion moves half a unit per
+    unit of contrast). Zero where the two fringes coincide (the gradient is not defined).
+
+    Parameters
+    ----------
+    contrast_empty, contrast_one_photon : float
+        Peak-to-peak contrasts ``C0, C1`` (>= 0).
+    contrast_empty_stderr : float
+        Standard error of ``C0`` (>= 0).
+    phase_shift : float
+        Photon phase shift ``psi`` (rad).
+    """
+    values = (contrast_empty, contrast_empty_stderr, contrast_one_photon, phase_shift)
+    if not all(math.isfinite(float(v)) for v in values) or contrast_empty_stderr < 0.0:
+        raise EstimationError("shared_fringe_covariance: expected finite contrasts, phase and a "
+                              f"stderr >= 0, got {values!r}")
+    along = float(contrast_empty) - float(contrast_one_photon) * math.cos(phase_shift)
+    across = float(contrast_one_photon) * math.sin(phase_shift)
+    norm = math.hypot(along, across)
+    if norm <= 0.0:
+        return 0.0
+    return 0.5 * float(contrast_empty_stderr) ** 2 * along / norm
 
 
 def _uninformed_estimate(
