@@ -1,12 +1,9 @@
-"""The inversion and the empty contrast share the empty fringe's noise: their covariance, and the
-velocity model that conditions on both jointly.
+"""The inversion and the empty contrast share the empty fringe's noise: their covariance.
 
 References: the multivariate delta method (G. Casella and R. L. Berger, *Statistical Inference*,
 2nd ed., 2002, section 5.5.4), checked here against a finite-difference gradient
 (scipy.optimize.approx_fprime) and against a Monte Carlo of numpy's binomial draws through the
-estimator itself (fringe.fit_fringe); Gaussian conditioning in its partitioned-covariance form
-(C. M. Bishop, *Pattern Recognition and Machine Learning*, 2006, eq. 2.81-2.82), an independent
-route to the precision form that velocity_model uses; coverage judged with scipy.stats.binomtest.
+estimator itself (fringe.fit_fringe and its batched form).
 """
 
 from __future__ import annotations
@@ -15,9 +12,8 @@ import math
 
 import numpy as np
 import pytest
-from scipy import optimize, stats
+from scipy import optimize
 
-from autotune.analysis import velocity_model as vm
 from autotune.analysis.fringe import (
     FringeData,
     _fit_batch,
@@ -25,7 +21,7 @@ from autotune.analysis.fringe import (
     inversion_contrast_covariance,
     shared_fringe_covariance,
 )
-from autotune.errors import EstimationError, ValueRefused
+from autotune.errors import EstimationError
 
 PHASES = np.linspace(0.0, 2.0 * math.pi, 6, endpoint=False)   # the lock's six even phases
 ATOMS = 330                                                    # detected atoms per phase
@@ -104,93 +100,3 @@ def test_summary_formula_limits_and_bad_input():
     same = _fit(np.round(ATOMS * _p_g(0.5, 0.8, 0.0)).astype(int))
     with pytest.raises(EstimationError, match="nonzero"):
         inversion_contrast_covariance(same, same)
-
-
-# ------------------------------------------------------------------ the velocity model
-
-X = np.array([0.0, 0.0, -0.04, 0.05, 0.09, -0.08])
-SD_C, SD_I = 0.026, 0.026
-SHARED = 0.5 * SD_C**2
-A_COEF = np.array([0.02, 0.0, 3.0])
-
-
-def _curve(rng, shared):
-    n = len(X)
-    cov = np.array([[SD_C**2, SHARED], [SHARED, SD_I**2]])
-    noise = rng.normal(size=(n, 2)) @ np.linalg.cholesky(cov).T
-    contrasts = 0.855 + noise[:, 0]                   # flat empty contrast
-    inversions = 0.73 - 3.0 * X**2 + noise[:, 1]      # r = I + P_e flat: the true slope of I is 0
-    absorptions = 0.02 + 3.0 * X**2
-    return vm.fit_inversion_curve(
-        X, inversions, np.full(n, SD_I**2), absorptions, np.full(n, 1e-8), contrasts,
-        np.full(n, SD_C**2), A_COEF, np.eye(3) * 1e-6, 0.73, 500.0, sorted(set(X)),
-        inversion_contrast_covs=shared)
-
-
-def test_zero_covariance_reproduces_the_independent_model():
-    """Joint conditioning with no shared noise is the contrast's posterior used as the prior."""
-    rng = np.random.default_rng(1)
-    independent = _curve(rng, None)
-    rng = np.random.default_rng(1)
-    joint = _curve(rng, np.full(len(X), 1e-15))
-    np.testing.assert_allclose(joint.coef, independent.coef, atol=1e-10)
-    np.testing.assert_allclose(joint.cov, independent.cov, atol=1e-10)
-    assert joint.widened == independent.widened
-
-
-def test_joint_posterior_is_partitioned_gaussian_conditioning():
-    """velocity_model's precision form equals mu_a + S_ab S_bb^-1 (y - mu_b) (Bishop eq. 2.81-2.82)."""
-    rng = np.random.default_rng(7)
-    n = len(X)
-    design = np.stack([np.ones(n), X, X * X], axis=1)
-    c = 0.85 + rng.normal(0, SD_C, n)
-    r = 0.75 + rng.normal(0, SD_I, n)
-    c_var, r_var = np.full(n, SD_C**2), np.full(n, SD_I**2)
-    shared = np.full(n, SHARED)
-    k = 0.86
-    prior_mean = np.array([0.85, 0.0, 0.0, 0.75, 0.0, 0.0])
-    prior_cov = np.diag([1.0, 2.5**2, 0.4**2, 1.0, 0.07**2, 0.36**2])
-    mean, cov, _ = vm._joint_posterior(design, c, c_var, r, r_var, shared, k, prior_mean, prior_cov)
-    # The joint Gaussian of (theta, y) and its conditional.
-    a = np.zeros((2 * n, 6))
-    a[:n, :3] = design
-    a[n:, 1], a[n:, 2] = k * X, k * X * X
-    a[n:, 3:] = design
-    noise = np.block([[np.diag(c_var), np.diag(shared)], [np.diag(shared), np.diag(r_var)]])
-    s_bb = a @ prior_cov @ a.T + noise
-    s_ab = prior_cov @ a.T
-    y = np.concatenate([c, r])
-    theta_mean = prior_mean + s_ab @ np.linalg.solve(s_bb, y - a @ prior_mean)
-    theta_cov = prior_cov - s_ab @ np.linalg.solve(s_bb, s_ab.T)
-    to_r = np.array([[0, 0, 0, 1, 0, 0], [0, k, 0, 0, 1, 0], [0, 0, k, 0, 0, 1]], dtype=float)
-    np.testing.assert_allclose(mean, to_r @ theta_mean, atol=1e-9)
-    np.testing.assert_allclose(cov, to_r @ theta_cov @ to_r.T, atol=1e-12)
-
-
-def test_the_joint_model_states_the_slope_honestly_where_the_independent_one_does_not():
-    """On a rig with a flat contrast and a flat r, fringe pairs whose inversion and contrast share
-    half the contrast's variance: over 1000 draws the joint model's slope z-score has sd 1 (within
-    0.1) and its 95 % interval covers the true slope at a rate consistent with 95 %
-    (scipy.stats.binomtest, p > 0.001); the independent model's z is wider than it states."""
-    rng = np.random.default_rng(11)
-    z_joint, z_indep = [], []
-    for _ in range(1000):
-        state = rng.bit_generator.state
-        joint = _curve(rng, np.full(len(X), SHARED))
-        rng.bit_generator.state = state
-        indep = _curve(rng, None)
-        z_joint.append(joint.coef[1] / math.sqrt(joint.cov[1, 1]))
-        z_indep.append(indep.coef[1] / math.sqrt(indep.cov[1, 1]))
-    z_joint, z_indep = np.array(z_joint), np.array(z_indep)
-    assert np.std(z_joint) == pytest.approx(1.0, abs=0.1)
-    covered = int(np.sum(np.abs(z_joint) < stats.norm.ppf(0.975)))
-    assert stats.binomtest(covered, 1000, 0.95).pvalue > 1e-3
-    assert np.std(z_indep) > np.std(z_joint) + 0.08
-
-
-def test_bad_covariances_are_refused():
-    rng = np.random.default_rng(2)
-    with pytest.raises(ValueRefused, match="inversion-contrast covariance"):
-        _curve(rng, np.full(len(X) - 1, SHARED))
-    with pytest.raises(ValueRefused, match="inversion-contrast covariance"):
-        _curve(rng, np.full(len(X), float("nan")))

@@ -22,14 +22,6 @@ fourfold again when the measured inversions' marginal likelihood prefers it: whe
 disagree with the proxy, the data decide. This is Bayesian linear regression on the figure of
 merit itself with the error signals as its prior mean.
 
-A point's inversion and its empty contrast are read from the same empty fringe, so their noise
-is correlated: for an inverted fringe the inversion moves half a unit per unit of the contrast's
-noise (the delta method, :func:`autotune.analysis.fringe.inversion_contrast_covariance`). Given
-each point's covariance, the contrasts and the ``r`` values are conditioned on jointly, as
-correlated Gaussian observations of ``(c0, c1, c2, r0, r1 - k c1, r2 - k c2)`` (``k = S / c0``),
-rather than the contrast's posterior being used as an independent prior: one noisy empty fringe
-then no longer pushes the prior's slope and the data the same way as two pieces of evidence.
-
 The velocity optimum is the vertex of ``I(x)`` (a maximum when its curvature is negative);
 it is bracketed when it lies between the smallest and the largest velocity measured.
 
@@ -323,62 +315,12 @@ def proxy_disagreement(xs: Sequence[float], values: Sequence[float], variances: 
         proxy_slope_stderr=math.sqrt(max(proxy_var, 0.0)), z=float(z), p_value=p_value)
 
 
-def _joint_posterior(design: np.ndarray, c: np.ndarray, c_var: np.ndarray, r: np.ndarray,
-                     r_var: np.ndarray, shared: np.ndarray, k: float, prior_mean: np.ndarray,
-                     prior_cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-    """Posterior of ``(r0, r1, r2)`` from the contrasts and the ``r`` values observed jointly.
-
-    The parameters are ``theta = (g0, g1, g2, r0, d1, d2)``: the contrast's quadratic ``g``
-    and ``r = r0 + (k g1 + d1) x + (k g2 + d2) x^2``, ``d`` the discrepancy. Each point gives
-    the pair ``(C0_i, r_i)`` with covariance ``[[c_var, shared], [shared, r_var]]`` (the same
-    empty fringe's noise, :func:`autotune.analysis.fringe.shared_fringe_covariance`), pairs
-    independent of each other. The posterior of a linear-Gaussian model with correlated noise
-    (C. M. Bishop, *Pattern Recognition and Machine Learning*, 2006, sections 2.3.1-2.3.3):
-    ``Sigma_post^-1 = A^T N^-1 A + P^-1``, ``mu = Sigma_post (A^T N^-1 y + P^-1 m)``; the log
-    evidence is that of ``y ~ N(A m, N + A P A^T)`` (constants dropped). Returns the mean,
-    covariance and log evidence of ``(r0, r1, r2)``.
-    """
-    n = len(c)
-    zeros = np.zeros((n, 3))
-    # r's design in theta: (0, k x, k x^2, 1, x, x^2).
-    r_design = np.concatenate([np.stack([np.zeros(n), k * design[:, 1], k * design[:, 2]], 1),
-                               design], axis=1)
-    a = np.concatenate([np.concatenate([design, zeros], axis=1), r_design], axis=0)
-    y = np.concatenate([c, r])
-    noise = np.zeros((2 * n, 2 * n))
-    idx = np.arange(n)
-    noise[idx, idx] = c_var
-    noise[n + idx, n + idx] = r_var
-    noise[idx, n + idx] = shared
-    noise[n + idx, idx] = shared
-    noise_inv = np.linalg.inv(noise)
-    prior_precision = np.linalg.inv(prior_cov)
-    cov = np.linalg.inv(a.T @ noise_inv @ a + prior_precision)
-    cov = 0.5 * (cov + cov.T)
-    mean = cov @ (a.T @ noise_inv @ y + prior_precision @ prior_mean)
-    marginal = noise + a @ prior_cov @ a.T
-    residual = y - a @ prior_mean
-    _, logdet = np.linalg.slogdet(marginal)
-    evidence = float(-0.5 * residual @ np.linalg.solve(marginal, residual) - 0.5 * logdet)
-    to_r = np.array([[0.0, 0.0, 0.0, 1.0, 0.0, 0.0],
-                     [0.0, k, 0.0, 0.0, 1.0, 0.0],
-                     [0.0, 0.0, k, 0.0, 0.0, 1.0]])
-    r_cov = to_r @ cov @ to_r.T
-    return to_r @ mean, 0.5 * (r_cov + r_cov.T), evidence
-
-
-#: Largest correlation of a point's inversion with its empty contrast that the joint model
-#: takes (keeps each pair's covariance positive definite).
-_MAX_SHARED_CORRELATION = 0.95
-
-
 def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
                         inversion_vars: Sequence[float], absorptions: Sequence[float],
                         absorption_vars: Sequence[float], contrasts: Sequence[float],
                         contrast_vars: Sequence[float], absorption_coef: np.ndarray,
                         absorption_cov: np.ndarray, scale: float, velocity_ref: float,
-                        x_groups: Sequence[float],
-                        inversion_contrast_covs: Sequence[float] | None = None) -> InversionCurve:
+                        x_groups: Sequence[float]) -> InversionCurve:
     """The posterior of the inversion along velocity (see the module notes).
 
     Parameters
@@ -399,13 +341,6 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
         Reference velocity of ``x`` (m/s).
     x_groups : sequence of float
         The distinct ``x`` measured.
-    inversion_contrast_covs : sequence of float, optional
-        Each point's covariance of its (corrected) inversion with its empty contrast: both are
-        read from the same empty fringe (:func:`autotune.analysis.fringe.shared_fringe_covariance`).
-        With it the contrasts and the ``r`` values are conditioned on jointly, as the
-        correlated Gaussian observations they are, so that a noisy empty fringe is not counted
-        once in the prior's slope and again in the data; without it (or all zero) they are
-        taken as independent.
     """
     x = np.asarray(xs, dtype=float)
     design = np.stack([np.ones(len(x)), x, x * x], axis=1)
@@ -418,9 +353,8 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     # curvature: over +-10 % of velocity the dephasing law exp(-(k / v^2)^2 / 2) is nearly
     # linear in x for contrasts above about 0.5 (its curvature term is second order), and a
     # free curvature fitted to a few noisy contrasts would swamp the absorption's.
-    c_prior_mean = np.array([c_mean, 0.0, 0.0])
     c_prior = np.diag([1.0, (3.0 * c_level) ** 2, (CONTRAST_CURVATURE * c_level) ** 2])
-    c_coef, c_cov, _ = _posterior(design, c, c_var, c_prior_mean, c_prior)
+    c_coef, c_cov, _ = _posterior(design, c, c_var, np.array([c_mean, 0.0, 0.0]), c_prior)
     k = scale / max(float(c_coef[0]), _MIN_SCALE)
     proxy_r = k * c_coef[1:]
     proxy_r_cov = k * k * c_cov[1:, 1:]
@@ -428,34 +362,15 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
     r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
                        + np.asarray(absorption_vars, dtype=float), 1e-8)
-    if inversion_contrast_covs is None:
-        shared = np.zeros(len(x))
-    else:
-        shared = np.asarray(inversion_contrast_covs, dtype=float)
-        if shared.shape != x.shape or not np.all(np.isfinite(shared)):
-            raise ValueRefused(f"fit_inversion_curve: expected one finite inversion-contrast "
-                               f"covariance per point ({len(x)}), got {shared.tolist()!r}")
-        bound = _MAX_SHARED_CORRELATION * np.sqrt(c_var * r_var)
-        shared = np.clip(shared, -bound, bound)
-    joint = bool(np.any(shared != 0.0))
-    r0_mean = scale + float(np.mean(absorptions)) if len(x) else scale
     best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
     for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
-        if joint:
-            prior_mean = np.array([*c_prior_mean, r0_mean, 0.0, 0.0])
-            prior_cov = np.zeros((6, 6))
-            prior_cov[:3, :3] = c_prior
-            prior_cov[3, 3] = 1.0
-            prior_cov[4:, 4:] = np.diag(tau**2)
-            mean, cov, evidence = _joint_posterior(design, c, c_var, r, r_var, shared, k,
-                                                   prior_mean, prior_cov)
-        else:
-            prior_cov = np.zeros((3, 3))
-            prior_cov[0, 0] = 1.0
-            prior_cov[1:, 1:] = proxy_r_cov + np.diag(tau**2)
-            prior_mean = np.array([r0_mean, *proxy_r])
-            mean, cov, evidence = _posterior(design, r, r_var, prior_mean, prior_cov)
+        prior_cov = np.zeros((3, 3))
+        prior_cov[0, 0] = 1.0
+        prior_cov[1:, 1:] = proxy_r_cov + np.diag(tau**2)
+        prior_mean = np.array([scale + float(np.mean(absorptions)) if len(x) else scale,
+                               *proxy_r])
+        mean, cov, evidence = _posterior(design, r, r_var, prior_mean, prior_cov)
         if best is None or evidence > best[0] + 1e-9:
             best = (evidence, mean, cov, widened)
     assert best is not None
