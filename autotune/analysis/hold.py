@@ -52,18 +52,14 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   beat a few large ones because a statistic above the warning level brings the next check at
   once: the step waits about half an interval for its first check, and the checks that
   confirm it come back to back. The warning level sets how often that first check is enough
-  (:func:`flag_probability`, for the step as the check reads it: :func:`step_reading`, the
-  fringe's phase on the 2π pulse's law ``2 atan(s D / 2)`` read on the check's own line, about
-  13 kHz for a 15 kHz step) and how many in-control checks are followed by a recheck
+  (:func:`flag_probability`) and how many in-control checks are followed by a recheck
   (:func:`in_control_rechecks`), both from the Brook-Evans Markov chain of the CUSUM
   (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
   share, and the false-alarm design in rig time counts their shorter gaps. A check that leaves
   a phase chart between half its warning level and the warning level brings the next one after
   half the interval (a CUSUM with variable sampling intervals: M. R. Reynolds, R. W. Amin and
   J. C. Arnold, Technometrics 32, 371 (1990); :func:`in_control_sooner`, :func:`next_check`),
-  counted in the share and the false-alarm design alike. When what the ceiling leaves beyond
-  the recoveries expected in the rest of the night pays for more than half the budget, the
-  checks may take up to 0.6 of it if that confirms the step sooner (:func:`plan_night`).
+  counted in the share and the false-alarm design alike.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
