@@ -50,11 +50,6 @@ OPEN_NIGHT_HORIZON_S = 3600.0
 # gamma-Poisson estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the
 # night's retunes (:data:`RECOVERY_PRIOR_S`), and the plan states whether the rest pays for them.
 _CHECK_SHARE = 0.5
-# Most of the budget the checks may take when what is left pays for more than their half and
-# for the recoveries expected in the rest of the night (:func:`plan_night`): denser checks
-# confirm a step sooner at the same false-alarm rate in rig time (the thresholds are set per
-# hour, not per check).
-_DENSER_SHARE = 0.6
 
 
 @dataclass(frozen=True)
@@ -184,26 +179,11 @@ def plan_night(settings: HoldSettings, *, budget: BeamBudget, rows: Sequence[Seq
         return None, share
     noise = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in rows])
     inversion, stderr = reference_value(reference)
-    signal = SignalModel.from_rows(rows)
-
-    def planned(check_share: float) -> CheckPlan:
-        return plan_checks(settings, noise=noise, prior=prior, lock=lock,
-                           reference_inversion=inversion, reference_stderr=stderr,
-                           check_share=check_share, step_hz=step_hz, signal=signal,
-                           step_rate_per_s=share["recoveries_per_h"] / 3600.0)
-
-    plan = planned(share["share"])
-    # What is left beyond the recoveries expected in the rest of the night may buy denser
-    # checks, up to _DENSER_SHARE of the budget, when they confirm the planned step sooner.
-    denser = min(share["allowance"], _DENSER_SHARE * budget.fraction,
-                 budget.left_s / share["remaining_s"])
-    share["denser"] = False
-    if denser > 1.05 * share["share"]:
-        trial = planned(denser)
-        if trial.step_delay_s < plan.step_delay_s:
-            plan = trial
-            share.update(share=denser, denser=True, recoveries_left_s=max(
-                budget.left_s - denser * share["remaining_s"], 0.0))
+    plan = plan_checks(settings, noise=noise, prior=prior, lock=lock,
+                       reference_inversion=inversion, reference_stderr=stderr,
+                       check_share=share["share"], step_hz=step_hz,
+                       signal=SignalModel.from_rows(rows),
+                       step_rate_per_s=share["recoveries_per_h"] / 3600.0)
     return plan, share
 
 

@@ -560,10 +560,8 @@ class Night:
                       "next": {"point": point, "due_clock": due, "recheck": False,
                                "shots_per_phase": plan.shots_per_phase},
                       "replan_clock": self.session.clock + _REPLAN_S}
-        denser = (" (more than half the budget: what is left beyond the recoveries expected "
-                  "buys denser checks that confirm a step sooner)" if budget.get("denser") else "")
         self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
-                       f"of the beam{denser} (budget {self.settings.budget_fraction:.0%}, a ceiling of "
+                       f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
                        f"{budget['ceiling_s'] / 60:.1f} min, {budget['holding_beam_s'] / 60:.1f} "
                        f"min spent, "
                        f"{budget['recoveries_left_s'] / 60:.1f} min left for recoveries, "
