@@ -426,7 +426,10 @@ def step_reading(shift_hz: float, prior: LockPrior) -> tuple[float, float]:
     slope), measured through the mixture's law (:func:`~autotune.analysis.lock_fit.
     mixture_measured_phase`) and read back by the check's own :func:`peak_offset`. The check's
     line (and a known cubic, when the stored curve has one) does not follow the bend, so the
-    offset read is smaller than the shift: the planner's expected reading of a step.
+    offset read is smaller than the shift: a 15 kHz step reads about 13 kHz. The plan states
+    the first check's chance to flag the step so read beside the full step's
+    (:func:`autotune.analysis.hold_plan.plan_checks`); it is not yet chosen on (choosing on it
+    was measured and not kept: benchmarks/README.md, session 8).
     ``noise_scale`` is the standard error :func:`peak_offset` gives that reading over the one
     it gives at the peak, for the same phase noise (1 on the line; the mixture's law and a
     cubic change it), so that the innovation's variance at the step is ``P^- + R scale^2``.
