@@ -119,6 +119,8 @@ from autotune.analysis.hold_lock import (
     floor_shift_hz,
     known_cubic,
     peak_offset,
+    step_reading,
+    two_pi_pulse_phase_rad,
     two_sided_arl,
 )
 from autotune.analysis.hold_plan import (
@@ -157,6 +159,8 @@ __all__ = [
     "floor_phase_rad",
     "known_cubic",
     "peak_offset",
+    "two_pi_pulse_phase_rad",
+    "step_reading",
     "Assessment",
     "assess_check",
     "peak_after_change",

@@ -38,6 +38,8 @@ __all__ = [
     "floor_shift_hz",
     "floor_phase_rad",
     "peak_offset",
+    "two_pi_pulse_phase_rad",
+    "step_reading",
 ]
 
 #: Siegmund's correction of the CUSUM threshold for the overshoot of a Gaussian random walk:
@@ -396,3 +398,45 @@ def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> 
     derivative = mixture_phase_gain(error_rad, q)
     return detuning_offset(error, abs(derivative) * error_stderr_rad,
                            (1.0 - q) * prior.slope_rad_per_hz, 0.0, 0.0, 0.0)
+
+
+def two_pi_pulse_phase_rad(shift_hz: float, slope_rad_per_hz: float) -> float:
+    """The one-photon phase error of a set-point ``shift_hz`` from the peak, on the law of a 2π
+    pulse whose slope at the peak is ``slope_rad_per_hz``: ``eps = 2 atan(s D / 2)`` (rad).
+
+    A pulse ``Omega(t) = Omega_0 sech(t / T)`` of area 2π returns the atom to g at every
+    detuning ``Delta`` with ``a_g = -(1 - i Delta T) / (1 + i Delta T)`` (the Rosen-Zener
+    solution, N. Rosen and C. Zener, Phys. Rev. 40, 502 (1932); the 2π pulse of self-induced
+    transparency, S. L. McCall and E. L. Hahn, Phys. Rev. 183, 457 (1969)): its phase error
+    ``2 atan(Delta T)`` is linear near the peak, with slope ``2 T``, and bends towards ±π
+    away from it. The Gaussian mode's 2π crossing follows the same law to within 0.5 % of the
+    phase at 15 kHz (docs/physics.md section 5b; tests/test_hold_step_reading.py against
+    qutip), so a check 15 kHz from the peak sees about 13 kHz on the stored slope's line.
+    """
+    s = float(slope_rad_per_hz)
+    return 2.0 * math.atan(0.5 * s * float(shift_hz))
+
+
+def step_reading(shift_hz: float, prior: LockPrior) -> tuple[float, float]:
+    """What a check reads, without noise, when the set-point is ``shift_hz`` from the peak:
+    ``(offset_hz, noise_scale)``.
+
+    The phase error of the shift is the 2π pulse's (:func:`two_pi_pulse_phase_rad`) on the
+    one-photon slope ``(1 - q) s`` (``q`` the source's empty fraction, ``s`` the stored measured
+    slope), measured through the mixture's law (:func:`~autotune.analysis.lock_fit.
+    mixture_measured_phase`) and read back by the check's own :func:`peak_offset`. The check's
+    line (and a known cubic, when the stored curve has one) does not follow the bend, so the
+    offset read is smaller than the shift: a 15 kHz step reads about 13 kHz. The plan states
+    the first check's chance to flag the step so read beside the full step's
+    (:func:`autotune.analysis.hold_plan.plan_checks`); it is not yet chosen on (choosing on it
+    was measured and not kept: benchmarks/README.md, session 8).
+    ``noise_scale`` is the standard error :func:`peak_offset` gives that reading over the one
+    it gives at the peak, for the same phase noise (1 on the line; the mixture's law and a
+    cubic change it), so that the innovation's variance at the step is ``P^- + R scale^2``.
+    """
+    q = float(prior.mixture_empty_fraction)
+    one_photon = (1.0 - q) * float(prior.slope_rad_per_hz)
+    measured = float(mixture_measured_phase(two_pi_pulse_phase_rad(shift_hz, one_photon), q))
+    offset, spread = peak_offset(measured, 1.0, prior)
+    _, at_peak = peak_offset(0.0, 1.0, prior)
+    return float(offset), float(spread / at_peak) if at_peak > 0.0 else 1.0

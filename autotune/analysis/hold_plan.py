@@ -30,6 +30,7 @@ from autotune.analysis.hold_lock import (
     cusum_threshold,
     floor_phase_rad,
     floor_shift_hz,
+    step_reading,
 )
 from autotune.analysis.hold_signal import USABLE_Z, NoiseModel, SignalModel
 from autotune.errors import ValueRefused
@@ -281,9 +282,11 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
                slope: float, design: float, shifts: np.ndarray, step_hz: float,
                noise: NoiseModel, lock: DriftLock, reference_inversion: float,
                reference_stderr: float, warning_fraction: float,
-               steady: dict[tuple[float, int], tuple[float, float]]) -> dict[str, Any]:
+               steady: dict[tuple[float, int], tuple[float, float]],
+               step_read: tuple[float, float]) -> dict[str, Any]:
     """The numbers of checks of ``per_phase`` shots every ``interval`` s, warning level
-    ``warning_fraction`` of each threshold (``steady`` caches the filter's steady state)."""
+    ``warning_fraction`` of each threshold (``steady`` caches the filter's steady state;
+    ``step_read`` is :func:`step_reading` of ``step_hz``)."""
     phases = settings.ramsey_phases
     shots = measurement_shots(phases, per_phase)
     check_s = shots / settings.repetition_rate_hz
@@ -323,6 +326,13 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
     w, w_inv = warning_fraction * h, warning_fraction * h_inv
     step_sd = step_hz / innovation_sd
     flag = flag_probability(step_sd, k, h, w) if step_sd > k else 0.0
+    # The step as the check reads it (step_reading: the fringe's bend and the check's own
+    # line), over the innovation's deviation at that reading: stated beside the full step's,
+    # not chosen on (benchmarks/README.md, session 8: choosing on it shortened main's
+    # recoveries but cost a velocity-physics night its budget and a step).
+    step_read_hz, step_scale = step_read
+    read_z = abs(step_read_hz) / math.sqrt(p_prior + detuning_var * step_scale**2)
+    read_flag = flag_probability(read_z, k, h, w) if read_z > k else 0.0
     return {"interval_s": interval, "shots_per_phase": per_phase, "check_s": check_s,
             "detuning_stderr_hz": math.sqrt(detuning_var),
             "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv),
@@ -331,7 +341,8 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
             "step_delay_s": _delay(step_sd, k, h, w, interval, check_s, flag=flag),
             "step_delay_late_s": _delay(step_sd, k, h, w, interval, check_s, late=True,
                                         flag=flag),
-            "step_flag": flag,
+            "step_flag": flag, "step_z": step_sd, "step_read_hz": abs(step_read_hz),
+            "step_read_z": read_z, "step_read_flag": read_flag,
             "false_alarm_interval_h": arl * gap / 3600.0, "tracking_error_hz": tracking,
             "innovation_sd_hz": innovation_sd, "design_snr": design / innovation_sd}
 
@@ -431,7 +442,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     common = {"phase_var": phase_var, "slope": slope, "design": design, "shifts": shifts,
               "step_hz": step_hz, "noise": noise, "lock": lock,
               "reference_inversion": reference_inversion, "reference_stderr": reference_stderr,
-              "steady": {}}
+              "steady": {}, "step_read": step_reading(step_hz, prior)}
     top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     best, fallback = _search_cadences(settings, check_share=check_share, top=top,
                                       step_rate_per_s=step_rate_per_s, least_at=least_at,
@@ -445,7 +456,8 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
                        common=common)
     row["expected_delay_s"] = _expected_delay(row)
     for name in ("innovation_sd_hz", "design_snr", "recheck_share", "sooner_share", "mean_gap_s",
-                 "step_delay_late_s", "step_flag"):
+                 "step_delay_late_s", "step_flag", "step_z", "step_read_hz", "step_read_z",
+                 "step_read_flag"):
         inputs[name] = row[name]
     share = row["check_s"] / row["mean_gap_s"]
     return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
@@ -605,8 +617,11 @@ def _plan_reason(row: Mapping[str, Any], why: str, *, share: float, step_hz: flo
             f"{row['false_alarm_interval_h']:.0f} h, Siegmund); a {step_hz / 1e3:.0f} kHz step "
             f"is confirmed {row['step_delay_s'] / 60:.1f} min after it in the mean, "
             f"{row['step_delay_late_s'] / 60:.1f} min when it comes just after a check (its "
-            f"first check passes the warning level with probability {row['step_flag']:.2f}; "
-            f"Brook-Evans chain), a shift at the design {row['expected_delay_s'] / 60:.1f} min "
+            f"first check passes the warning level with probability {row['step_flag']:.2f}, "
+            f"z {row['step_z']:.1f}; as the check reads it, {row['step_read_hz'] / 1e3:.1f} kHz "
+            f"on the fringe's 2π-pulse law, z {row['step_read_z']:.1f}, with probability "
+            f"{row['step_read_flag']:.2f}; Brook-Evans chain), a shift at the design "
+            f"{row['expected_delay_s'] / 60:.1f} min "
             f"(mean over the shifts to the capture range)")
 
 
