@@ -659,6 +659,27 @@ def test_a_night_that_never_started_is_listed_with_its_reason():
 
 
 @_READS_NIGHT_STUDY
+def test_a_night_result_with_a_step_never_recovered_reprints(night_study, tmp_path, capsys):
+    """A step that never recovered is an infinite recovery; the file stores it as "inf"
+    (strict JSON, RFC 8259 has no infinity) and --show prints the same table as the study in
+    memory instead of failing on the string."""
+    import copy
+
+    study = copy.deepcopy(night_study)
+    family = study["night_study"]["families"][0]
+    track = study["night_study"]["summary"][family]["track"]
+    track["recovery_s_max"] = math.inf
+    track["recovery_s_q"] = [track["recovery_s_q"][0], math.inf, math.inf]
+    path = tmp_path / "night.json"
+    bench.write_result(study, path)
+    assert '"inf"' in path.read_text(encoding="utf-8")
+    assert bench.main(["--show", str(path)]) == 0
+    shown = capsys.readouterr().out.rstrip("\n")
+    assert shown == bench.format_table(study)
+    assert "recovery worst never" in shown and "never min" not in shown
+
+
+@_READS_NIGHT_STUDY
 def test_the_night_result_reprints_from_its_file(night_study, tmp_path, capsys):
     """A night-only result file is strict JSON and --show prints its table."""
     path = tmp_path / "night.json"

@@ -35,6 +35,23 @@ def write_result(study: Mapping[str, Any], path: Path) -> None:
                     encoding="utf-8")
 
 
+def read_result(path: Path) -> dict[str, Any]:
+    """A result file as ``write_result`` wrote it, with its infinities ("inf"/"-inf", e.g. a
+    step that never recovered) read back as floats, so that the tables print it as they
+    printed the study in memory."""
+    return json.loads(path.read_text(encoding="utf-8"), object_hook=_infinities)
+
+
+def _infinities(obj: dict[str, Any]) -> dict[str, Any]:
+    def back(value: Any) -> Any:
+        if isinstance(value, str) and value in ("inf", "-inf"):
+            return float(value)
+        if isinstance(value, list):
+            return [back(x) for x in value]
+        return value
+    return {key: back(value) for key, value in obj.items()}
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """``python -m autotune.bench [--quick | --tiny] [--out PATH] ...``; returns the exit code.
 
@@ -99,7 +116,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     ns = parser.parse_args(argv)
     if ns.show is not None:
         try:
-            study = json.loads(ns.show.read_text(encoding="utf-8"))
+            study = read_result(ns.show)
             print(format_table(study))
         except (OSError, ValueError, KeyError, TypeError) as exc:
             print(f"error: cannot show {ns.show}: {type(exc).__name__}: {exc}", file=sys.stderr)

@@ -27,6 +27,12 @@ def number_text(value: float | str | None, digits: int = 0, scale: float = 1.0) 
     return f"{value / scale:,.{digits}f}"
 
 
+def _minutes_text(seconds: float) -> str:
+    """A recovery in minutes to 0.1, or "never" (an infinite recovery)."""
+    text = number_text(seconds / 60, 1)
+    return text if text == "never" else f"{text} min"
+
+
 def _q(values: Sequence[float], digits: int = 0, scale: float = 1.0) -> str:
     return f"{number_text(values[1], digits, scale)} [{number_text(values[0], digits, scale)}-" \
            f"{number_text(values[2], digits, scale)}]"
@@ -69,7 +75,7 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
                 f"{', '.join(f'{x:.3f}' for x in t['fraction_097_all'])}; beam on holding at "
                 f"most {t['holding_share_max']:.2%}; nights over the {budget:.0%} budget: "
                 f"{t['over_budget']} of {t['nights']}; recovery worst "
-                f"{number_text(t['recovery_s_max'] / 60, 1)} min")
+                f"{_minutes_text(t['recovery_s_max'])}")
         lines.extend(nights_not_run(night.get("runs") or [], family))
         lines.append(header)
         for label, row in night["summary"][family].items():
