@@ -38,6 +38,7 @@ __all__ = [
     "floor_shift_hz",
     "floor_phase_rad",
     "peak_offset",
+    "reading_phase_sd",
     "two_pi_pulse_phase_rad",
     "step_reading",
 ]
@@ -398,6 +399,51 @@ def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> 
     derivative = mixture_phase_gain(error_rad, q)
     return detuning_offset(error, abs(derivative) * error_stderr_rad,
                            (1.0 - q) * prior.slope_rad_per_hz, 0.0, 0.0, 0.0)
+
+
+def reading_phase_sd(phase_sd_at_peak_rad: float, error_rad: float, empty_fraction: float,
+                     contrast_empty: float, contrast_one_photon: float) -> float:
+    """The standard error of a check's measured phase error ``psi`` at its own reading (rad),
+    from the pooled one ``phase_sd_at_peak_rad`` of checks at the peak and the check's own
+    measured fringes.
+
+    A poor one-photon source (``empty_fraction`` ``q = p0 / p1 > 0``) measures the one-photon
+    fringe with amplitude ``p1 |e^{i eps} - q|`` (docs/physics.md section 5b; ``eps`` the
+    one-photon phase error, :func:`~autotune.analysis.lock_fit.mixture_phase_error`): ``1 - q``
+    of ``p1`` at the peak, ``r = |e^{i eps} - q| / (1 - q)`` times that at the reading, so the
+    check's one-photon contrast ``C1`` stood at ``C1 / r`` at the peak. A fringe of contrast
+    ``C`` fitted to ``N`` detected atoms has ``Var chi = (2 - C^2 / 2) / (N C^2)``
+    (:class:`~autotune.analysis.hold_signal.SignalModel`, binomial least squares and the delta
+    method), and the photon phase shift is the difference of the empty and the one-photon
+    fringe, each on half of the shots, so the phase variance at the reading is the pooled one
+    times ``[v(C0) + v(C1)] / [v(C0) + v(C1 / r)]`` with ``v(C) = (2 - C^2 / 2) / C^2`` and the
+    check's own contrasts ``C0``, ``C1`` (equal atoms in both fields assumed). The ratio is
+    between ``1 / r^2`` and 1, so the check's own noisy contrast moves it little; a pure photon
+    (``q = 0``: ``r = 1``) keeps the pooled value exactly. Carried through the law's derivative
+    at the reading (:func:`peak_offset`, the delta method: G. Casella and R. L. Berger,
+    Statistical Inference, 2nd ed. (2002), section 5.5.4), it is the reading's own noise:
+    the pooled noise of the peak carried through the law's larger gain far from the peak
+    overstates it (2.6 times the peak's at ``eps`` 1 rad, ``q`` 0.6, against 1.25 on the
+    fringe's own; benchmarks/README.md, session 8). Not yet read by the check
+    (:func:`autotune.analysis.hold_check.assess_check`): wired in, it left the dev nights as
+    they were, the first check after a step being dominated by the lock's own uncertainty of
+    the peak (benchmarks/README.md, "Session 8, a poor source's check read with its own noise").
+    """
+    q = float(empty_fraction)
+    sd = float(phase_sd_at_peak_rad)
+    if q <= 0.0:
+        return sd
+    eps = float(mixture_phase_error(float(error_rad), q))
+    r = abs(complex(math.cos(eps) - q, math.sin(eps))) / (1.0 - q)
+
+    def per_atom(contrast: float) -> float:
+        c = min(max(float(contrast), 1e-3), 1.0)
+        return (2.0 - 0.5 * c * c) / (c * c)
+
+    c0 = contrast_empty if is_finite_number(contrast_empty) else 0.0
+    c1 = contrast_one_photon if is_finite_number(contrast_one_photon) else 0.0
+    ratio = (per_atom(c0) + per_atom(c1)) / (per_atom(c0) + per_atom(float(c1) / r))
+    return sd * math.sqrt(min(max(ratio, 0.0), 1.0))
 
 
 def two_pi_pulse_phase_rad(shift_hz: float, slope_rad_per_hz: float) -> float:
