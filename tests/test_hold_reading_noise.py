@@ -1,6 +1,4 @@
-"""A check's detuning reading, read with its own noise on a poor one-photon source
-(hold_lock.reading_phase_sd: measured on the dev nights and not wired into the check, see
-benchmarks/README.md, session 8; kept with this test for the check that will read it).
+"""A check's detuning reading, read with its own noise on a poor one-photon source.
 
 Outside references: the fringe of a mixed field ``p0 |0> + p1 |1>`` is the photon-number
 average of the pure fringes, so its amplitude is ``p0 - p1 e^{i eps}`` (docs/physics.md section
@@ -21,10 +19,15 @@ import math
 
 import numpy as np
 import pytest
-from hold_helpers import DEMO_SLOPE, demo_prior
+from hold_helpers import DEMO_SLOPE, demo_prior, hold_settings
 
 from autotune.analysis.fringe import FringeData, fit_fringe
 from autotune.analysis.hold import (
+    CheckPlan,
+    DriftLock,
+    NoiseModel,
+    SequentialTest,
+    assess_check,
     peak_offset,
     reading_phase_sd,
 )
@@ -59,6 +62,14 @@ def _draws(rng: np.random.Generator, q: float, eps: float, k: int) -> list[Point
     return out
 
 
+def _plan() -> CheckPlan:
+    test = SequentialTest(1.0, 3.5, 1.75, 0.4, 6.0, 3.0)
+    return CheckPlan(interval_s=600.0, shots_per_phase=ATOMS, check_s=24.0, check_share=0.04,
+                     detuning_stderr_hz=3000.0, design_shift_hz=5400.0, test=test,
+                     expected_delay_s=600.0, step_delay_s=400.0, false_alarm_interval_h=80.0,
+                     tracking_error_hz=800.0, reason="test", inputs={})
+
+
 def _prior(q: float):
     return dataclasses.replace(demo_prior(), slope_rad_per_hz=DEMO_SLOPE / (1.0 - q),
                                mixture_empty_fraction=q)
@@ -69,28 +80,32 @@ def _error(r: PointResult) -> float:
     return (r.phase_shift - math.pi + math.pi) % (2.0 * math.pi) - math.pi
 
 
-def _z(results: list[PointResult], q: float, pooled: float) -> np.ndarray:
-    """Each check's reading (the check's own peak_offset) minus the readings' mean, over the
-    standard error stated with the pooled phase noise carried to the reading by
-    reading_phase_sd: the statistic whose unit variance the charts' thresholds assume.
-    Checks beyond the capture range (+-0.6 pi, LockSettings' default; gated out of the lock
-    and repeated) are not counted: at most 1 %."""
+def _z(results: list[PointResult], q: float, noise: NoiseModel) -> np.ndarray:
+    """The innovation's z of each check through assess_check, held at 0 Hz, against a lock that
+    knows to 1 Hz the peak where the checks' readings put it on average (their mean offset by
+    the check's own peak_offset): z is then each reading's deviation over its stated standard
+    error, the statistic whose unit variance the charts' thresholds assume."""
     prior = _prior(q)
-    kept = [r for r in results if abs(_error(r)) < 0.6 * math.pi]
-    assert len(kept) >= 0.99 * len(results)
-    read = [(peak_offset(_error(r), 1.0, prior)[0],
-             peak_offset(_error(r), reading_phase_sd(math.sqrt(pooled), _error(r), q,
-                                                     r.contrast_empty, r.contrast_one_photon),
-                         prior)[1]) for r in kept]
-    offsets = np.array([x for x, _ in read])
-    return (offsets - offsets.mean()) / np.array([sd for _, sd in read])
+    mean_offset = float(np.mean([peak_offset(_error(r), 1.0, prior)[0] for r in results]))
+    settings = hold_settings()
+    lock = DriftLock.start(600.0, -mean_offset, 1.0, 0.0, 1e-6, 0.0)
+    z = []
+    for r in results:
+        a = assess_check(settings, result=r, detuning_hz=0.0, lock=lock, prior=prior,
+                         plan=_plan(), upper=0.0, lower=0.0, inversion=0.0,
+                         reference_inversion=0.5, reference_stderr=0.02, next_interval_s=600.0,
+                         noise=noise)
+        if a.usable:  # else gated out of the lock (the capture range), the check repeated
+            z.append(a.innovation.z)
+    assert len(z) >= 0.99 * len(results)
+    return np.asarray(z)
 
 
 @pytest.mark.parametrize("q", [0.0, 0.6])
 def test_a_checks_z_has_unit_variance_at_and_away_from_the_peak(q):
     """Seeded checks at the peak and at one-photon phase errors of 0.5 and 0.8 rad (8 and 13 kHz
     on the 2π pulse's law at the demo slope): the pooled phase noise is measured on checks at
-    the peak (as the night's NoiseModel pools it), and the z stated with reading_phase_sd has variance 1 within four
+    the peak (the night's NoiseModel), and the z the check states has variance 1 within four
     of its sampling errors at every reading, on a good source and on a poor one (q 0.6). The
     peak's pooled noise carried through the law's gain alone (the reading before) states
     z of variance below 0.5 at 0.8 rad on the poor source: a step seen at a fraction of its z.
@@ -98,10 +113,11 @@ def test_a_checks_z_has_unit_variance_at_and_away_from_the_peak(q):
     rng = np.random.default_rng(20261205)
     peak = _draws(rng, q, 0.0, 3000)
     pooled = float(np.mean([_error(r) ** 2 for r in peak]))
+    noise = NoiseModel(pooled * SHOTS, 0.05**2 * SHOTS, len(peak))
     k = 1500
     for eps in (0.0, 0.5, 0.8):
         results = peak[:k] if eps == 0.0 else _draws(rng, q, eps, k)
-        z = _z(results, q, pooled)
+        z = _z(results, q, noise)
         assert np.var(z, ddof=1) == pytest.approx(1.0, abs=4.0 * math.sqrt(2.0 / k)), (q, eps)
         if q > 0.0 and eps == 0.8:
             prior = _prior(q)

@@ -25,6 +25,7 @@ from autotune.analysis.hold_lock import (
     Innovation,
     SequentialTest,
     peak_offset,
+    reading_phase_sd,
 )
 from autotune.analysis.hold_plan import CheckPlan
 from autotune.analysis.hold_signal import NoiseModel
@@ -151,7 +152,11 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                              wrap_sigmas=settings.lock.phase_wrap_sigmas)
     phase_sd, inversion_sd = result.phase_shift_stderr, result.inversion_stderr
     if noise is not None and result.shots > 0:
-        phase_sd = math.sqrt(noise.phase_variance_shots / result.shots)
+        # The pooled noise is the peak's; a poor source's one-photon fringe is stronger at the
+        # check's own reading (hold_lock.reading_phase_sd; unchanged on a pure photon).
+        phase_sd = reading_phase_sd(math.sqrt(noise.phase_variance_shots / result.shots),
+                                    error, prior.mixture_empty_fraction,
+                                    result.contrast_empty, result.contrast_one_photon)
         inversion_sd = math.sqrt(noise.inversion_variance_shots / result.shots)
     inv_sd = math.sqrt(inversion_sd**2 + reference_stderr**2)
     inversion_z = (reference_inversion - result.inversion) / inv_sd if inv_sd > 0 else 0.0

@@ -424,10 +424,7 @@ def reading_phase_sd(phase_sd_at_peak_rad: float, error_rad: float, empty_fracti
     Statistical Inference, 2nd ed. (2002), section 5.5.4), it is the reading's own noise:
     the pooled noise of the peak carried through the law's larger gain far from the peak
     overstates it (2.6 times the peak's at ``eps`` 1 rad, ``q`` 0.6, against 1.25 on the
-    fringe's own; benchmarks/README.md, session 8). Not yet read by the check
-    (:func:`autotune.analysis.hold_check.assess_check`): wired in, it left the dev nights as
-    they were, the first check after a step being dominated by the lock's own uncertainty of
-    the peak (benchmarks/README.md, "Session 8, a poor source's check read with its own noise").
+    fringe's own; benchmarks/README.md, session 8).
     """
     q = float(empty_fraction)
     sd = float(phase_sd_at_peak_rad)
