@@ -30,7 +30,7 @@ from autotune.wire.bus import BusClient
 from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from cli_helpers import autotune, start_autotune, tiny_config, wait_for_record
 from journal_checks import check_invariants, journal_shots
-from rig_process import REPO, ServerProcess
+from rig_process import REPO, ServerProcess, spawn_server
 
 SIGNALS = (signal.SIGKILL, signal.SIGINT, signal.SIGTERM)
 
@@ -251,10 +251,25 @@ def test_every_shot_is_accounted_for_under_heavy_faults(tmp_path, servers):
     assert _rig_shots(server.endpoint) == journal_shots(records)
 
 
-def test_a_bad_run_is_refused_before_the_first_move(tmp_path, servers):
+#: The refusals below share one rig process (pytest-xdist's loadgroup runs them on one worker,
+#: one after another): each reads its state before and after, so each still shows that its
+#: refusal left the rig untouched.
+_SHARES_RIG = pytest.mark.xdist_group("test_survival_untouched_rig")
+
+
+@pytest.fixture(scope="module")
+def untouched_rig(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    """One simulated rig process that no refusal may move."""
+    server = spawn_server(tmp_path_factory.mktemp("untouched"), "untouched")
+    yield server
+    server.stop()
+
+
+@_SHARES_RIG
+def test_a_bad_run_is_refused_before_the_first_move(tmp_path, untouched_rig):
     """Shots above the rig's limit, a store under a regular file and a box outside the rig's
     limits are reported together, exit 2, no run folder, and the rig never moved."""
-    server = servers(name="untouched")
+    server = untouched_rig
     blocker = tmp_path / "plain-file"
     blocker.write_text("not a folder")
     config = tiny_config(tmp_path / "c.toml", server.endpoint, blocker / "good.json",
@@ -274,11 +289,12 @@ def test_a_bad_run_is_refused_before_the_first_move(tmp_path, servers):
     assert (after.shots_total, dict(after.setpoints)) == (before.shots_total, dict(before.setpoints))
 
 
-def test_a_wrong_unit_and_limits_outside_the_rigs_name_the_file_and_keys(tmp_path, servers):
+@_SHARES_RIG
+def test_a_wrong_unit_and_limits_outside_the_rigs_name_the_file_and_keys(tmp_path, untouched_rig):
     """A detuning configured in kHz and velocity limits wholly outside the rig's are both named
     by the config file and key (README: a wrong key names the file, the key, what was expected
     and what was found), exit 2, no run folder, and the rig never moved."""
-    server = servers(name="units")
+    server = untouched_rig
     config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
                          setpoints={"velocity": {"limit_min": 750.0, "limit_max": 900.0,
                                                  "search_min": 760.0, "search_max": 800.0},
@@ -334,12 +350,13 @@ def test_a_finished_run_resumed_tells_its_outcome_again_and_moves_nothing(tmp_pa
     assert down.stdout == done.stdout
 
 
-def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, servers):
+@_SHARES_RIG
+def test_a_box_in_khz_and_limits_without_the_safe_point_are_refused(tmp_path, untouched_rig):
     """Two slips a new user makes, caught before anything moves (exit 2, no run folder, rig
     untouched): kHz numbers typed in the detuning box in Hz (narrower than the lock's first
     step: the run would search a 120 Hz box and be accepted at its edge), and velocity limits
     that exclude the rig's safe set-point (every stop would take the rig outside them)."""
-    server = servers(name="rig-slips")
+    server = untouched_rig
     config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
                          setpoints={"detuning": {"search_min": -60.0, "search_max": 60.0,
                                                  "limit_min": -150.0, "limit_max": 150.0,
