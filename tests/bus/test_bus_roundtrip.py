@@ -9,7 +9,9 @@ from __future__ import annotations
 import math
 
 import pytest
-from rig_process import SEED, SIM_CONFIG
+from rig_process import SEED, SIM_CONFIG, spawn_server
+
+from autotune.wire.bus import BusClient
 
 from autotune.wire.protocol import (
     Acquisition,
@@ -23,18 +25,29 @@ from drivers_sim.config import load_sim_config
 from drivers_sim.rig import SimulatedRig
 
 
-@pytest.fixture
+#: The tests share one server child and one reference rig (pytest-xdist's loadgroup runs them
+#: on one worker): each test sends the same op to both before it compares, so the two stay in
+#: step whatever the order, and each op is checked on a rig that has already served others.
+pytestmark = pytest.mark.xdist_group("test_bus_roundtrip")
+
+
+@pytest.fixture(scope="module")
 def reference() -> SimulatedRig:
     """The in-process rig the bus results are compared with."""
     return SimulatedRig(load_sim_config(SIM_CONFIG), SEED)
 
 
-@pytest.fixture
-def client(start_server, make_client):
-    """A client of a fresh server child. Its replies are compared, not timed: a generous
-    timeout, since the truth op integrates the model and took over 1 s at a load average of 10
-    on a 2-core machine (the bus timeouts have tests of their own)."""
-    return make_client(start_server().endpoint, timeout_s=30.0)
+@pytest.fixture(scope="module")
+def client(tmp_path_factory):
+    """A client of one server child of the same config and seed. Its replies are compared, not
+    timed: a generous timeout, since the truth op integrates the model and took over 1 s at a
+    load average of 10 on a 2-core machine (the bus timeouts have tests of their own)."""
+    server = spawn_server(tmp_path_factory.mktemp("roundtrip"), "rig", seed=SEED)
+    try:
+        with BusClient(server.endpoint, timeout_s=30.0, retries=3, backoff_s=0.02) as client:
+            yield client
+    finally:
+        server.stop()
 
 
 def _a_legal_move(reference: SimulatedRig) -> dict[str, float]:
