@@ -15,15 +15,29 @@ import zmq
 from autotune.wire import protocol
 from autotune.errors import LimitError, RigTimeout
 from autotune.wire.protocol import SetpointLimit
+from rig_process import spawn_server
+
+
+#: The tests that read ``served`` share its server child (pytest-xdist's loadgroup runs them on
+#: one worker); each reads the set-points in force and moves relative to them.
+_SHARES_SERVER = pytest.mark.xdist_group("test_bus_limits")
+
+
+@pytest.fixture(scope="module")
+def served_server(tmp_path_factory):
+    """One server child for the tests of ``served``."""
+    server = spawn_server(tmp_path_factory.mktemp("limits"), "rig")
+    yield server
+    server.stop()
 
 
 @pytest.fixture
-def served(start_server, make_client):
-    """A fresh server child, a client that has read the rig's description, and that description."""
-    server = start_server()
-    client = make_client(server.endpoint)
+def served(served_server, make_client):
+    """The module's server child, a fresh client that has read the rig's description, and that
+    description."""
+    client = make_client(served_server.endpoint)
     description = client.describe()
-    return server, client, description
+    return served_server, client, description
 
 
 @pytest.fixture
@@ -45,6 +59,7 @@ def _raw_apply(socket: zmq.Socket, setpoints: dict[str, float]) -> dict:
     return json.loads(socket.recv())
 
 
+@_SHARES_SERVER
 def test_client_refuses_value_above_the_described_maximum(served):
     """A velocity above the rig's maximum is refused locally, naming set-point, limit and value; nothing moves."""
     _, client, description = served
@@ -58,6 +73,7 @@ def test_client_refuses_value_above_the_described_maximum(served):
     assert dict(client.status().setpoints) == before
 
 
+@_SHARES_SERVER
 def test_client_refuses_a_step_larger_than_max_step(served):
     """A detuning step of 1.5 max_step inside the range is refused locally, naming max_step and value."""
     _, client, description = served
@@ -70,6 +86,7 @@ def test_client_refuses_a_step_larger_than_max_step(served):
     assert "max_step" in message and repr(limit.max_step) in message and repr(wanted) in message
 
 
+@_SHARES_SERVER
 def test_client_accepts_a_step_of_exactly_max_step(served):
     """A step of exactly max_step is allowed by the client and by the rig."""
     _, client, description = served
@@ -100,6 +117,7 @@ def test_client_without_any_limit_refuses_to_send(start_server, make_client):
         client.apply({"velocity": 500.0})
 
 
+@_SHARES_SERVER
 def test_server_refuses_value_out_of_range_with_the_limit(served, raw_socket):
     """A raw out-of-range apply gets out_of_range from the server, the detail naming the limit."""
     _, _, description = served
@@ -110,6 +128,7 @@ def test_server_refuses_value_out_of_range_with_the_limit(served, raw_socket):
     assert "velocity" in reply["error"]["detail"] and f"{limit.max:g}" in reply["error"]["detail"]
 
 
+@_SHARES_SERVER
 def test_server_refuses_too_large_step_with_the_limit(served, raw_socket):
     """A raw apply stepping 1.5 max_step gets out_of_range, the detail naming max_step."""
     _, client, description = served
