@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
 import numpy as np
@@ -44,9 +44,21 @@ __all__ = [
     "recovery_start",
     "recovery_after_alarm",
     "lock_at_stage_end",
+    "OFF_PEAK_Z",
+    "off_peak",
 ]
 
 _TWO_PI = 2.0 * math.pi
+
+#: A check's reading of the set-point's offset from the peak, in its OWN standard errors, at or
+#: beyond which the reading says the set-point is off the peak: two-sided 0.1 %
+#: (scipy.stats.norm.isf(0.0005) = 3.29). On a quiet night a check with the set-point on the
+#: peak reads this far one time in a thousand, and what follows (the next check at once) spends
+#: a check's beam, never a retune. A poor source's first check after a thermal step read its
+#: set-point 5.2 of its standard errors off the peak while the lock's own uncertainty over an
+#: hour's interval (11 kHz) left its innovation at z 1.2: the lock walked back 5 kHz a check
+#: with checks up to an hour apart (benchmarks/README.md, session 8).
+OFF_PEAK_Z = 3.2905267314919255
 
 
 @dataclass(frozen=True)
@@ -96,6 +108,8 @@ class Assessment:
     alarm: str | None
     target_detuning_hz: float
     reason: str
+    reading_z: float = math.nan
+    off_peak: bool = False
 
     def numbers(self) -> dict[str, Any]:
         """JSON-ready numbers for the journal (nan as None)."""
@@ -194,8 +208,36 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     read = {"offset": offset, "offset_sd": offset_sd, "peak": peak, "variance": variance,
             "innovation": innovation, "lock": updated, "upper": new_upper, "lower": new_lower,
             "inversion": inversion_stat, "inversion_z": inversion_z}
-    return _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
-                   numbers=numbers)
+    decided = _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
+                      numbers=numbers)
+    reading_z = offset / offset_sd if offset_sd > 0 else math.nan
+    capped = abs(aim - detuning_hz) > settings.max_correction_hz
+    far = off_peak(settings, reading_z=reading_z, aim_hz=aim, detuning_hz=detuning_hz)
+    reason = decided.reason
+    if far and decided.action in ("hold", "correct"):
+        why = (f"the lock asks for {(aim - detuning_hz) / 1e3:+.2f} kHz, more than "
+               f"max_correction_hz {settings.max_correction_hz / 1e3:.2f} kHz" if capped else
+               f"the reading puts the set-point {abs(reading_z):.1f} of its own standard errors "
+               f"off the peak (|z| >= {OFF_PEAK_Z:.2f})")
+        reason = f"{reason}; {why}: the next check comes at once"
+    return replace(decided, reading_z=reading_z, off_peak=far, reason=reason)
+
+
+def off_peak(settings: HoldSettings, *, reading_z: float, aim_hz: float,
+             detuning_hz: float) -> bool:
+    """Whether a check says the set-point is off the peak by more than one correction can mend.
+
+    True when the lock's aim is further than ``max_correction_hz`` from the held detuning (the
+    correction is capped: the walk back needs more checks), or when the check's own reading of
+    the offset is at least :data:`OFF_PEAK_Z` of its own standard errors (a two-sided z test at
+    0.1 %, scipy.stats.norm) whatever the lock's innovation says: the lock's prediction over a
+    long interval may be too uncertain for the innovation's test to see what the reading sees.
+    The night then takes the next check at once (:func:`hold_plan.next_check`), within the
+    budget's ceiling, so that the walk back takes minutes, not intervals.
+    """
+    if abs(aim_hz - detuning_hz) > settings.max_correction_hz:
+        return True
+    return bool(math.isfinite(reading_z) and abs(reading_z) >= OFF_PEAK_Z)
 
 
 def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversion: float,
