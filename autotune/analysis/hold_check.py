@@ -200,7 +200,12 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
                f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
                f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
-    aim = updated.peak_at(clock + 0.5 * next_interval_s)
+    reading_z = offset / offset_sd if offset_sd > 0 else math.nan
+    far = off_peak(reading_z)
+    # Off the peak the next check comes at once (hold_plan.next_check): aim at the peak now,
+    # not at the middle of an interval the lock's rate would extrapolate over (a step it took
+    # in as drift would carry the set-point past the peak).
+    aim = updated.peak_at(clock if far else clock + 0.5 * next_interval_s)
     move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
     target = detuning_hz + move
     if limits is not None:
@@ -210,33 +215,26 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
             "inversion": inversion_stat, "inversion_z": inversion_z}
     decided = _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
                       numbers=numbers)
-    reading_z = offset / offset_sd if offset_sd > 0 else math.nan
-    capped = abs(aim - detuning_hz) > settings.max_correction_hz
-    far = off_peak(settings, reading_z=reading_z, aim_hz=aim, detuning_hz=detuning_hz)
     reason = decided.reason
     if far and decided.action in ("hold", "correct"):
-        why = (f"the lock asks for {(aim - detuning_hz) / 1e3:+.2f} kHz, more than "
-               f"max_correction_hz {settings.max_correction_hz / 1e3:.2f} kHz" if capped else
-               f"the reading puts the set-point {abs(reading_z):.1f} of its own standard errors "
-               f"off the peak (|z| >= {OFF_PEAK_Z:.2f})")
-        reason = f"{reason}; {why}: the next check comes at once"
+        reason = (f"{reason}; the reading puts the set-point {abs(reading_z):.1f} of its own "
+                  f"standard errors off the peak (|z| >= {OFF_PEAK_Z:.2f}): the next check "
+                  f"comes at once")
     return replace(decided, reading_z=reading_z, off_peak=far, reason=reason)
 
 
-def off_peak(settings: HoldSettings, *, reading_z: float, aim_hz: float,
-             detuning_hz: float) -> bool:
-    """Whether a check says the set-point is off the peak by more than one correction can mend.
+def off_peak(reading_z: float) -> bool:
+    """Whether a check's own reading says the set-point is off the peak.
 
-    True when the lock's aim is further than ``max_correction_hz`` from the held detuning (the
-    correction is capped: the walk back needs more checks), or when the check's own reading of
-    the offset is at least :data:`OFF_PEAK_Z` of its own standard errors (a two-sided z test at
-    0.1 %, scipy.stats.norm) whatever the lock's innovation says: the lock's prediction over a
-    long interval may be too uncertain for the innovation's test to see what the reading sees.
-    The night then takes the next check at once (:func:`hold_plan.next_check`), within the
-    budget's ceiling, so that the walk back takes minutes, not intervals.
+    ``reading_z`` is the check's offset from the peak in its own standard errors; off the peak
+    when ``|z| >= OFF_PEAK_Z``, a two-sided z test at 0.1 % (scipy.stats.norm). The lock's
+    innovation is not asked: over a long interval its prediction may be too uncertain for the
+    innovation's test to see what the reading sees. The night then takes the next check at once
+    (:func:`hold_plan.next_check`, within the budget's ceiling), so that a walk back capped at
+    ``max_correction_hz`` a check takes minutes, not intervals; it ends when the reading is no
+    longer significant (a capped correction whose reading is not is within the check's noise:
+    on a poor source a 5 kHz reading may be noise).
     """
-    if abs(aim_hz - detuning_hz) > settings.max_correction_hz:
-        return True
     return bool(math.isfinite(reading_z) and abs(reading_z) >= OFF_PEAK_Z)
 
 
