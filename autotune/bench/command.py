@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 
-from autotune.bench.jobs import jsonable, quiet_logging
+from autotune.bench.jobs import from_json, jsonable, quiet_logging
 from autotune.bench.plan import (CLUSTER_START_TIMEOUT_S, DEFAULT_OUT, DEFAULT_RIG_CONFIG,
                                  DEFAULT_RUN_CONFIG, DEFAULT_TIMEOUT_S, REPO, STRATEGIES,
                                  check_plan, plan_for)
@@ -36,20 +36,10 @@ def write_result(study: Mapping[str, Any], path: Path) -> None:
 
 
 def read_result(path: Path) -> dict[str, Any]:
-    """A result file as ``write_result`` wrote it, with its infinities ("inf"/"-inf", e.g. a
-    step that never recovered) read back as floats, so that the tables print it as they
-    printed the study in memory."""
-    return json.loads(path.read_text(encoding="utf-8"), object_hook=_infinities)
-
-
-def _infinities(obj: dict[str, Any]) -> dict[str, Any]:
-    def back(value: Any) -> Any:
-        if isinstance(value, str) and value in ("inf", "-inf"):
-            return float(value)
-        if isinstance(value, list):
-            return [back(x) for x in value]
-        return value
-    return {key: back(value) for key, value in obj.items()}
+    """A result file as ``write_result`` wrote it (:func:`~autotune.bench.jobs.from_json`:
+    its infinities read back as floats, so that the tables print it as they printed the study
+    in memory)."""
+    return from_json(path.read_text(encoding="utf-8"))
 
 
 def main(argv: Sequence[str] | None = None) -> int:

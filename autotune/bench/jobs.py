@@ -4,6 +4,7 @@ or on a dask worker (a calibration, the oracle floor; the stage's record against
 from __future__ import annotations
 
 import dataclasses
+import json
 import logging
 import math
 import tempfile
@@ -210,6 +211,23 @@ def oracle_job(job: Mapping[str, Any]) -> dict[str, Any]:
             "final_ratio": final_truth(rig, result["setpoints"])["ratio"],
             "best_setpoints_at_start": {k: float(v) for k, v in best.items()},
             "best_inside_box_at_start": inside}
+
+
+def from_json(text: str) -> Any:
+    """Parse JSON that :func:`jsonable` prepared (a job's result, a study's file), with its
+    infinities ("inf"/"-inf": a shot count never reached, a step never recovered) read back as
+    floats: the one decoding of the study's JSON, so that records in memory hold numbers."""
+    return json.loads(text, object_hook=_infinities)
+
+
+def _infinities(obj: dict[str, Any]) -> dict[str, Any]:
+    def back(value: Any) -> Any:
+        if isinstance(value, str) and value in ("inf", "-inf"):
+            return float(value)
+        if isinstance(value, list):
+            return [back(x) for x in value]
+        return value
+    return {key: back(value) for key, value in obj.items()}
 
 
 def jsonable(value: Any) -> Any:

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from autotune.progress import rough_duration_text
-from autotune.bench.jobs import config_spec, jsonable
+from autotune.bench.jobs import config_spec, from_json, jsonable
 from autotune.bench.memory import measure_overhead
 from autotune.bench.night_study import night_jobs, night_label, night_targets, summarise_night
 from autotune.bench.plan import (CLUSTER_CLOSE_TIMEOUT_S, CLUSTER_START_TIMEOUT_S,
@@ -247,7 +247,7 @@ def _map(jobs: list[dict[str, Any]], plan: StudyPlan, scheduler: str | None,
     if scheduler is None and plan.workers <= 1:
         results = []
         for text in texts:
-            results.append(json.loads(run_job(text)))
+            results.append(from_json(run_job(text)))
             _note(progress, results[-1])
         return results, "serial (this process)"
     return _map_on_cluster(jobs, texts, plan, scheduler, progress)
@@ -310,7 +310,7 @@ def _map_on_cluster(jobs: list[dict[str, Any]], texts: list[str], plan: StudyPla
         try:
             for future in as_completed(futures, timeout=plan.timeout_s, loop=client.loop):
                 k = position[future.key]
-                results[k] = json.loads(future.result())
+                results[k] = from_json(future.result())
                 _note(progress, results[k])
         except BaseException:
             client.cancel(futures)

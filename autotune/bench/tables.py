@@ -16,10 +16,9 @@ from autotune.errors import ValueRefused
 # --------------------------------------------------------------------------------------------
 
 
-def number_text(value: float | str | None, digits: int = 0, scale: float = 1.0) -> str:
-    # A result read back from its file carries infinities as "inf" (see write_result).
-    if isinstance(value, str):
-        value = float(value)
+def number_text(value: float | None, digits: int = 0, scale: float = 1.0) -> str:
+    """``value / scale`` to ``digits``, "n/a" for None or NaN, "never" for an infinity (results
+    read back by :func:`~autotune.bench.jobs.from_json` hold floats)."""
     if value is None or math.isnan(value):
         return "n/a"
     if math.isinf(value):
