@@ -170,14 +170,22 @@ _TWO_PI = 2.0 * math.pi
 _SAME_VELOCITY = SAME_VELOCITY
 
 
-def _disagreement_dict(d: ProxyDisagreement | None) -> dict[str, float] | None:
+def _disagreement_dict(d: ProxyDisagreement | None,
+                       velocity_ref: float) -> dict[str, Any] | None:
     """The inversions' slope against the absorption's (velocity_model.proxy_disagreement), for
-    the journal: slopes in inversion per unit of ``x = v_ref / v - 1``."""
+    the journal: slopes in inversion per unit of ``x = v_ref / v - 1``, whether they differ at
+    the module's level, and the velocity group that carries the disagreement (m/s) with each
+    group's residual in its own standard deviations."""
     if d is None:
         return None
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scores = np.where(d.residual_stderr > 0.0, d.residual / d.residual_stderr, 0.0)
     return {"inversion_slope": d.slope, "inversion_slope_stderr": d.slope_stderr,
             "absorption_slope": d.proxy_slope, "absorption_slope_stderr": d.proxy_slope_stderr,
-            "z": d.z, "p_value": d.p_value}
+            "z": d.z, "p_value": d.p_value, "significant": d.significant(),
+            "group_velocities_m_per_s": [velocity_ref / (1.0 + x) for x in d.x.tolist()],
+            "group_residual_z": [float(v) for v in scores],
+            "farthest_group_m_per_s": velocity_ref / (1.0 + float(d.x[d.farthest_group()]))}
 
 
 # --------------------------------------------------------------------------------------------
@@ -714,7 +722,8 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                                     "covariance": [[float(v) for v in row] for row in curve.cov],
                                     "proxy_slope_curvature": [float(v) for v in curve.proxy],
                                     "discrepancy_widened": bool(curve.widened),
-                                    "disagreement": _disagreement_dict(curve.disagreement)}
+                                    "disagreement": _disagreement_dict(curve.disagreement,
+                                                                       curve.velocity_ref)}
             if peak is not None:
                 out["velocity_best_inversion_m_per_s"] = curve.velocity_of(peak)
                 out["velocity_best_inversion_stderr_m_per_s"] = curve.vertex_velocity_stderr()
