@@ -122,6 +122,8 @@ class InversionCurve(_QuadraticInX):
     disagreement : ProxyDisagreement or None
         The measured inversions' slope along ``x`` against the proxy's (None with fewer than
         two velocity groups).
+    law : DephasingLaw or None
+        The posterior of the empty contrast's dephasing law along velocity.
     """
 
     velocity_ref: float
@@ -133,6 +135,7 @@ class InversionCurve(_QuadraticInX):
     proxy: np.ndarray
     widened: bool
     disagreement: ProxyDisagreement | None = None
+    law: DephasingLaw | None = None
 
     def vertex(self) -> float | None:
         """``x`` of the maximum, or None when the curve is not concave."""
@@ -315,12 +318,142 @@ def proxy_disagreement(xs: Sequence[float], values: Sequence[float], variances: 
         proxy_slope_stderr=math.sqrt(max(proxy_var, 0.0)), z=float(z), p_value=p_value)
 
 
+#: Largest correlation of a point's inversion with its empty contrast that the joint model
+#: takes (keeps each pair's covariance positive definite).
+_MAX_SHARED_CORRELATION = 0.95
+#: The grid of the dephasing law's phase spread at the reference velocity (rad): uniform prior on
+#: [0, its end]. The end is where the contrast has fallen to the smallest scale used
+#: (``exp(-s^2 / 2) = 0.05``); the contrast's own bound (``C_inf <= 1``) cuts it far lower.
+_SPREAD_GRID = np.linspace(0.0, math.sqrt(-2.0 * math.log(_MIN_SCALE)), 491)
+
+
+@dataclass(frozen=True)
+class DephasingLaw:
+    """The posterior of the empty contrast's law along velocity (docs/physics.md section 3).
+
+    ``C(v) = C_inf exp(-s(v)^2 / 2)`` with ``s(v) = s_ref (v_ref / v)^2 = s_ref (1 + x)^2`` the
+    spread of the Ramsey phase ``2 pi Delta_R L / v`` over the velocity class, ``s_ref >= 0``:
+    the contrast can only rise with velocity, and its slope and curvature in ``x`` are one
+    parameter's. ``C_inf <= 1`` (a fringe's contrast cannot exceed one).
+
+    Attributes
+    ----------
+    spread_rad, spread_stderr_rad : float
+        Posterior mean and sd of ``s_ref``, the phase spread at the reference velocity (rad).
+    contrast_limit : float
+        Posterior mean of ``C_inf``, the contrast without dephasing.
+    relative_slope, relative_slope_stderr : float
+        Posterior mean and sd of the contrast's slope in ``x`` at ``x = 0`` relative to its
+        level, ``-2 s_ref^2``.
+    relative_curvature : float
+        Posterior mean of its Taylor curvature relative to its level, ``2 s_ref^4 - 3 s_ref^2``.
+    """
+
+    spread_rad: float
+    spread_stderr_rad: float
+    contrast_limit: float
+    relative_slope: float
+    relative_slope_stderr: float
+    relative_curvature: float
+
+    def to_dict(self) -> dict[str, float]:
+        """The law's posterior as plain numbers (the journal's)."""
+        return {"phase_spread_rad": self.spread_rad,
+                "phase_spread_stderr_rad": self.spread_stderr_rad,
+                "contrast_without_dephasing": self.contrast_limit,
+                "relative_slope": self.relative_slope,
+                "relative_slope_stderr": self.relative_slope_stderr}
+
+
+def _log_normal_cdf(z: np.ndarray) -> np.ndarray:
+    from scipy import special
+    return special.log_ndtr(z)
+
+
+def _law_posterior(x: np.ndarray, c: np.ndarray, c_var: np.ndarray, r: np.ndarray,
+                   r_var: np.ndarray, shared: np.ndarray, scale: float, tau: np.ndarray,
+                   c_prior_mean: float, r0_mean: float
+                   ) -> tuple[np.ndarray, np.ndarray, float, DephasingLaw]:
+    """Posterior of ``r``'s quadratic under the dephasing law, the contrasts and ``r`` observed
+    jointly (see :func:`fit_inversion_curve`).
+
+    Given the phase spread ``s`` the model is linear-Gaussian in ``theta = (C_inf, r0, d1, d2)``:
+    ``C_i = C_inf h_i(s) + e_i`` with ``h_i = exp(-s^2 (1 + x_i)^4 / 2)``, and ``r_i = r0 +
+    (p1(s) + d1) x_i + (p2(s) + d2) x_i^2 + f_i`` with ``(p1, p2) = S (-2 u, 2 u^2 - 3 u)``,
+    ``u = s^2`` (the Taylor coefficients of ``S h(x) / h(0)``), each pair ``(e_i, f_i)``
+    correlated by the shared fringe. Conditioning on ``theta`` is Bishop 2006, sections
+    2.3.1-2.3.3 (the posterior of a linear-Gaussian model with correlated noise); its
+    evidence, ``log N(y; A m, N + A P A^T)``, is written through the posterior as
+    ``-(y^T N^-1 y + m^T P^-1 m - b^T mu) / 2 - log|P| / 2 + log|Sigma| / 2`` (``b = A^T N^-1
+    y + P^-1 m``, ``mu = Sigma b``; constants in ``s`` dropped). ``s`` has a uniform prior on
+    :data:`_SPREAD_GRID`, weighted by ``P(C_inf <= 1 | s, data)``; the posterior of ``r``'s
+    coefficients is the mixture over the grid, matched by its mean and covariance (the law of
+    total covariance). Returns that mean, covariance, the log evidence and the law.
+    """
+    design = np.stack([np.ones(len(x)), x, x * x], axis=1)
+    det = c_var * r_var - shared**2
+    w_cc, w_rr, w_cr = r_var / det, c_var / det, -shared / det
+    u = _SPREAD_GRID**2
+    h = np.exp(-0.5 * u[:, None] * (1.0 + x[None, :]) ** 4)                   # (G, n)
+    p = scale * np.stack([-2.0 * u, 2.0 * u * u - 3.0 * u], axis=1)              # (G, 2)
+    rr = r[None, :] - p[:, :1] * x[None, :] - p[:, 1:] * (x * x)[None, :]       # (G, n)
+    prior_var = np.array([1.0, 1.0, tau[0] ** 2, tau[1] ** 2])
+    prior_mean = np.array([c_prior_mean, r0_mean, 0.0, 0.0])
+    g = len(u)
+    precision = np.zeros((g, 4, 4))
+    precision[:, 0, 0] = (h * h) @ w_cc
+    cross = (h * w_cr[None, :]) @ design                                        # (G, 3)
+    precision[:, 0, 1:] = cross
+    precision[:, 1:, 0] = cross
+    precision[:, 1:, 1:] = design.T @ (design * w_rr[:, None])
+    precision[:, np.arange(4), np.arange(4)] += 1.0 / prior_var
+    b = np.zeros((g, 4))
+    b[:, 0] = h @ (w_cc * c) + (h * rr) @ w_cr
+    b[:, 1:] = (w_cr * c)[None, :] @ design + (rr * w_rr[None, :]) @ design
+    b += prior_mean / prior_var
+    cov = np.linalg.inv(precision)
+    cov = 0.5 * (cov + np.swapaxes(cov, 1, 2))
+    mean = np.einsum("gij,gj->gi", cov, b)
+    y_w_y = float(w_cc @ (c * c)) + 2.0 * (rr @ (w_cr * c)) + (rr * rr) @ w_rr
+    _, logdet_precision = np.linalg.slogdet(precision)
+    log_evidence = (-0.5 * (y_w_y + float(prior_mean @ (prior_mean / prior_var))
+                            - np.einsum("gi,gi->g", b, mean))
+                    - 0.5 * float(np.sum(np.log(prior_var))) - 0.5 * logdet_precision)
+    # The contrast without dephasing cannot exceed one.
+    log_weight = log_evidence + _log_normal_cdf(
+        (1.0 - mean[:, 0]) / np.sqrt(np.maximum(cov[:, 0, 0], 1e-300)))
+    top = float(np.max(log_weight))
+    weights = np.exp(log_weight - top)
+    total = float(weights.sum())
+    weights /= total
+    # Uniform prior density on the grid's span: the evidence integrates over s.
+    evidence = top + math.log(total / g)
+    coef = mean[:, 1:].copy()
+    coef[:, 1:] += p
+    r_mean = weights @ coef
+    spread = coef - r_mean[None, :]
+    r_cov = np.einsum("g,gij->ij", weights, cov[:, 1:, 1:]) + \
+        np.einsum("g,gi,gj->ij", weights, spread, spread)
+    s_mean = float(weights @ _SPREAD_GRID)
+    slope = -2.0 * u
+    slope_mean = float(weights @ slope)
+    law = DephasingLaw(
+        spread_rad=s_mean,
+        spread_stderr_rad=math.sqrt(max(float(weights @ (_SPREAD_GRID - s_mean) ** 2), 0.0)),
+        contrast_limit=float(weights @ mean[:, 0]),
+        relative_slope=slope_mean,
+        relative_slope_stderr=math.sqrt(max(float(weights @ (slope - slope_mean) ** 2), 0.0)),
+        relative_curvature=float(weights @ (2.0 * u * u - 3.0 * u)))
+    return r_mean, 0.5 * (r_cov + r_cov.T), evidence, law
+
+
 def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
                         inversion_vars: Sequence[float], absorptions: Sequence[float],
                         absorption_vars: Sequence[float], contrasts: Sequence[float],
                         contrast_vars: Sequence[float], absorption_coef: np.ndarray,
                         absorption_cov: np.ndarray, scale: float, velocity_ref: float,
-                        x_groups: Sequence[float]) -> InversionCurve:
+                        x_groups: Sequence[float],
+                        inversion_contrast_covs: Sequence[float] | None = None) -> InversionCurve:
     """The posterior of the inversion along velocity (see the module notes).
 
     Parameters
@@ -341,43 +474,47 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
         Reference velocity of ``x`` (m/s).
     x_groups : sequence of float
         The distinct ``x`` measured.
+    inversion_contrast_covs : sequence of float, optional
+        Each point's covariance of its (corrected) inversion with its empty contrast: both are
+        read from the same empty fringe (:func:`autotune.analysis.fringe.shared_fringe_covariance`),
+        so the contrasts and the ``r`` values are conditioned on jointly, as the correlated
+        observations they are; without it (or all zero) they are taken as independent.
     """
     x = np.asarray(xs, dtype=float)
-    design = np.stack([np.ones(len(x)), x, x * x], axis=1)
     scale = max(float(scale), _MIN_SCALE)
     c = np.asarray(contrasts, dtype=float)
     c_var = np.maximum(np.asarray(contrast_vars, dtype=float), 1e-8)
     c_mean = float(np.sum(c / c_var) / np.sum(1.0 / c_var)) if len(c) else 1.0
-    c_level = max(abs(c_mean), _MIN_SCALE)
-    # A loose prior on the contrast's slope, learned from the points; a tight one on its
-    # curvature: over +-10 % of velocity the dephasing law exp(-(k / v^2)^2 / 2) is nearly
-    # linear in x for contrasts above about 0.5 (its curvature term is second order), and a
-    # free curvature fitted to a few noisy contrasts would swamp the absorption's.
-    c_prior = np.diag([1.0, (3.0 * c_level) ** 2, (CONTRAST_CURVATURE * c_level) ** 2])
-    c_coef, c_cov, _ = _posterior(design, c, c_var, np.array([c_mean, 0.0, 0.0]), c_prior)
-    k = scale / max(float(c_coef[0]), _MIN_SCALE)
-    proxy_r = k * c_coef[1:]
-    proxy_r_cov = k * k * c_cov[1:, 1:]
-
     r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
     r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
                        + np.asarray(absorption_vars, dtype=float), 1e-8)
-    best: tuple[float, np.ndarray, np.ndarray, bool] | None = None
+    if not (len(c) == len(c_var) == len(r) == len(r_var) == len(x)):
+        raise ValueRefused(f"fit_inversion_curve: expected one inversion, absorption and contrast "
+                           f"per point ({len(x)}), got {len(r)}, {len(c)}")
+    if inversion_contrast_covs is None:
+        shared = np.zeros(len(x))
+    else:
+        shared = np.asarray(inversion_contrast_covs, dtype=float)
+        if shared.shape != x.shape or not np.all(np.isfinite(shared)):
+            raise ValueRefused(f"fit_inversion_curve: expected one finite inversion-contrast "
+                               f"covariance per point ({len(x)}), got {shared.tolist()!r}")
+        bound = _MAX_SHARED_CORRELATION * np.sqrt(c_var * r_var)
+        shared = np.clip(shared, -bound, bound)
+    r0_mean = scale + float(np.mean(absorptions)) if len(x) else scale
+    best: tuple[float, np.ndarray, np.ndarray, bool, DephasingLaw] | None = None
     for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
-        prior_cov = np.zeros((3, 3))
-        prior_cov[0, 0] = 1.0
-        prior_cov[1:, 1:] = proxy_r_cov + np.diag(tau**2)
-        prior_mean = np.array([scale + float(np.mean(absorptions)) if len(x) else scale,
-                               *proxy_r])
-        mean, cov, evidence = _posterior(design, r, r_var, prior_mean, prior_cov)
+        mean, cov, evidence, law = _law_posterior(x, c, c_var, r, r_var, shared, scale, tau,
+                                                  c_mean, r0_mean)
         if best is None or evidence > best[0] + 1e-9:
-            best = (evidence, mean, cov, widened)
+            best = (evidence, mean, cov, widened, law)
     assert best is not None
-    _, r_coef, r_cov, widened = best
+    _, r_coef, r_cov, widened, law = best
     a_coef = np.asarray(absorption_coef, dtype=float)
     a_cov = np.asarray(absorption_cov, dtype=float)
     coef = r_coef - a_coef
+    # The law's own prediction of r's slope and curvature (its posterior mean).
+    proxy_r = scale * np.array([law.relative_slope, law.relative_curvature])
     # Against the absorption alone (r flat within the discrepancy): the empty contrast is
     # measured from the same fringes as the inversion and shares its noise.
     tau = scale * np.array(DISCREPANCY)
@@ -386,7 +523,8 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     return InversionCurve(velocity_ref=float(velocity_ref), coef=coef, cov=r_cov + a_cov,
                           residual_cov=r_cov, absorption_cov=a_cov,
                           x_groups=tuple(sorted(float(g) for g in x_groups)),
-                          proxy=proxy_r - a_coef[1:], widened=widened, disagreement=disagreement)
+                          proxy=proxy_r - a_coef[1:], widened=widened, disagreement=disagreement,
+                          law=law)
 
 
 @dataclass(frozen=True)
