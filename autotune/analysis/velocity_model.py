@@ -25,9 +25,10 @@ one parameter for its shape, ``s`` the spread of the Ramsey phase over the veloc
 Taylor coefficients of ``S C(x) / C(0)``, :func:`law_proxy`; ``S`` the inversion scale), with a
 discrepancy ``d ~ N(0, tau^2)``, ``tau = (0.1 S, 0.5 S)`` for the terms the empty contrast does
 not carry (the photon's decay on its flight, ``d / (v T_c) ~ 0.04`` per unit of ``x`` on the
-demo rig; Ramsey pulses that are pi/2 only at one velocity), its slope fourfold again when the
-measured inversions' marginal likelihood prefers it: where the inversions disagree with the
-proxy, the data decide. This is Bayesian regression on the figure of merit itself with the
+demo rig; Ramsey pulses that are pi/2 only at one velocity; a mode that is not Gaussian), and
+with its slope fourfold wider, the two averaged by the measured inversions' marginal likelihood
+(Bayesian model averaging): where the inversions disagree with the proxy, the data decide, and
+while few velocities cannot tell the two apart, the stated width keeps both. This is Bayesian regression on the figure of merit itself with the
 error signals as its prior mean.
 
 A point's inversion and its empty contrast are read from the same empty fringe, so their noise
@@ -68,8 +69,9 @@ __all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_
 #: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
 #: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
 DISCREPANCY = (0.1, 0.5)
-#: The discrepancy may widen by this factor when the inversions' marginal likelihood prefers it
-#: (the slope only: the curvature is the absorption's, measured sharply).
+#: The wider alternative of the slope's discrepancy, averaged with the narrow one by the
+#: inversions' marginal likelihood (the slope only: the curvature is the absorption's, measured
+#: sharply).
 DISCREPANCY_WIDENING = 4.0
 #: Two-sided level of the test of the measured inversions' slope against the proxy's
 #: (:func:`proxy_disagreement`) below which the disagreement is called significant.
@@ -132,8 +134,8 @@ class InversionCurve(_QuadraticInX):
     proxy : ndarray
         The physics' prediction of ``(b1, b2)`` (the contrast's shape minus the absorption's).
     widened : bool
-        Whether the data's marginal likelihood chose the widened discrepancy (the inversions
-        disagree with the proxy).
+        Whether the widened discrepancy carries more of the data's marginal likelihood than the
+        narrow one (the inversions disagree with the proxy); the posterior averages both.
     disagreement : ProxyDisagreement or None
         The measured inversions' slope along ``x`` against the proxy's (None with fewer than
         two velocity groups).
@@ -579,7 +581,7 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
         shared = np.clip(shared, -bound, bound)
     r0_mean = scale + float(np.mean(absorptions)) if len(x) else scale
     fits = []
-    for widened, factor in ((False, 1.0), (True, DISCREPANCY_WIDENING)):
+    for widened, factor in ((False, 1.0), (True, 2.0), (True, DISCREPANCY_WIDENING)):
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
         fits.append((*_law_posterior(x, c, c_var, r, r_var, shared, scale, tau, c_mean, r0_mean),
                      widened))
