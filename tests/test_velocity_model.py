@@ -252,12 +252,12 @@ def test_the_slope_is_stated_honestly_with_the_fringes_shared_noise(spread, limi
     assert np.std(scores) < 1.1
 
 
-def test_the_two_discrepancies_are_averaged_by_their_evidence():
-    """The curve's posterior of r is the two discrepancies' posteriors weighed by their evidence
-    (equal prior odds): its mean and covariance are those of the two-component Gaussian mixture,
-    checked against 400,000 numpy draws from that mixture (the law of total covariance, by
-    sampling); with few velocity groups both keep weight, and the stated slope sd lies between
-    the narrow and the wide fit's."""
+def test_the_discrepancies_are_averaged_by_their_evidence():
+    """The curve's posterior of r is the slope discrepancies' posteriors (1, 2 and 4 times the
+    narrow one, equal prior weights) weighed by their evidence: its mean and covariance are those
+    of the Gaussian mixture, checked against 400,000 numpy draws from that mixture (the law of
+    total covariance, by sampling); with few velocity groups the wide ones keep weight, and the
+    stated slope sd lies between the narrowest and the widest fit's."""
     from autotune.analysis import velocity_model as vm
 
     rng = np.random.default_rng(9)
@@ -266,24 +266,28 @@ def test_the_two_discrepancies_are_averaged_by_their_evidence():
     fits = [vm._law_posterior(x, c, c_var, r, r_var, shared, scale,
                               scale * np.array(vm.DISCREPANCY) * np.array([f, 1.0]),
                               float(np.mean(c)), scale + 0.015)
-            for f in (1.0, vm.DISCREPANCY_WIDENING)]
+            for f in vm.DISCREPANCY_SCALES]
+    assert vm.DISCREPANCY_SCALES == (1.0, 2.0, 4.0)
     curve = fit_inversion_curve(x, r - 0.015, r_var, [0.015] * 4, [0.0] * 4, c, c_var,
                                 np.array([0.015, 0.0, 0.0]), np.zeros((3, 3)), scale, 500.0,
                                 sorted(set(x)), inversion_contrast_covs=shared)
-    odds = math.exp(fits[1][2] - fits[0][2])
-    weights = np.array([1.0, odds]) / (1.0 + odds)
-    assert 0.05 < weights[1] < 0.95
-    pick = rng.random(400_000) < weights[1]
-    draws = np.where(pick[:, None],
-                     rng.multivariate_normal(fits[1][0], fits[1][1], 400_000),
-                     rng.multivariate_normal(fits[0][0], fits[0][1], 400_000))
+    evidence = np.array([f[2] for f in fits])
+    weights = np.exp(evidence - evidence.max())
+    weights /= weights.sum()
+    assert weights[0] < 0.95
+    n = 400_000
+    which = rng.choice(len(fits), size=n, p=weights)
+    draws = np.empty((n, 3))
+    for k, fit in enumerate(fits):
+        mine = which == k
+        draws[mine] = rng.multivariate_normal(fit[0], fit[1], int(mine.sum()))
     np.testing.assert_allclose(curve.coef + np.array([0.015, 0.0, 0.0]), draws.mean(axis=0),
                                atol=3e-3)
     # Each entry within 0.01 of sqrt(var_i var_j) (a sample correlation's sd is about
     # 1 / sqrt(400,000) = 0.0016).
     sd = np.sqrt(np.diag(curve.residual_cov))
     assert np.max(np.abs(curve.residual_cov - np.cov(draws.T)) / np.outer(sd, sd)) < 0.01
-    narrow, wide = math.sqrt(fits[0][1][1, 1]), math.sqrt(fits[1][1][1, 1])
+    narrow, wide = math.sqrt(fits[0][1][1, 1]), math.sqrt(fits[-1][1][1, 1])
     assert narrow < math.sqrt(curve.residual_cov[1, 1]) < wide
 
 

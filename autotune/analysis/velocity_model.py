@@ -26,9 +26,9 @@ Taylor coefficients of ``S C(x) / C(0)``, :func:`law_proxy`; ``S`` the inversion
 discrepancy ``d ~ N(0, tau^2)``, ``tau = (0.1 S, 0.5 S)`` for the terms the empty contrast does
 not carry (the photon's decay on its flight, ``d / (v T_c) ~ 0.04`` per unit of ``x`` on the
 demo rig; Ramsey pulses that are pi/2 only at one velocity; a mode that is not Gaussian), and
-with its slope fourfold wider, the two averaged by the measured inversions' marginal likelihood
-(Bayesian model averaging): where the inversions disagree with the proxy, the data decide, and
-while few velocities cannot tell the two apart, the stated width keeps both. This is Bayesian regression on the figure of merit itself with the
+with its slope twice and four times wider, the three averaged by the measured inversions'
+marginal likelihood (Bayesian model averaging): where the inversions disagree with the proxy,
+the data decide, and while few velocities cannot tell them apart, the stated width keeps all. This is Bayesian regression on the figure of merit itself with the
 error signals as its prior mean.
 
 A point's inversion and its empty contrast are read from the same empty fringe, so their noise
@@ -63,16 +63,19 @@ import numpy as np
 from autotune.errors import ValueRefused
 
 __all__ = ["InversionCurve", "fit_inversion_curve", "DISCREPANCY", "DISCREPANCY_WIDENING",
+           "DISCREPANCY_SCALES",
            "AbsorptionFit", "cholesky_jittered", "ProxyDisagreement", "proxy_disagreement",
            "DISAGREEMENT_LEVEL", "DephasingLaw", "dephasing_contrast", "law_proxy"]
 
 #: Prior standard deviation of the slope and curvature of ``r`` beyond the contrast's
 #: prediction, as fractions of the inversion scale (per unit of ``x`` and of ``x^2``).
 DISCREPANCY = (0.1, 0.5)
-#: The wider alternative of the slope's discrepancy, averaged with the narrow one by the
-#: inversions' marginal likelihood (the slope only: the curvature is the absorption's, measured
-#: sharply).
+#: The widest alternative of the slope's discrepancy (the slope only: the curvature is the
+#: absorption's, measured sharply).
 DISCREPANCY_WIDENING = 4.0
+#: The slope discrepancy's alternatives, in units of the narrow one, a log-uniform grid up to the
+#: widest, equally likely a priori and averaged by the inversions' marginal likelihood.
+DISCREPANCY_SCALES = (1.0, 2.0, DISCREPANCY_WIDENING)
 #: Two-sided level of the test of the measured inversions' slope against the proxy's
 #: (:func:`proxy_disagreement`) below which the disagreement is called significant.
 DISAGREEMENT_LEVEL = 0.05
@@ -134,8 +137,8 @@ class InversionCurve(_QuadraticInX):
     proxy : ndarray
         The physics' prediction of ``(b1, b2)`` (the contrast's shape minus the absorption's).
     widened : bool
-        Whether the widened discrepancy carries more of the data's marginal likelihood than the
-        narrow one (the inversions disagree with the proxy); the posterior averages both.
+        Whether a widened discrepancy carries more of the data's marginal likelihood than the
+        narrow one (the inversions disagree with the proxy); the posterior averages them.
     disagreement : ProxyDisagreement or None
         The measured inversions' slope along ``x`` against the proxy's (None with fewer than
         two velocity groups).
@@ -581,14 +584,15 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
         shared = np.clip(shared, -bound, bound)
     r0_mean = scale + float(np.mean(absorptions)) if len(x) else scale
     fits = []
-    for widened, factor in ((False, 1.0), (True, 2.0), (True, DISCREPANCY_WIDENING)):
+    for factor in DISCREPANCY_SCALES:
+        widened = factor > 1.0
         tau = scale * np.array(DISCREPANCY) * np.array([factor, 1.0])
         fits.append((*_law_posterior(x, c, c_var, r, r_var, shared, scale, tau, c_mean, r0_mean),
                      widened))
-    # Both discrepancies, equally likely a priori, weighed by their evidence (Bayesian model
+    # The discrepancies, equally likely a priori, weighed by their evidence (Bayesian model
     # averaging, e.g. Bishop 2006, section 3.4), the mixture matched by its mean and covariance:
-    # with few velocity groups the data cannot tell them apart, and choosing the likelier one
-    # states the narrower width as if it were known.
+    # with few velocity groups the data cannot tell them apart, and choosing the likeliest
+    # states the narrowest width as if it were known.
     evidences = np.array([f[2] for f in fits])
     weights = np.exp(evidences - evidences.max())
     weights /= weights.sum()
