@@ -591,13 +591,14 @@ def _scenarios(count: int, seed: int) -> list[dict]:
 @pytest.mark.parametrize("case", ["demo", 0, 1, 2])
 def test_closed_loop_on_the_simulated_rig_calibrates_within_budget(case):
     """On the simulated rig (demo and scenarios drawn over the study's ranges) the verified choice is >= 0.97 of
-    the true best (the simulator's noiseless truth) within 216,000 shots (3x the 72,000-shot verification)."""
+    the true best (the simulator's noiseless truth) within 288,000 shots: 4x the 72,000-shot verification, issue 18's
+    ceiling for any calibration (its medians are the study's, benchmarks/README.md, not one draw's)."""
     perturbation = {} if case == "demo" else _scenarios(3, 20261207)[case]
     rig = _sim_rig(perturbation, seed=40 + (0 if case == "demo" else case + 1))
     chosen, shots, lock = _calibrate(rig, seed=3)
     truth = rig.truth(chosen)
     assert truth["inversion"] / truth["best"]["inversion"] >= 0.97
-    assert shots <= 216_000
+    assert shots <= 288_000
     json.dumps(lock.state(clock_s=rig.clock), allow_nan=False)
 
 

@@ -84,19 +84,23 @@ def test_the_data_override_a_proxy_that_disagrees():
     assert curve.velocity_of(curve.vertex()) > V_ABS + 10.0
 
 
-def test_the_reference_contrast_is_the_gaussian_average_of_the_ramsey_phase():
-    """The reference rig's contrast law (docs/physics.md section 3), exp(-s^2 / 2) with s = 2 pi
-    Delta_R L sigma_v / v^2, is the normal characteristic function, E[cos X] = exp(-s^2 / 2) for
-    X ~ N(0, s^2) (scipy.stats.norm.expect), and matches the fringe averaged over a Gaussian
-    velocity class with the exact phase 2 pi Delta_R L / v (N. F. Ramsey, Phys. Rev. 78, 695
-    (1950); the average by scipy.integrate.quad over scipy.stats.norm.pdf) within 5e-4 of the
-    contrast at 40 kHz, 12 cm, 6 m/s from 460 to 560 m/s (the notes state 3e-4: first order in
-    sigma_v / v)."""
+# The empty contrast's dephasing law and the joint conditioning (velocity_model._law_grid)
+# --------------------------------------------------------------------------------------------
+
+def test_the_law_is_the_gaussian_average_of_the_ramsey_phase():
+    """The characteristic function of a Gaussian, E[cos X] = exp(-s^2 / 2) for X ~ N(0, s^2)
+    (scipy.stats.norm.expect), and the law along velocity against the fringe averaged over a
+    Gaussian velocity class with the exact phase 2 pi Delta_R L / v (N. F. Ramsey, Phys. Rev. 78,
+    695 (1950); the average by scipy.integrate.quad over scipy.stats.norm.pdf): within 5e-4 of the
+    contrast at the corner of the velocity-physics ranges (docs/physics.md section 3 states 3e-4,
+    the first order in sigma_v / v)."""
     from scipy import integrate, stats
+
+    from autotune.analysis.velocity_model import dephasing_contrast
 
     for s in (0.2, 0.7, 1.3):
         assert stats.norm.expect(np.cos, scale=s) == pytest.approx(math.exp(-s * s / 2), rel=1e-9)
-    detuning_hz, arm_m, spread_m_per_s = 40e3, 0.12, 6.0
+    detuning_hz, arm_m, spread_m_per_s, v_ref = 40e3, 0.12, 6.0, 500.0
 
     def fringe_amplitude(v: float) -> float:
         def part(w: float, trig) -> float:
@@ -106,33 +110,198 @@ def test_the_reference_contrast_is_the_gaussian_average_of_the_ramsey_phase():
         im = integrate.quad(part, lo, hi, args=(np.sin,), limit=400, points=[v])[0]
         return math.hypot(re, im)
 
+    s_ref = 2.0 * math.pi * detuning_hz * arm_m * spread_m_per_s / v_ref**2
     for v in (460.0, 500.0, 560.0):
-        phase_spread = 2.0 * math.pi * detuning_hz * arm_m * spread_m_per_s / v**2
-        assert fringe_amplitude(v) == pytest.approx(math.exp(-0.5 * phase_spread**2), abs=5e-4)
-    # The reference rig's own form, dephasing_at_500 (500 / v)^2, is the same law.
-    s500 = 2.0 * math.pi * detuning_hz * arm_m * spread_m_per_s / 500.0**2
-    assert _contrast(530.0, s500) / 0.9 == pytest.approx(fringe_amplitude(530.0), abs=5e-4)
+        assert fringe_amplitude(v) == pytest.approx(
+            dephasing_contrast(v_ref / v - 1.0, s_ref), abs=5e-4)
 
 
-def test_the_log_evidence_is_the_gaussian_marginal_likelihood():
-    """The evidence the discrepancy is chosen by is log N(y; X m0, D + X S0 X^T) (Bishop 2006,
-    eq. 3.86; Rasmussen and Williams 2006, eq. 2.30), evaluated here by
-    scipy.stats.multivariate_normal, up to the constant -n/2 log(2 pi) the code omits."""
+def _law_problem(rng: np.random.Generator, n: int = 6):
+    x = np.linspace(-0.08, 0.09, n)
+    c_var = rng.uniform(0.02, 0.03, n) ** 2
+    r_var = rng.uniform(0.02, 0.03, n) ** 2
+    shared = 0.5 * c_var
+    c = 0.9 * np.exp(-0.5 * 0.25 * (1.0 + x) ** 4) + rng.normal(0.0, 0.025, n)
+    r = 0.7 + rng.normal(0.0, 0.025, n)
+    return x, c, c_var, r, r_var, shared
+
+
+def _joint_design(x: np.ndarray, spread: float, scale: float):
+    """The joint observation (C_1..C_n, r_1..r_n) = A theta + offset, theta = (C_inf, r0, d1, d2)."""
+    from autotune.analysis.velocity_model import dephasing_contrast, law_proxy
+
+    n = len(x)
+    a = np.zeros((2 * n, 4))
+    a[:n, 0] = dephasing_contrast(x, spread)
+    a[n:, 1], a[n:, 2], a[n:, 3] = 1.0, x, x * x
+    p1, p2 = law_proxy(spread, scale)
+    offset = np.concatenate([np.zeros(n), p1 * x + p2 * x * x])
+    return a, offset
+
+
+def test_the_law_grid_is_partitioned_gaussian_conditioning_and_its_evidence_the_joint_marginal():
+    """At each phase spread the conditional posterior of (C_inf, r0, d1, d2) is that of the joint
+    Gaussian of parameters and data, mu_a + S_ab S_bb^-1 (y - mu_b) (Bishop 2006, eq. 2.81-2.82),
+    and the log evidence is scipy.stats.multivariate_normal.logpdf of y under N(A m, N + A P
+    A^T) (Bishop 2006, eq. 3.86), up to one constant for every spread and both discrepancies
+    (the model compares them); P(C_inf <= 1) is scipy.stats.norm.cdf of the conditional."""
     from scipy import stats
 
-    from autotune.analysis.velocity_model import _posterior
-    rng = np.random.default_rng(3)
-    x = np.linspace(-0.08, 0.08, 6)
-    design = np.stack([np.ones(6), x, x * x], axis=1)
-    values = 0.7 + 0.3 * x - 3.0 * x * x + 0.02 * rng.standard_normal(6)
-    variances = np.full(6, 0.02**2)
-    prior_mean = np.array([0.7, 0.1, -2.0])
-    prior_cov = np.diag([1.0, 0.07, 0.35]) ** 2
-    _, _, evidence = _posterior(design, values, variances, prior_mean, prior_cov)
-    reference = stats.multivariate_normal.logpdf(
-        values, mean=design @ prior_mean, cov=np.diag(variances) + design @ prior_cov @ design.T)
-    assert evidence - 0.5 * 6 * math.log(2.0 * math.pi) == pytest.approx(reference, rel=1e-10)
+    from autotune.analysis.velocity_model import _law_grid
 
+    rng = np.random.default_rng(4)
+    x, c, c_var, r, r_var, shared = _law_problem(rng)
+    n = len(x)
+    noise = np.block([[np.diag(c_var), np.diag(shared)], [np.diag(shared), np.diag(r_var)]])
+    y = np.concatenate([c, r])
+    spreads = np.array([0.0, 0.3, 0.5, 0.9])
+    gaps = []
+    for tau in (np.array([0.07, 0.35]), np.array([0.28, 0.35])):
+        grid = _law_grid(x, c, c_var, r, r_var, shared, 0.7, tau, 0.85, 0.72, spread=spreads)
+        prior_mean = np.array([0.85, 0.72, 0.0, 0.0])
+        prior_cov = np.diag([1.0, 1.0, tau[0] ** 2, tau[1] ** 2])
+        for g, spread in enumerate(spreads):
+            a, offset = _joint_design(x, spread, 0.7)
+            s_bb = a @ prior_cov @ a.T + noise
+            s_ab = prior_cov @ a.T
+            mean = prior_mean + s_ab @ np.linalg.solve(s_bb, y - offset - a @ prior_mean)
+            cov = prior_cov - s_ab @ np.linalg.solve(s_bb, s_ab.T)
+            np.testing.assert_allclose(grid.mean[g], mean, atol=1e-9)
+            np.testing.assert_allclose(grid.cov[g], cov, atol=1e-12)
+            reference = stats.multivariate_normal.logpdf(y, mean=offset + a @ prior_mean, cov=s_bb)
+            gaps.append(float(grid.log_evidence[g]) - reference)
+            assert grid.log_within_one[g] == pytest.approx(
+                stats.norm.logcdf(1.0, mean[0], math.sqrt(cov[0, 0])), rel=1e-9)
+    assert np.ptp(gaps) < 1e-8
+    assert n == 6
+
+
+def test_the_contrast_can_only_rise_with_velocity():
+    """Noise-free contrasts from the law (s_ref = 0.6 rad, C_inf = 0.95) give back s_ref and
+    C_inf; contrasts that fall with velocity (impossible under the law: the dephasing phase
+    spread grows at lower velocity) give a phase spread near zero, never a contrast slope of
+    that sign (docs/physics.md section 3)."""
+    from autotune.analysis.velocity_model import dephasing_contrast
+
+    velocities = np.array(VELOCITIES)
+    xs = V_REF / velocities - 1.0
+    truth = dephasing_contrast(xs, 0.6, 0.95)
+
+    def law_of(contrasts):
+        curve = fit_inversion_curve(
+            xs, 0.7 * contrasts / contrasts[2] - 0.015, [1e-4] * len(xs), [0.015] * len(xs),
+            [1e-8] * len(xs), contrasts, [1e-6] * len(xs), np.array([0.015, 0.0, 4.0]),
+            np.eye(3) * 1e-10, 0.7, V_REF, sorted(set(xs)))
+        return curve.law
+
+    law = law_of(truth)
+    assert law.spread_rad == pytest.approx(0.6, abs=0.01)
+    assert law.contrast_limit == pytest.approx(0.95, abs=0.01)
+    falling = 0.8 * (1.0 + 0.8 * xs)          # larger at lower velocity
+    law = law_of(falling)
+    assert law.relative_slope <= 0.0
+    assert law.spread_rad < 0.05
+
+
+def test_the_contrast_without_dephasing_cannot_exceed_one():
+    """Flat contrasts of 0.9 (+-0.02) with inversions that fall steeply towards low velocity:
+    however the inversions pull, the phase spread stays where C_inf = 0.9 exp(s^2 / 2) <= 1 allows
+    it (s <= sqrt(-2 ln 0.9) = 0.46 rad, with the contrasts' noise)."""
+    xs = np.linspace(-0.08, 0.09, 8)
+    curve = fit_inversion_curve(
+        xs, 0.7 - 3.0 * xs, [1e-4] * 8, [0.015] * 8, [1e-8] * 8, [0.9] * 8, [0.02**2] * 8,
+        np.array([0.015, 0.0, 4.0]), np.eye(3) * 1e-10, 0.7, V_REF, sorted(set(xs)))
+    assert curve.law.spread_rad < math.sqrt(-2.0 * math.log(0.9 - 2 * 0.02 / math.sqrt(8)))
+    assert curve.law.contrast_limit <= 1.0 + 0.02
+
+
+@pytest.mark.parametrize("spread, limit", [(0.0, 0.855), (0.6, 0.95)])
+def test_the_slope_is_stated_honestly_with_the_fringes_shared_noise(spread, limit):
+    """Six points whose inversion and empty contrast share half the contrast's variance (the
+    delta method, fringe.shared_fringe_covariance), on a flat rig and on a dephasing rig: over
+    600 seeded draws (numpy) the stated 95 % interval of r's slope covers the true slope
+    S (-2 s_ref^2) at least at its nominal rate (scipy.stats.binomtest, one-sided p > 0.001)."""
+    from scipy import stats
+
+    from autotune.analysis.velocity_model import dephasing_contrast
+
+    x = np.array([0.0, 0.0, -0.04, 0.05, 0.09, -0.08])
+    sd = 0.026
+    cov = np.array([[sd**2, 0.5 * sd**2], [0.5 * sd**2, sd**2]])
+    chol = np.linalg.cholesky(cov)
+    h = dephasing_contrast(x, spread) / dephasing_contrast(0.0, spread)
+    scale = 0.73
+    true_slope = -2.0 * spread**2 * scale
+    absorption = 0.02 + 3.0 * x**2
+    rng = np.random.default_rng(11)
+    covered, n, scores = 0, 600, []
+    for _ in range(n):
+        noise = rng.normal(size=(len(x), 2)) @ chol.T
+        contrasts = dephasing_contrast(x, spread, limit) + noise[:, 0]
+        inversions = scale * h - absorption + 0.02 + noise[:, 1]
+        curve = fit_inversion_curve(
+            x, inversions, np.full(len(x), sd**2), absorption, np.full(len(x), 1e-8), contrasts,
+            np.full(len(x), sd**2), np.array([0.02, 0.0, 3.0]), np.eye(3) * 1e-10, scale, 500.0,
+            sorted(set(x)), inversion_contrast_covs=np.full(len(x), 0.5 * sd**2))
+        # r's slope: the curve's (r - P_e) plus the absorption's, whose slope is 0 here.
+        scores.append((curve.coef[1] - true_slope) / math.sqrt(curve.residual_cov[1, 1]))
+        covered += abs(scores[-1]) < stats.norm.ppf(0.975)
+    assert stats.binomtest(covered, n, 0.95, alternative="less").pvalue > 1e-3
+    # The stated sd is not narrower than the scatter: the z-scores' sd below 1.1 (the sd of a
+    # sample sd of 600 normal draws is about 1 / sqrt(2 n) = 0.03, so 1.1 is three of them).
+    assert np.std(scores) < 1.1
+
+
+def test_the_discrepancies_are_averaged_by_their_evidence():
+    """The curve's posterior of r is the slope discrepancies' posteriors (1 and 4 times the
+    narrow one, equal prior weights) weighed by their evidence: its mean and covariance are those
+    of the Gaussian mixture, checked against 400,000 numpy draws from that mixture (the law of
+    total covariance, by sampling); with few velocity groups the wide ones keep weight, and the
+    stated slope sd lies between the narrowest and the widest fit's."""
+    from autotune.analysis import velocity_model as vm
+
+    rng = np.random.default_rng(9)
+    x, c, c_var, r, r_var, shared = _law_problem(rng, 4)
+    scale = 0.7
+    fits = [vm._law_posterior(x, c, c_var, r, r_var, shared, scale,
+                              scale * np.array(vm.DISCREPANCY) * np.array([f, 1.0]),
+                              float(np.mean(c)), scale + 0.015)
+            for f in vm.DISCREPANCY_SCALES]
+    assert vm.DISCREPANCY_SCALES == (1.0, 4.0)
+    curve = fit_inversion_curve(x, r - 0.015, r_var, [0.015] * 4, [0.0] * 4, c, c_var,
+                                np.array([0.015, 0.0, 0.0]), np.zeros((3, 3)), scale, 500.0,
+                                sorted(set(x)), inversion_contrast_covs=shared)
+    evidence = np.array([f[2] for f in fits])
+    weights = np.exp(evidence - evidence.max())
+    weights /= weights.sum()
+    assert weights[0] < 0.95
+    n = 400_000
+    which = rng.choice(len(fits), size=n, p=weights)
+    draws = np.empty((n, 3))
+    for k, fit in enumerate(fits):
+        mine = which == k
+        draws[mine] = rng.multivariate_normal(fit[0], fit[1], int(mine.sum()))
+    np.testing.assert_allclose(curve.coef + np.array([0.015, 0.0, 0.0]), draws.mean(axis=0),
+                               atol=3e-3)
+    # Each entry within 0.01 of sqrt(var_i var_j) (a sample correlation's sd is about
+    # 1 / sqrt(400,000) = 0.0016).
+    sd = np.sqrt(np.diag(curve.residual_cov))
+    assert np.max(np.abs(curve.residual_cov - np.cov(draws.T)) / np.outer(sd, sd)) < 0.01
+    narrow, wide = math.sqrt(fits[0][1][1, 1]), math.sqrt(fits[-1][1][1, 1])
+    assert narrow < math.sqrt(curve.residual_cov[1, 1]) < wide
+
+
+def test_bad_shared_covariances_are_refused():
+    """One covariance per point, finite, or a clear error naming it."""
+    from autotune.errors import ValueRefused
+
+    xs = [-0.05, 0.0, 0.05]
+    args = (xs, [0.7] * 3, [1e-3] * 3, [0.02] * 3, [1e-6] * 3, [0.85] * 3, [1e-3] * 3,
+            np.array([0.02, 0.0, 3.0]), np.eye(3) * 1e-6, 0.7, 500.0, xs)
+    with pytest.raises(ValueRefused, match="inversion-contrast covariance"):
+        fit_inversion_curve(*args, inversion_contrast_covs=[1e-4, 1e-4])
+    with pytest.raises(ValueRefused, match="inversion-contrast covariance"):
+        fit_inversion_curve(*args, inversion_contrast_covs=[1e-4, float("nan"), 1e-4])
 
 
 # The disagreement of the measured inversions with the proxy (velocity_model.proxy_disagreement)

@@ -722,6 +722,8 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                                     "covariance": [[float(v) for v in row] for row in curve.cov],
                                     "proxy_slope_curvature": [float(v) for v in curve.proxy],
                                     "discrepancy_widened": bool(curve.widened),
+                                    "dephasing_law": (curve.law.to_dict()
+                                                      if curve.law is not None else None),
                                     "disagreement": _disagreement_dict(curve.disagreement,
                                                                        curve.velocity_ref)}
             if peak is not None:

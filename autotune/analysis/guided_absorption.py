@@ -12,6 +12,7 @@ import math
 
 import numpy as np
 
+from autotune.analysis.fringe import shared_fringe_covariance
 from autotune.analysis.lock_fit import mixture_phase_error, mixture_phase_gain, solve_gaussian
 from autotune.analysis.next_point import SAME_VELOCITY
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, fit_inversion_curve
@@ -136,7 +137,7 @@ class AbsorptionSignal:
         star = self._phase_star()[0]
         # The source's empty fraction at its cautious end (lock_fit.mixture_phase_error).
         empty = self._mixture_low()
-        xs, values, variances = [], [], []
+        xs, values, variances, shared = [], [], [], []
         for o in points:
             # The inversion at the peak's phase: a phase error eps costs a factor cos(eps / 2).
             phase, phase_sd = self._phase_for_absorption(o)
@@ -150,12 +151,17 @@ class AbsorptionSignal:
             values.append(value)
             variances.append((o.result.inversion_stderr / factor) ** 2
                              + (value * 0.5 * math.tan(half) * gain * phase_sd) ** 2)
+            # The inversion and the empty contrast are read from the same empty fringe.
+            shared.append(shared_fringe_covariance(
+                o.result.contrast_empty, o.result.contrast_empty_stderr,
+                o.result.contrast_one_photon, o.result.phase_shift) / factor)
         return fit_inversion_curve(
             xs, values, variances, [o.result.absorption for o in points],
             [o.result.absorption_stderr**2 for o in points],
             [o.result.contrast_empty for o in points],
             [o.result.contrast_empty_stderr**2 for o in points],
-            fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups)
+            fit.coef, fit.cov, self._inversion_scale(), fit.velocity_ref, fit.x_groups,
+            inversion_contrast_covs=shared)
 
     def _inversion_scale(self) -> float:
         points = self._absorption_points() or self._in_range()
