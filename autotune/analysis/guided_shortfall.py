@@ -229,6 +229,9 @@ class ShortfallBound:
         plan = self._velocity_plan()
         if not points or not plan["concluded"] or plan.get("outward", False):
             return False
+        velocity = self._recommended_velocity()
+        if not self._measured_at(velocity):
+            return False
         rec = self.recommend(clock_s=clock).point
         return self._stop_bound(rec, clock) <= self.settings.target_shortfall
 
