@@ -35,9 +35,10 @@ class ProposalChoice:
 
         Sized from the measured error per shot of the usable points so far (median of
         ``stderr^2 x shots``: the one-photon contrast, the atom rate and the detection
-        efficiency are all in it) to give ``step_phase_stderr_rad`` (lock) or
-        ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the configured
-        shots; the configured shots before any usable point.
+        efficiency are all in it) to give ``step_phase_stderr_rad`` (lock: the one-photon phase
+        error's, the measured phase's error times the mixture law's gain ``1 - q``, 1 for a pure
+        photon) or ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the
+        configured shots; the configured shots before any usable point.
         """
         s = self.settings
         base = s.velocity_shots_per_phase if purpose == "velocity" else s.lock_shots_per_phase
