@@ -14,7 +14,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from autotune.analysis.lock_fit import mixture_phase_gain
-from autotune.analysis.next_point import SAME_VELOCITY, best_proposal, expected_after, local_points
+from autotune.analysis.next_point import SAME_VELOCITY, best_proposal, expected_after
 from autotune.analysis.shortfall import Shortfall
 from autotune.analysis.search import Proposal
 from autotune.wire.rig import measurement_shots
@@ -30,7 +30,7 @@ class ProposalChoice:
 
     # -- proposals --------------------------------------------------------------------------
 
-    def step_shots(self, purpose: str, velocity: float | None = None) -> int:
+    def step_shots(self, purpose: str) -> int:
         """Shots per field and phase of a lock (``"lock"``, ``"relock"``) or velocity step.
 
         Sized from the measured error per shot of the usable points so far (median of
@@ -38,24 +38,17 @@ class ProposalChoice:
         efficiency are all in it) to give ``step_phase_stderr_rad`` (lock: the one-photon phase
         error's, the measured phase's error times the mixture law's gain ``1 - q``, 1 for a pure
         photon) or ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the
-        configured shots; the configured shots before any usable point. A lock step at
-        ``velocity`` (m/s) reads the phase's error per shot from the usable points within one
-        velocity step of it when there are two or more (the one-photon contrast, hence the
-        phase's noise, changes with the velocity), else from all.
+        configured shots; the configured shots before any usable point.
         """
         s = self.settings
         base = s.velocity_shots_per_phase if purpose == "velocity" else s.lock_shots_per_phase
-        where = None if purpose == "velocity" else velocity
-        return self._cached(("step_shots", purpose, where),
-                            lambda: self._compute_step_shots(purpose, base, where))
+        return self._cached(("step_shots", purpose), lambda: self._compute_step_shots(purpose, base))
 
-    def _compute_step_shots(self, purpose: str, base: int, velocity: float | None = None) -> int:
+    def _compute_step_shots(self, purpose: str, base: int) -> int:
         s = self.settings
         points = [o for o in self._in_range() if o.result.shots > 0]
         if not points:
             return base
-        if velocity is not None:
-            points = local_points(points, velocity, s.velocity_step_fraction)
         if purpose == "velocity":
             floor = 0.005
             per_shot = float(np.median([o.result.absorption_stderr**2 * o.result.shots / max(o.result.absorption, floor)
@@ -100,7 +93,7 @@ class ProposalChoice:
                 if short.upper <= s.target_shortfall:
                     return Proposal(verdict.corrected, "correct", None,
                                     f"retune: {verdict.reason}; predicted bound there {short.upper:.2%}: verify")
-                return Proposal(verdict.corrected, "lock", self.step_shots("lock", verdict.corrected["velocity"]),
+                return Proposal(verdict.corrected, "lock", self.step_shots("lock"),
                                 f"retune: {verdict.reason}; predicted bound there {short.upper:.2%} above "
                                 f"{s.target_shortfall:.1%}: a lock step there first")
         if not self._obs:
@@ -168,7 +161,7 @@ class ProposalChoice:
                 continue
             if steps != direction:
                 why += "; the slope is not yet significant from the points so far"
-            return Proposal({"velocity": velocity, "detuning": target}, "lock", self.step_shots("lock", velocity),
+            return Proposal({"velocity": velocity, "detuning": target}, "lock", self.step_shots("lock"),
                             f"bracket the lock: {abs(steps):.0f} step(s) of {self.step_hz / 1e3:.1f} kHz from "
                             f"{ref.detuning / 1e3:+.2f} kHz (phase error {error / math.pi:+.2f} pi; {why}) for "
                             "the phase slope; the detuning term is unknown (infinite) until the slope's sign "
@@ -183,9 +176,8 @@ class ProposalChoice:
         limited = "" if abs(target - self._clip_detuning(delta)) < 1.0 else \
             f", step limited to {self.max_lock_step_hz / 1e3:.1f} kHz"
         rec = {"velocity": velocity, "detuning": self._clip_detuning(delta)}
-        shots = self.step_shots(purpose, velocity)
-        after = self._expected_after(rec, velocity, target, shots, clock)
-        return Proposal({"velocity": velocity, "detuning": target}, purpose, shots,
+        after = self._expected_after(rec, velocity, target, self.step_shots(purpose), clock)
+        return Proposal({"velocity": velocity, "detuning": target}, purpose, self.step_shots(purpose),
                         f"{why}: phase at the peak predicted at {delta / 1e3:+.2f} +- {sd / 1e3:.2f} kHz{limited}; "
                         f"phase error there {short.phase_error_rad / math.pi:+.3f} +- "
                         f"{short.phase_error_stderr_rad / math.pi:.3f} pi; this point is expected to reduce the "

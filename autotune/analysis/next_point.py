@@ -40,8 +40,8 @@ from autotune.errors import ValueRefused
 if TYPE_CHECKING:
     from autotune.analysis.guided import PhaseLockSearch
 
-__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall", "local_points",
-           "updated_cov", "usable_chance", "usable_evidence"]
+__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall", "updated_cov",
+           "usable_chance", "usable_evidence"]
 
 #: Two velocities closer than this (relative) are one velocity group of the absorption fit.
 SAME_VELOCITY = 0.005
@@ -53,7 +53,7 @@ def candidates(search: PhaseLockSearch, velocity: float, clock: float | None) ->
     low, high = search._velocity_box
     out = []
     delta = search._lock_target(velocity, clock)[0]
-    out.append(("lock", velocity, search._limit_step(delta, velocity), search.step_shots("lock", velocity)))
+    out.append(("lock", velocity, search._limit_step(delta, velocity), search.step_shots("lock")))
     # One and two steps either side: the curvature and the vertex of the absorption are
     # learned fastest from its wings (the excess grows as the square of the step).
     f = s.velocity_step_fraction
@@ -116,18 +116,8 @@ def usable_chance(usable: int, unusable: int) -> float:
     return (1.0 + usable) / (2.0 + usable + unusable)
 
 
-def local_points(points: list, velocity: float, fraction: float) -> list:
-    """The points within ``fraction`` (relative) of ``velocity`` when there are two or more, else
-    all: the phase's error per shot follows the one-photon contrast, which changes with the
-    velocity."""
-    near = [o for o in points if abs(o.velocity / velocity - 1.0) <= fraction]
-    return near if len(near) >= 2 else points
-
-
-def expected_phase_variance(search: PhaseLockSearch, shots: int, velocity: float | None = None) -> float:
-    points = [o for o in search._in_range() if o.result.shots > 0]
-    if velocity is not None:
-        points = local_points(points, velocity, search.settings.velocity_step_fraction)
+def expected_phase_variance(search: PhaseLockSearch, shots: int) -> float:
+    points = search._in_range()
     per_shot = [o.result.phase_shift_stderr**2 * o.result.shots for o in points if o.result.shots > 0]
     return float(np.median(per_shot)) / shots if per_shot else (0.1**2)
 
@@ -168,7 +158,7 @@ def expected_after(search: PhaseLockSearch, rec: Mapping[str, float], velocity: 
     lock_fit = search._lock_fit(rec["velocity"])
     x = lock_fit.features(detuning, clock)
     model = search.settings.phase_velocity_error_rad * abs(velocity / rec["velocity"] - 1.0)
-    var = expected_phase_variance(search, shots, velocity) + model**2
+    var = expected_phase_variance(search, shots) + model**2
     lock_cov = updated_cov(lock_fit.cov, x, var)
     absorption_cov = residual_cov = None
     fit = search._absorption_fit()
