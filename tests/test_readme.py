@@ -54,6 +54,7 @@ HOW = {
     "python3 benchmarks/bench_sim.py": ("slow", "a benchmark (about 10 s of timing loops)"),
     "python3 benchmarks/bench_bus.py": ("slow", "a benchmark (about 10 s of round trips)"),
     "python3 benchmarks/phase_design.py": ("help", "a study of minutes on 2 cores"),
+    "python3 benchmarks/velocity_breakdown.py": ("help", "24 calibrations, minutes on 2 cores"),
     "python3 benchmarks/first_line.py": ("slow", "a benchmark (20 process starts, about a "
                                          "minute on a quiet machine)"),
     "python3 -m autotune.bench": ("help", "the study takes minutes on 2 cores"),

@@ -109,8 +109,9 @@ Shots: ``shots_per_phase=None`` means the loop's configured default for the purp
 points: ``measurement.shots_per_phase``; ``"check"``: the check's precision; ``"correct"``:
 the verification's). Lock and velocity steps carry :meth:`PhaseLockSearch.step_shots`: the
 configured ``LockSettings.lock_shots_per_phase`` and ``velocity_shots_per_phase`` until a
-usable point is measured, then the shots that give a lock step a phase standard error of
-``step_phase_stderr_rad`` and a velocity step an absorption standard error of
+usable point is measured, then the shots that give a lock step a one-photon phase error's
+standard error of ``step_phase_stderr_rad`` (the measured phase's, times the mixture law's gain
+``1 - q`` on a poor source) and a velocity step an absorption standard error of
 ``step_absorption_stderr`` from the measured error per shot (a poor one-photon source or a low
 atom flux raises it), within ``step_shots_range`` times the configured shots. Their default, 500 each, comes from a comparison on 20 scenarios
 of the simulated rig drawn over the benchmark's ranges (one draw, used for this choice only;

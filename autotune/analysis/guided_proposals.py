@@ -13,6 +13,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
+from autotune.analysis.lock_fit import mixture_phase_gain
 from autotune.analysis.next_point import SAME_VELOCITY, best_proposal, expected_after
 from autotune.analysis.shortfall import Shortfall
 from autotune.analysis.search import Proposal
@@ -34,9 +35,10 @@ class ProposalChoice:
 
         Sized from the measured error per shot of the usable points so far (median of
         ``stderr^2 x shots``: the one-photon contrast, the atom rate and the detection
-        efficiency are all in it) to give ``step_phase_stderr_rad`` (lock) or
-        ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the configured
-        shots; the configured shots before any usable point.
+        efficiency are all in it) to give ``step_phase_stderr_rad`` (lock: the one-photon phase
+        error's, the measured phase's error times the mixture law's gain ``1 - q``, 1 for a pure
+        photon) or ``step_absorption_stderr`` (velocity), within ``step_shots_range`` times the
+        configured shots; the configured shots before any usable point.
         """
         s = self.settings
         base = s.velocity_shots_per_phase if purpose == "velocity" else s.lock_shots_per_phase
@@ -55,7 +57,11 @@ class ProposalChoice:
             total = per_shot * level / s.step_absorption_stderr**2
         else:
             per_shot = float(np.median([o.result.phase_shift_stderr**2 * o.result.shots for o in points]))
-            total = per_shot / s.step_phase_stderr_rad**2
+            # The target is the one-photon phase error's: on a poor source read through the
+            # mixture's law the measured phase's noise moves it by the law's gain, 1 - q at
+            # the peak (lock_fit.mixture_phase_gain; 1 for a pure photon).
+            gain = mixture_phase_gain(0.0, self._mixture_low())
+            total = per_shot * gain**2 / s.step_phase_stderr_rad**2
         per_phase = math.ceil(total / measurement_shots(s.ramsey_phases, 1))
         low, high = s.step_shots_range
         return int(np.clip(per_phase, max(1, math.ceil(low * base)), max(1, math.floor(high * base))))

@@ -110,9 +110,13 @@ class LockSettings:
     fallback_initial_points : int
         Space-filling points of the Gaussian-process fallback's first design (6).
     step_phase_stderr_rad : float
-        Phase-shift standard error a lock step is sized for, rad (0.15: the 1 % target allows
-        a phase error of 0.4 rad, ``1 - cos(eps / 2) <= 0.01``, so a step's own noise keeps its
-        95 % range inside it).
+        Standard error of the one-photon phase error ``eps`` a lock step is sized for, rad
+        (0.15: the 1 % target allows a phase error of 0.4 rad, ``1 - cos(eps / 2) <= 0.01``, so
+        a step's own noise keeps its 95 % range inside it). For a pure photon ``eps`` is the
+        measured phase error; on a poor source read through the mixture's law the measured
+        phase's noise moves ``eps`` by the law's gain, ``1 - q`` at the peak
+        (:func:`autotune.analysis.lock_fit.mixture_phase_gain`), and the step takes ``(1 - q)^2``
+        of the shots.
     step_absorption_stderr : float
         Absorption standard error a velocity step is sized for (0.005: half the excess
         absorption one velocity step of 5 % adds at a curvature of 4, ``4 x 0.05^2 = 0.01``).
