@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
 import numpy as np
@@ -44,9 +44,21 @@ __all__ = [
     "recovery_start",
     "recovery_after_alarm",
     "lock_at_stage_end",
+    "OFF_PEAK_Z",
+    "off_peak",
 ]
 
 _TWO_PI = 2.0 * math.pi
+
+#: A check's reading of the set-point's offset from the peak, in its OWN standard errors, at or
+#: beyond which the reading says the set-point is off the peak: two-sided 0.1 %
+#: (scipy.stats.norm.isf(0.0005) = 3.29). On a quiet night a check with the set-point on the
+#: peak reads this far one time in a thousand, and what follows (the next check at once) spends
+#: a check's beam, never a retune. A poor source's first check after a thermal step read its
+#: set-point 5.2 of its standard errors off the peak while the lock's own uncertainty over an
+#: hour's interval (11 kHz) left its innovation at z 1.2: the lock walked back 5 kHz a check
+#: with checks up to an hour apart (benchmarks/README.md, session 8).
+OFF_PEAK_Z = 3.2905267314919255
 
 
 @dataclass(frozen=True)
@@ -96,6 +108,8 @@ class Assessment:
     alarm: str | None
     target_detuning_hz: float
     reason: str
+    reading_z: float = math.nan
+    off_peak: bool = False
 
     def numbers(self) -> dict[str, Any]:
         """JSON-ready numbers for the journal (nan as None)."""
@@ -186,7 +200,12 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
                f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
                f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
-    aim = updated.peak_at(clock + 0.5 * next_interval_s)
+    reading_z = offset / offset_sd if offset_sd > 0 else math.nan
+    far = off_peak(reading_z)
+    # Off the peak the next check comes at once (hold_plan.next_check): aim at the peak now,
+    # not at the middle of an interval the lock's rate would extrapolate over (a step it took
+    # in as drift would carry the set-point past the peak).
+    aim = updated.peak_at(clock if far else clock + 0.5 * next_interval_s)
     move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
     target = detuning_hz + move
     if limits is not None:
@@ -194,8 +213,29 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     read = {"offset": offset, "offset_sd": offset_sd, "peak": peak, "variance": variance,
             "innovation": innovation, "lock": updated, "upper": new_upper, "lower": new_lower,
             "inversion": inversion_stat, "inversion_z": inversion_z}
-    return _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
-                   numbers=numbers)
+    decided = _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
+                      numbers=numbers)
+    reason = decided.reason
+    if far and decided.action in ("hold", "correct"):
+        reason = (f"{reason}; the reading puts the set-point {abs(reading_z):.1f} of its own "
+                  f"standard errors off the peak (|z| >= {OFF_PEAK_Z:.2f}): the next check "
+                  f"comes at once")
+    return replace(decided, reading_z=reading_z, off_peak=far, reason=reason)
+
+
+def off_peak(reading_z: float) -> bool:
+    """Whether a check's own reading says the set-point is off the peak.
+
+    ``reading_z`` is the check's offset from the peak in its own standard errors; off the peak
+    when ``|z| >= OFF_PEAK_Z``, a two-sided z test at 0.1 % (scipy.stats.norm). The lock's
+    innovation is not asked: over a long interval its prediction may be too uncertain for the
+    innovation's test to see what the reading sees. The night then takes the next check at once
+    (:func:`hold_plan.next_check`, within the budget's ceiling), so that a walk back capped at
+    ``max_correction_hz`` a check takes minutes, not intervals; it ends when the reading is no
+    longer significant (a capped correction whose reading is not is within the check's noise:
+    on a poor source a 5 kHz reading may be noise).
+    """
+    return bool(math.isfinite(reading_z) and abs(reading_z) >= OFF_PEAK_Z)
 
 
 def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversion: float,

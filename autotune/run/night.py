@@ -595,7 +595,9 @@ class Night:
         if self._in_flight() != "check":
             self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
                              "the next check" + (" (recheck)" if nxt.get("recheck") else
-                                                 " (sooner)" if nxt.get("sooner") else ""),
+                                                 " (sooner)" if nxt.get("sooner") else
+                                                 " (soon: off the peak)" if nxt.get("soon")
+                                                 else ""),
                              point=point)
             if self.clock.end_reason() is not None:
                 return
@@ -687,7 +689,8 @@ class Night:
                                first_shot_s=m.t_first,
                                # An unreadable check is always repeated at once.
                                run=int(state["next"].get("run", 0)) if a.usable else 0,
-                               statistic=max(a.upper, a.lower) if a.usable else 0.0)
+                               statistic=max(a.upper, a.lower) if a.usable else 0.0,
+                               off_peak=a.usable and a.off_peak)
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
