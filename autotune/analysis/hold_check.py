@@ -87,9 +87,19 @@ class Assessment:
     alarm : str or None
         ``"out_of_range"``, ``"upper"``, ``"lower"`` or ``"inversion"``.
     target_detuning_hz : float
-        The detuning set-point to hold next (the present one unless ``action`` corrects).
+        The detuning set-point to hold next (the present one unless ``action`` corrects; a
+        recheck holds the present one, see ``lock_target_hz``).
     reason : str
         One sentence with the numbers.
+    reading_z : float
+        The check's offset from the peak in its own standard errors (nan when not usable).
+    off_peak : bool
+        Whether that reading says the set-point is off the peak (:func:`off_peak`).
+    lock_target_hz : float
+        The detuning the lock's correction aims at (bounded as ``target_detuning_hz`` is; nan
+        when not usable). A recheck holds the present set-point until the check at once
+        confirms or clears its reading; a recheck that is the last of its run (the next check
+        an interval away, :func:`hold_plan.next_check`) moves here instead.
     """
 
     usable: bool
@@ -110,6 +120,7 @@ class Assessment:
     reason: str
     reading_z: float = math.nan
     off_peak: bool = False
+    lock_target_hz: float = math.nan
 
     def numbers(self) -> dict[str, Any]:
         """JSON-ready numbers for the journal (nan as None)."""
@@ -269,19 +280,25 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
                 "lower": "the peak moved down beyond what the lock follows",
                 "inversion": "the inversion dropped below its reference"}[alarm]
         return Assessment(*common, "alarm", alarm, detuning_hz,
-                          f"{numbers}: alarm, {side}; retune")
+                          f"{numbers}: alarm, {side}; retune", lock_target_hz=target)
     rising = new_upper > test.warning or new_lower > test.warning or \
         inversion_stat > test.inversion_warning
     action = "hold"
     if abs(target - detuning_hz) >= settings.min_correction_hz:
         action = "correct"
     if rising:
+        # A reading the lock did not expect (its chart above the warning level) is confirmed
+        # before the set-point follows it: the check at once reads from the same set-point.
+        # Moved on an outlier, the set-point would be put off the peak by the move itself,
+        # and the charts would then read that offset as a change the other way, check after
+        # check at once (benchmarks/README.md, session 9).
         why = "a statistic is above its warning level: check again at once"
-        return Assessment(*common, "recheck", None,
-                          target if action == "correct" else detuning_hz,
-                          f"{numbers}: {why}" + (f"; lock moves the detuning by "
-                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz"
-                                                 if action == "correct" else ""))
+        return Assessment(*common, "recheck", None, detuning_hz,
+                          f"{numbers}: {why}" + (f"; the set-point is held until it confirms "
+                                                 f"(the lock's correction "
+                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz)"
+                                                 if action == "correct" else ""),
+                          lock_target_hz=target)
     if action == "correct":
         limited = " (bounded)" if abs(aim - target) > 1.0 else ""
         why = (f"lock moves the detuning by {(target - detuning_hz) / 1e3:+.2f} kHz to "
@@ -291,7 +308,8 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
     else:
         why = (f"held: the lock's correction {(aim - detuning_hz) / 1e3:+.2f} kHz is below "
                f"{settings.min_correction_hz / 1e3:.2f} kHz")
-    return Assessment(*common, action, None, target, f"{numbers}: {why}")
+    return Assessment(*common, action, None, target, f"{numbers}: {why}",
+                      lock_target_hz=target)
 
 
 def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_per_s: float,
