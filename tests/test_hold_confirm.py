@@ -59,7 +59,7 @@ def _night(rng: np.random.Generator, checks: int, step_at: int | None = None,
     upper = lower = 0.0
     clock = 0.0
     rows = []
-    recheck = False
+    recheck = confirming = False
     for n in range(checks):
         clock += 24.0 if recheck else plan.interval_s
         peak = step_hz if step_at is not None and n >= step_at else 0.0
@@ -68,20 +68,24 @@ def _night(rng: np.random.Generator, checks: int, step_at: int | None = None,
                                                  phase_sd, clock),
                          detuning_hz=held, lock=lock, prior=prior, plan=plan, upper=upper,
                          lower=lower, inversion=0.0, reference_inversion=0.72,
-                         reference_stderr=0.02, next_interval_s=plan.interval_s)
+                         reference_stderr=0.02, next_interval_s=plan.interval_s,
+                         confirming=confirming)
         rows.append({"offset": held - peak, "earlier": earlier - peak, "action": a.action,
-                     "moved": a.target_detuning_hz - held, "lock_target": a.lock_target_hz})
+                     "moved": a.target_detuning_hz - held, "lock_target": a.lock_target_hz,
+                     "confirming": confirming})
         if a.action == "alarm":
             break
         if a.action == "recheck":
-            assert a.target_detuning_hz == held
-            # An unreadable check (out of the capture range) moves under neither rule.
+            # Held unless it confirms a reading taken just before; an unreadable check (out of
+            # the capture range) moves under neither rule.
+            assert confirming or a.target_detuning_hz == held
             earlier = a.lock_target_hz if a.usable else held
         else:
             earlier = a.target_detuning_hz
         held = a.target_detuning_hz
         lock, upper, lower = a.lock, a.upper, a.lower
         recheck = a.action == "recheck"
+        confirming = recheck and a.usable
     return rows
 
 
@@ -102,6 +106,12 @@ def test_a_recheck_holds_and_carries_the_locks_correction():
     assert a.target_detuning_hz == 0.0
     assert 0.0 < a.lock_target_hz <= settings.max_correction_hz
     assert "held until it confirms" in a.reason
+    # The same reading taken at once after another: it confirms, and the set-point moves.
+    b = assess_check(settings, result=_check(math.pi - DEMO_SLOPE * 9500.0, phase_sd, 600.0),
+                     detuning_hz=0.0, lock=lock, prior=prior, plan=plan, upper=0.0, lower=0.0,
+                     inversion=0.0, reference_inversion=0.72, reference_stderr=0.02,
+                     next_interval_s=plan.interval_s, confirming=True)
+    assert b.action == "recheck" and b.target_detuning_hz == a.lock_target_hz
 
 
 def _after_rechecks(wild: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -141,12 +151,14 @@ def test_normal_readings_lose_little_by_the_wait():
 
 
 def test_a_step_raises_the_alarm_with_the_set_point_held():
-    """A 15 kHz step on the same curve: the alarm comes at the same check as under the earlier
-    rule (the charts read the measured peak, not the held set-point), the set-point never moved
-    by a recheck before it."""
+    """A 10 kHz step on the same curve (a 15 kHz one raises the alarm at its first check): the
+    alarm comes at the same check as under the earlier rule (the charts read the measured peak,
+    not the held set-point), within four checks, and the first recheck after the step held the
+    set-point."""
     rng = np.random.default_rng(3)
-    rows = _night(rng, 60, step_at=20, step_hz=15_000.0)
+    rows = _night(rng, 60, step_at=20, step_hz=10_000.0)
     assert rows[-1]["action"] == "alarm"
     after_step = rows[20:]
     assert len(after_step) <= 4
-    assert all(r["moved"] == 0.0 for r in after_step if r["action"] == "recheck")
+    first = next(r for r in after_step if r["action"] == "recheck")
+    assert not first["confirming"] and first["moved"] == 0.0

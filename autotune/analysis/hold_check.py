@@ -97,9 +97,10 @@ class Assessment:
         Whether that reading says the set-point is off the peak (:func:`off_peak`).
     lock_target_hz : float
         The detuning the lock's correction aims at (bounded as ``target_detuning_hz`` is; nan
-        when not usable). A recheck holds the present set-point until the check at once
-        confirms or clears its reading; a recheck that is the last of its run (the next check
-        an interval away, :func:`hold_plan.next_check`) moves here instead.
+        when not usable). A recheck that is not ``confirming`` holds the present set-point
+        until the check at once confirms or clears its reading; one that is the last of its
+        run (the next check an interval away, :func:`hold_plan.next_check`), or whose check at
+        once the budget cannot pay for, moves here instead (the night's shell).
     """
 
     usable: bool
@@ -140,7 +141,8 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                  inversion: float, reference_inversion: float, reference_stderr: float,
                  next_interval_s: float, noise: NoiseModel | None = None,
                  previous_unusable: bool = False,
-                 limits: tuple[float, float] | None = None) -> Assessment:
+                 limits: tuple[float, float] | None = None,
+                 confirming: bool = False) -> Assessment:
     """Assess one check at the held detuning ``detuning_hz``: update the lock and the test, decide.
 
     Order of the decision: a check whose phase signal is unusable is checked again at once, and
@@ -167,6 +169,11 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
         Whether the check before this one was unusable (this one is its repeat).
     limits : (float, float), optional
         The detuning's effective limits (Hz).
+    confirming : bool
+        Whether this check was taken at once after a readable one (a recheck or an off-peak
+        check): it confirms or clears that reading. A recheck that is not confirming holds the
+        set-point (its reading is unconfirmed); a confirming recheck moves it to the lock's
+        correction, which has then taken in both readings.
     """
     test = plan.test
     clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
@@ -225,7 +232,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
             "innovation": innovation, "lock": updated, "upper": new_upper, "lower": new_lower,
             "inversion": inversion_stat, "inversion_z": inversion_z}
     decided = _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
-                      numbers=numbers)
+                      numbers=numbers, confirming=confirming)
     reason = decided.reason
     if far and decided.action in ("hold", "correct"):
         reason = (f"{reason}; the reading puts the set-point {abs(reading_z):.1f} of its own "
@@ -261,7 +268,8 @@ def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversi
 
 
 def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any], *,
-            detuning_hz: float, aim: float, target: float, numbers: str) -> Assessment:
+            detuning_hz: float, aim: float, target: float, numbers: str,
+            confirming: bool = False) -> Assessment:
     """The action of a check the lock read (``read``: its offset, the lock's update and the
     statistics after it): an alarm, else a recheck, else a correction or holding on."""
     common = (True, "", read["offset"], read["offset_sd"], read["peak"], read["variance"],
@@ -287,12 +295,16 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
     if abs(target - detuning_hz) >= settings.min_correction_hz:
         action = "correct"
     if rising:
-        # A reading the lock did not expect (its chart above the warning level) is confirmed
-        # before the set-point follows it: the check at once reads from the same set-point.
-        # Moved on an outlier, the set-point would be put off the peak by the move itself,
-        # and the charts would then read that offset as a change the other way, check after
-        # check at once (benchmarks/README.md, session 9).
         why = "a statistic is above its warning level: check again at once"
+        if action == "correct" and confirming:
+            return Assessment(*common, "recheck", None, target,
+                              f"{numbers}: {why}; lock moves the detuning by "
+                              f"{(target - detuning_hz) / 1e3:+.2f} kHz", lock_target_hz=target)
+        # A reading the lock did not expect (its chart above the warning level), not yet
+        # confirmed, is checked again before the set-point follows it: the check at once reads
+        # from the same set-point. Moved on an outlier, the set-point would be put off the peak
+        # by the move itself, and the charts would then read that offset as a change the other
+        # way, check after check at once (benchmarks/README.md, session 9).
         return Assessment(*common, "recheck", None, detuning_hz,
                           f"{numbers}: {why}" + (f"; the set-point is held until it confirms "
                                                  f"(the lock's correction "

@@ -560,7 +560,8 @@ class Night:
                       "next": {"point": point, "due_clock": due, "recheck": False,
                                "shots_per_phase": plan.shots_per_phase,
                                "unconfirmed_hz": None if nxt is None else
-                               nxt.get("unconfirmed_hz")},
+                               nxt.get("unconfirmed_hz"),
+                               "at_once": bool(nxt is not None and nxt.get("at_once"))},
                       "replan_clock": self.session.clock + _REPLAN_S}
         self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
                        f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
@@ -673,7 +674,11 @@ class Night:
                          next_interval_s=plan.interval_s, noise=pooled,
                          previous_unusable=previous is not None and previous["peak_hz"] is None
                          and previous.get("point") == point - 1,
-                         limits=(limit.min, limit.max))
+                         limits=(limit.min, limit.max),
+                         # Taken at once after a readable check: it confirms or clears it.
+                         confirming=previous is not None and previous["peak_hz"] is not None
+                         and previous.get("point") == point - 1
+                         and bool(state["next"].get("at_once")))
         counts = dict(state["counts"])
         counts["checks"] += 1
         noise = list(state["noise"]) + [noise_row(estimate.to_dict(), shots)]
@@ -720,7 +725,8 @@ class Night:
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
-                           **after}
+                           **after, "at_once": bool(a.usable and (after["recheck"]
+                                                                  or after.get("soon")))}
             if a.action == "recheck" and a.usable and after["recheck"] and \
                     math.isfinite(a.lock_target_hz):
                 # Held for the check at once; its correction if that check cannot be paid for.
