@@ -60,6 +60,11 @@ _TWO_PI = 2.0 * math.pi
 #: with checks up to an hour apart (benchmarks/README.md, session 8).
 OFF_PEAK_Z = 3.2905267314919255
 
+#: Two readings of the peak taken at once, a suspect one and its confirmation, contradict
+#: each other when they differ by this many standard deviations of their difference or more:
+#: two-sided 5 % (scipy.stats.norm.isf(0.025) = 1.96).
+CONTRADICTION_Z = 1.959963984540054
+
 
 @dataclass(frozen=True)
 class Assessment:
@@ -142,7 +147,8 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                  next_interval_s: float, noise: NoiseModel | None = None,
                  previous_unusable: bool = False,
                  limits: tuple[float, float] | None = None,
-                 confirming: bool = False) -> Assessment:
+                 confirming: bool = False,
+                 suspect: Mapping[str, Any] | None = None) -> Assessment:
     """Assess one check at the held detuning ``detuning_hz``: update the lock and the test, decide.
 
     Order of the decision: a check whose phase signal is unusable is checked again at once, and
@@ -203,6 +209,19 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     offset, offset_sd = peak_offset(error, phase_sd, prior)
     peak = detuning_hz - offset
     variance = max(offset_sd**2, 1.0)
+    cleared = ""
+    if confirming and suspect is not None and suspect.get("peak_hz") is not None and \
+            suspect.get("lock_before") is not None:
+        # The check taken at once to confirm a suspect reading contradicts it: the two
+        # measured peaks differ beyond a two-sided 5 % z test. The suspect reading is dropped
+        # from the lock (the lock before it takes this reading alone), so that one wild reading
+        # does not stay in the peak the lock aims at.
+        gap = (float(suspect["peak_hz"]) - peak) / math.sqrt(float(suspect["variance_hz2"])
+                                                             + variance)
+        if abs(gap) >= CONTRADICTION_Z:
+            lock = DriftLock.from_dict(suspect["lock_before"])
+            cleared = (f"; the reading before it, {float(suspect['peak_hz']) / 1e3:+.2f} kHz, "
+                       f"is contradicted ({abs(gap):.1f} sd apart) and dropped from the lock")
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
     new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
     if max(upper, lower, new_upper, new_lower) > test.warning:
@@ -217,7 +236,8 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                f"innovation {innovation.value_hz / 1e3:+.2f} kHz (z {innovation.z:+.2f}); "
                f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
                f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
-               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
+               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})"
+               f"{cleared}")
     reading_z = offset / offset_sd if offset_sd > 0 else math.nan
     far = off_peak(reading_z)
     # Off the peak the next check comes at once (hold_plan.next_check): aim at the peak now,

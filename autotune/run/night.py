@@ -678,7 +678,8 @@ class Night:
                          # Taken at once after a readable check: it confirms or clears it.
                          confirming=previous is not None and previous["peak_hz"] is not None
                          and previous.get("point") == point - 1
-                         and bool(state["next"].get("at_once")))
+                         and bool(state["next"].get("at_once")),
+                         suspect=previous)
         counts = dict(state["counts"])
         counts["checks"] += 1
         noise = list(state["noise"]) + [noise_row(estimate.to_dict(), shots)]
