@@ -59,12 +59,7 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   a phase chart between half its warning level and the warning level brings the next one after
   half the interval (a CUSUM with variable sampling intervals: M. R. Reynolds, R. W. Amin and
   J. C. Arnold, Technometrics 32, 371 (1990); :func:`in_control_sooner`, :func:`next_check`),
-  counted in the share and the false-alarm design alike. A check whose own reading puts the
-  set-point at least 3.29 of its own standard errors off the peak (a two-sided z test at 0.1 %,
-  :func:`off_peak`) brings the next check at once too, within the rechecks' run limit, and its
-  correction aims at the peak now: on a poor source the lock's prediction over a long interval
-  can be too uncertain for the innovation's test to see a step the reading sees, and the walk
-  back, ``max_correction_hz`` a check, would otherwise wait an interval a check.
+  counted in the share and the false-alarm design alike.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
@@ -109,7 +104,6 @@ from autotune.analysis.hold_check import (
     recovery_start,
     recovery_after_alarm,
     lock_at_stage_end,
-    off_peak,
     reference_add,
     reference_value,
 )
@@ -162,7 +156,6 @@ __all__ = [
     "flag_probability",
     "in_control_rechecks",
     "in_control_sooner",
-    "off_peak",
     "floor_shift_hz",
     "floor_phase_rad",
     "known_cubic",

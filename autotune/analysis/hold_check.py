@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields, replace
+from dataclasses import asdict, dataclass, fields
 from typing import Any
 
 import numpy as np
@@ -44,26 +44,9 @@ __all__ = [
     "recovery_start",
     "recovery_after_alarm",
     "lock_at_stage_end",
-    "OFF_PEAK_Z",
-    "off_peak",
 ]
 
 _TWO_PI = 2.0 * math.pi
-
-#: A check's reading of the set-point's offset from the peak, in its OWN standard errors, at or
-#: beyond which the reading says the set-point is off the peak: two-sided 0.1 %
-#: (scipy.stats.norm.isf(0.0005) = 3.29). On a quiet night a check with the set-point on the
-#: peak reads this far one time in a thousand, and what follows (the next check at once) spends
-#: a check's beam, never a retune. A poor source's first check after a thermal step read its
-#: set-point 5.2 of its standard errors off the peak while the lock's own uncertainty over an
-#: hour's interval (11 kHz) left its innovation at z 1.2: the lock walked back 5 kHz a check
-#: with checks up to an hour apart (benchmarks/README.md, session 8).
-OFF_PEAK_Z = 3.2905267314919255
-
-#: Two readings of the peak taken at once, a suspect one and its confirmation, contradict
-#: each other when they differ by this many standard deviations of their difference or more:
-#: two-sided 5 % (scipy.stats.norm.isf(0.025) = 1.96).
-CONTRADICTION_Z = 1.959963984540054
 
 
 @dataclass(frozen=True)
@@ -92,20 +75,9 @@ class Assessment:
     alarm : str or None
         ``"out_of_range"``, ``"upper"``, ``"lower"`` or ``"inversion"``.
     target_detuning_hz : float
-        The detuning set-point to hold next (the present one unless ``action`` corrects; a
-        recheck holds the present one, see ``lock_target_hz``).
+        The detuning set-point to hold next (the present one unless ``action`` corrects).
     reason : str
         One sentence with the numbers.
-    reading_z : float
-        The check's offset from the peak in its own standard errors (nan when not usable).
-    off_peak : bool
-        Whether that reading says the set-point is off the peak (:func:`off_peak`).
-    lock_target_hz : float
-        The detuning the lock's correction aims at (bounded as ``target_detuning_hz`` is; nan
-        when not usable). A recheck that is not ``confirming`` holds the present set-point
-        until the check at once confirms or clears its reading; one that is the last of its
-        run (the next check an interval away, :func:`hold_plan.next_check`), or whose check at
-        once the budget cannot pay for, moves here instead (the night's shell).
     """
 
     usable: bool
@@ -124,9 +96,6 @@ class Assessment:
     alarm: str | None
     target_detuning_hz: float
     reason: str
-    reading_z: float = math.nan
-    off_peak: bool = False
-    lock_target_hz: float = math.nan
 
     def numbers(self) -> dict[str, Any]:
         """JSON-ready numbers for the journal (nan as None)."""
@@ -146,9 +115,7 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                  inversion: float, reference_inversion: float, reference_stderr: float,
                  next_interval_s: float, noise: NoiseModel | None = None,
                  previous_unusable: bool = False,
-                 limits: tuple[float, float] | None = None,
-                 confirming: bool = False,
-                 suspect: Mapping[str, Any] | None = None) -> Assessment:
+                 limits: tuple[float, float] | None = None) -> Assessment:
     """Assess one check at the held detuning ``detuning_hz``: update the lock and the test, decide.
 
     Order of the decision: a check whose phase signal is unusable is checked again at once, and
@@ -175,11 +142,6 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
         Whether the check before this one was unusable (this one is its repeat).
     limits : (float, float), optional
         The detuning's effective limits (Hz).
-    confirming : bool
-        Whether this check was taken at once after a readable one (a recheck or an off-peak
-        check): it confirms or clears that reading. A recheck that is not confirming holds the
-        set-point (its reading is unconfirmed); a confirming recheck moves it to the lock's
-        correction, which has then taken in both readings.
     """
     test = plan.test
     clock = float(result.clock_s if result.clock_s is not None else lock.clock_s)
@@ -209,19 +171,6 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     offset, offset_sd = peak_offset(error, phase_sd, prior)
     peak = detuning_hz - offset
     variance = max(offset_sd**2, 1.0)
-    cleared = ""
-    if confirming and suspect is not None and suspect.get("peak_hz") is not None and \
-            suspect.get("lock_before") is not None:
-        # The check taken at once to confirm a suspect reading contradicts it: the two
-        # measured peaks differ beyond a two-sided 5 % z test. The suspect reading is dropped
-        # from the lock (the lock before it takes this reading alone), so that one wild reading
-        # does not stay in the peak the lock aims at.
-        gap = (float(suspect["peak_hz"]) - peak) / math.sqrt(float(suspect["variance_hz2"])
-                                                             + variance)
-        if abs(gap) >= CONTRADICTION_Z:
-            lock = DriftLock.from_dict(suspect["lock_before"])
-            cleared = (f"; the reading before it, {float(suspect['peak_hz']) / 1e3:+.2f} kHz, "
-                       f"is contradicted ({abs(gap):.1f} sd apart) and dropped from the lock")
     updated, innovation = lock.update(clock, peak, variance, max_gain=settings.max_gain)
     new_upper, new_lower = SequentialTest.step(upper, lower, innovation.z, test.reference)
     if max(upper, lower, new_upper, new_lower) > test.warning:
@@ -236,14 +185,8 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
                f"innovation {innovation.value_hz / 1e3:+.2f} kHz (z {innovation.z:+.2f}); "
                f"statistics S+ {new_upper:.2f}, S- {new_lower:.2f} (h {test.threshold:.2f}), "
                f"inversion {result.inversion:.3f} vs {reference_inversion:.3f} "
-               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})"
-               f"{cleared}")
-    reading_z = offset / offset_sd if offset_sd > 0 else math.nan
-    far = off_peak(reading_z)
-    # Off the peak the next check comes at once (hold_plan.next_check): aim at the peak now,
-    # not at the middle of an interval the lock's rate would extrapolate over (a step it took
-    # in as drift would carry the set-point past the peak).
-    aim = updated.peak_at(clock if far else clock + 0.5 * next_interval_s)
+               f"(S {inversion_stat:.2f}, h {test.inversion_threshold:.2f})")
+    aim = updated.peak_at(clock + 0.5 * next_interval_s)
     move = float(np.clip(aim - detuning_hz, -settings.max_correction_hz, settings.max_correction_hz))
     target = detuning_hz + move
     if limits is not None:
@@ -251,29 +194,8 @@ def assess_check(settings: HoldSettings, *, result: PointResult, detuning_hz: fl
     read = {"offset": offset, "offset_sd": offset_sd, "peak": peak, "variance": variance,
             "innovation": innovation, "lock": updated, "upper": new_upper, "lower": new_lower,
             "inversion": inversion_stat, "inversion_z": inversion_z}
-    decided = _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
-                      numbers=numbers, confirming=confirming)
-    reason = decided.reason
-    if far and decided.action in ("hold", "correct"):
-        reason = (f"{reason}; the reading puts the set-point {abs(reading_z):.1f} of its own "
-                  f"standard errors off the peak (|z| >= {OFF_PEAK_Z:.2f}): the next check "
-                  f"comes at once")
-    return replace(decided, reading_z=reading_z, off_peak=far, reason=reason)
-
-
-def off_peak(reading_z: float) -> bool:
-    """Whether a check's own reading says the set-point is off the peak.
-
-    ``reading_z`` is the check's offset from the peak in its own standard errors; off the peak
-    when ``|z| >= OFF_PEAK_Z``, a two-sided z test at 0.1 % (scipy.stats.norm). The lock's
-    innovation is not asked: over a long interval its prediction may be too uncertain for the
-    innovation's test to see what the reading sees. The night then takes the next check at once
-    (:func:`hold_plan.next_check`, within the budget's ceiling), so that a walk back capped at
-    ``max_correction_hz`` a check takes minutes, not intervals; it ends when the reading is no
-    longer significant (a capped correction whose reading is not is within the check's noise:
-    on a poor source a 5 kHz reading may be noise).
-    """
-    return bool(math.isfinite(reading_z) and abs(reading_z) >= OFF_PEAK_Z)
+    return _decide(settings, test, read, detuning_hz=detuning_hz, aim=aim, target=target,
+                   numbers=numbers)
 
 
 def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversion: float,
@@ -288,8 +210,7 @@ def _unusable(note: str, *, lock: DriftLock, upper: float, lower: float, inversi
 
 
 def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any], *,
-            detuning_hz: float, aim: float, target: float, numbers: str,
-            confirming: bool = False) -> Assessment:
+            detuning_hz: float, aim: float, target: float, numbers: str) -> Assessment:
     """The action of a check the lock read (``read``: its offset, the lock's update and the
     statistics after it): an alarm, else a recheck, else a correction or holding on."""
     common = (True, "", read["offset"], read["offset_sd"], read["peak"], read["variance"],
@@ -308,7 +229,7 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
                 "lower": "the peak moved down beyond what the lock follows",
                 "inversion": "the inversion dropped below its reference"}[alarm]
         return Assessment(*common, "alarm", alarm, detuning_hz,
-                          f"{numbers}: alarm, {side}; retune", lock_target_hz=target)
+                          f"{numbers}: alarm, {side}; retune")
     rising = new_upper > test.warning or new_lower > test.warning or \
         inversion_stat > test.inversion_warning
     action = "hold"
@@ -316,21 +237,11 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
         action = "correct"
     if rising:
         why = "a statistic is above its warning level: check again at once"
-        if action == "correct" and confirming:
-            return Assessment(*common, "recheck", None, target,
-                              f"{numbers}: {why}; lock moves the detuning by "
-                              f"{(target - detuning_hz) / 1e3:+.2f} kHz", lock_target_hz=target)
-        # A reading the lock did not expect (its chart above the warning level), not yet
-        # confirmed, is checked again before the set-point follows it: the check at once reads
-        # from the same set-point. Moved on an outlier, the set-point would be put off the peak
-        # by the move itself, and the charts would then read that offset as a change the other
-        # way, check after check at once (benchmarks/README.md, session 9).
-        return Assessment(*common, "recheck", None, detuning_hz,
-                          f"{numbers}: {why}" + (f"; the set-point is held until it confirms "
-                                                 f"(the lock's correction "
-                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz)"
-                                                 if action == "correct" else ""),
-                          lock_target_hz=target)
+        return Assessment(*common, "recheck", None,
+                          target if action == "correct" else detuning_hz,
+                          f"{numbers}: {why}" + (f"; lock moves the detuning by "
+                                                 f"{(target - detuning_hz) / 1e3:+.2f} kHz"
+                                                 if action == "correct" else ""))
     if action == "correct":
         limited = " (bounded)" if abs(aim - target) > 1.0 else ""
         why = (f"lock moves the detuning by {(target - detuning_hz) / 1e3:+.2f} kHz to "
@@ -340,8 +251,7 @@ def _decide(settings: HoldSettings, test: SequentialTest, read: Mapping[str, Any
     else:
         why = (f"held: the lock's correction {(aim - detuning_hz) / 1e3:+.2f} kHz is below "
                f"{settings.min_correction_hz / 1e3:.2f} kHz")
-    return Assessment(*common, action, None, target, f"{numbers}: {why}",
-                      lock_target_hz=target)
+    return Assessment(*common, action, None, target, f"{numbers}: {why}")
 
 
 def peak_after_change(recent: Sequence[Mapping[str, Any]], side: str, rate_hz_per_s: float,

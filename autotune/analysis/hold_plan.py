@@ -647,7 +647,7 @@ def recheck_run_limit(test: SequentialTest) -> int:
 
 
 def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
-               run: int, statistic: float = 0.0, off_peak: bool = False) -> dict[str, Any]:
+               run: int, statistic: float = 0.0) -> dict[str, Any]:
     """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
 
     A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
@@ -659,24 +659,15 @@ def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: fl
     :func:`in_control_sooner`); any other check comes the plan's interval after it
     (``first_shot_s``, else ``clock_s``). Returns ``due_clock``, ``recheck``, ``sooner`` and
     ``run`` (the rechecks in a row, this one included).
-
-    A check assessed ``"hold"`` or ``"correct"`` whose reading says the set-point is off the
-    peak (``off_peak``: its correction capped at ``max_correction_hz``, or its reading many of
-    its own standard errors from the peak, :func:`hold_check.off_peak`) is followed at once too,
-    as a recheck is and counted in the same run (``soon`` in the result): the walk back to the
-    peak, ``max_correction_hz`` a check, then takes minutes; past the run's limit the plan's
-    interval resumes, so a lasting bias cannot spend the beam check after check.
     """
-    if action == "recheck" or (off_peak and action in ("hold", "correct")):
+    if action == "recheck":
         run = int(run) + 1
         if run <= recheck_run_limit(plan.test):
-            return {"due_clock": float(clock_s), "recheck": action == "recheck",
-                    "sooner": False, "soon": action != "recheck", "run": run}
+            return {"due_clock": float(clock_s), "recheck": True, "sooner": False, "run": run}
     else:
         run = 0
     start = float(clock_s if first_shot_s is None else first_shot_s)
     sooner = action in ("hold", "correct") and \
         float(statistic) >= SOONER_LEVEL * float(plan.test.warning)
     interval = plan.interval_s * (SOONER_INTERVAL if sooner else 1.0)
-    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "soon": False,
-            "run": run}
+    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "run": run}

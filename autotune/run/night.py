@@ -558,10 +558,7 @@ class Night:
         due = self.session.clock + plan.interval_s if nxt is None else float(nxt["due_clock"])
         self.state = {**state, "plan": plan.to_dict(),
                       "next": {"point": point, "due_clock": due, "recheck": False,
-                               "shots_per_phase": plan.shots_per_phase,
-                               "unconfirmed_hz": None if nxt is None else
-                               nxt.get("unconfirmed_hz"),
-                               "at_once": bool(nxt is not None and nxt.get("at_once"))},
+                               "shots_per_phase": plan.shots_per_phase},
                       "replan_clock": self.session.clock + _REPLAN_S}
         self._snapshot("plan", reason=f"{why}: {plan.reason}; the checks may take {share:.1%} "
                        f"of the beam (budget {self.settings.budget_fraction:.0%}, a ceiling of "
@@ -598,34 +595,13 @@ class Night:
         if self._in_flight() != "check":
             self.clock.wait_until(self.clock.bounded(float(nxt["due_clock"])),
                              "the next check" + (" (recheck)" if nxt.get("recheck") else
-                                                 " (sooner)" if nxt.get("sooner") else
-                                                 " (soon: off the peak)" if nxt.get("soon")
-                                                 else ""),
+                                                 " (sooner)" if nxt.get("sooner") else ""),
                              point=point)
             if self.clock.end_reason() is not None:
                 return
             check_s = measurement_shots(self.settings.ramsey_phases, int(nxt["shots_per_phase"])) / \
                 self.settings.repetition_rate_hz
             if not self._budget().affords(check_s):
-                unconfirmed = nxt.get("unconfirmed_hz")
-                if unconfirmed is not None and not holds_setpoints(
-                        {**held, "detuning": float(unconfirmed)}, held):
-                    # A recheck held the set-point for a check at once that the budget cannot
-                    # pay for: the lock's correction is applied unconfirmed.
-                    counts = dict(state["counts"])
-                    counts["corrections"] += 1
-                    to = {**held, "detuning": float(unconfirmed)}
-                    state = {**state, "counts": counts, "held": to,
-                             "next": {**nxt, "unconfirmed_hz": None},
-                             "pending": {"kind": "correct", "point": point - 1, "from": held,
-                                         "to": to, "reason": (
-                                             f"the check at once after recheck {point - 1} "
-                                             f"({check_s:.0f} s) is beyond the budget: the "
-                                             f"lock's correction to {float(unconfirmed) / 1e3:+.2f}"
-                                             f" kHz is applied unconfirmed")}}
-                    self.state = state
-                    self._complete_pending()
-                    state = self.state
                 # The ceiling first: a plan within what is left, else no more checks.
                 if state.get("starved"):
                     self._unwatched(f"the budget cannot pay for a check of {check_s:.0f} s")
@@ -674,12 +650,7 @@ class Night:
                          next_interval_s=plan.interval_s, noise=pooled,
                          previous_unusable=previous is not None and previous["peak_hz"] is None
                          and previous.get("point") == point - 1,
-                         limits=(limit.min, limit.max),
-                         # Taken at once after a readable check: it confirms or clears it.
-                         confirming=previous is not None and previous["peak_hz"] is not None
-                         and previous.get("point") == point - 1
-                         and bool(state["next"].get("at_once")),
-                         suspect=previous)
+                         limits=(limit.min, limit.max))
         counts = dict(state["counts"])
         counts["checks"] += 1
         noise = list(state["noise"]) + [noise_row(estimate.to_dict(), shots)]
@@ -707,31 +678,20 @@ class Night:
                                             clock_s=clock_now, prior=state["prior"],
                                             first_index=int(state["stages"])))
         else:
-            after = next_check(plan, action=a.action, clock_s=clock_now,
-                               first_shot_s=m.t_first,
-                               # An unreadable check is always repeated at once.
-                               run=int(state["next"].get("run", 0)) if a.usable else 0,
-                               statistic=max(a.upper, a.lower) if a.usable else 0.0,
-                               off_peak=a.usable and a.off_peak)
-            if a.action == "recheck" and a.usable and not after["recheck"] and \
-                    math.isfinite(a.lock_target_hz):
-                # The last recheck of its run: no check at once to confirm it, so the lock's
-                # correction is applied now rather than an interval later.
-                target = {**held, "detuning": a.lock_target_hz}
             if a.action in ("correct", "recheck") and not holds_setpoints(target, held):
                 counts["corrections"] += 1
                 new["pending"] = {"kind": "correct", "point": point, "from": held, "to": target,
                                   "reason": a.reason}
                 new["held"] = target
+            after = next_check(plan, action=a.action, clock_s=clock_now,
+                               first_shot_s=m.t_first,
+                               # An unreadable check is always repeated at once.
+                               run=int(state["next"].get("run", 0)) if a.usable else 0,
+                               statistic=max(a.upper, a.lower) if a.usable else 0.0)
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
-                           **after, "at_once": bool(a.usable and (after["recheck"]
-                                                                  or after.get("soon")))}
-            if a.action == "recheck" and a.usable and after["recheck"] and \
-                    math.isfinite(a.lock_target_hz):
-                # Held for the check at once; its correction if that check cannot be paid for.
-                new["next"]["unconfirmed_hz"] = a.lock_target_hz
+                           **after}
         self.state = new
         self._snapshot("hold", point=point, action=a.action, reason=a.reason,
                        setpoints=held, clock_s=m.clock_s, numbers=a.numbers())
