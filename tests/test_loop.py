@@ -224,6 +224,43 @@ def test_a_verification_that_misses_the_bar_sends_the_search_on(tmp_path: Path) 
         assert "bound" in result["reason"] and "\n" not in result["reason"]
 
 
+def test_a_verification_that_moves_the_recommendation_is_followed_by_one_there(tmp_path: Path) -> None:
+    """A verification is data: told to the lock, it can move the lock's recommendation while the
+    verified choice's own bound, every result told, misses the 2 % bar. The stage then verifies
+    the recommendation in its place (decision search_again, no search step between the two
+    verifications) instead of refusing a setting its lock no longer recommends.
+
+    The rig is the calibration study's main scenario 4 (benchmarks/results/calibration.json),
+    where this happened at commit bd9f16f: its first verification, at 8.3 kHz, moved the lock's
+    peak to 5.7 kHz, and the stage was refused at 0.993 of the true best. Reference: the
+    simulator's noiseless truth.
+    """
+    from autotune.bench import plan as bench_plan
+    from autotune.bench import scenarios as bench_scenarios
+
+    plan = dataclasses.replace(bench_plan.plan_for("full", workers=1, scenarios=8, strategies=("phase_lock",)),
+                               families=("main",), night_steps=0, overhead_points=(), night_study=False)
+    config = bench_plan.strategy_configs(bench_plan.base_config(plan, bench_plan.DEFAULT_RUN_CONFIG),
+                                         plan)["phase_lock"]
+    scenario = next(s for s in bench_plan.family_scenarios(plan)["main"] if s["index"] == 4)
+    config = dataclasses.replace(config, search=dataclasses.replace(config.search, seed=scenario["search_seed"]))
+    rig = bench_scenarios.local_rig(bench_scenarios.rig_data(bench_plan.DEFAULT_RIG_CONFIG),
+                                    scenario["perturbation"], scenario["rig_seed"])
+    result = runner.calibrate(rig, config, tmp_path / "run", store=tmp_path / "good.json")
+    records = read_journal(tmp_path / "run" / JOURNAL_NAME)
+    again = [r for r in records if r["type"] == "decision" and r["what"] == "search_again"]
+    assert len(again) == 1 and "moved its recommendation" in again[0]["reason"]
+    verified = [r for r in records if r["type"] == "estimate" and r["label"] == "verify"]
+    before = [r for r in verified if r["seq"] < again[0]["seq"]]
+    after = [r for r in verified if r["seq"] > again[0]["seq"]]
+    assert before and after and before[-1]["setpoints"] != after[0]["setpoints"]
+    assert not [r for r in records if r["type"] == "estimate" and r["label"] not in ("verify", "correct")
+                and before[-1]["seq"] < r["seq"] < after[0]["seq"]]
+    assert result["accepted"] and result["setpoints"] == after[-1]["setpoints"]
+    truth = rig.truth(result["setpoints"])
+    assert truth["inversion"] >= 0.98 * truth["best"]["inversion"]
+
+
 def test_a_verification_that_misses_the_bar_is_rejected_when_the_budget_is_spent(tmp_path: Path) -> None:
     """The same step after the search's last budgeted point: no search again, the stage is not
     accepted, says why in one line (the bound above the bar) and leaves the store untouched."""

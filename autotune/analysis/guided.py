@@ -585,6 +585,43 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                         f"{self.settings.target_shortfall:.1%}; lock moves the detuning by "
                         f"{(detuning - last.detuning) / 1e3:+.2f} kHz to {detuning / 1e3:+.2f} kHz")
 
+    def moved_recommendation(self, chosen: Mapping[str, float], *, acceptance_bar: float,
+                             max_moves: int, clock_s: float | None = None) -> str | None:
+        """Why to verify the lock's recommendation in place of a verified choice, or None.
+
+        A verification is data: told to the lock, it moves the posterior, and with it the
+        recommendation. When the verified choice's bound (every result told) misses
+        ``acceptance_bar`` while the lock has converged at a recommendation elsewhere (its
+        stop bound there within ``target_shortfall``), the stage should judge the point the lock
+        now recommends rather than the one it recommended before the verification. At most
+        ``max_moves`` such moves after a search step: the verified set-points since the last
+        search step are counted, the first included. None also when the last result is not a
+        verification or the recommendation is the verified choice.
+        """
+        clock = self._now(clock_s)
+        if not self._obs or self._obs[-1].purpose not in ("verify", "correct"):
+            return None
+        verified: set[tuple[float, float]] = set()
+        for o in reversed(self._obs):
+            if o.purpose not in ("verify", "correct"):
+                break
+            verified.add((o.velocity, o.detuning))
+        if len(verified) > max_moves:
+            return None
+        short = self.shortfall(clock_s=None, point=chosen)
+        if short.upper <= acceptance_bar or not self.converged(clock_s=clock):
+            return None
+        rec = self.recommend(clock_s=clock).point
+        if all(math.isclose(float(rec[k]), float(chosen[k]), rel_tol=1e-9, abs_tol=1e-6)
+               for k in ("velocity", "detuning")):
+            return None
+        there = self._stop_bound(rec, clock)
+        return (f"the verification, told to the lock, moved its recommendation to "
+                f"{rec['velocity']:.1f} m/s, {rec['detuning'] / 1e3:+.2f} kHz (bound {there:.2%} "
+                f"there, within the target {self.settings.target_shortfall:.1%}) from the "
+                f"verified {chosen['velocity']:.1f} m/s, {chosen['detuning'] / 1e3:+.2f} kHz "
+                f"(bound {short.upper:.2%}, above the bar {acceptance_bar:.1%}): verifying it")
+
     # -- retune ------------------------------------------------------------------------------
 
     def verdict(self, *, clock_s: float | None = None) -> Verdict:

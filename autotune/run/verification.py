@@ -92,7 +92,9 @@ def search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sessi
     It goes on when the verified choice's bound (every result told) misses the acceptance bar
     while more points could lower it: the lock and the velocity model were established, the
     velocity optimum is not beyond the box, and the point, shot and rig-time budgets leave
-    room for another step. Otherwise the stage is judged as it stands (also when the verified
+    room for another step. When the lock has converged elsewhere (the verification, told, moved its
+    recommendation), it goes on to verify that recommendation, at most ``[lock] max_corrections``
+    times after a search step (:meth:`PhaseLockSearch.moved_recommendation`). Otherwise the stage is judged as it stands (also when the verified
     inversion is below ``[acceptance] min_inversion``: that says the rig, not the search).
     """
     chosen, estimate = final
@@ -108,8 +110,16 @@ def search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sessi
         return None
     # Nor when the points have nothing left to lower (a retune's inherited velocity term).
     if lock.hopeless(clock_s=session.clock, points_left=budget.max_points - searched,
-                     acceptance_bar=bar) is not None or lock.converged(clock_s=session.clock):
+                     acceptance_bar=bar) is not None:
         return None
+    if lock.converged(clock_s=session.clock):
+        # No search step is wanted; but the verification may have moved the lock's
+        # recommendation away from the verified choice: then that is verified in its place.
+        if session.tally.rig_time_s >= budget.max_rig_time_s:
+            return None
+        return lock.moved_recommendation(chosen, acceptance_bar=bar,
+                                         max_moves=config.lock.max_corrections,
+                                         clock_s=session.clock)
     if searched >= budget.max_points or session.tally.rig_time_s >= budget.max_rig_time_s:
         return None
     proposal = lock.propose(clock_s=session.clock)
