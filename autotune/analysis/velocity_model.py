@@ -143,7 +143,9 @@ class InversionCurve(_QuadraticInX):
         The measured inversions' slope along ``x`` against the proxy's (None with fewer than
         two velocity groups).
     law : DephasingLaw or None
-        The posterior of the empty contrast's dephasing law along velocity.
+        The posterior of the empty contrast's dephasing law along velocity under the slope
+        discrepancy with the larger evidence (the one ``widened`` names; ``proxy`` is its
+        prediction), not averaged over the discrepancies as ``coef`` and ``cov`` are.
     """
 
     velocity_ref: float
