@@ -356,6 +356,23 @@ def test_bad_shared_covariances_are_refused():
         fit_inversion_curve(*args, inversion_contrast_covs=[1e-4, float("nan"), 1e-4])
 
 
+def test_per_point_inputs_of_the_wrong_length_are_refused():
+    """A per-point sequence shorter than xs is named in a clear error, never broadcast (one
+    absorption for three points was fitted silently) nor left to numpy's broadcasting error."""
+    from autotune.errors import ValueRefused
+
+    xs = [-0.05, 0.0, 0.05]
+    good = dict(inversions=[0.7] * 3, inversion_vars=[1e-3] * 3, absorptions=[0.02] * 3,
+                absorption_vars=[1e-6] * 3, contrasts=[0.85] * 3, contrast_vars=[1e-3] * 3)
+    for name, short in (("absorptions", [0.02]), ("contrast_vars", [1e-3] * 2)):
+        values = {**good, name: short}
+        with pytest.raises(ValueRefused, match=name):
+            fit_inversion_curve(xs, values["inversions"], values["inversion_vars"],
+                                values["absorptions"], values["absorption_vars"],
+                                values["contrasts"], values["contrast_vars"],
+                                np.array([0.02, 0.0, 3.0]), np.eye(3) * 1e-6, 0.7, 500.0, xs)
+
+
 # The disagreement of the measured inversions with the proxy (velocity_model.proxy_disagreement)
 # --------------------------------------------------------------------------------------------
 
