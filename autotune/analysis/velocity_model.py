@@ -143,7 +143,9 @@ class InversionCurve(_QuadraticInX):
         The measured inversions' slope along ``x`` against the proxy's (None with fewer than
         two velocity groups).
     law : DephasingLaw or None
-        The posterior of the empty contrast's dephasing law along velocity.
+        The posterior of the empty contrast's dephasing law along velocity under the slope
+        discrepancy with the larger evidence (the one ``widened`` names; ``proxy`` is its
+        prediction), not averaged over the discrepancies as ``coef`` and ``cov`` are.
     """
 
     velocity_ref: float
@@ -563,6 +565,13 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
         observations they are; without it (or all zero) they are taken as independent.
     """
     x = np.asarray(xs, dtype=float)
+    per_point = {"inversions": inversions, "inversion_vars": inversion_vars,
+                 "absorptions": absorptions, "absorption_vars": absorption_vars,
+                 "contrasts": contrasts, "contrast_vars": contrast_vars}
+    wrong = {name: np.shape(v) for name, v in per_point.items() if np.shape(v) != x.shape}
+    if x.ndim != 1 or wrong:
+        raise ValueRefused(f"fit_inversion_curve: expected one inversion, absorption and contrast "
+                           f"(and their variances) per point ({x.shape}), got {wrong}")
     scale = max(float(scale), _MIN_SCALE)
     c = np.asarray(contrasts, dtype=float)
     c_var = np.maximum(np.asarray(contrast_vars, dtype=float), 1e-8)
@@ -570,9 +579,6 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     r = np.asarray(inversions, dtype=float) + np.asarray(absorptions, dtype=float)
     r_var = np.maximum(np.asarray(inversion_vars, dtype=float)
                        + np.asarray(absorption_vars, dtype=float), 1e-8)
-    if not (len(c) == len(c_var) == len(r) == len(r_var) == len(x)):
-        raise ValueRefused(f"fit_inversion_curve: expected one inversion, absorption and contrast "
-                           f"per point ({len(x)}), got {len(r)}, {len(c)}")
     if inversion_contrast_covs is None:
         shared = np.zeros(len(x))
     else:
