@@ -341,7 +341,7 @@ def _spread_prior_log_mass(kind: str) -> np.ndarray:
     elif kind == "slope":
         mass = _SPREAD_GRID.copy()
     else:
-        raise ValueError(kind)
+        raise ValueRefused(f"kind: expected \"spread\" or \"slope\", got {kind!r}")
     with np.errstate(divide="ignore"):
         return np.log(mass / mass.sum())
 
