@@ -31,8 +31,9 @@ import math
 from typing import Literal, get_args
 
 import numpy as np
-import scipy.constants
-import scipy.special
+# scipy's submodules load on first use (``scipy.constants`` at the first measurement,
+# ``scipy.special`` for a super-Gaussian mode only): a rig's start imports neither.
+import scipy
 
 from autotune.driver import FIELDS
 
