@@ -31,9 +31,8 @@ import math
 from typing import Literal, get_args
 
 import numpy as np
-# scipy's submodules load on first use (``scipy.constants`` at the first measurement,
-# ``scipy.special`` for a super-Gaussian mode only): a rig's start imports neither.
-import scipy
+import scipy.constants
+import scipy.special
 
 from autotune.driver import FIELDS
 
