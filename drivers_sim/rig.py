@@ -48,7 +48,9 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-import scipy.optimize
+# scipy.optimize loads on the first truth request (scipy's submodules load on first use): a
+# rig that is never asked for the truth does not import it.
+import scipy
 import structlog
 
 from autotune.driver import BadRequest, InterlockSet, OutOfRange

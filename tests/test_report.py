@@ -653,6 +653,10 @@ def test_fit_p_value_is_the_chi_square_tail() -> None:
     """chi2 = 16.27 with 3 dof is the 0.001 point (chi-square tables, from memory)."""
     assert report.fit_p_value(16.27, 3) == pytest.approx(0.001, rel=0.01)
     assert math.isnan(report.fit_p_value(1.0, 0))
+    # Reference: scipy.stats.chi2.sf, over small and large statistics and degrees.
+    import scipy.stats
+    for chi2, dof in ((0.0, 1), (0.3, 1), (3.84, 1), (16.27, 3), (40.0, 8), (250.0, 12)):
+        assert report.fit_p_value(chi2, dof) == pytest.approx(float(scipy.stats.chi2.sf(chi2, dof)), rel=1e-12, abs=1e-300)
 
 
 def test_a_clean_finished_run_raises_no_flag(tmp_path: Path) -> None:

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 from autotune.errors import EstimationError
 
@@ -151,6 +151,7 @@ def proportion_interval(
         low = np.where(k == 0, 0.0, low)
         high = np.where(k == n, 1.0, high)
     elif method == "clopper_pearson":
+        from scipy import stats  # scipy.stats loads here, not at import
         with np.errstate(invalid="ignore", divide="ignore"):
             low = stats.beta.ppf(alpha / 2.0, kf, nf - kf + 1.0)
             high = stats.beta.ppf(1.0 - alpha / 2.0, kf + 1.0, nf - kf)

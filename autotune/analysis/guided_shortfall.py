@@ -12,7 +12,6 @@ import math
 from collections.abc import Mapping
 
 import numpy as np
-from scipy import stats
 
 from autotune.analysis.lock_fit import mixture_phase_error
 from autotune.analysis.next_point import expected_fall
@@ -117,6 +116,7 @@ class ShortfallBound:
             eps = mixture_phase_error(mu + sigma * normals[:, 0], empty)
             d_draws = 1.0 - np.cos(0.5 * eps)
             d_point = 1.0 - math.cos(0.5 * float(mixture_phase_error(mu, empty)))
+            from scipy import stats  # scipy.stats loads here, not at import
             eps2 = sigma**2 * float(stats.ncx2.ppf(q, 1, (mu / sigma) ** 2)) if sigma > 0 else mu**2
             d_upper = 1.0 - math.cos(0.5 * min(float(mixture_phase_error(math.sqrt(eps2), empty)), math.pi))
         fit = self._absorption_fit()

@@ -13,7 +13,7 @@ import math
 from typing import TYPE_CHECKING
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 from autotune.analysis.lock_fit import detuning_offset
 from autotune.analysis.shortfall import Shortfall, Verdict
@@ -107,6 +107,7 @@ def retune_verdict(search: PhaseLockSearch, *, clock_s: float | None = None) -> 
     eps = error + error_sd * normals[:, 0]
     d_draws = 1.0 - np.cos(0.5 * eps)
     d_point = 1.0 - math.cos(0.5 * error)
+    from scipy import stats  # scipy.stats loads here, not at import
     eps2 = error_sd**2 * float(stats.ncx2.ppf(q, 1, (error / error_sd) ** 2))
     d_upper = 1.0 - math.cos(0.5 * min(math.sqrt(eps2), math.pi))
     scale = max(p.inversion, _MIN_INVERSION_SCALE)

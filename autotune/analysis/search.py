@@ -48,8 +48,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import linalg, optimize, special
-from scipy.stats import qmc
+from scipy import special
 
 from autotune.analysis.search_scans import CoordinateScan, GridScan, RandomSearch
 from autotune.analysis.search_types import (
@@ -151,6 +150,7 @@ def _latin_design(dims: int, n: int, seed: int) -> tuple[tuple[float, ...], ...]
     one process with the same seed (a resume, a study's repeats): the discrepancy optimisation
     takes seconds of CPU and gives the same points each time.
     """
+    from scipy.stats import qmc  # scipy.stats loads here, not at import
     sampler = qmc.LatinHypercube(d=dims, optimization="random-cd", rng=np.random.default_rng(seed))
     return tuple(tuple(float(x) for x in row) for row in sampler.random(n))
 
@@ -361,6 +361,7 @@ class BayesianSearch(SearchRecord):
         warm = [_as_observation(item) for item in warm_start]
         if not len(self._design) and not warm:
             raise ValueRefused("BayesianSearch: expected initial_points, n_initial_points > 0 or a warm_start")
+        from scipy.stats import qmc  # scipy.stats loads here, not at import
         self._candidates = qmc.Sobol(d=dims, scramble=True, rng=np.random.default_rng(self.seed + 1)).random(candidates)
         self._regressor, self._optimizer = _surrogate(space, self.seed, float(exploration), candidates)
         self._all_stderrs: list[float] = []
@@ -459,6 +460,7 @@ class BayesianSearch(SearchRecord):
         best = int(np.argmax(scores))
         rate = float(rates[best])
         step = float(rates[1] - rates[0])
+        from scipy import optimize  # scipy.optimize loads here, not at import
         refined = optimize.minimize_scalar(
             lambda r: -self._log_likelihood(units, elapsed, r, normalised, alpha),
             bounds=(max(rates[0], rate - step), min(rates[-1], rate + step)), method="bounded",
@@ -496,6 +498,7 @@ class BayesianSearch(SearchRecord):
         coordinates = self._shifted(units, elapsed, rate_unit)
         covariance = self._drift_kernel(coordinates)
         covariance[np.diag_indices_from(covariance)] += alpha + self._drift_noise
+        from scipy import linalg  # scipy.linalg loads here, not at import
         try:
             factor = linalg.cholesky(covariance, lower=True)
         except linalg.LinAlgError:
@@ -568,6 +571,7 @@ class BayesianSearch(SearchRecord):
     def _propose(self, now: float) -> np.ndarray:
         dims = len(self.space.dimensions)
         rng = np.random.default_rng([self.seed, 2, len(self._all_values)])
+        from scipy.stats import qmc  # scipy.stats loads here, not at import
         candidates = qmc.Sobol(d=dims, scramble=True, rng=rng).random(self._n_candidates)
         incumbent = float(np.min(self._model.predict(self._query(self._measured_now(now), now))))
         improvement = _gaussian_ei()(self._query(candidates, now), self._model, y_opt=incumbent, xi=self.exploration)

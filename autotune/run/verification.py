@@ -9,7 +9,6 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-from scipy import stats
 
 from autotune.config import RunConfig
 from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
@@ -56,6 +55,7 @@ def first_half_settles(lock: PhaseLockSearch, config: RunConfig,
     on data already seen).
     """
     chosen, estimate = final
+    from scipy import stats  # scipy.stats loads here, not at import
     z = float(stats.norm.ppf(1.0 - 0.5 * (1.0 - lock.settings.confidence)))
     low = estimate.inversion - z * estimate.inversion_stderr
     high = estimate.inversion + z * estimate.inversion_stderr

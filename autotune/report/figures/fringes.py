@@ -6,7 +6,6 @@ import math
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from autotune.errors import EstimationError
 from autotune.analysis.fringe import FringeData, fit_fringe
@@ -48,6 +47,7 @@ def figure_fringes(run: Run) -> tuple[Any, str] | None:
         n = e + g + i
         keep = n > 0
         p = g[keep] / n[keep]
+        from scipy import stats  # scipy.stats loads here, not at import
         cis = [stats.binomtest(int(k), int(t)).proportion_ci(confidence_level=level,
                                                                method="wilson")
                for k, t in zip(g[keep], n[keep], strict=True)]
