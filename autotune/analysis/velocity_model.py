@@ -333,23 +333,25 @@ _MAX_SHARED_CORRELATION = 0.95
 _SPREAD_GRID = np.linspace(0.0, math.sqrt(-2.0 * math.log(_MIN_SCALE)), 491)
 
 
-def _spread_prior_log_mass(kind: str) -> np.ndarray:
-    """Log prior mass of each grid value: ``"spread"`` uniform in the phase spread ``s``,
-    ``"slope"`` uniform in ``u = s^2`` (the contrast's relative slope, ``-2 u``)."""
-    if kind == "spread":
-        mass = np.ones(len(_SPREAD_GRID))
-    elif kind == "slope":
-        mass = _SPREAD_GRID.copy()
-    else:
-        raise ValueRefused(f"kind: expected \"spread\" or \"slope\", got {kind!r}")
-    with np.errstate(divide="ignore"):
-        return np.log(mass / mass.sum())
-
-
 #: Uniform in the phase spread: on a rig without dephasing (the boundary ``s = 0``) a prior
 #: uniform in the contrast's slope (``u = s^2``) covered r's slope 0.937 of the time at 95 %
-#: on the synthetic rig of tests/test_velocity_model.py, uniform in ``s`` 0.975.
-_SPREAD_PRIOR_LOG_MASS = _spread_prior_log_mass("spread")
+#: on the synthetic rig of tests/test_velocity_model.py, uniform in ``s`` 0.975 (session 9).
+_SPREAD_PRIOR_LOG_MASS = np.full(len(_SPREAD_GRID), -math.log(len(_SPREAD_GRID)))
+
+
+def _moment_matched(log_weights: np.ndarray, means: np.ndarray, covs: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
+    """A Gaussian mixture with unnormalised log weights, matched by its mean and covariance
+    (the law of total covariance): ``(mean, cov, log of the weights' sum, normalised weights)``,
+    the weights normalised in the log domain so that no evidence overflows."""
+    top = float(np.max(log_weights))
+    weights = np.exp(log_weights - top)
+    total = float(weights.sum())
+    weights = weights / total
+    mean = weights @ means
+    spread = means - mean[None, :]
+    cov = np.einsum("g,gij->ij", weights, covs) + np.einsum("g,gi,gj->ij", weights, spread, spread)
+    return mean, 0.5 * (cov + cov.T), top + math.log(total), weights
 
 
 @dataclass(frozen=True)
@@ -504,18 +506,10 @@ def _law_posterior(x: np.ndarray, c: np.ndarray, c_var: np.ndarray, r: np.ndarra
     """
     grid = _law_grid(x, c, c_var, r, r_var, shared, scale, tau, c_prior_mean, r0_mean)
     # The prior's mass at each grid value (sums to one): the evidence integrates over the spread.
-    log_weight = grid.log_evidence + grid.log_within_one + _SPREAD_PRIOR_LOG_MASS
-    top = float(np.max(log_weight))
-    weights = np.exp(log_weight - top)
-    total = float(weights.sum())
-    weights /= total
-    evidence = top + math.log(total)
     coef = grid.mean[:, 1:].copy()
     coef[:, 1:] += grid.proxy
-    r_mean = weights @ coef
-    spread = coef - r_mean[None, :]
-    r_cov = np.einsum("g,gij->ij", weights, grid.cov[:, 1:, 1:]) + \
-        np.einsum("g,gi,gj->ij", weights, spread, spread)
+    r_mean, r_cov, evidence, weights = _moment_matched(
+        grid.log_evidence + grid.log_within_one + _SPREAD_PRIOR_LOG_MASS, coef, grid.cov[:, 1:, 1:])
     s = grid.spread
     u = s * s
     s_mean = float(weights @ s)
@@ -528,7 +522,7 @@ def _law_posterior(x: np.ndarray, c: np.ndarray, c_var: np.ndarray, r: np.ndarra
         relative_slope=slope_mean,
         relative_slope_stderr=math.sqrt(max(float(weights @ (slope - slope_mean) ** 2), 0.0)),
         relative_curvature=float(weights @ (2.0 * u * u - 3.0 * u)))
-    return r_mean, 0.5 * (r_cov + r_cov.T), evidence, law
+    return r_mean, r_cov, evidence, law
 
 
 def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
@@ -599,11 +593,9 @@ def fit_inversion_curve(xs: Sequence[float], inversions: Sequence[float],
     # averaging, e.g. Bishop 2006, section 3.4), the mixture matched by its mean and covariance:
     # with few velocity groups the data cannot tell them apart, and choosing the likeliest
     # states the narrowest width as if it were known.
-    evidences = np.array([f[2] for f in fits])
-    weights = np.exp(evidences - evidences.max())
-    weights /= weights.sum()
-    r_coef = sum(w * f[0] for w, f in zip(weights, fits))
-    r_cov = sum(w * (f[1] + np.outer(f[0] - r_coef, f[0] - r_coef)) for w, f in zip(weights, fits))
+    r_coef, r_cov, _, weights = _moment_matched(np.array([f[2] for f in fits]),
+                                                np.array([f[0] for f in fits]),
+                                                np.array([f[1] for f in fits]))
     pick = int(np.argmax(weights))
     law, widened = fits[pick][3], fits[pick][4]
     a_coef = np.asarray(absorption_coef, dtype=float)
