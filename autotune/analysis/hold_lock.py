@@ -39,6 +39,7 @@ __all__ = [
     "floor_phase_rad",
     "peak_offset",
     "reading_phase_sd",
+    "fringe_variances_per_atom",
     "two_pi_pulse_phase_rad",
     "step_reading",
 ]
@@ -401,6 +402,15 @@ def peak_offset(error_rad: float, error_stderr_rad: float, prior: LockPrior) -> 
                            (1.0 - q) * prior.slope_rad_per_hz, 0.0, 0.0, 0.0)
 
 
+def fringe_variances_per_atom(contrast: float) -> tuple[float, float]:
+    """``(Var chi, Var C)`` of one Ramsey fringe of contrast ``C`` times its detected atoms:
+    ``(2 - C^2 / 2) / C^2`` and ``2 - 3 C^2 / 2`` (binomial least squares over the fringe's
+    phases and the delta method; :class:`~autotune.analysis.hold_signal.SignalModel`), the
+    contrast taken within ``[1e-3, 1]``."""
+    c = min(max(float(contrast), 1e-3), 1.0)
+    return (2.0 - 0.5 * c * c) / (c * c), 2.0 - 1.5 * c * c
+
+
 def reading_phase_sd(phase_sd_at_peak_rad: float, error_rad: float, empty_fraction: float,
                      contrast_empty: float, contrast_one_photon: float) -> float:
     """The standard error of a check's measured phase error ``psi`` at its own reading (rad),
@@ -434,8 +444,7 @@ def reading_phase_sd(phase_sd_at_peak_rad: float, error_rad: float, empty_fracti
     r = abs(complex(math.cos(eps) - q, math.sin(eps))) / (1.0 - q)
 
     def per_atom(contrast: float) -> float:
-        c = min(max(float(contrast), 1e-3), 1.0)
-        return (2.0 - 0.5 * c * c) / (c * c)
+        return fringe_variances_per_atom(contrast)[0]
 
     c0 = contrast_empty if is_finite_number(contrast_empty) else 0.0
     c1 = contrast_one_photon if is_finite_number(contrast_one_photon) else 0.0

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from autotune.analysis.hold_lock import is_finite_number
+from autotune.analysis.hold_lock import fringe_variances_per_atom, is_finite_number
 from autotune.errors import ValueRefused
 
 __all__ = ["USABLE_Z", "NoiseModel", "SignalModel"]
@@ -126,8 +126,7 @@ class SignalModel:
     @staticmethod
     def _per_atom(contrast: float) -> tuple[float, float]:
         """``(Var chi, Var C)`` of one fringe times its detected atoms."""
-        c = min(max(contrast, 1e-3), 1.0)
-        return (2.0 - 0.5 * c * c) / (c * c), 2.0 - 1.5 * c * c
+        return fringe_variances_per_atom(contrast)
 
     @property
     def phase_variance_shots(self) -> float:
