@@ -33,7 +33,9 @@ __all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "step_outlook", "night_outlook"]
 #: asks of every family (benchmarks/README.md, the night study's targets), of which the retune
 #: after the alarm takes one to two minutes more.
 CONFIRM_WITHIN_S = 900.0
-# Halvings of each search (on a log scale: a factor of 20 to within 1.2 %).
+# Each search stops when its bracket is within this factor (each plan again costs up to a
+# second of CPU), after at most this many halvings on a log scale.
+_PRECISION = 1.05
 _HALVINGS = 8
 # Most detected atoms per shot searched, as a factor on the measured ones.
 _MOST_ATOMS_FACTOR = 1000.0
@@ -125,13 +127,14 @@ class StepOutlook:
         if self.atoms_factor_needed:
             options.append(f"atoms/shot x{self.atoms_factor_needed:.2g}")
         if self.step_hz_confirmed:
-            options.append(f"steps >= {math.ceil(self.step_hz_confirmed / 1e3):.0f} kHz")
-        head = (f"{self.step_hz / 1e3:.0f} kHz step confirmed in {_minutes(self.confirm_s)} "
-                f"(> {self.within_s / 60:.0f}); ")
+            options.append(f"steps >= {math.ceil(self.step_hz_confirmed / 100.0) / 10:.1f} kHz")
+        step, within = f"{self.step_hz / 1e3:.0f} kHz step", f"{self.within_s / 60:.0f}"
+        head = (f"{step} never confirmed; within {within}: " if not math.isfinite(self.confirm_s)
+                else f"{step} confirmed in {self.confirm_s / 60:.0f} min > {within}; within: ")
         if not options:
-            return head + "no budget_fraction, atoms/shot or step size in reach does better"
-        return head + "within it: " + (", ".join(options[:-1]) + " or " if len(options) > 1
-                                       else "") + options[-1]
+            return head + "no budget_fraction, atoms/shot or step size in reach"
+        return head + (", ".join(options[:-1]) + " or " if len(options) > 1 else "") + \
+            options[-1]
 
     @property
     def reason(self) -> str:
@@ -139,40 +142,60 @@ class StepOutlook:
         signal = ("" if self.detected_per_shot is None else
                   f"{self.detected_per_shot:.3g} detected atoms per shot, contrasts "
                   f"{self.contrast_empty:.2f} and {self.contrast_one_photon:.2f}, ")
+        confirm = (f"never confirm a {self.step_hz / 1e3:.0f} kHz step"
+                   if not math.isfinite(self.confirm_s) else
+                   f"confirm a {self.step_hz / 1e3:.0f} kHz step {_minutes(self.confirm_s)} after "
+                   f"it in the mean ({_minutes(self.confirm_late_s)} when it comes just after a "
+                   f"check)")
         head = (f"from this rig's signal ({signal}phase variance "
                 f"{self.phase_variance_shots:.3g} rad^2 per shot) and budget_fraction "
                 f"{self.budget_fraction:g}, checks of {self.shots_per_phase} shots per phase "
                 f"({self.check_s:.0f} s of beam) every {self.interval_s / 60:.1f} min "
-                f"({self.check_share:.1%} of the beam) confirm a {self.step_hz / 1e3:.0f} kHz "
-                f"step {_minutes(self.confirm_s)} after it in the mean "
-                f"({_minutes(self.confirm_late_s)} when it comes just after a check)")
+                f"({self.check_share:.1%} of the beam) {confirm}")
         if self.met:
             return f"{head}, within {self.within_s / 60:.0f} min"
         needs = []
-        needs.append(f"budget_fraction {self.budget_fraction_needed:.3g}"
-                     if self.budget_fraction_needed else "no budget_fraction up to 1")
-        needs.append(f"{self.atoms_factor_needed:.3g} times the detected atoms per shot "
-                     f"(detection efficiency, atoms per sample)" if self.atoms_factor_needed
-                     else f"no factor on the detected atoms up to {_MOST_ATOMS_FACTOR:g}")
+        if self.budget_fraction_needed:
+            needs.append(f"budget_fraction {self.budget_fraction_needed:.3g}")
+        if self.atoms_factor_needed:
+            needs.append(f"{self.atoms_factor_needed:.3g} times the detected atoms per shot "
+                         f"(detection efficiency, atoms per sample)")
+        missing = [] if self.budget_fraction_needed else ["no budget_fraction up to 1"]
+        if not self.atoms_factor_needed:
+            missing.append(f"no factor on the detected atoms up to {_MOST_ATOMS_FACTOR:g}")
         step = (f"steps of {self.step_hz_confirmed / 1e3:.1f} kHz and more are confirmed "
                 f"within it as configured" if self.step_hz_confirmed else
                 "no step within the lock's capture range is confirmed within it as configured")
+        parts = []
+        if needs:
+            parts.append(f"{' or '.join(needs)} would confirm it within"
+                         + (", each alone" if len(needs) > 1 else ""))
+        if missing:
+            parts.append(f"{' and '.join(missing)} would")
         return (f"{head}, over the {self.within_s / 60:.0f} min a night accepts: "
-                f"{' or '.join(needs)} would confirm it within, each alone; {step}; the night "
-                f"runs as configured")
+                f"{'; '.join(parts + [step])}; the night runs as configured")
 
 
 def _minutes(seconds: float) -> str:
     return "never" if not math.isfinite(seconds) else f"{seconds / 60:.1f} min"
 
 
-def _least(within: Callable[[float], bool], low: float, high: float) -> float | None:
-    """The least ``x`` in ``(low, high]`` with ``within(x)`` (log-scale halvings, ``within``
-    taken as monotone; ``within(low)`` false): the upper end of the last bracket, so that
-    ``within`` holds at the value returned. None when ``within(high)`` is false."""
+def _least(within: Callable[[float], bool], low: float, high: float,
+           guess: float | None = None) -> float | None:
+    """The least ``x`` in ``(low, high]`` with ``within(x)`` to within :data:`_PRECISION`
+    (``within`` taken as monotone, ``within(low)`` false; ``guess`` tried first, then halvings
+    on a log scale): the upper end of the last bracket, so that ``within`` holds at the value
+    returned. None when ``within(high)`` is false."""
     if high <= low or not within(high):
         return None
+    if guess is not None and low < guess < high:
+        if within(guess):
+            high = guess
+        else:
+            low = guess
     for _ in range(_HALVINGS):
+        if high <= low * _PRECISION:
+            break
         middle = math.sqrt(low * high)
         if within(middle):
             high = middle
@@ -209,9 +232,13 @@ def step_outlook(settings: HoldSettings, *, plan: CheckPlan, noise: NoiseModel,
     if not met:
         fraction = float(settings.budget_fraction)
         most = 1.0 / fraction
-        factor = _least(lambda f: delay(share=check_share * f) <= within_s, 1.0, most)
+        # The time to confirm goes about as the interval, which goes as one over the share
+        # and, the check's size set by the noise, as one over the detected atoms: first guesses.
+        guess = plan.step_delay_s / within_s if math.isfinite(plan.step_delay_s) else None
+        factor = _least(lambda f: delay(share=check_share * f) <= within_s, 1.0, most, guess)
         budget_needed = None if factor is None else fraction * factor
-        atoms_needed = _least(lambda a: delay(atoms=a) <= within_s, 1.0, _MOST_ATOMS_FACTOR)
+        atoms_needed = _least(lambda a: delay(atoms=a) <= within_s, 1.0, _MOST_ATOMS_FACTOR,
+                              guess)
         capture_hz = settings.lock.capture_phase_error_rad / abs(prior.slope_rad_per_hz)
         step_confirmed = _least(lambda s: delay(step=s) <= within_s, step_hz, capture_hz)
     per_shot = None if signal is None else (
