@@ -603,7 +603,7 @@ def _larger_checks(settings: HoldSettings, *, check_share: float, least: int,
     per_phase = min(max(least, int(math.ceil(tell / one))), settings.max_shots_per_phase)
     interval = measurement_shots(phases, per_phase) / rate / check_share
     if interval > top:
-        affordable = int(math.floor(check_share * top * rate / one))
+        affordable = math.floor(check_share * top * rate / one)
         per_phase = min(per_phase, max(least, affordable))
         interval = top
     row = _check_row(settings, interval=interval, per_phase=per_phase,
@@ -614,7 +614,7 @@ def _larger_checks(settings: HoldSettings, *, check_share: float, least: int,
     if interval >= top:
         why += (f", at the longest interval ({settings.max_interval_s:g} s), "
                 + ("the least the lock reads, more than the share pays for"
-                   if per_phase > int(math.floor(check_share * top * rate / one)) else
+                   if per_phase > math.floor(check_share * top * rate / one) else
                    "as large as the share pays for there"))
     return row, why
 
