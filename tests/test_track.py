@@ -112,6 +112,24 @@ def test_a_night_journals_every_check_correction_and_decision(night):
 
 
 @_SHARES_FIXTURE
+def test_on_the_demos_signal_the_outlook_is_journaled_once_without_a_warning(night):
+    """Before the first check, one step_outlook decision: on the demo rig's signal the first
+    plan's checks confirm a 15 kHz step within 15 min, so it is an info decision with its
+    numbers, nothing to change, and the result keeps it."""
+    records, result = night["records"], night["result"]
+    outlooks = [r for r in records if r["type"] == "decision" and r["what"] == "step_outlook"]
+    assert len(outlooks) == 1
+    first_hold = next(i for i, r in enumerate(records) if r["type"] == "hold")
+    assert records.index(outlooks[0]) < first_hold
+    numbers = outlooks[0]["outlook"]
+    assert numbers["met"] is True and numbers["warning"] is None
+    assert 0.0 < numbers["confirm_s"] <= numbers["within_s"] == 900.0
+    assert numbers["budget_fraction_needed"] is None and numbers["atoms_factor_needed"] is None
+    assert "within 15 min" in outlooks[0]["reason"]
+    assert result["step_outlook"] == numbers
+
+
+@_SHARES_FIXTURE
 def test_the_night_tells_its_progress_and_the_journal_agrees(night):
     """A progress item after every check (as many as hold records, the last with the result's
     counts), one before each wait, the stages' own progress during the retunes, and none of a

@@ -234,3 +234,61 @@ def test_a_night_whose_recoveries_all_fail_exits_4_at_safe(tmp_path):
             assert rig.status().shots_total == status.shots_total
     finally:
         server.stop()
+
+
+def test_a_night_on_a_poor_detector_says_before_its_first_check_what_would_confirm_a_step(
+        tmp_path):
+    """A rig with a fifth of the demo's atoms per sample (0.04: about 0.02 detected atoms per
+    shot) and no last good calibration: ``autotune track`` calibrates, then, before its first
+    check, journals a ``step_outlook`` decision with its numbers (the expected time to confirm
+    a 15 kHz step from the calibration's measured atoms, contrasts and phase noise within the
+    5 % budget, the check's shots and interval), warns in one console line naming the
+    budget_fraction and the detected atoms per shot that would confirm it within 15 minutes,
+    still runs the night to its end (exit 0), and keeps the outlook in result.json and in its
+    summary. On the demo's own signal (tests/test_track.py) the same night says nothing."""
+    data = tomllib.loads(SIM_CONFIG.read_text())
+    data["rig"]["atoms_per_sample"] = 0.04
+    data["drift"]["random_walk_hz_per_sqrt_s"] = 0.0
+    rig_config = tmp_path / "poor-rig.toml"
+    rig_config.write_text(to_toml(data))
+    server = spawn_server(tmp_path, "poor-rig", config=rig_config)
+    try:
+        config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                             track={"max_rig_time_s": 2 * 3600.0},
+                             acceptance={"min_inversion": 0.3})
+        night = tmp_path / "night"
+        ran = autotune("track", "--config", str(config), "--out", str(night))
+    finally:
+        server.stop()
+    assert ran.returncode == 0, ran.stderr[-3000:]
+    records = read_journal(night / JOURNAL_NAME)
+    check_invariants(records)
+    whats = [r["what"] for r in records if r["type"] == "decision"]
+    outlooks = [r for r in records if r["type"] == "decision" and r["what"] == "step_outlook"]
+    assert len(outlooks) == 1
+    # Before the first check: after the calibration's stage_done, before any hold record.
+    first_hold = next(i for i, r in enumerate(records) if r["type"] == "hold")
+    assert records.index(outlooks[0]) < first_hold
+    assert whats.index("stage_done") < whats.index("step_outlook") < whats.index("plan")
+    numbers = outlooks[0]["outlook"]
+    assert numbers["met"] is False and numbers["confirm_s"] > 900.0
+    assert numbers["within_s"] == 900.0 and numbers["step_hz"] == 15e3
+    assert numbers["budget_fraction"] == 0.05
+    assert 0.005 < numbers["detected_per_shot"] < 0.05
+    first_plan = next(r for r in records if r["type"] == "decision" and r["what"] == "plan")
+    assert numbers["shots_per_phase"] == first_plan["plan"]["shots_per_phase"]
+    assert numbers["interval_s"] == first_plan["plan"]["interval_s"] <= 1800.0
+    assert numbers["confirm_s"] == first_plan["plan"]["step_delay_s"]
+    assert numbers["budget_fraction_needed"] > 0.05
+    assert numbers["atoms_factor_needed"] > 1.0
+    assert outlooks[0]["reason"] == numbers["warning"]
+    assert "the night runs as configured" in outlooks[0]["detail"]
+    # One console line, not cut, naming what to change.
+    lines = [line for line in ran.stderr.splitlines() if "step_outlook:" in line]
+    assert len(lines) == 1 and " WARNING " in lines[0], ran.stderr[-3000:]
+    assert "[...]" not in lines[0]
+    assert f"budget_fraction {numbers['budget_fraction_needed']:.2g}" in lines[0]
+    assert f"atoms/shot x{numbers['atoms_factor_needed']:.2g}" in lines[0]
+    result = read_json(night / RESULT_NAME)
+    assert result["status"] == "ended" and result["step_outlook"] == numbers
+    assert f"warned before its first check: {numbers['warning']}" in ran.stdout

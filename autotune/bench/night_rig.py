@@ -183,6 +183,8 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
                 "status", "checks", "rechecks", "corrections", "alarms", "retunes",
                 "calibrations", "failures", "budget_unheld_s", "budget_limited",
                 "holding_beam_s", "budget_ceiling_s")})
+            # The night's outlook before its first check (hold_outlook.StepOutlook's numbers).
+            record["step_outlook"] = outcome.get("step_outlook")
             record["plans"] = _night_plans(Path(tmp) / "night")
             record["alarm_clocks"] = [c - start for c in _alarm_clocks(Path(tmp) / "night")]
         else:

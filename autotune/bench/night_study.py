@@ -88,6 +88,12 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
                 max(finite, default=math.nan),
                 "never_recovered": sum(d is None for d in delays),
                 "detection_s_q": quantiles(detections),
+                # Nights whose outlook warned before the first check (the time to confirm a
+                # step over hold_outlook.CONFIRM_WITHIN_S): scenario, minutes, the warning.
+                "warned": [{"scenario": r["scenario"],
+                            "confirm_s": (r.get("step_outlook") or {}).get("confirm_s"),
+                            "warning": r["step_outlook"]["warning"]}
+                           for r in done if (r.get("step_outlook") or {}).get("warning")],
                 "worst": None if worst is None else {
                     "scenario": worst["scenario"], "fraction_097": worst["fraction_097"],
                     "fraction_098": worst["fraction_098"],

@@ -75,6 +75,10 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
                 f"most {t['holding_share_max']:.2%}; nights over the {budget:.0%} budget: "
                 f"{t['over_budget']} of {t['nights']}; recovery worst "
                 f"{_minutes_text(t['recovery_s_max'])}")
+        for label, row in night["summary"][family].items():
+            for warned in row.get("warned") or []:
+                lines.append(f"    warned before the first check: {label}, scenario "
+                             f"{warned['scenario']}: {warned['warning']}")
         lines.extend(nights_not_run(night.get("runs") or [], family))
         lines.append(header)
         for label, row in night["summary"][family].items():

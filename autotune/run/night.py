@@ -28,6 +28,7 @@ from autotune.analysis.hold import (
     noise_row,
     lock_at_stage_end,
     plan_night,
+    night_outlook,
     recovery_after_alarm,
     holds_as_well,
     reference_add,
@@ -550,6 +551,8 @@ class Night:
         if plan is None:
             self._unwatched("the budget has nothing left for a check")
             return
+        if self._outlook() is None:
+            self._tell_outlook(plan, budget)
         share = budget["share"]
         point = int(state["point"])
         nxt = state.get("next")
@@ -569,6 +572,32 @@ class Night:
                        f"{budget['remaining_s'] / 3600:.1f} h to come)",
                        budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
                        plan=plan.to_dict())
+
+    def _outlook(self) -> Mapping[str, Any] | None:
+        """The night's ``step_outlook`` decision's numbers, None before its first plan."""
+        for rec in self.ledger.records:
+            if rec.get("type") == "decision" and rec.get("what") == "step_outlook":
+                return rec.get("outlook")
+        return None
+
+    def _tell_outlook(self, plan: CheckPlan, budget: Mapping[str, float]) -> None:
+        """Before the night's first check: how long its checks take to confirm a thermal step
+        from this rig's measured signal and the budget, journaled with its numbers, a warning
+        naming what to change when that is over ``hold.CONFIRM_WITHIN_S``. The night still runs
+        as configured."""
+        state = self.state
+        outlook = night_outlook(self.settings, plan=plan, share=budget, rows=state["noise"],
+                                prior=LockPrior.from_dict(state["prior"]),
+                                lock=DriftLock.from_dict(state["lock"]).predict(
+                                    self.session.clock),
+                                reference=state["reference"])
+        if outlook.met:
+            self.session.decide("step_outlook", outlook.reason,
+                                outlook=json_ready(outlook.to_dict()))
+        else:
+            # The reason is the one line the console shows; the whole sentence is its detail.
+            self.session.decide("step_outlook", outlook.warning, level="warning",
+                                detail=outlook.reason, outlook=json_ready(outlook.to_dict()))
 
     # -- holding ------------------------------------------------------------------------------------
 
@@ -780,6 +809,9 @@ class Night:
             "budget_limited": len(decisions(parse_all(self.ledger.records), "budget",
                                             "unwatched")),
             "plan": state.get("plan"), "lock": state.get("lock"),
+            # Before the first check: the time to confirm a thermal step, and what would bring
+            # it within (hold_outlook.StepOutlook; None when the night never held).
+            "step_outlook": self._outlook(),
             "run_dir": str(self.prepared.run_dir),
         }
         if last is not None:
