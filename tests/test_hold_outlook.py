@@ -152,3 +152,21 @@ def test_the_time_to_confirm_matches_a_simulation_of_the_checks(atoms_per_shot):
         delays[n] = clock
     assert outlook.confirm_s == plan.step_delay_s
     assert 0.95 * delays.mean() <= plan.step_delay_s <= 1.35 * delays.mean()
+
+
+def test_a_later_plan_tells_the_outlook_again_only_when_it_crosses_the_line():
+    """hold_outlook.outlook_due: the first plan always; a later one only when its expected time
+    to confirm a step has crossed CONFIRM_WITHIN_S either way since the last outlook told.
+    The line is the night study's worst recovery target (issue 22: 15 min), less the retune."""
+    from types import SimpleNamespace
+
+    from autotune.analysis.hold_outlook import CONFIRM_WITHIN_S, outlook_due
+
+    fast = SimpleNamespace(step_delay_s=0.5 * CONFIRM_WITHIN_S)
+    slow = SimpleNamespace(step_delay_s=2.0 * CONFIRM_WITHIN_S)
+    never = SimpleNamespace(step_delay_s=float("inf"))
+    at_line = SimpleNamespace(step_delay_s=CONFIRM_WITHIN_S)
+    assert outlook_due(None, fast) and outlook_due(None, slow)
+    assert not outlook_due({"met": True}, fast) and not outlook_due({"met": True}, at_line)
+    assert outlook_due({"met": True}, slow) and outlook_due({"met": True}, never)
+    assert outlook_due({"met": False}, fast) and not outlook_due({"met": False}, never)

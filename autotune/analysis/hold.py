@@ -73,12 +73,13 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   fits' dispersion predict the phase variance per shot and the least check the lock can read,
   so a poor detector gets larger checks that can still tell a step from noise.
 
-- **The outlook** (:func:`step_outlook`, :func:`night_outlook`, in
+- **The outlook** (:func:`step_outlook`, :func:`night_outlook`, :func:`outlook_due`, in
   :mod:`autotune.analysis.hold_outlook`): at the night's first plan, the expected time its
   checks take to confirm a thermal step from this rig's measured signal and the budget; over
   :data:`CONFIRM_WITHIN_S` the night says, before its first check, which ``budget_fraction``,
   which factor on the detected atoms per shot, or which step size would be confirmed within,
-  and runs as configured.
+  and runs as configured; it says so again at a later plan whose time to confirm has crossed
+  the line either way (a retune ate into the budget).
 
 Everything is a deterministic function of its inputs, so a resumed night rebuilds the same
 decisions from the journal's snapshots.
@@ -146,6 +147,7 @@ from autotune.analysis.hold_outlook import (
     CONFIRM_WITHIN_S,
     StepOutlook,
     night_outlook,
+    outlook_due,
     step_outlook,
 )
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
@@ -205,4 +207,5 @@ __all__ = [
     "StepOutlook",
     "step_outlook",
     "night_outlook",
+    "outlook_due",
 ]

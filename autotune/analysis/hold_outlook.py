@@ -26,7 +26,7 @@ from autotune.analysis.hold_lock import DriftLock, HoldSettings
 from autotune.analysis.hold_plan import CheckPlan, plan_checks
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
 
-__all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "step_outlook", "night_outlook"]
+__all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "step_outlook", "night_outlook", "outlook_due"]
 
 #: Longest expected rig time from a thermal step to its confirmation (the alarm) that a night
 #: accepts without a warning (s): the night's worst recovery from a step that the night study
@@ -272,3 +272,15 @@ def night_outlook(settings: HoldSettings, *, plan: CheckPlan, share: Mapping[str
                         check_share=share["share"],
                         step_rate_per_s=share["recoveries_per_h"] / 3600.0, step_hz=step_hz,
                         within_s=within_s)
+
+
+def outlook_due(latest: Mapping[str, Any] | None, plan: CheckPlan,
+                within_s: float = CONFIRM_WITHIN_S) -> bool:
+    """Whether a night tells its outlook at this plan: at its first plan (``latest`` None), and
+    again at a later plan whose time to confirm a step has crossed ``within_s`` either way
+    since the last outlook told (``latest``, a :meth:`StepOutlook.to_dict`): a night whose
+    checks slow down after a retune has eaten into the budget warns then, and says when they
+    are back within. Plans on the same side of the line tell nothing new."""
+    if latest is None:
+        return True
+    return bool(latest.get("met")) != bool(plan.step_delay_s <= within_s)

@@ -185,6 +185,8 @@ def hold_night_job(job: Mapping[str, Any]) -> dict[str, Any]:
                 "holding_beam_s", "budget_ceiling_s")})
             # The night's outlook before its first check (hold_outlook.StepOutlook's numbers).
             record["step_outlook"] = outcome.get("step_outlook")
+            # The last outlook told (a later plan's, when its time to confirm crossed the line).
+            record["last_step_outlook"] = outcome.get("last_step_outlook")
             record["plans"] = _night_plans(Path(tmp) / "night")
             record["alarm_clocks"] = [c - start for c in _alarm_clocks(Path(tmp) / "night")]
         else:

@@ -94,6 +94,13 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
                             "confirm_s": (r.get("step_outlook") or {}).get("confirm_s"),
                             "warning": r["step_outlook"]["warning"]}
                            for r in done if (r.get("step_outlook") or {}).get("warning")],
+                # Nights whose last outlook, told at a later plan, warned: the checks slowed
+                # past the line after the first check (a retune ate into the budget).
+                "warned_later": [{"scenario": r["scenario"],
+                                  "confirm_s": r["last_step_outlook"].get("confirm_s"),
+                                  "warning": r["last_step_outlook"]["warning"]}
+                                 for r in done if (r.get("last_step_outlook") or {}).get("later")
+                                 and r["last_step_outlook"].get("warning")],
                 "worst": None if worst is None else {
                     "scenario": worst["scenario"], "fraction_097": worst["fraction_097"],
                     "fraction_098": worst["fraction_098"],

@@ -79,6 +79,9 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
             for warned in row.get("warned") or []:
                 lines.append(f"    warned before the first check: {label}, scenario "
                              f"{warned['scenario']}: {warned['warning']}")
+            for warned in row.get("warned_later") or []:
+                lines.append(f"    warned at a later plan: {label}, scenario "
+                             f"{warned['scenario']}: {warned['warning']}")
         lines.extend(nights_not_run(night.get("runs") or [], family))
         lines.append(header)
         for label, row in night["summary"][family].items():

@@ -149,9 +149,11 @@ def _track_summary(result: dict[str, Any]) -> str:
     if result.get("budget_unheld_s"):
         text += (f"; {result['budget_unheld_s'] / 60:.1f} min not held because of the budget "
                  f"({count_text(int(result.get('budget_limited', 0)), 'budget decision')})")
-    warning = (result.get("step_outlook") or {}).get("warning")
-    if warning:
-        text += f"; warned before its first check: {warning}"
+    first, last = result.get("step_outlook") or {}, result.get("last_step_outlook") or {}
+    if first.get("warning"):
+        text += f"; warned before its first check: {first['warning']}"
+    if last.get("later") and last.get("warning"):
+        text += f"; warned at its last plan that crossed 15 min: {last['warning']}"
     if "inversion" in result:
         low, high = result["inversion_interval"]
         text += (f"; last measurement: inversion {result['inversion']:.3f} [{low:.3f}, "

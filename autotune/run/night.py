@@ -29,6 +29,7 @@ from autotune.analysis.hold import (
     lock_at_stage_end,
     plan_night,
     night_outlook,
+    outlook_due,
     recovery_after_alarm,
     holds_as_well,
     reference_add,
@@ -551,8 +552,9 @@ class Night:
         if plan is None:
             self._unwatched("the budget has nothing left for a check")
             return
-        if self._outlook() is None:
-            self._tell_outlook(plan, budget)
+        latest = self._outlook(latest=True)
+        if outlook_due(latest, plan):
+            self._tell_outlook(plan, budget, later=latest is not None)
         share = budget["share"]
         point = int(state["point"])
         nxt = state.get("next")
@@ -573,31 +575,37 @@ class Night:
                        budget=budget, night_rig_time_s=self.session.clock - self.start_clock,
                        plan=plan.to_dict())
 
-    def _outlook(self) -> Mapping[str, Any] | None:
-        """The night's ``step_outlook`` decision's numbers, None before its first plan."""
-        for rec in self.ledger.records:
+    def _outlook(self, latest: bool = False) -> Mapping[str, Any] | None:
+        """The numbers of the night's first ``step_outlook`` decision (its last with
+        ``latest``), None before its first plan."""
+        records = reversed(self.ledger.records) if latest else iter(self.ledger.records)
+        for rec in records:
             if rec.get("type") == "decision" and rec.get("what") == "step_outlook":
                 return rec.get("outlook")
         return None
 
-    def _tell_outlook(self, plan: CheckPlan, budget: Mapping[str, float]) -> None:
-        """Before the night's first check: how long its checks take to confirm a thermal step
-        from this rig's measured signal and the budget, journaled with its numbers, a warning
-        naming what to change when that is over ``hold.CONFIRM_WITHIN_S``. The night still runs
-        as configured."""
+    def _tell_outlook(self, plan: CheckPlan, budget: Mapping[str, float], *,
+                      later: bool = False) -> None:
+        """Before the night's first check, and again at a later plan whose time to confirm has
+        crossed ``hold.CONFIRM_WITHIN_S`` either way (``later``; :func:`outlook_due`): how long
+        its checks take to confirm a thermal step from this rig's measured signal and what is
+        left of the budget, journaled with its numbers, a warning naming what to change when
+        that is over. The night still runs as configured."""
         state = self.state
         outlook = night_outlook(self.settings, plan=plan, share=budget, rows=state["noise"],
                                 prior=LockPrior.from_dict(state["prior"]),
                                 lock=DriftLock.from_dict(state["lock"]).predict(
                                     self.session.clock),
                                 reference=state["reference"])
+        hours = (self.session.clock - self.start_clock) / 3600.0
+        when = f"{hours:.1f} h into the night, " if later else ""
+        numbers = json_ready({**outlook.to_dict(), "later": later})
         if outlook.met:
-            self.session.decide("step_outlook", outlook.reason,
-                                outlook=json_ready(outlook.to_dict()))
+            self.session.decide("step_outlook", when + outlook.reason, outlook=numbers)
         else:
             # The reason is the one line the console shows; the whole sentence is its detail.
-            self.session.decide("step_outlook", outlook.warning, level="warning",
-                                detail=outlook.reason, outlook=json_ready(outlook.to_dict()))
+            self.session.decide("step_outlook", when + outlook.warning, level="warning",
+                                detail=outlook.reason, outlook=numbers)
 
     # -- holding ------------------------------------------------------------------------------------
 
@@ -812,6 +820,9 @@ class Night:
             # Before the first check: the time to confirm a thermal step, and what would bring
             # it within (hold_outlook.StepOutlook; None when the night never held).
             "step_outlook": self._outlook(),
+            # The last outlook told, the same as the first unless a later plan's time to
+            # confirm crossed hold_outlook.CONFIRM_WITHIN_S (hold_outlook.outlook_due).
+            "last_step_outlook": self._outlook(latest=True),
             "run_dir": str(self.prepared.run_dir),
         }
         if last is not None:
