@@ -197,12 +197,21 @@ class RamseySection:
     zone_separation_m : float
         Distance ``L`` between the zones, m.
     area_at_set_velocity_rad : float
-        Zone pulse area at the set velocity (power calibrated there), rad.
+        Zone pulse area at the velocity where the zones' power was set, rad.
+    power_set_velocity_m_per_s : float or None
+        Velocity at which the zones' power was set (once, for every set-point): an atom of
+        velocity ``v`` then sees the area ``area_at_set_velocity_rad * power_set / v``, and
+        both fringes lose contrast as ``v`` leaves it (docs/physics.md section 3); optional,
+        default: the power is set again at every velocity set-point (the area is
+        ``area_at_set_velocity_rad`` at the set velocity).
     """
 
     detuning_hz: number(-1e9, 1e9, plausible=plausible.RAMSEY_DETUNING_HZ)
     zone_separation_m: number(0.0, 100.0, plausible=plausible.ZONE_SEPARATION_M)
     area_at_set_velocity_rad: number(0.0, 2.0 * math.pi)
+    # None (left out of the file): the power follows the set velocity; an explicit None is refused.
+    power_set_velocity_m_per_s: number(0.0, 1e4, low_open=True,
+                                       plausible=plausible.VELOCITY_M_PER_S) = None
 
 
 @table

@@ -451,7 +451,7 @@ def ramsey_rotation(theta, phi):
 
 
 def zone_area(true_velocity, set_velocity, *, area_at_set=math.pi / 2.0):
-    """Pulse area of a Ramsey zone whose power was calibrated at the set velocity, rad.
+    """Pulse area of a Ramsey zone whose power was calibrated at ``set_velocity``, rad.
 
     The area scales as ``1 / v`` at fixed microwave power (longer transit, bigger area):
     ``theta = area_at_set * set_velocity / true_velocity``.
@@ -651,7 +651,10 @@ class AtomCavityModel:
     zone_separation_m : float
         Distance ``L`` between the Ramsey zones, m.
     zone_area_rad : float
-        Zone pulse area at the set velocity (power calibrated there), rad.
+        Zone pulse area at the velocity where the zones' power was set, rad.
+    zone_power_velocity_m_per_s : float or None
+        That velocity, m/s, the same for every set-point; None (default): the power is set
+        again at each velocity set-point, so the area is ``zone_area_rad`` at the set velocity.
     confusion : tuple of tuple of float
         ``M[detected][true]`` over ``(e, g, i)``.
     velocity_nodes : int
@@ -676,6 +679,7 @@ class AtomCavityModel:
     ramsey_detuning_hz: float = 0.0
     zone_separation_m: float = 0.0
     zone_area_rad: float = math.pi / 2.0
+    zone_power_velocity_m_per_s: float | None = None
     confusion: tuple[tuple[float, ...], ...] = ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0), (0.0, 0.0, 1.0))
     velocity_nodes: int = 9
     max_photons: int = 4
@@ -743,7 +747,9 @@ def outcome_coefficients(model: AtomCavityModel, set_velocity, true_detuning_hz)
     v_true, w_nodes = velocity_nodes(
         vset + model.velocity_bias_m_per_s, model.velocity_spread_m_per_s, model.velocity_nodes
     )  # (M, K)
-    theta = zone_area(v_true, vset[:, None], area_at_set=model.zone_area_rad)
+    power_set = vset[:, None] if model.zone_power_velocity_m_per_s is None \
+        else model.zone_power_velocity_m_per_s
+    theta = zone_area(v_true, power_set, area_at_set=model.zone_area_rad)
     phase_v = ramsey_phase_offset(
         v_true,
         ramsey_detuning_hz=model.ramsey_detuning_hz,

@@ -134,6 +134,7 @@ def _model_from_config(config: SimRigConfig) -> physics.AtomCavityModel:
         ramsey_detuning_hz=config.ramsey.detuning_hz,
         zone_separation_m=config.ramsey.zone_separation_m,
         zone_area_rad=config.ramsey.area_at_set_velocity_rad,
+        zone_power_velocity_m_per_s=config.ramsey.power_set_velocity_m_per_s,
         confusion=tuple(tuple(float(x) for x in row) for row in confusion),
         velocity_nodes=config.model.velocity_nodes,
         max_photons=config.model.max_photons,

@@ -158,6 +158,37 @@ def test_ramsey_assembly_matches_ideal_fringe_formula():
         assert coefficients[0] @ row == pytest.approx(abs(a_e) ** 2 / 2, abs=1e-12)
 
 
+@pytest.mark.parametrize("velocity", [440.0, 480.0, 500.0, 530.0, 575.0])
+def test_zones_set_at_one_velocity_scale_both_fringes_by_the_rabi_formula(velocity):
+    """Zones whose power was set once at 500 m/s give an atom of velocity v the pulse area theta =
+    (pi / 2) 500 / v, and both fringes (empty and one photon) have sin^2 theta of the contrast that
+    pi/2 zones give; zones set at the set velocity are the default rig."""
+    # Source: the resonant two-level Rabi formula, a pulse of area theta transfers p = sin^2(theta
+    # / 2) (I. I. Rabi, Phys. Rev. 51, 652 (1937); from memory), the area proportional to the
+    # transit time, so to L / v, at fixed power (common practice); two equal pulses give a fringe
+    # of peak-to-peak contrast 4 p (1 - p) (docs/physics.md section 3, our derivation).
+    common = dict(coupling_hz=COUPLING_HZ, waist_m=WAIST_M, cavity_frequency_hz=48.6e9,
+                  temperature_k=0.0, damping_time_s=1.0, one_photon_probability=1.0,
+                  preparation_to_cavity_m=0.0, velocity_bias_m_per_s=0.0,
+                  velocity_spread_m_per_s=0.0, velocity_nodes=1)
+
+    def figures(**zones):
+        model = physics.AtomCavityModel(**common, **zones)
+        detected = physics.detected_coefficients(
+            physics.outcome_coefficients(model, velocity, 12e3), model.confusion)
+        return physics.fringe_figures(detected)
+
+    rescaled, fixed = figures(), figures(zone_power_velocity_m_per_s=500.0)
+    p = math.sin(0.5 * (math.pi / 2) * 500.0 / velocity) ** 2
+    assert fixed["contrast_empty"] == pytest.approx(4 * p * (1 - p), abs=1e-12)
+    assert rescaled["contrast_empty"] == pytest.approx(1.0, abs=1e-12)
+    assert fixed["contrast_one_photon"] == pytest.approx(
+        4 * p * (1 - p) * rescaled["contrast_one_photon"], abs=1e-12)
+    at_set = figures(zone_power_velocity_m_per_s=velocity)
+    for key in rescaled:
+        assert at_set[key] == pytest.approx(rescaled[key], abs=1e-12)
+
+
 def test_velocity_spread_washes_out_fringe_as_stated():
     """A Gaussian spread cuts the empty contrast by exp(-(2 pi Delta_R L sigma_v / v^2)^2 / 2)."""
     # Source: docs/physics.md section 3 (average of the fringe over a Gaussian, to first order in

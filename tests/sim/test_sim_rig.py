@@ -305,6 +305,18 @@ def test_rig_with_another_mode_profile_peaks_at_its_own_two_pi_velocity(demo_con
     assert truth["hidden"]["mode_profile"]["kind"] == cavity["mode_profile"]
 
 
+def test_rig_whose_zones_were_set_below_the_best_velocity_peaks_lower_and_lower(demo_config,
+                                                                               demo_truth):
+    """Zones set once at 460 m/s, below the demo's best: the truth's best inversion falls (both
+    fringes lose sin^2 theta away from 460 m/s) and its best velocity moves towards 460 m/s."""
+    # Source: docs/physics.md section 3 (the contrast of two equal pulses of area theta is sin^2
+    # theta; the area scales as 1 / v at fixed power, common practice).
+    config = perturbed(demo_config, ramsey={"power_set_velocity_m_per_s": 460.0})
+    truth = SimulatedRig(config, SEED).truth()
+    assert truth["best"]["inversion"] < demo_truth["best"]["inversion"]
+    assert truth["best"]["setpoints"]["velocity"] < demo_truth["best"]["setpoints"]["velocity"]
+
+
 # ---------------------------------------------------------------------------------- limits
 
 
