@@ -11,6 +11,7 @@ stages were accepted, and how often the stated bound covered the true shortfall
 
     python3 benchmarks/dry_runs.py            # seeds 1-8
     python3 benchmarks/dry_runs.py --seeds 1 2 3 --keep /tmp/dry
+    python3 benchmarks/dry_runs.py --rig-config my-rig.toml   # another simulated rig
 
 A benchmark, not a test: it prints figures and never asserts.
 """
@@ -47,10 +48,12 @@ def stage_row(seed: int, stage: str, result: dict) -> dict:
     }
 
 
-def run_seed(seed: int, out: Path) -> list[dict]:
-    """Run ``autotune dry-run --seed SEED --out OUT`` and read its stages' results."""
+def run_seed(seed: int, out: Path, rig_config: Path | None = None) -> list[dict]:
+    """Run ``autotune dry-run --seed SEED --out OUT`` (with ``--rig-config`` when given) and
+    read its stages' results."""
+    extra = [] if rig_config is None else ["--rig-config", str(rig_config)]
     proc = subprocess.run(
-        ["autotune", "dry-run", "--seed", str(seed), "--out", str(out)],
+        ["autotune", "dry-run", "--seed", str(seed), "--out", str(out), *extra],
         capture_output=True, text=True, check=False,
     )
     rows = []
@@ -85,6 +88,8 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, nargs="+", default=list(range(1, 9)))
     parser.add_argument("--keep", type=Path, help="keep the run folders under this folder")
+    parser.add_argument("--rig-config", type=Path,
+                        help="simulated rig TOML passed to every dry run (default: the demo rig)")
     args = parser.parse_args(argv)
     with tempfile.TemporaryDirectory() as scratch:
         base = args.keep or Path(scratch)
@@ -92,7 +97,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{'seed':>4} {'stage':<9} {'status':<18} {'points':>6} {'shots':>8} "
               f"{'ratio':>6} {'bound':>7}")
         for seed in args.seeds:
-            for row in run_seed(seed, base / f"seed-{seed}"):
+            for row in run_seed(seed, base / f"seed-{seed}", args.rig_config):
                 rows.append(row)
                 bound = "-" if row["bound"] is None else f"{100 * row['bound']:.2f}%"
                 print(f"{row['seed']:>4} {row['stage']:<9} {row['status']:<18} "
