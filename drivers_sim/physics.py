@@ -31,8 +31,6 @@ import math
 from typing import Literal, get_args
 
 import numpy as np
-import scipy.constants
-import scipy.special
 
 from autotune.driver import FIELDS
 
@@ -68,6 +66,13 @@ __all__ = [
 ]
 
 OUTCOMES: tuple[str, str, str] = ("e", "g", "i")
+
+#: Planck constant and Boltzmann constant, J s and J/K: exact by definition in the SI since
+#: 2019 (BIPM, The International System of Units, 9th edition, 2019, table 1; the same values
+#: as ``scipy.constants.h`` and ``.k``, tests/sim/test_sim_physics.py). Written here so that a
+#: rig does not import scipy.constants (about 0.3 s of its start-up) for two numbers.
+PLANCK_J_S = 6.62607015e-34
+BOLTZMANN_J_PER_K = 1.380649e-23
 
 #: Crossing steps over the window; each step is two exact SU(2) exponentials. 256 steps keep
 #: the amplitudes within 4e-7 of a converged solution over 250..900 m/s, |delta|/2pi <= 300 kHz,
@@ -177,7 +182,9 @@ class ModeProfile:
         if self.kind == "gaussian":
             return DEFAULT_HALF_WIDTH, DEFAULT_HALF_WIDTH
         if self.kind == "super_gaussian":
-            edge = float(scipy.special.gammainccinv(1.0 / self.order, _TAIL_FRACTION)) ** (
+            from scipy import special  # only a super-Gaussian mode needs it; scipy.special
+            # costs about 0.3 s of start-up to every rig that does not
+            edge = float(special.gammainccinv(1.0 / self.order, _TAIL_FRACTION)) ** (
                 1.0 / self.order)
             return edge, edge
         return DEFAULT_HALF_WIDTH * (1.0 - self.asymmetry), DEFAULT_HALF_WIDTH * (1.0 + self.asymmetry)
@@ -506,12 +513,13 @@ def thermal_photon_number(frequency_hz, temperature_k):
     Returns
     -------
     numpy.ndarray
-        Mean thermal photon number (CODATA constants from ``scipy.constants``).
+        Mean thermal photon number (the SI's exact ``h`` and ``k``, :data:`PLANCK_J_S` and
+        :data:`BOLTZMANN_J_PER_K`).
     """
     frequency_hz = np.asarray(frequency_hz, float)
     temperature_k = np.asarray(temperature_k, float)
     with np.errstate(divide="ignore", over="ignore"):
-        x = scipy.constants.h * frequency_hz / (scipy.constants.k * temperature_k)
+        x = PLANCK_J_S * frequency_hz / (BOLTZMANN_J_PER_K * temperature_k)
         return np.where(x > 700.0, 0.0, 1.0 / np.expm1(np.minimum(x, 700.0)))
 
 

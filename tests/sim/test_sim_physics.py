@@ -229,6 +229,14 @@ def test_thermal_photon_number_worked_values(frequency_hz, temperature_k, expect
     assert got == pytest.approx(1.0 / (math.exp(x) - 1.0), rel=1e-12)
 
 
+def test_the_rigs_planck_and_boltzmann_constants_are_the_si_exact_values():
+    """The rig writes h and k out (no scipy.constants import at start-up): they are the SI's
+    exact values, which scipy.constants carries (CODATA 2018 onwards)."""
+    # Source: scipy.constants; BIPM, The International System of Units, 9th ed. (2019), table 1.
+    assert physics.PLANCK_J_S == scipy.constants.h == 6.62607015e-34
+    assert physics.BOLTZMANN_J_PER_K == scipy.constants.k == 1.380649e-23
+
+
 def test_thermal_photon_number_at_zero_temperature_is_zero():
     """At 0 K the mode holds no thermal photon (and no overflow warning is raised)."""
     # Source: Bose-Einstein law, limit T -> 0 (common practice).
