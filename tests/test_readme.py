@@ -266,6 +266,12 @@ def test_every_option_the_readme_names_exists() -> None:
     for parser in commands.values():
         known |= _options(parser.format_help())
     known |= _options(_bench_help()) | _options(cli_parser._parser().format_help())
+    # The benchmark scripts the READMEs run (their own argparse --help).
+    for script in sorted((REPO / "benchmarks").glob("*.py")):
+        if "argparse" in script.read_text(encoding="utf-8"):
+            done = _run([sys.executable, str(script), "--help"], REPO, timeout=120)
+            assert done.returncode == 0, (script.name, done.stderr)
+            known |= _options(done.stdout)
     # Named by the README as removed (refused with exit 2: tests/test_cli.py checks it).
     known |= {"--interval-s", "--cycles"}
     for path in (README, BENCHMARKS):
