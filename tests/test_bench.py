@@ -86,7 +86,8 @@ def test_a_family_seed_offset_gives_development_draws_of_the_fixed_families():
     # Source: the issue's rule (never tune to a study family's draws: develop on draws it does not report).
     plan = bench.plan_for("full", scenarios=2)
     dev = dataclasses.replace(plan, family_seed_offset=7)
-    for name in ("held_out", "mismatch", "velocity_physics", "velocity_physics_held_out"):
+    for name in ("held_out", "mismatch", "velocity_physics", "velocity_physics_held_out",
+                 "zones_set_once", "zones_set_once_held_out"):
         assert bench.family_seed(plan, name) == bench.FAMILIES[name].seed
         assert bench.family_seed(dev, name) == bench.FAMILIES[name].seed + 7
     assert bench.family_seed(dev, "main") == plan.seed
@@ -158,6 +159,60 @@ def test_mismatch_draw_has_both_profiles_and_checked_rig_configs():
     errors = [s["perturbation"]["stark"]["coefficient_error"] for s in scenarios]
     assert max(abs(e) for e in errors) > 0.03  # beyond the main range (+-0.03)
     assert all(abs(e) <= 0.15 for e in errors)
+
+
+def test_zones_set_once_draws_the_velocity_physics_ranges_and_the_zones_velocity_in_the_box():
+    """The zones-set-once family and its held-out twin: the velocity-physics ranges plus
+    ramsey.power_set_velocity_m_per_s over the run config's velocity box, each from its own
+    fixed seed, distinct from every other family's."""
+    # Source: the issue's rule (a family of its own, a held-out draw with another seed) and the
+    # study's run config (configs/dry-run.toml, the velocity box 460-560 m/s).
+    from autotune.config import load_config
+
+    box = {sp.name: (sp.search_min, sp.search_max)
+           for sp in load_config(bench.DEFAULT_RUN_CONFIG).setpoints}["velocity"]
+    family, twin = bench.FAMILIES["zones_set_once"], bench.FAMILIES["zones_set_once_held_out"]
+    assert family.ranges == twin.ranges
+    assert dict(family.ranges) == {**bench.FAMILIES["velocity_physics"].ranges,
+                                   ("ramsey", "power_set_velocity_m_per_s"): box}
+    seeds = [f.seed for f in bench.FAMILIES.values() if f.seed is not None]
+    assert len(set(seeds)) == len(seeds)
+    scenarios = bench.make_scenarios(20, family.seed, family)
+    values = [s["perturbation"]["ramsey"]["power_set_velocity_m_per_s"] for s in scenarios]
+    assert all(box[0] <= v <= box[1] for v in values) and len(set(values)) == 20
+    assert ([s["perturbation"] for s in bench.make_scenarios(3, twin.seed, twin)]
+            != [s["perturbation"] for s in scenarios[:3]])
+
+
+def test_zones_set_once_reaches_the_rig_and_moves_the_truths_best():
+    """A drawn zones-set-once scenario is a valid simulated rig whose zones' power is set at
+    the drawn velocity, and its true best moves towards that velocity and falls, against the
+    same scenario with the power following the set velocity (the velocity-physics rig)."""
+    # Reference: drivers_sim.config.sim_config_from_dict (the rig's own checks) and the rig's
+    # truth through the wire protocol (bench's local_rig, as the study builds it); physics:
+    # docs/physics.md section 3 (both fringes times sin^2 theta, theta = (pi / 2) v_set / v,
+    # which peaks at v_set: the product's maximum moves towards v_set and cannot rise).
+    from autotune.bench.scenarios import local_rig, rig_data
+    from drivers_sim.config import sim_config_from_dict
+
+    rig = rig_data(bench.DEFAULT_RIG_CONFIG)
+    scenario = bench.make_scenarios(1, bench.FAMILIES["zones_set_once"].seed,
+                                    bench.FAMILIES["zones_set_once"])[0]
+    perturbation = scenario["perturbation"]
+    v_set = perturbation["ramsey"]["power_set_velocity_m_per_s"]
+    data = json.loads(json.dumps(rig["data"]))
+    for section, values in perturbation.items():
+        data[section].update(values)
+    assert sim_config_from_dict(data).ramsey.power_set_velocity_m_per_s == v_set
+    without = json.loads(json.dumps(perturbation))
+    del without["ramsey"]["power_set_velocity_m_per_s"]
+    once = local_rig(rig, perturbation, scenario["rig_seed"]).truth()["best"]
+    every = local_rig(rig, without, scenario["rig_seed"]).truth()["best"]
+    v_once, v_every = once["setpoints"]["velocity"], every["setpoints"]["velocity"]
+    assert abs(v_every - v_set) > 2.0  # the draw is not at the best already
+    assert v_once != pytest.approx(v_every, abs=0.5)
+    assert (v_once - v_every) * (v_set - v_every) > 0
+    assert once["inversion"] < every["inversion"]
 
 
 def test_main_draw_is_unchanged_by_the_families():

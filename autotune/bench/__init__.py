@@ -12,7 +12,7 @@ dask, imported only when a run uses it).
 Scenario families
 -----------------
 Scenarios are drawn by seeded random perturbation of the demo rig (``configs/sim-rig.toml``),
-never picked by hand, in three families reported separately (:data:`FAMILIES`):
+never picked by hand, in families reported separately (:data:`FAMILIES`):
 
 - ``main``: uniform over :data:`SCENARIO_RANGES` from the plan's seed;
 - ``held_out``: the same ranges from :data:`HELD_OUT_SEED`, fixed here and never used to tune;
@@ -20,7 +20,12 @@ never picked by hand, in three families reported separately (:data:`FAMILIES`):
   not assume: a non-Gaussian mode profile (super-Gaussian or asymmetric, equally likely, its
   parameter drawn from :data:`MISMATCH_PROFILES`), a hidden Stark-coefficient error up to
   +-15 % and a stray electrode field, plus the main ranges (:data:`MISMATCH_RANGES`), from
-  :data:`MISMATCH_SEED`.
+  :data:`MISMATCH_SEED`;
+- ``velocity_physics`` and its held-out twin: what makes the inversion depend on velocity and
+  what degrades the signal (Ramsey arm and detuning, velocity spread, source, temperature,
+  atoms per sample, detector), plus the main ranges;
+- ``zones_set_once`` and its held-out twin: the velocity-physics ranges plus Ramsey zones whose
+  power was set once, at a velocity drawn over the run config's velocity box.
 
 Sections of the study
 ---------------------

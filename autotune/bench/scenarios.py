@@ -1,5 +1,6 @@
-"""The scenarios: seeded random perturbations of the demo rig in three families reported apart
-(``main``, ``held_out``, ``mismatch``), never picked by hand, and the simulated rig of one."""
+"""The scenarios: seeded random perturbations of the demo rig in families reported apart
+(``main``, ``held_out``, ``mismatch``, ``velocity_physics``, ``zones_set_once`` and their held-out
+twins), never picked by hand, and the simulated rig of one."""
 
 from __future__ import annotations
 
@@ -74,6 +75,27 @@ VELOCITY_PHYSICS_RANGES: dict[tuple[str, str], tuple[float, float]] = {
 }
 
 
+#: Seeds of the zones-set-once draw and of its held-out twin (issue 18): fixed here, never used
+#: to tune.
+ZONES_SET_ONCE_SEED = 20270815
+ZONES_SET_ONCE_HELD_OUT_SEED = 20270921
+
+#: Ranges of the zones-set-once draw: the velocity-physics ranges (the dephasing along velocity
+#: and the degraded signal) plus Ramsey zones whose power was set once, by hand, to pi/2 at one
+#: velocity and left there (drivers_sim's ``[ramsey] power_set_velocity_m_per_s``; both fringes
+#: then carry sin^2 of a pulse area that scales as 1 / v, docs/physics.md section 3), a contrast
+#: along velocity that the velocity model's dephasing law does not carry. That velocity is drawn
+#: over 460-560 m/s, the velocity box of the study's run config (configs/dry-run.toml): the
+#: zones' power is set near the velocity the rig is expected to run at, and the box is where
+#: that velocity is told to lie (the 2 pi set-point of the main ranges, coupling_hz x waist_m x
+#: sqrt(pi) minus the bias, spans about 458-550 m/s at 46-52 kHz and +-15 m/s; the demo's best
+#: is 517.5). Chosen from the config and those ranges, not from any result.
+ZONES_SET_ONCE_RANGES: dict[tuple[str, str], tuple[float, float]] = {
+    **VELOCITY_PHYSICS_RANGES,
+    ("ramsey", "power_set_velocity_m_per_s"): (460.0, 560.0),
+}
+
+
 @dataclasses.dataclass(frozen=True)
 class ScenarioFamily:
     """One way of drawing scenarios.
@@ -81,7 +103,7 @@ class ScenarioFamily:
     Attributes
     ----------
     name : str
-        ``"main"``, ``"held_out"`` or ``"mismatch"``.
+        A key of :data:`FAMILIES` (``"main"``, ``"held_out"``, ``"mismatch"``, ...).
     seed : int or None
         Seed of the draw; ``None`` takes the plan's seed (the main draw).
     ranges : Mapping
@@ -114,6 +136,12 @@ FAMILIES: dict[str, ScenarioFamily] = {
     "velocity_physics_held_out": ScenarioFamily(
         "velocity_physics_held_out", VELOCITY_PHYSICS_HELD_OUT_SEED, VELOCITY_PHYSICS_RANGES,
         summary="the velocity-physics ranges, another seed (fixed, never tuned on)"),
+    "zones_set_once": ScenarioFamily(
+        "zones_set_once", ZONES_SET_ONCE_SEED, ZONES_SET_ONCE_RANGES,
+        summary="the velocity-physics ranges, Ramsey zones' power set once at 460-560 m/s"),
+    "zones_set_once_held_out": ScenarioFamily(
+        "zones_set_once_held_out", ZONES_SET_ONCE_HELD_OUT_SEED, ZONES_SET_ONCE_RANGES,
+        summary="the zones-set-once ranges, another seed (fixed, never tuned on)"),
 }
 
 
