@@ -266,6 +266,10 @@ def test_every_option_the_readme_names_exists() -> None:
     for parser in commands.values():
         known |= _options(parser.format_help())
     known |= _options(_bench_help()) | _options(cli_parser._parser().format_help())
+    # benchmarks/README.md also names the dry runs' script's own options.
+    done = _run([sys.executable, "benchmarks/dry_runs.py", "--help"], REPO, timeout=120)
+    assert done.returncode == 0, done.stderr
+    known |= _options(done.stdout)
     # Named by the README as removed (refused with exit 2: tests/test_cli.py checks it).
     known |= {"--interval-s", "--cycles"}
     for path in (README, BENCHMARKS):
