@@ -10,12 +10,11 @@ within is checked by planning again with that change alone."""
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
 import pytest
-
-import dataclasses
 
 from autotune.analysis.hold import (
     CONFIRM_WITHIN_S,

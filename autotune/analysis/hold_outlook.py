@@ -22,9 +22,9 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 from autotune.analysis.guided import LockPrior
+from autotune.analysis.hold_budget import checks_share_at
 from autotune.analysis.hold_check import reference_value
 from autotune.analysis.hold_lock import DriftLock, HoldSettings
-from autotune.analysis.hold_budget import checks_share_at
 from autotune.analysis.hold_plan import CheckPlan, plan_checks, step_delay_of
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
 
