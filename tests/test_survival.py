@@ -129,6 +129,9 @@ def _kill_and_resume(tmp_path: Path, servers: Any, command: str, spec: str,
             # The signal landed after the stage's last operation (after the verification's
             # estimate only the verdict is left to write): the run ends as it would have, and
             # its journal must be whole and account for every shot, with nothing to resume.
+            # Only a stage's verification can be that late: a night (hours of rig time) or an
+            # earlier record that ends with 0 did not act on the signal.
+            assert command != "track" and "verify" in spec, (command, spec, err[-3000:])
             assert last.get("type") == "end", last
             assert "Continue with: " not in err
             _check_shots(server.endpoint, _journals(tmp_path / "first") + _journals(run))

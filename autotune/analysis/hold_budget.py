@@ -29,6 +29,7 @@ __all__ = [
     "least_check_s",
     "checks_reserve_s",
     "checks_share",
+    "checks_share_at",
     "expected_stage_beam_s",
     "plan_night",
     "unwatched_until",
@@ -152,6 +153,17 @@ def checks_share(settings: HoldSettings, budget: BeamBudget, *, recovery_beam_s:
             "recoveries_per_h": rate * 3600.0,
             "recovery_beam_s": recovery_beam_s, "holding_beam_s": budget.spent_s,
             "left_s": budget.left_s, "ceiling_s": budget.ceiling_s}
+
+
+def checks_share_at(share: Mapping[str, float], fraction_now: float, fraction: float) -> float:
+    """The checks' share :func:`checks_share` would have given, at the same moment of the same
+    night, with ``budget_fraction`` ``fraction`` in place of ``fraction_now`` (``share`` its
+    numbers at ``fraction_now``): the ceiling scales with the fraction, the beam already spent
+    does not, so a night whose share is what is left of the ceiling needs less than the share's
+    own ratio suggests."""
+    ceiling = float(share["ceiling_s"]) * float(fraction) / float(fraction_now)
+    left = max(ceiling - float(share["holding_beam_s"]), 0.0)
+    return min(_CHECK_SHARE * float(fraction), left / float(share["remaining_s"]))
 
 
 def expected_stage_beam_s(prior_s: float, spent: Sequence[float]) -> float:

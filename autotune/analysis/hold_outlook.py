@@ -6,8 +6,9 @@ accepts without saying so, and what would bring it within.
 made from the calibration's measured atoms, contrasts and phase noise within the checks' share of
 the budget) and, when its expected time to confirm a ``step_hz`` step exceeds ``within_s``,
 plans again with one thing changed at a time to find what would confirm it within: the least
-``budget_fraction``, the least factor on the detected atoms per shot (detection efficiency,
-atoms per sample), and the least step size the night as configured confirms within ``within_s``.
+``budget_fraction`` (the share the night's rule gives at it, the beam spent so far kept) and the
+least factor on the detected atoms per shot (detection efficiency, atoms per sample); and, from
+the plan's own checks, the least step size the night as configured confirms within ``within_s``.
 The night journals it as a decision, warns in one line, and keeps it in its result; it still
 runs (a lab may accept a slower night). :mod:`autotune.analysis.hold` describes the whole.
 """
@@ -21,9 +22,10 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 from autotune.analysis.guided import LockPrior
+from autotune.analysis.hold_budget import checks_share_at
 from autotune.analysis.hold_check import reference_value
 from autotune.analysis.hold_lock import DriftLock, HoldSettings
-from autotune.analysis.hold_plan import CheckPlan, plan_checks
+from autotune.analysis.hold_plan import CheckPlan, plan_checks, step_delay_of
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
 
 __all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "step_outlook", "night_outlook", "outlook_due"]
@@ -208,14 +210,20 @@ def step_outlook(settings: HoldSettings, *, plan: CheckPlan, noise: NoiseModel,
                  signal: SignalModel | None, prior: LockPrior, lock: DriftLock,
                  reference_inversion: float, reference_stderr: float, check_share: float,
                  step_rate_per_s: float, step_hz: float = 15e3,
-                 within_s: float = CONFIRM_WITHIN_S) -> StepOutlook:
+                 within_s: float = CONFIRM_WITHIN_S,
+                 share_at: Callable[[float], float] | None = None) -> StepOutlook:
     """The outlook of ``plan`` (made by :func:`plan_checks` from the same inputs), and when it
     confirms a ``step_hz`` step later than ``within_s`` in the mean, what would bring it
-    within, each alone, by planning again: ``check_share`` (half the budget) times a factor up
-    to ``1 / budget_fraction`` (the whole beam), the measured signal's detected atoms per shot
-    times a factor (the noise's variances per shot divided by it), and the step from
-    ``step_hz`` to the lock's capture range."""
-    def delay(*, share: float = check_share, atoms: float = 1.0, step: float = step_hz) -> float:
+    within, each alone: by planning again, a ``budget_fraction`` up to 1 (the checks' share
+    at it is ``share_at(fraction)``, :func:`autotune.analysis.hold_budget.checks_share_at`;
+    without it, ``check_share`` scaled with the fraction, a share that is half the budget) and
+    the measured signal's detected atoms per shot times a factor (the noise's variances per
+    shot divided by it); and, from ``plan`` itself (:func:`step_delay_of`: the night as
+    configured, its checks planned for ``step_hz``), the least step up to the lock's capture
+    range that its checks confirm within."""
+    def delay(*, share: float = check_share, atoms: float = 1.0) -> float:
+        if share <= 0.0:
+            return math.inf
         scaled_noise = NoiseModel(noise.phase_variance_shots / atoms,
                                   noise.inversion_variance_shots / atoms, noise.measurements)
         scaled_signal = None if signal is None else dataclasses.replace(
@@ -224,23 +232,26 @@ def step_outlook(settings: HoldSettings, *, plan: CheckPlan, noise: NoiseModel,
         again = plan_checks(settings, noise=scaled_noise, prior=prior, lock=lock,
                             reference_inversion=reference_inversion,
                             reference_stderr=reference_stderr, check_share=min(share, 1.0),
-                            step_hz=step, signal=scaled_signal, step_rate_per_s=step_rate_per_s)
+                            step_hz=step_hz, signal=scaled_signal,
+                            step_rate_per_s=step_rate_per_s)
         return again.step_delay_s
 
     met = plan.step_delay_s <= within_s
     budget_needed = atoms_needed = step_confirmed = None
     if not met:
         fraction = float(settings.budget_fraction)
-        most = 1.0 / fraction
+        at = share_at if share_at is not None else (
+            lambda budget_fraction: check_share * budget_fraction / fraction)
         # The time to confirm goes about as the interval, which goes as one over the share
         # and, the check's size set by the noise, as one over the detected atoms: first guesses.
         guess = plan.step_delay_s / within_s if math.isfinite(plan.step_delay_s) else None
-        factor = _least(lambda f: delay(share=check_share * f) <= within_s, 1.0, most, guess)
-        budget_needed = None if factor is None else fraction * factor
+        budget_needed = _least(lambda f: delay(share=at(f)) <= within_s, fraction, 1.0,
+                               None if guess is None else fraction * guess)
         atoms_needed = _least(lambda a: delay(atoms=a) <= within_s, 1.0, _MOST_ATOMS_FACTOR,
                               guess)
         capture_hz = settings.lock.capture_phase_error_rad / abs(prior.slope_rad_per_hz)
-        step_confirmed = _least(lambda s: delay(step=s) <= within_s, step_hz, capture_hz)
+        step_confirmed = _least(lambda s: step_delay_of(plan, s) <= within_s, step_hz,
+                                capture_hz)
     per_shot = None if signal is None else (
         0.5 * (signal.detected_per_shot_empty + signal.detected_per_shot_one_photon))
     return StepOutlook(
@@ -263,7 +274,9 @@ def night_outlook(settings: HoldSettings, *, plan: CheckPlan, share: Mapping[str
                   reference: Mapping[str, float], step_hz: float = 15e3,
                   within_s: float = CONFIRM_WITHIN_S) -> StepOutlook:
     """:func:`step_outlook` of a plan made by :func:`autotune.analysis.hold_budget.plan_night`
-    (``share`` its numbers) from the same noise ``rows``, lock and reference."""
+    (``share`` its numbers) from the same noise ``rows``, lock and reference; the budget
+    fraction that would do is searched with the share the night's rule gives at it
+    (:func:`autotune.analysis.hold_budget.checks_share_at`: the beam spent so far stays)."""
     inversion, stderr = reference_value(reference)
     return step_outlook(settings, plan=plan,
                         noise=NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in rows]),
@@ -271,7 +284,9 @@ def night_outlook(settings: HoldSettings, *, plan: CheckPlan, share: Mapping[str
                         reference_inversion=inversion, reference_stderr=stderr,
                         check_share=share["share"],
                         step_rate_per_s=share["recoveries_per_h"] / 3600.0, step_hz=step_hz,
-                        within_s=within_s)
+                        within_s=within_s,
+                        share_at=lambda fraction: checks_share_at(
+                            share, settings.budget_fraction, fraction))
 
 
 def outlook_due(latest: Mapping[str, Any] | None, plan: CheckPlan,

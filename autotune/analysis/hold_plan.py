@@ -47,6 +47,7 @@ __all__ = [
     "flag_probability",
     "readable_z",
     "plan_checks",
+    "step_delay_of",
     "recheck_run_limit",
     "next_check",
 ]
@@ -276,6 +277,19 @@ def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
     run_length = max(1.0, cusum_arl(shift_sd, reference, threshold))
     first = 1.0 if late else 0.5
     return interval_s * (first + (1.0 - flag) / flag) + run_length * check_s
+
+
+def step_delay_of(plan: CheckPlan, step_hz: float, *, late: bool = False) -> float:
+    """Expected rig time ``plan``'s checks, as planned (cadence, size, test), take to confirm a
+    shift of ``step_hz`` (s; inf when they cannot): :func:`_delay` of the shift over the
+    plan's innovation deviation, the same number as ``plan.step_delay_s`` (``late``:
+    ``step_delay_late_s``) for the step it was planned for."""
+    test = plan.test
+    shift_sd = abs(float(step_hz)) / float(plan.inputs["innovation_sd_hz"])
+    flag = flag_probability(shift_sd, test.reference, test.threshold, test.warning) \
+        if shift_sd > test.reference else 0.0
+    return _delay(shift_sd, test.reference, test.threshold, test.warning, plan.interval_s,
+                  plan.check_s, late=late, flag=flag)
 
 
 def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase_var: float,
