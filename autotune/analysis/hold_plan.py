@@ -439,10 +439,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     confirm a step (the smallest tracking error alone left the checks 20-27 min apart on poor
     signals, and the steps as long unconfirmed). When no candidate affords a readable check,
     the checks are made large enough to tell a step from noise and spaced further
-    apart until they fit the share (fewer but larger checks), never beyond ``max_interval_s``:
-    there they are as large as the share pays for, and never smaller than the lock reads
-    (a poor signal's checks may then take more than the share; the ceiling of the budget is
-    kept as the night goes, every check paid for before it starts).
+    apart until they fit the share (fewer but larger checks).
     """
     if not (0.0 < check_share <= 1.0):
         raise ValueRefused(f"check_share: expected a number in (0, 1], got {check_share!r}")
@@ -605,31 +602,17 @@ def _larger_checks(settings: HoldSettings, *, check_share: float, least: int,
                    common: Mapping[str, Any]) -> tuple[dict[str, Any], str]:
     """Fewer but larger checks: the least size that reads the phase and tells the design shift
     from the noise of one check (twice the bare need: the filter's own uncertainty adds to the
-    innovation), spaced to fit the share, but never more than ``max_interval_s`` apart (the
-    configured limit): at that interval the check is as large as the share pays for, and never
-    smaller than ``least`` (what the lock reads), which may take more than the share. The row
-    and why."""
+    innovation), spaced to fit the share; the row and why."""
     phases = settings.ramsey_phases
-    one = measurement_shots(phases, 1)
-    rate = settings.repetition_rate_hz
-    top = max(settings.max_interval_s, _MIN_INTERVAL_S)
     tell = common["phase_var"] / (common["slope"] * common["design"] / _MIN_DESIGN_SNR) ** 2 * 2.0
-    per_phase = min(max(least, int(math.ceil(tell / one))), settings.max_shots_per_phase)
-    interval = measurement_shots(phases, per_phase) / rate / check_share
-    if interval > top:
-        affordable = math.floor(check_share * top * rate / one)
-        per_phase = min(per_phase, max(least, affordable))
-        interval = top
-    row = _check_row(settings, interval=interval, per_phase=per_phase,
+    per_phase = min(max(least, int(math.ceil(tell / measurement_shots(phases, 1)))),
+                    settings.max_shots_per_phase)
+    check_s = measurement_shots(phases, per_phase) / settings.repetition_rate_hz
+    row = _check_row(settings, interval=check_s / check_share, per_phase=per_phase,
                      warning_fraction=_WARNING_FRACTIONS[-1], **common)
     why = (f"no interval up to {settings.max_interval_s:g} s affords, within the share, a check "
            f"of {least} shots per phase that the lock reads and that tells the design shift "
            f"from noise: fewer but larger checks")
-    if interval >= top:
-        why += (f", at the longest interval ({settings.max_interval_s:g} s), "
-                + ("the least the lock reads, more than the share pays for"
-                   if per_phase > math.floor(check_share * top * rate / one) else
-                   "as large as the share pays for there"))
     return row, why
 
 
