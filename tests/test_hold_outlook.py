@@ -230,3 +230,14 @@ def test_a_later_plan_tells_the_outlook_again_only_when_it_crosses_the_line():
     assert not outlook_due({"met": True}, fast) and not outlook_due({"met": True}, at_line)
     assert outlook_due({"met": True}, slow) and outlook_due({"met": True}, never)
     assert outlook_due({"met": False}, fast) and not outlook_due({"met": False}, never)
+
+
+def test_a_time_just_over_the_line_is_not_printed_as_the_line():
+    """15.3 min against 15 must not read "15 min > 15" (the review found it at 900-930 s)."""
+    import dataclasses
+
+    outlook, _, _ = _outlook(0.11)
+    over = dataclasses.replace(outlook, confirm_s=918.0, met=False)
+    assert "confirmed in 15.3 min > 15" in over.warning
+    later = dataclasses.replace(outlook, confirm_s=1260.0, met=False)
+    assert "confirmed in 21 min > 15" in later.warning

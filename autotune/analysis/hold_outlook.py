@@ -132,7 +132,8 @@ class StepOutlook:
             options.append(f"steps >= {math.ceil(self.step_hz_confirmed / 100.0) / 10:.1f} kHz")
         step, within = f"{self.step_hz / 1e3:.0f} kHz step", f"{self.within_s / 60:.0f}"
         head = (f"{step} never confirmed; within {within}: " if not math.isfinite(self.confirm_s)
-                else f"{step} confirmed in {self.confirm_s / 60:.0f} min > {within}; within: ")
+                else f"{step} confirmed in {_over(self.confirm_s, self.within_s)} min > {within}; "
+                     "within: ")
         if not options:
             return head + "no budget_fraction, atoms/shot or step size in reach"
         return head + (", ".join(options[:-1]) + " or " if len(options) > 1 else "") + \
@@ -176,6 +177,13 @@ class StepOutlook:
             parts.append(f"{' and '.join(missing)} would")
         return (f"{head}, over the {self.within_s / 60:.0f} min a night accepts: "
                 f"{'; '.join(parts + [step])}; the night runs as configured")
+
+
+def _over(seconds: float, within_s: float) -> str:
+    """Minutes over the line, to a tenth when whole minutes would print the line itself
+    ("16 min > 15", but "15.3 min > 15")."""
+    whole = f"{seconds / 60:.0f}"
+    return f"{seconds / 60:.1f}" if float(whole) <= within_s / 60 else whole
 
 
 def _minutes(seconds: float) -> str:

@@ -153,7 +153,8 @@ def _track_summary(result: dict[str, Any]) -> str:
     if first.get("warning"):
         text += f"; warned before its first check: {first['warning']}"
     if last.get("later") and last.get("warning"):
-        text += f"; warned at its last plan that crossed 15 min: {last['warning']}"
+        text += (f"; warned at its last plan that crossed {last['within_s'] / 60:.0f} min: "
+                 f"{last['warning']}")
     if "inversion" in result:
         low, high = result["inversion_interval"]
         text += (f"; last measurement: inversion {result['inversion']:.3f} [{low:.3f}, "
