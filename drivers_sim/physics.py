@@ -27,7 +27,6 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
-
 from typing import Literal, get_args
 
 import numpy as np
@@ -35,34 +34,34 @@ import numpy as np
 from autotune.driver import FIELDS
 
 __all__ = [
-    "OUTCOMES",
-    "FIELDS",
     "DEFAULT_CROSSING_STEPS",
     "DEFAULT_HALF_WIDTH",
+    "FIELDS",
+    "GAUSSIAN_MODE",
     "MODE_PROFILES",
-    "ModeProfileKind",
+    "OUTCOMES",
     "SUPER_GAUSSIAN_ORDER_RANGE",
     "WAIST_ASYMMETRY_RANGE",
-    "ModeProfile",
-    "GAUSSIAN_MODE",
     "AtomCavityModel",
-    "two_level_evolution",
-    "crossing_amplitudes",
-    "pulse_area",
-    "two_pi_velocity",
-    "ramsey_rotation",
-    "ramsey_phase_offset",
-    "zone_area",
-    "velocity_nodes",
-    "thermal_photon_number",
-    "thermal_distribution",
-    "one_photon_distribution",
+    "ModeProfile",
+    "ModeProfileKind",
     "confusion_matrix",
-    "outcome_coefficients",
+    "crossing_amplitudes",
     "detected_coefficients",
     "fringe_figures",
-    "stark_field_for_detuning",
+    "one_photon_distribution",
+    "outcome_coefficients",
+    "pulse_area",
+    "ramsey_phase_offset",
+    "ramsey_rotation",
     "stark_detuning",
+    "stark_field_for_detuning",
+    "thermal_distribution",
+    "thermal_photon_number",
+    "two_level_evolution",
+    "two_pi_velocity",
+    "velocity_nodes",
+    "zone_area",
 ]
 
 OUTCOMES: tuple[str, str, str] = ("e", "g", "i")
@@ -182,7 +181,9 @@ class ModeProfile:
         if self.kind == "gaussian":
             return DEFAULT_HALF_WIDTH, DEFAULT_HALF_WIDTH
         if self.kind == "super_gaussian":
-            from scipy import special  # only a super-Gaussian mode needs it; scipy.special
+            from scipy import (
+                special,  # only a super-Gaussian mode needs it; scipy.special
+            )
             # costs about 0.3 s of start-up to every rig that does not
             edge = float(special.gammainccinv(1.0 / self.order, _TAIL_FRACTION)) ** (
                 1.0 / self.order)

@@ -15,6 +15,7 @@ import math
 
 import numpy as np
 import pytest
+from hold_helpers import demo_prior, hold_settings
 
 from autotune.analysis.hold import (
     CONFIRM_WITHIN_S,
@@ -32,7 +33,6 @@ from autotune.analysis.hold import (
 )
 from autotune.analysis.hold_budget import checks_share_at
 from autotune.analysis.hold_plan import step_delay_of
-from hold_helpers import demo_prior, hold_settings
 
 STEP_HZ = 15e3
 SHARE = 0.025  # half the default 5 % budget

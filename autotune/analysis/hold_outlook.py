@@ -28,7 +28,7 @@ from autotune.analysis.hold_lock import DriftLock, HoldSettings
 from autotune.analysis.hold_plan import CheckPlan, plan_checks, step_delay_of
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
 
-__all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "step_outlook", "night_outlook", "outlook_due"]
+__all__ = ["CONFIRM_WITHIN_S", "StepOutlook", "night_outlook", "outlook_due", "step_outlook"]
 
 #: Longest expected rig time from a thermal step to its confirmation (the alarm) that a night
 #: accepts without a warning (s): the night's worst recovery from a step that the night study
