@@ -64,9 +64,9 @@ HOW = {
                                                   "30 minutes on 2 cores"),
     "python3 -m autotune.bench --night": ("help", "the night study takes minutes on 2 cores"),
     "python3 -m autotune.bench --night --night-families main,held_out,mismatch,velocity_physics,"
-    "velocity_physics_held_out --scenarios 2 --workers 2 --no-schedules "
-    "--out benchmarks/results/night.json": ("help", "the small night study of issue 22, tens of "
-                                            "minutes"),
+    "velocity_physics_held_out,zones_set_once,zones_set_once_held_out --scenarios 2 --workers 2 "
+    "--no-schedules --out benchmarks/results/night.json": ("help", "the small night study of "
+                                                           "issue 22, minutes"),
     "python3 -m autotune.bench --show benchmarks/results/latest.json":
         ("run in the repository", "its path is relative to the repository"),
     "python -m autotune.bench --tiny --calibration-only --strategies phase_lock --families "
