@@ -578,11 +578,8 @@ class Night:
     def _outlook(self, latest: bool = False) -> Mapping[str, Any] | None:
         """The numbers of the night's first ``step_outlook`` decision (its last with
         ``latest``), None before its first plan."""
-        records = reversed(self.ledger.records) if latest else iter(self.ledger.records)
-        for rec in records:
-            if rec.get("type") == "decision" and rec.get("what") == "step_outlook":
-                return rec.get("outlook")
-        return None
+        told = decisions(parse_all(self.ledger.records), "step_outlook")
+        return told[-1 if latest else 0].get("outlook") if told else None
 
     def _tell_outlook(self, plan: CheckPlan, budget: Mapping[str, float], *,
                       later: bool = False) -> None:
