@@ -91,7 +91,7 @@ def summarise_night(runs: Sequence[Mapping[str, Any]], plan: StudyPlan,
                 # Nights whose outlook warned before the first check (the time to confirm a
                 # step over hold_outlook.CONFIRM_WITHIN_S): scenario, minutes, the warning.
                 "warned": [{"scenario": r["scenario"],
-                            "confirm_s": (r.get("step_outlook") or {}).get("confirm_s"),
+                            "confirm_s": r["step_outlook"].get("confirm_s"),
                             "warning": r["step_outlook"]["warning"]}
                            for r in done if (r.get("step_outlook") or {}).get("warning")],
                 # Nights whose last outlook, told at a later plan, warned: the checks slowed

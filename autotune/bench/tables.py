@@ -76,12 +76,10 @@ def _format_night(night: Mapping[str, Any]) -> list[str]:
                 f"{t['over_budget']} of {t['nights']}; recovery worst "
                 f"{_minutes_text(t['recovery_s_max'])}")
         for label, row in night["summary"][family].items():
-            for warned in row.get("warned") or []:
-                lines.append(f"    warned before the first check: {label}, scenario "
-                             f"{warned['scenario']}: {warned['warning']}")
-            for warned in row.get("warned_later") or []:
-                lines.append(f"    warned at a later plan: {label}, scenario "
-                             f"{warned['scenario']}: {warned['warning']}")
+            for key, when in (("warned", "before the first check"),
+                              ("warned_later", "at a later plan")):
+                lines.extend(f"    warned {when}: {label}, scenario {warned['scenario']}: "
+                             f"{warned['warning']}" for warned in row.get(key) or [])
         lines.extend(nights_not_run(night.get("runs") or [], family))
         lines.append(header)
         for label, row in night["summary"][family].items():
