@@ -585,13 +585,15 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
                         f"{self.settings.target_shortfall:.1%}; lock moves the detuning by "
                         f"{(detuning - last.detuning) / 1e3:+.2f} kHz to {detuning / 1e3:+.2f} kHz")
 
-    def moved_recommendation(self, chosen: Mapping[str, float], *, acceptance_bar: float,
-                             max_moves: int, clock_s: float | None = None) -> str | None:
+    def moved_recommendation(self, chosen: Mapping[str, float], short: Shortfall, *,
+                             acceptance_bar: float, max_moves: int,
+                             clock_s: float | None = None) -> str | None:
         """Why to verify the lock's recommendation in place of a verified choice, or None.
 
         A verification is data: told to the lock, it moves the posterior, and with it the
-        recommendation. When the verified choice's bound (every result told) misses
-        ``acceptance_bar`` while the lock has converged at a recommendation elsewhere (its
+        recommendation. When the verified choice's bound ``short`` (:meth:`shortfall` at
+        ``chosen``, every result told; the caller has it) misses ``acceptance_bar`` while the
+        lock has converged at a recommendation elsewhere (its
         stop bound there within ``target_shortfall``), the stage should judge the point the lock
         now recommends rather than the one it recommended before the verification. At most
         ``max_moves`` such moves after a search step: the verified set-points since the last
@@ -608,7 +610,6 @@ class PhaseLockSearch(PhaseSignal, AbsorptionSignal, ShortfallBound, ProposalCho
             verified.add((o.velocity, o.detuning))
         if len(verified) > max_moves:
             return None
-        short = self.shortfall(clock_s=None, point=chosen)
         if short.upper <= acceptance_bar or not self.converged(clock_s=clock):
             return None
         rec = self.recommend(clock_s=clock).point

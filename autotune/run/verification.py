@@ -9,7 +9,6 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-
 from autotune.config import RunConfig
 from autotune.analysis.fringe import FringeData, InversionEstimate, estimate_inversion
 from autotune.wire.rig import FIELDS, measurement_shots
@@ -92,10 +91,11 @@ def search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sessi
     It goes on when the verified choice's bound (every result told) misses the acceptance bar
     while more points could lower it: the lock and the velocity model were established, the
     velocity optimum is not beyond the box, and the point, shot and rig-time budgets leave
-    room for another step. When the lock has converged elsewhere (the verification, told, moved its
-    recommendation), it goes on to verify that recommendation, at most ``[lock] max_corrections``
-    times after a search step (:meth:`PhaseLockSearch.moved_recommendation`). Otherwise the stage is judged as it stands (also when the verified
-    inversion is below ``[acceptance] min_inversion``: that says the rig, not the search).
+    room for another step. When the lock has converged elsewhere (the verification, told,
+    moved its recommendation), it goes on to verify that recommendation, at most ``[lock]
+    max_corrections`` times after a search step (:meth:`PhaseLockSearch.moved_recommendation`).
+    Otherwise the stage is judged as it stands (also when the verified inversion is below
+    ``[acceptance] min_inversion``: that says the rig, not the search).
     """
     chosen, estimate = final
     bar = acceptance_bar(config)
@@ -112,15 +112,14 @@ def search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sessi
     if lock.hopeless(clock_s=session.clock, points_left=budget.max_points - searched,
                      acceptance_bar=bar) is not None:
         return None
+    out_of_time = session.tally.rig_time_s >= budget.max_rig_time_s
     if lock.converged(clock_s=session.clock):
         # No search step is wanted; but the verification may have moved the lock's
         # recommendation away from the verified choice: then that is verified in its place.
-        if session.tally.rig_time_s >= budget.max_rig_time_s:
-            return None
-        return lock.moved_recommendation(chosen, acceptance_bar=bar,
-                                         max_moves=config.lock.max_corrections,
-                                         clock_s=session.clock)
-    if searched >= budget.max_points or session.tally.rig_time_s >= budget.max_rig_time_s:
+        return None if out_of_time else lock.moved_recommendation(
+            chosen, short, acceptance_bar=bar, max_moves=config.lock.max_corrections,
+            clock_s=session.clock)
+    if searched >= budget.max_points or out_of_time:
         return None
     proposal = lock.propose(clock_s=session.clock)
     shots = proposal.shots_per_phase or config.measurement.shots_per_phase
