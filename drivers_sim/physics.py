@@ -181,10 +181,9 @@ class ModeProfile:
         if self.kind == "gaussian":
             return DEFAULT_HALF_WIDTH, DEFAULT_HALF_WIDTH
         if self.kind == "super_gaussian":
-            from scipy import (
-                special,  # only a super-Gaussian mode needs it; scipy.special
-            )
-            # costs about 0.3 s of start-up to every rig that does not
+            # Only a super-Gaussian mode needs scipy.special: imported here, it costs the
+            # other rigs nothing at start-up (about 0.3 s).
+            from scipy import special
             edge = float(special.gammainccinv(1.0 / self.order, _TAIL_FRACTION)) ** (
                 1.0 / self.order)
             return edge, edge
