@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -26,6 +27,7 @@ from autotune.analysis.hold import (
     StepOutlook,
     checks_share,
     night_outlook,
+    outlook_due,
     plan_checks,
     plan_night,
     reference_add,
@@ -218,10 +220,6 @@ def test_a_later_plan_tells_the_outlook_again_only_when_it_crosses_the_line():
     """hold_outlook.outlook_due: the first plan always; a later one only when its expected time
     to confirm a step has crossed CONFIRM_WITHIN_S either way since the last outlook told.
     The line is the night study's worst recovery target (issue 22: 15 min), less the retune."""
-    from types import SimpleNamespace
-
-    from autotune.analysis.hold_outlook import CONFIRM_WITHIN_S, outlook_due
-
     fast = SimpleNamespace(step_delay_s=0.5 * CONFIRM_WITHIN_S)
     slow = SimpleNamespace(step_delay_s=2.0 * CONFIRM_WITHIN_S)
     never = SimpleNamespace(step_delay_s=float("inf"))
@@ -234,8 +232,6 @@ def test_a_later_plan_tells_the_outlook_again_only_when_it_crosses_the_line():
 
 def test_a_time_just_over_the_line_is_not_printed_as_the_line():
     """15.3 min against 15 must not read "15 min > 15" (the review found it at 900-930 s)."""
-    import dataclasses
-
     outlook, _, _ = _outlook(0.11)
     over = dataclasses.replace(outlook, confirm_s=918.0, met=False)
     assert "confirmed in 15.3 min > 15" in over.warning
