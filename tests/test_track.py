@@ -15,6 +15,7 @@ import json
 import math
 import shutil
 import threading
+import tomllib
 from datetime import datetime
 from typing import Any
 
@@ -29,7 +30,7 @@ from autotune.errors import ConfigErrors, Interrupted, JournalError
 from autotune.run.journal import JOURNAL_NAME, RESULT_NAME, read_journal, read_json
 from autotune.progress import NightProgress, StageProgress
 from autotune.kit.server import LocalRig
-from drivers_sim.config import load_sim_config
+from drivers_sim.config import load_sim_config, sim_config_from_dict
 from drivers_sim.driver import SimulatedDriver
 from drivers_sim.rig import SimulatedRig
 from journal_checks import check_invariants, journal_shots
@@ -525,6 +526,83 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
     result = track.track(paced, config, tmp_path / "night", resume=True, store=store)
     assert result["status"] == "ended" and result["checks"] > len(holds)
     check_invariants(read_journal(tmp_path / "night" / JOURNAL_NAME))
+
+
+def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_resumes_quietly(
+        tmp_path):
+    """A rig with 0.08 atoms per sample (about 0.04 detected per shot) over a 2.5 h night at
+    the default 5 %: the first plan confirms a 15 kHz step within 15 min (an info outlook);
+    a thermal step's retune eats into the budget, the later plans' checks come less often,
+    and the plan that crosses the 15 min line tells the outlook again, hours into the night,
+    as a warning with its numbers (the same numbers as that plan's). result.json keeps the
+    first (``step_outlook``) and the last (``last_step_outlook``). A night cut just after
+    that later outlook resumes without telling it again (it is on the same side of the line)."""
+    data = tomllib.loads(SIM.read_text())
+    data["rig"]["atoms_per_sample"] = 0.08
+    data["drift"]["random_walk_hz_per_sqrt_s"] = 0.0
+    rig = LocalRig(SimulatedDriver(SimulatedRig(sim_config_from_dict(data), 5)))
+    config = dataclasses.replace(night_config(hours=2.5), min_inversion=0.3)
+    store = tmp_path / "good.json"
+    runner.calibrate(rig, config, tmp_path / "calibrate", store=store)
+    shutil.copy(store, tmp_path / "good-start.json")
+    start = rig.sim.clock
+    watched = bench_night_rig._NightRig(rig, [(start + 1800.0, 15e3), (start + 5400.0, -15e3)],
+                                        60.0)
+    result = track.track(watched, config, tmp_path / "night", store=store)
+    records = read_journal(tmp_path / "night" / JOURNAL_NAME)
+    check_invariants(records)
+    assert result["status"] == "ended"
+    told = [i for i, r in enumerate(records)
+            if r["type"] == "decision" and r["what"] == "step_outlook"]
+    first, last = records[told[0]]["outlook"], records[told[-1]]["outlook"]
+    first_hold = next(i for i, r in enumerate(records) if r["type"] == "hold")
+    assert told[0] < first_hold and first["met"] is True and first["later"] is False
+    assert len(told) >= 2, "no later plan crossed the line"
+    # Told again only where the plan's side of the line changed (hold_outlook.outlook_due).
+    sides = [records[i]["outlook"]["met"] for i in told]
+    assert all(a != b for a, b in zip(sides, sides[1:])), sides
+    later = records[told[1]]
+    numbers = later["outlook"]
+    assert numbers["later"] is True and numbers["met"] is False
+    assert numbers["confirm_s"] > numbers["within_s"] == 900.0
+    assert numbers["check_share"] < first["check_share"]
+    assert later["reason"] == f"{later['reason'].split(' h into')[0]} h into the night, " \
+        + numbers["warning"]
+    assert float(later["reason"].split(" h into")[0]) > 0.5
+    assert "the night runs as configured" in later["detail"]
+    # The plan it was told for is the next decision, with the same numbers.
+    plan = next(r for r in records[told[1]:] if r["type"] == "decision" and r["what"] == "plan")
+    assert plan["plan"]["step_delay_s"] == numbers["confirm_s"]
+    assert plan["plan"]["interval_s"] == numbers["interval_s"]
+    assert plan["plan"]["shots_per_phase"] == numbers["shots_per_phase"]
+    assert result["step_outlook"] == first and result["last_step_outlook"] == last
+    # Cut after the later outlook (whole line, then with half of the next): resumed, the night
+    # plans again on the same side of the line and tells nothing new before that plan.
+    for partial in (False, True):
+        run = tmp_path / f"cut-{int(partial)}"
+        shutil.copytree(tmp_path / "night", run)
+        lines = (tmp_path / "night" / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+        data_cut = b"".join(lines[: told[1] + 1])
+        if partial:
+            data_cut += lines[told[1] + 1][: len(lines[told[1] + 1]) // 2]
+        (run / JOURNAL_NAME).write_bytes(data_cut)
+        (run / RESULT_NAME).unlink()
+        again = tmp_path / f"good-{int(partial)}.json"
+        shutil.copy(tmp_path / "good-start.json", again)
+        # A rig of the same kind whose clock stands where the cut left the night (the first
+        # rig's has run to the night's end, which would end the resumed night at once).
+        fresh = LocalRig(SimulatedDriver(SimulatedRig(sim_config_from_dict(data), 6)))
+        fresh.advance(max(r["t_end"] for r in records[: told[1] + 1] if "t_end" in r))
+        resumed = track.track(fresh, config, run, resume=True, store=again)
+        after = read_journal(run / JOURNAL_NAME)
+        check_invariants(after)
+        assert after[: told[1] + 1] == records[: told[1] + 1]
+        replan = next(i for i, r in enumerate(after) if i > told[1]
+                      and r["type"] == "decision" and r["what"] == "plan")
+        assert not [r for r in after[told[1] + 1:replan]
+                    if r["type"] == "decision" and r["what"] == "step_outlook"]
+        assert resumed["status"] == "ended"
+        assert resumed["step_outlook"] == first
 
 
 def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budget_records(
