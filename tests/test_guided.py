@@ -775,10 +775,3 @@ def test_a_bound_within_the_bar_stops_when_the_target_is_out_of_reach_of_the_bud
     assert "out of reach" in lock.hopeless(clock_s=rig.clock, points_left=0)
     assert lock.hopeless(clock_s=rig.clock, points_left=10**6) is None
     assert lock.hopeless(clock_s=rig.clock, points_left=0, acceptance_bar=0.5 * within) is None
-    # The shots spent so far as the calibration's horizon: with none spent the margin below the
-    # bar is not bought; with more than any point could cost it is.
-    reason = lock.hopeless(clock_s=rig.clock, points_left=10**6, shots_spent=0)
-    assert reason is not None and "within the shots spent so far" in reason and "1.0%" in reason
-    assert lock.hopeless(clock_s=rig.clock, points_left=10**6, shots_spent=10**15) is None
-    assert lock.hopeless(clock_s=rig.clock, points_left=10**6, shots_spent=0,
-                         acceptance_bar=0.5 * within) is None

@@ -225,12 +225,11 @@ def _best(search: PhaseLockSearch, velocity: float, clock: float | None
     return now, best
 
 
-def expected_fall(search: PhaseLockSearch, velocity: float, clock: float | None) -> tuple[float, float, int]:
-    """The bound now, the bound expected after the point :func:`best_proposal` would choose
-    (what this stage's points can lower, without a retune's inherited velocity term) and that
-    point's shots (every phase and field)."""
+def expected_fall(search: PhaseLockSearch, velocity: float, clock: float | None) -> tuple[float, float]:
+    """The bound now and the bound expected after the point :func:`best_proposal` would choose
+    (what this stage's points can lower, without a retune's inherited velocity term)."""
     now, best = _best(search, velocity, clock)
-    return now.upper, best[5].upper, search._total_shots(best[4])
+    return now.upper, best[5].upper
 
 
 def best_proposal(search: PhaseLockSearch, velocity: float, clock: float | None) -> Proposal:

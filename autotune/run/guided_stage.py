@@ -371,8 +371,7 @@ class _GuidedStage(StageRun):
         bound = bound_text(shortfall)
         hopeless = lock.hopeless(clock_s=now, points_left=budget.max_points - searched,
                                  acceptance_bar=acceptance_bar(config),
-                                 min_inversion=config.min_inversion,
-                                 shots_spent=session.tally.shots) if searched else None
+                                 min_inversion=config.min_inversion) if searched else None
         if searched and lock.converged(clock_s=now):
             # The one format of a shortfall, as the lock's verdicts print it.
             stop_reason = f"{bound} below the target {config.lock.target_shortfall:.1%}"

@@ -110,7 +110,7 @@ def search_again(lock: PhaseLockSearch, config: RunConfig, budget: Budget, sessi
         return None
     # Nor when the points have nothing left to lower (a retune's inherited velocity term).
     if lock.hopeless(clock_s=session.clock, points_left=budget.max_points - searched,
-                     acceptance_bar=bar, shots_spent=session.tally.shots) is not None:
+                     acceptance_bar=bar) is not None:
         return None
     out_of_time = session.tally.rig_time_s >= budget.max_rig_time_s
     if lock.converged(clock_s=session.clock):
