@@ -4,7 +4,10 @@ Checked against outside references: the Beta posterior's mean against scipy.stat
 linear-Gaussian update against the information form computed directly with numpy (C. M. Bishop,
 *Pattern Recognition and Machine Learning*, Springer, 2006, eq. 3.51:
 ``S_N^-1 = S_0^-1 + beta Phi^T Phi``), and the choice on a synthetic rig whose one-photon
-contrast is unusable below a velocity (the synthetic rig of tests/test_guided.py).
+contrast is unusable below a velocity (the synthetic rig of tests/test_guided.py); the points a
+bound needs against the conjugate normal update's posterior variance (A. Gelman et al., *Bayesian
+Data Analysis*, 3rd ed., 2013, section 2.5: ``1 / v_n = 1 / v_0 + n / s^2``) and the chi-square
+quantile of a Gaussian error's square (scipy.stats.chi2).
 """
 
 from __future__ import annotations
@@ -14,7 +17,7 @@ import pytest
 from scipy import stats
 
 from autotune.analysis.guided import PhaseLockSearch
-from autotune.analysis.next_point import best_proposal, updated_cov, usable_chance, usable_evidence
+from autotune.analysis.next_point import best_proposal, points_to_reach, updated_cov, usable_chance, usable_evidence
 from test_guided import BOX, SETTINGS, Synthetic, _run
 
 
@@ -29,6 +32,38 @@ def test_usable_chance_is_one_where_no_step_has_failed_and_refuses_negative_coun
     assert usable_chance(0, 0) == 1.0 and usable_chance(7, 0) == 1.0
     with pytest.raises(ValueError, match="usable_chance"):
         usable_chance(-1, 2)
+
+
+@pytest.mark.parametrize(("prior_var", "noise_var", "points"), [(1.0, 1.0, 3), (4.0, 0.5, 12), (0.2, 2.0, 7),
+                                                              (1e-2, 1e-3, 25)])
+def test_points_to_reach_counts_the_information_of_repeated_points(prior_var, noise_var, points):
+    """A 95 % bound on the square of a Gaussian error of mean 0: ``v_n`` times the chi-square
+    quantile (scipy.stats.chi2, one degree of freedom), ``v_n`` the conjugate normal posterior
+    variance after ``n`` measurements of variance ``s^2`` (Gelman et al. 2013, section 2.5). From
+    the bound now and after one point, the points to the bound after ``points`` are ``points``;
+    the first point's fall extrapolated linearly says fewer."""
+    q = float(stats.chi2.ppf(0.95, 1))
+
+    def bound(n: int) -> float:
+        return q / (1.0 / prior_var + n / noise_var)
+
+    now, after, target = bound(0), bound(1), bound(points)
+    assert points_to_reach(now, after, target) == pytest.approx(points, rel=1e-9)
+    assert (now - target) / (now - after) < points
+    # Half-way there, the same law from the bound then.
+    assert points_to_reach(bound(points // 2), bound(points // 2 + 1), target) == \
+        pytest.approx(points - points // 2, rel=1e-9)
+
+
+def test_points_to_reach_at_the_target_without_a_fall_and_on_bad_input():
+    """Already at the target: none; a next point not expected to lower the bound: infinitely many;
+    non-finite bounds or a target <= 0: a clear error."""
+    assert points_to_reach(0.009, 0.008, 0.01) == 0.0
+    assert points_to_reach(0.015, 0.015, 0.01) == float("inf")
+    assert points_to_reach(0.015, 0.0, 0.01) == 1.0
+    for bad in ((float("inf"), 0.01, 0.01), (0.02, float("nan"), 0.01), (0.02, 0.01, 0.0)):
+        with pytest.raises(ValueError, match="points_to_reach"):
+            points_to_reach(*bad)
 
 
 def test_updated_covariance_is_the_information_form_of_the_update():

@@ -14,7 +14,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from autotune.analysis.lock_fit import mixture_phase_error
-from autotune.analysis.next_point import expected_fall
+from autotune.analysis.next_point import expected_fall, points_to_reach
 from autotune.analysis.retune_verdict import inherited_draws
 from autotune.analysis.shortfall import Shortfall
 from autotune.analysis.velocity_model import InversionCurve, AbsorptionFit, cholesky_jittered
@@ -283,6 +283,12 @@ class ShortfallBound:
         beyond it cannot be measured: the loop should stop and verify. Not above the bar: there
         the posterior's mean still moves as the data come in (a bound of 3.4 % expected to fall
         by 0.07 % per point fell to 1.1 % in four), and the points are the stage's only hope.
+        The points needed follow the bound's fall as the information grows
+        (:func:`~autotune.analysis.next_point.points_to_reach`), not the first point's fall
+        extrapolated. The point budget, not the shots spent so far, is the horizon: the margin
+        below the bar is what a retune inherits (its acceptance counts the calibration's
+        velocity term), so a calibration that stops within the bar leaves its retunes short
+        (benchmarks/README.md, "Session 11").
         """
         clock = self._now(clock_s)
         no_lock = self._lock_not_established()
@@ -311,13 +317,13 @@ class ShortfallBound:
         now, after = expected_fall(self, velocity, clock)
         target = self.settings.target_shortfall
         bar = self.settings.still_good_shortfall if acceptance_bar is None else float(acceptance_bar)
-        if not math.isfinite(now) or now <= target or now > bar:
+        if not math.isfinite(now) or now <= target or now > bar or not math.isfinite(after):
             return None
-        fall = now - after
-        if fall > 0.0 and (now - target) / fall <= points_left:
+        points = points_to_reach(now, after, target)
+        if points <= points_left:
             return None
-        needed = "no point lowers it" if fall <= 0.0 else \
-            f"{math.ceil((now - target) / fall)} points at {fall:.2%} each"
+        needed = "no point lowers it" if not math.isfinite(points) else \
+            f"{math.ceil(points)} points, the next at {now - after:.2%} and each later one less"
         return (f"the target {target:.1%} is out of reach within the point budget: the bound {now:.2%} "
                 f"(within the acceptance bar {bar:.1%}) would need {needed}, more than the "
                 f"{points_left} left")

@@ -28,6 +28,7 @@ reverse.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
@@ -40,8 +41,8 @@ from autotune.errors import ValueRefused
 if TYPE_CHECKING:
     from autotune.analysis.guided import PhaseLockSearch
 
-__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall", "updated_cov",
-           "usable_chance", "usable_evidence"]
+__all__ = ["SAME_VELOCITY", "best_proposal", "candidates", "expected_after", "expected_fall", "points_to_reach",
+           "updated_cov", "usable_chance", "usable_evidence"]
 
 #: Two velocities closer than this (relative) are one velocity group of the absorption fit.
 SAME_VELOCITY = 0.005
@@ -114,6 +115,32 @@ def usable_chance(usable: int, unusable: int) -> float:
     if unusable == 0:
         return 1.0
     return (1.0 + usable) / (2.0 + usable + unusable)
+
+
+def points_to_reach(now: float, after: float, target: float) -> float:
+    """How many more points like the next one a bound needs to fall from ``now`` to ``target``,
+    given that one point is expected to leave ``after`` (inf when it is not expected to fall).
+
+    The bound's dominant terms are upper quantiles of a loss quadratic in a Gaussian error (the
+    phase error's ``1 - cos(eps / 2)``, the velocity curve's loss near its vertex): at a mean
+    near zero the quantile is the error's variance times a chi-square quantile, so it scales as
+    the posterior variance. Repeated measurements of the same kind add their information
+    (the conjugate normal update, ``1 / v_n = 1 / v_0 + n / s^2``: e.g. A. Gelman et al.,
+    *Bayesian Data Analysis*, 3rd ed., 2013, section 2.5), so after ``n`` such points the bound
+    is ``now / (1 + n r)`` with ``r = now / after - 1`` from the one point's expected fall, and
+    the target needs ``n = (now / target - 1) / r`` of them: ``after / target`` times the linear
+    extrapolation of the first point's fall, whose later falls shrink as the information grows.
+    """
+    if not (math.isfinite(now) and math.isfinite(after)) or target <= 0.0:
+        raise ValueRefused(f"points_to_reach: expected finite bounds and a target > 0, got "
+                           f"{now!r}, {after!r}, {target!r}")
+    if now <= target:
+        return 0.0
+    if after >= now:
+        return math.inf
+    if after <= 0.0:
+        return 1.0
+    return (now / target - 1.0) / (now / after - 1.0)
 
 
 def expected_phase_variance(search: PhaseLockSearch, shots: int) -> float:
