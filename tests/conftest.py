@@ -13,12 +13,27 @@ import os
 for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS"):
     os.environ.setdefault(_variable, "1")
 
+import sys
+from pathlib import Path
+
+# Compiled modules cached outside the tree, for this process, its xdist workers and every
+# process the tests start (they inherit the environment). Where PYTHONDONTWRITEBYTECODE is set
+# nothing was cached: each of the four workers rewrote and compiled every test module again
+# (collection 8.2-8.6 s of CPU; 4.6-4.9 s from the cache) and each `autotune` process compiled
+# the modules it imports (a stage's imports 0.78-0.89 s of CPU, 0.69-0.79 s from the cache).
+# A prefix set by the caller is kept; nothing is written beside the sources.
+if not os.environ.get("PYTHONPYCACHEPREFIX"):
+    _cache = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache")
+    os.environ["PYTHONPYCACHEPREFIX"] = str(_cache / "autotune-tests" / "pycache")
+    os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
+    sys.pycache_prefix = os.environ["PYTHONPYCACHEPREFIX"]
+    sys.dont_write_bytecode = False
+
 import fcntl
 import json
 import shlex
 import shutil
 from collections.abc import Callable, Iterator
-from pathlib import Path
 from typing import Any
 
 import pytest

@@ -282,7 +282,12 @@ def _kill_while_the_reply_is_on_its_way(tmp_path: Path, server: ServerProcess, o
     acquisition, for the request the stop makes): the rig executed the request, its reply was
     on its way. Checks that the journal names the request and no outcome of it (record types
     ``outcomes``). Returns the config, the run folder and the request record."""
-    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json")
+    # Two search points: every reply of the killed run and of the resume waits the rig's
+    # 0.6 s, and what is checked (the request settled by the resume, every apply and shot
+    # accounted) needs only a run that moves, measures and finishes.
+    config = tiny_config(tmp_path / "c.toml", server.endpoint, tmp_path / "good.json",
+                         search={"max_points": 2, "min_points": 2, "n_initial_points": 1,
+                                 "refine_points": 0})
     run = tmp_path / "run"
     process = start_autotune("calibrate", "--config", str(config), "--out", str(run))
     try:
