@@ -28,3 +28,13 @@ def cache_prefix(environ: Mapping[str, str]) -> str | None:
             return None
         base = os.path.join(home, ".cache")
     return os.path.join(base, "autotune-tests", "pycache")
+
+
+def suite_prefix(environ: Mapping[str, str]) -> str | None:
+    """The prefix the suite sets, or None to leave the environment as it is: only where
+    ``PYTHONDONTWRITEBYTECODE`` is set (elsewhere Python caches in ``__pycache__`` already, and a
+    prefix would make every process compile the installed libraries again), the caller set no
+    ``PYTHONPYCACHEPREFIX`` of its own, and :func:`cache_prefix` knows a folder."""
+    if not environ.get("PYTHONDONTWRITEBYTECODE") or environ.get("PYTHONPYCACHEPREFIX"):
+        return None
+    return cache_prefix(environ)

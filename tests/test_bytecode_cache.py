@@ -11,7 +11,7 @@ import pwd
 
 import pytest
 
-from bytecode_cache import cache_prefix
+from bytecode_cache import cache_prefix, suite_prefix
 
 
 def test_the_cache_sits_below_xdg_cache_home_or_the_home_cache_folder():
@@ -38,3 +38,15 @@ def test_no_home_at_all_gives_no_prefix_instead_of_an_error(monkeypatch):
     with pytest.raises(RuntimeError):
         __import__("pathlib").Path.home()
     assert cache_prefix({}) is None
+
+
+def test_the_suite_sets_a_prefix_only_where_bytecode_is_not_written_and_none_was_set():
+    """Python writes ``__pycache__`` beside the sources unless ``PYTHONDONTWRITEBYTECODE`` is set,
+    and with a prefix "any __pycache__ directories in the source code tree will be ignored" (Python
+    documentation, ``sys.pycache_prefix``), the installed libraries' among them: the suite leaves a
+    plain environment and a caller's prefix alone."""
+    assert suite_prefix({"HOME": "/h"}) is None
+    assert suite_prefix({"HOME": "/h", "PYTHONDONTWRITEBYTECODE": ""}) is None
+    assert suite_prefix({"HOME": "/h", "PYTHONDONTWRITEBYTECODE": "1"}) == "/h/.cache/autotune-tests/pycache"
+    assert suite_prefix({"HOME": "/h", "PYTHONDONTWRITEBYTECODE": "1", "PYTHONPYCACHEPREFIX": "/p"}) is None
+    assert suite_prefix({"HOME": "", "PYTHONDONTWRITEBYTECODE": "1"}) is None
