@@ -10,7 +10,6 @@ from __future__ import annotations
 import pwd
 
 import pytest
-
 from bytecode_cache import cache_prefix, suite_prefix
 
 
