@@ -21,27 +21,22 @@ The observer reads the search's posterior through its private helpers, as
 from __future__ import annotations
 
 import argparse
-import dataclasses
-import logging
 import math
 import statistics
 import sys
-import tempfile
-from concurrent.futures import ProcessPoolExecutor
-from pathlib import Path
 from typing import Any
 
-import structlog
-
-REPO = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(REPO))
+from dev_calibrations import (
+    FLOOR_SHOTS,
+    add_draw_arguments,
+    calibrate,
+    draw_errors,
+    families_of,
+    run_all,
+)
 
 from autotune.analysis.next_point import _best
-from autotune.bench import plan as bench_plan
-from autotune.bench import scenarios as bench_scenarios
-from autotune.run import runner
 
-FLOOR_SHOTS = 72_000  # the study's oracle floor: the 72,000-shot verification at the true best
 _SEARCH = ("lock", "velocity", "relock", "search")
 
 
@@ -66,15 +61,8 @@ class _Bounds:
 
 
 def _run(job: dict[str, Any]) -> dict[str, Any]:
-    structlog.configure(wrapper_class=structlog.make_filtering_bound_logger(logging.CRITICAL))
-    config, scenario = job["config"], job["scenario"]
-    config = dataclasses.replace(config, search=dataclasses.replace(config.search,
-                                                                     seed=scenario["search_seed"]))
-    rig = bench_scenarios.local_rig(job["rig"], scenario["perturbation"], scenario["rig_seed"])
-    bounds = _Bounds()
-    with tempfile.TemporaryDirectory(prefix="bound-zones-") as tmp:
-        result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=Path(tmp) / "last-good.json",
-                                  observer=bounds)
+    _, bounds, result, _ = calibrate(job, lambda rig: _Bounds(), "bound-zones-")
+    scenario = job["scenario"]
     return {"family": scenario["family"], "scenario": scenario["index"], "shots": int(result["shots"]),
             "rows": bounds.rows}
 
@@ -112,31 +100,16 @@ def falls(runs: list[dict[str, Any]], bar: float) -> dict[tuple[str, str], tuple
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--families", default="main,mismatch,velocity_physics,zones_set_once",
-                        help="comma-separated scenario families")
-    parser.add_argument("--seed", type=int, default=111, help="seed of the main draw (default 111, a dev draw)")
-    parser.add_argument("--family-seed-offset", type=int, default=1,
-                        help="added to every other family's seed (default 1, a dev draw; 0 is the study's)")
-    parser.add_argument("--scenarios", type=int, default=8, help="scenarios per family (default 8)")
-    parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2)")
+    add_draw_arguments(parser, "main,mismatch,velocity_physics,zones_set_once")
     parser.add_argument("--bar", type=float, default=0.02, help="the acceptance bar (default 0.02, the study's)")
     ns = parser.parse_args(argv)
-    families = tuple(name.strip() for name in ns.families.split(",") if name.strip())
-    unknown = [name for name in families if name not in bench_scenarios.FAMILIES]
-    if unknown or ns.scenarios < 1 or ns.workers < 1 or not 0.0 < ns.bar < 1.0:
-        parser.error(f"expected families among {sorted(bench_scenarios.FAMILIES)} (got {unknown}), "
-                     "--scenarios >= 1, --workers >= 1 and 0 < --bar < 1")
-    plan = bench_plan.plan_for("full", workers=ns.workers, scenarios=ns.scenarios, seed=ns.seed,
-                               strategies=("phase_lock",))
-    plan = dataclasses.replace(plan, family_seed_offset=ns.family_seed_offset, families=families,
-                               night_steps=0, overhead_points=(), night_study=False)
-    base = bench_plan.base_config(plan, bench_plan.DEFAULT_RUN_CONFIG)
-    config = bench_plan.strategy_configs(base, plan)["phase_lock"]
-    rig = bench_scenarios.rig_data(bench_plan.DEFAULT_RIG_CONFIG)
-    jobs = [{"config": config, "scenario": scenario, "rig": rig}
-            for family, scenarios in bench_plan.family_scenarios(plan).items() for scenario in scenarios]
-    with ProcessPoolExecutor(max_workers=ns.workers) as pool:
-        runs = sorted(pool.map(_run, jobs), key=lambda r: (r["family"], r["scenario"]))
+    wrong = draw_errors(ns)
+    if wrong is None and not 0.0 < ns.bar < 1.0:
+        wrong = f"expected 0 < --bar < 1 (got {ns.bar})"
+    if wrong is not None:
+        parser.error(wrong)
+    families = families_of(ns)
+    runs = run_all(ns, _run)
     print(f"the bound's zones (seed {ns.seed}, family seed offset {ns.family_seed_offset}; x floor = "
           f"shots / {FLOOR_SHOTS:,}; medians over the family's calibrations, which do not add up)")
     print(f"| family | calibration | until the first bound | first bound -> bound <= {ns.bar:.0%} | "

@@ -18,28 +18,21 @@ The observer reads the search's posterior through its private helpers, as
 from __future__ import annotations
 
 import argparse
-import dataclasses
-import logging
 import math
 import sys
-import tempfile
-from concurrent.futures import ProcessPoolExecutor
-from pathlib import Path
 from typing import Any
 
 import numpy as np
-import structlog
+from dev_calibrations import (
+    FLOOR_SHOTS,
+    add_draw_arguments,
+    calibrate,
+    draw_errors,
+    run_all,
+)
 
-REPO = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(REPO))
-
-from autotune.bench import plan as bench_plan
-from autotune.bench import scenarios as bench_scenarios
 from autotune.bench.jobs import shots_by_purpose
-from autotune.run import runner
 from autotune.run.journal import JOURNAL_NAME
-
-FLOOR_SHOTS = 72_000  # the study's oracle floor: the 72,000-shot verification at the true best
 
 
 class _Steps:
@@ -69,16 +62,9 @@ class _Steps:
 
 
 def _run(job: dict[str, Any]) -> dict[str, Any]:
-    structlog.configure(wrapper_class=structlog.make_filtering_bound_logger(logging.CRITICAL))
-    config, scenario = job["config"], job["scenario"]
-    config = dataclasses.replace(config, search=dataclasses.replace(config.search,
-                                                                     seed=scenario["search_seed"]))
-    rig = bench_scenarios.local_rig(job["rig"], scenario["perturbation"], scenario["rig_seed"])
-    steps = _Steps(rig)
-    with tempfile.TemporaryDirectory(prefix="velocity-breakdown-") as tmp:
-        result = runner.calibrate(rig, config, Path(tmp) / "calibrate", store=Path(tmp) / "last-good.json",
-                                  observer=steps)
-        purposes = shots_by_purpose(Path(tmp) / "calibrate" / JOURNAL_NAME)
+    rig, steps, result, purposes = calibrate(job, _Steps, "velocity-breakdown-",
+                                             read=lambda run: shots_by_purpose(run / JOURNAL_NAME))
+    scenario = job["scenario"]
     truth = rig.truth(dict(result["setpoints"]))
     return {"family": scenario["family"], "scenario": scenario["index"], "shots": int(result["shots"]),
             "ratio": float(truth["inversion"]) / float(truth["best"]["inversion"]),
@@ -109,31 +95,13 @@ def _table_row(run: dict[str, Any]) -> str:
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--families", default="main,mismatch,velocity_physics",
-                        help="comma-separated scenario families (default main,mismatch,velocity_physics)")
-    parser.add_argument("--seed", type=int, default=111, help="seed of the main draw (default 111, a dev draw)")
-    parser.add_argument("--family-seed-offset", type=int, default=1,
-                        help="added to every other family's seed (default 1, a dev draw; 0 is the study's)")
-    parser.add_argument("--scenarios", type=int, default=8, help="scenarios per family (default 8)")
-    parser.add_argument("--workers", type=int, default=2, help="worker processes (default 2)")
+    add_draw_arguments(parser, "main,mismatch,velocity_physics")
     parser.add_argument("--steps", action="store_true", help="print every step of every calibration too")
     ns = parser.parse_args(argv)
-    families = tuple(name.strip() for name in ns.families.split(",") if name.strip())
-    unknown = [name for name in families if name not in bench_scenarios.FAMILIES]
-    if unknown or ns.scenarios < 1 or ns.workers < 1:
-        parser.error(f"expected families among {sorted(bench_scenarios.FAMILIES)} (got {unknown}), "
-                     "--scenarios >= 1 and --workers >= 1")
-    plan = bench_plan.plan_for("full", workers=ns.workers, scenarios=ns.scenarios, seed=ns.seed,
-                               strategies=("phase_lock",))
-    plan = dataclasses.replace(plan, family_seed_offset=ns.family_seed_offset, families=families,
-                               night_steps=0, overhead_points=(), night_study=False)
-    base = bench_plan.base_config(plan, bench_plan.DEFAULT_RUN_CONFIG)
-    config = bench_plan.strategy_configs(base, plan)["phase_lock"]
-    rig = bench_scenarios.rig_data(bench_plan.DEFAULT_RIG_CONFIG)
-    jobs = [{"config": config, "scenario": scenario, "rig": rig}
-            for family, scenarios in bench_plan.family_scenarios(plan).items() for scenario in scenarios]
-    with ProcessPoolExecutor(max_workers=ns.workers) as pool:
-        runs = sorted(pool.map(_run, jobs), key=lambda r: (r["family"], r["scenario"]))
+    wrong = draw_errors(ns)
+    if wrong is not None:
+        parser.error(wrong)
+    runs = run_all(ns, _run)
     print(f"velocity stage, step by step (seed {ns.seed}, family seed offset {ns.family_seed_offset}; "
           f"x floor = shots / {FLOOR_SHOTS:,}; bounds in %)")
     print("| scenario | x floor | points: lock / velocity / relock | velocity step shots (min-max) | "

@@ -7,10 +7,12 @@ linear-Gaussian update against the information form computed directly with numpy
 contrast is unusable below a velocity (the synthetic rig of tests/test_guided.py); the points a
 bound needs against the conjugate normal update's posterior variance (A. Gelman et al., *Bayesian
 Data Analysis*, 3rd ed., 2013, section 2.5: ``1 / v_n = 1 / v_0 + n / s^2``) and the chi-square
-quantile of a Gaussian error's square (scipy.stats.chi2).
+quantile of a Gaussian error's square (scipy.stats.chi2; scipy.stats.ncx2 where its mean is not zero).
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 import pytest
@@ -53,6 +55,39 @@ def test_points_to_reach_counts_the_information_of_repeated_points(prior_var, no
     # Half-way there, the same law from the bound then.
     assert points_to_reach(bound(points // 2), bound(points // 2 + 1), target) == \
         pytest.approx(points - points // 2, rel=1e-9)
+
+
+def _phase_bound(n: int, prior_var: float, noise_var: float, mean: float) -> float:
+    """The 95 % upper bound of the shortfall ``1 - cos(eps / 2)`` of a Gaussian phase error of
+    ``mean`` (rad) after ``n`` measurements (conjugate normal variance, Gelman et al. 2013,
+    section 2.5): ``eps^2 / v_n`` is noncentral chi-square with one degree of freedom and
+    noncentrality ``mean^2 / v_n`` (scipy.stats.ncx2; scipy.stats.chi2 at mean 0)."""
+    var = 1.0 / (1.0 / prior_var + n / noise_var)
+    q = float(stats.ncx2.ppf(0.95, 1, mean**2 / var)) if mean else float(stats.chi2.ppf(0.95, 1))
+    return 1.0 - math.cos(math.sqrt(var * q) / 2.0)
+
+
+@pytest.mark.parametrize(("prior_var", "noise_var", "points"), [(0.04, 0.4, 5), (0.05, 2.0, 30), (0.03, 0.1, 3)])
+def test_points_to_reach_on_the_phase_shortfall_itself_at_a_centred_error(prior_var, noise_var, points):
+    """The law is that of the quadratic loss; on the shortfall ``1 - cos(eps / 2)`` itself at a
+    centred error, with bounds of 1-2.5 % as the stage meets them within the bar, the count is the
+    true one to 0.1 %."""
+    now, after, target = (_phase_bound(n, prior_var, noise_var, 0.0) for n in (0, 1, points))
+    assert 0.007 < target < now < 0.025
+    assert points_to_reach(now, after, target) == pytest.approx(points, rel=1e-3)
+
+
+@pytest.mark.parametrize("mean", [0.05, 0.1, 0.15])
+def test_points_to_reach_is_a_lower_count_where_the_error_is_not_centred(mean):
+    """Where the phase error's mean is not near zero (a recommendation held at the box edge), the
+    bound has a floor, ``1 - cos(mean / 2)``, and falls slower than the law: the count is lower
+    than the points the bound really needs, so "out of reach" is said only when even the lower
+    count is more than the points left (it errs towards measuring on)."""
+    prior_var, noise_var = 0.04, 0.4
+    now, after = _phase_bound(0, prior_var, noise_var, mean), _phase_bound(1, prior_var, noise_var, mean)
+    for points in (3, 8, 20):
+        target = _phase_bound(points, prior_var, noise_var, mean)
+        assert points_to_reach(now, after, target) < points
 
 
 def test_points_to_reach_at_the_target_without_a_fall_and_on_bad_input():
