@@ -71,7 +71,14 @@ def _files(records: list[dict]) -> dict[str, tuple[float, float]]:
 
 
 def main(folders: list[str]) -> None:
+    if not folders:
+        sys.exit("usage: python3 benchmarks/suite_rusage.py FOLDER [FOLDER]: the folders of "
+                 "SUITE_RUSAGE_DIR runs (see the module's docstring)")
     runs = [_load(folder) for folder in folders]
+    for folder, records in zip(folders, runs):
+        if not records:
+            sys.exit(f"suite_rusage: {folder}: no test records (*.jsonl); was the suite run "
+                     f"with -p suite_rusage and SUITE_RUSAGE_DIR={folder}?")
     for folder, records in zip(folders, runs):
         s = _summary(records)
         print(f"{folder}: {s['tests']} tests, first start to last end {s['span']:.0f} s, "

@@ -13,6 +13,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import re
 import shutil
 import threading
 import tomllib
@@ -566,12 +567,14 @@ def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_re
     assert numbers["later"] is True and numbers["met"] is False
     assert numbers["confirm_s"] > numbers["within_s"] == 900.0
     assert numbers["check_share"] < first["check_share"]
-    assert later["reason"] == f"{later['reason'].split(' h into')[0]} h into the night, " \
-        + numbers["warning"]
-    assert float(later["reason"].split(" h into")[0]) > 0.5
+    said = re.fullmatch(r"(\d+\.\d) h into the night, (.+)", later["reason"])
+    assert said and said.group(2) == numbers["warning"], later["reason"]
     assert "the night runs as configured" in later["detail"]
-    # The plan it was told for is the next decision, with the same numbers.
+    # The plan it was told for is the next decision, with the same numbers; the hours said are
+    # that plan's rig time into the night, to the tenth the reason shows.
     plan = next(r for r in records[told[1]:] if r["type"] == "decision" and r["what"] == "plan")
+    assert float(said.group(1)) == pytest.approx(plan["night_rig_time_s"] / 3600.0, abs=0.051)
+    assert plan["night_rig_time_s"] > 1800.0
     assert plan["plan"]["step_delay_s"] == numbers["confirm_s"]
     assert plan["plan"]["interval_s"] == numbers["interval_s"]
     assert plan["plan"]["shots_per_phase"] == numbers["shots_per_phase"]
@@ -603,6 +606,9 @@ def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_re
                     if r["type"] == "decision" and r["what"] == "step_outlook"]
         assert resumed["status"] == "ended"
         assert resumed["step_outlook"] == first
+        retold = [r["outlook"] for r in after if r["type"] == "decision"
+                  and r["what"] == "step_outlook"]
+        assert resumed["last_step_outlook"] == retold[-1]
 
 
 def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budget_records(
