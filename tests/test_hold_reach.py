@@ -17,9 +17,13 @@ import pytest
 from hold_helpers import demo_prior, hold_settings
 
 from autotune.analysis.hold import (
+    BeamBudget,
     DriftLock,
     NoiseModel,
+    early_checks,
     innovation_sd_at,
+    noise_row,
+    plan_night,
     next_check,
     plan_checks,
     reach_s,
@@ -140,3 +144,103 @@ def test_a_lock_already_wider_than_the_plan_waits_the_least_share():
     # Never later than the wait asked for (a middle-zone check's half interval).
     half = 0.5 * plan.interval_s
     assert reach_s(plan, _START, start_s=0.0, wait_s=half) <= half
+
+
+def _textbook_early(plan, lock: DriftLock, max_gain: float, horizon_s: float):
+    """The checks brought forward, counted on the Kalman covariance recursion written out with
+    numpy matrices (Bar-Shalom et al. 2001, sec. 5.2.3: P(k+1|k) = F P F' + Q, S = H P H' + R,
+    W = P H' / S, the gain's peak component bounded and both scaled alike; the update in Joseph
+    form, P = (I - W H) P (I - W H)' + W R W'), the wait on the 64-point grid of the reach rule
+    (the last time S stays within REACH_RATIO of the plan's, never below LEAST_REACH of the
+    interval). The covariance recursion needs no readings."""
+    q = lock.walk_hz_per_sqrt_s**2
+    qr = RATE_WALK_HZ_PER_S_PER_SQRT_S**2
+    r = plan.detuning_stderr_hz**2
+    limit = REACH_RATIO * plan.inputs["innovation_sd_hz"]
+    h = np.array([[1.0, 0.0]])
+    p = np.array(lock.covariance, dtype=float)
+    interval = plan.interval_s
+
+    def predicted(tau):
+        f = np.array([[1.0, tau], [0.0, 1.0]])
+        big_q = q * tau * np.array([[1.0, 0.0], [0.0, 0.0]]) + \
+            qr * np.array([[tau**3 / 3.0, tau**2 / 2.0], [tau**2 / 2.0, tau]])
+        return f @ p @ f.T + big_q
+
+    span, checks = 0.0, 0
+    while span < horizon_s:
+        if math.sqrt(predicted(interval)[0, 0] + r) <= limit:
+            break
+        least = LEAST_REACH * interval
+        wait = least
+        for tau in np.linspace(least, interval, 64):
+            if math.sqrt(predicted(tau)[0, 0] + r) > limit:
+                break
+            wait = tau
+        prior = predicted(wait)
+        s = float((h @ prior @ h.T)[0, 0]) + r
+        gain = (prior @ h.T / s).ravel()
+        if gain[0] > max_gain:
+            gain = gain * (max_gain / gain[0])
+        k = gain.reshape(2, 1)
+        a = np.eye(2) - k @ h
+        p = a @ prior @ a.T + r * (k @ k.T)
+        span += wait
+        checks += 1
+    return checks, span
+
+
+@pytest.mark.parametrize("rate_sd", [0.3, 1.05, 2.0])
+def test_the_early_checks_are_counted_on_the_textbook_recursion(rate_sd):
+    """early_checks (what plan_night counts) brings the same checks forward over the same rig
+    time as the textbook recursion above, for rate uncertainties after a start of 0.3-2 Hz/s;
+    the extra beam is their beam less the plan's share of that time. A lock already at the
+    plan's settled state (60 checks at its interval) brings none forward."""
+    start = DriftLock.start(0.0, 0.0, 300.0, 3.0, rate_sd, 20.0)
+    plan = _plan(start)
+    early = early_checks(plan, start, max_gain=1.0, horizon_s=8 * 3600.0)
+    checks, span = _textbook_early(plan, start, 1.0, 8 * 3600.0)
+    assert early["checks"] == checks
+    assert early["span_s"] == pytest.approx(span, rel=1e-9)
+    assert early["extra_beam_s"] == pytest.approx(
+        max(checks * plan.check_s - span * plan.check_share, 0.0), rel=1e-9)
+    if rate_sd >= 1.05:
+        assert checks >= 1
+    settled = start
+    for i in range(1, 61):
+        t = i * plan.interval_s
+        settled, _ = settled.update(t, settled.peak_at(t), plan.detuning_stderr_hz**2)
+    assert early_checks(plan, settled, max_gain=1.0, horizon_s=3600.0)["checks"] == 0
+
+
+def test_the_night_plans_its_cadence_with_the_early_checks_counted():
+    """plan_night after a start whose rate is uncertain (5 and 8 Hz/s; 85 % of the ceiling spent,
+    so the checks' share is what is left of it and the cadence is rare): the cadence's beam over the
+    plan's hour and the early checks' extra beam together stay within the share the budget gives
+    the checks (the ceiling logic of hold_budget.checks_share), and the share the cadence was
+    planned on is lower than the budget's. At 3 Hz/s the plan's cadence brings none forward and
+    the share is the budget's."""
+    settings = hold_settings(max_interval_s=3600.0)
+    estimate = {"phase_shift_stderr": 0.10 * math.sqrt(18000 / 2000), "inversion_stderr": 0.09,
+                "detected_empty": 200, "detected_one_photon": 200, "contrast_empty": 0.8,
+                "contrast_one_photon": 0.7, "chi2_empty": 3.0, "chi2_one_photon": 3.0,
+                "dof_empty": 3, "dof_one_photon": 3}
+    rows = [noise_row(estimate, 2000)] * 3
+    reference = {"weight": 1.0 / 0.02**2, "weighted": 0.72 / 0.02**2}
+    budget = BeamBudget.of(settings, elapsed_s=600.0, remaining_s=8 * 3600.0,
+                           spent_s=0.85 * 0.05 * (8 * 3600.0 + 600.0))
+    for rate_sd, expect_early in ((5.0, True), (8.0, True), (3.0, False)):
+        lock = DriftLock.start(0.0, 0.0, 300.0, 3.0, rate_sd, 20.0)
+        plan, share = plan_night(settings, budget=budget, rows=rows, prior=demo_prior(),
+                                 lock=lock, reference=reference, recovery_beam_s=240.0,
+                                 recoveries=0)
+        assert plan is not None
+        window = max(min(3600.0, budget.ahead_s), share["early_span_s"], 60.0)
+        assert plan.check_share * window + share["early_extra_beam_s"] <= \
+            share["share"] * window * (1.0 + 1e-6)
+        if expect_early:
+            assert share["early_checks"] >= 1
+            assert share["planned_share"] < share["share"]
+        else:
+            assert share["early_checks"] == 0
+            assert share["planned_share"] == share["share"]

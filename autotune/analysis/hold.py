@@ -135,6 +135,7 @@ from autotune.analysis.hold_lock import (
 from autotune.analysis.hold_plan import (
     CheckPlan,
     cusum_chain,
+    early_checks,
     flag_probability,
     in_control_rechecks,
     in_control_sooner,
@@ -170,6 +171,7 @@ __all__ = [
     "recheck_run_limit",
     "next_check",
     "reach_s",
+    "early_checks",
     "innovation_sd_at",
     "cusum_chain",
     "flag_probability",

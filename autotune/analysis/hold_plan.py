@@ -54,6 +54,7 @@ __all__ = [
     "reach_s",
     "LEAST_REACH",
     "REACH_RATIO",
+    "early_checks",
 ]
 
 # Shortest interval the planner considers (s) and the number of candidate intervals.
@@ -97,6 +98,8 @@ LEAST_REACH = 0.25
 REACH_RATIO = 1.25
 # Points of the search for the time the predicted innovation leaves the plan's.
 _REACH_POINTS = 64
+# Most checks :func:`early_checks` runs the lock through.
+_EARLY_MAX = 200
 
 
 
@@ -754,3 +757,36 @@ def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: fl
         reach, interval = wait < interval, wait
     return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "reach": reach,
             "run": run}
+
+
+def early_checks(plan: CheckPlan, lock: DriftLock, *, max_gain: float, horizon_s: float
+                 ) -> dict[str, float]:
+    """The checks :func:`reach_s` brings forward from now (the lock's clock) until the lock's
+    predicted innovation is back within :data:`REACH_RATIO` of the plan's at the plan's
+    interval, and the beam they take beyond the plan's share over the same rig time.
+
+    The Kalman filter's covariance recursion does not depend on the readings (Y. Bar-Shalom,
+    X. R. Li and T. Kirubarajan, *Estimation with Applications to Tracking and Navigation*,
+    Wiley 2001, sec. 5.2.3: ``P(k+1|k) = F P F' + Q``, ``S = H P H' + R``, ``W = P H' / S``),
+    so the planner runs it forward at plan time with the check's variance (the plan's
+    ``detuning_stderr_hz`` squared) and the night's gain bound, through :meth:`DriftLock.update`
+    at the predicted peak (the covariance is the same for any reading). At most ``horizon_s``
+    of rig time is run. Returns ``checks`` (brought forward), ``span_s`` (rig time they cover),
+    ``beam_s`` (their beam) and ``extra_beam_s`` (``beam_s`` less the plan's share of
+    ``span_s``, at least 0: what the plan's cadence would not have spent).
+    """
+    variance = float(plan.detuning_stderr_hz) ** 2
+    start = clock = float(lock.clock_s)
+    interval = float(plan.interval_s)
+    checks = 0
+    while clock - start < float(horizon_s) and checks < _EARLY_MAX:
+        wait = reach_s(plan, lock, start_s=clock, wait_s=interval)
+        if wait >= interval:
+            break
+        clock += wait
+        checks += 1
+        lock, _ = lock.update(clock, lock.peak_at(clock), variance, max_gain=float(max_gain))
+    span = clock - start
+    beam = checks * float(plan.check_s)
+    return {"checks": float(checks), "span_s": span, "beam_s": beam,
+            "extra_beam_s": max(beam - span * float(plan.check_share), 0.0)}

@@ -549,7 +549,7 @@ class Night:
             prior=LockPrior.from_dict(state["prior"]),
             lock=DriftLock.from_dict(state["lock"]).predict(self.session.clock),
             reference=state["reference"], recovery_beam_s=self._expected_s("retune"),
-            recoveries=max(self.ledger.stages_begun - 1, 0))
+            recoveries=max(self.ledger.stages_begun - 1, 0), horizon_s=_REPLAN_S)
         if plan is None:
             self._unwatched("the budget has nothing left for a check")
             return
