@@ -19,7 +19,7 @@ import numpy as np
 from autotune.analysis.guided import LockPrior
 from autotune.analysis.hold_check import reference_value
 from autotune.analysis.hold_lock import DriftLock, HoldSettings
-from autotune.analysis.hold_plan import RECOVERY_PRIOR_S, CheckPlan, early_checks, plan_checks
+from autotune.analysis.hold_plan import RECOVERY_PRIOR_S, CheckPlan, plan_checks
 from autotune.analysis.hold_signal import NoiseModel, SignalModel
 from autotune.wire.rig import measurement_shots
 
@@ -51,10 +51,6 @@ OPEN_NIGHT_HORIZON_S = 3600.0
 # gamma-Poisson estimate, (recoveries + 1) / (elapsed + 4 h)), each costing the mean of the
 # night's retunes (:data:`RECOVERY_PRIOR_S`), and the plan states whether the rest pays for them.
 _CHECK_SHARE = 0.5
-# Passes of the plan against its early checks' beam (plan_night), and the least share of the
-# budget's the cadence is planned on when the early checks would take the rest.
-_EARLY_PASSES = 4
-_EARLY_LEAST = 0.25
 
 
 @dataclass(frozen=True)
@@ -181,8 +177,8 @@ def expected_stage_beam_s(prior_s: float, spent: Sequence[float]) -> float:
 
 def plan_night(settings: HoldSettings, *, budget: BeamBudget, rows: Sequence[Sequence[float]],
                prior: LockPrior, lock: DriftLock, reference: Mapping[str, float],
-               recovery_beam_s: float, recoveries: int, step_hz: float = 15e3,
-               horizon_s: float = 3600.0) -> tuple[CheckPlan | None, dict[str, float]]:
+               recovery_beam_s: float, recoveries: int, step_hz: float = 15e3
+               ) -> tuple[CheckPlan | None, dict[str, float]]:
     """The night's plan of its checks now: the share the budget gives them
     (:func:`checks_share`), then their cadence, shots and test (:func:`plan_checks`) from the
     measurements so far (``rows`` of :func:`noise_row`: the noise and the signal models).
@@ -195,36 +191,11 @@ def plan_night(settings: HoldSettings, *, budget: BeamBudget, rows: Sequence[Seq
         return None, share
     noise = NoiseModel.from_estimates([(r[0], r[1], int(r[2])) for r in rows])
     inversion, stderr = reference_value(reference)
-    signal = SignalModel.from_rows(rows)
-
-    def planned(check_share: float) -> tuple[CheckPlan, dict[str, float]]:
-        plan = plan_checks(settings, noise=noise, prior=prior, lock=lock,
-                           reference_inversion=inversion, reference_stderr=stderr,
-                           check_share=check_share, step_hz=step_hz, signal=signal,
-                           step_rate_per_s=share["recoveries_per_h"] / 3600.0)
-        return plan, early_checks(plan, lock, max_gain=settings.max_gain,
-                                  horizon_s=max(horizon_s, 60.0))
-
-    # The checks brought forward after a start or a retune (hold_plan.reach_s) are paid out of
-    # the same share over the plan's horizon (until the next plan, or the early checks' span
-    # when longer): the share the cadence is planned on is lowered by their extra beam until
-    # cadence and early checks together stay within it.
-    allowed = share["share"]
-    plan, early = planned(allowed)
-    planned_share = allowed
-    for _ in range(_EARLY_PASSES):
-        window = max(min(horizon_s, budget.ahead_s), early["span_s"], 60.0)
-        if plan.check_share * window + early["extra_beam_s"] <= allowed * window * (1.0 + 1e-9):
-            break
-        planned_share = max(min(planned_share, allowed - early["extra_beam_s"] / window),
-                            _EARLY_LEAST * allowed)
-        if planned_share <= _EARLY_LEAST * allowed * (1.0 + 1e-9) and \
-                plan.check_share <= planned_share:
-            break
-        plan, early = planned(planned_share)
-    share = {**share, "planned_share": planned_share, "early_checks": early["checks"],
-             "early_span_s": early["span_s"], "early_beam_s": early["beam_s"],
-             "early_extra_beam_s": early["extra_beam_s"]}
+    plan = plan_checks(settings, noise=noise, prior=prior, lock=lock,
+                       reference_inversion=inversion, reference_stderr=stderr,
+                       check_share=share["share"], step_hz=step_hz,
+                       signal=SignalModel.from_rows(rows),
+                       step_rate_per_s=share["recoveries_per_h"] / 3600.0)
     return plan, share
 
 
