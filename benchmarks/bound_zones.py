@@ -21,6 +21,7 @@ The observer reads the search's posterior through its private helpers, as
 from __future__ import annotations
 
 import argparse
+import itertools
 import math
 import statistics
 import sys
@@ -89,7 +90,7 @@ def falls(runs: list[dict[str, Any]], bar: float) -> dict[tuple[str, str], tuple
     out: dict[tuple[str, str], tuple[int, float, float]] = {}
     for run in runs:
         rows = [r for r in run["rows"] if "now" in r and math.isfinite(r["now"]) and math.isfinite(r["after"])]
-        for a, b in zip(rows, rows[1:]):
+        for a, b in itertools.pairwise(rows):
             if b["step"] != a["step"] + 1 or b["purpose"] != a["next"]:
                 continue
             key = ("within the bar" if a["now"] <= bar else "above the bar", a["next"])

@@ -11,6 +11,7 @@ The outside reference for the quality of the night is the simulated rig's noisel
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import json
 import math
 import re
@@ -561,7 +562,7 @@ def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_re
     assert len(told) >= 2, "no later plan crossed the line"
     # Told again only where the plan's side of the line changed (hold_outlook.outlook_due).
     sides = [records[i]["outlook"]["met"] for i in told]
-    assert all(a != b for a, b in zip(sides, sides[1:])), sides
+    assert all(a != b for a, b in itertools.pairwise(sides)), sides
     later = records[told[1]]
     numbers = later["outlook"]
     assert numbers["later"] is True and numbers["met"] is False
