@@ -91,10 +91,12 @@ def test_points_to_reach_is_a_lower_count_where_the_error_is_not_centred(mean):
 
 
 def test_points_to_reach_at_the_target_without_a_fall_and_on_bad_input():
-    """Already at the target: none; a next point not expected to lower the bound: infinitely many;
-    non-finite bounds or a target <= 0: a clear error."""
+    """Already at the target: none; a next point not expected to lower the bound (its bound
+    after as large, or infinite: no point gives one): infinitely many; a bound now that is not
+    finite, a bound after that is no number, or a target <= 0: a clear error."""
     assert points_to_reach(0.009, 0.008, 0.01) == 0.0
     assert points_to_reach(0.015, 0.015, 0.01) == float("inf")
+    assert points_to_reach(0.015, float("inf"), 0.01) == float("inf")
     assert points_to_reach(0.015, 0.0, 0.01) == 1.0
     for bad in ((float("inf"), 0.01, 0.01), (0.02, float("nan"), 0.01), (0.02, 0.01, 0.0)):
         with pytest.raises(ValueError, match="points_to_reach"):

@@ -317,7 +317,9 @@ class ShortfallBound:
         now, after = expected_fall(self, velocity, clock)
         target = self.settings.target_shortfall
         bar = self.settings.still_good_shortfall if acceptance_bar is None else float(acceptance_bar)
-        if not math.isfinite(now) or now <= target or now > bar or not math.isfinite(after):
+        # A bound after the next point that is no number (NaN) says nothing either way; an
+        # infinite one says that no point lowers it (points_to_reach: inf).
+        if not math.isfinite(now) or now <= target or now > bar or math.isnan(after):
             return None
         points = points_to_reach(now, after, target)
         if points <= points_left:

@@ -119,7 +119,8 @@ def usable_chance(usable: int, unusable: int) -> float:
 
 def points_to_reach(now: float, after: float, target: float) -> float:
     """How many more points like the next one a bound needs to fall from ``now`` to ``target``,
-    given that one point is expected to leave ``after`` (inf when it is not expected to fall).
+    given that one point is expected to leave ``after`` (inf when it is not expected to fall,
+    ``after`` infinite included: no point gives a bound).
 
     The bound's dominant terms are upper quantiles of a loss quadratic in a Gaussian error (the
     phase error's ``1 - cos(eps / 2)``, the velocity curve's loss near its vertex): at a mean
@@ -139,8 +140,9 @@ def points_to_reach(now: float, after: float, target: float) -> float:
     the bar a point is expected to lower the bound by a small part of it (0.03 % of 1.92 % in
     velocity_physics 3 of benchmarks/results/calibration.json), far from that.
     """
-    if not (math.isfinite(now) and math.isfinite(after)) or target <= 0.0:
-        raise ValueRefused(f"points_to_reach: expected finite bounds and a target > 0, got "
+    if not math.isfinite(now) or math.isnan(after) or target <= 0.0:
+        raise ValueRefused(f"points_to_reach: expected a finite bound now, a bound after that is "
+                           f"a number (inf: no point lowers it) and a target > 0, got "
                            f"{now!r}, {after!r}, {target!r}")
     if now <= target:
         return 0.0
