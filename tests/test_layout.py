@@ -17,7 +17,8 @@ from rig_process import REPO
 AUTOTUNE = REPO / "autotune"
 
 #: The foundation: top-level modules every package may import (the exceptions, the plausible
-#: ranges, the progress data and its units, the validation library, the run configuration).
+#: ranges, the progress data and its units, the validation library, the run configuration, the
+#: packaged configuration files' paths).
 FOUNDATION = frozenset({"autotune", "errors", "plausible", "progress", "schema", "config",
                         "packaged"})
 
