@@ -7,11 +7,11 @@ optimisation.
 
 A package per concern (DEVELOPERS.md, Layout): the foundation at the top level
 (:mod:`autotune.errors`, :mod:`autotune.plausible`, :mod:`autotune.progress`,
-:mod:`autotune.schema`, :mod:`autotune.config`); the pure analysis (:mod:`autotune.analysis`);
-the wire (:mod:`autotune.wire`); the lab kit (:mod:`autotune.kit`, with the driver contract at
-its public path :mod:`autotune.driver`); running a stage and a night (:mod:`autotune.run`); the
-morning report (:mod:`autotune.report`); the command line (:mod:`autotune.cli`); the study
-(:mod:`autotune.bench`).
+:mod:`autotune.schema`, :mod:`autotune.config`, :mod:`autotune.packaged`); the pure analysis
+(:mod:`autotune.analysis`); the wire (:mod:`autotune.wire`); the lab kit (:mod:`autotune.kit`,
+with the driver contract at its public path :mod:`autotune.driver`); running a stage and a
+night (:mod:`autotune.run`); the morning report (:mod:`autotune.report`); the command line
+(:mod:`autotune.cli`); the study (:mod:`autotune.bench`).
 """
 
 from __future__ import annotations

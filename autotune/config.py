@@ -39,7 +39,10 @@ from pydantic import BeforeValidator, Strict, model_validator
 from pydantic_core import PydanticCustomError
 
 from autotune import plausible
-from autotune.errors import ConfigError, ConfigErrors, ValueRefused
+from autotune.errors import ConfigError, ConfigErrors
+# The packaged configurations (what a command reads by default) live in the light
+# autotune.packaged, re-exported here: `autotune rig` needs their path, not these models.
+from autotune.packaged import PACKAGED_CONFIGS, packaged_config
 from autotune.schema import (
     Expect,
     collect,
@@ -73,32 +76,6 @@ __all__ = [
     "PACKAGED_CONFIGS",
     "packaged_config",
 ]
-
-#: The configuration files shipped inside the package (``autotune/data``): what a command reads
-#: by default, so that an installed ``autotune`` runs from any folder. The repository's
-#: ``configs/`` holds identical copies (tests/test_packaging.py keeps them so).
-PACKAGED_CONFIGS = ("dry-run.toml", "sim-rig.toml", "sim-driver.toml", "calibrate.toml")
-
-_DATA_DIR = Path(__file__).resolve().parent / "data"
-
-
-def packaged_config(name: str) -> Path:
-    """Path of a configuration file shipped with the package.
-
-    Parameters
-    ----------
-    name : str
-        One of :data:`PACKAGED_CONFIGS` (e.g. ``"dry-run.toml"``).
-
-    Raises
-    ------
-    ValueRefused
-        ``name`` is not a packaged configuration (a ValueError too).
-    """
-    if name not in PACKAGED_CONFIGS:
-        raise ValueRefused(f"name: expected one of {', '.join(PACKAGED_CONFIGS)}, got {name!r}")
-    return _DATA_DIR / name
-
 
 StrategyKind = Literal["phase_lock", "bayesian", "grid", "coordinate", "random"]
 #: Where ``autotune track`` leaves the rig when the night stops.

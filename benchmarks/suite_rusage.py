@@ -21,6 +21,23 @@ from pathlib import Path
 
 import pytest
 
+_STARTED: list[list[str]] = []
+
+
+def pytest_configure(config):  # type: ignore[no-untyped-def]
+    """Count the processes each test starts (subprocess.Popen, asyncio's included)."""
+    import subprocess
+    if not os.environ.get("SUITE_RUSAGE_DIR") or getattr(subprocess.Popen, "_suite_counted", False):
+        return
+    original = subprocess.Popen.__init__
+
+    def counted(self, args, *rest, **kwargs):  # type: ignore[no-untyped-def]
+        _STARTED.append([str(a) for a in args][:6] if isinstance(args, (list, tuple)) else [str(args)])
+        original(self, args, *rest, **kwargs)
+
+    subprocess.Popen.__init__ = counted  # type: ignore[method-assign]
+    subprocess.Popen._suite_counted = True  # type: ignore[attr-defined]
+
 
 def _cpu(who: int) -> float:
     usage = resource.getrusage(who)
@@ -34,14 +51,25 @@ def pytest_runtest_protocol(item, nextitem):  # type: ignore[no-untyped-def]
         yield
         return
     worker = os.environ.get("PYTEST_XDIST_WORKER", "main")
+    _STARTED.clear()
     start, self0, children0 = time.time(), _cpu(resource.RUSAGE_SELF), _cpu(resource.RUSAGE_CHILDREN)
     yield
     end = time.time()
     record = {"nodeid": item.nodeid, "worker": worker, "start": start, "end": end,
               "self": _cpu(resource.RUSAGE_SELF) - self0,
-              "children": _cpu(resource.RUSAGE_CHILDREN) - children0}
+              "children": _cpu(resource.RUSAGE_CHILDREN) - children0,
+              "started": [_command(args) for args in _STARTED]}
     with open(Path(folder) / f"{worker}.jsonl", "a", encoding="utf-8") as out:
         out.write(json.dumps(record) + "\n")
+
+
+def _command(args: list[str]) -> str:
+    """The `autotune` command a process runs (`rig`, `calibrate`, ...), else its program."""
+    for i, arg in enumerate(args):
+        if arg in ("autotune", "autotune.cli", "autotune.__main__") or arg.endswith("/autotune"):
+            rest = [a for a in args[i + 1:] if not a.startswith("-")]
+            return "autotune " + (rest[0] if rest else "")
+    return Path(args[0]).name if args else "?"
 
 
 def _load(folder: str) -> list[dict]:

@@ -17,8 +17,10 @@ from rig_process import REPO
 AUTOTUNE = REPO / "autotune"
 
 #: The foundation: top-level modules every package may import (the exceptions, the plausible
-#: ranges, the progress data and its units, the validation library, the run configuration).
-FOUNDATION = frozenset({"autotune", "errors", "plausible", "progress", "schema", "config"})
+#: ranges, the progress data and its units, the validation library, the run configuration, the
+#: packaged configuration files' paths).
+FOUNDATION = frozenset({"autotune", "errors", "plausible", "progress", "schema", "config",
+                        "packaged"})
 
 #: What each unit may import besides itself, as its ``__init__`` docstring says.
 ALLOWED: dict[str, frozenset[str]] = {
@@ -26,7 +28,8 @@ ALLOWED: dict[str, frozenset[str]] = {
     "plausible": frozenset(),
     "progress": frozenset(),
     "schema": frozenset({"errors", "plausible"}),
-    "config": frozenset({"errors", "plausible", "schema"}),
+    "packaged": frozenset({"errors"}),
+    "config": frozenset({"errors", "plausible", "schema", "packaged"}),
     "autotune": frozenset({"errors"}),
     "analysis": FOUNDATION | {"wire"},  # of the wire, only WIRE_FOR_ANALYSIS
     "wire": FOUNDATION,

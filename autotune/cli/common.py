@@ -11,11 +11,10 @@ import threading
 from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import structlog
 
-from autotune.config import RunConfig
 from autotune.errors import (
     AutotuneError,
     ConfigError,
@@ -26,6 +25,9 @@ from autotune.errors import (
     RigLeased,
     RigTimeout,
 )
+
+if TYPE_CHECKING:  # the run config is imported by the commands that read one, not by rig
+    from autotune.config import RunConfig
 
 
 EXIT_OK = 0

@@ -14,7 +14,6 @@ from typing import Any
 
 import structlog
 
-from autotune.run.journal import LOG_NAME
 from autotune.progress import setpoint_value_text
 from autotune.run.display import ProgressDisplay, progress_mode, progress_text
 
@@ -181,6 +180,8 @@ class _MergeRepeats(logging.Filter):
         """Say how many repeats were held back, if any."""
         if not self.count:
             return
+        from autotune.run.journal import LOG_NAME  # a stage's module (log_to_run_folder)
+
         count, self.count = self.count, 0
         note = logging.makeLogRecord({
             "msg": f"the warning above repeated {count} more time{'s' if count > 1 else ''} "
@@ -226,6 +227,10 @@ def configure_logging(level: str) -> None:
 
 
 def log_to_run_folder(run_dir: Path) -> logging.Handler:
+    # Imported here: the journal's record models (pydantic, built at import) are a stage's,
+    # not the servers' (`autotune rig`, `serve`, `probe` load this module too).
+    from autotune.run.journal import LOG_NAME
+
     run_dir.mkdir(parents=True, exist_ok=True)
     handler = logging.FileHandler(run_dir / LOG_NAME, encoding="utf-8")
     handler.setFormatter(structlog.stdlib.ProcessorFormatter(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import difflib
+import importlib
 import math
 import re
 from collections.abc import Callable, Sequence
@@ -15,10 +16,22 @@ from autotune import __version__
 from autotune.plausible import SEED_MAX, SERVER_TIMEOUT_S, THERMAL_STEP_HZ, Plausible
 from autotune.cli.common import CAUTION, STAGE_EXITS
 from autotune.cli.console import configure_logging, console_level
-from autotune.cli.dry_run import cmd_dry_run
-from autotune.cli.report_command import cmd_report
 from autotune.cli.rig_side import SIM_RIG_CONFIG, add_server_arguments, cmd_probe, cmd_rig, cmd_serve
-from autotune.cli.stages import cmd_stage, cmd_track
+
+
+def _command(module: str, name: str) -> Callable[..., int]:
+    """A command's function, imported from ``autotune.cli.<module>`` when the command runs: the
+    stages, the dry run and the report load the run configuration's and the journal's models
+    (pydantic, built at import), which ``rig``, ``serve``, ``probe`` and ``--help`` never need."""
+    def run(*args: Any) -> int:
+        return int(getattr(importlib.import_module(f"autotune.cli.{module}"), name)(*args))
+    return run
+
+
+cmd_stage = _command("stages", "cmd_stage")
+cmd_track = _command("stages", "cmd_track")
+cmd_dry_run = _command("dry_run", "cmd_dry_run")
+cmd_report = _command("report_command", "cmd_report")
 
 
 # -- parser ------------------------------------------------------------------------------

@@ -15,7 +15,7 @@ from typing import Any
 
 import structlog
 
-from autotune.config import packaged_config
+from autotune.packaged import packaged_config
 from autotune.errors import (
     ConfigError,
 )
