@@ -180,7 +180,8 @@ class _MergeRepeats(logging.Filter):
         """Say how many repeats were held back, if any."""
         if not self.count:
             return
-        from autotune.run.journal import LOG_NAME  # a stage's module (log_to_run_folder)
+        # The journal is a stage's module (log_to_run_folder): imported where it is used.
+        from autotune.run.journal import LOG_NAME
 
         count, self.count = self.count, 0
         note = logging.makeLogRecord({
