@@ -57,7 +57,7 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
   share, and the false-alarm design in rig time counts their shorter gaps. A check that leaves
   a phase chart between half its warning level and the warning level brings the next one after
-  an eighth, a quarter or half the interval, the planner's choice (a CUSUM with variable
+  a quarter or half the interval, the planner's choice (a CUSUM with variable
   sampling intervals: M. R. Reynolds, R. W. Amin and J. C. Arnold, Technometrics 32, 371
   (1990); :func:`in_control_sooner`, :func:`next_check`), counted in the share and the
   false-alarm design alike; the planner's time to confirm a step is that chart's average time

@@ -77,8 +77,13 @@ SOONER_LEVEL = 0.5
 SOONER_INTERVAL = 0.5
 #: The middle zone's waits (fractions of the interval) the planner chooses among
 #: (:func:`plan_checks`, with :func:`vsi_delay`); :data:`SOONER_INTERVAL` is the default of a plan
-#: that does not say (``inputs["sooner_interval"]``).
-SOONER_INTERVALS = (0.125, 0.25, 0.5)
+#: that does not say (``inputs["sooner_interval"]``). No wait shorter than a quarter: the chain
+#: behind :func:`vsi_delay` has every check after a step read it at the same z, while the lock
+#: takes part of the step in at each check between, so the shortest wait buys less than the
+#: chain plans; at an eighth the planner took shorter intervals for the same share, more
+#: in-control checks landed in the middle zone and quiet nights spent more of the beam
+#: (benchmarks/README.md, sessions 11 and 12).
+SOONER_INTERVALS = (0.25, 0.5)
 
 # One-sided 5 % (scipy.stats.norm.isf(0.05)): the least room of a check, however rare the checks.
 _LEAST_USABLE_Z = 1.645
@@ -283,6 +288,14 @@ def vsi_delay(shift_sd: float, reference: float, threshold: float, warning: floa
     chain's transitions under the shift and ``t`` the wait after a check ending in each cell,
     ``T = P (t + T)``, so ``T = (I - P)^-1 P t``; the alarm's own check adds ``check_s``.
     The rechecks' run limit (:func:`recheck_run_limit`) is left out.
+
+    Where it errs: the chain reads every check after the shift at the same ``shift_sd``. On a
+    night the lock corrects the set-point at each check that does not alarm (its gain takes part
+    of an under-read step in as drift), so the checks after the first read a smaller shift than
+    the chain has, and the more of them the middle zone brings before the alarm, the more of the
+    step is gone: the delay is short of the night's, most for the shortest middle-zone waits.
+    That is why the planner does not choose a wait below a quarter of the interval
+    (:data:`SOONER_INTERVALS`).
     """
     if shift_sd - reference <= 0.0:
         return math.inf
