@@ -188,7 +188,11 @@ class Night:
                     continue
                 self.state = {**self.state, "mode": "recover"}
                 continue
-            if self.session.clock >= float(self.state["replan_clock"]):
+            # The hourly plan waits for a recheck run to end: the run's statistics are read
+            # against the thresholds and the shots it began with (a plan made inside it would
+            # change both, and drop the run's count of rechecks).
+            if self.session.clock >= float(self.state["replan_clock"]) and \
+                    not (self.state.get("next") or {}).get("recheck"):
                 self._replan("an hour of rig time since the last plan")
                 continue
             self._hold_once()
