@@ -53,6 +53,9 @@ __all__ = [
     "step_delay_of",
     "recheck_run_limit",
     "next_check",
+    "innovation_sd_at",
+    "reach_s",
+    "LEAST_REACH",
 ]
 
 # Shortest interval the planner considers (s) and the number of candidate intervals.
@@ -93,6 +96,12 @@ _MIN_DESIGN_SNR = 1.0
 # Rig time of the prior of the night's rate of steps and recoveries: one per four hours,
 # counted as one more recovery (s).
 RECOVERY_PRIOR_S = 4 * 3600.0
+#: Least share of the planned interval a check is brought forward to when the lock's predicted
+#: innovation outgrows the plan's before the interval is over (:func:`reach_s`): a lock whose
+#: peak alone is already less certain than the plan assumed is not checked back to back.
+LEAST_REACH = 0.25
+# Points of the search for the time the predicted innovation leaves the plan's.
+_REACH_POINTS = 64
 
 
 
@@ -704,8 +713,53 @@ def recheck_run_limit(test: SequentialTest) -> int:
     return max(1, math.ceil(cusum_arl(2.0 * k, k, h)))
 
 
+def innovation_sd_at(lock: DriftLock, clock_s: float, variance_hz2: float) -> float:
+    """Standard deviation of the innovation the lock predicts for a check at ``clock_s`` whose
+    own measurement variance is ``variance_hz2`` (Hz): the filter's predicted variance of the
+    peak there (:meth:`DriftLock.predict`: ``P + 2 tau P_pr + tau^2 P_rr`` and the walks) plus
+    the check's, ``S = H P(t|t0) H' + R`` (Y. Bar-Shalom, X. R. Li and T. Kirubarajan,
+    *Estimation with Applications to Tracking and Navigation*, Wiley 2001, sec. 5.2.3, the
+    innovation covariance of the Kalman filter's prediction stage)."""
+    predicted = lock.predict(float(clock_s)).covariance[0][0]
+    return math.sqrt(max(predicted, 0.0) + float(variance_hz2))
+
+
+def reach_s(plan: CheckPlan, lock: DriftLock, *, start_s: float, wait_s: float) -> float:
+    """The wait (s, from ``start_s``) before the next check, at most ``wait_s``, so that the
+    lock's predicted innovation (:func:`innovation_sd_at`, the plan's measurement variance)
+    is still within the plan's (``plan.inputs["innovation_sd_hz"]``, the filter's settled
+    state the test was designed on).
+
+    The plan sizes the test on the settled filter; after a start or a retune, and whenever the
+    filter is less certain than settled, the prediction over a whole interval carries the rate's
+    uncertainty times the interval squared, and a step reads at fewer standard deviations than
+    designed (benchmarks/README.md, session 11). The check is brought forward to the last
+    time the predicted innovation stays within the plan's, never sooner than
+    :data:`LEAST_REACH` of the plan's interval (nor later than ``wait_s``). The false-alarm
+    design is kept: the check's ``z`` is on the innovation's actual deviation either way.
+    """
+    wait = float(wait_s)
+    planned = plan.inputs.get("innovation_sd_hz")
+    if planned is None or not math.isfinite(float(planned)) or wait <= 0.0:
+        return wait
+    variance = float(plan.detuning_stderr_hz) ** 2
+    limit = float(planned) * (1.0 + 1e-6)
+    start = float(start_s)
+    if innovation_sd_at(lock, start + wait, variance) <= limit:
+        return wait
+    least = min(LEAST_REACH * float(plan.interval_s), wait)
+    # The first time the prediction leaves the plan's, on a fine grid, then the time before it.
+    reach = least
+    for tau in np.linspace(least, wait, _REACH_POINTS):
+        if innovation_sd_at(lock, start + float(tau), variance) > limit:
+            break
+        reach = float(tau)
+    return reach
+
+
 def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
-               run: int, statistic: float = 0.0) -> dict[str, Any]:
+               run: int, statistic: float = 0.0, lock: DriftLock | None = None
+               ) -> dict[str, Any]:
     """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
 
     A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
@@ -715,17 +769,25 @@ def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: fl
     interval after the first shot of the last (the middle zone of a CUSUM with variable
     sampling intervals; the planner counts its share in the checks' beam,
     :func:`in_control_sooner`); any other check comes the plan's interval after it
-    (``first_shot_s``, else ``clock_s``). Returns ``due_clock``, ``recheck``, ``sooner`` and
+    (``first_shot_s``, else ``clock_s``). With the lock after the check (``lock``) the wait is
+    brought forward to when its predicted innovation would outgrow the plan's (:func:`reach_s`;
+    ``reach`` is True then). Returns ``due_clock``, ``recheck``, ``sooner``, ``reach`` and
     ``run`` (the rechecks in a row, this one included).
     """
     if action == "recheck":
         run = int(run) + 1
         if run <= recheck_run_limit(plan.test):
-            return {"due_clock": float(clock_s), "recheck": True, "sooner": False, "run": run}
+            return {"due_clock": float(clock_s), "recheck": True, "sooner": False,
+                    "reach": False, "run": run}
     else:
         run = 0
     start = float(clock_s if first_shot_s is None else first_shot_s)
     sooner = action in ("hold", "correct") and \
         float(statistic) >= SOONER_LEVEL * float(plan.test.warning)
     interval = plan.interval_s * (sooner_interval_of(plan) if sooner else 1.0)
-    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "run": run}
+    reach = False
+    if lock is not None:
+        wait = reach_s(plan, lock, start_s=start, wait_s=interval)
+        reach, interval = wait < interval, wait
+    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "reach": reach,
+            "run": run}
