@@ -134,6 +134,9 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
     - every stage begun (a ``retune``/``calibrate`` decision with its index) has its records
       and, in a finished night, its ``stage_done``, indices in order, each once;
     - every ``wait`` waits forwards, and is written before the check it waits for;
+    - a recheck run is never cut by the hourly plan: between a check whose next is a recheck
+      and that recheck, no ``plan`` decision made for the hour (a run's statistics are read
+      against the thresholds and shots it began with);
     - a finished night ends with a ``stop`` decision that says why.
     """
     hold_estimates: dict[int, int] = {}
@@ -142,6 +145,7 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
     done: list[int] = []
     pending_correction: Mapping[str, Any] | None = None
     alarm_open = False
+    recheck_of: int | None = None
     for position, rec in enumerate(records):
         kind = rec["type"]
         what = rec.get("what")
@@ -167,6 +171,12 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
             assert rec["action"] in ("hold", "correct", "recheck", "alarm") and rec["reason"]
             tests = rec["state"]["tests"]
             assert min(tests["upper"], tests["lower"], tests["inversion"]) >= 0.0
+            upcoming = rec["state"].get("next") or {}
+            recheck_of = point if upcoming.get("recheck") else None
+        elif kind == "decision" and what == "plan" and recheck_of is not None:
+            assert not rec["reason"].startswith("an hour of rig time"), (
+                f"record {rec['seq']}: the hourly plan cut the recheck run after check "
+                f"{recheck_of}")
         elif kind == "decision" and what == "correct" and "point" in rec:
             assert set(rec["from"]) == set(rec["to"]), rec
             pending_correction = rec
@@ -177,6 +187,7 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
                 pending_correction = None
         elif kind == "decision" and what == "alarm":
             alarm_open = True
+            recheck_of = None
         elif kind == "decision" and what in ("retune", "calibrate") and "index" in rec:
             alarm_open = False
             assert rec["index"] not in begun, f"record {rec['seq']}: stage {rec['index']} begun twice"

@@ -532,7 +532,7 @@ def test_a_real_rig_is_waited_for_in_wall_time_and_a_stop_ends_the_wait(tmp_path
 
 def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_resumes_quietly(
         tmp_path):
-    """A rig with 0.08 atoms per sample (about 0.04 detected per shot) over a 2.5 h night at
+    """A rig with 0.07 atoms per sample (about 0.035 detected per shot) over a 2.5 h night at
     the default 5 %: the first plan confirms a 15 kHz step within 15 min (an info outlook);
     a thermal step's retune eats into the budget, the later plans' checks come less often,
     and the plan that crosses the 15 min line tells the outlook again, hours into the night,
@@ -540,7 +540,7 @@ def test_a_night_whose_checks_slow_after_a_retune_tells_its_outlook_again_and_re
     first (``step_outlook``) and the last (``last_step_outlook``). A night cut just after
     that later outlook resumes without telling it again (it is on the same side of the line)."""
     data = tomllib.loads(SIM.read_text())
-    data["rig"]["atoms_per_sample"] = 0.08
+    data["rig"]["atoms_per_sample"] = 0.07
     data["drift"]["random_walk_hz_per_sqrt_s"] = 0.0
     rig = LocalRig(SimulatedDriver(SimulatedRig(sim_config_from_dict(data), 5)))
     config = dataclasses.replace(night_config(hours=2.5), min_inversion=0.3)

@@ -25,6 +25,7 @@ from autotune.analysis.hold import (
     assess_check,
     choose_recovery,
     next_check,
+    reach_s,
     noise_row,
     lock_at_stage_end,
     plan_night,
@@ -188,7 +189,11 @@ class Night:
                     continue
                 self.state = {**self.state, "mode": "recover"}
                 continue
-            if self.session.clock >= float(self.state["replan_clock"]):
+            # The hourly plan waits for a recheck run to end: the run's statistics are read
+            # against the thresholds and the shots it began with (a plan made inside it would
+            # change both, and drop the run's count of rechecks).
+            if self.session.clock >= float(self.state["replan_clock"]) and \
+                    not (self.state.get("next") or {}).get("recheck"):
                 self._replan("an hour of rig time since the last plan")
                 continue
             self._hold_once()
@@ -560,7 +565,11 @@ class Night:
         nxt = state.get("next")
         # After a stage the first check comes one interval later (the stage has just measured);
         # a plan made again on the hour keeps the next check's time and takes the new shots.
-        due = self.session.clock + plan.interval_s if nxt is None else float(nxt["due_clock"])
+        # The first check is brought forward when the lock's prediction over the whole interval
+        # (the rate's uncertainty after a start or a retune) outgrows the plan's innovation.
+        due = self.session.clock + reach_s(
+            plan, DriftLock.from_dict(state["lock"]), start_s=self.session.clock,
+            wait_s=plan.interval_s) if nxt is None else float(nxt["due_clock"])
         self.state = {**state, "plan": plan.to_dict(),
                       "next": {"point": point, "due_clock": due, "recheck": False,
                                "shots_per_phase": plan.shots_per_phase},
@@ -721,7 +730,8 @@ class Night:
                                first_shot_s=m.t_first,
                                # An unreadable check is always repeated at once.
                                run=int(state["next"].get("run", 0)) if a.usable else 0,
-                               statistic=max(a.upper, a.lower) if a.usable else 0.0)
+                               statistic=max(a.upper, a.lower) if a.usable else 0.0,
+                               lock=a.lock)
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,

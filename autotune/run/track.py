@@ -15,7 +15,8 @@ A night
    moved on with its ``advance`` op, a real rig is waited for in wall time, interruptibly, its
    clock read with ``status``), check (one fringe pair of both fields at the set-points in force
    and the plan's shots), assess (:func:`autotune.analysis.hold.assess_check`), correct the detuning.
-   The plan is made again after every stage and every hour of rig time, from the noise and
+   The plan is made again after every stage and every hour of rig time (the hourly plan after
+   a recheck run ends), from the noise and
    signal measured so far and the beam time holding has taken.
    The beam budget is a ceiling (:class:`autotune.analysis.hold.BeamBudget`): a check or a stage begins
    only when what is left pays for it at its largest size; a recovery is sized by
