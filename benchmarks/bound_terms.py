@@ -23,6 +23,7 @@ from typing import Any
 
 import numpy as np
 from dev_calibrations import (
+    SEARCH_PURPOSES,
     add_draw_arguments,
     calibrate,
     draw_errors,
@@ -32,8 +33,6 @@ from dev_calibrations import (
 from scipy import optimize
 
 from autotune.analysis.lock_fit import mixture_phase_error
-
-_SEARCH = ("lock", "velocity", "relock", "search")
 
 
 def _true_parts(rig: Any, rec: dict[str, float]) -> tuple[float, float]:
@@ -57,7 +56,7 @@ class _Terms:
 
     def __call__(self, points: int, lock: Any, session: Any) -> None:
         last = lock._obs[-1]
-        if last.purpose not in _SEARCH or not lock._velocity_plan()["concluded"] or lock._anchor() is None:
+        if last.purpose not in SEARCH_PURPOSES or not lock._velocity_plan()["concluded"] or lock._anchor() is None:
             return
         rec = dict(lock.recommend().point)
         clock = lock._now(None)

@@ -29,6 +29,7 @@ from typing import Any
 
 from dev_calibrations import (
     FLOOR_SHOTS,
+    SEARCH_PURPOSES,
     add_draw_arguments,
     calibrate,
     draw_errors,
@@ -37,8 +38,6 @@ from dev_calibrations import (
 )
 
 from autotune.analysis.next_point import _best
-
-_SEARCH = ("lock", "velocity", "relock", "search")
 
 
 class _Bounds:
@@ -51,7 +50,7 @@ class _Bounds:
         last = lock._obs[-1]
         row: dict[str, Any] = {"step": points, "purpose": last.purpose, "total": int(session.tally.shots)}
         plan = lock._velocity_plan()
-        if last.purpose in _SEARCH and plan["concluded"] and lock._anchor() is not None:
+        if last.purpose in SEARCH_PURPOSES and plan["concluded"] and lock._anchor() is not None:
             fit = lock._lock_fit(float(plan["velocity"]))
             if fit is not None and fit.slope_known():
                 # The bound now and the candidate expected to lower it most per shot (what
@@ -70,7 +69,7 @@ def _run(job: dict[str, Any]) -> dict[str, Any]:
 
 def zones(run: dict[str, Any], bar: float) -> tuple[float, float, float]:
     """Shots (x floor) until the first finite bound, from it to the bar, from the bar to the stop."""
-    rows = [r for r in run["rows"] if r["purpose"] in _SEARCH]
+    rows = [r for r in run["rows"] if r["purpose"] in SEARCH_PURPOSES]
     if not rows:
         return 0.0, 0.0, 0.0
     finite = [r for r in rows if math.isfinite(r.get("now", math.inf))]

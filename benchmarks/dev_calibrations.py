@@ -24,6 +24,9 @@ from autotune.bench import scenarios as bench_scenarios
 from autotune.run import runner
 
 FLOOR_SHOTS = 72_000  # the study's oracle floor: the 72,000-shot verification at the true best
+# The purposes of a calibration's search steps (the verification's excluded), which the
+# observers of bound_zones.py and bound_terms.py read the posterior after.
+SEARCH_PURPOSES = ("lock", "velocity", "relock", "search")
 
 
 def add_draw_arguments(parser: argparse.ArgumentParser, families: str) -> None:
