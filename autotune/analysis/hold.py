@@ -62,6 +62,13 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   (1990); :func:`in_control_sooner`, :func:`next_check`), counted in the share and the
   false-alarm design alike; the planner's time to confirm a step is that chart's average time
   to signal from its Markov chain, the middle zone's checks included (:func:`vsi_delay`).
+  The test is designed on the drift filter's settled state; where the lock's predicted
+  innovation at the next check is wider than that by more than :data:`REACH_RATIO` (after a
+  start or a retune, the rate's uncertainty times the interval squared), the check is brought
+  forward to where it is not, never sooner than :data:`LEAST_REACH` of the interval
+  (:func:`reach_s`, :func:`innovation_sd_at`: the Kalman filter's prediction, Y. Bar-Shalom,
+  X. R. Li and T. Kirubarajan, Estimation with Applications to Tracking and Navigation, 2001,
+  sec. 5.2.3). The hourly plan waits for a recheck run to end.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
