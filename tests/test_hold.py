@@ -26,6 +26,7 @@ from autotune.analysis.hold import (
     plan_checks,
     two_sided_arl,
 )
+from autotune.analysis.hold_plan import SOONER_INTERVAL
 from autotune.analysis.search import PointResult
 
 SLOPE = 9.0e-5  # rad/Hz, of the order of the demo rig's (docs/physics.md section 5b)
@@ -321,12 +322,11 @@ def test_plan_keeps_the_checks_within_their_share_and_their_shots():
     plan = plan_checks(settings, noise=_noise(), prior=_prior(), lock=lock,
                        reference_inversion=0.72, reference_stderr=0.02, check_share=0.025)
     # The rechecks above the warning level and the checks brought sooner by the middle zone
-    # (after the plan's middle-zone wait, a fraction of the interval) take beam too: the share
-    # counts them.
+    # (after SOONER_INTERVAL of the interval) take beam too: the share counts them.
     gap = plan.inputs["mean_gap_s"]
     recheck, sooner = plan.inputs["recheck_share"], plan.inputs["sooner_share"]
     assert gap == pytest.approx((1.0 - recheck - sooner) * plan.interval_s
-                                + sooner * plan.inputs["sooner_interval"] * plan.interval_s
+                                + sooner * SOONER_INTERVAL * plan.interval_s
                                 + recheck * plan.check_s)
     assert plan.check_share == pytest.approx(plan.check_s / gap)
     assert plan.check_share <= 0.025 + 1e-9

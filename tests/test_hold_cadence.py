@@ -26,7 +26,6 @@ from autotune.analysis.hold import (
     plan_night,
     recheck_run_limit,
 )
-from autotune.analysis.hold_plan import SOONER_LEVEL
 
 SLOPE = DEMO_SLOPE
 _prior = demo_prior
@@ -97,8 +96,7 @@ def _planned():
 
 def test_the_planned_time_to_confirm_a_step_matches_seeded_nights_of_checks():
     """A 15 kHz step at a uniform time of a quiet night of the plan's checks (every interval,
-    after the plan's middle-zone wait at or above SOONER_LEVEL of the warning level, and back
-    to back while a statistic is at or above the warning level), the check's
+    and back to back while a statistic is at or above the warning level), the check's
     standardised innovations N(0, 1) before the step and N(step / sd, 1) after it (seeded,
     scipy.stats.norm; the lock's own following of the step is left out, as in the plan): the
     mean time from the step to the alarm is the plan's stated one within 20 %."""
@@ -121,11 +119,7 @@ def test_the_planned_time_to_confirm_a_step_matches_seeded_nights_of_checks():
         alive &= ~hit
         if not alive.any():
             break
-        # At once above the warning level; after the plan's middle-zone wait at or above
-        # SOONER_LEVEL of it (hold_plan.next_check); else after the interval.
-        clock[alive] += np.where(s[alive] >= w, plan.check_s, np.where(
-            s[alive] >= SOONER_LEVEL * w, plan.inputs["sooner_interval"] * plan.interval_s,
-            plan.interval_s))
+        clock[alive] += np.where(s[alive] >= w, plan.check_s, plan.interval_s)
     assert not alive.any()
     assert float(delay.mean()) == pytest.approx(plan.step_delay_s, rel=0.20)
     assert plan.inputs["step_delay_late_s"] >= plan.step_delay_s

@@ -34,7 +34,7 @@ from autotune.analysis.hold import (
     step_outlook,
 )
 from autotune.analysis.hold_budget import checks_share_at
-from autotune.analysis.hold_plan import SOONER_LEVEL, step_delay_of
+from autotune.analysis.hold_plan import step_delay_of
 
 STEP_HZ = 15e3
 SHARE = 0.025  # half the default 5 % budget
@@ -127,11 +127,10 @@ def test_the_step_size_a_poor_night_confirms_within_15_min():
 def test_checks_half_an_hour_apart_confirm_no_step_within_15_min_and_the_outlook_says_so():
     """A step landing uniformly between checks waits half an interval in the mean for the first
     check after it (common practice: the mean residual time of a fixed period), so checks
-    more than 1800 s apart (a poorer rig than the test above's: 0.015 atoms per shot, checks
-    every 38 min; at 0.022 the planner's shorter middle-zone wait now buys checks 27 min apart)
-    confirm no step, however large, within 900 s in the mean: the outlook names no step size (a
-    plan made again for a larger step would be another night, with shorter intervals)."""
-    outlook, plan, _ = _outlook(0.015)
+    1800 s apart (the poor rig of the test above, 0.022 atoms per shot) confirm no step, however
+    large, within 900 s in the mean: the outlook names no step size (a plan made again for a
+    larger step would be another night, with shorter intervals)."""
+    outlook, plan, _ = _outlook(0.022)
     assert plan.interval_s / 2.0 >= CONFIRM_WITHIN_S
     assert outlook.step_hz_confirmed is None
     assert "steps >=" not in outlook.warning
@@ -211,9 +210,7 @@ def test_the_time_to_confirm_matches_a_simulation_of_the_checks(atoms_per_shot):
             clock += plan.check_s
             if s > t.threshold:
                 break
-            wait = plan.interval_s if s < SOONER_LEVEL * t.warning else \
-                plan.inputs["sooner_interval"] * plan.interval_s
-            clock += 0.0 if s >= t.warning else wait - plan.check_s
+            clock += 0.0 if s >= t.warning else plan.interval_s - plan.check_s
         delays[n] = clock
     assert outlook.confirm_s == plan.step_delay_s
     assert 0.95 * delays.mean() <= plan.step_delay_s <= 1.35 * delays.mean()

@@ -8,7 +8,6 @@ between false alarms it designs for."""
 
 from __future__ import annotations
 
-import dataclasses
 import math
 
 import numpy as np
@@ -25,7 +24,7 @@ from autotune.analysis.hold import (
     next_check,
     plan_checks,
 )
-from autotune.analysis.hold_plan import SOONER_INTERVAL, SOONER_INTERVALS, SOONER_LEVEL
+from autotune.analysis.hold_plan import SOONER_INTERVAL, SOONER_LEVEL
 
 SLOPE = DEMO_SLOPE
 _prior = demo_prior
@@ -60,12 +59,9 @@ def test_the_share_of_checks_in_the_middle_zone_matches_seeded_charts(reference,
 
 def test_the_next_check_comes_sooner_only_from_the_middle_zone():
     """Below SOONER_LEVEL of the warning level: the plan's interval after the last check's first
-    shot; at or above it (a check held or corrected): the plan's middle-zone wait
-    (``inputs["sooner_interval"]``, one of SOONER_INTERVALS) of it, SOONER_INTERVAL for a plan
-    that does not say; a recheck stays at once; an alarm's statistic never shortens a recheck
-    run's end."""
+    shot; at or above it (a check held or corrected): SOONER_INTERVAL of it; a recheck stays at
+    once; an alarm's statistic never shortens a recheck run's end."""
     plan = _plan()
-    assert plan.inputs["sooner_interval"] in SOONER_INTERVALS
     level = SOONER_LEVEL * plan.test.warning
     below = next_check(plan, action="hold", clock_s=1000.0, first_shot_s=990.0, run=0,
                        statistic=0.99 * level)
@@ -74,13 +70,7 @@ def test_the_next_check_comes_sooner_only_from_the_middle_zone():
         zone = next_check(plan, action=action, clock_s=1000.0, first_shot_s=990.0, run=0,
                           statistic=level)
         assert zone["sooner"] and not zone["recheck"]
-        assert zone["due_clock"] == pytest.approx(
-            990.0 + plan.inputs["sooner_interval"] * plan.interval_s)
-    older = dataclasses.replace(plan, inputs={k: v for k, v in plan.inputs.items()
-                                              if k != "sooner_interval"})
-    zone = next_check(older, action="hold", clock_s=1000.0, first_shot_s=990.0, run=0,
-                      statistic=level)
-    assert zone["due_clock"] == pytest.approx(990.0 + SOONER_INTERVAL * plan.interval_s)
+        assert zone["due_clock"] == pytest.approx(990.0 + SOONER_INTERVAL * plan.interval_s)
     again = next_check(plan, action="recheck", clock_s=1000.0, first_shot_s=990.0, run=0,
                        statistic=2.0 * plan.test.warning)
     assert again["recheck"] and again["due_clock"] == 1000.0 and not again["sooner"]

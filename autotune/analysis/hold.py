@@ -57,18 +57,9 @@ their public names (``from autotune.analysis.hold import plan_checks``):
   (D. Brook and D. A. Evans, Biometrika 59, 539 (1972)); the rechecks' beam is counted in the
   share, and the false-alarm design in rig time counts their shorter gaps. A check that leaves
   a phase chart between half its warning level and the warning level brings the next one after
-  a quarter or half the interval, the planner's choice (a CUSUM with variable
-  sampling intervals: M. R. Reynolds, R. W. Amin and J. C. Arnold, Technometrics 32, 371
-  (1990); :func:`in_control_sooner`, :func:`next_check`), counted in the share and the
-  false-alarm design alike; the planner's time to confirm a step is that chart's average time
-  to signal from its Markov chain, the middle zone's checks included (:func:`vsi_delay`).
-  The test is designed on the drift filter's settled state; where the lock's predicted
-  innovation at the next check is wider than that by more than :data:`REACH_RATIO` (after a
-  start or a retune, the rate's uncertainty times the interval squared), the check is brought
-  forward to where it is not, never sooner than :data:`LEAST_REACH` of the interval
-  (:func:`reach_s`, :func:`innovation_sd_at`: the Kalman filter's prediction, Y. Bar-Shalom,
-  X. R. Li and T. Kirubarajan, Estimation with Applications to Tracking and Navigation, 2001,
-  sec. 5.2.3). The hourly plan waits for a recheck run to end.
+  half the interval (a CUSUM with variable sampling intervals: M. R. Reynolds, R. W. Amin and
+  J. C. Arnold, Technometrics 32, 371 (1990); :func:`in_control_sooner`, :func:`next_check`),
+  counted in the share and the false-alarm design alike.
 
 - **The beam budget** (:class:`BeamBudget`, :func:`checks_share`, :func:`choose_recovery`, in
   :mod:`autotune.analysis.hold_budget`).
@@ -147,13 +138,10 @@ from autotune.analysis.hold_plan import (
     flag_probability,
     in_control_rechecks,
     in_control_sooner,
-    innovation_sd_at,
     next_check,
     plan_checks,
-    reach_s,
     readable_z,
     recheck_run_limit,
-    vsi_delay,
 )
 from autotune.analysis.hold_outlook import (
     CONFIRM_WITHIN_S,
@@ -179,13 +167,10 @@ __all__ = [
     "readable_z",
     "recheck_run_limit",
     "next_check",
-    "reach_s",
-    "innovation_sd_at",
     "cusum_chain",
     "flag_probability",
     "in_control_rechecks",
     "in_control_sooner",
-    "vsi_delay",
     "floor_shift_hz",
     "floor_phase_rad",
     "known_cubic",

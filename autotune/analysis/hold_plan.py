@@ -12,7 +12,6 @@ re-exports these.
 from __future__ import annotations
 
 import functools
-import itertools
 import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields
@@ -45,18 +44,12 @@ __all__ = [
     "in_control_sooner",
     "SOONER_LEVEL",
     "SOONER_INTERVAL",
-    "SOONER_INTERVALS",
     "flag_probability",
-    "vsi_delay",
     "readable_z",
     "plan_checks",
     "step_delay_of",
     "recheck_run_limit",
     "next_check",
-    "innovation_sd_at",
-    "reach_s",
-    "LEAST_REACH",
-    "REACH_RATIO",
 ]
 
 # Shortest interval the planner considers (s) and the number of candidate intervals.
@@ -79,15 +72,6 @@ _WARNING_FRACTIONS = (0.15, 0.25, 0.35, 0.5)
 #: steps on mismatch nights, 6.2 min each).
 SOONER_LEVEL = 0.5
 SOONER_INTERVAL = 0.5
-#: The middle zone's waits (fractions of the interval) the planner chooses among
-#: (:func:`plan_checks`, with :func:`vsi_delay`); :data:`SOONER_INTERVAL` is the default of a plan
-#: that does not say (``inputs["sooner_interval"]``). No wait shorter than a quarter: the chain
-#: behind :func:`vsi_delay` has every check after a step read it at the same z, while the lock
-#: takes part of the step in at each check between, so the shortest wait buys less than the
-#: chain plans; at an eighth the planner took shorter intervals for the same share, more
-#: in-control checks landed in the middle zone and quiet nights spent more of the beam
-#: (benchmarks/README.md, sessions 11 and 12).
-SOONER_INTERVALS = (0.25, 0.5)
 
 # One-sided 5 % (scipy.stats.norm.isf(0.05)): the least room of a check, however rare the checks.
 _LEAST_USABLE_Z = 1.645
@@ -97,18 +81,6 @@ _MIN_DESIGN_SNR = 1.0
 # Rig time of the prior of the night's rate of steps and recoveries: one per four hours,
 # counted as one more recovery (s).
 RECOVERY_PRIOR_S = 4 * 3600.0
-#: Least share of the planned interval a check is brought forward to when the lock's predicted
-#: innovation outgrows the plan's before the interval is over (:func:`reach_s`): a lock whose
-#: peak alone is already less certain than the plan assumed is not checked back to back.
-LEAST_REACH = 0.25
-#: The predicted innovation's deviation the plan's checks stay within, in units of the plan's
-#: (:func:`reach_s`): a step then reads at no less than 0.8 of the standard deviations it was
-#: planned at. A night's filter is rarely quite settled (the rate is learnt over hours); on
-#: the demo night its innovation ran about 6 % over the plan's, and holding it to the plan's
-#: itself brought nearly every check forward to a quarter interval.
-REACH_RATIO = 1.25
-# Points of the search for the time the predicted innovation leaves the plan's.
-_REACH_POINTS = 64
 
 
 
@@ -285,67 +257,39 @@ def flag_probability(shift: float, reference: float, threshold: float, warning: 
     return float(np.clip(stationary @ flagged, 0.0, 1.0))
 
 
-def vsi_delay(shift_sd: float, reference: float, threshold: float, warning: float,
-              interval_s: float, check_s: float, *, sooner_interval: float = SOONER_INTERVAL,
-              sooner_level: float = SOONER_LEVEL, late: bool = False,
-              cells: int = _CHAIN_CELLS) -> float:
-    """Expected rig time from a shift of ``shift_sd`` standard deviations to the alarm of a
-    one-sided CUSUM whose checks come at variable intervals (s; inf when it never alarms).
+def _delay(shift_sd: float, reference: float, threshold: float, warning: float,
+           interval_s: float, check_s: float, *, late: bool = False,
+           flag: float | None = None) -> float:
+    """Expected rig time from a shift of ``shift_sd`` standard deviations to the alarm.
 
-    The adjusted average time to signal of a CUSUM with variable sampling intervals, from its
-    Markov chain (M. R. Reynolds, R. W. Amin and J. C. Arnold, Technometrics 32, 371 (1990),
-    section 3; the chain of D. Brook and D. A. Evans, Biometrika 59, 539 (1972):
-    :func:`cusum_chain`): the chart is in its in-control stationary state when the shift comes
-    (:func:`in_control_rechecks`' chain), the first check comes half an interval after (a whole
-    one when ``late``), and after each check the next comes at once (``check_s``: a recheck) when
-    the chart is at or above ``warning``, after ``sooner_interval`` of the interval when it is at
-    or above ``sooner_level`` of the warning level (the middle zone), else after the interval.
-    With ``T`` the expected time to the alarm from each cell just before a check, ``P`` the
-    chain's transitions under the shift and ``t`` the wait after a check ending in each cell,
-    ``T = P (t + T)``, so ``T = (I - P)^-1 P t``; the alarm's own check adds ``check_s``.
-    The rechecks' run limit (:func:`recheck_run_limit`) is left out.
-
-    Where it errs: the chain reads every check after the shift at the same ``shift_sd``. On a
-    night the lock corrects the set-point at each check that does not alarm (its gain takes part
-    of an under-read step in as drift), so the checks after the first read a smaller shift than
-    the chain has, and the more of them the middle zone brings before the alarm, the more of the
-    step is gone: the delay is short of the night's, most for the shortest middle-zone waits.
-    That is why the planner does not choose a wait below a quarter of the interval
-    (:data:`SOONER_INTERVALS`).
+    Checks come an interval apart until one leaves the statistic at or above the warning
+    level, which happens at each with the probability of :func:`flag_probability` (``flag``
+    when known; the step lands uniformly within an interval: half an interval to the first
+    check, a whole one when ``late``); from there checks follow back to back, Siegmund's run
+    length of them (:func:`cusum_arl`) each a check's duration.
     """
     if shift_sd - reference <= 0.0:
         return math.inf
-    centres, moves = cusum_chain(float(shift_sd), float(reference), float(threshold), int(cells))
-    _, stationary = _stationary(float(reference), float(threshold), int(cells))
-    wait = np.where(centres >= warning, check_s,
-                    np.where(centres >= sooner_level * warning, sooner_interval * interval_s,
-                             interval_s))
-    system = np.eye(len(centres)) - moves
-    try:
-        to_alarm = np.linalg.solve(system, moves @ wait)
-    except np.linalg.LinAlgError:
+    if flag is None:
+        flag = flag_probability(shift_sd, reference, threshold, warning)
+    if flag <= 1e-9:
         return math.inf
-    if not np.all(np.isfinite(to_alarm)) or np.any(to_alarm < 0.0):
-        return math.inf
+    run_length = max(1.0, cusum_arl(shift_sd, reference, threshold))
     first = 1.0 if late else 0.5
-    return float(first * interval_s + stationary @ to_alarm + check_s)
+    return interval_s * (first + (1.0 - flag) / flag) + run_length * check_s
 
 
 def step_delay_of(plan: CheckPlan, step_hz: float, *, late: bool = False) -> float:
-    """Expected rig time ``plan``'s checks, as planned (cadence, size, test, the middle zone's
-    wait), take to confirm a shift of ``step_hz`` (s; inf when they cannot): :func:`vsi_delay`
-    of the shift over the plan's innovation deviation, the same number as ``plan.step_delay_s``
-    (``late``: ``step_delay_late_s``) for the step it was planned for."""
+    """Expected rig time ``plan``'s checks, as planned (cadence, size, test), take to confirm a
+    shift of ``step_hz`` (s; inf when they cannot): :func:`_delay` of the shift over the
+    plan's innovation deviation, the same number as ``plan.step_delay_s`` (``late``:
+    ``step_delay_late_s``) for the step it was planned for."""
     test = plan.test
     shift_sd = abs(float(step_hz)) / float(plan.inputs["innovation_sd_hz"])
-    return vsi_delay(shift_sd, test.reference, test.threshold, test.warning, plan.interval_s,
-                     plan.check_s, late=late, sooner_interval=sooner_interval_of(plan))
-
-
-def sooner_interval_of(plan: CheckPlan) -> float:
-    """The middle zone's wait of ``plan`` (a fraction of its interval): the one it was planned
-    with, :data:`SOONER_INTERVAL` for a plan that does not say (one journaled before)."""
-    return float(plan.inputs.get("sooner_interval", SOONER_INTERVAL))
+    flag = flag_probability(shift_sd, test.reference, test.threshold, test.warning) \
+        if shift_sd > test.reference else 0.0
+    return _delay(shift_sd, test.reference, test.threshold, test.warning, plan.interval_s,
+                  plan.check_s, late=late, flag=flag)
 
 
 def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase_var: float,
@@ -353,8 +297,7 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
                noise: NoiseModel, lock: DriftLock, reference_inversion: float,
                reference_stderr: float, warning_fraction: float,
                steady: dict[tuple[float, int], tuple[float, float]],
-               step_read: tuple[float, float],
-               sooner_interval: float = SOONER_INTERVAL) -> dict[str, Any]:
+               step_read: tuple[float, float]) -> dict[str, Any]:
     """The numbers of checks of ``per_phase`` shots every ``interval`` s, warning level
     ``warning_fraction`` of each threshold (``steady`` caches the filter's steady state;
     ``step_read`` is :func:`step_reading` of ``step_hz``)."""
@@ -385,7 +328,7 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
         recheck = min(2.0 * in_control_rechecks(k, h, warning_fraction * h)
                       + in_control_rechecks(k_inv, h_inv, warning_fraction * h_inv), 0.9)
         sooner = min(2.0 * in_control_sooner(k, h, warning_fraction * h), 0.95 - recheck)
-        gap = (1.0 - recheck - sooner) * interval + sooner * sooner_interval * interval \
+        gap = (1.0 - recheck - sooner) * interval + sooner * SOONER_INTERVAL * interval \
             + recheck * check_s
         if abs(gap - previous) <= 1e-3 * previous:
             break
@@ -409,11 +352,9 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
             "test": SequentialTest(k, h, w, k_inv, h_inv, w_inv),
             "shifts": shifts, "recheck_share": recheck, "sooner_share": sooner,
             "mean_gap_s": gap,
-            "step_delay_s": vsi_delay(step_sd, k, h, w, interval, check_s,
-                                      sooner_interval=sooner_interval),
-            "step_delay_late_s": vsi_delay(step_sd, k, h, w, interval, check_s, late=True,
-                                           sooner_interval=sooner_interval),
-            "sooner_interval": sooner_interval,
+            "step_delay_s": _delay(step_sd, k, h, w, interval, check_s, flag=flag),
+            "step_delay_late_s": _delay(step_sd, k, h, w, interval, check_s, late=True,
+                                        flag=flag),
             "step_flag": flag, "step_z": step_sd, "step_read_hz": abs(step_read_hz),
             "step_read_z": read_z, "step_read_flag": read_flag,
             "false_alarm_interval_h": arl * gap / 3600.0, "tracking_error_hz": tracking,
@@ -423,9 +364,8 @@ def _check_row(settings: HoldSettings, *, interval: float, per_phase: int, phase
 def _expected_delay(row: Mapping[str, Any]) -> float:
     """The mean expected delay over the row's shifts (design shift to capture range)."""
     t = row["test"]
-    return float(np.mean([vsi_delay(x / row["innovation_sd_hz"], t.reference, t.threshold,
-                                    t.warning, row["interval_s"], row["check_s"],
-                                    sooner_interval=row["sooner_interval"])
+    return float(np.mean([_delay(x / row["innovation_sd_hz"], t.reference, t.threshold,
+                                 t.warning, row["interval_s"], row["check_s"])
                           for x in row["shifts"]]))
 
 
@@ -531,7 +471,7 @@ def plan_checks(settings: HoldSettings, *, noise: NoiseModel, prior: LockPrior, 
     row["expected_delay_s"] = _expected_delay(row)
     for name in ("innovation_sd_hz", "design_snr", "recheck_share", "sooner_share", "mean_gap_s",
                  "step_delay_late_s", "step_flag", "step_z", "step_read_hz", "step_read_z",
-                 "step_read_flag", "sooner_interval"):
+                 "step_read_flag"):
         inputs[name] = row[name]
     share = row["check_s"] / row["mean_gap_s"]
     return CheckPlan(interval_s=row["interval_s"], shots_per_phase=row["shots_per_phase"],
@@ -598,9 +538,9 @@ def _search_cadences(settings: HoldSettings, *, check_share: float, top: float,
         least = least_at(interval)
         if math.floor(check_share * interval * settings.repetition_rate_hz / one) < least:
             continue
-        for fraction, sooner in itertools.product(_WARNING_FRACTIONS, SOONER_INTERVALS):
+        for fraction in _WARNING_FRACTIONS:
             row = _sized(settings, interval=interval, fraction=fraction, check_share=check_share,
-                         least=least, common={**common, "sooner_interval": sooner})
+                         least=least, common=common)
             if row is None or row["design_snr"] < _MIN_DESIGN_SNR:
                 continue
             tracking = row["tracking_error_hz"]
@@ -684,7 +624,7 @@ def _plan_reason(row: Mapping[str, Any], why: str, *, share: float, step_hz: flo
             f"{row['design_snr']:.1f} sd of the innovation) every "
             f"{row['interval_s'] / 60:.1f} min of rig time, checked again at once above the "
             f"warning level ({row['recheck_share']:.0%} of the checks in a quiet night), "
-            f"after {row['sooner_interval']:.0%} of the interval above {SOONER_LEVEL:.0%} of it "
+            f"after {SOONER_INTERVAL:.0%} of the interval above {SOONER_LEVEL:.0%} of it "
             f"({row['sooner_share']:.0%}; "
             f"{share:.1%} of the beam in all): {why}; test k {test.reference:.2f}, "
             f"h {test.threshold:.2f}, w {test.warning:.2f} (false alarms every "
@@ -720,53 +660,8 @@ def recheck_run_limit(test: SequentialTest) -> int:
     return max(1, math.ceil(cusum_arl(2.0 * k, k, h)))
 
 
-def innovation_sd_at(lock: DriftLock, clock_s: float, variance_hz2: float) -> float:
-    """Standard deviation of the innovation the lock predicts for a check at ``clock_s`` whose
-    own measurement variance is ``variance_hz2`` (Hz): the filter's predicted variance of the
-    peak there (:meth:`DriftLock.predict`: ``P + 2 tau P_pr + tau^2 P_rr`` and the walks) plus
-    the check's, ``S = H P(t|t0) H' + R`` (Y. Bar-Shalom, X. R. Li and T. Kirubarajan,
-    *Estimation with Applications to Tracking and Navigation*, Wiley 2001, sec. 5.2.3, the
-    innovation covariance of the Kalman filter's prediction stage)."""
-    predicted = lock.predict(float(clock_s)).covariance[0][0]
-    return math.sqrt(max(predicted, 0.0) + float(variance_hz2))
-
-
-def reach_s(plan: CheckPlan, lock: DriftLock, *, start_s: float, wait_s: float) -> float:
-    """The wait (s, from ``start_s``) before the next check, at most ``wait_s``, so that the
-    lock's predicted innovation (:func:`innovation_sd_at`, the plan's measurement variance)
-    is still within :data:`REACH_RATIO` of the plan's (``plan.inputs["innovation_sd_hz"]``,
-    the filter's settled state the test was designed on).
-
-    The plan sizes the test on the settled filter; after a start or a retune, and whenever the
-    filter is less certain than settled, the prediction over a whole interval carries the rate's
-    uncertainty times the interval squared, and a step reads at fewer standard deviations than
-    designed (benchmarks/README.md, session 11). The check is brought forward to the last
-    time the predicted innovation stays within reach, never sooner than
-    :data:`LEAST_REACH` of the plan's interval (nor later than ``wait_s``). The false-alarm
-    design is kept: the check's ``z`` is on the innovation's actual deviation either way.
-    """
-    wait = float(wait_s)
-    planned = plan.inputs.get("innovation_sd_hz")
-    if planned is None or not math.isfinite(float(planned)) or wait <= 0.0:
-        return wait
-    variance = float(plan.detuning_stderr_hz) ** 2
-    limit = float(planned) * REACH_RATIO
-    start = float(start_s)
-    if innovation_sd_at(lock, start + wait, variance) <= limit:
-        return wait
-    least = min(LEAST_REACH * float(plan.interval_s), wait)
-    # The first time the prediction leaves the plan's, on a fine grid, then the time before it.
-    reach = least
-    for tau in np.linspace(least, wait, _REACH_POINTS):
-        if innovation_sd_at(lock, start + float(tau), variance) > limit:
-            break
-        reach = float(tau)
-    return reach
-
-
 def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: float | None,
-               run: int, statistic: float = 0.0, lock: DriftLock | None = None
-               ) -> dict[str, Any]:
+               run: int, statistic: float = 0.0) -> dict[str, Any]:
     """When the check after one assessed as ``action`` comes (rig s), and whether it is a recheck.
 
     A recheck comes at once (``clock_s``) while the rechecks in a row, ``run`` before this one,
@@ -776,25 +671,17 @@ def next_check(plan: CheckPlan, *, action: str, clock_s: float, first_shot_s: fl
     interval after the first shot of the last (the middle zone of a CUSUM with variable
     sampling intervals; the planner counts its share in the checks' beam,
     :func:`in_control_sooner`); any other check comes the plan's interval after it
-    (``first_shot_s``, else ``clock_s``). With the lock after the check (``lock``) the wait is
-    brought forward to when its predicted innovation would outgrow the plan's (:func:`reach_s`;
-    ``reach`` is True then). Returns ``due_clock``, ``recheck``, ``sooner``, ``reach`` and
+    (``first_shot_s``, else ``clock_s``). Returns ``due_clock``, ``recheck``, ``sooner`` and
     ``run`` (the rechecks in a row, this one included).
     """
     if action == "recheck":
         run = int(run) + 1
         if run <= recheck_run_limit(plan.test):
-            return {"due_clock": float(clock_s), "recheck": True, "sooner": False,
-                    "reach": False, "run": run}
+            return {"due_clock": float(clock_s), "recheck": True, "sooner": False, "run": run}
     else:
         run = 0
     start = float(clock_s if first_shot_s is None else first_shot_s)
     sooner = action in ("hold", "correct") and \
         float(statistic) >= SOONER_LEVEL * float(plan.test.warning)
-    interval = plan.interval_s * (sooner_interval_of(plan) if sooner else 1.0)
-    reach = False
-    if lock is not None:
-        wait = reach_s(plan, lock, start_s=start, wait_s=interval)
-        reach, interval = wait < interval, wait
-    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "reach": reach,
-            "run": run}
+    interval = plan.interval_s * (SOONER_INTERVAL if sooner else 1.0)
+    return {"due_clock": start + interval, "recheck": False, "sooner": sooner, "run": run}

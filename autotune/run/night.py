@@ -25,7 +25,6 @@ from autotune.analysis.hold import (
     assess_check,
     choose_recovery,
     next_check,
-    reach_s,
     noise_row,
     lock_at_stage_end,
     plan_night,
@@ -565,11 +564,7 @@ class Night:
         nxt = state.get("next")
         # After a stage the first check comes one interval later (the stage has just measured);
         # a plan made again on the hour keeps the next check's time and takes the new shots.
-        # The first check is brought forward when the lock's prediction over the whole interval
-        # (the rate's uncertainty after a start or a retune) outgrows the plan's innovation.
-        due = self.session.clock + reach_s(
-            plan, DriftLock.from_dict(state["lock"]), start_s=self.session.clock,
-            wait_s=plan.interval_s) if nxt is None else float(nxt["due_clock"])
+        due = self.session.clock + plan.interval_s if nxt is None else float(nxt["due_clock"])
         self.state = {**state, "plan": plan.to_dict(),
                       "next": {"point": point, "due_clock": due, "recheck": False,
                                "shots_per_phase": plan.shots_per_phase},
@@ -730,8 +725,7 @@ class Night:
                                first_shot_s=m.t_first,
                                # An unreadable check is always repeated at once.
                                run=int(state["next"].get("run", 0)) if a.usable else 0,
-                               statistic=max(a.upper, a.lower) if a.usable else 0.0,
-                               lock=a.lock)
+                               statistic=max(a.upper, a.lower) if a.usable else 0.0)
             if after["recheck"]:
                 counts["rechecks"] += 1
             new["next"] = {"point": point + 1, "shots_per_phase": plan.shots_per_phase,
