@@ -137,6 +137,8 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
     - a recheck run is never cut by the hourly plan: between a check whose next is a recheck
       and that recheck, no ``plan`` decision made for the hour (a run's statistics are read
       against the thresholds and shots it began with);
+    - no ``plan`` decision between a check's measurement and its ``hold`` record (a check is
+      assessed with the plan and shots it began with, a resumed one too);
     - a finished night ends with a ``stop`` decision that says why.
     """
     hold_estimates: dict[int, int] = {}
@@ -146,12 +148,14 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
     pending_correction: Mapping[str, Any] | None = None
     alarm_open = False
     recheck_of: int | None = None
+    checking: int | None = None
     for position, rec in enumerate(records):
         kind = rec["type"]
         what = rec.get("what")
         if kind == "estimate" and rec["label"] == HOLD:
             hold_estimates[rec["point"]] = position
         elif kind == "measurement" and rec["label"] == HOLD:
+            checking = rec["point"]
             if pending_correction is not None:
                 # The rig may have applied the correction just before a kill, with no move
                 # record: the next check is then opened (and, by the invariant above, filed)
@@ -168,12 +172,16 @@ def check_night(records: Sequence[Mapping[str, Any]], *, finished: bool = True) 
             assert point not in holds, f"record {rec['seq']}: check {point} assessed twice"
             assert not holds or point > holds[-1], f"record {rec['seq']}: checks out of order"
             holds.append(point)
+            checking = None
             assert rec["action"] in ("hold", "correct", "recheck", "alarm") and rec["reason"]
             tests = rec["state"]["tests"]
             assert min(tests["upper"], tests["lower"], tests["inversion"]) >= 0.0
             upcoming = rec["state"].get("next") or {}
             recheck_of = point if upcoming.get("recheck") else None
-        elif kind == "decision" and what == "plan" and recheck_of is not None:
+        elif kind == "decision" and what == "plan" and (recheck_of is not None
+                                                        or checking is not None):
+            assert checking is None, (f"record {rec['seq']}: a plan made inside check "
+                                      f"{checking} (measured, not assessed)")
             assert not rec["reason"].startswith("an hour of rig time"), (
                 f"record {rec['seq']}: the hourly plan cut the recheck run after check "
                 f"{recheck_of}")

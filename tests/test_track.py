@@ -654,3 +654,41 @@ def test_a_night_that_spends_its_budget_stays_under_it_and_resumes_from_its_budg
         assert after[: index + 1] == records[: index + 1]
         assert resumed["status"] == "ended"
         assert resumed["holding_beam_s"] <= resumed["budget_ceiling_s"] + 1e-6
+
+
+@_SHARES_FIXTURE
+def test_a_night_cut_inside_a_check_after_the_hour_finishes_that_check_before_planning(
+        night, tmp_path):
+    """A night killed inside a check (an acquisition of it filed) that resumes after its
+    hourly plan fell due finishes that check with the plan and shots it began with, then makes
+    the hourly plan: the order of a night not killed (the plan is looked at before a check is
+    waited for, never inside one). Cut after the first acquisition of the last check before an
+    hourly plan; the resumed journal files no acquisition twice (journal_checks) and makes no
+    plan between the cut and the check's hold record."""
+    source = night["base"] / "night"
+    records = night["records"]
+    hourly = next(i for i, r in enumerate(records) if r["type"] == "decision"
+                  and r["what"] == "plan" and r["reason"].startswith("an hour of rig time"))
+    opened = max(i for i, r in enumerate(records[:hourly]) if r["type"] == "measurement"
+                 and r["label"] == "hold")
+    point = records[opened]["point"]
+    index = next(i for i in range(opened, hourly) if records[i]["type"] == "acquisition")
+    run = tmp_path / "inside-check"
+    shutil.copytree(source, run)
+    lines = (source / JOURNAL_NAME).read_bytes().splitlines(keepends=True)
+    (run / JOURNAL_NAME).write_bytes(b"".join(lines[: index + 1]))
+    (run / RESULT_NAME).unlink()
+    store = tmp_path / "good.json"
+    shutil.copy(night["store"], store)
+    result = track.track(night["rig"], night["config"], run, resume=True, store=store)
+    after = read_journal(run / JOURNAL_NAME)
+    check_invariants(after)
+    assert after[: index + 1] == records[: index + 1]
+    held = [i for i, r in enumerate(after) if i > index and r["type"] == "hold"]
+    assert held and after[held[0]]["point"] == point, "the check cut in flight never finished"
+    held = held[0]
+    assert any(r["type"] == "estimate" and r["label"] == "hold" and r["point"] == point
+               for r in after[index + 1:held])
+    assert not [r for r in after[index + 1:held]
+                if r["type"] == "decision" and r["what"] == "plan"], "planned inside the check"
+    assert result["status"] == "ended"

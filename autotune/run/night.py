@@ -190,9 +190,13 @@ class Night:
                 continue
             # The hourly plan waits for a recheck run to end: the run's statistics are read
             # against the thresholds and the shots it began with (a plan made inside it would
-            # change both, and drop the run's count of rechecks).
+            # change both, and drop the run's count of rechecks). Nor is it made inside a check
+            # a killed process left measured in part: a night not killed looks at the hour only
+            # before it waits for a check, and the plan's snapshot would leave the check's
+            # records behind (never finished, its acquisitions never estimated).
             if self.session.clock >= float(self.state["replan_clock"]) and \
-                    not (self.state.get("next") or {}).get("recheck"):
+                    not (self.state.get("next") or {}).get("recheck") and \
+                    self._in_flight() is None:
                 self._replan("an hour of rig time since the last plan")
                 continue
             self._hold_once()
