@@ -6,8 +6,9 @@ Builds the night study's job for one family and scenario exactly as ``python -m 
 under ``--keep`` and the truth samples written beside it (``samples.json``: rig s from the
 night's start, ratio), then prints one line per check: its time, the ratio there and the least
 ratio since the check before, the check's z, chart zone and action, the plan's interval, the
-wait to the next check and whether ``reach_s`` brought it forward (``reach``), and every alarm,
-retune and step. A diagnostic, not part of the product.
+wait to the next check (``sooner`` in the middle zone), and every alarm, retune and step. (In
+session 12 it also marked the checks the reverted ``reach_s`` brought forward.) A diagnostic,
+not part of the product.
 
     python3 benchmarks/one_night.py --family zones_set_once --scenario 0 --seed 777 \
         --family-seed-offset 1 --keep /tmp/night-zso0
@@ -136,7 +137,7 @@ def trace(keep: Path, bar: float = 0.97) -> None:
               f"S+ {numbers.get('upper') or 0:.2f} S- {numbers.get('lower') or 0:.2f} "
               f"{rec.get('action')}{'/' + numbers['alarm'] if numbers.get('alarm') else ''}; "
               f"next in {wait:.1f} min{' recheck' if nxt.get('recheck') else ''}"
-              f"{' sooner' if nxt.get('sooner') else ''}{' REACH' if nxt.get('reach') else ''}"
+              f"{' sooner' if nxt.get('sooner') else ''}"
               f" (plan {(interval or 0) / 60:.1f})")
         last_t = t
     step_lines(math.inf)
